@@ -1,0 +1,267 @@
+"""The ``cvdesign`` command.
+
+Sub-commands:
+
+* ``suggest`` -- rank compact linear CVs separating the given states, write spec files;
+* ``apply`` -- evaluate a spec on trajectories, without refitting anything;
+* ``demo`` -- run ``suggest`` on the bundled demo data.
+"""
+
+import argparse
+import csv
+import io
+import json
+import sys
+from pathlib import Path
+
+from . import __version__
+from .errors import CVDesignError, InputError
+
+__all__ = ["main", "build_parser"]
+
+
+def _kinds(text):
+    kinds = tuple(k.strip() for k in text.split(",") if k.strip())
+    allowed = ("distance", "angle", "dihedral")
+    bad = [k for k in kinds if k not in allowed]
+    if bad or not kinds:
+        raise argparse.ArgumentTypeError(
+            f"unknown kind(s) {', '.join(bad) or '(none)'}; use a comma-separated subset of "
+            + ",".join(allowed))
+    return kinds
+
+
+def _positive_float(text):
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be positive")
+    return v
+
+
+def _positive_int(text):
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"{text!r} must be at least 1")
+    return v
+
+
+def _add_suggest_options(p):
+    p.add_argument("--select", metavar="SEL", default=None,
+                   help="atoms the candidate descriptors are built from, in mdtraj selection "
+                        "syntax (e.g. 'name CA', 'resid 10 to 40 and not element H'); "
+                        "default: heavy atoms of the solute (no hydrogens, water or ions)")
+    p.add_argument("--kinds", type=_kinds, default=("distance", "angle", "dihedral"),
+                   metavar="K1,K2", help="descriptor kinds in the pool, comma-separated, from "
+                   "distance (nm), angle (rad, bonded triples), dihedral (rad, one per "
+                   "rotatable bond; enters combinations as cos and sin); default: all three")
+    p.add_argument("--cutoff", type=_positive_float, default=1.0, metavar="NM",
+                   help="distance prefilter in nm: keep a pair if its mean distance is below "
+                        "this in at least one state (default: 1.0 nm)")
+    p.add_argument("--prefilter-stride", type=_positive_int, default=10, metavar="N",
+                   help="the distance prefilter reads every N-th frame (default: 10)")
+    p.add_argument("--max-terms", type=_positive_int, default=5, metavar="K",
+                   help="largest number of descriptors in one combination (default: 5)")
+    p.add_argument("--suggestions", type=_positive_int, default=10, metavar="N",
+                   help="number of ranked combinations, each written as a spec (default: 10)")
+    p.add_argument("--folds", type=_positive_int, default=4, metavar="N",
+                   help="folds of the held-out scoring, by whole trajectories, or by "
+                        "contiguous blocks when a state has one trajectory (default: 4)")
+    p.add_argument("--force", action="store_true",
+                   help="replace the output directory if it exists and is not empty")
+    p.add_argument("--quiet", action="store_true", help="print only the final table")
+
+
+def build_parser():
+    """The argument parser of the ``cvdesign`` command."""
+    parser = argparse.ArgumentParser(
+        prog="cvdesign",
+        description="Design collective variables (CVs) for enhanced sampling from short "
+                    "unbiased trajectories of metastable states. Units: nm, rad, ps, kJ/mol.")
+    parser.add_argument("--version", action="version", version=f"cvdesign {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    p = sub.add_parser(
+        "suggest", help="rank compact linear CVs that separate the given states",
+        description="Build a pool of candidate descriptors, score each for how well it "
+                    "separates the states, search compact linear combinations (LDA) ranked "
+                    "by their separation on held-out trajectories, and write ranking.csv, "
+                    "ranking.json, scorecard.csv, summary.md and one spec file per suggestion "
+                    "(cv-01.json is rank 1).")
+    p.add_argument("--topology", required=True, metavar="TOP",
+                   help="topology file that mdtraj reads (PDB, GRO, PSF, PRMTOP, HDF5, ...); "
+                        "bonds are needed for angles and dihedrals")
+    p.add_argument("--state", nargs="+", action="append", required=True,
+                   metavar=("NAME", "FILE"),
+                   help="a state name followed by its trajectory files (any format mdtraj "
+                        "reads); repeat for each state, at least two states")
+    p.add_argument("--out", required=True, metavar="DIR",
+                   help="output directory; must not exist or be empty (see --force)")
+    _add_suggest_options(p)
+
+    p = sub.add_parser(
+        "apply", help="evaluate a spec on trajectories",
+        description="Evaluate the CV of a spec file frame by frame from coordinates alone "
+                    "(no refitting). Prints CSV with columns file, frame, time_ps, value.")
+    p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json) written by suggest")
+    p.add_argument("--topology", required=True, metavar="TOP",
+                   help="topology file; it must match the one the spec was made for")
+    p.add_argument("trajectories", nargs="+", metavar="TRAJ",
+                   help="trajectory files (any format mdtraj reads); coordinates in nm")
+    p.add_argument("--out", metavar="FILE.csv", default=None,
+                   help="write the CSV here instead of standard output")
+
+    p = sub.add_parser(
+        "demo", help="run suggest on the bundled demo data",
+        description="Run 'suggest' on the bundled demo (an invented flexible molecule with "
+                    "one slow torsion that opens and closes a contact) and say what to look at.")
+    p.add_argument("--out", default="cvdesign-demo", metavar="DIR",
+                   help="output directory (default: ./cvdesign-demo)")
+    p.add_argument("--force", action="store_true",
+                   help="replace the output directory if it exists and is not empty")
+    return parser
+
+
+def _progress(quiet):
+    if quiet:
+        return None
+    return lambda msg: print(f"cvdesign: {msg}", file=sys.stderr)
+
+
+def _run_suggest(topology, states, out, args, stream):
+    from .pipeline import CAUTION, prepare_output_dir, suggest
+    from .source import Source
+
+    prepare_output_dir(out, force=args.force)
+    names = [s[0] for s in states]
+    dup = sorted({n for n in names if names.count(n) > 1})
+    if dup:
+        raise InputError(f"state {dup[0]!r} is given twice; give each state once with all "
+                         "of its files")
+    source = Source(topology)
+    for entry in states:
+        name, files = entry[0], entry[1:]
+        if not files:
+            raise InputError(f"--state {name} has no trajectory files; use --state NAME FILE "
+                             "[FILE ...]")
+        for f in files:
+            source.add(f, state=name)
+    result = suggest(source, selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
+                     prefilter_stride=args.prefilter_stride, max_terms=args.max_terms,
+                     n_suggestions=args.suggestions, n_folds=args.folds,
+                     progress=_progress(args.quiet))
+    result.write(out, force=args.force)
+    if not args.quiet:
+        for note in result.notes:
+            print(f"  - {note}", file=stream)
+    print(result.top_table(5), file=stream)
+    print(f"\nwrote {len(result.specs)} spec files and the ranking to {out}/", file=stream)
+    print(f"caution: {CAUTION}", file=stream)
+    return result
+
+
+def _cmd_suggest(args):
+    _run_suggest(args.topology, args.state, args.out, args, sys.stdout)
+    return 0
+
+
+def _cmd_apply(args):
+    from ._io import atomic_open
+    from .source import Source
+    from .spec import load_spec
+
+    source = Source(args.topology)
+    spec = load_spec(args.spec, topology=source.topology)
+    for f in args.trajectories:
+        source.add(f, state="all")
+    if args.out is not None:
+        out = Path(args.out)
+        if out.is_dir():
+            raise InputError(f"--out {args.out!r} is a directory; give a file name")
+        if not out.resolve().parent.exists():
+            raise InputError(f"the directory of --out {args.out!r} does not exist")
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["file", "frame", "time_ps", "value"])
+    for chunk in source.iter_chunks():
+        traj = chunk.trajectory
+        values = spec.evaluate(traj.xyz, box=traj.unitcell_vectors)
+        name = source.segments[chunk.segment_index].path.name
+        for fr, t, v in zip(chunk.frames, traj.time, values):
+            w.writerow([name, int(fr), f"{float(t):.6g}", repr(float(v))])
+    if args.out is None:
+        sys.stdout.write(buf.getvalue())
+    else:
+        with atomic_open(args.out, "w", encoding="utf-8", newline="\n") as fh:
+            fh.write(buf.getvalue())
+        print(f"wrote {args.out}", file=sys.stderr)
+    return 0
+
+
+def demo_data_dir():
+    """Directory holding the bundled demo data (topology, trajectories, manifest.json)."""
+    try:
+        from importlib.resources import files
+
+        cand = Path(str(files("cvdesign.demo_data")))
+        if (cand / "manifest.json").exists():
+            return cand
+    except (ModuleNotFoundError, TypeError):
+        pass
+    cand = Path(__file__).resolve().parent.parent / "data"
+    if (cand / "manifest.json").exists():
+        return cand
+    raise InputError("the bundled demo data are missing; regenerate them with "
+                     "'python -m cvdesign.testbed.demo_data --out data' in the source tree")
+
+
+def _cmd_demo(args):
+    data = demo_data_dir()
+    manifest = json.loads((data / "manifest.json").read_text(encoding="utf-8"))
+    top = str(data / manifest["topology"]["file"])
+    states = [[name] + [str(data / f) for f in entry["files"]]
+              for name, entry in manifest["states"].items()]
+    ns = argparse.Namespace(select=None, kinds=("distance", "angle", "dihedral"), cutoff=1.0,
+                            prefilter_stride=10, max_terms=5, suggestions=10, folds=4,
+                            force=args.force, quiet=False)
+    print(f"cvdesign demo: {manifest['description']}\n", file=sys.stdout)
+    result = _run_suggest(top, states, args.out, ns, sys.stdout)
+    slow = manifest["slow_dihedral"]
+    slow_id = "dihedral:" + "-".join(str(a) for a in slow["atoms"])
+    in_rank1 = any(t["descriptor"] == slow_id for t in result.ranking[0]["terms"])
+    first = states[0][1]
+    print("\nWhat to look at:", file=sys.stdout)
+    print(f"  - {args.out}/summary.md: inputs, what was done, the top suggestions.",
+          file=sys.stdout)
+    print(f"  - the dihedral {'-'.join(slow['names'])} ({slow_id}) is slow by construction; "
+          f"rank 1 {'uses' if in_rank1 else 'does NOT use'} it.", file=sys.stdout)
+    print(f"  - {args.out}/scorecard.csv: every descriptor; fast torsions should score low.",
+          file=sys.stdout)
+    print(f"  - evaluate the rank-1 CV on a trajectory:\n      cvdesign apply {args.out}/cv-01.json "
+          f"--topology {top} {first}", file=sys.stdout)
+    return 0
+
+
+def main(argv=None):
+    """Run the ``cvdesign`` command; return its exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "demo": _cmd_demo}[args.command]
+    try:
+        return handler(args)
+    except CVDesignError as exc:
+        print(f"cvdesign {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("cvdesign: interrupted; no output was written", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

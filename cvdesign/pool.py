@@ -1,0 +1,518 @@
+"""Candidate descriptors: definitions, enumeration from a topology, features.
+
+A :class:`Descriptor` is data: a kind, 0-based atom indices, a stable id and a
+readable label. A :class:`Pool` is an ordered set of descriptors with the
+*features* they contribute to linear combinations: a distance or a bond angle
+contributes its value (nm, rad); a dihedral contributes the pair
+``(cos phi, sin phi)``, never the cut angle, so that a linear combination stays
+smooth across the +-pi boundary.
+
+Candidates come from an atom selection:
+
+* distances between every pair of selected atoms that are more than two bonds
+  apart (1-2 and 1-3 pairs are nearly rigid, or an angle in disguise), kept
+  when the pair's mean distance is below a cutoff in at least one state
+  (:func:`prefilter_distances`);
+* bond angles over every bonded triple of selected atoms;
+* one dihedral per rotatable bond: a bond between selected atoms that both
+  have another selected neighbour and that is not in a ring (a bridge of the
+  bond graph), with the lowest-index outer neighbours.
+"""
+
+from dataclasses import dataclass
+
+import mdtraj as md
+import networkx as nx
+import numpy as np
+
+from .errors import InputError
+
+__all__ = [
+    "Descriptor",
+    "Pool",
+    "KINDS",
+    "atom_label",
+    "candidate_pool",
+    "candidate_pairs",
+    "prefilter_pairs",
+    "build_pool",
+]
+
+#: Descriptor kinds and the number of atoms each takes.
+KINDS = {"distance": 2, "angle": 3, "dihedral": 4}
+_SHORT = {"distance": "dist", "angle": "angle", "dihedral": "dihedral"}
+
+
+def atom_label(topology, index, *, with_residue=True):
+    """Readable atom label ``RESNAME<resSeq>:ATOMNAME`` (chain prefixed when several).
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); ch = top.add_chain(); r = top.add_residue("LYS", ch, 12)
+    >>> _ = top.add_atom("CA", md.element.carbon, r)
+    >>> atom_label(top, 0)
+    'LYS12:CA'
+    """
+    atom = topology.atom(int(index))
+    if not with_residue:
+        return atom.name
+    res = atom.residue
+    prefix = ""
+    if topology.n_chains > 1:
+        chain = res.chain
+        cid = getattr(chain, "chain_id", None) or str(chain.index)
+        prefix = f"{cid}/"
+    return f"{prefix}{res.name}{res.resSeq}:{atom.name}"
+
+
+@dataclass(frozen=True)
+class Descriptor:
+    """One candidate descriptor.
+
+    Attributes
+    ----------
+    kind : {'distance', 'angle', 'dihedral'}
+    atoms : tuple of int
+        0-based atom indices (2, 3 or 4 of them).
+    label : str
+        Readable label, e.g. ``'dist LYS12:CA-GLU150:CD'``.
+
+    Examples
+    --------
+    >>> d = Descriptor("distance", (3, 10), "dist X1:A-X1:B")
+    >>> d.id, d.periodic, d.transforms
+    ('distance:3-10', False, ('identity',))
+    """
+
+    kind: str
+    atoms: tuple
+    label: str
+
+    def __post_init__(self):
+        if self.kind not in KINDS:
+            raise InputError(f"unknown descriptor kind {self.kind!r}; use one of {sorted(KINDS)}")
+        if len(self.atoms) != KINDS[self.kind]:
+            raise InputError(
+                f"a {self.kind} takes {KINDS[self.kind]} atoms; got {len(self.atoms)}"
+            )
+
+    @property
+    def id(self):
+        """str : stable id, ``kind:i-j[-k[-l]]`` with 0-based atom indices."""
+        return f"{self.kind}:" + "-".join(str(int(a)) for a in self.atoms)
+
+    @property
+    def periodic(self):
+        """bool : True for dihedrals (period 2 pi rad)."""
+        return self.kind == "dihedral"
+
+    @property
+    def transforms(self):
+        """tuple of str : the features this descriptor contributes."""
+        return ("cos", "sin") if self.kind == "dihedral" else ("identity",)
+
+    @property
+    def unit(self):
+        """str : unit of the descriptor's value."""
+        return "nm" if self.kind == "distance" else "rad"
+
+
+def _make(kind, atoms, topology, labels=None):
+    if labels is None:
+        names = [atom_label(topology, a) for a in atoms]
+    else:
+        names = [labels[int(a)] for a in atoms]
+    # Shorten repeated residue prefixes: 'LCH1:C2-LCH1:C3' -> 'LCH1:C2-C3'.
+    parts = [names[0]]
+    for prev, cur in zip(names, names[1:]):
+        rp, rc = prev.rsplit(":", 1)[0], cur.rsplit(":", 1)[0]
+        parts.append(cur.rsplit(":", 1)[1] if rp == rc else cur)
+    return Descriptor(kind, tuple(int(a) for a in atoms), f"{_SHORT[kind]} " + "-".join(parts))
+
+
+class Pool:
+    """An ordered set of descriptors and the features they contribute.
+
+    Parameters
+    ----------
+    descriptors : sequence of Descriptor
+    topology : mdtraj.Topology
+        Topology the atom indices refer to.
+
+    Attributes
+    ----------
+    descriptors : list of Descriptor
+    feature_descriptor : ndarray of shape (n_features,), dtype int
+        Index of the descriptor each feature comes from.
+    feature_transform : list of str
+        ``'identity'``, ``'cos'`` or ``'sin'`` for each feature.
+    notes : list of str
+        What was done while building the pool (counts kept and dropped).
+
+    Examples
+    --------
+    >>> import mdtraj as md, numpy as np
+    >>> top = md.Topology(); ch = top.add_chain(); r = top.add_residue("X", ch, 1)
+    >>> for i in range(4):
+    ...     _ = top.add_atom(f"C{i}", md.element.carbon, r)
+    >>> pool = Pool([Descriptor("distance", (0, 3), "d"),
+    ...              Descriptor("dihedral", (0, 1, 2, 3), "t")], top)
+    >>> pool.n_features, pool.feature_transform
+    (3, ['identity', 'cos', 'sin'])
+    >>> xyz = np.array([[[1, 0, 0], [0, 0, 0], [0, 1, 0], [1, 1, 0]]], float)
+    >>> np.round(pool.features(md.Trajectory(xyz, top)), 6).tolist()
+    [[1.0, 1.0, 0.0]]
+    """
+
+    def __init__(self, descriptors, topology, *, notes=None):
+        self.descriptors = list(descriptors)
+        self.topology = topology
+        self.notes = list(notes or [])
+        ids = [d.id for d in self.descriptors]
+        if len(set(ids)) != len(ids):
+            raise InputError("a pool must not hold the same descriptor twice")
+        fd, ft = [], []
+        for i, d in enumerate(self.descriptors):
+            for t in d.transforms:
+                fd.append(i)
+                ft.append(t)
+        self.feature_descriptor = np.array(fd, dtype=np.intp)
+        self.feature_transform = ft
+        self._index = {kind: [i for i, d in enumerate(self.descriptors) if d.kind == kind]
+                       for kind in KINDS}
+        self._atoms = {kind: np.array([self.descriptors[i].atoms for i in idx], dtype=np.intp)
+                       .reshape(-1, KINDS[kind]) for kind, idx in self._index.items()}
+
+    def __len__(self):
+        return len(self.descriptors)
+
+    @property
+    def n_features(self):
+        """int : number of features."""
+        return int(self.feature_descriptor.shape[0])
+
+    def feature_labels(self):
+        """Readable feature labels, e.g. ``'cos(dihedral X1:A-B-C-D)'``."""
+        out = []
+        for i, t in zip(self.feature_descriptor, self.feature_transform):
+            lab = self.descriptors[i].label
+            out.append(lab if t == "identity" else f"{t}({lab})")
+        return out
+
+    def features_of(self, descriptor_indices):
+        """Feature indices belonging to the given descriptors, in pool order."""
+        want = np.zeros(len(self.descriptors), dtype=bool)
+        want[np.asarray(descriptor_indices, dtype=np.intp)] = True
+        return np.flatnonzero(want[self.feature_descriptor])
+
+    def subset(self, descriptor_indices):
+        """A new pool with the given descriptors, in the given order."""
+        return Pool([self.descriptors[int(i)] for i in descriptor_indices], self.topology,
+                    notes=self.notes)
+
+    def atom_indices(self):
+        """Sorted indices of every atom any descriptor uses."""
+        if not self.descriptors:
+            return np.zeros(0, dtype=np.intp)
+        return np.unique(np.concatenate([np.asarray(d.atoms) for d in self.descriptors]))
+
+    def features(self, trajectory, *, atom_indices=None):
+        """Feature values of every frame, through mdtraj's geometry.
+
+        Distances use the minimum image when the trajectory has a unit cell.
+
+        Parameters
+        ----------
+        trajectory : mdtraj.Trajectory
+        atom_indices : array-like of int, default=None
+            When the trajectory holds only a subset of the atoms (as loaded
+            with ``Source.iter_chunks(atom_indices=...)``), the original
+            indices of its atoms, in order.
+
+        Returns
+        -------
+        ndarray of shape (n_frames, n_features), float64
+            Distances in nm, angles in rad, cos and sin of dihedrals.
+        """
+        n = trajectory.n_frames
+        out = np.empty((n, self.n_features), dtype=np.float64)
+        if atom_indices is not None:
+            remap = np.full(int(np.max(atom_indices)) + 1, -1, dtype=np.intp)
+            remap[np.asarray(atom_indices, dtype=np.intp)] = np.arange(len(atom_indices))
+        periodic = trajectory.unitcell_vectors is not None
+        col = np.zeros(len(self.descriptors), dtype=np.intp)
+        first_feature = np.searchsorted(self.feature_descriptor, np.arange(len(self.descriptors)))
+        col[:] = first_feature
+        for kind, idx in self._index.items():
+            if not idx:
+                continue
+            atoms = self._atoms[kind]
+            if atom_indices is not None:
+                atoms = remap[atoms]
+                if np.any(atoms < 0):
+                    raise InputError("the trajectory chunk lacks atoms that the pool uses")
+            if kind == "distance":
+                vals = md.compute_distances(trajectory, atoms, periodic=periodic)
+                out[:, col[idx]] = vals
+            elif kind == "angle":
+                vals = md.compute_angles(trajectory, atoms, periodic=periodic)
+                out[:, col[idx]] = vals
+            else:
+                vals = md.compute_dihedrals(trajectory, atoms, periodic=periodic)
+                vals = vals.astype(np.float64)
+                out[:, col[idx]] = np.cos(vals)
+                out[:, col[idx] + 1] = np.sin(vals)
+        return out
+
+
+def _bond_graph(topology, atoms):
+    graph = nx.Graph()
+    graph.add_nodes_from(int(a) for a in atoms)
+    sel = set(int(a) for a in atoms)
+    for bond in topology.bonds:
+        a, b = bond[0].index, bond[1].index
+        if a in sel and b in sel and a != b:
+            graph.add_edge(a, b)
+    return graph
+
+
+def _check_kinds(kinds):
+    kinds = tuple(kinds)
+    bad = [k for k in kinds if k not in KINDS]
+    if bad or not kinds:
+        raise InputError(
+            f"unknown descriptor kinds {bad!r}; use a comma-separated subset of "
+            f"{', '.join(KINDS)}"
+        )
+    return kinds
+
+
+def candidate_pairs(topology, atoms):
+    """Pairs of selected atoms more than two bonds apart.
+
+    Parameters
+    ----------
+    topology : mdtraj.Topology
+    atoms : array-like of int
+        Selected atom indices.
+
+    Returns
+    -------
+    pairs : ndarray of shape (n_pairs, 2), dtype int
+        Sorted pairs ``i < j``, in lexicographic order.
+    note : str or None
+        How many bonded (1-2) and 1-3 pairs were left out.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); ch = top.add_chain(); r = top.add_residue("X", ch, 1)
+    >>> a = [top.add_atom(f"C{i}", md.element.carbon, r) for i in range(4)]
+    >>> for i in range(3):
+    ...     top.add_bond(a[i], a[i + 1])
+    >>> candidate_pairs(top, range(4))[0].tolist()
+    [[0, 3]]
+    """
+    atoms = np.unique(np.asarray(atoms, dtype=np.intp))
+    n = atoms.size
+    ii, jj = np.triu_indices(n, k=1)
+    pairs = np.stack([atoms[ii], atoms[jj]], axis=1)
+    graph = _bond_graph(topology, atoms)
+    if not graph.number_of_edges():
+        return pairs, None
+    close = []
+    for a in graph.nodes:
+        for b in nx.single_source_shortest_path_length(graph, a, cutoff=2):
+            if a < b:
+                close.append((a, b))
+    if not close:
+        return pairs, None
+    width = int(topology.n_atoms) + 1
+    codes = pairs[:, 0].astype(np.int64) * width + pairs[:, 1]
+    close = np.array(close, dtype=np.int64)
+    drop = np.isin(codes, close[:, 0] * width + close[:, 1])
+    note = (f"distances: {int(drop.sum())} pairs within two bonds left out "
+            "(bonds and 1-3 pairs are nearly rigid)")
+    return pairs[~drop], note
+
+
+def candidate_pool(topology, atoms, kinds=("distance", "angle", "dihedral"), *, pairs=None):
+    """Enumerate candidate descriptors over the selected atoms.
+
+    Parameters
+    ----------
+    topology : mdtraj.Topology
+    atoms : array-like of int
+        Selected atom indices (see :func:`cvdesign.source.select_atoms`).
+    kinds : sequence of {'distance', 'angle', 'dihedral'}
+        Kinds to enumerate.
+    pairs : ndarray of shape (n_pairs, 2), default=None
+        Distance pairs to use (e.g. after :func:`prefilter_pairs`); None uses
+        every pair from :func:`candidate_pairs`.
+
+    Returns
+    -------
+    Pool
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); ch = top.add_chain(); r = top.add_residue("X", ch, 1)
+    >>> a = [top.add_atom(f"C{i}", md.element.carbon, r) for i in range(5)]
+    >>> for i in range(4):
+    ...     top.add_bond(a[i], a[i + 1])
+    >>> pool = candidate_pool(top, range(5))
+    >>> [d.id for d in pool.descriptors if d.kind != "distance"]
+    ['angle:0-1-2', 'angle:1-2-3', 'angle:2-3-4', 'dihedral:0-1-2-3', 'dihedral:1-2-3-4']
+    >>> [d.id for d in pool.descriptors if d.kind == "distance"]
+    ['distance:0-3', 'distance:0-4', 'distance:1-4']
+    >>> pool.descriptors[-1].label
+    'dihedral X1:C1-C2-C3-C4'
+    """
+    kinds = _check_kinds(kinds)
+    atoms = np.unique(np.asarray(atoms, dtype=np.intp))
+    graph = _bond_graph(topology, atoms)
+    labels = {int(a): atom_label(topology, a) for a in atoms}
+    notes = []
+    out = []
+    if "distance" in kinds:
+        if pairs is None:
+            pairs, note = candidate_pairs(topology, atoms)
+            if note:
+                notes.append(note)
+        out.extend(_make("distance", p, topology, labels) for p in np.asarray(pairs))
+    if ("angle" in kinds or "dihedral" in kinds) and graph.number_of_edges() == 0:
+        notes.append(
+            "angles and dihedrals: the topology has no bonds between the selected atoms, "
+            "so none were enumerated (give a topology with bonds: PDB with CONECT records, "
+            "PSF, PRMTOP or HDF5)"
+        )
+    if "angle" in kinds:
+        for b in sorted(graph.nodes):
+            nbrs = sorted(graph.neighbors(b))
+            for i, a in enumerate(nbrs):
+                for c in nbrs[i + 1:]:
+                    out.append(_make("angle", (a, b, c), topology, labels))
+    if "dihedral" in kinds and graph.number_of_edges():
+        bridges = {tuple(sorted(e)) for e in nx.bridges(graph)}
+        for b, c in sorted(tuple(sorted(e)) for e in graph.edges):
+            if (b, c) not in bridges:
+                continue  # a bond in a ring does not rotate freely
+            nb = sorted(x for x in graph.neighbors(b) if x != c)
+            nc = sorted(x for x in graph.neighbors(c) if x != b)
+            if nb and nc:
+                out.append(_make("dihedral", (nb[0], b, c, nc[0]), topology, labels))
+    order = {k: i for i, k in enumerate(KINDS)}
+    out.sort(key=lambda d: (order[d.kind], d.atoms))
+    return Pool(out, topology, notes=notes)
+
+
+def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_pairs_per_block=200_000):
+    """Keep a pair if its mean distance over some state is below `cutoff`.
+
+    The means are taken over every `stride`-th frame of each file, which keeps
+    this pass cheap.
+
+    Parameters
+    ----------
+    pairs : ndarray of shape (n_pairs, 2), dtype int
+    source : cvdesign.source.Source
+    cutoff : float
+        Distance cutoff, in nm. ``inf`` keeps every pair (and reads nothing).
+    stride : int, default=10
+        Read every `stride`-th frame.
+    max_pairs_per_block : int, default=200000
+        Distances evaluated at once (bounds memory).
+
+    Returns
+    -------
+    kept : ndarray of shape (n_kept, 2), dtype int
+    note : str
+        How many pairs were kept and dropped, and on how many frames.
+
+    Raises
+    ------
+    InputError
+        When a state has no frames.
+    """
+    if not cutoff > 0:
+        raise InputError(f"cutoff={cutoff!r} nm must be positive")
+    pairs = np.asarray(pairs, dtype=np.intp).reshape(-1, 2)
+    if pairs.shape[0] == 0 or not np.isfinite(cutoff):
+        return pairs, f"distances: kept all {pairs.shape[0]} pairs (no cutoff)"
+    atoms = np.unique(pairs)
+    remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
+    remap[atoms] = np.arange(atoms.size)
+    local = remap[pairs]
+    sums = np.zeros((source.n_states, pairs.shape[0]))
+    counts = np.zeros(source.n_states)
+    for chunk in source.iter_chunks(atom_indices=atoms, stride=stride):
+        traj = chunk.trajectory
+        periodic = traj.unitcell_vectors is not None
+        for s in np.unique(chunk.states):
+            sub = traj[np.flatnonzero(chunk.states == s)]
+            counts[s] += sub.n_frames
+            for lo in range(0, len(local), max_pairs_per_block):
+                block = local[lo:lo + max_pairs_per_block]
+                d = md.compute_distances(sub, block, periodic=periodic)
+                sums[s, lo:lo + len(block)] += d.sum(axis=0, dtype=np.float64)
+    empty = [source.states[s] for s in range(source.n_states) if counts[s] == 0]
+    if empty:
+        raise InputError(
+            f"state(s) {', '.join(map(repr, empty))} have no frames; "
+            "check the files and frame ranges given for them"
+        )
+    means = sums / counts[:, None]
+    keep = (means < cutoff).any(axis=0)
+    note = (
+        f"distances: kept {int(keep.sum())} of {pairs.shape[0]} pairs with a mean below "
+        f"{cutoff:g} nm in at least one state, dropped {int((~keep).sum())} "
+        f"(means over every {stride}th frame of each file, {int(counts.sum())} frames)"
+    )
+    return pairs[keep], note
+
+
+def build_pool(source, *, selection=None, kinds=("distance", "angle", "dihedral"),
+               cutoff=1.0, stride=10):
+    """Candidate pool for a source: select atoms, enumerate, prefilter distances.
+
+    Parameters
+    ----------
+    source : cvdesign.source.Source
+    selection : str, default=None
+        mdtraj selection; None selects the solute's heavy atoms.
+    kinds : sequence of str, default=('distance', 'angle', 'dihedral')
+    cutoff : float, default=1.0
+        Distance prefilter cutoff, in nm (``inf``: keep every pair).
+    stride : int, default=10
+        Frame stride of the prefilter pass.
+
+    Returns
+    -------
+    Pool
+        With ``notes`` describing what was kept and dropped.
+    """
+    from .source import select_atoms
+
+    kinds = _check_kinds(kinds)
+    atoms = select_atoms(source.topology, selection)
+    notes = [f"selection: {atoms.size} atoms"]
+    pairs = None
+    if "distance" in kinds:
+        pairs, note = candidate_pairs(source.topology, atoms)
+        if note:
+            notes.append(note)
+        pairs, note = prefilter_pairs(pairs, source, cutoff=cutoff, stride=stride)
+        notes.append(note)
+    pool = candidate_pool(source.topology, atoms, kinds, pairs=pairs)
+    counts = {k: sum(d.kind == k for d in pool.descriptors) for k in kinds}
+    notes += pool.notes
+    notes.append("pool: " + ", ".join(f"{n} {k}s" for k, n in counts.items()))
+    if not pool.descriptors:
+        raise InputError(
+            "the pool is empty: no descriptor of the requested kinds "
+            f"({', '.join(kinds)}) could be built from the selection; widen --select, "
+            "raise --cutoff or add kinds"
+        )
+    return Pool(pool.descriptors, pool.topology, notes=notes)

@@ -1,0 +1,430 @@
+"""Reading a topology and trajectories, grouped by metastable state, in chunks.
+
+A :class:`Source` is a topology plus a list of *segments*: a trajectory file
+with the state its frames belong to (a whole file, a frame range of it, or a
+per-frame label array). Frames are read with :func:`mdtraj.iterload`, one chunk
+at a time, so memory does not grow with trajectory length. Any format mdtraj
+reads works (XTC, DCD, TRR, NetCDF, HDF5, PDB, ...).
+"""
+
+import hashlib
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import mdtraj as md
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "file_sha256"]
+
+#: Residue names treated as monatomic ions when choosing the default solute.
+_ION_NAMES = {
+    "NA", "NA+", "SOD", "K", "K+", "POT", "CL", "CL-", "CLA", "MG", "MG2", "CA2",
+    "CAL", "ZN", "ZN2", "LI", "RB", "CS", "F", "BR", "I", "IOD", "CES",
+}
+
+
+def _check_file(path, what):
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{what} file {str(path)!r} does not exist; check the path")
+    if not path.is_file():
+        raise InputError(f"{what} {str(path)!r} is not a regular file")
+    return path
+
+
+def load_topology(path):
+    """Load a topology with mdtraj, with a clear error on failure.
+
+    Parameters
+    ----------
+    path : str or path-like or mdtraj.Topology
+        Any file mdtraj reads a topology from (PDB, GRO, PSF, PRMTOP, HDF5, ...).
+        A :class:`mdtraj.Topology` is returned unchanged.
+
+    Returns
+    -------
+    mdtraj.Topology
+    """
+    if isinstance(path, md.Topology):
+        return path
+    path = _check_file(path, "topology")
+    try:
+        return md.load_topology(str(path))
+    except Exception as exc:  # mdtraj raises many kinds; report them in one way
+        raise InputError(f"cannot read topology {str(path)!r}: {exc}") from exc
+
+
+def select_atoms(topology, selection=None):
+    """Indices of the atoms a pool is built from.
+
+    Parameters
+    ----------
+    topology : mdtraj.Topology
+    selection : str, default=None
+        An mdtraj selection string (e.g. ``"name CA"``, ``"resid 10 to 40 and
+        not element H"``). None selects the heavy atoms of the solute: every
+        atom that is not hydrogen, not water and not a monatomic ion.
+
+    Returns
+    -------
+    ndarray of shape (n_selected,), dtype int
+        Sorted 0-based atom indices.
+
+    Raises
+    ------
+    InputError
+        When the selection is invalid or matches no atoms.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); ch = top.add_chain(); r = top.add_residue("LIG", ch)
+    >>> for name, el in [("C1", "carbon"), ("H1", "hydrogen"), ("O1", "oxygen")]:
+    ...     _ = top.add_atom(name, md.element.get_by_symbol(el[0].upper()), r)
+    >>> select_atoms(top).tolist()
+    [0, 2]
+    """
+    if selection is None:
+        keep = []
+        for residue in topology.residues:
+            if residue.is_water:
+                continue
+            if residue.n_atoms == 1 and residue.name.upper() in _ION_NAMES:
+                continue
+            for atom in residue.atoms:
+                if atom.element is not None and atom.element.symbol == "H":
+                    continue
+                if atom.element is None and atom.name.upper().startswith("H"):
+                    continue
+                keep.append(atom.index)
+        idx = np.array(sorted(keep), dtype=np.intp)
+        what = "the default selection (heavy atoms of the solute)"
+    else:
+        try:
+            idx = np.asarray(topology.select(selection), dtype=np.intp)
+        except Exception as exc:
+            raise InputError(f"invalid atom selection {selection!r}: {exc}") from exc
+        what = f"selection {selection!r}"
+    if idx.size == 0:
+        raise InputError(
+            f"{what} matches no atoms in a topology of {topology.n_atoms} atoms; "
+            "check the atom and residue names (mdtraj selection syntax)"
+        )
+    return np.unique(idx)
+
+
+def file_sha256(path, block=1 << 20):
+    """SHA-256 hex digest of a file, read in blocks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while chunk := fh.read(block):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+@dataclass(frozen=True)
+class Segment:
+    """Frames of one trajectory file assigned to states.
+
+    Attributes
+    ----------
+    path : pathlib.Path
+        Trajectory file.
+    state : str or None
+        State of every frame of the segment; None when `labels` is given.
+    start, stop : int or None
+        Frame range ``[start, stop)`` of the file (None: from the first / to the last).
+    labels : ndarray of shape (n_frames,) or None
+        Per-frame state names for the whole file; frames labelled None or
+        ``""`` are skipped.
+    """
+
+    path: Path
+    state: str | None = None
+    start: int | None = None
+    stop: int | None = None
+    labels: np.ndarray | None = field(default=None, compare=False)
+
+
+@dataclass
+class Chunk:
+    """A block of consecutive frames of one file.
+
+    Attributes
+    ----------
+    segment_index : int
+        Index of the segment in :attr:`Source.segments`.
+    trajectory : mdtraj.Trajectory
+        The frames (all atoms, or the requested subset).
+    frames : ndarray of shape (n,), dtype int
+        0-based frame numbers within the file.
+    states : ndarray of shape (n,), dtype int
+        State index of each frame (into :attr:`Source.states`).
+    """
+
+    segment_index: int
+    trajectory: md.Trajectory
+    frames: np.ndarray
+    states: np.ndarray
+
+
+class Source:
+    """A topology and trajectory files, grouped by state, read in chunks.
+
+    Parameters
+    ----------
+    topology : str or path-like or mdtraj.Topology
+        Topology file (or a loaded topology).
+    chunk_size : int, default=500
+        Frames read at a time.
+
+    Examples
+    --------
+    Two files per state from the Python API (the command line does the same
+    with ``--state NAME FILE ...``)::
+
+        src = Source.from_states("mol.pdb", {"closed": ["c1.xtc", "c2.xtc"],
+                                              "open": ["o1.xtc", "o2.xtc"]})
+
+    One trajectory with a per-frame label array::
+
+        src = Source.from_labels("mol.pdb", "run.xtc", labels)
+    """
+
+    def __init__(self, topology, *, chunk_size=500):
+        self.topology_path = None if isinstance(topology, md.Topology) else str(topology)
+        self.topology = load_topology(topology)
+        if int(chunk_size) < 1:
+            raise InputError(f"chunk_size={chunk_size!r} must be a positive number of frames")
+        self.chunk_size = int(chunk_size)
+        self.segments = []
+        self.states = []
+        self._checked = {}
+
+    # ------------------------------------------------------------------ building
+    @classmethod
+    def from_states(cls, topology, states, **kwargs):
+        """Build a source from ``{state name: [trajectory files]}``.
+
+        Parameters
+        ----------
+        topology : str or path-like or mdtraj.Topology
+        states : mapping of str to sequence of path-like
+            Files of each state, in the order the states should be reported.
+        **kwargs
+            Passed to the constructor.
+        """
+        src = cls(topology, **kwargs)
+        for name, files in states.items():
+            if isinstance(files, (str, os.PathLike)):
+                files = [files]
+            if len(files) == 0:
+                raise InputError(f"state {name!r} has no trajectory files; give at least one")
+            for f in files:
+                src.add(f, state=name)
+        return src
+
+    @classmethod
+    def from_labels(cls, topology, trajectory, labels, **kwargs):
+        """Build a source from one trajectory and a per-frame array of state names.
+
+        Parameters
+        ----------
+        topology : str or path-like or mdtraj.Topology
+        trajectory : path-like
+            Trajectory file.
+        labels : array-like of shape (n_frames,)
+            State name (or integer code) of every frame of `trajectory`; frames
+            labelled None or ``""`` are skipped.
+        """
+        src = cls(topology, **kwargs)
+        src.add_labelled(trajectory, labels)
+        return src
+
+    def _add_state(self, name):
+        name = str(name)
+        if not name:
+            raise InputError("a state name must not be empty")
+        if name not in self.states:
+            self.states.append(name)
+
+    def add(self, path, state, *, frames=None):
+        """Add a trajectory file (or a frame range of it) belonging to one state.
+
+        Parameters
+        ----------
+        path : path-like
+            Trajectory file.
+        state : str
+            State name.
+        frames : tuple of (int or None, int or None), default=None
+            Frame range ``(start, stop)`` in 0-based frames, stop excluded.
+        """
+        path = self._check_trajectory(path)
+        start = stop = None
+        if frames is not None:
+            start, stop = frames
+            if (start is not None and start < 0) or (
+                stop is not None and start is not None and stop <= start
+            ):
+                raise InputError(
+                    f"frame range {frames!r} for {str(path)!r} is empty or negative; "
+                    "give (start, stop) with 0 <= start < stop"
+                )
+        self._add_state(state)
+        self.segments.append(Segment(path, str(state), start, stop))
+        return self
+
+    def add_labelled(self, path, labels):
+        """Add a trajectory file with a per-frame array of state names."""
+        path = self._check_trajectory(path)
+        labels = np.asarray(labels, dtype=object).reshape(-1)
+        names = []
+        for lab in labels:
+            if lab is None or lab == "":
+                continue
+            lab = str(lab)
+            if lab not in names:
+                names.append(lab)
+        if not names:
+            raise InputError(f"labels for {str(path)!r} name no state; every frame is unlabelled")
+        for n in sorted(names):
+            self._add_state(n)
+        self.segments.append(
+            Segment(path, None, None, None, np.array([None if x in (None, "") else str(x)
+                                                      for x in labels], dtype=object))
+        )
+        return self
+
+    def _check_trajectory(self, path):
+        path = _check_file(path, "trajectory")
+        key = str(path)
+        if key in self._checked:
+            return path
+        try:
+            first = md.load_frame(str(path), 0, top=self.topology)
+        except Exception as exc:
+            n_file = _atoms_in_file(path)
+            if n_file is not None and n_file != self.topology.n_atoms:
+                raise InputError(
+                    f"trajectory {str(path)!r} has {n_file} atoms but the topology"
+                    f"{' ' + repr(self.topology_path) if self.topology_path else ''} has "
+                    f"{self.topology.n_atoms}; give the topology the trajectory was written with"
+                ) from exc
+            raise InputError(f"cannot read trajectory {str(path)!r}: {exc}") from exc
+        if first.n_atoms != self.topology.n_atoms:
+            raise InputError(
+                f"trajectory {str(path)!r} has {first.n_atoms} atoms but the topology has "
+                f"{self.topology.n_atoms}; give the topology the trajectory was written with"
+            )
+        self._checked[key] = True
+        return path
+
+    # ------------------------------------------------------------------ reading
+    @property
+    def n_states(self):
+        """int : number of states."""
+        return len(self.states)
+
+    def files(self):
+        """Distinct trajectory files, in the order first added."""
+        seen = []
+        for s in self.segments:
+            if s.path not in seen:
+                seen.append(s.path)
+        return seen
+
+    def iter_chunks(self, *, atom_indices=None, stride=1, chunk_size=None):
+        """Yield :class:`Chunk` objects over every segment, in order.
+
+        Parameters
+        ----------
+        atom_indices : array-like of int, default=None
+            Load only these atoms (the trajectory in each chunk then has
+            ``len(atom_indices)`` atoms, in this order).
+        stride : int, default=1
+            Read every `stride`-th frame of each file.
+        chunk_size : int, default=None
+            Frames per chunk (default: the source's ``chunk_size``).
+
+        Yields
+        ------
+        Chunk
+        """
+        state_index = {s: i for i, s in enumerate(self.states)}
+        stride = int(stride)
+        for si, seg in enumerate(self.segments):
+            kwargs = {"top": self.topology, "chunk": int(chunk_size or self.chunk_size),
+                      "stride": stride}
+            if atom_indices is not None:
+                kwargs["atom_indices"] = np.asarray(atom_indices, dtype=np.intp)
+            frame0 = 0
+            n_seen = 0
+            try:
+                iterator = md.iterload(str(seg.path), **kwargs)
+                for traj in iterator:
+                    n = traj.n_frames
+                    frames = frame0 + stride * np.arange(n)
+                    frame0 += stride * n
+                    n_seen = frames[-1] + 1 if n else n_seen
+                    mask = np.ones(n, dtype=bool)
+                    if seg.start is not None:
+                        mask &= frames >= seg.start
+                    if seg.stop is not None:
+                        mask &= frames < seg.stop
+                    if seg.labels is not None:
+                        if frames.size and frames[-1] >= seg.labels.shape[0]:
+                            raise InputError(
+                                f"trajectory {str(seg.path)!r} has more frames than its "
+                                f"{seg.labels.shape[0]} labels; give one label per frame"
+                            )
+                        labs = seg.labels[frames]
+                        mask &= np.array([x is not None for x in labs], dtype=bool)
+                        codes = np.array(
+                            [state_index[x] if x is not None else -1 for x in labs], dtype=np.intp
+                        )
+                    else:
+                        codes = np.full(n, state_index[seg.state], dtype=np.intp)
+                    if not mask.any():
+                        if seg.stop is not None and frames.size and frames[0] >= seg.stop:
+                            break
+                        continue
+                    sel = np.flatnonzero(mask)
+                    sub = traj if sel.size == n else traj[sel]
+                    yield Chunk(si, sub, frames[sel], codes[sel])
+            except InputError:
+                raise
+            except Exception as exc:
+                raise InputError(f"error while reading trajectory {str(seg.path)!r}: {exc}") from exc
+            if seg.labels is not None and stride == 1 and n_seen != seg.labels.shape[0]:
+                raise InputError(
+                    f"trajectory {str(seg.path)!r} has {n_seen} frames but "
+                    f"{seg.labels.shape[0]} labels were given; give one label per frame"
+                )
+
+    def timestep(self, segment_index):
+        """Time between the first two frames of a segment's file, in ps (None if unknown)."""
+        seg = self.segments[segment_index]
+        try:
+            first = next(md.iterload(str(seg.path), top=self.topology, chunk=2, atom_indices=[0]))
+        except Exception:
+            return None
+        if first.n_frames < 2:
+            return None
+        return float(first.time[1] - first.time[0])
+
+
+def _atoms_in_file(path):
+    """Atom count stored in a trajectory file, or None if it cannot be found."""
+    try:
+        with md.open(str(path)) as fh:
+            out = fh.read(1) if not hasattr(fh, "read_as_traj") else None
+            if out is None:
+                out = fh.read(n_frames=1)
+            xyz = out[0] if isinstance(out, tuple) else out
+            return int(np.asarray(xyz).shape[1])
+    except Exception:
+        return None

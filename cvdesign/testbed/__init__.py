@@ -1,0 +1,41 @@
+"""Testbed: a small Langevin engine and invented toy molecules with known answers.
+
+Used for demo data, for tests whose right answer is known by construction, and
+(later) for checking a collective variable under bias.
+
+Examples
+--------
+>>> from cvdesign.testbed import latch, BAOABIntegrator
+>>> system = latch()
+>>> integ = BAOABIntegrator(system.force_field, system.masses, temperature=300.0,
+...                         friction=1.0, timestep=0.002, seed=0)
+>>> xyz, times = integ.run(system.states["closed"], 100, report_interval=50)
+>>> xyz.shape, str(system.assign_state(xyz[-1]))
+((2, 12, 3), 'closed')
+"""
+
+from .forcefield import ToyForceField, dihedral_angles, pairs_beyond
+from .langevin import BOLTZMANN, BAOABIntegrator
+from .toys import ToySystem, latch
+
+__all__ = [
+    "BAOABIntegrator",
+    "BOLTZMANN",
+    "ToyForceField",
+    "ToySystem",
+    "dihedral_angles",
+    "generate",
+    "latch",
+    "pairs_beyond",
+    "write_pdb",
+]
+
+
+def __getattr__(name):
+    # demo_data is imported on first use, so that
+    # ``python -m cvdesign.testbed.demo_data`` does not import it twice.
+    if name in ("generate", "write_pdb"):
+        from . import demo_data
+
+        return getattr(demo_data, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -1,0 +1,150 @@
+"""The cvdesign command end to end, and its errors on bad input."""
+
+import csv
+import json
+import subprocess
+import sys
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign.cli import main
+
+
+def _suggest_args(demo_files, out, *extra, states=None):
+    top, all_states = demo_files
+    states = all_states if states is None else states
+    args = ["suggest", "--topology", top]
+    for name, files in states.items():
+        args += ["--state", name, *files]
+    return args + ["--out", str(out), "--max-terms", "2", "--suggestions", "3", *extra]
+
+
+def test_suggest_then_apply_end_to_end(demo_files, tmp_path, capsys):
+    out = tmp_path / "out"
+    assert main(_suggest_args(demo_files, out)) == 0
+    printed = capsys.readouterr().out
+    assert "rank" in printed and "cv-01.json" in printed and "caution" in printed
+    assert {p.name for p in out.iterdir()} >= {"ranking.csv", "ranking.json", "scorecard.csv",
+                                              "summary.md", "cv-01.json"}
+    ranking = json.loads((out / "ranking.json").read_text())["ranking"]
+    assert ranking[0]["spec"] == "cv-01.json"
+    assert ranking[0]["terms"][0]["atoms"]
+    top, states = demo_files
+    csv_out = tmp_path / "values.csv"
+    assert main(["apply", str(out / "cv-01.json"), "--topology", top, states["closed"][0],
+                 states["open"][0], "--out", str(csv_out)]) == 0
+    rows = list(csv.DictReader(csv_out.open()))
+    assert list(rows[0]) == ["file", "frame", "time_ps", "value"]
+    spec = json.loads((out / "cv-01.json").read_text())
+    closed = np.array([float(r["value"]) for r in rows if r["file"].startswith("closed")])
+    opened = np.array([float(r["value"]) for r in rows if r["file"].startswith("open")])
+    assert closed.size == opened.size == 2000
+    assert float(rows[1]["time_ps"]) - float(rows[0]["time_ps"]) == pytest.approx(0.2)
+    lo, hi = spec["states"]["closed"]["mean"], spec["states"]["open"]["mean"]
+    assert closed.mean() < 0.5 * (lo + hi) < opened.mean()
+
+
+def test_demo_command_runs_and_points_at_the_slow_dihedral(tmp_path, capsys):
+    assert main(["demo", "--out", str(tmp_path / "d")]) == 0
+    out = capsys.readouterr().out
+    assert "slow by construction; rank 1 uses it" in out
+    assert (tmp_path / "d" / "summary.md").read_text().startswith("# cvdesign suggest")
+
+
+def test_console_entry_point_help_explains_units():
+    res = subprocess.run([sys.executable, "-m", "cvdesign.cli", "suggest", "--help"],
+                         capture_output=True, text=True, check=True)
+    assert "--cutoff NM" in res.stdout and "in nm" in res.stdout
+    res = subprocess.run([sys.executable, "-m", "cvdesign.cli", "apply", "--help"],
+                         capture_output=True, text=True, check=True)
+    assert "time_ps" in res.stdout and "nm" in res.stdout
+
+
+def _fails(args, capsys, pattern):
+    assert main(args) == 2
+    err = capsys.readouterr().err
+    assert pattern in err, err
+    return err
+
+
+def test_missing_file_is_named_and_nothing_written(demo_files, tmp_path, capsys):
+    out = tmp_path / "out"
+    top, states = demo_files
+    bad = {"closed": states["closed"], "open": [str(tmp_path / "nope.xtc")]}
+    _fails(_suggest_args(demo_files, out, states=bad), capsys,
+           f"trajectory file '{tmp_path / 'nope.xtc'}' does not exist")
+    assert not out.exists()
+    _fails(["suggest", "--topology", str(tmp_path / "x.pdb"), "--state", "a", states["closed"][0],
+            "--state", "b", states["open"][0], "--out", str(out)], capsys,
+           "topology file")
+    assert not out.exists()
+
+
+def test_atom_count_mismatch_is_refused(demo_files, tmp_path, capsys):
+    top, states = demo_files
+    short = md.load(states["open"][0], top=top).atom_slice(range(10))
+    path = tmp_path / "short.xtc"
+    short.save_xtc(str(path))
+    out = tmp_path / "out"
+    _fails(_suggest_args(demo_files, out, states={"closed": states["closed"], "open": [str(path)]}),
+           capsys, "has 10 atoms but the topology")
+    assert not out.exists()
+
+
+def test_only_one_state_is_refused(demo_files, tmp_path, capsys):
+    out = tmp_path / "out"
+    _, states = demo_files
+    _fails(_suggest_args(demo_files, out, states={"closed": states["closed"]}), capsys,
+           "only one state was given ('closed')")
+    assert not out.exists()
+
+
+def test_selection_matching_nothing_is_refused(demo_files, tmp_path, capsys):
+    out = tmp_path / "out"
+    _fails(_suggest_args(demo_files, out, "--select", "name CA"), capsys,
+           "selection 'name CA' matches no atoms")
+    assert not out.exists()
+
+
+def test_nonempty_output_directory_needs_force(demo_files, tmp_path, capsys):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "keep.txt").write_text("mine")
+    _fails(_suggest_args(demo_files, out), capsys, "exists and is not empty")
+    assert [p.name for p in out.iterdir()] == ["keep.txt"]
+    assert main(_suggest_args(demo_files, out, "--force")) == 0
+    assert not (out / "keep.txt").exists() and (out / "cv-01.json").exists()
+
+
+def test_state_given_twice_and_state_without_files(demo_files, tmp_path, capsys):
+    top, states = demo_files
+    out = tmp_path / "out"
+    _fails(["suggest", "--topology", top, "--state", "a", states["closed"][0], "--state", "a",
+            states["open"][0], "--out", str(out)], capsys, "state 'a' is given twice")
+    _fails(["suggest", "--topology", top, "--state", "a", "--state", "b", states["open"][0],
+            "--out", str(out)], capsys, "--state a has no trajectory files")
+    assert not out.exists()
+
+
+def test_apply_against_another_topology_names_first_mismatch(demo_files, demo_result, tmp_path,
+                                                             capsys):
+    top, states = demo_files
+    spec_path = tmp_path / "cv.json"
+    spec_path.write_text(json.dumps(demo_result.specs[0]))
+    # Rename one atom used by the rank-1 CV.
+    t = md.load(top)
+    used = demo_result.specs[0]["descriptors"][0]["atoms"][1]
+    t.topology.atom(used).name = "X9"
+    other = tmp_path / "other.pdb"
+    t.save_pdb(str(other))
+    err = _fails(["apply", str(spec_path), "--topology", str(other), states["closed"][0]], capsys,
+                 f"atom {used}")
+    assert "X9" in err
+    # Another atom count.
+    t2 = md.load(top).atom_slice(range(11))
+    other2 = tmp_path / "other2.pdb"
+    t2.save_pdb(str(other2))
+    _fails(["apply", str(spec_path), "--topology", str(other2), states["closed"][0]], capsys,
+           "11 atoms")

@@ -1,0 +1,172 @@
+"""The main job end to end on the demo, and on real MD data."""
+
+import json
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign import InputError, Source, load_spec, suggest
+
+
+def _slow_id(manifest):
+    return "dihedral:" + "-".join(map(str, manifest["slow_dihedral"]["atoms"]))
+
+
+def test_demo_rank1_contains_the_descriptor_slow_by_construction(demo_result, demo_manifest):
+    rank1 = demo_result.ranking[0]
+    assert _slow_id(demo_manifest) in {t["descriptor"] for t in rank1["terms"]}
+    # Held-out scoring by whole trajectories (3 per state in the demo).
+    assert any("by whole trajectories" in n for n in demo_result.notes)
+    assert rank1["heldout_overlap"] < 0.01
+    assert rank1["heldout_fisher_ratio"] > 10
+
+
+def test_demo_cv_fitted_on_two_runs_separates_the_third_run_of_each_state(demo_files,
+                                                                          demo_manifest):
+    # An independent held-out check: fit on runs 1-2 of each state, evaluate the spec on
+    # run 3 (never read by the fit) and classify by the midpoint of the state means.
+    top, states = demo_files
+    train = {s: files[:2] for s, files in states.items()}
+    result = suggest(Source.from_states(top, train))
+    from cvdesign.spec import Spec
+
+    spec = Spec.from_dict(result.specs[0])
+    means = {s: v["mean"] for s, v in spec.states.items()}
+    (s0, m0), (s1, m1) = means.items()
+    cut = 0.5 * (m0 + m1)
+    for state, files in states.items():
+        traj = md.load(files[2], top=top)
+        v = spec.evaluate(traj.xyz)
+        side = (v > cut) if (means[state] > cut) else (v < cut)
+        assert side.mean() > 0.99, state
+
+
+def test_apply_reproduces_state_means_stored_in_spec(demo_result, demo_files):
+    top, states = demo_files
+    from cvdesign.spec import Spec
+
+    for spec_doc in demo_result.specs[:3]:
+        spec = Spec.from_dict(spec_doc)
+        for state, files in states.items():
+            values = np.concatenate([spec.evaluate(md.load(f, top=top).xyz) for f in files])
+            ref = spec.states[state]
+            assert values.mean() == pytest.approx(ref["mean"], rel=1e-5)
+            assert values.std() == pytest.approx(ref["std"], rel=1e-4)
+            assert values.size == ref["n_frames"]
+
+
+def test_ranking_is_sorted_and_specs_match(demo_result):
+    ranks = [r["rank"] for r in demo_result.ranking]
+    assert ranks == list(range(1, len(ranks) + 1))
+    assert [r["spec"] for r in demo_result.ranking][:2] == ["cv-01.json", "cv-02.json"]
+    for r, spec in zip(demo_result.ranking, demo_result.specs):
+        assert spec["name"] == r["spec"][:-5]
+        assert [t["weight"] for t in spec["terms"]] == [t["weight"] for t in r["terms"]]
+        assert np.linalg.norm([t["weight"] for t in r["terms"]]) == pytest.approx(1.0)
+
+
+def test_scorecard_lists_every_descriptor_once(demo_result):
+    ids = [row["id"] for row in demo_result.scorecard]
+    assert len(ids) == len(set(ids)) == len(demo_result.pool)
+    fisher = [row["fisher_ratio"] for row in demo_result.scorecard]
+    assert fisher == sorted(fisher, reverse=True)
+
+
+def test_same_input_gives_byte_identical_outputs(demo_files, tmp_path):
+    top, states = demo_files
+    outs = []
+    for k in range(2):
+        res = suggest(Source.from_states(top, states), max_terms=2, n_suggestions=3)
+        outs.append(res.write(tmp_path / f"run{k}"))
+    names = sorted(p.name for p in outs[0].iterdir())
+    assert names == sorted(p.name for p in outs[1].iterdir())
+    for name in names:
+        assert (outs[0] / name).read_bytes() == (outs[1] / name).read_bytes(), name
+
+
+def test_per_frame_labels_give_the_same_statistics_as_files_per_state(demo_files, tmp_path):
+    # One trajectory holding both states with a label array, against two files.
+    top, states = demo_files
+    a = md.load(states["closed"][0], top=top)
+    b = md.load(states["open"][0], top=top)
+    joined = md.join([a, b])
+    joined.time = np.arange(joined.n_frames) * 0.2
+    path = tmp_path / "both.xtc"
+    joined.save_xtc(str(path))
+    labels = ["closed"] * a.n_frames + ["open"] * b.n_frames
+    r1 = suggest(Source.from_labels(top, path, labels), max_terms=1, n_suggestions=1)
+    src2 = Source(top).add(str(path), "closed", frames=(0, a.n_frames))
+    src2.add(str(path), "open", frames=(a.n_frames, None))
+    r2 = suggest(src2, max_terms=1, n_suggestions=1)
+    assert r1.ranking[0]["terms"] == r2.ranking[0]["terms"]
+    assert r1.ranking[0]["states"] == r2.ranking[0]["states"]
+    assert any("contiguous blocks" in n for n in r1.notes)
+
+
+def test_only_one_state_is_refused(demo_files):
+    top, states = demo_files
+    with pytest.raises(InputError, match=r"only one state was given \('closed'\)"):
+        suggest(Source.from_states(top, {"closed": states["closed"]}))
+
+
+def test_state_without_frames_is_refused(demo_files):
+    top, states = demo_files
+    src = Source(top).add(states["closed"][0], "closed")
+    src.add(states["open"][0], "open", frames=(5000, 6000))  # the file has 2000 frames
+    with pytest.raises(InputError, match=r"state\(s\) 'open' have no frames"):
+        suggest(src)
+
+
+def test_labels_of_wrong_length_are_refused(demo_files):
+    top, states = demo_files
+    src = Source.from_labels(top, states["closed"][0], ["a"] * 10 + ["b"] * 10)
+    with pytest.raises(InputError, match="has more frames than its 20 labels"):
+        suggest(src)
+
+
+# ---------------------------------------------------------------- real MD data
+# Adenylate kinase (AdK, 214 residues) closed-to-open transition from the MDAnalysis test
+# data (adk.psf + adk_dims.dcd: a DIMS transition, Beckstein, Denning, Perilla and Woolf,
+# J. Mol. Biol. 394:160, 2009). Domains as defined there (from memory): CORE 1-29, 60-121,
+# 160-214; NMP 30-59; LID 122-159. The closed/open change is the LID and NMP domains
+# closing over the CORE, so a separating CA-CA distance must join two different domains.
+def _domain(resseq):
+    if 30 <= resseq <= 59:
+        return "NMP"
+    if 122 <= resseq <= 159:
+        return "LID"
+    return "CORE"
+
+
+@pytest.fixture(scope="module")
+def adk_result(mda_data):
+    src = Source(str(mda_data / "adk.psf"))
+    src.add(str(mda_data / "adk_dims.dcd"), "closed", frames=(0, 30))
+    src.add(str(mda_data / "adk_dims.dcd"), "open", frames=(68, 98))
+    return src, suggest(src, selection="name CA", max_terms=3, n_suggestions=3)
+
+
+def test_adk_top_descriptors_join_different_domains(adk_result):
+    src, result = adk_result
+    top = src.topology
+    for row in result.scorecard[:10]:
+        a, b = row["atoms"]
+        da, db = (_domain(top.atom(i).residue.resSeq) for i in (a, b))
+        assert da != db, row["label"]
+    for term in result.ranking[0]["terms"]:
+        a, b = term["atoms"]
+        assert _domain(top.atom(a).residue.resSeq) != _domain(top.atom(b).residue.resSeq)
+
+
+def test_adk_spec_round_trip_on_psf_dcd(adk_result, mda_data, tmp_path):
+    src, result = adk_result
+    path = tmp_path / "cv.json"
+    path.write_text(json.dumps(result.specs[0]))
+    spec = load_spec(path, topology=str(mda_data / "adk.psf"))
+    traj = md.load(str(mda_data / "adk_dims.dcd"), top=str(mda_data / "adk.psf"))
+    v = spec.evaluate(traj.xyz)
+    assert v[:30].mean() == pytest.approx(spec.states["closed"]["mean"], rel=1e-5)
+    assert v[68:].mean() == pytest.approx(spec.states["open"]["mean"], rel=1e-5)
+    # The CV moves from closed to open along the transition path.
+    assert spec.states["closed"]["mean"] < spec.states["open"]["mean"]

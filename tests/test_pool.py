@@ -1,0 +1,96 @@
+"""Candidate enumeration on hand-built molecules with hand-counted answers."""
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign.errors import InputError
+from cvdesign.pool import Descriptor, Pool, candidate_pairs, candidate_pool
+from cvdesign.source import select_atoms
+
+
+def _topology(n_heavy, bonds, *, hydrogens=(), water=False, ion=False):
+    top = md.Topology()
+    ch = top.add_chain()
+    res = top.add_residue("MOL", ch, 7)
+    atoms = [top.add_atom(f"C{i}", md.element.carbon, res) for i in range(n_heavy)]
+    for parent in hydrogens:
+        h = top.add_atom(f"H{parent}", md.element.hydrogen, res)
+        top.add_bond(atoms[parent], h)
+    for a, b in bonds:
+        top.add_bond(atoms[a], atoms[b])
+    if water:
+        w = top.add_residue("HOH", ch, 8)
+        o = top.add_atom("O", md.element.oxygen, w)
+        for name in ("H1", "H2"):
+            top.add_bond(o, top.add_atom(name, md.element.hydrogen, w))
+    if ion:
+        top.add_atom("NA", md.element.sodium, top.add_residue("NA", ch, 9))
+    return top
+
+
+def test_default_selection_is_solute_heavy_atoms():
+    top = _topology(3, [(0, 1), (1, 2)], hydrogens=(0, 2), water=True, ion=True)
+    assert select_atoms(top).tolist() == [0, 1, 2]
+
+
+def test_selection_matching_no_atoms_is_refused_with_the_selection_named():
+    top = _topology(3, [(0, 1)])
+    with pytest.raises(InputError, match=r"selection 'name CA' matches no atoms"):
+        select_atoms(top, "name CA")
+    with pytest.raises(InputError, match=r"invalid atom selection 'name =='"):
+        select_atoms(top, "name ==")
+
+
+def test_ring_bonds_are_not_rotatable_but_the_bond_to_a_substituent_chain_is():
+    # Six-ring 0..5, chain 0-6-7-8: rotatable bonds are 0-6 and 6-7 (bridges whose ends
+    # both have other heavy neighbours); 7-8 ends in a terminal atom.
+    ring = [(i, (i + 1) % 6) for i in range(6)]
+    top = _topology(9, ring + [(0, 6), (6, 7), (7, 8)])
+    pool = candidate_pool(top, range(9), kinds=("dihedral",))
+    assert [d.atoms for d in pool.descriptors] == [(0, 6, 7, 8), (1, 0, 6, 7)]
+
+
+def test_angles_are_all_bonded_triples():
+    # A branched centre with three neighbours has 3 angles; chain ends have none.
+    top = _topology(4, [(0, 1), (1, 2), (1, 3)])
+    pool = candidate_pool(top, range(4), kinds=("angle",))
+    assert sorted(d.atoms for d in pool.descriptors) == [(0, 1, 2), (0, 1, 3), (2, 1, 3)]
+
+
+def test_pairs_within_two_bonds_are_left_out():
+    top = _topology(5, [(0, 1), (1, 2), (2, 3), (3, 4)])
+    pairs, note = candidate_pairs(top, range(5))
+    assert pairs.tolist() == [[0, 3], [0, 4], [1, 4]]
+    assert "7 pairs within two bonds left out" in note
+
+
+def test_no_bonds_gives_a_note_instead_of_angles():
+    top = _topology(4, [])
+    pool = candidate_pool(top, range(4))
+    assert all(d.kind == "distance" for d in pool.descriptors)
+    assert len(pool.descriptors) == 6
+    assert any("no bonds" in n for n in pool.notes)
+
+
+def test_labels_and_ids_are_stable_and_readable():
+    top = _topology(4, [(0, 1), (1, 2), (2, 3)])
+    pool = candidate_pool(top, range(4))
+    d = {x.id: x.label for x in pool.descriptors}
+    assert d["dihedral:0-1-2-3"] == "dihedral MOL7:C0-C1-C2-C3"
+    assert d["distance:0-3"] == "dist MOL7:C0-C3"
+
+
+def test_dihedral_features_are_cos_and_sin_of_the_mdtraj_dihedral():
+    top = _topology(4, [(0, 1), (1, 2), (2, 3)])
+    rng = np.random.default_rng(0)
+    traj = md.Trajectory(rng.normal(size=(20, 4, 3)).astype(np.float32), top)
+    pool = Pool([Descriptor("dihedral", (0, 1, 2, 3), "t")], top)
+    phi = md.compute_dihedrals(traj, [[0, 1, 2, 3]])[:, 0]
+    np.testing.assert_allclose(pool.features(traj), np.c_[np.cos(phi), np.sin(phi)], atol=1e-6)
+
+
+def test_unknown_kind_is_refused():
+    top = _topology(2, [])
+    with pytest.raises(InputError, match="unknown descriptor kinds"):
+        candidate_pool(top, range(2), kinds=("torsion",))
