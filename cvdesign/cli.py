@@ -206,17 +206,11 @@ def _cmd_apply(args):
 
 def demo_data_dir():
     """Directory holding the bundled demo data (topology, trajectories, manifest.json)."""
-    try:
-        from importlib.resources import files
-
-        cand = Path(str(files("cvdesign.demo_data")))
+    here = Path(__file__).resolve().parent
+    # Installed: the package 'cvdesign.demo_data'; source tree: the top-level data/.
+    for cand in (here / "demo_data", here.parent / "data"):
         if (cand / "manifest.json").exists():
             return cand
-    except (ModuleNotFoundError, TypeError):
-        pass
-    cand = Path(__file__).resolve().parent.parent / "data"
-    if (cand / "manifest.json").exists():
-        return cand
     raise InputError("the bundled demo data are missing; regenerate them with "
                      "'python -m cvdesign.testbed.demo_data --out data' in the source tree")
 
