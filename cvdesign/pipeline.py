@@ -37,6 +37,7 @@ from .estimators import rayleigh_quotient
 from .errors import InputError
 from .moments import DiagonalMoments, Moments, merge_all
 from .pool import build_pool
+from .redundancy import descriptor_correlation, redundancy_graph, representatives
 from .scoring import Histograms, fisher_ratio, overlap_coefficient
 from .source import file_sha256
 
@@ -91,7 +92,7 @@ class Suggestions:
     def scorecard_csv(self):
         """The score card as CSV text."""
         cols = ["order", "id", "kind", "label", "atoms", "fisher_ratio", "overlap",
-                "screened", "shortlisted", "note"]
+                "screened", "shortlisted", "stands_for", "note"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(cols)
@@ -99,7 +100,7 @@ class Suggestions:
             w.writerow([i, row["id"], row["kind"], row["label"],
                         " ".join(map(str, row["atoms"])), _fmt(row["fisher_ratio"]),
                         _fmt(row["overlap"]), int(row["screened"]), int(row["shortlisted"]),
-                        row["note"]])
+                        " ".join(row["stands_for"]), row["note"]])
         return buf.getvalue()
 
     def ranking_csv(self):
@@ -463,31 +464,25 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
         groups.append(np.arange(pos, pos + n))
         pos += n
 
-    # ---- shortlist: drop near-duplicates by pooled within-state correlation
+    # ---- shortlist: one representative per group of redundant descriptors
     pooled = fm.pooled()
     within = np.tensordot(priors, np.array([m.covariance for m in pooled]), axes=1)
-    sd = np.sqrt(np.clip(np.diag(within), 0, None))
-    sd[sd == 0] = 1.0
-    corr = within / np.outer(sd, sd)
-    notes_by_desc = {}
-    short = []
-    for gi, i in enumerate(screened):
-        dup = None
-        for gj in short:
-            c = np.abs(corr[np.ix_(groups[gi], groups[gj])]).max()
-            if c > max_correlation:
-                dup = (gj, c)
-                break
-        if dup is None:
-            short.append(gi)
-            if len(short) >= shortlist_size:
-                break
-        else:
-            notes_by_desc[i] = (f"near-duplicate of {pool.descriptors[screened[dup[0]]].id} "
-                                f"(|r|={dup[1]:.3f})")
-    notes.append(f"shortlist: {len(short)} descriptors after dropping near-duplicates "
-                 f"(pooled within-state |r| > {max_correlation:g}) from the "
-                 f"{len(screened)} best separating")
+    dcorr = descriptor_correlation(within, groups)
+    graph = redundancy_graph(dcorr, max_correlation)
+    reps = representatives(graph, {g: -float(g) for g in range(len(screened))})
+    notes_by_desc, stands_for = {}, {}
+    for rep, others in reps:
+        stands_for[screened[rep]] = [pool.descriptors[screened[o]].id for o in others]
+        for o in others:
+            notes_by_desc[screened[o]] = (
+                f"represented by {pool.descriptors[screened[rep]].id} "
+                f"(|r|={dcorr[rep, o]:.3f})")
+    short = [rep for rep, _ in reps][:shortlist_size]
+    n_red = sum(len(o) for _, o in reps)
+    notes.append(f"redundancy: {n_red} of the {len(screened)} best separating descriptors are "
+                 f"represented by a better one (pooled within-state |r| > {max_correlation:g}, "
+                 f"connected components of the correlation graph); shortlist: {len(short)} "
+                 "representatives")
     _note(progress, f"searching combinations of up to {max_terms} of {len(short)} descriptors")
 
     sub_groups = [groups[g] for g in short]
@@ -523,12 +518,14 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
 
     # ---- outputs
     scorecard = []
+    screened_set = set(screened)
     for i in order:
         d = pool.descriptors[i]
         scorecard.append({
             "id": d.id, "kind": d.kind, "label": d.label, "atoms": list(d.atoms),
             "fisher_ratio": float(fisher_desc[i]), "overlap": _finite(overlap_desc[i]),
-            "screened": i in set(screened), "shortlisted": False,
+            "screened": i in screened_set, "shortlisted": False,
+            "stands_for": stands_for.get(i, []),
             "note": notes_by_desc.get(i, ""),
         })
     short_ids = {pool.descriptors[screened[g]].id for g in short}

@@ -45,3 +45,12 @@ def mda_data():
     Gowers et al., Proc. SciPy 2016), installed by the project's `test` extra.
     """
     return Path(str(importlib.resources.files("MDAnalysisTests") / "data"))
+
+
+@pytest.fixture(scope="session")
+def adk_result_for_redundancy(mda_data):
+    """`suggest` on adenylate kinase CA atoms, closed (frames 0-29) vs open (68-97)."""
+    src = Source(str(mda_data / "adk.psf"))
+    src.add(str(mda_data / "adk_dims.dcd"), "closed", frames=(0, 30))
+    src.add(str(mda_data / "adk_dims.dcd"), "open", frames=(68, 98))
+    return suggest(src, selection="name CA", max_terms=2, n_suggestions=2)
