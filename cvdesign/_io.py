@@ -2,10 +2,11 @@
 
 import contextlib
 import os
+import shutil
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_write_text", "atomic_open"]
+__all__ = ["atomic_write_text", "atomic_open", "prepare_output_dir", "write_dir_atomically"]
 
 
 @contextlib.contextmanager
@@ -30,3 +31,120 @@ def atomic_write_text(path, text):
     """Write `text` to `path` (UTF-8, ``\\n`` line ends) through a temporary file."""
     with atomic_open(path, "w", encoding="utf-8", newline="\n") as fh:
         fh.write(text)
+
+
+def _is_within(path, directory):
+    try:
+        Path(path).resolve().relative_to(Path(directory).resolve())
+        return True
+    except ValueError:
+        return False
+
+
+def prepare_output_dir(out_dir, *, force=False, inputs=(), marker=None, option="--out"):
+    """Check that a whole output directory may be (re)written; return it as a Path.
+
+    Parameters
+    ----------
+    out_dir : path-like
+        The directory.
+    force : bool, default=False
+        Allow replacing an existing non-empty directory, but only one that an
+        earlier run wrote (it holds `marker`) and that holds none of `inputs`.
+    inputs : sequence of path-like
+        Files the run reads; the directory must not contain any of them.
+    marker : str, default=None
+        File name that marks a directory written by an earlier run.
+    option : str, default="--out"
+        Name of the option in messages.
+
+    Raises
+    ------
+    cvdesign.errors.InputError
+        When the directory may not be written, saying why and what to do.
+    """
+    from .errors import InputError
+
+    out_dir = Path(out_dir)
+    resolved = out_dir.resolve()
+    if _is_within(Path.cwd(), resolved):
+        raise InputError(f"{option} {str(out_dir)!r} is the current directory or one of its "
+                         "parents; give a new directory name")
+    inside = [str(p) for p in inputs if _is_within(p, resolved)]
+    if inside:
+        raise InputError(f"{option} {str(out_dir)!r} contains an input file ({inside[0]!r}); "
+                         "writing there would replace it. Give another directory")
+    if out_dir.exists():
+        if not out_dir.is_dir():
+            raise InputError(f"{option} {str(out_dir)!r} exists and is not a directory; "
+                             "choose another name")
+        if any(out_dir.iterdir()):
+            if not force:
+                raise InputError(f"output directory {str(out_dir)!r} exists and is not empty; "
+                                 f"choose another {option}, or pass --force to replace it")
+            if marker is not None and not (out_dir / marker).exists():
+                raise InputError(f"output directory {str(out_dir)!r} is not empty and was not "
+                                 f"written by cvdesign (no {marker}); --force only replaces "
+                                 "an earlier cvdesign output. Choose another name")
+    if not resolved.parent.exists():
+        raise InputError(f"the parent directory of {option} {str(out_dir)!r} does not exist")
+    return out_dir
+
+
+def write_dir_atomically(out_dir, files, *, option="--out"):
+    """Write ``{name: text}`` into `out_dir`, all or nothing.
+
+    The files go into a temporary directory beside `out_dir`, which then
+    replaces it by renames, so an interrupted run leaves no partial output.
+    File permissions follow the process umask.
+    """
+    from .errors import InputError
+
+    out_dir = Path(out_dir)
+    umask = os.umask(0)
+    os.umask(umask)
+    try:
+        tmp = Path(tempfile.mkdtemp(dir=out_dir.resolve().parent, prefix=f".{out_dir.name}.tmp-"))
+    except OSError as exc:
+        raise InputError(f"cannot write {option} {str(out_dir)!r}: {exc.strerror}") from exc
+    try:
+        os.chmod(tmp, 0o777 & ~umask)
+        for name, text in files.items():
+            with open(tmp / name, "w", encoding="utf-8", newline="\n") as fh:
+                fh.write(text)
+        if out_dir.exists():
+            old = Path(tempfile.mkdtemp(dir=tmp.parent, prefix=f".{out_dir.name}.old-"))
+            os.rmdir(old)
+            os.replace(out_dir, old)
+            os.replace(tmp, out_dir)
+            shutil.rmtree(old)
+        else:
+            os.replace(tmp, out_dir)
+    except OSError as exc:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise InputError(f"cannot write {option} {str(out_dir)!r}: {exc.strerror or exc}") from exc
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+@contextlib.contextmanager
+def atomic_path(path):
+    """Yield a temporary file name beside `path` for a writer that takes a name.
+
+    On success the file gets the permissions the process umask allows and is
+    renamed onto `path`; on an exception it is removed and `path` is untouched.
+    """
+    path = Path(path)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.stem}.", suffix=path.suffix)
+    os.close(fd)
+    try:
+        yield tmp
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise

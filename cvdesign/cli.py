@@ -51,6 +51,14 @@ def _positive_int(text):
     return v
 
 
+def _at_least_two(text):
+    v = _positive_int(text)
+    if v < 2:
+        raise argparse.ArgumentTypeError(f"{text!r} must be at least 2 (one fold to fit, "
+                                         "one to score)")
+    return v
+
+
 def _add_suggest_options(p):
     p.add_argument("--select", metavar="SEL", default=None,
                    help="atoms the candidate descriptors are built from, in mdtraj selection "
@@ -69,7 +77,7 @@ def _add_suggest_options(p):
                    help="largest number of descriptors in one combination (default: 5)")
     p.add_argument("--suggestions", type=_positive_int, default=10, metavar="N",
                    help="number of ranked combinations, each written as a spec (default: 10)")
-    p.add_argument("--folds", type=_positive_int, default=4, metavar="N",
+    p.add_argument("--folds", type=_at_least_two, default=4, metavar="N",
                    help="folds of the held-out scoring, by whole trajectories, or by "
                         "contiguous blocks when a state has one trajectory (default: 4)")
     p.add_argument("--force", action="store_true",
@@ -108,7 +116,9 @@ def build_parser():
     p = sub.add_parser(
         "apply", help="evaluate a spec on trajectories",
         description="Evaluate the CV of a spec file frame by frame from coordinates alone "
-                    "(no refitting). Prints CSV with columns file, frame, time_ps, value.")
+                    "(no refitting). Prints CSV with columns file, frame (0-based), time_ps "
+                    "(simulation time in ps; empty for formats that store no times, such as "
+                    "DCD), value (the CV, in the units of the spec).")
     p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json) written by suggest")
     p.add_argument("--topology", required=True, metavar="TOP",
                    help="topology file; it must match the one the spec was made for")
@@ -135,10 +145,12 @@ def _progress(quiet):
 
 
 def _run_suggest(topology, states, out, args, stream):
-    from .pipeline import CAUTION, prepare_output_dir, suggest
+    from ._io import prepare_output_dir
+    from .pipeline import CAUTION, suggest
     from .source import Source
 
-    prepare_output_dir(out, force=args.force)
+    given = [topology] + [f for entry in states for f in entry[1:]]
+    prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json")
     names = [s[0] for s in states]
     dup = sorted({n for n in names if names.count(n) > 1})
     if dup:
@@ -173,7 +185,7 @@ def _cmd_suggest(args):
 
 def _cmd_apply(args):
     from ._io import atomic_open
-    from .source import Source
+    from .source import Source, stores_time
     from .spec import load_spec
 
     source = Source(args.topology)
@@ -186,20 +198,28 @@ def _cmd_apply(args):
             raise InputError(f"--out {args.out!r} is a directory; give a file name")
         if not out.resolve().parent.exists():
             raise InputError(f"the directory of --out {args.out!r} does not exist")
-    buf = io.StringIO()
-    w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["file", "frame", "time_ps", "value"])
-    for chunk in source.iter_chunks():
-        traj = chunk.trajectory
-        values = spec.evaluate(traj.xyz, box=traj.unitcell_vectors)
-        name = source.segments[chunk.segment_index].path.name
-        for fr, t, v in zip(chunk.frames, traj.time, values):
-            w.writerow([name, int(fr), f"{float(t):.6g}", repr(float(v))])
+        if any(out.resolve() == Path(p).resolve() for p in args.trajectories + [args.spec,
+                                                                                  args.topology]):
+            raise InputError(f"--out {args.out!r} is one of the input files; give a new name")
+
+    def rows(fh):
+        w = csv.writer(fh, lineterminator="\n")
+        w.writerow(["file", "frame", "time_ps", "value"])
+        for chunk in source.iter_chunks():
+            traj = chunk.trajectory
+            values = spec.evaluate(traj.xyz, box=traj.unitcell_vectors)
+            path = source.segments[chunk.segment_index].path
+            timed = stores_time(path)
+            for fr, t, v in zip(chunk.frames, traj.time, values):
+                w.writerow([path.name, int(fr), repr(float(t)) if timed else "", repr(float(v))])
+
     if args.out is None:
+        buf = io.StringIO()
+        rows(buf)  # evaluate everything first: an error leaves standard output clean
         sys.stdout.write(buf.getvalue())
     else:
         with atomic_open(args.out, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(buf.getvalue())
+            rows(fh)
         print(f"wrote {args.out}", file=sys.stderr)
     return 0
 

@@ -2,10 +2,16 @@
 
 :class:`LDA` finds the linear combinations of features that best separate
 labelled states (Fisher 1936; Rao 1948), by the generalized eigenproblem
-``S_b w = lambda S_w w`` of between-state and within-state scatter.  It works on
+``S_b w = lambda S_w w`` of between-state and within-state scatter.
+:class:`HLDA` is the same with the harmonic mean of the state covariances as
+within-state scatter (Mendels, Piccini and Parrinello 2018).  Both work on
 plain arrays (``fit(X, y)``) and, for the pipeline, directly on per-state
-:class:`~cvdesign.moments.Moments` (:meth:`LDA.from_moments`), so that
-trajectories never have to be held in memory.
+:class:`~cvdesign.moments.Moments` (``from_moments``), so that trajectories
+never have to be held in memory.
+
+:class:`TICA` finds the linear combinations of features that decorrelate
+most slowly at a lag time (Molgedey and Schuster 1994; Perez-Hernandez et al.
+2013), from :class:`~cvdesign.moments.LaggedMoments` or from trajectories.
 """
 
 import numpy as np
@@ -14,9 +20,19 @@ from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.multiclass import unique_labels
 from sklearn.utils.validation import check_array, check_is_fitted, validate_data
 
-from .moments import Moments
+from .moments import LaggedMoments, Moments, _check_lag
 
-__all__ = ["LDA", "discriminant_directions", "rayleigh_quotient", "fix_signs"]
+__all__ = [
+    "LDA",
+    "HLDA",
+    "TICA",
+    "discriminant_directions",
+    "rayleigh_quotient",
+    "implied_timescales",
+    "fix_signs",
+]
+
+_WITHIN = ("arithmetic", "harmonic")
 
 
 def fix_signs(vectors):
@@ -47,15 +63,20 @@ def fix_signs(vectors):
     return vectors * signs
 
 
-def _scatter_matrices(means, covariances, priors):
-    means = np.asarray(means, dtype=np.float64)
-    covariances = np.asarray(covariances, dtype=np.float64)
-    priors = np.asarray(priors, dtype=np.float64)
+def _check_within(within):
+    if within not in _WITHIN:
+        raise ValueError(f"within={within!r} must be 'arithmetic' or 'harmonic'")
+
+
+def _check_shrinkage(shrinkage):
+    if not 0.0 <= shrinkage <= 1.0:
+        raise ValueError(f"shrinkage={shrinkage!r} must be between 0 and 1")
+
+
+def _between(means, priors):
     grand = priors @ means
     centered = means - grand
-    between = (centered * priors[:, None]).T @ centered
-    within = np.tensordot(priors, covariances, axes=1)
-    return between, within
+    return (centered * priors[:, None]).T @ centered
 
 
 def _regularize(within, shrinkage):
@@ -68,11 +89,47 @@ def _regularize(within, shrinkage):
     return (1.0 - shrinkage) * within + shrinkage * target * np.eye(p)
 
 
-def discriminant_directions(means, covariances, priors, *, shrinkage=0.0):
+def _spd_inverse(matrix):
+    """Inverse of a symmetric positive definite matrix; a ridge if it is singular.
+
+    When the Cholesky factorization fails, ``matrix`` is shrunk by 1e-10
+    toward ``(tr / p) I`` first (the same fallback as LDA's).
+    """
+    p = matrix.shape[0]
+    try:
+        factor = scipy.linalg.cho_factor(matrix)
+    except np.linalg.LinAlgError:
+        factor = scipy.linalg.cho_factor(_regularize(matrix, 1e-10))
+    inv = scipy.linalg.cho_solve(factor, np.eye(p))
+    return 0.5 * (inv + inv.T)
+
+
+def _harmonic_within(covariances, priors, shrinkage):
+    """``S_w = (sum_k p_k Sigma_k^-1)^-1``, each Sigma_k shrunk first when asked."""
+    covariances = np.asarray(covariances, dtype=np.float64)
+    p = covariances.shape[-1]
+    precision = np.zeros((p, p))
+    for pk, cov in zip(priors, covariances):
+        if pk == 0:
+            continue
+        cov = _regularize(cov, shrinkage) if shrinkage > 0 else cov
+        precision += pk * _spd_inverse(cov)
+    return _spd_inverse(precision)
+
+
+def _within_scatter(covariances, priors, within, shrinkage):
+    """Within-state scatter as used in the eigenproblem (regularized)."""
+    if within == "harmonic":
+        return _harmonic_within(covariances, priors, shrinkage)
+    pooled = np.tensordot(priors, np.asarray(covariances, dtype=np.float64), axes=1)
+    return _regularize(pooled, shrinkage) if shrinkage > 0 else pooled
+
+
+def discriminant_directions(means, covariances, priors, *, shrinkage=0.0, within="arithmetic"):
     """Fisher discriminant directions from per-state means and covariances.
 
     Solves ``S_b w = lambda S_w w`` with ``S_b = sum_k p_k (mu_k - mu)(mu_k - mu)^T``,
-    ``mu = sum_k p_k mu_k`` and ``S_w = sum_k p_k Sigma_k``.
+    ``mu = sum_k p_k mu_k`` and, by default, ``S_w = sum_k p_k Sigma_k``.
 
     Parameters
     ----------
@@ -83,11 +140,19 @@ def discriminant_directions(means, covariances, priors, *, shrinkage=0.0):
     priors : array-like of shape (n_states,)
         State weights, summing to 1.
     shrinkage : float, default=0.0
-        Regularization in [0, 1]: ``S_w`` is replaced by
-        ``(1 - shrinkage) S_w + shrinkage (tr S_w / p) I``, which keeps the
-        problem well posed when ``S_w`` is singular (constant or exactly
-        dependent features). When ``shrinkage=0`` and ``S_w`` is singular, a
-        ridge of ``1e-10 tr S_w / p`` is added instead of failing.
+        Regularization in [0, 1]. With ``within='arithmetic'``, ``S_w`` is
+        replaced by ``(1 - shrinkage) S_w + shrinkage (tr S_w / p) I``, which
+        keeps the problem well posed when ``S_w`` is singular (constant or
+        exactly dependent features). With ``within='harmonic'`` the same
+        shrinkage is applied to each ``Sigma_k`` before it is inverted. When
+        ``shrinkage=0`` and a matrix to invert or ``S_w`` is singular, a ridge
+        of ``1e-10 tr / p`` is added instead of failing.
+    within : {'arithmetic', 'harmonic'}, default='arithmetic'
+        Within-state scatter: ``'arithmetic'``, the prior-weighted mean
+        ``sum_k p_k Sigma_k`` (LDA); ``'harmonic'``, the prior-weighted
+        harmonic mean ``S_w = (sum_k p_k Sigma_k^-1)^-1`` (HLDA, Mendels,
+        Piccini and Parrinello 2018). Both equal ``Sigma`` when every state
+        has the same covariance ``Sigma``.
 
     Returns
     -------
@@ -104,11 +169,18 @@ def discriminant_directions(means, covariances, priors, *, shrinkage=0.0):
     ...                                 [np.eye(2), np.eye(2)], [0.5, 0.5])
     >>> round(float(ev[0]), 6), np.round(w[:, 0], 6).tolist()
     (1.0, [1.0, 0.0])
+    >>> covs = [np.diag([1.0, 1.0]), np.diag([1.0, 100.0])]
+    >>> _, w = discriminant_directions([[0.0, 0.0], [1.0, 1.0]], covs, [0.5, 0.5],
+    ...                                within="harmonic")
+    >>> np.round(w[:, 0] / w[0, 0], 4).tolist()  # (Sigma_A^-1 + Sigma_B^-1)(mu_B - mu_A)
+    [1.0, 0.505]
     """
-    if not 0.0 <= shrinkage <= 1.0:
-        raise ValueError(f"shrinkage={shrinkage!r} must be between 0 and 1")
-    between, within = _scatter_matrices(means, covariances, priors)
-    within = _regularize(within, shrinkage) if shrinkage > 0 else within
+    _check_shrinkage(shrinkage)
+    _check_within(within)
+    means = np.asarray(means, dtype=np.float64)
+    priors = np.asarray(priors, dtype=np.float64)
+    between = _between(means, priors)
+    within = _within_scatter(covariances, priors, within, shrinkage)
     try:
         evals, evecs = scipy.linalg.eigh(between, within)
     except np.linalg.LinAlgError:
@@ -122,7 +194,7 @@ def discriminant_directions(means, covariances, priors, *, shrinkage=0.0):
     return evals, fix_signs(evecs / norms)
 
 
-def rayleigh_quotient(w, means, covariances, priors):
+def rayleigh_quotient(w, means, covariances, priors, *, within="arithmetic", shrinkage=0.0):
     """Fisher ratio of a direction: between-state over within-state variance.
 
     Parameters
@@ -131,6 +203,12 @@ def rayleigh_quotient(w, means, covariances, priors):
         Direction in feature space.
     means, covariances, priors
         As in :func:`discriminant_directions`.
+    within : {'arithmetic', 'harmonic'}, default='arithmetic'
+        Within-state scatter, as in :func:`discriminant_directions`.
+    shrinkage : float, default=0.0
+        Regularization of the within-state scatter, as in
+        :func:`discriminant_directions` (none by default: the ratio is then
+        measured on the covariances as given).
 
     Returns
     -------
@@ -143,9 +221,17 @@ def rayleigh_quotient(w, means, covariances, priors):
     >>> import numpy as np
     >>> rayleigh_quotient([1.0], [[0.0], [2.0]], [[[1.0]], [[1.0]]], [0.5, 0.5])
     1.0
+    >>> round(rayleigh_quotient([1.0], [[0.0], [2.0]], [[[1.0]], [[3.0]]], [0.5, 0.5],
+    ...                         within="harmonic"), 12)  # S_w = 1 / (0.5 / 1 + 0.5 / 3)
+    0.666666666667
     """
+    _check_shrinkage(shrinkage)
+    _check_within(within)
     w = np.asarray(w, dtype=np.float64)
-    between, within = _scatter_matrices(means, covariances, priors)
+    means = np.asarray(means, dtype=np.float64)
+    priors = np.asarray(priors, dtype=np.float64)
+    between = _between(means, priors)
+    within = _within_scatter(covariances, priors, within, shrinkage)
     num = float(w @ between @ w)
     den = float(w @ within @ w)
     if den <= 0:
@@ -153,7 +239,126 @@ def rayleigh_quotient(w, means, covariances, priors):
     return num / den
 
 
-class LDA(TransformerMixin, BaseEstimator):
+class _Discriminant(TransformerMixin, BaseEstimator):
+    """Shared code of :class:`LDA` and :class:`HLDA` (they differ in `_within`)."""
+
+    _within = "arithmetic"
+
+    def __init__(self, n_components=None, *, priors=None, shrinkage=0.0):
+        self.n_components = n_components
+        self.priors = priors
+        self.shrinkage = shrinkage
+
+    def fit(self, X, y):
+        """Fit from feature values and state labels.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+            Feature values.
+        y : array-like of shape (n_samples,)
+            State label of each sample; at least two distinct labels.
+
+        Returns
+        -------
+        self
+        """
+        X, y = validate_data(self, X, y, ensure_min_samples=2, dtype=np.float64)
+        self.classes_ = unique_labels(y)
+        if len(self.classes_) < 2:
+            raise ValueError(
+                f"{type(self).__name__} needs at least 2 classes; "
+                f"y has {len(self.classes_)} ({self.classes_!r})"
+            )
+        moments = [Moments.from_data(X[y == c]) for c in self.classes_]
+        return self._fit_moments(moments)
+
+    @classmethod
+    def from_moments(cls, moments, *, n_components=None, priors=None, shrinkage=0.0):
+        """Fit from per-state :class:`~cvdesign.moments.Moments`.
+
+        Parameters
+        ----------
+        moments : sequence of Moments
+            One per state, all with the same features; ``classes_`` becomes
+            ``0 .. n_states - 1``.
+        n_components, priors, shrinkage
+            As in the constructor.
+
+        Returns
+        -------
+        estimator
+            A fitted estimator of the class it is called on.
+        """
+        moments = list(moments)
+        if len(moments) < 2:
+            raise ValueError(
+                f"{cls.__name__} needs moments of at least 2 states; got {len(moments)}"
+            )
+        for k, m in enumerate(moments):
+            if m.count == 0:
+                raise ValueError(f"moments[{k}] is empty (count=0); every state needs frames")
+            if m.n_features != moments[0].n_features:
+                raise ValueError(f"moments[{k}] has {m.n_features} features; "
+                                 f"moments[0] has {moments[0].n_features}")
+        est = cls(n_components=n_components, priors=priors, shrinkage=shrinkage)
+        est.classes_ = np.arange(len(moments))
+        est.n_features_in_ = moments[0].n_features
+        return est._fit_moments(moments)
+
+    def _fit_moments(self, moments):
+        n_classes = len(moments)
+        n_features = moments[0].n_features
+        if self.priors is None:
+            counts = np.array([m.count for m in moments], dtype=np.float64)
+            priors = counts / counts.sum()
+        else:
+            priors = np.asarray(self.priors, dtype=np.float64).reshape(-1)
+            if priors.shape[0] != n_classes or np.any(priors < 0) or priors.sum() <= 0:
+                raise ValueError(
+                    f"priors={self.priors!r} must hold {n_classes} non-negative numbers"
+                )
+            priors = priors / priors.sum()
+        max_comp = min(n_classes - 1, n_features)
+        n_comp = max_comp if self.n_components is None else int(self.n_components)
+        if not 1 <= n_comp <= max_comp:
+            raise ValueError(
+                f"n_components={self.n_components!r} must be between 1 and "
+                f"min(n_classes - 1, n_features)={max_comp}"
+            )
+        means = np.array([m.mean for m in moments])
+        covs = np.array([m.covariance for m in moments])
+        evals, evecs = discriminant_directions(means, covs, priors, shrinkage=self.shrinkage,
+                                               within=self._within)
+        self.priors_ = priors
+        self.means_ = means
+        if self._within == "harmonic":
+            self.covariance_ = _harmonic_within(covs, priors, self.shrinkage)
+        else:
+            self.covariance_ = np.tensordot(priors, covs, axes=1)
+        self.xbar_ = priors @ means
+        self.scalings_ = evecs[:, :n_comp]
+        self.eigenvalues_ = evals[:n_comp]
+        return self
+
+    def transform(self, X):
+        """Project `X` onto the discriminant directions.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_samples, n_features)
+
+        Returns
+        -------
+        ndarray of shape (n_samples, n_components)
+            ``(X - xbar_) @ scalings_``, in the features' units.
+        """
+        check_is_fitted(self)
+        X = validate_data(self, X, reset=False, dtype=np.float64)
+        return (X - self.xbar_) @ self.scalings_
+
+
+class LDA(_Discriminant):
     """Multi-class linear discriminant analysis (Fisher's criterion).
 
     Parameters
@@ -184,6 +389,10 @@ class LDA(TransformerMixin, BaseEstimator):
         Fisher ratio along each direction (dimensionless).
     n_features_in_ : int
 
+    See Also
+    --------
+    HLDA : the same with the harmonic mean of the class covariances.
+
     References
     ----------
     Fisher, R. A. (1936). The use of multiple measurements in taxonomic
@@ -205,87 +414,423 @@ class LDA(TransformerMixin, BaseEstimator):
     True
     """
 
-    def __init__(self, n_components=None, *, priors=None, shrinkage=0.0):
+    _within = "arithmetic"
+
+
+class HLDA(_Discriminant):
+    """Harmonic linear discriminant analysis.
+
+    LDA with the within-state scatter replaced by the prior-weighted harmonic
+    mean of the state covariances,
+
+    ``S_w^-1 = sum_k p_k Sigma_k^-1``,
+
+    so that a state which is narrow along a direction keeps it a good
+    separator even when another state is broad there. The between-state
+    scatter is LDA's, ``S_b = sum_k p_k (mu_k - mu)(mu_k - mu)^T`` with
+    ``mu = sum_k p_k mu_k``; the directions solve ``S_b w = lambda S_w w``.
+
+    The priors ``p_k`` (normalized to sum 1) enter both matrices, exactly
+    as in :class:`LDA`: the class frequencies by default, or the `priors`
+    given. Mendels, Piccini and Parrinello (2018) write, for two states,
+    ``S_w^-1 = Sigma_A^-1 + Sigma_B^-1`` and ``S_b = (mu_A - mu_B)(mu_A - mu_B)^T``;
+    with equal priors the directions here are the same and only the Fisher
+    ratios differ by a constant factor, chosen so that HLDA equals LDA when
+    all states share one covariance.
+
+    Parameters
+    ----------
+    n_components : int, default=None
+        Number of directions kept; at most ``min(n_classes - 1, n_features)``
+        (the default).
+    priors : array-like of shape (n_classes,), default=None
+        State weights ``p_k``; None uses the class frequencies.
+    shrinkage : float, default=0.0
+        Each ``Sigma_k`` is replaced by ``(1 - shrinkage) Sigma_k + shrinkage
+        (tr Sigma_k / p) I`` before it is inverted, see
+        :func:`discriminant_directions`.
+
+    Attributes
+    ----------
+    classes_ : ndarray of shape (n_classes,)
+    priors_ : ndarray of shape (n_classes,)
+    means_ : ndarray of shape (n_classes, n_features)
+    covariance_ : ndarray of shape (n_features, n_features)
+        Harmonic within-state covariance ``S_w`` as used in the eigenproblem
+        (after the shrinkage of each ``Sigma_k``), in squared feature units.
+    xbar_ : ndarray of shape (n_features,)
+        Prior-weighted grand mean.
+    scalings_ : ndarray of shape (n_features, n_components)
+        Unit-length directions, best first, signs fixed by :func:`fix_signs`.
+    eigenvalues_ : ndarray of shape (n_components,)
+        ``w^T S_b w / w^T S_w w`` along each direction (dimensionless).
+    n_features_in_ : int
+
+    See Also
+    --------
+    LDA : the arithmetic mean of the class covariances.
+
+    References
+    ----------
+    Mendels, D., Piccini, G. and Parrinello, M. (2018). Collective variables
+    from local fluctuations. J. Phys. Chem. Lett. 9, 2776-2781.
+
+    Piccini, G., Mendels, D. and Parrinello, M. (2018). Metadynamics with
+    discriminants: a tool for understanding chemistry. J. Chem. Theory
+    Comput. 14, 5040-5044.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> a = rng.normal(0, [1.0, 0.1], (200, 2))   # state A is narrow along y
+    >>> b = rng.normal(1, [1.0, 3.0], (200, 2))   # state B is broad along y
+    >>> hlda = HLDA().fit(np.vstack([a, b]), np.repeat([0, 1], 200))
+    >>> hlda.scalings_.shape
+    (2, 1)
+    >>> bool(abs(hlda.scalings_[1, 0]) > 0.9)  # LDA would lean toward x instead
+    True
+    """
+
+    _within = "harmonic"
+
+
+# ---------------------------------------------------------------------------
+# TICA
+# ---------------------------------------------------------------------------
+
+
+def _check_epsilon(epsilon):
+    if isinstance(epsilon, (bool, np.bool_)) or not np.isscalar(epsilon) \
+            or not 0.0 <= float(epsilon) < 1.0:
+        raise ValueError(f"epsilon={epsilon!r} must be a number in [0, 1)")
+    return float(epsilon)
+
+
+def _whitener(cov, epsilon, name="C0"):
+    """Whitening matrix of a symmetric covariance, dropping tiny directions.
+
+    Returns ``(W, n_dropped)`` with ``W`` of shape (n, m) such that
+    ``W^T cov W = I_m``; the eigen-directions of `cov` with eigenvalue at most
+    ``epsilon`` times the largest are dropped. Columns are ordered by
+    decreasing variance.
+    """
+    evals, evecs = scipy.linalg.eigh(cov)
+    top = evals[-1] if evals.size else 0.0
+    if not top > 0:
+        raise ValueError(
+            f"{name} has no positive eigenvalue (largest {top!r}): the features do not vary"
+        )
+    keep = evals > epsilon * top
+    evals = evals[keep][::-1]
+    evecs = evecs[:, keep][:, ::-1]
+    return evecs / np.sqrt(evals), int(np.count_nonzero(~keep))
+
+
+def implied_timescales(eigenvalues, lag):
+    """Implied relaxation timescales ``t = -lag / ln(lambda)``.
+
+    Parameters
+    ----------
+    eigenvalues : array-like
+        Eigenvalues at the lag, e.g. :attr:`TICA.eigenvalues_` (dimensionless).
+    lag : float
+        The lag, > 0, in any time unit (frames for TICA).
+
+    Returns
+    -------
+    ndarray of the shape of `eigenvalues`
+        Timescales in the unit of `lag`: ``-lag / ln(lambda)`` for
+        ``0 < lambda < 1``; ``inf`` for ``lambda >= 1`` (no decay seen);
+        NaN for ``lambda <= 0`` (and for NaN input). For a reversible process
+        every true eigenvalue is positive, ``exp(-lag / t)``; an estimate at or
+        below zero is sampling noise around a relaxation much faster than the
+        lag, from which no timescale can be read (choose a shorter lag).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> implied_timescales([np.exp(-0.5), 1.0, -0.1], lag=2).tolist()
+    [4.0, inf, nan]
+    """
+    if isinstance(lag, (bool, np.bool_)) or not np.isscalar(lag) \
+            or not (np.isfinite(lag) and lag > 0):
+        raise ValueError(f"lag={lag!r} must be a positive number")
+    ev = np.asarray(eigenvalues, dtype=np.float64)
+    out = np.full(ev.shape, np.nan)
+    out[ev >= 1] = np.inf
+    mid = (ev > 0) & (ev < 1)
+    out[mid] = -float(lag) / np.log(ev[mid])
+    return out
+
+
+def _as_series(X):
+    """``(list of 2-D float arrays, is_list)`` from one array or a list of arrays."""
+    if isinstance(X, (list, tuple)) and len(X) > 0 and all(np.ndim(x) == 2 for x in X):
+        series = [check_array(x, dtype=np.float64, ensure_min_samples=0,
+                              input_name=f"X[{i}]") for i, x in enumerate(X)]
+        n = series[0].shape[1]
+        for i, x in enumerate(series):
+            if x.shape[1] != n:
+                raise ValueError(f"X[{i}] has {x.shape[1]} features; X[0] has {n}")
+        return series, True
+    return None, False
+
+
+class TICA(TransformerMixin, BaseEstimator):
+    """Time-lagged independent component analysis.
+
+    Finds the linear combinations ``w^T x`` of features with the largest
+    autocorrelation at a lag ``tau``: the solutions of the generalized
+    eigenproblem ``C(tau) w = lambda C(0) w``, largest ``lambda`` first.  For a
+    reversible process the eigenvalues approximate ``exp(-tau / t_i)`` of its
+    slowest relaxations, so ``t_i = -tau / ln(lambda_i)`` are implied
+    timescales.
+
+    Regularization: ``C(0)`` is eigen-decomposed and directions with
+    eigenvalue at most ``epsilon`` times the largest are dropped (counted in
+    ``n_dropped_``); the kept space is whitened and the symmetric eigenproblem
+    of the whitened ``C(tau)`` is solved.
+
+    Parameters
+    ----------
+    n_components : int, default=None
+        Number of components kept; None keeps all directions that survive
+        the `epsilon` cut.
+    lag : int, default=1
+        Lag ``tau`` in frames, >= 1.
+    epsilon : float, default=1e-6
+        Relative eigenvalue cut on ``C(0)``, in [0, 1).
+    reversible : bool, default=True
+        True: symmetrized estimate (each pair counted in both time
+        directions; mean over both ends, ``C0 = (Cxx + Cyy) / 2``,
+        ``Ctau = (Cxy + Cyx) / 2``), see
+        :meth:`~cvdesign.moments.LaggedMoments.covariances`. False: mean and
+        ``C0`` from the earlier frames of the pairs only and ``Ctau = Cxy``
+        about the means of each end; the eigenproblem then uses the symmetric
+        part of ``Ctau``, the only part the autocorrelation ``w^T Ctau w``
+        of a projection sees.
+    scaling : {None, 'kinetic_map'}, default=None
+        None: :meth:`transform` returns projections with unit variance
+        (``C(0)``-orthonormal directions). ``'kinetic_map'``: each component is
+        multiplied by its eigenvalue, so that Euclidean distances in the
+        output approximate kinetic distances (Noé and Clementi 2015).
+
+    Attributes
+    ----------
+    mean_ : ndarray of shape (n_features,)
+        Mean subtracted before projecting, in feature units.
+    covariance_ : ndarray of shape (n_features, n_features)
+        Instantaneous covariance ``C(0)``.
+    covariance_lag_ : ndarray of shape (n_features, n_features)
+        Time-lagged covariance ``C(tau)`` (symmetric when `reversible`).
+    eigenvalues_ : ndarray of shape (n_components,)
+        Autocorrelations at the lag of the components, largest first.
+    eigenvectors_ : ndarray of shape (n_features, n_components)
+        Directions as columns, ``C(0)``-orthonormal
+        (``eigenvectors_.T @ covariance_ @ eigenvectors_ = I``), signs fixed by
+        :func:`fix_signs`; in inverse feature units.
+    timescales_ : ndarray of shape (n_components,)
+        Implied timescales in frames, see :func:`implied_timescales` (``inf``
+        for eigenvalues >= 1, NaN for eigenvalues <= 0).
+    n_dropped_ : int
+        Directions of ``C(0)`` dropped by the `epsilon` cut.
+    n_features_in_ : int
+
+    References
+    ----------
+    Molgedey, L. and Schuster, H. G. (1994). Separation of a mixture of
+    independent signals using time delayed correlations. Phys. Rev. Lett. 72,
+    3634-3637.
+
+    Perez-Hernandez, G., Paul, F., Giorgino, T., De Fabritiis, G. and Noé, F.
+    (2013). Identification of slow molecular order parameters for Markov model
+    construction. J. Chem. Phys. 139, 015102.
+
+    Noé, F. and Clementi, C. (2015). Kinetic distance and kinetic maps from
+    molecular dynamics simulation. J. Chem. Theory Comput. 11, 5002-5011.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from scipy.signal import lfilter
+    >>> rng = np.random.default_rng(0)
+    >>> slow = lfilter([1.0], [1.0, -0.99], rng.normal(size=4000))  # AR(1), t = 100 frames
+    >>> fast = rng.normal(size=4000)
+    >>> X = np.c_[slow + fast, slow - fast]                         # mixed
+    >>> tica = TICA(lag=10).fit(X)
+    >>> tica.eigenvectors_.shape
+    (2, 2)
+    >>> bool(tica.eigenvalues_[0] > 0.8 and abs(tica.eigenvalues_[1]) < 0.1)
+    True
+    >>> w = tica.eigenvectors_[:, 0]
+    >>> bool(w.sum() / np.sqrt(2 * w @ w) > 0.99)    # slow mode = x0 + x1
+    True
+    >>> bool(80 < tica.timescales_[0] < 120)          # 1 / -ln(0.99) = 99.5 frames
+    True
+    """
+
+    def __init__(self, n_components=None, *, lag=1, epsilon=1e-6, reversible=True,
+                 scaling=None):
         self.n_components = n_components
-        self.priors = priors
-        self.shrinkage = shrinkage
+        self.lag = lag
+        self.epsilon = epsilon
+        self.reversible = reversible
+        self.scaling = scaling
 
-    def fit(self, X, y):
-        """Fit from feature values `X` and state labels `y`; return self."""
-        X, y = validate_data(self, X, y, ensure_min_samples=2, dtype=np.float64)
-        self.classes_ = unique_labels(y)
-        if len(self.classes_) < 2:
-            raise ValueError(
-                f"LDA needs at least 2 classes; y has {len(self.classes_)} ({self.classes_!r})"
-            )
-        moments = [Moments.from_data(X[y == c]) for c in self.classes_]
-        return self._fit_moments(moments)
+    def _check_params(self):
+        lag = _check_lag(self.lag)
+        _check_epsilon(self.epsilon)
+        if self.scaling not in (None, "kinetic_map"):
+            raise ValueError(f"scaling={self.scaling!r} must be None or 'kinetic_map'")
+        if not isinstance(self.reversible, (bool, np.bool_)):
+            raise ValueError(f"reversible={self.reversible!r} must be True or False")
+        n = self.n_components
+        if n is not None and (isinstance(n, (bool, np.bool_))
+                              or not isinstance(n, (int, np.integer)) or n < 1):
+            raise ValueError(f"n_components={n!r} must be None or an integer >= 1")
+        return lag
 
-    @classmethod
-    def from_moments(cls, moments, *, n_components=None, priors=None, shrinkage=0.0):
-        """Fit from per-state :class:`~cvdesign.moments.Moments`.
+    def fit(self, X, y=None):
+        """Fit from one trajectory or a list of trajectories.
 
         Parameters
         ----------
-        moments : sequence of Moments
-            One per state, all with the same features; ``classes_`` becomes
-            ``0 .. n_states - 1``.
-        n_components, priors, shrinkage
+        X : array-like of shape (n_frames, n_features), or list of such arrays
+            Feature values in time order, one array per trajectory; pairs
+            never span two arrays. Arrays with at most `lag` frames add no
+            pairs, but at least one must be longer.
+        y : None
+            Ignored.
+
+        Returns
+        -------
+        self
+        """
+        lag = self._check_params()
+        series, is_list = _as_series(X)
+        if not is_list:
+            series = [validate_data(self, X, dtype=np.float64)]
+        else:
+            self.n_features_in_ = series[0].shape[1]
+        lengths = [x.shape[0] for x in series]
+        longest = max(lengths)
+        if longest <= lag:
+            what = (f"X has n_samples={longest} frames" if not is_list else
+                    f"the longest of the {len(series)} trajectories in X has {longest} frames")
+            advice = (f"choose lag <= {longest - 1}" if longest >= 2
+                      else "give at least 2 frames")
+            raise ValueError(
+                f"lag={lag} frames needs a trajectory of at least {lag + 1} frames, but "
+                f"{what}; {advice}"
+            )
+        # Pass 1: the mean of all frames, used as the shift of the lagged sums.
+        shift = sum(x.sum(axis=0) for x in series) / sum(lengths)
+        moments = None
+        for x in series:
+            m = LaggedMoments.from_series(x, lag, shift=shift)
+            moments = m if moments is None else moments.merge(m)
+        return self._fit_moments(moments, lag)
+
+    @classmethod
+    def from_moments(cls, lagged_moments, *, lag, n_components=None, epsilon=1e-6,
+                     reversible=True, scaling=None):
+        """Fit from :class:`~cvdesign.moments.LaggedMoments`.
+
+        Parameters
+        ----------
+        lagged_moments : LaggedMoments
+            Statistics of the lagged pairs, e.g. merged over trajectories.
+        lag : int
+            The lag in frames at which they were accumulated (checked against
+            ``lagged_moments.lag`` when that is known).
+        n_components, epsilon, reversible, scaling
             As in the constructor.
 
         Returns
         -------
-        LDA
+        TICA
             A fitted estimator.
-        """
-        est = cls(n_components=n_components, priors=priors, shrinkage=shrinkage)
-        est.classes_ = np.arange(len(moments))
-        est.n_features_in_ = moments[0].n_features
-        return est._fit_moments(list(moments))
 
-    def _fit_moments(self, moments):
-        n_classes = len(moments)
-        n_features = moments[0].n_features
-        if self.priors is None:
-            counts = np.array([m.count for m in moments], dtype=np.float64)
-            priors = counts / counts.sum()
+        Examples
+        --------
+        >>> import numpy as np
+        >>> from cvdesign.moments import LaggedMoments
+        >>> x = np.random.default_rng(0).normal(size=(500, 3)).cumsum(axis=0)
+        >>> lm = LaggedMoments.from_series(x, lag=5, shift=x.mean(axis=0))
+        >>> tica = TICA.from_moments(lm, lag=5)
+        >>> bool(np.allclose(tica.eigenvalues_, TICA(lag=5).fit(x).eigenvalues_))
+        True
+        """
+        if not isinstance(lagged_moments, LaggedMoments):
+            raise ValueError(f"lagged_moments must be a LaggedMoments; "
+                             f"got {type(lagged_moments).__name__}")
+        est = cls(n_components=n_components, lag=lag, epsilon=epsilon,
+                  reversible=reversible, scaling=scaling)
+        lag = est._check_params()
+        if lagged_moments.lag is not None and lagged_moments.lag != lag:
+            raise ValueError(f"lag={lag} does not match the lag of lagged_moments "
+                             f"({lagged_moments.lag} frames)")
+        if lagged_moments.count == 0:
+            raise ValueError("lagged_moments holds no pairs (count=0)")
+        est.n_features_in_ = lagged_moments.n_features
+        return est._fit_moments(lagged_moments, lag)
+
+    def _fit_moments(self, moments, lag):
+        epsilon = _check_epsilon(self.epsilon)
+        if self.reversible:
+            mean, c0, ct = moments.covariances(reversible=True)
         else:
-            priors = np.asarray(self.priors, dtype=np.float64).reshape(-1)
-            if priors.shape[0] != n_classes or np.any(priors < 0) or priors.sum() <= 0:
-                raise ValueError(
-                    f"priors={self.priors!r} must hold {n_classes} non-negative numbers"
-                )
-            priors = priors / priors.sum()
-        max_comp = min(n_classes - 1, n_features)
-        n_comp = max_comp if self.n_components is None else int(self.n_components)
-        if not 1 <= n_comp <= max_comp:
+            mean, _, c0, ct, _ = moments.covariances(reversible=False)
+        white, n_dropped = _whitener(c0, epsilon, "the instantaneous covariance C0")
+        kt = white.T @ ct @ white
+        kt = 0.5 * (kt + kt.T)
+        evals, evecs = scipy.linalg.eigh(kt)
+        order = np.argsort(-evals, kind="stable")
+        n_kept = white.shape[1]
+        n_comp = n_kept if self.n_components is None else int(self.n_components)
+        if n_comp > n_kept:
             raise ValueError(
-                f"n_components={self.n_components!r} must be between 1 and "
-                f"min(n_classes - 1, n_features)={max_comp}"
+                f"n_components={self.n_components!r} must be between 1 and the number of "
+                f"directions kept, {n_kept} (of {c0.shape[0]} features; {n_dropped} dropped "
+                f"by epsilon={self.epsilon!r})"
             )
-        means = np.array([m.mean for m in moments])
-        covs = np.array([m.covariance for m in moments])
-        evals, evecs = discriminant_directions(means, covs, priors, shrinkage=self.shrinkage)
-        self.priors_ = priors
-        self.means_ = means
-        self.covariance_ = np.tensordot(priors, covs, axes=1)
-        self.xbar_ = priors @ means
-        self.scalings_ = evecs[:, :n_comp]
-        self.eigenvalues_ = evals[:n_comp]
+        order = order[:n_comp]
+        self.mean_ = mean
+        self.covariance_ = c0
+        self.covariance_lag_ = ct
+        self.eigenvalues_ = evals[order]
+        self.eigenvectors_ = fix_signs(white @ evecs[:, order])
+        self.timescales_ = implied_timescales(self.eigenvalues_, lag)
+        self.n_dropped_ = n_dropped
         return self
 
+    def _project(self, X):
+        out = (X - self.mean_) @ self.eigenvectors_
+        if self.scaling == "kinetic_map":
+            out = out * self.eigenvalues_
+        return out
+
     def transform(self, X):
-        """Project `X` onto the discriminant directions.
+        """Project onto the TICA components.
+
+        Parameters
+        ----------
+        X : array-like of shape (n_frames, n_features), or list of such arrays
 
         Returns
         -------
-        ndarray of shape (n_samples, n_components)
-            ``(X - xbar_) @ scalings_``, in the features' units.
+        ndarray of shape (n_frames, n_components), or list of them
+            ``(X - mean_) @ eigenvectors_`` (dimensionless, unit variance per
+            component), times ``eigenvalues_`` with ``scaling='kinetic_map'``;
+            a list when `X` is a list.
         """
         check_is_fitted(self)
-        X = check_array(X, dtype=np.float64)
-        if X.shape[1] != self.scalings_.shape[0]:
-            raise ValueError(
-                f"X has {X.shape[1]} features, but LDA was fitted with {self.scalings_.shape[0]}"
-            )
-        return (X - self.xbar_) @ self.scalings_
+        series, is_list = _as_series(X)
+        if not is_list:
+            return self._project(validate_data(self, X, reset=False, dtype=np.float64))
+        for i, x in enumerate(series):
+            if x.shape[1] != self.n_features_in_:
+                raise ValueError(f"X[{i}] has {x.shape[1]} features, but TICA was fitted "
+                                 f"with {self.n_features_in_}")
+        return [self._project(x) for x in series]

@@ -11,12 +11,24 @@ Two kinds are provided:
   of a set of features, merged with the pairwise update of Chan, Golub and
   LeVeque (1979);
 * :class:`DiagonalMoments` -- the same with the diagonal only (per-feature mean
-  and variance), for screening pools too large for a full covariance.
+  and variance), for screening pools too large for a full covariance;
+* :class:`LaggedMoments` -- sums of time-lagged pairs ``(x_t, x_{t+lag})`` about
+  a fixed shift, from which instantaneous and lagged covariances follow
+  (TICA, VAMP-2), merged by exact addition; :class:`DiagonalLaggedMoments` is
+  its per-feature counterpart (autocorrelations), and :class:`LagAccumulator`
+  builds either from consecutive chunks of trajectories.
 """
 
 import numpy as np
 
-__all__ = ["Moments", "DiagonalMoments", "merge_all"]
+__all__ = [
+    "Moments",
+    "DiagonalMoments",
+    "merge_all",
+    "LaggedMoments",
+    "DiagonalLaggedMoments",
+    "LagAccumulator",
+]
 
 
 def _as_2d(x, n_features, name="x"):
@@ -290,3 +302,563 @@ def merge_all(items):
             nxt.append(items[-1])
         items = nxt
     return items[0]
+
+
+# ---------------------------------------------------------------------------
+# Time-lagged statistics
+# ---------------------------------------------------------------------------
+
+
+def _check_lag(lag):
+    """Validate a lag in frames and return it as an int."""
+    if isinstance(lag, (bool, np.bool_)) or not isinstance(lag, (int, np.integer)) or lag < 1:
+        raise ValueError(f"lag={lag!r} must be an integer >= 1 (a number of frames)")
+    return int(lag)
+
+
+class _LaggedBase:
+    """Shared machinery of :class:`LaggedMoments` and :class:`DiagonalLaggedMoments`.
+
+    Subclasses define ``_outer(a, b)`` (outer product or elementwise product)
+    and ``_products(d0, dt, w)`` (the three second-moment sums of a block).
+    """
+
+    __slots__ = ("count", "n_pairs", "lag", "shift", "sum_x", "sum_y",
+                 "sum_xx", "sum_xy", "sum_yy")
+
+    def __init__(self, n_features, *, shift=None, lag=None):
+        n_features = int(n_features)
+        if n_features < 0:
+            raise ValueError(f"n_features={n_features!r} must be >= 0")
+        if shift is None:
+            shift = np.zeros(n_features)
+        else:
+            shift = np.array(shift, dtype=np.float64, copy=True).reshape(-1)
+            if shift.shape[0] != n_features:
+                raise ValueError(
+                    f"shift has {shift.shape[0]} entries; these moments hold {n_features} features"
+                )
+            if not np.all(np.isfinite(shift)):
+                raise ValueError("shift must be finite")
+        self.lag = None if lag is None else _check_lag(lag)
+        self.count = 0.0
+        self.n_pairs = 0
+        self.shift = shift
+        self.sum_x = np.zeros(n_features)
+        self.sum_y = np.zeros(n_features)
+        zero = self._zero_second(n_features)
+        self.sum_xx = zero.copy()
+        self.sum_xy = zero.copy()
+        self.sum_yy = zero.copy()
+
+    @property
+    def n_features(self):
+        """int : number of features."""
+        return self.shift.shape[0]
+
+    @classmethod
+    def from_series(cls, x, lag, weights=None, shift=None):
+        """Statistics of the pairs ``(x[t], x[t + lag])`` of one time-ordered series.
+
+        Parameters
+        ----------
+        x : array-like of shape (n_frames, n_features)
+            Feature values of ONE trajectory, in time order.
+        lag : int
+            Lag in frames, >= 1.
+        weights : array-like of shape (n_frames,), default=None
+            Non-negative frame weights; a pair gets the weight of its earlier
+            frame ``x[t]``. All 1 when None.
+        shift : array-like of shape (n_features,), default=None
+            Fixed vector the sums are accumulated about (zeros when None).
+
+        Returns
+        -------
+        instance of the class
+            Empty (``count == 0``) when ``n_frames <= lag``.
+        """
+        lag = _check_lag(lag)
+        x = _as_2d(x, None)
+        w = _weights(weights, x.shape[0])
+        m = cls(x.shape[1], shift=shift, lag=lag)
+        if x.shape[0] > lag:
+            m.add_pairs(x[:-lag], x[lag:], None if w is None else w[:-lag])
+        return m
+
+    def add_pairs(self, x0, xt, weights=None):
+        """Add pairs ``(x0[i], xt[i])`` in place and return self.
+
+        Parameters
+        ----------
+        x0 : array-like of shape (n_pairs, n_features)
+            Earlier frames of the pairs.
+        xt : array-like of shape (n_pairs, n_features)
+            Frames one lag later.
+        weights : array-like of shape (n_pairs,), default=None
+            Non-negative pair weights (all 1 when None).
+
+        Returns
+        -------
+        self
+        """
+        x0 = _as_2d(x0, self.n_features, "x0")
+        xt = _as_2d(xt, self.n_features, "xt")
+        if x0.shape != xt.shape:
+            raise ValueError(f"x0 has shape {x0.shape} but xt has shape {xt.shape}; "
+                             "they must hold the same number of pairs")
+        w = _weights(weights, x0.shape[0])
+        if x0.shape[0] == 0:
+            return self
+        d0 = x0 - self.shift
+        dt = xt - self.shift
+        if w is None:
+            self.count += float(x0.shape[0])
+            self.sum_x += d0.sum(axis=0)
+            self.sum_y += dt.sum(axis=0)
+        else:
+            self.count += float(w.sum())
+            self.sum_x += w @ d0
+            self.sum_y += w @ dt
+        self.n_pairs += int(x0.shape[0])
+        sxx, sxy, syy = self._products(d0, dt, w)
+        self.sum_xx += sxx
+        self.sum_xy += sxy
+        self.sum_yy += syy
+        return self
+
+    def copy(self):
+        """Return an independent copy."""
+        m = type(self)(self.n_features, shift=self.shift, lag=self.lag)
+        m.count = self.count
+        m.n_pairs = self.n_pairs
+        for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
+            setattr(m, name, getattr(self, name).copy())
+        return m
+
+    def merge(self, other):
+        """Return the statistics of the union of two disjoint sets of pairs.
+
+        Exact: every sum is added. Both sides must have the same shift (an
+        empty side, ``count == 0``, is exempt) and, when both know it, the
+        same lag; use :meth:`reshifted` to bring statistics to a common shift.
+
+        Parameters
+        ----------
+        other : same class as self
+            Statistics of other pairs (another trajectory, chunk or worker).
+
+        Returns
+        -------
+        new instance
+            Neither input is modified.
+        """
+        if type(other) is not type(self):
+            raise ValueError(f"cannot merge {type(other).__name__} into {type(self).__name__}")
+        if other.n_features != self.n_features:
+            raise ValueError(
+                f"cannot merge moments of {other.n_features} features into {self.n_features}"
+            )
+        if self.lag is not None and other.lag is not None and self.lag != other.lag:
+            raise ValueError(
+                f"cannot merge lagged moments of lag={other.lag} into lag={self.lag}"
+            )
+        lag = self.lag if self.lag is not None else other.lag
+        if other.count == 0 or self.count == 0:
+            m = (self if other.count == 0 else other).copy()
+            m.n_pairs = self.n_pairs + other.n_pairs
+            m.lag = lag
+            return m
+        if not np.array_equal(self.shift, other.shift):
+            raise ValueError("cannot merge lagged moments accumulated about different shifts; "
+                             "bring one to the other's shift with .reshifted(shift) first")
+        m = self.copy()
+        m.lag = lag
+        m.count += other.count
+        m.n_pairs += other.n_pairs
+        for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
+            setattr(m, name, getattr(m, name) + getattr(other, name))
+        return m
+
+    def reshifted(self, shift):
+        """The same statistics accumulated about another shift vector.
+
+        Parameters
+        ----------
+        shift : array-like of shape (n_features,)
+
+        Returns
+        -------
+        new instance
+            Equal to re-accumulating the pairs about `shift`, up to rounding.
+        """
+        m = type(self)(self.n_features, shift=shift, lag=self.lag)
+        d = self.shift - m.shift
+        n = self.count
+        m.count, m.n_pairs = n, self.n_pairs
+        m.sum_x = self.sum_x + n * d
+        m.sum_y = self.sum_y + n * d
+        dd = n * self._outer(d, d)
+        m.sum_xx = self.sum_xx + self._outer(self.sum_x, d) + self._outer(d, self.sum_x) + dd
+        m.sum_xy = self.sum_xy + self._outer(self.sum_x, d) + self._outer(d, self.sum_y) + dd
+        m.sum_yy = self.sum_yy + self._outer(self.sum_y, d) + self._outer(d, self.sum_y) + dd
+        return m
+
+    def _centered(self):
+        """Mean offsets ``a = sum_x / n``, ``b = sum_y / n`` (about the shift)."""
+        return self.sum_x / self.count, self.sum_y / self.count
+
+
+class LaggedMoments(_LaggedBase):
+    """Mergeable statistics of time-lagged pairs ``(x_t, y_t = x_{t+lag})``.
+
+    Holds the weighted pair count, the sums of ``x`` and ``y`` and the three
+    second-moment matrices ``sum w x x^T``, ``sum w x y^T`` and
+    ``sum w y y^T``, all accumulated about a fixed `shift` vector (for example
+    a mean from a first pass over the data) so that the raw sums stay well
+    conditioned. Merging adds the sums, which is exact.
+
+    Parameters
+    ----------
+    n_features : int
+        Number of features.
+    shift : array-like of shape (n_features,), default=None
+        Vector subtracted from every frame before accumulation (zeros when
+        None). Choose it near the data mean when the features are far from
+        zero compared with their spread.
+    lag : int, default=None
+        Lag in frames, when known; :meth:`merge` refuses to mix lags.
+
+    Attributes
+    ----------
+    count : float
+        Sum of pair weights (number of pairs when unweighted).
+    n_pairs : int
+        Number of pairs added, whatever their weights.
+    lag : int or None
+    shift : ndarray of shape (n_features,)
+    sum_x, sum_y : ndarray of shape (n_features,)
+        ``sum w (x - shift)`` and ``sum w (y - shift)``.
+    sum_xx, sum_xy, sum_yy : ndarray of shape (n_features, n_features)
+        ``sum w (x - shift)(x - shift)^T``, ``sum w (x - shift)(y - shift)^T``
+        and ``sum w (y - shift)(y - shift)^T``.
+
+    See Also
+    --------
+    LagAccumulator : building these statistics from a stream of chunks.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.random.default_rng(0).normal(size=(200, 2)).cumsum(axis=0)
+    >>> a = LaggedMoments.from_series(x[:100], lag=3)
+    >>> b = LaggedMoments.from_series(x[100:], lag=3)
+    >>> (a.merge(b).n_pairs, LaggedMoments.from_series(x, lag=3).n_pairs)
+    (194, 197)
+    >>> mean, c0, ctau = a.covariances()
+    >>> bool(np.allclose(c0, c0.T) and np.allclose(ctau, ctau.T))
+    True
+    """
+
+    __slots__ = ()
+
+    @staticmethod
+    def _zero_second(n):
+        return np.zeros((n, n))
+
+    @staticmethod
+    def _outer(a, b):
+        return np.outer(a, b)
+
+    @staticmethod
+    def _products(d0, dt, w):
+        d0w = d0 if w is None else d0 * w[:, None]
+        dtw = dt if w is None else dt * w[:, None]
+        return d0w.T @ d0, d0w.T @ dt, dtw.T @ dt
+
+    def subset(self, index):
+        """Statistics of a subset of the features (exact).
+
+        Parameters
+        ----------
+        index : array-like of int
+            Feature indices, in the order wanted.
+
+        Returns
+        -------
+        LaggedMoments
+        """
+        index = np.asarray(index, dtype=np.intp).reshape(-1)
+        m = LaggedMoments(index.shape[0], shift=self.shift[index], lag=self.lag)
+        m.count, m.n_pairs = self.count, self.n_pairs
+        m.sum_x = self.sum_x[index].copy()
+        m.sum_y = self.sum_y[index].copy()
+        ix = np.ix_(index, index)
+        m.sum_xx = self.sum_xx[ix].copy()
+        m.sum_xy = self.sum_xy[ix].copy()
+        m.sum_yy = self.sum_yy[ix].copy()
+        return m
+
+    def diagonal(self):
+        """The per-feature statistics (a :class:`DiagonalLaggedMoments`)."""
+        m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=self.lag)
+        m.count, m.n_pairs = self.count, self.n_pairs
+        m.sum_x, m.sum_y = self.sum_x.copy(), self.sum_y.copy()
+        m.sum_xx = np.diag(self.sum_xx).copy()
+        m.sum_xy = np.diag(self.sum_xy).copy()
+        m.sum_yy = np.diag(self.sum_yy).copy()
+        return m
+
+    def covariances(self, reversible=True):
+        """Mean, instantaneous and time-lagged covariances (biased, ``/ count``).
+
+        Parameters
+        ----------
+        reversible : bool, default=True
+            True: the symmetrized estimate, which treats every pair as seen in
+            both time directions (detailed balance); False: each end of the
+            pairs about its own mean.
+
+        Returns
+        -------
+        tuple
+            With ``reversible=True``: ``(mean, C0, Ctau)`` where ``mean`` of
+            shape (n_features,) is the mean over both ends of the pairs,
+            ``C0 = (Cxx + Cyy) / 2`` and ``Ctau = (Cxy + Cyx) / 2``, both of
+            shape (n_features, n_features), symmetric, about that common
+            mean. With ``reversible=False``: ``(mean_x, mean_y, Cxx, Cxy,
+            Cyy)``, each covariance about the means of its own ends
+            (``Cxy[i, j] = cov(x_i, y_j)``). Units: the features' (squared
+            for covariances). All NaN when there are no pairs.
+        """
+        n = self.n_features
+        if self.count == 0:
+            vec, mat = np.full(n, np.nan), np.full((n, n), np.nan)
+            if reversible:
+                return vec, mat, mat.copy()
+            return vec, vec.copy(), mat, mat.copy(), mat.copy()
+        a, b = self._centered()
+        if reversible:
+            m = 0.5 * (a + b)
+            mm = np.outer(m, m)
+            c0 = 0.5 * (self.sum_xx + self.sum_yy) / self.count - mm
+            ct = 0.5 * (self.sum_xy + self.sum_xy.T) / self.count - mm
+            return self.shift + m, 0.5 * (c0 + c0.T), 0.5 * (ct + ct.T)
+        cxx = self.sum_xx / self.count - np.outer(a, a)
+        cyy = self.sum_yy / self.count - np.outer(b, b)
+        cxy = self.sum_xy / self.count - np.outer(a, b)
+        return (self.shift + a, self.shift + b, 0.5 * (cxx + cxx.T), cxy,
+                0.5 * (cyy + cyy.T))
+
+
+class DiagonalLaggedMoments(_LaggedBase):
+    """Per-feature statistics of time-lagged pairs, for pools too large for matrices.
+
+    The diagonal of :class:`LaggedMoments`: count, ``sum_x``, ``sum_y``,
+    ``sum_xx``, ``sum_xy`` and ``sum_yy`` per feature (memory linear in the
+    number of features), with the same constructors and exact merge.
+
+    Parameters
+    ----------
+    n_features : int
+        Number of features.
+    shift : array-like of shape (n_features,), default=None
+        As in :class:`LaggedMoments`.
+    lag : int, default=None
+        As in :class:`LaggedMoments`.
+
+    Attributes
+    ----------
+    count : float
+    n_pairs : int
+    lag : int or None
+    shift : ndarray of shape (n_features,)
+    sum_x, sum_y, sum_xx, sum_xy, sum_yy : ndarray of shape (n_features,)
+        Per-feature sums about `shift`, e.g. ``sum_xy = sum w (x - shift)(y - shift)``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.random.default_rng(0).normal(size=(5000, 2))
+    >>> x[:, 1] = np.convolve(x[:, 1], np.ones(20) / 20, mode="same")  # a slow feature
+    >>> ac = DiagonalLaggedMoments.from_series(x, lag=5).autocorrelation()
+    >>> bool(abs(ac[0]) < 0.1 and ac[1] > 0.6)
+    True
+    """
+
+    __slots__ = ()
+
+    @staticmethod
+    def _zero_second(n):
+        return np.zeros(n)
+
+    @staticmethod
+    def _outer(a, b):
+        return a * b
+
+    @staticmethod
+    def _products(d0, dt, w):
+        if w is None:
+            return (d0 * d0).sum(axis=0), (d0 * dt).sum(axis=0), (dt * dt).sum(axis=0)
+        return w @ (d0 * d0), w @ (d0 * dt), w @ (dt * dt)
+
+    def subset(self, index):
+        """Statistics of a subset of the features (exact).
+
+        Parameters
+        ----------
+        index : array-like of int
+
+        Returns
+        -------
+        DiagonalLaggedMoments
+        """
+        index = np.asarray(index, dtype=np.intp).reshape(-1)
+        m = DiagonalLaggedMoments(index.shape[0], shift=self.shift[index], lag=self.lag)
+        m.count, m.n_pairs = self.count, self.n_pairs
+        for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
+            setattr(m, name, getattr(self, name)[index].copy())
+        return m
+
+    def covariances(self, reversible=True):
+        """Per-feature means, variances and lagged covariances (biased, ``/ count``).
+
+        Parameters
+        ----------
+        reversible : bool, default=True
+            As in :meth:`LaggedMoments.covariances`.
+
+        Returns
+        -------
+        tuple of ndarray of shape (n_features,)
+            ``(mean, var0, covtau)`` when reversible, else
+            ``(mean_x, mean_y, var_x, cov_xy, var_y)``: the diagonals of
+            :meth:`LaggedMoments.covariances`. All NaN when there are no pairs.
+        """
+        n = self.n_features
+        if self.count == 0:
+            return tuple(np.full(n, np.nan) for _ in range(3 if reversible else 5))
+        a, b = self._centered()
+        if reversible:
+            m = 0.5 * (a + b)
+            var0 = 0.5 * (self.sum_xx + self.sum_yy) / self.count - m * m
+            covt = self.sum_xy / self.count - m * m
+            return self.shift + m, var0, covt
+        return (self.shift + a, self.shift + b, self.sum_xx / self.count - a * a,
+                self.sum_xy / self.count - a * b, self.sum_yy / self.count - b * b)
+
+    def autocorrelation(self, reversible=True):
+        """Normalized autocorrelation of each feature at the lag.
+
+        Parameters
+        ----------
+        reversible : bool, default=True
+            True: ``covtau / var0`` of the symmetrized estimate; False:
+            ``cov(x, y) / sqrt(var(x) var(y))`` with each end about its own
+            mean.
+
+        Returns
+        -------
+        ndarray of shape (n_features,)
+            Dimensionless, in [-1, 1] up to rounding; NaN for a feature with
+            zero variance or when there are no pairs.
+        """
+        out = np.full(self.n_features, np.nan)
+        if self.count == 0:
+            return out
+        if reversible:
+            _, var0, covt = self.covariances(True)
+            ok = var0 > 0
+            out[ok] = covt[ok] / var0[ok]
+        else:
+            _, _, vx, cxy, vy = self.covariances(False)
+            ok = (vx > 0) & (vy > 0)
+            out[ok] = cxy[ok] / np.sqrt(vx[ok] * vy[ok])
+        return out
+
+
+class LagAccumulator:
+    """Build lagged statistics from consecutive chunks of time series.
+
+    Keeps the last `lag` frames of the current series as a buffer, so that a
+    pair spanning a chunk boundary is counted exactly once, and the result
+    equals :meth:`LaggedMoments.from_series` on the whole series, whatever the
+    chunk sizes. :meth:`break_series` starts a new, independent series (a
+    trajectory boundary): no pair spans it.
+
+    Parameters
+    ----------
+    n_features : int
+        Number of features.
+    lag : int
+        Lag in frames, >= 1.
+    shift : array-like of shape (n_features,), default=None
+        As in :class:`LaggedMoments`.
+    diagonal : bool, default=False
+        Accumulate a :class:`DiagonalLaggedMoments` instead of a
+        :class:`LaggedMoments`.
+
+    Attributes
+    ----------
+    moments : LaggedMoments or DiagonalLaggedMoments
+        The statistics so far (the live object; copy it to keep a snapshot).
+    n_frames : int
+        Frames fed so far, over all series.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.random.default_rng(0).normal(size=(100, 3))
+    >>> acc = LagAccumulator(3, lag=4)
+    >>> for chunk in np.array_split(x, 7):
+    ...     _ = acc.feed(chunk)
+    >>> whole = LaggedMoments.from_series(x, lag=4)
+    >>> acc.moments.n_pairs, bool(np.allclose(acc.moments.sum_xy, whole.sum_xy))
+    (96, True)
+    """
+
+    def __init__(self, n_features, lag, *, shift=None, diagonal=False):
+        self.lag = _check_lag(lag)
+        cls = DiagonalLaggedMoments if diagonal else LaggedMoments
+        self.moments = cls(n_features, shift=shift, lag=self.lag)
+        self.n_frames = 0
+        self._buffer = np.zeros((0, self.moments.n_features))
+        self._buffer_w = np.zeros(0)
+
+    def feed(self, x_chunk, weights=None):
+        """Add the next chunk of the current series and return self.
+
+        Parameters
+        ----------
+        x_chunk : array-like of shape (n_frames, n_features)
+            Frames following those fed before (since the last
+            :meth:`break_series`), in time order.
+        weights : array-like of shape (n_frames,), default=None
+            Frame weights (all 1 when None); a pair gets the weight of its
+            earlier frame.
+
+        Returns
+        -------
+        self
+        """
+        x = _as_2d(x_chunk, self.moments.n_features, "x_chunk")
+        w = _weights(weights, x.shape[0])
+        if x.shape[0] == 0:
+            return self
+        w = np.ones(x.shape[0]) if w is None else w
+        frames = np.concatenate([self._buffer, x])
+        fw = np.concatenate([self._buffer_w, w])
+        lag = self.lag
+        if frames.shape[0] > lag:
+            # Every pair here ends in the new chunk (the buffer holds at most `lag`
+            # frames), so none was counted before.
+            self.moments.add_pairs(frames[:-lag], frames[lag:], fw[:-lag])
+        self._buffer = frames[-lag:].copy()
+        self._buffer_w = fw[-lag:].copy()
+        self.n_frames += x.shape[0]
+        return self
+
+    def break_series(self):
+        """End the current series: no pair will span this point. Returns self."""
+        self._buffer = self._buffer[:0]
+        self._buffer_w = self._buffer_w[:0]
+        return self

@@ -23,15 +23,13 @@ import csv
 import io
 import json
 import math
-import os
-import shutil
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from . import __version__
+from ._io import prepare_output_dir, write_dir_atomically
 from .combine import FoldMoments, fit_direction, greedy_search, rank_combinations
 from .estimators import rayleigh_quotient
 from .errors import InputError
@@ -39,9 +37,9 @@ from .moments import DiagonalMoments, Moments, merge_all
 from .pool import build_pool
 from .redundancy import descriptor_correlation, redundancy_graph, representatives
 from .scoring import Histograms, fisher_ratio, overlap_coefficient
-from .source import file_sha256
+from .source import file_sha256, stores_time
 
-__all__ = ["suggest", "Suggestions", "prepare_output_dir", "CAUTION"]
+__all__ = ["suggest", "Suggestions", "CAUTION"]
 
 #: Printed with, and stored in, every output that guides a simulation.
 CAUTION = (
@@ -51,6 +49,10 @@ CAUTION = (
 )
 
 _N_BINS = 50
+
+#: Fewest frames of each state in each held-out fold; with fewer, the within-state
+#: variance of a fold is too noisy to score on.
+MIN_FRAMES_PER_FOLD = 10
 
 
 def _note(progress, msg):
@@ -78,6 +80,9 @@ class Suggestions:
         What was done: selection, pool sizes, prefilter, folds, shortlist.
     inputs : list of dict
         Per input file: path, state(s), frames, time step in ps.
+    input_files : list of str
+        Paths of every file read (topology included); :meth:`write` refuses
+        to write over them.
     """
 
     states: list
@@ -87,6 +92,7 @@ class Suggestions:
     specs: list
     notes: list = field(default_factory=list)
     inputs: list = field(default_factory=list)
+    input_files: list = field(default_factory=list)
 
     # ----------------------------------------------------------- renderings
     def scorecard_csv(self):
@@ -174,7 +180,8 @@ class Suggestions:
         force : bool, default=False
             Replace an existing non-empty directory.
         """
-        out_dir = prepare_output_dir(out_dir, force=force)
+        out_dir = prepare_output_dir(out_dir, force=force, inputs=self.input_files,
+                                     marker="ranking.json")
         files = {
             "ranking.csv": self.ranking_csv(),
             "ranking.json": self.ranking_json(),
@@ -183,7 +190,7 @@ class Suggestions:
         }
         for r, spec in zip(self.ranking, self.specs):
             files[r["spec"]] = _dumps(spec)
-        _write_dir_atomically(out_dir, files)
+        write_dir_atomically(out_dir, files)
         return out_dir
 
 
@@ -201,46 +208,12 @@ def _dumps(obj):
     return json.dumps(obj, indent=2, sort_keys=True, allow_nan=False) + "\n"
 
 
-def prepare_output_dir(out_dir, *, force=False):
-    """Check that `out_dir` may be written; return it as a Path.
-
-    Raises
-    ------
-    InputError
-        When it exists and is not an empty directory, unless `force`.
-    """
-    out_dir = Path(out_dir)
-    if out_dir.exists():
-        if not out_dir.is_dir():
-            raise InputError(f"output {str(out_dir)!r} exists and is not a directory; "
-                             "choose another --out")
-        if any(out_dir.iterdir()) and not force:
-            raise InputError(f"output directory {str(out_dir)!r} exists and is not empty; "
-                             "choose another --out, or pass --force to replace it")
-    parent = out_dir.resolve().parent
-    if not parent.exists():
-        raise InputError(f"the parent directory of --out {str(out_dir)!r} does not exist")
-    return out_dir
-
-
-def _write_dir_atomically(out_dir, files):
-    out_dir = Path(out_dir)
-    tmp = Path(tempfile.mkdtemp(dir=out_dir.resolve().parent, prefix=f".{out_dir.name}.tmp-"))
-    try:
-        for name, text in files.items():
-            with open(tmp / name, "w", encoding="utf-8", newline="\n") as fh:
-                fh.write(text)
-        if out_dir.exists():
-            old = Path(tempfile.mkdtemp(dir=tmp.parent, prefix=f".{out_dir.name}.old-"))
-            os.rmdir(old)
-            os.replace(out_dir, old)
-            os.replace(tmp, out_dir)
-            shutil.rmtree(old)
-        else:
-            os.replace(tmp, out_dir)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
+def output_inputs(source):
+    """Every file a source reads (topology and trajectories)."""
+    files = [str(p) for p in source.files()]
+    if source.topology_path:
+        files.append(source.topology_path)
+    return files
 
 
 # ---------------------------------------------------------------- fold assignment
@@ -257,22 +230,28 @@ class _Folds:
                     files.append(seg.path)
             files_per_state.append(files)
         min_files = min(len(f) for f in files_per_state)
+        self.mode = "block"
         if min_files >= 2:
-            self.mode = "trajectory"
-            self.n_folds = min(n_folds, min_files)
-            self.file_fold = [{p: i % self.n_folds for i, p in enumerate(files)}
-                              for files in files_per_state]
-        else:
-            self.mode = "block"
-            self.n_folds = n_folds
-            small = [(source.states[s], int(seg_counts[:, s].sum()))
-                     for s in range(source.n_states) if seg_counts[:, s].max() < n_folds]
-            if small:
+            k = min(n_folds, min_files)
+            file_fold = [{p: i % k for i, p in enumerate(files)} for files in files_per_state]
+            per_fold = np.zeros((source.n_states, k))
+            for si, seg in enumerate(source.segments):
+                for s in range(source.n_states):
+                    if seg_counts[si, s]:
+                        per_fold[s, file_fold[s][seg.path]] += seg_counts[si, s]
+            if per_fold.min() >= MIN_FRAMES_PER_FOLD:
+                self.mode, self.n_folds, self.file_fold = "trajectory", k, file_fold
+        if self.mode == "block":
+            totals = seg_counts.sum(axis=0)
+            k = int(min(n_folds, totals.min() // MIN_FRAMES_PER_FOLD))
+            if k < 2:
+                s = int(np.argmin(totals))
                 raise InputError(
-                    f"state {small[0][0]!r} has too few frames ({small[0][1]}) in its "
-                    f"trajectory to split into {n_folds} contiguous blocks for held-out "
-                    "scoring; give more frames or more trajectories"
+                    f"state {source.states[s]!r} has only {int(totals[s])} frames; held-out "
+                    f"scoring needs at least {2 * MIN_FRAMES_PER_FOLD} per state "
+                    f"({MIN_FRAMES_PER_FOLD} in each of two folds); give more frames"
                 )
+            self.n_folds = k
         self.source = source
         self.seg_counts = seg_counts
         self._seen = np.zeros_like(seg_counts)
@@ -282,7 +261,9 @@ class _Folds:
             return (f"held-out scoring: {self.n_folds}-fold cross-validation by whole "
                     "trajectories (each state's files are split among the folds)")
         return (f"held-out scoring: {self.n_folds}-fold cross-validation by contiguous "
-                "blocks of each trajectory (a state has a single trajectory)")
+                "blocks of each trajectory (a state has a single trajectory, or too few "
+                f"frames per trajectory for whole-trajectory folds of at least "
+                f"{MIN_FRAMES_PER_FOLD} frames)")
 
     def reset(self):
         self._seen[:] = 0
@@ -383,11 +364,16 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
     diag = [DiagonalMoments(n_feat) for _ in range(n_states)]
     seg_counts = np.zeros((len(source.segments), n_states), dtype=np.int64)
     timesteps = {}
+    min_box = None
     chunk_size = _chunk_frames(source, n_feat)
     for chunk in source.iter_chunks(atom_indices=atoms, chunk_size=chunk_size):
         x = pool.features(chunk.trajectory, atom_indices=atoms)
+        if chunk.trajectory.unitcell_vectors is not None:
+            h = _box_heights(chunk.trajectory.unitcell_vectors).min()
+            min_box = h if min_box is None else min(min_box, h)
         si = chunk.segment_index
-        if si not in timesteps and chunk.trajectory.n_frames >= 2:
+        if si not in timesteps and chunk.trajectory.n_frames >= 2 and \
+                stores_time(source.segments[si].path):
             t = chunk.trajectory.time
             df = chunk.frames[1] - chunk.frames[0]
             timesteps[si] = float(t[1] - t[0]) / float(df) if df else None
@@ -400,6 +386,22 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
         raise InputError(f"state(s) {', '.join(map(repr, empty))} have no frames; check the "
                          "files and frame ranges given for them")
     inputs = _describe_inputs(source, seg_counts, timesteps)
+    if min_box is not None:
+        notes.append(f"periodic box: distances use the minimum image (smallest box height "
+                     f"{min_box:.3g} nm)")
+        is_dist = np.array([pool.descriptors[i].kind == "distance"
+                            for i in pool.feature_descriptor], dtype=bool)
+        if is_dist.any():
+            longest = float(np.max([d.maximum[is_dist].max() for d in diag]))
+            if longest > 0.5 * min_box:
+                notes.append(f"warning: some distances reach {longest:.3g} nm, more than half "
+                             f"the smallest box height ({min_box:.3g} nm), where the minimum "
+                             "image folds them back; lower --cutoff or check the box")
+    unknown = [i["file"] for i in inputs if i["timestep_ps"] is None]
+    if unknown:
+        notes.append("time step unknown for " + ", ".join(unknown[:5])
+                     + (" ..." if len(unknown) > 5 else "")
+                     + " (the format stores no times, or a single frame)")
     steps = {round(i["timestep_ps"], 9) for i in inputs if i["timestep_ps"] is not None}
     if len(steps) > 1:
         notes.append("time steps differ between files: "
@@ -572,7 +574,18 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
         ranking.append(entry)
         specs.append(_spec_dict(source, pool, name, entry, params, checksums))
     return Suggestions(states=list(source.states), pool=pool, scorecard=scorecard,
-                       ranking=ranking, specs=specs, notes=notes, inputs=inputs)
+                       ranking=ranking, specs=specs, notes=notes, inputs=inputs,
+                       input_files=output_inputs(source))
+
+
+def _box_heights(vectors):
+    """Perpendicular heights (nm) of boxes given as row vectors, shape (n, 3)."""
+    v = np.asarray(vectors, dtype=np.float64)
+    vol = np.abs(np.linalg.det(v))
+    out = np.empty(v.shape[:2])
+    for i, (j, k) in enumerate(((1, 2), (2, 0), (0, 1))):
+        out[:, i] = vol / np.linalg.norm(np.cross(v[:, j], v[:, k]), axis=1)
+    return out
 
 
 def _chunk_frames(source, n_features, budget=2_000_000):

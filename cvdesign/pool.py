@@ -15,8 +15,10 @@ Candidates come from an atom selection:
   (:func:`prefilter_distances`);
 * bond angles over every bonded triple of selected atoms;
 * one dihedral per rotatable bond: a bond between selected atoms that both
-  have another selected neighbour and that is not in a ring (a bridge of the
-  bond graph), with the lowest-index outer neighbours.
+  have another selected neighbour and that is not in a small ring (of up to
+  eight bonds; larger cycles such as a loop closed by a disulfide keep their
+  torsions), with, on each side, the neighbour that leads to the larger part
+  of the molecule (so a protein's phi is C-N-CA-C, not C-N-CA-CB).
 """
 
 from dataclasses import dataclass
@@ -277,7 +279,51 @@ def _bond_graph(topology, atoms):
     return graph
 
 
+#: Largest ring (in bonds) whose bonds are not counted as rotatable. Larger cycles,
+#: such as a protein loop closed by a disulfide bond, keep their torsions.
+SMALL_RING = 8
+
+
+def _in_small_ring(graph, b, c, max_ring=SMALL_RING):
+    """True when the bond b-c closes a ring of at most `max_ring` bonds."""
+    graph.remove_edge(b, c)
+    try:
+        reach = nx.single_source_shortest_path_length(graph, b, cutoff=max_ring - 1)
+        return c in reach
+    finally:
+        graph.add_edge(b, c)
+
+
+def _outer_atom(graph, centre, candidates):
+    """The neighbour of `centre` that leads to the larger part of the molecule.
+
+    Counts the atoms reachable from each candidate without passing through
+    `centre` (capped, for speed), so that backbone neighbours win over short
+    side branches; ties go to the lowest index.
+    """
+    if len(candidates) == 1:
+        return candidates[0]
+    cap = 64
+
+    def branch(x):
+        seen = {centre, x}
+        frontier = [x]
+        while frontier and len(seen) < cap:
+            nxt = []
+            for y in frontier:
+                for z in graph.neighbors(y):
+                    if z not in seen:
+                        seen.add(z)
+                        nxt.append(z)
+            frontier = nxt
+        return min(len(seen), cap)
+
+    return min(candidates, key=lambda x: (-branch(x), x))
+
+
 def _check_kinds(kinds):
+    if isinstance(kinds, str):
+        kinds = [k.strip() for k in kinds.split(",") if k.strip()]
     kinds = tuple(kinds)
     bad = [k for k in kinds if k not in KINDS]
     if bad or not kinds:
@@ -395,24 +441,24 @@ def candidate_pool(topology, atoms, kinds=("distance", "angle", "dihedral"), *, 
                 for c in nbrs[i + 1:]:
                     out.append(_make("angle", (a, b, c), topology, labels))
     if "dihedral" in kinds and graph.number_of_edges():
-        bridges = {tuple(sorted(e)) for e in nx.bridges(graph)}
         for b, c in sorted(tuple(sorted(e)) for e in graph.edges):
-            if (b, c) not in bridges:
-                continue  # a bond in a ring does not rotate freely
-            nb = sorted(x for x in graph.neighbors(b) if x != c)
-            nc = sorted(x for x in graph.neighbors(c) if x != b)
-            if nb and nc:
-                out.append(_make("dihedral", (nb[0], b, c, nc[0]), topology, labels))
+            nb = [x for x in graph.neighbors(b) if x != c]
+            nc = [x for x in graph.neighbors(c) if x != b]
+            if not nb or not nc or _in_small_ring(graph, b, c):
+                continue
+            a = _outer_atom(graph, b, nb)
+            d = _outer_atom(graph, c, nc)
+            out.append(_make("dihedral", (a, b, c, d), topology, labels))
     order = {k: i for i, k in enumerate(KINDS)}
     out.sort(key=lambda d: (order[d.kind], d.atoms))
     return Pool(out, topology, notes=notes)
 
 
-def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_pairs_per_block=200_000):
+def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
     """Keep a pair if its mean distance over some state is below `cutoff`.
 
-    The means are taken over every `stride`-th frame of each file, which keeps
-    this pass cheap.
+    The means are taken over every `stride`-th frame, which keeps this pass
+    cheap; the stride counts each state's frames within each file.
 
     Parameters
     ----------
@@ -421,9 +467,10 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_pairs_per_block=200
     cutoff : float
         Distance cutoff, in nm. ``inf`` keeps every pair (and reads nothing).
     stride : int, default=10
-        Read every `stride`-th frame.
-    max_pairs_per_block : int, default=200000
-        Distances evaluated at once (bounds memory).
+        Use every `stride`-th frame of each state in each file (counted on
+        that state's own frames, so frame ranges and labels are respected).
+    max_numbers : int, default=5000000
+        Distances (frames x pairs) evaluated at once, which bounds memory.
 
     Returns
     -------
@@ -447,14 +494,25 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_pairs_per_block=200
     local = remap[pairs]
     sums = np.zeros((source.n_states, pairs.shape[0]))
     counts = np.zeros(source.n_states)
-    for chunk in source.iter_chunks(atom_indices=atoms, stride=stride):
+    seen = {}
+    # Every `stride`-th frame *of each state's frames in each file*, so frame ranges
+    # and label arrays are subsampled on their own frames, not on the file's grid.
+    for chunk in source.iter_chunks(atom_indices=atoms):
         traj = chunk.trajectory
         periodic = traj.unitcell_vectors is not None
         for s in np.unique(chunk.states):
-            sub = traj[np.flatnonzero(chunk.states == s)]
+            rows = np.flatnonzero(chunk.states == s)
+            key = (chunk.segment_index, int(s))
+            rank = seen.get(key, 0) + np.arange(rows.size)
+            seen[key] = seen.get(key, 0) + rows.size
+            rows = rows[rank % stride == 0]
+            if rows.size == 0:
+                continue
+            sub = traj[rows]
             counts[s] += sub.n_frames
-            for lo in range(0, len(local), max_pairs_per_block):
-                block = local[lo:lo + max_pairs_per_block]
+            block_pairs = max(1000, max_numbers // max(1, sub.n_frames))
+            for lo in range(0, len(local), block_pairs):
+                block = local[lo:lo + block_pairs]
                 d = md.compute_distances(sub, block, periodic=periodic)
                 sums[s, lo:lo + len(block)] += d.sum(axis=0, dtype=np.float64)
     empty = [source.states[s] for s in range(source.n_states) if counts[s] == 0]
@@ -468,7 +526,8 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_pairs_per_block=200
     note = (
         f"distances: kept {int(keep.sum())} of {pairs.shape[0]} pairs with a mean below "
         f"{cutoff:g} nm in at least one state, dropped {int((~keep).sum())} "
-        f"(means over every {stride}th frame of each file, {int(counts.sum())} frames)"
+        f"(means over every {stride}th frame of each state in each file, "
+        f"{int(counts.sum())} frames)"
     )
     return pairs[keep], note
 

@@ -7,8 +7,12 @@ at a time, so memory does not grow with trajectory length. Any format mdtraj
 reads works (XTC, DCD, TRR, NetCDF, HDF5, PDB, ...).
 """
 
+import contextlib
 import hashlib
+import math
+import numbers
 import os
+import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -17,13 +21,77 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "file_sha256"]
+__all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "file_sha256",
+           "stores_time", "quiet_stdout"]
 
 #: Residue names treated as monatomic ions when choosing the default solute.
 _ION_NAMES = {
     "NA", "NA+", "SOD", "K", "K+", "POT", "CL", "CL-", "CLA", "MG", "MG2", "CA2",
     "CAL", "ZN", "ZN2", "LI", "RB", "CS", "F", "BR", "I", "IOD", "CES",
 }
+
+
+#: Trajectory formats whose files store the simulation time of each frame. For the
+#: others (DCD, PDB, ...) mdtraj numbers the frames instead, so times are unknown.
+_TIMED_SUFFIXES = {".xtc", ".trr", ".h5", ".nc", ".ncdf", ".netcdf", ".dtr", ".lh5"}
+
+
+def stores_time(path):
+    """True when the trajectory format of `path` stores frame times (XTC, TRR, HDF5, NetCDF)."""
+    return Path(path).suffix.lower() in _TIMED_SUFFIXES
+
+
+@contextlib.contextmanager
+def quiet_stdout():
+    """Send anything written to file descriptor 1 (by C readers) to standard error.
+
+    Some of mdtraj's compiled readers print diagnostics straight to the
+    process's standard output, which would corrupt CSV written there.
+    """
+    try:
+        fd = sys.stdout.fileno()
+    except (AttributeError, OSError, ValueError):
+        yield
+        return
+    sys.stdout.flush()
+    saved = os.dup(fd)
+    try:
+        os.dup2(sys.stderr.fileno() if hasattr(sys.stderr, "fileno") else os.open(os.devnull,
+                os.O_WRONLY), fd)
+        yield
+    finally:
+        sys.stdout.flush()
+        os.dup2(saved, fd)
+        os.close(saved)
+
+
+def _quiet_iter(make):
+    """Iterate over ``make()`` with :func:`quiet_stdout` active during every read."""
+    with quiet_stdout():
+        iterator = make()
+    while True:
+        with quiet_stdout():
+            try:
+                item = next(iterator)
+            except StopIteration:
+                return
+        yield item
+
+
+def check_box(traj, path, first_frame):
+    """Raise InputError if a chunk's periodic box is not finite and positive-volume."""
+    vecs = traj.unitcell_vectors
+    if vecs is None:
+        return
+    vol = np.abs(np.linalg.det(vecs.astype(np.float64)))
+    bad = ~np.isfinite(vecs).all(axis=(1, 2)) | ~(vol > 1e-9)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise InputError(
+            f"trajectory {str(path)!r} frame {int(first_frame[i])} has an invalid periodic box "
+            f"(vectors {np.round(vecs[i], 4).tolist()} nm); check the file, or remove the box "
+            "if the system is not periodic"
+        )
 
 
 def _check_file(path, what):
@@ -52,7 +120,8 @@ def load_topology(path):
         return path
     path = _check_file(path, "topology")
     try:
-        return md.load_topology(str(path))
+        with quiet_stdout():
+            return md.load_topology(str(path))
     except Exception as exc:  # mdtraj raises many kinds; report them in one way
         raise InputError(f"cannot read topology {str(path)!r}: {exc}") from exc
 
@@ -106,7 +175,10 @@ def select_atoms(topology, selection=None):
         try:
             idx = np.asarray(topology.select(selection), dtype=np.intp)
         except Exception as exc:
-            raise InputError(f"invalid atom selection {selection!r}: {exc}") from exc
+            detail = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            if len(detail) > 200:
+                detail = detail[:200] + "..."
+            raise InputError(f"invalid atom selection {selection!r}: {detail}") from exc
         what = f"selection {selection!r}"
     if idx.size == 0:
         raise InputError(
@@ -266,14 +338,25 @@ class Source:
         path = self._check_trajectory(path)
         start = stop = None
         if frames is not None:
+            if not isinstance(frames, (tuple, list)) or len(frames) != 2:
+                raise InputError(f"frames={frames!r} for {str(path)!r} must be a pair "
+                                 "(start, stop) of 0-based frame numbers, stop excluded")
             start, stop = frames
-            if (start is not None and start < 0) or (
-                stop is not None and start is not None and stop <= start
-            ):
-                raise InputError(
-                    f"frame range {frames!r} for {str(path)!r} is empty or negative; "
-                    "give (start, stop) with 0 <= start < stop"
-                )
+            for name, v in (("start", start), ("stop", stop)):
+                if v is not None and (not isinstance(v, numbers.Integral) or v < 0):
+                    raise InputError(f"frames={frames!r} for {str(path)!r}: {name} must be a "
+                                     "non-negative integer or None")
+            if start is not None and stop is not None and stop <= start:
+                raise InputError(f"frame range {frames!r} for {str(path)!r} is empty; "
+                                 "give (start, stop) with start < stop")
+            start = None if start is None else int(start)
+            stop = None if stop is None else int(stop)
+        for seg in self.segments:
+            if seg.path == path and seg.labels is None and seg.start is None and \
+                    seg.stop is None and start is None and stop is None:
+                raise InputError(f"trajectory {str(path)!r} is given twice without frame ranges "
+                                 f"(for states {seg.state!r} and {str(state)!r}); give each file "
+                                 "once, or frame ranges with frames=(start, stop)")
         self._add_state(state)
         self.segments.append(Segment(path, str(state), start, stop))
         return self
@@ -281,22 +364,14 @@ class Source:
     def add_labelled(self, path, labels):
         """Add a trajectory file with a per-frame array of state names."""
         path = self._check_trajectory(path)
-        labels = np.asarray(labels, dtype=object).reshape(-1)
-        names = []
-        for lab in labels:
-            if lab is None or lab == "":
-                continue
-            lab = str(lab)
-            if lab not in names:
-                names.append(lab)
+        labels = [None if _unlabelled(x) else str(x)
+                  for x in np.asarray(labels, dtype=object).reshape(-1)]
+        names = list(dict.fromkeys(x for x in labels if x is not None))
         if not names:
             raise InputError(f"labels for {str(path)!r} name no state; every frame is unlabelled")
-        for n in sorted(names):
+        for n in names:
             self._add_state(n)
-        self.segments.append(
-            Segment(path, None, None, None, np.array([None if x in (None, "") else str(x)
-                                                      for x in labels], dtype=object))
-        )
+        self.segments.append(Segment(path, None, None, None, np.array(labels, dtype=object)))
         return self
 
     def _check_trajectory(self, path):
@@ -305,8 +380,12 @@ class Source:
         if key in self._checked:
             return path
         try:
-            first = md.load_frame(str(path), 0, top=self.topology)
+            with quiet_stdout():
+                first = md.load_frame(str(path), 0, top=self.topology)
         except Exception as exc:
+            if path.stat().st_size == 0:
+                raise InputError(f"trajectory {str(path)!r} is empty (0 bytes); it has no "
+                                 "frames") from exc
             n_file = _atoms_in_file(path)
             if n_file is not None and n_file != self.topology.n_atoms:
                 raise InputError(
@@ -364,7 +443,7 @@ class Source:
             frame0 = 0
             n_seen = 0
             try:
-                iterator = md.iterload(str(seg.path), **kwargs)
+                iterator = _quiet_iter(lambda: md.iterload(str(seg.path), **kwargs))
                 for traj in iterator:
                     n = traj.n_frames
                     frames = frame0 + stride * np.arange(n)
@@ -394,6 +473,7 @@ class Source:
                         continue
                     sel = np.flatnonzero(mask)
                     sub = traj if sel.size == n else traj[sel]
+                    check_box(sub, seg.path, frames[sel])
                     yield Chunk(si, sub, frames[sel], codes[sel])
             except InputError:
                 raise
@@ -406,10 +486,18 @@ class Source:
                 )
 
     def timestep(self, segment_index):
-        """Time between the first two frames of a segment's file, in ps (None if unknown)."""
+        """Time between the first two frames of a segment's file, in ps.
+
+        None when unknown: a single frame, or a format that stores no times
+        (see :func:`stores_time`).
+        """
         seg = self.segments[segment_index]
+        if not stores_time(seg.path):
+            return None
         try:
-            first = next(md.iterload(str(seg.path), top=self.topology, chunk=2, atom_indices=[0]))
+            with quiet_stdout():
+                first = next(md.iterload(str(seg.path), top=self.topology, chunk=2,
+                                         atom_indices=[0]))
         except Exception:
             return None
         if first.n_frames < 2:
@@ -417,10 +505,22 @@ class Source:
         return float(first.time[1] - first.time[0])
 
 
+def _unlabelled(x):
+    """True for a label that marks a frame as belonging to no state (None, "", NaN)."""
+    if x is None:
+        return True
+    if isinstance(x, str):
+        return x == ""
+    try:
+        return isinstance(x, numbers.Real) and math.isnan(x)
+    except TypeError:
+        return False
+
+
 def _atoms_in_file(path):
     """Atom count stored in a trajectory file, or None if it cannot be found."""
     try:
-        with md.open(str(path)) as fh:
+        with quiet_stdout(), md.open(str(path)) as fh:
             out = fh.read(1) if not hasattr(fh, "read_as_traj") else None
             if out is None:
                 out = fh.read(n_frames=1)

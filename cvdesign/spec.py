@@ -165,6 +165,43 @@ def topology_fingerprint(topology):
     return "sha256:" + digest.hexdigest()
 
 
+def residue_hashes(topology):
+    """Short per-residue checksums, so a mismatch can be traced to one residue.
+
+    Parameters
+    ----------
+    topology : mdtraj.Topology
+
+    Returns
+    -------
+    str
+        8 hex digits per residue, in residue order: the start of the SHA-256
+        of the identity lines (see :func:`topology_fingerprint`) of the
+        residue's atoms.
+
+    Examples
+    --------
+    >>> top = md.Topology()
+    >>> res = top.add_residue("HOH", top.add_chain())
+    >>> _ = top.add_atom("O", md.element.oxygen, res)
+    >>> len(residue_hashes(top))
+    8
+    """
+    topology = _check_topology_arg(topology)
+    out = []
+    for res in topology.residues:
+        text = "".join(_identity_line(_identity_of(a)) for a in res.atoms)
+        out.append(hashlib.sha256(text.encode("ascii")).hexdigest()[:8])
+    return "".join(out)
+
+
+def _describe_residue(residue):
+    names = " ".join(a.name for a in list(residue.atoms)[:12])
+    more = " ..." if residue.n_atoms > 12 else ""
+    return (f"residue {residue.index} ({residue.name}{residue.resSeq}, chain "
+            f"{residue.chain.index}, {residue.n_atoms} atoms: {names}{more})")
+
+
 def _describe(identity):
     element = identity["element"] or "none"
     return (
@@ -995,18 +1032,36 @@ class Spec:
             for j, (atom, expected) in enumerate(zip(desc["atoms"], desc["atom_identities"])):
                 actual = _identity_of(topology.atom(atom))
                 if actual != expected:
+                    only_element = {k for k in actual if actual[k] != expected[k]} == {"element"}
+                    hint = (" (only the element differs: some readers guess elements from atom "
+                            "names, e.g. a PDB 'CA' as calcium, so the two topology files may "
+                            "have been read differently)") if only_element else ""
                     raise TopologyMismatchError(
                         f"atom {atom} (used by descriptor {desc['id']!r}, {desc['label']}) is "
                         f"{_describe(expected)} in the spec but {_describe(actual)} in this "
-                        "topology. Use the topology the spec was made for, or make a new spec for this one",
+                        f"topology{hint}. Use the topology the spec was made for, or make a new "
+                        "spec for this one",
                         f"$.descriptors[{k}].atom_identities[{j}]",
                     )
         found = topology_fingerprint(topology)
         if found != self.fingerprint:
+            where = ""
+            stored = self._doc["topology"].get("residues")
+            if stored is not None:
+                mine = residue_hashes(topology)
+                n_spec, n_mine = len(stored) // 8, len(mine) // 8
+                first = next((k for k in range(min(n_spec, n_mine))
+                              if stored[8 * k:8 * k + 8] != mine[8 * k:8 * k + 8]), None)
+                if first is not None:
+                    where = (f"; the first difference is at "
+                             f"{_describe_residue(topology.residue(first))} in this topology")
+                elif n_spec != n_mine:
+                    where = (f"; the spec's topology has {n_spec} residues, this one {n_mine}")
             raise TopologyMismatchError(
-                "the atoms the CV uses match, but the topology differs elsewhere (its fingerprint "
-                f"is {found}, the spec's is {self.fingerprint}); refusing to use the spec with a "
-                "topology it was not made for. Use the original topology, or make a new spec for this one",
+                "the atoms the CV uses match, but the topology differs elsewhere"
+                f"{where} (fingerprint {found}, the spec's is {self.fingerprint}); refusing to "
+                "use the spec with a topology it was not made for. Use the original topology, "
+                "or make a new spec for this one",
                 "$.topology.fingerprint",
             )
 

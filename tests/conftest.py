@@ -54,3 +54,87 @@ def adk_result_for_redundancy(mda_data):
     src.add(str(mda_data / "adk_dims.dcd"), "closed", frames=(0, 30))
     src.add(str(mda_data / "adk_dims.dcd"), "open", frames=(68, 98))
     return suggest(src, selection="name CA", max_terms=2, n_suggestions=2)
+
+
+class OrnsteinUhlenbeck:
+    """A reversible 3-D Ornstein-Uhlenbeck process dx = -A x dt + sqrt(2 D) dW.
+
+    The drift is ``A = D K`` with a symmetric positive definite mobility ``D``
+    and potential Hessian ``K`` (``U(x) = x^T K x / 2`` in kT units), which makes
+    the process reversible with equilibrium covariance ``K^-1``; both ``D`` and
+    ``K`` are rotated so that no mode lies along a coordinate axis. ``A`` is built
+    from prescribed relaxation rates: ``A = D^1/2 S D^-1/2`` with
+    ``S = R diag(rates) R^T``, so the eigenvalues of ``A`` are ``rates``.
+
+    The equilibrium covariance is solved independently from the Lyapunov
+    equation ``A Sigma + Sigma A^T = 2 D`` (Gardiner, Handbook of Stochastic
+    Methods, Springer, chapter on the multivariate Ornstein-Uhlenbeck process;
+    Risken, The Fokker-Planck Equation, Springer; from memory), and trajectories
+    are sampled EXACTLY at the frame spacing ``dt`` by the AR(1) update
+    ``x_{n+1} = e^{-A dt} x_n + xi_n``, ``xi_n ~ N(0, Sigma - e^{-A dt} Sigma e^{-A^T dt})``,
+    which is the exact transition density of the OU process (same sources), not a
+    discretization. Each trajectory starts from the equilibrium distribution, so
+    every frame is stationary.
+    """
+
+    def __init__(self, rates=(0.02, 0.1, 0.4), dt=1.0, seed=27):
+        import numpy as np
+        import scipy.linalg
+
+        rng = np.random.default_rng(seed)
+        self.rates = np.asarray(rates, dtype=np.float64)
+        self.dt = float(dt)
+        n = len(self.rates)
+        R, _ = np.linalg.qr(rng.normal(size=(n, n)))
+        Q, _ = np.linalg.qr(rng.normal(size=(n, n)))
+        self.D = Q @ np.diag(np.linspace(0.5, 2.0, n)) @ Q.T
+        d_half = scipy.linalg.sqrtm(self.D).real
+        S = R @ np.diag(self.rates) @ R.T
+        self.A = d_half @ S @ np.linalg.inv(d_half)
+        self.Sigma = scipy.linalg.solve_continuous_lyapunov(self.A, 2.0 * self.D)
+        self.Sigma = 0.5 * (self.Sigma + self.Sigma.T)
+        self.F = scipy.linalg.expm(-self.A * self.dt)
+        noise = self.Sigma - self.F @ self.Sigma @ self.F.T
+        self._noise_chol = np.linalg.cholesky(0.5 * (noise + noise.T))
+        self._eq_chol = np.linalg.cholesky(self.Sigma)
+
+    def slow_modes(self):
+        """(rates ascending, unit left eigenvectors of A as columns): w^T x relaxes as e^{-k t}."""
+        import numpy as np
+
+        evals, evecs = np.linalg.eig(self.A.T)
+        order = np.argsort(evals.real)
+        vecs = evecs[:, order].real
+        return evals.real[order], vecs / np.linalg.norm(vecs, axis=0)
+
+    def simulate(self, n_traj, n_frames, seed):
+        """List of `n_traj` arrays of shape (n_frames, n_dim), exact OU samples."""
+        import numpy as np
+
+        rng = np.random.default_rng(seed)
+        n = len(self.rates)
+        out = np.empty((n_frames, n_traj, n))
+        out[0] = rng.standard_normal((n_traj, n)) @ self._eq_chol.T
+        noise = rng.standard_normal((n_frames - 1, n_traj, n)) @ self._noise_chol.T
+        Ft = self.F.T
+        for t in range(1, n_frames):
+            out[t] = out[t - 1] @ Ft + noise[t - 1]
+        return [np.ascontiguousarray(out[:, i]) for i in range(n_traj)]
+
+
+@pytest.fixture(scope="session")
+def ou():
+    """The 3-D reversible OU test process (see :class:`OrnsteinUhlenbeck`)."""
+    return OrnsteinUhlenbeck()
+
+
+@pytest.fixture(scope="session")
+def ou_train(ou):
+    """100 independent equilibrium trajectories of 10 000 frames of `ou` (1e6 frames)."""
+    return ou.simulate(100, 10_000, seed=2024)
+
+
+@pytest.fixture(scope="session")
+def ou_test(ou):
+    """An independent set of 50 trajectories of 10 000 frames of `ou`."""
+    return ou.simulate(50, 10_000, seed=7)

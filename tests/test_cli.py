@@ -137,12 +137,34 @@ def test_selection_matching_nothing_is_refused(demo_files, tmp_path, capsys):
 
 def test_nonempty_output_directory_needs_force(demo_files, tmp_path, capsys):
     out = tmp_path / "out"
-    out.mkdir()
+    assert main(_suggest_args(demo_files, out)) == 0
     (out / "keep.txt").write_text("mine")
     _fails(_suggest_args(demo_files, out), capsys, "exists and is not empty")
-    assert [p.name for p in out.iterdir()] == ["keep.txt"]
+    assert (out / "keep.txt").exists()
+    # --force replaces an earlier cvdesign output, and only that.
     assert main(_suggest_args(demo_files, out, "--force")) == 0
     assert not (out / "keep.txt").exists() and (out / "cv-01.json").exists()
+    other = tmp_path / "mine"
+    other.mkdir()
+    (other / "notes.txt").write_text("precious")
+    _fails(_suggest_args(demo_files, other, "--force"), capsys, "was not written by cvdesign")
+    assert (other / "notes.txt").read_text() == "precious"
+
+
+def test_force_never_writes_over_the_inputs(demo_files, tmp_path, capsys, monkeypatch):
+    import shutil
+
+    top, states = demo_files
+    work = tmp_path / "work"
+    work.mkdir()
+    for f in [top, states["closed"][0], states["open"][0]]:
+        shutil.copy(f, work)
+    args = ["suggest", "--topology", str(work / "latch.pdb"), "--state", "closed",
+            str(work / "closed-1.xtc"), "--state", "open", str(work / "open-1.xtc")]
+    _fails(args + ["--out", str(work), "--force"], capsys, "contains an input file")
+    assert sorted(p.name for p in work.iterdir()) == ["closed-1.xtc", "latch.pdb", "open-1.xtc"]
+    monkeypatch.chdir(work)
+    _fails(args + ["--out", ".", "--force"], capsys, "is the current directory")
 
 
 def test_state_given_twice_and_state_without_files(demo_files, tmp_path, capsys):

@@ -94,3 +94,46 @@ def test_unknown_kind_is_refused():
     top = _topology(2, [])
     with pytest.raises(InputError, match="unknown descriptor kinds"):
         candidate_pool(top, range(2), kinds=("torsion",))
+
+
+def test_backbone_and_side_chain_dihedrals_match_mdtraj_on_adenylate_kinase(mda_data):
+    # Real protein topology (adk.psf, MDAnalysis test data; Beckstein et al. 2009) against
+    # mdtraj's own phi/psi/chi1 definitions. Proline phi is about a bond in the
+    # pyrrolidine ring, which is not rotatable, so it is rightly absent.
+    top = md.load_topology(str(mda_data / "adk.psf"))
+    traj = md.load_frame(str(mda_data / "adk_dims.dcd"), 0, top=top)
+    pool = candidate_pool(top, select_atoms(top), kinds=("dihedral",))
+    by_bond = {d.atoms[1:3]: d.atoms for d in pool.descriptors}
+    phi, _ = md.compute_phi(traj)
+    psi, _ = md.compute_psi(traj)
+    chi1, _ = md.compute_chi1(traj)
+    for kind, quads in (("phi", phi), ("psi", psi), ("chi1", chi1)):
+        missing = []
+        for q in map(tuple, quads.tolist()):
+            bond = tuple(sorted(q[1:3]))
+            got = by_bond.get(bond)
+            if got is None:
+                missing.append(q)
+                continue
+            if top.atom(q[1]).residue.index == 0:
+                continue  # N-terminus: no previous residue, any neighbour is fine
+            if kind == "chi1":
+                # At CA both N and C lead into the backbone; near the N-terminus the
+                # larger branch is C. Either gives a valid chi1; the side-chain atom
+                # must be mdtraj's.
+                assert got[1:] == q[1:] or got[::-1][1:] == q[1:], [str(top.atom(i)) for i in q]
+                continue
+            assert got in (q, q[::-1]), (kind, [str(top.atom(i)) for i in q])
+        if kind == "phi":
+            assert {top.atom(q[2]).residue.name for q in missing} == {"PRO"}
+        else:
+            assert all(top.atom(q[1]).residue.name == "PRO" for q in missing), kind
+
+
+def test_a_large_ring_closed_by_a_cross_link_keeps_its_torsions():
+    # A 12-atom chain closed into a 12-membered cycle by one extra bond: its bonds are
+    # in a ring larger than eight, so they stay rotatable; a 6-ring's bonds do not.
+    chain = [(i, i + 1) for i in range(11)]
+    top = _topology(12, chain + [(0, 11)])
+    pool = candidate_pool(top, range(12), kinds=("dihedral",))
+    assert len(pool.descriptors) == 12

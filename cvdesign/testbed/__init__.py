@@ -1,7 +1,8 @@
 """Testbed: a small Langevin engine and invented toy molecules with known answers.
 
-Used for demo data, for tests whose right answer is known by construction, and
-(later) for checking a collective variable under bias.
+Used for demo data, for tests whose right answer is known by construction
+(:func:`write_two_wells` writes a small one in seconds), and (later) for
+checking a collective variable under bias.
 
 Examples
 --------
@@ -16,18 +17,23 @@ Examples
 
 from .forcefield import ToyForceField, dihedral_angles, pairs_beyond
 from .langevin import BOLTZMANN, BAOABIntegrator
-from .toys import ToySystem, latch
+from .toys import ToySystem, TwoWellSystem, latch, two_wells
 
 __all__ = [
     "BAOABIntegrator",
     "BOLTZMANN",
     "ToyForceField",
     "ToySystem",
+    "TwoWellSystem",
+    "TwoWellsData",
+    "count_transitions",
     "dihedral_angles",
     "generate",
     "latch",
     "pairs_beyond",
+    "two_wells",
     "write_pdb",
+    "write_two_wells",
 ]
 
 
@@ -38,4 +44,9 @@ def __getattr__(name):
         from . import demo_data
 
         return getattr(demo_data, name)
+    if name in ("TwoWellsData", "count_transitions", "write_two_wells"):
+        # scenarios imports demo_data, so it is also imported on first use.
+        from . import scenarios
+
+        return getattr(scenarios, name)
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -29,6 +29,7 @@ import numpy as np
 from .._io import atomic_write_text
 from .langevin import BAOABIntegrator
 from .toys import latch
+from .._io import atomic_path
 
 __all__ = ["generate", "write_pdb", "main"]
 
@@ -107,17 +108,9 @@ def _write_text(path, text):
 
 def _save_xtc(path, topology, xyz, times):
     """Write an XTC atomically (through a temporary file beside `path`)."""
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.stem}.", suffix=".xtc")
-    os.close(fd)
-    try:
-        traj = md.Trajectory(xyz.astype(np.float32), topology, time=times)
-        traj.save_xtc(tmp, force_overwrite=True)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_path(path) as tmp:
+        md.Trajectory(np.asarray(xyz, dtype=np.float32), topology, time=times).save_xtc(
+            tmp, force_overwrite=True)
 
 
 def _sha256(path):

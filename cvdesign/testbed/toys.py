@@ -19,6 +19,19 @@ vibrations, single-well arm torsions (librations of about 20 deg), a
 low-barrier (about 3 kJ/mol) three-fold torsion C6-C7-C8-C9 and a freely
 spinning rotor C7-C8-C9-F (about 1 kJ/mol).
 
+The "two wells" toy (residue ``TWW``, 10 united atoms) is a zig-zag chain
+C1..C10 with two independent two-fold torsions at its two ends, five bonds
+apart::
+
+    C1-C2-C3-C4-C5-C6-C7-C8-C9-C10
+       ^^^^^ slow        ^^^^^ fast
+
+The slow dihedral C1-C2-C3-C4, atoms ``(0, 1, 2, 3)``, has a barrier of
+30 kJ/mol (12 kT at 300 K) and never crosses in short runs; the fast dihedral
+C7-C8-C9-C10, atoms ``(6, 7, 8, 9)``, has a barrier of 5 kJ/mol (2 kT) and
+hops between its wells every few ps. Both have minima at 0 and pi rad. See
+:func:`two_wells`.
+
 All parameters are invented for this testbed; they describe no real molecule.
 """
 
@@ -30,7 +43,7 @@ from scipy.optimize import minimize
 
 from .forcefield import ToyForceField, dihedral_angles, pairs_beyond
 
-__all__ = ["ToySystem", "latch"]
+__all__ = ["ToySystem", "TwoWellSystem", "latch", "two_wells"]
 
 
 @dataclass(frozen=True)
@@ -118,12 +131,110 @@ class ToySystem:
         >>> str(system.assign_state(system.states['closed']))
         'closed'
         """
-        phi = self.slow_angle(xyz)
-        out = np.full(phi.shape, "", dtype=object)
-        for name, (lo, hi) in self.wells.items():
-            inside = (phi >= lo) & (phi <= hi) if lo <= hi else (phi >= lo) | (phi <= hi)
-            out[inside] = name
-        return out.astype(str)
+        return _label_wells(self.slow_angle(xyz), self.wells)
+
+
+def _label_wells(phi, wells):
+    """Name of the interval of `wells` containing each angle ('' if none)."""
+    out = np.full(np.shape(phi), "", dtype=object)
+    for name, (lo, hi) in wells.items():
+        inside = (phi >= lo) & (phi <= hi) if lo <= hi else (phi >= lo) | (phi <= hi)
+        out[inside] = name
+    return out.astype(str)
+
+
+@dataclass(frozen=True)
+class TwoWellSystem(ToySystem):
+    """A toy molecule with a slow and a fast two-well dihedral.
+
+    A :class:`ToySystem` (the slow dihedral, its wells and the states are
+    those of the base class) with a second, fast dihedral whose wells are
+    visited many times in every short run.
+
+    Attributes
+    ----------
+    fast_dihedral : tuple of int
+        0-based atoms of the dihedral that is fast by construction.
+    fast_wells : dict of str to tuple of float
+        Per fast well, the interval ``(low, high)`` in rad of the fast
+        dihedral that defines it (intervals may wrap around pi).
+
+    Examples
+    --------
+    >>> system = two_wells()
+    >>> system.slow_dihedral, system.fast_dihedral
+    ((0, 1, 2, 3), (6, 7, 8, 9))
+    """
+
+    fast_dihedral: tuple = ()
+    fast_wells: dict = field(default_factory=dict)
+
+    def fast_angle(self, xyz):
+        """Value of the fast dihedral, rad.
+
+        Parameters
+        ----------
+        xyz : array-like of shape (..., n_atoms, 3)
+            Positions, nm.
+
+        Returns
+        -------
+        ndarray of shape (...)
+            Dihedral in ``[-pi, pi]`` rad, IUPAC sign convention.
+
+        Examples
+        --------
+        >>> system = two_wells()
+        >>> round(abs(float(system.fast_angle(system.states['slowA']))), 2)
+        3.14
+        """
+        return dihedral_angles(xyz, [self.fast_dihedral])[..., 0]
+
+    def assign_fast_state(self, xyz):
+        """Name of the well of the fast dihedral for each configuration.
+
+        Parameters
+        ----------
+        xyz : array-like of shape (..., n_atoms, 3)
+            Positions, nm.
+
+        Returns
+        -------
+        ndarray of str of shape (...)
+            A key of :attr:`fast_wells` per configuration ('' if in none).
+
+        Examples
+        --------
+        >>> system = two_wells()
+        >>> str(system.assign_fast_state(system.states['slowA']))
+        'fastB'
+        """
+        return _label_wells(self.fast_angle(xyz), self.fast_wells)
+
+    def assign_wells(self, xyz):
+        """Slow-well and fast-well names for each configuration.
+
+        Parameters
+        ----------
+        xyz : array-like of shape (..., n_atoms, 3)
+            Positions, nm.
+
+        Returns
+        -------
+        slow : ndarray of str of shape (...)
+            Keys of :attr:`wells` (see :meth:`assign_state`).
+        fast : ndarray of str of shape (...)
+            Keys of :attr:`fast_wells` (see :meth:`assign_fast_state`).
+
+        Examples
+        --------
+        >>> system = two_wells()
+        >>> slow, fast = system.assign_wells(np.stack([system.states['slowA'],
+        ...                                            system.states['slowB']]))
+        >>> slow.tolist(), fast.tolist()
+        (['slowA', 'slowB'], ['fastB', 'fastB'])
+        """
+        return self.assign_state(xyz), self.assign_fast_state(xyz)
 
 
 def _place(a, b, c, length, angle, torsion):
@@ -296,4 +407,138 @@ def latch():
         contact=contact,
         description=description,
         notes=notes,
+    )
+
+
+# Two-wells parameters. Ten carbons in a zig-zag chain; geometry in nm and degrees.
+_TWW_N = 10
+_TWW_BONDS = [(i, i + 1) for i in range(_TWW_N - 1)]
+_TWW_SLOW = (0, 1, 2, 3)                  # C1-C2-C3-C4, about C2-C3
+_TWW_FAST = (6, 7, 8, 9)                  # C7-C8-C9-C10, about C8-C9
+_TWW_K_BOND = 5.0e4                       # kJ/mol/nm^2, softer than the latch's: 5 fs steps
+_TWW_K_SLOW = 15.0                        # kJ/mol, two-fold: barrier 2 k = 30 kJ/mol
+_TWW_K_FAST = 2.5                         # kJ/mol, two-fold: barrier 2 k = 5 kJ/mol
+_TWW_K_MIDDLE = 20.0                      # kJ/mol, single trans well k (1 + cos phi)
+
+
+def _two_wells_topology():
+    top = md.Topology()
+    residue = top.add_residue("TWW", top.add_chain(), resSeq=1)
+    atoms = [top.add_atom(f"C{i + 1}", md.element.carbon, residue) for i in range(_TWW_N)]
+    for i, j in _TWW_BONDS:
+        top.add_bond(atoms[i], atoms[j])
+    return top
+
+
+def _two_wells_force_field():
+    n = _TWW_N
+    bonds = np.array(_TWW_BONDS)
+    angles = np.array([(i, i + 1, i + 2) for i in range(n - 2)])
+    torsions = [_TWW_SLOW, _TWW_FAST] + [(i, i + 1, i + 2, i + 3) for i in range(1, n - 4)]
+    # Two-fold k (1 + cos(2 phi - pi)) = k (1 - cos 2 phi): minima at 0 and pi,
+    # barriers 2 k at +-pi/2. Middle torsions k (1 + cos phi): one well at pi.
+    k = [_TWW_K_SLOW, _TWW_K_FAST] + [_TWW_K_MIDDLE] * (n - 5)
+    mult = [2, 2] + [1] * (n - 5)
+    delta = [np.pi, np.pi] + [0.0] * (n - 5)
+    return ToyForceField(
+        n,
+        bonds=bonds, bond_k=_TWW_K_BOND, bond_r0=_CC,
+        angles=angles, angle_k=_K_ANGLE, angle_theta0=np.deg2rad(_BACKBONE_ANGLE),
+        torsions=torsions, torsion_k=k, torsion_n=mult, torsion_delta=delta,
+        pairs=pairs_beyond(n, bonds, min_bonds=4),
+        pair_epsilon=_PAIR_EPSILON, pair_sigma=_PAIR_SIGMA,
+    )
+
+
+def _two_wells_build(slow_angle, fast_angle):
+    """Chain coordinates, slow and fast torsions in degrees, the others trans."""
+    a = np.deg2rad(_BACKBONE_ANGLE)
+    x = [np.zeros(3), np.array([_CC, 0.0, 0.0])]
+    x.append(x[1] + _CC * np.array([-np.cos(a), np.sin(a), 0.0]))
+    backbone = [slow_angle] + [180.0] * (_TWW_N - 5) + [fast_angle]  # C4 .. C10
+    for torsion in backbone:
+        x.append(_place(x[-3], x[-2], x[-1], _CC, a, np.deg2rad(torsion)))
+    return np.array(x)
+
+
+def two_wells():
+    """The two-wells toy: a slow and a fast two-state torsion far apart in one chain.
+
+    Returns
+    -------
+    TwoWellSystem
+        Ten united carbons C1..C10 in one chain (residue ``TWW``), masses in
+        amu from the element. ``slow_dihedral == (0, 1, 2, 3)``
+        (C1-C2-C3-C4) with ``wells`` slowA ``(-pi/2, pi/2)`` (near 0 rad) and
+        slowB ``(pi/2, -pi/2)`` (near pi rad, wrapping);
+        ``fast_dihedral == (6, 7, 8, 9)`` (C7-C8-C9-C10) with ``fast_wells``
+        fastA ``(-pi/2, pi/2)`` and fastB ``(pi/2, -pi/2)``. ``states`` has
+        ``'slowA'`` and ``'slowB'``, minimized structures in nm, both with the
+        fast dihedral in fastB (pi rad). ``contact == (0, 3)`` (C1-C4, the
+        1-4 distance across the slow bond: 0.27 nm in slowA, 0.39 nm
+        in slowB).
+
+    Notes
+    -----
+    Force field (energies kJ/mol): bonds ``0.5 k (r - r0)**2`` with
+    k = 5e4 kJ/mol/nm**2, r0 = 0.153 nm; angles ``0.5 k (theta - theta0)**2``
+    with k = 400 kJ/mol/rad**2, theta0 = 112 deg; slow torsion
+    ``15 (1 + cos(2 phi - pi))`` (barrier 30 kJ/mol at +-pi/2); fast torsion
+    ``2.5 (1 + cos(2 phi - pi))`` (barrier 5 kJ/mol); the five middle
+    torsions single trans wells ``20 (1 + cos phi)``; repulsion (WCA,
+    epsilon 2 kJ/mol, sigma 0.34 nm) between atoms more than three bonds
+    apart. The two two-fold torsions share no atom and are five bonds apart,
+    so they couple only weakly, through the chain. The fastest vibration
+    (C-C stretch, reduced mass 6 amu) has a period of about 69 fs; a 5 fs
+    time step is safe.
+
+    Examples
+    --------
+    >>> system = two_wells()
+    >>> system.n_atoms, system.topology.n_bonds, system.topology.residue(0).name
+    (10, 9, 'TWW')
+    >>> sorted(system.states), sorted(system.fast_wells)
+    (['slowA', 'slowB'], ['fastA', 'fastB'])
+    >>> system.notes['slow_barrier_kj_mol'], system.notes['fast_barrier_kj_mol']
+    (30.0, 5.0)
+    """
+    top = _two_wells_topology()
+    ff = _two_wells_force_field()
+    masses = np.array([a.element.mass for a in top.atoms], dtype=np.float64)
+    states = {
+        "slowA": _minimize(ff, _two_wells_build(0.0, 180.0)),
+        "slowB": _minimize(ff, _two_wells_build(180.0, 180.0)),
+    }
+    contact = (0, 3)
+    notes = {
+        "slow_barrier_kj_mol": 2 * _TWW_K_SLOW,
+        "fast_barrier_kj_mol": 2 * _TWW_K_FAST,
+        "minimum_energy_kj_mol": {s: ff.energy(x) for s, x in states.items()},
+        "contact_distance_at_minimum_nm": {
+            s: float(np.linalg.norm(x[contact[0]] - x[contact[1]])) for s, x in states.items()
+        },
+        "middle_torsions": [[i, i + 1, i + 2, i + 3] for i in range(1, _TWW_N - 4)],
+        "recommended_timestep_ps": 0.005,
+    }
+    description = (
+        "Two wells: an invented 10-atom united-atom chain C1..C10. The torsion "
+        "C1-C2-C3-C4 is slow (two wells, slowA near 0 rad and slowB near pi rad, "
+        "barrier 30 kJ/mol); the torsion C7-C8-C9-C10 at the other end is fast "
+        "(wells fastA near 0 and fastB near pi, barrier 5 kJ/mol) and hops between "
+        "its wells many times in every run. All other motions are single-well."
+    )
+    half = np.pi / 2
+    return TwoWellSystem(
+        name="two_wells",
+        topology=top,
+        force_field=ff,
+        masses=masses,
+        states=states,
+        slow_dihedral=_TWW_SLOW,
+        wells={"slowA": (-half, half), "slowB": (half, -half)},
+        contact=contact,
+        description=description,
+        notes=notes,
+        fast_dihedral=_TWW_FAST,
+        fast_wells={"fastA": (-half, half), "fastB": (half, -half)},
     )
