@@ -679,8 +679,40 @@ def _heldout_overlap(source, pool, screened, scr_feat, center, scale, fits, fm, 
     return out
 
 
+def _topology_provenance(source):
+    if source.topology_path is None:
+        return {"file": None, "sha256": None}
+    return {"file": Path(source.topology_path).name, "sha256": file_sha256(source.topology_path)}
+
+
+def _segments_provenance(source):
+    """Which frames of which file were given to which state."""
+    out = []
+    for seg in source.segments:
+        row = {"file": seg.path.name}
+        if seg.labels is None:
+            row.update({"state": seg.state, "start": seg.start, "stop": seg.stop})
+        else:
+            labels = [x for x in seg.labels]
+            counts = {}
+            for x in labels:
+                if x is not None:
+                    counts[x] = counts.get(x, 0) + 1
+            row.update({"labels": {"n_frames": len(labels), "frames_per_state": counts,
+                                   "sha256": _labels_sha256(labels)}})
+        out.append(row)
+    return out
+
+
+def _labels_sha256(labels):
+    import hashlib
+
+    text = "\n".join("" if x is None else str(x) for x in labels)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
 def _spec_dict(source, pool, name, entry, params, checksums):
-    from .spec import atom_identity, topology_fingerprint
+    from .spec import atom_identity, residue_hashes, topology_fingerprint
 
     top = source.topology
     seen, descriptors = set(), []
@@ -704,12 +736,15 @@ def _spec_dict(source, pool, name, entry, params, checksums):
     return {
         "format": "cvdesign-spec", "version": 1, "name": name[:-5],
         "units": {"length": "nm", "angle": "rad", "time": "ps", "energy": "kJ/mol"},
-        "topology": {"n_atoms": top.n_atoms, "fingerprint": topology_fingerprint(top)},
+        "topology": {"n_atoms": top.n_atoms, "fingerprint": topology_fingerprint(top),
+                     "residues": residue_hashes(top)},
         "descriptors": descriptors, "terms": terms, "offset": 0.0, "periodic": False,
         "states": entry["states"], "scores": scores,
         "provenance": {"cvdesign_version": __version__, "method": "lda",
                        "inputs": [{"file": c["file"], "sha256": c["sha256"],
                                    "state": ",".join(c["states"]) or None} for c in checksums],
-                       "seed": None, "parameters": params},
+                       "seed": None, "parameters": params,
+                       "topology": _topology_provenance(source),
+                       "segments": _segments_provenance(source)},
         "caution": CAUTION,
     }
