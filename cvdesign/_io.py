@@ -116,7 +116,11 @@ def write_dir_atomically(out_dir, files, *, option="--out"):
             old = Path(tempfile.mkdtemp(dir=tmp.parent, prefix=f".{out_dir.name}.old-"))
             os.rmdir(old)
             os.replace(out_dir, old)
-            os.replace(tmp, out_dir)
+            try:
+                os.replace(tmp, out_dir)
+            except BaseException:
+                os.replace(old, out_dir)  # put the previous output back
+                raise
             shutil.rmtree(old)
         else:
             os.replace(tmp, out_dir)

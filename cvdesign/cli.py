@@ -41,22 +41,22 @@ def _positive_float(text):
     return v
 
 
-def _positive_int(text):
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"{text!r} must be at least 1")
-    return v
+def _int_at_least(low, why=""):
+    """An argparse type: an integer of at least `low`."""
+    def parse(text):
+        try:
+            v = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+        if v < low:
+            raise argparse.ArgumentTypeError(f"{text!r} must be at least {low}{why}")
+        return v
+    return parse
 
 
-def _at_least_two(text):
-    v = _positive_int(text)
-    if v < 2:
-        raise argparse.ArgumentTypeError(f"{text!r} must be at least 2 (one fold to fit, "
-                                         "one to score)")
-    return v
+_positive_int = _int_at_least(1)
+_non_negative_int = _int_at_least(0)
+_at_least_two = _int_at_least(2, " (one fold to fit, one to score; or two states)")
 
 
 def _add_suggest_options(p):
@@ -80,8 +80,32 @@ def _add_suggest_options(p):
     p.add_argument("--folds", type=_at_least_two, default=4, metavar="N",
                    help="folds of the held-out scoring, by whole trajectories, or by "
                         "contiguous blocks when a state has one trajectory (default: 4)")
+    p.add_argument("--objective", choices=("separate", "slow", "both"), default="separate",
+                   help="what the search maximizes on held-out data: 'separate' the states "
+                        "(Fisher ratio, dimensionless), 'slow' the slowest linear motion "
+                        "(cross-validated VAMP-2 at --lag), or 'both' (product of the "
+                        "separation mapped to [0, 1) and the autocorrelation at --lag); every "
+                        "suggestion reports both numbers (default: separate)")
+    p.add_argument("--lag", type=_positive_float, default=None, metavar="PS",
+                   help="lag time in ps for slowness scores, converted to frames with each "
+                        "file's time step; needed for --objective slow or both and for --runs "
+                        "(default: 10 frames when all files share a known time step)")
+    p.add_argument("--method", choices=("hlda", "lda"), default="hlda",
+                   help="discriminant for separate/both: harmonic LDA (within-state scatter "
+                        "the harmonic mean of the state covariances, so the narrow state "
+                        "weighs most) or plain LDA (default: hlda)")
+    p.add_argument("--bootstrap", type=_non_negative_int, default=200, metavar="N",
+                   help="block-bootstrap replicates for 95 %% intervals of weights and "
+                        "scores and for term selection frequencies; 0 turns them off "
+                        "(default: 200)")
+    p.add_argument("--seed", type=_non_negative_int, default=0, metavar="N",
+                   help="seed of the bootstrap and of the clustering of --runs; the same "
+                        "inputs and seed give byte-identical outputs (default: 0)")
+    p.add_argument("--timestep", type=_positive_float, default=None, metavar="PS",
+                   help="time between frames in ps for files that store no times (DCD, "
+                        "PDB, ...); files that store times keep their own")
     p.add_argument("--force", action="store_true",
-                   help="replace the output directory if it exists and is not empty")
+                   help="replace the output directory if it holds an earlier cvdesign output")
     p.add_argument("--quiet", action="store_true", help="print only the final table")
 
 
@@ -98,17 +122,26 @@ def build_parser():
     p = sub.add_parser(
         "suggest", help="rank compact linear CVs that separate the given states",
         description="Build a pool of candidate descriptors, score each for how well it "
-                    "separates the states, search compact linear combinations (LDA) ranked "
-                    "by their separation on held-out trajectories, and write ranking.csv, "
-                    "ranking.json, scorecard.csv, summary.md and one spec file per suggestion "
-                    "(cv-01.json is rank 1).")
+                    "separates the states and how slowly it moves, search compact linear "
+                    "combinations (HLDA/LDA, or TICA for --objective slow) ranked on held-out "
+                    "trajectories, and write ranking.csv, ranking.json, scorecard.csv, "
+                    "summary.md and one spec file per suggestion (cv-01.json is rank 1). "
+                    "Give the states with --state, or unlabelled runs with --runs.")
     p.add_argument("--topology", required=True, metavar="TOP",
                    help="topology file that mdtraj reads (PDB, GRO, PSF, PRMTOP, HDF5, ...); "
                         "bonds are needed for angles and dihedrals")
-    p.add_argument("--state", nargs="+", action="append", required=True,
-                   metavar=("NAME", "FILE"),
-                   help="a state name followed by its trajectory files (any format mdtraj "
-                        "reads); repeat for each state, at least two states")
+    given = p.add_mutually_exclusive_group(required=True)
+    given.add_argument("--state", nargs="+", action="append", metavar=("NAME", "FILE"),
+                       help="a state name followed by its trajectory files (any format mdtraj "
+                            "reads); repeat for each state, at least two states")
+    given.add_argument("--runs", nargs="+", metavar="FILE",
+                       help="unlabelled exploratory runs instead of --state: metastable states "
+                            "are proposed by clustering the slowest TICA coordinates at --lag "
+                            "(which is then required), written to states.csv, and CVs are "
+                            "designed for them")
+    p.add_argument("--n-states", type=_at_least_two, default=None, metavar="N",
+                   help="with --runs: the number of states to propose (default: chosen by "
+                        "the largest mean silhouette, 2 to 6)")
     p.add_argument("--out", required=True, metavar="DIR",
                    help="output directory; must not exist or be empty (see --force)")
     _add_suggest_options(p)
@@ -133,6 +166,9 @@ def build_parser():
                     "one slow torsion that opens and closes a contact) and say what to look at.")
     p.add_argument("--out", default="cvdesign-demo", metavar="DIR",
                    help="output directory (default: ./cvdesign-demo)")
+    p.add_argument("--bootstrap", type=_non_negative_int, default=200, metavar="N",
+                   help="bootstrap replicates for the uncertainties (default: 200; 0 is "
+                        "faster)")
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it exists and is not empty")
     return parser
@@ -144,32 +180,57 @@ def _progress(quiet):
     return lambda msg: print(f"cvdesign: {msg}", file=sys.stderr)
 
 
-def _run_suggest(topology, states, out, args, stream):
+def _run_suggest(topology, states, out, args, stream, runs=None):
     from ._io import prepare_output_dir
     from .pipeline import CAUTION, suggest
     from .source import Source
 
-    given = [topology] + [f for entry in states for f in entry[1:]]
+    given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or [])
     prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json")
-    names = [s[0] for s in states]
-    dup = sorted({n for n in names if names.count(n) > 1})
-    if dup:
-        raise InputError(f"state {dup[0]!r} is given twice; give each state once with all "
-                         "of its files")
-    source = Source(topology)
-    for entry in states:
-        name, files = entry[0], entry[1:]
-        if not files:
-            raise InputError(f"--state {name} has no trajectory files; use --state NAME FILE "
-                             "[FILE ...]")
-        for f in files:
-            source.add(f, state=name)
-    result = suggest(source, selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
+    exploration = None
+    progress = _progress(args.quiet)
+    if runs:
+        from .explore import propose_states
+
+        if args.lag is None:
+            raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
+                             "looked for")
+        src = Source(topology, timestep=args.timestep)
+        for f in runs:
+            src.add(f, state="runs")
+        exploration = propose_states(src, lag=args.lag, n_states=args.n_states,
+                                     selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
+                                     prefilter_stride=args.prefilter_stride, seed=args.seed,
+                                     progress=progress)
+        source = exploration.labelled_source(topology, timestep=args.timestep)
+    else:
+        names = [s[0] for s in states]
+        dup = sorted({n for n in names if names.count(n) > 1})
+        if dup:
+            raise InputError(f"state {dup[0]!r} is given twice; give each state once with all "
+                             "of its files")
+        source = Source(topology, timestep=args.timestep)
+        for entry in states:
+            name, files = entry[0], entry[1:]
+            if not files:
+                raise InputError(f"--state {name} has no trajectory files; use --state NAME "
+                                 "FILE [FILE ...]")
+            for f in files:
+                source.add(f, state=name)
+    result = suggest(source, objective=args.objective, lag=args.lag, method=args.method,
+                     selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
                      prefilter_stride=args.prefilter_stride, max_terms=args.max_terms,
                      n_suggestions=args.suggestions, n_folds=args.folds,
-                     progress=_progress(args.quiet))
+                     n_bootstrap=args.bootstrap, seed=args.seed, progress=progress)
+    result.exploration = exploration
     result.write(out, force=args.force)
     if not args.quiet:
+        if exploration is not None:
+            print("proposed states: " + ", ".join(
+                f"{s} ({exploration.populations[s]:.1%}; e.g. "
+                f"{exploration.representatives[s]['file']} frame "
+                f"{exploration.representatives[s]['frame']})" for s in exploration.states),
+                file=stream)
         for note in result.notes:
             print(f"  - {note}", file=stream)
     print(result.top_table(5), file=stream)
@@ -179,7 +240,7 @@ def _run_suggest(topology, states, out, args, stream):
 
 
 def _cmd_suggest(args):
-    _run_suggest(args.topology, args.state, args.out, args, sys.stdout)
+    _run_suggest(args.topology, args.state, args.out, args, sys.stdout, runs=args.runs)
     return 0
 
 
@@ -243,7 +304,9 @@ def _cmd_demo(args):
               for name, entry in manifest["states"].items()]
     ns = argparse.Namespace(select=None, kinds=("distance", "angle", "dihedral"), cutoff=1.0,
                             prefilter_stride=10, max_terms=5, suggestions=10, folds=4,
-                            force=args.force, quiet=False)
+                            force=args.force, quiet=False, objective="separate", lag=None,
+                            method="hlda", bootstrap=args.bootstrap, seed=0, timestep=None,
+                            n_states=None)
     print(f"cvdesign demo: {manifest['description']}\n", file=sys.stdout)
     result = _run_suggest(top, states, args.out, ns, sys.stdout)
     slow = manifest["slow_dihedral"]

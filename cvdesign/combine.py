@@ -16,10 +16,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .estimators import discriminant_directions, rayleigh_quotient
+from .estimators import TICA, discriminant_directions, rayleigh_quotient
 from .moments import merge_all
+from .vamp import vamp2_score
 
-__all__ = ["FoldMoments", "Combination", "heldout_score", "greedy_search", "rank_combinations"]
+__all__ = ["FoldMoments", "Combination", "OBJECTIVES", "heldout_score", "fold_scores",
+           "fit_direction", "slow_direction", "cv_direction", "autocorrelation_along",
+           "greedy_search", "rank_combinations", "standardize_moments", "standardize_lagged"]
 
 
 class FoldMoments:
@@ -43,8 +46,9 @@ class FoldMoments:
     (2, 3, 2)
     """
 
-    def __init__(self, moments, priors=None):
+    def __init__(self, moments, priors=None, lagged=None):
         self.moments = [list(m) for m in moments]
+        self.lagged = None if lagged is None else list(lagged)
         self.n_states = len(self.moments)
         self.n_folds = len(self.moments[0])
         self.n_features = self.moments[0][0].n_features
@@ -55,6 +59,22 @@ class FoldMoments:
             [merge_all(m for f, m in enumerate(ms) if f != k) for ms in self.moments]
             for k in range(self.n_folds)
         ]
+        if self.lagged is not None:
+            self._lag_all = merge_all(self.lagged)
+            self._lag_train = [merge_all(m for f, m in enumerate(self.lagged) if f != k)
+                               for k in range(self.n_folds)]
+
+    def lagged_pooled(self):
+        """Lagged moments over all folds (LaggedMoments), or None."""
+        return None if self.lagged is None else self._lag_all
+
+    def lagged_train(self, k):
+        """Lagged moments of every fold but `k`."""
+        return self._lag_train[k]
+
+    def lagged_test(self, k):
+        """Lagged moments of fold `k`."""
+        return self.lagged[k]
 
     def pooled(self):
         """Per-state moments over all folds (list of Moments)."""
@@ -72,16 +92,30 @@ class FoldMoments:
         """A copy with features transformed to ``(x - center) / scale``."""
         center = np.asarray(center, dtype=np.float64)
         scale = np.asarray(scale, dtype=np.float64)
-        out = []
-        for ms in self.moments:
-            row = []
-            for m in ms:
-                m2 = m.copy()
-                m2.mean = (m.mean - center) / scale
-                m2.scatter = m.scatter / np.outer(scale, scale)
-                row.append(m2)
-            out.append(row)
-        return FoldMoments(out, self.priors)
+        out = [[standardize_moments(m, center, scale) for m in ms] for ms in self.moments]
+        lagged = None if self.lagged is None else [
+            standardize_lagged(m, center, scale) for m in self.lagged]
+        return FoldMoments(out, self.priors, lagged)
+
+
+def standardize_moments(m, center, scale):
+    """Moments of ``(x - center) / scale`` from those of ``x`` (exact)."""
+    out = m.copy()
+    out.mean = (m.mean - center) / scale
+    out.scatter = m.scatter / np.outer(scale, scale)
+    return out
+
+
+def standardize_lagged(m, center, scale):
+    """Lagged moments of ``(x - center) / scale`` from those of ``x`` (exact)."""
+    out = m.reshifted(center)
+    inv = 1.0 / np.asarray(scale, dtype=np.float64)
+    out.shift = np.zeros_like(out.shift)
+    out.sum_x = out.sum_x * inv
+    out.sum_y = out.sum_y * inv
+    for name in ("sum_xx", "sum_xy", "sum_yy"):
+        setattr(out, name, getattr(out, name) * np.outer(inv, inv))
+    return out
 
 
 def _arrays(moments, idx):
@@ -90,40 +124,161 @@ def _arrays(moments, idx):
     return means, covs
 
 
-def fit_direction(moments, idx, priors, shrinkage):
-    """First LDA direction on the features `idx` from per-state moments."""
+#: Objectives of the search: what a combination is scored by on held-out folds.
+OBJECTIVES = ("separate", "slow", "both")
+
+
+def _check_objective(objective, method):
+    if objective not in OBJECTIVES:
+        raise ValueError(f"objective={objective!r} must be one of {', '.join(OBJECTIVES)}")
+    if method not in ("lda", "hlda"):
+        raise ValueError(f"method={method!r} must be 'lda' or 'hlda'")
+
+
+def _within(method):
+    return "harmonic" if method == "hlda" else "arithmetic"
+
+
+def fit_direction(moments, idx, priors, shrinkage, *, method="lda"):
+    """First discriminant direction (LDA or HLDA) on features `idx`.
+
+    Parameters
+    ----------
+    moments : sequence of Moments
+        Per-state moments (standardized features).
+    idx : array-like of int
+        Feature indices.
+    priors : array-like of shape (n_states,)
+    shrinkage : float
+    method : {'lda', 'hlda'}, default='lda'
+        Arithmetic (LDA) or harmonic (HLDA) mean of the state covariances as
+        within-state scatter.
+
+    Returns
+    -------
+    ndarray of shape (len(idx),)
+        Unit-length direction.
+    """
     means, covs = _arrays(moments, idx)
-    _, vecs = discriminant_directions(means, covs, priors, shrinkage=shrinkage)
+    _, vecs = discriminant_directions(means, covs, priors, shrinkage=shrinkage,
+                                      within=_within(method))
     return vecs[:, 0]
 
 
-def heldout_score(fold_moments, idx, *, shrinkage=1e-3):
-    """Cross-validated Fisher ratio of the LDA direction on features `idx`.
+def slow_direction(lagged, idx, *, epsilon=1e-6):
+    """Slowest TICA direction (reversible estimate) on features `idx`.
+
+    Returns
+    -------
+    direction : ndarray of shape (len(idx),), unit length
+    eigenvalue : float
+        Its autocorrelation at the lag (dimensionless).
+    """
+    sub = lagged.subset(np.asarray(idx, dtype=np.intp))
+    tica = TICA.from_moments(sub, lag=sub.lag or 1, n_components=1, epsilon=epsilon)
+    w = tica.eigenvectors_[:, 0]
+    return w / np.linalg.norm(w), float(tica.eigenvalues_[0])
+
+
+def autocorrelation_along(w, lagged, idx):
+    """Normalized autocorrelation at the lag of the projection on `w` (reversible)."""
+    sub = lagged.subset(np.asarray(idx, dtype=np.intp))
+    _, c0, ct = sub.covariances(reversible=True)
+    den = float(w @ c0 @ w)
+    return float(w @ ct @ w) / den if den > 0 else 0.0
+
+
+def cv_direction(fold_moments, idx, *, objective="separate", method="lda", shrinkage=1e-3,
+                 fold=None):
+    """The CV direction a combination gets: on all folds, or on all but `fold`.
+
+    ``separate`` and ``both`` use the discriminant direction (`method`);
+    ``slow`` uses the slowest TICA direction.
+    """
+    if objective == "slow":
+        lag = fold_moments.lagged_pooled() if fold is None else fold_moments.lagged_train(fold)
+        return slow_direction(lag, idx)[0]
+    states = fold_moments.pooled() if fold is None else fold_moments.train(fold)
+    return fit_direction(states, idx, fold_moments.priors, shrinkage, method=method)
+
+
+def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrinkage=1e-3):
+    """Held-out score of a combination in each fold.
+
+    * ``separate``: Fisher ratio (between- over within-state variance,
+      arithmetic within-state mean, so it compares across methods) of the
+      direction fitted on the other folds;
+    * ``slow``: cross-validated VAMP-2 score of the slowest singular function,
+      minus the constant part (Wu and Noé 2020): the squared correlation, in
+      [0, 1], across the lag of the slowest linear function of the features;
+    * ``both``: ``J / (1 + J) * max(rho, 0)``, the held-out Fisher ratio mapped
+      to [0, 1) times the held-out autocorrelation at the lag of the same
+      (discriminant) direction.
+
+    Returns
+    -------
+    ndarray of shape (n_folds,)
+    """
+    _check_objective(objective, method)
+    idx = np.asarray(idx, dtype=np.intp)
+    out = np.empty(fold_moments.n_folds)
+    for k in range(fold_moments.n_folds):
+        if objective == "slow":
+            train = fold_moments.lagged_train(k).subset(idx)
+            test = fold_moments.lagged_test(k).subset(idx)
+            try:
+                out[k] = vamp2_score(train, test, k=1) - 1.0
+            except ValueError:
+                out[k] = 0.0
+            continue
+        w = fit_direction(fold_moments.train(k), idx, fold_moments.priors, shrinkage,
+                          method=method)
+        means, covs = _arrays(fold_moments.test(k), idx)
+        j = min(rayleigh_quotient(w, means, covs, fold_moments.priors), 1e12)
+        if objective == "separate":
+            out[k] = j
+        else:
+            rho = autocorrelation_along(w, fold_moments.lagged_test(k), idx)
+            out[k] = j / (1.0 + j) * max(rho, 0.0)
+    return out
+
+
+def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shrinkage=1e-3):
+    """Cross-validated score of the combination of features `idx`.
 
     Parameters
     ----------
     fold_moments : FoldMoments
-        Standardized features.
+        Standardized features (with lagged moments for ``slow`` and ``both``).
     idx : array-like of int
         Feature indices.
+    objective : {'separate', 'slow', 'both'}, default='separate'
+        See :func:`fold_scores`.
+    method : {'lda', 'hlda'}, default='lda'
     shrinkage : float, default=1e-3
-        LDA regularization, see :func:`cvdesign.estimators.discriminant_directions`.
+        Discriminant regularization, see
+        :func:`cvdesign.estimators.discriminant_directions`.
 
     Returns
     -------
     mean : float
-        Mean held-out Fisher ratio over folds (dimensionless).
+        Mean held-out score over folds (dimensionless).
     se : float
         Its standard error (standard deviation over folds / sqrt(n_folds)).
     per_fold : ndarray of shape (n_folds,)
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from cvdesign.moments import Moments
+    >>> rng = np.random.default_rng(0)
+    >>> fm = FoldMoments([[Moments.from_data(rng.normal(m, 1, (500, 1))) for _ in range(2)]
+    ...                   for m in (0.0, 2.0)])
+    >>> round(heldout_score(fm, [0])[0], 1)  # (delta mu / 2 sigma)^2 = 1
+    1.0
     """
-    idx = np.asarray(idx, dtype=np.intp)
-    scores = np.empty(fold_moments.n_folds)
-    for k in range(fold_moments.n_folds):
-        w = fit_direction(fold_moments.train(k), idx, fold_moments.priors, shrinkage)
-        means, covs = _arrays(fold_moments.test(k), idx)
-        scores[k] = rayleigh_quotient(w, means, covs, fold_moments.priors)
-    scores = np.minimum(scores, 1e12)
+    scores = fold_scores(fold_moments, idx, objective=objective, method=method,
+                         shrinkage=shrinkage)
     se = scores.std(ddof=1) / np.sqrt(len(scores)) if len(scores) > 1 else 0.0
     return float(scores.mean()), float(se), scores
 
@@ -155,7 +310,7 @@ class Combination:
 
 
 def greedy_search(fold_moments, groups, *, max_terms=5, n_seeds=5, min_gain=0.01,
-                  shrinkage=1e-3):
+                  shrinkage=1e-3, objective="separate", method="lda"):
     """Greedy forward selection of descriptors by held-out Fisher ratio.
 
     Starting from each of the `n_seeds` best single descriptors, the
@@ -175,6 +330,9 @@ def greedy_search(fold_moments, groups, *, max_terms=5, n_seeds=5, min_gain=0.01
     min_gain : float, default=0.01
         Smallest relative gain in held-out score worth another term.
     shrinkage : float, default=1e-3
+    objective : {'separate', 'slow', 'both'}, default='separate'
+        Held-out score to maximize, see :func:`fold_scores`.
+    method : {'lda', 'hlda'}, default='lda'
 
     Returns
     -------
@@ -194,7 +352,8 @@ def greedy_search(fold_moments, groups, *, max_terms=5, n_seeds=5, min_gain=0.01
         key = frozenset(members)
         if key not in cache:
             idx = np.concatenate([groups[m] for m in sorted(key)])
-            cache[key] = heldout_score(fold_moments, idx, shrinkage=shrinkage)
+            cache[key] = heldout_score(fold_moments, idx, shrinkage=shrinkage,
+                                       objective=objective, method=method)
         return cache[key]
 
     singles = sorted(range(len(groups)), key=lambda g: (-score((g,))[0], g))

@@ -30,10 +30,13 @@ import numpy as np
 
 from . import __version__
 from ._io import prepare_output_dir, write_dir_atomically
-from .combine import FoldMoments, fit_direction, greedy_search, rank_combinations
-from .estimators import rayleigh_quotient
+from .bootstrap import block_bootstrap
+from .combine import (OBJECTIVES, FoldMoments, autocorrelation_along, cv_direction,
+                      fit_direction, greedy_search, rank_combinations, slow_direction)
+from .estimators import implied_timescales, rayleigh_quotient
 from .errors import InputError
-from .moments import DiagonalMoments, Moments, merge_all
+from .moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
+                      Moments, merge_all)
 from .pool import build_pool
 from .redundancy import descriptor_correlation, redundancy_graph, representatives
 from .scoring import Histograms, fisher_ratio, overlap_coefficient
@@ -53,6 +56,11 @@ _N_BINS = 50
 #: Fewest frames of each state in each held-out fold; with fewer, the within-state
 #: variance of a fold is too noisy to score on.
 MIN_FRAMES_PER_FOLD = 10
+
+#: Bootstrap refits of the search for selection frequencies, and the number of best
+#: shortlisted descriptors (besides the ranked terms) they may choose from.
+SELECTION_REPLICATES = 40
+SELECTION_POOL = 12
 
 
 def _note(progress, msg):
@@ -83,6 +91,10 @@ class Suggestions:
     input_files : list of str
         Paths of every file read (topology included); :meth:`write` refuses
         to write over them.
+    objective : str
+        The search objective.
+    lag_ps : float or None
+        Lag of the slowness scores, ps.
     """
 
     states: list
@@ -93,76 +105,113 @@ class Suggestions:
     notes: list = field(default_factory=list)
     inputs: list = field(default_factory=list)
     input_files: list = field(default_factory=list)
+    objective: str = "separate"
+    lag_ps: float = None
+    exploration: object = None
 
     # ----------------------------------------------------------- renderings
     def scorecard_csv(self):
         """The score card as CSV text."""
-        cols = ["order", "id", "kind", "label", "atoms", "fisher_ratio", "overlap",
+        cols = ["order", "id", "kind", "label", "atoms", "fisher_ratio", "fisher_ratio_ci_low",
+                "fisher_ratio_ci_high", "overlap", "autocorrelation", "autocorrelation_ci_low",
+                "autocorrelation_ci_high", "integrated_time", "integrated_time_decayed",
                 "screened", "shortlisted", "stands_for", "note"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(cols)
         for i, row in enumerate(self.scorecard, 1):
+            fci = row.get("fisher_ratio_ci") or [None, None]
+            aci = row.get("autocorrelation_ci") or [None, None]
+            dec = row.get("integrated_time_decayed")
             w.writerow([i, row["id"], row["kind"], row["label"],
                         " ".join(map(str, row["atoms"])), _fmt(row["fisher_ratio"]),
-                        _fmt(row["overlap"]), int(row["screened"]), int(row["shortlisted"]),
+                        _fmt(fci[0]), _fmt(fci[1]), _fmt(row["overlap"]),
+                        _fmt(row.get("autocorrelation")), _fmt(aci[0]), _fmt(aci[1]),
+                        _fmt(row.get("integrated_time")), "" if dec is None else int(dec),
+                        int(row["screened"]), int(row["shortlisted"]),
                         " ".join(row["stands_for"]), row["note"]])
         return buf.getvalue()
 
     def ranking_csv(self):
         """The ranking as CSV text (one row per combination)."""
-        cols = ["rank", "spec", "n_terms", "heldout_fisher_ratio", "heldout_fisher_ratio_se",
-                "heldout_overlap", "fisher_ratio_all", "terms", "weights"]
+        cols = ["rank", "spec", "n_terms", "objective", "method", "heldout_score",
+                "heldout_score_se", "heldout_fisher_ratio", "heldout_fisher_ratio_se",
+                "heldout_overlap", "fisher_ratio_all", "fisher_ratio_ci_low",
+                "fisher_ratio_ci_high", "lag_ps", "heldout_autocorrelation",
+                "autocorrelation_all", "autocorrelation_ci_low", "autocorrelation_ci_high",
+                "timescale_ps", "terms", "weights", "weight_ci", "selection_frequency"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(cols)
         for r in self.ranking:
-            w.writerow([r["rank"], r["spec"], r["n_terms"], _fmt(r["heldout_fisher_ratio"]),
-                        _fmt(r["heldout_fisher_ratio_se"]), _fmt(r["heldout_overlap"]),
-                        _fmt(r["fisher_ratio_all"]),
+            fci = r.get("fisher_ratio_ci") or [None, None]
+            aci = r.get("autocorrelation_ci") or [None, None]
+            w.writerow([r["rank"], r["spec"], r["n_terms"], r["objective"], r["method"],
+                        _fmt(r["heldout_score"]), _fmt(r["heldout_score_se"]),
+                        _fmt(r["heldout_fisher_ratio"]), _fmt(r["heldout_fisher_ratio_se"]),
+                        _fmt(r["heldout_overlap"]), _fmt(r["fisher_ratio_all"]),
+                        _fmt(fci[0]), _fmt(fci[1]), _fmt(r["lag_ps"]),
+                        _fmt(r["heldout_autocorrelation"]), _fmt(r["autocorrelation_all"]),
+                        _fmt(aci[0]), _fmt(aci[1]), _fmt(r["timescale_ps"]),
                         "; ".join(_term_name(t) for t in r["terms"]),
-                        " ".join(_fmt(t["weight"]) for t in r["terms"])])
+                        " ".join(_fmt(t["weight"]) for t in r["terms"]),
+                        " ".join("[" + ",".join(_fmt(v) for v in t["weight_ci"]) + "]"
+                                 if t.get("weight_ci") else "" for t in r["terms"]),
+                        " ".join(_fmt(t.get("selection_frequency")) for t in r["terms"])])
         return buf.getvalue()
 
     def ranking_json(self):
         """The ranking as JSON text."""
         return _dumps({"format": "cvdesign-ranking", "version": 1, "states": self.states,
+                       "objective": self.objective, "lag_ps": self.lag_ps,
                        "ranking": self.ranking, "caution": CAUTION})
 
     def top_table(self, n=5):
-        """A plain-text table of the top `n` suggestions."""
+        """A plain-text table of the top `n` suggestions (separation and slowness)."""
         lines = [f"{'rank':>4}  {'spec':<11} {'terms':>5}  {'held-out J':>10}  "
-                 f"{'overlap':>7}  descriptors"]
+                 f"{'overlap':>7}  {'autocorr':>8}  descriptors"]
         for r in self.ranking[:n]:
-            names = ", ".join(sorted({t["label"] for t in r["terms"]}, key=str))
+            names = ", ".join(dict.fromkeys(t["label"] for t in r["terms"]))
+            rho = r["heldout_autocorrelation"]
             lines.append(f"{r['rank']:>4}  {r['spec']:<11} {r['n_terms']:>5}  "
                          f"{r['heldout_fisher_ratio']:>10.3g}  {r['heldout_overlap']:>7.3f}  "
-                         f"{names}")
+                         f"{'' if rho is None else format(rho, '.3f'):>8}  {names}")
         return "\n".join(lines)
 
     def summary_md(self):
         """A short markdown summary of the run."""
         out = ["# cvdesign suggest: summary", ""]
         out.append(f"cvdesign {__version__}. States: "
-                   + ", ".join(f"`{s}`" for s in self.states) + ".")
+                   + ", ".join(f"`{s}`" for s in self.states) + f". Objective: `{self.objective}`"
+                   + ("" if self.lag_ps is None else f", lag {self.lag_ps:g} ps") + ".")
         out += ["", "## Inputs", "", "| file | state | frames | time step (ps) |",
                 "| --- | --- | ---: | ---: |"]
         for inp in self.inputs:
-            dt = "" if inp["timestep_ps"] is None else f"{inp['timestep_ps']:g}"
+            dt = "unknown" if inp["timestep_ps"] is None else f"{inp['timestep_ps']:g}"
             out.append(f"| {inp['file']} | {', '.join(inp['states'])} | {inp['frames']} | {dt} |")
+        if self.exploration is not None:
+            out += [""] + self.exploration.summary_lines()
         out += ["", "## What was done", ""] + [f"- {n}" for n in self.notes]
         out += ["", "## Top suggestions", "",
                 "Held-out J is the Fisher ratio (between-state over within-state variance "
-                "of the CV) on frames not used to fit it; overlap is the histogram "
-                "overlapping coefficient of the states along the CV on those frames "
-                "(0 = fully separated, 1 = identical).", "",
-                "| rank | spec | terms | held-out J | overlap | descriptors (weight) |",
-                "| ---: | --- | ---: | ---: | ---: | --- |"]
+                "of the CV, dimensionless) on frames not used to fit it; overlap is the "
+                "histogram overlapping coefficient of the states along the CV on those frames "
+                "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
+                "normalized autocorrelation of the CV at the lag (1 = does not relax within "
+                "the lag), and the timescale is -lag/ln(autocorrelation) on all data. "
+                "Intervals are 95 % block-bootstrap intervals; selection is the fraction of "
+                "bootstrap refits whose rank-1 combination holds the descriptor.", "",
+                "| rank | spec | held-out J | overlap | autocorr. | timescale (ps) | "
+                "descriptors (weight [95 % CI], selection) |",
+                "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]
         for r in self.ranking[:5]:
-            terms = "; ".join(f"{_term_name(t)} ({t['weight']:+.3f})" for t in r["terms"])
-            out.append(f"| {r['rank']} | {r['spec']} | {r['n_terms']} | "
+            terms = "; ".join(_term_text(t) for t in r["terms"])
+            rho = r["heldout_autocorrelation"]
+            ts = r["timescale_ps"]
+            out.append(f"| {r['rank']} | {r['spec']} | "
                        f"{r['heldout_fisher_ratio']:.3g} ± {r['heldout_fisher_ratio_se']:.2g} | "
-                       f"{r['heldout_overlap']:.3f} | {terms} |")
+                       f"{r['heldout_overlap']:.3f} | {'' if rho is None else format(rho, '.3f')} "
+                       f"| {'' if ts is None else format(ts, '.3g')} | {terms} |")
         out += ["", "Files: `ranking.csv`, `ranking.json`, `scorecard.csv` (every descriptor), "
                 "`cv-NN.json` (one spec per suggestion; evaluate with `cvdesign apply`).",
                 "", f"**Caution.** {CAUTION}", ""]
@@ -190,12 +239,25 @@ class Suggestions:
         }
         for r, spec in zip(self.ranking, self.specs):
             files[r["spec"]] = _dumps(spec)
+        if self.exploration is not None:
+            files["states.csv"] = self.exploration.states_csv()
         write_dir_atomically(out_dir, files)
         return out_dir
 
 
 def _term_name(t):
     return t["label"] if t["transform"] == "identity" else f"{t['transform']}({t['label']})"
+
+
+def _term_text(t):
+    text = f"{_term_name(t)} {t['weight']:+.3f}"
+    if t.get("weight_ci"):
+        lo, hi = t["weight_ci"]
+        if lo is not None and hi is not None:
+            text += f" [{lo:+.3f}, {hi:+.3f}]"
+    if t.get("selection_frequency") is not None:
+        text += f", {t['selection_frequency']:.0%}"
+    return text
 
 
 def _fmt(x):
@@ -285,17 +347,172 @@ class _Folds:
         return folds
 
 
+class _Series:
+    """Lagged statistics of many time series, keyed, fed chunk by chunk.
+
+    A series is identified by a key (e.g. segment, state, fold); frames of one
+    key that do not follow each other (a gap in frame numbers) start a new
+    series, so no pair spans a gap, a state change, or a file boundary.
+    """
+
+    def __init__(self, n_features, shift, *, diagonal):
+        self.n_features = n_features
+        self.shift = shift
+        self.diagonal = diagonal
+        self._acc = {}
+        self._last = {}
+
+    def feed(self, key, frames, x, lag):
+        """Feed rows `x` (frames `frames`, consecutive or not) of the series `key`."""
+        if x.shape[0] == 0:
+            return
+        acc = self._acc.get(key)
+        if acc is None:
+            acc = self._acc[key] = LagAccumulator(self.n_features, lag, shift=self.shift,
+                                                  diagonal=self.diagonal)
+        cuts = np.flatnonzero(np.diff(frames) != 1) + 1
+        last = self._last.get(key)
+        if last is not None and frames[0] != last + 1:
+            acc.break_series()
+        start = 0
+        for c in list(cuts) + [len(frames)]:
+            acc.feed(x[start:c])
+            if c < len(frames):
+                acc.break_series()
+            start = c
+        self._last[key] = frames[-1]
+
+    def moments(self, select=None):
+        """Merged moments of the keys for which ``select(key)`` is true (all if None)."""
+        out = []
+        for key, acc in self._acc.items():
+            if select is None or select(key):
+                m = acc.moments.copy()
+                m.lag = None  # files may need different frame lags for one lag in ps
+                out.append(m)
+        if not out:
+            cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
+            return cls(self.n_features, shift=self.shift)
+        return merge_all(out)
+
+
+def _runs(chunk):
+    """(state, rows) for each state present in a chunk."""
+    for s in np.unique(chunk.states):
+        yield int(s), np.flatnonzero(chunk.states == s)
+
+
+def _lag_frames(source, lag, timesteps):
+    """Lag in frames of each segment, for a lag in ps; refuse what cannot be converted."""
+    out = {}
+    for si, seg in enumerate(source.segments):
+        dt = timesteps.get(si)
+        if dt is None or not dt > 0:
+            raise InputError(
+                f"lag={lag:g} ps cannot be converted to frames of {str(seg.path)!r}: its time "
+                "step is unknown (the format stores no times, or the file has one frame); "
+                "give the time step with --timestep PS")
+        ratio = lag / dt
+        n = int(round(ratio))
+        if n < 1 or abs(ratio - n) > 1e-6 * max(1.0, ratio):
+            raise InputError(
+                f"lag={lag:g} ps is not a whole number of frames of {str(seg.path)!r} "
+                f"(time step {dt:g} ps); choose a multiple of {dt:g} ps")
+        out[si] = n
+    return out
+
+
+def _iat_lags(seg_counts, max_lag=2000):
+    """Geometric grid of lags (frames) for integrated autocorrelation times."""
+    shortest = int(seg_counts[seg_counts > 0].min())
+    top = max(1, min(max_lag, shortest // 2))
+    return np.unique(np.round(np.geomspace(1, top, 18)).astype(int))
+
+
+def integrated_time(lags, rho, dt, *, window=5.0):
+    """Integrated autocorrelation time from the autocorrelation on a grid of lags.
+
+    ``tau_int = dt * (1/2 + sum_{k>=1} rho(k))`` (Sokal 1997, in *Functional
+    Integration*, Plenum; Frenkel and Smit, *Understanding Molecular
+    Simulation*, 2002), with the sum taken as the trapezoidal integral of
+    ``rho`` (``rho(0) = 1``) interpolated linearly between the lags of the grid,
+    up to Sokal's self-consistent window: the first lag ``M`` with
+    ``M >= window * tau(M)``.
+
+    Parameters
+    ----------
+    lags : array-like of int, shape (n_lags,)
+        Increasing lags in frames, starting at 1.
+    rho : array-like of shape (n_lags, n_features)
+        Normalized autocorrelation at each lag.
+    dt : float
+        Time between frames, ps (1 for frames).
+    window : float, default=5.0
+        Window factor ``c`` (Sokal recommends 4 to 10 for nearly exponential decay).
+
+    Returns
+    -------
+    tau : ndarray of shape (n_features,)
+        In the unit of `dt`.
+    decayed : ndarray of bool, shape (n_features,)
+        False where no lag of the grid satisfies the window condition: the
+        motion did not decorrelate within the runs and `tau` (the integral over
+        the whole grid) is a lower bound.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> lags = np.arange(1, 200)
+    >>> tau, ok = integrated_time(lags, np.exp(-lags / 10.0)[:, None], 1.0)
+    >>> round(float(tau[0]), 1), bool(ok[0])  # 1/2 + sum_k exp(-k/10) = 10.0, window loses ~1 %
+    (9.9, True)
+    """
+    lags = np.asarray(lags, dtype=np.float64)
+    rho = np.nan_to_num(np.asarray(rho, dtype=np.float64), nan=0.0)
+    grid = np.concatenate([[0.0], lags])
+    r = np.vstack([np.ones((1, rho.shape[1])), rho])
+    cum = np.vstack([np.zeros((1, rho.shape[1])),
+                     np.cumsum(0.5 * (r[1:] + r[:-1]) * np.diff(grid)[:, None], axis=0)])
+    ok = grid[:, None] >= window * cum
+    ok[0] = False
+    decayed = ok.any(axis=0)
+    stop = np.where(decayed, ok.argmax(axis=0), len(grid) - 1)
+    tau = cum[stop, np.arange(rho.shape[1])]
+    return tau * dt, decayed
+
+
 # ---------------------------------------------------------------- the pipeline
-def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), cutoff=1.0,
-            prefilter_stride=10, max_terms=5, n_suggestions=10, screen_size=200,
-            shortlist_size=40, max_correlation=0.95, n_folds=4, n_seeds=5, min_gain=0.01,
-            shrinkage=1e-3, progress=None):
-    """Rank compact linear CVs that separate the states of a source.
+def suggest(source, *, objective="separate", lag=None, method="hlda", selection=None,
+            kinds=("distance", "angle", "dihedral"), cutoff=1.0, prefilter_stride=10,
+            max_terms=5, n_suggestions=10, screen_size=200, shortlist_size=40,
+            max_correlation=0.95, n_folds=4, n_seeds=5, min_gain=0.01, shrinkage=1e-3,
+            n_bootstrap=200, seed=0, progress=None):
+    """Rank compact linear CVs for the states of a source.
 
     Parameters
     ----------
     source : cvdesign.source.Source
         Topology and trajectories with at least two states.
+    objective : {'separate', 'slow', 'both'}, default='separate'
+        What the search maximizes on held-out folds: the separation of the
+        states (Fisher ratio of the discriminant direction), the slowness of
+        the slowest linear combination (cross-validated VAMP-2 of the slowest
+        singular function, Wu and Noé 2020), or the product of the two (see
+        :func:`cvdesign.combine.fold_scores`). Every suggestion reports both
+        its separation and, when a lag is known, its slowness.
+    lag : float, default=None
+        Lag time in ps for slowness (required for ``slow`` and ``both``),
+        converted to frames with each file's time step; a lag that is not a
+        whole number of frames of some file is refused. None: slowness is
+        reported at 10 frames when every file has the same known time step.
+    method : {'hlda', 'lda'}, default='hlda'
+        Discriminant for ``separate`` and ``both``: harmonic LDA (within-state
+        scatter the harmonic mean of the state covariances; Mendels, Piccini
+        and Parrinello 2018) or plain LDA (arithmetic mean). HLDA is the
+        default because the narrow (stiff) state dominates its within-state
+        scatter, so the CV does not discount a direction just because one
+        state fluctuates widely along it -- the direction a biased run must
+        push along to leave the narrow state.
     selection : str, default=None
         mdtraj atom selection for the pool; None: heavy atoms of the solute.
     kinds : sequence of {'distance', 'angle', 'dihedral'}
@@ -304,28 +521,34 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
         Distance prefilter, in nm: a pair is kept if its mean distance is below
         `cutoff` in at least one state.
     prefilter_stride : int, default=10
-        The prefilter reads every `prefilter_stride`-th frame.
+        The prefilter uses every `prefilter_stride`-th frame of each state.
     max_terms : int, default=5
         Largest number of descriptors in a combination.
     n_suggestions : int, default=10
         Number of ranked combinations (and spec files).
     screen_size : int, default=200
-        Descriptors, best separating first, whose full covariance is gathered.
+        Descriptors, best first by the objective's univariate score, whose
+        full covariance is gathered.
     shortlist_size : int, default=40
-        Descriptors the search may combine, after dropping near-duplicates.
+        Descriptors the search may combine, one per redundancy group.
     max_correlation : float, default=0.95
-        A descriptor is a near-duplicate of a better one when the pooled
-        within-state |correlation| of any of their features exceeds this.
+        Descriptors are redundant when the pooled within-state |correlation|
+        of any of their features exceeds this.
     n_folds : int, default=4
-        Folds of the held-out scoring (fewer when a state has fewer trajectories).
+        Folds of the held-out scoring (fewer when a state has fewer
+        trajectories, or too few frames).
     n_seeds : int, default=5
         Greedy searches, each started from one of the best single descriptors.
     min_gain : float, default=0.01
-        A search adds a descriptor only if it raises the held-out Fisher ratio
-        by more than this fraction.
+        A search adds a descriptor only if it raises the held-out score by
+        more than this fraction.
     shrinkage : float, default=1e-3
-        LDA regularization of the within-state covariance of standardized
-        features: ``(1 - a) S_w + a (tr S_w / p) I``.
+        Regularization of the within-state covariances of standardized
+        features: ``(1 - a) S + a (tr S / p) I``.
+    n_bootstrap : int, default=200
+        Block-bootstrap replicates for confidence intervals (0: none).
+    seed : int, default=0
+        Seed of the bootstrap; same inputs and seed, same outputs byte for byte.
     progress : callable, default=None
         Called with a message string at each stage.
 
@@ -336,21 +559,54 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
     Raises
     ------
     InputError
-        For fewer than two states, a state without frames, an empty pool, and
-        the other input problems described in the messages.
+        For fewer than two states, a state without frames, an empty pool, a
+        lag that cannot be converted, and the other input problems described
+        in the messages.
+
+    Examples
+    --------
+    On the bundled demo (two states of an invented flexible molecule)::
+
+        from cvdesign import Source, suggest
+        from cvdesign.cli import demo_data_dir
+        d = demo_data_dir()
+        src = Source.from_states(d / "latch.pdb", {"closed": [d / "closed-1.xtc"],
+                                                   "open": [d / "open-1.xtc"]})
+        result = suggest(src, n_bootstrap=0)
+        print(result.top_table())
     """
     _validate_options(max_terms=max_terms, n_suggestions=n_suggestions, screen_size=screen_size,
                       shortlist_size=shortlist_size, max_correlation=max_correlation,
                       n_folds=n_folds, n_seeds=n_seeds, shrinkage=shrinkage, min_gain=min_gain,
-                      prefilter_stride=prefilter_stride)
+                      prefilter_stride=prefilter_stride, n_bootstrap=n_bootstrap, seed=seed)
+    if objective not in OBJECTIVES:
+        raise InputError(f"objective={objective!r} must be one of {', '.join(OBJECTIVES)}")
+    if method not in ("lda", "hlda"):
+        raise InputError(f"method={method!r} must be 'lda' or 'hlda'")
+    if lag is not None and not (isinstance(lag, (int, float)) and math.isfinite(lag) and lag > 0):
+        raise InputError(f"lag={lag!r} must be a positive time in ps")
+    if objective in ("slow", "both") and lag is None:
+        raise InputError(f"objective {objective!r} needs a lag time: give --lag PS (e.g. a few "
+                         "times the time step, well below the run length)")
     if source.n_states < 2:
         names = ", ".join(repr(s) for s in source.states) or "none"
         raise InputError(
             f"only one state was given ({names}); separating states needs at least two: "
-            "give another with --state NAME FILE ..."
+            "give another with --state NAME FILE ..., or give unlabelled runs with --runs"
         )
     n_states = source.n_states
     priors = np.full(n_states, 1.0 / n_states)
+
+    # ---- time steps and lag
+    timesteps = {si: source.timestep(si) for si in range(len(source.segments))}
+    # times are stored in single precision: keep 7 significant digits
+    timesteps = {si: (None if v is None else float(f"{v:.7g}")) for si, v in timesteps.items()}
+    lag_ps = lag
+    if lag is None:
+        steps = {round(v, 9) for v in timesteps.values() if v is not None}
+        if len(steps) == 1 and all(v is not None for v in timesteps.values()):
+            lag_ps = 10 * next(iter(timesteps.values()))
+    lag_frames = _lag_frames(source, lag_ps, timesteps) if lag_ps is not None else None
 
     _note(progress, "building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,
@@ -360,95 +616,119 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
     n_feat = pool.n_features
     _note(progress, f"pool: {len(pool)} descriptors, {n_feat} features; screening pass")
 
-    # ---- pass 1: diagonal moments, counts, time steps
+    # ---- pass 1: diagonal moments, counts, lagged diagonal statistics
     diag = [DiagonalMoments(n_feat) for _ in range(n_states)]
     seg_counts = np.zeros((len(source.segments), n_states), dtype=np.int64)
-    timesteps = {}
     min_box = None
+    lag1 = None
     chunk_size = _chunk_frames(source, n_feat)
     for chunk in source.iter_chunks(atom_indices=atoms, chunk_size=chunk_size):
         x = pool.features(chunk.trajectory, atom_indices=atoms)
+        si = chunk.segment_index
         if chunk.trajectory.unitcell_vectors is not None:
             h = _box_heights(chunk.trajectory.unitcell_vectors).min()
             min_box = h if min_box is None else min(min_box, h)
-        si = chunk.segment_index
-        if si not in timesteps and chunk.trajectory.n_frames >= 2 and \
-                stores_time(source.segments[si].path):
-            t = chunk.trajectory.time
-            df = chunk.frames[1] - chunk.frames[0]
-            timesteps[si] = float(t[1] - t[0]) / float(df) if df else None
-        for s in np.unique(chunk.states):
-            rows = chunk.states == s
+        if lag_frames is not None and lag1 is None:
+            lag1 = _Series(n_feat, x[0].copy(), diagonal=True)
+        for s, rows in _runs(chunk):
             diag[s] = diag[s].merge(DiagonalMoments.from_data(x[rows]))
-            seg_counts[si, s] += int(rows.sum())
+            seg_counts[si, s] += rows.size
+            if lag1 is not None:
+                lag1.feed((si, s), chunk.frames[rows], x[rows], lag_frames[si])
     empty = [source.states[s] for s in range(n_states) if diag[s].count == 0]
     if empty:
         raise InputError(f"state(s) {', '.join(map(repr, empty))} have no frames; check the "
                          "files and frame ranges given for them")
     inputs = _describe_inputs(source, seg_counts, timesteps)
-    if min_box is not None:
-        notes.append(f"periodic box: distances use the minimum image (smallest box height "
-                     f"{min_box:.3g} nm)")
-        is_dist = np.array([pool.descriptors[i].kind == "distance"
-                            for i in pool.feature_descriptor], dtype=bool)
-        if is_dist.any():
-            longest = float(np.max([d.maximum[is_dist].max() for d in diag]))
-            if longest > 0.5 * min_box:
-                notes.append(f"warning: some distances reach {longest:.3g} nm, more than half "
-                             f"the smallest box height ({min_box:.3g} nm), where the minimum "
-                             "image folds them back; lower --cutoff or check the box")
+    notes += _box_notes(pool, diag, min_box)
     unknown = [i["file"] for i in inputs if i["timestep_ps"] is None]
     if unknown:
         notes.append("time step unknown for " + ", ".join(unknown[:5])
                      + (" ..." if len(unknown) > 5 else "")
                      + " (the format stores no times, or a single frame)")
-    steps = {round(i["timestep_ps"], 9) for i in inputs if i["timestep_ps"] is not None}
-    if len(steps) > 1:
-        notes.append("time steps differ between files: "
-                     + ", ".join(f"{s:g} ps" for s in sorted(steps))
-                     + " (not used by this version's scores)")
+    if lag_ps is not None:
+        notes.append(f"lag: {lag_ps:g} ps"
+                     + (" (default: 10 frames, for the slowness columns only)" if lag is None
+                        else "")
+                     + "; lagged pairs never span a file, a state change or a gap in frames")
+    else:
+        notes.append("slowness not scored: the files' time steps are unknown or differ; "
+                     "give --lag PS")
 
     means = np.array([d.mean for d in diag])
     variances = np.array([d.variance for d in diag])
     center = priors @ means
-    total_var = priors @ (variances + (means - center) ** 2)
-    scale = np.sqrt(total_var)
+    scale = np.sqrt(priors @ (variances + (means - center) ** 2))
     constant = ~(scale > 1e-12 * (1.0 + np.abs(center)))
     scale[constant] = 1.0
     fisher_feat = fisher_ratio(means, variances, priors)
     fisher_feat[constant] = 0.0
     fisher_feat = np.where(np.isfinite(fisher_feat), fisher_feat, 1e12)
+    if lag1 is not None:
+        rho_feat = np.nan_to_num(lag1.moments().autocorrelation(), nan=0.0)
+        rho_feat[constant] = 0.0
+    else:
+        rho_feat = None
     low = np.min([d.minimum for d in diag], axis=0)
     high = np.max([d.maximum for d in diag], axis=0)
 
     n_desc = len(pool)
     fisher_desc = np.zeros(n_desc)
     np.maximum.at(fisher_desc, pool.feature_descriptor, fisher_feat)
+    rho_desc = None
+    if rho_feat is not None:
+        rho_desc = np.full(n_desc, -np.inf)
+        np.maximum.at(rho_desc, pool.feature_descriptor, rho_feat)
+    if objective == "separate":
+        screen_score = fisher_desc
+    elif objective == "slow":
+        screen_score = np.clip(rho_desc, 0.0, None)
+    else:
+        screen_score = fisher_desc / (1.0 + fisher_desc) * np.clip(rho_desc, 0.0, None)
     order = sorted(range(n_desc), key=lambda i: (-fisher_desc[i], i))
-    screened = [i for i in order if fisher_desc[i] > 0][:screen_size]
+    screen_order = sorted(range(n_desc), key=lambda i: (-screen_score[i], i))
+    screened = [i for i in screen_order if screen_score[i] > 0][:screen_size]
     if not screened:
-        raise InputError("no descriptor differs between the states (every Fisher ratio is 0); "
-                         "check that the trajectories of different states are not the same")
+        what = ("differs between the states (every Fisher ratio is 0)" if objective != "slow"
+                else "is correlated in time at the lag (every autocorrelation is 0)")
+        raise InputError(f"no descriptor {what}; check the trajectories and the lag")
     # screened features, grouped by descriptor in screening order
     scr_feat = np.concatenate([pool.features_of([i]) for i in screened])
+    groups, pos = [], 0
+    for i in screened:
+        n = len(pool.descriptors[i].transforms)
+        groups.append(np.arange(pos, pos + n))
+        pos += n
 
     folds = _Folds(source, seg_counts, n_folds)
     notes.append(folds.describe())
     _note(progress, f"statistics pass ({len(screened)} descriptors screened)")
 
-    # ---- pass 2: histograms of all features, fold moments of screened features
+    # ---- pass 2: histograms of all features; fold moments, lagged fold moments and
+    # multi-lag autocorrelations of the screened features
     hist = Histograms(low, high, n_states=n_states, n_bins=_N_BINS)
     fold_m = [[Moments(scr_feat.size) for _ in range(folds.n_folds)] for _ in range(n_states)]
+    shift2 = center[scr_feat]
+    lag2 = _Series(scr_feat.size, shift2, diagonal=False) if lag_frames is not None else None
+    uniform_dt = len({round(v, 9) if v is not None else None for v in timesteps.values()}) == 1
+    iat_lags = _iat_lags(seg_counts) if uniform_dt else None
+    iat = [_Series(scr_feat.size, shift2, diagonal=True) for _ in iat_lags] \
+        if iat_lags is not None else []
     folds.reset()
     for chunk in source.iter_chunks(atom_indices=atoms, chunk_size=chunk_size):
         x = pool.features(chunk.trajectory, atom_indices=atoms)
         hist.add(x, chunk.states)
         f = folds.of(chunk)
         xs = x[:, scr_feat]
-        for s in np.unique(chunk.states):
-            for k in np.unique(f[chunk.states == s]):
-                rows = (chunk.states == s) & (f == k)
-                fold_m[s][k] = fold_m[s][k].merge(Moments.from_data(xs[rows]))
+        si = chunk.segment_index
+        for s, rows in _runs(chunk):
+            for k in np.unique(f[rows]):
+                r = rows[f[rows] == k]
+                fold_m[s][k] = fold_m[s][k].merge(Moments.from_data(xs[r]))
+                if lag2 is not None:
+                    lag2.feed((si, s, int(k)), chunk.frames[r], xs[r], lag_frames[si])
+            for acc, L in zip(iat, iat_lags):
+                acc.feed((si, s), chunk.frames[rows], xs[rows], int(L))
     for s in range(n_states):
         for k in range(folds.n_folds):
             if fold_m[s][k].count == 0:
@@ -457,14 +737,23 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
     overlap_feat = overlap_coefficient(hist.counts)
     overlap_desc = np.ones(n_desc)
     np.minimum.at(overlap_desc, pool.feature_descriptor, overlap_feat)
+    fold_lag = None
+    if lag2 is not None:
+        fold_lag = [lag2.moments(lambda key, k=k: key[2] == k) for k in range(folds.n_folds)]
+        if objective in ("slow", "both") and any(m.count == 0 for m in fold_lag):
+            raise InputError(f"a held-out fold has no lagged pairs at lag {lag_ps:g} ps; "
+                             "choose a shorter --lag or give longer runs")
+    fm = FoldMoments(fold_m, priors, fold_lag).standardized(center[scr_feat], scale[scr_feat])
 
-    fm = FoldMoments(fold_m, priors).standardized(center[scr_feat], scale[scr_feat])
-    # local feature groups per screened descriptor
-    groups, pos = [], 0
-    for i in screened:
-        n = len(pool.descriptors[i].transforms)
-        groups.append(np.arange(pos, pos + n))
-        pos += n
+    # integrated autocorrelation time of the screened descriptors (ps, or frames)
+    iat_desc = {}
+    if iat:
+        dt_unit = next(iter(timesteps.values())) or 1.0
+        rho_grid = np.array([a.moments().autocorrelation() for a in iat])
+        tau, decayed = integrated_time(iat_lags, rho_grid, dt_unit)
+        for gi, i in enumerate(screened):
+            j = int(groups[gi][np.argmax(tau[groups[gi]])])
+            iat_desc[i] = (float(tau[j]), bool(decayed[j]))
 
     # ---- shortlist: one representative per group of redundant descriptors
     pooled = fm.pooled()
@@ -481,101 +770,147 @@ def suggest(source, *, selection=None, kinds=("distance", "angle", "dihedral"), 
                 f"(|r|={dcorr[rep, o]:.3f})")
     short = [rep for rep, _ in reps][:shortlist_size]
     n_red = sum(len(o) for _, o in reps)
-    notes.append(f"redundancy: {n_red} of the {len(screened)} best separating descriptors are "
+    notes.append(f"redundancy: {n_red} of the {len(screened)} screened descriptors are "
                  f"represented by a better one (pooled within-state |r| > {max_correlation:g}, "
                  f"connected components of the correlation graph); shortlist: {len(short)} "
                  "representatives")
     _note(progress, f"searching combinations of up to {max_terms} of {len(short)} descriptors")
 
+    search = {"objective": objective, "method": method, "shrinkage": shrinkage}
     sub_groups = [groups[g] for g in short]
     combos = greedy_search(fm, sub_groups, max_terms=max_terms, n_seeds=n_seeds,
-                           min_gain=min_gain, shrinkage=shrinkage)
+                           min_gain=min_gain, **search)
     ranked = rank_combinations(combos, limit=n_suggestions)
-    notes.append(f"ranking: {len(combos)} combinations found by greedy forward search from the "
-                 f"{min(n_seeds, len(short))} best single descriptors (a term is added only "
-                 f"if it raises the held-out Fisher ratio by more than {min_gain:.0%}), "
-                 "ranked by held-out Fisher ratio with the one-standard-error rule; LDA "
-                 f"with shrinkage {shrinkage:g}, equal state weights")
+    notes.append(_search_note(objective, method, shrinkage, len(combos), min(n_seeds, len(short)),
+                              min_gain))
 
-    # ---- final fits on all data, and per-fold directions for the held-out pass
+    # ---- final fits on all data, and per-fold directions
     fits = []
     for comb in ranked:
         gidx = [short[m] for m in comb.members]
         idx = np.concatenate([groups[g] for g in gidx])
-        w = fit_direction(pooled, idx, priors, shrinkage)
+        w = cv_direction(fm, idx, **search)
         mu = np.array([m.mean[idx] for m in pooled])
         if mu[-1] @ w < mu[0] @ w:
             w = -w
         fold_w = []
         for k in range(fm.n_folds):
-            wk = fit_direction(fm.train(k), idx, priors, shrinkage)
-            if wk @ w < 0:
-                wk = -wk
-            fold_w.append(wk)
+            wk = cv_direction(fm, idx, fold=k, **search)
+            fold_w.append(wk if wk @ w >= 0 else -wk)
         fits.append((gidx, idx, w, fold_w))
 
-    _note(progress, "held-out pass")
-    heldout_overlap = _heldout_overlap(source, pool, screened, scr_feat, center, scale, fits,
-                                       fm, folds, priors)
+    _note(progress, "held-out and bootstrap pass")
+    short_desc = sorted({screened[g] for g in short})
+    block_frames = _block_frames(seg_counts, [iat_desc.get(screened[g]) for g in short],
+                                 timesteps, lag_frames)
+    pass3 = _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds,
+                   short_desc, block_frames, lag_frames)
+    heldout_overlap = pass3["overlap"]
+
+    boot = None
+    if n_bootstrap:
+        _note(progress, f"bootstrap ({n_bootstrap} replicates)")
+        boot = _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors,
+                          fm, search, max_terms, min_gain, n_bootstrap, seed, lag_frames)
+        notes.append(f"uncertainties: block bootstrap, {n_bootstrap} replicates (seed {seed}), "
+                     f"blocks of {pass3['block_desc']} resampled within each state; 95 % "
+                     "percentile intervals")
 
     # ---- outputs
+    dt0 = next(iter(timesteps.values()))
     scorecard = []
     screened_set = set(screened)
+    short_set = {screened[g] for g in short}
     for i in order:
         d = pool.descriptors[i]
-        scorecard.append({
+        tau = iat_desc.get(i)
+        row = {
             "id": d.id, "kind": d.kind, "label": d.label, "atoms": list(d.atoms),
             "fisher_ratio": float(fisher_desc[i]), "overlap": _finite(overlap_desc[i]),
-            "screened": i in screened_set, "shortlisted": False,
-            "stands_for": stands_for.get(i, []),
-            "note": notes_by_desc.get(i, ""),
-        })
-    short_ids = {pool.descriptors[screened[g]].id for g in short}
-    for row in scorecard:
-        row["shortlisted"] = row["id"] in short_ids
+            "autocorrelation": None if rho_desc is None else _finite(rho_desc[i]),
+            "integrated_time": None if tau is None else tau[0],
+            "integrated_time_decayed": None if tau is None else tau[1],
+            "screened": i in screened_set, "shortlisted": i in short_set,
+            "stands_for": stands_for.get(i, []), "note": notes_by_desc.get(i, ""),
+        }
+        if boot is not None and i in boot["desc"]:
+            row["fisher_ratio_ci"] = boot["desc"][i]["fisher_ratio_ci"]
+            if "autocorrelation_ci" in boot["desc"][i]:
+                row["autocorrelation_ci"] = boot["desc"][i]["autocorrelation_ci"]
+        scorecard.append(row)
 
-    ranking, specs = [], []
-    params = {"selection": selection, "kinds": list(kinds), "cutoff_nm": _finite(cutoff),
+    params = {"objective": objective, "method": method, "lag_ps": lag_ps,
+              "selection": selection, "kinds": list(kinds), "cutoff_nm": _finite(cutoff),
               "prefilter_stride": prefilter_stride, "max_terms": max_terms,
               "screen_size": screen_size, "shortlist_size": shortlist_size,
               "max_correlation": max_correlation, "n_folds": folds.n_folds,
               "n_seeds": n_seeds, "min_gain": min_gain,
-              "fold_mode": folds.mode, "shrinkage": shrinkage}
+              "fold_mode": folds.mode, "shrinkage": shrinkage, "n_bootstrap": n_bootstrap}
     checksums = [{"file": Path(p).name, "sha256": file_sha256(p),
                   "states": next(i["states"] for i in inputs if i["path"] == str(p))}
                  for p in source.files()]
-    for rank, (comb, (gidx, idx, w, _), ov) in enumerate(zip(ranked, fits, heldout_overlap), 1):
-        terms = []
-        local = 0
-        for g in gidx:
-            desc = pool.descriptors[screened[g]]
-            for t, fi in zip(desc.transforms, groups[g]):
-                gf = scr_feat[fi]
-                terms.append({"descriptor": desc.id, "label": desc.label, "kind": desc.kind,
-                              "atoms": list(desc.atoms), "transform": t,
-                              "center": float(center[gf]), "scale": float(scale[gf]),
-                              "weight": float(w[local])})
-                local += 1
-        state_stats = {}
-        for s, m in enumerate(pooled):
-            mean = float(m.mean[idx] @ w)
-            var = float(w @ m.covariance[np.ix_(idx, idx)] @ w)
-            state_stats[source.states[s]] = {"mean": mean, "std": math.sqrt(max(var, 0.0)),
-                                             "n_frames": int(round(m.count))}
-        mu = np.array([m.mean[idx] for m in pooled])
-        cov = np.array([m.covariance[np.ix_(idx, idx)] for m in pooled])
-        j_all = rayleigh_quotient(w, mu, cov, priors)
-        name = f"cv-{rank:02d}.json"
-        entry = {"rank": rank, "spec": name, "n_terms": comb.n_terms, "method": "lda",
-                 "heldout_fisher_ratio": comb.score, "heldout_fisher_ratio_se": comb.se,
-                 "heldout_fisher_ratio_folds": [float(v) for v in comb.fold_scores],
-                 "heldout_overlap": _finite(ov), "fisher_ratio_all": _finite(j_all),
-                 "states": state_stats, "terms": terms}
+    ranking, specs = [], []
+    for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, heldout_overlap), 1):
+        gidx, idx, w, fold_w = fit
+        entry = _ranking_entry(rank, comb, fit, ov, pool, screened, groups, scr_feat, center,
+                               scale, pooled, priors, fm, source, objective, method, lag_ps,
+                               lag_frames, dt0, boot)
         ranking.append(entry)
-        specs.append(_spec_dict(source, pool, name, entry, params, checksums))
+        specs.append(_spec_dict(source, pool, entry["spec"], entry, params, checksums,
+                                seed if n_bootstrap else None))
     return Suggestions(states=list(source.states), pool=pool, scorecard=scorecard,
                        ranking=ranking, specs=specs, notes=notes, inputs=inputs,
-                       input_files=output_inputs(source))
+                       input_files=output_inputs(source), objective=objective, lag_ps=lag_ps)
+
+
+def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
+    what = {"separate": "held-out Fisher ratio of the discriminant direction",
+            "slow": "held-out VAMP-2 of the slowest singular function (squared correlation "
+                    "across the lag)",
+            "both": "held-out J/(1+J) times the held-out autocorrelation at the lag"}[objective]
+    disc = "" if objective == "slow" else (
+        f"; {method.upper()} with shrinkage {shrinkage:g}, equal state weights")
+    return (f"search ({objective}): {n_combos} combinations from greedy forward searches "
+            f"started at the {n_seeds} best single descriptors, scored by {what}; a term is "
+            f"added only if it raises the score by more than {min_gain:.0%}; ranked with the "
+            f"one-standard-error rule{disc}")
+
+
+def _box_notes(pool, diag, min_box):
+    if min_box is None:
+        return ["no periodic box: distances are plain Euclidean"]
+    out = [f"periodic box: distances use the minimum image (smallest box height "
+           f"{min_box:.3g} nm)"]
+    is_dist = np.array([pool.descriptors[i].kind == "distance" for i in pool.feature_descriptor],
+                       dtype=bool)
+    if is_dist.any():
+        longest = float(np.max([d.maximum[is_dist].max() for d in diag]))
+        if longest > 0.5 * min_box:
+            out.append(f"warning: some distances reach {longest:.3g} nm, more than half the "
+                       f"smallest box height ({min_box:.3g} nm), where the minimum image folds "
+                       "them back; lower --cutoff or check the box")
+    return out
+
+
+def _block_frames(seg_counts, taus, timesteps, lag_frames):
+    """Bootstrap block length in frames, or None for whole runs.
+
+    At least twice the longest integrated autocorrelation time of the
+    shortlist and two lags; whole runs when that exceeds half the shortest
+    run, or when some shortlisted motion did not decorrelate within the runs.
+    """
+    dt = next(iter(timesteps.values())) or 1.0
+    known = [t for t in taus if t is not None]
+    if any(not decayed for _, decayed in known):
+        return None
+    longest = max((t for t, _ in known), default=0.0)
+    b = max(1, int(math.ceil(2.0 * longest / dt)))
+    if lag_frames:
+        b = max(b, 2 * max(lag_frames.values()))
+    shortest = int(seg_counts[seg_counts > 0].min())
+    if b > shortest // 2:
+        return None
+    return b
 
 
 def _box_heights(vectors):
@@ -600,7 +935,7 @@ def _finite(x):
 
 def _validate_options(**kw):
     ints = {"max_terms": 1, "n_suggestions": 1, "screen_size": 1, "shortlist_size": 1,
-            "n_folds": 2, "n_seeds": 1, "prefilter_stride": 1}
+            "n_folds": 2, "n_seeds": 1, "prefilter_stride": 1, "n_bootstrap": 0, "seed": 0}
     for name, lo in ints.items():
         v = kw[name]
         if not isinstance(v, (int, np.integer)) or v < lo:
@@ -626,57 +961,6 @@ def _describe_inputs(source, seg_counts, timesteps):
         if row["timestep_ps"] is None:
             row["timestep_ps"] = timesteps.get(si)
     return list(out.values())
-
-
-def _heldout_overlap(source, pool, screened, scr_feat, center, scale, fits, fm, folds, priors):
-    """Mean over folds of the held-out overlap of each ranked combination."""
-    need = sorted({screened[g] for gidx, *_ in fits for g in gidx})
-    sub = pool.subset(need)
-    sub_atoms = sub.atom_indices()
-    # map screened-local feature index -> column in the subset pool's features
-    col_of = {}
-    for j, i in enumerate(need):
-        for fi_sub, fi_pool in zip(sub.features_of([j]), pool.features_of([i])):
-            col_of[fi_pool] = fi_sub
-    n_folds = folds.n_folds
-    plans = []
-    for gidx, idx, w, fold_w in fits:
-        cols = np.array([col_of[scr_feat[i]] for i in idx])
-        c = center[scr_feat[idx]]
-        sc = scale[scr_feat[idx]]
-        ranges = []
-        for k in range(n_folds):
-            test = fm.test(k)
-            mu = np.array([m.mean[idx] @ fold_w[k] for m in test])
-            sd = np.array([math.sqrt(max(fold_w[k] @ m.covariance[np.ix_(idx, idx)] @ fold_w[k],
-                                         0.0)) for m in test])
-            lo, hi = float(np.min(mu - 5 * sd)), float(np.max(mu + 5 * sd))
-            if not hi > lo:
-                lo, hi = lo - 1.0, hi + 1.0
-            ranges.append((lo, hi))
-        plans.append((cols, c, sc, fold_w, ranges))
-    counts = np.zeros((len(fits), n_folds, source.n_states, _N_BINS))
-    folds.reset()
-    for chunk in source.iter_chunks(atom_indices=sub_atoms,
-                                    chunk_size=_chunk_frames(source, sub.n_features)):
-        x = sub.features(chunk.trajectory, atom_indices=sub_atoms)
-        f = folds.of(chunk)
-        for ci, (cols, c, sc, fold_w, ranges) in enumerate(plans):
-            z = (x[:, cols] - c) / sc
-            for k in np.unique(f):
-                rows = f == k
-                v = z[rows] @ fold_w[k]
-                lo, hi = ranges[k]
-                b = np.clip(np.floor((v - lo) / (hi - lo) * _N_BINS).astype(np.intp), 0,
-                            _N_BINS - 1)
-                for s in np.unique(chunk.states[rows]):
-                    bs = b[chunk.states[rows] == s]
-                    counts[ci, k, s] += np.bincount(bs, minlength=_N_BINS)
-    out = []
-    for ci in range(len(fits)):
-        per_fold = [overlap_coefficient(counts[ci, k][:, None, :])[0] for k in range(n_folds)]
-        out.append(float(np.mean(per_fold)))
-    return out
 
 
 def _topology_provenance(source):
@@ -711,7 +995,7 @@ def _labels_sha256(labels):
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
-def _spec_dict(source, pool, name, entry, params, checksums):
+def _spec_dict(source, pool, name, entry, params, checksums, seed):
     from .spec import atom_identity, residue_hashes, topology_fingerprint
 
     top = source.topology
@@ -727,11 +1011,11 @@ def _spec_dict(source, pool, name, entry, params, checksums):
         })
     terms = [{"descriptor": t["descriptor"], "transform": t["transform"], "center": t["center"],
               "scale": t["scale"], "weight": t["weight"]} for t in entry["terms"]]
-    scores = {"heldout_fisher_ratio": entry["heldout_fisher_ratio"],
-              "heldout_fisher_ratio_se": entry["heldout_fisher_ratio_se"],
-              "rank": entry["rank"]}
-    for key in ("heldout_overlap", "fisher_ratio_all"):
-        if entry[key] is not None:
+    scores = {"rank": entry["rank"]}
+    for key in ("heldout_score", "heldout_score_se", "heldout_fisher_ratio",
+                "heldout_fisher_ratio_se", "heldout_overlap", "fisher_ratio_all",
+                "heldout_autocorrelation", "autocorrelation_all", "timescale_ps", "lag_ps"):
+        if entry.get(key) is not None:
             scores[key] = entry[key]
     return {
         "format": "cvdesign-spec", "version": 1, "name": name[:-5],
@@ -740,11 +1024,256 @@ def _spec_dict(source, pool, name, entry, params, checksums):
                      "residues": residue_hashes(top)},
         "descriptors": descriptors, "terms": terms, "offset": 0.0, "periodic": False,
         "states": entry["states"], "scores": scores,
-        "provenance": {"cvdesign_version": __version__, "method": "lda",
+        "provenance": {"cvdesign_version": __version__,
+                       "method": f"{entry['method']} ({entry['objective']})",
                        "inputs": [{"file": c["file"], "sha256": c["sha256"],
                                    "state": ",".join(c["states"]) or None} for c in checksums],
-                       "seed": None, "parameters": params,
+                       "seed": seed, "parameters": params,
                        "topology": _topology_provenance(source),
                        "segments": _segments_provenance(source)},
         "caution": CAUTION,
     }
+
+
+def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, short_desc,
+           block_frames, lag_frames):
+    """Held-out CV histograms of the ranked combinations, and per-block statistics of the
+    shortlisted features (for the bootstrap), in one pass over the data."""
+    n_states, n_folds = source.n_states, folds.n_folds
+    sub = pool.subset(short_desc)
+    sub_atoms = sub.atom_indices()
+    # pool feature index -> column of the subset pool's features
+    col_of = {}
+    for j, i in enumerate(short_desc):
+        for fs, fp in zip(sub.features_of([j]), pool.features_of([i])):
+            col_of[int(fp)] = int(fs)
+    # all shortlisted features, as screened-local indices (columns of the fold moments)
+    short_set = set(short_desc)
+    local, pos = [], 0
+    for i in screened:
+        n = len(pool.descriptors[i].transforms)
+        if i in short_set:
+            local.extend(range(pos, pos + n))
+        pos += n
+    local = np.array(local, dtype=np.intp)
+    cols = np.array([col_of[int(scr_feat[i])] for i in local], dtype=np.intp)
+    c, sc = center[scr_feat[local]], scale[scr_feat[local]]
+    where = {int(i): p for p, i in enumerate(local)}
+    plans = []
+    for gidx, idx, w, fold_w in fits:
+        p_idx = np.array([where[int(i)] for i in idx], dtype=np.intp)
+        ranges = []
+        for k in range(n_folds):
+            test = fm.test(k)
+            mu = np.array([m.mean[idx] @ fold_w[k] for m in test])
+            sd = np.array([math.sqrt(max(fold_w[k] @ m.covariance[np.ix_(idx, idx)] @ fold_w[k],
+                                         0.0)) for m in test])
+            lo, hi = float(np.min(mu - 5 * sd)), float(np.max(mu + 5 * sd))
+            if not hi > lo:
+                lo, hi = lo - 1.0, hi + 1.0
+            ranges.append((lo, hi))
+        plans.append((p_idx, fold_w, ranges))
+    counts = np.zeros((len(fits), n_folds, n_states, _N_BINS))
+    block_m = {}
+    lagged = _Series(local.size, np.zeros(local.size), diagonal=False) if lag_frames else None
+    seen = {}
+    folds.reset()
+    for chunk in source.iter_chunks(atom_indices=sub_atoms,
+                                    chunk_size=_chunk_frames(source, sub.n_features)):
+        x = sub.features(chunk.trajectory, atom_indices=sub_atoms)
+        z = (x[:, cols] - c) / sc
+        f = folds.of(chunk)
+        si = chunk.segment_index
+        for ci, (p_idx, fold_w, ranges) in enumerate(plans):
+            for k in np.unique(f):
+                rows = f == k
+                v = z[rows][:, p_idx] @ fold_w[k]
+                lo, hi = ranges[k]
+                b = np.clip(np.floor((v - lo) / (hi - lo) * _N_BINS).astype(np.intp), 0,
+                            _N_BINS - 1)
+                st = chunk.states[rows]
+                for s in np.unique(st):
+                    counts[ci, k, s] += np.bincount(b[st == s], minlength=_N_BINS)
+        for s, rows in _runs(chunk):
+            for k in np.unique(f[rows]):
+                r = rows[f[rows] == k]
+                key3 = (si, s, int(k))
+                rank = seen.get(key3, 0) + np.arange(r.size)
+                seen[key3] = seen.get(key3, 0) + r.size
+                blk = rank // block_frames if block_frames else np.zeros(r.size, dtype=np.intp)
+                for bi in np.unique(blk):
+                    rr = r[blk == bi]
+                    key = (s, int(k), si, int(bi))
+                    m = Moments.from_data(z[rr])
+                    block_m[key] = m if key not in block_m else block_m[key].merge(m)
+                    if lagged is not None:
+                        lagged.feed(key, chunk.frames[rr], z[rr], lag_frames[si])
+    overlap = []
+    for ci in range(len(fits)):
+        per_fold = [overlap_coefficient(counts[ci, k][:, None, :])[0] for k in range(n_folds)]
+        overlap.append(float(np.mean(per_fold)))
+    blocks = {}
+    for key in sorted(block_m):
+        lm = lagged.moments(lambda k2, key=key: k2 == key) if lagged is not None else None
+        blocks.setdefault(key[:2], []).append((block_m[key], lm))
+    n_blocks = sum(len(v) for v in blocks.values())
+    desc = (f"{block_frames} frames" if block_frames else "whole runs") + f" ({n_blocks} blocks)"
+    return {"overlap": overlap, "blocks": blocks, "local": local, "where": where,
+            "block_desc": desc}
+
+
+def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm, search,
+               max_terms, min_gain, n_bootstrap, seed, lag_frames):
+    """Confidence intervals of weights and scores, and how often terms are selected."""
+    blocks, where = pass3["blocks"], pass3["where"]
+    n_states, n_folds = fm.n_states, fm.n_folds
+    per_state = [[b for k in range(n_folds) for b in blocks.get((s, k), [])]
+                 for s in range(n_states)]
+    if any(len(g) < 2 for g in per_state):
+        return None
+    has_lag = lag_frames is not None
+    p_fits = [(np.array([where[int(i)] for i in idx], dtype=np.intp), w) for _, idx, w, _ in fits]
+    short_groups = [np.array([where[int(i)] for i in groups[g]], dtype=np.intp) for g in short]
+
+    def stat(merged):
+        states = [m[0] for m in merged]
+        lag = merge_all([m[1] for m in merged]) if has_lag else None
+        out = []
+        for p_idx, w_ref in p_fits:
+            if search["objective"] == "slow":
+                w = slow_direction(lag, p_idx)[0]
+            else:
+                w = fit_direction(states, p_idx, priors, search["shrinkage"],
+                                  method=search["method"])
+            if w @ w_ref < 0:
+                w = -w
+            means, covs = _arrays_of(states, p_idx)
+            out.extend(w.tolist())
+            out.append(rayleigh_quotient(w, means, covs, priors))
+            out.append(autocorrelation_along(w, lag, p_idx) if has_lag else np.nan)
+        means = np.array([m.mean for m in states])
+        var = np.array([m.variance for m in states])
+        f = fisher_ratio(means, var, priors)
+        out.extend(max(f[g]) for g in short_groups)
+        if has_lag:
+            rho = lag.diagonal().autocorrelation()
+            out.extend(max(rho[g]) for g in short_groups)
+        return np.array(out)
+
+    res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed)
+    out = {"combos": [], "desc": {}, "selection": None}
+    pos = 0
+    for p_idx, _ in p_fits:
+        n = p_idx.size
+        out["combos"].append({
+            "weights_ci": [[_finite(a), _finite(b)] for a, b in
+                           zip(res.low[pos:pos + n], res.high[pos:pos + n])],
+            "fisher_ratio_ci": [_finite(res.low[pos + n]), _finite(res.high[pos + n])],
+            "autocorrelation_ci": ([_finite(res.low[pos + n + 1]),
+                                    _finite(res.high[pos + n + 1])] if has_lag else None),
+        })
+        pos += n + 2
+    for j, g in enumerate(short):
+        out["desc"][screened[g]] = {"fisher_ratio_ci": [_finite(res.low[pos + j]),
+                                                        _finite(res.high[pos + j])]}
+    pos += len(short)
+    if has_lag:
+        for j, g in enumerate(short):
+            out["desc"][screened[g]]["autocorrelation_ci"] = [_finite(res.low[pos + j]),
+                                                              _finite(res.high[pos + j])]
+    # How often each candidate is in the rank-1 combination of a refit of the search
+    # (seeded from the best single descriptor) on a bootstrap resample of the folds.
+    # Candidates: the terms of the ranked combinations and the best SELECTION_POOL
+    # representatives, which bounds the cost.
+    per_fold = [blocks.get((s, k), []) for s in range(n_states) for k in range(n_folds)]
+    if all(len(g) >= 1 for g in per_fold):
+        in_ranked = {short.index(g) for gidx, *_ in fits for g in gidx}
+        cand = sorted(in_ranked | set(range(min(SELECTION_POOL, len(short)))))
+        cand_groups = [short_groups[j] for j in cand]
+
+        def select(merged):
+            grid = [[merged[s * n_folds + k][0] for k in range(n_folds)] for s in range(n_states)]
+            lag = ([merge_all([merged[s * n_folds + k][1] for s in range(n_states)])
+                    for k in range(n_folds)] if has_lag else None)
+            boot_fm = FoldMoments(grid, priors, lag)
+            combos = greedy_search(boot_fm, cand_groups, max_terms=max_terms, n_seeds=1,
+                                   min_gain=min_gain, **search)
+            best = rank_combinations(combos, limit=1)[0]
+            hit = np.zeros(len(cand))
+            hit[list(best.members)] = 1.0
+            return hit
+
+        n_sel = min(n_bootstrap, SELECTION_REPLICATES)
+        sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1)
+        ok = np.isfinite(sel.replicates).all(axis=1)
+        freq = sel.replicates[ok].mean(axis=0) if ok.any() else np.full(len(cand), np.nan)
+        out["selection"] = {pool.descriptors[screened[short[j]]].id: _finite(freq[c])
+                            for c, j in enumerate(cand)}
+        out["n_selection"] = int(ok.sum())
+    return out
+
+
+def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, center, scale,
+                   pooled, priors, fm, source, objective, method, lag_ps, lag_frames, dt0, boot):
+    gidx, idx, w, fold_w = fit
+    # held-out separation (arithmetic Fisher ratio) and autocorrelation of the fold directions
+    sep, rho = [], []
+    for k in range(fm.n_folds):
+        means, covs = _arrays_of(fm.test(k), idx)
+        sep.append(min(rayleigh_quotient(fold_w[k], means, covs, priors), 1e12))
+        if fm.lagged is not None:
+            rho.append(autocorrelation_along(fold_w[k], fm.lagged_test(k), idx))
+    sep = np.array(sep)
+    mu, cov = _arrays_of(pooled, idx)
+    j_all = rayleigh_quotient(w, mu, cov, priors)
+    rho_all = timescale = None
+    if fm.lagged is not None:
+        rho_all = autocorrelation_along(w, fm.lagged_pooled(), idx)
+        timescale = float(implied_timescales([rho_all], lag_ps)[0])
+    terms, local = [], 0
+    ci = boot["combos"][rank - 1] if boot is not None else None
+    sel = boot["selection"] if boot is not None else None
+    for g in gidx:
+        desc = pool.descriptors[screened[g]]
+        for t, fi in zip(desc.transforms, groups[g]):
+            gf = scr_feat[fi]
+            term = {"descriptor": desc.id, "label": desc.label, "kind": desc.kind,
+                    "atoms": list(desc.atoms), "transform": t,
+                    "center": float(center[gf]), "scale": float(scale[gf]),
+                    "weight": float(w[local])}
+            if ci is not None:
+                term["weight_ci"] = ci["weights_ci"][local]
+            if sel is not None:
+                term["selection_frequency"] = sel.get(desc.id)
+            terms.append(term)
+            local += 1
+    state_stats = {}
+    for s, m in enumerate(pooled):
+        var = float(w @ m.covariance[np.ix_(idx, idx)] @ w)
+        state_stats[source.states[s]] = {"mean": float(m.mean[idx] @ w),
+                                         "std": math.sqrt(max(var, 0.0)),
+                                         "n_frames": int(round(m.count))}
+    se = float(sep.std(ddof=1) / math.sqrt(len(sep))) if len(sep) > 1 else 0.0
+    entry = {
+        "rank": rank, "spec": f"cv-{rank:02d}.json", "n_terms": comb.n_terms,
+        "objective": objective, "method": "tica" if objective == "slow" else method,
+        "heldout_score": comb.score, "heldout_score_se": comb.se,
+        "heldout_score_folds": [float(v) for v in comb.fold_scores],
+        "heldout_fisher_ratio": float(sep.mean()), "heldout_fisher_ratio_se": se,
+        "heldout_overlap": _finite(overlap), "fisher_ratio_all": _finite(j_all),
+        "lag_ps": lag_ps,
+        "heldout_autocorrelation": float(np.mean(rho)) if rho else None,
+        "autocorrelation_all": _finite(rho_all) if rho_all is not None else None,
+        "timescale_ps": _finite(timescale) if timescale is not None else None,
+        "states": state_stats, "terms": terms,
+    }
+    if ci is not None:
+        entry["fisher_ratio_ci"] = ci["fisher_ratio_ci"]
+        entry["autocorrelation_ci"] = ci["autocorrelation_ci"]
+    return entry
+
+
+def _arrays_of(moments, idx):
+    means = np.array([m.mean[idx] for m in moments])
+    covs = np.array([m.covariance[np.ix_(idx, idx)] for m in moments])
+    return means, covs

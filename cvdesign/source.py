@@ -83,8 +83,11 @@ def check_box(traj, path, first_frame):
     vecs = traj.unitcell_vectors
     if vecs is None:
         return
-    vol = np.abs(np.linalg.det(vecs.astype(np.float64)))
-    bad = ~np.isfinite(vecs).all(axis=(1, 2)) | ~(vol > 1e-9)
+    vecs = vecs.astype(np.float64)
+    finite = np.isfinite(vecs).all(axis=(1, 2))
+    vol = np.zeros(vecs.shape[0])
+    vol[finite] = np.abs(np.linalg.det(vecs[finite]))
+    bad = ~finite | ~(vol > 1e-9)
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
         raise InputError(
@@ -252,6 +255,9 @@ class Source:
         Topology file (or a loaded topology).
     chunk_size : int, default=500
         Frames read at a time.
+    timestep : float, default=None
+        Time between frames in ps for files whose format stores no times
+        (DCD, PDB, ...); files that store times keep their own.
 
     Examples
     --------
@@ -266,7 +272,11 @@ class Source:
         src = Source.from_labels("mol.pdb", "run.xtc", labels)
     """
 
-    def __init__(self, topology, *, chunk_size=500):
+    def __init__(self, topology, *, chunk_size=500, timestep=None):
+        if timestep is not None and not (isinstance(timestep, (int, float)) and timestep > 0
+                                         and math.isfinite(timestep)):
+            raise InputError(f"timestep={timestep!r} must be a positive time in ps")
+        self.default_timestep = None if timestep is None else float(timestep)
         self.topology_path = None if isinstance(topology, md.Topology) else str(topology)
         self.topology = load_topology(topology)
         if int(chunk_size) < 1:
@@ -343,7 +353,8 @@ class Source:
                                  "(start, stop) of 0-based frame numbers, stop excluded")
             start, stop = frames
             for name, v in (("start", start), ("stop", stop)):
-                if v is not None and (not isinstance(v, numbers.Integral) or v < 0):
+                if v is not None and (not isinstance(v, numbers.Integral)
+                                      or isinstance(v, bool) or v < 0):
                     raise InputError(f"frames={frames!r} for {str(path)!r}: {name} must be a "
                                      "non-negative integer or None")
             if start is not None and stop is not None and stop <= start:
@@ -351,19 +362,46 @@ class Source:
                                  "give (start, stop) with start < stop")
             start = None if start is None else int(start)
             stop = None if stop is None else int(stop)
-        for seg in self.segments:
-            if seg.path == path and seg.labels is None and seg.start is None and \
-                    seg.stop is None and start is None and stop is None:
-                raise InputError(f"trajectory {str(path)!r} is given twice without frame ranges "
-                                 f"(for states {seg.state!r} and {str(state)!r}); give each file "
-                                 "once, or frame ranges with frames=(start, stop)")
+        self._check_overlap(path, start, stop, str(state))
         self._add_state(state)
         self.segments.append(Segment(path, str(state), start, stop))
         return self
 
+    def _check_overlap(self, path, start, stop, state):
+        """Refuse frames of a file that were already given (under any spelling of its path)."""
+        lo, hi = (start or 0), (math.inf if stop is None else stop)
+        for seg in self.segments:
+            if not os.path.samefile(seg.path, path):
+                continue
+            if seg.labels is not None or state is None:
+                raise InputError(f"trajectory {str(path)!r} is given twice, once with a label "
+                                 "array; give each file once")
+            a, b = (seg.start or 0), (math.inf if seg.stop is None else seg.stop)
+            if lo < b and a < hi:
+                raise InputError(
+                    f"trajectory {str(path)!r} is given twice with overlapping frames (for "
+                    f"states {seg.state!r} and {state!r}); give each file once, or disjoint "
+                    "frame ranges with frames=(start, stop)")
+
     def add_labelled(self, path, labels):
-        """Add a trajectory file with a per-frame array of state names."""
+        """Add a trajectory file with a per-frame array of state names.
+
+        Parameters
+        ----------
+        path : path-like
+            Trajectory file.
+        labels : array-like of shape (n_frames,)
+            State name of every frame of the file; None, ``""`` or NaN marks a
+            frame that belongs to no state. States are ordered by first
+            appearance.
+
+        Returns
+        -------
+        Source
+            self, so calls can be chained.
+        """
         path = self._check_trajectory(path)
+        self._check_overlap(path, None, None, None)
         labels = [None if _unlabelled(x) else str(x)
                   for x in np.asarray(labels, dtype=object).reshape(-1)]
         names = list(dict.fromkeys(x for x in labels if x is not None))
@@ -488,12 +526,12 @@ class Source:
     def timestep(self, segment_index):
         """Time between the first two frames of a segment's file, in ps.
 
-        None when unknown: a single frame, or a format that stores no times
-        (see :func:`stores_time`).
+        For a format that stores no times (see :func:`stores_time`), the
+        source's `timestep` (None when not given); None also for a single frame.
         """
         seg = self.segments[segment_index]
         if not stores_time(seg.path):
-            return None
+            return self.default_timestep
         try:
             with quiet_stdout():
                 first = next(md.iterload(str(seg.path), top=self.topology, chunk=2,

@@ -1,0 +1,162 @@
+"""Issue 3 behaviour of the pipeline: objectives, lag handling, unlabelled runs, slowness."""
+
+import numpy as np
+import pytest
+from sklearn.metrics import adjusted_rand_score
+
+from cvdesign import InputError, Source, suggest
+from cvdesign.cli import main
+from cvdesign.explore import propose_states
+from cvdesign.moments import DiagonalLaggedMoments
+from cvdesign.pipeline import integrated_time
+from cvdesign.testbed import write_two_wells
+
+
+@pytest.fixture(scope="module")
+def two_wells_data(tmp_path_factory):
+    """Testbed runs: a slow double-well torsion (never crosses) and a fast one (hops)."""
+    return write_two_wells(tmp_path_factory.mktemp("two_wells"))
+
+
+def _dihedral_id(atoms):
+    return "dihedral:" + "-".join(map(str, atoms))
+
+
+def _rank1_descriptors(result):
+    return {t["descriptor"] for t in result.ranking[0]["terms"]}
+
+
+def test_slow_objective_picks_the_slow_torsion_and_separate_with_fast_labels_the_fast_one(
+        two_wells_data):
+    data = two_wells_data
+    slow_id, fast_id = _dihedral_id(data.slow_dihedral), _dihedral_id(data.fast_dihedral)
+    # Labels by the fast well: the separating CV must follow the fast torsion.
+    labelled = Source(data.topology)
+    for path in data.paths:
+        labelled.add_labelled(path, data.fast_labels[path])
+    sep = suggest(labelled, objective="separate", n_bootstrap=0, max_terms=2)
+    assert fast_id in _rank1_descriptors(sep)
+    assert slow_id not in _rank1_descriptors(sep)
+    # The slow objective on the runs of each slow well: the slow torsion wins.
+    runs = Source.from_states(data.topology, data.files)
+    slow = suggest(runs, objective="slow", lag=10 * data.timestep_ps, n_bootstrap=0,
+                   max_terms=2)
+    assert slow_id in _rank1_descriptors(slow)
+    assert fast_id not in _rank1_descriptors(slow)
+    # Both numbers are reported for every suggestion.
+    for r in slow.ranking + sep.ranking:
+        assert r["heldout_fisher_ratio"] is not None and r["heldout_overlap"] is not None
+        assert r["heldout_autocorrelation"] is not None and r["timescale_ps"] is not None
+    fast_row = next(r for r in slow.scorecard if r["id"] == fast_id)
+    slow_row = next(r for r in slow.scorecard if r["id"] == slow_id)
+    assert slow_row["autocorrelation"] > 0.9 > fast_row["autocorrelation"]
+
+
+def test_both_objective_reports_and_combines_both_scores(two_wells_data):
+    data = two_wells_data
+    runs = Source.from_states(data.topology, data.files)
+    res = suggest(runs, objective="both", lag=10 * data.timestep_ps, n_bootstrap=0,
+                  max_terms=2, n_suggestions=3)
+    for r in res.ranking:
+        j = r["heldout_fisher_ratio"]
+        assert 0.0 <= r["heldout_score"] <= 1.0
+        assert r["objective"] == "both" and r["method"] == "hlda"
+        assert j >= 0 and r["heldout_autocorrelation"] <= 1.0
+    assert _dihedral_id(data.slow_dihedral) in _rank1_descriptors(res)
+
+
+def test_unlabelled_demo_runs_recover_the_states_and_the_slow_descriptor(demo_files,
+                                                                         demo_manifest):
+    top, states = demo_files
+    src = Source(top)
+    truth = []
+    for name, files in states.items():
+        for f in files:
+            src.add(f, "runs")
+            truth += [name] * 2000
+    exp = propose_states(src, lag=2.0)
+    pred = np.concatenate([exp.labels[f] for files in states.values() for f in files])
+    # Adjusted Rand index (Hubert and Arabie, J. Classif. 1985) against the known states.
+    assert adjusted_rand_score(truth, pred.astype(str)) >= 0.9
+    assert exp.criterion["name"] == "silhouette" and len(exp.states) == 2
+    assert sum(exp.populations.values()) == pytest.approx(1.0)
+    res = suggest(exp.labelled_source(top), n_bootstrap=0, max_terms=2)
+    slow_id = _dihedral_id(demo_manifest["slow_dihedral"]["atoms"])
+    assert res.ranking[0]["terms"][0]["descriptor"] == slow_id
+
+
+def test_cli_runs_writes_proposed_states(demo_files, tmp_path, capsys):
+    top, states = demo_files
+    out = tmp_path / "out"
+    runs = states["closed"][:2] + states["open"][:2]
+    assert main(["suggest", "--topology", top, "--runs", *runs, "--lag", "2", "--out",
+                 str(out), "--bootstrap", "0", "--max-terms", "2"]) == 0
+    printed = capsys.readouterr().out
+    assert "proposed states: S1 (50.0%" in printed
+    lines = (out / "states.csv").read_text().splitlines()
+    assert lines[0] == "file,frame,state" and len(lines) == 1 + 4 * 2000
+    assert "## Proposed states (unlabelled runs)" in (out / "summary.md").read_text()
+
+
+def test_runs_without_a_slow_process_at_the_lag_are_told_so(demo_files):
+    # One run inside one basin: every motion relaxes within a few ps.
+    top, states = demo_files
+    src = Source(top).add(states["closed"][0], "runs")
+    with pytest.raises(InputError, match="the runs show no slow process at lag 40 ps: every "
+                                         "implied timescale"):
+        propose_states(src, lag=40.0)
+
+
+def test_lag_that_is_not_a_whole_number_of_frames_is_refused(demo_files):
+    top, states = demo_files
+    src = Source.from_states(top, {k: v[:1] for k, v in states.items()})
+    with pytest.raises(InputError, match=r"lag=0.3 ps is not a whole number of frames of "
+                                         r"'.*closed-1.xtc' \(time step 0.2 ps\)"):
+        suggest(src, objective="slow", lag=0.3)
+    with pytest.raises(InputError, match="objective 'slow' needs a lag time"):
+        suggest(src, objective="slow")
+
+
+def test_lag_in_ps_needs_a_time_step_for_formats_without_times(mda_data):
+    # DCD stores no times (adenylate kinase, MDAnalysis test data).
+    def source(**kw):
+        src = Source(str(mda_data / "adk.psf"), **kw)
+        src.add(str(mda_data / "adk_dims.dcd"), "closed", frames=(0, 30))
+        src.add(str(mda_data / "adk_dims.dcd"), "open", frames=(68, 98))
+        return src
+
+    with pytest.raises(InputError, match="time step is unknown .* give the time step with "
+                                         "--timestep PS"):
+        suggest(source(), selection="name CA", objective="both", lag=2.0)
+    res = suggest(source(timestep=1.0), selection="name CA", objective="both", lag=2.0,
+                  n_bootstrap=0, max_terms=1, n_suggestions=1)
+    assert res.lag_ps == 2.0 and res.ranking[0]["heldout_autocorrelation"] is not None
+
+
+def test_integrated_time_of_an_ar1_process_matches_its_closed_form():
+    # AR(1) x_t = phi x_{t-1} + noise has rho(k) = phi^k and integrated time
+    # 1/2 + sum_k phi^k = (1 + phi) / (2 (1 - phi)) frames (Sokal 1997; from memory).
+    rng = np.random.default_rng(0)
+    phi = 0.9
+    n = 200_000
+    e = rng.normal(size=n)
+    x = np.empty(n)
+    x[0] = e[0] / np.sqrt(1 - phi**2)
+    for t in range(1, n):
+        x[t] = phi * x[t - 1] + e[t]
+    lags = np.unique(np.round(np.geomspace(1, 400, 30)).astype(int))
+    rho = np.array([DiagonalLaggedMoments.from_series(x[:, None], int(k)).autocorrelation()
+                    for k in lags])
+    tau, decayed = integrated_time(lags, rho, 0.5)
+    exact = 0.5 * (1 + phi) / (2 * (1 - phi))
+    assert decayed[0]
+    assert tau[0] == pytest.approx(exact, rel=0.05)
+
+
+def test_scorecard_reports_slowness_of_every_descriptor(demo_result):
+    for row in demo_result.scorecard:
+        assert row["autocorrelation"] is not None
+        assert -1.0 <= row["autocorrelation"] <= 1.0
+    screened = [r for r in demo_result.scorecard if r["screened"]]
+    assert all(r["integrated_time"] is not None for r in screened)
+    assert "autocorrelation" in demo_result.scorecard_csv().splitlines()[0]
