@@ -793,6 +793,8 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         mu = np.array([m.mean[idx] for m in pooled])
         if mu[-1] @ w < mu[0] @ w:
             w = -w
+        if objective == "slow":
+            w = kinetic_map_scale(w, fm.lagged_pooled(), idx)
         fold_w = []
         for k in range(fm.n_folds):
             wk = cv_direction(fm, idx, fold=k, **search)
@@ -863,13 +865,28 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
                        input_files=output_inputs(source), objective=objective, lag_ps=lag_ps)
 
 
+def kinetic_map_scale(w, lagged, idx):
+    """Scale a slow direction to kinetic-map units (Noé and Clementi, J. Chem. Theory
+    Comput. 2015): the CV's variance becomes ``lambda^2``, its autocorrelation at the lag
+    squared, so distances along slow CVs of different runs or suggestions compare in
+    kinetic terms. A direction with ``lambda <= 0`` is scaled to unit variance."""
+    sub = lagged.subset(np.asarray(idx, dtype=np.intp))
+    _, c0, ct = sub.covariances(reversible=True)
+    var = float(w @ c0 @ w)
+    if not var > 0:
+        return w
+    lam = float(w @ ct @ w) / var
+    return w * (lam if lam > 0 else 1.0) / math.sqrt(var)
+
+
 def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
     what = {"separate": "held-out Fisher ratio of the discriminant direction",
             "slow": "held-out VAMP-2 of the slowest singular function (squared correlation "
                     "across the lag)",
             "both": "held-out J/(1+J) times the held-out autocorrelation at the lag"}[objective]
-    disc = "" if objective == "slow" else (
-        f"; {method.upper()} with shrinkage {shrinkage:g}, equal state weights")
+    disc = ("; the CV is the slowest TICA direction (reversible estimate) in kinetic-map "
+            "scaling" if objective == "slow" else
+            f"; {method.upper()} with shrinkage {shrinkage:g}, equal state weights")
     return (f"search ({objective}): {n_combos} combinations from greedy forward searches "
             f"started at the {n_seeds} best single descriptors, scored by {what}; a term is "
             f"added only if it raises the score by more than {min_gain:.0%}; ranked with the "
@@ -1147,6 +1164,8 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
                                   method=search["method"])
             if w @ w_ref < 0:
                 w = -w
+            if search["objective"] == "slow":
+                w = kinetic_map_scale(w, lag, p_idx)
             means, covs = _arrays_of(states, p_idx)
             out.extend(w.tolist())
             out.append(rayleigh_quotient(w, means, covs, priors))

@@ -160,3 +160,20 @@ def test_scorecard_reports_slowness_of_every_descriptor(demo_result):
     screened = [r for r in demo_result.scorecard if r["screened"]]
     assert all(r["integrated_time"] is not None for r in screened)
     assert "autocorrelation" in demo_result.scorecard_csv().splitlines()[0]
+
+
+def test_slow_cv_is_in_kinetic_map_units(two_wells_data):
+    # Kinetic map (Noe and Clementi, J. Chem. Theory Comput. 2015): the slow CV's variance
+    # over the data equals its squared autocorrelation at the lag.
+    import mdtraj as md
+
+    from cvdesign.spec import Spec
+
+    data = two_wells_data
+    res = suggest(Source.from_states(data.topology, data.files), objective="slow",
+                  lag=10 * data.timestep_ps, n_bootstrap=0, max_terms=2, n_suggestions=1)
+    spec = Spec.from_dict(res.specs[0])
+    values = np.concatenate([spec.evaluate(md.load(p, top=data.topology).xyz)
+                             for p in data.paths])
+    rho = res.ranking[0]["autocorrelation_all"]
+    assert values.var() == pytest.approx(rho**2, rel=0.02)
