@@ -4,6 +4,7 @@ Sub-commands:
 
 * ``suggest`` -- rank compact linear CVs separating the given states, write spec files;
 * ``apply`` -- evaluate a spec on trajectories, without refitting anything;
+* ``check`` -- validate a spec against a topology, and another program's values against it;
 * ``demo`` -- run ``suggest`` on the bundled demo data.
 """
 
@@ -13,6 +14,8 @@ import io
 import json
 import sys
 from pathlib import Path
+
+import numpy as np
 
 from . import __version__
 from .errors import CVDesignError, InputError
@@ -161,6 +164,25 @@ def build_parser():
                    help="write the CSV here instead of standard output")
 
     p = sub.add_parser(
+        "check", help="validate a spec against a topology, and an engine's values against it",
+        description="Validate a spec file (schema, atom indices, topology fingerprint) against "
+                    "a topology; with --against, compare CV values that another program "
+                    "computed on a trajectory with cvdesign's reference evaluator, report the "
+                    "largest deviation and the frames where it occurs, and exit 1 if it "
+                    "exceeds the tolerance. This is how to show that the engine side computes "
+                    "the same CV.")
+    p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json)")
+    p.add_argument("--topology", required=True, metavar="TOP",
+                   help="topology file the spec must match")
+    p.add_argument("--against", nargs=2, action="append", metavar=("VALUES.csv", "TRAJ"),
+                   help="CV values computed elsewhere (CSV: a 'value' column, optionally with "
+                        "'frame', as 'cvdesign apply' writes; or one number per line) and the "
+                        "trajectory they were computed on; repeat for several trajectories")
+    p.add_argument("--tolerance", type=_positive_float, default=None, metavar="TOL",
+                   help="largest accepted |deviation|, in the CV's units (default: 1e-3 times "
+                        "the largest within-state spread stored in the spec)")
+
+    p = sub.add_parser(
         "demo", help="run suggest on the bundled demo data",
         description="Run 'suggest' on the bundled demo (an invented flexible molecule with "
                     "one slow torsion that opens and closes a contact) and say what to look at.")
@@ -285,6 +307,101 @@ def _cmd_apply(args):
     return 0
 
 
+def _read_values(path):
+    """(frames or None, values) from a CSV of CV values, with a clear error on bad input."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"values file {str(path)!r} does not exist; check the path")
+    text = path.read_text(encoding="utf-8", errors="replace")
+    rows = [r for r in csv.reader(io.StringIO(text)) if r and any(c.strip() for c in r)]
+    if not rows:
+        raise InputError(f"values file {str(path)!r} is empty")
+    header = [c.strip().lower() for c in rows[0]]
+    frames = None
+    try:
+        if "value" in header:
+            vi = header.index("value")
+            fi = header.index("frame") if "frame" in header else None
+            body = rows[1:]
+            values = [float(r[vi]) for r in body]
+            if fi is not None:
+                frames = [int(r[fi]) for r in body]
+        else:
+            start = 0
+            try:
+                float(rows[0][0])
+            except ValueError:
+                start = 1  # a header line without a 'value' column
+            values = [float(r[0]) for r in rows[start:]]
+    except (ValueError, IndexError) as exc:
+        raise InputError(f"values file {str(path)!r}: cannot read a number on some line "
+                         f"({exc}); give a CSV with a 'value' column or one number per "
+                         "line") from None
+    if not values:
+        raise InputError(f"values file {str(path)!r} holds no values")
+    values = np.asarray(values, dtype=np.float64)
+    if not np.all(np.isfinite(values)):
+        bad = int(np.flatnonzero(~np.isfinite(values))[0])
+        raise InputError(f"values file {str(path)!r}: value {bad} is not a finite number")
+    return (None if frames is None else np.asarray(frames)), values
+
+
+def _cmd_check(args):
+    from .source import Source
+    from .spec import load_spec
+
+    source = Source(args.topology)
+    spec = load_spec(args.spec, topology=source.topology)
+    print(f"{args.spec}: valid spec, matches topology {args.topology} "
+          f"({source.topology.n_atoms} atoms)")
+    if not args.against:
+        return 0
+    spreads = [v["std"] for v in spec.states.values() if v.get("std")]
+    tol = args.tolerance if args.tolerance is not None else 1e-3 * (max(spreads) if spreads
+                                                                    else 1.0)
+    worst_all = 0.0
+    for values_path, traj in args.against:
+        frames, theirs = _read_values(values_path)
+        src = Source(source.topology)
+        src.add(traj, state="check")
+        ours, idx = [], []
+        for chunk in src.iter_chunks():
+            ours.append(spec.evaluate(chunk.trajectory.xyz, box=chunk.trajectory.unitcell_vectors))
+            idx.append(chunk.frames)
+        ours = np.concatenate(ours)
+        idx = np.concatenate(idx)
+        if frames is None:
+            if theirs.size != ours.size:
+                raise InputError(f"{values_path!r} holds {theirs.size} values but {traj!r} has "
+                                 f"{ours.size} frames; give one value per frame")
+            ref = ours
+            frame_of = idx
+        else:
+            pos = {int(f): i for i, f in enumerate(idx)}
+            missing = [int(f) for f in frames if int(f) not in pos]
+            if missing:
+                raise InputError(f"{values_path!r} names frame {missing[0]}, which {traj!r} "
+                                 f"does not have ({ours.size} frames)")
+            ref = ours[[pos[int(f)] for f in frames]]
+            frame_of = np.asarray(frames)
+        dev = np.abs(theirs - ref)
+        order = np.argsort(-dev, kind="stable")[:5]
+        worst = float(dev[order[0]])
+        worst_all = max(worst_all, worst)
+        print(f"{values_path} vs {traj}: {dev.size} frames, largest |deviation| {worst:.3g} "
+              f"(tolerance {tol:.3g}), mean {float(dev.mean()):.3g}")
+        for i in order:
+            if dev[i] > tol or i == order[0]:
+                print(f"    frame {int(frame_of[i])}: engine {float(theirs[i])!r}, reference "
+                      f"{float(ref[i])!r}, deviation {float(dev[i]):.3g}")
+    ok = worst_all <= tol
+    print("PASS: the values agree with the reference evaluator" if ok else
+          "FAIL: the values differ from the reference evaluator beyond the tolerance; check "
+          "the engine's atom indices, weights, centers and scales, transforms and "
+          "periodic-box handling")
+    return 0 if ok else 1
+
+
 def demo_data_dir():
     """Directory holding the bundled demo data (topology, trajectories, manifest.json)."""
     here = Path(__file__).resolve().parent
@@ -329,7 +446,8 @@ def main(argv=None):
     """Run the ``cvdesign`` command; return its exit status."""
     parser = build_parser()
     args = parser.parse_args(argv)
-    handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "demo": _cmd_demo}[args.command]
+    handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "check": _cmd_check,
+               "demo": _cmd_demo}[args.command]
     try:
         return handler(args)
     except CVDesignError as exc:
