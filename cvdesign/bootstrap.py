@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .moments import merge_all
+from .moments import LaggedMoments, Moments, merge_all
 
 __all__ = ["merge_blocks", "block_bootstrap", "BootstrapResult", "percentile_interval"]
 
@@ -37,6 +37,84 @@ def merge_blocks(blocks):
     if isinstance(blocks[0], tuple):
         return tuple(merge_all(col) if col[0] is not None else None for col in zip(*blocks))
     return merge_all(blocks)
+
+
+class _Raw:
+    """Blocks of one kind stacked as additive raw sums, for fast weighted merging.
+
+    Moments become (count, sum, sum of outer products) about zero; lagged
+    moments, which all share one shift in a bootstrap, already are additive.
+    A replicate is then one weighted sum over blocks instead of a tree of merges.
+    """
+
+    def __init__(self, blocks):
+        first = blocks[0]
+        self.kind = type(first)
+        # every field flattened to one row per block, so a replicate is one
+        # matrix-vector product per field
+        if self.kind is Moments:
+            p = first.n_features
+            self.shape = (p, p)
+            self.n = np.array([b.count for b in blocks])
+            self.s1 = np.array([b.count * b.mean for b in blocks])
+            self.s2 = np.ascontiguousarray(np.array(
+                [(b.scatter + b.count * np.outer(b.mean, b.mean)).ravel() for b in blocks]))
+        else:
+            self.template = first
+            self.fields = {f: np.ascontiguousarray(np.array(
+                [np.ravel(getattr(b, f)) for b in blocks], dtype=np.float64))
+                for f in ("count", "n_pairs", "sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy")}
+            self.shapes = {f: np.shape(getattr(first, f)) for f in self.fields}
+
+    @staticmethod
+    def supported(blocks):
+        if not blocks:
+            return False
+        kind = type(blocks[0])
+        if kind is Moments:
+            return all(type(b) is Moments for b in blocks)
+        if kind is LaggedMoments:
+            return all(type(b) is LaggedMoments and np.array_equal(b.shift, blocks[0].shift)
+                       for b in blocks)
+        return False
+
+    def combine(self, weights):
+        if self.kind is Moments:
+            n = float(weights @ self.n)
+            m = Moments(self.s1.shape[1])
+            if n <= 0:
+                return m
+            m.count = n
+            m.mean = (weights @ self.s1) / n
+            m.scatter = (weights @ self.s2).reshape(self.shape) - n * np.outer(m.mean, m.mean)
+            return m
+        out = self.template.copy()
+        for f, arr in self.fields.items():
+            val = (weights @ arr).reshape(self.shapes[f])
+            if f == "n_pairs":
+                val = int(round(float(val)))
+            elif f == "count":
+                val = float(val)
+            setattr(out, f, val)
+        return out
+
+
+def _fast_groups(groups):
+    """Per group, a list of _Raw (one per tuple position), or None if unsupported."""
+    out = []
+    for g in groups:
+        cols = list(zip(*g)) if isinstance(g[0], tuple) else [g]
+        raws = []
+        for col in cols:
+            col = list(col)
+            if col[0] is None:
+                raws.append(None)
+            elif _Raw.supported(col):
+                raws.append(_Raw(col))
+            else:
+                return None
+        out.append((isinstance(g[0], tuple), raws))
+    return out
 
 
 def percentile_interval(replicates, level=0.95):
@@ -124,8 +202,17 @@ def block_bootstrap(groups, statistic, *, n_boot=200, seed=0, level=0.95):
     estimate = np.asarray(statistic([merge_blocks(g) for g in groups]), dtype=np.float64)
     rng = np.random.default_rng(seed)
     reps = np.full((int(n_boot),) + estimate.shape, np.nan)
+    fast = _fast_groups(groups)
     for r in range(int(n_boot)):
-        merged = [merge_blocks([g[i] for i in rng.integers(0, len(g), len(g))]) for g in groups]
+        draws = [rng.integers(0, len(g), len(g)) for g in groups]
+        if fast is not None:
+            merged = []
+            for (is_tuple, raws), d, g in zip(fast, draws, groups):
+                w = np.bincount(d, minlength=len(g)).astype(np.float64)
+                parts = [None if raw is None else raw.combine(w) for raw in raws]
+                merged.append(tuple(parts) if is_tuple else parts[0])
+        else:
+            merged = [merge_blocks([g[i] for i in d]) for g, d in zip(groups, draws)]
         try:
             reps[r] = statistic(merged)
         except (ValueError, np.linalg.LinAlgError, ZeroDivisionError):

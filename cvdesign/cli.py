@@ -5,6 +5,7 @@ Sub-commands:
 * ``suggest`` -- rank compact linear CVs separating the given states, write spec files;
 * ``apply`` -- evaluate a spec on trajectories, without refitting anything;
 * ``check`` -- validate a spec against a topology, and another program's values against it;
+* ``hints`` -- starting values for the bias along a spec's CV;
 * ``demo`` -- run ``suggest`` on the bundled demo data.
 """
 
@@ -107,6 +108,11 @@ def _add_suggest_options(p):
     p.add_argument("--timestep", type=_positive_float, default=None, metavar="PS",
                    help="time between frames in ps for files that store no times (DCD, "
                         "PDB, ...); files that store times keep their own")
+    p.add_argument("--temperature", type=_positive_float, default=300.0, metavar="K",
+                   help="temperature of the biased run in K, for the bias-parameter hints "
+                        "stored in each spec (default: 300)")
+    p.add_argument("--md-timestep", type=_positive_float, default=2.0, metavar="FS",
+                   help="MD timestep of the biased run in fs, for the hints (default: 2)")
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it holds an earlier cvdesign output")
     p.add_argument("--quiet", action="store_true", help="print only the final table")
@@ -183,6 +189,26 @@ def build_parser():
                         "the largest within-state spread stored in the spec)")
 
     p = sub.add_parser(
+        "hints", help="starting values for a (well-tempered) metadynamics bias along a spec's CV",
+        description="Recompute bias-parameter hints from a spec alone: kernel width (CV units) "
+                    "from the within-state spread, deposition interval (MD steps) from the CV's "
+                    "within-run decorrelation time, kernel height and well-tempered bias factor "
+                    "(kJ/mol) for a barrier estimate (or a table over estimates), walls and a "
+                    "grid, and how long filling each basin would take. Starting points to "
+                    "validate, not guarantees.")
+    p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json)")
+    p.add_argument("--temperature", type=_positive_float, required=True, metavar="K",
+                   help="temperature of the biased run, K")
+    p.add_argument("--timestep", type=_positive_float, required=True, metavar="FS",
+                   help="MD timestep of the biased run, fs")
+    p.add_argument("--barrier", type=_positive_float, default=None, metavar="KJ_PER_MOL",
+                   help="estimate of the barrier to leave the states, kJ/mol (default: a "
+                        "table over 20 to 100 kJ/mol)")
+    p.add_argument("--kernel", choices=("gaussian", "lucy"), default="gaussian",
+                   help="kernel shape: Gaussian, or Lucy's compact kernel (default: gaussian)")
+    p.add_argument("--json", action="store_true", help="print the hints as JSON")
+
+    p = sub.add_parser(
         "demo", help="run suggest on the bundled demo data",
         description="Run 'suggest' on the bundled demo (an invented flexible molecule with "
                     "one slow torsion that opens and closes a contact) and say what to look at.")
@@ -226,6 +252,9 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                                      progress=progress)
         source = exploration.labelled_source(topology, timestep=args.timestep)
     else:
+        if getattr(args, "n_states", None) is not None:
+            raise InputError("--n-states goes with --runs (states proposed from unlabelled "
+                             "runs); with --state the states are the ones given")
         names = [s[0] for s in states]
         dup = sorted({n for n in names if names.count(n) > 1})
         if dup:
@@ -243,7 +272,8 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                      selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
                      prefilter_stride=args.prefilter_stride, max_terms=args.max_terms,
                      n_suggestions=args.suggestions, n_folds=args.folds,
-                     n_bootstrap=args.bootstrap, seed=args.seed, progress=progress)
+                     n_bootstrap=args.bootstrap, seed=args.seed, temperature=args.temperature,
+                     md_timestep_fs=args.md_timestep, progress=progress)
     result.exploration = exploration
     result.write(out, force=args.force)
     if not args.quiet:
@@ -402,6 +432,28 @@ def _cmd_check(args):
     return 0 if ok else 1
 
 
+def _cmd_hints(args):
+    from .hints import format_hints, suggest_hints
+    from .spec import load_spec
+
+    spec = load_spec(args.spec)
+    states = {k: v for k, v in spec.states.items() if v.get("std", 0) > 0}
+    if not states:
+        raise InputError(f"spec {args.spec!r} records no state with a positive spread of the "
+                         "CV; hints need the within-state spread")
+    periodic = bool(spec.periodic)
+    period = getattr(spec, "period", None) if periodic else None
+    hints = suggest_hints(states, temperature=args.temperature, timestep_fs=args.timestep,
+                          autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
+                          barrier=args.barrier, kernel=args.kernel, periodic=periodic,
+                          cv_range=(None if not periodic else (-period / 2, period / 2)))
+    if args.json:
+        sys.stdout.write(json.dumps(hints, indent=2, sort_keys=True) + "\n")
+    else:
+        print(format_hints(hints))
+    return 0
+
+
 def demo_data_dir():
     """Directory holding the bundled demo data (topology, trajectories, manifest.json)."""
     here = Path(__file__).resolve().parent
@@ -423,7 +475,7 @@ def _cmd_demo(args):
                             prefilter_stride=10, max_terms=5, suggestions=10, folds=4,
                             force=args.force, quiet=False, objective="separate", lag=None,
                             method="hlda", bootstrap=args.bootstrap, seed=0, timestep=None,
-                            n_states=None)
+                            n_states=None, temperature=300.0, md_timestep=2.0)
     print(f"cvdesign demo: {manifest['description']}\n", file=sys.stdout)
     result = _run_suggest(top, states, args.out, ns, sys.stdout)
     slow = manifest["slow_dihedral"]
@@ -447,7 +499,7 @@ def main(argv=None):
     parser = build_parser()
     args = parser.parse_args(argv)
     handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "check": _cmd_check,
-               "demo": _cmd_demo}[args.command]
+               "hints": _cmd_hints, "demo": _cmd_demo}[args.command]
     try:
         return handler(args)
     except CVDesignError as exc:

@@ -36,7 +36,12 @@ from .pipeline import _chunk_frames, _lag_frames, _Series
 from .pool import build_pool
 from .source import Source
 
-__all__ = ["propose_states", "Exploration"]
+__all__ = ["propose_states", "Exploration", "MIN_SILHOUETTE"]
+
+#: Smallest mean silhouette accepted as metastable structure. Kaufman and Rousseeuw
+#: (*Finding Groups in Data*, 1990) read 0.51-0.70 as "a reasonable structure" and
+#: below 0.5 as weak or artificial (from memory).
+MIN_SILHOUETTE = 0.5
 
 
 @dataclass
@@ -74,6 +79,7 @@ class Exploration:
     n_slow: int
     criterion: dict
     notes: list = field(default_factory=list)
+    longest_run_ps: float = None
 
     def labelled_source(self, topology, *, chunk_size=500, timestep=None):
         """A :class:`~cvdesign.source.Source` of the runs with the proposed labels."""
@@ -87,16 +93,20 @@ class Exploration:
     def states_csv(self):
         """Per-frame proposed states as CSV text (file, frame, state)."""
         lines = ["file,frame,state"]
-        for path, labels in self.labels.items():
-            name = str(path).replace("\\", "/").rsplit("/", 1)[-1]
-            lines.extend(f"{name},{i},{s}" for i, s in enumerate(labels))
+        names = [str(p).replace("\\", "/").rsplit("/", 1)[-1] for p in self.labels]
+        unique = len(set(names)) == len(names)
+        for (path, labels), name in zip(self.labels.items(), names):
+            shown = name if unique else str(path)
+            lines.extend(f"{shown},{i},{s}" for i, s in enumerate(labels))
         return "\n".join(lines) + "\n"
 
     def summary_lines(self):
         """Markdown lines describing the proposed states."""
         out = ["## Proposed states (unlabelled runs)", "",
                f"TICA at lag {self.lag_ps:g} ps; implied timescales (ps): "
-               + ", ".join(_fmt_ts(t) for t in self.timescales_ps[:6])
+               + ", ".join(_fmt_ts(t) if self.longest_run_ps is None or t < self.longest_run_ps
+                           else f"> {self.longest_run_ps:.3g} (not resolved by these runs)"
+                           for t in self.timescales_ps[:6])
                + f". Clustered in the {self.n_slow} slowest coordinate(s) (kinetic map) with "
                "k-means; number of states "
                + ("given." if self.criterion["name"] == "given" else
@@ -253,6 +263,13 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
                 best = (k, km)
         if best is None:
             raise InputError("too few distinct frames to propose states; give longer runs")
+        if scores[best[0]] < MIN_SILHOUETTE:
+            raise InputError(
+                f"no metastable structure found: the best clustering of the slow coordinates "
+                f"({best[0]} groups) has a mean silhouette of only {scores[best[0]]:.2f}, below "
+                f"{MIN_SILHOUETTE} (below that, groups are not clearly separated; Kaufman and "
+                "Rousseeuw 1990). The runs may sample a single state at this lag; give the "
+                "states with --state, or use longer runs")
         k, gm = best
         criterion = {"name": "silhouette", "values": scores}
     else:
@@ -291,6 +308,9 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     pops = {names[i]: float(np.mean(lab == i)) for i in used}
     notes.append(f"{len(states)} states proposed from {y.shape[0]} frames "
                  f"(k-means fitted on {fit_y.shape[0]}, silhouette on {sil_y.shape[0]})")
+    lengths = [len(np.concatenate(frames_of[k])) * timesteps[k] for k in keys
+               if timesteps.get(k) is not None]
     return Exploration(states=states, labels=labels, populations=pops, representatives=reps,
                        timescales_ps=ts_ps, lag_ps=float(lag), n_slow=n_slow,
-                       criterion=criterion, notes=notes)
+                       criterion=criterion, notes=notes,
+                       longest_run_ps=float(max(lengths)) if lengths else None)

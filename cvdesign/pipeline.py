@@ -114,7 +114,8 @@ class Suggestions:
         """The score card as CSV text."""
         cols = ["order", "id", "kind", "label", "atoms", "fisher_ratio", "fisher_ratio_ci_low",
                 "fisher_ratio_ci_high", "overlap", "autocorrelation", "autocorrelation_ci_low",
-                "autocorrelation_ci_high", "integrated_time", "integrated_time_decayed",
+                "autocorrelation_ci_high", "autocorrelation_within_runs", "integrated_time_ps",
+                "integrated_time_decayed",
                 "screened", "shortlisted", "stands_for", "note"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
@@ -127,6 +128,7 @@ class Suggestions:
                         " ".join(map(str, row["atoms"])), _fmt(row["fisher_ratio"]),
                         _fmt(fci[0]), _fmt(fci[1]), _fmt(row["overlap"]),
                         _fmt(row.get("autocorrelation")), _fmt(aci[0]), _fmt(aci[1]),
+                        _fmt(row.get("autocorrelation_within_runs")),
                         _fmt(row.get("integrated_time")), "" if dec is None else int(dec),
                         int(row["screened"]), int(row["shortlisted"]),
                         " ".join(row["stands_for"]), row["note"]])
@@ -198,7 +200,10 @@ class Suggestions:
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
                 "normalized autocorrelation of the CV at the lag (1 = does not relax within "
-                "the lag), and the timescale is -lag/ln(autocorrelation) on all data. "
+                "the lag, here with all runs about their common mean, so a run that never "
+                "leaves its state counts as slow), and the timescale is "
+                "-lag/ln(autocorrelation) on all data; a timescale longer than the longest run "
+                "is only a lower bound. "
                 "Intervals are 95 % block-bootstrap intervals; selection is the fraction of "
                 "bootstrap refits whose rank-1 combination holds the descriptor.", "",
                 "| rank | spec | held-out J | overlap | autocorr. | timescale (ps) | "
@@ -207,11 +212,11 @@ class Suggestions:
         for r in self.ranking[:5]:
             terms = "; ".join(_term_text(t) for t in r["terms"])
             rho = r["heldout_autocorrelation"]
-            ts = r["timescale_ps"]
+            ts = _timescale_text(r)
             out.append(f"| {r['rank']} | {r['spec']} | "
                        f"{r['heldout_fisher_ratio']:.3g} ± {r['heldout_fisher_ratio_se']:.2g} | "
                        f"{r['heldout_overlap']:.3f} | {'' if rho is None else format(rho, '.3f')} "
-                       f"| {'' if ts is None else format(ts, '.3g')} | {terms} |")
+                       f"| {ts} | {terms} |")
         out += ["", "Files: `ranking.csv`, `ranking.json`, `scorecard.csv` (every descriptor), "
                 "`cv-NN.json` (one spec per suggestion; evaluate with `cvdesign apply`).",
                 "", f"**Caution.** {CAUTION}", ""]
@@ -249,6 +254,15 @@ def _term_name(t):
     return t["label"] if t["transform"] == "identity" else f"{t['transform']}({t['label']})"
 
 
+def _timescale_text(r):
+    ts = r.get("timescale_ps")
+    if ts is None:
+        return ""
+    if r.get("timescale_resolved") is False and r.get("longest_run_ps"):
+        return f"> {r['longest_run_ps']:.3g} (not resolved by these runs)"
+    return format(ts, ".3g")
+
+
 def _term_text(t):
     text = f"{_term_name(t)} {t['weight']:+.3f}"
     if t.get("weight_ci"):
@@ -266,8 +280,24 @@ def _fmt(x):
     return f"{x:.6g}"
 
 
+def _rounded(obj, digits=12):
+    """Floats rounded to `digits` significant digits (recursively).
+
+    The last digits of a float depend on the order of summation, which can
+    change with the number of BLAS threads; rounding keeps outputs
+    byte-identical across thread counts in practice.
+    """
+    if isinstance(obj, float):
+        return float(f"{obj:.{digits}g}") if math.isfinite(obj) else obj
+    if isinstance(obj, dict):
+        return {k: _rounded(v, digits) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_rounded(v, digits) for v in obj]
+    return obj
+
+
 def _dumps(obj):
-    return json.dumps(obj, indent=2, sort_keys=True, allow_nan=False) + "\n"
+    return json.dumps(_rounded(obj), indent=2, sort_keys=True, allow_nan=False) + "\n"
 
 
 def output_inputs(source):
@@ -382,6 +412,38 @@ class _Series:
             start = c
         self._last[key] = frames[-1]
 
+    def moments_of(self, key):
+        """Moments of one key (an empty object if the key was never fed)."""
+        acc = self._acc.get(key)
+        if acc is None:
+            cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
+            return cls(self.n_features, shift=self.shift)
+        m = acc.moments.copy()
+        m.lag = None
+        return m
+
+    def local_autocorrelation(self):
+        """Autocorrelation at the lag with every series about its own mean.
+
+        The variances and lagged covariances of the keys (diagonal statistics),
+        each about the key's own mean, are combined weighted by their pair
+        counts: the decorrelation *within* runs, free of the offsets between
+        runs or states.
+        """
+        c0 = np.zeros(self.n_features)
+        ct = np.zeros(self.n_features)
+        for acc in self._acc.values():
+            m = acc.moments
+            if m.count == 0:
+                continue
+            _, v0, c = m.covariances(reversible=True)
+            c0 += m.count * v0
+            ct += m.count * c
+        out = np.full(self.n_features, np.nan)
+        ok = c0 > 0
+        out[ok] = ct[ok] / c0[ok]
+        return out
+
     def moments(self, select=None):
         """Merged moments of the keys for which ``select(key)`` is true (all if None)."""
         out = []
@@ -486,7 +548,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
             kinds=("distance", "angle", "dihedral"), cutoff=1.0, prefilter_stride=10,
             max_terms=5, n_suggestions=10, screen_size=200, shortlist_size=40,
             max_correlation=0.95, n_folds=4, n_seeds=5, min_gain=0.01, shrinkage=1e-3,
-            n_bootstrap=200, seed=0, progress=None):
+            n_bootstrap=200, seed=0, temperature=300.0, md_timestep_fs=2.0, progress=None):
     """Rank compact linear CVs for the states of a source.
 
     Parameters
@@ -549,6 +611,11 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         Block-bootstrap replicates for confidence intervals (0: none).
     seed : int, default=0
         Seed of the bootstrap; same inputs and seed, same outputs byte for byte.
+    temperature : float, default=300.0
+        Temperature in K of the biased run, for the bias-parameter hints stored
+        in each spec (recompute them with ``cvdesign hints``).
+    md_timestep_fs : float, default=2.0
+        MD timestep in fs of the biased run, for the hints.
     progress : callable, default=None
         Called with a message string at each stage.
 
@@ -622,9 +689,11 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     min_box = None
     lag1 = None
     chunk_size = _chunk_frames(source, n_feat)
+    last_time = {}
     for chunk in source.iter_chunks(atom_indices=atoms, chunk_size=chunk_size):
         x = pool.features(chunk.trajectory, atom_indices=atoms)
         si = chunk.segment_index
+        _check_uniform_time(source, si, chunk, timesteps.get(si), last_time)
         if chunk.trajectory.unitcell_vectors is not None:
             h = _box_heights(chunk.trajectory.unitcell_vectors).min()
             min_box = h if min_box is None else min(min_box, h)
@@ -640,6 +709,8 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         raise InputError(f"state(s) {', '.join(map(repr, empty))} have no frames; check the "
                          "files and frame ranges given for them")
     inputs = _describe_inputs(source, seg_counts, timesteps)
+    run_ps = [seg_counts[si].sum() * dt for si, dt in timesteps.items() if dt is not None]
+    longest_run_ps = float(max(run_ps)) if run_ps else None
     notes += _box_notes(pool, diag, min_box)
     unknown = [i["file"] for i in inputs if i["timestep_ps"] is None]
     if unknown:
@@ -653,7 +724,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
                      + "; lagged pairs never span a file, a state change or a gap in frames")
     else:
         notes.append("slowness not scored: the files' time steps are unknown or differ; "
-                     "give --lag PS")
+                     "give --lag PS (and --timestep PS for files that store no times)")
 
     means = np.array([d.mean for d in diag])
     variances = np.array([d.variance for d in diag])
@@ -667,18 +738,22 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     if lag1 is not None:
         rho_feat = np.nan_to_num(lag1.moments().autocorrelation(), nan=0.0)
         rho_feat[constant] = 0.0
+        local_feat = np.nan_to_num(lag1.local_autocorrelation(), nan=0.0)
+        local_feat[constant] = 0.0
     else:
-        rho_feat = None
+        rho_feat = local_feat = None
     low = np.min([d.minimum for d in diag], axis=0)
     high = np.max([d.maximum for d in diag], axis=0)
 
     n_desc = len(pool)
     fisher_desc = np.zeros(n_desc)
     np.maximum.at(fisher_desc, pool.feature_descriptor, fisher_feat)
-    rho_desc = None
+    rho_desc = local_desc = None
     if rho_feat is not None:
         rho_desc = np.full(n_desc, -np.inf)
         np.maximum.at(rho_desc, pool.feature_descriptor, rho_feat)
+        local_desc = np.full(n_desc, -np.inf)
+        np.maximum.at(local_desc, pool.feature_descriptor, local_feat)
     if objective == "separate":
         screen_score = fisher_desc
     elif objective == "slow":
@@ -689,6 +764,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     screen_order = sorted(range(n_desc), key=lambda i: (-screen_score[i], i))
     screened = [i for i in screen_order if screen_score[i] > 0][:screen_size]
     if not screened:
+        if objective != "separate" and lag1 is not None and lag1.moments().count == 0:
+            raise InputError(f"no lagged pairs at lag {lag_ps:g} ps: every run is shorter than "
+                             "the lag; choose a shorter --lag")
         what = ("differs between the states (every Fisher ratio is 0)" if objective != "slow"
                 else "is correlated in time at the lag (every autocorrelation is 0)")
         raise InputError(f"no descriptor {what}; check the trajectories and the lag")
@@ -714,6 +792,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     iat_lags = _iat_lags(seg_counts) if uniform_dt else None
     iat = [_Series(scr_feat.size, shift2, diagonal=True) for _ in iat_lags] \
         if iat_lags is not None else []
+    if iat_lags is None:
+        notes.append("integrated autocorrelation times not computed: the files' time steps "
+                     "differ (or some are unknown)")
     folds.reset()
     for chunk in source.iter_chunks(atom_indices=atoms, chunk_size=chunk_size):
         x = pool.features(chunk.trajectory, atom_indices=atoms)
@@ -727,7 +808,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
                 fold_m[s][k] = fold_m[s][k].merge(Moments.from_data(xs[r]))
                 if lag2 is not None:
                     lag2.feed((si, s, int(k)), chunk.frames[r], xs[r], lag_frames[si])
-            for acc, L in zip(iat, iat_lags):
+            for acc, L in zip(iat, iat_lags if iat else ()):
                 acc.feed((si, s), chunk.frames[rows], xs[rows], int(L))
     for s in range(n_states):
         for k in range(folds.n_folds):
@@ -747,9 +828,10 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
 
     # integrated autocorrelation time of the screened descriptors (ps, or frames)
     iat_desc = {}
-    if iat:
-        dt_unit = next(iter(timesteps.values())) or 1.0
-        rho_grid = np.array([a.moments().autocorrelation() for a in iat])
+    dt_unit = next(iter(timesteps.values()))
+    if iat and dt_unit is not None:
+        # within runs: each (file, state) series about its own mean
+        rho_grid = np.array([a.local_autocorrelation() for a in iat])
         tau, decayed = integrated_time(iat_lags, rho_grid, dt_unit)
         for gi, i in enumerate(screened):
             j = int(groups[gi][np.argmax(tau[groups[gi]])])
@@ -830,6 +912,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
             "id": d.id, "kind": d.kind, "label": d.label, "atoms": list(d.atoms),
             "fisher_ratio": float(fisher_desc[i]), "overlap": _finite(overlap_desc[i]),
             "autocorrelation": None if rho_desc is None else _finite(rho_desc[i]),
+            "autocorrelation_within_runs": None if local_desc is None else _finite(local_desc[i]),
             "integrated_time": None if tau is None else tau[0],
             "integrated_time_decayed": None if tau is None else tau[1],
             "screened": i in screened_set, "shortlisted": i in short_set,
@@ -847,7 +930,8 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
               "screen_size": screen_size, "shortlist_size": shortlist_size,
               "max_correlation": max_correlation, "n_folds": folds.n_folds,
               "n_seeds": n_seeds, "min_gain": min_gain,
-              "fold_mode": folds.mode, "shrinkage": shrinkage, "n_bootstrap": n_bootstrap}
+              "fold_mode": folds.mode, "shrinkage": shrinkage, "n_bootstrap": n_bootstrap,
+              "temperature_k": temperature, "md_timestep_fs": md_timestep_fs}
     checksums = [{"file": Path(p).name, "sha256": file_sha256(p),
                   "states": next(i["states"] for i in inputs if i["path"] == str(p))}
                  for p in source.files()]
@@ -857,6 +941,14 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         entry = _ranking_entry(rank, comb, fit, ov, pool, screened, groups, scr_feat, center,
                                scale, pooled, priors, fm, source, objective, method, lag_ps,
                                lag_frames, dt0, boot)
+        ts = entry["timescale_ps"]
+        entry["timescale_resolved"] = None if ts is None else bool(
+            longest_run_ps is not None and ts < longest_run_ps)
+        entry["longest_run_ps"] = longest_run_ps
+        taus = [iat_desc[screened[g]] for g in fit[0] if screened[g] in iat_desc]
+        # within-run decorrelation time of the CV, bounded by its slowest term
+        entry["integrated_time_ps"] = max(t for t, _ in taus) if taus else None
+        entry["hints"] = _hints_for(entry, temperature, md_timestep_fs)
         ranking.append(entry)
         specs.append(_spec_dict(source, pool, entry["spec"], entry, params, checksums,
                                 seed if n_bootstrap else None))
@@ -877,6 +969,46 @@ def kinetic_map_scale(w, lagged, idx):
         return w
     lam = float(w @ ct @ w) / var
     return w * (lam if lam > 0 else 1.0) / math.sqrt(var)
+
+
+def _hints_for(entry, temperature, md_timestep_fs):
+    """Bias-parameter hints for a ranked CV (None when they cannot be computed)."""
+    from .hints import suggest_hints
+
+    states = {k: v for k, v in entry["states"].items() if v["std"] > 0}
+    if len(states) < 1:
+        return None
+    try:
+        return suggest_hints(states, temperature=temperature, timestep_fs=md_timestep_fs,
+                             autocorrelation_time_ps=entry.get("integrated_time_ps"))
+    except ValueError:
+        return None
+
+
+def _check_uniform_time(source, si, chunk, dt, last):
+    """Refuse a file whose frames are not evenly spaced in time (when it stores times)."""
+    path = source.segments[si].path
+    if dt is None or not stores_time(path):
+        return
+    t = np.asarray(chunk.trajectory.time, dtype=np.float64)
+    f = np.asarray(chunk.frames, dtype=np.float64)
+    if si in last:
+        t = np.concatenate([[last[si][0]], t])
+        f = np.concatenate([[last[si][1]], f])
+    last[si] = (t[-1], f[-1])
+    if t.size < 2:
+        return
+    expected = np.diff(f) * dt
+    # times are single precision: allow their rounding, and 0.1 % of a step
+    tol = np.maximum(1e-3 * dt, 4 * np.abs(t[1:]) * 2.0**-23)
+    bad = np.flatnonzero(np.abs(np.diff(t) - expected) > tol)
+    if bad.size:
+        i = int(bad[0])
+        raise InputError(
+            f"trajectory {str(path)!r} is not evenly spaced in time: frame {int(f[i + 1])} is at "
+            f"{t[i + 1]:g} ps, but the first time step ({dt:g} ps) puts it at "
+            f"{t[i] + expected[i]:g} ps; lags in ps need evenly spaced frames, so split the "
+            "file where the spacing changes")
 
 
 def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
@@ -1031,7 +1163,8 @@ def _spec_dict(source, pool, name, entry, params, checksums, seed):
     scores = {"rank": entry["rank"]}
     for key in ("heldout_score", "heldout_score_se", "heldout_fisher_ratio",
                 "heldout_fisher_ratio_se", "heldout_overlap", "fisher_ratio_all",
-                "heldout_autocorrelation", "autocorrelation_all", "timescale_ps", "lag_ps"):
+                "heldout_autocorrelation", "autocorrelation_all", "timescale_ps", "lag_ps",
+                "integrated_time_ps"):
         if entry.get(key) is not None:
             scores[key] = entry[key]
     return {
@@ -1041,6 +1174,7 @@ def _spec_dict(source, pool, name, entry, params, checksums, seed):
                      "residues": residue_hashes(top)},
         "descriptors": descriptors, "terms": terms, "offset": 0.0, "periodic": False,
         "states": entry["states"], "scores": scores,
+        **({"hints": entry["hints"]} if entry.get("hints") else {}),
         "provenance": {"cvdesign_version": __version__,
                        "method": f"{entry['method']} ({entry['objective']})",
                        "inputs": [{"file": c["file"], "sha256": c["sha256"],
@@ -1131,10 +1265,11 @@ def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, sho
         overlap.append(float(np.mean(per_fold)))
     blocks = {}
     for key in sorted(block_m):
-        lm = lagged.moments(lambda k2, key=key: k2 == key) if lagged is not None else None
+        lm = lagged.moments_of(key) if lagged is not None else None
         blocks.setdefault(key[:2], []).append((block_m[key], lm))
     n_blocks = sum(len(v) for v in blocks.values())
-    desc = (f"{block_frames} frames" if block_frames else "whole runs") + f" ({n_blocks} blocks)"
+    desc = (f"{block_frames} frames" if block_frames else
+            "whole runs (or their pieces in each fold)") + f" ({n_blocks} blocks)"
     return {"overlap": overlap, "blocks": blocks, "local": local, "where": where,
             "block_desc": desc}
 
@@ -1289,6 +1424,7 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
     if ci is not None:
         entry["fisher_ratio_ci"] = ci["fisher_ratio_ci"]
         entry["autocorrelation_ci"] = ci["autocorrelation_ci"]
+        entry["bootstrap_refits_for_selection"] = boot.get("n_selection")
     return entry
 
 

@@ -177,3 +177,32 @@ def test_slow_cv_is_in_kinetic_map_units(two_wells_data):
                              for p in data.paths])
     rho = res.ranking[0]["autocorrelation_all"]
     assert values.var() == pytest.approx(rho**2, rel=0.02)
+
+
+def test_lagged_pairs_never_span_a_change_of_label(demo_files):
+    # One trajectory labelled in alternating blocks of 37 frames (with some unlabelled
+    # frames): the score card's autocorrelation must equal a numpy computation that pairs
+    # frames only within a block (reversible estimate about the pooled mean).
+    import mdtraj as md
+
+    top, states = demo_files
+    path = states["closed"][0]
+    labels = np.array([["a", "b"][(i // 37) % 2] for i in range(2000)], dtype=object)
+    labels[500:520] = None
+    src = Source.from_labels(top, path, labels)
+    res = suggest(src, lag=10 * 0.2, n_bootstrap=0, max_terms=1, n_suggestions=1,
+                  kinds=("distance",))
+    row = next(r for r in res.scorecard if r["id"] == "distance:0-7")
+    d = md.compute_distances(md.load(path, top=top), [[0, 7]])[:, 0].astype(np.float64)
+    x0, xt = [], []
+    for i in range(2000 - 10):
+        j = i + 10
+        if labels[i] is not None and labels[i] == labels[j] and \
+                all(labels[k] == labels[i] for k in range(i, j + 1)):
+            x0.append(d[i])
+            xt.append(d[j])
+    x0, xt = np.array(x0), np.array(xt)
+    mean = 0.5 * (x0.mean() + xt.mean())
+    var = 0.5 * (((x0 - mean) ** 2).mean() + ((xt - mean) ** 2).mean())
+    rho = ((x0 - mean) * (xt - mean)).mean() / var
+    assert row["autocorrelation"] == pytest.approx(rho, abs=1e-6)

@@ -1,0 +1,1062 @@
+"""Hints: starting values for a metadynamics bias along a designed CV.
+
+Pure functions on plain numbers and dicts (no file I/O). From the per-state
+mean and spread of the CV in the input data (``spec["states"]``), a
+temperature and an MD timestep, :func:`suggest_hints` proposes a kernel width
+and height, a deposition interval, a well-tempered bias factor, walls and a
+grid, and estimates how long filling each basin will take; :func:`format_hints`
+renders the result as text.
+
+Every number here is a starting point to validate, not a guarantee (see
+:data:`CAUTION`). Each rule names its source, or says "common practice"; values
+recalled without a reference at hand say "from memory".
+
+Units: CV values, widths and grid in the CV's own units (often dimensionless),
+energies in kJ/mol, times in ps, MD timesteps in fs, temperatures in K.
+
+Kernels
+-------
+The 1-D kernels are normalized densities of the offset ``ds = s - s0``:
+
+* Gaussian, ``exp(-ds**2 / (2 sigma**2)) / (sigma sqrt(2 pi))``;
+* Lucy's kernel (Lucy, Astron. J. 82, 1013, 1977),
+  ``W(ds, h) = 5/(4h) (1 + 3q) (1 - q)**3`` for ``q = |ds|/h <= 1``, else 0.
+
+The 1-D constant, derived here: with ``u = 1 - q``,
+``int_0^1 (1 + 3q)(1 - q)^3 dq = int_0^1 (4u^3 - 3u^4) du = 1 - 3/5 = 2/5``, so
+``int_{-h}^{h} (1 + 3q)(1 - q)^3 dr = 2h * 2/5 = 4h/5`` and the 1-D
+normalization is ``5/(4h)``, as stated in the brief. The derivative is
+``dW/ds = -15 ds (1 - q)**2 / h**3``: zero at ``ds = 0`` and at the cutoff, so
+the bias force is continuous everywhere; the second derivative,
+``-15 (1 - q)(1 - 3q) / h**3``, is continuous too (zero at the cutoff).
+The variance of Lucy's kernel is
+``2 h^2 * 5/(4h) * h * int_0^1 q^2 (1 + 3q)(1 - q)^3 dq = (5 h^2 / 2) * 4/105
+= 2 h^2 / 21``, so the cutoff with the variance of a Gaussian of width
+``sigma`` is ``h = sqrt(21/2) sigma ~= 3.24 sigma`` (:func:`lucy_cutoff_for_sigma`).
+
+Fill-time model
+---------------
+Each state is a harmonic basin with the state's std ``sigma``:
+``F(s) = kT (s - mu)**2 / (2 sigma**2)``. Filling it up to a free-energy level
+``L`` (bias ``V = (L - F)_+``) takes the bias volume
+``int (L - F(s))_+ ds = (4/3) sigma L sqrt(2 L / kT)`` (:func:`fill_volume`;
+derivation there). A kernel of peak height ``w0`` adds ``w0 * a`` of volume,
+``a = sigma_k sqrt(2 pi)`` (Gaussian) or ``4 h / 5`` (Lucy), every ``tau_D``.
+See :func:`fill_time_metadynamics` and :func:`fill_time_well_tempered`.
+
+References
+----------
+.. [1] L. B. Lucy, "A numerical approach to the testing of the fission
+   hypothesis", Astron. J. 82, 1013 (1977).
+.. [2] A. Barducci, G. Bussi, M. Parrinello, "Well-tempered metadynamics: a
+   smoothly converging and tunable free-energy method", Phys. Rev. Lett. 100,
+   020603 (2008).
+.. [3] A. Laio, M. Parrinello, "Escaping free-energy minima", Proc. Natl. Acad.
+   Sci. USA 99, 12562 (2002) (from memory).
+.. [4] A. Laio, A. Rodriguez-Fortea, F. L. Gervasio, M. Ceccarelli,
+   M. Parrinello, "Assessing the accuracy of metadynamics", J. Phys. Chem. B
+   109, 6714 (2005) (from memory).
+"""
+
+import math
+from collections.abc import Mapping
+
+import numpy as np
+from scipy import integrate, special
+
+from .errors import InputError
+
+__all__ = [
+    "CAUTION",
+    "KB_KJ_MOL_K",
+    "KERNELS",
+    "bias_factor_for_barrier",
+    "fill_time_metadynamics",
+    "fill_time_well_tempered",
+    "fill_volume",
+    "format_hints",
+    "gaussian_kernel",
+    "gaussian_kernel_derivative",
+    "kernel_area_per_height",
+    "lucy_cutoff_for_sigma",
+    "lucy_kernel",
+    "lucy_kernel_derivative",
+    "suggest_hints",
+]
+
+#: Boltzmann constant in kJ/mol/K.
+KB_KJ_MOL_K = 0.00831446261815324
+
+#: Kernel kinds :func:`suggest_hints` knows.
+KERNELS = ("gaussian", "lucy")
+
+#: The caution every stored or printed hint carries.
+CAUTION = (
+    "These hints are starting points to validate, not guarantees: they come from rules of "
+    "thumb and a harmonic model of each state built from short unbiased data. Check them "
+    "in short biased test runs (the CV's response to the bias, the walker's return to "
+    "visited regions, convergence of the free-energy estimate) before a production run."
+)
+
+HINTS_FORMAT = "cvdesign-hints"
+HINTS_VERSION = 1
+
+_SQRT_2PI = math.sqrt(2.0 * math.pi)
+_LUCY_SIGMA_TO_CUTOFF = math.sqrt(21.0 / 2.0)
+_DEFAULT_LEVELS = (20.0, 40.0, 60.0, 80.0, 100.0)
+
+_SOURCES = {
+    "lucy": "Lucy, Astron. J. 82, 1013 (1977)",
+    "wt": "Barducci, Bussi and Parrinello, Phys. Rev. Lett. 100, 020603 (2008)",
+    "metad": "Laio and Parrinello, Proc. Natl. Acad. Sci. USA 99, 12562 (2002) (from memory)",
+    "accuracy": ("Laio, Rodriguez-Fortea, Gervasio, Ceccarelli and Parrinello, "
+                 "J. Phys. Chem. B 109, 6714 (2005) (from memory)"),
+}
+
+
+# --------------------------------------------------------------------------
+# validation
+
+
+def _number(name, value, *, positive=True, allow_zero=False):
+    """`value` as a finite float, > 0 (or >= 0) when asked; InputError naming `name` otherwise."""
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, float, np.integer, np.floating)):
+        raise InputError(f"{name} must be a number; got {value!r}")
+    x = float(value)
+    if not math.isfinite(x):
+        raise InputError(f"{name}={value!r} must be finite")
+    if positive and (x < 0.0 or (x == 0.0 and not allow_zero)):
+        bound = ">= 0" if allow_zero else "> 0"
+        raise InputError(f"{name}={value!r} must be {bound}")
+    return x
+
+
+def _kernel_kind(kernel):
+    if kernel not in KERNELS:
+        raise InputError(f"kernel={kernel!r} is not known; choose one of {', '.join(map(repr, KERNELS))}")
+    return kernel
+
+
+def _kt(temperature):
+    return KB_KJ_MOL_K * _number("temperature", temperature)
+
+
+def _check_states(states):
+    if not isinstance(states, Mapping) or not states:
+        raise InputError(
+            "states must be a non-empty dict {name: {'mean': float, 'std': float, ...}} "
+            f"(as spec['states']); got {states!r}"
+        )
+    out = {}
+    for name, entry in states.items():
+        if not isinstance(entry, Mapping) or "mean" not in entry or "std" not in entry:
+            raise InputError(f"states[{name!r}] must be a dict with 'mean' and 'std'; got {entry!r}")
+        mean = _number(f"states[{name!r}]['mean']", entry["mean"], positive=False)
+        std = _number(f"states[{name!r}]['std']", entry["std"])
+        n = entry.get("n_frames")
+        out[str(name)] = {"mean": mean, "std": std, "n_frames": None if n is None else int(n)}
+    return out
+
+
+# --------------------------------------------------------------------------
+# kernels
+
+
+def _as_out(x):
+    return float(x) if np.ndim(x) == 0 else x
+
+
+def gaussian_kernel(ds, sigma):
+    """Normalized 1-D Gaussian kernel of the offset `ds`.
+
+    Parameters
+    ----------
+    ds : float or array-like
+        Offset ``s - s0`` from the kernel center, in CV units.
+    sigma : float
+        Width (standard deviation), in CV units, > 0.
+
+    Returns
+    -------
+    float or ndarray of float64
+        ``exp(-ds**2 / (2 sigma**2)) / (sigma sqrt(2 pi))``, in 1/(CV units);
+        it integrates to 1 over ``ds``.
+
+    Examples
+    --------
+    >>> round(gaussian_kernel(0.0, 1.0), 6)
+    0.398942
+    """
+    sigma = _number("sigma", sigma)
+    ds = np.asarray(ds, dtype=np.float64)
+    return _as_out(np.exp(-0.5 * (ds / sigma) ** 2) / (sigma * _SQRT_2PI))
+
+
+def gaussian_kernel_derivative(ds, sigma):
+    """Derivative with respect to `ds` of :func:`gaussian_kernel`.
+
+    Parameters
+    ----------
+    ds : float or array-like
+        Offset ``s - s0``, in CV units.
+    sigma : float
+        Width, in CV units, > 0.
+
+    Returns
+    -------
+    float or ndarray of float64
+        ``-ds / sigma**2 * gaussian_kernel(ds, sigma)``, in 1/(CV units)**2.
+
+    Examples
+    --------
+    >>> gaussian_kernel_derivative(0.0, 1.0)
+    -0.0
+    """
+    sigma = _number("sigma", sigma)
+    ds = np.asarray(ds, dtype=np.float64)
+    return _as_out(-ds / sigma**2 * np.exp(-0.5 * (ds / sigma) ** 2) / (sigma * _SQRT_2PI))
+
+
+def lucy_kernel(ds, cutoff):
+    """Lucy's kernel in 1-D normalization (Lucy, Astron. J. 82, 1013, 1977).
+
+    Parameters
+    ----------
+    ds : float or array-like
+        Offset ``s - s0``, in CV units.
+    cutoff : float
+        Support radius ``h``, in CV units, > 0: the kernel is zero for
+        ``|ds| >= h``.
+
+    Returns
+    -------
+    float or ndarray of float64
+        ``5/(4h) (1 + 3q)(1 - q)**3`` with ``q = |ds|/h`` for ``q <= 1``,
+        else 0, in 1/(CV units). It integrates to 1: the integral of
+        ``(1 + 3q)(1 - q)**3`` over ``[-h, h]`` is ``4h/5`` (derived in the
+        module notes).
+
+    Examples
+    --------
+    >>> lucy_kernel(0.0, 2.0), lucy_kernel(2.0, 2.0)
+    (0.625, 0.0)
+    """
+    h = _number("cutoff", cutoff)
+    q = np.abs(np.asarray(ds, dtype=np.float64)) / h
+    inside = q < 1.0
+    qi = np.where(inside, q, 1.0)
+    return _as_out(np.where(inside, 1.25 / h * (1.0 + 3.0 * qi) * (1.0 - qi) ** 3, 0.0))
+
+
+def lucy_kernel_derivative(ds, cutoff):
+    """Derivative with respect to `ds` of :func:`lucy_kernel`.
+
+    Parameters
+    ----------
+    ds : float or array-like
+        Offset ``s - s0``, in CV units.
+    cutoff : float
+        Support radius ``h``, in CV units, > 0.
+
+    Returns
+    -------
+    float or ndarray of float64
+        ``-15 ds (1 - q)**2 / h**3`` for ``q = |ds|/h <= 1``, else 0, in
+        1/(CV units)**2. It is zero at ``ds = 0`` and at ``|ds| = h``, so it is
+        continuous everywhere.
+
+    Examples
+    --------
+    >>> lucy_kernel_derivative(1.0, 2.0)
+    -0.46875
+    """
+    h = _number("cutoff", cutoff)
+    ds = np.asarray(ds, dtype=np.float64)
+    q = np.abs(ds) / h
+    inside = q < 1.0
+    qi = np.where(inside, q, 1.0)
+    return _as_out(np.where(inside, -15.0 * ds * (1.0 - qi) ** 2 / h**3, 0.0))
+
+
+def lucy_cutoff_for_sigma(sigma):
+    """The Lucy cutoff whose kernel has the variance of a Gaussian of width `sigma`.
+
+    Parameters
+    ----------
+    sigma : float
+        Gaussian width, in CV units, > 0.
+
+    Returns
+    -------
+    float
+        ``h = sqrt(21/2) sigma ~= 3.2404 sigma``, in CV units. The variance of
+        Lucy's kernel is ``2 h**2 / 21`` (derived in the module notes).
+
+    Examples
+    --------
+    >>> round(lucy_cutoff_for_sigma(1.0), 4)
+    3.2404
+    """
+    return _LUCY_SIGMA_TO_CUTOFF * _number("sigma", sigma)
+
+
+def kernel_area_per_height(kernel, width):
+    """Area under a kernel of unit peak height.
+
+    Parameters
+    ----------
+    kernel : {'gaussian', 'lucy'}
+        Kernel kind.
+    width : float
+        Gaussian sigma or Lucy cutoff ``h``, in CV units, > 0.
+
+    Returns
+    -------
+    float
+        ``sqrt(2 pi) sigma`` (Gaussian) or ``4 h / 5`` (Lucy), in CV units: a
+        bump of peak height ``w0`` kJ/mol adds ``w0 * area`` kJ/mol x CV units
+        of bias volume.
+
+    Examples
+    --------
+    >>> round(kernel_area_per_height("gaussian", 1.0), 4), kernel_area_per_height("lucy", 1.0)
+    (2.5066, 0.8)
+    """
+    kernel = _kernel_kind(kernel)
+    width = _number("width", width)
+    return _SQRT_2PI * width if kernel == "gaussian" else 0.8 * width
+
+
+# --------------------------------------------------------------------------
+# well-tempered bias factor
+
+
+def bias_factor_for_barrier(barrier, temperature, *, target_barrier_kt=3.0, minimum=2.0):
+    """Bias factor so that a barrier is seen reduced to a few kT.
+
+    In well-tempered metadynamics (Barducci, Bussi and Parrinello, Phys. Rev.
+    Lett. 100, 020603, 2008) the bias converges to ``-(1 - 1/gamma) F(s)``
+    (up to a constant), so the CV is sampled as if at temperature
+    ``T + dT`` with the bias factor ``gamma = (T + dT) / T``, and a barrier
+    ``dG`` along the CV is seen as ``dG / gamma`` (statement checked from
+    memory against that paper). Choosing ``dG / gamma = n kT`` gives
+    ``gamma = dG / (n kT)``; ``n`` of about 2-5 is common practice (from
+    memory).
+
+    Parameters
+    ----------
+    barrier : float
+        Barrier estimate ``dG`` along the CV, in kJ/mol, > 0.
+    temperature : float
+        Temperature ``T``, in K, > 0.
+    target_barrier_kt : float, default=3.0
+        The barrier to be seen, ``n``, in units of kT, > 0.
+    minimum : float, default=2.0
+        Lower bound on the returned factor (a barrier already below ``n kT``
+        needs little bias), >= 1.
+
+    Returns
+    -------
+    float
+        ``max(dG / (n kT), minimum)``, dimensionless.
+
+    Examples
+    --------
+    >>> round(bias_factor_for_barrier(60.0, 300.0), 3)
+    8.018
+    """
+    barrier = _number("barrier", barrier)
+    kt = _kt(temperature)
+    n = _number("target_barrier_kt", target_barrier_kt)
+    minimum = _number("minimum", minimum)
+    if minimum < 1.0:
+        raise InputError(f"minimum={minimum!r} must be >= 1 (a bias factor is >= 1)")
+    return max(barrier / (n * kt), minimum)
+
+
+# --------------------------------------------------------------------------
+# fill volume and fill times
+
+
+def fill_volume(level, std, temperature):
+    """Bias volume that fills a harmonic basin up to a free-energy level.
+
+    With ``F(s) = kT (s - mu)**2 / (2 std**2)`` and ``x_L = std sqrt(2 L / kT)``
+    (where ``F = L``),
+    ``int (L - F)_+ ds = 2 (L x_L - kT x_L**3 / (6 std**2)) = 2 x_L (L - L/3)
+    = (4/3) L x_L``.
+
+    Parameters
+    ----------
+    level : float
+        Free-energy level ``L`` above the basin bottom, in kJ/mol, >= 0.
+    std : float
+        Spread of the CV in the basin, in CV units, > 0.
+    temperature : float
+        Temperature, in K, > 0.
+
+    Returns
+    -------
+    float
+        ``(4/3) std L sqrt(2 L / kT)``, in kJ/mol x CV units.
+
+    Examples
+    --------
+    >>> kt = KB_KJ_MOL_K * 300.0
+    >>> round(fill_volume(2 * kt, 1.0, 300.0) / kt, 6)   # (4/3) * 2 * 2
+    5.333333
+    """
+    level = _number("level", level, allow_zero=True)
+    std = _number("std", std)
+    kt = _kt(temperature)
+    return 4.0 / 3.0 * std * level * math.sqrt(2.0 * level / kt)
+
+
+def fill_time_metadynamics(level, std, *, temperature, height, area_per_height, interval_ps):
+    """Time for plain metadynamics to fill a harmonic basin up to `level`.
+
+    Quasi-static model: every ``interval_ps`` a kernel adds
+    ``height * area_per_height`` of bias volume, all of it inside the basin,
+    until the volume reaches :func:`fill_volume` (after which the basin is
+    flat up to ``level``; Laio and Parrinello, Proc. Natl. Acad. Sci. USA 99,
+    12562, 2002, from memory, for the filling picture).
+
+    Parameters
+    ----------
+    level : float
+        Free-energy level to fill to (e.g. the barrier), in kJ/mol, >= 0.
+    std : float
+        Spread of the CV in the basin, in CV units, > 0.
+    temperature : float
+        Temperature, in K, > 0.
+    height : float
+        Kernel peak height, in kJ/mol, > 0.
+    area_per_height : float
+        Kernel area per unit height (:func:`kernel_area_per_height`), in CV
+        units, > 0.
+    interval_ps : float
+        Deposition interval, in ps, > 0.
+
+    Returns
+    -------
+    float
+        ``fill_volume / (height * area_per_height) * interval_ps``, in ps. It
+        scales as ``level**1.5`` and as ``1 / height``.
+
+    Examples
+    --------
+    >>> kt = KB_KJ_MOL_K * 300.0
+    >>> t = fill_time_metadynamics(2 * kt, 1.0, temperature=300.0, height=kt,
+    ...                            area_per_height=1.0, interval_ps=1.0)
+    >>> round(t, 6)
+    5.333333
+    """
+    vol = fill_volume(level, std, temperature)
+    height = _number("height", height)
+    area = _number("area_per_height", area_per_height)
+    interval = _number("interval_ps", interval_ps)
+    return vol / (height * area) * interval
+
+
+def _wt_rate_ratio(bl, gamma):
+    """D/N of the well-tempered model at beta*L = `bl`, both scaled by exp(bl) and 1/std.
+
+    N: Boltzmann average weight exp(-V/(kB dT)) times the normalization;
+    D: the normalization of the walker's distribution.
+    """
+    root = math.sqrt(bl)
+    tail = _SQRT_2PI * float(special.erfcx(root))
+    num = 2.0 * math.sqrt(2.0 * bl) + tail
+    den = math.exp(bl / gamma) * math.sqrt(2.0 * math.pi * gamma) * float(special.erf(math.sqrt(bl / gamma))) + tail
+    return den / num
+
+
+def fill_time_well_tempered(level, std, *, temperature, height, area_per_height, interval_ps, bias_factor):
+    """Time for well-tempered metadynamics to fill a harmonic basin up to `level`.
+
+    Model (ours; quasi-static): the bias keeps the converged well-tempered
+    shape (Barducci, Bussi and Parrinello, Phys. Rev. Lett. 100, 020603, 2008)
+    up to a rising level ``L``, ``V(s) = (1 - 1/gamma) (L - F(s))_+``, with
+    ``F`` the harmonic basin of spread ``std``. Its volume is
+    ``(1 - 1/gamma) fill_volume(L)``. The walker is Boltzmann-distributed on
+    ``F + V`` and each kernel has height
+    ``height * exp(-V(s_walker) / (kB dT))``, ``kB dT = (gamma - 1) kT``.
+    Inside the filled region ``F + V + kT V / (kB dT) = L``, so the mean
+    height is ``height * g(L)`` with, writing ``b = L / kT`` and
+    ``x_L = std sqrt(2 b)``,
+
+    ``g = [2 x_L e^{-b} + I] / [e^{-(1 - 1/gamma) b} sqrt(2 pi gamma) std
+    erf(sqrt(b / gamma)) + I]``, ``I = sqrt(2 pi) std erfc(sqrt(b))``,
+
+    and the time is ``int_0^level (1 - 1/gamma) 2 x_L interval_ps /
+    (height * area_per_height * g(L)) dL``, integrated numerically
+    (:func:`scipy.integrate.quad`). At ``L = level`` the barrier seen from the
+    basin bottom is ``level / gamma``. For ``gamma -> inf`` this tends to
+    :func:`fill_time_metadynamics`.
+
+    Parameters
+    ----------
+    level : float
+        Free-energy level to fill to (e.g. the barrier), in kJ/mol, >= 0.
+    std : float
+        Spread of the CV in the basin, in CV units, > 0.
+    temperature : float
+        Temperature, in K, > 0.
+    height : float
+        Initial kernel peak height, in kJ/mol, > 0.
+    area_per_height : float
+        Kernel area per unit height, in CV units, > 0.
+    interval_ps : float
+        Deposition interval, in ps, > 0.
+    bias_factor : float
+        ``gamma = (T + dT) / T``, > 1.
+
+    Returns
+    -------
+    float
+        Fill time in ps; ``inf`` when it overflows a float (far beyond any
+        simulation).
+
+    Examples
+    --------
+    >>> kw = dict(temperature=300.0, height=1.0, area_per_height=1.0, interval_ps=1.0)
+    >>> plain = fill_time_metadynamics(30.0, 1.0, **kw)
+    >>> fill_time_well_tempered(30.0, 1.0, bias_factor=5.0, **kw) > plain
+    True
+    """
+    level = _number("level", level, allow_zero=True)
+    std = _number("std", std)
+    kt = _kt(temperature)
+    height = _number("height", height)
+    area = _number("area_per_height", area_per_height)
+    interval = _number("interval_ps", interval_ps)
+    gamma = _number("bias_factor", bias_factor)
+    if gamma <= 1.0:
+        raise InputError(f"bias_factor={bias_factor!r} must be > 1 (gamma = (T + dT) / T)")
+    b_max = level / kt
+    if b_max == 0.0:
+        return 0.0
+    if b_max / gamma > 700.0:
+        return math.inf
+
+    def integrand(b):  # dt/db in units of std * kT * interval / (height * area)
+        if b <= 0.0:
+            return 0.0
+        return (1.0 - 1.0 / gamma) * 2.0 * math.sqrt(2.0 * b) * _wt_rate_ratio(b, gamma)
+
+    value, _ = integrate.quad(integrand, 0.0, b_max, limit=200, epsabs=0.0, epsrel=1e-10)
+    t = value * std * kt * interval / (height * area)
+    return t if math.isfinite(t) else math.inf
+
+
+# --------------------------------------------------------------------------
+# suggestions
+
+
+def _finite_or_none(x):
+    return float(x) if x is not None and math.isfinite(x) else None
+
+
+def _barriers(barrier, states):
+    """None, one float for all states, or {state: float} covering every state."""
+    if barrier is None:
+        return None
+    if isinstance(barrier, Mapping):
+        missing = [s for s in states if s not in barrier]
+        extra = [str(k) for k in barrier if k not in states]
+        if missing or extra:
+            raise InputError(
+                f"barrier must give one value per state; missing {missing}, unknown {extra} "
+                f"(states are {list(states)})"
+            )
+        return {s: _number(f"barrier[{s!r}]", barrier[s]) for s in states}
+    value = _number("barrier", barrier)
+    return {s: value for s in states}
+
+
+def suggest_hints(
+    states,
+    *,
+    temperature,
+    timestep_fs,
+    autocorrelation_time_ps=None,
+    barrier=None,
+    kernel="gaussian",
+    cv_range=None,
+    periodic=False,
+    bias_factor=None,
+    width_fraction=0.5,
+    height_kt=0.5,
+    target_barrier_kt=3.0,
+    wall_k=3.0,
+    grid_fraction=0.2,
+    barrier_levels=_DEFAULT_LEVELS,
+    max_interval_ps=10.0,
+    budget_ns=None,
+):
+    """Starting values for a (well-tempered) metadynamics bias along a CV.
+
+    Parameters
+    ----------
+    states : dict
+        ``{name: {"mean": float, "std": float, "n_frames": int}}``: the CV's
+        mean and spread per state in CV units, as ``spec["states"]``
+        (``n_frames`` optional).
+    temperature : float
+        Simulation temperature, in K, > 0.
+    timestep_fs : float
+        MD timestep, in fs, > 0.
+    autocorrelation_time_ps : float, optional
+        Time for the CV to decorrelate *within a state*, in ps, > 0. When
+        None, a deposition interval of 1 ps is suggested (common practice,
+        from memory). A timescale of the whole data set (e.g. a ranking's
+        ``timescale_ps``, measured with all states pooled) may reflect the
+        states never interconverting rather than relaxation in a basin; it is
+        capped at `max_interval_ps`.
+    barrier : float or dict, optional
+        Barrier estimate ``dG`` to leave the states, in kJ/mol, > 0: one value
+        for all states or ``{state: value}``. When None, bias factors and fill
+        times are tabulated over `barrier_levels`.
+    kernel : {'gaussian', 'lucy'}, default='gaussian'
+        Kernel kind. For Lucy's kernel the cutoff has the variance of the
+        suggested Gaussian width (:func:`lucy_cutoff_for_sigma`).
+    cv_range : (float, float), optional
+        Values the CV can take (lower, upper), in CV units; required when
+        `periodic` (then it is the period). Walls and grid are clipped to it.
+    periodic : bool, default=False
+        Whether the CV is periodic with period ``cv_range``: no walls then,
+        and the grid spans one period.
+    bias_factor : float, optional
+        Use this well-tempered bias factor (> 1) instead of the suggested one.
+    width_fraction : float, default=0.5
+        Kernel sigma as a fraction of the smallest within-state std, in
+        (0, 1].
+    height_kt : float, default=0.5
+        Initial kernel height in units of kT, > 0.
+    target_barrier_kt : float, default=3.0
+        Barrier, in kT, that the bias factor should leave (see
+        :func:`bias_factor_for_barrier`).
+    wall_k : float, default=3.0
+        Walls at the outermost ``mean -/+ wall_k * std`` of the states, > 0.
+    grid_fraction : float, default=0.2
+        Target grid spacing as a fraction of the kernel sigma, in (0, 1].
+    barrier_levels : sequence of float, default=(20, 40, 60, 80, 100)
+        Barrier estimates in kJ/mol tabulated when `barrier` is None.
+    max_interval_ps : float or None, default=10.0
+        Cap on the deposition interval, in ps (None: no cap).
+    budget_ns : float, optional
+        Simulation length you can afford, in ns; fill times above it are
+        flagged.
+
+    Returns
+    -------
+    dict
+        JSON-ready (floats, ints, str, None; no NaN):
+
+        * ``format``, ``version``, ``caution`` (str), ``units``;
+        * ``inputs``: ``temperature_k``, ``timestep_fs``, ``kt_kj_mol``,
+          ``autocorrelation_time_ps``, ``barrier_kj_mol`` (None, float, or
+          ``{state: float}``), ``states``;
+        * ``kernel``: ``kind``, ``sigma`` (Gaussian width or Lucy's
+          variance-matched sigma, CV units), ``cutoff`` (Lucy support, CV
+          units, or None), ``area_per_height`` (CV units), ``width_fraction``,
+          ``reference_state``, ``reference_std`` (CV units);
+        * ``height_kj_mol``: initial kernel height, kJ/mol;
+        * ``deposition``: ``interval_steps`` (int), ``interval_ps``,
+          ``tau_ps`` (the time used), ``capped`` (bool);
+        * ``well_tempered``: ``bias_factor`` (None when tabulated),
+          ``delta_t_k`` (K), ``barrier_kj_mol``,
+          ``effective_barrier_kj_mol``, ``target_barrier_kt``, ``table``
+          (list of ``{barrier_kj_mol, bias_factor, delta_t_k,
+          effective_barrier_kj_mol}``);
+        * ``walls``: ``{lower, upper, k_std}`` in CV units, or None
+          (periodic);
+        * ``grid``: ``lower``, ``upper``, ``spacing`` (CV units), ``n_bins``,
+          ``n_points``, ``periodic``;
+        * ``fill_time``: ``model`` (str), ``budget_ns``, ``states``:
+          ``{state: [{level_kj_mol, bias_factor, volume, n_kernels,
+          metadynamics_ps, metadynamics_ns, well_tempered_ps,
+          well_tempered_ns, over_budget}]}`` (times None when beyond float
+          range);
+        * ``reasoning``: list of str, one per rule, each with its source or
+          label; ``sources``: list of str.
+
+    Raises
+    ------
+    InputError
+        A bad argument (a :class:`ValueError`); the message names it.
+
+    Examples
+    --------
+    >>> states = {"A": {"mean": -1.0, "std": 0.2, "n_frames": 500},
+    ...           "B": {"mean": 1.0, "std": 0.3, "n_frames": 500}}
+    >>> h = suggest_hints(states, temperature=300.0, timestep_fs=2.0,
+    ...                   autocorrelation_time_ps=0.5, barrier=40.0)
+    >>> h["kernel"]["sigma"], h["deposition"]["interval_steps"]
+    (0.1, 250)
+    >>> round(h["well_tempered"]["bias_factor"], 2)
+    5.35
+    """
+    st = _check_states(states)
+    kt = _kt(temperature)
+    temperature = float(temperature)
+    dt_fs = _number("timestep_fs", timestep_fs)
+    kernel = _kernel_kind(kernel)
+    f_width = _number("width_fraction", width_fraction)
+    if f_width > 1.0:
+        raise InputError(f"width_fraction={width_fraction!r} must be in (0, 1]")
+    h_kt = _number("height_kt", height_kt)
+    n_target = _number("target_barrier_kt", target_barrier_kt)
+    wall_k = _number("wall_k", wall_k)
+    f_grid = _number("grid_fraction", grid_fraction)
+    if f_grid > 1.0:
+        raise InputError(f"grid_fraction={grid_fraction!r} must be in (0, 1]")
+    tau = None if autocorrelation_time_ps is None else _number("autocorrelation_time_ps", autocorrelation_time_ps)
+    cap = None if max_interval_ps is None else _number("max_interval_ps", max_interval_ps)
+    budget = None if budget_ns is None else _number("budget_ns", budget_ns)
+    gamma_user = None
+    if bias_factor is not None:
+        gamma_user = _number("bias_factor", bias_factor)
+        if gamma_user <= 1.0:
+            raise InputError(f"bias_factor={bias_factor!r} must be > 1")
+    barriers = _barriers(barrier, st)
+    levels = [_number(f"barrier_levels[{i}]", v) for i, v in enumerate(barrier_levels)]
+    if barriers is None and not levels:
+        raise InputError("barrier_levels must not be empty when barrier is None")
+    if not isinstance(periodic, (bool, np.bool_)):
+        raise InputError(f"periodic must be True or False; got {periodic!r}")
+    lo_range = hi_range = None
+    if cv_range is not None:
+        try:
+            lo_range, hi_range = cv_range
+        except (TypeError, ValueError):
+            raise InputError(f"cv_range must be a pair (lower, upper); got {cv_range!r}") from None
+        lo_range = _number("cv_range[0]", lo_range, positive=False)
+        hi_range = _number("cv_range[1]", hi_range, positive=False)
+        if not hi_range > lo_range:
+            raise InputError(f"cv_range={tuple(cv_range)!r} must have lower < upper")
+    elif periodic:
+        raise InputError("cv_range is required when periodic=True (it gives the period)")
+
+    why = []
+    tag_cp = "[common practice]"
+    tag_cpm = "[common practice, from memory]"
+
+    # kernel width -----------------------------------------------------------
+    ref_state = min(st, key=lambda s: (st[s]["std"], s))
+    ref_std = st[ref_state]["std"]
+    sigma = f_width * ref_std
+    cutoff = lucy_cutoff_for_sigma(sigma) if kernel == "lucy" else None
+    width = sigma if kernel == "gaussian" else cutoff
+    area = kernel_area_per_height(kernel, width)
+    why.append(
+        f"Kernel width: sigma = {f_width:g} x the smallest within-state std "
+        f"({ref_std:.4g}, state {ref_state!r}) = {sigma:.4g} CV units, so a kernel is narrower "
+        f"than the basin it fills and the bias resolves the basin's shape {tag_cp}: about "
+        f"1/3 to 1/2 of the CV's fluctuation in a basin."
+    )
+    if kernel == "lucy":
+        why.append(
+            f"Lucy's kernel (Lucy, Astron. J. 82, 1013, 1977): cutoff h = sqrt(21/2) sigma = "
+            f"{cutoff:.4g} CV units, the cutoff whose kernel variance 2h^2/21 equals sigma^2 "
+            f"[derived here]; it is exactly zero beyond h and its force (first derivative) is "
+            f"continuous, zero at h."
+        )
+    means = sorted(v["mean"] for v in st.values())
+    gaps = [b - a for a, b in zip(means, means[1:])]
+    if gaps and min(gaps) < 2.0 * sigma:
+        why.append(
+            f"Note: two state means are only {min(gaps):.4g} CV units apart, less than two "
+            f"kernel widths; this CV separates those states poorly at this kernel width."
+        )
+
+    # height -----------------------------------------------------------------
+    height = h_kt * kt
+    why.append(
+        f"Initial kernel height: {h_kt:g} kT = {height:.4g} kJ/mol at {temperature:g} K "
+        f"{tag_cpm}: heights of a fraction of kT (roughly 0.1-1.5 kJ/mol near room temperature) "
+        f"keep each kernel a small perturbation; smaller heights with the same interval give a "
+        f"smoother but slower bias (the error grows with height / interval; Laio et al., "
+        f"J. Phys. Chem. B 109, 6714, 2005, from memory)."
+    )
+
+    # deposition interval ----------------------------------------------------
+    capped = False
+    if tau is None:
+        tau_used = 1.0
+        why.append(
+            f"Deposition interval: no within-state autocorrelation time given; 1 ps is used "
+            f"{tag_cpm}. Pass autocorrelation_time_ps to base it on your CV."
+        )
+    else:
+        tau_used = tau
+        if cap is not None and tau > cap:
+            tau_used, capped = cap, True
+        why.append(
+            f"Deposition interval: deposit no faster than the CV decorrelates, so the walker "
+            f"has relaxed under one kernel before the next {tag_cp}; interval = max(1, "
+            f"round(tau_ps x 1000 / timestep_fs)) with tau = {tau_used:.4g} ps and timestep "
+            f"{dt_fs:g} fs (Laio et al., J. Phys. Chem. B 109, 6714, 2005, from memory: the "
+            f"error depends on the deposition rate relative to the CV's diffusion)."
+        )
+        if capped:
+            why.append(
+                f"Note: autocorrelation_time_ps = {tau:.4g} ps is above max_interval_ps = "
+                f"{cap:g} ps and was capped. A timescale measured on all states pooled "
+                f"mostly reflects that the states did not interconvert in the input runs, "
+                f"not relaxation within a basin; estimate tau from single-state data."
+            )
+    steps = max(1, int(round(tau_used * 1000.0 / dt_fs)))
+    interval_ps = steps * dt_fs / 1000.0
+    if steps == 1:
+        why.append("Note: the interval is one MD step; check the timestep and the autocorrelation time.")
+
+    # well-tempered bias factor ----------------------------------------------
+    def wt_row(dg, gamma):
+        return {"barrier_kj_mol": dg, "bias_factor": gamma, "delta_t_k": (gamma - 1.0) * temperature,
+                "effective_barrier_kj_mol": dg / gamma}
+
+    table = [wt_row(dg, bias_factor_for_barrier(dg, temperature, target_barrier_kt=n_target))
+             for dg in levels]
+    wt_barrier = None if barriers is None else max(barriers.values())
+    if gamma_user is not None:
+        gamma = gamma_user
+        why.append(f"Bias factor: {gamma:.4g}, as given (bias_factor).")
+    elif wt_barrier is not None:
+        gamma = bias_factor_for_barrier(wt_barrier, temperature, target_barrier_kt=n_target)
+    else:
+        gamma = None
+    rule = (
+        f"In well-tempered metadynamics (Barducci, Bussi and Parrinello, Phys. Rev. Lett. 100, "
+        f"020603, 2008) the CV is sampled as at T + dT with gamma = (T + dT)/T, and a barrier "
+        f"dG is seen reduced to dG/gamma [statement from memory]; gamma = dG / ({n_target:g} kT), "
+        f"at least 2, leaves about {n_target:g} kT {tag_cpm}: 2-5 kT."
+    )
+    if gamma_user is None and gamma is not None:
+        why.append(f"Bias factor: gamma = {gamma:.4g} for the largest barrier estimate "
+                   f"{wt_barrier:.4g} kJ/mol (dT = {(gamma - 1) * temperature:.4g} K). " + rule)
+    elif gamma is None:
+        why.append("Bias factor: no barrier estimate given, so gamma is tabulated over barrier "
+                   f"estimates {', '.join(f'{v:g}' for v in levels)} kJ/mol. " + rule)
+    if gamma_user is None and wt_barrier is not None and wt_barrier / (n_target * kt) < 2.0:
+        why.append(f"Note: the barrier estimate {wt_barrier:.4g} kJ/mol is below {2 * n_target:g} kT; "
+                   f"gamma was raised to the floor of 2. A barrier this low may need little or "
+                   f"no bias along this CV; check that the states really are metastable.")
+    if gamma is not None and wt_barrier is not None and wt_barrier / gamma > n_target * kt * 1.0001:
+        why.append(f"Note: with gamma = {gamma:.4g} the barrier of {wt_barrier:.4g} kJ/mol is seen "
+                   f"as {wt_barrier / gamma:.4g} kJ/mol ({wt_barrier / gamma / kt:.3g} kT).")
+    well_tempered = {
+        "bias_factor": gamma,
+        "delta_t_k": None if gamma is None else (gamma - 1.0) * temperature,
+        "barrier_kj_mol": wt_barrier,
+        "effective_barrier_kj_mol": None if gamma is None or wt_barrier is None else wt_barrier / gamma,
+        "target_barrier_kt": n_target,
+        "table": table,
+    }
+
+    # walls and grid ---------------------------------------------------------
+    lows = [v["mean"] - wall_k * v["std"] for v in st.values()]
+    highs = [v["mean"] + wall_k * v["std"] for v in st.values()]
+    reach = 5.0 * sigma if kernel == "gaussian" else cutoff
+    margin = reach + sigma
+    if periodic:
+        walls = None
+        g_lo, g_hi = lo_range, hi_range
+        why.append(f"Walls: none, the CV is periodic; the grid spans one period "
+                   f"[{g_lo:.4g}, {g_hi:.4g}].")
+    else:
+        w_lo, w_hi = min(lows), max(highs)
+        g_lo, g_hi = w_lo - margin, w_hi + margin
+        clipped = ""
+        if lo_range is not None:
+            w_lo, w_hi = max(w_lo, lo_range), min(w_hi, hi_range)
+            g_lo, g_hi = max(g_lo, lo_range), min(g_hi, hi_range)
+            clipped = f", clipped to cv_range [{lo_range:.4g}, {hi_range:.4g}]"
+        walls = {"lower": w_lo, "upper": w_hi, "k_std": wall_k}
+        why.append(
+            f"Walls at the outermost state mean -/+ {wall_k:g} std: [{w_lo:.4g}, {w_hi:.4g}] CV "
+            f"units{clipped} {tag_cp}: +/-3 std holds 99.7% of a Gaussian basin, so the bias "
+            f"explores the observed states and the region between them, not far beyond."
+        )
+        reach_text = ("5 sigma (where a Gaussian kernel is below 4e-6 of its peak)"
+                      if kernel == "gaussian" else "the Lucy cutoff h (exact support)")
+        why.append(
+            f"Grid: walls extended by {reach_text} plus 1 sigma for the walker's overshoot past "
+            f"a wall = {margin:.4g} CV units on each side {tag_cp}, so kernels deposited near "
+            f"a wall stay on the grid."
+        )
+    n_bins = max(1, int(math.ceil((g_hi - g_lo) / (f_grid * sigma) - 1e-9)))
+    spacing = (g_hi - g_lo) / n_bins
+    why.append(
+        f"Grid spacing: at most {f_grid:g} x sigma = {f_grid * sigma:.4g} CV units {tag_cpm}: "
+        f"several points per kernel width keep interpolation errors of the bias and its force "
+        f"small; {n_bins} bins of {spacing:.4g} over [{g_lo:.4g}, {g_hi:.4g}]."
+    )
+    grid = {"lower": g_lo, "upper": g_hi, "spacing": spacing, "n_bins": n_bins,
+            "n_points": n_bins if periodic else n_bins + 1, "periodic": bool(periodic)}
+
+    # fill times -------------------------------------------------------------
+    model = (
+        "Each state is a harmonic basin F(s) = kT (s - mean)^2 / (2 std^2) (std from the input "
+        "data). Plain metadynamics: time to deposit the bias volume (4/3) std L sqrt(2L/kT) "
+        "that makes the basin flat up to level L, one kernel of volume height x area per "
+        "interval (quasi-static filling; Laio and Parrinello, Proc. Natl. Acad. Sci. USA 99, "
+        "12562, 2002, from memory). Well-tempered: the bias keeps the converged shape "
+        "(1 - 1/gamma)(L - F)_+ of Barducci, Bussi and Parrinello (2008) while L rises; the "
+        "walker is Boltzmann-distributed on F + V and the kernel height decays as "
+        "height x exp(-V/(kB dT)); the rate is integrated numerically up to L = barrier, when "
+        "the barrier is seen as barrier/gamma [our model]. Order-of-magnitude estimates: real "
+        "basins are not harmonic and a 1-D CV misses slow orthogonal motions."
+    )
+    rows_of = {}
+    over = []
+    for name, v in st.items():
+        todo = [(barriers[name], gamma)] if barriers is not None else [
+            (dg, gamma_user if gamma_user is not None else row["bias_factor"]) for dg, row in zip(levels, table)]
+        rows = []
+        for dg, g in todo:
+            vol = fill_volume(dg, v["std"], temperature)
+            t_md = fill_time_metadynamics(dg, v["std"], temperature=temperature, height=height,
+                                          area_per_height=area, interval_ps=interval_ps)
+            t_wt = None if g is None else fill_time_well_tempered(
+                dg, v["std"], temperature=temperature, height=height, area_per_height=area,
+                interval_ps=interval_ps, bias_factor=g)
+            t_wt = _finite_or_none(t_wt)
+            worst = t_wt if g is not None else t_md
+            flag = None if budget is None else (worst is None or worst / 1000.0 > budget)
+            if flag:
+                over.append(f"{name} ({dg:g} kJ/mol)")
+            rows.append({
+                "level_kj_mol": dg, "bias_factor": g, "volume": vol,
+                "n_kernels": vol / (height * area),
+                "metadynamics_ps": t_md, "metadynamics_ns": t_md / 1000.0,
+                "well_tempered_ps": t_wt, "well_tempered_ns": None if t_wt is None else t_wt / 1000.0,
+                "over_budget": flag,
+            })
+        rows_of[name] = rows
+    why.append(
+        "Fill time per state: harmonic-basin model with the state's std, volume "
+        "(4/3) std L sqrt(2L/kT) [derived here], kernels of the height, width and interval "
+        "above; well-tempered times from the numerically integrated model in fill_time "
+        "[our model]. A deep or wide basin takes longer (time ~ std x L^1.5 for plain "
+        "metadynamics)."
+    )
+    if budget is not None:
+        if over:
+            why.append(f"Over the budget of {budget:g} ns: {', '.join(over)}; consider a larger "
+                       f"height, a wider kernel, a larger bias factor, or several walkers.")
+        else:
+            why.append(f"Every estimated fill time is within the budget of {budget:g} ns.")
+
+    return {
+        "format": HINTS_FORMAT,
+        "version": HINTS_VERSION,
+        "caution": CAUTION,
+        "units": {"cv": "CV units", "energy": "kJ/mol", "time": "ps", "timestep": "fs",
+                  "temperature": "K"},
+        "inputs": {
+            "temperature_k": temperature, "timestep_fs": dt_fs, "kt_kj_mol": kt,
+            "autocorrelation_time_ps": tau,
+            "barrier_kj_mol": (None if barriers is None else
+                               (barriers if isinstance(barrier, Mapping) else float(barrier))),
+            "states": st,
+        },
+        "kernel": {"kind": kernel, "sigma": sigma, "cutoff": cutoff, "area_per_height": area,
+                   "width_fraction": f_width, "reference_state": ref_state, "reference_std": ref_std},
+        "height_kj_mol": height,
+        "deposition": {"interval_steps": steps, "interval_ps": interval_ps, "tau_ps": tau_used,
+                       "capped": capped},
+        "well_tempered": well_tempered,
+        "walls": walls,
+        "grid": grid,
+        "fill_time": {"model": model, "budget_ns": budget, "states": rows_of},
+        "reasoning": why,
+        "sources": [_SOURCES[k] for k in ("lucy", "wt", "metad", "accuracy")]
+                   + ["common practice (rules labelled so in the reasoning)"],
+    }
+
+
+# --------------------------------------------------------------------------
+# text
+
+
+def _g(x, digits=4):
+    return "-" if x is None else f"{x:.{digits}g}"
+
+
+def _time(ps):
+    if ps is None:
+        return "beyond estimate"
+    return f"{ps:.3g} ps" if ps < 1000.0 else f"{ps / 1000.0:.3g} ns"
+
+
+def format_hints(hints):
+    """Human-readable text of a :func:`suggest_hints` result.
+
+    Parameters
+    ----------
+    hints : dict
+        A dict returned by :func:`suggest_hints` (or its JSON round trip).
+
+    Returns
+    -------
+    str
+        Multi-line text: the caution, the suggested values with units, the
+        fill-time table per state, the reasoning, the sources, and the caution
+        again.
+
+    Examples
+    --------
+    >>> h = suggest_hints({"A": {"mean": 0.0, "std": 0.1}}, temperature=300.0,
+    ...                   timestep_fs=2.0, barrier=30.0)
+    >>> text = format_hints(h)
+    >>> "starting points to validate" in text, "Fill time" in text
+    (True, True)
+    """
+    if not isinstance(hints, Mapping) or hints.get("format") != HINTS_FORMAT:
+        raise InputError("hints must be a dict returned by suggest_hints")
+    k, dep, wt = hints["kernel"], hints["deposition"], hints["well_tempered"]
+    inp = hints["inputs"]
+    out = ["Bias hints (cvdesign)", "CAUTION: " + hints["caution"], ""]
+    out.append(f"temperature {inp['temperature_k']:g} K (kT = {inp['kt_kj_mol']:.4g} kJ/mol), "
+               f"timestep {inp['timestep_fs']:g} fs")
+    if k["kind"] == "gaussian":
+        out.append(f"kernel           Gaussian, sigma = {_g(k['sigma'])} CV units")
+    else:
+        out.append(f"kernel           Lucy, cutoff h = {_g(k['cutoff'])} CV units "
+                   f"(variance of a Gaussian with sigma = {_g(k['sigma'])})")
+    out.append(f"height           {_g(hints['height_kj_mol'])} kJ/mol (initial)")
+    out.append(f"interval         {dep['interval_steps']} steps = {_g(dep['interval_ps'])} ps"
+               + (" (capped)" if dep["capped"] else ""))
+    if wt["bias_factor"] is not None:
+        line = f"bias factor      {_g(wt['bias_factor'])} (dT = {_g(wt['delta_t_k'])} K)"
+        if wt["barrier_kj_mol"] is not None:
+            line += (f"; barrier {_g(wt['barrier_kj_mol'])} kJ/mol seen as "
+                     f"{_g(wt['effective_barrier_kj_mol'])} kJ/mol")
+        out.append(line)
+    if wt["barrier_kj_mol"] is None:
+        out.append("bias factor by barrier estimate:")
+        out.append("  barrier (kJ/mol)  bias factor  dT (K)  barrier seen (kJ/mol)")
+        for r in wt["table"]:
+            out.append(f"  {r['barrier_kj_mol']:>16g}  {r['bias_factor']:>11.3g}  "
+                       f"{r['delta_t_k']:>6.0f}  {r['effective_barrier_kj_mol']:>21.3g}")
+    walls = hints["walls"]
+    out.append("walls            none (periodic CV)" if walls is None else
+               f"walls            [{_g(walls['lower'])}, {_g(walls['upper'])}] CV units")
+    gr = hints["grid"]
+    out.append(f"grid             [{_g(gr['lower'])}, {_g(gr['upper'])}], {gr['n_bins']} bins "
+               f"of {_g(gr['spacing'])}" + (" (periodic)" if gr["periodic"] else ""))
+    out += ["", "Fill time per state (harmonic-basin model; order of magnitude):",
+            "  state            level (kJ/mol)  bias factor  metadynamics    well-tempered"]
+    for name, rows in hints["fill_time"]["states"].items():
+        for r in rows:
+            flag = "  over budget" if r.get("over_budget") else ""
+            gam = "-" if r["bias_factor"] is None else f"{r['bias_factor']:.3g}"
+            wtt = "-" if r["bias_factor"] is None else _time(r["well_tempered_ps"])
+            out.append(f"  {name:<16} {r['level_kj_mol']:>14g}  {gam:>11}  "
+                       f"{_time(r['metadynamics_ps']):>12}  {wtt:>15}{flag}")
+    out += ["", "Model: " + hints["fill_time"]["model"], "", "Reasoning:"]
+    out += [f"- {line}" for line in hints["reasoning"]]
+    out += ["", "Sources:"] + [f"- {s}" for s in hints["sources"]]
+    out += ["", "CAUTION: " + hints["caution"]]
+    return "\n".join(out) + "\n"

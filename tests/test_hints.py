@@ -1,0 +1,428 @@
+"""Tests of cvdesign.hints: kernels, bias factor, fill volume and fill times, suggestions, text."""
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy import integrate
+
+from cvdesign.errors import InputError
+from cvdesign.hints import (
+    CAUTION,
+    KB_KJ_MOL_K,
+    bias_factor_for_barrier,
+    fill_time_metadynamics,
+    fill_time_well_tempered,
+    fill_volume,
+    format_hints,
+    gaussian_kernel,
+    gaussian_kernel_derivative,
+    kernel_area_per_height,
+    lucy_cutoff_for_sigma,
+    lucy_kernel,
+    lucy_kernel_derivative,
+    suggest_hints,
+)
+
+T = 300.0
+KT = KB_KJ_MOL_K * T
+
+STATES = {
+    "closed": {"mean": -1.2, "std": 0.15, "n_frames": 2000},
+    "open": {"mean": 0.9, "std": 0.25, "n_frames": 1500},
+}
+
+
+# --------------------------------------------------------------------------
+# kernels
+
+
+@pytest.mark.parametrize("h", [0.3, 1.0, 2.5])
+def test_lucy_kernel_integrates_to_one(h):
+    value, _ = integrate.quad(lucy_kernel, -h, h, args=(h,), epsabs=1e-13)
+    assert value == pytest.approx(1.0, abs=1e-10)
+
+
+def test_lucy_normalization_constant_is_5_over_4h():
+    # int_{-h}^{h} (1 + 3q)(1 - q)^3 dr = 4h/5, so the constant is 5/(4h)
+    h = 1.7
+    raw, _ = integrate.quad(lambda r: (1 + 3 * abs(r) / h) * (1 - abs(r) / h) ** 3, -h, h)
+    assert raw == pytest.approx(4 * h / 5, rel=1e-12)
+    assert lucy_kernel(0.0, h) == pytest.approx(5 / (4 * h), rel=1e-15)
+
+
+def test_lucy_kernel_has_compact_support():
+    h = 0.8
+    assert lucy_kernel(h, h) == 0.0
+    assert np.all(lucy_kernel(np.array([-5.0, -h - 1e-12, h + 1e-12, 3.0]), h) == 0.0)
+    assert lucy_kernel(0.5 * h, h) > 0.0
+
+
+@pytest.mark.parametrize("h", [0.5, 2.0])
+def test_lucy_derivative_matches_finite_differences(h):
+    r = np.linspace(-1.2 * h, 1.2 * h, 41)
+    eps = 1e-6
+    fd = (lucy_kernel(r + eps, h) - lucy_kernel(r - eps, h)) / (2 * eps)
+    np.testing.assert_allclose(lucy_kernel_derivative(r, h), fd, atol=1e-7)
+
+
+def test_lucy_derivative_is_continuous_at_cutoff_and_at_zero():
+    h = 1.3
+    for side in (1.0, -1.0):
+        left = [lucy_kernel_derivative(side * (h - eps), h) for eps in (1e-2, 1e-4, 1e-6)]
+        assert abs(left[-1]) < 1e-10  # limit from inside is 0
+        assert abs(left[0]) > abs(left[1]) > abs(left[2])
+        assert lucy_kernel_derivative(side * h, h) == 0.0
+        assert lucy_kernel_derivative(side * (h + 1e-9), h) == 0.0
+    # at 0: both one-sided limits are 0 (the kernel has a smooth maximum)
+    assert abs(lucy_kernel_derivative(1e-9, h)) < 1e-7
+    assert abs(lucy_kernel_derivative(-1e-9, h)) < 1e-7
+    assert lucy_kernel_derivative(0.0, h) == 0.0
+
+
+def test_lucy_cutoff_matches_gaussian_variance():
+    sigma = 0.37
+    h = lucy_cutoff_for_sigma(sigma)
+    var, _ = integrate.quad(lambda r: r * r * lucy_kernel(r, h), -h, h)
+    assert var == pytest.approx(sigma**2, rel=1e-10)
+    assert h == pytest.approx(math.sqrt(21 / 2) * sigma, rel=1e-15)
+
+
+@pytest.mark.parametrize("sigma", [0.05, 1.0, 3.0])
+def test_gaussian_kernel_integrates_to_one(sigma):
+    value, _ = integrate.quad(gaussian_kernel, -np.inf, np.inf, args=(sigma,))
+    assert value == pytest.approx(1.0, abs=1e-10)
+    var, _ = integrate.quad(lambda r: r * r * gaussian_kernel(r, sigma), -np.inf, np.inf)
+    assert var == pytest.approx(sigma**2, rel=1e-8)
+
+
+def test_gaussian_derivative_matches_finite_differences():
+    r = np.linspace(-3.0, 3.0, 31)
+    eps = 1e-6
+    fd = (gaussian_kernel(r + eps, 0.7) - gaussian_kernel(r - eps, 0.7)) / (2 * eps)
+    np.testing.assert_allclose(gaussian_kernel_derivative(r, 0.7), fd, atol=1e-8)
+
+
+def test_kernels_return_float_for_scalar_and_array_for_array():
+    assert isinstance(lucy_kernel(0.1, 1.0), float)
+    assert isinstance(gaussian_kernel_derivative(0.1, 1.0), float)
+    out = lucy_kernel([0.0, 0.5], 1.0)
+    assert out.shape == (2,) and out.dtype == np.float64
+
+
+@pytest.mark.parametrize("kernel,width", [("gaussian", 0.4), ("lucy", 1.1)])
+def test_kernel_area_per_height_is_area_of_unit_peak(kernel, width):
+    f = gaussian_kernel if kernel == "gaussian" else lucy_kernel
+    peak = f(0.0, width)
+    lim = np.inf if kernel == "gaussian" else width
+    area, _ = integrate.quad(lambda r: f(r, width) / peak, -lim, lim)
+    assert kernel_area_per_height(kernel, width) == pytest.approx(area, rel=1e-10)
+
+
+# --------------------------------------------------------------------------
+# bias factor
+
+
+def test_bias_factor_hand_computed():
+    # 60 kJ/mol at 300 K, 3 kT left: 60 / (3 * 0.00831446261815324 * 300) = 8.01816...
+    assert bias_factor_for_barrier(60.0, 300.0) == pytest.approx(60.0 / (3 * 2.494338785445972), rel=1e-14)
+    assert bias_factor_for_barrier(60.0, 300.0) == pytest.approx(8.01816, abs=1e-5)
+    assert bias_factor_for_barrier(50.0, 350.0, target_barrier_kt=4.0) == pytest.approx(
+        50.0 / (4 * 0.00831446261815324 * 350.0), rel=1e-14)
+
+
+def test_bias_factor_is_floored_for_low_barriers():
+    assert bias_factor_for_barrier(5.0, 300.0) == 2.0
+    assert bias_factor_for_barrier(5.0, 300.0, minimum=1.0) == 1.0
+    assert bias_factor_for_barrier(10.0, 300.0, minimum=1.0) == pytest.approx(10.0 / (3 * KT))
+    with pytest.raises(InputError, match=r"minimum=0\.5 must be >= 1"):
+        bias_factor_for_barrier(10.0, 300.0, minimum=0.5)
+
+
+# --------------------------------------------------------------------------
+# fill volume and times
+
+
+@pytest.mark.parametrize("level,std", [(5.0, 0.2), (40.0, 1.0), (100.0, 0.05)])
+def test_fill_volume_equals_quadrature(level, std):
+    x_edge = std * math.sqrt(2 * level / KT)
+    value, _ = integrate.quad(lambda s: max(level - KT * s * s / (2 * std * std), 0.0),
+                              -2 * x_edge, 2 * x_edge, points=[-x_edge, x_edge], epsabs=1e-12)
+    assert fill_volume(level, std, T) == pytest.approx(value, rel=1e-10)
+
+
+def test_fill_time_metadynamics_scaling():
+    kw = dict(temperature=T, area_per_height=0.25, interval_ps=1.0)
+    t = fill_time_metadynamics(40.0, 0.3, height=1.0, **kw)
+    assert fill_time_metadynamics(40.0, 0.3, height=2.0, **kw) == pytest.approx(t / 2, rel=1e-14)
+    assert fill_time_metadynamics(160.0, 0.3, height=1.0, **kw) == pytest.approx(8 * t, rel=1e-14)  # L^1.5
+    assert fill_time_metadynamics(40.0, 0.6, height=1.0, **kw) == pytest.approx(2 * t, rel=1e-14)
+
+
+def test_fill_time_metadynamics_matches_running_minimum_filling():
+    # Independent check: deposit Gaussian kernels on a grid, always at the lowest
+    # point of F + V, until the lowest point reaches the level. Count them.
+    std, width, height = 1.0, 0.1, 0.05 * KT
+    x = np.linspace(-15.0, 15.0, 30001)
+    free = KT * x**2 / (2 * std**2)
+    area = kernel_area_per_height("gaussian", width)
+    for level in (10.0, 20.0):
+        bias = np.zeros_like(x)
+        n = 0
+        while True:
+            i = np.argmin(free + bias)
+            if free[i] + bias[i] >= level:
+                break
+            bias += height * np.exp(-((x - x[i]) ** 2) / (2 * width**2))
+            n += 1
+        t = fill_time_metadynamics(level, std, temperature=T, height=height, area_per_height=area,
+                                   interval_ps=1.0)
+        assert n == pytest.approx(t, rel=0.02)
+
+
+def _mean_field_steps(level, gamma, *, std=1.0, width=0.2, height=0.1 * KT, dx=0.02):
+    """Deterministic mean-field well-tempered run on a grid: each step adds the kernel
+    convolved with the Boltzmann density on F + V times exp(-V / (kB dT)); steps until
+    the bias at the basin bottom reaches (1 - 1/gamma) * level."""
+    x = np.arange(-8.0, 8.0 + dx / 2, dx)
+    free = KT * x**2 / (2 * std**2)
+    m = int(round(5 * width / dx))
+    kern = np.exp(-((np.arange(-m, m + 1) * dx) ** 2) / (2 * width**2))
+    bias = np.zeros_like(x)
+    mid = len(x) // 2
+    n = 0
+    while bias[mid] < (1 - 1 / gamma) * level:
+        e = free + bias
+        p = np.exp(-(e - e.min()) / KT)
+        p /= p.sum()
+        bias += height * np.convolve(p * np.exp(-bias / (KT * (gamma - 1))), kern, mode="same")
+        n += 1
+    return n
+
+
+@pytest.mark.parametrize("level,gamma", [(10.0, 3.0), (20.0, 5.0), (20.0, 10.0)])
+def test_fill_time_well_tempered_agrees_with_mean_field_filling(level, gamma):
+    # The quasi-static model ignores bias spilling past the rim, so it runs a bit
+    # fast; within 20% of the mean-field run at these settings (measured: 4-13%).
+    area = kernel_area_per_height("gaussian", 0.2)
+    t = fill_time_well_tempered(level, 1.0, temperature=T, height=0.1 * KT, area_per_height=area,
+                                interval_ps=1.0, bias_factor=gamma)
+    n = _mean_field_steps(level, gamma)
+    assert n == pytest.approx(t, rel=0.2)
+
+
+def test_fill_time_well_tempered_tends_to_plain_for_large_gamma():
+    kw = dict(temperature=T, height=1.0, area_per_height=0.3, interval_ps=2.0)
+    plain = fill_time_metadynamics(40.0, 0.5, **kw)
+    assert fill_time_well_tempered(40.0, 0.5, bias_factor=1e7, **kw) == pytest.approx(plain, rel=1e-4)
+    times = [fill_time_well_tempered(40.0, 0.5, bias_factor=g, **kw) for g in (2.0, 5.0, 20.0)]
+    assert times[0] > times[1] > times[2] > plain
+
+
+def test_fill_time_well_tempered_scales_with_height_and_std():
+    kw = dict(temperature=T, area_per_height=0.3, interval_ps=1.0, bias_factor=6.0)
+    t = fill_time_well_tempered(30.0, 0.5, height=1.0, **kw)
+    assert fill_time_well_tempered(30.0, 0.5, height=2.0, **kw) == pytest.approx(t / 2, rel=1e-9)
+    assert fill_time_well_tempered(30.0, 1.0, height=1.0, **kw) == pytest.approx(2 * t, rel=1e-9)
+    assert fill_time_well_tempered(0.0, 1.0, height=1.0, **kw) == 0.0
+
+
+def test_fill_time_well_tempered_overflow_is_inf():
+    t = fill_time_well_tempered(5000.0, 1.0, temperature=T, height=1.0, area_per_height=1.0,
+                                interval_ps=1.0, bias_factor=1.5)
+    assert t == math.inf
+
+
+# --------------------------------------------------------------------------
+# suggest_hints
+
+
+def _walk(obj):
+    if isinstance(obj, dict):
+        for v in obj.values():
+            yield from _walk(v)
+    elif isinstance(obj, list):
+        for v in obj:
+            yield from _walk(v)
+    else:
+        yield obj
+
+
+def test_hints_on_sample_states_are_finite_and_sensible():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=1.0, barrier=50.0)
+    for v in _walk(h):
+        assert v is None or isinstance(v, (bool, int, float, str))
+        if isinstance(v, float):
+            assert math.isfinite(v)
+    assert h["caution"] == CAUTION and "starting points to validate" in CAUTION
+    assert h["kernel"]["sigma"] == pytest.approx(0.5 * 0.15)
+    assert h["kernel"]["reference_state"] == "closed"
+    assert 0.1 <= h["height_kj_mol"] <= 3.0
+    assert h["deposition"]["interval_steps"] == 500 and h["deposition"]["interval_ps"] == 1.0
+    gamma = h["well_tempered"]["bias_factor"]
+    assert gamma == pytest.approx(50.0 / (3 * KT))
+    assert h["well_tempered"]["delta_t_k"] == pytest.approx((gamma - 1) * T)
+    walls, grid = h["walls"], h["grid"]
+    assert walls["lower"] == pytest.approx(-1.2 - 3 * 0.15)
+    assert walls["upper"] == pytest.approx(0.9 + 3 * 0.25)
+    assert grid["lower"] < walls["lower"] < walls["upper"] < grid["upper"]
+    assert grid["spacing"] <= 0.2 * h["kernel"]["sigma"] + 1e-12
+    assert grid["n_bins"] * grid["spacing"] == pytest.approx(grid["upper"] - grid["lower"])
+    rows = h["fill_time"]["states"]
+    assert set(rows) == set(STATES)
+    for name, (row,) in rows.items():
+        assert row["level_kj_mol"] == 50.0
+        assert 0 < row["metadynamics_ps"] < row["well_tempered_ps"] < 1e7
+        assert row["metadynamics_ns"] == pytest.approx(row["metadynamics_ps"] / 1000)
+    # the wider basin takes longer to fill
+    assert rows["open"][0]["metadynamics_ps"] > rows["closed"][0]["metadynamics_ps"]
+    assert h["reasoning"] and all(isinstance(line, str) for line in h["reasoning"])
+
+
+def test_hints_round_trip_through_json_without_nan():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, kernel="lucy", budget_ns=0.5)
+    assert json.loads(json.dumps(h, allow_nan=False)) == h
+
+
+def test_hints_without_barrier_tabulate_bias_factor_and_fill_times():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0)
+    wt = h["well_tempered"]
+    assert wt["bias_factor"] is None and wt["barrier_kj_mol"] is None
+    assert [r["barrier_kj_mol"] for r in wt["table"]] == [20.0, 40.0, 60.0, 80.0, 100.0]
+    gammas = [r["bias_factor"] for r in wt["table"]]
+    assert gammas == sorted(gammas)
+    for rows in h["fill_time"]["states"].values():
+        assert [r["level_kj_mol"] for r in rows] == [20.0, 40.0, 60.0, 80.0, 100.0]
+        assert [r["bias_factor"] for r in rows] == gammas
+        times = [r["metadynamics_ps"] for r in rows]
+        assert times == sorted(times)
+    assert h["deposition"]["tau_ps"] == 1.0  # the default when no time is given
+
+
+def test_lucy_hints_use_variance_matched_cutoff():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, kernel="lucy", barrier=40.0)
+    k = h["kernel"]
+    assert k["cutoff"] == pytest.approx(lucy_cutoff_for_sigma(k["sigma"]))
+    assert k["area_per_height"] == pytest.approx(0.8 * k["cutoff"])
+    assert any("Lucy" in line for line in h["reasoning"])
+
+
+def test_per_state_barriers_and_given_bias_factor():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, barrier={"closed": 60.0, "open": 20.0},
+                      bias_factor=10.0)
+    assert h["well_tempered"]["bias_factor"] == 10.0
+    assert h["well_tempered"]["barrier_kj_mol"] == 60.0
+    assert h["fill_time"]["states"]["closed"][0]["level_kj_mol"] == 60.0
+    assert h["fill_time"]["states"]["open"][0]["level_kj_mol"] == 20.0
+
+
+def test_long_autocorrelation_time_is_capped_with_a_note():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=250.0)
+    assert h["deposition"]["capped"] is True
+    assert h["deposition"]["interval_ps"] == 10.0
+    assert any("capped" in line for line in h["reasoning"])
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=250.0,
+                      max_interval_ps=None)
+    assert h["deposition"]["interval_steps"] == 125000
+
+
+def test_short_autocorrelation_time_gives_at_least_one_step():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=0.0001)
+    assert h["deposition"]["interval_steps"] == 1
+
+
+def test_budget_flags_slow_states():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=5.0,
+                      barrier=100.0, budget_ns=1.0)
+    flags = [r["over_budget"] for rows in h["fill_time"]["states"].values() for r in rows]
+    assert all(flags)
+    assert any("Over the budget" in line for line in h["reasoning"])
+
+
+def test_periodic_cv_has_no_walls_and_grid_spans_the_period():
+    states = {"a": {"mean": -2.0, "std": 0.3}, "b": {"mean": 1.0, "std": 0.3}}
+    h = suggest_hints(states, temperature=T, timestep_fs=1.0, periodic=True, cv_range=(-math.pi, math.pi))
+    assert h["walls"] is None
+    g = h["grid"]
+    assert g["periodic"] and g["lower"] == -math.pi and g["upper"] == math.pi
+    assert g["n_points"] == g["n_bins"]
+    assert g["n_bins"] * g["spacing"] == pytest.approx(2 * math.pi)
+
+
+def test_cv_range_clips_walls_and_grid():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, cv_range=(-1.5, 2.0))
+    assert h["walls"]["lower"] == -1.5 and h["grid"]["lower"] == -1.5
+    assert h["grid"]["upper"] == 2.0
+
+
+def test_hints_are_deterministic():
+    a = suggest_hints(STATES, temperature=T, timestep_fs=2.0, barrier=45.0)
+    b = suggest_hints(STATES, temperature=T, timestep_fs=2.0, barrier=45.0)
+    assert json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
+
+
+@pytest.mark.parametrize(
+    "kwargs,match",
+    [
+        ({"temperature": -300.0}, r"temperature=-300\.0 must be > 0"),
+        ({"temperature": 0.0}, r"temperature=0\.0 must be > 0"),
+        ({"timestep_fs": 0.0}, r"timestep_fs=0\.0 must be > 0"),
+        ({"kernel": "box"}, r"kernel='box' is not known"),
+        ({"autocorrelation_time_ps": -1.0}, r"autocorrelation_time_ps=-1\.0"),
+        ({"barrier": float("nan")}, r"barrier=nan must be finite"),
+        ({"barrier": {"closed": 40.0}}, r"barrier must give one value per state.*'open'"),
+        ({"bias_factor": 1.0}, r"bias_factor=1\.0 must be > 1"),
+        ({"width_fraction": 2.0}, r"width_fraction=2\.0"),
+        ({"periodic": True}, r"cv_range is required"),
+        ({"cv_range": (1.0, 0.0)}, r"cv_range=\(1\.0, 0\.0\) must have lower < upper"),
+    ],
+)
+def test_bad_arguments_raise_naming_the_argument(kwargs, match):
+    args = {"temperature": T, "timestep_fs": 2.0, **kwargs}
+    with pytest.raises(ValueError, match=match):
+        suggest_hints(STATES, **args)
+
+
+def test_zero_std_raises_naming_the_state():
+    states = {"a": {"mean": 0.0, "std": 0.0}, "b": {"mean": 1.0, "std": 0.1}}
+    with pytest.raises(InputError, match=r"states\['a'\]\['std'\]=0\.0 must be > 0"):
+        suggest_hints(states, temperature=T, timestep_fs=2.0)
+
+
+def test_empty_or_malformed_states_raise():
+    with pytest.raises(InputError, match="states must be a non-empty dict"):
+        suggest_hints({}, temperature=T, timestep_fs=2.0)
+    with pytest.raises(InputError, match=r"states\['a'\] must be a dict with 'mean' and 'std'"):
+        suggest_hints({"a": {"mean": 0.0}}, temperature=T, timestep_fs=2.0)
+
+
+def test_kernel_functions_reject_bad_width():
+    with pytest.raises(InputError, match=r"cutoff=0\.0 must be > 0"):
+        lucy_kernel(0.1, 0.0)
+    with pytest.raises(InputError, match=r"sigma=-1\.0 must be > 0"):
+        gaussian_kernel(0.1, -1.0)
+    with pytest.raises(InputError, match=r"kernel='cosine' is not known"):
+        kernel_area_per_height("cosine", 1.0)
+
+
+# --------------------------------------------------------------------------
+# format_hints
+
+
+def test_format_hints_shows_values_reasoning_and_caution():
+    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=1.0)
+    text = format_hints(h)
+    assert text.count(CAUTION) == 2
+    assert "500 steps = 1 ps" in text
+    assert "Fill time per state" in text and "closed" in text and "open" in text
+    assert "bias factor by barrier estimate" in text
+    for line in h["reasoning"]:
+        assert line in text
+    # a JSON round trip formats the same
+    assert format_hints(json.loads(json.dumps(h))) == text
+
+
+def test_format_hints_rejects_other_dicts():
+    with pytest.raises(InputError, match="hints must be a dict returned by suggest_hints"):
+        format_hints({"kernel": {}})
