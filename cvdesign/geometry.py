@@ -1,31 +1,65 @@
-"""Reference geometry on coordinate arrays: distances, angles, dihedrals.
+"""Reference geometry on coordinate arrays: values and analytic gradients of descriptors.
 
-Everything here is plain numpy in float64: slow enough to be obviously right,
-fast enough for evaluating a spec or checking a simulation engine frame by
-frame. Coordinates are in nm, angles in rad.
+Everything here is plain numpy in float64, vectorized over frames: slow
+enough to be obviously right, fast enough for evaluating a spec or checking a
+simulation engine frame by frame. Coordinates are in nm, angles in rad.
+
+Kinds: :func:`distances`, :func:`angles`, :func:`dihedrals` (one value per
+index tuple), :func:`center_distance` (distance between the centers of two
+groups) and :func:`coordination` (a sum of :func:`switching_function` over
+the atom pairs of two groups).
 
 Periodic boxes are given either as orthorhombic edge lengths or as box
 vectors (rows), and the minimum image is exact for any non-singular box (see
 :func:`minimum_image`).
 
-Layout, with gradients in mind
-------------------------------
-Each public function works in two steps: :func:`_bond_vectors` gathers the
-atoms of every index tuple and forms the minimum-image bond vectors
+Gradients
+---------
+Every function takes ``gradient=False``; with ``gradient=True`` it returns
+``(values, gradient)``, the gradient with respect to the positions of the
+atoms involved only:
+
+- tuple kinds: shape (n_frames, n_items, n_atoms_per_item, 3), entry
+  ``[f, i, a]`` for atom ``indices[i][a]``;
+- group kinds (one item per call): shape (n_frames, n_a + n_b, 3), row k for
+  atom ``concatenate([group_a, group_b])[k]``.
+
+With a box the gradient is taken with respect to the minimum images used
+(the image shift is constant where it does not change), which is what an
+engine applies. Where a quantity is not differentiable or its direction is
+undefined (coincident atoms, collinear angle or dihedral atoms) the gradient
+is set to 0 and a :class:`GeometryWarning` says where; values stay finite.
+
+Layout
+------
+Tuple kinds work in two steps: :func:`_bond_vectors` gathers the atoms of
+every index tuple and forms the minimum-image bond vectors
 ``b_j = x[j + 1] - x[j]`` once; a small ``_*_from_bonds`` function turns those
-vectors into values. Analytic gradients (a later addition) can reuse the same
-bond vectors and chain back to atoms with ``d b_j / d x[j + 1] = +1``,
+vectors into values and, on request, gradients with respect to the bonds,
+chained back to the atoms with ``d b_j / d x[j + 1] = +1``,
 ``d b_j / d x[j] = -1``.
 """
 
 import itertools
+import math
 import warnings
 
 import numpy as np
 
 from .errors import InputError
 
-__all__ = ["GeometryWarning", "minimum_image", "distances", "angles", "dihedrals"]
+__all__ = [
+    "GeometryWarning",
+    "minimum_image",
+    "distances",
+    "angles",
+    "dihedrals",
+    "center_distance",
+    "coordination",
+    "coordination_pairs",
+    "switching_function",
+    "MAX_SWITCH_EXPONENT",
+]
 
 # An arm shorter than this (nm) counts as two coincident atoms.
 _TINY_LENGTH = 1e-9
@@ -343,9 +377,15 @@ def _bond_vectors(xyz, indices, width, box, name):
     return idx, _apply_minimum_image(bonds, kind, parsed)
 
 
+def _first_row(mask):
+    """(frame, row) of the first True entry of a (n_frames, n) mask."""
+    frame, row = (int(v) for v in np.argwhere(mask)[0])
+    return frame, row
+
+
 def _warn_singular(mask, idx, what, reason, substitute, name):
     count = int(mask.sum())
-    frame, row = (int(v) for v in np.argwhere(mask)[0])
+    frame, row = _first_row(mask)
     warnings.warn(
         f"{what}: {count} of {mask.size} values are undefined ({reason}); they were "
         f"set to {substitute}. First: frame {frame}, "
@@ -355,55 +395,146 @@ def _warn_singular(mask, idx, what, reason, substitute, name):
     )
 
 
+def _warn_gradient(mask, what, reason, where):
+    """Warn that the gradient of some values is undefined and was set to 0.
+
+    `where(row)` describes the item of the first affected row.
+    """
+    count = int(mask.sum())
+    frame, row = _first_row(mask)
+    warnings.warn(
+        f"{what}: the gradient of {count} of {mask.size} values is undefined ({reason}); "
+        f"it was set to 0. First: frame {frame}, {where(row)}",
+        GeometryWarning,
+        stacklevel=3,
+    )
+
+
 # --------------------------------------------------------------------------
-# values from bond vectors
+# values and gradients from bond vectors
+#
+# Gradients are first taken with respect to the bond vectors b_j and then
+# chained back to the atoms with d b_j / d x[j + 1] = +1, d b_j / d x[j] = -1.
+# With a box, b_j is the minimum image of x[j + 1] - x[j]; the image shift is
+# constant where the image does not change, so this is the gradient with
+# respect to the displaced images, which is what an engine applies.
 
 
 def _norm(v):
     return np.sqrt(np.einsum("...k,...k->...", v, v))
 
 
-def _distance_from_bonds(bonds):
-    """(n_frames, n, 1, 3) bond vectors -> (n_frames, n) lengths in nm."""
-    return _norm(bonds[:, :, 0, :])
+def _dot(a, b):
+    return np.einsum("...k,...k->...", a, b)
 
 
-def _angle_from_bonds(bonds):
-    """(n_frames, n, 2, 3) bond vectors -> (angles in rad, singular mask)."""
+def _atoms_from_bond_gradient(grad_bonds):
+    """(n_frames, n, width - 1, 3) gradient w.r.t. bonds -> (n_frames, n, width, 3) w.r.t. atoms."""
+    n_frames, n, n_bonds, _ = grad_bonds.shape
+    out = np.zeros((n_frames, n, n_bonds + 1, 3))
+    out[:, :, 1:, :] += grad_bonds
+    out[:, :, :-1, :] -= grad_bonds
+    return out
+
+
+def _distance_from_bonds(bonds, gradient=False):
+    """(n_frames, n, 1, 3) bond vectors -> lengths (n_frames, n) in nm [, gradient, singular mask]."""
+    b = bonds[:, :, 0, :]
+    value = _norm(b)
+    if not gradient:
+        return value
+    singular = value < _TINY_LENGTH
+    safe = np.where(singular, 1.0, value)
+    unit = np.where(singular[..., None], 0.0, b / safe[..., None])
+    return value, _atoms_from_bond_gradient(unit[:, :, None, :]), singular
+
+
+def _angle_from_bonds(bonds, gradient=False):
+    """(n_frames, n, 2, 3) bond vectors -> (angles in rad, coincident mask[, gradient, collinear mask]).
+
+    With ``u = x0 - x1``, ``v = x2 - x1``, ``w = u x v``:
+    ``d theta / d u = (u x w) / (|u|^2 |w|)`` and
+    ``d theta / d v = -(v x w) / (|v|^2 |w|)``, both of length ``1/|u|``
+    and ``1/|v|`` and perpendicular to their arm, in the plane of the angle.
+    """
     u = -bonds[:, :, 0, :]  # from the middle atom to the first
     v = bonds[:, :, 1, :]  # from the middle atom to the third
-    sine = _norm(np.cross(u, v))
-    cosine = np.einsum("...k,...k->...", u, v)
+    w = np.cross(u, v)
+    sine = _norm(w)
+    cosine = _dot(u, v)
     value = np.arctan2(sine, cosine)
-    singular = (_norm(u) < _TINY_LENGTH) | (_norm(v) < _TINY_LENGTH)
+    len_u, len_v = _norm(u), _norm(v)
+    singular = (len_u < _TINY_LENGTH) | (len_v < _TINY_LENGTH)
     value[singular] = np.pi / 2
-    return value, singular
+    if not gradient:
+        return value, singular
+    collinear = ~singular & (sine <= _TINY_SINE * len_u * len_v)
+    zero = singular | collinear
+    safe_w = np.where(zero, 1.0, sine)[..., None]
+    safe_u = np.where(zero, 1.0, len_u)[..., None]
+    safe_v = np.where(zero, 1.0, len_v)[..., None]
+    d_u = np.cross(u, w) / (safe_u**2 * safe_w)
+    d_v = -np.cross(v, w) / (safe_v**2 * safe_w)
+    grad = np.stack([-d_u, d_v], axis=2)  # w.r.t. b0 = -u and b1 = v
+    grad[zero] = 0.0
+    return value, singular, _atoms_from_bond_gradient(grad), collinear
 
 
-def _dihedral_from_bonds(bonds):
-    """(n_frames, n, 3, 3) bond vectors -> (dihedrals in rad, singular mask)."""
+def _dihedral_from_bonds(bonds, gradient=False):
+    """(n_frames, n, 3, 3) bond vectors -> (dihedrals in rad, singular mask[, gradient]).
+
+    The gradient follows Blondel and Karplus (J. Comput. Chem. 17, 1132,
+    1996): with ``F = x0 - x1``, ``G = x1 - x2``, ``H = x3 - x2``,
+    ``A = F x G`` and ``B = H x G`` (here ``A = b0 x b1``, ``B = b1 x b2``)
+
+    - ``d phi / d x0 = -|G| / |A|^2 A``
+    - ``d phi / d x3 = +|G| / |B|^2 B``
+    - ``d phi / d x1 = |G| / |A|^2 A + (F.G) / (|A|^2 |G|) A - (H.G) / (|B|^2 |G|) B``
+    - ``d phi / d x2 = -|G| / |B|^2 B - (F.G) / (|A|^2 |G|) A + (H.G) / (|B|^2 |G|) B``
+
+    No arccos and no division by the sine of the dihedral, so it is stable
+    at 0 and pi; it is singular only where the dihedral is (collinear atoms).
+    """
     b0, b1, b2 = bonds[:, :, 0, :], bonds[:, :, 1, :], bonds[:, :, 2, :]
     n1 = np.cross(b0, b1)
     n2 = np.cross(b1, b2)
     len0, len1, len2 = _norm(b0), _norm(b1), _norm(b2)
-    y = len1 * np.einsum("...k,...k->...", b0, n2)
-    x = np.einsum("...k,...k->...", n1, n2)
+    y = len1 * _dot(b0, n2)
+    x = _dot(n1, n2)
     value = np.arctan2(y, x)
     value[value <= -np.pi] = np.pi  # the range is (-pi, pi]
+    norm1, norm2 = _norm(n1), _norm(n2)
     singular = (
         (np.minimum(np.minimum(len0, len1), len2) < _TINY_LENGTH)
-        | (_norm(n1) <= _TINY_SINE * len0 * len1)
-        | (_norm(n2) <= _TINY_SINE * len1 * len2)
+        | (norm1 <= _TINY_SINE * len0 * len1)
+        | (norm2 <= _TINY_SINE * len1 * len2)
     )
     value[singular] = 0.0
-    return value + 0.0, singular  # + 0.0 turns -0.0 into 0.0
+    value = value + 0.0  # turns -0.0 into 0.0
+    if not gradient:
+        return value, singular
+    f_vec, g_vec, h_vec = -b0, -b1, b2
+    a_sq = np.where(singular, 1.0, norm1**2)[..., None]
+    b_sq = np.where(singular, 1.0, norm2**2)[..., None]
+    g_len = np.where(singular, 1.0, len1)[..., None]
+    a_term = n1 / a_sq  # A / |A|^2
+    b_term = n2 / b_sq  # B / |B|^2
+    fg = _dot(f_vec, g_vec)[..., None] / g_len
+    hg = _dot(h_vec, g_vec)[..., None] / g_len
+    d0 = -g_len * a_term
+    d3 = g_len * b_term
+    d1 = g_len * a_term + fg * a_term - hg * b_term
+    d2 = -g_len * b_term - fg * a_term + hg * b_term
+    grad = np.stack([d0, d1, d2, d3], axis=2)
+    grad[singular] = 0.0
+    return value, singular, grad
 
 
 # --------------------------------------------------------------------------
-# public functions
+# public functions: one value per index tuple
 
 
-def distances(xyz, pairs, box=None):
+def distances(xyz, pairs, box=None, *, gradient=False):
     """Distances between atom pairs, with an optional periodic box.
 
     Parameters
@@ -415,11 +546,25 @@ def distances(xyz, pairs, box=None):
     box : array-like or None, default=None
         Periodic box in nm; see :func:`minimum_image` for the accepted forms.
         None means no periodicity.
+    gradient : bool, default=False
+        Also return the analytic gradient.
 
     Returns
     -------
-    ndarray of shape (n_frames, n_pairs), float64
+    values : ndarray of shape (n_frames, n_pairs), float64
         Minimum-image distances in nm.
+    gradient : ndarray of shape (n_frames, n_pairs, 2, 3), float64
+        Only with ``gradient=True``: ``gradient[f, p, a]`` is the derivative
+        of distance p with respect to the position of atom ``pairs[p][a]``
+        (dimensionless, nm per nm): the unit vector of the minimum-image
+        displacement, with opposite signs for the two atoms.
+
+    Warns
+    -----
+    GeometryWarning
+        With ``gradient=True``, when two atoms coincide (distance below
+        1e-9 nm): the direction is undefined and the gradient is set to 0.
+        The value (0) is well defined and never warns.
 
     Raises
     ------
@@ -434,14 +579,24 @@ def distances(xyz, pairs, box=None):
     array([[0.5, 2.9]])
     >>> distances(xyz, [[0, 1], [0, 2]], box=[3.0, 3.0, 3.0])
     array([[0.5, 0.1]])
+    >>> value, grad = distances(xyz, [[0, 1]], gradient=True)
+    >>> grad[0, 0]  # unit vectors, nm per nm
+    array([[-0.6, -0.8,  0. ],
+           [ 0.6,  0.8,  0. ]])
     >>> distances(xyz, []).shape
     (1, 0)
     """
     idx, bonds = _bond_vectors(xyz, pairs, 2, box, "pairs")
-    return _distance_from_bonds(bonds)
+    if not gradient:
+        return _distance_from_bonds(bonds)
+    value, grad, singular = _distance_from_bonds(bonds, gradient=True)
+    if np.any(singular):
+        _warn_gradient(singular, "distances", "coincident atoms",
+                       lambda row: f"pairs[{row}] = atoms {idx[row].tolist()}")
+    return value, grad
 
 
-def angles(xyz, triples, box=None):
+def angles(xyz, triples, box=None, *, gradient=False):
     """Bond angles i-j-k at the middle atom j, with an optional periodic box.
 
     Parameters
@@ -453,34 +608,63 @@ def angles(xyz, triples, box=None):
         the vectors j->i and j->k, each taken as its own minimum image.
     box : array-like or None, default=None
         Periodic box in nm; see :func:`minimum_image`.
+    gradient : bool, default=False
+        Also return the analytic gradient.
 
     Returns
     -------
-    ndarray of shape (n_frames, n_angles), float64
+    values : ndarray of shape (n_frames, n_angles), float64
         Angles in rad, in [0, pi]. Computed as ``atan2(|u x v|, u . v)``,
         accurate also near 0 and pi.
+    gradient : ndarray of shape (n_frames, n_angles, 3, 3), float64
+        Only with ``gradient=True``: ``gradient[f, a, t]`` is the derivative
+        (rad/nm) of angle a with respect to the position of atom
+        ``triples[a][t]``. Computed without arccos and without dividing by
+        the sine of the angle (see Notes).
 
     Warns
     -----
     GeometryWarning
         When an arm is shorter than 1e-9 nm (coincident atoms) the angle is
-        undefined; it is returned as pi/2. Collinear atoms are not singular
-        for the value (0 or pi).
+        undefined; it is returned as pi/2 (and its gradient as 0).
+        Collinear atoms (angle 0 or pi) are not singular for the value, but
+        the angle is not differentiable there (it behaves like ``|x|``):
+        with ``gradient=True`` the gradient is set to 0 and a warning says
+        where. Collinear means the sine of the angle is below 1e-9.
+
+    Notes
+    -----
+    With ``u = x_i - x_j``, ``v = x_k - x_j`` and ``w = u x v``, the
+    gradient is ``d theta / d x_i = (u x w) / (|u|^2 |w|)``,
+    ``d theta / d x_k = -(v x w) / (|v|^2 |w|)`` and
+    ``d theta / d x_j = -(d theta / d x_i + d theta / d x_k)``.
 
     Examples
     --------
     >>> xyz = np.array([[[1.0, 0.0, 0.0], [0.0, 0.0, 0.0], [0.0, 2.0, 0.0]]])
     >>> angles(xyz, [[0, 1, 2]]) / np.pi
     array([[0.5]])
+    >>> value, grad = angles(xyz, [[0, 1, 2]], gradient=True)
+    >>> grad[0, 0, 0]  # moving atom i towards -y, away from atom k, opens the angle
+    array([ 0., -1.,  0.])
     """
     idx, bonds = _bond_vectors(xyz, triples, 3, box, "triples")
-    value, singular = _angle_from_bonds(bonds)
+    if not gradient:
+        value, singular = _angle_from_bonds(bonds)
+    else:
+        value, singular, grad, collinear = _angle_from_bonds(bonds, gradient=True)
     if np.any(singular):
-        _warn_singular(singular, idx, "angles", "an arm has zero length", "pi/2", "triples")
-    return value
+        substitute = "pi/2 (gradient 0)" if gradient else "pi/2"
+        _warn_singular(singular, idx, "angles", "an arm has zero length", substitute, "triples")
+    if not gradient:
+        return value
+    if np.any(collinear):
+        _warn_gradient(collinear, "angles", "three collinear atoms, angle 0 or pi",
+                       lambda row: f"triples[{row}] = atoms {idx[row].tolist()}")
+    return value, grad
 
 
-def dihedrals(xyz, quads, box=None):
+def dihedrals(xyz, quads, box=None, *, gradient=False):
     """Dihedral (torsion) angles a-b-c-d, IUPAC sign, with an optional periodic box.
 
     Parameters
@@ -492,19 +676,27 @@ def dihedrals(xyz, quads, box=None):
         as their own minimum image.
     box : array-like or None, default=None
         Periodic box in nm; see :func:`minimum_image`.
+    gradient : bool, default=False
+        Also return the analytic gradient.
 
     Returns
     -------
-    ndarray of shape (n_frames, n_dihedrals), float64
+    values : ndarray of shape (n_frames, n_dihedrals), float64
         Dihedral angles in rad, in (-pi, pi]: cis (a and d eclipsed) is 0,
         trans is pi.
+    gradient : ndarray of shape (n_frames, n_dihedrals, 4, 3), float64
+        Only with ``gradient=True``: ``gradient[f, q, t]`` is the derivative
+        (rad/nm) of dihedral q with respect to the position of atom
+        ``quads[q][t]``, by the formulas of Blondel and Karplus (1996), which
+        need no arccos and stay accurate at 0 and pi. It is smooth across
+        the jump of the value at +-pi.
 
     Warns
     -----
     GeometryWarning
         When a, b, c or b, c, d are collinear (sine of the bond angle below
         1e-9) or two consecutive atoms coincide, the dihedral is undefined;
-        it is returned as 0.
+        it is returned as 0 and its gradient as 0.
 
     Notes
     -----
@@ -517,6 +709,13 @@ def dihedrals(xyz, quads, box=None):
     ``b2 = d - c`` the value is
     ``atan2(|b1| b0 . (b1 x b2), (b0 x b1) . (b1 x b2))``.
 
+    Gradient (A. Blondel and M. Karplus, J. Comput. Chem. 17, 1132-1141,
+    1996): with ``F = a - b``, ``G = b - c``, ``H = d - c``, ``A = F x G``,
+    ``B = H x G``, ``d phi / d a = -|G| A / |A|^2``,
+    ``d phi / d d = |G| B / |B|^2``, and the middle atoms take the rest so
+    that the four derivatives sum to zero (no net force) and carry no net
+    torque.
+
     Examples
     --------
     Atom b at the origin, c on +z, a on +x and d turned by +60 degrees
@@ -526,9 +725,490 @@ def dihedrals(xyz, quads, box=None):
     >>> xyz = np.array([[[1, 0, 0], [0, 0, 0], [0, 0, 1], [0.5, s, 1]]])
     >>> np.degrees(dihedrals(xyz, [[0, 1, 2, 3]])).round(6)
     array([[60.]])
+    >>> value, grad = dihedrals(xyz, [[0, 1, 2, 3]], gradient=True)
+    >>> grad.shape, bool(np.abs(grad.sum(axis=2)).max() < 1e-12)  # no net force
+    ((1, 1, 4, 3), True)
     """
     idx, bonds = _bond_vectors(xyz, quads, 4, box, "quads")
-    value, singular = _dihedral_from_bonds(bonds)
+    if not gradient:
+        value, singular = _dihedral_from_bonds(bonds)
+    else:
+        value, singular, grad = _dihedral_from_bonds(bonds, gradient=True)
     if np.any(singular):
-        _warn_singular(singular, idx, "dihedrals", "collinear or coincident atoms", "0", "quads")
-    return value
+        substitute = "0 (gradient 0)" if gradient else "0"
+        _warn_singular(singular, idx, "dihedrals", "collinear or coincident atoms", substitute, "quads")
+    return (value, grad) if gradient else value
+
+
+# --------------------------------------------------------------------------
+# group descriptors: centers of groups, coordination numbers
+
+
+def _check_group(group, n_atoms, name):
+    """Return `group` as a non-empty int64 array of distinct atom indices."""
+    arr = np.asarray(group)
+    if arr.ndim != 1:
+        raise InputError(f"{name} has shape {arr.shape}; expected a flat list of 0-based atom indices")
+    if arr.size == 0:
+        raise InputError(f"{name} is empty; a group needs at least one atom")
+    if arr.dtype == bool or not np.issubdtype(arr.dtype, np.integer):
+        raise InputError(f"{name} must hold integer atom indices (0-based); got dtype {arr.dtype}")
+    bad = (arr < 0) | (arr >= n_atoms)
+    if np.any(bad):
+        j = int(np.flatnonzero(bad)[0])
+        raise InputError(
+            f"{name}[{j}] = {int(arr[j])} is not an atom of xyz ({n_atoms} atoms, valid indices 0..{n_atoms - 1})"
+        )
+    unique, counts = np.unique(arr, return_counts=True)
+    if np.any(counts > 1):
+        raise InputError(f"{name} lists atom {int(unique[counts > 1][0])} more than once; list each atom once")
+    return arr.astype(np.int64)
+
+
+def _check_weights(weights, size, name, group_name):
+    if weights is None:
+        return np.full(size, 1.0 / size)
+    try:
+        arr = np.asarray(weights, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{name} must be a list of masses in dalton (g/mol); could not convert it ({exc})") from None
+    if arr.shape != (size,):
+        raise InputError(f"{name} has shape {arr.shape}; expected ({size},), one mass per atom of {group_name}")
+    if not np.all(np.isfinite(arr) & (arr > 0)):
+        j = int(np.flatnonzero(~(np.isfinite(arr) & (arr > 0)))[0])
+        raise InputError(f"{name}[{j}] = {float(arr[j])!r}; masses must be finite and > 0 (dalton)")
+    return arr / arr.sum()
+
+
+def _group_points(xyz, groups, names):
+    """Coordinates of the atoms of each group, checked to be finite."""
+    out = []
+    for group, name in zip(groups, names):
+        points = xyz[:, group, :]
+        if not np.all(np.isfinite(points)):
+            frame, j = (int(v) for v in np.argwhere(~np.isfinite(points).all(axis=2))[0])
+            raise InputError(
+                f"xyz has NaN or infinite coordinates in frame {frame}, atom {int(group[j])} "
+                f"(used by {name}[{j}]); give finite coordinates in nm"
+            )
+        out.append(points)
+    return out
+
+
+def center_distance(xyz, group_a, group_b, box=None, *, masses_a=None, masses_b=None, gradient=False):
+    """Distance between the centers of two atom groups, with an optional periodic box.
+
+    Parameters
+    ----------
+    xyz : array-like of shape (n_frames, n_atoms, 3)
+        Coordinates in nm.
+    group_a, group_b : array-like of int, shape (n_a,) and (n_b,)
+        0-based atom indices of the two groups; each non-empty, without
+        repeats. The groups may share atoms.
+    box : array-like or None, default=None
+        Periodic box in nm; see :func:`minimum_image`.
+    masses_a, masses_b : array-like of shape (n_a,) and (n_b,), or None, default=None
+        Atom masses in dalton (g/mol), for the center of mass. None gives
+        the geometric center (equal weights) of that group.
+    gradient : bool, default=False
+        Also return the analytic gradient.
+
+    Returns
+    -------
+    values : ndarray of shape (n_frames,), float64
+        Distance between the two centers in nm.
+    gradient : ndarray of shape (n_frames, n_a + n_b, 3), float64
+        Only with ``gradient=True``: row k is the derivative (nm/nm) with
+        respect to the position of atom ``concatenate([group_a,
+        group_b])[k]``: ``-(w_i / W_a) u`` for the atoms of group a and
+        ``+(w_i / W_b) u`` for those of group b, ``u`` the unit vector from
+        center a to center b. An atom in both groups has two rows; its
+        derivative is their sum.
+
+    Warns
+    -----
+    GeometryWarning
+        With ``gradient=True``, when the two centers coincide (closer than
+        1e-9 nm): the gradient is set to 0.
+
+    Raises
+    ------
+    InputError
+        Empty groups, repeated or out-of-range indices, bad masses,
+        non-finite coordinates, or a bad box.
+
+    Notes
+    -----
+    Periodic boxes: each group is first made whole relative to its first
+    atom (every atom replaced by its minimum image around the first atom of
+    its group), the centers are averaged from those images, and the distance
+    is the minimum image of center b minus center a. This is exact when
+    every atom of a group lies within half the smallest box height of the
+    group's first atom, which holds for molecules and binding-site groups
+    in any box much larger than them. The gradient is taken with respect to
+    the images used, as engines apply it.
+
+    Examples
+    --------
+    Two atoms around x = 0.1 and one at x = 0.6 (geometric centers):
+
+    >>> xyz = np.array([[[0.0, 0, 0], [0.2, 0, 0], [0.6, 0, 0]]])
+    >>> center_distance(xyz, [0, 1], [2]).round(6)
+    array([0.5])
+    >>> value, grad = center_distance(xyz, [0, 1], [2], masses_a=[3.0, 1.0], gradient=True)
+    >>> value.round(6), grad[0, :, 0].round(6)
+    (array([0.55]), array([-0.75, -0.25,  1.  ]))
+    """
+    xyz = _check_xyz(xyz)
+    n_frames, n_atoms, _ = xyz.shape
+    ga = _check_group(group_a, n_atoms, "group_a")
+    gb = _check_group(group_b, n_atoms, "group_b")
+    wa = _check_weights(masses_a, len(ga), "masses_a", "group_a")
+    wb = _check_weights(masses_b, len(gb), "masses_b", "group_b")
+    kind, parsed = _parse_box(box, n_frames)
+    pa, pb = _group_points(xyz, (ga, gb), ("group_a", "group_b"))
+
+    def center(points, w):
+        whole = points[:, :1, :] + _apply_minimum_image(points - points[:, :1, :], kind, parsed)
+        return np.einsum("fak,a->fk", whole, w)
+
+    delta = _apply_minimum_image((center(pb, wb) - center(pa, wa))[:, None, :], kind, parsed)[:, 0, :]
+    value = _norm(delta)
+    if not gradient:
+        return value
+    singular = value < _TINY_LENGTH
+    safe = np.where(singular, 1.0, value)
+    unit = np.where(singular[:, None], 0.0, delta / safe[:, None])
+    grad = np.concatenate([-wa[None, :, None] * unit[:, None, :], wb[None, :, None] * unit[:, None, :]], axis=1)
+    if np.any(singular):
+        _warn_gradient(singular[:, None], "center_distance", "the two centers coincide", lambda row: "the two centers")
+    return value, grad
+
+
+# Exponents of the switching function above this are refused: the function is
+# then a step at r0 in double precision, and its series coefficients grow as m^3.
+MAX_SWITCH_EXPONENT = 1000.0
+
+
+def _check_switch_parameters(r0, n, m):
+    def number(value, name):
+        if isinstance(value, (bool, np.bool_)):
+            raise InputError(f"{name} must be a number; got {value!r}")
+        try:
+            out = float(value)
+        except (TypeError, ValueError):
+            raise InputError(f"{name} must be a number; got {value!r}") from None
+        if not math.isfinite(out):
+            raise InputError(f"{name} must be finite; got {value!r}")
+        return out
+
+    r0, n, m = number(r0, "r0"), number(n, "n"), number(m, "m")
+    if not r0 > 0:
+        raise InputError(f"r0={r0!r} must be > 0 (nm)")
+    if not 0 < n < m <= MAX_SWITCH_EXPONENT:
+        raise InputError(
+            f"n={n!r}, m={m!r}: the switching function needs 0 < n < m <= {MAX_SWITCH_EXPONENT:g} "
+            "(e.g. the common n=6, m=12)"
+        )
+    return r0, n, m
+
+
+# Order of the Taylor series of the switching function around r0, and its
+# range: |r/r0 - 1| * max(m, 1) below _SERIES_RANGE.
+_SERIES_ORDER = 6
+_SERIES_RANGE = 2e-3
+
+
+def _series_coefficients(k, order=_SERIES_ORDER):
+    """Coefficients f_0..f_order of ((1 + e)^k - 1) / (k e) = sum_j f_j e^j.
+
+    ``f_j = binom(k, j + 1) / k``, by the recurrence ``f_j = f_(j-1) (k - j) / (j + 1)``.
+    """
+    out = [1.0]
+    for j in range(1, order + 1):
+        out.append(out[-1] * (k - j) / (j + 1))
+    return out
+
+
+def _switch_series(n, m, order=_SERIES_ORDER):
+    """Coefficients q_0..q_order of s = (n/m) sum_j q_j e^j, e = r/r0 - 1 (series division)."""
+    p, f = _series_coefficients(n, order), _series_coefficients(m, order)
+    q = [1.0]
+    for j in range(1, order + 1):
+        q.append(p[j] - sum(f[i] * q[j - i] for i in range(1, j + 1)))
+    return q
+
+
+def _switch_below(log_x, n, m):
+    """g = (1 - x^n) / (1 - x^m) and dg/dlog(x) for log(x) < 0 (x in [0, 1)), by expm1."""
+    e_n, e_m = np.expm1(n * log_x), np.expm1(m * log_x)
+    g = e_n / e_m
+    # exp(k log x) rather than 1 + e_k, which loses the digits of a small x^k
+    dg = (n * np.exp(n * log_x) * e_m - m * np.exp(m * log_x) * e_n) / e_m**2
+    return g, dg
+
+
+def switching_function(r, r0, n=6, m=12, *, derivative=False):
+    """The rational switching function ``s(r) = (1 - (r/r0)^n) / (1 - (r/r0)^m)``.
+
+    Parameters
+    ----------
+    r : array-like of float, any shape
+        Distances in nm, >= 0.
+    r0 : float
+        Switching distance in nm, > 0: ``s(r0) = n/m``.
+    n, m : float, default=6, 12
+        Exponents, positive numbers with ``n < m <= 1000`` (not necessarily
+        integers).
+    derivative : bool, default=False
+        Also return ``ds/dr``.
+
+    Returns
+    -------
+    s : ndarray of r's shape, float64
+        Values in (0, 1]: 1 at r = 0, n/m at r = r0, falling as
+        ``(r/r0)^(n - m)`` at large r. Dimensionless.
+    ds_dr : ndarray of r's shape, float64
+        Only with ``derivative=True``: the derivative in 1/nm. At r = r0 it
+        is ``n (n - m) / (2 m r0)``. At r = 0 it is its limit: 0 for n > 1,
+        ``-1/r0`` for n = 1, and ``-inf`` for n < 1 (the function has a
+        vertical tangent there).
+
+    Raises
+    ------
+    InputError
+        Negative or non-finite `r`, r0 <= 0, or exponents outside
+        ``0 < n < m <= 1000``.
+
+    Notes
+    -----
+    The formula is 0/0 at r = r0. With ``x = r/r0`` it is evaluated as
+
+    - ``expm1(n log x) / expm1(m log x)`` for x < 1, which has no
+      cancellation in ``1 - x^k``;
+    - ``x^(n - m) (1 - x^-n) / (1 - x^-m)`` for x > 1, the same function
+      of ``1/x``, which cannot overflow;
+    - a Taylor series in ``e = x - 1`` of order 6 where
+      ``|e| max(m, 1) < 2e-3``. With ``((1 + e)^k - 1) / (k e) = sum_j
+      f_j(k) e^j``, ``f_j(k) = binom(k, j + 1) / k`` (so ``f_0 = 1``,
+      ``f_1 = (k - 1)/2``, ``f_2 = (k - 1)(k - 2)/6``), the function is
+      ``s = (n/m) sum_j q_j e^j`` with ``q_0 = 1`` and ``q_j = f_j(n) -
+      sum_(i=1..j) f_i(m) q_(j-i)`` (series division); ``q_1 = (n - m)/2``.
+      So ``s(r0) = n/m`` exactly and ``s'(r0) = (n/m) q_1 / r0 =
+      n (n - m) / (2 m r0)``.
+
+    Accuracy: the direct formulas give the value to about 1e-16 (relative)
+    everywhere, but their derivative loses digits near r0 (a cancellation
+    of relative size about ``2e-16 / (|n - m| |e|)``, 1e-13 at the edge of
+    the series' range for n=6, m=12); the series' truncation error there is
+    about ``(|e| max(m, 1))^6``, below 1e-16. Checked against the exact
+    formulas in 200-digit decimal arithmetic (tests/test_gradients.py).
+
+    Examples
+    --------
+    >>> switching_function([0.0, 0.5, 1.0], r0=0.5).round(6)  # 1, 6/12, 63/4095
+    array([1.      , 0.5     , 0.015385])
+    >>> s, ds = switching_function(0.5, r0=0.5, derivative=True)
+    >>> float(s), float(ds)  # n/m and n (n - m) / (2 m r0) = 6 * (-6) / 12
+    (0.5, -3.0)
+    """
+    r0, n, m = _check_switch_parameters(r0, n, m)
+    try:
+        r = np.array(r, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"r must be a numeric array of distances in nm; could not convert it ({exc})") from None
+    if not np.all(np.isfinite(r) & (r >= 0)):
+        bad = float(r[~(np.isfinite(r) & (r >= 0))].ravel()[0])
+        raise InputError(f"r must hold finite distances >= 0 in nm; got {bad!r}")
+    with np.errstate(over="ignore"):
+        x = r / r0  # inf for a tiny r0 is handled: s = 0, ds/dr = 0
+    eps = x - 1.0
+    near = np.abs(eps) * max(m, 1.0) < _SERIES_RANGE
+    below = (x < 1.0) & ~near
+    above = (x > 1.0) & ~near
+    s = np.empty_like(x)
+    ds_dlog = np.empty_like(x)  # ds / d log(x), for the direct branches
+    with np.errstate(divide="ignore"):
+        log_x = np.log(np.where(near, 1.0, x))  # -inf at x = 0, handled by expm1
+    if np.any(below):
+        g, dg = _switch_below(log_x[below], n, m)
+        s[below], ds_dlog[below] = g, dg
+    if np.any(above):
+        lx = log_x[above]
+        g, dg = _switch_below(-lx, n, m)
+        power = np.exp((n - m) * lx)
+        s[above] = power * g
+        ds_dlog[above] = (n - m) * power * g - power * dg
+    if np.any(near):
+        q = _switch_series(n, m)
+        e = eps[near]
+        s[near] = (n / m) * np.polynomial.polynomial.polyval(e, q)
+    if not derivative:
+        return s
+    ds = np.empty_like(x)
+    direct = below | above
+    positive = direct & (r > 0)
+    ds[positive] = ds_dlog[positive] / r[positive]
+    at_zero = r == 0
+    ds[at_zero] = 0.0 if n > 1 else (-1.0 / r0 if n == 1 else -np.inf)
+    if np.any(near):
+        dq = [j * q[j] for j in range(1, len(q))]
+        ds[near] = (n / m) * np.polynomial.polynomial.polyval(e, dq) / r0
+    return s, ds
+
+
+def coordination_pairs(group_a, group_b):
+    """The atom pairs a coordination number of two groups counts.
+
+    Parameters
+    ----------
+    group_a, group_b : array-like of int, shape (n_a,) and (n_b,)
+        0-based atom indices, each group without repeats.
+
+    Returns
+    -------
+    ndarray of shape (n_pairs, 2), int64
+        Every pair (i, j) with i in `group_a`, j in `group_b` and i != j,
+        each unordered pair once when the groups overlap (the first
+        occurrence in the order i over `group_a`, then j over `group_b`,
+        is kept), in that order.
+
+    Examples
+    --------
+    >>> coordination_pairs([0, 1], [1, 2]).tolist()
+    [[0, 1], [0, 2], [1, 2]]
+    """
+    ga = np.asarray(group_a, dtype=np.int64).ravel()
+    gb = np.asarray(group_b, dtype=np.int64).ravel()
+    return _coordination_positions(ga, gb)[1]
+
+
+def _coordination_positions(ga, gb):
+    """(positions (n_pairs, 2) into concatenate([ga, gb]), atom pairs (n_pairs, 2))."""
+    pos_a, pos_b = np.meshgrid(np.arange(len(ga)), np.arange(len(gb)), indexing="ij")
+    pos_a, pos_b = pos_a.ravel(), pos_b.ravel()
+    atoms_i, atoms_j = ga[pos_a], gb[pos_b]
+    keep = atoms_i != atoms_j
+    pos_a, pos_b, atoms_i, atoms_j = pos_a[keep], pos_b[keep], atoms_i[keep], atoms_j[keep]
+    if np.intersect1d(ga, gb).size:
+        keys = np.stack([np.minimum(atoms_i, atoms_j), np.maximum(atoms_i, atoms_j)], axis=1)
+        _, first = np.unique(keys, axis=0, return_index=True)
+        first = np.sort(first)
+        pos_a, pos_b, atoms_i, atoms_j = pos_a[first], pos_b[first], atoms_i[first], atoms_j[first]
+    positions = np.stack([pos_a, pos_b + len(ga)], axis=1)
+    return positions, np.stack([atoms_i, atoms_j], axis=1)
+
+
+# Frames per chunk of a coordination number are chosen so that one chunk
+# holds at most this many pair distances (bounds memory for large groups).
+_PAIRS_PER_CHUNK = 1_000_000
+
+
+def coordination(xyz, group_a, group_b, r0, box=None, *, n=6, m=12, gradient=False):
+    """Coordination number of two atom groups: a sum of switching functions of pair distances.
+
+    ``C = sum over pairs (i, j) of s(r_ij)``, ``s(r) = (1 - (r/r0)^n) / (1 - (r/r0)^m)``
+    (the rational switching function, :func:`switching_function`), over the
+    pairs of :func:`coordination_pairs`: i in `group_a`, j in `group_b`,
+    i != j, each unordered pair once.
+
+    Parameters
+    ----------
+    xyz : array-like of shape (n_frames, n_atoms, 3)
+        Coordinates in nm.
+    group_a, group_b : array-like of int, shape (n_a,) and (n_b,)
+        0-based atom indices of the two groups; each non-empty, without
+        repeats. They may overlap, but must give at least one pair.
+    r0 : float
+        Switching distance in nm, > 0; a pair at r0 counts n/m.
+    box : array-like or None, default=None
+        Periodic box in nm; pair distances use the minimum image (see
+        :func:`minimum_image`).
+    n, m : float, default=6, 12
+        Exponents, ``0 < n < m <= 1000``.
+    gradient : bool, default=False
+        Also return the analytic gradient.
+
+    Returns
+    -------
+    values : ndarray of shape (n_frames,), float64
+        The coordination number (dimensionless).
+    gradient : ndarray of shape (n_frames, n_a + n_b, 3), float64
+        Only with ``gradient=True``: row k is the derivative (1/nm) with
+        respect to the position of atom ``concatenate([group_a,
+        group_b])[k]``. For a pair counted once although both atoms are in
+        both groups, the derivative goes to the rows of the occurrence
+        kept; an atom in both groups has two rows, and its derivative is
+        their sum.
+
+    Warns
+    -----
+    GeometryWarning
+        With ``gradient=True``, when the two atoms of a pair coincide
+        (closer than 1e-9 nm): the pair counts s(0) = 1 and its gradient,
+        whose direction is undefined, is set to 0.
+
+    Raises
+    ------
+    InputError
+        Empty groups or groups without a pair, repeated or out-of-range
+        indices, bad r0, n or m, non-finite coordinates, or a bad box.
+
+    Notes
+    -----
+    Cost O(n_frames n_a n_b); frames are processed in chunks so that memory
+    stays near 1e6 pair distances.
+
+    Examples
+    --------
+    One pair at r0 (counts n/m = 1/2) and one far away:
+
+    >>> xyz = np.array([[[0.0, 0, 0], [0.3, 0, 0], [9.0, 0, 0]]])
+    >>> coordination(xyz, [0], [1, 2], r0=0.3).round(6)
+    array([0.5])
+    >>> value, grad = coordination(xyz, [0], [1, 2], r0=0.3, gradient=True)
+    >>> grad[0, :, 0].round(6) + 0.0  # atom 1: n (n - m) / (2 m r0) = -5 per nm
+    array([ 5., -5.,  0.])
+    """
+    r0, n, m = _check_switch_parameters(r0, n, m)
+    xyz = _check_xyz(xyz)
+    n_frames, n_atoms, _ = xyz.shape
+    ga = _check_group(group_a, n_atoms, "group_a")
+    gb = _check_group(group_b, n_atoms, "group_b")
+    kind, parsed = _parse_box(box, n_frames)
+    _group_points(xyz, (ga, gb), ("group_a", "group_b"))
+    positions, atom_pairs = _coordination_positions(ga, gb)
+    if len(atom_pairs) == 0:
+        raise InputError(
+            f"group_a {ga.tolist()} and group_b {gb.tolist()} give no pair of distinct atoms; "
+            "a coordination number needs at least one pair"
+        )
+    value = np.empty(n_frames)
+    grad = np.zeros((n_frames, len(ga) + len(gb), 3)) if gradient else None
+    coincident = np.zeros((n_frames, len(atom_pairs)), dtype=bool) if gradient else None
+    step = max(1, _PAIRS_PER_CHUNK // len(atom_pairs))
+    for start in range(0, n_frames, step):
+        frames = slice(start, min(start + step, n_frames))
+        box_part = parsed if (parsed is None or parsed.shape[0] == 1) else parsed[frames]
+        dr = xyz[frames][:, atom_pairs[:, 1], :] - xyz[frames][:, atom_pairs[:, 0], :]
+        dr = _apply_minimum_image(dr, kind, box_part)
+        r = _norm(dr)
+        if not gradient:
+            value[frames] = switching_function(r, r0, n, m).sum(axis=1)
+            continue
+        s, ds = switching_function(r, r0, n, m, derivative=True)
+        value[frames] = s.sum(axis=1)
+        tiny = r < _TINY_LENGTH
+        coincident[frames] = tiny
+        factor = np.where(tiny, 0.0, ds / np.where(tiny, 1.0, r))
+        pair_grad = factor[..., None] * dr  # d s / d x_j; d s / d x_i is its negative
+        part = grad[frames]
+        np.add.at(part, (slice(None), positions[:, 1]), pair_grad)
+        np.add.at(part, (slice(None), positions[:, 0]), -pair_grad)
+        grad[frames] = part
+    if not gradient:
+        return value
+    if np.any(coincident):
+        _warn_gradient(coincident, "coordination", "two atoms of a pair coincide",
+                       lambda row: f"pair of atoms {atom_pairs[row].tolist()}")
+    return value, grad

@@ -6,12 +6,16 @@ topology, and defines
 
     CV = offset + sum over terms of weight * (transform(d) - center) / scale
 
-with descriptor values ``d`` in nm (distances) or rad (angles, dihedrals) and
-transforms identity, cos or sin (cos and sin for dihedrals only). Nothing in a
-spec is executed: loading validates the document against the JSON Schema
-shipped in ``cvdesign/schema/spec-v1.json``, then checks cross-references,
-and, when a topology is given, that the topology is the one the spec was made
-for.
+with descriptor values ``d`` in nm (distance, center_distance), rad (angle,
+dihedral) or dimensionless (coordination), and transforms identity, cos or
+sin (cos and sin for dihedrals only). Everything the evaluator needs is in
+the file (atom indices, masses, switching parameters): :meth:`Spec.evaluate`
+gives values and analytic gradients from coordinates alone, without the
+topology. Nothing in a spec is executed: loading validates the document
+against the JSON Schema shipped in ``cvdesign/schema/spec-v1.json``, then
+checks cross-references, and, when a topology is given, that the topology is
+the one the spec was made for. Every field is described, with its unit, in
+``docs/spec-v1.md``.
 
 A written spec is ``json.dumps(doc, indent=2, sort_keys=True,
 allow_nan=False)`` plus a newline: the same spec always gives the same bytes.
@@ -50,12 +54,31 @@ SPEC_FORMAT = "cvdesign-spec"
 SPEC_VERSION = 1
 UNITS = {"length": "nm", "angle": "rad", "time": "ps", "energy": "kJ/mol"}
 
+#: The period of a dihedral, rad.
+TWO_PI = 2.0 * math.pi
+
+# Kinds on index tuples (atoms) and kinds on two groups of atoms (groups).
 _ATOMS_PER_KIND = {"distance": 2, "angle": 3, "dihedral": 4}
+_GROUP_KINDS = ("center_distance", "coordination")
 _TRANSFORMS_PER_KIND = {
     "distance": ("identity",),
     "angle": ("identity",),
     "dihedral": ("identity", "cos", "sin"),
+    "center_distance": ("identity",),
+    "coordination": ("identity",),
 }
+# The keys each kind takes besides id, kind, label, atom_identities, periodic.
+_KIND_KEYS = {
+    "distance": ("atoms",),
+    "angle": ("atoms",),
+    "dihedral": ("atoms",),
+    "center_distance": ("groups", "weighting", "masses"),
+    "coordination": ("groups", "r0", "n", "m"),
+}
+# Relative tolerance of the check period == 2 pi |weight| / scale.
+_PERIOD_RTOL = 1e-9
+# Integers in a spec must fit in 64 bits (many JSON readers hold no more).
+_MAX_INT = 2**63 - 1
 _FINGERPRINT_HEADER = "cvdesign topology fingerprint, version 1\n"
 
 
@@ -255,6 +278,11 @@ def _parse_json(text):
     return json.loads(text, parse_constant=_NonFinite, object_pairs_hook=_object_pairs)
 
 
+def _short_int(value):
+    text = str(value) if value.bit_length() < 200 else f"{str(value)[:20]}... ({len(str(abs(value)))} digits)"
+    return text
+
+
 def _plain(value, parts=()):
     """Deep copy of `value` as plain JSON types, with errors naming the JSON path.
 
@@ -285,6 +313,12 @@ def _plain(value, parts=()):
         return [_plain(item, parts + (k,)) for k, item in enumerate(value)]
     if isinstance(value, np.generic):
         value = value.item()
+    if isinstance(value, int) and not isinstance(value, bool) and abs(value) > _MAX_INT:
+        raise SpecError(
+            f"the integer {_short_int(value)} is too large for a spec (at most 2**63 - 1 in size); "
+            "write a smaller number",
+            _json_path(parts),
+        )
     if value is None or isinstance(value, (str, bool, int)):
         return value
     if isinstance(value, float):
@@ -345,11 +379,43 @@ def _short(value):
     return text if len(text) <= 60 else text[:57] + "..."
 
 
-def _schema_message(error):
+def _lookup(doc, parts):
+    """The element of `doc` at the path `parts`, or None."""
+    target = doc
+    for part in parts:
+        try:
+            target = target[part]
+        except (KeyError, IndexError, TypeError):
+            return None
+    return target
+
+
+def _absent_message(doc, error):
+    """Message for a key the object's kind does not use (the schema's ``absent``)."""
+    parts = list(error.absolute_path)
+    key = parts[-1] if parts else "?"
+    parent = _lookup(doc, parts[:-1])
+    if key == "period" and len(parts) == 1:
+        return "only a periodic CV (periodic: true) has a period; remove it or set periodic to true"
+    if isinstance(parent, dict) and parent.get("kind") in _KIND_KEYS:
+        kind = parent["kind"]
+        if key == "masses" and kind == "center_distance":
+            return ("masses are used only with weighting 'mass'; remove them or set weighting to 'mass'")
+        takes = ", ".join(_KIND_KEYS[kind])
+        return f"key {key!r} is not used by {_a(kind)} descriptor (a {kind} takes: {takes})"
+    return f"key {key!r} is not allowed here"
+
+
+def _schema_message(error, doc=None):
     """A readable message for one jsonschema error."""
     v, inst = error.validator, error.instance
+    if v == "not" and error.validator_value == {}:
+        return _absent_message(doc, error)
     if v == "required":
         missing = [k for k in error.validator_value if k not in inst]
+        if missing == ["period"]:
+            return ("missing key 'period': a periodic CV gives its period in its own units, "
+                    "2 pi |weight| / scale (6.283185307179586 for weight 1, scale 1)")
         return f"missing key {missing[0]!r}" if missing else error.message
     if v == "additionalProperties":
         allowed = sorted(error.schema.get("properties", {}))
@@ -369,6 +435,8 @@ def _schema_message(error):
         return f"must be greater than {error.validator_value}; got {_short(inst)}"
     if v == "minimum":
         return f"must be at least {error.validator_value}; got {_short(inst)}"
+    if v == "maximum":
+        return f"must be at most {error.validator_value}; got {_short(inst)}"
     if v == "minItems":
         return f"needs at least {error.validator_value} items; has {len(inst)}"
     if v == "maxItems":
@@ -394,7 +462,7 @@ def _schema_check(doc):
         first = min(_path_key(e) for e in errors)
         error = jsonschema.exceptions.best_match(e for e in errors if _path_key(e) == first)
         raise SpecError(
-            _schema_message(error) + " (spec version 1 schema: cvdesign/schema/spec-v1.json)",
+            _schema_message(error, doc) + " (spec version 1 schema: cvdesign/schema/spec-v1.json)",
             _json_path(error.absolute_path),
         )
 
@@ -403,12 +471,80 @@ def _a(kind):
     return f"an {kind}" if kind[0] in "aeiou" else f"a {kind}"
 
 
+def _check_index(atom, n_atoms, path):
+    if atom >= n_atoms:
+        raise SpecError(
+            f"atom index {atom} is out of range for a topology of {n_atoms} atoms "
+            f"(0-based indices 0..{n_atoms - 1})",
+            path,
+        )
+
+
+def _check_tuple_descriptor(desc, here, n_atoms):
+    kind, atoms = desc["kind"], desc["atoms"]
+    need = _ATOMS_PER_KIND[kind]
+    if len(atoms) != need:
+        raise SpecError(f"{_a(kind)} takes {need} atoms; got {len(atoms)}: {atoms}", f"{here}.atoms")
+    for j, a in enumerate(atoms):
+        _check_index(a, n_atoms, f"{here}.atoms[{j}]")
+    if len(set(atoms)) != len(atoms):
+        raise SpecError(f"the atoms of one descriptor must be distinct; got {atoms}", f"{here}.atoms")
+    if len(desc["atom_identities"]) != len(atoms):
+        raise SpecError(
+            f"has {len(desc['atom_identities'])} atom identities for {len(atoms)} atoms; "
+            "give one identity per atom, in the order of atoms",
+            f"{here}.atom_identities",
+        )
+
+
+def _check_group_descriptor(desc, here, n_atoms):
+    kind, groups = desc["kind"], desc["groups"]
+    for g, group in enumerate(groups):
+        first = {}
+        for j, a in enumerate(group):
+            _check_index(a, n_atoms, f"{here}.groups[{g}][{j}]")
+            if a in first:
+                raise SpecError(
+                    f"atom {a} appears twice in this group (at [{first[a]}] and [{j}]); list each atom once",
+                    f"{here}.groups[{g}][{j}]",
+                )
+            first[a] = j
+    for g, (group, identities) in enumerate(zip(groups, desc["atom_identities"])):
+        if len(identities) != len(group):
+            raise SpecError(
+                f"has {len(identities)} atom identities for the {len(group)} atoms of groups[{g}]; "
+                "give one identity per atom, in the order of the group",
+                f"{here}.atom_identities[{g}]",
+            )
+    if kind == "center_distance" and desc["weighting"] == "mass":
+        for g, (group, masses) in enumerate(zip(groups, desc["masses"])):
+            if len(masses) != len(group):
+                raise SpecError(
+                    f"has {len(masses)} masses for the {len(group)} atoms of groups[{g}]; "
+                    "give one mass (dalton) per atom, in the order of the group",
+                    f"{here}.masses[{g}]",
+                )
+    if kind == "coordination":
+        if not desc["m"] > desc["n"]:
+            raise SpecError(
+                f"must be greater than n ({_short(desc['n'])}); got {_short(desc['m'])}: the rational "
+                "switching function needs 0 < n < m (e.g. n = 6, m = 12)",
+                f"{here}.m",
+            )
+        if len(groups[0]) == 1 and groups[0] == groups[1]:
+            raise SpecError(
+                f"both groups are the single atom {groups[0][0]}, which gives no pair of distinct "
+                "atoms to count; a coordination number needs at least one pair",
+                f"{here}.groups",
+            )
+
+
 def _semantic_check(doc):
     n_atoms = doc["topology"]["n_atoms"]
     kinds, first_at = {}, {}
     for k, desc in enumerate(doc["descriptors"]):
         here = f"$.descriptors[{k}]"
-        did, kind, atoms = desc["id"], desc["kind"], desc["atoms"]
+        did, kind = desc["id"], desc["kind"]
         if did in first_at:
             raise SpecError(
                 f"descriptor id {did!r} is used twice (first at {first_at[did]}); ids must be unique",
@@ -416,24 +552,10 @@ def _semantic_check(doc):
             )
         first_at[did] = here
         kinds[did] = kind
-        need = _ATOMS_PER_KIND[kind]
-        if len(atoms) != need:
-            raise SpecError(f"{_a(kind)} takes {need} atoms; got {len(atoms)}: {atoms}", f"{here}.atoms")
-        for j, a in enumerate(atoms):
-            if a >= n_atoms:
-                raise SpecError(
-                    f"atom index {a} is out of range for a topology of {n_atoms} atoms "
-                    f"(0-based indices 0..{n_atoms - 1})",
-                    f"{here}.atoms[{j}]",
-                )
-        if len(set(atoms)) != len(atoms):
-            raise SpecError(f"the atoms of one descriptor must be distinct; got {atoms}", f"{here}.atoms")
-        if len(desc["atom_identities"]) != len(atoms):
-            raise SpecError(
-                f"has {len(desc['atom_identities'])} atom identities for {len(atoms)} atoms; "
-                "give one identity per atom, in the order of atoms",
-                f"{here}.atom_identities",
-            )
+        if kind in _ATOMS_PER_KIND:
+            _check_tuple_descriptor(desc, here, n_atoms)
+        else:
+            _check_group_descriptor(desc, here, n_atoms)
         if desc["periodic"] != (kind == "dihedral"):
             raise SpecError(
                 f"periodic must be {str(kind == 'dihedral').lower()} for {_a(kind)} "
@@ -474,6 +596,21 @@ def _semantic_check(doc):
                 "transform; set periodic to false for other CVs",
                 "$.periodic",
             )
+        weight, scale, period = terms[0]["weight"], terms[0]["scale"], doc["period"]
+        expected = TWO_PI * abs(weight) / scale
+        if not (math.isfinite(expected) and expected > 0):
+            raise SpecError(
+                f"the term of a periodic CV needs a weight with 0 < 2 pi |weight| / scale < infinity; "
+                f"got weight {weight!r}, scale {scale!r}",
+                "$.terms[0].weight",
+            )
+        if not abs(period - expected) <= _PERIOD_RTOL * expected:
+            raise SpecError(
+                f"must be 2 pi |weight| / scale = {expected!r} for this CV (weight {weight!r}, "
+                f"scale {scale!r} of its dihedral term), the period of the CV in its own units; "
+                f"got {period!r}",
+                "$.period",
+            )
 
 
 def _normalize(doc):
@@ -481,11 +618,23 @@ def _normalize(doc):
     doc["version"] = int(doc["version"])
     doc["topology"]["n_atoms"] = int(doc["topology"]["n_atoms"])
     doc["offset"] = float(doc["offset"])
+    if "period" in doc:
+        doc["period"] = float(doc["period"])
     for desc in doc["descriptors"]:
-        desc["atoms"] = [int(a) for a in desc["atoms"]]
-        for ident in desc["atom_identities"]:
+        if "atoms" in desc:
+            desc["atoms"] = [int(a) for a in desc["atoms"]]
+            identities = desc["atom_identities"]
+        else:
+            desc["groups"] = [[int(a) for a in group] for group in desc["groups"]]
+            identities = [ident for group in desc["atom_identities"] for ident in group]
+        for ident in identities:
             ident["chain"] = int(ident["chain"])
             ident["resid"] = int(ident["resid"])
+        if "masses" in desc:
+            desc["masses"] = [[float(v) for v in group] for group in desc["masses"]]
+        for key in ("r0", "n", "m"):
+            if key in desc:
+                desc[key] = float(desc[key])
     for term in doc["terms"]:
         for key in ("center", "scale", "weight"):
             term[key] = float(term[key])
@@ -494,6 +643,17 @@ def _normalize(doc):
         state["std"] = float(state["std"])
         state["n_frames"] = int(state["n_frames"])
     return doc
+
+
+def _atoms_and_identities(desc):
+    """(atom index, stored identity, JSON path suffix) for every atom of a descriptor."""
+    if "atoms" in desc:
+        for j, (atom, ident) in enumerate(zip(desc["atoms"], desc["atom_identities"])):
+            yield atom, ident, f".atom_identities[{j}]"
+    else:
+        for g, (group, identities) in enumerate(zip(desc["groups"], desc["atom_identities"])):
+            for j, (atom, ident) in enumerate(zip(group, identities)):
+                yield atom, ident, f".atom_identities[{g}][{j}]"
 
 
 def _validated(document):
@@ -528,6 +688,62 @@ def _cvdesign_version():
     return str(getattr(cvdesign, "__version__", "unknown"))
 
 
+def _valid_index_list(value, n_atoms):
+    """Whether `value` is a flat list of valid atom indices (for filling in defaults)."""
+    return (isinstance(value, (list, tuple, np.ndarray)) and len(value) > 0
+            and all(isinstance(a, (int, np.integer)) and not isinstance(a, (bool, np.bool_))
+                    and 0 <= int(a) < n_atoms for a in value))
+
+
+def _filled_descriptor(desc, mdtop, here):
+    """A descriptor dict with the defaults of the Spec constructor filled in."""
+    desc.setdefault("label", desc.get("id", ""))
+    desc.setdefault("periodic", desc.get("kind") == "dihedral")
+    kind = desc.get("kind")
+    if kind == "coordination":
+        desc.setdefault("n", 6)
+        desc.setdefault("m", 12)
+    if mdtop is None:
+        return desc
+    if kind in _ATOMS_PER_KIND:
+        atoms = desc.get("atoms", [])
+        if "atom_identities" not in desc and _valid_index_list(atoms, mdtop.n_atoms):
+            desc["atom_identities"] = [_identity_of(mdtop.atom(int(a))) for a in atoms]
+        return desc
+    groups = desc.get("groups")
+    if not (isinstance(groups, (list, tuple)) and len(groups) == 2
+            and all(_valid_index_list(g, mdtop.n_atoms) for g in groups)):
+        return desc
+    if "atom_identities" not in desc:
+        desc["atom_identities"] = [[_identity_of(mdtop.atom(int(a))) for a in g] for g in groups]
+    if kind == "center_distance" and desc.get("weighting") == "mass" and "masses" not in desc:
+        masses = []
+        for g, group in enumerate(groups):
+            masses.append([])
+            for j, a in enumerate(group):
+                element = mdtop.atom(int(a)).element
+                mass = None if element is None else element.mass
+                if mass is None or not mass > 0:
+                    raise SpecError(
+                        f"atom {int(a)} ({_describe(_identity_of(mdtop.atom(int(a))))}) has no element "
+                        "mass in the topology; give masses (dalton) or use weighting 'geometric'",
+                        f"{here}.groups[{g}][{j}]",
+                    )
+                masses[-1].append(float(mass))
+        desc["masses"] = masses
+    return desc
+
+
+def _default_period(terms):
+    """2 pi |weight| / scale of the single term of a periodic CV, or None if not computable."""
+    try:
+        (term,) = terms
+        period = TWO_PI * abs(float(term["weight"])) / float(term["scale"])
+    except (TypeError, ValueError, KeyError, ZeroDivisionError, OverflowError):
+        return None
+    return period if math.isfinite(period) else None
+
+
 # --------------------------------------------------------------------------
 # the spec
 
@@ -536,8 +752,9 @@ class Spec:
     """One collective variable: descriptors, a linear combination, and where it came from.
 
     ``CV = offset + sum_t weight_t * (transform_t(d_t) - center_t) / scale_t``
-    with descriptor values ``d`` in nm (distances) or rad (angles in [0, pi],
-    dihedrals in (-pi, pi], IUPAC sign).
+    with descriptor values ``d`` in nm (distances, distances between group
+    centers), rad (angles in [0, pi], dihedrals in (-pi, pi], IUPAC sign) or
+    dimensionless (coordination numbers).
 
     Parameters
     ----------
@@ -548,12 +765,25 @@ class Spec:
         "fingerprint": "sha256:..."}``. With an mdtraj topology the record
         and any missing ``atom_identities`` of the descriptors are computed.
     descriptors : list of dict
-        Each ``{"id": str, "kind": "distance"|"angle"|"dihedral", "atoms":
-        [int, ...], "label": str, "atom_identities": [dict, ...],
-        "periodic": bool}`` with 0-based atoms (2, 3 or 4). ``label``
-        defaults to the id, ``periodic`` to ``kind == "dihedral"``;
-        ``atom_identities`` (see :func:`atom_identity`) may be left out when
-        `topology` is an mdtraj topology.
+        Each ``{"id": str, "kind": str, "label": str, "atom_identities":
+        list, "periodic": bool}`` plus the keys of its kind (all atom
+        indices 0-based; see ``docs/spec-v1.md``):
+
+        - ``"distance"``, ``"angle"``, ``"dihedral"``: ``"atoms": [int,
+          ...]`` (2, 3 or 4 atoms);
+        - ``"center_distance"``: ``"groups": [[int, ...], [int, ...]]``,
+          ``"weighting": "mass"|"geometric"`` and, for ``"mass"``,
+          ``"masses": [[float, ...], [float, ...]]`` in dalton;
+        - ``"coordination"``: ``"groups"``, ``"r0"`` (nm, > 0), ``"n"``,
+          ``"m"`` (0 < n < m <= 1000; default 6 and 12).
+
+        ``label`` defaults to the id, ``periodic`` to ``kind ==
+        "dihedral"``. When `topology` is an mdtraj topology,
+        ``atom_identities`` (see :func:`atom_identity`; for group kinds two
+        lists parallel to ``groups``) and, for mass weighting, ``masses``
+        (the element masses of mdtraj's element table) may be left out:
+        they are taken from it and stored, so the evaluator never needs the
+        topology.
     terms : list of dict
         Each ``{"descriptor": id, "transform": "identity"|"cos"|"sin",
         "center": float, "scale": float > 0, "weight": float}``; cos and sin
@@ -564,6 +794,10 @@ class Spec:
     periodic : bool, default=False
         True for a CV that is one dihedral with the identity transform; it is
         then periodic with period ``2 pi |weight| / scale``.
+    period : float or None, default=None
+        The period of a periodic CV in its units; None computes
+        ``2 pi |weight| / scale`` (6.283185307179586 for weight 1 and scale
+        1). Must be None when `periodic` is False.
     states : dict, optional
         ``{state name: {"mean": float, "std": float, "n_frames": int}}``, the
         CV's distribution per state in the input data.
@@ -617,6 +851,7 @@ class Spec:
         terms,
         offset=0.0,
         periodic=False,
+        period=None,
         states=None,
         scores=None,
         provenance=None,
@@ -633,16 +868,9 @@ class Spec:
         for k, desc in enumerate(descriptors):
             if not isinstance(desc, dict):
                 raise SpecError(f"a descriptor is a dict; got {type(desc).__name__}", f"$.descriptors[{k}]")
-            desc = dict(desc)
-            desc.setdefault("label", desc.get("id", ""))
-            desc.setdefault("periodic", desc.get("kind") == "dihedral")
-            if "atom_identities" not in desc and mdtop is not None:
-                atoms = np.asarray(desc.get("atoms", []))
-                if atoms.ndim == 1 and np.issubdtype(atoms.dtype, np.integer) and np.all(
-                    (atoms >= 0) & (atoms < mdtop.n_atoms)
-                ):
-                    desc["atom_identities"] = [_identity_of(mdtop.atom(int(a))) for a in atoms]
-            filled.append(desc)
+            filled.append(_filled_descriptor(dict(desc), mdtop, f"$.descriptors[{k}]"))
+        if periodic is True and period is None:
+            period = _default_period(terms)
         prov = {} if provenance is None else dict(provenance)
         prov.setdefault("cvdesign_version", _cvdesign_version())
         prov.setdefault("method", "")
@@ -665,17 +893,19 @@ class Spec:
         }
         if hints is not None:
             doc["hints"] = hints
+        if period is not None:
+            doc["period"] = period
         self._doc = _validated(doc)
         if mdtop is not None:
             for k, desc in enumerate(self._doc["descriptors"]):
-                for j, (atom, given) in enumerate(zip(desc["atoms"], desc["atom_identities"])):
+                for atom, given, where in _atoms_and_identities(desc):
                     actual = _identity_of(mdtop.atom(atom))
                     if given != actual:
                         raise SpecError(
                             f"the identity given for atom {atom} ({_describe(given)}) does not match "
                             f"the topology ({_describe(actual)}); leave atom_identities out to have "
                             "them taken from the topology",
-                            f"$.descriptors[{k}].atom_identities[{j}]",
+                            f"$.descriptors[{k}]{where}",
                         )
 
     # -- construction and serialization ---------------------------------
@@ -847,6 +1077,11 @@ class Spec:
         return self._doc["periodic"]
 
     @property
+    def period(self):
+        """float or None : the period of a periodic CV in its units, None for others."""
+        return self._doc.get("period")
+
+    @property
     def states(self):
         """dict : per-state ``{"mean", "std", "n_frames"}`` of the CV (a copy)."""
         return copy.deepcopy(self._doc["states"])
@@ -900,6 +1135,47 @@ class Spec:
             )
         return arr
 
+    def _descriptor_blocks(self, arr, box, gradient):
+        """Descriptor values (n_frames, n_descriptors) and, with `gradient`, their gradients.
+
+        The gradients come as a list of blocks ``(columns, atoms, grad)``:
+        for the tuple kinds one block per kind with ``atoms`` of shape
+        (n, width) and ``grad`` (n_frames, n, width, 3); for the group kinds
+        one block per descriptor with ``atoms`` (n_a + n_b,) and ``grad``
+        (n_frames, n_a + n_b, 3).
+        """
+        descs = self._doc["descriptors"]
+        values = np.empty((arr.shape[0], len(descs)), dtype=np.float64)
+        blocks = []
+        functions = {"distance": geometry.distances, "angle": geometry.angles, "dihedral": geometry.dihedrals}
+        for kind, function in functions.items():
+            cols = [k for k, d in enumerate(descs) if d["kind"] == kind]
+            if not cols:
+                continue
+            atoms = np.array([descs[k]["atoms"] for k in cols], dtype=np.int64)
+            if gradient:
+                values[:, cols], grad = function(arr, atoms, box=box, gradient=True)
+                blocks.append((cols, atoms, grad))
+            else:
+                values[:, cols] = function(arr, atoms, box=box)
+        for k, desc in enumerate(descs):
+            if desc["kind"] not in _GROUP_KINDS:
+                continue
+            group_a, group_b = desc["groups"]
+            if desc["kind"] == "center_distance":
+                masses_a, masses_b = desc["masses"] if desc["weighting"] == "mass" else (None, None)
+                out = geometry.center_distance(arr, group_a, group_b, box=box, masses_a=masses_a,
+                                               masses_b=masses_b, gradient=gradient)
+            else:
+                out = geometry.coordination(arr, group_a, group_b, desc["r0"], box=box, n=desc["n"],
+                                            m=desc["m"], gradient=gradient)
+            if gradient:
+                values[:, k], grad = out
+                blocks.append(([k], np.array(group_a + group_b, dtype=np.int64)[None, :], grad[:, None]))
+            else:
+                values[:, k] = out
+        return values, blocks
+
     def descriptor_values(self, xyz, box=None):
         """Values of every descriptor of the spec, frame by frame.
 
@@ -915,8 +1191,9 @@ class Spec:
         Returns
         -------
         ndarray of shape (n_frames, n_descriptors), float64
-            Columns in the order of :attr:`descriptors`: distances in nm,
-            angles in rad in [0, pi], dihedrals in rad in (-pi, pi].
+            Columns in the order of :attr:`descriptors`: distances and
+            center distances in nm, angles in rad in [0, pi], dihedrals in
+            rad in (-pi, pi], coordination numbers (dimensionless).
 
         Raises
         ------
@@ -931,18 +1208,10 @@ class Spec:
                [0.4]])
         """
         arr = self._check_xyz(xyz)
-        descs = self._doc["descriptors"]
-        out = np.empty((arr.shape[0], len(descs)), dtype=np.float64)
-        functions = {"distance": geometry.distances, "angle": geometry.angles, "dihedral": geometry.dihedrals}
-        for kind, function in functions.items():
-            cols = [k for k, d in enumerate(descs) if d["kind"] == kind]
-            if cols:
-                atoms = np.array([descs[k]["atoms"] for k in cols], dtype=np.int64)
-                out[:, cols] = function(arr, atoms, box=box)
-        return out
+        return self._descriptor_blocks(arr, box, gradient=False)[0]
 
-    def evaluate(self, xyz, box=None):
-        """The CV value of every frame, from coordinates alone.
+    def evaluate(self, xyz, box=None, gradient=False):
+        """The CV value of every frame, and optionally its gradient, from coordinates alone.
 
         Parameters
         ----------
@@ -951,12 +1220,29 @@ class Spec:
         box : array-like or None, default=None
             Periodic box in nm (see :meth:`descriptor_values`); None means
             no periodicity.
+        gradient : bool, default=False
+            Also return the analytic gradient of the CV.
 
         Returns
         -------
-        ndarray of shape (n_frames,), float64
+        values : ndarray of shape (n_frames,), float64
             ``offset + sum_t weight_t * (transform_t(d_t) - center_t) / scale_t``,
-            in the CV's units (those of ``offset``).
+            in the CV's units (those of ``offset``). A periodic CV is not
+            wrapped: its values lie in an interval of length :attr:`period`.
+        gradient : ndarray of shape (n_frames, n_atoms, 3), float64
+            Only with ``gradient=True``: the derivative of the CV with
+            respect to every atom position, in CV units per nm (zero for atoms
+            the CV does not use). With a box it is the gradient with respect
+            to the minimum images the descriptors use, which is what an engine
+            applies. Analytic (see :mod:`cvdesign.geometry`), chained through
+            the transforms: ``d cos(d) = -sin(d) dd``, ``d sin(d) = cos(d) dd``.
+
+        Warns
+        -----
+        GeometryWarning
+            Where a descriptor or its gradient is undefined (coincident atoms,
+            collinear angle or dihedral atoms; see :mod:`cvdesign.geometry`):
+            the value is finite and that descriptor's gradient is 0.
 
         Raises
         ------
@@ -969,18 +1255,36 @@ class Spec:
         >>> xyz = np.array([[[0.0, 0, 0], [0.1, 0, 0], [0.4, 0, 0]]])
         >>> spec.evaluate(xyz).round(6)  # 2.0 * (0.4 - 0.3) / 0.1
         array([2.])
+        >>> value, grad = spec.evaluate(xyz, gradient=True)
+        >>> grad[0, :, 0].round(6) + 0.0  # weight / scale = 20 per nm along the distance
+        array([-20.,   0.,  20.])
         """
-        values = self.descriptor_values(xyz, box=box)
+        arr = self._check_xyz(xyz)
+        values, blocks = self._descriptor_blocks(arr, box, gradient=bool(gradient))
         column = {d["id"]: k for k, d in enumerate(self._doc["descriptors"])}
-        cv = np.full(values.shape[0], self._doc["offset"], dtype=np.float64)
+        n_frames = values.shape[0]
+        cv = np.full(n_frames, self._doc["offset"], dtype=np.float64)
+        slope = np.zeros_like(values)  # d CV / d descriptor, per frame
         for term in self._doc["terms"]:
-            d = values[:, column[term["descriptor"]]]
+            k = column[term["descriptor"]]
+            d = values[:, k]
+            factor = term["weight"] / term["scale"]
             if term["transform"] == "cos":
-                d = np.cos(d)
+                cv += factor * (np.cos(d) - term["center"])
+                slope[:, k] -= factor * np.sin(d)
             elif term["transform"] == "sin":
-                d = np.sin(d)
-            cv += term["weight"] * (d - term["center"]) / term["scale"]
-        return cv
+                cv += factor * (np.sin(d) - term["center"])
+                slope[:, k] += factor * np.cos(d)
+            else:
+                cv += factor * (d - term["center"])
+                slope[:, k] += factor
+        if not gradient:
+            return cv
+        grad = np.zeros((n_frames, self.n_atoms, 3), dtype=np.float64)
+        for cols, atoms, block in blocks:
+            contribution = slope[:, cols, None, None] * block  # (n_frames, n, width, 3)
+            np.add.at(grad, (slice(None), atoms.ravel()), contribution.reshape(n_frames, -1, 3))
+        return cv, grad
 
     # -- topology check ---------------------------------------------------
 
@@ -1029,7 +1333,7 @@ class Spec:
                 "$.topology.n_atoms",
             )
         for k, desc in enumerate(self._doc["descriptors"]):
-            for j, (atom, expected) in enumerate(zip(desc["atoms"], desc["atom_identities"])):
+            for atom, expected, where in _atoms_and_identities(desc):
                 actual = _identity_of(topology.atom(atom))
                 if actual != expected:
                     only_element = {k for k in actual if actual[k] != expected[k]} == {"element"}
@@ -1041,7 +1345,7 @@ class Spec:
                         f"{_describe(expected)} in the spec but {_describe(actual)} in this "
                         f"topology{hint}. Use the topology the spec was made for, or make a new "
                         "spec for this one",
-                        f"$.descriptors[{k}].atom_identities[{j}]",
+                        f"$.descriptors[{k}]{where}",
                     )
         found = topology_fingerprint(topology)
         if found != self.fingerprint:

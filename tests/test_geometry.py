@@ -9,7 +9,16 @@ import numpy as np
 import pytest
 
 from cvdesign.errors import InputError
-from cvdesign.geometry import GeometryWarning, angles, dihedrals, distances, minimum_image
+from cvdesign.geometry import (
+    GeometryWarning,
+    angles,
+    center_distance,
+    coordination,
+    dihedrals,
+    distances,
+    minimum_image,
+    switching_function,
+)
 
 # --------------------------------------------------------------------------
 # helpers
@@ -601,3 +610,123 @@ def test_distances_match_mdtraj_on_a_triclinic_water_box():
     dr = xyz[0, pairs[:, 1]] - xyz[0, pairs[:, 0]]
     reference = np.linalg.norm(brute_force_minimum_image(dr, box[0]), axis=1)
     np.testing.assert_allclose(ours[0], reference, atol=1e-12)
+
+
+# --------------------------------------------------------------------------
+# gradients: shapes, and the functions beyond index tuples
+# (finite-difference checks of every gradient are in tests/test_gradients.py)
+
+
+def test_gradients_have_one_row_per_atom_of_each_tuple():
+    xyz = np.random.RandomState(16).normal(size=(3, 6, 3))
+    for function, width in ((distances, 2), (angles, 3), (dihedrals, 4)):
+        rows = distinct_tuples(np.random.RandomState(width), 6, 5, width)
+        value, grad = function(xyz, rows, gradient=True)
+        assert value.shape == (3, 5) and grad.shape == (3, 5, width, 3) and grad.dtype == np.float64
+        np.testing.assert_array_equal(value, function(xyz, rows))
+        np.testing.assert_allclose(grad.sum(axis=2), 0.0, atol=1e-10)  # no net force
+        value, grad = function(xyz, [], gradient=True)
+        assert value.shape == (3, 0) and grad.shape == (3, 0, width, 3)
+
+
+def test_angle_gradient_of_a_right_angle_by_hand():
+    # i on +x at 0.2 nm, k on +y at 0.5 nm: moving i along +y closes the angle at
+    # rate 1/0.2 per nm, moving k along +x at rate 1/0.5; j takes minus the sum
+    xyz = np.array([[[0.2, 0.0, 0.0], [0.0, 0.0, 0.0], [0.0, 0.5, 0.0]]])
+    _, grad = angles(xyz, [[0, 1, 2]], gradient=True)
+    np.testing.assert_allclose(grad[0, 0], [[0, -5.0, 0], [2.0, 5.0, 0], [-2.0, 0, 0]], atol=1e-14)
+
+
+def test_collinear_angle_gradient_warns_and_is_zero():
+    xyz = np.array([[[0.0, 0.0, 0.0], [1.0, 0.0, 0.0], [2.0, 0.0, 0.0]], [[1.0, 0.0, 0.0], [0.0, 0.0, 0.0], [0.0, 1.0, 0.0]]])
+    with pytest.warns(GeometryWarning, match=r"angles: the gradient of 1 of 2 values is undefined \(three collinear atoms, angle 0 or pi\); it was set to 0\. First: frame 0, triples\[0\] = atoms \[0, 1, 2\]"):
+        value, grad = angles(xyz, [[0, 1, 2]], gradient=True)
+    np.testing.assert_allclose(value[:, 0], [np.pi, np.pi / 2])
+    assert np.all(grad[0] == 0) and np.abs(grad[1]).max() == pytest.approx(1.0)
+
+
+def test_coincident_atoms_warn_only_for_the_gradient_of_a_distance():
+    xyz = np.zeros((1, 2, 3))
+    with pytest.warns(GeometryWarning, match=r"distances: the gradient of 1 of 1 values is undefined \(coincident atoms\)"):
+        value, grad = distances(xyz, [[0, 1]], gradient=True)
+    assert value[0, 0] == 0.0 and np.all(grad == 0.0)
+
+
+def test_center_distance_by_hand_mass_and_geometric():
+    xyz = np.array([[[0.0, 0.0, 0.0], [0.3, 0.0, 0.0], [1.0, 0.0, 0.0], [1.0, 0.4, 0.0]]])
+    np.testing.assert_allclose(center_distance(xyz, [0, 1], [2, 3]), [np.hypot(0.85, 0.2)], rtol=1e-14)
+    # masses 2:1 put center a at 0.1; masses 1:3 put center b at y = 0.3
+    value = center_distance(xyz, [0, 1], [2, 3], masses_a=[2.0, 1.0], masses_b=[1.0, 3.0])
+    np.testing.assert_allclose(value, [np.hypot(0.9, 0.3)], rtol=1e-14)
+
+
+@pytest.mark.parametrize("box", [CUBE, SKEWED], ids=["cube", "skewed"])
+def test_center_distance_of_groups_split_across_the_boundary(box):
+    # two small groups near a cell corner; wrapping scatters their atoms over the cell
+    whole = np.array([[[0.05, 0.02, 0.01], [-0.08, 0.04, -0.03], [0.02, -0.09, 0.06],
+                       [0.5, 0.1, -0.1], [0.6, -0.05, -0.08]]])
+    frac = whole @ np.linalg.inv(box)
+    wrapped = (frac - np.floor(frac)) @ box
+    assert np.abs(wrapped - whole).max() > 1.0
+    reference = center_distance(whole, [0, 1, 2], [3, 4], masses_a=[12.0, 16.0, 14.0])
+    np.testing.assert_allclose(center_distance(wrapped, [0, 1, 2], [3, 4], box, masses_a=[12.0, 16.0, 14.0]),
+                               reference, atol=1e-12)
+    # without the box the split groups give a different, wrong answer
+    assert abs(center_distance(wrapped, [0, 1, 2], [3, 4])[0] - reference[0]) > 0.1
+
+
+def test_coordination_by_hand_and_across_the_boundary():
+    # pairs at r0 (counts 1/2) and at 2 r0 (counts (1 - 2^6) / (1 - 2^12) = 63/4095)
+    xyz = np.array([[[0.1, 1.0, 1.0], [0.4, 1.0, 1.0], [0.7, 1.0, 1.0]]])
+    np.testing.assert_allclose(coordination(xyz, [0], [1, 2], r0=0.3), [0.5 + 63 / 4095], rtol=1e-14)
+    # the same pairs, atom 0 moved by a box vector
+    shifted = xyz.copy()
+    shifted[0, 0] += CUBE[0]
+    np.testing.assert_allclose(coordination(shifted, [0], [1, 2], r0=0.3, box=CUBE), [0.5 + 63 / 4095], rtol=1e-13)
+    # overlapping groups: the pairs (0,1), (0,2), (1,2), each once
+    np.testing.assert_allclose(coordination(xyz, [0, 1], [0, 1, 2], r0=0.3), [0.5 + 63 / 4095 + 0.5], rtol=1e-14)
+
+
+def test_coordination_in_frame_chunks_equals_one_pass(monkeypatch):
+    import cvdesign.geometry as geometry
+
+    rng = np.random.RandomState(17)
+    xyz = rng.uniform(0, 2, size=(7, 12, 3))
+    boxes = rng.uniform(2.0, 2.5, size=(7, 3))
+    one = coordination(xyz, range(6), range(4, 12), 0.5, boxes, gradient=True)
+    monkeypatch.setattr(geometry, "_PAIRS_PER_CHUNK", 100)  # 2 frames per chunk
+    chunked = coordination(xyz, range(6), range(4, 12), 0.5, boxes, gradient=True)
+    np.testing.assert_allclose(chunked[0], one[0], rtol=1e-15)
+    np.testing.assert_allclose(chunked[1], one[1], rtol=1e-15)
+
+
+@pytest.mark.parametrize(
+    ("call", "message"),
+    [
+        (lambda x: center_distance(x, [], [1]), r"group_a is empty; a group needs at least one atom"),
+        (lambda x: center_distance(x, [0, 9], [1]), r"group_a\[1\] = 9 is not an atom of xyz \(5 atoms, valid indices 0\.\.4\)"),
+        (lambda x: center_distance(x, [0], [1, 2, 1]), r"group_b lists atom 1 more than once"),
+        (lambda x: center_distance(x, [0], [[1, 2]]), r"group_b has shape \(1, 2\); expected a flat list"),
+        (lambda x: center_distance(x, [0], [1.0]), r"group_b must hold integer atom indices"),
+        (lambda x: center_distance(x, [0, 1], [2], masses_a=[1.0]), r"masses_a has shape \(1,\); expected \(2,\), one mass per atom of group_a"),
+        (lambda x: center_distance(x, [0, 1], [2], masses_a=[1.0, -1.0]), r"masses_a\[1\] = -1\.0; masses must be finite and > 0"),
+        (lambda x: coordination(x, [0], [0], 0.3), r"group_a \[0\] and group_b \[0\] give no pair of distinct atoms"),
+        (lambda x: coordination(x, [0], [1], 0.0), r"r0=0\.0 must be > 0 \(nm\)"),
+        (lambda x: coordination(x, [0], [1], 0.3, n=12, m=6), r"n=12\.0, m=6\.0: the switching function needs 0 < n < m <= 1000"),
+        (lambda x: coordination(x, [0], [1], 0.3, n=0), r"n=0\.0, m=12\.0: the switching function needs 0 < n < m"),
+        (lambda x: coordination(x, [0], [1], float("nan")), r"r0 must be finite; got nan"),
+        (lambda x: coordination(x, [0], [1], "far"), r"r0 must be a number; got 'far'"),
+        (lambda x: switching_function([0.1, -0.2], 0.3), r"r must hold finite distances >= 0 in nm; got -0\.2"),
+    ],
+)
+def test_group_functions_reject_bad_arguments_naming_them(call, message):
+    with pytest.raises(InputError, match=message):
+        call(np.zeros((2, 5, 3)))
+
+
+def test_group_functions_reject_non_finite_coordinates_of_group_atoms():
+    xyz = np.zeros((2, 5, 3))
+    xyz[1, 3, 2] = np.inf
+    with pytest.raises(InputError, match=r"xyz has NaN or infinite coordinates in frame 1, atom 3 \(used by group_b\[1\]\)"):
+        coordination(xyz, [0], [1, 3], 0.3)
+    assert np.isfinite(center_distance(xyz, [0], [1, 2])).all()

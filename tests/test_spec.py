@@ -3,6 +3,8 @@
 import copy
 import json
 import math
+import re
+from pathlib import Path
 
 import jsonschema
 import mdtraj as md
@@ -10,7 +12,7 @@ import numpy as np
 import pytest
 
 from cvdesign.errors import InputError, SpecError, TopologyMismatchError
-from cvdesign.spec import Spec, atom_identity, load_spec, spec_schema, topology_fingerprint
+from cvdesign.spec import Spec, atom_identity, load_spec, residue_hashes, spec_schema, topology_fingerprint
 
 # --------------------------------------------------------------------------
 # helpers
@@ -369,7 +371,8 @@ REJECTIONS = [
     (
         "unknown kind",
         _set(["descriptors", 0, "kind"], "bond"),
-        r"^\$\.descriptors\[0\]\.kind: \"bond\" is not one of 'distance', 'angle', 'dihedral'",
+        r"^\$\.descriptors\[0\]\.kind: \"bond\" is not one of 'distance', 'angle', 'dihedral', "
+        r"'center_distance', 'coordination'",
     ),
     (
         "bad atom count",
@@ -498,8 +501,28 @@ REJECTIONS = [
     ),
     (
         "periodic combination",
-        _set(["periodic"], True),
+        lambda doc: doc.update(periodic=True, period=2 * math.pi),
         r"^\$\.periodic: a periodic CV must have exactly one term: a dihedral with the identity transform",
+    ),
+    (
+        "periodic without period",
+        _set(["periodic"], True),
+        r"^\$: missing key 'period': a periodic CV gives its period in its own units, 2 pi \|weight\| / scale",
+    ),
+    (
+        "period of a CV that is not periodic",
+        _set(["period"], 2 * math.pi),
+        r"^\$\.period: only a periodic CV \(periodic: true\) has a period",
+    ),
+    (
+        "huge integer",
+        _set(["provenance", "seed"], 10**30),
+        r"^\$\.provenance\.seed: the integer 1000000000000000000000000000000 is too large for a spec",
+    ),
+    (
+        "huge integer as a number",
+        _set(["terms", 0, "weight"], 10**400),
+        r"^\$\.terms\[0\]\.weight: the integer 1000000000.*\(401 digits\) is too large for a spec",
     ),
     (
         "negative std",
@@ -638,3 +661,239 @@ def test_load_spec_checks_a_topology_object_or_file(tmp_path):
     junk.write_text("not a pdb file at all\n", encoding="utf-8")
     with pytest.raises(InputError, match=r"cannot read topology file '.*junk\.pdb' with mdtraj|topology file '.*junk\.pdb' has no atoms"):
         load_spec(path, topology=junk)
+
+
+# --------------------------------------------------------------------------
+# group descriptors (center_distance, coordination) and periodic CVs
+
+
+def make_group_spec(top=None, **overrides):
+    """A spec with a mass-weighted and a geometric center distance and a coordination number."""
+    top = peptide_topology(waters=2) if top is None else top
+    parts = dict(
+        name="cv-groups",
+        topology=top,
+        descriptors=[
+            {"id": "com", "kind": "center_distance", "groups": [[0, 1, 2, 3], [15, 16, 17]],
+             "weighting": "mass", "label": "com ALA10 - HOH1"},
+            {"id": "geo", "kind": "center_distance", "groups": [[5, 6, 7], [18, 19, 20]],
+             "weighting": "geometric"},
+            {"id": "contacts", "kind": "coordination", "groups": [[3, 8, 13], [15, 18]], "r0": 0.35},
+        ],
+        terms=[
+            {"descriptor": "com", "transform": "identity", "center": 0.9, "scale": 0.2, "weight": 1.0},
+            {"descriptor": "geo", "transform": "identity", "center": 0.7, "scale": 0.3, "weight": -0.5},
+            {"descriptor": "contacts", "transform": "identity", "center": 1.5, "scale": 0.5, "weight": 2.0},
+        ],
+    )
+    parts.update(overrides)
+    return Spec(**parts)
+
+
+def test_group_descriptors_store_identities_masses_and_switching_defaults():
+    top = peptide_topology(waters=2)
+    spec = make_group_spec(top)
+    com, geo, contacts = spec.descriptors
+    assert com["atom_identities"][1][0] == atom_identity(top, 15)
+    assert [len(g) for g in com["atom_identities"]] == [4, 3]
+    # element masses from mdtraj's element table (N, C, C, O; O, H, H), in dalton
+    expected = [[top.atom(a).element.mass for a in group] for group in com["groups"]]
+    assert com["masses"] == expected
+    assert com["masses"][1][0] == pytest.approx(15.999, abs=1e-2)  # oxygen, from memory
+    assert "masses" not in geo and geo["weighting"] == "geometric"
+    assert (contacts["r0"], contacts["n"], contacts["m"]) == (0.35, 6.0, 12.0)
+    assert all(d["periodic"] is False for d in spec.descriptors)
+    again = Spec.from_dict(json.loads(spec.to_json()))
+    assert again == spec and again.to_json() == spec.to_json()
+    jsonschema.Draft202012Validator(spec_schema()).validate(spec.to_dict())
+
+
+def test_group_spec_evaluates_from_stored_masses_without_the_topology():
+    spec = make_group_spec()
+    xyz = random_coordinates(6, spec.n_atoms, 11)
+    doc = spec.to_dict()
+    masses = doc["descriptors"][0]["masses"]
+    com_a = np.einsum("fak,a->fk", xyz[:, [0, 1, 2, 3]], masses[0]) / sum(masses[0])
+    com_b = np.einsum("fak,a->fk", xyz[:, [15, 16, 17]], masses[1]) / sum(masses[1])
+    geo = np.linalg.norm(xyz[:, [18, 19, 20]].mean(axis=1) - xyz[:, [5, 6, 7]].mean(axis=1), axis=-1)
+    r = np.linalg.norm(xyz[:, [15, 18]][:, None, :, :] - xyz[:, [3, 8, 13]][:, :, None, :], axis=-1)
+    x = r / 0.35
+    contacts = ((1 - x**6) / (1 - x**12)).sum(axis=(1, 2))
+    expected = (np.linalg.norm(com_b - com_a, axis=-1) - 0.9) / 0.2 - 0.5 * (geo - 0.7) / 0.3 + 2.0 * (contacts - 1.5) / 0.5
+    np.testing.assert_allclose(Spec.from_dict(doc).evaluate(xyz), expected, rtol=0, atol=1e-10)
+    # the stored masses are what counts: change them and the value follows
+    doc["descriptors"][0]["masses"] = [[1.0, 1.0, 1.0, 1.0], [1.0, 1.0, 1.0]]
+    flat = np.linalg.norm(xyz[:, [15, 16, 17]].mean(axis=1) - xyz[:, [0, 1, 2, 3]].mean(axis=1), axis=-1)
+    values = Spec.from_dict(doc).descriptor_values(xyz)
+    np.testing.assert_allclose(values[:, 0], flat, atol=1e-12)
+
+
+def test_a_topology_change_in_a_group_atom_is_named_with_its_nested_path():
+    spec = make_group_spec(peptide_topology(waters=2))
+    renamed = peptide_topology(waters=2, rename={7: "CX"})
+    with pytest.raises(TopologyMismatchError, match=r"^\$\.descriptors\[1\]\.atom_identities\[0\]\[2\]: atom 7 \(used by descriptor 'geo', geo\) is ALA11:C "):
+        spec.check_topology(renamed)
+
+
+def test_mass_weighting_needs_element_masses():
+    top = peptide_topology(waters=2)
+    top.atom(2).element = None
+    with pytest.raises(SpecError, match=r"^\$\.descriptors\[0\]\.groups\[0\]\[2\]: atom 2 \(ALA10:C .*\) has no element mass in the topology; give masses"):
+        make_group_spec(top)
+
+
+def _group_doc():
+    return make_group_spec().to_dict()
+
+
+GROUP_REJECTIONS = [
+    ("group atom out of range", _set(["descriptors", 0, "groups", 1, 2], 21),
+     r"^\$\.descriptors\[0\]\.groups\[1\]\[2\]: atom index 21 is out of range for a topology of 21 atoms"),
+    ("negative group atom", _set(["descriptors", 2, "groups", 0, 0], -3),
+     r"^\$\.descriptors\[2\]\.groups\[0\]\[0\]: must be at least 0; got -3"),
+    ("empty group", _set(["descriptors", 1, "groups", 1], []),
+     r"^\$\.descriptors\[1\]\.groups\[1\]: needs at least 1 items; has 0"),
+    ("one group", _set(["descriptors", 1, "groups"], [[5, 6, 7]]),
+     r"^\$\.descriptors\[1\]\.groups: needs at least 2 items; has 1"),
+    ("three groups", _set(["descriptors", 2, "groups"], [[3], [15], [18]]),
+     r"^\$\.descriptors\[2\]\.groups: takes at most 2 items; has 3"),
+    ("repeated atom in a group", _set(["descriptors", 2, "groups", 0], [3, 8, 3]),
+     r"^\$\.descriptors\[2\]\.groups\[0\]\[2\]: atom 3 appears twice in this group \(at \[0\] and \[2\]\)"),
+    ("no pair", lambda doc: doc["descriptors"][2].update(groups=[[4], [4]], atom_identities=[[doc["descriptors"][2]["atom_identities"][0][0]]] * 2),
+     r"^\$\.descriptors\[2\]\.groups: both groups are the single atom 4, which gives no pair"),
+    ("zero r0", _set(["descriptors", 2, "r0"], 0.0),
+     r"^\$\.descriptors\[2\]\.r0: must be greater than 0; got 0\.0"),
+    ("negative r0", _set(["descriptors", 2, "r0"], -0.3),
+     r"^\$\.descriptors\[2\]\.r0: must be greater than 0; got -0\.3"),
+    ("r0 as text", _set(["descriptors", 2, "r0"], "0.3 nm"),
+     r"^\$\.descriptors\[2\]\.r0: must be of type number; got string"),
+    ("NaN r0", _set(["descriptors", 2, "r0"], float("nan")),
+     r"^\$\.descriptors\[2\]\.r0: nan is not allowed in a spec"),
+    ("zero n", _set(["descriptors", 2, "n"], 0),
+     r"^\$\.descriptors\[2\]\.n: must be greater than 0; got 0"),
+    ("m not above n", _set(["descriptors", 2, "m"], 6.0),
+     r"^\$\.descriptors\[2\]\.m: must be greater than n \(6\.0\); got 6\.0: the rational switching function needs 0 < n < m"),
+    ("huge m", _set(["descriptors", 2, "m"], 1e6),
+     r"^\$\.descriptors\[2\]\.m: must be at most 1000; got 1000000\.0"),
+    ("missing r0", _delete(["descriptors", 2, "r0"]),
+     r"^\$\.descriptors\[2\]: missing key 'r0'"),
+    ("missing masses", _delete(["descriptors", 0, "masses"]),
+     r"^\$\.descriptors\[0\]: missing key 'masses'"),
+    ("masses with geometric weighting", _set(["descriptors", 1, "masses"], [[12.0, 12.0, 12.0], [16.0, 1.0, 1.0]]),
+     r"^\$\.descriptors\[1\]\.masses: masses are used only with weighting 'mass'"),
+    ("mass count", _set(["descriptors", 0, "masses", 1], [16.0, 1.0]),
+     r"^\$\.descriptors\[0\]\.masses\[1\]: has 2 masses for the 3 atoms of groups\[1\]"),
+    ("zero mass", _set(["descriptors", 0, "masses", 0, 1], 0.0),
+     r"^\$\.descriptors\[0\]\.masses\[0\]\[1\]: must be greater than 0; got 0\.0"),
+    ("infinite mass", _set(["descriptors", 0, "masses", 0, 1], float("inf")),
+     r"^\$\.descriptors\[0\]\.masses\[0\]\[1\]: inf is not allowed in a spec"),
+    ("unknown weighting", _set(["descriptors", 0, "weighting"], "charge"),
+     r"^\$\.descriptors\[0\]\.weighting: \"charge\" is not one of 'mass', 'geometric'"),
+    ("atoms on a group kind", _set(["descriptors", 1, "atoms"], [5, 18]),
+     r"^\$\.descriptors\[1\]\.atoms: key 'atoms' is not used by a center_distance descriptor \(a center_distance takes: groups, weighting, masses\)"),
+    ("r0 on a center distance", _set(["descriptors", 0, "r0"], 0.3),
+     r"^\$\.descriptors\[0\]\.r0: key 'r0' is not used by a center_distance descriptor"),
+    ("weighting on a coordination", _set(["descriptors", 2, "weighting"], "mass"),
+     r"^\$\.descriptors\[2\]\.weighting: key 'weighting' is not used by a coordination descriptor \(a coordination takes: groups, r0, n, m\)"),
+    ("groups instead of atoms", lambda doc: doc["descriptors"][2].update(kind="distance"),
+     r"^\$\.descriptors\[2\]: missing key 'atoms'"),
+    ("flat identities", lambda doc: doc["descriptors"][1].update(atom_identities=doc["descriptors"][1]["atom_identities"][0]),
+     r"^\$\.descriptors\[1\]\.atom_identities: takes at most 2 items; has 3"),
+    ("identity count in a group", lambda doc: doc["descriptors"][1]["atom_identities"][1].pop(),
+     r"^\$\.descriptors\[1\]\.atom_identities\[1\]: has 2 atom identities for the 3 atoms of groups\[1\]"),
+    ("periodic group kind", _set(["descriptors", 2, "periodic"], True),
+     r"^\$\.descriptors\[2\]\.periodic: periodic must be false for a coordination"),
+    ("cos of a coordination", _set(["terms", 2, "transform"], "cos"),
+     r"^\$\.terms\[2\]\.transform: transform 'cos' applies to dihedrals only; descriptor 'contacts' is a coordination"),
+    ("duplicate group id", _set(["descriptors", 2, "id"], "com"),
+     r"^\$\.descriptors\[2\]\.id: descriptor id 'com' is used twice \(first at \$\.descriptors\[0\]\)"),
+    ("unknown group kind", _set(["descriptors", 0, "kind"], "center_of_charge"),
+     r"^\$\.descriptors\[0\]\.kind: \"center_of_charge\" is not one of"),
+]
+
+
+@pytest.mark.parametrize(("mutate", "message"), [r[1:] for r in GROUP_REJECTIONS], ids=[r[0] for r in GROUP_REJECTIONS])
+def test_invalid_group_descriptors_are_rejected_with_their_json_path(mutate, message):
+    doc = _group_doc()
+    mutate(doc)
+    with pytest.raises(SpecError, match=message):
+        Spec.from_dict(doc)
+
+
+def test_a_periodic_cv_stores_its_period():
+    spec = make_spec(
+        descriptors=[{"id": "psi", "kind": "dihedral", "atoms": [0, 1, 2, 5]}],
+        terms=[{"descriptor": "psi", "transform": "identity", "center": 0.0, "scale": 1.0, "weight": 1.0}],
+        periodic=True,
+    )
+    assert spec.period == 6.283185307179586 and spec.to_dict()["period"] == 2 * math.pi
+    assert make_spec().period is None and "period" not in make_spec().to_dict()
+    scaled = make_spec(
+        descriptors=[{"id": "psi", "kind": "dihedral", "atoms": [0, 1, 2, 5]}],
+        terms=[{"descriptor": "psi", "transform": "identity", "center": 0.5, "scale": 0.5, "weight": -2.0}],
+        periodic=True,
+    )
+    assert scaled.period == pytest.approx(8 * math.pi, rel=1e-15)
+    assert Spec.from_json(scaled.to_json()) == scaled
+    doc = spec.to_dict()
+    doc["period"] = 360.0
+    with pytest.raises(SpecError, match=r"^\$\.period: must be 2 pi \|weight\| / scale = 6\.283185307179586 for this CV \(weight 1\.0, scale 1\.0 of its dihedral term\), .*; got 360\.0"):
+        Spec.from_dict(doc)
+    doc["period"] = -1.0
+    with pytest.raises(SpecError, match=r"^\$\.period: must be greater than 0; got -1\.0"):
+        Spec.from_dict(doc)
+
+
+def test_a_document_in_the_form_the_pipeline_writes_still_loads():
+    # the keys cvdesign.pipeline._spec_dict writes today: no period, periodic false,
+    # descriptors with atoms, residue hashes, provenance with parameters and segments
+    top = peptide_topology()
+    doc = make_spec(top).to_dict()
+    doc["topology"]["residues"] = residue_hashes(top)
+    doc["provenance"].update(topology={"file": "top.pdb"}, segments=[{"file": "a.xtc", "frames": [0, 10]}])
+    spec = Spec.from_dict(json.loads(json.dumps(doc)))
+    spec.check_topology(top)
+    assert spec.to_dict() == doc
+
+
+@pytest.mark.parametrize(("weight", "scale"), [(0.0, 1.0), (1e308, 1e-308)])
+def test_a_periodic_cv_needs_a_finite_nonzero_period(weight, scale):
+    doc = make_spec(
+        descriptors=[{"id": "psi", "kind": "dihedral", "atoms": [0, 1, 2, 5]}],
+        terms=[{"descriptor": "psi", "transform": "identity", "center": 0.0, "scale": 1.0, "weight": 1.0}],
+        periodic=True,
+    ).to_dict()
+    doc["terms"][0].update(weight=weight, scale=scale)
+    with pytest.raises(SpecError, match=r"^\$\.terms\[0\]\.weight: the term of a periodic CV needs a weight with 0 < 2 pi \|weight\| / scale < infinity"):
+        Spec.from_dict(doc)
+
+
+def _schema_field_names(schema):
+    names = set()
+
+    def walk(node):
+        if isinstance(node, dict):
+            for key, value in node.get("properties", {}).items():
+                names.add(key)
+                walk(value)
+            for value in node.values():
+                walk(value)
+        elif isinstance(node, list):
+            for value in node:
+                walk(value)
+
+    walk(schema)
+    return names
+
+
+def test_docs_describe_every_schema_field_and_their_example_loads():
+    text = (Path(__file__).resolve().parents[1] / "docs" / "spec-v1.md").read_text(encoding="utf-8")
+    undocumented = sorted(name for name in _schema_field_names(spec_schema()) if f"`{name}`" not in text)
+    assert undocumented == []
+    example = json.loads(re.search(r"```json\n(.*?)```", text, re.S).group(1))
+    spec = Spec.from_dict(example)
+    xyz = np.array([[[0.0, 0, 0], [0.3, 0, 0], [0.4, 0, 0]]])
+    # 2 (0.4 - 0.3) / 0.1 - 0.5 (s(0.3) + s(0.4) - 1) / 0.5 with s(0.3) = 1/2
+    x = 0.4 / 0.3
+    expected = 2.0 - (0.5 + (1 - x**6) / (1 - x**12) - 1.0)
+    np.testing.assert_allclose(spec.evaluate(xyz), [expected], rtol=1e-13)
