@@ -209,6 +209,29 @@ def build_parser():
     p.add_argument("--json", action="store_true", help="print the hints as JSON")
 
     p = sub.add_parser(
+        "funnel", help="size a funnel restraint for a bound ligand",
+        description="From bound-state trajectories, define the funnel axis (pocket centre "
+                    "toward the solvent, or through --exit-point), measure the ligand centre "
+                    "along (z, nm) and across (r, nm) it, and recommend a cone + cylinder "
+                    "funnel (half-angle in rad, radii and walls in nm) with stated margins, so "
+                    "the bound fluctuations sit well inside and the unbound region is as "
+                    "narrow as the data allow. Starting points to validate, not guarantees.")
+    p.add_argument("--topology", required=True, metavar="TOP", help="topology file")
+    p.add_argument("--bound", nargs="+", required=True, metavar="FILE",
+                   help="trajectories of the bound state (any format mdtraj reads)")
+    p.add_argument("--ligand", required=True, metavar="SEL",
+                   help="mdtraj selection of the ligand atoms, e.g. 'resname LIG'")
+    p.add_argument("--pocket", required=True, metavar="SEL",
+                   help="mdtraj selection of the pocket atoms whose centre is the axis origin")
+    p.add_argument("--exit-point", nargs=3, type=float, metavar=("X", "Y", "Z"), default=None,
+                   help="a point in nm, toward the solvent, the axis passes through")
+    p.add_argument("--out", required=True, metavar="FILE.json",
+                   help="output file for the funnel parameters")
+    p.add_argument("--plot", metavar="FILE.png", default=None,
+                   help="also draw the axis, the funnel outline and the ligand positions "
+                        "(needs matplotlib: pip install 'cvdesign[plot]')")
+
+    p = sub.add_parser(
         "demo", help="run suggest on the bundled demo data",
         description="Run 'suggest' on the bundled demo (an invented flexible molecule with "
                     "one slow torsion that opens and closes a contact) and say what to look at.")
@@ -454,6 +477,53 @@ def _cmd_hints(args):
     return 0
 
 
+def _cmd_funnel(args):
+    from ._io import atomic_open
+    from .funnel import CAUTION as FUNNEL_CAUTION, plot_funnel, size_funnel
+    from .source import Source, select_atoms
+
+    out = Path(args.out)
+    if out.is_dir() or not out.resolve().parent.exists():
+        raise InputError(f"--out {args.out!r} must be a file in an existing directory")
+    if any(out.resolve() == Path(p).resolve() for p in args.bound + [args.topology]):
+        raise InputError(f"--out {args.out!r} is one of the input files; give a new name")
+    source = Source(args.topology)
+    for f in args.bound:
+        source.add(f, state="bound")
+    lig = select_atoms(source.topology, args.ligand)
+    pocket = select_atoms(source.topology, args.pocket)
+    if np.intersect1d(lig, pocket).size:
+        raise InputError("--ligand and --pocket share atoms; the pocket must not include the "
+                         "ligand")
+    atoms = np.concatenate([pocket, lig])
+
+    def chunks():
+        for c in source.iter_chunks(atom_indices=atoms):
+            xyz = c.trajectory.xyz.astype(np.float64)
+            yield xyz[:, :pocket.size], xyz[:, pocket.size:]
+
+    result = size_funnel(chunks=chunks, exit_point=args.exit_point)
+    doc = {"format": "cvdesign-funnel", "version": 1, "units": {"length": "nm", "angle": "rad"},
+           "ligand_atoms": lig.tolist(), "pocket_atoms": pocket.tolist(),
+           "inputs": [Path(f).name for f in args.bound], **result}
+    with atomic_open(out, "w", encoding="utf-8", newline="\n") as fh:
+        fh.write(json.dumps(doc, indent=2, sort_keys=True, allow_nan=False) + "\n")
+    prm = result["params"]
+    print(f"funnel: axis {np.round(prm['axis'], 3).tolist()} from origin "
+          f"{np.round(prm['origin'], 3).tolist()} nm; cone half-angle {prm['alpha']:.3f} rad, "
+          f"cylinder radius {prm['r_cyl']:.3f} nm from z = {prm['z_cc']:.3f} nm, walls at "
+          f"z = {prm['z_min']:.3f} and {prm['z_max']:.3f} nm")
+    for line in result.get("reasoning", []):
+        print(f"  - {line}")
+    if args.plot:
+        centres = np.concatenate([lg.mean(axis=1) for _, lg in chunks()])
+        plot_funnel(result, centres, args.plot)
+        print(f"wrote {args.plot}")
+    print(f"wrote {args.out}")
+    print(f"caution: {result.get('caution', FUNNEL_CAUTION)}")
+    return 0
+
+
 def demo_data_dir():
     """Directory holding the bundled demo data (topology, trajectories, manifest.json)."""
     here = Path(__file__).resolve().parent
@@ -499,7 +569,7 @@ def main(argv=None):
     parser = build_parser()
     args = parser.parse_args(argv)
     handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "check": _cmd_check,
-               "hints": _cmd_hints, "demo": _cmd_demo}[args.command]
+               "hints": _cmd_hints, "funnel": _cmd_funnel, "demo": _cmd_demo}[args.command]
     try:
         return handler(args)
     except CVDesignError as exc:

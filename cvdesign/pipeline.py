@@ -30,9 +30,10 @@ import numpy as np
 
 from . import __version__
 from ._io import prepare_output_dir, write_dir_atomically
-from .bootstrap import block_bootstrap
+from .bootstrap import block_bootstrap, percentile_interval
 from .combine import (OBJECTIVES, FoldMoments, autocorrelation_along, cv_direction,
-                      fit_direction, greedy_search, rank_combinations, slow_direction)
+                      fit_direction, greedy_search, heldout_score, rank_combinations,
+                      slow_direction)
 from .estimators import implied_timescales, rayleigh_quotient
 from .errors import InputError
 from .moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
@@ -137,7 +138,9 @@ class Suggestions:
     def ranking_csv(self):
         """The ranking as CSV text (one row per combination)."""
         cols = ["rank", "spec", "n_terms", "objective", "method", "heldout_score",
-                "heldout_score_se", "heldout_fisher_ratio", "heldout_fisher_ratio_se",
+                "heldout_score_se", "heldout_score_ci_low", "heldout_score_ci_high",
+                "heldout_fisher_ratio", "heldout_fisher_ratio_se",
+                "heldout_fisher_ratio_ci_low", "heldout_fisher_ratio_ci_high",
                 "heldout_overlap", "fisher_ratio_all", "fisher_ratio_ci_low",
                 "fisher_ratio_ci_high", "lag_ps", "heldout_autocorrelation",
                 "autocorrelation_all", "autocorrelation_ci_low", "autocorrelation_ci_high",
@@ -148,9 +151,13 @@ class Suggestions:
         for r in self.ranking:
             fci = r.get("fisher_ratio_ci") or [None, None]
             aci = r.get("autocorrelation_ci") or [None, None]
+            sci = r.get("heldout_score_ci") or [None, None]
+            hci = r.get("heldout_fisher_ratio_ci") or [None, None]
             w.writerow([r["rank"], r["spec"], r["n_terms"], r["objective"], r["method"],
                         _fmt(r["heldout_score"]), _fmt(r["heldout_score_se"]),
+                        _fmt(sci[0]), _fmt(sci[1]),
                         _fmt(r["heldout_fisher_ratio"]), _fmt(r["heldout_fisher_ratio_se"]),
+                        _fmt(hci[0]), _fmt(hci[1]),
                         _fmt(r["heldout_overlap"]), _fmt(r["fisher_ratio_all"]),
                         _fmt(fci[0]), _fmt(fci[1]), _fmt(r["lag_ps"]),
                         _fmt(r["heldout_autocorrelation"]), _fmt(r["autocorrelation_all"]),
@@ -1355,12 +1362,24 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
             best = rank_combinations(combos, limit=1)[0]
             hit = np.zeros(len(cand))
             hit[list(best.members)] = 1.0
-            return hit
+            # held-out scores of the ranked combinations on the resampled folds
+            held = []
+            for p_idx, _ in p_fits:
+                held.append(heldout_score(boot_fm, p_idx, **search)[0])
+                held.append(heldout_score(boot_fm, p_idx, objective="separate",
+                                          method=search["method"],
+                                          shrinkage=search["shrinkage"])[0])
+            return np.concatenate([hit, held])
 
         n_sel = min(n_bootstrap, SELECTION_REPLICATES)
         sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1)
-        ok = np.isfinite(sel.replicates).all(axis=1)
-        freq = sel.replicates[ok].mean(axis=0) if ok.any() else np.full(len(cand), np.nan)
+        ok = np.isfinite(sel.replicates[:, :len(cand)]).all(axis=1)
+        freq = sel.replicates[ok, :len(cand)].mean(axis=0) if ok.any() \
+            else np.full(len(cand), np.nan)
+        low, high = percentile_interval(sel.replicates[ok, len(cand):])
+        for i, c in enumerate(out["combos"]):
+            c["heldout_score_ci"] = [_finite(low[2 * i]), _finite(high[2 * i])]
+            c["heldout_fisher_ratio_ci"] = [_finite(low[2 * i + 1]), _finite(high[2 * i + 1])]
         out["selection"] = {pool.descriptors[screened[short[j]]].id: _finite(freq[c])
                             for c, j in enumerate(cand)}
         out["n_selection"] = int(ok.sum())
@@ -1425,6 +1444,14 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
         entry["fisher_ratio_ci"] = ci["fisher_ratio_ci"]
         entry["autocorrelation_ci"] = ci["autocorrelation_ci"]
         entry["bootstrap_refits_for_selection"] = boot.get("n_selection")
+        for key in ("heldout_score_ci", "heldout_fisher_ratio_ci"):
+            if ci.get(key) is not None:
+                entry[key] = ci[key]
+        aci = ci.get("autocorrelation_ci")
+        if aci and lag_ps and None not in aci:
+            # the implied timescale is monotonic in the autocorrelation
+            entry["timescale_ci_ps"] = [
+                _finite(v) for v in implied_timescales(np.clip(aci, -1.0, 1.0), lag_ps)]
     return entry
 
 

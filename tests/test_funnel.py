@@ -1,0 +1,131 @@
+"""Tests of cvdesign.funnel: geometry, sizing margins, energy and gradient."""
+
+import json
+
+import numpy as np
+import pytest
+
+from cvdesign.funnel import (CAUTION, FunnelStats, funnel_axis, funnel_energy, funnel_radius,
+                             plot_funnel, project_on_axis, size_funnel)
+
+PARAMS = dict(origin=[0.1, -0.2, 0.3], axis=[0.0, 0.6, 0.8], z_min=-0.4, z_max=2.5,
+              z_cc=0.9, alpha=0.7, r_cyl=0.35, blend=0.1)
+
+
+def _bound_frames(seed=0, n=300):
+    rng = np.random.default_rng(seed)
+    ring = np.array([[np.cos(t), np.sin(t), 0.0] for t in np.linspace(0, 2 * np.pi, 8,
+                                                                        endpoint=False)])
+    pocket = ring[None] + rng.normal(0, 0.02, size=(n, 8, 3))
+    centre = rng.normal([0.0, 0.0, 0.25], [0.08, 0.08, 0.05], size=(n, 1, 3))
+    ligand = centre + np.array([[-0.1, 0, 0], [0.1, 0, 0]])[None]
+    return pocket, ligand
+
+
+def test_project_on_axis_matches_hand_computed_points():
+    z, r = project_on_axis([[0, 0, 2.0], [3.0, 4.0, -1.0], [1.0, 1.0, 1.0]],
+                           [0, 0, 0], [0, 0, 2.0])
+    np.testing.assert_allclose(z, [2.0, -1.0, 1.0])
+    np.testing.assert_allclose(r, [0.0, 5.0, np.sqrt(2.0)])
+
+
+def test_axis_through_exit_point_is_exact():
+    a, rule = funnel_axis([1.0, 1.0, 1.0], exit_point=[1.0, 4.0, 5.0])
+    assert rule == "exit_point"
+    np.testing.assert_allclose(a, [0.0, 0.6, 0.8], atol=1e-15)
+
+
+def test_axis_falls_back_to_pocket_shape_when_ligand_is_centred():
+    ring = np.array([[np.cos(t), np.sin(t), 0.0] for t in np.linspace(0, 6, 7)])
+    a, rule = funnel_axis([0, 0, 0], ligand_centers=[[0, 0, 0.01]], pocket_xyz=ring)
+    assert rule == "pocket_shape"
+    np.testing.assert_allclose(a, [0, 0, 1.0], atol=1e-12)
+    with pytest.raises(ValueError, match="give exit_point or pocket_xyz"):
+        funnel_axis([0, 0, 0], ligand_centers=[[0, 0, 0.01]])
+
+
+def test_streaming_stats_equal_one_shot():
+    rng = np.random.default_rng(1)
+    pts = rng.normal(size=(100, 3))
+    one = FunnelStats([0, 0, 0], [0, 0, 1]).update(pts)
+    many = FunnelStats([0, 0, 0], [0, 0, 1])
+    for k in range(0, 100, 13):
+        many.update(pts[k:k + 13])
+    assert one.envelope == many.envelope and one.r_hist == many.r_hist
+    assert np.isclose(one.z_std, many.z_std, rtol=1e-12)
+    z, r = project_on_axis(pts, [0, 0, 0], [0, 0, 1])
+    assert np.isclose(one.z_std, z.std()) and one.r_max == r.max() and one.z_min == z.min()
+
+
+def test_sizing_puts_every_bound_position_inside_with_margin():
+    pocket, ligand = _bound_frames()
+    out = size_funnel(pocket, ligand)
+    out = json.loads(json.dumps(out))                    # JSON-ready
+    p, m = out["params"], out["margins"]
+    assert out["caution"] == CAUTION and out["axis_rule"] == "ligand_offset"
+    z, r = project_on_axis(ligand.mean(axis=1), p["origin"], p["axis"])
+    R, _ = funnel_radius(z, p)
+    assert np.all(R - r >= m["r"] - 1e-12)
+    assert np.all(z - p["z_min"] >= m["z"] - 1e-12)
+    assert np.all(p["z_cc"] - p["blend"] - z >= m["z"] - 1e-12)
+    e, _ = funnel_energy(ligand.mean(axis=1), p, 1000.0)
+    assert np.all(e == 0.0)
+
+
+def test_sizing_from_chunks_matches_arrays():
+    pocket, ligand = _bound_frames()
+    whole = size_funnel(pocket, ligand)
+    chunks = [(pocket[k:k + 64], ligand[k:k + 64]) for k in range(0, len(pocket), 64)]
+    parts = size_funnel(chunks=chunks)
+    for key in ("z_min", "z_cc", "alpha", "r_cyl"):
+        assert np.isclose(whole["params"][key], parts["params"][key], rtol=1e-12)
+
+
+def test_energy_zero_inside_positive_outside():
+    o, a = np.array(PARAMS["origin"]), np.array(PARAMS["axis"])
+    inside = o + 0.3 * a
+    outside = [inside + [1.5, 0, 0],        # beside the cone
+               o - 1.0 * a,                 # below z_min
+               o + 3.0 * a]                 # above z_max
+    e_in, g_in = funnel_energy(inside, PARAMS, 500.0)
+    assert e_in == 0.0 and np.all(g_in == 0.0)
+    e_out, _ = funnel_energy(np.array(outside), PARAMS, 500.0)
+    assert np.all(e_out > 0.0)
+
+
+def test_gradient_matches_finite_differences():
+    rng = np.random.default_rng(2)
+    a = np.array(PARAMS["axis"])
+    pts = np.array(PARAMS["origin"]) + rng.uniform(-1.5, 3.0, size=(40, 1)) * a \
+        + rng.normal(0, 0.8, size=(40, 3))
+    e, g = funnel_energy(pts, PARAMS, 800.0)
+    assert np.count_nonzero(e > 0) > 10
+    h = 1e-6
+    fd = np.empty_like(g)
+    for k in range(3):
+        dx = np.zeros(3)
+        dx[k] = h
+        fd[:, k] = (funnel_energy(pts + dx, PARAMS, 800.0)[0]
+                    - funnel_energy(pts - dx, PARAMS, 800.0)[0]) / (2 * h)
+    scale = np.maximum(np.abs(g).max(axis=1, keepdims=True), 1.0)
+    assert np.all(np.abs(fd - g) / scale < 1e-5)
+
+
+@pytest.mark.parametrize("edge", [-1, 1])
+def test_energy_and_gradient_continuous_at_cone_cylinder_junction(edge):
+    o, a = np.array(PARAMS["origin"]), np.array(PARAMS["axis"])
+    perp = np.array([1.0, 0.0, 0.0])
+    z0 = PARAMS["z_cc"] + edge * PARAMS["blend"]
+    eps = 1e-9
+    pts = np.array([o + (z0 - eps) * a + 0.9 * perp, o + (z0 + eps) * a + 0.9 * perp])
+    e, g = funnel_energy(pts, PARAMS, 1000.0)
+    assert e[0] > 0 and abs(e[0] - e[1]) < 1e-5
+    np.testing.assert_allclose(g[0], g[1], atol=1e-4)
+
+
+def test_plot_funnel_writes_png(tmp_path):
+    pytest.importorskip("matplotlib")
+    pocket, ligand = _bound_frames()
+    out = size_funnel(pocket, ligand)
+    path = plot_funnel(out, ligand.mean(axis=1), tmp_path / "funnel.png")
+    assert open(path, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
