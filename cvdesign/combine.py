@@ -22,7 +22,8 @@ from .vamp import vamp2_score
 
 __all__ = ["FoldMoments", "Combination", "OBJECTIVES", "heldout_score", "fold_scores",
            "fit_direction", "slow_direction", "cv_direction", "autocorrelation_along",
-           "greedy_search", "rank_combinations", "standardize_moments", "standardize_lagged"]
+           "greedy_search", "rank_combinations", "standardize_moments", "standardize_lagged",
+           "state_arrays"]
 
 
 class FoldMoments:
@@ -118,7 +119,8 @@ def standardize_lagged(m, center, scale):
     return out
 
 
-def _arrays(moments, idx):
+def state_arrays(moments, idx):
+    """Per-state means (n_states, k) and covariances (n_states, k, k) of features `idx`."""
     means = np.array([m.mean[idx] for m in moments])
     covs = np.array([m.covariance[np.ix_(idx, idx)] for m in moments])
     return means, covs
@@ -159,7 +161,7 @@ def fit_direction(moments, idx, priors, shrinkage, *, method="lda"):
     ndarray of shape (len(idx),)
         Unit-length direction.
     """
-    means, covs = _arrays(moments, idx)
+    means, covs = state_arrays(moments, idx)
     _, vecs = discriminant_directions(means, covs, priors, shrinkage=shrinkage,
                                       within=_within(method))
     return vecs[:, 0]
@@ -233,7 +235,7 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
             continue
         w = fit_direction(fold_moments.train(k), idx, fold_moments.priors, shrinkage,
                           method=method)
-        means, covs = _arrays(fold_moments.test(k), idx)
+        means, covs = state_arrays(fold_moments.test(k), idx)
         j = min(rayleigh_quotient(w, means, covs, fold_moments.priors), 1e12)
         if objective == "separate":
             out[k] = j

@@ -32,7 +32,7 @@ from .combine import standardize_lagged
 from .errors import InputError
 from .estimators import TICA
 from .moments import DiagonalMoments
-from .pipeline import _chunk_frames, _lag_frames, _Series
+from .pipeline import _chunk_frames, _lag_frames, _Series, read_timesteps
 from .pool import build_pool
 from .source import Source
 
@@ -175,8 +175,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):
         raise InputError(f"n_states={n_states!r} must be an integer of at least 2")
     note = progress or (lambda msg: None)
-    timesteps = {si: source.timestep(si) for si in range(len(source.segments))}
-    timesteps = {si: (None if v is None else float(f"{v:.7g}")) for si, v in timesteps.items()}
+    timesteps = read_timesteps(source)
     lag_frames = _lag_frames(source, lag, timesteps)
     note("building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,

@@ -33,7 +33,7 @@ from ._io import prepare_output_dir, write_dir_atomically
 from .bootstrap import block_bootstrap, percentile_interval
 from .combine import (OBJECTIVES, FoldMoments, autocorrelation_along, cv_direction,
                       fit_direction, greedy_search, heldout_score, rank_combinations,
-                      slow_direction)
+                      slow_direction, state_arrays)
 from .estimators import implied_timescales, rayleigh_quotient
 from .errors import InputError
 from .moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
@@ -471,6 +471,18 @@ def _runs(chunk):
         yield int(s), np.flatnonzero(chunk.states == s)
 
 
+def read_timesteps(source):
+    """Time step (ps, or None when unknown) of every segment of a source.
+
+    Times are stored in single precision, so 7 significant digits are kept.
+    """
+    out = {}
+    for si in range(len(source.segments)):
+        v = source.timestep(si)
+        out[si] = None if v is None else float(f"{v:.7g}")
+    return out
+
+
 def _lag_frames(source, lag, timesteps):
     """Lag in frames of each segment, for a lag in ps; refuse what cannot be converted."""
     out = {}
@@ -672,9 +684,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     priors = np.full(n_states, 1.0 / n_states)
 
     # ---- time steps and lag
-    timesteps = {si: source.timestep(si) for si in range(len(source.segments))}
-    # times are stored in single precision: keep 7 significant digits
-    timesteps = {si: (None if v is None else float(f"{v:.7g}")) for si, v in timesteps.items()}
+    timesteps = read_timesteps(source)
     lag_ps = lag
     if lag is None:
         steps = {round(v, 9) for v in timesteps.values() if v is not None}
@@ -908,7 +918,6 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
                      "percentile intervals")
 
     # ---- outputs
-    dt0 = next(iter(timesteps.values()))
     scorecard = []
     screened_set = set(screened)
     short_set = {screened[g] for g in short}
@@ -944,10 +953,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
                  for p in source.files()]
     ranking, specs = [], []
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, heldout_overlap), 1):
-        gidx, idx, w, fold_w = fit
         entry = _ranking_entry(rank, comb, fit, ov, pool, screened, groups, scr_feat, center,
                                scale, pooled, priors, fm, source, objective, method, lag_ps,
-                               lag_frames, dt0, boot)
+                               boot)
         ts = entry["timescale_ps"]
         entry["timescale_resolved"] = None if ts is None else bool(
             longest_run_ps is not None and ts < longest_run_ps)
@@ -1277,7 +1285,7 @@ def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, sho
     n_blocks = sum(len(v) for v in blocks.values())
     desc = (f"{block_frames} frames" if block_frames else
             "whole runs (or their pieces in each fold)") + f" ({n_blocks} blocks)"
-    return {"overlap": overlap, "blocks": blocks, "local": local, "where": where,
+    return {"overlap": overlap, "blocks": blocks, "where": where,
             "block_desc": desc}
 
 
@@ -1308,7 +1316,7 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
                 w = -w
             if search["objective"] == "slow":
                 w = kinetic_map_scale(w, lag, p_idx)
-            means, covs = _arrays_of(states, p_idx)
+            means, covs = state_arrays(states, p_idx)
             out.extend(w.tolist())
             out.append(rayleigh_quotient(w, means, covs, priors))
             out.append(autocorrelation_along(w, lag, p_idx) if has_lag else np.nan)
@@ -1387,17 +1395,17 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
 
 
 def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, center, scale,
-                   pooled, priors, fm, source, objective, method, lag_ps, lag_frames, dt0, boot):
+                   pooled, priors, fm, source, objective, method, lag_ps, boot):
     gidx, idx, w, fold_w = fit
     # held-out separation (arithmetic Fisher ratio) and autocorrelation of the fold directions
     sep, rho = [], []
     for k in range(fm.n_folds):
-        means, covs = _arrays_of(fm.test(k), idx)
+        means, covs = state_arrays(fm.test(k), idx)
         sep.append(min(rayleigh_quotient(fold_w[k], means, covs, priors), 1e12))
         if fm.lagged is not None:
             rho.append(autocorrelation_along(fold_w[k], fm.lagged_test(k), idx))
     sep = np.array(sep)
-    mu, cov = _arrays_of(pooled, idx)
+    mu, cov = state_arrays(pooled, idx)
     j_all = rayleigh_quotient(w, mu, cov, priors)
     rho_all = timescale = None
     if fm.lagged is not None:
@@ -1453,9 +1461,3 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
             entry["timescale_ci_ps"] = [
                 _finite(v) for v in implied_timescales(np.clip(aci, -1.0, 1.0), lag_ps)]
     return entry
-
-
-def _arrays_of(moments, idx):
-    means = np.array([m.mean[idx] for m in moments])
-    covs = np.array([m.covariance[np.ix_(idx, idx)] for m in moments])
-    return means, covs
