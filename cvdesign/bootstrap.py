@@ -17,7 +17,41 @@ import numpy as np
 
 from .moments import LaggedMoments, Moments, merge_all
 
-__all__ = ["merge_blocks", "block_bootstrap", "BootstrapResult", "percentile_interval"]
+__all__ = ["ArraySum", "merge_blocks", "block_bootstrap", "BootstrapResult",
+           "percentile_interval"]
+
+
+class ArraySum:
+    """Named arrays that merge by addition: counts, sums, histograms of a block.
+
+    The simplest mergeable statistic: any quantity that is a sum over frames
+    (or over lagged pairs) of one block. Blocks of this kind take the fast
+    weighted path of :func:`block_bootstrap`.
+
+    Parameters
+    ----------
+    **arrays : array-like
+        Each a sum over the block's frames, of any shape.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> a = ArraySum(n=1.0, s1=np.array([2.0, 3.0]))
+    >>> a.merge(a)["s1"].tolist()
+    [4.0, 6.0]
+    """
+
+    def __init__(self, **arrays):
+        self.arrays = {k: np.array(v, dtype=np.float64) for k, v in arrays.items()}
+
+    def __getitem__(self, key):
+        return self.arrays[key]
+
+    def merge(self, other):
+        """The sums of the union of two disjoint blocks."""
+        if self.arrays.keys() != other.arrays.keys():
+            raise ValueError("cannot merge ArraySum blocks with different fields")
+        return ArraySum(**{k: v + other.arrays[k] for k, v in self.arrays.items()})
 
 
 def merge_blocks(blocks):
@@ -43,8 +77,8 @@ class _Raw:
     """Blocks of one kind stacked as additive raw sums, for fast weighted merging.
 
     Moments become (count, sum, sum of outer products) about zero; lagged
-    moments, which all share one shift in a bootstrap, already are additive.
-    A replicate is then one weighted sum over blocks instead of a tree of merges.
+    moments and ArraySum blocks, which share one shift in a bootstrap, already are
+    additive. A replicate is then one weighted sum over blocks instead of a tree of merges.
     """
 
     def __init__(self, blocks):
@@ -52,7 +86,11 @@ class _Raw:
         self.kind = type(first)
         # every field flattened to one row per block, so a replicate is one
         # matrix-vector product per field
-        if self.kind is Moments:
+        if self.kind is ArraySum:
+            self.shapes = {k: v.shape for k, v in first.arrays.items()}
+            self.fields = {k: np.ascontiguousarray(
+                np.array([np.ravel(b.arrays[k]) for b in blocks])) for k in self.shapes}
+        elif self.kind is Moments:
             p = first.n_features
             self.shape = (p, p)
             self.n = np.array([b.count for b in blocks])
@@ -73,12 +111,18 @@ class _Raw:
         kind = type(blocks[0])
         if kind is Moments:
             return all(type(b) is Moments for b in blocks)
+        if kind is ArraySum:
+            keys = blocks[0].arrays.keys()
+            return all(type(b) is ArraySum and b.arrays.keys() == keys for b in blocks)
         if kind is LaggedMoments:
             return all(type(b) is LaggedMoments and np.array_equal(b.shift, blocks[0].shift)
                        for b in blocks)
         return False
 
     def combine(self, weights):
+        if self.kind is ArraySum:
+            return ArraySum(**{k: (weights @ arr).reshape(self.shapes[k])
+                               for k, arr in self.fields.items()})
         if self.kind is Moments:
             n = float(weights @ self.n)
             m = Moments(self.s1.shape[1])

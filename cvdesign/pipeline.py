@@ -30,7 +30,8 @@ import numpy as np
 
 from . import __version__
 from ._io import prepare_output_dir, write_dir_atomically
-from .bootstrap import block_bootstrap, percentile_interval
+from .bootstrap import ArraySum, block_bootstrap, percentile_interval
+from .cardboot import CardBlocks, card_intervals, integrated_time_interval, plan_card_blocks
 from .combine import (OBJECTIVES, FoldMoments, autocorrelation_along, cv_direction,
                       fit_direction, greedy_search, heldout_score, rank_combinations,
                       slow_direction, state_arrays)
@@ -112,27 +113,24 @@ class Suggestions:
 
     # ----------------------------------------------------------- renderings
     def scorecard_csv(self):
-        """The score card as CSV text."""
-        cols = ["order", "id", "kind", "label", "atoms", "fisher_ratio", "fisher_ratio_ci_low",
-                "fisher_ratio_ci_high", "overlap", "autocorrelation", "autocorrelation_ci_low",
-                "autocorrelation_ci_high", "autocorrelation_within_runs", "integrated_time_ps",
-                "integrated_time_decayed",
-                "screened", "shortlisted", "stands_for", "note"]
+        """The score card as CSV text (``*_ci_low``/``*_ci_high``: 95 % interval)."""
+        cols = ["order", "id", "kind", "label", "atoms"]
+        for name in _CARD_COLUMNS:
+            unit = "_ps" if name == "integrated_time" else ""
+            cols += [name + unit, f"{name}_ci_low{unit}", f"{name}_ci_high{unit}"]
+        cols += ["integrated_time_decayed", "screened", "shortlisted", "stands_for", "note"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(cols)
         for i, row in enumerate(self.scorecard, 1):
-            fci = row.get("fisher_ratio_ci") or [None, None]
-            aci = row.get("autocorrelation_ci") or [None, None]
+            line = [i, row["id"], row["kind"], row["label"], " ".join(map(str, row["atoms"]))]
+            for name in _CARD_COLUMNS:
+                ci = row.get(f"{name}_ci") or [None, None]
+                line += [_fmt(row.get(name)), _fmt(ci[0]), _fmt(ci[1])]
             dec = row.get("integrated_time_decayed")
-            w.writerow([i, row["id"], row["kind"], row["label"],
-                        " ".join(map(str, row["atoms"])), _fmt(row["fisher_ratio"]),
-                        _fmt(fci[0]), _fmt(fci[1]), _fmt(row["overlap"]),
-                        _fmt(row.get("autocorrelation")), _fmt(aci[0]), _fmt(aci[1]),
-                        _fmt(row.get("autocorrelation_within_runs")),
-                        _fmt(row.get("integrated_time")), "" if dec is None else int(dec),
-                        int(row["screened"]), int(row["shortlisted"]),
-                        " ".join(row["stands_for"]), row["note"]])
+            line += ["" if dec is None else int(dec), int(row["screened"]),
+                     int(row["shortlisted"]), " ".join(row["stands_for"]), row["note"]]
+            w.writerow(line)
         return buf.getvalue()
 
     def ranking_csv(self):
@@ -141,10 +139,14 @@ class Suggestions:
                 "heldout_score_se", "heldout_score_ci_low", "heldout_score_ci_high",
                 "heldout_fisher_ratio", "heldout_fisher_ratio_se",
                 "heldout_fisher_ratio_ci_low", "heldout_fisher_ratio_ci_high",
-                "heldout_overlap", "fisher_ratio_all", "fisher_ratio_ci_low",
+                "heldout_overlap", "heldout_overlap_ci_low", "heldout_overlap_ci_high",
+                "fisher_ratio_all", "fisher_ratio_ci_low",
                 "fisher_ratio_ci_high", "lag_ps", "heldout_autocorrelation",
+                "heldout_autocorrelation_ci_low", "heldout_autocorrelation_ci_high",
                 "autocorrelation_all", "autocorrelation_ci_low", "autocorrelation_ci_high",
-                "timescale_ps", "terms", "weights", "weight_ci", "selection_frequency"]
+                "timescale_ps", "timescale_ci_low_ps", "timescale_ci_high_ps",
+                "integrated_time_ps", "integrated_time_ci_low_ps", "integrated_time_ci_high_ps",
+                "terms", "weights", "weight_ci", "selection_frequency"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(cols)
@@ -153,15 +155,23 @@ class Suggestions:
             aci = r.get("autocorrelation_ci") or [None, None]
             sci = r.get("heldout_score_ci") or [None, None]
             hci = r.get("heldout_fisher_ratio_ci") or [None, None]
+            oci = r.get("heldout_overlap_ci") or [None, None]
+            rci = r.get("heldout_autocorrelation_ci") or [None, None]
+            tci = r.get("timescale_ci_ps") or [None, None]
+            ici = r.get("integrated_time_ci_ps") or [None, None]
             w.writerow([r["rank"], r["spec"], r["n_terms"], r["objective"], r["method"],
                         _fmt(r["heldout_score"]), _fmt(r["heldout_score_se"]),
                         _fmt(sci[0]), _fmt(sci[1]),
                         _fmt(r["heldout_fisher_ratio"]), _fmt(r["heldout_fisher_ratio_se"]),
                         _fmt(hci[0]), _fmt(hci[1]),
-                        _fmt(r["heldout_overlap"]), _fmt(r["fisher_ratio_all"]),
+                        _fmt(r["heldout_overlap"]), _fmt(oci[0]), _fmt(oci[1]),
+                        _fmt(r["fisher_ratio_all"]),
                         _fmt(fci[0]), _fmt(fci[1]), _fmt(r["lag_ps"]),
-                        _fmt(r["heldout_autocorrelation"]), _fmt(r["autocorrelation_all"]),
+                        _fmt(r["heldout_autocorrelation"]), _fmt(rci[0]), _fmt(rci[1]),
+                        _fmt(r["autocorrelation_all"]),
                         _fmt(aci[0]), _fmt(aci[1]), _fmt(r["timescale_ps"]),
+                        _fmt(tci[0]), _fmt(tci[1]), _fmt(r.get("integrated_time_ps")),
+                        _fmt(ici[0]), _fmt(ici[1]),
                         "; ".join(_term_name(t) for t in r["terms"]),
                         " ".join(_fmt(t["weight"]) for t in r["terms"]),
                         " ".join("[" + ",".join(_fmt(v) for v in t["weight_ci"]) + "]"
@@ -255,6 +265,11 @@ class Suggestions:
             files["states.csv"] = self.exploration.states_csv()
         write_dir_atomically(out_dir, files)
         return out_dir
+
+
+#: Score-card columns with an interval, in CSV order; the integrated time is in ps.
+_CARD_COLUMNS = ("fisher_ratio", "overlap", "autocorrelation", "autocorrelation_within_runs",
+                 "integrated_time")
 
 
 def _term_name(t):
@@ -451,6 +466,11 @@ class _Series:
         out[ok] = ct[ok] / c0[ok]
         return out
 
+    def run_means(self):
+        """Mean of the lagged pairs of each key (reversible, both ends), by key."""
+        return {key: acc.moments.covariances(reversible=True)[0]
+                for key, acc in self._acc.items() if acc.moments.count > 0}
+
     def moments(self, select=None):
         """Merged moments of the keys for which ``select(key)`` is true (all if None)."""
         out = []
@@ -510,7 +530,7 @@ def _iat_lags(seg_counts, max_lag=2000):
     return np.unique(np.round(np.geomspace(1, top, 18)).astype(int))
 
 
-def integrated_time(lags, rho, dt, *, window=5.0):
+def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
     """Integrated autocorrelation time from the autocorrelation on a grid of lags.
 
     ``tau_int = dt * (1/2 + sum_{k>=1} rho(k))`` (Sokal 1997, in *Functional
@@ -530,6 +550,8 @@ def integrated_time(lags, rho, dt, *, window=5.0):
         Time between frames, ps (1 for frames).
     window : float, default=5.0
         Window factor ``c`` (Sokal recommends 4 to 10 for nearly exponential decay).
+    return_window : bool, default=False
+        Also return the summation window of each feature, frames.
 
     Returns
     -------
@@ -539,6 +561,8 @@ def integrated_time(lags, rho, dt, *, window=5.0):
         False where no lag of the grid satisfies the window condition: the
         motion did not decorrelate within the runs and `tau` (the integral over
         the whole grid) is a lower bound.
+    window_frames : ndarray of shape (n_features,)
+        Only with `return_window`: the lag (frames) where the sum stopped.
 
     Examples
     --------
@@ -559,6 +583,8 @@ def integrated_time(lags, rho, dt, *, window=5.0):
     decayed = ok.any(axis=0)
     stop = np.where(decayed, ok.argmax(axis=0), len(grid) - 1)
     tau = cum[stop, np.arange(rho.shape[1])]
+    if return_window:
+        return tau * dt, decayed, grid[stop]
     return tau * dt, decayed
 
 
@@ -849,10 +875,12 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     if iat and dt_unit is not None:
         # within runs: each (file, state) series about its own mean
         rho_grid = np.array([a.local_autocorrelation() for a in iat])
-        tau, decayed = integrated_time(iat_lags, rho_grid, dt_unit)
+        tau, decayed, window = integrated_time(iat_lags, rho_grid, dt_unit, return_window=True)
+        tau_lo, tau_hi = integrated_time_interval(tau, window, int(seg_counts.sum()))
         for gi, i in enumerate(screened):
             j = int(groups[gi][np.argmax(tau[groups[gi]])])
-            iat_desc[i] = (float(tau[j]), bool(decayed[j]))
+            ci = [float(tau_lo[j]), float(tau_hi[j])] if decayed[j] else None
+            iat_desc[i] = (float(tau[j]), bool(decayed[j]), ci)
 
     # ---- shortlist: one representative per group of redundant descriptors
     pooled = fm.pooled()
@@ -904,11 +932,18 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     short_desc = sorted({screened[g] for g in short})
     block_frames = _block_frames(seg_counts, [iat_desc.get(screened[g]) for g in short],
                                  timesteps, lag_frames)
+    card = card_desc = None
+    if n_bootstrap:
+        card, card_desc, card_feat, card_note = _card_setup(
+            pool, order, seg_counts, list(iat_desc.values()), timesteps, lag_frames, center,
+            low, high, lag1)
+        notes.append(card_note)
     pass3 = _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds,
-                   short_desc, block_frames, lag_frames)
+                   short_desc, block_frames, lag_frames,
+                   card=None if card is None else (card, card_feat))
     heldout_overlap = pass3["overlap"]
 
-    boot = None
+    boot = card_ci = None
     if n_bootstrap:
         _note(progress, f"bootstrap ({n_bootstrap} replicates)")
         boot = _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors,
@@ -916,6 +951,11 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         notes.append(f"uncertainties: block bootstrap, {n_bootstrap} replicates (seed {seed}), "
                      f"blocks of {pass3['block_desc']} resampled within each state; 95 % "
                      "percentile intervals")
+        card_ci = _card_intervals(card, card_desc, card_feat, pool, center, priors, constant,
+                                  n_bootstrap, seed)
+        if card_ci is None:
+            notes.append("score card: no bootstrap intervals (a state has fewer than two "
+                         "blocks); give more or longer runs")
 
     # ---- outputs
     scorecard = []
@@ -934,10 +974,10 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
             "screened": i in screened_set, "shortlisted": i in short_set,
             "stands_for": stands_for.get(i, []), "note": notes_by_desc.get(i, ""),
         }
-        if boot is not None and i in boot["desc"]:
-            row["fisher_ratio_ci"] = boot["desc"][i]["fisher_ratio_ci"]
-            if "autocorrelation_ci" in boot["desc"][i]:
-                row["autocorrelation_ci"] = boot["desc"][i]["autocorrelation_ci"]
+        if tau is not None and tau[2] is not None:
+            row["integrated_time_ci"] = tau[2]
+        if card_ci is not None and i in card_ci:
+            row.update(card_ci[i])
         scorecard.append(row)
 
     params = {"objective": objective, "method": method, "lag_ps": lag_ps,
@@ -962,7 +1002,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         entry["longest_run_ps"] = longest_run_ps
         taus = [iat_desc[screened[g]] for g in fit[0] if screened[g] in iat_desc]
         # within-run decorrelation time of the CV, bounded by its slowest term
-        entry["integrated_time_ps"] = max(t for t, _ in taus) if taus else None
+        slowest = max(taus, key=lambda t: t[0]) if taus else None
+        entry["integrated_time_ps"] = None if slowest is None else slowest[0]
+        entry["integrated_time_ci_ps"] = None if slowest is None else slowest[2]
         entry["hints"] = _hints_for(entry, temperature, md_timestep_fs)
         ranking.append(entry)
         specs.append(_spec_dict(source, pool, entry["spec"], entry, params, checksums,
@@ -1059,15 +1101,16 @@ def _box_notes(pool, diag, min_box):
 def _block_frames(seg_counts, taus, timesteps, lag_frames):
     """Bootstrap block length in frames, or None for whole runs.
 
-    At least twice the longest integrated autocorrelation time of the
-    shortlist and two lags; whole runs when that exceeds half the shortest
-    run, or when some shortlisted motion did not decorrelate within the runs.
+    At least twice the longest integrated autocorrelation time of `taus`
+    (``(time, decayed, ...)`` or None each) and two lags; whole runs when that
+    exceeds half the shortest run, when some motion did not decorrelate within
+    the runs, or when no time is known.
     """
     dt = next(iter(timesteps.values())) or 1.0
     known = [t for t in taus if t is not None]
-    if any(not decayed for _, decayed in known):
+    if not known or any(not decayed for _, decayed, *_ in known):
         return None
-    longest = max((t for t, _ in known), default=0.0)
+    longest = max(t for t, *_ in known)
     b = max(1, int(math.ceil(2.0 * longest / dt)))
     if lag_frames:
         b = max(b, 2 * max(lag_frames.values()))
@@ -1201,18 +1244,63 @@ def _spec_dict(source, pool, name, entry, params, checksums, seed):
     }
 
 
+def _card_setup(pool, order, seg_counts, taus, timesteps, lag_frames, center, low, high,
+                lag1):
+    """Block sums for the score card's intervals: which descriptors, what blocks."""
+    bf = _block_frames(seg_counts, taus, timesteps, lag_frames)
+    has_lag = lag1 is not None
+    bf, kept = plan_card_blocks(seg_counts, bf, pool.n_features, n_bins=_N_BINS,
+                                has_lag=has_lag)
+    card_desc, n = [], 0
+    for i in order:  # best separating first
+        k = len(pool.descriptors[i].transforms)
+        if n + k > kept:
+            break
+        card_desc.append(i)
+        n += k
+    card_feat = (np.concatenate([pool.features_of([i]) for i in card_desc]) if card_desc
+                 else np.zeros(0, dtype=np.intp))
+    means = None
+    if has_lag:
+        means = {key: m[card_feat] for key, m in lag1.run_means().items()}
+    card = CardBlocks(center[card_feat], low[card_feat], high[card_feat], _N_BINS, bf,
+                      lag_frames if has_lag else None, means)
+    what = ("every descriptor" if len(card_desc) == len(pool)
+            else f"the best {len(card_desc)} of {len(pool)} descriptors (memory budget)")
+    blocks = f"blocks of {bf} frames" if bf else "whole runs as blocks"
+    note = (f"score card: 95 % block-bootstrap intervals for {what}, {blocks} of each run "
+            "resampled within each state (lagged pairs in the block of their first frame); "
+            "integrated times: asymptotic 95 % intervals (Madras and Sokal 1988), since "
+            "their window is longer than a block")
+    return card, card_desc, card_feat, note
+
+
+def _card_intervals(card, card_desc, card_feat, pool, center, priors, constant, n_boot, seed):
+    """Score-card intervals by descriptor id: {index: {column_ci: [low, high]}}."""
+    if not card_desc:
+        return None
+    local = {i: j for j, i in enumerate(card_desc)}
+    feature_descriptor = np.array([local[int(pool.feature_descriptor[f])] for f in card_feat],
+                                  dtype=np.intp)
+    res = card_intervals(card, center[card_feat], priors, constant[card_feat],
+                         feature_descriptor, len(card_desc), n_boot=n_boot, seed=seed + 2)
+    if res is None:
+        return None
+    out = {}
+    for j, i in enumerate(card_desc):
+        out[i] = {f"{name}_ci": [_finite(lo[j]), _finite(hi[j])]
+                  for name, (_, lo, hi) in res.items()}
+    return out
+
+
 def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, short_desc,
-           block_frames, lag_frames):
+           block_frames, lag_frames, card=None):
     """Held-out CV histograms of the ranked combinations, and per-block statistics of the
-    shortlisted features (for the bootstrap), in one pass over the data."""
+    shortlisted features and CV histograms (for the bootstrap), in one pass over the data.
+
+    With ``card=(CardBlocks, pool feature indices)`` the pass also computes every
+    feature of the pool and feeds the score card's block sums."""
     n_states, n_folds = source.n_states, folds.n_folds
-    sub = pool.subset(short_desc)
-    sub_atoms = sub.atom_indices()
-    # pool feature index -> column of the subset pool's features
-    col_of = {}
-    for j, i in enumerate(short_desc):
-        for fs, fp in zip(sub.features_of([j]), pool.features_of([i])):
-            col_of[int(fp)] = int(fs)
     # all shortlisted features, as screened-local indices (columns of the fold moments)
     short_set = set(short_desc)
     local, pos = [], 0
@@ -1222,7 +1310,18 @@ def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, sho
             local.extend(range(pos, pos + n))
         pos += n
     local = np.array(local, dtype=np.intp)
-    cols = np.array([col_of[int(scr_feat[i])] for i in local], dtype=np.intp)
+    if card is None:
+        sub = pool.subset(short_desc)
+        # pool feature index -> column of the subset pool's features
+        col_of = {}
+        for j, i in enumerate(short_desc):
+            for fs, fp in zip(sub.features_of([j]), pool.features_of([i])):
+                col_of[int(fp)] = int(fs)
+        cols = np.array([col_of[int(scr_feat[i])] for i in local], dtype=np.intp)
+    else:
+        sub = pool
+        cols = scr_feat[local]
+    sub_atoms = sub.atom_indices()
     c, sc = center[scr_feat[local]], scale[scr_feat[local]]
     where = {int(i): p for p, i in enumerate(local)}
     plans = []
@@ -1239,8 +1338,19 @@ def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, sho
                 lo, hi = lo - 1.0, hi + 1.0
             ranges.append((lo, hi))
         plans.append((p_idx, fold_w, ranges))
-    counts = np.zeros((len(fits), n_folds, n_states, _N_BINS))
-    block_m = {}
+
+    def cv_hist(zr, k):
+        """Histogram of each ranked CV (fold k's direction) over rows zr: (n_combos, bins)."""
+        h = np.zeros((len(plans), _N_BINS))
+        for ci, (p_idx, fold_w, ranges) in enumerate(plans):
+            lo, hi = ranges[k]
+            v = zr[:, p_idx] @ fold_w[k]
+            b = np.clip(np.floor((v - lo) / (hi - lo) * _N_BINS).astype(np.intp), 0,
+                        _N_BINS - 1)
+            h[ci] = np.bincount(b, minlength=_N_BINS)
+        return h
+
+    block_m, block_h = {}, {}
     lagged = _Series(local.size, np.zeros(local.size), diagonal=False) if lag_frames else None
     seen = {}
     folds.reset()
@@ -1250,17 +1360,9 @@ def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, sho
         z = (x[:, cols] - c) / sc
         f = folds.of(chunk)
         si = chunk.segment_index
-        for ci, (p_idx, fold_w, ranges) in enumerate(plans):
-            for k in np.unique(f):
-                rows = f == k
-                v = z[rows][:, p_idx] @ fold_w[k]
-                lo, hi = ranges[k]
-                b = np.clip(np.floor((v - lo) / (hi - lo) * _N_BINS).astype(np.intp), 0,
-                            _N_BINS - 1)
-                st = chunk.states[rows]
-                for s in np.unique(st):
-                    counts[ci, k, s] += np.bincount(b[st == s], minlength=_N_BINS)
         for s, rows in _runs(chunk):
+            if card is not None:
+                card[0].add(si, s, chunk.frames[rows], x[rows][:, card[1]])
             for k in np.unique(f[rows]):
                 r = rows[f[rows] == k]
                 key3 = (si, s, int(k))
@@ -1272,21 +1374,29 @@ def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, sho
                     key = (s, int(k), si, int(bi))
                     m = Moments.from_data(z[rr])
                     block_m[key] = m if key not in block_m else block_m[key].merge(m)
+                    h = cv_hist(z[rr], int(k))
+                    block_h[key] = h if key not in block_h else block_h[key] + h
                     if lagged is not None:
                         lagged.feed(key, chunk.frames[rr], z[rr], lag_frames[si])
-    overlap = []
-    for ci in range(len(fits)):
-        per_fold = [overlap_coefficient(counts[ci, k][:, None, :])[0] for k in range(n_folds)]
-        overlap.append(float(np.mean(per_fold)))
     blocks = {}
     for key in sorted(block_m):
         lm = lagged.moments_of(key) if lagged is not None else None
-        blocks.setdefault(key[:2], []).append((block_m[key], lm))
+        blocks.setdefault(key[:2], []).append((block_m[key], lm, ArraySum(h=block_h[key])))
+    counts = np.zeros((n_folds, n_states, len(fits), _N_BINS))
+    for (s, k), blist in blocks.items():
+        for b in blist:
+            counts[k, s] += b[2]["h"]
+    overlap = [float(v) for v in _heldout_overlap(counts)] if fits else []
     n_blocks = sum(len(v) for v in blocks.values())
     desc = (f"{block_frames} frames" if block_frames else
             "whole runs (or their pieces in each fold)") + f" ({n_blocks} blocks)"
     return {"overlap": overlap, "blocks": blocks, "where": where,
             "block_desc": desc}
+
+
+def _heldout_overlap(counts):
+    """Mean over folds of the states' overlap along each CV; counts (fold, state, cv, bin)."""
+    return np.mean([overlap_coefficient(counts[k]) for k in range(counts.shape[0])], axis=0)
 
 
 def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm, search,
@@ -1300,6 +1410,7 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
         return None
     has_lag = lag_frames is not None
     p_fits = [(np.array([where[int(i)] for i in idx], dtype=np.intp), w) for _, idx, w, _ in fits]
+    fold_ws = [fold_w for *_, fold_w in fits]
     short_groups = [np.array([where[int(i)] for i in groups[g]], dtype=np.intp) for g in short]
 
     def stat(merged):
@@ -1320,17 +1431,10 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
             out.extend(w.tolist())
             out.append(rayleigh_quotient(w, means, covs, priors))
             out.append(autocorrelation_along(w, lag, p_idx) if has_lag else np.nan)
-        means = np.array([m.mean for m in states])
-        var = np.array([m.variance for m in states])
-        f = fisher_ratio(means, var, priors)
-        out.extend(max(f[g]) for g in short_groups)
-        if has_lag:
-            rho = lag.diagonal().autocorrelation()
-            out.extend(max(rho[g]) for g in short_groups)
         return np.array(out)
 
     res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed)
-    out = {"combos": [], "desc": {}, "selection": None}
+    out = {"combos": [], "selection": None}
     pos = 0
     for p_idx, _ in p_fits:
         n = p_idx.size
@@ -1342,14 +1446,6 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
                                     _finite(res.high[pos + n + 1])] if has_lag else None),
         })
         pos += n + 2
-    for j, g in enumerate(short):
-        out["desc"][screened[g]] = {"fisher_ratio_ci": [_finite(res.low[pos + j]),
-                                                        _finite(res.high[pos + j])]}
-    pos += len(short)
-    if has_lag:
-        for j, g in enumerate(short):
-            out["desc"][screened[g]]["autocorrelation_ci"] = [_finite(res.low[pos + j]),
-                                                              _finite(res.high[pos + j])]
     # How often each candidate is in the rank-1 combination of a refit of the search
     # (seeded from the best single descriptor) on a bootstrap resample of the folds.
     # Candidates: the terms of the ranked combinations and the best SELECTION_POOL
@@ -1370,13 +1466,20 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
             best = rank_combinations(combos, limit=1)[0]
             hit = np.zeros(len(cand))
             hit[list(best.members)] = 1.0
-            # held-out scores of the ranked combinations on the resampled folds
+            # held-out scores of the ranked combinations on the resampled folds (refitted),
+            # and their held-out overlap and autocorrelation along the fold directions
             held = []
-            for p_idx, _ in p_fits:
+            counts = np.array([[merged[s * n_folds + k][2]["h"] for s in range(n_states)]
+                               for k in range(n_folds)])
+            overlap = _heldout_overlap(counts)
+            for ci, (p_idx, _) in enumerate(p_fits):
                 held.append(heldout_score(boot_fm, p_idx, **search)[0])
                 held.append(heldout_score(boot_fm, p_idx, objective="separate",
                                           method=search["method"],
                                           shrinkage=search["shrinkage"])[0])
+                held.append(overlap[ci])
+                held.append(np.mean([autocorrelation_along(fold_ws[ci][k], lag[k], p_idx)
+                                     for k in range(n_folds)]) if has_lag else np.nan)
             return np.concatenate([hit, held])
 
         n_sel = min(n_bootstrap, SELECTION_REPLICATES)
@@ -1386,8 +1489,11 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
             else np.full(len(cand), np.nan)
         low, high = percentile_interval(sel.replicates[ok, len(cand):])
         for i, c in enumerate(out["combos"]):
-            c["heldout_score_ci"] = [_finite(low[2 * i]), _finite(high[2 * i])]
-            c["heldout_fisher_ratio_ci"] = [_finite(low[2 * i + 1]), _finite(high[2 * i + 1])]
+            for j, key in enumerate(("heldout_score_ci", "heldout_fisher_ratio_ci",
+                                     "heldout_overlap_ci", "heldout_autocorrelation_ci")):
+                c[key] = [_finite(low[4 * i + j]), _finite(high[4 * i + j])]
+            if not has_lag:
+                c["heldout_autocorrelation_ci"] = None
         out["selection"] = {pool.descriptors[screened[short[j]]].id: _finite(freq[c])
                             for c, j in enumerate(cand)}
         out["n_selection"] = int(ok.sum())
@@ -1452,7 +1558,8 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
         entry["fisher_ratio_ci"] = ci["fisher_ratio_ci"]
         entry["autocorrelation_ci"] = ci["autocorrelation_ci"]
         entry["bootstrap_refits_for_selection"] = boot.get("n_selection")
-        for key in ("heldout_score_ci", "heldout_fisher_ratio_ci"):
+        for key in ("heldout_score_ci", "heldout_fisher_ratio_ci", "heldout_overlap_ci",
+                    "heldout_autocorrelation_ci"):
             if ci.get(key) is not None:
                 entry[key] = ci[key]
         aci = ci.get("autocorrelation_ci")

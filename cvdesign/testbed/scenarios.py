@@ -12,8 +12,6 @@ All runs of one call are independent walkers of one
 arguments give the same bytes (on the same platform and library versions).
 """
 
-import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -179,7 +177,7 @@ def write_two_wells(out_dir, *, seed=7, n_runs_per_state=2, n_frames=1500, repor
 
     Examples
     --------
-    >>> import tempfile
+    >>> import os, tempfile
     >>> with tempfile.TemporaryDirectory() as d:
     ...     data = write_two_wells(d, n_runs_per_state=1, n_frames=5,
     ...                            equilibration_steps=10, check=False)
