@@ -13,6 +13,7 @@ import argparse
 import csv
 import io
 import json
+import math
 import sys
 from pathlib import Path
 
@@ -225,8 +226,12 @@ def build_parser():
                    help="mdtraj selection of the pocket atoms whose centre is the axis origin")
     p.add_argument("--exit-point", nargs=3, type=float, metavar=("X", "Y", "Z"), default=None,
                    help="a point in nm, toward the solvent, the axis passes through")
+    p.add_argument("--k-wall", type=float, default=2000.0, metavar="KJ_PER_MOL_NM2",
+                   help="force constant of the funnel walls, kJ/mol/nm^2 (default: 2000; at "
+                        "300 K the ligand centre then enters a wall by about 0.035 nm at kT)")
     p.add_argument("--out", required=True, metavar="FILE.json",
-                   help="output file for the funnel parameters")
+                   help="output spec: the distance between the pocket and ligand centres as "
+                        "the CV, with the funnel as a restraint entry")
     p.add_argument("--plot", metavar="FILE.png", default=None,
                    help="also draw the axis, the funnel outline and the ligand positions "
                         "(needs matplotlib: pip install 'cvdesign[plot]')")
@@ -478,7 +483,6 @@ def _cmd_hints(args):
 
 
 def _cmd_funnel(args):
-    from ._io import atomic_open
     from .funnel import CAUTION as FUNNEL_CAUTION, plot_funnel, size_funnel
     from .source import Source, select_atoms
 
@@ -502,12 +506,12 @@ def _cmd_funnel(args):
             xyz = c.trajectory.xyz.astype(np.float64)
             yield xyz[:, :pocket.size], xyz[:, pocket.size:]
 
+    if not (math.isfinite(args.k_wall) and args.k_wall > 0):
+        raise InputError(f"--k-wall {args.k_wall!r} must be a positive force constant in "
+                         "kJ/mol/nm^2")
     result = size_funnel(chunks=chunks, exit_point=args.exit_point)
-    doc = {"format": "cvdesign-funnel", "version": 1, "units": {"length": "nm", "angle": "rad"},
-           "ligand_atoms": lig.tolist(), "pocket_atoms": pocket.tolist(),
-           "inputs": [Path(f).name for f in args.bound], **result}
-    with atomic_open(out, "w", encoding="utf-8", newline="\n") as fh:
-        fh.write(json.dumps(doc, indent=2, sort_keys=True, allow_nan=False) + "\n")
+    spec = _funnel_spec(source, args, lig, pocket, result, chunks)
+    spec.save(out)
     prm = result["params"]
     print(f"funnel: axis {np.round(prm['axis'], 3).tolist()} from origin "
           f"{np.round(prm['origin'], 3).tolist()} nm; cone half-angle {prm['alpha']:.3f} rad, "
@@ -522,6 +526,47 @@ def _cmd_funnel(args):
     print(f"wrote {args.out}")
     print(f"caution: {result.get('caution', FUNNEL_CAUTION)}")
     return 0
+
+
+def _funnel_spec(source, args, lig, pocket, result, chunks):
+    """The spec `cvdesign funnel` writes: centre distance as the CV, the funnel as a restraint."""
+    from .funnel import CAUTION as FUNNEL_CAUTION
+    from .source import file_sha256
+    from .spec import Spec, residue_hashes, topology_fingerprint
+
+    top = source.topology
+    dist = np.concatenate([np.linalg.norm(lg.mean(axis=1) - pk.mean(axis=1), axis=1)
+                           for pk, lg in chunks()])
+    prm = result["params"]
+    restraint = {"id": "funnel", "kind": "funnel",
+                 "label": f"funnel: ligand ({args.ligand}) over pocket ({args.pocket})",
+                 "groups": [lig.tolist(), pocket.tolist()], "axis": prm["axis"],
+                 **{k: prm[k] for k in ("z_min", "z_max", "z_cc", "alpha", "r_cyl", "blend")},
+                 "k_wall": float(args.k_wall)}
+    sizing = {k: result[k] for k in ("axis_rule", "observed", "margins", "reasoning")}
+    sizing["origin_nm"] = prm["origin"]
+    sizing["k_wall_rule"] = ("k_wall: stiff enough that the ligand centre enters a wall by "
+                             "only sqrt(kT / k_wall) (0.035 nm at 300 K for 2000 kJ/mol/nm^2; "
+                             "common practice)")
+    return Spec(
+        name="funnel", topology=top,
+        descriptors=[{"id": "center_distance:pocket-ligand", "kind": "center_distance",
+                      "label": "distance between the pocket and ligand centres",
+                      "groups": [pocket.tolist(), lig.tolist()], "weighting": "geometric"}],
+        terms=[{"descriptor": "center_distance:pocket-ligand", "transform": "identity",
+                "center": 0.0, "scale": 1.0, "weight": 1.0}],
+        states={"bound": {"mean": float(dist.mean()), "std": float(dist.std()),
+                          "n_frames": int(dist.size)}},
+        scores={}, hints={"funnel_sizing": sizing}, restraints=[restraint],
+        provenance={"method": "funnel sizing from bound-state frames",
+                    "inputs": [{"file": Path(f).name, "sha256": file_sha256(f), "state": "bound"}
+                               for f in args.bound],
+                    "seed": None,
+                    "topology_file": {"file": Path(args.topology).name,
+                                      "fingerprint": topology_fingerprint(top),
+                                      "residues": residue_hashes(top)}},
+        caution=result.get("caution", FUNNEL_CAUTION),
+    )
 
 
 def demo_data_dir():

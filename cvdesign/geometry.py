@@ -54,6 +54,7 @@ __all__ = [
     "distances",
     "angles",
     "dihedrals",
+    "center_displacement",
     "center_distance",
     "coordination",
     "coordination_pairs",
@@ -795,6 +796,55 @@ def _group_points(xyz, groups, names):
     return out
 
 
+def center_displacement(xyz, group_a, group_b, box=None, *, masses_a=None, masses_b=None):
+    """Vector from the center of group a to the center of group b, nm.
+
+    Groups are made whole and the vector is the minimum image, as in
+    :func:`center_distance`.
+
+    Parameters
+    ----------
+    xyz : array-like of shape (n_frames, n_atoms, 3)
+        nm.
+    group_a, group_b : sequence of int
+        0-based atom indices.
+    box : array-like or None, default=None
+        Periodic box in nm; see :func:`minimum_image`.
+    masses_a, masses_b : array-like or None, default=None
+        Atom masses in dalton; None: geometric centers.
+
+    Returns
+    -------
+    delta : ndarray of shape (n_frames, 3)
+        nm.
+    weights_a, weights_b : ndarray
+        The normalized weights of each group's atoms: the derivative of
+        ``delta`` with respect to atom i of group b is ``weights_b[i]`` times
+        the identity, and ``-weights_a[i]`` for group a.
+
+    Examples
+    --------
+    >>> xyz = np.array([[[0.0, 0, 0], [0.2, 0, 0], [0.6, 0, 0]]])
+    >>> center_displacement(xyz, [0, 1], [2])[0].round(6)
+    array([[0.5, 0. , 0. ]])
+    """
+    xyz = _check_xyz(xyz)
+    n_frames, n_atoms, _ = xyz.shape
+    ga = _check_group(group_a, n_atoms, "group_a")
+    gb = _check_group(group_b, n_atoms, "group_b")
+    wa = _check_weights(masses_a, len(ga), "masses_a", "group_a")
+    wb = _check_weights(masses_b, len(gb), "masses_b", "group_b")
+    kind, parsed = _parse_box(box, n_frames)
+    pa, pb = _group_points(xyz, (ga, gb), ("group_a", "group_b"))
+
+    def center(points, w):
+        whole = points[:, :1, :] + _apply_minimum_image(points - points[:, :1, :], kind, parsed)
+        return np.einsum("fak,a->fk", whole, w)
+
+    delta = _apply_minimum_image((center(pb, wb) - center(pa, wa))[:, None, :], kind, parsed)[:, 0, :]
+    return delta, wa, wb
+
+
 def center_distance(xyz, group_a, group_b, box=None, *, masses_a=None, masses_b=None, gradient=False):
     """Distance between the centers of two atom groups, with an optional periodic box.
 
@@ -859,20 +909,7 @@ def center_distance(xyz, group_a, group_b, box=None, *, masses_a=None, masses_b=
     >>> value.round(6), grad[0, :, 0].round(6)
     (array([0.55]), array([-0.75, -0.25,  1.  ]))
     """
-    xyz = _check_xyz(xyz)
-    n_frames, n_atoms, _ = xyz.shape
-    ga = _check_group(group_a, n_atoms, "group_a")
-    gb = _check_group(group_b, n_atoms, "group_b")
-    wa = _check_weights(masses_a, len(ga), "masses_a", "group_a")
-    wb = _check_weights(masses_b, len(gb), "masses_b", "group_b")
-    kind, parsed = _parse_box(box, n_frames)
-    pa, pb = _group_points(xyz, (ga, gb), ("group_a", "group_b"))
-
-    def center(points, w):
-        whole = points[:, :1, :] + _apply_minimum_image(points - points[:, :1, :], kind, parsed)
-        return np.einsum("fak,a->fk", whole, w)
-
-    delta = _apply_minimum_image((center(pb, wb) - center(pa, wa))[:, None, :], kind, parsed)[:, 0, :]
+    delta, wa, wb = center_displacement(xyz, group_a, group_b, box, masses_a=masses_a, masses_b=masses_b)
     value = _norm(delta)
     if not gradient:
         return value

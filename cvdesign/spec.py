@@ -613,6 +613,45 @@ def _semantic_check(doc):
             )
 
 
+#: Relative tolerance on the length of a funnel axis (a unit vector).
+_AXIS_RTOL = 1e-6
+
+
+def _check_restraints(doc):
+    n_atoms = doc["topology"]["n_atoms"]
+    first_at = {}
+    for k, res in enumerate(doc.get("restraints", [])):
+        here = f"$.restraints[{k}]"
+        if res["id"] in first_at:
+            raise SpecError(
+                f"restraint id {res['id']!r} is used twice (first at {first_at[res['id']]}); ids "
+                "must be unique",
+                f"{here}.id",
+            )
+        first_at[res["id"]] = here
+        _check_group_descriptor(res, here, n_atoms)
+        shared = sorted(set(res["groups"][0]) & set(res["groups"][1]))
+        if shared:
+            raise SpecError(
+                f"atoms {shared[:5]} are in both the ligand (groups[0]) and the pocket "
+                "(groups[1]); the two groups of a funnel must not share atoms",
+                f"{here}.groups",
+            )
+        norm = math.sqrt(sum(float(v) ** 2 for v in res["axis"]))
+        if not abs(norm - 1.0) <= _AXIS_RTOL:
+            raise SpecError(f"the funnel axis must be a unit vector; its length is {norm!r}",
+                            f"{here}.axis")
+        if not res["z_min"] < res["z_cc"] < res["z_max"]:
+            raise SpecError(
+                f"needs z_min < z_cc < z_max (nm along the axis); got z_min {res['z_min']!r}, "
+                f"z_cc {res['z_cc']!r}, z_max {res['z_max']!r}",
+                f"{here}.z_cc",
+            )
+        if not res["alpha"] < math.pi / 2:
+            raise SpecError(f"the cone half-angle must be below pi/2 rad; got {res['alpha']!r}",
+                            f"{here}.alpha")
+
+
 def _normalize(doc):
     """Fix the numeric types of the structured fields (ints stay ints, numbers become floats)."""
     doc["version"] = int(doc["version"])
@@ -638,6 +677,14 @@ def _normalize(doc):
     for term in doc["terms"]:
         for key in ("center", "scale", "weight"):
             term[key] = float(term[key])
+    for res in doc.get("restraints", []):
+        res["groups"] = [[int(a) for a in group] for group in res["groups"]]
+        for ident in (i for group in res["atom_identities"] for i in group):
+            ident["chain"] = int(ident["chain"])
+            ident["resid"] = int(ident["resid"])
+        res["axis"] = [float(v) for v in res["axis"]]
+        for key in ("z_min", "z_max", "z_cc", "alpha", "r_cyl", "blend", "k_wall"):
+            res[key] = float(res[key])
     for state in doc["states"].values():
         state["mean"] = float(state["mean"])
         state["std"] = float(state["std"])
@@ -679,6 +726,7 @@ def _validated(document):
         )
     _schema_check(doc)
     _semantic_check(doc)
+    _check_restraints(doc)
     return _normalize(doc)
 
 
@@ -732,6 +780,19 @@ def _filled_descriptor(desc, mdtop, here):
                 masses[-1].append(float(mass))
         desc["masses"] = masses
     return desc
+
+
+def _filled_restraint(res, mdtop, here):
+    """A restraint dict with its label and, from a topology, atom identities filled in."""
+    if not isinstance(res, dict):
+        raise SpecError(f"a restraint is a dict; got {type(res).__name__}", here)
+    res = dict(res)
+    res.setdefault("label", res.get("id", ""))
+    had_periodic = "periodic" in res
+    res = _filled_descriptor(res, mdtop, here)
+    if not had_periodic:
+        res.pop("periodic", None)
+    return res
 
 
 def _default_period(terms):
@@ -857,6 +918,7 @@ class Spec:
         provenance=None,
         caution="",
         hints=None,
+        restraints=None,
     ):
         mdtop = None
         if isinstance(topology, (md.Topology, md.Trajectory)):
@@ -893,11 +955,17 @@ class Spec:
         }
         if hints is not None:
             doc["hints"] = hints
+        if restraints is not None:
+            if not isinstance(restraints, (list, tuple)):
+                raise SpecError(f"restraints must be a list of dicts; got {type(restraints).__name__}",
+                                "$.restraints")
+            doc["restraints"] = [_filled_restraint(r, mdtop, f"$.restraints[{k}]")
+                                 for k, r in enumerate(restraints)]
         if period is not None:
             doc["period"] = period
         self._doc = _validated(doc)
         if mdtop is not None:
-            for k, desc in enumerate(self._doc["descriptors"]):
+            for k, desc, section in self._atom_users():
                 for atom, given, where in _atoms_and_identities(desc):
                     actual = _identity_of(mdtop.atom(atom))
                     if given != actual:
@@ -905,7 +973,7 @@ class Spec:
                             f"the identity given for atom {atom} ({_describe(given)}) does not match "
                             f"the topology ({_describe(actual)}); leave atom_identities out to have "
                             "them taken from the topology",
-                            f"$.descriptors[{k}]{where}",
+                            f"$.{section}[{k}]{where}",
                         )
 
     # -- construction and serialization ---------------------------------
@@ -1106,6 +1174,18 @@ class Spec:
         """dict or None : bias-parameter suggestions, when the spec has them (a copy)."""
         return copy.deepcopy(self._doc.get("hints"))
 
+    @property
+    def restraints(self):
+        """list of dict : the restraints (a copy); empty when the spec has none."""
+        return copy.deepcopy(self._doc.get("restraints", []))
+
+    def _atom_users(self):
+        """(index, entry, section) for every descriptor and restraint that names atoms."""
+        for k, desc in enumerate(self._doc["descriptors"]):
+            yield k, desc, "descriptors"
+        for k, res in enumerate(self._doc.get("restraints", [])):
+            yield k, res, "restraints"
+
     def __eq__(self, other):
         if not isinstance(other, Spec):
             return NotImplemented
@@ -1286,6 +1366,73 @@ class Spec:
             np.add.at(grad, (slice(None), atoms.ravel()), contribution.reshape(n_frames, -1, 3))
         return cv, grad
 
+    def restraint_energy(self, xyz, box=None, gradient=False):
+        """Energy of the spec's restraints, and optionally its gradient.
+
+        A ``funnel`` restraint acts on ``d``, the vector (minimum image with
+        a box) from the geometric center of the pocket (``groups[1]``) to that
+        of the ligand (``groups[0]``): with ``z = d . axis`` and ``r`` the
+        distance of ``d`` from the axis, ``E = k/2 (r - R(z))^2`` where ``r >
+        R(z)``, plus ``k/2 (z_min - z)^2`` below ``z_min`` and ``k/2 (z -
+        z_max)^2`` above ``z_max``; ``R(z)`` is the cone-plus-cylinder radius
+        of :func:`cvdesign.funnel.funnel_radius` (smooth at the junction). The
+        axis is fixed in the box frame, so the pocket must not rotate (the
+        usual setup restrains or aligns it).
+
+        Parameters
+        ----------
+        xyz : array-like of shape (n_frames, n_atoms, 3)
+            nm, all atoms of the topology in order.
+        box : array-like or None, default=None
+            Periodic box in nm (see :meth:`descriptor_values`).
+        gradient : bool, default=False
+            Also return the analytic gradient.
+
+        Returns
+        -------
+        energy : ndarray of shape (n_frames,)
+            kJ/mol, summed over the restraints (0 without restraints).
+        gradient : ndarray of shape (n_frames, n_atoms, 3)
+            Only with ``gradient=True``: dE/dx in kJ/mol/nm, on ligand and
+            pocket atoms alike.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> top = md.Topology()
+        >>> res = top.add_residue("HST", top.add_chain(), resSeq=1)
+        >>> for name in ["C1", "C2", "C3"]:
+        ...     _ = top.add_atom(name, md.element.carbon, res)
+        >>> funnel = {"id": "funnel", "kind": "funnel", "groups": [[2], [0, 1]],
+        ...           "axis": [0.0, 0.0, 1.0], "z_min": -0.2, "z_max": 2.0, "z_cc": 1.0,
+        ...           "alpha": 0.5, "r_cyl": 0.2, "blend": 0.1, "k_wall": 1000.0}
+        >>> spec = Spec(name="f", topology=top,
+        ...             descriptors=[{"id": "d", "kind": "distance", "atoms": [0, 2]}],
+        ...             terms=[{"descriptor": "d", "transform": "identity", "center": 0.0,
+        ...                     "scale": 1.0, "weight": 1.0}], restraints=[funnel])
+        >>> xyz = np.array([[[-0.1, 0, 0], [0.1, 0, 0], [0, 0, -0.3]]])  # 0.1 nm below z_min
+        >>> energy, grad = spec.restraint_energy(xyz, gradient=True)
+        >>> energy.round(6).tolist(), grad[0, :, 2].round(6).tolist()  # k/2 (0.1 nm)^2
+        ([5.0], [50.0, 50.0, -100.0])
+        """
+        from .funnel import funnel_energy
+
+        arr = self._check_xyz(xyz)
+        n_frames = arr.shape[0]
+        energy = np.zeros(n_frames)
+        grad = np.zeros((n_frames, self.n_atoms, 3)) if gradient else None
+        for res in self._doc.get("restraints", []):
+            ligand, pocket = res["groups"]
+            d, w_pocket, w_ligand = geometry.center_displacement(arr, pocket, ligand, box=box)
+            params = {k: res[k] for k in ("z_min", "z_max", "z_cc", "alpha", "r_cyl", "blend")}
+            params.update(origin=[0.0, 0.0, 0.0], axis=res["axis"])
+            e, g = funnel_energy(d, params, res["k_wall"])
+            energy += e
+            if gradient:
+                np.add.at(grad, (slice(None), ligand), w_ligand[None, :, None] * g[:, None, :])
+                np.add.at(grad, (slice(None), pocket), -w_pocket[None, :, None] * g[:, None, :])
+        return (energy, grad) if gradient else energy
+
     # -- topology check ---------------------------------------------------
 
     def check_topology(self, topology):
@@ -1332,7 +1479,7 @@ class Spec:
                 "new spec for this one",
                 "$.topology.n_atoms",
             )
-        for k, desc in enumerate(self._doc["descriptors"]):
+        for k, desc, section in self._atom_users():
             for atom, expected, where in _atoms_and_identities(desc):
                 actual = _identity_of(topology.atom(atom))
                 if actual != expected:
@@ -1341,11 +1488,11 @@ class Spec:
                             "names, e.g. a PDB 'CA' as calcium, so the two topology files may "
                             "have been read differently)") if only_element else ""
                     raise TopologyMismatchError(
-                        f"atom {atom} (used by descriptor {desc['id']!r}, {desc['label']}) is "
+                        f"atom {atom} (used by {section[:-1]} {desc['id']!r}, {desc['label']}) is "
                         f"{_describe(expected)} in the spec but {_describe(actual)} in this "
                         f"topology{hint}. Use the topology the spec was made for, or make a new "
                         "spec for this one",
-                        f"$.descriptors[{k}]{where}",
+                        f"$.{section}[{k}]{where}",
                     )
         found = topology_fingerprint(topology)
         if found != self.fingerprint:

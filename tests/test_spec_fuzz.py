@@ -62,6 +62,9 @@ def _base_documents():
         descriptors=[{"id": "psi", "kind": "dihedral", "atoms": [0, 1, 2, 4]}],
         terms=[{"descriptor": "psi", "transform": "identity", "center": 0.0, "scale": 1.0, "weight": 1.0}],
         periodic=True,
+        restraints=[{"id": "funnel", "kind": "funnel", "groups": [[8, 9, 10, 11], [0, 1, 2, 3]],
+                     "axis": [0.0, 0.6, 0.8], "z_min": -0.2, "z_max": 2.0, "z_cc": 0.8,
+                     "alpha": 0.6, "r_cyl": 0.25, "blend": 0.1, "k_wall": 1500.0}],
     )
     return [combination.to_dict(), periodic.to_dict()]
 
@@ -118,7 +121,7 @@ def _mutate(doc, data):
         del node[key]
     elif operation == "add_key" and isinstance(node, dict):
         node[data.draw(st.sampled_from(["extra", "atoms", "groups", "masses", "r0", "n", "m", "weighting",
-                                        "period", "kind", "id", ""]))] = data.draw(VALUES)
+                                        "period", "kind", "id", "axis", "k_wall", "restraints", ""]))] = data.draw(VALUES)
     elif operation == "empty":
         value = node[key]
         node[key] = type(value)() if isinstance(value, (list, dict, str)) else None
