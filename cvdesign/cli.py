@@ -461,20 +461,15 @@ def _cmd_check(args):
 
 
 def _cmd_hints(args):
-    from .hints import format_hints, suggest_hints
+    from .hints import format_hints, spec_hints
     from .spec import load_spec
 
     spec = load_spec(args.spec)
-    states = {k: v for k, v in spec.states.items() if v.get("std", 0) > 0}
-    if not states:
+    if not any(v.get("std", 0) > 0 for v in spec.states.values()):
         raise InputError(f"spec {args.spec!r} records no state with a positive spread of the "
                          "CV; hints need the within-state spread")
-    periodic = bool(spec.periodic)
-    period = getattr(spec, "period", None) if periodic else None
-    hints = suggest_hints(states, temperature=args.temperature, timestep_fs=args.timestep,
-                          autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
-                          barrier=args.barrier, kernel=args.kernel, periodic=periodic,
-                          cv_range=(None if not periodic else (-period / 2, period / 2)))
+    hints = spec_hints(spec, temperature=args.temperature, timestep_fs=args.timestep,
+                       barrier=args.barrier, kernel=args.kernel)
     if args.json:
         sys.stdout.write(json.dumps(hints, indent=2, sort_keys=True) + "\n")
     else:

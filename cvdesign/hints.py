@@ -81,6 +81,7 @@ __all__ = [
     "lucy_cutoff_for_sigma",
     "lucy_kernel",
     "lucy_kernel_derivative",
+    "spec_hints",
     "suggest_hints",
 ]
 
@@ -988,6 +989,69 @@ def _time(ps):
     if ps is None:
         return "beyond estimate"
     return f"{ps:.3g} ps" if ps < 1000.0 else f"{ps / 1000.0:.3g} ns"
+
+
+def spec_hints(spec, *, temperature, timestep_fs, barrier=None, kernel="gaussian", **options):
+    """:func:`suggest_hints` from what a spec records, for a given simulation.
+
+    The states' mean and spread come from ``spec.states`` (states without a
+    positive spread are left out), the deposition interval from
+    ``spec.scores["integrated_time_ps"]`` when recorded, and for a periodic
+    CV the grid spans one period, centred on 0.
+
+    Parameters
+    ----------
+    spec : cvdesign.Spec
+        The CV (e.g. from :func:`cvdesign.load_spec`).
+    temperature : float
+        Simulation temperature, K.
+    timestep_fs : float
+        MD timestep, fs.
+    barrier : float or dict, optional
+        Barrier estimate, kJ/mol (see :func:`suggest_hints`).
+    kernel : {'gaussian', 'lucy'}, default='gaussian'
+    **options
+        Further keyword arguments of :func:`suggest_hints` (e.g.
+        ``bias_factor``, ``width_fraction``).
+
+    Returns
+    -------
+    dict
+        As :func:`suggest_hints`.
+
+    Raises
+    ------
+    InputError
+        The spec records no state with a positive spread.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> from cvdesign import Spec
+    >>> top = md.Topology()
+    >>> res = top.add_residue("X", top.add_chain(), resSeq=1)
+    >>> _ = [top.add_atom(n, md.element.carbon, res) for n in ("A", "B")]
+    >>> spec = Spec(name="d", topology=top,
+    ...             descriptors=[{"id": "d", "kind": "distance", "atoms": [0, 1]}],
+    ...             terms=[{"descriptor": "d", "transform": "identity", "center": 0.0,
+    ...                     "scale": 1.0, "weight": 1.0}],
+    ...             states={"a": {"mean": -1.0, "std": 0.1, "n_frames": 100},
+    ...                     "b": {"mean": 1.0, "std": 0.2, "n_frames": 100}})
+    >>> h = spec_hints(spec, temperature=300.0, timestep_fs=2.0, barrier=30.0)
+    >>> round(h["kernel"]["sigma"], 3)  # half the smallest spread
+    0.05
+    """
+    states = {k: v for k, v in spec.states.items() if v.get("std", 0) > 0}
+    if not states:
+        raise InputError(f"spec {spec.name!r} records no state with a positive spread of the "
+                         "CV; hints need the within-state spread")
+    periodic = bool(spec.periodic)
+    period = spec.period if periodic else None
+    return suggest_hints(states, temperature=temperature, timestep_fs=timestep_fs,
+                         autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
+                         barrier=barrier, kernel=kernel, periodic=periodic,
+                         cv_range=None if not periodic else (-period / 2, period / 2),
+                         **options)
 
 
 def format_hints(hints):

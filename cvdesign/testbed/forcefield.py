@@ -245,7 +245,10 @@ class ToyForceField:
         Extra term ``bias(x) -> (energy, forces)`` with `x` of shape
         ``(n_atoms, 3)`` in nm, energy in kJ/mol and forces of shape
         ``(n_atoms, 3)`` in kJ/mol/nm, added to the force-field terms. For a
-        stack of configurations it is called once per configuration.
+        stack of configurations it is called once per configuration, unless
+        it has a true attribute ``accepts_stacks``: then it is called once
+        with the stack ``(..., n_atoms, 3)`` and returns energies ``(...)``
+        and forces ``(..., n_atoms, 3)``.
 
     Notes
     -----
@@ -329,6 +332,50 @@ class ToyForceField:
         if bias is not None and not callable(bias):
             raise TypeError(f"bias must be a callable bias(x) -> (energy, forces); got {bias!r}")
         new.bias = bias
+        return new
+
+    def with_torsion_scale(self, atoms, factor):
+        """A copy with the torsion terms about `atoms` scaled by `factor`.
+
+        Parameters
+        ----------
+        atoms : sequence of 4 int
+            0-based atoms ``(i, j, k, l)`` of the dihedral; terms listed as
+            ``(l, k, j, i)`` (the same dihedral) are scaled too.
+        factor : float
+            Multiplies the amplitudes ``torsion_k`` of those terms (0 switches
+            them off).
+
+        Returns
+        -------
+        ToyForceField
+            A new force field (bias included); this one is unchanged.
+
+        Raises
+        ------
+        ValueError
+            No torsion term is about `atoms`.
+
+        Examples
+        --------
+        >>> ff = ToyForceField(4, torsions=[(0, 1, 2, 3)], torsion_k=5.0, torsion_n=1,
+        ...                    torsion_delta=0.0)
+        >>> x = [[1.0, 0, 0], [0, 0, 0], [0, 0, 1], [1, 0, 1]]  # dihedral 0: k (1 + 1)
+        >>> ff.energy(x), ff.with_torsion_scale((3, 2, 1, 0), 0.5).energy(x)
+        (10.0, 5.0)
+        """
+        quad = np.asarray(atoms, dtype=np.intp)
+        if quad.shape != (4,):
+            raise ValueError(f"atoms must be 4 atom indices; got {atoms!r}")
+        if not np.isfinite(factor):
+            raise ValueError(f"factor={factor!r} must be a finite number")
+        match = (np.all(self.torsions == quad, axis=1)
+                 | np.all(self.torsions == quad[::-1], axis=1))
+        if not match.any():
+            raise ValueError(f"no torsion term is about atoms {tuple(quad.tolist())}")
+        new = object.__new__(type(self))
+        new.__dict__.update(self.__dict__)
+        new.torsion_k = np.where(match, self.torsion_k * float(factor), self.torsion_k)
         return new
 
     def terms(self, x):
@@ -432,6 +479,14 @@ class ToyForceField:
         if not lead:
             e, f = self.bias(x)
             return float(e), np.asarray(f, dtype=np.float64)
+        if getattr(self.bias, "accepts_stacks", False):  # one call for the whole stack
+            e, f = self.bias(x)
+            e, f = np.asarray(e, dtype=np.float64), np.asarray(f, dtype=np.float64)
+            if e.shape != lead or f.shape != x.shape:
+                raise ValueError(
+                    f"a bias with accepts_stacks must return energies of shape {lead} and "
+                    f"forces of shape {x.shape}; got {e.shape} and {f.shape}")
+            return e, f
         flat = x.reshape((-1,) + x.shape[-2:])
         out = [self.bias(xi) for xi in flat]
         energy = np.array([float(e) for e, _ in out]).reshape(lead)

@@ -43,11 +43,15 @@ from .toys import ToySystem
 
 __all__ = [
     "BiasedRun",
+    "SoftenedReference",
     "WellTemperedBias",
     "asymmetric_torsion",
+    "asymmetric_torsion_delta_f",
     "asymmetric_torsion_potential",
     "dihedral_cv",
     "run_biased",
+    "softened_delta_f",
+    "spec_cv",
     "well_delta_f",
 ]
 
@@ -114,6 +118,52 @@ def dihedral_cv(atoms):
             grad[l] += g3
         return phi, grad
 
+    return cv
+
+
+def spec_cv(spec):
+    """A :class:`~cvdesign.Spec` as a CV callable ``cv(x) -> (value, gradient)``.
+
+    The value and the analytic gradient come from ``spec.evaluate(...,
+    gradient=True)``, so a biased testbed run applies exactly the forces an
+    engine would apply from the spec. The callable accepts stacks of
+    configurations (``accepts_stacks``), so all walkers of a run are evaluated
+    in one call. No periodic box (the toys have none).
+
+    Parameters
+    ----------
+    spec : cvdesign.Spec
+        The CV; made for the toy's topology (same atom count).
+
+    Returns
+    -------
+    callable
+        ``cv(x)`` with `x` of shape ``(n_atoms, 3)`` in nm returns the CV (a
+        float, CV units) and its gradient ``(n_atoms, 3)`` in CV units per nm;
+        with `x` of shape ``(..., n_atoms, 3)`` it returns arrays of shapes
+        ``(...)`` and ``(..., n_atoms, 3)``.
+
+    Examples
+    --------
+    >>> from cvdesign import Spec
+    >>> system = asymmetric_torsion()
+    >>> spec = Spec(name="phi", topology=system.topology,
+    ...             descriptors=[{"id": "phi", "kind": "dihedral", "atoms": [0, 1, 2, 3]}],
+    ...             terms=[{"descriptor": "phi", "transform": "identity", "center": 0.0,
+    ...                     "scale": 1.0, "weight": 1.0}], periodic=True)
+    >>> value, grad = spec_cv(spec)(system.states["trans"])
+    >>> round(abs(value), 4), grad.shape
+    (3.1416, (4, 3))
+    """
+    def cv(x):
+        x = np.asarray(x, dtype=np.float64)
+        lead = x.shape[:-2]
+        values, grad = spec.evaluate(x.reshape((-1,) + x.shape[-2:]), gradient=True)
+        if not lead:
+            return float(values[0]), grad[0]
+        return values.reshape(lead), grad.reshape(x.shape)
+
+    cv.accepts_stacks = True
     return cv
 
 
@@ -371,24 +421,35 @@ class WellTemperedBias:
         f = -self.bias_factor / (self.bias_factor - 1.0) * v
         return f - f.min()
 
+    @property
+    def accepts_stacks(self):
+        """True when the CV callable takes stacks of configurations (see :func:`spec_cv`);
+        the force field then calls the bias once per step for all walkers."""
+        return bool(getattr(self.cv, "accepts_stacks", False))
+
     def __call__(self, x):
-        """Bias energy and forces for one configuration: the force-field hook.
+        """Bias energy and forces: the force-field hook.
 
         Parameters
         ----------
-        x : ndarray of shape (n_atoms, 3)
+        x : ndarray of shape (n_atoms, 3), or (..., n_atoms, 3) when
+            :attr:`accepts_stacks`
             Positions, nm.
 
         Returns
         -------
-        energy : float
+        energy : float or ndarray of shape (...)
             ``V(s(x))``, kJ/mol.
-        forces : ndarray of shape (n_atoms, 3)
+        forces : ndarray of the shape of `x`
             ``-dV/ds grad s``, kJ/mol/nm.
         """
         s, grad = self.cv(x)
         value, deriv = self.bias_and_derivative(s)
-        return float(value), -float(deriv) * np.asarray(grad, dtype=np.float64)
+        forces = -np.asarray(deriv, dtype=np.float64)[..., None, None] * np.asarray(
+            grad, dtype=np.float64)
+        if np.ndim(value) == 0:
+            return float(value), forces
+        return np.asarray(value, dtype=np.float64), forces
 
 
 # --------------------------------------------------------------------------
@@ -415,6 +476,10 @@ class BiasedRun:
         Bias on the grid nodes averaged over the depositions after the first
         `average_from` fraction of the run, kJ/mol; a less noisy input to
         ``bias.free_energy(values=...)`` than the final bias.
+    observed : ndarray or None
+        ``observe(frames)`` of the reported frames, stacked along the first
+        axis (shape ``(n_reports, ...)``), when an `observe` callable was
+        given; else None.
     """
 
     cv: np.ndarray
@@ -423,10 +488,11 @@ class BiasedRun:
     positions: np.ndarray
     velocities: np.ndarray
     mean_values: np.ndarray
+    observed: np.ndarray = None
 
 
 def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=None,
-               report_interval=None, average_from=0.5):
+               report_interval=None, average_from=0.5, observe=None):
     """Langevin dynamics under a well-tempered bias that grows every ``bias.pace`` steps.
 
     Parameters
@@ -458,6 +524,13 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
     average_from : float, default=0.5
         Fraction of the depositions after which the grid bias is averaged
         into :attr:`BiasedRun.mean_values`.
+    observe : callable, optional
+        ``observe(frames)`` for the reported frames of each deposition
+        interval (shape ``(n, n_atoms, 3)`` or ``(n, n_walkers, n_atoms,
+        3)``), returning an array with first axis ``n``, e.g.
+        ``system.slow_angle``: a quantity other than the CV to follow
+        (positions themselves are not kept). :attr:`BiasedRun.observed` is
+        None when no deposition interval ran.
 
     Returns
     -------
@@ -477,10 +550,17 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
     cvs = []
     first = min(int(float(average_from) * n_chunks), max(n_chunks - 1, 0))
     total = np.zeros_like(bias.values)
+    observed = []
     for chunk in range(n_chunks):
         frames, _ = integ.run(x, pace, report_interval=report, v0=v)
         x, v = integ.positions_, integ.velocities_
-        if walkers:
+        if observe is not None:
+            observed.append(np.asarray(observe(frames)))
+        if walkers and bias.accepts_stacks:
+            cvs.extend(np.asarray(bias.cv(frames)[0]).tolist())
+            for s in cvs[-1]:
+                bias.deposit(s)
+        elif walkers:
             cvs.extend([bias.cv(w)[0] for w in f] for f in frames)
             for s in cvs[-1]:
                 bias.deposit(s)
@@ -492,7 +572,8 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
     mean = total / max(n_chunks - first, 1) if n_chunks else bias.values.copy()
     times = np.arange(1, len(cvs) + 1) * (report * float(timestep))
     return BiasedRun(cv=np.array(cvs), times=times, bias=bias, positions=x, velocities=v,
-                     mean_values=mean)
+                     mean_values=mean,
+                     observed=np.concatenate(observed) if observed else None)
 
 
 # --------------------------------------------------------------------------
@@ -597,6 +678,35 @@ def asymmetric_torsion(k_twofold=10.0, k_onefold=2.0):
     )
 
 
+def asymmetric_torsion_delta_f(system, temperature=300.0):
+    """Exact ``F_cis - F_trans`` of an :func:`asymmetric_torsion` system, kJ/mol.
+
+    The dihedral is decoupled from the rest (see :func:`asymmetric_torsion`),
+    so the answer is the one-dimensional quadrature :func:`well_delta_f` of
+    :func:`asymmetric_torsion_potential` on 20000 points.
+
+    Parameters
+    ----------
+    system : ToySystem
+        Made by :func:`asymmetric_torsion` (its ``notes`` hold the amplitudes).
+    temperature : float, default=300.0
+        K.
+
+    Returns
+    -------
+    float
+        kJ/mol.
+
+    Examples
+    --------
+    >>> round(asymmetric_torsion_delta_f(asymmetric_torsion()), 2)
+    3.85
+    """
+    phi = np.linspace(-np.pi, np.pi, 20000, endpoint=False)
+    v = asymmetric_torsion_potential(phi, system.notes["k_twofold"], system.notes["k_onefold"])
+    return well_delta_f(phi, v, temperature, system.wells["cis"], system.wells["trans"])
+
+
 def _in_interval(s, interval):
     lo, hi = interval
     return (s >= lo) & (s <= hi) if lo <= hi else (s >= lo) | (s <= hi)
@@ -640,3 +750,116 @@ def well_delta_f(s, f, temperature, well_a, well_b):
     za = w[_in_interval(s, well_a)].sum()
     zb = w[_in_interval(s, well_b)].sum()
     return float(-kT * np.log(za / zb))
+
+
+@dataclass
+class SoftenedReference:
+    """Result of :func:`softened_delta_f`.
+
+    Attributes
+    ----------
+    delta_f : float
+        ``F_A - F_B`` between the two wells, kJ/mol.
+    stderr : float
+        Jackknife standard error over the walkers, kJ/mol.
+    n_transitions : int
+        Core-to-core transitions of the slow dihedral in the softened runs (all
+        walkers): many mean the wells were sampled in equilibrium.
+    effective_samples : float
+        Kish's effective number of frames of the reweighted set,
+        ``(sum w)**2 / sum w**2``; successive frames are correlated, so
+        independent samples are fewer.
+    states : tuple of str
+        ``(A, B)``.
+    """
+
+    delta_f: float
+    stderr: float
+    n_transitions: int
+    effective_samples: float
+    states: tuple
+
+
+def softened_delta_f(system, n_steps, *, temperature, friction, timestep, factor=0.0,
+                     n_walkers=8, report_interval=50, discard=0.1, states=None, seed=None):
+    """Reference free-energy difference between the wells of a toy's slow dihedral.
+
+    The torsion terms about ``system.slow_dihedral`` are scaled by `factor`
+    (0: switched off), so that unbiased walkers cross between the wells
+    often; every frame is then reweighted by ``exp(-(U - U_soft) / kT)``.
+    Because the scaled terms depend on the dihedral only, this is exact up to
+    sampling error (importance reweighting; Zwanzig, J. Chem. Phys. 22, 1420
+    (1954), and Torrie and Valleau, J. Comput. Phys. 23, 187 (1977), from
+    memory), and it uses no bias and no CV: an independent reference for a
+    metadynamics estimate.
+
+    Parameters
+    ----------
+    system : ToySystem
+        Its ``wells`` define the states (intervals of the slow dihedral, rad).
+    n_steps : int
+        Steps per walker.
+    temperature : float
+        K.
+    friction : float
+        1/ps.
+    timestep : float
+        ps.
+    factor : float, default=0.0
+        Scale of the slow torsion's own terms in the sampled force field.
+    n_walkers : int, default=8
+        Independent walkers, started alternately in the states' structures.
+    report_interval : int, default=50
+        Steps between the frames that are reweighted.
+    discard : float, default=0.1
+        Fraction of each walker's frames dropped at the start (relaxation).
+    states : tuple of str, optional
+        ``(A, B)``; the first two keys of ``system.wells`` by default.
+    seed : int or None, default=None
+        Seed of the integrator.
+
+    Returns
+    -------
+    SoftenedReference
+
+    Examples
+    --------
+    >>> system = asymmetric_torsion()
+    >>> ref = softened_delta_f(system, 4000, temperature=300.0, friction=2.0,
+    ...                        timestep=0.005, n_walkers=4, seed=0)
+    >>> ref.states, ref.n_transitions > 10
+    (('cis', 'trans'), True)
+    """
+    a, b = tuple(system.wells)[:2] if states is None else tuple(states)
+    if n_walkers < 2:
+        raise ValueError(f"n_walkers={n_walkers!r}: need at least 2 walkers for an error bar")
+    n_reports = int(n_steps) // int(report_interval)
+    if n_reports - int(float(discard) * n_reports) < 2:
+        raise ValueError(f"n_steps={n_steps!r} leaves fewer than 2 frames per walker after "
+                         f"discarding {discard!r} of them; run longer")
+    soft = system.force_field.with_torsion_scale(system.slow_dihedral, factor)
+    integ = BAOABIntegrator(soft, system.masses, temperature=temperature, friction=friction,
+                            timestep=timestep, seed=seed)
+    x0 = np.stack([system.states[(a, b)[w % 2]] for w in range(int(n_walkers))])
+    xyz, _ = integ.run(x0, n_steps, report_interval=report_interval)
+    xyz = xyz[int(float(discard) * xyz.shape[0]):]
+    kT = BOLTZMANN * float(temperature)
+    log_w = -(system.force_field.energy(xyz) - soft.energy(xyz)) / kT  # (frames, walkers)
+    w = np.exp(log_w - log_w.max())
+    phi = system.slow_angle(xyz)
+    za = np.where(_in_interval(phi, system.wells[a]), w, 0.0).sum(axis=0)
+    zb = np.where(_in_interval(phi, system.wells[b]), w, 0.0).sum(axis=0)
+    if not (za.sum() > 0 and zb.sum() > 0):
+        raise ValueError(f"the walkers never visited state {a!r} or {b!r}; run longer")
+    delta = -kT * np.log(za.sum() / zb.sum())
+    n = za.size
+    jack = -kT * np.log((za.sum() - za) / (zb.sum() - zb))
+    stderr = float(np.sqrt((n - 1) / n * np.sum((jack - jack.mean()) ** 2)))
+    from .scenarios import count_transitions  # scenarios imports the demo writer
+
+    centers = [float(np.angle(np.exp(0.5j * (lo + hi + (2 * np.pi if lo > hi else 0.0)))))
+               for lo, hi in (system.wells[a], system.wells[b])]
+    crossings = sum(count_transitions(p, centers=centers) for p in phi.T)
+    return SoftenedReference(delta_f=float(delta), stderr=stderr, n_transitions=int(crossings),
+                             effective_samples=float(w.sum() ** 2 / (w * w).sum()),
+                             states=(a, b))

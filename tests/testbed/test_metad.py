@@ -9,6 +9,7 @@ from cvdesign.testbed import BAOABIntegrator, dihedral_angles
 from cvdesign.testbed.metad import (
     WellTemperedBias,
     asymmetric_torsion,
+    asymmetric_torsion_delta_f,
     asymmetric_torsion_potential,
     dihedral_cv,
     run_biased,
@@ -27,9 +28,7 @@ def _bias(cv, **kw):
 
 
 def _reference(system, temperature=T):
-    phi = np.linspace(-np.pi, np.pi, 20000, endpoint=False)
-    v = asymmetric_torsion_potential(phi, system.notes["k_twofold"], system.notes["k_onefold"])
-    return well_delta_f(phi, v, temperature, system.wells["cis"], system.wells["trans"])
+    return asymmetric_torsion_delta_f(system, temperature)
 
 
 def _jiggled(system, seed=0):
