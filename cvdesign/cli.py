@@ -25,9 +25,14 @@ from .errors import CVDesignError, InputError
 __all__ = ["main", "build_parser"]
 
 
+#: The pool's descriptor kinds (those of cvdesign.pool.KINDS; a test keeps them equal,
+#: so that --help needs no import of the pool).
+_ALLOWED_KINDS = ("distance", "angle", "dihedral", "center_distance", "coordination")
+
+
 def _kinds(text):
     kinds = tuple(k.strip() for k in text.split(",") if k.strip())
-    allowed = ("distance", "angle", "dihedral")
+    allowed = _ALLOWED_KINDS
     bad = [k for k in kinds if k not in allowed]
     if bad or not kinds:
         raise argparse.ArgumentTypeError(
@@ -72,10 +77,17 @@ def _add_suggest_options(p):
     p.add_argument("--kinds", type=_kinds, default=("distance", "angle", "dihedral"),
                    metavar="K1,K2", help="descriptor kinds in the pool, comma-separated, from "
                    "distance (nm), angle (rad, bonded triples), dihedral (rad, one per "
-                   "rotatable bond; enters combinations as cos and sin); default: all three")
+                   "rotatable bond; enters combinations as cos and sin), center_distance (nm, "
+                   "between the mass centers of two residues' selected atoms) and "
+                   "coordination (contacts between two residues' selected atoms, "
+                   "dimensionless); default: distance,angle,dihedral")
     p.add_argument("--cutoff", type=_positive_float, default=1.0, metavar="NM",
                    help="distance prefilter in nm: keep a pair if its mean distance is below "
                         "this in at least one state (default: 1.0 nm)")
+    p.add_argument("--coordination-r0", type=_positive_float, default=0.45, metavar="NM",
+                   help="switching distance of the coordination numbers in nm: a pair of atoms "
+                        "at this distance counts 1/2 (rational switching function, exponents "
+                        "6 and 12; default: 0.45 nm)")
     p.add_argument("--prefilter-stride", type=_positive_int, default=10, metavar="N",
                    help="the distance prefilter reads every N-th frame (default: 10)")
     p.add_argument("--max-terms", type=_positive_int, default=5, metavar="K",
@@ -276,7 +288,8 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
             src.add(f, state="runs")
         exploration = propose_states(src, lag=args.lag, n_states=args.n_states,
                                      selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
-                                     prefilter_stride=args.prefilter_stride, seed=args.seed,
+                                     prefilter_stride=args.prefilter_stride,
+                                     coordination_r0=args.coordination_r0, seed=args.seed,
                                      progress=progress)
         source = exploration.labelled_source(topology, timestep=args.timestep)
     else:
@@ -298,7 +311,8 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                 source.add(f, state=name)
     result = suggest(source, objective=args.objective, lag=args.lag, method=args.method,
                      selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
-                     prefilter_stride=args.prefilter_stride, max_terms=args.max_terms,
+                     prefilter_stride=args.prefilter_stride,
+                     coordination_r0=args.coordination_r0, max_terms=args.max_terms,
                      n_suggestions=args.suggestions, n_folds=args.folds,
                      n_bootstrap=args.bootstrap, seed=args.seed, temperature=args.temperature,
                      md_timestep_fs=args.md_timestep, progress=progress)
@@ -582,7 +596,7 @@ def _cmd_demo(args):
     states = [[name] + [str(data / f) for f in entry["files"]]
               for name, entry in manifest["states"].items()]
     ns = argparse.Namespace(select=None, kinds=("distance", "angle", "dihedral"), cutoff=1.0,
-                            prefilter_stride=10, max_terms=5, suggestions=10, folds=4,
+                            prefilter_stride=10, coordination_r0=0.45, max_terms=5, suggestions=10, folds=4,
                             force=args.force, quiet=False, objective="separate", lag=None,
                             method="hlda", bootstrap=args.bootstrap, seed=0, timestep=None,
                             n_states=None, temperature=300.0, md_timestep=2.0)

@@ -126,7 +126,7 @@ def _fmt_ts(t):
 
 def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
                    kinds=("distance", "angle", "dihedral"), cutoff=1.0, prefilter_stride=10,
-                   screen_size=200, max_slow=3, seed=0, progress=None):
+                   coordination_r0=0.45, screen_size=200, max_slow=3, seed=0, progress=None):
     """Propose metastable states of unlabelled runs from their slow coordinates.
 
     Parameters
@@ -139,7 +139,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         Number of states; None chooses it by the mean silhouette, between 2
         and `max_states`.
     max_states : int, default=6
-    selection, kinds, cutoff, prefilter_stride
+    selection, kinds, cutoff, prefilter_stride, coordination_r0
         As in :func:`cvdesign.pipeline.suggest`.
     screen_size : int, default=200
         Features (most autocorrelated first) entering TICA.
@@ -179,7 +179,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     lag_frames = _lag_frames(source, lag, timesteps)
     note("building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,
-                      stride=prefilter_stride)
+                      stride=prefilter_stride, coordination_r0=coordination_r0)
     atoms = pool.atom_indices()
     n_feat = pool.n_features
     chunk = _chunk_frames(source, n_feat)

@@ -54,6 +54,7 @@ __all__ = [
     "distances",
     "angles",
     "dihedrals",
+    "group_centers",
     "center_displacement",
     "center_distance",
     "coordination",
@@ -796,6 +797,61 @@ def _group_points(xyz, groups, names):
     return out
 
 
+def _whole_center(points, weights, kind, parsed):
+    """Weighted center of (n_frames, n_group, 3) points, the group made whole about its
+    first atom (each atom at its minimum image from it)."""
+    whole = points[:, :1, :] + _apply_minimum_image(points - points[:, :1, :], kind, parsed)
+    return np.einsum("fak,a->fk", whole, weights)
+
+
+def group_centers(xyz, groups, box=None, *, masses=None):
+    """Center of each atom group per frame, each group made whole first, nm.
+
+    The centers are those :func:`center_distance` and :func:`center_displacement`
+    use: each atom is taken at its minimum image from the group's first atom,
+    then the (mass-)weighted mean is formed.
+
+    Parameters
+    ----------
+    xyz : array-like of shape (n_frames, n_atoms, 3)
+        nm.
+    groups : sequence of sequences of int
+        0-based atom indices of each group (non-empty, without repeats).
+    box : array-like or None, default=None
+        Periodic box in nm; see :func:`minimum_image`.
+    masses : sequence of (array-like or None), optional
+        Per group, the atom masses in dalton, or None for a geometric
+        center; None: all geometric.
+
+    Returns
+    -------
+    ndarray of shape (n_frames, n_groups, 3)
+        nm. Centers are not wrapped into the box.
+
+    Examples
+    --------
+    >>> xyz = np.array([[[0.0, 0, 0], [0.2, 0, 0], [0.6, 0, 0]]])
+    >>> group_centers(xyz, [[0, 1], [2]], masses=[[3.0, 1.0], None])[0].round(6)
+    array([[0.05, 0.  , 0.  ],
+           [0.6 , 0.  , 0.  ]])
+    """
+    xyz = _check_xyz(xyz)
+    n_frames, n_atoms, _ = xyz.shape
+    groups = list(groups)
+    masses = [None] * len(groups) if masses is None else list(masses)
+    if len(masses) != len(groups):
+        raise InputError(f"masses has {len(masses)} entries for {len(groups)} groups; give one "
+                         "per group (None for a geometric center)")
+    kind, parsed = _parse_box(box, n_frames)
+    out = np.empty((n_frames, len(groups), 3))
+    for k, (group, w) in enumerate(zip(groups, masses)):
+        g = _check_group(group, n_atoms, f"groups[{k}]")
+        weights = _check_weights(w, len(g), f"masses[{k}]", f"groups[{k}]")
+        (points,) = _group_points(xyz, (g,), (f"groups[{k}]",))
+        out[:, k, :] = _whole_center(points, weights, kind, parsed)
+    return out
+
+
 def center_displacement(xyz, group_a, group_b, box=None, *, masses_a=None, masses_b=None):
     """Vector from the center of group a to the center of group b, nm.
 
@@ -837,11 +893,9 @@ def center_displacement(xyz, group_a, group_b, box=None, *, masses_a=None, masse
     kind, parsed = _parse_box(box, n_frames)
     pa, pb = _group_points(xyz, (ga, gb), ("group_a", "group_b"))
 
-    def center(points, w):
-        whole = points[:, :1, :] + _apply_minimum_image(points - points[:, :1, :], kind, parsed)
-        return np.einsum("fak,a->fk", whole, w)
-
-    delta = _apply_minimum_image((center(pb, wb) - center(pa, wa))[:, None, :], kind, parsed)[:, 0, :]
+    delta = _apply_minimum_image(
+        (_whole_center(pb, wb, kind, parsed) - _whole_center(pa, wa, kind, parsed))[:, None, :],
+        kind, parsed)[:, 0, :]
     return delta, wa, wb
 
 

@@ -39,7 +39,7 @@ from .estimators import implied_timescales, rayleigh_quotient
 from .errors import InputError
 from .moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
                       Moments, merge_all)
-from .pool import build_pool
+from .pool import COORDINATION_EXPONENTS, COORDINATION_R0_NM, DEFAULT_KINDS, GROUP_KINDS, build_pool
 from .redundancy import descriptor_correlation, redundancy_graph, representatives
 from .scoring import Histograms, fisher_ratio, overlap_coefficient
 from .source import file_sha256, stores_time
@@ -123,7 +123,9 @@ class Suggestions:
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(cols)
         for i, row in enumerate(self.scorecard, 1):
-            line = [i, row["id"], row["kind"], row["label"], " ".join(map(str, row["atoms"]))]
+            atoms = (" / ".join(" ".join(map(str, g)) for g in row["groups"]) if "groups" in row
+                     else " ".join(map(str, row["atoms"])))
+            line = [i, row["id"], row["kind"], row["label"], atoms]
             for name in _CARD_COLUMNS:
                 ci = row.get(f"{name}_ci") or [None, None]
                 line += [_fmt(row.get(name)), _fmt(ci[0]), _fmt(ci[1])]
@@ -590,7 +592,8 @@ def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
 
 # ---------------------------------------------------------------- the pipeline
 def suggest(source, *, objective="separate", lag=None, method="hlda", selection=None,
-            kinds=("distance", "angle", "dihedral"), cutoff=1.0, prefilter_stride=10,
+            kinds=DEFAULT_KINDS, cutoff=1.0, prefilter_stride=10,
+            coordination_r0=COORDINATION_R0_NM,
             max_terms=5, n_suggestions=10, screen_size=200, shortlist_size=40,
             max_correlation=0.95, n_folds=4, n_seeds=5, min_gain=0.01, shrinkage=1e-3,
             n_bootstrap=200, seed=0, temperature=300.0, md_timestep_fs=2.0, progress=None):
@@ -622,13 +625,19 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         push along to leave the narrow state.
     selection : str, default=None
         mdtraj atom selection for the pool; None: heavy atoms of the solute.
-    kinds : sequence of {'distance', 'angle', 'dihedral'}
-        Descriptor kinds in the pool.
+    kinds : sequence of str, default=('distance', 'angle', 'dihedral')
+        Descriptor kinds in the pool, from ``cvdesign.pool.KINDS``: also
+        ``'center_distance'`` (distance between the mass centers of the
+        selected atoms of two residues, nm) and ``'coordination'`` (their
+        coordination number, dimensionless), for every pair of residues.
     cutoff : float, default=1.0
-        Distance prefilter, in nm: a pair is kept if its mean distance is below
-        `cutoff` in at least one state.
+        Prefilter, in nm: an atom pair (or, for the residue kinds, a residue
+        pair, by the distance of their centers) is kept if its mean distance
+        is below `cutoff` in at least one state.
     prefilter_stride : int, default=10
         The prefilter uses every `prefilter_stride`-th frame of each state.
+    coordination_r0 : float, default=0.45
+        Switching distance of the coordination numbers, nm (exponents 6, 12).
     max_terms : int, default=5
         Largest number of descriptors in a combination.
     n_suggestions : int, default=10
@@ -720,7 +729,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
 
     _note(progress, "building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,
-                      stride=prefilter_stride)
+                      stride=prefilter_stride, coordination_r0=coordination_r0)
     notes = list(pool.notes)
     atoms = pool.atom_indices()
     n_feat = pool.n_features
@@ -966,6 +975,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         tau = iat_desc.get(i)
         row = {
             "id": d.id, "kind": d.kind, "label": d.label, "atoms": list(d.atoms),
+            **({"groups": [list(g) for g in d.groups]} if d.groups else {}),
             "fisher_ratio": float(fisher_desc[i]), "overlap": _finite(overlap_desc[i]),
             "autocorrelation": None if rho_desc is None else _finite(rho_desc[i]),
             "autocorrelation_within_runs": None if local_desc is None else _finite(local_desc[i]),
@@ -982,6 +992,8 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
 
     params = {"objective": objective, "method": method, "lag_ps": lag_ps,
               "selection": selection, "kinds": list(kinds), "cutoff_nm": _finite(cutoff),
+              **({"coordination_r0_nm": float(coordination_r0)} if "coordination" in kinds
+                 else {}),
               "prefilter_stride": prefilter_stride, "max_terms": max_terms,
               "screen_size": screen_size, "shortlist_size": shortlist_size,
               "max_correlation": max_correlation, "n_folds": folds.n_folds,
@@ -1087,8 +1099,8 @@ def _box_notes(pool, diag, min_box):
         return ["no periodic box: distances are plain Euclidean"]
     out = [f"periodic box: distances use the minimum image (smallest box height "
            f"{min_box:.3g} nm)"]
-    is_dist = np.array([pool.descriptors[i].kind == "distance" for i in pool.feature_descriptor],
-                       dtype=bool)
+    is_dist = np.array([pool.descriptors[i].kind in ("distance", "center_distance")
+                        for i in pool.feature_descriptor], dtype=bool)
     if is_dist.any():
         longest = float(np.max([d.maximum[is_dist].max() for d in diag]))
         if longest > 0.5 * min_box:
@@ -1206,16 +1218,28 @@ def _spec_dict(source, pool, name, entry, params, checksums, seed):
     from .spec import atom_identity, residue_hashes, topology_fingerprint
 
     top = source.topology
+    by_id = {d.id: d for d in pool.descriptors}
     seen, descriptors = set(), []
     for t in entry["terms"]:
         if t["descriptor"] in seen:
             continue
         seen.add(t["descriptor"])
-        descriptors.append({
-            "id": t["descriptor"], "kind": t["kind"], "atoms": t["atoms"], "label": t["label"],
-            "atom_identities": [atom_identity(top, a) for a in t["atoms"]],
-            "periodic": t["kind"] == "dihedral",
-        })
+        d = by_id[t["descriptor"]]
+        doc = {"id": d.id, "kind": d.kind, "label": d.label, "periodic": d.periodic}
+        if d.kind in GROUP_KINDS:
+            doc["groups"] = [list(g) for g in d.groups]
+            doc["atom_identities"] = [[atom_identity(top, a) for a in g] for g in d.groups]
+            if d.kind == "center_distance":
+                doc["weighting"] = pool.weighting(d)
+                if doc["weighting"] == "mass":
+                    doc["masses"] = [pool.group_masses(g) for g in d.groups]
+            else:
+                n, m = COORDINATION_EXPONENTS
+                doc.update(r0=d.r0, n=n, m=m)
+        else:
+            doc["atoms"] = list(d.atoms)
+            doc["atom_identities"] = [atom_identity(top, a) for a in d.atoms]
+        descriptors.append(doc)
     terms = [{"descriptor": t["descriptor"], "transform": t["transform"], "center": t["center"],
               "scale": t["scale"], "weight": t["weight"]} for t in entry["terms"]]
     scores = {"rank": entry["rank"]}

@@ -18,31 +18,74 @@ Candidates come from an atom selection:
   have another selected neighbour and that is not in a small ring (of up to
   eight bonds; larger cycles such as a loop closed by a disulfide keep their
   torsions), with, on each side, the neighbour that leads to the larger part
-  of the molecule (so a protein's phi is C-N-CA-C, not C-N-CA-CB).
+  of the molecule (so a protein's phi is C-N-CA-C, not C-N-CA-CB);
+* on request (kinds ``center_distance`` and ``coordination``), residue-level
+  descriptors: the selected atoms of each residue form a group, and for every
+  pair of residues whose centers are, on average, closer than the cutoff in at
+  least one state, the distance between their mass centers (nm) and the
+  coordination number of their atoms (rational switching function,
+  ``r0 = 0.45 nm``, exponents 6 and 12). A residue-level pool is far smaller
+  than an atom-pair one for a protein, and it is what a contact or a domain
+  motion looks like.
+
+Every value is computed by the same code as the spec evaluator
+(:mod:`cvdesign.geometry`) for the group kinds, and by mdtraj's geometry for
+the others (the tests check that the two agree).
 """
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import mdtraj as md
 import networkx as nx
 import numpy as np
 
 from .errors import InputError
+from .geometry import coordination_pairs, distances as _pair_distances, group_centers
+from .geometry import minimum_image, switching_function
 
 __all__ = [
     "Descriptor",
     "Pool",
     "KINDS",
+    "DEFAULT_KINDS",
+    "GROUP_KINDS",
+    "COORDINATION_R0_NM",
     "atom_label",
     "candidate_pool",
     "candidate_pairs",
     "prefilter_pairs",
+    "prefilter_group_pairs",
+    "residue_groups",
     "build_pool",
 ]
 
-#: Descriptor kinds and the number of atoms each takes.
-KINDS = {"distance": 2, "angle": 3, "dihedral": 4}
-_SHORT = {"distance": "dist", "angle": "angle", "dihedral": "dihedral"}
+#: Descriptor kinds and the number of atoms each takes (None: two atom groups).
+KINDS = {"distance": 2, "angle": 3, "dihedral": 4, "center_distance": None,
+         "coordination": None}
+#: The kinds of a default pool.
+DEFAULT_KINDS = ("distance", "angle", "dihedral")
+#: Kinds defined on two atom groups.
+GROUP_KINDS = ("center_distance", "coordination")
+#: Switching distance of the pool's coordination numbers, nm: about the heavy-atom
+#: contact distance in proteins (common practice, from memory).
+COORDINATION_R0_NM = 0.45
+#: Exponents (n, m) of the pool's switching function (common practice).
+COORDINATION_EXPONENTS = (6, 12)
+# Numbers (frames x atom pairs) formed at once for coordination numbers (bounds memory).
+_NUMBERS_PER_BLOCK = 2_000_000
+_SHORT = {"distance": "dist", "angle": "angle", "dihedral": "dihedral",
+          "center_distance": "center dist", "coordination": "coord"}
+
+
+def _runs(group):
+    """'3..6,9' for atoms 3, 4, 5, 6, 9: a compact, unambiguous id part."""
+    g = np.asarray(group, dtype=np.int64)
+    cuts = np.flatnonzero(np.diff(g) != 1) + 1
+    parts = []
+    for run in np.split(g, cuts):
+        parts.append(str(run[0]) if run.size == 1 else f"{run[0]}..{run[-1]}")
+    return ",".join(parts)
 
 
 def atom_label(topology, index, *, with_residue=True):
@@ -74,34 +117,61 @@ class Descriptor:
 
     Attributes
     ----------
-    kind : {'distance', 'angle', 'dihedral'}
+    kind : {'distance', 'angle', 'dihedral', 'center_distance', 'coordination'}
     atoms : tuple of int
-        0-based atom indices (2, 3 or 4 of them).
+        0-based atom indices: 2, 3 or 4 of them; for the group kinds, every
+        atom of both groups, sorted (computed from `groups` when given as
+        ``()``).
     label : str
         Readable label, e.g. ``'dist LYS12:CA-GLU150:CD'``.
+    groups : tuple of two tuples of int, optional
+        For the group kinds: the two atom groups (sorted, non-empty).
+    r0 : float, optional
+        For ``coordination``: the switching distance, nm (n = 6, m = 12).
 
     Examples
     --------
     >>> d = Descriptor("distance", (3, 10), "dist X1:A-X1:B")
     >>> d.id, d.periodic, d.transforms
     ('distance:3-10', False, ('identity',))
+    >>> c = Descriptor("coordination", (), "coord X1-X2", groups=((0, 1, 2), (7, 9)), r0=0.45)
+    >>> c.id, c.atoms, c.unit
+    ('coordination:0..2/7,9@0.45', (0, 1, 2, 7, 9), '1')
     """
 
     kind: str
     atoms: tuple
     label: str
+    groups: tuple = None
+    r0: float = None
 
     def __post_init__(self):
         if self.kind not in KINDS:
             raise InputError(f"unknown descriptor kind {self.kind!r}; use one of {sorted(KINDS)}")
+        if self.kind in GROUP_KINDS:
+            groups = self.groups
+            if (groups is None or len(groups) != 2 or not all(len(g) for g in groups)):
+                raise InputError(f"a {self.kind} takes two non-empty atom groups; got {groups!r}")
+            groups = tuple(tuple(sorted(int(a) for a in g)) for g in groups)
+            object.__setattr__(self, "groups", groups)
+            object.__setattr__(self, "atoms", tuple(sorted(set(groups[0]) | set(groups[1]))))
+            if self.kind == "coordination" and not (self.r0 is not None and self.r0 > 0):
+                raise InputError(f"a coordination needs a switching distance r0 > 0 nm; "
+                                 f"got {self.r0!r}")
+            return
         if len(self.atoms) != KINDS[self.kind]:
             raise InputError(
                 f"a {self.kind} takes {KINDS[self.kind]} atoms; got {len(self.atoms)}"
             )
 
-    @property
+    @cached_property
     def id(self):
-        """str : stable id, ``kind:i-j[-k[-l]]`` with 0-based atom indices."""
+        """str : stable id: ``kind:i-j[-k[-l]]`` with 0-based atom indices; for the group
+        kinds ``kind:A/B`` with each group as runs ``3..6,9``, and ``@r0`` (nm) for a
+        coordination."""
+        if self.kind in GROUP_KINDS:
+            out = f"{self.kind}:{_runs(self.groups[0])}/{_runs(self.groups[1])}"
+            return out + (f"@{self.r0:g}" if self.kind == "coordination" else "")
         return f"{self.kind}:" + "-".join(str(int(a)) for a in self.atoms)
 
     @property
@@ -116,8 +186,9 @@ class Descriptor:
 
     @property
     def unit(self):
-        """str : unit of the descriptor's value."""
-        return "nm" if self.kind == "distance" else "rad"
+        """str : unit of the descriptor's value (``'1'``: dimensionless)."""
+        return {"distance": "nm", "center_distance": "nm", "coordination": "1"}.get(
+            self.kind, "rad")
 
 
 def _make(kind, atoms, topology, labels=None):
@@ -184,7 +255,9 @@ class Pool:
         self._index = {kind: [i for i, d in enumerate(self.descriptors) if d.kind == kind]
                        for kind in KINDS}
         self._atoms = {kind: np.array([self.descriptors[i].atoms for i in idx], dtype=np.intp)
-                       .reshape(-1, KINDS[kind]) for kind, idx in self._index.items()}
+                       .reshape(-1, KINDS[kind]) for kind, idx in self._index.items()
+                       if kind not in GROUP_KINDS}
+        self._masses = {}  # atom index -> dalton, for mass centers
 
     def __len__(self):
         return len(self.descriptors)
@@ -235,7 +308,9 @@ class Pool:
         Returns
         -------
         ndarray of shape (n_frames, n_features), float64
-            Distances in nm, angles in rad, cos and sin of dihedrals.
+            Distances in nm, angles in rad, cos and sin of dihedrals,
+            distances between mass centers in nm, coordination numbers
+            (dimensionless).
         """
         n = trajectory.n_frames
         out = np.empty((n, self.n_features), dtype=np.float64)
@@ -248,6 +323,10 @@ class Pool:
         col[:] = first_feature
         for kind, idx in self._index.items():
             if not idx:
+                continue
+            if kind in GROUP_KINDS:
+                local = (lambda a: a) if atom_indices is None else (lambda a: remap[a])
+                out[:, col[idx]] = self._group_features(kind, idx, trajectory, local)
                 continue
             atoms = self._atoms[kind]
             if atom_indices is not None:
@@ -266,6 +345,77 @@ class Pool:
                 out[:, col[idx]] = np.cos(vals)
                 out[:, col[idx] + 1] = np.sin(vals)
         return out
+
+
+    def group_masses(self, group):
+        """Masses of a group's atoms, dalton (mdtraj's element table), or None when an atom
+        has no element or no positive mass (a geometric center is used then)."""
+        out = []
+        for a in group:
+            if a not in self._masses:
+                element = self.topology.atom(int(a)).element
+                mass = getattr(element, "mass", None)
+                self._masses[a] = float(mass) if mass is not None and mass > 0 else None
+            out.append(self._masses[a])
+        return None if any(m is None for m in out) else out
+
+    def weighting(self, descriptor):
+        """``'mass'`` when both groups of a center distance have masses, else
+        ``'geometric'`` (the spec's ``weighting``)."""
+        return ("mass" if all(self.group_masses(g) is not None for g in descriptor.groups)
+                else "geometric")
+
+    def _group_features(self, kind, idx, trajectory, local):
+        """Values of group descriptors `idx` (pool indices) on a trajectory chunk, through
+        cvdesign.geometry (the spec evaluator's code)."""
+        xyz = trajectory.xyz.astype(np.float64)
+        box = None if trajectory.unitcell_vectors is None else \
+            trajectory.unitcell_vectors.astype(np.float64)
+        descs = [self.descriptors[i] for i in idx]
+        for d in descs:
+            if np.any(local(np.asarray(d.atoms)) < 0):
+                raise InputError("the trajectory chunk lacks atoms that the pool uses")
+        if kind == "center_distance":
+            # (group, mass-weighted?) for each side; mass centers only when both groups
+            # have masses, as the spec's one `weighting` per descriptor.
+            keys = [tuple((g, self.weighting(d) == "mass") for g in d.groups) for d in descs]
+            unique = sorted({k for pair in keys for k in pair})
+            where = {k: i for i, k in enumerate(unique)}
+            centers = group_centers(xyz, [local(np.asarray(g)) for g, _ in unique], box,
+                                    masses=[self.group_masses(g) if w else None
+                                            for g, w in unique])
+            a = np.array([where[k[0]] for k in keys], dtype=np.intp)
+            b = np.array([where[k[1]] for k in keys], dtype=np.intp)
+            delta = minimum_image(centers[:, b, :] - centers[:, a, :], box)
+            return np.sqrt(np.einsum("fpk,fpk->fp", delta, delta))
+        pairs = [self._coordination_pairs(i) for i in idx]
+        n_frames = xyz.shape[0]
+        values = np.empty((n_frames, len(descs)))
+        n, m = COORDINATION_EXPONENTS
+        budget = max(1, _NUMBERS_PER_BLOCK // max(1, n_frames))  # atom pairs per block
+        k = 0
+        while k < len(descs):  # blocks of descriptors: memory bounded by the budget
+            j, total = k + 1, len(pairs[k])
+            while j < len(descs) and total + len(pairs[j]) <= budget:
+                total += len(pairs[j])
+                j += 1
+            block = pairs[k:j]
+            starts = np.cumsum([0] + [len(p) for p in block[:-1]])
+            r = _pair_distances(xyz, local(np.concatenate(block)), box)
+            for r0 in sorted({d.r0 for d in descs[k:j]}):
+                cols = np.array([c for c in range(k, j) if descs[c].r0 == r0], dtype=np.intp)
+                s = switching_function(r, r0, n, m)
+                values[:, cols] = np.add.reduceat(s, starts, axis=1)[:, cols - k]
+            k = j
+        return values
+
+    def _coordination_pairs(self, i):
+        """Atom pairs of coordination descriptor `i` (cached)."""
+        cache = self.__dict__.setdefault("_pair_cache", {})
+        if i not in cache:
+            d = self.descriptors[i]
+            cache[i] = coordination_pairs(d.groups[0], d.groups[1]).astype(np.intp)
+        return cache[i]
 
 
 def _bond_graph(topology, atoms):
@@ -383,7 +533,16 @@ def candidate_pairs(topology, atoms):
     return pairs[~drop], note
 
 
-def candidate_pool(topology, atoms, kinds=("distance", "angle", "dihedral"), *, pairs=None):
+def _residue_label(topology, residue):
+    prefix = ""
+    if topology.n_chains > 1:
+        chain = residue.chain
+        prefix = f"{getattr(chain, 'chain_id', None) or chain.index}/"
+    return f"{prefix}{residue.name}{residue.resSeq}"
+
+
+def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pairs=None,
+                   coordination_r0=COORDINATION_R0_NM):
     """Enumerate candidate descriptors over the selected atoms.
 
     Parameters
@@ -391,11 +550,16 @@ def candidate_pool(topology, atoms, kinds=("distance", "angle", "dihedral"), *, 
     topology : mdtraj.Topology
     atoms : array-like of int
         Selected atom indices (see :func:`cvdesign.source.select_atoms`).
-    kinds : sequence of {'distance', 'angle', 'dihedral'}
-        Kinds to enumerate.
+    kinds : sequence of str
+        Kinds to enumerate, from :data:`KINDS`.
     pairs : ndarray of shape (n_pairs, 2), default=None
         Distance pairs to use (e.g. after :func:`prefilter_pairs`); None uses
         every pair from :func:`candidate_pairs`.
+    group_pairs : ndarray of shape (n_group_pairs, 2), default=None
+        For the group kinds: pairs of positions in :func:`residue_groups` (e.g.
+        after :func:`prefilter_group_pairs`); None uses every pair of residues.
+    coordination_r0 : float, default=COORDINATION_R0_NM
+        Switching distance of the coordination numbers, nm.
 
     Returns
     -------
@@ -449,6 +613,24 @@ def candidate_pool(topology, atoms, kinds=("distance", "angle", "dihedral"), *, 
             a = _outer_atom(graph, b, nb)
             d = _outer_atom(graph, c, nc)
             out.append(_make("dihedral", (a, b, c, d), topology, labels))
+    if any(k in kinds for k in GROUP_KINDS):
+        groups = residue_groups(topology, atoms)
+        if len(groups) < 2:
+            notes.append("center distances and coordination numbers: the selection has "
+                         "atoms of fewer than two residues, so there are no residue pairs")
+        else:
+            if group_pairs is None:
+                group_pairs = np.stack(np.triu_indices(len(groups), k=1), axis=1)
+            names = [_residue_label(topology, r) for r, _ in groups]
+            for i, j in np.asarray(group_pairs, dtype=np.intp).reshape(-1, 2):
+                pair = (groups[i][1], groups[j][1])
+                what = f"{names[i]}-{names[j]}"
+                if "center_distance" in kinds:
+                    out.append(Descriptor("center_distance", (), f"center dist {what}",
+                                          groups=pair))
+                if "coordination" in kinds:
+                    out.append(Descriptor("coordination", (), f"coord {what}", groups=pair,
+                                          r0=float(coordination_r0)))
     order = {k: i for i, k in enumerate(KINDS)}
     out.sort(key=lambda d: (order[d.kind], d.atoms))
     return Pool(out, topology, notes=notes)
@@ -492,11 +674,35 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = remap[pairs]
-    sums = np.zeros((source.n_states, pairs.shape[0]))
+
+    def values(sub, periodic):
+        block_pairs = max(1000, max_numbers // max(1, sub.n_frames))
+        return np.concatenate([
+            md.compute_distances(sub, local[lo:lo + block_pairs], periodic=periodic)
+            for lo in range(0, len(local), block_pairs)], axis=1)
+
+    means, n_frames = _strided_state_means(source, atoms, values, len(local), stride)
+    keep = (means < cutoff).any(axis=0)
+    note = (
+        f"distances: kept {int(keep.sum())} of {pairs.shape[0]} pairs with a mean below "
+        f"{cutoff:g} nm in at least one state, dropped {int((~keep).sum())} "
+        f"(means over every {stride}th frame of each state in each file, "
+        f"{n_frames} frames)"
+    )
+    return pairs[keep], note
+
+
+def _strided_state_means(source, atoms, values, n_values, stride):
+    """Per-state means of ``values(sub_trajectory, periodic) -> (n_frames, n_values)`` over
+    every `stride`-th frame of each state in each file, reading only `atoms`.
+
+    The stride counts each state's own frames within each file, so frame ranges
+    and label arrays are subsampled on their own frames, not on the file's grid.
+    Returns (means of shape (n_states, n_values), number of frames used).
+    """
+    sums = np.zeros((source.n_states, n_values))
     counts = np.zeros(source.n_states)
     seen = {}
-    # Every `stride`-th frame *of each state's frames in each file*, so frame ranges
-    # and label arrays are subsampled on their own frames, not on the file's grid.
     for chunk in source.iter_chunks(atom_indices=atoms):
         traj = chunk.trajectory
         periodic = traj.unitcell_vectors is not None
@@ -510,30 +716,108 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
                 continue
             sub = traj[rows]
             counts[s] += sub.n_frames
-            block_pairs = max(1000, max_numbers // max(1, sub.n_frames))
-            for lo in range(0, len(local), block_pairs):
-                block = local[lo:lo + block_pairs]
-                d = md.compute_distances(sub, block, periodic=periodic)
-                sums[s, lo:lo + len(block)] += d.sum(axis=0, dtype=np.float64)
+            sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
     empty = [source.states[s] for s in range(source.n_states) if counts[s] == 0]
     if empty:
         raise InputError(
             f"state(s) {', '.join(map(repr, empty))} have no frames; "
             "check the files and frame ranges given for them"
         )
-    means = sums / counts[:, None]
+    return sums / counts[:, None], int(counts.sum())
+
+
+def residue_groups(topology, atoms):
+    """The selected atoms of each residue, as groups for the group kinds.
+
+    Parameters
+    ----------
+    topology : mdtraj.Topology
+    atoms : array-like of int
+        Selected atom indices.
+
+    Returns
+    -------
+    list of (mdtraj.Residue, tuple of int)
+        Residues with at least one selected atom, in topology order, with their
+        selected atoms (sorted).
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); ch = top.add_chain()
+    >>> for name in ("ALA", "GLY"):
+    ...     r = top.add_residue(name, ch)
+    ...     _ = [top.add_atom(a, md.element.carbon, r) for a in ("CA", "C")]
+    >>> [(str(r), g) for r, g in residue_groups(top, [0, 1, 3])]
+    [('ALA0', (0, 1)), ('GLY1', (3,))]
+    """
+    chosen = np.zeros(topology.n_atoms, dtype=bool)
+    chosen[np.asarray(atoms, dtype=np.intp)] = True
+    out = []
+    for residue in topology.residues:
+        group = tuple(a.index for a in residue.atoms if chosen[a.index])
+        if group:
+            out.append((residue, group))
+    return out
+
+
+def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
+                          max_numbers=5_000_000):
+    """Pairs of groups whose mean center distance is below `cutoff` in some state.
+
+    Parameters
+    ----------
+    groups : sequence of tuple of int
+        Atom groups (e.g. from :func:`residue_groups`).
+    source : cvdesign.source.Source
+    cutoff : float
+        nm; ``inf`` keeps every pair (and reads nothing).
+    stride : int, default=10
+        As in :func:`prefilter_pairs`.
+    masses : sequence of (list of float or None), optional
+        Per group, atom masses (dalton) for mass centers; None: geometric.
+    max_numbers : int, default=5000000
+        Center distances (frames x pairs) formed at once, which bounds memory.
+
+    Returns
+    -------
+    kept : ndarray of shape (n_kept, 2), dtype int
+        Pairs ``(i, j)``, ``i < j``, of positions in `groups`.
+    note : str
+    """
+    if not cutoff > 0:
+        raise InputError(f"cutoff={cutoff!r} nm must be positive")
+    n = len(groups)
+    ii, jj = np.triu_indices(n, k=1)
+    pairs = np.stack([ii, jj], axis=1).astype(np.intp)
+    if pairs.shape[0] == 0 or not np.isfinite(cutoff):
+        return pairs, f"group pairs: kept all {pairs.shape[0]} (no cutoff)"
+    atoms = np.unique(np.concatenate([np.asarray(g, dtype=np.intp) for g in groups]))
+    remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
+    remap[atoms] = np.arange(atoms.size)
+    local = [remap[np.asarray(g, dtype=np.intp)] for g in groups]
+
+    def values(sub, periodic):
+        box = sub.unitcell_vectors.astype(np.float64) if periodic else None
+        centers = group_centers(sub.xyz.astype(np.float64), local, box, masses=masses)
+        block = max(1000, max_numbers // max(1, sub.n_frames))
+        out = np.empty((sub.n_frames, len(pairs)))
+        for lo in range(0, len(pairs), block):
+            a, b = pairs[lo:lo + block, 0], pairs[lo:lo + block, 1]
+            delta = minimum_image(centers[:, b, :] - centers[:, a, :], box)
+            out[:, lo:lo + block] = np.sqrt(np.einsum("fpk,fpk->fp", delta, delta))
+        return out
+
+    means, n_frames = _strided_state_means(source, atoms, values, len(pairs), stride)
     keep = (means < cutoff).any(axis=0)
-    note = (
-        f"distances: kept {int(keep.sum())} of {pairs.shape[0]} pairs with a mean below "
-        f"{cutoff:g} nm in at least one state, dropped {int((~keep).sum())} "
-        f"(means over every {stride}th frame of each state in each file, "
-        f"{int(counts.sum())} frames)"
-    )
+    note = (f"group pairs: kept {int(keep.sum())} of {len(pairs)} with a mean center "
+            f"distance below {cutoff:g} nm in at least one state (every {stride}th frame, "
+            f"{n_frames} frames)")
     return pairs[keep], note
 
 
-def build_pool(source, *, selection=None, kinds=("distance", "angle", "dihedral"),
-               cutoff=1.0, stride=10):
+def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, stride=10,
+               coordination_r0=COORDINATION_R0_NM):
     """Candidate pool for a source: select atoms, enumerate, prefilter distances.
 
     Parameters
@@ -542,10 +826,16 @@ def build_pool(source, *, selection=None, kinds=("distance", "angle", "dihedral"
     selection : str, default=None
         mdtraj selection; None selects the solute's heavy atoms.
     kinds : sequence of str, default=('distance', 'angle', 'dihedral')
+        Any of :data:`KINDS`; the group kinds ``center_distance`` and
+        ``coordination`` pair the residues of the selection.
     cutoff : float, default=1.0
-        Distance prefilter cutoff, in nm (``inf``: keep every pair).
+        Prefilter cutoff, in nm (``inf``: keep every pair): on the mean atom
+        distance for distances, on the mean distance of the residues' mass
+        centers for the group kinds.
     stride : int, default=10
         Frame stride of the prefilter pass.
+    coordination_r0 : float, default=COORDINATION_R0_NM
+        Switching distance of the coordination numbers, nm.
 
     Returns
     -------
@@ -564,10 +854,20 @@ def build_pool(source, *, selection=None, kinds=("distance", "angle", "dihedral"
             notes.append(note)
         pairs, note = prefilter_pairs(pairs, source, cutoff=cutoff, stride=stride)
         notes.append(note)
-    pool = candidate_pool(source.topology, atoms, kinds, pairs=pairs)
+    group_pairs = None
+    if any(k in kinds for k in GROUP_KINDS):
+        groups = residue_groups(source.topology, atoms)
+        if len(groups) >= 2:
+            probe = Pool([], source.topology)
+            group_pairs, note = prefilter_group_pairs(
+                [g for _, g in groups], source, cutoff=cutoff, stride=stride,
+                masses=[probe.group_masses(g) for _, g in groups])
+            notes.append(note)
+    pool = candidate_pool(source.topology, atoms, kinds, pairs=pairs, group_pairs=group_pairs,
+                          coordination_r0=coordination_r0)
     counts = {k: sum(d.kind == k for d in pool.descriptors) for k in kinds}
     notes += pool.notes
-    notes.append("pool: " + ", ".join(f"{n} {k}s" for k, n in counts.items()))
+    notes.append("pool: " + ", ".join(f"{n} {k.replace('_', ' ')}s" for k, n in counts.items()))
     if not pool.descriptors:
         raise InputError(
             "the pool is empty: no descriptor of the requested kinds "

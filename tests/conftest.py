@@ -138,3 +138,20 @@ def ou_train(ou):
 def ou_test(ou):
     """An independent set of 50 trajectories of 10 000 frames of `ou`."""
     return ou.simulate(50, 10_000, seed=7)
+
+
+def _adk_domain(resseq):
+    if 30 <= resseq <= 59:
+        return "NMP"
+    if 122 <= resseq <= 159:
+        return "LID"
+    return "CORE"
+
+
+@pytest.fixture(scope="session")
+def adk_domain():
+    """Domain of an adenylate kinase residue number: CORE 1-29, 60-121, 160-214; NMP
+    30-59; LID 122-159, as defined by Beckstein, Denning, Perilla and Woolf (J. Mol. Biol.
+    394:160, 2009; from memory). The closed/open change of the MDAnalysis test trajectory
+    is the LID and NMP domains closing over the CORE."""
+    return _adk_domain

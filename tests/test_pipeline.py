@@ -130,13 +130,8 @@ def test_labels_of_wrong_length_are_refused(demo_files):
 # data (adk.psf + adk_dims.dcd: a DIMS transition, Beckstein, Denning, Perilla and Woolf,
 # J. Mol. Biol. 394:160, 2009). Domains as defined there (from memory): CORE 1-29, 60-121,
 # 160-214; NMP 30-59; LID 122-159. The closed/open change is the LID and NMP domains
-# closing over the CORE, so a separating CA-CA distance must join two different domains.
-def _domain(resseq):
-    if 30 <= resseq <= 59:
-        return "NMP"
-    if 122 <= resseq <= 159:
-        return "LID"
-    return "CORE"
+# closing over the CORE, so a separating CA-CA distance must join two different domains
+# (the domain of a residue: the `adk_domain` fixture of conftest.py).
 
 
 @pytest.fixture(scope="module")
@@ -147,16 +142,16 @@ def adk_result(mda_data):
     return src, suggest(src, selection="name CA", max_terms=3, n_suggestions=3)
 
 
-def test_adk_top_descriptors_join_different_domains(adk_result):
+def test_adk_top_descriptors_join_different_domains(adk_result, adk_domain):
     src, result = adk_result
     top = src.topology
     for row in result.scorecard[:10]:
         a, b = row["atoms"]
-        da, db = (_domain(top.atom(i).residue.resSeq) for i in (a, b))
+        da, db = (adk_domain(top.atom(i).residue.resSeq) for i in (a, b))
         assert da != db, row["label"]
     for term in result.ranking[0]["terms"]:
         a, b = term["atoms"]
-        assert _domain(top.atom(a).residue.resSeq) != _domain(top.atom(b).residue.resSeq)
+        assert adk_domain(top.atom(a).residue.resSeq) != adk_domain(top.atom(b).residue.resSeq)
 
 
 def test_adk_spec_round_trip_on_psf_dcd(adk_result, mda_data, tmp_path):

@@ -71,6 +71,8 @@ def main():
         cases = [("CA, separate, no bootstrap", "name CA", {"n_bootstrap": 0}),
                  ("CA, separate (default)", "name CA", {}),
                  ("CA, both, lag 5 ps", "name CA", {"objective": "both", "lag": 5.0}),
+                 ("heavy atoms, residue pairs", None,
+                  {"kinds": ("center_distance", "coordination")}),
                  ("heavy atoms (default)", None, {})]
         for label, sel, kw in cases:
             src = source()
