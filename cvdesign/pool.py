@@ -252,6 +252,8 @@ class Pool:
                 ft.append(t)
         self.feature_descriptor = np.array(fd, dtype=np.intp)
         self.feature_transform = ft
+        self._first = np.searchsorted(self.feature_descriptor,
+                                      np.arange(len(self.descriptors) + 1)).astype(np.intp)
         self._index = {kind: [i for i, d in enumerate(self.descriptors) if d.kind == kind]
                        for kind in KINDS}
         self._atoms = {kind: np.array([self.descriptors[i].atoms for i in idx], dtype=np.intp)
@@ -277,9 +279,15 @@ class Pool:
 
     def features_of(self, descriptor_indices):
         """Feature indices belonging to the given descriptors, in pool order."""
-        want = np.zeros(len(self.descriptors), dtype=bool)
-        want[np.asarray(descriptor_indices, dtype=np.intp)] = True
-        return np.flatnonzero(want[self.feature_descriptor])
+        idx = np.unique(np.asarray(descriptor_indices, dtype=np.intp).ravel())
+        if idx.size and (idx[0] < -len(self.descriptors) or idx[-1] >= len(self.descriptors)):
+            raise IndexError(f"descriptor index out of range 0..{len(self.descriptors) - 1}")
+        idx = np.unique(idx % max(len(self.descriptors), 1))
+        # a descriptor's features are contiguous: [first[i], first[i + 1])
+        start, stop = self._first[idx], self._first[idx + 1]
+        counts = stop - start
+        offsets = np.repeat(start - np.cumsum(counts) + counts, counts)
+        return offsets + np.arange(int(counts.sum()), dtype=np.intp)
 
     def subset(self, descriptor_indices):
         """A new pool with the given descriptors, in the given order."""

@@ -1,5 +1,7 @@
 """Block bootstrap: reproducible, and calibrated on a synthetic Gaussian case."""
 
+import warnings
+
 import numpy as np
 import pytest
 
@@ -82,3 +84,21 @@ def test_bad_arguments_are_named():
         block_bootstrap([[]], lambda m: 0.0)
     with pytest.raises(ValueError, match="level=1.5"):
         block_bootstrap([[Moments.from_data(np.ones((2, 1)))]], lambda m: 0.0, level=1.5)
+
+
+def test_percentile_interval_equals_numpy_nanquantile_exactly():
+    """The vectorized path (columns without NaN) and the NaN path give numpy's
+    nanquantile bit for bit, for any shape of replicates."""
+    rng = np.random.default_rng(12)
+    a = (1 - 0.95) / 2
+    for shape in [(200, 50), (61, 3, 7), (40, 300), (100,)]:
+        r = rng.standard_normal(shape) * rng.uniform(0.1, 100, shape[1:])
+        r[rng.random(shape) < 0.01] = np.nan
+        if len(shape) > 1:
+            r.reshape(shape[0], -1)[:, 2] = np.nan
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            expect = np.nanquantile(r, a, axis=0), np.nanquantile(r, 1 - a, axis=0)
+        for got, ref in zip(percentile_interval(r), expect):
+            assert np.shape(got) == np.shape(ref)
+            np.testing.assert_array_equal(got, ref)

@@ -137,3 +137,30 @@ def test_a_large_ring_closed_by_a_cross_link_keeps_its_torsions():
     top = _topology(12, chain + [(0, 11)])
     pool = candidate_pool(top, range(12), kinds=("dihedral",))
     assert len(pool.descriptors) == 12
+
+
+def test_features_of_equals_a_mask_over_the_pool():
+    """features_of (contiguous ranges per descriptor) equals selecting by a boolean mask
+    over feature_descriptor, for repeated, unsorted and negative indices."""
+    top = md.Topology()
+    res = top.add_residue("X", top.add_chain(), 1)
+    for i in range(8):
+        top.add_atom(f"C{i}", md.element.carbon, res)
+    rng = np.random.default_rng(5)
+    descs = {}
+    for _ in range(60):
+        kind = str(rng.choice(["distance", "angle", "dihedral"]))
+        n = {"distance": 2, "angle": 3, "dihedral": 4}[kind]
+        d = Descriptor(kind, tuple(int(x) for x in rng.choice(8, n, replace=False)), "x")
+        descs[d.id] = d
+    pool = Pool(list(descs.values()), top)
+    for _ in range(100):
+        ix = rng.choice(len(pool), rng.integers(0, 12))
+        if rng.random() < 0.3:
+            ix = ix - len(pool)
+        want = np.zeros(len(pool), dtype=bool)
+        want[ix] = True
+        np.testing.assert_array_equal(pool.features_of(ix),
+                                      np.flatnonzero(want[pool.feature_descriptor]))
+    with pytest.raises(IndexError):
+        pool.features_of([len(pool)])
