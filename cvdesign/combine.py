@@ -183,11 +183,17 @@ def slow_direction(lagged, idx, *, epsilon=1e-6):
 
 
 def autocorrelation_along(w, lagged, idx):
-    """Normalized autocorrelation at the lag of the projection on `w` (reversible)."""
+    """Normalized autocorrelation at the lag of the projection on `w` (reversible).
+
+    Returns NaN (not measured) when `lagged` holds no lagged pairs (every run
+    shorter than the lag) or the projection does not vary.
+    """
+    if not lagged.count > 0:
+        return float("nan")
     sub = lagged.subset(np.asarray(idx, dtype=np.intp))
     _, c0, ct = sub.covariances(reversible=True)
     den = float(w @ c0 @ w)
-    return float(w @ ct @ w) / den if den > 0 else 0.0
+    return float(w @ ct @ w) / den if den > 0 else float("nan")
 
 
 def cv_direction(fold_moments, idx, *, objective="separate", method="lda", shrinkage=1e-3,
@@ -241,7 +247,7 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
             out[k] = j
         else:
             rho = autocorrelation_along(w, fold_moments.lagged_test(k), idx)
-            out[k] = j / (1.0 + j) * max(rho, 0.0)
+            out[k] = j / (1.0 + j) * (max(rho, 0.0) if np.isfinite(rho) else 0.0)
     return out
 
 

@@ -55,6 +55,10 @@ CAUTION = (
 
 _N_BINS = 50
 
+#: A feature whose standard deviation within some state is at most this fraction of its
+#: overall standard deviation is *frozen* there (identical frames): not scored, not combined.
+FROZEN_RELATIVE_SPREAD = 1e-6
+
 #: Fewest frames of each state in each held-out fold; with fewer, the within-state
 #: variance of a fold is too noisy to score on.
 MIN_FRAMES_PER_FOLD = 10
@@ -224,7 +228,9 @@ class Suggestions:
                 "-lag/ln(autocorrelation) on all data; a timescale longer than the longest run "
                 "is only a lower bound. "
                 "Intervals are 95 % block-bootstrap intervals; selection is the fraction of "
-                "bootstrap refits whose rank-1 combination holds the descriptor.", "",
+                "bootstrap refits of the whole search in which the descriptor is kept in the "
+                "refit's counterpart of this CV (its ranked combination sharing the most "
+                "descriptors with it).", "",
                 "| rank | spec | held-out J | overlap | autocorr. | timescale (ps) | "
                 "descriptors (weight [95 % CI], selection) |",
                 "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]
@@ -769,12 +775,24 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         notes.append("time step unknown for " + ", ".join(unknown[:5])
                      + (" ..." if len(unknown) > 5 else "")
                      + " (the format stores no times, or a single frame)")
-    if lag_ps is not None:
+    if lag1 is not None and lag1.moments().count == 0:
+        longest = _longest_run_text(seg_counts, timesteps)
+        if objective in ("slow", "both"):
+            raise InputError(
+                f"lag={lag_ps:g} ps is longer than every run ({longest}): there are no lagged "
+                f"pairs to measure slowness with, which objective {objective!r} needs; choose "
+                "a shorter --lag or give longer runs")
+        notes.append(f"slowness not measured: no run is longer than the lag ({lag_ps:g} ps; "
+                     f"{longest}), so there are no lagged pairs; the autocorrelation and "
+                     "timescale columns are left empty (give a shorter --lag to measure them)")
+        lag1 = lag_frames = None
+        lag_ps = None
+    elif lag_ps is not None:
         notes.append(f"lag: {lag_ps:g} ps"
                      + (" (default: 10 frames, for the slowness columns only)" if lag is None
                         else "")
                      + "; lagged pairs never span a file, a state change or a gap in frames")
-    else:
+    elif lag_frames is not None or lag is None:
         notes.append("slowness not scored: the files' time steps are unknown or differ; "
                      "give --lag PS (and --timestep PS for files that store no times)")
 
@@ -784,16 +802,33 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     scale = np.sqrt(priors @ (variances + (means - center) ** 2))
     constant = ~(scale > 1e-12 * (1.0 + np.abs(center)))
     scale[constant] = 1.0
+    # a feature that does not move within some state (identical frames) has no
+    # measurable spread there: its Fisher ratio would be infinite and a bias kernel along
+    # it of zero width, so it is neither scored nor combined
+    frozen_feat = ~constant & (variances.min(axis=0) <= (FROZEN_RELATIVE_SPREAD * scale) ** 2)
+    unscored = constant | frozen_feat
     fisher_feat = fisher_ratio(means, variances, priors)
-    fisher_feat[constant] = 0.0
-    fisher_feat = np.where(np.isfinite(fisher_feat), fisher_feat, 1e12)
+    fisher_feat[unscored] = 0.0
     if lag1 is not None:
         rho_feat = np.nan_to_num(lag1.moments().autocorrelation(), nan=0.0)
-        rho_feat[constant] = 0.0
+        rho_feat[unscored] = 0.0
         local_feat = np.nan_to_num(lag1.local_autocorrelation(), nan=0.0)
-        local_feat[constant] = 0.0
+        local_feat[unscored] = 0.0
     else:
         rho_feat = local_feat = None
+    frozen_desc = {}
+    for f in np.flatnonzero(frozen_feat):
+        i = int(pool.feature_descriptor[f])
+        frozen_desc.setdefault(i, sorted({source.states[s] for s in range(n_states)
+                                          if variances[s, f] <= (FROZEN_RELATIVE_SPREAD
+                                                                 * scale[f]) ** 2}))
+    if frozen_desc:
+        first = pool.descriptors[min(frozen_desc)]
+        notes.append(f"frozen: {len(frozen_desc)} descriptor(s) do not move within some state "
+                     f"(e.g. {first.label} in state {frozen_desc[min(frozen_desc)][0]!r}: "
+                     "every frame has the same value), so they are neither scored nor "
+                     "combined; check that those trajectories are real dynamics, not repeated "
+                     "frames")
     low = np.min([d.minimum for d in diag], axis=0)
     high = np.max([d.maximum for d in diag], axis=0)
 
@@ -806,6 +841,10 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         np.maximum.at(rho_desc, pool.feature_descriptor, rho_feat)
         local_desc = np.full(n_desc, -np.inf)
         np.maximum.at(local_desc, pool.feature_descriptor, local_feat)
+    for i in frozen_desc:  # not scored, whatever its other features say
+        fisher_desc[i] = 0.0
+        if rho_desc is not None:
+            rho_desc[i] = local_desc[i] = -np.inf
     if objective == "separate":
         screen_score = fisher_desc
     elif objective == "slow":
@@ -816,9 +855,14 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     screen_order = sorted(range(n_desc), key=lambda i: (-screen_score[i], i))
     screened = [i for i in screen_order if screen_score[i] > 0][:screen_size]
     if not screened:
-        if objective != "separate" and lag1 is not None and lag1.moments().count == 0:
-            raise InputError(f"no lagged pairs at lag {lag_ps:g} ps: every run is shorter than "
-                             "the lag; choose a shorter --lag")
+        if frozen_desc:
+            raise InputError(
+                f"every descriptor that differs between the states is frozen within some "
+                f"state ({len(frozen_desc)} descriptors; e.g. "
+                f"{pool.descriptors[min(frozen_desc)].label} does not move in state "
+                f"{frozen_desc[min(frozen_desc)][0]!r}): a separation cannot be measured "
+                "without fluctuations within the states; give trajectories of real dynamics "
+                "(not one repeated frame) for every state")
         what = ("differs between the states (every Fisher ratio is 0)" if objective != "slow"
                 else "is correlated in time at the lag (every autocorrelation is 0)")
         raise InputError(f"no descriptor {what}; check the trajectories and the lag")
@@ -895,7 +939,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     pooled = fm.pooled()
     within = np.tensordot(priors, np.array([m.covariance for m in pooled]), axes=1)
     dcorr = descriptor_correlation(within, groups)
-    graph = redundancy_graph(dcorr, max_correlation)
+    search = {"objective": objective, "method": method, "shrinkage": shrinkage}
+    adds_nothing = _AddsNothing(fm, groups, search, min_gain)
+    graph = redundancy_graph(dcorr, max_correlation, adds_nothing=adds_nothing)
     reps = representatives(graph, {g: -float(g) for g in range(len(screened))})
     notes_by_desc, stands_for = {}, {}
     for rep, others in reps:
@@ -903,16 +949,17 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         for o in others:
             notes_by_desc[screened[o]] = (
                 f"represented by {pool.descriptors[screened[rep]].id} "
-                f"(|r|={dcorr[rep, o]:.3f})")
+                f"(|r|={dcorr[rep, o]:.3f}; together they score no better than alone)")
     short = [rep for rep, _ in reps][:shortlist_size]
     n_red = sum(len(o) for _, o in reps)
     notes.append(f"redundancy: {n_red} of the {len(screened)} screened descriptors are "
-                 f"represented by a better one (pooled within-state |r| > {max_correlation:g}, "
-                 f"connected components of the correlation graph); shortlist: {len(short)} "
-                 "representatives")
+                 f"represented by a better one (pooled within-state |r| > {max_correlation:g} "
+                 "and the pair's held-out score not more than "
+                 f"{min_gain:.0%} above the better one alone; {adds_nothing.kept} correlated "
+                 "pairs kept apart because their combination scores higher); shortlist: "
+                 f"{len(short)} representatives")
     _note(progress, f"searching combinations of up to {max_terms} of {len(short)} descriptors")
 
-    search = {"objective": objective, "method": method, "shrinkage": shrinkage}
     sub_groups = [groups[g] for g in short]
     combos = greedy_search(fm, sub_groups, max_terms=max_terms, n_seeds=n_seeds,
                            min_gain=min_gain, **search)
@@ -956,11 +1003,12 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     if n_bootstrap:
         _note(progress, f"bootstrap ({n_bootstrap} replicates)")
         boot = _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors,
-                          fm, search, max_terms, min_gain, n_bootstrap, seed, lag_frames)
+                          fm, search, max_terms, min_gain, n_seeds, n_bootstrap, seed,
+                          lag_frames)
         notes.append(f"uncertainties: block bootstrap, {n_bootstrap} replicates (seed {seed}), "
                      f"blocks of {pass3['block_desc']} resampled within each state; 95 % "
                      "percentile intervals")
-        card_ci = _card_intervals(card, card_desc, card_feat, pool, center, priors, constant,
+        card_ci = _card_intervals(card, card_desc, card_feat, pool, center, priors, unscored,
                                   n_bootstrap, seed)
         if card_ci is None:
             notes.append("score card: no bootstrap intervals (a state has fewer than two "
@@ -976,17 +1024,20 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         row = {
             "id": d.id, "kind": d.kind, "label": d.label, "atoms": list(d.atoms),
             **({"groups": [list(g) for g in d.groups]} if d.groups else {}),
-            "fisher_ratio": float(fisher_desc[i]), "overlap": _finite(overlap_desc[i]),
+            "fisher_ratio": None if i in frozen_desc else float(fisher_desc[i]),
+            "overlap": _finite(overlap_desc[i]),
             "autocorrelation": None if rho_desc is None else _finite(rho_desc[i]),
             "autocorrelation_within_runs": None if local_desc is None else _finite(local_desc[i]),
             "integrated_time": None if tau is None else tau[0],
             "integrated_time_decayed": None if tau is None else tau[1],
             "screened": i in screened_set, "shortlisted": i in short_set,
-            "stands_for": stands_for.get(i, []), "note": notes_by_desc.get(i, ""),
+            "stands_for": stands_for.get(i, []),
+            "note": (f"frozen: does not move within state(s) {', '.join(frozen_desc[i])}; "
+                     "not scored" if i in frozen_desc else notes_by_desc.get(i, "")),
         }
         if tau is not None and tau[2] is not None:
             row["integrated_time_ci"] = tau[2]
-        if card_ci is not None and i in card_ci:
+        if card_ci is not None and i in card_ci and i not in frozen_desc:
             row.update(card_ci[i])
         scorecard.append(row)
 
@@ -1026,6 +1077,30 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
                        input_files=output_inputs(source), objective=objective, lag_ps=lag_ps)
 
 
+class _AddsNothing:
+    """``adds_nothing(i, j)``: do screened descriptors i and j together score no better
+    (held-out, by the search's own objective) than the better of the two alone, by more
+    than the search's `min_gain`? Counts the correlated pairs it keeps apart."""
+
+    def __init__(self, fm, groups, search, min_gain):
+        self.fm, self.groups, self.search, self.min_gain = fm, groups, search, min_gain
+        self._single = {}
+        self.kept = 0
+
+    def _score(self, members):
+        idx = np.concatenate([self.groups[m] for m in members])
+        return heldout_score(self.fm, idx, **self.search)[0]
+
+    def __call__(self, i, j):
+        for g in (i, j):
+            if g not in self._single:
+                self._single[g] = self._score((g,))
+        best = max(self._single[i], self._single[j])
+        redundant = not self._score((i, j)) > best + self.min_gain * abs(best)
+        self.kept += not redundant
+        return redundant
+
+
 def kinetic_map_scale(w, lagged, idx):
     """Scale a slow direction to kinetic-map units (Noé and Clementi, J. Chem. Theory
     Comput. 2015): the CV's variance becomes ``lambda^2``, its autocorrelation at the lag
@@ -1052,6 +1127,14 @@ def _hints_for(entry, temperature, md_timestep_fs):
                              autocorrelation_time_ps=entry.get("integrated_time_ps"))
     except ValueError:
         return None
+
+
+def _longest_run_text(seg_counts, timesteps):
+    """'the longest run is N frames (T ps)': the longest series of one state in one file."""
+    si, s = np.unravel_index(int(np.argmax(seg_counts)), seg_counts.shape)
+    n = int(seg_counts[si, s])
+    dt = timesteps.get(int(si))
+    return f"the longest run is {n} frames" + ("" if dt is None else f" ({n * dt:g} ps)")
 
 
 def _check_uniform_time(source, si, chunk, dt, last):
@@ -1418,13 +1501,20 @@ def _pass3(source, pool, screened, scr_feat, center, scale, fits, fm, folds, sho
             "block_desc": desc}
 
 
+def _mean_finite(values):
+    """Mean of the finite values (NaN when there are none: not measured)."""
+    v = np.asarray(values, dtype=np.float64)
+    v = v[np.isfinite(v)]
+    return float(v.mean()) if v.size else float("nan")
+
+
 def _heldout_overlap(counts):
     """Mean over folds of the states' overlap along each CV; counts (fold, state, cv, bin)."""
     return np.mean([overlap_coefficient(counts[k]) for k in range(counts.shape[0])], axis=0)
 
 
 def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm, search,
-               max_terms, min_gain, n_bootstrap, seed, lag_frames):
+               max_terms, min_gain, n_seeds, n_bootstrap, seed, lag_frames):
     """Confidence intervals of weights and scores, and how often terms are selected."""
     blocks, where = pass3["blocks"], pass3["where"]
     n_states, n_folds = fm.n_states, fm.n_folds
@@ -1458,7 +1548,7 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
         return np.array(out)
 
     res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed)
-    out = {"combos": [], "selection": None}
+    out = {"combos": []}
     pos = 0
     for p_idx, _ in p_fits:
         n = p_idx.size
@@ -1470,26 +1560,37 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
                                     _finite(res.high[pos + n + 1])] if has_lag else None),
         })
         pos += n + 2
-    # How often each candidate is in the rank-1 combination of a refit of the search
-    # (seeded from the best single descriptor) on a bootstrap resample of the folds.
-    # Candidates: the terms of the ranked combinations and the best SELECTION_POOL
-    # representatives, which bounds the cost.
+    # How often each term of each ranked CV is kept when the whole search is rerun on a
+    # bootstrap resample of the folds: in each refit, the CV's counterpart is the refit's
+    # ranked combination sharing the most descriptors with it (ties: the better ranked),
+    # and a term counts as selected when the counterpart holds it. The refits run the
+    # main search (same seeds, objective and rule) over the terms of the ranked
+    # combinations and the best SELECTION_POOL representatives, which bounds the cost.
     per_fold = [blocks.get((s, k), []) for s in range(n_states) for k in range(n_folds)]
     if all(len(g) >= 1 for g in per_fold):
         in_ranked = {short.index(g) for gidx, *_ in fits for g in gidx}
         cand = sorted(in_ranked | set(range(min(SELECTION_POOL, len(short)))))
         cand_groups = [short_groups[j] for j in cand]
+        cpos = {j: c for c, j in enumerate(cand)}
+        ranked_sets = [[cpos[short.index(g)] for g in gidx] for gidx, *_ in fits]
+        n_terms_all = sum(len(m) for m in ranked_sets)
 
         def select(merged):
             grid = [[merged[s * n_folds + k][0] for k in range(n_folds)] for s in range(n_states)]
             lag = ([merge_all([merged[s * n_folds + k][1] for s in range(n_states)])
                     for k in range(n_folds)] if has_lag else None)
             boot_fm = FoldMoments(grid, priors, lag)
-            combos = greedy_search(boot_fm, cand_groups, max_terms=max_terms, n_seeds=1,
+            combos = greedy_search(boot_fm, cand_groups, max_terms=max_terms, n_seeds=n_seeds,
                                    min_gain=min_gain, **search)
-            best = rank_combinations(combos, limit=1)[0]
-            hit = np.zeros(len(cand))
-            hit[list(best.members)] = 1.0
+            refit = [frozenset(c.members) for c in rank_combinations(combos, limit=len(fits))]
+            hit = np.zeros(n_terms_all + len(fits))
+            pos = 0
+            for ci, members in enumerate(ranked_sets):
+                mine = frozenset(members)
+                twin = max(refit, key=lambda r: (len(r & mine), -refit.index(r)))
+                hit[pos:pos + len(members)] = [m in twin for m in members]
+                hit[n_terms_all + ci] = twin == mine
+                pos += len(members)
             # held-out scores of the ranked combinations on the resampled folds (refitted),
             # and their held-out overlap and autocorrelation along the fold directions
             held = []
@@ -1502,24 +1603,27 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
                                           method=search["method"],
                                           shrinkage=search["shrinkage"])[0])
                 held.append(overlap[ci])
-                held.append(np.mean([autocorrelation_along(fold_ws[ci][k], lag[k], p_idx)
-                                     for k in range(n_folds)]) if has_lag else np.nan)
+                held.append(_mean_finite([autocorrelation_along(fold_ws[ci][k], lag[k], p_idx)
+                                          for k in range(n_folds)]) if has_lag else np.nan)
             return np.concatenate([hit, held])
 
         n_sel = min(n_bootstrap, SELECTION_REPLICATES)
+        n_hit = n_terms_all + len(fits)
         sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1)
-        ok = np.isfinite(sel.replicates[:, :len(cand)]).all(axis=1)
-        freq = sel.replicates[ok, :len(cand)].mean(axis=0) if ok.any() \
-            else np.full(len(cand), np.nan)
-        low, high = percentile_interval(sel.replicates[ok, len(cand):])
+        ok = np.isfinite(sel.replicates[:, :n_hit]).all(axis=1)
+        freq = sel.replicates[ok, :n_hit].mean(axis=0) if ok.any() else np.full(n_hit, np.nan)
+        low, high = percentile_interval(sel.replicates[ok, n_hit:])
+        pos = 0
         for i, c in enumerate(out["combos"]):
             for j, key in enumerate(("heldout_score_ci", "heldout_fisher_ratio_ci",
                                      "heldout_overlap_ci", "heldout_autocorrelation_ci")):
                 c[key] = [_finite(low[4 * i + j]), _finite(high[4 * i + j])]
             if not has_lag:
                 c["heldout_autocorrelation_ci"] = None
-        out["selection"] = {pool.descriptors[screened[short[j]]].id: _finite(freq[c])
-                            for c, j in enumerate(cand)}
+            n = len(ranked_sets[i])
+            c["selection"] = [_finite(v) for v in freq[pos:pos + n]]
+            c["reproduced"] = _finite(freq[n_terms_all + i])
+            pos += n
         out["n_selection"] = int(ok.sum())
     return out
 
@@ -1543,7 +1647,7 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
         timescale = float(implied_timescales([rho_all], lag_ps)[0])
     terms, local = [], 0
     ci = boot["combos"][rank - 1] if boot is not None else None
-    sel = boot["selection"] if boot is not None else None
+    sel = ci.get("selection") if ci is not None else None
     for g in gidx:
         desc = pool.descriptors[screened[g]]
         for t, fi in zip(desc.transforms, groups[g]):
@@ -1555,7 +1659,7 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
             if ci is not None:
                 term["weight_ci"] = ci["weights_ci"][local]
             if sel is not None:
-                term["selection_frequency"] = sel.get(desc.id)
+                term["selection_frequency"] = sel[gidx.index(g)]
             terms.append(term)
             local += 1
     state_stats = {}
@@ -1573,7 +1677,7 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
         "heldout_fisher_ratio": float(sep.mean()), "heldout_fisher_ratio_se": se,
         "heldout_overlap": _finite(overlap), "fisher_ratio_all": _finite(j_all),
         "lag_ps": lag_ps,
-        "heldout_autocorrelation": float(np.mean(rho)) if rho else None,
+        "heldout_autocorrelation": _finite(_mean_finite(rho)) if rho else None,
         "autocorrelation_all": _finite(rho_all) if rho_all is not None else None,
         "timescale_ps": _finite(timescale) if timescale is not None else None,
         "states": state_stats, "terms": terms,
@@ -1582,6 +1686,7 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
         entry["fisher_ratio_ci"] = ci["fisher_ratio_ci"]
         entry["autocorrelation_ci"] = ci["autocorrelation_ci"]
         entry["bootstrap_refits_for_selection"] = boot.get("n_selection")
+        entry["reproduced_in_refits"] = ci.get("reproduced")
         for key in ("heldout_score_ci", "heldout_fisher_ratio_ci", "heldout_overlap_ci",
                     "heldout_autocorrelation_ci"):
             if ci.get(key) is not None:

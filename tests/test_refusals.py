@@ -1,0 +1,102 @@
+"""Answers right or refused: frozen input, a lag longer than every run, and bootstrap
+selection frequencies that describe the CV they stand beside."""
+
+import csv
+import io
+import json
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign import InputError, Source, suggest
+
+
+def _repeated_frames(path_in, top, path_out, n=60, frame=0):
+    traj = md.load(path_in, top=top)[frame]
+    md.Trajectory(np.repeat(traj.xyz, n, axis=0), traj.topology,
+                  time=np.arange(n, dtype=np.float64)).save_xtc(str(path_out))
+    return str(path_out)
+
+
+def test_frozen_states_are_refused_not_scored_1e12(demo_files, tmp_path):
+    # every frame of each state is the same structure: no within-state spread anywhere
+    top, states = demo_files
+    src = Source(top)
+    for name, files in states.items():
+        src.add(_repeated_frames(files[0], top, tmp_path / f"{name}.xtc", n=60), name)
+    with pytest.raises(InputError, match=r"frozen within some state .* real dynamics"):
+        suggest(src, n_bootstrap=0)
+
+
+def test_a_descriptor_frozen_in_one_state_is_named_and_not_combined(demo_files, tmp_path):
+    # real runs of both states, but in every open frame the atom F3 is put at a fixed
+    # offset from C1: the pair C1-F3 is frozen in 'open' (its Fisher ratio would be
+    # infinite), everything else moves.
+    top, states = demo_files
+    src = Source(top)
+    for f in states["closed"][:2]:
+        src.add(f, "closed")
+    for k, f in enumerate(states["open"][:2]):
+        traj = md.load(f, top=top)
+        xyz = traj.xyz.copy()
+        xyz[:, 11] = xyz[:, 0] + np.array([0.5, 0.0, 0.0], dtype=np.float32)
+        out = tmp_path / f"open-{k}.xtc"
+        md.Trajectory(xyz, traj.topology, time=traj.time).save_xtc(str(out))
+        src.add(str(out), "open")
+    result = suggest(src, n_bootstrap=0, max_terms=2, n_suggestions=3)
+    rows = {r["id"]: r for r in result.scorecard}
+    frozen = rows["distance:0-11"]
+    assert frozen["fisher_ratio"] is None
+    assert frozen["note"].startswith("frozen: does not move within state(s) open")
+    assert not frozen["screened"]
+    assert any(n.startswith("frozen: 1 descriptor(s)") for n in result.notes)
+    assert all(t["descriptor"] != "distance:0-11" for r in result.ranking for t in r["terms"])
+    assert "1e+12" not in result.scorecard_csv()
+
+
+def test_lag_longer_than_every_run_leaves_slowness_unmeasured(demo_files, tmp_path):
+    top, states = demo_files
+    src = Source.from_states(top, {s: f[:2] for s, f in states.items()})
+    result = suggest(src, lag=100_000.0, n_bootstrap=0, max_terms=2, n_suggestions=2)
+    assert any(n.startswith("slowness not measured: no run is longer than the lag")
+               for n in result.notes)
+    for r in result.ranking:
+        assert r["heldout_autocorrelation"] is None
+        assert r["autocorrelation_all"] is None and r["timescale_ps"] is None
+    for row in result.scorecard:
+        assert row["autocorrelation"] is None and row["autocorrelation_within_runs"] is None
+    table = list(csv.DictReader(io.StringIO(result.ranking_csv())))
+    assert all(row["heldout_autocorrelation"] == "" and row["timescale_ps"] == ""
+               for row in table)
+    card = list(csv.DictReader(io.StringIO(result.scorecard_csv())))
+    assert all(row["autocorrelation"] == "" for row in card)
+    doc = json.loads(result.ranking_json())
+    assert doc["lag_ps"] is None
+    assert "slowness not measured" in result.summary_md()
+
+
+@pytest.mark.parametrize("objective", ["slow", "both"])
+def test_lag_longer_than_every_run_is_refused_when_slowness_is_the_objective(demo_files,
+                                                                             objective):
+    top, states = demo_files
+    src = Source.from_states(top, {s: f[:2] for s, f in states.items()})
+    with pytest.raises(InputError, match=r"lag=100000 ps is longer than every run "
+                                         r"\(the longest run is \d+ frames"):
+        suggest(src, objective=objective, lag=100_000.0, n_bootstrap=0)
+
+
+@pytest.mark.parametrize("objective", ["separate", "both"])
+def test_selection_frequencies_describe_the_cv_they_stand_beside(demo_files, objective):
+    # The demo's two best CVs (the slow dihedral, then the distance C3-C6, far ahead of
+    # the rest) are stable; every one of their terms must be reported as kept by most
+    # refits of the search -- not 0 % for a term of the rank-1 CV under one objective and
+    # 100 % under the other, and not 0 % for every CV below rank 1. (Rank 3 and below
+    # swap places between refits, and their frequencies say so.)
+    top, states = demo_files
+    result = suggest(Source.from_states(top, states), objective=objective, lag=2.0,
+                     n_bootstrap=20, max_terms=2, n_suggestions=2)
+    for r in result.ranking:
+        assert r["reproduced_in_refits"] is not None
+        for t in r["terms"]:
+            assert t["selection_frequency"] >= 0.8, (r["rank"], t["label"])
