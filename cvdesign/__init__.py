@@ -13,7 +13,7 @@ The main entry points:
 __version__ = "0.1.0"
 
 from .errors import CVDesignError, InputError, SpecError, TopologyMismatchError  # noqa: E402
-from .estimators import HLDA, LDA, TICA, implied_timescales  # noqa: E402
+from .estimators import HLDA, LDA, TICA, timescales_from_eigenvalues  # noqa: E402
 from .explore import Exploration, propose_states  # noqa: E402
 from .moments import (  # noqa: E402
     DiagonalLaggedMoments,
@@ -37,7 +37,7 @@ __all__ = [
     "LDA",
     "HLDA",
     "TICA",
-    "implied_timescales",
+    "timescales_from_eigenvalues",
     "vamp2_score",
     "Exploration",
     "propose_states",

@@ -118,14 +118,15 @@ def _add_suggest_options(p):
     p.add_argument("--seed", type=_non_negative_int, default=0, metavar="N",
                    help="seed of the bootstrap and of the clustering of --runs; the same "
                         "inputs and seed give byte-identical outputs (default: 0)")
-    p.add_argument("--timestep", type=_positive_float, default=None, metavar="PS",
-                   help="time between frames in ps for files that store no times (DCD, "
-                        "PDB, ...); files that store times keep their own")
+    p.add_argument("--frame-step-ps", type=_positive_float, default=None, metavar="PS",
+                   help="time between trajectory frames in ps for files that store no times "
+                        "(DCD, PDB, ...); files that store times keep their own")
     p.add_argument("--temperature", type=_positive_float, default=300.0, metavar="K",
                    help="temperature of the biased run in K, for the bias-parameter hints "
                         "stored in each spec (default: 300)")
-    p.add_argument("--md-timestep", type=_positive_float, default=2.0, metavar="FS",
-                   help="MD timestep of the biased run in fs, for the hints (default: 2)")
+    p.add_argument("--md-step-fs", type=_positive_float, default=2.0, metavar="FS",
+                   help="MD step of the biased run in fs, for the hints (default: 2; 0.01 to "
+                        "100 fs accepted)")
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it holds an earlier cvdesign output")
     p.add_argument("--quiet", action="store_true", help="print only the final table")
@@ -211,12 +212,12 @@ def build_parser():
                     "validate, not guarantees.")
     p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json)")
     p.add_argument("--temperature", type=_positive_float, required=True, metavar="K",
-                   help="temperature of the biased run, K")
-    p.add_argument("--timestep", type=_positive_float, required=True, metavar="FS",
-                   help="MD timestep of the biased run, fs")
+                   help="temperature of the biased run, K (1 to 5000 K accepted)")
+    p.add_argument("--md-step-fs", type=_positive_float, required=True, metavar="FS",
+                   help="MD step of the biased run, fs (0.01 to 100 fs accepted)")
     p.add_argument("--barrier", type=_positive_float, default=None, metavar="KJ_PER_MOL",
-                   help="estimate of the barrier to leave the states, kJ/mol (default: a "
-                        "table over 20 to 100 kJ/mol)")
+                   help="estimate of the barrier to leave the states, kJ/mol, at least kT "
+                        "(default: a table over 20 to 100 kJ/mol)")
     p.add_argument("--kernel", choices=("gaussian", "lucy"), default="gaussian",
                    help="kernel shape: Gaussian, or Lucy's compact kernel (default: gaussian)")
     p.add_argument("--json", action="store_true", help="print the hints as JSON")
@@ -270,9 +271,13 @@ def _progress(quiet):
 
 def _run_suggest(topology, states, out, args, stream, runs=None):
     from ._io import prepare_output_dir
+    from .hints import check_run_conditions
     from .pipeline import CAUTION, suggest
     from .source import Source
 
+    # refuse an impossible temperature or MD step before reading anything; warn once
+    for warning in check_run_conditions(args.temperature, args.md_step_fs):
+        print(f"cvdesign: warning: {warning}", file=sys.stderr)
     given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or [])
     prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json")
     exploration = None
@@ -283,7 +288,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         if args.lag is None:
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
                              "looked for")
-        src = Source(topology, timestep=args.timestep)
+        src = Source(topology, timestep=args.frame_step_ps)
         for f in runs:
             src.add(f, state="runs")
         exploration = propose_states(src, lag=args.lag, n_states=args.n_states,
@@ -291,7 +296,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                                      prefilter_stride=args.prefilter_stride,
                                      coordination_r0=args.coordination_r0, seed=args.seed,
                                      progress=progress)
-        source = exploration.labelled_source(topology, timestep=args.timestep)
+        source = exploration.labelled_source(topology, timestep=args.frame_step_ps)
     else:
         if getattr(args, "n_states", None) is not None:
             raise InputError("--n-states goes with --runs (states proposed from unlabelled "
@@ -301,7 +306,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         if dup:
             raise InputError(f"state {dup[0]!r} is given twice; give each state once with all "
                              "of its files")
-        source = Source(topology, timestep=args.timestep)
+        source = Source(topology, timestep=args.frame_step_ps)
         for entry in states:
             name, files = entry[0], entry[1:]
             if not files:
@@ -315,7 +320,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                      coordination_r0=args.coordination_r0, max_terms=args.max_terms,
                      n_suggestions=args.suggestions, n_folds=args.folds,
                      n_bootstrap=args.bootstrap, seed=args.seed, temperature=args.temperature,
-                     md_timestep_fs=args.md_timestep, progress=progress)
+                     md_step_fs=args.md_step_fs, progress=progress)
     result.exploration = exploration
     result.write(out, force=args.force)
     if not args.quiet:
@@ -479,11 +484,13 @@ def _cmd_hints(args):
     from .spec import load_spec
 
     spec = load_spec(args.spec)
-    if not any(v.get("std", 0) > 0 for v in spec.states.values()):
-        raise InputError(f"spec {args.spec!r} records no state with a positive spread of the "
-                         "CV; hints need the within-state spread")
-    hints = spec_hints(spec, temperature=args.temperature, timestep_fs=args.timestep,
-                       barrier=args.barrier, kernel=args.kernel)
+    try:
+        hints = spec_hints(spec, temperature=args.temperature, md_step_fs=args.md_step_fs,
+                           barrier=args.barrier, kernel=args.kernel)
+    except InputError as exc:
+        raise InputError(f"{args.spec}: no hints: {exc}") from None
+    for warning in hints["warnings"]:
+        print(f"cvdesign hints: warning: {warning}", file=sys.stderr)
     if args.json:
         sys.stdout.write(json.dumps(hints, indent=2, sort_keys=True) + "\n")
     else:
@@ -598,8 +605,9 @@ def _cmd_demo(args):
     ns = argparse.Namespace(select=None, kinds=("distance", "angle", "dihedral"), cutoff=1.0,
                             prefilter_stride=10, coordination_r0=0.45, max_terms=5, suggestions=10, folds=4,
                             force=args.force, quiet=False, objective="separate", lag=None,
-                            method="hlda", bootstrap=args.bootstrap, seed=0, timestep=None,
-                            n_states=None, temperature=300.0, md_timestep=2.0)
+                            method="hlda", bootstrap=args.bootstrap, seed=0,
+                            frame_step_ps=None, n_states=None, temperature=300.0,
+                            md_step_fs=2.0)
     print(f"cvdesign demo: {manifest['description']}\n", file=sys.stdout)
     result = _run_suggest(top, states, args.out, ns, sys.stdout)
     slow = manifest["slow_dihedral"]

@@ -167,7 +167,7 @@ def fit_direction(moments, idx, priors, shrinkage, *, method="lda"):
     return vecs[:, 0]
 
 
-def slow_direction(lagged, idx, *, epsilon=1e-6):
+def slow_direction(lagged, idx, *, rcond=1e-6):
     """Slowest TICA direction (reversible estimate) on features `idx`.
 
     Returns
@@ -177,7 +177,7 @@ def slow_direction(lagged, idx, *, epsilon=1e-6):
         Its autocorrelation at the lag (dimensionless).
     """
     sub = lagged.subset(np.asarray(idx, dtype=np.intp))
-    tica = TICA.from_moments(sub, lag=sub.lag or 1, n_components=1, epsilon=epsilon)
+    tica = TICA.from_moments(sub, lag=sub.lag or 1, n_components=1, rcond=rcond)
     w = tica.eigenvectors_[:, 0]
     return w / np.linalg.norm(w), float(tica.eigenvalues_[0])
 

@@ -28,7 +28,7 @@ __all__ = [
     "TICA",
     "discriminant_directions",
     "rayleigh_quotient",
-    "implied_timescales",
+    "timescales_from_eigenvalues",
     "fix_signs",
 ]
 
@@ -500,19 +500,19 @@ class HLDA(_Discriminant):
 # ---------------------------------------------------------------------------
 
 
-def _check_epsilon(epsilon):
-    if isinstance(epsilon, (bool, np.bool_)) or not np.isscalar(epsilon) \
-            or not 0.0 <= float(epsilon) < 1.0:
-        raise ValueError(f"epsilon={epsilon!r} must be a number in [0, 1)")
-    return float(epsilon)
+def _check_rcond(rcond):
+    if isinstance(rcond, (bool, np.bool_)) or not np.isscalar(rcond) \
+            or not 0.0 <= float(rcond) < 1.0:
+        raise ValueError(f"rcond={rcond!r} must be a number in [0, 1)")
+    return float(rcond)
 
 
-def _whitener(cov, epsilon, name="C0"):
+def _whitener(cov, rcond, name="C0"):
     """Whitening matrix of a symmetric covariance, dropping tiny directions.
 
     Returns ``(W, n_dropped)`` with ``W`` of shape (n, m) such that
     ``W^T cov W = I_m``; the eigen-directions of `cov` with eigenvalue at most
-    ``epsilon`` times the largest are dropped. Columns are ordered by
+    ``rcond`` times the largest are dropped. Columns are ordered by
     decreasing variance.
     """
     evals, evecs = scipy.linalg.eigh(cov)
@@ -521,13 +521,13 @@ def _whitener(cov, epsilon, name="C0"):
         raise ValueError(
             f"{name} has no positive eigenvalue (largest {top!r}): the features do not vary"
         )
-    keep = evals > epsilon * top
+    keep = evals > rcond * top
     evals = evals[keep][::-1]
     evecs = evecs[:, keep][:, ::-1]
     return evecs / np.sqrt(evals), int(np.count_nonzero(~keep))
 
 
-def implied_timescales(eigenvalues, lag):
+def timescales_from_eigenvalues(eigenvalues, lag):
     """Implied relaxation timescales ``t = -lag / ln(lambda)``.
 
     Parameters
@@ -550,7 +550,7 @@ def implied_timescales(eigenvalues, lag):
     Examples
     --------
     >>> import numpy as np
-    >>> implied_timescales([np.exp(-0.5), 1.0, -0.1], lag=2).tolist()
+    >>> timescales_from_eigenvalues([np.exp(-0.5), 1.0, -0.1], lag=2).tolist()
     [4.0, inf, nan]
     """
     if isinstance(lag, (bool, np.bool_)) or not np.isscalar(lag) \
@@ -588,7 +588,7 @@ class TICA(TransformerMixin, BaseEstimator):
     timescales.
 
     Regularization: ``C(0)`` is eigen-decomposed and directions with
-    eigenvalue at most ``epsilon`` times the largest are dropped (counted in
+    eigenvalue at most ``rcond`` times the largest are dropped (counted in
     ``n_dropped_``); the kept space is whitened and the symmetric eigenproblem
     of the whitened ``C(tau)`` is solved.
 
@@ -596,11 +596,12 @@ class TICA(TransformerMixin, BaseEstimator):
     ----------
     n_components : int, default=None
         Number of components kept; None keeps all directions that survive
-        the `epsilon` cut.
+        the `rcond` cut.
     lag : int, default=1
         Lag ``tau`` in frames, >= 1.
-    epsilon : float, default=1e-6
-        Relative eigenvalue cut on ``C(0)``, in [0, 1).
+    rcond : float, default=1e-6
+        Relative cutoff of small eigenvalues of ``C(0)``, in [0, 1) (as
+        numpy's ``rcond``: relative to the largest).
     reversible : bool, default=True
         True: symmetrized estimate (each pair counted in both time
         directions; mean over both ends, ``C0 = (Cxx + Cyy) / 2``,
@@ -610,11 +611,12 @@ class TICA(TransformerMixin, BaseEstimator):
         about the means of each end; the eigenproblem then uses the symmetric
         part of ``Ctau``, the only part the autocorrelation ``w^T Ctau w``
         of a projection sees.
-    scaling : {None, 'kinetic_map'}, default=None
-        None: :meth:`transform` returns projections with unit variance
-        (``C(0)``-orthonormal directions). ``'kinetic_map'``: each component is
+    kinetic_weighting : bool, default=False
+        False: :meth:`transform` returns projections with unit variance
+        (``C(0)``-orthonormal directions). True: each component is
         multiplied by its eigenvalue, so that Euclidean distances in the
-        output approximate kinetic distances (Noé and Clementi 2015).
+        output approximate kinetic distances (the kinetic map of Noé and
+        Clementi 2015).
 
     Attributes
     ----------
@@ -631,10 +633,10 @@ class TICA(TransformerMixin, BaseEstimator):
         (``eigenvectors_.T @ covariance_ @ eigenvectors_ = I``), signs fixed by
         :func:`fix_signs`; in inverse feature units.
     timescales_ : ndarray of shape (n_components,)
-        Implied timescales in frames, see :func:`implied_timescales` (``inf``
-        for eigenvalues >= 1, NaN for eigenvalues <= 0).
+        Implied timescales in frames, see :func:`timescales_from_eigenvalues`
+        (``inf`` for eigenvalues >= 1, NaN for eigenvalues <= 0).
     n_dropped_ : int
-        Directions of ``C(0)`` dropped by the `epsilon` cut.
+        Directions of ``C(0)`` dropped by the `rcond` cut.
     n_features_in_ : int
 
     References
@@ -670,19 +672,20 @@ class TICA(TransformerMixin, BaseEstimator):
     True
     """
 
-    def __init__(self, n_components=None, *, lag=1, epsilon=1e-6, reversible=True,
-                 scaling=None):
+    def __init__(self, n_components=None, *, lag=1, rcond=1e-6, reversible=True,
+                 kinetic_weighting=False):
         self.n_components = n_components
         self.lag = lag
-        self.epsilon = epsilon
+        self.rcond = rcond
         self.reversible = reversible
-        self.scaling = scaling
+        self.kinetic_weighting = kinetic_weighting
 
     def _check_params(self):
         lag = _check_lag(self.lag)
-        _check_epsilon(self.epsilon)
-        if self.scaling not in (None, "kinetic_map"):
-            raise ValueError(f"scaling={self.scaling!r} must be None or 'kinetic_map'")
+        _check_rcond(self.rcond)
+        if not isinstance(self.kinetic_weighting, (bool, np.bool_)):
+            raise ValueError(f"kinetic_weighting={self.kinetic_weighting!r} must be True or "
+                             "False")
         if not isinstance(self.reversible, (bool, np.bool_)):
             raise ValueError(f"reversible={self.reversible!r} must be True or False")
         n = self.n_components
@@ -733,8 +736,8 @@ class TICA(TransformerMixin, BaseEstimator):
         return self._fit_moments(moments, lag)
 
     @classmethod
-    def from_moments(cls, lagged_moments, *, lag, n_components=None, epsilon=1e-6,
-                     reversible=True, scaling=None):
+    def from_moments(cls, lagged_moments, *, lag, n_components=None, rcond=1e-6,
+                     reversible=True, kinetic_weighting=False):
         """Fit from :class:`~cvdesign.moments.LaggedMoments`.
 
         Parameters
@@ -744,7 +747,7 @@ class TICA(TransformerMixin, BaseEstimator):
         lag : int
             The lag in frames at which they were accumulated (checked against
             ``lagged_moments.lag`` when that is known).
-        n_components, epsilon, reversible, scaling
+        n_components, rcond, reversible, kinetic_weighting
             As in the constructor.
 
         Returns
@@ -765,8 +768,8 @@ class TICA(TransformerMixin, BaseEstimator):
         if not isinstance(lagged_moments, LaggedMoments):
             raise ValueError(f"lagged_moments must be a LaggedMoments; "
                              f"got {type(lagged_moments).__name__}")
-        est = cls(n_components=n_components, lag=lag, epsilon=epsilon,
-                  reversible=reversible, scaling=scaling)
+        est = cls(n_components=n_components, lag=lag, rcond=rcond,
+                  reversible=reversible, kinetic_weighting=kinetic_weighting)
         lag = est._check_params()
         if lagged_moments.lag is not None and lagged_moments.lag != lag:
             raise ValueError(f"lag={lag} does not match the lag of lagged_moments "
@@ -777,12 +780,12 @@ class TICA(TransformerMixin, BaseEstimator):
         return est._fit_moments(lagged_moments, lag)
 
     def _fit_moments(self, moments, lag):
-        epsilon = _check_epsilon(self.epsilon)
+        rcond = _check_rcond(self.rcond)
         if self.reversible:
             mean, c0, ct = moments.covariances(reversible=True)
         else:
             mean, _, c0, ct, _ = moments.covariances(reversible=False)
-        white, n_dropped = _whitener(c0, epsilon, "the instantaneous covariance C0")
+        white, n_dropped = _whitener(c0, rcond, "the instantaneous covariance C0")
         kt = white.T @ ct @ white
         kt = 0.5 * (kt + kt.T)
         evals, evecs = scipy.linalg.eigh(kt)
@@ -793,7 +796,7 @@ class TICA(TransformerMixin, BaseEstimator):
             raise ValueError(
                 f"n_components={self.n_components!r} must be between 1 and the number of "
                 f"directions kept, {n_kept} (of {c0.shape[0]} features; {n_dropped} dropped "
-                f"by epsilon={self.epsilon!r})"
+                f"by rcond={self.rcond!r})"
             )
         order = order[:n_comp]
         self.mean_ = mean
@@ -801,13 +804,13 @@ class TICA(TransformerMixin, BaseEstimator):
         self.covariance_lag_ = ct
         self.eigenvalues_ = evals[order]
         self.eigenvectors_ = fix_signs(white @ evecs[:, order])
-        self.timescales_ = implied_timescales(self.eigenvalues_, lag)
+        self.timescales_ = timescales_from_eigenvalues(self.eigenvalues_, lag)
         self.n_dropped_ = n_dropped
         return self
 
     def _project(self, X):
         out = (X - self.mean_) @ self.eigenvectors_
-        if self.scaling == "kinetic_map":
+        if self.kinetic_weighting:
             out = out * self.eigenvalues_
         return out
 
@@ -822,7 +825,7 @@ class TICA(TransformerMixin, BaseEstimator):
         -------
         ndarray of shape (n_frames, n_components), or list of them
             ``(X - mean_) @ eigenvectors_`` (dimensionless, unit variance per
-            component), times ``eigenvalues_`` with ``scaling='kinetic_map'``;
+            component), times ``eigenvalues_`` with ``kinetic_weighting=True``;
             a list when `X` is a list.
         """
         check_is_fitted(self)

@@ -214,7 +214,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         x = pool.features(c.trajectory, atom_indices=atoms)[:, feats]
         lag2.feed(c.segment_index, c.frames, x, lag_frames[c.segment_index])
     lagged = standardize_lagged(lag2.moments(), center[feats], scale[feats])
-    tica = TICA.from_moments(lagged, lag=1, epsilon=1e-6)
+    tica = TICA.from_moments(lagged, lag=1, rcond=1e-6)
     ts_ps = (tica.timescales_ * lag).tolist()  # from_moments used lag=1 (one lag unit)
     notes = [f"TICA on the {feats.size} most autocorrelated features "
              f"({tica.n_dropped_} near-singular directions dropped, eigenvalue below 1e-6 of "

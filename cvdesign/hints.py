@@ -2,7 +2,7 @@
 
 Pure functions on plain numbers and dicts (no file I/O). From the per-state
 mean and spread of the CV in the input data (``spec["states"]``), a
-temperature and an MD timestep, :func:`suggest_hints` proposes a kernel width
+temperature and an MD step, :func:`suggest_hints` proposes a kernel width
 and height, a deposition interval, a well-tempered bias factor, walls and a
 grid, and estimates how long filling each basin will take; :func:`format_hints`
 renders the result as text.
@@ -11,8 +11,18 @@ Every number here is a starting point to validate, not a guarantee (see
 :data:`CAUTION`). Each rule names its source, or says "common practice"; values
 recalled without a reference at hand say "from memory".
 
+Refusals and warnings
+---------------------
+The hints refuse (:class:`~cvdesign.errors.InputError`) rather than print
+numbers that cannot be right, and warn (the ``warnings`` list of the result,
+shown first by :func:`format_hints`) about numbers that are possible but
+unusual enough to suggest a mistake. The bounds, with their reasons, are
+:data:`TEMPERATURE_LIMITS_K`, :data:`MD_STEP_LIMITS_FS`,
+:data:`SPREAD_RESOLUTION`, :data:`MAX_GRID_BINS` and the barrier rule of
+:func:`suggest_hints` (an estimate below kT is refused).
+
 Units: CV values, widths and grid in the CV's own units (often dimensionless),
-energies in kJ/mol, times in ps, MD timesteps in fs, temperatures in K.
+energies in kJ/mol, times in ps, the MD step in fs (``md_step_fs``), temperatures in K.
 
 Kernels
 -------
@@ -70,7 +80,12 @@ __all__ = [
     "CAUTION",
     "KB_KJ_MOL_K",
     "KERNELS",
+    "MAX_GRID_BINS",
+    "MD_STEP_LIMITS_FS",
+    "SPREAD_RESOLUTION",
+    "TEMPERATURE_LIMITS_K",
     "bias_factor_for_barrier",
+    "check_run_conditions",
     "fill_time_metadynamics",
     "fill_time_well_tempered",
     "fill_volume",
@@ -105,6 +120,52 @@ HINTS_VERSION = 1
 _SQRT_2PI = math.sqrt(2.0 * math.pi)
 _LUCY_SIGMA_TO_CUTOFF = math.sqrt(21.0 / 2.0)
 _DEFAULT_LEVELS = (20.0, 40.0, 60.0, 80.0, 100.0)
+
+#: Temperatures the hints accept, K: ``(refuse below, refuse above, warn below, warn
+#: above)``. Below 1 K kT is under 0.01 kJ/mol and no barrier is crossed thermally;
+#: above 5000 K nearly every substance has boiled (from memory) and classical force
+#: fields are far outside what they were made for, so such a value is most likely in
+#: other units (degrees Celsius, kT, kJ/mol). Molecular simulations mostly run between
+#: 100 K and 2000 K (common practice), so values outside that get a warning.
+TEMPERATURE_LIMITS_K = (1.0, 5000.0, 100.0, 2000.0)
+
+#: MD steps the hints accept, fs: ``(refuse below, refuse above, warn below, warn
+#: above)``. Atomistic MD integrates with 0.5-2 fs (4 fs with heavier hydrogens),
+#: ab initio and path-integral MD with 0.1-1 fs, coarse-grained models with up to
+#: about 40 fs (common practice, from memory). A step beyond 100 fs is no stable MD
+#: step of any of these, and one below 0.01 fs is most likely given in ps (0.002 ps =
+#: 2 fs); both are refused. Steps above 5 fs (coarse-grained only) or below 0.1 fs
+#: get a warning.
+MD_STEP_LIMITS_FS = (0.01, 100.0, 0.1, 5.0)
+
+#: Relative resolution of a within-state spread: a state whose CV std is at most this
+#: times the CV's scale (the largest ``|mean|``, spread of the means or std of the
+#: states), or at most 1e-12 CV units, has no spread the data can resolve. Trajectory
+#: coordinates are single precision (about 1.2e-7 relative), so 1e-6 is some ten
+#: rounding steps: below it the "spread" is rounding of a frozen (constrained, rigid,
+#: constant) coordinate, far below any thermal fluctuation (a stiff bond moves about
+#: 3e-3 nm at 300 K; from memory). A kernel width or grid built from it would be
+#: meaningless, so the hints refuse such a state (or leave it out, saying so, when
+#: ``leave_out_frozen``); there is no physical minimum width to fall back on because
+#: the CV's units are not known here (nm, rad or dimensionless combinations).
+SPREAD_RESOLUTION = 1e-6
+_SPREAD_FLOOR = 1e-12
+
+#: Largest grid, in bins, the hints propose. A 1-D bias grid of 10^2-10^4 points is
+#: usual (common practice, from memory); more than 10^5 means the kernel is tiny next
+#: to the range to explore (one state far narrower than the distance between states),
+#: and the bias would take correspondingly long to fill it, so the hints refuse and say
+#: what to change instead of proposing such a grid.
+MAX_GRID_BINS = 100_000
+
+#: Barrier estimates above this, kJ/mol, get a warning: conformational changes and
+#: most reactions have barriers well below it (a C-C bond takes about 350 kJ/mol to
+#: break; from memory), so a larger value is likely in J/mol.
+_BARRIER_WARN_KJ_MOL = 400.0
+
+#: Deposition intervals below this many MD steps get a warning (intervals of
+#: 100-1000 steps, about 0.1-1 ps, are usual; common practice, from memory).
+_FEW_STEPS = 10
 
 _SOURCES = {
     "lucy": "Lucy, Astron. J. 82, 1013 (1977)",
@@ -142,6 +203,102 @@ def _kt(temperature):
     return KB_KJ_MOL_K * _number("temperature", temperature)
 
 
+def check_run_conditions(temperature, md_step_fs):
+    """Refuse an impossible temperature or MD step; return warnings about unusual ones.
+
+    The bounds and their reasons are :data:`TEMPERATURE_LIMITS_K` and
+    :data:`MD_STEP_LIMITS_FS`.
+
+    Parameters
+    ----------
+    temperature : float
+        Temperature of the biased run, in K.
+    md_step_fs : float
+        MD step of the biased run, in fs.
+
+    Returns
+    -------
+    list of str
+        Warnings (empty when both values are usual).
+
+    Raises
+    ------
+    InputError
+        A value that is not a positive number, or outside the accepted range;
+        the message says what to give instead.
+
+    Examples
+    --------
+    >>> check_run_conditions(300.0, 2.0)
+    []
+    >>> check_run_conditions(300.0, 20.0)[0].startswith("md_step_fs=20 fs is longer than 5 fs")
+    True
+    """
+    t = _number("temperature", temperature)
+    dt = _number("md_step_fs", md_step_fs)
+    t_lo, t_hi, t_warn_lo, t_warn_hi = TEMPERATURE_LIMITS_K
+    if t < t_lo:
+        raise InputError(
+            f"temperature={temperature!r} K is below {t_lo:g} K: no barrier is crossed "
+            "thermally there, so there is nothing to hint; give the temperature of the biased "
+            "run in kelvin (e.g. 300)")
+    if t > t_hi:
+        raise InputError(
+            f"temperature={temperature!r} K is above {t_hi:g} K, hotter than any molecular "
+            "simulation the hints are made for; give the temperature of the biased run in "
+            "kelvin (e.g. 300), not in other units")
+    dt_lo, dt_hi, dt_warn_lo, dt_warn_hi = MD_STEP_LIMITS_FS
+    if dt < dt_lo:
+        raise InputError(
+            f"md_step_fs={md_step_fs!r} fs is shorter than {dt_lo:g} fs, shorter than any MD "
+            f"step; give the MD step in femtoseconds (if {dt:g} is in ps, that is "
+            f"{dt * 1000:g} fs)")
+    if dt > dt_hi:
+        raise InputError(
+            f"md_step_fs={md_step_fs!r} fs ({dt / 1000:g} ps) is longer than {dt_hi:g} fs, "
+            "beyond the stable step of any MD integrator (atomistic 0.5-4 fs, coarse-grained "
+            "up to about 40 fs); give the MD step of the biased run in femtoseconds "
+            "(2 fs = 0.002 ps)")
+    warnings = []
+    if t < t_warn_lo:
+        warnings.append(
+            f"temperature={t:g} K is below {t_warn_lo:g} K, unusual for a molecular "
+            f"simulation; check that it is in kelvin (25 degrees Celsius = 298.15 K)")
+    elif t > t_warn_hi:
+        warnings.append(
+            f"temperature={t:g} K is above {t_warn_hi:g} K, unusual for a molecular "
+            f"simulation; check that it is the temperature of the biased run, in kelvin")
+    if dt < dt_warn_lo:
+        warnings.append(
+            f"md_step_fs={dt:g} fs is shorter than {dt_warn_lo:g} fs, unusually short even "
+            "for ab initio MD; check that it is in femtoseconds, not picoseconds")
+    elif dt > dt_warn_hi:
+        warnings.append(
+            f"md_step_fs={dt:g} fs is longer than {dt_warn_hi:g} fs: usual for coarse-grained "
+            "models only (atomistic MD uses 0.5-4 fs); check that it is the MD step in "
+            "femtoseconds")
+    return warnings
+
+
+def _frozen_states(st):
+    """({name: std} of the states without a resolvable spread, the threshold, the scale)."""
+    means = [v["mean"] for v in st.values()]
+    scale = max([abs(m) for m in means] + [max(means) - min(means)]
+                + [v["std"] for v in st.values()])
+    threshold = max(_SPREAD_FLOOR, SPREAD_RESOLUTION * scale)
+    return {k: v["std"] for k, v in st.items() if v["std"] <= threshold}, threshold, scale
+
+
+def _frozen_text(frozen, threshold, scale):
+    names = ", ".join(f"{k!r} (std {v:.3g} CV units)" for k, v in frozen.items())
+    bound = (f"{threshold:.3g} CV units (the floor)" if threshold == _SPREAD_FLOOR else
+             f"{threshold:.3g} = {SPREAD_RESOLUTION:g} x the CV's scale {scale:.3g} (largest "
+             "|mean|, spread of the means or std)")
+    return (f"{names}, not above {bound}, below what "
+            "single-precision trajectory data resolve; the CV does not move within such a state "
+            "(a frozen or constrained coordinate, or constant input)")
+
+
 def _check_states(states):
     if not isinstance(states, Mapping) or not states:
         raise InputError(
@@ -153,7 +310,7 @@ def _check_states(states):
         if not isinstance(entry, Mapping) or "mean" not in entry or "std" not in entry:
             raise InputError(f"states[{name!r}] must be a dict with 'mean' and 'std'; got {entry!r}")
         mean = _number(f"states[{name!r}]['mean']", entry["mean"], positive=False)
-        std = _number(f"states[{name!r}]['std']", entry["std"])
+        std = _number(f"states[{name!r}]['std']", entry["std"], allow_zero=True)
         n = entry.get("n_frames")
         out[str(name)] = {"mean": mean, "std": std, "n_frames": None if n is None else int(n)}
     return out
@@ -558,7 +715,20 @@ def _finite_or_none(x):
     return float(x) if x is not None and math.isfinite(x) else None
 
 
-def _barriers(barrier, states):
+def _barrier_value(name, value, temperature):
+    """A barrier estimate in kJ/mol; refused below kT (see :func:`suggest_hints`)."""
+    x = _number(name, value)
+    kt = _kt(temperature)
+    if x < kt:
+        raise InputError(
+            f"{name}={value!r} kJ/mol is below kT = {kt:.4g} kJ/mol at {temperature:g} K: "
+            "states separated by less than kT are not metastable, so there is nothing for a "
+            "bias to do along this CV; check the estimate and its unit (kJ/mol; 1 kcal/mol = "
+            "4.184 kJ/mol), or leave it out to get a table over estimates")
+    return x
+
+
+def _barriers(barrier, states, temperature):
     """None, one float for all states, or {state: float} covering every state."""
     if barrier is None:
         return None
@@ -570,8 +740,8 @@ def _barriers(barrier, states):
                 f"barrier must give one value per state; missing {missing}, unknown {extra} "
                 f"(states are {list(states)})"
             )
-        return {s: _number(f"barrier[{s!r}]", barrier[s]) for s in states}
-    value = _number("barrier", barrier)
+        return {s: _barrier_value(f"barrier[{s!r}]", barrier[s], temperature) for s in states}
+    value = _barrier_value("barrier", barrier, temperature)
     return {s: value for s in states}
 
 
@@ -579,7 +749,7 @@ def suggest_hints(
     states,
     *,
     temperature,
-    timestep_fs,
+    md_step_fs,
     autocorrelation_time_ps=None,
     barrier=None,
     kernel="gaussian",
@@ -594,6 +764,8 @@ def suggest_hints(
     barrier_levels=_DEFAULT_LEVELS,
     max_interval_ps=10.0,
     budget_ns=None,
+    max_grid_bins=MAX_GRID_BINS,
+    leave_out_frozen=False,
 ):
     """Starting values for a (well-tempered) metadynamics bias along a CV.
 
@@ -604,9 +776,11 @@ def suggest_hints(
         mean and spread per state in CV units, as ``spec["states"]``
         (``n_frames`` optional).
     temperature : float
-        Simulation temperature, in K, > 0.
-    timestep_fs : float
-        MD timestep, in fs, > 0.
+        Simulation temperature, in K: refused outside 1-5000 K, a warning
+        outside 100-2000 K (:data:`TEMPERATURE_LIMITS_K`, with the reasons).
+    md_step_fs : float
+        MD step of the biased run, in fs: refused outside 0.01-100 fs, a
+        warning outside 0.1-5 fs (:data:`MD_STEP_LIMITS_FS`, with the reasons).
     autocorrelation_time_ps : float, optional
         Time for the CV to decorrelate *within a state*, in ps, > 0. When
         None, a deposition interval of 1 ps is suggested (common practice,
@@ -615,9 +789,13 @@ def suggest_hints(
         states never interconverting rather than relaxation in a basin; it is
         capped at `max_interval_ps`.
     barrier : float or dict, optional
-        Barrier estimate ``dG`` to leave the states, in kJ/mol, > 0: one value
+        Barrier estimate ``dG`` to leave the states, in kJ/mol: one value
         for all states or ``{state: value}``. When None, bias factors and fill
-        times are tabulated over `barrier_levels`.
+        times are tabulated over `barrier_levels`. An estimate below kT is
+        refused (states separated by less than kT are not metastable, so a
+        bias has nothing to do; a common slip is a value in kcal/mol or in kT);
+        one above 400 kJ/mol, more than it takes to break a C-C bond (about
+        350 kJ/mol, from memory), gets a warning (a value in J/mol?).
     kernel : {'gaussian', 'lucy'}, default='gaussian'
         Kernel kind. For Lucy's kernel the cutoff has the variance of the
         suggested Gaussian width (:func:`lucy_cutoff_for_sigma`).
@@ -642,12 +820,23 @@ def suggest_hints(
     grid_fraction : float, default=0.2
         Target grid spacing as a fraction of the kernel sigma, in (0, 1].
     barrier_levels : sequence of float, default=(20, 40, 60, 80, 100)
-        Barrier estimates in kJ/mol tabulated when `barrier` is None.
+        Barrier estimates in kJ/mol tabulated when `barrier` is None (each at
+        least kT, as `barrier`; the default table leaves out those below kT).
     max_interval_ps : float or None, default=10.0
         Cap on the deposition interval, in ps (None: no cap).
     budget_ns : float, optional
         Simulation length you can afford, in ns; fill times above it are
         flagged.
+    max_grid_bins : int, default=MAX_GRID_BINS
+        Largest grid the hints propose, in bins; a larger one is refused
+        with what to change (see :data:`MAX_GRID_BINS`).
+    leave_out_frozen : bool, default=False
+        What to do with a state whose spread the data cannot resolve (see
+        :data:`SPREAD_RESOLUTION`): refuse (False), or leave it out of the
+        kernel width and the fill times, with a warning, keeping its mean
+        inside the walls (True; used for specs, where such states are
+        recorded as they were measured). When every state is frozen the hints
+        are refused either way.
 
     Returns
     -------
@@ -655,7 +844,9 @@ def suggest_hints(
         JSON-ready (floats, ints, str, None; no NaN):
 
         * ``format``, ``version``, ``caution`` (str), ``units``;
-        * ``inputs``: ``temperature_k``, ``timestep_fs``, ``kt_kj_mol``,
+        * ``warnings``: list of str, values that are possible but unusual
+          enough to suggest a mistake (empty when none);
+        * ``inputs``: ``temperature_k``, ``md_step_fs``, ``kt_kj_mol``,
           ``autocorrelation_time_ps``, ``barrier_kj_mol`` (None, float, or
           ``{state: float}``), ``states``;
         * ``kernel``: ``kind``, ``sigma`` (Gaussian width or Lucy's
@@ -685,23 +876,29 @@ def suggest_hints(
     Raises
     ------
     InputError
-        A bad argument (a :class:`ValueError`); the message names it.
+        A bad argument (a :class:`ValueError`); the message names it. Also the
+        refusals above: an impossible temperature or MD step, a barrier below
+        kT, a state without resolvable spread, a grid of more than
+        `max_grid_bins` bins.
 
     Examples
     --------
     >>> states = {"A": {"mean": -1.0, "std": 0.2, "n_frames": 500},
     ...           "B": {"mean": 1.0, "std": 0.3, "n_frames": 500}}
-    >>> h = suggest_hints(states, temperature=300.0, timestep_fs=2.0,
+    >>> h = suggest_hints(states, temperature=300.0, md_step_fs=2.0,
     ...                   autocorrelation_time_ps=0.5, barrier=40.0)
     >>> h["kernel"]["sigma"], h["deposition"]["interval_steps"]
     (0.1, 250)
     >>> round(h["well_tempered"]["bias_factor"], 2)
     5.35
+    >>> h["warnings"]
+    []
     """
     st = _check_states(states)
+    warnings = check_run_conditions(temperature, md_step_fs)
     kt = _kt(temperature)
     temperature = float(temperature)
-    dt_fs = _number("timestep_fs", timestep_fs)
+    dt_fs = float(md_step_fs)
     kernel = _kernel_kind(kernel)
     f_width = _number("width_fraction", width_fraction)
     if f_width > 1.0:
@@ -720,10 +917,44 @@ def suggest_hints(
         gamma_user = _number("bias_factor", bias_factor)
         if gamma_user <= 1.0:
             raise InputError(f"bias_factor={bias_factor!r} must be > 1")
-    barriers = _barriers(barrier, st)
-    levels = [_number(f"barrier_levels[{i}]", v) for i, v in enumerate(barrier_levels)]
+    barriers = _barriers(barrier, st, temperature)
+    if barrier_levels is _DEFAULT_LEVELS:  # the default table: leave out levels below kT
+        levels = [v for v in _DEFAULT_LEVELS if v >= kt]  # 100 kJ/mol > kT at 5000 K
+    else:
+        levels = [_barrier_value(f"barrier_levels[{i}]", v, temperature)
+                  for i, v in enumerate(barrier_levels)]
     if barriers is None and not levels:
         raise InputError("barrier_levels must not be empty when barrier is None")
+    n_grid_max = max_grid_bins
+    if isinstance(n_grid_max, (bool, np.bool_)) or not isinstance(n_grid_max, (int, np.integer)) \
+            or n_grid_max < 1:
+        raise InputError(f"max_grid_bins={max_grid_bins!r} must be a positive integer")
+    if not isinstance(leave_out_frozen, (bool, np.bool_)):
+        raise InputError(f"leave_out_frozen must be True or False; got {leave_out_frozen!r}")
+    for name, value in (barriers or {}).items():
+        if value > _BARRIER_WARN_KJ_MOL:
+            warnings.append(
+                f"the barrier estimate for {name!r}, {value:g} kJ/mol, is above "
+                f"{_BARRIER_WARN_KJ_MOL:g} kJ/mol, more than it takes to break a C-C bond; "
+                "check that it is in kJ/mol (not J/mol)")
+            break
+    frozen, threshold, scale = _frozen_states(st)
+    every = len(frozen) == len(st)
+    if frozen and (every or not leave_out_frozen):
+        todo = ("choose a CV that fluctuates within the states, or check that the input frames "
+                "are not all one structure" if every else
+                "leave that state out of the states given, or choose a CV that fluctuates "
+                "within every state")
+        raise InputError(
+            f"{'no state has a' if every else 'a state has no'} resolvable spread of the CV; "
+            f"hints need the within-state spread: {_frozen_text(frozen, threshold, scale)}. A "
+            f"kernel width or grid built from it would be meaningless; {todo}")
+    fit = {k: v for k, v in st.items() if k not in frozen}  # kernel width and fill times
+    if frozen:
+        warnings.append(
+            f"left out of the kernel width and the fill times, kept inside the walls: "
+            f"{_frozen_text(frozen, threshold, scale)}. Biasing along a CV that does not move "
+            "in a state may not help leave it; check the CV")
     if not isinstance(periodic, (bool, np.bool_)):
         raise InputError(f"periodic must be True or False; got {periodic!r}")
     lo_range = hi_range = None
@@ -744,8 +975,8 @@ def suggest_hints(
     tag_cpm = "[common practice, from memory]"
 
     # kernel width -----------------------------------------------------------
-    ref_state = min(st, key=lambda s: (st[s]["std"], s))
-    ref_std = st[ref_state]["std"]
+    ref_state = min(fit, key=lambda s: (fit[s]["std"], s))
+    ref_std = fit[ref_state]["std"]
     sigma = f_width * ref_std
     cutoff = lucy_cutoff_for_sigma(sigma) if kernel == "lucy" else None
     width = sigma if kernel == "gaussian" else cutoff
@@ -796,7 +1027,7 @@ def suggest_hints(
         why.append(
             f"Deposition interval: deposit no faster than the CV decorrelates, so the walker "
             f"has relaxed under one kernel before the next {tag_cp}; interval = max(1, "
-            f"round(tau_ps x 1000 / timestep_fs)) with tau = {tau_used:.4g} ps and timestep "
+            f"round(tau_ps x 1000 / md_step_fs)) with tau = {tau_used:.4g} ps and MD step "
             f"{dt_fs:g} fs (Laio et al., J. Phys. Chem. B 109, 6714, 2005, from memory: the "
             f"error depends on the deposition rate relative to the CV's diffusion)."
         )
@@ -809,8 +1040,14 @@ def suggest_hints(
             )
     steps = max(1, int(round(tau_used * 1000.0 / dt_fs)))
     interval_ps = steps * dt_fs / 1000.0
-    if steps == 1:
-        why.append("Note: the interval is one MD step; check the timestep and the autocorrelation time.")
+    if steps < _FEW_STEPS:
+        warnings.append(
+            f"the deposition interval is {steps} MD step{'s' if steps > 1 else ''} "
+            f"({interval_ps:.3g} ps): a kernel {'every step' if steps == 1 else 'this often'} "
+            f"is far more often than usual (every 100-1000 steps), because the "
+            f"autocorrelation time {tau_used:.3g} ps is only {tau_used * 1000.0 / dt_fs:.3g} MD "
+            f"steps of {dt_fs:g} fs; check autocorrelation_time_ps and the MD step, or choose "
+            "the interval yourself")
 
     # well-tempered bias factor ----------------------------------------------
     def wt_row(dg, gamma):
@@ -886,7 +1123,17 @@ def suggest_hints(
             f"a wall = {margin:.4g} CV units on each side {tag_cp}, so kernels deposited near "
             f"a wall stay on the grid."
         )
-    n_bins = max(1, int(math.ceil((g_hi - g_lo) / (f_grid * sigma) - 1e-9)))
+    n_exact = (g_hi - g_lo) / (f_grid * sigma)
+    if not n_exact - 1e-9 <= n_grid_max:
+        raise InputError(
+            f"the grid would need about {n_exact:.3g} bins ([{g_lo:.4g}, {g_hi:.4g}] at a "
+            f"spacing of {f_grid:g} x sigma = {f_grid * sigma:.3g} CV units), more than "
+            f"max_grid_bins={n_grid_max}: the narrowest state ({ref_state!r}, std {ref_std:.3g}) "
+            f"is {(g_hi - g_lo) / ref_std:.3g} times narrower than the range to explore, so "
+            "kernels of its width would take very long to fill it. Give a narrower cv_range, "
+            "a larger width_fraction or grid_fraction, or a larger max_grid_bins if such a grid "
+            "is what you want; or choose a CV whose states have comparable spreads")
+    n_bins = max(1, int(math.ceil(n_exact - 1e-9)))
     spacing = (g_hi - g_lo) / n_bins
     why.append(
         f"Grid spacing: at most {f_grid:g} x sigma = {f_grid * sigma:.4g} CV units {tag_cpm}: "
@@ -911,7 +1158,7 @@ def suggest_hints(
     )
     rows_of = {}
     over = []
-    for name, v in st.items():
+    for name, v in fit.items():
         todo = [(barriers[name], gamma)] if barriers is not None else [
             (dg, gamma_user if gamma_user is not None else row["bias_factor"]) for dg, row in zip(levels, table)]
         rows = []
@@ -953,10 +1200,11 @@ def suggest_hints(
         "format": HINTS_FORMAT,
         "version": HINTS_VERSION,
         "caution": CAUTION,
-        "units": {"cv": "CV units", "energy": "kJ/mol", "time": "ps", "timestep": "fs",
+        "warnings": warnings,
+        "units": {"cv": "CV units", "energy": "kJ/mol", "time": "ps", "md_step": "fs",
                   "temperature": "K"},
         "inputs": {
-            "temperature_k": temperature, "timestep_fs": dt_fs, "kt_kj_mol": kt,
+            "temperature_k": temperature, "md_step_fs": dt_fs, "kt_kj_mol": kt,
             "autocorrelation_time_ps": tau,
             "barrier_kj_mol": (None if barriers is None else
                                (barriers if isinstance(barrier, Mapping) else float(barrier))),
@@ -991,11 +1239,12 @@ def _time(ps):
     return f"{ps:.3g} ps" if ps < 1000.0 else f"{ps / 1000.0:.3g} ns"
 
 
-def spec_hints(spec, *, temperature, timestep_fs, barrier=None, kernel="gaussian", **options):
+def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian", **options):
     """:func:`suggest_hints` from what a spec records, for a given simulation.
 
-    The states' mean and spread come from ``spec.states`` (states without a
-    positive spread are left out), the deposition interval from
+    The states' mean and spread come from ``spec.states`` (a state without a
+    resolvable spread is left out of the kernel width and the fill times,
+    with a warning: ``leave_out_frozen=True``), the deposition interval from
     ``spec.scores["integrated_time_ps"]`` when recorded, and for a periodic
     CV the grid spans one period, centred on 0.
 
@@ -1005,8 +1254,8 @@ def spec_hints(spec, *, temperature, timestep_fs, barrier=None, kernel="gaussian
         The CV (e.g. from :func:`cvdesign.load_spec`).
     temperature : float
         Simulation temperature, K.
-    timestep_fs : float
-        MD timestep, fs.
+    md_step_fs : float
+        MD step of the biased run, fs.
     barrier : float or dict, optional
         Barrier estimate, kJ/mol (see :func:`suggest_hints`).
     kernel : {'gaussian', 'lucy'}, default='gaussian'
@@ -1022,7 +1271,8 @@ def spec_hints(spec, *, temperature, timestep_fs, barrier=None, kernel="gaussian
     Raises
     ------
     InputError
-        The spec records no state with a positive spread.
+        The spec records no state with a resolvable spread, and the other
+        refusals of :func:`suggest_hints`.
 
     Examples
     --------
@@ -1037,17 +1287,17 @@ def spec_hints(spec, *, temperature, timestep_fs, barrier=None, kernel="gaussian
     ...                     "scale": 1.0, "weight": 1.0}],
     ...             states={"a": {"mean": -1.0, "std": 0.1, "n_frames": 100},
     ...                     "b": {"mean": 1.0, "std": 0.2, "n_frames": 100}})
-    >>> h = spec_hints(spec, temperature=300.0, timestep_fs=2.0, barrier=30.0)
+    >>> h = spec_hints(spec, temperature=300.0, md_step_fs=2.0, barrier=30.0)
     >>> round(h["kernel"]["sigma"], 3)  # half the smallest spread
     0.05
     """
-    states = {k: v for k, v in spec.states.items() if v.get("std", 0) > 0}
-    if not states:
-        raise InputError(f"spec {spec.name!r} records no state with a positive spread of the "
-                         "CV; hints need the within-state spread")
+    if not spec.states:
+        raise InputError(f"spec {spec.name!r} records no states; hints need the CV's mean "
+                         "and within-state spread in each state")
     periodic = bool(spec.periodic)
     period = spec.period if periodic else None
-    return suggest_hints(states, temperature=temperature, timestep_fs=timestep_fs,
+    options.setdefault("leave_out_frozen", True)
+    return suggest_hints(spec.states, temperature=temperature, md_step_fs=md_step_fs,
                          autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
                          barrier=barrier, kernel=kernel, periodic=periodic,
                          cv_range=None if not periodic else (-period / 2, period / 2),
@@ -1072,7 +1322,7 @@ def format_hints(hints):
     Examples
     --------
     >>> h = suggest_hints({"A": {"mean": 0.0, "std": 0.1}}, temperature=300.0,
-    ...                   timestep_fs=2.0, barrier=30.0)
+    ...                   md_step_fs=2.0, barrier=30.0)
     >>> text = format_hints(h)
     >>> "starting points to validate" in text, "Fill time" in text
     (True, True)
@@ -1082,8 +1332,10 @@ def format_hints(hints):
     k, dep, wt = hints["kernel"], hints["deposition"], hints["well_tempered"]
     inp = hints["inputs"]
     out = ["Bias hints (cvdesign)", "CAUTION: " + hints["caution"], ""]
+    warnings = hints.get("warnings") or []
+    out += [f"WARNING: {w}" for w in warnings] + ([""] if warnings else [])
     out.append(f"temperature {inp['temperature_k']:g} K (kT = {inp['kt_kj_mol']:.4g} kJ/mol), "
-               f"timestep {inp['timestep_fs']:g} fs")
+               f"MD step {inp['md_step_fs']:g} fs")
     if k["kind"] == "gaussian":
         out.append(f"kernel           Gaussian, sigma = {_g(k['sigma'])} CV units")
     else:

@@ -35,7 +35,7 @@ from .cardboot import CardBlocks, card_intervals, integrated_time_interval, plan
 from .combine import (OBJECTIVES, FoldMoments, autocorrelation_along, cv_direction,
                       fit_direction, greedy_search, heldout_score, rank_combinations,
                       slow_direction, state_arrays)
-from .estimators import implied_timescales, rayleigh_quotient
+from .estimators import rayleigh_quotient, timescales_from_eigenvalues
 from .errors import InputError
 from .moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
                       Moments, merge_all)
@@ -520,7 +520,7 @@ def _lag_frames(source, lag, timesteps):
             raise InputError(
                 f"lag={lag:g} ps cannot be converted to frames of {str(seg.path)!r}: its time "
                 "step is unknown (the format stores no times, or the file has one frame); "
-                "give the time step with --timestep PS")
+                "give the time step with --frame-step-ps PS")
         ratio = lag / dt
         n = int(round(ratio))
         if n < 1 or abs(ratio - n) > 1e-6 * max(1.0, ratio):
@@ -602,7 +602,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
             coordination_r0=COORDINATION_R0_NM,
             max_terms=5, n_suggestions=10, screen_size=200, shortlist_size=40,
             max_correlation=0.95, n_folds=4, n_seeds=5, min_gain=0.01, shrinkage=1e-3,
-            n_bootstrap=200, seed=0, temperature=300.0, md_timestep_fs=2.0, progress=None):
+            n_bootstrap=200, seed=0, temperature=300.0, md_step_fs=2.0, progress=None):
     """Rank compact linear CVs for the states of a source.
 
     Parameters
@@ -673,9 +673,13 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         Seed of the bootstrap; same inputs and seed, same outputs byte for byte.
     temperature : float, default=300.0
         Temperature in K of the biased run, for the bias-parameter hints stored
-        in each spec (recompute them with ``cvdesign hints``).
-    md_timestep_fs : float, default=2.0
-        MD timestep in fs of the biased run, for the hints.
+        in each spec (recompute them with ``cvdesign hints``); 1 to 5000 K.
+    md_step_fs : float, default=2.0
+        MD step in fs of the biased run, for the hints; 0.01 to 100 fs (see
+        :func:`cvdesign.hints.check_run_conditions`). When the hints of a
+        suggestion are refused (e.g. a CV that does not move within the
+        states), its ranking entry and spec record ``hints_refused`` with the
+        reason instead.
     progress : callable, default=None
         Called with a message string at each stage.
 
@@ -710,6 +714,8 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         raise InputError(f"objective={objective!r} must be one of {', '.join(OBJECTIVES)}")
     if method not in ("lda", "hlda"):
         raise InputError(f"method={method!r} must be 'lda' or 'hlda'")
+    from .hints import check_run_conditions
+    check_run_conditions(temperature, md_step_fs)  # refuse impossible hint inputs up front
     if lag is not None and not (isinstance(lag, (int, float)) and math.isfinite(lag) and lag > 0):
         raise InputError(f"lag={lag!r} must be a positive time in ps")
     if objective in ("slow", "both") and lag is None:
@@ -794,7 +800,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
                      + "; lagged pairs never span a file, a state change or a gap in frames")
     elif lag_frames is not None or lag is None:
         notes.append("slowness not scored: the files' time steps are unknown or differ; "
-                     "give --lag PS (and --timestep PS for files that store no times)")
+                     "give --lag PS (and --frame-step-ps PS for files that store no times)")
 
     means = np.array([d.mean for d in diag])
     variances = np.array([d.variance for d in diag])
@@ -1050,7 +1056,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
               "max_correlation": max_correlation, "n_folds": folds.n_folds,
               "n_seeds": n_seeds, "min_gain": min_gain,
               "fold_mode": folds.mode, "shrinkage": shrinkage, "n_bootstrap": n_bootstrap,
-              "temperature_k": temperature, "md_timestep_fs": md_timestep_fs}
+              "temperature_k": temperature, "md_step_fs": md_step_fs}
     checksums = [{"file": Path(p).name, "sha256": file_sha256(p),
                   "states": next(i["states"] for i in inputs if i["path"] == str(p))}
                  for p in source.files()]
@@ -1068,7 +1074,10 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         slowest = max(taus, key=lambda t: t[0]) if taus else None
         entry["integrated_time_ps"] = None if slowest is None else slowest[0]
         entry["integrated_time_ci_ps"] = None if slowest is None else slowest[2]
-        entry["hints"] = _hints_for(entry, temperature, md_timestep_fs)
+        entry["hints"], refused = _hints_for(entry, temperature, md_step_fs)
+        if refused:
+            entry["hints_refused"] = refused
+            notes.append(f"bias hints refused for {entry['spec']}: {refused}")
         ranking.append(entry)
         specs.append(_spec_dict(source, pool, entry["spec"], entry, params, checksums,
                                 seed if n_bootstrap else None))
@@ -1115,18 +1124,16 @@ def kinetic_map_scale(w, lagged, idx):
     return w * (lam if lam > 0 else 1.0) / math.sqrt(var)
 
 
-def _hints_for(entry, temperature, md_timestep_fs):
-    """Bias-parameter hints for a ranked CV (None when they cannot be computed)."""
+def _hints_for(entry, temperature, md_step_fs):
+    """(bias-parameter hints, None) for a ranked CV, or (None, why they were refused)."""
     from .hints import suggest_hints
 
-    states = {k: v for k, v in entry["states"].items() if v["std"] > 0}
-    if len(states) < 1:
-        return None
     try:
-        return suggest_hints(states, temperature=temperature, timestep_fs=md_timestep_fs,
-                             autocorrelation_time_ps=entry.get("integrated_time_ps"))
-    except ValueError:
-        return None
+        return suggest_hints(entry["states"], temperature=temperature, md_step_fs=md_step_fs,
+                             autocorrelation_time_ps=entry.get("integrated_time_ps"),
+                             leave_out_frozen=True), None
+    except ValueError as exc:
+        return None, str(exc)
 
 
 def _longest_run_text(seg_counts, timesteps):
@@ -1339,7 +1346,9 @@ def _spec_dict(source, pool, name, entry, params, checksums, seed):
                      "residues": residue_hashes(top)},
         "descriptors": descriptors, "terms": terms, "offset": 0.0, "periodic": False,
         "states": entry["states"], "scores": scores,
-        **({"hints": entry["hints"]} if entry.get("hints") else {}),
+        **({"hints": entry["hints"]} if entry.get("hints") else
+           {"hints": {"hints_refused": entry["hints_refused"]}} if entry.get("hints_refused")
+           else {}),
         "provenance": {"cvdesign_version": __version__,
                        "method": f"{entry['method']} ({entry['objective']})",
                        "inputs": [{"file": c["file"], "sha256": c["sha256"],
@@ -1644,7 +1653,7 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
     rho_all = timescale = None
     if fm.lagged is not None:
         rho_all = autocorrelation_along(w, fm.lagged_pooled(), idx)
-        timescale = float(implied_timescales([rho_all], lag_ps)[0])
+        timescale = float(timescales_from_eigenvalues([rho_all], lag_ps)[0])
     terms, local = [], 0
     ci = boot["combos"][rank - 1] if boot is not None else None
     sel = ci.get("selection") if ci is not None else None
@@ -1695,5 +1704,5 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
         if aci and lag_ps and None not in aci:
             # the implied timescale is monotonic in the autocorrelation
             entry["timescale_ci_ps"] = [
-                _finite(v) for v in implied_timescales(np.clip(aci, -1.0, 1.0), lag_ps)]
+                _finite(v) for v in timescales_from_eigenvalues(np.clip(aci, -1.0, 1.0), lag_ps)]
     return entry

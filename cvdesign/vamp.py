@@ -24,7 +24,7 @@ another block cost a few small matrix operations each.
 
 import numpy as np
 
-from .estimators import _check_epsilon, _whitener
+from .estimators import _check_rcond, _whitener
 from .moments import LaggedMoments
 
 __all__ = ["vamp2_score"]
@@ -37,7 +37,7 @@ def _check_moments(m, name):
         raise ValueError(f"{name} holds no lagged pairs (count=0)")
 
 
-def vamp2_score(train, test=None, *, k=None, epsilon=1e-6):
+def vamp2_score(train, test=None, *, k=None, rcond=1e-6):
     """VAMP-2 score of the features, on the training data or cross-validated.
 
     Parameters
@@ -51,11 +51,12 @@ def vamp2_score(train, test=None, *, k=None, epsilon=1e-6):
         score the fitted singular functions on. None: score on `train`.
     k : int, default=None
         Number of singular functions (besides the constant one) kept; None
-        keeps all that survive the `epsilon` cut, at most ``n_features``.
-    epsilon : float, default=1e-6
-        Relative eigenvalue cut, in [0, 1): directions of ``C00`` and ``Ctt``
-        (of `train`; and of the projected test covariances) with eigenvalue at
-        most `epsilon` times the largest are dropped before inverting.
+        keeps all that survive the `rcond` cut, at most ``n_features``.
+    rcond : float, default=1e-6
+        Relative cutoff of small eigenvalues, in [0, 1): directions of ``C00``
+        and ``Ctt`` (of `train`; and of the projected test covariances) with
+        eigenvalue at most `rcond` times the largest are dropped before
+        inverting.
 
     Returns
     -------
@@ -102,7 +103,7 @@ def vamp2_score(train, test=None, *, k=None, epsilon=1e-6):
     (1.8, 1.8)
     """
     _check_moments(train, "train")
-    epsilon = _check_epsilon(epsilon)
+    rcond = _check_rcond(rcond)
     if test is not None:
         _check_moments(test, "test")
         if test.n_features != train.n_features:
@@ -110,8 +111,8 @@ def vamp2_score(train, test=None, *, k=None, epsilon=1e-6):
         if train.lag is not None and test.lag is not None and train.lag != test.lag:
             raise ValueError(f"test has lag={test.lag}; train has lag={train.lag}")
     _, _, c00, c0t, ctt = train.covariances(reversible=False)
-    w0, _ = _whitener(c00, epsilon, "the training C00")
-    wt, _ = _whitener(ctt, epsilon, "the training Ctt")
+    w0, _ = _whitener(c00, rcond, "the training C00")
+    wt, _ = _whitener(ctt, rcond, "the training Ctt")
     p, s, qt = np.linalg.svd(w0.T @ c0t @ wt)
     n_max = s.shape[0]
     if k is None:
@@ -126,8 +127,8 @@ def vamp2_score(train, test=None, *, k=None, epsilon=1e-6):
     u = w0 @ p[:, :k]
     v = wt @ qt[:k].T
     _, _, d00, d0t, dtt = test.covariances(reversible=False)
-    a, _ = _whitener(u.T @ d00 @ u, epsilon, "the test C00 of the singular functions")
-    b, _ = _whitener(v.T @ dtt @ v, epsilon, "the test Ctt of the singular functions")
+    a, _ = _whitener(u.T @ d00 @ u, rcond, "the test C00 of the singular functions")
+    b, _ = _whitener(v.T @ dtt @ v, rcond, "the test Ctt of the singular functions")
     # W_a^T (U^T C0t' V) W_b has the Frobenius norm of the symmetric form
     # (U^T C00' U)^-1/2 (U^T C0t' V) (V^T Ctt' V)^-1/2 (they differ by rotations).
     return float(1.0 + np.sum((a.T @ (u.T @ d0t @ v) @ b) ** 2))

@@ -10,6 +10,6 @@ from cvdesign.estimators import HLDA, LDA, TICA
 
 
 @parametrize_with_checks([LDA(), HLDA(), HLDA(shrinkage=0.1), TICA(),
-                          TICA(lag=2, scaling="kinetic_map")])
+                          TICA(lag=2, kinetic_weighting=True)])
 def test_sklearn_estimator_checks(estimator, check):
     check(estimator)

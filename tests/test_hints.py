@@ -11,7 +11,9 @@ from cvdesign.errors import InputError
 from cvdesign.hints import (
     CAUTION,
     KB_KJ_MOL_K,
+    MAX_GRID_BINS,
     bias_factor_for_barrier,
+    check_run_conditions,
     fill_time_metadynamics,
     fill_time_well_tempered,
     fill_volume,
@@ -250,7 +252,7 @@ def _walk(obj):
 
 
 def test_hints_on_sample_states_are_finite_and_sensible():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=1.0, barrier=50.0)
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=1.0, barrier=50.0)
     for v in _walk(h):
         assert v is None or isinstance(v, (bool, int, float, str))
         if isinstance(v, float):
@@ -281,12 +283,12 @@ def test_hints_on_sample_states_are_finite_and_sensible():
 
 
 def test_hints_round_trip_through_json_without_nan():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, kernel="lucy", budget_ns=0.5)
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, kernel="lucy", budget_ns=0.5)
     assert json.loads(json.dumps(h, allow_nan=False)) == h
 
 
 def test_hints_without_barrier_tabulate_bias_factor_and_fill_times():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0)
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0)
     wt = h["well_tempered"]
     assert wt["bias_factor"] is None and wt["barrier_kj_mol"] is None
     assert [r["barrier_kj_mol"] for r in wt["table"]] == [20.0, 40.0, 60.0, 80.0, 100.0]
@@ -301,7 +303,7 @@ def test_hints_without_barrier_tabulate_bias_factor_and_fill_times():
 
 
 def test_lucy_hints_use_variance_matched_cutoff():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, kernel="lucy", barrier=40.0)
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, kernel="lucy", barrier=40.0)
     k = h["kernel"]
     assert k["cutoff"] == pytest.approx(lucy_cutoff_for_sigma(k["sigma"]))
     assert k["area_per_height"] == pytest.approx(0.8 * k["cutoff"])
@@ -309,7 +311,7 @@ def test_lucy_hints_use_variance_matched_cutoff():
 
 
 def test_per_state_barriers_and_given_bias_factor():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, barrier={"closed": 60.0, "open": 20.0},
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, barrier={"closed": 60.0, "open": 20.0},
                       bias_factor=10.0)
     assert h["well_tempered"]["bias_factor"] == 10.0
     assert h["well_tempered"]["barrier_kj_mol"] == 60.0
@@ -318,22 +320,32 @@ def test_per_state_barriers_and_given_bias_factor():
 
 
 def test_long_autocorrelation_time_is_capped_with_a_note():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=250.0)
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=250.0)
     assert h["deposition"]["capped"] is True
     assert h["deposition"]["interval_ps"] == 10.0
     assert any("capped" in line for line in h["reasoning"])
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=250.0,
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=250.0,
                       max_interval_ps=None)
     assert h["deposition"]["interval_steps"] == 125000
 
 
-def test_short_autocorrelation_time_gives_at_least_one_step():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=0.0001)
+def test_short_autocorrelation_time_gives_one_step_with_a_warning():
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=0.0001)
     assert h["deposition"]["interval_steps"] == 1
+    assert len(h["warnings"]) == 1
+    assert h["warnings"][0].startswith("the deposition interval is 1 MD step (0.002 ps): a "
+                                       "kernel every step is far more often than usual")
+    assert "check autocorrelation_time_ps and the MD step" in h["warnings"][0]
+
+
+def test_usual_inputs_give_no_warnings():
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=1.0,
+                      barrier=50.0)
+    assert h["warnings"] == []
 
 
 def test_budget_flags_slow_states():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=5.0,
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=5.0,
                       barrier=100.0, budget_ns=1.0)
     flags = [r["over_budget"] for rows in h["fill_time"]["states"].values() for r in rows]
     assert all(flags)
@@ -342,7 +354,7 @@ def test_budget_flags_slow_states():
 
 def test_periodic_cv_has_no_walls_and_grid_spans_the_period():
     states = {"a": {"mean": -2.0, "std": 0.3}, "b": {"mean": 1.0, "std": 0.3}}
-    h = suggest_hints(states, temperature=T, timestep_fs=1.0, periodic=True, cv_range=(-math.pi, math.pi))
+    h = suggest_hints(states, temperature=T, md_step_fs=1.0, periodic=True, cv_range=(-math.pi, math.pi))
     assert h["walls"] is None
     g = h["grid"]
     assert g["periodic"] and g["lower"] == -math.pi and g["upper"] == math.pi
@@ -351,14 +363,14 @@ def test_periodic_cv_has_no_walls_and_grid_spans_the_period():
 
 
 def test_cv_range_clips_walls_and_grid():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, cv_range=(-1.5, 2.0))
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, cv_range=(-1.5, 2.0))
     assert h["walls"]["lower"] == -1.5 and h["grid"]["lower"] == -1.5
     assert h["grid"]["upper"] == 2.0
 
 
 def test_hints_are_deterministic():
-    a = suggest_hints(STATES, temperature=T, timestep_fs=2.0, barrier=45.0)
-    b = suggest_hints(STATES, temperature=T, timestep_fs=2.0, barrier=45.0)
+    a = suggest_hints(STATES, temperature=T, md_step_fs=2.0, barrier=45.0)
+    b = suggest_hints(STATES, temperature=T, md_step_fs=2.0, barrier=45.0)
     assert json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True)
 
 
@@ -367,7 +379,7 @@ def test_hints_are_deterministic():
     [
         ({"temperature": -300.0}, r"temperature=-300\.0 must be > 0"),
         ({"temperature": 0.0}, r"temperature=0\.0 must be > 0"),
-        ({"timestep_fs": 0.0}, r"timestep_fs=0\.0 must be > 0"),
+        ({"md_step_fs": 0.0}, r"md_step_fs=0\.0 must be > 0"),
         ({"kernel": "box"}, r"kernel='box' is not known"),
         ({"autocorrelation_time_ps": -1.0}, r"autocorrelation_time_ps=-1\.0"),
         ({"barrier": float("nan")}, r"barrier=nan must be finite"),
@@ -379,22 +391,143 @@ def test_hints_are_deterministic():
     ],
 )
 def test_bad_arguments_raise_naming_the_argument(kwargs, match):
-    args = {"temperature": T, "timestep_fs": 2.0, **kwargs}
+    args = {"temperature": T, "md_step_fs": 2.0, **kwargs}
     with pytest.raises(ValueError, match=match):
         suggest_hints(STATES, **args)
 
 
-def test_zero_std_raises_naming_the_state():
-    states = {"a": {"mean": 0.0, "std": 0.0}, "b": {"mean": 1.0, "std": 0.1}}
-    with pytest.raises(InputError, match=r"states\['a'\]\['std'\]=0\.0 must be > 0"):
-        suggest_hints(states, temperature=T, timestep_fs=2.0)
+def test_negative_std_raises_naming_the_state():
+    states = {"a": {"mean": 0.0, "std": -0.1}, "b": {"mean": 1.0, "std": 0.1}}
+    with pytest.raises(InputError, match=r"states\['a'\]\['std'\]=-0\.1 must be >= 0"):
+        suggest_hints(states, temperature=T, md_step_fs=2.0)
+
+
+# --------------------------------------------------------------------------
+# refusals and warnings
+
+
+@pytest.mark.parametrize(
+    "kwargs,match",
+    [
+        ({"temperature": 0.5},
+         r"temperature=0\.5 K is below 1 K: no barrier is crossed thermally there.*give the "
+         r"temperature of the biased run in kelvin"),
+        ({"temperature": 10000.0},
+         r"temperature=10000\.0 K is above 5000 K, hotter than any molecular simulation.*in "
+         r"kelvin \(e\.g\. 300\), not in other units"),
+        ({"md_step_fs": 1.0e6},  # an MD step of 1000 ps
+         r"md_step_fs=1000000\.0 fs \(1000 ps\) is longer than 100 fs, beyond the stable step "
+         r"of any MD integrator.*give the MD step of the biased run in femtoseconds"),
+        ({"md_step_fs": 0.002},  # 2 fs given in ps
+         r"md_step_fs=0\.002 fs is shorter than 0\.01 fs.*if 0\.002 is in ps, that is 2 fs"),
+        ({"barrier": 2.0},
+         r"barrier=2\.0 kJ/mol is below kT = 2\.494 kJ/mol at 300 K: states separated by less "
+         r"than kT are not metastable.*1 kcal/mol = 4\.184 kJ/mol"),
+        ({"barrier": {"closed": 40.0, "open": 0.5}},
+         r"barrier\['open'\]=0\.5 kJ/mol is below kT"),
+        ({"barrier_levels": (1.0, 20.0)}, r"barrier_levels\[0\]=1\.0 kJ/mol is below kT"),
+        ({"max_grid_bins": 0}, r"max_grid_bins=0 must be a positive integer"),
+    ],
+)
+def test_impossible_inputs_are_refused_with_the_reason(kwargs, match):
+    args = {"temperature": T, "md_step_fs": 2.0, **kwargs}
+    with pytest.raises(InputError, match=match):
+        suggest_hints(STATES, **args)
+
+
+def test_a_barrier_just_above_kt_is_accepted():
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, barrier=1.01 * KT)
+    assert h["well_tempered"]["bias_factor"] == 2.0  # the floor, with its note
+    assert any("may need little or no bias" in line for line in h["reasoning"])
+
+
+@pytest.mark.parametrize(
+    "kwargs,start",
+    [
+        ({"temperature": 25.0}, "temperature=25 K is below 100 K, unusual for a molecular "
+                                "simulation; check that it is in kelvin (25 degrees Celsius = "
+                                "298.15 K)"),
+        ({"temperature": 3000.0}, "temperature=3000 K is above 2000 K, unusual"),
+        ({"md_step_fs": 20.0}, "md_step_fs=20 fs is longer than 5 fs: usual for coarse-grained "
+                               "models only"),
+        ({"md_step_fs": 0.05}, "md_step_fs=0.05 fs is shorter than 0.1 fs, unusually short"),
+        ({"barrier": 5000.0}, "the barrier estimate for 'closed', 5000 kJ/mol, is above 400 "
+                              "kJ/mol, more than it takes to break a C-C bond; check that it is "
+                              "in kJ/mol (not J/mol)"),
+    ],
+)
+def test_unusual_inputs_give_a_warning_and_hints(kwargs, start):
+    args = {"temperature": T, "md_step_fs": 2.0, "autocorrelation_time_ps": 1.0, **kwargs}
+    h = suggest_hints(STATES, **args)
+    assert [w for w in h["warnings"] if w.startswith(start)], h["warnings"]
+    assert h["kernel"]["sigma"] == pytest.approx(0.075)
+    text = format_hints(h)
+    assert f"WARNING: {h['warnings'][0]}" in text
+    assert text.index("WARNING") < text.index("kernel ")  # shown before the values
+
+
+def test_check_run_conditions_matches_suggest_hints():
+    assert check_run_conditions(300.0, 2.0) == []
+    h = suggest_hints(STATES, temperature=50.0, md_step_fs=8.0)
+    assert check_run_conditions(50.0, 8.0) == h["warnings"][:2]
+    with pytest.raises(InputError, match=r"md_step_fs=200\.0 fs \(0\.2 ps\) is longer"):
+        check_run_conditions(300.0, 200.0)
+
+
+@pytest.mark.parametrize("std", [0.0, 1e-16])
+def test_states_without_spread_are_refused_not_given_a_tiny_kernel(std):
+    # frozen input: every state's std is 0 or ~1e-16 relative to the mean
+    states = {"a": {"mean": 1.3, "std": std}, "b": {"mean": 1.3, "std": std * 0.5}}
+    for leave_out in (False, True):
+        with pytest.raises(InputError, match=r"no state has a resolvable spread of the CV; "
+                                             r"hints need the within-state spread: 'a' \(std "
+                                             r".*not above 1\.3e-06 = 1e-06 x the CV's scale 1\.3"
+                                             r".*meaningless; choose a CV that fluctuates "
+                                             r"within the states"):
+            suggest_hints(states, temperature=T, md_step_fs=2.0, leave_out_frozen=leave_out)
+
+
+def test_states_without_spread_at_zero_mean_are_refused_by_the_floor():
+    states = {"a": {"mean": 0.0, "std": 1e-16}, "b": {"mean": 0.0, "std": 3e-17}}
+    with pytest.raises(InputError, match=r"no state has a resolvable spread.*not above "
+                                         r"1e-12 CV units \(the floor\)"):
+        suggest_hints(states, temperature=T, md_step_fs=2.0)
+
+
+def test_one_frozen_state_is_refused_or_left_out_with_a_warning():
+    states = {"frozen": {"mean": -1.0, "std": 1e-13}, "open": {"mean": 0.9, "std": 0.25}}
+    with pytest.raises(InputError, match=r"a state has no resolvable spread of the CV.*"
+                                         r"'frozen' \(std 1e-13 CV units\).*leave that state out "
+                                         r"of the states given"):
+        suggest_hints(states, temperature=T, md_step_fs=2.0)
+    h = suggest_hints(states, temperature=T, md_step_fs=2.0, leave_out_frozen=True)
+    assert h["warnings"][0].startswith("left out of the kernel width and the fill times, kept "
+                                       "inside the walls: 'frozen' (std 1e-13 CV units)")
+    assert h["kernel"]["reference_state"] == "open"
+    assert h["kernel"]["sigma"] == pytest.approx(0.125)
+    assert set(h["fill_time"]["states"]) == {"open"}
+    assert h["walls"]["lower"] == pytest.approx(-1.0)  # the frozen state's mean stays inside
+    assert h["walls"]["upper"] == pytest.approx(0.9 + 3 * 0.25)
+
+
+def test_a_grid_beyond_the_maximum_is_refused_with_what_to_change():
+    states = {"narrow": {"mean": 0.0, "std": 1e-5}, "wide": {"mean": 5.0, "std": 0.5}}
+    with pytest.raises(InputError, match=r"the grid would need about 6\.5e\+06 bins \(\[-6e-05, "
+                                         r"6\.5\] at a spacing of 0\.2 x sigma = 1e-06 CV "
+                                         r"units\), more than max_grid_bins=100000: the "
+                                         r"narrowest state "
+                                         r"\('narrow', std 1e-05\).*Give a narrower cv_range"):
+        suggest_hints(states, temperature=T, md_step_fs=2.0)
+    h = suggest_hints(states, temperature=T, md_step_fs=2.0, max_grid_bins=10**7)
+    assert h["grid"]["n_bins"] > 10**5
+    assert MAX_GRID_BINS == 100_000
 
 
 def test_empty_or_malformed_states_raise():
     with pytest.raises(InputError, match="states must be a non-empty dict"):
-        suggest_hints({}, temperature=T, timestep_fs=2.0)
+        suggest_hints({}, temperature=T, md_step_fs=2.0)
     with pytest.raises(InputError, match=r"states\['a'\] must be a dict with 'mean' and 'std'"):
-        suggest_hints({"a": {"mean": 0.0}}, temperature=T, timestep_fs=2.0)
+        suggest_hints({"a": {"mean": 0.0}}, temperature=T, md_step_fs=2.0)
 
 
 def test_kernel_functions_reject_bad_width():
@@ -411,7 +544,7 @@ def test_kernel_functions_reject_bad_width():
 
 
 def test_format_hints_shows_values_reasoning_and_caution():
-    h = suggest_hints(STATES, temperature=T, timestep_fs=2.0, autocorrelation_time_ps=1.0)
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=1.0)
     text = format_hints(h)
     assert text.count(CAUTION) == 2
     assert "500 steps = 1 ps" in text

@@ -1,11 +1,17 @@
-"""Hints computed at suggest time, stored in the spec, and recomputed by `cvdesign hints`."""
+"""Hints computed at suggest time, stored in the spec, and recomputed by `cvdesign hints`;
+their refusals and warnings through the command and the pipeline."""
 
+import functools
 import json
 
+import mdtraj as md
 import pytest
 
+import cvdesign.hints
+from cvdesign import Source, Spec, suggest
 from cvdesign.cli import main
 from cvdesign.hints import suggest_hints
+from cvdesign.pipeline import _hints_for
 
 
 def test_specs_carry_hints_computed_from_the_data(demo_result):
@@ -13,36 +19,218 @@ def test_specs_carry_hints_computed_from_the_data(demo_result):
     hints = spec["hints"]
     smallest = min(v["std"] for v in spec["states"].values())
     assert hints["kernel"]["sigma"] == pytest.approx(0.5 * smallest)
-    assert hints["inputs"]["temperature_k"] == 300.0 and hints["inputs"]["timestep_fs"] == 2.0
+    assert hints["inputs"]["temperature_k"] == 300.0 and hints["inputs"]["md_step_fs"] == 2.0
+    assert spec["provenance"]["parameters"]["md_step_fs"] == 2.0
     tau = spec["scores"]["integrated_time_ps"]
     assert tau > 0
     assert hints["deposition"]["interval_steps"] == max(1, round(tau * 1000 / 2.0))
     assert "not guarantees" in hints["caution"]
+    assert hints["warnings"] == [] and "hints_refused" not in demo_result.ranking[0]
 
 
 def test_hints_command_recomputes_from_the_spec_alone(demo_result, tmp_path, capsys):
     spec_path = tmp_path / "cv.json"
     spec_path.write_text(json.dumps(demo_result.specs[0]))
-    assert main(["hints", str(spec_path), "--temperature", "310", "--timestep", "4",
+    assert main(["hints", str(spec_path), "--temperature", "310", "--md-step-fs", "4",
                  "--barrier", "50", "--kernel", "lucy", "--json"]) == 0
     got = json.loads(capsys.readouterr().out)
     spec = demo_result.specs[0]
     expect = suggest_hints({k: v for k, v in spec["states"].items()}, temperature=310.0,
-                           timestep_fs=4.0, barrier=50.0, kernel="lucy",
+                           md_step_fs=4.0, barrier=50.0, kernel="lucy",
                            autocorrelation_time_ps=spec["scores"]["integrated_time_ps"])
     assert got == json.loads(json.dumps(expect))
-    assert main(["hints", str(spec_path), "--temperature", "300", "--timestep", "2"]) == 0
+    assert main(["hints", str(spec_path), "--temperature", "300", "--md-step-fs", "2"]) == 0
     text = capsys.readouterr().out
     assert text.count("starting points to validate, not guarantees") >= 1
-    assert "Fill time per state" in text
+    assert "Fill time per state" in text and "MD step 2 fs" in text
 
 
 def test_hints_command_refuses_bad_arguments(demo_result, tmp_path, capsys):
     spec_path = tmp_path / "cv.json"
     spec_path.write_text(json.dumps(demo_result.specs[0]))
     with pytest.raises(SystemExit):
-        main(["hints", str(spec_path), "--temperature", "-3", "--timestep", "2"])
+        main(["hints", str(spec_path), "--temperature", "-3", "--md-step-fs", "2"])
     assert "must be positive" in capsys.readouterr().err
     assert main(["hints", str(tmp_path / "none.json"), "--temperature", "300",
-                 "--timestep", "2"]) == 2
+                 "--md-step-fs", "2"]) == 2
     assert "does not exist" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("old", [["--timestep", "2"], ["--md-timestep", "2"]])
+def test_hints_command_has_no_old_step_options(demo_result, tmp_path, capsys, old):
+    spec_path = tmp_path / "cv.json"
+    spec_path.write_text(json.dumps(demo_result.specs[0]))
+    with pytest.raises(SystemExit) as exc:
+        main(["hints", str(spec_path), "--temperature", "300"] + old)
+    assert exc.value.code == 2
+    assert "the following arguments are required: --md-step-fs" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(
+    "args,message",
+    [
+        (["--temperature", "0.5", "--md-step-fs", "2"],
+         "temperature=0.5 K is below 1 K: no barrier is crossed thermally there"),
+        (["--temperature", "20000", "--md-step-fs", "2"],
+         "temperature=20000.0 K is above 5000 K, hotter than any molecular simulation"),
+        (["--temperature", "300", "--md-step-fs", "1000000"],  # an MD step of 1000 ps
+         "md_step_fs=1000000.0 fs (1000 ps) is longer than 100 fs, beyond the stable step"),
+        (["--temperature", "300", "--md-step-fs", "0.002"],
+         "md_step_fs=0.002 fs is shorter than 0.01 fs, shorter than any MD step; give the MD "
+         "step in femtoseconds (if 0.002 is in ps, that is 2 fs)"),
+        (["--temperature", "300", "--md-step-fs", "2", "--barrier", "1"],
+         "barrier=1.0 kJ/mol is below kT = 2.494 kJ/mol at 300 K: states separated by less "
+         "than kT are not metastable"),
+    ],
+)
+def test_hints_command_refuses_impossible_inputs_with_the_reason(demo_result, tmp_path, capsys,
+                                                                 args, message):
+    spec_path = tmp_path / "cv.json"
+    spec_path.write_text(json.dumps(demo_result.specs[0]))
+    assert main(["hints", str(spec_path)] + args) == 2
+    captured = capsys.readouterr()
+    assert captured.err.startswith(f"cvdesign hints: error: {spec_path}: no hints: ")
+    assert message in captured.err
+    assert "Traceback" not in captured.err and captured.out == ""
+
+
+@pytest.mark.parametrize(
+    "args,message",
+    [
+        (["--temperature", "25", "--md-step-fs", "2"],
+         "warning: temperature=25 K is below 100 K, unusual for a molecular simulation; check "
+         "that it is in kelvin (25 degrees Celsius = 298.15 K)"),
+        (["--temperature", "300", "--md-step-fs", "20"],
+         "warning: md_step_fs=20 fs is longer than 5 fs: usual for coarse-grained models only"),
+        (["--temperature", "300", "--md-step-fs", "2", "--barrier", "4000"],
+         "warning: the barrier estimate for 'closed', 4000 kJ/mol, is above 400 kJ/mol"),
+    ],
+)
+def test_hints_command_warns_about_unusual_inputs(demo_result, tmp_path, capsys, args, message):
+    spec_path = tmp_path / "cv.json"
+    spec_path.write_text(json.dumps(demo_result.specs[0]))
+    assert main(["hints", str(spec_path)] + args + ["--json"]) == 0
+    captured = capsys.readouterr()
+    assert f"cvdesign hints: {message}" in captured.err
+    hints = json.loads(captured.out)
+    assert any(message[len("warning: "):] in w for w in hints["warnings"])
+
+
+def _hints_for_states(tmp_path, capsys, states):
+    """`cvdesign hints` on a one-distance spec recording `states`: (exit code, out, err)."""
+    top = md.Topology()
+    res = top.add_residue("X", top.add_chain(), resSeq=1)
+    for name in ("A", "B"):
+        top.add_atom(name, md.element.carbon, res)
+    Spec(name="d", topology=top, descriptors=[{"id": "d", "kind": "distance", "atoms": [0, 1]}],
+         terms=[{"descriptor": "d", "transform": "identity", "center": 0.0, "scale": 1.0,
+                 "weight": 1.0}],
+         states=states).save(tmp_path / "cv.json")
+    code = main(["hints", str(tmp_path / "cv.json"), "--temperature", "300", "--md-step-fs", "2"])
+    captured = capsys.readouterr()
+    assert "Traceback" not in captured.err
+    return code, captured.out, captured.err
+
+
+def test_hints_command_refuses_a_frozen_cv(tmp_path, capsys):
+    # frozen input: the distance does not move in any state (std ~1e-16 relative to the mean)
+    code, out, err = _hints_for_states(tmp_path, capsys, {
+        "a": {"mean": 0.153, "std": 2e-17, "n_frames": 50},
+        "b": {"mean": 0.153, "std": 0.0, "n_frames": 50}})
+    assert code == 2 and out == ""
+    assert "no hints: no state has a resolvable spread of the CV; hints need the within-state " \
+           "spread: 'a' (std 2e-17 CV units), 'b' (std 0 CV units)" in err
+
+
+def test_hints_command_leaves_out_a_frozen_state_with_a_warning(tmp_path, capsys):
+    code, out, err = _hints_for_states(tmp_path, capsys, {
+        "a": {"mean": 0.15, "std": 0.0, "n_frames": 50},
+        "b": {"mean": 0.4, "std": 0.02, "n_frames": 50}})
+    assert code == 0
+    assert ("cvdesign hints: warning: left out of the kernel width and the fill times, kept "
+            "inside the walls: 'a' (std 0 CV units)") in err
+    assert "WARNING: left out of the kernel width" in out and "sigma = 0.01 CV units" in out
+
+
+def test_hints_command_refuses_a_grid_beyond_the_maximum(tmp_path, capsys):
+    code, out, err = _hints_for_states(tmp_path, capsys, {
+        "narrow": {"mean": 0.15, "std": 1e-5, "n_frames": 50},
+        "wide": {"mean": 2.0, "std": 0.3, "n_frames": 50}})
+    assert code == 2 and out == ""
+    assert "more than max_grid_bins=100000: the narrowest state ('narrow', std 1e-05)" in err
+
+
+@pytest.mark.parametrize(
+    "args,message",
+    [
+        (["--md-step-fs", "1000000"], "md_step_fs=1000000.0 fs (1000 ps) is longer than 100 fs"),
+        (["--temperature", "0.5"], "temperature=0.5 K is below 1 K"),
+    ],
+)
+def test_suggest_refuses_impossible_hint_inputs_before_reading(demo_files, tmp_path, capsys,
+                                                               args, message):
+    top, states = demo_files
+    out = tmp_path / "out"
+    argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "0"]
+    for name, files in states.items():
+        argv += ["--state", name] + files[:1]
+    assert main(argv + args) == 2
+    err = capsys.readouterr().err
+    assert err.startswith(f"cvdesign suggest: error: {message}") and "Traceback" not in err
+    assert not out.exists()
+
+
+def test_suggest_warns_about_an_unusual_md_step_and_stores_it_in_the_hints(demo_files, tmp_path,
+                                                                           capsys):
+    top, states = demo_files
+    out = tmp_path / "out"
+    argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "0",
+            "--max-terms", "1", "--suggestions", "1", "--md-step-fs", "20", "--quiet"]
+    for name, files in states.items():
+        argv += ["--state", name] + files[:1]
+    assert main(argv) == 0
+    err = capsys.readouterr().err
+    assert err.count("cvdesign: warning: md_step_fs=20 fs is longer than 5 fs: usual for "
+                     "coarse-grained models only") == 1
+    spec = json.loads((out / "cv-01.json").read_text())
+    assert spec["hints"]["inputs"]["md_step_fs"] == 20.0
+    assert spec["hints"]["warnings"][0].startswith("md_step_fs=20 fs is longer than 5 fs")
+    assert spec["provenance"]["parameters"]["md_step_fs"] == 20.0
+
+
+@pytest.mark.parametrize("old", ["--timestep", "--md-timestep"])
+def test_suggest_has_no_old_step_options(demo_files, tmp_path, capsys, old):
+    top, states = demo_files
+    name, files = next(iter(states.items()))
+    with pytest.raises(SystemExit) as exc:
+        main(["suggest", "--topology", top, "--out", str(tmp_path / "o"), "--state", name,
+              files[0], old, "2"])
+    assert exc.value.code == 2
+    assert f"unrecognized arguments: {old} 2" in capsys.readouterr().err
+    assert not (tmp_path / "o").exists()
+
+
+def test_pipeline_records_a_frozen_cv_as_refused_hints():
+    entry = {"states": {"a": {"mean": 1.0, "std": 0.0, "n_frames": 10},
+                        "b": {"mean": 1.0, "std": 1e-17, "n_frames": 10}},
+             "integrated_time_ps": 0.5}
+    hints, refused = _hints_for(entry, 300.0, 2.0)
+    assert hints is None
+    assert refused.startswith("no state has a resolvable spread of the CV")
+
+
+def test_pipeline_records_refused_hints_in_ranking_spec_and_notes(demo_dir, monkeypatch):
+    # the real grid guard, with a maximum of one bin, refuses every suggestion's hints
+    monkeypatch.setattr(cvdesign.hints, "suggest_hints",
+                        functools.partial(cvdesign.hints.suggest_hints, max_grid_bins=1))
+    src = Source.from_states(demo_dir / "latch.pdb", {"closed": [demo_dir / "closed-1.xtc"],
+                                                      "open": [demo_dir / "open-1.xtc"]})
+    res = suggest(src, n_bootstrap=0, max_terms=1, n_suggestions=2)
+    for entry, spec in zip(res.ranking, res.specs):
+        assert entry["hints"] is None
+        assert entry["hints_refused"].startswith("the grid would need about ")
+        assert "more than max_grid_bins=1" in entry["hints_refused"]
+        assert spec["hints"] == {"hints_refused": entry["hints_refused"]}
+        assert f"bias hints refused for {entry['spec']}: {entry['hints_refused']}" in res.notes
+        Spec.from_dict(spec)  # still a valid spec
+    assert "hints_refused" in res.ranking_json()

@@ -126,7 +126,7 @@ def test_lag_in_ps_needs_a_time_step_for_formats_without_times(mda_data):
         return src
 
     with pytest.raises(InputError, match="time step is unknown .* give the time step with "
-                                         "--timestep PS"):
+                                         "--frame-step-ps PS"):
         suggest(source(), selection="name CA", objective="both", lag=2.0)
     res = suggest(source(timestep=1.0), selection="name CA", objective="both", lag=2.0,
                   n_bootstrap=0, max_terms=1, n_suggestions=1)

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from cvdesign.estimators import TICA, implied_timescales
+from cvdesign.estimators import TICA, timescales_from_eigenvalues
 from cvdesign.moments import DiagonalLaggedMoments, LaggedMoments, merge_all
 
 LAG = 5  # frames; the OU fixture has dt = 1 frame
@@ -87,11 +87,11 @@ def test_fit_on_list_equals_from_moments_and_pairs_never_cross_arrays():
     np.testing.assert_allclose(out[1], fitted.transform(b))
 
 
-def test_transform_has_unit_variance_and_kinetic_map_scales_by_eigenvalues():
+def test_transform_has_unit_variance_and_kinetic_weighting_scales_by_eigenvalues():
     rng = np.random.default_rng(1)
     x = np.cumsum(rng.normal(size=(2000, 3)), axis=0) @ rng.normal(size=(3, 3))
     plain = TICA(lag=3).fit(x)
-    kmap = TICA(lag=3, scaling="kinetic_map").fit(x)
+    kmap = TICA(lag=3, kinetic_weighting=True).fit(x)
     y = plain.transform(x)
     assert y.shape == (2000, 3) and y.dtype == np.float64
     lm = LaggedMoments.from_series(y, 3)
@@ -100,7 +100,7 @@ def test_transform_has_unit_variance_and_kinetic_map_scales_by_eigenvalues():
     np.testing.assert_allclose(TICA(2, lag=3).fit_transform(x), y[:, :2], rtol=1e-10)
 
 
-def test_nearly_dependent_features_are_dropped_by_epsilon():
+def test_nearly_dependent_features_are_dropped_by_rcond():
     rng = np.random.default_rng(2)
     x = np.cumsum(rng.normal(size=(500, 2)), axis=0)
     X = np.c_[x, x[:, 0] + x[:, 1]]  # exactly dependent third column
@@ -144,10 +144,10 @@ def test_lag_validation_messages():
 
 def test_other_parameter_messages():
     x = np.random.default_rng(4).normal(size=(50, 2))
-    with pytest.raises(ValueError, match=r"epsilon=1.5 must be a number in \[0, 1\)"):
-        TICA(epsilon=1.5).fit(x)
-    with pytest.raises(ValueError, match=r"scaling='commute' must be None or 'kinetic_map'"):
-        TICA(scaling="commute").fit(x)
+    with pytest.raises(ValueError, match=r"rcond=1.5 must be a number in \[0, 1\)"):
+        TICA(rcond=1.5).fit(x)
+    with pytest.raises(ValueError, match=r"kinetic_weighting='commute' must be True or False"):
+        TICA(kinetic_weighting="commute").fit(x)
     with pytest.raises(ValueError, match=r"n_components=0 must be None or an integer >= 1"):
         TICA(0).fit(x)
     with pytest.raises(ValueError, match="X\\[1\\] has 3 features; X\\[0\\] has 2"):
@@ -170,10 +170,10 @@ def test_signs_are_deterministic():
 
 def test_implied_timescales_conventions():
     ev = np.array([np.exp(-1 / 50), 1.0, 1.0 + 1e-9, 0.0, -0.2, np.nan])
-    t = implied_timescales(ev, lag=3)
+    t = timescales_from_eigenvalues(ev, lag=3)
     assert t[0] == pytest.approx(150.0, rel=1e-12)
     assert np.isinf(t[1]) and np.isinf(t[2])
     assert np.all(np.isnan(t[3:]))
-    assert implied_timescales(0.5, lag=2.0).shape == ()
+    assert timescales_from_eigenvalues(0.5, lag=2.0).shape == ()
     with pytest.raises(ValueError, match=r"lag=0 must be a positive number"):
-        implied_timescales(ev, lag=0)
+        timescales_from_eigenvalues(ev, lag=0)

@@ -109,5 +109,5 @@ def test_arguments_are_checked():
         vamp2_score(DiagonalLaggedMoments.from_series(x, 1))
     with pytest.raises(ValueError, match="train holds no lagged pairs"):
         vamp2_score(LaggedMoments(2))
-    with pytest.raises(ValueError, match=r"epsilon=-1 must be a number in \[0, 1\)"):
-        vamp2_score(m, epsilon=-1)
+    with pytest.raises(ValueError, match=r"rcond=-1 must be a number in \[0, 1\)"):
+        vamp2_score(m, rcond=-1)

@@ -96,18 +96,19 @@ def dihedral_spec(row, topology, states):
 
 def biased_run(spec, system, label):
     """Hints from the spec, then a well-tempered run of all walkers along its CV."""
-    hints = spec_hints(spec, temperature=TEMPERATURE_K, timestep_fs=TIMESTEP_PS * 1000,
+    hints = spec_hints(spec, temperature=TEMPERATURE_K, md_step_fs=TIMESTEP_PS * 1000,
                        barrier=BARRIER_KJ_MOL)
     grid = hints["grid"]
     kernel_sigma = hints["kernel"]["sigma"]
-    pace = hints["deposition"]["interval_steps"]
+    interval_steps = hints["deposition"]["interval_steps"]
     bias_factor = hints["well_tempered"]["bias_factor"]
     height = HEIGHT_FRACTION * hints["height_kj_mol"]
-    print(f"\n{label}: sigma {kernel_sigma:.4g} CV units, deposit every {pace} steps, "
+    print(f"\n{label}: sigma {kernel_sigma:.4g} CV units, deposit every {interval_steps} steps, "
           f"bias factor {bias_factor:.2f} (for a {BARRIER_KJ_MOL:g} kJ/mol barrier), height "
           f"{height:.3f} kJ/mol, grid [{grid['lower']:.4g}, {grid['upper']:.4g}] in "
           f"{grid['n_bins']} bins")
-    bias = WellTemperedBias(spec_cv(spec), sigma=kernel_sigma, height=height, pace=pace,
+    bias = WellTemperedBias(spec_cv(spec), sigma=kernel_sigma, height=height,
+                            interval_steps=interval_steps,
                             bias_factor=bias_factor, temperature=TEMPERATURE_K,
                             grid=(grid["lower"], grid["upper"], grid["n_bins"]),
                             periodic=grid["periodic"])
@@ -115,7 +116,7 @@ def biased_run(spec, system, label):
     x0 = np.stack([system.states[s] for s in ("closed", "open")] * (N_WALKERS // 2))
     start = time.perf_counter()
     run = run_biased(system, x0, N_STEPS, bias=bias, friction=FRICTION_PER_PS,
-                     timestep=TIMESTEP_PS, seed=SEED, report_interval=pace,
+                     timestep=TIMESTEP_PS, seed=SEED, report_interval=interval_steps,
                      observe=system.slow_angle)
     # The states are told apart by the molecule's latch dihedral itself, not by the
     # CV, so that both CVs are judged by the same yardstick.

@@ -6,21 +6,21 @@ checking a collective variable under bias.
 
 Examples
 --------
->>> from cvdesign.testbed import latch, BAOABIntegrator
+>>> from cvdesign.testbed import latch, LangevinBAOAB
 >>> system = latch()
->>> integ = BAOABIntegrator(system.force_field, system.masses, temperature=300.0,
-...                         friction=1.0, timestep=0.002, seed=0)
+>>> integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
+...                       friction=1.0, timestep=0.002, seed=0)
 >>> xyz, times = integ.run(system.states["closed"], 100, report_interval=50)
 >>> xyz.shape, str(system.assign_state(xyz[-1]))
 ((2, 12, 3), 'closed')
 """
 
 from .forcefield import ToyForceField, dihedral_angles, pairs_beyond
-from .langevin import BOLTZMANN, BAOABIntegrator
+from .langevin import BOLTZMANN, LangevinBAOAB
 from .toys import ToySystem, TwoWellSystem, latch, two_wells
 
 __all__ = [
-    "BAOABIntegrator",
+    "LangevinBAOAB",
     "BOLTZMANN",
     "ToyForceField",
     "ToySystem",

@@ -10,7 +10,7 @@ bit, the files shipped in the repository's ``data/`` folder:
 * ``manifest.json`` (machine-readable) and ``README.md`` (for humans).
 
 All runs of one call are integrated together as independent walkers of one
-:class:`~cvdesign.testbed.BAOABIntegrator` seeded with `seed`, so the same
+:class:`~cvdesign.testbed.LangevinBAOAB` seeded with `seed`, so the same
 arguments give the same bytes.
 """
 
@@ -26,7 +26,7 @@ import mdtraj as md
 import numpy as np
 
 from .._io import atomic_write_text
-from .langevin import BAOABIntegrator
+from .langevin import LangevinBAOAB
 from .toys import latch
 from .._io import atomic_path
 
@@ -186,8 +186,8 @@ def generate(out_dir, seed=2026, *, n_runs=3, n_frames=2000, report_interval=100
     names = [f"{s}-{r + 1}" for s in state_names for r in range(n_runs)]
     x0 = np.stack([system.states[s] for s in labels])
 
-    integ = BAOABIntegrator(system.force_field, system.masses, temperature=temperature,
-                            friction=friction, timestep=timestep, seed=seed)
+    integ = LangevinBAOAB(system.force_field, system.masses, temperature=temperature,
+                          friction=friction, timestep=timestep, seed=seed)
     integ.run(x0, equilibration_steps, max(1, equilibration_steps))
     x_eq, v_eq = integ.positions_, integ.velocities_
     xyz, _ = integ.run(x_eq, (n_frames - 1) * report_interval, report_interval, v0=v_eq)

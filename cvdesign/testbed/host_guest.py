@@ -11,7 +11,7 @@ repulsive pair term of :class:`~cvdesign.testbed.ToyForceField`. Only the
 bound state is simulated.
 
 All runs of one call are walkers of one seeded
-:class:`~cvdesign.testbed.BAOABIntegrator`, so the same arguments give the same
+:class:`~cvdesign.testbed.LangevinBAOAB`, so the same arguments give the same
 bytes (same platform and library versions).
 """
 
@@ -23,7 +23,7 @@ import numpy as np
 
 from .demo_data import write_pdb
 from .forcefield import ToyForceField
-from .langevin import BAOABIntegrator
+from .langevin import LangevinBAOAB
 from .._io import atomic_path
 
 __all__ = ["HostGuestData", "binding_term", "host_guest_system", "write_host_guest"]
@@ -231,8 +231,8 @@ def write_host_guest(out_dir, *, seed=11, n_runs=2, n_frames=400, report_interva
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     top, ff, masses, x0 = host_guest_system()
-    integ = BAOABIntegrator(ff, masses, temperature=temperature, friction=friction,
-                            timestep=timestep, seed=seed)
+    integ = LangevinBAOAB(ff, masses, temperature=temperature, friction=friction,
+                          timestep=timestep, seed=seed)
     integ.run(np.stack([x0] * int(n_runs)), int(equilibration_steps),
               max(1, int(equilibration_steps)))
     x_eq, v_eq = integ.positions_, integ.velocities_

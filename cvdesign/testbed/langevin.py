@@ -11,13 +11,13 @@ temperature K, friction 1/ps, energies kJ/mol; 1 kJ/mol = 1 amu nm**2/ps**2.
 
 import numpy as np
 
-__all__ = ["BAOABIntegrator", "BOLTZMANN"]
+__all__ = ["LangevinBAOAB", "BOLTZMANN"]
 
 #: Molar Boltzmann constant, kJ/mol/K (CODATA 2018, exact).
 BOLTZMANN = 0.00831446261815324
 
 
-class BAOABIntegrator:
+class LangevinBAOAB:
     """Langevin integrator with the BAOAB splitting.
 
     Parameters
@@ -76,8 +76,8 @@ class BAOABIntegrator:
 
     >>> def well(x):
     ...     return 50.0 * float((x ** 2).sum()), -100.0 * x
-    >>> integ = BAOABIntegrator(well, [12.0], temperature=300.0, friction=5.0,
-    ...                         timestep=0.01, seed=1)
+    >>> integ = LangevinBAOAB(well, [12.0], temperature=300.0, friction=5.0,
+    ...                       timestep=0.01, seed=1)
     >>> xyz, t = integ.run(np.zeros((1, 3)), 1000, report_interval=10)
     >>> xyz.shape, round(float(t[-1]), 6)
     ((100, 1, 3), 10.0)
@@ -127,9 +127,9 @@ class BAOABIntegrator:
 
         Examples
         --------
-        >>> integ = BAOABIntegrator(lambda x: (0.0, 0 * x), [1.0, 4.0],
-        ...                         temperature=300.0, friction=1.0,
-        ...                         timestep=0.002, seed=0)
+        >>> integ = LangevinBAOAB(lambda x: (0.0, 0 * x), [1.0, 4.0],
+        ...                       temperature=300.0, friction=1.0,
+        ...                       timestep=0.002, seed=0)
         >>> integ.maxwell_boltzmann((2, 3)).shape
         (2, 3)
         """
@@ -163,9 +163,9 @@ class BAOABIntegrator:
 
         Examples
         --------
-        >>> integ = BAOABIntegrator(lambda x: (0.0, 0 * x), [1.0],
-        ...                         temperature=300.0, friction=1.0,
-        ...                         timestep=0.002, seed=0)
+        >>> integ = LangevinBAOAB(lambda x: (0.0, 0 * x), [1.0],
+        ...                       temperature=300.0, friction=1.0,
+        ...                       timestep=0.002, seed=0)
         >>> xyz, t = integ.run(np.zeros((1, 3)), 10, report_interval=5)
         >>> t.tolist()
         [0.01, 0.02]

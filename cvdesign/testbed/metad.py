@@ -1,7 +1,7 @@
 """Well-tempered metadynamics along one collective variable, for the testbed.
 
 A :class:`WellTemperedBias` holds a history-dependent bias ``V(s)`` on one
-collective variable (CV) ``s(x)``, stored on a grid: every `pace` steps a
+collective variable (CV) ``s(x)``, stored on a grid: every `interval_steps` steps a
 Gaussian kernel is added at the current value of the CV, with its height
 scaled down by ``exp(-V(s) / (kB dT))``, ``dT = (gamma - 1) T`` (well-tempered
 metadynamics, Barducci, Bussi and Parrinello, Phys. Rev. Lett. 100, 020603
@@ -23,7 +23,7 @@ Examples
 --------
 >>> system = asymmetric_torsion()
 >>> bias = WellTemperedBias(dihedral_cv(system.slow_dihedral), sigma=0.3,
-...                         height=1.0, pace=50, bias_factor=6.0,
+...                         height=1.0, interval_steps=50, bias_factor=6.0,
 ...                         temperature=300.0, grid=(-np.pi, np.pi, 90),
 ...                         periodic=True)
 >>> run = run_biased(system, system.states["trans"], 500, bias=bias,
@@ -38,7 +38,7 @@ import mdtraj as md
 import numpy as np
 
 from .forcefield import ToyForceField
-from .langevin import BOLTZMANN, BAOABIntegrator
+from .langevin import BOLTZMANN, LangevinBAOAB
 from .toys import ToySystem
 
 __all__ = [
@@ -184,8 +184,9 @@ class WellTemperedBias:
         Width (standard deviation) of the Gaussian kernels, in units of the CV.
     height : float
         Initial kernel height ``h``, kJ/mol.
-    pace : int
-        Steps between depositions (used by :func:`run_biased`).
+    interval_steps : int
+        MD steps between depositions (used by :func:`run_biased`); the
+        deposition interval of :func:`cvdesign.hints.suggest_hints`.
     bias_factor : float
         ``gamma = (T + dT) / T > 1``; the CV is sampled as if at ``gamma T``.
     temperature : float
@@ -224,7 +225,7 @@ class WellTemperedBias:
     Examples
     --------
     >>> bias = WellTemperedBias(lambda x: (float(x[0, 0]), np.eye(1, 3)),
-    ...                         sigma=0.1, height=2.0, pace=10, bias_factor=5.0,
+    ...                         sigma=0.1, height=2.0, interval_steps=10, bias_factor=5.0,
     ...                         temperature=300.0, grid=(-1.0, 1.0, 200))
     >>> round(bias.deposit(0.0), 6)  # the first kernel has the full height
     2.0
@@ -235,14 +236,14 @@ class WellTemperedBias:
     12.131
     """
 
-    def __init__(self, cv, *, sigma, height, pace, bias_factor, temperature, grid,
+    def __init__(self, cv, *, sigma, height, interval_steps, bias_factor, temperature, grid,
                  periodic=False):
         if not callable(cv):
             raise TypeError(f"cv must be a callable cv(x) -> (value, gradient); got {cv!r}")
         self.cv = cv
         self.sigma = float(sigma)
         self.height = float(height)
-        self.pace = int(pace)
+        self.interval_steps = int(interval_steps)
         self.bias_factor = float(bias_factor)
         self.temperature = float(temperature)
         self.periodic = bool(periodic)
@@ -250,8 +251,9 @@ class WellTemperedBias:
             raise ValueError(f"sigma={sigma!r} must be positive")
         if not self.height >= 0:
             raise ValueError(f"height={height!r} must be zero or positive (kJ/mol)")
-        if self.pace < 1:
-            raise ValueError(f"pace={pace!r} must be a positive number of steps")
+        if self.interval_steps < 1:
+            raise ValueError(f"interval_steps={interval_steps!r} must be a positive number of "
+                             "steps")
         if not (self.bias_factor > 1 and np.isfinite(self.bias_factor)):
             raise ValueError(f"bias_factor={bias_factor!r} must be finite and > 1")
         if not self.temperature > 0:
@@ -369,8 +371,8 @@ class WellTemperedBias:
 
         Examples
         --------
-        >>> bias = WellTemperedBias(lambda x: (0.0, 0 * x), sigma=0.2, height=1.0, pace=1,
-        ...                         bias_factor=10.0, temperature=300.0,
+        >>> bias = WellTemperedBias(lambda x: (0.0, 0 * x), sigma=0.2, height=1.0,
+        ...                         interval_steps=1, bias_factor=10.0, temperature=300.0,
         ...                         grid=(-np.pi, np.pi, 60), periodic=True)
         >>> _ = bias.deposit(np.pi - 0.05)  # wraps around
         >>> round(float(bias.bias_at(-np.pi + 0.05)), 2)  # exp(-0.1**2 / (2 0.2**2))
@@ -405,7 +407,7 @@ class WellTemperedBias:
         Examples
         --------
         >>> bias = WellTemperedBias(lambda x: (0.0, 0 * x), sigma=0.5, height=1.0,
-        ...                         pace=1, bias_factor=4.0, temperature=300.0,
+        ...                         interval_steps=1, bias_factor=4.0, temperature=300.0,
         ...                         grid=(-np.pi, np.pi, 40), periodic=True)
         >>> _ = bias.deposit(0.0)
         >>> f = bias.free_energy()
@@ -493,7 +495,7 @@ class BiasedRun:
 
 def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=None,
                report_interval=None, average_from=0.5, observe=None):
-    """Langevin dynamics under a well-tempered bias that grows every ``bias.pace`` steps.
+    """Langevin dynamics under a well-tempered bias that grows every ``bias.interval_steps`` steps.
 
     Parameters
     ----------
@@ -504,9 +506,9 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
     x0 : array-like of shape (n_atoms, 3) or (n_walkers, n_atoms, 3)
         Initial positions, nm. Several walkers are integrated in lockstep
         (one vectorized force-field call per step) and share the one bias:
-        every ``pace`` steps each walker deposits a kernel, in walker order.
+        every ``interval_steps`` steps each walker deposits a kernel, in walker order.
     n_steps : int
-        Number of steps (rounded down to a multiple of ``bias.pace``).
+        Number of steps (rounded down to a multiple of ``bias.interval_steps``).
     bias : WellTemperedBias
         Updated in place; its `temperature` is the bath temperature.
     friction : float
@@ -518,9 +520,10 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
     v0 : array-like of the shape of `x0`, optional
         Initial velocities, nm/ps (Maxwell-Boltzmann when omitted).
     report_interval : int, optional
-        Steps between reported CV values; must divide ``bias.pace``; default
-        ``bias.pace``. A kernel is deposited at the CV value of every
-        ``pace``-th step, after which forces are recomputed.
+        Steps between reported CV values; must divide
+        ``bias.interval_steps``; default ``bias.interval_steps``. A kernel is
+        deposited at the CV value of every ``interval_steps``-th step, after
+        which forces are recomputed.
     average_from : float, default=0.5
         Fraction of the depositions after which the grid bias is averaged
         into :attr:`BiasedRun.mean_values`.
@@ -536,23 +539,24 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
     -------
     BiasedRun
     """
-    pace = bias.pace
-    report = pace if report_interval is None else int(report_interval)
-    if report < 1 or pace % report:
-        raise ValueError(f"report_interval={report_interval!r} must divide pace={pace}")
+    interval = bias.interval_steps
+    report = interval if report_interval is None else int(report_interval)
+    if report < 1 or interval % report:
+        raise ValueError(f"report_interval={report_interval!r} must divide "
+                         f"interval_steps={interval}")
     ff = system.force_field.with_bias(bias)
-    integ = BAOABIntegrator(ff, system.masses, temperature=bias.temperature,
-                            friction=friction, timestep=timestep, seed=seed)
+    integ = LangevinBAOAB(ff, system.masses, temperature=bias.temperature,
+                          friction=friction, timestep=timestep, seed=seed)
     x = np.array(x0, dtype=np.float64)
     v = integ.maxwell_boltzmann(x.shape) if v0 is None else np.array(v0, dtype=np.float64)
-    n_chunks = int(n_steps) // pace
+    n_chunks = int(n_steps) // interval
     walkers = x.ndim == 3
     cvs = []
     first = min(int(float(average_from) * n_chunks), max(n_chunks - 1, 0))
     total = np.zeros_like(bias.values)
     observed = []
     for chunk in range(n_chunks):
-        frames, _ = integ.run(x, pace, report_interval=report, v0=v)
+        frames, _ = integ.run(x, interval, report_interval=report, v0=v)
         x, v = integ.positions_, integ.velocities_
         if observe is not None:
             observed.append(np.asarray(observe(frames)))
@@ -838,8 +842,8 @@ def softened_delta_f(system, n_steps, *, temperature, friction, timestep, factor
         raise ValueError(f"n_steps={n_steps!r} leaves fewer than 2 frames per walker after "
                          f"discarding {discard!r} of them; run longer")
     soft = system.force_field.with_torsion_scale(system.slow_dihedral, factor)
-    integ = BAOABIntegrator(soft, system.masses, temperature=temperature, friction=friction,
-                            timestep=timestep, seed=seed)
+    integ = LangevinBAOAB(soft, system.masses, temperature=temperature, friction=friction,
+                          timestep=timestep, seed=seed)
     x0 = np.stack([system.states[(a, b)[w % 2]] for w in range(int(n_walkers))])
     xyz, _ = integ.run(x0, n_steps, report_interval=report_interval)
     xyz = xyz[int(float(discard) * xyz.shape[0]):]

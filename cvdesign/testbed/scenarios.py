@@ -8,7 +8,7 @@ times: a collective variable that separates the runs by state must follow the
 slow dihedral and ignore the fast one, although both are clearly bimodal.
 
 All runs of one call are independent walkers of one
-:class:`~cvdesign.testbed.BAOABIntegrator` seeded with `seed`, so the same
+:class:`~cvdesign.testbed.LangevinBAOAB` seeded with `seed`, so the same
 arguments give the same bytes (on the same platform and library versions).
 """
 
@@ -19,7 +19,7 @@ import mdtraj as md
 import numpy as np
 
 from .demo_data import write_pdb
-from .langevin import BAOABIntegrator
+from .langevin import LangevinBAOAB
 from .toys import two_wells
 from .._io import atomic_path
 
@@ -203,8 +203,8 @@ def write_two_wells(out_dir, *, seed=7, n_runs_per_state=2, n_frames=1500, repor
     labels = [s for s in state_names for _ in range(n_runs)]
     names = [f"{s}-{r + 1}.xtc" for s in state_names for r in range(n_runs)]
 
-    integ = BAOABIntegrator(system.force_field, system.masses, temperature=temperature,
-                            friction=friction, timestep=timestep, seed=seed)
+    integ = LangevinBAOAB(system.force_field, system.masses, temperature=temperature,
+                          friction=friction, timestep=timestep, seed=seed)
     x0 = np.stack([system.states[s] for s in labels])
     integ.run(x0, equilibration_steps, max(1, equilibration_steps))
     x_eq, v_eq = integ.positions_, integ.velocities_

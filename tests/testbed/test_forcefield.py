@@ -84,11 +84,11 @@ def test_each_term_force_equals_central_difference(make, seed):
 
 
 def test_latch_force_equals_central_difference_at_thermal_configurations():
-    from cvdesign.testbed import BAOABIntegrator
+    from cvdesign.testbed import LangevinBAOAB
 
     system = latch()
-    integ = BAOABIntegrator(system.force_field, system.masses, temperature=300.0,
-                            friction=1.0, timestep=0.002, seed=3)
+    integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
+                          friction=1.0, timestep=0.002, seed=3)
     x0 = np.stack([system.states["closed"], system.states["open"]])
     xyz, _ = integ.run(x0, 600, report_interval=300)
     for x in xyz.reshape(-1, system.n_atoms, 3):

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from cvdesign import Spec
-from cvdesign.testbed import BAOABIntegrator, ToyForceField, dihedral_angles, latch
+from cvdesign.testbed import LangevinBAOAB, ToyForceField, dihedral_angles, latch
 from cvdesign.testbed.metad import (
     SoftenedReference,
     WellTemperedBias,
@@ -113,7 +113,7 @@ def _dihedral_spec(system, atoms, **term):
 
 
 def _wt_bias(cv, **kw):
-    args = dict(sigma=0.3, height=1.0, pace=50, bias_factor=6.0, temperature=T,
+    args = dict(sigma=0.3, height=1.0, interval_steps=50, bias_factor=6.0, temperature=T,
                 grid=(-np.pi, np.pi, 120), periodic=True)
     args.update(kw)
     return WellTemperedBias(cv, **args)
@@ -293,8 +293,8 @@ def test_stack_bias_calls_in_a_walker_run(latch_system):
     ref = latch_system.states["closed"]
     bias = _Restraint(ref, stacks=True)
     ff = Counted(latch_system.force_field.with_bias(bias))
-    integ = BAOABIntegrator(ff, latch_system.masses, temperature=T, friction=5.0,
-                            timestep=0.002, seed=0)
+    integ = LangevinBAOAB(ff, latch_system.masses, temperature=T, friction=5.0,
+                          timestep=0.002, seed=0)
     x0 = np.stack([ref, latch_system.states["open"], ref])
     integ.run(x0, 10, report_interval=5)
     assert ff.calls >= 10
@@ -424,7 +424,7 @@ def test_run_biased_fast_path_changes_nothing(torsion_system):
     runs, cvs = [], []
     for wrap in (_StackCV, _PlainCV):
         cv = wrap(spec_cv(spec))
-        bias = _wt_bias(cv, pace=50, height=1.0)
+        bias = _wt_bias(cv, interval_steps=50, height=1.0)
         runs.append(run_biased(system, x0, 1500, bias=bias, friction=2.0, timestep=0.005,
                                seed=13, report_interval=10))
         cvs.append(cv)
@@ -446,7 +446,7 @@ def test_run_biased_fast_path_changes_nothing(torsion_system):
 def test_run_biased_observe(torsion_system):
     system = torsion_system
     x0 = np.stack([system.states["trans"], system.states["cis"]] * 2)
-    bias = _wt_bias(dihedral_cv(system.slow_dihedral), pace=50)
+    bias = _wt_bias(dihedral_cv(system.slow_dihedral), interval_steps=50)
     run = run_biased(system, x0, 1000, bias=bias, friction=2.0, timestep=0.005, seed=5,
                      report_interval=10, observe=system.slow_angle)
     assert run.observed.shape == (100, 4) == run.cv.shape
@@ -455,7 +455,7 @@ def test_run_biased_observe(torsion_system):
 
     # Observing leaves the run itself unchanged.
     plain = run_biased(system, x0, 1000, bias=_wt_bias(dihedral_cv(system.slow_dihedral),
-                                                       pace=50),
+                                                       interval_steps=50),
                        friction=2.0, timestep=0.005, seed=5, report_interval=10)
     np.testing.assert_array_equal(plain.cv, run.cv)
 
@@ -464,7 +464,7 @@ def test_run_biased_observe(torsion_system):
         return np.linalg.norm(frames[..., 3, :] - frames[..., 0, :], axis=-1)
 
     single = run_biased(system, system.states["cis"], 500,
-                        bias=_wt_bias(dihedral_cv(system.slow_dihedral), pace=50),
+                        bias=_wt_bias(dihedral_cv(system.slow_dihedral), interval_steps=50),
                         friction=2.0, timestep=0.005, seed=6, report_interval=25,
                         observe=distance)
     assert single.observed.shape == (20,) == single.cv.shape

@@ -8,7 +8,7 @@ import mdtraj as md
 import numpy as np
 import pytest
 
-from cvdesign.testbed import BOLTZMANN, BAOABIntegrator, generate, latch
+from cvdesign.testbed import BOLTZMANN, LangevinBAOAB, generate, latch
 
 DATA = Path(__file__).resolve().parents[2] / "data"
 
@@ -46,8 +46,8 @@ def test_baoab_samples_harmonic_configurations_exactly(timestep):
     # any stable step (Leimkuhler and Matthews, Appl. Math. Res. Express 2013),
     # so even omega*dt = 0.95 shows no step-size bias.
     n_steps = int(round(600.0 / timestep))
-    integ = BAOABIntegrator(harmonic(K_SPRING), np.full(N_PART, MASS), temperature=TEMP,
-                            friction=2.0, timestep=timestep, seed=11)
+    integ = LangevinBAOAB(harmonic(K_SPRING), np.full(N_PART, MASS), temperature=TEMP,
+                          friction=2.0, timestep=timestep, seed=11)
     x0 = np.random.default_rng(0).normal(scale=np.sqrt(KT / K_SPRING), size=(N_PART, 3))
     xyz, _ = integ.run(x0, n_steps, report_interval=max(1, n_steps // 4000))
     xyz = xyz[len(xyz) // 20:]
@@ -60,8 +60,8 @@ def test_baoab_samples_harmonic_configurations_exactly(timestep):
 def test_baoab_kinetic_temperature_at_small_step():
     # Equipartition: <m v^2> = kT per component (Frenkel and Smit 2002); BAOAB's
     # velocity error is O(dt^2), negligible at omega*dt = 0.06.
-    integ = BAOABIntegrator(harmonic(K_SPRING), np.full(N_PART, MASS), temperature=TEMP,
-                            friction=2.0, timestep=0.02, seed=5)
+    integ = LangevinBAOAB(harmonic(K_SPRING), np.full(N_PART, MASS), temperature=TEMP,
+                          friction=2.0, timestep=0.02, seed=5)
     integ.run(np.zeros((N_PART, 3)), 5000, report_interval=10)
     v = integ.reported_velocities_[50:]
     mean, err = block_mean_and_error((MASS * v * v).mean(axis=(1, 2)))
@@ -73,8 +73,8 @@ def test_baoab_kinetic_temperature_at_small_step():
 def test_zero_friction_conserves_total_energy_of_latch():
     # Velocity Verlet limit (common practice: energy drift as a force check).
     system = latch()
-    integ = BAOABIntegrator(system.force_field, system.masses, temperature=300.0,
-                            friction=0.0, timestep=0.0005, seed=0)
+    integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
+                          friction=0.0, timestep=0.0005, seed=0)
     integ.run(system.states["open"], 2000, report_interval=10)
     kinetic = 0.5 * (system.masses[:, None] * integ.reported_velocities_ ** 2).sum(axis=(1, 2))
     total = kinetic + integ.reported_energies_
@@ -85,8 +85,8 @@ def test_same_seed_same_trajectory_different_seed_different():
     system = latch()
 
     def trajectory(seed):
-        integ = BAOABIntegrator(system.force_field, system.masses, temperature=300.0,
-                                friction=1.0, timestep=0.002, seed=seed)
+        integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
+                              friction=1.0, timestep=0.002, seed=seed)
         return integ.run(system.states["closed"], 200, report_interval=20)
 
     a, ta = trajectory(7)
@@ -101,9 +101,9 @@ def test_same_seed_same_trajectory_different_seed_different():
 def test_run_continued_with_final_velocities_equals_one_long_run():
     system = latch()
     kwargs = dict(temperature=300.0, friction=1.0, timestep=0.002, seed=4)
-    one = BAOABIntegrator(system.force_field, system.masses, **kwargs)
+    one = LangevinBAOAB(system.force_field, system.masses, **kwargs)
     long, _ = one.run(system.states["open"], 100, report_interval=50)
-    two = BAOABIntegrator(system.force_field, system.masses, **kwargs)
+    two = LangevinBAOAB(system.force_field, system.masses, **kwargs)
     first, _ = two.run(system.states["open"], 50, report_interval=50)
     second, _ = two.run(two.positions_, 50, report_interval=50, v0=two.velocities_)
     assert np.array_equal(long, np.concatenate([first, second]))
@@ -112,8 +112,8 @@ def test_run_continued_with_final_velocities_equals_one_long_run():
 def test_walkers_are_integrated_in_lockstep():
     system = latch()
     x0 = np.stack([system.states["closed"], system.states["open"], system.states["open"]])
-    integ = BAOABIntegrator(system.force_field, system.masses, temperature=300.0,
-                            friction=1.0, timestep=0.002, seed=0)
+    integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
+                          friction=1.0, timestep=0.002, seed=0)
     xyz, t = integ.run(x0, 40, report_interval=10)
     assert xyz.shape == (4, 3, 12, 3) and t.shape == (4,)
     assert integ.reported_energies_.shape == (4, 3)
@@ -128,12 +128,12 @@ def test_walkers_are_integrated_in_lockstep():
 ])
 def test_invalid_parameters_raise_with_the_argument_name(kwargs, match):
     with pytest.raises(ValueError, match=match):
-        BAOABIntegrator(harmonic(1.0), [1.0], **kwargs)
+        LangevinBAOAB(harmonic(1.0), [1.0], **kwargs)
 
 
 def test_wrong_start_shape_raises():
-    integ = BAOABIntegrator(harmonic(1.0), [1.0, 1.0], temperature=300.0, friction=1.0,
-                            timestep=0.01)
+    integ = LangevinBAOAB(harmonic(1.0), [1.0, 1.0], temperature=300.0, friction=1.0,
+                          timestep=0.01)
     with pytest.raises(ValueError, match=r"x0 must have shape \(2, 3\) or \(n_walkers, 2, 3\)"):
         integ.run(np.zeros((3, 3)), 10)
 
@@ -159,8 +159,8 @@ def test_latch_states_are_built_as_documented():
 
 def test_latch_short_runs_stay_in_their_well_and_separate_the_contact():
     system = latch()
-    integ = BAOABIntegrator(system.force_field, system.masses, temperature=300.0,
-                            friction=1.0, timestep=0.002, seed=1)
+    integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
+                          friction=1.0, timestep=0.002, seed=1)
     x0 = np.stack([system.states["closed"], system.states["open"]])
     xyz, _ = integ.run(x0, 5000, report_interval=25)
     states = system.assign_state(xyz)

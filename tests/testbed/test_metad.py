@@ -5,7 +5,7 @@ import time
 import numpy as np
 import pytest
 
-from cvdesign.testbed import BAOABIntegrator, dihedral_angles
+from cvdesign.testbed import LangevinBAOAB, dihedral_angles
 from cvdesign.testbed.metad import (
     WellTemperedBias,
     asymmetric_torsion,
@@ -21,7 +21,7 @@ T = 300.0
 
 
 def _bias(cv, **kw):
-    args = dict(sigma=0.3, height=1.0, pace=100, bias_factor=6.0, temperature=T,
+    args = dict(sigma=0.3, height=1.0, interval_steps=100, bias_factor=6.0, temperature=T,
                 grid=(-np.pi, np.pi, 120), periodic=True)
     args.update(kw)
     return WellTemperedBias(cv, **args)
@@ -120,8 +120,8 @@ def test_torsion_is_decoupled_unbiased_low_barrier():
     populations must match the quadrature reference.
     """
     system = asymmetric_torsion(k_twofold=1.0, k_onefold=1.0)
-    integ = BAOABIntegrator(system.force_field, system.masses, temperature=T,
-                            friction=2.0, timestep=0.005, seed=3)
+    integ = LangevinBAOAB(system.force_field, system.masses, temperature=T,
+                          friction=2.0, timestep=0.005, seed=3)
     x0 = np.stack([system.states["cis"], system.states["trans"]] * 4)
     xyz, _ = integ.run(x0, 30000, report_interval=10)  # 150 ps per walker
     phi = system.slow_angle(xyz).ravel()
@@ -164,8 +164,8 @@ def test_metadynamics_recovers_reference_delta_f_and_crosses():
     assert np.abs(err - err.mean()).max() < 3.0
 
     biased = sum(count_transitions(c) for c in run.cv.T)
-    integ = BAOABIntegrator(system.force_field, system.masses, temperature=T,
-                            friction=2.0, timestep=0.005, seed=7)
+    integ = LangevinBAOAB(system.force_field, system.masses, temperature=T,
+                          friction=2.0, timestep=0.005, seed=7)
     xyz, _ = integ.run(x0, n_steps, report_interval=20)
     unbiased = sum(count_transitions(c) for c in system.slow_angle(xyz).T)
     print(f"transitions biased {biased}, unbiased {unbiased}")
@@ -176,7 +176,7 @@ def test_metadynamics_recovers_reference_delta_f_and_crosses():
 def test_seeded_runs_are_identical():
     system = asymmetric_torsion()
     cv = dihedral_cv(system.slow_dihedral)
-    runs = [run_biased(system, system.states["trans"], 400, bias=_bias(cv, pace=50),
+    runs = [run_biased(system, system.states["trans"], 400, bias=_bias(cv, interval_steps=50),
                        friction=2.0, timestep=0.005, seed=11) for _ in range(2)]
     np.testing.assert_array_equal(runs[0].cv, runs[1].cv)
     np.testing.assert_array_equal(runs[0].bias.values, runs[1].bias.values)
@@ -191,6 +191,6 @@ def test_rejects_bad_arguments():
     with pytest.raises(TypeError):
         _bias(None)
     system = asymmetric_torsion()
-    with pytest.raises(ValueError, match="divide"):
-        run_biased(system, system.states["cis"], 100, bias=_bias(cv, pace=50),
+    with pytest.raises(ValueError, match=r"report_interval=7 must divide interval_steps=50"):
+        run_biased(system, system.states["cis"], 100, bias=_bias(cv, interval_steps=50),
                    friction=1.0, timestep=0.004, report_interval=7)
