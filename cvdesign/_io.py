@@ -6,7 +6,8 @@ import shutil
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_write_text", "atomic_open", "prepare_output_dir", "write_dir_atomically"]
+__all__ = ["atomic_write_text", "atomic_open", "atomic_path", "atomic_paths", "prepare_output_dir",
+           "write_dir_atomically"]
 
 
 @contextlib.contextmanager
@@ -133,22 +134,42 @@ def write_dir_atomically(out_dir, files, *, option="--out"):
 
 
 @contextlib.contextmanager
+def atomic_paths(paths):
+    """Yield temporary file names beside each of `paths`, for writers that take a name;
+    rename them all into place on success.
+
+    The temporary names keep each path's suffix (writers that choose a format by the
+    extension still see it). On success every file gets the permissions the process umask
+    allows and is renamed onto its path, in order, after all were written; on an
+    exception every temporary file is removed and no path is touched.
+    """
+    paths = [Path(p) for p in paths]
+    tmps = []
+    try:
+        for path in paths:
+            fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.stem}.", suffix=path.suffix)
+            os.close(fd)
+            tmps.append(tmp)
+        yield list(tmps)
+        umask = os.umask(0)
+        os.umask(umask)
+        for tmp in tmps:
+            os.chmod(tmp, 0o666 & ~umask)
+        for tmp, path in zip(tmps, paths):
+            os.replace(tmp, path)
+    except BaseException:
+        for tmp in tmps:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+        raise
+
+
+@contextlib.contextmanager
 def atomic_path(path):
     """Yield a temporary file name beside `path` for a writer that takes a name.
 
     On success the file gets the permissions the process umask allows and is
     renamed onto `path`; on an exception it is removed and `path` is untouched.
     """
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.stem}.", suffix=path.suffix)
-    os.close(fd)
-    try:
+    with atomic_paths([path]) as (tmp,):
         yield tmp
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise

@@ -6,6 +6,7 @@ Sub-commands:
 * ``apply`` -- evaluate a spec on trajectories, without refitting anything;
 * ``check`` -- validate a spec against a topology, and another program's values against it;
 * ``hints`` -- starting values for the bias along a spec's CV;
+* ``funnel`` -- size a funnel restraint for a bound ligand, written as a spec;
 * ``demo`` -- run ``suggest`` on the bundled demo data.
 """
 
@@ -14,7 +15,9 @@ import csv
 import io
 import json
 import math
+import os
 import sys
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -229,25 +232,39 @@ def build_parser():
                     "along (z, nm) and across (r, nm) it, and recommend a cone + cylinder "
                     "funnel (half-angle in rad, radii and walls in nm) with stated margins, so "
                     "the bound fluctuations sit well inside and the unbound region is as "
-                    "narrow as the data allow. Starting points to validate, not guarantees.")
+                    "narrow as the data allow. Every frame's pocket is first fitted onto the "
+                    "pocket of the first bound frame (the reference), so drift, rotation and "
+                    "periodic boundaries do not inflate the funnel; the funnel is expressed in "
+                    "that reference frame, and the biased run must hold the pocket in that "
+                    "orientation. A warning says when the funnel reaches beyond half the "
+                    "smallest box height. Starting points to validate, not guarantees.")
     p.add_argument("--topology", required=True, metavar="TOP", help="topology file")
     p.add_argument("--bound", nargs="+", required=True, metavar="FILE",
-                   help="trajectories of the bound state (any format mdtraj reads)")
+                   help="trajectories of the bound state (any format mdtraj reads); the first "
+                        "frame of the first file is the reference (the starting structure)")
     p.add_argument("--ligand", required=True, metavar="SEL",
                    help="mdtraj selection of the ligand atoms, e.g. 'resname LIG'")
     p.add_argument("--pocket", required=True, metavar="SEL",
-                   help="mdtraj selection of the pocket atoms whose centre is the axis origin")
+                   help="mdtraj selection of the pocket atoms whose centre is the axis origin "
+                        "(at least 3 atoms, not on one line: their orientation defines the "
+                        "frame of the funnel)")
     p.add_argument("--exit-point", nargs=3, type=float, metavar=("X", "Y", "Z"), default=None,
-                   help="a point in nm, toward the solvent, the axis passes through")
+                   help="a point in nm, toward the solvent, the axis passes through, in the "
+                        "coordinates of the first bound frame")
     p.add_argument("--k-wall", type=float, default=2000.0, metavar="KJ_PER_MOL_NM2",
                    help="force constant of the funnel walls, kJ/mol/nm^2 (default: 2000; at "
                         "300 K the ligand centre then enters a wall by about 0.035 nm at kT)")
     p.add_argument("--out", required=True, metavar="FILE.json",
                    help="output spec: the distance between the pocket and ligand centres as "
-                        "the CV, with the funnel as a restraint entry")
+                        "the CV, with the funnel as a restraint entry; an existing file is only "
+                        "replaced with --force")
     p.add_argument("--plot", metavar="FILE.png", default=None,
-                   help="also draw the axis, the funnel outline and the ligand positions "
-                        "(needs matplotlib: pip install 'cvdesign[plot]')")
+                   help="also draw the funnel outline and the bound ligand positions (the "
+                        "format follows the extension: .png, .svg, .pdf, ...; needs matplotlib: "
+                        "pip install 'cvdesign[plot]')")
+    p.add_argument("--force", action="store_true",
+                   help="replace --out (and --plot) if they exist; input files are never "
+                        "replaced")
 
     p = sub.add_parser(
         "demo", help="run suggest on the bundled demo data",
@@ -498,20 +515,81 @@ def _cmd_hints(args):
     return 0
 
 
+def _same_file(a, b):
+    """Whether two paths name the same file (also through links, when both exist)."""
+    a, b = Path(a), Path(b)
+    try:
+        if a.exists() and b.exists():
+            return a.samefile(b)
+    except OSError:
+        pass
+    return a.resolve() == b.resolve()
+
+
+def _check_output_file(path, option, inputs, force):
+    """Refuse an output file that cannot or may not be written, before any work is done."""
+    out = Path(path)
+    if out.is_dir():
+        raise InputError(f"{option} {path!r} is a directory; give a file name")
+    parent = out.resolve().parent
+    if not parent.is_dir():
+        raise InputError(f"the directory of {option} {path!r} ({str(parent)!r}) does not exist; "
+                         "create it first or give another path")
+    for name, paths in inputs:
+        if any(_same_file(out, p) for p in paths):
+            raise InputError(f"{option} {path!r} is the {name}; writing it would replace that "
+                             "file. Give a new name")
+    if out.exists() and not force:
+        raise InputError(f"{option} {path!r} exists; pass --force to replace it, or give a new "
+                         "name")
+    try:
+        fd, probe = tempfile.mkstemp(dir=parent, prefix=f".{out.name}.", suffix=".probe")
+    except OSError as exc:
+        raise InputError(f"cannot write {option} {path!r}: the directory {str(parent)!r} is not "
+                         f"writable ({exc.strerror}); give another path") from None
+    os.close(fd)
+    os.unlink(probe)
+
+
+def _check_plot_format(path):
+    """Refuse --plot without matplotlib or with an extension matplotlib cannot write."""
+    try:
+        from matplotlib.backend_bases import FigureCanvasBase
+    except ImportError:
+        raise InputError("--plot needs matplotlib, which is not installed; install it (pip "
+                         "install 'cvdesign[plot]') or leave out --plot") from None
+    supported = FigureCanvasBase.get_supported_filetypes()
+    ext = Path(path).suffix.lower().lstrip(".")
+    if ext not in supported:
+        raise InputError(f"--plot {path!r}: unknown image extension "
+                         f"{('.' + ext) if ext else '(none)'}; use one of "
+                         + ", ".join("." + k for k in sorted(supported)))
+
+
 def _cmd_funnel(args):
-    from .funnel import CAUTION as FUNNEL_CAUTION, plot_funnel, size_funnel
+    from ._io import atomic_paths
+    from .funnel import plot_funnel, size_funnel
     from .source import Source, select_atoms
 
-    out = Path(args.out)
-    if out.is_dir() or not out.resolve().parent.exists():
-        raise InputError(f"--out {args.out!r} must be a file in an existing directory")
-    if any(out.resolve() == Path(p).resolve() for p in args.bound + [args.topology]):
-        raise InputError(f"--out {args.out!r} is one of the input files; give a new name")
+    if args.exit_point is not None and not all(math.isfinite(v) for v in args.exit_point):
+        raise InputError(f"--exit-point {' '.join(str(v) for v in args.exit_point)}: give three "
+                         "finite coordinates in nm")
+    if not (math.isfinite(args.k_wall) and args.k_wall > 0):
+        raise InputError(f"--k-wall {args.k_wall!r} must be a positive force constant in "
+                         "kJ/mol/nm^2")
+    inputs = [("topology", [args.topology]), ("trajectory", args.bound)]
+    _check_output_file(args.out, "--out", inputs, args.force)
+    if args.plot is not None:
+        if _same_file(args.plot, args.out):
+            raise InputError(f"--plot {args.plot!r} is the same file as --out; give two names")
+        _check_output_file(args.plot, "--plot", inputs, args.force)
+        _check_plot_format(args.plot)
     source = Source(args.topology)
     for f in args.bound:
         source.add(f, state="bound")
-    lig = select_atoms(source.topology, args.ligand)
-    pocket = select_atoms(source.topology, args.pocket)
+    top = source.topology
+    lig = select_atoms(top, args.ligand)
+    pocket = select_atoms(top, args.pocket)
     if np.intersect1d(lig, pocket).size:
         raise InputError("--ligand and --pocket share atoms; the pocket must not include the "
                          "ligand")
@@ -520,50 +598,68 @@ def _cmd_funnel(args):
     def chunks():
         for c in source.iter_chunks(atom_indices=atoms):
             xyz = c.trajectory.xyz.astype(np.float64)
-            yield xyz[:, :pocket.size], xyz[:, pocket.size:]
+            bad = ~np.isfinite(xyz).all(axis=2)
+            if bad.any():
+                f, j = (int(v) for v in np.argwhere(bad)[0])
+                role = "--pocket" if j < pocket.size else "--ligand"
+                raise InputError(
+                    f"trajectory {str(source.segments[c.segment_index].path)!r} frame "
+                    f"{int(c.frames[f])} (0-based): atom {int(atoms[j])} ({top.atom(int(atoms[j]))}, "
+                    f"selected by {role}) has NaN or infinite coordinates; check the file")
+            box = c.trajectory.unitcell_vectors
+            yield (xyz[:, :pocket.size], xyz[:, pocket.size:],
+                   None if box is None else box.astype(np.float64))
 
-    if not (math.isfinite(args.k_wall) and args.k_wall > 0):
-        raise InputError(f"--k-wall {args.k_wall!r} must be a positive force constant in "
-                         "kJ/mol/nm^2")
     result = size_funnel(chunks=chunks, exit_point=args.exit_point)
-    spec = _funnel_spec(source, args, lig, pocket, result, chunks)
-    spec.save(out)
+    spec = _funnel_spec(source, args, lig, pocket, result)
+    try:
+        with atomic_paths([args.out] + ([args.plot] if args.plot else [])) as tmps:
+            with open(tmps[0], "w", encoding="utf-8", newline="\n") as fh:
+                fh.write(spec.to_json())
+            if args.plot:
+                plot_funnel(result, tmps[1])
+    except OSError as exc:
+        raise InputError(f"cannot write the output ({exc.strerror or exc}); nothing was "
+                         "written") from None
     prm = result["params"]
-    print(f"funnel: axis {np.round(prm['axis'], 3).tolist()} from origin "
-          f"{np.round(prm['origin'], 3).tolist()} nm; cone half-angle {prm['alpha']:.3f} rad, "
-          f"cylinder radius {prm['r_cyl']:.3f} nm from z = {prm['z_cc']:.3f} nm, walls at "
-          f"z = {prm['z_min']:.3f} and {prm['z_max']:.3f} nm")
-    for line in result.get("reasoning", []):
+    print(f"funnel: axis {np.round(prm['axis'], 3).tolist()} (reference pocket frame); cone "
+          f"half-angle {prm['cone_half_angle_rad']:.3f} rad, cylinder radius "
+          f"{prm['cylinder_radius_nm']:.3f} nm from z = {prm['cone_end_z_nm']:.3f} nm, walls "
+          f"at z = {prm['lower_wall_z_nm']:.3f} and {prm['upper_wall_z_nm']:.3f} nm")
+    print(f"reference pocket: frame 0 of {args.bound[0]}; hold the pocket in this orientation "
+          "(restrained or aligned) during the biased run")
+    for line in result["reasoning"]:
         print(f"  - {line}")
+    for line in result["warnings"]:
+        print(f"warning: {line}")
     if args.plot:
-        centres = np.concatenate([lg.mean(axis=1) for _, lg in chunks()])
-        plot_funnel(result, centres, args.plot)
         print(f"wrote {args.plot}")
     print(f"wrote {args.out}")
-    print(f"caution: {result.get('caution', FUNNEL_CAUTION)}")
+    print(f"caution: {result['caution']}")
     return 0
 
 
-def _funnel_spec(source, args, lig, pocket, result, chunks):
+def _funnel_spec(source, args, lig, pocket, result):
     """The spec `cvdesign funnel` writes: centre distance as the CV, the funnel as a restraint."""
-    from .funnel import CAUTION as FUNNEL_CAUTION
+    from .funnel import SHAPE_KEYS
     from .source import file_sha256
     from .spec import Spec, residue_hashes, topology_fingerprint
 
     top = source.topology
-    dist = np.concatenate([np.linalg.norm(lg.mean(axis=1) - pk.mean(axis=1), axis=1)
-                           for pk, lg in chunks()])
-    prm = result["params"]
+    prm, obs = result["params"], result["observed"]
     restraint = {"id": "funnel", "kind": "funnel",
                  "label": f"funnel: ligand ({args.ligand}) over pocket ({args.pocket})",
                  "groups": [lig.tolist(), pocket.tolist()], "axis": prm["axis"],
-                 **{k: prm[k] for k in ("z_min", "z_max", "z_cc", "alpha", "r_cyl", "blend")},
-                 "k_wall": float(args.k_wall)}
-    sizing = {k: result[k] for k in ("axis_rule", "observed", "margins", "reasoning")}
-    sizing["origin_nm"] = prm["origin"]
-    sizing["k_wall_rule"] = ("k_wall: stiff enough that the ligand centre enters a wall by "
-                             "only sqrt(kT / k_wall) (0.035 nm at 300 K for 2000 kJ/mol/nm^2; "
-                             "common practice)")
+                 "reference_pocket_nm": result["reference_pocket_nm"],
+                 **{k: prm[k] for k in SHAPE_KEYS},
+                 "wall_force_constant_kj_mol_nm2": float(args.k_wall)}
+    sizing = {k: result[k] for k in ("frame", "axis_rule", "observed", "margins", "warnings",
+                                     "reasoning")}
+    sizing["reference"] = {"file": Path(args.bound[0]).name, "frame": 0,
+                           "pocket_center_nm": result["reference_center_nm"]}
+    sizing["wall_force_constant_rule"] = (
+        "wall_force_constant_kj_mol_nm2: stiff enough that the ligand centre enters a wall by "
+        "only sqrt(kT / k) (0.035 nm at 300 K for 2000 kJ/mol/nm^2; common practice)")
     return Spec(
         name="funnel", topology=top,
         descriptors=[{"id": "center_distance:pocket-ligand", "kind": "center_distance",
@@ -571,8 +667,8 @@ def _funnel_spec(source, args, lig, pocket, result, chunks):
                       "groups": [pocket.tolist(), lig.tolist()], "weighting": "geometric"}],
         terms=[{"descriptor": "center_distance:pocket-ligand", "transform": "identity",
                 "center": 0.0, "scale": 1.0, "weight": 1.0}],
-        states={"bound": {"mean": float(dist.mean()), "std": float(dist.std()),
-                          "n_frames": int(dist.size)}},
+        states={"bound": {"mean": obs["center_distance_mean_nm"],
+                          "std": obs["center_distance_std_nm"], "n_frames": obs["n_frames"]}},
         scores={}, hints={"funnel_sizing": sizing}, restraints=[restraint],
         provenance={"method": "funnel sizing from bound-state frames",
                     "inputs": [{"file": Path(f).name, "sha256": file_sha256(f), "state": "bound"}
@@ -581,7 +677,7 @@ def _funnel_spec(source, args, lig, pocket, result, chunks):
                     "topology_file": {"file": Path(args.topology).name,
                                       "fingerprint": topology_fingerprint(top),
                                       "residues": residue_hashes(top)}},
-        caution=result.get("caution", FUNNEL_CAUTION),
+        caution=result["caution"],
     )
 
 

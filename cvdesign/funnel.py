@@ -7,14 +7,31 @@ finds the axis, measures the bound ligand's distribution along (z, nm) and
 across (r, nm) the axis, recommends the funnel's size, and evaluates the
 restraint's energy (kJ/mol) and gradient (kJ/mol/nm).
 
-Geometry (all lengths nm, angles rad), with origin ``o`` (pocket centre) and
-unit axis ``a``: ``z = (c - o) . a``, ``r = |(c - o) - z a|`` for the ligand
-centre ``c``. The funnel radius is ``R(z) = r_cyl + tan(alpha) g(z)`` with
-``g = z_cc - z`` below ``z_cc - w``, ``g = (z_cc + w - z)**2 / (4 w)`` within
-``w`` of ``z_cc``, and ``g = 0`` beyond: a cone wide over the pocket that
-narrows (as ``alpha``) into a cylinder of radius ``r_cyl`` in the solvent,
-with a quadratic blend of half-width ``w`` that makes ``R`` and hence the
-energy continuous with a continuous gradient (C1) at the junction.
+Geometry (all lengths nm, angles rad). The restraint acts on ``d``, the
+vector from the pocket centre to the ligand centre (geometric centres, each
+group made whole, minimum image in a periodic box), frame by frame: ``z = d .
+axis`` and ``r = |d - z axis|``. The funnel radius is ``R(z) =
+cylinder_radius_nm + tan(cone_half_angle_rad) g(z)`` with, writing ``c =
+cone_end_z_nm`` and ``w = blend_half_width_nm``, ``g = c - z`` below ``c -
+w``, ``g = (c + w - z)**2 / (4 w)`` within ``w`` of ``c``, and ``g = 0``
+beyond: a cone wide over the pocket that narrows into a cylinder in the
+solvent, with a quadratic blend that makes ``R`` and hence the energy
+continuous with a continuous gradient (C1) at the junction. Walls at
+``lower_wall_z_nm`` and ``upper_wall_z_nm`` close it along the axis.
+
+The frame. The axis is a fixed direction, so the restraint only means what
+it should while the pocket keeps one orientation. Sizing therefore works in
+the frame of a *reference pocket*: the pocket of the first bound frame (the
+starting structure), made whole and centred, in its box orientation. Every
+frame's pocket is fitted onto it (Kabsch, 1976, Acta Cryst. A32, 922-923)
+and that frame's ``d`` (computed by :func:`cvdesign.geometry.center_displacement`,
+the code :meth:`cvdesign.spec.Spec.restraint_energy` uses) is rotated into
+the reference frame before the axis and the sizes are chosen. Drift and
+rotation of the whole complex, and a complex split across a periodic
+boundary, therefore leave the sizing unchanged. The funnel is expressed in
+the reference pocket's frame: during the biased run the pocket must be held
+in that orientation (restrained or aligned); the spec stores the reference
+pocket (``reference_pocket_nm``) for that purpose.
 
 Caution: every suggested value is a starting point to validate (check that
 the bound pose is unperturbed with the restraint on, and that the cylinder
@@ -23,30 +40,73 @@ reaches bulk solvent), not a guarantee.
 
 import numpy as np
 
-__all__ = ["CAUTION", "FunnelStats", "funnel_axis", "funnel_energy", "funnel_radius",
-           "plot_funnel", "project_on_axis", "size_funnel"]
+from . import geometry
+from ._io import atomic_path
+from .errors import InputError
+
+__all__ = ["CAUTION", "SHAPE_KEYS", "FunnelStats", "align_to_reference_pocket", "funnel_axis",
+           "funnel_energy", "funnel_radius", "funnel_reach", "plot_funnel", "project_on_axis",
+           "size_funnel"]
 
 CAUTION = ("Suggested funnel parameters are starting points to validate (bound pose "
            "unperturbed with the restraint on, cylinder reaching bulk solvent), not "
            "guarantees.")
 
+#: The keys of a funnel's shape, in a restraint entry and in ``size_funnel(...)["params"]``
+#: (besides ``axis``): nm along the axis for the walls and the cone end, rad for the
+#: half-angle, nm for the radii.
+SHAPE_KEYS = ("lower_wall_z_nm", "upper_wall_z_nm", "cone_end_z_nm", "cone_half_angle_rad",
+              "cylinder_radius_nm", "blend_half_width_nm")
+
+_FRAME_NOTE = ("the funnel is expressed in the frame of the reference pocket (the pocket of the "
+               "first bound frame, made whole and centred, in its box orientation): every "
+               "frame's pocket was fitted onto it (Kabsch rotation) and the pocket-to-ligand "
+               "vector (minimum image) rotated into that frame before sizing. The axis is "
+               "fixed in the box frame of the biased run, so hold the pocket in the reference "
+               "orientation there (restrained or aligned)")
+
 
 def _unit(v, name):
     v = np.asarray(v, dtype=np.float64)
-    n = np.linalg.norm(v)
-    if v.shape != (3,) or not n > 0:
-        raise ValueError(f"{name} must be a non-zero 3-vector in nm; got {v!r}")
+    n = np.linalg.norm(v) if v.shape == (3,) else np.nan
+    if not n > 0 or not np.isfinite(n):
+        raise InputError(f"{name} must be a finite non-zero 3-vector in nm; got "
+                         f"{np.asarray(v).tolist()!r}")
     return v / n
 
 
+#: nm: an exit point or mean ligand centre closer than this to the pocket centre gives no axis.
+_MIN_OFFSET = 0.05
+
+
+def _finite_exit_point(exit_point):
+    e = np.asarray(exit_point, dtype=np.float64)
+    if e.shape != (3,) or not np.all(np.isfinite(e)):
+        raise InputError(f"the exit point must be three finite coordinates in nm; got "
+                         f"{np.asarray(exit_point).tolist()!r}")
+    return e
+
+
+def _check_exit_offset(exit_point, center, offset, min_offset, where):
+    """Refuse an exit point (nm) whose offset from the pocket centre defines no direction."""
+    dist = float(np.linalg.norm(offset))
+    if not dist >= min_offset:
+        raise InputError(
+            f"the exit point {np.round(exit_point, 4).tolist()} nm lies {dist:.4f} nm from the "
+            f"pocket centre{where} {np.round(center, 4).tolist()} nm (closer than {min_offset} "
+            "nm), so it defines no direction; give a point toward the solvent, away from the "
+            "pocket centre")
+
+
 def funnel_axis(pocket_center, exit_point=None, ligand_centers=None, *, pocket_xyz=None,
-                min_offset=0.05):
+                min_offset=_MIN_OFFSET):
     """Unit axis from the pocket centre toward the solvent.
 
-    Rule, in order: (1) through `exit_point` when given (exact); (2) through
-    the mean ligand centre when it is at least `min_offset` nm from the pocket
-    centre (ligands usually sit off-centre toward the mouth of a cavity, but
-    not always: in a deep symmetric pocket this direction is noise); (3) the
+    Rule, in order: (1) through `exit_point` when given (exact; it must lie
+    at least `min_offset` nm from the pocket centre); (2) through the mean
+    ligand centre when it is at least `min_offset` nm from the pocket centre
+    (ligands usually sit off-centre toward the mouth of a cavity, but not
+    always: in a deep symmetric pocket this direction is noise); (3) the
     principal direction of smallest spread of the mean pocket structure
     `pocket_xyz` (the axis of a cup or ring), signed toward the mean ligand
     centre if given, else toward +z. Rule (3) fails for pockets that are not
@@ -73,6 +133,12 @@ def funnel_axis(pocket_center, exit_point=None, ligand_centers=None, *, pocket_x
     rule : str
         ``'exit_point'``, ``'ligand_offset'`` or ``'pocket_shape'``.
 
+    Raises
+    ------
+    InputError
+        A non-finite exit point or one within `min_offset` of the pocket
+        centre; no rule applies.
+
     Examples
     --------
     >>> a, rule = funnel_axis([0, 0, 0], exit_point=[0, 0, 2.0])
@@ -81,15 +147,16 @@ def funnel_axis(pocket_center, exit_point=None, ligand_centers=None, *, pocket_x
     """
     o = np.asarray(pocket_center, dtype=np.float64)
     if exit_point is not None:
-        return _unit(np.asarray(exit_point, dtype=np.float64) - o, "exit_point - pocket_center"), \
-            "exit_point"
+        e = _finite_exit_point(exit_point)
+        _check_exit_offset(e, o, e - o, min_offset, "")
+        return _unit(e - o, "exit_point - pocket_center"), "exit_point"
     lig = None
     if ligand_centers is not None:
         lig = np.asarray(ligand_centers, dtype=np.float64).reshape(-1, 3).mean(axis=0)
         if np.linalg.norm(lig - o) >= min_offset:
             return _unit(lig - o, "ligand offset"), "ligand_offset"
     if pocket_xyz is None:
-        raise ValueError("cannot define a funnel axis: the ligand sits within "
+        raise InputError("cannot define a funnel axis: the ligand sits within "
                          f"min_offset={min_offset} nm of the pocket centre; give exit_point "
                          "or pocket_xyz")
     p = np.asarray(pocket_xyz, dtype=np.float64)
@@ -134,14 +201,17 @@ def project_on_axis(points, origin, axis):
 class FunnelStats:
     """Running statistics of (z, r) of ligand centres, mergeable and bounded in memory.
 
-    Keeps count, exact min/max, mean and M2 (Chan et al., 1979 merge) of z and
-    r, a histogram of r (for quantiles) and, per z bin of width `bin_width`,
-    the exact largest r (the envelope the cone must clear).
+    Keeps count, exact min/max, mean and M2 (Chan et al., 1979 merge) of z,
+    r and the distance ``sqrt(z**2 + r**2)`` from the origin, a histogram of
+    r (for quantiles), per z bin of width `bin_width` the exact largest r
+    (the envelope the cone must clear), and the occupancy of (z, r) cells
+    (for the plot). Memory grows with the extent of the data in bins, not
+    with the number of frames.
 
     Parameters
     ----------
     origin : array-like of shape (3,)
-        Pocket centre, nm.
+        Pocket centre, nm (zero when the points are already displacements).
     axis : array-like of shape (3,)
         Unit axis.
     bin_width : float, default=0.02
@@ -159,11 +229,12 @@ class FunnelStats:
         self.axis = _unit(axis, "axis")
         self.bin_width = float(bin_width)
         self.count = 0
-        self._m = {"z": [0.0, 0.0], "r": [0.0, 0.0]}
+        self._m = {"z": [0.0, 0.0], "r": [0.0, 0.0], "distance": [0.0, 0.0]}
         self.z_min = self.r_min = np.inf
         self.z_max = self.r_max = -np.inf
         self.envelope = {}            # z bin index -> max r
         self.r_hist = {}              # r bin index -> count
+        self.cells = {}               # (z bin, r bin) -> count
 
     def update(self, ligand_centers):
         """Add ligand centres of shape (n, 3), nm; returns self."""
@@ -172,7 +243,7 @@ class FunnelStats:
         n = z.size
         if n == 0:
             return self
-        for key, v in (("z", z), ("r", r)):
+        for key, v in (("z", z), ("r", r), ("distance", np.hypot(z, r))):
             mean_b, m2_b = v.mean(), ((v - v.mean()) ** 2).sum()
             mean_a, m2_a = self._m[key]
             tot = self.count + n
@@ -183,12 +254,19 @@ class FunnelStats:
         self.z_min, self.z_max = float(min(self.z_min, z.min())), float(max(self.z_max, z.max()))
         self.r_min, self.r_max = float(min(self.r_min, r.min())), float(max(self.r_max, r.max()))
         zb = np.floor(z / self.bin_width).astype(np.int64)
+        rb_all = np.floor(r / self.bin_width).astype(np.int64)
         for b in np.unique(zb):
             self.envelope[int(b)] = max(self.envelope.get(int(b), 0.0), float(r[zb == b].max()))
-        rb, cnt = np.unique(np.floor(r / self.bin_width).astype(np.int64), return_counts=True)
+        rb, cnt = np.unique(rb_all, return_counts=True)
         for b, c in zip(rb.tolist(), cnt.tolist()):
             self.r_hist[b] = self.r_hist.get(b, 0) + c
+        cell, cnt = np.unique(np.stack([zb, rb_all], axis=1), axis=0, return_counts=True)
+        for (bz, br), c in zip(cell.tolist(), cnt.tolist()):
+            self.cells[(bz, br)] = self.cells.get((bz, br), 0) + c
         return self
+
+    def _std(self, key):
+        return float(np.sqrt(self._m[key][1] / max(self.count, 1)))
 
     @property
     def z_mean(self):
@@ -198,12 +276,22 @@ class FunnelStats:
     @property
     def z_std(self):
         """Standard deviation of z, nm."""
-        return float(np.sqrt(self._m["z"][1] / max(self.count, 1)))
+        return self._std("z")
 
     @property
     def r_std(self):
         """Standard deviation of r, nm."""
-        return float(np.sqrt(self._m["r"][1] / max(self.count, 1)))
+        return self._std("r")
+
+    @property
+    def distance_mean(self):
+        """Mean distance from the origin, nm."""
+        return float(self._m["distance"][0])
+
+    @property
+    def distance_std(self):
+        """Standard deviation of the distance from the origin, nm."""
+        return self._std("distance")
 
     def r_quantile(self, q):
         """Quantile of r from the histogram (upper bin edge, conservative), nm."""
@@ -213,32 +301,176 @@ class FunnelStats:
         return (k + 1) * self.bin_width
 
 
-def _chunks(pocket_xyz, ligand_xyz, chunks):
-    if chunks is not None:
-        return chunks() if callable(chunks) else iter(chunks)
-    return iter([(pocket_xyz, ligand_xyz)])
+def _chunks(pocket_xyz, ligand_xyz, box, chunks):
+    """Chunks as (pocket, ligand, box) triples, box None when not periodic."""
+    if chunks is None:
+        it = iter([(pocket_xyz, ligand_xyz, box)])
+    else:
+        it = chunks() if callable(chunks) else iter(chunks)
+    for item in it:
+        p, q, b = (item[0], item[1], None) if len(item) == 2 else item
+        if np.shape(p)[:1] != (0,):     # chunks without frames add nothing
+            yield p, q, b
 
 
-def size_funnel(pocket_xyz=None, ligand_xyz=None, *, chunks=None, exit_point=None,
+class _Fitter:
+    """Per chunk: the pocket-to-ligand vector, the fit onto the reference pocket, and the
+    vector in the reference frame. The first frame seen sets the reference."""
+
+    def __init__(self):
+        self.reference = None      # centred reference pocket, nm
+        self.center = None         # pocket centre of the reference frame, nm
+        self.box = None            # box of the reference frame (as given), or None
+        self.n_frames = 0
+
+    def __call__(self, p, q, box):
+        p, q = np.asarray(p, dtype=np.float64), np.asarray(q, dtype=np.float64)
+        if p.ndim != 3 or q.ndim != 3 or len(p) != len(q) or p.shape[2:] != (3,) \
+                or q.shape[2:] != (3,) or p.shape[1] == 0 or q.shape[1] == 0:
+            raise InputError("pocket_xyz and ligand_xyz must have shapes (n_frames, n, 3) with "
+                             f"equal n_frames and at least one atom; got {p.shape} and {q.shape}")
+        if self.reference is not None and p.shape[1] != len(self.reference):
+            raise InputError(f"a chunk has {p.shape[1]} pocket atoms where the first had "
+                             f"{len(self.reference)}; give the same atoms in every chunk")
+        for name, arr in (("pocket_xyz", p), ("ligand_xyz", q)):
+            bad = ~np.isfinite(arr).all(axis=2)
+            if bad.any():
+                f, j = (int(v) for v in np.argwhere(bad)[0])
+                raise InputError(f"{name} has NaN or infinite coordinates in frame "
+                                 f"{self.n_frames + f} (counting all frames given), atom {j} "
+                                 "of that group; give finite coordinates in nm")
+        n_p = p.shape[1]
+        xyz = np.concatenate([p, q], axis=1)
+        pocket, ligand = np.arange(n_p), np.arange(n_p, xyz.shape[1])
+        # The same function Spec.restraint_energy evaluates the restraint with.
+        d, _, _ = geometry.center_displacement(xyz, pocket, ligand, box)
+        whole_p, whole_q = geometry.whole_groups(xyz, [pocket, ligand], box)
+        centre = whole_p.mean(axis=1)
+        centred = whole_p - centre[:, None, :]
+        if self.reference is None:
+            if not geometry.defines_orientation(centred[0]):
+                raise InputError(
+                    f"the pocket ({n_p} atoms) does not fix an orientation in the first frame: "
+                    "fewer than 3 atoms, or all (nearly) on one line; choose a pocket of at "
+                    "least 3 atoms spread in two directions (e.g. the C-alpha atoms lining it)")
+            self.reference, self.center = centred[0].copy(), centre[0].copy()
+            kind, parsed = geometry._parse_box(box, len(p))
+            self.box = None if kind is None else parsed[0]
+        rotation, rmsd = geometry.kabsch_rotation(centred, self.reference,
+                                                  frame_offset=self.n_frames)
+        fitted_d = np.einsum("fj,fjk->fk", d, rotation)
+        self.n_frames += len(p)
+        return fitted_d, centred, rotation, rmsd, whole_p, whole_q
+
+
+def funnel_radius(z, params):
+    """Funnel radius R(z), nm, and dR/dz (dimensionless).
+
+    Parameters
+    ----------
+    z : array-like
+        nm along the axis.
+    params : dict
+        With ``cone_end_z_nm``, ``cone_half_angle_rad``, ``cylinder_radius_nm``,
+        ``blend_half_width_nm``.
+
+    Returns
+    -------
+    radius : ndarray
+        nm.
+    slope : ndarray
+        dR/dz.
+
+    Examples
+    --------
+    >>> p = dict(cone_end_z_nm=1.0, cone_half_angle_rad=np.pi / 4, cylinder_radius_nm=0.3,
+    ...          blend_half_width_nm=0.1)
+    >>> [round(float(v), 6) for v in funnel_radius(np.array([0.0, 2.0]), p)[0]]
+    [1.3, 0.3]
+    """
+    z = np.asarray(z, dtype=np.float64)
+    c, w = params["cone_end_z_nm"], params["blend_half_width_nm"]
+    lin = z <= c - w
+    mid = (~lin) & (z < c + w)
+    g = np.where(lin, c - z, np.where(mid, (c + w - z) ** 2 / (4 * w), 0.0))
+    dg = np.where(lin, -1.0, np.where(mid, -(c + w - z) / (2 * w), 0.0))
+    t = np.tan(params["cone_half_angle_rad"])
+    return params["cylinder_radius_nm"] + t * g, t * dg
+
+
+def funnel_reach(params):
+    """Largest distance of a point of the funnel from the pocket centre, nm.
+
+    ``z**2 + R(z)**2`` is convex in z (R is convex and positive), so the
+    farthest points lie on the rim of one of the two walls.
+
+    Parameters
+    ----------
+    params : dict
+        The shape keys (:data:`SHAPE_KEYS`).
+
+    Returns
+    -------
+    reach : float
+        nm.
+    where : str
+        ``'upper wall'`` or ``'lower wall'``.
+
+    Examples
+    --------
+    >>> p = dict(lower_wall_z_nm=-0.5, upper_wall_z_nm=3.0, cone_end_z_nm=1.0,
+    ...          cone_half_angle_rad=np.pi / 4, cylinder_radius_nm=0.4, blend_half_width_nm=0.1)
+    >>> reach, where = funnel_reach(p)
+    >>> round(reach, 6), where
+    (3.026549, 'upper wall')
+    """
+    lo, hi = params["lower_wall_z_nm"], params["upper_wall_z_nm"]
+    r_lo = float(funnel_radius(np.array([lo]), params)[0][0])
+    r_hi = float(funnel_radius(np.array([hi]), params)[0][0])
+    upper, lower = float(np.hypot(hi, r_hi)), float(np.hypot(lo, r_lo))
+    return (upper, "upper wall") if upper >= lower else (lower, "lower wall")
+
+
+def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit_point=None,
                 ligand_radius=None, cylinder_pad=0.2, k_std=2.0, min_margin=0.1,
-                z_margin=0.2, blend=0.1, unbound_length=1.5, min_alpha=0.2,
+                z_margin=0.2, blend_half_width=0.1, unbound_length=1.5, min_half_angle=0.2,
                 bin_width=0.02):
     """Recommend a cone+cylinder funnel from bound-state frames.
 
+    The funnel is sized in the frame in which the restraint is evaluated.
+    Per frame, ``d`` = ligand centre - pocket centre (geometric centres, each
+    group made whole, minimum image: :func:`cvdesign.geometry.center_displacement`,
+    as :meth:`cvdesign.spec.Spec.restraint_energy`); the pocket (made whole,
+    centred) is fitted onto the reference pocket (the first frame's, in its
+    box orientation) by the Kabsch rotation (Kabsch, 1976, Acta Cryst. A32,
+    922-923) and ``d`` is rotated with it. The axis and every size come from
+    these fitted vectors, so the funnel is expressed in the reference
+    pocket's frame, and a run that uses it must hold the pocket in that
+    orientation (restrained or aligned). Two passes are made over the
+    frames; memory does not grow with their number.
+
     Rules (margins are common practice in spirit; the numbers are from memory):
 
-    * axis and origin: see :func:`funnel_axis`; origin = mean over frames of the
-      pocket atoms' geometric centre;
-    * lower wall ``z_min`` = deepest observed z minus ``max(z_margin, k_std std_z)``;
-    * junction ``z_cc`` = highest observed z plus the same margin plus `blend`,
-      so every bound position lies in the straight part of the cone;
-    * ``r_cyl`` = ligand radius (largest atom distance from the ligand centre)
-      + `cylinder_pad` (a few tenths of a nm, so the unbound ligand can rotate);
-    * ``alpha`` = the smallest half-angle (at least `min_alpha`) such that, in
-      every z bin, the cone radius exceeds the largest observed r by
-      ``max(min_margin, k_std std_r)``;
-    * upper wall ``z_max`` = ``z_cc + unbound_length`` (far enough for the
-      ligand to be solvated; check against your box).
+    * axis: see :func:`funnel_axis` (in the reference frame; the exit point is
+      taken in the coordinates of the first frame, at its minimum image from
+      that frame's pocket centre);
+    * ``lower_wall_z_nm`` = deepest observed z minus ``max(z_margin, k_std std_z)``;
+    * ``cone_end_z_nm`` = highest observed z plus the same margin plus
+      `blend_half_width`, so every bound position lies in the straight part
+      of the cone;
+    * ``cylinder_radius_nm`` = ligand radius (largest atom distance from the
+      ligand centre) + `cylinder_pad` (a few tenths of a nm, so the unbound
+      ligand can rotate);
+    * ``cone_half_angle_rad`` = the smallest half-angle (at least
+      `min_half_angle`) such that, in every z bin, the cone radius exceeds
+      the largest observed r by ``max(min_margin, k_std std_r)``;
+    * ``upper_wall_z_nm`` = ``cone_end_z_nm + unbound_length`` (far enough
+      for the ligand to be solvated; check against your box).
+
+    A warning (in ``warnings`` and ``reasoning``) says when the funnel reaches
+    beyond half the smallest box height of the given frames (the
+    pocket-to-ligand vector would then jump to another periodic image inside
+    the funnel), or when a group may be too large to be made whole.
 
     Parameters
     ----------
@@ -246,26 +478,38 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, *, chunks=None, exit_point=Non
         nm.
     ligand_xyz : array-like of shape (n_frames, n_ligand, 3), optional
         nm.
+    box : array-like or None, default=None
+        Periodic box of the frames, nm (see :func:`cvdesign.geometry.minimum_image`).
     chunks : sequence or callable, optional
-        Instead of the arrays: a re-iterable of ``(pocket_xyz, ligand_xyz)``
-        chunks, or a callable returning a fresh iterator (two passes are made).
+        Instead of the arrays: a re-iterable of ``(pocket_xyz, ligand_xyz)`` or
+        ``(pocket_xyz, ligand_xyz, box)`` chunks, or a callable returning a
+        fresh iterator (two passes are made).
     exit_point : array-like of shape (3,), optional
-        nm.
+        nm, in the coordinates of the first frame.
     ligand_radius : float, optional
         nm; measured from the frames when omitted.
-    cylinder_pad, min_margin, z_margin, blend, unbound_length, bin_width : float
+    cylinder_pad, min_margin, z_margin, blend_half_width, unbound_length, bin_width : float
         nm.
     k_std : float, default=2.0
         Margins in standard deviations.
-    min_alpha : float, default=0.2
+    min_half_angle : float, default=0.2
         rad.
 
     Returns
     -------
     dict
-        JSON-ready: ``params`` (origin, axis, z_min, z_max, z_cc, alpha, r_cyl,
-        blend; nm, rad), ``observed`` statistics, ``margins``, ``reasoning``,
+        JSON-ready: ``params`` (``axis`` and :data:`SHAPE_KEYS`; nm, rad),
+        ``reference_pocket_nm`` (the centred reference pocket, one row per
+        pocket atom), ``reference_center_nm`` (its centre in the first
+        frame), ``observed`` statistics (nm), ``margins``, ``density``
+        (occupied (z, r) cells, for the plot), ``warnings``, ``reasoning``,
         ``caution``.
+
+    Raises
+    ------
+    InputError
+        Bad shapes, non-finite coordinates, a pocket that does not fix an
+        orientation, a bad exit point.
 
     Examples
     --------
@@ -273,102 +517,134 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, *, chunks=None, exit_point=Non
     >>> pocket = np.tile([[1.0, 0, 0], [-1.0, 0, 0], [0, 1.0, 0], [0, -1.0, 0]], (50, 1, 1))
     >>> lig = rng.normal([0, 0, 0.3], 0.05, size=(50, 1, 3))
     >>> out = size_funnel(pocket, lig)
-    >>> out["axis_rule"], out["params"]["z_min"] < 0.1 < out["params"]["z_cc"]
+    >>> p = out["params"]
+    >>> out["axis_rule"], p["lower_wall_z_nm"] < 0.1 < p["cone_end_z_nm"]
     ('ligand_offset', True)
     """
-    # Pass 1: origin, mean ligand centre, mean pocket structure, ligand radius.
-    n, osum, lsum, psum, lrad = 0, np.zeros(3), np.zeros(3), None, 0.0
-    for p, q in _chunks(pocket_xyz, ligand_xyz, chunks):
-        p, q = np.asarray(p, dtype=np.float64), np.asarray(q, dtype=np.float64)
-        if p.ndim != 3 or q.ndim != 3 or len(p) != len(q):
-            raise ValueError("pocket_xyz and ligand_xyz must have shapes (n_frames, n, 3) with "
-                             f"equal n_frames; got {p.shape} and {q.shape}")
-        c = q.mean(axis=1)
-        n += len(p)
-        osum += p.mean(axis=1).sum(axis=0)
-        lsum += c.sum(axis=0)
-        psum = p.sum(axis=0) if psum is None else psum + p.sum(axis=0)
-        lrad = max(lrad, float(np.linalg.norm(q - c[:, None], axis=-1).max()))
+    # Pass 1: reference pocket, mean fitted offset and pocket, ligand radius, box heights.
+    fit = _Fitter()
+    dsum, psum, lrad, rmsd_sum, rmsd_max = np.zeros(3), None, 0.0, 0.0, 0.0
+    half_height, group_reach = np.inf, 0.0
+    for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
+        fd, centred, rotation, rmsd, whole_p, whole_q = fit(p, q, b)
+        dsum += fd.sum(axis=0)
+        part = np.einsum("faj,fjk->ak", centred, rotation)
+        psum = part if psum is None else psum + part
+        lrad = max(lrad, float(np.linalg.norm(
+            whole_q - whole_q.mean(axis=1, keepdims=True), axis=-1).max()))
+        rmsd_sum += float(rmsd.sum())
+        rmsd_max = max(rmsd_max, float(rmsd.max()))
+        if b is not None:
+            half_height = min(half_height, 0.5 * float(geometry.box_heights(b).min()))
+            group_reach = max(group_reach, *(float(np.linalg.norm(w - w[:, :1], axis=-1).max())
+                                             for w in (whole_p, whole_q)))
+    n = fit.n_frames
     if n == 0:
-        raise ValueError("no frames given to size_funnel")
-    origin = osum / n
-    axis, rule = funnel_axis(origin, exit_point, lsum / n, pocket_xyz=psum / n)
-    # Pass 2: (z, r) statistics.
-    stats = FunnelStats(origin, axis, bin_width=bin_width)
-    for p, q in _chunks(pocket_xyz, ligand_xyz, chunks):
-        stats.update(np.asarray(q, dtype=np.float64).mean(axis=1))
+        raise InputError("no frames given to size_funnel")
+    exit_offset = None
+    if exit_point is not None:
+        e = _finite_exit_point(exit_point)
+        exit_offset = geometry.minimum_image((e - fit.center)[None], fit.box)[0] \
+            if fit.box is not None else e - fit.center
+        _check_exit_offset(e, fit.center, exit_offset, _MIN_OFFSET,
+                           " of the first bound frame (minimum image)" if fit.box is not None
+                           else " of the first bound frame")
+    axis, rule = funnel_axis(np.zeros(3), exit_offset, dsum / n, pocket_xyz=psum / n)
+    # Pass 2: (z, r) statistics of the fitted vectors.
+    stats = FunnelStats(np.zeros(3), axis, bin_width=bin_width)
+    fit2 = _Fitter()
+    fit2.reference, fit2.center, fit2.box = fit.reference, fit.center, fit.box
+    for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
+        stats.update(fit2(p, q, b)[0])
+    if fit2.n_frames != n:
+        raise InputError(f"the frames changed between the two passes ({n} then "
+                         f"{fit2.n_frames}); give a re-iterable or a callable for chunks")
     lig_r = lrad if ligand_radius is None else float(ligand_radius)
     dz = max(z_margin, k_std * stats.z_std)
     dr = max(min_margin, k_std * stats.r_std)
-    z_min = stats.z_min - dz
-    z_cc = stats.z_max + dz + blend
-    r_cyl = lig_r + cylinder_pad
-    tan_needed = max((r + dr - r_cyl) / (z_cc - (b + 1) * bin_width)
+    lower = stats.z_min - dz
+    cone_end = stats.z_max + dz + blend_half_width
+    cyl = lig_r + cylinder_pad
+    tan_needed = max((r + dr - cyl) / (cone_end - (b + 1) * bin_width)
                      for b, r in stats.envelope.items())
-    alpha = max(min_alpha, float(np.arctan(max(tan_needed, 0.0))))
-    params = {"origin": origin.tolist(), "axis": axis.tolist(), "z_min": z_min,
-              "z_max": z_cc + unbound_length, "z_cc": z_cc, "alpha": alpha,
-              "r_cyl": r_cyl, "blend": blend}
+    half_angle = max(min_half_angle, float(np.arctan(max(tan_needed, 0.0))))
+    shape = {"lower_wall_z_nm": lower, "upper_wall_z_nm": cone_end + unbound_length,
+             "cone_end_z_nm": cone_end, "cone_half_angle_rad": half_angle,
+             "cylinder_radius_nm": cyl, "blend_half_width_nm": float(blend_half_width)}
+    shape = {k: float(v) for k, v in shape.items()}
+    warnings = []
+    reach, where = funnel_reach(shape)
+    if np.isfinite(half_height) and reach >= half_height:
+        warnings.append(
+            f"the funnel reaches {reach:.3f} nm from the pocket centre (rim of the {where}), "
+            f"beyond half the smallest box height of the bound frames ({half_height:.3f} nm): "
+            "there the minimum-image vector from pocket to ligand jumps to another periodic "
+            "image and the restraint no longer describes this funnel; use a larger box or a "
+            "shorter funnel (smaller unbound length)")
+    if np.isfinite(half_height) and group_reach >= 0.9 * half_height:
+        warnings.append(
+            f"an atom of the pocket or ligand lies {group_reach:.3f} nm from its group's first "
+            f"atom, close to half the smallest box height ({half_height:.3f} nm): the group may "
+            "not have been made whole correctly; use a smaller group or a larger box")
+    reasoning = [
+        _FRAME_NOTE,
+        f"axis by rule '{rule}' from the pocket centre, in the reference frame; pocket fit "
+        f"RMSD mean {rmsd_sum / n:.3f} nm, largest {rmsd_max:.3f} nm",
+        f"lower_wall_z_nm = lowest bound z {stats.z_min:.3f} - margin {dz:.3f} nm "
+        f"(max of {z_margin} nm and {k_std} std; common practice, from memory)",
+        f"cone_end_z_nm = highest bound z {stats.z_max:.3f} + {dz:.3f} + blend half-width "
+        f"{blend_half_width} nm",
+        f"cylinder_radius_nm = ligand radius {lig_r:.3f} + pad {cylinder_pad} nm",
+        f"cone_half_angle_rad = {half_angle:.3f} rad: cone radius exceeds the largest bound r "
+        f"in every {bin_width} nm z bin by at least {dr:.3f} nm",
+        f"upper_wall_z_nm = cone_end_z_nm + {unbound_length} nm so the ligand can be solvated; "
+        f"the funnel reaches {reach:.3f} nm from the pocket centre"
+        + (f" (half the smallest box height: {half_height:.3f} nm)" if np.isfinite(half_height)
+           else " (no periodic box in the bound frames; check against the box of the run)"),
+    ] + [f"WARNING: {w}" for w in warnings]
+    cells = sorted([bz, br, c] for (bz, br), c in stats.cells.items())
     return {
         "units": {"length": "nm", "angle": "rad"},
+        "frame": "reference pocket: the pocket of the first bound frame, made whole and "
+                 "centred, in its box orientation",
         "axis_rule": rule,
-        "params": {k: (float(v) if np.isscalar(v) else v) for k, v in params.items()},
-        "observed": {"n_frames": stats.count, "z_min": float(stats.z_min),
-                     "z_max": float(stats.z_max), "z_mean": float(stats.z_mean),
-                     "z_std": stats.z_std, "r_max": float(stats.r_max), "r_std": stats.r_std,
-                     "r_q95": float(stats.r_quantile(0.95)), "ligand_radius": lig_r},
-        "margins": {"z": dz, "r": dr, "k_std": k_std, "cylinder_pad": cylinder_pad},
-        "reasoning": [
-            f"axis by rule '{rule}' from the pocket centre (mean of pocket-atom centres)",
-            f"z_min = lowest bound z {stats.z_min:.3f} - margin {dz:.3f} nm "
-            f"(max of {z_margin} nm and {k_std} std; common practice, from memory)",
-            f"z_cc = highest bound z {stats.z_max:.3f} + {dz:.3f} + blend {blend} nm",
-            f"r_cyl = ligand radius {lig_r:.3f} + pad {cylinder_pad} nm",
-            f"alpha = {alpha:.3f} rad: cone radius exceeds the largest bound r in every "
-            f"{bin_width} nm z bin by at least {dr:.3f} nm",
-            f"z_max = z_cc + {unbound_length} nm so the ligand can be solvated; check the box",
-        ],
+        "params": {"axis": [float(v) for v in axis], **shape},
+        "reference_pocket_nm": fit.reference.tolist(),
+        "reference_center_nm": fit.center.tolist(),
+        "observed": {"n_frames": stats.count, "z_min_nm": float(stats.z_min),
+                     "z_max_nm": float(stats.z_max), "z_mean_nm": stats.z_mean,
+                     "z_std_nm": stats.z_std, "r_max_nm": float(stats.r_max),
+                     "r_std_nm": stats.r_std, "r_q95_nm": float(stats.r_quantile(0.95)),
+                     "ligand_radius_nm": lig_r,
+                     "center_distance_mean_nm": stats.distance_mean,
+                     "center_distance_std_nm": stats.distance_std,
+                     "pocket_fit_rmsd_mean_nm": rmsd_sum / n,
+                     "pocket_fit_rmsd_max_nm": rmsd_max,
+                     "half_smallest_box_height_nm": (float(half_height)
+                                                     if np.isfinite(half_height) else None),
+                     "funnel_reach_nm": reach},
+        "margins": {"z_nm": dz, "r_nm": dr, "k_std": k_std, "cylinder_pad_nm": cylinder_pad},
+        "density": {"bin_width_nm": float(bin_width), "cells": cells},
+        "warnings": warnings,
+        "reasoning": reasoning,
         "caution": CAUTION,
     }
 
 
-def _g(z, z_cc, w):
-    """Cone profile g(z) >= 0 and its derivative dg/dz."""
-    lin = z <= z_cc - w
-    mid = (~lin) & (z < z_cc + w)
-    g = np.where(lin, z_cc - z, np.where(mid, (z_cc + w - z) ** 2 / (4 * w), 0.0))
-    dg = np.where(lin, -1.0, np.where(mid, -(z_cc + w - z) / (2 * w), 0.0))
-    return g, dg
-
-
-def funnel_radius(z, params):
-    """Funnel radius R(z), nm, and dR/dz (dimensionless).
-
-    Examples
-    --------
-    >>> p = dict(z_cc=1.0, alpha=np.pi / 4, r_cyl=0.3, blend=0.1)
-    >>> [round(float(v), 6) for v in funnel_radius(np.array([0.0, 2.0]), p)[0]]
-    [1.3, 0.3]
-    """
-    g, dg = _g(np.asarray(z, dtype=np.float64), params["z_cc"], params["blend"])
-    t = np.tan(params["alpha"])
-    return params["r_cyl"] + t * g, t * dg
-
-
-def funnel_energy(xyz_ligand_center, params, k_wall):
+def funnel_energy(displacement, params, force_constant):
     """Flat-bottom harmonic restraint outside the funnel: energy and gradient.
 
-    ``E = 0.5 k (r - R(z))**2`` where ``r > R(z)``, plus ``0.5 k (z_min - z)**2``
-    below ``z_min`` and ``0.5 k (z - z_max)**2`` above ``z_max``.
+    ``E = 0.5 k (r - R(z))**2`` where ``r > R(z)``, plus ``0.5 k (lower - z)**2``
+    below the lower wall and ``0.5 k (z - upper)**2`` above the upper wall.
 
     Parameters
     ----------
-    xyz_ligand_center : array-like of shape (..., 3)
-        Ligand centre(s), nm.
+    displacement : array-like of shape (..., 3)
+        Ligand centre minus pocket centre, nm, in the frame of the axis.
     params : dict
-        ``params`` of :func:`size_funnel` (origin, axis, z_min, z_max, z_cc,
-        alpha, r_cyl, blend).
-    k_wall : float
+        ``axis`` and the shape keys :data:`SHAPE_KEYS` (``params`` of
+        :func:`size_funnel`, or a spec's restraint entry).
+    force_constant : float
         kJ/mol/nm**2.
 
     Returns
@@ -376,46 +652,98 @@ def funnel_energy(xyz_ligand_center, params, k_wall):
     energy : ndarray of shape (...)
         kJ/mol.
     gradient : ndarray of shape (..., 3)
-        dE/dc, kJ/mol/nm. With the axis held fixed, the gradient with respect
-        to the origin is ``-gradient``, and with respect to each of n pocket
-        atoms defining the origin ``-gradient / n``.
+        dE/d(displacement), kJ/mol/nm. With the axis held fixed, the gradient
+        with respect to the ligand centre is ``gradient`` and with respect to
+        the pocket centre ``-gradient``.
 
     Examples
     --------
-    >>> p = dict(origin=[0, 0, 0], axis=[0, 0, 1], z_min=-0.5, z_max=3.0, z_cc=1.0,
-    ...          alpha=np.pi / 4, r_cyl=0.3, blend=0.1)
+    >>> p = dict(axis=[0, 0, 1], lower_wall_z_nm=-0.5, upper_wall_z_nm=3.0,
+    ...          cone_end_z_nm=1.0, cone_half_angle_rad=np.pi / 4, cylinder_radius_nm=0.3,
+    ...          blend_half_width_nm=0.1)
     >>> e, g = funnel_energy([[0.1, 0, 0.2], [0, 0, -0.6]], p, 1000.0)
     >>> [round(float(v), 6) for v in e]
     [0.0, 5.0]
     """
-    c = np.asarray(xyz_ligand_center, dtype=np.float64)
+    d = np.asarray(displacement, dtype=np.float64)
     a = _unit(params["axis"], "axis")
-    d = c - np.asarray(params["origin"], dtype=np.float64)
     z = d @ a
     rv = d - z[..., None] * a
     r = np.linalg.norm(rv, axis=-1)
     R, dR = funnel_radius(z, params)
     exc = np.maximum(r - R, 0.0)
-    lo = np.maximum(params["z_min"] - z, 0.0)
-    hi = np.maximum(z - params["z_max"], 0.0)
-    k = float(k_wall)
+    lo = np.maximum(params["lower_wall_z_nm"] - z, 0.0)
+    hi = np.maximum(z - params["upper_wall_z_nm"], 0.0)
+    k = float(force_constant)
     energy = 0.5 * k * (exc ** 2 + lo ** 2 + hi ** 2)
     rhat = rv / np.where(r > 0, r, 1.0)[..., None]
     grad = (k * exc)[..., None] * (rhat - dR[..., None] * a) + (k * (hi - lo))[..., None] * a
     return energy, grad
 
 
-def plot_funnel(result, ligand_centers, path):
-    """PNG of the funnel outline and ligand positions (z vs r); needs matplotlib.
+def align_to_reference_pocket(xyz, pocket, reference, box=None):
+    """Rotate whole frames so that the pocket has the reference orientation.
+
+    Each frame (all atoms, and the box with them) is rotated about its pocket
+    centre by the Kabsch rotation of the pocket (made whole, centred) onto
+    `reference`. Rotating the atoms and the box vectors together is a rigid
+    motion of the whole periodic system, so minimum images are kept; the
+    funnel restraint of a spec (axis in the reference frame) then applies to
+    the aligned frames as in a run that holds the pocket in place.
+
+    Parameters
+    ----------
+    xyz : array-like of shape (n_frames, n_atoms, 3)
+        nm.
+    pocket : sequence of int
+        0-based pocket atoms, in the order of the rows of `reference`.
+    reference : array-like of shape (n_pocket, 3)
+        Centred reference pocket, nm (a restraint's ``reference_pocket_nm``).
+    box : array-like or None, default=None
+        Periodic box in nm (see :func:`cvdesign.geometry.minimum_image`).
+
+    Returns
+    -------
+    xyz : ndarray of shape (n_frames, n_atoms, 3)
+        nm.
+    box : ndarray of shape (n_frames, 3, 3) or None
+        The rotated box vectors (rows), nm.
+
+    Examples
+    --------
+    >>> ref = np.array([[1.0, 0, 0], [-0.5, 0.8, 0], [-0.5, -0.8, 0]])
+    >>> turn = np.array([[0.0, 1, 0], [-1.0, 0, 0], [0, 0, 1.0]])
+    >>> frame = np.concatenate([ref, [[0.0, 0, 0.4]]]) @ turn + 2.0
+    >>> out, _ = align_to_reference_pocket(frame[None], [0, 1, 2], ref)
+    >>> out[0].round(6).tolist()[3]
+    [2.0, 2.0, 2.4]
+    """
+    x = np.asarray(xyz, dtype=np.float64)
+    (whole,) = geometry.whole_groups(x, [pocket], box)
+    centre = whole.mean(axis=1)
+    rotation, _ = geometry.kabsch_rotation(whole - centre[:, None], reference)
+    out = np.einsum("faj,fjk->fak", x - centre[:, None], rotation) + centre[:, None]
+    if box is None:
+        return out, None
+    kind, parsed = geometry._parse_box(box, len(x))
+    vectors = np.stack([np.diag(v) for v in parsed]) if kind == "ortho" else parsed
+    vectors = np.broadcast_to(vectors, (len(x), 3, 3))
+    return out, np.einsum("fij,fjk->fik", vectors, rotation)
+
+
+def plot_funnel(result, path):
+    """Image of the funnel outline and the bound ligand positions (z vs r); needs matplotlib.
+
+    The positions are the occupied (z, r) cells of ``result["density"]``, in
+    the reference pocket's frame; the format follows the file extension
+    (png, svg, pdf, ...). Written atomically (temporary file, then rename).
 
     Parameters
     ----------
     result : dict
         Output of :func:`size_funnel`.
-    ligand_centers : array-like of shape (n, 3)
-        nm.
     path : str or path-like
-        Output PNG.
+        Output image.
 
     Returns
     -------
@@ -430,19 +758,25 @@ def plot_funnel(result, ligand_centers, path):
         raise ImportError("plot_funnel needs matplotlib; install the 'plot' extra "
                           "(pip install 'cvdesign[plot]')") from exc
     p = result["params"]
-    z, r = project_on_axis(np.asarray(ligand_centers).reshape(-1, 3), p["origin"], p["axis"])
-    zz = np.linspace(p["z_min"], p["z_max"], 400)
+    w = result["density"]["bin_width_nm"]
+    cells = np.asarray(result["density"]["cells"], dtype=np.float64).reshape(-1, 3)
+    zz = np.linspace(p["lower_wall_z_nm"], p["upper_wall_z_nm"], 400)
     R, _ = funnel_radius(zz, p)
     fig, ax = plt.subplots(figsize=(6, 4))
     ax.plot(zz, R, "k-", label="funnel radius R(z)")
-    ax.vlines([p["z_min"], p["z_max"]], 0, R.max(), colors="r", linestyles="--", label="walls")
-    ax.axvline(p["z_cc"], color="grey", lw=0.8, label="cone-cylinder junction")
-    ax.plot(z, r, ".", ms=2, alpha=0.5, label="bound ligand centre")
-    ax.set_xlabel("z along axis / nm")
+    ax.vlines([p["lower_wall_z_nm"], p["upper_wall_z_nm"]], 0, R.max(), colors="r",
+              linestyles="--", label="walls")
+    ax.axvline(p["cone_end_z_nm"], color="grey", lw=0.8, label="cone end")
+    ax.scatter((cells[:, 0] + 0.5) * w, (cells[:, 1] + 0.5) * w, s=4, c=np.log1p(cells[:, 2]),
+               cmap="viridis", label="bound ligand centre (occupied cells)")
+    ax.set_xlabel("z along axis / nm (reference pocket frame)")
     ax.set_ylabel("r from axis / nm")
     ax.set_title("funnel sizing (starting point to validate)", fontsize=9)
     ax.legend(fontsize=7)
     fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
+    try:
+        with atomic_path(path) as tmp:
+            fig.savefig(tmp, dpi=100)
+    finally:
+        plt.close(fig)
     return str(path)

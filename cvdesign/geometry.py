@@ -56,6 +56,10 @@ __all__ = [
     "dihedrals",
     "group_centers",
     "center_displacement",
+    "whole_groups",
+    "box_heights",
+    "defines_orientation",
+    "kabsch_rotation",
     "center_distance",
     "coordination",
     "coordination_pairs",
@@ -797,11 +801,15 @@ def _group_points(xyz, groups, names):
     return out
 
 
+def _make_whole(points, kind, parsed):
+    """(n_frames, n_group, 3) points with the group made whole about its first atom
+    (each atom at its minimum image from it)."""
+    return points[:, :1, :] + _apply_minimum_image(points - points[:, :1, :], kind, parsed)
+
+
 def _whole_center(points, weights, kind, parsed):
-    """Weighted center of (n_frames, n_group, 3) points, the group made whole about its
-    first atom (each atom at its minimum image from it)."""
-    whole = points[:, :1, :] + _apply_minimum_image(points - points[:, :1, :], kind, parsed)
-    return np.einsum("fak,a->fk", whole, weights)
+    """Weighted center of (n_frames, n_group, 3) points, the group made whole first."""
+    return np.einsum("fak,a->fk", _make_whole(points, kind, parsed), weights)
 
 
 def group_centers(xyz, groups, box=None, *, masses=None):
@@ -897,6 +905,213 @@ def center_displacement(xyz, group_a, group_b, box=None, *, masses_a=None, masse
         (_whole_center(pb, wb, kind, parsed) - _whole_center(pa, wa, kind, parsed))[:, None, :],
         kind, parsed)[:, 0, :]
     return delta, wa, wb
+
+
+def whole_groups(xyz, groups, box=None):
+    """Coordinates of each atom group per frame, every group made whole, nm.
+
+    Each atom is taken at its minimum image from the first atom of its group:
+    the same images :func:`group_centers`, :func:`center_displacement` and
+    :func:`center_distance` average (one piece of code), so a group split
+    across a periodic boundary comes back in one piece. This is exact when
+    every atom of a group lies within half the smallest box height (see
+    :func:`box_heights`) of the group's first atom.
+
+    Parameters
+    ----------
+    xyz : array-like of shape (n_frames, n_atoms, 3)
+        nm.
+    groups : sequence of sequences of int
+        0-based atom indices of each group (non-empty, without repeats).
+    box : array-like or None, default=None
+        Periodic box in nm; see :func:`minimum_image`.
+
+    Returns
+    -------
+    list of ndarray
+        One array of shape (n_frames, len(group), 3) per group, nm, the first
+        atom of each group where `xyz` has it.
+
+    Raises
+    ------
+    InputError
+        Bad groups or box, or non-finite coordinates (naming frame and atom).
+
+    Examples
+    --------
+    Two atoms 0.15 nm apart across the boundary of a 3 nm box:
+
+    >>> xyz = np.array([[[0.1, 0.0, 0.0], [2.95, 0.0, 0.0]]])
+    >>> whole_groups(xyz, [[0, 1]], box=[3.0, 3.0, 3.0])[0][0].round(6).tolist()
+    [[0.1, 0.0, 0.0], [-0.05, 0.0, 0.0]]
+    """
+    xyz = _check_xyz(xyz)
+    n_frames, n_atoms, _ = xyz.shape
+    kind, parsed = _parse_box(box, n_frames)
+    out = []
+    for k, group in enumerate(groups):
+        g = _check_group(group, n_atoms, f"groups[{k}]")
+        (points,) = _group_points(xyz, (g,), (f"groups[{k}]",))
+        out.append(_make_whole(points, kind, parsed))
+    return out
+
+
+def box_heights(box):
+    """Heights of a periodic box (distances between opposite faces), nm.
+
+    Computed for the reduced box (shorter box vectors spanning the same
+    lattice; see :func:`minimum_image`), so that an unusually skewed choice
+    of vectors does not make the heights needlessly small. The smallest
+    height of any box is at most the length of the shortest lattice vector,
+    so a displacement shorter than half the smallest height is its own
+    minimum image: a quantity that must stay well defined under the minimum
+    image (a group's extent, a restraint's reach) has to stay below that.
+
+    Parameters
+    ----------
+    box : array-like
+        Orthorhombic edge lengths, shape (3,) or (n_frames, 3), or box
+        vectors as rows, shape (3, 3) or (n_frames, 3, 3), nm.
+
+    Returns
+    -------
+    ndarray of shape (n, 3)
+        nm, one row per box (n = 1 for a single box).
+
+    Examples
+    --------
+    >>> box_heights([3.0, 4.0, 5.0]).tolist()
+    [[3.0, 4.0, 5.0]]
+    >>> box_heights([[3.0, 0.0, 0.0], [1.0, 3.0, 0.0], [0.0, 0.0, 4.0]]).round(4).tolist()
+    [[2.846, 3.0, 4.0]]
+    """
+    shape = np.shape(box) if box is not None else ()
+    per_frame = len(shape) == 3 or (len(shape) == 2 and shape != (3, 3))
+    kind, parsed = _parse_box(box, shape[0] if per_frame else None)
+    if kind is None:
+        raise InputError("box_heights needs a periodic box (lengths or box vectors in nm); got None")
+    if kind == "ortho":
+        return parsed.copy()
+    vectors = _reduce_box(parsed)
+    volume = np.abs(np.linalg.det(vectors))
+    heights = np.empty((vectors.shape[0], 3))
+    for i in range(3):
+        j, k = (i + 1) % 3, (i + 2) % 3
+        heights[:, i] = volume / np.linalg.norm(np.cross(vectors[:, j], vectors[:, k]), axis=1)
+    return heights
+
+
+#: Points whose second-largest principal spread is below this fraction of the largest lie
+#: (nearly) on one line: a rotation about that line is not determined by them.
+_LINE_RATIO = 1e-2
+
+
+def defines_orientation(points):
+    """Whether points fix an orientation: at least 3 of them, not (nearly) on one line.
+
+    The test: the second singular value of the centred points is at least
+    1/100 of the largest (the points spread at least 1 % as far across their
+    main direction as along it; the threshold is our choice).
+
+    Parameters
+    ----------
+    points : array-like of shape (n, 3)
+        nm.
+
+    Returns
+    -------
+    bool
+
+    Examples
+    --------
+    >>> defines_orientation([[0, 0, 0], [1.0, 0, 0], [0, 1.0, 0]])
+    True
+    >>> defines_orientation([[0, 0, 0], [1.0, 0, 0], [2.0, 0, 0]])
+    False
+    """
+    p = np.asarray(points, dtype=np.float64)
+    if p.ndim != 2 or p.shape[1] != 3 or p.shape[0] < 3 or not np.all(np.isfinite(p)):
+        return False
+    with np.errstate(over="ignore", invalid="ignore"):
+        scale = np.abs(p).max()
+        centred = p / scale - (p / scale).mean(axis=0) if scale > 0 else p
+    if not (scale > 0 and np.all(np.isfinite(centred))):
+        return False
+    s = np.linalg.svd(centred, compute_uv=False)
+    return bool(s[0] > 0 and s[1] >= _LINE_RATIO * s[0])
+
+
+def kabsch_rotation(mobile, reference, *, frame_offset=0):
+    """Rotations that best superpose centred point sets onto a reference.
+
+    For every frame f the proper rotation ``R_f`` (determinant +1) that
+    minimizes ``sum_i |mobile[f, i] @ R_f - reference[i]|**2`` (points are
+    rows), from the singular value decomposition of ``H = mobile[f].T @
+    reference = U S V^T``: ``R_f = U diag(1, 1, d) V^T`` with ``d = sign
+    det(U V^T)``, which excludes reflections (Kabsch, 1976, Acta Cryst. A32,
+    922-923). Both sets must be centred on their geometric centers by the
+    caller; the rotation is then about that center.
+
+    Parameters
+    ----------
+    mobile : array-like of shape (n_frames, n, 3)
+        Centred coordinates, nm.
+    reference : array-like of shape (n, 3)
+        Centred reference coordinates, nm; they must fix an orientation
+        (:func:`defines_orientation`).
+    frame_offset : int, default=0
+        Added to frame numbers in error messages (for callers that pass
+        frames in chunks).
+
+    Returns
+    -------
+    rotation : ndarray of shape (n_frames, 3, 3)
+        Apply as ``points @ rotation[f]`` (dimensionless).
+    rmsd : ndarray of shape (n_frames,)
+        Root mean square deviation from the reference after the fit, nm.
+
+    Raises
+    ------
+    InputError
+        Shapes that do not match, non-finite values, a reference that does
+        not fix an orientation, or a frame whose points lie (nearly) on one
+        line (naming the frame).
+
+    Examples
+    --------
+    A triangle turned by 90 degrees about z is turned back:
+
+    >>> ref = np.array([[1.0, 0, 0], [-0.5, 0.8, 0], [-0.5, -0.8, 0]])
+    >>> turned = ref @ np.array([[0.0, 1, 0], [-1.0, 0, 0], [0, 0, 1.0]])
+    >>> rot, rmsd = kabsch_rotation(turned[None], ref)
+    >>> np.allclose(turned @ rot[0], ref), float(rmsd[0]) < 1e-12
+    (True, True)
+    """
+    m = np.asarray(mobile, dtype=np.float64)
+    ref = np.asarray(reference, dtype=np.float64)
+    if ref.ndim != 2 or ref.shape[1] != 3 or m.ndim != 3 or m.shape[1:] != ref.shape:
+        raise InputError(f"kabsch_rotation needs mobile of shape (n_frames, n, 3) and reference of "
+                         f"shape (n, 3) with the same n; got {m.shape} and {ref.shape}")
+    if not (np.all(np.isfinite(m)) and np.all(np.isfinite(ref))):
+        raise InputError("kabsch_rotation: the coordinates contain NaN or infinity; give finite "
+                         "coordinates in nm")
+    if not defines_orientation(ref):
+        raise InputError(f"the reference points ({ref.shape[0]}) do not fix an orientation: they "
+                         "are fewer than 3 or lie (nearly) on one line; use more atoms, spread "
+                         "in at least two directions")
+    h = np.einsum("fai,aj->fij", m, ref)
+    u, s, vt = np.linalg.svd(h)
+    flat = ~(s[:, 1] >= _LINE_RATIO ** 2 * s[:, 0])
+    if np.any(flat):
+        frame = int(np.flatnonzero(flat)[0]) + int(frame_offset)
+        raise InputError(f"the points of frame {frame} lie (nearly) on one line (or coincide); "
+                         "their rotation onto the reference is not determined")
+    d = np.sign(np.linalg.det(np.einsum("fij,fjk->fik", u, vt)))
+    u[:, :, 2] *= d[:, None]
+    rotation = np.einsum("fij,fjk->fik", u, vt)
+    diff = np.einsum("faj,fjk->fak", m, rotation) - ref
+    rmsd = np.sqrt(np.einsum("fak,fak->f", diff, diff) / ref.shape[0])
+    return rotation, rmsd
 
 
 def center_distance(xyz, group_a, group_b, box=None, *, masses_a=None, masses_b=None, gradient=False):

@@ -38,6 +38,7 @@ import numpy as np
 from . import geometry
 from ._io import atomic_write_text
 from .errors import InputError, SpecError, TopologyMismatchError
+from .funnel import SHAPE_KEYS
 
 __all__ = [
     "SPEC_FORMAT",
@@ -615,6 +616,8 @@ def _semantic_check(doc):
 
 #: Relative tolerance on the length of a funnel axis (a unit vector).
 _AXIS_RTOL = 1e-6
+#: The numbers of a funnel restraint entry besides its axis and reference pocket.
+_FUNNEL_NUMBERS = SHAPE_KEYS + ("wall_force_constant_kj_mol_nm2",)
 
 
 def _check_restraints(doc):
@@ -641,15 +644,49 @@ def _check_restraints(doc):
         if not abs(norm - 1.0) <= _AXIS_RTOL:
             raise SpecError(f"the funnel axis must be a unit vector; its length is {norm!r}",
                             f"{here}.axis")
-        if not res["z_min"] < res["z_cc"] < res["z_max"]:
+        lower, end, upper = (res[k] for k in ("lower_wall_z_nm", "cone_end_z_nm",
+                                               "upper_wall_z_nm"))
+        if not lower < end < upper:
             raise SpecError(
-                f"needs z_min < z_cc < z_max (nm along the axis); got z_min {res['z_min']!r}, "
-                f"z_cc {res['z_cc']!r}, z_max {res['z_max']!r}",
-                f"{here}.z_cc",
+                "needs lower_wall_z_nm < cone_end_z_nm < upper_wall_z_nm (nm along the axis); "
+                f"got {lower!r}, {end!r}, {upper!r}",
+                f"{here}.cone_end_z_nm",
             )
-        if not res["alpha"] < math.pi / 2:
-            raise SpecError(f"the cone half-angle must be below pi/2 rad; got {res['alpha']!r}",
-                            f"{here}.alpha")
+        if not res["cone_half_angle_rad"] < math.pi / 2:
+            raise SpecError("the cone half-angle must be below pi/2 rad; got "
+                            f"{res['cone_half_angle_rad']!r}", f"{here}.cone_half_angle_rad")
+        _check_reference_pocket(res, here)
+
+
+#: Largest accepted |mean| of a funnel's reference pocket coordinates (they are centred), nm.
+_CENTRED_TOL = 1e-4
+
+
+def _check_reference_pocket(res, here):
+    ref = res["reference_pocket_nm"]
+    n_pocket = len(res["groups"][1])
+    if len(ref) != n_pocket:
+        raise SpecError(
+            f"has {len(ref)} rows but the pocket (groups[1]) has {n_pocket} atoms; give one "
+            "row of coordinates (nm) per pocket atom, in the order of groups[1]",
+            f"{here}.reference_pocket_nm",
+        )
+    arr = np.asarray(ref, dtype=np.float64)
+    with np.errstate(over="ignore", invalid="ignore"):
+        mean = arr.mean(axis=0)
+    if not np.all(np.abs(mean) <= _CENTRED_TOL):
+        raise SpecError(
+            f"the reference pocket must be centred on its geometric centre; its mean is "
+            f"{mean.tolist()} nm. Subtract the mean from every row",
+            f"{here}.reference_pocket_nm",
+        )
+    if not geometry.defines_orientation(arr):
+        raise SpecError(
+            "the reference pocket does not fix an orientation (fewer than 3 atoms, or all "
+            "(nearly) on one line), so the frame of the funnel axis is undefined; use a pocket "
+            "of at least 3 atoms spread in two directions",
+            f"{here}.reference_pocket_nm",
+        )
 
 
 def _normalize(doc):
@@ -683,7 +720,8 @@ def _normalize(doc):
             ident["chain"] = int(ident["chain"])
             ident["resid"] = int(ident["resid"])
         res["axis"] = [float(v) for v in res["axis"]]
-        for key in ("z_min", "z_max", "z_cc", "alpha", "r_cyl", "blend", "k_wall"):
+        res["reference_pocket_nm"] = [[float(v) for v in row] for row in res["reference_pocket_nm"]]
+        for key in _FUNNEL_NUMBERS:
             res[key] = float(res[key])
     for state in doc["states"].values():
         state["mean"] = float(state["mean"])
@@ -1371,13 +1409,20 @@ class Spec:
 
         A ``funnel`` restraint acts on ``d``, the vector (minimum image with
         a box) from the geometric center of the pocket (``groups[1]``) to that
-        of the ligand (``groups[0]``): with ``z = d . axis`` and ``r`` the
-        distance of ``d`` from the axis, ``E = k/2 (r - R(z))^2`` where ``r >
-        R(z)``, plus ``k/2 (z_min - z)^2`` below ``z_min`` and ``k/2 (z -
-        z_max)^2`` above ``z_max``; ``R(z)`` is the cone-plus-cylinder radius
-        of :func:`cvdesign.funnel.funnel_radius` (smooth at the junction). The
-        axis is fixed in the box frame, so the pocket must not rotate (the
-        usual setup restrains or aligns it).
+        of the ligand (``groups[0]``), each group made whole
+        (:func:`cvdesign.geometry.center_displacement`): with ``z = d . axis``
+        and ``r`` the distance of ``d`` from the axis, ``E = k/2 (r - R(z))^2``
+        where ``r > R(z)``, plus ``k/2 (lower_wall_z_nm - z)^2`` below the lower
+        wall and ``k/2 (z - upper_wall_z_nm)^2`` above the upper wall, with
+        ``k = wall_force_constant_kj_mol_nm2``; ``R(z)`` is the
+        cone-plus-cylinder radius of :func:`cvdesign.funnel.funnel_radius`
+        (smooth at the junction). The axis is fixed in the box frame and is
+        expressed in the frame of the restraint's reference pocket
+        (``reference_pocket_nm``): the pocket must be held in that orientation
+        (restrained or aligned; see
+        :func:`cvdesign.funnel.align_to_reference_pocket`), otherwise the
+        energy, while computed as defined, no longer describes the funnel
+        that was sized.
 
         Parameters
         ----------
@@ -1401,19 +1446,23 @@ class Spec:
         >>> import numpy as np
         >>> top = md.Topology()
         >>> res = top.add_residue("HST", top.add_chain(), resSeq=1)
-        >>> for name in ["C1", "C2", "C3"]:
+        >>> for name in ["C1", "C2", "C3", "C4"]:
         ...     _ = top.add_atom(name, md.element.carbon, res)
-        >>> funnel = {"id": "funnel", "kind": "funnel", "groups": [[2], [0, 1]],
-        ...           "axis": [0.0, 0.0, 1.0], "z_min": -0.2, "z_max": 2.0, "z_cc": 1.0,
-        ...           "alpha": 0.5, "r_cyl": 0.2, "blend": 0.1, "k_wall": 1000.0}
+        >>> funnel = {"id": "funnel", "kind": "funnel", "groups": [[3], [0, 1, 2]],
+        ...           "axis": [0.0, 0.0, 1.0], "lower_wall_z_nm": -0.2,
+        ...           "upper_wall_z_nm": 2.0, "cone_end_z_nm": 1.0, "cone_half_angle_rad": 0.5,
+        ...           "cylinder_radius_nm": 0.2, "blend_half_width_nm": 0.1,
+        ...           "wall_force_constant_kj_mol_nm2": 1000.0,
+        ...           "reference_pocket_nm": [[-0.1, -0.05, 0], [0.1, -0.05, 0], [0, 0.1, 0]]}
         >>> spec = Spec(name="f", topology=top,
-        ...             descriptors=[{"id": "d", "kind": "distance", "atoms": [0, 2]}],
+        ...             descriptors=[{"id": "d", "kind": "distance", "atoms": [0, 3]}],
         ...             terms=[{"descriptor": "d", "transform": "identity", "center": 0.0,
         ...                     "scale": 1.0, "weight": 1.0}], restraints=[funnel])
-        >>> xyz = np.array([[[-0.1, 0, 0], [0.1, 0, 0], [0, 0, -0.3]]])  # 0.1 nm below z_min
+        >>> xyz = np.array([[[-0.1, -0.05, 0], [0.1, -0.05, 0], [0, 0.1, 0],
+        ...                  [0, 0, -0.3]]])  # ligand 0.1 nm below the lower wall
         >>> energy, grad = spec.restraint_energy(xyz, gradient=True)
         >>> energy.round(6).tolist(), grad[0, :, 2].round(6).tolist()  # k/2 (0.1 nm)^2
-        ([5.0], [50.0, 50.0, -100.0])
+        ([5.0], [33.333333, 33.333333, 33.333333, -100.0])
         """
         from .funnel import funnel_energy
 
@@ -1424,9 +1473,7 @@ class Spec:
         for res in self._doc.get("restraints", []):
             ligand, pocket = res["groups"]
             d, w_pocket, w_ligand = geometry.center_displacement(arr, pocket, ligand, box=box)
-            params = {k: res[k] for k in ("z_min", "z_max", "z_cc", "alpha", "r_cyl", "blend")}
-            params.update(origin=[0.0, 0.0, 0.0], axis=res["axis"])
-            e, g = funnel_energy(d, params, res["k_wall"])
+            e, g = funnel_energy(d, res, res["wall_force_constant_kj_mol_nm2"])
             energy += e
             if gradient:
                 np.add.at(grad, (slice(None), ligand), w_ligand[None, :, None] * g[:, None, :])

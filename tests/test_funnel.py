@@ -5,11 +5,13 @@ import json
 import numpy as np
 import pytest
 
-from cvdesign.funnel import (CAUTION, FunnelStats, funnel_axis, funnel_energy, funnel_radius,
-                             plot_funnel, project_on_axis, size_funnel)
+from cvdesign.errors import InputError
+from cvdesign.funnel import (CAUTION, SHAPE_KEYS, FunnelStats, funnel_axis, funnel_energy,
+                             funnel_radius, funnel_reach, plot_funnel, project_on_axis,
+                             size_funnel)
 
-PARAMS = dict(origin=[0.1, -0.2, 0.3], axis=[0.0, 0.6, 0.8], z_min=-0.4, z_max=2.5,
-              z_cc=0.9, alpha=0.7, r_cyl=0.35, blend=0.1)
+PARAMS = dict(axis=[0.0, 0.6, 0.8], lower_wall_z_nm=-0.4, upper_wall_z_nm=2.5, cone_end_z_nm=0.9,
+              cone_half_angle_rad=0.7, cylinder_radius_nm=0.35, blend_half_width_nm=0.1)
 
 
 def _bound_frames(seed=0, n=300):
@@ -35,6 +37,16 @@ def test_axis_through_exit_point_is_exact():
     np.testing.assert_allclose(a, [0.0, 0.6, 0.8], atol=1e-15)
 
 
+@pytest.mark.parametrize("exit_point, message", [
+    ([1.0, 1.0, 1.0], "lies 0.0000 nm from the pocket centre"),
+    ([1.0, 1.0, 1.01], "lies 0.0100 nm from the pocket centre"),
+    ([np.nan, 1.0, 1.0], "three finite coordinates"),
+])
+def test_axis_refuses_an_exit_point_at_the_pocket_centre_or_not_finite(exit_point, message):
+    with pytest.raises(InputError, match=message):
+        funnel_axis([1.0, 1.0, 1.0], exit_point=exit_point)
+
+
 def test_axis_falls_back_to_pocket_shape_when_ligand_is_centred():
     ring = np.array([[np.cos(t), np.sin(t), 0.0] for t in np.linspace(0, 6, 7)])
     a, rule = funnel_axis([0, 0, 0], ligand_centers=[[0, 0, 0.01]], pocket_xyz=ring)
@@ -52,9 +64,12 @@ def test_streaming_stats_equal_one_shot():
     for k in range(0, 100, 13):
         many.update(pts[k:k + 13])
     assert one.envelope == many.envelope and one.r_hist == many.r_hist
+    assert one.cells == many.cells and sum(one.cells.values()) == 100
     assert np.isclose(one.z_std, many.z_std, rtol=1e-12)
+    assert np.isclose(one.distance_std, many.distance_std, rtol=1e-12)
     z, r = project_on_axis(pts, [0, 0, 0], [0, 0, 1])
     assert np.isclose(one.z_std, z.std()) and one.r_max == r.max() and one.z_min == z.min()
+    assert np.isclose(one.distance_mean, np.linalg.norm(pts, axis=1).mean(), rtol=1e-12)
 
 
 def test_sizing_puts_every_bound_position_inside_with_margin():
@@ -63,13 +78,18 @@ def test_sizing_puts_every_bound_position_inside_with_margin():
     out = json.loads(json.dumps(out))                    # JSON-ready
     p, m = out["params"], out["margins"]
     assert out["caution"] == CAUTION and out["axis_rule"] == "ligand_offset"
-    z, r = project_on_axis(ligand.mean(axis=1), p["origin"], p["axis"])
+    assert set(p) == {"axis", *SHAPE_KEYS}
+    # the ring hardly moves, so the fitted vectors are the raw ones to within the noise
+    d = ligand.mean(axis=1) - pocket.mean(axis=1)
+    z, r = project_on_axis(d, [0, 0, 0], p["axis"])
     R, _ = funnel_radius(z, p)
-    assert np.all(R - r >= m["r"] - 1e-12)
-    assert np.all(z - p["z_min"] >= m["z"] - 1e-12)
-    assert np.all(p["z_cc"] - p["blend"] - z >= m["z"] - 1e-12)
-    e, _ = funnel_energy(ligand.mean(axis=1), p, 1000.0)
-    assert np.all(e == 0.0)
+    assert np.all(R - r >= m["r_nm"] - 0.01)
+    assert np.all(z - p["lower_wall_z_nm"] >= m["z_nm"] - 0.01)
+    assert np.all(p["cone_end_z_nm"] - p["blend_half_width_nm"] - z >= m["z_nm"] - 0.01)
+    assert "reference pocket" in out["reasoning"][0] and "hold the pocket" in out["reasoning"][0]
+    assert out["warnings"] == []
+    np.testing.assert_allclose(out["reference_pocket_nm"],
+                               pocket[0] - pocket[0].mean(axis=0), atol=1e-12)
 
 
 def test_sizing_from_chunks_matches_arrays():
@@ -77,16 +97,37 @@ def test_sizing_from_chunks_matches_arrays():
     whole = size_funnel(pocket, ligand)
     chunks = [(pocket[k:k + 64], ligand[k:k + 64]) for k in range(0, len(pocket), 64)]
     parts = size_funnel(chunks=chunks)
-    for key in ("z_min", "z_cc", "alpha", "r_cyl"):
+    for key in SHAPE_KEYS:
         assert np.isclose(whole["params"][key], parts["params"][key], rtol=1e-12)
+    assert whole["density"] == parts["density"]
+
+
+def test_sizing_refuses_a_pocket_that_fixes_no_orientation():
+    pocket, ligand = _bound_frames()
+    line = np.zeros((len(pocket), 3, 3))
+    line[:, :, 0] = [-0.5, 0.0, 0.5]
+    with pytest.raises(InputError, match="does not fix an orientation in the first frame"):
+        size_funnel(line, ligand)
+    with pytest.raises(InputError, match="does not fix an orientation"):
+        size_funnel(pocket[:, :2], ligand)
+
+
+def test_sizing_refuses_nan_coordinates_naming_frame_and_atom():
+    pocket, ligand = _bound_frames()
+    ligand = ligand.copy()
+    ligand[70, 1, 2] = np.nan
+    chunks = [(pocket[k:k + 64], ligand[k:k + 64]) for k in range(0, len(pocket), 64)]
+    with pytest.raises(InputError, match=r"ligand_xyz has NaN .* frame 70 \(counting all frames "
+                                         r"given\), atom 1"):
+        size_funnel(chunks=chunks)
 
 
 def test_energy_zero_inside_positive_outside():
-    o, a = np.array(PARAMS["origin"]), np.array(PARAMS["axis"])
-    inside = o + 0.3 * a
+    a = np.array(PARAMS["axis"])
+    inside = 0.3 * a
     outside = [inside + [1.5, 0, 0],        # beside the cone
-               o - 1.0 * a,                 # below z_min
-               o + 3.0 * a]                 # above z_max
+               -1.0 * a,                    # below the lower wall
+               3.0 * a]                     # above the upper wall
     e_in, g_in = funnel_energy(inside, PARAMS, 500.0)
     assert e_in == 0.0 and np.all(g_in == 0.0)
     e_out, _ = funnel_energy(np.array(outside), PARAMS, 500.0)
@@ -96,8 +137,7 @@ def test_energy_zero_inside_positive_outside():
 def test_gradient_matches_finite_differences():
     rng = np.random.default_rng(2)
     a = np.array(PARAMS["axis"])
-    pts = np.array(PARAMS["origin"]) + rng.uniform(-1.5, 3.0, size=(40, 1)) * a \
-        + rng.normal(0, 0.8, size=(40, 3))
+    pts = rng.uniform(-1.5, 3.0, size=(40, 1)) * a + rng.normal(0, 0.8, size=(40, 3))
     e, g = funnel_energy(pts, PARAMS, 800.0)
     assert np.count_nonzero(e > 0) > 10
     h = 1e-6
@@ -113,19 +153,32 @@ def test_gradient_matches_finite_differences():
 
 @pytest.mark.parametrize("edge", [-1, 1])
 def test_energy_and_gradient_continuous_at_cone_cylinder_junction(edge):
-    o, a = np.array(PARAMS["origin"]), np.array(PARAMS["axis"])
+    a = np.array(PARAMS["axis"])
     perp = np.array([1.0, 0.0, 0.0])
-    z0 = PARAMS["z_cc"] + edge * PARAMS["blend"]
+    z0 = PARAMS["cone_end_z_nm"] + edge * PARAMS["blend_half_width_nm"]
     eps = 1e-9
-    pts = np.array([o + (z0 - eps) * a + 0.9 * perp, o + (z0 + eps) * a + 0.9 * perp])
+    pts = np.array([(z0 - eps) * a + 0.9 * perp, (z0 + eps) * a + 0.9 * perp])
     e, g = funnel_energy(pts, PARAMS, 1000.0)
     assert e[0] > 0 and abs(e[0] - e[1]) < 1e-5
     np.testing.assert_allclose(g[0], g[1], atol=1e-4)
+
+
+def test_reach_is_the_farthest_point_of_the_funnel_surface():
+    # brute force over the outline: walls' rims and the radius profile
+    reach, _ = funnel_reach(PARAMS)
+    z = np.linspace(PARAMS["lower_wall_z_nm"], PARAMS["upper_wall_z_nm"], 20001)
+    R, _ = funnel_radius(z, PARAMS)
+    assert np.isclose(reach, np.hypot(z, R).max(), rtol=1e-9)
+    steep = dict(PARAMS, lower_wall_z_nm=-2.0, upper_wall_z_nm=1.2)
+    reach, where = funnel_reach(steep)
+    z = np.linspace(-2.0, 1.2, 20001)
+    assert where == "lower wall" and np.isclose(reach, np.hypot(z, funnel_radius(z, steep)[0]).max())
 
 
 def test_plot_funnel_writes_png(tmp_path):
     pytest.importorskip("matplotlib")
     pocket, ligand = _bound_frames()
     out = size_funnel(pocket, ligand)
-    path = plot_funnel(out, ligand.mean(axis=1), tmp_path / "funnel.png")
+    path = plot_funnel(out, tmp_path / "funnel.png")
     assert open(path, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
+    assert [p.name for p in tmp_path.iterdir()] == ["funnel.png"]

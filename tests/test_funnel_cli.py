@@ -2,12 +2,13 @@
 
 import json
 
+import mdtraj as md
 import numpy as np
 import pytest
 
 from cvdesign import load_spec
 from cvdesign.cli import main
-from cvdesign.funnel import funnel_energy
+from cvdesign.funnel import SHAPE_KEYS, align_to_reference_pocket, funnel_energy
 from cvdesign.testbed.host_guest import write_host_guest
 
 
@@ -16,39 +17,92 @@ def host_guest(tmp_path_factory):
     return write_host_guest(tmp_path_factory.mktemp("hg"))
 
 
+@pytest.fixture(scope="module")
+def tumbled(tmp_path_factory):
+    """The same runs, every frame turned and moved at random and wrapped into a 6 nm box."""
+    return write_host_guest(tmp_path_factory.mktemp("hg-tumbled"), tumble=True, box_nm=6.0)
+
+
+def _run(data, out, *extra):
+    return main(["funnel", "--topology", data.topology, "--bound", *data.paths,
+                 "--ligand", data.ligand_selection, "--pocket", data.pocket_selection,
+                 "--out", str(out), *extra])
+
+
+def _frames(data):
+    traj = md.join([md.load(p, top=data.topology) for p in data.paths])
+    box = None if traj.unitcell_vectors is None else traj.unitcell_vectors.astype(np.float64)
+    return traj.xyz.astype(np.float64), box
+
+
 def test_funnel_command_writes_parameters_that_keep_the_bound_ligand_inside(host_guest,
                                                                           tmp_path, capsys):
-    import mdtraj as md
-
     out = tmp_path / "funnel.json"
-    assert main(["funnel", "--topology", host_guest.topology, "--bound", *host_guest.paths,
-                 "--ligand", "resname GST", "--pocket", "resname HST", "--out", str(out)]) == 0
+    assert _run(host_guest, out) == 0
     text = capsys.readouterr().out
     assert "cone half-angle" in text and "not guarantees" in text
+    assert "hold the pocket in this orientation" in text and "warning:" not in text
     spec = load_spec(out, topology=md.load_topology(host_guest.topology))
     (funnel,) = spec.restraints
-    assert funnel["kind"] == "funnel" and funnel["k_wall"] == 2000.0
-    # every bound frame sits inside the funnel: the restraint's energy is exactly 0
-    xyz = np.concatenate([md.load(p, top=host_guest.topology).xyz for p in host_guest.paths])
-    energy, grad = spec.restraint_energy(xyz, gradient=True)
-    assert np.all(energy == 0.0) and np.all(grad == 0.0)
-    # the stored CV is the distance between the centres, its bound statistics match
+    assert funnel["kind"] == "funnel" and funnel["wall_force_constant_kj_mol_nm2"] == 2000.0
+    xyz, box = _frames(host_guest)
     lig, pocket = funnel["groups"]
+    # the reference pocket is the first bound frame's pocket, centred
+    first = xyz[0, pocket]
+    np.testing.assert_allclose(funnel["reference_pocket_nm"], first - first.mean(axis=0),
+                               atol=1e-9)
+    # every bound frame, its pocket held in the reference orientation, sits inside the funnel
+    aligned, _ = align_to_reference_pocket(xyz, pocket, funnel["reference_pocket_nm"])
+    energy, grad = spec.restraint_energy(aligned, gradient=True)
+    assert np.all(energy == 0.0) and np.all(grad == 0.0)
+    # the same restraint through the sizing module's own energy, at the aligned vectors
+    d = aligned[:, lig].mean(axis=1) - aligned[:, pocket].mean(axis=1)
+    energy2, _ = funnel_energy(d, funnel, 1000.0)
+    assert np.all(energy2 == 0.0)
+    # the stored CV is the distance between the centres, its bound statistics match
     dist = np.linalg.norm(xyz[:, lig].mean(axis=1) - xyz[:, pocket].mean(axis=1), axis=1)
     np.testing.assert_allclose(spec.evaluate(xyz), dist, rtol=1e-6)
     assert spec.states["bound"]["n_frames"] == len(xyz)
+    assert np.isclose(spec.states["bound"]["mean"], dist.mean(), rtol=1e-9)
     doc = json.loads(out.read_text())
-    assert doc["hints"]["funnel_sizing"]["reasoning"] and "not guarantees" in doc["caution"]
-    # the same restraint through the sizing module's own energy, at the ligand centres
-    params = dict(doc["hints"]["funnel_sizing"]["margins"], **{k: funnel[k] for k in (
-        "z_min", "z_max", "z_cc", "alpha", "r_cyl", "blend")})
-    params.update(origin=doc["hints"]["funnel_sizing"]["origin_nm"], axis=funnel["axis"])
-    energy2, _ = funnel_energy(xyz[:, lig].astype(np.float64).mean(axis=1), params, 1000.0)
-    assert np.all(energy2 == 0.0)
-    doc = {"params": {"axis": funnel["axis"]}}
+    sizing = doc["hints"]["funnel_sizing"]
+    assert sizing["reasoning"] and "not guarantees" in doc["caution"]
+    assert sizing["reference"] == {"file": "bound-1.xtc", "frame": 0,
+                                   "pocket_center_nm": pytest.approx(first.mean(axis=0).tolist())}
     # Axis within 15 degrees of the cavity axis known by construction.
-    cos = abs(np.dot(doc["params"]["axis"], host_guest.cavity_axis))
+    cos = abs(np.dot(funnel["axis"], host_guest.cavity_axis))
     assert cos > np.cos(np.radians(15))
+
+
+def test_funnel_command_gives_the_same_funnel_when_the_complex_tumbles_in_a_box(
+        host_guest, tumbled, tmp_path, capsys):
+    plain, moved = tmp_path / "plain.json", tmp_path / "tumbled.json"
+    assert _run(host_guest, plain) == 0 and _run(tumbled, moved) == 0
+    capsys.readouterr()
+    a = json.loads(plain.read_text())["restraints"][0]
+    b = json.loads(moved.read_text())["restraints"][0]
+    # XTC stores coordinates to 0.001 nm, so the turned frames differ by that much
+    for key in SHAPE_KEYS:
+        assert np.isclose(a[key], b[key], rtol=0.01), key
+    # the complex is split across the boundary in many frames, yet every aligned frame is inside
+    xyz, box = _frames(tumbled)
+    lig, pocket = b["groups"]
+    assert np.mean(np.ptp(xyz[:, pocket], axis=1).max(axis=1) > 3.0) > 0.1
+    spec = load_spec(moved)
+    aligned, aligned_box = align_to_reference_pocket(xyz, pocket, b["reference_pocket_nm"], box)
+    assert np.all(spec.restraint_energy(aligned, box=aligned_box) == 0.0)
+
+
+def test_funnel_command_warns_when_the_funnel_reaches_beyond_half_the_box(tmp_path, capsys):
+    data = write_host_guest(tmp_path / "hg", n_runs=1, n_frames=60, box_nm=4.0)
+    out = tmp_path / "f.json"
+    assert _run(data, out) == 0
+    text = capsys.readouterr().out
+    assert "warning: the funnel reaches" in text
+    assert "beyond half the smallest box height of the bound frames (2.000 nm)" in text
+    sizing = json.loads(out.read_text())["hints"]["funnel_sizing"]
+    assert any("beyond half the smallest box height" in w for w in sizing["warnings"])
+    assert any(r.startswith("WARNING: the funnel reaches") for r in sizing["reasoning"])
 
 
 def test_funnel_command_refuses_overlapping_selections(host_guest, tmp_path, capsys):
@@ -57,3 +111,12 @@ def test_funnel_command_refuses_overlapping_selections(host_guest, tmp_path, cap
                  "--ligand", "resname GST", "--pocket", "all", "--out", str(out)]) == 2
     assert "share atoms" in capsys.readouterr().err
     assert not out.exists()
+
+
+def test_funnel_command_replaces_its_own_output_with_force(host_guest, tmp_path, capsys):
+    out, plot = tmp_path / "f.json", tmp_path / "f.svg"
+    out.write_text("old")
+    plot.write_text("old")
+    assert _run(host_guest, out, "--plot", str(plot), "--force") == 0
+    assert load_spec(out).restraints and plot.read_text().lstrip().startswith("<?xml")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["f.json", "f.svg"]

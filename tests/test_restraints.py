@@ -13,9 +13,12 @@ from cvdesign.funnel import funnel_radius
 N_ATOMS = 7
 LIGAND, POCKET = [5, 6], [0, 1, 2, 3]
 AXIS = [0.0, 0.0, 1.0]
+REFERENCE = [[0.3, 0.0, 0.0], [-0.3, 0.0, 0.0], [0.0, 0.3, 0.0], [0.0, -0.3, 0.0]]
 FUNNEL = {"id": "funnel", "kind": "funnel", "groups": [LIGAND, POCKET], "axis": AXIS,
-          "z_min": -0.2, "z_max": 2.0, "z_cc": 0.8, "alpha": 0.6, "r_cyl": 0.25, "blend": 0.1,
-          "k_wall": 1500.0}
+          "reference_pocket_nm": REFERENCE, "lower_wall_z_nm": -0.2, "upper_wall_z_nm": 2.0,
+          "cone_end_z_nm": 0.8, "cone_half_angle_rad": 0.6, "cylinder_radius_nm": 0.25,
+          "blend_half_width_nm": 0.1, "wall_force_constant_kj_mol_nm2": 1500.0}
+K_WALL = FUNNEL["wall_force_constant_kj_mol_nm2"]
 
 
 def _topology():
@@ -51,7 +54,7 @@ def _frames(rng, n_frames, ligand_center):
 
 def _regimes():
     """Ligand centres outside the funnel in each regime: cone wall, junction, cylinder,
-    below z_min, above z_max; and one inside."""
+    below the lower wall, above the upper wall; and one inside."""
     return np.array([[0.9, 0.2, 0.2], [0.0, 0.45, 0.8], [0.4, 0.1, 1.5], [0.05, 0.0, -0.35],
                      [0.0, 0.1, 2.2], [0.0, 0.05, 0.3]])
 
@@ -95,9 +98,9 @@ def test_funnel_energy_follows_the_documented_formula():
     d = centres - xyz[:, POCKET].mean(axis=1)
     z, r = d[:, 2], np.hypot(d[:, 0], d[:, 1])
     R, _ = funnel_radius(z, FUNNEL)
-    expected = 0.5 * FUNNEL["k_wall"] * (np.maximum(r - R, 0) ** 2
-                                         + np.maximum(FUNNEL["z_min"] - z, 0) ** 2
-                                         + np.maximum(z - FUNNEL["z_max"], 0) ** 2)
+    expected = 0.5 * K_WALL * (np.maximum(r - R, 0) ** 2
+                               + np.maximum(FUNNEL["lower_wall_z_nm"] - z, 0) ** 2
+                               + np.maximum(z - FUNNEL["upper_wall_z_nm"], 0) ** 2)
     np.testing.assert_allclose(spec.restraint_energy(xyz), expected, rtol=1e-12)
 
 
@@ -139,11 +142,21 @@ def test_restraints_survive_a_round_trip_and_take_identities_from_the_topology()
     ({"groups": [[5, 6], [0, 1, 5]]}, r"\$\.restraints\[0\]\.groups", "must not share atoms"),
     ({"groups": [[5, 7], [0, 1]]}, r"\$\.restraints\[0\]\.groups\[0\]\[1\]", "out of range"),
     ({"axis": [0.0, 0.0, 2.0]}, r"\$\.restraints\[0\]\.axis", "unit vector"),
-    ({"z_cc": 2.5}, r"\$\.restraints\[0\]\.z_cc", "z_min < z_cc < z_max"),
-    ({"alpha": math.pi / 2}, r"\$\.restraints\[0\]\.alpha", "below pi/2"),
-    ({"k_wall": 0.0}, r"\$\.restraints\[0\]\.k_wall", ""),
+    ({"cone_end_z_nm": 2.5}, r"\$\.restraints\[0\]\.cone_end_z_nm",
+     "lower_wall_z_nm < cone_end_z_nm < upper_wall_z_nm"),
+    ({"cone_half_angle_rad": math.pi / 2}, r"\$\.restraints\[0\]\.cone_half_angle_rad",
+     "below pi/2"),
+    ({"wall_force_constant_kj_mol_nm2": 0.0},
+     r"\$\.restraints\[0\]\.wall_force_constant_kj_mol_nm2", ""),
     ({"kind": "wall"}, r"\$\.restraints\[0\]\.kind", ""),
-    ({"r_cyl": float("nan")}, r"\$\.restraints\[0\]\.r_cyl", "NaN"),
+    ({"cylinder_radius_nm": float("nan")}, r"\$\.restraints\[0\]\.cylinder_radius_nm", "NaN"),
+    ({"reference_pocket_nm": REFERENCE[:3]}, r"\$\.restraints\[0\]\.reference_pocket_nm",
+     "has 3 rows but the pocket \\(groups\\[1\\]\\) has 4 atoms"),
+    ({"reference_pocket_nm": [[x + 1.0, y, z] for x, y, z in REFERENCE]},
+     r"\$\.restraints\[0\]\.reference_pocket_nm", "must be centred"),
+    ({"reference_pocket_nm": [[-0.3, 0, 0], [-0.1, 0, 0], [0.1, 0, 0], [0.3, 0, 0]]},
+     r"\$\.restraints\[0\]\.reference_pocket_nm", "does not fix an orientation"),
+    ({"z_cc": 0.8}, r"\$\.restraints\[0\]", "z_cc"),
 ])
 def test_bad_funnels_are_refused_with_their_json_path(change, path, message):
     doc = _spec().to_dict()
@@ -175,3 +188,13 @@ def test_check_topology_names_a_restraint_atom_that_differs():
     with pytest.raises(TopologyMismatchError, match=r"\$\.restraints\[0\]\.atom_identities\[0\]"
                                                     r"\[1\].*used by restraint 'funnel'"):
         spec.check_topology(top)
+
+
+def test_schema_restraint_fields_are_the_funnel_module_keys():
+    from cvdesign.funnel import SHAPE_KEYS
+    from cvdesign.spec import spec_schema
+
+    restraint = spec_schema()["$defs"]["restraint"]
+    expected = {"id", "kind", "label", "groups", "atom_identities", "axis", "reference_pocket_nm",
+                "wall_force_constant_kj_mol_nm2", *SHAPE_KEYS}
+    assert set(restraint["properties"]) == expected == set(restraint["required"])

@@ -63,8 +63,11 @@ def _base_documents():
         terms=[{"descriptor": "psi", "transform": "identity", "center": 0.0, "scale": 1.0, "weight": 1.0}],
         periodic=True,
         restraints=[{"id": "funnel", "kind": "funnel", "groups": [[8, 9, 10, 11], [0, 1, 2, 3]],
-                     "axis": [0.0, 0.6, 0.8], "z_min": -0.2, "z_max": 2.0, "z_cc": 0.8,
-                     "alpha": 0.6, "r_cyl": 0.25, "blend": 0.1, "k_wall": 1500.0}],
+                     "axis": [0.0, 0.6, 0.8],
+                     "reference_pocket_nm": [[0.2, 0, 0], [-0.2, 0, 0], [0, 0.2, 0], [0, -0.2, 0]],
+                     "lower_wall_z_nm": -0.2, "upper_wall_z_nm": 2.0, "cone_end_z_nm": 0.8,
+                     "cone_half_angle_rad": 0.6, "cylinder_radius_nm": 0.25,
+                     "blend_half_width_nm": 0.1, "wall_force_constant_kj_mol_nm2": 1500.0}],
     )
     return [combination.to_dict(), periodic.to_dict()]
 
@@ -121,7 +124,8 @@ def _mutate(doc, data):
         del node[key]
     elif operation == "add_key" and isinstance(node, dict):
         node[data.draw(st.sampled_from(["extra", "atoms", "groups", "masses", "r0", "n", "m", "weighting",
-                                        "period", "kind", "id", "axis", "k_wall", "restraints", ""]))] = data.draw(VALUES)
+                                        "period", "kind", "id", "axis", "reference_pocket_nm",
+                                        "wall_force_constant_kj_mol_nm2", "restraints", ""]))] = data.draw(VALUES)
     elif operation == "empty":
         value = node[key]
         node[key] = type(value)() if isinstance(value, (list, dict, str)) else None

@@ -10,6 +10,12 @@ centre and a site on the cavity axis, and kept off the host walls by the
 repulsive pair term of :class:`~cvdesign.testbed.ToyForceField`. Only the
 bound state is simulated.
 
+Optionally the written frames imitate a run without fitting in a periodic box:
+``tumble=True`` rotates and translates the whole system of every frame
+independently at random (after the simulation, so the dynamics are those of
+the plain run), and ``box_nm`` writes a cubic box and wraps every atom into it,
+so the complex is split across the boundary in many frames.
+
 All runs of one call are walkers of one seeded
 :class:`~cvdesign.testbed.LangevinBAOAB`, so the same arguments give the same
 bytes (same platform and library versions).
@@ -168,6 +174,10 @@ class HostGuestData:
         Time between frames, ps.
     n_frames : int
         Frames per run.
+    box_nm : float or None
+        Edge of the cubic periodic box written with the frames, nm (None: no box).
+    tumbled : bool
+        Whether every frame was rotated and translated as a whole at random.
     """
 
     topology: str
@@ -179,10 +189,13 @@ class HostGuestData:
     pocket_selection: str
     timestep_ps: float
     n_frames: int
+    box_nm: float | None = None
+    tumbled: bool = False
 
 
 def write_host_guest(out_dir, *, seed=11, n_runs=2, n_frames=400, report_interval=10,
-                     timestep=0.002, temperature=300.0, friction=5.0, equilibration_steps=500):
+                     timestep=0.002, temperature=300.0, friction=5.0, equilibration_steps=500,
+                     tumble=False, box_nm=None):
     """Simulate the bound host-guest toy and write ``host_guest.pdb`` and ``bound-<i>.xtc``.
 
     Parameters
@@ -205,6 +218,14 @@ def write_host_guest(out_dir, *, seed=11, n_runs=2, n_frames=400, report_interva
         1/ps.
     equilibration_steps : int, default=500
         Steps before recording.
+    tumble : bool, default=False
+        Rotate (uniformly at random) and translate (uniformly within the box,
+        or within 5 nm without one) the whole system of every written frame
+        independently, from a generator seeded with `seed` of its own, as in a
+        run where the complex drifts and turns. The first frame is turned too.
+    box_nm : float, optional
+        Edge of a cubic periodic box, nm: written with every frame, and every
+        atom wrapped into ``[0, box_nm)``.
 
     Returns
     -------
@@ -246,18 +267,49 @@ def write_host_guest(out_dir, *, seed=11, n_runs=2, n_frames=400, report_interva
     if off.max() > 0.45:
         raise RuntimeError(f"guest left the cavity (max {off.max():.2f} nm from the site, "
                            f"seed={seed!r}); try another seed")
+    if box_nm is not None and not (np.isfinite(box_nm) and box_nm > 0):
+        raise ValueError(f"box_nm={box_nm!r} must be a positive box edge in nm")
+    if tumble:
+        xyz = _tumble(xyz, seed, 5.0 if box_nm is None else float(box_nm))
+    if box_nm is not None:
+        xyz = xyz - box_nm * np.floor(xyz / box_nm)
     pdb = out_dir / "host_guest.pdb"
     write_pdb(pdb, top, x0, title="host-guest toy (cvdesign testbed), bound")
     paths = []
     for w in range(int(n_runs)):
         path = out_dir / f"bound-{w + 1}.xtc"
+        traj = md.Trajectory(xyz[:, w].astype(np.float32), top, time=times)
+        if box_nm is not None:
+            traj.unitcell_vectors = np.tile(np.eye(3, dtype=np.float32) * np.float32(box_nm),
+                                            (traj.n_frames, 1, 1))
         with atomic_path(path) as tmp:
-            md.Trajectory(xyz[:, w].astype(np.float32), top, time=times).save_xtc(
-                tmp, force_overwrite=True)
+            traj.save_xtc(tmp, force_overwrite=True)
         paths.append(str(path))
     return HostGuestData(
         topology=str(pdb), paths=paths,
         ligand_atoms=tuple(range(_N_HOST, _N_HOST + _N_GUEST)),
         pocket_atoms=tuple(range(_N_HOST)), cavity_axis=(0.0, 0.0, 1.0),
         ligand_selection="resname GST", pocket_selection="resname HST",
-        timestep_ps=round(frame_dt, 12), n_frames=int(n_frames))
+        timestep_ps=round(frame_dt, 12), n_frames=int(n_frames),
+        box_nm=None if box_nm is None else float(box_nm), tumbled=bool(tumble))
+
+
+def _tumble(xyz, seed, span):
+    """Every frame and walker of (n_frames, n_walkers, n_atoms, 3) turned and moved as a whole.
+
+    Rotations are uniform (a normalized 4-D Gaussian read as a unit quaternion; Shoemake,
+    1992, "Uniform random rotations", Graphics Gems III; from memory), about the centre of
+    the system, followed by a translation uniform in ``[0, span)`` per axis.
+    """
+    rng = np.random.default_rng([int(seed), 1])
+    n_frames, n_walkers = xyz.shape[:2]
+    q = rng.normal(size=(n_frames, n_walkers, 4))
+    w, x, y, z = np.moveaxis(q / np.linalg.norm(q, axis=-1, keepdims=True), -1, 0)
+    rot = np.stack([
+        np.stack([1 - 2 * (y * y + z * z), 2 * (x * y - z * w), 2 * (x * z + y * w)], -1),
+        np.stack([2 * (x * y + z * w), 1 - 2 * (x * x + z * z), 2 * (y * z - x * w)], -1),
+        np.stack([2 * (x * z - y * w), 2 * (y * z + x * w), 1 - 2 * (x * x + y * y)], -1),
+    ], -2)
+    centre = xyz.mean(axis=2, keepdims=True)
+    shift = rng.uniform(0.0, span, size=(n_frames, n_walkers, 1, 3))
+    return np.einsum("fwaj,fwkj->fwak", xyz - centre, rot) + shift

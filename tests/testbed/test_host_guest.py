@@ -7,7 +7,7 @@ import mdtraj as md
 import numpy as np
 import pytest
 
-from cvdesign.funnel import funnel_energy, size_funnel
+from cvdesign.funnel import align_to_reference_pocket, funnel_energy, size_funnel
 from cvdesign.testbed.host_guest import binding_term, host_guest_system, write_host_guest
 
 
@@ -69,8 +69,34 @@ def test_recovered_axis_within_15_degrees_without_exit_point(data):
 
 def test_axis_exact_with_exit_point_and_positions_inside(data):
     pocket, ligand = _frames(data)
-    origin = pocket.mean(axis=1).mean(axis=0)
+    origin = pocket[0].mean(axis=0)        # the exit point is taken in the first frame
     out = size_funnel(pocket, ligand, exit_point=origin + 2.0 * np.array(data.cavity_axis))
     np.testing.assert_allclose(out["params"]["axis"], data.cavity_axis, atol=1e-12)
-    e, _ = funnel_energy(ligand.mean(axis=1), out["params"], 1000.0)
+    xyz = np.concatenate([pocket, ligand], axis=1)
+    n_p = pocket.shape[1]
+    aligned, _ = align_to_reference_pocket(xyz, range(n_p), out["reference_pocket_nm"])
+    d = aligned[:, n_p:].mean(axis=1) - aligned[:, :n_p].mean(axis=1)
+    e, _ = funnel_energy(d, out["params"], 1000.0)
     assert np.all(e == 0.0)
+
+
+def test_tumbled_boxed_frames_are_rigid_motions_of_the_plain_ones(data, tmp_path):
+    moved = write_host_guest(tmp_path, tumble=True, box_nm=5.0)
+    assert moved.tumbled and moved.box_nm == 5.0
+    traj = md.join([md.load(p, top=moved.topology) for p in moved.paths])
+    np.testing.assert_allclose(traj.unitcell_lengths, 5.0)
+    x = traj.xyz.astype(np.float64)
+    assert x.min() >= 0.0 and x.max() < 5.0 + 1e-3              # wrapped into the box
+    plain = np.concatenate(_frames(data), axis=1)
+    # every pair distance (minimum image) is that of the plain run, to XTC precision
+    pairs = np.array([(i, j) for i in range(16) for j in range(i + 1, 16)])
+    dr = x[:, pairs[:, 1]] - x[:, pairs[:, 0]]
+    dr -= 5.0 * np.round(dr / 5.0)
+    ref = plain[:, pairs[:, 1]] - plain[:, pairs[:, 0]]
+    np.testing.assert_allclose(np.linalg.norm(dr, axis=-1), np.linalg.norm(ref, axis=-1),
+                               atol=3e-3)
+    # and the frames really were turned: the host's axis (base atom to rim) points anywhere
+    up = x[:, 7:13] - x[:, :1]
+    up = (up - 5.0 * np.round(up / 5.0)).mean(axis=1)
+    up /= np.linalg.norm(up, axis=1, keepdims=True)
+    assert np.abs(up.mean(axis=0)).max() < 0.2 and up[:, 2].min() < -0.9
