@@ -6,7 +6,8 @@ import shutil
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_write_text", "atomic_open", "atomic_path", "atomic_paths", "prepare_output_dir",
+__all__ = ["atomic_write_text", "atomic_open", "atomic_path", "atomic_paths",
+           "check_output_file", "prepare_output_dir",
            "write_dir_atomically"]
 
 
@@ -87,9 +88,87 @@ def prepare_output_dir(out_dir, *, force=False, inputs=(), marker=None, option="
                 raise InputError(f"output directory {str(out_dir)!r} is not empty and was not "
                                  f"written by cvdesign (no {marker}); --force only replaces "
                                  "an earlier cvdesign output. Choose another name")
-    if not resolved.parent.exists():
-        raise InputError(f"the parent directory of {option} {str(out_dir)!r} does not exist")
+    _check_parent(resolved.parent, out_dir, option)
     return out_dir
+
+
+def _check_parent(parent, out, option):
+    """Refuse an output whose directory is missing, not a directory, or not writable."""
+    from .errors import InputError
+
+    if not parent.exists():
+        raise InputError(f"the directory of {option} {str(out)!r} ({str(parent)!r}) does not "
+                         "exist; create it first or choose another place")
+    if not parent.is_dir():
+        raise InputError(f"cannot write {option} {str(out)!r}: {str(parent)!r} is a file, not a "
+                         "directory; choose another place")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise InputError(f"cannot write {option} {str(out)!r}: no permission to write in "
+                         f"{str(parent)!r}; choose a writable place")
+    try:  # permissions do not tell everything (read-only file systems, root)
+        fd, probe = tempfile.mkstemp(dir=parent, prefix=".cvdesign-", suffix=".probe")
+    except OSError as exc:
+        raise InputError(f"cannot write {option} {str(out)!r}: the directory {str(parent)!r} "
+                         f"is not writable ({exc.strerror}); choose a writable place") from None
+    os.close(fd)
+    os.unlink(probe)
+
+
+def _same_file(a, b):
+    try:
+        return os.path.samefile(a, b)
+    except OSError:
+        return Path(a).resolve() == Path(b).resolve()
+
+
+def check_output_file(path, *, force=False, inputs=(), option="--out"):
+    """Check, before any computation, that an output file may be written; return it as a Path.
+
+    Parameters
+    ----------
+    path : path-like
+        The output file.
+    force : bool, default=False
+        Allow replacing an existing regular file (never one of `inputs`).
+    inputs : sequence of path-like
+        Files the command reads; the output must not be any of them.
+    option : str, default="--out"
+        Name of the option in messages.
+
+    Raises
+    ------
+    cvdesign.errors.InputError
+        When the file may not be written, saying why and what to do.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     src = os.path.join(tmp, "run.xtc")
+    ...     open(src, "w").close()
+    ...     check_output_file(src, force=True, inputs=[src])  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: --out '...run.xtc' is one of the input files; ...
+    """
+    from .errors import InputError
+
+    path = Path(path)
+    if path.is_dir():
+        raise InputError(f"{option} {str(path)!r} is a directory; give a file name")
+    for given in inputs:
+        if Path(given).exists() and path.exists() and _same_file(path, given):
+            raise InputError(f"{option} {str(path)!r} is one of the input files; writing it "
+                             "would replace that input. Give a new name")
+    if path.exists() or path.is_symlink():
+        if not path.is_file():
+            raise InputError(f"{option} {str(path)!r} exists and is not a regular file; "
+                             "choose another name")
+        if not force:
+            raise InputError(f"{option} {str(path)!r} already exists; choose another name, or "
+                             "pass --force to replace it")
+    _check_parent(path.resolve().parent, path, option)
+    return path
 
 
 def write_dir_atomically(out_dir, files, *, option="--out"):

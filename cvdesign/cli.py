@@ -49,8 +49,12 @@ def _positive_float(text):
         v = float(text)
     except ValueError:
         raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if math.isnan(v):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number; give a positive number")
     if not v > 0:
         raise argparse.ArgumentTypeError(f"{text!r} must be positive")
+    if not math.isfinite(v):
+        raise argparse.ArgumentTypeError(f"{text!r} must be a finite positive number")
     return v
 
 
@@ -184,7 +188,10 @@ def build_parser():
     p.add_argument("trajectories", nargs="+", metavar="TRAJ",
                    help="trajectory files (any format mdtraj reads); coordinates in nm")
     p.add_argument("--out", metavar="FILE.csv", default=None,
-                   help="write the CSV here instead of standard output")
+                   help="write the CSV here instead of standard output; an existing file is "
+                        "kept unless --force, and an input file is never replaced")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing --out file (never one of the inputs)")
 
     p = sub.add_parser(
         "check", help="validate a spec against a topology, and an engine's values against it",
@@ -197,10 +204,16 @@ def build_parser():
     p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json)")
     p.add_argument("--topology", required=True, metavar="TOP",
                    help="topology file the spec must match")
-    p.add_argument("--against", nargs=2, action="append", metavar=("VALUES.csv", "TRAJ"),
-                   help="CV values computed elsewhere (CSV: a 'value' column, optionally with "
-                        "'frame', as 'cvdesign apply' writes; or one number per line) and the "
-                        "trajectory they were computed on; repeat for several trajectories")
+    p.add_argument("--against", nargs=2, action="append", metavar=("VALUES", "TRAJ"),
+                   help="CV values computed elsewhere and the trajectory they were computed "
+                        "on; repeat for several trajectories. VALUES is a CSV (a 'value' "
+                        "column, optionally 'frame', as 'cvdesign apply' writes) or "
+                        "whitespace-separated columns; lines starting with '#' or '@' are "
+                        "comments. With several columns and none named 'value', say which "
+                        "holds the CV with --column")
+    p.add_argument("--column", metavar="N|NAME", default=None,
+                   help="the column of the VALUES files that holds the CV: a number counted "
+                        "from 1, or a name from a header line")
     p.add_argument("--tolerance", type=_positive_float, default=None, metavar="TOL",
                    help="largest accepted |deviation|, in the CV's units (default: 1e-3 times "
                         "the largest within-state spread stored in the spec)")
@@ -361,23 +374,17 @@ def _cmd_suggest(args):
 
 
 def _cmd_apply(args):
-    from ._io import atomic_open
+    from ._io import atomic_open, check_output_file
     from .source import Source, stores_time
     from .spec import load_spec
 
+    if args.out is not None:
+        check_output_file(args.out, force=args.force,
+                          inputs=args.trajectories + [args.spec, args.topology])
     source = Source(args.topology)
     spec = load_spec(args.spec, topology=source.topology)
     for f in args.trajectories:
         source.add(f, state="all")
-    if args.out is not None:
-        out = Path(args.out)
-        if out.is_dir():
-            raise InputError(f"--out {args.out!r} is a directory; give a file name")
-        if not out.resolve().parent.exists():
-            raise InputError(f"the directory of --out {args.out!r} does not exist")
-        if any(out.resolve() == Path(p).resolve() for p in args.trajectories + [args.spec,
-                                                                                  args.topology]):
-            raise InputError(f"--out {args.out!r} is one of the input files; give a new name")
 
     def rows(fh):
         w = csv.writer(fh, lineterminator="\n")
@@ -401,43 +408,117 @@ def _cmd_apply(args):
     return 0
 
 
-def _read_values(path):
-    """(frames or None, values) from a CSV of CV values, with a clear error on bad input."""
-    path = Path(path)
-    if not path.is_file():
-        raise InputError(f"values file {str(path)!r} does not exist; check the path")
-    text = path.read_text(encoding="utf-8", errors="replace")
-    rows = [r for r in csv.reader(io.StringIO(text)) if r and any(c.strip() for c in r)]
-    if not rows:
-        raise InputError(f"values file {str(path)!r} is empty")
-    header = [c.strip().lower() for c in rows[0]]
-    frames = None
+#: Header names of a first column that numbers frames or times rather than holding the CV.
+_INDEX_COLUMNS = ("frame", "index", "idx", "step", "time")
+
+
+def _is_number(text):
     try:
-        if "value" in header:
-            vi = header.index("value")
-            fi = header.index("frame") if "frame" in header else None
-            body = rows[1:]
-            values = [float(r[vi]) for r in body]
-            if fi is not None:
-                frames = [int(r[fi]) for r in body]
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _looks_like_index(name, cells):
+    """True when a column is named like a frame index or time, or counts 0, 1, 2, ..."""
+    if name is not None:
+        word = name.strip().lower()
+        if any(word == w or word.startswith(w + "_") or word.startswith(w + " ")
+               for w in _INDEX_COLUMNS):
+            return True
+    try:
+        numbers = [float(c) for c in cells]
+    except ValueError:
+        return False
+    return len(numbers) > 1 and numbers == list(range(len(numbers)))
+
+
+def _read_values(path, column=None):
+    """(frames or None, values) from a file of CV values, with a clear error on bad input.
+
+    The file is a CSV (comma-separated) or whitespace-separated columns, with
+    an optional header line; blank lines and lines starting with ``#`` or ``@``
+    are skipped. `column` is a 1-based number or a header name; by default the
+    'value' column, or the only column. A 'frame' column, when present, says
+    which frame each value belongs to.
+    """
+    path = Path(path)
+    name = str(path)
+    if not path.is_file():
+        raise InputError(f"values file {name!r} does not exist; check the path")
+    text = path.read_text(encoding="utf-8", errors="replace")
+    lines = [(n, line.strip()) for n, line in enumerate(text.splitlines(), 1)]
+    lines = [(n, t) for n, t in lines if t and t[0] not in "#@"]
+    if not lines:
+        raise InputError(f"values file {name!r} holds no values (only blank or comment lines)")
+    if "," in lines[0][1]:
+        table = [(n, [c.strip() for c in next(csv.reader([t]))]) for n, t in lines]
+    else:
+        table = [(n, t.split()) for n, t in lines]
+    header = None
+    if not all(_is_number(c) for c in table[0][1]):
+        header, table = table[0][1], table[1:]
+    if not table:
+        raise InputError(f"values file {name!r} holds a header line and no values")
+    width = len(header) if header is not None else len(table[0][1])
+    lower = [h.strip().lower() for h in header] if header is not None else None
+    names = ", ".join(repr(h) for h in header) if header is not None else ""
+    shown = f" ({names})" if header is not None else ""
+    if column is not None:
+        column = str(column).strip()
+        if column.isdigit():
+            k = int(column) - 1
+            if k < 0:
+                raise InputError(f"--column {column} is not a column; columns count from 1")
+            if k >= width:
+                raise InputError(f"--column {column}: values file {name!r} has {width} "
+                                 f"column{'s' if width > 1 else ''}{shown}")
+        elif lower is None:
+            raise InputError(f"--column {column!r} names a column, but values file {name!r} has "
+                             "no header line; give the column number, counted from 1")
+        elif column.lower() not in lower:
+            raise InputError(f"--column {column!r}: values file {name!r} has no column of that "
+                             f"name; its columns are {names}")
         else:
-            start = 0
+            k = lower.index(column.lower())
+    elif lower is not None and "value" in lower:
+        k = lower.index("value")
+    elif width == 1:
+        k = 0
+    else:
+        first = header[0] if header is not None else None
+        why = (" (the first column looks like a frame index or a time, not the CV)"
+               if _looks_like_index(first, [cells[0] for _, cells in table if cells]) else "")
+        what = (f"{width} columns{shown} and none is named 'value'" if header is not None
+                else f"{width} columns and no header line naming a 'value' column")
+        raise InputError(f"values file {name!r} has {what}{why}; say which column holds the CV "
+                         "with --column N (counted from 1) or --column NAME")
+    fi = lower.index("frame") if lower is not None and "frame" in lower else None
+    if fi == k:
+        fi = None
+    values, frames = [], []
+    for n, cells in table:
+        if len(cells) <= max(k, -1 if fi is None else fi):
+            raise InputError(f"values file {name!r}, line {n}: {len(cells)} column"
+                             f"{'s' if len(cells) != 1 else ''}, but column {k + 1} holds the "
+                             "values; give the same columns on every line")
+        try:
+            v = float(cells[k])
+        except ValueError:
+            raise InputError(f"values file {name!r}, line {n}, column {k + 1}: {cells[k]!r} is "
+                             "not a number") from None
+        if not math.isfinite(v):
+            raise InputError(f"values file {name!r}, line {n}: value {cells[k]!r} is not a "
+                             "finite number")
+        values.append(v)
+        if fi is not None:
             try:
-                float(rows[0][0])
+                frames.append(int(cells[fi]))
             except ValueError:
-                start = 1  # a header line without a 'value' column
-            values = [float(r[0]) for r in rows[start:]]
-    except (ValueError, IndexError) as exc:
-        raise InputError(f"values file {str(path)!r}: cannot read a number on some line "
-                         f"({exc}); give a CSV with a 'value' column or one number per "
-                         "line") from None
-    if not values:
-        raise InputError(f"values file {str(path)!r} holds no values")
-    values = np.asarray(values, dtype=np.float64)
-    if not np.all(np.isfinite(values)):
-        bad = int(np.flatnonzero(~np.isfinite(values))[0])
-        raise InputError(f"values file {str(path)!r}: value {bad} is not a finite number")
-    return (None if frames is None else np.asarray(frames)), values
+                raise InputError(f"values file {name!r}, line {n}: frame {cells[fi]!r} is not "
+                                 "a whole number") from None
+    return (np.asarray(frames) if fi is not None else None), np.asarray(values, dtype=np.float64)
 
 
 def _cmd_check(args):
@@ -449,13 +530,16 @@ def _cmd_check(args):
     print(f"{args.spec}: valid spec, matches topology {args.topology} "
           f"({source.topology.n_atoms} atoms)")
     if not args.against:
+        if args.column is not None:
+            raise InputError("--column goes with --against VALUES TRAJ: it says which column of "
+                             "the values files holds the CV")
         return 0
     spreads = [v["std"] for v in spec.states.values() if v.get("std")]
     tol = args.tolerance if args.tolerance is not None else 1e-3 * (max(spreads) if spreads
                                                                     else 1.0)
     worst_all = 0.0
     for values_path, traj in args.against:
-        frames, theirs = _read_values(values_path)
+        frames, theirs = _read_values(values_path, args.column)
         src = Source(source.topology)
         src.add(traj, state="check")
         ours, idx = [], []
@@ -515,42 +599,6 @@ def _cmd_hints(args):
     return 0
 
 
-def _same_file(a, b):
-    """Whether two paths name the same file (also through links, when both exist)."""
-    a, b = Path(a), Path(b)
-    try:
-        if a.exists() and b.exists():
-            return a.samefile(b)
-    except OSError:
-        pass
-    return a.resolve() == b.resolve()
-
-
-def _check_output_file(path, option, inputs, force):
-    """Refuse an output file that cannot or may not be written, before any work is done."""
-    out = Path(path)
-    if out.is_dir():
-        raise InputError(f"{option} {path!r} is a directory; give a file name")
-    parent = out.resolve().parent
-    if not parent.is_dir():
-        raise InputError(f"the directory of {option} {path!r} ({str(parent)!r}) does not exist; "
-                         "create it first or give another path")
-    for name, paths in inputs:
-        if any(_same_file(out, p) for p in paths):
-            raise InputError(f"{option} {path!r} is the {name}; writing it would replace that "
-                             "file. Give a new name")
-    if out.exists() and not force:
-        raise InputError(f"{option} {path!r} exists; pass --force to replace it, or give a new "
-                         "name")
-    try:
-        fd, probe = tempfile.mkstemp(dir=parent, prefix=f".{out.name}.", suffix=".probe")
-    except OSError as exc:
-        raise InputError(f"cannot write {option} {path!r}: the directory {str(parent)!r} is not "
-                         f"writable ({exc.strerror}); give another path") from None
-    os.close(fd)
-    os.unlink(probe)
-
-
 def _check_plot_format(path):
     """Refuse --plot without matplotlib or with an extension matplotlib cannot write."""
     try:
@@ -567,7 +615,7 @@ def _check_plot_format(path):
 
 
 def _cmd_funnel(args):
-    from ._io import atomic_paths
+    from ._io import atomic_paths, check_output_file
     from .funnel import plot_funnel, size_funnel
     from .source import Source, select_atoms
 
@@ -577,12 +625,12 @@ def _cmd_funnel(args):
     if not (math.isfinite(args.k_wall) and args.k_wall > 0):
         raise InputError(f"--k-wall {args.k_wall!r} must be a positive force constant in "
                          "kJ/mol/nm^2")
-    inputs = [("topology", [args.topology]), ("trajectory", args.bound)]
-    _check_output_file(args.out, "--out", inputs, args.force)
+    inputs = [args.topology] + list(args.bound)
+    check_output_file(args.out, force=args.force, inputs=inputs, option="--out")
     if args.plot is not None:
-        if _same_file(args.plot, args.out):
+        if Path(args.plot).resolve() == Path(args.out).resolve():
             raise InputError(f"--plot {args.plot!r} is the same file as --out; give two names")
-        _check_output_file(args.plot, "--plot", inputs, args.force)
+        check_output_file(args.plot, force=args.force, inputs=inputs, option="--plot")
         _check_plot_format(args.plot)
     source = Source(args.topology)
     for f in args.bound:
@@ -693,7 +741,10 @@ def demo_data_dir():
 
 
 def _cmd_demo(args):
+    from ._io import prepare_output_dir
+
     data = demo_data_dir()
+    prepare_output_dir(args.out, force=args.force, marker="ranking.json")  # before any output
     manifest = json.loads((data / "manifest.json").read_text(encoding="utf-8"))
     top = str(data / manifest["topology"]["file"])
     states = [[name] + [str(data / f) for f in entry["files"]]
@@ -722,9 +773,51 @@ def _cmd_demo(args):
     return 0
 
 
+#: Exit status after standard output was closed early (e.g. ``cvdesign hints ... | head -1``):
+#: 128 + SIGPIPE, what a shell reports for a program stopped by a closed pipe.
+EXIT_BROKEN_PIPE = 141
+
+
+def _stdout_to_devnull():
+    """Point file descriptor 1 at /dev/null, so that the interpreter's final flush of
+    what is still buffered for a closed pipe succeeds quietly."""
+    try:
+        fd = sys.stdout.fileno()
+    except (AttributeError, OSError, ValueError):
+        return
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, fd)
+    os.close(devnull)
+
+
 def main(argv=None):
-    """Run the ``cvdesign`` command; return its exit status."""
+    """Run the ``cvdesign`` command; return its exit status.
+
+    0 on success, 1 when ``check`` finds values beyond the tolerance, 2 for bad
+    input (a message on standard error, nothing written), 130 when
+    interrupted, and 141 when standard output was closed before everything was
+    printed (``cvdesign hints ... | head -1``): quietly, with file descriptor 1
+    then pointed at /dev/null so that the interpreter's final flush stays quiet.
+    """
+    argv = sys.argv[1:] if argv is None else list(argv)
+    try:
+        try:
+            status = _main(argv)
+        except SystemExit:  # argparse: --help, --version, usage errors
+            sys.stdout.flush()
+            raise
+        sys.stdout.flush()  # a closed pipe shows here, not at interpreter exit
+        return status
+    except BrokenPipeError:
+        _stdout_to_devnull()
+        return EXIT_BROKEN_PIPE
+
+
+def _main(argv):
     parser = build_parser()
+    if not argv:  # list the commands
+        sys.stdout.write(parser.format_help())
+        return 0
     args = parser.parse_args(argv)
     handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "check": _cmd_check,
                "hints": _cmd_hints, "funnel": _cmd_funnel, "demo": _cmd_demo}[args.command]
@@ -732,6 +825,13 @@ def main(argv=None):
         return handler(args)
     except CVDesignError as exc:
         print(f"cvdesign {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except BrokenPipeError:
+        raise
+    except OSError as exc:  # a file that vanished or became unwritable after the checks
+        where = f" {exc.filename!r}" if exc.filename else ""
+        print(f"cvdesign {args.command}: error: cannot access{where}: "
+              f"{exc.strerror or exc}; nothing was written", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("cvdesign: interrupted; no output was written", file=sys.stderr)

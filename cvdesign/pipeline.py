@@ -42,7 +42,7 @@ from .moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, La
 from .pool import COORDINATION_EXPONENTS, COORDINATION_R0_NM, DEFAULT_KINDS, GROUP_KINDS, build_pool
 from .redundancy import descriptor_correlation, redundancy_graph, representatives
 from .scoring import Histograms, fisher_ratio, overlap_coefficient
-from .source import file_sha256, stores_time
+from .source import Source, file_sha256, stores_time
 
 __all__ = ["suggest", "Suggestions", "CAUTION"]
 
@@ -151,6 +151,7 @@ class Suggestions:
                 "heldout_autocorrelation_ci_low", "heldout_autocorrelation_ci_high",
                 "autocorrelation_all", "autocorrelation_ci_low", "autocorrelation_ci_high",
                 "timescale_ps", "timescale_ci_low_ps", "timescale_ci_high_ps",
+                "timescale_resolved",
                 "integrated_time_ps", "integrated_time_ci_low_ps", "integrated_time_ci_high_ps",
                 "terms", "weights", "weight_ci", "selection_frequency"]
         buf = io.StringIO()
@@ -176,7 +177,8 @@ class Suggestions:
                         _fmt(r["heldout_autocorrelation"]), _fmt(rci[0]), _fmt(rci[1]),
                         _fmt(r["autocorrelation_all"]),
                         _fmt(aci[0]), _fmt(aci[1]), _fmt(r["timescale_ps"]),
-                        _fmt(tci[0]), _fmt(tci[1]), _fmt(r.get("integrated_time_ps")),
+                        _fmt(tci[0]), _fmt(tci[1]), _flag(r.get("timescale_resolved")),
+                        _fmt(r.get("integrated_time_ps")),
                         _fmt(ici[0]), _fmt(ici[1]),
                         "; ".join(_term_name(t) for t in r["terms"]),
                         " ".join(_fmt(t["weight"]) for t in r["terms"]),
@@ -302,6 +304,16 @@ def _term_text(t):
     if t.get("selection_frequency") is not None:
         text += f", {t['selection_frequency']:.0%}"
     return text
+
+
+def _short_repr(value, limit=80):
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
+def _flag(x):
+    """A boolean for CSV as in the score card: 1, 0, or empty when unknown."""
+    return "" if x is None else str(int(bool(x)))
 
 
 def _fmt(x):
@@ -690,9 +702,10 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     Raises
     ------
     InputError
-        For fewer than two states, a state without frames, an empty pool, a
-        lag that cannot be converted, and the other input problems described
-        in the messages.
+        For a `source` that is not a :class:`~cvdesign.source.Source` (e.g. a
+        file name), fewer than two states, a state without frames, an empty
+        pool, a lag that cannot be converted, and the other input problems
+        described in the messages.
 
     Examples
     --------
@@ -706,6 +719,11 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         result = suggest(src, n_bootstrap=0)
         print(result.top_table())
     """
+    if not isinstance(source, Source):
+        raise InputError(
+            f"suggest() needs a Source (a topology and trajectories grouped by state), not "
+            f"{type(source).__name__} {_short_repr(source)}; build one with "
+            "Source.from_states('top.pdb', {'closed': ['c1.xtc'], 'open': ['o1.xtc']})")
     _validate_options(max_terms=max_terms, n_suggestions=n_suggestions, screen_size=screen_size,
                       shortlist_size=shortlist_size, max_correlation=max_correlation,
                       n_folds=n_folds, n_seeds=n_seeds, shrinkage=shrinkage, min_gain=min_gain,

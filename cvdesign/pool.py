@@ -33,6 +33,7 @@ Every value is computed by the same code as the spec evaluator
 the others (the tests check that the two agree).
 """
 
+from collections import Counter
 from dataclasses import dataclass
 from functools import cached_property
 
@@ -52,6 +53,7 @@ __all__ = [
     "GROUP_KINDS",
     "COORDINATION_R0_NM",
     "atom_label",
+    "atom_labels",
     "candidate_pool",
     "candidate_pairs",
     "prefilter_pairs",
@@ -88,8 +90,59 @@ def _runs(group):
     return ",".join(parts)
 
 
+def _plain_atom_label(topology, atom):
+    res = atom.residue
+    return f"{_residue_prefix(topology, res)}{res.name}{res.resSeq}:{atom.name}"
+
+
+def _residue_prefix(topology, residue):
+    if topology.n_chains <= 1:
+        return ""
+    chain = residue.chain
+    return f"{getattr(chain, 'chain_id', None) or chain.index}/"
+
+
+def _unique(labels, indices):
+    """`labels` with ``[index]`` appended to every label that occurs more than once."""
+    counts = Counter(labels)
+    return [lab if counts[lab] == 1 else f"{lab}[{i}]" for lab, i in zip(labels, indices)]
+
+
+def atom_labels(topology):
+    """Readable, unique labels of every atom: ``RESNAME<resSeq>:ATOMNAME``.
+
+    The chain is prefixed (``A/``) when the topology has several. Where two
+    atoms would get the same label (two atoms of a residue with one name, or
+    two residues with the same name and number), each of them gets its
+    0-based atom index in brackets, e.g. ``LIG1:C[12]``.
+
+    Parameters
+    ----------
+    topology : mdtraj.Topology
+
+    Returns
+    -------
+    list of str
+        One label per atom, in atom order.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); r = top.add_residue("LIG", top.add_chain(), 1)
+    >>> for name in ["C", "O", "C"]:
+    ...     _ = top.add_atom(name, md.element.get_by_symbol(name), r)
+    >>> atom_labels(top)
+    ['LIG1:C[0]', 'LIG1:O', 'LIG1:C[2]']
+    """
+    return _unique([_plain_atom_label(topology, a) for a in topology.atoms],
+                   range(topology.n_atoms))
+
+
 def atom_label(topology, index, *, with_residue=True):
     """Readable atom label ``RESNAME<resSeq>:ATOMNAME`` (chain prefixed when several).
+
+    The label is unique in the topology: see :func:`atom_labels` (which is
+    faster for many atoms).
 
     Examples
     --------
@@ -102,13 +155,7 @@ def atom_label(topology, index, *, with_residue=True):
     atom = topology.atom(int(index))
     if not with_residue:
         return atom.name
-    res = atom.residue
-    prefix = ""
-    if topology.n_chains > 1:
-        chain = res.chain
-        cid = getattr(chain, "chain_id", None) or str(chain.index)
-        prefix = f"{cid}/"
-    return f"{prefix}{res.name}{res.resSeq}:{atom.name}"
+    return atom_labels(topology)[int(index)]
 
 
 @dataclass(frozen=True)
@@ -541,12 +588,12 @@ def candidate_pairs(topology, atoms):
     return pairs[~drop], note
 
 
-def _residue_label(topology, residue):
-    prefix = ""
-    if topology.n_chains > 1:
-        chain = residue.chain
-        prefix = f"{getattr(chain, 'chain_id', None) or chain.index}/"
-    return f"{prefix}{residue.name}{residue.resSeq}"
+def _residue_labels(topology, residues):
+    """Labels ``RESNAME<resSeq>`` of `residues`, unique in the topology (the residue's
+    0-based index in brackets where a name and number repeat)."""
+    every = _unique([f"{_residue_prefix(topology, r)}{r.name}{r.resSeq}"
+                     for r in topology.residues], range(topology.n_residues))
+    return [every[r.index] for r in residues]
 
 
 def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pairs=None,
@@ -591,7 +638,8 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
     kinds = _check_kinds(kinds)
     atoms = np.unique(np.asarray(atoms, dtype=np.intp))
     graph = _bond_graph(topology, atoms)
-    labels = {int(a): atom_label(topology, a) for a in atoms}
+    every = atom_labels(topology)
+    labels = {int(a): every[int(a)] for a in atoms}
     notes = []
     out = []
     if "distance" in kinds:
@@ -629,7 +677,7 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
         else:
             if group_pairs is None:
                 group_pairs = np.stack(np.triu_indices(len(groups), k=1), axis=1)
-            names = [_residue_label(topology, r) for r, _ in groups]
+            names = _residue_labels(topology, [r for r, _ in groups])
             for i, j in np.asarray(group_pairs, dtype=np.intp).reshape(-1, 2):
                 pair = (groups[i][1], groups[j][1])
                 what = f"{names[i]}-{names[j]}"

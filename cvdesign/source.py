@@ -9,6 +9,7 @@ reads works (XTC, DCD, TRR, NetCDF, HDF5, PDB, ...).
 
 import contextlib
 import hashlib
+import importlib.util
 import math
 import numbers
 import os
@@ -106,6 +107,79 @@ def _check_file(path, what):
     return path
 
 
+#: Names of the file formats mdtraj reads, by extension (for messages).
+_FORMAT_NAMES = {
+    ".pdb": "PDB", ".xtc": "XTC (GROMACS)", ".trr": "TRR (GROMACS)",
+    ".gro": "GRO (GROMACS)", ".dcd": "DCD", ".nc": "NetCDF (AMBER)", ".ncdf": "NetCDF (AMBER)",
+    ".netcdf": "NetCDF (AMBER)", ".h5": "HDF5 (mdtraj)", ".hdf5": "HDF5 (mdtraj)",
+    ".lh5": "HDF5 (mdtraj, legacy)", ".psf": "PSF", ".prmtop": "PRMTOP (AMBER)",
+    ".parm7": "PRMTOP (AMBER)", ".prm7": "PRMTOP (AMBER)", ".mol2": "MOL2",
+    ".cif": "PDBx/mmCIF", ".pdbx": "PDBx/mmCIF", ".mmcif": "PDBx/mmCIF", ".xyz": "XYZ",
+    ".lammpstrj": "LAMMPS dump", ".mdcrd": "AMBER ASCII trajectory",
+    ".crd": "AMBER ASCII trajectory", ".inpcrd": "AMBER restart", ".rst7": "AMBER restart",
+    ".ncrst": "AMBER NetCDF restart", ".restrt": "AMBER restart", ".dtr": "DESRES",
+    ".stk": "DESRES", ".arc": "TINKER ARC", ".gsd": "GSD (HOOMD)", ".hoomdxml": "HOOMD XML",
+    ".binpos": "BINPOS",
+}
+_HDF5_SUFFIXES = {".h5", ".hdf5", ".lh5"}
+_PDB_SUFFIXES = {".pdb"}
+#: Extensions of formats that hold atom names and residues (mdtraj reads topologies from them).
+_TOPOLOGY_SUFFIXES = _HDF5_SUFFIXES | _PDB_SUFFIXES | {
+    ".gro", ".psf", ".prmtop", ".parm7", ".prm7", ".mol2", ".cif", ".pdbx", ".mmcif", ".arc",
+    ".gsd", ".hoomdxml"}
+
+
+def _suffix(path):
+    """Lower-case extension of `path`, looking through a final ``.gz``."""
+    suffixes = [s.lower() for s in Path(path).suffixes]
+    if len(suffixes) > 1 and suffixes[-1] == ".gz":
+        return suffixes[-2]
+    return suffixes[-1] if suffixes else ""
+
+
+def _unreadable(path, what, exc=None, reason=None, todo=None):
+    """InputError for a file mdtraj cannot read: the file, the format its extension
+    suggests, why it failed and what to do (mdtraj's own message is often empty)."""
+    ext = _suffix(path)
+    fmt = _FORMAT_NAMES.get(ext)
+    guessed = (f"format {fmt}, guessed from the extension {ext}" if fmt else
+               f"mdtraj does not know the extension {ext or '(none)'!r}")
+    detail = str(exc).strip().splitlines()[0].strip() if exc is not None and str(exc).strip() \
+        else ""
+    if len(detail) > 200:
+        detail = detail[:200] + "..."
+    kinds = ("PDB, GRO, PSF, PRMTOP, HDF5, ..." if what == "topology" else
+             "XTC, TRR, DCD, NetCDF, HDF5, ...")
+    if reason is None:
+        if fmt is None:
+            reason = "mdtraj picks the reader by the extension"
+            todo = todo or f"rename the file to its format's extension ({kinds}) or convert it"
+        elif what == "topology" and ext not in _TOPOLOGY_SUFFIXES:
+            reason = f"{fmt} files hold coordinates only, not atom names and residues"
+            todo = todo or (f"give a topology file ({kinds}) as the topology and this file as "
+                            "a trajectory")
+        elif ext in _PDB_SUFFIXES and (detail == "" or isinstance(exc, (IndexError, KeyError))):
+            reason = "not a valid PDB file (no ATOM or HETATM records with coordinates were read)"
+        elif detail:
+            reason = f"mdtraj says: {detail}"
+        else:
+            reason = (f"mdtraj failed with {type(exc).__name__} and no message" if exc is not None
+                      else "mdtraj could not read it")
+    if todo is None:
+        todo = (f"check that it is a complete {fmt} file (not truncated, not another format "
+                f"under this extension), or convert it to another format mdtraj reads ({kinds})")
+    return InputError(f"cannot read {what} file {str(path)!r} with mdtraj ({guessed}): "
+                      f"{reason}; {todo}")
+
+
+def _check_readable_format(path, what):
+    """Refuse, before mdtraj prints a banner and fails, a format whose reader is missing."""
+    if _suffix(path) in _HDF5_SUFFIXES and importlib.util.find_spec("tables") is None:
+        other = "a PDB, PSF or PRMTOP topology" if what == "topology" else "XTC or DCD"
+        raise _unreadable(path, what, reason="reading HDF5 needs PyTables, which is not "
+                          "installed", todo=f"pip install tables, or convert the file to {other}")
+
+
 def load_topology(path):
     """Load a topology with mdtraj, with a clear error on failure.
 
@@ -118,15 +192,38 @@ def load_topology(path):
     Returns
     -------
     mdtraj.Topology
+
+    Raises
+    ------
+    InputError
+        The file is missing, unreadable or holds no atoms; the message names
+        the file, the format guessed from its extension, the reason and what
+        to do.
+
+    Examples
+    --------
+    >>> import os, tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     path = os.path.join(tmp, "junk.pdb")
+    ...     with open(path, "w") as fh:
+    ...         _ = fh.write("not a PDB file")
+    ...     load_topology(path)  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: cannot read topology file '...junk.pdb' with mdtraj (format PDB, ...
     """
     if isinstance(path, md.Topology):
         return path
     path = _check_file(path, "topology")
+    _check_readable_format(path, "topology")
     try:
         with quiet_stdout():
-            return md.load_topology(str(path))
+            topology = md.load_topology(str(path))
     except Exception as exc:  # mdtraj raises many kinds; report them in one way
-        raise InputError(f"cannot read topology {str(path)!r}: {exc}") from exc
+        raise _unreadable(path, "topology", exc) from exc
+    if topology.n_atoms == 0:
+        raise _unreadable(path, "topology", reason="it holds no atoms")
+    return topology
 
 
 def select_atoms(topology, selection=None):
@@ -417,6 +514,7 @@ class Source:
         key = str(path)
         if key in self._checked:
             return path
+        _check_readable_format(path, "trajectory")
         try:
             with quiet_stdout():
                 first = md.load_frame(str(path), 0, top=self.topology)
@@ -431,7 +529,13 @@ class Source:
                     f"{' ' + repr(self.topology_path) if self.topology_path else ''} has "
                     f"{self.topology.n_atoms}; give the topology the trajectory was written with"
                 ) from exc
-            raise InputError(f"cannot read trajectory {str(path)!r}: {exc}") from exc
+            if _suffix(path) == ".gro":
+                raise _unreadable(path, "trajectory", exc, reason=(
+                    "a .gro file is a text snapshot format (one model after another) and is not "
+                    "read as a trajectory here"), todo=(
+                    "convert it to XTC, e.g. python -c \"import mdtraj; mdtraj.load('run.gro')"
+                    ".save_xtc('run.xtc')\", and give the XTC file")) from exc
+            raise _unreadable(path, "trajectory", exc) from exc
         if first.n_atoms != self.topology.n_atoms:
             raise InputError(
                 f"trajectory {str(path)!r} has {first.n_atoms} atoms but the topology has "

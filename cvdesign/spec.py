@@ -274,9 +274,42 @@ def _object_pairs(pairs):
     return _DuplicateKeys(pairs, duplicates) if duplicates else dict(pairs)
 
 
+#: Deepest nesting of lists and objects accepted in a spec (written specs nest about 6 deep).
+MAX_DEPTH = 100
+
+
+def _too_deep():
+    return SpecError(f"the document nests lists or objects more than {MAX_DEPTH} levels deep "
+                     "(a spec nests about 6); this is not a spec. Give a spec file written by "
+                     "cvdesign", "$")
+
+
+def _check_depth(value):
+    """Raise SpecError when lists/dicts in `value` nest deeper than MAX_DEPTH (no recursion,
+    so self-containing or very deep documents cannot exhaust the stack)."""
+    stack = [(value, 1)]
+    while stack:
+        item, depth = stack.pop()
+        if isinstance(item, dict):
+            children = item.values()
+        elif isinstance(item, (list, tuple)):
+            children = item
+        else:
+            continue
+        if depth > MAX_DEPTH:
+            raise _too_deep()
+        stack.extend((child, depth + 1) for child in children
+                     if isinstance(child, (dict, list, tuple)))
+
+
 def _parse_json(text):
     """Parse spec text; NaN/Infinity and repeated keys survive as markers."""
-    return json.loads(text, parse_constant=_NonFinite, object_pairs_hook=_object_pairs)
+    try:
+        document = json.loads(text, parse_constant=_NonFinite, object_pairs_hook=_object_pairs)
+    except RecursionError:
+        raise _too_deep() from None
+    _check_depth(document)
+    return document
 
 
 def _short_int(value):
@@ -745,6 +778,7 @@ def _validated(document):
     """Check a spec document and return a normalized plain copy of it."""
     if not isinstance(document, dict):
         raise SpecError(f"a spec is a JSON object; got {_type_name(document)}", "$")
+    _check_depth(document)
     doc = _plain(document)
     if doc.get("format") != SPEC_FORMAT:
         if "format" not in doc:
@@ -1138,7 +1172,8 @@ class Spec:
         """
         path = Path(path)
         if not path.parent.is_dir():
-            raise InputError(f"cannot write spec {str(path)!r}: directory {str(path.parent)!r} does not exist")
+            why = "is a file, not a directory" if path.parent.exists() else "does not exist"
+            raise InputError(f"cannot write spec {str(path)!r}: directory {str(path.parent)!r} {why}")
         try:
             atomic_write_text(path, self.to_json())
         except OSError as exc:
@@ -1239,6 +1274,20 @@ class Spec:
 
     # -- evaluation -------------------------------------------------------
 
+    def _coordinates(self, xyz, box):
+        """(coordinates as a float64 array, box) from an array and a box, or from an
+        mdtraj.Trajectory (its ``xyz`` and ``unitcell_vectors``; its topology is checked)."""
+        if isinstance(xyz, md.Trajectory):
+            if box is not None:
+                raise InputError(
+                    "box= was given together with an mdtraj.Trajectory, which brings its own unit "
+                    "cell (unitcell_vectors); leave box out, or pass traj.xyz with the box you mean")
+            if xyz.topology is not None and getattr(self, "_checked_topology", None) is not xyz.topology:
+                self.check_topology(xyz.topology)
+                self._checked_topology = xyz.topology
+            xyz, box = xyz.xyz, xyz.unitcell_vectors
+        return self._check_xyz(xyz), box
+
     def _check_xyz(self, xyz):
         try:
             arr = np.asarray(xyz, dtype=np.float64)
@@ -1299,12 +1348,15 @@ class Spec:
 
         Parameters
         ----------
-        xyz : array-like of shape (n_frames, n_atoms, 3)
-            Coordinates in nm of all atoms of the spec's topology, in order.
+        xyz : array-like of shape (n_frames, n_atoms, 3), or mdtraj.Trajectory
+            Coordinates in nm of all atoms of the spec's topology, in order;
+            or a trajectory, whose ``xyz`` and unit cell (``unitcell_vectors``,
+            none when it has no box) are used and whose topology must be the
+            spec's.
         box : array-like or None, default=None
             Periodic box in nm: lengths (3,) or (n_frames, 3), or box vectors
             as rows (3, 3) or (n_frames, 3, 3); see
-            :func:`cvdesign.geometry.minimum_image`.
+            :func:`cvdesign.geometry.minimum_image`. Not with a trajectory.
 
         Returns
         -------
@@ -1316,7 +1368,10 @@ class Spec:
         Raises
         ------
         InputError
-            `xyz` has the wrong shape or atom count, or `box` is bad.
+            `xyz` has the wrong shape or atom count, `box` is bad, or `box` is
+            given with a trajectory.
+        TopologyMismatchError
+            The trajectory's topology is not the spec's.
 
         Examples
         --------
@@ -1325,7 +1380,7 @@ class Spec:
         array([[0.4],
                [0.4]])
         """
-        arr = self._check_xyz(xyz)
+        arr, box = self._coordinates(xyz, box)
         return self._descriptor_blocks(arr, box, gradient=False)[0]
 
     def evaluate(self, xyz, box=None, gradient=False):
@@ -1333,11 +1388,13 @@ class Spec:
 
         Parameters
         ----------
-        xyz : array-like of shape (n_frames, n_atoms, 3)
-            Coordinates in nm of all atoms of the spec's topology, in order.
+        xyz : array-like of shape (n_frames, n_atoms, 3), or mdtraj.Trajectory
+            Coordinates in nm of all atoms of the spec's topology, in order;
+            or a trajectory, whose ``xyz`` and unit cell are used (see
+            :meth:`descriptor_values`).
         box : array-like or None, default=None
             Periodic box in nm (see :meth:`descriptor_values`); None means
-            no periodicity.
+            no periodicity (or, for a trajectory, its own unit cell).
         gradient : bool, default=False
             Also return the analytic gradient of the CV.
 
@@ -1365,7 +1422,10 @@ class Spec:
         Raises
         ------
         InputError
-            `xyz` has the wrong shape or atom count, or `box` is bad.
+            `xyz` has the wrong shape or atom count, `box` is bad, or `box` is
+            given with a trajectory.
+        TopologyMismatchError
+            The trajectory's topology is not the spec's.
 
         Examples
         --------
@@ -1376,8 +1436,24 @@ class Spec:
         >>> value, grad = spec.evaluate(xyz, gradient=True)
         >>> grad[0, :, 0].round(6) + 0.0  # weight / scale = 20 per nm along the distance
         array([-20.,   0.,  20.])
+
+        An mdtraj trajectory brings its coordinates and its box (here a cubic
+        box of 0.5 nm: atoms 0 and 2 are 0.1 nm apart through the boundary):
+
+        >>> top = md.Topology()
+        >>> res = top.add_residue("GLY", top.add_chain(), resSeq=1)
+        >>> for name in ["N", "CA", "C"]:
+        ...     _ = top.add_atom(name, md.element.get_by_symbol(name[0]), res)
+        >>> spec = Spec(name="cv", topology=top,
+        ...             descriptors=[{"id": "d0", "kind": "distance", "atoms": [0, 2]}],
+        ...             terms=[{"descriptor": "d0", "transform": "identity",
+        ...                     "center": 0.0, "scale": 1.0, "weight": 1.0}])
+        >>> traj = md.Trajectory(xyz, top, unitcell_lengths=[[0.5, 0.5, 0.5]],
+        ...                      unitcell_angles=[[90.0, 90.0, 90.0]])
+        >>> spec.evaluate(traj).round(6)
+        array([0.1])
         """
-        arr = self._check_xyz(xyz)
+        arr, box = self._coordinates(xyz, box)
         values, blocks = self._descriptor_blocks(arr, box, gradient=bool(gradient))
         column = {d["id"]: k for k, d in enumerate(self._doc["descriptors"])}
         n_frames = values.shape[0]
@@ -1426,10 +1502,12 @@ class Spec:
 
         Parameters
         ----------
-        xyz : array-like of shape (n_frames, n_atoms, 3)
-            nm, all atoms of the topology in order.
+        xyz : array-like of shape (n_frames, n_atoms, 3), or mdtraj.Trajectory
+            nm, all atoms of the topology in order; or a trajectory, whose
+            ``xyz`` and unit cell are used (see :meth:`descriptor_values`).
         box : array-like or None, default=None
-            Periodic box in nm (see :meth:`descriptor_values`).
+            Periodic box in nm (see :meth:`descriptor_values`); not with a
+            trajectory.
         gradient : bool, default=False
             Also return the analytic gradient.
 
@@ -1466,7 +1544,7 @@ class Spec:
         """
         from .funnel import funnel_energy
 
-        arr = self._check_xyz(xyz)
+        arr, box = self._coordinates(xyz, box)
         n_frames = arr.shape[0]
         energy = np.zeros(n_frames)
         grad = np.zeros((n_frames, self.n_atoms, 3)) if gradient else None
@@ -1631,24 +1709,17 @@ def load_spec(path, topology=None):
             f"spec file {str(path)!r} is not valid JSON: {exc.msg} at line {exc.lineno}, "
             f"column {exc.colno}; a spec is the JSON document written by Spec.save"
         ) from None
+    except SpecError as exc:
+        raise _with_file(exc, path) from None
     try:
         spec = Spec.from_dict(document)
     except SpecError as exc:
         raise _with_file(exc, path) from None
     if topology is not None:
         if isinstance(topology, (str, os.PathLike)):
-            top_path = Path(topology)
-            if not top_path.is_file():
-                raise InputError(f"topology file {str(top_path)!r} does not exist")
-            try:
-                topology = md.load_topology(str(top_path))
-            except Exception as exc:  # mdtraj raises many types for unreadable files
-                raise InputError(
-                    f"cannot read topology file {str(top_path)!r} with mdtraj "
-                    f"({type(exc).__name__}: {exc}); give a topology file mdtraj reads (PDB, GRO, PSF, ...)"
-                ) from None
-            if topology.n_atoms == 0:
-                raise InputError(f"topology file {str(top_path)!r} has no atoms; is it a topology file?")
+            from .source import load_topology
+
+            topology = load_topology(topology)
         try:
             spec.check_topology(topology)
         except TopologyMismatchError as exc:

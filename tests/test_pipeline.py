@@ -165,3 +165,22 @@ def test_adk_spec_round_trip_on_psf_dcd(adk_result, mda_data, tmp_path):
     assert v[68:].mean() == pytest.approx(spec.states["open"]["mean"], rel=1e-5)
     # The CV moves from closed to open along the transition path.
     assert spec.states["closed"]["mean"] < spec.states["open"]["mean"]
+
+
+def test_ranking_csv_says_whether_each_timescale_is_resolved(demo_files):
+    # The demo's slow torsion never crosses in a 400 ps run, so the rank-1 implied
+    # timescale is beyond the longest run: not resolved (0), the same as ranking.json.
+    import csv
+    import io
+
+    top, states = demo_files
+    src = Source.from_states(top, {s: files[:1] for s, files in states.items()})
+    result = suggest(src, max_terms=1, n_suggestions=2, n_bootstrap=0)
+    rows = list(csv.DictReader(io.StringIO(result.ranking_csv())))
+    assert "timescale_resolved" in rows[0]
+    for row, entry in zip(rows, result.ranking):
+        expected = {None: "", True: "1", False: "0"}[entry["timescale_resolved"]]
+        assert row["timescale_resolved"] == expected
+    rank1 = result.ranking[0]
+    assert rank1["timescale_ps"] > rank1["longest_run_ps"]
+    assert rows[0]["timescale_resolved"] == "0"

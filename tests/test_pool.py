@@ -164,3 +164,26 @@ def test_features_of_equals_a_mask_over_the_pool():
                                       np.flatnonzero(want[pool.feature_descriptor]))
     with pytest.raises(IndexError):
         pool.features_of([len(pool)])
+
+
+def test_labels_stay_unique_when_atom_names_repeat():
+    # Two atoms named C in one residue, and a second residue with the same name and
+    # number: every descriptor label must still be unique, the repeats telling their
+    # atoms apart by index.
+    top = md.Topology()
+    ch = top.add_chain()
+    res = top.add_residue("LIG", ch, 1)
+    atoms = [top.add_atom(n, md.element.get_by_symbol(n[0]), res) for n in ("C", "O", "C", "N")]
+    twin = top.add_residue("LIG", ch, 1)
+    atoms.append(top.add_atom("S", md.element.sulfur, twin))
+    atoms.append(top.add_atom("S", md.element.sulfur, res))
+    for a, b in [(0, 1), (1, 2), (2, 3), (3, 4)]:
+        top.add_bond(atoms[a], atoms[b])
+    pool = candidate_pool(top, range(top.n_atoms))
+    labels = [d.label for d in pool.descriptors]
+    assert len(labels) == len(set(labels)), labels
+    # Without the indices these pairs would read 'dist LIG1:C-LIG1:S' twice and
+    # 'dist LIG1:C-S' twice (atoms 4 and 5 are both LIG1:S, in two residues).
+    assert {"dist LIG1:C[0]-S[5]", "dist LIG1:C[2]-S[5]", "dist LIG1:C[0]-S[4]"} <= set(labels)
+    assert "angle LIG1:C[0]-O-C[2]" in labels  # O is not repeated: no index
+    assert not any("O[" in lab or "N[" in lab for lab in labels)

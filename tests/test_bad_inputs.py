@@ -1,0 +1,618 @@
+"""Catalogue of bad inputs: every command and the Python API refuse them cleanly.
+
+Each entry of :data:`CLI_CASES` and :data:`API_CASES` is one distinct bad input. The
+test asserts the message text (a regular expression), the exit code (or exception
+type), that no Python traceback was printed, and that nothing was written: every file
+under the case's working directory, the shared fixture directory and the demo data is
+the same, byte for byte, before and after (no output, no temporary file left behind).
+
+To add an entry, append a ``Case`` to the table: ``make`` receives a :class:`Ctx`
+(fixture files, a fresh working directory, helpers) and returns the argument list of
+``cvdesign`` (or, for ``API_CASES``, a function of no arguments to call). Keep the inputs
+tiny and failing before heavy computation.
+
+Besides the table: a closed standard output (``cvdesign hints ... | head -1``) ends a
+command quietly with exit status 141; ``cvdesign`` alone lists the commands; a directory
+without write permission is refused (only when not running as root, who may write
+anywhere); ``apply --force`` replaces an earlier output.
+"""
+
+import contextlib
+import hashlib
+import importlib.util
+import io
+import json
+import os
+import re
+import shutil
+import subprocess
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+import cvdesign
+from cvdesign import InputError, Source, Spec, SpecError, TopologyMismatchError, load_spec
+from cvdesign.cli import EXIT_BROKEN_PIPE, main
+
+HAS_TABLES = importlib.util.find_spec("tables") is not None
+IS_ROOT = hasattr(os, "geteuid") and os.geteuid() == 0
+#: The directory holding the cvdesign package under test, for subprocesses.
+_ROOT = str(Path(cvdesign.__file__).resolve().parent.parent)
+
+
+# ---------------------------------------------------------------- fixtures
+def _hand_spec(topology, states=None):
+    """A one-distance spec (atoms 0 and 7, the demo's contact) for `topology`."""
+    if states is None:
+        states = {"closed": {"mean": 0.45, "std": 0.03, "n_frames": 2000},
+                  "open": {"mean": 0.95, "std": 0.05, "n_frames": 2000}}
+    return Spec(name="cv-test", topology=topology,
+                descriptors=[{"id": "d0", "kind": "distance", "atoms": [0, 7]}],
+                terms=[{"descriptor": "d0", "transform": "identity", "center": 0.7,
+                        "scale": 0.1, "weight": 1.0}], states=states)
+
+
+def _nested(depth):
+    """A list nested `depth` levels deep, built without recursion."""
+    inner = []
+    for _ in range(depth - 1):
+        inner = [inner]
+    return inner
+
+
+@pytest.fixture(scope="module")
+def shared(tmp_path_factory, demo_files):
+    """Read-only inputs shared by the cases: good ones, and files broken on purpose."""
+    top, states = demo_files
+    d = tmp_path_factory.mktemp("shared")
+    topology = md.load_topology(top)
+    _hand_spec(topology).save(d / "cv.json")
+    _hand_spec(topology, states={}).save(d / "nospread.json")
+    traj = md.load(states["closed"][0], top=top)
+    traj[:5].save_gro(str(d / "run.gro"))
+    traj[:5].atom_slice(range(10)).save_xtc(str(d / "short.xtc"))
+    traj[:1].atom_slice(range(11)).save_pdb(str(d / "eleven.pdb"))
+    (d / "garbage.pdb").write_text("this is not a PDB file\nnor is this line\n")
+    (d / "garbage.xtc").write_bytes(b"\0" * 1000)
+    (d / "fake.h5").write_bytes(b"\x89HDF\r\n\x1a\n" + b"\0" * 100)
+    (d / "empty.xtc").write_bytes(b"")
+    (d / "notes.xyzzy").write_text("what format is this?\n")
+    (d / "deep.json").write_text("[" * 100_000 + "]" * 100_000)
+    (d / "deep150.json").write_text('{"a": ' * 150 + "1" + "}" * 150)
+    (d / "notjson.json").write_text('{"format": "cvdesign-spec", ')
+    (d / "latin1.json").write_bytes('{"name": "caf\xe9"}'.encode("latin-1"))
+    good = (d / "cv.json").read_text()
+    (d / "nan.json").write_text(good.replace('"offset": 0.0', '"offset": NaN'))
+    (d / "other.json").write_text(json.dumps({"format": "some-other-tool", "version": 1}))
+    return {"top": top, "closed": states["closed"][0], "open": states["open"][0], "dir": d,
+            "data": Path(top).parent}
+
+
+class Ctx:
+    """What a case builds its input from: shared files and a fresh working directory."""
+
+    def __init__(self, shared, work):
+        self.top, self.closed, self.open = shared["top"], shared["closed"], shared["open"]
+        self.shared = shared["dir"]
+        self.work = work
+
+    def s(self, name):
+        """A shared fixture file."""
+        return str(self.shared / name)
+
+    def w(self, name):
+        """A path in the working directory (not created)."""
+        return str(self.work / name)
+
+    def file(self, name, text="x\n"):
+        """A file in the working directory holding `text`."""
+        path = self.work / name
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(text)
+        return str(path)
+
+    def copy(self, source, name):
+        """A copy of `source` in the working directory."""
+        path = self.work / name
+        path.parent.mkdir(parents=True, exist_ok=True)
+        return shutil.copy(source, path)
+
+    def suggest(self, *extra, out=None, top=None, closed=None, opened=None):
+        """``cvdesign suggest`` on one closed and one open demo file, quick settings."""
+        return ["suggest", "--topology", top or self.top, "--state", "closed",
+                closed or self.closed, "--state", "open", opened or self.open,
+                "--out", out or self.w("out"), "--bootstrap", "0", "--max-terms", "1",
+                "--suggestions", "1", "--quiet", *extra]
+
+    def apply(self, *extra, spec=None, top=None, traj=None):
+        return ["apply", spec or self.s("cv.json"), "--topology", top or self.top,
+                traj or self.closed, *extra]
+
+    def check(self, values, *extra, traj=None):
+        return ["check", self.s("cv.json"), "--topology", self.top,
+                "--against", values, traj or self.closed, *extra]
+
+    def hints(self, spec, *extra):
+        return ["hints", spec, "--temperature", "300", _md_step_option(), "2", *extra]
+
+
+@dataclass
+class Case:
+    name: str
+    make: object  # Ctx -> argv (CLI) or a callable (API)
+    expect: object  # exit code (CLI) or exception type (API)
+    pattern: str
+    skip: str = ""
+
+
+def _md_step_option():
+    """The option of `cvdesign hints` that takes the MD time step in fs (read from --help,
+    so these cases do not depend on how it is spelled)."""
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf), pytest.raises(SystemExit):
+        main(["hints", "--help"])
+    for name in ("--md-step-fs", "--timestep"):
+        if re.search(rf"{name}\b", buf.getvalue()):
+            return name
+    raise AssertionError("cvdesign hints has no MD time-step option")
+
+
+def _frames_csv(n):
+    return "frame,cv\n" + "".join(f"{i},{0.5 + 0.001 * i}\n" for i in range(n))
+
+
+# ---------------------------------------------------------------- the command line
+CLI_CASES = [
+    # -- suggest: output path, checked before any computation
+    Case("suggest-out-under-a-regular-file",
+         lambda c: c.suggest(out=str(Path(c.file("plain.txt")) / "out")), 2,
+         r"cannot write --out '.*plain\.txt/out': '.*plain\.txt' is a file, not a directory"),
+    Case("suggest-out-parent-missing",
+         lambda c: c.suggest(out=c.w("no/such/dir/out")), 2,
+         r"the directory of --out '.*no/such/dir/out' .* does not exist; create it first"),
+    Case("suggest-out-not-empty",
+         lambda c: [c.file("out/mine.txt"), c.suggest()][1], 2,
+         r"output directory '.*out' exists and is not empty; .*--force"),
+    Case("suggest-out-force-on-a-foreign-directory",
+         lambda c: [c.file("out/mine.txt"), c.suggest("--force")][1], 2,
+         r"was not written by cvdesign \(no ranking\.json\)"),
+    Case("suggest-out-is-a-file",
+         lambda c: c.suggest(out=c.file("out")), 2,
+         r"--out '.*out' exists and is not a directory"),
+    Case("suggest-out-contains-an-input",
+         lambda c: c.suggest("--force", out=c.w("in"), opened=c.copy(c.open, "in/open.xtc")), 2,
+         r"--out '.*in' contains an input file .*open\.xtc"),
+    # -- suggest: topology and trajectories
+    Case("suggest-topology-missing",
+         lambda c: c.suggest(top=c.w("none.pdb")), 2,
+         r"topology file '.*none\.pdb' does not exist; check the path"),
+    Case("suggest-topology-garbage-pdb",
+         lambda c: c.suggest(top=c.s("garbage.pdb")), 2,
+         r"cannot read topology file '.*garbage\.pdb' with mdtraj \(format PDB, guessed from "
+         r"the extension \.pdb\): not a valid PDB file .*; check that it is a complete PDB file"),
+    Case("suggest-topology-hdf5-without-pytables",
+         lambda c: c.suggest(top=c.s("fake.h5")), 2,
+         r"cannot read topology file '.*fake\.h5' .*HDF5.*: reading HDF5 needs PyTables, which "
+         r"is not installed; pip install tables",
+         skip="PyTables is installed" if HAS_TABLES else ""),
+    Case("suggest-topology-is-a-trajectory",
+         lambda c: c.suggest(top=c.closed), 2,
+         r"XTC \(GROMACS\) files hold coordinates only, not atom names and residues; give a "
+         r"topology file"),
+    Case("suggest-topology-unknown-extension",
+         lambda c: c.suggest(top=c.s("notes.xyzzy")), 2,
+         r"mdtraj does not know the extension '\.xyzzy'.*rename the file"),
+    Case("suggest-trajectory-gro",
+         lambda c: c.suggest(opened=c.s("run.gro")), 2,
+         r"cannot read trajectory file '.*run\.gro' .*: a \.gro file .* is not read as a "
+         r"trajectory here; convert it to XTC"),
+    Case("suggest-trajectory-hdf5-without-pytables",
+         lambda c: c.suggest(opened=c.s("fake.h5")), 2,
+         r"reading HDF5 needs PyTables, which is not installed; pip install tables, or convert",
+         skip="PyTables is installed" if HAS_TABLES else ""),
+    Case("suggest-trajectory-missing",
+         lambda c: c.suggest(opened=c.w("nope.xtc")), 2,
+         r"trajectory file '.*nope\.xtc' does not exist"),
+    Case("suggest-trajectory-empty-file",
+         lambda c: c.suggest(opened=c.s("empty.xtc")), 2,
+         r"trajectory '.*empty\.xtc' is empty \(0 bytes\)"),
+    Case("suggest-trajectory-garbage-xtc",
+         lambda c: c.suggest(opened=c.s("garbage.xtc")), 2,
+         r"cannot read trajectory file '.*garbage\.xtc' with mdtraj \(format XTC"),
+    Case("suggest-trajectory-other-atom-count",
+         lambda c: c.suggest(opened=c.s("short.xtc")), 2,
+         r"trajectory '.*short\.xtc' has 10 atoms but the topology .* has 12"),
+    Case("suggest-trajectory-in-both-states",
+         lambda c: c.suggest(opened=c.closed), 2,
+         r"is given twice with overlapping frames \(for states 'closed' and 'open'\)"),
+    # -- suggest: states and options
+    Case("suggest-one-state",
+         lambda c: ["suggest", "--topology", c.top, "--state", "closed", c.closed,
+                    "--out", c.w("out")], 2,
+         r"only one state was given \('closed'\)"),
+    Case("suggest-state-given-twice",
+         lambda c: ["suggest", "--topology", c.top, "--state", "a", c.closed, "--state", "a",
+                    c.open, "--out", c.w("out")], 2,
+         r"state 'a' is given twice"),
+    Case("suggest-state-without-files",
+         lambda c: ["suggest", "--topology", c.top, "--state", "a", "--state", "b", c.open,
+                    "--out", c.w("out")], 2,
+         r"--state a has no trajectory files"),
+    Case("suggest-selection-matches-nothing",
+         lambda c: c.suggest("--select", "name CA"), 2,
+         r"selection 'name CA' matches no atoms in a topology of 12 atoms"),
+    Case("suggest-selection-invalid",
+         lambda c: c.suggest("--select", "name and and"), 2,
+         r"invalid atom selection 'name and and'"),
+    Case("suggest-runs-without-lag",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, c.open,
+                    "--out", c.w("out")], 2,
+         r"--runs needs --lag PS"),
+    Case("suggest-n-states-with-state",
+         lambda c: c.suggest("--n-states", "3"), 2,
+         r"--n-states goes with --runs"),
+    Case("suggest-slow-objective-without-lag",
+         lambda c: c.suggest("--objective", "slow"), 2,
+         r"objective 'slow' needs a lag time"),
+    Case("suggest-negative-cutoff",
+         lambda c: c.suggest("--cutoff", "-1"), 2,
+         r"argument --cutoff: '-1' must be positive"),
+    Case("suggest-infinite-temperature",
+         lambda c: c.suggest("--temperature", "inf"), 2,
+         r"argument --temperature: 'inf' must be a finite positive number"),
+    Case("suggest-nan-lag",
+         lambda c: c.suggest("--lag", "nan"), 2,
+         r"argument --lag: 'nan' is not a number; give a positive number"),
+    Case("suggest-unknown-kind",
+         lambda c: c.suggest("--kinds", "distance,torsionish"), 2,
+         r"unknown kind\(s\) torsionish"),
+    Case("suggest-one-fold",
+         lambda c: c.suggest("--folds", "1"), 2,
+         r"argument --folds: '1' must be at least 2"),
+    # -- apply
+    Case("apply-out-exists-without-force",
+         lambda c: c.apply("--out", c.file("values.csv", "earlier results\n")), 2,
+         r"--out '.*values\.csv' already exists; choose another name, or pass --force"),
+    Case("apply-out-is-the-trajectory",
+         lambda c: c.apply("--out", c.closed, "--force"), 2,
+         r"--out '.*closed-1\.xtc' is one of the input files"),
+    Case("apply-out-is-the-spec",
+         lambda c: c.apply("--out", c.w("cv.json"), "--force",
+                           spec=c.copy(c.s("cv.json"), "cv.json")), 2,
+         r"--out '.*cv\.json' is one of the input files"),
+    Case("apply-out-is-a-directory",
+         lambda c: c.apply("--out", str(c.work)), 2,
+         r"--out '.*' is a directory; give a file name"),
+    Case("apply-out-parent-missing",
+         lambda c: c.apply("--out", c.w("missing/values.csv")), 2,
+         r"the directory of --out '.*missing/values\.csv' .* does not exist"),
+    Case("apply-out-under-a-regular-file",
+         lambda c: c.apply("--out", str(Path(c.file("plain.txt")) / "values.csv")), 2,
+         r"'.*plain\.txt' is a file, not a directory"),
+    Case("apply-out-is-a-device",
+         lambda c: c.apply("--out", os.devnull, "--force"), 2,
+         r"--out '/dev/null' exists and is not a regular file",
+         skip="" if os.path.exists(os.devnull) and os.devnull == "/dev/null" else "no /dev/null"),
+    Case("apply-spec-missing",
+         lambda c: c.apply(spec=c.w("absent.json")), 2,
+         r"spec file '.*absent\.json' does not exist"),
+    Case("apply-spec-not-json",
+         lambda c: c.apply(spec=c.s("notjson.json")), 2,
+         r"spec file '.*notjson\.json' is not valid JSON: .* at line 1"),
+    Case("apply-spec-not-utf8",
+         lambda c: c.apply(spec=c.s("latin1.json")), 2,
+         r"spec file '.*latin1\.json' is not UTF-8 text"),
+    Case("apply-spec-nested-100000-deep",
+         lambda c: c.apply(spec=c.s("deep.json")), 2,
+         r"nests lists or objects more than 100 levels deep .* \[spec file '.*deep\.json'\]"),
+    Case("apply-spec-nested-150-deep",
+         lambda c: c.apply(spec=c.s("deep150.json")), 2,
+         r"nests lists or objects more than 100 levels deep"),
+    Case("apply-spec-with-nan",
+         lambda c: c.apply(spec=c.s("nan.json")), 2,
+         r"\$\.offset: NaN is not allowed in a spec"),
+    Case("apply-spec-of-another-format",
+         lambda c: c.apply(spec=c.s("other.json")), 2,
+         r"this is not a cvdesign spec: format is \"some-other-tool\""),
+    Case("apply-topology-of-another-molecule",
+         lambda c: c.apply(top=c.s("eleven.pdb")), 2,
+         r"the spec was made for a topology of 12 atoms; this topology has 11 atoms"),
+    Case("apply-trajectory-garbage-pdb",
+         lambda c: c.apply(traj=c.s("garbage.pdb")), 2,
+         r"cannot read trajectory file '.*garbage\.pdb' .*: not a valid PDB file"),
+    # -- check
+    Case("check-values-missing",
+         lambda c: c.check(c.w("nothing.csv")), 2,
+         r"values file '.*nothing\.csv' does not exist"),
+    Case("check-values-only-comments",
+         lambda c: c.check(c.file("v.xvg", "# a comment\n@ title \"cv\"\n\n")), 2,
+         r"values file '.*v\.xvg' holds no values \(only blank or comment lines\)"),
+    Case("check-values-header-only",
+         lambda c: c.check(c.file("v.csv", "frame,value\n")), 2,
+         r"values file '.*v\.csv' holds a header line and no values"),
+    Case("check-values-not-a-number",
+         lambda c: c.check(c.file("v.txt", "0.5\nabc\n0.7\n")), 2,
+         r"values file '.*v\.txt', line 2, column 1: 'abc' is not a number"),
+    Case("check-values-nan",
+         lambda c: c.check(c.file("v.txt", "0.5\nnan\n")), 2,
+         r"values file '.*v\.txt', line 2: value 'nan' is not a finite number"),
+    Case("check-values-frame-index-first-csv",
+         lambda c: c.check(c.file("v.csv", _frames_csv(5))), 2,
+         r"has 2 columns \('frame', 'cv'\) and none is named 'value' \(the first column looks "
+         r"like a frame index or a time, not the CV\); say which column holds the CV with "
+         r"--column N"),
+    Case("check-values-integer-sequence-first-no-header",
+         lambda c: c.check(c.file("v.dat", "0 0.51\n1 0.52\n2 0.53\n")), 2,
+         r"has 2 columns and no header line naming a 'value' column \(the first column looks "
+         r"like a frame index"),
+    Case("check-values-ragged-lines",
+         lambda c: c.check(c.file("v.dat", "0 0.51\n1\n"), "--column", "2"), 2,
+         r"values file '.*v\.dat', line 2: 1 column, but column 2 holds the values"),
+    Case("check-column-beyond-the-last",
+         lambda c: c.check(c.file("v.dat", "0 0.51\n1 0.52\n"), "--column", "5"), 2,
+         r"--column 5: values file '.*v\.dat' has 2 columns"),
+    Case("check-column-zero",
+         lambda c: c.check(c.file("v.dat", "0.51\n0.52\n"), "--column", "0"), 2,
+         r"--column 0 is not a column; columns count from 1"),
+    Case("check-column-name-not-in-header",
+         lambda c: c.check(c.file("v.csv", _frames_csv(3)), "--column", "rmsd"), 2,
+         r"--column 'rmsd': values file '.*v\.csv' has no column of that name; its columns "
+         r"are 'frame', 'cv'"),
+    Case("check-column-name-without-header",
+         lambda c: c.check(c.file("v.dat", "0 0.51\n1 0.52\n"), "--column", "cv"), 2,
+         r"--column 'cv' names a column, but values file '.*v\.dat' has no header line"),
+    Case("check-column-without-against",
+         lambda c: ["check", c.s("cv.json"), "--topology", c.top, "--column", "2"], 2,
+         r"--column goes with --against"),
+    Case("check-wrong-number-of-values",
+         lambda c: c.check(c.file("v.txt", "0.5\n0.6\n0.7\n")), 2,
+         r"holds 3 values but '.*closed-1\.xtc' has 2000 frames; give one value per frame"),
+    Case("check-frame-the-trajectory-lacks",
+         lambda c: c.check(c.file("v.csv", "frame,value\n99999,0.5\n")), 2,
+         r"names frame 99999, which '.*closed-1\.xtc' does not have \(2000 frames\)"),
+    Case("check-negative-tolerance",
+         lambda c: c.check(c.file("v.txt", "0.5\n"), "--tolerance", "-1"), 2,
+         r"argument --tolerance: '-1' must be positive"),
+    # -- hints
+    Case("hints-spec-missing",
+         lambda c: c.hints(c.w("none.json")), 2,
+         r"spec file '.*none\.json' does not exist"),
+    Case("hints-negative-temperature",
+         lambda c: ["hints", c.s("cv.json"), "--temperature", "-3", _md_step_option(), "2"], 2,
+         r"argument --temperature: '-3' must be positive"),
+    Case("hints-nan-barrier",
+         lambda c: c.hints(c.s("cv.json"), "--barrier", "nan"), 2,
+         r"argument --barrier: 'nan' is not a number"),
+    Case("hints-spec-without-states",
+         lambda c: c.hints(c.s("nospread.json")), 2,
+         r"nospread\.json: no hints: spec 'cv-test' records no states; hints need the CV's "
+         r"mean and within-state spread"),
+    Case("hints-spec-nested-deep",
+         lambda c: c.hints(c.s("deep.json")), 2,
+         r"nests lists or objects more than 100 levels deep"),
+    Case("hints-unknown-kernel",
+         lambda c: c.hints(c.s("cv.json"), "--kernel", "box"), 2,
+         r"argument --kernel: invalid choice: 'box'"),
+    # -- demo
+    Case("demo-out-not-empty",
+         lambda c: [c.file("d/mine.txt"), ["demo", "--out", c.w("d"), "--bootstrap", "0"]][1],
+         2, r"output directory '.*d' exists and is not empty"),
+    Case("demo-out-under-a-regular-file",
+         lambda c: ["demo", "--out", str(Path(c.file("plain.txt")) / "d"), "--bootstrap", "0"],
+         2, r"'.*plain\.txt' is a file, not a directory"),
+    Case("demo-negative-bootstrap",
+         lambda c: ["demo", "--out", c.w("d"), "--bootstrap", "-5"], 2,
+         r"argument --bootstrap: '-5' must be at least 0"),
+    # -- the command itself
+    Case("unknown-command",
+         lambda c: ["design-everything"], 2,
+         r"argument COMMAND: invalid choice: 'design-everything'"),
+]
+
+
+# ---------------------------------------------------------------- the Python API
+def _boxed_trajectory(c):
+    traj = md.load(c.closed, top=c.top)[:3]
+    traj.unitcell_vectors = np.tile(np.eye(3, dtype=np.float32) * 5.0, (3, 1, 1))
+    return traj
+
+
+def _renamed_trajectory(c):
+    """Frames of the demo with a topology whose atom 7 (used by the spec) is renamed."""
+    traj = md.load(c.closed, top=c.top)[:2]
+    traj.topology.atom(7).name = "X8"
+    return traj
+
+
+def _save_under(spec_path, out):
+    spec = load_spec(spec_path)
+    return lambda: spec.save(out)
+
+
+def _self_containing_spec():
+    doc = {"format": "cvdesign-spec", "version": 1}
+    doc["hints"] = doc
+    return doc
+
+
+API_CASES = [
+    Case("api-suggest-with-a-file-name",
+         lambda c: lambda: cvdesign.suggest("file.pdb"), InputError,
+         r"suggest\(\) needs a Source \(a topology and trajectories grouped by state\), not "
+         r"str 'file\.pdb'; build one with Source\.from_states"),
+    Case("api-load-spec-nested-deep",
+         lambda c: lambda: load_spec(c.s("deep.json")), SpecError,
+         r"^\$: the document nests lists or objects more than 100 levels deep"),
+    Case("api-spec-from-json-nested-deep",
+         lambda c: lambda: Spec.from_json("[" * 50_000 + "]" * 50_000), SpecError,
+         r"more than 100 levels deep"),
+    Case("api-spec-from-dict-nested-deep",
+         lambda c: lambda: Spec.from_dict({"format": "cvdesign-spec", "hints": _nested(5000)}),
+         SpecError, r"more than 100 levels deep"),
+    Case("api-spec-from-dict-containing-itself",
+         lambda c: lambda: Spec.from_dict(_self_containing_spec()), SpecError,
+         r"more than 100 levels deep"),
+    Case("api-evaluate-trajectory-and-box",
+         lambda c: lambda: load_spec(c.s("cv.json")).evaluate(_boxed_trajectory(c),
+                                                              box=[5.0, 5.0, 5.0]),
+         InputError, r"box= was given together with an mdtraj\.Trajectory, which brings its own "
+         r"unit cell"),
+    Case("api-descriptor-values-trajectory-and-box",
+         lambda c: lambda: load_spec(c.s("cv.json")).descriptor_values(_boxed_trajectory(c),
+                                                                       box=[5.0, 5.0, 5.0]),
+         InputError, r"box= was given together with an mdtraj\.Trajectory"),
+    Case("api-restraint-energy-trajectory-and-box",
+         lambda c: lambda: load_spec(c.s("cv.json")).restraint_energy(_boxed_trajectory(c),
+                                                                      box=[5.0, 5.0, 5.0]),
+         InputError, r"box= was given together with an mdtraj\.Trajectory"),
+    Case("api-evaluate-trajectory-of-another-topology",
+         lambda c: lambda: load_spec(c.s("cv.json")).evaluate(_renamed_trajectory(c)),
+         TopologyMismatchError, r"atom 7 .* is .*C8.* in the spec but .*X8.* in this topology"),
+    Case("api-evaluate-wrong-atom-count",
+         lambda c: lambda: load_spec(c.s("cv.json")).evaluate(np.zeros((2, 11, 3))),
+         InputError, r"xyz has 11 atoms per frame; this spec \('cv-test'\) was made for a "
+         r"topology of 12 atoms"),
+    Case("api-source-garbage-topology",
+         lambda c: lambda: Source(c.s("garbage.pdb")), InputError,
+         r"cannot read topology file '.*garbage\.pdb' with mdtraj .*not a valid PDB file"),
+    Case("api-source-gro-trajectory",
+         lambda c: lambda: Source(c.top).add(c.s("run.gro"), state="a"), InputError,
+         r"convert it to XTC"),
+    Case("api-source-hdf5-topology-without-pytables",
+         lambda c: lambda: Source(c.s("fake.h5")), InputError,
+         r"reading HDF5 needs PyTables, which is not installed; pip install tables",
+         skip="PyTables is installed" if HAS_TABLES else ""),
+    Case("api-load-spec-with-a-garbage-topology",
+         lambda c: lambda: load_spec(c.s("cv.json"), topology=c.s("garbage.pdb")), InputError,
+         r"cannot read topology file '.*garbage\.pdb' with mdtraj"),
+    Case("api-spec-save-under-a-regular-file",
+         lambda c: _save_under(c.s("cv.json"), Path(c.file("plain.txt")) / "cv.json"),
+         InputError, r"cannot write spec '.*plain\.txt/cv\.json': directory '.*plain\.txt' "
+         r"is a file, not a directory"),
+]
+
+
+# ---------------------------------------------------------------- the checks
+def _snapshot(*roots):
+    """{path: sha256 of the bytes (None for a directory)} of everything under `roots`."""
+    out = {}
+    for root in roots:
+        for path in sorted(Path(root).rglob("*")):
+            out[str(path)] = (None if path.is_dir() and not path.is_symlink()
+                              else hashlib.sha256(path.read_bytes()).hexdigest()
+                              if path.is_file() else "link")
+    return out
+
+
+def _distinct(cases):
+    names = [c.name for c in cases]
+    assert len(names) == len(set(names))
+    return cases
+
+
+def test_the_catalogue_holds_at_least_40_distinct_bad_inputs():
+    assert len(_distinct(CLI_CASES + API_CASES)) >= 40
+    covered = {c.name.split("-")[0] for c in CLI_CASES + API_CASES}
+    assert covered >= {"suggest", "apply", "check", "hints", "demo", "api"}
+
+
+@pytest.mark.parametrize("case", _distinct(CLI_CASES), ids=lambda c: c.name)
+def test_command_refuses_bad_input_cleanly(case, shared, tmp_path, capsys, monkeypatch):
+    if case.skip:
+        pytest.skip(case.skip)
+    work = tmp_path / "work"
+    work.mkdir()
+    monkeypatch.chdir(work)
+    ctx = Ctx(shared, work)
+    argv = [str(a) for a in case.make(ctx)]
+    before = _snapshot(work, shared["dir"], shared["data"])
+    try:
+        code = main(argv)
+    except SystemExit as exc:  # argparse usage errors
+        code = exc.code
+    out, err = capsys.readouterr()
+    assert code == case.expect, err
+    assert re.search(case.pattern, err), err
+    assert "Traceback" not in err and "Traceback" not in out
+    assert err.startswith("cvdesign") or err.startswith("usage: cvdesign"), err
+    if argv[0] != "check":  # check prints its 'valid spec' line before reading the values
+        assert out == ""
+    assert _snapshot(work, shared["dir"], shared["data"]) == before
+
+
+@pytest.mark.parametrize("case", _distinct(API_CASES), ids=lambda c: c.name)
+def test_python_api_refuses_bad_input_cleanly(case, shared, tmp_path, monkeypatch):
+    if case.skip:
+        pytest.skip(case.skip)
+    work = tmp_path / "work"
+    work.mkdir()
+    monkeypatch.chdir(work)
+    call = case.make(Ctx(shared, work))
+    before = _snapshot(work, shared["dir"], shared["data"])
+    with pytest.raises(case.expect, match=case.pattern):
+        call()
+    assert _snapshot(work, shared["dir"], shared["data"]) == before
+
+
+# ---------------------------------------------------------------- beyond the table
+def _closed_pipe_run(argv):
+    """Run ``python -m cvdesign.cli argv`` with standard output a pipe nobody reads."""
+    read_end, write_end = os.pipe()
+    os.close(read_end)  # closed before the command starts: every write fails with EPIPE
+    try:
+        return subprocess.run([sys.executable, "-m", "cvdesign.cli", *argv], stdout=write_end,
+                              stderr=subprocess.PIPE, text=True, timeout=300,
+                              env={**os.environ, "PYTHONPATH": _ROOT + os.pathsep
+                                   + os.environ.get("PYTHONPATH", "")})
+    finally:
+        os.close(write_end)
+
+
+@pytest.mark.parametrize("which", ["hints", "hints-json", "apply", "check", "no-arguments"])
+def test_closed_standard_output_ends_quietly_with_status_141(which, shared):
+    spec = str(shared["dir"] / "cv.json")
+    step = _md_step_option()
+    argv = {"hints": ["hints", spec, "--temperature", "300", step, "2"],
+            "hints-json": ["hints", spec, "--temperature", "300", step, "2", "--json"],
+            "apply": ["apply", spec, "--topology", shared["top"], shared["closed"]],
+            "check": ["check", spec, "--topology", shared["top"]],
+            "no-arguments": []}[which]
+    res = _closed_pipe_run(argv)
+    assert res.stderr == ""
+    assert res.returncode == EXIT_BROKEN_PIPE == 141
+
+
+def test_no_arguments_lists_the_commands(capsys):
+    assert main([]) == 0
+    out = capsys.readouterr().out
+    for command in ("suggest", "apply", "check", "hints", "funnel", "demo"):
+        assert re.search(rf"^\s+{command}\s+\S", out, flags=re.M), out
+
+
+@pytest.mark.skipif(IS_ROOT, reason="root may write into a read-only directory")
+def test_suggest_refuses_a_read_only_directory_at_once(shared, tmp_path, capsys):
+    locked = tmp_path / "locked"
+    locked.mkdir()
+    locked.chmod(0o500)
+    try:
+        ctx = Ctx(shared, tmp_path)
+        assert main(ctx.suggest(out=str(locked / "out"))) == 2
+        err = capsys.readouterr().err
+        assert re.search(r"cannot write --out '.*locked/out': no permission to write in", err)
+        assert list(locked.iterdir()) == []
+    finally:
+        locked.chmod(0o700)
+
+
+def test_apply_force_replaces_an_earlier_output_and_nothing_else(shared, tmp_path, capsys):
+    ctx = Ctx(shared, tmp_path)
+    out = Path(ctx.file("values.csv", "earlier results\n"))
+    assert main(ctx.apply("--out", str(out), "--force")) == 0
+    rows = out.read_text().splitlines()
+    assert rows[0] == "file,frame,time_ps,value" and len(rows) == 2001
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["values.csv"]
+    assert "wrote" in capsys.readouterr().err

@@ -1,0 +1,89 @@
+"""`cvdesign check --against` reads the usual shapes of engine output.
+
+Whitespace-separated columns with '#' and '@' comment lines, a column chosen by number
+(1-based) or by a CSV header name, and the CSV that `cvdesign apply` writes. The
+'engine' values are computed independently with mdtraj's geometry (McGibbon et al.,
+Biophys. J. 109:1528, 2015) from the same frames.
+"""
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign import Spec
+from cvdesign.cli import main
+
+
+@pytest.fixture(scope="module")
+def setup(demo_files, tmp_path_factory):
+    """(spec path, topology, trajectory, engine CV values, frame times in ps)."""
+    top, states = demo_files
+    traj_path = states["open"][0]
+    d = tmp_path_factory.mktemp("check")
+    spec = Spec(name="cv-contact", topology=md.load_topology(top),
+                descriptors=[{"id": "d0", "kind": "distance", "atoms": [0, 7]}],
+                terms=[{"descriptor": "d0", "transform": "identity", "center": 0.7,
+                        "scale": 0.1, "weight": 2.0}],
+                states={"open": {"mean": 0.0, "std": 0.5, "n_frames": 2000}})
+    spec.save(d / "cv.json")
+    traj = md.load(traj_path, top=top)
+    values = 2.0 * (md.compute_distances(traj, [[0, 7]])[:, 0].astype(np.float64) - 0.7) / 0.1
+    return str(d / "cv.json"), top, traj_path, values, traj.time.astype(np.float64)
+
+
+def _check(setup, values_path, *extra):
+    spec, top, traj, _, _ = setup
+    return main(["check", spec, "--topology", top, "--against", str(values_path), traj, *extra])
+
+
+def _engine_table(times, values, wrong):
+    """Columns: time (ps), the CV, a wrong CV (the CV plus 1)."""
+    return [f"{t:12.4f} {v:16.9f} {w:16.9f}" for t, v, w in zip(times, values, wrong)]
+
+
+def test_whitespace_columns_with_comments_pick_the_column_by_number(setup, tmp_path, capsys):
+    *_, values, times = setup
+    lines = (["# engine output", "# columns: time cv other", "@    title \"CV\"",
+              "@    xaxis label \"t (ps)\""] + _engine_table(times, values, values + 1.0))
+    path = tmp_path / "cv.dat"
+    path.write_text("\n".join(lines) + "\n")
+    assert _check(setup, path, "--column", "2") == 0
+    assert "PASS" in capsys.readouterr().out
+    assert _check(setup, path, "--column", "3") == 1  # the wrong column fails
+    assert "FAIL" in capsys.readouterr().out
+    assert _check(setup, path) == 2  # three columns, none named: refused
+    assert "--column N" in capsys.readouterr().err
+
+
+def test_csv_column_by_header_name_and_a_leading_frame_column(setup, tmp_path, capsys):
+    *_, values, times = setup
+    path = tmp_path / "cv.csv"
+    path.write_text("frame,time,contact_cv\n" + "".join(
+        f"{i},{float(t)!r},{float(v)!r}\n" for i, (t, v) in enumerate(zip(times, values))))
+    assert _check(setup, path, "--column", "contact_cv") == 0
+    assert "PASS" in capsys.readouterr().out
+    assert _check(setup, path, "--column", "CONTACT_CV") == 0  # names ignore case
+    capsys.readouterr()
+    assert _check(setup, path) == 2
+    assert "the first column looks like a frame index" in capsys.readouterr().err
+
+
+def test_a_frame_column_aligns_values_given_for_some_frames(setup, tmp_path, capsys):
+    *_, values, _ = setup
+    picked = [5, 17, 1999]
+    path = tmp_path / "some.csv"
+    path.write_text("frame,value\n" + "".join(f"{i},{float(values[i])!r}\n" for i in picked))
+    assert _check(setup, path) == 0
+    assert "3 frames" in capsys.readouterr().out
+    shifted = tmp_path / "shifted.csv"
+    shifted.write_text("frame,value\n" + "".join(f"{i + 1},{float(values[i])!r}\n"
+                                                  for i in picked[:2]))
+    assert _check(setup, shifted) == 1  # values attached to the wrong frames fail
+
+
+def test_apply_output_checks_back_against_the_reference(setup, tmp_path, capsys):
+    spec, top, traj, _, _ = setup
+    out = tmp_path / "applied.csv"
+    assert main(["apply", spec, "--topology", top, traj, "--out", str(out)]) == 0
+    assert _check(setup, out) == 0
+    assert "PASS" in capsys.readouterr().out
