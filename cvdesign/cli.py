@@ -126,8 +126,10 @@ def _add_suggest_options(p):
                    help="seed of the bootstrap and of the clustering of --runs; the same "
                         "inputs and seed give byte-identical outputs (default: 0)")
     p.add_argument("--frame-step-ps", type=_positive_float, default=None, metavar="PS",
-                   help="time between trajectory frames in ps for files that store no times "
-                        "(DCD, PDB, ...); files that store times keep their own")
+                   help="time between trajectory frames in ps, for files that store no times "
+                        "(DCD, PDB, ...) and for files whose stored times do not increase "
+                        "(all zero, as some writers store), which it then replaces; files "
+                        "with increasing stored times keep their own")
     p.add_argument("--temperature", type=_positive_float, default=300.0, metavar="K",
                    help="temperature of the biased run in K, for the bias-parameter hints "
                         "stored in each spec (default: 300)")
@@ -167,11 +169,12 @@ def build_parser():
     given.add_argument("--runs", nargs="+", metavar="FILE",
                        help="unlabelled exploratory runs instead of --state: metastable states "
                             "are proposed by clustering the slowest TICA coordinates at --lag "
-                            "(which is then required), written to states.csv, and CVs are "
-                            "designed for them")
+                            "(which is then required), checked to be metastable from the runs' "
+                            "transitions (a warning names any that is not; none metastable is "
+                            "refused), written to states.csv, and CVs are designed for them")
     p.add_argument("--n-states", type=_at_least_two, default=None, metavar="N",
-                   help="with --runs: the number of states to propose (default: chosen by "
-                        "the largest mean silhouette, 2 to 6)")
+                   help="with --runs: the number of states to propose (default: 2 to 6, the "
+                        "fewest that are all metastable among the best mean silhouettes)")
     p.add_argument("--out", required=True, metavar="DIR",
                    help="output directory; must not exist or be empty (see --force)")
     _add_suggest_options(p)
@@ -326,6 +329,8 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                                      prefilter_stride=args.prefilter_stride,
                                      coordination_r0=args.coordination_r0, seed=args.seed,
                                      progress=progress)
+        for warning in exploration.warnings:  # also in summary.md; shown even with --quiet
+            print(f"cvdesign: warning: {warning}", file=sys.stderr)
         source = exploration.labelled_source(topology, timestep=args.frame_step_ps)
     else:
         if getattr(args, "n_states", None) is not None:

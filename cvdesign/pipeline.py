@@ -760,7 +760,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     _note(progress, "building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,
                       stride=prefilter_stride, coordination_r0=coordination_r0)
-    notes = list(pool.notes)
+    notes = list(pool.notes) + source.notes
     atoms = pool.atom_indices()
     n_feat = pool.n_features
     _note(progress, f"pool: {len(pool)} descriptors, {n_feat} features; screening pass")
@@ -1165,8 +1165,8 @@ def _longest_run_text(seg_counts, timesteps):
 def _check_uniform_time(source, si, chunk, dt, last):
     """Refuse a file whose frames are not evenly spaced in time (when it stores times)."""
     path = source.segments[si].path
-    if dt is None or not stores_time(path):
-        return
+    if dt is None or not stores_time(path) or source.stored_times_ignored(si):
+        return  # no times, or stored times replaced by the given frame spacing
     t = np.asarray(chunk.trajectory.time, dtype=np.float64)
     f = np.asarray(chunk.frames, dtype=np.float64)
     if si in last:

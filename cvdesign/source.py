@@ -98,6 +98,51 @@ def check_box(traj, path, first_frame):
         )
 
 
+def check_finite(traj, path, frames, atom_indices, topology):
+    """Raise InputError naming file, frame and atom if a chunk holds a NaN or infinite coordinate.
+
+    Parameters
+    ----------
+    traj : mdtraj.Trajectory
+        The chunk (all atoms, or `atom_indices`).
+    path : path-like
+        Its file, for the message.
+    frames : ndarray of int
+        0-based frame numbers of the chunk's frames within the file.
+    atom_indices : ndarray of int or None
+        Topology indices of the chunk's atoms (None: all atoms, in order).
+    topology : mdtraj.Topology
+        For the atom's name in the message.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); r = top.add_residue("LIG", top.add_chain())
+    >>> for name in ("C1", "C2"):
+    ...     _ = top.add_atom(name, md.element.carbon, r)
+    >>> xyz = np.zeros((3, 2, 3), dtype=np.float32); xyz[2, 1, 0] = np.nan
+    >>> check_finite(md.Trajectory(xyz, top), "run.xtc", np.arange(10, 13), None, top)
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: trajectory 'run.xtc' frame 12 has a NaN or infinite coordinate for atom 1 (LIG0-C2): [nan, 0.0, 0.0] nm; the file is damaged or the simulation became unstable there. Check the file, or leave those frames out
+    """
+    xyz = traj.xyz
+    # one reduction over the chunk; a finite sum can only hide nothing, an infinite or
+    # NaN sum is searched element by element (huge finite values may overflow it)
+    if xyz.size == 0 or np.isfinite(xyz.sum(dtype=np.float64)):
+        return
+    bad = np.argwhere(~np.isfinite(xyz).all(axis=2))
+    if bad.size == 0:
+        return
+    f, a = (int(v) for v in bad[0])
+    atom = int(a if atom_indices is None else atom_indices[a])
+    raise InputError(
+        f"trajectory {str(path)!r} frame {int(frames[f])} has a NaN or infinite coordinate for "
+        f"atom {atom} ({topology.atom(atom)}): {[float(v) for v in xyz[f, a]]} nm; the file is "
+        "damaged or the simulation became unstable there. Check the file, or leave those "
+        "frames out")
+
+
 def _check_file(path, what):
     path = Path(path)
     if not path.exists():
@@ -354,7 +399,17 @@ class Source:
         Frames read at a time.
     timestep : float, default=None
         Time between frames in ps for files whose format stores no times
-        (DCD, PDB, ...); files that store times keep their own.
+        (DCD, PDB, ...), and for files whose stored times do not increase
+        (all zero, as some writers store, or decreasing from the first frame):
+        those times are then ignored, and :attr:`notes` says so. Files whose
+        stored times increase keep their own. Without it, a file whose stored
+        times do not increase is refused by :meth:`timestep`.
+
+    Attributes
+    ----------
+    notes : list of str
+        What the source did that a reader should know (stored times replaced
+        by the given `timestep`).
 
     Examples
     --------
@@ -382,6 +437,8 @@ class Source:
         self.segments = []
         self.states = []
         self._checked = {}
+        self._stored_steps = {}   # path -> (time of frame 0, time of frame 1) ps, or None
+        self._time_notes = {}     # path -> note on stored times replaced by `timestep`
 
     # ------------------------------------------------------------------ building
     @classmethod
@@ -616,6 +673,8 @@ class Source:
                     sel = np.flatnonzero(mask)
                     sub = traj if sel.size == n else traj[sel]
                     check_box(sub, seg.path, frames[sel])
+                    check_finite(sub, seg.path, frames[sel], kwargs.get("atom_indices"),
+                                 self.topology)
                     yield Chunk(si, sub, frames[sel], codes[sel])
             except InputError:
                 raise
@@ -627,24 +686,69 @@ class Source:
                     f"{seg.labels.shape[0]} labels were given; give one label per frame"
                 )
 
-    def timestep(self, segment_index):
-        """Time between the first two frames of a segment's file, in ps.
+    @property
+    def notes(self):
+        """list of str : what the source did that a reader should know."""
+        return list(self._time_notes.values())
 
-        For a format that stores no times (see :func:`stores_time`), the
-        source's `timestep` (None when not given); None also for a single frame.
+    def _stored_step(self, path):
+        """Times (ps) of the first two frames stored in a file, or None (unreadable, 1 frame)."""
+        key = str(path)
+        if key not in self._stored_steps:
+            try:
+                with quiet_stdout():
+                    first = next(md.iterload(key, top=self.topology, chunk=2, atom_indices=[0]))
+            except Exception:
+                first = None
+            self._stored_steps[key] = (None if first is None or first.n_frames < 2 else
+                                       (float(first.time[0]), float(first.time[1])))
+        return self._stored_steps[key]
+
+    def stored_times_ignored(self, segment_index):
+        """True when a segment's file stores times that do not increase and `timestep` replaces them."""
+        seg = self.segments[segment_index]
+        if not stores_time(seg.path) or self.default_timestep is None:
+            return False
+        times = self._stored_step(seg.path)
+        return times is not None and not times[1] > times[0]
+
+    def timestep(self, segment_index):
+        """Time between the frames of a segment's file, in ps.
+
+        From the times of the file's first two frames. For a format that
+        stores no times (see :func:`stores_time`), and for a file whose stored
+        times do not increase (then noted in :attr:`notes`), the source's
+        `timestep`; None when a format that stores no times has no `timestep`
+        given, and for a single frame.
+
+        Raises
+        ------
+        InputError
+            When the file's stored times do not increase (all zero, as some
+            writers store, or decreasing) and no `timestep` was given.
         """
         seg = self.segments[segment_index]
         if not stores_time(seg.path):
             return self.default_timestep
-        try:
-            with quiet_stdout():
-                first = next(md.iterload(str(seg.path), top=self.topology, chunk=2,
-                                         atom_indices=[0]))
-        except Exception:
+        times = self._stored_step(seg.path)
+        if times is None:
             return None
-        if first.n_frames < 2:
-            return None
-        return float(first.time[1] - first.time[0])
+        t0, t1 = times
+        if t1 > t0:
+            return t1 - t0
+        what = (f"the same time ({t0:g} ps) for its first two frames" if t1 == t0 else
+                f"times that do not increase (frame 0 at {t0:g} ps, frame 1 at {t1:g} ps)")
+        if self.default_timestep is None:
+            raise InputError(
+                f"trajectory {str(seg.path)!r} stores {what}, so the time between its frames "
+                "is unknown (some writers store no real times); give the time between frames "
+                "in ps (--frame-step-ps; timestep= in the Python API), which then replaces the "
+                "stored times")
+        self._time_notes.setdefault(
+            str(seg.path),
+            f"trajectory {seg.path.name} stores {what}; they are ignored and the given time "
+            f"between frames, {self.default_timestep:g} ps, is used instead")
+        return self.default_timestep
 
 
 def _unlabelled(x):

@@ -2,10 +2,8 @@
 
 import numpy as np
 import pytest
-from sklearn.metrics import adjusted_rand_score
 
 from cvdesign import InputError, Source, suggest
-from cvdesign.cli import main
 from cvdesign.explore import propose_states
 from cvdesign.moments import DiagonalLaggedMoments
 from cvdesign.pipeline import integrated_time
@@ -63,39 +61,6 @@ def test_both_objective_reports_and_combines_both_scores(two_wells_data):
         assert r["objective"] == "both" and r["method"] == "hlda"
         assert j >= 0 and r["heldout_autocorrelation"] <= 1.0
     assert _dihedral_id(data.slow_dihedral) in _rank1_descriptors(res)
-
-
-def test_unlabelled_demo_runs_recover_the_states_and_the_slow_descriptor(demo_files,
-                                                                         demo_manifest):
-    top, states = demo_files
-    src = Source(top)
-    truth = []
-    for name, files in states.items():
-        for f in files:
-            src.add(f, "runs")
-            truth += [name] * 2000
-    exp = propose_states(src, lag=2.0)
-    pred = np.concatenate([exp.labels[f] for files in states.values() for f in files])
-    # Adjusted Rand index (Hubert and Arabie, J. Classif. 1985) against the known states.
-    assert adjusted_rand_score(truth, pred.astype(str)) >= 0.9
-    assert exp.criterion["name"] == "silhouette" and len(exp.states) == 2
-    assert sum(exp.populations.values()) == pytest.approx(1.0)
-    res = suggest(exp.labelled_source(top), n_bootstrap=0, max_terms=2)
-    slow_id = _dihedral_id(demo_manifest["slow_dihedral"]["atoms"])
-    assert res.ranking[0]["terms"][0]["descriptor"] == slow_id
-
-
-def test_cli_runs_writes_proposed_states(demo_files, tmp_path, capsys):
-    top, states = demo_files
-    out = tmp_path / "out"
-    runs = states["closed"][:2] + states["open"][:2]
-    assert main(["suggest", "--topology", top, "--runs", *runs, "--lag", "2", "--out",
-                 str(out), "--bootstrap", "0", "--max-terms", "2"]) == 0
-    printed = capsys.readouterr().out
-    assert "proposed states: S1 (50.0%" in printed
-    lines = (out / "states.csv").read_text().splitlines()
-    assert lines[0] == "file,frame,state" and len(lines) == 1 + 4 * 2000
-    assert "## Proposed states (unlabelled runs)" in (out / "summary.md").read_text()
 
 
 def test_runs_without_a_slow_process_at_the_lag_are_told_so(demo_files):

@@ -68,9 +68,11 @@ def test_a_trajectory_without_a_box_is_evaluated_without_one():
 
 def test_restraint_energy_takes_the_box_of_a_trajectory():
     top = _topology()
-    funnel = {"id": "funnel", "kind": "funnel", "groups": [[3], [0, 1]],
-              "axis": [0.0, 0.0, 1.0], "z_min": -0.2, "z_max": 0.4, "z_cc": 0.2,
-              "alpha": 0.5, "r_cyl": 0.1, "blend": 0.05, "k_wall": 1000.0}
+    funnel = {"id": "funnel", "kind": "funnel", "groups": [[3], [0, 1, 2]],
+              "axis": [0.0, 0.0, 1.0], "lower_wall_z_nm": -0.2, "upper_wall_z_nm": 0.4,
+              "cone_end_z_nm": 0.2, "cone_half_angle_rad": 0.5, "cylinder_radius_nm": 0.1,
+              "blend_half_width_nm": 0.05, "wall_force_constant_kj_mol_nm2": 1000.0,
+              "reference_pocket_nm": [[-0.1, -0.05, 0.0], [0.1, -0.05, 0.0], [0.0, 0.1, 0.0]]}
     spec = _spec(top, restraints=[funnel])
     edge = 1.2
     xyz = _frames(3, edge=edge)

@@ -1,0 +1,313 @@
+"""`--runs` (issue 9): proposed states must be metastable, from the runs' own transitions."""
+
+import math
+
+import mdtraj as md
+import numpy as np
+import pytest
+from sklearn.metrics import adjusted_rand_score
+
+from cvdesign import InputError, Source, suggest
+from cvdesign.cli import main
+from cvdesign.explore import MIN_MEMORY, MIN_SEPARATION, propose_states, state_kinetics
+from cvdesign.testbed import LangevinBAOAB, count_transitions, two_wells, write_pdb
+
+
+# ---------------------------------------------------------------------------- data writers
+def _walker_topology():
+    top = md.Topology()
+    res = top.add_residue("WLK", top.add_chain(), resSeq=1)
+    for name in ("C1", "C2", "C3", "C4"):
+        top.add_atom(name, md.element.carbon, res)
+    return top
+
+
+def _langevin_1d(force, x0, n_frames, *, seed, diffusion=2e-3, substeps=20, walls=(0.3, 0.9)):
+    """Overdamped Langevin dynamics dx = D F(x) dt + sqrt(2 D) dW (kT = 1, one frame = one
+    time unit, D in nm^2 per frame), Euler-Maruyama with `substeps` steps per frame and
+    reflecting walls (nm). Returns x of shape (n_runs, n_frames), nm."""
+    rng = np.random.default_rng(seed)
+    dt = 1.0 / substeps
+    x = np.array(x0, dtype=np.float64)
+    out = np.empty((x.size, n_frames))
+    lo, hi = walls
+    for t in range(n_frames):
+        out[:, t] = x
+        for _ in range(substeps):
+            x = x + diffusion * force(x) * dt + np.sqrt(2 * diffusion * dt) * rng.standard_normal(
+                x.size)
+            x = np.where(x < lo, 2 * lo - x, x)
+            x = np.where(x > hi, 2 * hi - x, x)
+    return out
+
+
+def _double_well(barrier_kt, center=0.6, half_width=0.2):
+    """Force of U(x) = barrier (((x - center) / half_width)^2 - 1)^2 (kT units): wells at
+    center +- half_width, barrier `barrier_kt` kT between them."""
+    def force(x):
+        u = (x - center) / half_width
+        return -barrier_kt * 4 * (u * u - 1) * u / half_width
+    return force
+
+
+def _flat(x):
+    return np.zeros_like(x)
+
+
+def _write_walkers(out_dir, xs, *, seed, prefix="run", timestep_ps=0.1):
+    """A four-atom 'walker' per row of `xs`: C2 at distance x (nm) from C1 along x, C3 and C4
+    jiggling fast (AR(1), coefficient 0.3). Writes walker.pdb and one XTC per row."""
+    top = _walker_topology()
+    rng = np.random.default_rng(seed)
+    paths = []
+    for r, x in enumerate(xs):
+        n = x.size
+        xyz = np.zeros((n, 4, 3))
+        xyz[:, 1, 0] = x
+        noise = np.empty((n, 2, 3))
+        noise[0] = rng.normal(0, 0.02, (2, 3))
+        for t in range(1, n):
+            noise[t] = 0.3 * noise[t - 1] + rng.normal(0, 0.02 * math.sqrt(1 - 0.09), (2, 3))
+        xyz[:, 2] = np.array([0.0, 0.5, 0.0]) + noise[:, 0]
+        xyz[:, 3] = np.array([0.4, 0.4, 0.3]) + noise[:, 1]
+        path = out_dir / f"{prefix}-{r + 1}.xtc"
+        md.Trajectory(xyz.astype(np.float32), top,
+                      time=np.arange(n) * timestep_ps).save_xtc(str(path))
+        paths.append(str(path))
+    pdb = out_dir / "walker.pdb"
+    md.Trajectory(np.zeros((1, 4, 3), dtype=np.float32) + [[0, 0, 0], [0.5, 0, 0], [0, 0.5, 0],
+                                                           [0.4, 0.4, 0.3]], top).save_pdb(str(pdb))
+    return str(pdb), paths
+
+
+def _runs_source(top, paths):
+    src = Source(top)
+    for p in paths:
+        src.add(p, "runs")
+    return src
+
+
+@pytest.fixture(scope="module")
+def softened_two_wells(tmp_path_factory):
+    """The testbed's two-wells toy with its slow torsion softened to 0.45 of its strength
+    (barrier 13.5 kJ/mol, about 5.4 kT at 300 K), so that runs cross it a few times: four
+    runs of 2000 frames 0.06 ps apart, two started in each slow well. Returns the topology,
+    the run files, and the slow well of every frame read back from the files."""
+    out = tmp_path_factory.mktemp("soft_two_wells")
+    system = two_wells()
+    ff = system.force_field.with_torsion_scale(system.slow_dihedral, 0.45)
+    integ = LangevinBAOAB(ff, system.masses, temperature=300.0, friction=1.0,
+                            timestep=0.005, seed=12)
+    x0 = np.stack([system.states[s] for s in ("slowA", "slowA", "slowB", "slowB")])
+    xyz, _ = integ.run(x0, 2000 * 12, 12)
+    top = out / "two_wells.pdb"
+    write_pdb(top, system.topology, system.states["slowA"], title="softened two-wells toy")
+    paths, wells, crossings = [], {}, {}
+    for w in range(4):
+        path = out / f"run-{w + 1}.xtc"
+        md.Trajectory(xyz[:, w].astype(np.float32), system.topology,
+                      time=np.arange(xyz.shape[0]) * 0.06).save_xtc(str(path))
+        back = md.load(str(path), top=str(top)).xyz.astype(np.float64)
+        wells[str(path)] = system.assign_state(back)
+        crossings[str(path)] = count_transitions(system.slow_angle(back))
+        paths.append(str(path))
+    return {"topology": str(top), "paths": paths, "wells": wells, "crossings": crossings,
+            "slow_dihedral": system.slow_dihedral}
+
+
+# ---------------------------------------------------------------------------- the criterion
+def test_staying_probability_of_a_two_state_markov_chain_converges_to_the_closed_form():
+    # Two-state chain P = [[1 - a, a], [b, 1 - b]]: the n-step staying probability is
+    # p11(n) = b/(a+b) + a/(a+b) (1-a-b)^n (Norris, Markov Chains, 1997, section 1.1), the
+    # stationary population of state 1 is b/(a+b), so the memory (p11 - pi1)/(1 - pi1) is
+    # (1-a-b)^n, the chain's second eigenvalue to the power n.
+    rng = np.random.default_rng(4)
+    a, b = 0.02, 0.05
+    P = np.array([[1 - a, a], [b, 1 - b]])
+
+    def chain(n_steps):
+        s = np.empty(n_steps, dtype=np.intp)
+        s[0] = 0
+        u = rng.random(n_steps)
+        for t in range(1, n_steps):
+            s[t] = s[t - 1] if u[t] < P[s[t - 1], s[t - 1]] else 1 - s[t - 1]
+        return s
+
+    runs = [chain(100_000) for _ in range(4)]
+    for lag in (1, 5, 20):
+        kin = state_kinetics([(s, lag, None) for s in runs], ["A", "B"])
+        exact_stay = [b / (a + b) + a / (a + b) * (1 - a - b) ** lag,
+                      a / (a + b) + b / (a + b) * (1 - a - b) ** lag]
+        # 400,000 frames, about 1,000 independent visits per state: a few 0.001
+        assert kin.staying == pytest.approx(exact_stay, abs=0.006)
+        assert kin.memory == pytest.approx([(1 - a - b) ** lag] * 2, abs=0.02)
+        assert kin.populations == pytest.approx([b / (a + b), a / (a + b)], abs=0.03)
+        # memory 0.93, 0.70, 0.23: metastable at the two shorter lags only
+        assert kin.metastable.all() == ((1 - a - b) ** lag >= MIN_MEMORY)
+        # every lagged pair is counted once, within runs: n - lag pairs per run
+        assert kin.counts.sum() == 4 * (100_000 - lag)
+    assert "with probability only" in kin.reasons[0]
+    # a chain without memory (both rows equal): staying probability = population
+    flat = [(rng.integers(0, 2, 50_000), 1, None)]
+    kin = state_kinetics(flat, ["A", "B"])
+    assert kin.memory == pytest.approx([0.0, 0.0], abs=0.02)
+    assert not kin.metastable.any()
+    assert "with no memory (memory" in kin.reasons[0]
+
+
+def test_transitions_are_counted_within_runs_only_and_flickers_do_not_count():
+    # run 1: A for 6 frames, one frame of B (a flicker), A again; run 2: all B. With a lag
+    # of 2 frames no pair spans the two runs, and the one-frame visit is no transition.
+    run1 = np.array([0] * 6 + [1] + [0] * 6)
+    run2 = np.array([1] * 8)
+    kin = state_kinetics([(run1, 2, None), (run2, 2, None)], ["A", "B"])
+    pairs1 = list(zip(run1[:-2], run1[2:]))
+    assert kin.counts.tolist() == [[pairs1.count((0, 0)), pairs1.count((0, 1))],
+                                   [pairs1.count((1, 0)), pairs1.count((1, 1)) + 6]]
+    assert kin.n_transitions == 0 and kin.exits.tolist() == [0, 0]
+    assert not kin.metastable.any()
+    assert all("no transition into or out of it" in r for r in kin.reasons)
+    # a visit to B that lasts the lag is a transition (out of A, into B)
+    run3 = np.array([0] * 6 + [1] * 3 + [0] * 6)
+    kin = state_kinetics([(run3, 2, None)], ["A", "B"])
+    assert kin.n_transitions == 2 and kin.exits.tolist() == [1, 1]
+
+
+def test_separation_of_timescales_uses_the_autocorrelation_inside_each_state():
+    # Inside-state coordinates that never decorrelate (a slow drift) versus ones drawn
+    # afresh every frame: same labels, same memory, opposite verdicts.
+    rng = np.random.default_rng(9)
+    labels = np.repeat(np.arange(40) % 2, 250)          # visits of 250 frames
+    drift = np.cumsum(rng.normal(size=labels.size))[:, None]
+    fresh = rng.normal(size=(labels.size, 1))
+    lag = 5
+    slow = state_kinetics([(labels, lag, drift)], ["A", "B"], lag_ps=0.5)
+    fast = state_kinetics([(labels, lag, fresh)], ["A", "B"], lag_ps=0.5)
+    assert slow.memory == pytest.approx(fast.memory)
+    assert (slow.memory > MIN_MEMORY).all()
+    assert fast.within == pytest.approx([0, 0], abs=0.05) and fast.metastable.all()
+    assert (slow.within > 0.9).all() and (slow.separation < MIN_SEPARATION).all()
+    assert not slow.metastable.any() and "random walk" in slow.reasons[0]
+    assert slow.memory_time_ps(0) == pytest.approx(-0.5 / math.log(slow.memory[0]))
+
+
+# ---------------------------------------------------------------------------- propose_states
+def test_double_well_runs_with_transitions_give_two_metastable_states(tmp_path):
+    xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
+    top, paths = _write_walkers(tmp_path, xs, seed=2)
+    exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+    assert exp.states == ["S1", "S2"] and exp.warnings == []
+    kin = exp.kinetics
+    assert kin.metastable.all() and kin.n_transitions >= 5
+    assert (kin.staying > 0.95).all() and (kin.separation > MIN_SEPARATION).all()
+    truth = np.concatenate([x > 0.6 for x in xs]).astype(int)
+    pred = np.concatenate([exp.labels[p] for p in paths]).astype(str)
+    # adjusted Rand index (Hubert and Arabie, J. Classif. 1985) against the wells
+    assert adjusted_rand_score(truth, pred) > 0.9
+
+
+@pytest.mark.parametrize("walk", ["flat", "ar1"])
+def test_random_walk_runs_are_refused_as_not_metastable(tmp_path, walk):
+    if walk == "flat":
+        # a Brownian particle between two walls, no barrier, crossing them a few times
+        xs = _langevin_1d(_flat, np.linspace(0.4, 0.8, 4), 2000, seed=3, diffusion=2e-4)
+    else:
+        # AR(1) with coefficient 0.99: one Gaussian basin with a long memory, no barrier
+        rng = np.random.default_rng(5)
+        phi = 0.99
+        z = np.empty((4, 2000))
+        z[:, 0] = rng.normal(size=4)
+        for t in range(1, 2000):
+            z[:, t] = phi * z[:, t - 1] + math.sqrt(1 - phi**2) * rng.normal(size=4)
+        xs = 0.6 + 0.08 * z
+    top, paths = _write_walkers(tmp_path, xs, seed=2)
+    with pytest.raises(InputError, match=r"proposed states is metastable at lag 1 ps: S1 "
+                                         r"\(population .*, stays 1 ps with probability .*"
+                                         r"a piece of a random walk, not a metastable state.*"
+                                         r"lag-time transition counts: S1 -> S1 \d+.*"
+                                         r"give the states yourself with --state"):
+        propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+
+
+def test_runs_that_each_stay_in_one_state_are_refused(demo_files):
+    # The demo's runs never cross their barrier: one state per group of files, no
+    # transition, so nothing in the data shows the states are metastable.
+    top, states = demo_files
+    src = _runs_source(top, [states["closed"][0], states["open"][0]])
+    for n_states in (None, 2):
+        with pytest.raises(InputError, match=r"none of the 2 proposed states is metastable at "
+                                             r"lag 2 ps: S1 \(population 0.50, stays 2 ps with "
+                                             r"probability 1.00\): no transition into or out "
+                                             r"of it in the runs.*contain 0 transitions.*"
+                                             r"S1 -> S1 1990, S2 0"):
+            propose_states(src, lag=2.0, n_states=n_states)
+
+
+def test_a_run_isolated_in_its_own_state_is_warned_about(tmp_path):
+    # Two runs hop between two wells; a third stays in a far well all along.
+    hop = _langevin_1d(_double_well(5.0), [0.4, 0.8], 2000, seed=3)
+    far = _langevin_1d(_double_well(5.0, center=1.3, half_width=0.1), [1.2], 2000, seed=4,
+                       walls=(1.1, 1.3))
+    top, paths = _write_walkers(tmp_path, np.vstack([hop, far]), seed=2)
+    exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+    assert exp.states == ["S1", "S2", "S3"]
+    assert (exp.labels[paths[2]] == "S3").mean() > 0.99
+    assert exp.kinetics.metastable.tolist() == [True, True, False]
+    assert len(exp.warnings) == 1
+    assert exp.warnings[0].startswith("state S3 is not metastable at lag 1 ps: no transition")
+    assert "rule" in exp.criterion and "fraction of metastable states" in exp.criterion["rule"]
+    summary = "\n".join(exp.summary_lines())
+    assert "**warning**: state S3 is not metastable" in summary
+    assert "| S3 |" in summary and "| NO |" in summary
+
+
+def test_softened_two_wells_testbed_states_are_accepted_and_fewest_metastable_chosen(
+        softened_two_wells):
+    data = softened_two_wells
+    assert all(c >= 1 for c in data["crossings"].values())  # the runs do cross
+    exp = propose_states(_runs_source(data["topology"], data["paths"]), lag=0.6)
+    crit = exp.criterion
+    assert exp.states == ["S1", "S2"] and exp.warnings == []
+    assert (exp.kinetics.staying > 0.95).all() and exp.kinetics.n_transitions >= 5
+    # a finer clustering (slow wells split by the fast torsion) has the larger silhouette,
+    # but its states are not all metastable: the two metastable states are chosen
+    assert max(crit["values"], key=crit["values"].get) > 2
+    assert crit["all_metastable"][2] and not crit["all_metastable"][4]
+    truth = np.concatenate([data["wells"][p] for p in data["paths"]]).astype(str)
+    pred = np.concatenate([exp.labels[p] for p in data["paths"]]).astype(str)
+    keep = truth != ""
+    assert adjusted_rand_score(truth[keep], pred[keep]) > 0.95
+    res = suggest(exp.labelled_source(data["topology"]), n_bootstrap=0, max_terms=2,
+                  n_suggestions=1)
+    slow_id = "dihedral:" + "-".join(map(str, data["slow_dihedral"]))
+    assert slow_id in {t["descriptor"] for t in res.ranking[0]["terms"]}
+
+
+def test_cli_runs_writes_staying_probabilities_and_prints_metastable_warnings(
+        tmp_path, capsys):
+    hop = _langevin_1d(_double_well(5.0), [0.4, 0.8], 2000, seed=3)
+    far = _langevin_1d(_double_well(5.0, center=1.3, half_width=0.1), [1.2], 2000, seed=4,
+                       walls=(1.1, 1.3))
+    top, paths = _write_walkers(tmp_path, np.vstack([hop, far]), seed=2)
+    out = tmp_path / "out"
+    assert main(["suggest", "--topology", top, "--runs", *paths, "--lag", "1", "--kinds",
+                 "distance", "--out", str(out), "--bootstrap", "0", "--max-terms", "1",
+                 "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert "cvdesign: warning: state S3 is not metastable at lag 1 ps" in err
+    summary = (out / "summary.md").read_text()
+    assert "staying probability" in summary and "Lag-time transition counts" in summary
+    assert "**warning**: state S3 is not metastable" in summary
+    lines = (out / "states.csv").read_text().splitlines()
+    assert lines[0] == "file,frame,state" and len(lines) == 1 + 3 * 2000
+
+
+def test_cli_refuses_runs_without_metastable_states_and_writes_nothing(demo_files, tmp_path,
+                                                                       capsys):
+    top, states = demo_files
+    out = tmp_path / "out"
+    assert main(["suggest", "--topology", top, "--runs", states["closed"][0],
+                 states["open"][0], "--lag", "2", "--out", str(out), "--bootstrap", "0"]) == 2
+    err = capsys.readouterr().err
+    assert "error: none of the 2 proposed states is metastable" in err
+    assert "Traceback" not in err and not out.exists()

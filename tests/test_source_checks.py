@@ -1,0 +1,137 @@
+"""Reading trajectories (issue 9): stored times that do not increase, non-finite coordinates."""
+
+import json
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign import InputError, Source, suggest
+from cvdesign.cli import main
+from cvdesign.explore import propose_states
+
+
+def _copy(src, dst, top, *, n_frames=300, time=None, bad=None):
+    """Write the first `n_frames` of `src` to `dst` (format from the suffix), with the
+    given stored times and, for `bad = (frame, atom, value)`, one coordinate replaced."""
+    traj = md.load(src, top=top)[:n_frames]
+    if time is not None:
+        traj.time = np.asarray(time, dtype=np.float64)
+    if bad is not None:
+        frame, atom, value = bad
+        traj.xyz[frame, atom, 1] = value
+    traj.save(str(dst))
+    return str(dst)
+
+
+@pytest.fixture(scope="module")
+def demo_two(demo_files):
+    top, states = demo_files
+    return top, states["closed"][0], states["open"][0]
+
+
+# ---------------------------------------------------------------------------- stored times
+@pytest.fixture(params=["zero", "decreasing"])
+def untimed(request, demo_two, tmp_path):
+    """(kind, topology, closed file, open file): 300 demo frames each, written as XTC with
+    stored times all zero or decreasing from 100 ps by 0.2 ps."""
+    top, closed, opened = demo_two
+    time = np.zeros(300) if request.param == "zero" else 100.0 - 0.2 * np.arange(300)
+    return (request.param, top, _copy(closed, tmp_path / "c.xtc", top, time=time),
+            _copy(opened, tmp_path / "o.xtc", top, time=time))
+
+
+def test_stored_times_that_do_not_increase_are_refused_without_a_frame_spacing(untimed):
+    kind, top, a, b = untimed
+    what = (r"stores the same time \(0 ps\) for its first two frames" if kind == "zero" else
+            r"stores times that do not increase \(frame 0 at 100 ps, frame 1 at 99.8 ps\)")
+    with pytest.raises(InputError, match=r"trajectory '.*c.xtc' " + what + r", so the time "
+                                         r"between its frames is unknown.*give the time "
+                                         r"between frames in ps \(--frame-step-ps"):
+        suggest(Source.from_states(top, {"closed": [a], "open": [b]}), n_bootstrap=0)
+    src = Source(top)
+    src.add(a, "runs")
+    with pytest.raises(InputError, match="give the time between frames in ps"):
+        propose_states(src, lag=2.0)
+
+
+def test_given_frame_spacing_replaces_stored_times_that_do_not_increase_and_says_so(
+        untimed, demo_two, tmp_path):
+    _, top, a, b = untimed
+    _, closed, opened = demo_two
+    res = suggest(Source.from_states(top, {"closed": [a], "open": [b]}, timestep=0.2),
+                  objective="both", lag=2.0, n_bootstrap=0, max_terms=1, n_suggestions=1)
+    assert [i["timestep_ps"] for i in res.inputs] == [0.2, 0.2]
+    said = [n for n in res.notes if "they are ignored and the given time between frames, "
+                                    "0.2 ps, is used instead" in n]
+    assert len(said) == 2 and said[0].startswith("trajectory c.xtc stores ")
+    # the lag of 2 ps is 10 frames: the same autocorrelation as the original files
+    ref = suggest(Source.from_states(top, {"closed": [_copy(closed, tmp_path / "c0.xtc", top)],
+                                           "open": [_copy(opened, tmp_path / "o0.xtc", top)]}),
+                  objective="both", lag=2.0, n_bootstrap=0, max_terms=1, n_suggestions=1)
+    assert res.ranking[0]["heldout_autocorrelation"] == pytest.approx(
+        ref.ranking[0]["heldout_autocorrelation"], rel=1e-12)
+
+
+def test_increasing_stored_times_are_kept_when_a_frame_spacing_is_given(demo_two, tmp_path):
+    top, closed, _ = demo_two
+    a = _copy(closed, tmp_path / "c.xtc", top, time=0.5 * np.arange(300))
+    src = Source(top, timestep=0.2)
+    src.add(a, "runs")
+    assert src.timestep(0) == pytest.approx(0.5) and src.notes == []
+    assert not src.stored_times_ignored(0)
+
+
+# ---------------------------------------------------------------------------- NaN / inf
+# XTC is not used: it compresses coordinates to integers, so a NaN does not survive
+@pytest.mark.filterwarnings("ignore:.*netCDF4:UserWarning")  # mdtraj falls back to scipy
+@pytest.mark.parametrize("fmt,value", [("dcd", np.nan), ("trr", np.inf), ("nc", np.nan)])
+def test_non_finite_coordinates_are_refused_naming_file_frame_and_atom(demo_two, tmp_path, fmt,
+                                                                       value):
+    top, closed, opened = demo_two
+    bad = _copy(opened, tmp_path / f"bad.{fmt}", top, bad=(207, 3, value))
+    # the file keeps the non-finite value (the check is not vacuous for this format)
+    assert not np.isfinite(md.load(bad, top=top).xyz[207, 3, 1])
+    src = Source(top, chunk_size=50)  # frame 207 is in the fifth chunk: frames are absolute
+    src.add(closed, "closed")
+    src.add(bad, "open")
+    with pytest.raises(InputError, match=rf"trajectory '.*bad.{fmt}' frame 207 has a NaN or "
+                                         r"infinite coordinate for atom 3 \(LCH1-C4\): "
+                                         r"\[.*, (nan|inf), .*\] nm"):
+        suggest(src, n_bootstrap=0)
+
+
+def test_non_finite_coordinates_of_atoms_not_read_are_not_looked_at(demo_two, tmp_path):
+    top, closed, opened = demo_two
+    bad = _copy(opened, tmp_path / "bad.dcd", top, bad=(5, 11, np.nan))
+    src = Source(top)
+    src.add(bad, "open")
+    frames = sum(c.frames.size for c in src.iter_chunks(atom_indices=[0, 1, 2]))
+    assert frames == 300
+    with pytest.raises(InputError, match="frame 5 has a NaN or infinite coordinate for atom "
+                                         "11"):
+        list(src.iter_chunks(atom_indices=[0, 11]))
+
+
+def test_cli_suggest_and_check_refuse_non_finite_coordinates(demo_two, tmp_path, capsys):
+    top, closed, opened = demo_two
+    bad = _copy(opened, tmp_path / "bad.dcd", top, bad=(17, 4, np.nan))
+    out = tmp_path / "out"
+    assert main(["suggest", "--topology", top, "--state", "closed", closed, "--state", "open",
+                 bad, "--out", str(out), "--bootstrap", "0"]) == 2
+    err = capsys.readouterr().err
+    assert "error: trajectory" in err and "bad.dcd' frame 17 has a NaN or infinite " \
+                                          "coordinate for atom 4 (LCH1-C5)" in err
+    assert "Traceback" not in err and not out.exists()
+    # check --against reads the trajectory through the same reader
+    res = suggest(Source.from_states(top, {"closed": [closed], "open": [opened]}),
+                  n_bootstrap=0, max_terms=1, n_suggestions=1)
+    spec = tmp_path / "cv.json"
+    spec.write_text(json.dumps(res.specs[0]))
+    values = tmp_path / "values.csv"
+    values.write_text("value\n" + "0.0\n" * 300)
+    before = sorted(p.name for p in tmp_path.iterdir())
+    assert main(["check", str(spec), "--topology", top, "--against", str(values), bad]) == 2
+    err = capsys.readouterr().err
+    assert "bad.dcd' frame 17 has a NaN or infinite coordinate for atom 4 (LCH1-C5)" in err
+    assert "Traceback" not in err and sorted(p.name for p in tmp_path.iterdir()) == before
