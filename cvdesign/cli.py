@@ -650,15 +650,7 @@ def _cmd_funnel(args):
 
     def chunks():
         for c in source.iter_chunks(atom_indices=atoms):
-            xyz = c.trajectory.xyz.astype(np.float64)
-            bad = ~np.isfinite(xyz).all(axis=2)
-            if bad.any():
-                f, j = (int(v) for v in np.argwhere(bad)[0])
-                role = "--pocket" if j < pocket.size else "--ligand"
-                raise InputError(
-                    f"trajectory {str(source.segments[c.segment_index].path)!r} frame "
-                    f"{int(c.frames[f])} (0-based): atom {int(atoms[j])} ({top.atom(int(atoms[j]))}, "
-                    f"selected by {role}) has NaN or infinite coordinates; check the file")
+            xyz = c.trajectory.xyz.astype(np.float64)  # finite: checked by iter_chunks
             box = c.trajectory.unitcell_vectors
             yield (xyz[:, :pocket.size], xyz[:, pocket.size:],
                    None if box is None else box.astype(np.float64))
