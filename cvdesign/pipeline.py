@@ -153,7 +153,7 @@ class Suggestions:
                 "timescale_ps", "timescale_ci_low_ps", "timescale_ci_high_ps",
                 "timescale_resolved",
                 "integrated_time_ps", "integrated_time_ci_low_ps", "integrated_time_ci_high_ps",
-                "terms", "weights", "weight_ci", "selection_frequency"]
+                "terms", "weights", "weight_ci", "selection_frequency", "reproduced_in_refits"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(cols)
@@ -184,7 +184,8 @@ class Suggestions:
                         " ".join(_fmt(t["weight"]) for t in r["terms"]),
                         " ".join("[" + ",".join(_fmt(v) for v in t["weight_ci"]) + "]"
                                  if t.get("weight_ci") else "" for t in r["terms"]),
-                        " ".join(_fmt(t.get("selection_frequency")) for t in r["terms"])])
+                        " ".join(_fmt(t.get("selection_frequency")) for t in r["terms"]),
+                        _fmt(r.get("reproduced_in_refits"))])
         return buf.getvalue()
 
     def ranking_json(self):

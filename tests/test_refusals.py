@@ -96,7 +96,10 @@ def test_selection_frequencies_describe_the_cv_they_stand_beside(demo_files, obj
     top, states = demo_files
     result = suggest(Source.from_states(top, states), objective=objective, lag=2.0,
                      n_bootstrap=20, max_terms=2, n_suggestions=2)
-    for r in result.ranking:
+    table = list(csv.DictReader(io.StringIO(result.ranking_csv())))
+    for r, row in zip(result.ranking, table):
         assert r["reproduced_in_refits"] is not None
+        assert float(row["reproduced_in_refits"]) == pytest.approx(r["reproduced_in_refits"],
+                                                                  rel=1e-5)
         for t in r["terms"]:
             assert t["selection_frequency"] >= 0.8, (r["rank"], t["label"])

@@ -15,7 +15,13 @@ def _run(script, cwd, *args):
                           text=True, cwd=cwd)
 
 
-@pytest.fixture(scope="module", params=TUTORIALS, ids=[p.name for p in TUTORIALS])
+#: Tutorials that run for about a minute; CI runs them, ``-m "not slow"`` skips them.
+SLOW = {"03_hand_off.py"}
+
+
+@pytest.fixture(scope="module", params=[
+    pytest.param(p, id=p.name, marks=[pytest.mark.slow] if p.name in SLOW else [])
+    for p in TUTORIALS])
 def tutorial_run(request, tmp_path_factory):
     """(script, working directory, output directory, completed process), run once each."""
     cwd = tmp_path_factory.mktemp("tutorial")

@@ -131,6 +131,7 @@ def test_torsion_is_decoupled_unbiased_low_barrier():
     assert measured == pytest.approx(_reference(system), abs=0.6)
 
 
+@pytest.mark.slow
 def test_metadynamics_recovers_reference_delta_f_and_crosses():
     system = asymmetric_torsion()  # barrier ~20 kJ/mol (8 kT), wells 4 kJ/mol apart
     reference = _reference(system)
