@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .estimators import TICA, discriminant_directions, rayleigh_quotient
+from .estimators import TICA, discriminant_directions, rayleigh_quotient, two_state_direction
 from .moments import merge_all
 from .vamp import vamp2_score
 
@@ -162,6 +162,11 @@ def fit_direction(moments, idx, priors, shrinkage, *, method="lda"):
         Unit-length direction.
     """
     means, covs = state_arrays(moments, idx)
+    if len(means) == 2:  # one or two linear solves instead of an eigenproblem
+        w = two_state_direction(means, covs, priors, shrinkage=shrinkage,
+                                within=_within(method))
+        if w is not None:
+            return w
     _, vecs = discriminant_directions(means, covs, priors, shrinkage=shrinkage,
                                       within=_within(method))
     return vecs[:, 0]

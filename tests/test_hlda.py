@@ -151,3 +151,24 @@ def test_bad_arguments_are_named():
         HLDA.from_moments([_exact_moments(MU_A, SIG_A, 5)])
     with pytest.raises(ValueError, match=r"moments\[1\] is empty"):
         HLDA.from_moments([_exact_moments(MU_A, SIG_A, 5), Moments(3)])
+
+
+@pytest.mark.parametrize("within", ["arithmetic", "harmonic"])
+@pytest.mark.parametrize("shrinkage", [0.0, 1e-3, 0.3])
+def test_two_state_solve_equals_the_first_generalized_eigenvector(within, shrinkage):
+    # With two states S_b has rank one, so the eigenproblem's first direction is
+    # S_w^-1 (mu_1 - mu_0) (Fisher 1936); the fast path must agree with the eigensolver.
+    from cvdesign.estimators import discriminant_directions, two_state_direction
+
+    rng = np.random.default_rng(41)
+    for p in (1, 2, 5, 12):
+        means = rng.normal(size=(2, p))
+        covs = []
+        for _ in range(2):
+            a = rng.normal(size=(p, p))
+            covs.append(a @ a.T / p + 0.05 * np.eye(p))
+        fast = two_state_direction(means, covs, [0.5, 0.5], shrinkage=shrinkage, within=within)
+        _, vecs = discriminant_directions(means, covs, [0.5, 0.5], shrinkage=shrinkage,
+                                          within=within)
+        np.testing.assert_allclose(fast, vecs[:, 0], rtol=0, atol=1e-9)
+    assert two_state_direction(np.zeros((2, 3)), [np.eye(3)] * 2, [0.5, 0.5]) is None
