@@ -119,22 +119,38 @@ class _Raw:
                        for b in blocks)
         return False
 
-    def combine(self, weights):
-        if self.kind is ArraySum:
-            return ArraySum(**{k: (weights @ arr).reshape(self.shapes[k])
-                               for k, arr in self.fields.items()})
+    def n_values(self):
+        """Numbers a combined block holds (for batching replicates within memory)."""
         if self.kind is Moments:
-            n = float(weights @ self.n)
-            m = Moments(self.s1.shape[1])
-            if n <= 0:
-                return m
-            m.count = n
-            m.mean = (weights @ self.s1) / n
-            m.scatter = (weights @ self.s2).reshape(self.shape) - n * np.outer(m.mean, m.mean)
+            return self.s2.shape[1] + self.s1.shape[1] + 1
+        return sum(arr.shape[1] for arr in self.fields.values())
+
+    def combine_many(self, weights):
+        """The merged block of each row of `weights` (block multiplicities of one
+        replicate), with one matrix product per field for all rows."""
+        weights = np.asarray(weights, dtype=np.float64)
+        if self.kind is Moments:
+            n, s1, s2 = weights @ self.n, weights @ self.s1, weights @ self.s2
+            return [self._moments(n[i], s1[i], s2[i]) for i in range(len(weights))]
+        sums = {k: weights @ arr for k, arr in self.fields.items()}
+        return [self._from_sums({k: v[i] for k, v in sums.items()}) for i in range(len(weights))]
+
+    def _moments(self, n, s1, s2):
+        m = Moments(self.s1.shape[1])
+        n = float(n)
+        if n <= 0:
             return m
+        m.count = n
+        m.mean = s1 / n
+        m.scatter = s2.reshape(self.shape) - n * np.outer(m.mean, m.mean)
+        return m
+
+    def _from_sums(self, sums):
+        if self.kind is ArraySum:
+            return ArraySum(**{k: v.reshape(self.shapes[k]) for k, v in sums.items()})
         out = self.template.copy()
-        for f, arr in self.fields.items():
-            val = (weights @ arr).reshape(self.shapes[f])
+        for f, v in sums.items():
+            val = v.reshape(self.shapes[f])
             if f == "n_pairs":
                 val = int(round(float(val)))
             elif f == "count":
@@ -258,21 +274,41 @@ def block_bootstrap(groups, statistic, *, n_boot=200, seed=0, level=0.95):
         raise ValueError(f"level={level!r} must be in (0, 1)")
     estimate = np.asarray(statistic([merge_blocks(g) for g in groups]), dtype=np.float64)
     rng = np.random.default_rng(seed)
-    reps = np.full((int(n_boot),) + estimate.shape, np.nan)
+    n_boot = int(n_boot)
+    reps = np.full((n_boot,) + estimate.shape, np.nan)
+    draws = [[rng.integers(0, len(g), len(g)) for g in groups] for _ in range(n_boot)]
     fast = _fast_groups(groups)
-    for r in range(int(n_boot)):
-        draws = [rng.integers(0, len(g), len(g)) for g in groups]
-        if fast is not None:
-            merged = []
-            for (is_tuple, raws), d, g in zip(fast, draws, groups):
-                w = np.bincount(d, minlength=len(g)).astype(np.float64)
-                parts = [None if raw is None else raw.combine(w) for raw in raws]
-                merged.append(tuple(parts) if is_tuple else parts[0])
-        else:
-            merged = [merge_blocks([g[i] for i in d]) for g, d in zip(groups, draws)]
-        try:
-            reps[r] = statistic(merged)
-        except (ValueError, np.linalg.LinAlgError, ZeroDivisionError):
-            continue
+    if fast is None:
+        for r in range(n_boot):
+            merged = [merge_blocks([g[i] for i in d]) for g, d in zip(groups, draws[r])]
+            _replicate(reps, r, statistic, merged)
+    else:
+        # block counts of every replicate, then one matrix product per field for a batch
+        # of replicates (bounded memory) instead of one product per replicate
+        counts = [np.array([np.bincount(draws[r][gi], minlength=len(g)) for r in range(n_boot)],
+                           dtype=np.float64) for gi, g in enumerate(groups)]
+        width = sum(raw.n_values() for _, raws in fast for raw in raws if raw is not None)
+        batch = max(1, min(n_boot, _BATCH_VALUES // max(1, width)))
+        for lo in range(0, n_boot, batch):
+            hi = min(n_boot, lo + batch)
+            per_group = []
+            for (is_tuple, raws), c in zip(fast, counts):
+                parts = [[None] * (hi - lo) if raw is None else raw.combine_many(c[lo:hi])
+                         for raw in raws]
+                per_group.append([tuple(p) if is_tuple else p[0] for p in zip(*parts)])
+            for r in range(lo, hi):
+                _replicate(reps, r, statistic, [g[r - lo] for g in per_group])
     low, high = percentile_interval(reps, level)
     return BootstrapResult(estimate, reps, low, high, level)
+
+
+#: Numbers held at once for a batch of bootstrap replicates (about 256 MiB of float64).
+_BATCH_VALUES = 32 * 2**20
+
+
+def _replicate(reps, r, statistic, merged):
+    """Replicate `r` of the statistic; NaN when it cannot be computed on this resample."""
+    try:
+        reps[r] = statistic(merged)
+    except (ValueError, np.linalg.LinAlgError, ZeroDivisionError):
+        pass
