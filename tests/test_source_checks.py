@@ -9,6 +9,7 @@ import pytest
 from cvdesign import InputError, Source, suggest
 from cvdesign.cli import main
 from cvdesign.explore import propose_states
+from cvdesign.source import MAX_COORDINATE_NM
 
 
 def _copy(src, dst, top, *, n_frames=300, time=None, bad=None):
@@ -99,6 +100,31 @@ def test_non_finite_coordinates_are_refused_naming_file_frame_and_atom(demo_two,
                                          r"infinite coordinate for atom 3 \(LCH1-C4\): "
                                          r"\[.*, (nan|inf), .*\] nm"):
         suggest(src, n_bootstrap=0)
+
+
+@pytest.mark.parametrize("fmt,value", [("xtc", np.nan), ("dcd", -2147483.6), ("dcd", 3e5)])
+def test_coordinates_far_outside_any_box_are_refused_as_a_nan_stored_by_xtc(demo_two, tmp_path,
+                                                                          fmt, value):
+    # A compressed XTC file stores integers: a NaN written to one reads back as about
+    # -2147483.6 nm on x86 (the smallest 32-bit integer over the precision 1000; the
+    # overflow may spoil other atoms of the frame too), which was accepted and silently
+    # spoiled every descriptor of those atoms. Any coordinate beyond
+    # MAX_COORDINATE_NM is refused like a NaN, whatever the format.
+    top, closed, opened = demo_two
+    bad = _copy(opened, tmp_path / f"bad.{fmt}", top, bad=(123, 6, value))
+    back = float(md.load(bad, top=top).xyz[123, 6, 1])
+    if fmt == "xtc" and abs(back) <= MAX_COORDINATE_NM:
+        pytest.skip(f"this platform's XTC writer stores a NaN as {back} nm")
+    src = Source.from_states(top, {"closed": [closed], "open": [bad]})
+    with pytest.raises(InputError, match=rf"trajectory '.*bad\.{fmt}' frame 123 has a "
+                                         r"coordinate beyond 100000 nm \(far outside any "
+                                         r"simulation box; an XTC file stores a NaN as about "
+                                         r"-2147483\.6 nm\) for atom "
+                                         + (r"\d+" if fmt == "xtc" else r"6 \(LCH1-C7\)")):
+        suggest(src, n_bootstrap=0)
+    # a coordinate of the largest accepted size, and the demo itself, pass the check
+    assert sum(c.frames.size for c in Source.from_states(top, {"o": [opened]}).iter_chunks()) \
+        == md.load(opened, top=top).n_frames
 
 
 def test_non_finite_coordinates_of_atoms_not_read_are_not_looked_at(demo_two, tmp_path):
