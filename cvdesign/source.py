@@ -717,6 +717,13 @@ class Source:
                                        (float(first.time[0]), float(first.time[1])))
         return self._stored_steps[key]
 
+    def stored_times_increase(self, segment_index):
+        """False when a segment's file stores times that do not increase (all zero, as some
+        writers store, or decreasing), judged from its first two frames; else True."""
+        seg = self.segments[segment_index]
+        times = self._stored_step(seg.path) if stores_time(seg.path) else None
+        return times is None or times[1] > times[0]
+
     def stored_times_ignored(self, segment_index):
         """True when a segment's file stores times that do not increase and `timestep` replaces them."""
         seg = self.segments[segment_index]

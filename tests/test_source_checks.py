@@ -74,6 +74,24 @@ def test_given_frame_spacing_replaces_stored_times_that_do_not_increase_and_says
         ref.ranking[0]["heldout_autocorrelation"], rel=1e-12)
 
 
+def test_apply_leaves_time_empty_for_stored_times_that_do_not_increase(untimed, tmp_path,
+                                                                       capsys):
+    # apply used to copy the stored times into time_ps: all 0.0, or running backwards
+    kind, top, a, b = untimed
+    res = suggest(Source.from_states(top, {"closed": [a], "open": [b]}, timestep=0.2),
+                  n_bootstrap=0, max_terms=1, n_suggestions=1)
+    spec = tmp_path / "cv.json"
+    spec.write_text(json.dumps(res.specs[0]))
+    timed = _copy(a, tmp_path / "timed.xtc", top, time=0.5 * np.arange(300))
+    assert main(["apply", str(spec), "--topology", top, a, timed]) == 0
+    out, err = capsys.readouterr()
+    rows = [line.split(",") for line in out.splitlines()[1:]]
+    assert len(rows) == 600
+    assert {r[2] for r in rows if r[0] == "c.xtc"} == {""}
+    assert [float(r[2]) for r in rows if r[0] == "timed.xtc"][:3] == [0.0, 0.5, 1.0]
+    assert "c.xtc stores times that do not increase" in err and "timed.xtc" not in err
+
+
 def test_increasing_stored_times_are_kept_when_a_frame_spacing_is_given(demo_two, tmp_path):
     top, closed, _ = demo_two
     a = _copy(closed, tmp_path / "c.xtc", top, time=0.5 * np.arange(300))
