@@ -103,3 +103,24 @@ def test_selection_frequencies_describe_the_cv_they_stand_beside(demo_files, obj
                                                                   rel=1e-5)
         for t in r["terms"]:
             assert t["selection_frequency"] >= 0.8, (r["rank"], t["label"])
+
+
+def test_no_selection_frequencies_when_every_refit_would_see_the_same_data(
+        adk_result_for_redundancy):
+    # Adenylate kinase (MDAnalysis test data): 30 frames of one file per state, too short
+    # for the domain motion to decorrelate, so the bootstrap blocks are whole runs and each
+    # held-out fold holds a single block of each state. Resampling blocks within a state and
+    # fold then gives every refit the same data: selection 100 %, reproduced 1.0 and
+    # held-out intervals of zero width were reported as if measured.
+    res = adk_result_for_redundancy
+    assert any("blocks of whole runs" in n for n in res.notes)
+    (note,) = [n for n in res.notes if n.startswith("no selection frequencies")]
+    assert "a single bootstrap block in a held-out fold" in note
+    for r in res.ranking:
+        assert r["reproduced_in_refits"] is None
+        assert "heldout_score_ci" not in r and "heldout_fisher_ratio_ci" not in r
+        assert all("selection_frequency" not in t for t in r["terms"])
+        assert r["fisher_ratio_ci"] is not None  # the per-state bootstrap still runs
+    for row in csv.DictReader(io.StringIO(res.ranking_csv())):
+        assert row["selection_frequency"] == "" and row["reproduced_in_refits"] == ""
+        assert row["heldout_score_ci_low"] == "" and row["heldout_score_ci_high"] == ""
