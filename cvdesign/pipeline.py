@@ -807,7 +807,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         notes.append("time step unknown for " + ", ".join(unknown[:5])
                      + (" ..." if len(unknown) > 5 else "")
                      + " (the format stores no times, or a single frame)")
-    if lag1 is not None and lag1.moments().count == 0:
+    lagless = [] if lag1 is None else [
+        s for s in range(n_states) if lag1.moments(lambda key, s=s: key[1] == s).count == 0]
+    if lag1 is not None and len(lagless) == n_states:
         longest = _longest_run_text(seg_counts, timesteps)
         if objective in ("slow", "both"):
             raise InputError(
@@ -817,6 +819,26 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         notes.append(f"slowness not measured: no run is longer than the lag ({lag_ps:g} ps; "
                      f"{longest}), so there are no lagged pairs; the autocorrelation and "
                      "timescale columns are left empty (give a shorter --lag to measure them)")
+        lag1 = lag_frames = None
+        lag_ps = None
+    elif lagless:
+        # the other states' runs alone would measure motion within those states, not the
+        # slowness of a CV that separates them (the slow coordinate would look fast)
+        names = ", ".join(repr(source.states[s]) for s in lagless)
+        mask = np.zeros_like(seg_counts)
+        mask[:, lagless] = seg_counts[:, lagless]
+        longest = _longest_run_text(mask, timesteps)
+        if objective in ("slow", "both"):
+            raise InputError(
+                f"lag={lag_ps:g} ps is longer than every run of state(s) {names} ({longest}): "
+                "slowness would be measured on the other states' runs alone, within them, "
+                f"which objective {objective!r} cannot rank on; choose a shorter --lag or give "
+                "longer runs of those states")
+        notes.append(f"slowness not measured: no run of state(s) {names} is longer than the "
+                     f"lag ({lag_ps:g} ps; {longest}), and the other states' runs alone would "
+                     "measure motion within those states, not between them; the "
+                     "autocorrelation and timescale columns are left empty (give a shorter "
+                     "--lag or longer runs of those states to measure them)")
         lag1 = lag_frames = None
         lag_ps = None
     elif lag_ps is not None:

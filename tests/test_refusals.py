@@ -124,3 +124,42 @@ def test_no_selection_frequencies_when_every_refit_would_see_the_same_data(
     for row in csv.DictReader(io.StringIO(res.ranking_csv())):
         assert row["selection_frequency"] == "" and row["reproduced_in_refits"] == ""
         assert row["heldout_score_ci_low"] == "" and row["heldout_score_ci_high"] == ""
+
+
+@pytest.fixture(scope="module")
+def short_closed(demo_files, tmp_path_factory):
+    """Two closed runs of 20 frames (4 ps) and two full open runs (400 ps) of the demo."""
+    top, states = demo_files
+    d = tmp_path_factory.mktemp("short_closed")
+    closed = []
+    for k, f in enumerate(states["closed"][:2]):
+        path = d / f"closed-{k}.xtc"
+        md.load(f, top=top)[:20].save_xtc(str(path))
+        closed.append(str(path))
+    return Source.from_states(top, {"closed": closed, "open": states["open"][:2]})
+
+
+def test_lag_longer_than_every_run_of_one_state_leaves_slowness_unmeasured(short_closed):
+    # Only the open runs have lagged pairs at 10 ps: measured on them alone, the slow
+    # dihedral that separates the states relaxes within the open well (autocorrelation
+    # about 0.01) and was reported as fast; with --objective both it was dropped.
+    result = suggest(short_closed, lag=10.0, n_bootstrap=0, max_terms=1, n_suggestions=2)
+    assert result.ranking[0]["terms"][0]["descriptor"] == "dihedral:2-3-4-5"
+    (note,) = [n for n in result.notes if n.startswith("slowness not measured")]
+    assert "no run of state(s) 'closed' is longer than the lag (10 ps; the longest run is " \
+           "20 frames (4 ps))" in note
+    for r in result.ranking:
+        assert r["heldout_autocorrelation"] is None and r["timescale_ps"] is None
+    assert all(row["autocorrelation"] is None for row in result.scorecard)
+    assert all(row["heldout_autocorrelation"] == ""
+               for row in csv.DictReader(io.StringIO(result.ranking_csv())))
+
+
+@pytest.mark.parametrize("objective", ["slow", "both"])
+def test_lag_longer_than_every_run_of_one_state_is_refused_for_slowness_objectives(
+        short_closed, objective):
+    with pytest.raises(InputError, match=r"lag=10 ps is longer than every run of state\(s\) "
+                                         r"'closed' \(the longest run is 20 frames \(4 ps\)\)"
+                                         r": slowness would be measured on the other states' "
+                                         r"runs alone"):
+        suggest(short_closed, objective=objective, lag=10.0, n_bootstrap=0)
