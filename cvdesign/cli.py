@@ -391,6 +391,13 @@ def _cmd_apply(args):
     for f in args.trajectories:
         source.add(f, state="all")
 
+    untimed = [i for i in range(len(source.segments))
+               if stores_time(source.segments[i].path) and not source.stored_times_increase(i)]
+    for i in untimed:
+        print(f"cvdesign apply: note: {source.segments[i].path.name} stores times that do not "
+              "increase (as some writers do); its time_ps column is left empty",
+              file=sys.stderr)
+
     def rows(fh):
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(["file", "frame", "time_ps", "value"])
@@ -398,7 +405,7 @@ def _cmd_apply(args):
             traj = chunk.trajectory
             values = spec.evaluate(traj.xyz, box=traj.unitcell_vectors)
             path = source.segments[chunk.segment_index].path
-            timed = stores_time(path)
+            timed = stores_time(path) and chunk.segment_index not in untimed
             for fr, t, v in zip(chunk.frames, traj.time, values):
                 w.writerow([path.name, int(fr), repr(float(t)) if timed else "", repr(float(v))])
 

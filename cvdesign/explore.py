@@ -116,8 +116,14 @@ class StateKinetics:
         NaN when not computed.
     separation : ndarray of shape (n_states,)
         ``ln(within) / ln(memory)``: the state's memory time over its internal
-        relaxation time (inf when the inside is forgotten within the lag or the
-        state is never left; see :data:`MIN_SEPARATION`).
+        relaxation time (inf when the inside is forgotten within the lag; see
+        :data:`MIN_SEPARATION`). For a state that is never left (no exit) the
+        memory time is not measured, only known to exceed the time the runs
+        spend in it: the separation is then at most ``lags_in_state *
+        -ln(within)`` (time in the state over the relaxation time inside).
+    lags_in_state : ndarray of shape (n_states,)
+        Time the runs spend in each state, in lags (frames over each run's lag
+        in frames).
     exits, entries : ndarray of shape (n_states,), dtype int
         Transitions out of and into each state: changes of state between
         successive visits of a run that last at least the lag (shorter visits,
@@ -151,10 +157,17 @@ class StateKinetics:
     n_transitions: int
     metastable: np.ndarray
     reasons: list
+    lags_in_state: np.ndarray = None
 
     def memory_time_ps(self, i):
-        """Time over which runs remember state `i`, ``-lag / ln(memory)`` ps (inf if never left)."""
+        """Time over which runs remember state `i`, ``-lag / ln(memory)`` ps (inf if never
+        left: then it is only known to exceed :meth:`time_in_state_ps`)."""
         return _timescale(self.memory[i], self.lag_ps)
+
+    def time_in_state_ps(self, i):
+        """Time the runs spend in state `i`, ps (in lags when `lag_ps` is None)."""
+        lags = math.nan if self.lags_in_state is None else float(self.lags_in_state[i])
+        return lags * (1.0 if self.lag_ps is None else self.lag_ps)
 
     def within_time_ps(self, i):
         """Relaxation time inside state `i`, ``-lag / ln(within)`` ps (0 when below the lag's reach)."""
@@ -173,6 +186,7 @@ class StateKinetics:
                                   "memory": num(self.memory[i]),
                                   "within_autocorrelation": num(self.within[i]),
                                   "separation": num(self.separation[i]),
+                                  "time_in_state_ps": num(self.time_in_state_ps(i)),
                                   "exits": int(self.exits[i]), "entries": int(self.entries[i]),
                                   "metastable": bool(self.metastable[i]),
                                   "reason": self.reasons[i]}
@@ -236,14 +250,17 @@ def state_kinetics(runs, states, *, lag_ps=None, positions=True):
     n = len(states)
     counts = np.zeros((n, n), dtype=np.int64)
     frames = np.zeros(n, dtype=np.int64)
+    lags_in_state = np.zeros(n)
     exits = np.zeros(n, dtype=np.int64)
     entries = np.zeros(n, dtype=np.int64)
     inside = {}
     for labels, lag, y in runs:
         labels = np.asarray(labels, dtype=np.intp)
         known = labels >= 0
-        frames += np.bincount(labels[known], minlength=n)
         lag = int(lag)
+        in_run = np.bincount(labels[known], minlength=n)
+        frames += in_run
+        lags_in_state += in_run / max(lag, 1)
         # visits: maximal stretches in one state; only those lasting at least the lag
         # count, so a flicker across a boundary (or a quick recrossing) is no transition
         starts = np.r_[0, np.flatnonzero(labels[1:] != labels[:-1]) + 1] if labels.size else \
@@ -278,6 +295,7 @@ def state_kinetics(runs, states, *, lag_ps=None, positions=True):
         v = float(np.trace(c0))
         within[i] = float(np.trace(ct)) / v if v > 0 else 0.0
     separation = np.full(n, np.nan)
+    residence_bound = np.full(n, np.nan)
     for i in range(n):
         if np.isnan(within[i]) or np.isnan(memory[i]):
             continue
@@ -287,6 +305,14 @@ def state_kinetics(runs, states, *, lag_ps=None, positions=True):
             separation[i] = 0.0
         else:
             separation[i] = math.log(within[i]) / math.log(memory[i])
+        if exits[i] == 0 and within[i] > 0:
+            # never left (no visit lasting the lag ends in another state): the memory time
+            # is not measured, only known to exceed the time spent in the state, which then
+            # bounds the separation (a random walk that drifts into a region and stays
+            # there for the rest of a short run is not shown to be metastable)
+            residence_bound[i] = lags_in_state[i] * -math.log(within[i]) if within[i] < 1 \
+                else 0.0
+            separation[i] = min(separation[i], residence_bound[i])
     lag_txt = "the lag" if lag_ps is None else f"{lag_ps:g} ps"
     metastable = np.zeros(n, dtype=bool)
     reasons = []
@@ -302,7 +328,16 @@ def state_kinetics(runs, states, *, lag_ps=None, positions=True):
             why.append(f"it is still occupied {lag_txt} later with probability only "
                        f"{staying[i]:.2f}, close to the {pops[i]:.2f} of a state of its "
                        f"population with no memory (memory {memory[i]:.2f} < {MIN_MEMORY})")
-        if not np.isnan(separation[i]) and not np.isnan(staying[i]) \
+        if not np.isnan(staying[i]) and entries[i] > 0 and memory[i] >= MIN_MEMORY \
+                and residence_bound[i] < MIN_SEPARATION:
+            why.append(f"it is never left in the runs, which spend only "
+                       f"{lags_in_state[i] * (1.0 if lag_ps is None else lag_ps):.3g} "
+                       f"{'lags' if lag_ps is None else 'ps'} in it, {residence_bound[i]:.1f} times "
+                       f"its relaxation time inside (autocorrelation inside it "
+                       f"{within[i]:.2f} at {lag_txt}): too short to show that it is left "
+                       f"at least {MIN_SEPARATION:g} times more slowly than it relaxes inside; "
+                       "it may be a piece of a random walk, not a metastable state")
+        elif not np.isnan(separation[i]) and not np.isnan(staying[i]) \
                 and memory[i] >= MIN_MEMORY and separation[i] < MIN_SEPARATION:
             why.append(f"runs forget where they are inside it only {separation[i]:.1f} times "
                        f"faster than they forget the state (autocorrelation inside it "
@@ -315,7 +350,7 @@ def state_kinetics(runs, states, *, lag_ps=None, positions=True):
                          populations=pops, memory=memory, within=within,
                          separation=separation, exits=exits, entries=entries,
                          n_transitions=int(exits.sum()), metastable=metastable,
-                         reasons=reasons)
+                         reasons=reasons, lags_in_state=lags_in_state)
 
 
 @dataclass
@@ -426,7 +461,7 @@ class Exploration:
         for i, s in enumerate(self.states):
             r = self.representatives[s]
             out.append(f"| {s} | {self.populations[s]:.3f} | {_fmt(kin.staying[i], '.3f')} | "
-                       f"{_fmt(kin.memory[i], '.3f')} | {self._time(kin.memory_time_ps(i))} | "
+                       f"{_fmt(kin.memory[i], '.3f')} | {self._memory_time(kin, i)} | "
                        f"{self._time(kin.within_time_ps(i))} | {kin.exits[i]} / "
                        f"{kin.entries[i]} | {'yes' if kin.metastable[i] else 'NO'} | "
                        f"{r['file']} frame {r['frame']} |")
@@ -439,6 +474,14 @@ class Exploration:
         out += [""] + [f"- **warning**: {w}" for w in self.warnings]
         return out + [f"- {n}" for n in self.notes] + [""]
 
+
+    def _memory_time(self, kin, i):
+        """The memory time of state `i` for the summary: for a state never left, only the
+        lower bound set by the time the runs spend in it."""
+        t = kin.memory_time_ps(i)
+        if kin.exits[i] == 0 and not math.isnan(kin.time_in_state_ps(i)):
+            return f"> {kin.time_in_state_ps(i):.3g} (never left)"
+        return self._time(t)
 
     def _time(self, t):
         """A timescale in ps for the summary; below the lag it is not resolved."""

@@ -182,9 +182,9 @@ class Suggestions:
                         _fmt(ici[0]), _fmt(ici[1]),
                         "; ".join(_term_name(t) for t in r["terms"]),
                         " ".join(_fmt(t["weight"]) for t in r["terms"]),
-                        " ".join("[" + ",".join(_fmt(v) for v in t["weight_ci"]) + "]"
-                                 if t.get("weight_ci") else "" for t in r["terms"]),
-                        " ".join(_fmt(t.get("selection_frequency")) for t in r["terms"]),
+                        _per_term([("[" + ",".join(_fmt(v) for v in t["weight_ci"]) + "]")
+                                   if t.get("weight_ci") else None for t in r["terms"]]),
+                        _per_term([t.get("selection_frequency") for t in r["terms"]]),
                         _fmt(r.get("reproduced_in_refits"))])
         return buf.getvalue()
 
@@ -281,6 +281,13 @@ class Suggestions:
 #: Score-card columns with an interval, in CSV order; the integrated time is in ps.
 _CARD_COLUMNS = ("fisher_ratio", "overlap", "autocorrelation", "autocorrelation_within_runs",
                  "integrated_time")
+
+
+def _per_term(values):
+    """One CSV cell of per-term values separated by spaces; empty when none is known."""
+    if all(v is None for v in values):
+        return ""
+    return " ".join(v if isinstance(v, str) else _fmt(v) for v in values)
 
 
 def _term_name(t):
@@ -800,7 +807,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         notes.append("time step unknown for " + ", ".join(unknown[:5])
                      + (" ..." if len(unknown) > 5 else "")
                      + " (the format stores no times, or a single frame)")
-    if lag1 is not None and lag1.moments().count == 0:
+    lagless = [] if lag1 is None else [
+        s for s in range(n_states) if lag1.moments(lambda key, s=s: key[1] == s).count == 0]
+    if lag1 is not None and len(lagless) == n_states:
         longest = _longest_run_text(seg_counts, timesteps)
         if objective in ("slow", "both"):
             raise InputError(
@@ -810,6 +819,26 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         notes.append(f"slowness not measured: no run is longer than the lag ({lag_ps:g} ps; "
                      f"{longest}), so there are no lagged pairs; the autocorrelation and "
                      "timescale columns are left empty (give a shorter --lag to measure them)")
+        lag1 = lag_frames = None
+        lag_ps = None
+    elif lagless:
+        # the other states' runs alone would measure motion within those states, not the
+        # slowness of a CV that separates them (the slow coordinate would look fast)
+        names = ", ".join(repr(source.states[s]) for s in lagless)
+        mask = np.zeros_like(seg_counts)
+        mask[:, lagless] = seg_counts[:, lagless]
+        longest = _longest_run_text(mask, timesteps)
+        if objective in ("slow", "both"):
+            raise InputError(
+                f"lag={lag_ps:g} ps is longer than every run of state(s) {names} ({longest}): "
+                "slowness would be measured on the other states' runs alone, within them, "
+                f"which objective {objective!r} cannot rank on; choose a shorter --lag or give "
+                "longer runs of those states")
+        notes.append(f"slowness not measured: no run of state(s) {names} is longer than the "
+                     f"lag ({lag_ps:g} ps; {longest}), and the other states' runs alone would "
+                     "measure motion within those states, not between them; the "
+                     "autocorrelation and timescale columns are left empty (give a shorter "
+                     "--lag or longer runs of those states to measure them)")
         lag1 = lag_frames = None
         lag_ps = None
     elif lag_ps is not None:
@@ -1030,9 +1059,16 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         boot = _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors,
                           fm, search, max_terms, min_gain, n_seeds, n_bootstrap, seed,
                           lag_frames)
-        notes.append(f"uncertainties: block bootstrap, {n_bootstrap} replicates (seed {seed}), "
-                     f"blocks of {pass3['block_desc']} resampled within each state; 95 % "
-                     "percentile intervals")
+        if boot is None:
+            notes.append(f"uncertainties: none (blocks of {pass3['block_desc']}: a state has "
+                         "fewer than two, so a bootstrap would resample nothing); give more "
+                         "or longer runs per state")
+        else:
+            notes.append(f"uncertainties: block bootstrap, {n_bootstrap} replicates (seed "
+                         f"{seed}), blocks of {pass3['block_desc']} resampled within each "
+                         "state; 95 % percentile intervals")
+        if boot is not None and boot.get("selection_skipped"):
+            notes.append(boot["selection_skipped"])
         card_ci = _card_intervals(card, card_desc, card_feat, pool, center, priors, unscored,
                                   n_bootstrap, seed)
         if card_ci is None:
@@ -1595,7 +1631,16 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
     # main search (same seeds, objective and rule) over the terms of the ranked
     # combinations and the best SELECTION_POOL representatives, which bounds the cost.
     per_fold = [blocks.get((s, k), []) for s in range(n_states) for k in range(n_folds)]
-    if all(len(g) >= 1 for g in per_fold):
+    # blocks are resampled within each state and fold: a state and fold with a single
+    # block would give every refit the same data (selection 100 %, intervals of zero
+    # width), so the refits need at least two blocks in each
+    if any(len(g) < 2 for g in per_fold):
+        out["selection_skipped"] = (
+            "no selection frequencies and no intervals for the held-out scores: some state "
+            "has a single bootstrap block in a held-out fold (runs too short for the "
+            f"blocks of {pass3['block_desc']}), so refits of the search on resampled folds "
+            "would all see the same data; give more or longer runs per state")
+    else:
         in_ranked = {short.index(g) for gidx, *_ in fits for g in gidx}
         cand = sorted(in_ranked | set(range(min(SELECTION_POOL, len(short)))))
         cand_groups = [short_groups[j] for j in cand]

@@ -98,8 +98,15 @@ def check_box(traj, path, first_frame):
         )
 
 
+#: Largest |coordinate| accepted, nm (0.1 mm: far beyond any simulation box or the drift of
+#: an unwrapped run). Compressed XTC files store coordinates as integers; a NaN written to
+#: one comes back as about -2147483.6 nm (the smallest 32-bit integer over the precision).
+MAX_COORDINATE_NM = 1e5
+
+
 def check_finite(traj, path, frames, atom_indices, topology):
-    """Raise InputError naming file, frame and atom if a chunk holds a NaN or infinite coordinate.
+    """Raise InputError naming file, frame and atom if a chunk holds a NaN or infinite
+    coordinate, or one beyond :data:`MAX_COORDINATE_NM` (how XTC files store a NaN).
 
     Parameters
     ----------
@@ -127,17 +134,23 @@ def check_finite(traj, path, frames, atom_indices, topology):
     cvdesign.errors.InputError: trajectory 'run.xtc' frame 12 has a NaN or infinite coordinate for atom 1 (LIG0-C2): [nan, 0.0, 0.0] nm; the file is damaged or the simulation became unstable there. Check the file, or leave those frames out
     """
     xyz = traj.xyz
-    # one reduction over the chunk; a finite sum can only hide nothing, an infinite or
-    # NaN sum is searched element by element (huge finite values may overflow it)
-    if xyz.size == 0 or np.isfinite(xyz.sum(dtype=np.float64)):
+    # one reduction over the chunk (NaN propagates through max); only a chunk that fails
+    # is searched element by element
+    if xyz.size == 0:
         return
-    bad = np.argwhere(~np.isfinite(xyz).all(axis=2))
+    if np.maximum(xyz.max(), -xyz.min()) <= MAX_COORDINATE_NM:
+        return
+    finite = np.isfinite(xyz).all(axis=2)
+    bad = np.argwhere(~finite)
+    what = "a NaN or infinite coordinate"
     if bad.size == 0:
-        return
+        bad = np.argwhere((np.abs(xyz) > MAX_COORDINATE_NM).any(axis=2))
+        what = (f"a coordinate beyond {MAX_COORDINATE_NM:g} nm (far outside any simulation box; "
+                "an XTC file stores a NaN as about -2147483.6 nm)")
     f, a = (int(v) for v in bad[0])
     atom = int(a if atom_indices is None else atom_indices[a])
     raise InputError(
-        f"trajectory {str(path)!r} frame {int(frames[f])} has a NaN or infinite coordinate for "
+        f"trajectory {str(path)!r} frame {int(frames[f])} has {what} for "
         f"atom {atom} ({topology.atom(atom)}): {[float(v) for v in xyz[f, a]]} nm; the file is "
         "damaged or the simulation became unstable there. Check the file, or leave those "
         "frames out")
@@ -703,6 +716,13 @@ class Source:
             self._stored_steps[key] = (None if first is None or first.n_frames < 2 else
                                        (float(first.time[0]), float(first.time[1])))
         return self._stored_steps[key]
+
+    def stored_times_increase(self, segment_index):
+        """False when a segment's file stores times that do not increase (all zero, as some
+        writers store, or decreasing), judged from its first two frames; else True."""
+        seg = self.segments[segment_index]
+        times = self._stored_step(seg.path) if stores_time(seg.path) else None
+        return times is None or times[1] > times[0]
 
     def stored_times_ignored(self, segment_index):
         """True when a segment's file stores times that do not increase and `timestep` replaces them."""

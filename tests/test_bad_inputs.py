@@ -77,6 +77,9 @@ def shared(tmp_path_factory, demo_files):
     _hand_spec(topology, states={}).save(d / "nospread.json")
     traj = md.load(states["closed"][0], top=top)
     traj[:5].save_gro(str(d / "run.gro"))
+    far = traj[:5]
+    far.xyz[3, 2, 0] = -2147483.6  # how a compressed XTC file stores a NaN
+    far.save_dcd(str(d / "far.dcd"))
     traj[:5].atom_slice(range(10)).save_xtc(str(d / "short.xtc"))
     traj[:1].atom_slice(range(11)).save_pdb(str(d / "eleven.pdb"))
     (d / "garbage.pdb").write_text("this is not a PDB file\nnor is this line\n")
@@ -324,6 +327,10 @@ CLI_CASES = [
     Case("apply-topology-of-another-molecule",
          lambda c: c.apply(top=c.s("eleven.pdb")), 2,
          r"the spec was made for a topology of 12 atoms; this topology has 11 atoms"),
+    Case("apply-trajectory-coordinate-far-outside-any-box",
+         lambda c: c.apply(traj=c.s("far.dcd")), 2,
+         r"trajectory '.*far\.dcd' frame 3 has a coordinate beyond 100000 nm .* for atom 2 "
+         r"\(LCH1-C3\)"),
     Case("apply-trajectory-garbage-pdb",
          lambda c: c.apply(traj=c.s("garbage.pdb")), 2,
          r"cannot read trajectory file '.*garbage\.pdb' .*: not a valid PDB file"),

@@ -191,6 +191,34 @@ def test_separation_of_timescales_uses_the_autocorrelation_inside_each_state():
     assert slow.memory_time_ps(0) == pytest.approx(-0.5 / math.log(slow.memory[0]))
 
 
+def test_a_state_entered_once_and_never_left_is_metastable_only_if_it_outlasts_its_inside():
+    # One run: 300 frames in A, then B for the remaining 700 (entered once, never left).
+    # Inside B the coordinate either drifts (a random walk, relaxing over hundreds of frames)
+    # or is drawn afresh every frame. Never left, B's memory time is not measured, only
+    # known to exceed the 700 frames spent in it: that bounds its separation of timescales.
+    # A drift that relaxes about as slowly as the run lasts is no evidence of a metastable
+    # state (it was reported 'metastable' with an infinite separation); fast relaxation
+    # inside is.
+    rng = np.random.default_rng(21)
+    labels = np.r_[np.zeros(300, dtype=int), np.ones(700, dtype=int)]
+    lag = 5
+    drift = np.cumsum(rng.normal(size=labels.size))[:, None]
+    fresh = rng.normal(size=(labels.size, 1))
+    slow = state_kinetics([(labels, lag, drift)], ["A", "B"], lag_ps=0.5)
+    fast = state_kinetics([(labels, lag, fresh)], ["A", "B"], lag_ps=0.5)
+    for kin in (slow, fast):
+        assert kin.exits.tolist() == [1, 0] and kin.entries.tolist() == [0, 1]
+        assert kin.memory[1] == 1.0
+        assert kin.lags_in_state.tolist() == [60.0, 140.0]
+        assert kin.time_in_state_ps(1) == pytest.approx(70.0)
+    # the bound: 140 lags in B times -ln(autocorrelation inside B at the lag)
+    assert slow.separation[1] == pytest.approx(140 * -math.log(slow.within[1]))
+    assert slow.separation[1] < MIN_SEPARATION and not slow.metastable[1]
+    assert "never left in the runs, which spend only 70 ps in it" in slow.reasons[1]
+    assert fast.separation[1] > MIN_SEPARATION and fast.metastable[1]
+    assert fast.as_dict()["per_state"]["B"]["time_in_state_ps"] == pytest.approx(70.0)
+
+
 # ---------------------------------------------------------------------------- propose_states
 def test_double_well_runs_with_transitions_give_two_metastable_states(tmp_path):
     xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)

@@ -103,3 +103,63 @@ def test_selection_frequencies_describe_the_cv_they_stand_beside(demo_files, obj
                                                                   rel=1e-5)
         for t in r["terms"]:
             assert t["selection_frequency"] >= 0.8, (r["rank"], t["label"])
+
+
+def test_no_selection_frequencies_when_every_refit_would_see_the_same_data(
+        adk_result_for_redundancy):
+    # Adenylate kinase (MDAnalysis test data): 30 frames of one file per state, too short
+    # for the domain motion to decorrelate, so the bootstrap blocks are whole runs and each
+    # held-out fold holds a single block of each state. Resampling blocks within a state and
+    # fold then gives every refit the same data: selection 100 %, reproduced 1.0 and
+    # held-out intervals of zero width were reported as if measured.
+    res = adk_result_for_redundancy
+    assert any("blocks of whole runs" in n for n in res.notes)
+    (note,) = [n for n in res.notes if n.startswith("no selection frequencies")]
+    assert "a single bootstrap block in a held-out fold" in note
+    for r in res.ranking:
+        assert r["reproduced_in_refits"] is None
+        assert "heldout_score_ci" not in r and "heldout_fisher_ratio_ci" not in r
+        assert all("selection_frequency" not in t for t in r["terms"])
+        assert r["fisher_ratio_ci"] is not None  # the per-state bootstrap still runs
+    for row in csv.DictReader(io.StringIO(res.ranking_csv())):
+        assert row["selection_frequency"] == "" and row["reproduced_in_refits"] == ""
+        assert row["heldout_score_ci_low"] == "" and row["heldout_score_ci_high"] == ""
+
+
+@pytest.fixture(scope="module")
+def short_closed(demo_files, tmp_path_factory):
+    """Two closed runs of 20 frames (4 ps) and two full open runs (400 ps) of the demo."""
+    top, states = demo_files
+    d = tmp_path_factory.mktemp("short_closed")
+    closed = []
+    for k, f in enumerate(states["closed"][:2]):
+        path = d / f"closed-{k}.xtc"
+        md.load(f, top=top)[:20].save_xtc(str(path))
+        closed.append(str(path))
+    return Source.from_states(top, {"closed": closed, "open": states["open"][:2]})
+
+
+def test_lag_longer_than_every_run_of_one_state_leaves_slowness_unmeasured(short_closed):
+    # Only the open runs have lagged pairs at 10 ps: measured on them alone, the slow
+    # dihedral that separates the states relaxes within the open well (autocorrelation
+    # about 0.01) and was reported as fast; with --objective both it was dropped.
+    result = suggest(short_closed, lag=10.0, n_bootstrap=0, max_terms=1, n_suggestions=2)
+    assert result.ranking[0]["terms"][0]["descriptor"] == "dihedral:2-3-4-5"
+    (note,) = [n for n in result.notes if n.startswith("slowness not measured")]
+    assert "no run of state(s) 'closed' is longer than the lag (10 ps; the longest run is " \
+           "20 frames (4 ps))" in note
+    for r in result.ranking:
+        assert r["heldout_autocorrelation"] is None and r["timescale_ps"] is None
+    assert all(row["autocorrelation"] is None for row in result.scorecard)
+    assert all(row["heldout_autocorrelation"] == ""
+               for row in csv.DictReader(io.StringIO(result.ranking_csv())))
+
+
+@pytest.mark.parametrize("objective", ["slow", "both"])
+def test_lag_longer_than_every_run_of_one_state_is_refused_for_slowness_objectives(
+        short_closed, objective):
+    with pytest.raises(InputError, match=r"lag=10 ps is longer than every run of state\(s\) "
+                                         r"'closed' \(the longest run is 20 frames \(4 ps\)\)"
+                                         r": slowness would be measured on the other states' "
+                                         r"runs alone"):
+        suggest(short_closed, objective=objective, lag=10.0, n_bootstrap=0)

@@ -9,6 +9,7 @@ import pytest
 from cvdesign import InputError, Source, suggest
 from cvdesign.cli import main
 from cvdesign.explore import propose_states
+from cvdesign.source import MAX_COORDINATE_NM
 
 
 def _copy(src, dst, top, *, n_frames=300, time=None, bad=None):
@@ -73,6 +74,24 @@ def test_given_frame_spacing_replaces_stored_times_that_do_not_increase_and_says
         ref.ranking[0]["heldout_autocorrelation"], rel=1e-12)
 
 
+def test_apply_leaves_time_empty_for_stored_times_that_do_not_increase(untimed, tmp_path,
+                                                                       capsys):
+    # apply used to copy the stored times into time_ps: all 0.0, or running backwards
+    kind, top, a, b = untimed
+    res = suggest(Source.from_states(top, {"closed": [a], "open": [b]}, timestep=0.2),
+                  n_bootstrap=0, max_terms=1, n_suggestions=1)
+    spec = tmp_path / "cv.json"
+    spec.write_text(json.dumps(res.specs[0]))
+    timed = _copy(a, tmp_path / "timed.xtc", top, time=0.5 * np.arange(300))
+    assert main(["apply", str(spec), "--topology", top, a, timed]) == 0
+    out, err = capsys.readouterr()
+    rows = [line.split(",") for line in out.splitlines()[1:]]
+    assert len(rows) == 600
+    assert {r[2] for r in rows if r[0] == "c.xtc"} == {""}
+    assert [float(r[2]) for r in rows if r[0] == "timed.xtc"][:3] == [0.0, 0.5, 1.0]
+    assert "c.xtc stores times that do not increase" in err and "timed.xtc" not in err
+
+
 def test_increasing_stored_times_are_kept_when_a_frame_spacing_is_given(demo_two, tmp_path):
     top, closed, _ = demo_two
     a = _copy(closed, tmp_path / "c.xtc", top, time=0.5 * np.arange(300))
@@ -99,6 +118,31 @@ def test_non_finite_coordinates_are_refused_naming_file_frame_and_atom(demo_two,
                                          r"infinite coordinate for atom 3 \(LCH1-C4\): "
                                          r"\[.*, (nan|inf), .*\] nm"):
         suggest(src, n_bootstrap=0)
+
+
+@pytest.mark.parametrize("fmt,value", [("xtc", np.nan), ("dcd", -2147483.6), ("dcd", 3e5)])
+def test_coordinates_far_outside_any_box_are_refused_as_a_nan_stored_by_xtc(demo_two, tmp_path,
+                                                                          fmt, value):
+    # A compressed XTC file stores integers: a NaN written to one reads back as about
+    # -2147483.6 nm on x86 (the smallest 32-bit integer over the precision 1000; the
+    # overflow may spoil other atoms of the frame too), which was accepted and silently
+    # spoiled every descriptor of those atoms. Any coordinate beyond
+    # MAX_COORDINATE_NM is refused like a NaN, whatever the format.
+    top, closed, opened = demo_two
+    bad = _copy(opened, tmp_path / f"bad.{fmt}", top, bad=(123, 6, value))
+    back = float(md.load(bad, top=top).xyz[123, 6, 1])
+    if fmt == "xtc" and abs(back) <= MAX_COORDINATE_NM:
+        pytest.skip(f"this platform's XTC writer stores a NaN as {back} nm")
+    src = Source.from_states(top, {"closed": [closed], "open": [bad]})
+    with pytest.raises(InputError, match=rf"trajectory '.*bad\.{fmt}' frame 123 has a "
+                                         r"coordinate beyond 100000 nm \(far outside any "
+                                         r"simulation box; an XTC file stores a NaN as about "
+                                         r"-2147483\.6 nm\) for atom "
+                                         + (r"\d+" if fmt == "xtc" else r"6 \(LCH1-C7\)")):
+        suggest(src, n_bootstrap=0)
+    # a coordinate of the largest accepted size, and the demo itself, pass the check
+    assert sum(c.frames.size for c in Source.from_states(top, {"o": [opened]}).iter_chunks()) \
+        == md.load(opened, top=top).n_frames
 
 
 def test_non_finite_coordinates_of_atoms_not_read_are_not_looked_at(demo_two, tmp_path):
