@@ -43,7 +43,8 @@ def _is_within(path, directory):
         return False
 
 
-def prepare_output_dir(out_dir, *, force=False, inputs=(), marker=None, option="--out"):
+def prepare_output_dir(out_dir, *, force=False, inputs=(), marker=None, owned=None,
+                       option="--out"):
     """Check that a whole output directory may be (re)written; return it as a Path.
 
     Parameters
@@ -57,6 +58,11 @@ def prepare_output_dir(out_dir, *, force=False, inputs=(), marker=None, option="
         Files the run reads; the directory must not contain any of them.
     marker : str, default=None
         File name that marks a directory written by an earlier run.
+    owned : callable, default=None
+        ``owned(name) -> bool``: whether a file of that name is one the run
+        writes. With `force`, a directory holding anything else (a file of the
+        user's, a subdirectory) is refused, since replacing the directory would
+        delete it. None: no such check.
     option : str, default="--out"
         Name of the option in messages.
 
@@ -88,6 +94,13 @@ def prepare_output_dir(out_dir, *, force=False, inputs=(), marker=None, option="
                 raise InputError(f"output directory {str(out_dir)!r} is not empty and was not "
                                  f"written by cvdesign (no {marker}); --force only replaces "
                                  "an earlier cvdesign output. Choose another name")
+            foreign = sorted(p.name for p in out_dir.iterdir()
+                             if owned is not None and not (p.is_file() and owned(p.name)))
+            if foreign:
+                raise InputError(
+                    f"output directory {str(out_dir)!r} holds {len(foreign)} file(s) cvdesign "
+                    f"did not write (e.g. {foreign[0]!r}), which --force would delete with the "
+                    "earlier output; move them elsewhere, or choose another name")
     _check_parent(resolved.parent, out_dir, option)
     return out_dir
 

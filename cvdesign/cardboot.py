@@ -342,8 +342,10 @@ def integrated_time_interval(tau, window_frames, n_frames, *, level=0.95):
     """Asymptotic interval of an integrated autocorrelation time.
 
     ``sd(tau) = tau * sqrt(2 (2 M + 1) / N)`` for a window of ``M`` frames
-    and ``N`` frames in all (Madras and Sokal, J. Stat. Phys. 50, 109, 1988),
-    with a normal quantile; the lower end is clipped at 0.
+    and ``N`` frames in all (Madras and Sokal, J. Stat. Phys. 50, 109, 1988).
+    The interval is taken on ``log(tau)`` (delta method: ``sd(log tau) = sd(tau) /
+    tau``), ``tau exp(+-z sd(log tau))``, so it stays positive and widens upward
+    when the runs are short, rather than a symmetric interval clipped at 0.
 
     Parameters
     ----------
@@ -363,11 +365,11 @@ def integrated_time_interval(tau, window_frames, n_frames, *, level=0.95):
     --------
     >>> lo, hi = integrated_time_interval([10.0], [50], 100_000)
     >>> round(float(lo[0]), 2), round(float(hi[0]), 2)
-    (9.12, 10.88)
+    (9.16, 10.92)
     """
     from scipy.stats import norm
 
     tau = np.asarray(tau, dtype=np.float64)
     rel = np.sqrt(2.0 * (2.0 * np.asarray(window_frames, np.float64) + 1.0) / n_frames)
     z = float(norm.ppf(0.5 + level / 2.0))
-    return np.maximum(tau * (1.0 - z * rel), 0.0), tau * (1.0 + z * rel)
+    return tau * np.exp(-z * rel), tau * np.exp(z * rel)

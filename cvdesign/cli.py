@@ -293,6 +293,7 @@ def build_parser():
                         "faster)")
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it exists and is not empty")
+    parser.commands = dict(sub.choices)  # for usage errors that name the command
     return parser
 
 
@@ -305,14 +306,15 @@ def _progress(quiet):
 def _run_suggest(topology, states, out, args, stream, runs=None):
     from ._io import prepare_output_dir
     from .hints import check_run_conditions
-    from .pipeline import CAUTION, suggest
+    from .pipeline import CAUTION, is_output_file, suggest
     from .source import Source
 
     # refuse an impossible temperature or MD step before reading anything; warn once
     for warning in check_run_conditions(args.temperature, args.md_step_fs):
         print(f"cvdesign: warning: {warning}", file=sys.stderr)
     given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or [])
-    prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json")
+    prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json",
+                       owned=is_output_file)
     exploration = None
     progress = _progress(args.quiet)
     if runs:
@@ -368,6 +370,9 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         for note in result.notes:
             print(f"  - {note}", file=stream)
     print(result.top_table(5), file=stream)
+    for r in result.ranking:  # shown even with --quiet
+        for w in r.get("warnings", []):
+            print(f"cvdesign: warning: rank {r['rank']} ({r['spec']}): {w}", file=sys.stderr)
     print(f"\nwrote {len(result.specs)} spec files and the ranking to {out}/", file=stream)
     print(f"caution: {CAUTION}", file=stream)
     return result
@@ -746,9 +751,11 @@ def demo_data_dir():
 
 def _cmd_demo(args):
     from ._io import prepare_output_dir
+    from .pipeline import is_output_file
 
     data = demo_data_dir()
-    prepare_output_dir(args.out, force=args.force, marker="ranking.json")  # before any output
+    prepare_output_dir(args.out, force=args.force, marker="ranking.json",  # before any output
+                       owned=is_output_file)
     manifest = json.loads((data / "manifest.json").read_text(encoding="utf-8"))
     top = str(data / manifest["topology"]["file"])
     states = [[name] + [str(data / f) for f in entry["files"]]
@@ -822,7 +829,10 @@ def _main(argv):
     if not argv:  # list the commands
         sys.stdout.write(parser.format_help())
         return 0
-    args = parser.parse_args(argv)
+    args, extra = parser.parse_known_args(argv)
+    if extra:  # argparse would print the top-level usage; name the command instead
+        parser.commands[args.command].error(
+            f"unrecognized arguments: {' '.join(extra)} (see cvdesign {args.command} --help)")
     handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "check": _cmd_check,
                "hints": _cmd_hints, "funnel": _cmd_funnel, "demo": _cmd_demo}[args.command]
     try:

@@ -431,6 +431,11 @@ def funnel_reach(params):
     return (upper, "upper wall") if upper >= lower else (lower, "lower wall")
 
 
+#: Fewest bound frames for a funnel size: its margins are multiples of the ligand's
+#: spread, which a handful of frames does not estimate (common practice).
+MIN_FUNNEL_FRAMES = 10
+
+
 def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit_point=None,
                 ligand_radius=None, cylinder_pad=0.2, k_std=2.0, min_margin=0.1,
                 z_margin=0.2, blend_half_width=0.1, unbound_length=1.5, min_half_angle=0.2,
@@ -539,8 +544,11 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
             group_reach = max(group_reach, *(float(np.linalg.norm(w - w[:, :1], axis=-1).max())
                                              for w in (whole_p, whole_q)))
     n = fit.n_frames
-    if n == 0:
-        raise InputError("no frames given to size_funnel")
+    if n < MIN_FUNNEL_FRAMES:
+        raise InputError(
+            f"funnel sizing from {n} bound frame(s): the margins come from the ligand's "
+            f"fluctuations in the bound state, which need at least {MIN_FUNNEL_FRAMES} frames "
+            "(a few hundred, spanning a few hundred ps, is better); give longer bound runs")
     exit_offset = None
     if exit_point is not None:
         e = _finite_exit_point(exit_point)

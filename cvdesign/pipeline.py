@@ -23,6 +23,7 @@ import csv
 import io
 import json
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -44,7 +45,7 @@ from .redundancy import descriptor_correlation, redundancy_graph, representative
 from .scoring import Histograms, fisher_ratio, overlap_coefficient
 from .source import Source, file_sha256, stores_time
 
-__all__ = ["suggest", "Suggestions", "CAUTION"]
+__all__ = ["suggest", "Suggestions", "CAUTION", "is_output_file"]
 
 #: Printed with, and stored in, every output that guides a simulation.
 CAUTION = (
@@ -54,6 +55,21 @@ CAUTION = (
 )
 
 _N_BINS = 50
+
+_OUTPUT_NAME = re.compile(r"(ranking\.csv|ranking\.json|scorecard\.csv|summary\.md|"
+                          r"states\.csv|cv-\d+\.json)")
+
+
+def is_output_file(name):
+    """Whether `name` is a file :meth:`Suggestions.write` writes (``--force`` replaces
+    only a directory holding nothing else).
+
+    Examples
+    --------
+    >>> is_output_file("cv-01.json"), is_output_file("notes.txt")
+    (True, False)
+    """
+    return _OUTPUT_NAME.fullmatch(name) is not None
 
 #: A feature whose standard deviation within some state is at most this fraction of its
 #: overall standard deviation is *frozen* there (identical frames): not scored, not combined.
@@ -212,10 +228,10 @@ class Suggestions:
         out.append(f"cvdesign {__version__}. States: "
                    + ", ".join(f"`{s}`" for s in self.states) + f". Objective: `{self.objective}`"
                    + ("" if self.lag_ps is None else f", lag {self.lag_ps:g} ps") + ".")
-        out += ["", "## Inputs", "", "| file | state | frames | time step (ps) |",
+        out += ["", "## Inputs", "", "| file | state | frames | time between frames (ps) |",
                 "| --- | --- | ---: | ---: |"]
         for inp in self.inputs:
-            dt = "unknown" if inp["timestep_ps"] is None else f"{inp['timestep_ps']:g}"
+            dt = "unknown" if inp["frame_step_ps"] is None else f"{inp['frame_step_ps']:g}"
             out.append(f"| {inp['file']} | {', '.join(inp['states'])} | {inp['frames']} | {dt} |")
         if self.exploration is not None:
             out += [""] + self.exploration.summary_lines()
@@ -245,6 +261,9 @@ class Suggestions:
                        f"{r['heldout_fisher_ratio']:.3g} ± {r['heldout_fisher_ratio_se']:.2g} | "
                        f"{r['heldout_overlap']:.3f} | {'' if rho is None else format(rho, '.3f')} "
                        f"| {ts} | {terms} |")
+        for r in self.ranking:
+            for w in r.get("warnings", []):
+                out += ["", f"**Warning** (rank {r['rank']}, {r['spec']}): {w}."]
         out += ["", "Files: `ranking.csv`, `ranking.json`, `scorecard.csv` (every descriptor), "
                 "`cv-NN.json` (one spec per suggestion; evaluate with `cvdesign apply`).",
                 "", f"**Caution.** {CAUTION}", ""]
@@ -263,6 +282,7 @@ class Suggestions:
             Replace an existing non-empty directory.
         """
         out_dir = prepare_output_dir(out_dir, force=force, inputs=self.input_files,
+                                     owned=is_output_file,
                                      marker="ranking.json")
         files = {
             "ranking.csv": self.ranking_csv(),
@@ -802,7 +822,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     run_ps = [seg_counts[si].sum() * dt for si, dt in timesteps.items() if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
     notes += _box_notes(pool, diag, min_box)
-    unknown = [i["file"] for i in inputs if i["timestep_ps"] is None]
+    unknown = [i["file"] for i in inputs if i["frame_step_ps"] is None]
     if unknown:
         notes.append("time step unknown for " + ", ".join(unknown[:5])
                      + (" ..." if len(unknown) > 5 else "")
@@ -870,12 +890,17 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         local_feat[unscored] = 0.0
     else:
         rho_feat = local_feat = None
+    # a descriptor is frozen when none of its features can be scored and one is frozen
+    # (a dihedral near 0 whose cosine barely moves still moves through its sine)
+    all_unscored = np.ones(len(pool), dtype=bool)
+    np.logical_and.at(all_unscored, pool.feature_descriptor, unscored)
     frozen_desc = {}
     for f in np.flatnonzero(frozen_feat):
         i = int(pool.feature_descriptor[f])
-        frozen_desc.setdefault(i, sorted({source.states[s] for s in range(n_states)
-                                          if variances[s, f] <= (FROZEN_RELATIVE_SPREAD
-                                                                 * scale[f]) ** 2}))
+        if all_unscored[i]:
+            frozen_desc.setdefault(i, sorted({source.states[s] for s in range(n_states)
+                                              if variances[s, f] <= (FROZEN_RELATIVE_SPREAD
+                                                                     * scale[f]) ** 2}))
     if frozen_desc:
         first = pool.descriptors[min(frozen_desc)]
         notes.append(f"frozen: {len(frozen_desc)} descriptor(s) do not move within some state "
@@ -1317,13 +1342,13 @@ def _describe_inputs(source, seg_counts, timesteps):
     for si, seg in enumerate(source.segments):
         key = str(seg.path)
         row = out.setdefault(key, {"path": key, "file": seg.path.name, "states": [],
-                                   "frames": 0, "timestep_ps": timesteps.get(si)})
+                                   "frames": 0, "frame_step_ps": timesteps.get(si)})
         for s in np.flatnonzero(seg_counts[si]):
             if source.states[s] not in row["states"]:
                 row["states"].append(source.states[s])
         row["frames"] += int(seg_counts[si].sum())
-        if row["timestep_ps"] is None:
-            row["timestep_ps"] = timesteps.get(si)
+        if row["frame_step_ps"] is None:
+            row["frame_step_ps"] = timesteps.get(si)
     return list(out.values())
 
 
@@ -1411,7 +1436,7 @@ def _spec_dict(source, pool, name, entry, params, checksums, seed):
                        "seed": seed, "parameters": params,
                        "topology": _topology_provenance(source),
                        "segments": _segments_provenance(source)},
-        "caution": CAUTION,
+        "caution": " ".join([CAUTION] + [f"Warning: {w}." for w in entry.get("warnings", [])]),
     }
 
 
@@ -1701,6 +1726,23 @@ def _bootstrap(pass3, fits, short, groups, screened, scr_feat, pool, priors, fm,
     return out
 
 
+#: A CV whose Fisher ratio exceeds this barely moves within the states: its within-state
+#: spread is below 1/2000 of the distance between two state means.
+NEAR_FROZEN_FISHER = 1e6
+
+
+def _rigid_cv_warnings(state_stats, j_all, heldout):
+    """Warnings for a CV that is (nearly) constant within the states."""
+    if not (j_all > NEAR_FROZEN_FISHER or np.max(heldout) > NEAR_FROZEN_FISHER):
+        return []
+    narrow = min(state_stats, key=lambda k: state_stats[k]["std"])
+    return [f"the CV barely moves within the states (Fisher ratio {j_all:.3g}; spread in "
+            f"state {narrow!r} {state_stats[narrow]['std']:.3g} CV units): its descriptors "
+            "are (nearly) rigidly tied within each state, which points at repeated or "
+            "constrained frames, and a bias along it would need kernels narrower than the "
+            "data resolve; check the runs before using it"]
+
+
 def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, center, scale,
                    pooled, priors, fm, source, objective, method, lag_ps, boot):
     gidx, idx, w, fold_w = fit
@@ -1754,6 +1796,7 @@ def _ranking_entry(rank, comb, fit, overlap, pool, screened, groups, scr_feat, c
         "autocorrelation_all": _finite(rho_all) if rho_all is not None else None,
         "timescale_ps": _finite(timescale) if timescale is not None else None,
         "states": state_stats, "terms": terms,
+        "warnings": _rigid_cv_warnings(state_stats, j_all, sep),
     }
     if ci is not None:
         entry["fisher_ratio_ci"] = ci["fisher_ratio_ci"]

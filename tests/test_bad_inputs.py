@@ -143,7 +143,7 @@ class Ctx:
                 "--against", values, traj or self.closed, *extra]
 
     def hints(self, spec, *extra):
-        return ["hints", spec, "--temperature", "300", _md_step_option(), "2", *extra]
+        return ["hints", spec, "--temperature", "300", "--md-step-fs", "2", *extra]
 
 
 @dataclass
@@ -153,18 +153,6 @@ class Case:
     expect: object  # exit code (CLI) or exception type (API)
     pattern: str
     skip: str = ""
-
-
-def _md_step_option():
-    """The option of `cvdesign hints` that takes the MD time step in fs (read from --help,
-    so these cases do not depend on how it is spelled)."""
-    buf = io.StringIO()
-    with contextlib.redirect_stdout(buf), pytest.raises(SystemExit):
-        main(["hints", "--help"])
-    for name in ("--md-step-fs", "--timestep"):
-        if re.search(rf"{name}\b", buf.getvalue()):
-            return name
-    raise AssertionError("cvdesign hints has no MD time-step option")
 
 
 def _frames_csv(n):
@@ -392,7 +380,7 @@ CLI_CASES = [
          lambda c: c.hints(c.w("none.json")), 2,
          r"spec file '.*none\.json' does not exist"),
     Case("hints-negative-temperature",
-         lambda c: ["hints", c.s("cv.json"), "--temperature", "-3", _md_step_option(), "2"], 2,
+         lambda c: ["hints", c.s("cv.json"), "--temperature", "-3", "--md-step-fs", "2"], 2,
          r"argument --temperature: '-3' must be positive"),
     Case("hints-nan-barrier",
          lambda c: c.hints(c.s("cv.json"), "--barrier", "nan"), 2,
@@ -408,6 +396,9 @@ CLI_CASES = [
          lambda c: c.hints(c.s("cv.json"), "--kernel", "box"), 2,
          r"argument --kernel: invalid choice: 'box'"),
     # -- demo
+    Case("demo-unknown-option",
+         lambda c: ["demo", "--out", c.w("d"), "--quiet"], 2,
+         r"cvdesign demo: error: unrecognized arguments: --quiet \(see cvdesign demo --help\)"),
     Case("demo-out-not-empty",
          lambda c: [c.file("d/mine.txt"), ["demo", "--out", c.w("d"), "--bootstrap", "0"]][1],
          2, r"output directory '.*d' exists and is not empty"),
@@ -586,7 +577,7 @@ def _closed_pipe_run(argv):
 @pytest.mark.parametrize("which", ["hints", "hints-json", "apply", "check", "no-arguments"])
 def test_closed_standard_output_ends_quietly_with_status_141(which, shared):
     spec = str(shared["dir"] / "cv.json")
-    step = _md_step_option()
+    step = "--md-step-fs"
     argv = {"hints": ["hints", spec, "--temperature", "300", step, "2"],
             "hints-json": ["hints", spec, "--temperature", "300", step, "2", "--json"],
             "apply": ["apply", spec, "--topology", shared["top"], shared["closed"]],
@@ -788,6 +779,10 @@ FUNNEL_CASES = [
      lambda c: [a if a != c.data.pocket_selection else "name CB or name L1"
                 for a in c.argv()],
      r"the pocket \(2 atoms\) does not fix an orientation in the first frame"),
+    ("one-bound-frame",
+     lambda c: c.argv(bound=[c.data.topology]),
+     r"funnel sizing from 1 bound frame\(s\): the margins come from the ligand's "
+     r"fluctuations"),
     ("k-wall-not-positive",
      lambda c: c.argv("--k-wall", "0"),
      r"--k-wall 0\.0 must be a positive force constant in kJ/mol/nm\^2"),

@@ -381,14 +381,15 @@ def test_integrated_time_interval_covers_ar1_tau_int():
     assert 0.12 < np.median(rel_half) < 0.30
 
 
-def test_integrated_time_interval_formula_and_clipping():
-    """The half width is z_{0.975} * tau * sqrt(2 (2 M + 1) / N) (Madras and Sokal
-    1988), z from memory = 1.959964; the lower end is clipped at 0."""
+def test_integrated_time_interval_formula_and_positivity():
+    """The interval is tau exp(+-z sd/tau) with sd = tau sqrt(2 (2 M + 1) / N) (Madras and
+    Sokal 1988; on log tau by the delta method), z from memory = 1.959964: positive even
+    when the window is as long as the data, where a symmetric one would cross 0."""
     lo, hi = integrated_time_interval([4.0, 2.0], [20, 400], 1000)
     rel = np.sqrt(2 * (2 * np.array([20, 400]) + 1) / 1000)
-    np.testing.assert_allclose(hi, [4.0, 2.0] * (1 + 1.959964 * rel), rtol=1e-6)
-    assert lo[0] == pytest.approx(4.0 * (1 - 1.959964 * rel[0]), rel=1e-6)
-    assert lo[1] == 0.0  # 1 - z * rel < 0 for a window as long as that
+    np.testing.assert_allclose(hi, [4.0, 2.0] * np.exp(1.959964 * rel), rtol=1e-6)
+    np.testing.assert_allclose(lo, [4.0, 2.0] * np.exp(-1.959964 * rel), rtol=1e-6)
+    assert lo[1] > 0 and 1 - 1.959964 * rel[1] < 0
 
 
 # ---------------------------------------------------------------- 5. planning

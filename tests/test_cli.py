@@ -141,9 +141,16 @@ def test_nonempty_output_directory_needs_force(demo_files, tmp_path, capsys):
     (out / "keep.txt").write_text("mine")
     _fails(_suggest_args(demo_files, out), capsys, "exists and is not empty")
     assert (out / "keep.txt").exists()
-    # --force replaces an earlier cvdesign output, and only that.
+    # --force replaces an earlier cvdesign output, and only that: never a file of the
+    # user's inside it
+    _fails(_suggest_args(demo_files, out, "--force"), capsys,
+           "holds 1 file(s) cvdesign did not write (e.g. 'keep.txt'), which --force would "
+           "delete")
+    assert (out / "keep.txt").read_text() == "mine"
+    (out / "keep.txt").unlink()
+    (out / "cv-01.json").write_text("{}")
     assert main(_suggest_args(demo_files, out, "--force")) == 0
-    assert not (out / "keep.txt").exists() and (out / "cv-01.json").exists()
+    assert (out / "cv-01.json").read_text() != "{}"
     other = tmp_path / "mine"
     other.mkdir()
     (other / "notes.txt").write_text("precious")

@@ -54,7 +54,7 @@ def _flat(x):
     return np.zeros_like(x)
 
 
-def _write_walkers(out_dir, xs, *, seed, prefix="run", timestep_ps=0.1):
+def _write_walkers(out_dir, xs, *, seed, prefix="run", frame_step_ps=0.1):
     """A four-atom 'walker' per row of `xs`: C2 at distance x (nm) from C1 along x, C3 and C4
     jiggling fast (AR(1), coefficient 0.3). Writes walker.pdb and one XTC per row."""
     top = _walker_topology()
@@ -72,7 +72,7 @@ def _write_walkers(out_dir, xs, *, seed, prefix="run", timestep_ps=0.1):
         xyz[:, 3] = np.array([0.4, 0.4, 0.3]) + noise[:, 1]
         path = out_dir / f"{prefix}-{r + 1}.xtc"
         md.Trajectory(xyz.astype(np.float32), top,
-                      time=np.arange(n) * timestep_ps).save_xtc(str(path))
+                      time=np.arange(n) * frame_step_ps).save_xtc(str(path))
         paths.append(str(path))
     pdb = out_dir / "walker.pdb"
     md.Trajectory(np.zeros((1, 4, 3), dtype=np.float32) + [[0, 0, 0], [0.5, 0, 0], [0, 0.5, 0],
@@ -97,7 +97,7 @@ def softened_two_wells(tmp_path_factory):
     system = two_wells()
     ff = system.force_field.with_torsion_scale(system.slow_dihedral, 0.45)
     integ = LangevinBAOAB(ff, system.masses, temperature=300.0, friction=1.0,
-                            timestep=0.005, seed=12)
+                            md_step_ps=0.005, seed=12)
     x0 = np.stack([system.states[s] for s in ("slowA", "slowA", "slowB", "slowB")])
     xyz, _ = integ.run(x0, 2000 * 12, 12)
     top = out / "two_wells.pdb"

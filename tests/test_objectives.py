@@ -37,7 +37,7 @@ def test_slow_objective_picks_the_slow_torsion_and_separate_with_fast_labels_the
     assert slow_id not in _rank1_descriptors(sep)
     # The slow objective on the runs of each slow well: the slow torsion wins.
     runs = Source.from_states(data.topology, data.files)
-    slow = suggest(runs, objective="slow", lag=10 * data.timestep_ps, n_bootstrap=0,
+    slow = suggest(runs, objective="slow", lag=10 * data.frame_step_ps, n_bootstrap=0,
                    max_terms=2)
     assert slow_id in _rank1_descriptors(slow)
     assert fast_id not in _rank1_descriptors(slow)
@@ -53,7 +53,7 @@ def test_slow_objective_picks_the_slow_torsion_and_separate_with_fast_labels_the
 def test_both_objective_reports_and_combines_both_scores(two_wells_data):
     data = two_wells_data
     runs = Source.from_states(data.topology, data.files)
-    res = suggest(runs, objective="both", lag=10 * data.timestep_ps, n_bootstrap=0,
+    res = suggest(runs, objective="both", lag=10 * data.frame_step_ps, n_bootstrap=0,
                   max_terms=2, n_suggestions=3)
     for r in res.ranking:
         j = r["heldout_fisher_ratio"]
@@ -136,7 +136,7 @@ def test_slow_cv_is_in_kinetic_map_units(two_wells_data):
 
     data = two_wells_data
     res = suggest(Source.from_states(data.topology, data.files), objective="slow",
-                  lag=10 * data.timestep_ps, n_bootstrap=0, max_terms=2, n_suggestions=1)
+                  lag=10 * data.frame_step_ps, n_bootstrap=0, max_terms=2, n_suggestions=1)
     spec = Spec.from_dict(res.specs[0])
     values = np.concatenate([spec.evaluate(md.load(p, top=data.topology).xyz)
                              for p in data.paths])

@@ -77,15 +77,15 @@ def test_scorecard_redundancy_is_consistent_on_real_protein_data(adk_result_for_
 SIGMA_N, SIGMA_E, DELTA, LENGTH = 0.1, 0.01, 0.0283, 0.6
 
 
-def _pair_model(rng, n_frames, state, kind):
+def _pair_model(rng, n_frames, state, kind, sigma_e=SIGMA_E):
     """(x1, x2) distances in nm for one state: kind 'difference', 'sum' or 'duplicate'."""
     n = rng.normal(0.0, SIGMA_N, n_frames)
     shift = DELTA * state
-    x1 = LENGTH + n + shift + rng.normal(0.0, SIGMA_E, n_frames)
+    x1 = LENGTH + n + shift + rng.normal(0.0, sigma_e, n_frames)
     if kind == "difference":    # x1 - x2 separates
-        x2 = LENGTH + n - shift + rng.normal(0.0, SIGMA_E, n_frames)
+        x2 = LENGTH + n - shift + rng.normal(0.0, sigma_e, n_frames)
     elif kind == "sum":         # x1 + x2 separates
-        x2 = LENGTH - n + shift + rng.normal(0.0, SIGMA_E, n_frames)
+        x2 = LENGTH - n + shift + rng.normal(0.0, sigma_e, n_frames)
     else:                       # an affine copy, means included
         x2 = 0.8 * x1 + 0.1
     return x1, x2
@@ -115,7 +115,7 @@ def _frames(x1, x2, noise):
     return xyz
 
 
-def _write_pair_source(tmp_path, kind, seed, n_files=2, n_frames=1500):
+def _write_pair_source(tmp_path, kind, seed, n_files=2, n_frames=1500, sigma_e=SIGMA_E):
     import mdtraj as md
 
     from cvdesign import Source
@@ -125,7 +125,7 @@ def _write_pair_source(tmp_path, kind, seed, n_files=2, n_frames=1500):
     src = Source(top)
     for state, name in enumerate(("A", "B")):
         for f in range(n_files):
-            x1, x2 = _pair_model(rng, n_frames, state, kind)
+            x1, x2 = _pair_model(rng, n_frames, state, kind, sigma_e)
             xyz = _frames(x1, x2, LENGTH + rng.normal(0.0, 0.05, n_frames))
             path = tmp_path / f"{kind}-{name}-{f}.dcd"
             md.Trajectory(xyz, top).save_dcd(str(path))
@@ -180,3 +180,16 @@ def test_an_affine_copy_still_collapses_to_one_representative(tmp_path):
     assert rows[rep]["shortlisted"] and not rows[other]["shortlisted"]
     assert rows[rep]["stands_for"] == [other]
     assert rows[other]["note"].startswith(f"represented by {rep}")
+
+
+def test_a_combination_rigid_within_the_states_is_reported_with_a_warning(tmp_path):
+    # the 'difference' model without independent noise: x1 - x2 is exactly 2 delta_s in
+    # every frame, so the rank-1 CV does not move within a state (float precision only)
+    from cvdesign import suggest
+
+    src, _ = _write_pair_source(tmp_path, "difference", seed=13, n_frames=400, sigma_e=0.0)
+    result = suggest(src, n_bootstrap=0, max_terms=2, n_suggestions=1)
+    (warning,) = result.ranking[0]["warnings"]
+    assert warning.startswith("the CV barely moves within the states (Fisher ratio")
+    assert "**Warning** (rank 1, cv-01.json): the CV barely moves" in result.summary_md()
+    assert "Warning: the CV barely moves" in result.specs[0]["caution"]

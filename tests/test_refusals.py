@@ -163,3 +163,49 @@ def test_lag_longer_than_every_run_of_one_state_is_refused_for_slowness_objectiv
                                          r": slowness would be measured on the other states' "
                                          r"runs alone"):
         suggest(short_closed, objective=objective, lag=10.0, n_bootstrap=0)
+
+
+def _chain_at_dihedrals(phi):
+    """Four bonded atoms (bonds 0.15 nm, angles 109.5 deg) at the dihedral angles `phi`
+    (rad), the fourth atom placed from the first three (natural extension reference frame;
+    Parsons et al., J. Comput. Chem. 26:1063, 2005)."""
+    n = phi.size
+    b, theta = 0.15, np.deg2rad(109.5)
+    a0 = np.array([0.0, 0.0, 0.0])
+    a1 = np.array([b, 0.0, 0.0])
+    a2 = a1 + b * np.array([-np.cos(theta), np.sin(theta), 0.0])
+    bc = (a2 - a1) / np.linalg.norm(a2 - a1)
+    nrm = np.cross(a1 - a0, bc)
+    nrm /= np.linalg.norm(nrm)
+    frame = np.stack([bc, np.cross(nrm, bc), nrm])
+    local = b * np.stack([-np.cos(theta) * np.ones(n), np.sin(theta) * np.cos(phi),
+                          np.sin(theta) * np.sin(phi)], axis=1)
+    xyz = np.zeros((n, 4, 3))
+    xyz[:, 0], xyz[:, 1], xyz[:, 2] = a0, a1, a2
+    xyz[:, 3] = a2 + local @ frame
+    return xyz.astype(np.float32)
+
+
+def test_a_dihedral_whose_cosine_barely_moves_is_still_scored(tmp_path):
+    # state A sits at phi = 0 with 5e-4 rad spread: its cosine changes by ~1e-7 (frozen
+    # at float precision) while its sine moves; the dihedral is not frozen
+    top = md.Topology()
+    res = top.add_residue("RIG", top.add_chain(), resSeq=1)
+    atoms = [top.add_atom(f"C{i}", md.element.carbon, res) for i in range(4)]
+    for a, b in zip(atoms, atoms[1:]):
+        top.add_bond(a, b)
+    rng = np.random.default_rng(3)
+    src = Source(top)
+    for name, mean, sd in (("A", 0.0, 5e-4), ("B", 2.0, 0.2)):
+        for k in range(2):
+            traj = md.Trajectory(_chain_at_dihedrals(rng.normal(mean, sd, 400)), top)
+            phi = md.compute_dihedrals(traj, [[0, 1, 2, 3]])[:, 0]
+            assert abs(np.mean(phi) - mean) < 0.05  # the geometry is what the test says
+            path = tmp_path / f"{name}{k}.dcd"
+            traj.save_dcd(str(path))
+            src.add(str(path), name)
+    result = suggest(src, kinds=("dihedral",), n_bootstrap=0, max_terms=1, n_suggestions=1)
+    (row,) = result.scorecard
+    assert row["fisher_ratio"] is not None and row["fisher_ratio"] > 1
+    assert not row["note"].startswith("frozen")
+    assert result.ranking[0]["terms"][0]["descriptor"] == row["id"]

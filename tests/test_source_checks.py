@@ -62,7 +62,7 @@ def test_given_frame_spacing_replaces_stored_times_that_do_not_increase_and_says
     _, closed, opened = demo_two
     res = suggest(Source.from_states(top, {"closed": [a], "open": [b]}, timestep=0.2),
                   objective="both", lag=2.0, n_bootstrap=0, max_terms=1, n_suggestions=1)
-    assert [i["timestep_ps"] for i in res.inputs] == [0.2, 0.2]
+    assert [i["frame_step_ps"] for i in res.inputs] == [0.2, 0.2]
     said = [n for n in res.notes if "they are ignored and the given time between frames, "
                                     "0.2 ps, is used instead" in n]
     assert len(said) == 2 and said[0].startswith("trajectory c.xtc stores ")

@@ -116,7 +116,7 @@ def biased_run(spec, system, label):
     x0 = np.stack([system.states[s] for s in ("closed", "open")] * (N_WALKERS // 2))
     start = time.perf_counter()
     run = run_biased(system, x0, N_STEPS, bias=bias, friction=FRICTION_PER_PS,
-                     timestep=TIMESTEP_PS, seed=SEED, report_interval=interval_steps,
+                     md_step_ps=TIMESTEP_PS, seed=SEED, report_interval=interval_steps,
                      observe=system.slow_angle)
     # The states are told apart by the molecule's latch dihedral itself, not by the
     # CV, so that both CVs are judged by the same yardstick.
@@ -188,7 +188,7 @@ def main(out_dir, keep=True):
           "frames reweighted by its energy ...")
     start = time.perf_counter()
     ref = softened_delta_f(system, N_STEPS, temperature=TEMPERATURE_K,
-                           friction=FRICTION_PER_PS, timestep=TIMESTEP_PS,
+                           friction=FRICTION_PER_PS, md_step_ps=TIMESTEP_PS,
                            n_walkers=N_WALKERS, report_interval=25, seed=SEED,
                            states=("closed", "open"))
     print(f"  {ref.n_transitions} transitions, {ref.effective_samples:.0f} effective frames, "

@@ -9,7 +9,7 @@ Examples
 >>> from cvdesign.testbed import latch, LangevinBAOAB
 >>> system = latch()
 >>> integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
-...                       friction=1.0, timestep=0.002, seed=0)
+...                       friction=1.0, md_step_ps=0.002, seed=0)
 >>> xyz, times = integ.run(system.states["closed"], 100, report_interval=50)
 >>> xyz.shape, str(system.assign_state(xyz[-1]))
 ((2, 12, 3), 'closed')

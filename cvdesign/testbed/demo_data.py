@@ -122,7 +122,7 @@ def _in_well(phi, well):
 
 
 def generate(out_dir, seed=2026, *, n_runs=3, n_frames=2000, report_interval=100,
-             timestep=0.002, temperature=300.0, friction=1.0, equilibration_steps=10000,
+             md_step_ps=0.002, temperature=300.0, friction=1.0, equilibration_steps=10000,
              verbose=False):
     """Simulate the latch toy in both states and write the demo data set.
 
@@ -139,7 +139,7 @@ def generate(out_dir, seed=2026, *, n_runs=3, n_frames=2000, report_interval=100
         Frames per run; the first is the equilibrated start of the recording.
     report_interval : int, default=100
         Steps between frames (100 steps of 0.002 ps = 0.2 ps).
-    timestep : float, default=0.002
+    md_step_ps : float, default=0.002
         Integration time step, ps.
     temperature : float, default=300.0
         K.
@@ -187,12 +187,12 @@ def generate(out_dir, seed=2026, *, n_runs=3, n_frames=2000, report_interval=100
     x0 = np.stack([system.states[s] for s in labels])
 
     integ = LangevinBAOAB(system.force_field, system.masses, temperature=temperature,
-                          friction=friction, timestep=timestep, seed=seed)
+                          friction=friction, md_step_ps=md_step_ps, seed=seed)
     integ.run(x0, equilibration_steps, max(1, equilibration_steps))
     x_eq, v_eq = integ.positions_, integ.velocities_
     xyz, _ = integ.run(x_eq, (n_frames - 1) * report_interval, report_interval, v0=v_eq)
     xyz = np.concatenate([x_eq[None], xyz])            # (n_frames, n_walkers, n_atoms, 3)
-    frame_dt = report_interval * timestep
+    frame_dt = report_interval * md_step_ps
     times = np.arange(n_frames) * frame_dt
 
     pdb_name = "latch.pdb"
@@ -221,7 +221,7 @@ def generate(out_dir, seed=2026, *, n_runs=3, n_frames=2000, report_interval=100
             "name": fname,
             "state": label,
             "n_frames": int(traj.n_frames),
-            "timestep_ps": round(frame_dt, 6),
+            "frame_step_ps": round(frame_dt, 6),
             "length_ps": round((n_frames - 1) * frame_dt, 6),
             "bytes": (out_dir / fname).stat().st_size,
             "sha256": _sha256(out_dir / fname),
@@ -245,7 +245,7 @@ def generate(out_dir, seed=2026, *, n_runs=3, n_frames=2000, report_interval=100
 
     atoms = [{"index": a.index, "name": a.name, "element": a.element.symbol,
               "mass_amu": round(float(m), 5)} for a, m in zip(top.atoms, system.masses)]
-    command = _command(out_dir, seed, n_runs, n_frames, report_interval, timestep,
+    command = _command(out_dir, seed, n_runs, n_frames, report_interval, md_step_ps,
                        temperature, friction, equilibration_steps)
     manifest = {
         "format": _FORMAT,
@@ -269,7 +269,7 @@ def generate(out_dir, seed=2026, *, n_runs=3, n_frames=2000, report_interval=100
         "fast_torsions": system.notes["fast_torsions"],
         "arm_torsions": system.notes["arm_torsions"],
         "simulation": {"integrator": "BAOAB Langevin", "temperature_K": temperature,
-                       "friction_per_ps": friction, "timestep_ps": timestep,
+                       "friction_per_ps": friction, "md_step_ps": md_step_ps,
                        "equilibration_steps": int(equilibration_steps),
                        "report_interval_steps": int(report_interval), "seed": seed,
                        "walkers": names},
@@ -283,14 +283,14 @@ def generate(out_dir, seed=2026, *, n_runs=3, n_frames=2000, report_interval=100
     return manifest
 
 
-def _command(out_dir, seed, n_runs, n_frames, report_interval, timestep, temperature,
+def _command(out_dir, seed, n_runs, n_frames, report_interval, md_step_ps, temperature,
              friction, equilibration_steps):
     parts = ["python -m cvdesign.testbed.demo_data", f"--out {Path(out_dir).name or '.'}",
              f"--seed {seed}"]
-    defaults = dict(n_runs=3, n_frames=2000, report_interval=100, timestep=0.002,
+    defaults = dict(n_runs=3, n_frames=2000, report_interval=100, md_step_ps=0.002,
                     temperature=300.0, friction=1.0, equilibration_steps=10000)
     given = dict(n_runs=n_runs, n_frames=n_frames, report_interval=report_interval,
-                 timestep=timestep, temperature=temperature, friction=friction,
+                 md_step_ps=md_step_ps, temperature=temperature, friction=friction,
                  equilibration_steps=equilibration_steps)
     for key, value in given.items():
         if value != defaults[key]:
@@ -305,7 +305,7 @@ def _summary(manifest, seconds):
              f"contact / nm (mean, sd)"]
     for r in manifest["trajectories"]:
         ph, c = r["slow_dihedral_rad"], r["contact_nm"]
-        lines.append(f"{r['name']:<14s}{r['n_frames']:7d}{r['timestep_ps']:7.2f}  "
+        lines.append(f"{r['name']:<14s}{r['n_frames']:7d}{r['frame_step_ps']:7.2f}  "
                      f"{ph['circular_mean']:+.2f}, {ph['max_deviation_from_mean']:.2f}"
                      f"{'':<17s}{c['mean']:.3f}, {c['std']:.3f}")
     lines.append("every frame stays in the well of its state")
@@ -316,7 +316,7 @@ def _readme(m):
     sd, ct = m["slow_dihedral"], m["contact"]
     sim = m["simulation"]
     rows = "\n".join(
-        f"| `{r['name']}` | {r['state']} | {r['n_frames']} | {r['timestep_ps']:g} | "
+        f"| `{r['name']}` | {r['state']} | {r['n_frames']} | {r['frame_step_ps']:g} | "
         f"{r['length_ps']:g} | {r['contact_nm']['mean']:.3f} ± {r['contact_nm']['std']:.3f} |"
         for r in m["trajectories"])
     atoms = ", ".join(f"{a['index']} {a['name']}" for a in m["topology"]["atoms"])
@@ -361,7 +361,7 @@ second; fast torsions should score low.
 Each run starts at the energy minimum of its state, is equilibrated there for
 {sim['equilibration_steps']} steps, then recorded. BAOAB Langevin dynamics,
 {sim['temperature_K']:g} K, friction {sim['friction_per_ps']:g}/ps, time step
-{sim['timestep_ps']:g} ps, seed {sim['seed']}; all runs are walkers of one
+{sim['md_step_ps']:g} ps, seed {sim['seed']}; all runs are walkers of one
 integrator. Units: nm, ps, kJ/mol, rad, amu.
 """
 
@@ -396,13 +396,13 @@ def main(argv=None):
     p.add_argument("--n-runs", type=int, default=3, help="runs per state")
     p.add_argument("--n-frames", type=int, default=2000, help="frames per run")
     p.add_argument("--report-interval", type=int, default=100, help="steps between frames")
-    p.add_argument("--timestep", type=float, default=0.002, help="ps")
+    p.add_argument("--md-step-ps", type=float, default=0.002, help="MD step of the integrator, ps")
     p.add_argument("--temperature", type=float, default=300.0, help="K")
     p.add_argument("--friction", type=float, default=1.0, help="1/ps")
     p.add_argument("--equilibration-steps", type=int, default=10000)
     a = p.parse_args(argv)
     generate(a.out, a.seed, n_runs=a.n_runs, n_frames=a.n_frames,
-             report_interval=a.report_interval, timestep=a.timestep,
+             report_interval=a.report_interval, md_step_ps=a.md_step_ps,
              temperature=a.temperature, friction=a.friction,
              equilibration_steps=a.equilibration_steps, verbose=True)
     return 0

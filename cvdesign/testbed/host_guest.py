@@ -170,7 +170,7 @@ class HostGuestData:
         Unit vector from the cavity centre to the open rim, ``(0, 0, 1)``.
     ligand_selection, pocket_selection : str
         mdtraj selections, ``"resname GST"`` and ``"resname HST"``.
-    timestep_ps : float
+    frame_step_ps : float
         Time between frames, ps.
     n_frames : int
         Frames per run.
@@ -187,14 +187,14 @@ class HostGuestData:
     cavity_axis: tuple
     ligand_selection: str
     pocket_selection: str
-    timestep_ps: float
+    frame_step_ps: float
     n_frames: int
     box_nm: float | None = None
     tumbled: bool = False
 
 
 def write_host_guest(out_dir, *, seed=11, n_runs=2, n_frames=400, report_interval=10,
-                     timestep=0.002, temperature=300.0, friction=5.0, equilibration_steps=500,
+                     md_step_ps=0.002, temperature=300.0, friction=5.0, equilibration_steps=500,
                      tumble=False, box_nm=None):
     """Simulate the bound host-guest toy and write ``host_guest.pdb`` and ``bound-<i>.xtc``.
 
@@ -210,7 +210,7 @@ def write_host_guest(out_dir, *, seed=11, n_runs=2, n_frames=400, report_interva
         Frames per run (the first is the equilibrated start).
     report_interval : int, default=10
         Steps between frames.
-    timestep : float, default=0.002
+    md_step_ps : float, default=0.002
         ps.
     temperature : float, default=300.0
         K.
@@ -253,14 +253,14 @@ def write_host_guest(out_dir, *, seed=11, n_runs=2, n_frames=400, report_interva
     out_dir.mkdir(parents=True, exist_ok=True)
     top, ff, masses, x0 = host_guest_system()
     integ = LangevinBAOAB(ff, masses, temperature=temperature, friction=friction,
-                          timestep=timestep, seed=seed)
+                          md_step_ps=md_step_ps, seed=seed)
     integ.run(np.stack([x0] * int(n_runs)), int(equilibration_steps),
               max(1, int(equilibration_steps)))
     x_eq, v_eq = integ.positions_, integ.velocities_
     xyz, _ = integ.run(x_eq, (int(n_frames) - 1) * int(report_interval), int(report_interval),
                        v0=v_eq)
     xyz = np.concatenate([x_eq[None], xyz])
-    frame_dt = int(report_interval) * float(timestep)
+    frame_dt = int(report_interval) * float(md_step_ps)
     times = np.arange(int(n_frames)) * frame_dt
     guest_c = xyz[:, :, _N_HOST:].mean(axis=2)
     off = np.linalg.norm(guest_c - np.array([0.0, 0.0, _SITE_Z]), axis=-1)
@@ -290,7 +290,7 @@ def write_host_guest(out_dir, *, seed=11, n_runs=2, n_frames=400, report_interva
         ligand_atoms=tuple(range(_N_HOST, _N_HOST + _N_GUEST)),
         pocket_atoms=tuple(range(_N_HOST)), cavity_axis=(0.0, 0.0, 1.0),
         ligand_selection="resname GST", pocket_selection="resname HST",
-        timestep_ps=round(frame_dt, 12), n_frames=int(n_frames),
+        frame_step_ps=round(frame_dt, 12), n_frames=int(n_frames),
         box_nm=None if box_nm is None else float(box_nm), tumbled=bool(tumble))
 
 

@@ -33,7 +33,7 @@ class LangevinBAOAB:
     friction : float
         Friction coefficient gamma, 1/ps. Zero gives (velocity Verlet) energy-
         conserving dynamics.
-    timestep : float
+    md_step_ps : float
         Time step, ps.
     seed : int, numpy.random.SeedSequence, numpy.random.Generator or None, default=None
         Passed to :func:`numpy.random.default_rng`; the same seed gives the
@@ -77,13 +77,13 @@ class LangevinBAOAB:
     >>> def well(x):
     ...     return 50.0 * float((x ** 2).sum()), -100.0 * x
     >>> integ = LangevinBAOAB(well, [12.0], temperature=300.0, friction=5.0,
-    ...                       timestep=0.01, seed=1)
+    ...                       md_step_ps=0.01, seed=1)
     >>> xyz, t = integ.run(np.zeros((1, 3)), 1000, report_interval=10)
     >>> xyz.shape, round(float(t[-1]), 6)
     ((100, 1, 3), 10.0)
     """
 
-    def __init__(self, force_field, masses, *, temperature, friction, timestep, seed=None):
+    def __init__(self, force_field, masses, *, temperature, friction, md_step_ps, seed=None):
         if hasattr(force_field, "energy_forces"):
             self._energy_forces = force_field.energy_forces
         elif callable(force_field):
@@ -97,14 +97,14 @@ class LangevinBAOAB:
         self.masses = np.asarray(masses, dtype=np.float64)
         if self.masses.ndim != 1 or not np.all(self.masses > 0):
             raise ValueError(f"masses must be a 1-D array of positive amu; got {masses!r}")
-        for name, value in (("temperature", temperature), ("timestep", timestep)):
+        for name, value in (("temperature", temperature), ("md_step_ps", md_step_ps)):
             if not float(value) > 0:
                 raise ValueError(f"{name}={value!r} must be positive")
         if not float(friction) >= 0:
             raise ValueError(f"friction={friction!r} must be zero or positive (1/ps)")
         self.temperature = float(temperature)
         self.friction = float(friction)
-        self.timestep = float(timestep)
+        self.md_step_ps = float(md_step_ps)
         self.rng = np.random.default_rng(seed)
 
     @property
@@ -129,7 +129,7 @@ class LangevinBAOAB:
         --------
         >>> integ = LangevinBAOAB(lambda x: (0.0, 0 * x), [1.0, 4.0],
         ...                       temperature=300.0, friction=1.0,
-        ...                       timestep=0.002, seed=0)
+        ...                       md_step_ps=0.002, seed=0)
         >>> integ.maxwell_boltzmann((2, 3)).shape
         (2, 3)
         """
@@ -165,7 +165,7 @@ class LangevinBAOAB:
         --------
         >>> integ = LangevinBAOAB(lambda x: (0.0, 0 * x), [1.0],
         ...                       temperature=300.0, friction=1.0,
-        ...                       timestep=0.002, seed=0)
+        ...                       md_step_ps=0.002, seed=0)
         >>> xyz, t = integ.run(np.zeros((1, 3)), 10, report_interval=5)
         >>> t.tolist()
         [0.01, 0.02]
@@ -191,7 +191,7 @@ class LangevinBAOAB:
             if v.shape != x.shape:
                 raise ValueError(f"v0 must have the shape of x0 {x.shape}; got {v.shape}")
 
-        dt = self.timestep
+        dt = self.md_step_ps
         inv_m = (1.0 / self.masses)[:, None]
         c1 = np.exp(-self.friction * dt)
         noise = np.sqrt((1.0 - c1 * c1) * self.kT / self.masses)[:, None]
@@ -221,7 +221,7 @@ class LangevinBAOAB:
                 out_e[k] = energy
         if not np.all(np.isfinite(x)):
             raise FloatingPointError(
-                f"positions became non-finite; timestep={dt} ps is probably too long "
+                f"positions became non-finite; md_step_ps={dt} ps is probably too long "
                 "for the stiffest term of the force field"
             )
         self.positions_ = x

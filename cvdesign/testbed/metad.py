@@ -27,7 +27,7 @@ Examples
 ...                         temperature=300.0, grid=(-np.pi, np.pi, 90),
 ...                         periodic=True)
 >>> run = run_biased(system, system.states["trans"], 500, bias=bias,
-...                  friction=2.0, timestep=0.004, seed=0)
+...                  friction=2.0, md_step_ps=0.004, seed=0)
 >>> run.cv.shape, bias.n_kernels
 ((10,), 10)
 """
@@ -493,7 +493,7 @@ class BiasedRun:
     observed: np.ndarray = None
 
 
-def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=None,
+def run_biased(system, x0, n_steps, *, bias, friction, md_step_ps, seed=None, v0=None,
                report_interval=None, average_from=0.5, observe=None):
     """Langevin dynamics under a well-tempered bias that grows every ``bias.interval_steps`` steps.
 
@@ -513,7 +513,7 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
         Updated in place; its `temperature` is the bath temperature.
     friction : float
         1/ps.
-    timestep : float
+    md_step_ps : float
         ps.
     seed : int or None, default=None
         Seed of the integrator; the same seed gives the same run.
@@ -546,7 +546,7 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
                          f"interval_steps={interval}")
     ff = system.force_field.with_bias(bias)
     integ = LangevinBAOAB(ff, system.masses, temperature=bias.temperature,
-                          friction=friction, timestep=timestep, seed=seed)
+                          friction=friction, md_step_ps=md_step_ps, seed=seed)
     x = np.array(x0, dtype=np.float64)
     v = integ.maxwell_boltzmann(x.shape) if v0 is None else np.array(v0, dtype=np.float64)
     n_chunks = int(n_steps) // interval
@@ -574,7 +574,7 @@ def run_biased(system, x0, n_steps, *, bias, friction, timestep, seed=None, v0=N
         if chunk >= first:
             total += bias.values
     mean = total / max(n_chunks - first, 1) if n_chunks else bias.values.copy()
-    times = np.arange(1, len(cvs) + 1) * (report * float(timestep))
+    times = np.arange(1, len(cvs) + 1) * (report * float(md_step_ps))
     return BiasedRun(cv=np.array(cvs), times=times, bias=bias, positions=x, velocities=v,
                      mean_values=mean,
                      observed=np.concatenate(observed) if observed else None)
@@ -678,7 +678,7 @@ def asymmetric_torsion(k_twofold=10.0, k_onefold=2.0):
         description=("Asymmetric torsion: an invented four-atom chain whose one slow "
                      "motion is a two-well torsion with an uneven pair of wells."),
         notes={"k_twofold": k_twofold, "k_onefold": k_onefold,
-               "recommended_timestep_ps": 0.004},
+               "recommended_md_step_ps": 0.004},
     )
 
 
@@ -784,7 +784,7 @@ class SoftenedReference:
     states: tuple
 
 
-def softened_delta_f(system, n_steps, *, temperature, friction, timestep, factor=0.0,
+def softened_delta_f(system, n_steps, *, temperature, friction, md_step_ps, factor=0.0,
                      n_walkers=8, report_interval=50, discard=0.1, states=None, seed=None):
     """Reference free-energy difference between the wells of a toy's slow dihedral.
 
@@ -807,7 +807,7 @@ def softened_delta_f(system, n_steps, *, temperature, friction, timestep, factor
         K.
     friction : float
         1/ps.
-    timestep : float
+    md_step_ps : float
         ps.
     factor : float, default=0.0
         Scale of the slow torsion's own terms in the sampled force field.
@@ -830,7 +830,7 @@ def softened_delta_f(system, n_steps, *, temperature, friction, timestep, factor
     --------
     >>> system = asymmetric_torsion()
     >>> ref = softened_delta_f(system, 4000, temperature=300.0, friction=2.0,
-    ...                        timestep=0.005, n_walkers=4, seed=0)
+    ...                        md_step_ps=0.005, n_walkers=4, seed=0)
     >>> ref.states, ref.n_transitions > 10
     (('cis', 'trans'), True)
     """
@@ -843,7 +843,7 @@ def softened_delta_f(system, n_steps, *, temperature, friction, timestep, factor
                          f"discarding {discard!r} of them; run longer")
     soft = system.force_field.with_torsion_scale(system.slow_dihedral, factor)
     integ = LangevinBAOAB(soft, system.masses, temperature=temperature, friction=friction,
-                          timestep=timestep, seed=seed)
+                          md_step_ps=md_step_ps, seed=seed)
     x0 = np.stack([system.states[(a, b)[w % 2]] for w in range(int(n_walkers))])
     xyz, _ = integ.run(x0, n_steps, report_interval=report_interval)
     xyz = xyz[int(float(discard) * xyz.shape[0]):]

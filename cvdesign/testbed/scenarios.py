@@ -55,7 +55,7 @@ class TwoWellsData:
         0-based atoms of the slow dihedral, ``(0, 1, 2, 3)``.
     fast_dihedral : tuple of int
         0-based atoms of the fast dihedral, ``(6, 7, 8, 9)``.
-    timestep_ps : float
+    frame_step_ps : float
         Time between frames, ps.
     n_frames : int
         Frames per run.
@@ -69,7 +69,7 @@ class TwoWellsData:
     fast_fractions: dict
     slow_dihedral: tuple
     fast_dihedral: tuple
-    timestep_ps: float
+    frame_step_ps: float
     n_frames: int
 
     @property
@@ -122,7 +122,7 @@ def _save_xtc(path, topology, xyz, times):
 
 
 def write_two_wells(out_dir, *, seed=7, n_runs_per_state=2, n_frames=1500, report_interval=12,
-                    timestep=0.005, temperature=300.0, friction=1.0, equilibration_steps=2000,
+                    md_step_ps=0.005, temperature=300.0, friction=1.0, equilibration_steps=2000,
                     check=True):
     """Simulate the two-wells toy from both slow wells and write topology and runs.
 
@@ -147,7 +147,7 @@ def write_two_wells(out_dir, *, seed=7, n_runs_per_state=2, n_frames=1500, repor
         Frames per run.
     report_interval : int, default=12
         Steps between frames (12 steps of 0.005 ps = 0.06 ps).
-    timestep : float, default=0.005
+    md_step_ps : float, default=0.005
         Integration time step, ps.
     temperature : float, default=300.0
         K.
@@ -181,7 +181,7 @@ def write_two_wells(out_dir, *, seed=7, n_runs_per_state=2, n_frames=1500, repor
     >>> with tempfile.TemporaryDirectory() as d:
     ...     data = write_two_wells(d, n_runs_per_state=1, n_frames=5,
     ...                            equilibration_steps=10, check=False)
-    ...     [os.path.basename(p) for p in data.paths], data.timestep_ps
+    ...     [os.path.basename(p) for p in data.paths], data.frame_step_ps
     ...     data.fast_labels[data.files['slowA'][0]].shape
     (['slowA-1.xtc', 'slowB-1.xtc'], 0.06)
     (5,)
@@ -204,13 +204,13 @@ def write_two_wells(out_dir, *, seed=7, n_runs_per_state=2, n_frames=1500, repor
     names = [f"{s}-{r + 1}.xtc" for s in state_names for r in range(n_runs)]
 
     integ = LangevinBAOAB(system.force_field, system.masses, temperature=temperature,
-                          friction=friction, timestep=timestep, seed=seed)
+                          friction=friction, md_step_ps=md_step_ps, seed=seed)
     x0 = np.stack([system.states[s] for s in labels])
     integ.run(x0, equilibration_steps, max(1, equilibration_steps))
     x_eq, v_eq = integ.positions_, integ.velocities_
     xyz, _ = integ.run(x_eq, (n_frames - 1) * report_interval, report_interval, v0=v_eq)
     xyz = np.concatenate([x_eq[None], xyz])               # (n_frames, n_walkers, n_atoms, 3)
-    frame_dt = report_interval * float(timestep)
+    frame_dt = report_interval * float(md_step_ps)
     times = np.arange(n_frames) * frame_dt
 
     pdb = out_dir / "two_wells.pdb"
@@ -258,6 +258,6 @@ def write_two_wells(out_dir, *, seed=7, n_runs_per_state=2, n_frames=1500, repor
         fast_fractions=fast_fractions,
         slow_dihedral=system.slow_dihedral,
         fast_dihedral=system.fast_dihedral,
-        timestep_ps=round(frame_dt, 12),
+        frame_step_ps=round(frame_dt, 12),
         n_frames=n_frames,
     )

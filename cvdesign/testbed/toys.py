@@ -518,7 +518,7 @@ def two_wells():
             s: float(np.linalg.norm(x[contact[0]] - x[contact[1]])) for s, x in states.items()
         },
         "middle_torsions": [[i, i + 1, i + 2, i + 3] for i in range(1, _TWW_N - 4)],
-        "recommended_timestep_ps": 0.005,
+        "recommended_md_step_ps": 0.005,
     }
     description = (
         "Two wells: an invented 10-atom united-atom chain C1..C10. The torsion "

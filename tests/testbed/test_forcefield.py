@@ -88,7 +88,7 @@ def test_latch_force_equals_central_difference_at_thermal_configurations():
 
     system = latch()
     integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
-                          friction=1.0, timestep=0.002, seed=3)
+                          friction=1.0, md_step_ps=0.002, seed=3)
     x0 = np.stack([system.states["closed"], system.states["open"]])
     xyz, _ = integ.run(x0, 600, report_interval=300)
     for x in xyz.reshape(-1, system.n_atoms, 3):

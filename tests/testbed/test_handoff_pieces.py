@@ -294,7 +294,7 @@ def test_stack_bias_calls_in_a_walker_run(latch_system):
     bias = _Restraint(ref, stacks=True)
     ff = Counted(latch_system.force_field.with_bias(bias))
     integ = LangevinBAOAB(ff, latch_system.masses, temperature=T, friction=5.0,
-                          timestep=0.002, seed=0)
+                          md_step_ps=0.002, seed=0)
     x0 = np.stack([ref, latch_system.states["open"], ref])
     integ.run(x0, 10, report_interval=5)
     assert ff.calls >= 10
@@ -425,7 +425,7 @@ def test_run_biased_fast_path_changes_nothing(torsion_system):
     for wrap in (_StackCV, _PlainCV):
         cv = wrap(spec_cv(spec))
         bias = _wt_bias(cv, interval_steps=50, height=1.0)
-        runs.append(run_biased(system, x0, 1500, bias=bias, friction=2.0, timestep=0.005,
+        runs.append(run_biased(system, x0, 1500, bias=bias, friction=2.0, md_step_ps=0.005,
                                seed=13, report_interval=10))
         cvs.append(cv)
     fast, slow = runs
@@ -447,7 +447,7 @@ def test_run_biased_observe(torsion_system):
     system = torsion_system
     x0 = np.stack([system.states["trans"], system.states["cis"]] * 2)
     bias = _wt_bias(dihedral_cv(system.slow_dihedral), interval_steps=50)
-    run = run_biased(system, x0, 1000, bias=bias, friction=2.0, timestep=0.005, seed=5,
+    run = run_biased(system, x0, 1000, bias=bias, friction=2.0, md_step_ps=0.005, seed=5,
                      report_interval=10, observe=system.slow_angle)
     assert run.observed.shape == (100, 4) == run.cv.shape
     np.testing.assert_allclose(_wrapped(run.observed - run.cv), 0.0, atol=1e-10)
@@ -456,7 +456,7 @@ def test_run_biased_observe(torsion_system):
     # Observing leaves the run itself unchanged.
     plain = run_biased(system, x0, 1000, bias=_wt_bias(dihedral_cv(system.slow_dihedral),
                                                        interval_steps=50),
-                       friction=2.0, timestep=0.005, seed=5, report_interval=10)
+                       friction=2.0, md_step_ps=0.005, seed=5, report_interval=10)
     np.testing.assert_array_equal(plain.cv, run.cv)
 
     # One walker: shape (n_reports,); another observable: the end-to-end distance.
@@ -465,7 +465,7 @@ def test_run_biased_observe(torsion_system):
 
     single = run_biased(system, system.states["cis"], 500,
                         bias=_wt_bias(dihedral_cv(system.slow_dihedral), interval_steps=50),
-                        friction=2.0, timestep=0.005, seed=6, report_interval=25,
+                        friction=2.0, md_step_ps=0.005, seed=6, report_interval=25,
                         observe=distance)
     assert single.observed.shape == (20,) == single.cv.shape
     assert np.all((single.observed > 0.1) & (single.observed < 0.5))
@@ -480,7 +480,7 @@ def test_softened_delta_f_recovers_the_quadrature(torsion_system, factor, min_tr
     system = torsion_system
     reference = _reference(system)
     assert reference == pytest.approx(3.85, abs=0.01)
-    ref = softened_delta_f(system, 20000, temperature=T, friction=2.0, timestep=0.005,
+    ref = softened_delta_f(system, 20000, temperature=T, friction=2.0, md_step_ps=0.005,
                            factor=factor, n_walkers=8, seed=21)
     assert isinstance(ref, SoftenedReference)
     assert ref.states == ("cis", "trans")
@@ -497,7 +497,7 @@ def test_softened_delta_f_recovers_the_quadrature(torsion_system, factor, min_tr
 def test_softened_delta_f_unscaled_is_plain_counting(torsion_system):
     """factor=1 samples the true force field: all weights 1, plain population counting."""
     system = torsion_system
-    ref = softened_delta_f(system, 2000, temperature=T, friction=2.0, timestep=0.005,
+    ref = softened_delta_f(system, 2000, temperature=T, friction=2.0, md_step_ps=0.005,
                            factor=1.0, n_walkers=4, seed=3)
     n_frames = 4 * (2000 // 50 - int(0.1 * (2000 // 50)))
     assert ref.effective_samples == pytest.approx(n_frames, rel=1e-12)
@@ -505,7 +505,7 @@ def test_softened_delta_f_unscaled_is_plain_counting(torsion_system):
 
 def test_softened_delta_f_is_reproducible_and_states_order(torsion_system):
     system = torsion_system
-    kw = dict(temperature=T, friction=2.0, timestep=0.005, n_walkers=4, seed=9)
+    kw = dict(temperature=T, friction=2.0, md_step_ps=0.005, n_walkers=4, seed=9)
     a = softened_delta_f(system, 3000, **kw)
     b = softened_delta_f(system, 3000, **kw)
     assert a == b  # dataclass equality: every field identical
@@ -518,7 +518,7 @@ def test_softened_delta_f_is_reproducible_and_states_order(torsion_system):
 
 def test_softened_delta_f_rejects_bad_arguments(torsion_system):
     system = torsion_system
-    kw = dict(temperature=T, friction=2.0, timestep=0.005)
+    kw = dict(temperature=T, friction=2.0, md_step_ps=0.005)
     with pytest.raises(ValueError, match="n_walkers"):
         softened_delta_f(system, 1000, n_walkers=1, **kw)
     with pytest.raises(ValueError, match="fewer than 2 frames"):

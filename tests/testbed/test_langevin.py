@@ -38,16 +38,16 @@ def test_boltzmann_constant_is_codata():
     assert BOLTZMANN == pytest.approx(1.380649e-23 * 6.02214076e23 / 1000, rel=1e-15)
 
 
-@pytest.mark.parametrize("timestep", [0.02, 0.3])
-def test_baoab_samples_harmonic_configurations_exactly(timestep):
+@pytest.mark.parametrize("md_step_ps", [0.02, 0.3])
+def test_baoab_samples_harmonic_configurations_exactly(md_step_ps):
     # <x^2> = kT/k per Cartesian component by equipartition (Frenkel and Smit,
     # "Understanding Molecular Simulation", 2nd ed., Academic Press 2002). BAOAB
     # samples the configurational distribution of a harmonic system exactly at
     # any stable step (Leimkuhler and Matthews, Appl. Math. Res. Express 2013),
     # so even omega*dt = 0.95 shows no step-size bias.
-    n_steps = int(round(600.0 / timestep))
+    n_steps = int(round(600.0 / md_step_ps))
     integ = LangevinBAOAB(harmonic(K_SPRING), np.full(N_PART, MASS), temperature=TEMP,
-                          friction=2.0, timestep=timestep, seed=11)
+                          friction=2.0, md_step_ps=md_step_ps, seed=11)
     x0 = np.random.default_rng(0).normal(scale=np.sqrt(KT / K_SPRING), size=(N_PART, 3))
     xyz, _ = integ.run(x0, n_steps, report_interval=max(1, n_steps // 4000))
     xyz = xyz[len(xyz) // 20:]
@@ -61,7 +61,7 @@ def test_baoab_kinetic_temperature_at_small_step():
     # Equipartition: <m v^2> = kT per component (Frenkel and Smit 2002); BAOAB's
     # velocity error is O(dt^2), negligible at omega*dt = 0.06.
     integ = LangevinBAOAB(harmonic(K_SPRING), np.full(N_PART, MASS), temperature=TEMP,
-                          friction=2.0, timestep=0.02, seed=5)
+                          friction=2.0, md_step_ps=0.02, seed=5)
     integ.run(np.zeros((N_PART, 3)), 5000, report_interval=10)
     v = integ.reported_velocities_[50:]
     mean, err = block_mean_and_error((MASS * v * v).mean(axis=(1, 2)))
@@ -74,7 +74,7 @@ def test_zero_friction_conserves_total_energy_of_latch():
     # Velocity Verlet limit (common practice: energy drift as a force check).
     system = latch()
     integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
-                          friction=0.0, timestep=0.0005, seed=0)
+                          friction=0.0, md_step_ps=0.0005, seed=0)
     integ.run(system.states["open"], 2000, report_interval=10)
     kinetic = 0.5 * (system.masses[:, None] * integ.reported_velocities_ ** 2).sum(axis=(1, 2))
     total = kinetic + integ.reported_energies_
@@ -86,7 +86,7 @@ def test_same_seed_same_trajectory_different_seed_different():
 
     def trajectory(seed):
         integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
-                              friction=1.0, timestep=0.002, seed=seed)
+                              friction=1.0, md_step_ps=0.002, seed=seed)
         return integ.run(system.states["closed"], 200, report_interval=20)
 
     a, ta = trajectory(7)
@@ -100,7 +100,7 @@ def test_same_seed_same_trajectory_different_seed_different():
 
 def test_run_continued_with_final_velocities_equals_one_long_run():
     system = latch()
-    kwargs = dict(temperature=300.0, friction=1.0, timestep=0.002, seed=4)
+    kwargs = dict(temperature=300.0, friction=1.0, md_step_ps=0.002, seed=4)
     one = LangevinBAOAB(system.force_field, system.masses, **kwargs)
     long, _ = one.run(system.states["open"], 100, report_interval=50)
     two = LangevinBAOAB(system.force_field, system.masses, **kwargs)
@@ -113,7 +113,7 @@ def test_walkers_are_integrated_in_lockstep():
     system = latch()
     x0 = np.stack([system.states["closed"], system.states["open"], system.states["open"]])
     integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
-                          friction=1.0, timestep=0.002, seed=0)
+                          friction=1.0, md_step_ps=0.002, seed=0)
     xyz, t = integ.run(x0, 40, report_interval=10)
     assert xyz.shape == (4, 3, 12, 3) and t.shape == (4,)
     assert integ.reported_energies_.shape == (4, 3)
@@ -121,10 +121,10 @@ def test_walkers_are_integrated_in_lockstep():
 
 
 @pytest.mark.parametrize("kwargs, match", [
-    (dict(temperature=-1.0, friction=1.0, timestep=0.002), r"temperature=-1.0 must be positive"),
-    (dict(temperature=300.0, friction=-1.0, timestep=0.002),
+    (dict(temperature=-1.0, friction=1.0, md_step_ps=0.002), r"temperature=-1.0 must be positive"),
+    (dict(temperature=300.0, friction=-1.0, md_step_ps=0.002),
      r"friction=-1.0 must be zero or positive"),
-    (dict(temperature=300.0, friction=1.0, timestep=0.0), r"timestep=0.0 must be positive"),
+    (dict(temperature=300.0, friction=1.0, md_step_ps=0.0), r"md_step_ps=0.0 must be positive"),
 ])
 def test_invalid_parameters_raise_with_the_argument_name(kwargs, match):
     with pytest.raises(ValueError, match=match):
@@ -133,7 +133,7 @@ def test_invalid_parameters_raise_with_the_argument_name(kwargs, match):
 
 def test_wrong_start_shape_raises():
     integ = LangevinBAOAB(harmonic(1.0), [1.0, 1.0], temperature=300.0, friction=1.0,
-                          timestep=0.01)
+                          md_step_ps=0.01)
     with pytest.raises(ValueError, match=r"x0 must have shape \(2, 3\) or \(n_walkers, 2, 3\)"):
         integ.run(np.zeros((3, 3)), 10)
 
@@ -160,7 +160,7 @@ def test_latch_states_are_built_as_documented():
 def test_latch_short_runs_stay_in_their_well_and_separate_the_contact():
     system = latch()
     integ = LangevinBAOAB(system.force_field, system.masses, temperature=300.0,
-                          friction=1.0, timestep=0.002, seed=1)
+                          friction=1.0, md_step_ps=0.002, seed=1)
     x0 = np.stack([system.states["closed"], system.states["open"]])
     xyz, _ = integ.run(x0, 5000, report_interval=25)
     states = system.assign_state(xyz)

@@ -121,7 +121,7 @@ def test_torsion_is_decoupled_unbiased_low_barrier():
     """
     system = asymmetric_torsion(k_twofold=1.0, k_onefold=1.0)
     integ = LangevinBAOAB(system.force_field, system.masses, temperature=T,
-                          friction=2.0, timestep=0.005, seed=3)
+                          friction=2.0, md_step_ps=0.005, seed=3)
     x0 = np.stack([system.states["cis"], system.states["trans"]] * 4)
     xyz, _ = integ.run(x0, 30000, report_interval=10)  # 150 ps per walker
     phi = system.slow_angle(xyz).ravel()
@@ -142,7 +142,7 @@ def test_metadynamics_recovers_reference_delta_f_and_crosses():
 
     start = time.perf_counter()
     bias = _bias(cv, height=0.5, bias_factor=5.0)
-    run = run_biased(system, x0, n_steps, bias=bias, friction=2.0, timestep=0.005,
+    run = run_biased(system, x0, n_steps, bias=bias, friction=2.0, md_step_ps=0.005,
                      seed=7, report_interval=20)
     elapsed = time.perf_counter() - start
     assert run.cv.shape == (n_steps // 20, 8)
@@ -166,7 +166,7 @@ def test_metadynamics_recovers_reference_delta_f_and_crosses():
 
     biased = sum(count_transitions(c) for c in run.cv.T)
     integ = LangevinBAOAB(system.force_field, system.masses, temperature=T,
-                          friction=2.0, timestep=0.005, seed=7)
+                          friction=2.0, md_step_ps=0.005, seed=7)
     xyz, _ = integ.run(x0, n_steps, report_interval=20)
     unbiased = sum(count_transitions(c) for c in system.slow_angle(xyz).T)
     print(f"transitions biased {biased}, unbiased {unbiased}")
@@ -178,7 +178,7 @@ def test_seeded_runs_are_identical():
     system = asymmetric_torsion()
     cv = dihedral_cv(system.slow_dihedral)
     runs = [run_biased(system, system.states["trans"], 400, bias=_bias(cv, interval_steps=50),
-                       friction=2.0, timestep=0.005, seed=11) for _ in range(2)]
+                       friction=2.0, md_step_ps=0.005, seed=11) for _ in range(2)]
     np.testing.assert_array_equal(runs[0].cv, runs[1].cv)
     np.testing.assert_array_equal(runs[0].bias.values, runs[1].bias.values)
 
@@ -194,4 +194,4 @@ def test_rejects_bad_arguments():
     system = asymmetric_torsion()
     with pytest.raises(ValueError, match=r"report_interval=7 must divide interval_steps=50"):
         run_biased(system, system.states["cis"], 100, bias=_bias(cv, interval_steps=50),
-                   friction=1.0, timestep=0.004, report_interval=7)
+                   friction=1.0, md_step_ps=0.004, report_interval=7)

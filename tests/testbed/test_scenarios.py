@@ -177,7 +177,7 @@ def test_generated_files_and_returned_fields(data, generated):
         "slowA": ["slowA-1.xtc", "slowA-2.xtc"], "slowB": ["slowB-1.xtc", "slowB-2.xtc"]}
     assert data.paths == data.files["slowA"] + data.files["slowB"]
     assert data.slow_dihedral == SLOW and data.fast_dihedral == FAST
-    assert data.n_frames == 1500 and data.timestep_ps == 0.06
+    assert data.n_frames == 1500 and data.frame_step_ps == 0.06
     for path in data.paths:
         labels = data.fast_labels[path]
         assert isinstance(labels, np.ndarray) and labels.dtype.kind == "U"
