@@ -89,14 +89,19 @@ def _process_call(fn, context_path, item):
     return fn(ctx, item)
 
 
-def _dump_context(context):
-    """Pickle the context once, to a temporary file the workers read; returns its path."""
+def _pickled(context):
+    """The context as bytes, or a clear error for what cannot be sent to another process."""
     try:
-        data = pickle.dumps(context, protocol=pickle.HIGHEST_PROTOCOL)
+        return pickle.dumps(context, protocol=pickle.HIGHEST_PROTOCOL)
     except Exception as exc:
         raise ExecutorError(f"the passes cannot be sent to worker processes (they do not "
                             f"pickle: {exc}); define featurizers and callables at module "
                             "level") from exc
+
+
+def _dump_context(context):
+    """Pickle the context once, to a temporary file the workers read; returns its path."""
+    data = _pickled(context)
     fd, path = tempfile.mkstemp(prefix="cvdesign-pass-", suffix=".pkl")
     with os.fdopen(fd, "wb") as fh:
         fh.write(data)
@@ -186,6 +191,12 @@ def _dask_call(item, *, fn, context):
     return fn(context, item)
 
 
+def _dask_context(payload):
+    """The run's context, unpickled on a worker. A task rather than scattered data: if the
+    workers holding it die, Dask recomputes it instead of cancelling every task."""
+    return pickle.loads(payload)
+
+
 def _import_distributed():
     try:
         import distributed
@@ -264,8 +275,9 @@ class DaskExecutor(Executor):
         items = list(items)
         futures = []
         try:
+            payload = _pickled(context)
             try:
-                ctx = self.client.scatter(context, broadcast=True, hash=False)
+                ctx = self.client.submit(_dask_context, payload, pure=False)
                 futures = self.client.map(_dask_call, items, fn=fn, context=ctx, pure=False)
             except Exception as exc:
                 raise self._lost_connection(exc) from None
@@ -280,21 +292,13 @@ class DaskExecutor(Executor):
                 except d.TimeoutError:
                     done = ()
                 except Exception as exc:
+                    for fut in futures:  # a task that failed explains it better
+                        if fut.status == "error":
+                            self._result(d, fut, items[index[fut.key]])
                     raise self._lost_connection(exc) from None
                 for fut in sorted(done, key=lambda f: index[f.key]):
                     i = index[fut.key]
-                    try:
-                        result = fut.result()
-                    except d.KilledWorker as exc:
-                        raise WorkerLostError(
-                            f"Dask workers died while running {_describe(items[i])} (killed, "
-                            "out of memory, or a crash in compiled code; Dask gave up after "
-                            "the task had lost its workers repeatedly); the run was stopped and "
-                            "nothing was written. Check the workers' memory and logs, then run "
-                            "again") from None
-                    except _cancelled(d) as exc:
-                        raise self._lost_connection(exc) from None
-                    yield i, result
+                    yield i, self._result(d, fut, items[i])
                 if not done:
                     try:
                         workers = len(self.client.nthreads())
@@ -316,6 +320,18 @@ class DaskExecutor(Executor):
                     self.client.cancel(futures)
                 except Exception:
                     pass
+
+    def _result(self, d, fut, item):
+        try:
+            return fut.result()
+        except d.KilledWorker:
+            raise WorkerLostError(
+                f"Dask workers died while running {_describe(item)} (killed, out of memory, "
+                "or a crash in compiled code; Dask gave up after the task had lost its "
+                "workers repeatedly); the run was stopped and nothing was written. Check the "
+                "workers' memory and logs, then run again") from None
+        except _cancelled(d) as exc:
+            raise self._lost_connection(exc) from None
 
     def close(self):
         if self._owned:

@@ -631,7 +631,7 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
     cvdesign.parallel.ExecutorError
         The executor failed (scheduler unreachable, a worker died).
     """
-    from ..parallel import as_executor
+    from ..parallel import Executor, as_executor
 
     single = isinstance(pass_, Pass)
     passes = (pass_,) if single else tuple(pass_)
@@ -640,7 +640,7 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
     featurizer = passes[0].featurizer
     if any(p.featurizer is not featurizer for p in passes):
         raise InputError("passes run together must share one featurizer object")
-    owned = not hasattr(executor, "run")
+    owned = executor is not None and not isinstance(executor, Executor)
     executor = as_executor(executor)
     try:
         return _run(passes, featurizer, source, executor, tasks, chunk_frames, single)
