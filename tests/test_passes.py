@@ -407,6 +407,7 @@ def test_folds_plan_by_trajectory_when_every_state_has_enough_files_else_by_bloc
 
 
 # ---------------------------------------------------------------------------- the reader
+@pytest.mark.filterwarnings("ignore:.*netCDF4:UserWarning")  # mdtraj: scipy's reader is used
 @pytest.mark.parametrize("suffix", [".xtc", ".dcd", ".trr", ".nc", ".pdb"])
 def test_raw_reader_returns_what_mdtraj_load_returns(tmp_path, suffix):
     rng = np.random.default_rng(5)

@@ -12,13 +12,13 @@ from .engine import (FEATURE_BUDGET, LEAF_FRAMES, CoordinateFeaturizer, Featuriz
                      PoolFeaturizer, Task, TaskPlan, leaf_frames_for, plan_tasks,
                      reference_features, run_pass, run_task)
 from .keys import MIN_FRAMES_PER_FOLD, Folds, FrameKeys, SegmentLayout, frame_keys
-from .stats import (BlockPass, FoldMomentsPass, HistogramPass, LaggedPass, LaggedResult,
-                    ScreeningPass, ScreeningResult, merge_keyed)
+from .stats import (BlockPass, FeaturePass, FoldMomentsPass, HistogramPass, LaggedPass,
+                    LaggedResult, ScreeningPass, ScreeningResult, group_rows, merge_keyed)
 from .tree import TreeReducer, merge_optional
 
 __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
            "leaf_frames_for", "run_pass", "run_task", "reference_features",
            "SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD",
-           "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass", "LaggedResult",
+           "FeaturePass", "group_rows", "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass", "LaggedResult",
            "HistogramPass", "BlockPass", "merge_keyed", "TreeReducer", "merge_optional"]

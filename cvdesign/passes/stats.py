@@ -31,8 +31,8 @@ from ..scoring import Histograms
 from .engine import Pass, _lag_halo
 from .keys import frame_keys
 
-__all__ = ["ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass",
-           "LaggedResult", "HistogramPass", "BlockPass", "merge_keyed"]
+__all__ = ["FeaturePass", "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass",
+           "LaggedResult", "HistogramPass", "BlockPass", "merge_keyed", "group_rows"]
 
 
 def _merge_value(a, b):
@@ -64,8 +64,14 @@ def merge_keyed(a, b):
     return out
 
 
-def _groups(*keys):
-    """``(key tuple, rows)`` for each distinct combination of keys, sorted; rows increasing."""
+def group_rows(*keys):
+    """``(key tuple, rows)`` for each distinct combination of keys, sorted; rows increasing.
+
+    Examples
+    --------
+    >>> [(k, r.tolist()) for k, r in group_rows(np.array([1, 0, 1]), np.array([2, 2, 2]))]
+    [((0, 2), [1]), ((1, 2), [0, 2])]
+    """
     if keys[0].size == 0:
         return []
     stacked = np.stack([np.asarray(k, dtype=np.int64) for k in keys], axis=1)
@@ -96,8 +102,17 @@ def _merge_lagged(items, n_features, shift, diagonal):
     return merge_all(items)
 
 
-class _FeaturePass(Pass):
-    """Shared parts: the featurizer, the feature columns and their standardization."""
+class FeaturePass(Pass):
+    """A pass on some features: a subset of columns, then ``(x - center) / scale``.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    columns : array-like of int, default=None
+        Feature columns used, in this order (None: all).
+    center, scale : array-like of shape (n_columns,), default=None
+        Standardization applied after the column selection (None: none).
+    """
 
     def __init__(self, featurizer, *, columns=None, center=None, scale=None):
         self.featurizer = featurizer
@@ -142,7 +157,7 @@ class ScreeningResult:
     min_box_height: float | None
 
 
-class ScreeningPass(_FeaturePass):
+class ScreeningPass(FeaturePass):
     """Per-state diagonal moments, frame counts, per-run lagged diagonal moments, box height.
 
     Parameters
@@ -176,7 +191,7 @@ class ScreeningPass(_FeaturePass):
         if lag is not None:
             i, j = leaf.pairs(lag)
             xt = self.values(leaf.window_x[j])
-        for (s,), rows in _groups(states):
+        for (s,), rows in group_rows(states):
             diag[s] = DiagonalMoments.from_data(x[rows])
             counts[(leaf.segment, s)] = int(rows.size)
             if lag is not None:
@@ -206,7 +221,7 @@ class ScreeningPass(_FeaturePass):
         return ScreeningResult(diag, counts, lagged, partial["min_box"])
 
 
-class FoldMomentsPass(_FeaturePass):
+class FoldMomentsPass(FeaturePass):
     """Full moments of some features per (state, fold).
 
     Parameters
@@ -227,7 +242,7 @@ class FoldMomentsPass(_FeaturePass):
     def map(self, leaf):
         x = self.values(leaf.x)
         keys = frame_keys(leaf.layout, leaf.frames, folds=self.folds)
-        return {key: Moments.from_data(x[rows]) for key, rows in _groups(keys.states, keys.fold)}
+        return {key: Moments.from_data(x[rows]) for key, rows in group_rows(keys.states, keys.fold)}
 
     def merge(self, a, b):
         return merge_keyed(a, b)
@@ -285,7 +300,7 @@ class LaggedResult:
         return {key: merge_all(items) for key, items in out.items()}
 
 
-class LaggedPass(_FeaturePass):
+class LaggedPass(FeaturePass):
     """Lagged moments per run (segment, state, fold) at per-segment lags.
 
     Parameters
@@ -339,7 +354,7 @@ class LaggedPass(_FeaturePass):
         xt = self.values(leaf.window_x[j])
         cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
         out = {}
-        for (s, k), rows in _groups(first.states, first.fold):
+        for (s, k), rows in group_rows(first.states, first.fold):
             m = cls(self.n_features, shift=self.shift, lag=lag)
             out[(leaf.segment, s, k)] = m.add_pairs(x0[rows], xt[rows])
         return out
@@ -353,7 +368,7 @@ class LaggedPass(_FeaturePass):
                             self.shift, self.diagonal)
 
 
-class HistogramPass(_FeaturePass):
+class HistogramPass(FeaturePass):
     """Per-state histograms of features on fixed bins (exact counts: no tree needed).
 
     Parameters
@@ -395,7 +410,7 @@ class HistogramPass(_FeaturePass):
         return self._empty(plan.n_states) if partial is None else partial
 
 
-class BlockPass(_FeaturePass):
+class BlockPass(FeaturePass):
     """Per-(state, fold, segment, bootstrap block) statistics for the block bootstrap.
 
     A block is ``rank // block_frames`` within (segment, state, fold)
@@ -456,7 +471,7 @@ class BlockPass(_FeaturePass):
         keys = self._keys(leaf, leaf.frames)
         si = leaf.segment
         out = {}
-        for (s, k, b), rows in _groups(keys.states, keys.fold, keys.block):
+        for (s, k, b), rows in group_rows(keys.states, keys.fold, keys.block):
             key = (s, k, si, b)
             m = Moments.from_data(x[rows]) if self.moments else None
             extra = None
@@ -474,7 +489,7 @@ class BlockPass(_FeaturePass):
                 keep &= first.block == second.block
             i, j = i[keep], j[keep]
             x0, xt = x[i], self.values(leaf.window_x[j])
-            for (s, k, b), rows in _groups(first.states[keep], first.fold[keep],
+            for (s, k, b), rows in group_rows(first.states[keep], first.fold[keep],
                                            first.block[keep]):
                 m = LaggedMoments(self.n_features, shift=self.lag_shift)
                 m.add_pairs(x0[rows], xt[rows])
