@@ -419,9 +419,12 @@ def _split(plan, n_tasks, frames_per_task):
 
 def _layouts(source):
     index = {s: i for i, s in enumerate(source.states)}
-    out = []
+    out, lengths = [], {}
     for si, seg in enumerate(source.segments):
-        n_file = file_frames(seg.path)
+        key = str(seg.path)
+        if key not in lengths:  # a file given as several frame ranges is counted once
+            lengths[key] = file_frames(seg.path)
+        n_file = lengths[key]
         if seg.labels is not None:
             check_label_count(seg, n_file)
             codes = np.array([-1 if x is None else index[x] for x in seg.labels],
