@@ -13,10 +13,9 @@ import pytest
 from cvdesign import InputError, Source
 from cvdesign.errors import SchedulerUnreachableError, WorkerLostError
 from cvdesign.parallel import DaskExecutor, ProcessExecutor, SerialExecutor, as_executor
-from cvdesign.passes import (BlockPass, CoordinateFeaturizer, FoldMomentsPass, Folds, HistogramPass, LaggedPass,
-                             PoolFeaturizer, ScreeningPass, leaf_frames_for, plan_tasks,
-                             reference_features, run_pass)
-from cvdesign.passes.engine import Featurizer
+from cvdesign.passes import (BlockPass, CoordinateFeaturizer, Featurizer, FoldMomentsPass,
+                             Folds, HistogramPass, LaggedPass, PoolFeaturizer, ScreeningPass,
+                             leaf_frames_for, plan_tasks, reference_features, run_pass)
 from cvdesign.pool import build_pool
 
 

@@ -23,6 +23,7 @@ from cvdesign.passes import (BlockPass, CoordinateFeaturizer, FoldMomentsPass, F
 from cvdesign.passes.keys import SegmentLayout
 from cvdesign.passes.read import read_chunks
 from cvdesign.pool import build_pool
+from cvdesign.testbed.host_guest import write_host_guest
 
 SETTINGS = settings(max_examples=30, deadline=None, derandomize=True, database=None,
                     suppress_health_check=[HealthCheck.too_slow])
@@ -522,3 +523,21 @@ def test_plan_tasks_splits_segments_into_leaf_aligned_tasks(demo_files):
         plan.with_tasks([Task(0, 0, 2), Task(0, 3, 4)])
     with pytest.raises(InputError, match=r"leaf_frames=0 must be a positive number of frames"):
         plan_tasks(src, leaf_frames=0)
+
+
+def test_residue_group_features_in_a_periodic_box_give_identical_results_for_any_split(
+        tmp_path, assert_same):
+    write_host_guest(tmp_path, n_runs=2, n_frames=200, tumble=True, box_nm=4.0)
+    runs = sorted(str(p) for p in tmp_path.glob("*.xtc"))
+    src = Source.from_states(str(tmp_path / "host_guest.pdb"), {"a": runs[:1], "b": runs[1:]})
+    pool = build_pool(src, kinds=("center_distance", "coordination", "distance"), cutoff=3.0)
+    assert {d.kind for d in pool.descriptors} == {"center_distance", "coordination", "distance"}
+    featurizer = PoolFeaturizer(pool)
+    passes = (ScreeningPass(featurizer, lags=3), FoldMomentsPass(featurizer, Folds(2)),
+              LaggedPass(featurizer, 3, folds=Folds(2)))
+    plan = plan_tasks(src, leaf_frames=16)
+    reference = run_pass(passes, src, tasks=plan)
+    other = run_pass(passes, src, tasks=plan.split(frames_per_task=48), chunk_frames=7,
+                     executor=ShuffledExecutor(1))
+    assert_same(reference, other)
+    assert reference[0].min_box_height == pytest.approx(4.0)

@@ -20,5 +20,6 @@ __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
            "leaf_frames_for", "run_pass", "run_task", "reference_features",
            "SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD",
-           "FeaturePass", "group_rows", "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass", "LaggedResult",
+           "FeaturePass", "group_rows", "ScreeningPass", "ScreeningResult", "FoldMomentsPass",
+           "LaggedPass", "LaggedResult",
            "HistogramPass", "BlockPass", "merge_keyed", "TreeReducer", "merge_optional"]

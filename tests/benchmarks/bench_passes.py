@@ -21,8 +21,9 @@ the same run, on the same frames and atoms:
    timing).
 
 Each case runs with one BLAS thread inside the leaves (the engine's rule); the baselines
-of case 2 run with the BLAS threads numpy has (printed) and with one. Issue 10 targets: featurization at most
-1.3x, statistics at most 1.5x, 2 workers at least 1.7x faster. No assertion: it prints.
+of case 2 run with the BLAS threads numpy has (printed) and with one. Issue 10 targets:
+featurization at most 1.3x, statistics at most 1.5x, 2 workers at least 1.7x faster. No
+assertion: it prints.
 """
 
 import argparse
