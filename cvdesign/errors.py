@@ -1,6 +1,7 @@
 """The project's exceptions: one base class and a few specific ones."""
 
-__all__ = ["CVDesignError", "InputError", "SpecError", "TopologyMismatchError"]
+__all__ = ["CVDesignError", "InputError", "SpecError", "TopologyMismatchError", "ExecutorError",
+           "SchedulerUnreachableError", "WorkerLostError"]
 
 
 class CVDesignError(ValueError):
@@ -33,3 +34,15 @@ class SpecError(CVDesignError):
 
 class TopologyMismatchError(SpecError):
     """A spec was loaded against a topology that differs from the one it was made for."""
+
+
+class ExecutorError(CVDesignError):
+    """Running tasks failed for a reason outside the data: the executor itself broke."""
+
+
+class SchedulerUnreachableError(ExecutorError):
+    """The Dask scheduler could not be reached (wrong address, not running, firewall)."""
+
+
+class WorkerLostError(ExecutorError):
+    """A worker process died while running tasks (killed, out of memory, crashed)."""

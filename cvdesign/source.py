@@ -14,6 +14,7 @@ import math
 import numbers
 import os
 import sys
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -23,7 +24,7 @@ import numpy as np
 from .errors import InputError
 
 __all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "file_sha256",
-           "stores_time", "quiet_stdout"]
+           "stores_time", "quiet_stdout", "check_box", "check_finite", "check_label_count"]
 
 #: Residue names treated as monatomic ions when choosing the default solute.
 _ION_NAMES = {
@@ -42,28 +43,44 @@ def stores_time(path):
     return Path(path).suffix.lower() in _TIMED_SUFFIXES
 
 
+#: Guards the redirection of file descriptor 1: threads reading at once (a threaded
+#: executor) share one redirection, restored when the last of them leaves.
+_QUIET_LOCK = threading.Lock()
+_QUIET = {"depth": 0, "fd": None, "saved": None}
+
+
 @contextlib.contextmanager
 def quiet_stdout():
     """Send anything written to file descriptor 1 (by C readers) to standard error.
 
     Some of mdtraj's compiled readers print diagnostics straight to the
-    process's standard output, which would corrupt CSV written there.
+    process's standard output, which would corrupt CSV written there. Safe
+    to use from several threads at once: the first to enter redirects, the
+    last to leave restores.
     """
+    with _QUIET_LOCK:
+        if _QUIET["depth"] == 0:
+            try:
+                fd = sys.stdout.fileno()
+            except (AttributeError, OSError, ValueError):
+                fd = None
+            if fd is not None:
+                sys.stdout.flush()
+                saved = os.dup(fd)
+                os.dup2(sys.stderr.fileno() if hasattr(sys.stderr, "fileno") else
+                        os.open(os.devnull, os.O_WRONLY), fd)
+                _QUIET["fd"], _QUIET["saved"] = fd, saved
+        _QUIET["depth"] += 1
     try:
-        fd = sys.stdout.fileno()
-    except (AttributeError, OSError, ValueError):
-        yield
-        return
-    sys.stdout.flush()
-    saved = os.dup(fd)
-    try:
-        os.dup2(sys.stderr.fileno() if hasattr(sys.stderr, "fileno") else os.open(os.devnull,
-                os.O_WRONLY), fd)
         yield
     finally:
-        sys.stdout.flush()
-        os.dup2(saved, fd)
-        os.close(saved)
+        with _QUIET_LOCK:
+            _QUIET["depth"] -= 1
+            if _QUIET["depth"] == 0 and _QUIET["fd"] is not None:
+                sys.stdout.flush()
+                os.dup2(_QUIET["saved"], _QUIET["fd"])
+                os.close(_QUIET["saved"])
+                _QUIET["fd"] = _QUIET["saved"] = None
 
 
 def _quiet_iter(make):
@@ -154,6 +171,36 @@ def check_finite(traj, path, frames, atom_indices, topology):
         f"atom {atom} ({topology.atom(atom)}): {[float(v) for v in xyz[f, a]]} nm; the file is "
         "damaged or the simulation became unstable there. Check the file, or leave those "
         "frames out")
+
+
+def check_label_count(segment, n_frames):
+    """Raise InputError unless a labelled segment has one label per frame of its file.
+
+    Parameters
+    ----------
+    segment : Segment
+        A segment with a label array (others are accepted as they are).
+    n_frames : int or None
+        Frames in the file; None when reading found a frame past the last label
+        before the end of the file.
+
+    Examples
+    --------
+    >>> seg = Segment(Path("run.xtc"), labels=np.array(["a", "b"], dtype=object))
+    >>> check_label_count(seg, 3)
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: trajectory 'run.xtc' has more frames than its 2 labels; give one label per frame
+    """
+    if segment.labels is None:
+        return
+    n_labels = segment.labels.shape[0]
+    if n_frames is None or n_frames > n_labels:
+        raise InputError(f"trajectory {str(segment.path)!r} has more frames than its "
+                         f"{n_labels} labels; give one label per frame")
+    if n_frames != n_labels:
+        raise InputError(f"trajectory {str(segment.path)!r} has {n_frames} frames but "
+                         f"{n_labels} labels were given; give one label per frame")
 
 
 def _check_file(path, what):
@@ -668,10 +715,7 @@ class Source:
                         mask &= frames < seg.stop
                     if seg.labels is not None:
                         if frames.size and frames[-1] >= seg.labels.shape[0]:
-                            raise InputError(
-                                f"trajectory {str(seg.path)!r} has more frames than its "
-                                f"{seg.labels.shape[0]} labels; give one label per frame"
-                            )
+                            check_label_count(seg, None)
                         labs = seg.labels[frames]
                         mask &= np.array([x is not None for x in labs], dtype=bool)
                         codes = np.array(
@@ -693,11 +737,8 @@ class Source:
                 raise
             except Exception as exc:
                 raise InputError(f"error while reading trajectory {str(seg.path)!r}: {exc}") from exc
-            if seg.labels is not None and stride == 1 and n_seen != seg.labels.shape[0]:
-                raise InputError(
-                    f"trajectory {str(seg.path)!r} has {n_seen} frames but "
-                    f"{seg.labels.shape[0]} labels were given; give one label per frame"
-                )
+            if seg.labels is not None and stride == 1:
+                check_label_count(seg, n_seen)
 
     @property
     def notes(self):

@@ -155,3 +155,42 @@ def adk_domain():
     394:160, 2009; from memory). The closed/open change of the MDAnalysis test trajectory
     is the LID and NMP domains closing over the CORE."""
     return _adk_domain
+
+
+def _assert_same(a, b, where="result"):
+    """Bitwise equality of pass results: arrays with np.array_equal, dicts with the same keys,
+    statistics objects field by field."""
+    import numpy as np
+
+    assert type(a) is type(b), f"{where}: {type(a).__name__} != {type(b).__name__}"
+    if isinstance(a, dict):
+        assert list(a.keys()) == list(b.keys()), f"{where}: keys differ"
+        for k in a:
+            _assert_same(a[k], b[k], f"{where}[{k!r}]")
+    elif isinstance(a, (list, tuple)):
+        assert len(a) == len(b), f"{where}: lengths differ"
+        for i, (x, y) in enumerate(zip(a, b)):
+            _assert_same(x, y, f"{where}[{i}]")
+    elif isinstance(a, np.ndarray):
+        assert a.dtype == b.dtype and np.array_equal(a, b, equal_nan=True), \
+            f"{where}: arrays differ"
+    elif a is None or isinstance(a, (int, float, str, np.integer, np.floating)):
+        assert a == b or (a != a and b != b), f"{where}: {a!r} != {b!r}"
+    elif hasattr(a, "__dataclass_fields__"):
+        for name in a.__dataclass_fields__:
+            _assert_same(getattr(a, name), getattr(b, name), f"{where}.{name}")
+    else:
+        if type(a).__name__ in ("DiagonalLaggedMoments", "LaggedMoments"):
+            names = ("count", "n_pairs", "lag", "shift", "sum_x", "sum_y", "sum_xx", "sum_xy",
+                     "sum_yy")
+        else:
+            names = getattr(type(a), "__slots__", None) or list(vars(a))
+        assert names, f"{where}: nothing to compare in {type(a).__name__}"
+        for name in names:
+            _assert_same(getattr(a, name), getattr(b, name), f"{where}.{name}")
+
+
+@pytest.fixture(scope="session")
+def assert_same():
+    """Function asserting that two pass results are identical, bit for bit."""
+    return _assert_same

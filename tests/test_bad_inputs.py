@@ -26,6 +26,7 @@ import json
 import os
 import re
 import shutil
+import socket
 import subprocess
 import sys
 import tempfile
@@ -39,6 +40,10 @@ import pytest
 import cvdesign
 from cvdesign import InputError, Source, Spec, SpecError, TopologyMismatchError, load_spec
 from cvdesign.cli import EXIT_BROKEN_PIPE, main
+from cvdesign.errors import SchedulerUnreachableError
+from cvdesign.parallel import DaskExecutor
+from cvdesign.passes import PoolFeaturizer, ScreeningPass, plan_tasks, run_pass
+from cvdesign.pool import build_pool
 from cvdesign.testbed.host_guest import write_host_guest
 
 HAS_TABLES = importlib.util.find_spec("tables") is not None
@@ -440,6 +445,26 @@ def _self_containing_spec():
     return doc
 
 
+def _demo_source(c):
+    return Source.from_states(c.top, {"closed": [c.closed], "open": [c.open]})
+
+
+def _screening(c, executor):
+    """A screening pass of the demo's pool, run on `executor()`."""
+    src = _demo_source(c)
+    return lambda: run_pass(ScreeningPass(PoolFeaturizer(build_pool(src))), src,
+                            executor=executor())
+
+
+def _unused_port():
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
+
+
+HAS_DASK = importlib.util.find_spec("distributed") is not None
+
+
 API_CASES = [
     Case("api-suggest-with-a-file-name",
          lambda c: lambda: cvdesign.suggest("file.pdb"), InputError,
@@ -494,6 +519,24 @@ API_CASES = [
          lambda c: _save_under(c.s("cv.json"), Path(c.file("plain.txt")) / "cv.json"),
          InputError, r"cannot write spec '.*plain\.txt/cv\.json': directory '.*plain\.txt' "
          r"is a file, not a directory"),
+    Case("api-plan-tasks-with-a-file-name",
+         lambda c: lambda: plan_tasks("run.xtc"), InputError,
+         r"plan_tasks\(\) needs a Source, not str"),
+    Case("api-plan-tasks-zero-leaf-frames",
+         lambda c: lambda: plan_tasks(_demo_source(c), leaf_frames=0), InputError,
+         r"leaf_frames=0 must be a positive number of frames"),
+    Case("api-run-pass-not-a-pass",
+         lambda c: lambda: run_pass("moments", _demo_source(c)), InputError,
+         r"run_pass\(\) needs a Pass or a sequence of Pass objects"),
+    Case("api-run-pass-zero-workers",
+         lambda c: _screening(c, lambda: 0), InputError,
+         r"n_workers=0 must be a positive number of processes"),
+    Case("api-run-pass-unreachable-scheduler",
+         lambda c: _screening(c, lambda: DaskExecutor(f"tcp://127.0.0.1:{_unused_port()}",
+                                                      connect_timeout=1)),
+         SchedulerUnreachableError,
+         r"cannot reach the Dask scheduler at 'tcp://127\.0\.0\.1:\d+' within 1 s",
+         skip="" if HAS_DASK else "dask.distributed is not installed"),
 ]
 
 

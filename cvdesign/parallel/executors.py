@@ -1,0 +1,373 @@
+"""Executors: where the tasks of a pass run.
+
+An executor runs ``fn(context, item)`` for every item and yields ``(index,
+result)`` pairs as they complete, in any order; the pass engine
+(:func:`cvdesign.passes.run_pass`) reduces them in its fixed tree, so the
+result does not depend on the executor. The context (the passes and their
+featurizer) reaches each worker once per run, not once per task.
+
+* :class:`SerialExecutor` -- in this process, in order (the default; never
+  imports dask);
+* :class:`ProcessExecutor` -- local worker processes
+  (:class:`concurrent.futures.ProcessPoolExecutor`, started with ``spawn``);
+* :class:`DaskExecutor` -- a Dask cluster (``dask.distributed``; a
+  :class:`~dask.distributed.Client` or a scheduler address), imported only
+  when this executor is made.
+
+Failures of the executor itself raise a
+:class:`~cvdesign.errors.ExecutorError`: :class:`~cvdesign.errors.SchedulerUnreachableError`
+when the scheduler cannot be reached, :class:`~cvdesign.errors.WorkerLostError`
+when a worker dies (a local process at once; on Dask, when Dask gives up on a
+task that killed its workers ``distributed.scheduler.allowed-failures`` times,
+or when no worker is left for ``no_worker_timeout`` seconds). Errors raised
+by the tasks themselves (bad input found while reading) pass through unchanged.
+"""
+
+import asyncio
+import concurrent.futures
+import multiprocessing
+import os
+import pickle
+import tempfile
+import time
+
+from ..errors import ExecutorError, InputError, SchedulerUnreachableError, WorkerLostError
+
+__all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "as_executor"]
+
+
+def _describe(item):
+    describe = getattr(item, "describe", None)
+    return describe() if describe is not None else repr(item)
+
+
+class Executor:
+    """Base class: ``run(fn, context, items)`` yields ``(index, result)`` as tasks complete."""
+
+    #: Workers that run tasks at once (used to size the default task split).
+    n_workers = 1
+
+    def run(self, fn, context, items):
+        raise NotImplementedError
+
+    def close(self):
+        """Release the executor's resources (worker processes, an owned client)."""
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+class SerialExecutor(Executor):
+    """Run every task in this process, one after the other, in order.
+
+    Examples
+    --------
+    >>> list(SerialExecutor().run(lambda ctx, x: ctx * x, 10, [1, 2]))
+    [(0, 10), (1, 20)]
+    """
+
+    def run(self, fn, context, items):
+        for i, item in enumerate(items):
+            yield i, fn(context, item)
+
+
+# --------------------------------------------------------------------------- local processes
+_CONTEXTS = {}
+
+
+def _process_call(fn, context_path, item):
+    """Worker side: load the run's context once (cached by file), then run the task."""
+    ctx = _CONTEXTS.get(context_path)
+    if ctx is None:
+        with open(context_path, "rb") as fh:
+            ctx = pickle.load(fh)
+        _CONTEXTS.clear()
+        _CONTEXTS[context_path] = ctx
+    return fn(ctx, item)
+
+
+def _pickled(context):
+    """The context as bytes, or a clear error for what cannot be sent to another process."""
+    try:
+        return pickle.dumps(context, protocol=pickle.HIGHEST_PROTOCOL)
+    except Exception as exc:
+        raise ExecutorError(f"the passes cannot be sent to worker processes (they do not "
+                            f"pickle: {exc}); define featurizers and callables at module "
+                            "level") from exc
+
+
+def _dump_context(context):
+    """Pickle the context once, to a temporary file the workers read; returns its path."""
+    data = _pickled(context)
+    fd, path = tempfile.mkstemp(prefix="cvdesign-pass-", suffix=".pkl")
+    with os.fdopen(fd, "wb") as fh:
+        fh.write(data)
+    return path
+
+
+class ProcessExecutor(Executor):
+    """Run tasks in local worker processes.
+
+    Parameters
+    ----------
+    n_workers : int, default=2
+        Worker processes.
+    start_method : {'spawn', 'forkserver', 'fork'}, default='spawn'
+        How workers start (``spawn`` is safe everywhere; it imports cvdesign
+        afresh in each worker, about a second).
+
+    Notes
+    -----
+    The worker processes start on the first run and stay for the next runs
+    until :meth:`close` (or the end of a ``with`` block). If a worker dies
+    (killed, out of memory) the run stops with a
+    :class:`~cvdesign.errors.WorkerLostError` and the pool is discarded.
+
+    Examples
+    --------
+    ::
+
+        with ProcessExecutor(2) as ex:
+            result = run_pass(ScreeningPass(featurizer), source, executor=ex)
+    """
+
+    def __init__(self, n_workers=2, *, start_method="spawn"):
+        if isinstance(n_workers, bool) or not isinstance(n_workers, int) or n_workers < 1:
+            raise InputError(f"n_workers={n_workers!r} must be a positive number of processes")
+        self.n_workers = n_workers
+        self.start_method = start_method
+        self._pool = None
+
+    def _get_pool(self):
+        if self._pool is None:
+            ctx = multiprocessing.get_context(self.start_method)
+            self._pool = concurrent.futures.ProcessPoolExecutor(self.n_workers, mp_context=ctx)
+        return self._pool
+
+    def run(self, fn, context, items):
+        items = list(items)
+        path = _dump_context(context)
+        futures = {}
+        try:
+            pool = self._get_pool()
+            futures = {pool.submit(_process_call, fn, path, item): i
+                       for i, item in enumerate(items)}
+            for fut in concurrent.futures.as_completed(futures):
+                i = futures[fut]
+                try:
+                    result = fut.result()
+                except concurrent.futures.process.BrokenProcessPool as exc:
+                    self._discard()
+                    raise WorkerLostError(
+                        f"a worker process died while running {_describe(items[i])} (killed, "
+                        "out of memory, or a crash in compiled code); the run was stopped and "
+                        "nothing was written. Check memory and the worker's messages, then "
+                        "run again (fewer workers use less memory)") from exc
+                yield i, result
+        finally:
+            for fut in futures:
+                fut.cancel()
+            try:
+                os.remove(path)
+            except OSError:
+                pass
+
+    def _discard(self):
+        if self._pool is not None:
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            self._pool = None
+
+    def close(self):
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None
+
+
+# --------------------------------------------------------------------------- dask
+def _dask_call(item, *, fn, context):
+    return fn(context, item)
+
+
+def _dask_context(payload):
+    """The run's context, unpickled on a worker. A task rather than scattered data: if the
+    workers holding it die, Dask recomputes it instead of cancelling every task."""
+    return pickle.loads(payload)
+
+
+def _import_distributed():
+    try:
+        import distributed
+    except ImportError as exc:
+        raise InputError("the Dask executor needs dask.distributed, which is not installed: "
+                         "pip install 'cvdesign[dask]'") from exc
+    return distributed
+
+
+class DaskExecutor(Executor):
+    """Run tasks on a Dask cluster (``dask.distributed``).
+
+    Parameters
+    ----------
+    client : dask.distributed.Client or str
+        A connected client, or the address of a scheduler (e.g.
+        ``'tcp://10.0.0.5:8786'``), to which this executor then connects (and
+        which it disconnects from on :meth:`close`).
+    connect_timeout : float, default=10
+        Seconds to wait for a scheduler given by address.
+    no_worker_timeout : float, default=120
+        Seconds without any worker after which a run gives up.
+
+    Raises
+    ------
+    SchedulerUnreachableError
+        When the scheduler at the address cannot be reached.
+    InputError
+        When dask.distributed is not installed.
+
+    Notes
+    -----
+    Tasks are pure (the same inputs give the same bytes), so a task Dask
+    restarts after a worker was lost gives the same result. Dask gives up on a
+    task that killed workers more than ``distributed.scheduler.allowed-failures``
+    times; the run then raises :class:`~cvdesign.errors.WorkerLostError`.
+    """
+
+    def __init__(self, client, *, connect_timeout=10, no_worker_timeout=120):
+        distributed = _import_distributed()
+        self._distributed = distributed
+        self._owned = False
+        if isinstance(client, str):
+            try:
+                client = distributed.Client(client, timeout=connect_timeout,
+                                            set_as_default=False)
+            except Exception as exc:
+                detail = str(exc).strip().splitlines()[0] if str(exc).strip() else \
+                    type(exc).__name__
+                raise SchedulerUnreachableError(
+                    f"cannot reach the Dask scheduler at {client!r} within {connect_timeout:g} s "
+                    f"({detail}); check the address (tcp://HOST:PORT), that the scheduler is "
+                    "running and that this machine may connect to it") from None
+            self._owned = True
+        elif not isinstance(client, distributed.Client):
+            raise InputError(f"DaskExecutor needs a dask.distributed.Client or a scheduler "
+                             f"address, not {type(client).__name__}")
+        self.client = client
+        self.no_worker_timeout = float(no_worker_timeout)
+
+    @property
+    def n_workers(self):
+        try:
+            return max(1, sum(self.client.nthreads().values()))
+        except Exception:
+            return 1
+
+    def _lost_connection(self, exc):
+        return ExecutorError(
+            f"lost the connection to the Dask scheduler ({type(exc).__name__}: "
+            f"{str(exc).strip() or 'no message'}); the run was stopped and nothing was "
+            "written. Check that the scheduler is still running, then run again")
+
+    def run(self, fn, context, items):
+        d = self._distributed
+        items = list(items)
+        futures = []
+        try:
+            payload = _pickled(context)
+            try:
+                ctx = self.client.submit(_dask_context, payload, pure=False)
+                futures = self.client.map(_dask_call, items, fn=fn, context=ctx, pure=False)
+            except Exception as exc:
+                raise self._lost_connection(exc) from None
+            index = {f.key: i for i, f in enumerate(futures)}
+            pending = set(futures)
+            idle_since = None
+            while pending:
+                try:
+                    done, pending = d.wait(list(pending), timeout=1.0,
+                                           return_when="FIRST_COMPLETED")
+                    pending = set(pending)
+                except d.TimeoutError:
+                    done = ()
+                except Exception as exc:
+                    for fut in futures:  # a task that failed explains it better
+                        if fut.status == "error":
+                            self._result(d, fut, items[index[fut.key]])
+                    raise self._lost_connection(exc) from None
+                for fut in sorted(done, key=lambda f: index[f.key]):
+                    i = index[fut.key]
+                    yield i, self._result(d, fut, items[i])
+                if not done:
+                    try:
+                        workers = len(self.client.nthreads())
+                    except Exception as exc:
+                        raise self._lost_connection(exc) from None
+                    if workers:
+                        idle_since = None
+                    elif idle_since is None:
+                        idle_since = time.monotonic()
+                    elif time.monotonic() - idle_since > self.no_worker_timeout:
+                        raise WorkerLostError(
+                            f"the Dask cluster has had no worker for {self.no_worker_timeout:g} "
+                            f"s with {len(pending)} task(s) left (workers died or were "
+                            "stopped); the run was stopped and nothing was written. Start "
+                            "workers and run again")
+        finally:
+            if futures:
+                try:
+                    self.client.cancel(futures)
+                except Exception:
+                    pass
+
+    def _result(self, d, fut, item):
+        try:
+            return fut.result()
+        except d.KilledWorker:
+            raise WorkerLostError(
+                f"Dask workers died while running {_describe(item)} (killed, out of memory, "
+                "or a crash in compiled code; Dask gave up after the task had lost its "
+                "workers repeatedly); the run was stopped and nothing was written. Check the "
+                "workers' memory and logs, then run again") from None
+        except _cancelled(d) as exc:
+            raise self._lost_connection(exc) from None
+
+    def close(self):
+        if self._owned:
+            try:
+                self.client.close()
+            finally:
+                self._owned = False
+
+
+def _cancelled(distributed):
+    """Exception types of a future cancelled under us (the scheduler went away)."""
+    kinds = [concurrent.futures.CancelledError, asyncio.CancelledError]
+    extra = getattr(distributed.client, "FutureCancelledError", None)
+    if extra is not None:
+        kinds.append(extra)
+    return tuple(kinds)
+
+
+def as_executor(executor):
+    """An executor from None (serial), an int (local processes), an Executor, a Dask
+    client or a scheduler address.
+
+    Examples
+    --------
+    >>> type(as_executor(None)).__name__, type(as_executor(3)).__name__
+    ('SerialExecutor', 'ProcessExecutor')
+    """
+    if executor is None:
+        return SerialExecutor()
+    if isinstance(executor, Executor):
+        return executor
+    if isinstance(executor, bool):
+        raise InputError(f"executor={executor!r} is not an executor")
+    if isinstance(executor, int):
+        return SerialExecutor() if executor == 1 else ProcessExecutor(executor)
+    if isinstance(executor, str) or type(executor).__module__.startswith("distributed"):
+        return DaskExecutor(executor)
+    raise InputError(f"executor={executor!r} must be None, a number of processes, an Executor, "
+                     "a dask.distributed.Client or a scheduler address")

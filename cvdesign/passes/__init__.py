@@ -1,0 +1,25 @@
+"""The pass engine: every statistic over trajectories as map / merge / finish over leaves.
+
+See :mod:`cvdesign.passes.engine` (leaves, tasks, running a pass),
+:mod:`cvdesign.passes.tree` (the fixed reduction tree),
+:mod:`cvdesign.passes.keys` (frame keys: state, rank, fold, block),
+:mod:`cvdesign.passes.read` (raw reading through mdtraj's file objects) and
+:mod:`cvdesign.passes.stats` (the concrete passes). Executors live in
+:mod:`cvdesign.parallel`.
+"""
+
+from .engine import (FEATURE_BUDGET, LEAF_FRAMES, CoordinateFeaturizer, Featurizer, Leaf, Pass,
+                     PoolFeaturizer, Task, TaskPlan, leaf_frames_for, plan_tasks,
+                     reference_features, run_pass, run_task)
+from .keys import MIN_FRAMES_PER_FOLD, Folds, FrameKeys, SegmentLayout, frame_keys
+from .stats import (BlockPass, FeaturePass, FoldMomentsPass, HistogramPass, LaggedPass,
+                    LaggedResult, ScreeningPass, ScreeningResult, group_rows, merge_keyed)
+from .tree import TreeReducer, merge_optional
+
+__all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
+           "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
+           "leaf_frames_for", "run_pass", "run_task", "reference_features",
+           "SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD",
+           "FeaturePass", "group_rows", "ScreeningPass", "ScreeningResult", "FoldMomentsPass",
+           "LaggedPass", "LaggedResult",
+           "HistogramPass", "BlockPass", "merge_keyed", "TreeReducer", "merge_optional"]

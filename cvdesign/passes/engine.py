@@ -1,0 +1,733 @@
+"""The pass engine: tasks over leaves of frames, a fixed reduction tree, any executor.
+
+A *pass* maps the frames of one leaf to a partial result, merges partials and
+finishes the root. Leaves are runs of :data:`LEAF_FRAMES` consecutive frames
+aligned to absolute frame numbers of each file (leaf ``frame // leaf_frames``;
+the first and last leaf of a segment may be partial); a leaf's partial is
+computed from exactly its frames (plus the frames after it that its lagged
+pairs need, the *halo*), whichever chunk or task read them. Partials merge in
+the fixed tree of :mod:`cvdesign.passes.tree`: per segment over its leaves,
+then over the segments. So any task split, read chunk size, executor, worker
+count or order of arrival gives the same bytes.
+
+Leaf arithmetic runs with one BLAS thread (threadpoolctl), so its result does
+not depend on the number of threads either.
+"""
+
+import contextlib
+import math
+import threading
+from dataclasses import dataclass
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from ..errors import InputError
+from ..source import Source, check_label_count
+from .keys import SegmentLayout
+from .read import file_frames, read_chunks
+from .tree import TreeReducer, merge_optional
+
+__all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
+           "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
+           "leaf_frames_for", "run_pass", "run_task", "reference_features"]
+
+#: Frames per leaf (the unit of arithmetic) when the features are few enough.
+LEAF_FRAMES = 256
+#: Feature values (float64) a leaf or a read chunk may hold: 2e6 numbers, 16 MB.
+FEATURE_BUDGET = 2_000_000
+
+
+_BLAS_LOCK = threading.Lock()
+_BLAS = {"depth": 0, "limits": None}
+
+
+@contextlib.contextmanager
+def one_blas_thread():
+    """Limit BLAS to one thread while any thread of this process is inside.
+
+    Leaf arithmetic runs under it, so its bits do not depend on the thread
+    count. Threads of a threaded executor share one limit, lifted when the
+    last of them leaves (a plain ``threadpool_limits`` per thread would
+    restore the original count while another thread still computes).
+    """
+    with _BLAS_LOCK:
+        if _BLAS["depth"] == 0:
+            _BLAS["limits"] = threadpool_limits(limits=1, user_api="blas")
+        _BLAS["depth"] += 1
+    try:
+        yield
+    finally:
+        with _BLAS_LOCK:
+            _BLAS["depth"] -= 1
+            if _BLAS["depth"] == 0:
+                _BLAS["limits"].restore_original_limits()
+                _BLAS["limits"] = None
+
+
+def leaf_frames_for(n_features, budget=FEATURE_BUDGET):
+    """Leaf length for `n_features` features: :data:`LEAF_FRAMES`, shorter for big pools.
+
+    A function of the number of features only, so it is the same for every
+    executor and task split.
+
+    Examples
+    --------
+    >>> leaf_frames_for(100), leaf_frames_for(100_000)
+    (256, 20)
+    """
+    return int(min(LEAF_FRAMES, max(8, budget // max(1, int(n_features)))))
+
+
+# --------------------------------------------------------------------------- featurizers
+class Featurizer:
+    """Feature values of frames of the selected atoms (base class).
+
+    Subclasses set :attr:`atom_indices` (sorted topology indices of the atoms
+    to read) and :attr:`n_features`, and implement ``__call__``. A featurizer
+    is pickled to every worker once per run; its values must depend on each
+    frame alone (not on which other frames share the chunk).
+    """
+
+    atom_indices = None
+    n_features = 0
+
+    def __call__(self, trajectory):
+        """Features of every frame, shape ``(n_frames, n_features)``, float64.
+
+        Parameters
+        ----------
+        trajectory : mdtraj.Trajectory
+            Frames of the atoms :attr:`atom_indices`, in that order, with the
+            unit cell when the file has one, and no topology.
+        """
+        raise NotImplementedError
+
+
+class PoolFeaturizer(Featurizer):
+    """The features of a :class:`~cvdesign.pool.Pool` (through :meth:`Pool.features`).
+
+    Parameters
+    ----------
+    pool : cvdesign.pool.Pool
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> from cvdesign.pool import Descriptor, Pool
+    >>> top = md.Topology(); r = top.add_residue("X", top.add_chain())
+    >>> for i in range(3):
+    ...     _ = top.add_atom(f"C{i}", md.element.carbon, r)
+    >>> f = PoolFeaturizer(Pool([Descriptor("distance", (0, 2), "d")], top))
+    >>> xyz = np.array([[[0, 0, 0], [9, 9, 9], [0.3, 0.4, 0]]], dtype=np.float32)
+    >>> f.atom_indices.tolist(), np.round(f(md.Trajectory(xyz[:, [0, 2]], None)), 6).tolist()
+    ([0, 2], [[0.5]])
+    """
+
+    def __init__(self, pool):
+        self.pool = pool
+        self.atom_indices = pool.atom_indices()
+        self.n_features = pool.n_features
+
+    def __call__(self, trajectory):
+        return self.pool.features(trajectory, atom_indices=self.atom_indices)
+
+
+class CoordinateFeaturizer(Featurizer):
+    """Cartesian coordinates (nm) of some atoms as features: x, y, z of each atom in turn.
+
+    Parameters
+    ----------
+    atom_indices : array-like of int
+        Topology indices of the atoms, sorted.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> f = CoordinateFeaturizer([1, 4])
+    >>> f(md.Trajectory(np.arange(6.0).reshape(1, 2, 3), None)).tolist()
+    [[0.0, 1.0, 2.0, 3.0, 4.0, 5.0]]
+    """
+
+    def __init__(self, atom_indices):
+        self.atom_indices = np.unique(np.asarray(atom_indices, dtype=np.intp))
+        self.n_features = 3 * self.atom_indices.size
+
+    def __call__(self, trajectory):
+        return trajectory.xyz.reshape(trajectory.n_frames, -1).astype(np.float64)
+
+
+# --------------------------------------------------------------------------- passes
+class Pass:
+    """A statistic over frames: map a leaf to a partial, merge partials, finish.
+
+    Subclasses set :attr:`featurizer` and implement :meth:`map`, :meth:`merge`
+    and :meth:`finish`; a pass with lagged pairs overrides :meth:`halo`.
+    Partials are plain picklable objects (dicts of
+    :class:`~cvdesign.moments.Moments` and the like); ``merge(a, b)`` must
+    return a new object and leave its inputs unchanged, and ``map`` may return
+    None for "nothing" (None merges as the identity).
+
+    An *exact* pass (``exact = True``: integer counts, histograms) has a merge
+    that is exact and so associative; it skips the tree, and
+    :meth:`accumulate` may add a leaf into its running partial in place.
+
+    Attributes
+    ----------
+    featurizer : Featurizer
+    exact : bool
+    """
+
+    featurizer = None
+    exact = False
+
+    def halo(self, segment_index):
+        """Frames needed after a leaf's last frame (its longest lag), for a segment."""
+        return 0
+
+    def map(self, leaf):
+        """Partial of one :class:`Leaf` (or None)."""
+        raise NotImplementedError
+
+    def merge(self, a, b):
+        """Partial of the union of two disjoint sets of frames (`a` before `b`)."""
+        raise NotImplementedError
+
+    def accumulate(self, acc, leaf):
+        """Exact passes: `acc` with `leaf` added (may modify `acc`; None: nothing yet)."""
+        return merge_optional(self.merge, acc, self.map(leaf))
+
+    def finish(self, partial, plan):
+        """Result from the root partial (None when no frame was seen) and the :class:`TaskPlan`."""
+        return partial
+
+
+def _lag_halo(lags, segment_index):
+    """Halo of a lag given as None, an int, or {segment: int or None}."""
+    if lags is None:
+        return 0
+    if isinstance(lags, dict):
+        return int(lags.get(segment_index) or 0)
+    return int(lags)
+
+
+# --------------------------------------------------------------------------- leaves
+class Leaf:
+    """The frames of one leaf and the halo after it, as a pass sees them.
+
+    Only frames that belong to a state are present (in frame order). The
+    window holds the leaf's rows first, then the halo's.
+
+    Attributes
+    ----------
+    segment : int
+        Segment index.
+    index : int
+        Absolute leaf number (``frame // leaf_frames``).
+    layout : SegmentLayout
+        The segment's layout (cut to the task's frames), for
+        :func:`~cvdesign.passes.keys.frame_keys`.
+    n_states : int
+    frames, states : ndarray of int64
+        Frame numbers and state codes of the leaf's rows.
+    x : ndarray of shape (n_rows, n_features)
+        Their features.
+    time : ndarray or None
+        Their stored times, ps.
+    box : ndarray of shape (n_rows, 3, 3) or None
+        Their box vectors, nm.
+    window_frames, window_states, window_x : ndarray
+        The same for the leaf's rows followed by the halo's.
+    """
+
+    __slots__ = ("segment", "index", "layout", "n_states", "window_frames", "window_states",
+                 "window_x", "window_time", "window_box", "n")
+
+    def __init__(self, segment, index, layout, n_states, frames, states, x, time, box, n):
+        self.segment, self.index, self.layout, self.n_states = segment, index, layout, n_states
+        self.window_frames, self.window_states, self.window_x = frames, states, x
+        self.window_time, self.window_box, self.n = time, box, n
+
+    @property
+    def frames(self):
+        return self.window_frames[:self.n]
+
+    @property
+    def states(self):
+        return self.window_states[:self.n]
+
+    @property
+    def x(self):
+        return self.window_x[:self.n]
+
+    @property
+    def time(self):
+        return None if self.window_time is None else self.window_time[:self.n]
+
+    @property
+    def box(self):
+        return None if self.window_box is None else self.window_box[:self.n]
+
+    def pairs(self, lag):
+        """Lagged pairs ``(t, t + lag)`` whose first frame is in this leaf.
+
+        A pair is valid when every frame from ``t`` to ``t + lag`` belongs to
+        the segment, is selected and carries the same state (no pair spans a
+        file, a gap or a state change).
+
+        Parameters
+        ----------
+        lag : int
+            Lag in frames (at most the pass's halo).
+
+        Returns
+        -------
+        i, j : ndarray of intp
+            Rows of the leaf (first frames) and rows of the window (second
+            frames) of the valid pairs, in the order of ``t``.
+        """
+        lag = int(lag)
+        t = self.frames
+        ok = self.layout.run_end_of(t) > t + lag
+        i = np.flatnonzero(ok)
+        j = np.searchsorted(self.window_frames, t[i] + lag)
+        if j.size and (j[-1] >= self.window_frames.size
+                       or not np.array_equal(self.window_frames[j], t[i] + lag)):
+            raise RuntimeError(f"lag {lag} is longer than the halo read after leaf {self.index}")
+        return i, j.astype(np.intp)
+
+
+# --------------------------------------------------------------------------- tasks
+@dataclass(frozen=True)
+class Task:
+    """Leaves ``[leaf_start, leaf_stop)`` (absolute leaf numbers) of one segment."""
+
+    segment: int
+    leaf_start: int
+    leaf_stop: int
+
+
+class TaskPlan:
+    """Segments cut into leaves, and tasks covering every leaf once.
+
+    Built by :func:`plan_tasks`. The results of a pass depend on
+    :attr:`leaf_frames` (a leaf is the unit of arithmetic), never on
+    :attr:`tasks`.
+
+    Attributes
+    ----------
+    layouts : list of SegmentLayout
+    leaf_frames : int
+    tasks : list of Task
+    states : list of str
+    topology : mdtraj.Topology
+    """
+
+    def __init__(self, layouts, leaf_frames, tasks, states, topology):
+        self.layouts = list(layouts)
+        self.leaf_frames = int(leaf_frames)
+        self.states = list(states)
+        self.topology = topology
+        self.tasks = self._checked(_split(self, None, None) if tasks is None else tasks)
+
+    @property
+    def n_states(self):
+        return len(self.states)
+
+    @property
+    def n_segments(self):
+        return len(self.layouts)
+
+    def leaves(self, segment):
+        """Absolute leaf numbers of a segment (empty for a segment without frames)."""
+        lay = self.layouts[segment]
+        if lay.hi <= lay.lo:
+            return range(0)
+        return range(lay.lo // self.leaf_frames, -(-lay.hi // self.leaf_frames))
+
+    def task_frames(self, task):
+        """Frame range ``[start, stop)`` of a task."""
+        lay = self.layouts[task.segment]
+        return (max(lay.lo, task.leaf_start * self.leaf_frames),
+                min(lay.hi, task.leaf_stop * self.leaf_frames))
+
+    def segment_counts(self):
+        """Frames of each state in each segment, shape (n_segments, n_states), int64."""
+        return np.array([lay.counts for lay in self.layouts], dtype=np.int64).reshape(
+            self.n_segments, self.n_states)
+
+    def _checked(self, tasks):
+        tasks = list(tasks)
+        covered = {}
+        for t in tasks:
+            if not isinstance(t, Task):
+                raise TypeError(f"tasks must be Task objects, got {type(t).__name__}")
+            if not 0 <= t.segment < self.n_segments:
+                raise ValueError(f"task {t} names no segment of the plan")
+            leaves = self.leaves(t.segment)
+            if not (t.leaf_start < t.leaf_stop and t.leaf_start >= leaves.start
+                    and t.leaf_stop <= leaves.stop):
+                raise ValueError(f"task {t} is not within the leaves {leaves} of its segment")
+            covered.setdefault(t.segment, []).append((t.leaf_start, t.leaf_stop))
+        for si in range(self.n_segments):
+            leaves = self.leaves(si)
+            spans = sorted(covered.get(si, []))
+            pos = leaves.start
+            for a, b in spans:
+                if a != pos:
+                    raise ValueError(f"tasks of segment {si} leave a gap or overlap at leaf "
+                                     f"{min(a, pos)}")
+                pos = b
+            if pos != leaves.stop:
+                raise ValueError(f"tasks of segment {si} do not cover leaves up to "
+                                 f"{leaves.stop}")
+        return tasks
+
+    def with_tasks(self, tasks):
+        """The same plan with other tasks (checked to cover every leaf exactly once)."""
+        return TaskPlan(self.layouts, self.leaf_frames, tasks, self.states, self.topology)
+
+    def split(self, *, n_tasks=None, frames_per_task=None):
+        """The same leaves split into other tasks (see :func:`plan_tasks`)."""
+        return self.with_tasks(_split(self, n_tasks, frames_per_task))
+
+
+def _split(plan, n_tasks, frames_per_task):
+    if n_tasks is not None and frames_per_task is not None:
+        raise InputError("give n_tasks or frames_per_task, not both")
+    sizes = {si: len(plan.leaves(si)) for si in range(plan.n_segments)}
+    total = sum(sizes.values())
+    if frames_per_task is not None:
+        if int(frames_per_task) < 1:
+            raise InputError(f"frames_per_task={frames_per_task!r} must be a positive number "
+                             "of frames")
+        per = max(1, int(frames_per_task) // plan.leaf_frames)
+    elif n_tasks is not None:
+        if int(n_tasks) < 1:
+            raise InputError(f"n_tasks={n_tasks!r} must be a positive number of tasks")
+        per = max(1, math.ceil(total / int(n_tasks)))
+    else:
+        per = None
+    tasks = []
+    for si in range(plan.n_segments):
+        leaves = plan.leaves(si)
+        step = len(leaves) if per is None else per
+        for a in range(leaves.start, leaves.stop, max(1, step)):
+            tasks.append(Task(si, a, min(leaves.stop, a + step)))
+    return tasks
+
+
+def _layouts(source):
+    index = {s: i for i, s in enumerate(source.states)}
+    out, lengths = [], {}
+    for si, seg in enumerate(source.segments):
+        key = str(seg.path)
+        if key not in lengths:  # a file given as several frame ranges is counted once
+            lengths[key] = file_frames(seg.path)
+        n_file = lengths[key]
+        if seg.labels is not None:
+            check_label_count(seg, n_file)
+            codes = np.array([-1 if x is None else index[x] for x in seg.labels],
+                             dtype=np.int64)
+            out.append(SegmentLayout.from_codes(si, str(seg.path), codes, len(index)))
+        else:
+            out.append(SegmentLayout.plain(
+                si, str(seg.path), n_file, seg.start or 0,
+                n_file if seg.stop is None else seg.stop, index[seg.state], len(index)))
+    return out
+
+
+def plan_tasks(source, *, leaf_frames=LEAF_FRAMES, n_tasks=None, frames_per_task=None):
+    """Cut the segments of a source into leaves and the leaves into tasks.
+
+    Counts the frames of every file (mdtraj's file objects) and checks the
+    label arrays (one label per frame); frame ranges are clipped to the file.
+
+    Parameters
+    ----------
+    source : cvdesign.source.Source
+    leaf_frames : int, default=LEAF_FRAMES
+        Frames per leaf (aligned to absolute frame numbers). Results depend on
+        it; see :func:`leaf_frames_for`.
+    n_tasks : int, default=None
+        About this many tasks over all segments (a task never spans two
+        segments, so there may be more).
+    frames_per_task : int, default=None
+        At most this many frames per task (rounded down to whole leaves, at
+        least one). None for both: one task per segment.
+
+    Returns
+    -------
+    TaskPlan
+
+    Raises
+    ------
+    InputError
+        For a source that is not a Source, a file whose frames cannot be
+        counted, a label array of another length than its file.
+    """
+    if not isinstance(source, Source):
+        raise InputError(f"plan_tasks() needs a Source, not {type(source).__name__}")
+    if int(leaf_frames) < 1:
+        raise InputError(f"leaf_frames={leaf_frames!r} must be a positive number of frames")
+    plan = TaskPlan(_layouts(source), int(leaf_frames), None, source.states, source.topology)
+    if n_tasks is None and frames_per_task is None:
+        return plan
+    return plan.split(n_tasks=n_tasks, frames_per_task=frames_per_task)
+
+
+# --------------------------------------------------------------------------- running a task
+@dataclass
+class _Context:
+    """What every task of a run shares (sent to each worker once)."""
+
+    passes: tuple
+    featurizer: Featurizer
+    topology: object
+    leaf_frames: int
+    n_states: int
+    chunk_frames: int
+
+
+@dataclass
+class _Work:
+    """One task as a worker gets it: the frames to read and the segment's layout."""
+
+    number: int
+    task: Task
+    path: str
+    layout: SegmentLayout
+    n_leaves: int          # leaves of the segment (the tree's width)
+    first_leaf: int        # absolute number of the segment's first leaf
+    start: int             # task frames [start, stop); read up to read_stop (halo)
+    stop: int
+    read_stop: int
+    halo: int
+
+    def describe(self):
+        return (f"task {self.number + 1}: frames {self.start}-{self.stop - 1} of "
+                f"{self.path!r}")
+
+
+def _leaves(ctx, work):
+    """Yield the task's leaves, reading in chunks and keeping only what the next leaves need."""
+    lay, L = work.layout, ctx.leaf_frames
+    pieces = []          # (frames, states, x, time, box) of rows not yet consumed
+    leaf = work.task.leaf_start
+
+    def emit(upto, final):
+        nonlocal leaf, pieces
+        if not pieces:
+            buf = None
+        else:
+            cols = list(zip(*pieces))
+            buf = [np.concatenate(c) if c[0] is not None else None for c in cols]
+            pieces = [tuple(buf)]
+        out = []
+        while leaf < work.task.leaf_stop:
+            a, b = max(lay.lo, leaf * L), min(lay.hi, (leaf + 1) * L)
+            need = min(work.read_stop, b + work.halo)
+            if not final and need > upto:
+                break
+            if buf is None:
+                out.append((leaf, None))
+            else:
+                fr = buf[0]
+                lo, n_end, w_end = np.searchsorted(fr, [a, b, need])
+                if n_end == lo:
+                    out.append((leaf, None))
+                else:
+                    win = [None if c is None else c[lo:w_end] for c in buf]
+                    out.append((leaf, Leaf(work.task.segment, leaf, lay, ctx.n_states, win[0],
+                                           win[1], np.ascontiguousarray(win[2]), win[3],
+                                           win[4], int(n_end - lo))))
+            leaf += 1
+            nxt = max(lay.lo, leaf * L)
+            if buf is not None:
+                keep = int(np.searchsorted(buf[0], nxt))
+                buf = [None if c is None else c[keep:] for c in buf]
+                pieces = [tuple(buf)]
+        return out
+
+    def select(frames):
+        return lay.states_of(frames) >= 0
+
+    for chunk in read_chunks(work.path, work.start, work.read_stop, ctx.featurizer.atom_indices,
+                             ctx.topology, chunk_frames=ctx.chunk_frames, select=select):
+        x = np.asarray(ctx.featurizer(chunk.trajectory), dtype=np.float64)
+        if x.shape != (chunk.frames.size, ctx.featurizer.n_features):
+            raise ValueError(f"the featurizer returned shape {x.shape} for "
+                             f"{chunk.frames.size} frames and {ctx.featurizer.n_features} "
+                             "features")
+        box = chunk.trajectory.unitcell_vectors
+        pieces.append((chunk.frames, lay.states_of(chunk.frames), x, chunk.time, box))
+        yield from emit(int(chunk.frames[-1]) + 1, False)
+    yield from emit(work.read_stop, True)
+
+
+def run_task(ctx, work):
+    """Run one task in a worker: per pass, the tree nodes it completed (or its exact sum).
+
+    Returns
+    -------
+    list
+        One entry per pass of the run: ``[(h, k, partial), ...]`` for a tree
+        pass (nodes of the segment's leaf tree), the accumulated partial for an
+        exact pass.
+    """
+    with one_blas_thread():
+        trees, accs = [], []
+        for p in ctx.passes:
+            trees.append(None if p.exact else TreeReducer(work.n_leaves, p.merge))
+            accs.append(None)
+        for number, leaf in _leaves(ctx, work):
+            k = number - work.first_leaf
+            for i, p in enumerate(ctx.passes):
+                if p.exact:
+                    if leaf is not None:
+                        accs[i] = p.accumulate(accs[i], leaf)
+                else:
+                    trees[i].add(0, k, None if leaf is None else p.map(leaf))
+        return [accs[i] if p.exact else trees[i].nodes() for i, p in enumerate(ctx.passes)]
+
+
+# --------------------------------------------------------------------------- running a pass
+def _chunk_frames(source, featurizer, leaf_frames):
+    return int(max(leaf_frames, min(source.chunk_size,
+                                    FEATURE_BUDGET // max(1, featurizer.n_features))))
+
+
+def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
+    """Run one pass, or several sharing one read, over the frames of a source.
+
+    Parameters
+    ----------
+    pass_ : Pass or sequence of Pass
+        Several passes must share one featurizer (the same object); the
+        frames are read and featurized once for all of them.
+    source : cvdesign.source.Source
+    executor : Executor, int, dask.distributed.Client or str, default=None
+        Where tasks run (:mod:`cvdesign.parallel`; see
+        :func:`cvdesign.parallel.as_executor`): None in this process, an int
+        that many local processes, a client or scheduler address a Dask
+        cluster. An executor made here from an int or address is closed at
+        the end.
+    tasks : TaskPlan, default=None
+        Leaves and tasks (:func:`plan_tasks`); None: leaves of
+        :func:`leaf_frames_for` the featurizer's features, and about four
+        tasks per worker of the executor.
+    chunk_frames : int, default=None
+        Frames per read (memory only; results do not depend on it).
+
+    Returns
+    -------
+    object or tuple
+        The pass's result (a tuple of results for a sequence of passes).
+        Identical bytes for every executor, task split, chunk size and order
+        of arrival.
+
+    Raises
+    ------
+    InputError
+        Bad input met while reading (invalid box, non-finite coordinate,
+        frames missing), naming the file.
+    cvdesign.parallel.ExecutorError
+        The executor failed (scheduler unreachable, a worker died).
+    """
+    from ..parallel import Executor, as_executor
+
+    single = isinstance(pass_, Pass)
+    passes = (pass_,) if single else tuple(pass_)
+    if not passes or not all(isinstance(p, Pass) for p in passes):
+        raise InputError("run_pass() needs a Pass or a sequence of Pass objects")
+    featurizer = passes[0].featurizer
+    if any(p.featurizer is not featurizer for p in passes):
+        raise InputError("passes run together must share one featurizer object")
+    owned = executor is not None and not isinstance(executor, Executor)
+    executor = as_executor(executor)
+    try:
+        return _run(passes, featurizer, source, executor, tasks, chunk_frames, single)
+    finally:
+        if owned:
+            executor.close()
+
+
+def _run(passes, featurizer, source, executor, tasks, chunk_frames, single):
+    if tasks is None:
+        plan = plan_tasks(source, leaf_frames=leaf_frames_for(featurizer.n_features))
+        if executor.n_workers > 1:
+            plan = plan.split(n_tasks=4 * executor.n_workers)
+    elif isinstance(tasks, TaskPlan):
+        plan = tasks
+    else:
+        raise InputError(f"tasks must be a TaskPlan from plan_tasks(), not {type(tasks).__name__}")
+    ctx = _Context(passes, featurizer, plan.topology, plan.leaf_frames, plan.n_states,
+                   int(chunk_frames) if chunk_frames else
+                   _chunk_frames(source, featurizer, plan.leaf_frames))
+    works = []
+    for n, t in enumerate(plan.tasks):
+        lay = plan.layouts[t.segment]
+        start, stop = plan.task_frames(t)
+        halo = max(p.halo(t.segment) for p in passes)
+        read_stop = min(lay.hi, stop + halo)
+        leaves = plan.leaves(t.segment)
+        works.append(_Work(n, t, lay.path, lay.window(start, read_stop), len(leaves),
+                           leaves.start, start, stop, read_stop, halo))
+    with one_blas_thread():
+        return _reduce(passes, plan, executor, ctx, works, single)
+
+
+def _reduce(passes, plan, executor, ctx, works, single):
+    seg_trees = [[TreeReducer(len(plan.leaves(si)), p.merge) if len(plan.leaves(si)) else None
+                  for si in range(plan.n_segments)] for p in passes]
+    exact = [None] * len(passes)
+    for number, result in executor.run(run_task, ctx, works):
+        segment = works[number].task.segment
+        for i, p in enumerate(passes):
+            if p.exact:
+                exact[i] = merge_optional(p.merge, exact[i], result[i])
+            else:
+                for h, k, value in result[i]:
+                    seg_trees[i][segment].add(h, k, value)
+    out = []
+    for i, p in enumerate(passes):
+        if p.exact:
+            root = exact[i]
+        else:
+            roots = []
+            for si, tree in enumerate(seg_trees[i]):
+                if tree is not None and not tree.done:
+                    raise RuntimeError(f"segment {si} was not fully reduced (tasks missing)")
+                roots.append(None if tree is None else tree.root)
+            root = None
+            if roots:
+                top = TreeReducer(len(roots), p.merge)
+                for si, r in enumerate(roots):
+                    top.add(0, si, r)
+                root = top.root
+        out.append(p.finish(root, plan))
+    return out[0] if single else tuple(out)
+
+
+def reference_features(plan, featurizer):
+    """Features of the first frame with a state (first segment that has one).
+
+    A shift for lagged sums that is known before a pass and the same for every
+    executor (lagged statistics merge by addition and need one shift).
+
+    Returns
+    -------
+    ndarray of shape (n_features,) or None
+        None when no segment has a frame.
+    """
+    for lay in plan.layouts:
+        if lay.n_frames == 0:
+            continue
+        frames = np.arange(lay.lo, lay.hi)
+        first = int(frames[np.argmax(lay.states_of(frames) >= 0)])
+        for chunk in read_chunks(lay.path, first, first + 1, featurizer.atom_indices,
+                                 plan.topology, chunk_frames=1):
+            with one_blas_thread():
+                return np.asarray(featurizer(chunk.trajectory), dtype=np.float64)[0]
+    return None
+

@@ -1,0 +1,329 @@
+"""Frame keys: state, rank, fold and bootstrap block as pure functions of (segment, frame).
+
+Every pass groups frames by keys computed here, from the segment's layout (its
+frame range, its state or per-frame labels, its frame counts per state) and
+the absolute frame number in the file, never from the order in which chunks or
+tasks arrive. So a fold or a block holds the same frames whatever the task
+split, chunk size, executor or arrival order.
+
+* **state code** of a frame: the segment's state, or the code of its label
+  (-1: outside the segment's frame range, or labelled None);
+* **rank** within (segment, state): ``frame - start`` for a plain segment, the
+  number of earlier frames of the same label in the file for a labelled one;
+* **fold** (:class:`Folds`): by trajectory (every frame of a file and state in
+  one fold) or by contiguous block of ranks (``rank * n_folds // count``);
+* **bootstrap block**: ``rank // block_frames`` within (segment, state), or
+  within (segment, state, fold) when folds are given (rank counted from the
+  fold's first frame);
+* **run end**: the first frame after the run of consecutive frames of one
+  state that a frame belongs to; a lagged pair ``(t, t + lag)`` is valid only
+  when ``t + lag`` is before it (no pair spans a file, a gap, a state change or
+  the end of the frame range).
+"""
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..errors import InputError
+
+__all__ = ["SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD"]
+
+#: Fewest frames of each state in each held-out fold (the pipeline's rule).
+MIN_FRAMES_PER_FOLD = 10
+
+
+@dataclass(frozen=True, eq=False)
+class SegmentLayout:
+    """Where the frames of one segment are and which state each belongs to.
+
+    Built by :func:`cvdesign.passes.plan_tasks` from a
+    :class:`~cvdesign.source.Source`; workers get a :meth:`window` of it
+    (the few arrays of a labelled segment cut to the frames of one task).
+
+    Attributes
+    ----------
+    index : int
+        Segment index in the source.
+    path : str
+        Trajectory file.
+    n_file : int
+        Frames in the file.
+    lo, hi : int
+        Frame range ``[lo, hi)`` of the segment, clipped to the file.
+    n_states : int
+        Number of states of the source.
+    state : int or None
+        State code of every frame of a plain segment; None for a labelled one.
+    counts : ndarray of shape (n_states,), dtype int64
+        Frames of each state in the segment.
+    offset : int
+        First frame described by `codes`, `rank` and `run_end`.
+    codes, rank, run_end : ndarray of int64 or None
+        Per-frame state code (-1: no state), rank within (segment, state) and
+        end of the frame's run, for frames ``offset, offset + 1, ...``
+        (labelled segments only).
+
+    Examples
+    --------
+    >>> lay = SegmentLayout.from_codes(0, "run.xtc", np.array([0, 0, -1, 1, 1, 0]), 2)
+    >>> lay.counts.tolist(), lay.rank_of(np.arange(6)).tolist()
+    ([3, 2], [0, 1, 0, 0, 1, 2])
+    >>> lay.run_end_of(np.array([0, 3, 5])).tolist()
+    [2, 5, 6]
+    """
+
+    index: int
+    path: str
+    n_file: int
+    lo: int
+    hi: int
+    n_states: int
+    state: int | None = None
+    counts: np.ndarray = field(default=None, repr=False)
+    offset: int = 0
+    codes: np.ndarray | None = field(default=None, repr=False)
+    rank: np.ndarray | None = field(default=None, repr=False)
+    run_end: np.ndarray | None = field(default=None, repr=False)
+
+    @classmethod
+    def plain(cls, index, path, n_file, lo, hi, state, n_states):
+        """Layout of frames ``[lo, hi)`` (clipped to the file) all in state `state`."""
+        lo, hi = min(max(0, int(lo)), int(n_file)), min(max(0, int(hi)), int(n_file))
+        hi = max(lo, hi)
+        counts = np.zeros(int(n_states), dtype=np.int64)
+        counts[int(state)] = hi - lo
+        return cls(int(index), str(path), int(n_file), lo, hi, int(n_states), int(state), counts)
+
+    @classmethod
+    def from_codes(cls, index, path, codes, n_states):
+        """Layout of a whole file with a state code per frame (-1: no state)."""
+        codes = np.asarray(codes, dtype=np.int64).reshape(-1)
+        n = codes.shape[0]
+        counts = np.bincount(codes[codes >= 0], minlength=int(n_states)).astype(np.int64)
+        rank = np.zeros(n, dtype=np.int64)
+        for s in range(int(n_states)):
+            rows = np.flatnonzero(codes == s)
+            rank[rows] = np.arange(rows.size)
+        # end of each run of equal codes: the start of the next run
+        starts = np.flatnonzero(np.diff(codes) != 0) + 1
+        ends = np.append(starts, n)
+        run_id = np.zeros(n, dtype=np.int64)
+        run_id[starts] = 1
+        run_end = ends[np.cumsum(run_id)]
+        return cls(int(index), str(path), n, 0, n, int(n_states), None, counts, 0, codes, rank,
+                   run_end)
+
+    @property
+    def labelled(self):
+        """bool : whether frames carry their own state codes."""
+        return self.state is None
+
+    @property
+    def n_frames(self):
+        """int : frames of the segment that belong to a state."""
+        return int(self.counts.sum())
+
+    def _at(self, array, frames, outside):
+        idx = np.asarray(frames, dtype=np.int64) - self.offset
+        ok = (idx >= 0) & (idx < array.shape[0])
+        out = np.full(idx.shape, outside, dtype=np.int64)
+        out[ok] = array[idx[ok]]
+        return out
+
+    def states_of(self, frames):
+        """State code of each frame (-1 outside the frame range or unlabelled)."""
+        frames = np.asarray(frames, dtype=np.int64)
+        inside = (frames >= self.lo) & (frames < self.hi)
+        if self.codes is None:
+            return np.where(inside, self.state, -1).astype(np.int64)
+        return np.where(inside, self._at(self.codes, frames, -1), -1)
+
+    def rank_of(self, frames):
+        """Rank of each frame within (segment, its state); meaningful for frames with a state."""
+        frames = np.asarray(frames, dtype=np.int64)
+        if self.codes is None:
+            return frames - self.lo
+        return self._at(self.rank, frames, -1)
+
+    def run_end_of(self, frames):
+        """First frame after the run of same-state consecutive frames containing each frame."""
+        frames = np.asarray(frames, dtype=np.int64)
+        if self.codes is None:
+            return np.full(frames.shape, self.hi, dtype=np.int64)
+        return np.minimum(self._at(self.run_end, frames, 0), self.hi)
+
+    def window(self, start, stop):
+        """The same layout with its per-frame arrays cut to frames ``[start, stop)``."""
+        if self.codes is None:
+            return self
+        a, b = max(0, int(start) - self.offset), max(0, int(stop) - self.offset)
+        return SegmentLayout(self.index, self.path, self.n_file, self.lo, self.hi,
+                             self.n_states, None, self.counts, self.offset + a,
+                             self.codes[a:b].copy(), self.rank[a:b].copy(),
+                             self.run_end[a:b].copy())
+
+
+@dataclass(frozen=True)
+class Folds:
+    """Assignment of every frame to a held-out fold, from its keys only.
+
+    Parameters
+    ----------
+    n_folds : int
+    mode : {'block', 'trajectory'}, default='block'
+        ``'block'``: fold ``rank * n_folds // count`` of the frame's (segment,
+        state) run, so each run is cut into `n_folds` contiguous pieces;
+        ``'trajectory'``: the fold of the frame's file for its state.
+    file_fold : dict of (int, str) to int, default=None
+        ``(state, path) -> fold`` (mode ``'trajectory'``).
+
+    Examples
+    --------
+    >>> lay = SegmentLayout.plain(0, "a.xtc", 10, 0, 10, 0, 1)
+    >>> Folds(2).of(lay, np.zeros(10, int), np.arange(10)).tolist()
+    [0, 0, 0, 0, 0, 1, 1, 1, 1, 1]
+    """
+
+    n_folds: int
+    mode: str = "block"
+    file_fold: dict | None = None
+
+    def __post_init__(self):
+        if self.mode not in ("block", "trajectory"):
+            raise ValueError(f"mode={self.mode!r} must be 'block' or 'trajectory'")
+        if self.mode == "trajectory" and not self.file_fold:
+            raise ValueError("mode 'trajectory' needs file_fold")
+
+    @classmethod
+    def plan(cls, layouts, n_folds, *, min_frames=MIN_FRAMES_PER_FOLD, state_names=None):
+        """Folds by trajectory when every state has enough files, else by block.
+
+        By trajectory when each state has frames in at least two files and
+        every state keeps at least `min_frames` frames in each of
+        ``min(n_folds, fewest files)`` folds (each state's files dealt to the
+        folds in the order first given); otherwise by contiguous block, with
+        ``min(n_folds, fewest frames of a state // min_frames)`` folds.
+
+        Parameters
+        ----------
+        layouts : sequence of SegmentLayout
+        n_folds : int
+            Folds wanted.
+        min_frames : int, default=MIN_FRAMES_PER_FOLD
+        state_names : sequence of str, default=None
+            For the message.
+
+        Raises
+        ------
+        InputError
+            When a state has too few frames for two folds.
+
+        Examples
+        --------
+        >>> lays = [SegmentLayout.plain(i, f"{i}.xtc", 40, 0, 40, i % 2, 2) for i in range(4)]
+        >>> f = Folds.plan(lays, 4)
+        >>> f.mode, f.n_folds
+        ('trajectory', 2)
+        """
+        n_states = layouts[0].n_states if layouts else 0
+        seg_counts = np.array([lay.counts for lay in layouts], dtype=np.int64).reshape(
+            len(layouts), n_states)
+        files = [list(dict.fromkeys(lay.path for lay in layouts if lay.counts[s] > 0))
+                 for s in range(n_states)]
+        if n_states and min(len(f) for f in files) >= 2:
+            k = min(int(n_folds), min(len(f) for f in files))
+            fold_of = {(s, p): i % k for s in range(n_states) for i, p in enumerate(files[s])}
+            per_fold = np.zeros((n_states, k))
+            for lay in layouts:
+                for s in range(n_states):
+                    if lay.counts[s]:
+                        per_fold[s, fold_of[(s, lay.path)]] += lay.counts[s]
+            if per_fold.min() >= min_frames:
+                return cls(k, "trajectory", fold_of)
+        totals = seg_counts.sum(axis=0)
+        k = int(min(int(n_folds), totals.min() // min_frames)) if n_states else 0
+        if k < 2:
+            s = int(np.argmin(totals)) if n_states else 0
+            name = repr(state_names[s]) if state_names is not None else str(s)
+            raise InputError(
+                f"state {name} has only {int(totals[s]) if n_states else 0} frames; held-out "
+                f"scoring needs at least {2 * min_frames} per state ({min_frames} in each of "
+                "two folds); give more frames")
+        return cls(k, "block")
+
+    def of(self, layout, states, ranks):
+        """Fold of frames with state codes `states` and ranks `ranks` in `layout`."""
+        states = np.asarray(states, dtype=np.int64)
+        if self.mode == "trajectory":
+            out = np.empty(states.shape, dtype=np.int64)
+            for s in np.unique(states):
+                out[states == s] = self.file_fold[(int(s), layout.path)]
+            return out
+        counts = layout.counts[states]
+        return (np.asarray(ranks, dtype=np.int64) * self.n_folds) // np.maximum(counts, 1)
+
+    def first_rank(self, layout, states, folds):
+        """Rank of the first frame of each fold within (segment, state)."""
+        if self.mode == "trajectory":
+            return np.zeros(np.shape(states), dtype=np.int64)
+        counts = layout.counts[np.asarray(states, dtype=np.int64)]
+        # smallest r with r * n_folds // count >= fold: ceil(fold * count / n_folds)
+        return -((-np.asarray(folds, dtype=np.int64) * counts) // self.n_folds)
+
+
+@dataclass
+class FrameKeys:
+    """Keys of some frames of one segment (see :func:`frame_keys`).
+
+    Attributes
+    ----------
+    states, rank : ndarray of int64
+    fold, block : ndarray of int64
+        Zeros when no folds / no block length were given.
+    """
+
+    states: np.ndarray
+    rank: np.ndarray
+    fold: np.ndarray
+    block: np.ndarray
+
+
+def frame_keys(layout, frames, *, folds=None, block_frames=None):
+    """State, rank, fold and bootstrap block of frames of one segment.
+
+    Parameters
+    ----------
+    layout : SegmentLayout
+    frames : array-like of int
+        Absolute frame numbers in the segment's file (frames with a state).
+    folds : Folds, default=None
+        None: every frame in fold 0.
+    block_frames : int, default=None
+        Bootstrap block length in frames; None: one block per (segment,
+        state[, fold]).
+
+    Returns
+    -------
+    FrameKeys
+
+    Examples
+    --------
+    >>> lay = SegmentLayout.plain(0, "a.xtc", 100, 10, 30, 0, 1)
+    >>> k = frame_keys(lay, np.arange(10, 30), folds=Folds(2), block_frames=4)
+    >>> k.fold.tolist()
+    [0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 1, 1, 1, 1, 1, 1, 1, 1, 1, 1]
+    >>> k.block.tolist()
+    [0, 0, 0, 0, 1, 1, 1, 1, 2, 2, 0, 0, 0, 0, 1, 1, 1, 1, 2, 2]
+    """
+    frames = np.asarray(frames, dtype=np.int64)
+    states = layout.states_of(frames)
+    rank = layout.rank_of(frames)
+    zeros = np.zeros(frames.shape, dtype=np.int64)
+    fold = zeros if folds is None else folds.of(layout, states, rank)
+    if block_frames is None:
+        block = zeros
+    else:
+        start = zeros if folds is None else folds.first_rank(layout, states, fold)
+        block = (rank - start) // int(block_frames)
+    return FrameKeys(states, rank, fold, block)

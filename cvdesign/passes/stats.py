@@ -1,0 +1,509 @@
+"""Concrete passes: the statistics the pipeline gathers from trajectories.
+
+Each returns the objects the rest of cvdesign works with
+(:class:`~cvdesign.moments.Moments`, :class:`~cvdesign.moments.DiagonalMoments`,
+:class:`~cvdesign.moments.LaggedMoments`,
+:class:`~cvdesign.moments.DiagonalLaggedMoments`,
+:class:`~cvdesign.scoring.Histograms`, :class:`~cvdesign.bootstrap.ArraySum`):
+
+* :class:`ScreeningPass` -- per-state diagonal moments, frames per (segment,
+  state), per-run diagonal lagged moments at per-segment lags, smallest box
+  height;
+* :class:`FoldMomentsPass` -- per-(state, fold) full moments of some features;
+* :class:`LaggedPass` -- lagged moments per run (segment, state, fold), merged
+  per fold, per (state, fold) or per run on demand;
+* :class:`HistogramPass` -- per-state histograms on fixed bins (exact counts);
+* :class:`BlockPass` -- per-(state, fold, segment, bootstrap block) moments,
+  lagged moments and additive sums, for the block bootstrap.
+
+Features pass through ``columns`` (a subset, in order), then ``(x - center) /
+scale`` when given. Every grouping uses :func:`cvdesign.passes.keys.frame_keys`.
+"""
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..bootstrap import ArraySum
+from ..geometry import box_heights
+from ..moments import DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments, merge_all
+from ..scoring import Histograms
+from .engine import Pass, _lag_halo
+from .keys import frame_keys
+
+__all__ = ["FeaturePass", "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass",
+           "LaggedResult", "HistogramPass", "BlockPass", "merge_keyed", "group_rows"]
+
+
+def _merge_value(a, b):
+    if a is None:
+        return b
+    if b is None:
+        return a
+    if isinstance(a, tuple):
+        return tuple(_merge_value(x, y) for x, y in zip(a, b))
+    if isinstance(a, (int, np.integer)):
+        return int(a) + int(b)
+    return a.merge(b)
+
+
+def merge_keyed(a, b):
+    """Merge two dicts of mergeable values key by key (keys of one side pass through).
+
+    Values may be mergeable objects, ints (added) or tuples of them (merged
+    item by item, None standing for nothing).
+
+    Examples
+    --------
+    >>> merge_keyed({"a": 1, "b": 2}, {"b": 3})
+    {'a': 1, 'b': 5}
+    """
+    out = dict(a)
+    for k, v in b.items():
+        out[k] = _merge_value(out[k], v) if k in out else v
+    return out
+
+
+def group_rows(*keys):
+    """``(key tuple, rows)`` for each distinct combination of keys, sorted; rows increasing.
+
+    Examples
+    --------
+    >>> [(k, r.tolist()) for k, r in group_rows(np.array([1, 0, 1]), np.array([2, 2, 2]))]
+    [((0, 2), [1]), ((1, 2), [0, 2])]
+    """
+    if keys[0].size == 0:
+        return []
+    stacked = np.stack([np.asarray(k, dtype=np.int64) for k in keys], axis=1)
+    uniq, inverse = np.unique(stacked, axis=0, return_inverse=True)
+    inverse = inverse.reshape(-1)
+    order = np.argsort(inverse, kind="stable")
+    bounds = np.cumsum(np.bincount(inverse, minlength=uniq.shape[0]))[:-1]
+    return [(tuple(int(v) for v in u), rows)
+            for u, rows in zip(uniq, np.split(order, bounds))]
+
+
+def _lag_of(lags, segment):
+    return _lag_halo(lags, segment) or None
+
+
+def _unlag(m):
+    m = m.copy()
+    m.lag = None
+    return m
+
+
+def _merge_lagged(items, n_features, shift, diagonal):
+    """Balanced merge of lagged moments of different runs (lags dropped: they may differ)."""
+    items = [_unlag(m) for m in items]
+    if not items:
+        cls = DiagonalLaggedMoments if diagonal else LaggedMoments
+        return cls(n_features, shift=shift)
+    return merge_all(items)
+
+
+class FeaturePass(Pass):
+    """A pass on some features: a subset of columns, then ``(x - center) / scale``.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    columns : array-like of int, default=None
+        Feature columns used, in this order (None: all).
+    center, scale : array-like of shape (n_columns,), default=None
+        Standardization applied after the column selection (None: none).
+    """
+
+    def __init__(self, featurizer, *, columns=None, center=None, scale=None):
+        self.featurizer = featurizer
+        self.columns = None if columns is None else np.asarray(columns, dtype=np.intp)
+        n = featurizer.n_features if self.columns is None else self.columns.size
+        self.n_features = int(n)
+        self.center = None if center is None else np.asarray(center, dtype=np.float64)
+        self.scale = None if scale is None else np.asarray(scale, dtype=np.float64)
+
+    def values(self, x):
+        """Feature values as the pass uses them: columns, then ``(x - center) / scale``."""
+        if self.columns is not None:
+            x = x[:, self.columns]
+        if self.center is not None:
+            x = x - self.center
+        if self.scale is not None:
+            x = x / self.scale
+        return np.ascontiguousarray(x, dtype=np.float64)
+
+
+@dataclass
+class ScreeningResult:
+    """What :class:`ScreeningPass` gathers.
+
+    Attributes
+    ----------
+    diagonal : list of DiagonalMoments
+        Per state (empty moments for a state without frames).
+    segment_counts : ndarray of shape (n_segments, n_states), int64
+        Frames of each state in each segment, as read.
+    lagged : dict of (int, int) to DiagonalLaggedMoments, or None
+        Per run (segment, state) with pairs, at the segment's lag; None when
+        no lags were given.
+    min_box_height : float or None
+        Smallest height of any frame's periodic box (nm, of the reduced box,
+        :func:`cvdesign.geometry.box_heights`); None without a box.
+    """
+
+    diagonal: list
+    segment_counts: np.ndarray
+    lagged: dict | None
+    min_box_height: float | None
+
+
+class ScreeningPass(FeaturePass):
+    """Per-state diagonal moments, frame counts, per-run lagged diagonal moments, box height.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    lags : int or dict of int to int, default=None
+        Lag in frames (one for every segment, or per segment index; a segment
+        missing or None gets no pairs); None: no lagged statistics.
+    shift : array-like of shape (n_features,), default=None
+        Fixed shift of the lagged sums (see
+        :func:`cvdesign.passes.reference_features`); zeros when None.
+    columns, center, scale : optional
+        As in every pass of this module.
+    """
+
+    def __init__(self, featurizer, *, lags=None, shift=None, columns=None, center=None,
+                 scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.lags = lags
+        self.shift = np.zeros(self.n_features) if shift is None else \
+            np.asarray(shift, dtype=np.float64)
+
+    def halo(self, segment_index):
+        return _lag_halo(self.lags, segment_index)
+
+    def map(self, leaf):
+        x = self.values(leaf.x)
+        states = leaf.states
+        diag, counts, lagged = {}, {}, {}
+        lag = _lag_of(self.lags, leaf.segment)
+        if lag is not None:
+            i, j = leaf.pairs(lag)
+            xt = self.values(leaf.window_x[j])
+        for (s,), rows in group_rows(states):
+            diag[s] = DiagonalMoments.from_data(x[rows])
+            counts[(leaf.segment, s)] = int(rows.size)
+            if lag is not None:
+                sel = states[i] == s
+                if sel.any():
+                    m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
+                    lagged[(leaf.segment, s)] = m.add_pairs(x[i[sel]], xt[sel])
+        box = leaf.box
+        min_box = None if box is None else float(box_heights(box.astype(np.float64)).min())
+        return {"diag": diag, "counts": counts, "lagged": lagged, "min_box": min_box}
+
+    def merge(self, a, b):
+        boxes = [v for v in (a["min_box"], b["min_box"]) if v is not None]
+        return {"diag": merge_keyed(a["diag"], b["diag"]),
+                "counts": merge_keyed(a["counts"], b["counts"]),
+                "lagged": merge_keyed(a["lagged"], b["lagged"]),
+                "min_box": min(boxes) if boxes else None}
+
+    def finish(self, partial, plan):
+        partial = partial or {"diag": {}, "counts": {}, "lagged": {}, "min_box": None}
+        counts = np.zeros((plan.n_segments, plan.n_states), dtype=np.int64)
+        for (si, s), n in partial["counts"].items():
+            counts[si, s] = n
+        diag = [partial["diag"].get(s, DiagonalMoments(self.n_features))
+                for s in range(plan.n_states)]
+        lagged = None if self.lags is None else dict(sorted(partial["lagged"].items()))
+        return ScreeningResult(diag, counts, lagged, partial["min_box"])
+
+
+class FoldMomentsPass(FeaturePass):
+    """Full moments of some features per (state, fold).
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    folds : Folds, default=None
+        None: one fold.
+    columns, center, scale : optional
+
+    The result is ``moments[state][fold]``, a :class:`~cvdesign.moments.Moments`
+    each (empty where a state has no frame in a fold).
+    """
+
+    def __init__(self, featurizer, folds=None, *, columns=None, center=None, scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.folds = folds
+
+    def map(self, leaf):
+        x = self.values(leaf.x)
+        keys = frame_keys(leaf.layout, leaf.frames, folds=self.folds)
+        return {key: Moments.from_data(x[rows]) for key, rows in group_rows(keys.states, keys.fold)}
+
+    def merge(self, a, b):
+        return merge_keyed(a, b)
+
+    def finish(self, partial, plan):
+        partial = partial or {}
+        n_folds = 1 if self.folds is None else self.folds.n_folds
+        return [[partial.get((s, k), Moments(self.n_features)) for k in range(n_folds)]
+                for s in range(plan.n_states)]
+
+
+@dataclass
+class LaggedResult:
+    """Lagged moments of every run, from :class:`LaggedPass`.
+
+    Attributes
+    ----------
+    runs : dict of (int, int, int) to LaggedMoments or DiagonalLaggedMoments
+        Per (segment, state, fold) with pairs, at the segment's lag (``lag`` set).
+    n_states, n_folds, n_features : int
+    shift : ndarray
+    diagonal : bool
+    """
+
+    runs: dict
+    n_states: int
+    n_folds: int
+    n_features: int
+    shift: np.ndarray
+    diagonal: bool
+
+    def merged(self, select=None):
+        """Runs for which ``select(segment, state, fold)`` is true (all when None), merged.
+
+        Merged in a balanced tree in key order; ``lag`` is None (runs may have
+        different lags in frames). Empty moments when no run is selected.
+        """
+        items = [m for key, m in sorted(self.runs.items()) if select is None or select(*key)]
+        return _merge_lagged(items, self.n_features, self.shift, self.diagonal)
+
+    def by_fold(self):
+        """Per fold, every state and segment merged: list of length `n_folds`."""
+        return [self.merged(lambda si, s, k, f=f: k == f) for f in range(self.n_folds)]
+
+    def by_state_fold(self):
+        """``[state][fold]``, segments merged."""
+        return [[self.merged(lambda si, s2, k, s=s, f=f: s2 == s and k == f)
+                 for f in range(self.n_folds)] for s in range(self.n_states)]
+
+    def by_run(self):
+        """Per (segment, state), folds merged, keeping the segment's lag."""
+        out = {}
+        for (si, s, _), m in sorted(self.runs.items()):
+            out.setdefault((si, s), []).append(m)
+        return {key: merge_all(items) for key, items in out.items()}
+
+
+class LaggedPass(FeaturePass):
+    """Lagged moments per run (segment, state, fold) at per-segment lags.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    lags : int or dict of int to int
+        Lag in frames, for every segment or per segment index (a segment
+        missing or None contributes no pairs).
+    shift : array-like of shape (n_features,), default=None
+        Fixed shift of the sums; zeros when None.
+    folds : Folds, default=None
+        None: one fold.
+    within_fold : bool, default=True
+        A pair counts only when both frames are in the same fold (no pair
+        straddles a held-out boundary); False: the pair belongs to the fold
+        of its first frame.
+    diagonal : bool, default=False
+        :class:`~cvdesign.moments.DiagonalLaggedMoments` instead of full matrices.
+    columns, center, scale : optional
+
+    Returns a :class:`LaggedResult` from :func:`~cvdesign.passes.run_pass`.
+    """
+
+    def __init__(self, featurizer, lags, *, shift=None, folds=None, within_fold=True,
+                 diagonal=False, columns=None, center=None, scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.lags = lags
+        self.shift = np.zeros(self.n_features) if shift is None else \
+            np.asarray(shift, dtype=np.float64)
+        self.folds = folds
+        self.within_fold = bool(within_fold)
+        self.diagonal = bool(diagonal)
+
+    def halo(self, segment_index):
+        return _lag_halo(self.lags, segment_index)
+
+    def map(self, leaf):
+        lag = _lag_of(self.lags, leaf.segment)
+        if lag is None:
+            return None
+        i, j = leaf.pairs(lag)
+        if i.size == 0:
+            return None
+        first = frame_keys(leaf.layout, leaf.frames[i], folds=self.folds)
+        if self.folds is not None and self.within_fold:
+            second = frame_keys(leaf.layout, leaf.window_frames[j], folds=self.folds)
+            keep = first.fold == second.fold
+            i, j = i[keep], j[keep]
+            first = frame_keys(leaf.layout, leaf.frames[i], folds=self.folds)
+        x0 = self.values(leaf.x[i])
+        xt = self.values(leaf.window_x[j])
+        cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
+        out = {}
+        for (s, k), rows in group_rows(first.states, first.fold):
+            m = cls(self.n_features, shift=self.shift, lag=lag)
+            out[(leaf.segment, s, k)] = m.add_pairs(x0[rows], xt[rows])
+        return out
+
+    def merge(self, a, b):
+        return merge_keyed(a, b)
+
+    def finish(self, partial, plan):
+        return LaggedResult(dict(sorted((partial or {}).items())), plan.n_states,
+                            1 if self.folds is None else self.folds.n_folds, self.n_features,
+                            self.shift, self.diagonal)
+
+
+class HistogramPass(FeaturePass):
+    """Per-state histograms of features on fixed bins (exact counts: no tree needed).
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    low, high : array-like of shape (n_features,)
+        Range of each feature (after columns/center/scale); values outside
+        fall into the edge bins.
+    n_bins : int, default=50
+    columns, center, scale : optional
+
+    Returns a :class:`~cvdesign.scoring.Histograms`.
+    """
+
+    exact = True
+
+    def __init__(self, featurizer, low, high, *, n_bins=50, columns=None, center=None,
+                 scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.low = np.asarray(low, dtype=np.float64)
+        self.high = np.asarray(high, dtype=np.float64)
+        self.n_bins = int(n_bins)
+
+    def _empty(self, n_states):
+        return Histograms(self.low, self.high, n_states=n_states, n_bins=self.n_bins)
+
+    def accumulate(self, acc, leaf):
+        acc = self._empty(leaf.n_states) if acc is None else acc
+        acc.add(self.values(leaf.x), leaf.states)
+        return acc
+
+    def map(self, leaf):
+        return self.accumulate(None, leaf)
+
+    def merge(self, a, b):
+        return a.merge(b)
+
+    def finish(self, partial, plan):
+        return self._empty(plan.n_states) if partial is None else partial
+
+
+class BlockPass(FeaturePass):
+    """Per-(state, fold, segment, bootstrap block) statistics for the block bootstrap.
+
+    A block is ``rank // block_frames`` within (segment, state, fold)
+    (:func:`~cvdesign.passes.keys.frame_keys`). Each block gets a tuple
+    ``(Moments or None, LaggedMoments or None, ArraySum or None)``.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    folds : Folds, default=None
+        None: one fold.
+    block_frames : int, default=None
+        Block length in frames; None: one block per (segment, state, fold).
+    moments : bool, default=True
+        Keep full moments of each block.
+    lags : int or dict of int to int, default=None
+        Lag in frames (per segment); None: no lagged moments.
+    lag_shift : array-like of shape (n_features,), default=None
+        Shift of the lagged sums; zeros when None.
+    pairs_within_block : bool, default=True
+        A pair counts only when both frames are in the same block (as the
+        pipeline's held-out blocks); False: a pair belongs to the block of
+        its first frame (as the score card's blocks). Pairs never straddle
+        folds.
+    sums : callable, default=None
+        ``sums(values, key) -> dict of name -> ndarray`` with ``values`` the
+        block's rows in this leaf and ``key = (state, fold, segment,
+        block)``: additive sums kept as an :class:`~cvdesign.bootstrap.ArraySum`
+        (e.g. histogram counts of a projection). Must pickle (a module-level
+        function or object).
+    columns, center, scale : optional
+
+    The result is ``{(state, fold): [(Moments, LaggedMoments, ArraySum), ...]}``,
+    the blocks of each group in (segment, block) order.
+    """
+
+    def __init__(self, featurizer, *, folds=None, block_frames=None, moments=True, lags=None,
+                 lag_shift=None, pairs_within_block=True, sums=None, columns=None,
+                 center=None, scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.folds = folds
+        self.block_frames = None if block_frames is None else int(block_frames)
+        self.moments = bool(moments)
+        self.lags = lags
+        self.lag_shift = np.zeros(self.n_features) if lag_shift is None else \
+            np.asarray(lag_shift, dtype=np.float64)
+        self.pairs_within_block = bool(pairs_within_block)
+        self.sums = sums
+
+    def halo(self, segment_index):
+        return _lag_halo(self.lags, segment_index)
+
+    def _keys(self, leaf, frames):
+        return frame_keys(leaf.layout, frames, folds=self.folds, block_frames=self.block_frames)
+
+    def map(self, leaf):
+        x = self.values(leaf.x)
+        keys = self._keys(leaf, leaf.frames)
+        si = leaf.segment
+        out = {}
+        for (s, k, b), rows in group_rows(keys.states, keys.fold, keys.block):
+            key = (s, k, si, b)
+            m = Moments.from_data(x[rows]) if self.moments else None
+            extra = None
+            if self.sums is not None:
+                extra = ArraySum(**self.sums(x[rows], key))
+            out[key] = (m, None, extra)
+        lag = _lag_of(self.lags, si)
+        if lag is not None:
+            i, j = leaf.pairs(lag)
+            first = frame_keys(leaf.layout, leaf.frames[i], folds=self.folds,
+                               block_frames=self.block_frames)
+            second = self._keys(leaf, leaf.window_frames[j])
+            keep = first.fold == second.fold
+            if self.pairs_within_block:
+                keep &= first.block == second.block
+            i, j = i[keep], j[keep]
+            x0, xt = x[i], self.values(leaf.window_x[j])
+            for (s, k, b), rows in group_rows(first.states[keep], first.fold[keep],
+                                           first.block[keep]):
+                m = LaggedMoments(self.n_features, shift=self.lag_shift)
+                m.add_pairs(x0[rows], xt[rows])
+                a, _, c = out[(s, k, si, b)]
+                out[(s, k, si, b)] = (a, m, c)
+        return out
+
+    def merge(self, a, b):
+        return merge_keyed(a, b)
+
+    def finish(self, partial, plan):
+        out = {}
+        for (s, k, si, b), (m, lm, extra) in sorted((partial or {}).items()):
+            if self.lags is not None and lm is None:
+                lm = LaggedMoments(self.n_features, shift=self.lag_shift)
+            out.setdefault((s, k), []).append((m, lm, extra))
+        return out

@@ -1,0 +1,206 @@
+"""Executors of the pass engine (issue 10): the same bytes serially, in local processes and on
+Dask; a clear error when the scheduler cannot be reached or a worker dies."""
+
+import os
+import socket
+import tempfile
+from pathlib import Path
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign import InputError, Source
+from cvdesign.errors import SchedulerUnreachableError, WorkerLostError
+from cvdesign.parallel import DaskExecutor, ProcessExecutor, SerialExecutor, as_executor
+from cvdesign.passes import (BlockPass, CoordinateFeaturizer, Featurizer, FoldMomentsPass,
+                             Folds, HistogramPass, LaggedPass, PoolFeaturizer, ScreeningPass,
+                             leaf_frames_for, plan_tasks, reference_features, run_pass)
+from cvdesign.pool import build_pool
+
+
+def block_sums(z, key):
+    """Additive block sums (module level, so that worker processes can load it)."""
+    return {"n": np.array([z.shape[0]], dtype=np.float64), "s2": (z * z).sum(axis=0)}
+
+
+class DyingFeaturizer(Featurizer):
+    """A featurizer whose worker process exits on its second chunk: a worker dying mid-run."""
+
+    def __init__(self, inner):
+        self.inner = inner
+        self.atom_indices = inner.atom_indices
+        self.n_features = inner.n_features
+
+    def __call__(self, trajectory):
+        calls = int(os.environ.get("CVDESIGN_TEST_CALLS", "0")) + 1
+        os.environ["CVDESIGN_TEST_CALLS"] = str(calls)
+        if calls >= 2:
+            os._exit(3)
+        return self.inner(trajectory)
+
+
+def _source(demo_files, frames=None):
+    top, states = demo_files
+    src = Source(top)
+    for name, files in states.items():
+        for f in files[:2]:
+            src.add(f, name, frames=frames)
+    return src
+
+
+def _passes(src):
+    """Every concrete pass, sharing the demo pool's featurizer; and the fold assignment."""
+    featurizer = PoolFeaturizer(build_pool(src))
+    plan = plan_tasks(src, leaf_frames=leaf_frames_for(featurizer.n_features))  # run_pass's
+    shift = reference_features(plan, featurizer)
+    folds = Folds.plan(plan.layouts, 4)
+    p = featurizer.n_features
+    cols = np.arange(0, p, 3)
+    lags = {0: 5, 1: 5, 2: 3, 3: 3}
+    return plan, (ScreeningPass(featurizer, lags=lags, shift=shift),
+                  FoldMomentsPass(featurizer, folds, columns=cols),
+                  LaggedPass(featurizer, lags, shift=shift[cols], folds=folds, columns=cols),
+                  HistogramPass(featurizer, np.full(p, -1.0), np.full(p, 2.0), n_bins=20),
+                  BlockPass(featurizer, folds=folds, block_frames=40, lags=lags, columns=cols,
+                            center=shift[cols], sums=block_sums))
+
+
+def _leftover_contexts():
+    return sorted(Path(tempfile.gettempdir()).glob("cvdesign-pass-*"))
+
+
+@pytest.fixture(scope="module")
+def demo_reference(demo_files):
+    """The demo's passes run serially in one task per segment."""
+    src = _source(demo_files)
+    plan, passes = _passes(src)
+    return src, plan, passes, run_pass(passes, src, tasks=plan)
+
+
+@pytest.fixture(scope="module")
+def dask_threads():
+    """A Dask LocalCluster with two threaded workers (fast: no processes)."""
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                                  dashboard_address=":0") as cluster, \
+            distributed.Client(cluster) as client:
+        yield client
+
+
+def test_local_processes_give_the_bytes_of_the_serial_run(demo_reference, assert_same):
+    src, plan, passes, reference = demo_reference
+    before = _leftover_contexts()
+    with ProcessExecutor(2) as ex:
+        other = run_pass(passes, src, executor=ex,
+                         tasks=plan.split(frames_per_task=640), chunk_frames=97)
+        again = run_pass(passes, src, executor=ex)  # default split: 4 tasks per worker
+    assert_same(reference, other)
+    assert_same(reference, again)
+    assert _leftover_contexts() == before
+
+
+def test_dask_threaded_cluster_gives_the_bytes_of_the_serial_run(demo_reference, dask_threads,
+                                                                 assert_same):
+    src, plan, passes, reference = demo_reference
+    other = run_pass(passes, src, executor=DaskExecutor(dask_threads),
+                     tasks=plan.split(n_tasks=7), chunk_frames=50)
+    assert_same(reference, other)
+    # a client passed as it is works too (wrapped by as_executor)
+    assert_same(reference, run_pass(passes, src, executor=dask_threads, tasks=plan))
+
+
+def test_dask_worker_processes_give_the_bytes_of_the_serial_run(demo_files, assert_same):
+    distributed = pytest.importorskip("distributed")
+    src = _source(demo_files, frames=(0, 300))
+    plan, passes = _passes(src)
+    reference = run_pass(passes, src, tasks=plan)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=":0") as cluster, \
+            distributed.Client(cluster) as client:
+        other = run_pass(passes, src, executor=DaskExecutor(client),
+                         tasks=plan.split(frames_per_task=256))
+    assert_same(reference, other)
+
+
+def test_bad_input_found_by_a_dask_task_reaches_the_caller_unchanged(dask_threads, tmp_path):
+    top = md.Topology()
+    res = top.add_residue("TOY", top.add_chain())
+    for i in range(3):
+        top.add_atom(f"C{i}", md.element.carbon, res)
+    xyz = np.random.default_rng(4).normal(2.0, 0.3, size=(40, 3, 3)).astype(np.float32)
+    xyz[33, 1, 2] = np.inf
+    md.Trajectory(xyz, top).save_dcd(str(tmp_path / "run.dcd"))
+    src = Source(top)
+    src.add(str(tmp_path / "run.dcd"), "a")
+    with pytest.raises(InputError, match=r"trajectory '.*run.dcd' frame 33 has a NaN or "
+                                         r"infinite coordinate for atom 1 \(TOY0-C1\)"):
+        run_pass(ScreeningPass(CoordinateFeaturizer([0, 1])), src,
+                 executor=DaskExecutor(dask_threads),
+                 tasks=plan_tasks(src, leaf_frames=8, frames_per_task=8))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run.dcd"]
+
+
+def test_serial_executor_runs_in_order_and_as_executor_maps_its_arguments():
+    assert list(SerialExecutor().run(lambda ctx, x: ctx + x, 1, [1, 2, 3])) == \
+        [(0, 2), (1, 3), (2, 4)]
+    assert isinstance(as_executor(None), SerialExecutor)
+    ex = as_executor(2)
+    assert isinstance(ex, ProcessExecutor) and ex.n_workers == 2
+    with pytest.raises(ValueError, match=r"n_workers=0 must be a positive number of processes"):
+        ProcessExecutor(0)
+
+
+def _free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_unreachable_scheduler_gives_a_clear_error(demo_files, tmp_path):
+    pytest.importorskip("distributed")
+    address = f"tcp://127.0.0.1:{_free_port()}"
+    with pytest.raises(SchedulerUnreachableError,
+                       match=rf"cannot reach the Dask scheduler at '{address}' within 1 s .*; "
+                             r"check the address \(tcp://HOST:PORT\), that the scheduler is "
+                             "running"):
+        DaskExecutor(address, connect_timeout=1)
+    src = _source(demo_files, frames=(0, 50))
+    featurizer = PoolFeaturizer(build_pool(src))
+    with pytest.raises(SchedulerUnreachableError, match="cannot reach the Dask scheduler"):
+        run_pass(ScreeningPass(featurizer), src, executor=DaskExecutor(address,
+                                                                        connect_timeout=1))
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_local_worker_process_that_dies_mid_run_gives_a_clear_error(demo_files, tmp_path):
+    src = _source(demo_files, frames=(0, 400))
+    dying = DyingFeaturizer(PoolFeaturizer(build_pool(src)))
+    before = _leftover_contexts()
+    with ProcessExecutor(2) as ex, pytest.raises(
+            WorkerLostError, match=r"a worker process died while running task \d+: frames "
+                                   r"\d+-\d+ of '.*\.xtc' \(killed, out of memory, or a crash "
+                                   r"in compiled code\); the run was stopped and nothing was "
+                                   "written"):
+        run_pass(ScreeningPass(dying), src, executor=ex,
+                 tasks=plan_tasks(src, leaf_frames=32, frames_per_task=64), chunk_frames=16)
+    assert _leftover_contexts() == before
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_dask_worker_that_dies_mid_run_gives_a_clear_error(demo_files, tmp_path):
+    distributed = pytest.importorskip("distributed")
+    import dask
+
+    src = _source(demo_files, frames=(0, 400))
+    dying = DyingFeaturizer(PoolFeaturizer(build_pool(src)))
+    # Dask retries a task whose worker died; with no retries allowed it gives up at once
+    with dask.config.set({"distributed.scheduler.allowed-failures": 0}), \
+            distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
+                                     dashboard_address=":0") as cluster, \
+            distributed.Client(cluster) as client, pytest.raises(
+                WorkerLostError, match=r"Dask workers died while running task \d+: frames "
+                                       r"\d+-\d+ of '.*\.xtc' \(killed, out of memory"):
+        run_pass(ScreeningPass(dying), src, executor=DaskExecutor(client),
+                 tasks=plan_tasks(src, leaf_frames=32, frames_per_task=64), chunk_frames=16)
+    assert list(tmp_path.iterdir()) == []
