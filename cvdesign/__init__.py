@@ -10,23 +10,16 @@ The main entry points:
   (and from mergeable moments); :func:`vamp2_score`.
 """
 
-__version__ = "0.1.0"
-
-from .errors import CVDesignError, InputError, SpecError, TopologyMismatchError  # noqa: E402
-from .estimators import HLDA, LDA, TICA, timescales_from_eigenvalues  # noqa: E402
-from .explore import Exploration, propose_states  # noqa: E402
-from .moments import (  # noqa: E402
-    DiagonalLaggedMoments,
-    DiagonalMoments,
-    LagAccumulator,
-    LaggedMoments,
-    Moments,
-)
-from .pipeline import Suggestions, suggest  # noqa: E402
-from .pool import Descriptor, Pool, build_pool  # noqa: E402
-from .source import Source  # noqa: E402
-from .spec import Spec, load_spec  # noqa: E402
-from .vamp import vamp2_score  # noqa: E402
+from ._version import __version__
+from .errors import CVDesignError, InputError, SpecError, TopologyMismatchError
+from .fit import HLDA, LDA, TICA, timescales_from_eigenvalues, vamp2_score
+from .io.source import Source
+from .pipeline.explore import Exploration, propose_states
+from .pipeline.suggest import Suggestions, suggest
+from .pool import Descriptor, Pool, build_pool
+from .spec import Spec, load_spec
+from .stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
+                            Moments)
 
 __all__ = [
     "__version__",

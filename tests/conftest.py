@@ -7,7 +7,7 @@ from pathlib import Path
 import pytest
 
 from cvdesign import Source, suggest
-from cvdesign.cli import demo_data_dir
+from cvdesign.io.demo import demo_data_dir
 
 
 @pytest.fixture(scope="session")

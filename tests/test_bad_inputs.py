@@ -728,11 +728,11 @@ class FunnelCtx:
             self.monkeypatch.setitem(sys.modules, name, None)
 
     def failing_plot(self):
-        import cvdesign.funnel
+        import cvdesign.bias.funnel
 
         def fail(result, path):
             raise OSError(28, "No space left on device")
-        self.monkeypatch.setattr(cvdesign.funnel, "plot_funnel", fail)
+        self.monkeypatch.setattr(cvdesign.bias.funnel, "plot_funnel", fail)
 
 
 def _no_mpl(c):

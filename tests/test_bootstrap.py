@@ -5,9 +5,9 @@ import warnings
 import numpy as np
 import pytest
 
-from cvdesign.bootstrap import block_bootstrap, merge_blocks, percentile_interval
-from cvdesign.moments import Moments
-from cvdesign.scoring import fisher_ratio
+from cvdesign.stats.bootstrap import block_bootstrap, merge_blocks, percentile_interval
+from cvdesign.stats.moments import Moments
+from cvdesign.score.univariate import fisher_ratio
 
 
 def _ar1_blocks(rng, mean, n_blocks, block, phi):

@@ -1,4 +1,4 @@
-"""Score-card intervals: per-block sums (cvdesign.cardboot), their bootstrap, and the
+"""Score-card intervals: per-block sums (cvdesign.score.card), their bootstrap, and the
 pipeline's new interval columns.
 
 References for checks against outside knowledge:
@@ -13,7 +13,7 @@ References for checks against outside knowledge:
   (textbook time-series algebra, e.g. Box and Jenkins, *Time Series Analysis*,
   1970; from memory).
 * Overlapping coefficient and Fisher ratio conventions: the project's own
-  ``cvdesign.scoring`` (the reference implementation the card must reproduce).
+  ``cvdesign.score.univariate`` (the reference implementation the card must reproduce).
 """
 
 import csv
@@ -24,14 +24,14 @@ import numpy as np
 import pytest
 from scipy.signal import lfilter
 
-import cvdesign.cardboot
-import cvdesign.pipeline
+import cvdesign.score.card
+import cvdesign.pipeline.suggest
 from cvdesign import Source, suggest
-from cvdesign.bootstrap import ArraySum, block_bootstrap, merge_blocks
-from cvdesign.cardboot import (MAX_CARD_BLOCKS, MIN_CARD_BLOCKS, CardBlocks, card_intervals,
+from cvdesign.stats.bootstrap import ArraySum, block_bootstrap, merge_blocks
+from cvdesign.score.card import (MAX_CARD_BLOCKS, MIN_CARD_BLOCKS, CardBlocks, card_intervals,
                                card_statistics, integrated_time_interval, plan_card_blocks)
-from cvdesign.pipeline import integrated_time
-from cvdesign.scoring import Histograms, fisher_ratio, overlap_coefficient
+from cvdesign.pipeline.suggest import integrated_time
+from cvdesign.score.univariate import Histograms, fisher_ratio, overlap_coefficient
 
 CARD_COLUMNS = ("fisher_ratio", "overlap", "autocorrelation", "autocorrelation_within_runs")
 
@@ -124,7 +124,7 @@ def _make_card(runs, center):
 
 def test_card_statistics_on_all_blocks_reproduce_numpy():
     """Merged over all blocks, the card's sums give exactly the statistics computed
-    directly with numpy / cvdesign.scoring: Fisher ratio (per-state np.mean and np.var),
+    directly with numpy / cvdesign.score.univariate: Fisher ratio (per-state np.mean and np.var),
     overlap (Histograms on the same bins), the pooled reversible autocorrelation from
     every lagged pair that spans no run boundary or gap, and the within-run
     autocorrelation (each run about its own pair mean; sum of lagged covariances over
@@ -184,7 +184,7 @@ def test_card_estimate_equals_the_score_cards_own_series_estimate():
     center = np.array([1.0, 10.0, 2.5])
     card = _make_card(runs, center)
     _feed(card, runs, "random", np.random.default_rng(8))
-    series = cvdesign.pipeline._Series(3, center.copy(), diagonal=True)
+    series = cvdesign.pipeline.suggest._Series(3, center.copy(), diagonal=True)
     for (si, s), (frames, x) in runs.items():
         for a in range(0, frames.size, 37):
             series.feed((si, s), frames[a:a + 37], x[a:a + 37], _LAGS[si])
@@ -488,15 +488,15 @@ def test_memory_budget_gives_intervals_to_the_best_descriptors_only(demo_files, 
     src = Source(top)
     for state, files in states.items():
         src.add(files[0], state, frames=(0, 600))
-    monkeypatch.setattr(cvdesign.cardboot, "CARD_BUDGET_BYTES", 400_000)
+    monkeypatch.setattr(cvdesign.score.card, "CARD_BUDGET_BYTES", 400_000)
     plans = []
-    real_plan = cvdesign.pipeline.plan_card_blocks
+    real_plan = cvdesign.pipeline.suggest.plan_card_blocks
 
     def spy(*args, **kwargs):
         plans.append(real_plan(*args, **kwargs))
         return plans[-1]
 
-    monkeypatch.setattr(cvdesign.pipeline, "plan_card_blocks", spy)
+    monkeypatch.setattr(cvdesign.pipeline.suggest, "plan_card_blocks", spy)
     res = suggest(src, n_bootstrap=20, max_terms=1, n_suggestions=1)
     note = next(n for n in res.notes if n.startswith("score card:"))
     m = re.search(r"the best (\d+) of (\d+) descriptors", note)

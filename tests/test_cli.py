@@ -70,7 +70,7 @@ def test_installed_package_ships_the_demo_data():
     names = {str(f).replace("\\", "/") for f in dist.files or []}
     assert "cvdesign/demo_data/manifest.json" in names
     assert "cvdesign/demo_data/latch.pdb" in names
-    assert "cvdesign/schema/spec-v1.json" in names
+    assert "cvdesign/spec/schema/spec-v1.json" in names
 
 
 def test_demo_command_runs_and_points_at_the_slow_dihedral(tmp_path, capsys):

@@ -2,8 +2,8 @@
 
 import numpy as np
 
-from cvdesign.combine import FoldMoments, greedy_search, heldout_score, rank_combinations
-from cvdesign.moments import Moments
+from cvdesign.search import FoldMoments, greedy_search, heldout_score, rank_combinations
+from cvdesign.stats.moments import Moments
 
 
 def _folds(rng, means, n_folds=3, n=400, cov=None):

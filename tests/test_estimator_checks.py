@@ -6,7 +6,7 @@ array-API check is skipped by scikit-learn itself unless SCIPY_ARRAY_API is set.
 
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from cvdesign.estimators import HLDA, LDA, TICA
+from cvdesign.fit import HLDA, LDA, TICA
 
 
 @parametrize_with_checks([LDA(), HLDA(), HLDA(shrinkage=0.1), TICA(),

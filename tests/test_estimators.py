@@ -5,8 +5,8 @@ import pytest
 from sklearn.datasets import load_iris
 from sklearn.discriminant_analysis import LinearDiscriminantAnalysis
 
-from cvdesign.estimators import LDA, discriminant_directions, fix_signs, rayleigh_quotient
-from cvdesign.moments import Moments
+from cvdesign.fit import LDA, discriminant_directions, fix_signs, rayleigh_quotient
+from cvdesign.stats.moments import Moments
 
 
 def _cosine(a, b):

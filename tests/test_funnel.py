@@ -1,4 +1,4 @@
-"""Tests of cvdesign.funnel: geometry, sizing margins, energy and gradient."""
+"""Tests of cvdesign.bias.funnel: geometry, sizing margins, energy and gradient."""
 
 import json
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from cvdesign.errors import InputError
-from cvdesign.funnel import (CAUTION, SHAPE_KEYS, FunnelStats, funnel_axis, funnel_energy,
+from cvdesign.bias.funnel import (CAUTION, SHAPE_KEYS, FunnelStats, funnel_axis, funnel_energy,
                              funnel_radius, funnel_reach, plot_funnel, project_on_axis,
                              size_funnel)
 

@@ -8,7 +8,7 @@ import pytest
 
 from cvdesign import load_spec
 from cvdesign.cli import main
-from cvdesign.funnel import SHAPE_KEYS, align_to_reference_pocket, funnel_energy
+from cvdesign.bias.funnel import SHAPE_KEYS, align_to_reference_pocket, funnel_energy
 from cvdesign.testbed.host_guest import write_host_guest
 
 

@@ -13,7 +13,7 @@ from scipy.spatial.transform import Rotation
 
 from cvdesign import Spec
 from cvdesign.errors import InputError
-from cvdesign.funnel import SHAPE_KEYS, align_to_reference_pocket, size_funnel
+from cvdesign.bias.funnel import SHAPE_KEYS, align_to_reference_pocket, size_funnel
 from cvdesign.geometry import (box_heights, center_displacement, kabsch_rotation,
                                whole_groups)
 

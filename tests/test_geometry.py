@@ -692,7 +692,7 @@ def test_coordination_by_hand_and_across_the_boundary():
 
 
 def test_coordination_in_frame_chunks_equals_one_pass(monkeypatch):
-    import cvdesign.geometry as geometry
+    import cvdesign.geometry.internal as geometry
 
     rng = np.random.RandomState(17)
     xyz = rng.uniform(0, 2, size=(7, 12, 3))

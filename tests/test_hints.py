@@ -1,4 +1,4 @@
-"""Tests of cvdesign.hints: kernels, bias factor, fill volume and fill times, suggestions, text."""
+"""Tests of cvdesign.bias.hints: kernels, bias factor, fill volume and fill times, suggestions, text."""
 
 import json
 import math
@@ -8,7 +8,7 @@ import pytest
 from scipy import integrate
 
 from cvdesign.errors import InputError
-from cvdesign.hints import (
+from cvdesign.bias.hints import (
     CAUTION,
     KB_KJ_MOL_K,
     MAX_GRID_BINS,

@@ -7,11 +7,11 @@ import json
 import mdtraj as md
 import pytest
 
-import cvdesign.hints
+import cvdesign.bias.hints
 from cvdesign import Source, Spec, suggest
 from cvdesign.cli import main
-from cvdesign.hints import suggest_hints
-from cvdesign.pipeline import _hints_for
+from cvdesign.bias.hints import suggest_hints
+from cvdesign.pipeline.suggest import _hints_for
 
 
 def test_specs_carry_hints_computed_from_the_data(demo_result):
@@ -221,8 +221,8 @@ def test_pipeline_records_a_frozen_cv_as_refused_hints():
 
 def test_pipeline_records_refused_hints_in_ranking_spec_and_notes(demo_dir, monkeypatch):
     # the real grid guard, with a maximum of one bin, refuses every suggestion's hints
-    monkeypatch.setattr(cvdesign.hints, "suggest_hints",
-                        functools.partial(cvdesign.hints.suggest_hints, max_grid_bins=1))
+    monkeypatch.setattr(cvdesign.bias.hints, "suggest_hints",
+                        functools.partial(cvdesign.bias.hints.suggest_hints, max_grid_bins=1))
     src = Source.from_states(demo_dir / "latch.pdb", {"closed": [demo_dir / "closed-1.xtc"],
                                                       "open": [demo_dir / "open-1.xtc"]})
     res = suggest(src, n_bootstrap=0, max_terms=1, n_suggestions=2)

@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from cvdesign.estimators import HLDA, LDA, discriminant_directions, rayleigh_quotient
-from cvdesign.moments import Moments
+from cvdesign.fit import HLDA, LDA, discriminant_directions, rayleigh_quotient
+from cvdesign.stats.moments import Moments
 
 # Two hand-chosen Gaussian states with different means and covariances: A is narrow
 # and B broad along y, where the means differ, so HLDA and LDA disagree markedly.
@@ -158,7 +158,7 @@ def test_bad_arguments_are_named():
 def test_two_state_solve_equals_the_first_generalized_eigenvector(within, shrinkage):
     # With two states S_b has rank one, so the eigenproblem's first direction is
     # S_w^-1 (mu_1 - mu_0) (Fisher 1936); the fast path must agree with the eigensolver.
-    from cvdesign.estimators import discriminant_directions, two_state_direction
+    from cvdesign.fit import discriminant_directions, two_state_direction
 
     rng = np.random.default_rng(41)
     for p in (1, 2, 5, 12):

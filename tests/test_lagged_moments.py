@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from cvdesign.moments import DiagonalLaggedMoments, LagAccumulator, LaggedMoments, merge_all
+from cvdesign.stats.moments import DiagonalLaggedMoments, LagAccumulator, LaggedMoments, merge_all
 
 
 def _pairs(series, lag, weights=None):

@@ -9,7 +9,7 @@ from sklearn.metrics import adjusted_rand_score
 
 from cvdesign import InputError, Source, suggest
 from cvdesign.cli import main
-from cvdesign.explore import MIN_MEMORY, MIN_SEPARATION, propose_states, state_kinetics
+from cvdesign.pipeline.explore import MIN_MEMORY, MIN_SEPARATION, propose_states, state_kinetics
 from cvdesign.testbed import LangevinBAOAB, count_transitions, two_wells, write_pdb
 
 

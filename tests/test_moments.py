@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from cvdesign.moments import DiagonalMoments, Moments, merge_all
+from cvdesign.stats.moments import DiagonalMoments, Moments, merge_all
 
 
 def _reference(x, w=None):

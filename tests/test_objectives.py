@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 
 from cvdesign import InputError, Source, suggest
-from cvdesign.explore import propose_states
-from cvdesign.moments import DiagonalLaggedMoments
-from cvdesign.pipeline import integrated_time
+from cvdesign.pipeline.explore import propose_states
+from cvdesign.stats.moments import DiagonalLaggedMoments
+from cvdesign.pipeline.suggest import integrated_time
 from cvdesign.testbed import write_two_wells
 
 

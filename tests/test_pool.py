@@ -6,7 +6,7 @@ import pytest
 
 from cvdesign.errors import InputError
 from cvdesign.pool import Descriptor, Pool, candidate_pairs, candidate_pool
-from cvdesign.source import select_atoms
+from cvdesign.io.source import select_atoms
 
 
 def _topology(n_heavy, bonds, *, hydrogens=(), water=False, ion=False):

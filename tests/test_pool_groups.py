@@ -17,7 +17,8 @@ import numpy as np
 import pytest
 
 from cvdesign import Source, Spec, suggest
-from cvdesign.cli import _ALLOWED_KINDS, build_parser
+from cvdesign.cli import build_parser
+from cvdesign.cli.commands import _ALLOWED_KINDS
 from cvdesign.errors import InputError
 from cvdesign.geometry import center_distance
 from cvdesign.pool import (KINDS, Descriptor, Pool, build_pool, candidate_pool,

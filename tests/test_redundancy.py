@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-from cvdesign.moments import Moments
-from cvdesign.redundancy import descriptor_correlation, redundancy_graph, representatives
+from cvdesign.stats.moments import Moments
+from cvdesign.score.redundancy import descriptor_correlation, redundancy_graph, representatives
 
 
 def test_exactly_correlated_descriptors_collapse_to_one_that_lists_the_other():

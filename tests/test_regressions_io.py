@@ -26,11 +26,11 @@ import numpy as np
 import pytest
 
 import cvdesign
-import cvdesign._io
+import cvdesign.io.atomic
 from cvdesign import InputError, Source, TopologyMismatchError, load_spec, suggest
 from cvdesign.cli import main
 from cvdesign.pool import Descriptor, Pool, build_pool, candidate_pairs, prefilter_pairs
-from cvdesign.source import select_atoms
+from cvdesign.io.source import select_atoms
 from cvdesign.spec import Spec
 
 #: mdtraj warns about the NaN / zero boxes these tests feed it on purpose.
@@ -536,7 +536,7 @@ def test_spec_against_a_topology_differing_only_in_an_unused_atom_names_the_resi
 
 # ---------------------------------------------------------------- 9. Suggestions.write
 class _OpenFailingOnThird:
-    """Stands in for ``open`` in cvdesign._io: the third file opened fails."""
+    """Stands in for ``open`` in cvdesign.io.atomic: the third file opened fails."""
 
     def __init__(self, exc):
         self.exc = exc
@@ -560,7 +560,7 @@ def test_write_failing_midway_leaves_no_output_and_no_temporary_directory(
         small_result, tmp_path, monkeypatch, exc, error, message):
     out = tmp_path / "out"
     fake = _OpenFailingOnThird(exc)
-    monkeypatch.setattr(cvdesign._io, "open", fake, raising=False)
+    monkeypatch.setattr(cvdesign.io.atomic, "open", fake, raising=False)
     with pytest.raises(error, match="^" + re.escape(message.format(out=out)) + "$"):
         small_result.write(out)
     assert fake.calls == 3 and len(fake.in_temp_at_failure) == 2  # failed midway
@@ -572,7 +572,7 @@ def test_write_with_force_failing_midway_keeps_the_previous_output(small_result,
     out = tmp_path / "out"
     small_result.write(out)
     before = {name: (out / name).read_bytes() for name in _listing(out)}
-    monkeypatch.setattr(cvdesign._io, "open", _OpenFailingOnThird(OSError(28, "No space left "
+    monkeypatch.setattr(cvdesign.io.atomic, "open", _OpenFailingOnThird(OSError(28, "No space left "
                                                                            "on device")),
                         raising=False)
     with pytest.raises(InputError, match="No space left on device"):
@@ -582,7 +582,7 @@ def test_write_with_force_failing_midway_keeps_the_previous_output(small_result,
 
 
 class _OsWithFailingRename:
-    """Stands in for the ``os`` module in cvdesign._io: renaming the new output fails."""
+    """Stands in for the ``os`` module in cvdesign.io.atomic: renaming the new output fails."""
 
     def __init__(self, prefix):
         self.prefix = prefix
@@ -601,7 +601,7 @@ def test_write_with_force_failing_at_the_final_rename_keeps_the_previous_output(
     out = tmp_path / "out"
     small_result.write(out)
     before = {name: (out / name).read_bytes() for name in _listing(out)}
-    monkeypatch.setattr(cvdesign._io, "os", _OsWithFailingRename(".out.tmp-"))
+    monkeypatch.setattr(cvdesign.io.atomic, "os", _OsWithFailingRename(".out.tmp-"))
     with pytest.raises(InputError, match="Input/output error"):
         small_result.write(out, force=True)
     assert _listing(tmp_path) == ["out"]

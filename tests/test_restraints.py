@@ -8,7 +8,7 @@ import pytest
 
 from cvdesign import Spec
 from cvdesign.errors import SpecError, TopologyMismatchError
-from cvdesign.funnel import funnel_radius
+from cvdesign.bias.funnel import funnel_radius
 
 N_ATOMS = 7
 LIGAND, POCKET = [5, 6], [0, 1, 2, 3]
@@ -191,7 +191,7 @@ def test_check_topology_names_a_restraint_atom_that_differs():
 
 
 def test_schema_restraint_fields_are_the_funnel_module_keys():
-    from cvdesign.funnel import SHAPE_KEYS
+    from cvdesign.bias.funnel import SHAPE_KEYS
     from cvdesign.spec import spec_schema
 
     restraint = spec_schema()["$defs"]["restraint"]

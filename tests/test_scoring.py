@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy.stats import norm
 
-from cvdesign.scoring import Histograms, fisher_ratio, overlap_coefficient
+from cvdesign.score.univariate import Histograms, fisher_ratio, overlap_coefficient
 
 
 def test_fisher_ratio_two_states_closed_form():

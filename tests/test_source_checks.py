@@ -8,8 +8,8 @@ import pytest
 
 from cvdesign import InputError, Source, suggest
 from cvdesign.cli import main
-from cvdesign.explore import propose_states
-from cvdesign.source import MAX_COORDINATE_NM
+from cvdesign.pipeline.explore import propose_states
+from cvdesign.io.source import MAX_COORDINATE_NM
 
 
 def _copy(src, dst, top, *, n_frames=300, time=None, bad=None):

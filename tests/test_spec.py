@@ -845,7 +845,7 @@ def test_a_periodic_cv_stores_its_period():
 
 
 def test_a_document_in_the_form_the_pipeline_writes_still_loads():
-    # the keys cvdesign.pipeline._spec_dict writes today: no period, periodic false,
+    # the keys cvdesign.pipeline.suggest._spec_dict writes today: no period, periodic false,
     # descriptors with atoms, residue hashes, provenance with parameters and segments
     top = peptide_topology()
     doc = make_spec(top).to_dict()

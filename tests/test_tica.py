@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-from cvdesign.estimators import TICA, timescales_from_eigenvalues
-from cvdesign.moments import DiagonalLaggedMoments, LaggedMoments, merge_all
+from cvdesign.fit import TICA, timescales_from_eigenvalues
+from cvdesign.stats.moments import DiagonalLaggedMoments, LaggedMoments, merge_all
 
 LAG = 5  # frames; the OU fixture has dt = 1 frame
 

@@ -3,9 +3,9 @@
 import numpy as np
 import pytest
 
-from cvdesign.estimators import TICA
-from cvdesign.moments import DiagonalLaggedMoments, LaggedMoments, merge_all
-from cvdesign.vamp import vamp2_score
+from cvdesign.fit import TICA
+from cvdesign.stats.moments import DiagonalLaggedMoments, LaggedMoments, merge_all
+from cvdesign.fit.vamp import vamp2_score
 
 LAG = 5  # frames
 

@@ -29,7 +29,7 @@ import mdtraj as md
 import numpy as np
 
 import cvdesign
-from cvdesign.cli import demo_data_dir
+from cvdesign.io.demo import demo_data_dir
 
 
 def main(out_dir, keep=True):

@@ -14,7 +14,7 @@ that is removed at the end). It takes about a minute on two CPU cores. The scrip
 3. builds, by hand, a spec for a poorly ranked descriptor (the last dihedral on
    the score card), to compare with;
 4. turns each spec into starting values for a well-tempered metadynamics bias
-   (`cvdesign.hints.spec_hints`) and runs the testbed's Langevin engine with
+   (`cvdesign.bias.hints.spec_hints`) and runs the testbed's Langevin engine with
    that bias, the forces coming from the spec's own evaluator
    (`Spec.evaluate(..., gradient=True)`), exactly as an engine would apply them;
 5. counts transitions between the two states in the same number of steps for
@@ -41,8 +41,8 @@ import mdtraj as md
 import numpy as np
 
 import cvdesign
-from cvdesign.cli import demo_data_dir
-from cvdesign.hints import spec_hints
+from cvdesign.io.demo import demo_data_dir
+from cvdesign.bias.hints import spec_hints
 from cvdesign.testbed import count_transitions, latch
 from cvdesign.testbed.metad import (WellTemperedBias, run_biased, softened_delta_f, spec_cv,
                                     well_delta_f)

@@ -23,7 +23,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ..errors import InputError
-from ..source import Source, check_label_count
+from ..io.source import Source, check_label_count
 from .keys import SegmentLayout
 from .read import file_frames, read_chunks
 from .tree import TreeReducer, merge_optional
@@ -164,7 +164,7 @@ class Pass:
     Subclasses set :attr:`featurizer` and implement :meth:`map`, :meth:`merge`
     and :meth:`finish`; a pass with lagged pairs overrides :meth:`halo`.
     Partials are plain picklable objects (dicts of
-    :class:`~cvdesign.moments.Moments` and the like); ``merge(a, b)`` must
+    :class:`~cvdesign.stats.moments.Moments` and the like); ``merge(a, b)`` must
     return a new object and leave its inputs unchanged, and ``map`` may return
     None for "nothing" (None merges as the identity).
 
@@ -445,7 +445,7 @@ def plan_tasks(source, *, leaf_frames=LEAF_FRAMES, n_tasks=None, frames_per_task
 
     Parameters
     ----------
-    source : cvdesign.source.Source
+    source : cvdesign.io.source.Source
     leaf_frames : int, default=LEAF_FRAMES
         Frames per leaf (aligned to absolute frame numbers). Results depend on
         it; see :func:`leaf_frames_for`.
@@ -605,7 +605,7 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
     pass_ : Pass or sequence of Pass
         Several passes must share one featurizer (the same object); the
         frames are read and featurized once for all of them.
-    source : cvdesign.source.Source
+    source : cvdesign.io.source.Source
     executor : Executor, int, dask.distributed.Client or str, default=None
         Where tasks run (:mod:`cvdesign.parallel`; see
         :func:`cvdesign.parallel.as_executor`): None in this process, an int

@@ -38,7 +38,7 @@ class SegmentLayout:
     """Where the frames of one segment are and which state each belongs to.
 
     Built by :func:`cvdesign.passes.plan_tasks` from a
-    :class:`~cvdesign.source.Source`; workers get a :meth:`window` of it
+    :class:`~cvdesign.io.source.Source`; workers get a :meth:`window` of it
     (the few arrays of a labelled segment cut to the frames of one task).
 
     Attributes

@@ -5,7 +5,7 @@ with ``mdtraj.open(path)``, ``seek`` and ``read(n, atom_indices=...)``: no
 topology subset is built per chunk (``mdtraj.iterload(atom_indices=...)``
 builds one for every chunk). Other formats go through ``mdtraj.iterload``
 and keep the requested atoms. Every chunk goes through the source's checks
-(:func:`cvdesign.source.check_box`, :func:`cvdesign.source.check_finite`).
+(:func:`cvdesign.io.source.check_box`, :func:`cvdesign.io.source.check_finite`).
 """
 
 import mdtraj as md
@@ -15,7 +15,7 @@ from mdtraj.formats import (DCDTrajectoryFile, NetCDFTrajectoryFile, TRRTrajecto
 from mdtraj.utils import in_units_of
 
 from ..errors import InputError
-from ..source import check_box, check_finite, quiet_stdout, stores_time
+from ..io.source import check_box, check_finite, quiet_stdout, stores_time
 
 __all__ = ["file_frames", "read_chunks", "RawChunk"]
 
@@ -154,8 +154,8 @@ def read_chunks(path, start, stop, atom_indices, topology, *, chunk_frames=500, 
     ------
     RawChunk
         The kept frames of each chunk (chunks with none kept are skipped),
-        after :func:`~cvdesign.source.check_box` and
-        :func:`~cvdesign.source.check_finite`.
+        after :func:`~cvdesign.io.source.check_box` and
+        :func:`~cvdesign.io.source.check_finite`.
 
     Raises
     ------

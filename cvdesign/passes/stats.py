@@ -1,10 +1,10 @@
 """Concrete passes: the statistics the pipeline gathers from trajectories.
 
 Each returns the objects the rest of cvdesign works with
-(:class:`~cvdesign.moments.Moments`, :class:`~cvdesign.moments.DiagonalMoments`,
-:class:`~cvdesign.moments.LaggedMoments`,
-:class:`~cvdesign.moments.DiagonalLaggedMoments`,
-:class:`~cvdesign.scoring.Histograms`, :class:`~cvdesign.bootstrap.ArraySum`):
+(:class:`~cvdesign.stats.moments.Moments`, :class:`~cvdesign.stats.moments.DiagonalMoments`,
+:class:`~cvdesign.stats.moments.LaggedMoments`,
+:class:`~cvdesign.stats.moments.DiagonalLaggedMoments`,
+:class:`~cvdesign.score.univariate.Histograms`, :class:`~cvdesign.stats.bootstrap.ArraySum`):
 
 * :class:`ScreeningPass` -- per-state diagonal moments, frames per (segment,
   state), per-run diagonal lagged moments at per-segment lags, smallest box
@@ -24,10 +24,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..bootstrap import ArraySum
 from ..geometry import box_heights
-from ..moments import DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments, merge_all
-from ..scoring import Histograms
+from ..score.univariate import Histograms
+from ..stats.bootstrap import ArraySum
+from ..stats.moments import DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments, merge_all
 from .engine import Pass, _lag_halo
 from .keys import frame_keys
 
@@ -231,7 +231,7 @@ class FoldMomentsPass(FeaturePass):
         None: one fold.
     columns, center, scale : optional
 
-    The result is ``moments[state][fold]``, a :class:`~cvdesign.moments.Moments`
+    The result is ``moments[state][fold]``, a :class:`~cvdesign.stats.moments.Moments`
     each (empty where a state has no frame in a fold).
     """
 
@@ -318,7 +318,7 @@ class LaggedPass(FeaturePass):
         straddles a held-out boundary); False: the pair belongs to the fold
         of its first frame.
     diagonal : bool, default=False
-        :class:`~cvdesign.moments.DiagonalLaggedMoments` instead of full matrices.
+        :class:`~cvdesign.stats.moments.DiagonalLaggedMoments` instead of full matrices.
     columns, center, scale : optional
 
     Returns a :class:`LaggedResult` from :func:`~cvdesign.passes.run_pass`.
@@ -380,7 +380,7 @@ class HistogramPass(FeaturePass):
     n_bins : int, default=50
     columns, center, scale : optional
 
-    Returns a :class:`~cvdesign.scoring.Histograms`.
+    Returns a :class:`~cvdesign.score.univariate.Histograms`.
     """
 
     exact = True
@@ -438,7 +438,7 @@ class BlockPass(FeaturePass):
     sums : callable, default=None
         ``sums(values, key) -> dict of name -> ndarray`` with ``values`` the
         block's rows in this leaf and ``key = (state, fold, segment,
-        block)``: additive sums kept as an :class:`~cvdesign.bootstrap.ArraySum`
+        block)``: additive sums kept as an :class:`~cvdesign.stats.bootstrap.ArraySum`
         (e.g. histogram counts of a projection). Must pickle (a module-level
         function or object).
     columns, center, scale : optional

@@ -25,10 +25,10 @@ from pathlib import Path
 import mdtraj as md
 import numpy as np
 
-from .._io import atomic_write_text
+from ..io.atomic import atomic_write_text
+from ..io.atomic import atomic_path
 from .langevin import LangevinBAOAB
 from .toys import latch
-from .._io import atomic_path
 
 __all__ = ["generate", "write_pdb", "main"]
 

@@ -27,10 +27,10 @@ from pathlib import Path
 import mdtraj as md
 import numpy as np
 
+from ..io.atomic import atomic_path
 from .demo_data import write_pdb
 from .forcefield import ToyForceField
 from .langevin import LangevinBAOAB
-from .._io import atomic_path
 
 __all__ = ["HostGuestData", "binding_term", "host_guest_system", "write_host_guest"]
 

@@ -186,7 +186,7 @@ class WellTemperedBias:
         Initial kernel height ``h``, kJ/mol.
     interval_steps : int
         MD steps between depositions (used by :func:`run_biased`); the
-        deposition interval of :func:`cvdesign.hints.suggest_hints`.
+        deposition interval of :func:`cvdesign.bias.hints.suggest_hints`.
     bias_factor : float
         ``gamma = (T + dT) / T > 1``; the CV is sampled as if at ``gamma T``.
     temperature : float

@@ -18,10 +18,10 @@ from pathlib import Path
 import mdtraj as md
 import numpy as np
 
+from ..io.atomic import atomic_path
 from .demo_data import write_pdb
 from .langevin import LangevinBAOAB
 from .toys import two_wells
-from .._io import atomic_path
 
 __all__ = ["TwoWellsData", "count_transitions", "write_two_wells"]
 

@@ -7,7 +7,7 @@ import mdtraj as md
 import numpy as np
 import pytest
 
-from cvdesign.funnel import align_to_reference_pocket, funnel_energy, size_funnel
+from cvdesign.bias.funnel import align_to_reference_pocket, funnel_energy, size_funnel
 from cvdesign.testbed.host_guest import binding_term, host_guest_system, write_host_guest
 
 

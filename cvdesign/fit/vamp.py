@@ -17,15 +17,15 @@ comparisons of feature sets should be cross-validated: fit the singular
 functions on one part of the data and score them on another
 (:func:`vamp2_score` with `test`).
 
-Everything works from :class:`~cvdesign.moments.LaggedMoments`, so the score
+Everything works from :class:`~cvdesign.stats.moments.LaggedMoments`, so the score
 of a training block merged from many trajectories and the held-out score of
 another block cost a few small matrix operations each.
 """
 
 import numpy as np
 
-from .estimators import _check_rcond, _whitener
-from .moments import LaggedMoments
+from ..stats.moments import LaggedMoments
+from .discriminant import _check_rcond, _whitener
 
 __all__ = ["vamp2_score"]
 
@@ -94,7 +94,7 @@ def vamp2_score(train, test=None, *, k=None, rcond=1e-6):
     --------
     >>> import numpy as np
     >>> from scipy.signal import lfilter
-    >>> from cvdesign.moments import LaggedMoments
+    >>> from cvdesign.stats.moments import LaggedMoments
     >>> rng = np.random.default_rng(0)
     >>> x = lfilter([1.0], [1.0, -0.9], rng.normal(size=(20000, 1)), axis=0)  # AR(1)
     >>> train = LaggedMoments.from_series(x[:10000], lag=1)

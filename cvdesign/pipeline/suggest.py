@@ -5,7 +5,7 @@
 1. **pool** -- select atoms, enumerate candidate descriptors, prefilter
    distances by a cutoff on a strided subset of frames;
 2. **screening pass** -- per-state mean, variance, minimum and maximum of every
-   feature (:class:`~cvdesign.moments.DiagonalMoments`), frame counts and time
+   feature (:class:`~cvdesign.stats.moments.DiagonalMoments`), frame counts and time
    steps;
 3. **statistics pass** -- per-state histograms of every feature (overlap), and
    per-state, per-fold full moments of the best-separating features;
@@ -29,21 +29,21 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from ._io import prepare_output_dir, write_dir_atomically
-from .bootstrap import ArraySum, block_bootstrap, percentile_interval
-from .cardboot import CardBlocks, card_intervals, integrated_time_interval, plan_card_blocks
-from .combine import (OBJECTIVES, FoldMoments, autocorrelation_along, cv_direction,
+from .._version import __version__
+from ..errors import InputError
+from ..fit import rayleigh_quotient, timescales_from_eigenvalues
+from ..io.atomic import prepare_output_dir, write_dir_atomically
+from ..io.source import Source, file_sha256, stores_time
+from ..pool import COORDINATION_EXPONENTS, COORDINATION_R0_NM, DEFAULT_KINDS, GROUP_KINDS, build_pool
+from ..score.card import CardBlocks, card_intervals, integrated_time_interval, plan_card_blocks
+from ..score.redundancy import descriptor_correlation, redundancy_graph, representatives
+from ..score.univariate import Histograms, fisher_ratio, overlap_coefficient
+from ..search import (OBJECTIVES, FoldMoments, autocorrelation_along, cv_direction,
                       fit_direction, greedy_search, heldout_score, rank_combinations,
                       slow_direction, state_arrays)
-from .estimators import rayleigh_quotient, timescales_from_eigenvalues
-from .errors import InputError
-from .moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
+from ..stats.bootstrap import ArraySum, block_bootstrap, percentile_interval
+from ..stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
                       Moments, merge_all)
-from .pool import COORDINATION_EXPONENTS, COORDINATION_R0_NM, DEFAULT_KINDS, GROUP_KINDS, build_pool
-from .redundancy import descriptor_correlation, redundancy_graph, representatives
-from .scoring import Histograms, fisher_ratio, overlap_coefficient
-from .source import Source, file_sha256, stores_time
 
 __all__ = ["suggest", "Suggestions", "CAUTION", "is_output_file"]
 
@@ -647,14 +647,14 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
 
     Parameters
     ----------
-    source : cvdesign.source.Source
+    source : cvdesign.io.source.Source
         Topology and trajectories with at least two states.
     objective : {'separate', 'slow', 'both'}, default='separate'
         What the search maximizes on held-out folds: the separation of the
         states (Fisher ratio of the discriminant direction), the slowness of
         the slowest linear combination (cross-validated VAMP-2 of the slowest
         singular function, Wu and Noé 2020), or the product of the two (see
-        :func:`cvdesign.combine.fold_scores`). Every suggestion reports both
+        :func:`cvdesign.search.fold_scores`). Every suggestion reports both
         its separation and, when a lag is known, its slowness.
     lag : float, default=None
         Lag time in ps for slowness (required for ``slow`` and ``both``),
@@ -716,7 +716,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         in each spec (recompute them with ``cvdesign hints``); 1 to 5000 K.
     md_step_fs : float, default=2.0
         MD step in fs of the biased run, for the hints; 0.01 to 100 fs (see
-        :func:`cvdesign.hints.check_run_conditions`). When the hints of a
+        :func:`cvdesign.bias.hints.check_run_conditions`). When the hints of a
         suggestion are refused (e.g. a CV that does not move within the
         states), its ranking entry and spec record ``hints_refused`` with the
         reason instead.
@@ -730,7 +730,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     Raises
     ------
     InputError
-        For a `source` that is not a :class:`~cvdesign.source.Source` (e.g. a
+        For a `source` that is not a :class:`~cvdesign.io.source.Source` (e.g. a
         file name), fewer than two states, a state without frames, an empty
         pool, a lag that cannot be converted, and the other input problems
         described in the messages.
@@ -740,7 +740,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     On the bundled demo (two states of an invented flexible molecule)::
 
         from cvdesign import Source, suggest
-        from cvdesign.cli import demo_data_dir
+        from cvdesign.io.demo import demo_data_dir
         d = demo_data_dir()
         src = Source.from_states(d / "latch.pdb", {"closed": [d / "closed-1.xtc"],
                                                    "open": [d / "open-1.xtc"]})
@@ -760,7 +760,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         raise InputError(f"objective={objective!r} must be one of {', '.join(OBJECTIVES)}")
     if method not in ("lda", "hlda"):
         raise InputError(f"method={method!r} must be 'lda' or 'hlda'")
-    from .hints import check_run_conditions
+    from ..bias.hints import check_run_conditions
     check_run_conditions(temperature, md_step_fs)  # refuse impossible hint inputs up front
     if lag is not None and not (isinstance(lag, (int, float)) and math.isfinite(lag) and lag > 0):
         raise InputError(f"lag={lag!r} must be a positive time in ps")
@@ -1206,7 +1206,7 @@ def kinetic_map_scale(w, lagged, idx):
 
 def _hints_for(entry, temperature, md_step_fs):
     """(bias-parameter hints, None) for a ranked CV, or (None, why they were refused)."""
-    from .hints import suggest_hints
+    from ..bias.hints import suggest_hints
 
     try:
         return suggest_hints(entry["states"], temperature=temperature, md_step_fs=md_step_fs,
@@ -1385,7 +1385,7 @@ def _labels_sha256(labels):
 
 
 def _spec_dict(source, pool, name, entry, params, checksums, seed):
-    from .spec import atom_identity, residue_hashes, topology_fingerprint
+    from ..spec import atom_identity, residue_hashes, topology_fingerprint
 
     top = source.topology
     by_id = {d.id: d for d in pool.descriptors}

@@ -12,7 +12,7 @@ sin (cos and sin for dihedrals only). Everything the evaluator needs is in
 the file (atom indices, masses, switching parameters): :meth:`Spec.evaluate`
 gives values and analytic gradients from coordinates alone, without the
 topology. Nothing in a spec is executed: loading validates the document
-against the JSON Schema shipped in ``cvdesign/schema/spec-v1.json``, then
+against the JSON Schema shipped in ``cvdesign/spec/schema/spec-v1.json``, then
 checks cross-references, and, when a topology is given, that the topology is
 the one the spec was made for. Every field is described, with its unit, in
 ``docs/spec-v1.md``.
@@ -35,10 +35,11 @@ import jsonschema
 import mdtraj as md
 import numpy as np
 
-from . import geometry
-from ._io import atomic_write_text
-from .errors import InputError, SpecError, TopologyMismatchError
-from .funnel import SHAPE_KEYS
+from .. import geometry
+from .._version import __version__
+from ..bias.funnel import SHAPE_KEYS
+from ..errors import InputError, SpecError, TopologyMismatchError
+from ..io.atomic import atomic_write_text
 
 __all__ = [
     "SPEC_FORMAT",
@@ -375,7 +376,7 @@ def _plain(value, parts=()):
 
 @functools.lru_cache(maxsize=1)
 def _schema_text():
-    return (resources.files("cvdesign.schema") / "spec-v1.json").read_text(encoding="utf-8")
+    return (resources.files("cvdesign.spec") / "schema" / "spec-v1.json").read_text(encoding="utf-8")
 
 
 @functools.lru_cache(maxsize=1)
@@ -385,7 +386,7 @@ def _validator():
 
 
 def spec_schema():
-    """The JSON Schema of spec version 1, as shipped in ``cvdesign/schema/spec-v1.json``.
+    """The JSON Schema of spec version 1, as shipped in ``cvdesign/spec/schema/spec-v1.json``.
 
     Returns
     -------
@@ -496,7 +497,7 @@ def _schema_check(doc):
         first = min(_path_key(e) for e in errors)
         error = jsonschema.exceptions.best_match(e for e in errors if _path_key(e) == first)
         raise SpecError(
-            _schema_message(error, doc) + " (spec version 1 schema: cvdesign/schema/spec-v1.json)",
+            _schema_message(error, doc) + " (spec version 1 schema: cvdesign/spec/schema/spec-v1.json)",
             _json_path(error.absolute_path),
         )
 
@@ -802,12 +803,6 @@ def _validated(document):
     return _normalize(doc)
 
 
-def _cvdesign_version():
-    import cvdesign
-
-    return str(getattr(cvdesign, "__version__", "unknown"))
-
-
 def _valid_index_list(value, n_atoms):
     """Whether `value` is a flat list of valid atom indices (for filling in defaults)."""
     return (isinstance(value, (list, tuple, np.ndarray)) and len(value) > 0
@@ -1006,7 +1001,7 @@ class Spec:
         if periodic is True and period is None:
             period = _default_period(terms)
         prov = {} if provenance is None else dict(provenance)
-        prov.setdefault("cvdesign_version", _cvdesign_version())
+        prov.setdefault("cvdesign_version", __version__)
         prov.setdefault("method", "")
         prov.setdefault("inputs", [])
         prov.setdefault("seed", None)
@@ -1491,12 +1486,12 @@ class Spec:
         where ``r > R(z)``, plus ``k/2 (lower_wall_z_nm - z)^2`` below the lower
         wall and ``k/2 (z - upper_wall_z_nm)^2`` above the upper wall, with
         ``k = wall_force_constant_kj_mol_nm2``; ``R(z)`` is the
-        cone-plus-cylinder radius of :func:`cvdesign.funnel.funnel_radius`
+        cone-plus-cylinder radius of :func:`cvdesign.bias.funnel.funnel_radius`
         (smooth at the junction). The axis is fixed in the box frame and is
         expressed in the frame of the restraint's reference pocket
         (``reference_pocket_nm``): the pocket must be held in that orientation
         (restrained or aligned; see
-        :func:`cvdesign.funnel.align_to_reference_pocket`), otherwise the
+        :func:`cvdesign.bias.funnel.align_to_reference_pocket`), otherwise the
         energy, while computed as defined, no longer describes the funnel
         that was sized.
 
@@ -1542,7 +1537,7 @@ class Spec:
         >>> energy.round(6).tolist(), grad[0, :, 2].round(6).tolist()  # k/2 (0.1 nm)^2
         ([5.0], [33.333333, 33.333333, 33.333333, -100.0])
         """
-        from .funnel import funnel_energy
+        from ..bias.funnel import funnel_energy
 
         arr, box = self._coordinates(xyz, box)
         n_frames = arr.shape[0]
@@ -1717,7 +1712,7 @@ def load_spec(path, topology=None):
         raise _with_file(exc, path) from None
     if topology is not None:
         if isinstance(topology, (str, os.PathLike)):
-            from .source import load_topology
+            from ..io.source import load_topology
 
             topology = load_topology(topology)
         try:

@@ -11,7 +11,7 @@
   identical distributions and 0 for disjoint ones; with more than two states
   the worst (largest) pairwise value is reported.
 
-Both are computed from mergeable statistics (:mod:`cvdesign.moments` and
+Both are computed from mergeable statistics (:mod:`cvdesign.stats.moments` and
 :class:`Histograms`).
 """
 

@@ -4,7 +4,7 @@ The score card reports, for every descriptor of the pool, its Fisher ratio,
 the overlap of the state histograms, the autocorrelation at the lag (all runs
 about their common mean, and each run about its own mean) and the integrated
 autocorrelation time. The first four get block-bootstrap intervals
-(:func:`cvdesign.bootstrap.block_bootstrap`): a pass over the data keeps, per
+(:func:`cvdesign.stats.bootstrap.block_bootstrap`): a pass over the data keeps, per
 contiguous block of each run, additive sums (frame count, first and second
 moments about a fixed center, histogram counts on the score card's bins,
 lagged-pair sums), so a replicate is a weighted sum over blocks, never a pass
@@ -27,8 +27,8 @@ state do not fit, only the best descriptors of the score card get intervals
 
 import numpy as np
 
-from .bootstrap import ArraySum, block_bootstrap
-from .scoring import Histograms, fisher_ratio, overlap_coefficient
+from ..stats.bootstrap import ArraySum, block_bootstrap
+from .univariate import Histograms, fisher_ratio, overlap_coefficient
 
 __all__ = ["CardBlocks", "plan_card_blocks", "card_intervals", "integrated_time_interval",
            "CARD_BUDGET_BYTES", "MIN_CARD_BLOCKS", "MAX_CARD_BLOCKS"]
@@ -231,7 +231,7 @@ class CardBlocks:
         self._tail[key] = tail
 
     def blocks(self):
-        """Per state, the list of blocks as :class:`~cvdesign.bootstrap.ArraySum` (sorted)."""
+        """Per state, the list of blocks as :class:`~cvdesign.stats.bootstrap.ArraySum` (sorted)."""
         n_states = 1 + max((k[0] for k in self._acc), default=-1)
         out = [[] for _ in range(n_states)]
         for key in sorted(self._acc):
@@ -312,7 +312,7 @@ def card_intervals(card, center, priors, constant, feature_descriptor, n_desc, *
         Descriptor (0 .. n_desc - 1) of each feature.
     n_desc : int
     n_boot, seed : int
-        Replicates and seed of :func:`~cvdesign.bootstrap.block_bootstrap`.
+        Replicates and seed of :func:`~cvdesign.stats.bootstrap.block_bootstrap`.
     level : float, default=0.95
 
     Returns

@@ -40,9 +40,10 @@ reaches bulk solvent), not a guarantee.
 
 import numpy as np
 
-from . import geometry
-from ._io import atomic_path
-from .errors import InputError
+from .. import geometry
+from ..errors import InputError
+from ..geometry.internal import _parse_box
+from ..io.atomic import atomic_path
 
 __all__ = ["CAUTION", "SHAPE_KEYS", "FunnelStats", "align_to_reference_pocket", "funnel_axis",
            "funnel_energy", "funnel_radius", "funnel_reach", "plot_funnel", "project_on_axis",
@@ -354,7 +355,7 @@ class _Fitter:
                     "fewer than 3 atoms, or all (nearly) on one line; choose a pocket of at "
                     "least 3 atoms spread in two directions (e.g. the C-alpha atoms lining it)")
             self.reference, self.center = centred[0].copy(), centre[0].copy()
-            kind, parsed = geometry._parse_box(box, len(p))
+            kind, parsed = _parse_box(box, len(p))
             self.box = None if kind is None else parsed[0]
         rotation, rmsd = geometry.kabsch_rotation(centred, self.reference,
                                                   frame_offset=self.n_frames)
@@ -733,7 +734,7 @@ def align_to_reference_pocket(xyz, pocket, reference, box=None):
     out = np.einsum("faj,fjk->fak", x - centre[:, None], rotation) + centre[:, None]
     if box is None:
         return out, None
-    kind, parsed = geometry._parse_box(box, len(x))
+    kind, parsed = _parse_box(box, len(x))
     vectors = np.stack([np.diag(v) for v in parsed]) if kind == "ortho" else parsed
     vectors = np.broadcast_to(vectors, (len(x), 3, 3))
     return out, np.einsum("fij,fjk->fik", vectors, rotation)

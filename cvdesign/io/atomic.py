@@ -71,7 +71,7 @@ def prepare_output_dir(out_dir, *, force=False, inputs=(), marker=None, owned=No
     cvdesign.errors.InputError
         When the directory may not be written, saying why and what to do.
     """
-    from .errors import InputError
+    from ..errors import InputError
 
     out_dir = Path(out_dir)
     resolved = out_dir.resolve()
@@ -107,7 +107,7 @@ def prepare_output_dir(out_dir, *, force=False, inputs=(), marker=None, owned=No
 
 def _check_parent(parent, out, option):
     """Refuse an output whose directory is missing, not a directory, or not writable."""
-    from .errors import InputError
+    from ..errors import InputError
 
     if not parent.exists():
         raise InputError(f"the directory of {option} {str(out)!r} ({str(parent)!r}) does not "
@@ -164,7 +164,7 @@ def check_output_file(path, *, force=False, inputs=(), option="--out"):
     ...
     cvdesign.errors.InputError: --out '...run.xtc' is one of the input files; ...
     """
-    from .errors import InputError
+    from ..errors import InputError
 
     path = Path(path)
     if path.is_dir():
@@ -191,7 +191,7 @@ def write_dir_atomically(out_dir, files, *, option="--out"):
     replaces it by renames, so an interrupted run leaves no partial output.
     File permissions follow the process umask.
     """
-    from .errors import InputError
+    from ..errors import InputError
 
     out_dir = Path(out_dir)
     umask = os.umask(0)

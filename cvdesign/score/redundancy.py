@@ -80,7 +80,7 @@ def redundancy_graph(correlation, threshold, *, nodes=None, adds_nothing=None):
     adds_nothing : callable, default=None
         ``adds_nothing(i, j) -> bool`` for positions ``i < j``: True when the
         two descriptors together score no better than the better one alone
-        (see :mod:`cvdesign.redundancy`). Only correlated pairs for which it
+        (see :mod:`cvdesign.score.redundancy`). Only correlated pairs for which it
         returns True become edges. None: every correlated pair is an edge.
 
     Returns

@@ -74,7 +74,7 @@ from collections.abc import Mapping
 import numpy as np
 from scipy import integrate, special
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = [
     "CAUTION",

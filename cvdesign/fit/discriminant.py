@@ -6,12 +6,12 @@ labelled states (Fisher 1936; Rao 1948), by the generalized eigenproblem
 :class:`HLDA` is the same with the harmonic mean of the state covariances as
 within-state scatter (Mendels, Piccini and Parrinello 2018).  Both work on
 plain arrays (``fit(X, y)``) and, for the pipeline, directly on per-state
-:class:`~cvdesign.moments.Moments` (``from_moments``), so that trajectories
+:class:`~cvdesign.stats.moments.Moments` (``from_moments``), so that trajectories
 never have to be held in memory.
 
 :class:`TICA` finds the linear combinations of features that decorrelate
 most slowly at a lag time (Molgedey and Schuster 1994; Perez-Hernandez et al.
-2013), from :class:`~cvdesign.moments.LaggedMoments` or from trajectories.
+2013), from :class:`~cvdesign.stats.moments.LaggedMoments` or from trajectories.
 """
 
 import numpy as np
@@ -20,7 +20,7 @@ from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.multiclass import unique_labels
 from sklearn.utils.validation import check_array, check_is_fitted, validate_data
 
-from .moments import LaggedMoments, Moments, _check_lag
+from ..stats.moments import LaggedMoments, Moments, _check_lag
 
 __all__ = [
     "LDA",
@@ -337,7 +337,7 @@ class _Discriminant(TransformerMixin, BaseEstimator):
 
     @classmethod
     def from_moments(cls, moments, *, n_components=None, priors=None, shrinkage=0.0):
-        """Fit from per-state :class:`~cvdesign.moments.Moments`.
+        """Fit from per-state :class:`~cvdesign.stats.moments.Moments`.
 
         Parameters
         ----------
@@ -668,7 +668,7 @@ class TICA(TransformerMixin, BaseEstimator):
         True: symmetrized estimate (each pair counted in both time
         directions; mean over both ends, ``C0 = (Cxx + Cyy) / 2``,
         ``Ctau = (Cxy + Cyx) / 2``), see
-        :meth:`~cvdesign.moments.LaggedMoments.covariances`. False: mean and
+        :meth:`~cvdesign.stats.moments.LaggedMoments.covariances`. False: mean and
         ``C0`` from the earlier frames of the pairs only and ``Ctau = Cxy``
         about the means of each end; the eigenproblem then uses the symmetric
         part of ``Ctau``, the only part the autocorrelation ``w^T Ctau w``
@@ -800,7 +800,7 @@ class TICA(TransformerMixin, BaseEstimator):
     @classmethod
     def from_moments(cls, lagged_moments, *, lag, n_components=None, rcond=1e-6,
                      reversible=True, kinetic_weighting=False):
-        """Fit from :class:`~cvdesign.moments.LaggedMoments`.
+        """Fit from :class:`~cvdesign.stats.moments.LaggedMoments`.
 
         Parameters
         ----------
@@ -820,7 +820,7 @@ class TICA(TransformerMixin, BaseEstimator):
         Examples
         --------
         >>> import numpy as np
-        >>> from cvdesign.moments import LaggedMoments
+        >>> from cvdesign.stats.moments import LaggedMoments
         >>> x = np.random.default_rng(0).normal(size=(500, 3)).cumsum(axis=0)
         >>> lm = LaggedMoments.from_series(x, lag=5, shift=x.mean(axis=0))
         >>> tica = TICA.from_moments(lm, lag=5)

@@ -6,7 +6,7 @@ Tibshirani, *An Introduction to the Bootstrap*, 1993) resamples contiguous
 blocks, each at least as long as the correlation time, with replacement,
 within each group (a state, or a state in one fold), and recomputes the
 statistic on the merged blocks. Because blocks carry mergeable statistics
-(:mod:`cvdesign.moments`), a replicate costs a few merges and a refit, never a
+(:mod:`cvdesign.stats.moments`), a replicate costs a few merges and a refit, never a
 pass over the trajectories.
 """
 
@@ -60,7 +60,7 @@ def merge_blocks(blocks):
     Examples
     --------
     >>> import numpy as np
-    >>> from cvdesign.moments import Moments
+    >>> from cvdesign.stats.moments import Moments
     >>> b = [Moments.from_data(np.array([[float(i)]])) for i in range(4)]
     >>> merge_blocks(b).mean.tolist()
     [1.5]
@@ -260,7 +260,7 @@ def block_bootstrap(groups, statistic, *, n_boot=200, seed=0, level=0.95):
     Examples
     --------
     >>> import numpy as np
-    >>> from cvdesign.moments import Moments
+    >>> from cvdesign.stats.moments import Moments
     >>> rng = np.random.default_rng(1)
     >>> blocks = [[Moments.from_data(rng.normal(0, 1, (50, 1))) for _ in range(40)]]
     >>> res = block_bootstrap(blocks, lambda m: m[0].mean[0], n_boot=100, seed=0)

@@ -1,6 +1,6 @@
 """Compact linear combinations: greedy forward search, held-out scores, ranking.
 
-All fitting works from per-state, per-fold :class:`~cvdesign.moments.Moments`
+All fitting works from per-state, per-fold :class:`~cvdesign.stats.moments.Moments`
 of standardized features. Folds are groups of whole trajectories, or
 contiguous blocks of frames when a state has a single trajectory, never
 random frames: neighbouring frames are correlated, and a random split would
@@ -16,9 +16,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .estimators import TICA, discriminant_directions, rayleigh_quotient, two_state_direction
-from .moments import merge_all
-from .vamp import vamp2_score
+from ..fit.discriminant import TICA, discriminant_directions, rayleigh_quotient, two_state_direction
+from ..fit.vamp import vamp2_score
+from ..stats.moments import merge_all
 
 __all__ = ["FoldMoments", "Combination", "OBJECTIVES", "heldout_score", "fold_scores",
            "fit_direction", "slow_direction", "cv_direction", "autocorrelation_along",
@@ -39,7 +39,7 @@ class FoldMoments:
     Examples
     --------
     >>> import numpy as np
-    >>> from cvdesign.moments import Moments
+    >>> from cvdesign.stats.moments import Moments
     >>> rng = np.random.default_rng(0)
     >>> fm = FoldMoments([[Moments.from_data(rng.normal(m, 1, (30, 2))) for _ in range(3)]
     ...                   for m in (0.0, 3.0)])
@@ -270,7 +270,7 @@ def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shri
     method : {'lda', 'hlda'}, default='lda'
     shrinkage : float, default=1e-3
         Discriminant regularization, see
-        :func:`cvdesign.estimators.discriminant_directions`.
+        :func:`cvdesign.fit.discriminant_directions`.
 
     Returns
     -------
@@ -283,7 +283,7 @@ def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shri
     Examples
     --------
     >>> import numpy as np
-    >>> from cvdesign.moments import Moments
+    >>> from cvdesign.stats.moments import Moments
     >>> rng = np.random.default_rng(0)
     >>> fm = FoldMoments([[Moments.from_data(rng.normal(m, 1, (500, 1))) for _ in range(2)]
     ...                   for m in (0.0, 2.0)])

@@ -41,9 +41,9 @@ import mdtraj as md
 import networkx as nx
 import numpy as np
 
-from .errors import InputError
-from .geometry import coordination_pairs, distances as _pair_distances, group_centers
-from .geometry import minimum_image, switching_function
+from ..errors import InputError
+from ..geometry import coordination_pairs, distances as _pair_distances, group_centers
+from ..geometry import minimum_image, switching_function
 
 __all__ = [
     "Descriptor",
@@ -604,7 +604,7 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
     ----------
     topology : mdtraj.Topology
     atoms : array-like of int
-        Selected atom indices (see :func:`cvdesign.source.select_atoms`).
+        Selected atom indices (see :func:`cvdesign.io.source.select_atoms`).
     kinds : sequence of str
         Kinds to enumerate, from :data:`KINDS`.
     pairs : ndarray of shape (n_pairs, 2), default=None
@@ -701,7 +701,7 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
     Parameters
     ----------
     pairs : ndarray of shape (n_pairs, 2), dtype int
-    source : cvdesign.source.Source
+    source : cvdesign.io.source.Source
     cutoff : float
         Distance cutoff, in nm. ``inf`` keeps every pair (and reads nothing).
     stride : int, default=10
@@ -825,7 +825,7 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
     ----------
     groups : sequence of tuple of int
         Atom groups (e.g. from :func:`residue_groups`).
-    source : cvdesign.source.Source
+    source : cvdesign.io.source.Source
     cutoff : float
         nm; ``inf`` keeps every pair (and reads nothing).
     stride : int, default=10
@@ -878,7 +878,7 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
 
     Parameters
     ----------
-    source : cvdesign.source.Source
+    source : cvdesign.io.source.Source
     selection : str, default=None
         mdtraj selection; None selects the solute's heavy atoms.
     kinds : sequence of str, default=('distance', 'angle', 'dihedral')
@@ -898,7 +898,7 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
     Pool
         With ``notes`` describing what was kept and dropped.
     """
-    from .source import select_atoms
+    from ..io.source import select_atoms
 
     kinds = _check_kinds(kinds)
     atoms = select_atoms(source.topology, selection)

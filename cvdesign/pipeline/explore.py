@@ -43,13 +43,13 @@ from sklearn.cluster import KMeans
 from sklearn.metrics import silhouette_score
 from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
-from .combine import standardize_lagged
-from .errors import InputError
-from .estimators import TICA
-from .moments import DiagonalMoments, LaggedMoments
-from .pipeline import _chunk_frames, _lag_frames, _Series, read_timesteps
-from .pool import build_pool
-from .source import Source
+from ..errors import InputError
+from ..fit import TICA
+from ..io.source import Source
+from ..pool import build_pool
+from ..search import standardize_lagged
+from ..stats.moments import DiagonalMoments, LaggedMoments
+from .suggest import _chunk_frames, _lag_frames, _Series, read_timesteps
 
 __all__ = ["propose_states", "state_kinetics", "Exploration", "StateKinetics",
            "MIN_SILHOUETTE", "MIN_MEMORY", "MIN_SEPARATION", "SILHOUETTE_TIE"]
@@ -403,7 +403,7 @@ class Exploration:
     warnings: list = field(default_factory=list)
 
     def labelled_source(self, topology, *, chunk_size=500, timestep=None):
-        """A :class:`~cvdesign.source.Source` of the runs with the proposed labels."""
+        """A :class:`~cvdesign.io.source.Source` of the runs with the proposed labels."""
         src = Source(topology, chunk_size=chunk_size, timestep=timestep)
         for path, labels in self.labels.items():
             src.add_labelled(path, labels)
@@ -503,7 +503,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
 
     Parameters
     ----------
-    source : cvdesign.source.Source
+    source : cvdesign.io.source.Source
         The runs, all under one state name (labels are ignored).
     lag : float
         Lag time, ps.
@@ -541,7 +541,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     the states are metastable; give those with ``--state``)::
 
         from cvdesign import Source
-        from cvdesign.explore import propose_states
+        from cvdesign.pipeline.explore import propose_states
         src = Source("protein.pdb")
         for f in ["run1.xtc", "run2.xtc", "run3.xtc"]:
             src.add(f, "runs")

@@ -21,7 +21,7 @@ from pathlib import Path
 import mdtraj as md
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "file_sha256",
            "stores_time", "quiet_stdout", "check_box", "check_finite", "check_label_count"]

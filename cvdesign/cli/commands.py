@@ -22,8 +22,8 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .errors import CVDesignError, InputError
+from .._version import __version__
+from ..errors import CVDesignError, InputError
 
 __all__ = ["main", "build_parser"]
 
@@ -304,10 +304,10 @@ def _progress(quiet):
 
 
 def _run_suggest(topology, states, out, args, stream, runs=None):
-    from ._io import prepare_output_dir
-    from .hints import check_run_conditions
-    from .pipeline import CAUTION, is_output_file, suggest
-    from .source import Source
+    from ..io.atomic import prepare_output_dir
+    from ..bias.hints import check_run_conditions
+    from ..pipeline.suggest import CAUTION, is_output_file, suggest
+    from ..io.source import Source
 
     # refuse an impossible temperature or MD step before reading anything; warn once
     for warning in check_run_conditions(args.temperature, args.md_step_fs):
@@ -318,7 +318,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     exploration = None
     progress = _progress(args.quiet)
     if runs:
-        from .explore import propose_states
+        from ..pipeline.explore import propose_states
 
         if args.lag is None:
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
@@ -384,9 +384,9 @@ def _cmd_suggest(args):
 
 
 def _cmd_apply(args):
-    from ._io import atomic_open, check_output_file
-    from .source import Source, stores_time
-    from .spec import load_spec
+    from ..io.atomic import atomic_open, check_output_file
+    from ..io.source import Source, stores_time
+    from ..spec import load_spec
 
     if args.out is not None:
         check_output_file(args.out, force=args.force,
@@ -539,8 +539,8 @@ def _read_values(path, column=None):
 
 
 def _cmd_check(args):
-    from .source import Source
-    from .spec import load_spec
+    from ..io.source import Source
+    from ..spec import load_spec
 
     source = Source(args.topology)
     spec = load_spec(args.spec, topology=source.topology)
@@ -598,8 +598,8 @@ def _cmd_check(args):
 
 
 def _cmd_hints(args):
-    from .hints import format_hints, spec_hints
-    from .spec import load_spec
+    from ..bias.hints import format_hints, spec_hints
+    from ..spec import load_spec
 
     spec = load_spec(args.spec)
     try:
@@ -632,9 +632,9 @@ def _check_plot_format(path):
 
 
 def _cmd_funnel(args):
-    from ._io import atomic_paths, check_output_file
-    from .funnel import plot_funnel, size_funnel
-    from .source import Source, select_atoms
+    from ..io.atomic import atomic_paths, check_output_file
+    from ..bias.funnel import plot_funnel, size_funnel
+    from ..io.source import Source, select_atoms
 
     if args.exit_point is not None and not all(math.isfinite(v) for v in args.exit_point):
         raise InputError(f"--exit-point {' '.join(str(v) for v in args.exit_point)}: give three "
@@ -698,9 +698,9 @@ def _cmd_funnel(args):
 
 def _funnel_spec(source, args, lig, pocket, result):
     """The spec `cvdesign funnel` writes: centre distance as the CV, the funnel as a restraint."""
-    from .funnel import SHAPE_KEYS
-    from .source import file_sha256
-    from .spec import Spec, residue_hashes, topology_fingerprint
+    from ..bias.funnel import SHAPE_KEYS
+    from ..io.source import file_sha256
+    from ..spec import Spec, residue_hashes, topology_fingerprint
 
     top = source.topology
     prm, obs = result["params"], result["observed"]
@@ -738,20 +738,10 @@ def _funnel_spec(source, args, lig, pocket, result):
     )
 
 
-def demo_data_dir():
-    """Directory holding the bundled demo data (topology, trajectories, manifest.json)."""
-    here = Path(__file__).resolve().parent
-    # Installed: the package 'cvdesign.demo_data'; source tree: the top-level data/.
-    for cand in (here / "demo_data", here.parent / "data"):
-        if (cand / "manifest.json").exists():
-            return cand
-    raise InputError("the bundled demo data are missing; regenerate them with "
-                     "'python -m cvdesign.testbed.demo_data --out data' in the source tree")
-
-
 def _cmd_demo(args):
-    from ._io import prepare_output_dir
-    from .pipeline import is_output_file
+    from ..io.atomic import prepare_output_dir
+    from ..io.demo import demo_data_dir
+    from ..pipeline.suggest import is_output_file
 
     data = demo_data_dir()
     prepare_output_dir(args.out, force=args.force, marker="ranking.json",  # before any output
@@ -850,7 +840,3 @@ def _main(argv):
     except KeyboardInterrupt:
         print("cvdesign: interrupted; no output was written", file=sys.stderr)
         return 130
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())

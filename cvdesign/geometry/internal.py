@@ -46,7 +46,7 @@ import warnings
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = [
     "GeometryWarning",

@@ -1,0 +1,3 @@
+"""The version of cvdesign, in one place (read by pyproject.toml and every module)."""
+
+__version__ = "0.1.0"

@@ -1,0 +1,13 @@
+"""Scores of single descriptors: Fisher ratio, histograms and overlap
+(:mod:`.univariate`), the redundancy graph (:mod:`.redundancy`), score-card
+intervals (:mod:`.card`)."""
+
+from .card import (CARD_BUDGET_BYTES, MAX_CARD_BLOCKS, MIN_CARD_BLOCKS, CardBlocks,
+                   card_intervals, integrated_time_interval, plan_card_blocks)
+from .redundancy import descriptor_correlation, redundancy_graph, representatives
+from .univariate import Histograms, fisher_ratio, overlap_coefficient
+
+__all__ = ["fisher_ratio", "Histograms", "overlap_coefficient", "descriptor_correlation",
+           "redundancy_graph", "representatives", "CardBlocks", "plan_card_blocks",
+           "card_intervals", "integrated_time_interval", "CARD_BUDGET_BYTES",
+           "MIN_CARD_BLOCKS", "MAX_CARD_BLOCKS"]
