@@ -7,8 +7,8 @@ import pytest
 
 from cvdesign.errors import InputError
 from cvdesign.bias.funnel import (CAUTION, SHAPE_KEYS, FunnelStats, funnel_axis, funnel_energy,
-                             funnel_radius, funnel_reach, plot_funnel, project_on_axis,
-                             size_funnel)
+                                  funnel_radius, funnel_reach, plot_funnel, project_on_axis,
+                                  size_funnel)
 
 PARAMS = dict(axis=[0.0, 0.6, 0.8], lower_wall_z_nm=-0.4, upper_wall_z_nm=2.5, cone_end_z_nm=0.9,
               cone_half_angle_rad=0.7, cylinder_radius_nm=0.35, blend_half_width_nm=0.1)

@@ -7,10 +7,8 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from cvdesign.errors import InputError
 from cvdesign.bias.hints import (
     CAUTION,
-    KB_KJ_MOL_K,
     MAX_GRID_BINS,
     bias_factor_for_barrier,
     check_run_conditions,
@@ -26,9 +24,11 @@ from cvdesign.bias.hints import (
     lucy_kernel_derivative,
     suggest_hints,
 )
+from cvdesign.constants import BOLTZMANN_KJ_MOL_K
+from cvdesign.errors import InputError
 
 T = 300.0
-KT = KB_KJ_MOL_K * T
+KT = BOLTZMANN_KJ_MOL_K * T
 
 STATES = {
     "closed": {"mean": -1.2, "std": 0.15, "n_frames": 2000},

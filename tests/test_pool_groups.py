@@ -18,11 +18,10 @@ import pytest
 
 from cvdesign import Source, Spec, suggest
 from cvdesign.cli import build_parser
-from cvdesign.cli.commands import _ALLOWED_KINDS
 from cvdesign.errors import InputError
 from cvdesign.geometry import center_distance
-from cvdesign.pool import (KINDS, Descriptor, Pool, build_pool, candidate_pool,
-                           prefilter_group_pairs, residue_groups)
+from cvdesign.pool import (Descriptor, Pool, build_pool, candidate_pool, prefilter_group_pairs,
+                           residue_groups)
 
 
 @pytest.fixture(scope="module")
@@ -62,8 +61,7 @@ def test_group_descriptor_ids_labels_and_validation():
         Descriptor("coordination", (), "x", groups=((1,), (2,)))
 
 
-def test_cli_kinds_match_the_pool_and_parse():
-    assert _ALLOWED_KINDS == tuple(KINDS)
+def test_cli_parses_the_group_kinds_and_their_switching_distance():
     args = build_parser().parse_args(
         ["suggest", "--topology", "t.pdb", "--state", "a", "a.xtc", "--state", "b", "b.xtc",
          "--kinds", "center_distance,coordination", "--coordination-r0", "0.5",

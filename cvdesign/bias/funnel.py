@@ -41,6 +41,7 @@ reaches bulk solvent), not a guarantee.
 import numpy as np
 
 from .. import geometry
+from ..constants import UNITS
 from ..errors import InputError
 from ..geometry.internal import _parse_box
 from ..io.atomic import atomic_path
@@ -613,7 +614,7 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
     ] + [f"WARNING: {w}" for w in warnings]
     cells = sorted([bz, br, c] for (bz, br), c in stats.cells.items())
     return {
-        "units": {"length": "nm", "angle": "rad"},
+        "units": {key: UNITS[key] for key in ("length", "angle")},
         "frame": "reference pocket: the pocket of the first bound frame, made whole and "
                  "centred, in its box orientation",
         "axis_rule": rule,

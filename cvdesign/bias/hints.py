@@ -74,11 +74,11 @@ from collections.abc import Mapping
 import numpy as np
 from scipy import integrate, special
 
+from ..constants import BOLTZMANN_KJ_MOL_K
 from ..errors import InputError
 
 __all__ = [
     "CAUTION",
-    "KB_KJ_MOL_K",
     "KERNELS",
     "MAX_GRID_BINS",
     "MD_STEP_LIMITS_FS",
@@ -99,9 +99,6 @@ __all__ = [
     "spec_hints",
     "suggest_hints",
 ]
-
-#: Boltzmann constant in kJ/mol/K.
-KB_KJ_MOL_K = 0.00831446261815324
 
 #: Kernel kinds :func:`suggest_hints` knows.
 KERNELS = ("gaussian", "lucy")
@@ -200,7 +197,7 @@ def _kernel_kind(kernel):
 
 
 def _kt(temperature):
-    return KB_KJ_MOL_K * _number("temperature", temperature)
+    return BOLTZMANN_KJ_MOL_K * _number("temperature", temperature)
 
 
 def check_run_conditions(temperature, md_step_fs):
@@ -560,7 +557,7 @@ def fill_volume(level, std, temperature):
 
     Examples
     --------
-    >>> kt = KB_KJ_MOL_K * 300.0
+    >>> kt = BOLTZMANN_KJ_MOL_K * 300.0
     >>> round(fill_volume(2 * kt, 1.0, 300.0) / kt, 6)   # (4/3) * 2 * 2
     5.333333
     """
@@ -603,7 +600,7 @@ def fill_time_metadynamics(level, std, *, temperature, height, area_per_height, 
 
     Examples
     --------
-    >>> kt = KB_KJ_MOL_K * 300.0
+    >>> kt = BOLTZMANN_KJ_MOL_K * 300.0
     >>> t = fill_time_metadynamics(2 * kt, 1.0, temperature=300.0, height=kt,
     ...                            area_per_height=1.0, interval_ps=1.0)
     >>> round(t, 6)

@@ -23,19 +23,16 @@ from pathlib import Path
 import numpy as np
 
 from .._version import __version__
+from ..constants import COORDINATION_EXPONENTS, COORDINATION_R0_NM
 from ..errors import CVDesignError, InputError
+from ..kinds import DEFAULT_KINDS, KINDS
 
 __all__ = ["main", "build_parser"]
 
 
-#: The pool's descriptor kinds (those of cvdesign.pool.KINDS; a test keeps them equal,
-#: so that --help needs no import of the pool).
-_ALLOWED_KINDS = ("distance", "angle", "dihedral", "center_distance", "coordination")
-
-
 def _kinds(text):
     kinds = tuple(k.strip() for k in text.split(",") if k.strip())
-    allowed = _ALLOWED_KINDS
+    allowed = tuple(KINDS)
     bad = [k for k in kinds if k not in allowed]
     if bad or not kinds:
         raise argparse.ArgumentTypeError(
@@ -81,20 +78,22 @@ def _add_suggest_options(p):
                    help="atoms the candidate descriptors are built from, in mdtraj selection "
                         "syntax (e.g. 'name CA', 'resid 10 to 40 and not element H'); "
                         "default: heavy atoms of the solute (no hydrogens, water or ions)")
-    p.add_argument("--kinds", type=_kinds, default=("distance", "angle", "dihedral"),
+    p.add_argument("--kinds", type=_kinds, default=DEFAULT_KINDS,
                    metavar="K1,K2", help="descriptor kinds in the pool, comma-separated, from "
                    "distance (nm), angle (rad, bonded triples), dihedral (rad, one per "
                    "rotatable bond; enters combinations as cos and sin), center_distance (nm, "
                    "between the mass centers of two residues' selected atoms) and "
                    "coordination (contacts between two residues' selected atoms, "
-                   "dimensionless); default: distance,angle,dihedral")
+                   "dimensionless); default: " + ",".join(DEFAULT_KINDS))
     p.add_argument("--cutoff", type=_positive_float, default=1.0, metavar="NM",
                    help="distance prefilter in nm: keep a pair if its mean distance is below "
                         "this in at least one state (default: 1.0 nm)")
-    p.add_argument("--coordination-r0", type=_positive_float, default=0.45, metavar="NM",
+    p.add_argument("--coordination-r0", type=_positive_float, default=COORDINATION_R0_NM,
+                   metavar="NM",
                    help="switching distance of the coordination numbers in nm: a pair of atoms "
                         "at this distance counts 1/2 (rational switching function, exponents "
-                        "6 and 12; default: 0.45 nm)")
+                        f"{COORDINATION_EXPONENTS[0]} and {COORDINATION_EXPONENTS[1]}; default: "
+                        f"{COORDINATION_R0_NM:g} nm)")
     p.add_argument("--prefilter-stride", type=_positive_int, default=10, metavar="N",
                    help="the distance prefilter reads every N-th frame (default: 10)")
     p.add_argument("--max-terms", type=_positive_int, default=5, metavar="K",
@@ -750,8 +749,8 @@ def _cmd_demo(args):
     top = str(data / manifest["topology"]["file"])
     states = [[name] + [str(data / f) for f in entry["files"]]
               for name, entry in manifest["states"].items()]
-    ns = argparse.Namespace(select=None, kinds=("distance", "angle", "dihedral"), cutoff=1.0,
-                            prefilter_stride=10, coordination_r0=0.45, max_terms=5, suggestions=10, folds=4,
+    ns = argparse.Namespace(select=None, kinds=DEFAULT_KINDS, cutoff=1.0,
+                            prefilter_stride=10, coordination_r0=COORDINATION_R0_NM, max_terms=5, suggestions=10, folds=4,
                             force=args.force, quiet=False, objective="separate", lag=None,
                             method="hlda", bootstrap=args.bootstrap, seed=0,
                             frame_step_ps=None, n_states=None, temperature=300.0,

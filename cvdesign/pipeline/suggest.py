@@ -30,11 +30,13 @@ from pathlib import Path
 import numpy as np
 
 from .._version import __version__
+from ..constants import COORDINATION_EXPONENTS, COORDINATION_R0_NM
 from ..errors import InputError
 from ..fit import rayleigh_quotient, timescales_from_eigenvalues
 from ..io.atomic import prepare_output_dir, write_dir_atomically
 from ..io.source import Source, file_sha256, stores_time
-from ..pool import COORDINATION_EXPONENTS, COORDINATION_R0_NM, DEFAULT_KINDS, GROUP_KINDS, build_pool
+from ..kinds import DEFAULT_KINDS, GROUP_KINDS
+from ..pool import build_pool
 from ..score.card import CardBlocks, card_intervals, integrated_time_interval, plan_card_blocks
 from ..score.redundancy import descriptor_correlation, redundancy_graph, representatives
 from ..score.univariate import Histograms, fisher_ratio, overlap_coefficient
@@ -43,7 +45,7 @@ from ..search import (OBJECTIVES, FoldMoments, autocorrelation_along, cv_directi
                       slow_direction, state_arrays)
 from ..stats.bootstrap import ArraySum, block_bootstrap, percentile_interval
 from ..stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
-                      Moments, merge_all)
+                             Moments, merge_all)
 
 __all__ = ["suggest", "Suggestions", "CAUTION", "is_output_file"]
 
@@ -672,7 +674,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     selection : str, default=None
         mdtraj atom selection for the pool; None: heavy atoms of the solute.
     kinds : sequence of str, default=('distance', 'angle', 'dihedral')
-        Descriptor kinds in the pool, from ``cvdesign.pool.KINDS``: also
+        Descriptor kinds in the pool, from ``cvdesign.kinds.KINDS``: also
         ``'center_distance'`` (distance between the mass centers of the
         selected atoms of two residues, nm) and ``'coordination'`` (their
         coordination number, dimensionless), for every pair of residues.

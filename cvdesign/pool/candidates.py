@@ -41,17 +41,15 @@ import mdtraj as md
 import networkx as nx
 import numpy as np
 
+from ..constants import COORDINATION_EXPONENTS, COORDINATION_R0_NM
 from ..errors import InputError
 from ..geometry import coordination_pairs, distances as _pair_distances, group_centers
 from ..geometry import minimum_image, switching_function
+from ..kinds import DEFAULT_KINDS, GROUP_KINDS, KINDS
 
 __all__ = [
     "Descriptor",
     "Pool",
-    "KINDS",
-    "DEFAULT_KINDS",
-    "GROUP_KINDS",
-    "COORDINATION_R0_NM",
     "atom_label",
     "atom_labels",
     "candidate_pool",
@@ -62,22 +60,8 @@ __all__ = [
     "build_pool",
 ]
 
-#: Descriptor kinds and the number of atoms each takes (None: two atom groups).
-KINDS = {"distance": 2, "angle": 3, "dihedral": 4, "center_distance": None,
-         "coordination": None}
-#: The kinds of a default pool.
-DEFAULT_KINDS = ("distance", "angle", "dihedral")
-#: Kinds defined on two atom groups.
-GROUP_KINDS = ("center_distance", "coordination")
-#: Switching distance of the pool's coordination numbers, nm: about the heavy-atom
-#: contact distance in proteins (common practice, from memory).
-COORDINATION_R0_NM = 0.45
-#: Exponents (n, m) of the pool's switching function (common practice).
-COORDINATION_EXPONENTS = (6, 12)
 # Numbers (frames x atom pairs) formed at once for coordination numbers (bounds memory).
 _NUMBERS_PER_BLOCK = 2_000_000
-_SHORT = {"distance": "dist", "angle": "angle", "dihedral": "dihedral",
-          "center_distance": "center dist", "coordination": "coord"}
 
 
 def _runs(group):
@@ -206,9 +190,9 @@ class Descriptor:
                 raise InputError(f"a coordination needs a switching distance r0 > 0 nm; "
                                  f"got {self.r0!r}")
             return
-        if len(self.atoms) != KINDS[self.kind]:
+        if len(self.atoms) != KINDS[self.kind].n_atoms:
             raise InputError(
-                f"a {self.kind} takes {KINDS[self.kind]} atoms; got {len(self.atoms)}"
+                f"a {self.kind} takes {KINDS[self.kind].n_atoms} atoms; got {len(self.atoms)}"
             )
 
     @cached_property
@@ -224,18 +208,17 @@ class Descriptor:
     @property
     def periodic(self):
         """bool : True for dihedrals (period 2 pi rad)."""
-        return self.kind == "dihedral"
+        return KINDS[self.kind].periodic
 
     @property
     def transforms(self):
         """tuple of str : the features this descriptor contributes."""
-        return ("cos", "sin") if self.kind == "dihedral" else ("identity",)
+        return KINDS[self.kind].features
 
     @property
     def unit(self):
         """str : unit of the descriptor's value (``'1'``: dimensionless)."""
-        return {"distance": "nm", "center_distance": "nm", "coordination": "1"}.get(
-            self.kind, "rad")
+        return KINDS[self.kind].unit
 
 
 def _make(kind, atoms, topology, labels=None):
@@ -248,7 +231,7 @@ def _make(kind, atoms, topology, labels=None):
     for prev, cur in zip(names, names[1:]):
         rp, rc = prev.rsplit(":", 1)[0], cur.rsplit(":", 1)[0]
         parts.append(cur.rsplit(":", 1)[1] if rp == rc else cur)
-    return Descriptor(kind, tuple(int(a) for a in atoms), f"{_SHORT[kind]} " + "-".join(parts))
+    return Descriptor(kind, tuple(int(a) for a in atoms), f"{KINDS[kind].label_prefix} " + "-".join(parts))
 
 
 class Pool:
@@ -304,7 +287,7 @@ class Pool:
         self._index = {kind: [i for i, d in enumerate(self.descriptors) if d.kind == kind]
                        for kind in KINDS}
         self._atoms = {kind: np.array([self.descriptors[i].atoms for i in idx], dtype=np.intp)
-                       .reshape(-1, KINDS[kind]) for kind, idx in self._index.items()
+                       .reshape(-1, KINDS[kind].n_atoms) for kind, idx in self._index.items()
                        if kind not in GROUP_KINDS}
         self._masses = {}  # atom index -> dalton, for mass centers
 
@@ -606,7 +589,7 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
     atoms : array-like of int
         Selected atom indices (see :func:`cvdesign.io.source.select_atoms`).
     kinds : sequence of str
-        Kinds to enumerate, from :data:`KINDS`.
+        Kinds to enumerate, from :data:`cvdesign.kinds.KINDS`.
     pairs : ndarray of shape (n_pairs, 2), default=None
         Distance pairs to use (e.g. after :func:`prefilter_pairs`); None uses
         every pair from :func:`candidate_pairs`.
@@ -682,10 +665,10 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
                 pair = (groups[i][1], groups[j][1])
                 what = f"{names[i]}-{names[j]}"
                 if "center_distance" in kinds:
-                    out.append(Descriptor("center_distance", (), f"center dist {what}",
+                    out.append(Descriptor("center_distance", (), f"{KINDS['center_distance'].label_prefix} {what}",
                                           groups=pair))
                 if "coordination" in kinds:
-                    out.append(Descriptor("coordination", (), f"coord {what}", groups=pair,
+                    out.append(Descriptor("coordination", (), f"{KINDS['coordination'].label_prefix} {what}", groups=pair,
                                           r0=float(coordination_r0)))
     order = {k: i for i, k in enumerate(KINDS)}
     out.sort(key=lambda d: (order[d.kind], d.atoms))
@@ -882,7 +865,7 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
     selection : str, default=None
         mdtraj selection; None selects the solute's heavy atoms.
     kinds : sequence of str, default=('distance', 'angle', 'dihedral')
-        Any of :data:`KINDS`; the group kinds ``center_distance`` and
+        Any of :data:`cvdesign.kinds.KINDS`; the group kinds ``center_distance`` and
         ``coordination`` pair the residues of the selection.
     cutoff : float, default=1.0
         Prefilter cutoff, in nm (``inf``: keep every pair): on the mean atom

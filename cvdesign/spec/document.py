@@ -38,13 +38,14 @@ import numpy as np
 from .. import geometry
 from .._version import __version__
 from ..bias.funnel import SHAPE_KEYS
+from ..constants import COORDINATION_EXPONENTS, TWO_PI, UNITS
 from ..errors import InputError, SpecError, TopologyMismatchError
 from ..io.atomic import atomic_write_text
+from ..kinds import ATOM_KINDS, GROUP_KINDS, KINDS
 
 __all__ = [
     "SPEC_FORMAT",
     "SPEC_VERSION",
-    "UNITS",
     "Spec",
     "atom_identity",
     "load_spec",
@@ -54,29 +55,6 @@ __all__ = [
 
 SPEC_FORMAT = "cvdesign-spec"
 SPEC_VERSION = 1
-UNITS = {"length": "nm", "angle": "rad", "time": "ps", "energy": "kJ/mol"}
-
-#: The period of a dihedral, rad.
-TWO_PI = 2.0 * math.pi
-
-# Kinds on index tuples (atoms) and kinds on two groups of atoms (groups).
-_ATOMS_PER_KIND = {"distance": 2, "angle": 3, "dihedral": 4}
-_GROUP_KINDS = ("center_distance", "coordination")
-_TRANSFORMS_PER_KIND = {
-    "distance": ("identity",),
-    "angle": ("identity",),
-    "dihedral": ("identity", "cos", "sin"),
-    "center_distance": ("identity",),
-    "coordination": ("identity",),
-}
-# The keys each kind takes besides id, kind, label, atom_identities, periodic.
-_KIND_KEYS = {
-    "distance": ("atoms",),
-    "angle": ("atoms",),
-    "dihedral": ("atoms",),
-    "center_distance": ("groups", "weighting", "masses"),
-    "coordination": ("groups", "r0", "n", "m"),
-}
 # Relative tolerance of the check period == 2 pi |weight| / scale.
 _PERIOD_RTOL = 1e-9
 # Integers in a spec must fit in 64 bits (many JSON readers hold no more).
@@ -432,11 +410,11 @@ def _absent_message(doc, error):
     parent = _lookup(doc, parts[:-1])
     if key == "period" and len(parts) == 1:
         return "only a periodic CV (periodic: true) has a period; remove it or set periodic to true"
-    if isinstance(parent, dict) and parent.get("kind") in _KIND_KEYS:
+    if isinstance(parent, dict) and parent.get("kind") in KINDS:
         kind = parent["kind"]
         if key == "masses" and kind == "center_distance":
             return ("masses are used only with weighting 'mass'; remove them or set weighting to 'mass'")
-        takes = ", ".join(_KIND_KEYS[kind])
+        takes = ", ".join(KINDS[kind].spec_keys)
         return f"key {key!r} is not used by {_a(kind)} descriptor (a {kind} takes: {takes})"
     return f"key {key!r} is not allowed here"
 
@@ -517,7 +495,7 @@ def _check_index(atom, n_atoms, path):
 
 def _check_tuple_descriptor(desc, here, n_atoms):
     kind, atoms = desc["kind"], desc["atoms"]
-    need = _ATOMS_PER_KIND[kind]
+    need = KINDS[kind].n_atoms
     if len(atoms) != need:
         raise SpecError(f"{_a(kind)} takes {need} atoms; got {len(atoms)}: {atoms}", f"{here}.atoms")
     for j, a in enumerate(atoms):
@@ -587,13 +565,13 @@ def _semantic_check(doc):
             )
         first_at[did] = here
         kinds[did] = kind
-        if kind in _ATOMS_PER_KIND:
+        if kind in ATOM_KINDS:
             _check_tuple_descriptor(desc, here, n_atoms)
         else:
             _check_group_descriptor(desc, here, n_atoms)
-        if desc["periodic"] != (kind == "dihedral"):
+        if desc["periodic"] != KINDS[kind].periodic:
             raise SpecError(
-                f"periodic must be {str(kind == 'dihedral').lower()} for {_a(kind)} "
+                f"periodic must be {str(KINDS[kind].periodic).lower()} for {_a(kind)} "
                 "(only dihedrals are periodic, with period 2 pi rad)",
                 f"{here}.periodic",
             )
@@ -608,7 +586,7 @@ def _semantic_check(doc):
                 f"{here}.descriptor",
             )
         kind = kinds[did]
-        if transform not in _TRANSFORMS_PER_KIND[kind]:
+        if transform not in KINDS[kind].transforms:
             raise SpecError(
                 f"transform {transform!r} applies to dihedrals only; descriptor {did!r} is {_a(kind)}, "
                 "use 'identity'",
@@ -816,11 +794,11 @@ def _filled_descriptor(desc, mdtop, here):
     desc.setdefault("periodic", desc.get("kind") == "dihedral")
     kind = desc.get("kind")
     if kind == "coordination":
-        desc.setdefault("n", 6)
-        desc.setdefault("m", 12)
+        desc.setdefault("n", COORDINATION_EXPONENTS[0])
+        desc.setdefault("m", COORDINATION_EXPONENTS[1])
     if mdtop is None:
         return desc
-    if kind in _ATOMS_PER_KIND:
+    if kind in ATOM_KINDS:
         atoms = desc.get("atoms", [])
         if "atom_identities" not in desc and _valid_index_list(atoms, mdtop.n_atoms):
             desc["atom_identities"] = [_identity_of(mdtop.atom(int(a))) for a in atoms]
@@ -1321,7 +1299,7 @@ class Spec:
             else:
                 values[:, cols] = function(arr, atoms, box=box)
         for k, desc in enumerate(descs):
-            if desc["kind"] not in _GROUP_KINDS:
+            if desc["kind"] not in GROUP_KINDS:
                 continue
             group_a, group_b = desc["groups"]
             if desc["kind"] == "center_distance":

@@ -16,12 +16,11 @@ Examples
 """
 
 from .forcefield import ToyForceField, dihedral_angles, pairs_beyond
-from .langevin import BOLTZMANN, LangevinBAOAB
+from .langevin import LangevinBAOAB
 from .toys import ToySystem, TwoWellSystem, latch, two_wells
 
 __all__ = [
     "LangevinBAOAB",
-    "BOLTZMANN",
     "ToyForceField",
     "ToySystem",
     "TwoWellSystem",

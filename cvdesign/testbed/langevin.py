@@ -11,10 +11,9 @@ temperature K, friction 1/ps, energies kJ/mol; 1 kJ/mol = 1 amu nm**2/ps**2.
 
 import numpy as np
 
-__all__ = ["LangevinBAOAB", "BOLTZMANN"]
+from ..constants import BOLTZMANN_KJ_MOL_K
 
-#: Molar Boltzmann constant, kJ/mol/K (CODATA 2018, exact).
-BOLTZMANN = 0.00831446261815324
+__all__ = ["LangevinBAOAB"]
 
 
 class LangevinBAOAB:
@@ -109,8 +108,8 @@ class LangevinBAOAB:
 
     @property
     def kT(self):
-        """Thermal energy ``BOLTZMANN * temperature``, kJ/mol."""
-        return BOLTZMANN * self.temperature
+        """Thermal energy ``BOLTZMANN_KJ_MOL_K * temperature``, kJ/mol."""
+        return BOLTZMANN_KJ_MOL_K * self.temperature
 
     def maxwell_boltzmann(self, shape):
         """Draw velocities from the Maxwell-Boltzmann distribution.

@@ -37,8 +37,9 @@ from dataclasses import dataclass
 import mdtraj as md
 import numpy as np
 
+from ..constants import BOLTZMANN_KJ_MOL_K
 from .forcefield import ToyForceField
-from .langevin import BOLTZMANN, LangevinBAOAB
+from .langevin import LangevinBAOAB
 from .toys import ToySystem
 
 __all__ = [
@@ -54,8 +55,6 @@ __all__ = [
     "spec_cv",
     "well_delta_f",
 ]
-
-_TWO_PI = 2.0 * np.pi
 
 
 # --------------------------------------------------------------------------
@@ -273,8 +272,8 @@ class WellTemperedBias:
     # ------------------------------------------------------------------
     @property
     def kT(self):
-        """Thermal energy ``BOLTZMANN * temperature``, kJ/mol."""
-        return BOLTZMANN * self.temperature
+        """Thermal energy ``BOLTZMANN_KJ_MOL_K * temperature``, kJ/mol."""
+        return BOLTZMANN_KJ_MOL_K * self.temperature
 
     @property
     def delta_temperature(self):
@@ -317,7 +316,8 @@ class WellTemperedBias:
         s = float(s)
         if self.periodic:
             s = self.lo + (s - self.lo) % (self.hi - self.lo)
-        h = self.height * np.exp(-float(self.bias_at(s)) / (BOLTZMANN * self.delta_temperature))
+        h = self.height * np.exp(-float(self.bias_at(s))
+                                 / (BOLTZMANN_KJ_MOL_K * self.delta_temperature))
         d = self._displacement(self.nodes, s)
         g = h * np.exp(-0.5 * (d / self.sigma) ** 2)
         self.values += g
@@ -749,7 +749,7 @@ def well_delta_f(s, f, temperature, well_a, well_b):
     """
     s = np.asarray(s, dtype=np.float64)
     f = np.asarray(f, dtype=np.float64)
-    kT = BOLTZMANN * float(temperature)
+    kT = BOLTZMANN_KJ_MOL_K * float(temperature)
     w = np.exp(-(f - f.min()) / kT)
     za = w[_in_interval(s, well_a)].sum()
     zb = w[_in_interval(s, well_b)].sum()
@@ -847,7 +847,7 @@ def softened_delta_f(system, n_steps, *, temperature, friction, md_step_ps, fact
     x0 = np.stack([system.states[(a, b)[w % 2]] for w in range(int(n_walkers))])
     xyz, _ = integ.run(x0, n_steps, report_interval=report_interval)
     xyz = xyz[int(float(discard) * xyz.shape[0]):]
-    kT = BOLTZMANN * float(temperature)
+    kT = BOLTZMANN_KJ_MOL_K * float(temperature)
     log_w = -(system.force_field.energy(xyz) - soft.energy(xyz)) / kT  # (frames, walkers)
     w = np.exp(log_w - log_w.max())
     phi = system.slow_angle(xyz)

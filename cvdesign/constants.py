@@ -1,0 +1,33 @@
+"""Physical constants, units and default parameters shared by every stage.
+
+Each value has one name, here; every module imports it from this module.
+
+Examples
+--------
+>>> from cvdesign.constants import BOLTZMANN_KJ_MOL_K, UNITS
+>>> round(BOLTZMANN_KJ_MOL_K * 300.0, 4), UNITS["energy"]  # kT at 300 K, kJ/mol
+(2.4943, 'kJ/mol')
+"""
+
+import math
+
+__all__ = ["BOLTZMANN_KJ_MOL_K", "UNITS", "TWO_PI", "COORDINATION_R0_NM",
+           "COORDINATION_EXPONENTS"]
+
+#: Molar Boltzmann constant, kJ/mol/K: k_B N_A (CODATA 2018, exact in the SI of 2019).
+BOLTZMANN_KJ_MOL_K = 0.00831446261815324
+
+#: Units of the quantities cvdesign reads and writes (nm, rad, ps, kJ/mol), as a spec
+#: records them.
+UNITS = {"length": "nm", "angle": "rad", "time": "ps", "energy": "kJ/mol"}
+
+#: The period of a dihedral, rad.
+TWO_PI = 2.0 * math.pi
+
+#: Switching distance of the pool's coordination numbers, nm: about the heavy-atom
+#: contact distance in proteins (common practice, from memory).
+COORDINATION_R0_NM = 0.45
+
+#: Exponents (n, m) of the rational switching function ``(1 - x**n) / (1 - x**m)``,
+#: ``x = r / r0``, of coordination numbers (common practice).
+COORDINATION_EXPONENTS = (6, 12)
