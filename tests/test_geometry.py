@@ -692,13 +692,13 @@ def test_coordination_by_hand_and_across_the_boundary():
 
 
 def test_coordination_in_frame_chunks_equals_one_pass(monkeypatch):
-    import cvdesign.geometry.internal as geometry
+    import cvdesign.geometry.contacts as contacts
 
     rng = np.random.RandomState(17)
     xyz = rng.uniform(0, 2, size=(7, 12, 3))
     boxes = rng.uniform(2.0, 2.5, size=(7, 3))
     one = coordination(xyz, range(6), range(4, 12), 0.5, boxes, gradient=True)
-    monkeypatch.setattr(geometry, "_PAIRS_PER_CHUNK", 100)  # 2 frames per chunk
+    monkeypatch.setattr(contacts, "_PAIRS_PER_CHUNK", 100)  # 2 frames per chunk
     chunked = coordination(xyz, range(6), range(4, 12), 0.5, boxes, gradient=True)
     np.testing.assert_allclose(chunked[0], one[0], rtol=1e-15)
     np.testing.assert_allclose(chunked[1], one[1], rtol=1e-15)

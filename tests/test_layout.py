@@ -7,7 +7,6 @@ cli and ``python -m cvdesign``.
 """
 
 import ast
-import re
 from pathlib import Path
 
 import pytest
@@ -115,3 +114,23 @@ def test_pyproject_lists_every_package_and_reads_the_version_from_one_place():
 
 def test_every_public_name_is_importable_from_cvdesign():
     assert [name for name in cvdesign.__all__ if not hasattr(cvdesign, name)] == []
+
+
+def test_no_package_name_hides_one_of_its_modules():
+    # A package that re-exports a function named like one of its modules makes
+    # ``import cvdesign.pkg.name`` (and monkeypatching that module) return the function.
+    import importlib
+
+    hidden = []
+    for init in PACKAGE.rglob("__init__.py"):
+        package = ".".join(("cvdesign",) + init.parent.relative_to(PACKAGE).parts)
+        mod = importlib.import_module(package)
+        for path in init.parent.glob("*.py"):
+            name = path.stem
+            if name.startswith("__"):
+                continue
+            value = getattr(mod, name, None)
+            if value is not None and not hasattr(value, "__path__") \
+                    and getattr(value, "__name__", None) != f"{package}.{name}":
+                hidden.append(f"{package}.{name}")
+    assert not hidden, hidden

@@ -43,7 +43,7 @@ import numpy as np
 from .. import geometry
 from ..constants import UNITS
 from ..errors import InputError
-from ..geometry.internal import _parse_box
+from ..geometry.box import _parse_box
 from ..io.atomic import atomic_path
 
 __all__ = ["CAUTION", "SHAPE_KEYS", "FunnelStats", "align_to_reference_pocket", "funnel_axis",
