@@ -1,7 +1,17 @@
-"""Candidate descriptors: definitions, enumeration from a topology, features."""
+"""Candidate descriptors: definitions, enumeration from a topology, features.
 
-from .candidates import (Descriptor, Pool, atom_label, atom_labels, build_pool, candidate_pairs,
-                         candidate_pool, prefilter_group_pairs, prefilter_pairs, residue_groups)
+A :class:`Descriptor` is data: a kind (:data:`cvdesign.kinds.KINDS`), 0-based
+atom indices, a stable id and a readable label (:mod:`.descriptors`). A
+:class:`Pool` is an ordered set of descriptors with the *features* they
+contribute to linear combinations (:mod:`.features`). Candidates are
+enumerated from an atom selection and prefiltered on the data
+(:mod:`.candidates`, :func:`build_pool`).
+"""
+
+from .candidates import (build_pool, candidate_pairs, candidate_pool, prefilter_group_pairs,
+                         prefilter_pairs, residue_groups)
+from .descriptors import Descriptor, atom_label, atom_labels
+from .features import Pool
 
 __all__ = ["Descriptor", "Pool", "atom_label", "atom_labels", "candidate_pool",
            "candidate_pairs", "prefilter_pairs", "prefilter_group_pairs", "residue_groups",
