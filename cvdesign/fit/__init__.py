@@ -1,7 +1,10 @@
-"""Linear fits on mergeable moments: discriminants, TICA, VAMP-2."""
+"""Linear fits on mergeable moments: discriminants of labelled states
+(:mod:`.discriminant`: LDA, HLDA), slow linear motions (:mod:`.tica`: TICA,
+implied timescales) and the VAMP-2 score (:mod:`.vamp`)."""
 
-from .discriminant import (HLDA, LDA, TICA, discriminant_directions, fix_signs, rayleigh_quotient,
-                           timescales_from_eigenvalues, two_state_direction)
+from .discriminant import (HLDA, LDA, discriminant_directions, fix_signs, rayleigh_quotient,
+                           two_state_direction)
+from .tica import TICA, timescales_from_eigenvalues
 from .vamp import vamp2_score
 
 __all__ = ["LDA", "HLDA", "TICA", "discriminant_directions", "two_state_direction",

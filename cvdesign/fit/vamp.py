@@ -25,7 +25,7 @@ another block cost a few small matrix operations each.
 import numpy as np
 
 from ..stats.moments import LaggedMoments
-from .discriminant import _check_rcond, _whitener
+from ._linalg import _check_rcond, _whitener
 
 __all__ = ["vamp2_score"]
 

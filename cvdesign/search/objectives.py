@@ -16,8 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..fit.discriminant import TICA, discriminant_directions, rayleigh_quotient, two_state_direction
-from ..fit.vamp import vamp2_score
+from ..fit import TICA, discriminant_directions, rayleigh_quotient, two_state_direction, vamp2_score
 from ..stats.moments import merge_all
 
 __all__ = ["FoldMoments", "Combination", "OBJECTIVES", "heldout_score", "fold_scores",
