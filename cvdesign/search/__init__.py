@@ -1,9 +1,25 @@
-"""Compact linear combinations: greedy forward search, held-out scores, ranking."""
+"""Compact linear combinations: greedy forward search, held-out scores, ranking.
 
-from .objectives import (OBJECTIVES, Combination, FoldMoments, autocorrelation_along, cv_direction,
-                         fit_direction, fold_scores, greedy_search, heldout_score,
-                         rank_combinations, slow_direction, standardize_lagged,
-                         standardize_moments, state_arrays)
+All fitting works from per-state, per-fold :class:`~cvdesign.stats.moments.Moments`
+of standardized features. Folds are groups of whole trajectories, or
+contiguous blocks of frames when a state has a single trajectory, never
+random frames: neighbouring frames are correlated, and a random split would
+score a combination on frames it has effectively already seen.
+
+A combination of descriptors is scored by cross-validation: for each fold,
+LDA is fitted on the other folds and the Fisher ratio of its first direction
+is measured on the held-out fold; the score is the mean over folds, with its
+standard error.
+
+Modules: :mod:`.folds` (per-fold moments, standardization), :mod:`.objectives`
+(``separate``, ``slow``, ``both``; held-out scores), :mod:`.greedy` (forward
+search, ranking).
+"""
+
+from .folds import FoldMoments, standardize_lagged, standardize_moments, state_arrays
+from .greedy import Combination, greedy_search, rank_combinations
+from .objectives import (OBJECTIVES, autocorrelation_along, cv_direction, fit_direction,
+                         fold_scores, heldout_score, slow_direction)
 
 __all__ = ["FoldMoments", "Combination", "OBJECTIVES", "heldout_score", "fold_scores",
            "fit_direction", "slow_direction", "cv_direction", "autocorrelation_along",
