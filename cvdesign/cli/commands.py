@@ -750,7 +750,8 @@ def _cmd_demo(args):
     states = [[name] + [str(data / f) for f in entry["files"]]
               for name, entry in manifest["states"].items()]
     ns = argparse.Namespace(select=None, kinds=DEFAULT_KINDS, cutoff=1.0,
-                            prefilter_stride=10, coordination_r0=COORDINATION_R0_NM, max_terms=5, suggestions=10, folds=4,
+                            prefilter_stride=10, coordination_r0=COORDINATION_R0_NM, max_terms=5,
+                            suggestions=10, folds=4,
                             force=args.force, quiet=False, objective="separate", lag=None,
                             method="hlda", bootstrap=args.bootstrap, seed=0,
                             frame_step_ps=None, n_states=None, temperature=300.0,
