@@ -27,7 +27,7 @@ from ..constants import COORDINATION_EXPONENTS, COORDINATION_R0_NM
 from ..errors import CVDesignError, InputError
 from ..kinds import DEFAULT_KINDS, KINDS
 
-__all__ = ["main", "build_parser"]
+__all__ = ["main", "build_parser", "EXIT_BROKEN_PIPE"]
 
 
 def _kinds(text):
