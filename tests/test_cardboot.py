@@ -30,7 +30,7 @@ from cvdesign import Source, suggest
 from cvdesign.stats.bootstrap import ArraySum, block_bootstrap, merge_blocks
 from cvdesign.score.card import (MAX_CARD_BLOCKS, MIN_CARD_BLOCKS, CardBlocks, card_intervals,
                                  card_statistics, integrated_time_interval, plan_card_blocks)
-from cvdesign.pipeline.suggest import integrated_time
+from cvdesign.pipeline.timing import integrated_time
 from cvdesign.score.univariate import Histograms, fisher_ratio, overlap_coefficient
 
 CARD_COLUMNS = ("fisher_ratio", "overlap", "autocorrelation", "autocorrelation_within_runs")

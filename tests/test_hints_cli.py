@@ -11,7 +11,7 @@ import cvdesign.bias.hints
 from cvdesign import Source, Spec, suggest
 from cvdesign.cli import main
 from cvdesign.bias.hints import suggest_hints
-from cvdesign.pipeline.suggest import _hints_for
+from cvdesign.pipeline.ranking import hints_for
 
 
 def test_specs_carry_hints_computed_from_the_data(demo_result):
@@ -214,7 +214,7 @@ def test_pipeline_records_a_frozen_cv_as_refused_hints():
     entry = {"states": {"a": {"mean": 1.0, "std": 0.0, "n_frames": 10},
                         "b": {"mean": 1.0, "std": 1e-17, "n_frames": 10}},
              "integrated_time_ps": 0.5}
-    hints, refused = _hints_for(entry, 300.0, 2.0)
+    hints, refused = hints_for(entry, 300.0, 2.0)
     assert hints is None
     assert refused.startswith("no state has a resolvable spread of the CV")
 

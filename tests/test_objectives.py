@@ -6,7 +6,7 @@ import pytest
 from cvdesign import InputError, Source, suggest
 from cvdesign.pipeline.explore import propose_states
 from cvdesign.stats.moments import DiagonalLaggedMoments
-from cvdesign.pipeline.suggest import integrated_time
+from cvdesign.pipeline.timing import integrated_time
 from cvdesign.testbed import write_two_wells
 
 

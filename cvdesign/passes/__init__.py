@@ -12,8 +12,9 @@ from .engine import (FEATURE_BUDGET, LEAF_FRAMES, CoordinateFeaturizer, Featuriz
                      PoolFeaturizer, Task, TaskPlan, leaf_frames_for, plan_tasks,
                      reference_features, run_pass, run_task)
 from .keys import MIN_FRAMES_PER_FOLD, Folds, FrameKeys, SegmentLayout, frame_keys
-from .stats import (BlockPass, FeaturePass, FoldMomentsPass, HistogramPass, LaggedPass,
-                    LaggedResult, ScreeningPass, ScreeningResult, group_rows, merge_keyed)
+from .stats import (BlockPass, CardPass, CardSums, FeaturePass, FoldMomentsPass, HistogramPass,
+                    LaggedPass, LaggedResult, ScreeningPass, ScreeningResult, group_rows,
+                    merge_keyed)
 from .tree import TreeReducer, merge_optional
 
 __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
@@ -22,4 +23,5 @@ __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD",
            "FeaturePass", "group_rows", "ScreeningPass", "ScreeningResult", "FoldMomentsPass",
            "LaggedPass", "LaggedResult",
-           "HistogramPass", "BlockPass", "merge_keyed", "TreeReducer", "merge_optional"]
+           "HistogramPass", "BlockPass", "CardPass", "CardSums", "merge_keyed", "TreeReducer",
+           "merge_optional"]

@@ -14,7 +14,9 @@ Each returns the objects the rest of cvdesign works with
   per fold, per (state, fold) or per run on demand;
 * :class:`HistogramPass` -- per-state histograms on fixed bins (exact counts);
 * :class:`BlockPass` -- per-(state, fold, segment, bootstrap block) moments,
-  lagged moments and additive sums, for the block bootstrap.
+  lagged moments and additive sums, for the block bootstrap;
+* :class:`CardPass` -- per-(state, segment, block) sums of many features (moments,
+  histograms, lagged sums), for the score card's bootstrap.
 
 Features pass through ``columns`` (a subset, in order), then ``(x - center) /
 scale`` when given. Every grouping uses :func:`cvdesign.passes.keys.frame_keys`.
@@ -32,7 +34,8 @@ from .engine import Pass, _lag_halo
 from .keys import frame_keys
 
 __all__ = ["FeaturePass", "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass",
-           "LaggedResult", "HistogramPass", "BlockPass", "merge_keyed", "group_rows"]
+           "LaggedResult", "HistogramPass", "BlockPass", "CardPass", "CardSums", "merge_keyed",
+           "group_rows"]
 
 
 def _merge_value(a, b):
@@ -507,3 +510,124 @@ class BlockPass(FeaturePass):
                 lm = LaggedMoments(self.n_features, shift=self.lag_shift)
             out.setdefault((s, k), []).append((m, lm, extra))
         return out
+
+
+_CARD_LAG_FIELDS = ("n_pairs", "sx", "sy", "sxx", "sxy", "syy", "l0", "lt")
+
+
+@dataclass
+class CardSums:
+    """Per-block sums of the score card, from :class:`CardPass`.
+
+    Attributes
+    ----------
+    groups : list of list of ArraySum
+        Per state, its blocks in (segment, block) order; fields ``n``, ``s1``,
+        ``s2`` (sums of ``x - center`` and its square), ``hist`` (counts on the
+        score card's bins) and, with a lag, ``n_pairs``, ``sx``, ``sy``, ``sxx``,
+        ``sxy``, ``syy`` (lagged sums about ``center``), ``l0`` and ``lt`` (about
+        the run's own mean).
+    has_lag : bool
+    """
+
+    groups: list
+    has_lag: bool
+
+    def blocks(self):
+        """Per state, the list of blocks (the input of the score card's bootstrap)."""
+        return self.groups
+
+
+class CardPass(FeaturePass):
+    """Per-block additive sums of many features, for the score card's bootstrap.
+
+    A block is ``rank // block_frames`` within (segment, state) (whole runs when
+    `block_frames` is None); a lagged pair belongs to the block of its first
+    frame, so no pair is lost at a block boundary and the sums over all blocks
+    give the score card's own values. Every field is a plain sum, merged by
+    addition (in the fixed tree of the engine, so bitwise reproducible).
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    center : array-like of shape (n_columns,)
+        Fixed shift of the sums (any value near the data keeps them accurate).
+    low, high : array-like of shape (n_columns,)
+        Histogram range of each feature.
+    n_bins : int
+    block_frames : int or None
+    lags : int or dict of int to int, default=None
+        Lag in frames (per segment); None: no lagged sums.
+    run_means : dict of (int, int) to ndarray, default=None
+        Mean of each run's (segment, state) lagged pairs, for the autocorrelation
+        within runs (``center`` when missing).
+    columns : array-like of int, default=None
+        Features used (None: all).
+    """
+
+    def __init__(self, featurizer, *, center, low, high, n_bins, block_frames, lags=None,
+                 run_means=None, columns=None):
+        super().__init__(featurizer, columns=columns)
+        self.shift = np.asarray(center, dtype=np.float64)  # (FeaturePass.center standardizes)
+        self.low = np.asarray(low, dtype=np.float64)
+        self.high = np.asarray(high, dtype=np.float64)
+        self.n_bins = int(n_bins)
+        self.block_frames = None if block_frames is None else int(block_frames)
+        self.lags = lags
+        self.run_means = {} if run_means is None else dict(run_means)
+
+    def halo(self, segment_index):
+        return _lag_halo(self.lags, segment_index)
+
+    def _empty(self):
+        n = self.n_features
+        fields = {"n": np.zeros(()), "s1": np.zeros(n), "s2": np.zeros(n),
+                  "hist": np.zeros((n, self.n_bins))}
+        if self.lags is not None:
+            fields.update({f: np.zeros(()) if f == "n_pairs" else np.zeros(n)
+                           for f in _CARD_LAG_FIELDS})
+        return fields
+
+    def map(self, leaf):
+        x = self.values(leaf.x)
+        si = leaf.segment
+        keys = frame_keys(leaf.layout, leaf.frames, block_frames=self.block_frames)
+        out = {}
+        for (s, b), rows in group_rows(keys.states, keys.block):
+            acc = self._empty()
+            d = x[rows] - self.shift
+            acc["n"] += rows.size
+            acc["s1"] += d.sum(axis=0)
+            acc["s2"] += (d * d).sum(axis=0)
+            h = Histograms(self.low, self.high, n_states=1, n_bins=self.n_bins)
+            h.add(x[rows], np.zeros(rows.size, dtype=np.intp))
+            acc["hist"] += h.counts[0]
+            out[(s, si, b)] = acc
+        lag = _lag_of(self.lags, si)
+        if lag is not None:
+            i, j = leaf.pairs(lag)
+            first = frame_keys(leaf.layout, leaf.frames[i], block_frames=self.block_frames)
+            xi, yi = x[i], self.values(leaf.window_x[j])
+            for (s, b), rows in group_rows(first.states, first.block):
+                mean = self.run_means.get((si, s), self.shift)
+                p, q = xi[rows] - self.shift, yi[rows] - self.shift
+                u, v = xi[rows] - mean, yi[rows] - mean
+                acc = out[(s, si, b)]
+                acc["n_pairs"] += rows.size
+                acc["sx"] += p.sum(axis=0)
+                acc["sy"] += q.sum(axis=0)
+                acc["sxx"] += (p * p).sum(axis=0)
+                acc["sxy"] += (p * q).sum(axis=0)
+                acc["syy"] += (q * q).sum(axis=0)
+                acc["l0"] += 0.5 * (u * u + v * v).sum(axis=0)
+                acc["lt"] += (u * v).sum(axis=0)
+        return {key: ArraySum(**acc) for key, acc in out.items()}
+
+    def merge(self, a, b):
+        return merge_keyed(a, b)
+
+    def finish(self, partial, plan):
+        groups = [[] for _ in range(plan.n_states)]
+        for (s, _, _), block in sorted((partial or {}).items()):
+            groups[s].append(block)
+        return CardSums(groups, self.lags is not None)

@@ -48,8 +48,10 @@ from ..fit import TICA
 from ..io.source import Source
 from ..pool import build_pool
 from ..search import standardize_lagged
-from ..stats.moments import DiagonalMoments, LaggedMoments
-from .suggest import _chunk_frames, _lag_frames, _Series, read_timesteps
+from ..stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator,
+                             LaggedMoments, merge_all)
+from .timing import lag_frames as _lag_frames
+from .timing import read_timesteps
 
 __all__ = ["propose_states", "state_kinetics", "Exploration", "StateKinetics",
            "MIN_SILHOUETTE", "MIN_MEMORY", "MIN_SEPARATION", "SILHOUETTE_TIE"]
@@ -745,3 +747,95 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
                        criterion=criterion, notes=notes,
                        longest_run_ps=float(max(lengths)) if lengths else None,
                        kinetics=kin, warnings=warnings)
+
+
+# -- streaming helpers (until propose_states runs on the pass engine)
+def _chunk_frames(source, n_features, budget=2_000_000):
+    """Frames per chunk so that a chunk's feature matrix stays near `budget` numbers."""
+    return int(min(source.chunk_size, max(8, budget // max(1, n_features))))
+
+
+class _Series:
+    """Lagged statistics of many time series, keyed, fed chunk by chunk.
+
+    A series is identified by a key (e.g. segment, state, fold); frames of one
+    key that do not follow each other (a gap in frame numbers) start a new
+    series, so no pair spans a gap, a state change, or a file boundary.
+    """
+
+    def __init__(self, n_features, shift, *, diagonal):
+        self.n_features = n_features
+        self.shift = shift
+        self.diagonal = diagonal
+        self._acc = {}
+        self._last = {}
+
+    def feed(self, key, frames, x, lag):
+        """Feed rows `x` (frames `frames`, consecutive or not) of the series `key`."""
+        if x.shape[0] == 0:
+            return
+        acc = self._acc.get(key)
+        if acc is None:
+            acc = self._acc[key] = LagAccumulator(self.n_features, lag, shift=self.shift,
+                                                  diagonal=self.diagonal)
+        cuts = np.flatnonzero(np.diff(frames) != 1) + 1
+        last = self._last.get(key)
+        if last is not None and frames[0] != last + 1:
+            acc.break_series()
+        start = 0
+        for c in list(cuts) + [len(frames)]:
+            acc.feed(x[start:c])
+            if c < len(frames):
+                acc.break_series()
+            start = c
+        self._last[key] = frames[-1]
+
+    def moments_of(self, key):
+        """Moments of one key (an empty object if the key was never fed)."""
+        acc = self._acc.get(key)
+        if acc is None:
+            cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
+            return cls(self.n_features, shift=self.shift)
+        m = acc.moments.copy()
+        m.lag = None
+        return m
+
+    def local_autocorrelation(self):
+        """Autocorrelation at the lag with every series about its own mean.
+
+        The variances and lagged covariances of the keys (diagonal statistics),
+        each about the key's own mean, are combined weighted by their pair
+        counts: the decorrelation *within* runs, free of the offsets between
+        runs or states.
+        """
+        c0 = np.zeros(self.n_features)
+        ct = np.zeros(self.n_features)
+        for acc in self._acc.values():
+            m = acc.moments
+            if m.count == 0:
+                continue
+            _, v0, c = m.covariances(reversible=True)
+            c0 += m.count * v0
+            ct += m.count * c
+        out = np.full(self.n_features, np.nan)
+        ok = c0 > 0
+        out[ok] = ct[ok] / c0[ok]
+        return out
+
+    def run_means(self):
+        """Mean of the lagged pairs of each key (reversible, both ends), by key."""
+        return {key: acc.moments.covariances(reversible=True)[0]
+                for key, acc in self._acc.items() if acc.moments.count > 0}
+
+    def moments(self, select=None):
+        """Merged moments of the keys for which ``select(key)`` is true (all if None)."""
+        out = []
+        for key, acc in self._acc.items():
+            if select is None or select(key):
+                m = acc.moments.copy()
+                m.lag = None  # files may need different frame lags for one lag in ps
+                out.append(m)
+        if not out:
+            cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
+            return cls(self.n_features, shift=self.shift)
+        return merge_all(out)

@@ -1,0 +1,496 @@
+"""Ranking: shortlist, search, final fits, bootstrap and the ranked entries.
+
+Everything here works on merged statistics (:class:`~cvdesign.search.FoldMoments`
+and the held-out pass's blocks), never on frames.
+"""
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..fit import rayleigh_quotient, timescales_from_eigenvalues
+from ..score.card import card_intervals
+from ..score.redundancy import descriptor_correlation, redundancy_graph, representatives
+from ..score.univariate import overlap_coefficient
+from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction,
+                      greedy_search, heldout_score, rank_combinations, slow_direction,
+                      state_arrays)
+from ..stats.bootstrap import block_bootstrap, percentile_interval
+from ..stats.moments import merge_all
+
+__all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit", "Shortlist",
+           "shortlist", "search", "fit_ranked", "kinetic_map_scale", "bootstrap_ranked",
+           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap"]
+
+#: Bootstrap refits of the search for selection frequencies, and the number of best
+#: shortlisted descriptors (besides the ranked terms) they may choose from.
+SELECTION_REPLICATES = 40
+SELECTION_POOL = 12
+
+
+@dataclass
+class Fit:
+    """A ranked combination fitted on all data, and on every fold's training part.
+
+    Attributes
+    ----------
+    gidx : list of int
+        Its descriptors, as positions in the screened list.
+    idx : ndarray of int
+        Their columns in the fold moments.
+    w : ndarray
+        Direction on all data (signed so the last state lies higher; kinetic-map
+        units for ``slow``).
+    fold_w : list of ndarray
+        Direction fitted without each fold (signed like `w`).
+    """
+
+    gidx: list
+    idx: np.ndarray
+    w: np.ndarray
+    fold_w: list
+
+
+@dataclass
+class Shortlist:
+    """The screened descriptors the search combines, one per redundancy group.
+
+    Attributes
+    ----------
+    members : list of int
+        Positions in the screened list, best first.
+    stands_for : dict of int to list of str
+        Pool descriptor index of a representative -> ids of those it stands for.
+    notes_by_desc : dict of int to str
+        Pool descriptor index -> "represented by ..." note.
+    """
+
+    members: list
+    stands_for: dict
+    notes_by_desc: dict
+
+
+def shortlist(pool, screening, fm, priors, config, notes):
+    """One representative per group of redundant screened descriptors (see
+    :mod:`cvdesign.score.redundancy`): correlated within the states and adding nothing
+    to each other's held-out score."""
+    screened, groups = screening.screened, screening.groups
+    pooled = fm.pooled()
+    within = np.tensordot(priors, np.array([m.covariance for m in pooled]), axes=1)
+    dcorr = descriptor_correlation(within, groups)
+    adds_nothing = _AddsNothing(fm, groups, config.search, config.min_gain)
+    graph = redundancy_graph(dcorr, config.max_correlation, adds_nothing=adds_nothing)
+    reps = representatives(graph, {g: -float(g) for g in range(len(screened))})
+    notes_by_desc, stands_for = {}, {}
+    for rep, others in reps:
+        stands_for[screened[rep]] = [pool.descriptors[screened[o]].id for o in others]
+        for o in others:
+            notes_by_desc[screened[o]] = (
+                f"represented by {pool.descriptors[screened[rep]].id} "
+                f"(|r|={dcorr[rep, o]:.3f}; together they score no better than alone)")
+    members = [rep for rep, _ in reps][:config.shortlist_size]
+    n_red = sum(len(o) for _, o in reps)
+    notes.append(f"redundancy: {n_red} of the {len(screened)} screened descriptors are "
+                 f"represented by a better one (pooled within-state |r| > "
+                 f"{config.max_correlation:g} and the pair's held-out score not more than "
+                 f"{config.min_gain:.0%} above the better one alone; {adds_nothing.kept} "
+                 "correlated pairs kept apart because their combination scores higher); "
+                 f"shortlist: {len(members)} representatives")
+    return Shortlist(members, stands_for, notes_by_desc)
+
+
+def search(fm, screening, short, config, notes):
+    """Greedy forward searches from the best single descriptors, ranked (1-SE rule)."""
+    groups = [screening.groups[g] for g in short.members]
+    combos = greedy_search(fm, groups, max_terms=config.max_terms, n_seeds=config.n_seeds,
+                           min_gain=config.min_gain, **config.search)
+    ranked = rank_combinations(combos, limit=config.n_suggestions)
+    notes.append(_search_note(config.objective, config.method, config.shrinkage, len(combos),
+                              min(config.n_seeds, len(short.members)), config.min_gain))
+    return ranked
+
+
+def fit_ranked(ranked, fm, screening, short, config):
+    """The direction of each ranked combination on all data and without each fold."""
+    fits = []
+    pooled = fm.pooled()
+    for comb in ranked:
+        gidx = [short.members[m] for m in comb.members]
+        idx = np.concatenate([screening.groups[g] for g in gidx])
+        w = cv_direction(fm, idx, **config.search)
+        mu = np.array([m.mean[idx] for m in pooled])
+        if mu[-1] @ w < mu[0] @ w:
+            w = -w
+        if config.objective == "slow":
+            w = kinetic_map_scale(w, fm.lagged_pooled(), idx)
+        fold_w = []
+        for k in range(fm.n_folds):
+            wk = cv_direction(fm, idx, fold=k, **config.search)
+            fold_w.append(wk if wk @ w >= 0 else -wk)
+        fits.append(Fit(gidx, idx, w, fold_w))
+    return fits
+
+
+class _AddsNothing:
+    """``adds_nothing(i, j)``: do screened descriptors i and j together score no better
+    (held-out, by the search's own objective) than the better of the two alone, by more
+    than the search's `min_gain`? Counts the correlated pairs it keeps apart."""
+
+    def __init__(self, fm, groups, search, min_gain):
+        self.fm, self.groups, self.search, self.min_gain = fm, groups, search, min_gain
+        self._single = {}
+        self.kept = 0
+
+    def _score(self, members):
+        idx = np.concatenate([self.groups[m] for m in members])
+        return heldout_score(self.fm, idx, **self.search)[0]
+
+    def __call__(self, i, j):
+        for g in (i, j):
+            if g not in self._single:
+                self._single[g] = self._score((g,))
+        best = max(self._single[i], self._single[j])
+        redundant = not self._score((i, j)) > best + self.min_gain * abs(best)
+        self.kept += not redundant
+        return redundant
+
+
+def kinetic_map_scale(w, lagged, idx):
+    """Scale a slow direction to kinetic-map units (Noé and Clementi, J. Chem. Theory
+    Comput. 2015): the CV's variance becomes ``lambda^2``, its autocorrelation at the lag
+    squared, so distances along slow CVs of different runs or suggestions compare in
+    kinetic terms. A direction with ``lambda <= 0`` is scaled to unit variance."""
+    sub = lagged.subset(np.asarray(idx, dtype=np.intp))
+    _, c0, ct = sub.covariances(reversible=True)
+    var = float(w @ c0 @ w)
+    if not var > 0:
+        return w
+    lam = float(w @ ct @ w) / var
+    return w * (lam if lam > 0 else 1.0) / math.sqrt(var)
+
+
+def hints_for(entry, temperature, md_step_fs):
+    """(bias-parameter hints, None) for a ranked CV, or (None, why they were refused)."""
+    from ..bias.hints import suggest_hints
+
+    try:
+        return suggest_hints(entry["states"], temperature=temperature, md_step_fs=md_step_fs,
+                             autocorrelation_time_ps=entry.get("integrated_time_ps"),
+                             leave_out_frozen=True), None
+    except ValueError as exc:
+        return None, str(exc)
+
+
+def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
+    what = {"separate": "held-out Fisher ratio of the discriminant direction",
+            "slow": "held-out VAMP-2 of the slowest singular function (squared correlation "
+                    "across the lag)",
+            "both": "held-out J/(1+J) times the held-out autocorrelation at the lag"}[objective]
+    disc = ("; the CV is the slowest TICA direction (reversible estimate) in kinetic-map "
+            "scaling" if objective == "slow" else
+            f"; {method.upper()} with shrinkage {shrinkage:g}, equal state weights")
+    return (f"search ({objective}): {n_combos} combinations from greedy forward searches "
+            f"started at the {n_seeds} best single descriptors, scored by {what}; a term is "
+            f"added only if it raises the score by more than {min_gain:.0%}; ranked with the "
+            f"one-standard-error rule{disc}")
+
+
+def _finite(x):
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def card_interval_rows(card, card_desc, card_feat, pool, center, priors, constant, n_boot, seed):
+    """Score-card intervals by descriptor id: {index: {column_ci: [low, high]}}."""
+    if not card_desc:
+        return None
+    local = {i: j for j, i in enumerate(card_desc)}
+    feature_descriptor = np.array([local[int(pool.feature_descriptor[f])] for f in card_feat],
+                                  dtype=np.intp)
+    res = card_intervals(card, center[card_feat], priors, constant[card_feat],
+                         feature_descriptor, len(card_desc), n_boot=n_boot, seed=seed + 2)
+    if res is None:
+        return None
+    out = {}
+    for j, i in enumerate(card_desc):
+        out[i] = {f"{name}_ci": [_finite(lo[j]), _finite(hi[j])]
+                  for name, (_, lo, hi) in res.items()}
+    return out
+
+
+def _mean_finite(values):
+    """Mean of the finite values (NaN when there are none: not measured)."""
+    v = np.asarray(values, dtype=np.float64)
+    v = v[np.isfinite(v)]
+    return float(v.mean()) if v.size else float("nan")
+
+
+def heldout_overlap(counts):
+    """Mean over folds of the states' overlap along each CV; counts (fold, state, cv, bin)."""
+    return np.mean([overlap_coefficient(counts[k]) for k in range(counts.shape[0])], axis=0)
+
+
+def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
+    """Confidence intervals of weights and scores, and how often terms are selected.
+
+    Parameters
+    ----------
+    held : HeldOut
+        Blocks of the held-out pass (per state and fold).
+    fits : list of Fit
+    short : Shortlist
+    screening : Screening
+    priors : ndarray
+    fm : FoldMoments
+    config : SuggestConfig
+    has_lag : bool
+
+    Returns
+    -------
+    dict or None
+        ``combos``: per ranked CV, intervals of its weights, Fisher ratio,
+        autocorrelation and held-out scores, its terms' selection frequencies;
+        None when a state has fewer than two blocks.
+    """
+    blocks, where = held.blocks, held.where
+    short = short.members
+    groups = screening.groups
+    search = config.search
+    max_terms, min_gain, n_seeds = config.max_terms, config.min_gain, config.n_seeds
+    n_bootstrap, seed = config.n_bootstrap, config.seed
+    n_states, n_folds = fm.n_states, fm.n_folds
+    per_state = [[b for k in range(n_folds) for b in blocks.get((s, k), [])]
+                 for s in range(n_states)]
+    if any(len(g) < 2 for g in per_state):
+        return None
+    p_fits = [(np.array([where[int(i)] for i in f.idx], dtype=np.intp), f.w) for f in fits]
+    fold_ws = [f.fold_w for f in fits]
+    short_groups = [np.array([where[int(i)] for i in groups[g]], dtype=np.intp) for g in short]
+
+    def stat(merged):
+        states = [m[0] for m in merged]
+        lag = merge_all([m[1] for m in merged]) if has_lag else None
+        out = []
+        for p_idx, w_ref in p_fits:
+            if search["objective"] == "slow":
+                w = slow_direction(lag, p_idx)[0]
+            else:
+                w = fit_direction(states, p_idx, priors, search["shrinkage"],
+                                  method=search["method"])
+            if w @ w_ref < 0:
+                w = -w
+            if search["objective"] == "slow":
+                w = kinetic_map_scale(w, lag, p_idx)
+            means, covs = state_arrays(states, p_idx)
+            out.extend(w.tolist())
+            out.append(rayleigh_quotient(w, means, covs, priors))
+            out.append(autocorrelation_along(w, lag, p_idx) if has_lag else np.nan)
+        return np.array(out)
+
+    res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed)
+    out = {"combos": []}
+    pos = 0
+    for p_idx, _ in p_fits:
+        n = p_idx.size
+        out["combos"].append({
+            "weights_ci": [[_finite(a), _finite(b)] for a, b in
+                           zip(res.low[pos:pos + n], res.high[pos:pos + n])],
+            "fisher_ratio_ci": [_finite(res.low[pos + n]), _finite(res.high[pos + n])],
+            "autocorrelation_ci": ([_finite(res.low[pos + n + 1]),
+                                    _finite(res.high[pos + n + 1])] if has_lag else None),
+        })
+        pos += n + 2
+    # How often each term of each ranked CV is kept when the whole search is rerun on a
+    # bootstrap resample of the folds: in each refit, the CV's counterpart is the refit's
+    # ranked combination sharing the most descriptors with it (ties: the better ranked),
+    # and a term counts as selected when the counterpart holds it. The refits run the
+    # main search (same seeds, objective and rule) over the terms of the ranked
+    # combinations and the best SELECTION_POOL representatives, which bounds the cost.
+    per_fold = [blocks.get((s, k), []) for s in range(n_states) for k in range(n_folds)]
+    # blocks are resampled within each state and fold: a state and fold with a single
+    # block would give every refit the same data (selection 100 %, intervals of zero
+    # width), so the refits need at least two blocks in each
+    if any(len(g) < 2 for g in per_fold):
+        out["selection_skipped"] = (
+            "no selection frequencies and no intervals for the held-out scores: some state "
+            "has a single bootstrap block in a held-out fold (runs too short for the "
+            f"blocks of {held.block_desc}), so refits of the search on resampled folds "
+            "would all see the same data; give more or longer runs per state")
+    else:
+        in_ranked = {short.index(g) for f in fits for g in f.gidx}
+        cand = sorted(in_ranked | set(range(min(SELECTION_POOL, len(short)))))
+        cand_groups = [short_groups[j] for j in cand]
+        cpos = {j: c for c, j in enumerate(cand)}
+        ranked_sets = [[cpos[short.index(g)] for g in f.gidx] for f in fits]
+        n_terms_all = sum(len(m) for m in ranked_sets)
+
+        def select(merged):
+            grid = [[merged[s * n_folds + k][0] for k in range(n_folds)] for s in range(n_states)]
+            lag = ([merge_all([merged[s * n_folds + k][1] for s in range(n_states)])
+                    for k in range(n_folds)] if has_lag else None)
+            boot_fm = FoldMoments(grid, priors, lag)
+            combos = greedy_search(boot_fm, cand_groups, max_terms=max_terms, n_seeds=n_seeds,
+                                   min_gain=min_gain, **search)
+            refit = [frozenset(c.members) for c in rank_combinations(combos, limit=len(fits))]
+            hit = np.zeros(n_terms_all + len(fits))
+            pos = 0
+            for ci, members in enumerate(ranked_sets):
+                mine = frozenset(members)
+                twin = max(refit, key=lambda r: (len(r & mine), -refit.index(r)))
+                hit[pos:pos + len(members)] = [m in twin for m in members]
+                hit[n_terms_all + ci] = twin == mine
+                pos += len(members)
+            # held-out scores of the ranked combinations on the resampled folds (refitted),
+            # and their held-out overlap and autocorrelation along the fold directions
+            held = []
+            counts = np.array([[merged[s * n_folds + k][2]["h"] for s in range(n_states)]
+                               for k in range(n_folds)])
+            overlap = heldout_overlap(counts)
+            for ci, (p_idx, _) in enumerate(p_fits):
+                held.append(heldout_score(boot_fm, p_idx, **search)[0])
+                held.append(heldout_score(boot_fm, p_idx, objective="separate",
+                                          method=search["method"],
+                                          shrinkage=search["shrinkage"])[0])
+                held.append(overlap[ci])
+                held.append(_mean_finite([autocorrelation_along(fold_ws[ci][k], lag[k], p_idx)
+                                          for k in range(n_folds)]) if has_lag else np.nan)
+            return np.concatenate([hit, held])
+
+        n_sel = min(n_bootstrap, SELECTION_REPLICATES)
+        n_hit = n_terms_all + len(fits)
+        sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1)
+        ok = np.isfinite(sel.replicates[:, :n_hit]).all(axis=1)
+        freq = sel.replicates[ok, :n_hit].mean(axis=0) if ok.any() else np.full(n_hit, np.nan)
+        low, high = percentile_interval(sel.replicates[ok, n_hit:])
+        pos = 0
+        for i, c in enumerate(out["combos"]):
+            for j, key in enumerate(("heldout_score_ci", "heldout_fisher_ratio_ci",
+                                     "heldout_overlap_ci", "heldout_autocorrelation_ci")):
+                c[key] = [_finite(low[4 * i + j]), _finite(high[4 * i + j])]
+            if not has_lag:
+                c["heldout_autocorrelation_ci"] = None
+            n = len(ranked_sets[i])
+            c["selection"] = [_finite(v) for v in freq[pos:pos + n]]
+            c["reproduced"] = _finite(freq[n_terms_all + i])
+            pos += n
+        out["n_selection"] = int(ok.sum())
+    return out
+
+
+#: A CV whose Fisher ratio exceeds this barely moves within the states: its within-state
+#: spread is below 1/2000 of the distance between two state means.
+NEAR_FROZEN_FISHER = 1e6
+
+
+def _rigid_cv_warnings(state_stats, j_all, heldout):
+    """Warnings for a CV that is (nearly) constant within the states."""
+    if not (j_all > NEAR_FROZEN_FISHER or np.max(heldout) > NEAR_FROZEN_FISHER):
+        return []
+    narrow = min(state_stats, key=lambda k: state_stats[k]["std"])
+    return [f"the CV barely moves within the states (Fisher ratio {j_all:.3g}; spread in "
+            f"state {narrow!r} {state_stats[narrow]['std']:.3g} CV units): its descriptors "
+            "are (nearly) rigidly tied within each state, which points at repeated or "
+            "constrained frames, and a bias along it would need kernels narrower than the "
+            "data resolve; check the runs before using it"]
+
+
+def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, states, config,
+                  lag_ps, boot):
+    """The ranking's record of one combination: scores, terms, per-state statistics.
+
+    Parameters
+    ----------
+    rank : int
+        1 for the best.
+    comb : cvdesign.search.Combination
+    fit : Fit
+    overlap : float
+        Held-out overlap of the states along the CV.
+    pool : Pool
+    screening : Screening
+    fm : FoldMoments
+    priors : ndarray
+    states : list of str
+    config : SuggestConfig
+    lag_ps : float or None
+        Lag of the slowness scores (None: not measured).
+    boot : dict or None
+        From :func:`bootstrap_ranked`.
+
+    Returns
+    -------
+    dict
+    """
+    gidx, idx, w, fold_w = fit.gidx, fit.idx, fit.w, fit.fold_w
+    screened, groups, scr_feat = screening.screened, screening.groups, screening.features
+    center, scale = screening.center, screening.scale
+    pooled = fm.pooled()
+    objective, method = config.objective, config.method
+    # held-out separation (arithmetic Fisher ratio) and autocorrelation of the fold directions
+    sep, rho = [], []
+    for k in range(fm.n_folds):
+        means, covs = state_arrays(fm.test(k), idx)
+        sep.append(min(rayleigh_quotient(fold_w[k], means, covs, priors), 1e12))
+        if fm.lagged is not None:
+            rho.append(autocorrelation_along(fold_w[k], fm.lagged_test(k), idx))
+    sep = np.array(sep)
+    mu, cov = state_arrays(pooled, idx)
+    j_all = rayleigh_quotient(w, mu, cov, priors)
+    rho_all = timescale = None
+    if fm.lagged is not None:
+        rho_all = autocorrelation_along(w, fm.lagged_pooled(), idx)
+        timescale = float(timescales_from_eigenvalues([rho_all], lag_ps)[0])
+    terms, local = [], 0
+    ci = boot["combos"][rank - 1] if boot is not None else None
+    sel = ci.get("selection") if ci is not None else None
+    for g in gidx:
+        desc = pool.descriptors[screened[g]]
+        for t, fi in zip(desc.transforms, groups[g]):
+            gf = scr_feat[fi]
+            term = {"descriptor": desc.id, "label": desc.label, "kind": desc.kind,
+                    "atoms": list(desc.atoms), "transform": t,
+                    "center": float(center[gf]), "scale": float(scale[gf]),
+                    "weight": float(w[local])}
+            if ci is not None:
+                term["weight_ci"] = ci["weights_ci"][local]
+            if sel is not None:
+                term["selection_frequency"] = sel[gidx.index(g)]
+            terms.append(term)
+            local += 1
+    state_stats = {}
+    for s, m in enumerate(pooled):
+        var = float(w @ m.covariance[np.ix_(idx, idx)] @ w)
+        state_stats[states[s]] = {"mean": float(m.mean[idx] @ w),
+                                         "std": math.sqrt(max(var, 0.0)),
+                                         "n_frames": int(round(m.count))}
+    se = float(sep.std(ddof=1) / math.sqrt(len(sep))) if len(sep) > 1 else 0.0
+    entry = {
+        "rank": rank, "spec": f"cv-{rank:02d}.json", "n_terms": comb.n_terms,
+        "objective": objective, "method": "tica" if objective == "slow" else method,
+        "heldout_score": comb.score, "heldout_score_se": comb.se,
+        "heldout_score_folds": [float(v) for v in comb.fold_scores],
+        "heldout_fisher_ratio": float(sep.mean()), "heldout_fisher_ratio_se": se,
+        "heldout_overlap": _finite(overlap), "fisher_ratio_all": _finite(j_all),
+        "lag_ps": lag_ps,
+        "heldout_autocorrelation": _finite(_mean_finite(rho)) if rho else None,
+        "autocorrelation_all": _finite(rho_all) if rho_all is not None else None,
+        "timescale_ps": _finite(timescale) if timescale is not None else None,
+        "states": state_stats, "terms": terms,
+        "warnings": _rigid_cv_warnings(state_stats, j_all, sep),
+    }
+    if ci is not None:
+        entry["fisher_ratio_ci"] = ci["fisher_ratio_ci"]
+        entry["autocorrelation_ci"] = ci["autocorrelation_ci"]
+        entry["bootstrap_refits_for_selection"] = boot.get("n_selection")
+        entry["reproduced_in_refits"] = ci.get("reproduced")
+        for key in ("heldout_score_ci", "heldout_fisher_ratio_ci", "heldout_overlap_ci",
+                    "heldout_autocorrelation_ci"):
+            if ci.get(key) is not None:
+                entry[key] = ci[key]
+        aci = ci.get("autocorrelation_ci")
+        if aci and lag_ps and None not in aci:
+            # the implied timescale is monotonic in the autocorrelation
+            entry["timescale_ci_ps"] = [
+                _finite(v) for v in timescales_from_eigenvalues(np.clip(aci, -1.0, 1.0), lag_ps)]
+    return entry

@@ -1,0 +1,128 @@
+"""Spec documents of ranked CVs, and the provenance they carry.
+
+Each ranked combination becomes a spec (:class:`cvdesign.spec.Spec`), built as a
+document and validated by loading it (schema and semantic checks) before it is
+written; inputs are recorded by name and checksum, frame ranges or label checksums.
+"""
+
+import hashlib
+from pathlib import Path
+
+import numpy as np
+
+from .._version import __version__
+from ..constants import COORDINATION_EXPONENTS, UNITS
+from ..io.source import file_sha256
+from ..kinds import GROUP_KINDS
+from ..spec import Spec, atom_identity, residue_hashes, topology_fingerprint
+from .output import CAUTION
+
+__all__ = ["describe_inputs", "input_checksums", "spec_document"]
+
+
+def describe_inputs(source, seg_counts, timesteps):
+    out = {}
+    for si, seg in enumerate(source.segments):
+        key = str(seg.path)
+        row = out.setdefault(key, {"path": key, "file": seg.path.name, "states": [],
+                                   "frames": 0, "frame_step_ps": timesteps.get(si)})
+        for s in np.flatnonzero(seg_counts[si]):
+            if source.states[s] not in row["states"]:
+                row["states"].append(source.states[s])
+        row["frames"] += int(seg_counts[si].sum())
+        if row["frame_step_ps"] is None:
+            row["frame_step_ps"] = timesteps.get(si)
+    return list(out.values())
+
+
+def _topology_provenance(source):
+    if source.topology_path is None:
+        return {"file": None, "sha256": None}
+    return {"file": Path(source.topology_path).name, "sha256": file_sha256(source.topology_path)}
+
+
+def _segments_provenance(source):
+    """Which frames of which file were given to which state."""
+    out = []
+    for seg in source.segments:
+        row = {"file": seg.path.name}
+        if seg.labels is None:
+            row.update({"state": seg.state, "start": seg.start, "stop": seg.stop})
+        else:
+            labels = [x for x in seg.labels]
+            counts = {}
+            for x in labels:
+                if x is not None:
+                    counts[x] = counts.get(x, 0) + 1
+            row.update({"labels": {"n_frames": len(labels), "frames_per_state": counts,
+                                   "sha256": _labels_sha256(labels)}})
+        out.append(row)
+    return out
+
+
+def _labels_sha256(labels):
+    text = "\n".join("" if x is None else str(x) for x in labels)
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def spec_document(source, pool, entry, params, checksums, seed):
+    """The spec of a ranked CV as a plain dict, validated through :class:`Spec`."""
+    top = source.topology
+    by_id = {d.id: d for d in pool.descriptors}
+    seen, descriptors = set(), []
+    for t in entry["terms"]:
+        if t["descriptor"] in seen:
+            continue
+        seen.add(t["descriptor"])
+        d = by_id[t["descriptor"]]
+        doc = {"id": d.id, "kind": d.kind, "label": d.label, "periodic": d.periodic}
+        if d.kind in GROUP_KINDS:
+            doc["groups"] = [list(g) for g in d.groups]
+            doc["atom_identities"] = [[atom_identity(top, a) for a in g] for g in d.groups]
+            if d.kind == "center_distance":
+                doc["weighting"] = pool.weighting(d)
+                if doc["weighting"] == "mass":
+                    doc["masses"] = [pool.group_masses(g) for g in d.groups]
+            else:
+                n, m = COORDINATION_EXPONENTS
+                doc.update(r0=d.r0, n=n, m=m)
+        else:
+            doc["atoms"] = list(d.atoms)
+            doc["atom_identities"] = [atom_identity(top, a) for a in d.atoms]
+        descriptors.append(doc)
+    terms = [{"descriptor": t["descriptor"], "transform": t["transform"], "center": t["center"],
+              "scale": t["scale"], "weight": t["weight"]} for t in entry["terms"]]
+    scores = {"rank": entry["rank"]}
+    for key in ("heldout_score", "heldout_score_se", "heldout_fisher_ratio",
+                "heldout_fisher_ratio_se", "heldout_overlap", "fisher_ratio_all",
+                "heldout_autocorrelation", "autocorrelation_all", "timescale_ps", "lag_ps",
+                "integrated_time_ps"):
+        if entry.get(key) is not None:
+            scores[key] = entry[key]
+    doc = {
+        "format": "cvdesign-spec", "version": 1, "name": entry["spec"][:-5],
+        "units": dict(UNITS),
+        "topology": {"n_atoms": top.n_atoms, "fingerprint": topology_fingerprint(top),
+                     "residues": residue_hashes(top)},
+        "descriptors": descriptors, "terms": terms, "offset": 0.0, "periodic": False,
+        "states": entry["states"], "scores": scores,
+        **({"hints": entry["hints"]} if entry.get("hints") else
+           {"hints": {"hints_refused": entry["hints_refused"]}} if entry.get("hints_refused")
+           else {}),
+        "provenance": {"cvdesign_version": __version__,
+                       "method": f"{entry['method']} ({entry['objective']})",
+                       "inputs": [{"file": c["file"], "sha256": c["sha256"],
+                                   "state": ",".join(c["states"]) or None} for c in checksums],
+                       "seed": seed, "parameters": params,
+                       "topology": _topology_provenance(source),
+                       "segments": _segments_provenance(source)},
+        "caution": " ".join([CAUTION] + [f"Warning: {w}." for w in entry.get("warnings", [])]),
+    }
+    return Spec.from_dict(doc).to_dict()
+
+
+def input_checksums(source, inputs):
+    """Name, SHA-256 and states of every trajectory file a source reads."""
+    return [{"file": Path(p).name, "sha256": file_sha256(p),
+             "states": next(i["states"] for i in inputs if i["path"] == str(p))}
+            for p in source.files()]

@@ -1,0 +1,260 @@
+"""Time in the pipeline: frame spacings, lags in frames, integrated times, even spacing.
+
+A lag is given in ps and converted with each file's frame spacing
+(:meth:`cvdesign.io.source.Source.timestep`); integrated autocorrelation times
+come from the autocorrelation on a geometric grid of lags. The check that
+stored times are evenly spaced is a pass (:class:`EvenSpacingPass`), so it
+runs with the screening statistics and needs no read of its own.
+"""
+
+import math
+
+import numpy as np
+
+from ..errors import InputError
+from ..io.source import stores_time
+from ..passes import Pass
+
+__all__ = ["read_timesteps", "lag_frames", "iat_lags", "integrated_time", "local_autocorrelation",
+           "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments"]
+
+
+def read_timesteps(source):
+    """Time step (ps, or None when unknown) of every segment of a source.
+
+    Times are stored in single precision, so 7 significant digits are kept.
+    """
+    out = {}
+    for si in range(len(source.segments)):
+        v = source.timestep(si)
+        out[si] = None if v is None else float(f"{v:.7g}")
+    return out
+
+
+def lag_frames(source, lag, timesteps):
+    """Lag in frames of each segment, for a lag in ps; refuse what cannot be converted."""
+    out = {}
+    for si, seg in enumerate(source.segments):
+        dt = timesteps.get(si)
+        if dt is None or not dt > 0:
+            raise InputError(
+                f"lag={lag:g} ps cannot be converted to frames of {str(seg.path)!r}: its time "
+                "step is unknown (the format stores no times, or the file has one frame); "
+                "give the time step with --frame-step-ps PS")
+        ratio = lag / dt
+        n = int(round(ratio))
+        if n < 1 or abs(ratio - n) > 1e-6 * max(1.0, ratio):
+            raise InputError(
+                f"lag={lag:g} ps is not a whole number of frames of {str(seg.path)!r} "
+                f"(time step {dt:g} ps); choose a multiple of {dt:g} ps")
+        out[si] = n
+    return out
+
+
+def iat_lags(seg_counts, max_lag=2000):
+    """Geometric grid of lags (frames) for integrated autocorrelation times."""
+    shortest = int(seg_counts[seg_counts > 0].min())
+    top = max(1, min(max_lag, shortest // 2))
+    return np.unique(np.round(np.geomspace(1, top, 18)).astype(int))
+
+
+def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
+    """Integrated autocorrelation time from the autocorrelation on a grid of lags.
+
+    ``tau_int = dt * (1/2 + sum_{k>=1} rho(k))`` (Sokal 1997, in *Functional
+    Integration*, Plenum; Frenkel and Smit, *Understanding Molecular
+    Simulation*, 2002), with the sum taken as the trapezoidal integral of
+    ``rho`` (``rho(0) = 1``) interpolated linearly between the lags of the grid,
+    up to Sokal's self-consistent window: the first lag ``M`` with
+    ``M >= window * tau(M)``.
+
+    Parameters
+    ----------
+    lags : array-like of int, shape (n_lags,)
+        Increasing lags in frames, starting at 1.
+    rho : array-like of shape (n_lags, n_features)
+        Normalized autocorrelation at each lag.
+    dt : float
+        Time between frames, ps (1 for frames).
+    window : float, default=5.0
+        Window factor ``c`` (Sokal recommends 4 to 10 for nearly exponential decay).
+    return_window : bool, default=False
+        Also return the summation window of each feature, frames.
+
+    Returns
+    -------
+    tau : ndarray of shape (n_features,)
+        In the unit of `dt`.
+    decayed : ndarray of bool, shape (n_features,)
+        False where no lag of the grid satisfies the window condition: the
+        motion did not decorrelate within the runs and `tau` (the integral over
+        the whole grid) is a lower bound.
+    window_frames : ndarray of shape (n_features,)
+        Only with `return_window`: the lag (frames) where the sum stopped.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> lags = np.arange(1, 200)
+    >>> tau, ok = integrated_time(lags, np.exp(-lags / 10.0)[:, None], 1.0)
+    >>> round(float(tau[0]), 1), bool(ok[0])  # 1/2 + sum_k exp(-k/10) = 10.0, window loses ~1 %
+    (9.9, True)
+    """
+    lags = np.asarray(lags, dtype=np.float64)
+    rho = np.nan_to_num(np.asarray(rho, dtype=np.float64), nan=0.0)
+    grid = np.concatenate([[0.0], lags])
+    r = np.vstack([np.ones((1, rho.shape[1])), rho])
+    cum = np.vstack([np.zeros((1, rho.shape[1])),
+                     np.cumsum(0.5 * (r[1:] + r[:-1]) * np.diff(grid)[:, None], axis=0)])
+    ok = grid[:, None] >= window * cum
+    ok[0] = False
+    decayed = ok.any(axis=0)
+    stop = np.where(decayed, ok.argmax(axis=0), len(grid) - 1)
+    tau = cum[stop, np.arange(rho.shape[1])]
+    if return_window:
+        return tau * dt, decayed, grid[stop]
+    return tau * dt, decayed
+
+
+def longest_run_text(seg_counts, timesteps):
+    """'the longest run is N frames (T ps)': the longest series of one state in one file."""
+    si, s = np.unravel_index(int(np.argmax(seg_counts)), seg_counts.shape)
+    n = int(seg_counts[si, s])
+    dt = timesteps.get(int(si))
+    return f"the longest run is {n} frames" + ("" if dt is None else f" ({n * dt:g} ps)")
+
+
+def block_frames(seg_counts, taus, timesteps, lag_frames):
+    """Bootstrap block length in frames, or None for whole runs.
+
+    At least twice the longest integrated autocorrelation time of `taus`
+    (``(time, decayed, ...)`` or None each) and two lags; whole runs when that
+    exceeds half the shortest run, when some motion did not decorrelate within
+    the runs, or when no time is known.
+    """
+    dt = next(iter(timesteps.values())) or 1.0
+    known = [t for t in taus if t is not None]
+    if not known or any(not decayed for _, decayed, *_ in known):
+        return None
+    longest = max(t for t, *_ in known)
+    b = max(1, int(math.ceil(2.0 * longest / dt)))
+    if lag_frames:
+        b = max(b, 2 * max(lag_frames.values()))
+    shortest = int(seg_counts[seg_counts > 0].min())
+    if b > shortest // 2:
+        return None
+    return b
+
+
+def local_autocorrelation(runs, n_features):
+    """Autocorrelation at the lag with every run about its own mean.
+
+    The variances and lagged covariances of the runs (diagonal lagged
+    moments), each about the run's own mean, are combined weighted by their
+    pair counts: the decorrelation *within* runs, free of the offsets between
+    runs or states.
+
+    Parameters
+    ----------
+    runs : iterable of DiagonalLaggedMoments
+        One per run (segment, state).
+    n_features : int
+
+    Returns
+    -------
+    ndarray of shape (n_features,)
+        NaN where no run has pairs or a feature does not vary.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from cvdesign.stats.moments import DiagonalLaggedMoments
+    >>> x = np.cumsum(np.random.default_rng(0).normal(size=(400, 1)), axis=0)
+    >>> a = DiagonalLaggedMoments.from_series(x[:200], lag=1)
+    >>> b = DiagonalLaggedMoments.from_series(x[200:] + 100.0, lag=1)
+    >>> bool(local_autocorrelation([a, b], 1)[0] > 0.9)
+    True
+    """
+    c0 = np.zeros(n_features)
+    ct = np.zeros(n_features)
+    for m in runs:
+        if m.count == 0:
+            continue
+        _, v0, c = m.covariances(reversible=True)
+        c0 += m.count * v0
+        ct += m.count * c
+    out = np.full(n_features, np.nan)
+    ok = c0 > 0
+    out[ok] = ct[ok] / c0[ok]
+    return out
+
+
+class EvenSpacingPass(Pass):
+    """Refuse a file whose stored times are not evenly spaced (a pass with no result).
+
+    Lags in ps need evenly spaced frames. Within a leaf, consecutive frames must be
+    ``(frame difference) * dt`` apart; across leaves, the tree's merges check the
+    last frame of one node against the first of the next, so every gap is checked
+    once whatever the task split. Files that store no times, or whose stored times
+    were replaced by a given frame spacing, are skipped.
+
+    Parameters
+    ----------
+    featurizer : cvdesign.passes.Featurizer
+        The featurizer of the pass it runs with (times come with every read).
+    steps : dict of int to float or None
+        Frame spacing of each segment, ps (None: unknown, not checked).
+    checked : set of int
+        Segments whose stored times are to be checked.
+    """
+
+    def __init__(self, featurizer, steps, checked):
+        self.featurizer = featurizer
+        self.steps = dict(steps)
+        self.checked = set(checked)
+
+    def map(self, leaf):
+        si = leaf.segment
+        if si not in self.checked or leaf.time is None or leaf.frames.size == 0:
+            return None
+        t = np.asarray(leaf.time, dtype=np.float64)
+        f = leaf.frames.astype(np.float64)
+        _check_spacing(leaf.layout.path, self.steps[si], f, t)
+        return {si: (leaf.layout.path, f[0], t[0], f[-1], t[-1])}
+
+    def merge(self, a, b):
+        out = dict(a)
+        for si, (path, f0, t0, f1, t1) in b.items():
+            if si in out:  # the node of `a` ends where the node of `b` starts
+                _, g0, s0, g1, s1 = out[si]
+                _check_spacing(path, self.steps[si], np.array([g1, f0]), np.array([s1, t0]))
+                out[si] = (path, g0, s0, f1, t1)
+            else:
+                out[si] = (path, f0, t0, f1, t1)
+        return out
+
+    def finish(self, partial, plan):
+        return None
+
+
+def _check_spacing(path, dt, f, t):
+    if t.size < 2:
+        return
+    expected = np.diff(f) * dt
+    # times are single precision: allow their rounding, and 0.1 % of a step
+    tol = np.maximum(1e-3 * dt, 4 * np.abs(t[1:]) * 2.0**-23)
+    bad = np.flatnonzero(np.abs(np.diff(t) - expected) > tol)
+    if bad.size:
+        i = int(bad[0])
+        raise InputError(
+            f"trajectory {str(path)!r} is not evenly spaced in time: frame {int(f[i + 1])} is at "
+            f"{t[i + 1]:g} ps, but the first time step ({dt:g} ps) puts it at "
+            f"{t[i] + expected[i]:g} ps; lags in ps need evenly spaced frames, so split the "
+            "file where the spacing changes")
+
+
+def checked_segments(source, steps):
+    """Segments whose stored times :class:`EvenSpacingPass` checks."""
+    return {si for si, seg in enumerate(source.segments)
+            if steps.get(si) is not None and stores_time(seg.path)
+            and not source.stored_times_ignored(si)}
