@@ -11,6 +11,7 @@ Sub-commands:
 """
 
 import argparse
+import contextlib
 import csv
 import io
 import json
@@ -135,6 +136,16 @@ def _add_suggest_options(p):
     p.add_argument("--md-step-fs", type=_positive_float, default=2.0, metavar="FS",
                    help="MD step of the biased run in fs, for the hints (default: 2; 0.01 to "
                         "100 fs accepted)")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=_positive_int, default=1, metavar="N",
+                       help="read and featurize the trajectories in N local processes "
+                            "(default: 1, in this process); the outputs are the same, byte "
+                            "for byte")
+    where.add_argument("--scheduler", metavar="ADDRESS", default=None,
+                       help="run the passes over the trajectories on a Dask cluster, e.g. "
+                            "tcp://10.0.0.5:8786 (needs pip install 'cvdesign[dask]'; every "
+                            "worker must read the trajectory paths as given); the outputs "
+                            "are the same, byte for byte")
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it holds an earlier cvdesign output")
     p.add_argument("--quiet", action="store_true", help="print only the final table")
@@ -302,6 +313,22 @@ def _progress(quiet):
     return lambda msg: print(f"cvdesign: {msg}", file=sys.stderr)
 
 
+@contextlib.contextmanager
+def _executor(args):
+    """The executor of --workers / --scheduler (None: this process), closed at the end."""
+    from ..parallel import as_executor
+
+    target = args.scheduler if args.scheduler else (args.workers if args.workers > 1 else None)
+    if target is None:
+        yield None
+        return
+    executor = as_executor(target)
+    try:
+        yield executor
+    finally:
+        executor.close()
+
+
 def _run_suggest(topology, states, out, args, stream, runs=None):
     from ..io.atomic import prepare_output_dir
     from ..bias.hints import check_run_conditions
@@ -350,13 +377,15 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                                  "FILE [FILE ...]")
             for f in files:
                 source.add(f, state=name)
-    result = suggest(source, objective=args.objective, lag=args.lag, method=args.method,
-                     selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
-                     prefilter_stride=args.prefilter_stride,
-                     coordination_r0=args.coordination_r0, max_terms=args.max_terms,
-                     n_suggestions=args.suggestions, n_folds=args.folds,
-                     n_bootstrap=args.bootstrap, seed=args.seed, temperature=args.temperature,
-                     md_step_fs=args.md_step_fs, progress=progress)
+    with _executor(args) as executor:
+        result = suggest(source, objective=args.objective, lag=args.lag, method=args.method,
+                         selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
+                         prefilter_stride=args.prefilter_stride,
+                         coordination_r0=args.coordination_r0, max_terms=args.max_terms,
+                         n_suggestions=args.suggestions, n_folds=args.folds,
+                         n_bootstrap=args.bootstrap, seed=args.seed,
+                         temperature=args.temperature, md_step_fs=args.md_step_fs,
+                         executor=executor, progress=progress)
     result.exploration = exploration
     result.write(out, force=args.force)
     if not args.quiet:
@@ -755,7 +784,7 @@ def _cmd_demo(args):
                             force=args.force, quiet=False, objective="separate", lag=None,
                             method="hlda", bootstrap=args.bootstrap, seed=0,
                             frame_step_ps=None, n_states=None, temperature=300.0,
-                            md_step_fs=2.0)
+                            md_step_fs=2.0, workers=1, scheduler=None)
     print(f"cvdesign demo: {manifest['description']}\n", file=sys.stdout)
     result = _run_suggest(top, states, args.out, ns, sys.stdout)
     slow = manifest["slow_dihedral"]

@@ -253,7 +253,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         file name), fewer than two states, a state without frames, an empty
         pool, a lag that cannot be converted, and the other input problems
         described in the messages.
-    cvdesign.parallel.ExecutorError
+    cvdesign.errors.ExecutorError
         When the executor fails (a scheduler that cannot be reached, a worker
         that dies).
 
