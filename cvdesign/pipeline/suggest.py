@@ -56,6 +56,11 @@ __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file
 #: Histogram bins of the score card and of the held-out CV histograms.
 N_BINS = 50
 
+#: Most bootstrap blocks of one state (blocks are lengthened beyond that): enough for a
+#: 95 % percentile interval, and memory that does not grow with the number of frames
+#: (common practice: a few dozen to a few hundred resampling units).
+MAX_BOOTSTRAP_BLOCKS = 200
+
 
 # --------------------------------------------------------------------------- configuration
 @dataclass(frozen=True)
@@ -543,10 +548,15 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     cols = screening.features[local]
     every = PoolFeaturizer(pool)
     hist = HistogramPass(every, screening.low, screening.high, n_bins=N_BINS)
-    bf = block_frames(seg_counts, [iat_desc.get(screened[g]) for g in short.members], steps,
-                      lags)
-    blocks = BlockPass(every, folds=folds, block_frames=bf, lags=lags,
-                       pairs_within_block=True,
+    if config.n_bootstrap:
+        bf = block_frames(seg_counts, [iat_desc.get(screened[g]) for g in short.members],
+                          steps, lags)
+        if bf is not None:  # at most MAX_BOOTSTRAP_BLOCKS per state: memory bounded
+            bf = max(bf, -(-int(seg_counts.sum(axis=0).max()) // MAX_BOOTSTRAP_BLOCKS))
+    else:
+        bf = None  # no bootstrap: one block per run and fold, for the held-out histograms
+    blocks = BlockPass(every, folds=folds, block_frames=bf, moments=bool(config.n_bootstrap),
+                       lags=lags if config.n_bootstrap else None, pairs_within_block=True,
                        sums=_CVHistograms(_cv_plans(fits, fm, where), N_BINS), columns=cols,
                        center=screening.center[cols], scale=screening.scale[cols])
     passes = [hist, blocks]
