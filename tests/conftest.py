@@ -1,13 +1,17 @@
-"""Shared fixtures: the bundled demo data and the MDAnalysis test data."""
+"""Shared fixtures: the bundled demo data, the MDAnalysis test data, and helpers of the
+pass-engine tests (bitwise comparison, random task splits, shuffled arrival order)."""
 
 import importlib.resources
 import json
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from cvdesign import Source, suggest
 from cvdesign.io.demo import demo_data_dir
+from cvdesign.parallel import Executor
+from cvdesign.passes import Task
 
 
 @pytest.fixture(scope="session")
@@ -194,3 +198,47 @@ def _assert_same(a, b, where="result"):
 def assert_same():
     """Function asserting that two pass results are identical, bit for bit."""
     return _assert_same
+
+
+class ShuffledExecutor(Executor):
+    """Runs the tasks here, then hands the results over in a seeded random order."""
+
+    def __init__(self, seed):
+        self.seed = seed
+
+    def run(self, fn, context, items):
+        items = list(items)
+        results = [fn(context, item) for item in items]
+        order = np.random.default_rng(self.seed).permutation(len(items))
+        for i in order:
+            yield int(i), results[i]
+
+
+@pytest.fixture(scope="session")
+def shuffled_executor():
+    """``shuffled_executor(seed)``: a pass-engine executor that runs the tasks in this process
+    and hands their results over in a seeded random order."""
+    return ShuffledExecutor
+
+
+def _random_tasks(plan, rng):
+    """Tasks cutting every segment's leaves at random points, in random order."""
+    tasks = []
+    for si in range(plan.n_segments):
+        leaves = plan.leaves(si)
+        if not len(leaves):
+            continue
+        inner = np.arange(leaves.start + 1, leaves.stop)
+        cuts = np.sort(rng.choice(inner, size=rng.integers(0, inner.size + 1), replace=False)) \
+            if inner.size else np.zeros(0, int)
+        edges = [leaves.start, *cuts.tolist(), leaves.stop]
+        tasks += [Task(si, a, b) for a, b in zip(edges[:-1], edges[1:])]
+    rng.shuffle(tasks)
+    return tasks
+
+
+@pytest.fixture(scope="session")
+def random_tasks():
+    """``random_tasks(plan, rng)``: tasks of a :class:`cvdesign.passes.TaskPlan` cut at random
+    leaves and shuffled (any such split must give the same bytes)."""
+    return _random_tasks

@@ -13,9 +13,10 @@ import pytest
 from cvdesign import InputError, Source
 from cvdesign.errors import SchedulerUnreachableError, WorkerLostError
 from cvdesign.parallel import DaskExecutor, ProcessExecutor, SerialExecutor, as_executor
-from cvdesign.passes import (BlockPass, CoordinateFeaturizer, Featurizer, FoldMomentsPass,
-                             Folds, HistogramPass, LaggedPass, PoolFeaturizer, ScreeningPass,
-                             leaf_frames_for, plan_tasks, reference_features, run_pass)
+from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, Featurizer,
+                             FoldMomentsPass, Folds, HistogramPass, LaggedPass, PoolFeaturizer,
+                             ScreeningPass, leaf_frames_for, plan_tasks, reference_features,
+                             run_pass)
 from cvdesign.pool import build_pool
 
 
@@ -63,7 +64,10 @@ def _passes(src):
                   LaggedPass(featurizer, lags, shift=shift[cols], folds=folds, columns=cols),
                   HistogramPass(featurizer, np.full(p, -1.0), np.full(p, 2.0), n_bins=20),
                   BlockPass(featurizer, folds=folds, block_frames=40, lags=lags, columns=cols,
-                            center=shift[cols], sums=block_sums))
+                            center=shift[cols], sums=block_sums),
+                  CardPass(featurizer, center=shift[cols], low=np.full(cols.size, -1.0),
+                           high=np.full(cols.size, 2.0), n_bins=20, block_frames=40, lags=lags,
+                           run_means={(0, 0): shift[cols] + 0.1}, columns=cols))
 
 
 def _leftover_contexts():

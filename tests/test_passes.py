@@ -16,8 +16,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from cvdesign import InputError, Source
-from cvdesign.parallel import Executor
-from cvdesign.passes import (BlockPass, CoordinateFeaturizer, FoldMomentsPass, Folds,
+from cvdesign.parallel import ProcessExecutor
+from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, FoldMomentsPass, Folds,
                              HistogramPass, LaggedPass, PoolFeaturizer, ScreeningPass, Task,
                              TreeReducer, frame_keys, plan_tasks, reference_features, run_pass)
 from cvdesign.passes.keys import SegmentLayout
@@ -29,6 +29,7 @@ SETTINGS = settings(max_examples=30, deadline=None, derandomize=True, database=N
                     suppress_health_check=[HealthCheck.too_slow])
 ATOMS = np.array([0, 2])
 N_BINS = 7
+CARD_COLUMNS = [5, 0, 3]  # the score card's sums on some features, in another order
 
 
 def _topology(n_atoms=3):
@@ -53,36 +54,6 @@ def _write(path, xyz, box=None, time=None):
 def _block_sums(z, key):
     """Additive block sums for the tests: rows and column sums (module level: it pickles)."""
     return {"n": np.array([z.shape[0]], dtype=np.float64), "s1": z.sum(axis=0)}
-
-
-class ShuffledExecutor(Executor):
-    """Runs the tasks here, then hands the results over in a seeded random order."""
-
-    def __init__(self, seed):
-        self.seed = seed
-
-    def run(self, fn, context, items):
-        items = list(items)
-        results = [fn(context, item) for item in items]
-        order = np.random.default_rng(self.seed).permutation(len(items))
-        for i in order:
-            yield int(i), results[i]
-
-
-def _random_tasks(plan, rng):
-    """Tasks cutting every segment's leaves at random points."""
-    tasks = []
-    for si in range(plan.n_segments):
-        leaves = plan.leaves(si)
-        if not len(leaves):
-            continue
-        inner = np.arange(leaves.start + 1, leaves.stop)
-        cuts = np.sort(rng.choice(inner, size=rng.integers(0, inner.size + 1), replace=False)) \
-            if inner.size else np.zeros(0, int)
-        edges = [leaves.start, *cuts.tolist(), leaves.stop]
-        tasks += [Task(si, a, b) for a, b in zip(edges[:-1], edges[1:])]
-    rng.shuffle(tasks)
-    return tasks
 
 
 # ---------------------------------------------------------------------------- scenarios
@@ -147,6 +118,19 @@ def _folds(sc, src):
     return Folds(sc["n_folds"], "trajectory", mapping)
 
 
+def _card_run_means(shift):
+    """Run means of the score card's within-run sums: given for segment 0's runs (the others
+    fall back to the center)."""
+    return {(0, s): shift[CARD_COLUMNS] + 0.25 * (s + 1) for s in (0, 1)}
+
+
+def _card_pass(sc, featurizer, shift):
+    lo, hi = np.full(6, 0.5), np.full(6, 3.5)
+    return CardPass(featurizer, center=shift[CARD_COLUMNS], low=lo[CARD_COLUMNS],
+                    high=hi[CARD_COLUMNS], n_bins=N_BINS, block_frames=sc["block"],
+                    lags=sc["lags"], run_means=_card_run_means(shift), columns=CARD_COLUMNS)
+
+
 def _passes(sc, src, featurizer, shift):
     folds = _folds(sc, src)
     lo, hi = np.full(6, 0.5), np.full(6, 3.5)
@@ -159,7 +143,8 @@ def _passes(sc, src, featurizer, shift):
             HistogramPass(featurizer, lo, hi, n_bins=N_BINS),
             BlockPass(featurizer, folds=folds, block_frames=sc["block"], lags=sc["lags"],
                       pairs_within_block=sc["within_block"], sums=_block_sums,
-                      center=shift, scale=np.full(6, 2.0)))
+                      center=shift, scale=np.full(6, 2.0)),
+            _card_pass(sc, featurizer, shift))
 
 
 # ---------------------------------------------------------------------------- direct reference
@@ -212,13 +197,19 @@ def _direct_pairs(frames, codes, lag):
     return pairs
 
 
+def _bin_counts(X):
+    """Counts of each column of X on N_BINS bins over [0.5, 3.5] (edge bins take the rest)."""
+    b = np.clip(np.floor((X - 0.5) / 3.0 * N_BINS).astype(int), 0, N_BINS - 1)
+    return np.array([np.bincount(b[:, f], minlength=N_BINS) for f in range(X.shape[1])])
+
+
 def _close(a, b):
     scale = max(1.0, float(np.max(np.abs(b)))) if np.size(b) else 1.0
     np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-12 * scale)
 
 
 def _check_direct(sc, src, loaded, results, shift):
-    screen, fold_m, lagged, lagged_diag, hist, blocks = results
+    screen, fold_m, lagged, lagged_diag, hist, blocks, card = results
     folds = _folds(sc, src)
     data = _direct_frames(sc, src, loaded)
     n_states = src.n_states
@@ -285,12 +276,7 @@ def _check_direct(sc, src, loaded, results, shift):
     for k in range(folds.n_folds):
         assert merged[k].n_pairs == sum(len(v) for key, v in runs.items() if key[2] == k)
     # histograms: exact counts
-    counts = np.zeros((n_states, 6, N_BINS))
-    for s in range(n_states):
-        X = np.array(all_x[s])
-        b = np.clip(np.floor((X - 0.5) / 3.0 * N_BINS).astype(int), 0, N_BINS - 1)
-        for f in range(6):
-            counts[s, f] += np.bincount(b[:, f], minlength=N_BINS)
+    counts = np.array([_bin_counts(np.array(all_x[s])) for s in range(n_states)])
     assert np.array_equal(hist.counts, counts)
     # bootstrap blocks of standardized values
     z = {key: (np.array(v) - shift) / 2.0 for key, v in block_rows.items()}
@@ -309,11 +295,48 @@ def _check_direct(sc, src, loaded, results, shift):
         if pairs:
             x0, xt = ((np.array(v) - shift) / 2.0 for v in zip(*pairs))
             _close(lm.sum_xy, x0.T @ xt)
+    _check_card(sc, src, data, card, shift)
+
+
+def _check_card(sc, src, data, card, shift):
+    """The score card's sums per (state, segment, block of rank // block within the run),
+    every lagged pair in the block of its first frame, whatever block its second is in."""
+    cols, center = CARD_COLUMNS, shift[CARD_COLUMNS]
+    means = _card_run_means(shift)
+    rows, pairs = {}, {}
+    for si, (frames, codes, x) in enumerate(data):
+        _, _, block = _direct_keys(sc, src, frames, codes, Folds(1), si)  # one fold: run rank
+        for t in frames:
+            rows.setdefault((int(codes[t]), si, block[t]), []).append(x[t, cols])
+        if sc["lags"][si] is not None:
+            for t, u in _direct_pairs(frames, codes, sc["lags"][si]):
+                pairs.setdefault((int(codes[t]), si, block[t]), []).append((x[t, cols],
+                                                                            x[u, cols]))
+    assert card.has_lag
+    for s in range(src.n_states):
+        keys = sorted(key for key in rows if key[0] == s)
+        assert len(card.blocks()[s]) == len(keys)
+        for key, got in zip(keys, card.blocks()[s]):
+            X = np.array(rows[key])
+            assert got["n"] == X.shape[0]
+            _close(got["s1"], (X - center).sum(axis=0))
+            _close(got["s2"], ((X - center) ** 2).sum(axis=0))
+            assert np.array_equal(got["hist"], _bin_counts(X))
+            p = pairs.get(key, [])
+            assert got["n_pairs"] == len(p)
+            x0 = np.array([a for a, _ in p]).reshape(len(p), len(cols))
+            xt = np.array([b for _, b in p]).reshape(len(p), len(cols))
+            mean = means.get((key[1], s), center)  # run means are keyed (segment, state)
+            (a, b), (u, v) = (x0 - center, xt - center), (x0 - mean, xt - mean)
+            for name, want in (("sx", a), ("sy", b), ("sxx", a * a), ("sxy", a * b),
+                               ("syy", b * b), ("l0", 0.5 * (u * u + v * v)), ("lt", u * v)):
+                _close(got[name], want.sum(axis=0))
 
 
 @SETTINGS
 @given(sc=scenarios())
-def test_any_task_split_chunk_size_and_arrival_order_gives_identical_results(sc, assert_same):
+def test_any_task_split_chunk_size_and_arrival_order_gives_identical_results(
+        sc, assert_same, shuffled_executor, random_tasks):
     featurizer = CoordinateFeaturizer(ATOMS)
     with tempfile.TemporaryDirectory() as tmp:
         src, loaded = _build(sc, tmp)
@@ -322,10 +345,40 @@ def test_any_task_split_chunk_size_and_arrival_order_gives_identical_results(sc,
         passes = _passes(sc, src, featurizer, shift)
         reference = run_pass(passes, src, tasks=plan)
         rng = np.random.default_rng(sc["seed"] + 2)
-        other = run_pass(passes, src, tasks=plan.with_tasks(_random_tasks(plan, rng)),
-                         executor=ShuffledExecutor(sc["seed"] + 3), chunk_frames=sc["chunk"])
+        other = run_pass(passes, src, tasks=plan.with_tasks(random_tasks(plan, rng)),
+                         executor=shuffled_executor(sc["seed"] + 3), chunk_frames=sc["chunk"])
         assert_same(reference, other)
         _check_direct(sc, src, loaded, reference, shift)
+
+
+@pytest.fixture(scope="module")
+def two_processes():
+    """Two local worker processes, started once for the module's examples."""
+    with ProcessExecutor(2) as ex:
+        yield ex
+
+
+@settings(max_examples=8, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(sc=scenarios())
+def test_card_sums_are_identical_serially_and_in_two_processes_for_any_split_and_leaf_size(
+        sc, two_processes, assert_same, random_tasks):
+    """The score card's block sums (CardPass): one task per segment in this process, and
+    random tasks and read chunks in 2 worker processes, give the same bytes (leaf length,
+    block length, lags and labels drawn at random; the other executors are in the property
+    test above and in test_executors.py)."""
+    featurizer = CoordinateFeaturizer(ATOMS)
+    with tempfile.TemporaryDirectory() as tmp:
+        src, loaded = _build(sc, tmp)
+        plan = plan_tasks(src, leaf_frames=sc["leaf"])
+        shift = reference_features(plan, featurizer)
+        card = _card_pass(sc, featurizer, shift)
+        reference = run_pass(card, src, tasks=plan)
+        rng = np.random.default_rng(sc["seed"] + 4)
+        other = run_pass(card, src, tasks=plan.with_tasks(random_tasks(plan, rng)),
+                         executor=two_processes, chunk_frames=sc["chunk"])
+        assert_same(reference, other)
+        _check_card(sc, src, _direct_frames(sc, src, loaded), reference, shift)
 
 
 # ---------------------------------------------------------------------------- the tree alone
@@ -526,7 +579,7 @@ def test_plan_tasks_splits_segments_into_leaf_aligned_tasks(demo_files):
 
 
 def test_residue_group_features_in_a_periodic_box_give_identical_results_for_any_split(
-        tmp_path, assert_same):
+        tmp_path, assert_same, shuffled_executor):
     write_host_guest(tmp_path, n_runs=2, n_frames=200, tumble=True, box_nm=4.0)
     runs = sorted(str(p) for p in tmp_path.glob("*.xtc"))
     src = Source.from_states(str(tmp_path / "host_guest.pdb"), {"a": runs[:1], "b": runs[1:]})
@@ -538,6 +591,6 @@ def test_residue_group_features_in_a_periodic_box_give_identical_results_for_any
     plan = plan_tasks(src, leaf_frames=16)
     reference = run_pass(passes, src, tasks=plan)
     other = run_pass(passes, src, tasks=plan.split(frames_per_task=48), chunk_frames=7,
-                     executor=ShuffledExecutor(1))
+                     executor=shuffled_executor(1))
     assert_same(reference, other)
     assert reference[0].min_box_height == pytest.approx(4.0)

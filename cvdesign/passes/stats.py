@@ -27,6 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..geometry import box_heights
+from ..score.card import CARD_LAG_FIELDS
 from ..score.univariate import Histograms
 from ..stats.bootstrap import ArraySum
 from ..stats.moments import DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments, merge_all
@@ -512,9 +513,6 @@ class BlockPass(FeaturePass):
         return out
 
 
-_CARD_LAG_FIELDS = ("n_pairs", "sx", "sy", "sxx", "sxy", "syy", "l0", "lt")
-
-
 @dataclass
 class CardSums:
     """Per-block sums of the score card, from :class:`CardPass`.
@@ -585,7 +583,7 @@ class CardPass(FeaturePass):
                   "hist": np.zeros((n, self.n_bins))}
         if self.lags is not None:
             fields.update({f: np.zeros(()) if f == "n_pairs" else np.zeros(n)
-                           for f in _CARD_LAG_FIELDS})
+                           for f in CARD_LAG_FIELDS})
         return fields
 
     def map(self, leaf):

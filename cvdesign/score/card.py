@@ -4,13 +4,15 @@ The score card reports, for every descriptor of the pool, its Fisher ratio,
 the overlap of the state histograms, the autocorrelation at the lag (all runs
 about their common mean, and each run about its own mean) and the integrated
 autocorrelation time. The first four get block-bootstrap intervals
-(:func:`cvdesign.stats.bootstrap.block_bootstrap`): a pass over the data keeps, per
-contiguous block of each run, additive sums (frame count, first and second
-moments about a fixed center, histogram counts on the score card's bins,
-lagged-pair sums), so a replicate is a weighted sum over blocks, never a pass
-over the trajectories. A lagged pair belongs to the block of its first frame,
-so no pair is lost at a block boundary and the estimate on all blocks equals
-the score card's value.
+(:func:`cvdesign.stats.bootstrap.block_bootstrap`): a pass over the data
+(:class:`cvdesign.passes.CardPass`) keeps, per contiguous block of each run,
+additive sums (frame count, first and second moments about a fixed center,
+histogram counts on the score card's bins, lagged-pair sums :data:`CARD_LAG_FIELDS`),
+so a replicate is a weighted sum over blocks, never a pass over the
+trajectories. A lagged pair belongs to the block of its first frame, so no
+pair is lost at a block boundary and the estimate on all blocks equals the
+score card's value. This module plans the blocks and turns their sums into
+the card's statistics and intervals.
 
 The integrated time sums the autocorrelation up to a window of several
 correlation times, longer than a bootstrap block, so its interval is the
@@ -27,11 +29,11 @@ state do not fit, only the best descriptors of the score card get intervals
 
 import numpy as np
 
-from ..stats.bootstrap import ArraySum, block_bootstrap
-from .univariate import Histograms, fisher_ratio, overlap_coefficient
+from ..stats.bootstrap import block_bootstrap
+from .univariate import fisher_ratio, overlap_coefficient
 
-__all__ = ["CardBlocks", "plan_card_blocks", "card_intervals", "integrated_time_interval",
-           "CARD_BUDGET_BYTES", "MIN_CARD_BLOCKS", "MAX_CARD_BLOCKS"]
+__all__ = ["plan_card_blocks", "card_intervals", "integrated_time_interval",
+           "CARD_BUDGET_BYTES", "MIN_CARD_BLOCKS", "MAX_CARD_BLOCKS", "CARD_LAG_FIELDS"]
 
 #: Memory for the per-block sums of the score card, bytes.
 CARD_BUDGET_BYTES = 192 * 2**20
@@ -42,12 +44,14 @@ MIN_CARD_BLOCKS = 20
 #: as the correlation time) and cost less.
 MAX_CARD_BLOCKS = 100
 
-_LAG_FIELDS = ("n_pairs", "sx", "sy", "sxx", "sxy", "syy", "l0", "lt")
+#: Lagged sums kept per block (see :class:`cvdesign.passes.CardPass`): pair count, sums
+#: and products of the pairs about the center, and ``l0``, ``lt`` about the run's own mean.
+CARD_LAG_FIELDS = ("n_pairs", "sx", "sy", "sxx", "sxy", "syy", "l0", "lt")
 
 
 def _bytes_per_feature_block(n_bins, has_lag):
     # float64 sums, kept once per block and once more when stacked for the bootstrap
-    return 2 * 8 * (2 + n_bins + (len(_LAG_FIELDS) if has_lag else 0))
+    return 2 * 8 * (2 + n_bins + (len(CARD_LAG_FIELDS) if has_lag else 0))
 
 
 def _blocks_per_state(seg_counts, block_frames):
@@ -114,133 +118,6 @@ def plan_card_blocks(seg_counts, block_frames, n_features, *, n_bins=50, has_lag
     return bf, kept
 
 
-class CardBlocks:
-    """Per-block additive sums of many features, fed run by run in frame order.
-
-    Parameters
-    ----------
-    center : ndarray of shape (n_features,)
-        Fixed shift of the sums (any value near the data keeps them accurate).
-    low, high : ndarray of shape (n_features,)
-        Histogram range of each feature (the score card's bins).
-    n_bins : int
-    block_frames : int or None
-        Block length in frames within each run (None: a run is one block).
-    lag_frames : dict of int to int, default=None
-        Lag in frames of each segment; None: no lagged sums.
-    run_means : dict of (segment, state) to ndarray, default=None
-        Mean of each run's lagged pairs, for the autocorrelation within runs.
-
-    Examples
-    --------
-    >>> import numpy as np
-    >>> cb = CardBlocks(np.zeros(1), np.zeros(1), np.ones(1), 4, 5)
-    >>> cb.add(0, 0, np.arange(12), np.linspace(0, 1, 12)[:, None])
-    >>> [int(b["n"]) for b in cb.blocks()[0]]
-    [5, 5, 2]
-    """
-
-    def __init__(self, center, low, high, n_bins, block_frames, lag_frames=None,
-                 run_means=None):
-        self.center = np.asarray(center, dtype=np.float64)
-        self.low, self.high = np.asarray(low, np.float64), np.asarray(high, np.float64)
-        self.n_bins = int(n_bins)
-        self.block_frames = block_frames
-        self.lag_frames = lag_frames
-        self.run_means = run_means
-        self._acc = {}
-        self._seen = {}
-        self._tail = {}
-
-    @property
-    def has_lag(self):
-        return self.lag_frames is not None
-
-    def _block(self, s, si, b):
-        key = (s, si, int(b))
-        acc = self._acc.get(key)
-        if acc is None:
-            n = self.center.size
-            acc = {"n": 0.0, "s1": np.zeros(n), "s2": np.zeros(n),
-                   "hist": Histograms(self.low, self.high, n_states=1, n_bins=self.n_bins)}
-            if self.has_lag:
-                acc["n_pairs"] = 0.0
-                for f in _LAG_FIELDS[1:]:
-                    acc[f] = np.zeros(n)
-            self._acc[key] = acc
-        return acc
-
-    def add(self, si, s, frames, x):
-        """Add rows `x` (frame numbers `frames`, increasing) of state `s` in segment `si`.
-
-        Rows of one (segment, state) run must come in frame order, chunk after
-        chunk; a gap in frame numbers breaks the lagged pairs.
-        """
-        x = np.asarray(x, dtype=np.float64)
-        if x.shape[0] == 0:
-            return
-        frames = np.asarray(frames)
-        key = (si, s)
-        start = self._seen.get(key, 0)
-        self._seen[key] = start + x.shape[0]
-        rank = start + np.arange(x.shape[0])
-        bid = rank // self.block_frames if self.block_frames else np.zeros(x.shape[0], int)
-        for b in np.unique(bid):
-            rows = bid == b
-            acc = self._block(s, si, b)
-            d = x[rows] - self.center
-            acc["n"] += float(rows.sum())
-            acc["s1"] += d.sum(axis=0)
-            acc["s2"] += (d * d).sum(axis=0)
-            acc["hist"].add(x[rows], np.zeros(int(rows.sum()), dtype=np.intp))
-        if self.has_lag:
-            self._pairs(key, frames, x, bid)
-
-    def _pairs(self, key, frames, x, bid):
-        si, s = key
-        lag = int(self.lag_frames[si])
-        mean = self.run_means.get(key) if self.run_means is not None else None
-        mean = self.center if mean is None else mean
-        tail = self._tail.get(key)
-        cuts = np.flatnonzero(np.diff(frames) != 1) + 1
-        for piece in np.split(np.arange(frames.size), cuts):
-            if tail is not None and frames[piece[0]] != tail[0] + 1:
-                tail = None
-            tx = x[:0] if tail is None else tail[1]
-            tb = bid[:0] if tail is None else tail[2]
-            cx = np.concatenate([tx, x[piece]])
-            cb = np.concatenate([tb, bid[piece]])
-            if cx.shape[0] > lag:
-                # pairs (i, i + lag) whose second frame is new, in the block of frame i
-                first = np.arange(max(0, tx.shape[0] - lag), cx.shape[0] - lag)
-                xi, yi, bi = cx[first], cx[first + lag], cb[first]
-                for b in np.unique(bi):
-                    rows = bi == b
-                    p, q = xi[rows] - self.center, yi[rows] - self.center
-                    u, v = xi[rows] - mean, yi[rows] - mean
-                    acc = self._block(s, si, b)
-                    acc["n_pairs"] += float(rows.sum())
-                    acc["sx"] += p.sum(axis=0)
-                    acc["sy"] += q.sum(axis=0)
-                    acc["sxx"] += (p * p).sum(axis=0)
-                    acc["sxy"] += (p * q).sum(axis=0)
-                    acc["syy"] += (q * q).sum(axis=0)
-                    acc["l0"] += 0.5 * (u * u + v * v).sum(axis=0)
-                    acc["lt"] += (u * v).sum(axis=0)
-            tail = (frames[piece[-1]], cx[-lag:], cb[-lag:])
-        self._tail[key] = tail
-
-    def blocks(self):
-        """Per state, the list of blocks as :class:`~cvdesign.stats.bootstrap.ArraySum` (sorted)."""
-        n_states = 1 + max((k[0] for k in self._acc), default=-1)
-        out = [[] for _ in range(n_states)]
-        for key in sorted(self._acc):
-            acc = dict(self._acc[key])
-            acc["hist"] = acc["hist"].counts[0]
-            out[key[0]].append(ArraySum(**acc))
-        return out
-
-
 def card_statistics(merged, center, priors, constant, has_lag):
     """Per-feature Fisher ratio, overlap and autocorrelations of merged block sums.
 
@@ -263,7 +140,7 @@ def card_statistics(merged, center, priors, constant, has_lag):
     out = {"fisher_ratio": f,
            "overlap": overlap_coefficient(np.stack([m["hist"] for m in merged]))}
     if has_lag:
-        tot = {k: sum(m[k] for m in merged) for k in _LAG_FIELDS}
+        tot = {k: sum(m[k] for m in merged) for k in CARD_LAG_FIELDS}
         with np.errstate(divide="ignore", invalid="ignore"):
             p = tot["n_pairs"]
             mm = (tot["sx"] + tot["sy"]) / (2 * p)
@@ -302,9 +179,13 @@ def card_intervals(card, center, priors, constant, feature_descriptor, n_desc, *
 
     Parameters
     ----------
-    card : CardBlocks
+    card : object
+        The per-block sums: ``card.blocks()`` gives, per state, its blocks as
+        :class:`~cvdesign.stats.bootstrap.ArraySum` (fields as in
+        :class:`cvdesign.passes.CardSums`), ``card.has_lag`` whether they hold
+        lagged sums (:class:`cvdesign.passes.CardSums` provides both).
     center : ndarray of shape (n_features,)
-        The `card`'s center.
+        The center the sums were taken about.
     priors : ndarray of shape (n_states,)
     constant : ndarray of bool, shape (n_features,)
         Features constant in the data (scored 0).
