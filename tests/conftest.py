@@ -194,3 +194,15 @@ def _assert_same(a, b, where="result"):
 def assert_same():
     """Function asserting that two pass results are identical, bit for bit."""
     return _assert_same
+
+
+@pytest.fixture(scope="session")
+def threaded_dask():
+    """A Dask client of a LocalCluster of three threaded workers (no processes: fast), for
+    the tests that compare executors; three workers make another task split than two
+    local processes."""
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=3, threads_per_worker=1, processes=False,
+                                  dashboard_address=":0") as cluster, \
+            distributed.Client(cluster) as client:
+        yield client

@@ -280,6 +280,14 @@ def build_parser():
     p.add_argument("--force", action="store_true",
                    help="replace --out (and --plot) if they exist; input files are never "
                         "replaced")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=_positive_int, default=None, metavar="N",
+                       help="read the trajectories in N local processes (default: in this "
+                            "process); the result is the same, byte for byte")
+    where.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                       help="read them on a Dask cluster, given by its scheduler's address "
+                            "(e.g. tcp://10.0.0.5:8786; needs dask.distributed: pip install "
+                            "'cvdesign[dask]'); the result is the same, byte for byte")
 
     p = sub.add_parser(
         "demo", help="run suggest on the bundled demo data",
@@ -632,7 +640,7 @@ def _check_plot_format(path):
 
 def _cmd_funnel(args):
     from ..io.atomic import atomic_paths, check_output_file
-    from ..bias.funnel import plot_funnel, size_funnel
+    from ..bias.funnel import plot_funnel, size_funnel_from_source
     from ..io.source import Source, select_atoms
 
     if args.exit_point is not None and not all(math.isfinite(v) for v in args.exit_point):
@@ -657,16 +665,9 @@ def _cmd_funnel(args):
     if np.intersect1d(lig, pocket).size:
         raise InputError("--ligand and --pocket share atoms; the pocket must not include the "
                          "ligand")
-    atoms = np.concatenate([pocket, lig])
-
-    def chunks():
-        for c in source.iter_chunks(atom_indices=atoms):
-            xyz = c.trajectory.xyz.astype(np.float64)  # finite: checked by iter_chunks
-            box = c.trajectory.unitcell_vectors
-            yield (xyz[:, :pocket.size], xyz[:, pocket.size:],
-                   None if box is None else box.astype(np.float64))
-
-    result = size_funnel(chunks=chunks, exit_point=args.exit_point)
+    result = size_funnel_from_source(
+        source, pocket, lig, exit_point=args.exit_point,
+        executor=args.scheduler if args.scheduler is not None else args.workers)
     spec = _funnel_spec(source, args, lig, pocket, result)
     try:
         with atomic_paths([args.out] + ([args.plot] if args.plot else [])) as tmps:
