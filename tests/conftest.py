@@ -242,3 +242,15 @@ def random_tasks():
     """``random_tasks(plan, rng)``: tasks of a :class:`cvdesign.passes.TaskPlan` cut at random
     leaves and shuffled (any such split must give the same bytes)."""
     return _random_tasks
+
+
+@pytest.fixture(scope="session")
+def threaded_dask():
+    """A Dask client of a LocalCluster of three threaded workers (no processes: fast), for
+    the tests that compare executors; three workers make another task split than two
+    local processes."""
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=3, threads_per_worker=1, processes=False,
+                                  dashboard_address=":0") as cluster, \
+            distributed.Client(cluster) as client:
+        yield client

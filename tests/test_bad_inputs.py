@@ -18,10 +18,8 @@ without write permission is refused (only when not running as root, who may writ
 anywhere); ``apply --force`` replaces an earlier output.
 """
 
-import contextlib
 import hashlib
 import importlib.util
-import io
 import json
 import os
 import re
@@ -39,10 +37,12 @@ import pytest
 
 import cvdesign
 from cvdesign import InputError, Source, Spec, SpecError, TopologyMismatchError, load_spec
+from cvdesign.bias.funnel import size_funnel_from_source
 from cvdesign.cli import EXIT_BROKEN_PIPE, main
 from cvdesign.errors import SchedulerUnreachableError
 from cvdesign.parallel import DaskExecutor
 from cvdesign.passes import PoolFeaturizer, ScreeningPass, plan_tasks, run_pass
+from cvdesign.pipeline.explore import propose_states
 from cvdesign.pool import build_pool
 from cvdesign.testbed.host_guest import write_host_guest
 
@@ -537,6 +537,21 @@ API_CASES = [
          SchedulerUnreachableError,
          r"cannot reach the Dask scheduler at 'tcp://127\.0\.0\.1:\d+' within 1 s",
          skip="" if HAS_DASK else "dask.distributed is not installed"),
+    Case("api-propose-states-with-a-file-name",
+         lambda c: lambda: propose_states("run.xtc", lag=2.0), InputError,
+         r"propose_states\(\) needs a Source \(a topology and the runs\), not str"),
+    Case("api-propose-states-zero-workers",
+         lambda c: lambda: propose_states(_demo_source(c), lag=2.0, executor=0), InputError,
+         r"n_workers=0 must be a positive number of processes"),
+    Case("api-funnel-from-source-with-a-file-name",
+         lambda c: lambda: size_funnel_from_source("run.xtc", [0, 1, 2], [7]), InputError,
+         r"size_funnel_from_source\(\) needs a Source of the bound-state trajectories, not str"),
+    Case("api-funnel-from-source-shared-atoms",
+         lambda c: lambda: size_funnel_from_source(_demo_source(c), [0, 1, 2], [2, 7]),
+         InputError, r"pocket and ligand share atoms; the pocket must not include the ligand"),
+    Case("api-funnel-from-source-atom-out-of-range",
+         lambda c: lambda: size_funnel_from_source(_demo_source(c), [0, 1, 2], [99]),
+         InputError, r"ligand must be distinct 0-based atom indices of the topology \(0 to 11\)"),
 ]
 
 
@@ -704,6 +719,15 @@ class FunnelCtx:
         traj.save_dcd(str(path))
         return str(path)
 
+    def with_flat_pocket(self, frame):
+        """A copy of the first run as DCD whose pocket atoms lie on one line in `frame`."""
+        traj = md.load(self.data.paths[0], top=self.data.topology)
+        pocket = list(self.data.pocket_atoms)
+        traj.xyz[frame, pocket] = 2.0 + np.linspace(0.0, 1.0, len(pocket))[:, None]
+        path = self.out_dir / "flat.dcd"
+        traj.save_dcd(str(path))
+        return str(path)
+
     def pocket_centre(self):
         first = md.load_frame(self.data.paths[0], 0, top=self.data.topology)
         return first.xyz[0, list(self.data.pocket_atoms)].astype(np.float64).mean(axis=0)
@@ -822,6 +846,10 @@ FUNNEL_CASES = [
      lambda c: [a if a != c.data.pocket_selection else "name CB or name L1"
                 for a in c.argv()],
      r"the pocket \(2 atoms\) does not fix an orientation in the first frame"),
+    ("pocket-on-a-line-in-a-later-frame",
+     lambda c: c.argv(bound=[c.data.paths[0], c.with_flat_pocket(frame=17)]),
+     r"trajectory '.*flat\.dcd', pocket atoms: the points of frame 17 lie \(nearly\) on one "
+     r"line \(or coincide\); their rotation onto the reference is not determined"),
     ("one-bound-frame",
      lambda c: c.argv(bound=[c.data.topology]),
      r"funnel sizing from 1 bound frame\(s\): the margins come from the ligand's "
@@ -829,6 +857,12 @@ FUNNEL_CASES = [
     ("k-wall-not-positive",
      lambda c: c.argv("--k-wall", "0"),
      r"--k-wall 0\.0 must be a positive force constant in kJ/mol/nm\^2"),
+    ("workers-not-positive",
+     lambda c: c.argv("--workers", "0"),
+     r"argument --workers: '0' must be at least 1"),
+    ("workers-and-scheduler",
+     lambda c: c.argv("--workers", "2", "--scheduler", "tcp://127.0.0.1:8786"),
+     r"argument --scheduler: not allowed with argument --workers"),
 ]
 
 
@@ -847,9 +881,15 @@ def test_funnel_refuses_bad_input_cleanly(build, message, host_guest, tmp_path, 
     argv = build(case)
     input_dir = Path(host_guest.topology).parent
     before = _funnel_snapshot(input_dir, tmp_path)
-    assert main(argv) == 2
+    try:
+        code = main(argv)
+    except SystemExit as exc:  # argparse usage errors: the usage, then the error
+        code = exc.code
+    assert code == 2
     captured = capsys.readouterr()
-    assert captured.err.startswith("cvdesign funnel: error: ")
+    assert captured.err.startswith("cvdesign funnel: error: ") or (
+        captured.err.startswith("usage: cvdesign funnel")
+        and "\ncvdesign funnel: error: " in captured.err), captured.err
     assert re.search(message, captured.err), captured.err
     assert "Traceback" not in captured.err and captured.out == ""
     assert _funnel_snapshot(input_dir, tmp_path) == before

@@ -8,7 +8,10 @@ import pytest
 
 from cvdesign import load_spec
 from cvdesign.cli import main
-from cvdesign.bias.funnel import SHAPE_KEYS, align_to_reference_pocket, funnel_energy
+from cvdesign import Source
+from cvdesign.bias.funnel import (SHAPE_KEYS, align_to_reference_pocket, funnel_energy,
+                                  size_funnel, size_funnel_from_source)
+from cvdesign.io.source import select_atoms
 from cvdesign.testbed.host_guest import write_host_guest
 
 
@@ -120,3 +123,38 @@ def test_funnel_command_replaces_its_own_output_with_force(host_guest, tmp_path,
     assert _run(host_guest, out, "--plot", str(plot), "--force") == 0
     assert load_spec(out).restraints and plot.read_text().lstrip().startswith("<?xml")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["f.json", "f.svg"]
+
+
+def test_funnel_command_writes_identical_bytes_serially_with_two_workers_and_on_dask(
+        tumbled, threaded_dask, tmp_path, capsys):
+    # the tumbled runs: turned, moved and wrapped frames in a periodic box
+    outs, texts = [], []
+    for name, extra in (("serial", ()), ("workers", ("--workers", "2")),
+                        ("dask", ("--scheduler", threaded_dask.scheduler.address))):
+        out = tmp_path / f"{name}.json"
+        assert _run(tumbled, out, *extra) == 0
+        outs.append(out.read_bytes())
+        texts.append(capsys.readouterr().out.replace(str(out), "OUT"))
+    assert outs[1] == outs[0] and outs[2] == outs[0]
+    assert texts[1] == texts[0] and texts[2] == texts[0]
+
+
+def test_funnel_from_a_source_is_the_sizing_of_its_frames_as_arrays(tumbled, threaded_dask):
+    src = Source(tumbled.topology)
+    for p in tumbled.paths:
+        src.add(p, "bound")
+    pocket = select_atoms(src.topology, tumbled.pocket_selection)
+    ligand = select_atoms(src.topology, tumbled.ligand_selection)
+    got = size_funnel_from_source(src, pocket, ligand, executor=threaded_dask)
+    xyz, box = _frames(tumbled)
+    ref = size_funnel(xyz[:, pocket], xyz[:, ligand], box)
+    # the reference pocket is the first frame's, whatever the split: the same bits
+    assert got["reference_pocket_nm"] == ref["reference_pocket_nm"]
+    assert got["reference_center_nm"] == ref["reference_center_nm"]
+    assert got["observed"]["n_frames"] == len(xyz) and got["density"] == ref["density"]
+    # the rest differs from one pass over the arrays by the order of the sums only
+    for key in ("axis", *SHAPE_KEYS):
+        np.testing.assert_allclose(got["params"][key], ref["params"][key], rtol=1e-9,
+                                   atol=1e-12)
+    for key, value in ref["observed"].items():
+        np.testing.assert_allclose(got["observed"][key], value, rtol=1e-9, err_msg=key)

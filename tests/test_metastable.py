@@ -9,7 +9,10 @@ from sklearn.metrics import adjusted_rand_score
 
 from cvdesign import InputError, Source, suggest
 from cvdesign.cli import main
-from cvdesign.pipeline.explore import MIN_MEMORY, MIN_SEPARATION, propose_states, state_kinetics
+from cvdesign.passes import CoordinateFeaturizer, plan_tasks, run_pass
+from cvdesign.pipeline.explore import (MIN_MEMORY, MIN_SEPARATION, _KineticsPass, _Projection,
+                                       _squared_distances, _Visits, propose_states,
+                                       state_kinetics)
 from cvdesign.testbed import LangevinBAOAB, count_transitions, two_wells, write_pdb
 
 
@@ -339,3 +342,101 @@ def test_cli_refuses_runs_without_metastable_states_and_writes_nothing(demo_file
     err = capsys.readouterr().err
     assert "error: none of the 2 proposed states is metastable" in err
     assert "Traceback" not in err and not out.exists()
+
+
+# ---------------------------------------------------------------------------- on the pass engine
+def test_visits_of_a_run_cut_anywhere_and_joined_in_any_grouping_give_its_transitions():
+    # The transitions counted on the whole run (visits lasting the lag, as state_kinetics
+    # counted them before runs came in pieces) against the same run cut at random points
+    # and joined back pairwise in a random grouping.
+    rng = np.random.default_rng(17)
+    for _ in range(400):
+        n, lag = int(rng.integers(1, 4)), int(rng.integers(1, 6))
+        low = -1 if rng.random() < 0.3 else 0
+        labels = rng.integers(low, n, size=int(rng.integers(1, 40)))
+        labels = np.repeat(labels, rng.integers(1, 6, size=labels.size))
+        starts = np.r_[0, np.flatnonzero(labels[1:] != labels[:-1]) + 1]
+        lengths = np.diff(np.r_[starts, labels.size])
+        counted = labels[starts][(lengths >= lag) & (labels[starts] >= 0)]
+        change = counted[1:] != counted[:-1]
+        exits = np.bincount(counted[:-1][change], minlength=n)
+        entries = np.bincount(counted[1:][change], minlength=n)
+        n_cuts = int(rng.integers(0, min(8, labels.size)))
+        cuts = np.sort(rng.choice(np.arange(1, labels.size), size=n_cuts, replace=False))
+        pieces = [_Visits.of(part, lag, n) for part in np.split(labels, cuts)]
+        while len(pieces) > 1:
+            i = int(rng.integers(0, len(pieces) - 1))
+            pieces[i:i + 2] = [pieces[i].join(pieces[i + 1])]
+        got = pieces[0].close()
+        assert got[0].tolist() == exits.tolist() and got[1].tolist() == entries.tolist()
+
+
+@pytest.fixture(scope="module")
+def two_walkers(tmp_path_factory):
+    """Two double-well walker runs of 700 frames; the second given with per-frame labels that
+    leave two gaps (frames 200-209 and 450 belong to no state)."""
+    out = tmp_path_factory.mktemp("walkers")
+    xs = _langevin_1d(_double_well(5.0), [0.4, 0.8], 700, seed=7)
+    top, paths = _write_walkers(out, xs, seed=8)
+    labels = np.array(["runs"] * 700, dtype=object)
+    labels[200:210] = None
+    labels[450] = None
+    src = Source(top).add(paths[0], "runs").add_labelled(paths[1], labels)
+    return top, paths, labels, src
+
+
+def test_kinetics_pass_gives_the_state_kinetics_of_the_whole_runs_for_any_split(two_walkers,
+                                                                               assert_same):
+    top, paths, labels, src = two_walkers
+    featurizer = CoordinateFeaturizer([0, 1])   # x of atom 1 is the walker's distance
+    project = _Projection(np.array([3]), np.array([0.6]), np.array([0.1]), np.array([0.0]),
+                          np.array([[1.0]]), np.array([1.0]))
+    centers = [np.array([[-2.0], [2.0]]), np.array([[-2.0], [0.0], [2.0]])]
+    lags = {0: 6, 1: 4}
+    kin_pass = _KineticsPass(featurizer, project, lags, centers)
+    plan = plan_tasks(src, leaf_frames=8)  # many visits cross a leaf boundary
+    whole = run_pass(kin_pass, src, tasks=plan)
+    rng = np.random.default_rng(23)
+    for _ in range(3):
+        tasks = plan.split(frames_per_task=int(rng.integers(8, 400)))
+        assert_same(whole, run_pass(kin_pass, src, tasks=tasks,
+                                    chunk_frames=int(rng.integers(5, 300))))
+    # direct reference: every frame's state on whole runs, stretches cut at the gaps
+    keep = [np.ones(700, bool), np.array([x is not None for x in labels])]
+    for c, cen in enumerate(centers):
+        runs, states = [], [f"S{i + 1}" for i in range(len(cen))]
+        for si, path in enumerate(paths):
+            frames = np.flatnonzero(keep[si])
+            x = md.load(path, top=top).xyz[frames][:, [0, 1]].reshape(frames.size, -1)
+            y = project(x.astype(np.float64))
+            lab = np.argmin(_squared_distances(y, cen), axis=1)
+            cuts = np.flatnonzero(np.diff(frames) != 1) + 1
+            runs += [(lab[a:b], lags[si], y[a:b]) for a, b in zip(np.r_[0, cuts],
+                                                                  np.r_[cuts, frames.size])]
+            got = np.concatenate([lb[:, c] for seg, fr, lb in whole["labels"] if seg == si])
+            assert got.tolist() == lab.tolist()
+        ref = state_kinetics(runs, states, lag_ps=0.2)
+        kin = whole["sums"][c].kinetics(states, lag_ps=0.2)
+        for name in ("counts", "exits", "entries", "populations", "staying", "memory",
+                     "lags_in_state", "metastable"):
+            np.testing.assert_array_equal(getattr(kin, name), getattr(ref, name), err_msg=name)
+        # within-state moments about the state centres instead of the first pair: rounding
+        np.testing.assert_allclose(kin.within, ref.within, rtol=1e-9)
+    assert whole["sums"][0].counts.sum() == (700 - 6) + (700 - 10 - 1 - 3 * 4)
+
+
+def test_propose_states_gives_identical_bytes_serially_in_two_processes_and_on_dask(
+        two_walkers, threaded_dask, assert_same):
+    top, paths, _, _ = two_walkers
+    results = [propose_states(_runs_source(top, paths), lag=0.2, kinds=("distance",),
+                              executor=executor)
+               for executor in (None, 2, threaded_dask)]
+
+    def plain(exp):
+        return {**vars(exp), "labels": {p: v.tolist() for p, v in exp.labels.items()}}
+
+    assert results[0].states == ["S1", "S2"]
+    for other in results[1:]:
+        assert_same(plain(results[0]), plain(other))
+        assert other.states_csv() == results[0].states_csv()
+        assert other.summary_lines() == results[0].summary_lines()

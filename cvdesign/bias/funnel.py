@@ -33,10 +33,17 @@ the reference pocket's frame: during the biased run the pocket must be held
 in that orientation (restrained or aligned); the spec stores the reference
 pocket (``reference_pocket_nm``) for that purpose.
 
+The frames come as arrays or chunks of arrays (:func:`size_funnel`) or as the
+trajectories of a :class:`~cvdesign.io.source.Source`, read in two passes of the
+pass engine (:func:`size_funnel_from_source`: local processes or a Dask cluster
+give the same bytes; the reference pocket is read first, from the first frame).
+
 Caution: every suggested value is a starting point to validate (check that
 the bound pose is unperturbed with the restraint on, and that the cylinder
 reaches bulk solvent), not a guarantee.
 """
+
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -45,10 +52,13 @@ from ..constants import UNITS
 from ..errors import InputError
 from ..geometry.box import _parse_box
 from ..io.atomic import atomic_path
+from ..io.source import Source
+from ..parallel import using_executor
+from ..passes import CoordinateFeaturizer, Pass, first_frame, plan_tasks, run_pass
 
 __all__ = ["CAUTION", "SHAPE_KEYS", "FunnelStats", "align_to_reference_pocket", "funnel_axis",
            "funnel_energy", "funnel_radius", "funnel_reach", "plot_funnel", "project_on_axis",
-           "size_funnel"]
+           "size_funnel", "size_funnel_from_source"]
 
 CAUTION = ("Suggested funnel parameters are starting points to validate (bound pose "
            "unperturbed with the restraint on, cylinder reaching bulk solvent), not "
@@ -242,30 +252,71 @@ class FunnelStats:
         """Add ligand centres of shape (n, 3), nm; returns self."""
         z, r = project_on_axis(np.asarray(ligand_centers, dtype=np.float64).reshape(-1, 3),
                                self.origin, self.axis)
-        n = z.size
-        if n == 0:
-            return self
+        if z.size:
+            self._absorb(self._of(z, r))
+        return self
+
+    def merge(self, other):
+        """Statistics of these centres and those of `other` (same origin, axis and bins).
+
+        Returns a new object; neither input is modified. Counts, extremes and
+        bins merge exactly; means and sums of squares by Chan et al. (1979).
+        """
+        if other.bin_width != self.bin_width or not (np.array_equal(other.axis, self.axis)
+                                                     and np.array_equal(other.origin,
+                                                                        self.origin)):
+            raise ValueError("cannot merge funnel statistics of another origin, axis or bin "
+                             "width")
+        out = FunnelStats(self.origin, self.axis, bin_width=self.bin_width)
+        out.count, out._m = self.count, {key: list(v) for key, v in self._m.items()}
+        out.z_min, out.z_max, out.r_min, out.r_max = self.z_min, self.z_max, self.r_min, \
+            self.r_max
+        out.envelope, out.r_hist, out.cells = dict(self.envelope), dict(self.r_hist), \
+            dict(self.cells)
+        out._absorb(other)
+        return out
+
+    def _of(self, z, r):
+        """Statistics of the (z, r) of some centres alone."""
+        part = FunnelStats(self.origin, self.axis, bin_width=self.bin_width)
+        part.count = z.size
         for key, v in (("z", z), ("r", r), ("distance", np.hypot(z, r))):
-            mean_b, m2_b = v.mean(), ((v - v.mean()) ** 2).sum()
+            part._m[key] = [v.mean(), ((v - v.mean()) ** 2).sum()]
+        part.z_min, part.z_max = float(z.min()), float(z.max())
+        part.r_min, part.r_max = float(r.min()), float(r.max())
+        zb = np.floor(z / self.bin_width).astype(np.int64)
+        rb_all = np.floor(r / self.bin_width).astype(np.int64)
+        for b in np.unique(zb):
+            part.envelope[int(b)] = float(r[zb == b].max())
+        rb, cnt = np.unique(rb_all, return_counts=True)
+        part.r_hist = dict(zip(rb.tolist(), cnt.tolist()))
+        cell, cnt = np.unique(np.stack([zb, rb_all], axis=1), axis=0, return_counts=True)
+        part.cells = {(bz, br): c for (bz, br), c in zip(cell.tolist(), cnt.tolist())}
+        return part
+
+    def _absorb(self, other):
+        """Add the statistics of `other` into these, in place."""
+        n = other.count
+        if n == 0:
+            return
+        for key in self._m:
+            mean_b, m2_b = other._m[key]
             mean_a, m2_a = self._m[key]
             tot = self.count + n
             delta = mean_b - mean_a
             self._m[key] = [mean_a + delta * n / tot,
                             m2_a + m2_b + delta * delta * self.count * n / tot]
         self.count += n
-        self.z_min, self.z_max = float(min(self.z_min, z.min())), float(max(self.z_max, z.max()))
-        self.r_min, self.r_max = float(min(self.r_min, r.min())), float(max(self.r_max, r.max()))
-        zb = np.floor(z / self.bin_width).astype(np.int64)
-        rb_all = np.floor(r / self.bin_width).astype(np.int64)
-        for b in np.unique(zb):
-            self.envelope[int(b)] = max(self.envelope.get(int(b), 0.0), float(r[zb == b].max()))
-        rb, cnt = np.unique(rb_all, return_counts=True)
-        for b, c in zip(rb.tolist(), cnt.tolist()):
+        self.z_min, self.z_max = float(min(self.z_min, other.z_min)), \
+            float(max(self.z_max, other.z_max))
+        self.r_min, self.r_max = float(min(self.r_min, other.r_min)), \
+            float(max(self.r_max, other.r_max))
+        for b, r in other.envelope.items():
+            self.envelope[b] = max(self.envelope.get(b, 0.0), r)
+        for b, c in other.r_hist.items():
             self.r_hist[b] = self.r_hist.get(b, 0) + c
-        cell, cnt = np.unique(np.stack([zb, rb_all], axis=1), axis=0, return_counts=True)
-        for (bz, br), c in zip(cell.tolist(), cnt.tolist()):
-            self.cells[(bz, br)] = self.cells.get((bz, br), 0) + c
-        return self
+        for cell, c in other.cells.items():
+            self.cells[cell] = self.cells.get(cell, 0) + c
 
     def _std(self, key):
         return float(np.sqrt(self._m[key][1] / max(self.count, 1)))
@@ -315,14 +366,111 @@ def _chunks(pocket_xyz, ligand_xyz, box, chunks):
             yield p, q, b
 
 
-class _Fitter:
-    """Per chunk: the pocket-to-ligand vector, the fit onto the reference pocket, and the
-    vector in the reference frame. The first frame seen sets the reference."""
+@dataclass(frozen=True)
+class _Reference:
+    """The reference pocket: the first bound frame's, made whole and centred (nm), its centre
+    in that frame (nm), and that frame's box (None without one)."""
 
-    def __init__(self):
-        self.reference = None      # centred reference pocket, nm
-        self.center = None         # pocket centre of the reference frame, nm
-        self.box = None            # box of the reference frame (as given), or None
+    pocket: np.ndarray
+    center: np.ndarray
+    box: object
+
+
+@dataclass
+class _FrameFit:
+    """Frames fitted onto the reference pocket: pocket-to-ligand vectors in the reference
+    frame (nm), centred pockets (nm), rotations, fit RMSD (nm), whole groups (nm)."""
+
+    d: np.ndarray
+    centred: np.ndarray
+    rotation: np.ndarray
+    rmsd: np.ndarray
+    whole_p: np.ndarray
+    whole_q: np.ndarray
+
+
+def _fit_frames(p, q, box, reference, *, frame_offset=0):
+    """Fit every frame's pocket onto the reference and rotate its pocket-to-ligand vector.
+
+    A pure function of each frame and the reference. `reference` None: the
+    first frame's pocket becomes it (refused when it fixes no orientation).
+
+    Returns
+    -------
+    _Reference, _FrameFit
+    """
+    n_p = p.shape[1]
+    xyz = np.concatenate([p, q], axis=1)
+    pocket, ligand = np.arange(n_p), np.arange(n_p, xyz.shape[1])
+    # The same function Spec.restraint_energy evaluates the restraint with.
+    d, _, _ = geometry.center_displacement(xyz, pocket, ligand, box)
+    whole_p, whole_q = geometry.whole_groups(xyz, [pocket, ligand], box)
+    centre = whole_p.mean(axis=1)
+    centred = whole_p - centre[:, None, :]
+    if reference is None:
+        if not geometry.defines_orientation(centred[0]):
+            raise InputError(
+                f"the pocket ({n_p} atoms) does not fix an orientation in the first frame: "
+                "fewer than 3 atoms, or all (nearly) on one line; choose a pocket of at "
+                "least 3 atoms spread in two directions (e.g. the C-alpha atoms lining it)")
+        kind, parsed = _parse_box(box, len(p))
+        reference = _Reference(centred[0].copy(), centre[0].copy(),
+                               None if kind is None else parsed[0])
+    rotation, rmsd = geometry.kabsch_rotation(centred, reference.pocket,
+                                              frame_offset=frame_offset)
+    fitted_d = np.einsum("fj,fjk->fk", d, rotation)
+    return reference, _FrameFit(fitted_d, centred, rotation, rmsd, whole_p, whole_q)
+
+
+class _FitSums:
+    """What the first pass over the bound frames gathers, mergeable.
+
+    Frames; sums of the fitted pocket-to-ligand vectors and of the fitted
+    pockets (nm); the largest ligand radius (nm); sum and largest pocket-fit
+    RMSD (nm); half the smallest box height (nm; inf without a box); the
+    farthest atom of a whole group from its first atom (nm).
+    """
+
+    __slots__ = ("n", "dsum", "psum", "lrad", "rmsd_sum", "rmsd_max", "half_height",
+                 "group_reach")
+
+    def __init__(self, n=0, dsum=None, psum=None, lrad=0.0, rmsd_sum=0.0, rmsd_max=0.0,
+                 half_height=np.inf, group_reach=0.0):
+        self.n, self.dsum, self.psum, self.lrad = n, dsum, psum, lrad
+        self.rmsd_sum, self.rmsd_max = rmsd_sum, rmsd_max
+        self.half_height, self.group_reach = half_height, group_reach
+
+    @classmethod
+    def of(cls, fit, box):
+        """Sums of some fitted frames (`box` None when they have none)."""
+        out = cls(len(fit.d), fit.d.sum(axis=0), np.einsum("faj,fjk->ak", fit.centred,
+                                                           fit.rotation),
+                  float(np.linalg.norm(fit.whole_q - fit.whole_q.mean(axis=1, keepdims=True),
+                                       axis=-1).max()),
+                  float(fit.rmsd.sum()), float(fit.rmsd.max()))
+        if box is not None:
+            out.half_height = 0.5 * float(geometry.box_heights(box).min())
+            out.group_reach = max(float(np.linalg.norm(w - w[:, :1], axis=-1).max())
+                                  for w in (fit.whole_p, fit.whole_q))
+        return out
+
+    def merge(self, other):
+        """Sums of these frames followed by `other`'s (a new object)."""
+        if self.n == 0 or other.n == 0:
+            return other if self.n == 0 else self
+        return _FitSums(self.n + other.n, self.dsum + other.dsum, self.psum + other.psum,
+                        max(self.lrad, other.lrad), self.rmsd_sum + other.rmsd_sum,
+                        max(self.rmsd_max, other.rmsd_max),
+                        min(self.half_height, other.half_height),
+                        max(self.group_reach, other.group_reach))
+
+
+class _Fitter:
+    """Chunks of arrays as :func:`size_funnel` gets them: checked, fitted onto the reference
+    pocket (set by the first frame seen when not given), frames counted for messages."""
+
+    def __init__(self, reference=None):
+        self.reference = reference
         self.n_frames = 0
 
     def __call__(self, p, q, box):
@@ -331,9 +479,9 @@ class _Fitter:
                 or q.shape[2:] != (3,) or p.shape[1] == 0 or q.shape[1] == 0:
             raise InputError("pocket_xyz and ligand_xyz must have shapes (n_frames, n, 3) with "
                              f"equal n_frames and at least one atom; got {p.shape} and {q.shape}")
-        if self.reference is not None and p.shape[1] != len(self.reference):
+        if self.reference is not None and p.shape[1] != len(self.reference.pocket):
             raise InputError(f"a chunk has {p.shape[1]} pocket atoms where the first had "
-                             f"{len(self.reference)}; give the same atoms in every chunk")
+                             f"{len(self.reference.pocket)}; give the same atoms in every chunk")
         for name, arr in (("pocket_xyz", p), ("ligand_xyz", q)):
             bad = ~np.isfinite(arr).all(axis=2)
             if bad.any():
@@ -341,28 +489,10 @@ class _Fitter:
                 raise InputError(f"{name} has NaN or infinite coordinates in frame "
                                  f"{self.n_frames + f} (counting all frames given), atom {j} "
                                  "of that group; give finite coordinates in nm")
-        n_p = p.shape[1]
-        xyz = np.concatenate([p, q], axis=1)
-        pocket, ligand = np.arange(n_p), np.arange(n_p, xyz.shape[1])
-        # The same function Spec.restraint_energy evaluates the restraint with.
-        d, _, _ = geometry.center_displacement(xyz, pocket, ligand, box)
-        whole_p, whole_q = geometry.whole_groups(xyz, [pocket, ligand], box)
-        centre = whole_p.mean(axis=1)
-        centred = whole_p - centre[:, None, :]
-        if self.reference is None:
-            if not geometry.defines_orientation(centred[0]):
-                raise InputError(
-                    f"the pocket ({n_p} atoms) does not fix an orientation in the first frame: "
-                    "fewer than 3 atoms, or all (nearly) on one line; choose a pocket of at "
-                    "least 3 atoms spread in two directions (e.g. the C-alpha atoms lining it)")
-            self.reference, self.center = centred[0].copy(), centre[0].copy()
-            kind, parsed = _parse_box(box, len(p))
-            self.box = None if kind is None else parsed[0]
-        rotation, rmsd = geometry.kabsch_rotation(centred, self.reference,
-                                                  frame_offset=self.n_frames)
-        fitted_d = np.einsum("fj,fjk->fk", d, rotation)
+        self.reference, fit = _fit_frames(p, q, box, self.reference,
+                                          frame_offset=self.n_frames)
         self.n_frames += len(p)
-        return fitted_d, centred, rotation, rmsd, whole_p, whole_q
+        return fit
 
 
 def funnel_radius(z, params):
@@ -528,24 +658,39 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
     >>> out["axis_rule"], p["lower_wall_z_nm"] < 0.1 < p["cone_end_z_nm"]
     ('ligand_offset', True)
     """
+    def first():
+        fitter, sums = _Fitter(), _FitSums()
+        for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
+            sums = sums.merge(_FitSums.of(fitter(p, q, b), b))
+        return fitter.reference, sums
+
+    def second(reference, stats):
+        fitter = _Fitter(reference)
+        for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
+            stats.update(fitter(p, q, b).d)
+        return stats
+
+    return _size(first, second, "give a re-iterable or a callable for chunks",
+                 exit_point=exit_point, ligand_radius=ligand_radius, cylinder_pad=cylinder_pad,
+                 k_std=k_std, min_margin=min_margin, z_margin=z_margin,
+                 blend_half_width=blend_half_width, unbound_length=unbound_length,
+                 min_half_angle=min_half_angle, bin_width=bin_width)
+
+
+def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylinder_pad=0.2,
+          k_std=2.0, min_margin=0.1, z_margin=0.2, blend_half_width=0.1, unbound_length=1.5,
+          min_half_angle=0.2, bin_width=0.02):
+    """The sizing from two passes over the frames (see :func:`size_funnel`).
+
+    ``first()`` returns the reference pocket and the :class:`_FitSums` of every
+    frame; ``second(reference, stats)`` adds every frame's fitted vector to the
+    empty :class:`FunnelStats` `stats` (on the axis chosen from the first pass)
+    and returns them; `changed` is the advice when the passes saw different
+    frames.
+    """
     # Pass 1: reference pocket, mean fitted offset and pocket, ligand radius, box heights.
-    fit = _Fitter()
-    dsum, psum, lrad, rmsd_sum, rmsd_max = np.zeros(3), None, 0.0, 0.0, 0.0
-    half_height, group_reach = np.inf, 0.0
-    for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
-        fd, centred, rotation, rmsd, whole_p, whole_q = fit(p, q, b)
-        dsum += fd.sum(axis=0)
-        part = np.einsum("faj,fjk->ak", centred, rotation)
-        psum = part if psum is None else psum + part
-        lrad = max(lrad, float(np.linalg.norm(
-            whole_q - whole_q.mean(axis=1, keepdims=True), axis=-1).max()))
-        rmsd_sum += float(rmsd.sum())
-        rmsd_max = max(rmsd_max, float(rmsd.max()))
-        if b is not None:
-            half_height = min(half_height, 0.5 * float(geometry.box_heights(b).min()))
-            group_reach = max(group_reach, *(float(np.linalg.norm(w - w[:, :1], axis=-1).max())
-                                             for w in (whole_p, whole_q)))
-    n = fit.n_frames
+    reference, sums = first()
+    n = sums.n
     if n < MIN_FUNNEL_FRAMES:
         raise InputError(
             f"funnel sizing from {n} bound frame(s): the margins come from the ligand's "
@@ -554,21 +699,19 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
     exit_offset = None
     if exit_point is not None:
         e = _finite_exit_point(exit_point)
-        exit_offset = geometry.minimum_image((e - fit.center)[None], fit.box)[0] \
-            if fit.box is not None else e - fit.center
-        _check_exit_offset(e, fit.center, exit_offset, _MIN_OFFSET,
-                           " of the first bound frame (minimum image)" if fit.box is not None
-                           else " of the first bound frame")
-    axis, rule = funnel_axis(np.zeros(3), exit_offset, dsum / n, pocket_xyz=psum / n)
+        exit_offset = geometry.minimum_image((e - reference.center)[None], reference.box)[0] \
+            if reference.box is not None else e - reference.center
+        _check_exit_offset(e, reference.center, exit_offset, _MIN_OFFSET,
+                           " of the first bound frame (minimum image)"
+                           if reference.box is not None else " of the first bound frame")
+    axis, rule = funnel_axis(np.zeros(3), exit_offset, sums.dsum / n, pocket_xyz=sums.psum / n)
     # Pass 2: (z, r) statistics of the fitted vectors.
-    stats = FunnelStats(np.zeros(3), axis, bin_width=bin_width)
-    fit2 = _Fitter()
-    fit2.reference, fit2.center, fit2.box = fit.reference, fit.center, fit.box
-    for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
-        stats.update(fit2(p, q, b)[0])
-    if fit2.n_frames != n:
+    stats = second(reference, FunnelStats(np.zeros(3), axis, bin_width=bin_width))
+    if stats.count != n:
         raise InputError(f"the frames changed between the two passes ({n} then "
-                         f"{fit2.n_frames}); give a re-iterable or a callable for chunks")
+                         f"{stats.count}); {changed}")
+    lrad, rmsd_sum, rmsd_max = sums.lrad, sums.rmsd_sum, sums.rmsd_max
+    half_height, group_reach = sums.half_height, sums.group_reach
     lig_r = lrad if ligand_radius is None else float(ligand_radius)
     dz = max(z_margin, k_std * stats.z_std)
     dr = max(min_margin, k_std * stats.r_std)
@@ -619,8 +762,8 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
                  "centred, in its box orientation",
         "axis_rule": rule,
         "params": {"axis": [float(v) for v in axis], **shape},
-        "reference_pocket_nm": fit.reference.tolist(),
-        "reference_center_nm": fit.center.tolist(),
+        "reference_pocket_nm": reference.pocket.tolist(),
+        "reference_center_nm": reference.center.tolist(),
         "observed": {"n_frames": stats.count, "z_min_nm": float(stats.z_min),
                      "z_max_nm": float(stats.z_max), "z_mean_nm": stats.z_mean,
                      "z_std_nm": stats.z_std, "r_max_nm": float(stats.r_max),
@@ -639,6 +782,171 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
         "reasoning": reasoning,
         "caution": CAUTION,
     }
+
+
+def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options):
+    """Recommend a funnel from the bound-state trajectories of a source, on the pass engine.
+
+    The same sizing as :func:`size_funnel` (see there for the rules and the
+    frame of the reference pocket), reading the trajectories in two passes of
+    :func:`cvdesign.passes.run_pass`: (1) every frame's pocket fitted onto the
+    reference pocket -- that of the first frame of the source (of its first
+    segment with a frame), read before the passes, so it does not depend on
+    how the frames are split -- with the sums of the fitted pocket-to-ligand
+    vectors and pockets, the ligand radius, the fit RMSD and the box heights;
+    (2) the (z, r) statistics along the axis chosen from them. Memory does not
+    grow with the number of frames, and the result is the same, byte for
+    byte, for every executor and task split.
+
+    Parameters
+    ----------
+    source : cvdesign.io.source.Source
+        The bound-state trajectories (every frame with a state is used).
+    pocket, ligand : array-like of int
+        0-based topology indices of the pocket and ligand atoms (no atom in
+        both); the rows of ``reference_pocket_nm`` follow the order of
+        `pocket`.
+    executor : None, int, str, dask.distributed.Client or cvdesign.parallel.Executor
+        Where the passes run: None in this process, an int that many local
+        processes, a Dask client or scheduler address a cluster (see
+        :func:`cvdesign.parallel.as_executor`).
+    **options
+        The keyword options of :func:`size_funnel` (`exit_point`,
+        `ligand_radius`, `cylinder_pad`, `k_std`, `min_margin`, `z_margin`,
+        `blend_half_width`, `unbound_length`, `min_half_angle`, `bin_width`).
+
+    Returns
+    -------
+    dict
+        As :func:`size_funnel`.
+
+    Raises
+    ------
+    InputError
+        A source that is not a Source, empty or overlapping atom groups, bad
+        trajectories (naming the file and frame), and what :func:`size_funnel`
+        refuses.
+    cvdesign.parallel.ExecutorError
+        When the executor fails.
+
+    Examples
+    --------
+    ::
+
+        from cvdesign import Source
+        from cvdesign.bias.funnel import size_funnel_from_source
+        from cvdesign.io.source import select_atoms
+        src = Source("complex.pdb")
+        src.add("bound-1.xtc", "bound")
+        top = src.topology
+        out = size_funnel_from_source(src, select_atoms(top, "resid 10 to 40 and name CA"),
+                                      select_atoms(top, "resname LIG"), executor=2)
+        print(out["params"])
+    """
+    if not isinstance(source, Source):
+        raise InputError(f"size_funnel_from_source() needs a Source of the bound-state "
+                         f"trajectories, not {type(source).__name__}")
+    n_atoms = source.topology.n_atoms
+    groups = []
+    for name, group in (("pocket", pocket), ("ligand", ligand)):
+        g = np.asarray(group).reshape(-1)
+        if g.size == 0 or g.dtype.kind not in "iu" or g.min() < 0 or g.max() >= n_atoms \
+                or np.unique(g).size != g.size:
+            raise InputError(f"{name} must be distinct 0-based atom indices of the topology "
+                             f"(0 to {n_atoms - 1}), at least one; got {np.asarray(group)!r}")
+        groups.append(g.astype(np.intp))
+    if np.intersect1d(*groups).size:
+        raise InputError("pocket and ligand share atoms; the pocket must not include the ligand")
+    unknown = set(options) - set(_SIZING_OPTIONS)
+    if unknown:
+        raise TypeError(f"size_funnel_from_source() got unexpected keyword(s) "
+                        f"{', '.join(sorted(unknown))}")
+    featurizer = CoordinateFeaturizer(np.concatenate(groups))
+    columns = [np.searchsorted(featurizer.atom_indices, g) for g in groups]
+    with using_executor(executor) as executor:
+        plan = plan_tasks(source).for_features(featurizer.n_features, executor.n_workers)
+
+        def first():
+            found = first_frame(plan, featurizer.atom_indices)
+            if found is None:
+                return None, _FitSums()
+            xyz, box = _coordinates(found[2])
+            reference, _ = _fit_frames(xyz[:, columns[0]], xyz[:, columns[1]], box, None)
+            return reference, run_pass(_FitPass(featurizer, *columns, reference), source,
+                                       executor=executor, tasks=plan)
+
+        def second(reference, stats):
+            return run_pass(_StatsPass(featurizer, *columns, reference, stats), source,
+                            executor=executor, tasks=plan)
+
+        return _size(first, second, "were the trajectories changed during the run?", **options)
+
+
+_SIZING_OPTIONS = ("exit_point", "ligand_radius", "cylinder_pad", "k_std", "min_margin",
+                   "z_margin", "blend_half_width", "unbound_length", "min_half_angle",
+                   "bin_width")
+
+
+def _coordinates(trajectory):
+    """Coordinates (nm) and box vectors (nm, or None) of frames, float64."""
+    box = trajectory.unitcell_vectors
+    return (trajectory.xyz.astype(np.float64),
+            None if box is None else np.asarray(box, dtype=np.float64))
+
+
+class _FunnelPass(Pass):
+    """Shared by the funnel's passes: the frames of a leaf fitted onto the reference pocket."""
+
+    def __init__(self, featurizer, pocket, ligand, reference):
+        self.featurizer, self.pocket, self.ligand = featurizer, pocket, ligand
+        self.reference = reference
+
+    def fit(self, leaf):
+        xyz = leaf.x.reshape(leaf.x.shape[0], -1, 3)
+        box = None if leaf.box is None else np.asarray(leaf.box, dtype=np.float64)
+        p, q = xyz[:, self.pocket], xyz[:, self.ligand]
+        try:
+            return _fit_frames(p, q, box, self.reference)[1], box
+        except InputError:  # name the file and the frame
+            for r in range(len(p)):
+                try:
+                    _fit_frames(p[r:r + 1], q[r:r + 1], None if box is None else box[r:r + 1],
+                                self.reference, frame_offset=int(leaf.frames[r]))
+                except InputError as exc:
+                    raise InputError(f"trajectory {leaf.layout.path!r}, pocket atoms: "
+                                     f"{exc}") from None
+            raise
+
+    def merge(self, a, b):
+        return a.merge(b)
+
+
+class _FitPass(_FunnelPass):
+    """Pass 1: the :class:`_FitSums` of every frame."""
+
+    def map(self, leaf):
+        return _FitSums.of(*self.fit(leaf))
+
+    def finish(self, partial, plan):
+        return _FitSums() if partial is None else partial
+
+
+class _StatsPass(_FunnelPass):
+    """Pass 2: the :class:`FunnelStats` of every frame's fitted vector, about the origin
+    and along the axis of `stats` (empty statistics, the template)."""
+
+    def __init__(self, featurizer, pocket, ligand, reference, stats):
+        super().__init__(featurizer, pocket, ligand, reference)
+        self.stats = stats
+
+    def _empty(self):
+        return FunnelStats(self.stats.origin, self.stats.axis, bin_width=self.stats.bin_width)
+
+    def map(self, leaf):
+        return self._empty().update(self.fit(leaf)[0].d)
+
+    def finish(self, partial, plan):
+        return self._empty() if partial is None else partial
 
 
 def funnel_energy(displacement, params, force_constant):

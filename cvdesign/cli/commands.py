@@ -11,14 +11,12 @@ Sub-commands:
 """
 
 import argparse
-import contextlib
 import csv
 import io
 import json
 import math
 import os
 import sys
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -72,6 +70,20 @@ def _int_at_least(low, why=""):
 _positive_int = _int_at_least(1)
 _non_negative_int = _int_at_least(0)
 _at_least_two = _int_at_least(2, " (one fold to fit, one to score; or two states)")
+
+
+def _add_executor_options(p):
+    """--workers N / --scheduler ADDRESS: where the passes over the trajectories run."""
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=_positive_int, default=1, metavar="N",
+                       help="read and featurize the trajectories in N local processes "
+                            "(default: 1, in this process); the outputs are the same, byte "
+                            "for byte")
+    where.add_argument("--scheduler", metavar="ADDRESS", default=None,
+                       help="run the passes over the trajectories on a Dask cluster, e.g. "
+                            "tcp://10.0.0.5:8786 (needs pip install 'cvdesign[dask]'; every "
+                            "worker must read the trajectory paths as given); the outputs "
+                            "are the same, byte for byte")
 
 
 def _add_suggest_options(p):
@@ -136,16 +148,7 @@ def _add_suggest_options(p):
     p.add_argument("--md-step-fs", type=_positive_float, default=2.0, metavar="FS",
                    help="MD step of the biased run in fs, for the hints (default: 2; 0.01 to "
                         "100 fs accepted)")
-    where = p.add_mutually_exclusive_group()
-    where.add_argument("--workers", type=_positive_int, default=1, metavar="N",
-                       help="read and featurize the trajectories in N local processes "
-                            "(default: 1, in this process); the outputs are the same, byte "
-                            "for byte")
-    where.add_argument("--scheduler", metavar="ADDRESS", default=None,
-                       help="run the passes over the trajectories on a Dask cluster, e.g. "
-                            "tcp://10.0.0.5:8786 (needs pip install 'cvdesign[dask]'; every "
-                            "worker must read the trajectory paths as given); the outputs "
-                            "are the same, byte for byte")
+    _add_executor_options(p)
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it holds an earlier cvdesign output")
     p.add_argument("--quiet", action="store_true", help="print only the final table")
@@ -291,6 +294,7 @@ def build_parser():
     p.add_argument("--force", action="store_true",
                    help="replace --out (and --plot) if they exist; input files are never "
                         "replaced")
+    _add_executor_options(p)
 
     p = sub.add_parser(
         "demo", help="run suggest on the bundled demo data",
@@ -313,20 +317,12 @@ def _progress(quiet):
     return lambda msg: print(f"cvdesign: {msg}", file=sys.stderr)
 
 
-@contextlib.contextmanager
 def _executor(args):
-    """The executor of --workers / --scheduler (None: this process), closed at the end."""
-    from ..parallel import as_executor
+    """The executor of --workers / --scheduler for a ``with`` block, closed at its end."""
+    from ..parallel import using_executor
 
-    target = args.scheduler if args.scheduler else (args.workers if args.workers > 1 else None)
-    if target is None:
-        yield None
-        return
-    executor = as_executor(target)
-    try:
-        yield executor
-    finally:
-        executor.close()
+    return using_executor(args.scheduler if args.scheduler else
+                          (args.workers if args.workers > 1 else None))
 
 
 def _run_suggest(topology, states, out, args, stream, runs=None):
@@ -341,25 +337,14 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or [])
     prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json",
                        owned=is_output_file)
-    exploration = None
     progress = _progress(args.quiet)
     if runs:
-        from ..pipeline.explore import propose_states
-
         if args.lag is None:
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
                              "looked for")
-        src = Source(topology, timestep=args.frame_step_ps)
+        source = Source(topology, timestep=args.frame_step_ps)
         for f in runs:
-            src.add(f, state="runs")
-        exploration = propose_states(src, lag=args.lag, n_states=args.n_states,
-                                     selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
-                                     prefilter_stride=args.prefilter_stride,
-                                     coordination_r0=args.coordination_r0, seed=args.seed,
-                                     progress=progress)
-        for warning in exploration.warnings:  # also in summary.md; shown even with --quiet
-            print(f"cvdesign: warning: {warning}", file=sys.stderr)
-        source = exploration.labelled_source(topology, timestep=args.frame_step_ps)
+            source.add(f, state="runs")
     else:
         if getattr(args, "n_states", None) is not None:
             raise InputError("--n-states goes with --runs (states proposed from unlabelled "
@@ -377,7 +362,19 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                                  "FILE [FILE ...]")
             for f in files:
                 source.add(f, state=name)
+    exploration = None
     with _executor(args) as executor:
+        if runs:
+            from ..pipeline.explore import propose_states
+
+            exploration = propose_states(
+                source, lag=args.lag, n_states=args.n_states, selection=args.select,
+                kinds=args.kinds, cutoff=args.cutoff, prefilter_stride=args.prefilter_stride,
+                coordination_r0=args.coordination_r0, seed=args.seed, executor=executor,
+                progress=progress)
+            for warning in exploration.warnings:  # also in summary.md; even with --quiet
+                print(f"cvdesign: warning: {warning}", file=sys.stderr)
+            source = exploration.labelled_source(topology, timestep=args.frame_step_ps)
         result = suggest(source, objective=args.objective, lag=args.lag, method=args.method,
                          selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
                          prefilter_stride=args.prefilter_stride,
@@ -661,7 +658,7 @@ def _check_plot_format(path):
 
 def _cmd_funnel(args):
     from ..io.atomic import atomic_paths, check_output_file
-    from ..bias.funnel import plot_funnel, size_funnel
+    from ..bias.funnel import plot_funnel, size_funnel_from_source
     from ..io.source import Source, select_atoms
 
     if args.exit_point is not None and not all(math.isfinite(v) for v in args.exit_point):
@@ -686,16 +683,9 @@ def _cmd_funnel(args):
     if np.intersect1d(lig, pocket).size:
         raise InputError("--ligand and --pocket share atoms; the pocket must not include the "
                          "ligand")
-    atoms = np.concatenate([pocket, lig])
-
-    def chunks():
-        for c in source.iter_chunks(atom_indices=atoms):
-            xyz = c.trajectory.xyz.astype(np.float64)  # finite: checked by iter_chunks
-            box = c.trajectory.unitcell_vectors
-            yield (xyz[:, :pocket.size], xyz[:, pocket.size:],
-                   None if box is None else box.astype(np.float64))
-
-    result = size_funnel(chunks=chunks, exit_point=args.exit_point)
+    with _executor(args) as executor:
+        result = size_funnel_from_source(source, pocket, lig, exit_point=args.exit_point,
+                                         executor=executor)
     spec = _funnel_spec(source, args, lig, pocket, result)
     try:
         with atomic_paths([args.out] + ([args.plot] if args.plot else [])) as tmps:

@@ -25,6 +25,7 @@ by the tasks themselves (bad input found while reading) pass through unchanged.
 
 import asyncio
 import concurrent.futures
+import contextlib
 import multiprocessing
 import os
 import pickle
@@ -33,7 +34,8 @@ import time
 
 from ..errors import ExecutorError, InputError, SchedulerUnreachableError, WorkerLostError
 
-__all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "as_executor"]
+__all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "as_executor",
+           "using_executor"]
 
 
 def _describe(item):
@@ -371,3 +373,23 @@ def as_executor(executor):
         return DaskExecutor(executor)
     raise InputError(f"executor={executor!r} must be None, a number of processes, an Executor, "
                      "a dask.distributed.Client or a scheduler address")
+
+
+@contextlib.contextmanager
+def using_executor(executor):
+    """:func:`as_executor` for the length of a ``with`` block, closed at its end when it was
+    made here (from an int or a scheduler address); a given Executor or client stays open.
+
+    Examples
+    --------
+    >>> with using_executor(None) as ex:
+    ...     type(ex).__name__
+    'SerialExecutor'
+    """
+    owned = executor is not None and not isinstance(executor, Executor)
+    executor = as_executor(executor)
+    try:
+        yield executor
+    finally:
+        if owned:
+            executor.close()

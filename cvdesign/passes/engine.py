@@ -30,7 +30,7 @@ from .tree import TreeReducer, merge_optional
 
 __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
-           "leaf_frames_for", "run_pass", "run_task", "reference_features"]
+           "leaf_frames_for", "run_pass", "run_task", "first_frame", "reference_features"]
 
 #: Frames per leaf (the unit of arithmetic) when the features are few enough.
 LEAF_FRAMES = 256
@@ -391,6 +391,17 @@ class TaskPlan:
         """The same leaves split into other tasks (see :func:`plan_tasks`)."""
         return self.with_tasks(_split(self, n_tasks, frames_per_task))
 
+    def for_features(self, n_features, n_workers=1):
+        """The same segments in leaves of :func:`leaf_frames_for` `n_features`, in tasks for
+        `n_workers` workers (about four each; one task per segment for one worker).
+
+        The leaves depend on the number of features only, so results do not
+        depend on `n_workers` (the tasks do). Files are not counted again.
+        """
+        plan = TaskPlan(self.layouts, leaf_frames_for(n_features), None, self.states,
+                        self.topology)
+        return plan.split(n_tasks=4 * int(n_workers)) if int(n_workers) > 1 else plan
+
 
 def _split(plan, n_tasks, frames_per_task):
     if n_tasks is not None and frames_per_task is not None:
@@ -634,7 +645,7 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
     cvdesign.parallel.ExecutorError
         The executor failed (scheduler unreachable, a worker died).
     """
-    from ..parallel import Executor, as_executor
+    from ..parallel import using_executor
 
     single = isinstance(pass_, Pass)
     passes = (pass_,) if single else tuple(pass_)
@@ -643,20 +654,13 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
     featurizer = passes[0].featurizer
     if any(p.featurizer is not featurizer for p in passes):
         raise InputError("passes run together must share one featurizer object")
-    owned = executor is not None and not isinstance(executor, Executor)
-    executor = as_executor(executor)
-    try:
+    with using_executor(executor) as executor:
         return _run(passes, featurizer, source, executor, tasks, chunk_frames, single)
-    finally:
-        if owned:
-            executor.close()
 
 
 def _run(passes, featurizer, source, executor, tasks, chunk_frames, single):
     if tasks is None:
-        plan = plan_tasks(source, leaf_frames=leaf_frames_for(featurizer.n_features))
-        if executor.n_workers > 1:
-            plan = plan.split(n_tasks=4 * executor.n_workers)
+        plan = plan_tasks(source).for_features(featurizer.n_features, executor.n_workers)
     elif isinstance(tasks, TaskPlan):
         plan = tasks
     else:
@@ -709,8 +713,38 @@ def _reduce(passes, plan, executor, ctx, works, single):
     return out[0] if single else tuple(out)
 
 
+def first_frame(plan, atom_indices):
+    """The first frame with a state (of the first segment that has one), read and checked.
+
+    A pure function of the input (never of a task split): what a pass may need
+    to know before it runs, such as a fixed shift or a reference structure.
+
+    Parameters
+    ----------
+    plan : TaskPlan
+    atom_indices : array-like of int
+        Sorted topology indices of the atoms to read.
+
+    Returns
+    -------
+    (int, int, mdtraj.Trajectory) or None
+        Segment index, frame number in its file, and the frame (those atoms,
+        with the unit cell when the file has one, no topology); None when no
+        segment has a frame.
+    """
+    for si, lay in enumerate(plan.layouts):
+        if lay.n_frames == 0:
+            continue
+        frames = np.arange(lay.lo, lay.hi)
+        first = int(frames[np.argmax(lay.states_of(frames) >= 0)])
+        for chunk in read_chunks(lay.path, first, first + 1, atom_indices, plan.topology,
+                                 chunk_frames=1):
+            return si, first, chunk.trajectory
+    return None
+
+
 def reference_features(plan, featurizer):
-    """Features of the first frame with a state (first segment that has one).
+    """Features of the first frame with a state (:func:`first_frame`).
 
     A shift for lagged sums that is known before a pass and the same for every
     executor (lagged statistics merge by addition and need one shift).
@@ -720,14 +754,9 @@ def reference_features(plan, featurizer):
     ndarray of shape (n_features,) or None
         None when no segment has a frame.
     """
-    for lay in plan.layouts:
-        if lay.n_frames == 0:
-            continue
-        frames = np.arange(lay.lo, lay.hi)
-        first = int(frames[np.argmax(lay.states_of(frames) >= 0)])
-        for chunk in read_chunks(lay.path, first, first + 1, featurizer.atom_indices,
-                                 plan.topology, chunk_frames=1):
-            with one_blas_thread():
-                return np.asarray(featurizer(chunk.trajectory), dtype=np.float64)[0]
-    return None
+    found = first_frame(plan, featurizer.atom_indices)
+    if found is None:
+        return None
+    with one_blas_thread():
+        return np.asarray(featurizer(found[2]), dtype=np.float64)[0]
 

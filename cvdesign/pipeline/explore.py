@@ -8,13 +8,15 @@ When no state labels are known, :func:`propose_states`
 2. fits TICA (reversible estimate) on the screened features and reads the
    implied timescales; when every timescale is shorter than the lag the runs
    show no slow process at that lag, and it says so instead of inventing states;
-3. projects every frame on the slow TICA coordinates (those slower than the
-   lag, at most three, in kinetic-map scaling) and clusters the projections
-   with k-means (scikit-learn) for every number of states between 2 and
-   ``max_states`` (or the given one), scoring each clustering by its mean
-   silhouette (Rousseeuw 1987) -- the silhouette rewards compact,
-   well-separated groups, as metastable states are, where a likelihood
-   criterion would split one non-Gaussian basin into several;
+3. projects frames on the slow TICA coordinates (those slower than the lag,
+   at most three, in kinetic-map scaling) and clusters the projections of an
+   evenly spaced subsample (at most about 20,000 frames) with k-means
+   (scikit-learn) for every number of states between 2 and ``max_states``
+   (or the given one), scoring each clustering by its mean silhouette
+   (Rousseeuw 1987) -- the silhouette rewards compact, well-separated
+   groups, as metastable states are, where a likelihood criterion would
+   split one non-Gaussian basin into several; every frame then gets the
+   state of its nearest k-means centre;
 4. checks that the proposed states are *metastable*, from the runs
    themselves (:func:`state_kinetics`): the lag-time transition counts between
    the states (pairs of frames one lag apart, within runs only), each state's
@@ -31,6 +33,10 @@ When no state labels are known, :func:`propose_states`
 6. reports each proposed state's population, staying probability and a
    representative frame.
 
+Every read of the runs is a pass of the pass engine (:mod:`cvdesign.passes`;
+see :func:`propose_states`), so the result is the same, byte for byte, on any
+executor (``executor=``: local processes, a Dask cluster) and task split.
+
 The proposed labels then feed the labelled pipeline
 (:func:`cvdesign.pipeline.suggest`) through :meth:`Exploration.labelled_source`.
 """
@@ -46,12 +52,14 @@ from threadpoolctl import threadpool_limits  # installed with scikit-learn
 from ..errors import InputError
 from ..fit import TICA
 from ..io.source import Source
+from ..parallel import using_executor
+from ..passes import (LaggedPass, Pass, PoolFeaturizer, ScreeningPass, frame_keys, plan_tasks,
+                      reference_features, run_pass)
 from ..pool import build_pool
 from ..search import standardize_lagged
-from ..stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator,
-                             LaggedMoments, merge_all)
+from ..stats.moments import LaggedMoments, merge_all
+from .timing import EvenSpacingPass, checked_segments, read_timesteps
 from .timing import lag_frames as _lag_frames
-from .timing import read_timesteps
 
 __all__ = ["propose_states", "state_kinetics", "Exploration", "StateKinetics",
            "MIN_SILHOUETTE", "MIN_MEMORY", "MIN_SEPARATION", "SILHOUETTE_TIE"]
@@ -210,6 +218,215 @@ def _timescale(value, lag_ps):
     return -lag / math.log(value)
 
 
+class _Visits:
+    """Visits of states along consecutive frames of one run: the transitions they make.
+
+    A *visit* is a maximal stretch of frames in one state; only visits lasting
+    at least `lag` frames count (a flicker across a boundary or a quick
+    recrossing is not leaving), and a transition is a change of state between
+    successive counted visits. A piece of a run keeps its first and last
+    visit open (the frames before or after it may extend them) and the
+    transitions between the visits in between; two pieces that follow each
+    other join exactly (integer arithmetic), so a run cut anywhere, into pieces
+    joined in any grouping, gives the same transitions.
+
+    Built by :meth:`of`; :meth:`join` the piece that follows; :meth:`close`
+    at the end of the run.
+    """
+
+    __slots__ = ("lag", "head", "mid", "tail", "exits", "entries")
+
+    def __init__(self, lag, head, mid, tail, exits, entries):
+        self.lag, self.head, self.mid, self.tail = lag, head, mid, tail
+        self.exits, self.entries = exits, entries
+
+    @classmethod
+    def of(cls, labels, lag, n):
+        """Piece of the frames with state codes `labels` (-1: no state; never counted)."""
+        labels = np.asarray(labels, dtype=np.intp)
+        starts = np.r_[0, np.flatnonzero(labels[1:] != labels[:-1]) + 1]
+        lengths = np.diff(np.r_[starts, labels.size])
+        labs = labels[starts]
+        exits, entries = np.zeros(n, dtype=np.int64), np.zeros(n, dtype=np.int64)
+        head = (int(labs[0]), int(lengths[0]))
+        if labs.size == 1:
+            return cls(int(lag), head, None, None, exits, entries)
+        inner = labs[1:-1][(lengths[1:-1] >= lag) & (labs[1:-1] >= 0)]
+        mid = None
+        if inner.size:
+            change = inner[1:] != inner[:-1]
+            exits += np.bincount(inner[:-1][change], minlength=n)
+            entries += np.bincount(inner[1:][change], minlength=n)
+            mid = (int(inner[0]), int(inner[-1]))
+        return cls(int(lag), head, mid, (int(labs[-1]), int(lengths[-1])), exits, entries)
+
+    def _counted(self, visit):
+        """A visit as a sequence of counted states: ``(first, last)``, or None."""
+        label, length = visit
+        return (label, label) if length >= self.lag and label >= 0 else None
+
+    @staticmethod
+    def _chain(parts, exits, entries):
+        """Join sequences of counted states, adding the transitions where they meet."""
+        out = None
+        for p in parts:
+            if p is None:
+                continue
+            if out is not None and out[1] != p[0]:
+                exits[out[1]] += 1
+                entries[p[0]] += 1
+            out = p if out is None else (out[0], p[1])
+        return out
+
+    def _items(self):
+        """First visit, the counted states in between, last visit: ``[(kind, value)]``."""
+        return ([("v", self.head)] + ([("q", self.mid)] if self.mid is not None else [])
+                + ([("v", self.tail)] if self.tail is not None else []))
+
+    def join(self, other):
+        """The piece made of this one followed at once by `other` (a new object)."""
+        left, right = self._items(), other._items()
+        (_, a), (_, b) = left[-1], right[0]
+        if a[0] == b[0]:  # the visit goes on across the cut
+            left[-1] = ("v", (a[0], a[1] + b[1]))
+            right = right[1:]
+        items = left + right
+        exits, entries = self.exits + other.exits, self.entries + other.entries
+        if len(items) == 1:
+            return _Visits(self.lag, items[0][1], None, None, exits, entries)
+        inner = [v if kind == "q" else self._counted(v) for kind, v in items[1:-1]]
+        mid = self._chain(inner, exits, entries)
+        return _Visits(self.lag, items[0][1], mid, items[-1][1], exits, entries)
+
+    def close(self):
+        """Transitions out of and into each state: ``(exits, entries)`` (new arrays)."""
+        exits, entries = self.exits.copy(), self.entries.copy()
+        parts = [self._counted(self.head), self.mid]
+        if self.tail is not None:
+            parts.append(self._counted(self.tail))
+        self._chain(parts, exits, entries)
+        return exits, entries
+
+
+class _KineticSums:
+    """Lag-time statistics of state labels along runs, mergeable (what :func:`state_kinetics`
+    judges).
+
+    Integer counts (transition pairs, frames per state and lag, transitions
+    between visits) merge exactly; the within-state lagged moments of the
+    coordinates merge by addition about fixed shifts. Runs may come in
+    pieces (``pieces``: open :class:`_Visits` keyed by ``(segment, source
+    state, first frame, last frame)``, in frame order); :meth:`merge` joins
+    a piece with the one that follows it at once and closes the pieces that
+    nothing can extend any more.
+
+    Parameters
+    ----------
+    n : int
+        Number of states.
+    shifts : ndarray of shape (n, d), default=None
+        Fixed shift of each state's within-state moments (None: the first
+        pair seen, for runs given whole).
+    """
+
+    def __init__(self, n, shifts=None):
+        self.n = int(n)
+        self.shifts = shifts
+        self.counts = np.zeros((self.n, self.n), dtype=np.int64)
+        self.frames = {}      # lag in frames -> frames in each state
+        self.exits = np.zeros(self.n, dtype=np.int64)
+        self.entries = np.zeros(self.n, dtype=np.int64)
+        self.inside = {}      # state -> LaggedMoments over pairs inside it
+        self.pieces = []
+
+    def add_frames(self, labels, lag):
+        known = labels[labels >= 0]
+        per = self.frames.get(int(lag), np.zeros(self.n, dtype=np.int64))
+        self.frames[int(lag)] = per + np.bincount(known, minlength=self.n)
+
+    def add_pairs(self, a, b, ya=None, yb=None):
+        """Pairs of frames one lag apart: states `a` then `b`, coordinates `ya`, `yb`."""
+        ok = (a >= 0) & (b >= 0)
+        n = self.n
+        self.counts += np.bincount(a[ok] * n + b[ok], minlength=n * n).reshape(n, n)
+        if ya is None:
+            return
+        same = ok & (a == b)
+        for i in np.unique(a[same]):
+            rows = np.flatnonzero(same & (a == i))
+            m = self.inside.get(int(i))
+            if m is None:
+                shift = ya[rows[0]] if self.shifts is None else self.shifts[int(i)]
+                m = self.inside[int(i)] = LaggedMoments(ya.shape[1], shift=shift)
+            m.add_pairs(ya[rows], yb[rows])
+
+    def add_run(self, labels, lag):
+        """The visits of a whole run (nothing before or after it)."""
+        if labels.size:
+            ex, en = _Visits.of(labels, lag, self.n).close()
+            self.exits += ex
+            self.entries += en
+
+    def merge(self, other):
+        """Statistics of this and `other`'s frames (which come after these); a new object."""
+        out = _KineticSums(self.n, self.shifts)
+        out.counts = self.counts + other.counts
+        out.frames = dict(self.frames)
+        for lag, v in other.frames.items():
+            out.frames[lag] = out.frames[lag] + v if lag in out.frames else v
+        out.exits = self.exits + other.exits
+        out.entries = self.entries + other.entries
+        out.inside = dict(self.inside)
+        for i, m in other.inside.items():
+            out.inside[i] = out.inside[i].merge(m) if i in out.inside else m
+        pieces = list(self.pieces)
+        for key, piece in other.pieces:
+            if pieces:
+                (seg, state, first, last), prev = pieces[-1]
+                if (seg, state, last + 1) == key[:3]:
+                    pieces[-1] = ((seg, state, first, key[3]), prev.join(piece))
+                    continue
+            pieces.append((key, piece))
+        for _, piece in pieces[1:-1]:  # nothing comes between them and their neighbours
+            ex, en = piece.close()
+            out.exits += ex
+            out.entries += en
+        out.pieces = pieces[:1] + pieces[1:][-1:]
+        return out
+
+    def closed(self):
+        """Every piece closed (the runs end here): a new object."""
+        out = self.merge(_KineticSums(self.n, self.shifts))
+        for _, piece in out.pieces:
+            ex, en = piece.close()
+            out.exits += ex
+            out.entries += en
+        out.pieces = []
+        return out
+
+    def subset(self, keep):
+        """The statistics of the states `keep` only (states without frames dropped)."""
+        keep = np.asarray(keep, dtype=np.intp)
+        out = _KineticSums(keep.size, None if self.shifts is None else self.shifts[keep])
+        out.counts = self.counts[np.ix_(keep, keep)]
+        out.frames = {lag: v[keep] for lag, v in self.frames.items()}
+        out.exits, out.entries = self.exits[keep], self.entries[keep]
+        out.inside = {j: self.inside[int(i)] for j, i in enumerate(keep)
+                      if int(i) in self.inside}
+        return out
+
+    def kinetics(self, states, lag_ps=None):
+        """The :class:`StateKinetics` of these statistics (pieces must be closed)."""
+        n = self.n
+        frames = np.zeros(n, dtype=np.int64)
+        lags_in_state = np.zeros(n)
+        for lag in sorted(self.frames):
+            frames += self.frames[lag]
+            lags_in_state += self.frames[lag] / max(lag, 1)
+        return _verdict(states, lag_ps, self.counts, frames, lags_in_state, self.exits,
+                        self.entries, self.inside)
+
+
 def state_kinetics(runs, states, *, lag_ps=None, positions=True):
     """Lag-time transition counts, staying probabilities and metastability of states.
 
@@ -249,42 +466,25 @@ def state_kinetics(runs, states, *, lag_ps=None, positions=True):
     >>> k.memory.tolist(), k.metastable.tolist()
     ([0.5, 1.0], [True, True])
     """
-    n = len(states)
-    counts = np.zeros((n, n), dtype=np.int64)
-    frames = np.zeros(n, dtype=np.int64)
-    lags_in_state = np.zeros(n)
-    exits = np.zeros(n, dtype=np.int64)
-    entries = np.zeros(n, dtype=np.int64)
-    inside = {}
+    sums = _KineticSums(len(states))
     for labels, lag, y in runs:
         labels = np.asarray(labels, dtype=np.intp)
-        known = labels >= 0
         lag = int(lag)
-        in_run = np.bincount(labels[known], minlength=n)
-        frames += in_run
-        lags_in_state += in_run / max(lag, 1)
-        # visits: maximal stretches in one state; only those lasting at least the lag
-        # count, so a flicker across a boundary (or a quick recrossing) is no transition
-        starts = np.r_[0, np.flatnonzero(labels[1:] != labels[:-1]) + 1] if labels.size else \
-            np.zeros(0, dtype=np.intp)
-        lengths = np.diff(np.r_[starts, labels.size])
-        visits = labels[starts][(lengths >= lag) & (labels[starts] >= 0)]
-        change = visits[1:] != visits[:-1]
-        exits += np.bincount(visits[:-1][change], minlength=n)
-        entries += np.bincount(visits[1:][change], minlength=n)
+        sums.add_frames(labels, lag)
+        sums.add_run(labels, lag)
         if labels.size <= lag:
             continue
-        a, b = labels[:-lag], labels[lag:]
-        ok = (a >= 0) & (b >= 0)
-        counts += np.bincount(a[ok] * n + b[ok], minlength=n * n).reshape(n, n)
         if positions and y is not None:
             y = np.asarray(y, dtype=np.float64).reshape(labels.size, -1)
-            for i in np.unique(a[ok & (a == b)]):
-                rows = np.flatnonzero((a == i) & (b == i))
-                m = inside.get(int(i))
-                if m is None:
-                    m = inside[int(i)] = LaggedMoments(y.shape[1], shift=y[rows[0]].copy())
-                m.add_pairs(y[rows], y[rows + lag])
+            sums.add_pairs(labels[:-lag], labels[lag:], y[:-lag], y[lag:])
+        else:
+            sums.add_pairs(labels[:-lag], labels[lag:])
+    return sums.kinetics(states, lag_ps=lag_ps)
+
+
+def _verdict(states, lag_ps, counts, frames, lags_in_state, exits, entries, inside):
+    """Staying probabilities, memory, separation and the metastability of each state."""
+    n = len(states)
     total = frames.sum()
     pops = frames / total if total else np.full(n, np.nan)
     out_pairs = counts.sum(axis=1)
@@ -500,8 +700,23 @@ def _fmt_ts(t):
 
 def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
                    kinds=("distance", "angle", "dihedral"), cutoff=1.0, prefilter_stride=10,
-                   coordination_r0=0.45, screen_size=200, max_slow=3, seed=0, progress=None):
+                   coordination_r0=0.45, screen_size=200, max_slow=3, seed=0, executor=None,
+                   progress=None):
     """Propose metastable states of unlabelled runs from their slow coordinates.
+
+    Every read of the runs is a pass of the pass engine (:mod:`cvdesign.passes`):
+    (1) per-feature variances and autocorrelations at the lag, (2) the lagged
+    moments of the screened features for TICA, (3) the slow coordinates of a
+    subsample of frames -- every ``max(1, n_frames // 20000)``-th frame of each
+    run, by its rank in the run, so at most 20,000 frames plus one per run --
+    on which k-means is fitted and the silhouette computed, (4) for every
+    candidate number of states at once, the state of every frame (the nearest
+    k-means centre), the lag-time transition counts, the transitions between
+    visits, the within-state lagged moments and each state's representative
+    frame. Memory does not grow with the number of frames except for the
+    state labels of pass 4 (one small integer per frame and candidate), which
+    the result holds for every frame by nature. The result is the same, byte
+    for byte, for every executor and task split.
 
     Parameters
     ----------
@@ -523,6 +738,11 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         Largest number of slow coordinates clustered.
     seed : int, default=0
         Seed of the k-means initializations.
+    executor : None, int, str, dask.distributed.Client or cvdesign.parallel.Executor
+        Where the passes over the runs run: None in this process, an int that
+        many local processes, a Dask client or scheduler address a cluster
+        (see :func:`cvdesign.parallel.as_executor`). The results are the same,
+        byte for byte.
     progress : callable, default=None
 
     Returns
@@ -535,6 +755,9 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         When the runs show no slow process at the lag, when no proposed state
         is metastable (the message gives the transition counts and staying
         probabilities), or for bad input.
+    cvdesign.parallel.ExecutorError
+        When the executor fails (a scheduler that cannot be reached, a worker
+        that dies).
 
     Examples
     --------
@@ -547,56 +770,45 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         src = Source("protein.pdb")
         for f in ["run1.xtc", "run2.xtc", "run3.xtc"]:
             src.add(f, "runs")
-        exploration = propose_states(src, lag=20.0)
+        exploration = propose_states(src, lag=20.0, executor=2)  # two local processes
         print(exploration.populations, exploration.kinetics.staying, exploration.warnings)
     """
+    if not isinstance(source, Source):
+        raise InputError(f"propose_states() needs a Source (a topology and the runs), not "
+                         f"{type(source).__name__}; build one with Source('top.pdb') and "
+                         ".add('run1.xtc', 'runs') for each run")
     if not (isinstance(lag, (int, float)) and math.isfinite(lag) and lag > 0):
         raise InputError(f"lag={lag!r} must be a positive time in ps (give --lag PS)")
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):
         raise InputError(f"n_states={n_states!r} must be an integer of at least 2")
-    note = progress or (lambda msg: None)
+    with using_executor(executor) as executor:
+        return _propose(source, executor, progress or (lambda msg: None), lag=float(lag),
+                        n_states=n_states, max_states=max_states, selection=selection,
+                        kinds=kinds, cutoff=cutoff, prefilter_stride=prefilter_stride,
+                        coordination_r0=coordination_r0, screen_size=screen_size,
+                        max_slow=max_slow, seed=seed)
+
+
+def _propose(source, executor, note, *, lag, n_states, max_states, selection, kinds, cutoff,
+             prefilter_stride, coordination_r0, screen_size, max_slow, seed):
     timesteps = read_timesteps(source)
     lag_frames = _lag_frames(source, lag, timesteps)
     note("building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,
                       stride=prefilter_stride, coordination_r0=coordination_r0)
-    atoms = pool.atom_indices()
-    n_feat = pool.n_features
-    chunk = _chunk_frames(source, n_feat)
+    base = plan_tasks(source)
     note(f"pool: {len(pool)} descriptors; screening by autocorrelation at {lag:g} ps")
-
-    # pass 1: variances and lag-autocorrelation of every feature
-    diag = DiagonalMoments(n_feat)
-    lag1 = None
-    for c in source.iter_chunks(atom_indices=atoms, chunk_size=chunk):
-        x = pool.features(c.trajectory, atom_indices=atoms)
-        if lag1 is None:
-            lag1 = _Series(n_feat, x[0].copy(), diagonal=True)
-        diag = diag.merge(DiagonalMoments.from_data(x))
-        lag1.feed(c.segment_index, c.frames, x, lag_frames[c.segment_index])
-    if lag1 is None or lag1.moments().count == 0:
-        raise InputError(f"no lagged pairs at lag {lag:g} ps: every run is shorter than the "
-                         "lag; choose a shorter --lag")
-    rho = np.nan_to_num(lag1.moments().autocorrelation(), nan=0.0)
-    center, scale = diag.mean, np.sqrt(diag.variance)
-    constant = ~(scale > 1e-12 * (1.0 + np.abs(center)))
-    rho[constant] = 0.0
-    scale[constant] = 1.0
-    order = sorted(range(n_feat), key=lambda j: (-rho[j], j))
-    feats = np.array(sorted(j for j in order[:screen_size] if rho[j] > 0), dtype=np.intp)
-    if feats.size == 0:
-        raise InputError(f"no feature is correlated across the lag of {lag:g} ps; the runs show "
-                         "no slow process at this lag: choose a shorter --lag or longer runs")
-
-    # pass 2: full lagged moments of the screened features -> TICA
-    lag2 = _Series(feats.size, center[feats], diagonal=False)
-    for c in source.iter_chunks(atom_indices=atoms, chunk_size=chunk):
-        x = pool.features(c.trajectory, atom_indices=atoms)[:, feats]
-        lag2.feed(c.segment_index, c.frames, x, lag_frames[c.segment_index])
-    lagged = standardize_lagged(lag2.moments(), center[feats], scale[feats])
-    tica = TICA.from_moments(lagged, lag=1, rcond=1e-6)
+    screened = _screen(source, base, pool, timesteps, lag, lag_frames, screen_size, executor)
+    note(f"TICA on the {screened.columns.size} most autocorrelated features")
+    plan = base.for_features(screened.featurizer.n_features, executor.n_workers)
+    tica = TICA.from_moments(
+        standardize_lagged(run_pass(LaggedPass(screened.featurizer, lag_frames,
+                                               shift=screened.center,
+                                               columns=screened.columns),
+                                    source, executor=executor, tasks=plan).merged(),
+                           screened.center, screened.scale), lag=1, rcond=1e-6)
     ts_ps = (tica.timescales_ * lag).tolist()  # from_moments used lag=1 (one lag unit)
-    notes = [f"TICA on the {feats.size} most autocorrelated features "
+    notes = [f"TICA on the {screened.columns.size} most autocorrelated features "
              f"({tica.n_dropped_} near-singular directions dropped, eigenvalue below 1e-6 of "
              "the largest)"]
     slow = [i for i, t in enumerate(ts_ps) if (math.isinf(t) or t > lag)]
@@ -607,67 +819,63 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
             "nothing stays correlated long enough to tell metastable states apart. Use a "
             "shorter --lag, longer runs, or give the states yourself with --state")
     n_slow = min(max_slow, len(slow))
-    comps = tica.eigenvectors_[:, :n_slow]
-
-    # pass 3: project every frame on the slow coordinates
-    proj, frames_of = {}, {}
-    for c in source.iter_chunks(atom_indices=atoms, chunk_size=chunk):
-        x = pool.features(c.trajectory, atom_indices=atoms)[:, feats]
-        z = ((x - center[feats]) / scale[feats] - tica.mean_) @ comps
-        proj.setdefault(c.segment_index, []).append(z)
-        frames_of.setdefault(c.segment_index, []).append(c.frames)
-    keys = sorted(proj)
-    frames_of = {k: np.concatenate(frames_of[k]) for k in keys}
     # kinetic-map scaling (Noé and Clementi 2015): each slow coordinate weighted by its
     # eigenvalue, so barely-slow ones count less in the clustering
-    y = np.concatenate([np.concatenate(proj[k]) for k in keys]) * tica.eigenvalues_[:n_slow]
-    # the clustering sees at most 20,000 evenly spaced frames (deterministic), the
-    # silhouette at most 4,000 of those
-    fit_y = y[::max(1, y.shape[0] // 20000)]
+    project = _Projection(screened.columns, screened.center, screened.scale, tica.mean_,
+                          tica.eigenvectors_[:, :n_slow], tica.eigenvalues_[:n_slow])
+
+    # the clustering sees at most about 20,000 evenly spaced frames (by rank in each run,
+    # so the same for every split), the silhouette at most 4,000 of those
+    n_frames = int(screened.segment_counts.sum())
+    note(f"slow coordinates of a subsample of the {n_frames} frames")
+    fit_y = run_pass(_SamplePass(screened.featurizer, project, max(1, n_frames // 20000)),
+                     source, executor=executor, tasks=plan)
     sil_y = fit_y[::max(1, fit_y.shape[0] // 4000)]
-    # stretches of consecutive frames of each run: lagged pairs never span a file or a gap
-    stretches, pos = [], 0
-    for key in keys:
-        fr = frames_of[key]
-        cuts = np.flatnonzero(np.diff(fr) != 1) + 1
-        for lo, hi in zip(np.r_[0, cuts], np.r_[cuts, fr.size]):
-            stretches.append((pos + lo, pos + hi, lag_frames[key]))
-        pos += fr.size
+    models = {}
 
     def cluster(k):
         # one thread: k-means sums depend on how the frames are split between threads, so
         # this keeps the result the same on every machine (and on at most 20,000 frames of
         # at most three coordinates it is also faster than waiting for busy cores)
         with threadpool_limits(limits=1):
-            km = KMeans(n_clusters=k, n_init=10, random_state=seed).fit(fit_y)
-        # name states S1, S2, ... along the slowest coordinate
-        order_c = np.argsort(km.cluster_centers_[:, 0], kind="stable")
-        rename = np.empty(k, dtype=np.intp)
-        rename[order_c] = np.arange(k)
-        lab = rename[km.predict(y)]
-        used = sorted(set(lab.tolist()))
-        # kinetics over the used states only (k-means may leave a cluster empty)
-        code = np.full(k, -1, dtype=np.intp)
-        code[used] = np.arange(len(used))
-        kin = state_kinetics(((code[lab[a:b]], n, y[a:b]) for a, b, n in stretches),
-                             [f"S{i + 1}" for i in used], lag_ps=float(lag))
-        return {"k": k, "labels": lab, "used": used, "means": km.cluster_centers_[order_c],
-                "kinetics": kin, "model": km}
+            models[k] = KMeans(n_clusters=k, n_init=10, random_state=seed).fit(fit_y)
+        return models[k]
 
+    scores = {}
     if n_states is None:
-        scores, fits = {}, {}
         for k in range(2, max_states + 1):
             if sil_y.shape[0] <= k:
                 break
-            fit = cluster(k)
-            labels_k = fit["model"].predict(sil_y)
+            labels_k = cluster(k).predict(sil_y)
             if len(set(labels_k.tolist())) < 2:
                 continue
             with threadpool_limits(limits=1):
                 scores[k] = float(silhouette_score(sil_y, labels_k))
-            fits[k] = fit
         if not scores:
             raise InputError("too few distinct frames to propose states; give longer runs")
+        candidates = sorted(scores)
+    else:
+        if fit_y.shape[0] < n_states:
+            raise InputError(f"too few frames ({fit_y.shape[0]}) to propose {n_states} states; "
+                             "give longer runs or fewer states")
+        cluster(n_states)
+        candidates = [n_states]
+    # name states S1, S2, ... along the slowest coordinate
+    means = {k: models[k].cluster_centers_[np.argsort(models[k].cluster_centers_[:, 0],
+                                                      kind="stable")] for k in candidates}
+    note(f"states of every frame and their kinetics ({', '.join(map(str, candidates))} "
+         "states)")
+    found = run_pass(_KineticsPass(screened.featurizer, project, lag_frames,
+                                   [means[k] for k in candidates]),
+                     source, executor=executor, tasks=plan)
+    fits = {}
+    for c, k in enumerate(candidates):
+        sums = found["sums"][c]
+        used = np.flatnonzero(sum(sums.frames.values()) > 0)
+        kin = sums.subset(used).kinetics([f"S{i + 1}" for i in used], lag_ps=lag)
+        fits[k] = {"k": k, "column": c, "used": used.tolist(), "kinetics": kin}
+
+    if n_states is None:
         best = max(scores, key=lambda k: (scores[k], -k))
         if scores[best] < MIN_SILHOUETTE:
             raise InputError(
@@ -695,12 +903,11 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         criterion = {"name": "silhouette", "values": scores, "all_metastable": all_meta,
                      "rule": rule}
     else:
-        fit = cluster(n_states)
+        fit = fits[n_states]
         criterion = {"name": "given", "values": {},
                      "all_metastable": {n_states: bool(fit["kinetics"].metastable.all())},
                      "rule": "given"}
-    k, lab, used, means = fit["k"], fit["labels"], fit["used"], fit["means"]
-    kin = fit["kinetics"]
+    k, used, kin = fit["k"], fit["used"], fit["kinetics"]
     names = [f"S{i + 1}" for i in range(k)]
     if len(used) < 2:
         raise InputError("the clustering put every frame into one state; the runs may sample "
@@ -721,121 +928,214 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
                 for i, s in enumerate(states) if not kin.metastable[i]]
     note(f"{len(states)} states proposed; staying probabilities at {lag:g} ps: "
          + ", ".join(f"{s} {kin.staying[i]:.3f}" for i, s in enumerate(states)))
-    labels, reps, best_d, pos = {}, {}, {}, 0
-    for key in keys:
-        fr = frames_of[key]
-        n = fr.size
-        seg = source.segments[key]
-        arr = np.full(int(fr.max()) + 1 if fr.size else 0, None, dtype=object)
-        arr[fr] = np.array([names[i] for i in lab[pos:pos + n]], dtype=object)
-        labels[str(seg.path)] = arr
-        d = np.linalg.norm(y[pos:pos + n] - means[lab[pos:pos + n]], axis=1)
-        for i in np.unique(lab[pos:pos + n]):
-            rows = np.flatnonzero(lab[pos:pos + n] == i)
-            j = rows[np.argmin(d[rows])]
-            if names[i] not in best_d or d[j] < best_d[names[i]]:
-                best_d[names[i]] = d[j]
-                reps[names[i]] = {"file": seg.path.name, "frame": int(fr[j])}
-        pos += n
-    pops = {names[i]: float(np.mean(lab == i)) for i in used}
+    c = fit["column"]
+    reps = {}
+    for i in used:
+        _, seg, frame = found["representatives"][c][i]
+        reps[names[i]] = {"file": source.segments[seg].path.name, "frame": frame}
+    frames_in = sum(found["sums"][c].frames.values())
+    pops = {names[i]: float(frames_in[i] / n_frames) for i in used}
     notes = source.notes + notes
-    notes.append(f"{len(states)} states proposed from {y.shape[0]} frames "
+    notes.append(f"{len(states)} states proposed from {n_frames} frames "
                  f"(k-means fitted on {fit_y.shape[0]}, silhouette on {sil_y.shape[0]})")
-    lengths = [frames_of[k].size * timesteps[k] for k in keys if timesteps.get(k) is not None]
-    return Exploration(states=states, labels=labels, populations=pops, representatives=reps,
-                       timescales_ps=ts_ps, lag_ps=float(lag), n_slow=n_slow,
-                       criterion=criterion, notes=notes,
+    lengths = [screened.segment_counts[si].sum() * dt for si, dt in timesteps.items()
+               if dt is not None and screened.segment_counts[si].sum() > 0]
+    return Exploration(states=states, labels=_frame_labels(source, found["labels"], c, names),
+                       populations=pops, representatives=reps, timescales_ps=ts_ps,
+                       lag_ps=lag, n_slow=n_slow, criterion=criterion, notes=notes,
                        longest_run_ps=float(max(lengths)) if lengths else None,
                        kinetics=kin, warnings=warnings)
 
 
-# -- streaming helpers (until propose_states runs on the pass engine)
-def _chunk_frames(source, n_features, budget=2_000_000):
-    """Frames per chunk so that a chunk's feature matrix stays near `budget` numbers."""
-    return int(min(source.chunk_size, max(8, budget // max(1, n_features))))
+@dataclass
+class _Screened:
+    """The features kept for TICA: a featurizer of their descriptors and their columns in it.
 
-
-class _Series:
-    """Lagged statistics of many time series, keyed, fed chunk by chunk.
-
-    A series is identified by a key (e.g. segment, state, fold); frames of one
-    key that do not follow each other (a gap in frame numbers) start a new
-    series, so no pair spans a gap, a state change, or a file boundary.
+    `center` and `scale` (of the kept columns) standardize them; `segment_counts`
+    are the frames of each (segment, state).
     """
 
-    def __init__(self, n_features, shift, *, diagonal):
-        self.n_features = n_features
-        self.shift = shift
-        self.diagonal = diagonal
-        self._acc = {}
-        self._last = {}
+    featurizer: PoolFeaturizer
+    columns: np.ndarray
+    center: np.ndarray
+    scale: np.ndarray
+    segment_counts: np.ndarray
 
-    def feed(self, key, frames, x, lag):
-        """Feed rows `x` (frames `frames`, consecutive or not) of the series `key`."""
-        if x.shape[0] == 0:
-            return
-        acc = self._acc.get(key)
-        if acc is None:
-            acc = self._acc[key] = LagAccumulator(self.n_features, lag, shift=self.shift,
-                                                  diagonal=self.diagonal)
-        cuts = np.flatnonzero(np.diff(frames) != 1) + 1
-        last = self._last.get(key)
-        if last is not None and frames[0] != last + 1:
-            acc.break_series()
-        start = 0
-        for c in list(cuts) + [len(frames)]:
-            acc.feed(x[start:c])
-            if c < len(frames):
-                acc.break_series()
-            start = c
-        self._last[key] = frames[-1]
 
-    def moments_of(self, key):
-        """Moments of one key (an empty object if the key was never fed)."""
-        acc = self._acc.get(key)
-        if acc is None:
-            cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
-            return cls(self.n_features, shift=self.shift)
-        m = acc.moments.copy()
-        m.lag = None
-        return m
+def _screen(source, base, pool, timesteps, lag, lag_frames, screen_size, executor):
+    """Pass 1: variance and autocorrelation at the lag of every feature; the most
+    autocorrelated ones (even time spacing checked in the same read)."""
+    every = PoolFeaturizer(pool)
+    plan = base.for_features(every.n_features, executor.n_workers)
+    shift = reference_features(plan, every)
+    spacing = EvenSpacingPass(every, timesteps, checked_segments(source, timesteps))
+    first, lagged, _ = run_pass((ScreeningPass(every), LaggedPass(every, lag_frames,
+                                                                   shift=shift, diagonal=True),
+                                 spacing), source, executor=executor, tasks=plan)
+    pairs = lagged.merged()
+    if pairs.count == 0:
+        raise InputError(f"no lagged pairs at lag {lag:g} ps: every run is shorter than the "
+                         "lag; choose a shorter --lag")
+    n_feat = pool.n_features
+    rho = np.nan_to_num(pairs.autocorrelation(), nan=0.0)
+    diag = merge_all(first.diagonal)
+    center, scale = diag.mean, np.sqrt(diag.variance)
+    constant = ~(scale > 1e-12 * (1.0 + np.abs(center)))
+    rho[constant] = 0.0
+    scale[constant] = 1.0
+    order = sorted(range(n_feat), key=lambda j: (-rho[j], j))
+    feats = np.array(sorted(j for j in order[:screen_size] if rho[j] > 0), dtype=np.intp)
+    if feats.size == 0:
+        raise InputError(f"no feature is correlated across the lag of {lag:g} ps; the runs show "
+                         "no slow process at this lag: choose a shorter --lag or longer runs")
+    # the next passes compute only the descriptors of the kept features
+    descriptors = np.unique(pool.feature_descriptor[feats])
+    columns = np.searchsorted(pool.features_of(descriptors), feats).astype(np.intp)
+    return _Screened(PoolFeaturizer(pool.subset(descriptors)), columns, center[feats],
+                     scale[feats], first.segment_counts)
 
-    def local_autocorrelation(self):
-        """Autocorrelation at the lag with every series about its own mean.
 
-        The variances and lagged covariances of the keys (diagonal statistics),
-        each about the key's own mean, are combined weighted by their pair
-        counts: the decorrelation *within* runs, free of the offsets between
-        runs or states.
-        """
-        c0 = np.zeros(self.n_features)
-        ct = np.zeros(self.n_features)
-        for acc in self._acc.values():
-            m = acc.moments
-            if m.count == 0:
-                continue
-            _, v0, c = m.covariances(reversible=True)
-            c0 += m.count * v0
-            ct += m.count * c
-        out = np.full(self.n_features, np.nan)
-        ok = c0 > 0
-        out[ok] = ct[ok] / c0[ok]
-        return out
+class _Projection:
+    """Slow coordinates of frames: the standardized kept features on the slow TICA
+    eigenvectors, times their eigenvalues (kinetic map).
 
-    def run_means(self):
-        """Mean of the lagged pairs of each key (reversible, both ends), by key."""
-        return {key: acc.moments.covariances(reversible=True)[0]
-                for key, acc in self._acc.items() if acc.moments.count > 0}
+    Computed row by row (a product and a sum per coordinate, no matrix
+    product), so a frame's coordinates are the same bits in whatever rows it
+    is computed with (a matrix product's rows depend on the matrix's shape).
+    """
 
-    def moments(self, select=None):
-        """Merged moments of the keys for which ``select(key)`` is true (all if None)."""
-        out = []
-        for key, acc in self._acc.items():
-            if select is None or select(key):
-                m = acc.moments.copy()
-                m.lag = None  # files may need different frame lags for one lag in ps
-                out.append(m)
-        if not out:
-            cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
-            return cls(self.n_features, shift=self.shift)
-        return merge_all(out)
+    def __init__(self, columns, center, scale, mean, vectors, weights):
+        self.columns, self.center, self.scale, self.mean = columns, center, scale, mean
+        self.vectors = np.ascontiguousarray(vectors.T)
+        self.weights = np.asarray(weights, dtype=np.float64)
+
+    @property
+    def n_coordinates(self):
+        return self.weights.size
+
+    def __call__(self, x):
+        z = (x[:, self.columns] - self.center) / self.scale - self.mean
+        y = np.empty((z.shape[0], self.n_coordinates))
+        for c, v in enumerate(self.vectors):
+            y[:, c] = (z * v).sum(axis=1)
+        return y * self.weights
+
+
+def _squared_distances(y, centers):
+    """Squared distance of every row of `y` to every centre, shape (n, k), row by row."""
+    return ((y[:, None, :] - centers[None, :, :]) ** 2).sum(axis=2)
+
+
+class _SamplePass(Pass):
+    """Slow coordinates of every `stride`-th frame of each run (by its rank in the run).
+
+    The subsample is a pure function of (segment, frame), in frame order, so it
+    is the same for every split; its size is bounded by the number of frames
+    over `stride` plus one per run.
+    """
+
+    def __init__(self, featurizer, project, stride):
+        self.featurizer, self.project, self.stride = featurizer, project, int(stride)
+
+    def map(self, leaf):
+        rows = np.flatnonzero(frame_keys(leaf.layout, leaf.frames).rank % self.stride == 0)
+        return [self.project(leaf.x[rows])] if rows.size else None
+
+    def merge(self, a, b):
+        return a + b
+
+    def finish(self, partial, plan):
+        if not partial:
+            return np.zeros((0, self.project.n_coordinates))
+        return np.concatenate(partial)
+
+
+def _nearer(a, b):
+    """Per state, the nearer ``(squared distance, segment, frame)`` (the earlier on a tie)."""
+    out = dict(a)
+    for i, v in b.items():
+        out[i] = min(out[i], v) if i in out else v
+    return out
+
+
+class _KineticsPass(Pass):
+    """For each candidate clustering: the state of every frame (nearest centre) and the
+    statistics :func:`state_kinetics` judges, plus each state's frame nearest its centre.
+
+    Lagged pairs are the engine's (:meth:`cvdesign.passes.Leaf.pairs`: within a
+    run, never across a file, a gap or a change of given state); visits are
+    followed across leaves by :class:`_KineticSums`. The within-state moments
+    are accumulated about the state's centre (fixed before the pass).
+
+    The result is a dict: ``sums`` (a closed :class:`_KineticSums` per
+    clustering), ``representatives`` (per clustering, state -> ``(squared
+    distance, segment, frame)``) and ``labels`` (``(segment, frames, labels)``
+    per leaf, in frame order; ``labels`` of shape (n_frames, n_clusterings)).
+    """
+
+    def __init__(self, featurizer, project, lags, centers):
+        self.featurizer, self.project, self.lags = featurizer, project, lags
+        self.centers = [np.asarray(c, dtype=np.float64) for c in centers]
+        self.dtype = np.int8 if max(len(c) for c in self.centers) < 128 else np.int32
+
+    def halo(self, segment_index):
+        return int(self.lags[segment_index])
+
+    def map(self, leaf):
+        lag = int(self.lags[leaf.segment])
+        y = self.project(leaf.window_x)
+        frames, given, n = leaf.frames, leaf.states, leaf.frames.size
+        i, j = leaf.pairs(lag)
+        # stretches of consecutive frames in one given state
+        cuts = np.flatnonzero((np.diff(frames) != 1) | (given[1:] != given[:-1])) + 1
+        stretches = list(zip(np.r_[0, cuts].tolist(), np.r_[cuts, n].tolist()))
+        labels = np.empty((n, len(self.centers)), dtype=self.dtype)
+        sums, reps = [], []
+        for c, centers in enumerate(self.centers):
+            d2 = _squared_distances(y, centers)
+            window = np.argmin(d2, axis=1)
+            own = window[:n]
+            labels[:, c] = own
+            s = _KineticSums(len(centers), centers)
+            s.add_frames(own, lag)
+            s.add_pairs(window[i], window[j], y[i], y[j])
+            for a, b in stretches:
+                s.pieces.append(((leaf.segment, int(given[a]), int(frames[a]),
+                                  int(frames[b - 1])), _Visits.of(own[a:b], lag, len(centers))))
+            sums.append(s)
+            near = d2[np.arange(n), own]
+            rep = {}
+            for st in np.unique(own).tolist():
+                rows = np.flatnonzero(own == st)
+                r = rows[np.argmin(near[rows])]
+                rep[st] = (float(near[r]), leaf.segment, int(frames[r]))
+            reps.append(rep)
+        return {"sums": sums, "representatives": reps,
+                "labels": [(leaf.segment, frames.copy(), labels)]}
+
+    def merge(self, a, b):
+        return {"sums": [x.merge(y) for x, y in zip(a["sums"], b["sums"])],
+                "representatives": [_nearer(x, y) for x, y in zip(a["representatives"],
+                                                                   b["representatives"])],
+                "labels": a["labels"] + b["labels"]}
+
+    def finish(self, partial, plan):
+        if partial is None:
+            return {"sums": [_KineticSums(len(c), c) for c in self.centers],
+                    "representatives": [{} for _ in self.centers], "labels": []}
+        return {**partial, "sums": [s.closed() for s in partial["sums"]]}
+
+
+def _frame_labels(source, leaves, column, names):
+    """Per run file, the state name of every frame (None where a frame has none)."""
+    names = np.array(names, dtype=object)
+    by_path = {}
+    for seg, frames, labels in leaves:
+        by_path.setdefault(str(source.segments[seg].path), []).append((frames, labels[:, column]))
+    out = {}
+    for path, parts in by_path.items():
+        frames = np.concatenate([f for f, _ in parts])
+        arr = np.full(int(frames.max()) + 1, None, dtype=object)
+        arr[frames] = names[np.concatenate([lab for _, lab in parts]).astype(np.intp)]
+        out[path] = arr
+    return out

@@ -36,8 +36,7 @@ from ..errors import InputError
 from ..io.source import Source
 from ..kinds import DEFAULT_KINDS
 from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LaggedPass,
-                      PoolFeaturizer, ScreeningPass, TaskPlan, leaf_frames_for, plan_tasks,
-                      reference_features, run_pass)
+                      PoolFeaturizer, ScreeningPass, plan_tasks, reference_features, run_pass)
 from ..pool import build_pool
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
@@ -291,15 +290,10 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         raise InputError(
             f"only one state was given ({names}); separating states needs at least two: "
             "give another with --state NAME FILE ..., or give unlabelled runs with --runs")
-    from ..parallel import Executor, as_executor
+    from ..parallel import using_executor
 
-    owned = executor is not None and not isinstance(executor, Executor)
-    executor = as_executor(executor)
-    try:
+    with using_executor(executor) as executor:
         return _suggest(source, config, executor, progress)
-    finally:
-        if owned:
-            executor.close()
 
 
 def _suggest(source, config, executor, progress):
@@ -389,12 +383,9 @@ def _suggest(source, config, executor, progress):
 
 # --------------------------------------------------------------------------- passes
 def _plan_for(base, n_features, executor):
-    """The base plan's leaves sized for `n_features`, in tasks for the executor's workers.
-
-    The leaf length depends on the number of features only, so the results do
-    not depend on the executor (the tasks do)."""
-    plan = TaskPlan(base.layouts, leaf_frames_for(n_features), None, base.states, base.topology)
-    return plan.split(n_tasks=4 * executor.n_workers) if executor.n_workers > 1 else plan
+    """The base plan's leaves sized for `n_features`, in tasks for the executor's workers
+    (the results depend on the leaves, which depend on `n_features` only)."""
+    return base.for_features(n_features, executor.n_workers)
 
 
 def _screening_pass(source, base, every, steps, lags, executor):
@@ -539,7 +530,7 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     shortlisted features; the score card's block sums -- one read of every feature."""
     screened = screening.screened
     short_set = set(screened[g] for g in short.members)
-    local, pos = [], 0  # shortlisted features, as columns of the fold moments
+    local = []  # shortlisted features, as columns of the fold moments
     for i, g in zip(screened, screening.groups):
         if i in short_set:
             local.extend(g.tolist())
