@@ -12,7 +12,7 @@ never have to be held in memory.
 
 import numpy as np
 import scipy.linalg
-from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.base import BaseEstimator, ClassNamePrefixFeaturesOutMixin, TransformerMixin
 from sklearn.utils.multiclass import unique_labels
 from sklearn.utils.validation import check_is_fitted, validate_data
 
@@ -290,8 +290,13 @@ def rayleigh_quotient(w, means, covariances, priors, *, within="arithmetic", shr
     return num / den
 
 
-class _Discriminant(TransformerMixin, BaseEstimator):
-    """Shared code of :class:`LDA` and :class:`HLDA` (they differ in `_within`)."""
+class _Discriminant(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
+    """Shared code of :class:`LDA` and :class:`HLDA` (they differ in `_within`).
+
+    Output feature names are the lower-case class name and the component's index
+    (``lda0``, ``lda1``, ... or ``hlda0``, ...), so ``set_output(transform="pandas")``
+    gives a DataFrame with those columns.
+    """
 
     _within = "arithmetic"
 
@@ -402,11 +407,18 @@ class _Discriminant(TransformerMixin, BaseEstimator):
         Returns
         -------
         ndarray of shape (n_samples, n_components)
-            ``(X - xbar_) @ scalings_``, in the features' units.
+            ``(X - xbar_) @ scalings_``, in the features' units; a pandas DataFrame
+            with the columns of :meth:`get_feature_names_out` (and the index of `X`
+            when it is one) after ``set_output(transform="pandas")``.
         """
         check_is_fitted(self)
         X = validate_data(self, X, reset=False, dtype=np.float64)
         return (X - self.xbar_) @ self.scalings_
+
+    @property
+    def _n_features_out(self):
+        """Number of components, for :meth:`get_feature_names_out` (scikit-learn's mixin)."""
+        return self.scalings_.shape[1]
 
 
 class LDA(_Discriminant):
@@ -463,6 +475,8 @@ class LDA(_Discriminant):
     (2, 1)
     >>> bool(abs(lda.scalings_[0, 0]) > 0.9)
     True
+    >>> lda.get_feature_names_out().tolist()  # columns with set_output(transform="pandas")
+    ['lda0']
     """
 
     _within = "arithmetic"
@@ -541,6 +555,8 @@ class HLDA(_Discriminant):
     (2, 1)
     >>> bool(abs(hlda.scalings_[1, 0]) > 0.9)  # LDA would lean toward x instead
     True
+    >>> hlda.get_feature_names_out().tolist()
+    ['hlda0']
     """
 
     _within = "harmonic"

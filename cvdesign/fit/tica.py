@@ -7,9 +7,11 @@ most slowly at a lag time (Molgedey and Schuster 1994; Perez-Hernandez et al.
 timescales.
 """
 
+import functools
+
 import numpy as np
 import scipy.linalg
-from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.base import BaseEstimator, ClassNamePrefixFeaturesOutMixin, TransformerMixin
 from sklearn.utils.validation import check_array, check_is_fitted, validate_data
 
 from ..stats.moments import LaggedMoments, _check_lag
@@ -69,7 +71,7 @@ def _as_series(X):
     return None, False
 
 
-class TICA(TransformerMixin, BaseEstimator):
+class TICA(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
     """Time-lagged independent component analysis.
 
     Finds the linear combinations ``w^T x`` of features with the largest
@@ -109,6 +111,11 @@ class TICA(TransformerMixin, BaseEstimator):
         multiplied by its eigenvalue, so that Euclidean distances in the
         output approximate kinetic distances (the kinetic map of Noé and
         Clementi 2015).
+
+    Output feature names (:meth:`get_feature_names_out`) are ``tica0``,
+    ``tica1``, ..., slowest first; after ``set_output(transform="pandas")``,
+    :meth:`transform` returns DataFrames with those columns (a list of them for
+    a list of trajectories).
 
     Attributes
     ----------
@@ -162,6 +169,8 @@ class TICA(TransformerMixin, BaseEstimator):
     True
     >>> bool(80 < tica.timescales_[0] < 120)          # 1 / -ln(0.99) = 99.5 frames
     True
+    >>> tica.get_feature_names_out().tolist()
+    ['tica0', 'tica1']
     """
 
     def __init__(self, n_components=None, *, lag=1, rcond=1e-6, reversible=True,
@@ -306,6 +315,11 @@ class TICA(TransformerMixin, BaseEstimator):
             out = out * self.eigenvalues_
         return out
 
+    @property
+    def _n_features_out(self):
+        """Number of components, for :meth:`get_feature_names_out` (scikit-learn's mixin)."""
+        return self.eigenvectors_.shape[1]
+
     def transform(self, X):
         """Project onto the TICA components.
 
@@ -318,14 +332,44 @@ class TICA(TransformerMixin, BaseEstimator):
         ndarray of shape (n_frames, n_components), or list of them
             ``(X - mean_) @ eigenvectors_`` (dimensionless, unit variance per
             component), times ``eigenvalues_`` with ``kinetic_weighting=True``;
-            a list when `X` is a list.
+            a list when `X` is a list. After ``set_output(transform="pandas")``,
+            pandas DataFrames with the columns of :meth:`get_feature_names_out`.
         """
         check_is_fitted(self)
+        return self._project(validate_data(self, X, reset=False, dtype=np.float64))
+
+
+def _transform_each(self, series):
+    """The (set_output-wrapped) :meth:`TICA.transform` of each array of a list."""
+    check_is_fitted(self)
+    for i, x in enumerate(series):
+        if x.shape[1] != self.n_features_in_:
+            raise ValueError(f"X[{i}] has {x.shape[1]} features, but TICA was fitted "
+                             f"with {self.n_features_in_}")
+    return [self.transform(x) for x in series]
+
+
+# scikit-learn's set_output wraps ``transform`` and ``fit_transform`` when the class is
+# made, and its wrapper turns the result for one array into one DataFrame; a list of
+# trajectories is therefore dispatched outside that wrapper, to the wrapped ``transform``
+# of each array (each becomes a DataFrame when pandas output is set).
+def _list_transform(transform):
+    @functools.wraps(transform)
+    def dispatch(self, X):
+        series, is_list = _as_series(X)
+        return _transform_each(self, series) if is_list else transform(self, X)
+    return dispatch
+
+
+def _list_fit_transform(fit_transform):
+    @functools.wraps(fit_transform)
+    def dispatch(self, X, y=None, **fit_params):
         series, is_list = _as_series(X)
         if not is_list:
-            return self._project(validate_data(self, X, reset=False, dtype=np.float64))
-        for i, x in enumerate(series):
-            if x.shape[1] != self.n_features_in_:
-                raise ValueError(f"X[{i}] has {x.shape[1]} features, but TICA was fitted "
-                                 f"with {self.n_features_in_}")
-        return [self._project(x) for x in series]
+            return fit_transform(self, X, y, **fit_params)
+        return _transform_each(self.fit(series, y, **fit_params), series)
+    return dispatch
+
+
+TICA.transform = _list_transform(TICA.transform)
+TICA.fit_transform = _list_fit_transform(TICA.fit_transform)

@@ -1,23 +1,27 @@
 """What :func:`~cvdesign.pipeline.suggest.suggest` returns and writes.
 
 :class:`Suggestions` holds the ranking, the score card, the spec documents and
-the notes of a run, renders them (CSV, JSON, markdown, a plain-text table) and
-writes an output directory all or nothing. Floats are rounded to 12
+the notes of a run, renders them (CSV, JSON, markdown, a plain-text table; in a
+notebook a short text and an HTML table; pandas DataFrames with the CSV files'
+columns) and writes an output directory all or nothing. Floats are rounded to 12
 significant digits in JSON, so files are stable against the last bits of
 summation order.
 """
 
 import csv
+import html
 import io
 import json
 import math
 import re
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 from .._version import __version__
 from ..io.atomic import prepare_output_dir, write_dir_atomically
 
-__all__ = ["Suggestions", "CAUTION", "is_output_file", "output_inputs", "dumps"]
+__all__ = ["Suggestions", "SuggestionFrames", "CAUTION", "is_output_file", "output_inputs",
+           "dumps"]
 
 #: Printed with, and stored in, every output that guides a simulation.
 CAUTION = (
@@ -42,9 +46,37 @@ def is_output_file(name):
     return _OUTPUT_NAME.fullmatch(name) is not None
 
 
-@dataclass
+class SuggestionFrames(NamedTuple):
+    """The tables of a :class:`Suggestions` as pandas DataFrames (:meth:`Suggestions.to_frames`).
+
+    Attributes
+    ----------
+    ranking : pandas.DataFrame
+        One row per ranked CV, best first: the columns of ``ranking.csv``.
+    scorecard : pandas.DataFrame
+        One row per descriptor of the score card, best separating first: the
+        columns of ``scorecard.csv``.
+    terms : pandas.DataFrame
+        One row per term of each ranked CV (the per-term cells of ``ranking.csv`` as
+        numbers): ``rank``, ``spec``, ``term`` (1, 2, ... within the CV),
+        ``descriptor``, ``label``, ``kind``, ``transform``, ``weight``,
+        ``weight_ci_low``, ``weight_ci_high``, ``selection_frequency``, ``center``
+        and ``scale`` (the transformed descriptor's unit: nm, rad or 1), as in the
+        spec files.
+    """
+
+    ranking: object
+    scorecard: object
+    terms: object
+
+
+@dataclass(repr=False)
 class Suggestions:
     """Result of :func:`suggest`.
+
+    In a notebook the result shows as a few lines (``repr``: states, objective,
+    pool size, the rank-1 CV and its held-out scores) or an HTML table of the top
+    suggestions; :meth:`to_frames` gives the tables as pandas DataFrames.
 
     Attributes
     ----------
@@ -69,6 +101,29 @@ class Suggestions:
         The search objective.
     lag_ps : float or None
         Lag of the slowness scores, ps.
+    exploration : cvdesign.pipeline.explore.Exploration or None
+        The proposed states, when the states were proposed from unlabelled runs.
+
+    Examples
+    --------
+    >>> import json
+    >>> from cvdesign.io.demo import demo_data_dir
+    >>> from cvdesign.io.source import Source
+    >>> from cvdesign.pipeline.suggest import suggest
+    >>> data = demo_data_dir()
+    >>> manifest = json.loads((data / "manifest.json").read_text(encoding="utf-8"))
+    >>> source = Source.from_states(str(data / manifest["topology"]["file"]),
+    ...                             {name: [str(data / f) for f in entry["files"]]
+    ...                              for name, entry in manifest["states"].items()})
+    >>> result = suggest(source, max_terms=1, n_suggestions=2, n_bootstrap=0)
+    >>> result  # weights apply to standardized descriptors (see the spec files)
+    <Suggestions: states closed, open; objective separate, lag 2 ps
+     pool of 62 descriptors; 2 ranked CVs
+     rank 1 (cv-01.json), weight and term:
+       -1 cos(dihedral LCH1:C3-C4-C5-C6)
+       -0.00025 sin(dihedral LCH1:C3-C4-C5-C6)
+     held-out J 1.26e+03 +/- 33, overlap 0.000, autocorr. 0.999
+     (starting points to validate, not guarantees)>
     """
 
     states: list
@@ -86,75 +141,51 @@ class Suggestions:
     # ----------------------------------------------------------- renderings
     def scorecard_csv(self):
         """The score card as CSV text (``*_ci_low``/``*_ci_high``: 95 % interval)."""
-        cols = ["order", "id", "kind", "label", "atoms"]
-        for name in _CARD_COLUMNS:
-            unit = "_ps" if name == "integrated_time" else ""
-            cols += [name + unit, f"{name}_ci_low{unit}", f"{name}_ci_high{unit}"]
-        cols += ["integrated_time_decayed", "screened", "shortlisted", "stands_for", "note"]
-        buf = io.StringIO()
-        w = csv.writer(buf, lineterminator="\n")
-        w.writerow(cols)
-        for i, row in enumerate(self.scorecard, 1):
-            atoms = (" / ".join(" ".join(map(str, g)) for g in row["groups"]) if "groups" in row
-                     else " ".join(map(str, row["atoms"])))
-            line = [i, row["id"], row["kind"], row["label"], atoms]
-            for name in _CARD_COLUMNS:
-                ci = row.get(f"{name}_ci") or [None, None]
-                line += [_fmt(row.get(name)), _fmt(ci[0]), _fmt(ci[1])]
-            dec = row.get("integrated_time_decayed")
-            line += ["" if dec is None else int(dec), int(row["screened"]),
-                     int(row["shortlisted"]), " ".join(row["stands_for"]), row["note"]]
-            w.writerow(line)
-        return buf.getvalue()
+        return _csv_text(_SCORECARD_TABLE, self.scorecard)
 
     def ranking_csv(self):
         """The ranking as CSV text (one row per combination)."""
-        cols = ["rank", "spec", "n_terms", "objective", "method", "heldout_score",
-                "heldout_score_se", "heldout_score_ci_low", "heldout_score_ci_high",
-                "heldout_fisher_ratio", "heldout_fisher_ratio_se",
-                "heldout_fisher_ratio_ci_low", "heldout_fisher_ratio_ci_high",
-                "heldout_overlap", "heldout_overlap_ci_low", "heldout_overlap_ci_high",
-                "fisher_ratio_all", "fisher_ratio_ci_low",
-                "fisher_ratio_ci_high", "lag_ps", "heldout_autocorrelation",
-                "heldout_autocorrelation_ci_low", "heldout_autocorrelation_ci_high",
-                "autocorrelation_all", "autocorrelation_ci_low", "autocorrelation_ci_high",
-                "timescale_ps", "timescale_ci_low_ps", "timescale_ci_high_ps",
-                "timescale_resolved",
-                "integrated_time_ps", "integrated_time_ci_low_ps", "integrated_time_ci_high_ps",
-                "terms", "weights", "weight_ci", "selection_frequency", "reproduced_in_refits"]
-        buf = io.StringIO()
-        w = csv.writer(buf, lineterminator="\n")
-        w.writerow(cols)
-        for r in self.ranking:
-            fci = r.get("fisher_ratio_ci") or [None, None]
-            aci = r.get("autocorrelation_ci") or [None, None]
-            sci = r.get("heldout_score_ci") or [None, None]
-            hci = r.get("heldout_fisher_ratio_ci") or [None, None]
-            oci = r.get("heldout_overlap_ci") or [None, None]
-            rci = r.get("heldout_autocorrelation_ci") or [None, None]
-            tci = r.get("timescale_ci_ps") or [None, None]
-            ici = r.get("integrated_time_ci_ps") or [None, None]
-            w.writerow([r["rank"], r["spec"], r["n_terms"], r["objective"], r["method"],
-                        _fmt(r["heldout_score"]), _fmt(r["heldout_score_se"]),
-                        _fmt(sci[0]), _fmt(sci[1]),
-                        _fmt(r["heldout_fisher_ratio"]), _fmt(r["heldout_fisher_ratio_se"]),
-                        _fmt(hci[0]), _fmt(hci[1]),
-                        _fmt(r["heldout_overlap"]), _fmt(oci[0]), _fmt(oci[1]),
-                        _fmt(r["fisher_ratio_all"]),
-                        _fmt(fci[0]), _fmt(fci[1]), _fmt(r["lag_ps"]),
-                        _fmt(r["heldout_autocorrelation"]), _fmt(rci[0]), _fmt(rci[1]),
-                        _fmt(r["autocorrelation_all"]),
-                        _fmt(aci[0]), _fmt(aci[1]), _fmt(r["timescale_ps"]),
-                        _fmt(tci[0]), _fmt(tci[1]), _flag(r.get("timescale_resolved")),
-                        _fmt(r.get("integrated_time_ps")),
-                        _fmt(ici[0]), _fmt(ici[1]),
-                        "; ".join(_term_name(t) for t in r["terms"]),
-                        " ".join(_fmt(t["weight"]) for t in r["terms"]),
-                        _per_term([("[" + ",".join(_fmt(v) for v in t["weight_ci"]) + "]")
-                                   if t.get("weight_ci") else None for t in r["terms"]]),
-                        _per_term([t.get("selection_frequency") for t in r["terms"]]),
-                        _fmt(r.get("reproduced_in_refits"))])
-        return buf.getvalue()
+        return _csv_text(_RANKING_TABLE, self.ranking)
+
+    def to_frames(self):
+        """The ranking, the score card and the terms of the ranked CVs as pandas DataFrames.
+
+        The ranking and the score card have the columns (names, units, order) of
+        ``ranking.csv`` and ``scorecard.csv``, with numbers at full precision (the
+        CSV files round them to 6 significant digits): a missing value (no
+        interval without a bootstrap, an empty cell of the CSV file) is NaN, or
+        None in a text column; the yes/no columns (``timescale_resolved``,
+        ``integrated_time_decayed``, ``screened``, ``shortlisted``; 1/0 in the CSV
+        files) are pandas' nullable booleans. pandas is imported only here; it is
+        not a dependency of cvdesign (``pip install cvdesign[pandas]``).
+
+        Returns
+        -------
+        SuggestionFrames
+            A named tuple ``(ranking, scorecard, terms)`` of DataFrames.
+
+        Raises
+        ------
+        ModuleNotFoundError
+            When pandas is not installed.
+
+        Examples
+        --------
+        Without a ranking (the shape of the tables; see :class:`Suggestions` for a run):
+
+        >>> frames = Suggestions(["a", "b"], pool=None, scorecard=[], ranking=[],
+        ...                      specs=[]).to_frames()
+        >>> frames.ranking.columns[:6].tolist(), len(frames.ranking)
+        (['rank', 'spec', 'n_terms', 'objective', 'method', 'heldout_score'], 0)
+        >>> frames.terms.columns[:6].tolist()
+        ['rank', 'spec', 'term', 'descriptor', 'label', 'kind']
+        """
+        pd = _import_pandas("Suggestions.to_frames()")
+        terms = [{"rank": r["rank"], "spec": r["spec"], "term": k, **t}
+                 for r in self.ranking for k, t in enumerate(r["terms"], 1)]
+        return SuggestionFrames(_frame(pd, _RANKING_TABLE, self.ranking),
+                                _frame(pd, _SCORECARD_TABLE, self.scorecard),
+                                _frame(pd, _TERM_TABLE, terms))
 
     def ranking_json(self):
         """The ranking as JSON text."""
@@ -173,6 +204,50 @@ class Suggestions:
                          f"{r['heldout_fisher_ratio']:>10.3g}  {r['heldout_overlap']:>7.3f}  "
                          f"{'' if rho is None else format(rho, '.3f'):>8}  {names}")
         return "\n".join(lines)
+
+    def __repr__(self):
+        """A few lines: states, objective, pool and ranking sizes, the rank-1 CV's terms
+        (at most ``_REPR_TERMS`` of them) and held-out scores; lines are clipped, so the
+        text stays short whatever the pool and the names."""
+        lag = "" if self.lag_ps is None else f", lag {self.lag_ps:g} ps"
+        proposed = "" if self.exploration is None else " (proposed from unlabelled runs)"
+        pool = "" if self.pool is None else f"pool of {len(self.pool)} descriptors; "
+        lines = [f"<Suggestions: states {', '.join(map(str, self.states))}{proposed}; "
+                 f"objective {self.objective}{lag}",
+                 f" {pool}{len(self.ranking)} ranked CVs"]
+        if self.ranking:
+            r = self.ranking[0]
+            terms = r["terms"]
+            lines.append(f" rank 1 ({r['spec']}), weight and term:")
+            lines += [_clip(f"   {t['weight']:+.3g} {_term_name(t)}", _REPR_TERM_WIDTH)
+                      for t in terms[:_REPR_TERMS]]
+            if len(terms) > _REPR_TERMS:
+                lines.append(f"   ... and {len(terms) - _REPR_TERMS} more terms")
+            lines.append(" held-out " + ", ".join(_heldout_scores(r)))
+        lines.append(" (starting points to validate, not guarantees)>")
+        return "\n".join(_clip(line, _REPR_WIDTH) for line in lines)
+
+    def _repr_html_(self):
+        """An HTML table of the top 5 suggestions (for notebooks; no external resources)."""
+        esc = html.escape
+        lag = "" if self.lag_ps is None else f", lag {self.lag_ps:g} ps"
+        pool = "" if self.pool is None else f"; pool of {len(self.pool)} descriptors"
+        shown = min(len(self.ranking), 5)
+        head = ["rank", "spec", "held-out J", "overlap", "autocorr.", "timescale (ps)",
+                "descriptors (weight [95 % CI], selection)"]
+        out = ['<div class="cvdesign-suggestions">',
+               f"<p><strong>cvdesign suggestions</strong>: states "
+               + ", ".join(f"<code>{esc(str(s))}</code>" for s in self.states)
+               + f"; objective <code>{esc(self.objective)}</code>{esc(lag)}{esc(pool)}; "
+               f"{len(self.ranking)} ranked CVs (top {shown} shown).</p>",
+               "<table>", "<thead><tr>" + "".join(f"<th>{esc(h)}</th>" for h in head)
+               + "</tr></thead>", "<tbody>"]
+        for r in self.ranking[:shown]:
+            out.append("<tr>" + "".join(f"<td>{esc(c)}</td>" for c in _top_cells(r)) + "</tr>")
+        out += ["</tbody>", "</table>",
+                f"<p><small>{esc(_TOP_LEGEND)}</small></p>",
+                f"<p><strong>Caution.</strong> {esc(CAUTION)}</p>", "</div>"]
+        return "\n".join(out)
 
     def summary_md(self):
         """A short markdown summary of the run."""
@@ -206,13 +281,7 @@ class Suggestions:
                 "descriptors (weight [95 % CI], selection) |",
                 "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]
         for r in self.ranking[:5]:
-            terms = "; ".join(_term_text(t) for t in r["terms"])
-            rho = r["heldout_autocorrelation"]
-            ts = _timescale_text(r)
-            out.append(f"| {r['rank']} | {r['spec']} | "
-                       f"{r['heldout_fisher_ratio']:.3g} ± {r['heldout_fisher_ratio_se']:.2g} | "
-                       f"{r['heldout_overlap']:.3f} | {'' if rho is None else format(rho, '.3f')} "
-                       f"| {ts} | {terms} |")
+            out.append("| " + " | ".join(_top_cells(r)) + " |")
         for r in self.ranking:
             for w in r.get("warnings", []):
                 out += ["", f"**Warning** (rank {r['rank']}, {r['spec']}): {w}."]
@@ -253,6 +322,155 @@ class Suggestions:
 #: Score-card columns with an interval, in CSV order; the integrated time is in ps.
 _CARD_COLUMNS = ("fisher_ratio", "overlap", "autocorrelation", "autocorrelation_within_runs",
                  "integrated_time")
+
+# Tables: (column, kind, value of a row) per column, shared by the CSV files and the
+# DataFrames. Kinds: "int", "number" (None when unknown), "flag" (True, False or None;
+# 1, 0 or empty in CSV), "text" ("" or None when empty). A value of None in place of the
+# function is the row's position, 1, 2, ...
+
+
+def _value(key):
+    return lambda row: row.get(key)
+
+
+def _interval(name, key, unit=""):
+    """Columns ``name_ci_low``/``name_ci_high`` (then `unit`) of the interval ``row[key]``."""
+    return [(f"{name}_ci_{side}{unit}", "number",
+             lambda row, i=i: (row.get(key) or (None, None))[i])
+            for i, side in enumerate(("low", "high"))]
+
+
+def _numbers(*names):
+    return [(name, "number", _value(name)) for name in names]
+
+
+_RANKING_TABLE = (
+    [("rank", "int", _value("rank")), ("spec", "text", _value("spec")),
+     ("n_terms", "int", _value("n_terms")), ("objective", "text", _value("objective")),
+     ("method", "text", _value("method"))]
+    + _numbers("heldout_score", "heldout_score_se")
+    + _interval("heldout_score", "heldout_score_ci")
+    + _numbers("heldout_fisher_ratio", "heldout_fisher_ratio_se")
+    + _interval("heldout_fisher_ratio", "heldout_fisher_ratio_ci")
+    + _numbers("heldout_overlap") + _interval("heldout_overlap", "heldout_overlap_ci")
+    + _numbers("fisher_ratio_all") + _interval("fisher_ratio", "fisher_ratio_ci")
+    + _numbers("lag_ps", "heldout_autocorrelation")
+    + _interval("heldout_autocorrelation", "heldout_autocorrelation_ci")
+    + _numbers("autocorrelation_all") + _interval("autocorrelation", "autocorrelation_ci")
+    + _numbers("timescale_ps") + _interval("timescale", "timescale_ci_ps", "_ps")
+    + [("timescale_resolved", "flag", _value("timescale_resolved"))]
+    + _numbers("integrated_time_ps") + _interval("integrated_time", "integrated_time_ci_ps", "_ps")
+    + [("terms", "text", lambda r: "; ".join(_term_name(t) for t in r["terms"])),
+       ("weights", "text", lambda r: " ".join(_fmt(t["weight"]) for t in r["terms"])),
+       ("weight_ci", "text", lambda r: _per_term(
+           [("[" + ",".join(_fmt(v) for v in t["weight_ci"]) + "]") if t.get("weight_ci")
+            else None for t in r["terms"]])),
+       ("selection_frequency", "text",
+        lambda r: _per_term([t.get("selection_frequency") for t in r["terms"]]))]
+    + _numbers("reproduced_in_refits"))
+
+_SCORECARD_TABLE = (
+    [("order", "int", None), ("id", "text", _value("id")), ("kind", "text", _value("kind")),
+     ("label", "text", _value("label")),
+     ("atoms", "text", lambda row: (" / ".join(" ".join(map(str, g)) for g in row["groups"])
+                                    if "groups" in row else " ".join(map(str, row["atoms"]))))]
+    + [column for name in _CARD_COLUMNS
+       for unit in ["_ps" if name == "integrated_time" else ""]
+       for column in [(name + unit, "number", _value(name))] + _interval(name, f"{name}_ci", unit)]
+    + [("integrated_time_decayed", "flag", _value("integrated_time_decayed")),
+       ("screened", "flag", _value("screened")), ("shortlisted", "flag", _value("shortlisted")),
+       ("stands_for", "text", lambda row: " ".join(row["stands_for"])),
+       ("note", "text", _value("note"))])
+
+_TERM_TABLE = (
+    [("rank", "int", _value("rank")), ("spec", "text", _value("spec")),
+     ("term", "int", _value("term"))]
+    + [(name, "text", _value(name)) for name in ("descriptor", "label", "kind", "transform")]
+    + _numbers("weight") + _interval("weight", "weight_ci")
+    + _numbers("selection_frequency", "center", "scale"))
+
+
+def _cells(table, rows):
+    """Per row, the list of its raw values in the columns of `table`."""
+    for i, row in enumerate(rows, 1):
+        yield [i if get is None else get(row) for _, _, get in table]
+
+
+def _csv_text(table, rows):
+    """CSV text of `rows`: numbers to 6 significant digits, flags 1/0, unknown empty."""
+    write = {"int": str, "number": _fmt, "flag": _flag, "text": lambda v: v or ""}
+    kinds = [write[kind] for _, kind, _ in table]
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow([name for name, _, _ in table])
+    for cells in _cells(table, rows):
+        w.writerow([f(v) for f, v in zip(kinds, cells)])
+    return buf.getvalue()
+
+
+def _frame(pd, table, rows):
+    """A DataFrame of `rows` in the columns of `table` (unknown numbers NaN, empty text None)."""
+    columns = list(zip(*_cells(table, rows))) or [()] * len(table)
+    dtypes = {"int": "int64", "number": "float64", "flag": "boolean", "text": object}
+    data = {}
+    for (name, kind, _), values in zip(table, columns):
+        if kind == "text":
+            values = [v or None for v in values]
+        elif kind == "number":
+            values = [math.nan if v is None else v for v in values]
+        data[name] = pd.Series(values, dtype=None if kind == "text" and values else dtypes[kind])
+    return pd.DataFrame(data)
+
+
+def _import_pandas(what):
+    """pandas, or a clear error naming it when it is not installed."""
+    try:
+        import pandas
+    except ImportError as exc:
+        raise ModuleNotFoundError(
+            f"{what} needs pandas, which is not installed: install it with "
+            "'pip install pandas' (or 'pip install cvdesign[pandas]')", name="pandas") from exc
+    return pandas
+
+
+#: ``repr(Suggestions)``: longest line and longest term line, characters (longer lines
+#: end in "..."), and the number of terms of the rank-1 CV listed.
+_REPR_WIDTH, _REPR_TERM_WIDTH, _REPR_TERMS = 100, 72, 3
+
+_TOP_LEGEND = ("Held-out J: Fisher ratio (between-state over within-state variance of the CV, "
+               "dimensionless) on frames not used to fit it, ± its standard error over "
+               "the folds; overlap: 0 = states fully separated along the CV, 1 = identical; "
+               "autocorr.: held-out normalized autocorrelation at the lag; intervals: 95 % "
+               "block bootstrap; selection: fraction of bootstrap refits keeping the "
+               "descriptor. Every column: summary.md and ranking.csv of the output directory.")
+
+
+def _clip(text, width):
+    return text if len(text) <= width else text[:width - 3] + "..."
+
+
+def _heldout_scores(r):
+    """The held-out scores of a ranking entry as short texts."""
+    out = []
+    if r.get("objective", "separate") != "separate" and r.get("heldout_score") is not None:
+        out.append(f"{r['objective']} score {r['heldout_score']:.3g} "
+                   f"+/- {r['heldout_score_se']:.2g}")
+    out.append(f"J {r['heldout_fisher_ratio']:.3g} +/- {r['heldout_fisher_ratio_se']:.2g}")
+    for key, name in (("heldout_overlap", "overlap"),
+                      ("heldout_autocorrelation", "autocorr.")):
+        if r.get(key) is not None:
+            out.append(f"{name} {r[key]:.3f}")
+    return out
+
+
+def _top_cells(r):
+    """The cells of a ranking entry in the top table of summary.md and of the HTML."""
+    rho, overlap = r["heldout_autocorrelation"], r["heldout_overlap"]
+    return [str(r["rank"]), r["spec"],
+            f"{r['heldout_fisher_ratio']:.3g} ± {r['heldout_fisher_ratio_se']:.2g}",
+            "" if overlap is None else format(overlap, ".3f"),
+            "" if rho is None else format(rho, ".3f"),
+            _timescale_text(r), "; ".join(_term_text(t) for t in r["terms"])]
 
 
 def _per_term(values):
