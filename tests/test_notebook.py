@@ -303,3 +303,15 @@ def test_tica_from_moments_names_its_components_and_refuses_a_mismatched_list(pd
     np.testing.assert_array_equal(out.to_numpy(), (x - tica.mean_) @ tica.eigenvectors_)
     with pytest.raises(ValueError, match=r"X\[0\] has 2 features, but TICA was fitted with 3"):
         tica.transform([x[:, :2], x[:, 1:]])
+
+
+def test_top_table_leaves_unknown_scores_empty(demo_result):
+    # a held-out overlap or autocorrelation that could not be measured is None: the table
+    # shows an empty cell, never a crash or a made-up 0.000
+    import copy
+
+    res = copy.copy(demo_result)
+    res.ranking = [dict(r, heldout_overlap=None, heldout_autocorrelation=None)
+                   for r in demo_result.ranking[:2]]
+    lines = res.top_table().splitlines()
+    assert len(lines) == 3 and "0.000" not in lines[1]

@@ -199,9 +199,10 @@ class Suggestions:
                  f"{'overlap':>7}  {'autocorr':>8}  descriptors"]
         for r in self.ranking[:n]:
             names = ", ".join(dict.fromkeys(t["label"] for t in r["terms"]))
-            rho = r["heldout_autocorrelation"]
+            rho, ov = r["heldout_autocorrelation"], r["heldout_overlap"]
             lines.append(f"{r['rank']:>4}  {r['spec']:<11} {r['n_terms']:>5}  "
-                         f"{r['heldout_fisher_ratio']:>10.3g}  {r['heldout_overlap']:>7.3f}  "
+                         f"{r['heldout_fisher_ratio']:>10.3g}  "
+                         f"{'' if ov is None else format(ov, '.3f'):>7}  "
                          f"{'' if rho is None else format(rho, '.3f'):>8}  {names}")
         return "\n".join(lines)
 
