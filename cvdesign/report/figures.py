@@ -620,7 +620,7 @@ def implied_timescales(curves, *, tica=None):
     drawn = {}
     with _style():
         fig, ((ax,),) = _new(7.2, 3.0)
-        top = []
+        lags_seen = []
         for (lab, lags, ts), (col, ls, mk) in zip(shown, _CV_STYLES):
             lags = np.asarray(lags, dtype=np.float64)
             tsv = np.array([np.nan if t is None else t for t in ts], dtype=np.float64)
@@ -629,16 +629,18 @@ def implied_timescales(curves, *, tica=None):
                                  "same length")
             ax.plot(lags, tsv, color=col, ls=ls, marker=mk, ms=4, lw=1.2, label=lab)
             drawn[lab] = {"lag_ps": lags.tolist(), "timescale_ps": list(ts)}
-            top += [lags.max()] if lags.size else []
+            lags_seen += [float(lags.min()), float(lags.max())] if lags.size else []
         tica_data = None
         if tica is not None:
             t = [float(v) for v in tica["timescales_ps"]]
             ax.plot([tica["lag_ps"]] * len(t), t, linestyle="none", marker="x", color="black",
                     ms=6, label=f"TICA slow coordinates at {tica['lag_ps']:g} ps")
             tica_data = {"lag_ps": float(tica["lag_ps"]), "timescales_ps": t}
-            top.append(float(tica["lag_ps"]))
-        hi = max(top) if top else 1.0
-        ax.plot([0.0, hi], [0.0, hi], color="#999999", lw=0.8, ls=":",
+            lags_seen.append(float(tica["lag_ps"]))
+        lo = min(lags_seen) if lags_seen else 1.0
+        hi = max(lags_seen) if lags_seen else 1.0
+        diagonal = np.linspace(lo, hi, 50) if hi > lo else np.array([lo])
+        ax.plot(diagonal, diagonal, color="#999999", lw=0.8, ls=":",
                 label="timescale = lag (shorter ones are not resolved)")
         ax.set_yscale("log")
         ax.set_xlabel("lag (ps)")

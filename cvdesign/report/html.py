@@ -25,6 +25,7 @@ from pathlib import Path
 from .._version import __version__
 from ..errors import CVDesignError, InputError
 from ..io.atomic import atomic_paths
+from ..pipeline.output import CAUTION
 from . import figures as fg
 from .inputs import read_output, report_data_name, report_path
 
@@ -279,10 +280,7 @@ def _suggest(page, output, parsed):
                          f"({ranking['states']}); the files come from different runs")
     colors = fg.state_colors(states)
     lag = ranking.get("lag_ps")
-    first = next(iter(specs.values()), None)
-    temperature = (data["temperature_k"] if data is not None else
-                   (first.provenance.get("parameters", {}).get("temperature_k")
-                    if first is not None else None))
+    caution = ranking.get("caution") or CAUTION
     runs = "states.csv" in output.files
     page.parts_head = (
         f"<h1>cvdesign report: {_e(output.name)}</h1>\n"
@@ -292,7 +290,7 @@ def _suggest(page, output, parsed):
                     for s in states)
         + f"; objective <code>{_e(ranking.get('objective'))}</code>"
         + ("" if lag is None else f"; lag {lag:g} ps") + ".</p>\n"
-        + _caution(ranking.get("caution") or first.caution) + "\n")
+        + _caution(caution) + "\n")
     if data is None:
         page.add(f'<p class="missing">This directory has no {data_name}: the figures drawn '
                  "from the tables are shown, those that need the stored held-out histograms, "
@@ -362,7 +360,8 @@ def _suggest(page, output, parsed):
                                f"{data_name} has no held-out histograms for {r['spec']}")
         else:
             page.figure(fg.cv_distributions(f"{stem}-distributions", label, cv["heldout"],
-                                            sts, states=states, temperature_k=temperature,
+                                            sts, states=states,
+                                            temperature_k=data["temperature_k"],
                                             units=units))
         if data is None:
             page.not_available(f"the CV along time of {label}", f"{data_name} is missing")
@@ -427,8 +426,7 @@ def _suggest(page, output, parsed):
         page.add("<p>Every frame's proposed state is in <code>states.csv</code>; populations, "
                  "staying probabilities and transitions are in the run summary below.</p>")
     page.reading = "summary.md"
-    _notes_and_summary(page, output.files.get("summary.md"),
-                       ranking.get("caution") or first.caution)
+    _notes_and_summary(page, output.files.get("summary.md"), caution)
 
 
 def _notes_and_summary(page, summary, caution):
