@@ -508,6 +508,24 @@ def test_funnel_writes_its_report_beside_out_and_draws_the_positions_in_its_fram
     assert not (tmp_path / "other-report.html").exists()
 
 
+def test_a_failing_funnel_report_leaves_the_spec_and_exits_2(host_guest, tmp_path, capsys,
+                                                             monkeypatch):
+    import cvdesign.report
+
+    def fail(output):
+        raise InputError("the disk is full")
+    monkeypatch.setattr(cvdesign.report, "build_report", fail)
+    out = tmp_path / "site.json"
+    assert _funnel(host_guest, out) == 2
+    captured = capsys.readouterr()
+    assert re.search(r"cvdesign funnel: error: the spec was written, but the report could not "
+                     r"be: the disk is full\. Run 'cvdesign report .*site\.json' once the "
+                     r"cause is fixed", captured.err), captured.err
+    assert "site-report.html" not in captured.out
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["site.json"]
+    assert load_spec(out).restraints
+
+
 @pytest.mark.parametrize("change, message", [
     (lambda d: d.update(version=2),
      r"report-data\.json: version 2 of the report data; this cvdesign reads version 1"),

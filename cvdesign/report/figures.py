@@ -648,12 +648,13 @@ def implied_timescales(curves, *, tica=None):
         ax.set_title("implied timescales against the lag: a slow process gives a plateau")
         ax.legend(loc="best")
         data = {"curves": drawn, "tica": tica_data}
-        alt = ("Implied timescales in ps against the lag in ps: " + "; ".join(
-            f"{lab}: " + ", ".join(f"{_fmt(t)} at {lg:g}" for lg, t in
-                                   zip(v["lag_ps"], v["timescale_ps"]))
-            for lab, v in drawn.items())
-            + ("" if tica_data is None else "; TICA at the lag: " + ", ".join(
-                _fmt(t) for t in tica_data["timescales_ps"])) + ".")
+        parts = [f"{lab}: " + ", ".join(f"{_fmt(t)} at {lg:g}" for lg, t in
+                                        zip(v["lag_ps"], v["timescale_ps"]))
+                 for lab, v in drawn.items()]
+        if tica_data is not None:
+            parts.append(f"TICA slow coordinates at {tica_data['lag_ps']:g}: " + ", ".join(
+                _fmt(t) for t in tica_data["timescales_ps"]))
+        alt = "Implied timescales in ps against the lag in ps: " + "; ".join(parts) + "."
         caption = ("Slow modes: the implied timescale -lag/ln(autocorrelation) of each ranked CV "
                    "(at most five) against the lag; a timescale that levels off as the lag "
                    "grows is a real slow process, one below the dotted line is not resolved.")
