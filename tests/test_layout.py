@@ -18,7 +18,7 @@ ROOT = PACKAGE.parent
 
 ORDER = ["_version", "errors", "constants", "kinds", "io", "testbed", "geometry", "stats",
          "pool", "score", "fit", "search", "parallel", "passes", "bias", "spec", "pipeline",
-         "cli", "__main__"]
+         "report", "cli", "__main__"]
 LAYERS = {name: rank for rank, name in enumerate(ORDER)}
 
 

@@ -56,9 +56,9 @@ from ..io.source import Source
 from ..parallel import using_executor
 from ..passes import CoordinateFeaturizer, Pass, first_frame, plan_tasks, run_pass
 
-__all__ = ["CAUTION", "SHAPE_KEYS", "FunnelStats", "align_to_reference_pocket", "funnel_axis",
-           "funnel_energy", "funnel_radius", "funnel_reach", "plot_funnel", "project_on_axis",
-           "size_funnel", "size_funnel_from_source"]
+__all__ = ["CAUTION", "SHAPE_KEYS", "FunnelStats", "align_to_reference_pocket", "draw_funnel",
+           "funnel_axis", "funnel_energy", "funnel_radius", "funnel_reach", "plot_funnel",
+           "project_on_axis", "size_funnel", "size_funnel_from_source"]
 
 CAUTION = ("Suggested funnel parameters are starting points to validate (bound pose "
            "unperturbed with the restraint on, cylinder reaching bulk solvent), not "
@@ -1049,12 +1049,53 @@ def align_to_reference_pocket(xyz, pocket, reference, box=None):
     return out, np.einsum("fij,fjk->fik", vectors, rotation)
 
 
+def draw_funnel(ax, params):
+    """Draw the funnel outline R(z), its walls and the end of the cone on a matplotlib axis.
+
+    Shared by :func:`plot_funnel` and the report (:mod:`cvdesign.report.figures`), which
+    adds the ligand positions. Lengths in nm, in the reference pocket's frame.
+
+    Parameters
+    ----------
+    ax : matplotlib.axes.Axes
+        The axis to draw on; its labels are set (z and r in nm).
+    params : dict
+        The shape keys (:data:`SHAPE_KEYS`).
+
+    Returns
+    -------
+    z : ndarray
+        nm, the points along the axis where the outline was drawn.
+    radius : ndarray
+        nm, R(z) at those points.
+
+    Examples
+    --------
+    >>> from matplotlib.figure import Figure
+    >>> p = dict(lower_wall_z_nm=-0.5, upper_wall_z_nm=3.0, cone_end_z_nm=1.0,
+    ...          cone_half_angle_rad=np.pi / 4, cylinder_radius_nm=0.4, blend_half_width_nm=0.1)
+    >>> z, radius = draw_funnel(Figure().subplots(), p)
+    >>> round(float(radius[0]), 6), round(float(radius[-1]), 6)
+    (1.9, 0.4)
+    """
+    zz = np.linspace(params["lower_wall_z_nm"], params["upper_wall_z_nm"], 400)
+    R, _ = funnel_radius(zz, params)
+    ax.plot(zz, R, color="black", label="funnel radius R(z)")
+    ax.vlines([params["lower_wall_z_nm"], params["upper_wall_z_nm"]], 0, R.max(),
+              colors="#D55E00", linestyles="--", label="walls")
+    ax.axvline(params["cone_end_z_nm"], color="grey", lw=0.8, label="cone end")
+    ax.set_xlabel("z along axis / nm (reference pocket frame)")
+    ax.set_ylabel("r from axis / nm")
+    return zz, R
+
+
 def plot_funnel(result, path):
-    """Image of the funnel outline and the bound ligand positions (z vs r); needs matplotlib.
+    """Image of the funnel outline and the bound ligand positions (z vs r).
 
     The positions are the occupied (z, r) cells of ``result["density"]``, in
     the reference pocket's frame; the format follows the file extension
-    (png, svg, pdf, ...). Written atomically (temporary file, then rename).
+    (png, svg, pdf, ...). Drawn off-screen (no display needed); written atomically
+    (temporary file, then rename).
 
     Parameters
     ----------
@@ -1068,33 +1109,19 @@ def plot_funnel(result, path):
     str
         `path`.
     """
-    try:
-        import matplotlib
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError as exc:  # pragma: no cover
-        raise ImportError("plot_funnel needs matplotlib; install the 'plot' extra "
-                          "(pip install 'cvdesign[plot]')") from exc
+    from matplotlib.figure import Figure
+
     p = result["params"]
     w = result["density"]["bin_width_nm"]
     cells = np.asarray(result["density"]["cells"], dtype=np.float64).reshape(-1, 3)
-    zz = np.linspace(p["lower_wall_z_nm"], p["upper_wall_z_nm"], 400)
-    R, _ = funnel_radius(zz, p)
-    fig, ax = plt.subplots(figsize=(6, 4))
-    ax.plot(zz, R, "k-", label="funnel radius R(z)")
-    ax.vlines([p["lower_wall_z_nm"], p["upper_wall_z_nm"]], 0, R.max(), colors="r",
-              linestyles="--", label="walls")
-    ax.axvline(p["cone_end_z_nm"], color="grey", lw=0.8, label="cone end")
+    fig = Figure(figsize=(6, 4))
+    ax = fig.subplots()
+    draw_funnel(ax, p)
     ax.scatter((cells[:, 0] + 0.5) * w, (cells[:, 1] + 0.5) * w, s=4, c=np.log1p(cells[:, 2]),
                cmap="viridis", label="bound ligand centre (occupied cells)")
-    ax.set_xlabel("z along axis / nm (reference pocket frame)")
-    ax.set_ylabel("r from axis / nm")
     ax.set_title("funnel sizing (starting point to validate)", fontsize=9)
     ax.legend(fontsize=7)
     fig.tight_layout()
-    try:
-        with atomic_path(path) as tmp:
-            fig.savefig(tmp, dpi=100)
-    finally:
-        plt.close(fig)
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, dpi=100)
     return str(path)

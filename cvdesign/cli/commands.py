@@ -7,7 +7,11 @@ Sub-commands:
 * ``check`` -- validate a spec against a topology, and another program's values against it;
 * ``hints`` -- starting values for the bias along a spec's CV;
 * ``funnel`` -- size a funnel restraint for a bound ligand, written as a spec;
-* ``demo`` -- run ``suggest`` on the bundled demo data.
+* ``demo`` -- run ``suggest`` on the bundled demo data;
+* ``report`` -- rebuild the HTML report of an output of ``suggest``, ``demo`` or ``funnel``.
+
+``suggest``, ``demo`` and ``funnel`` write the report (``report.html`` in the output
+directory; ``NAME-report.html`` beside the funnel's ``NAME.json``) unless ``--no-report``.
 """
 
 import argparse
@@ -151,7 +155,14 @@ def _add_suggest_options(p):
     _add_executor_options(p)
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it holds an earlier cvdesign output")
+    _add_no_report(p, "report.html in the output directory")
     p.add_argument("--quiet", action="store_true", help="print only the final table")
+
+
+def _add_no_report(p, where):
+    p.add_argument("--no-report", action="store_true",
+                   help=f"do not write the HTML report ({where}: figures and tables in one "
+                        "self-contained page; 'cvdesign report' builds it later)")
 
 
 def build_parser():
@@ -170,7 +181,8 @@ def build_parser():
                     "separates the states and how slowly it moves, search compact linear "
                     "combinations (HLDA/LDA, or TICA for --objective slow) ranked on held-out "
                     "trajectories, and write ranking.csv, ranking.json, scorecard.csv, "
-                    "summary.md and one spec file per suggestion (cv-01.json is rank 1). "
+                    "summary.md, one spec file per suggestion (cv-01.json is rank 1) and "
+                    "report.html (figures; see --no-report). "
                     "Give the states with --state, or unlabelled runs with --runs.")
     p.add_argument("--topology", required=True, metavar="TOP",
                    help="topology file that mdtraj reads (PDB, GRO, PSF, PRMTOP, HDF5, ...); "
@@ -289,11 +301,11 @@ def build_parser():
                         "replaced with --force")
     p.add_argument("--plot", metavar="FILE.png", default=None,
                    help="also draw the funnel outline and the bound ligand positions (the "
-                        "format follows the extension: .png, .svg, .pdf, ...; needs matplotlib: "
-                        "pip install 'cvdesign[plot]')")
+                        "format follows the extension: .png, .svg, .pdf, ...)")
     p.add_argument("--force", action="store_true",
-                   help="replace --out (and --plot) if they exist; input files are never "
-                        "replaced")
+                   help="replace --out (and --plot, and the report) if they exist; input "
+                        "files are never replaced")
+    _add_no_report(p, "NAME-report.html beside --out NAME.json")
     _add_executor_options(p)
 
     p = sub.add_parser(
@@ -307,6 +319,23 @@ def build_parser():
                         "faster)")
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it exists and is not empty")
+    _add_no_report(p, "report.html in the output directory")
+
+    p = sub.add_parser(
+        "report", help="rebuild the HTML report of an output of suggest, demo or funnel",
+        description="Rebuild the self-contained HTML report (figures embedded, no network "
+                    "access, prints to PDF) from an output alone, without reading any "
+                    "trajectory: the same files give the same bytes. TARGET is a directory "
+                    "written by 'suggest' or 'demo' (report: TARGET/report.html) or the spec "
+                    "file written by 'funnel' (report: NAME-report.html beside NAME.json). "
+                    "That default report is replaced; figures whose data the output does not "
+                    "hold (report-data.json) are marked 'not available'.")
+    p.add_argument("target", metavar="TARGET",
+                   help="output directory of suggest/demo, or the spec file of funnel")
+    p.add_argument("--out", metavar="FILE.html", default=None,
+                   help="write the report here instead; an existing file is kept unless "
+                        "--force, and a file of the output is never replaced")
+    p.add_argument("--force", action="store_true", help="replace an existing --out file")
     parser.commands = dict(sub.choices)  # for usage errors that name the command
     return parser
 
@@ -385,6 +414,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                          executor=executor, progress=progress)
     result.exploration = exploration
     result.write(out, force=args.force)
+    report_ok = args.no_report or _report_after(out, "suggest")
     if not args.quiet:
         if exploration is not None:
             print("proposed states: " + ", ".join(
@@ -398,14 +428,34 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     for r in result.ranking:  # shown even with --quiet
         for w in r.get("warnings", []):
             print(f"cvdesign: warning: rank {r['rank']} ({r['spec']}): {w}", file=sys.stderr)
-    print(f"\nwrote {len(result.specs)} spec files and the ranking to {out}/", file=stream)
+    print(f"\nwrote {len(result.specs)} spec files and the ranking to {out}/"
+          + ("" if args.no_report or not report_ok else
+             f"; open {Path(out) / 'report.html'} in a browser for the figures"), file=stream)
     print(f"caution: {CAUTION}", file=stream)
-    return result
+    return result, report_ok
+
+
+def _report_after(out, command, write=None):
+    """Write the report after the command's other outputs; on failure say so on stderr,
+    leave those outputs in place, and return False (the command then exits 2)."""
+    from ..report import write_report
+
+    try:
+        (write or write_report)(out)
+    except Exception as exc:  # noqa: BLE001 - the tables are written; report any failure
+        why = str(exc) if isinstance(exc, (CVDesignError, OSError)) else (
+            f"{type(exc).__name__}: {exc} (a bug in cvdesign; please report it)")
+        print(f"cvdesign {command}: error: the other outputs were written, but the report "
+              f"could not be: {why}. Run 'cvdesign report {out}' once the cause is fixed",
+              file=sys.stderr)
+        return False
+    return True
 
 
 def _cmd_suggest(args):
-    _run_suggest(args.topology, args.state, args.out, args, sys.stdout, runs=args.runs)
-    return 0
+    _, report_ok = _run_suggest(args.topology, args.state, args.out, args, sys.stdout,
+                                runs=args.runs)
+    return 0 if report_ok else 2
 
 
 def _cmd_apply(args):
@@ -646,8 +696,9 @@ def _check_plot_format(path):
     try:
         from matplotlib.backend_bases import FigureCanvasBase
     except ImportError:
-        raise InputError("--plot needs matplotlib, which is not installed; install it (pip "
-                         "install 'cvdesign[plot]') or leave out --plot") from None
+        raise InputError("--plot needs matplotlib, a dependency of cvdesign that is missing "
+                         "here; reinstall cvdesign (pip install cvdesign) or leave out "
+                         "--plot") from None
     supported = FigureCanvasBase.get_supported_filetypes()
     ext = Path(path).suffix.lower().lstrip(".")
     if ext not in supported:
@@ -660,6 +711,7 @@ def _cmd_funnel(args):
     from ..io.atomic import atomic_paths, check_output_file
     from ..bias.funnel import plot_funnel, size_funnel_from_source
     from ..io.source import Source, select_atoms
+    from ..report import report_path
 
     if args.exit_point is not None and not all(math.isfinite(v) for v in args.exit_point):
         raise InputError(f"--exit-point {' '.join(str(v) for v in args.exit_point)}: give three "
@@ -674,6 +726,10 @@ def _cmd_funnel(args):
             raise InputError(f"--plot {args.plot!r} is the same file as --out; give two names")
         check_output_file(args.plot, force=args.force, inputs=inputs, option="--plot")
         _check_plot_format(args.plot)
+    report = None if args.no_report else report_path(args.out)
+    if report is not None:  # (matplotlib writes no .html, so --plot cannot be the report)
+        check_output_file(report, force=args.force, inputs=inputs,
+                          option=f"the report ({report.name}, beside --out; see --no-report)")
     source = Source(args.topology)
     for f in args.bound:
         source.add(f, state="bound")
@@ -687,12 +743,28 @@ def _cmd_funnel(args):
         result = size_funnel_from_source(source, pocket, lig, exit_point=args.exit_point,
                                          executor=executor)
     spec = _funnel_spec(source, args, lig, pocket, result)
+    text = spec.to_json()
+    page, report_error = None, None
+    if report is not None:  # rendered first, so that the outputs are written together
+        from ..report import build_report
+        from ..report.inputs import Output
+
+        name = Path(args.out).name
+        try:
+            page = build_report(Output("funnel", name, {name: text}, spec_name=name)).html
+        except Exception as exc:  # noqa: BLE001 - the spec is still written; say so
+            report_error = str(exc) if isinstance(exc, CVDesignError) else (
+                f"{type(exc).__name__}: {exc} (a bug in cvdesign; please report it)")
+    paths = [args.out] + ([args.plot] if args.plot else []) + ([report] if page else [])
     try:
-        with atomic_paths([args.out] + ([args.plot] if args.plot else [])) as tmps:
+        with atomic_paths(paths) as tmps:
             with open(tmps[0], "w", encoding="utf-8", newline="\n") as fh:
-                fh.write(spec.to_json())
+                fh.write(text)
             if args.plot:
                 plot_funnel(result, tmps[1])
+            if page:
+                with open(tmps[-1], "w", encoding="utf-8", newline="\n") as fh:
+                    fh.write(page)
     except OSError as exc:
         raise InputError(f"cannot write the output ({exc.strerror or exc}); nothing was "
                          "written") from None
@@ -710,7 +782,14 @@ def _cmd_funnel(args):
     if args.plot:
         print(f"wrote {args.plot}")
     print(f"wrote {args.out}")
+    if page:
+        print(f"wrote {report} (open it in a browser)")
     print(f"caution: {result['caution']}")
+    if report_error is not None:
+        print(f"cvdesign funnel: error: the spec was written, but the report could not be: "
+              f"{report_error}. Run 'cvdesign report {args.out}' once the cause is fixed",
+              file=sys.stderr)
+        return 2
     return 0
 
 
@@ -774,14 +853,18 @@ def _cmd_demo(args):
                             force=args.force, quiet=False, objective="separate", lag=None,
                             method="hlda", bootstrap=args.bootstrap, seed=0,
                             frame_step_ps=None, n_states=None, temperature=300.0,
-                            md_step_fs=2.0, workers=1, scheduler=None)
+                            md_step_fs=2.0, workers=1, scheduler=None,
+                            no_report=args.no_report)
     print(f"cvdesign demo: {manifest['description']}\n", file=sys.stdout)
-    result = _run_suggest(top, states, args.out, ns, sys.stdout)
+    result, report_ok = _run_suggest(top, states, args.out, ns, sys.stdout)
     slow = manifest["slow_dihedral"]
     slow_id = "dihedral:" + "-".join(str(a) for a in slow["atoms"])
     in_rank1 = any(t["descriptor"] == slow_id for t in result.ranking[0]["terms"])
     first = states[0][1]
     print("\nWhat to look at:", file=sys.stdout)
+    if not args.no_report and report_ok:
+        print(f"  - {args.out}/report.html (open it in a browser): the figures, the ranking "
+              "and the summary in one page.", file=sys.stdout)
     print(f"  - {args.out}/summary.md: inputs, what was done, the top suggestions.",
           file=sys.stdout)
     print(f"  - the dihedral {'-'.join(slow['names'])} ({slow_id}) is slow by construction; "
@@ -790,6 +873,18 @@ def _cmd_demo(args):
           file=sys.stdout)
     print(f"  - evaluate the rank-1 CV on a trajectory:\n      cvdesign apply {args.out}/cv-01.json "
           f"--topology {top} {first}", file=sys.stdout)
+    return 0 if report_ok else 2
+
+
+def _cmd_report(args):
+    from ..io.atomic import check_output_file
+    from ..report import read_output, write_report
+
+    output = read_output(args.target)  # refuses what is not a cvdesign output, first
+    if args.out is not None:
+        check_output_file(args.out, force=args.force, inputs=output.paths(), option="--out")
+    path = write_report(args.target, args.out)
+    print(f"wrote {path}")
     return 0
 
 
@@ -843,7 +938,8 @@ def _main(argv):
         parser.commands[args.command].error(
             f"unrecognized arguments: {' '.join(extra)} (see cvdesign {args.command} --help)")
     handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "check": _cmd_check,
-               "hints": _cmd_hints, "funnel": _cmd_funnel, "demo": _cmd_demo}[args.command]
+               "hints": _cmd_hints, "funnel": _cmd_funnel, "demo": _cmd_demo,
+               "report": _cmd_report}[args.command]
     try:
         return handler(args)
     except CVDesignError as exc:

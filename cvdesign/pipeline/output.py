@@ -31,7 +31,7 @@ CAUTION = (
 )
 
 _OUTPUT_NAME = re.compile(r"(ranking\.csv|ranking\.json|scorecard\.csv|summary\.md|"
-                          r"states\.csv|cv-\d+\.json)")
+                          r"states\.csv|cv-\d+\.json|report\.html|report-data\.json)")
 
 
 def is_output_file(name):

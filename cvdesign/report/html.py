@@ -1,0 +1,587 @@
+"""One self-contained ``report.html`` from an output directory (or a funnel spec).
+
+:func:`build_report` turns the files of an output (:class:`~cvdesign.report.inputs.Output`)
+into one HTML page: the caution, the ranking table, the figures (SVG embedded as
+``data:`` URIs, each with alt text and a caption), the notes, the run's summary. The page
+has no script and loads nothing (no external stylesheet, font, image or link); a print
+stylesheet makes it read well printed to PDF. It is written as XHTML-compatible HTML (every
+element closed, only XML's entities), so that an XML parser reads it too.
+
+A figure whose data the output does not hold (``report-data.json`` missing, or a part of
+it absent) is replaced by a visible note "not available: ...", listed again under Notes;
+never by a broken image.
+
+:func:`write_report` reads the output, renders it, and writes the page atomically. The
+page is a function of the output's files only, so rebuilding it from the same files gives
+the same bytes.
+"""
+
+import base64
+import html
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+from .._version import __version__
+from ..errors import CVDesignError, InputError
+from ..io.atomic import atomic_paths
+from ..pipeline.output import CAUTION
+from . import figures as fg
+from .inputs import read_output, report_data_name, report_path
+
+__all__ = ["Report", "build_report", "write_report", "markdown"]
+
+
+def write_report(target, out=None):
+    """Write the report of an output directory (or funnel spec), atomically.
+
+    Parameters
+    ----------
+    target : path-like
+        A directory written by ``cvdesign suggest`` or ``cvdesign demo``, or the spec
+        file written by ``cvdesign funnel``.
+    out : path-like, optional
+        The page to write; default ``target/report.html`` for a directory,
+        ``NAME-report.html`` beside a funnel spec ``NAME.json``. Replaced if it exists
+        (it is derived from the output), through a temporary file and a rename.
+
+    Returns
+    -------
+    pathlib.Path
+        The page written.
+
+    Raises
+    ------
+    cvdesign.errors.InputError
+        `target` is not a cvdesign output, one of its files is not as cvdesign wrote it,
+        `out` is one of the files read, or the page cannot be written.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     write_report(tmp)  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: '...' is not a cvdesign output directory: ...
+    """
+    output = read_output(target)
+    path = Path(out) if out is not None else report_path(target)
+    if path.resolve() in {p.resolve() for p in output.paths()}:
+        raise InputError(f"the report {str(path)!r} would replace {path.name}, a file of the "
+                         "output it describes; give another name")
+    page = build_report(output).html
+    try:
+        with atomic_paths([path]) as (tmp,):  # permissions as the umask allows, like the tables
+            with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+                fh.write(page)
+    except OSError as exc:
+        raise InputError(f"cannot write the report {str(path)!r}: {exc.strerror or exc}; "
+                         "nothing was written") from None
+    return path
+
+
+@dataclass(frozen=True)
+class Report:
+    """A rendered report.
+
+    Attributes
+    ----------
+    html : str
+        The page (UTF-8 text, ``\\n`` line ends).
+    figures : tuple of cvdesign.report.figures.Figure
+        The figures embedded, in page order (with the numbers each drew).
+    missing : tuple of str
+        The "not available: ..." notes, in page order.
+    """
+
+    html: str
+    figures: tuple
+    missing: tuple
+
+
+def build_report(output):
+    """The report of an output's files: the page, its figures and what is not available.
+
+    Parameters
+    ----------
+    output : cvdesign.report.inputs.Output
+        From :func:`cvdesign.report.inputs.read_output`.
+
+    Returns
+    -------
+    Report
+
+    Raises
+    ------
+    cvdesign.errors.InputError
+        A file is not as cvdesign writes it (the message names it).
+    """
+    parsed = output.parsed()
+    page = _Page(output.name)
+    try:
+        if output.kind == "suggest":
+            _suggest(page, output, parsed)
+        else:
+            _funnel(page, output, parsed)
+    except (KeyError, TypeError, ValueError, IndexError) as exc:
+        if isinstance(exc, CVDesignError):
+            raise
+        which = page.reading or "the output"
+        raise InputError(f"{which}: a field is missing or malformed ({type(exc).__name__}: "
+                         f"{exc}); the file is not as cvdesign wrote it, re-run the command "
+                         "that made it") from None
+    return Report(page.text(), tuple(page.figures), tuple(page.missing))
+
+
+# ------------------------------------------------------------------------------ page
+_CSS = """
+body { font-family: system-ui, -apple-system, "Segoe UI", Helvetica, Arial, sans-serif;
+       color: #111; background: #fff; margin: 0 auto; max-width: 60rem; padding: 1rem 1.5rem;
+       line-height: 1.4; }
+h1 { font-size: 1.5rem; margin-bottom: 0.2rem; }
+h2 { font-size: 1.2rem; border-bottom: 1px solid #ccc; margin-top: 2rem; }
+h3 { font-size: 1.05rem; margin-top: 1.4rem; }
+h4 { font-size: 0.95rem; }
+p.meta { color: #444; margin-top: 0; }
+.caution { border: 2px solid #D55E00; background: #fff6ef; padding: 0.5rem 0.8rem; }
+.missing { border: 1px dashed #888; background: #f4f4f4; padding: 0.5rem 0.8rem;
+           color: #333; }
+.warning { color: #8a3a00; }
+table { border-collapse: collapse; margin: 0.6rem 0; font-size: 0.85rem; }
+th, td { border: 1px solid #ccc; padding: 0.2rem 0.4rem; vertical-align: top; }
+th { background: #f0f0f0; text-align: left; }
+td.num { text-align: right; }
+table.ranking { width: 100%; }
+table.ranking td:nth-child(2) { white-space: nowrap; }
+span.ci { display: block; font-size: 0.8em; color: #444; white-space: nowrap; }
+span.term { display: block; }
+figure { margin: 1rem 0; }
+figure img { max-width: 100%; height: auto; display: block; }
+figcaption { font-size: 0.85rem; color: #333; margin-top: 0.3rem; }
+code { font-size: 0.9em; background: #f4f4f4; padding: 0 0.15rem; }
+.swatch { display: inline-block; width: 0.8em; height: 0.8em; border: 1px solid #333;
+          vertical-align: middle; margin-right: 0.3em; }
+nav ul { columns: 2; }
+@media print {
+  @page { size: A4; margin: 14mm; }
+  body { max-width: none; padding: 0; font-size: 9.5pt; }
+  h2 { break-after: avoid; }
+  h3, h4 { break-after: avoid; }
+  figure, table, .caution, .missing { break-inside: avoid; }
+  nav { display: none; }
+  .caution, .missing { background: none; }
+  a { color: inherit; text-decoration: none; }
+}
+"""
+
+
+def _e(text):
+    """Text escaped for HTML and XML alike (no named entity beyond XML's five)."""
+    return html.escape(str(text), quote=True)
+
+
+class _Page:
+    """The page under construction: body parts, figures, notes of what is missing."""
+
+    def __init__(self, name):
+        self.name = name
+        self.parts = []
+        self.toc = []
+        self.missing = []
+        self.figures = []
+        self.reading = None   # the file being read, for error messages
+        self.parts_head = ""  # title, meta line and caution
+
+    def add(self, text):
+        self.parts.append(text)
+
+    def section(self, level, ident, title):
+        if level == 2:
+            self.toc.append((ident, title))
+        self.add(f'<h{level} id="{_e(ident)}">{_e(title)}</h{level}>')
+
+    def figure(self, fig):
+        self.figures.append(fig)
+        data = base64.b64encode(fig.svg.encode("utf-8")).decode("ascii")
+        self.add(f'<figure id="fig-{_e(fig.name)}"><img src="data:image/svg+xml;base64,'
+                 f'{data}" alt="{_e(fig.alt)}" /><figcaption>{_e(fig.caption)}</figcaption>'
+                 "</figure>")
+
+    def not_available(self, what, why):
+        text = f"not available: {what} ({why})"
+        self.missing.append(text)
+        self.add(f'<p class="missing">{_e(text)}</p>')
+
+    def text(self):
+        toc = "".join(f'<li><a href="#{_e(i)}">{_e(t)}</a></li>' for i, t in self.toc)
+        head = ('<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8" />\n'
+                '<meta name="viewport" content="width=device-width, initial-scale=1" />\n'
+                f"<title>cvdesign report: {_e(self.name)}</title>\n"
+                f"<style>{_CSS}</style>\n</head>\n<body>\n")
+        nav = f"<nav><ul>{toc}</ul></nav>\n" if toc else ""
+        body = "\n".join(self.parts)
+        return head + self.parts_head + nav + body + "\n</body>\n</html>\n"
+
+
+def _caution(text):
+    return f'<p class="caution"><strong>Caution.</strong> {_e(text)}</p>'
+
+
+def _num(x, spec=".3g"):
+    return "" if x is None else format(x, spec)
+
+
+def _ci(ci, spec=".3g"):
+    if not ci or ci[0] is None or ci[1] is None:
+        return ""
+    return f" [{format(ci[0], spec)}, {format(ci[1], spec)}]"
+
+
+class _Html(str):
+    """Text that is already HTML (not escaped again by :func:`_table`)."""
+
+
+def _with_ci(value, ci, spec=".3g"):
+    """A number with its interval on a second, smaller line."""
+    text = _e(_num(value, spec))
+    interval = _ci(ci, spec).strip()
+    return _Html(text + (f'<span class="ci">{_e(interval)}</span>' if interval else ""))
+
+
+def _cell(c):
+    return c if isinstance(c, _Html) else _e(c)
+
+
+def _table(header, rows, numeric=(), cls=None):
+    attr = f' class="{cls}"' if cls else ""
+    out = [f"<table{attr}><thead><tr>" + "".join(f"<th>{_e(h)}</th>" for h in header)
+           + "</tr></thead><tbody>"]
+    for row in rows:
+        out.append("<tr>" + "".join(
+            f'<td class="num">{_cell(c)}</td>' if i in numeric else f"<td>{_cell(c)}</td>"
+            for i, c in enumerate(row)) + "</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _term_name(t):
+    return t["label"] if t["transform"] == "identity" else f"{t['transform']}({t['label']})"
+
+
+# --------------------------------------------------------------------------- suggest
+def _suggest(page, output, parsed):
+    ranking, specs = parsed["ranking"], parsed["specs"]
+    data = parsed["report_data"]
+    data_name = report_data_name("suggest")
+    states = list(data["states"]) if data is not None else list(ranking["states"])
+    if set(states) != set(ranking["states"]):
+        raise InputError(f"{data_name}: states {states} differ from those of ranking.json "
+                         f"({ranking['states']}); the files come from different runs")
+    colors = fg.state_colors(states)
+    lag = ranking.get("lag_ps")
+    caution = ranking.get("caution") or CAUTION
+    runs = "states.csv" in output.files
+    page.parts_head = (
+        f"<h1>cvdesign report: {_e(output.name)}</h1>\n"
+        f'<p class="meta">cvdesign {_e(__version__)}; '
+        + ("states proposed from unlabelled runs: " if runs else "states: ")
+        + ", ".join(f'<span class="swatch" style="background:{colors[s]}"></span>{_e(s)}'
+                    for s in states)
+        + f"; objective <code>{_e(ranking.get('objective'))}</code>"
+        + ("" if lag is None else f"; lag {lag:g} ps") + ".</p>\n"
+        + _caution(caution) + "\n")
+    if data is None:
+        page.add(f'<p class="missing">This directory has no {data_name}: the figures drawn '
+                 "from the tables are shown, those that need the stored held-out histograms, "
+                 "traces and timescales are marked \u201cnot available\u201d.</p>")
+
+    # ranking table
+    page.section(2, "ranking", "Ranking")
+    page.add("<p>Ranked CVs, best first. Held-out J is the Fisher ratio (between-state over "
+             "within-state variance, dimensionless) on frames the fit never saw; overlap is "
+             "the overlapping coefficient of the states' held-out histograms (0 = disjoint); "
+             "the autocorrelation is at the lag (1 = does not relax within it). Brackets: 95 % "
+             "bootstrap intervals; selection: how often bootstrap refits of the search keep "
+             "the term.</p>")
+    rows = []
+    for r in ranking["ranking"]:
+        terms = _Html("".join(
+            f'<span class="term">{_e(_term_name(t))} {t["weight"]:+.3f}'
+            + _e(_ci(t.get("weight_ci"), "+.3f"))
+            + ("" if t.get("selection_frequency") is None
+               else f", {t['selection_frequency']:.0%}") + "</span>" for t in r["terms"]))
+        ts = r.get("timescale_ps")
+        if ts is not None and r.get("timescale_resolved") is False and r.get("longest_run_ps"):
+            ts_text = f"> {r['longest_run_ps']:.3g} (not resolved)"
+        else:
+            ts_text = _with_ci(ts, r.get("timescale_ci_ps"))
+        rows.append([r["rank"], r["spec"], terms,
+                     _with_ci(r["heldout_fisher_ratio"], r.get("heldout_fisher_ratio_ci")),
+                     _with_ci(r["heldout_overlap"], r.get("heldout_overlap_ci")),
+                     _with_ci(r.get("heldout_autocorrelation"),
+                              r.get("heldout_autocorrelation_ci")),
+                     ts_text, _num(r.get("reproduced_in_refits"), ".0%")])
+    page.add(_table(["rank", "spec", "descriptors (weight [95 % CI], selection)",
+                     "held-out J", "overlap", "autocorr." +
+                     ("" if lag is None else f" at {lag:g} ps"), "timescale (ps)",
+                     "found again in refits"], rows, numeric=(0, 3, 4, 5, 6, 7),
+                    cls="ranking"))
+    for r in ranking["ranking"]:
+        for w in r.get("warnings", []) or []:
+            page.add(f'<p class="warning"><strong>Warning</strong> (rank {_e(r["rank"])}, '
+                     f"{_e(r['spec'])}): {_e(w)}.</p>")
+
+    # one section per ranked CV
+    by_spec = {}
+    if data is not None:
+        page.reading = data_name
+        by_spec = {c["spec"]: c for c in data["cvs"]}
+    page.section(2, "cvs", "The ranked CVs")
+    for r in ranking["ranking"]:
+        page.reading = r["spec"]
+        spec = specs[r["spec"]]
+        stem = Path(r["spec"]).stem
+        label = f"rank {r['rank']} ({r['spec']})"
+        page.section(3, stem, f"Rank {r['rank']}: {r['spec']}")
+        sts = spec.states
+        page.add(_table(["state", "mean (CV units)", "std (CV units)", "frames"],
+                        [[s, _num(sts[s]["mean"], ".6g"), _num(sts[s]["std"], ".4g"),
+                          sts[s].get("n_frames", "")] for s in states if s in sts],
+                        numeric=(1, 2, 3)))
+        cv = by_spec.get(r["spec"])
+        units = cv.get("units", "CV units") if cv else "CV units"
+        page.reading = data_name
+        if data is None:
+            page.not_available(f"held-out histograms and \u2212kT ln p per state of {label}",
+                               f"{data_name} is missing")
+        elif cv is None or cv.get("heldout") is None:
+            page.not_available(f"held-out histograms and \u2212kT ln p per state of {label}",
+                               f"{data_name} has no held-out histograms for {r['spec']}")
+        else:
+            page.figure(fg.cv_distributions(f"{stem}-distributions", label, cv["heldout"],
+                                            sts, states=states,
+                                            temperature_k=data["temperature_k"],
+                                            units=units))
+        if data is None:
+            page.not_available(f"the CV along time of {label}", f"{data_name} is missing")
+        elif cv is None or not cv.get("traces"):
+            page.not_available(f"the CV along time of {label}",
+                               f"{data_name} has no traces for {r['spec']}")
+        else:
+            page.figure(fg.cv_traces(f"{stem}-traces", label, cv["traces"], states=states,
+                                     units=units))
+        page.reading = "ranking.json"
+        page.figure(fg.term_weights(f"{stem}-weights", label, r["terms"]))
+
+    # the pool
+    page.section(2, "pool", "The pool")
+    card = parsed["scorecard"]
+    page.reading = "scorecard.csv"
+    if card is None:
+        page.not_available("the score card's best descriptors and the redundancy groups",
+                           "scorecard.csv is missing")
+    else:
+        page.figure(fg.pool_scores(card, lag_ps=lag))
+        labels = {row["id"]: row["label"] for row in card}
+        groups = [(row["label"], [labels.get(m, m) for m in row["stands_for"]])
+                  for row in card if row["stands_for"]]
+        if groups:
+            page.figure(fg.redundancy_groups(groups))
+            page.add(_table(["representative", "stands for"],
+                            [[rep, ", ".join(members)] for rep, members in groups]))
+        else:
+            page.add("<p>Redundancy: no descriptor is represented by another (no strongly "
+                     "correlated pair that adds nothing when combined).</p>")
+
+    # slow modes
+    page.section(2, "slow-modes", "Slow modes")
+    page.reading = data_name
+    tica = data.get("tica") if data is not None else None
+    curves = []
+    if data is not None:
+        for c in data["cvs"]:
+            t = c.get("timescales")
+            if t is not None:
+                curves.append((f"rank {c['rank']}", t["lag_ps"], t["timescale_ps"]))
+    if curves or tica is not None:
+        page.figure(fg.implied_timescales(
+            curves, tica=None if tica is None else {"lag_ps": tica["lag_ps"],
+                                                   "timescales_ps": tica["timescales_ps"]}))
+    else:
+        page.not_available("implied timescales against the lag",
+                           f"{data_name} is missing" if data is None else
+                           f"{data_name} holds none (no lag: slowness was not measured)"
+                           if lag is None else f"{data_name} holds none")
+    if runs:
+        page.section(2, "proposed-states", "Proposed states")
+        if tica is None:
+            page.not_available("the frames in the two slowest TICA coordinates by proposed "
+                               "state", f"{data_name} is missing" if data is None
+                               else f"{data_name} has no TICA coordinates")
+        else:
+            page.figure(fg.tica_states(tica["coords"], tica["state"], states=states,
+                                       lag_ps=tica["lag_ps"],
+                                       timescales_ps=tica.get("timescales_ps")))
+        page.add("<p>Every frame's proposed state is in <code>states.csv</code>; populations, "
+                 "staying probabilities and transitions are in the run summary below.</p>")
+    page.reading = "summary.md"
+    _notes_and_summary(page, output.files.get("summary.md"), caution)
+
+
+def _notes_and_summary(page, summary, caution):
+    page.section(2, "notes", "Notes")
+    if page.missing:
+        page.add("<ul>" + "".join(f"<li>{_e(m)}</li>" for m in page.missing) + "</ul>")
+    else:
+        page.add("<p>Every figure of this report was drawn.</p>")
+    page.add("<p>Colours: Okabe\u2013Ito palette (Okabe and Ito 2008), the same colour for a "
+             "state in every figure. The report is rebuilt from the output's files alone by "
+             f"<code>cvdesign report</code>; cvdesign {_e(__version__)}.</p>")
+    page.add(_caution(caution))
+    if summary is not None:
+        page.section(2, "summary", "Run summary (summary.md)")
+        page.add(markdown(summary, shift=2))
+
+
+# ---------------------------------------------------------------------------- funnel
+_SHAPE_ROWS = (("lower_wall_z_nm", "lower wall, z", "nm"),
+               ("upper_wall_z_nm", "upper wall, z", "nm"),
+               ("cone_end_z_nm", "end of the cone, z", "nm"),
+               ("cone_half_angle_rad", "cone half-angle", "rad"),
+               ("cylinder_radius_nm", "cylinder radius", "nm"),
+               ("blend_half_width_nm", "blend half-width", "nm"),
+               ("wall_force_constant_kj_mol_nm2", "wall force constant", "kJ/mol/nm\u00b2"))
+
+
+def _funnel(page, output, parsed):
+    spec, data = parsed["spec"], parsed["report_data"]
+    data_name = report_data_name("funnel", output.spec_name)
+    page.reading = output.spec_name
+    restraint = next(r for r in spec.restraints if r["kind"] == "funnel")
+    sizing = (spec.hints or {}).get("funnel_sizing", {})
+    page.parts_head = (f"<h1>cvdesign report: {_e(output.name)}</h1>\n"
+                       f'<p class="meta">cvdesign {_e(__version__)}; funnel restraint: '
+                       f"{_e(restraint.get('label', ''))}.</p>\n" + _caution(spec.caution) + "\n")
+    page.section(2, "funnel", "The funnel")
+    axis = ", ".join(f"{v:.4f}" for v in restraint["axis"])
+    page.add(_table(["parameter", "value", "unit"],
+                    [["axis (reference pocket frame)", axis, "unit vector"]]
+                    + [[lab, _num(restraint[k], ".4g"), unit] for k, lab, unit in _SHAPE_ROWS
+                       if k in restraint], numeric=(1,)))
+    ref = sizing.get("reference")
+    if ref:
+        page.add(f"<p>Reference pocket: frame {_e(ref['frame'])} of {_e(ref['file'])}; hold "
+                 "the pocket in this orientation (restrained or aligned) during the biased "
+                 "run.</p>")
+    positions = None
+    if data is not None:
+        page.reading = data_name
+        if data.get("spec") not in (None, output.spec_name):
+            raise InputError(f"{data_name}: it describes {data['spec']!r}, not "
+                             f"{output.spec_name!r}; the files come from different runs")
+        positions = data.get("positions")
+    page.figure(fg.funnel_positions(restraint, positions))
+    if positions is None:
+        page.not_available("the ligand positions in the frame of the restraint",
+                           f"{data_name} is missing" if data is None
+                           else f"{data_name} has no positions")
+    page.reading = output.spec_name
+    for w in sizing.get("warnings", []) or []:
+        page.add(f'<p class="warning"><strong>Warning</strong>: {_e(w)}</p>')
+    if sizing.get("reasoning"):
+        page.section(2, "reasoning", "How it was sized")
+        page.add("<ul>" + "".join(f"<li>{_e(x)}</li>" for x in sizing["reasoning"]) + "</ul>")
+    bound = spec.states
+    page.add(_table(["state", "pocket\u2013ligand centre distance, mean (nm)", "std (nm)",
+                     "frames"],
+                    [[s, _num(v["mean"], ".4g"), _num(v["std"], ".3g"), v.get("n_frames", "")]
+                     for s, v in bound.items()], numeric=(1, 2, 3)))
+    _notes_and_summary(page, None, spec.caution)
+
+
+# -------------------------------------------------------------------------- markdown
+_INLINE = (
+    (re.compile(r"`([^`]+)`"), r"<code>\1</code>"),
+    (re.compile(r"\*\*(.+?)\*\*"), r"<strong>\1</strong>"),
+)
+
+
+def _inline(text):
+    out = _e(text)
+    for pattern, repl in _INLINE:
+        out = pattern.sub(repl, out)
+    return out
+
+
+def _cells(line):
+    return [c.strip() for c in line.strip().strip("|").split(" | ")]
+
+
+def markdown(text, shift=0):
+    """HTML for the markdown subset cvdesign writes (``summary.md``).
+
+    Headings (``#``), pipe tables (a separator row of ``---``; ``---:`` right-aligns),
+    ``- `` lists, paragraphs, ``code`` and ``**bold**``; everything else is text, escaped.
+
+    Parameters
+    ----------
+    text : str
+    shift : int, default=0
+        Added to heading levels (``#`` becomes ``h{1 + shift}``), at most ``h6``.
+
+    Examples
+    --------
+    >>> print(markdown("# Title\\n\\n- a `b`\\n\\n| x | y |\\n| --- | ---: |\\n| 1 | 2 |", shift=1))
+    <h2>Title</h2>
+    <ul><li>a <code>b</code></li></ul>
+    <table><thead><tr><th>x</th><th>y</th></tr></thead><tbody><tr><td>1</td><td class="num">2</td></tr></tbody></table>
+    """
+    out, para, items, table = [], [], [], []
+
+    def flush():
+        if para:
+            out.append("<p>" + _inline(" ".join(para)) + "</p>")
+            para.clear()
+        if items:
+            out.append("<ul>" + "".join(f"<li>{_inline(i)}</li>" for i in items) + "</ul>")
+            items.clear()
+        if table:
+            header = _cells(table[0])
+            align = _cells(table[1]) if len(table) > 1 else []
+            right = [a.endswith(":") for a in align]
+            rows = ["<table><thead><tr>" + "".join(f"<th>{_inline(h)}</th>" for h in header)
+                    + "</tr></thead><tbody>"]
+            for line in table[2:]:
+                rows.append("<tr>" + "".join(
+                    (f'<td class="num">{_inline(c)}</td>' if k < len(right) and right[k]
+                     else f"<td>{_inline(c)}</td>") for k, c in enumerate(_cells(line)))
+                    + "</tr>")
+            out.append("".join(rows) + "</tbody></table>")
+            table.clear()
+
+    for line in text.splitlines():
+        stripped = line.strip()
+        heading = re.match(r"(#{1,6})\s+(.*)", stripped)
+        if not stripped:
+            flush()
+        elif heading:
+            flush()
+            level = min(6, len(heading.group(1)) + shift)
+            out.append(f"<h{level}>{_inline(heading.group(2))}</h{level}>")
+        elif stripped.startswith("|"):
+            if not table:
+                flush()
+            table.append(stripped)
+        elif stripped.startswith("- "):
+            if para or table:
+                flush()
+            items.append(stripped[2:])
+        elif items and not para:
+            items[-1] += " " + stripped
+        else:
+            if table:
+                flush()
+            para.append(stripped)
+    flush()
+    return "\n".join(out)

@@ -1,0 +1,646 @@
+"""The report (issue 11): figures from an output directory, one self-contained report.html.
+
+The pipeline does not write ``report-data.json`` yet; ``_write_report_data`` below writes one
+in the documented format (docs/report-data-v1.md) from the trajectories themselves, so that the
+figures that need it are exercised: every frame's CV value through the spec's own evaluator,
+histograms on common bins, subsampled traces, autocorrelation timescales within runs. It is
+a stand-in for the pipeline's writer (its histograms are of all frames, not held-out ones),
+enough to check that what is drawn is what the files hold.
+"""
+
+import base64
+import csv
+import json
+import re
+import shutil
+import tempfile
+import xml.etree.ElementTree as ET
+from html.parser import HTMLParser
+from pathlib import Path
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign import Source, load_spec, suggest
+from cvdesign.cli import main
+from cvdesign.constants import BOLTZMANN_KJ_MOL_K
+from cvdesign.errors import InputError
+from cvdesign.report import figures as fg
+from cvdesign.report import build_report, read_output, write_report
+
+
+# ------------------------------------------------------------------- report-data stand-in
+def _cv_values(spec, top, path):
+    traj = md.load(path, top=top)
+    return spec.evaluate(traj), traj.time.astype(np.float64)
+
+
+def _timescales(values_by_run, frame_step_ps, lags_frames):
+    """-lag/ln(rho) of the CV within runs, about the mean of all frames, per lag (ps)."""
+    allv = np.concatenate(values_by_run)
+    mu, var = allv.mean(), allv.var()
+    out = []
+    for k in lags_frames:
+        num = sum(float(np.sum((v[:-k] - mu) * (v[k:] - mu))) for v in values_by_run)
+        n = sum(v.size - k for v in values_by_run)
+        rho = num / n / var
+        out.append(None if not 0 < rho < 1 else -k * frame_step_ps / np.log(rho))
+    return {"lag_ps": [k * frame_step_ps for k in lags_frames], "timescale_ps": out}
+
+
+def _write_report_data(out_dir, top, files_by_state, *, labels=None, temperature_k=300.0,
+                       lag_ps=2.0, tica=None, max_points=1000, n_bins=40):
+    """report-data.json for a suggest directory, from the trajectories (see module docstring).
+
+    `labels`: {path: per-frame state array} for unlabelled runs (states.csv)."""
+    out_dir = Path(out_dir)
+    ranking = json.loads((out_dir / "ranking.json").read_text())
+    states = ranking["states"]
+    cvs = []
+    for r in ranking["ranking"]:
+        spec = load_spec(out_dir / r["spec"])
+        runs = []
+        for state, paths in files_by_state.items():
+            for p in paths:
+                v, t = _cv_values(spec, top, p)
+                lab = labels[p] if labels is not None else np.array([state] * v.size)
+                runs.append((p, v, t, lab))
+        allv = np.concatenate([v for _, v, _, _ in runs])
+        edges = np.linspace(allv.min(), allv.max(), n_bins + 1)
+        counts = {s: np.histogram(np.concatenate([v[lab == s] for _, v, _, lab in runs]),
+                                  edges)[0].tolist() for s in states}
+        traces = []
+        for p, v, t, lab in runs:
+            stride = -(-v.size // max_points)
+            keep = np.arange(0, v.size, stride)
+            traces.append({"file": Path(p).name, "frame": keep.tolist(),
+                           "time_ps": t[keep].tolist(), "value": v[keep].tolist(),
+                           "state": [str(s) for s in lab[keep]]})
+        step = float(runs[0][2][1] - runs[0][2][0])
+        cvs.append({"rank": r["rank"], "spec": r["spec"], "units": "CV units",
+                    "heldout": {"edges": edges.tolist(), "counts": counts},
+                    "traces": traces,
+                    "timescales": _timescales([v for _, v, _, _ in runs], step, [1, 2, 5, 10, 20])})
+    doc = {"format": "cvdesign-report-data", "version": 1, "kind": "suggest",
+           "states": states, "temperature_k": temperature_k, "lag_ps": lag_ps, "cvs": cvs,
+           "tica": tica}
+    (out_dir / "report-data.json").write_text(json.dumps(doc))
+    return doc
+
+
+# ---------------------------------------------------------------------------- fixtures
+@pytest.fixture(scope="module")
+def demo_out(tmp_path_factory, demo_files):
+    """suggest on the demo (a small bootstrap), written as the CLI writes it."""
+    top, states = demo_files
+    res = suggest(Source.from_states(top, states), n_bootstrap=8, n_suggestions=3, seed=0)
+    out = tmp_path_factory.mktemp("demo") / "out"
+    res.write(out)
+    return out
+
+
+@pytest.fixture(scope="module")
+def demo_with_data(tmp_path_factory, demo_out, demo_files):
+    top, states = demo_files
+    out = tmp_path_factory.mktemp("demo-data") / "out"
+    shutil.copytree(demo_out, out)
+    _write_report_data(out, top, states)
+    return out
+
+
+class _Collect(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.tags = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+
+def _parse(text):
+    """The page through an XML parser (well-formed) and the HTML parser (its tags)."""
+    root = ET.fromstring(text.split("\n", 1)[1])  # after <!DOCTYPE html>
+    collect = _Collect()
+    collect.feed(text)
+    return root, collect.tags
+
+
+def _svgs(tags):
+    out = []
+    for tag, attrs in tags:
+        if tag == "img":
+            assert attrs["src"].startswith("data:image/svg+xml;base64,")
+            out.append(base64.b64decode(attrs["src"].split(",", 1)[1]).decode("utf-8"))
+    return out
+
+
+def _write_funnel_data(spec_path, topology, paths):
+    """NAME-report-data.json beside a funnel spec: the ligand centre of every bound frame in
+    the restraint's frame (pocket fitted onto the reference pocket, as in test_funnel_cli)."""
+    from cvdesign.bias.funnel import align_to_reference_pocket
+
+    spec = load_spec(spec_path)
+    (funnel,) = spec.restraints
+    lig, pocket = funnel["groups"]
+    traj = md.join([md.load(p, top=topology) for p in paths])
+    aligned, _ = align_to_reference_pocket(traj.xyz.astype(np.float64), pocket,
+                                           funnel["reference_pocket_nm"])
+    d = aligned[:, lig].mean(axis=1) - aligned[:, pocket].mean(axis=1)
+    axis = np.asarray(funnel["axis"])
+    z = d @ axis
+    r = np.linalg.norm(d - z[:, None] * axis, axis=1)
+    doc = {"format": "cvdesign-report-data", "version": 1, "kind": "funnel",
+           "positions": {"z_nm": z.tolist(), "r_nm": r.tolist()},
+           "spec": Path(spec_path).name}
+    path = Path(spec_path).with_name(Path(spec_path).stem + "-report-data.json")
+    path.write_text(json.dumps(doc))
+    return doc
+
+
+def _hopping_runs(out, *, n_runs=3, n_frames=1500, seed=5):
+    """Unlabelled runs of a four-atom toy whose C1-C2 distance hops between 0.4 and 0.8 nm
+    (a two-state Markov chain, 1 % switching per frame, AR(1) wiggle within a state)."""
+    rng = np.random.default_rng(seed)
+    top = md.Topology()
+    res = top.add_residue("HOP", top.add_chain(), resSeq=1)
+    for name in ("C1", "C2", "C3", "C4"):
+        top.add_atom(name, md.element.carbon, res)
+    paths = []
+    for k in range(n_runs):
+        state, dev = k % 2, 0.0
+        x = np.empty(n_frames)
+        for t in range(n_frames):
+            if rng.random() < 0.01:
+                state = 1 - state
+            dev = 0.7 * dev + rng.normal(0, 0.02)
+            x[t] = (0.4, 0.8)[state] + dev
+        xyz = np.zeros((n_frames, 4, 3))
+        xyz[:, 1, 0] = x
+        xyz[:, 2] = [0.0, 0.5, 0.0] + rng.normal(0, 0.02, (n_frames, 3))
+        xyz[:, 3] = [0.4, 0.4, 0.3] + rng.normal(0, 0.02, (n_frames, 3))
+        path = out / f"hop-{k + 1}.xtc"
+        md.Trajectory(xyz.astype(np.float32), top,
+                      time=np.arange(n_frames) * 0.1).save_xtc(str(path))
+        paths.append(str(path))
+    pdb = out / "hop.pdb"
+    md.Trajectory(xyz[:1].astype(np.float32), top).save_pdb(str(pdb))
+    return str(pdb), paths
+
+
+def _states_csv(out_dir, paths):
+    """{path: per-frame proposed state} from states.csv."""
+    by_name = {Path(p).name: p for p in paths}
+    labels = {p: [] for p in paths}
+    with open(out_dir / "states.csv") as fh:
+        for row in csv.DictReader(fh):
+            labels[by_name[Path(row["file"]).name]].append(row["state"])
+    return {p: np.array(v) for p, v in labels.items()}
+
+
+def _tica_block(top, paths, labels, *, lag_frames=10, frame_step_ps=0.1, every=3):
+    """The report data's "tica" entry: the two slowest TICA coordinates of the runs' pair
+    distances, every `every`-th frame, with its proposed state."""
+    from cvdesign import TICA
+
+    pairs = [(i, j) for i in range(4) for j in range(i + 1, 4)]
+    xs = [md.compute_distances(md.load(p, top=top), pairs).astype(np.float64) for p in paths]
+    tica = TICA(lag=lag_frames).fit(xs)
+    coords = np.concatenate([tica.transform(x)[::every, :2] for x in xs])
+    state = np.concatenate([labels[p][::every] for p in paths])
+    return {"coords": coords.tolist(), "state": state.tolist(),
+            "timescales_ps": (np.asarray(tica.timescales_[:2]) * frame_step_ps).tolist(),
+            "lag_ps": lag_frames * frame_step_ps}
+
+
+@pytest.fixture(scope="module")
+def runs_out(tmp_path_factory):
+    """suggest --runs through the command, then the report data with its TICA entry."""
+    d = tmp_path_factory.mktemp("runs")
+    top, paths = _hopping_runs(d)
+    out = d / "out"
+    assert main(["suggest", "--topology", top, "--runs", *paths, "--lag", "1", "--out",
+                 str(out), "--bootstrap", "0", "--max-terms", "1", "--suggestions", "2",
+                 "--kinds", "distance", "--quiet"]) == 0
+    bare = (out / "report.html").read_text()
+    labels = _states_csv(out, paths)
+    tica = _tica_block(top, paths, labels)
+    states = sorted(set(np.concatenate(list(labels.values()))))
+    _write_report_data(out, top, {"runs": paths}, labels=labels, lag_ps=1.0, tica=tica)
+    return {"out": out, "bare": bare, "tica": tica, "states": states}
+
+
+@pytest.fixture(scope="module")
+def host_guest(tmp_path_factory):
+    from cvdesign.testbed.host_guest import write_host_guest
+
+    return write_host_guest(tmp_path_factory.mktemp("hg"), n_runs=2, n_frames=60)
+
+
+def _funnel(data, out, *extra):
+    return main(["funnel", "--topology", data.topology, "--bound", *data.paths,
+                 "--ligand", data.ligand_selection, "--pocket", data.pocket_selection,
+                 "--out", str(out), *extra])
+
+
+def _figures(target):
+    return {f.name: f for f in build_report(read_output(target)).figures}
+
+
+def _external(value):
+    """Whether a src/href value points outside the page (anything but #id or data:)."""
+    return not (value.startswith("#") or value.startswith("data:"))
+
+
+# ------------------------------------------------------------------------------ tests
+def test_state_colours_are_the_okabe_ito_palette_in_input_order_and_cycle():
+    # Okabe and Ito (2008), "Color Universal Design": orange, sky blue, bluish green,
+    # yellow, blue, vermillion, reddish purple, black.
+    assert fg.PALETTE == ("#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00",
+                          "#CC79A7", "#000000")
+    names = [f"S{i}" for i in range(10)]
+    colors = fg.state_colors(names)
+    assert [colors[n] for n in names[:8]] == list(fg.PALETTE)
+    assert colors["S8"] == fg.PALETTE[0] and colors["S9"] == fg.PALETTE[1]
+
+
+def test_report_is_well_formed_self_contained_and_every_figure_has_alt_text(demo_with_data):
+    path = write_report(demo_with_data)
+    text = path.read_text(encoding="utf-8")
+    assert text.startswith("<!DOCTYPE html>\n")
+    root, tags = _parse(text)  # well-formed XML: every element closed
+    assert root.tag == "html"
+    names = [t for t, _ in tags]
+    assert "script" not in names and "link" not in names and "iframe" not in names
+    for tag, attrs in tags:
+        for key in ("src", "href"):
+            if key in attrs:
+                assert not _external(attrs[key]), (tag, key, attrs[key][:60])
+    assert "url(" not in text and "@import" not in text and "http://" not in text \
+        and "https://" not in text
+    imgs = [a for t, a in tags if t == "img"]
+    report = build_report(read_output(demo_with_data))
+    assert len(imgs) == len(report.figures) == 3 * 3 + 3  # per CV 3, pool, groups, timescales
+    for attrs, fig in zip(imgs, report.figures):
+        assert attrs["alt"] == fig.alt and len(fig.alt) > 40
+        svg = base64.b64decode(attrs["src"].split(",", 1)[1]).decode("utf-8")
+        assert svg == fig.svg
+        svg_root = ET.fromstring(svg.encode("utf-8"))
+        for el in svg_root.iter():
+            for key, value in el.attrib.items():
+                if key.endswith("href") or key == "src":
+                    assert not _external(value), value[:60]
+    assert report.missing == () and "not available" not in text
+    assert "@media print" in text and "Caution." in text
+    assert "starting points to validate, not guarantees" in text
+    # the summary is there too, rendered
+    assert "<h4>Inputs</h4>" in text and "<td>closed-1.xtc</td>" in text
+
+
+def test_figures_draw_the_numbers_of_the_spec_the_ranking_and_the_score_card(demo_with_data):
+    out = demo_with_data
+    figs = _figures(out)
+    ranking = json.loads((out / "ranking.json").read_text())
+    data = json.loads((out / "report-data.json").read_text())
+    kt = BOLTZMANN_KJ_MOL_K * 300.0
+    for r, cv in zip(ranking["ranking"], data["cvs"]):
+        stem = Path(r["spec"]).stem
+        spec = json.loads((out / r["spec"]).read_text())
+        dist = figs[f"{stem}-distributions"].data
+        # the per-state means and spreads drawn are those of the spec
+        assert dist["means"] == {s: spec["states"][s]["mean"] for s in ranking["states"]}
+        assert dist["stds"] == {s: spec["states"][s]["std"] for s in ranking["states"]}
+        edges = np.array(cv["heldout"]["edges"])
+        assert dist["edges"] == cv["heldout"]["edges"]
+        for s in ranking["states"]:
+            counts = np.array(cv["heldout"]["counts"][s], dtype=float)
+            density = np.array(dist["density"][s])
+            np.testing.assert_allclose(density, counts / counts.sum() / np.diff(edges))
+            assert np.sum(density * np.diff(edges)) == pytest.approx(1.0)
+            prof = np.array([np.nan if v is None else v for v in dist["profile_kj_mol"][s]])
+            seen = counts > 0
+            assert np.isnan(prof[~seen]).all() and np.nanmin(prof) == 0.0
+            ref = -kt * np.log(density[seen])
+            np.testing.assert_allclose(prof[seen], ref - ref.min(), atol=1e-9)
+        # the traces: every point, in its state
+        traces = figs[f"{stem}-traces"].data
+        assert traces["n_files"] == len(cv["traces"]) == 6
+        for panel, tr in zip(traces["panels"], cv["traces"]):
+            assert panel["file"] == tr["file"] and panel["x"] == "time_ps"
+            assert panel["per_state"] == {s: tr["state"].count(s) for s in set(tr["state"])}
+            assert panel["value_min"] == min(tr["value"])
+        # the terms: weights, intervals and selection frequencies of the ranking
+        w = figs[f"{stem}-weights"].data
+        assert w["weights"] == [t["weight"] for t in r["terms"]]
+        assert w["weight_ci"] == [t["weight_ci"] for t in r["terms"]]
+        assert w["selection_frequency"] == [t["selection_frequency"] for t in r["terms"]]
+    # the pool: the first 30 rows of scorecard.csv, with their intervals
+    with open(out / "scorecard.csv") as fh:
+        card = list(csv.DictReader(fh))
+    pool = figs["pool-scores"].data
+    assert pool["ids"] == [row["id"] for row in card[:30]]
+    assert pool["fisher_ratio"] == [float(row["fisher_ratio"]) for row in card[:30]]
+    assert pool["fisher_ratio_ci"][0] == [float(card[0]["fisher_ratio_ci_low"]),
+                                          float(card[0]["fisher_ratio_ci_high"])]
+    assert pool["autocorrelation"] == [float(row["autocorrelation"]) for row in card[:30]]
+    groups = figs["redundancy-groups"].data
+    label = {row["id"]: row["label"] for row in card}
+    expected = [(row["label"], [label[m] for m in row["stands_for"].split()])
+                for row in card if row["stands_for"]]
+    assert list(zip(groups["representatives"], groups["members"])) == expected
+    assert expected  # the demo has a redundant pair (a torsion and its 1-4 distance)
+    ts = figs["implied-timescales"].data["curves"]
+    assert ts == {f"rank {c['rank']}": c["timescales"] for c in data["cvs"]}
+
+
+def test_every_numeric_axis_has_a_unit_and_a_state_has_one_colour_everywhere(demo_with_data):
+    figs = _figures(demo_with_data)
+    unit = re.compile(r"\((?:[^()]*\(CV units\)[^()]*|[^()]+)\)|/ \w+")
+    for fig in figs.values():
+        assert fig.axes
+        for ax in fig.axes:
+            for which in ("x", "y"):
+                if ax[f"{which}_ticks"] == "numeric":
+                    assert unit.search(ax[which]), (fig.name, which, ax[which])
+    expected = fg.state_colors(["closed", "open"])
+    coloured = [f for f in figs.values() if "colors" in f.data]
+    assert len(coloured) == 6  # distributions and traces of the three CVs
+    for fig in coloured:
+        assert fig.data["colors"] == expected
+        for color in expected.values():
+            assert color.lower() in fig.svg.lower(), fig.name
+
+
+def test_report_without_report_data_marks_those_figures_not_available(demo_out):
+    report = build_report(read_output(demo_out))
+    names = [f.name for f in report.figures]
+    assert names == ["cv-01-weights", "cv-02-weights", "cv-03-weights", "pool-scores",
+                     "redundancy-groups"]
+    assert len(report.missing) == 3 * 2 + 1
+    assert all(m.startswith("not available: ") and "report-data.json is missing" in m
+               for m in report.missing)
+    assert 'class="missing">not available: held-out histograms' in report.html
+    _, tags = _parse(report.html)
+    assert len([t for t, _ in tags if t == "img"]) == len(names)
+
+
+def test_suggest_writes_the_report_that_cvdesign_report_rebuilds_byte_for_byte(
+        demo_files, tmp_path, capsys):
+    top, states = demo_files
+    runs = []
+    for k in (1, 2):
+        out = tmp_path / f"try{k}" / "out"
+        out.parent.mkdir()
+        argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "4",
+                "--suggestions", "2", "--max-terms", "2", "--seed", "3", "--quiet"]
+        for name, files in states.items():
+            argv += ["--state", name, *files[:2]]
+        assert main(argv) == 0
+        assert f"open {out / 'report.html'} in a browser" in capsys.readouterr().out
+        runs.append(out)
+    first = (runs[0] / "report.html").read_bytes()
+    assert first == (runs[1] / "report.html").read_bytes()  # same inputs and seed
+    assert (runs[0] / "report.html").stat().st_mode & 0o777 == \
+        (runs[0] / "ranking.json").stat().st_mode & 0o777
+    # rebuilt from the directory alone, in another process (another hash seed)
+    import subprocess
+    import sys
+
+    import cvdesign
+    root = str(Path(cvdesign.__file__).resolve().parent.parent)
+    (runs[0] / "report.html").unlink()
+    res = subprocess.run([sys.executable, "-m", "cvdesign.cli", "report", str(runs[0])],
+                         capture_output=True, text=True, timeout=300,
+                         env={"PYTHONPATH": root, "PYTHONHASHSEED": "123", "PATH": ""})
+    assert res.returncode == 0, res.stderr
+    assert (runs[0] / "report.html").read_bytes() == first
+    # with the report data, the figures it holds are drawn, and rebuilt the same again
+    _write_report_data(runs[0], top, {s: f[:2] for s, f in states.items()})
+    assert main(["report", str(runs[0])]) == 0
+    with_data = (runs[0] / "report.html").read_bytes()
+    assert b"not available" not in with_data and len(with_data) > len(first)
+    assert main(["report", str(runs[0]), "--out", str(tmp_path / "copy.html")]) == 0
+    assert (tmp_path / "copy.html").read_bytes() == with_data
+    # --force replaces an earlier output holding the report and its data
+    argv[argv.index("--out") + 1] = str(runs[0])
+    assert main(argv + ["--force", "--no-report"]) == 0
+    assert not (runs[0] / "report.html").exists()
+
+
+def test_no_report_skips_the_report_of_suggest_and_demo(tmp_path, capsys):
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out), "--bootstrap", "0", "--no-report"]) == 0
+    assert not (out / "report.html").exists() and (out / "ranking.json").exists()
+    assert "report.html" not in capsys.readouterr().out
+
+
+def test_a_failing_report_leaves_the_tables_and_exits_2(demo_files, tmp_path, capsys,
+                                                         monkeypatch):
+    import cvdesign.report
+
+    def fail(out):
+        raise OSError(28, "No space left on device")
+    monkeypatch.setattr(cvdesign.report, "write_report", fail)
+    top, states = demo_files
+    out = tmp_path / "out"
+    argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "0",
+            "--suggestions", "1", "--max-terms", "1", "--quiet"]
+    for name, files in states.items():
+        argv += ["--state", name, files[0]]
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert re.search(r"cvdesign suggest: error: the other outputs were written, but the report "
+                     r"could not be: .*No space left on device\. Run 'cvdesign report .*out' "
+                     r"once the cause is fixed", err), err
+    assert "Traceback" not in err
+    assert sorted(p.name for p in out.iterdir()) == [
+        "cv-01.json", "ranking.csv", "ranking.json", "scorecard.csv", "summary.md"]
+    assert [p.name for p in tmp_path.iterdir()] == ["out"]  # no temporary file left
+
+
+def test_runs_report_draws_the_frames_in_the_tica_plane_by_proposed_state(runs_out):
+    out, tica = runs_out["out"], runs_out["tica"]
+    assert "not available: the frames in the two slowest TICA coordinates" in runs_out["bare"]
+    report = build_report(read_output(out))
+    assert report.missing == ()
+    figs = {f.name: f for f in report.figures}
+    drawn = figs["tica-states"].data
+    assert drawn["counts"] == {s: tica["state"].count(s) for s in runs_out["states"]}
+    xy = np.array(tica["coords"])
+    lab = np.array(tica["state"])
+    for s, c in drawn["centroids"].items():
+        np.testing.assert_allclose(c, xy[lab == s].mean(axis=0), atol=1e-9)
+    assert drawn["colors"] == fg.state_colors(runs_out["states"])
+    ts = figs["implied-timescales"].data["tica"]
+    assert ts == {"lag_ps": tica["lag_ps"], "timescales_ps": tica["timescales_ps"]}
+    # the traces are coloured by the proposed state of each frame (from states.csv)
+    traces = figs["cv-01-traces"].data["panels"]
+    assert all(len(p["per_state"]) == 2 for p in traces)  # the runs hop between the states
+    assert "Proposed states" in report.html and "states proposed from unlabelled runs" \
+        in report.html
+
+
+def test_funnel_writes_its_report_beside_out_and_draws_the_positions_in_its_frame(
+        host_guest, tmp_path, capsys):
+    out = tmp_path / "site.json"
+    assert _funnel(host_guest, out) == 0
+    assert f"wrote {tmp_path / 'site-report.html'}" in capsys.readouterr().out
+    page = (tmp_path / "site-report.html").read_text()
+    assert "not available: the ligand positions in the frame of the restraint" in page
+    _parse(page)
+    # rebuilt by 'cvdesign report' from the spec alone: the same bytes
+    assert main(["report", str(out)]) == 0
+    assert (tmp_path / "site-report.html").read_text() == page
+    doc = _write_funnel_data(out, host_guest.topology, host_guest.paths)
+    assert main(["report", str(out)]) == 0
+    (fig,) = _figures(out).values()
+    spec = load_spec(out)
+    (restraint,) = spec.restraints
+    n = len(doc["positions"]["z_nm"])
+    assert fig.data["n_positions"] == n == 2 * 60
+    assert fig.data["inside"] == n  # every bound frame sits inside the funnel it sized
+    for key in ("lower_wall_z_nm", "upper_wall_z_nm", "cone_end_z_nm", "cone_half_angle_rad",
+                "cylinder_radius_nm"):
+        assert fig.data["params"][key] == restraint[key]
+    assert "not available" not in (tmp_path / "site-report.html").read_text()
+    # --no-report: the spec only
+    assert _funnel(host_guest, tmp_path / "other.json", "--no-report") == 0
+    assert not (tmp_path / "other-report.html").exists()
+
+
+def test_a_failing_funnel_report_leaves_the_spec_and_exits_2(host_guest, tmp_path, capsys,
+                                                             monkeypatch):
+    import cvdesign.report
+
+    def fail(output):
+        raise InputError("the disk is full")
+    monkeypatch.setattr(cvdesign.report, "build_report", fail)
+    out = tmp_path / "site.json"
+    assert _funnel(host_guest, out) == 2
+    captured = capsys.readouterr()
+    assert re.search(r"cvdesign funnel: error: the spec was written, but the report could not "
+                     r"be: the disk is full\. Run 'cvdesign report .*site\.json' once the "
+                     r"cause is fixed", captured.err), captured.err
+    assert "site-report.html" not in captured.out
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["site.json"]
+    assert load_spec(out).restraints
+
+
+@pytest.mark.parametrize("change, message", [
+    (lambda d: d.update(version=2),
+     r"report-data\.json: version 2 of the report data; this cvdesign reads version 1"),
+    (lambda d: d.update(kind="funnel"), r"report-data\.json: kind 'funnel', expected 'suggest'"),
+    (lambda d: d.update(states=["closed", "ajar"]),
+     r"report-data\.json: states \['closed', 'ajar'\] differ from those of ranking\.json"),
+    (lambda d: d["cvs"][0]["heldout"].update(edges=d["cvs"][0]["heldout"]["edges"][::-1]),
+     r"report-data\.json: a field is missing or malformed \(ValueError: held-out histogram "
+     r"edges must be at least two increasing finite numbers\)"),
+    (lambda d: d["cvs"][0]["traces"][0].pop("value"),
+     r"report-data\.json: a field is missing or malformed \(KeyError: 'value'\)"),
+], ids=["version", "kind", "states", "edges", "trace-without-values"])
+def test_bad_report_data_is_refused_naming_the_file_and_nothing_is_written(
+        demo_with_data, tmp_path, change, message):
+    out = tmp_path / "out"
+    shutil.copytree(demo_with_data, out)
+    (out / "report.html").unlink(missing_ok=True)
+    doc = json.loads((out / "report-data.json").read_text())
+    change(doc)
+    (out / "report-data.json").write_text(json.dumps(doc))
+    before = sorted(p.name for p in out.iterdir())
+    with pytest.raises(InputError, match=message):
+        write_report(out)
+    assert sorted(p.name for p in out.iterdir()) == before
+
+
+def test_write_report_refuses_what_is_not_a_cvdesign_output(tmp_path, demo_out):
+    (tmp_path / "mine").mkdir()
+    (tmp_path / "mine" / "notes.txt").write_text("x")
+    with pytest.raises(InputError, match=r"'.*mine' is not a cvdesign output directory: it has "
+                                         r"no ranking\.json"):
+        write_report(tmp_path / "mine")
+    with pytest.raises(InputError, match=r"would replace ranking\.json, a file of the output"):
+        write_report(demo_out, demo_out / "ranking.json")
+    assert sorted(p.name for p in (tmp_path / "mine").iterdir()) == ["notes.txt"]
+
+
+# ------------------------------------------------------------------------ in a browser
+#: Headless Chromium without network: the background services would try to connect out.
+CHROMIUM_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+                  "--no-first-run", "--disable-background-networking",
+                  "--disable-component-update", "--disable-sync", "--hide-scrollbars")
+
+_COUNT_IMAGES = ('<script>window.addEventListener("load", function () {'
+                 "var imgs = Array.from(document.images);"
+                 'document.body.setAttribute("data-images", imgs.length);'
+                 'document.body.setAttribute("data-broken", imgs.filter(function (i) {'
+                 "return !i.complete || i.naturalWidth === 0; }).length); });</script>")
+
+
+def _chromium():
+    for name in ("chromium", "chromium-browser"):
+        found = shutil.which(name)
+        if found:
+            return found
+    if Path("/usr/bin/chromium").exists():
+        return "/usr/bin/chromium"
+    pytest.skip("no Chromium browser here: install Debian's chromium package "
+                "(apt-get install -y chromium; .ci/run does so when apt-get is available)")
+
+
+def _browse(tmp_path, page, *args):
+    import subprocess
+
+    profile = Path(tempfile.mkdtemp(dir=tmp_path, prefix="profile-"))  # a new, empty one
+    res = subprocess.run([_chromium(), *CHROMIUM_FLAGS, f"--user-data-dir={profile}", *args,
+                          page.resolve().as_uri()], capture_output=True, text=True,
+                         timeout=300, cwd=tmp_path)
+    assert res.returncode == 0, res.stderr[-2000:]
+    return res.stdout
+
+
+def _loaded_images(tmp_path, text, name):
+    """(images, broken) that Chromium counts in `text` once loaded (DOM dump)."""
+    page = tmp_path / name
+    page.write_text(text.replace("</body>", _COUNT_IMAGES + "</body>"), encoding="utf-8")
+    dom = _browse(tmp_path, page, "--dump-dom")
+    images = re.search(r'data-images="(\d+)"', dom)
+    broken = re.search(r'data-broken="(\d+)"', dom)
+    assert images and broken, dom[:500]
+    return int(images.group(1)), int(broken.group(1))
+
+
+def _screenshot(tmp_path, page, name):
+    from matplotlib.image import imread
+
+    shot = tmp_path / name
+    _browse(tmp_path, page, f"--screenshot={shot}", "--window-size=1100,2600")
+    return (imread(shot)[..., :3] * 255).round().astype(int)
+
+
+def _pixels_of(image, hex_color, tol=12):
+    rgb = np.array([int(hex_color[i:i + 2], 16) for i in (1, 3, 5)])
+    return int(np.sum(np.all(np.abs(image - rgb) <= tol, axis=-1)))
+
+
+def test_report_renders_in_headless_chromium_with_every_image_loaded(demo_with_data, tmp_path):
+    _chromium()
+    text = write_report(demo_with_data).read_text(encoding="utf-8")
+    n_figures = len(build_report(read_output(demo_with_data)).figures)
+    assert _loaded_images(tmp_path, text, "counted.html") == (n_figures, 0)
+    # the check can fail: an image that does not load is counted as broken
+    broken = text.replace("</body>", '<img src="missing.png" alt="missing" /></body>')
+    assert _loaded_images(tmp_path, broken, "broken.html") == (n_figures + 1, 1)
+    # a screenshot: not blank, and the figures' state colours are drawn (a render of the same
+    # page without its images shows only the two small colour swatches of the title line)
+    page = tmp_path / "report.html"
+    page.write_text(text, encoding="utf-8")
+    full = _screenshot(tmp_path, page, "full.png")
+    bare_page = tmp_path / "bare.html"
+    bare_page.write_text(re.sub(r'<img src="data:[^"]*" alt="[^"]*" />', "", text),
+                         encoding="utf-8")
+    bare = _screenshot(tmp_path, bare_page, "bare.png")
+    assert full.shape == bare.shape == (2600, 1100, 3)
+    not_white = np.any(full < 245, axis=-1).mean()
+    assert not_white > 0.05, not_white
+    for color in fg.state_colors(["closed", "open"]).values():
+        assert _pixels_of(full, color) > _pixels_of(bare, color) + 500, color
