@@ -47,6 +47,7 @@ from cvdesign.pool import build_pool
 from cvdesign.testbed.host_guest import write_host_guest
 
 HAS_TABLES = importlib.util.find_spec("tables") is not None
+NO_OPENMM = "" if importlib.util.find_spec("openmm") is not None else "openmm is not installed"
 IS_ROOT = hasattr(os, "geteuid") and os.geteuid() == 0
 #: The directory holding the cvdesign package under test, for subprocesses.
 _ROOT = str(Path(cvdesign.__file__).resolve().parent.parent)
@@ -106,10 +107,11 @@ def shared(tmp_path_factory, demo_files):
 class Ctx:
     """What a case builds its input from: shared files and a fresh working directory."""
 
-    def __init__(self, shared, work):
+    def __init__(self, shared, work, monkeypatch=None):
         self.top, self.closed, self.open = shared["top"], shared["closed"], shared["open"]
         self.shared = shared["dir"]
         self.work = work
+        self.monkeypatch = monkeypatch
 
     def s(self, name):
         """A shared fixture file."""
@@ -149,6 +151,35 @@ class Ctx:
 
     def hints(self, spec, *extra):
         return ["hints", spec, "--temperature", "300", "--md-step-fs", "2", *extra]
+
+    def export(self, *extra, spec=None, out=None):
+        return ["export", spec or self.s("cv.json"), "--to", "openmm", "--out",
+                out or self.w("cv.xml"), *extra]
+
+    def funnel_spec(self):
+        """A spec on the demo topology with a funnel restraint, in the working directory."""
+        funnel = {"id": "funnel", "kind": "funnel", "groups": [[7, 8], [0, 1, 2]],
+                  "axis": [0.0, 0.0, 1.0], "lower_wall_z_nm": -0.2, "upper_wall_z_nm": 2.0,
+                  "cone_end_z_nm": 1.0, "cone_half_angle_rad": 0.5, "cylinder_radius_nm": 0.2,
+                  "blend_half_width_nm": 0.1, "wall_force_constant_kj_mol_nm2": 1000.0,
+                  "reference_pocket_nm": [[-0.1, -0.05, 0.0], [0.1, -0.05, 0.0],
+                                          [0.0, 0.1, 0.0]]}
+        doc = _hand_spec(md.load_topology(self.top)).to_dict()
+        spec = Spec(name="funnel", topology=md.load_topology(self.top),
+                    descriptors=doc["descriptors"], terms=doc["terms"], restraints=[funnel])
+        return self.file("funnel.json", spec.to_json())
+
+    def without_openmm(self):
+        self.monkeypatch.setitem(sys.modules, "openmm", None)
+
+    def system_xml(self, n_atoms):
+        """An OpenMM System of `n_atoms` particles, serialized, in the working directory."""
+        import openmm
+
+        system = openmm.System()
+        for _ in range(n_atoms):
+            system.addParticle(12.0)
+        return self.file("system.xml", openmm.XmlSerializer.serialize(system))
 
 
 @dataclass
@@ -440,6 +471,62 @@ CLI_CASES = [
          lambda c: [c.file("out/ranking.json", "{}"), c.file("old.html"),
                     ["report", c.w("out"), "--out", c.w("old.html")]][2], 2,
          r"--out '.*old\.html' already exists; choose another name, or pass --force"),
+    # -- export
+    Case("export-unknown-target",
+         lambda c: ["export", c.s("cv.json"), "--to", "xyzengine", "--out", c.w("cv.xml"),
+                    "--no-periodic"], 2,
+         r"argument --to: invalid choice: 'xyzengine' \(choose from '?openmm'?\)"),
+    Case("export-without-saying-periodic-or-not",
+         lambda c: c.export(), 2,
+         r"one of the arguments --periodic --no-periodic --system is required"),
+    Case("export-periodic-and-no-periodic",
+         lambda c: c.export("--periodic", "--no-periodic"), 2,
+         r"argument --no-periodic: not allowed with argument --periodic"),
+    Case("export-without-openmm",
+         lambda c: [c.without_openmm(), c.export("--no-periodic")][1], 2,
+         r"exporting to OpenMM needs the openmm package, which is not installed here; install "
+         r"it with pip install 'cvdesign\[openmm\]'"),
+    Case("export-out-exists-without-force",
+         lambda c: c.export("--no-periodic", out=c.file("cv.xml", "<mine/>\n")), 2,
+         r"--out '.*cv\.xml' already exists; choose another name, or pass --force"),
+    Case("export-out-is-the-spec",
+         lambda c: c.export("--no-periodic", "--force", spec=c.copy(c.s("cv.json"), "cv.json"),
+                            out=c.w("cv.json")), 2,
+         r"--out '.*cv\.json' is one of the input files; writing it would replace"),
+    Case("export-spec-missing",
+         lambda c: c.export("--no-periodic", spec=c.w("absent.json")), 2,
+         r"spec file '.*absent\.json' does not exist"),
+    Case("export-spec-with-restraints-without-restraint-out",
+         lambda c: c.export("--no-periodic", spec=c.funnel_spec()), 2,
+         r"spec '.*funnel\.json' has restraints \('funnel'\) that belong with its CV; give "
+         r"--restraint-out FILE\.xml"),
+    Case("export-restraint-out-without-restraints",
+         lambda c: c.export("--no-periodic", "--restraint-out", c.w("r.xml")), 2,
+         r"--restraint-out: spec '.*cv\.json' has no restraints to write; leave the option "
+         r"out"),
+    Case("export-restraint-out-is-out",
+         lambda c: c.export("--no-periodic", "--restraint-out", c.w("cv.xml"),
+                            spec=c.funnel_spec()), 2,
+         r"--restraint-out '.*cv\.xml' is the same file as --out; give two names"),
+    Case("export-system-missing",
+         lambda c: c.export("--system", c.w("none.xml")), 2,
+         r"--system '.*none\.xml' does not exist",
+         skip=NO_OPENMM),
+    Case("export-system-holds-a-force",
+         lambda c: c.export("--system", c.file("force.xml", '<?xml version="1.0" ?>\n<Force '
+                                                'type="CustomBondForce"/>\n')), 2,
+         r"--system '.*force\.xml' holds no OpenMM System \(no <System> element\); write it "
+         r"with openmm\.XmlSerializer\.serialize\(system\)",
+         skip=NO_OPENMM),
+    Case("export-system-not-readable-xml",
+         lambda c: c.export("--system", c.file("system.xml", "<System broken\n")), 2,
+         r"--system '.*system\.xml' is not an OpenMM XML file OpenMM can read",
+         skip=NO_OPENMM),
+    Case("export-system-of-another-size",
+         lambda c: c.export("--system", c.system_xml(11)), 2,
+         r"the openmm\.System has 11 particles, but spec 'cv-test' was made for a topology "
+         r"of 12 atoms",
+         skip=NO_OPENMM),
     # -- the command itself
     Case("unknown-command",
          lambda c: ["design-everything"], 2,
@@ -570,6 +657,23 @@ API_CASES = [
     Case("api-propose-states-zero-workers",
          lambda c: lambda: propose_states(_demo_source(c), lag=2.0, executor=0), InputError,
          r"n_workers=0 must be a positive number of processes"),
+    Case("api-to-openmm-without-saying-periodic-or-not",
+         lambda c: lambda: load_spec(c.s("cv.json")).to_openmm(), InputError,
+         r"say whether the system has a periodic box: periodic=True .* or periodic=False "
+         r"\(no box\), or pass the openmm\.System as system=",
+         skip=NO_OPENMM),
+    Case("api-to-openmm-without-openmm",
+         lambda c: [c.without_openmm(),
+                    lambda: load_spec(c.s("cv.json")).to_openmm(periodic=True)][1], InputError,
+         r"needs the openmm package, .* pip install 'cvdesign\[openmm\]'"),
+    Case("api-restraint-to-openmm-without-restraints",
+         lambda c: lambda: load_spec(c.s("cv.json")).restraint_to_openmm(periodic=False),
+         InputError, r"spec 'cv-test' has no restraints",
+         skip=NO_OPENMM),
+    Case("api-to-openmm-system-not-a-system",
+         lambda c: lambda: load_spec(c.s("cv.json")).to_openmm(system="system.xml"),
+         InputError, r"system must be an openmm\.System; got str",
+         skip=NO_OPENMM),
     Case("api-funnel-from-source-with-a-file-name",
          lambda c: lambda: size_funnel_from_source("run.xtc", [0, 1, 2], [7]), InputError,
          r"size_funnel_from_source\(\) needs a Source of the bound-state trajectories, not str"),
@@ -614,7 +718,7 @@ def test_command_refuses_bad_input_cleanly(case, shared, tmp_path, capsys, monke
     work = tmp_path / "work"
     work.mkdir()
     monkeypatch.chdir(work)
-    ctx = Ctx(shared, work)
+    ctx = Ctx(shared, work, monkeypatch)
     argv = [str(a) for a in case.make(ctx)]
     before = _snapshot(work, shared["dir"], shared["data"])
     try:
@@ -638,7 +742,7 @@ def test_python_api_refuses_bad_input_cleanly(case, shared, tmp_path, monkeypatc
     work = tmp_path / "work"
     work.mkdir()
     monkeypatch.chdir(work)
-    call = case.make(Ctx(shared, work))
+    call = case.make(Ctx(shared, work, monkeypatch))
     before = _snapshot(work, shared["dir"], shared["data"])
     with pytest.raises(case.expect, match=case.pattern):
         call()
@@ -676,7 +780,7 @@ def test_closed_standard_output_ends_quietly_with_status_141(which, shared):
 def test_no_arguments_lists_the_commands(capsys):
     assert main([]) == 0
     out = capsys.readouterr().out
-    for command in ("suggest", "apply", "check", "hints", "funnel", "demo"):
+    for command in ("suggest", "apply", "check", "hints", "funnel", "export", "demo"):
         assert re.search(rf"^\s+{command}\s+\S", out, flags=re.M), out
 
 

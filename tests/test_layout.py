@@ -17,8 +17,8 @@ PACKAGE = Path(cvdesign.__file__).resolve().parent
 ROOT = PACKAGE.parent
 
 ORDER = ["_version", "errors", "constants", "kinds", "io", "testbed", "geometry", "stats",
-         "pool", "score", "fit", "search", "parallel", "passes", "bias", "spec", "pipeline",
-         "report", "cli", "__main__"]
+         "pool", "score", "fit", "search", "parallel", "passes", "bias", "export", "spec",
+         "pipeline", "report", "cli", "__main__"]
 LAYERS = {name: rank for rank, name in enumerate(ORDER)}
 
 

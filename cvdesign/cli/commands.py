@@ -7,6 +7,7 @@ Sub-commands:
 * ``check`` -- validate a spec against a topology, and another program's values against it;
 * ``hints`` -- starting values for the bias along a spec's CV;
 * ``funnel`` -- size a funnel restraint for a bound ligand, written as a spec;
+* ``export`` -- write a spec's CV (and restraint) as a simulation engine's own force (OpenMM XML);
 * ``demo`` -- run ``suggest`` on the bundled demo data;
 * ``report`` -- rebuild the HTML report of an output of ``suggest``, ``demo`` or ``funnel``.
 
@@ -307,6 +308,37 @@ def build_parser():
                         "files are never replaced")
     _add_no_report(p, "NAME-report.html beside --out NAME.json")
     _add_executor_options(p)
+
+    p = sub.add_parser(
+        "export", help="write a spec's CV as an OpenMM force (XML), for a bias of your own",
+        description="Write the CV of a spec file as an OpenMM CustomCVForce (serialized with "
+                    "openmm.XmlSerializer) whose energy is the CV value: read it with "
+                    "openmm.XmlSerializer.deserialize and add it as a collective variable of "
+                    "your own bias force. A funnel restraint of the spec goes to a second "
+                    "file (--restraint-out), a force in kJ/mol to add to the System as it "
+                    "is. Needs OpenMM: pip install 'cvdesign[openmm]'.")
+    p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json, or a funnel spec)")
+    p.add_argument("--to", required=True, choices=("openmm",),
+                   help="the engine's format; version 1 writes OpenMM XML")
+    p.add_argument("--out", required=True, metavar="FILE.xml",
+                   help="the CV force; an existing file is kept unless --force, and an input "
+                        "file is never replaced")
+    p.add_argument("--restraint-out", metavar="FILE.xml", default=None,
+                   help="the spec's restraints (a funnel) as one force in kJ/mol; required "
+                        "when the spec has restraints, refused when it has none")
+    box = p.add_mutually_exclusive_group(required=True)
+    box.add_argument("--periodic", dest="periodic", action="store_const", const=True,
+                     default=None,
+                     help="the simulation has a periodic box (orthorhombic or triclinic): "
+                          "distances are taken at their periodic images")
+    box.add_argument("--no-periodic", dest="periodic", action="store_const", const=False,
+                     help="the simulation has no periodic box")
+    box.add_argument("--system", metavar="SYSTEM.xml", default=None,
+                     help="the simulation's System (openmm.XmlSerializer.serialize(system)): "
+                          "its particle count must be the spec's atom count, and the box "
+                          "follows whether it uses periodic boundary conditions")
+    p.add_argument("--force", action="store_true",
+                   help="replace existing output files (never an input)")
 
     p = sub.add_parser(
         "demo", help="run suggest on the bundled demo data",
@@ -835,6 +867,69 @@ def _funnel_spec(source, args, lig, pocket, result):
     )
 
 
+def _cmd_export(args):
+    from ..io.atomic import atomic_paths, check_output_file
+    from ..spec import load_spec
+
+    spec = load_spec(args.spec)
+    restraints = spec.restraints
+    if restraints and args.restraint_out is None:
+        ids = ", ".join(repr(r["id"]) for r in restraints)
+        raise InputError(
+            f"spec {args.spec!r} has restraints ({ids}) that belong with its CV; give "
+            "--restraint-out FILE.xml to write them as a second force (kJ/mol), or export a "
+            "spec without restraints")
+    if not restraints and args.restraint_out is not None:
+        raise InputError(f"--restraint-out: spec {args.spec!r} has no restraints to write; "
+                         "leave the option out")
+    inputs = [args.spec] + ([args.system] if args.system else [])
+    check_output_file(args.out, force=args.force, inputs=inputs, option="--out")
+    paths = [args.out]
+    if args.restraint_out is not None:
+        if Path(args.restraint_out).resolve() == Path(args.out).resolve():
+            raise InputError(f"--restraint-out {args.restraint_out!r} is the same file as "
+                             "--out; give two names")
+        check_output_file(args.restraint_out, force=args.force, inputs=inputs,
+                          option="--restraint-out")
+        paths.append(args.restraint_out)
+    from ..export.openmm import import_openmm, read_system
+
+    openmm = import_openmm()
+    system = read_system(args.system) if args.system else None
+    forces = [spec.to_openmm(args.periodic, system=system)]
+    if args.restraint_out is not None:
+        forces.append(spec.restraint_to_openmm(args.periodic, system=system))
+    texts = [openmm.XmlSerializer.serialize(f) for f in forces]
+    try:
+        with atomic_paths(paths) as tmps:
+            for tmp, text in zip(tmps, texts):
+                with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+                    fh.write(text)
+    except OSError as exc:
+        raise InputError(f"cannot write the output ({exc.strerror or exc}); nothing was "
+                         "written") from None
+    periodic = forces[0].usesPeriodicBoundaryConditions()
+    print(f"wrote {args.out}: the CV of spec {spec.name!r} as an OpenMM CustomCVForce whose "
+          f"energy is the CV value (in the CV's units), "
+          f"{'with periodic images in the box' if periodic else 'without a periodic box'}; "
+          "read it with openmm.XmlSerializer.deserialize and add it as a collective variable "
+          "of your own bias force")
+    if spec.periodic:
+        print(f"note: the CV is periodic with period {spec.period!r} (CV units) and jumps by "
+              "one period where its dihedral crosses +-pi; the bias on it must be periodic "
+              "with that period")
+    if args.restraint_out is not None:
+        print(f"wrote {args.restraint_out}: the spec's restraints as an OpenMM "
+              "CustomCentroidBondForce (kJ/mol); add it to the System as it is, and hold the "
+              "pocket in the orientation of the restraint's reference pocket during the run")
+    print("check: the groups of centre distances and restraints must be whole in the "
+          "positions given to OpenMM; compare the engine's CV values on a trajectory with "
+          f"'cvdesign check {args.spec} --topology TOP --against VALUES TRAJ'")
+    if spec.caution:
+        print(f"caution: {spec.caution}")
+    return 0
+
+
 def _cmd_demo(args):
     from ..io.atomic import prepare_output_dir
     from ..io.demo import demo_data_dir
@@ -938,7 +1033,8 @@ def _main(argv):
         parser.commands[args.command].error(
             f"unrecognized arguments: {' '.join(extra)} (see cvdesign {args.command} --help)")
     handler = {"suggest": _cmd_suggest, "apply": _cmd_apply, "check": _cmd_check,
-               "hints": _cmd_hints, "funnel": _cmd_funnel, "demo": _cmd_demo,
+               "hints": _cmd_hints, "funnel": _cmd_funnel, "export": _cmd_export,
+               "demo": _cmd_demo,
                "report": _cmd_report}[args.command]
     try:
         return handler(args)

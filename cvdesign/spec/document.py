@@ -791,6 +791,125 @@ class Spec:
                 np.add.at(grad, (slice(None), pocket), -w_pocket[None, :, None] * g[:, None, :])
         return (energy, grad) if gradient else energy
 
+    # -- export to OpenMM --------------------------------------------------
+
+    def to_openmm(self, periodic=None, *, system=None):
+        """The CV as an ``openmm.CustomCVForce`` whose energy is the CV value.
+
+        This is OpenMM's convention for a collective variable: add the force
+        as a collective variable of your own bias force (a ``CustomCVForce``
+        whose expression is the bias as a function of it), not to the System
+        by itself. Its "energy", reported in kJ/mol, is the CV in the CV's
+        units; on the Reference platform it equals :meth:`evaluate`, and its
+        forces the negative gradient (``tests/test_export_openmm.py``). Each
+        descriptor is one of OpenMM's custom forces (the mapping is in
+        ``docs/spec-v1.md`` and :mod:`cvdesign.export.openmm`). Restraints are
+        not part of the CV: see :meth:`restraint_to_openmm`.
+
+        A periodic CV (``periodic`` true: a single identity term on a
+        dihedral) is ``offset + weight (theta - center) / scale`` with
+        OpenMM's torsion angle theta in [-pi, pi]: its values fill an
+        interval of length :attr:`period` and jump by one period where theta
+        crosses +-pi (the forces stay continuous). OpenMM knows nothing of
+        that period: the bias built on it must be periodic with period
+        :attr:`period`, e.g. an expression of the wrapped difference ``dv -
+        period*floor(dv/period + 0.5)`` of the CV from each kernel centre, or
+        a tabulated function made periodic over one period; used as an
+        ordinary variable, the bias would see the jump.
+
+        Parameters
+        ----------
+        periodic : bool or None, default=None
+            True for a System with a periodic box: every bond vector, and the
+            vector between two group centres, is taken at its periodic image
+            in the Context's box (orthorhombic or triclinic): the spec's
+            minimum image for vectors shorter than half the smallest box
+            height. False for a System without a box. Required unless
+            `system` is given: a wrong choice would give wrong values silently.
+        system : openmm.System or None, default=None
+            The System the CV is for: its particle count must be
+            :attr:`n_atoms` (topology order), and `periodic` follows whether
+            it uses periodic boundary conditions.
+
+        Returns
+        -------
+        openmm.CustomCVForce
+
+        Raises
+        ------
+        InputError
+            openmm is not installed (``pip install 'cvdesign[openmm]'``),
+            `periodic` is missing, or the System does not fit.
+
+        Notes
+        -----
+        Group centres (``center_distance``) are the weighted means of the
+        positions the Context holds; the spec makes each group whole first.
+        They agree when every group is whole in the Context's positions (as
+        OpenMM keeps whole molecules given to it whole).
+
+        Examples
+        --------
+        >>> import openmm
+        >>> spec = Spec.from_json(_EXAMPLE)
+        >>> cv = spec.to_openmm(periodic=False)
+        >>> bias = openmm.CustomCVForce("0.5*kappa*(s - 1.5)^2")  # a bias of your own
+        >>> _ = bias.addGlobalParameter("kappa", 100.0)  # kJ/mol per CV unit squared
+        >>> _ = bias.addCollectiveVariable("s", cv)
+        >>> system = openmm.System()
+        >>> for _ in range(spec.n_atoms):
+        ...     _ = system.addParticle(12.0)
+        >>> _ = system.addForce(bias)
+        >>> context = openmm.Context(system, openmm.VerletIntegrator(0.001),
+        ...                          openmm.Platform.getPlatformByName("Reference"))
+        >>> context.setPositions([[0.0, 0, 0], [0.1, 0, 0], [0.4, 0, 0]])
+        >>> round(bias.getCollectiveVariableValues(context)[0], 9)  # = evaluate
+        2.0
+        """
+        from ..export.openmm import cv_force
+
+        return cv_force(self._doc, periodic, system=system)
+
+    def restraint_to_openmm(self, periodic=None, *, system=None):
+        """The spec's restraints as an OpenMM force to add to the System, energy in kJ/mol.
+
+        One ``openmm.CustomCentroidBondForce`` holds every restraint (version
+        1: funnels), each a bond between the ligand and the pocket group,
+        with the energy of :meth:`restraint_energy`: ``k/2 (r - R(z))^2``
+        outside the cone-cylinder radius ``R(z)`` (smooth blend at the
+        junction) and ``k/2`` times the squared distance beyond either wall,
+        with ``z`` and ``r`` the pocket-to-ligand vector's distances along and
+        from the axis. The axis is fixed in the box frame, in the frame of
+        the restraint's reference pocket (``reference_pocket_nm``): hold the
+        pocket in that orientation during the run (restrain or align it).
+
+        Parameters
+        ----------
+        periodic : bool or None, default=None
+            As in :meth:`to_openmm`.
+        system : openmm.System or None, default=None
+            As in :meth:`to_openmm`.
+
+        Returns
+        -------
+        openmm.CustomCentroidBondForce
+
+        Raises
+        ------
+        InputError
+            The spec has no restraints, or as in :meth:`to_openmm`.
+
+        Examples
+        --------
+        >>> Spec.from_json(_EXAMPLE).restraint_to_openmm(periodic=False)  # doctest: +ELLIPSIS
+        Traceback (most recent call last):
+        ...
+        cvdesign.errors.InputError: spec 'cv-01' has no restraints; ...
+        """
+        from ..export.openmm import restraint_force
+
+        return restraint_force(self._doc, periodic, system=system)
+
     # -- topology check ---------------------------------------------------
 
     def check_topology(self, topology):
