@@ -18,8 +18,9 @@ from hypothesis import strategies as st
 from cvdesign import InputError, Source
 from cvdesign.parallel import ProcessExecutor
 from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, FoldMomentsPass, Folds,
-                             HistogramPass, LaggedPass, PoolFeaturizer, ScreeningPass, Task,
-                             TreeReducer, frame_keys, plan_tasks, reference_features, run_pass)
+                             HistogramPass, LaggedPass, LagGridPass, PoolFeaturizer,
+                             ScreeningPass, Task, TreeReducer, frame_keys, plan_tasks,
+                             reference_features, run_pass)
 from cvdesign.passes.keys import SegmentLayout
 from cvdesign.passes.read import read_chunks
 from cvdesign.pool import build_pool
@@ -30,6 +31,7 @@ SETTINGS = settings(max_examples=30, deadline=None, derandomize=True, database=N
 ATOMS = np.array([0, 2])
 N_BINS = 7
 CARD_COLUMNS = [5, 0, 3]  # the score card's sums on some features, in another order
+GRID = (1, 2, 4)  # lags of the LagGridPass (every segment)
 
 
 def _topology(n_atoms=3):
@@ -144,7 +146,8 @@ def _passes(sc, src, featurizer, shift):
             BlockPass(featurizer, folds=folds, block_frames=sc["block"], lags=sc["lags"],
                       pairs_within_block=sc["within_block"], sums=_block_sums,
                       center=shift, scale=np.full(6, 2.0)),
-            _card_pass(sc, featurizer, shift))
+            _card_pass(sc, featurizer, shift),
+            LagGridPass(featurizer, GRID, shift=shift[[2, 5]], columns=[2, 5]))
 
 
 # ---------------------------------------------------------------------------- direct reference
@@ -209,7 +212,7 @@ def _close(a, b):
 
 
 def _check_direct(sc, src, loaded, results, shift):
-    screen, fold_m, lagged, lagged_diag, hist, blocks, card = results
+    screen, fold_m, lagged, lagged_diag, hist, blocks, card, grid = results
     folds = _folds(sc, src)
     data = _direct_frames(sc, src, loaded)
     n_states = src.n_states
@@ -296,6 +299,20 @@ def _check_direct(sc, src, loaded, results, shift):
             x0, xt = ((np.array(v) - shift) / 2.0 for v in zip(*pairs))
             _close(lm.sum_xy, x0.T @ xt)
     _check_card(sc, src, data, card, shift)
+    # the lag grid: per run, at every lag, diagonal sums of the pairs (columns 2, 5)
+    for g, lag in enumerate(GRID):
+        want = {}
+        for si, (frames, codes, x) in enumerate(data):
+            for t, u in _direct_pairs(frames, codes, lag):
+                want.setdefault((si, int(codes[t]), 0), []).append((x[t], x[u]))
+        assert grid[g].diagonal and set(grid[g].runs) == set(want)
+        for key, pairs in want.items():
+            m = grid[g].runs[key]
+            x0, xt = (np.array(v)[:, [2, 5]] - shift[[2, 5]] for v in zip(*pairs))
+            assert m.n_pairs == len(pairs) and m.lag == lag
+            _close(m.sum_x, x0.sum(axis=0))
+            _close(m.sum_yy, (xt * xt).sum(axis=0))
+            _close(m.sum_xy, (x0 * xt).sum(axis=0))
 
 
 def _check_card(sc, src, data, card, shift):
@@ -349,6 +366,22 @@ def test_any_task_split_chunk_size_and_arrival_order_gives_identical_results(
                          executor=shuffled_executor(sc["seed"] + 3), chunk_frames=sc["chunk"])
         assert_same(reference, other)
         _check_direct(sc, src, loaded, reference, shift)
+
+
+@settings(max_examples=10, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(sc=scenarios())
+def test_lag_grid_pass_gives_the_bytes_of_one_diagonal_lagged_pass_per_lag(sc, assert_same):
+    featurizer = CoordinateFeaturizer(ATOMS)
+    with tempfile.TemporaryDirectory() as tmp:
+        src, _ = _build(sc, tmp)
+        plan = plan_tasks(src, leaf_frames=sc["leaf"])
+        shift = reference_features(plan, featurizer)
+        grid = LagGridPass(featurizer, GRID, shift=shift, center=shift, scale=np.full(6, 3.0))
+        one = [LaggedPass(featurizer, lag, shift=shift, diagonal=True, center=shift,
+                          scale=np.full(6, 3.0)) for lag in GRID]
+        results = run_pass((grid, *one), src, tasks=plan, chunk_frames=sc["chunk"])
+        assert_same(results[0], list(results[1:]))
 
 
 @pytest.fixture(scope="module")

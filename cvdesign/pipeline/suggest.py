@@ -35,9 +35,9 @@ from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
 from ..io.source import Source
 from ..kinds import DEFAULT_KINDS
-from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LaggedPass,
-                      PoolFeaturizer, ScreeningPass, TaskPlan, leaf_frames_for, plan_tasks,
-                      reference_features, run_pass)
+from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
+                      LaggedPass, PoolFeaturizer, ScreeningPass, TaskPlan, leaf_frames_for,
+                      plan_tasks, reference_features, run_pass)
 from ..pool import build_pool
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
@@ -418,7 +418,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     uniform = len({None if v is None else round(v, 9) for v in steps.values()}) == 1
     grid = iat_lags(seg_counts) if uniform else None
     if grid is not None:
-        passes += [LaggedPass(feats, int(L), shift=shift, diagonal=True) for L in grid]
+        passes.append(LagGridPass(feats, grid, shift=shift))
     results = run_pass(tuple(passes), source, executor=executor,
                        tasks=_plan_for(base, feats.n_features, executor))
     fold_m = results[0]
@@ -446,7 +446,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
         return fm, iat_desc, notes
     # within runs: each (file, state) series about its own mean
     n = feats.n_features
-    rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-len(grid):]])
+    rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-1]])
     tau, decayed, window = integrated_time(grid, rho_grid, dt, return_window=True)
     tau_lo, tau_hi = integrated_time_interval(tau, window, int(seg_counts.sum()))
     for gi, i in enumerate(screening.screened):
