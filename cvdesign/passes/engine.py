@@ -599,9 +599,11 @@ def run_task(ctx, work):
 
 
 # --------------------------------------------------------------------------- running a pass
-def _chunk_frames(source, featurizer, leaf_frames):
-    return int(max(leaf_frames, min(source.chunk_size,
-                                    FEATURE_BUDGET // max(1, featurizer.n_features))))
+def _chunk_frames(source, featurizer, leaf_frames, halo=0):
+    """Frames per read: the source's chunk size, longer with a long halo (so that a leaf's
+    window rarely spans two chunks and needs a copy), within :data:`FEATURE_BUDGET`."""
+    want = max(source.chunk_size, 4 * int(halo))
+    return int(max(leaf_frames, min(want, FEATURE_BUDGET // max(1, featurizer.n_features))))
 
 
 def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
@@ -668,9 +670,11 @@ def _run(passes, featurizer, source, executor, tasks, chunk_frames, single):
         plan = tasks
     else:
         raise InputError(f"tasks must be a TaskPlan from plan_tasks(), not {type(tasks).__name__}")
+    halo = max(p.halo(si) for p in passes for si in range(plan.n_segments)) \
+        if plan.n_segments else 0
     ctx = _Context(passes, featurizer, plan.topology, plan.leaf_frames, plan.n_states,
                    int(chunk_frames) if chunk_frames else
-                   _chunk_frames(source, featurizer, plan.leaf_frames))
+                   _chunk_frames(source, featurizer, plan.leaf_frames, halo))
     works = []
     for n, t in enumerate(plan.tasks):
         lay = plan.layouts[t.segment]
