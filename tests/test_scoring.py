@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy.stats import norm
 
-from cvdesign.score.univariate import Histograms, fisher_ratio, overlap_coefficient
+from cvdesign.score.univariate import Histograms, bin_counts, fisher_ratio, overlap_coefficient
 
 
 def test_fisher_ratio_two_states_closed_form():
@@ -87,3 +87,19 @@ def test_histograms_one_bincount_equals_per_state_masks_bit_for_bit(weighted):
     assert np.array_equal(h.counts, ref)
     assert h.counts.sum() == pytest.approx(11 * (300 if w is None else w.sum()))
     assert not h.counts[3].any()
+
+
+def test_bin_counts_of_few_rows_added_in_place_equal_one_bincount():
+    # fewer rows than bins: each row is added in place; the counts equal a bincount
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=(6, 300))
+    groups = np.array([1, 0, 1, 1, 2, 0])
+    low, high = np.full(300, -1.5), np.full(300, 1.5)
+    got = bin_counts(x, low, high, 40, groups, 3, block=64)
+    idx = np.clip(np.floor((x - low) / (high - low) * 40).astype(int), 0, 39)
+    want = np.zeros((3, 300, 40))
+    for r in range(6):
+        want[groups[r], np.arange(300), idx[r]] += 1
+    assert np.array_equal(got, want) and got.sum() == 6 * 300
+    again = bin_counts(x, low, high, 40, groups, 3, out=got.copy())
+    assert np.array_equal(again, 2 * want)

@@ -73,11 +73,15 @@ def histogram_range(low, high):
     return low, high
 
 
-def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=4096):
-    """Counts of every feature on fixed bins, per group of rows, in one ``bincount``.
+def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=4096, out=None):
+    """Counts of every feature on fixed bins, per group of rows, added into `out`.
 
     The bin of a value is ``floor((x - low) / (high - low) * n_bins)``, clipped to
-    ``[0, n_bins - 1]`` (values outside the range fall into the edge bins).
+    ``[0, n_bins - 1]`` (values outside the range fall into the edge bins). The
+    counts of a block of features come from one ``bincount`` over a combined
+    (group, feature, bin) index; with fewer rows than bins (the short leaves of
+    big pools) each row is added in place instead, which does not sweep the whole
+    array of counts once per block.
 
     Parameters
     ----------
@@ -92,11 +96,14 @@ def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=40
         Row weights (counts of 1 when None).
     block : int, default=4096
         Features binned at once (bounds the temporaries).
+    out : ndarray of shape (n_groups, n_features, n_bins), default=None
+        Counts to add to (C-contiguous float64); None: new zeros.
 
     Returns
     -------
     ndarray of shape (n_groups, n_features, n_bins), float64
-        Counts (weighted counts: each bin's weights added in row order).
+        `out` with the counts added (weighted counts: each block's bin sums in row
+        order, then added).
 
     Examples
     --------
@@ -107,26 +114,35 @@ def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=40
     x = np.asarray(x, dtype=np.float64)
     groups = np.asarray(groups, dtype=np.intp).reshape(-1)
     n_frames, n_feat = x.shape
-    nb = int(n_bins)
-    out = np.zeros((int(n_groups), n_feat, nb))
+    nb, n_groups = int(n_bins), int(n_groups)
+    if out is None:
+        out = np.zeros((n_groups, n_feat, nb))
     if n_frames == 0 or n_feat == 0:
         return out
     if weights is not None:
         weights = np.asarray(weights, dtype=np.float64).reshape(-1)
+    by_row = weights is None and n_frames < nb
+    flat = out.reshape(-1)
     for lo in range(0, n_feat, block):
         hi = min(n_feat, lo + block)
-        size = (hi - lo) * nb
         t = x[:, lo:hi] - low[lo:hi]
         t /= high[lo:hi] - low[lo:hi]
         t *= nb
         np.floor(t, out=t)
         b = t.astype(np.intp)
         np.clip(b, 0, nb - 1, out=b)
+        if by_row:  # a row holds each feature once: no repeated index within a row
+            b += np.arange(lo, hi) * nb
+            b += (groups * (n_feat * nb))[:, None]
+            for row in b:
+                flat[row] += 1.0
+            continue
+        size = (hi - lo) * nb
         b += np.arange(hi - lo) * nb             # feature offset
         b += (groups * size)[:, None]            # group offset
         w = None if weights is None else np.repeat(weights, hi - lo)
-        c = np.bincount(b.ravel(), weights=w, minlength=int(n_groups) * size)
-        out[:, lo:hi] = c.reshape(int(n_groups), hi - lo, nb)
+        c = np.bincount(b.ravel(), weights=w, minlength=n_groups * size)
+        out[:, lo:hi] += c.reshape(n_groups, hi - lo, nb)
     return out
 
 
@@ -161,8 +177,8 @@ class Histograms:
 
     def add(self, x, states, weights=None, *, block=4096):
         """Add frames `x` (n_frames, n_features) with state indices `states`."""
-        self.counts += bin_counts(x, self.low, self.high, self.n_bins, states,
-                                  self.counts.shape[0], weights, block=block)
+        bin_counts(x, self.low, self.high, self.n_bins, states, self.counts.shape[0], weights,
+                   block=block, out=self.counts)
 
     def merge(self, other):
         """Return the histograms of the union of two disjoint sets of frames."""
