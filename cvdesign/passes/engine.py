@@ -536,8 +536,9 @@ def _leaves(ctx, work):
         return [None if c[0] is None else np.concatenate(c) for c in zip(*parts)]
 
     def emit(upto, final):
+        """Yield the leaves whose windows end before frame `upto` (all when `final`), one
+        at a time: at most one copied window is alive."""
         nonlocal leaf, pieces
-        out = []
         while leaf < work.task.leaf_stop:
             a, b = max(lay.lo, leaf * L), min(lay.hi, (leaf + 1) * L)
             need = min(work.read_stop, b + work.halo)
@@ -545,16 +546,16 @@ def _leaves(ctx, work):
                 break
             win = window(a, need)
             n = 0 if win is None else int(np.searchsorted(win[0], b))
-            if n == 0:
-                out.append((leaf, None))
-            else:
-                out.append((leaf, Leaf(work.task.segment, leaf, lay, ctx.n_states, win[0],
-                                       win[1], np.ascontiguousarray(win[2]), win[3], win[4],
-                                       n)))
+            number = leaf
             leaf += 1
             nxt = max(lay.lo, leaf * L)
             pieces = [p for p in pieces if p[0][-1] >= nxt]
-        return out
+            if n == 0:
+                yield number, None
+            else:
+                yield number, Leaf(work.task.segment, number, lay, ctx.n_states, win[0],
+                                   win[1], np.ascontiguousarray(win[2]), win[3], win[4], n)
+            win = None
 
     def select(frames):
         return lay.states_of(frames) >= 0

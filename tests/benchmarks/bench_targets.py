@@ -407,19 +407,21 @@ class Bench:
 def section_memory(b):
     o = b.opts
     for kind, sizes in (("ca", o.sizes), ("heavy", o.heavy_sizes)):
-        for threads in (1, 2):
-            peaks = {}
-            for n in sizes:
-                dataset(o.cache, kind, n)
-                r = b.child("suggest", threads, repeat=1, kind=kind, frames=n,
-                            bootstrap=o.n_bootstrap)
-                peaks[n] = r["peak_mib"]
-            small = min(sizes)
-            for n in sizes:
-                if n != small:
-                    b.figure(f"memory: {kind} {n} / {small} frames per state", threads,
-                             peaks[n] / peaks[small], "<=", 1.2,
-                             f"{peaks[n]:.0f} / {peaks[small]:.0f} MiB")
+        for boot in (o.n_bootstrap, 0):
+            what = "default bootstrap" if boot else "no bootstrap"
+            for threads in (1, 2):
+                peaks = {}
+                for n in sizes:
+                    dataset(o.cache, kind, n)
+                    r = b.child("suggest", threads, repeat=1, kind=kind, frames=n,
+                                bootstrap=boot)
+                    peaks[n] = r["peak_mib"]
+                small = min(sizes)
+                for n in sizes:
+                    if n != small:
+                        b.figure(f"memory: {kind} {n} / {small} frames per state, {what}",
+                                 threads, peaks[n] / peaks[small], "<=", 1.2,
+                                 f"{peaks[n]:.0f} / {peaks[small]:.0f} MiB")
 
 
 def section_featurize(b):
