@@ -496,13 +496,14 @@ def test_folds_plan_by_trajectory_when_every_state_has_enough_files_else_by_bloc
 # ---------------------------------------------------------------------------- the reader
 @pytest.mark.filterwarnings("ignore:.*netCDF4:UserWarning")  # mdtraj: scipy's reader is used
 @pytest.mark.parametrize("suffix", [".xtc", ".dcd", ".trr", ".nc", ".pdb"])
-def test_raw_reader_returns_what_mdtraj_load_returns(tmp_path, suffix):
+@pytest.mark.parametrize("atoms", [[1, 3], [0, 1, 2, 3]])  # some atoms; every atom (whole frames)
+def test_raw_reader_returns_what_mdtraj_load_returns(tmp_path, suffix, atoms):
     rng = np.random.default_rng(5)
     xyz = rng.normal(2.0, 0.4, size=(11, 4, 3))
     path = _write(tmp_path / f"t{suffix}", xyz, box=np.tile([3.0, 3.5, 4.0], (11, 1)),
                   time=0.5 * np.arange(11))
     ref = md.load(path, top=_topology(4))
-    atoms = np.array([1, 3])
+    atoms = np.array(atoms)
     chunks = list(read_chunks(path, 2, 9, atoms, _topology(4), chunk_frames=3))
     assert np.concatenate([c.frames for c in chunks]).tolist() == list(range(2, 9))
     assert max(c.frames.size for c in chunks) <= 3

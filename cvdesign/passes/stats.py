@@ -108,7 +108,7 @@ def _take(x, rows):
 
 
 def _dot(a, b):
-    """Column sums of ``a * b`` without the product array (same order of additions)."""
+    """Column sums of ``a * b`` (2-D arrays) without forming the product array."""
     return np.einsum("ij,ij->j", a, b)
 
 
@@ -436,6 +436,7 @@ class LagGridPass(FeaturePass):
     def map(self, leaf):
         d = self.values(leaf.window_x) - self.shift
         out = {}
+        firsts = {}  # sums over the first frames, shared by the lags with the same ones
         for g, lag in enumerate(self.lags):
             i, j = leaf.pairs(lag)
             if i.size == 0:
@@ -443,8 +444,21 @@ class LagGridPass(FeaturePass):
             first = frame_keys(leaf.layout, leaf.frames[i])
             d0, dt = d[_slice(i)], d[_slice(j)]
             for (s,), rows in group_rows(first.states):
+                x0, xt = _take(d0, rows), _take(dt, rows)
+                key = (s, i[rows[0]], i[rows[-1]], rows.size)
+                if key not in firsts:  # (rows increasing: first, last and count fix them)
+                    firsts[key] = (x0.sum(axis=0), _dot(x0, x0))
+                sum_x, sum_xx = firsts[key]
                 m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
-                out[(g, leaf.segment, s, 0)] = m.add_shifted(_take(d0, rows), _take(dt, rows))
+                # what add_shifted(x0, xt) does, with the first frames' sums shared
+                m.count += float(rows.size)
+                m.n_pairs += int(rows.size)
+                m.sum_x += sum_x
+                m.sum_y += xt.sum(axis=0)
+                m.sum_xx += sum_xx
+                m.sum_xy += _dot(x0, xt)
+                m.sum_yy += _dot(xt, xt)
+                out[(g, leaf.segment, s, 0)] = m
         return out or None
 
     def merge(self, a, b):

@@ -579,8 +579,10 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
         counts[:, rest] = results[-1].counts
     if card is not None:
         for s, state_blocks in enumerate(card_sums.groups):
-            if state_blocks:  # integer counts: their sum is exact in any order
-                counts[s, card_feat] = np.sum([b["hist"] for b in state_blocks], axis=0)
+            hist = np.zeros((card_feat.size, N_BINS))
+            for b in state_blocks:  # integer counts: their sum is exact in any order
+                hist += b["hist"]
+            counts[s, card_feat] = hist
     overlap_desc = np.ones(len(pool))
     np.minimum.at(overlap_desc, pool.feature_descriptor, overlap_coefficient(counts))
     counts = np.zeros((folds.n_folds, source.n_states, len(fits), N_BINS))

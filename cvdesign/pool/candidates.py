@@ -316,9 +316,13 @@ def _strided_state_means(source, atoms, values, n_values, stride):
     counts = np.zeros(source.n_states)
 
     def add(traj, rows, s):
-        sub = traj[rows]
+        sub = md.Trajectory(traj.xyz[rows], None)  # coordinates only: no topology copy
+        periodic = traj.unitcell_vectors is not None
+        if periodic:  # lengths and angles, as traj[rows] keeps them
+            sub.unitcell_lengths = traj.unitcell_lengths[rows]
+            sub.unitcell_angles = traj.unitcell_angles[rows]
         counts[s] += sub.n_frames
-        sums[s] += values(sub, traj.unitcell_vectors is not None).sum(axis=0, dtype=np.float64)
+        sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
 
     if stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
                           for seg in source.segments):

@@ -133,13 +133,15 @@ def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=40
         np.clip(b, 0, nb - 1, out=b)
         if by_row:  # a row holds each feature once: no repeated index within a row
             b += np.arange(lo, hi) * nb
-            b += (groups * (n_feat * nb))[:, None]
+            if groups.any():
+                b += (groups * (n_feat * nb))[:, None]
             for row in b:
                 flat[row] += 1.0
             continue
         size = (hi - lo) * nb
         b += np.arange(hi - lo) * nb             # feature offset
-        b += (groups * size)[:, None]            # group offset
+        if groups.any():
+            b += (groups * size)[:, None]        # group offset
         w = None if weights is None else np.repeat(weights, hi - lo)
         c = np.bincount(b.ravel(), weights=w, minlength=n_groups * size)
         out[:, lo:hi] += c.reshape(n_groups, hi - lo, nb)

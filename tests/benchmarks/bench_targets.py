@@ -161,20 +161,21 @@ def child_user(args):
 
 
 def child_floor(args):
-    """The floor of a streaming pass: read the pool's atoms (mdtraj's file object), its
-    features (``mdtraj.compute_distances``) and one ``X.T @ X`` and column sum per state, in
-    chunks of 1000 frames."""
+    """The floor of a streaming pass: read the pool's atoms (mdtraj's file object; whole
+    frames when they are every atom), its features (``mdtraj.compute_distances``) and one
+    ``X.T @ X`` and column sum per state, in chunks of 1000 frames."""
     top, files = dataset(args["cache"], args["kind"], args["frames"])
     pairs = np.load(args["pairs"])
     atoms = np.unique(pairs)
     local = np.searchsorted(atoms, pairs)
+    every = atoms.size == md.load_topology(str(top)).n_atoms  # then read whole frames
     t0 = time.perf_counter()
     for path in files.values():
         p = len(local)
         s1, s2 = np.zeros(p), np.zeros((p, p))
         with md.open(str(path)) as fh:
             while True:
-                xyz = fh.read(1000, atom_indices=atoms)[0]
+                xyz = fh.read(1000, atom_indices=None if every else atoms)[0]
                 if len(xyz) == 0:
                     break
                 x = md.compute_distances(md.Trajectory(xyz / 10.0, None), local,
