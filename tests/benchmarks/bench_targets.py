@@ -4,6 +4,7 @@ Run by hand (not collected by pytest; nothing is asserted, it prints)::
 
     python tests/benchmarks/bench_targets.py [--cache DIR] [--only NAMES]
         [--sizes 1000,10000,100000,1000000] [--heavy-sizes 1000,100000] [--repeat 3]
+        [--out figures.json]
 
 Data: adenylate kinase (214 residues, 3341 atoms) from the MDAnalysis test suite (package
 ``mdanalysistests``; the DIMS closed-to-open transition of Beckstein et al., J. Mol. Biol.
@@ -20,26 +21,30 @@ Figures (the targets of issue 10 in brackets). Each case runs with 1 BLAS thread
 minimum of ``--repeat`` runs; every ``suggest`` and user-script case runs in a fresh
 subprocess, whose peak resident memory (``ru_maxrss``) is reported:
 
-* ``memory``: peak memory of ``suggest`` (default options, bootstrap included) on CA atoms
-  at each of ``--sizes`` frames per state, and of the default heavy-atom pool at
-  ``--heavy-sizes``; ratio to the smallest size [at most 1.2];
-* ``featurize``: the pool's features (``Pool.features``) against
+* ``memory``: peak memory of ``suggest`` on CA atoms at each of ``--sizes`` frames per
+  state (default options, and without bootstrap), and of the default heavy-atom pool at
+  ``--heavy-sizes`` (default options only); ratio to the smallest size [at most 1.2];
+* ``featurize``: the pool's features (``Pool.features``, per kind) against
   ``mdtraj.compute_distances`` / ``compute_angles`` / ``compute_dihedrals`` on the same
-  atoms and frames in memory, and reading + featurizing through the pass engine against
+  atoms and frames in memory, in the engine's read chunks; and reading + featurizing every
+  frame through the pass engine (a pass that keeps nothing) against
   ``mdtraj.load(atom_indices=...)`` + the same calls [at most 1.3];
 * ``stats``: per-leaf statistics of the passes (full moments, lagged moments, diagonal
-  moments, histograms, the score card's block sums) over a feature matrix against one
+  moments, histograms, the score card's block sums, the integrated-time lag grid) over
+  an in-memory matrix of ``--stats-frames`` rows (200 and 1802 features) against one
   ``X.T @ X`` or one column sum of the same matrix [at most 1.5];
-* ``floor``: ``suggest`` without bootstrap against the floor: reading the pool's atoms,
-  its features and one ``X.T @ X`` per state, streamed in chunks [at most 2];
+* ``floor``: ``suggest`` without bootstrap against the floor of a streaming pass: reading
+  the pool's atoms, its features (``mdtraj.compute_distances``) and one ``X.T @ X`` per
+  state, in chunks [at most 2];
 * ``bootstrap``: the default bootstrap's extra time against the rest of ``suggest``
   [at most 1];
-* ``workers``: ``suggest`` without bootstrap and the screening pass alone with 2 local
-  worker processes against 1 [at least 1.7x faster];
+* ``workers``: ``suggest`` without bootstrap with 2 local worker processes against the
+  serial run, and the screening pass alone with 2 processes against 1 (started
+  beforehand) [at least 1.7x faster];
 * ``user``: what a user would otherwise write (``mdtraj.load`` of every frame, the full
-  matrix of the pool's features, scikit-learn's ``LinearDiscriminantAnalysis``) against
-  ``suggest`` without bootstrap and with the default one: time and peak memory [suggest
-  at least 3x faster and 10x less memory].
+  matrix of the pool's features -- the pairs ``suggest`` keeps -- and scikit-learn's
+  ``LinearDiscriminantAnalysis``) against ``suggest`` without bootstrap and with the
+  default one: time and peak memory [suggest at least 3x faster and 10x less memory].
 
 ``floor``, ``bootstrap``, ``workers`` and ``user`` use the CA series at ``--main-size``
 frames per state (default 10^5).
@@ -224,7 +229,7 @@ def child_workers(args):
 def child_featurize(args):
     """Featurization against mdtraj on the same atoms and frames: in memory per kind, and
     reading + featurizing through the pass engine against mdtraj.load + compute_*."""
-    from cvdesign.passes import PoolFeaturizer, run_pass
+    from cvdesign.passes import FEATURE_BUDGET, PoolFeaturizer, run_pass
     from cvdesign.pool import build_pool
 
     out = {}
@@ -241,11 +246,15 @@ def child_featurize(args):
             sub = pool.subset(idx)
             atoms = sub.atom_indices()
             traj = md.load(path, top=str(top), atom_indices=atoms)
+            # in the engine's read chunks (FEATURE_BUDGET feature values each)
+            step = max(1, FEATURE_BUDGET // sub.n_features)
+            chunks = [md.Trajectory(traj.xyz[a:a + step], None)
+                      for a in range(0, traj.n_frames, step)]
             tuples = np.searchsorted(atoms, np.array([d.atoms for d in sub.descriptors]))
             fn = {"distance": md.compute_distances, "angle": md.compute_angles,
                   "dihedral": md.compute_dihedrals}[pkind]
-            base = _best(lambda: fn(traj, tuples, periodic=False), repeat)
-            ours = _best(lambda: sub.features(traj, atom_indices=atoms), repeat)
+            base = _best(lambda: [fn(c, tuples, periodic=False) for c in chunks], repeat)
+            ours = _best(lambda: [sub.features(c, atom_indices=atoms) for c in chunks], repeat)
             out[f"{kind}:{pkind}"] = {"base": base, "ours": ours, "n": len(idx),
                                       "frames": traj.n_frames}
         # reading + featurizing every frame of both states, the whole pool
@@ -408,7 +417,9 @@ class Bench:
 def section_memory(b):
     o = b.opts
     for kind, sizes in (("ca", o.sizes), ("heavy", o.heavy_sizes)):
-        for boot in (o.n_bootstrap, 0):
+        # (the heavy-atom pool with the default options only: a run at 10^5 frames per
+        # state takes about half an hour)
+        for boot in (o.n_bootstrap, 0) if kind == "ca" else (o.n_bootstrap,):
             what = "default bootstrap" if boot else "no bootstrap"
             for threads in (1, 2):
                 peaks = {}
