@@ -19,8 +19,8 @@ from cvdesign import InputError, Source
 from cvdesign.parallel import ProcessExecutor
 from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, FoldMomentsPass, Folds,
                              HistogramPass, LaggedPass, LagGridPass, PoolFeaturizer,
-                             ScreeningPass, Task, TreeReducer, frame_keys, plan_tasks,
-                             reference_features, run_pass)
+                             ScreeningPass, Task, TreeReducer, frame_keys, group_rows,
+                             plan_tasks, reference_features, run_pass)
 from cvdesign.passes.keys import SegmentLayout
 from cvdesign.passes.read import read_chunks
 from cvdesign.pool import build_pool
@@ -443,6 +443,22 @@ def test_tree_root_is_the_fixed_balanced_merge_whatever_the_split_and_order(n, s
             root.add(*nodes[i])
     # a power-of-two-aligned tree: the left part of any node is a full power of two
     assert root.done and root.root == _canonical(0, n)
+
+
+@settings(max_examples=80, deadline=None, derandomize=True, database=None)
+@given(st.integers(0, 40), st.integers(1, 3), st.integers(0, 2**31 - 1))
+def test_group_rows_gives_each_key_tuple_in_order_with_its_rows(n, n_keys, seed):
+    # reference by plain Python: distinct key tuples sorted, each with its rows in order
+    rng = np.random.default_rng(seed)
+    keys = [rng.integers(-3, int(rng.integers(1, 6)), n) for _ in range(n_keys)]
+    if n and rng.random() < 0.3:
+        keys = [np.full(n, int(k[0])) for k in keys]  # one group
+    want = {}
+    for r in range(n):
+        want.setdefault(tuple(int(k[r]) for k in keys), []).append(r)
+    got = group_rows(*keys)
+    assert [key for key, _ in got] == sorted(want)
+    assert all(rows.tolist() == want[key] for key, rows in got)
 
 
 def test_tree_refuses_a_node_given_twice():
