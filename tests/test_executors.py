@@ -14,8 +14,8 @@ from cvdesign import InputError, Source
 from cvdesign.errors import SchedulerUnreachableError, WorkerLostError
 from cvdesign.parallel import DaskExecutor, ProcessExecutor, SerialExecutor, as_executor
 from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, Featurizer,
-                             FoldMomentsPass, Folds, HistogramPass, LaggedPass, PoolFeaturizer,
-                             ScreeningPass, leaf_frames_for, plan_tasks, reference_features,
+                             FoldMomentsPass, Folds, HistogramPass, LaggedPass, LagGridPass,
+                             PoolFeaturizer, ScreeningPass, leaf_frames_for, plan_tasks, reference_features,
                              run_pass)
 from cvdesign.pool import build_pool
 
@@ -67,7 +67,8 @@ def _passes(src):
                             center=shift[cols], sums=block_sums),
                   CardPass(featurizer, center=shift[cols], low=np.full(cols.size, -1.0),
                            high=np.full(cols.size, 2.0), n_bins=20, block_frames=40, lags=lags,
-                           run_means={(0, 0): shift[cols] + 0.1}, columns=cols))
+                           run_means={(0, 0): shift[cols] + 0.1}, columns=cols),
+                  LagGridPass(featurizer, (1, 3, 7), shift=shift[cols], columns=cols))
 
 
 def _leftover_contexts():

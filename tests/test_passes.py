@@ -18,8 +18,9 @@ from hypothesis import strategies as st
 from cvdesign import InputError, Source
 from cvdesign.parallel import ProcessExecutor
 from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, FoldMomentsPass, Folds,
-                             HistogramPass, LaggedPass, PoolFeaturizer, ScreeningPass, Task,
-                             TreeReducer, frame_keys, plan_tasks, reference_features, run_pass)
+                             HistogramPass, LaggedPass, LagGridPass, PoolFeaturizer,
+                             ScreeningPass, Task, TreeReducer, frame_keys, group_rows,
+                             plan_tasks, reference_features, run_pass)
 from cvdesign.passes.keys import SegmentLayout
 from cvdesign.passes.read import read_chunks
 from cvdesign.pool import build_pool
@@ -30,6 +31,7 @@ SETTINGS = settings(max_examples=30, deadline=None, derandomize=True, database=N
 ATOMS = np.array([0, 2])
 N_BINS = 7
 CARD_COLUMNS = [5, 0, 3]  # the score card's sums on some features, in another order
+GRID = (1, 2, 4)  # lags of the LagGridPass (every segment)
 
 
 def _topology(n_atoms=3):
@@ -144,7 +146,8 @@ def _passes(sc, src, featurizer, shift):
             BlockPass(featurizer, folds=folds, block_frames=sc["block"], lags=sc["lags"],
                       pairs_within_block=sc["within_block"], sums=_block_sums,
                       center=shift, scale=np.full(6, 2.0)),
-            _card_pass(sc, featurizer, shift))
+            _card_pass(sc, featurizer, shift),
+            LagGridPass(featurizer, GRID, shift=shift[[2, 5]], columns=[2, 5]))
 
 
 # ---------------------------------------------------------------------------- direct reference
@@ -209,7 +212,7 @@ def _close(a, b):
 
 
 def _check_direct(sc, src, loaded, results, shift):
-    screen, fold_m, lagged, lagged_diag, hist, blocks, card = results
+    screen, fold_m, lagged, lagged_diag, hist, blocks, card, grid = results
     folds = _folds(sc, src)
     data = _direct_frames(sc, src, loaded)
     n_states = src.n_states
@@ -296,6 +299,20 @@ def _check_direct(sc, src, loaded, results, shift):
             x0, xt = ((np.array(v) - shift) / 2.0 for v in zip(*pairs))
             _close(lm.sum_xy, x0.T @ xt)
     _check_card(sc, src, data, card, shift)
+    # the lag grid: per run, at every lag, diagonal sums of the pairs (columns 2, 5)
+    for g, lag in enumerate(GRID):
+        want = {}
+        for si, (frames, codes, x) in enumerate(data):
+            for t, u in _direct_pairs(frames, codes, lag):
+                want.setdefault((si, int(codes[t]), 0), []).append((x[t], x[u]))
+        assert grid[g].diagonal and set(grid[g].runs) == set(want)
+        for key, pairs in want.items():
+            m = grid[g].runs[key]
+            x0, xt = (np.array(v)[:, [2, 5]] - shift[[2, 5]] for v in zip(*pairs))
+            assert m.n_pairs == len(pairs) and m.lag == lag
+            _close(m.sum_x, x0.sum(axis=0))
+            _close(m.sum_yy, (xt * xt).sum(axis=0))
+            _close(m.sum_xy, (x0 * xt).sum(axis=0))
 
 
 def _check_card(sc, src, data, card, shift):
@@ -349,6 +366,22 @@ def test_any_task_split_chunk_size_and_arrival_order_gives_identical_results(
                          executor=shuffled_executor(sc["seed"] + 3), chunk_frames=sc["chunk"])
         assert_same(reference, other)
         _check_direct(sc, src, loaded, reference, shift)
+
+
+@settings(max_examples=10, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(sc=scenarios())
+def test_lag_grid_pass_gives_the_bytes_of_one_diagonal_lagged_pass_per_lag(sc, assert_same):
+    featurizer = CoordinateFeaturizer(ATOMS)
+    with tempfile.TemporaryDirectory() as tmp:
+        src, _ = _build(sc, tmp)
+        plan = plan_tasks(src, leaf_frames=sc["leaf"])
+        shift = reference_features(plan, featurizer)
+        grid = LagGridPass(featurizer, GRID, shift=shift, center=shift, scale=np.full(6, 3.0))
+        one = [LaggedPass(featurizer, lag, shift=shift, diagonal=True, center=shift,
+                          scale=np.full(6, 3.0)) for lag in GRID]
+        results = run_pass((grid, *one), src, tasks=plan, chunk_frames=sc["chunk"])
+        assert_same(results[0], list(results[1:]))
 
 
 @pytest.fixture(scope="module")
@@ -412,6 +445,22 @@ def test_tree_root_is_the_fixed_balanced_merge_whatever_the_split_and_order(n, s
     assert root.done and root.root == _canonical(0, n)
 
 
+@settings(max_examples=80, deadline=None, derandomize=True, database=None)
+@given(st.integers(0, 40), st.integers(1, 3), st.integers(0, 2**31 - 1))
+def test_group_rows_gives_each_key_tuple_in_order_with_its_rows(n, n_keys, seed):
+    # reference by plain Python: distinct key tuples sorted, each with its rows in order
+    rng = np.random.default_rng(seed)
+    keys = [rng.integers(-3, int(rng.integers(1, 6)), n) for _ in range(n_keys)]
+    if n and rng.random() < 0.3:
+        keys = [np.full(n, int(k[0])) for k in keys]  # one group
+    want = {}
+    for r in range(n):
+        want.setdefault(tuple(int(k[r]) for k in keys), []).append(r)
+    got = group_rows(*keys)
+    assert [key for key, _ in got] == sorted(want)
+    assert all(rows.tolist() == want[key] for key, rows in got)
+
+
 def test_tree_refuses_a_node_given_twice():
     tree = TreeReducer(4, lambda a, b: a + b)
     tree.add(0, 0, 1)
@@ -463,13 +512,14 @@ def test_folds_plan_by_trajectory_when_every_state_has_enough_files_else_by_bloc
 # ---------------------------------------------------------------------------- the reader
 @pytest.mark.filterwarnings("ignore:.*netCDF4:UserWarning")  # mdtraj: scipy's reader is used
 @pytest.mark.parametrize("suffix", [".xtc", ".dcd", ".trr", ".nc", ".pdb"])
-def test_raw_reader_returns_what_mdtraj_load_returns(tmp_path, suffix):
+@pytest.mark.parametrize("atoms", [[1, 3], [0, 1, 2, 3]])  # some atoms; every atom (whole frames)
+def test_raw_reader_returns_what_mdtraj_load_returns(tmp_path, suffix, atoms):
     rng = np.random.default_rng(5)
     xyz = rng.normal(2.0, 0.4, size=(11, 4, 3))
     path = _write(tmp_path / f"t{suffix}", xyz, box=np.tile([3.0, 3.5, 4.0], (11, 1)),
                   time=0.5 * np.arange(11))
     ref = md.load(path, top=_topology(4))
-    atoms = np.array([1, 3])
+    atoms = np.array(atoms)
     chunks = list(read_chunks(path, 2, 9, atoms, _topology(4), chunk_frames=3))
     assert np.concatenate([c.frames for c in chunks]).tolist() == list(range(2, 9))
     assert max(c.frames.size for c in chunks) <= 3

@@ -187,6 +187,36 @@ def test_frame_ranges_longer_than_the_stride_are_subsampled_on_their_own_frames(
     assert note.endswith("4 frames)")
 
 
+@pytest.mark.parametrize("chunk_size", [500, 30])
+def test_prefilter_strided_read_gives_the_bytes_of_reading_every_frame(demo_files, demo_pairs,
+                                                                        chunk_size):
+    # whole files and a frame range starting on the stride are read every 10th frame; the
+    # same frames given through label arrays are read in full and subsampled: the state
+    # means must be identical, bit for bit
+    from cvdesign.pool.candidates import _strided_state_means
+
+    top, states = demo_files
+    f, g = states["closed"][0], states["open"][0]
+    n_f, n_g = md.load(f, top=top).n_frames, md.load(g, top=top).n_frames
+    strided = Source(top, chunk_size=chunk_size).add(f, "closed").add(g, "open",
+                                                                      frames=(20, 1500))
+    labels = [None] * 20 + ["open"] * 1480 + [None] * (n_g - 1500)
+    full = Source(top, chunk_size=chunk_size).add_labelled(f, ["closed"] * n_f) \
+        .add_labelled(g, labels)
+    atoms = np.unique(demo_pairs)
+    local = np.searchsorted(atoms, demo_pairs)
+
+    def values(sub, periodic):
+        return md.compute_distances(sub, local, periodic=periodic)
+
+    a, n_a = _strided_state_means(strided, atoms, values, len(local), 10)
+    b, n_b = _strided_state_means(full, atoms, values, len(local), 10)
+    assert n_a == n_b == n_f // 10 + 148
+    assert np.array_equal(a, b)
+    np.testing.assert_allclose(a[1], _numpy_distances(g, top, demo_pairs)[20:1500:10].mean(0),
+                               rtol=1e-6)
+
+
 # ---------------------------------------------------------------- 2. minimum image, real box
 @pytest.fixture(scope="module")
 def adk_solvated(mda_data):

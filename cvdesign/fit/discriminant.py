@@ -12,6 +12,8 @@ never have to be held in memory.
 
 import numpy as np
 import scipy.linalg
+from scipy.linalg.lapack import dpotrf as _dpotrf
+from scipy.linalg.lapack import dpotrs as _dpotrs
 from sklearn.base import BaseEstimator, ClassNamePrefixFeaturesOutMixin, TransformerMixin
 from sklearn.utils.multiclass import unique_labels
 from sklearn.utils.validation import check_is_fitted, validate_data
@@ -76,32 +78,59 @@ def _regularize(within, shrinkage):
     target = np.trace(within) / p
     if not np.isfinite(target) or target <= 0:
         target = 1.0
-    return (1.0 - shrinkage) * within + shrinkage * target * np.eye(p)
+    out = (1.0 - shrinkage) * within
+    out[np.diag_indices(p)] += shrinkage * target  # + shrinkage * target * I
+    return out
+
+
+def _cholesky(matrix):
+    """Upper Cholesky factor (LAPACK ``dpotrf``, as ``scipy.linalg.cho_factor``), with the
+    ridge fallback: when `matrix` is not positive definite it is shrunk by 1e-10 toward
+    ``(tr / p) I`` first (the same fallback as LDA's).
+
+    The LAPACK routines are called directly: the searches solve tens of thousands of
+    small systems, where scipy's wrappers cost more than the arithmetic.
+    """
+    matrix = np.asarray(matrix, dtype=np.float64)
+    if not np.isfinite(matrix).all():
+        raise ValueError("array must not contain infs or NaNs")
+    c, info = _dpotrf(matrix, lower=0, clean=0)
+    if info > 0:
+        c, info = _dpotrf(_regularize(matrix, 1e-10), lower=0, clean=0)
+        if info > 0:
+            raise np.linalg.LinAlgError(f"{info}-th leading minor of the array is not "
+                                        "positive definite")
+    if info < 0:
+        raise ValueError(f"illegal value in argument {-info} of LAPACK potrf")
+    return c
+
+
+def _cho_solve(factor, rhs):
+    rhs = np.asarray(rhs, dtype=np.float64)
+    if not np.isfinite(rhs).all():
+        raise ValueError("array must not contain infs or NaNs")
+    x, info = _dpotrs(factor, rhs, lower=0)
+    if info != 0:
+        raise ValueError(f"illegal value in argument {-info} of LAPACK potrs")
+    return x
 
 
 def _spd_inverse(matrix):
-    """Inverse of a symmetric positive definite matrix; a ridge if it is singular.
-
-    When the Cholesky factorization fails, ``matrix`` is shrunk by 1e-10
-    toward ``(tr / p) I`` first (the same fallback as LDA's).
-    """
+    """Inverse of a symmetric positive definite matrix; a ridge if it is singular
+    (see :func:`_cholesky`)."""
     p = matrix.shape[0]
-    try:
-        factor = scipy.linalg.cho_factor(matrix)
-    except np.linalg.LinAlgError:
-        factor = scipy.linalg.cho_factor(_regularize(matrix, 1e-10))
-    inv = scipy.linalg.cho_solve(factor, np.eye(p))
+    if p == 0:
+        return np.zeros((0, 0))
+    inv = _cho_solve(_cholesky(matrix), np.eye(p))
     return 0.5 * (inv + inv.T)
 
 
 def _spd_solve(matrix, rhs):
     """Solve ``matrix x = rhs`` for a symmetric positive definite matrix (Cholesky),
     with the same ridge fallback as :func:`_spd_inverse` when it is singular."""
-    try:
-        factor = scipy.linalg.cho_factor(matrix)
-    except np.linalg.LinAlgError:
-        factor = scipy.linalg.cho_factor(_regularize(matrix, 1e-10))
-    return scipy.linalg.cho_solve(factor, rhs)
+    if np.shape(matrix)[0] == 0:
+        return np.zeros(np.shape(rhs))
+    return _cho_solve(_cholesky(matrix), rhs)
 
 
 def two_state_direction(means, covariances, priors, *, shrinkage=0.0, within="arithmetic"):

@@ -13,7 +13,7 @@ from .engine import (FEATURE_BUDGET, LEAF_FRAMES, CoordinateFeaturizer, Featuriz
                      plan_tasks, reference_features, run_pass, run_task)
 from .keys import MIN_FRAMES_PER_FOLD, Folds, FrameKeys, SegmentLayout, frame_keys
 from .stats import (BlockPass, CardPass, CardSums, FeaturePass, FoldMomentsPass, HistogramPass,
-                    LaggedPass, LaggedResult, ScreeningPass, ScreeningResult, group_rows,
+                    LagGridPass, LaggedPass, LaggedResult, ScreeningPass, ScreeningResult, group_rows,
                     merge_keyed)
 from .tree import TreeReducer, merge_optional
 
@@ -22,6 +22,6 @@ __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "leaf_frames_for", "run_pass", "run_task", "first_frame", "reference_features",
            "SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD",
            "FeaturePass", "group_rows", "ScreeningPass", "ScreeningResult", "FoldMomentsPass",
-           "LaggedPass", "LaggedResult",
+           "LaggedPass", "LaggedResult", "LagGridPass",
            "HistogramPass", "BlockPass", "CardPass", "CardSums", "merge_keyed", "TreeReducer",
            "merge_optional"]

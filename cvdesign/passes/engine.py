@@ -521,44 +521,52 @@ class _Work:
 
 
 def _leaves(ctx, work):
-    """Yield the task's leaves, reading in chunks and keeping only what the next leaves need."""
+    """Yield the task's leaves, reading in chunks and keeping only what the next leaves need.
+
+    A leaf's rows (and halo) are a view of the chunk that holds them; only a window
+    that spans two chunks is copied.
+    """
     lay, L = work.layout, ctx.leaf_frames
-    pieces = []          # (frames, states, x, time, box) of rows not yet consumed
+    pieces = []          # (frames, states, x, time, box) of each chunk still needed
     leaf = work.task.leaf_start
 
+    def window(lo, hi):
+        """Columns of the rows with frames in [lo, hi), or None when there are none."""
+        parts = []
+        for piece in pieces:
+            fr = piece[0]
+            if fr[-1] < lo:
+                continue
+            if fr[0] >= hi:
+                break
+            a, b = np.searchsorted(fr, [lo, hi])
+            if b > a:
+                parts.append([None if c is None else c[a:b] for c in piece])
+        if len(parts) <= 1:
+            return parts[0] if parts else None
+        return [None if c[0] is None else np.concatenate(c) for c in zip(*parts)]
+
     def emit(upto, final):
+        """Yield the leaves whose windows end before frame `upto` (all when `final`), one
+        at a time: at most one copied window is alive."""
         nonlocal leaf, pieces
-        if not pieces:
-            buf = None
-        else:
-            cols = list(zip(*pieces))
-            buf = [np.concatenate(c) if c[0] is not None else None for c in cols]
-            pieces = [tuple(buf)]
-        out = []
         while leaf < work.task.leaf_stop:
             a, b = max(lay.lo, leaf * L), min(lay.hi, (leaf + 1) * L)
             need = min(work.read_stop, b + work.halo)
             if not final and need > upto:
                 break
-            if buf is None:
-                out.append((leaf, None))
-            else:
-                fr = buf[0]
-                lo, n_end, w_end = np.searchsorted(fr, [a, b, need])
-                if n_end == lo:
-                    out.append((leaf, None))
-                else:
-                    win = [None if c is None else c[lo:w_end] for c in buf]
-                    out.append((leaf, Leaf(work.task.segment, leaf, lay, ctx.n_states, win[0],
-                                           win[1], np.ascontiguousarray(win[2]), win[3],
-                                           win[4], int(n_end - lo))))
+            win = window(a, need)
+            n = 0 if win is None else int(np.searchsorted(win[0], b))
+            number = leaf
             leaf += 1
             nxt = max(lay.lo, leaf * L)
-            if buf is not None:
-                keep = int(np.searchsorted(buf[0], nxt))
-                buf = [None if c is None else c[keep:] for c in buf]
-                pieces = [tuple(buf)]
-        return out
+            pieces = [p for p in pieces if p[0][-1] >= nxt]
+            if n == 0:
+                yield number, None
+            else:
+                yield number, Leaf(work.task.segment, number, lay, ctx.n_states, win[0],
+                                   win[1], np.ascontiguousarray(win[2]), win[3], win[4], n)
+            win = None
 
     def select(frames):
         return lay.states_of(frames) >= 0
@@ -603,9 +611,11 @@ def run_task(ctx, work):
 
 
 # --------------------------------------------------------------------------- running a pass
-def _chunk_frames(source, featurizer, leaf_frames):
-    return int(max(leaf_frames, min(source.chunk_size,
-                                    FEATURE_BUDGET // max(1, featurizer.n_features))))
+def _chunk_frames(source, featurizer, leaf_frames, halo=0):
+    """Frames per read: the source's chunk size, longer with a long halo (so that a leaf's
+    window rarely spans two chunks and needs a copy), within :data:`FEATURE_BUDGET`."""
+    want = max(source.chunk_size, 4 * int(halo))
+    return int(max(leaf_frames, min(want, FEATURE_BUDGET // max(1, featurizer.n_features))))
 
 
 def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
@@ -665,9 +675,11 @@ def _run(passes, featurizer, source, executor, tasks, chunk_frames, single):
         plan = tasks
     else:
         raise InputError(f"tasks must be a TaskPlan from plan_tasks(), not {type(tasks).__name__}")
+    halo = max(p.halo(si) for p in passes for si in range(plan.n_segments)) \
+        if plan.n_segments else 0
     ctx = _Context(passes, featurizer, plan.topology, plan.leaf_frames, plan.n_states,
                    int(chunk_frames) if chunk_frames else
-                   _chunk_frames(source, featurizer, plan.leaf_frames))
+                   _chunk_frames(source, featurizer, plan.leaf_frames, halo))
     works = []
     for n, t in enumerate(plan.tasks):
         lay = plan.layouts[t.segment]

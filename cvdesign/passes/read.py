@@ -15,7 +15,7 @@ from mdtraj.formats import (DCDTrajectoryFile, NetCDFTrajectoryFile, TRRTrajecto
 from mdtraj.utils import in_units_of
 
 from ..errors import InputError
-from ..io.source import check_box, check_finite, quiet_stdout, stores_time
+from ..io.source import check_box, check_finite, every_atom, quiet_stdout, stores_time
 
 __all__ = ["file_frames", "read_chunks", "RawChunk"]
 
@@ -164,6 +164,7 @@ def read_chunks(path, start, stop, atom_indices, topology, *, chunk_frames=500, 
         file that ends before `stop`, or a read error (naming the file).
     """
     atoms = np.asarray(atom_indices, dtype=np.intp)
+    read_atoms = None if every_atom(atoms, topology) else atoms  # whole frames: faster
     timed = stores_time(path)
     chunk_frames = max(1, int(chunk_frames))
     expected = int(start)
@@ -173,8 +174,8 @@ def read_chunks(path, start, stop, atom_indices, topology, *, chunk_frames=500, 
         try:
             layout = next((f for cls, f in _RAW if isinstance(fh, cls)), None)
             if layout is not None:
-                chunks = _raw_chunks(fh, layout, int(start), int(stop), atoms, chunk_frames,
-                                     timed)
+                chunks = _raw_chunks(fh, layout, int(start), int(stop), read_atoms,
+                                     chunk_frames, timed)
             else:
                 fh.close()
                 fh = None

@@ -12,6 +12,7 @@ Each returns the objects the rest of cvdesign works with
 * :class:`FoldMomentsPass` -- per-(state, fold) full moments of some features;
 * :class:`LaggedPass` -- lagged moments per run (segment, state, fold), merged
   per fold, per (state, fold) or per run on demand;
+* :class:`LagGridPass` -- the same, diagonal, at every lag of a grid (one read);
 * :class:`HistogramPass` -- per-state histograms on fixed bins (exact counts);
 * :class:`BlockPass` -- per-(state, fold, segment, bootstrap block) moments,
   lagged moments and additive sums, for the block bootstrap;
@@ -28,15 +29,15 @@ import numpy as np
 
 from ..geometry import box_heights
 from ..score.card import CARD_LAG_FIELDS
-from ..score.univariate import Histograms
+from ..score.univariate import Histograms, bin_counts, histogram_range
 from ..stats.bootstrap import ArraySum
 from ..stats.moments import DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments, merge_all
 from .engine import Pass, _lag_halo
 from .keys import frame_keys
 
 __all__ = ["FeaturePass", "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass",
-           "LaggedResult", "HistogramPass", "BlockPass", "CardPass", "CardSums", "merge_keyed",
-           "group_rows"]
+           "LaggedResult", "LagGridPass", "HistogramPass", "BlockPass", "CardPass", "CardSums",
+           "merge_keyed", "group_rows"]
 
 
 def _merge_value(a, b):
@@ -76,15 +77,39 @@ def group_rows(*keys):
     >>> [(k, r.tolist()) for k, r in group_rows(np.array([1, 0, 1]), np.array([2, 2, 2]))]
     [((0, 2), [1]), ((1, 2), [0, 2])]
     """
-    if keys[0].size == 0:
+    keys = [np.asarray(k, dtype=np.int64).reshape(-1) for k in keys]
+    n = keys[0].size
+    if n == 0:
         return []
-    stacked = np.stack([np.asarray(k, dtype=np.int64) for k in keys], axis=1)
-    uniq, inverse = np.unique(stacked, axis=0, return_inverse=True)
+    if all(k[0] == k[-1] and (k == k[0]).all() for k in keys):  # one group (the usual leaf)
+        return [(tuple(int(k[0]) for k in keys), np.arange(n))]
+    # one code per row, ordered as the key tuples (lexicographic), from per-key ranks
+    code = np.zeros(n, dtype=np.int64)
+    for k in keys:
+        values, inverse = np.unique(k, return_inverse=True)
+        code = code * values.size + inverse.reshape(-1)
+    uniq, inverse = np.unique(code, return_inverse=True)
     inverse = inverse.reshape(-1)
     order = np.argsort(inverse, kind="stable")
-    bounds = np.cumsum(np.bincount(inverse, minlength=uniq.shape[0]))[:-1]
-    return [(tuple(int(v) for v in u), rows)
-            for u, rows in zip(uniq, np.split(order, bounds))]
+    bounds = np.cumsum(np.bincount(inverse, minlength=uniq.size))[:-1]
+    return [(tuple(int(k[rows[0]]) for k in keys), rows) for rows in np.split(order, bounds)]
+
+
+def _slice(rows):
+    """Increasing row indices as a slice when they are consecutive (a view, not a copy)."""
+    if rows.size and int(rows[-1]) - int(rows[0]) + 1 == rows.size:
+        return slice(int(rows[0]), int(rows[-1]) + 1)
+    return rows
+
+
+def _take(x, rows):
+    """``x[rows]`` for increasing row indices, a view when they are consecutive."""
+    return x[_slice(rows)]
+
+
+def _dot(a, b):
+    """Column sums of ``a * b`` (2-D arrays) without forming the product array."""
+    return np.einsum("ij,ij->j", a, b)
 
 
 def _lag_of(lags, segment):
@@ -121,6 +146,9 @@ class FeaturePass(Pass):
     def __init__(self, featurizer, *, columns=None, center=None, scale=None):
         self.featurizer = featurizer
         self.columns = None if columns is None else np.asarray(columns, dtype=np.intp)
+        if self.columns is not None and np.array_equal(self.columns,
+                                                       np.arange(featurizer.n_features)):
+            self.columns = None  # every feature in order: no copy
         n = featurizer.n_features if self.columns is None else self.columns.size
         self.n_features = int(n)
         self.center = None if center is None else np.asarray(center, dtype=np.float64)
@@ -194,15 +222,15 @@ class ScreeningPass(FeaturePass):
         lag = _lag_of(self.lags, leaf.segment)
         if lag is not None:
             i, j = leaf.pairs(lag)
-            xt = self.values(leaf.window_x[j])
+            xt = self.values(leaf.window_x[_slice(j)])
         for (s,), rows in group_rows(states):
-            diag[s] = DiagonalMoments.from_data(x[rows])
+            diag[s] = DiagonalMoments.from_data(_take(x, rows))
             counts[(leaf.segment, s)] = int(rows.size)
             if lag is not None:
-                sel = states[i] == s
-                if sel.any():
+                sel = np.flatnonzero(states[i] == s)
+                if sel.size:
                     m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
-                    lagged[(leaf.segment, s)] = m.add_pairs(x[i[sel]], xt[sel])
+                    lagged[(leaf.segment, s)] = m.add_pairs(_take(x, i[sel]), _take(xt, sel))
         box = leaf.box
         min_box = None if box is None else float(box_heights(box.astype(np.float64)).min())
         return {"diag": diag, "counts": counts, "lagged": lagged, "min_box": min_box}
@@ -246,7 +274,8 @@ class FoldMomentsPass(FeaturePass):
     def map(self, leaf):
         x = self.values(leaf.x)
         keys = frame_keys(leaf.layout, leaf.frames, folds=self.folds)
-        return {key: Moments.from_data(x[rows]) for key, rows in group_rows(keys.states, keys.fold)}
+        return {key: Moments.from_data(_take(x, rows))
+                for key, rows in group_rows(keys.states, keys.fold)}
 
     def merge(self, a, b):
         return merge_keyed(a, b)
@@ -354,13 +383,13 @@ class LaggedPass(FeaturePass):
             keep = first.fold == second.fold
             i, j = i[keep], j[keep]
             first = frame_keys(leaf.layout, leaf.frames[i], folds=self.folds)
-        x0 = self.values(leaf.x[i])
-        xt = self.values(leaf.window_x[j])
+        x0 = self.values(leaf.x[_slice(i)])
+        xt = self.values(leaf.window_x[_slice(j)])
         cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
         out = {}
         for (s, k), rows in group_rows(first.states, first.fold):
             m = cls(self.n_features, shift=self.shift, lag=lag)
-            out[(leaf.segment, s, k)] = m.add_pairs(x0[rows], xt[rows])
+            out[(leaf.segment, s, k)] = m.add_pairs(_take(x0, rows), _take(xt, rows))
         return out
 
     def merge(self, a, b):
@@ -370,6 +399,77 @@ class LaggedPass(FeaturePass):
         return LaggedResult(dict(sorted((partial or {}).items())), plan.n_states,
                             1 if self.folds is None else self.folds.n_folds, self.n_features,
                             self.shift, self.diagonal)
+
+
+class LagGridPass(FeaturePass):
+    """Diagonal lagged moments per run (segment, state) at every lag of a grid, in one pass.
+
+    The result equals, byte for byte, one diagonal :class:`LaggedPass` per lag
+    (no folds), but a leaf's features are shifted once for all the lags, and
+    each lag's pairs are views of them.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    lags : sequence of int
+        Lags in frames (the same for every segment), e.g. the grid of
+        :func:`cvdesign.pipeline.timing.iat_lags`.
+    shift : array-like of shape (n_features,), default=None
+        Fixed shift of the sums; zeros when None.
+    columns, center, scale : optional
+
+    Returns a list of :class:`LaggedResult` (one per lag, ``diagonal`` true) from
+    :func:`~cvdesign.passes.run_pass`.
+    """
+
+    def __init__(self, featurizer, lags, *, shift=None, columns=None, center=None, scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.lags = [int(v) for v in lags]
+        if not self.lags or min(self.lags) < 1:
+            raise ValueError(f"lags={lags!r} must be lags of at least one frame")
+        self.shift = np.zeros(self.n_features) if shift is None else \
+            np.asarray(shift, dtype=np.float64)
+
+    def halo(self, segment_index):
+        return max(self.lags)
+
+    def map(self, leaf):
+        d = self.values(leaf.window_x) - self.shift
+        out = {}
+        firsts = {}  # sums over the first frames, shared by the lags with the same ones
+        for g, lag in enumerate(self.lags):
+            i, j = leaf.pairs(lag)
+            if i.size == 0:
+                continue
+            first = frame_keys(leaf.layout, leaf.frames[i])
+            d0, dt = d[_slice(i)], d[_slice(j)]
+            for (s,), rows in group_rows(first.states):
+                x0, xt = _take(d0, rows), _take(dt, rows)
+                key = (s, i[rows[0]], i[rows[-1]], rows.size)
+                if key not in firsts:  # (rows increasing: first, last and count fix them)
+                    firsts[key] = (x0.sum(axis=0), _dot(x0, x0))
+                sum_x, sum_xx = firsts[key]
+                m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
+                # what add_shifted(x0, xt) does, with the first frames' sums shared
+                m.count += float(rows.size)
+                m.n_pairs += int(rows.size)
+                m.sum_x += sum_x
+                m.sum_y += xt.sum(axis=0)
+                m.sum_xx += sum_xx
+                m.sum_xy += _dot(x0, xt)
+                m.sum_yy += _dot(xt, xt)
+                out[(g, leaf.segment, s, 0)] = m
+        return out or None
+
+    def merge(self, a, b):
+        return merge_keyed(a, b)
+
+    def finish(self, partial, plan):
+        runs = [{} for _ in self.lags]
+        for (g, si, s, k), m in sorted((partial or {}).items()):
+            runs[g][(si, s, k)] = m
+        return [LaggedResult(r, plan.n_states, 1, self.n_features, self.shift, True)
+                for r in runs]
 
 
 class HistogramPass(FeaturePass):
@@ -477,10 +577,11 @@ class BlockPass(FeaturePass):
         out = {}
         for (s, k, b), rows in group_rows(keys.states, keys.fold, keys.block):
             key = (s, k, si, b)
-            m = Moments.from_data(x[rows]) if self.moments else None
+            xr = _take(x, rows)
+            m = Moments.from_data(xr) if self.moments else None
             extra = None
             if self.sums is not None:
-                extra = ArraySum(**self.sums(x[rows], key))
+                extra = ArraySum(**self.sums(xr, key))
             out[key] = (m, None, extra)
         lag = _lag_of(self.lags, si)
         if lag is not None:
@@ -492,11 +593,11 @@ class BlockPass(FeaturePass):
             if self.pairs_within_block:
                 keep &= first.block == second.block
             i, j = i[keep], j[keep]
-            x0, xt = x[i], self.values(leaf.window_x[j])
+            x0, xt = x[_slice(i)], self.values(leaf.window_x[_slice(j)])
             for (s, k, b), rows in group_rows(first.states[keep], first.fold[keep],
                                            first.block[keep]):
                 m = LaggedMoments(self.n_features, shift=self.lag_shift)
-                m.add_pairs(x0[rows], xt[rows])
+                m.add_pairs(_take(x0, rows), _take(xt, rows))
                 a, _, c = out[(s, k, si, b)]
                 out[(s, k, si, b)] = (a, m, c)
         return out
@@ -565,7 +666,12 @@ class CardPass(FeaturePass):
 
     def __init__(self, featurizer, *, center, low, high, n_bins, block_frames, lags=None,
                  run_means=None, columns=None):
-        super().__init__(featurizer, columns=columns)
+        # the columns are read in increasing order (a cheaper gather, none at all for every
+        # feature) and the sums put back in the given order by finish (exact)
+        order = None if columns is None else np.argsort(np.asarray(columns, dtype=np.intp),
+                                                        kind="stable")
+        super().__init__(featurizer, columns=None if columns is None else
+                         np.asarray(columns, dtype=np.intp)[order])
         self.shift = np.asarray(center, dtype=np.float64)  # (FeaturePass.center standardizes)
         self.low = np.asarray(low, dtype=np.float64)
         self.high = np.asarray(high, dtype=np.float64)
@@ -573,52 +679,54 @@ class CardPass(FeaturePass):
         self.block_frames = None if block_frames is None else int(block_frames)
         self.lags = lags
         self.run_means = {} if run_means is None else dict(run_means)
+        self._order = order
+        sort = (lambda v: v) if order is None else (lambda v: np.asarray(v)[order])
+        self._shift = sort(self.shift)
+        self._low, self._high = histogram_range(sort(self.low), sort(self.high))
+        self._means = {k: sort(np.asarray(v, dtype=np.float64))
+                       for k, v in self.run_means.items()}
 
     def halo(self, segment_index):
         return _lag_halo(self.lags, segment_index)
-
-    def _empty(self):
-        n = self.n_features
-        fields = {"n": np.zeros(()), "s1": np.zeros(n), "s2": np.zeros(n),
-                  "hist": np.zeros((n, self.n_bins))}
-        if self.lags is not None:
-            fields.update({f: np.zeros(()) if f == "n_pairs" else np.zeros(n)
-                           for f in CARD_LAG_FIELDS})
-        return fields
 
     def map(self, leaf):
         x = self.values(leaf.x)
         si = leaf.segment
         keys = frame_keys(leaf.layout, leaf.frames, block_frames=self.block_frames)
+        groups = group_rows(keys.states, keys.block)
+        code = np.empty(x.shape[0], dtype=np.intp)
+        for g, (_, rows) in enumerate(groups):
+            code[rows] = g
+        # every row binned once, one count per (block, feature, bin)
+        hist = bin_counts(x, self._low, self._high, self.n_bins, code, len(groups))
         out = {}
-        for (s, b), rows in group_rows(keys.states, keys.block):
-            acc = self._empty()
-            d = x[rows] - self.shift
-            acc["n"] += rows.size
-            acc["s1"] += d.sum(axis=0)
-            acc["s2"] += (d * d).sum(axis=0)
-            h = Histograms(self.low, self.high, n_states=1, n_bins=self.n_bins)
-            h.add(x[rows], np.zeros(rows.size, dtype=np.intp))
-            acc["hist"] += h.counts[0]
+        for g, ((s, b), rows) in enumerate(groups):
+            d = _take(x, rows) - self._shift
+            acc = {"n": float(rows.size), "s1": d.sum(axis=0), "s2": _dot(d, d),
+                   "hist": hist[g]}
+            if self.lags is not None:
+                acc.update({f: 0.0 if f == "n_pairs" else np.zeros(self.n_features)
+                            for f in CARD_LAG_FIELDS})
             out[(s, si, b)] = acc
         lag = _lag_of(self.lags, si)
         if lag is not None:
             i, j = leaf.pairs(lag)
             first = frame_keys(leaf.layout, leaf.frames[i], block_frames=self.block_frames)
-            xi, yi = x[i], self.values(leaf.window_x[j])
+            xi, yi = x[_slice(i)], self.values(leaf.window_x[_slice(j)])
             for (s, b), rows in group_rows(first.states, first.block):
-                mean = self.run_means.get((si, s), self.shift)
-                p, q = xi[rows] - self.shift, yi[rows] - self.shift
-                u, v = xi[rows] - mean, yi[rows] - mean
+                mean = self._means.get((si, s), self._shift)
+                xr, yr = _take(xi, rows), _take(yi, rows)
+                p, q = xr - self._shift, yr - self._shift
+                u, v = xr - mean, yr - mean
                 acc = out[(s, si, b)]
-                acc["n_pairs"] += rows.size
-                acc["sx"] += p.sum(axis=0)
-                acc["sy"] += q.sum(axis=0)
-                acc["sxx"] += (p * p).sum(axis=0)
-                acc["sxy"] += (p * q).sum(axis=0)
-                acc["syy"] += (q * q).sum(axis=0)
-                acc["l0"] += 0.5 * (u * u + v * v).sum(axis=0)
-                acc["lt"] += (u * v).sum(axis=0)
+                acc["n_pairs"] = float(rows.size)
+                acc["sx"] = p.sum(axis=0)
+                acc["sy"] = q.sum(axis=0)
+                acc["sxx"] = _dot(p, p)
+                acc["sxy"] = _dot(p, q)
+                acc["syy"] = _dot(q, q)
+                acc["l0"] = 0.5 * (_dot(u, u) + _dot(v, v))
+                acc["lt"] = _dot(u, v)
         return {key: ArraySum(**acc) for key, acc in out.items()}
 
     def merge(self, a, b):
@@ -626,6 +734,10 @@ class CardPass(FeaturePass):
 
     def finish(self, partial, plan):
         groups = [[] for _ in range(plan.n_states)]
+        back = None if self._order is None else np.argsort(self._order)
         for (s, _, _), block in sorted((partial or {}).items()):
+            if back is not None:  # the given column order
+                block = ArraySum(**{k: v if v.ndim == 0 else v[back]
+                                    for k, v in block.arrays.items()})
             groups[s].append(block)
         return CardSums(groups, self.lags is not None)

@@ -237,7 +237,7 @@ class Suggestions:
         head = ["rank", "spec", "held-out J", "overlap", "autocorr.", "timescale (ps)",
                 "descriptors (weight [95 % CI], selection)"]
         out = ['<div class="cvdesign-suggestions">',
-               f"<p><strong>cvdesign suggestions</strong>: states "
+               "<p><strong>cvdesign suggestions</strong>: states "
                + ", ".join(f"<code>{esc(str(s))}</code>" for s in self.states)
                + f"; objective <code>{esc(self.objective)}</code>{esc(lag)}{esc(pool)}; "
                f"{len(self.ranking)} ranked CVs (top {shown} shown).</p>",

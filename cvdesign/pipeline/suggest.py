@@ -35,8 +35,9 @@ from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
 from ..io.source import Source
 from ..kinds import DEFAULT_KINDS
-from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LaggedPass,
-                      PoolFeaturizer, ScreeningPass, plan_tasks, reference_features, run_pass)
+from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
+                      LaggedPass, PoolFeaturizer, ScreeningPass, plan_tasks, reference_features,
+                      run_pass)
 from ..pool import build_pool
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
@@ -409,7 +410,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     uniform = len({None if v is None else round(v, 9) for v in steps.values()}) == 1
     grid = iat_lags(seg_counts) if uniform else None
     if grid is not None:
-        passes += [LaggedPass(feats, int(L), shift=shift, diagonal=True) for L in grid]
+        passes.append(LagGridPass(feats, grid, shift=shift))
     results = run_pass(tuple(passes), source, executor=executor,
                        tasks=_plan_for(base, feats.n_features, executor))
     fold_m = results[0]
@@ -437,7 +438,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
         return fm, iat_desc, notes
     # within runs: each (file, state) series about its own mean
     n = feats.n_features
-    rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-len(grid):]])
+    rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-1]])
     tau, decayed, window = integrated_time(grid, rho_grid, dt, return_window=True)
     tau_lo, tau_hi = integrated_time_interval(tau, window, int(seg_counts.sum()))
     for gi, i in enumerate(screening.screened):
@@ -538,7 +539,6 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     where = {int(i): p for p, i in enumerate(local)}
     cols = screening.features[local]
     every = PoolFeaturizer(pool)
-    hist = HistogramPass(every, screening.low, screening.high, n_bins=N_BINS)
     if config.n_bootstrap:
         bf = block_frames(seg_counts, [iat_desc.get(screened[g]) for g in short.members],
                           steps, lags)
@@ -550,18 +550,33 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
                        lags=lags if config.n_bootstrap else None, pairs_within_block=True,
                        sums=_CVHistograms(_cv_plans(fits, fm, where), N_BINS), columns=cols,
                        center=screening.center[cols], scale=screening.scale[cols])
-    passes = [hist, blocks]
-    notes, card_desc, card_feat = [], [], np.zeros(0, dtype=np.intp)
+    passes = [blocks]
+    notes, card, card_desc, card_feat = [], None, [], np.zeros(0, dtype=np.intp)
     if config.n_bootstrap:
         card, card_desc, card_feat, note = _card_pass(every, pool, screening, seg_counts,
                                                       iat_desc, steps, lags, first)
         passes.append(card)
         notes.append(note)
+    # histograms of every feature: the score card's blocks hold those of its features (the
+    # same bins), so only the others are binned again
+    rest = np.setdiff1d(np.arange(pool.n_features), card_feat)
+    if rest.size:
+        passes.append(HistogramPass(every, screening.low[rest], screening.high[rest],
+                                    n_bins=N_BINS, columns=rest))
     results = run_pass(tuple(passes), source, executor=executor,
                        tasks=_plan_for(base, every.n_features, executor))
-    histograms, block_sums = results[0], results[1]
+    block_sums, card_sums = results[0], results[1] if card is not None else None
+    counts = np.zeros((source.n_states, pool.n_features, N_BINS))
+    if rest.size:
+        counts[:, rest] = results[-1].counts
+    if card is not None:
+        for s, state_blocks in enumerate(card_sums.groups):
+            hist = np.zeros((card_feat.size, N_BINS))
+            for b in state_blocks:  # integer counts: their sum is exact in any order
+                hist += b["hist"]
+            counts[s, card_feat] = hist
     overlap_desc = np.ones(len(pool))
-    np.minimum.at(overlap_desc, pool.feature_descriptor, overlap_coefficient(histograms.counts))
+    np.minimum.at(overlap_desc, pool.feature_descriptor, overlap_coefficient(counts))
     counts = np.zeros((folds.n_folds, source.n_states, len(fits), N_BINS))
     for (s, k), blist in block_sums.items():
         for b in blist:
@@ -571,7 +586,7 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     desc = (f"{bf} frames" if bf else "whole runs (or their pieces in each fold)") + \
         f" ({n_blocks} blocks)"
     return HeldOut(overlap=overlap, overlap_desc=overlap_desc, blocks=block_sums, where=where,
-                   block_desc=desc, card=results[2] if config.n_bootstrap else None,
+                   block_desc=desc, card=card_sums,
                    card_desc=card_desc, card_feat=card_feat, notes=notes)
 
 

@@ -314,21 +314,36 @@ def _strided_state_means(source, atoms, values, n_values, stride):
     """
     sums = np.zeros((source.n_states, n_values))
     counts = np.zeros(source.n_states)
-    seen = {}
-    for chunk in source.iter_chunks(atom_indices=atoms):
-        traj = chunk.trajectory
+
+    def add(traj, rows, s):
+        sub = md.Trajectory(traj.xyz[rows], None)  # coordinates only: no topology copy
         periodic = traj.unitcell_vectors is not None
-        for s in np.unique(chunk.states):
-            rows = np.flatnonzero(chunk.states == s)
-            key = (chunk.segment_index, int(s))
-            rank = seen.get(key, 0) + np.arange(rows.size)
-            seen[key] = seen.get(key, 0) + rows.size
-            rows = rows[rank % stride == 0]
-            if rows.size == 0:
-                continue
-            sub = traj[rows]
-            counts[s] += sub.n_frames
-            sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
+        if periodic:  # lengths and angles, as traj[rows] keeps them
+            sub.unitcell_lengths = traj.unitcell_lengths[rows]
+            sub.unitcell_angles = traj.unitcell_angles[rows]
+        counts[s] += sub.n_frames
+        sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
+
+    if stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
+                          for seg in source.segments):
+        # every state's own frames are every stride-th frame of its files: read only those,
+        # summed in the groups of a full read (file frames [k c, (k + 1) c), c the chunk
+        # size), so the means are the same bytes as below
+        for chunk in source.iter_chunks(atom_indices=atoms, stride=stride):
+            group = chunk.frames // source.chunk_size
+            for g in np.unique(group):
+                add(chunk.trajectory, np.flatnonzero(group == g), int(chunk.states[0]))
+    else:
+        seen = {}
+        for chunk in source.iter_chunks(atom_indices=atoms):
+            for s in np.unique(chunk.states):
+                rows = np.flatnonzero(chunk.states == s)
+                key = (chunk.segment_index, int(s))
+                rank = seen.get(key, 0) + np.arange(rows.size)
+                seen[key] = seen.get(key, 0) + rows.size
+                rows = rows[rank % stride == 0]
+                if rows.size:
+                    add(chunk.trajectory, rows, int(s))
     empty = [source.states[s] for s in range(source.n_states) if counts[s] == 0]
     if empty:
         raise InputError(

@@ -24,6 +24,18 @@ __all__ = ["Pool"]
 _NUMBERS_PER_BLOCK = 2_000_000
 
 
+def _columns(cols):
+    """Column indices as a slice when they are evenly spaced and increasing (a strided
+    write instead of a scatter), else the index array."""
+    cols = np.asarray(cols, dtype=np.intp)
+    if cols.size == 1:
+        return slice(int(cols[0]), int(cols[0]) + 1)
+    step = int(cols[1] - cols[0]) if cols.size > 1 else 0
+    if step > 0 and np.all(np.diff(cols) == step):
+        return slice(int(cols[0]), int(cols[-1]) + 1, step)
+    return cols
+
+
 class Pool:
     """An ordered set of descriptors and the features they contribute.
 
@@ -81,6 +93,11 @@ class Pool:
                        .reshape(-1, KINDS[kind].n_atoms) for kind, idx in self._index.items()
                        if kind not in GROUP_KINDS}
         self._masses = {}  # atom index -> dalton, for mass centers
+        # columns of each kind's features (first and, for dihedrals, second of each
+        # descriptor), as slices where they are evenly spaced
+        self._cols = {kind: (_columns(self._first[idx]), _columns(self._first[idx] + 1))
+                      for kind, idx in self._index.items() if idx}
+        self._local = None  # (atom_indices bytes, {kind: atoms as rows of the chunk})
 
     def __len__(self):
         return len(self.descriptors)
@@ -143,38 +160,49 @@ class Pool:
         """
         n = trajectory.n_frames
         out = np.empty((n, self.n_features), dtype=np.float64)
+        remap = None
         if atom_indices is not None:
+            atom_indices = np.asarray(atom_indices, dtype=np.intp)
             remap = np.full(int(np.max(atom_indices)) + 1, -1, dtype=np.intp)
-            remap[np.asarray(atom_indices, dtype=np.intp)] = np.arange(len(atom_indices))
+            remap[atom_indices] = np.arange(len(atom_indices))
+        local_atoms = self._local_atoms(atom_indices, remap)
         periodic = trajectory.unitcell_vectors is not None
-        col = np.zeros(len(self.descriptors), dtype=np.intp)
-        first_feature = np.searchsorted(self.feature_descriptor, np.arange(len(self.descriptors)))
-        col[:] = first_feature
         for kind, idx in self._index.items():
             if not idx:
                 continue
+            cols, second = self._cols[kind]
             if kind in GROUP_KINDS:
-                local = (lambda a: a) if atom_indices is None else (lambda a: remap[a])
-                out[:, col[idx]] = self._group_features(kind, idx, trajectory, local)
+                local = (lambda a: a) if remap is None else (lambda a: remap[a])
+                out[:, cols] = self._group_features(kind, idx, trajectory, local)
                 continue
-            atoms = self._atoms[kind]
-            if atom_indices is not None:
-                atoms = remap[atoms]
-                if np.any(atoms < 0):
-                    raise InputError("the trajectory chunk lacks atoms that the pool uses")
+            atoms = local_atoms[kind]
             if kind == "distance":
-                vals = md.compute_distances(trajectory, atoms, periodic=periodic)
-                out[:, col[idx]] = vals
+                out[:, cols] = md.compute_distances(trajectory, atoms, periodic=periodic)
             elif kind == "angle":
-                vals = md.compute_angles(trajectory, atoms, periodic=periodic)
-                out[:, col[idx]] = vals
+                out[:, cols] = md.compute_angles(trajectory, atoms, periodic=periodic)
             else:
                 vals = md.compute_dihedrals(trajectory, atoms, periodic=periodic)
                 vals = vals.astype(np.float64)
-                out[:, col[idx]] = np.cos(vals)
-                out[:, col[idx] + 1] = np.sin(vals)
+                out[:, cols] = np.cos(vals)
+                out[:, second] = np.sin(vals)
         return out
 
+    def _local_atoms(self, atom_indices, remap):
+        """Atoms of each atom kind as rows of a chunk holding `atom_indices` (cached for
+        the last `atom_indices`: a featurizer asks with the same ones every chunk)."""
+        key = None if atom_indices is None else atom_indices.tobytes()
+        cached = self._local
+        if cached is not None and cached[0] == key:
+            return cached[1]
+        out = {}
+        for kind, atoms in self._atoms.items():
+            if remap is not None and atoms.size:
+                atoms = remap[atoms]
+                if np.any(atoms < 0):
+                    raise InputError("the trajectory chunk lacks atoms that the pool uses")
+            out[kind] = atoms
+        self._local = (key, out)
+        return out
 
     def group_masses(self, group):
         """Masses of a group's atoms, dalton (mdtraj's element table), or None when an atom

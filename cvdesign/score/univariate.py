@@ -19,7 +19,8 @@ import itertools
 
 import numpy as np
 
-__all__ = ["fisher_ratio", "Histograms", "overlap_coefficient"]
+__all__ = ["fisher_ratio", "Histograms", "bin_counts", "histogram_range",
+           "overlap_coefficient"]
 
 
 def fisher_ratio(means, variances, priors=None):
@@ -57,6 +58,96 @@ def fisher_ratio(means, variances, priors=None):
     return out
 
 
+def histogram_range(low, high):
+    """Copies of `low` and `high` (float64), with ``high = low + 1`` where ``high <= low``.
+
+    Examples
+    --------
+    >>> [a.tolist() for a in histogram_range([0.0, 2.0], [1.0, 2.0])]
+    [[0.0, 2.0], [1.0, 3.0]]
+    """
+    low = np.array(low, dtype=np.float64, copy=True)
+    high = np.array(high, dtype=np.float64, copy=True)
+    flat = ~(high > low)
+    high[flat] = low[flat] + 1.0
+    return low, high
+
+
+def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=4096, out=None):
+    """Counts of every feature on fixed bins, per group of rows, added into `out`.
+
+    The bin of a value is ``floor((x - low) / (high - low) * n_bins)``, clipped to
+    ``[0, n_bins - 1]`` (values outside the range fall into the edge bins). The
+    counts of a block of features come from one ``bincount`` over a combined
+    (group, feature, bin) index; with fewer rows than bins (the short leaves of
+    big pools) each row is added in place instead, which does not sweep the whole
+    array of counts once per block.
+
+    Parameters
+    ----------
+    x : array-like of shape (n_frames, n_features)
+    low, high : ndarray of shape (n_features,)
+        Range of each feature (``high > low``).
+    n_bins : int
+    groups : array-like of int, shape (n_frames,)
+        Group of each row (a state code, a block number), in ``[0, n_groups)``.
+    n_groups : int
+    weights : array-like of shape (n_frames,), default=None
+        Row weights (counts of 1 when None).
+    block : int, default=4096
+        Features binned at once (bounds the temporaries).
+    out : ndarray of shape (n_groups, n_features, n_bins), default=None
+        Counts to add to (C-contiguous float64); None: new zeros.
+
+    Returns
+    -------
+    ndarray of shape (n_groups, n_features, n_bins), float64
+        `out` with the counts added (weighted counts: each block's bin sums in row
+        order, then added).
+
+    Examples
+    --------
+    >>> bin_counts(np.array([[0.1], [0.9], [0.2]]), np.array([0.0]), np.array([1.0]), 2,
+    ...            [0, 1, 1], 2).tolist()
+    [[[1.0, 0.0]], [[1.0, 1.0]]]
+    """
+    x = np.asarray(x, dtype=np.float64)
+    groups = np.asarray(groups, dtype=np.intp).reshape(-1)
+    n_frames, n_feat = x.shape
+    nb, n_groups = int(n_bins), int(n_groups)
+    if out is None:
+        out = np.zeros((n_groups, n_feat, nb))
+    if n_frames == 0 or n_feat == 0:
+        return out
+    if weights is not None:
+        weights = np.asarray(weights, dtype=np.float64).reshape(-1)
+    by_row = weights is None and n_frames < nb
+    flat = out.reshape(-1)
+    for lo in range(0, n_feat, block):
+        hi = min(n_feat, lo + block)
+        t = x[:, lo:hi] - low[lo:hi]
+        t /= high[lo:hi] - low[lo:hi]
+        t *= nb
+        np.floor(t, out=t)
+        b = t.astype(np.intp)
+        np.clip(b, 0, nb - 1, out=b)
+        if by_row:  # a row holds each feature once: no repeated index within a row
+            b += np.arange(lo, hi) * nb
+            if groups.any():
+                b += (groups * (n_feat * nb))[:, None]
+            for row in b:
+                flat[row] += 1.0
+            continue
+        size = (hi - lo) * nb
+        b += np.arange(hi - lo) * nb             # feature offset
+        if groups.any():
+            b += (groups * size)[:, None]        # group offset
+        w = None if weights is None else np.repeat(weights, hi - lo)
+        c = np.bincount(b.ravel(), weights=w, minlength=n_groups * size)
+        out[:, lo:hi] += c.reshape(n_groups, hi - lo, nb)
+    return out
+
+
 class Histograms:
     """Mergeable per-state histograms of many features on fixed bins.
 
@@ -82,30 +173,14 @@ class Histograms:
     """
 
     def __init__(self, low, high, *, n_states, n_bins=50):
-        self.low = np.asarray(low, dtype=np.float64).copy()
-        self.high = np.asarray(high, dtype=np.float64).copy()
-        flat = ~(self.high > self.low)
-        self.high[flat] = self.low[flat] + 1.0
+        self.low, self.high = histogram_range(low, high)
         self.n_bins = int(n_bins)
         self.counts = np.zeros((int(n_states), self.low.shape[0], self.n_bins))
 
     def add(self, x, states, weights=None, *, block=4096):
         """Add frames `x` (n_frames, n_features) with state indices `states`."""
-        x = np.asarray(x, dtype=np.float64)
-        states = np.asarray(states)
-        n_feat = x.shape[1]
-        nb = self.n_bins
-        for lo in range(0, n_feat, block):
-            hi = min(n_feat, lo + block)
-            width = self.high[lo:hi] - self.low[lo:hi]
-            b = np.floor((x[:, lo:hi] - self.low[lo:hi]) / width * nb).astype(np.intp)
-            np.clip(b, 0, nb - 1, out=b)
-            b += np.arange(hi - lo) * nb
-            for s in np.unique(states):
-                rows = states == s
-                w = None if weights is None else np.repeat(weights[rows], hi - lo)
-                c = np.bincount(b[rows].ravel(), weights=w, minlength=(hi - lo) * nb)
-                self.counts[s, lo:hi] += c.reshape(hi - lo, nb)
+        bin_counts(x, self.low, self.high, self.n_bins, states, self.counts.shape[0], weights,
+                   block=block, out=self.counts)
 
     def merge(self, other):
         """Return the histograms of the union of two disjoint sets of frames."""

@@ -108,6 +108,9 @@ def standardize_lagged(m, center, scale):
 
 def state_arrays(moments, idx):
     """Per-state means (n_states, k) and covariances (n_states, k, k) of features `idx`."""
+    idx = np.asarray(idx, dtype=np.intp)
     means = np.array([m.mean[idx] for m in moments])
-    covs = np.array([m.covariance[np.ix_(idx, idx)] for m in moments])
+    # the subset of each covariance (scatter / count), without dividing the whole matrix
+    covs = np.array([m.scatter[idx[:, None], idx] / m.count if m.count else
+                     np.full((idx.size, idx.size), np.nan) for m in moments])
     return means, covs

@@ -20,6 +20,7 @@ Two kinds are provided:
 """
 
 import numpy as np
+from scipy.linalg.blas import dger as _dger
 
 __all__ = [
     "Moments",
@@ -40,6 +41,11 @@ def _as_2d(x, n_features, name="x"):
     if n_features is not None and x.shape[1] != n_features:
         raise ValueError(f"{name} has {x.shape[1]} features; these moments hold {n_features}")
     return x
+
+
+def _column_dot(a, b):
+    """Column sums of ``a * b`` (2-D arrays) without forming the product array."""
+    return np.einsum("ij,ij->j", a, b)
 
 
 def _weights(w, n):
@@ -142,7 +148,7 @@ class Moments:
         """
         m, delta, cross = _merge_start(self, other)
         if delta is not None:
-            m.scatter = self.scatter + other.scatter + np.outer(delta, delta) * cross
+            m.scatter = _rank_one_update(self.scatter + other.scatter, cross, delta)
         return m
 
     def update(self, x, weights=None):
@@ -219,7 +225,8 @@ class DiagonalMoments:
         if w is None:
             m.count = float(x.shape[0])
             m.mean = x.mean(axis=0)
-            m.m2 = ((x - m.mean) ** 2).sum(axis=0)
+            d = x - m.mean
+            m.m2 = _column_dot(d, d)
         else:
             total = w.sum()
             if total == 0:
@@ -255,6 +262,19 @@ class DiagonalMoments:
         if self.count == 0:
             return np.full_like(self.m2, np.nan)
         return self.m2 / self.count
+
+
+def _rank_one_update(a, alpha, x):
+    """``a + alpha x x^T`` in place (BLAS ``dger`` on the new array `a`), returned.
+
+    One pass over `a` and no temporary matrix; the result equals
+    ``a + np.outer(x, x) * alpha`` up to the last bits.
+    """
+    if a.flags.c_contiguous and a.dtype == np.float64 and a.size:
+        # a.T is Fortran-ordered, as BLAS wants; x x^T is symmetric, so updating a.T
+        # updates a
+        return _dger(float(alpha), x, x, a=a.T, overwrite_a=1).T
+    return a + np.outer(x, x) * alpha
 
 
 def _merge_start(a, b):
@@ -409,17 +429,28 @@ class _LaggedBase:
         w = _weights(weights, x0.shape[0])
         if x0.shape[0] == 0:
             return self
-        d0 = x0 - self.shift
-        dt = xt - self.shift
+        return self.add_shifted(x0 - self.shift, xt - self.shift, w)
+
+    def add_shifted(self, d0, dt, weights=None):
+        """:meth:`add_pairs` for pairs already shifted: ``d0 = x0 - shift``, ``dt = xt - shift``.
+
+        No checks: `d0` and `dt` are float64 arrays of shape (n_pairs, n_features)
+        and `weights` None or checked. For passes that shift a leaf once and take
+        several sets of pairs from it; the same bytes as :meth:`add_pairs` on the
+        unshifted pairs. Returns self.
+        """
+        w = weights
+        if d0.shape[0] == 0:
+            return self
         if w is None:
-            self.count += float(x0.shape[0])
+            self.count += float(d0.shape[0])
             self.sum_x += d0.sum(axis=0)
             self.sum_y += dt.sum(axis=0)
         else:
             self.count += float(w.sum())
             self.sum_x += w @ d0
             self.sum_y += w @ dt
-        self.n_pairs += int(x0.shape[0])
+        self.n_pairs += int(d0.shape[0])
         sxx, sxy, syy = self._products(d0, dt, w)
         self.sum_xx += sxx
         self.sum_xy += sxy
@@ -698,7 +729,7 @@ class DiagonalLaggedMoments(_LaggedBase):
     @staticmethod
     def _products(d0, dt, w):
         if w is None:
-            return (d0 * d0).sum(axis=0), (d0 * dt).sum(axis=0), (dt * dt).sum(axis=0)
+            return _column_dot(d0, d0), _column_dot(d0, dt), _column_dot(dt, dt)
         return w @ (d0 * d0), w @ (d0 * dt), w @ (dt * dt)
 
     def subset(self, index):
