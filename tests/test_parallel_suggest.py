@@ -38,6 +38,7 @@ def test_two_local_processes_write_the_bytes_of_the_serial_run(demo_files, seria
                                                               tmp_path):
     got = _files(suggest(_source(demo_files), executor=2, **SETTINGS), tmp_path / "o")
     assert got.keys() == serial_files.keys() and len(got) >= 5
+    assert "report-data.json" in got  # the report's histograms, traces and timescales too
     assert got == serial_files
 
 
