@@ -199,7 +199,7 @@ class Suggestions:
                  f"{'overlap':>7}  {'autocorr':>8}  descriptors"]
         for r in self.ranking[:n]:
             names = ", ".join(dict.fromkeys(t["label"] for t in r["terms"]))
-            rho, ov = r["heldout_autocorrelation"], r["heldout_overlap"]
+            rho, ov = _shown_autocorrelation(r), r["heldout_overlap"]
             lines.append(f"{r['rank']:>4}  {r['spec']:<11} {r['n_terms']:>5}  "
                          f"{r['heldout_fisher_ratio']:>10.3g}  "
                          f"{'' if ov is None else format(ov, '.3f'):>7}  "
@@ -270,10 +270,18 @@ class Suggestions:
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
                 "normalized autocorrelation of the CV at the lag (1 = does not relax within "
-                "the lag, here with all runs about their common mean, so a run that never "
-                "leaves its state counts as slow), and the timescale is "
-                "-lag/ln(autocorrelation) on all data; a timescale longer than the longest run "
-                "is only a lower bound. "
+                + ("the lag, within the states: each state's runs about that state's own mean, "
+                   "how slowly the CV moves inside the basins, which objective `both` ranks "
+                   "on; about one common mean every separating CV would look slow, since the "
+                   "lagged pairs never leave their state; the columns `heldout_autocorrelation` "
+                   "and `timescale_ps` of ranking.csv hold that common-mean measure), and the "
+                   "timescale is -lag/ln(autocorrelation) within the states on all data; "
+                   if self.objective == "both" else
+                   "the lag, here with all runs about their common mean, so a run that never "
+                   "leaves its state counts as slow; ranking.csv also holds the measure "
+                   "within the states, `heldout_autocorrelation_within_states`), and the "
+                   "timescale is -lag/ln(autocorrelation) on all data; ")
+                + "a timescale longer than the longest run is only a lower bound. "
                 "Intervals are 95 % block-bootstrap intervals; selection is the fraction of "
                 "bootstrap refits of the whole search in which the descriptor is kept in the "
                 "refit's counterpart of this CV (its ranked combination sharing the most "
@@ -360,6 +368,15 @@ _RANKING_TABLE = (
     + _numbers("autocorrelation_all") + _interval("autocorrelation", "autocorrelation_ci")
     + _numbers("timescale_ps") + _interval("timescale", "timescale_ci_ps", "_ps")
     + [("timescale_resolved", "flag", _value("timescale_resolved"))]
+    + _numbers("heldout_autocorrelation_within_states")
+    + _interval("heldout_autocorrelation_within_states",
+                "heldout_autocorrelation_within_states_ci")
+    + _numbers("autocorrelation_within_states")
+    + _interval("autocorrelation_within_states", "autocorrelation_within_states_ci")
+    + _numbers("timescale_within_states_ps")
+    + _interval("timescale_within_states", "timescale_within_states_ci_ps", "_ps")
+    + [("timescale_within_states_resolved", "flag",
+        _value("timescale_within_states_resolved"))]
     + _numbers("integrated_time_ps") + _interval("integrated_time", "integrated_time_ci_ps", "_ps")
     + [("terms", "text", lambda r: "; ".join(_term_name(t) for t in r["terms"])),
        ("weights", "text", lambda r: " ".join(_fmt(t["weight"]) for t in r["terms"])),
@@ -457,16 +474,26 @@ def _heldout_scores(r):
         out.append(f"{r['objective']} score {r['heldout_score']:.3g} "
                    f"+/- {r['heldout_score_se']:.2g}")
     out.append(f"J {r['heldout_fisher_ratio']:.3g} +/- {r['heldout_fisher_ratio_se']:.2g}")
-    for key, name in (("heldout_overlap", "overlap"),
-                      ("heldout_autocorrelation", "autocorr.")):
-        if r.get(key) is not None:
-            out.append(f"{name} {r[key]:.3f}")
+    if r.get("heldout_overlap") is not None:
+        out.append(f"overlap {r['heldout_overlap']:.3f}")
+    rho = _shown_autocorrelation(r)
+    if rho is not None:
+        within = " (within states)" if r.get("objective") == "both" else ""
+        out.append(f"autocorr.{within} {rho:.3f}")
     return out
+
+
+def _shown_autocorrelation(r):
+    """The held-out autocorrelation the tables show: within the states for objective
+    ``both`` (what it ranks on), about the common mean otherwise."""
+    if r.get("objective") == "both":
+        return r.get("heldout_autocorrelation_within_states")
+    return r.get("heldout_autocorrelation")
 
 
 def _top_cells(r):
     """The cells of a ranking entry in the top table of summary.md and of the HTML."""
-    rho, overlap = r["heldout_autocorrelation"], r["heldout_overlap"]
+    rho, overlap = _shown_autocorrelation(r), r["heldout_overlap"]
     return [str(r["rank"]), r["spec"],
             f"{r['heldout_fisher_ratio']:.3g} ± {r['heldout_fisher_ratio_se']:.2g}",
             "" if overlap is None else format(overlap, ".3f"),
@@ -486,10 +513,12 @@ def _term_name(t):
 
 
 def _timescale_text(r):
-    ts = r.get("timescale_ps")
+    within = r.get("objective") == "both"
+    ts = r.get("timescale_within_states_ps" if within else "timescale_ps")
     if ts is None:
         return ""
-    if r.get("timescale_resolved") is False and r.get("longest_run_ps"):
+    resolved = r.get("timescale_within_states_resolved" if within else "timescale_resolved")
+    if resolved is False and r.get("longest_run_ps"):
         return f"> {r['longest_run_ps']:.3g} (not resolved by these runs)"
     return format(ts, ".3g")
 

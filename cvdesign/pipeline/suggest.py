@@ -421,8 +421,9 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
                                  f"{k + 1} of {folds.n_folds}; give more frames or trajectories")
     fold_lag = None
     if lags is not None:
-        fold_lag = results[1].by_fold()
-        if config.objective in ("slow", "both") and any(m.count == 0 for m in fold_lag):
+        fold_lag = results[1].by_state_fold()  # [state][fold]: within-state slowness too
+        if config.objective in ("slow", "both") and any(
+                sum(row[k].count for row in fold_lag) == 0 for k in range(folds.n_folds)):
             raise InputError(f"a held-out fold has no lagged pairs at lag {lag_ps:g} ps; "
                              "choose a shorter --lag or give longer runs")
     fm = FoldMoments(fold_m, priors, fold_lag).standardized(
@@ -737,9 +738,10 @@ def _bootstrap_notes(boot, held, config):
 def _add_times(entry, fit, screening, iat_desc, longest_run_ps):
     """Whether the timescale is resolved by the runs, and the CV's within-run decorrelation
     time (bounded by its slowest term)."""
-    ts = entry["timescale_ps"]
-    entry["timescale_resolved"] = None if ts is None else bool(
-        longest_run_ps is not None and ts < longest_run_ps)
+    for key in ("timescale", "timescale_within_states"):
+        ts = entry.get(f"{key}_ps")
+        entry[f"{key}_resolved"] = None if ts is None else bool(
+            longest_run_ps is not None and ts < longest_run_ps)
     entry["longest_run_ps"] = longest_run_ps
     taus = [iat_desc[screening.screened[g]] for g in fit.gidx
             if screening.screened[g] in iat_desc]
