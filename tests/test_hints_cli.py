@@ -185,13 +185,13 @@ def test_suggest_warns_about_an_unusual_md_step_and_stores_it_in_the_hints(demo_
     top, states = demo_files
     out = tmp_path / "out"
     argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "0",
-            "--max-terms", "1", "--suggestions", "1", "--md-step-fs", "20", "--quiet"]
+            "--max-terms", "1", "--suggestions", "1", "--md-step-fs", "20"]
     for name, files in states.items():
         argv += ["--state", name] + files[:1]
     assert main(argv) == 0
     err = capsys.readouterr().err
-    assert err.count("cvdesign: warning: md_step_fs=20 fs is longer than 5 fs: usual for "
-                     "coarse-grained models only") == 1
+    assert err.count("cvdesign suggest: warning: md_step_fs=20 fs is longer than 5 fs: usual "
+                     "for coarse-grained models only") == 1
     spec = json.loads((out / "cv-01.json").read_text())
     assert spec["hints"]["inputs"]["md_step_fs"] == 20.0
     assert spec["hints"]["warnings"][0].startswith("md_step_fs=20 fs is longer than 5 fs")

@@ -103,6 +103,10 @@ class Suggestions:
         Lag of the slowness scores, ps.
     exploration : cvdesign.pipeline.explore.Exploration or None
         The proposed states, when the states were proposed from unlabelled runs.
+    selection : str or None
+        The atoms the pool was built from: the selection, how many atoms, in
+        which residues, with mdtraj's 0-based indices
+        (:func:`cvdesign.io.source.describe_selection`).
 
     Examples
     --------
@@ -137,6 +141,7 @@ class Suggestions:
     objective: str = "separate"
     lag_ps: float = None
     exploration: object = None
+    selection: str = None
 
     # ----------------------------------------------------------- renderings
     def scorecard_csv(self):
@@ -261,6 +266,8 @@ class Suggestions:
         for inp in self.inputs:
             dt = "unknown" if inp["frame_step_ps"] is None else f"{inp['frame_step_ps']:g}"
             out.append(f"| {inp['file']} | {', '.join(inp['states'])} | {inp['frames']} | {dt} |")
+        if self.selection:
+            out += ["", f"Atoms of the pool: {self.selection}."]
         if self.exploration is not None:
             out += [""] + self.exploration.summary_lines()
         out += ["", "## What was done", ""] + [f"- {n}" for n in self.notes]

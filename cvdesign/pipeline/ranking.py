@@ -298,7 +298,7 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
             out.append(autocorrelation_along(w, within, p_idx) if has_lag else np.nan)
         return np.array(out)
 
-    res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed)
+    res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed, label="bootstrap")
     out = {"combos": []}
     pos = 0
     for p_idx, _ in p_fits:
@@ -374,7 +374,8 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
 
         n_sel = min(n_bootstrap, SELECTION_REPLICATES)
         n_hit = n_terms_all + len(fits)
-        sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1)
+        sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1,
+                              label="bootstrap refits")
         ok = np.isfinite(sel.replicates[:, :n_hit]).all(axis=1)
         freq = sel.replicates[ok, :n_hit].mean(axis=0) if ok.any() else np.full(n_hit, np.nan)
         low, high = percentile_interval(sel.replicates[ok, n_hit:])

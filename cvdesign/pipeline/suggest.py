@@ -26,6 +26,7 @@ serially, on local processes or on a Dask cluster (``executor=``), whatever the
 task split or chunk size. Memory does not depend on trajectory length.
 """
 
+import logging
 import math
 from dataclasses import dataclass
 
@@ -33,12 +34,13 @@ import numpy as np
 
 from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
-from ..io.source import Source
+from ..io.source import Source, describe_selection, select_atoms
 from ..kinds import DEFAULT_KINDS
 from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
                       LaggedPass, PoolFeaturizer, ScreeningPass, plan_tasks, reference_features,
                       run_pass)
 from ..pool import build_pool
+from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
@@ -52,6 +54,8 @@ from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
                      read_timesteps)
 
 __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file"]
+
+_log = logging.getLogger(__name__)
 
 #: Histogram bins of the score card and of the held-out CV histograms.
 N_BINS = 50
@@ -245,7 +249,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         (``'tcp://host:8786'``) a cluster (see :func:`cvdesign.parallel.as_executor`).
         The results are the same, byte for byte.
     progress : callable, default=None
-        Called with a message string at each stage.
+        Called with a message string at each stage. The same messages are
+        logged at INFO on the ``cvdesign.pipeline.suggest`` logger; progress
+        bars of the passes and the bootstrap: :func:`cvdesign.show_progress`.
 
     Returns
     -------
@@ -298,12 +304,16 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
 
 
 def _suggest(source, config, executor, progress):
-    say = progress or (lambda msg: None)
+    say = stage_messages(_log, progress)
     priors = np.full(source.n_states, 1.0 / source.n_states)
     steps = read_timesteps(source)
     lag_ps = config.lag_ps if config.lag_ps is not None else _default_lag(steps)
     lags = lag_frames(source, lag_ps, steps) if lag_ps is not None else None
 
+    selection = describe_selection(source.topology,
+                                   select_atoms(source.topology, config.selection),
+                                   config.selection)
+    say(selection)
     say("building the candidate pool")
     pool = build_pool(source, selection=config.selection, kinds=config.kinds,
                       cutoff=config.cutoff_nm, stride=config.prefilter_stride,
@@ -379,7 +389,7 @@ def _suggest(source, config, executor, progress):
     return Suggestions(states=list(source.states), pool=pool, scorecard=scorecard,
                        ranking=ranking, specs=specs, notes=notes, inputs=inputs,
                        input_files=output_inputs(source), objective=config.objective,
-                       lag_ps=lag_ps)
+                       lag_ps=lag_ps, selection=selection)
 
 
 # --------------------------------------------------------------------------- passes
@@ -395,7 +405,8 @@ def _screening_pass(source, base, every, steps, lags, executor):
     shift = reference_features(plan, every) if lags is not None else None
     first = ScreeningPass(every, lags=lags, shift=shift)
     spacing = EvenSpacingPass(every, steps, checked_segments(source, steps))
-    result, _ = run_pass((first, spacing), source, executor=executor, tasks=plan)
+    result, _ = run_pass((first, spacing), source, executor=executor, tasks=plan,
+                         label="screening")
     return result
 
 
@@ -412,7 +423,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     if grid is not None:
         passes.append(LagGridPass(feats, grid, shift=shift))
     results = run_pass(tuple(passes), source, executor=executor,
-                       tasks=_plan_for(base, feats.n_features, executor))
+                       tasks=_plan_for(base, feats.n_features, executor), label="statistics")
     fold_m = results[0]
     for s, per_fold in enumerate(fold_m):
         for k, m in enumerate(per_fold):
@@ -565,7 +576,7 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
         passes.append(HistogramPass(every, screening.low[rest], screening.high[rest],
                                     n_bins=N_BINS, columns=rest))
     results = run_pass(tuple(passes), source, executor=executor,
-                       tasks=_plan_for(base, every.n_features, executor))
+                       tasks=_plan_for(base, every.n_features, executor), label="held-out")
     block_sums, card_sums = results[0], results[1] if card is not None else None
     counts = np.zeros((source.n_states, pool.n_features, N_BINS))
     if rest.size:
