@@ -72,6 +72,13 @@ def _passes(src):
                   LagGridPass(featurizer, (1, 3, 7), shift=shift[cols], columns=cols))
 
 
+@pytest.fixture(autouse=True)
+def _private_tempdir(tmp_path_factory, monkeypatch):
+    """Each test's own temporary directory for the pickled contexts: other runs sharing the
+    machine's /tmp would otherwise add or remove files the leftover checks count."""
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path_factory.mktemp("tempdir")))
+
+
 def _leftover_contexts():
     return sorted(Path(tempfile.gettempdir()).glob("cvdesign-pass-*"))
 
