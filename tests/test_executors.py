@@ -15,8 +15,8 @@ from cvdesign.errors import SchedulerUnreachableError, WorkerLostError
 from cvdesign.parallel import DaskExecutor, ProcessExecutor, SerialExecutor, as_executor
 from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, Featurizer,
                              FoldMomentsPass, Folds, HistogramPass, LaggedPass, LagGridPass,
-                             PoolFeaturizer, ScreeningPass, leaf_frames_for, plan_tasks, reference_features,
-                             run_pass)
+                             PoolFeaturizer, ProjectionRangePass, ScreeningPass, leaf_frames_for,
+                             plan_tasks, reference_features, run_pass)
 from cvdesign.pool import build_pool
 from cvdesign.progress import using_display
 
@@ -69,7 +69,10 @@ def _passes(src):
                   CardPass(featurizer, center=shift[cols], low=np.full(cols.size, -1.0),
                            high=np.full(cols.size, 2.0), n_bins=20, block_frames=40, lags=lags,
                            run_means={(0, 0): shift[cols] + 0.1}, columns=cols),
-                  LagGridPass(featurizer, (1, 3, 7), shift=shift[cols], columns=cols))
+                  LagGridPass(featurizer, (1, 3, 7), shift=shift[cols], columns=cols),
+                  ProjectionRangePass(featurizer,
+                                      [(np.arange(cols.size), np.linspace(-1, 1, cols.size)),
+                                       ([2, 0], [0.5, 3.0])], columns=cols, center=shift[cols]))
 
 
 @pytest.fixture(autouse=True)

@@ -35,9 +35,12 @@ def test_hints_command_recomputes_from_the_spec_alone(demo_result, tmp_path, cap
                  "--barrier", "50", "--kernel", "lucy", "--json"]) == 0
     got = json.loads(capsys.readouterr().out)
     spec = demo_result.specs[0]
+    reach, seen = spec["reachable_range"], spec["observed_range"]
     expect = suggest_hints({k: v for k, v in spec["states"].items()}, temperature=310.0,
                            md_step_fs=4.0, barrier=50.0, kernel="lucy",
-                           autocorrelation_time_ps=spec["scores"]["integrated_time_ps"])
+                           autocorrelation_time_ps=spec["scores"]["integrated_time_ps"],
+                           cv_range=(reach["lower"], reach["upper"]),
+                           observed_range=(seen["lower"], seen["upper"]))
     assert got == json.loads(json.dumps(expect))
     assert main(["hints", str(spec_path), "--temperature", "300", "--md-step-fs", "2"]) == 0
     text = capsys.readouterr().out

@@ -13,8 +13,8 @@ from .engine import (FEATURE_BUDGET, LEAF_FRAMES, CoordinateFeaturizer, Featuriz
                      plan_tasks, reference_features, run_pass, run_task)
 from .keys import MIN_FRAMES_PER_FOLD, Folds, FrameKeys, SegmentLayout, frame_keys
 from .stats import (BlockPass, CardPass, CardSums, FeaturePass, FoldMomentsPass, HistogramPass,
-                    LagGridPass, LaggedPass, LaggedResult, ScreeningPass, ScreeningResult, group_rows,
-                    merge_keyed)
+                    LagGridPass, LaggedPass, LaggedResult, ProjectionRangePass, ScreeningPass,
+                    ScreeningResult, group_rows, merge_keyed)
 from .tree import TreeReducer, merge_optional
 
 __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
@@ -23,5 +23,5 @@ __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD",
            "FeaturePass", "group_rows", "ScreeningPass", "ScreeningResult", "FoldMomentsPass",
            "LaggedPass", "LaggedResult", "LagGridPass",
-           "HistogramPass", "BlockPass", "CardPass", "CardSums", "merge_keyed", "TreeReducer",
-           "merge_optional"]
+           "HistogramPass", "ProjectionRangePass", "BlockPass", "CardPass", "CardSums",
+           "merge_keyed", "TreeReducer", "merge_optional"]

@@ -19,6 +19,7 @@ from typing import NamedTuple
 
 from .._version import __version__
 from ..io.atomic import prepare_output_dir, write_dir_atomically
+from ..spec.ranges import FOLD_SPREADS
 
 __all__ = ["Suggestions", "SuggestionFrames", "CAUTION", "is_output_file", "output_inputs",
            "dumps"]
@@ -298,6 +299,7 @@ class Suggestions:
                 "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]
         for r in self.ranking[:5]:
             out.append("| " + " | ".join(_top_cells(r)) + " |")
+        out += _range_lines(self.ranking[:5])
         for r in self.ranking:
             for w in r.get("warnings", []):
                 out += ["", f"**Warning** (rank {r['rank']}, {r['spec']}): {w}."]
@@ -506,6 +508,30 @@ def _top_cells(r):
             "" if overlap is None else format(overlap, ".3f"),
             "" if rho is None else format(rho, ".3f"),
             _timescale_text(r), "; ".join(_term_text(t) for t in r["terms"])]
+
+
+def _range_lines(ranking):
+    """The summary's table of the CVs' reachable and observed ranges (CV units)."""
+    rows = [r for r in ranking if "reachable_range" in r]
+    if not rows:
+        return []
+    out = ["", "### Ranges", "",
+           "Reachable: the values the CV can take, from its terms (cos and sin of a dihedral "
+           "are bounded, a distance has no largest value); observed: its smallest and largest "
+           f"value in the input frames. A state *at a bound* has its mean within "
+           f"{FOLD_SPREADS:g} of its standard deviations of a reachable end: a folded "
+           "coordinate (see the warnings).",
+           "", "| rank | spec | reachable | observed | states at a bound |",
+           "| ---: | --- | --- | --- | --- |"]
+    for r in rows:
+        reach, seen = r["reachable_range"], r["observed_range"]
+        ends = [("-inf" if reach["lower"] is None else f"{reach['lower']:.4g}"),
+                ("+inf" if reach["upper"] is None else f"{reach['upper']:.4g}")]
+        at = [f"`{name}` ({st['at_bound']})" for name, st in r["states"].items()
+              if st.get("at_bound")]
+        out.append(f"| {r['rank']} | {r['spec']} | [{ends[0]}, {ends[1]}] | "
+                   f"[{seen['lower']:.4g}, {seen['upper']:.4g}] | {', '.join(at) or 'none'} |")
+    return out
 
 
 def _per_term(values):

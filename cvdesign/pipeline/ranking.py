@@ -21,7 +21,7 @@ from ..stats.moments import merge_all
 
 __all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit", "Shortlist",
            "shortlist", "search", "fit_ranked", "kinetic_map_scale", "bootstrap_ranked",
-           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap"]
+           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap", "add_ranges"]
 
 #: Bootstrap refits of the search for selection frequencies, and the number of best
 #: shortlisted descriptors (besides the ranked terms) they may choose from.
@@ -171,15 +171,84 @@ def kinetic_map_scale(w, lagged, idx):
 
 
 def hints_for(entry, temperature, md_step_fs):
-    """(bias-parameter hints, None) for a ranked CV, or (None, why they were refused)."""
+    """(bias-parameter hints, None) for a ranked CV, or (None, why they were refused).
+
+    The grid and walls take the CV's reachable and observed ranges into account when
+    the entry has them (see :func:`add_ranges`)."""
     from ..bias.hints import suggest_hints
 
+    reach, seen = entry.get("reachable_range"), entry.get("observed_range")
     try:
         return suggest_hints(entry["states"], temperature=temperature, md_step_fs=md_step_fs,
                              autocorrelation_time_ps=entry.get("integrated_time_ps"),
+                             cv_range=None if reach is None else (reach["lower"], reach["upper"]),
+                             observed_range=None if seen is None else (seen["lower"],
+                                                                       seen["upper"]),
                              leave_out_frozen=True), None
     except ValueError as exc:
         return None, str(exc)
+
+
+def add_ranges(entry, pool, observed, states):
+    """Add a ranked CV's reachable and observed ranges, and flag states at a bound.
+
+    Parameters
+    ----------
+    entry : dict
+        From :func:`ranking_entry`; gains ``reachable_range`` and
+        ``observed_range`` (``{"lower", "upper"}``, CV units; a reachable bound
+        None where the CV is unbounded), per state ``min``, ``max`` and, for a
+        state whose mean lies within
+        :data:`~cvdesign.spec.ranges.FOLD_SPREADS` standard deviations of a
+        reachable bound, ``at_bound`` (``"lower"`` or ``"upper"``) with a
+        warning.
+    pool : Pool
+        The pool the terms' descriptors come from.
+    observed : (ndarray, ndarray)
+        Smallest and largest value of the CV in each state (CV units), in the
+        order of `states`.
+    states : list of str
+    """
+    from ..spec.ranges import reachable_range, states_at_bounds
+
+    by_id = {d.id: d for d in pool.descriptors}
+    descs = []
+    for did in dict.fromkeys(t["descriptor"] for t in entry["terms"]):
+        d = by_id[did]
+        descs.append({"id": d.id, "kind": d.kind,
+                      **({"groups": [list(g) for g in d.groups]} if d.groups else {})})
+    low, high = reachable_range(descs, entry["terms"])
+    entry["reachable_range"] = {"lower": low, "upper": high}
+    lows, highs = observed
+    for s, name in enumerate(states):
+        entry["states"][name]["min"] = float(lows[s])
+        entry["states"][name]["max"] = float(highs[s])
+    entry["observed_range"] = {"lower": float(np.min(lows)), "upper": float(np.max(highs))}
+    one_dihedral = len(descs) == 1 and descs[0]["kind"] == "dihedral"
+    folded = states_at_bounds(entry["states"], (low, high))
+    if not folded:
+        return
+    where = []
+    for name, side in folded.items():
+        st = entry["states"][name]
+        st["at_bound"] = side
+        gap = abs(st["mean"] - (low if side == "lower" else high))
+        where.append(f"{name!r} at the {side} bound (mean {st['mean']:.4g}, "
+                     + (f"{gap / st['std']:.2g} std from it)" if st["std"] > 0 else "on it)"))
+    todo = ("the dihedral itself, as a periodic CV (one identity term), has no fold; consider "
+            "it" if one_dihedral else
+            "check in a short biased run that the bias moves the state, or prefer a "
+            "suggestion whose states lie inside its range")
+    entry["warnings"].append(
+        f"state{'s' if len(where) > 1 else ''} {' and '.join(where)} of the reachable range "
+        f"[{_bound(low)}, {_bound(high)}]: a folded coordinate. Near a bound the CV changes "
+        "only to second order with its descriptors, so structures on either side of the fold "
+        "(e.g. a dihedral on either side of the angle where its cos or sin peaks) give the "
+        f"same value and the bias force along the CV fades there; {todo}")
+
+
+def _bound(x):
+    return "unbounded" if x is None else f"{x:.4g}"
 
 
 def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):

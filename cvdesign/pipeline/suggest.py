@@ -15,10 +15,12 @@
 6. **shortlist, search, fits** -- redundancy, greedy forward search scored on
    held-out folds, ranking, final directions (:mod:`.ranking`);
 7. **held-out pass** -- histograms of every feature (score card overlap), the
-   ranked CVs' held-out histograms, bootstrap blocks, the score card's block
+   ranked CVs' held-out histograms and their smallest and largest value in
+   each state (the observed range), bootstrap blocks, the score card's block
    sums;
-8. **bootstrap, ranking, specs** -- intervals, the ranked entries, one spec
-   per entry (:mod:`.specs`).
+8. **bootstrap, ranking, specs** -- intervals, the ranked entries with their
+   reachable and observed ranges (:func:`.ranking.add_ranges`), one spec per
+   entry (:mod:`.specs`).
 
 Every pass runs on the pass engine (:mod:`cvdesign.passes`): tasks over leaves
 of frames, merged in a fixed tree, so the result is the same, byte for byte,
@@ -37,16 +39,16 @@ from ..errors import InputError
 from ..io.source import Source, describe_selection, select_atoms
 from ..kinds import DEFAULT_KINDS
 from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
-                      LaggedPass, PoolFeaturizer, ScreeningPass, plan_tasks, reference_features,
-                      run_pass)
+                      LaggedPass, PoolFeaturizer, ProjectionRangePass, ScreeningPass, plan_tasks,
+                      reference_features, run_pass)
 from ..pool import build_pool
 from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs
-from .ranking import (bootstrap_ranked, card_interval_rows, fit_ranked, heldout_overlap,
-                      hints_for, ranking_entry, search, shortlist)
+from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
+                      heldout_overlap, hints_for, ranking_entry, search, shortlist)
 from .screening import Screening, screen
 from .specs import describe_inputs, input_checksums, spec_document
 from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
@@ -379,6 +381,7 @@ def _suggest(source, config, executor, progress):
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
                               boot=boot)
         _add_times(entry, fit, screening, iat_desc, longest_run_ps)
+        add_ranges(entry, pool, held.observed[rank - 1], source.states)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
         if refused:
             entry["hints_refused"] = refused
@@ -482,6 +485,9 @@ class HeldOut:
     card_desc : list of int
     card_feat : ndarray of int
     notes : list of str
+    observed : list of (ndarray, ndarray)
+        Per ranked CV, its smallest and largest value in each state (CV units,
+        shape (n_states,) each; +inf and -inf for a state without frames).
     """
 
     overlap: list
@@ -493,6 +499,7 @@ class HeldOut:
     card_desc: list
     card_feat: np.ndarray
     notes: list
+    observed: list
 
 
 class _CVHistograms:
@@ -539,8 +546,9 @@ def _cv_plans(fits, fm, where):
 
 def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, iat_desc,
                   seg_counts, steps, first, config, executor):
-    """Histograms of every feature; held-out CV histograms and bootstrap blocks of the
-    shortlisted features; the score card's block sums -- one read of every feature."""
+    """Histograms of every feature; held-out CV histograms, bootstrap blocks and the ranked
+    CVs' per-state extremes from the shortlisted features; the score card's block sums --
+    one read of every feature."""
     screened = screening.screened
     short_set = set(screened[g] for g in short.members)
     local = []  # shortlisted features, as columns of the fold moments
@@ -562,7 +570,13 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
                        lags=lags if config.n_bootstrap else None, pairs_within_block=True,
                        sums=_CVHistograms(_cv_plans(fits, fm, where), N_BINS), columns=cols,
                        center=screening.center[cols], scale=screening.scale[cols])
-    passes = [blocks]
+    # the ranked CVs' smallest and largest values per state (their spec's CV: the full-data
+    # direction on the standardized features, as the spec's terms)
+    extremes = ProjectionRangePass(
+        every, [(np.array([where[int(i)] for i in fit.idx], dtype=np.intp), fit.w)
+                for fit in fits], columns=cols, center=screening.center[cols],
+        scale=screening.scale[cols])
+    passes = [blocks, extremes]
     notes, card, card_desc, card_feat = [], None, [], np.zeros(0, dtype=np.intp)
     if config.n_bootstrap:
         card, card_desc, card_feat, note = _card_pass(every, pool, screening, seg_counts,
@@ -577,7 +591,8 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
                                     n_bins=N_BINS, columns=rest))
     results = run_pass(tuple(passes), source, executor=executor,
                        tasks=_plan_for(base, every.n_features, executor), label="held-out")
-    block_sums, card_sums = results[0], results[1] if card is not None else None
+    block_sums, observed = results[0], results[1]
+    card_sums = results[2] if card is not None else None
     counts = np.zeros((source.n_states, pool.n_features, N_BINS))
     if rest.size:
         counts[:, rest] = results[-1].counts
@@ -599,7 +614,8 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
         f" ({n_blocks} blocks)"
     return HeldOut(overlap=overlap, overlap_desc=overlap_desc, blocks=block_sums, where=where,
                    block_desc=desc, card=card_sums,
-                   card_desc=card_desc, card_feat=card_feat, notes=notes)
+                   card_desc=card_desc, card_feat=card_feat, notes=notes,
+                   observed=[(observed[0, c], observed[1, c]) for c in range(len(fits))])
 
 
 def _card_pass(every, pool, screening, seg_counts, iat_desc, steps, lags, first):
