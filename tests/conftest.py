@@ -1,5 +1,6 @@
 """Shared fixtures: the bundled demo data, the MDAnalysis test data, and helpers of the
-pass-engine tests (bitwise comparison, random task splits, shuffled arrival order)."""
+pass-engine tests (bitwise comparison, random task splits, shuffled arrival order, a
+progress display that records what it is told)."""
 
 import importlib.resources
 import json
@@ -292,3 +293,44 @@ def threaded_dask():
                                   dashboard_address=":0") as cluster, \
             distributed.Client(cluster) as client:
         yield client
+
+
+class RecordedBar:
+    """One progress bar as a :class:`ProgressRecorder` saw it: label, total, unit, updates."""
+
+    def __init__(self, label, total, unit):
+        self.label, self.total, self.unit = label, total, unit
+        self.updates, self.closed = [], False
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.closed = True
+
+    def update(self, n=1):
+        self.updates.append(n)
+
+    @property
+    def count(self):
+        return sum(self.updates)
+
+
+class ProgressRecorder:
+    """A progress display (``cvdesign.progress.using_display``) recording every bar."""
+
+    def __init__(self):
+        self.bars = []
+
+    def __call__(self, label, total, unit):
+        self.bars.append(RecordedBar(label, total, unit))
+        return self.bars[-1]
+
+    def labelled(self, label):
+        return [b for b in self.bars if b.label == label]
+
+
+@pytest.fixture
+def progress_recorder():
+    """A fresh :class:`ProgressRecorder`; activate it with ``using_display(recorder)``."""
+    return ProgressRecorder()

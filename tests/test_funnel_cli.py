@@ -45,7 +45,12 @@ def test_funnel_command_writes_parameters_that_keep_the_bound_ligand_inside(host
     text = capsys.readouterr().out
     assert "cone half-angle" in text and "not guarantees" in text
     assert "hold the pocket in this orientation" in text and "warning:" not in text
-    spec = load_spec(out, topology=md.load_topology(host_guest.topology))
+    # the selections echoed with their atom counts (as mdtraj selects them)
+    topology = md.load_topology(host_guest.topology)
+    for role, sel in [("ligand", host_guest.ligand_selection),
+                      ("pocket", host_guest.pocket_selection)]:
+        assert f"{role}: selection {sel!r}: {topology.select(sel).size} atoms in " in text
+    spec = load_spec(out, topology=topology)
     (funnel,) = spec.restraints
     assert funnel["kind"] == "funnel" and funnel["wall_force_constant_kj_mol_nm2"] == 2000.0
     xyz, box = _frames(host_guest)

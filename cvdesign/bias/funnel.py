@@ -893,12 +893,12 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
             xyz, box = _coordinates(found[2])
             reference, _ = _fit_frames(xyz[:, columns[0]], xyz[:, columns[1]], box, None)
             return reference, run_pass(_FitPass(featurizer, *columns, reference), source,
-                                       executor=executor, tasks=plan)
+                                       executor=executor, tasks=plan, label="funnel: axis")
 
         def second(reference, stats, n):
             stride = thinning_stride(plan.segment_counts().reshape(-1), MAX_POSITIONS)
             return run_pass(_StatsPass(featurizer, *columns, reference, stats, stride), source,
-                            executor=executor, tasks=plan)
+                            executor=executor, tasks=plan, label="funnel: sizing")
 
         return _size(first, second, "were the trajectories changed during the run?", **options)
 

@@ -14,8 +14,8 @@ from .engine import (FEATURE_BUDGET, LEAF_FRAMES, CoordinateFeaturizer, Featuriz
 from .keys import (MIN_FRAMES_PER_FOLD, Folds, FrameKeys, SegmentLayout, frame_keys,
                    thinning_stride)
 from .stats import (BlockPass, CardPass, CardSums, FeaturePass, FoldMomentsPass, HistogramPass,
-                    LagGridPass, LaggedPass, LaggedResult, ScreeningPass, ScreeningResult, group_rows,
-                    merge_keyed)
+                    LagGridPass, LaggedPass, LaggedResult, ProjectionRangePass, ScreeningPass,
+                    ScreeningResult, group_rows, merge_keyed)
 from .tree import TreeReducer, merge_optional
 
 __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
@@ -24,5 +24,5 @@ __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD", "thinning_stride",
            "FeaturePass", "group_rows", "ScreeningPass", "ScreeningResult", "FoldMomentsPass",
            "LaggedPass", "LaggedResult", "LagGridPass",
-           "HistogramPass", "BlockPass", "CardPass", "CardSums", "merge_keyed", "TreeReducer",
-           "merge_optional"]
+           "HistogramPass", "ProjectionRangePass", "BlockPass", "CardPass", "CardSums",
+           "merge_keyed", "TreeReducer", "merge_optional"]

@@ -41,6 +41,7 @@ The proposed labels then feed the labelled pipeline
 (:func:`cvdesign.pipeline.suggest`) through :meth:`Exploration.labelled_source`.
 """
 
+import logging
 import math
 from dataclasses import dataclass, field
 
@@ -56,6 +57,7 @@ from ..parallel import using_executor
 from ..passes import (LaggedPass, Pass, PoolFeaturizer, ScreeningPass, frame_keys, plan_tasks,
                       reference_features, run_pass, thinning_stride)
 from ..pool import build_pool
+from ..progress import stage_messages
 from ..search import standardize_lagged
 from ..stats.moments import LaggedMoments, merge_all
 from .timing import EvenSpacingPass, checked_segments, read_timesteps
@@ -68,6 +70,8 @@ __all__ = ["propose_states", "state_kinetics", "Exploration", "StateKinetics",
 #: Most frames of the report's picture of the proposed states (the clustering's
 #: subsample, thinned by a stride chosen from the frame counts).
 MAX_REPORT_FRAMES = 5000
+
+_log = logging.getLogger(__name__)
 
 #: Smallest mean silhouette accepted as metastable structure. Kaufman and Rousseeuw
 #: (*Finding Groups in Data*, 1990) read 0.51-0.70 as "a reasonable structure" and
@@ -758,6 +762,8 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         (see :func:`cvdesign.parallel.as_executor`). The results are the same,
         byte for byte.
     progress : callable, default=None
+        Called with a message string at each stage (also logged at INFO on the
+        ``cvdesign.pipeline.explore`` logger).
 
     Returns
     -------
@@ -796,7 +802,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):
         raise InputError(f"n_states={n_states!r} must be an integer of at least 2")
     with using_executor(executor) as executor:
-        return _propose(source, executor, progress or (lambda msg: None), lag=float(lag),
+        return _propose(source, executor, stage_messages(_log, progress), lag=float(lag),
                         n_states=n_states, max_states=max_states, selection=selection,
                         kinds=kinds, cutoff=cutoff, prefilter_stride=prefilter_stride,
                         coordination_r0=coordination_r0, screen_size=screen_size,
@@ -819,7 +825,8 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
         standardize_lagged(run_pass(LaggedPass(screened.featurizer, lag_frames,
                                                shift=screened.center,
                                                columns=screened.columns),
-                                    source, executor=executor, tasks=plan).merged(),
+                                    source, executor=executor, tasks=plan,
+                                    label="runs: TICA").merged(),
                            screened.center, screened.scale), lag=1, rcond=1e-6)
     ts_ps = (tica.timescales_ * lag).tolist()  # from_moments used lag=1 (one lag unit)
     notes = [f"TICA on the {screened.columns.size} most autocorrelated features "
@@ -852,7 +859,7 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     report_stride = thinning_stride(screened.segment_counts.reshape(-1), MAX_REPORT_FRAMES,
                                     multiple_of=stride)
     wide_y, sample = run_pass(_SamplePass(screened.featurizer, wide, stride, report_stride),
-                              source, executor=executor, tasks=plan)
+                              source, executor=executor, tasks=plan, label="runs: sample")
     fit_y = np.ascontiguousarray(wide_y[:, :n_slow])
     sil_y = fit_y[::max(1, fit_y.shape[0] // 4000)]
     models = {}
@@ -891,7 +898,7 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
          "states)")
     found = run_pass(_KineticsPass(screened.featurizer, project, lag_frames,
                                    [means[k] for k in candidates]),
-                     source, executor=executor, tasks=plan)
+                     source, executor=executor, tasks=plan, label="runs: states")
     fits = {}
     for c, k in enumerate(candidates):
         sums = found["sums"][c]
@@ -997,7 +1004,8 @@ def _screen(source, base, pool, timesteps, lag, lag_frames, screen_size, executo
     spacing = EvenSpacingPass(every, timesteps, checked_segments(source, timesteps))
     first, lagged, _ = run_pass((ScreeningPass(every), LaggedPass(every, lag_frames,
                                                                    shift=shift, diagonal=True),
-                                 spacing), source, executor=executor, tasks=plan)
+                                 spacing), source, executor=executor, tasks=plan,
+                                label="runs: screening")
     pairs = lagged.merged()
     if pairs.count == 0:
         raise InputError(f"no lagged pairs at lag {lag:g} ps: every run is shorter than the "

@@ -19,6 +19,7 @@ from typing import NamedTuple
 
 from .._version import __version__
 from ..io.atomic import prepare_output_dir, write_dir_atomically
+from ..spec.ranges import FOLD_SPREADS
 
 __all__ = ["Suggestions", "SuggestionFrames", "CAUTION", "is_output_file", "output_inputs",
            "dumps"]
@@ -103,6 +104,10 @@ class Suggestions:
         Lag of the slowness scores, ps.
     exploration : cvdesign.pipeline.explore.Exploration or None
         The proposed states, when the states were proposed from unlabelled runs.
+    selection : str or None
+        The atoms the pool was built from: the selection, how many atoms, in
+        which residues, with mdtraj's 0-based indices
+        (:func:`cvdesign.io.source.describe_selection`).
     report_data : dict or None
         What the report draws beyond the tables (``docs/report-data-v1.md``): per
         ranked CV the held-out histograms in CV units, the traces and the implied
@@ -142,6 +147,7 @@ class Suggestions:
     objective: str = "separate"
     lag_ps: float = None
     exploration: object = None
+    selection: str = None
     report_data: dict = None
 
     # ----------------------------------------------------------- renderings
@@ -216,7 +222,7 @@ class Suggestions:
                  f"{'overlap':>7}  {'autocorr':>8}  descriptors"]
         for r in self.ranking[:n]:
             names = ", ".join(dict.fromkeys(t["label"] for t in r["terms"]))
-            rho, ov = r["heldout_autocorrelation"], r["heldout_overlap"]
+            rho, ov = _shown_autocorrelation(r), r["heldout_overlap"]
             lines.append(f"{r['rank']:>4}  {r['spec']:<11} {r['n_terms']:>5}  "
                          f"{r['heldout_fisher_ratio']:>10.3g}  "
                          f"{'' if ov is None else format(ov, '.3f'):>7}  "
@@ -278,6 +284,8 @@ class Suggestions:
         for inp in self.inputs:
             dt = "unknown" if inp["frame_step_ps"] is None else f"{inp['frame_step_ps']:g}"
             out.append(f"| {inp['file']} | {', '.join(inp['states'])} | {inp['frames']} | {dt} |")
+        if self.selection:
+            out += ["", f"Atoms of the pool: {self.selection}."]
         if self.exploration is not None:
             out += [""] + self.exploration.summary_lines()
         out += ["", "## What was done", ""] + [f"- {n}" for n in self.notes]
@@ -287,10 +295,18 @@ class Suggestions:
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
                 "normalized autocorrelation of the CV at the lag (1 = does not relax within "
-                "the lag, here with all runs about their common mean, so a run that never "
-                "leaves its state counts as slow), and the timescale is "
-                "-lag/ln(autocorrelation) on all data; a timescale longer than the longest run "
-                "is only a lower bound. "
+                + ("the lag, within the states: each state's runs about that state's own mean, "
+                   "how slowly the CV moves inside the basins, which objective `both` ranks "
+                   "on; about one common mean every separating CV would look slow, since the "
+                   "lagged pairs never leave their state; the columns `heldout_autocorrelation` "
+                   "and `timescale_ps` of ranking.csv hold that common-mean measure), and the "
+                   "timescale is -lag/ln(autocorrelation) within the states on all data; "
+                   if self.objective == "both" else
+                   "the lag, here with all runs about their common mean, so a run that never "
+                   "leaves its state counts as slow; ranking.csv also holds the measure "
+                   "within the states, `heldout_autocorrelation_within_states`), and the "
+                   "timescale is -lag/ln(autocorrelation) on all data; ")
+                + "a timescale longer than the longest run is only a lower bound. "
                 "Intervals are 95 % block-bootstrap intervals; selection is the fraction of "
                 "bootstrap refits of the whole search in which the descriptor is kept in the "
                 "refit's counterpart of this CV (its ranked combination sharing the most "
@@ -300,6 +316,7 @@ class Suggestions:
                 "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]
         for r in self.ranking[:5]:
             out.append("| " + " | ".join(_top_cells(r)) + " |")
+        out += _range_lines(self.ranking[:5])
         for r in self.ranking:
             for w in r.get("warnings", []):
                 out += ["", f"**Warning** (rank {r['rank']}, {r['spec']}): {w}."]
@@ -386,6 +403,15 @@ _RANKING_TABLE = (
     + _numbers("autocorrelation_all") + _interval("autocorrelation", "autocorrelation_ci")
     + _numbers("timescale_ps") + _interval("timescale", "timescale_ci_ps", "_ps")
     + [("timescale_resolved", "flag", _value("timescale_resolved"))]
+    + _numbers("heldout_autocorrelation_within_states")
+    + _interval("heldout_autocorrelation_within_states",
+                "heldout_autocorrelation_within_states_ci")
+    + _numbers("autocorrelation_within_states")
+    + _interval("autocorrelation_within_states", "autocorrelation_within_states_ci")
+    + _numbers("timescale_within_states_ps")
+    + _interval("timescale_within_states", "timescale_within_states_ci_ps", "_ps")
+    + [("timescale_within_states_resolved", "flag",
+        _value("timescale_within_states_resolved"))]
     + _numbers("integrated_time_ps") + _interval("integrated_time", "integrated_time_ci_ps", "_ps")
     + [("terms", "text", lambda r: "; ".join(_term_name(t) for t in r["terms"])),
        ("weights", "text", lambda r: " ".join(_fmt(t["weight"]) for t in r["terms"])),
@@ -483,21 +509,55 @@ def _heldout_scores(r):
         out.append(f"{r['objective']} score {r['heldout_score']:.3g} "
                    f"+/- {r['heldout_score_se']:.2g}")
     out.append(f"J {r['heldout_fisher_ratio']:.3g} +/- {r['heldout_fisher_ratio_se']:.2g}")
-    for key, name in (("heldout_overlap", "overlap"),
-                      ("heldout_autocorrelation", "autocorr.")):
-        if r.get(key) is not None:
-            out.append(f"{name} {r[key]:.3f}")
+    if r.get("heldout_overlap") is not None:
+        out.append(f"overlap {r['heldout_overlap']:.3f}")
+    rho = _shown_autocorrelation(r)
+    if rho is not None:
+        within = " (within states)" if r.get("objective") == "both" else ""
+        out.append(f"autocorr.{within} {rho:.3f}")
     return out
+
+
+def _shown_autocorrelation(r):
+    """The held-out autocorrelation the tables show: within the states for objective
+    ``both`` (what it ranks on), about the common mean otherwise."""
+    if r.get("objective") == "both":
+        return r.get("heldout_autocorrelation_within_states")
+    return r.get("heldout_autocorrelation")
 
 
 def _top_cells(r):
     """The cells of a ranking entry in the top table of summary.md and of the HTML."""
-    rho, overlap = r["heldout_autocorrelation"], r["heldout_overlap"]
+    rho, overlap = _shown_autocorrelation(r), r["heldout_overlap"]
     return [str(r["rank"]), r["spec"],
             f"{r['heldout_fisher_ratio']:.3g} ± {r['heldout_fisher_ratio_se']:.2g}",
             "" if overlap is None else format(overlap, ".3f"),
             "" if rho is None else format(rho, ".3f"),
             _timescale_text(r), "; ".join(_term_text(t) for t in r["terms"])]
+
+
+def _range_lines(ranking):
+    """The summary's table of the CVs' reachable and observed ranges (CV units)."""
+    rows = [r for r in ranking if "reachable_range" in r]
+    if not rows:
+        return []
+    out = ["", "### Ranges", "",
+           "Reachable: the values the CV can take, from its terms (cos and sin of a dihedral "
+           "are bounded, a distance has no largest value); observed: its smallest and largest "
+           f"value in the input frames. A state *at a bound* has its mean within "
+           f"{FOLD_SPREADS:g} of its standard deviations of a reachable end: a folded "
+           "coordinate (see the warnings).",
+           "", "| rank | spec | reachable | observed | states at a bound |",
+           "| ---: | --- | --- | --- | --- |"]
+    for r in rows:
+        reach, seen = r["reachable_range"], r["observed_range"]
+        ends = [("-inf" if reach["lower"] is None else f"{reach['lower']:.4g}"),
+                ("+inf" if reach["upper"] is None else f"{reach['upper']:.4g}")]
+        at = [f"`{name}` ({st['at_bound']})" for name, st in r["states"].items()
+              if st.get("at_bound")]
+        out.append(f"| {r['rank']} | {r['spec']} | [{ends[0]}, {ends[1]}] | "
+                   f"[{seen['lower']:.4g}, {seen['upper']:.4g}] | {', '.join(at) or 'none'} |")
+    return out
 
 
 def _per_term(values):
@@ -512,10 +572,12 @@ def _term_name(t):
 
 
 def _timescale_text(r):
-    ts = r.get("timescale_ps")
+    within = r.get("objective") == "both"
+    ts = r.get("timescale_within_states_ps" if within else "timescale_ps")
     if ts is None:
         return ""
-    if r.get("timescale_resolved") is False and r.get("longest_run_ps"):
+    resolved = r.get("timescale_within_states_resolved" if within else "timescale_resolved")
+    if resolved is False and r.get("longest_run_ps"):
         return f"> {r['longest_run_ps']:.3g} (not resolved by these runs)"
     return format(ts, ".3g")
 

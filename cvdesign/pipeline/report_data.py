@@ -290,7 +290,7 @@ class CVReportPass(FeaturePass):
         return max(self.lags) if self.lags else 0
 
     def map(self, leaf):
-        n, n_cv = leaf.frames.size, len(self.plans)
+        n_cv = len(self.plans)
         z = self.values(leaf.window_x if self.lags else leaf.x)
         cv = np.empty((z.shape[0], n_cv))
         for c, p in enumerate(self.plans):

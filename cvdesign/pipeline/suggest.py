@@ -15,11 +15,13 @@
 6. **shortlist, search, fits** -- redundancy, greedy forward search scored on
    held-out folds, ranking, final directions (:mod:`.ranking`);
 7. **held-out pass** -- histograms of every feature (score card overlap), the
-   ranked CVs' held-out histograms, bootstrap blocks, the score card's block
+   ranked CVs' held-out histograms and their smallest and largest value in
+   each state (the observed range), bootstrap blocks, the score card's block
    sums, and what the report draws (:mod:`.report_data`: held-out histograms
    in the CVs' units, traces, implied timescales);
-8. **bootstrap, ranking, specs** -- intervals, the ranked entries, one spec
-   per entry (:mod:`.specs`), the report data.
+8. **bootstrap, ranking, specs** -- intervals, the ranked entries with their
+   reachable and observed ranges (:func:`.ranking.add_ranges`), one spec per
+   entry (:mod:`.specs`), the report data.
 
 Every pass runs on the pass engine (:mod:`cvdesign.passes`): tasks over leaves
 of frames, merged in a fixed tree, so the result is the same, byte for byte,
@@ -27,6 +29,7 @@ serially, on local processes or on a Dask cluster (``executor=``), whatever the
 task split or chunk size. Memory does not depend on trajectory length.
 """
 
+import logging
 import math
 from dataclasses import dataclass
 
@@ -34,19 +37,20 @@ import numpy as np
 
 from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
-from ..io.source import Source
+from ..io.source import Source, describe_selection, select_atoms
 from ..kinds import DEFAULT_KINDS
 from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
-                      LaggedPass, PoolFeaturizer, ScreeningPass, plan_tasks, reference_features,
-                      run_pass)
+                      LaggedPass, PoolFeaturizer, ProjectionRangePass, ScreeningPass, plan_tasks,
+                      reference_features, run_pass)
 from ..pool import build_pool
+from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs
+from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
+                      heldout_overlap, hints_for, ranking_entry, search, shortlist)
 from .report_data import CVReportPass, cv_plans, report_document, timescale_lags, trace_stride
-from .ranking import (bootstrap_ranked, card_interval_rows, fit_ranked, heldout_overlap,
-                      hints_for, ranking_entry, search, shortlist)
 from .screening import Screening, screen
 from .specs import describe_inputs, input_checksums, spec_document
 from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
@@ -54,6 +58,8 @@ from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
                      read_timesteps)
 
 __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file"]
+
+_log = logging.getLogger(__name__)
 
 #: Histogram bins of the score card and of the held-out CV histograms.
 N_BINS = 50
@@ -247,7 +253,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         (``'tcp://host:8786'``) a cluster (see :func:`cvdesign.parallel.as_executor`).
         The results are the same, byte for byte.
     progress : callable, default=None
-        Called with a message string at each stage.
+        Called with a message string at each stage. The same messages are
+        logged at INFO on the ``cvdesign.pipeline.suggest`` logger; progress
+        bars of the passes and the bootstrap: :func:`cvdesign.show_progress`.
 
     Returns
     -------
@@ -300,12 +308,16 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
 
 
 def _suggest(source, config, executor, progress):
-    say = progress or (lambda msg: None)
+    say = stage_messages(_log, progress)
     priors = np.full(source.n_states, 1.0 / source.n_states)
     steps = read_timesteps(source)
     lag_ps = config.lag_ps if config.lag_ps is not None else _default_lag(steps)
     lags = lag_frames(source, lag_ps, steps) if lag_ps is not None else None
 
+    selection = describe_selection(source.topology,
+                                   select_atoms(source.topology, config.selection),
+                                   config.selection)
+    say(selection)
     say("building the candidate pool")
     pool = build_pool(source, selection=config.selection, kinds=config.kinds,
                       cutoff=config.cutoff_nm, stride=config.prefilter_stride,
@@ -371,6 +383,7 @@ def _suggest(source, config, executor, progress):
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
                               boot=boot)
         _add_times(entry, fit, screening, iat_desc, longest_run_ps)
+        add_ranges(entry, pool, held.observed[rank - 1], source.states)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
         if refused:
             entry["hints_refused"] = refused
@@ -387,7 +400,7 @@ def _suggest(source, config, executor, progress):
     return Suggestions(states=list(source.states), pool=pool, scorecard=scorecard,
                        ranking=ranking, specs=specs, notes=notes, inputs=inputs,
                        input_files=output_inputs(source), objective=config.objective,
-                       lag_ps=lag_ps, report_data=report_data)
+                       lag_ps=lag_ps, selection=selection, report_data=report_data)
 
 
 # --------------------------------------------------------------------------- passes
@@ -403,7 +416,8 @@ def _screening_pass(source, base, every, steps, lags, executor):
     shift = reference_features(plan, every) if lags is not None else None
     first = ScreeningPass(every, lags=lags, shift=shift)
     spacing = EvenSpacingPass(every, steps, checked_segments(source, steps))
-    result, _ = run_pass((first, spacing), source, executor=executor, tasks=plan)
+    result, _ = run_pass((first, spacing), source, executor=executor, tasks=plan,
+                         label="screening")
     return result
 
 
@@ -426,7 +440,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     if grid is not None:
         passes.append(LagGridPass(feats, grid, shift=shift))
     results = run_pass(tuple(passes), source, executor=executor,
-                       tasks=_plan_for(base, feats.n_features, executor))
+                       tasks=_plan_for(base, feats.n_features, executor), label="statistics")
     fold_m = results[0]
     for s, per_fold in enumerate(fold_m):
         for k, m in enumerate(per_fold):
@@ -435,8 +449,9 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
                                  f"{k + 1} of {folds.n_folds}; give more frames or trajectories")
     fold_lag = None
     if lags is not None:
-        fold_lag = results[1].by_fold()
-        if config.objective in ("slow", "both") and any(m.count == 0 for m in fold_lag):
+        fold_lag = results[1].by_state_fold()  # [state][fold]: within-state slowness too
+        if config.objective in ("slow", "both") and any(
+                sum(row[k].count for row in fold_lag) == 0 for k in range(folds.n_folds)):
             raise InputError(f"a held-out fold has no lagged pairs at lag {lag_ps:g} ps; "
                              "choose a shorter --lag or give longer runs")
     fm = FoldMoments(fold_m, priors, fold_lag).standardized(
@@ -484,6 +499,9 @@ class HeldOut:
     card_desc : list of int
     card_feat : ndarray of int
     notes : list of str
+    observed : list of (ndarray, ndarray)
+        Per ranked CV, its smallest and largest value in each state (CV units,
+        shape (n_states,) each; +inf and -inf for a state without frames).
     report : dict or None
         What :class:`~cvdesign.pipeline.report_data.CVReportPass` gathered (None
         without ranked CVs).
@@ -501,6 +519,7 @@ class HeldOut:
     card_desc: list
     card_feat: np.ndarray
     notes: list
+    observed: list
     report: object = None
     report_plans: list = None
     report_lags: object = None
@@ -550,8 +569,9 @@ def _cv_plans(fits, fm, where):
 
 def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, iat_desc,
                   seg_counts, steps, first, config, executor):
-    """Histograms of every feature; held-out CV histograms and bootstrap blocks of the
-    shortlisted features; the score card's block sums -- one read of every feature."""
+    """Histograms of every feature; held-out CV histograms, bootstrap blocks and the ranked
+    CVs' per-state extremes from the shortlisted features; the score card's block sums --
+    one read of every feature."""
     screened = screening.screened
     short_set = set(screened[g] for g in short.members)
     local = []  # shortlisted features, as columns of the fold moments
@@ -573,7 +593,13 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
                        lags=lags if config.n_bootstrap else None, pairs_within_block=True,
                        sums=_CVHistograms(_cv_plans(fits, fm, where), N_BINS), columns=cols,
                        center=screening.center[cols], scale=screening.scale[cols])
-    passes = [blocks]
+    # the ranked CVs' smallest and largest values per state (their spec's CV: the full-data
+    # direction on the standardized features, as the spec's terms)
+    extremes = ProjectionRangePass(
+        every, [(np.array([where[int(i)] for i in fit.idx], dtype=np.intp), fit.w)
+                for fit in fits], columns=cols, center=screening.center[cols],
+        scale=screening.scale[cols])
+    passes = [blocks, extremes]
     notes, card, card_desc, card_feat = [], None, [], np.zeros(0, dtype=np.intp)
     if config.n_bootstrap:
         card, card_desc, card_feat, note = _card_pass(every, pool, screening, seg_counts,
@@ -592,11 +618,12 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
                                                   lags, seg_counts, steps)
         passes.append(report)
     results = run_pass(tuple(passes), source, executor=executor,
-                       tasks=_plan_for(base, every.n_features, executor))
+                       tasks=_plan_for(base, every.n_features, executor), label="held-out")
     report_result = results[-1] if report is not None else None
     if report is not None:
         results = results[:-1]
-    block_sums, card_sums = results[0], results[1] if card is not None else None
+    block_sums, observed = results[0], results[1]
+    card_sums = results[2] if card is not None else None
     counts = np.zeros((source.n_states, pool.n_features, N_BINS))
     if rest.size:
         counts[:, rest] = results[-1].counts
@@ -619,6 +646,7 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     return HeldOut(overlap=overlap, overlap_desc=overlap_desc, blocks=block_sums, where=where,
                    block_desc=desc, card=card_sums,
                    card_desc=card_desc, card_feat=card_feat, notes=notes,
+                   observed=[(observed[0, c], observed[1, c]) for c in range(len(fits))],
                    report=report_result, report_plans=plans, report_lags=report_lags)
 
 
@@ -789,9 +817,10 @@ def _bootstrap_notes(boot, held, config):
 def _add_times(entry, fit, screening, iat_desc, longest_run_ps):
     """Whether the timescale is resolved by the runs, and the CV's within-run decorrelation
     time (bounded by its slowest term)."""
-    ts = entry["timescale_ps"]
-    entry["timescale_resolved"] = None if ts is None else bool(
-        longest_run_ps is not None and ts < longest_run_ps)
+    for key in ("timescale", "timescale_within_states"):
+        ts = entry.get(f"{key}_ps")
+        entry[f"{key}_resolved"] = None if ts is None else bool(
+            longest_run_ps is not None and ts < longest_run_ps)
     entry["longest_run_ps"] = longest_run_ps
     taus = [iat_desc[screening.screened[g]] for g in fit.gidx
             if screening.screened[g] in iat_desc]
