@@ -6,6 +6,7 @@ import importlib.resources
 import json
 from pathlib import Path
 
+import mdtraj as md
 import numpy as np
 import pytest
 
@@ -243,6 +244,43 @@ def random_tasks():
     """``random_tasks(plan, rng)``: tasks of a :class:`cvdesign.passes.TaskPlan` cut at random
     leaves and shuffled (any such split must give the same bytes)."""
     return _random_tasks
+
+
+def _hopping_runs(out, *, n_runs=3, n_frames=1500, seed=5):
+    """Unlabelled runs of a four-atom toy whose C1-C2 distance hops between 0.4 and 0.8 nm
+    (a two-state Markov chain, 1 % switching per frame, AR(1) wiggle within a state)."""
+    rng = np.random.default_rng(seed)
+    top = md.Topology()
+    res = top.add_residue("HOP", top.add_chain(), resSeq=1)
+    for name in ("C1", "C2", "C3", "C4"):
+        top.add_atom(name, md.element.carbon, res)
+    paths = []
+    for k in range(n_runs):
+        state, dev = k % 2, 0.0
+        x = np.empty(n_frames)
+        for t in range(n_frames):
+            if rng.random() < 0.01:
+                state = 1 - state
+            dev = 0.7 * dev + rng.normal(0, 0.02)
+            x[t] = (0.4, 0.8)[state] + dev
+        xyz = np.zeros((n_frames, 4, 3))
+        xyz[:, 1, 0] = x
+        xyz[:, 2] = [0.0, 0.5, 0.0] + rng.normal(0, 0.02, (n_frames, 3))
+        xyz[:, 3] = [0.4, 0.4, 0.3] + rng.normal(0, 0.02, (n_frames, 3))
+        path = out / f"hop-{k + 1}.xtc"
+        md.Trajectory(xyz.astype(np.float32), top,
+                      time=np.arange(n_frames) * 0.1).save_xtc(str(path))
+        paths.append(str(path))
+    pdb = out / "hop.pdb"
+    md.Trajectory(xyz[:1].astype(np.float32), top).save_pdb(str(pdb))
+    return str(pdb), paths
+
+
+@pytest.fixture(scope="session")
+def hopping_runs():
+    """``hopping_runs(directory, n_runs=3, n_frames=1500, seed=5)``: write unlabelled runs of
+    a four-atom toy hopping between two states; returns (topology path, [run paths])."""
+    return _hopping_runs
 
 
 @pytest.fixture(scope="session")

@@ -127,23 +127,27 @@ def test_funnel_command_replaces_its_own_output_with_force(host_guest, tmp_path,
     plot.write_text("old")
     assert _run(host_guest, out, "--plot", str(plot), "--force") == 0
     assert load_spec(out).restraints and plot.read_text().lstrip().startswith("<?xml")
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["f-report.html", "f.json", "f.svg"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["f-report-data.json", "f-report.html",
+                                                          "f.json", "f.svg"]
 
 
 def test_funnel_command_writes_identical_bytes_serially_with_two_workers_and_on_dask(
         tumbled, threaded_dask, tmp_path, capsys):
     # the tumbled runs: turned, moved and wrapped frames in a periodic box
-    outs, texts, reports = [], [], []
+    outs, texts, reports, datas = [], [], [], []
     for name, extra in (("serial", ()), ("workers", ("--workers", "2")),
                         ("dask", ("--scheduler", threaded_dask.scheduler.address))):
         out = tmp_path / f"{name}.json"
         report = tmp_path / f"{name}-report.html"
+        data = tmp_path / f"{name}-report-data.json"
         assert _run(tumbled, out, *extra) == 0
         outs.append(out.read_bytes())
+        datas.append(data.read_bytes().replace(out.name.encode(), b"OUT"))
         texts.append(capsys.readouterr().out.replace(str(report), "REPORT")
-                     .replace(str(out), "OUT"))
+                     .replace(str(data), "DATA").replace(str(out), "OUT"))
         reports.append(report.read_text().replace(out.stem, "OUT"))
     assert outs[1] == outs[0] and outs[2] == outs[0]
+    assert datas[1] == datas[0] and datas[2] == datas[0]  # the positions the report draws
     assert texts[1] == texts[0] and texts[2] == texts[0]
     assert reports[1] == reports[0] and reports[2] == reports[0]
 

@@ -40,6 +40,7 @@ def test_two_local_processes_write_the_bytes_of_the_serial_run(demo_files, seria
     with using_display(progress_recorder):  # progress bars shown: the same bytes
         got = _files(suggest(_source(demo_files), executor=2, **SETTINGS), tmp_path / "o")
     assert got.keys() == serial_files.keys() and len(got) >= 5
+    assert "report-data.json" in got  # the report's histograms, traces and timescales too
     assert got == serial_files
     # a bar for each read (every frame with a state, once) and each bootstrap
     reads = [b for b in progress_recorder.bars if b.unit == "frames"]

@@ -12,7 +12,9 @@ Sub-commands:
 * ``report`` -- rebuild the HTML report of an output of ``suggest``, ``demo`` or ``funnel``.
 
 ``suggest``, ``demo`` and ``funnel`` write the report (``report.html`` in the output
-directory; ``NAME-report.html`` beside the funnel's ``NAME.json``) unless ``--no-report``.
+directory; ``NAME-report.html`` beside the funnel's ``NAME.json``) unless ``--no-report``,
+and, always, the data it draws (``report-data.json``; ``NAME-report-data.json``), so
+that ``report`` can rebuild it later.
 """
 
 import argparse
@@ -313,14 +315,15 @@ def build_parser():
                         "300 K the ligand centre then enters a wall by about 0.035 nm at kT)")
     p.add_argument("--out", required=True, metavar="FILE.json",
                    help="output spec: the distance between the pocket and ligand centres as "
-                        "the CV, with the funnel as a restraint entry; an existing file is only "
-                        "replaced with --force")
+                        "the CV, with the funnel as a restraint entry; NAME-report-data.json "
+                        "beside it holds the ligand positions the report draws; an existing "
+                        "file is only replaced with --force")
     p.add_argument("--plot", metavar="FILE.png", default=None,
                    help="also draw the funnel outline and the bound ligand positions (the "
                         "format follows the extension: .png, .svg, .pdf, ...)")
     p.add_argument("--force", action="store_true",
-                   help="replace --out (and --plot, and the report) if they exist; input "
-                        "files are never replaced")
+                   help="replace --out (and --plot, the report and its data) if they exist; "
+                        "input files are never replaced")
     _add_no_report(p, "NAME-report.html beside --out NAME.json")
     _add_executor_options(p)
 
@@ -804,6 +807,7 @@ def _cmd_funnel(args):
     from ..bias.funnel import plot_funnel, size_funnel_from_source
     from ..io.source import Source, describe_selection, select_atoms
     from ..report import report_path
+    from ..report.inputs import report_data_name
 
     if args.exit_point is not None and not all(math.isfinite(v) for v in args.exit_point):
         raise InputError(f"--exit-point {' '.join(str(v) for v in args.exit_point)}: give three "
@@ -818,6 +822,13 @@ def _cmd_funnel(args):
             raise InputError(f"--plot {args.plot!r} is the same file as --out; give two names")
         check_output_file(args.plot, force=args.force, inputs=inputs, option="--plot")
         _check_plot_format(args.plot)
+    # the report's data is written even with --no-report: 'cvdesign report' draws from it
+    data_path = Path(args.out).with_name(report_data_name("funnel", Path(args.out).name))
+    if args.plot is not None and Path(args.plot).resolve() == data_path.resolve():
+        raise InputError(f"--plot {args.plot!r} is the report data written beside --out; give "
+                         "another name")
+    check_output_file(data_path, force=args.force, inputs=inputs,
+                      option=f"the report data ({data_path.name}, beside --out)")
     report = None if args.no_report else report_path(args.out)
     if report is not None:  # (matplotlib writes no .html, so --plot cannot be the report)
         check_output_file(report, force=args.force, inputs=inputs,
@@ -836,24 +847,31 @@ def _cmd_funnel(args):
                                          executor=executor)
     spec = _funnel_spec(source, args, lig, pocket, result)
     text = spec.to_json()
+    from ..pipeline.output import dumps
+    from ..pipeline.report_data import funnel_report_document
+
+    name = Path(args.out).name
+    data_text = dumps(funnel_report_document(result["positions"], name), compact=True)
     page, report_error = None, None
     if report is not None:  # rendered first, so that the outputs are written together
         from ..report import build_report
         from ..report.inputs import Output
 
-        name = Path(args.out).name
         try:
-            page = build_report(Output("funnel", name, {name: text}, spec_name=name)).html
+            page = build_report(Output("funnel", name, {name: text, data_path.name: data_text},
+                                       spec_name=name)).html
         except Exception as exc:  # noqa: BLE001 - the spec is still written; say so
             report_error = str(exc) if isinstance(exc, CVDesignError) else (
                 f"{type(exc).__name__}: {exc} (a bug in cvdesign; please report it)")
-    paths = [args.out] + ([args.plot] if args.plot else []) + ([report] if page else [])
+    paths = [args.out, data_path] + ([args.plot] if args.plot else []) \
+        + ([report] if page else [])
     try:
         with atomic_paths(paths) as tmps:
-            with open(tmps[0], "w", encoding="utf-8", newline="\n") as fh:
-                fh.write(text)
+            for tmp, content in ((tmps[0], text), (tmps[1], data_text)):
+                with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+                    fh.write(content)
             if args.plot:
-                plot_funnel(result, tmps[1])
+                plot_funnel(result, tmps[2])
             if page:
                 with open(tmps[-1], "w", encoding="utf-8", newline="\n") as fh:
                     fh.write(page)
@@ -876,6 +894,7 @@ def _cmd_funnel(args):
     if args.plot:
         print(f"wrote {args.plot}")
     print(f"wrote {args.out}")
+    print(f"wrote {data_path} (the ligand positions the report draws)")
     if page:
         print(f"wrote {report} (open it in a browser)")
     print(f"caution: {result['caution']}")

@@ -108,6 +108,11 @@ class Suggestions:
         The atoms the pool was built from: the selection, how many atoms, in
         which residues, with mdtraj's 0-based indices
         (:func:`cvdesign.io.source.describe_selection`).
+    report_data : dict or None
+        What the report draws beyond the tables (``docs/report-data-v1.md``): per
+        ranked CV the held-out histograms in CV units, the traces and the implied
+        timescales; :meth:`report_data_json` adds the exploration's TICA coordinates.
+        None: no ``report-data.json`` is written.
 
     Examples
     --------
@@ -143,6 +148,7 @@ class Suggestions:
     lag_ps: float = None
     exploration: object = None
     selection: str = None
+    report_data: dict = None
 
     # ----------------------------------------------------------- renderings
     def scorecard_csv(self):
@@ -198,6 +204,17 @@ class Suggestions:
         return dumps({"format": "cvdesign-ranking", "version": 1, "states": self.states,
                        "objective": self.objective, "lag_ps": self.lag_ps,
                        "ranking": self.ranking, "caution": CAUTION})
+
+    def report_data_json(self):
+        """``report-data.json`` as JSON text (see ``docs/report-data-v1.md``), or None when
+        there is no report data; with an :attr:`exploration`, its ``tica`` entry holds
+        the frames in the two slowest TICA coordinates."""
+        if self.report_data is None:
+            return None
+        doc = dict(self.report_data)
+        if self.exploration is not None:
+            doc["tica"] = self.exploration.report_tica
+        return dumps(doc, compact=True)
 
     def top_table(self, n=5):
         """A plain-text table of the top `n` suggestions (separation and slowness)."""
@@ -304,7 +321,9 @@ class Suggestions:
             for w in r.get("warnings", []):
                 out += ["", f"**Warning** (rank {r['rank']}, {r['spec']}): {w}."]
         out += ["", "Files: `ranking.csv`, `ranking.json`, `scorecard.csv` (every descriptor), "
-                "`cv-NN.json` (one spec per suggestion; evaluate with `cvdesign apply`).",
+                "`cv-NN.json` (one spec per suggestion; evaluate with `cvdesign apply`)"
+                + (", `report-data.json` (what the report's figures draw)"
+                   if self.report_data is not None else "") + ".",
                 "", f"**Caution.** {CAUTION}", ""]
         return "\n".join(out)
 
@@ -312,7 +331,11 @@ class Suggestions:
         """Write every output into `out_dir`, all or nothing.
 
         Files are written into a temporary directory beside `out_dir`, which
-        is then renamed onto it, so an interrupted run leaves no partial output.
+        is then renamed onto it, so an interrupted run leaves no partial output:
+        ``ranking.csv``, ``ranking.json``, ``scorecard.csv``, ``summary.md``, the
+        ``cv-NN.json`` specs, ``states.csv`` with an exploration, and
+        ``report-data.json`` (:meth:`report_data_json`) when there is report data.
+        The HTML report is not written here (``cvdesign.report.write_report``).
 
         Parameters
         ----------
@@ -333,6 +356,9 @@ class Suggestions:
             files[r["spec"]] = dumps(spec)
         if self.exploration is not None:
             files["states.csv"] = self.exploration.states_csv()
+        data = self.report_data_json()
+        if data is not None:
+            files["report-data.json"] = data
         write_dir_atomically(out_dir, files)
         return out_dir
 
@@ -599,8 +625,24 @@ def _rounded(obj, digits=12):
     return obj
 
 
-def dumps(obj):
-    """JSON text of `obj`: sorted keys, floats rounded to 12 significant digits, no NaN."""
+def dumps(obj, *, compact=False):
+    """JSON text of `obj`: sorted keys, floats rounded to 12 significant digits, no NaN.
+
+    Parameters
+    ----------
+    obj : JSON-ready object
+    compact : bool, default=False
+        No indentation and no spaces after separators (for long arrays of numbers,
+        such as ``report-data.json``); indented by two spaces otherwise.
+
+    Examples
+    --------
+    >>> dumps({"b": [0.1 + 0.2], "a": 1}, compact=True)
+    '{"a":1,"b":[0.3]}\\n'
+    """
+    if compact:
+        return json.dumps(_rounded(obj), separators=(",", ":"), sort_keys=True,
+                          allow_nan=False) + "\n"
     return json.dumps(_rounded(obj), indent=2, sort_keys=True, allow_nan=False) + "\n"
 
 

@@ -17,10 +17,11 @@
 7. **held-out pass** -- histograms of every feature (score card overlap), the
    ranked CVs' held-out histograms and their smallest and largest value in
    each state (the observed range), bootstrap blocks, the score card's block
-   sums;
+   sums, and what the report draws (:mod:`.report_data`: held-out histograms
+   in the CVs' units, traces, implied timescales);
 8. **bootstrap, ranking, specs** -- intervals, the ranked entries with their
    reachable and observed ranges (:func:`.ranking.add_ranges`), one spec per
-   entry (:mod:`.specs`).
+   entry (:mod:`.specs`), the report data.
 
 Every pass runs on the pass engine (:mod:`cvdesign.passes`): tasks over leaves
 of frames, merged in a fixed tree, so the result is the same, byte for byte,
@@ -49,6 +50,7 @@ from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs
 from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
                       heldout_overlap, hints_for, ranking_entry, search, shortlist)
+from .report_data import CVReportPass, cv_plans, report_document, timescale_lags, trace_stride
 from .screening import Screening, screen
 from .specs import describe_inputs, input_checksums, spec_document
 from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
@@ -389,10 +391,16 @@ def _suggest(source, config, executor, progress):
         ranking.append(entry)
         specs.append(spec_document(source, pool, entry, params, checksums,
                                    config.seed if config.n_bootstrap else None))
+    report_data = None
+    if held.report is not None:
+        report_data = report_document(held.report, held.report_plans, ranking, source=source,
+                                      states=list(source.states), steps=steps,
+                                      lags=held.report_lags,
+                                      temperature_k=config.temperature_k, lag_ps=lag_ps)
     return Suggestions(states=list(source.states), pool=pool, scorecard=scorecard,
                        ranking=ranking, specs=specs, notes=notes, inputs=inputs,
                        input_files=output_inputs(source), objective=config.objective,
-                       lag_ps=lag_ps, selection=selection)
+                       lag_ps=lag_ps, selection=selection, report_data=report_data)
 
 
 # --------------------------------------------------------------------------- passes
@@ -413,6 +421,13 @@ def _screening_pass(source, base, every, steps, lags, executor):
     return result
 
 
+def _lag_grid(steps, seg_counts):
+    """The integrated-time lag grid (frames) when every file has the same frame spacing
+    (known or not), else None."""
+    uniform = len({None if v is None else round(v, 9) for v in steps.values()}) == 1
+    return iat_lags(seg_counts) if uniform else None
+
+
 def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, lag_ps,
                      seg_counts, config, executor):
     """Fold moments (full and lagged) and integrated times of the screened descriptors."""
@@ -421,8 +436,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     passes = [FoldMomentsPass(feats, folds)]
     if lags is not None:
         passes.append(LaggedPass(feats, lags, shift=shift, folds=folds, within_fold=True))
-    uniform = len({None if v is None else round(v, 9) for v in steps.values()}) == 1
-    grid = iat_lags(seg_counts) if uniform else None
+    grid = _lag_grid(steps, seg_counts)
     if grid is not None:
         passes.append(LagGridPass(feats, grid, shift=shift))
     results = run_pass(tuple(passes), source, executor=executor,
@@ -488,6 +502,12 @@ class HeldOut:
     observed : list of (ndarray, ndarray)
         Per ranked CV, its smallest and largest value in each state (CV units,
         shape (n_states,) each; +inf and -inf for a state without frames).
+    report : dict or None
+        What :class:`~cvdesign.pipeline.report_data.CVReportPass` gathered (None
+        without ranked CVs).
+    report_plans : list of CVPlan
+    report_lags : ndarray of int or None
+        Lags of the implied timescales, frames.
     """
 
     overlap: list
@@ -500,6 +520,9 @@ class HeldOut:
     card_feat: np.ndarray
     notes: list
     observed: list
+    report: object = None
+    report_plans: list = None
+    report_lags: object = None
 
 
 class _CVHistograms:
@@ -589,8 +612,16 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     if rest.size:
         passes.append(HistogramPass(every, screening.low[rest], screening.high[rest],
                                     n_bins=N_BINS, columns=rest))
+    report, plans, report_lags = None, [], None
+    if fits:
+        report, plans, report_lags = _report_pass(every, base, screening, fits, fm, folds,
+                                                  lags, seg_counts, steps)
+        passes.append(report)
     results = run_pass(tuple(passes), source, executor=executor,
                        tasks=_plan_for(base, every.n_features, executor), label="held-out")
+    report_result = results[-1] if report is not None else None
+    if report is not None:
+        results = results[:-1]
     block_sums, observed = results[0], results[1]
     card_sums = results[2] if card is not None else None
     counts = np.zeros((source.n_states, pool.n_features, N_BINS))
@@ -615,7 +646,28 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     return HeldOut(overlap=overlap, overlap_desc=overlap_desc, blocks=block_sums, where=where,
                    block_desc=desc, card=card_sums,
                    card_desc=card_desc, card_feat=card_feat, notes=notes,
-                   observed=[(observed[0, c], observed[1, c]) for c in range(len(fits))])
+                   observed=[(observed[0, c], observed[1, c]) for c in range(len(fits))],
+                   report=report_result, report_plans=plans, report_lags=report_lags)
+
+
+def _report_pass(every, base, screening, fits, fm, folds, lags, seg_counts, steps):
+    """The report's pass over the ranked CVs' terms (see :mod:`.report_data`): the pass,
+    the CVs' plans, and the lags (frames) of their implied timescales."""
+    cols = sorted({int(screening.features[i]) for fit in fits for i in fit.idx})
+    pos = {c: j for j, c in enumerate(cols)}
+    local = {int(i): pos[int(screening.features[i])] for fit in fits for i in fit.idx}
+    plans = cv_plans(fits, fm, local)
+    known = next(iter(steps.values()), None) is not None
+    grid = _lag_grid(steps, seg_counts) if known else None
+    lag = None if lags is None else next(iter(lags.values()))
+    report_lags = timescale_lags(grid, lag)
+    shift = [float(np.mean([m.mean[fit.idx] @ fit.w for m in fm.pooled()])) for fit in fits]
+    strides = {lay.index: trace_stride(lay.hi - lay.lo) for lay in base.layouts}
+    cols = np.array(cols, dtype=np.intp)
+    report = CVReportPass(every, plans, folds, strides, report_lags, shift,
+                          columns=cols, center=screening.center[cols],
+                          scale=screening.scale[cols])
+    return report, plans, report_lags
 
 
 def _card_pass(every, pool, screening, seg_counts, iat_desc, steps, lags, first):

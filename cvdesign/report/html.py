@@ -422,10 +422,11 @@ def _suggest(page, output, parsed):
                            if lag is None else f"{data_name} holds none")
     if runs:
         page.section(2, "proposed-states", "Proposed states")
-        if tica is None:
+        if tica is None or tica.get("coords") is None:
             page.not_available("the frames in the two slowest TICA coordinates by proposed "
                                "state", f"{data_name} is missing" if data is None
-                               else f"{data_name} has no TICA coordinates")
+                               else f"{data_name} has no TICA coordinates" if tica is None
+                               else "TICA found a single coordinate")
         else:
             page.figure(fg.tica_states(tica["coords"], tica["state"], states=states,
                                        lag_ps=tica["lag_ps"],
