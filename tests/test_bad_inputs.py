@@ -492,8 +492,8 @@ CLI_CASES = [
          r"argument --kernel: invalid choice: 'box'"),
     # -- demo
     Case("demo-unknown-option",
-         lambda c: ["demo", "--out", c.w("d"), "--quiet"], 2,
-         r"cvdesign demo: error: unrecognized arguments: --quiet \(see cvdesign demo --help\)"),
+         lambda c: ["demo", "--out", c.w("d"), "--seed", "3"], 2,
+         r"cvdesign demo: error: unrecognized arguments: --seed 3 \(see cvdesign demo --help\)"),
     Case("demo-out-not-empty",
          lambda c: [c.file("d/mine.txt"), ["demo", "--out", c.w("d"), "--bootstrap", "0"]][1],
          2, r"output directory '.*d' exists and is not empty"),

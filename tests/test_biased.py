@@ -572,7 +572,7 @@ def test_suggest_command_pairs_trajectories_with_bias_files_and_reports_the_samp
     assert main(argv) == 0
     out, err = capsys.readouterr()
     assert "effective sample size (Kish) of state 'closed'" in out
-    assert "cvdesign: warning: state 'closed' has a small effective sample size" in err
+    assert "cvdesign suggest: warning: state 'closed' has a small effective sample size" in err
     summary = (tmp_path / "out" / "summary.md").read_text()
     assert "effective sample size (Kish) of state 'open'" in summary
     spec = json.loads((tmp_path / "out" / "cv-01.json").read_text())

@@ -31,6 +31,7 @@ def tutorial_run(request, tmp_path_factory):
 
 def test_there_is_at_least_one_tutorial():
     assert [p.name for p in TUTORIALS][:1] == ["01_first_suggestions.py"]
+    assert "02_reading_the_report.py" in [p.name for p in TUTORIALS]
     assert "03_hand_off.py" in [p.name for p in TUTORIALS]
 
 
@@ -52,6 +53,24 @@ def test_first_tutorial_compares_each_state_with_the_spec(tutorial_run):
     assert "warning:" not in res.stdout
     assert "cvdesign apply" in res.stdout
 
+
+
+def test_report_tutorial_draws_every_figure_and_reads_their_numbers(tutorial_run):
+    """Tutorial 02: the report of the demo has every figure, and the held-out histograms it
+    reads agree with the specs' per-state means."""
+    script, _, out, res = tutorial_run
+    if script.name != "02_reading_the_report.py":
+        pytest.skip("checks the output of tutorial 02 only")
+    assert (out / "report.html").is_file() and (out / "report-data.json").is_file()
+    assert "wrote report.html: 12 figures, 0 marked 'not available'" in res.stdout
+    rows = re.findall(r"^\s+(closed|open): held-out ([-+]\d+\.\d+) ± (\d+\.\d+);  spec "
+                      r"([-+]\d+\.\d+) ± (\d+\.\d+)", res.stdout, re.MULTILINE)
+    assert len(rows) == 2 * 3  # two states, three ranked CVs
+    for _, mean, std, ref_mean, ref_std in rows:
+        assert abs(float(mean) - float(ref_mean)) <= 0.05 * float(ref_std) + 0.002
+    for figure in ("held-out histograms", "-kT ln p", "along time", "weights of the terms",
+                   "the pool's best descriptors", "redundancy groups", "implied timescales"):
+        assert figure in res.stdout, figure
 
 
 def _number(pattern, text):

@@ -23,9 +23,9 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "file_sha256",
-           "stores_time", "quiet_stdout", "check_box", "check_finite", "check_label_count",
-           "every_atom", "file_frames"]
+__all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "describe_selection",
+           "file_frames", "file_sha256", "stores_time", "quiet_stdout", "check_box",
+           "check_finite", "check_label_count", "every_atom"]
 
 #: Residue names treated as monatomic ions when choosing the default solute.
 _ION_NAMES = {
@@ -202,22 +202,6 @@ def check_label_count(segment, n_frames):
     if n_frames != n_labels:
         raise InputError(f"trajectory {str(segment.path)!r} has {n_frames} frames but "
                          f"{n_labels} labels were given; give one label per frame")
-
-
-def file_frames(path):
-    """Number of frames in a trajectory file (through mdtraj's file object).
-
-    Raises
-    ------
-    InputError
-        When mdtraj cannot open the file or count its frames.
-    """
-    try:
-        with quiet_stdout(), md.open(str(path)) as fh:
-            return int(len(fh))
-    except Exception as exc:
-        raise InputError(f"cannot count the frames of trajectory {str(path)!r}: "
-                         f"{str(exc).strip() or type(exc).__name__}; check the file") from exc
 
 
 def _check_file(path, what):
@@ -408,6 +392,118 @@ def select_atoms(topology, selection=None):
             "check the atom and residue names (mdtraj selection syntax)"
         )
     return np.unique(idx)
+
+
+def _runs(values):
+    """Runs of consecutive integers in a sorted array, as (first, last) pairs."""
+    values = np.asarray(values, dtype=np.int64)
+    if values.size == 0:
+        return []
+    cuts = np.flatnonzero(np.diff(values) != 1) + 1
+    return [(int(r[0]), int(r[-1])) for r in np.split(values, cuts)]
+
+
+def _listed(items, limit, total_runs):
+    """At most `limit` items joined, the rest elided with the number of runs."""
+    if total_runs <= limit:
+        return ", ".join(items)
+    return ", ".join(items[:limit - 1]) + f", ..., {items[-1]} ({total_runs} ranges)"
+
+
+def describe_selection(topology, atoms, selection=None, *, limit=4):
+    """One line saying which atoms a selection holds: how many, in which residues.
+
+    mdtraj selections count atoms and residues from 0 (``index``, ``resid``),
+    while residue names carry the file's own numbers (``resSeq``, often from
+    1): the line gives both, so a selection that is off by one shows.
+
+    Parameters
+    ----------
+    topology : mdtraj.Topology
+    atoms : array-like of int
+        0-based atom indices (as :func:`select_atoms` returns).
+    selection : str, default=None
+        The selection text, quoted at the start of the line; None: the default
+        selection (heavy atoms of the solute).
+    limit : int, default=4
+        Most ranges of residues or indices listed; more are elided.
+
+    Returns
+    -------
+    str
+        E.g. ``"selection 'name CA': 42 atoms in 42 residues: LYS3-GLU44 (0-based
+        mdtraj indices: atoms 10..650 in 42 ranges, resid 2..43)"``: residues
+        by name and file number, consecutive residues of one chain as a range.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); ch = top.add_chain()
+    >>> for n, name in enumerate(["ALA", "GLY", "SER", "HOH"], start=1):
+    ...     r = top.add_residue(name, ch, resSeq=n)
+    ...     for a in ["N", "CA", "C"]:
+    ...         _ = top.add_atom(a, md.element.carbon, r)
+    >>> describe_selection(top, top.select("name CA and resid 0 to 2"), "name CA and resid 0 to 2")
+    "selection 'name CA and resid 0 to 2': 3 atoms in 3 residues: ALA1-SER3 (0-based mdtraj indices: atoms 1, 4, 7, resid 0..2)"
+    >>> describe_selection(top, [3, 4, 5])
+    'default selection (heavy atoms of the solute): 3 atoms in 1 residue: GLY2 (0-based mdtraj indices: atoms 3..5, resid 1)'
+    """
+    atoms = np.unique(np.asarray(atoms, dtype=np.int64))
+    residues = sorted({topology.atom(int(i)).residue.index for i in atoms})
+    res_runs = []  # consecutive residues of one chain
+    for first, last in _runs(residues):
+        start = first
+        for k in range(first + 1, last + 1):
+            if topology.residue(k).chain.index != topology.residue(k - 1).chain.index:
+                res_runs.append((start, k - 1))
+                start = k
+        res_runs.append((start, last))
+
+    def name(i):
+        return str(topology.residue(i))
+
+    def span(a, b, join):
+        return str(a) if a == b else f"{a}{join}{b}"
+
+    names = _listed([name(a) if a == b else f"{name(a)}-{name(b)}" for a, b in res_runs],
+                    limit, len(res_runs))
+    atom_runs = _runs(atoms)
+    if len(atom_runs) <= limit:
+        atom_text = ", ".join(span(a, b, "..") for a, b in atom_runs)
+    else:
+        atom_text = f"{int(atoms[0])}..{int(atoms[-1])} in {len(atom_runs)} ranges"
+    resid_runs = _runs(residues)
+    resid_text = _listed([span(a, b, "..") for a, b in resid_runs], limit, len(resid_runs))
+    chains = {topology.residue(i).chain.index for i in residues}
+    what = ("default selection (heavy atoms of the solute)" if selection is None
+            else f"selection {selection!r}")
+    n_res = len(residues)
+    in_chains = f" of {len(chains)} chains" if len(chains) > 1 else ""
+    return (f"{what}: {atoms.size} atom{'s' if atoms.size != 1 else ''} in {n_res} "
+            f"residue{'s' if n_res != 1 else ''}{in_chains}: {names} (0-based mdtraj indices: "
+            f"atoms {atom_text}, resid {resid_text})")
+
+
+def file_frames(path):
+    """Number of frames in a trajectory file (through mdtraj's file object).
+
+    Raises
+    ------
+    InputError
+        When mdtraj cannot open the file or count its frames.
+
+    Examples
+    --------
+    >>> from cvdesign.io.demo import demo_data_dir
+    >>> file_frames(demo_data_dir() / "closed-1.xtc")
+    2000
+    """
+    try:
+        with quiet_stdout(), md.open(str(path)) as fh:
+            return int(len(fh))
+    except Exception as exc:
+        raise InputError(f"cannot count the frames of trajectory {str(path)!r}: "
+                         f"{str(exc).strip() or type(exc).__name__}; check the file") from exc
 
 
 def file_sha256(path, block=1 << 20):

@@ -16,6 +16,8 @@ not depend on the number of threads either.
 
 import contextlib
 import dataclasses
+import functools
+import logging
 import math
 import threading
 from dataclasses import dataclass
@@ -23,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from .. import progress
 from ..errors import InputError
 from ..io.source import Source, check_label_count
 from .keys import SegmentLayout
@@ -32,6 +35,8 @@ from .tree import TreeReducer, merge_optional
 __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
            "leaf_frames_for", "run_pass", "run_task", "first_frame", "reference_features"]
+
+_log = logging.getLogger(__name__)
 
 #: Frames per leaf (the unit of arithmetic) when the features are few enough.
 LEAF_FRAMES = 256
@@ -635,8 +640,18 @@ def _leaves(ctx, work):
     yield from emit(work.read_stop, True)
 
 
-def run_task(ctx, work):
+def run_task(ctx, work, tick=None):
     """Run one task in a worker: per pass, the tree nodes it completed (or its exact sum).
+
+    Parameters
+    ----------
+    ctx : _Context
+        What every task of the run shares.
+    work : _Work
+        The task.
+    tick : callable, default=None
+        ``tick(work.number, n_rows)`` after each leaf (progress, in this
+        process only; never part of the result).
 
     Returns
     -------
@@ -659,6 +674,8 @@ def run_task(ctx, work):
                         accs[i] = p.accumulate(accs[i], leaf)
                 else:
                     trees[i].add(0, k, None if leaf is None else p.map(leaf))
+            if tick is not None:
+                tick(work.number, 0 if leaf is None else leaf.n)
         return [accs[i] if exact[i] else trees[i].nodes() for i in range(len(ctx.passes))]
 
 
@@ -670,7 +687,7 @@ def _chunk_frames(source, featurizer, leaf_frames, halo=0):
     return int(max(leaf_frames, min(want, FEATURE_BUDGET // max(1, featurizer.n_features))))
 
 
-def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
+def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None, label=None):
     """Run one pass, or several sharing one read, over the frames of a source.
 
     Parameters
@@ -691,6 +708,12 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
         tasks per worker of the executor.
     chunk_frames : int, default=None
         Frames per read (memory only; results do not depend on it).
+    label : str, default=None
+        What the read is for, shown beside its progress bar when a display is
+        active (:mod:`cvdesign.progress`); None: ``'reading'``. The bar counts
+        the frames with a state read of the total, advanced leaf by leaf in
+        this process and task by task for other executors. It never changes
+        the result.
 
     Returns
     -------
@@ -717,10 +740,11 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
     if any(p.featurizer is not featurizer for p in passes):
         raise InputError("passes run together must share one featurizer object")
     with using_executor(executor) as executor:
-        return _run(passes, featurizer, source, executor, tasks, chunk_frames, single)
+        return _run(passes, featurizer, source, executor, tasks, chunk_frames, single,
+                    label or "reading")
 
 
-def _run(passes, featurizer, source, executor, tasks, chunk_frames, single):
+def _run(passes, featurizer, source, executor, tasks, chunk_frames, single, label):
     if tasks is None:
         plan = plan_tasks(source).for_features(featurizer.n_features, executor.n_workers)
     elif isinstance(tasks, TaskPlan):
@@ -742,15 +766,76 @@ def _run(passes, featurizer, source, executor, tasks, chunk_frames, single):
         leaves = plan.leaves(t.segment)
         works.append(_Work(n, t, lay.path, lay.window(start, read_stop), len(leaves),
                            leaves.start, start, stop, read_stop, halo))
-    with one_blas_thread():
-        return _reduce(passes, plan, executor, ctx, works, single)
+    _log.debug("%s: %d pass(es) over %d segment(s) in %d task(s), leaves of %d frames, "
+               "reads of %d frames, on %s", label, len(passes), plan.n_segments, len(works),
+               plan.leaf_frames, ctx.chunk_frames, type(executor).__name__)
+    with one_blas_thread(), _Progress(label, works, executor) as shown:
+        return _reduce(passes, plan, executor, ctx, works, single, shown)
 
 
-def _reduce(passes, plan, executor, ctx, works, single):
+def _selected_frames(work):
+    """Frames with a state in a task's range ``[start, stop)``."""
+    lay = work.layout
+    lo, hi = max(work.start, lay.lo), min(work.stop, lay.hi)
+    if hi <= lo:
+        return 0
+    if lay.codes is None:
+        return hi - lo
+    return int(np.count_nonzero(lay.states_of(np.arange(lo, hi)) >= 0))
+
+
+class _Progress:
+    """The progress bar of one run: frames with a state read of the total.
+
+    Tasks run in this process advance it leaf by leaf (``tick``, given to
+    :func:`run_task` only by an in-process executor, so nothing of it is ever
+    pickled); every completed task then adds what its leaves did not, so tasks
+    of other executors advance it as they complete. Inactive (and costing
+    nothing) when no display is.
+    """
+
+    def __init__(self, label, works, executor):
+        self.label, self.works, self.executor = label, works, executor
+        self.bar, self.frames, self.done, self._cm = None, None, {}, None
+
+    def __enter__(self):
+        if progress.active():
+            self.frames = [_selected_frames(w) for w in self.works]
+            self._cm = progress.bar(self.label, sum(self.frames), unit="frames")
+            self.bar = self._cm.__enter__()
+        return self
+
+    def __exit__(self, *exc):
+        if self._cm is not None:
+            return self._cm.__exit__(*exc)
+        return False
+
+    def task_fn(self):
+        """:func:`run_task`, with leaf-by-leaf progress when the tasks run in this process."""
+        if self.bar is None or not getattr(self.executor, "in_process", False):
+            return run_task
+        return functools.partial(run_task, tick=self._tick)
+
+    def _tick(self, number, n):
+        if n:
+            self.done[number] = self.done.get(number, 0) + n
+            self.bar.update(n)
+
+    def completed(self, number):
+        """Task `number` is done: count the frames its leaves did not report."""
+        if self.bar is not None:
+            rest = self.frames[number] - self.done.get(number, 0)
+            self.done[number] = self.frames[number]
+            if rest > 0:
+                self.bar.update(rest)
+
+
+def _reduce(passes, plan, executor, ctx, works, single, shown):
     seg_trees = [[TreeReducer(len(plan.leaves(si)), p.merge) if len(plan.leaves(si)) else None
                   for si in range(plan.n_segments)] for p in passes]
     exact = [None] * len(passes)
-    for number, result in executor.run(run_task, ctx, works):
+    for number, result in executor.run(shown.task_fn(), ctx, works):
+        shown.completed(number)
         segment = works[number].task.segment
         for i, p in enumerate(passes):
             if _exact(p, ctx):

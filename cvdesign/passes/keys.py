@@ -15,6 +15,9 @@ split, chunk size, executor or arrival order.
 * **bootstrap block**: ``rank // block_frames`` within (segment, state), or
   within (segment, state, fold) when folds are given (rank counted from the
   fold's first frame);
+* **thinning**: a subsample bounded in size whatever the number of frames keeps the
+  frames whose rank (or frame offset) is a multiple of :func:`thinning_stride`, a
+  function of the frame counts only;
 * **run end**: the first frame after the run of consecutive frames of one
   state that a frame belongs to; a lagged pair ``(t, t + lag)`` is valid only
   when ``t + lag`` is before it (no pair spans a file, a gap, a state change or
@@ -32,7 +35,8 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD"]
+__all__ = ["SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD",
+           "thinning_stride"]
 
 #: Fewest frames of each state in each held-out fold (the pipeline's rule).
 MIN_FRAMES_PER_FOLD = 10
@@ -406,3 +410,59 @@ def frame_keys(layout, frames, *, folds=None, block_frames=None):
         start = zeros if folds is None else folds.first_rank(layout, states, fold)
         block = (rank - start) // int(block_frames)
     return FrameKeys(states, rank, fold, block)
+
+
+def thinning_stride(counts, limit, *, multiple_of=1):
+    """The smallest stride that keeps at most `limit` frames in all.
+
+    A subsample that keeps, in each group of frames (a segment, or a (segment,
+    state) run), those whose rank ``r`` (0, 1, 2, ... within the group) has
+    ``r % stride == 0`` holds ``sum(ceil(count / stride))`` frames. This is the
+    smallest such stride, a multiple of `multiple_of`, for which that sum is at
+    most `limit` -- a function of the counts only, so the subsample is the same
+    for every task split, and bounded whatever the number of frames.
+
+    Parameters
+    ----------
+    counts : array-like of int
+        Frames in each group (zeros allowed).
+    limit : int
+        Most frames kept in all; at least the number of non-empty groups (each
+        keeps its first frame at least).
+    multiple_of : int, default=1
+        The stride is a multiple of this (to thin a subsample that was itself
+        taken with this stride).
+
+    Returns
+    -------
+    int
+        At least `multiple_of`.
+
+    Raises
+    ------
+    ValueError
+        When `limit` is smaller than the number of non-empty groups.
+
+    Examples
+    --------
+    >>> thinning_stride([2000, 2000], 1000)
+    4
+    >>> thinning_stride([999], 1000), thinning_stride([8000], 1000)
+    (1, 8)
+    >>> thinning_stride([50000, 3], 5000, multiple_of=2)
+    12
+    """
+    counts = np.asarray(counts, dtype=np.int64).reshape(-1)
+    counts = counts[counts > 0]
+    step, limit = max(1, int(multiple_of)), int(limit)
+    if counts.size > limit:
+        raise ValueError(f"limit={limit} frames cannot hold one frame of each of the "
+                         f"{counts.size} groups")
+
+    def kept(stride):
+        return int(np.sum(-(-counts // stride)))
+
+    m = max(1, -(-int(counts.sum()) // (limit * step)))  # a lower bound
+    while kept(m * step) > limit:
+        m += 1
+    return m * step

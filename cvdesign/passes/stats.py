@@ -14,6 +14,8 @@ Each returns the objects the rest of cvdesign works with
   per fold, per (state, fold) or per run on demand;
 * :class:`LagGridPass` -- the same, diagonal, at every lag of a grid (one read);
 * :class:`HistogramPass` -- per-state histograms on fixed bins (exact counts);
+* :class:`ProjectionRangePass` -- per-state smallest and largest value of linear
+  projections of the features (exact);
 * :class:`BlockPass` -- per-(state, fold, segment, bootstrap block) moments,
   lagged moments and additive sums, for the block bootstrap;
 * :class:`CardPass` -- per-(state, segment, block) sums of many features (moments,
@@ -36,7 +38,7 @@ from .engine import Pass, _lag_halo
 from .keys import frame_keys
 
 __all__ = ["FeaturePass", "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass",
-           "LaggedResult", "LagGridPass", "HistogramPass", "BlockPass", "CardPass", "CardSums",
+           "LaggedResult", "LagGridPass", "HistogramPass", "ProjectionRangePass", "BlockPass", "CardPass", "CardSums",
            "merge_keyed", "group_rows"]
 
 
@@ -543,6 +545,73 @@ class HistogramPass(FeaturePass):
 
     def merge(self, a, b):
         return a.merge(b)
+
+    def finish(self, partial, plan):
+        return self._empty(plan.n_states) if partial is None else partial
+
+
+class ProjectionRangePass(FeaturePass):
+    """Per-state smallest and largest value of linear projections of the features.
+
+    A projection is ``sum_j weights[j] * x[:, positions[j]]`` of the features as
+    the pass uses them (after ``columns``, ``center``, ``scale``), summed term by
+    term in the order given, so each frame's value is the same whatever leaf it
+    is read in; the minimum and maximum are exact, so the result is the same,
+    bit for bit, for any split of the frames, order of arrival or executor.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    projections : list of (array-like of int, array-like of float)
+        ``(positions, weights)`` per projection: feature positions (after
+        ``columns``) and their weights, of equal length >= 1.
+    columns, center, scale : optional
+
+    Returns an ndarray of shape (2, n_projections, n_states), float64: the
+    smallest (``[0]``) and largest (``[1]``) value per projection and state;
+    +inf and -inf for a state without frames.
+
+    Examples
+    --------
+    >>> from cvdesign.passes import CoordinateFeaturizer
+    >>> proj = ProjectionRangePass(CoordinateFeaturizer([0]), [([0, 1], [1.0, -1.0])])
+    >>> proj.n_features, len(proj.projections)
+    (3, 1)
+    """
+
+    exact = True
+
+    def __init__(self, featurizer, projections, *, columns=None, center=None, scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.projections = []
+        for positions, weights in projections:
+            positions = np.asarray(positions, dtype=np.intp).reshape(-1)
+            weights = np.asarray(weights, dtype=np.float64).reshape(-1)
+            if positions.size == 0 or positions.size != weights.size:
+                raise ValueError("a projection needs as many weights as positions, at least one")
+            self.projections.append((positions, weights))
+
+    def _empty(self, n_states):
+        out = np.empty((2, len(self.projections), n_states))
+        out[0], out[1] = np.inf, -np.inf
+        return out
+
+    def map(self, leaf):
+        x = self.values(leaf.x)
+        out = self._empty(leaf.n_states)
+        states = leaf.states
+        if states.size == 0:
+            return out
+        for p, (positions, weights) in enumerate(self.projections):
+            v = x[:, positions[0]] * weights[0]
+            for j, w in zip(positions[1:], weights[1:]):
+                v = v + x[:, j] * w
+            np.minimum.at(out[0, p], states, v)
+            np.maximum.at(out[1, p], states, v)
+        return out
+
+    def merge(self, a, b):
+        return np.stack([np.minimum(a[0], b[0]), np.maximum(a[1], b[1])])
 
     def finish(self, partial, plan):
         return self._empty(plan.n_states) if partial is None else partial

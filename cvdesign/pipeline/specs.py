@@ -109,6 +109,7 @@ def spec_document(source, pool, entry, params, checksums, seed):
                      "residues": residue_hashes(top)},
         "descriptors": descriptors, "terms": terms, "offset": 0.0, "periodic": False,
         "states": entry["states"], "scores": scores,
+        "reachable_range": entry["reachable_range"], "observed_range": entry["observed_range"],
         **({"hints": entry["hints"]} if entry.get("hints") else
            {"hints": {"hints_refused": entry["hints_refused"]}} if entry.get("hints_refused")
            else {}),
