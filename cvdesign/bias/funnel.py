@@ -866,6 +866,10 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
     if not isinstance(source, Source):
         raise InputError(f"size_funnel_from_source() needs a Source of the bound-state "
                          f"trajectories, not {type(source).__name__}")
+    if source.biased:
+        raise InputError("size_funnel_from_source() sizes the funnel from the bound state's "
+                         "unbiased frames and does not reweight biased runs; give "
+                         "trajectories without bias energies")
     n_atoms = source.topology.n_atoms
     groups = []
     for name, group in (("pocket", pocket), ("ligand", ligand)):

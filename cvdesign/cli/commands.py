@@ -33,6 +33,7 @@ import numpy as np
 from .._version import __version__
 from ..constants import COORDINATION_EXPONENTS, COORDINATION_R0_NM
 from ..errors import CVDesignError, InputError
+from ..io.bias import is_number as _is_number
 from ..kinds import DEFAULT_KINDS, KINDS
 
 __all__ = ["main", "build_parser", "EXIT_BROKEN_PIPE"]
@@ -155,7 +156,8 @@ def _add_suggest_options(p):
                         "with increasing stored times keep their own")
     p.add_argument("--temperature", type=_positive_float, default=300.0, metavar="K",
                    help="temperature of the biased run in K, for the bias-parameter hints "
-                        "stored in each spec (default: 300)")
+                        "stored in each spec, and of the biased runs given with --bias-energy, "
+                        "whose frames are reweighted at it (default: 300)")
     p.add_argument("--md-step-fs", type=_positive_float, default=2.0, metavar="FS",
                    help="MD step of the biased run in fs, for the hints (default: 2; 0.01 to "
                         "100 fs accepted)")
@@ -215,6 +217,19 @@ def build_parser():
                             "(which is then required), checked to be metastable from the runs' "
                             "transitions (a warning names any that is not; none metastable is "
                             "refused), written to states.csv, and CVs are designed for them")
+    p.add_argument("--bias-energy", nargs=2, action="append", metavar=("TRAJ", "FILE"),
+                   default=None,
+                   help="a biased run: a trajectory given with --state and its bias-energy "
+                        "file (one bias energy in kJ/mol per frame of the whole trajectory, "
+                        "frame 0 first; '#' comments; one column, or columns with a header "
+                        "line, the one named 'bias' read unless --bias-column says otherwise). "
+                        "Its frames are reweighted by exp(V/kT) at --temperature, and its "
+                        "lagged pairs taken in rescaled time dt*exp(V/kT). Repeat for each "
+                        "biased run; every run of a state must be biased, or none")
+    p.add_argument("--bias-column", metavar="N|NAME", default=None,
+                   help="column of the --bias-energy files holding the bias energies: a "
+                        "number counted from 1, or a header name (default: the only column, "
+                        "or the one named 'bias')")
     p.add_argument("--n-states", type=_at_least_two, default=None, metavar="N",
                    help="with --runs: the number of states to propose (default: 2 to 6, the "
                         "fewest that are all metastable among the best mean silhouettes)")
@@ -459,9 +474,18 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     # refuse an impossible temperature or MD step before reading anything; warn once
     for warning in check_run_conditions(args.temperature, args.md_step_fs):
         _log.warning("%s", warning)
-    given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or [])
+    biases = getattr(args, "bias_energy", None) or []
+    bias_column = getattr(args, "bias_column", None)
+    given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or []) \
+        + [b for _, b in biases]
     prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json",
                        owned=is_output_file)
+    if biases and runs:
+        raise InputError("--bias-energy goes with --state: proposing states from unlabelled "
+                         "biased runs (--runs) is not supported yet")
+    if bias_column is not None and not biases:
+        raise InputError("--bias-column goes with --bias-energy TRAJ FILE: it says which "
+                         "column of the bias-energy files holds the bias energies")
     if runs:
         if args.lag is None:
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
@@ -478,14 +502,17 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         if dup:
             raise InputError(f"state {dup[0]!r} is given twice; give each state once with all "
                              "of its files")
-        source = Source(topology, timestep=args.frame_step_ps)
+        source = Source(topology, timestep=args.frame_step_ps,
+                        temperature=args.temperature if biases else None)
+        bias_of = _bias_files(biases, [f for entry in states for f in entry[1:]])
         for entry in states:
             name, files = entry[0], entry[1:]
             if not files:
                 raise InputError(f"--state {name} has no trajectory files; use --state NAME "
                                  "FILE [FILE ...]")
             for f in files:
-                source.add(f, state=name)
+                source.add(f, state=name, bias=bias_of.get(f),
+                           bias_column=bias_column if f in bias_of else None)
     exploration = None
     with _executor(args) as executor:
         if runs:
@@ -507,6 +534,9 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                          temperature=args.temperature, md_step_fs=args.md_step_fs,
                          executor=executor)
     result.exploration = exploration
+    if source.biased:  # small effective sample sizes (also in summary.md)
+        for warning in source.reweighting().describe()[1]:
+            _log.warning("%s", warning)
     result.write(out, force=args.force)
     report_ok = args.no_report or _report_after(out, "suggest")
     if not args.quiet:
@@ -528,6 +558,26 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
              f"; open {Path(out) / 'report.html'} in a browser for the figures"), file=stream)
     print(f"caution: {CAUTION}", file=stream)
     return result, report_ok
+
+
+def _bias_files(biases, files):
+    """``{trajectory as given with --state: bias-energy file}`` from the --bias-energy pairs."""
+    out = {}
+    for traj, bias in biases:
+        if not Path(traj).is_file():
+            raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} does not exist; "
+                             "give a trajectory of --state and its bias-energy file")
+        match = [f for f in files if Path(f).is_file() and os.path.samefile(f, traj)]
+        if not match:
+            raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} is not given "
+                             "with --state; pair each biased run of the states with its "
+                             "bias-energy file")
+        for f in match:
+            if f in out:
+                raise InputError(f"--bias-energy names trajectory {traj!r} twice; give one "
+                                 "bias-energy file per trajectory")
+            out[f] = bias
+    return out
 
 
 def _report_after(out, command, write=None):
@@ -597,14 +647,6 @@ def _cmd_apply(args):
 
 #: Header names of a first column that numbers frames or times rather than holding the CV.
 _INDEX_COLUMNS = ("frame", "index", "idx", "step", "time")
-
-
-def _is_number(text):
-    try:
-        float(text)
-    except ValueError:
-        return False
-    return True
 
 
 def _looks_like_index(name, cells):

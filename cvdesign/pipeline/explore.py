@@ -797,6 +797,10 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         raise InputError(f"propose_states() needs a Source (a topology and the runs), not "
                          f"{type(source).__name__}; build one with Source('top.pdb') and "
                          ".add('run1.xtc', 'runs') for each run")
+    if source.biased:
+        raise InputError("propose_states() does not reweight biased runs yet: give runs "
+                         "without bias energies, or label the biased run's frames by state "
+                         "(Source.add_labelled(path, labels, bias=...)) and call suggest()")
     if not (isinstance(lag, (int, float)) and math.isfinite(lag) and lag > 0):
         raise InputError(f"lag={lag!r} must be a positive time in ps (give --lag PS)")
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):

@@ -56,6 +56,9 @@ def _segments_provenance(source):
                     counts[x] = counts.get(x, 0) + 1
             row.update({"labels": {"n_frames": len(labels), "frames_per_state": counts,
                                    "sha256": _labels_sha256(labels)}})
+        if seg.bias is not None:  # a biased run: its frames were reweighted
+            row["bias"] = {"file": seg.bias_path.name, "sha256": file_sha256(seg.bias_path),
+                           "column": seg.bias_column, "temperature_k": source.temperature}
         out.append(row)
     return out
 

@@ -174,7 +174,11 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     Parameters
     ----------
     source : cvdesign.io.source.Source
-        Topology and trajectories with at least two states.
+        Topology and trajectories with at least two states. Biased runs (given
+        with their bias energies, ``Source(top, temperature=K).add(traj, state,
+        bias=FILE)``) are reweighted by ``exp(V/kT)`` in every statistic, and
+        their lagged pairs taken in rescaled time ``dt exp(V/kT)``; the notes
+        give each state's effective sample size (see :mod:`cvdesign.io.bias`).
     objective : {'separate', 'slow', 'both'}, default='separate'
         What the search maximizes on held-out folds: the separation of the
         states (Fisher ratio of the discriminant direction), the slowness of
@@ -241,6 +245,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     temperature : float, default=300.0
         Temperature in K of the biased run, for the bias-parameter hints stored
         in each spec (recompute them with ``cvdesign hints``); 1 to 5000 K.
+        (Biased inputs are reweighted at the source's own ``temperature``.)
     md_step_fs : float, default=2.0
         MD step in fs of the biased run, for the hints; 0.01 to 100 fs (see
         :func:`cvdesign.bias.hints.check_run_conditions`). When the hints of a
@@ -325,6 +330,10 @@ def _suggest(source, config, executor, progress):
     notes = list(pool.notes)
     base = plan_tasks(source)
     every = PoolFeaturizer(pool)
+    reweighting = source.reweighting()  # biased runs (None without)
+    if reweighting is not None and lags is not None:
+        lag_ps, lags, rescale_note = _rescaled_lag(reweighting, lags, lag_ps, config)
+        notes += rescale_note
 
     say(f"pool: {len(pool)} descriptors, {pool.n_features} features; screening pass")
     first = _screening_pass(source, base, every, steps, lags, executor)
@@ -337,6 +346,12 @@ def _suggest(source, config, executor, progress):
     lag_ps, lags, lag_note = _slowness_lag(source, config, seg_counts, steps, first, lag_ps,
                                            lags)
     notes += lag_note
+    if reweighting is not None:
+        rw_notes, _ = reweighting.describe(lags)
+        notes += rw_notes
+        say("reweighted biased runs; effective sample sizes (Kish): " + ", ".join(
+            f"{source.states[s]!r} {reweighting.ess[s]:.1f} of {reweighting.frames[s]} frames"
+            for s in reweighting.biased_states))
     screening = screen(pool, source.states, first, priors, objective=config.objective,
                        screen_size=config.screen_size, lagged=lags is not None)
     notes += screening.notes
@@ -345,7 +360,8 @@ def _suggest(source, config, executor, progress):
     notes.append(_folds_note(folds))
     say(f"statistics pass ({len(screening.screened)} descriptors screened)")
     fm, iat_desc, iat_note = _statistics_pass(source, base, pool, screening, folds, priors, steps,
-                                              lags, lag_ps, seg_counts, config, executor)
+                                              lags, lag_ps, seg_counts, config, executor,
+                                              reweighting)
     notes += iat_note
 
     short = shortlist(pool, screening, fm, priors, config, notes)
@@ -373,7 +389,8 @@ def _suggest(source, config, executor, progress):
                          "blocks); give more or longer runs")
 
     scorecard = _scorecard(pool, screening, short, held.overlap_desc, iat_desc, card_ci)
-    run_ps = [seg_counts[si].sum() * dt for si, dt in steps.items() if dt is not None]
+    run_ps = [_run_frames(source, reweighting, seg_counts, si) * dt for si, dt in steps.items()
+              if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
     params = config.parameters(lag_ps, folds)
     checksums = input_checksums(source, inputs)
@@ -429,7 +446,7 @@ def _lag_grid(steps, seg_counts):
 
 
 def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, lag_ps,
-                     seg_counts, config, executor):
+                     seg_counts, config, executor, reweighting=None):
     """Fold moments (full and lagged) and integrated times of the screened descriptors."""
     feats = PoolFeaturizer(pool.subset(screening.screened))
     shift = screening.center[screening.features]
@@ -469,7 +486,8 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     n = feats.n_features
     rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-1]])
     tau, decayed, window = integrated_time(grid, rho_grid, dt, return_window=True)
-    tau_lo, tau_hi = integrated_time_interval(tau, window, int(seg_counts.sum()))
+    tau_lo, tau_hi = integrated_time_interval(tau, window,
+                                              _effective_frames(seg_counts, reweighting))
     for gi, i in enumerate(screening.screened):
         g = screening.groups[gi]
         j = int(g[np.argmax(tau[g])])
@@ -535,7 +553,7 @@ class _CVHistograms:
         self.plans = plans
         self.n_bins = n_bins
 
-    def __call__(self, values, key):
+    def __call__(self, values, key, weights=None):
         k = key[1]
         h = np.zeros((len(self.plans), self.n_bins))
         for ci, (p_idx, fold_w, ranges) in enumerate(self.plans):
@@ -543,7 +561,7 @@ class _CVHistograms:
             v = values[:, p_idx] @ fold_w[k]
             b = np.clip(np.floor((v - lo) / (hi - lo) * self.n_bins).astype(np.intp), 0,
                         self.n_bins - 1)
-            h[ci] = np.bincount(b, minlength=self.n_bins)
+            h[ci] = np.bincount(b, weights=weights, minlength=self.n_bins)
         return {"h": h}
 
 
@@ -709,6 +727,40 @@ def _default_lag(steps):
     if len(known) == 1 and all(v is not None for v in steps.values()):
         return 10 * next(iter(steps.values()))
     return None
+
+
+def _rescaled_lag(reweighting, lags, lag_ps, config):
+    """(lag in ps, lags, notes) once lagged pairs in rescaled time are known to be possible:
+    a lag the user gave is refused when they are not, the default one dropped with a note."""
+    try:
+        reweighting.check_rescaled_time(lags)
+    except InputError as exc:
+        if config.lag_ps is not None:
+            raise
+        return None, None, [f"slowness not measured: {exc}"]
+    return lag_ps, lags, []
+
+
+def _run_frames(source, reweighting, seg_counts, si):
+    """Length of a segment in frame spacings: its frames, or its rescaled time when biased."""
+    if reweighting is None or si not in reweighting.clocks:
+        return seg_counts[si].sum()
+    seg = source.segments[si]
+    if seg.labels is not None:
+        return reweighting.rescaled_frames(si, 0, seg.labels.shape[0])
+    n = reweighting.weights[si].size
+    return reweighting.rescaled_frames(si, seg.start or 0, n if seg.stop is None else seg.stop)
+
+
+def _effective_frames(seg_counts, reweighting):
+    """Frames of all runs, with the effective sample size of each reweighted state in place
+    of its frames (for the asymptotic interval of the integrated times)."""
+    if reweighting is None:
+        return int(seg_counts.sum())
+    per_state = seg_counts.sum(axis=0).astype(np.float64)
+    for s in reweighting.biased_states:
+        per_state[s] = reweighting.ess[s]
+    return max(1, int(round(per_state.sum())))
 
 
 def _refuse_empty_states(source, seg_counts):

@@ -331,20 +331,33 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
 
     The stride counts each state's own frames within each file, so frame ranges
     and label arrays are subsampled on their own frames, not on the file's grid.
+    Frames of biased runs are weighted (:meth:`cvdesign.io.source.Source.reweighting`).
     Returns (means of shape (n_states, n_values), number of frames used). The
     frames read advance a progress bar labelled `label` (:mod:`cvdesign.progress`).
     """
     sums = np.zeros((source.n_states, n_values))
     counts = np.zeros(source.n_states)
+    frames_used = np.zeros(source.n_states, dtype=np.int64)
+    reweighting = source.reweighting()
+    weights = {} if reweighting is None else reweighting.weights
 
-    def add(traj, rows, s):
+    def add(traj, rows, s, w=None):
         sub = md.Trajectory(traj.xyz[rows], None)  # coordinates only: no topology copy
         periodic = traj.unitcell_vectors is not None
         if periodic:  # lengths and angles, as traj[rows] keeps them
             sub.unitcell_lengths = traj.unitcell_lengths[rows]
             sub.unitcell_angles = traj.unitcell_angles[rows]
-        counts[s] += sub.n_frames
-        sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
+        frames_used[s] += sub.n_frames
+        if w is None:
+            counts[s] += sub.n_frames
+            sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
+        else:
+            counts[s] += w.sum()
+            sums[s] += w @ values(sub, periodic).astype(np.float64)
+
+    def weights_of(chunk, rows):
+        w = weights.get(chunk.segment_index)
+        return None if w is None else w[chunk.frames[rows]]
 
     strided = stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
                                  for seg in source.segments)
@@ -356,7 +369,8 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
             for chunk in source.iter_chunks(atom_indices=atoms, stride=stride):
                 group = chunk.frames // source.chunk_size
                 for g in np.unique(group):
-                    add(chunk.trajectory, np.flatnonzero(group == g), int(chunk.states[0]))
+                    rows = np.flatnonzero(group == g)
+                    add(chunk.trajectory, rows, int(chunk.states[0]), weights_of(chunk, rows))
                 shown.update(chunk.frames.size)
         else:
             seen = {}
@@ -368,15 +382,15 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
                     seen[key] = seen.get(key, 0) + rows.size
                     rows = rows[rank % stride == 0]
                     if rows.size:
-                        add(chunk.trajectory, rows, int(s))
+                        add(chunk.trajectory, rows, int(s), weights_of(chunk, rows))
                 shown.update(chunk.frames.size)
-    empty = [source.states[s] for s in range(source.n_states) if counts[s] == 0]
+    empty = [source.states[s] for s in range(source.n_states) if frames_used[s] == 0]
     if empty:
         raise InputError(
             f"state(s) {', '.join(map(repr, empty))} have no frames; "
             "check the files and frame ranges given for them"
         )
-    return sums / counts[:, None], int(counts.sum())
+    return sums / counts[:, None], int(frames_used.sum())
 
 
 def residue_groups(topology, atoms):
