@@ -467,14 +467,14 @@ def term_weights(name, label, terms):
             _interval(left, yi, ci)
         left.axvline(0.0, color="black", lw=0.6)
         left.set_yticks(y, [_shorten(v) for v in labels])
-        left.set_xlabel("weight on the standardized term (CV units per term std)")
+        left.set_xlabel("weight on the standardized term\n(CV units per term std)")
         left.set_title("weights (black: 95 % bootstrap interval)")
         if all(f is None for f in freq):
             _no_data(right, "selection frequency not measured\n(no bootstrap refits)")
         else:
             right.barh(y, [0.0 if f is None else f for f in freq], color="#999999", height=0.6)
         right.set_xlim(0.0, 1.0)
-        right.set_xlabel("selection frequency (fraction of bootstrap refits)")
+        right.set_xlabel("selection frequency\n(fraction of bootstrap refits)")
         right.set_title("how often refits keep the term")
         data = {"labels": labels, "weights": weights, "weight_ci": cis,
                 "selection_frequency": freq}
