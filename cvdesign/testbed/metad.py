@@ -175,10 +175,12 @@ class WellTemperedBias:
 
     Parameters
     ----------
-    cv : callable
+    cv : callable or None
         ``cv(x) -> (value, gradient)`` for one configuration `x` of shape
         ``(n_atoms, 3)`` in nm; `gradient` has the shape of `x` (units of the
-        CV per nm).
+        CV per nm). None when an engine evaluates the CV and applies the
+        forces itself (as :func:`cvdesign.testbed.openmm_metad.run_openmm_biased`
+        does); the bias is then not callable as a force-field hook.
     sigma : float
         Width (standard deviation) of the Gaussian kernels, in units of the CV.
     height : float
@@ -237,8 +239,9 @@ class WellTemperedBias:
 
     def __init__(self, cv, *, sigma, height, interval_steps, bias_factor, temperature, grid,
                  periodic=False):
-        if not callable(cv):
-            raise TypeError(f"cv must be a callable cv(x) -> (value, gradient); got {cv!r}")
+        if cv is not None and not callable(cv):
+            raise TypeError(f"cv must be a callable cv(x) -> (value, gradient) or None; got "
+                            f"{cv!r}")
         self.cv = cv
         self.sigma = float(sigma)
         self.height = float(height)
@@ -445,6 +448,9 @@ class WellTemperedBias:
         forces : ndarray of the shape of `x`
             ``-dV/ds grad s``, kJ/mol/nm.
         """
+        if self.cv is None:
+            raise TypeError("this bias has no CV callable (cv=None): the engine that "
+                            "evaluates the CV applies its forces")
         s, grad = self.cv(x)
         value, deriv = self.bias_and_derivative(s)
         forces = -np.asarray(deriv, dtype=np.float64)[..., None, None] * np.asarray(
