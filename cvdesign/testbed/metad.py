@@ -53,6 +53,7 @@ __all__ = [
     "run_biased",
     "softened_delta_f",
     "spec_cv",
+    "well_centers",
     "well_delta_f",
 ]
 
@@ -717,6 +718,18 @@ def asymmetric_torsion_delta_f(system, temperature=300.0):
     return well_delta_f(phi, v, temperature, system.wells["cis"], system.wells["trans"])
 
 
+def well_centers(*wells):
+    """The middle of each ``(low, high)`` interval of a dihedral, rad (``low > high`` wraps).
+
+    Examples
+    --------
+    >>> [round(c, 4) for c in well_centers((-1.0, 1.0), (2.0, -1.0))]
+    [0.0, -2.6416]
+    """
+    return [float(np.angle(np.exp(0.5j * (lo + hi + (2 * np.pi if lo > hi else 0.0)))))
+            for lo, hi in wells]
+
+
 def _in_interval(s, interval):
     lo, hi = interval
     return (s >= lo) & (s <= hi) if lo <= hi else (s >= lo) | (s <= hi)
@@ -867,8 +880,7 @@ def softened_delta_f(system, n_steps, *, temperature, friction, md_step_ps, fact
     stderr = float(np.sqrt((n - 1) / n * np.sum((jack - jack.mean()) ** 2)))
     from .scenarios import count_transitions  # scenarios imports the demo writer
 
-    centers = [float(np.angle(np.exp(0.5j * (lo + hi + (2 * np.pi if lo > hi else 0.0)))))
-               for lo, hi in (system.wells[a], system.wells[b])]
+    centers = well_centers(system.wells[a], system.wells[b])
     crossings = sum(count_transitions(p, centers=centers) for p in phi.T)
     return SoftenedReference(delta_f=float(delta), stderr=stderr, n_transitions=int(crossings),
                              effective_samples=float(w.sum() ** 2 / (w * w).sum()),

@@ -21,14 +21,16 @@ non-periodic table is zero outside its range in OpenMM, so its argument is
 clamped to the grid: beyond the grid the bias is held at its edge value and
 exerts no force (the fraction of depositions out there is reported).
 
-The reference (:func:`umbrella_delta_f`) needs neither the CV nor the bias:
-umbrella sampling along a dihedral (Torrie and Valleau, J. Comput. Phys. 23,
-187, 1977, from memory), windows swept once from each state around the circle,
-combined by the weighted histogram analysis method (Kumar, Rosenberg, Bouzida,
-Swendsen and Kollman, J. Comput. Chem. 13, 1011, 1992, from memory). It is
-trustworthy when the dihedral is the only slow motion (as for
-:func:`~cvdesign.testbed.amide.methylacetamide`); the two sweeps disagree when
-it is not, and :attr:`UmbrellaReference.hysteresis` says by how much.
+The reference (:func:`torsion_cycle_delta_f`) needs neither the CV nor the
+bias: the force field's own torsion terms about the slow bond are switched off,
+so that plain MD crosses between the wells freely and their populations give
+the free-energy difference; switching the terms back on within each well is
+computed by MBAR over a ladder of scale factors. That thermodynamic cycle is
+exact up to sampling error, whatever else moves slowly at the barrier. (An
+umbrella-sampling profile along the dihedral alone was tried first and is not
+used: for N-methylacetamide its two sweep directions disagreed by 1 to 5
+kJ/mol, most likely because the amide hydrogen, whose own torsion terms also
+resist the rotation, lags behind the heavy atoms at the barrier.)
 
 OpenMM is imported only when a force is built or a run starts. Units: nm, ps,
 kJ/mol, rad, K.
@@ -55,12 +57,13 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..constants import BOLTZMANN_KJ_MOL_K, TWO_PI
-from .metad import BiasedRun, well_delta_f
+from ..constants import BOLTZMANN_KJ_MOL_K
+from .metad import BiasedRun, well_centers
 
-__all__ = ["OpenMMBiasedRun", "UmbrellaReference", "bias_force", "make_context",
-           "reweighting_offset", "run_openmm_biased", "run_unbiased", "umbrella_delta_f",
-           "update_bias_force", "wham_periodic", "weighted_delta_f"]
+__all__ = ["OpenMMBiasedRun", "TorsionCycleReference", "bias_force", "make_context",
+           "mbar_free_energies", "reweighting_offset", "run_openmm_biased", "run_unbiased",
+           "torsion_cycle_delta_f", "torsion_energy", "torsion_terms", "update_bias_force",
+           "weighted_delta_f"]
 
 
 def _num(value):
@@ -468,190 +471,278 @@ def run_openmm_biased(system, cv_force, x0, n_steps, *, bias, friction, md_step_
 
 
 # --------------------------------------------------------------------------
-# The reference: umbrella sampling along a dihedral, WHAM.
+# The reference: the torsion's own terms switched off and on again (MBAR).
 
 
-def _wrap(d):
-    return d - TWO_PI * np.round(d / TWO_PI)
+def _bonded_pairs(system):
+    """Atom pairs bonded in `system`: harmonic bonds and constraints."""
+    import openmm
+
+    pairs = {frozenset(system.getConstraintParameters(i)[:2])
+             for i in range(system.getNumConstraints())}
+    for force in system.getForces():
+        if isinstance(force, openmm.HarmonicBondForce):
+            pairs |= {frozenset(force.getBondParameters(i)[:2])
+                      for i in range(force.getNumBonds())}
+    return pairs
 
 
-def wham_periodic(samples, centers, force_constant, temperature, n_bins=120, tol=1e-10,
-                  max_iter=100_000):
-    """Free-energy profile along a dihedral from harmonic umbrella windows (WHAM).
+def torsion_terms(system, bond):
+    """The proper-torsion terms about one bond, as ``[(i, j, k, l, n, phase, k_kj_mol), ...]``.
 
     Parameters
     ----------
-    samples : sequence of array-like
-        Dihedral values sampled in each window, rad.
-    centers : array-like of shape (n_windows,)
-        Window centres, rad.
-    force_constant : float
-        ``k`` of the restraint ``0.5 k d**2`` (``d`` the wrapped difference from
-        the centre), kJ/mol/rad**2.
-    temperature : float
-        K.
-    n_bins : int, default=120
-        Bins on ``[-pi, pi)``.
+    system : openmm.System
+    bond : tuple of 2 int
+        The central bond ``(j, k)``, 0-based.
+
+    Returns
+    -------
+    list of tuple
+        Every ``PeriodicTorsionForce`` term ``k (1 + cos(n theta - phase))``
+        whose middle atoms are the bond and whose outer atoms are bonded to
+        them (impropers, which keep atoms planar rather than turn a bond, are
+        left out): atoms, periodicity, phase (rad), amplitude (kJ/mol).
+    """
+    import openmm
+
+    bonded = _bonded_pairs(system)
+    middle = frozenset(int(a) for a in bond)
+    terms = []
+    for force in system.getForces():
+        if isinstance(force, openmm.PeriodicTorsionForce):
+            for t in range(force.getNumTorsions()):
+                i, j, k, l, n, phase, amp = force.getTorsionParameters(t)
+                if ({j, k} == middle and frozenset((i, j)) in bonded
+                        and frozenset((k, l)) in bonded):
+                    terms.append((i, j, k, l, int(n), phase._value, amp._value))
+    return terms
+
+
+def torsion_energy(x, terms):
+    """Energy of torsion terms (:func:`torsion_terms`) at positions `x` (``(..., n_atoms, 3)``), kJ/mol."""
+    from .forcefield import dihedral_angles
+
+    if not terms:
+        return np.zeros(np.shape(x)[:-2])
+    theta = dihedral_angles(x, [t[:4] for t in terms])
+    n = np.array([t[4] for t in terms], dtype=np.float64)
+    phase = np.array([t[5] for t in terms])
+    amp = np.array([t[6] for t in terms])
+    return (amp * (1.0 + np.cos(n * theta - phase))).sum(axis=-1)
+
+
+def mbar_free_energies(reduced, counts, tol=1e-10, max_iter=100_000):
+    """Dimensionless free energies of K ensembles from pooled samples (MBAR).
+
+    Parameters
+    ----------
+    reduced : array-like of shape (K, N)
+        ``u_k(x_n)``: reduced potential (energy / kT) of every pooled sample in
+        every ensemble.
+    counts : array-like of shape (K,)
+        Samples drawn from each ensemble (summing to N).
     tol : float, default=1e-10
-        Convergence of the window free energies, in kT.
     max_iter : int, default=100000
 
     Returns
     -------
-    mids : ndarray of shape (n_bins,)
-        Bin centres, rad.
-    f : ndarray of shape (n_bins,)
-        Free energy, kJ/mol, minimum 0 (inf in empty bins).
+    f : ndarray of shape (K,)
+        ``-ln Z_k``, relative to the first ensemble (Shirts and Chodera, J.
+        Chem. Phys. 129, 124105, 2008, from memory).
+    log_denominator : ndarray of shape (N,)
+        ``ln sum_k N_k exp(f_k - u_k(x_n))``, for expectations in any state.
 
     Examples
     --------
-    Windows that sampled a flat profile exactly (each bin visited in proportion
-    to its restraint's Boltzmann factor) give a flat profile:
+    Two ensembles that differ by a constant energy c (in kT): ``f_1 - f_0 = c``.
 
-    >>> mids = np.linspace(-np.pi, np.pi, 36, endpoint=False) + np.pi / 36
-    >>> centers = np.linspace(-np.pi, np.pi, 12, endpoint=False)
-    >>> kT = BOLTZMANN_KJ_MOL_K * 300.0
-    >>> samples = [np.repeat(mids, np.round(1000 * np.exp(-0.5 * 20.0 * _wrap(mids - c) ** 2
-    ...                                           / kT)).astype(int)) for c in centers]
-    >>> _, f = wham_periodic(samples, centers, 20.0, 300.0, n_bins=36)
-    >>> bool(np.ptp(f) < 0.05)
-    True
+    >>> u = np.array([[0.0, 0.5, 1.0], [2.0, 2.5, 3.0]])
+    >>> f, _ = mbar_free_energies(u, [2, 1])
+    >>> round(float(f[1]), 6)
+    2.0
     """
-    kT = BOLTZMANN_KJ_MOL_K * float(temperature)
-    edges = np.linspace(-np.pi, np.pi, int(n_bins) + 1)
-    mids = 0.5 * (edges[1:] + edges[:-1])
-    counts = np.array([np.histogram(_wrap(np.asarray(s, dtype=np.float64)), bins=edges)[0]
-                       for s in samples], dtype=np.float64)
-    n = counts.sum(axis=1)
-    u = 0.5 * float(force_constant) * _wrap(mids[None, :] - np.asarray(centers)[:, None]) ** 2 / kT
-    f = np.zeros(len(n))
-    total = counts.sum(axis=0)
+    u = np.asarray(reduced, dtype=np.float64)
+    n = np.asarray(counts, dtype=np.float64)
+    f = np.zeros(u.shape[0])
+    log_n = np.log(n, out=np.full(n.shape, -np.inf), where=n > 0)
+
+    def log_denominator(f):
+        a = (log_n + f)[:, None] - u
+        top = a.max(axis=0)
+        return top + np.log(np.exp(a - top).sum(axis=0))
+
     for _ in range(int(max_iter)):
-        denom = (n[:, None] * np.exp(f[:, None] - u)).sum(axis=0)
-        p = np.divide(total, denom, out=np.zeros_like(total), where=denom > 0)
-        new = -np.log((p[None, :] * np.exp(-u)).sum(axis=1))
+        log_d = log_denominator(f)
+        a = -u - log_d[None, :]
+        top = a.max(axis=1)
+        new = -(top + np.log(np.exp(a - top[:, None]).sum(axis=1)))
         new -= new[0]
         done = np.max(np.abs(new - f)) < tol
         f = new
         if done:
             break
-    with np.errstate(divide="ignore"):
-        g = -kT * np.log(p / p.sum())
-    return mids, g - g[np.isfinite(g)].min()
+    return f, log_denominator(f)
 
 
 @dataclass
-class UmbrellaReference:
-    """Result of :func:`umbrella_delta_f`.
+class TorsionCycleReference:
+    """Result of :func:`torsion_cycle_delta_f`.
 
     Attributes
     ----------
     delta_f : float
-        ``F_A - F_B``, kJ/mol, from WHAM on all windows of both sweeps.
-    sweeps : tuple of float
-        ``F_A - F_B`` from each sweep alone (from A upwards, from B downwards).
-    hysteresis : float
-        ``|sweeps[0] - sweeps[1]|``, kJ/mol: near zero when nothing else slow
-        lags behind the dihedral; a rough error bar of `delta_f`.
-    mids, profile : ndarray
-        The combined profile: bin centres (rad) and free energy (kJ/mol).
+        ``F_A - F_B`` with the full force field, kJ/mol.
+    delta_f_off : float
+        ``F_A - F_B`` with the torsion's terms switched off, kJ/mol.
+    switch_on : dict
+        ``{A: G, B: G}``: free energy of switching the terms on within each
+        state, kJ/mol.
+    halves : tuple of float
+        ``delta_f`` from the first and from the second half of every run's
+        frames; their difference is a rough error bar.
+    n_transitions_off : int
+        Crossings between the wells with the terms off (many are needed).
     states : tuple of str
-        ``(A, B)``.
-    n_windows : int
-        Windows per sweep.
+    scales : tuple of float
     """
 
     delta_f: float
-    sweeps: tuple
-    hysteresis: float
-    mids: np.ndarray
-    profile: np.ndarray
+    delta_f_off: float
+    switch_on: dict
+    halves: tuple
+    n_transitions_off: int
     states: tuple
-    n_windows: int
+    scales: tuple
 
 
-def umbrella_delta_f(system, starts, atoms, wells, *, temperature, n_windows=72,
-                     force_constant=1000.0, equilibration_steps=2500, sample_steps=10_000,
-                     report_interval=50, friction=1.0, md_step_ps=0.002, seed=1, n_bins=120,
-                     platform="Reference"):
-    """Reference ``F_A - F_B`` between two wells of a dihedral: umbrella sampling, both ways round.
+def torsion_cycle_delta_f(system, starts, bond, dihedral, wells, *, temperature,
+                          scales=(0.0, 0.05, 0.1, 0.2, 0.3, 0.45, 0.6, 0.8, 1.0),
+                          n_frames=1000, n_frames_off=5000, report_interval=50,
+                          equilibration_steps=2500, friction=1.0, md_step_ps=0.002, seed=1,
+                          platform="Reference"):
+    """Reference ``F_A - F_B`` between two wells of a torsion, by a thermodynamic cycle.
 
-    Two sweeps of `n_windows` harmonic windows each go once around the circle:
-    the first starts from ``starts[A]`` at its dihedral and moves the window
-    centre upwards, the second from ``starts[B]`` downwards; each window starts
-    from the last structure of the one before. WHAM (:func:`wham_periodic`)
-    turns the windows into a profile, and the wells' Boltzmann weights into
-    ``F_A - F_B`` (:func:`~cvdesign.testbed.metad.well_delta_f`).
+    The torsion terms about `bond` (:func:`torsion_terms`), which make the
+    barrier, are scaled by ``lambda`` in `scales`. With them off (``lambda =
+    0``) the dihedral crosses often and ``F_A - F_B`` is read from the
+    populations; switching them on again within each state costs ``G_A`` and
+    ``G_B``, from runs at every ``lambda`` started in each state and pooled by
+    MBAR (:func:`mbar_free_energies`) over the frames in that state. Then
+    ``F_A - F_B = (F_A - F_B)_off + G_A - G_B``: exact up to sampling error,
+    whatever else moves slowly across the barrier, and it uses no CV and no
+    bias (free-energy perturbation, Zwanzig, J. Chem. Phys. 22, 1420, 1954,
+    from memory; MBAR, Shirts and Chodera, J. Chem. Phys. 129, 124105, 2008,
+    from memory).
 
     Parameters
     ----------
     system : openmm.System
-        Unbiased; copied, the restraint added to the copy.
+        Unbiased; copied, with the terms moved to a scalable custom force.
     starts : dict
-        ``{A: positions, B: positions}`` (nm), one structure in each well; the
-        first two keys are A and B.
-    atoms : sequence of 4 int
-        The dihedral, 0-based.
+        ``{A: positions, B: positions}``, nm; the first two keys are A and B.
+    bond : tuple of 2 int
+        The torsion's central bond.
+    dihedral : sequence of 4 int
+        The dihedral that tells the wells apart.
     wells : dict
-        ``{A: (low, high), B: (low, high)}``, rad; ``low > high`` wraps.
+        ``{A: (low, high), B: (low, high)}`` of `dihedral`, rad; ``low > high`` wraps.
     temperature : float
         K.
-    n_windows : int, default=72
-    force_constant : float, default=1000.0
-        kJ/mol/rad**2: stiff enough to hold a window on the side of a barrier.
-    equilibration_steps : int, default=2500
-        Steps per window before sampling.
-    sample_steps : int, default=10000
-        Sampled steps per window.
+    scales : sequence of float, default=(0, 0.05, 0.1, 0.2, 0.3, 0.45, 0.6, 0.8, 1)
+        The ``lambda`` values; must start at 0 and end at 1.
+    n_frames : int, default=1000
+        Frames per run at each ``lambda > 0`` (two runs, one per start).
+    n_frames_off : int, default=5000
+        Frames per run at ``lambda = 0``.
     report_interval : int, default=50
+    equilibration_steps : int, default=2500
     friction, md_step_ps, seed, platform
         As for :func:`make_context`.
-    n_bins : int, default=120
 
     Returns
     -------
-    UmbrellaReference
+    TorsionCycleReference
+
+    Raises
+    ------
+    ValueError
+        `scales` do not run from 0 to 1, the bond has no torsion terms, or a
+        state was never visited with the terms off.
     """
     import openmm
 
     from .forcefield import dihedral_angles
+    from .metad import _in_interval
 
+    scales = tuple(float(s) for s in scales)
+    if scales[0] != 0.0 or scales[-1] != 1.0 or list(scales) != sorted(scales):
+        raise ValueError(f"scales={scales!r} must increase from 0 to 1")
+    terms = torsion_terms(system, bond)
+    if not terms:
+        raise ValueError(f"no proper torsion terms about the bond {tuple(bond)!r}")
     a, b = tuple(starts)[:2]
-    restrained = openmm.XmlSerializer.clone(system)
-    restraint = openmm.CustomTorsionForce(
-        "0.5*cvdesign_k*d^2; d = theta - cvdesign_center - 6.283185307179586*floor("
-        "(theta - cvdesign_center + 3.141592653589793)/6.283185307179586)")
-    restraint.addGlobalParameter("cvdesign_k", float(force_constant))
-    restraint.addGlobalParameter("cvdesign_center", 0.0)
-    restraint.addTorsion(*(int(i) for i in atoms), [])
-    restrained.addForce(restraint)
-    step = TWO_PI / int(n_windows)
-    all_samples, all_centers, per_sweep = [], [], []
-    for sweep, (state, sign) in enumerate(((a, 1.0), (b, -1.0))):
-        x = np.asarray(starts[state], dtype=np.float64)
-        start = float(dihedral_angles(x, [atoms])[0])
-        centers = _wrap(start + sign * step * np.arange(int(n_windows)))
-        context, integrator = make_context(restrained, x, temperature=temperature,
-                                           friction=friction, md_step_ps=md_step_ps,
-                                           seed=seed, stream=sweep, platform=platform)
-        context.setParameter("cvdesign_center", float(centers[0]))
-        openmm.LocalEnergyMinimizer.minimize(context, 1.0, 500)
-        samples = []
-        for center in centers:
-            context.setParameter("cvdesign_center", float(center))
+    scaled = openmm.XmlSerializer.clone(system)
+    for force in scaled.getForces():
+        if isinstance(force, openmm.PeriodicTorsionForce):
+            for t in range(force.getNumTorsions()):
+                i, j, k, l, n, phase, amp = force.getTorsionParameters(t)
+                if (i, j, k, l, int(n), phase._value, amp._value) in terms:
+                    force.setTorsionParameters(t, i, j, k, l, n, phase, 0.0)
+    custom = openmm.CustomTorsionForce(
+        "cvdesign_lambda*amp*(1 + cos(per*theta - phase))")
+    custom.addGlobalParameter("cvdesign_lambda", 1.0)
+    for name in ("per", "phase", "amp"):
+        custom.addPerTorsionParameter(name)
+    for i, j, k, l, n, phase, amp in terms:
+        custom.addTorsion(i, j, k, l, [float(n), phase, amp])
+    scaled.addForce(custom)
+    kT = BOLTZMANN_KJ_MOL_K * float(temperature)
+    frames = []  # (scale index, energy of the terms, state label) per run
+    stream = 0
+    for index, lam in enumerate(scales):
+        for state in (a, b):
+            context, integrator = make_context(scaled, starts[state], temperature=temperature,
+                                               friction=friction, md_step_ps=md_step_ps,
+                                               seed=seed, stream=stream, platform=platform)
+            stream += 1
+            context.setParameter("cvdesign_lambda", lam)
             integrator.step(int(equilibration_steps))
-            values = []
-            for _ in range(int(sample_steps) // int(report_interval)):
+            xyz = []
+            for _ in range(int(n_frames_off if lam == 0.0 else n_frames)):
                 integrator.step(int(report_interval))
-                values.append(float(dihedral_angles(_positions(context), [atoms])[0]))
-            samples.append(np.array(values))
-        mids, f = wham_periodic(samples, centers, force_constant, temperature, n_bins)
-        per_sweep.append(well_delta_f(mids, f, temperature, wells[a], wells[b]))
-        all_samples += samples
-        all_centers.append(centers)
-    mids, f = wham_periodic(all_samples, np.concatenate(all_centers), force_constant,
-                            temperature, n_bins)
-    return UmbrellaReference(delta_f=well_delta_f(mids, f, temperature, wells[a], wells[b]),
-                             sweeps=tuple(per_sweep),
-                             hysteresis=abs(per_sweep[0] - per_sweep[1]), mids=mids,
-                             profile=f, states=(a, b), n_windows=int(n_windows))
+                xyz.append(_positions(context))
+            xyz = np.array(xyz)
+            phi = dihedral_angles(xyz, [dihedral])[:, 0]
+            label = np.where(_in_interval(phi, wells[a]), 0,
+                             np.where(_in_interval(phi, wells[b]), 1, -1))
+            frames.append((index, torsion_energy(xyz, terms), label, phi))
+
+    def estimate(part):
+        off = [f for f in frames if f[0] == 0]
+        labels = np.concatenate([part(f[2]) for f in off])
+        n_a, n_b = np.count_nonzero(labels == 0), np.count_nonzero(labels == 1)
+        if not (n_a and n_b):
+            raise ValueError(f"with the torsion terms off the runs never visited state "
+                             f"{a if not n_a else b!r}; run longer")
+        delta_off = -kT * np.log(n_a / n_b)
+        switch = {}
+        for code, state in ((0, a), (1, b)):
+            energy = np.concatenate([part(f[1])[part(f[2]) == code] for f in frames])
+            counts = np.array([sum(np.count_nonzero(part(f[2]) == code) for f in frames
+                                   if f[0] == k) for k in range(len(scales))])
+            reduced = np.array(scales)[:, None] * energy[None, :] / kT
+            g, _ = mbar_free_energies(reduced, counts)
+            switch[state] = float(kT * g[-1])
+        return delta_off + switch[a] - switch[b], delta_off, switch
+
+    delta, delta_off, switch = estimate(lambda v: v)
+    halves = tuple(estimate(lambda v, h=h: np.array_split(v, 2)[h])[0] for h in (0, 1))
+    from .scenarios import count_transitions
+
+    centers = well_centers(wells[a], wells[b])
+    crossings = sum(count_transitions(f[3], centers=centers) for f in frames if f[0] == 0)
+    return TorsionCycleReference(delta_f=float(delta), delta_f_off=float(delta_off),
+                                 switch_on=switch, halves=halves,
+                                 n_transitions_off=int(crossings), states=(a, b),
+                                 scales=scales)

@@ -16,9 +16,9 @@ from cvdesign import Spec  # noqa: E402
 from cvdesign.constants import BOLTZMANN_KJ_MOL_K  # noqa: E402
 from cvdesign.testbed.amide import methylacetamide  # noqa: E402
 from cvdesign.testbed.metad import WellTemperedBias  # noqa: E402
-from cvdesign.testbed.openmm_metad import (bias_force, reweighting_offset,  # noqa: E402
-                                           run_openmm_biased, update_bias_force,
-                                           wham_periodic)
+from cvdesign.testbed.openmm_metad import (bias_force, mbar_free_energies,  # noqa: E402
+                                           reweighting_offset, run_openmm_biased,
+                                           torsion_energy, torsion_terms, update_bias_force)
 
 
 @pytest.fixture(scope="module")
@@ -135,25 +135,6 @@ def test_reweighting_offset_of_a_flat_bias_is_the_bias_itself():
     assert 0.0 < c < 3.0  # between the smallest and the largest bias
 
 
-def test_wham_recovers_a_known_profile_from_sampled_windows():
-    """Windows sampled exactly from exp(-(F + w_k)/kT) for F = A(1 - cos 2x) (analytic):
-    WHAM (Kumar et al., J. Comput. Chem. 1992) gives F back within sampling noise."""
-    rng = np.random.default_rng(5)
-    kT = BOLTZMANN_KJ_MOL_K * 300.0
-    grid = np.linspace(-np.pi, np.pi, 3600, endpoint=False)
-    profile = 10.0 * (1.0 - np.cos(2.0 * grid))
-    centers = np.linspace(-np.pi, np.pi, 36, endpoint=False)
-    samples = []
-    for c in centers:
-        d = np.angle(np.exp(1j * (grid - c)))
-        p = np.exp(-(profile + 0.5 * 200.0 * d ** 2) / kT)
-        samples.append(rng.choice(grid, size=4000, p=p / p.sum()))
-    mids, f = wham_periodic(samples, centers, 200.0, 300.0, n_bins=60)
-    expected = 10.0 * (1.0 - np.cos(2.0 * mids))
-    expected -= expected.min()
-    assert np.abs(f - expected).max() < 0.5
-
-
 def test_biased_run_is_deterministic_and_deposits_one_kernel_per_walker_and_interval(molecule):
     spec = _spec(molecule)
     runs = []
@@ -180,3 +161,30 @@ def test_biased_run_refuses_a_report_interval_that_does_not_divide_the_depositio
         run_openmm_biased(molecule.system, spec.to_openmm(periodic=False), molecule.positions,
                           40, bias=bias, friction=1.0, md_step_ps=0.002, seed=1,
                           report_interval=7)
+
+
+def test_mbar_recovers_the_free_energy_of_harmonic_ensembles():
+    """Samples of u_k = x**2 / (2 s_k**2) for three widths s_k: f_k - f_0 = ln(s_0 / s_k)
+    (the Gaussian integral), within sampling error."""
+    rng = np.random.default_rng(8)
+    widths = np.array([1.0, 0.7, 0.5])
+    x = np.concatenate([rng.normal(scale=s, size=4000) for s in widths])
+    reduced = x[None, :] ** 2 / (2.0 * widths[:, None] ** 2)
+    f, _ = mbar_free_energies(reduced, [4000] * 3)
+    np.testing.assert_allclose(f, np.log(widths[0] / widths), atol=0.03)
+
+
+def test_torsion_terms_are_the_proper_terms_about_the_amide_bond_and_their_energy(molecule):
+    """The amide's proper torsions (impropers excluded), and their energy equal to OpenMM's
+    for the same terms."""
+    bond = molecule.omega_atoms[1:3]
+    terms = torsion_terms(molecule.system, bond)
+    assert len(terms) == 5 and all({t[1], t[2]} == set(bond) for t in terms)
+    rng = np.random.default_rng(12)
+    x = _random_geometry(molecule, rng)
+    only = openmm.PeriodicTorsionForce()
+    for i, j, k, l, n, phase, amp in terms:
+        only.addTorsion(i, j, k, l, n, phase, amp)
+    energy, _, _ = _energy_forces(openmm.XmlSerializer.clone(molecule.system), only, x)
+    assert torsion_energy(x, terms) == pytest.approx(energy, rel=1e-9)
+    assert torsion_energy(molecule.positions, terms) == pytest.approx(0.0, abs=1e-3)  # planar
