@@ -102,11 +102,12 @@ def test_hand_off_tutorial_biases_the_rank1_cv_and_recovers_delta_f(tutorial_run
 
 
 def test_real_engine_tutorial_drives_more_transitions_along_the_rank1_cv(tutorial_run):
-    """Tutorial 04 (OpenMM, N-methylacetamide, quick configuration): the exported rank-1 CV,
-    biased in OpenMM, drives cis/trans transitions where the lowest-ranked CV drives fewer in
-    the same steps; OpenMM's CV equals the spec's evaluator on the biased frames."""
+    """Tutorial 04 (OpenMM, Ac-Pro-NHMe, quick configuration): the exported rank-1 CV,
+    biased in OpenMM, drives cis/trans transitions where a poorly ranked CV (the best of
+    bond angles only) drives fewer in the same steps; OpenMM's CV equals the spec's
+    evaluator on the biased frames."""
     out = _output_of(tutorial_run, "04_real_engine.py")
-    best, poor = _transitions(out, "lowest-ranked")
+    best, poor = _transitions(out, "poorly ranked")
     assert best > poor and best >= 5
     for match in re.finditer(r"largest difference (\S+);", out):
         assert float(match.group(1)) < 1e-9
@@ -121,12 +122,13 @@ def test_real_engine_tutorial_recovers_delta_f_of_the_reference(tutorial_run):
     2 kJ/mol of the reference computed in the tutorial without CV or bias: the amide's
     torsion terms switched off and on again within each state, a thermodynamic cycle
     (Zwanzig, J. Chem. Phys. 1954) solved with MBAR (Shirts and Chodera, J. Chem. Phys.
-    2008), whose two halves agree to better than 1 kJ/mol."""
+    2008), with many crossings where the terms are off and two halves that agree to better
+    than 1 kJ/mol."""
     out = _output_of(tutorial_run, "04_real_engine.py")
     (delta,) = _number(r"^F\(cis\) - F\(trans\) from the reweighted frames: ([-+]\d+\.\d+) "
                        r"kJ/mol$", out)
     ref, spread = _number(r"^F\(cis\) - F\(trans\) reference: ([-+]\d+\.\d+) ± (\d+\.\d+) "
-                          r"kJ/mol$", out)
+                          r"kJ/mol ", out)
     (crossings,) = _number(r"; (\d+) crossings with the terms off;", out)
-    assert crossings >= 200 and spread < 1.0
+    assert crossings >= 100 and spread < 1.0
     assert abs(delta - ref) < 2.0

@@ -66,6 +66,10 @@ __all__ = ["OpenMMBiasedRun", "TorsionCycleReference", "bias_force", "make_conte
            "weighted_delta_f"]
 
 
+#: Fraction of the grid's range by which a non-periodic CV is clamped inside the grid.
+_EDGE_INSET = 1e-9
+
+
 def _num(value):
     """A float for an OpenMM expression, in parentheses when negative."""
     text = repr(float(value))
@@ -73,7 +77,7 @@ def _num(value):
 
 
 def _table(bias):
-    """``(values, lo, hi)`` of the Continuous1DFunction holding `bias` (periodic: first node repeated)."""
+    """``(values, lo, hi)`` of the table of `bias` (periodic: the first node repeated at hi)."""
     values = bias.values.tolist()
     if bias.periodic:
         values.append(values[0])
@@ -93,8 +97,10 @@ def bias_force(cv_force, bias):
     Returns
     -------
     openmm.CustomCVForce
-        Energy ``table(s)`` (periodic grid) or ``table(min(max(s, lo), hi))``;
-        named ``cvdesign testbed bias``. Add it to the System before making
+        Energy ``table(s)`` (periodic grid) or ``table(s clamped to [lo, hi])``
+        (a hair inside: ``1e-9`` of the range), written with ``select`` and
+        ``step`` so that a non-finite CV reads the table at its edge instead of
+        stopping OpenMM; named ``cvdesign testbed bias``. Add it to the System before making
         Contexts; :func:`update_bias_force` refreshes its table.
 
     Examples
@@ -104,14 +110,21 @@ def bias_force(cv_force, bias):
     >>> bias = WellTemperedBias(None, sigma=0.1, height=1.0, interval_steps=10,
     ...                         bias_factor=5.0, temperature=300.0, grid=(-1.0, 1.0, 20))
     >>> force = bias_force(openmm.CustomBondForce("r"), bias)
-    >>> force.getEnergyFunction()
-    'table(min(max(s, (-1.0)), 1.0))'
+    >>> force.getEnergyFunction()[:35]
+    'table(select(step(s - (-0.999999998'
     """
     import openmm
 
     values, lo, hi = _table(bias)
-    expression = ("table(s)" if bias.periodic
-                  else f"table(min(max(s, {_num(lo)}), {_num(hi)}))")
+    # The argument is clamped a hair inside [lo, hi]: OpenMM's spline refuses (and
+    # aborts the process) a point even a rounding error beyond its last node. select
+    # and step rather than min and max: a NaN CV (a run that blew up) then reads the
+    # table at its edge instead, and run_openmm_biased reports the NaN.
+    inset = _EDGE_INSET * (hi - lo)
+    lo_, hi_ = _num(lo + inset), _num(hi - inset)
+    expression = (f"table(select(step(s - {lo_}) + step({lo_} - s), s, {lo_}))" if bias.periodic
+                  else f"table(select(step(s - {lo_})*step({hi_} - s), s, "
+                       f"select(step(s - {lo_}), {hi_}, {lo_})))")
     force = openmm.CustomCVForce(expression)
     force.addCollectiveVariable("s", cv_force)
     force.addTabulatedFunction("table", openmm.Continuous1DFunction(values, lo, hi,
@@ -340,7 +353,7 @@ class OpenMMBiasedRun(BiasedRun):
 def run_openmm_biased(system, cv_force, x0, n_steps, *, bias, friction, md_step_ps, seed,
                       report_interval=None, average_from=0.5, observe=None, reference_cv=None,
                       platform="Reference"):
-    """Well-tempered metadynamics in OpenMM along an exported CV (testbed, not a production sampler).
+    """Well-tempered metadynamics in OpenMM along an exported CV (testbed; not a production tool).
 
     Parameters
     ----------
@@ -520,7 +533,10 @@ def torsion_terms(system, bond):
 
 
 def torsion_energy(x, terms):
-    """Energy of torsion terms (:func:`torsion_terms`) at positions `x` (``(..., n_atoms, 3)``), kJ/mol."""
+    """Energy of torsion terms (:func:`torsion_terms`) at positions `x` (``(..., n_atoms, 3)``).
+
+    Returns kJ/mol, of shape ``x.shape[:-2]``.
+    """
     from .forcefield import dihedral_angles
 
     if not terms:

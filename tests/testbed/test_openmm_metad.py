@@ -62,6 +62,37 @@ def test_builder_sets_omega_as_mdtraj_measures_it():
         assert mol.system.getNumParticles() == 12 and mol.topology.getNumBonds() == 11
 
 
+def test_capped_proline_is_l_proline_with_omega_phi_psi_as_mdtraj_measures_them():
+    """Ac-Pro-NHMe as built: omega, phi and psi where asked (mdtraj's compute_dihedrals
+    and compute_phi/psi), L chirality at CA as in the adenylate kinase structure of the
+    MDAnalysis test data (Beckstein et al., J. Mol. Biol. 2009), and the same structure
+    twice (the hydrogens OpenMM's Modeller places at random are seeded)."""
+    from MDAnalysisTests.datafiles import PDB_small
+
+    from cvdesign.testbed.amide import capped_proline
+
+    def chirality(xyz, top, residue):
+        n, ca, c, cb = (residue.atom(name).index for name in ("N", "CA", "C", "CB"))
+        return np.sign(np.dot(xyz[n] - xyz[ca], np.cross(xyz[c] - xyz[ca], xyz[cb] - xyz[ca])))
+
+    adk = md.load(PDB_small)
+    reference = {chirality(adk.xyz[0], adk.topology, r) for r in adk.topology.residues
+                 if r.name != "GLY" and r.is_protein}
+    assert len(reference) == 1
+    for omega in (np.pi, 0.0):
+        mol = capped_proline(omega, phi=-70.0, psi=140.0)
+        traj = md.Trajectory(mol.positions[None], mol.mdtraj_topology)
+        measured = md.compute_dihedrals(traj, [mol.omega_atoms])[0, 0]
+        assert np.angle(np.exp(1j * (measured - omega))) == pytest.approx(0.0, abs=1e-5)
+        assert np.degrees(md.compute_phi(traj)[1][0, 0]) == pytest.approx(-70.0, abs=1e-3)
+        assert np.degrees(md.compute_psi(traj)[1][0, 0]) == pytest.approx(140.0, abs=1e-3)
+        proline = traj.topology.residue(1)
+        assert proline.name == "PRO"
+        assert {chirality(mol.positions, traj.topology, proline)} == reference
+        assert capped_proline(omega, phi=-70.0, psi=140.0).positions.tobytes() == \
+            mol.positions.tobytes()
+
+
 def test_bias_force_energy_and_forces_follow_the_grid_and_the_cv_gradient(molecule):
     rng = np.random.default_rng(11)
     spec = _spec(molecule)
@@ -96,15 +127,31 @@ def test_update_copies_new_kernels_into_the_context(molecule):
 
 
 def test_beyond_a_non_periodic_grid_the_bias_holds_its_edge_value_with_no_force(molecule):
-    spec = _spec(molecule)  # cos(omega) of a trans structure is near -1
+    spec = _spec(molecule)  # cos(omega): near -1 in trans, near +1 in cis
     bias = WellTemperedBias(None, sigma=0.05, height=2.0, interval_steps=10, bias_factor=6.0,
                             temperature=300.0, grid=(-0.5, 0.5, 100))
     bias.deposit(-0.45)
-    energy, forces, _ = _energy_forces(openmm.XmlSerializer.clone(molecule.system),
-                                       bias_force(spec.to_openmm(periodic=False), bias),
-                                       molecule.positions)
+    bias.deposit(0.42)
+    for x, edge in ((molecule.positions, bias.values[0]),
+                    (methylacetamide(0.0).positions, bias.values[-1])):
+        energy, forces, _ = _energy_forces(openmm.XmlSerializer.clone(molecule.system),
+                                           bias_force(spec.to_openmm(periodic=False), bias), x)
+        assert energy == pytest.approx(float(edge), rel=1e-6)
+        assert np.abs(forces).max() == 0.0
+
+
+def test_a_non_finite_cv_reads_the_table_at_its_edge_instead_of_stopping_openmm(molecule):
+    spec = _spec(molecule)
+    bias = WellTemperedBias(None, sigma=0.05, height=2.0, interval_steps=10, bias_factor=6.0,
+                            temperature=300.0, grid=(-1.2, 1.2, 100))
+    bias.deposit(-1.2)
+    x = molecule.positions.copy()
+    x[:4] = np.nan  # the omega atoms
+    energy, _, context = _energy_forces(openmm.XmlSerializer.clone(molecule.system),
+                                        bias_force(spec.to_openmm(periodic=False), bias), x)
+    assert not np.isfinite(context.getSystem().getForce(
+        context.getSystem().getNumForces() - 1).getCollectiveVariableValues(context)[0])
     assert energy == pytest.approx(float(bias.values[0]), rel=1e-6)
-    assert np.abs(forces).max() == 0.0
 
 
 def test_periodic_table_is_continuous_across_the_period(molecule):
