@@ -26,7 +26,9 @@ bias: the force field's own torsion terms about the slow bond are switched off,
 so that plain MD crosses between the wells freely and their populations give
 the free-energy difference; switching the terms back on within each well is
 computed by MBAR over a ladder of scale factors. That thermodynamic cycle is
-exact up to sampling error, whatever else moves slowly at the barrier. (An
+exact up to sampling error, and motions that are slow only at the barrier do not
+matter to it; slow motions within a well (such as the capped proline's psi) still
+have to be sampled, and they set its error. (An
 umbrella-sampling profile along the dihedral alone was tried first and is not
 used: for N-methylacetamide its two sweep directions disagreed by 1 to 5
 kJ/mol, most likely because the amide hydrogen, whose own torsion terms also
@@ -649,9 +651,9 @@ def torsion_cycle_delta_f(system, starts, bond, dihedral, wells, *, temperature,
     populations; switching them on again within each state costs ``G_A`` and
     ``G_B``, from runs at every ``lambda`` started in each state and pooled by
     MBAR (:func:`mbar_free_energies`) over the frames in that state. Then
-    ``F_A - F_B = (F_A - F_B)_off + G_A - G_B``: exact up to sampling error,
-    whatever else moves slowly across the barrier, and it uses no CV and no
-    bias (free-energy perturbation, Zwanzig, J. Chem. Phys. 22, 1420, 1954,
+    ``F_A - F_B = (F_A - F_B)_off + G_A - G_B``: exact up to sampling error
+    (motions slow only at the barrier do not matter; slow motions within a
+    state must still be sampled), and it uses no CV and no bias (free-energy perturbation, Zwanzig, J. Chem. Phys. 22, 1420, 1954,
     from memory; MBAR, Shirts and Chodera, J. Chem. Phys. 129, 124105, 2008,
     from memory).
 

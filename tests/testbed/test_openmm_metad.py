@@ -13,7 +13,6 @@ import pytest
 openmm = pytest.importorskip("openmm")
 
 from cvdesign import Spec  # noqa: E402
-from cvdesign.constants import BOLTZMANN_KJ_MOL_K  # noqa: E402
 from cvdesign.testbed.amide import methylacetamide  # noqa: E402
 from cvdesign.testbed.metad import WellTemperedBias  # noqa: E402
 from cvdesign.testbed.openmm_metad import (bias_force, mbar_free_energies,  # noqa: E402
