@@ -179,6 +179,7 @@ def reference(starts, n_frames):
 
 
 def describe(spec):
+    """The spec's terms as ``+weight transform(descriptor), ...``."""
     return ", ".join(f"{t['weight']:+.4f} {t['transform']}({t['descriptor']})"
                      for t in spec.terms)
 
@@ -206,8 +207,8 @@ def main(out_dir, long=False, keep=True):
         angles = cvdesign.suggest(source, kinds=("angle",), max_terms=3, n_suggestions=1)
         angles_dir = Path(angles.write(work / "angles-only"))
         rank_of = {row["id"]: i for i, row in enumerate(result.scorecard, 1)}
-        positions = sorted({rank_of.get(t["descriptor"], "not listed")
-                            for t in cvdesign.load_spec(angles_dir / "cv-01.json").terms})
+        positions = [str(rank_of.get(t["descriptor"], "not listed"))
+                     for t in cvdesign.load_spec(angles_dir / "cv-01.json").terms]
 
         # -------------------------------------------------------- 3. export
         molecule = capped_proline(np.pi)
@@ -215,7 +216,7 @@ def main(out_dir, long=False, keep=True):
         poor = cvdesign.load_spec(angles_dir / "cv-01.json", topology=molecule.mdtraj_topology)
         print(f"\n3. rank-1 CV cv-01: {describe(best)}")
         print(f"   poorly ranked CV (best of bond angles only): {describe(poor)}; its "
-              f"descriptors are at positions {', '.join(map(str, positions))} of "
+              f"descriptors are at positions {', '.join(positions)} of "
               f"{len(result.scorecard)} on the score card")
         best_force = export(written / "cv-01.json", work)
         poor_force = export(angles_dir / "cv-01.json", work)
