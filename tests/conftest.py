@@ -1,10 +1,12 @@
 """Shared fixtures: the bundled demo data, the MDAnalysis test data, and helpers of the
-pass-engine tests (bitwise comparison, random task splits, shuffled arrival order)."""
+pass-engine tests (bitwise comparison, random task splits, shuffled arrival order, a
+progress display that records what it is told)."""
 
 import importlib.resources
 import json
 from pathlib import Path
 
+import mdtraj as md
 import numpy as np
 import pytest
 
@@ -244,6 +246,43 @@ def random_tasks():
     return _random_tasks
 
 
+def _hopping_runs(out, *, n_runs=3, n_frames=1500, seed=5):
+    """Unlabelled runs of a four-atom toy whose C1-C2 distance hops between 0.4 and 0.8 nm
+    (a two-state Markov chain, 1 % switching per frame, AR(1) wiggle within a state)."""
+    rng = np.random.default_rng(seed)
+    top = md.Topology()
+    res = top.add_residue("HOP", top.add_chain(), resSeq=1)
+    for name in ("C1", "C2", "C3", "C4"):
+        top.add_atom(name, md.element.carbon, res)
+    paths = []
+    for k in range(n_runs):
+        state, dev = k % 2, 0.0
+        x = np.empty(n_frames)
+        for t in range(n_frames):
+            if rng.random() < 0.01:
+                state = 1 - state
+            dev = 0.7 * dev + rng.normal(0, 0.02)
+            x[t] = (0.4, 0.8)[state] + dev
+        xyz = np.zeros((n_frames, 4, 3))
+        xyz[:, 1, 0] = x
+        xyz[:, 2] = [0.0, 0.5, 0.0] + rng.normal(0, 0.02, (n_frames, 3))
+        xyz[:, 3] = [0.4, 0.4, 0.3] + rng.normal(0, 0.02, (n_frames, 3))
+        path = out / f"hop-{k + 1}.xtc"
+        md.Trajectory(xyz.astype(np.float32), top,
+                      time=np.arange(n_frames) * 0.1).save_xtc(str(path))
+        paths.append(str(path))
+    pdb = out / "hop.pdb"
+    md.Trajectory(xyz[:1].astype(np.float32), top).save_pdb(str(pdb))
+    return str(pdb), paths
+
+
+@pytest.fixture(scope="session")
+def hopping_runs():
+    """``hopping_runs(directory, n_runs=3, n_frames=1500, seed=5)``: write unlabelled runs of
+    a four-atom toy hopping between two states; returns (topology path, [run paths])."""
+    return _hopping_runs
+
+
 @pytest.fixture(scope="session")
 def threaded_dask():
     """A Dask client of a LocalCluster of three threaded workers (no processes: fast), for
@@ -254,3 +293,44 @@ def threaded_dask():
                                   dashboard_address=":0") as cluster, \
             distributed.Client(cluster) as client:
         yield client
+
+
+class RecordedBar:
+    """One progress bar as a :class:`ProgressRecorder` saw it: label, total, unit, updates."""
+
+    def __init__(self, label, total, unit):
+        self.label, self.total, self.unit = label, total, unit
+        self.updates, self.closed = [], False
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.closed = True
+
+    def update(self, n=1):
+        self.updates.append(n)
+
+    @property
+    def count(self):
+        return sum(self.updates)
+
+
+class ProgressRecorder:
+    """A progress display (``cvdesign.progress.using_display``) recording every bar."""
+
+    def __init__(self):
+        self.bars = []
+
+    def __call__(self, label, total, unit):
+        self.bars.append(RecordedBar(label, total, unit))
+        return self.bars[-1]
+
+    def labelled(self, label):
+        return [b for b in self.bars if b.label == label]
+
+
+@pytest.fixture
+def progress_recorder():
+    """A fresh :class:`ProgressRecorder`; activate it with ``using_display(recorder)``."""
+    return ProgressRecorder()

@@ -191,6 +191,14 @@ class Case:
     skip: str = ""
 
 
+def _bias_text(n, bad=None):
+    """A bias-energy file of `n` frames (two comment lines, a header), values replaced by
+    `bad` ({frame: text}) where given."""
+    bad = bad or {}
+    return "# bias energies\n# kJ/mol\nbias\n" + "".join(
+        f"{bad.get(i, 0.5 * (i % 7))}\n" for i in range(n))
+
+
 def _frames_csv(n):
     return "frame,cv\n" + "".join(f"{i},{0.5 + 0.001 * i}\n" for i in range(n))
 
@@ -303,6 +311,57 @@ CLI_CASES = [
     Case("suggest-one-fold",
          lambda c: c.suggest("--folds", "1"), 2,
          r"argument --folds: '1' must be at least 2"),
+    # -- suggest: biased runs (--bias-energy TRAJ FILE)
+    Case("suggest-bias-file-missing",
+         lambda c: c.suggest("--bias-energy", c.closed, c.w("none.bias")), 2,
+         r"bias-energy file '.*none\.bias' does not exist; check the path"),
+    Case("suggest-bias-file-too-short",
+         lambda c: c.suggest("--bias-energy", c.closed, c.file("b.txt", _bias_text(10))), 2,
+         r"bias-energy file '.*b\.txt' holds 10 bias energies, but trajectory "
+         r"'.*closed-1\.xtc' has 2000 frames; give one bias energy per frame"),
+    Case("suggest-bias-value-not-a-number",
+         lambda c: c.suggest("--bias-energy", c.closed,
+                             c.file("b.txt", _bias_text(2000, {2: "abc"}))), 2,
+         r"bias-energy file '.*b\.txt', line 6, column 1: 'abc' is not a number"),
+    Case("suggest-bias-value-not-finite",
+         lambda c: c.suggest("--bias-energy", c.closed,
+                             c.file("b.txt", _bias_text(2000, {7: "nan"}))), 2,
+         r"bias-energy file '.*b\.txt', line 11: bias energy 'nan' is not a finite number"),
+    Case("suggest-bias-columns-without-bias",
+         lambda c: c.suggest("--bias-energy", c.closed, c.file("b.txt", "t v\n0 1\n")), 2,
+         r"'.*b\.txt' has 2 columns and none named 'bias' \('t', 'v'\); say which column "
+         r"holds the bias energies \(--bias-column N\|NAME"),
+    Case("suggest-bias-unknown-column",
+         lambda c: c.suggest("--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
+                             "--bias-column", "energy"), 2,
+         r"bias-energy file '.*b\.txt' has no column named 'energy'; its columns are "
+         r"\('bias'\)"),
+    Case("suggest-bias-for-a-trajectory-not-given",
+         lambda c: c.suggest("--bias-energy", c.s("short.xtc"), c.file("b.txt", "1\n")), 2,
+         r"--bias-energy .*short\.xtc .*b\.txt: trajectory '.*short\.xtc' is not given with "
+         r"--state"),
+    Case("suggest-bias-for-a-missing-trajectory",
+         lambda c: c.suggest("--bias-energy", c.w("none.xtc"), c.file("b.txt", "1\n")), 2,
+         r"trajectory '.*none\.xtc' does not exist"),
+    Case("suggest-bias-given-twice",
+         lambda c: c.suggest("--bias-energy", c.closed, c.file("a.txt", _bias_text(2000)),
+                             "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000))), 2,
+         r"--bias-energy names trajectory '.*closed-1\.xtc' twice"),
+    Case("suggest-bias-state-mixing-biased-and-unbiased-runs",
+         lambda c: ["suggest", "--topology", c.top, "--state", "closed", c.closed,
+                    str(Path(c.closed).with_name("closed-2.xtc")), "--state", "open", c.open,
+                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
+                    "--out", c.w("out"), "--bootstrap", "0", "--quiet"], 2,
+         r"state 'closed' has frames from the biased run '.*closed-1\.xtc' \(bias-energy file "
+         r"'.*b\.txt'\) and from '.*closed-2\.xtc', which has no bias energies"),
+    Case("suggest-bias-with-runs",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, c.open, "--lag", "1",
+                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
+                    "--out", c.w("out")], 2,
+         r"--bias-energy goes with --state: proposing states from unlabelled biased runs"),
+    Case("suggest-bias-column-without-bias-energy",
+         lambda c: c.suggest("--bias-column", "2"), 2,
+         r"--bias-column goes with --bias-energy TRAJ FILE"),
     # -- apply
     Case("apply-out-exists-without-force",
          lambda c: c.apply("--out", c.file("values.csv", "earlier results\n")), 2,
@@ -433,8 +492,8 @@ CLI_CASES = [
          r"argument --kernel: invalid choice: 'box'"),
     # -- demo
     Case("demo-unknown-option",
-         lambda c: ["demo", "--out", c.w("d"), "--quiet"], 2,
-         r"cvdesign demo: error: unrecognized arguments: --quiet \(see cvdesign demo --help\)"),
+         lambda c: ["demo", "--out", c.w("d"), "--seed", "3"], 2,
+         r"cvdesign demo: error: unrecognized arguments: --seed 3 \(see cvdesign demo --help\)"),
     Case("demo-out-not-empty",
          lambda c: [c.file("d/mine.txt"), ["demo", "--out", c.w("d"), "--bootstrap", "0"]][1],
          2, r"output directory '.*d' exists and is not empty"),
@@ -674,6 +733,25 @@ API_CASES = [
          lambda c: lambda: load_spec(c.s("cv.json")).to_openmm(system="system.xml"),
          InputError, r"system must be an openmm\.System; got str",
          skip=NO_OPENMM),
+    Case("api-source-bias-without-temperature",
+         lambda c: (lambda b: lambda: Source(c.top).add(c.closed, "closed", bias=b))(
+             c.file("b.txt", _bias_text(2000))),
+         InputError, r"a bias-energy file \('.*b\.txt'\) needs the temperature of the biased "
+                     r"run: give temperature=K to Source"),
+    Case("api-source-bias-column-without-bias",
+         lambda c: lambda: Source(c.top).add(c.closed, "closed", bias_column=2),
+         InputError, r"bias_column=2 for '.*closed-1\.xtc' goes with a bias-energy file"),
+    Case("api-source-bias-for-a-trajectory-of-no-state",
+         lambda c: (lambda b: lambda: Source.from_states(c.top, {"closed": [c.closed]},
+                                                         bias={c.open: b}, temperature=300.0))(
+             c.file("b.txt", "1\n")),
+         InputError, r"bias-energy file '.*b\.txt' is given for trajectory '.*open-1\.xtc', "
+                     r"which is not among the trajectories of the states"),
+    Case("api-propose-states-of-biased-runs",
+         lambda c: (lambda b: lambda: propose_states(
+             Source(c.top, temperature=300.0).add(c.closed, "runs", bias=b), lag=1.0))(
+             c.file("b.txt", _bias_text(2000))),
+         InputError, r"propose_states\(\) does not reweight biased runs yet"),
     Case("api-funnel-from-source-with-a-file-name",
          lambda c: lambda: size_funnel_from_source("run.xtc", [0, 1, 2], [7]), InputError,
          r"size_funnel_from_source\(\) needs a Source of the bound-state trajectories, not str"),

@@ -15,9 +15,10 @@ from cvdesign.errors import SchedulerUnreachableError, WorkerLostError
 from cvdesign.parallel import DaskExecutor, ProcessExecutor, SerialExecutor, as_executor
 from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, Featurizer,
                              FoldMomentsPass, Folds, HistogramPass, LaggedPass, LagGridPass,
-                             PoolFeaturizer, ScreeningPass, leaf_frames_for, plan_tasks, reference_features,
-                             run_pass)
+                             PoolFeaturizer, ProjectionRangePass, ScreeningPass, leaf_frames_for,
+                             plan_tasks, reference_features, run_pass)
 from cvdesign.pool import build_pool
+from cvdesign.progress import using_display
 
 
 def block_sums(z, key):
@@ -68,7 +69,17 @@ def _passes(src):
                   CardPass(featurizer, center=shift[cols], low=np.full(cols.size, -1.0),
                            high=np.full(cols.size, 2.0), n_bins=20, block_frames=40, lags=lags,
                            run_means={(0, 0): shift[cols] + 0.1}, columns=cols),
-                  LagGridPass(featurizer, (1, 3, 7), shift=shift[cols], columns=cols))
+                  LagGridPass(featurizer, (1, 3, 7), shift=shift[cols], columns=cols),
+                  ProjectionRangePass(featurizer,
+                                      [(np.arange(cols.size), np.linspace(-1, 1, cols.size)),
+                                       ([2, 0], [0.5, 3.0])], columns=cols, center=shift[cols]))
+
+
+@pytest.fixture(autouse=True)
+def _private_tempdir(tmp_path_factory, monkeypatch):
+    """Each test's own temporary directory for the pickled contexts: other runs sharing the
+    machine's /tmp would otherwise add or remove files the leftover checks count."""
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path_factory.mktemp("tempdir")))
 
 
 def _leftover_contexts():
@@ -93,16 +104,51 @@ def dask_threads():
         yield client
 
 
-def test_local_processes_give_the_bytes_of_the_serial_run(demo_reference, assert_same):
+def _frames(plan):
+    return int(plan.segment_counts().sum())
+
+
+def test_local_processes_give_the_bytes_of_the_serial_run(demo_reference, assert_same,
+                                                          progress_recorder):
     src, plan, passes, reference = demo_reference
     before = _leftover_contexts()
+    split = plan.split(frames_per_task=640)
     with ProcessExecutor(2) as ex:
-        other = run_pass(passes, src, executor=ex,
-                         tasks=plan.split(frames_per_task=640), chunk_frames=97)
-        again = run_pass(passes, src, executor=ex)  # default split: 4 tasks per worker
+        other = run_pass(passes, src, executor=ex, tasks=split, chunk_frames=97)
+        with using_display(progress_recorder):  # watching changes nothing
+            again = run_pass(passes, src, executor=ex, label="test")  # 4 tasks per worker
     assert_same(reference, other)
     assert_same(reference, again)
     assert _leftover_contexts() == before
+    # the parent sees the workers' tasks complete: every frame counted once, task by task
+    (shown,) = progress_recorder.bars
+    assert (shown.label, shown.total, shown.unit) == ("test", _frames(plan), "frames")
+    tasks = plan.for_features(passes[0].featurizer.n_features, 2).tasks  # run_pass's split
+    assert shown.count == shown.total and 1 < len(shown.updates) <= len(tasks) and shown.closed
+
+
+def test_progress_counts_every_frame_once_whatever_runs_the_tasks(
+        demo_reference, dask_threads, shuffled_executor, progress_recorder, assert_same):
+    src, plan, passes, reference = demo_reference
+    with using_display(progress_recorder):
+        serial = run_pass(passes, src, tasks=plan, label="serial")
+        shuffled = run_pass(passes, src, executor=shuffled_executor(3),
+                            tasks=plan.split(n_tasks=9), label="shuffled")
+        dask = run_pass(passes, src, executor=DaskExecutor(dask_threads),
+                        tasks=plan.split(n_tasks=7), label="dask")
+    for result in (serial, shuffled, dask):
+        assert_same(reference, result)
+    total = _frames(plan)
+    by_label = {b.label: b for b in progress_recorder.bars}
+    assert list(by_label) == ["serial", "shuffled", "dask"]
+    for b in by_label.values():
+        assert b.total == total and b.count == total and b.closed
+    # in this process leaf by leaf (smooth for one task per file), elsewhere task by task
+    # (a Dask worker thread never reaches the bar)
+    leaves = sum(len(plan.leaves(si)) for si in range(plan.n_segments))
+    assert len(by_label["serial"].updates) == leaves > len(plan.tasks)
+    assert len(by_label["shuffled"].updates) <= len(plan.split(n_tasks=9).tasks)
+    assert len(by_label["dask"].updates) <= len(plan.split(n_tasks=7).tasks)
 
 
 def test_dask_threaded_cluster_gives_the_bytes_of_the_serial_run(demo_reference, dask_threads,

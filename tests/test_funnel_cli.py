@@ -45,7 +45,12 @@ def test_funnel_command_writes_parameters_that_keep_the_bound_ligand_inside(host
     text = capsys.readouterr().out
     assert "cone half-angle" in text and "not guarantees" in text
     assert "hold the pocket in this orientation" in text and "warning:" not in text
-    spec = load_spec(out, topology=md.load_topology(host_guest.topology))
+    # the selections echoed with their atom counts (as mdtraj selects them)
+    topology = md.load_topology(host_guest.topology)
+    for role, sel in [("ligand", host_guest.ligand_selection),
+                      ("pocket", host_guest.pocket_selection)]:
+        assert f"{role}: selection {sel!r}: {topology.select(sel).size} atoms in " in text
+    spec = load_spec(out, topology=topology)
     (funnel,) = spec.restraints
     assert funnel["kind"] == "funnel" and funnel["wall_force_constant_kj_mol_nm2"] == 2000.0
     xyz, box = _frames(host_guest)
@@ -122,23 +127,27 @@ def test_funnel_command_replaces_its_own_output_with_force(host_guest, tmp_path,
     plot.write_text("old")
     assert _run(host_guest, out, "--plot", str(plot), "--force") == 0
     assert load_spec(out).restraints and plot.read_text().lstrip().startswith("<?xml")
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["f-report.html", "f.json", "f.svg"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["f-report-data.json", "f-report.html",
+                                                          "f.json", "f.svg"]
 
 
 def test_funnel_command_writes_identical_bytes_serially_with_two_workers_and_on_dask(
         tumbled, threaded_dask, tmp_path, capsys):
     # the tumbled runs: turned, moved and wrapped frames in a periodic box
-    outs, texts, reports = [], [], []
+    outs, texts, reports, datas = [], [], [], []
     for name, extra in (("serial", ()), ("workers", ("--workers", "2")),
                         ("dask", ("--scheduler", threaded_dask.scheduler.address))):
         out = tmp_path / f"{name}.json"
         report = tmp_path / f"{name}-report.html"
+        data = tmp_path / f"{name}-report-data.json"
         assert _run(tumbled, out, *extra) == 0
         outs.append(out.read_bytes())
+        datas.append(data.read_bytes().replace(out.name.encode(), b"OUT"))
         texts.append(capsys.readouterr().out.replace(str(report), "REPORT")
-                     .replace(str(out), "OUT"))
+                     .replace(str(data), "DATA").replace(str(out), "OUT"))
         reports.append(report.read_text().replace(out.stem, "OUT"))
     assert outs[1] == outs[0] and outs[2] == outs[0]
+    assert datas[1] == datas[0] and datas[2] == datas[0]  # the positions the report draws
     assert texts[1] == texts[0] and texts[2] == texts[0]
     assert reports[1] == reports[0] and reports[2] == reports[0]
 

@@ -362,10 +362,55 @@ def test_periodic_cv_has_no_walls_and_grid_spans_the_period():
     assert g["n_bins"] * g["spacing"] == pytest.approx(2 * math.pi)
 
 
-def test_cv_range_clips_walls_and_grid():
+def test_a_bounded_cv_range_drops_walls_beyond_it_and_the_grid_spans_it():
+    # lower wall -1.2 - 3 * 0.15 = -1.65 lies below the reachable -1.5: not needed
     h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, cv_range=(-1.5, 2.0))
-    assert h["walls"]["lower"] == -1.5 and h["grid"]["lower"] == -1.5
-    assert h["grid"]["upper"] == 2.0
+    assert h["walls"]["lower"] is None
+    assert h["walls"]["upper"] == pytest.approx(0.9 + 3 * 0.25)
+    assert (h["grid"]["lower"], h["grid"]["upper"]) == (-1.5, 2.0)
+    assert h["grid"]["covers_reachable"] is True
+    assert any("No lower wall, since -1.65 is at or below -1.5" in line for line in h["reasoning"])
+    assert "walls            lower none (at or beyond the reachable end)" in format_hints(h)
+
+
+def test_a_cv_unbounded_above_gets_a_grid_over_walls_and_observed_range_and_says_so():
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, cv_range=(-1.5, None),
+                      observed_range=(-1.45, 2.4))
+    sigma = h["kernel"]["sigma"]
+    margin = 6 * sigma  # 5 sigma of the Gaussian kernel plus 1 sigma of overshoot
+    assert h["walls"]["lower"] is None
+    assert h["grid"]["lower"] == -1.5  # clipped to the reachable lower end
+    assert h["grid"]["upper"] == pytest.approx(2.4 + margin)  # the observed maximum, beyond the wall
+    assert h["grid"]["covers_reachable"] is False
+    line = next(x for x in h["reasoning"] if x.startswith("Grid:"))
+    assert "the CV is unbounded above" in line and "Keep the walls" in line
+    assert "does NOT span every value the CV can reach" in format_hints(h)
+
+
+def test_a_bounded_range_too_wide_for_the_grid_falls_back_and_says_why():
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, cv_range=(-1e4, 1e4))
+    assert h["grid"]["covers_reachable"] is False
+    assert h["walls"]["lower"] == pytest.approx(-1.65) and h["grid"]["lower"] > -1e4
+    line = next(x for x in h["reasoning"] if x.startswith("Grid:"))
+    assert "more than max_grid_bins=100000" in line
+
+
+@pytest.mark.parametrize("cv_range,observed,match", [
+    ((1.0, 1.0), None, r"cv_range=\(1\.0, 1\.0\) must have lower < upper"),
+    (None, (2.0, 1.0), r"observed_range=\(2\.0, 1\.0\) must have lower <= upper"),
+    (None, 3.0, r"observed_range must be a pair \(lower, upper\); got 3\.0"),
+])
+def test_bad_ranges_are_refused_by_name(cv_range, observed, match):
+    with pytest.raises(InputError, match=match):
+        suggest_hints(STATES, temperature=T, md_step_fs=2.0, cv_range=cv_range,
+                      observed_range=observed)
+
+
+def test_a_periodic_cv_needs_both_ends_of_its_range():
+    with pytest.raises(InputError, match=r"cv_range is required when periodic=True, with both "
+                                         r"ends"):
+        suggest_hints(STATES, temperature=T, md_step_fs=2.0, periodic=True,
+                      cv_range=(-math.pi, None))
 
 
 def test_hints_are_deterministic():

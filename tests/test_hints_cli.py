@@ -35,9 +35,12 @@ def test_hints_command_recomputes_from_the_spec_alone(demo_result, tmp_path, cap
                  "--barrier", "50", "--kernel", "lucy", "--json"]) == 0
     got = json.loads(capsys.readouterr().out)
     spec = demo_result.specs[0]
+    reach, seen = spec["reachable_range"], spec["observed_range"]
     expect = suggest_hints({k: v for k, v in spec["states"].items()}, temperature=310.0,
                            md_step_fs=4.0, barrier=50.0, kernel="lucy",
-                           autocorrelation_time_ps=spec["scores"]["integrated_time_ps"])
+                           autocorrelation_time_ps=spec["scores"]["integrated_time_ps"],
+                           cv_range=(reach["lower"], reach["upper"]),
+                           observed_range=(seen["lower"], seen["upper"]))
     assert got == json.loads(json.dumps(expect))
     assert main(["hints", str(spec_path), "--temperature", "300", "--md-step-fs", "2"]) == 0
     text = capsys.readouterr().out
@@ -185,13 +188,13 @@ def test_suggest_warns_about_an_unusual_md_step_and_stores_it_in_the_hints(demo_
     top, states = demo_files
     out = tmp_path / "out"
     argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "0",
-            "--max-terms", "1", "--suggestions", "1", "--md-step-fs", "20", "--quiet"]
+            "--max-terms", "1", "--suggestions", "1", "--md-step-fs", "20"]
     for name, files in states.items():
         argv += ["--state", name] + files[:1]
     assert main(argv) == 0
     err = capsys.readouterr().err
-    assert err.count("cvdesign: warning: md_step_fs=20 fs is longer than 5 fs: usual for "
-                     "coarse-grained models only") == 1
+    assert err.count("cvdesign suggest: warning: md_step_fs=20 fs is longer than 5 fs: usual "
+                     "for coarse-grained models only") == 1
     spec = json.loads((out / "cv-01.json").read_text())
     assert spec["hints"]["inputs"]["md_step_fs"] == 20.0
     assert spec["hints"]["warnings"][0].startswith("md_step_fs=20 fs is longer than 5 fs")

@@ -16,9 +16,9 @@ import cvdesign
 PACKAGE = Path(cvdesign.__file__).resolve().parent
 ROOT = PACKAGE.parent
 
-ORDER = ["_version", "errors", "constants", "kinds", "io", "testbed", "geometry", "stats",
-         "pool", "score", "fit", "search", "parallel", "passes", "bias", "export", "spec",
-         "pipeline", "report", "cli", "__main__"]
+ORDER = ["_version", "errors", "constants", "progress", "kinds", "io", "testbed", "geometry",
+         "stats", "pool", "score", "fit", "search", "parallel", "passes", "bias", "export",
+         "spec", "pipeline", "report", "cli", "__main__"]
 LAYERS = {name: rank for rank, name in enumerate(ORDER)}
 
 

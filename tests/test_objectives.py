@@ -5,6 +5,7 @@ import pytest
 
 from cvdesign import InputError, Source, suggest
 from cvdesign.pipeline.explore import propose_states
+from cvdesign.search import FoldMoments, autocorrelation_along, heldout_score
 from cvdesign.stats.moments import DiagonalLaggedMoments
 from cvdesign.pipeline.timing import integrated_time
 from cvdesign.testbed import write_two_wells
@@ -171,3 +172,80 @@ def test_lagged_pairs_never_span_a_change_of_label(demo_files):
     var = 0.5 * (((x0 - mean) ** 2).mean() + ((xt - mean) ** 2).mean())
     rho = ((x0 - mean) * (xt - mean)).mean() / var
     assert row["autocorrelation"] == pytest.approx(rho, abs=1e-6)
+
+
+def _ar1(rng, phi, n, mean):
+    """A stationary AR(1) series of unit variance about `mean` (autocorrelation phi^lag)."""
+    x = np.empty(n)
+    x[0] = rng.normal()
+    noise = rng.normal(size=n) * np.sqrt(1.0 - phi**2)
+    for t in range(1, n):
+        x[t] = phi * x[t - 1] + noise[t]
+    return x + mean
+
+
+def _two_descriptor_folds(rng, phi_slow, n_folds=3, n=3000, shift=4.0):
+    """Per-state, per-fold moments of two descriptors that separate two states equally
+    well (means 0 and `shift`, unit variance within each state); descriptor 0 moves
+    slowly inside the states (AR(1) with phi_slow), descriptor 1 is white noise."""
+    from cvdesign.stats.moments import LaggedMoments, Moments
+
+    moments, lagged = [], []
+    for mean in (0.0, shift):
+        ms, ls = [], []
+        for _ in range(n_folds):
+            x = np.column_stack([_ar1(rng, phi_slow, n, mean), rng.normal(mean, 1.0, n)])
+            ms.append(Moments.from_data(x))
+            ls.append(LaggedMoments.from_series(x, lag=1))
+        moments.append(ms)
+        lagged.append(ls)
+    return FoldMoments(moments, None, lagged)
+
+
+def test_both_prefers_the_descriptor_that_is_slow_within_the_states():
+    # Two descriptors separate the states equally well (Fisher ratio (4/2)^2 = 4); one
+    # relaxes slowly inside the states (AR(1), phi = 0.9: within-state autocorrelation 0.9
+    # at lag 1, Box and Jenkins, Time Series Analysis, 1970), the other is white noise
+    # (0). About one common mean both look equally slow (between-state offsets dominate:
+    # about J/(1+J) = 0.8); within the states they differ, and `both` ranks on that.
+    fm = _two_descriptor_folds(np.random.default_rng(3), phi_slow=0.9)
+    common = [autocorrelation_along(np.ones(1), fm.lagged_pooled(), [i]) for i in (0, 1)]
+    within = [autocorrelation_along(np.ones(1), fm.within_pooled(), [i]) for i in (0, 1)]
+    assert abs(common[0] - common[1]) < 0.2 and min(common) > 0.75
+    assert within[0] == pytest.approx(0.9, abs=0.03) and abs(within[1]) < 0.05
+    slow_score = heldout_score(fm, [0], objective="both")[0]
+    fast_score = heldout_score(fm, [1], objective="both")[0]
+    j = heldout_score(fm, [0], objective="separate")[0]
+    assert slow_score == pytest.approx(j / (1 + j) * (1 + within[0]) / 2, rel=0.05)
+    assert slow_score > 1.5 * fast_score
+
+
+def test_both_never_puts_a_poor_separator_above_a_clean_one_for_its_slowness():
+    # A perfectly separating descriptor that is fast within the states against a poorly
+    # separating one that is slow: the within-state factor may at most halve the score.
+    fm = _two_descriptor_folds(np.random.default_rng(4), phi_slow=0.95, shift=1.0)
+    clean = _two_descriptor_folds(np.random.default_rng(5), phi_slow=0.0, shift=40.0)
+    poor_slow = heldout_score(fm, [0], objective="both")[0]
+    clean_fast = heldout_score(clean, [1], objective="both")[0]
+    assert clean_fast > poor_slow
+
+
+def test_within_states_equals_the_covariances_of_each_state_about_its_own_mean():
+    from cvdesign.search import within_states
+    from cvdesign.stats.moments import LaggedMoments
+
+    rng = np.random.default_rng(6)
+    runs = [rng.normal(size=(400, 3)) @ rng.normal(size=(3, 3)) + rng.normal(0, 5, 3)
+            for _ in range(2)]
+    got = within_states([LaggedMoments.from_series(x, lag=2) for x in runs]).covariances()
+    # direct: each state's pairs about that state's reversible mean, pooled by pair count
+    c0 = ct = 0.0
+    for x in runs:
+        a, b = x[:-2], x[2:]
+        m = 0.5 * (a.mean(axis=0) + b.mean(axis=0))
+        a, b = a - m, b - m
+        c0 = c0 + 0.5 * (a.T @ a + b.T @ b)
+        ct = ct + 0.5 * (a.T @ b + b.T @ a)
+    n = 2 * (len(runs[0]) - 2)
+    np.testing.assert_allclose(got[1], c0 / n, rtol=1e-10, atol=1e-10)
+    np.testing.assert_allclose(got[2], ct / n, rtol=1e-10, atol=1e-10)

@@ -11,6 +11,7 @@ import cvdesign.pipeline.suggest
 from cvdesign import Source, suggest
 from cvdesign.cli import main
 from cvdesign.passes import PoolFeaturizer
+from cvdesign.progress import using_display
 
 SETTINGS = dict(n_bootstrap=10, max_terms=2, n_suggestions=3, lag=2.0, objective="both")
 
@@ -35,10 +36,19 @@ def serial_files(demo_files, tmp_path_factory):
 
 
 def test_two_local_processes_write_the_bytes_of_the_serial_run(demo_files, serial_files,
-                                                              tmp_path):
-    got = _files(suggest(_source(demo_files), executor=2, **SETTINGS), tmp_path / "o")
+                                                              tmp_path, progress_recorder):
+    with using_display(progress_recorder):  # progress bars shown: the same bytes
+        got = _files(suggest(_source(demo_files), executor=2, **SETTINGS), tmp_path / "o")
     assert got.keys() == serial_files.keys() and len(got) >= 5
+    assert "report-data.json" in got  # the report's histograms, traces and timescales too
     assert got == serial_files
+    # a bar for each read (every frame with a state, once) and each bootstrap
+    reads = [b for b in progress_recorder.bars if b.unit == "frames"]
+    assert [b.label for b in reads] == ["prefilter", "screening", "statistics", "held-out"]
+    assert all(b.count == b.total for b in progress_recorder.bars)
+    assert [b.total for b in reads[1:]] == [4 * 600] * 3
+    assert [b.label for b in progress_recorder.bars if b.unit == "replicates"] == [
+        "bootstrap", "bootstrap refits", "bootstrap card"]
 
 
 def test_a_dask_cluster_writes_the_bytes_of_the_serial_run(demo_files, serial_files, tmp_path):

@@ -1,11 +1,12 @@
 """The report (issue 11): figures from an output directory, one self-contained report.html.
 
-The pipeline does not write ``report-data.json`` yet; ``_write_report_data`` below writes one
-in the documented format (docs/report-data-v1.md) from the trajectories themselves, so that the
-figures that need it are exercised: every frame's CV value through the spec's own evaluator,
-histograms on common bins, subsampled traces, autocorrelation timescales within runs. It is
-a stand-in for the pipeline's writer (its histograms are of all frames, not held-out ones),
-enough to check that what is drawn is what the files hold.
+The data the figures draw beyond the tables comes from the pipeline's own
+``report-data.json`` (``cvdesign.pipeline.report_data``; format in docs/report-data-v1.md).
+The checks here compare what is drawn with the tables and with independent computations
+from the trajectories: the spec's own evaluator on the traced frames, the held-out
+histograms' per-state means against the spec's, the proposed states of the TICA picture
+against states.csv, the funnel positions against the frames aligned onto the reference
+pocket with ``align_to_reference_pocket``.
 """
 
 import base64
@@ -30,69 +31,11 @@ from cvdesign.report import figures as fg
 from cvdesign.report import build_report, read_output, write_report
 
 
-# ------------------------------------------------------------------- report-data stand-in
-def _cv_values(spec, top, path):
-    traj = md.load(path, top=top)
-    return spec.evaluate(traj), traj.time.astype(np.float64)
-
-
-def _timescales(values_by_run, frame_step_ps, lags_frames):
-    """-lag/ln(rho) of the CV within runs, about the mean of all frames, per lag (ps)."""
-    allv = np.concatenate(values_by_run)
-    mu, var = allv.mean(), allv.var()
-    out = []
-    for k in lags_frames:
-        num = sum(float(np.sum((v[:-k] - mu) * (v[k:] - mu))) for v in values_by_run)
-        n = sum(v.size - k for v in values_by_run)
-        rho = num / n / var
-        out.append(None if not 0 < rho < 1 else -k * frame_step_ps / np.log(rho))
-    return {"lag_ps": [k * frame_step_ps for k in lags_frames], "timescale_ps": out}
-
-
-def _write_report_data(out_dir, top, files_by_state, *, labels=None, temperature_k=300.0,
-                       lag_ps=2.0, tica=None, max_points=1000, n_bins=40):
-    """report-data.json for a suggest directory, from the trajectories (see module docstring).
-
-    `labels`: {path: per-frame state array} for unlabelled runs (states.csv)."""
-    out_dir = Path(out_dir)
-    ranking = json.loads((out_dir / "ranking.json").read_text())
-    states = ranking["states"]
-    cvs = []
-    for r in ranking["ranking"]:
-        spec = load_spec(out_dir / r["spec"])
-        runs = []
-        for state, paths in files_by_state.items():
-            for p in paths:
-                v, t = _cv_values(spec, top, p)
-                lab = labels[p] if labels is not None else np.array([state] * v.size)
-                runs.append((p, v, t, lab))
-        allv = np.concatenate([v for _, v, _, _ in runs])
-        edges = np.linspace(allv.min(), allv.max(), n_bins + 1)
-        counts = {s: np.histogram(np.concatenate([v[lab == s] for _, v, _, lab in runs]),
-                                  edges)[0].tolist() for s in states}
-        traces = []
-        for p, v, t, lab in runs:
-            stride = -(-v.size // max_points)
-            keep = np.arange(0, v.size, stride)
-            traces.append({"file": Path(p).name, "frame": keep.tolist(),
-                           "time_ps": t[keep].tolist(), "value": v[keep].tolist(),
-                           "state": [str(s) for s in lab[keep]]})
-        step = float(runs[0][2][1] - runs[0][2][0])
-        cvs.append({"rank": r["rank"], "spec": r["spec"], "units": "CV units",
-                    "heldout": {"edges": edges.tolist(), "counts": counts},
-                    "traces": traces,
-                    "timescales": _timescales([v for _, v, _, _ in runs], step, [1, 2, 5, 10, 20])})
-    doc = {"format": "cvdesign-report-data", "version": 1, "kind": "suggest",
-           "states": states, "temperature_k": temperature_k, "lag_ps": lag_ps, "cvs": cvs,
-           "tica": tica}
-    (out_dir / "report-data.json").write_text(json.dumps(doc))
-    return doc
-
-
 # ---------------------------------------------------------------------------- fixtures
 @pytest.fixture(scope="module")
 def demo_out(tmp_path_factory, demo_files):
-    """suggest on the demo (a small bootstrap), written as the CLI writes it."""
+    """suggest on the demo (a small bootstrap), written as the CLI writes it (with
+    report-data.json)."""
     top, states = demo_files
     res = suggest(Source.from_states(top, states), n_bootstrap=8, n_suggestions=3, seed=0)
     out = tmp_path_factory.mktemp("demo") / "out"
@@ -101,11 +44,11 @@ def demo_out(tmp_path_factory, demo_files):
 
 
 @pytest.fixture(scope="module")
-def demo_with_data(tmp_path_factory, demo_out, demo_files):
-    top, states = demo_files
-    out = tmp_path_factory.mktemp("demo-data") / "out"
+def demo_without_data(tmp_path_factory, demo_out):
+    """The same directory without its report-data.json (as an older cvdesign wrote it)."""
+    out = tmp_path_factory.mktemp("demo-bare") / "out"
     shutil.copytree(demo_out, out)
-    _write_report_data(out, top, states)
+    (out / "report-data.json").unlink()
     return out
 
 
@@ -135,9 +78,10 @@ def _svgs(tags):
     return out
 
 
-def _write_funnel_data(spec_path, topology, paths):
-    """NAME-report-data.json beside a funnel spec: the ligand centre of every bound frame in
-    the restraint's frame (pocket fitted onto the reference pocket, as in test_funnel_cli)."""
+def _funnel_positions(spec_path, topology, paths):
+    """(z, r) in nm of the ligand centre of every bound frame in the restraint's frame, from
+    the frames themselves: the pocket fitted onto the spec's reference pocket by
+    ``align_to_reference_pocket`` (Kabsch 1976), then projected on the spec's axis."""
     from cvdesign.bias.funnel import align_to_reference_pocket
 
     spec = load_spec(spec_path)
@@ -149,43 +93,7 @@ def _write_funnel_data(spec_path, topology, paths):
     d = aligned[:, lig].mean(axis=1) - aligned[:, pocket].mean(axis=1)
     axis = np.asarray(funnel["axis"])
     z = d @ axis
-    r = np.linalg.norm(d - z[:, None] * axis, axis=1)
-    doc = {"format": "cvdesign-report-data", "version": 1, "kind": "funnel",
-           "positions": {"z_nm": z.tolist(), "r_nm": r.tolist()},
-           "spec": Path(spec_path).name}
-    path = Path(spec_path).with_name(Path(spec_path).stem + "-report-data.json")
-    path.write_text(json.dumps(doc))
-    return doc
-
-
-def _hopping_runs(out, *, n_runs=3, n_frames=1500, seed=5):
-    """Unlabelled runs of a four-atom toy whose C1-C2 distance hops between 0.4 and 0.8 nm
-    (a two-state Markov chain, 1 % switching per frame, AR(1) wiggle within a state)."""
-    rng = np.random.default_rng(seed)
-    top = md.Topology()
-    res = top.add_residue("HOP", top.add_chain(), resSeq=1)
-    for name in ("C1", "C2", "C3", "C4"):
-        top.add_atom(name, md.element.carbon, res)
-    paths = []
-    for k in range(n_runs):
-        state, dev = k % 2, 0.0
-        x = np.empty(n_frames)
-        for t in range(n_frames):
-            if rng.random() < 0.01:
-                state = 1 - state
-            dev = 0.7 * dev + rng.normal(0, 0.02)
-            x[t] = (0.4, 0.8)[state] + dev
-        xyz = np.zeros((n_frames, 4, 3))
-        xyz[:, 1, 0] = x
-        xyz[:, 2] = [0.0, 0.5, 0.0] + rng.normal(0, 0.02, (n_frames, 3))
-        xyz[:, 3] = [0.4, 0.4, 0.3] + rng.normal(0, 0.02, (n_frames, 3))
-        path = out / f"hop-{k + 1}.xtc"
-        md.Trajectory(xyz.astype(np.float32), top,
-                      time=np.arange(n_frames) * 0.1).save_xtc(str(path))
-        paths.append(str(path))
-    pdb = out / "hop.pdb"
-    md.Trajectory(xyz[:1].astype(np.float32), top).save_pdb(str(pdb))
-    return str(pdb), paths
+    return z, np.linalg.norm(d - z[:, None] * axis, axis=1)
 
 
 def _states_csv(out_dir, paths):
@@ -198,36 +106,18 @@ def _states_csv(out_dir, paths):
     return {p: np.array(v) for p, v in labels.items()}
 
 
-def _tica_block(top, paths, labels, *, lag_frames=10, frame_step_ps=0.1, every=3):
-    """The report data's "tica" entry: the two slowest TICA coordinates of the runs' pair
-    distances, every `every`-th frame, with its proposed state."""
-    from cvdesign import TICA
-
-    pairs = [(i, j) for i in range(4) for j in range(i + 1, 4)]
-    xs = [md.compute_distances(md.load(p, top=top), pairs).astype(np.float64) for p in paths]
-    tica = TICA(lag=lag_frames).fit(xs)
-    coords = np.concatenate([tica.transform(x)[::every, :2] for x in xs])
-    state = np.concatenate([labels[p][::every] for p in paths])
-    return {"coords": coords.tolist(), "state": state.tolist(),
-            "timescales_ps": (np.asarray(tica.timescales_[:2]) * frame_step_ps).tolist(),
-            "lag_ps": lag_frames * frame_step_ps}
-
-
 @pytest.fixture(scope="module")
-def runs_out(tmp_path_factory):
-    """suggest --runs through the command, then the report data with its TICA entry."""
+def runs_out(tmp_path_factory, hopping_runs):
+    """suggest --runs through the command (report data written by the pipeline)."""
     d = tmp_path_factory.mktemp("runs")
-    top, paths = _hopping_runs(d)
+    top, paths = hopping_runs(d)
     out = d / "out"
     assert main(["suggest", "--topology", top, "--runs", *paths, "--lag", "1", "--out",
                  str(out), "--bootstrap", "0", "--max-terms", "1", "--suggestions", "2",
                  "--kinds", "distance", "--quiet"]) == 0
-    bare = (out / "report.html").read_text()
     labels = _states_csv(out, paths)
-    tica = _tica_block(top, paths, labels)
     states = sorted(set(np.concatenate(list(labels.values()))))
-    _write_report_data(out, top, {"runs": paths}, labels=labels, lag_ps=1.0, tica=tica)
-    return {"out": out, "bare": bare, "tica": tica, "states": states}
+    return {"out": out, "top": top, "paths": paths, "labels": labels, "states": states}
 
 
 @pytest.fixture(scope="module")
@@ -264,8 +154,8 @@ def test_state_colours_are_the_okabe_ito_palette_in_input_order_and_cycle():
     assert colors["S8"] == fg.PALETTE[0] and colors["S9"] == fg.PALETTE[1]
 
 
-def test_report_is_well_formed_self_contained_and_every_figure_has_alt_text(demo_with_data):
-    path = write_report(demo_with_data)
+def test_report_is_well_formed_self_contained_and_every_figure_has_alt_text(demo_out):
+    path = write_report(demo_out)
     text = path.read_text(encoding="utf-8")
     assert text.startswith("<!DOCTYPE html>\n")
     root, tags = _parse(text)  # well-formed XML: every element closed
@@ -279,7 +169,7 @@ def test_report_is_well_formed_self_contained_and_every_figure_has_alt_text(demo
     assert "url(" not in text and "@import" not in text and "http://" not in text \
         and "https://" not in text
     imgs = [a for t, a in tags if t == "img"]
-    report = build_report(read_output(demo_with_data))
+    report = build_report(read_output(demo_out))
     assert len(imgs) == len(report.figures) == 3 * 3 + 3  # per CV 3, pool, groups, timescales
     for attrs, fig in zip(imgs, report.figures):
         assert attrs["alt"] == fig.alt and len(fig.alt) > 40
@@ -297,8 +187,8 @@ def test_report_is_well_formed_self_contained_and_every_figure_has_alt_text(demo
     assert "<h4>Inputs</h4>" in text and "<td>closed-1.xtc</td>" in text
 
 
-def test_figures_draw_the_numbers_of_the_spec_the_ranking_and_the_score_card(demo_with_data):
-    out = demo_with_data
+def test_figures_draw_the_numbers_of_the_spec_the_ranking_and_the_score_card(demo_out):
+    out = demo_out
     figs = _figures(out)
     ranking = json.loads((out / "ranking.json").read_text())
     data = json.loads((out / "report-data.json").read_text())
@@ -314,9 +204,14 @@ def test_figures_draw_the_numbers_of_the_spec_the_ranking_and_the_score_card(dem
         assert dist["edges"] == cv["heldout"]["edges"]
         for s in ranking["states"]:
             counts = np.array(cv["heldout"]["counts"][s], dtype=float)
+            beyond = sum(cv["heldout"]["outside"][s])
+            # every frame of the state is held out exactly once (in its own fold)
+            assert counts.sum() + beyond == spec["states"][s]["n_frames"]
             density = np.array(dist["density"][s])
-            np.testing.assert_allclose(density, counts / counts.sum() / np.diff(edges))
-            assert np.sum(density * np.diff(edges)) == pytest.approx(1.0)
+            np.testing.assert_allclose(density,
+                                       counts / (counts.sum() + beyond) / np.diff(edges))
+            assert np.sum(density * np.diff(edges)) == pytest.approx(
+                counts.sum() / (counts.sum() + beyond))
             prof = np.array([np.nan if v is None else v for v in dist["profile_kj_mol"][s]])
             seen = counts > 0
             assert np.isnan(prof[~seen]).all() and np.nanmin(prof) == 0.0
@@ -329,6 +224,9 @@ def test_figures_draw_the_numbers_of_the_spec_the_ranking_and_the_score_card(dem
             assert panel["file"] == tr["file"] and panel["x"] == "time_ps"
             assert panel["per_state"] == {s: tr["state"].count(s) for s in set(tr["state"])}
             assert panel["value_min"] == min(tr["value"])
+            # 2000 frames per file, every second one (at most 1000 points), 0.2 ps apart
+            assert tr["frame"] == list(range(0, 2000, 2))
+            np.testing.assert_allclose(tr["time_ps"], np.arange(0, 2000, 2) * 0.2)
         # the terms: weights, intervals and selection frequencies of the ranking
         w = figs[f"{stem}-weights"].data
         assert w["weights"] == [t["weight"] for t in r["terms"]]
@@ -353,8 +251,49 @@ def test_figures_draw_the_numbers_of_the_spec_the_ranking_and_the_score_card(dem
     assert ts == {f"rank {c['rank']}": c["timescales"] for c in data["cvs"]}
 
 
-def test_every_numeric_axis_has_a_unit_and_a_state_has_one_colour_everywhere(demo_with_data):
-    figs = _figures(demo_with_data)
+def test_report_data_agrees_with_the_specs_evaluator_and_the_ranking(demo_out, demo_files):
+    top, states = demo_files
+    paths = {Path(p).name: p for files in states.values() for p in files}
+    ranking = json.loads((demo_out / "ranking.json").read_text())
+    data = json.loads((demo_out / "report-data.json").read_text())
+    assert data["states"] == ranking["states"] and data["lag_ps"] == ranking["lag_ps"] == 2.0
+    assert data["temperature_k"] == 300.0 and data["tica"] is None
+    for r, cv in zip(ranking["ranking"], data["cvs"]):
+        assert (cv["rank"], cv["spec"], cv["units"]) == (r["rank"], r["spec"], "CV units")
+        spec = load_spec(demo_out / r["spec"])
+        # traces: the spec's reference evaluator on the same frames of the trajectory (the
+        # pipeline's features come from mdtraj in single precision)
+        for tr in cv["traces"]:
+            traj = md.load(paths[tr["file"]], top=top)[tr["frame"]]
+            np.testing.assert_allclose(tr["value"], spec.evaluate(traj), atol=2e-5)
+            assert set(tr["state"]) == {tr["file"].split("-")[0]}
+        # held-out histograms: frames of each fold along the direction fitted without that
+        # fold, mapped to CV units; their per-state mean and spread are near the spec's
+        # (all frames along the direction fitted on all of them), within a bin or so
+        edges = np.array(cv["heldout"]["edges"])
+        centres, width = 0.5 * (edges[1:] + edges[:-1]), edges[1] - edges[0]
+        for s in ranking["states"]:
+            c = np.array(cv["heldout"]["counts"][s], dtype=float)
+            mean = float(c @ centres / c.sum())
+            std = float(np.sqrt(c @ (centres - mean) ** 2 / c.sum()))
+            ref = spec.states[s]
+            assert abs(mean - ref["mean"]) < 0.05 * ref["std"] + width, (r["spec"], s)
+            assert abs(std - ref["std"]) < 0.1 * ref["std"] + width, (r["spec"], s)
+        # the CV is signed so that the last state lies higher, on held-out frames too
+        closed = np.array(cv["heldout"]["counts"]["closed"])
+        opened = np.array(cv["heldout"]["counts"]["open"])
+        assert closed @ centres / closed.sum() < opened @ centres / opened.sum()
+        # implied timescales: at the run's lag, the autocorrelation of the ranking (all runs
+        # about their common mean); pairs across fold boundaries, which the ranking leaves
+        # out, make the small difference
+        ts = cv["timescales"]
+        assert ts["lag_ps"] == sorted(ts["lag_ps"]) and 2.0 in ts["lag_ps"]
+        rho = np.exp(-2.0 / ts["timescale_ps"][ts["lag_ps"].index(2.0)])
+        assert rho == pytest.approx(r["autocorrelation_all"], abs=2e-3)
+
+
+def test_every_numeric_axis_has_a_unit_and_a_state_has_one_colour_everywhere(demo_out):
+    figs = _figures(demo_out)
     unit = re.compile(r"\((?:[^()]*\(CV units\)[^()]*|[^()]+)\)|/ \w+")
     for fig in figs.values():
         assert fig.axes
@@ -371,8 +310,8 @@ def test_every_numeric_axis_has_a_unit_and_a_state_has_one_colour_everywhere(dem
             assert color.lower() in fig.svg.lower(), fig.name
 
 
-def test_report_without_report_data_marks_those_figures_not_available(demo_out):
-    report = build_report(read_output(demo_out))
+def test_report_without_report_data_marks_those_figures_not_available(demo_without_data):
+    report = build_report(read_output(demo_without_data))
     names = [f.name for f in report.figures]
     assert names == ["cv-01-weights", "cv-02-weights", "cv-03-weights", "pool-scores",
                      "redundancy-groups"]
@@ -400,6 +339,10 @@ def test_suggest_writes_the_report_that_cvdesign_report_rebuilds_byte_for_byte(
         runs.append(out)
     first = (runs[0] / "report.html").read_bytes()
     assert first == (runs[1] / "report.html").read_bytes()  # same inputs and seed
+    assert (runs[0] / "report-data.json").read_bytes() == \
+        (runs[1] / "report-data.json").read_bytes()
+    # every figure is drawn from the directory's own files
+    assert b"not available" not in first and b"Every figure of this report was drawn" in first
     assert (runs[0] / "report.html").stat().st_mode & 0o777 == \
         (runs[0] / "ranking.json").stat().st_mode & 0o777
     # rebuilt from the directory alone, in another process (another hash seed)
@@ -414,13 +357,8 @@ def test_suggest_writes_the_report_that_cvdesign_report_rebuilds_byte_for_byte(
                          env={"PYTHONPATH": root, "PYTHONHASHSEED": "123", "PATH": ""})
     assert res.returncode == 0, res.stderr
     assert (runs[0] / "report.html").read_bytes() == first
-    # with the report data, the figures it holds are drawn, and rebuilt the same again
-    _write_report_data(runs[0], top, {s: f[:2] for s, f in states.items()})
-    assert main(["report", str(runs[0])]) == 0
-    with_data = (runs[0] / "report.html").read_bytes()
-    assert b"not available" not in with_data and len(with_data) > len(first)
     assert main(["report", str(runs[0]), "--out", str(tmp_path / "copy.html")]) == 0
-    assert (tmp_path / "copy.html").read_bytes() == with_data
+    assert (tmp_path / "copy.html").read_bytes() == first
     # --force replaces an earlier output holding the report and its data
     argv[argv.index("--out") + 1] = str(runs[0])
     assert main(argv + ["--force", "--no-report"]) == 0
@@ -454,15 +392,28 @@ def test_a_failing_report_leaves_the_tables_and_exits_2(demo_files, tmp_path, ca
                      r"once the cause is fixed", err), err
     assert "Traceback" not in err
     assert sorted(p.name for p in out.iterdir()) == [
-        "cv-01.json", "ranking.csv", "ranking.json", "scorecard.csv", "summary.md"]
+        "cv-01.json", "ranking.csv", "ranking.json", "report-data.json", "scorecard.csv",
+        "summary.md"]
     assert [p.name for p in tmp_path.iterdir()] == ["out"]  # no temporary file left
 
 
 def test_runs_report_draws_the_frames_in_the_tica_plane_by_proposed_state(runs_out):
-    out, tica = runs_out["out"], runs_out["tica"]
-    assert "not available: the frames in the two slowest TICA coordinates" in runs_out["bare"]
+    out, labels = runs_out["out"], runs_out["labels"]
+    data = json.loads((out / "report-data.json").read_text())
+    tica = data["tica"]
     report = build_report(read_output(out))
-    assert report.missing == ()
+    assert report.missing == () and "not available" not in (out / "report.html").read_text()
+    # the sample: at most 5000 frames, each with the proposed state states.csv gives it
+    names = [Path(p).name for p in runs_out["paths"]]
+    assert tica["files"] == names and tica["lag_ps"] == 1.0
+    n = len(tica["coords"])
+    assert 0 < n <= 5000 and len(tica["state"]) == len(tica["frame"]) == len(tica["file"]) == n
+    by_name = {Path(p).name: labels[p] for p in runs_out["paths"]}
+    expected = [by_name[names[f]][t] for f, t in zip(tica["file"], tica["frame"])]
+    assert tica["state"] == expected
+    # 3 runs of 1500 frames, fewer than 5000: every frame, in file and frame order
+    assert tica["frame"] == [t for _ in names for t in range(1500)]
+    assert tica["file"] == [f for f in range(3) for _ in range(1500)]
     figs = {f.name: f for f in report.figures}
     drawn = figs["tica-states"].data
     assert drawn["counts"] == {s: tica["state"].count(s) for s in runs_out["states"]}
@@ -470,42 +421,62 @@ def test_runs_report_draws_the_frames_in_the_tica_plane_by_proposed_state(runs_o
     lab = np.array(tica["state"])
     for s, c in drawn["centroids"].items():
         np.testing.assert_allclose(c, xy[lab == s].mean(axis=0), atol=1e-9)
+    # the states lie apart along the slowest coordinate (S1 below S2: they are named so)
+    assert drawn["centroids"]["S1"][0] < drawn["centroids"]["S2"][0]
     assert drawn["colors"] == fg.state_colors(runs_out["states"])
     ts = figs["implied-timescales"].data["tica"]
     assert ts == {"lag_ps": tica["lag_ps"], "timescales_ps": tica["timescales_ps"]}
+    assert len(ts["timescales_ps"]) == 2 and ts["timescales_ps"][0] > 1.0
     # the traces are coloured by the proposed state of each frame (from states.csv)
+    for tr in data["cvs"][0]["traces"]:
+        assert tr["state"] == by_name[tr["file"]][tr["frame"]].tolist()
     traces = figs["cv-01-traces"].data["panels"]
     assert all(len(p["per_state"]) == 2 for p in traces)  # the runs hop between the states
     assert "Proposed states" in report.html and "states proposed from unlabelled runs" \
         in report.html
 
 
-def test_funnel_writes_its_report_beside_out_and_draws_the_positions_in_its_frame(
+def test_funnel_writes_its_report_and_data_beside_out_with_the_positions_in_its_frame(
         host_guest, tmp_path, capsys):
     out = tmp_path / "site.json"
     assert _funnel(host_guest, out) == 0
-    assert f"wrote {tmp_path / 'site-report.html'}" in capsys.readouterr().out
+    printed = capsys.readouterr().out
+    assert f"wrote {tmp_path / 'site-report.html'}" in printed
+    assert f"wrote {tmp_path / 'site-report-data.json'}" in printed
     page = (tmp_path / "site-report.html").read_text()
-    assert "not available: the ligand positions in the frame of the restraint" in page
+    assert "not available" not in page
     _parse(page)
-    # rebuilt by 'cvdesign report' from the spec alone: the same bytes
+    # rebuilt by 'cvdesign report' from the spec and its data alone: the same bytes
+    (tmp_path / "site-report.html").unlink()
     assert main(["report", str(out)]) == 0
     assert (tmp_path / "site-report.html").read_text() == page
-    doc = _write_funnel_data(out, host_guest.topology, host_guest.paths)
-    assert main(["report", str(out)]) == 0
+    doc = json.loads((tmp_path / "site-report-data.json").read_text())
+    assert (doc["format"], doc["version"], doc["kind"], doc["spec"]) == (
+        "cvdesign-report-data", 1, "funnel", "site.json")
+    # the positions are those of the frames fitted onto the reference pocket
+    z, r = _funnel_positions(out, host_guest.topology, host_guest.paths)
+    np.testing.assert_allclose(doc["positions"]["z_nm"], z, atol=1e-5)
+    np.testing.assert_allclose(doc["positions"]["r_nm"], r, atol=1e-5)
     (fig,) = _figures(out).values()
     spec = load_spec(out)
     (restraint,) = spec.restraints
     n = len(doc["positions"]["z_nm"])
     assert fig.data["n_positions"] == n == 2 * 60
     assert fig.data["inside"] == n  # every bound frame sits inside the funnel it sized
+    assert min(z) > restraint["lower_wall_z_nm"] and max(z) < restraint["cone_end_z_nm"]
     for key in ("lower_wall_z_nm", "upper_wall_z_nm", "cone_end_z_nm", "cone_half_angle_rad",
                 "cylinder_radius_nm"):
         assert fig.data["params"][key] == restraint[key]
-    assert "not available" not in (tmp_path / "site-report.html").read_text()
-    # --no-report: the spec only
+    # --no-report: the spec and the data 'cvdesign report' draws from later
     assert _funnel(host_guest, tmp_path / "other.json", "--no-report") == 0
     assert not (tmp_path / "other-report.html").exists()
+    assert (tmp_path / "other-report-data.json").read_bytes() == \
+        (tmp_path / "site-report-data.json").read_bytes().replace(b"site.json", b"other.json")
+    # without its data (an older output) the outline is drawn and the positions are not
+    (tmp_path / "site-report-data.json").unlink()
+    assert main(["report", str(out)]) == 0
+    assert "not available: the ligand positions in the frame of the restraint" in \
+        (tmp_path / "site-report.html").read_text()
 
 
 def test_a_failing_funnel_report_leaves_the_spec_and_exits_2(host_guest, tmp_path, capsys,
@@ -522,7 +493,7 @@ def test_a_failing_funnel_report_leaves_the_spec_and_exits_2(host_guest, tmp_pat
                      r"be: the disk is full\. Run 'cvdesign report .*site\.json' once the "
                      r"cause is fixed", captured.err), captured.err
     assert "site-report.html" not in captured.out
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["site.json"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["site-report-data.json", "site.json"]
     assert load_spec(out).restraints
 
 
@@ -539,9 +510,9 @@ def test_a_failing_funnel_report_leaves_the_spec_and_exits_2(host_guest, tmp_pat
      r"report-data\.json: a field is missing or malformed \(KeyError: 'value'\)"),
 ], ids=["version", "kind", "states", "edges", "trace-without-values"])
 def test_bad_report_data_is_refused_naming_the_file_and_nothing_is_written(
-        demo_with_data, tmp_path, change, message):
+        demo_out, tmp_path, change, message):
     out = tmp_path / "out"
-    shutil.copytree(demo_with_data, out)
+    shutil.copytree(demo_out, out)
     (out / "report.html").unlink(missing_ok=True)
     doc = json.loads((out / "report-data.json").read_text())
     change(doc)
@@ -622,10 +593,10 @@ def _pixels_of(image, hex_color, tol=12):
     return int(np.sum(np.all(np.abs(image - rgb) <= tol, axis=-1)))
 
 
-def test_report_renders_in_headless_chromium_with_every_image_loaded(demo_with_data, tmp_path):
+def test_report_renders_in_headless_chromium_with_every_image_loaded(demo_out, tmp_path):
     _chromium()
-    text = write_report(demo_with_data).read_text(encoding="utf-8")
-    n_figures = len(build_report(read_output(demo_with_data)).figures)
+    text = write_report(demo_out).read_text(encoding="utf-8")
+    n_figures = len(build_report(read_output(demo_out)).figures)
     assert _loaded_images(tmp_path, text, "counted.html") == (n_figures, 0)
     # the check can fail: an image that does not load is counted as broken
     broken = text.replace("</body>", '<img src="missing.png" alt="missing" /></body>')

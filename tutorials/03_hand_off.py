@@ -31,7 +31,6 @@ C3-C4-C5-C6 with a barrier of about 35 kJ/mol between closed (near 0 rad) and
 open (near pi rad); see data/README.md. Units: nm, rad, ps, kJ/mol, K.
 """
 
-import json
 import sys
 import tempfile
 import time
@@ -41,7 +40,7 @@ import mdtraj as md
 import numpy as np
 
 import cvdesign
-from cvdesign.io.demo import demo_data_dir
+from cvdesign.io.demo import demo_inputs
 from cvdesign.bias.hints import spec_hints
 from cvdesign.testbed import count_transitions, latch
 from cvdesign.testbed.metad import (WellTemperedBias, run_biased, softened_delta_f, spec_cv,
@@ -55,16 +54,6 @@ N_STEPS = 40_000          # per walker: 80 ps each, 2.56 ns in all
 BARRIER_KJ_MOL = 35.0     # barrier estimate for the hints (the toy's, by construction)
 HEIGHT_FRACTION = 0.25    # of the hinted kernel height; see step 4
 SEED = 2026
-
-
-def demo_inputs():
-    """Topology file and {state: [trajectory files]} of the bundled demo."""
-    data = demo_data_dir()
-    manifest = json.loads((data / "manifest.json").read_text(encoding="utf-8"))
-    topology = str(data / manifest["topology"]["file"])
-    states = {name: [str(data / f) for f in entry["files"]]
-              for name, entry in manifest["states"].items()}
-    return topology, states
 
 
 def dihedral_spec(row, topology, states):

@@ -54,9 +54,10 @@ from ..geometry.box import _parse_box
 from ..io.atomic import atomic_path
 from ..io.source import Source
 from ..parallel import using_executor
-from ..passes import CoordinateFeaturizer, Pass, first_frame, plan_tasks, run_pass
+from ..passes import (CoordinateFeaturizer, Pass, first_frame, frame_keys, plan_tasks, run_pass,
+                      thinning_stride)
 
-__all__ = ["CAUTION", "SHAPE_KEYS", "FunnelStats", "align_to_reference_pocket", "draw_funnel",
+__all__ = ["CAUTION", "SHAPE_KEYS", "MAX_POSITIONS", "FunnelStats", "align_to_reference_pocket", "draw_funnel",
            "funnel_axis", "funnel_energy", "funnel_radius", "funnel_reach", "plot_funnel",
            "project_on_axis", "size_funnel", "size_funnel_from_source"]
 
@@ -563,6 +564,10 @@ def funnel_reach(params):
     return (upper, "upper wall") if upper >= lower else (lower, "lower wall")
 
 
+#: Most ligand positions returned (``positions``, for the report's picture): a subsample
+#: of the frames by a stride chosen from the frame counts.
+MAX_POSITIONS = 5000
+
 #: Fewest bound frames for a funnel size: its margins are multiples of the ligand's
 #: spread, which a handful of frames does not estimate (common practice).
 MIN_FUNNEL_FRAMES = 10
@@ -639,8 +644,10 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
         ``reference_pocket_nm`` (the centred reference pocket, one row per
         pocket atom), ``reference_center_nm`` (its centre in the first
         frame), ``observed`` statistics (nm), ``margins``, ``density``
-        (occupied (z, r) cells, for the plot), ``warnings``, ``reasoning``,
-        ``caution``.
+        (occupied (z, r) cells, for the plot), ``positions`` (``{"z_nm": [...],
+        "r_nm": [...]}``: the ligand centre along and across the axis, nm, in the
+        reference pocket's frame, of every ``stride``-th frame given, at most
+        :data:`MAX_POSITIONS`), ``warnings``, ``reasoning``, ``caution``.
 
     Raises
     ------
@@ -664,11 +671,19 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
             sums = sums.merge(_FitSums.of(fitter(p, q, b), b))
         return fitter.reference, sums
 
-    def second(reference, stats):
+    def second(reference, stats, n):
         fitter = _Fitter(reference)
+        stride = thinning_stride([n], MAX_POSITIONS)
+        z_kept, r_kept = [], []
         for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
-            stats.update(fitter(p, q, b).d)
-        return stats
+            first = fitter.n_frames
+            d = fitter(p, q, b).d
+            stats.update(d)
+            z, r = project_on_axis(d, stats.origin, stats.axis)
+            keep = (first + np.arange(len(d))) % stride == 0
+            z_kept.append(z[keep])
+            r_kept.append(r[keep])
+        return stats, _positions(z_kept, r_kept)
 
     return _size(first, second, "give a re-iterable or a callable for chunks",
                  exit_point=exit_point, ligand_radius=ligand_radius, cylinder_pad=cylinder_pad,
@@ -683,10 +698,11 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
     """The sizing from two passes over the frames (see :func:`size_funnel`).
 
     ``first()`` returns the reference pocket and the :class:`_FitSums` of every
-    frame; ``second(reference, stats)`` adds every frame's fitted vector to the
-    empty :class:`FunnelStats` `stats` (on the axis chosen from the first pass)
-    and returns them; `changed` is the advice when the passes saw different
-    frames.
+    frame; ``second(reference, stats, n_frames)`` adds every frame's fitted vector
+    to the empty :class:`FunnelStats` `stats` (on the axis chosen from the first
+    pass) and returns them with the positions of at most :data:`MAX_POSITIONS`
+    frames (:func:`_positions`); `changed` is the advice when the passes saw
+    different frames.
     """
     # Pass 1: reference pocket, mean fitted offset and pocket, ligand radius, box heights.
     reference, sums = first()
@@ -706,7 +722,8 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
                            if reference.box is not None else " of the first bound frame")
     axis, rule = funnel_axis(np.zeros(3), exit_offset, sums.dsum / n, pocket_xyz=sums.psum / n)
     # Pass 2: (z, r) statistics of the fitted vectors.
-    stats = second(reference, FunnelStats(np.zeros(3), axis, bin_width=bin_width))
+    stats, positions = second(reference, FunnelStats(np.zeros(3), axis, bin_width=bin_width),
+                              n)
     if stats.count != n:
         raise InputError(f"the frames changed between the two passes ({n} then "
                          f"{stats.count}); {changed}")
@@ -778,6 +795,7 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
                      "funnel_reach_nm": reach},
         "margins": {"z_nm": dz, "r_nm": dr, "k_std": k_std, "cylinder_pad_nm": cylinder_pad},
         "density": {"bin_width_nm": float(bin_width), "cells": cells},
+        "positions": positions,
         "warnings": warnings,
         "reasoning": reasoning,
         "caution": CAUTION,
@@ -794,9 +812,11 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
     segment with a frame), read before the passes, so it does not depend on
     how the frames are split -- with the sums of the fitted pocket-to-ligand
     vectors and pockets, the ligand radius, the fit RMSD and the box heights;
-    (2) the (z, r) statistics along the axis chosen from them. Memory does not
-    grow with the number of frames, and the result is the same, byte for
-    byte, for every executor and task split.
+    (2) the (z, r) statistics along the axis chosen from them, and the
+    positions of the frames whose rank in their run is a multiple of a stride
+    chosen from the frame counts (at most :data:`MAX_POSITIONS`; the same frames
+    for every split). Memory does not grow with the number of frames, and the
+    result is the same, byte for byte, for every executor and task split.
 
     Parameters
     ----------
@@ -818,7 +838,7 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
     Returns
     -------
     dict
-        As :func:`size_funnel`.
+        As :func:`size_funnel` (``positions`` from the frames described above).
 
     Raises
     ------
@@ -846,6 +866,10 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
     if not isinstance(source, Source):
         raise InputError(f"size_funnel_from_source() needs a Source of the bound-state "
                          f"trajectories, not {type(source).__name__}")
+    if source.biased:
+        raise InputError("size_funnel_from_source() sizes the funnel from the bound state's "
+                         "unbiased frames and does not reweight biased runs; give "
+                         "trajectories without bias energies")
     n_atoms = source.topology.n_atoms
     groups = []
     for name, group in (("pocket", pocket), ("ligand", ligand)):
@@ -873,11 +897,12 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
             xyz, box = _coordinates(found[2])
             reference, _ = _fit_frames(xyz[:, columns[0]], xyz[:, columns[1]], box, None)
             return reference, run_pass(_FitPass(featurizer, *columns, reference), source,
-                                       executor=executor, tasks=plan)
+                                       executor=executor, tasks=plan, label="funnel: axis")
 
-        def second(reference, stats):
-            return run_pass(_StatsPass(featurizer, *columns, reference, stats), source,
-                            executor=executor, tasks=plan)
+        def second(reference, stats, n):
+            stride = thinning_stride(plan.segment_counts().reshape(-1), MAX_POSITIONS)
+            return run_pass(_StatsPass(featurizer, *columns, reference, stats, stride), source,
+                            executor=executor, tasks=plan, label="funnel: sizing")
 
         return _size(first, second, "were the trajectories changed during the run?", **options)
 
@@ -885,6 +910,13 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
 _SIZING_OPTIONS = ("exit_point", "ligand_radius", "cylinder_pad", "k_std", "min_margin",
                    "z_margin", "blend_half_width", "unbound_length", "min_half_angle",
                    "bin_width")
+
+
+def _positions(z, r):
+    """``{"z_nm": [...], "r_nm": [...]}`` from lists of arrays."""
+    z = np.concatenate(z) if z else np.zeros(0)
+    r = np.concatenate(r) if r else np.zeros(0)
+    return {"z_nm": z.tolist(), "r_nm": r.tolist()}
 
 
 def _coordinates(trajectory):
@@ -933,20 +965,30 @@ class _FitPass(_FunnelPass):
 
 class _StatsPass(_FunnelPass):
     """Pass 2: the :class:`FunnelStats` of every frame's fitted vector, about the origin
-    and along the axis of `stats` (empty statistics, the template)."""
+    and along the axis of `stats` (empty statistics, the template), and the (z, r) of
+    the frames whose rank in their (segment, state) is a multiple of `stride`, in
+    frame order. The result is ``(stats, positions)``."""
 
-    def __init__(self, featurizer, pocket, ligand, reference, stats):
+    def __init__(self, featurizer, pocket, ligand, reference, stats, stride=1):
         super().__init__(featurizer, pocket, ligand, reference)
-        self.stats = stats
+        self.stats, self.stride = stats, int(stride)
 
     def _empty(self):
         return FunnelStats(self.stats.origin, self.stats.axis, bin_width=self.stats.bin_width)
 
     def map(self, leaf):
-        return self._empty().update(self.fit(leaf)[0].d)
+        d = self.fit(leaf)[0].d
+        z, r = project_on_axis(d, self.stats.origin, self.stats.axis)
+        keep = frame_keys(leaf.layout, leaf.frames).rank % self.stride == 0
+        return self._empty().update(d), [(z[keep], r[keep])]
+
+    def merge(self, a, b):
+        return a[0].merge(b[0]), a[1] + b[1]
 
     def finish(self, partial, plan):
-        return self._empty() if partial is None else partial
+        if partial is None:
+            return self._empty(), _positions([], [])
+        return partial[0], _positions([z for z, _ in partial[1]], [r for _, r in partial[1]])
 
 
 def funnel_energy(displacement, params, force_constant):

@@ -751,6 +751,7 @@ def suggest_hints(
     barrier=None,
     kernel="gaussian",
     cv_range=None,
+    observed_range=None,
     periodic=False,
     bias_factor=None,
     width_fraction=0.5,
@@ -796,9 +797,18 @@ def suggest_hints(
     kernel : {'gaussian', 'lucy'}, default='gaussian'
         Kernel kind. For Lucy's kernel the cutoff has the variance of the
         suggested Gaussian width (:func:`lucy_cutoff_for_sigma`).
-    cv_range : (float, float), optional
-        Values the CV can take (lower, upper), in CV units; required when
-        `periodic` (then it is the period). Walls and grid are clipped to it.
+    cv_range : (float or None, float or None), optional
+        The values the CV can reach, ``(lower, upper)`` in CV units, None on a
+        side where it is unbounded (as :attr:`cvdesign.Spec.reachable_range`);
+        required, with both ends, when `periodic` (then it is one period).
+        A bounded CV (both ends given) gets a grid over the whole range, so
+        the bias is defined wherever the CV can go; otherwise the grid is
+        clipped to the given end. A wall at or beyond a reachable end is left
+        out (``None``): the CV cannot pass it.
+    observed_range : (float, float), optional
+        Smallest and largest CV value in the input data, CV units (as
+        :attr:`cvdesign.Spec.observed_range`); the grid of a CV that is not
+        bounded covers it, plus the margins.
     periodic : bool, default=False
         Whether the CV is periodic with period ``cv_range``: no walls then,
         and the grid spans one period.
@@ -845,7 +855,8 @@ def suggest_hints(
           enough to suggest a mistake (empty when none);
         * ``inputs``: ``temperature_k``, ``md_step_fs``, ``kt_kj_mol``,
           ``autocorrelation_time_ps``, ``barrier_kj_mol`` (None, float, or
-          ``{state: float}``), ``states``;
+          ``{state: float}``), ``states``, ``cv_range`` and
+          ``observed_range`` (``[lower, upper]`` or None);
         * ``kernel``: ``kind``, ``sigma`` (Gaussian width or Lucy's
           variance-matched sigma, CV units), ``cutoff`` (Lucy support, CV
           units, or None), ``area_per_height`` (CV units), ``width_fraction``,
@@ -859,9 +870,12 @@ def suggest_hints(
           (list of ``{barrier_kj_mol, bias_factor, delta_t_k,
           effective_barrier_kj_mol}``);
         * ``walls``: ``{lower, upper, k_std}`` in CV units, or None
-          (periodic);
+          (periodic); ``lower`` or ``upper`` is None where the wall would
+          stand at or beyond a reachable end of the CV (not needed there);
         * ``grid``: ``lower``, ``upper``, ``spacing`` (CV units), ``n_bins``,
-          ``n_points``, ``periodic``;
+          ``n_points``, ``periodic``, ``covers_reachable`` (True when the
+          grid spans the CV's whole reachable range: a bounded or periodic
+          CV; the reasoning says why not otherwise);
         * ``fill_time``: ``model`` (str), ``budget_ns``, ``states``:
           ``{state: [{level_kj_mol, bias_factor, volume, n_kernels,
           metadynamics_ps, metadynamics_ns, well_tempered_ps,
@@ -960,12 +974,26 @@ def suggest_hints(
             lo_range, hi_range = cv_range
         except (TypeError, ValueError):
             raise InputError(f"cv_range must be a pair (lower, upper); got {cv_range!r}") from None
-        lo_range = _number("cv_range[0]", lo_range, positive=False)
-        hi_range = _number("cv_range[1]", hi_range, positive=False)
-        if not hi_range > lo_range:
+        if lo_range is not None:
+            lo_range = _number("cv_range[0]", lo_range, positive=False)
+        if hi_range is not None:
+            hi_range = _number("cv_range[1]", hi_range, positive=False)
+        if lo_range is not None and hi_range is not None and not hi_range > lo_range:
             raise InputError(f"cv_range={tuple(cv_range)!r} must have lower < upper")
-    elif periodic:
-        raise InputError("cv_range is required when periodic=True (it gives the period)")
+    if periodic and (lo_range is None or hi_range is None):
+        raise InputError("cv_range is required when periodic=True, with both ends (it gives "
+                         "the period)")
+    lo_seen = hi_seen = None
+    if observed_range is not None:
+        try:
+            lo_seen, hi_seen = observed_range
+        except (TypeError, ValueError):
+            raise InputError(f"observed_range must be a pair (lower, upper); got "
+                             f"{observed_range!r}") from None
+        lo_seen = _number("observed_range[0]", lo_seen, positive=False)
+        hi_seen = _number("observed_range[1]", hi_seen, positive=False)
+        if not hi_seen >= lo_seen:
+            raise InputError(f"observed_range={tuple(observed_range)!r} must have lower <= upper")
 
     why = []
     tag_cp = "[common practice]"
@@ -1094,32 +1122,19 @@ def suggest_hints(
     highs = [v["mean"] + wall_k * v["std"] for v in st.values()]
     reach = 5.0 * sigma if kernel == "gaussian" else cutoff
     margin = reach + sigma
+    spacing_max = f_grid * sigma
+    covers = False
     if periodic:
         walls = None
         g_lo, g_hi = lo_range, hi_range
+        covers = True
         why.append(f"Walls: none, the CV is periodic; the grid spans one period "
-                   f"[{g_lo:.4g}, {g_hi:.4g}].")
+                   f"[{g_lo:.4g}, {g_hi:.4g}], the interval its values run over.")
     else:
-        w_lo, w_hi = min(lows), max(highs)
-        g_lo, g_hi = w_lo - margin, w_hi + margin
-        clipped = ""
-        if lo_range is not None:
-            w_lo, w_hi = max(w_lo, lo_range), min(w_hi, hi_range)
-            g_lo, g_hi = max(g_lo, lo_range), min(g_hi, hi_range)
-            clipped = f", clipped to cv_range [{lo_range:.4g}, {hi_range:.4g}]"
-        walls = {"lower": w_lo, "upper": w_hi, "k_std": wall_k}
-        why.append(
-            f"Walls at the outermost state mean -/+ {wall_k:g} std: [{w_lo:.4g}, {w_hi:.4g}] CV "
-            f"units{clipped} {tag_cp}: +/-3 std holds 99.7% of a Gaussian basin, so the bias "
-            f"explores the observed states and the region between them, not far beyond."
-        )
-        reach_text = ("5 sigma (where a Gaussian kernel is below 4e-6 of its peak)"
-                      if kernel == "gaussian" else "the Lucy cutoff h (exact support)")
-        why.append(
-            f"Grid: walls extended by {reach_text} plus 1 sigma for the walker's overshoot past "
-            f"a wall = {margin:.4g} CV units on each side {tag_cp}, so kernels deposited near "
-            f"a wall stay on the grid."
-        )
+        walls, g_lo, g_hi, covers = _walls_and_grid(
+            why, min(lows), max(highs), wall_k,
+            None if cv_range is None else (lo_range, hi_range), (lo_seen, hi_seen),
+            margin, spacing_max, n_grid_max, kernel)
     n_exact = (g_hi - g_lo) / (f_grid * sigma)
     if not n_exact - 1e-9 <= n_grid_max:
         raise InputError(
@@ -1138,7 +1153,8 @@ def suggest_hints(
         f"small; {n_bins} bins of {spacing:.4g} over [{g_lo:.4g}, {g_hi:.4g}]."
     )
     grid = {"lower": g_lo, "upper": g_hi, "spacing": spacing, "n_bins": n_bins,
-            "n_points": n_bins if periodic else n_bins + 1, "periodic": bool(periodic)}
+            "n_points": n_bins if periodic else n_bins + 1, "periodic": bool(periodic),
+            "covers_reachable": covers}
 
     # fill times -------------------------------------------------------------
     model = (
@@ -1206,6 +1222,8 @@ def suggest_hints(
             "barrier_kj_mol": (None if barriers is None else
                                (barriers if isinstance(barrier, Mapping) else float(barrier))),
             "states": st,
+            "cv_range": None if cv_range is None else [lo_range, hi_range],
+            "observed_range": None if observed_range is None else [lo_seen, hi_seen],
         },
         "kernel": {"kind": kernel, "sigma": sigma, "cutoff": cutoff, "area_per_height": area,
                    "width_fraction": f_width, "reference_state": ref_state, "reference_std": ref_std},
@@ -1222,12 +1240,101 @@ def suggest_hints(
     }
 
 
+def _walls_and_grid(why, w_lo, w_hi, wall_k, cv_range, observed, margin, spacing, max_bins,
+                    kernel):
+    """Walls, grid ends and whether the grid spans the reachable range, for a CV that is not
+    periodic; appends the reasoning to `why`.
+
+    Walls stand at the outermost state mean -/+ wall_k std, except at or beyond a reachable
+    end. A CV bounded on both sides gets a grid over its whole reachable range (unless that
+    takes more than `max_bins` bins at `spacing`); otherwise the grid covers the walls and
+    the observed range plus `margin`, clipped to a reachable end.
+    """
+    tag_cp = "[common practice]"
+    lo_r, hi_r = (None, None) if cv_range is None else cv_range
+    lo_seen, hi_seen = observed
+    wall_lo = None if lo_r is not None and w_lo <= lo_r else w_lo
+    wall_hi = None if hi_r is not None and w_hi >= hi_r else w_hi
+    walls = {"lower": wall_lo, "upper": wall_hi, "k_std": wall_k}
+    text = (f"Walls at the outermost state mean -/+ {wall_k:g} std: [{w_lo:.4g}, {w_hi:.4g}] CV "
+            f"units {tag_cp}: +/-3 std holds 99.7% of a Gaussian basin, so the bias explores "
+            f"the observed states and the region between them, not far beyond.")
+    dropped = []
+    if wall_lo is None:
+        dropped.append(f"no lower wall, since {w_lo:.4g} is at or below {lo_r:.4g}, the lowest "
+                       "value the CV can reach")
+    if wall_hi is None:
+        dropped.append(f"no upper wall, since {w_hi:.4g} is at or above {hi_r:.4g}, the "
+                       "highest value the CV can reach")
+    if dropped:
+        joined = "; ".join(dropped)
+        text += (f" {joined[0].upper()}{joined[1:]} (from its terms): the CV cannot pass "
+                 "that end, so a wall there would do nothing.")
+    why.append(text)
+
+    core_lo, core_hi = w_lo, w_hi
+    seen_text = ""
+    if lo_seen is not None:
+        core_lo, core_hi = min(core_lo, lo_seen), max(core_hi, hi_seen)
+        seen_text = f" and the observed range [{lo_seen:.4g}, {hi_seen:.4g}]"
+    reach_text = ("5 sigma (where a Gaussian kernel is below 4e-6 of its peak)"
+                  if kernel == "gaussian" else "the Lucy cutoff h (exact support)")
+    covered = (f"walls{seen_text}, extended by {reach_text} plus 1 sigma for the walker's "
+               f"overshoot past a wall = {margin:.4g} CV units on each side {tag_cp}, so "
+               "kernels deposited near a wall stay on the grid")
+    keep = ("Keep the walls: beyond its grid a tabulated bias gives no force, and the CV "
+            "could wander there unbiased.")
+    g_lo, g_hi = core_lo - margin, core_hi + margin
+    if lo_r is not None and hi_r is not None:
+        n_reach = (hi_r - lo_r) / spacing
+        if n_reach - 1e-9 <= max_bins:
+            why.append(
+                f"Grid: the CV is bounded, it can reach only [{lo_r:.4g}, {hi_r:.4g}] (from "
+                "its terms), and the grid spans all of it, so the bias is defined wherever the "
+                "CV can go (a tabulated bias outside its grid gives no force) [derived from "
+                "the terms].")
+            return walls, lo_r, hi_r, True
+        why.append(
+            f"Grid: the CV is bounded ([{lo_r:.4g}, {hi_r:.4g}] from its terms), but a grid "
+            f"over all of it would need about {n_reach:.3g} bins at this spacing, more than "
+            f"max_grid_bins={max_bins}; it covers the {covered}, clipped to the reachable "
+            f"range. {keep}")
+        return walls, max(g_lo, lo_r), min(g_hi, hi_r), False
+    if lo_r is None and hi_r is None:
+        side = ("no reachable range was given" if cv_range is None
+                else "the CV is unbounded in both directions")
+    else:
+        side = (f"the CV is unbounded {'below' if lo_r is None else 'above'} (its reachable "
+                f"range is [{'-inf' if lo_r is None else format(lo_r, '.4g')}, "
+                f"{'+inf' if hi_r is None else format(hi_r, '.4g')}], from its terms: e.g. a "
+                "distance has no largest value)")
+    clipped = []
+    if lo_r is not None and g_lo < lo_r:
+        g_lo = lo_r
+        clipped.append("lower")
+    if hi_r is not None and g_hi > hi_r:
+        g_hi = hi_r
+        clipped.append("upper")
+    clip = f", clipped to the reachable {' and '.join(clipped)} end" if clipped else ""
+    why.append(f"Grid: {side}, so no grid spans every value the CV can take; it covers the "
+               f"{covered}{clip}. {keep}")
+    return walls, g_lo, g_hi, False
+
+
 # --------------------------------------------------------------------------
 # text
 
 
 def _g(x, digits=4):
     return "-" if x is None else f"{x:.{digits}g}"
+
+
+def _wall(x):
+    return "none (at or beyond the reachable end)" if x is None else _g(x)
+
+
+def _end(x, unbounded):
+    return f"{unbounded} (unbounded)" if x is None else _g(x)
 
 
 def _time(ps):
@@ -1242,8 +1349,12 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     The states' mean and spread come from ``spec.states`` (a state without a
     resolvable spread is left out of the kernel width and the fill times,
     with a warning: ``leave_out_frozen=True``), the deposition interval from
-    ``spec.scores["integrated_time_ps"]`` when recorded, and for a periodic
-    CV the grid spans one period, centred on 0.
+    ``spec.scores["integrated_time_ps"]`` when recorded, and the grid and
+    walls from the CV's reachable range (:attr:`cvdesign.Spec.reachable_range`,
+    computed from the terms for a spec written without one) and observed
+    range (:attr:`cvdesign.Spec.observed_range`, when recorded): a bounded CV's
+    grid spans its whole reachable range, a periodic CV's grid the period its
+    values run over, and no wall stands at or beyond a reachable end.
 
     Parameters
     ----------
@@ -1287,17 +1398,33 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     >>> h = spec_hints(spec, temperature=300.0, md_step_fs=2.0, barrier=30.0)
     >>> round(h["kernel"]["sigma"], 3)  # half the smallest spread
     0.05
+    >>> h["grid"]["covers_reachable"]  # a distance has no largest value
+    False
+
+    The cos and sin of one dihedral: bounded, so the grid spans the whole range.
+
+    >>> top = md.Topology()
+    >>> res = top.add_residue("X", top.add_chain(), resSeq=1)
+    >>> _ = [top.add_atom(n, md.element.carbon, res) for n in ("A", "B", "C", "D")]
+    >>> spec = Spec(name="c", topology=top,
+    ...             descriptors=[{"id": "phi", "kind": "dihedral", "atoms": [0, 1, 2, 3]}],
+    ...             terms=[{"descriptor": "phi", "transform": t, "center": 0.0,
+    ...                     "scale": 1.0, "weight": w} for t, w in (("cos", 0.6), ("sin", 0.8))],
+    ...             states={"a": {"mean": -0.5, "std": 0.1, "n_frames": 100},
+    ...                     "b": {"mean": 0.5, "std": 0.2, "n_frames": 100}})
+    >>> h = spec_hints(spec, temperature=300.0, md_step_fs=2.0, barrier=30.0)
+    >>> round(h["grid"]["lower"], 9), round(h["grid"]["upper"], 9), h["grid"]["covers_reachable"]
+    (-1.0, 1.0, True)
     """
     if not spec.states:
         raise InputError(f"spec {spec.name!r} records no states; hints need the CV's mean "
                          "and within-state spread in each state")
-    periodic = bool(spec.periodic)
-    period = spec.period if periodic else None
     options.setdefault("leave_out_frozen", True)
+    options.setdefault("cv_range", spec.reachable_range)
+    options.setdefault("observed_range", spec.observed_range)
     return suggest_hints(spec.states, temperature=temperature, md_step_fs=md_step_fs,
                          autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
-                         barrier=barrier, kernel=kernel, periodic=periodic,
-                         cv_range=None if not periodic else (-period / 2, period / 2),
+                         barrier=barrier, kernel=kernel, periodic=bool(spec.periodic),
                          **options)
 
 
@@ -1354,11 +1481,28 @@ def format_hints(hints):
             out.append(f"  {r['barrier_kj_mol']:>16g}  {r['bias_factor']:>11.3g}  "
                        f"{r['delta_t_k']:>6.0f}  {r['effective_barrier_kj_mol']:>21.3g}")
     walls = hints["walls"]
-    out.append("walls            none (periodic CV)" if walls is None else
-               f"walls            [{_g(walls['lower'])}, {_g(walls['upper'])}] CV units")
+    if walls is None:
+        out.append("walls            none (periodic CV)")
+    elif walls["lower"] is None and walls["upper"] is None:
+        out.append("walls            none needed (both would stand at or beyond the CV's "
+                   "reachable ends)")
+    else:
+        out.append(f"walls            lower {_wall(walls['lower'])}, upper "
+                   f"{_wall(walls['upper'])} (CV units)")
     gr = hints["grid"]
+    covers = gr.get("covers_reachable")
     out.append(f"grid             [{_g(gr['lower'])}, {_g(gr['upper'])}], {gr['n_bins']} bins "
-               f"of {_g(gr['spacing'])}" + (" (periodic)" if gr["periodic"] else ""))
+               f"of {_g(gr['spacing'])}" + (" (periodic)" if gr["periodic"] else "")
+               + ("; spans every value the CV can reach" if covers else
+                  "; does NOT span every value the CV can reach (see the reasoning)"
+                  if covers is False else ""))
+    reach, seen = inp.get("cv_range"), inp.get("observed_range")
+    if reach is not None or seen is not None:
+        out.append("CV range         reachable "
+                   + ("not given" if reach is None else
+                      f"[{_end(reach[0], '-inf')}, {_end(reach[1], '+inf')}]")
+                   + ", observed " + ("not given" if seen is None else
+                                      f"[{_g(seen[0])}, {_g(seen[1])}]"))
     out += ["", "Fill time per state (harmonic-basin model; order of magnitude):",
             "  state            level (kJ/mol)  bias factor  metadynamics    well-tempered"]
     for name, rows in hints["fill_time"]["states"].items():

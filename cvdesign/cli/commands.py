@@ -12,13 +12,17 @@ Sub-commands:
 * ``report`` -- rebuild the HTML report of an output of ``suggest``, ``demo`` or ``funnel``.
 
 ``suggest``, ``demo`` and ``funnel`` write the report (``report.html`` in the output
-directory; ``NAME-report.html`` beside the funnel's ``NAME.json``) unless ``--no-report``.
+directory; ``NAME-report.html`` beside the funnel's ``NAME.json``) unless ``--no-report``,
+and, always, the data it draws (``report-data.json``; ``NAME-report-data.json``), so
+that ``report`` can rebuild it later.
 """
 
 import argparse
+import contextlib
 import csv
 import io
 import json
+import logging
 import math
 import os
 import sys
@@ -29,9 +33,12 @@ import numpy as np
 from .._version import __version__
 from ..constants import COORDINATION_EXPONENTS, COORDINATION_R0_NM
 from ..errors import CVDesignError, InputError
+from ..io.bias import is_number as _is_number
 from ..kinds import DEFAULT_KINDS, KINDS
 
 __all__ = ["main", "build_parser", "EXIT_BROKEN_PIPE"]
+
+_log = logging.getLogger(__name__)
 
 
 def _kinds(text):
@@ -149,7 +156,8 @@ def _add_suggest_options(p):
                         "with increasing stored times keep their own")
     p.add_argument("--temperature", type=_positive_float, default=300.0, metavar="K",
                    help="temperature of the biased run in K, for the bias-parameter hints "
-                        "stored in each spec (default: 300)")
+                        "stored in each spec, and of the biased runs given with --bias-energy, "
+                        "whose frames are reweighted at it (default: 300)")
     p.add_argument("--md-step-fs", type=_positive_float, default=2.0, metavar="FS",
                    help="MD step of the biased run in fs, for the hints (default: 2; 0.01 to "
                         "100 fs accepted)")
@@ -157,13 +165,23 @@ def _add_suggest_options(p):
     p.add_argument("--force", action="store_true",
                    help="replace the output directory if it holds an earlier cvdesign output")
     _add_no_report(p, "report.html in the output directory")
-    p.add_argument("--quiet", action="store_true", help="print only the final table")
 
 
 def _add_no_report(p, where):
     p.add_argument("--no-report", action="store_true",
                    help=f"do not write the HTML report ({where}: figures and tables in one "
                         "self-contained page; 'cvdesign report' builds it later)")
+
+
+def _add_verbosity(p, suffix=""):
+    """-v/--verbose and -q/--quiet, counted (before the command: dest with `suffix`)."""
+    p.add_argument("-v", "--verbose", action="count", default=0, dest="verbose" + suffix,
+                   help="say on standard error what is being done (-vv: also how every pass "
+                        "over the trajectories is split)")
+    p.add_argument("-q", "--quiet", action="count", default=0, dest="quiet" + suffix,
+                   help="print nothing on standard error but errors: no progress bars, "
+                        "notes or warnings (the output files keep the warnings); suggest and "
+                        "demo print only the final table and the caution")
 
 
 def build_parser():
@@ -173,6 +191,7 @@ def build_parser():
         description="Design collective variables (CVs) for enhanced sampling from short "
                     "unbiased trajectories of metastable states. Units: nm, rad, ps, kJ/mol.")
     parser.add_argument("--version", action="version", version=f"cvdesign {__version__}")
+    _add_verbosity(parser, "_before")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
@@ -198,6 +217,19 @@ def build_parser():
                             "(which is then required), checked to be metastable from the runs' "
                             "transitions (a warning names any that is not; none metastable is "
                             "refused), written to states.csv, and CVs are designed for them")
+    p.add_argument("--bias-energy", nargs=2, action="append", metavar=("TRAJ", "FILE"),
+                   default=None,
+                   help="a biased run: a trajectory given with --state and its bias-energy "
+                        "file (one bias energy in kJ/mol per frame of the whole trajectory, "
+                        "frame 0 first; '#' comments; one column, or columns with a header "
+                        "line, the one named 'bias' read unless --bias-column says otherwise). "
+                        "Its frames are reweighted by exp(V/kT) at --temperature, and its "
+                        "lagged pairs taken in rescaled time dt*exp(V/kT). Repeat for each "
+                        "biased run; every run of a state must be biased, or none")
+    p.add_argument("--bias-column", metavar="N|NAME", default=None,
+                   help="column of the --bias-energy files holding the bias energies: a "
+                        "number counted from 1, or a header name (default: the only column, "
+                        "or the one named 'bias')")
     p.add_argument("--n-states", type=_at_least_two, default=None, metavar="N",
                    help="with --runs: the number of states to propose (default: 2 to 6, the "
                         "fewest that are all metastable among the best mean silhouettes)")
@@ -298,14 +330,15 @@ def build_parser():
                         "300 K the ligand centre then enters a wall by about 0.035 nm at kT)")
     p.add_argument("--out", required=True, metavar="FILE.json",
                    help="output spec: the distance between the pocket and ligand centres as "
-                        "the CV, with the funnel as a restraint entry; an existing file is only "
-                        "replaced with --force")
+                        "the CV, with the funnel as a restraint entry; NAME-report-data.json "
+                        "beside it holds the ligand positions the report draws; an existing "
+                        "file is only replaced with --force")
     p.add_argument("--plot", metavar="FILE.png", default=None,
                    help="also draw the funnel outline and the bound ligand positions (the "
                         "format follows the extension: .png, .svg, .pdf, ...)")
     p.add_argument("--force", action="store_true",
-                   help="replace --out (and --plot, and the report) if they exist; input "
-                        "files are never replaced")
+                   help="replace --out (and --plot, the report and its data) if they exist; "
+                        "input files are never replaced")
     _add_no_report(p, "NAME-report.html beside --out NAME.json")
     _add_executor_options(p)
 
@@ -368,14 +401,60 @@ def build_parser():
                    help="write the report here instead; an existing file is kept unless "
                         "--force, and a file of the output is never replaced")
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
+    for command in sub.choices.values():
+        _add_verbosity(command)
     parser.commands = dict(sub.choices)  # for usage errors that name the command
     return parser
 
 
-def _progress(quiet):
-    if quiet:
-        return None
-    return lambda msg: print(f"cvdesign: {msg}", file=sys.stderr)
+class _StderrHandler(logging.Handler):
+    """Log records on standard error as ``cvdesign COMMAND: [level: ]message``, written
+    between the progress bars (``tqdm.write``) so that neither garbles the other."""
+
+    def __init__(self, command, level):
+        super().__init__(level)
+        self.command = command
+
+    def emit(self, record):
+        try:
+            from tqdm import tqdm
+
+            kind = "" if record.levelno == logging.INFO else f"{record.levelname.lower()}: "
+            tqdm.write(f"cvdesign {self.command}: {kind}{record.getMessage()}", file=sys.stderr)
+        except Exception:  # noqa: BLE001 - logging must never stop the command
+            self.handleError(record)
+
+
+def _log_level(verbose, quiet):
+    """WARNING by default; each -v one level more (INFO, DEBUG), -q only errors.
+
+    Examples
+    --------
+    >>> [logging.getLevelName(_log_level(v, q)) for v, q in [(0, 0), (1, 0), (2, 0), (0, 1)]]
+    ['WARNING', 'INFO', 'DEBUG', 'ERROR']
+    """
+    return min(logging.ERROR, max(logging.DEBUG, logging.WARNING + 10 * (quiet - verbose)))
+
+
+@contextlib.contextmanager
+def _reporting(args):
+    """For the length of a command: the ``cvdesign`` logger on standard error at the level of
+    -v/-q, and progress bars there when it is a terminal and -q is not given."""
+    from ..progress import show_progress
+
+    args.verbose = getattr(args, "verbose", 0) + getattr(args, "verbose_before", 0)
+    args.quiet = getattr(args, "quiet", 0) + getattr(args, "quiet_before", 0)
+    level = _log_level(args.verbose, args.quiet)
+    logger = logging.getLogger("cvdesign")
+    handler, before = _StderrHandler(args.command, level), logger.level
+    logger.addHandler(handler)
+    logger.setLevel(level)
+    try:
+        with show_progress(sys.stderr, enabled=None if not args.quiet else False):
+            yield
+    finally:
+        logger.removeHandler(handler)
+        logger.setLevel(before)
 
 
 def _executor(args):
@@ -394,11 +473,19 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
 
     # refuse an impossible temperature or MD step before reading anything; warn once
     for warning in check_run_conditions(args.temperature, args.md_step_fs):
-        print(f"cvdesign: warning: {warning}", file=sys.stderr)
-    given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or [])
+        _log.warning("%s", warning)
+    biases = getattr(args, "bias_energy", None) or []
+    bias_column = getattr(args, "bias_column", None)
+    given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or []) \
+        + [b for _, b in biases]
     prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json",
                        owned=is_output_file)
-    progress = _progress(args.quiet)
+    if biases and runs:
+        raise InputError("--bias-energy goes with --state: proposing states from unlabelled "
+                         "biased runs (--runs) is not supported yet")
+    if bias_column is not None and not biases:
+        raise InputError("--bias-column goes with --bias-energy TRAJ FILE: it says which "
+                         "column of the bias-energy files holds the bias energies")
     if runs:
         if args.lag is None:
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
@@ -415,14 +502,17 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         if dup:
             raise InputError(f"state {dup[0]!r} is given twice; give each state once with all "
                              "of its files")
-        source = Source(topology, timestep=args.frame_step_ps)
+        source = Source(topology, timestep=args.frame_step_ps,
+                        temperature=args.temperature if biases else None)
+        bias_of = _bias_files(biases, [f for entry in states for f in entry[1:]])
         for entry in states:
             name, files = entry[0], entry[1:]
             if not files:
                 raise InputError(f"--state {name} has no trajectory files; use --state NAME "
                                  "FILE [FILE ...]")
             for f in files:
-                source.add(f, state=name)
+                source.add(f, state=name, bias=bias_of.get(f),
+                           bias_column=bias_column if f in bias_of else None)
     exploration = None
     with _executor(args) as executor:
         if runs:
@@ -431,10 +521,9 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
             exploration = propose_states(
                 source, lag=args.lag, n_states=args.n_states, selection=args.select,
                 kinds=args.kinds, cutoff=args.cutoff, prefilter_stride=args.prefilter_stride,
-                coordination_r0=args.coordination_r0, seed=args.seed, executor=executor,
-                progress=progress)
-            for warning in exploration.warnings:  # also in summary.md; even with --quiet
-                print(f"cvdesign: warning: {warning}", file=sys.stderr)
+                coordination_r0=args.coordination_r0, seed=args.seed, executor=executor)
+            for warning in exploration.warnings:  # also in summary.md
+                _log.warning("%s", warning)
             source = exploration.labelled_source(topology, timestep=args.frame_step_ps)
         result = suggest(source, objective=args.objective, lag=args.lag, method=args.method,
                          selection=args.select, kinds=args.kinds, cutoff=args.cutoff,
@@ -443,11 +532,15 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                          n_suggestions=args.suggestions, n_folds=args.folds,
                          n_bootstrap=args.bootstrap, seed=args.seed,
                          temperature=args.temperature, md_step_fs=args.md_step_fs,
-                         executor=executor, progress=progress)
+                         executor=executor)
     result.exploration = exploration
+    if source.biased:  # small effective sample sizes (also in summary.md)
+        for warning in source.reweighting().describe()[1]:
+            _log.warning("%s", warning)
     result.write(out, force=args.force)
     report_ok = args.no_report or _report_after(out, "suggest")
     if not args.quiet:
+        print(result.selection, file=stream)  # the atoms, with mdtraj's 0-based indices
         if exploration is not None:
             print("proposed states: " + ", ".join(
                 f"{s} ({exploration.populations[s]:.1%}; e.g. "
@@ -457,14 +550,34 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         for note in result.notes:
             print(f"  - {note}", file=stream)
     print(result.top_table(5), file=stream)
-    for r in result.ranking:  # shown even with --quiet
+    for r in result.ranking:  # also in summary.md
         for w in r.get("warnings", []):
-            print(f"cvdesign: warning: rank {r['rank']} ({r['spec']}): {w}", file=sys.stderr)
+            _log.warning("rank %d (%s): %s", r["rank"], r["spec"], w)
     print(f"\nwrote {len(result.specs)} spec files and the ranking to {out}/"
           + ("" if args.no_report or not report_ok else
              f"; open {Path(out) / 'report.html'} in a browser for the figures"), file=stream)
     print(f"caution: {CAUTION}", file=stream)
     return result, report_ok
+
+
+def _bias_files(biases, files):
+    """``{trajectory as given with --state: bias-energy file}`` from the --bias-energy pairs."""
+    out = {}
+    for traj, bias in biases:
+        if not Path(traj).is_file():
+            raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} does not exist; "
+                             "give a trajectory of --state and its bias-energy file")
+        match = [f for f in files if Path(f).is_file() and os.path.samefile(f, traj)]
+        if not match:
+            raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} is not given "
+                             "with --state; pair each biased run of the states with its "
+                             "bias-energy file")
+        for f in match:
+            if f in out:
+                raise InputError(f"--bias-energy names trajectory {traj!r} twice; give one "
+                                 "bias-energy file per trajectory")
+            out[f] = bias
+    return out
 
 
 def _report_after(out, command, write=None):
@@ -506,9 +619,8 @@ def _cmd_apply(args):
     untimed = [i for i in range(len(source.segments))
                if stores_time(source.segments[i].path) and not source.stored_times_increase(i)]
     for i in untimed:
-        print(f"cvdesign apply: note: {source.segments[i].path.name} stores times that do not "
-              "increase (as some writers do); its time_ps column is left empty",
-              file=sys.stderr)
+        _log.warning("%s stores times that do not increase (as some writers do); its time_ps "
+                     "column is left empty", source.segments[i].path.name)
 
     def rows(fh):
         w = csv.writer(fh, lineterminator="\n")
@@ -528,20 +640,13 @@ def _cmd_apply(args):
     else:
         with atomic_open(args.out, "w", encoding="utf-8", newline="\n") as fh:
             rows(fh)
-        print(f"wrote {args.out}", file=sys.stderr)
+        if not args.quiet:
+            print(f"wrote {args.out}", file=sys.stderr)
     return 0
 
 
 #: Header names of a first column that numbers frames or times rather than holding the CV.
 _INDEX_COLUMNS = ("frame", "index", "idx", "step", "time")
-
-
-def _is_number(text):
-    try:
-        float(text)
-    except ValueError:
-        return False
-    return True
 
 
 def _looks_like_index(name, cells):
@@ -715,7 +820,7 @@ def _cmd_hints(args):
     except InputError as exc:
         raise InputError(f"{args.spec}: no hints: {exc}") from None
     for warning in hints["warnings"]:
-        print(f"cvdesign hints: warning: {warning}", file=sys.stderr)
+        _log.warning("%s", warning)
     if args.json:
         sys.stdout.write(json.dumps(hints, indent=2, sort_keys=True) + "\n")
     else:
@@ -742,8 +847,9 @@ def _check_plot_format(path):
 def _cmd_funnel(args):
     from ..io.atomic import atomic_paths, check_output_file
     from ..bias.funnel import plot_funnel, size_funnel_from_source
-    from ..io.source import Source, select_atoms
+    from ..io.source import Source, describe_selection, select_atoms
     from ..report import report_path
+    from ..report.inputs import report_data_name
 
     if args.exit_point is not None and not all(math.isfinite(v) for v in args.exit_point):
         raise InputError(f"--exit-point {' '.join(str(v) for v in args.exit_point)}: give three "
@@ -758,6 +864,13 @@ def _cmd_funnel(args):
             raise InputError(f"--plot {args.plot!r} is the same file as --out; give two names")
         check_output_file(args.plot, force=args.force, inputs=inputs, option="--plot")
         _check_plot_format(args.plot)
+    # the report's data is written even with --no-report: 'cvdesign report' draws from it
+    data_path = Path(args.out).with_name(report_data_name("funnel", Path(args.out).name))
+    if args.plot is not None and Path(args.plot).resolve() == data_path.resolve():
+        raise InputError(f"--plot {args.plot!r} is the report data written beside --out; give "
+                         "another name")
+    check_output_file(data_path, force=args.force, inputs=inputs,
+                      option=f"the report data ({data_path.name}, beside --out)")
     report = None if args.no_report else report_path(args.out)
     if report is not None:  # (matplotlib writes no .html, so --plot cannot be the report)
         check_output_file(report, force=args.force, inputs=inputs,
@@ -776,24 +889,31 @@ def _cmd_funnel(args):
                                          executor=executor)
     spec = _funnel_spec(source, args, lig, pocket, result)
     text = spec.to_json()
+    from ..pipeline.output import dumps
+    from ..pipeline.report_data import funnel_report_document
+
+    name = Path(args.out).name
+    data_text = dumps(funnel_report_document(result["positions"], name), compact=True)
     page, report_error = None, None
     if report is not None:  # rendered first, so that the outputs are written together
         from ..report import build_report
         from ..report.inputs import Output
 
-        name = Path(args.out).name
         try:
-            page = build_report(Output("funnel", name, {name: text}, spec_name=name)).html
+            page = build_report(Output("funnel", name, {name: text, data_path.name: data_text},
+                                       spec_name=name)).html
         except Exception as exc:  # noqa: BLE001 - the spec is still written; say so
             report_error = str(exc) if isinstance(exc, CVDesignError) else (
                 f"{type(exc).__name__}: {exc} (a bug in cvdesign; please report it)")
-    paths = [args.out] + ([args.plot] if args.plot else []) + ([report] if page else [])
+    paths = [args.out, data_path] + ([args.plot] if args.plot else []) \
+        + ([report] if page else [])
     try:
         with atomic_paths(paths) as tmps:
-            with open(tmps[0], "w", encoding="utf-8", newline="\n") as fh:
-                fh.write(text)
+            for tmp, content in ((tmps[0], text), (tmps[1], data_text)):
+                with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+                    fh.write(content)
             if args.plot:
-                plot_funnel(result, tmps[1])
+                plot_funnel(result, tmps[2])
             if page:
                 with open(tmps[-1], "w", encoding="utf-8", newline="\n") as fh:
                     fh.write(page)
@@ -801,6 +921,8 @@ def _cmd_funnel(args):
         raise InputError(f"cannot write the output ({exc.strerror or exc}); nothing was "
                          "written") from None
     prm = result["params"]
+    print(f"ligand: {describe_selection(top, lig, args.ligand)}")
+    print(f"pocket: {describe_selection(top, pocket, args.pocket)}")
     print(f"funnel: axis {np.round(prm['axis'], 3).tolist()} (reference pocket frame); cone "
           f"half-angle {prm['cone_half_angle_rad']:.3f} rad, cylinder radius "
           f"{prm['cylinder_radius_nm']:.3f} nm from z = {prm['cone_end_z_nm']:.3f} nm, walls "
@@ -814,6 +936,7 @@ def _cmd_funnel(args):
     if args.plot:
         print(f"wrote {args.plot}")
     print(f"wrote {args.out}")
+    print(f"wrote {data_path} (the ligand positions the report draws)")
     if page:
         print(f"wrote {report} (open it in a browser)")
     print(f"caution: {result['caution']}")
@@ -945,7 +1068,7 @@ def _cmd_demo(args):
     ns = argparse.Namespace(select=None, kinds=DEFAULT_KINDS, cutoff=1.0,
                             prefilter_stride=10, coordination_r0=COORDINATION_R0_NM, max_terms=5,
                             suggestions=10, folds=4,
-                            force=args.force, quiet=False, objective="separate", lag=None,
+                            force=args.force, quiet=args.quiet, objective="separate", lag=None,
                             method="hlda", bootstrap=args.bootstrap, seed=0,
                             frame_step_ps=None, n_states=None, temperature=300.0,
                             md_step_fs=2.0, workers=1, scheduler=None,
@@ -1037,7 +1160,8 @@ def _main(argv):
                "demo": _cmd_demo,
                "report": _cmd_report}[args.command]
     try:
-        return handler(args)
+        with _reporting(args):
+            return handler(args)
     except CVDesignError as exc:
         print(f"cvdesign {args.command}: error: {exc}", file=sys.stderr)
         return 2

@@ -23,9 +23,9 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "file_sha256",
-           "stores_time", "quiet_stdout", "check_box", "check_finite", "check_label_count",
-           "every_atom"]
+__all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "describe_selection",
+           "file_frames", "file_sha256", "stores_time", "quiet_stdout", "check_box",
+           "check_finite", "check_label_count", "every_atom"]
 
 #: Residue names treated as monatomic ions when choosing the default solute.
 _ION_NAMES = {
@@ -394,6 +394,118 @@ def select_atoms(topology, selection=None):
     return np.unique(idx)
 
 
+def _runs(values):
+    """Runs of consecutive integers in a sorted array, as (first, last) pairs."""
+    values = np.asarray(values, dtype=np.int64)
+    if values.size == 0:
+        return []
+    cuts = np.flatnonzero(np.diff(values) != 1) + 1
+    return [(int(r[0]), int(r[-1])) for r in np.split(values, cuts)]
+
+
+def _listed(items, limit, total_runs):
+    """At most `limit` items joined, the rest elided with the number of runs."""
+    if total_runs <= limit:
+        return ", ".join(items)
+    return ", ".join(items[:limit - 1]) + f", ..., {items[-1]} ({total_runs} ranges)"
+
+
+def describe_selection(topology, atoms, selection=None, *, limit=4):
+    """One line saying which atoms a selection holds: how many, in which residues.
+
+    mdtraj selections count atoms and residues from 0 (``index``, ``resid``),
+    while residue names carry the file's own numbers (``resSeq``, often from
+    1): the line gives both, so a selection that is off by one shows.
+
+    Parameters
+    ----------
+    topology : mdtraj.Topology
+    atoms : array-like of int
+        0-based atom indices (as :func:`select_atoms` returns).
+    selection : str, default=None
+        The selection text, quoted at the start of the line; None: the default
+        selection (heavy atoms of the solute).
+    limit : int, default=4
+        Most ranges of residues or indices listed; more are elided.
+
+    Returns
+    -------
+    str
+        E.g. ``"selection 'name CA': 42 atoms in 42 residues: LYS3-GLU44 (0-based
+        mdtraj indices: atoms 10..650 in 42 ranges, resid 2..43)"``: residues
+        by name and file number, consecutive residues of one chain as a range.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); ch = top.add_chain()
+    >>> for n, name in enumerate(["ALA", "GLY", "SER", "HOH"], start=1):
+    ...     r = top.add_residue(name, ch, resSeq=n)
+    ...     for a in ["N", "CA", "C"]:
+    ...         _ = top.add_atom(a, md.element.carbon, r)
+    >>> describe_selection(top, top.select("name CA and resid 0 to 2"), "name CA and resid 0 to 2")
+    "selection 'name CA and resid 0 to 2': 3 atoms in 3 residues: ALA1-SER3 (0-based mdtraj indices: atoms 1, 4, 7, resid 0..2)"
+    >>> describe_selection(top, [3, 4, 5])
+    'default selection (heavy atoms of the solute): 3 atoms in 1 residue: GLY2 (0-based mdtraj indices: atoms 3..5, resid 1)'
+    """
+    atoms = np.unique(np.asarray(atoms, dtype=np.int64))
+    residues = sorted({topology.atom(int(i)).residue.index for i in atoms})
+    res_runs = []  # consecutive residues of one chain
+    for first, last in _runs(residues):
+        start = first
+        for k in range(first + 1, last + 1):
+            if topology.residue(k).chain.index != topology.residue(k - 1).chain.index:
+                res_runs.append((start, k - 1))
+                start = k
+        res_runs.append((start, last))
+
+    def name(i):
+        return str(topology.residue(i))
+
+    def span(a, b, join):
+        return str(a) if a == b else f"{a}{join}{b}"
+
+    names = _listed([name(a) if a == b else f"{name(a)}-{name(b)}" for a, b in res_runs],
+                    limit, len(res_runs))
+    atom_runs = _runs(atoms)
+    if len(atom_runs) <= limit:
+        atom_text = ", ".join(span(a, b, "..") for a, b in atom_runs)
+    else:
+        atom_text = f"{int(atoms[0])}..{int(atoms[-1])} in {len(atom_runs)} ranges"
+    resid_runs = _runs(residues)
+    resid_text = _listed([span(a, b, "..") for a, b in resid_runs], limit, len(resid_runs))
+    chains = {topology.residue(i).chain.index for i in residues}
+    what = ("default selection (heavy atoms of the solute)" if selection is None
+            else f"selection {selection!r}")
+    n_res = len(residues)
+    in_chains = f" of {len(chains)} chains" if len(chains) > 1 else ""
+    return (f"{what}: {atoms.size} atom{'s' if atoms.size != 1 else ''} in {n_res} "
+            f"residue{'s' if n_res != 1 else ''}{in_chains}: {names} (0-based mdtraj indices: "
+            f"atoms {atom_text}, resid {resid_text})")
+
+
+def file_frames(path):
+    """Number of frames in a trajectory file (through mdtraj's file object).
+
+    Raises
+    ------
+    InputError
+        When mdtraj cannot open the file or count its frames.
+
+    Examples
+    --------
+    >>> from cvdesign.io.demo import demo_data_dir
+    >>> file_frames(demo_data_dir() / "closed-1.xtc")
+    2000
+    """
+    try:
+        with quiet_stdout(), md.open(str(path)) as fh:
+            return int(len(fh))
+    except Exception as exc:
+        raise InputError(f"cannot count the frames of trajectory {str(path)!r}: "
+                         f"{str(exc).strip() or type(exc).__name__}; check the file") from exc
+
+
 def file_sha256(path, block=1 << 20):
     """SHA-256 hex digest of a file, read in blocks."""
     h = hashlib.sha256()
@@ -418,6 +530,13 @@ class Segment:
     labels : ndarray of shape (n_frames,) or None
         Per-frame state names for the whole file; frames labelled None or
         ``""`` are skipped.
+    bias : ndarray of shape (n_frames,) or None
+        Bias energy of every frame of the file, kJ/mol (a biased run; see
+        :mod:`cvdesign.io.bias`); None for an unbiased run.
+    bias_path : pathlib.Path or None
+        The bias-energy file it was read from.
+    bias_column : str or None
+        The column of that file, as given (None: the default column).
     """
 
     path: Path
@@ -425,6 +544,9 @@ class Segment:
     start: int | None = None
     stop: int | None = None
     labels: np.ndarray | None = field(default=None, compare=False)
+    bias: np.ndarray | None = field(default=None, compare=False, repr=False)
+    bias_path: Path | None = None
+    bias_column: str | None = None
 
 
 @dataclass
@@ -465,6 +587,10 @@ class Source:
         those times are then ignored, and :attr:`notes` says so. Files whose
         stored times increase keep their own. Without it, a file whose stored
         times do not increase is refused by :meth:`timestep`.
+    temperature : float, default=None
+        Temperature of the biased runs in K, needed when a trajectory comes
+        with its bias energies (``bias=`` of :meth:`add`): its frames are
+        reweighted by ``exp(V / kT)`` (see :mod:`cvdesign.io.bias`).
 
     Attributes
     ----------
@@ -483,12 +609,25 @@ class Source:
     One trajectory with a per-frame label array::
 
         src = Source.from_labels("mol.pdb", "run.xtc", labels)
+
+    A biased run that crossed between the states, with a per-frame label array
+    and its bias energy per frame (kJ/mol), run at 300 K::
+
+        src = Source("mol.pdb", temperature=300.0)
+        src.add_labelled("biased.xtc", labels, bias="biased-energy.txt")
     """
 
-    def __init__(self, topology, *, chunk_size=500, timestep=None):
+    def __init__(self, topology, *, chunk_size=500, timestep=None, temperature=None):
         if timestep is not None and not (isinstance(timestep, (int, float)) and timestep > 0
                                          and math.isfinite(timestep)):
             raise InputError(f"timestep={timestep!r} must be a positive time in ps")
+        if temperature is not None and not (
+                isinstance(temperature, numbers.Real) and not isinstance(temperature, bool)
+                and math.isfinite(temperature) and temperature > 0):
+            raise InputError(f"temperature={temperature!r} must be a positive temperature in K "
+                             "(of the biased runs)")
+        self.temperature = None if temperature is None else float(temperature)
+        self._reweighting = None
         self.default_timestep = None if timestep is None else float(timestep)
         self.topology_path = None if isinstance(topology, md.Topology) else str(topology)
         self.topology = load_topology(topology)
@@ -503,7 +642,7 @@ class Source:
 
     # ------------------------------------------------------------------ building
     @classmethod
-    def from_states(cls, topology, states, **kwargs):
+    def from_states(cls, topology, states, *, bias=None, bias_column=None, **kwargs):
         """Build a source from ``{state name: [trajectory files]}``.
 
         Parameters
@@ -511,21 +650,29 @@ class Source:
         topology : str or path-like or mdtraj.Topology
         states : mapping of str to sequence of path-like
             Files of each state, in the order the states should be reported.
+        bias : mapping of path-like to path-like, default=None
+            ``{trajectory: bias-energy file}`` for the biased runs among the
+            files (see :meth:`add`; needs ``temperature=``).
+        bias_column : int or str, default=None
+            Column of every bias-energy file (see :meth:`add`).
         **kwargs
             Passed to the constructor.
         """
         src = cls(topology, **kwargs)
+        bias = _bias_by_file(bias, [f for files in states.values() for f in
+                                    ([files] if isinstance(files, (str, os.PathLike)) else files)])
         for name, files in states.items():
             if isinstance(files, (str, os.PathLike)):
                 files = [files]
             if len(files) == 0:
                 raise InputError(f"state {name!r} has no trajectory files; give at least one")
             for f in files:
-                src.add(f, state=name)
+                src.add(f, state=name, bias=bias.get(str(f)), bias_column=bias_column)
         return src
 
     @classmethod
-    def from_labels(cls, topology, trajectory, labels, **kwargs):
+    def from_labels(cls, topology, trajectory, labels, *, bias=None, bias_column=None,
+                    **kwargs):
         """Build a source from one trajectory and a per-frame array of state names.
 
         Parameters
@@ -536,9 +683,12 @@ class Source:
         labels : array-like of shape (n_frames,)
             State name (or integer code) of every frame of `trajectory`; frames
             labelled None or ``""`` are skipped.
+        bias, bias_column : optional
+            Bias-energy file of a biased run, and its column (see :meth:`add`;
+            needs ``temperature=``).
         """
         src = cls(topology, **kwargs)
-        src.add_labelled(trajectory, labels)
+        src.add_labelled(trajectory, labels, bias=bias, bias_column=bias_column)
         return src
 
     def _add_state(self, name):
@@ -548,7 +698,7 @@ class Source:
         if name not in self.states:
             self.states.append(name)
 
-    def add(self, path, state, *, frames=None):
+    def add(self, path, state, *, frames=None, bias=None, bias_column=None):
         """Add a trajectory file (or a frame range of it) belonging to one state.
 
         Parameters
@@ -559,8 +709,26 @@ class Source:
             State name.
         frames : tuple of (int or None, int or None), default=None
             Frame range ``(start, stop)`` in 0-based frames, stop excluded.
+        bias : path-like, default=None
+            Bias-energy file of a biased run: one bias energy (kJ/mol) per
+            frame of the whole file (format: :mod:`cvdesign.io.bias`). Its
+            frames are then reweighted by ``exp(V / kT)`` at the source's
+            `temperature`, and its lagged pairs taken in rescaled time. Every
+            run of a state must be biased, or none.
+        bias_column : int or str, default=None
+            Column of the bias-energy file (number from 1, or header name);
+            None: its only column, or the one named ``bias``.
+
+        Raises
+        ------
+        InputError
+            For a bad frame range, a file given twice, and a bias-energy file
+            that cannot be read, has another number of values than the
+            trajectory has frames, or comes without a temperature (naming the
+            file and line).
         """
         path = self._check_trajectory(path)
+        energies = self._read_bias(path, bias, bias_column)
         start = stop = None
         if frames is not None:
             if not isinstance(frames, (tuple, list)) or len(frames) != 2:
@@ -579,8 +747,58 @@ class Source:
             stop = None if stop is None else int(stop)
         self._check_overlap(path, start, stop, str(state))
         self._add_state(state)
-        self.segments.append(Segment(path, str(state), start, stop))
+        self.segments.append(Segment(path, str(state), start, stop, None, *energies))
+        self._reweighting = None
         return self
+
+    def _read_bias(self, path, bias, column):
+        """(energies, bias path, column) of a trajectory's bias-energy file, checked, or
+        (None, None, None) without one."""
+        if bias is None:
+            if column is not None:
+                raise InputError(f"bias_column={column!r} for {str(path)!r} goes with a "
+                                 "bias-energy file (bias=...)")
+            return None, None, None
+        from .bias import read_bias_file
+
+        if self.temperature is None:
+            raise InputError(f"a bias-energy file ({str(bias)!r}) needs the temperature of the "
+                             "biased run: give temperature=K to Source (--temperature K on the "
+                             "command line)")
+        energies = read_bias_file(bias, column)
+        n_file = file_frames(path)
+        if energies.size != n_file:
+            raise InputError(f"bias-energy file {str(bias)!r} holds {energies.size} bias "
+                             f"energies, but trajectory {str(path)!r} has {n_file} frames; give "
+                             "one bias energy per frame of the whole trajectory, frame 0 first")
+        return energies, Path(bias), None if column is None else str(column)
+
+    @property
+    def biased(self):
+        """bool : whether some trajectory comes with bias energies (a biased run)."""
+        return any(seg.bias is not None for seg in self.segments)
+
+    def reweighting(self):
+        """Frame weights, effective sample sizes and rescaled clocks of the biased runs.
+
+        Returns
+        -------
+        cvdesign.io.bias.Reweighting or None
+            None when no trajectory is biased. Computed once (until the next
+            :meth:`add`).
+
+        Raises
+        ------
+        InputError
+            When a state mixes biased and unbiased runs.
+        """
+        if not self.biased:
+            return None
+        if self._reweighting is None:
+            from .bias import reweight
+
+            self._reweighting = reweight(self.segments, self.states, self.temperature)
+        return self._reweighting
 
     def _check_overlap(self, path, start, stop, state):
         """Refuse frames of a file that were already given (under any spelling of its path)."""
@@ -598,7 +816,7 @@ class Source:
                     f"states {seg.state!r} and {state!r}); give each file once, or disjoint "
                     "frame ranges with frames=(start, stop)")
 
-    def add_labelled(self, path, labels):
+    def add_labelled(self, path, labels, *, bias=None, bias_column=None):
         """Add a trajectory file with a per-frame array of state names.
 
         Parameters
@@ -609,6 +827,8 @@ class Source:
             State name of every frame of the file; None, ``""`` or NaN marks a
             frame that belongs to no state. States are ordered by first
             appearance.
+        bias, bias_column : optional
+            Bias-energy file of a biased run, and its column (see :meth:`add`).
 
         Returns
         -------
@@ -616,6 +836,7 @@ class Source:
             self, so calls can be chained.
         """
         path = self._check_trajectory(path)
+        energies = self._read_bias(path, bias, bias_column)
         self._check_overlap(path, None, None, None)
         labels = [None if _unlabelled(x) else str(x)
                   for x in np.asarray(labels, dtype=object).reshape(-1)]
@@ -624,7 +845,9 @@ class Source:
             raise InputError(f"labels for {str(path)!r} name no state; every frame is unlabelled")
         for n in names:
             self._add_state(n)
-        self.segments.append(Segment(path, None, None, None, np.array(labels, dtype=object)))
+        self.segments.append(Segment(path, None, None, None, np.array(labels, dtype=object),
+                                     *energies))
+        self._reweighting = None
         return self
 
     def _check_trajectory(self, path):
@@ -830,6 +1053,23 @@ def every_atom(atom_indices, topology):
     """
     a = np.asarray(atom_indices).reshape(-1)
     return a.size == topology.n_atoms and np.array_equal(a, np.arange(a.size))
+
+
+def _bias_by_file(bias, files):
+    """``{str(trajectory as given): bias file}`` from a mapping keyed by any spelling of the
+    trajectories' paths; refuses a key that names none of them."""
+    if not bias:
+        return {}
+    out = {}
+    for traj, bias_file in bias.items():
+        match = [f for f in files if Path(f).exists() and Path(traj).exists()
+                 and os.path.samefile(f, traj)]
+        if not match:
+            raise InputError(f"bias-energy file {str(bias_file)!r} is given for trajectory "
+                             f"{str(traj)!r}, which is not among the trajectories of the states")
+        for f in match:
+            out[str(f)] = bias_file
+    return out
 
 
 def _unlabelled(x):

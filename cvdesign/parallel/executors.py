@@ -48,6 +48,9 @@ class Executor:
 
     #: Workers that run tasks at once (used to size the default task split).
     n_workers = 1
+    #: Whether ``fn`` runs in this process and thread (so it may call back into the caller,
+    #: e.g. to report progress leaf by leaf); otherwise only completed tasks are seen.
+    in_process = False
 
     def run(self, fn, context, items):
         raise NotImplementedError
@@ -70,6 +73,8 @@ class SerialExecutor(Executor):
     >>> list(SerialExecutor().run(lambda ctx, x: ctx * x, 10, [1, 2]))
     [(0, 10), (1, 20)]
     """
+
+    in_process = True
 
     def run(self, fn, context, items):
         for i, item in enumerate(items):

@@ -15,6 +15,9 @@ not depend on the number of threads either.
 """
 
 import contextlib
+import dataclasses
+import functools
+import logging
 import math
 import threading
 from dataclasses import dataclass
@@ -22,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from .. import progress
 from ..errors import InputError
 from ..io.source import Source, check_label_count
 from .keys import SegmentLayout
@@ -31,6 +35,8 @@ from .tree import TreeReducer, merge_optional
 __all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
            "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
            "leaf_frames_for", "run_pass", "run_task", "first_frame", "reference_features"]
+
+_log = logging.getLogger(__name__)
 
 #: Frames per leaf (the unit of arithmetic) when the features are few enough.
 LEAF_FRAMES = 256
@@ -170,16 +176,25 @@ class Pass:
 
     An *exact* pass (``exact = True``: integer counts, histograms) has a merge
     that is exact and so associative; it skips the tree, and
-    :meth:`accumulate` may add a leaf into its running partial in place.
+    :meth:`accumulate` may add a leaf into its running partial in place. With
+    weighted frames (biased runs) its counts are sums of weights, which are not
+    exact: it then goes through the tree like every other pass.
+
+    The lags of a pass (:meth:`halo`, :meth:`Leaf.pairs`) are in frame
+    spacings; in a biased run they are taken in rescaled time
+    (:meth:`Leaf.pairs`), unless :attr:`rescaled_time` is False.
 
     Attributes
     ----------
     featurizer : Featurizer
     exact : bool
+    rescaled_time : bool
+        Whether the lags of this pass are in rescaled time in biased runs.
     """
 
     featurizer = None
     exact = False
+    rescaled_time = True
 
     def halo(self, segment_index):
         """Frames needed after a leaf's last frame (its longest lag), for a segment."""
@@ -268,17 +283,27 @@ class Leaf:
     def box(self):
         return None if self.window_box is None else self.window_box[:self.n]
 
-    def pairs(self, lag):
-        """Lagged pairs ``(t, t + lag)`` whose first frame is in this leaf.
+    @property
+    def weights(self):
+        """ndarray of float64 or None : weights of the leaf's rows (None: unbiased run)."""
+        return self.layout.weights_of(self.frames)
 
-        A pair is valid when every frame from ``t`` to ``t + lag`` belongs to
-        the segment, is selected and carries the same state (no pair spans a
-        file, a gap or a state change).
+    def pairs(self, lag, rescaled=True):
+        """Lagged pairs ``(t, u)`` whose first frame is in this leaf.
+
+        In an unbiased run (and with ``rescaled=False``) ``u = t + lag``; in a
+        biased run ``u`` is the frame closest in rescaled time to ``clock[t] +
+        lag`` (:meth:`SegmentLayout.partners`). A pair is valid
+        when every frame from ``t`` to ``u`` belongs to the segment, is
+        selected and carries the same state (no pair spans a file, a gap or a
+        state change).
 
         Parameters
         ----------
         lag : int
-            Lag in frames (at most the pass's halo).
+            Lag in frame spacings (at most the pass's halo).
+        rescaled : bool, default=True
+            In a biased run, take the lag in rescaled time; False: in frames.
 
         Returns
         -------
@@ -288,11 +313,17 @@ class Leaf:
         """
         lag = int(lag)
         t = self.frames
-        ok = self.layout.run_end_of(t) > t + lag
+        if rescaled and self.layout.clock is not None:
+            u = self.layout.partners(t, lag)
+            ok = (u >= 0) & (self.layout.run_end_of(t) > u)
+        else:
+            u = t + lag
+            ok = self.layout.run_end_of(t) > u
         i = np.flatnonzero(ok)
-        j = np.searchsorted(self.window_frames, t[i] + lag)
+        u = u[i]
+        j = np.searchsorted(self.window_frames, u)
         if j.size and (j[-1] >= self.window_frames.size
-                       or not np.array_equal(self.window_frames[j], t[i] + lag)):
+                       or not np.array_equal(self.window_frames[j], u)):
             raise RuntimeError(f"lag {lag} is longer than the halo read after leaf {self.index}")
         return i, j.astype(np.intp)
 
@@ -431,6 +462,7 @@ def _split(plan, n_tasks, frames_per_task):
 def _layouts(source):
     index = {s: i for i, s in enumerate(source.states)}
     out, lengths = [], {}
+    reweighting = source.reweighting()  # None without biased runs
     for si, seg in enumerate(source.segments):
         key = str(seg.path)
         if key not in lengths:  # a file given as several frame ranges is counted once
@@ -440,11 +472,19 @@ def _layouts(source):
             check_label_count(seg, n_file)
             codes = np.array([-1 if x is None else index[x] for x in seg.labels],
                              dtype=np.int64)
-            out.append(SegmentLayout.from_codes(si, str(seg.path), codes, len(index)))
+            lay = SegmentLayout.from_codes(si, str(seg.path), codes, len(index))
         else:
-            out.append(SegmentLayout.plain(
+            lay = SegmentLayout.plain(
                 si, str(seg.path), n_file, seg.start or 0,
-                n_file if seg.stop is None else seg.stop, index[seg.state], len(index)))
+                n_file if seg.stop is None else seg.stop, index[seg.state], len(index))
+        if reweighting is not None and si in reweighting.weights:
+            if reweighting.weights[si].size != n_file:
+                raise InputError(f"bias-energy file {str(seg.bias_path)!r} holds "
+                                 f"{reweighting.weights[si].size} bias energies, but "
+                                 f"trajectory {key!r} has {n_file} frames; give one per frame")
+            lay = dataclasses.replace(lay, weight=reweighting.weights[si],
+                                      clock=reweighting.clocks[si][:n_file])
+        out.append(lay)
     return out
 
 
@@ -498,6 +538,22 @@ class _Context:
     leaf_frames: int
     n_states: int
     chunk_frames: int
+    weighted: bool = False  # biased runs: weighted counts, so no pass is exact
+
+
+def _exact(pass_, ctx):
+    """Whether a pass skips the tree in this run (exact counts: never with weights)."""
+    return pass_.exact and not ctx.weighted
+
+
+def _halo(passes, layout, segment):
+    """Frames read after a task for its passes' lags (rescaled time spans vary in a biased
+    run: the longest span of the lag over the segment, :meth:`SegmentLayout.lag_span`)."""
+    out = 0
+    for p in passes:
+        lag = p.halo(segment)
+        out = max(out, layout.lag_span(lag) if p.rescaled_time else lag)
+    return out
 
 
 @dataclass
@@ -584,8 +640,18 @@ def _leaves(ctx, work):
     yield from emit(work.read_stop, True)
 
 
-def run_task(ctx, work):
+def run_task(ctx, work, tick=None):
     """Run one task in a worker: per pass, the tree nodes it completed (or its exact sum).
+
+    Parameters
+    ----------
+    ctx : _Context
+        What every task of the run shares.
+    work : _Work
+        The task.
+    tick : callable, default=None
+        ``tick(work.number, n_rows)`` after each leaf (progress, in this
+        process only; never part of the result).
 
     Returns
     -------
@@ -596,18 +662,21 @@ def run_task(ctx, work):
     """
     with one_blas_thread():
         trees, accs = [], []
-        for p in ctx.passes:
-            trees.append(None if p.exact else TreeReducer(work.n_leaves, p.merge))
+        exact = [_exact(p, ctx) for p in ctx.passes]
+        for p, e in zip(ctx.passes, exact):
+            trees.append(None if e else TreeReducer(work.n_leaves, p.merge))
             accs.append(None)
         for number, leaf in _leaves(ctx, work):
             k = number - work.first_leaf
             for i, p in enumerate(ctx.passes):
-                if p.exact:
+                if exact[i]:
                     if leaf is not None:
                         accs[i] = p.accumulate(accs[i], leaf)
                 else:
                     trees[i].add(0, k, None if leaf is None else p.map(leaf))
-        return [accs[i] if p.exact else trees[i].nodes() for i, p in enumerate(ctx.passes)]
+            if tick is not None:
+                tick(work.number, 0 if leaf is None else leaf.n)
+        return [accs[i] if exact[i] else trees[i].nodes() for i in range(len(ctx.passes))]
 
 
 # --------------------------------------------------------------------------- running a pass
@@ -618,7 +687,7 @@ def _chunk_frames(source, featurizer, leaf_frames, halo=0):
     return int(max(leaf_frames, min(want, FEATURE_BUDGET // max(1, featurizer.n_features))))
 
 
-def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
+def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None, label=None):
     """Run one pass, or several sharing one read, over the frames of a source.
 
     Parameters
@@ -639,6 +708,12 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
         tasks per worker of the executor.
     chunk_frames : int, default=None
         Frames per read (memory only; results do not depend on it).
+    label : str, default=None
+        What the read is for, shown beside its progress bar when a display is
+        active (:mod:`cvdesign.progress`); None: ``'reading'``. The bar counts
+        the frames with a state read of the total, advanced leaf by leaf in
+        this process and task by task for other executors. It never changes
+        the result.
 
     Returns
     -------
@@ -665,49 +740,112 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None):
     if any(p.featurizer is not featurizer for p in passes):
         raise InputError("passes run together must share one featurizer object")
     with using_executor(executor) as executor:
-        return _run(passes, featurizer, source, executor, tasks, chunk_frames, single)
+        return _run(passes, featurizer, source, executor, tasks, chunk_frames, single,
+                    label or "reading")
 
 
-def _run(passes, featurizer, source, executor, tasks, chunk_frames, single):
+def _run(passes, featurizer, source, executor, tasks, chunk_frames, single, label):
     if tasks is None:
         plan = plan_tasks(source).for_features(featurizer.n_features, executor.n_workers)
     elif isinstance(tasks, TaskPlan):
         plan = tasks
     else:
         raise InputError(f"tasks must be a TaskPlan from plan_tasks(), not {type(tasks).__name__}")
-    halo = max(p.halo(si) for p in passes for si in range(plan.n_segments)) \
+    halo = max(_halo(passes, lay, si) for si, lay in enumerate(plan.layouts)) \
         if plan.n_segments else 0
     ctx = _Context(passes, featurizer, plan.topology, plan.leaf_frames, plan.n_states,
                    int(chunk_frames) if chunk_frames else
-                   _chunk_frames(source, featurizer, plan.leaf_frames, halo))
+                   _chunk_frames(source, featurizer, plan.leaf_frames, halo),
+                   any(lay.weight is not None for lay in plan.layouts))
     works = []
     for n, t in enumerate(plan.tasks):
         lay = plan.layouts[t.segment]
         start, stop = plan.task_frames(t)
-        halo = max(p.halo(t.segment) for p in passes)
+        halo = _halo(passes, lay, t.segment)
         read_stop = min(lay.hi, stop + halo)
         leaves = plan.leaves(t.segment)
         works.append(_Work(n, t, lay.path, lay.window(start, read_stop), len(leaves),
                            leaves.start, start, stop, read_stop, halo))
-    with one_blas_thread():
-        return _reduce(passes, plan, executor, ctx, works, single)
+    _log.debug("%s: %d pass(es) over %d segment(s) in %d task(s), leaves of %d frames, "
+               "reads of %d frames, on %s", label, len(passes), plan.n_segments, len(works),
+               plan.leaf_frames, ctx.chunk_frames, type(executor).__name__)
+    with one_blas_thread(), _Progress(label, works, executor) as shown:
+        return _reduce(passes, plan, executor, ctx, works, single, shown)
 
 
-def _reduce(passes, plan, executor, ctx, works, single):
+def _selected_frames(work):
+    """Frames with a state in a task's range ``[start, stop)``."""
+    lay = work.layout
+    lo, hi = max(work.start, lay.lo), min(work.stop, lay.hi)
+    if hi <= lo:
+        return 0
+    if lay.codes is None:
+        return hi - lo
+    return int(np.count_nonzero(lay.states_of(np.arange(lo, hi)) >= 0))
+
+
+class _Progress:
+    """The progress bar of one run: frames with a state read of the total.
+
+    Tasks run in this process advance it leaf by leaf (``tick``, given to
+    :func:`run_task` only by an in-process executor, so nothing of it is ever
+    pickled); every completed task then adds what its leaves did not, so tasks
+    of other executors advance it as they complete. Inactive (and costing
+    nothing) when no display is.
+    """
+
+    def __init__(self, label, works, executor):
+        self.label, self.works, self.executor = label, works, executor
+        self.bar, self.frames, self.done, self._cm = None, None, {}, None
+
+    def __enter__(self):
+        if progress.active():
+            self.frames = [_selected_frames(w) for w in self.works]
+            self._cm = progress.bar(self.label, sum(self.frames), unit="frames")
+            self.bar = self._cm.__enter__()
+        return self
+
+    def __exit__(self, *exc):
+        if self._cm is not None:
+            return self._cm.__exit__(*exc)
+        return False
+
+    def task_fn(self):
+        """:func:`run_task`, with leaf-by-leaf progress when the tasks run in this process."""
+        if self.bar is None or not getattr(self.executor, "in_process", False):
+            return run_task
+        return functools.partial(run_task, tick=self._tick)
+
+    def _tick(self, number, n):
+        if n:
+            self.done[number] = self.done.get(number, 0) + n
+            self.bar.update(n)
+
+    def completed(self, number):
+        """Task `number` is done: count the frames its leaves did not report."""
+        if self.bar is not None:
+            rest = self.frames[number] - self.done.get(number, 0)
+            self.done[number] = self.frames[number]
+            if rest > 0:
+                self.bar.update(rest)
+
+
+def _reduce(passes, plan, executor, ctx, works, single, shown):
     seg_trees = [[TreeReducer(len(plan.leaves(si)), p.merge) if len(plan.leaves(si)) else None
                   for si in range(plan.n_segments)] for p in passes]
     exact = [None] * len(passes)
-    for number, result in executor.run(run_task, ctx, works):
+    for number, result in executor.run(shown.task_fn(), ctx, works):
+        shown.completed(number)
         segment = works[number].task.segment
         for i, p in enumerate(passes):
-            if p.exact:
+            if _exact(p, ctx):
                 exact[i] = merge_optional(p.merge, exact[i], result[i])
             else:
                 for h, k, value in result[i]:
                     seg_trees[i][segment].add(h, k, value)
     out = []
     for i, p in enumerate(passes):
-        if p.exact:
+        if _exact(p, ctx):
             root = exact[i]
         else:
             roots = []

@@ -15,10 +15,18 @@ split, chunk size, executor or arrival order.
 * **bootstrap block**: ``rank // block_frames`` within (segment, state), or
   within (segment, state, fold) when folds are given (rank counted from the
   fold's first frame);
+* **thinning**: a subsample bounded in size whatever the number of frames keeps the
+  frames whose rank (or frame offset) is a multiple of :func:`thinning_stride`, a
+  function of the frame counts only;
 * **run end**: the first frame after the run of consecutive frames of one
   state that a frame belongs to; a lagged pair ``(t, t + lag)`` is valid only
   when ``t + lag`` is before it (no pair spans a file, a gap, a state change or
-  the end of the frame range).
+  the end of the frame range);
+* **weight** (biased runs, :mod:`cvdesign.io.bias`): the frame's reweighting
+  factor, and its **clock**, the rescaled time of the frame in frame spacings;
+  a lagged pair of a biased run pairs ``t`` with the first frame whose clock
+  reaches ``clock[t] + lag`` (:meth:`SegmentLayout.partners`). Both are
+  functions of the file's bias energies and the absolute frame number.
 """
 
 from dataclasses import dataclass, field
@@ -27,7 +35,8 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD"]
+__all__ = ["SegmentLayout", "Folds", "FrameKeys", "frame_keys", "MIN_FRAMES_PER_FOLD",
+           "thinning_stride"]
 
 #: Fewest frames of each state in each held-out fold (the pipeline's rule).
 MIN_FRAMES_PER_FOLD = 10
@@ -63,6 +72,10 @@ class SegmentLayout:
         Per-frame state code (-1: no state), rank within (segment, state) and
         end of the frame's run, for frames ``offset, offset + 1, ...``
         (labelled segments only).
+    weight, clock : ndarray of float64 or None
+        Biased runs only: per-frame weight and rescaled clock (frame
+        spacings), for frames ``offset, offset + 1, ...``
+        (:class:`cvdesign.io.bias.Reweighting`); None for an unbiased run.
 
     Examples
     --------
@@ -85,6 +98,9 @@ class SegmentLayout:
     codes: np.ndarray | None = field(default=None, repr=False)
     rank: np.ndarray | None = field(default=None, repr=False)
     run_end: np.ndarray | None = field(default=None, repr=False)
+    weight: np.ndarray | None = field(default=None, repr=False)
+    clock: np.ndarray | None = field(default=None, repr=False)
+    spans: dict = field(default_factory=dict, repr=False)
 
     @classmethod
     def plain(cls, index, path, n_file, lo, hi, state, n_states):
@@ -153,15 +169,82 @@ class SegmentLayout:
             return np.full(frames.shape, self.hi, dtype=np.int64)
         return np.minimum(self._at(self.run_end, frames, 0), self.hi)
 
+    def weights_of(self, frames):
+        """Weight of each frame (biased runs), or None for an unbiased run."""
+        if self.weight is None:
+            return None
+        idx = np.asarray(frames, dtype=np.int64) - self.offset
+        return self.weight[idx]
+
+    def _reach(self, frames, lag):
+        """(index into the clock of the first frame of the segment's range, in this window,
+        whose clock reaches ``clock[t] + lag``; whether there is one; the target times)."""
+        idx = np.asarray(frames, dtype=np.int64) - self.offset
+        target = self.clock[idx] + float(lag)
+        n = max(0, min(self.clock.size, self.hi - self.offset))
+        first = np.searchsorted(self.clock[:n], target, side="left")
+        return idx, np.minimum(first, max(n - 1, 0)), first < n, target
+
+    def partners(self, frames, lag):
+        """Second frame of the rescaled-time pair of each frame (biased runs).
+
+        Of the frames after ``t`` up to the first one whose clock reaches
+        ``clock[t] + lag`` (`lag` in frame spacings of rescaled time), the one
+        whose clock is closest to it (a tie: the later one); -1 when no frame
+        of the segment's range (in this layout's window) reaches it. Rescaled
+        frame steps vary, so the pairs' rescaled lags scatter about `lag`,
+        by at most half a step either way.
+
+        Examples
+        --------
+        >>> import dataclasses
+        >>> lay = SegmentLayout.plain(0, "run.xtc", 6, 0, 6, 0, 1)
+        >>> lay = dataclasses.replace(lay, clock=np.array([0.0, 0.5, 1.8, 2.9, 3.2, 5.0]))
+        >>> lay.partners(np.array([0, 1, 2, 4]), 2).tolist()
+        [2, 3, 4, -1]
+        """
+        idx, first, found, target = self._reach(frames, lag)
+        before = first - 1
+        closer = found & (before > idx) & (target - self.clock[before] < self.clock[first] - target)
+        return np.where(found, np.where(closer, before, first) + self.offset, -1).astype(np.int64)
+
+    def lag_span(self, lag):
+        """Frames a lag in rescaled time spans at most in this segment (its halo).
+
+        For an unbiased run the lag itself; for a biased one the largest
+        distance from a frame ``t`` of the segment's range to the first frame
+        of the range whose clock reaches ``clock[t] + lag`` (every frame
+        :meth:`partners` may look at). Call it on the whole layout, not a
+        window.
+        """
+        lag = int(lag)
+        if self.clock is None or lag <= 0:
+            return lag
+        if lag not in self.spans:
+            if not np.isfinite(self.clock[-1]):
+                raise InputError(f"the rescaled time of trajectory {self.path!r} overflows "
+                                 "(its bias energies reach hundreds of kT): lagged pairs in "
+                                 "rescaled time cannot be formed; check the bias energies "
+                                 "and the temperature")
+            t = np.arange(self.lo, self.hi, dtype=np.int64)
+            _, first, found, _ = self._reach(t, lag) if t.size else (t, t, t > 0, t)
+            span = first[found] + self.offset - t[found]
+            self.spans[lag] = int(span.max()) if span.size else 0
+        return self.spans[lag]
+
     def window(self, start, stop):
         """The same layout with its per-frame arrays cut to frames ``[start, stop)``."""
-        if self.codes is None:
+        if self.codes is None and self.weight is None:
             return self
         a, b = max(0, int(start) - self.offset), max(0, int(stop) - self.offset)
+
+        def cut(array):
+            return None if array is None else array[a:b].copy()
+
         return SegmentLayout(self.index, self.path, self.n_file, self.lo, self.hi,
-                             self.n_states, None, self.counts, self.offset + a,
-                             self.codes[a:b].copy(), self.rank[a:b].copy(),
-                             self.run_end[a:b].copy())
+                             self.n_states, self.state, self.counts, self.offset + a,
+                             cut(self.codes), cut(self.rank), cut(self.run_end),
+                             cut(self.weight), cut(self.clock))
 
 
 @dataclass(frozen=True)
@@ -327,3 +410,59 @@ def frame_keys(layout, frames, *, folds=None, block_frames=None):
         start = zeros if folds is None else folds.first_rank(layout, states, fold)
         block = (rank - start) // int(block_frames)
     return FrameKeys(states, rank, fold, block)
+
+
+def thinning_stride(counts, limit, *, multiple_of=1):
+    """The smallest stride that keeps at most `limit` frames in all.
+
+    A subsample that keeps, in each group of frames (a segment, or a (segment,
+    state) run), those whose rank ``r`` (0, 1, 2, ... within the group) has
+    ``r % stride == 0`` holds ``sum(ceil(count / stride))`` frames. This is the
+    smallest such stride, a multiple of `multiple_of`, for which that sum is at
+    most `limit` -- a function of the counts only, so the subsample is the same
+    for every task split, and bounded whatever the number of frames.
+
+    Parameters
+    ----------
+    counts : array-like of int
+        Frames in each group (zeros allowed).
+    limit : int
+        Most frames kept in all; at least the number of non-empty groups (each
+        keeps its first frame at least).
+    multiple_of : int, default=1
+        The stride is a multiple of this (to thin a subsample that was itself
+        taken with this stride).
+
+    Returns
+    -------
+    int
+        At least `multiple_of`.
+
+    Raises
+    ------
+    ValueError
+        When `limit` is smaller than the number of non-empty groups.
+
+    Examples
+    --------
+    >>> thinning_stride([2000, 2000], 1000)
+    4
+    >>> thinning_stride([999], 1000), thinning_stride([8000], 1000)
+    (1, 8)
+    >>> thinning_stride([50000, 3], 5000, multiple_of=2)
+    12
+    """
+    counts = np.asarray(counts, dtype=np.int64).reshape(-1)
+    counts = counts[counts > 0]
+    step, limit = max(1, int(multiple_of)), int(limit)
+    if counts.size > limit:
+        raise ValueError(f"limit={limit} frames cannot hold one frame of each of the "
+                         f"{counts.size} groups")
+
+    def kept(stride):
+        return int(np.sum(-(-counts // stride)))
+
+    m = max(1, -(-int(counts.sum()) // (limit * step)))  # a lower bound
+    while kept(m * step) > limit:
+        m += 1
+    return m * step

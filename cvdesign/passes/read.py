@@ -15,7 +15,8 @@ from mdtraj.formats import (DCDTrajectoryFile, NetCDFTrajectoryFile, TRRTrajecto
 from mdtraj.utils import in_units_of
 
 from ..errors import InputError
-from ..io.source import check_box, check_finite, every_atom, quiet_stdout, stores_time
+from ..io.source import (check_box, check_finite, every_atom, file_frames, quiet_stdout,
+                         stores_time)
 
 __all__ = ["file_frames", "read_chunks", "RawChunk"]
 
@@ -35,22 +36,6 @@ def _netcdf(out):
 #: file class -> how its ``read`` output maps to (xyz, time, box vectors, lengths, angles)
 _RAW = ((XTCTrajectoryFile, _xtc), (TRRTrajectoryFile, _xtc), (DCDTrajectoryFile, _dcd),
         (NetCDFTrajectoryFile, _netcdf))
-
-
-def file_frames(path):
-    """Number of frames in a trajectory file (through mdtraj's file object).
-
-    Raises
-    ------
-    InputError
-        When mdtraj cannot open the file or count its frames.
-    """
-    try:
-        with quiet_stdout(), md.open(str(path)) as fh:
-            return int(len(fh))
-    except Exception as exc:
-        raise InputError(f"cannot count the frames of trajectory {str(path)!r}: "
-                         f"{str(exc).strip() or type(exc).__name__}; check the file") from exc
 
 
 class RawChunk:

@@ -14,6 +14,8 @@ Each returns the objects the rest of cvdesign works with
   per fold, per (state, fold) or per run on demand;
 * :class:`LagGridPass` -- the same, diagonal, at every lag of a grid (one read);
 * :class:`HistogramPass` -- per-state histograms on fixed bins (exact counts);
+* :class:`ProjectionRangePass` -- per-state smallest and largest value of linear
+  projections of the features (exact);
 * :class:`BlockPass` -- per-(state, fold, segment, bootstrap block) moments,
   lagged moments and additive sums, for the block bootstrap;
 * :class:`CardPass` -- per-(state, segment, block) sums of many features (moments,
@@ -36,7 +38,7 @@ from .engine import Pass, _lag_halo
 from .keys import frame_keys
 
 __all__ = ["FeaturePass", "ScreeningPass", "ScreeningResult", "FoldMomentsPass", "LaggedPass",
-           "LaggedResult", "LagGridPass", "HistogramPass", "BlockPass", "CardPass", "CardSums",
+           "LaggedResult", "LagGridPass", "HistogramPass", "ProjectionRangePass", "BlockPass", "CardPass", "CardSums",
            "merge_keyed", "group_rows"]
 
 
@@ -96,8 +98,12 @@ def group_rows(*keys):
 
 
 def _slice(rows):
-    """Increasing row indices as a slice when they are consecutive (a view, not a copy)."""
-    if rows.size and int(rows[-1]) - int(rows[0]) + 1 == rows.size:
+    """Non-decreasing row indices as a slice when they are consecutive (a view, not a copy).
+
+    The second frames of pairs in rescaled time may repeat a row (two frames paired with
+    one), so consecutive means no repeat as well as no gap."""
+    if rows.size and int(rows[-1]) - int(rows[0]) + 1 == rows.size and (
+            rows.size < 3 or not (rows[1:] == rows[:-1]).any()):
         return slice(int(rows[0]), int(rows[-1]) + 1)
     return rows
 
@@ -110,6 +116,21 @@ def _take(x, rows):
 def _dot(a, b):
     """Column sums of ``a * b`` (2-D arrays) without forming the product array."""
     return np.einsum("ij,ij->j", a, b)
+
+
+def _wtake(w, rows):
+    """Weights of some rows (None for unweighted frames)."""
+    return None if w is None else w[_slice(rows)]
+
+
+def _wsum(w, a):
+    """Column sums of `a`, weighted by `w` when given."""
+    return a.sum(axis=0) if w is None else w @ a
+
+
+def _wdot(w, a, b):
+    """Column sums of ``a * b``, weighted by `w` when given."""
+    return _dot(a, b) if w is None else w @ (a * b)
 
 
 def _lag_of(lags, segment):
@@ -218,19 +239,21 @@ class ScreeningPass(FeaturePass):
     def map(self, leaf):
         x = self.values(leaf.x)
         states = leaf.states
+        w = leaf.weights
         diag, counts, lagged = {}, {}, {}
         lag = _lag_of(self.lags, leaf.segment)
         if lag is not None:
             i, j = leaf.pairs(lag)
             xt = self.values(leaf.window_x[_slice(j)])
         for (s,), rows in group_rows(states):
-            diag[s] = DiagonalMoments.from_data(_take(x, rows))
+            diag[s] = DiagonalMoments.from_data(_take(x, rows), _wtake(w, rows))
             counts[(leaf.segment, s)] = int(rows.size)
             if lag is not None:
                 sel = np.flatnonzero(states[i] == s)
                 if sel.size:
                     m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
-                    lagged[(leaf.segment, s)] = m.add_pairs(_take(x, i[sel]), _take(xt, sel))
+                    lagged[(leaf.segment, s)] = m.add_pairs(_take(x, i[sel]), _take(xt, sel),
+                                                            _wtake(w, i[sel]))
         box = leaf.box
         min_box = None if box is None else float(box_heights(box.astype(np.float64)).min())
         return {"diag": diag, "counts": counts, "lagged": lagged, "min_box": min_box}
@@ -273,8 +296,9 @@ class FoldMomentsPass(FeaturePass):
 
     def map(self, leaf):
         x = self.values(leaf.x)
+        w = leaf.weights
         keys = frame_keys(leaf.layout, leaf.frames, folds=self.folds)
-        return {key: Moments.from_data(_take(x, rows))
+        return {key: Moments.from_data(_take(x, rows), _wtake(w, rows))
                 for key, rows in group_rows(keys.states, keys.fold)}
 
     def merge(self, a, b):
@@ -341,7 +365,8 @@ class LaggedPass(FeaturePass):
     featurizer : Featurizer
     lags : int or dict of int to int
         Lag in frames, for every segment or per segment index (a segment
-        missing or None contributes no pairs).
+        missing or None contributes no pairs); in frame spacings of rescaled
+        time for a biased run (:meth:`cvdesign.passes.Leaf.pairs`).
     shift : array-like of shape (n_features,), default=None
         Fixed shift of the sums; zeros when None.
     folds : Folds, default=None
@@ -385,11 +410,13 @@ class LaggedPass(FeaturePass):
             first = frame_keys(leaf.layout, leaf.frames[i], folds=self.folds)
         x0 = self.values(leaf.x[_slice(i)])
         xt = self.values(leaf.window_x[_slice(j)])
+        w0 = _wtake(leaf.weights, i)  # a pair weighs as its first frame
         cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
         out = {}
         for (s, k), rows in group_rows(first.states, first.fold):
             m = cls(self.n_features, shift=self.shift, lag=lag)
-            out[(leaf.segment, s, k)] = m.add_pairs(_take(x0, rows), _take(xt, rows))
+            out[(leaf.segment, s, k)] = m.add_pairs(_take(x0, rows), _take(xt, rows),
+                                                    _wtake(w0, rows))
         return out
 
     def merge(self, a, b):
@@ -406,7 +433,9 @@ class LagGridPass(FeaturePass):
 
     The result equals, byte for byte, one diagonal :class:`LaggedPass` per lag
     (no folds), but a leaf's features are shifted once for all the lags, and
-    each lag's pairs are views of them.
+    each lag's pairs are views of them. In a biased run the lags stay in frames
+    (``rescaled_time = False``: the grid measures how correlated the saved
+    frames are, for integrated times and bootstrap blocks), the pairs weighted.
 
     Parameters
     ----------
@@ -430,21 +459,28 @@ class LagGridPass(FeaturePass):
         self.shift = np.zeros(self.n_features) if shift is None else \
             np.asarray(shift, dtype=np.float64)
 
+    rescaled_time = False
+
     def halo(self, segment_index):
         return max(self.lags)
 
     def map(self, leaf):
         d = self.values(leaf.window_x) - self.shift
+        w = leaf.weights
         out = {}
         firsts = {}  # sums over the first frames, shared by the lags with the same ones
         for g, lag in enumerate(self.lags):
-            i, j = leaf.pairs(lag)
+            i, j = leaf.pairs(lag, rescaled=False)
             if i.size == 0:
                 continue
             first = frame_keys(leaf.layout, leaf.frames[i])
             d0, dt = d[_slice(i)], d[_slice(j)]
             for (s,), rows in group_rows(first.states):
                 x0, xt = _take(d0, rows), _take(dt, rows)
+                if w is not None:  # weighted pairs: no shared sums
+                    m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
+                    out[(g, leaf.segment, s, 0)] = m.add_shifted(x0, xt, w[i[rows]])
+                    continue
                 key = (s, i[rows[0]], i[rows[-1]], rows.size)
                 if key not in firsts:  # (rows increasing: first, last and count fix them)
                     firsts[key] = (x0.sum(axis=0), _dot(x0, x0))
@@ -501,7 +537,7 @@ class HistogramPass(FeaturePass):
 
     def accumulate(self, acc, leaf):
         acc = self._empty(leaf.n_states) if acc is None else acc
-        acc.add(self.values(leaf.x), leaf.states)
+        acc.add(self.values(leaf.x), leaf.states, leaf.weights)
         return acc
 
     def map(self, leaf):
@@ -509,6 +545,73 @@ class HistogramPass(FeaturePass):
 
     def merge(self, a, b):
         return a.merge(b)
+
+    def finish(self, partial, plan):
+        return self._empty(plan.n_states) if partial is None else partial
+
+
+class ProjectionRangePass(FeaturePass):
+    """Per-state smallest and largest value of linear projections of the features.
+
+    A projection is ``sum_j weights[j] * x[:, positions[j]]`` of the features as
+    the pass uses them (after ``columns``, ``center``, ``scale``), summed term by
+    term in the order given, so each frame's value is the same whatever leaf it
+    is read in; the minimum and maximum are exact, so the result is the same,
+    bit for bit, for any split of the frames, order of arrival or executor.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    projections : list of (array-like of int, array-like of float)
+        ``(positions, weights)`` per projection: feature positions (after
+        ``columns``) and their weights, of equal length >= 1.
+    columns, center, scale : optional
+
+    Returns an ndarray of shape (2, n_projections, n_states), float64: the
+    smallest (``[0]``) and largest (``[1]``) value per projection and state;
+    +inf and -inf for a state without frames.
+
+    Examples
+    --------
+    >>> from cvdesign.passes import CoordinateFeaturizer
+    >>> proj = ProjectionRangePass(CoordinateFeaturizer([0]), [([0, 1], [1.0, -1.0])])
+    >>> proj.n_features, len(proj.projections)
+    (3, 1)
+    """
+
+    exact = True
+
+    def __init__(self, featurizer, projections, *, columns=None, center=None, scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.projections = []
+        for positions, weights in projections:
+            positions = np.asarray(positions, dtype=np.intp).reshape(-1)
+            weights = np.asarray(weights, dtype=np.float64).reshape(-1)
+            if positions.size == 0 or positions.size != weights.size:
+                raise ValueError("a projection needs as many weights as positions, at least one")
+            self.projections.append((positions, weights))
+
+    def _empty(self, n_states):
+        out = np.empty((2, len(self.projections), n_states))
+        out[0], out[1] = np.inf, -np.inf
+        return out
+
+    def map(self, leaf):
+        x = self.values(leaf.x)
+        out = self._empty(leaf.n_states)
+        states = leaf.states
+        if states.size == 0:
+            return out
+        for p, (positions, weights) in enumerate(self.projections):
+            v = x[:, positions[0]] * weights[0]
+            for j, w in zip(positions[1:], weights[1:]):
+                v = v + x[:, j] * w
+            np.minimum.at(out[0, p], states, v)
+            np.maximum.at(out[1, p], states, v)
+        return out
+
+    def merge(self, a, b):
+        return np.stack([np.minimum(a[0], b[0]), np.maximum(a[1], b[1])])
 
     def finish(self, partial, plan):
         return self._empty(plan.n_states) if partial is None else partial
@@ -544,7 +647,8 @@ class BlockPass(FeaturePass):
         block's rows in this leaf and ``key = (state, fold, segment,
         block)``: additive sums kept as an :class:`~cvdesign.stats.bootstrap.ArraySum`
         (e.g. histogram counts of a projection). Must pickle (a module-level
-        function or object).
+        function or object). With weighted frames (biased runs) it is called
+        as ``sums(values, key, weights=...)`` and must weight its sums.
     columns, center, scale : optional
 
     The result is ``{(state, fold): [(Moments, LaggedMoments, ArraySum), ...]}``,
@@ -572,16 +676,18 @@ class BlockPass(FeaturePass):
 
     def map(self, leaf):
         x = self.values(leaf.x)
+        w = leaf.weights
         keys = self._keys(leaf, leaf.frames)
         si = leaf.segment
         out = {}
         for (s, k, b), rows in group_rows(keys.states, keys.fold, keys.block):
             key = (s, k, si, b)
-            xr = _take(x, rows)
-            m = Moments.from_data(xr) if self.moments else None
+            xr, wr = _take(x, rows), _wtake(w, rows)
+            m = Moments.from_data(xr, wr) if self.moments else None
             extra = None
             if self.sums is not None:
-                extra = ArraySum(**self.sums(xr, key))
+                extra = ArraySum(**(self.sums(xr, key) if wr is None else
+                                    self.sums(xr, key, weights=wr)))
             out[key] = (m, None, extra)
         lag = _lag_of(self.lags, si)
         if lag is not None:
@@ -594,10 +700,11 @@ class BlockPass(FeaturePass):
                 keep &= first.block == second.block
             i, j = i[keep], j[keep]
             x0, xt = x[_slice(i)], self.values(leaf.window_x[_slice(j)])
+            w0 = _wtake(w, i)
             for (s, k, b), rows in group_rows(first.states[keep], first.fold[keep],
                                            first.block[keep]):
                 m = LaggedMoments(self.n_features, shift=self.lag_shift)
-                m.add_pairs(_take(x0, rows), _take(xt, rows))
+                m.add_pairs(_take(x0, rows), _take(xt, rows), _wtake(w0, rows))
                 a, _, c = out[(s, k, si, b)]
                 out[(s, k, si, b)] = (a, m, c)
         return out
@@ -691,6 +798,7 @@ class CardPass(FeaturePass):
 
     def map(self, leaf):
         x = self.values(leaf.x)
+        w = leaf.weights
         si = leaf.segment
         keys = frame_keys(leaf.layout, leaf.frames, block_frames=self.block_frames)
         groups = group_rows(keys.states, keys.block)
@@ -698,12 +806,13 @@ class CardPass(FeaturePass):
         for g, (_, rows) in enumerate(groups):
             code[rows] = g
         # every row binned once, one count per (block, feature, bin)
-        hist = bin_counts(x, self._low, self._high, self.n_bins, code, len(groups))
+        hist = bin_counts(x, self._low, self._high, self.n_bins, code, len(groups), w)
         out = {}
         for g, ((s, b), rows) in enumerate(groups):
             d = _take(x, rows) - self._shift
-            acc = {"n": float(rows.size), "s1": d.sum(axis=0), "s2": _dot(d, d),
-                   "hist": hist[g]}
+            wr = _wtake(w, rows)
+            acc = {"n": float(rows.size) if wr is None else float(wr.sum()),
+                   "s1": _wsum(wr, d), "s2": _wdot(wr, d, d), "hist": hist[g]}
             if self.lags is not None:
                 acc.update({f: 0.0 if f == "n_pairs" else np.zeros(self.n_features)
                             for f in CARD_LAG_FIELDS})
@@ -713,20 +822,22 @@ class CardPass(FeaturePass):
             i, j = leaf.pairs(lag)
             first = frame_keys(leaf.layout, leaf.frames[i], block_frames=self.block_frames)
             xi, yi = x[_slice(i)], self.values(leaf.window_x[_slice(j)])
+            wi = _wtake(w, i)  # a pair weighs as its first frame
             for (s, b), rows in group_rows(first.states, first.block):
                 mean = self._means.get((si, s), self._shift)
                 xr, yr = _take(xi, rows), _take(yi, rows)
                 p, q = xr - self._shift, yr - self._shift
                 u, v = xr - mean, yr - mean
+                wr = _wtake(wi, rows)
                 acc = out[(s, si, b)]
-                acc["n_pairs"] = float(rows.size)
-                acc["sx"] = p.sum(axis=0)
-                acc["sy"] = q.sum(axis=0)
-                acc["sxx"] = _dot(p, p)
-                acc["sxy"] = _dot(p, q)
-                acc["syy"] = _dot(q, q)
-                acc["l0"] = 0.5 * (_dot(u, u) + _dot(v, v))
-                acc["lt"] = _dot(u, v)
+                acc["n_pairs"] = float(rows.size) if wr is None else float(wr.sum())
+                acc["sx"] = _wsum(wr, p)
+                acc["sy"] = _wsum(wr, q)
+                acc["sxx"] = _wdot(wr, p, p)
+                acc["sxy"] = _wdot(wr, p, q)
+                acc["syy"] = _wdot(wr, q, q)
+                acc["l0"] = 0.5 * (_wdot(wr, u, u) + _wdot(wr, v, v))
+                acc["lt"] = _wdot(wr, u, v)
         return {key: ArraySum(**acc) for key, acc in out.items()}
 
     def merge(self, a, b):

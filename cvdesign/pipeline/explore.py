@@ -41,6 +41,7 @@ The proposed labels then feed the labelled pipeline
 (:func:`cvdesign.pipeline.suggest`) through :meth:`Exploration.labelled_source`.
 """
 
+import logging
 import math
 from dataclasses import dataclass, field
 
@@ -54,15 +55,23 @@ from ..fit import TICA
 from ..io.source import Source
 from ..parallel import using_executor
 from ..passes import (LaggedPass, Pass, PoolFeaturizer, ScreeningPass, frame_keys, plan_tasks,
-                      reference_features, run_pass)
+                      reference_features, run_pass, thinning_stride)
 from ..pool import build_pool
+from ..progress import stage_messages
 from ..search import standardize_lagged
 from ..stats.moments import LaggedMoments, merge_all
 from .timing import EvenSpacingPass, checked_segments, read_timesteps
 from .timing import lag_frames as _lag_frames
 
 __all__ = ["propose_states", "state_kinetics", "Exploration", "StateKinetics",
-           "MIN_SILHOUETTE", "MIN_MEMORY", "MIN_SEPARATION", "SILHOUETTE_TIE"]
+           "MIN_SILHOUETTE", "MIN_MEMORY", "MIN_SEPARATION", "SILHOUETTE_TIE",
+           "MAX_REPORT_FRAMES"]
+
+#: Most frames of the report's picture of the proposed states (the clustering's
+#: subsample, thinned by a stride chosen from the frame counts).
+MAX_REPORT_FRAMES = 5000
+
+_log = logging.getLogger(__name__)
 
 #: Smallest mean silhouette accepted as metastable structure. Kaufman and Rousseeuw
 #: (*Finding Groups in Data*, 1990) read 0.51-0.70 as "a reasonable structure" and
@@ -589,6 +598,14 @@ class Exploration:
         One per proposed state that is not metastable (each says "not
         metastable" and why); also written to summary.md and printed by the
         command line.
+    report_tica : dict or None
+        The ``tica`` entry of ``report-data.json`` (``docs/report-data-v1.md``):
+        ``coords`` (the first two slow coordinates, kinetic map, dimensionless, of at
+        most :data:`MAX_REPORT_FRAMES` frames of the clustering's subsample; None when
+        TICA has a single coordinate), ``state`` (each frame's proposed state),
+        ``files`` (one name per run), ``file`` (index into ``files``) and ``frame``
+        (where each frame is), ``timescales_ps``
+        (of the two coordinates; None where not finite) and ``lag_ps``.
     """
 
     states: list
@@ -603,6 +620,7 @@ class Exploration:
     longest_run_ps: float = None
     kinetics: StateKinetics = None
     warnings: list = field(default_factory=list)
+    report_tica: dict = None
 
     def labelled_source(self, topology, *, chunk_size=500, timestep=None):
         """A :class:`~cvdesign.io.source.Source` of the runs with the proposed labels."""
@@ -744,6 +762,8 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         (see :func:`cvdesign.parallel.as_executor`). The results are the same,
         byte for byte.
     progress : callable, default=None
+        Called with a message string at each stage (also logged at INFO on the
+        ``cvdesign.pipeline.explore`` logger).
 
     Returns
     -------
@@ -777,12 +797,16 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         raise InputError(f"propose_states() needs a Source (a topology and the runs), not "
                          f"{type(source).__name__}; build one with Source('top.pdb') and "
                          ".add('run1.xtc', 'runs') for each run")
+    if source.biased:
+        raise InputError("propose_states() does not reweight biased runs yet: give runs "
+                         "without bias energies, or label the biased run's frames by state "
+                         "(Source.add_labelled(path, labels, bias=...)) and call suggest()")
     if not (isinstance(lag, (int, float)) and math.isfinite(lag) and lag > 0):
         raise InputError(f"lag={lag!r} must be a positive time in ps (give --lag PS)")
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):
         raise InputError(f"n_states={n_states!r} must be an integer of at least 2")
     with using_executor(executor) as executor:
-        return _propose(source, executor, progress or (lambda msg: None), lag=float(lag),
+        return _propose(source, executor, stage_messages(_log, progress), lag=float(lag),
                         n_states=n_states, max_states=max_states, selection=selection,
                         kinds=kinds, cutoff=cutoff, prefilter_stride=prefilter_stride,
                         coordination_r0=coordination_r0, screen_size=screen_size,
@@ -805,7 +829,8 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
         standardize_lagged(run_pass(LaggedPass(screened.featurizer, lag_frames,
                                                shift=screened.center,
                                                columns=screened.columns),
-                                    source, executor=executor, tasks=plan).merged(),
+                                    source, executor=executor, tasks=plan,
+                                    label="runs: TICA").merged(),
                            screened.center, screened.scale), lag=1, rcond=1e-6)
     ts_ps = (tica.timescales_ * lag).tolist()  # from_moments used lag=1 (one lag unit)
     notes = [f"TICA on the {screened.columns.size} most autocorrelated features "
@@ -823,13 +848,23 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     # eigenvalue, so barely-slow ones count less in the clustering
     project = _Projection(screened.columns, screened.center, screened.scale, tica.mean_,
                           tica.eigenvectors_[:, :n_slow], tica.eigenvalues_[:n_slow])
+    # the subsample also gets the second coordinate for the report's picture when only one
+    # is clustered (each coordinate is computed on its own, so the first n_slow are the bits
+    # `project` gives)
+    n_wide = min(max(n_slow, 2), tica.eigenvectors_.shape[1])
+    wide = _Projection(screened.columns, screened.center, screened.scale, tica.mean_,
+                       tica.eigenvectors_[:, :n_wide], tica.eigenvalues_[:n_wide])
 
     # the clustering sees at most about 20,000 evenly spaced frames (by rank in each run,
     # so the same for every split), the silhouette at most 4,000 of those
     n_frames = int(screened.segment_counts.sum())
     note(f"slow coordinates of a subsample of the {n_frames} frames")
-    fit_y = run_pass(_SamplePass(screened.featurizer, project, max(1, n_frames // 20000)),
-                     source, executor=executor, tasks=plan)
+    stride = max(1, n_frames // 20000)
+    report_stride = thinning_stride(screened.segment_counts.reshape(-1), MAX_REPORT_FRAMES,
+                                    multiple_of=stride)
+    wide_y, sample = run_pass(_SamplePass(screened.featurizer, wide, stride, report_stride),
+                              source, executor=executor, tasks=plan, label="runs: sample")
+    fit_y = np.ascontiguousarray(wide_y[:, :n_slow])
     sil_y = fit_y[::max(1, fit_y.shape[0] // 4000)]
     models = {}
 
@@ -867,7 +902,7 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
          "states)")
     found = run_pass(_KineticsPass(screened.featurizer, project, lag_frames,
                                    [means[k] for k in candidates]),
-                     source, executor=executor, tasks=plan)
+                     source, executor=executor, tasks=plan, label="runs: states")
     fits = {}
     for c, k in enumerate(candidates):
         sums = found["sums"][c]
@@ -940,11 +975,13 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
                  f"(k-means fitted on {fit_y.shape[0]}, silhouette on {sil_y.shape[0]})")
     lengths = [screened.segment_counts[si].sum() * dt for si, dt in timesteps.items()
                if dt is not None and screened.segment_counts[si].sum() > 0]
+    report_tica = _report_tica(source, sample, wide_y[sample["rows"]], n_slow, means[k], names,
+                               ts_ps[:n_wide], lag)
     return Exploration(states=states, labels=_frame_labels(source, found["labels"], c, names),
                        populations=pops, representatives=reps, timescales_ps=ts_ps,
                        lag_ps=lag, n_slow=n_slow, criterion=criterion, notes=notes,
                        longest_run_ps=float(max(lengths)) if lengths else None,
-                       kinetics=kin, warnings=warnings)
+                       kinetics=kin, warnings=warnings, report_tica=report_tica)
 
 
 @dataclass
@@ -971,7 +1008,8 @@ def _screen(source, base, pool, timesteps, lag, lag_frames, screen_size, executo
     spacing = EvenSpacingPass(every, timesteps, checked_segments(source, timesteps))
     first, lagged, _ = run_pass((ScreeningPass(every), LaggedPass(every, lag_frames,
                                                                    shift=shift, diagonal=True),
-                                 spacing), source, executor=executor, tasks=plan)
+                                 spacing), source, executor=executor, tasks=plan,
+                                label="runs: screening")
     pairs = lagged.merged()
     if pairs.count == 0:
         raise InputError(f"no lagged pairs at lag {lag:g} ps: every run is shorter than the "
@@ -1027,27 +1065,57 @@ def _squared_distances(y, centers):
 
 
 class _SamplePass(Pass):
-    """Slow coordinates of every `stride`-th frame of each run (by its rank in the run).
+    """Slow coordinates of every `stride`-th frame of each run (by its rank in the run),
+    and which of them are every `report_stride`-th (a multiple of `stride`): the
+    report's picture of the proposed states.
 
     The subsample is a pure function of (segment, frame), in frame order, so it
     is the same for every split; its size is bounded by the number of frames
-    over `stride` plus one per run.
+    over `stride` plus one per run. The result is ``(y, sample)``: the
+    coordinates, and ``sample`` with ``rows`` (rows of ``y`` in the report's
+    subsample), their ``segment`` and ``frame``.
     """
 
-    def __init__(self, featurizer, project, stride):
+    def __init__(self, featurizer, project, stride, report_stride=None):
         self.featurizer, self.project, self.stride = featurizer, project, int(stride)
+        self.report_stride = int(report_stride or stride)
 
     def map(self, leaf):
-        rows = np.flatnonzero(frame_keys(leaf.layout, leaf.frames).rank % self.stride == 0)
-        return [self.project(leaf.x[rows])] if rows.size else None
+        rank = frame_keys(leaf.layout, leaf.frames).rank
+        rows = np.flatnonzero(rank % self.stride == 0)
+        if not rows.size:
+            return None
+        keep = rank[rows] % self.report_stride == 0
+        return [(self.project(leaf.x[rows]), keep, leaf.segment, leaf.frames[rows[keep]])]
 
     def merge(self, a, b):
         return a + b
 
     def finish(self, partial, plan):
-        if not partial:
-            return np.zeros((0, self.project.n_coordinates))
-        return np.concatenate(partial)
+        partial = partial or []
+        y = (np.concatenate([p[0] for p in partial]) if partial
+             else np.zeros((0, self.project.n_coordinates)))
+        keep = np.concatenate([p[1] for p in partial]) if partial else np.zeros(0, dtype=bool)
+        sample = {"rows": np.flatnonzero(keep),
+                  "segment": np.concatenate([np.full(p[3].size, p[2], dtype=np.int64)
+                                             for p in partial]) if partial
+                  else np.zeros(0, dtype=np.int64),
+                  "frame": np.concatenate([p[3] for p in partial]) if partial
+                  else np.zeros(0, dtype=np.int64)}
+        return y, sample
+
+
+def _report_tica(source, sample, y, n_slow, centers, names, timescales_ps, lag_ps):
+    """The report's ``tica`` entry: the sample's first two slow coordinates and the state
+    of the nearest k-means centre (the rule that gave every frame its state)."""
+    state = np.argmin(_squared_distances(np.ascontiguousarray(y[:, :n_slow]), centers), axis=1)
+    return {"coords": y[:, :2].tolist() if y.shape[1] >= 2 else None,
+            "state": [names[i] for i in state.tolist()],
+            "files": [seg.path.name for seg in source.segments],
+            "file": sample["segment"].tolist(),
+            "frame": sample["frame"].tolist(),
+            "timescales_ps": [float(t) if math.isfinite(t) else None for t in timescales_ps],
+            "lag_ps": float(lag_ps)}
 
 
 def _nearer(a, b):

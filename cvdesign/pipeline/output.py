@@ -19,6 +19,7 @@ from typing import NamedTuple
 
 from .._version import __version__
 from ..io.atomic import prepare_output_dir, write_dir_atomically
+from ..spec.ranges import FOLD_SPREADS
 
 __all__ = ["Suggestions", "SuggestionFrames", "CAUTION", "is_output_file", "output_inputs",
            "dumps"]
@@ -103,6 +104,15 @@ class Suggestions:
         Lag of the slowness scores, ps.
     exploration : cvdesign.pipeline.explore.Exploration or None
         The proposed states, when the states were proposed from unlabelled runs.
+    selection : str or None
+        The atoms the pool was built from: the selection, how many atoms, in
+        which residues, with mdtraj's 0-based indices
+        (:func:`cvdesign.io.source.describe_selection`).
+    report_data : dict or None
+        What the report draws beyond the tables (``docs/report-data-v1.md``): per
+        ranked CV the held-out histograms in CV units, the traces and the implied
+        timescales; :meth:`report_data_json` adds the exploration's TICA coordinates.
+        None: no ``report-data.json`` is written.
 
     Examples
     --------
@@ -137,6 +147,8 @@ class Suggestions:
     objective: str = "separate"
     lag_ps: float = None
     exploration: object = None
+    selection: str = None
+    report_data: dict = None
 
     # ----------------------------------------------------------- renderings
     def scorecard_csv(self):
@@ -193,13 +205,24 @@ class Suggestions:
                        "objective": self.objective, "lag_ps": self.lag_ps,
                        "ranking": self.ranking, "caution": CAUTION})
 
+    def report_data_json(self):
+        """``report-data.json`` as JSON text (see ``docs/report-data-v1.md``), or None when
+        there is no report data; with an :attr:`exploration`, its ``tica`` entry holds
+        the frames in the two slowest TICA coordinates."""
+        if self.report_data is None:
+            return None
+        doc = dict(self.report_data)
+        if self.exploration is not None:
+            doc["tica"] = self.exploration.report_tica
+        return dumps(doc, compact=True)
+
     def top_table(self, n=5):
         """A plain-text table of the top `n` suggestions (separation and slowness)."""
         lines = [f"{'rank':>4}  {'spec':<11} {'terms':>5}  {'held-out J':>10}  "
                  f"{'overlap':>7}  {'autocorr':>8}  descriptors"]
         for r in self.ranking[:n]:
             names = ", ".join(dict.fromkeys(t["label"] for t in r["terms"]))
-            rho, ov = r["heldout_autocorrelation"], r["heldout_overlap"]
+            rho, ov = _shown_autocorrelation(r), r["heldout_overlap"]
             lines.append(f"{r['rank']:>4}  {r['spec']:<11} {r['n_terms']:>5}  "
                          f"{r['heldout_fisher_ratio']:>10.3g}  "
                          f"{'' if ov is None else format(ov, '.3f'):>7}  "
@@ -261,6 +284,8 @@ class Suggestions:
         for inp in self.inputs:
             dt = "unknown" if inp["frame_step_ps"] is None else f"{inp['frame_step_ps']:g}"
             out.append(f"| {inp['file']} | {', '.join(inp['states'])} | {inp['frames']} | {dt} |")
+        if self.selection:
+            out += ["", f"Atoms of the pool: {self.selection}."]
         if self.exploration is not None:
             out += [""] + self.exploration.summary_lines()
         out += ["", "## What was done", ""] + [f"- {n}" for n in self.notes]
@@ -270,10 +295,18 @@ class Suggestions:
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
                 "normalized autocorrelation of the CV at the lag (1 = does not relax within "
-                "the lag, here with all runs about their common mean, so a run that never "
-                "leaves its state counts as slow), and the timescale is "
-                "-lag/ln(autocorrelation) on all data; a timescale longer than the longest run "
-                "is only a lower bound. "
+                + ("the lag, within the states: each state's runs about that state's own mean, "
+                   "how slowly the CV moves inside the basins, which objective `both` ranks "
+                   "on; about one common mean every separating CV would look slow, since the "
+                   "lagged pairs never leave their state; the columns `heldout_autocorrelation` "
+                   "and `timescale_ps` of ranking.csv hold that common-mean measure), and the "
+                   "timescale is -lag/ln(autocorrelation) within the states on all data; "
+                   if self.objective == "both" else
+                   "the lag, here with all runs about their common mean, so a run that never "
+                   "leaves its state counts as slow; ranking.csv also holds the measure "
+                   "within the states, `heldout_autocorrelation_within_states`), and the "
+                   "timescale is -lag/ln(autocorrelation) on all data; ")
+                + "a timescale longer than the longest run is only a lower bound. "
                 "Intervals are 95 % block-bootstrap intervals; selection is the fraction of "
                 "bootstrap refits of the whole search in which the descriptor is kept in the "
                 "refit's counterpart of this CV (its ranked combination sharing the most "
@@ -283,11 +316,14 @@ class Suggestions:
                 "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]
         for r in self.ranking[:5]:
             out.append("| " + " | ".join(_top_cells(r)) + " |")
+        out += _range_lines(self.ranking[:5])
         for r in self.ranking:
             for w in r.get("warnings", []):
                 out += ["", f"**Warning** (rank {r['rank']}, {r['spec']}): {w}."]
         out += ["", "Files: `ranking.csv`, `ranking.json`, `scorecard.csv` (every descriptor), "
-                "`cv-NN.json` (one spec per suggestion; evaluate with `cvdesign apply`).",
+                "`cv-NN.json` (one spec per suggestion; evaluate with `cvdesign apply`)"
+                + (", `report-data.json` (what the report's figures draw)"
+                   if self.report_data is not None else "") + ".",
                 "", f"**Caution.** {CAUTION}", ""]
         return "\n".join(out)
 
@@ -295,7 +331,11 @@ class Suggestions:
         """Write every output into `out_dir`, all or nothing.
 
         Files are written into a temporary directory beside `out_dir`, which
-        is then renamed onto it, so an interrupted run leaves no partial output.
+        is then renamed onto it, so an interrupted run leaves no partial output:
+        ``ranking.csv``, ``ranking.json``, ``scorecard.csv``, ``summary.md``, the
+        ``cv-NN.json`` specs, ``states.csv`` with an exploration, and
+        ``report-data.json`` (:meth:`report_data_json`) when there is report data.
+        The HTML report is not written here (``cvdesign.report.write_report``).
 
         Parameters
         ----------
@@ -316,6 +356,9 @@ class Suggestions:
             files[r["spec"]] = dumps(spec)
         if self.exploration is not None:
             files["states.csv"] = self.exploration.states_csv()
+        data = self.report_data_json()
+        if data is not None:
+            files["report-data.json"] = data
         write_dir_atomically(out_dir, files)
         return out_dir
 
@@ -360,6 +403,15 @@ _RANKING_TABLE = (
     + _numbers("autocorrelation_all") + _interval("autocorrelation", "autocorrelation_ci")
     + _numbers("timescale_ps") + _interval("timescale", "timescale_ci_ps", "_ps")
     + [("timescale_resolved", "flag", _value("timescale_resolved"))]
+    + _numbers("heldout_autocorrelation_within_states")
+    + _interval("heldout_autocorrelation_within_states",
+                "heldout_autocorrelation_within_states_ci")
+    + _numbers("autocorrelation_within_states")
+    + _interval("autocorrelation_within_states", "autocorrelation_within_states_ci")
+    + _numbers("timescale_within_states_ps")
+    + _interval("timescale_within_states", "timescale_within_states_ci_ps", "_ps")
+    + [("timescale_within_states_resolved", "flag",
+        _value("timescale_within_states_resolved"))]
     + _numbers("integrated_time_ps") + _interval("integrated_time", "integrated_time_ci_ps", "_ps")
     + [("terms", "text", lambda r: "; ".join(_term_name(t) for t in r["terms"])),
        ("weights", "text", lambda r: " ".join(_fmt(t["weight"]) for t in r["terms"])),
@@ -457,21 +509,55 @@ def _heldout_scores(r):
         out.append(f"{r['objective']} score {r['heldout_score']:.3g} "
                    f"+/- {r['heldout_score_se']:.2g}")
     out.append(f"J {r['heldout_fisher_ratio']:.3g} +/- {r['heldout_fisher_ratio_se']:.2g}")
-    for key, name in (("heldout_overlap", "overlap"),
-                      ("heldout_autocorrelation", "autocorr.")):
-        if r.get(key) is not None:
-            out.append(f"{name} {r[key]:.3f}")
+    if r.get("heldout_overlap") is not None:
+        out.append(f"overlap {r['heldout_overlap']:.3f}")
+    rho = _shown_autocorrelation(r)
+    if rho is not None:
+        within = " (within states)" if r.get("objective") == "both" else ""
+        out.append(f"autocorr.{within} {rho:.3f}")
     return out
+
+
+def _shown_autocorrelation(r):
+    """The held-out autocorrelation the tables show: within the states for objective
+    ``both`` (what it ranks on), about the common mean otherwise."""
+    if r.get("objective") == "both":
+        return r.get("heldout_autocorrelation_within_states")
+    return r.get("heldout_autocorrelation")
 
 
 def _top_cells(r):
     """The cells of a ranking entry in the top table of summary.md and of the HTML."""
-    rho, overlap = r["heldout_autocorrelation"], r["heldout_overlap"]
+    rho, overlap = _shown_autocorrelation(r), r["heldout_overlap"]
     return [str(r["rank"]), r["spec"],
             f"{r['heldout_fisher_ratio']:.3g} ± {r['heldout_fisher_ratio_se']:.2g}",
             "" if overlap is None else format(overlap, ".3f"),
             "" if rho is None else format(rho, ".3f"),
             _timescale_text(r), "; ".join(_term_text(t) for t in r["terms"])]
+
+
+def _range_lines(ranking):
+    """The summary's table of the CVs' reachable and observed ranges (CV units)."""
+    rows = [r for r in ranking if "reachable_range" in r]
+    if not rows:
+        return []
+    out = ["", "### Ranges", "",
+           "Reachable: the values the CV can take, from its terms (cos and sin of a dihedral "
+           "are bounded, a distance has no largest value); observed: its smallest and largest "
+           f"value in the input frames. A state *at a bound* has its mean within "
+           f"{FOLD_SPREADS:g} of its standard deviations of a reachable end: a folded "
+           "coordinate (see the warnings).",
+           "", "| rank | spec | reachable | observed | states at a bound |",
+           "| ---: | --- | --- | --- | --- |"]
+    for r in rows:
+        reach, seen = r["reachable_range"], r["observed_range"]
+        ends = [("-inf" if reach["lower"] is None else f"{reach['lower']:.4g}"),
+                ("+inf" if reach["upper"] is None else f"{reach['upper']:.4g}")]
+        at = [f"`{name}` ({st['at_bound']})" for name, st in r["states"].items()
+              if st.get("at_bound")]
+        out.append(f"| {r['rank']} | {r['spec']} | [{ends[0]}, {ends[1]}] | "
+                   f"[{seen['lower']:.4g}, {seen['upper']:.4g}] | {', '.join(at) or 'none'} |")
+    return out
 
 
 def _per_term(values):
@@ -486,10 +572,12 @@ def _term_name(t):
 
 
 def _timescale_text(r):
-    ts = r.get("timescale_ps")
+    within = r.get("objective") == "both"
+    ts = r.get("timescale_within_states_ps" if within else "timescale_ps")
     if ts is None:
         return ""
-    if r.get("timescale_resolved") is False and r.get("longest_run_ps"):
+    resolved = r.get("timescale_within_states_resolved" if within else "timescale_resolved")
+    if resolved is False and r.get("longest_run_ps"):
         return f"> {r['longest_run_ps']:.3g} (not resolved by these runs)"
     return format(ts, ".3g")
 
@@ -537,8 +625,24 @@ def _rounded(obj, digits=12):
     return obj
 
 
-def dumps(obj):
-    """JSON text of `obj`: sorted keys, floats rounded to 12 significant digits, no NaN."""
+def dumps(obj, *, compact=False):
+    """JSON text of `obj`: sorted keys, floats rounded to 12 significant digits, no NaN.
+
+    Parameters
+    ----------
+    obj : JSON-ready object
+    compact : bool, default=False
+        No indentation and no spaces after separators (for long arrays of numbers,
+        such as ``report-data.json``); indented by two spaces otherwise.
+
+    Examples
+    --------
+    >>> dumps({"b": [0.1 + 0.2], "a": 1}, compact=True)
+    '{"a":1,"b":[0.3]}\\n'
+    """
+    if compact:
+        return json.dumps(_rounded(obj), separators=(",", ":"), sort_keys=True,
+                          allow_nan=False) + "\n"
     return json.dumps(_rounded(obj), indent=2, sort_keys=True, allow_nan=False) + "\n"
 
 

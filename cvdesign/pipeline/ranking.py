@@ -15,13 +15,13 @@ from ..score.redundancy import descriptor_correlation, redundancy_graph, represe
 from ..score.univariate import overlap_coefficient
 from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction,
                       greedy_search, heldout_score, rank_combinations, slow_direction,
-                      state_arrays)
+                      state_arrays, within_states)
 from ..stats.bootstrap import block_bootstrap, percentile_interval
 from ..stats.moments import merge_all
 
 __all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit", "Shortlist",
            "shortlist", "search", "fit_ranked", "kinetic_map_scale", "bootstrap_ranked",
-           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap"]
+           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap", "add_ranges"]
 
 #: Bootstrap refits of the search for selection frequencies, and the number of best
 #: shortlisted descriptors (besides the ranked terms) they may choose from.
@@ -171,29 +171,106 @@ def kinetic_map_scale(w, lagged, idx):
 
 
 def hints_for(entry, temperature, md_step_fs):
-    """(bias-parameter hints, None) for a ranked CV, or (None, why they were refused)."""
+    """(bias-parameter hints, None) for a ranked CV, or (None, why they were refused).
+
+    The grid and walls take the CV's reachable and observed ranges into account when
+    the entry has them (see :func:`add_ranges`)."""
     from ..bias.hints import suggest_hints
 
+    reach, seen = entry.get("reachable_range"), entry.get("observed_range")
     try:
         return suggest_hints(entry["states"], temperature=temperature, md_step_fs=md_step_fs,
                              autocorrelation_time_ps=entry.get("integrated_time_ps"),
+                             cv_range=None if reach is None else (reach["lower"], reach["upper"]),
+                             observed_range=None if seen is None else (seen["lower"],
+                                                                       seen["upper"]),
                              leave_out_frozen=True), None
     except ValueError as exc:
         return None, str(exc)
+
+
+def add_ranges(entry, pool, observed, states):
+    """Add a ranked CV's reachable and observed ranges, and flag states at a bound.
+
+    Parameters
+    ----------
+    entry : dict
+        From :func:`ranking_entry`; gains ``reachable_range`` and
+        ``observed_range`` (``{"lower", "upper"}``, CV units; a reachable bound
+        None where the CV is unbounded), per state ``min``, ``max`` and, for a
+        state whose mean lies within
+        :data:`~cvdesign.spec.ranges.FOLD_SPREADS` standard deviations of a
+        reachable bound, ``at_bound`` (``"lower"`` or ``"upper"``) with a
+        warning.
+    pool : Pool
+        The pool the terms' descriptors come from.
+    observed : (ndarray, ndarray)
+        Smallest and largest value of the CV in each state (CV units), in the
+        order of `states`.
+    states : list of str
+    """
+    from ..spec.ranges import reachable_range, states_at_bounds
+
+    by_id = {d.id: d for d in pool.descriptors}
+    descs = []
+    for did in dict.fromkeys(t["descriptor"] for t in entry["terms"]):
+        d = by_id[did]
+        descs.append({"id": d.id, "kind": d.kind,
+                      **({"groups": [list(g) for g in d.groups]} if d.groups else {})})
+    low, high = reachable_range(descs, entry["terms"])
+    entry["reachable_range"] = {"lower": low, "upper": high}
+    lows, highs = observed
+    for s, name in enumerate(states):
+        entry["states"][name]["min"] = float(lows[s])
+        entry["states"][name]["max"] = float(highs[s])
+    entry["observed_range"] = {"lower": float(np.min(lows)), "upper": float(np.max(highs))}
+    one_dihedral = len(descs) == 1 and descs[0]["kind"] == "dihedral"
+    folded = states_at_bounds(entry["states"], (low, high))
+    if not folded:
+        return
+    where = []
+    for name, side in folded.items():
+        st = entry["states"][name]
+        st["at_bound"] = side
+        gap = abs(st["mean"] - (low if side == "lower" else high))
+        where.append(f"{name!r} at the {side} bound (mean {st['mean']:.4g}, "
+                     + (f"{gap / st['std']:.2g} std from it)" if st["std"] > 0 else "on it)"))
+    todo = ("the dihedral itself, as a periodic CV (one identity term), has no fold; consider "
+            "it" if one_dihedral else
+            "check in a short biased run that the bias moves the state, or prefer a "
+            "suggestion whose states lie inside its range")
+    entry["warnings"].append(
+        f"state{'s' if len(where) > 1 else ''} {' and '.join(where)} of the reachable range "
+        f"[{_bound(low)}, {_bound(high)}]: a folded coordinate. Near a bound the CV changes "
+        "only to second order with its descriptors, so structures on either side of the fold "
+        "(e.g. a dihedral on either side of the angle where its cos or sin peaks) give the "
+        f"same value and the bias force along the CV fades there; {todo}")
+
+
+def _bound(x):
+    return "unbounded" if x is None else f"{x:.4g}"
 
 
 def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
     what = {"separate": "held-out Fisher ratio of the discriminant direction",
             "slow": "held-out VAMP-2 of the slowest singular function (squared correlation "
                     "across the lag)",
-            "both": "held-out J/(1+J) times the held-out autocorrelation at the lag"}[objective]
+            "both": "held-out J/(1+J) times (1 + rho)/2, rho the held-out autocorrelation at "
+                    "the lag within the states (each state's pairs about its own mean; "
+                    "negative rho counts as 0)"}[objective]
     disc = ("; the CV is the slowest TICA direction (reversible estimate) in kinetic-map "
             "scaling" if objective == "slow" else
             f"; {method.upper()} with shrinkage {shrinkage:g}, equal state weights")
+    basin = ("; the lagged pairs never span a state change, so these runs (each state's "
+             "runs staying in it) cannot measure how slowly the CV crosses between the "
+             "states: the slowness ranked on is that of the motion inside the states (about "
+             "one common mean, every separating CV would look slow), and it may at most halve "
+             "the separation score, so it orders CVs that separate about equally well"
+             if objective == "both" else "")
     return (f"search ({objective}): {n_combos} combinations from greedy forward searches "
             f"started at the {n_seeds} best single descriptors, scored by {what}; a term is "
             f"added only if it raises the score by more than {min_gain:.0%}; ranked with the "
-            f"one-standard-error rule{disc}")
+            f"one-standard-error rule{disc}{basin}")
 
 
 def _finite(x):
@@ -271,6 +348,7 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
     def stat(merged):
         states = [m[0] for m in merged]
         lag = merge_all([m[1] for m in merged]) if has_lag else None
+        within = within_states([m[1] for m in merged]) if has_lag else None
         out = []
         for p_idx, w_ref in p_fits:
             if search["objective"] == "slow":
@@ -286,9 +364,10 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
             out.extend(w.tolist())
             out.append(rayleigh_quotient(w, means, covs, priors))
             out.append(autocorrelation_along(w, lag, p_idx) if has_lag else np.nan)
+            out.append(autocorrelation_along(w, within, p_idx) if has_lag else np.nan)
         return np.array(out)
 
-    res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed)
+    res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed, label="bootstrap")
     out = {"combos": []}
     pos = 0
     for p_idx, _ in p_fits:
@@ -299,8 +378,11 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
             "fisher_ratio_ci": [_finite(res.low[pos + n]), _finite(res.high[pos + n])],
             "autocorrelation_ci": ([_finite(res.low[pos + n + 1]),
                                     _finite(res.high[pos + n + 1])] if has_lag else None),
+            "autocorrelation_within_states_ci": ([_finite(res.low[pos + n + 2]),
+                                                  _finite(res.high[pos + n + 2])]
+                                                 if has_lag else None),
         })
-        pos += n + 2
+        pos += n + 3
     # How often each term of each ranked CV is kept when the whole search is rerun on a
     # bootstrap resample of the folds: in each refit, the CV's counterpart is the refit's
     # ranked combination sharing the most descriptors with it (ties: the better ranked),
@@ -327,8 +409,8 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
 
         def select(merged):
             grid = [[merged[s * n_folds + k][0] for k in range(n_folds)] for s in range(n_states)]
-            lag = ([merge_all([merged[s * n_folds + k][1] for s in range(n_states)])
-                    for k in range(n_folds)] if has_lag else None)
+            lag = ([[merged[s * n_folds + k][1] for k in range(n_folds)]
+                    for s in range(n_states)] if has_lag else None)
             boot_fm = FoldMoments(grid, priors, lag)
             combos = greedy_search(boot_fm, cand_groups, max_terms=max_terms, n_seeds=n_seeds,
                                    min_gain=min_gain, **search)
@@ -353,23 +435,28 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
                                           method=search["method"],
                                           shrinkage=search["shrinkage"])[0])
                 held.append(overlap[ci])
-                held.append(_mean_finite([autocorrelation_along(fold_ws[ci][k], lag[k], p_idx)
-                                          for k in range(n_folds)]) if has_lag else np.nan)
+                for along in (boot_fm.lagged_test, boot_fm.within_test):
+                    held.append(_mean_finite([autocorrelation_along(fold_ws[ci][k], along(k),
+                                                                    p_idx)
+                                              for k in range(n_folds)]) if has_lag else np.nan)
             return np.concatenate([hit, held])
 
         n_sel = min(n_bootstrap, SELECTION_REPLICATES)
         n_hit = n_terms_all + len(fits)
-        sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1)
+        sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1,
+                              label="bootstrap refits")
         ok = np.isfinite(sel.replicates[:, :n_hit]).all(axis=1)
         freq = sel.replicates[ok, :n_hit].mean(axis=0) if ok.any() else np.full(n_hit, np.nan)
         low, high = percentile_interval(sel.replicates[ok, n_hit:])
         pos = 0
         for i, c in enumerate(out["combos"]):
-            for j, key in enumerate(("heldout_score_ci", "heldout_fisher_ratio_ci",
-                                     "heldout_overlap_ci", "heldout_autocorrelation_ci")):
-                c[key] = [_finite(low[4 * i + j]), _finite(high[4 * i + j])]
+            keys = ("heldout_score_ci", "heldout_fisher_ratio_ci", "heldout_overlap_ci",
+                    "heldout_autocorrelation_ci", "heldout_autocorrelation_within_states_ci")
+            for j, key in enumerate(keys):
+                c[key] = [_finite(low[len(keys) * i + j]), _finite(high[len(keys) * i + j])]
             if not has_lag:
                 c["heldout_autocorrelation_ci"] = None
+                c["heldout_autocorrelation_within_states_ci"] = None
             n = len(ranked_sets[i])
             c["selection"] = [_finite(v) for v in freq[pos:pos + n]]
             c["reproduced"] = _finite(freq[n_terms_all + i])
@@ -428,19 +515,23 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
     pooled = fm.pooled()
     objective, method = config.objective, config.method
     # held-out separation (arithmetic Fisher ratio) and autocorrelation of the fold directions
-    sep, rho = [], []
+    # (about one common mean, and within the states: each state's pairs about its own mean)
+    sep, rho, rho_in = [], [], []
     for k in range(fm.n_folds):
         means, covs = state_arrays(fm.test(k), idx)
         sep.append(min(rayleigh_quotient(fold_w[k], means, covs, priors), 1e12))
         if fm.lagged is not None:
             rho.append(autocorrelation_along(fold_w[k], fm.lagged_test(k), idx))
+            rho_in.append(autocorrelation_along(fold_w[k], fm.within_test(k), idx))
     sep = np.array(sep)
     mu, cov = state_arrays(pooled, idx)
     j_all = rayleigh_quotient(w, mu, cov, priors)
-    rho_all = timescale = None
+    rho_all = timescale = rho_in_all = timescale_in = None
     if fm.lagged is not None:
         rho_all = autocorrelation_along(w, fm.lagged_pooled(), idx)
         timescale = float(timescales_from_eigenvalues([rho_all], lag_ps)[0])
+        rho_in_all = autocorrelation_along(w, fm.within_pooled(), idx)
+        timescale_in = float(timescales_from_eigenvalues([rho_in_all], lag_ps)[0])
     terms, local = [], 0
     ci = boot["combos"][rank - 1] if boot is not None else None
     sel = ci.get("selection") if ci is not None else None
@@ -476,21 +567,29 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
         "heldout_autocorrelation": _finite(_mean_finite(rho)) if rho else None,
         "autocorrelation_all": _finite(rho_all) if rho_all is not None else None,
         "timescale_ps": _finite(timescale) if timescale is not None else None,
+        "heldout_autocorrelation_within_states": (_finite(_mean_finite(rho_in)) if rho_in
+                                                  else None),
+        "autocorrelation_within_states": (_finite(rho_in_all) if rho_in_all is not None
+                                          else None),
+        "timescale_within_states_ps": _finite(timescale_in) if timescale_in is not None else None,
         "states": state_stats, "terms": terms,
         "warnings": _rigid_cv_warnings(state_stats, j_all, sep),
     }
     if ci is not None:
         entry["fisher_ratio_ci"] = ci["fisher_ratio_ci"]
         entry["autocorrelation_ci"] = ci["autocorrelation_ci"]
+        entry["autocorrelation_within_states_ci"] = ci["autocorrelation_within_states_ci"]
         entry["bootstrap_refits_for_selection"] = boot.get("n_selection")
         entry["reproduced_in_refits"] = ci.get("reproduced")
         for key in ("heldout_score_ci", "heldout_fisher_ratio_ci", "heldout_overlap_ci",
-                    "heldout_autocorrelation_ci"):
+                    "heldout_autocorrelation_ci", "heldout_autocorrelation_within_states_ci"):
             if ci.get(key) is not None:
                 entry[key] = ci[key]
-        aci = ci.get("autocorrelation_ci")
-        if aci and lag_ps and None not in aci:
-            # the implied timescale is monotonic in the autocorrelation
-            entry["timescale_ci_ps"] = [
-                _finite(v) for v in timescales_from_eigenvalues(np.clip(aci, -1.0, 1.0), lag_ps)]
+        # the implied timescale is monotonic in the autocorrelation
+        for src, dst in (("autocorrelation_ci", "timescale_ci_ps"),
+                         ("autocorrelation_within_states_ci", "timescale_within_states_ci_ps")):
+            aci = ci.get(src)
+            if aci and lag_ps and None not in aci:
+                entry[dst] = [_finite(v) for v in
+                              timescales_from_eigenvalues(np.clip(aci, -1.0, 1.0), lag_ps)]
     return entry

@@ -56,6 +56,9 @@ def _segments_provenance(source):
                     counts[x] = counts.get(x, 0) + 1
             row.update({"labels": {"n_frames": len(labels), "frames_per_state": counts,
                                    "sha256": _labels_sha256(labels)}})
+        if seg.bias is not None:  # a biased run: its frames were reweighted
+            row["bias"] = {"file": seg.bias_path.name, "sha256": file_sha256(seg.bias_path),
+                           "column": seg.bias_column, "temperature_k": source.temperature}
         out.append(row)
     return out
 
@@ -106,6 +109,7 @@ def spec_document(source, pool, entry, params, checksums, seed):
                      "residues": residue_hashes(top)},
         "descriptors": descriptors, "terms": terms, "offset": 0.0, "periodic": False,
         "states": entry["states"], "scores": scores,
+        "reachable_range": entry["reachable_range"], "observed_range": entry["observed_range"],
         **({"hints": entry["hints"]} if entry.get("hints") else
            {"hints": {"hints_refused": entry["hints_refused"]}} if entry.get("hints_refused")
            else {}),

@@ -15,10 +15,13 @@
 6. **shortlist, search, fits** -- redundancy, greedy forward search scored on
    held-out folds, ranking, final directions (:mod:`.ranking`);
 7. **held-out pass** -- histograms of every feature (score card overlap), the
-   ranked CVs' held-out histograms, bootstrap blocks, the score card's block
-   sums;
-8. **bootstrap, ranking, specs** -- intervals, the ranked entries, one spec
-   per entry (:mod:`.specs`).
+   ranked CVs' held-out histograms and their smallest and largest value in
+   each state (the observed range), bootstrap blocks, the score card's block
+   sums, and what the report draws (:mod:`.report_data`: held-out histograms
+   in the CVs' units, traces, implied timescales);
+8. **bootstrap, ranking, specs** -- intervals, the ranked entries with their
+   reachable and observed ranges (:func:`.ranking.add_ranges`), one spec per
+   entry (:mod:`.specs`), the report data.
 
 Every pass runs on the pass engine (:mod:`cvdesign.passes`): tasks over leaves
 of frames, merged in a fixed tree, so the result is the same, byte for byte,
@@ -26,6 +29,7 @@ serially, on local processes or on a Dask cluster (``executor=``), whatever the
 task split or chunk size. Memory does not depend on trajectory length.
 """
 
+import logging
 import math
 from dataclasses import dataclass
 
@@ -33,18 +37,20 @@ import numpy as np
 
 from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
-from ..io.source import Source
+from ..io.source import Source, describe_selection, select_atoms
 from ..kinds import DEFAULT_KINDS
 from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
-                      LaggedPass, PoolFeaturizer, ScreeningPass, plan_tasks, reference_features,
-                      run_pass)
+                      LaggedPass, PoolFeaturizer, ProjectionRangePass, ScreeningPass, plan_tasks,
+                      reference_features, run_pass)
 from ..pool import build_pool
+from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs
-from .ranking import (bootstrap_ranked, card_interval_rows, fit_ranked, heldout_overlap,
-                      hints_for, ranking_entry, search, shortlist)
+from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
+                      heldout_overlap, hints_for, ranking_entry, search, shortlist)
+from .report_data import CVReportPass, cv_plans, report_document, timescale_lags, trace_stride
 from .screening import Screening, screen
 from .specs import describe_inputs, input_checksums, spec_document
 from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
@@ -52,6 +58,8 @@ from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
                      read_timesteps)
 
 __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file"]
+
+_log = logging.getLogger(__name__)
 
 #: Histogram bins of the score card and of the held-out CV histograms.
 N_BINS = 50
@@ -166,7 +174,11 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     Parameters
     ----------
     source : cvdesign.io.source.Source
-        Topology and trajectories with at least two states.
+        Topology and trajectories with at least two states. Biased runs (given
+        with their bias energies, ``Source(top, temperature=K).add(traj, state,
+        bias=FILE)``) are reweighted by ``exp(V/kT)`` in every statistic, and
+        their lagged pairs taken in rescaled time ``dt exp(V/kT)``; the notes
+        give each state's effective sample size (see :mod:`cvdesign.io.bias`).
     objective : {'separate', 'slow', 'both'}, default='separate'
         What the search maximizes on held-out folds: the separation of the
         states (Fisher ratio of the discriminant direction), the slowness of
@@ -233,6 +245,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     temperature : float, default=300.0
         Temperature in K of the biased run, for the bias-parameter hints stored
         in each spec (recompute them with ``cvdesign hints``); 1 to 5000 K.
+        (Biased inputs are reweighted at the source's own ``temperature``.)
     md_step_fs : float, default=2.0
         MD step in fs of the biased run, for the hints; 0.01 to 100 fs (see
         :func:`cvdesign.bias.hints.check_run_conditions`). When the hints of a
@@ -245,7 +258,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         (``'tcp://host:8786'``) a cluster (see :func:`cvdesign.parallel.as_executor`).
         The results are the same, byte for byte.
     progress : callable, default=None
-        Called with a message string at each stage.
+        Called with a message string at each stage. The same messages are
+        logged at INFO on the ``cvdesign.pipeline.suggest`` logger; progress
+        bars of the passes and the bootstrap: :func:`cvdesign.show_progress`.
 
     Returns
     -------
@@ -298,12 +313,16 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
 
 
 def _suggest(source, config, executor, progress):
-    say = progress or (lambda msg: None)
+    say = stage_messages(_log, progress)
     priors = np.full(source.n_states, 1.0 / source.n_states)
     steps = read_timesteps(source)
     lag_ps = config.lag_ps if config.lag_ps is not None else _default_lag(steps)
     lags = lag_frames(source, lag_ps, steps) if lag_ps is not None else None
 
+    selection = describe_selection(source.topology,
+                                   select_atoms(source.topology, config.selection),
+                                   config.selection)
+    say(selection)
     say("building the candidate pool")
     pool = build_pool(source, selection=config.selection, kinds=config.kinds,
                       cutoff=config.cutoff_nm, stride=config.prefilter_stride,
@@ -311,6 +330,10 @@ def _suggest(source, config, executor, progress):
     notes = list(pool.notes)
     base = plan_tasks(source)
     every = PoolFeaturizer(pool)
+    reweighting = source.reweighting()  # biased runs (None without)
+    if reweighting is not None and lags is not None:
+        lag_ps, lags, rescale_note = _rescaled_lag(reweighting, lags, lag_ps, config)
+        notes += rescale_note
 
     say(f"pool: {len(pool)} descriptors, {pool.n_features} features; screening pass")
     first = _screening_pass(source, base, every, steps, lags, executor)
@@ -323,6 +346,12 @@ def _suggest(source, config, executor, progress):
     lag_ps, lags, lag_note = _slowness_lag(source, config, seg_counts, steps, first, lag_ps,
                                            lags)
     notes += lag_note
+    if reweighting is not None:
+        rw_notes, _ = reweighting.describe(lags)
+        notes += rw_notes
+        say("reweighted biased runs; effective sample sizes (Kish): " + ", ".join(
+            f"{source.states[s]!r} {reweighting.ess[s]:.1f} of {reweighting.frames[s]} frames"
+            for s in reweighting.biased_states))
     screening = screen(pool, source.states, first, priors, objective=config.objective,
                        screen_size=config.screen_size, lagged=lags is not None)
     notes += screening.notes
@@ -331,7 +360,8 @@ def _suggest(source, config, executor, progress):
     notes.append(_folds_note(folds))
     say(f"statistics pass ({len(screening.screened)} descriptors screened)")
     fm, iat_desc, iat_note = _statistics_pass(source, base, pool, screening, folds, priors, steps,
-                                              lags, lag_ps, seg_counts, config, executor)
+                                              lags, lag_ps, seg_counts, config, executor,
+                                              reweighting)
     notes += iat_note
 
     short = shortlist(pool, screening, fm, priors, config, notes)
@@ -359,7 +389,8 @@ def _suggest(source, config, executor, progress):
                          "blocks); give more or longer runs")
 
     scorecard = _scorecard(pool, screening, short, held.overlap_desc, iat_desc, card_ci)
-    run_ps = [seg_counts[si].sum() * dt for si, dt in steps.items() if dt is not None]
+    run_ps = [_run_frames(source, reweighting, seg_counts, si) * dt for si, dt in steps.items()
+              if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
     params = config.parameters(lag_ps, folds)
     checksums = input_checksums(source, inputs)
@@ -369,6 +400,7 @@ def _suggest(source, config, executor, progress):
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
                               boot=boot)
         _add_times(entry, fit, screening, iat_desc, longest_run_ps)
+        add_ranges(entry, pool, held.observed[rank - 1], source.states)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
         if refused:
             entry["hints_refused"] = refused
@@ -376,10 +408,16 @@ def _suggest(source, config, executor, progress):
         ranking.append(entry)
         specs.append(spec_document(source, pool, entry, params, checksums,
                                    config.seed if config.n_bootstrap else None))
+    report_data = None
+    if held.report is not None:
+        report_data = report_document(held.report, held.report_plans, ranking, source=source,
+                                      states=list(source.states), steps=steps,
+                                      lags=held.report_lags,
+                                      temperature_k=config.temperature_k, lag_ps=lag_ps)
     return Suggestions(states=list(source.states), pool=pool, scorecard=scorecard,
                        ranking=ranking, specs=specs, notes=notes, inputs=inputs,
                        input_files=output_inputs(source), objective=config.objective,
-                       lag_ps=lag_ps)
+                       lag_ps=lag_ps, selection=selection, report_data=report_data)
 
 
 # --------------------------------------------------------------------------- passes
@@ -395,24 +433,31 @@ def _screening_pass(source, base, every, steps, lags, executor):
     shift = reference_features(plan, every) if lags is not None else None
     first = ScreeningPass(every, lags=lags, shift=shift)
     spacing = EvenSpacingPass(every, steps, checked_segments(source, steps))
-    result, _ = run_pass((first, spacing), source, executor=executor, tasks=plan)
+    result, _ = run_pass((first, spacing), source, executor=executor, tasks=plan,
+                         label="screening")
     return result
 
 
+def _lag_grid(steps, seg_counts):
+    """The integrated-time lag grid (frames) when every file has the same frame spacing
+    (known or not), else None."""
+    uniform = len({None if v is None else round(v, 9) for v in steps.values()}) == 1
+    return iat_lags(seg_counts) if uniform else None
+
+
 def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, lag_ps,
-                     seg_counts, config, executor):
+                     seg_counts, config, executor, reweighting=None):
     """Fold moments (full and lagged) and integrated times of the screened descriptors."""
     feats = PoolFeaturizer(pool.subset(screening.screened))
     shift = screening.center[screening.features]
     passes = [FoldMomentsPass(feats, folds)]
     if lags is not None:
         passes.append(LaggedPass(feats, lags, shift=shift, folds=folds, within_fold=True))
-    uniform = len({None if v is None else round(v, 9) for v in steps.values()}) == 1
-    grid = iat_lags(seg_counts) if uniform else None
+    grid = _lag_grid(steps, seg_counts)
     if grid is not None:
         passes.append(LagGridPass(feats, grid, shift=shift))
     results = run_pass(tuple(passes), source, executor=executor,
-                       tasks=_plan_for(base, feats.n_features, executor))
+                       tasks=_plan_for(base, feats.n_features, executor), label="statistics")
     fold_m = results[0]
     for s, per_fold in enumerate(fold_m):
         for k, m in enumerate(per_fold):
@@ -421,8 +466,9 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
                                  f"{k + 1} of {folds.n_folds}; give more frames or trajectories")
     fold_lag = None
     if lags is not None:
-        fold_lag = results[1].by_fold()
-        if config.objective in ("slow", "both") and any(m.count == 0 for m in fold_lag):
+        fold_lag = results[1].by_state_fold()  # [state][fold]: within-state slowness too
+        if config.objective in ("slow", "both") and any(
+                sum(row[k].count for row in fold_lag) == 0 for k in range(folds.n_folds)):
             raise InputError(f"a held-out fold has no lagged pairs at lag {lag_ps:g} ps; "
                              "choose a shorter --lag or give longer runs")
     fm = FoldMoments(fold_m, priors, fold_lag).standardized(
@@ -440,7 +486,8 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     n = feats.n_features
     rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-1]])
     tau, decayed, window = integrated_time(grid, rho_grid, dt, return_window=True)
-    tau_lo, tau_hi = integrated_time_interval(tau, window, int(seg_counts.sum()))
+    tau_lo, tau_hi = integrated_time_interval(tau, window,
+                                              _effective_frames(seg_counts, reweighting))
     for gi, i in enumerate(screening.screened):
         g = screening.groups[gi]
         j = int(g[np.argmax(tau[g])])
@@ -470,6 +517,15 @@ class HeldOut:
     card_desc : list of int
     card_feat : ndarray of int
     notes : list of str
+    observed : list of (ndarray, ndarray)
+        Per ranked CV, its smallest and largest value in each state (CV units,
+        shape (n_states,) each; +inf and -inf for a state without frames).
+    report : dict or None
+        What :class:`~cvdesign.pipeline.report_data.CVReportPass` gathered (None
+        without ranked CVs).
+    report_plans : list of CVPlan
+    report_lags : ndarray of int or None
+        Lags of the implied timescales, frames.
     """
 
     overlap: list
@@ -481,6 +537,10 @@ class HeldOut:
     card_desc: list
     card_feat: np.ndarray
     notes: list
+    observed: list
+    report: object = None
+    report_plans: list = None
+    report_lags: object = None
 
 
 class _CVHistograms:
@@ -493,7 +553,7 @@ class _CVHistograms:
         self.plans = plans
         self.n_bins = n_bins
 
-    def __call__(self, values, key):
+    def __call__(self, values, key, weights=None):
         k = key[1]
         h = np.zeros((len(self.plans), self.n_bins))
         for ci, (p_idx, fold_w, ranges) in enumerate(self.plans):
@@ -501,7 +561,7 @@ class _CVHistograms:
             v = values[:, p_idx] @ fold_w[k]
             b = np.clip(np.floor((v - lo) / (hi - lo) * self.n_bins).astype(np.intp), 0,
                         self.n_bins - 1)
-            h[ci] = np.bincount(b, minlength=self.n_bins)
+            h[ci] = np.bincount(b, weights=weights, minlength=self.n_bins)
         return {"h": h}
 
 
@@ -527,8 +587,9 @@ def _cv_plans(fits, fm, where):
 
 def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, iat_desc,
                   seg_counts, steps, first, config, executor):
-    """Histograms of every feature; held-out CV histograms and bootstrap blocks of the
-    shortlisted features; the score card's block sums -- one read of every feature."""
+    """Histograms of every feature; held-out CV histograms, bootstrap blocks and the ranked
+    CVs' per-state extremes from the shortlisted features; the score card's block sums --
+    one read of every feature."""
     screened = screening.screened
     short_set = set(screened[g] for g in short.members)
     local = []  # shortlisted features, as columns of the fold moments
@@ -550,7 +611,13 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
                        lags=lags if config.n_bootstrap else None, pairs_within_block=True,
                        sums=_CVHistograms(_cv_plans(fits, fm, where), N_BINS), columns=cols,
                        center=screening.center[cols], scale=screening.scale[cols])
-    passes = [blocks]
+    # the ranked CVs' smallest and largest values per state (their spec's CV: the full-data
+    # direction on the standardized features, as the spec's terms)
+    extremes = ProjectionRangePass(
+        every, [(np.array([where[int(i)] for i in fit.idx], dtype=np.intp), fit.w)
+                for fit in fits], columns=cols, center=screening.center[cols],
+        scale=screening.scale[cols])
+    passes = [blocks, extremes]
     notes, card, card_desc, card_feat = [], None, [], np.zeros(0, dtype=np.intp)
     if config.n_bootstrap:
         card, card_desc, card_feat, note = _card_pass(every, pool, screening, seg_counts,
@@ -563,9 +630,18 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     if rest.size:
         passes.append(HistogramPass(every, screening.low[rest], screening.high[rest],
                                     n_bins=N_BINS, columns=rest))
+    report, plans, report_lags = None, [], None
+    if fits:
+        report, plans, report_lags = _report_pass(every, base, screening, fits, fm, folds,
+                                                  lags, seg_counts, steps)
+        passes.append(report)
     results = run_pass(tuple(passes), source, executor=executor,
-                       tasks=_plan_for(base, every.n_features, executor))
-    block_sums, card_sums = results[0], results[1] if card is not None else None
+                       tasks=_plan_for(base, every.n_features, executor), label="held-out")
+    report_result = results[-1] if report is not None else None
+    if report is not None:
+        results = results[:-1]
+    block_sums, observed = results[0], results[1]
+    card_sums = results[2] if card is not None else None
     counts = np.zeros((source.n_states, pool.n_features, N_BINS))
     if rest.size:
         counts[:, rest] = results[-1].counts
@@ -587,7 +663,29 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
         f" ({n_blocks} blocks)"
     return HeldOut(overlap=overlap, overlap_desc=overlap_desc, blocks=block_sums, where=where,
                    block_desc=desc, card=card_sums,
-                   card_desc=card_desc, card_feat=card_feat, notes=notes)
+                   card_desc=card_desc, card_feat=card_feat, notes=notes,
+                   observed=[(observed[0, c], observed[1, c]) for c in range(len(fits))],
+                   report=report_result, report_plans=plans, report_lags=report_lags)
+
+
+def _report_pass(every, base, screening, fits, fm, folds, lags, seg_counts, steps):
+    """The report's pass over the ranked CVs' terms (see :mod:`.report_data`): the pass,
+    the CVs' plans, and the lags (frames) of their implied timescales."""
+    cols = sorted({int(screening.features[i]) for fit in fits for i in fit.idx})
+    pos = {c: j for j, c in enumerate(cols)}
+    local = {int(i): pos[int(screening.features[i])] for fit in fits for i in fit.idx}
+    plans = cv_plans(fits, fm, local)
+    known = next(iter(steps.values()), None) is not None
+    grid = _lag_grid(steps, seg_counts) if known else None
+    lag = None if lags is None else next(iter(lags.values()))
+    report_lags = timescale_lags(grid, lag)
+    shift = [float(np.mean([m.mean[fit.idx] @ fit.w for m in fm.pooled()])) for fit in fits]
+    strides = {lay.index: trace_stride(lay.hi - lay.lo) for lay in base.layouts}
+    cols = np.array(cols, dtype=np.intp)
+    report = CVReportPass(every, plans, folds, strides, report_lags, shift,
+                          columns=cols, center=screening.center[cols],
+                          scale=screening.scale[cols])
+    return report, plans, report_lags
 
 
 def _card_pass(every, pool, screening, seg_counts, iat_desc, steps, lags, first):
@@ -629,6 +727,40 @@ def _default_lag(steps):
     if len(known) == 1 and all(v is not None for v in steps.values()):
         return 10 * next(iter(steps.values()))
     return None
+
+
+def _rescaled_lag(reweighting, lags, lag_ps, config):
+    """(lag in ps, lags, notes) once lagged pairs in rescaled time are known to be possible:
+    a lag the user gave is refused when they are not, the default one dropped with a note."""
+    try:
+        reweighting.check_rescaled_time(lags)
+    except InputError as exc:
+        if config.lag_ps is not None:
+            raise
+        return None, None, [f"slowness not measured: {exc}"]
+    return lag_ps, lags, []
+
+
+def _run_frames(source, reweighting, seg_counts, si):
+    """Length of a segment in frame spacings: its frames, or its rescaled time when biased."""
+    if reweighting is None or si not in reweighting.clocks:
+        return seg_counts[si].sum()
+    seg = source.segments[si]
+    if seg.labels is not None:
+        return reweighting.rescaled_frames(si, 0, seg.labels.shape[0])
+    n = reweighting.weights[si].size
+    return reweighting.rescaled_frames(si, seg.start or 0, n if seg.stop is None else seg.stop)
+
+
+def _effective_frames(seg_counts, reweighting):
+    """Frames of all runs, with the effective sample size of each reweighted state in place
+    of its frames (for the asymptotic interval of the integrated times)."""
+    if reweighting is None:
+        return int(seg_counts.sum())
+    per_state = seg_counts.sum(axis=0).astype(np.float64)
+    for s in reweighting.biased_states:
+        per_state[s] = reweighting.ess[s]
+    return max(1, int(round(per_state.sum())))
 
 
 def _refuse_empty_states(source, seg_counts):
@@ -737,9 +869,10 @@ def _bootstrap_notes(boot, held, config):
 def _add_times(entry, fit, screening, iat_desc, longest_run_ps):
     """Whether the timescale is resolved by the runs, and the CV's within-run decorrelation
     time (bounded by its slowest term)."""
-    ts = entry["timescale_ps"]
-    entry["timescale_resolved"] = None if ts is None else bool(
-        longest_run_ps is not None and ts < longest_run_ps)
+    for key in ("timescale", "timescale_within_states"):
+        ts = entry.get(f"{key}_ps")
+        entry[f"{key}_resolved"] = None if ts is None else bool(
+            longest_run_ps is not None and ts < longest_run_ps)
     entry["longest_run_ps"] = longest_run_ps
     taus = [iat_desc[screening.screened[g]] for g in fit.gidx
             if screening.screened[g] in iat_desc]

@@ -26,6 +26,7 @@ import mdtraj as md
 import networkx as nx
 import numpy as np
 
+from .. import progress
 from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
 from ..geometry import group_centers, minimum_image
@@ -293,7 +294,8 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
             md.compute_distances(sub, local[lo:lo + block_pairs], periodic=periodic)
             for lo in range(0, len(local), block_pairs)], axis=1)
 
-    means, n_frames = _strided_state_means(source, atoms, values, len(local), stride)
+    means, n_frames = _strided_state_means(source, atoms, values, len(local), stride,
+                                           label="prefilter")
     keep = (means < cutoff).any(axis=0)
     note = (
         f"distances: kept {int(keep.sum())} of {pairs.shape[0]} pairs with a mean below "
@@ -304,53 +306,91 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
     return pairs[keep], note
 
 
-def _strided_state_means(source, atoms, values, n_values, stride):
+def _frames_read(source, step):
+    """Frames a read of every `step`-th frame of each segment yields (every frame with a
+    state for step 1): the total of the prefilter's progress bar."""
+    from ..io.source import file_frames
+
+    lengths, total = {}, 0
+    for seg in source.segments:
+        key = str(seg.path)
+        if key not in lengths:
+            lengths[key] = file_frames(seg.path)
+        n = lengths[key]
+        if seg.labels is not None:
+            total += sum(x is not None for x in seg.labels[:n])
+        else:
+            total += len(range(min(seg.start or 0, n),
+                               n if seg.stop is None else min(seg.stop, n), step))
+    return total
+
+
+def _strided_state_means(source, atoms, values, n_values, stride, label="prefilter"):
     """Per-state means of ``values(sub_trajectory, periodic) -> (n_frames, n_values)`` over
     every `stride`-th frame of each state in each file, reading only `atoms`.
 
     The stride counts each state's own frames within each file, so frame ranges
     and label arrays are subsampled on their own frames, not on the file's grid.
-    Returns (means of shape (n_states, n_values), number of frames used).
+    Frames of biased runs are weighted (:meth:`cvdesign.io.source.Source.reweighting`).
+    Returns (means of shape (n_states, n_values), number of frames used). The
+    frames read advance a progress bar labelled `label` (:mod:`cvdesign.progress`).
     """
     sums = np.zeros((source.n_states, n_values))
     counts = np.zeros(source.n_states)
+    frames_used = np.zeros(source.n_states, dtype=np.int64)
+    reweighting = source.reweighting()
+    weights = {} if reweighting is None else reweighting.weights
 
-    def add(traj, rows, s):
+    def add(traj, rows, s, w=None):
         sub = md.Trajectory(traj.xyz[rows], None)  # coordinates only: no topology copy
         periodic = traj.unitcell_vectors is not None
         if periodic:  # lengths and angles, as traj[rows] keeps them
             sub.unitcell_lengths = traj.unitcell_lengths[rows]
             sub.unitcell_angles = traj.unitcell_angles[rows]
-        counts[s] += sub.n_frames
-        sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
+        frames_used[s] += sub.n_frames
+        if w is None:
+            counts[s] += sub.n_frames
+            sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
+        else:
+            counts[s] += w.sum()
+            sums[s] += w @ values(sub, periodic).astype(np.float64)
 
-    if stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
-                          for seg in source.segments):
-        # every state's own frames are every stride-th frame of its files: read only those,
-        # summed in the groups of a full read (file frames [k c, (k + 1) c), c the chunk
-        # size), so the means are the same bytes as below
-        for chunk in source.iter_chunks(atom_indices=atoms, stride=stride):
-            group = chunk.frames // source.chunk_size
-            for g in np.unique(group):
-                add(chunk.trajectory, np.flatnonzero(group == g), int(chunk.states[0]))
-    else:
-        seen = {}
-        for chunk in source.iter_chunks(atom_indices=atoms):
-            for s in np.unique(chunk.states):
-                rows = np.flatnonzero(chunk.states == s)
-                key = (chunk.segment_index, int(s))
-                rank = seen.get(key, 0) + np.arange(rows.size)
-                seen[key] = seen.get(key, 0) + rows.size
-                rows = rows[rank % stride == 0]
-                if rows.size:
-                    add(chunk.trajectory, rows, int(s))
-    empty = [source.states[s] for s in range(source.n_states) if counts[s] == 0]
+    def weights_of(chunk, rows):
+        w = weights.get(chunk.segment_index)
+        return None if w is None else w[chunk.frames[rows]]
+
+    strided = stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
+                                 for seg in source.segments)
+    with progress.bar(label, lambda: _frames_read(source, stride if strided else 1)) as shown:
+        if strided:
+            # every state's own frames are every stride-th frame of its files: read only
+            # those, summed in the groups of a full read (file frames [k c, (k + 1) c), c the
+            # chunk size), so the means are the same bytes as below
+            for chunk in source.iter_chunks(atom_indices=atoms, stride=stride):
+                group = chunk.frames // source.chunk_size
+                for g in np.unique(group):
+                    rows = np.flatnonzero(group == g)
+                    add(chunk.trajectory, rows, int(chunk.states[0]), weights_of(chunk, rows))
+                shown.update(chunk.frames.size)
+        else:
+            seen = {}
+            for chunk in source.iter_chunks(atom_indices=atoms):
+                for s in np.unique(chunk.states):
+                    rows = np.flatnonzero(chunk.states == s)
+                    key = (chunk.segment_index, int(s))
+                    rank = seen.get(key, 0) + np.arange(rows.size)
+                    seen[key] = seen.get(key, 0) + rows.size
+                    rows = rows[rank % stride == 0]
+                    if rows.size:
+                        add(chunk.trajectory, rows, int(s), weights_of(chunk, rows))
+                shown.update(chunk.frames.size)
+    empty = [source.states[s] for s in range(source.n_states) if frames_used[s] == 0]
     if empty:
         raise InputError(
             f"state(s) {', '.join(map(repr, empty))} have no frames; "
             "check the files and frame ranges given for them"
         )
-    return sums / counts[:, None], int(counts.sum())
+    return sums / counts[:, None], int(frames_used.sum())
 
 
 def residue_groups(topology, atoms):
@@ -435,7 +475,8 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
             out[:, lo:lo + block] = np.sqrt(np.einsum("fpk,fpk->fp", delta, delta))
         return out
 
-    means, n_frames = _strided_state_means(source, atoms, values, len(pairs), stride)
+    means, n_frames = _strided_state_means(source, atoms, values, len(pairs), stride,
+                                           label="prefilter (residues)")
     keep = (means < cutoff).any(axis=0)
     note = (f"group pairs: kept {int(keep.sum())} of {len(pairs)} with a mean center "
             f"distance below {cutoff:g} nm in at least one state (every {stride}th frame, "

@@ -214,7 +214,10 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         The CV, for titles (e.g. ``"rank 1 (cv-01.json)"``).
     heldout : dict
         ``{"edges": [n_bins + 1 increasing floats, CV units],
-        "counts": {state: [n_bins counts]}}``.
+        "counts": {state: [n_bins counts]}}``, optionally ``"outside": {state:
+        [frames below the first edge, frames above the last]}``: those count in
+        each state's total (the density is per frame of the state) but are not
+        drawn, and the caption says how many there are.
     states_stats : dict
         ``{state: {"mean": float, "std": float}}`` in CV units (the spec's ``states``).
     states : sequence of str
@@ -228,8 +231,8 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
     -------
     Figure
         ``data``: ``edges``, per state ``density`` (1/CV units), ``profile_kj_mol``
-        (None where a bin is empty), ``means``, ``stds``, ``counts``, ``colors``;
-        ``kT_kj_mol``.
+        (None where a bin is empty), ``means``, ``stds``, ``counts`` (frames in the
+        bins), ``outside`` (frames beyond them), ``colors``; ``kT_kj_mol``.
 
     Examples
     --------
@@ -254,7 +257,8 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
     unknown = sorted(set(heldout["counts"]) - set(states))
     if unknown:
         raise ValueError(f"held-out counts for unknown state {unknown[0]!r}")
-    density, profile, counts = {}, {}, {}
+    density, profile, counts, outside = {}, {}, {}, {}
+    beyond = heldout.get("outside") or {}
     for s in states:
         if s not in heldout["counts"]:
             continue
@@ -262,10 +266,15 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         if c.shape != widths.shape or np.any(c < 0) or not np.all(np.isfinite(c)):
             raise ValueError(f"held-out counts of state {s!r} must be {widths.size} "
                              "non-negative numbers, one per bin")
+        out = np.asarray(beyond.get(s, [0, 0]), dtype=np.float64)
+        if out.shape != (2,) or np.any(out < 0) or not np.all(np.isfinite(out)):
+            raise ValueError(f"held-out frames outside the bins of state {s!r} must be two "
+                             "non-negative numbers (below, above)")
         counts[s] = int(c.sum())
+        outside[s] = int(out.sum())
         if c.sum() == 0:
             continue
-        d = c / (c.sum() * widths)
+        d = c / ((c.sum() + out.sum()) * widths)
         f = np.full_like(d, np.nan)
         f[c > 0] = -kt * np.log(d[c > 0])
         f -= np.nanmin(f)
@@ -298,7 +307,7 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         right.set_title(f"\u2212kT ln p per state at {temperature_k:g} K: unbiased-sampling\n"
                         "estimate, not the free energy of the transition")
         data = {"edges": edges.tolist(), "density": density, "profile_kj_mol": profile,
-                "means": means, "stds": stds, "counts": counts,
+                "means": means, "stds": stds, "counts": counts, "outside": outside,
                 "colors": {s: colors[s] for s in states}, "kT_kj_mol": kt,
                 "temperature_k": float(temperature_k)}
         alt = (f"{label}: histograms of the CV ({units}) on held-out frames, one per state, "
@@ -306,11 +315,15 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
                + "; ".join(f"{s}: {means[s]:.4g} \u00b1 {stds[s]:.3g}" for s in means)
                + f"), and -kT ln p of each state's histogram in kJ/mol at "
                f"{temperature_k:g} K.")
+        n_out = sum(outside.values())
         caption = (f"{label}: does the CV split the states on frames the fit never saw? "
                    "Left, each state's held-out histogram with its mean and spread from the "
                    f"spec; right, \u2212kT ln p per state (kJ/mol, {temperature_k:g} K), an "
                    "estimate from unbiased sampling within each state, not the free energy "
-                   "of the transition.")
+                   "of the transition."
+                   + (f" {n_out} held-out frame(s) beyond the drawn range are not shown ("
+                      + ", ".join(f"{s}: {v}" for s, v in outside.items() if v) + ")."
+                      if n_out else ""))
         return _finish(fig, name, caption, alt, data)
 
 
@@ -454,14 +467,14 @@ def term_weights(name, label, terms):
             _interval(left, yi, ci)
         left.axvline(0.0, color="black", lw=0.6)
         left.set_yticks(y, [_shorten(v) for v in labels])
-        left.set_xlabel("weight on the standardized term (CV units per term std)")
+        left.set_xlabel("weight on the standardized term\n(CV units per term std)")
         left.set_title("weights (black: 95 % bootstrap interval)")
         if all(f is None for f in freq):
             _no_data(right, "selection frequency not measured\n(no bootstrap refits)")
         else:
             right.barh(y, [0.0 if f is None else f for f in freq], color="#999999", height=0.6)
         right.set_xlim(0.0, 1.0)
-        right.set_xlabel("selection frequency (fraction of bootstrap refits)")
+        right.set_xlabel("selection frequency\n(fraction of bootstrap refits)")
         right.set_title("how often refits keep the term")
         data = {"labels": labels, "weights": weights, "weight_ci": cis,
                 "selection_frequency": freq}
@@ -602,8 +615,8 @@ def implied_timescales(curves, *, tica=None):
         Per ranked CV: ``(label, lag_ps, timescale_ps)``; None where not defined.
         At most :data:`TIMESCALE_CVS` are drawn.
     tica : dict or None
-        ``{"lag_ps": float, "timescales_ps": [float]}``: the slow coordinates of
-        ``--runs`` at their lag.
+        ``{"lag_ps": float, "timescales_ps": [float or None]}``: the slow
+        coordinates of ``--runs`` at their lag (None: not finite, not drawn).
 
     Returns
     -------
@@ -632,9 +645,10 @@ def implied_timescales(curves, *, tica=None):
             lags_seen += [float(lags.min()), float(lags.max())] if lags.size else []
         tica_data = None
         if tica is not None:
-            t = [float(v) for v in tica["timescales_ps"]]
-            ax.plot([tica["lag_ps"]] * len(t), t, linestyle="none", marker="x", color="black",
-                    ms=6, label=f"TICA slow coordinates at {tica['lag_ps']:g} ps")
+            t = [None if v is None else float(v) for v in tica["timescales_ps"]]
+            shown_t = [v for v in t if v is not None]
+            ax.plot([tica["lag_ps"]] * len(shown_t), shown_t, linestyle="none", marker="x",
+                    color="black", ms=6, label=f"TICA slow coordinates at {tica['lag_ps']:g} ps")
             tica_data = {"lag_ps": float(tica["lag_ps"]), "timescales_ps": t}
             lags_seen.append(float(tica["lag_ps"]))
         lo = min(lags_seen) if lags_seen else 1.0
@@ -674,8 +688,8 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):
         The states in order (for the colours).
     lag_ps : float
         The TICA lag, ps.
-    timescales_ps : sequence of float, optional
-        Implied timescales of the slow coordinates, ps.
+    timescales_ps : sequence of float or None, optional
+        Implied timescales of the slow coordinates, ps (None: not finite).
 
     Returns
     -------
@@ -701,7 +715,7 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):
     ts = list(timescales_ps or [])
 
     def axis_label(k):
-        t = f", timescale {ts[k]:.3g} ps" if len(ts) > k else ""
+        t = f", timescale {ts[k]:.3g} ps" if len(ts) > k and ts[k] is not None else ""
         return f"slow coordinate {k + 1} (dimensionless, kinetic map{t})"
 
     with _style():

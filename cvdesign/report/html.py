@@ -301,7 +301,11 @@ def _suggest(page, output, parsed):
     page.add("<p>Ranked CVs, best first. Held-out J is the Fisher ratio (between-state over "
              "within-state variance, dimensionless) on frames the fit never saw; overlap is "
              "the overlapping coefficient of the states' held-out histograms (0 = disjoint); "
-             "the autocorrelation is at the lag (1 = does not relax within it). Brackets: 95 % "
+             "the autocorrelation is at the lag (1 = does not relax within it"
+             + ("; within the states, each state's runs about its own mean, which objective "
+                "both ranks on" if ranking.get("objective") == "both" else
+                "; all runs about one common mean, so a run that stays in its state counts "
+                "as slow") + "). Brackets: 95 % "
              "bootstrap intervals; selection: how often bootstrap refits of the search keep "
              "the term.</p>")
     rows = []
@@ -311,16 +315,19 @@ def _suggest(page, output, parsed):
             + _e(_ci(t.get("weight_ci"), "+.3f"))
             + ("" if t.get("selection_frequency") is None
                else f", {t['selection_frequency']:.0%}") + "</span>" for t in r["terms"]))
-        ts = r.get("timescale_ps")
-        if ts is not None and r.get("timescale_resolved") is False and r.get("longest_run_ps"):
+        # objective 'both' ranks on the slowness within the states: show that one
+        within = "_within_states" if r.get("objective") == "both" else ""
+        ts = r.get(f"timescale{within}_ps")
+        if (ts is not None and r.get(f"timescale{within}_resolved") is False
+                and r.get("longest_run_ps")):
             ts_text = f"> {r['longest_run_ps']:.3g} (not resolved)"
         else:
-            ts_text = _with_ci(ts, r.get("timescale_ci_ps"))
+            ts_text = _with_ci(ts, r.get(f"timescale{within}_ci_ps"))
         rows.append([r["rank"], r["spec"], terms,
                      _with_ci(r["heldout_fisher_ratio"], r.get("heldout_fisher_ratio_ci")),
                      _with_ci(r["heldout_overlap"], r.get("heldout_overlap_ci")),
-                     _with_ci(r.get("heldout_autocorrelation"),
-                              r.get("heldout_autocorrelation_ci")),
+                     _with_ci(r.get(f"heldout_autocorrelation{within}"),
+                              r.get(f"heldout_autocorrelation{within}_ci")),
                      ts_text, _num(r.get("reproduced_in_refits"), ".0%")])
     page.add(_table(["rank", "spec", "descriptors (weight [95 % CI], selection)",
                      "held-out J", "overlap", "autocorr." +
@@ -415,10 +422,11 @@ def _suggest(page, output, parsed):
                            if lag is None else f"{data_name} holds none")
     if runs:
         page.section(2, "proposed-states", "Proposed states")
-        if tica is None:
+        if tica is None or tica.get("coords") is None:
             page.not_available("the frames in the two slowest TICA coordinates by proposed "
                                "state", f"{data_name} is missing" if data is None
-                               else f"{data_name} has no TICA coordinates")
+                               else f"{data_name} has no TICA coordinates" if tica is None
+                               else "TICA found a single coordinate")
         else:
             page.figure(fg.tica_states(tica["coords"], tica["state"], states=states,
                                        lag_ps=tica["lag_ps"],

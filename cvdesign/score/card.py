@@ -211,7 +211,8 @@ def card_intervals(card, center, priors, constant, feature_descriptor, n_desc, *
         vals = card_statistics(merged, center, priors, constant, card.has_lag)
         return _per_descriptor(vals, feature_descriptor, n_desc)
 
-    res = block_bootstrap(groups, stat, n_boot=n_boot, seed=seed, level=level)
+    res = block_bootstrap(groups, stat, n_boot=n_boot, seed=seed, level=level,
+                          label="bootstrap card")
     out = {}
     for j, name in enumerate(names):
         sl = slice(j * n_desc, (j + 1) * n_desc)

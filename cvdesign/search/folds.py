@@ -10,7 +10,8 @@ import numpy as np
 
 from ..stats.moments import merge_all
 
-__all__ = ["FoldMoments", "standardize_moments", "standardize_lagged", "state_arrays"]
+__all__ = ["FoldMoments", "standardize_moments", "standardize_lagged", "state_arrays",
+           "within_states"]
 
 
 class FoldMoments:
@@ -22,6 +23,11 @@ class FoldMoments:
         ``moments[state][fold]``; every state must have frames in every fold.
     priors : array-like of shape (n_states,), default=None
         State weights (equal when None).
+    lagged : list of LaggedMoments, default=None
+        Lagged pairs per fold, every state merged; alternatively
+        ``lagged[state][fold]`` (a list of lists), which also gives the
+        within-state lagged statistics (:meth:`within_test` and kin) that the
+        objective ``both`` needs.
 
     Examples
     --------
@@ -36,7 +42,6 @@ class FoldMoments:
 
     def __init__(self, moments, priors=None, lagged=None):
         self.moments = [list(m) for m in moments]
-        self.lagged = None if lagged is None else list(lagged)
         self.n_states = len(self.moments)
         self.n_folds = len(self.moments[0])
         self.n_features = self.moments[0][0].n_features
@@ -47,10 +52,46 @@ class FoldMoments:
             [merge_all(m for f, m in enumerate(ms) if f != k) for ms in self.moments]
             for k in range(self.n_folds)
         ]
+        self.lagged_states = None
+        if lagged is not None and lagged and isinstance(lagged[0], (list, tuple)):
+            self.lagged_states = [list(ls) for ls in lagged]
+            lagged = [merge_all(ls[k] for ls in self.lagged_states)
+                      for k in range(self.n_folds)]
+        self.lagged = None if lagged is None else list(lagged)
         if self.lagged is not None:
             self._lag_all = merge_all(self.lagged)
             self._lag_train = [merge_all(m for f, m in enumerate(self.lagged) if f != k)
                                for k in range(self.n_folds)]
+        if self.lagged_states is not None:
+            ls = self.lagged_states
+            self._within_test = [within_states(row[k] for row in ls)
+                                 for k in range(self.n_folds)]
+            self._within_train = [within_states(merge_all(m for f, m in enumerate(row) if f != k)
+                                                for row in ls) for k in range(self.n_folds)]
+            self._within_all = within_states(merge_all(row) for row in ls)
+
+    def _require_within(self):
+        if self.lagged_states is None:
+            raise ValueError("within-state lagged statistics need the lagged pairs per state "
+                             "and fold (FoldMoments(..., lagged=[[...] per fold] per state))")
+
+    def within_pooled(self):
+        """Lagged pairs of all folds, each state about its own mean (LaggedMoments).
+
+        See :func:`within_states`; ValueError without per-state lagged pairs.
+        """
+        self._require_within()
+        return self._within_all
+
+    def within_train(self, k):
+        """As :meth:`within_pooled`, every fold but `k`."""
+        self._require_within()
+        return self._within_train[k]
+
+    def within_test(self, k):
+        """As :meth:`within_pooled`, fold `k` alone."""
+        self._require_within()
+        return self._within_test[k]
 
     def lagged_pooled(self):
         """Lagged moments over all folds (LaggedMoments), or None."""
@@ -81,8 +122,12 @@ class FoldMoments:
         center = np.asarray(center, dtype=np.float64)
         scale = np.asarray(scale, dtype=np.float64)
         out = [[standardize_moments(m, center, scale) for m in ms] for ms in self.moments]
-        lagged = None if self.lagged is None else [
-            standardize_lagged(m, center, scale) for m in self.lagged]
+        if self.lagged_states is not None:
+            lagged = [[standardize_lagged(m, center, scale) for m in row]
+                      for row in self.lagged_states]
+        else:
+            lagged = None if self.lagged is None else [
+                standardize_lagged(m, center, scale) for m in self.lagged]
         return FoldMoments(out, self.priors, lagged)
 
 
@@ -114,3 +159,55 @@ def state_arrays(moments, idx):
     covs = np.array([m.scatter[idx[:, None], idx] / m.count if m.count else
                      np.full((idx.size, idx.size), np.nan) for m in moments])
     return means, covs
+
+
+def within_states(per_state):
+    """Lagged pairs of several states, each state's pairs about that state's own mean.
+
+    The sums of ``x - m_s`` and ``y - m_s``, with ``m_s`` the mean over both
+    ends of state ``s``'s pairs (the reversible mean), added over the states:
+    the reversible covariances of the result are the pair-count-weighted
+    within-state covariances ``C0`` and ``C(lag)``. Its autocorrelation along
+    a direction measures how slowly the CV moves *within* the states, free of
+    the offsets between their means -- about one common mean instead, runs
+    that never leave their state make every separating direction look slow.
+    Exact (sums re-centred, no data needed).
+
+    Parameters
+    ----------
+    per_state : iterable of LaggedMoments or None
+        One per state (empty moments or None: the state adds nothing).
+
+    Returns
+    -------
+    LaggedMoments
+        Shift zero, lag None; empty (count 0) when no state has pairs; None when
+        `per_state` holds nothing but None.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from cvdesign.stats.moments import LaggedMoments
+    >>> rng = np.random.default_rng(0)
+    >>> noise = [rng.normal(size=(2000, 1)) for _ in range(2)]  # fast within each state
+    >>> a = LaggedMoments.from_series(noise[0], lag=1)
+    >>> b = LaggedMoments.from_series(noise[1] + 10.0, lag=1)  # another state, far away
+    >>> pooled = a.merge(b).covariances()
+    >>> round(float(pooled[2][0, 0] / pooled[1][0, 0]), 2)  # looks slow about one mean
+    0.96
+    >>> within = within_states([a, b]).covariances()
+    >>> abs(float(within[2][0, 0] / within[1][0, 0])) < 0.05  # is fast
+    True
+    """
+    per_state = [m for m in per_state if m is not None]
+    if not per_state:
+        return None
+    out = type(per_state[0])(per_state[0].n_features)
+    for m in per_state:
+        if not m.count > 0:
+            continue
+        c = m.reshifted(m.covariances(reversible=True)[0])
+        c.shift = np.zeros_like(c.shift)
+        c.lag = None
+        out = out.merge(c)
+    return out

@@ -113,9 +113,20 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
     * ``slow``: cross-validated VAMP-2 score of the slowest singular function,
       minus the constant part (Wu and Noé 2020): the squared correlation, in
       [0, 1], across the lag of the slowest linear function of the features;
-    * ``both``: ``J / (1 + J) * max(rho, 0)``, the held-out Fisher ratio mapped
-      to [0, 1) times the held-out autocorrelation at the lag of the same
-      (discriminant) direction.
+    * ``both``: ``J / (1 + J) * (1 + max(rho, 0)) / 2``: the held-out Fisher
+      ratio mapped to [0, 1), weighted by the held-out autocorrelation
+      ``rho`` at the lag of the same (discriminant) direction *within the
+      states* (each state's lagged pairs about that state's own mean,
+      :meth:`FoldMoments.within_test`), mapped to [1/2, 1]. Our design, for
+      basin-only data (the lagged pairs never span a state change): about one
+      common mean, runs that stay in their states make every separating
+      direction look slow (``rho`` near ``J / (1 + J)``), so slowness would
+      rank separation twice; within the states, ``rho`` tells a CV whose
+      motion inside the basins is slow (coupled to slow modes) from one
+      carried by fast noise, but not how slowly it crosses between the states,
+      which such data cannot show. So it may at most halve the separation
+      score: it orders CVs that separate about equally well and cannot put a
+      poorly separating CV above a clean one.
 
     Returns
     -------
@@ -140,9 +151,23 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
         if objective == "separate":
             out[k] = j
         else:
-            rho = autocorrelation_along(w, fold_moments.lagged_test(k), idx)
-            out[k] = j / (1.0 + j) * (max(rho, 0.0) if np.isfinite(rho) else 0.0)
+            rho = autocorrelation_along(w, fold_moments.within_test(k), idx)
+            out[k] = j / (1.0 + j) * both_weight(rho)
     return out
+
+
+def both_weight(rho):
+    """The factor of objective ``both`` for a within-state autocorrelation `rho`.
+
+    ``(1 + max(rho, 0)) / 2``, in [1/2, 1]; 1/2 when `rho` is not measured
+    (NaN). See :func:`fold_scores`.
+
+    Examples
+    --------
+    >>> both_weight(0.8), both_weight(-0.2), both_weight(float("nan"))
+    (0.9, 0.5, 0.5)
+    """
+    return 0.5 * (1.0 + (max(float(rho), 0.0) if np.isfinite(rho) else 0.0))
 
 
 def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shrinkage=1e-3):

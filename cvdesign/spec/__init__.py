@@ -20,7 +20,8 @@ the one the spec was made for. Every field is described, with its unit, in
 Modules: :mod:`.document` (the :class:`Spec` class, :func:`load_spec`, the
 evaluator), :mod:`.validate` (JSON parsing with limits, schema and semantic
 checks), :mod:`.identity` (atom identities, topology fingerprint, residue
-hashes).
+hashes), :mod:`.ranges` (the values the CV can reach, from its terms, and the
+states that sit at a bound of it).
 """
 
 from .document import Spec, load_spec

@@ -21,6 +21,7 @@ from ..io.atomic import atomic_write_text
 from ..kinds import ATOM_KINDS, GROUP_KINDS
 from .identity import (_check_topology_arg, _describe, _describe_residue, _identity_of,
                        residue_hashes, topology_fingerprint)
+from .ranges import reachable_range, states_at_bounds
 from .validate import SPEC_FORMAT, SPEC_VERSION, _parse_json, _validated
 
 __all__ = ["Spec", "load_spec"]
@@ -166,7 +167,15 @@ class Spec:
         1). Must be None when `periodic` is False.
     states : dict, optional
         ``{state name: {"mean": float, "std": float, "n_frames": int}}``, the
-        CV's distribution per state in the input data.
+        CV's distribution per state in the input data, optionally with
+        ``"min"`` and ``"max"`` (the CV's extremes over the state's frames).
+        A state of a non-periodic CV whose mean lies within
+        :data:`~cvdesign.spec.ranges.FOLD_SPREADS` standard deviations of a
+        bound of :attr:`reachable_range` gets ``"at_bound": "lower"`` or
+        ``"upper"`` (unless given).
+    observed_range : (float, float), optional
+        Smallest and largest value of the CV over the input frames of all
+        states, CV units; stored as ``observed_range`` when given.
     scores : dict, optional
         Free-form quality scores: numbers, lists of numbers, or objects of those.
     provenance : dict, optional
@@ -188,6 +197,12 @@ class Spec:
     See Also
     --------
     load_spec : read and check a spec file.
+
+    Notes
+    -----
+    The reachable range of the CV (``reachable_range``: the values it can
+    take, from its terms; :func:`cvdesign.spec.ranges.reachable_range`) is
+    computed and stored; ``docs/spec-v1.md`` says what "reachable" means.
 
     Examples
     --------
@@ -224,6 +239,7 @@ class Spec:
         caution="",
         hints=None,
         restraints=None,
+        observed_range=None,
     ):
         mdtop = None
         if isinstance(topology, (md.Topology, md.Trajectory)):
@@ -268,6 +284,19 @@ class Spec:
                                  for k, r in enumerate(restraints)]
         if period is not None:
             doc["period"] = period
+        if observed_range is not None:
+            try:
+                low, high = observed_range
+            except (TypeError, ValueError):
+                raise SpecError(f"observed_range must be a pair (lower, upper) in CV units; got "
+                                f"{observed_range!r}", "$.observed_range") from None
+            doc["observed_range"] = {"lower": low, "upper": high}
+        doc = _validated(doc)  # checked first, so that the range is computed on valid terms
+        low, high = reachable_range(doc["descriptors"], doc["terms"], doc["offset"])
+        doc["reachable_range"] = {"lower": low, "upper": high}
+        if not doc["periodic"]:
+            for name, side in states_at_bounds(doc["states"], (low, high)).items():
+                doc["states"][name].setdefault("at_bound", side)
         self._doc = _validated(doc)
         if mdtop is not None:
             for k, desc, section in self._atom_users():
@@ -457,8 +486,37 @@ class Spec:
 
     @property
     def states(self):
-        """dict : per-state ``{"mean", "std", "n_frames"}`` of the CV (a copy)."""
+        """dict : per-state ``{"mean", "std", "n_frames"}`` of the CV, with ``"min"``,
+        ``"max"`` and ``"at_bound"`` when recorded (a copy)."""
         return copy.deepcopy(self._doc["states"])
+
+    @property
+    def reachable_range(self):
+        """(float or None, float or None) : the values the CV can reach, CV units.
+
+        ``(lower, upper)``, None on a side where the CV is unbounded: the
+        stored ``reachable_range``, or for a spec written without one, the
+        same computed from the terms (:func:`cvdesign.spec.ranges.reachable_range`:
+        a sound interval, exact when the descriptors can take their extreme
+        values together). A periodic CV gets the interval of length
+        :attr:`period` its values run over.
+
+        Examples
+        --------
+        >>> Spec.from_json(_EXAMPLE).reachable_range  # 2 (d - 0.3) / 0.1 for d >= 0 nm
+        (-6.0, None)
+        """
+        stored = self._doc.get("reachable_range")
+        if stored is not None:
+            return stored["lower"], stored["upper"]
+        return reachable_range(self._doc["descriptors"], self._doc["terms"], self._doc["offset"])
+
+    @property
+    def observed_range(self):
+        """(float, float) or None : smallest and largest CV value over the input frames
+        of all states (CV units), None when the spec does not record it."""
+        stored = self._doc.get("observed_range")
+        return None if stored is None else (stored["lower"], stored["upper"])
 
     @property
     def scores(self):

@@ -23,13 +23,16 @@ from ..bias.funnel import SHAPE_KEYS
 from ..constants import TWO_PI
 from ..errors import SpecError
 from ..kinds import ATOM_KINDS, KINDS
+from .ranges import reachable_range
 
 __all__ = ["SPEC_FORMAT", "SPEC_VERSION", "MAX_DEPTH", "spec_schema"]
 
 
 SPEC_FORMAT = "cvdesign-spec"
 SPEC_VERSION = 1
-# Relative tolerance of the check period == 2 pi |weight| / scale.
+# Relative tolerance of the check period == 2 pi |weight| / scale, and of the check of a
+# stored reachable range against the one computed from the terms (relative to the size of
+# the terms, sum |weight / scale| (|center| + 1) + |offset|).
 _PERIOD_RTOL = 1e-9
 # Integers in a spec must fit in 64 bits (many JSON readers hold no more).
 _MAX_INT = 2**63 - 1
@@ -448,6 +451,39 @@ def _semantic_check(doc):
             )
 
 
+def _check_ranges(doc):
+    """A stored reachable range equals the one computed from the terms; observed ranges
+    have lower <= upper."""
+    stored = doc.get("reachable_range")
+    if stored is not None:
+        computed = reachable_range(doc["descriptors"], doc["terms"], doc["offset"])
+        size = abs(doc["offset"]) + sum(abs(t["weight"] / t["scale"]) * (abs(t["center"]) + 1.0)
+                                        for t in doc["terms"])
+        for side, value in zip(("lower", "upper"), computed):
+            given = stored[side]
+            same = (given is None and value is None) or (
+                given is not None and value is not None
+                and abs(given - value) <= _PERIOD_RTOL * max(size, abs(value)))
+            if not same:
+                what = ("null (the CV is unbounded on this side)" if value is None
+                        else repr(value))
+                raise SpecError(
+                    f"must be {what} for these terms, the {side} end of the values the CV can "
+                    f"reach (see cvdesign.spec.ranges.reachable_range); got {given!r}. The "
+                    "terms or the range were edited: recompute the range, or remove "
+                    "reachable_range",
+                    f"$.reachable_range.{side}",
+                )
+    observed = doc.get("observed_range")
+    if observed is not None and not observed["lower"] <= observed["upper"]:
+        raise SpecError(f"lower ({observed['lower']!r}) must not exceed upper "
+                        f"({observed['upper']!r})", "$.observed_range")
+    for name, state in doc["states"].items():
+        if "min" in state and "max" in state and not state["min"] <= state["max"]:
+            raise SpecError(f"min ({state['min']!r}) must not exceed max ({state['max']!r})",
+                            _json_path(("states", name)))
+
+
 #: Relative tolerance on the length of a funnel axis (a unit vector).
 _AXIS_RTOL = 1e-6
 #: The numbers of a funnel restraint entry besides its axis and reference pocket.
@@ -561,6 +597,12 @@ def _normalize(doc):
         state["mean"] = float(state["mean"])
         state["std"] = float(state["std"])
         state["n_frames"] = int(state["n_frames"])
+        for key in ("min", "max"):
+            if key in state:
+                state[key] = float(state[key])
+    for key in ("reachable_range", "observed_range"):
+        if key in doc:
+            doc[key] = {side: None if v is None else float(v) for side, v in doc[key].items()}
     return doc
 
 
@@ -589,4 +631,6 @@ def _validated(document):
     _schema_check(doc)
     _semantic_check(doc)
     _check_restraints(doc)
-    return _normalize(doc)
+    doc = _normalize(doc)
+    _check_ranges(doc)
+    return doc

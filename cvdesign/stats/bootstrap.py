@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .. import progress
 from .moments import LaggedMoments, Moments, merge_all
 
 __all__ = ["ArraySum", "merge_blocks", "block_bootstrap", "BootstrapResult",
@@ -233,7 +234,7 @@ class BootstrapResult:
     level: float
 
 
-def block_bootstrap(groups, statistic, *, n_boot=200, seed=0, level=0.95):
+def block_bootstrap(groups, statistic, *, n_boot=200, seed=0, level=0.95, label="bootstrap"):
     """Resample blocks within each group, merge, and recompute `statistic`.
 
     Parameters
@@ -252,6 +253,9 @@ def block_bootstrap(groups, statistic, *, n_boot=200, seed=0, level=0.95):
         Seed of the resampling (numpy ``default_rng``); same seed, same result.
     level : float, default=0.95
         Confidence level of the percentile interval.
+    label : str, default='bootstrap'
+        Shown beside the bar of the replicates when a progress display is
+        active (:mod:`cvdesign.progress`); never changes the result.
 
     Returns
     -------
@@ -278,26 +282,30 @@ def block_bootstrap(groups, statistic, *, n_boot=200, seed=0, level=0.95):
     reps = np.full((n_boot,) + estimate.shape, np.nan)
     draws = [[rng.integers(0, len(g), len(g)) for g in groups] for _ in range(n_boot)]
     fast = _fast_groups(groups)
-    if fast is None:
-        for r in range(n_boot):
-            merged = [merge_blocks([g[i] for i in d]) for g, d in zip(groups, draws[r])]
-            _replicate(reps, r, statistic, merged)
-    else:
-        # block counts of every replicate, then one matrix product per field for a batch
-        # of replicates (bounded memory) instead of one product per replicate
-        counts = [np.array([np.bincount(draws[r][gi], minlength=len(g)) for r in range(n_boot)],
-                           dtype=np.float64) for gi, g in enumerate(groups)]
-        width = sum(raw.n_values() for _, raws in fast for raw in raws if raw is not None)
-        batch = max(1, min(n_boot, _BATCH_VALUES // max(1, width)))
-        for lo in range(0, n_boot, batch):
-            hi = min(n_boot, lo + batch)
-            per_group = []
-            for (is_tuple, raws), c in zip(fast, counts):
-                parts = [[None] * (hi - lo) if raw is None else raw.combine_many(c[lo:hi])
-                         for raw in raws]
-                per_group.append([tuple(p) if is_tuple else p[0] for p in zip(*parts)])
-            for r in range(lo, hi):
-                _replicate(reps, r, statistic, [g[r - lo] for g in per_group])
+    with progress.bar(label, n_boot, unit="replicates") as shown:
+        if fast is None:
+            for r in range(n_boot):
+                merged = [merge_blocks([g[i] for i in d]) for g, d in zip(groups, draws[r])]
+                _replicate(reps, r, statistic, merged)
+                shown.update(1)
+        else:
+            # block counts of every replicate, then one matrix product per field for a batch
+            # of replicates (bounded memory) instead of one product per replicate
+            counts = [np.array([np.bincount(draws[r][gi], minlength=len(g))
+                                for r in range(n_boot)], dtype=np.float64)
+                      for gi, g in enumerate(groups)]
+            width = sum(raw.n_values() for _, raws in fast for raw in raws if raw is not None)
+            batch = max(1, min(n_boot, _BATCH_VALUES // max(1, width)))
+            for lo in range(0, n_boot, batch):
+                hi = min(n_boot, lo + batch)
+                per_group = []
+                for (is_tuple, raws), c in zip(fast, counts):
+                    parts = [[None] * (hi - lo) if raw is None else raw.combine_many(c[lo:hi])
+                             for raw in raws]
+                    per_group.append([tuple(p) if is_tuple else p[0] for p in zip(*parts)])
+                for r in range(lo, hi):
+                    _replicate(reps, r, statistic, [g[r - lo] for g in per_group])
+                    shown.update(1)
     low, high = percentile_interval(reps, level)
     return BootstrapResult(estimate, reps, low, high, level)
 

@@ -4,7 +4,7 @@ Run by hand (not collected by pytest; nothing is asserted, it prints)::
 
     python tests/benchmarks/bench_targets.py [--cache DIR] [--only NAMES]
         [--sizes 1000,10000,100000,1000000] [--heavy-sizes 1000,100000] [--repeat 3]
-        [--out figures.json]
+        [--threads 1,2] [--out figures.json]
 
 Data: adenylate kinase (214 residues, 3341 atoms) from the MDAnalysis test suite (package
 ``mdanalysistests``; the DIMS closed-to-open transition of Beckstein et al., J. Mol. Biol.
@@ -281,7 +281,7 @@ def child_featurize(args):
 def child_stats(args):
     """Per-leaf statistics of the passes over an in-memory feature matrix, against one
     ``X.T @ X`` or one column sum of the same matrix."""
-    from cvdesign.passes import (LEAF_FRAMES, CardPass, FoldMomentsPass, HistogramPass,
+    from cvdesign.passes import (CardPass, FoldMomentsPass, HistogramPass,
                                  LagGridPass, LaggedPass, ScreeningPass, TreeReducer,
                                  leaf_frames_for)
     from cvdesign.passes.engine import Leaf, one_blas_thread
@@ -421,7 +421,7 @@ def section_memory(b):
         # state takes about half an hour)
         for boot in (o.n_bootstrap, 0) if kind == "ca" else (o.n_bootstrap,):
             what = "default bootstrap" if boot else "no bootstrap"
-            for threads in (1, 2):
+            for threads in b.opts.threads:
                 peaks = {}
                 for n in sizes:
                     dataset(o.cache, kind, n)
@@ -440,7 +440,7 @@ def section_featurize(b):
     o = b.opts
     dataset(o.cache, "ca", o.main_size)
     dataset(o.cache, "heavy", o.heavy_feat_size)
-    for threads in (1, 2):
+    for threads in b.opts.threads:
         r = b.child("featurize", threads, repeat=1, frames=o.main_size,
                     heavy_frames=o.heavy_feat_size)
         for key, v in r.items():
@@ -449,7 +449,7 @@ def section_featurize(b):
 
 
 def section_stats(b):
-    for threads in (1, 2):
+    for threads in b.opts.threads:
         r = b.child("stats", threads, repeat=1, stats_frames=b.opts.stats_frames)
         for key, v in r.items():
             base = v[f"base{threads}"]
@@ -473,7 +473,7 @@ def _pairs_file(b):
 def section_floor(b):
     o = b.opts
     pairs = _pairs_file(b)
-    for threads in (1, 2):
+    for threads in b.opts.threads:
         ours = b.child("suggest", threads, kind="ca", frames=o.main_size, bootstrap=0)
         floor = b.child("floor", threads, kind="ca", frames=o.main_size, pairs=pairs)
         b.figure(f"suggest without bootstrap / floor, {o.main_size} frames", threads,
@@ -483,7 +483,7 @@ def section_floor(b):
 
 def section_bootstrap(b):
     o = b.opts
-    for threads in (1, 2):
+    for threads in b.opts.threads:
         none = b.child("suggest", threads, kind="ca", frames=o.main_size, bootstrap=0)
         boot = b.child("suggest", threads, kind="ca", frames=o.main_size,
                        bootstrap=o.n_bootstrap)
@@ -494,7 +494,7 @@ def section_bootstrap(b):
 
 def section_workers(b):
     o = b.opts
-    for threads in (1, 2):
+    for threads in b.opts.threads:
         one = b.child("suggest", threads, kind="ca", frames=o.main_size, bootstrap=0)
         two = b.child("suggest", threads, kind="ca", frames=o.main_size, bootstrap=0,
                       workers=2)
@@ -509,7 +509,7 @@ def section_workers(b):
 def section_user(b):
     o = b.opts
     pairs = _pairs_file(b)
-    for threads in (1, 2):
+    for threads in b.opts.threads:
         user = b.child("user", threads, kind="ca", frames=o.main_size, pairs=pairs)
         for boot in (0, o.n_bootstrap):
             ours = b.child("suggest", threads, kind="ca", frames=o.main_size, bootstrap=boot)
@@ -549,9 +549,12 @@ def main():
                     help="rows of the in-memory matrix of the statistics case")
     ap.add_argument("--n-bootstrap", type=int, default=200, help="the default bootstrap")
     ap.add_argument("--repeat", type=int, default=3, help="runs per timed case (minimum kept)")
+    ap.add_argument("--threads", default="1,2",
+                    help="BLAS thread counts to run each case with (e.g. 1 for memory only)")
     ap.add_argument("--out", default=None, help="also write the figures to this JSON file")
     opts = ap.parse_args()
     opts.sizes, opts.heavy_sizes = _ints(opts.sizes), _ints(opts.heavy_sizes)
+    opts.threads = _ints(opts.threads)
     blas = [(i["internal_api"], i.get("version"), i["num_threads"]) for i in threadpool_info()
             if i["user_api"] == "blas"]
     cpu = next((ln.split(":", 1)[1].strip() for ln in open("/proc/cpuinfo")

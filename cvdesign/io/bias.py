@@ -1,0 +1,564 @@
+"""Biased runs as input: bias-energy files, frame weights and rescaled time.
+
+A trajectory from a biased simulation may come with the bias energy of every
+frame (kJ/mol) and the temperature of the run (K). Its frames then stand for
+the unbiased ensemble with the weight ``w_t = exp(V_t / kT)``, and its slow
+motion is measured on the rescaled clock ``dt'_t = dt exp(V_t / kT)``
+(McCarty and Parrinello, J. Chem. Phys. 147, 204109, 2017), which recovers the
+unbiased kinetics only when the bias vanishes at the barriers between states
+(Voter, J. Chem. Phys. 106, 4665, 1997; elsewhere it is an approximation).
+
+**The bias-energy file** (our own format): UTF-8 text, one row per frame of the
+trajectory file, frame 0 first (the whole file, also when only a frame range
+of it is used). Blank lines and lines starting with ``#`` are skipped. A row is
+one number, or several columns separated by commas (when the first row has a
+comma) or by white space. An optional first row of column names (any row that
+is not all numbers) allows choosing a column by name; by default the file's
+only column is read, or the column named ``bias``. Every value is the bias
+energy of that frame in kJ/mol: the energy the bias *added* to the system's
+potential (positive where the bias pushes the system away, as a history of
+deposited kernels does). For a bias that changed during the run, give the
+energy to reweight with (for instance the bias minus its time-dependent
+offset), not the raw sum of kernels.
+
+**Weights.** Within each state, the weights are normalized over *all* the
+state's frames, in every file, with one common constant: ``w_t = N_s
+exp(a_t - c_s) / sum_{u in s} exp(a_u - c_s)`` with ``a_t = V_t / kT``,
+``c_s`` the largest ``a`` of the state (so no exponential overflows) and
+``N_s`` its number of frames. Each state's weights thus average 1, its
+weighted frame count stays its number of frames, and statistics pooled over
+states weigh them as unbiased input does (by frames). A constant per file
+would be wrong: it would change the relative weight of the files of a state.
+The states' populations are not affected by this choice: they follow from
+``Z_s = sum_{t in s} exp(a_t)``, computed in log space
+(:meth:`Reweighting.populations`). A state may not mix biased and unbiased
+files (their weights have no common reference).
+
+**Effective sample size.** Kish's ``(sum w)^2 / sum w^2`` (Kish, *Survey
+Sampling*, Wiley, 1965), per state; a warning names a state whose effective
+size is below :data:`LOW_ESS_FRACTION` of its frames or below
+:data:`LOW_ESS_FRAMES` frames.
+
+**Rescaled time.** The *clock* of a file counts rescaled time in units of the
+frame spacing: ``clock[f] = sum_{u < f} exp(V_u / kT)`` (the bias of the frame
+that starts each interval; absolute, unshifted, so a bias that vanishes at the
+barrier keeps real time there). A lagged pair at a lag of ``L`` frame spacings
+pairs frame ``t`` with the first frame ``u`` whose clock reaches ``clock[t] +
+L``. The clock is a function of the file's bias values alone, so pairs do not
+depend on how frames are split into chunks or tasks.
+"""
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..constants import BOLTZMANN_KJ_MOL_K
+from ..errors import InputError
+
+__all__ = ["read_bias_file", "is_number", "kish_ess", "Reweighting", "reweight", "LOW_ESS_FRACTION",
+           "LOW_ESS_FRAMES", "MAX_RESCALE_EXPONENT", "BIAS_COLUMN"]
+
+#: A state's Kish effective sample size below this fraction of its frames gets a warning
+#: (common practice: reweighted averages from a few percent of the frames are noisy).
+LOW_ESS_FRACTION = 0.1
+#: ... or below this many frames (common practice).
+LOW_ESS_FRAMES = 100
+#: Largest ``V / kT`` for which the rescaled clock ``exp(V / kT)`` is formed (float64
+#: overflows near 709).
+MAX_RESCALE_EXPONENT = 600.0
+#: Name of the column read by default from a bias-energy file with several columns.
+BIAS_COLUMN = "bias"
+
+
+def is_number(text):
+    """True when `text` reads as a float (``float(text)`` succeeds: also 'nan', 'inf').
+
+    Examples
+    --------
+    >>> is_number(" 1e-3 "), is_number("bias")
+    (True, False)
+    """
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _bias_rows(path):
+    """(line number, cells) of the non-blank, non-comment lines of a bias-energy file."""
+    name = str(path)
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"bias-energy file {name!r} does not exist; check the path")
+    if not path.is_file():
+        raise InputError(f"bias-energy file {name!r} is not a regular file")
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"bias-energy file {name!r} is not UTF-8 text (byte {exc.start} "
+                         "cannot be decoded); give a text file with one bias energy (kJ/mol) "
+                         "per frame") from None
+    rows = []
+    comma = None
+    for n, line in enumerate(text.splitlines(), 1):
+        t = line.strip()
+        if not t or t.startswith("#"):
+            continue
+        if comma is None:
+            comma = "," in t
+        rows.append((n, [c.strip() for c in t.split(",")] if comma else t.split()))
+    if not rows:
+        raise InputError(f"bias-energy file {name!r} holds no values (only blank or comment "
+                         "lines); give one bias energy (kJ/mol) per frame")
+    return rows
+
+
+def _bias_column(name, header, width, column):
+    """0-based index of the column holding the bias energies."""
+    lower = None if header is None else [h.lower() for h in header]
+    shown = "" if header is None else " (" + ", ".join(repr(h) for h in header) + ")"
+    if column is not None:
+        text = str(column).strip()
+        if text.isdigit():
+            k = int(text) - 1
+            if not 0 <= k < width:
+                raise InputError(f"bias column {text} of bias-energy file {name!r} does not "
+                                 f"exist: the file has {width} column{'s' if width > 1 else ''}"
+                                 f"{shown}, counted from 1")
+            return k
+        if lower is None:
+            raise InputError(f"bias column {text!r} names a column, but bias-energy file "
+                             f"{name!r} has no header line; give the column number, counted "
+                             "from 1")
+        if text.lower() not in lower:
+            raise InputError(f"bias-energy file {name!r} has no column named {text!r}; its "
+                             f"columns are{shown}")
+        return lower.index(text.lower())
+    if width == 1:
+        return 0
+    if lower is not None and BIAS_COLUMN in lower:
+        return lower.index(BIAS_COLUMN)
+    return None
+
+
+def read_bias_file(path, column=None):
+    """Bias energies (kJ/mol) of every frame, from a bias-energy file.
+
+    The format is described in :mod:`cvdesign.io.bias`: one row per frame,
+    optional header row, ``#`` comments, columns separated by commas or white
+    space; the only column, the column named ``bias``, or `column`.
+
+    Parameters
+    ----------
+    path : path-like
+        The file.
+    column : int or str, default=None
+        Column with the energies: a number counted from 1, or a header name
+        (case does not matter). None: the only column, or the one named
+        ``bias``.
+
+    Returns
+    -------
+    ndarray of shape (n_frames,), float64
+        Bias energy of each frame, kJ/mol.
+
+    Raises
+    ------
+    InputError
+        Naming the file (and line) for a missing or non-text file, no values,
+        an unknown column, a row with another number of columns than the
+        first, a value that is not a number or not finite.
+
+    Examples
+    --------
+    >>> import os, tempfile
+    >>> with tempfile.TemporaryDirectory() as tmp:
+    ...     path = os.path.join(tmp, "run.bias")
+    ...     with open(path, "w") as fh:
+    ...         _ = fh.write("# time_ps, bias\\ntime_ps, bias\\n0.0, 0.5\\n0.2, 1.25\\n")
+    ...     read_bias_file(path).tolist()
+    [0.5, 1.25]
+    """
+    name = str(path)
+    rows = _bias_rows(path)
+    header = None
+    if not all(is_number(c) for c in rows[0][1]):
+        header, rows = rows[0][1], rows[1:]
+        if not rows:
+            raise InputError(f"bias-energy file {name!r} holds a header line and no values; "
+                             "give one bias energy (kJ/mol) per frame")
+    width = len(header) if header is not None else len(rows[0][1])
+    k = _bias_column(name, header, width, column)
+    if k is None:
+        what = ("no header line naming a 'bias' column" if header is None else
+                "none named 'bias' (" + ", ".join(repr(h) for h in header) + ")")
+        raise InputError(f"bias-energy file {name!r} has {width} columns and {what}; say which "
+                         "column holds the bias energies (--bias-column N|NAME, bias_column= "
+                         "in Python)")
+    values = np.empty(len(rows))
+    for r, (n, cells) in enumerate(rows):
+        if len(cells) != width:
+            raise InputError(f"bias-energy file {name!r}, line {n}: {len(cells)} column"
+                             f"{'s' if len(cells) != 1 else ''}, but the "
+                             f"{'header' if header is not None else 'first line'} has {width}; "
+                             "give the same columns on every line")
+        try:
+            v = float(cells[k])
+        except ValueError:
+            raise InputError(f"bias-energy file {name!r}, line {n}, column {k + 1}: "
+                             f"{cells[k]!r} is not a number") from None
+        if not math.isfinite(v):
+            raise InputError(f"bias-energy file {name!r}, line {n}: bias energy {cells[k]!r} "
+                             "is not a finite number; the run's bias must be finite at every "
+                             "frame")
+        values[r] = v
+    return values
+
+
+def kish_ess(weights):
+    """Kish effective sample size ``(sum w)^2 / sum w^2`` of non-negative weights.
+
+    Equal weights give the number of frames; one dominant weight gives about 1
+    (Kish, *Survey Sampling*, Wiley, 1965).
+
+    Parameters
+    ----------
+    weights : array-like of shape (n,)
+        Non-negative weights (any scale).
+
+    Returns
+    -------
+    float
+        Between 1 and ``n`` (0 for no weight at all), frames.
+
+    Examples
+    --------
+    >>> kish_ess([1.0, 1.0, 1.0, 1.0]), kish_ess([1.0, 0.0, 0.0, 0.0])
+    (4.0, 1.0)
+    """
+    w = np.asarray(weights, dtype=np.float64).reshape(-1)
+    if w.size == 0 or not w.max() > 0:
+        return 0.0
+    w = w / w.max()  # scale-free; no overflow of the squares
+    return float(w.sum() ** 2 / (w @ w))
+
+
+@dataclass(frozen=True, eq=False)
+class Reweighting:
+    """Frame weights and rescaled clocks of the biased segments of a source.
+
+    Built by :func:`reweight` (through :meth:`cvdesign.io.source.Source.reweighting`).
+
+    Attributes
+    ----------
+    temperature_k : float
+        Temperature of the biased runs, K.
+    states : list of str
+    weights : dict of int to ndarray
+        Per biased segment (index in the source), the weight of every frame of
+        its file (0 for frames outside the segment's states); within each state
+        the weights average 1 over all its frames.
+    clocks : dict of int to ndarray
+        Per biased segment, the rescaled clock at every frame of its file and
+        at its end (``n_file + 1`` values), in frame spacings (``clock[f] =
+        sum_{u<f} exp(V_u / kT)``); ``inf`` after an overflow (see
+        :meth:`check_rescaled_time`).
+    frames : ndarray of shape (n_states,), int64
+        Frames of each state in biased segments (0: an unbiased state).
+    ess : ndarray of shape (n_states,)
+        Kish effective sample size of each state's frames (NaN: unbiased).
+    log_z : ndarray of shape (n_states,)
+        ``log sum_{t in s} exp(V_t / kT)`` over each state's biased frames
+        (``-inf``: unbiased).
+    max_exponent : dict of int to (float, int)
+        Per biased segment, the largest ``V / kT`` of its frames and the frame.
+    multi_state : bool
+        True when some biased file holds frames of two or more states (a run
+        that crossed between states), so that populations mean something.
+    paths : dict of int to (str, str)
+        Per biased segment, (trajectory file, bias-energy file).
+    """
+
+    temperature_k: float
+    states: list
+    weights: dict
+    clocks: dict
+    frames: np.ndarray
+    ess: np.ndarray
+    log_z: np.ndarray
+    max_exponent: dict
+    multi_state: bool
+    paths: dict = field(default_factory=dict)
+
+    @property
+    def kt(self):
+        """float : kT in kJ/mol."""
+        return BOLTZMANN_KJ_MOL_K * self.temperature_k
+
+    @property
+    def biased_states(self):
+        """list of int : states whose frames are reweighted."""
+        return [s for s in range(len(self.states)) if self.frames[s] > 0]
+
+    def populations(self):
+        """Reweighted population of each state over the biased frames, or None.
+
+        ``p_s = Z_s / sum_r Z_r`` with ``Z_s = sum_{t in s} exp(V_t / kT)``
+        over the frames of the biased runs (states without biased frames: NaN).
+        Meaningful when the biased runs sample one ensemble (one bias, or bias
+        energies with a common reference) and visit the states; None when no
+        biased file holds frames of two states (:attr:`multi_state`).
+
+        Returns
+        -------
+        ndarray of shape (n_states,) or None
+        """
+        if not self.multi_state:
+            return None
+        ok = np.isfinite(self.log_z)
+        top = self.log_z[ok].max()
+        out = np.full(len(self.states), np.nan)
+        z = np.exp(self.log_z[ok] - top)
+        out[ok] = z / z.sum()
+        return out
+
+    def rescaled_frames(self, segment, lo, hi):
+        """Rescaled length of frames ``[lo, hi)`` of a biased segment, in frame spacings."""
+        clock = self.clocks[segment]
+        lo, hi = max(0, int(lo)), min(int(hi), clock.size - 1)
+        return float(clock[hi] - clock[lo]) if hi > lo else 0.0
+
+    def check_rescaled_time(self, lags):
+        """Refuse lagged pairs in rescaled time that float64 cannot form.
+
+        Parameters
+        ----------
+        lags : dict of int to int
+            Lag of each segment, in frame spacings (rescaled time for biased
+            segments).
+
+        Raises
+        ------
+        InputError
+            When a biased run's ``exp(V / kT)`` overflows, or its clock is too
+            coarse (float64) to resolve the lag, naming the files.
+        """
+        for si, clock in self.clocks.items():
+            lag = lags.get(si)
+            if not lag:
+                continue
+            traj, bias = self.paths.get(si, ("?", "?"))
+            top, frame = self.max_exponent[si]
+            if top > MAX_RESCALE_EXPONENT or not np.isfinite(clock[-1]):
+                raise InputError(
+                    f"bias-energy file {bias!r} reaches {top * self.kt:.6g} kJ/mol "
+                    f"({top:.6g} kT at {self.temperature_k:g} K) at frame {frame}: the rescaled "
+                    f"time step exp(V/kT) overflows, so slowness cannot be measured on "
+                    f"{traj!r}; check the bias energies and --temperature, or leave out --lag")
+            if np.spacing(clock[-1]) > 1e-3 * lag:
+                raise InputError(
+                    f"the rescaled time of {traj!r} (bias file {bias!r}) spans "
+                    f"{clock[-1]:.3g} frame spacings, too long for float64 to resolve a lag of "
+                    f"{lag} frame spacings; its bias ({top:.3g} kT at most) is too large for "
+                    "rescaled time: leave out --lag or give a longer lag")
+
+    def coarse_fraction(self, lags):
+        """Share of the biased frames' weight in rescaled steps longer than half the lag.
+
+        A frame whose rescaled step ``exp(V / kT)`` (frame spacings) exceeds
+        half the lag is paired at a rescaled lag off by more than a quarter of
+        it (:meth:`cvdesign.passes.SegmentLayout.partners`).
+
+        Parameters
+        ----------
+        lags : dict of int to int
+            Lag of each segment, frame spacings.
+
+        Returns
+        -------
+        float
+            In [0, 1]; 0 without lags.
+        """
+        coarse = total = 0.0
+        for si, clock in self.clocks.items():
+            lag = lags.get(si)
+            if not lag:
+                continue
+            w = self.weights[si]
+            with np.errstate(invalid="ignore"):
+                steps = np.diff(clock)
+            coarse += float(w[steps > 0.5 * lag].sum())
+            total += float(w.sum())
+        return coarse / total if total > 0 else 0.0
+
+    def describe(self, lags=None):
+        """Notes for the summary: what was reweighted, the effective sample sizes, warnings.
+
+        Parameters
+        ----------
+        lags : dict of int to int, default=None
+            Lag of each segment in frame spacings, when slowness is measured
+            (then the rescaled-time caveat is added, and a warning when the
+            lag is short for the rescaled steps).
+
+        Returns
+        -------
+        notes : list of str
+        warnings : list of str
+            The notes that are warnings (also in `notes`, prefixed ``warning:``).
+        """
+        notes, warnings = [], []
+        n_files = len({p for p, _ in self.paths.values()})
+        notes.append(
+            f"reweighting: {n_files} biased run{'s' if n_files != 1 else ''} with bias "
+            f"energies per frame, at {self.temperature_k:g} K; every statistic weights frame "
+            "t by exp(V_t/kT), normalized over all the frames of its state")
+        for s in self.biased_states:
+            ess, n = float(self.ess[s]), int(self.frames[s])
+            notes.append(f"effective sample size (Kish) of state {self.states[s]!r}: "
+                         f"{ess:.1f} of {n} frames ({ess / n:.1%})")
+            if ess < LOW_ESS_FRACTION * n or ess < LOW_ESS_FRAMES:
+                w = (f"state {self.states[s]!r} has a small effective sample size after "
+                     f"reweighting ({ess:.1f} of {n} frames): a few frames of high bias carry "
+                     "most of the weight, so its statistics are noisy; give longer biased runs "
+                     "or runs with a smaller bias in that state")
+                warnings.append(w)
+                notes.append("warning: " + w)
+        pops = self.populations()
+        if pops is not None:
+            kt = self.kt
+            ok = np.isfinite(pops)
+            ref = int(np.argmax(np.where(ok, pops, -1.0)))
+            parts = [f"{self.states[s]!r} {pops[s]:.3g}" + (
+                "" if s == ref else f" (dF = {-kt * math.log(pops[s] / pops[ref]):.3g} kJ/mol)")
+                for s in range(len(self.states)) if ok[s] and pops[s] > 0]
+            notes.append("reweighted state populations over the biased runs' frames: "
+                         + ", ".join(parts) + f"; free energies relative to "
+                         f"{self.states[ref]!r} (no interval; meaningful when the biased "
+                         "runs sample one ensemble and cross between the states)")
+        if lags is not None:
+            coarse = self.coarse_fraction(lags)
+            if coarse > 0.1:
+                w = (f"the lag is short for rescaled time: {coarse:.0%} of the biased runs' "
+                     "weight is in frames whose rescaled step dt exp(V/kT) exceeds half the "
+                     "lag, so their pairs are taken at a rescaled lag off by a quarter of it or "
+                     "more; choose a longer --lag, or save frames more often")
+                warnings.append(w)
+                notes.append("warning: " + w)
+            notes.append(
+                "rescaled time: lagged pairs of biased runs are taken at the lag in rescaled "
+                "time dt' = dt exp(V/kT) (McCarty and Parrinello, J. Chem. Phys. 2017), so "
+                "autocorrelations, slowness and timescales (and the run lengths they are "
+                "compared with) estimate the unbiased dynamics; "
+                "this is exact only when the bias vanishes at the barriers between states "
+                "(Voter, J. Chem. Phys. 1997), otherwise the timescales are approximate; "
+                "integrated autocorrelation times (which size the bootstrap blocks) stay in "
+                "the runs' own simulation time")
+        return notes, warnings
+
+
+def _state_codes(segment, n_file, index):
+    """State code of every frame of a segment's file (-1: no state)."""
+    if segment.labels is not None:
+        return np.array([-1 if x is None else index[x] for x in segment.labels], dtype=np.int64)
+    codes = np.full(n_file, -1, dtype=np.int64)
+    lo = min(n_file, segment.start or 0)
+    hi = n_file if segment.stop is None else min(n_file, segment.stop)
+    codes[lo:hi] = index[segment.state]
+    return codes
+
+
+def reweight(segments, states, temperature_k):
+    """Frame weights, effective sample sizes and rescaled clocks of biased segments.
+
+    Parameters
+    ----------
+    segments : sequence of cvdesign.io.source.Segment
+        Segments; those with ``bias`` (one energy per frame of the file,
+        kJ/mol) are reweighted.
+    states : sequence of str
+        State names (the codes of the segments' states).
+    temperature_k : float
+        Temperature of the biased runs, K.
+
+    Returns
+    -------
+    Reweighting
+
+    Raises
+    ------
+    InputError
+        When a state has frames in biased and in unbiased files.
+
+    Examples
+    --------
+    >>> from pathlib import Path
+    >>> from cvdesign.io.source import Segment
+    >>> kt = BOLTZMANN_KJ_MOL_K * 300.0
+    >>> seg = Segment(Path("run.xtc"), "a", bias=np.log([1.0, 1.0, 2.0]) * kt)
+    >>> rw = reweight([seg], ["a"], 300.0)
+    >>> rw.weights[0].tolist(), round(float(rw.ess[0]), 3)  # weights 1:1:2, averaging 1
+    ([0.75, 0.75, 1.5], 2.667)
+    """
+    index = {s: i for i, s in enumerate(states)}
+    n_states = len(states)
+    kt = BOLTZMANN_KJ_MOL_K * float(temperature_k)
+    biased = [si for si, seg in enumerate(segments) if seg.bias is not None]
+    plain = {}
+    exps, codes = {}, {}
+    for si, seg in enumerate(segments):
+        if seg.bias is None:
+            n = None if seg.labels is None else seg.labels.shape[0]
+            present = ({index[x] for x in seg.labels if x is not None} if n is not None
+                       else {index[seg.state]})
+            for s in present:
+                plain.setdefault(s, str(seg.path))
+            continue
+        a = np.asarray(seg.bias, dtype=np.float64) / kt
+        exps[si], codes[si] = a, _state_codes(seg, a.size, index)
+    for si in biased:
+        for s in np.unique(codes[si][codes[si] >= 0]):
+            if int(s) in plain:
+                seg = segments[si]
+                raise InputError(
+                    f"state {states[int(s)]!r} has frames from the biased run {str(seg.path)!r} "
+                    f"(bias-energy file {str(seg.bias_path)!r}) and from {plain[int(s)]!r}, "
+                    "which has no bias energies: reweighting needs a common reference for "
+                    "all the frames of a state; give a bias-energy file for every run of the "
+                    "state, or for none")
+    # per state: the largest exponent c_s, then sums of r = exp(a - c_s) over all its files
+    top = np.full(n_states, -np.inf)
+    for si in biased:
+        sel = codes[si] >= 0
+        np.maximum.at(top, codes[si][sel], exps[si][sel])
+    total, squares = np.zeros(n_states), np.zeros(n_states)
+    frames = np.zeros(n_states, dtype=np.int64)
+    raw = {}
+    for si in biased:
+        c, a = codes[si], exps[si]
+        raw[si] = np.where(c >= 0, np.exp(np.where(c >= 0, a - top[c], -np.inf)), 0.0)
+        for s in np.unique(c[c >= 0]):
+            rs = raw[si][c == s]
+            total[s] += rs.sum()
+            squares[s] += rs @ rs
+            frames[s] += rs.size
+    weights, clocks, max_exp, paths = {}, {}, {}, {}
+    scale = np.divide(frames, total, out=np.zeros(n_states), where=total > 0)
+    for si in biased:
+        c, a = codes[si], exps[si]
+        weights[si] = raw[si] * scale[c]  # (frames without a state: raw is 0)
+        k = int(np.argmax(np.where(c >= 0, a, -np.inf))) if (c >= 0).any() else int(np.argmax(a))
+        max_exp[si] = (float(a[k]), k)
+        with np.errstate(over="ignore"):
+            clocks[si] = np.concatenate([[0.0], np.cumsum(np.exp(a))])
+        paths[si] = (str(segments[si].path), str(segments[si].bias_path))
+    with np.errstate(divide="ignore"):
+        log_z = np.where(frames > 0, top + np.log(np.where(total > 0, total, 1.0)), -np.inf)
+    ess = np.where(frames > 0, np.divide(total ** 2, squares, out=np.zeros(n_states),
+                                         where=squares > 0), np.nan)
+    multi = any(np.unique(codes[si][codes[si] >= 0]).size > 1 for si in biased)
+    return Reweighting(float(temperature_k), list(states), weights, clocks, frames, ess, log_z,
+                       max_exp, multi, paths)

@@ -1,0 +1,441 @@
+"""Refining a CV from a biased run: basin labels, crossings, and how two CVs differ.
+
+The refinement loop is: bias along CV 1, feed the biased run back, get CV 2.
+This module holds its middle and last steps.
+
+- :func:`label_basins` labels the frames of one biased run by the basins it
+  visits, from any per-frame coordinate (the CV of the run, or another one): a
+  frame inside a basin core gets that state's name, a frame between cores gets
+  None (a transition frame). The labels go straight to
+  ``Source.add_labelled(path, labels, bias=...)``; :class:`BasinVisits` also
+  reports, per state, the frames and their Kish effective sample size under the
+  run's bias, and the number of *crossings* (core-to-core transitions), the
+  quantity by which two CVs' biased runs are compared.
+- :func:`basins_from_spec` turns a spec's per-state means and spreads into basin
+  cores.
+- :func:`compare_specs` says how CV 2 differs from CV 1 (terms added, removed
+  and kept, cosine of the weight vectors), and :func:`fisher_separation` scores
+  any CV on labelled frames (for instance frames neither CV was fitted on).
+
+Units: the coordinate's own (CV units; rad for an angle), kJ/mol, K, ps.
+"""
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..constants import BOLTZMANN_KJ_MOL_K
+from ..errors import InputError
+from ..io.bias import kish_ess
+
+__all__ = ["BasinVisits", "SpecComparison", "basins_from_spec", "compare_specs",
+           "fisher_separation", "label_basins"]
+
+
+def _finite_vector(values, name):
+    try:
+        x = np.asarray(values, dtype=np.float64)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{name} must be an array of numbers; got {values!r:.80}") from exc
+    if x.ndim != 1:
+        raise InputError(f"{name} must be one value per frame, shape (n_frames,); got shape "
+                         f"{x.shape}; label each run (walker) separately")
+    bad = np.flatnonzero(~np.isfinite(x))
+    if bad.size:
+        raise InputError(f"{name} has a non-finite value at frame {int(bad[0])} "
+                         f"({x[bad[0]]!r}); give finite values")
+    return x
+
+
+def _check_period(period):
+    if period is None:
+        return None
+    p = float(period)
+    if not (math.isfinite(p) and p > 0):
+        raise InputError(f"period={period!r} must be a positive length in the coordinate's "
+                         "units, or None for a coordinate that is not periodic")
+    return p
+
+
+def _inside(values, lo, hi, period):
+    """True where a value lies in the core [lo, hi] (upwards along the circle when periodic)."""
+    d = np.asarray(values, dtype=np.float64) - lo
+    if period is not None:
+        d = np.mod(d, period)
+    return (d >= 0) & (d <= hi - lo)
+
+
+def _check_basins(basins, period):
+    """{name: (lo, hi)} as floats; refuses empty, reversed, too wide or overlapping cores."""
+    if not hasattr(basins, "items") or len(basins) < 2:
+        raise InputError(f"basins must map at least two state names to (lo, hi) core intervals; "
+                         f"got {basins!r:.120}")
+    cores = {}
+    for name, interval in basins.items():
+        try:
+            lo, hi = (float(v) for v in interval)
+        except (TypeError, ValueError) as exc:
+            raise InputError(f"basin {name!r}: core {interval!r} must be a pair (lo, hi) of "
+                             "numbers") from exc
+        if not (math.isfinite(lo) and math.isfinite(hi) and hi > lo):
+            raise InputError(f"basin {name!r}: core ({lo!r}, {hi!r}) needs finite lo < hi")
+        if period is not None and hi - lo >= period:
+            raise InputError(f"basin {name!r}: core ({lo:g}, {hi:g}) is as wide as the period "
+                             f"{period:g}; give narrower cores")
+        cores[str(name)] = (lo, hi)
+    names = list(cores)
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            (alo, ahi), (blo, bhi) = cores[a], cores[b]
+            if period is None:
+                overlap = alo <= bhi and blo <= ahi
+            else:
+                overlap = bool(_inside(blo, alo, ahi, period) or _inside(alo, blo, bhi, period))
+            if overlap:
+                raise InputError(f"basin cores {a!r} ({alo:g}, {ahi:g}) and {b!r} ({blo:g}, "
+                                 f"{bhi:g}) overlap; a frame must lie in one core at most: "
+                                 "give narrower cores")
+    return cores
+
+
+def basins_from_spec(spec, core=1.0):
+    """Basin cores of a spec's states: each state's mean ± `core` spreads, in CV units.
+
+    Parameters
+    ----------
+    spec : cvdesign.Spec
+        A spec whose ``states`` hold each state's ``mean`` and ``std`` (every
+        spec written by ``suggest`` does), in CV units.
+    core : float, default=1.0
+        Half width of each core in units of the state's spread. Frames outside
+        every core are transition frames; ``1.0`` keeps about two thirds of a
+        state's own frames in its core (common practice for core sets).
+
+    Returns
+    -------
+    dict of str to (float, float)
+        ``{state: (lo, hi)}``, CV units; checked not to overlap (an error names
+        the two states and suggests a smaller `core`).
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> spec = SimpleNamespace(states={"a": {"mean": -1.0, "std": 0.2},
+    ...                                "b": {"mean": 1.0, "std": 0.4}})
+    >>> basins_from_spec(spec, core=2.0)
+    {'a': (-1.4, -0.6), 'b': (0.2, 1.8)}
+    """
+    c = float(core)
+    if not (math.isfinite(c) and c > 0):
+        raise InputError(f"core={core!r} must be a positive number of spreads")
+    states = getattr(spec, "states", None) or {}
+    cores = {}
+    for name, st in states.items():
+        mean, std = st.get("mean"), st.get("std")
+        if mean is None or std is None or not float(std) > 0:
+            raise InputError(f"state {name!r} of the spec has no positive spread (std={std!r}); "
+                             "give the basin cores yourself (label_basins(values, {state: "
+                             "(lo, hi)}))")
+        cores[name] = (round(float(mean) - c * float(std), 12),
+                       round(float(mean) + c * float(std), 12))
+    period = getattr(spec, "period", None) if getattr(spec, "periodic", False) else None
+    return _check_basins(cores, _check_period(period))
+
+
+@dataclass(frozen=True)
+class BasinVisits:
+    """Frames of one run labelled by basin, with per-state counts and the crossings.
+
+    Attributes
+    ----------
+    labels : ndarray of object, shape (n_frames,)
+        State name of each frame in a core, None between cores (transition
+        frames): the ``labels`` of ``Source.add_labelled``.
+    states : tuple of str
+        The basins, in the order given.
+    frames : dict of str to int
+        Frames in each core.
+    ess : dict of str to float
+        Kish effective sample size of each core's frames under the weights
+        ``exp(V / kT)`` of the run's bias (equal to `frames` without a bias).
+    transition_frames : int
+        Frames outside every core.
+    crossings : int
+        Core-to-core transitions: the times the run reaches a core other than
+        the last one it was in (a frame that leaves a core and comes back
+        counts none).
+    crossing_frames : ndarray of int
+        The frame at which each crossing reaches its new core.
+    duration_ps : float or None
+        ``n_frames * timestep_ps`` when a time step was given.
+    """
+
+    labels: np.ndarray
+    states: tuple
+    frames: dict
+    ess: dict
+    transition_frames: int
+    crossings: int
+    crossing_frames: np.ndarray
+    duration_ps: float | None = None
+
+    @property
+    def crossings_per_ns(self):
+        """Crossings per ns of run, or None without a time step."""
+        if not self.duration_ps:
+            return None
+        return self.crossings / (self.duration_ps / 1000.0)
+
+    def summary(self):
+        """One line: frames and ESS per state, transition frames, crossings."""
+        parts = [f"{s}: {self.frames[s]} frames (ESS {self.ess[s]:.0f})" for s in self.states]
+        rate = self.crossings_per_ns
+        tail = "" if rate is None else f" ({rate:.1f} per ns)"
+        return (f"{'; '.join(parts)}; {self.transition_frames} transition frames; "
+                f"{self.crossings} crossings{tail}")
+
+
+def label_basins(values, basins, *, bias=None, temperature=None, period=None,
+                 timestep_ps=None):
+    """Label the frames of one run by the basin cores they are in; count its crossings.
+
+    Parameters
+    ----------
+    values : array-like of shape (n_frames,)
+        A coordinate per frame, in time order (the CV of a biased run, from
+        ``Spec.evaluate``, or any other coordinate), in its own units.
+    basins : mapping of str to (float, float)
+        ``{state: (lo, hi)}``: the core of each basin, inclusive, in the
+        units of `values` (e.g. from :func:`basins_from_spec`). Cores must not
+        overlap. With a `period`, ``lo`` to ``hi`` runs upwards along the
+        circle and may wrap (``(3.0, 3.5)`` with period ``2 pi`` covers 3.0 to
+        pi and -pi to 3.5 - 2 pi).
+    bias : array-like of shape (n_frames,), optional
+        Bias energy of every frame, kJ/mol: the energy to reweight with (for a
+        bias that changed during the run, the bias minus its time-dependent
+        offset; see :mod:`cvdesign.io.bias`). Only the effective sample sizes
+        use it.
+    temperature : float, optional
+        Temperature of the run, K; needed with `bias`.
+    period : float, optional
+        Period of a periodic coordinate (``2 pi`` for a dihedral in rad).
+    timestep_ps : float, optional
+        Time between frames, ps; gives ``duration_ps`` and crossings per ns.
+
+    Returns
+    -------
+    BasinVisits
+
+    Raises
+    ------
+    cvdesign.errors.InputError
+        For values that are not one finite number per frame, a `bias` of
+        another length, a bias without temperature, or cores that are
+        reversed, overlapping or fewer than two.
+
+    Examples
+    --------
+    >>> v = [-1.0, -0.2, 1.1, 0.1, 0.9, -1.2, -0.9]
+    >>> visits = label_basins(v, {"a": (-1.5, -0.5), "b": (0.5, 1.5)}, timestep_ps=0.5)
+    >>> visits.labels.tolist()
+    ['a', None, 'b', None, 'b', 'a', 'a']
+    >>> visits.crossings, visits.crossing_frames.tolist(), visits.transition_frames
+    (2, [2, 5], 2)
+    >>> round(visits.crossings_per_ns, 1)  # 2 crossings in 3.5 ps
+    571.4
+    """
+    x = _finite_vector(values, "values")
+    p = _check_period(period)
+    cores = _check_basins(basins, p)
+    names = tuple(cores)
+    code = np.full(x.size, -1, dtype=np.int64)
+    for i, (lo, hi) in enumerate(cores.values()):
+        code[_inside(x, lo, hi, p)] = i
+    if bias is not None:
+        v = _finite_vector(bias, "bias")
+        if v.size != x.size:
+            raise InputError(f"bias has {v.size} values but values has {x.size} frames; give "
+                             "one bias energy (kJ/mol) per frame")
+        t = None if temperature is None else float(temperature)
+        if t is None or not (math.isfinite(t) and t > 0):
+            raise InputError(f"temperature={temperature!r}: a bias needs the positive "
+                             "temperature of the run, K")
+        a = v / (BOLTZMANN_KJ_MOL_K * t)
+    elif temperature is not None:
+        raise InputError("temperature= goes with bias= (the bias energies of the run)")
+    if timestep_ps is not None and not (math.isfinite(float(timestep_ps))
+                                        and float(timestep_ps) > 0):
+        raise InputError(f"timestep_ps={timestep_ps!r} must be a positive time, ps")
+    frames, ess = {}, {}
+    for i, name in enumerate(names):
+        inside = code == i
+        frames[name] = int(np.count_nonzero(inside))
+        if bias is None or not inside.any():
+            ess[name] = float(frames[name])
+        else:
+            ai = a[inside]
+            ess[name] = kish_ess(np.exp(ai - ai.max()))
+    seen = np.flatnonzero(code >= 0)
+    change = seen[1:][np.diff(code[seen]) != 0]
+    labels = np.array([names[c] if c >= 0 else None for c in code], dtype=object)
+    return BasinVisits(labels=labels, states=names, frames=frames, ess=ess,
+                       transition_frames=int(np.count_nonzero(code < 0)),
+                       crossings=int(change.size), crossing_frames=change.astype(np.int64),
+                       duration_ps=None if timestep_ps is None
+                       else x.size * float(timestep_ps))
+
+
+# --------------------------------------------------------------------------
+# comparing two CVs
+
+
+def fisher_separation(values, labels, states, *, weights=None, period=None):
+    """Fisher ratio ``(m_a - m_b)^2 / (v_a + v_b)`` of two states along a coordinate.
+
+    Parameters
+    ----------
+    values : array-like of shape (n_frames,)
+        The coordinate (a CV from ``Spec.evaluate``) per frame.
+    labels : array-like of shape (n_frames,)
+        State name per frame; frames of other states and None are ignored.
+    states : (str, str)
+        The two states compared.
+    weights : array-like of shape (n_frames,), optional
+        Frame weights (e.g. ``exp(V / kT)`` of a biased run); equal by default.
+    period : float, optional
+        Period of a periodic coordinate: means are circular, deviations
+        wrapped.
+
+    Returns
+    -------
+    float
+        Dimensionless; larger separates better. The same quantity for two CVs
+        on the same frames compares them; on frames neither was fitted on it
+        is a held-out score.
+
+    Examples
+    --------
+    >>> fisher_separation([0.0, 2.0, 4.0, 6.0], ["a", "a", "b", "b"], ("a", "b"))  # means 1, 5; variances 1, 1
+    8.0
+    """
+    x = _finite_vector(values, "values")
+    lab = np.asarray(labels, dtype=object).reshape(-1)
+    if lab.size != x.size:
+        raise InputError(f"labels has {lab.size} entries but values has {x.size} frames")
+    w = np.ones(x.size) if weights is None else _finite_vector(weights, "weights")
+    if w.size != x.size or (w < 0).any():
+        raise InputError("weights must be one non-negative weight per frame")
+    p = _check_period(period)
+    means, variances = [], []
+    for s in states:
+        inside = np.array([lbl == s for lbl in lab], dtype=bool)
+        if not w[inside].sum() > 0:
+            raise InputError(f"state {s!r} has no weighted frame among the labels")
+        xi, wi = x[inside], w[inside] / w[inside].sum()
+        if p is None:
+            m = float(wi @ xi)
+            d = xi - m
+        else:
+            z = wi @ np.exp(2j * np.pi * xi / p)
+            m = float(np.angle(z) * p / (2 * np.pi))
+            d = (xi - m + p / 2) % p - p / 2
+        means.append(m)
+        variances.append(float(wi @ d ** 2))
+    gap = means[0] - means[1]
+    if p is not None:
+        gap = (gap + p / 2) % p - p / 2
+    total = variances[0] + variances[1]
+    return math.inf if total == 0 else gap ** 2 / total
+
+
+def _term_keys(spec):
+    """{(kind, atoms, transform): (label, raw coefficient weight / scale, scale)}."""
+    descriptors = {d["id"]: d for d in spec.descriptors}
+    out = {}
+    for t in spec.terms:
+        d = descriptors[t["descriptor"]]
+        atoms = tuple(int(a) for a in d.get("atoms", ())) or tuple(
+            tuple(int(a) for a in g) for g in d.get("groups", ()))
+        key = (d["kind"], atoms, t["transform"])
+        label = f"{t['transform']}({d.get('label', d['id'])})"
+        prev = out.get(key)
+        coef = float(t["weight"]) / float(t["scale"])
+        out[key] = (label, coef + (prev[1] if prev else 0.0), float(t["scale"]))
+    return out
+
+
+@dataclass(frozen=True)
+class SpecComparison:
+    """How CV 2 differs from CV 1 in its terms.
+
+    Attributes
+    ----------
+    added : tuple of str
+        Terms of CV 2 that CV 1 lacks (``transform(descriptor label)``).
+    removed : tuple of str
+        Terms of CV 1 that CV 2 lacks.
+    kept : tuple of str
+        Terms in both.
+    cosine : float or None
+        ``|cos|`` of the angle between the two weight vectors over the union
+        of terms, each term standardized by one common scale (CV 2's, or CV
+        1's for a term only CV 1 has): 1 for the same direction, 0 for no term
+        in common. The absolute value, as a CV's sign is arbitrary. None when
+        a spec has no weight.
+    """
+
+    added: tuple
+    removed: tuple
+    kept: tuple
+    cosine: float | None
+
+    def summary(self):
+        """A few lines for a person."""
+        def names(items):
+            return ", ".join(items) if items else "none"
+        cos = "n/a" if self.cosine is None else f"{self.cosine:.3f}"
+        return (f"terms kept: {names(self.kept)}\nterms added: {names(self.added)}\n"
+                f"terms removed: {names(self.removed)}\n"
+                f"|cosine| of the standardized weight vectors: {cos}")
+
+
+def compare_specs(first, second):
+    """Terms added, removed and kept from CV 1 to CV 2, and the cosine of their weights.
+
+    Terms are matched by descriptor kind, atoms and transform (not by id,
+    which may differ between two runs of ``suggest``). The same torsion as an
+    identity term in one CV and as cos/sin terms in the other counts as
+    different terms.
+
+    Parameters
+    ----------
+    first, second : cvdesign.Spec
+        CV 1 and CV 2, for the same topology.
+
+    Returns
+    -------
+    SpecComparison
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> def spec(terms):
+    ...     return SimpleNamespace(
+    ...         descriptors=[{"id": i, "kind": "distance", "atoms": a} for i, a, _ in terms],
+    ...         terms=[{"descriptor": i, "transform": "identity", "scale": 1.0, "weight": w}
+    ...                for i, _, w in terms])
+    >>> c = compare_specs(spec([("d1", [0, 5], 1.0)]),
+    ...                   spec([("x", [0, 5], 1.0), ("y", [1, 4], 1.0)]))
+    >>> c.added, c.removed, round(c.cosine, 4)  # cos 45 degrees
+    (('identity(y)',), (), 0.7071)
+    """
+    a, b = _term_keys(first), _term_keys(second)
+    keys = list(dict.fromkeys([*b, *a]))
+    u = np.array([a[k][1] * (b[k] if k in b else a[k])[2] if k in a else 0.0 for k in keys])
+    v = np.array([b[k][1] * b[k][2] if k in b else 0.0 for k in keys])
+    norm = float(np.linalg.norm(u) * np.linalg.norm(v))
+    cosine = None if norm == 0 else abs(float(u @ v)) / norm
+    return SpecComparison(added=tuple(b[k][0] for k in b if k not in a),
+                          removed=tuple(a[k][0] for k in a if k not in b),
+                          kept=tuple(b[k][0] for k in b if k in a), cosine=cosine)

@@ -1,0 +1,433 @@
+"""What the report draws that the tables do not hold: ``report-data.json`` of ``suggest``.
+
+The figures of a ranked CV need, besides the ranking and the specs, three things
+gathered from the frames (format: ``docs/report-data-v1.md``):
+
+* **held-out histograms** -- the frames of fold ``k`` projected on the direction
+  fitted without fold ``k`` (what the held-out scores measure), on common bins in
+  the CV's units. A fold's direction has its own scale and offset, so its values
+  are mapped to the CV's units by the affine map ``a_k v + b_k`` that carries the
+  *training* state means along the fold's direction onto the training state means
+  along the CV (least squares over the states; exact for two). The map uses the
+  training frames only, as the direction does; the held-out frames are never used
+  to place them. The bins span every state's held-out mean +- :data:`RANGE_STDS`
+  standard deviations of every fold (from the fold moments, before the pass),
+  :data:`BINS_PER_STD` bins per standard deviation of the narrowest state
+  (between :data:`MIN_BINS` and :data:`MAX_BINS` bins, so that states far apart
+  along a CV are still drawn with some resolution); frames outside, if any, are
+  counted apart (``outside``);
+* **traces** -- the CV (the spec's own formula on the pool's features) along each
+  input segment, at the frames whose offset from the segment's first frame is a
+  multiple of a stride chosen from the segment's length (:func:`trace_stride`), so
+  at most :data:`MAX_TRACE_POINTS` points per segment, the same for every split;
+* **implied timescales** -- ``-lag / ln rho(lag)`` of the CV on a grid of lags,
+  ``rho`` its normalized autocorrelation over lagged pairs within runs, all runs
+  about their common mean (reversible estimate, as the ranking's
+  ``autocorrelation_all``).
+
+All three come from one pass of the engine, :class:`CVReportPass`, run in the
+same read as the held-out pass: histogram counts add exactly, traces are kept
+frames (in frame order), lagged sums merge in the engine's fixed tree; the CV of
+a frame is computed term by term with elementwise arithmetic, so each frame gets
+the same bits whichever rows share its leaf or halo. The stored size depends on
+the number of CVs, segments, bins and lags, never on the number of frames.
+"""
+
+import math
+
+import numpy as np
+
+from ..passes import FeaturePass, frame_keys, thinning_stride
+from ..stats.moments import DiagonalLaggedMoments
+
+__all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan", "CVReportPass", "cv_plans",
+           "trace_stride", "histogram_bins", "affine_to_cv_units", "report_document", "timescale_lags",
+           "funnel_report_document"]
+
+#: Most points of a trace (one input segment).
+MAX_TRACE_POINTS = 1000
+
+#: The held-out histograms' bins span each state's held-out mean +- this many of its
+#: standard deviations (in every fold); by Chebyshev's inequality at most 1/36 of a
+#: state's frames can lie beyond, and for near-Gaussian states none do in practice.
+RANGE_STDS = 6.0
+
+#: Bins of a held-out histogram per standard deviation of its narrowest state (our
+#: choice: enough to show a state's shape), within MIN_BINS and MAX_BINS bins.
+BINS_PER_STD = 4.0
+MIN_BINS = 50
+MAX_BINS = 400
+
+
+def histogram_bins(low, high, narrowest_std):
+    """Bins of a held-out histogram over ``[low, high]`` (CV units).
+
+    :data:`BINS_PER_STD` per `narrowest_std` (CV units), clipped to
+    [:data:`MIN_BINS`, :data:`MAX_BINS`].
+
+    Examples
+    --------
+    >>> histogram_bins(-1.0, 1.0, 0.5), histogram_bins(-1.2, 1.2, 0.028), histogram_bins(0, 1, 0)
+    (50, 343, 50)
+    """
+    if not narrowest_std > 0:
+        return MIN_BINS
+    n = math.ceil((float(high) - float(low)) * BINS_PER_STD / float(narrowest_std))
+    return int(min(MAX_BINS, max(MIN_BINS, n)))
+
+
+def trace_stride(n_frames):
+    """Stride of a trace: every frame whose offset from the segment's first frame is a
+    multiple of it is kept, at most :data:`MAX_TRACE_POINTS` in all.
+
+    Parameters
+    ----------
+    n_frames : int
+        Frames in the segment's frame range (with or without a state).
+
+    Returns
+    -------
+    int
+
+    Examples
+    --------
+    >>> trace_stride(800), trace_stride(2000), trace_stride(2001)
+    (1, 2, 3)
+    """
+    return thinning_stride([max(int(n_frames), 1)], MAX_TRACE_POINTS)
+
+
+def affine_to_cv_units(fold_means, cv_means, within_fold=None, within_cv=None):
+    """The map ``a v + b`` from a fold's direction to the CV's units.
+
+    Least squares over the states: ``a m_s + b`` is closest to ``c_s``, with ``m_s``
+    the training means along the fold's direction and ``c_s`` those along the CV
+    (exact for two states). When the training means along the fold's direction do
+    not differ (nothing to match), ``a`` matches the within-state spreads instead
+    and ``b`` the mean of the means.
+
+    Parameters
+    ----------
+    fold_means, cv_means : array-like of shape (n_states,)
+        Training state means along the fold's direction and along the CV.
+    within_fold, within_cv : float, optional
+        Pooled within-state variances along each (for the fallback).
+
+    Returns
+    -------
+    (float, float)
+        ``(a, b)``.
+
+    Examples
+    --------
+    >>> affine_to_cv_units([0.0, 2.0], [1.0, 5.0])
+    (2.0, 1.0)
+    >>> affine_to_cv_units([1.0, 1.0], [0.0, 4.0], within_fold=1.0, within_cv=4.0)
+    (2.0, 0.0)
+    """
+    m = np.asarray(fold_means, dtype=np.float64)
+    c = np.asarray(cv_means, dtype=np.float64)
+    dm = m - m.mean()
+    spread = float(dm @ dm)
+    scale = max(float(within_fold or 0.0), float(np.max(np.abs(m))) ** 2, 1e-300)
+    if spread > 1e-12 * scale:
+        a = float(dm @ (c - c.mean())) / spread
+    elif within_fold and within_cv and within_fold > 0:
+        a = math.sqrt(within_cv / within_fold)
+    else:
+        a = 1.0
+    return a, float(c.mean() - a * m.mean())
+
+
+class CVPlan:
+    """What :class:`CVReportPass` needs of one ranked CV, fixed before the pass.
+
+    Attributes
+    ----------
+    cols : ndarray of int
+        The CV's terms as columns of the pass's values.
+    w : ndarray
+        Weights of the standardized terms (the spec's ``weight``).
+    fold_w : list of ndarray
+        Direction fitted without each fold (the same columns).
+    maps : list of (float, float)
+        Per fold, ``(a, b)`` of :func:`affine_to_cv_units`.
+    low, high : float
+        Range of the held-out histogram, CV units.
+    n_bins : int
+        Its bins (:func:`histogram_bins`).
+    """
+
+    def __init__(self, cols, w, fold_w, maps, low, high, n_bins):
+        self.cols = np.asarray(cols, dtype=np.intp)
+        self.w = np.asarray(w, dtype=np.float64)
+        self.fold_w = [np.asarray(v, dtype=np.float64) for v in fold_w]
+        self.maps = [(float(a), float(b)) for a, b in maps]
+        self.low, self.high, self.n_bins = float(low), float(high), int(n_bins)
+
+    @property
+    def edges(self):
+        """The bin edges, CV units."""
+        return np.linspace(self.low, self.high, self.n_bins + 1)
+
+
+def _along(moments, idx, w):
+    """Mean and variance along `w` of the features `idx` of a Moments."""
+    if not moments.count:
+        return math.nan, math.nan
+    mean = float(moments.mean[idx] @ w)
+    var = float(w @ (moments.scatter[np.ix_(idx, idx)] / moments.count) @ w)
+    return mean, max(var, 0.0)
+
+
+def cv_plans(fits, fm, local):
+    """A :class:`CVPlan` per ranked CV, from the fold moments.
+
+    Parameters
+    ----------
+    fits : list of cvdesign.pipeline.ranking.Fit
+    fm : cvdesign.search.FoldMoments
+        Standardized fold moments (the columns of ``fit.idx``).
+    local : dict of int to int
+        Column of the fold moments -> column of the pass's values.
+
+    Returns
+    -------
+    list of CVPlan
+    """
+    plans = []
+    for fit in fits:
+        idx = np.asarray(fit.idx, dtype=np.intp)
+        maps, lo, hi, narrowest = [], math.inf, -math.inf, math.inf
+        for k, wk in enumerate(fit.fold_w):
+            train = [(_along(m, idx, wk), _along(m, idx, fit.w)) for m in fm.train(k)]
+            within_v = float(np.mean([v[1] for v, _ in train]))
+            within_c = float(np.mean([c[1] for _, c in train]))
+            a, b = affine_to_cv_units([v[0] for v, _ in train], [c[0] for _, c in train],
+                                      within_v, within_c)
+            maps.append((a, b))
+            for m in fm.test(k):
+                mean, var = _along(m, idx, wk)
+                if math.isnan(mean):
+                    continue
+                std = abs(a) * math.sqrt(var)
+                centre, half = a * mean + b, RANGE_STDS * std
+                lo, hi = min(lo, centre - half), max(hi, centre + half)
+                if std > 0:
+                    narrowest = min(narrowest, std)
+        if not hi > lo:  # a CV that does not move within the states
+            mid = 0.0 if not math.isfinite(lo) else lo
+            lo, hi = mid - 1.0, mid + 1.0
+        plans.append(CVPlan([local[int(i)] for i in idx], fit.w, fit.fold_w, maps, lo, hi,
+                            histogram_bins(lo, hi, narrowest)))
+    return plans
+
+
+def timescale_lags(grid, lag_frames):
+    """The lags (frames) of the implied timescales: a grid plus the pipeline's lag.
+
+    Examples
+    --------
+    >>> timescale_lags([1, 2, 4, 8], 5).tolist()
+    [1, 2, 4, 5, 8]
+    >>> timescale_lags(None, 5) is None
+    True
+    """
+    if grid is None:
+        return None
+    lags = {int(v) for v in grid}
+    if lag_frames is not None:
+        lags.add(int(lag_frames))
+    return np.array(sorted(lags), dtype=np.intp)
+
+
+def _combine(values, cols, weights):
+    """``sum_j values[:, cols[j]] * weights[j]``, term by term: each row's bits depend
+    on that row alone (no matrix product, whose rows depend on the matrix's shape)."""
+    out = np.zeros(values.shape[0])
+    for c, w in zip(cols, weights):
+        out += values[:, c] * w
+    return out
+
+
+class CVReportPass(FeaturePass):
+    """Held-out histograms, traces and lagged sums of the ranked CVs, in one pass.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+    plans : list of CVPlan
+    folds : cvdesign.passes.Folds
+        The folds of the held-out scoring.
+    strides : dict of int to int
+        Trace stride of each segment (:func:`trace_stride`).
+    lags : array-like of int or None
+        Lags in frames of the implied timescales (None: none).
+    shift : array-like of shape (n_cvs,)
+        Fixed shift of the lagged sums (near each CV's mean).
+    columns, center, scale
+        As for every :class:`~cvdesign.passes.FeaturePass`: the pool features of the
+        CVs' terms and their standardization (the spec's ``center``, ``scale``).
+
+    The result is a dict: ``hist``, per CV an int64 array of shape (n_states,
+    n_bins + 2) (column 0 counts frames below the range, the last column those
+    above);
+    ``traces``, ``(segment, frames, values of shape (n, n_cvs), state codes)`` per
+    leaf with kept frames, in frame order; ``lagged``, per lag a
+    :class:`~cvdesign.stats.moments.DiagonalLaggedMoments` of the CVs (or None
+    without lags).
+    """
+
+    def __init__(self, featurizer, plans, folds, strides, lags, shift, *, columns, center,
+                 scale):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.plans, self.folds = list(plans), folds
+        self.strides = dict(strides)
+        self.lags = None if lags is None else [int(v) for v in lags]
+        self.shift = np.asarray(shift, dtype=np.float64)
+
+    def halo(self, segment_index):
+        return max(self.lags) if self.lags else 0
+
+    def map(self, leaf):
+        n_cv = len(self.plans)
+        z = self.values(leaf.window_x if self.lags else leaf.x)
+        cv = np.empty((z.shape[0], n_cv))
+        for c, p in enumerate(self.plans):
+            cv[:, c] = _combine(z, p.cols, p.w)
+        keys = frame_keys(leaf.layout, leaf.frames, folds=self.folds)
+        hist = []
+        for p in self.plans:
+            h = np.zeros((leaf.n_states, p.n_bins + 2), dtype=np.int64)
+            width = (p.high - p.low) / p.n_bins
+            for k in np.unique(keys.fold).tolist():
+                rows = np.flatnonzero(keys.fold == k)
+                a, b = p.maps[k]
+                u = a * _combine(z[rows], p.cols, p.fold_w[k]) + b
+                b_idx = np.clip(np.floor((u - p.low) / width), 0, p.n_bins - 1)
+                b_idx = b_idx.astype(np.int64) + 1
+                b_idx[u < p.low] = 0
+                b_idx[u > p.high] = p.n_bins + 1
+                np.add.at(h, (keys.states[rows], b_idx), 1)
+            hist.append(h)
+        lay = leaf.layout
+        kept = np.flatnonzero((leaf.frames - lay.lo) % self.strides[leaf.segment] == 0)
+        traces = ([(leaf.segment, leaf.frames[kept].copy(), cv[kept].copy(),
+                    leaf.states[kept].copy())] if kept.size else [])
+        lagged = None
+        if self.lags:
+            lagged = []
+            for lag in self.lags:
+                i, j = leaf.pairs(lag)
+                m = DiagonalLaggedMoments(n_cv, shift=self.shift, lag=lag)
+                lagged.append(m.add_pairs(cv[i], cv[j]) if i.size else m)
+        return {"hist": hist, "traces": traces, "lagged": lagged}
+
+    def merge(self, a, b):
+        lagged = None if a["lagged"] is None else [x.merge(y) for x, y in
+                                                   zip(a["lagged"], b["lagged"])]
+        return {"hist": [x + y for x, y in zip(a["hist"], b["hist"])],
+                "traces": a["traces"] + b["traces"], "lagged": lagged}
+
+    def finish(self, partial, plan):
+        if partial is None:
+            lagged = None if not self.lags else [
+                DiagonalLaggedMoments(len(self.plans), shift=self.shift, lag=lag)
+                for lag in self.lags]
+            partial = {"hist": [np.zeros((plan.n_states, p.n_bins + 2), dtype=np.int64)
+                                for p in self.plans], "traces": [], "lagged": lagged}
+        return partial
+
+
+def _timescales(lagged, c, lags, dt):
+    """``{"lag_ps", "timescale_ps"}`` of CV `c`, or None when none is defined."""
+    out = []
+    for lag, m in zip(lags, lagged):
+        rho = float(m.autocorrelation()[c]) if m.count > 0 else math.nan
+        out.append(-lag * dt / math.log(rho) if 0.0 < rho < 1.0 else None)
+    if all(v is None for v in out):
+        return None
+    return {"lag_ps": [float(lag * dt) for lag in lags], "timescale_ps": out}
+
+
+def report_document(result, plans, ranking, *, source, states, steps, lags, temperature_k,
+                    lag_ps):
+    """The ``report-data.json`` document of a ``suggest`` run (its ``tica`` is None).
+
+    Parameters
+    ----------
+    result : dict
+        What :class:`CVReportPass` returned.
+    plans : list of CVPlan
+    ranking : list of dict
+        The ranking entries (rank, spec), in the order of `plans`.
+    source : cvdesign.io.source.Source
+        For the segments' file names.
+    states : list of str
+    steps : dict of int to float or None
+        Time step of each segment, ps (None: unknown).
+    lags : array-like of int or None
+        The pass's lags, frames (the same for every segment).
+    temperature_k, lag_ps : float or None
+
+    Returns
+    -------
+    dict
+        The document (format ``cvdesign-report-data``, version 1, kind ``suggest``).
+    """
+    names = np.array(states, dtype=object)
+    by_segment = {}
+    for seg, frames, values, codes in result["traces"]:
+        by_segment.setdefault(seg, []).append((frames, values, codes))
+    dt_all = {round(v, 9) for v in steps.values() if v is not None}
+    dt = next(iter(steps.values())) if len(dt_all) == 1 and None not in steps.values() else None
+    cvs = []
+    for c, (p, entry) in enumerate(zip(plans, ranking)):
+        hist = result["hist"][c]
+        heldout = {"edges": p.edges.tolist(),
+                   "counts": {s: hist[i, 1:-1].tolist() for i, s in enumerate(states)},
+                   "outside": {s: [int(hist[i, 0]), int(hist[i, -1])]
+                               for i, s in enumerate(states)}}
+        traces = []
+        for seg in sorted(by_segment):
+            parts = by_segment[seg]
+            frames = np.concatenate([f for f, _, _ in parts])
+            step = steps.get(seg)
+            traces.append({"file": source.segments[seg].path.name, "frame": frames.tolist(),
+                           "time_ps": None if step is None else (frames * step).tolist(),
+                           "value": np.concatenate([v[:, c] for _, v, _ in parts]).tolist(),
+                           "state": names[np.concatenate([s for _, _, s in parts])].tolist()})
+        timescales = None
+        if lags is not None and result["lagged"] is not None and dt is not None:
+            timescales = _timescales(result["lagged"], c, lags, dt)
+        cvs.append({"rank": entry["rank"], "spec": entry["spec"], "units": "CV units",
+                    "heldout": heldout, "traces": traces, "timescales": timescales})
+    return {"format": "cvdesign-report-data", "version": 1, "kind": "suggest",
+            "states": list(states), "temperature_k": float(temperature_k),
+            "lag_ps": lag_ps, "cvs": cvs, "tica": None}
+
+
+def funnel_report_document(positions, spec_name):
+    """The ``NAME-report-data.json`` document of ``cvdesign funnel``.
+
+    Parameters
+    ----------
+    positions : dict
+        ``{"z_nm": [...], "r_nm": [...]}``: the ligand centre in the restraint's frame
+        (``positions`` of :func:`cvdesign.bias.funnel.size_funnel_from_source`), nm.
+    spec_name : str
+        The funnel spec's file name, written beside it.
+
+    Returns
+    -------
+    dict
+
+    Examples
+    --------
+    >>> doc = funnel_report_document({"z_nm": [0.1], "r_nm": [0.05]}, "site.json")
+    >>> doc["kind"], doc["spec"], doc["positions"]["z_nm"]
+    ('funnel', 'site.json', [0.1])
+    """
+    return {"format": "cvdesign-report-data", "version": 1, "kind": "funnel",
+            "positions": {"z_nm": list(positions["z_nm"]), "r_nm": list(positions["r_nm"])},
+            "spec": str(spec_name)}

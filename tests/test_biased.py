@@ -1,0 +1,601 @@
+"""Biased runs as input (issue 12, item 4): bias-energy files, weights, rescaled time.
+
+* the bias-energy file format and its refusals (file and line named, nothing written);
+* weights: normalized over every file of a state with one constant, Kish effective sample
+  size; integer multiplicities equal the statistics of the repeated frames (moments, lagged
+  moments, histograms, and through the pass engine);
+* the pass engine on biased runs: identical bytes for any task split, chunk size and order
+  of arrival, and a direct per-frame reference for the weighted statistics and the pairs in
+  rescaled time;
+* exact answers: reweighting i.i.d. samples of a biased double well recovers the unbiased
+  populations and well means; the rescaled-time TICA timescale of biased runs matches that
+  of unbiased runs (and the plain one does not);
+* the pipeline and the command: notes, a zero bias giving the unbiased results.
+"""
+
+import json
+import math
+import tempfile
+from pathlib import Path
+
+import mdtraj as md
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from cvdesign import TICA, InputError, Source, suggest
+from cvdesign.cli import main
+from cvdesign.constants import BOLTZMANN_KJ_MOL_K
+from cvdesign.io.bias import kish_ess, read_bias_file
+from cvdesign.parallel import ProcessExecutor
+from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, FoldMomentsPass,
+                             HistogramPass, LaggedPass, LagGridPass, ScreeningPass, plan_tasks,
+                             reference_features, run_pass)
+from cvdesign.score.univariate import Histograms, bin_counts
+from cvdesign.stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments,
+                                    merge_all)
+from cvdesign.testbed.wells import DoubleWell, write_well_runs
+
+KT = BOLTZMANN_KJ_MOL_K * 300.0
+ATOMS = np.array([0, 2])
+N_BINS = 6
+
+
+def _topology(n_atoms=3):
+    top = md.Topology()
+    res = top.add_residue("TOY", top.add_chain())
+    for i in range(n_atoms):
+        top.add_atom(f"C{i}", md.element.carbon, res)
+    return top
+
+
+def _write_dcd(path, xyz):
+    md.Trajectory(np.asarray(xyz, dtype=np.float32), _topology(xyz.shape[1])).save(str(path))
+    return str(path)
+
+
+def _write_bias(path, values, header="bias"):
+    text = "# bias energies, kJ/mol\n" + (f"{header}\n" if header else "")
+    Path(path).write_text(text + "".join(f"{float(v)!r}\n" for v in values))
+    return str(path)
+
+
+# ---------------------------------------------------------------------------- the file format
+def test_bias_file_reads_one_column_or_the_named_or_chosen_column(tmp_path):
+    one = tmp_path / "one.txt"
+    one.write_text("# from the engine\n\n1.5\n-2.0\n 3e-1 \n")
+    csv = tmp_path / "two.csv"
+    csv.write_text("time_ps, Bias\n0.0, 1.0\n0.2, 2.5\n")
+    cols = tmp_path / "cols.dat"
+    cols.write_text("t v other\n0 4.0 9\n1 5.0 9\n")
+    assert read_bias_file(one).tolist() == [1.5, -2.0, 0.3]
+    assert read_bias_file(csv).tolist() == [1.0, 2.5]  # the column named 'bias' (any case)
+    assert read_bias_file(cols, "v").tolist() == [4.0, 5.0]
+    assert read_bias_file(cols, 3).tolist() == [9.0, 9.0]
+
+
+@pytest.mark.parametrize("text, column, message", [
+    (None, None, r"bias-energy file '.*b\.txt' does not exist; check the path"),
+    ("# nothing\n\n", None, r"'.*b\.txt' holds no values \(only blank or comment lines\)"),
+    ("bias\n", None, r"'.*b\.txt' holds a header line and no values"),
+    ("1.0\n2.0\nabc\n", None, r"'.*b\.txt', line 3, column 1: 'abc' is not a number"),
+    ("1.0\nnan\n", None, r"'.*b\.txt', line 2: bias energy 'nan' is not a finite number"),
+    ("bias\n1.0\n-inf\n", None, r"'.*b\.txt', line 3: bias energy '-inf' is not a finite"),
+    ("a,bias\n1,2\n3\n", None, r"'.*b\.txt', line 3: 1 column, but the header has 2"),
+    ("t v\n0 1\n", None, r"'.*b\.txt' has 2 columns and none named 'bias' \('t', 'v'\); say "
+                         r"which column .*--bias-column"),
+    ("0 1\n1 2\n", None, r"'.*b\.txt' has 2 columns and no header line naming a 'bias' column"),
+    ("t v\n0 1\n", "w", r"'.*b\.txt' has no column named 'w'; its columns are \('t', 'v'\)"),
+    ("0 1\n1 2\n", 3, r"bias column 3 of bias-energy file '.*b\.txt' does not exist: the file "
+                      r"has 2 columns"),
+    ("0 1\n1 2\n", "v", r"bias column 'v' names a column, but bias-energy file '.*b\.txt' has "
+                        r"no header line"),
+])
+def test_bad_bias_files_are_refused_naming_file_and_line(tmp_path, text, column, message):
+    path = tmp_path / "b.txt"
+    if text is not None:
+        path.write_text(text)
+    before = sorted(p.name for p in tmp_path.iterdir())
+    with pytest.raises(InputError, match=message):
+        read_bias_file(path, column)
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+
+
+def test_a_binary_bias_file_is_refused(tmp_path):
+    path = tmp_path / "b.bin"
+    path.write_bytes(b"\x00\xff\xfe" * 10)
+    with pytest.raises(InputError, match=r"'.*b\.bin' is not UTF-8 text"):
+        read_bias_file(path)
+
+
+def test_source_refuses_a_bias_file_of_another_length_and_one_without_temperature(tmp_path):
+    traj = _write_dcd(tmp_path / "run.dcd", np.zeros((5, 3, 3)))
+    top = _topology()
+    short = _write_bias(tmp_path / "run.bias", np.zeros(4))
+    with pytest.raises(InputError, match=r"bias-energy file '.*run\.bias' holds 4 bias energies, "
+                                         r"but trajectory '.*run\.dcd' has 5 frames"):
+        Source(top, temperature=300.0).add(traj, "a", bias=short)
+    good = _write_bias(tmp_path / "good.bias", np.zeros(5))
+    with pytest.raises(InputError, match=r"needs the temperature of the biased run: give "
+                                         r"temperature=K to Source"):
+        Source(top).add(traj, "a", bias=good)
+    with pytest.raises(InputError, match=r"temperature=-1 must be a positive temperature in K"):
+        Source(top, temperature=-1)
+
+
+def test_a_state_mixing_biased_and_unbiased_runs_is_refused(tmp_path):
+    a = _write_dcd(tmp_path / "a.dcd", np.zeros((5, 3, 3)))
+    b = _write_dcd(tmp_path / "b.dcd", np.zeros((5, 3, 3)))
+    src = Source(_topology(), temperature=300.0)
+    src.add(a, "s", bias=_write_bias(tmp_path / "a.bias", np.ones(5)))
+    src.add(b, "s")
+    with pytest.raises(InputError, match=r"state 's' has frames from the biased run '.*a\.dcd' "
+                                         r".* and from '.*b\.dcd', which has no bias energies"):
+        src.reweighting()
+
+
+# ---------------------------------------------------------------------------- weights
+def test_weights_are_normalized_over_every_file_of_a_state_with_one_constant(tmp_path):
+    rng = np.random.default_rng(3)
+    top = _topology()
+    src = Source(top, temperature=300.0)
+    energies = {}
+    for name, n, shift in (("a", 7, 0.0), ("b", 5, 40.0), ("c", 6, -900.0)):
+        traj = _write_dcd(tmp_path / f"{name}.dcd", np.zeros((n, 3, 3)))
+        v = rng.normal(shift, 3.0, n)  # 'b' far above 'a'; 'c' would underflow exp(V/kT)
+        energies[name] = v
+        src.add(traj, "s" if name != "c" else "t", bias=_write_bias(tmp_path / f"{name}.bias", v))
+    rw = src.reweighting()
+    # state 's' (files a, b): w = N exp(V/kT) / sum exp(V/kT) over both files
+    a = np.concatenate([energies["a"], energies["b"]]) / KT
+    want = a.size * np.exp(a - a.max()) / np.exp(a - a.max()).sum()
+    np.testing.assert_allclose(np.concatenate([rw.weights[0], rw.weights[1]]), want, rtol=1e-12)
+    assert rw.weights[1].sum() > 100 * rw.weights[0].sum()  # the higher bias weighs more
+    # state 't' alone: its own constant, so no underflow; weights average 1
+    c = energies["c"] / KT
+    np.testing.assert_allclose(rw.weights[2], c.size * np.exp(c - c.max()) /
+                               np.exp(c - c.max()).sum(), rtol=1e-12)
+    assert rw.ess[0] == pytest.approx(kish_ess(want)) and rw.frames.tolist() == [12, 6]
+    assert rw.populations() is None  # no biased file holds two states
+
+
+def test_kish_effective_sample_size_of_equal_and_of_concentrated_weights():
+    # Kish (Survey Sampling, Wiley, 1965): (sum w)^2 / sum w^2
+    assert kish_ess(np.full(50, 3.0)) == pytest.approx(50.0)
+    assert kish_ess([1.0, 1.0, 2.0]) == pytest.approx(16.0 / 6.0)
+    assert kish_ess(np.array([1e300, 1e300])) == pytest.approx(2.0)  # no overflow
+    assert kish_ess([0.0, 0.0]) == 0.0
+
+
+def test_integer_weights_give_the_moments_of_the_repeated_frames():
+    rng = np.random.default_rng(11)
+    x = rng.normal(size=(40, 3))
+    m = rng.integers(0, 4, size=40)
+    rep = np.repeat(x, m, axis=0)
+    for cls in (Moments, DiagonalMoments):
+        a, b = cls.from_data(x, m), cls.from_data(rep)
+        assert a.count == b.count
+        np.testing.assert_allclose(a.mean, b.mean, rtol=1e-12)
+        np.testing.assert_allclose(a.scatter if cls is Moments else a.m2,
+                                   b.scatter if cls is Moments else b.m2, rtol=1e-11)
+    np.testing.assert_array_equal(DiagonalMoments.from_data(x, m).minimum, rep.min(axis=0))
+    # lagged pairs: a pair weighs as its first frame
+    x0, xt = x[:-2], x[2:]
+    w = m[:-2]
+    for cls in (LaggedMoments, DiagonalLaggedMoments):
+        a = cls(3, shift=x.mean(axis=0)).add_pairs(x0, xt, w)
+        b = cls(3, shift=x.mean(axis=0)).add_pairs(np.repeat(x0, w, axis=0),
+                                                   np.repeat(xt, w, axis=0))
+        assert a.count == b.count
+        for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
+            np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-11)
+    # histograms
+    states = rng.integers(0, 2, size=40)
+    lo, hi = x.min(axis=0), x.max(axis=0)
+    h = Histograms(lo, hi, n_states=2, n_bins=N_BINS)
+    h.add(x, states, m.astype(float))
+    np.testing.assert_array_equal(
+        h.counts, bin_counts(rep, lo, hi, N_BINS, np.repeat(states, m), 2))
+
+
+def test_integer_multiplicities_through_the_pass_engine_equal_the_repeated_frames(tmp_path):
+    """V = kT ln(m) reweights each frame m times: the weighted statistics of the run equal
+    those of the run with each frame repeated m times (weights are normalized per state, so
+    means, covariances and normalized histograms agree; counts are scaled)."""
+    rng = np.random.default_rng(5)
+    top = _topology()
+    xyz = rng.normal(2.0, 0.5, size=(60, 3, 3))
+    mult = rng.integers(1, 5, size=60)
+    rep = np.repeat(xyz, mult, axis=0)
+    biased = Source(top, temperature=300.0)
+    biased.add(_write_dcd(tmp_path / "b.dcd", xyz), "a",
+               bias=_write_bias(tmp_path / "b.bias", KT * np.log(mult)))
+    repeated = Source(top)
+    repeated.add(_write_dcd(tmp_path / "r.dcd", rep), "a")
+    f = CoordinateFeaturizer(ATOMS)
+    lo, hi = np.full(6, 0.5), np.full(6, 3.5)
+    results = []
+    for src in (biased, repeated):
+        results.append(run_pass((FoldMomentsPass(f), ScreeningPass(f),
+                                 HistogramPass(f, lo, hi, n_bins=N_BINS)), src,
+                                tasks=plan_tasks(src, leaf_frames=16, n_tasks=3)))
+    (fm_b, sc_b, h_b), (fm_r, sc_r, h_r) = results
+    mb, mr = fm_b[0][0], fm_r[0][0]
+    assert mb.count == pytest.approx(60.0) and mr.count == mult.sum()
+    np.testing.assert_allclose(mb.mean, mr.mean, rtol=1e-12)
+    np.testing.assert_allclose(mb.covariance, mr.covariance, rtol=1e-10, atol=1e-14)
+    np.testing.assert_allclose(sc_b.diagonal[0].variance, sc_r.diagonal[0].variance,
+                               rtol=1e-10)
+    np.testing.assert_allclose(h_b.counts / h_b.counts.sum(axis=2, keepdims=True),
+                               h_r.counts / h_r.counts.sum(axis=2, keepdims=True), rtol=1e-12)
+    assert sc_b.segment_counts.tolist() == [[60]]  # frames stay frames
+
+
+# ---------------------------------------------------------------------------- the engine
+SETTINGS = settings(max_examples=25, deadline=None, derandomize=True, database=None,
+                    suppress_health_check=[HealthCheck.too_slow])
+
+
+@st.composite
+def biased_scenarios(draw):
+    segments = []
+    for _ in range(draw(st.integers(1, 3))):
+        n = draw(st.integers(2, 40))
+        if draw(st.booleans()):
+            labels = draw(st.lists(st.sampled_from([None, "a", "b"]), min_size=n, max_size=n))
+            if all(x is None for x in labels):
+                labels[0] = "a"
+            segments.append({"n": n, "labels": labels})
+        else:
+            start = draw(st.integers(0, n - 1))
+            stop = draw(st.integers(start + 1, n + 3))
+            segments.append({"n": n, "state": draw(st.sampled_from(["a", "b"])),
+                             "start": start, "stop": stop})
+    return {"segments": segments, "leaf": draw(st.integers(1, 9)),
+            "lag": draw(st.integers(1, 6)), "chunk": draw(st.integers(1, 13)),
+            "spread": draw(st.sampled_from([0.5, 2.0, 6.0])),  # bias spread, kT
+            "block": draw(st.one_of(st.none(), st.integers(1, 6))),
+            "seed": draw(st.integers(0, 2**31 - 1))}
+
+
+def _build_biased(sc, tmp):
+    rng = np.random.default_rng(sc["seed"])
+    src = Source(_topology(), temperature=300.0)
+    data = []
+    for i, seg in enumerate(sc["segments"]):
+        xyz = rng.normal(2.0, 0.5, size=(seg["n"], 3, 3))
+        path = _write_dcd(Path(tmp) / f"s{i}.dcd", xyz)
+        v = KT * sc["spread"] * rng.normal(size=seg["n"])
+        bias = _write_bias(Path(tmp) / f"s{i}.bias", v, header=None if i % 2 else "bias")
+        if "labels" in seg:
+            src.add_labelled(path, seg["labels"], bias=bias)
+        else:
+            src.add(path, seg["state"], frames=(seg["start"], seg["stop"]), bias=bias)
+        x = md.load(path, top=_topology()).xyz[:, ATOMS].reshape(seg["n"], -1).astype(float)
+        data.append((x, v))
+    out = []  # state codes in the source's order of states (first appearance)
+    for seg, (x, v) in zip(sc["segments"], data):
+        if "labels" in seg:
+            codes = np.array([-1 if s is None else src.states.index(s) for s in seg["labels"]])
+            hi = seg["n"]
+        else:
+            codes = np.full(seg["n"], -1)
+            hi = min(seg["stop"], seg["n"])
+            codes[seg["start"]:hi] = src.states.index(seg["state"])
+        out.append((codes, x, v, hi))
+    return src, out
+
+
+def _card_sums(z, key, weights=None):
+    """Block sums of the tests (module level: it pickles); weighted when weights are given."""
+    w = np.ones(z.shape[0]) if weights is None else weights
+    return {"n": np.array([w.sum()]), "s1": w @ z}
+
+
+def _biased_passes(sc, featurizer, shift):
+    lo, hi = np.full(6, 0.5), np.full(6, 3.5)
+    return (FoldMomentsPass(featurizer),
+            LaggedPass(featurizer, sc["lag"], shift=shift),
+            HistogramPass(featurizer, lo, hi, n_bins=N_BINS),
+            LagGridPass(featurizer, (1, 3), shift=shift[[2, 5]], columns=[2, 5]),
+            ScreeningPass(featurizer, lags=sc["lag"], shift=shift),
+            BlockPass(featurizer, block_frames=sc["block"], lags=sc["lag"], lag_shift=shift,
+                      pairs_within_block=False, sums=_card_sums),
+            CardPass(featurizer, center=shift, low=lo, high=hi, n_bins=N_BINS,
+                     block_frames=sc["block"], lags=sc["lag"]))
+
+
+def _direct_partner(clock, codes, t, lag, hi):
+    """The second frame of t's pair in rescaled time, found frame by frame (None: no pair):
+    of the frames of the segment's range after t, up to the first whose clock reaches
+    clock[t] + lag, the closest to it (a tie goes to the later one); a pair only when every
+    frame from t to it is in t's state."""
+    target = clock[t] + lag
+    for u in range(t + 1, hi):
+        if clock[u] >= target:
+            if u - 1 > t and target - clock[u - 1] < clock[u] - target:
+                u = u - 1
+            return u if np.all(codes[t:u + 1] == codes[t]) else None
+    return None
+
+
+def _check_biased_direct(sc, src, data, results, shift):
+    fold_m, lagged, hist, grid, screen, blocks, card = results
+    rw = src.reweighting()
+    rows = {0: [], 1: []}
+    pairs = {}
+    for si, (codes, x, v, hi) in enumerate(data):
+        w = rw.weights[si]
+        clock = np.concatenate([[0.0], np.cumsum(np.exp(v / KT))])
+        for t in np.flatnonzero(codes >= 0):
+            rows[int(codes[t])].append((w[t], x[t]))
+            u = _direct_partner(clock, codes, t, sc["lag"], hi)
+            if u is not None:
+                pairs.setdefault((si, int(codes[t]), 0), []).append((w[t], x[t], x[u]))
+    for s in (0, 1):
+        if not rows[s]:
+            assert fold_m[s][0].count == 0 if s < len(fold_m) else True
+            continue
+        ws = np.array([a for a, _ in rows[s]])
+        X = np.array([b for _, b in rows[s]])
+        m = fold_m[s][0]
+        assert m.count == pytest.approx(ws.sum(), rel=1e-12) == pytest.approx(X.shape[0])
+        mean = ws @ X / ws.sum()
+        np.testing.assert_allclose(m.mean, mean, rtol=1e-12)
+        np.testing.assert_allclose(m.scatter, (X - mean).T @ ((X - mean) * ws[:, None]),
+                                   rtol=1e-10, atol=1e-12)
+        b = np.clip(np.floor((X - 0.5) / 3.0 * N_BINS).astype(int), 0, N_BINS - 1)
+        want = np.array([np.bincount(b[:, f], weights=ws, minlength=N_BINS) for f in range(6)])
+        np.testing.assert_allclose(hist.counts[s], want, rtol=1e-12, atol=1e-12)
+        np.testing.assert_allclose(screen.diagonal[s].mean, mean, rtol=1e-12)
+    assert set(lagged.runs) == set(pairs)
+    for key, items in pairs.items():
+        m = lagged.runs[key]
+        wp = np.array([a for a, _, _ in items])
+        x0 = np.array([b for _, b, _ in items]) - shift
+        xt = np.array([c for _, _, c in items]) - shift
+        assert m.n_pairs == len(items)
+        np.testing.assert_allclose(m.count, wp.sum(), rtol=1e-12)
+        np.testing.assert_allclose(m.sum_xy, (x0 * wp[:, None]).T @ xt, rtol=1e-10, atol=1e-12)
+        np.testing.assert_allclose(screen.lagged[key[:2]].sum_xy,
+                                   wp @ (x0 * xt), rtol=1e-10, atol=1e-12)
+    # the lag grid stays in frames: pairs (t, t + lag) within a run, weighted
+    for g, lag in enumerate((1, 3)):
+        for (si, s, _), m in grid[g].runs.items():
+            codes, x, _, _ = data[si]
+            w = rw.weights[si]
+            ts = [t for t in np.flatnonzero(codes == s)
+                  if t + lag < codes.size and np.all(codes[t:t + lag + 1] == s)]
+            assert m.n_pairs == len(ts)
+            x0, xt = x[ts][:, [2, 5]] - shift[[2, 5]], x[np.add(ts, lag)][:, [2, 5]] - shift[[2, 5]]
+            np.testing.assert_allclose(m.sum_xy, w[ts] @ (x0 * xt), rtol=1e-10, atol=1e-12)
+    # block sums and the score card's sums are weighted too, and add up to the totals
+    for s in (0, 1):
+        if rows[s]:
+            ws = np.array([a for a, _ in rows[s]])
+            total = sum(float(b[2]["n"][0]) for b in blocks[(s, 0)])
+            assert total == pytest.approx(ws.sum(), rel=1e-12)
+            assert sum(float(b["n"]) for b in card.blocks()[s]) == pytest.approx(ws.sum(),
+                                                                                   rel=1e-12)
+            n_pairs = sum(len(v) for k, v in pairs.items() if k[1] == s)
+            assert sum(b[1].n_pairs for b in blocks[(s, 0)]) == n_pairs
+
+
+@SETTINGS
+@given(sc=biased_scenarios())
+def test_biased_passes_give_identical_bytes_for_any_split_and_match_a_direct_reference(
+        sc, assert_same, shuffled_executor, random_tasks):
+    featurizer = CoordinateFeaturizer(ATOMS)
+    with tempfile.TemporaryDirectory() as tmp:
+        src, data = _build_biased(sc, tmp)
+        plan = plan_tasks(src, leaf_frames=sc["leaf"])
+        shift = reference_features(plan, featurizer)
+        passes = _biased_passes(sc, featurizer, shift)
+        reference = run_pass(passes, src, tasks=plan)
+        rng = np.random.default_rng(sc["seed"] + 1)
+        other = run_pass(passes, src, tasks=plan.with_tasks(random_tasks(plan, rng)),
+                         executor=shuffled_executor(sc["seed"] + 2), chunk_frames=sc["chunk"])
+        assert_same(reference, other)
+        _check_biased_direct(sc, src, data, reference, shift)
+
+
+def test_biased_passes_give_the_same_bytes_in_two_processes(tmp_path, assert_same):
+    sc = {"segments": [{"n": 37, "labels": (["a"] * 10 + [None] + ["b"] * 26)},
+                       {"n": 30, "state": "a", "start": 3, "stop": 30}],
+          "leaf": 5, "lag": 4, "chunk": 7, "spread": 2.0, "block": 4, "seed": 8}
+    src, _ = _build_biased(sc, tmp_path)
+    featurizer = CoordinateFeaturizer(ATOMS)
+    plan = plan_tasks(src, leaf_frames=5, n_tasks=5)
+    shift = reference_features(plan, featurizer)
+    passes = _biased_passes(sc, featurizer, shift)
+    serial = run_pass(passes, src, tasks=plan)
+    with ProcessExecutor(2) as ex:
+        parallel = run_pass(passes, src, tasks=plan, executor=ex)
+    assert_same(serial, parallel)
+
+
+def test_rescaled_time_overflow_is_refused_naming_the_files(tmp_path):
+    traj = _write_dcd(tmp_path / "run.dcd", np.zeros((6, 3, 3)))
+    v = np.zeros(6)
+    v[2] = 2000.0 * KT
+    src = Source(_topology(), temperature=300.0)
+    src.add(traj, "a", bias=_write_bias(tmp_path / "run.bias", v))
+    rw = src.reweighting()
+    assert np.isfinite(rw.weights[0]).all()  # weights are formed in a safe way
+    with pytest.raises(InputError, match=r"bias-energy file '.*run\.bias' reaches .* kJ/mol "
+                                         r"\(2000 kT at 300 K\) at frame 2: the rescaled time "
+                                         r"step exp\(V/kT\) overflows"):
+        rw.check_rescaled_time({0: 1})
+    with pytest.raises(InputError, match=r"rescaled time of trajectory '.*run\.dcd' overflows"):
+        run_pass(LaggedPass(CoordinateFeaturizer(ATOMS), 1), src)
+
+
+# ---------------------------------------------------------------------------- exact answers
+def test_reweighting_biased_samples_recovers_the_exact_populations_and_well_means(tmp_path):
+    """I.i.d. samples of exp(-(U + V)/kT) of the tilted double well, labelled by well and
+    reweighted by exp(V/kT), give the populations and the mean position in each well of
+    exp(-U/kT), by quadrature (scipy.integrate.quad), within four standard errors (delta
+    method of the ratio estimators; Kish 1965 for the weights)."""
+    well = DoubleWell()
+    x = well.samples(20_000, biased=True, seed=21)
+    pdb, (traj,), (bias,) = write_well_runs(tmp_path, x[None, :], frame_step_ps=1.0, well=well)
+    stored = md.load(str(traj), top=str(pdb)).xyz[:, 1, 0].astype(np.float64)
+    labels = np.where(stored < 0, "left", "right")
+    src = Source(str(pdb), temperature=well.temperature)
+    src.add_labelled(str(traj), labels, bias=str(bias))
+    rw = src.reweighting()
+    exact = well.populations()
+    w = np.exp(well.bias(stored) / well.kt)
+    ind = (labels == "left").astype(float)
+    p = float(w @ ind / w.sum())
+    se = math.sqrt(np.sum(w**2 * (ind - p) ** 2)) / w.sum()
+    left = src.states.index("left")  # states are numbered in order of first appearance
+    got = rw.populations()[left]
+    assert got == pytest.approx(p, rel=1e-12)
+    assert abs(got - exact[0]) < 4 * se, (got, exact, se)
+    assert abs(ind.mean() - exact[0]) > 10 * se  # the unweighted fraction is far off
+    # every statistic is weighted: the mean position in each well, from the pass engine
+    means = run_pass(FoldMomentsPass(CoordinateFeaturizer([1]), columns=[0]), src)
+    from scipy.integrate import quad
+
+    for s, (a, b) in enumerate(((-3.0, 0.0), (0.0, 3.0))):
+        dens = lambda y: math.exp(-float(well.potential(np.array([y]))[0]) / well.kt)  # noqa: E731
+        mu = quad(lambda y: y * dens(y), a, b, epsrel=1e-12)[0] / quad(dens, a, b,
+                                                                      epsrel=1e-12)[0]
+        sel = (labels == ("left", "right")[s])
+        ws = w[sel]
+        m = float(ws @ stored[sel] / ws.sum())
+        se = math.sqrt(np.sum(ws**2 * (stored[sel] - m) ** 2)) / ws.sum()
+        assert means[src.states.index(("left", "right")[s])][0].mean[0] == pytest.approx(
+            m, rel=1e-9)
+        assert abs(m - mu) < 4 * se + 5e-4, (s, m, mu, se)  # XTC stores x to 1e-3 nm
+
+
+def _timescale(items, lag, dt):
+    """TICA timescale (ps) of the merged lagged moments of some runs, one feature."""
+    return float(TICA.from_moments(merge_all(items), lag=lag).timescales_[0]) * dt
+
+
+def _jackknife(items, lag, dt):
+    """(estimate, jackknife standard error over the runs) of the TICA timescale, ps."""
+    k = len(items)
+    full = _timescale(items, lag, dt)
+    vals = np.array([_timescale(items[:i] + items[i + 1:], lag, dt) for i in range(k)])
+    return full, math.sqrt((k - 1) / k * np.sum((vals - vals.mean()) ** 2))
+
+
+def test_rescaled_time_tica_timescale_of_biased_runs_matches_the_unbiased_one(tmp_path):
+    """Overdamped runs of the double well with and without a static bias that raises the
+    wells (barrier 4 kT seen from the wells becomes about 2.7 kT) and vanishes around the
+    barrier: in rescaled time dt' = dt exp(V/kT) (McCarty and Parrinello, J. Chem. Phys.
+    2017) the TICA timescale of x matches the unbiased one within the statistical error of
+    both (jackknife over 16 files of 16 independent walkers each); rescaling is exact here
+    only up to a few percent, since the bias vanishes around, not only at, the barrier
+    (Voter, J. Chem. Phys. 1997). Without rescaling the biased runs look twice as fast."""
+    well = DoubleWell()
+    dt, lag = 0.05, 20  # frame spacing ps; lag 1 ps, far beyond the in-well relaxation
+    labels = np.array(["well"] * 16_000, dtype=object)
+    labels[::1000] = None  # walkers are concatenated: no pair spans two of them
+    estimates = {}
+    for biased, seed in ((False, 1), (True, 2)):
+        x = well.run(256, 1000, md_step_ps=2e-3, stride=25, biased=biased, seed=seed)
+        pdb, trajs, biases = write_well_runs(tmp_path, x.reshape(16, 16_000),
+                                             frame_step_ps=dt, well=well if biased else None,
+                                             prefix="b" if biased else "u")
+        src = Source(str(pdb), temperature=well.temperature)
+        for i, t in enumerate(trajs):
+            src.add_labelled(str(t), labels, bias=str(biases[i]) if biased else None)
+        result = run_pass(LaggedPass(CoordinateFeaturizer([1]), lag, columns=[0],
+                                     shift=[0.0]), src)
+        items = [m for _, m in sorted(result.by_run().items())]
+        estimates[biased] = _jackknife(items, lag, dt)
+        if biased:  # the same runs read without their bias energies
+            plain = Source(str(pdb))
+            for t in trajs:
+                plain.add_labelled(str(t), labels)
+            result = run_pass(LaggedPass(CoordinateFeaturizer([1]), lag, columns=[0],
+                                         shift=[0.0]), plain)
+            estimates["plain"] = _jackknife([m for _, m in sorted(result.by_run().items())],
+                                            lag, dt)
+    (t_u, se_u), (t_b, se_b) = estimates[False], estimates[True]
+    both = math.sqrt(se_u**2 + se_b**2)
+    assert abs(t_b - t_u) < 2 * both, estimates
+    t_p, se_p = estimates["plain"]
+    assert t_u - t_p > 5 * math.sqrt(se_u**2 + se_p**2), estimates
+
+
+# ---------------------------------------------------------------------------- pipeline, CLI
+@pytest.fixture(scope="module")
+def zero_bias(tmp_path_factory, demo_files):
+    """Bias files of zeros for two demo files per state."""
+    top, states = demo_files
+    d = tmp_path_factory.mktemp("zero")
+    files = {s: fs[:2] for s, fs in states.items()}
+    bias = {f: _write_bias(d / (Path(f).stem + ".bias"), np.zeros(2000))
+            for fs in files.values() for f in fs}
+    return top, files, bias
+
+
+def test_a_bias_of_zero_gives_the_unbiased_suggestions_with_reweighting_notes(zero_bias):
+    top, files, bias = zero_bias
+    kw = dict(n_bootstrap=0, max_terms=2, n_suggestions=2, lag=1.0, objective="both")
+    plain = suggest(Source.from_states(top, files), **kw)
+    biased = suggest(Source.from_states(top, files, bias=bias, temperature=300.0), **kw)
+    assert [e["spec"] for e in plain.ranking] == [e["spec"] for e in biased.ranking]
+    for a, b in zip(plain.ranking, biased.ranking):
+        assert [t["descriptor"] for t in a["terms"]] == [t["descriptor"] for t in b["terms"]]
+        for key in ("heldout_score", "fisher_ratio_all", "autocorrelation_all", "timescale_ps"):
+            assert b[key] == pytest.approx(a[key], rel=1e-9), key
+    assert not any("reweighting" in n for n in plain.notes)
+    text = "\n".join(biased.notes)
+    assert "effective sample size (Kish) of state 'closed': 4000.0 of 4000 frames" in text
+    assert "rescaled time dt' = dt exp(V/kT)" in text and "Voter" in text
+    assert "warning" not in text.split("reweighting")[1].split("held-out")[0]
+    seg = biased.specs[0]["provenance"]["segments"][0]
+    assert seg["bias"]["file"] == "closed-1.bias" and seg["bias"]["temperature_k"] == 300.0
+
+
+def test_suggest_command_pairs_trajectories_with_bias_files_and_reports_the_sample_size(
+        zero_bias, tmp_path, capsys):
+    top, files, _ = zero_bias
+    rng = np.random.default_rng(4)
+    argv = ["suggest", "--topology", top, "--out", str(tmp_path / "out"), "--bootstrap", "0",
+            "--max-terms", "1", "--suggestions", "1", "--no-report", "--temperature", "300"]
+    for s, fs in files.items():
+        argv += ["--state", s, *fs]
+    for f in files["closed"] + files["open"]:
+        v = 25.0 * rng.random(2000) ** 8  # a few frames of high bias carry the weight
+        argv += ["--bias-energy", f, _write_bias(tmp_path / (Path(f).stem + ".csv"), v,
+                                                 header="energy")]
+    argv += ["--bias-column", "energy"]
+    assert main(argv) == 0
+    out, err = capsys.readouterr()
+    assert "effective sample size (Kish) of state 'closed'" in out
+    assert "cvdesign suggest: warning: state 'closed' has a small effective sample size" in err
+    summary = (tmp_path / "out" / "summary.md").read_text()
+    assert "effective sample size (Kish) of state 'open'" in summary
+    spec = json.loads((tmp_path / "out" / "cv-01.json").read_text())
+    assert spec["provenance"]["segments"][0]["bias"]["column"] == "energy"
+
+
+def test_suggest_on_labelled_biased_runs_reports_the_reweighted_populations(tmp_path):
+    """Biased double-well runs that cross between the wells, labelled by well: the summary
+    gives the reweighted populations and free-energy difference of the two states (those of
+    Reweighting.populations, checked against the exact answer above)."""
+    well = DoubleWell()
+    x = well.run(4, 1000, md_step_ps=2e-3, stride=25, biased=True, seed=3)
+    pdb, trajs, biases = write_well_runs(tmp_path, x, frame_step_ps=0.05, well=well)
+    src = Source(str(pdb), temperature=well.temperature)
+    for t, b in zip(trajs, biases):
+        xs = md.load(str(t), top=str(pdb)).xyz[:, 1, 0]
+        src.add_labelled(str(t), np.where(xs < -0.3, "left", np.where(xs > 0.3, "right", None)),
+                         bias=str(b))
+    result = suggest(src, n_bootstrap=0, cutoff=10.0, lag=1.0, objective="both")
+    pops = src.reweighting().populations()
+    left, right = src.states.index("left"), src.states.index("right")
+    df = -well.kt * math.log(pops[right] / pops[left])
+    note = next(n for n in result.notes if n.startswith("reweighted state populations"))
+    assert f"'left' {pops[left]:.3g}" in note and f"'right' {pops[right]:.3g} (dF = {df:.3g} " \
+        "kJ/mol)" in note, note
+    assert result.ranking[0]["timescale_ps"] is not None

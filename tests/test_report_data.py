@@ -1,0 +1,273 @@
+"""What the report draws, gathered by the pipeline (issue 11): the report-data pass against a
+direct computation, for any task split, chunk size, arrival order and executor; the
+thinning rules; the stored size at two trajectory lengths; the thinned TICA picture of
+``--runs`` and the funnel's positions."""
+
+import json
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+import cvdesign.bias.funnel as funnel_mod
+import cvdesign.pipeline.explore as explore
+from cvdesign import Source, suggest
+from cvdesign.bias.funnel import size_funnel, size_funnel_from_source
+from cvdesign.io.source import select_atoms
+from cvdesign.passes import Folds, PoolFeaturizer, frame_keys, plan_tasks, run_pass
+from cvdesign.passes import thinning_stride
+from cvdesign.pipeline.explore import propose_states
+from cvdesign.pipeline.report_data import (MAX_BINS, MAX_TRACE_POINTS, CVPlan, CVReportPass,
+                                           affine_to_cv_units, histogram_bins, trace_stride)
+from cvdesign.pool import Descriptor, Pool
+
+
+# ------------------------------------------------------------------------ small rules
+def test_thinning_stride_is_the_smallest_stride_keeping_at_most_the_limit():
+    rng = np.random.default_rng(3)
+    for _ in range(200):
+        counts = rng.integers(0, 3000, size=rng.integers(1, 6))
+        limit = int(rng.integers(max(1, int((counts > 0).sum())), 4000))
+        step = int(rng.integers(1, 4))
+
+        def kept(s):
+            return sum(len(range(0, int(c), s)) for c in counts)  # ranks r with r % s == 0
+
+        got = thinning_stride(counts, limit, multiple_of=step)
+        assert got % step == 0 and kept(got) <= limit
+        assert got == step or kept(got - step) > limit  # no smaller multiple fits
+    with pytest.raises(ValueError, match=r"limit=1 frames cannot hold one frame of each of "
+                                         r"the 2 groups"):
+        thinning_stride([5, 5], 1)
+
+
+def test_a_trace_keeps_at_most_a_thousand_evenly_spaced_frames():
+    for n in (1, 999, 1000, 1001, 2000, 8000, 123457):
+        stride = trace_stride(n)
+        assert len(range(0, n, stride)) <= MAX_TRACE_POINTS
+        assert stride == 1 or len(range(0, n, stride - 1)) > MAX_TRACE_POINTS
+
+
+def test_affine_map_carries_the_training_means_onto_the_cvs():
+    a, b = affine_to_cv_units([0.3, 1.7], [-2.0, 5.0])  # two states: exact
+    np.testing.assert_allclose([a * 0.3 + b, a * 1.7 + b], [-2.0, 5.0])
+    # three states: the least-squares line through (m_s, c_s), as numpy's polyfit gives it
+    m, c = np.array([0.0, 1.0, 3.0]), np.array([1.0, 2.5, 6.9])
+    np.testing.assert_allclose(affine_to_cv_units(m, c), np.polyfit(m, c, 1))
+    # nothing to match along the fold's direction: the spreads are matched instead
+    assert affine_to_cv_units([2.0, 2.0], [0.0, 1.0], within_fold=0.25, within_cv=1.0) \
+        == (2.0, 0.5 - 4.0)
+
+
+def test_histogram_bins_resolve_the_narrowest_state_within_bounds():
+    assert histogram_bins(0.0, 10.0, 1.0) == 50          # at least MIN_BINS
+    assert histogram_bins(0.0, 30.0, 1.0) == 120         # four per standard deviation
+    assert histogram_bins(0.0, 1000.0, 1.0) == 400       # at most MAX_BINS
+
+
+# -------------------------------------------------------------------- the pass itself
+@pytest.fixture(scope="module")
+def small(demo_files):
+    """Two states of the demo (two files each, 700 frames of each), a pool of three
+    descriptors (a distance, a dihedral's cos and sin), folds as the pipeline plans them."""
+    top, states = demo_files
+    src = Source(top)
+    for name, files in states.items():
+        for f in files[:2]:
+            src.add(f, name, frames=(100, 800))
+    pool = Pool([Descriptor("distance", (0, 7), "dist C1-C8"),
+                 Descriptor("dihedral", (2, 3, 4, 5), "dihedral C3-C4-C5-C6")], src.topology)
+    feat = PoolFeaturizer(pool)
+    plan = plan_tasks(src).for_features(feat.n_features)
+    folds = Folds.plan(plan.layouts, 4)
+    rng = np.random.default_rng(11)
+    center = np.array([0.6, 0.1, 0.2])
+    scale = np.array([0.3, 0.7, 0.6])
+    plans = []
+    for k in range(2):
+        cols = np.array([0, 1, 2][:2 + k])
+        w = rng.normal(size=cols.size)
+        fold_w = [w + rng.normal(0, 0.1, cols.size) for _ in range(folds.n_folds)]
+        maps = [(float(rng.uniform(0.5, 2.0)), float(rng.normal())) for _ in fold_w]
+        plans.append(CVPlan(cols, w, fold_w, maps, -3.0, 3.0, 60 + k))
+    lags = [1, 4, 25]
+    strides = {lay.index: trace_stride(lay.hi - lay.lo) for lay in plan.layouts}
+    shift = [0.1, -0.2]
+    make = lambda: CVReportPass(feat, plans, folds, strides, lags, shift,  # noqa: E731
+                                columns=np.arange(3), center=center, scale=scale)
+    return {"src": src, "top": top, "feat": feat, "plan": plan, "folds": folds,
+            "plans": plans, "lags": lags, "strides": strides, "center": center,
+            "scale": scale, "make": make}
+
+
+def _direct(small):
+    """The pass's result by plain numpy on whole trajectories read with mdtraj."""
+    src, feat, plans = small["src"], small["feat"], small["plans"]
+    hist = [np.zeros((2, p.n_bins + 2), dtype=np.int64) for p in plans]
+    traces, pairs = [], {lag: [] for lag in small["lags"]}
+    for lay, seg in zip(small["plan"].layouts, src.segments):
+        frames = np.arange(lay.lo, lay.hi)
+        traj = md.load(str(seg.path), top=small["top"])[frames]
+        z = (feat(traj.atom_slice(feat.atom_indices)) - small["center"]) / small["scale"]
+        keys = frame_keys(lay, frames, folds=small["folds"])
+        cv = np.stack([z[:, p.cols] @ p.w for p in plans], axis=1)
+        for c, p in enumerate(plans):
+            edges = p.edges
+            for k in range(small["folds"].n_folds):
+                a, b = p.maps[k]
+                u = a * (z[keys.fold == k][:, p.cols] @ p.fold_w[k]) + b
+                hist[c][lay.state, 1:-1] += np.histogram(u, edges)[0]
+                hist[c][lay.state, 0] += int(np.sum(u < edges[0]))
+                hist[c][lay.state, -1] += int(np.sum(u > edges[-1]))
+        kept = (frames - lay.lo) % small["strides"][lay.index] == 0
+        traces.append((lay.index, frames[kept], cv[kept]))
+        for lag in small["lags"]:
+            pairs[lag].append((cv[:-lag], cv[lag:]))
+    rho = {}
+    for lag, ps in pairs.items():  # reversible estimate, all runs about one mean
+        x = np.concatenate([a for a, _ in ps])
+        y = np.concatenate([b for _, b in ps])
+        m = 0.5 * (x.mean(axis=0) + y.mean(axis=0))
+        var0 = 0.5 * (((x - m) ** 2).mean(axis=0) + ((y - m) ** 2).mean(axis=0))
+        rho[lag] = ((x - m) * (y - m)).mean(axis=0) / var0
+    return hist, traces, rho
+
+
+def test_report_pass_equals_a_direct_computation(small):
+    got = run_pass(small["make"](), small["src"], tasks=small["plan"])
+    hist, traces, rho = _direct(small)
+    for g, h in zip(got["hist"], hist):
+        np.testing.assert_array_equal(g, h)
+    assert sum(int(h.sum()) for h in got["hist"]) == 2 * 4 * 700  # each frame once per CV
+    by_seg = {}
+    for seg, frames, values, states in got["traces"]:
+        by_seg.setdefault(seg, []).append((frames, values, states))
+    assert sorted(by_seg) == [0, 1, 2, 3]
+    for seg, frames, values in traces:
+        parts = by_seg[seg]
+        np.testing.assert_array_equal(np.concatenate([f for f, _, _ in parts]), frames)
+        np.testing.assert_allclose(np.concatenate([v for _, v, _ in parts]), values,
+                                   rtol=1e-12, atol=1e-12)
+        assert frames.size == 700 and frames[0] == 100  # 700 frames: every one is kept
+    for lag, m in zip(small["lags"], got["lagged"]):
+        assert m.n_pairs == 4 * (700 - lag)
+        np.testing.assert_allclose(m.autocorrelation(), rho[lag], rtol=1e-9)
+
+
+def test_report_pass_gives_the_same_bytes_for_any_split_chunk_size_and_order(
+        small, assert_same, random_tasks, shuffled_executor):
+    ref = run_pass(small["make"](), small["src"], tasks=small["plan"])
+    rng = np.random.default_rng(5)
+    for trial in range(4):
+        plan = small["plan"].with_tasks(random_tasks(small["plan"], rng))
+        got = run_pass(small["make"](), small["src"], tasks=plan,
+                       chunk_frames=int(rng.integers(7, 400)),
+                       executor=shuffled_executor(trial))
+        assert_same(ref, got)
+
+
+def test_report_pass_gives_the_same_bytes_on_every_executor(small, assert_same,
+                                                            threaded_dask):
+    ref = run_pass(small["make"](), small["src"], tasks=small["plan"])
+    for executor in (2, threaded_dask):
+        got = run_pass(small["make"](), small["src"],
+                       tasks=small["plan"].split(n_tasks=6), executor=executor)
+        assert_same(ref, got)
+
+
+# ----------------------------------------------------------------- bounded in size
+def _two_states(directory, n_frames, seed=4):
+    """Four-atom toy, one run per state: the C1-C2 distance near 0.4 nm in state A and
+    0.8 nm in state B (AR(1) wiggle), the others fluctuating; 0.1 ps between frames."""
+    rng = np.random.default_rng(seed)
+    top = md.Topology()
+    res = top.add_residue("TOY", top.add_chain(), resSeq=1)
+    for name in ("C1", "C2", "C3", "C4"):
+        top.add_atom(name, md.element.carbon, res)
+    paths = {}
+    for name, centre in (("A", 0.4), ("B", 0.8)):
+        dev = np.zeros(n_frames)
+        for t in range(1, n_frames):
+            dev[t] = 0.8 * dev[t - 1] + rng.normal(0, 0.02)
+        xyz = np.zeros((n_frames, 4, 3))
+        xyz[:, 1, 0] = centre + dev
+        xyz[:, 2] = [0.0, 0.5, 0.0] + rng.normal(0, 0.03, (n_frames, 3))
+        xyz[:, 3] = [0.4, 0.4, 0.3] + rng.normal(0, 0.03, (n_frames, 3))
+        path = directory / f"{name}.xtc"
+        md.Trajectory(xyz.astype(np.float32), top,
+                      time=np.arange(n_frames) * 0.1).save_xtc(str(path))
+        paths[name] = [str(path)]
+    pdb = directory / "toy.pdb"
+    md.Trajectory(xyz[:1].astype(np.float32), top).save_pdb(str(pdb))
+    return str(pdb), paths
+
+
+def test_report_data_size_does_not_grow_with_the_number_of_frames(tmp_path):
+    sizes, docs = [], []
+    for n in (2000, 8000):  # 2x and 8x a thousand frames per run
+        d = tmp_path / str(n)
+        d.mkdir()
+        top, states = _two_states(d, n)
+        res = suggest(Source.from_states(top, states), kinds=("distance",), max_terms=2,
+                      n_suggestions=2, n_bootstrap=0, lag=1.0)
+        res.write(d / "out")
+        sizes.append((d / "out" / "report-data.json").stat().st_size)
+        docs.append(json.loads((d / "out" / "report-data.json").read_text()))
+    small_doc, big_doc = docs
+    for a, b in zip(small_doc["cvs"], big_doc["cvs"]):
+        assert [len(t["frame"]) for t in a["traces"]] == [len(t["frame"]) for t in b["traces"]] \
+            == [1000, 1000]
+        assert b["traces"][0]["frame"][:3] == [0, 8, 16]  # every 8th of 8000 frames
+        for doc in (a, b):  # bins from the states' spreads, at most MAX_BINS
+            assert len(doc["heldout"]["edges"]) <= MAX_BINS + 1
+            assert all(len(v) == 2 for v in doc["heldout"]["outside"].values())
+        assert len(a["timescales"]["lag_ps"]) <= 19 and len(b["timescales"]["lag_ps"]) <= 19
+        assert sum(map(sum, b["heldout"]["counts"].values())) + sum(
+            map(sum, b["heldout"]["outside"].values())) == 2 * 8000  # yet every frame counted
+    # four times the frames, about the same bytes (frame numbers get a digit longer)
+    assert abs(sizes[1] - sizes[0]) < 0.1 * sizes[0], sizes
+
+
+# ------------------------------------------------------------------ --runs and funnel
+def test_tica_picture_thins_the_clustering_sample_by_rank_and_keeps_its_states(
+        tmp_path, hopping_runs, monkeypatch):
+    top, paths = hopping_runs(tmp_path)
+    monkeypatch.setattr(explore, "MAX_REPORT_FRAMES", 1000)
+    src = Source(top)
+    for p in paths:
+        src.add(p, "runs")
+    exp = propose_states(src, lag=1.0, kinds=("distance",))
+    tica = exp.report_tica
+    # 3 runs of 1500 frames within 1000 points: every 5th frame (3 x 300 = 900)
+    assert len(tica["coords"]) == len(tica["state"]) == 900
+    assert tica["frame"] == [t for _ in paths for t in range(0, 1500, 5)]
+    assert tica["files"] == [p.rsplit("/", 1)[-1] for p in paths]
+    labels = [exp.labels[paths[f]][t] for f, t in zip(tica["file"], tica["frame"])]
+    assert tica["state"] == labels  # the state the whole run gave that frame
+    assert tica["lag_ps"] == 1.0 and len(tica["timescales_ps"]) == 2
+    assert tica["timescales_ps"][0] == pytest.approx(exp.timescales_ps[0])
+
+
+def test_funnel_positions_are_every_stride_th_frame_fitted_onto_the_reference(
+        tmp_path, monkeypatch):
+    from cvdesign.testbed.host_guest import write_host_guest
+
+    data = write_host_guest(tmp_path, n_runs=1, n_frames=100)
+    monkeypatch.setattr(funnel_mod, "MAX_POSITIONS", 30)
+    src = Source(data.topology)
+    src.add(data.paths[0], "bound")
+    pocket = select_atoms(src.topology, data.pocket_selection)
+    ligand = select_atoms(src.topology, data.ligand_selection)
+    got = size_funnel_from_source(src, pocket, ligand, executor=2)
+    traj = md.load(data.paths[0], top=data.topology)
+    xyz = traj.xyz.astype(np.float64)
+    ref = size_funnel(xyz[:, pocket], xyz[:, ligand])
+    # 100 frames within 30 positions: every 4th frame (25), by both routes
+    assert len(got["positions"]["z_nm"]) == len(ref["positions"]["z_nm"]) == 25
+    for key in ("z_nm", "r_nm"):
+        np.testing.assert_allclose(got["positions"][key], ref["positions"][key], atol=1e-9)
+    # and they are the ligand centre of those frames in the restraint's frame
+    d = xyz[::4][:, ligand].mean(axis=1) - xyz[::4][:, pocket].mean(axis=1)
+    r_direct = np.linalg.norm(d, axis=1)
+    np.testing.assert_allclose(np.hypot(got["positions"]["z_nm"], got["positions"]["r_nm"]),
+                               r_direct, atol=1e-5)
