@@ -53,6 +53,7 @@ __all__ = [
     "run_biased",
     "softened_delta_f",
     "spec_cv",
+    "well_centers",
     "well_delta_f",
 ]
 
@@ -175,10 +176,12 @@ class WellTemperedBias:
 
     Parameters
     ----------
-    cv : callable
+    cv : callable or None
         ``cv(x) -> (value, gradient)`` for one configuration `x` of shape
         ``(n_atoms, 3)`` in nm; `gradient` has the shape of `x` (units of the
-        CV per nm).
+        CV per nm). None when an engine evaluates the CV and applies the
+        forces itself (as :func:`cvdesign.testbed.openmm_metad.run_openmm_biased`
+        does); the bias is then not callable as a force-field hook.
     sigma : float
         Width (standard deviation) of the Gaussian kernels, in units of the CV.
     height : float
@@ -237,8 +240,9 @@ class WellTemperedBias:
 
     def __init__(self, cv, *, sigma, height, interval_steps, bias_factor, temperature, grid,
                  periodic=False):
-        if not callable(cv):
-            raise TypeError(f"cv must be a callable cv(x) -> (value, gradient); got {cv!r}")
+        if cv is not None and not callable(cv):
+            raise TypeError(f"cv must be a callable cv(x) -> (value, gradient) or None; got "
+                            f"{cv!r}")
         self.cv = cv
         self.sigma = float(sigma)
         self.height = float(height)
@@ -445,6 +449,9 @@ class WellTemperedBias:
         forces : ndarray of the shape of `x`
             ``-dV/ds grad s``, kJ/mol/nm.
         """
+        if self.cv is None:
+            raise TypeError("this bias has no CV callable (cv=None): the engine that "
+                            "evaluates the CV applies its forces")
         s, grad = self.cv(x)
         value, deriv = self.bias_and_derivative(s)
         forces = -np.asarray(deriv, dtype=np.float64)[..., None, None] * np.asarray(
@@ -711,6 +718,18 @@ def asymmetric_torsion_delta_f(system, temperature=300.0):
     return well_delta_f(phi, v, temperature, system.wells["cis"], system.wells["trans"])
 
 
+def well_centers(*wells):
+    """The middle of each ``(low, high)`` interval of a dihedral, rad (``low > high`` wraps).
+
+    Examples
+    --------
+    >>> [round(c, 4) for c in well_centers((-1.0, 1.0), (2.0, -1.0))]
+    [0.0, -2.6416]
+    """
+    return [float(np.angle(np.exp(0.5j * (lo + hi + (2 * np.pi if lo > hi else 0.0)))))
+            for lo, hi in wells]
+
+
 def _in_interval(s, interval):
     lo, hi = interval
     return (s >= lo) & (s <= hi) if lo <= hi else (s >= lo) | (s <= hi)
@@ -861,8 +880,7 @@ def softened_delta_f(system, n_steps, *, temperature, friction, md_step_ps, fact
     stderr = float(np.sqrt((n - 1) / n * np.sum((jack - jack.mean()) ** 2)))
     from .scenarios import count_transitions  # scenarios imports the demo writer
 
-    centers = [float(np.angle(np.exp(0.5j * (lo + hi + (2 * np.pi if lo > hi else 0.0)))))
-               for lo, hi in (system.wells[a], system.wells[b])]
+    centers = well_centers(system.wells[a], system.wells[b])
     crossings = sum(count_transitions(p, centers=centers) for p in phi.T)
     return SoftenedReference(delta_f=float(delta), stderr=stderr, n_transitions=int(crossings),
                              effective_samples=float(w.sum() ** 2 / (w * w).sum()),

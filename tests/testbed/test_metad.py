@@ -189,8 +189,12 @@ def test_rejects_bad_arguments():
         _bias(cv, bias_factor=1.0)
     with pytest.raises(ValueError, match="grid"):
         _bias(cv, grid=(1.0, 0.0, 10))
-    with pytest.raises(TypeError):
-        _bias(None)
+    with pytest.raises(TypeError, match="cv must be a callable"):
+        _bias(3.0)
+    # No CV callable is allowed (an engine evaluates the CV), but then the bias is no
+    # force-field hook.
+    with pytest.raises(TypeError, match="no CV callable"):
+        _bias(None)(np.zeros((4, 3)))
     system = asymmetric_torsion()
     with pytest.raises(ValueError, match=r"report_interval=7 must divide interval_steps=50"):
         run_biased(system, system.states["cis"], 100, bias=_bias(cv, interval_steps=50),
