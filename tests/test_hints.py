@@ -604,3 +604,20 @@ def test_format_hints_shows_values_reasoning_and_caution():
 def test_format_hints_rejects_other_dicts():
     with pytest.raises(InputError, match="hints must be a dict returned by suggest_hints"):
         format_hints({"kernel": {}})
+
+
+def test_hints_warn_that_a_folded_coordinate_narrows_the_kernel_width():
+    # cos of a torsion whose states sit near 0 and pi: both at a bound of [-1, 1]
+    folded = {"closed": {"mean": -0.999, "std": 0.001, "n_frames": 500},
+              "open": {"mean": 0.998, "std": 0.002, "n_frames": 500}}
+    h = suggest_hints(folded, temperature=300.0, md_step_fs=2.0, cv_range=(-1.0, 1.0))
+    (warning,) = [w for w in h["warnings"] if "folded coordinate" in w]
+    assert "state 'closed' sits at the lower" in warning and "'open' sits at the upper" in warning
+    assert "kernels about 5 times wider" in warning
+    # the same states well inside the range, or no range given: no such warning
+    inside = {"closed": {"mean": -0.5, "std": 0.05, "n_frames": 500},
+              "open": {"mean": 0.5, "std": 0.05, "n_frames": 500}}
+    for kwargs in ({"cv_range": (-1.0, 1.0)}, {}):
+        states = inside if kwargs else folded
+        h = suggest_hints(states, temperature=300.0, md_step_fs=2.0, **kwargs)
+        assert not any("folded coordinate" in w for w in h["warnings"])

@@ -79,11 +79,13 @@ from ..errors import InputError
 
 __all__ = [
     "CAUTION",
+    "FOLD_SPREADS",
     "KERNELS",
     "MAX_GRID_BINS",
     "MD_STEP_LIMITS_FS",
     "SPREAD_RESOLUTION",
     "TEMPERATURE_LIMITS_K",
+    "states_at_bounds",
     "bias_factor_for_barrier",
     "check_run_conditions",
     "fill_time_metadynamics",
@@ -742,6 +744,57 @@ def _barriers(barrier, states, temperature):
     return {s: value for s in states}
 
 
+#: A state sits at a bound of the CV (a folded coordinate) when its mean is within this
+#: many of its standard deviations of the bound. Derived here: for a dihedral phi
+#: spread as a Gaussian of width sigma about phi0 and a CV cos(phi), the distance of the
+#: mean of cos(phi) from its bound 1, in standard deviations of cos(phi), is about
+#: ``(k^2 + 1) / (2 sqrt(k^2 + 1/2))`` with ``k = phi0 / sigma`` (small sigma): 0.71 for a
+#: state centred on the fold, 2 at k = 3.8. A state flagged by 2 thus has the fold
+#: within about four of its own spreads of the angle, where thermal motion reaches it.
+FOLD_SPREADS = 2.0
+
+
+def states_at_bounds(states, reachable, *, spreads=FOLD_SPREADS):
+    """The states whose mean lies within `spreads` standard deviations of a bound of the CV.
+
+    Parameters
+    ----------
+    states : dict
+        ``{name: {"mean": float, "std": float, ...}}`` in CV units, as a
+        spec's ``states``.
+    reachable : (float or None, float or None)
+        The CV's reachable range (:func:`reachable_range`).
+    spreads : float, default=FOLD_SPREADS
+        How many standard deviations count as "at" the bound.
+
+    Returns
+    -------
+    dict
+        ``{name: "lower" or "upper"}`` for the states at a bound (the nearer
+        bound, in standard deviations, when both are near), in the order of
+        `states`; empty when none is.
+
+    Examples
+    --------
+    >>> states_at_bounds({"closed": {"mean": -0.99, "std": 0.02},
+    ...                   "open": {"mean": 0.2, "std": 0.3}}, (-1.0, 1.0))
+    {'closed': 'lower'}
+    """
+    lower, upper = reachable
+    out = {}
+    for name, st in states.items():
+        mean, std = float(st["mean"]), float(st["std"])
+        gaps = {}
+        if lower is not None:
+            gaps["lower"] = mean - lower
+        if upper is not None:
+            gaps["upper"] = upper - mean
+        near = {side: gap for side, gap in gaps.items() if gap <= spreads * std}
+        if near:
+            out[name] = min(near, key=lambda side: (near[side], side))
+    return out
+
+
 def suggest_hints(
     states,
     *,
@@ -994,6 +1047,19 @@ def suggest_hints(
         hi_seen = _number("observed_range[1]", hi_seen, positive=False)
         if not hi_seen >= lo_seen:
             raise InputError(f"observed_range={tuple(observed_range)!r} must have lower <= upper")
+
+    folded = {} if cv_range is None or periodic else states_at_bounds(st, (lo_range, hi_range))
+    if folded:
+        warnings.append(
+            "the kernel width comes from the states' spreads along the CV, and "
+            + ", ".join(f"state {name!r} sits at the {side}" for name, side in folded.items())
+            + " bound of its reachable range (a folded coordinate): there the CV changes only "
+            "to second order with its descriptors, so its spread is compressed and the width "
+            "is narrower than the CV's scale between the states, where the bias must push; "
+            "a well-tempered run along such a CV (cos and sin of a torsion, "
+            "tutorials/04_real_engine.py) needed kernels about 5 times wider to stay stable "
+            "and accurate; start wider and check that the run neither heats up nor crosses "
+            "far more often than the barrier allows")
 
     why = []
     tag_cp = "[common practice]"

@@ -55,18 +55,11 @@ A CV of the cos and sin of one dihedral and the cos of another:
 
 import math
 
+from ..bias.hints import FOLD_SPREADS, states_at_bounds  # noqa: F401 (re-exported)
 from ..constants import TWO_PI
 
 __all__ = ["FOLD_SPREADS", "descriptor_value_range", "reachable_range", "states_at_bounds"]
 
-#: A state sits at a bound of the CV (a folded coordinate) when its mean is within this
-#: many of its standard deviations of the bound. Derived here: for a dihedral phi
-#: spread as a Gaussian of width sigma about phi0 and a CV cos(phi), the distance of the
-#: mean of cos(phi) from its bound 1, in standard deviations of cos(phi), is about
-#: ``(k^2 + 1) / (2 sqrt(k^2 + 1/2))`` with ``k = phi0 / sigma`` (small sigma): 0.71 for a
-#: state centred on the fold, 2 at k = 3.8. A state flagged by 2 thus has the fold
-#: within about four of its own spreads of the angle, where thermal motion reaches it.
-FOLD_SPREADS = 2.0
 
 _INF = math.inf
 
@@ -238,44 +231,3 @@ def reachable_range(descriptors, terms, offset=0.0):
         upper += c_hi + t_hi
     return (lower if math.isfinite(lower) else None,
             upper if math.isfinite(upper) else None)
-
-
-def states_at_bounds(states, reachable, *, spreads=FOLD_SPREADS):
-    """The states whose mean lies within `spreads` standard deviations of a bound of the CV.
-
-    Parameters
-    ----------
-    states : dict
-        ``{name: {"mean": float, "std": float, ...}}`` in CV units, as a
-        spec's ``states``.
-    reachable : (float or None, float or None)
-        The CV's reachable range (:func:`reachable_range`).
-    spreads : float, default=FOLD_SPREADS
-        How many standard deviations count as "at" the bound.
-
-    Returns
-    -------
-    dict
-        ``{name: "lower" or "upper"}`` for the states at a bound (the nearer
-        bound, in standard deviations, when both are near), in the order of
-        `states`; empty when none is.
-
-    Examples
-    --------
-    >>> states_at_bounds({"closed": {"mean": -0.99, "std": 0.02},
-    ...                   "open": {"mean": 0.2, "std": 0.3}}, (-1.0, 1.0))
-    {'closed': 'lower'}
-    """
-    lower, upper = reachable
-    out = {}
-    for name, st in states.items():
-        mean, std = float(st["mean"]), float(st["std"])
-        gaps = {}
-        if lower is not None:
-            gaps["lower"] = mean - lower
-        if upper is not None:
-            gaps["upper"] = upper - mean
-        near = {side: gap for side, gap in gaps.items() if gap <= spreads * std}
-        if near:
-            out[name] = min(near, key=lambda side: (near[side], side))
-    return out
