@@ -13,7 +13,7 @@ import pytest
 from cvdesign import Source, suggest
 from cvdesign.io.demo import demo_data_dir
 from cvdesign.parallel import Executor
-from cvdesign.passes import Task
+from cvdesign.passes import Task, run_pass
 
 
 @pytest.fixture(scope="session")
@@ -244,6 +244,25 @@ def random_tasks():
     """``random_tasks(plan, rng)``: tasks of a :class:`cvdesign.passes.TaskPlan` cut at random
     leaves and shuffled (any such split must give the same bytes)."""
     return _random_tasks
+
+
+def _same_for_any_split(passes, source, plan, seed, chunk_frames):
+    """Run `passes` on the plan as given, and again on a random split of its leaves (seed
+    `seed`) through a shuffled executor (seed ``seed + 1``) with reads of `chunk_frames`;
+    assert the two identical and return the first."""
+    reference = run_pass(passes, source, tasks=plan)
+    rng = np.random.default_rng(seed)
+    other = run_pass(passes, source, tasks=plan.with_tasks(_random_tasks(plan, rng)),
+                     executor=ShuffledExecutor(seed + 1), chunk_frames=chunk_frames)
+    _assert_same(reference, other)
+    return reference
+
+
+@pytest.fixture(scope="session")
+def same_for_any_split():
+    """``same_for_any_split(passes, source, plan, seed, chunk_frames)``: the passes' result,
+    checked to be the same bytes for a random task split, arrival order and chunk size."""
+    return _same_for_any_split
 
 
 def _hopping_runs(out, *, n_runs=3, n_frames=1500, seed=5):

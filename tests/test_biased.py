@@ -385,18 +385,14 @@ def _check_biased_direct(sc, src, data, results, shift):
 @SETTINGS
 @given(sc=biased_scenarios())
 def test_biased_passes_give_identical_bytes_for_any_split_and_match_a_direct_reference(
-        sc, assert_same, shuffled_executor, random_tasks):
+        sc, same_for_any_split):
     featurizer = CoordinateFeaturizer(ATOMS)
     with tempfile.TemporaryDirectory() as tmp:
         src, data = _build_biased(sc, tmp)
         plan = plan_tasks(src, leaf_frames=sc["leaf"])
         shift = reference_features(plan, featurizer)
         passes = _biased_passes(sc, featurizer, shift)
-        reference = run_pass(passes, src, tasks=plan)
-        rng = np.random.default_rng(sc["seed"] + 1)
-        other = run_pass(passes, src, tasks=plan.with_tasks(random_tasks(plan, rng)),
-                         executor=shuffled_executor(sc["seed"] + 2), chunk_frames=sc["chunk"])
-        assert_same(reference, other)
+        reference = same_for_any_split(passes, src, plan, sc["seed"] + 1, sc["chunk"])
         _check_biased_direct(sc, src, data, reference, shift)
 
 

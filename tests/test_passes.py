@@ -353,18 +353,14 @@ def _check_card(sc, src, data, card, shift):
 @SETTINGS
 @given(sc=scenarios())
 def test_any_task_split_chunk_size_and_arrival_order_gives_identical_results(
-        sc, assert_same, shuffled_executor, random_tasks):
+        sc, same_for_any_split):
     featurizer = CoordinateFeaturizer(ATOMS)
     with tempfile.TemporaryDirectory() as tmp:
         src, loaded = _build(sc, tmp)
         plan = plan_tasks(src, leaf_frames=sc["leaf"])
         shift = reference_features(plan, featurizer)
         passes = _passes(sc, src, featurizer, shift)
-        reference = run_pass(passes, src, tasks=plan)
-        rng = np.random.default_rng(sc["seed"] + 2)
-        other = run_pass(passes, src, tasks=plan.with_tasks(random_tasks(plan, rng)),
-                         executor=shuffled_executor(sc["seed"] + 3), chunk_frames=sc["chunk"])
-        assert_same(reference, other)
+        reference = same_for_any_split(passes, src, plan, sc["seed"] + 2, sc["chunk"])
         _check_direct(sc, src, loaded, reference, shift)
 
 

@@ -62,36 +62,26 @@ class FoldMoments:
             self._lag_all = merge_all(self.lagged)
             self._lag_train = [merge_all(m for f, m in enumerate(self.lagged) if f != k)
                                for k in range(self.n_folds)]
-        if self.lagged_states is not None:
-            ls = self.lagged_states
-            self._within_test = [within_states(row[k] for row in ls)
-                                 for k in range(self.n_folds)]
-            self._within_train = [within_states(merge_all(m for f, m in enumerate(row) if f != k)
-                                                for row in ls) for k in range(self.n_folds)]
-            self._within_all = within_states(merge_all(row) for row in ls)
+        self._within = {}  # computed when first asked for (objective 'both', the ranking)
 
-    def _require_within(self):
+    def _within_of(self, key, rows):
         if self.lagged_states is None:
             raise ValueError("within-state lagged statistics need the lagged pairs per state "
                              "and fold (FoldMoments(..., lagged=[[...] per fold] per state))")
+        if key not in self._within:
+            self._within[key] = within_states(rows(row) for row in self.lagged_states)
+        return self._within[key]
 
     def within_pooled(self):
         """Lagged pairs of all folds, each state about its own mean (LaggedMoments).
 
         See :func:`within_states`; ValueError without per-state lagged pairs.
         """
-        self._require_within()
-        return self._within_all
-
-    def within_train(self, k):
-        """As :meth:`within_pooled`, every fold but `k`."""
-        self._require_within()
-        return self._within_train[k]
+        return self._within_of("all", merge_all)
 
     def within_test(self, k):
         """As :meth:`within_pooled`, fold `k` alone."""
-        self._require_within()
-        return self._within_test[k]
+        return self._within_of(k, lambda row: row[k])
 
     def lagged_pooled(self):
         """Lagged moments over all folds (LaggedMoments), or None."""
