@@ -113,7 +113,9 @@ def _extreme(spec, sign, rng, n_starts=4):
 @pytest.mark.parametrize("seed", range(3))
 def test_reachable_range_of_random_cos_sin_cvs_is_attained_by_optimizing_the_angles(seed):
     # Chain dihedrals are independent internal coordinates, so every combination of their
-    # values is a geometry: the bounds must be reached, not only contain the values.
+    # values is a geometry: the bounds must be reached, not only contain the values. The
+    # outside reference is scipy's BFGS (Nocedal and Wright, Numerical Optimization, 2006)
+    # over the dihedrals, through the spec's own evaluator.
     rng = np.random.default_rng(100 + seed)
     for _ in range(4):
         spec = _random_trig_spec(rng, int(rng.integers(1, N_CHAIN - 2)))
@@ -123,7 +125,10 @@ def test_reachable_range_of_random_cos_sin_cvs_is_attained_by_optimizing_the_ang
 
 
 def test_two_terms_of_one_dihedral_bound_jointly_not_each_on_its_own():
-    # 3 cos + 4 sin of one dihedral reaches +-5, not +-7 (terms added separately)
+    # 3 cos + 4 sin of one dihedral reaches +-5, not +-7 (terms added separately):
+    # a cos x + b sin x = sqrt(a^2 + b^2) cos(x - atan2(b, a)), the harmonic-addition
+    # identity of any trigonometry text (e.g. Abramowitz and Stegun, Handbook of
+    # Mathematical Functions, 1964, 4.3.17; from memory)
     spec = Spec(name="j", topology=_topology(), descriptors=DIHEDRALS,
                 terms=[{"descriptor": "t1", "transform": t, "center": 0.0, "scale": 1.0,
                         "weight": w} for t, w in (("cos", 3.0), ("sin", 4.0))])
