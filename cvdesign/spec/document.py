@@ -187,6 +187,15 @@ class Spec:
         What to check before relying on the CV.
     hints : dict, optional
         Free-form bias-parameter suggestions; stored only when given.
+    restraints : list of dict, optional
+        Restraints to apply together with the bias on the CV; stored only
+        when given. Version 1 knows ``{"id": str, "kind": "funnel", ...}``
+        with the funnel's ``groups`` ([ligand, pocket] atom indices), axis,
+        reference pocket (nm), walls (nm), cone half-angle (rad) and wall
+        force constant (kJ/mol/nm²); every key is listed in
+        ``docs/spec-v1.md`` ("restraints"). ``cvdesign funnel`` writes one
+        (:func:`cvdesign.bias.funnel.size_funnel`). Labels and atom identities
+        are filled in as for the descriptors.
 
     Raises
     ------
