@@ -407,11 +407,20 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
         ranked_sets = [[cpos[short.index(g)] for g in f.gidx] for f in fits]
         n_terms_all = sum(len(m) for m in ranked_sets)
 
+        # the crossing runs' pairs (transition slowness) in the blocks' columns, not resampled
+        # here (their own bootstrap: cvdesign.pipeline.transitions.transition_intervals)
+        cols = np.empty(len(where), dtype=np.intp)
+        for i, p in where.items():
+            cols[p] = i
+        transit = None if fm.transitions is None else [[m.subset(cols) for m in row]
+                                                       for row in fm.transitions]
+
         def select(merged):
             grid = [[merged[s * n_folds + k][0] for k in range(n_folds)] for s in range(n_states)]
             lag = ([[merged[s * n_folds + k][1] for k in range(n_folds)]
                     for s in range(n_states)] if has_lag else None)
-            boot_fm = FoldMoments(grid, priors, lag)
+            boot_fm = FoldMoments(grid, priors, lag, transit,
+                                  rank_transitions=fm.rank_transitions)
             combos = greedy_search(boot_fm, cand_groups, max_terms=max_terms, n_seeds=n_seeds,
                                    min_gain=min_gain, **search)
             refit = [frozenset(c.members) for c in rank_combinations(combos, limit=len(fits))]
@@ -463,6 +472,15 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
             pos += n
         out["n_selection"] = int(ok.sum())
     return out
+
+
+def _ranked_slowness(objective, fm, lag_ps):
+    """Which slowness the ranking's score used: ``'transitions'`` or ``'within_states'``
+    (objective ``both``), ``'all_pairs'`` (``slow``: every lagged pair about one mean), or
+    None (``separate``, or no lag)."""
+    if lag_ps is None or objective == "separate":
+        return None
+    return "all_pairs" if objective == "slow" else fm.slowness
 
 
 #: A CV whose Fisher ratio exceeds this barely moves within the states: its within-state
@@ -572,6 +590,7 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
         "autocorrelation_within_states": (_finite(rho_in_all) if rho_in_all is not None
                                           else None),
         "timescale_within_states_ps": _finite(timescale_in) if timescale_in is not None else None,
+        "slowness_ranked_on": _ranked_slowness(objective, fm, lag_ps),
         "states": state_stats, "terms": terms,
         "warnings": _rigid_cv_warnings(state_stats, j_all, sep),
     }
