@@ -228,7 +228,9 @@ def test_cli_labelled_biased_runs_rank_on_transition_slowness(toy, tmp_path, cap
     states); the outputs say which slowness ranked and hold the transition columns."""
     from cvdesign.cli import main
 
-    assert main(_cli_args(toy, tmp_path / "out", (0, 1))) == 0
+    args = [a for a in _cli_args(toy, tmp_path / "out", (0, 1)) if a != "--no-report"]
+    assert main(args) == 0
+    assert "autocorr: held-out, along the runs that cross" in capsys.readouterr().out
     rows = list(csv.DictReader((tmp_path / "out" / "ranking.csv").open()))
     assert [r["slowness_ranked_on"] for r in rows] == ["transitions", "transitions"]
     assert float(rows[0]["heldout_autocorrelation_transitions"]) > 0.6
@@ -238,6 +240,17 @@ def test_cli_labelled_biased_runs_rank_on_transition_slowness(toy, tmp_path, cap
     assert "objective 'both' ranks on the transition slowness" in summary
     ranking = json.loads((tmp_path / "out" / "ranking.json").read_text())
     assert ranking["ranking"][0]["slowness_ranked_on"] == "transitions"
+    report = (tmp_path / "out" / "report.html").read_text()
+    assert "along the runs that cross between the states" in report
+
+
+def test_suggest_with_crossing_runs_gives_the_same_bytes_on_two_processes(toy):
+    kwargs = dict(objective="both", lag=LAG_PS, n_bootstrap=5, max_terms=1, n_suggestions=2,
+                  kinds=("distance",), cutoff=5.0, n_folds=3, seed=1)
+    serial = suggest(_source(toy), **kwargs)
+    parallel = suggest(_source(toy), executor=2, **kwargs)
+    assert serial.ranking_json() == parallel.ranking_json()
+    assert serial.ranking_csv() == parallel.ranking_csv()
 
 
 def test_labels_file_with_another_number_of_frames_is_refused_naming_both_files(

@@ -232,6 +232,9 @@ class Suggestions:
                          f"{r['heldout_fisher_ratio']:>10.3g}  "
                          f"{'' if ov is None else format(ov, '.3f'):>7}  "
                          f"{'' if rho is None else format(rho, '.3f'):>8}  {names}")
+        if any(_ranked_on_transitions(r) for r in self.ranking[:n]):
+            lines.append("autocorr: held-out, along the runs that cross between the states "
+                         "(transition slowness, which objective both ranked on)")
         return "\n".join(lines)
 
     def __repr__(self):
