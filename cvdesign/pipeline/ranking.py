@@ -107,7 +107,8 @@ def search(fm, screening, short, config, notes):
                            min_gain=config.min_gain, **config.search)
     ranked = rank_combinations(combos, limit=config.n_suggestions)
     notes.append(_search_note(config.objective, config.method, config.shrinkage, len(combos),
-                              min(config.n_seeds, len(short.members)), config.min_gain))
+                              min(config.n_seeds, len(short.members)), config.min_gain,
+                              fm.slowness))
     return ranked
 
 
@@ -251,13 +252,17 @@ def _bound(x):
     return "unbounded" if x is None else f"{x:.4g}"
 
 
-def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
+def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain,
+                 slowness="within_states"):
+    transit = objective == "both" and slowness == "transitions"
     what = {"separate": "held-out Fisher ratio of the discriminant direction",
             "slow": "held-out VAMP-2 of the slowest singular function (squared correlation "
                     "across the lag)",
             "both": "held-out J/(1+J) times (1 + rho)/2, rho the held-out autocorrelation at "
-                    "the lag within the states (each state's pairs about its own mean; "
-                    "negative rho counts as 0)"}[objective]
+                    + ("the lag along the runs that cross between the states (each run's "
+                       "held-out block about its own mean; " if transit else
+                       "the lag within the states (each state's pairs about its own mean; ")
+                    + "negative rho counts as 0)"}[objective]
     disc = ("; the CV is the slowest TICA direction (reversible estimate) in kinetic-map "
             "scaling" if objective == "slow" else
             f"; {method.upper()} with shrinkage {shrinkage:g}, equal state weights")
@@ -266,7 +271,10 @@ def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
              "states: the slowness ranked on is that of the motion inside the states (about "
              "one common mean, every separating CV would look slow), and it may at most halve "
              "the separation score, so it orders CVs that separate about equally well"
-             if objective == "both" else "")
+             if objective == "both" and not transit else
+             "; along the crossing runs the pairs span the state changes, so rho tells how "
+             "slowly the CV crosses between the states; it may at most halve the separation "
+             "score" if transit else "")
     return (f"search ({objective}): {n_combos} combinations from greedy forward searches "
             f"started at the {n_seeds} best single descriptors, scored by {what}; a term is "
             f"added only if it raises the score by more than {min_gain:.0%}; ranked with the "

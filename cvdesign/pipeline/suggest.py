@@ -850,7 +850,10 @@ def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags):
         f"lag: {lag_ps:g} ps"
         + (" (default: 10 frames, for the slowness columns only)" if config.lag_ps is None
            else "")
-        + "; lagged pairs never span a file, a state change or a gap in frames"]
+        + "; lagged pairs never span a file, a state change or a gap in frames"
+        + ("" if not source.crossing_runs() else
+           " (except along the runs that cross between the states, for the transition "
+           "slowness below)")]
 
 
 def _folds_note(folds):

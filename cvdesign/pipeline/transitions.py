@@ -195,6 +195,29 @@ def gather_transitions(source, featurizer, shift, lags, n_folds, *, executor=Non
     -------
     TransitionData or None
         None when the source has no crossing run.
+
+    Examples
+    --------
+    One unbiased run of one particle hopping along x between two states, every 50 frames:
+
+    >>> import os, tempfile
+    >>> import mdtraj as md
+    >>> from cvdesign import Source
+    >>> from cvdesign.passes import CoordinateFeaturizer
+    >>> top = md.Topology(); _ = top.add_atom("C", md.element.carbon,
+    ...     top.add_residue("X", top.add_chain()))
+    >>> x = np.repeat(np.tile([0.5, 1.5], 10), 50)
+    >>> labels = np.where(x < 1.0, "a", "b")
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     path = os.path.join(d, "run.xtc")
+    ...     md.Trajectory(np.stack([x, 0 * x, 0 * x], 1)[:, None].astype(np.float32),
+    ...                   top).save_xtc(path)
+    ...     src = Source(top).add_labelled(path, labels)
+    ...     data = gather_transitions(src, CoordinateFeaturizer([0]), np.zeros(3), {0: 5}, 2)
+    >>> data.n_crossings, data.blocks_per_fold  # sub-blocks of 62 or 63 frames
+    ([19], 8)
+    >>> data.per_fold.tolist(), data.ranks  # the crossings inside a sub-block of each fold
+    ([8, 8], True)
     """
     runs = source.crossing_runs()
     if not runs or lags is None:
