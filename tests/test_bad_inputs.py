@@ -362,6 +362,30 @@ CLI_CASES = [
     Case("suggest-bias-column-without-bias-energy",
          lambda c: c.suggest("--bias-column", "2"), 2,
          r"--bias-column goes with --bias-energy TRAJ FILE"),
+    # -- suggest: trajectories with per-frame states (--labelled TRAJ LABELS)
+    Case("suggest-labels-file-missing",
+         lambda c: c.suggest("--labelled", c.closed, c.w("none.labels")), 2,
+         r"labels file '.*none\.labels' does not exist; check the path"),
+    Case("suggest-labels-count-differs",
+         lambda c: c.suggest("--labelled", c.closed, c.file("l.txt", "closed\n" * 10)), 2,
+         r"--labelled .*closed-1\.xtc .*l\.txt: labels file '.*l\.txt' holds 10 labels, but "
+         r"trajectory '.*closed-1\.xtc' has 2000 frames; give one line per frame"),
+    Case("suggest-labels-two-words-on-a-line",
+         lambda c: c.suggest("--labelled", c.closed, c.file("l.txt", "# x\nclosed\nopen now\n")),
+         2, r"labels file '.*l\.txt', line 3: 'open now' is more than one word; give one state "
+            r"name \(or '-' for a frame in no state\) per line"),
+    Case("suggest-labels-name-no-state",
+         lambda c: c.suggest("--labelled", c.closed, c.file("l.txt", "-\n-\n")), 2,
+         r"labels file '.*l\.txt' names no state; give one state name \(or '-'\) per frame"),
+    Case("suggest-labelled-with-runs",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, c.open, "--lag", "1",
+                    "--labelled", c.closed, c.file("l.txt", "closed\n"),
+                    "--out", c.w("out")], 2,
+         r"--labelled goes with --state: proposing states from unlabelled runs"),
+    Case("suggest-no-states-no-runs",
+         lambda c: ["suggest", "--topology", c.top, "--out", c.w("out")], 2,
+         r"give the states with --state NAME FILE \[FILE \.\.\.\] \(and trajectories with "
+         r"per-frame states with --labelled TRAJ LABELS\), or unlabelled runs with --runs"),
     # -- apply
     Case("apply-out-exists-without-force",
          lambda c: c.apply("--out", c.file("values.csv", "earlier results\n")), 2,

@@ -640,3 +640,82 @@ def test_residue_group_features_in_a_periodic_box_give_identical_results_for_any
                      executor=shuffled_executor(1))
     assert_same(reference, other)
     assert reference[0].min_box_height == pytest.approx(4.0)
+
+
+# ------------------------------------------- transition pairs: along whole crossing runs
+def _direct_transition_pairs(n, lag, n_folds, clock=None):
+    """Pairs (t, u, fold) along every frame of a file (states ignored: pairs span state
+    changes and unlabelled frames), both frames in one contiguous fold ``f * n_folds // n``;
+    ``u = t + lag``, or in rescaled time the frame after t closest to clock[t] + lag among
+    those up to the first that reaches it (a tie: the later one)."""
+    out = []
+    for t in range(n):
+        if clock is None:
+            u = t + lag
+        else:
+            reach = [f for f in range(t + 1, n) if clock[f] >= clock[t] + lag]
+            if not reach:
+                continue
+            u = reach[0]
+            if u - 1 > t and clock[t] + lag - clock[u - 1] < clock[u] - clock[t] - lag:
+                u -= 1
+        if u < n and t * n_folds // n == u * n_folds // n:
+            out.append((t, u, t * n_folds // n))
+    return out
+
+
+@settings(max_examples=20, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(sc=scenarios(), biased=st.booleans())
+def test_transition_pairs_span_state_changes_and_give_the_same_bytes_for_any_split(
+        sc, biased, same_for_any_split):
+    """The crossing runs as states of their own (Source.runs_as_states): LaggedPass pairs
+    every frame of the file, the unlabelled frames and state changes included, weighted and
+    in rescaled time when biased; the same bytes for any split, chunk size and order, and
+    the sums of a direct computation."""
+    import dataclasses
+
+    featurizer = CoordinateFeaturizer(ATOMS)
+    with tempfile.TemporaryDirectory() as tmp:
+        src, loaded = _build(sc, tmp)
+        runs = src.crossing_runs()
+        if not runs:
+            return
+        rng = np.random.default_rng(sc["seed"] + 4)
+        kt = 0.0083144626181532 * 300.0
+        if biased:
+            src.temperature = 300.0
+            for si in runs:
+                seg = src.segments[si]
+                src.segments[si] = dataclasses.replace(
+                    seg, bias=rng.uniform(0.0, 3.0, seg.labels.shape[0]) * kt,
+                    bias_path=Path(tmp) / f"{si}.bias")
+        tsrc = src.runs_as_states(runs, [f"run {i}" for i in range(len(runs))])
+        plan = plan_tasks(tsrc, leaf_frames=sc["leaf"])
+        lags = {i: sc["lags"][si] for i, si in enumerate(runs)}
+        shift = reference_features(plan, featurizer)
+        result = same_for_any_split(
+            LaggedPass(featurizer, lags, shift=shift, folds=Folds(sc["n_folds"])), tsrc, plan,
+            sc["seed"] + 3, sc["chunk"])
+        want = {}
+        for i, si in enumerate(runs):
+            seg = src.segments[si]
+            x = loaded[str(seg.path)].xyz[:, ATOMS].reshape(seg.labels.shape[0], -1)
+            n = x.shape[0]
+            if lags[i] is None:
+                continue
+            clock = w = None
+            if biased:
+                e = np.exp(seg.bias / kt)
+                clock, w = np.concatenate([[0.0], np.cumsum(e)])[:n], e / e.mean()
+            for t, u, k in _direct_transition_pairs(n, lags[i], sc["n_folds"], clock):
+                want.setdefault((i, i, k), []).append((x[t], x[u], 1.0 if w is None else w[t]))
+        assert set(result.runs) == set(want)
+        for key, pairs in want.items():
+            m = result.runs[key]
+            x0, xt = (np.array(v) - shift for v in list(zip(*pairs))[:2])
+            wt = np.array([p[2] for p in pairs])
+            assert m.n_pairs == len(pairs)
+            _close(m.count, wt.sum())
+            _close(m.sum_xy, (wt[:, None] * x0).T @ xt)
+            _close(m.sum_yy, (wt[:, None] * xt).T @ xt)

@@ -132,8 +132,10 @@ def _add_suggest_options(p):
                    help="what the search maximizes on held-out data: 'separate' the states "
                         "(Fisher ratio, dimensionless), 'slow' the slowest linear motion "
                         "(cross-validated VAMP-2 at --lag), or 'both' (product of the "
-                        "separation mapped to [0, 1) and the autocorrelation at --lag); every "
-                        "suggestion reports both numbers (default: separate)")
+                        "separation mapped to [0, 1) and the autocorrelation at --lag, within "
+                        "the states, or along the --labelled runs that cross between them "
+                        "when they cross often enough); every suggestion reports both "
+                        "numbers (default: separate)")
     p.add_argument("--lag", type=_positive_float, default=None, metavar="PS",
                    help="lag time in ps for slowness scores, converted to frames with each "
                         "file's time step; needed for --objective slow or both and for --runs "
@@ -203,11 +205,12 @@ def build_parser():
                     "trajectories, and write ranking.csv, ranking.json, scorecard.csv, "
                     "summary.md, one spec file per suggestion (cv-01.json is rank 1) and "
                     "report.html (figures; see --no-report). "
-                    "Give the states with --state, or unlabelled runs with --runs.")
+                    "Give the states with --state (and runs with per-frame states with "
+                    "--labelled), or unlabelled runs with --runs.")
     p.add_argument("--topology", required=True, metavar="TOP",
                    help="topology file that mdtraj reads (PDB, GRO, PSF, PRMTOP, HDF5, ...); "
                         "bonds are needed for angles and dihedrals")
-    given = p.add_mutually_exclusive_group(required=True)
+    given = p.add_mutually_exclusive_group()
     given.add_argument("--state", nargs="+", action="append", metavar=("NAME", "FILE"),
                        help="a state name followed by its trajectory files (any format mdtraj "
                             "reads); repeat for each state, at least two states")
@@ -217,9 +220,20 @@ def build_parser():
                             "(which is then required), checked to be metastable from the runs' "
                             "transitions (a warning names any that is not; none metastable is "
                             "refused), written to states.csv, and CVs are designed for them")
+    p.add_argument("--labelled", nargs=2, action="append", metavar=("TRAJ", "LABELS"),
+                   default=None,
+                   help="a trajectory whose frames carry their own state, typically a biased "
+                        "run that crossed between the states (with --bias-energy): LABELS "
+                        "holds one line per frame of TRAJ, frame 0 first, the frame's state "
+                        "name or '-' for a frame between the states ('#' comments). Its "
+                        "labelled frames join their states; when its labels visit two or "
+                        "more states, slowness is also measured along the whole run, "
+                        "crossings included, which --objective both then ranks on. Repeat "
+                        "for each such trajectory")
     p.add_argument("--bias-energy", nargs=2, action="append", metavar=("TRAJ", "FILE"),
                    default=None,
-                   help="a biased run: a trajectory given with --state and its bias-energy "
+                   help="a biased run: a trajectory given with --state or --labelled and its "
+                        "bias-energy "
                         "file (one bias energy in kJ/mol per frame of the whole trajectory, "
                         "frame 0 first; '#' comments; one column, or columns with a header "
                         "line, the one named 'bias' read unless --bias-column says otherwise). "
@@ -476,10 +490,18 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         _log.warning("%s", warning)
     biases = getattr(args, "bias_energy", None) or []
     bias_column = getattr(args, "bias_column", None)
+    labelled = getattr(args, "labelled", None) or []
     given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or []) \
-        + [b for _, b in biases]
+        + [b for _, b in biases] + [f for pair in labelled for f in pair]
     prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json",
                        owned=is_output_file)
+    if not states and not runs and not labelled:
+        raise InputError("give the states with --state NAME FILE [FILE ...] (and trajectories "
+                         "with per-frame states with --labelled TRAJ LABELS), or unlabelled "
+                         "runs with --runs FILE [FILE ...]")
+    if labelled and runs:
+        raise InputError("--labelled goes with --state: proposing states from unlabelled runs "
+                         "(--runs) labels the frames itself")
     if biases and runs:
         raise InputError("--bias-energy goes with --state: proposing states from unlabelled "
                          "biased runs (--runs) is not supported yet")
@@ -497,6 +519,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         if getattr(args, "n_states", None) is not None:
             raise InputError("--n-states goes with --runs (states proposed from unlabelled "
                              "runs); with --state the states are the ones given")
+        states = states or []
         names = [s[0] for s in states]
         dup = sorted({n for n in names if names.count(n) > 1})
         if dup:
@@ -504,7 +527,8 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                              "of its files")
         source = Source(topology, timestep=args.frame_step_ps,
                         temperature=args.temperature if biases else None)
-        bias_of = _bias_files(biases, [f for entry in states for f in entry[1:]])
+        bias_of = _bias_files(biases, [f for entry in states for f in entry[1:]]
+                              + [t for t, _ in labelled])
         for entry in states:
             name, files = entry[0], entry[1:]
             if not files:
@@ -513,6 +537,9 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
             for f in files:
                 source.add(f, state=name, bias=bias_of.get(f),
                            bias_column=bias_column if f in bias_of else None)
+        for traj, label_file in labelled:
+            source.add_labelled(traj, _labels_for(traj, label_file), bias=bias_of.get(traj),
+                                bias_column=bias_column if traj in bias_of else None)
     exploration = None
     with _executor(args) as executor:
         if runs:
@@ -534,6 +561,9 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                          temperature=args.temperature, md_step_fs=args.md_step_fs,
                          executor=executor)
     result.exploration = exploration
+    for note in result.notes:  # the fallback from the transition slowness (also in summary.md)
+        if note.startswith("warning: transition slowness"):
+            _log.warning("%s", note[len("warning: "):])
     if source.biased:  # small effective sample sizes (also in summary.md)
         for warning in source.reweighting().describe()[1]:
             _log.warning("%s", warning)
@@ -560,6 +590,22 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     return result, report_ok
 
 
+def _labels_for(traj, label_file):
+    """The per-frame states of a --labelled trajectory, one per frame (checked)."""
+    from ..io.source import file_frames, read_labels_file
+
+    labels = read_labels_file(label_file)
+    if not Path(traj).is_file():
+        raise InputError(f"--labelled {traj} {label_file}: trajectory {traj!r} does not exist; "
+                         "check the path")
+    n = file_frames(traj)
+    if n != labels.shape[0]:
+        raise InputError(f"--labelled {traj} {label_file}: labels file {label_file!r} holds "
+                         f"{labels.shape[0]} labels, but trajectory {traj!r} has {n} frames; "
+                         "give one line per frame (its state, or '-' between the states)")
+    return labels
+
+
 def _bias_files(biases, files):
     """``{trajectory as given with --state: bias-energy file}`` from the --bias-energy pairs."""
     out = {}
@@ -570,8 +616,8 @@ def _bias_files(biases, files):
         match = [f for f in files if Path(f).is_file() and os.path.samefile(f, traj)]
         if not match:
             raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} is not given "
-                             "with --state; pair each biased run of the states with its "
-                             "bias-energy file")
+                             "with --state or --labelled; pair each biased run of the states "
+                             "with its bias-energy file")
         for f in match:
             if f in out:
                 raise InputError(f"--bias-energy names trajectory {traj!r} twice; give one "

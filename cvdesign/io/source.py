@@ -204,6 +204,65 @@ def check_label_count(segment, n_frames):
                          f"{n_labels} labels were given; give one label per frame")
 
 
+#: The label of a frame in no state in a labels file (:func:`read_labels_file`).
+NO_STATE_LABEL = "-"
+
+
+def read_labels_file(path):
+    r"""Per-frame state names from a labels file.
+
+    One line per frame of the trajectory, frame 0 first: the state name of
+    the frame (one word), or ``-`` for a frame in no state (between the basin
+    cores: a transition frame); blank lines and lines starting with ``#`` are
+    skipped.
+
+    Parameters
+    ----------
+    path : path-like
+
+    Returns
+    -------
+    ndarray of object, shape (n_frames,)
+        State names, None for ``-``.
+
+    Raises
+    ------
+    InputError
+        A missing or unreadable file, a line of more than one word, no frame
+        or no state named (naming the file and line).
+
+    Examples
+    --------
+    >>> import tempfile, os
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     p = os.path.join(d, "run.labels")
+    ...     _ = open(p, "w").write("# states of run.xtc\nopen\n-\nclosed\n")
+    ...     read_labels_file(p).tolist()
+    ['open', None, 'closed']
+    """
+    path = _check_file(path, "labels")
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"cannot read labels file {str(path)!r} ({exc}); give a text file "
+                         f"with one state name (or {NO_STATE_LABEL!r}) per frame") from None
+    labels = []
+    for n, line in enumerate(text.splitlines(), 1):
+        words = line.split()
+        if not words or words[0].startswith("#"):
+            continue
+        if len(words) > 1:
+            raise InputError(f"labels file {str(path)!r}, line {n}: {line.strip()!r} is more "
+                             f"than one word; give one state name (or {NO_STATE_LABEL!r} for a "
+                             "frame in no state) per line")
+        labels.append(None if words[0] == NO_STATE_LABEL else words[0])
+    if not any(x is not None for x in labels):
+        raise InputError(f"labels file {str(path)!r} names no state"
+                         + (" (it holds no frame)" if not labels else "")
+                         + f"; give one state name (or {NO_STATE_LABEL!r}) per frame")
+    return np.array(labels, dtype=object)
+
+
 def _check_file(path, what):
     path = Path(path)
     if not path.exists():
@@ -849,6 +908,59 @@ class Source:
                                      *energies))
         self._reweighting = None
         return self
+
+    def crossing_runs(self):
+        """Segments whose per-frame labels visit two or more states (runs that crossed).
+
+        Returns
+        -------
+        list of int
+            Indices into :attr:`segments`, in order.
+        """
+        return [si for si, seg in enumerate(self.segments) if seg.labels is not None
+                and len({x for x in seg.labels if x is not None}) >= 2]
+
+    def runs_as_states(self, indices, names):
+        """A source holding whole files of some segments, each file a state of its own.
+
+        Every frame of each file belongs to its new state, the frames labelled
+        None (between the states) included; bias energies, topology, chunk size,
+        time step and temperature are kept, and the files are not checked again.
+        With bias energies, each file's weights are then normalized over that
+        file alone (:mod:`cvdesign.io.bias`: one constant per state).
+
+        Parameters
+        ----------
+        indices : sequence of int
+            Segments (indices into :attr:`segments`) of labelled files.
+        names : sequence of str
+            Name of the state of each.
+
+        Returns
+        -------
+        Source
+
+        Examples
+        --------
+        >>> import mdtraj as md
+        >>> top = md.Topology(); _ = top.add_atom("C", md.element.carbon,
+        ...     top.add_residue("X", top.add_chain()))
+        >>> src = Source(top)
+        >>> src.segments.append(Segment(Path("run.xtc"), None, labels=np.array(["a", None, "b"])))
+        >>> src.crossing_runs(), src.runs_as_states([0], ["run 1"]).states
+        ([0], ['run 1'])
+        """
+        out = Source(self.topology, chunk_size=self.chunk_size, timestep=self.default_timestep,
+                     temperature=self.temperature)
+        out.topology_path = self.topology_path
+        for si, name in zip(indices, names):
+            seg = self.segments[si]
+            out._add_state(name)
+            out.segments.append(Segment(seg.path, str(name), None, None, None, seg.bias,
+                                        seg.bias_path, seg.bias_column))
+        out._checked, out._stored_steps = self._checked, self._stored_steps
+        out._time_notes = self._time_notes
+        return out
 
     def _check_trajectory(self, path):
         path = _check_file(path, "trajectory")

@@ -155,6 +155,11 @@ class Suggestions:
         """The score card as CSV text (``*_ci_low``/``*_ci_high``: 95 % interval)."""
         return _csv_text(_SCORECARD_TABLE, self.scorecard)
 
+    def _ranked_on(self):
+        """The slowness the ranking's score used (``'transitions'``, ``'within_states'``,
+        ``'all_pairs'`` or None; see ``slowness_ranked_on`` of the entries)."""
+        return self.ranking[0].get("slowness_ranked_on") if self.ranking else None
+
     def ranking_csv(self):
         """The ranking as CSV text (one row per combination)."""
         return _csv_text(_RANKING_TABLE, self.ranking)
@@ -227,6 +232,9 @@ class Suggestions:
                          f"{r['heldout_fisher_ratio']:>10.3g}  "
                          f"{'' if ov is None else format(ov, '.3f'):>7}  "
                          f"{'' if rho is None else format(rho, '.3f'):>8}  {names}")
+        if any(_ranked_on_transitions(r) for r in self.ranking[:n]):
+            lines.append("autocorr: held-out, along the runs that cross between the states "
+                         "(transition slowness, which objective both ranked on)")
         return "\n".join(lines)
 
     def __repr__(self):
@@ -295,7 +303,16 @@ class Suggestions:
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
                 "normalized autocorrelation of the CV at the lag (1 = does not relax within "
-                + ("the lag, within the states: each state's runs about that state's own mean, "
+                + ("the lag, along the runs that cross between the states (biased runs fed "
+                   "back with per-frame labels): each run's lagged pairs, spanning the "
+                   "crossings and the frames between the states, about that run's own mean, "
+                   "on held-out blocks of each run, which objective `both` ranks on "
+                   "(`slowness_ranked_on` = `transitions`; the columns "
+                   "`heldout_autocorrelation_transitions`, `autocorrelation_transitions` and "
+                   "`timescale_transitions_ps` of ranking.csv), and the timescale is "
+                   "-lag/ln(autocorrelation) along those runs on all their data; "
+                   if self._ranked_on() == "transitions" else
+                   "the lag, within the states: each state's runs about that state's own mean, "
                    "how slowly the CV moves inside the basins, which objective `both` ranks "
                    "on; about one common mean every separating CV would look slow, since the "
                    "lagged pairs never leave their state; the columns `heldout_autocorrelation` "
@@ -412,6 +429,14 @@ _RANKING_TABLE = (
     + _interval("timescale_within_states", "timescale_within_states_ci_ps", "_ps")
     + [("timescale_within_states_resolved", "flag",
         _value("timescale_within_states_resolved"))]
+    + [("slowness_ranked_on", "text", _value("slowness_ranked_on"))]
+    + _numbers("heldout_autocorrelation_transitions")
+    + _interval("heldout_autocorrelation_transitions", "heldout_autocorrelation_transitions_ci")
+    + _numbers("autocorrelation_transitions")
+    + _interval("autocorrelation_transitions", "autocorrelation_transitions_ci")
+    + _numbers("timescale_transitions_ps")
+    + _interval("timescale_transitions", "timescale_transitions_ci_ps", "_ps")
+    + [("timescale_transitions_resolved", "flag", _value("timescale_transitions_resolved"))]
     + _numbers("integrated_time_ps") + _interval("integrated_time", "integrated_time_ci_ps", "_ps")
     + [("terms", "text", lambda r: "; ".join(_term_name(t) for t in r["terms"])),
        ("weights", "text", lambda r: " ".join(_fmt(t["weight"]) for t in r["terms"])),
@@ -502,6 +527,11 @@ def _clip(text, width):
     return text if len(text) <= width else text[:width - 3] + "..."
 
 
+def _ranked_on_transitions(r):
+    """Whether a ranking entry's score used the crossing runs' transition slowness."""
+    return r.get("slowness_ranked_on") == "transitions"
+
+
 def _heldout_scores(r):
     """The held-out scores of a ranking entry as short texts."""
     out = []
@@ -513,14 +543,17 @@ def _heldout_scores(r):
         out.append(f"overlap {r['heldout_overlap']:.3f}")
     rho = _shown_autocorrelation(r)
     if rho is not None:
-        within = " (within states)" if r.get("objective") == "both" else ""
+        within = ((" (transitions)" if _ranked_on_transitions(r) else " (within states)")
+                  if r.get("objective") == "both" else "")
         out.append(f"autocorr.{within} {rho:.3f}")
     return out
 
 
 def _shown_autocorrelation(r):
-    """The held-out autocorrelation the tables show: within the states for objective
-    ``both`` (what it ranks on), about the common mean otherwise."""
+    """The held-out autocorrelation the tables show: for objective ``both`` what it ranks
+    on (along the crossing runs, or within the states), about the common mean otherwise."""
+    if _ranked_on_transitions(r):
+        return r.get("heldout_autocorrelation_transitions")
     if r.get("objective") == "both":
         return r.get("heldout_autocorrelation_within_states")
     return r.get("heldout_autocorrelation")
@@ -572,11 +605,12 @@ def _term_name(t):
 
 
 def _timescale_text(r):
-    within = r.get("objective") == "both"
-    ts = r.get("timescale_within_states_ps" if within else "timescale_ps")
+    key = ("timescale_transitions" if _ranked_on_transitions(r) else
+           "timescale_within_states" if r.get("objective") == "both" else "timescale")
+    ts = r.get(f"{key}_ps")
     if ts is None:
         return ""
-    resolved = r.get("timescale_within_states_resolved" if within else "timescale_resolved")
+    resolved = r.get(f"{key}_resolved")
     if resolved is False and r.get("longest_run_ps"):
         return f"> {r['longest_run_ps']:.3g} (not resolved by these runs)"
     return format(ts, ".3g")

@@ -107,7 +107,8 @@ def search(fm, screening, short, config, notes):
                            min_gain=config.min_gain, **config.search)
     ranked = rank_combinations(combos, limit=config.n_suggestions)
     notes.append(_search_note(config.objective, config.method, config.shrinkage, len(combos),
-                              min(config.n_seeds, len(short.members)), config.min_gain))
+                              min(config.n_seeds, len(short.members)), config.min_gain,
+                              fm.slowness))
     return ranked
 
 
@@ -251,13 +252,17 @@ def _bound(x):
     return "unbounded" if x is None else f"{x:.4g}"
 
 
-def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
+def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain,
+                 slowness="within_states"):
+    transit = objective == "both" and slowness == "transitions"
     what = {"separate": "held-out Fisher ratio of the discriminant direction",
             "slow": "held-out VAMP-2 of the slowest singular function (squared correlation "
                     "across the lag)",
             "both": "held-out J/(1+J) times (1 + rho)/2, rho the held-out autocorrelation at "
-                    "the lag within the states (each state's pairs about its own mean; "
-                    "negative rho counts as 0)"}[objective]
+                    + ("the lag along the runs that cross between the states (each run's "
+                       "held-out block about its own mean; " if transit else
+                       "the lag within the states (each state's pairs about its own mean; ")
+                    + "negative rho counts as 0)"}[objective]
     disc = ("; the CV is the slowest TICA direction (reversible estimate) in kinetic-map "
             "scaling" if objective == "slow" else
             f"; {method.upper()} with shrinkage {shrinkage:g}, equal state weights")
@@ -266,7 +271,10 @@ def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain):
              "states: the slowness ranked on is that of the motion inside the states (about "
              "one common mean, every separating CV would look slow), and it may at most halve "
              "the separation score, so it orders CVs that separate about equally well"
-             if objective == "both" else "")
+             if objective == "both" and not transit else
+             "; along the crossing runs the pairs span the state changes, so rho tells how "
+             "slowly the CV crosses between the states; it may at most halve the separation "
+             "score" if transit else "")
     return (f"search ({objective}): {n_combos} combinations from greedy forward searches "
             f"started at the {n_seeds} best single descriptors, scored by {what}; a term is "
             f"added only if it raises the score by more than {min_gain:.0%}; ranked with the "
@@ -407,11 +415,20 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
         ranked_sets = [[cpos[short.index(g)] for g in f.gidx] for f in fits]
         n_terms_all = sum(len(m) for m in ranked_sets)
 
+        # the crossing runs' pairs (transition slowness) in the blocks' columns, not resampled
+        # here (their own bootstrap: cvdesign.pipeline.transitions.transition_intervals)
+        cols = np.empty(len(where), dtype=np.intp)
+        for i, p in where.items():
+            cols[p] = i
+        transit = None if fm.transitions is None else [[m.subset(cols) for m in row]
+                                                       for row in fm.transitions]
+
         def select(merged):
             grid = [[merged[s * n_folds + k][0] for k in range(n_folds)] for s in range(n_states)]
             lag = ([[merged[s * n_folds + k][1] for k in range(n_folds)]
                     for s in range(n_states)] if has_lag else None)
-            boot_fm = FoldMoments(grid, priors, lag)
+            boot_fm = FoldMoments(grid, priors, lag, transit,
+                                  rank_transitions=fm.rank_transitions)
             combos = greedy_search(boot_fm, cand_groups, max_terms=max_terms, n_seeds=n_seeds,
                                    min_gain=min_gain, **search)
             refit = [frozenset(c.members) for c in rank_combinations(combos, limit=len(fits))]
@@ -463,6 +480,15 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
             pos += n
         out["n_selection"] = int(ok.sum())
     return out
+
+
+def _ranked_slowness(objective, fm, lag_ps):
+    """Which slowness the ranking's score used: ``'transitions'`` or ``'within_states'``
+    (objective ``both``), ``'all_pairs'`` (``slow``: every lagged pair about one mean), or
+    None (``separate``, or no lag)."""
+    if lag_ps is None or objective == "separate":
+        return None
+    return "all_pairs" if objective == "slow" else fm.slowness
 
 
 #: A CV whose Fisher ratio exceeds this barely moves within the states: its within-state
@@ -572,6 +598,7 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
         "autocorrelation_within_states": (_finite(rho_in_all) if rho_in_all is not None
                                           else None),
         "timescale_within_states_ps": _finite(timescale_in) if timescale_in is not None else None,
+        "slowness_ranked_on": _ranked_slowness(objective, fm, lag_ps),
         "states": state_stats, "terms": terms,
         "warnings": _rigid_cv_warnings(state_stats, j_all, sep),
     }

@@ -53,6 +53,7 @@ from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_rank
 from .report_data import CVReportPass, cv_plans, report_document, timescale_lags, trace_stride
 from .screening import Screening, screen
 from .specs import describe_inputs, input_checksums, spec_document
+from .transitions import gather_transitions, transition_columns, transition_intervals
 from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
                      integrated_time, lag_frames, local_autocorrelation, longest_run_text,
                      read_timesteps)
@@ -185,7 +186,12 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         the slowest linear combination (cross-validated VAMP-2 of the slowest
         singular function, Wu and Noé 2020), or the product of the two (see
         :func:`cvdesign.search.fold_scores`). Every suggestion reports both
-        its separation and, when a lag is known, its slowness.
+        its separation and, when a lag is known, its slowness. For ``both``
+        the slowness is measured within the states, or, when the source holds
+        runs whose labels visit two or more states and every held-out fold
+        has enough crossings, along those runs, crossings included
+        (:mod:`cvdesign.pipeline.transitions`); ``slowness_ranked_on`` of
+        each ranking entry says which.
     lag : float, default=None
         Lag time in ps for slowness (required for ``slow`` and ``both``),
         converted to frames with each file's time step; a lag that is not a
@@ -359,9 +365,9 @@ def _suggest(source, config, executor, progress):
     folds = Folds.plan(base.layouts, config.n_folds, state_names=source.states)
     notes.append(_folds_note(folds))
     say(f"statistics pass ({len(screening.screened)} descriptors screened)")
-    fm, iat_desc, iat_note = _statistics_pass(source, base, pool, screening, folds, priors, steps,
-                                              lags, lag_ps, seg_counts, config, executor,
-                                              reweighting)
+    fm, iat_desc, iat_note, transit = _statistics_pass(
+        source, base, pool, screening, folds, priors, steps, lags, lag_ps, seg_counts, config,
+        executor, reweighting)
     notes += iat_note
 
     short = shortlist(pool, screening, fm, priors, config, notes)
@@ -388,6 +394,15 @@ def _suggest(source, config, executor, progress):
             notes.append("score card: no bootstrap intervals (a state has fewer than two "
                          "blocks); give more or longer runs")
 
+    transit_ci = None
+    if transit is not None and config.n_bootstrap:
+        transit_ci = transition_intervals(
+            transit.standardized_blocks(screening.center[screening.features],
+                                        screening.scale[screening.features]),
+            fits, fm.n_folds, lag_ps, n_boot=config.n_bootstrap, seed=config.seed + 3)
+        if transit_ci is None:
+            notes.append("transition slowness: no bootstrap intervals (a crossing run has a "
+                         "single sub-block in a held-out fold); give longer crossing runs")
     scorecard = _scorecard(pool, screening, short, held.overlap_desc, iat_desc, card_ci)
     run_ps = [_run_frames(source, reweighting, seg_counts, si) * dt for si, dt in steps.items()
               if dt is not None]
@@ -399,6 +414,10 @@ def _suggest(source, config, executor, progress):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
                               boot=boot)
+        if transit is not None:
+            entry.update(transition_columns(fit, fm, lag_ps))
+            if transit_ci is not None:
+                entry.update(transit_ci[rank - 1])
         _add_times(entry, fit, screening, iat_desc, longest_run_ps)
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
@@ -471,17 +490,23 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
                 sum(row[k].count for row in fold_lag) == 0 for k in range(folds.n_folds)):
             raise InputError(f"a held-out fold has no lagged pairs at lag {lag_ps:g} ps; "
                              "choose a shorter --lag or give longer runs")
-    fm = FoldMoments(fold_m, priors, fold_lag).standardized(
+    # runs that cross between the states: slowness along them (one more read of those runs)
+    transit = None if lags is None else gather_transitions(source, feats, shift, lags,
+                                                           folds.n_folds, executor=executor)
+    fm = FoldMoments(fold_m, priors, fold_lag,
+                     None if transit is None else transit.by_fold(feats.n_features),
+                     rank_transitions=transit is not None and transit.ranks).standardized(
         screening.center[screening.features], screening.scale[screening.features])
 
-    notes, iat_desc = [], {}
+    notes, iat_desc = ([] if transit is None else
+                       transit.notes + transit.ranking_notes(config.objective)), {}
     if grid is None:
         notes.append("integrated autocorrelation times not computed: the files' time steps "
                      "differ (or some are unknown)")
-        return fm, iat_desc, notes
+        return fm, iat_desc, notes, transit
     dt = next(iter(steps.values()))
     if dt is None:
-        return fm, iat_desc, notes
+        return fm, iat_desc, notes, transit
     # within runs: each (file, state) series about its own mean
     n = feats.n_features
     rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-1]])
@@ -493,7 +518,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
         j = int(g[np.argmax(tau[g])])
         ci = [float(tau_lo[j]), float(tau_hi[j])] if decayed[j] else None
         iat_desc[i] = (float(tau[j]), bool(decayed[j]), ci)
-    return fm, iat_desc, notes
+    return fm, iat_desc, notes, transit
 
 
 @dataclass
@@ -825,7 +850,10 @@ def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags):
         f"lag: {lag_ps:g} ps"
         + (" (default: 10 frames, for the slowness columns only)" if config.lag_ps is None
            else "")
-        + "; lagged pairs never span a file, a state change or a gap in frames"]
+        + "; lagged pairs never span a file, a state change or a gap in frames"
+        + ("" if not source.crossing_runs() else
+           " (except along the runs that cross between the states, for the transition "
+           "slowness below)")]
 
 
 def _folds_note(folds):
@@ -869,7 +897,9 @@ def _bootstrap_notes(boot, held, config):
 def _add_times(entry, fit, screening, iat_desc, longest_run_ps):
     """Whether the timescale is resolved by the runs, and the CV's within-run decorrelation
     time (bounded by its slowest term)."""
-    for key in ("timescale", "timescale_within_states"):
+    for key in ("timescale", "timescale_within_states", "timescale_transitions"):
+        if key == "timescale_transitions" and "timescale_transitions_ps" not in entry:
+            continue  # no crossing runs
         ts = entry.get(f"{key}_ps")
         entry[f"{key}_resolved"] = None if ts is None else bool(
             longest_run_ps is not None and ts < longest_run_ps)

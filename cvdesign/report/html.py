@@ -302,7 +302,11 @@ def _suggest(page, output, parsed):
              "within-state variance, dimensionless) on frames the fit never saw; overlap is "
              "the overlapping coefficient of the states' held-out histograms (0 = disjoint); "
              "the autocorrelation is at the lag (1 = does not relax within it"
-             + ("; within the states, each state's runs about its own mean, which objective "
+             + ("; along the runs that cross between the states, each run about its own "
+                "mean, the pairs spanning the crossings, which objective both ranks on here"
+                if any(r.get("slowness_ranked_on") == "transitions"
+                       for r in ranking["ranking"]) else
+                "; within the states, each state's runs about its own mean, which objective "
                 "both ranks on" if ranking.get("objective") == "both" else
                 "; all runs about one common mean, so a run that stays in its state counts "
                 "as slow") + "). Brackets: 95 % "
@@ -315,8 +319,10 @@ def _suggest(page, output, parsed):
             + _e(_ci(t.get("weight_ci"), "+.3f"))
             + ("" if t.get("selection_frequency") is None
                else f", {t['selection_frequency']:.0%}") + "</span>" for t in r["terms"]))
-        # objective 'both' ranks on the slowness within the states: show that one
-        within = "_within_states" if r.get("objective") == "both" else ""
+        # objective 'both' ranks on the slowness along the crossing runs when they were
+        # given, else within the states: show the one it ranked on
+        within = ("_transitions" if r.get("slowness_ranked_on") == "transitions" else
+                  "_within_states" if r.get("objective") == "both" else "")
         ts = r.get(f"timescale{within}_ps")
         if (ts is not None and r.get(f"timescale{within}_resolved") is False
                 and r.get("longest_run_ps")):

@@ -28,6 +28,16 @@ class FoldMoments:
         ``lagged[state][fold]`` (a list of lists), which also gives the
         within-state lagged statistics (:meth:`within_test` and kin) that the
         objective ``both`` needs.
+    transitions : list of list of LaggedMoments, default=None
+        ``transitions[run][fold]``: lagged pairs along runs that cross between
+        the states (transition frames included, pairs spanning state changes;
+        :mod:`cvdesign.pipeline.transitions`). When given, the objective
+        ``both`` measures slowness on them (:meth:`slowness_test`), each run's
+        pairs about that run's own mean (:func:`within_states` over runs).
+    rank_transitions : bool, default=True
+        False: keep `transitions` for :meth:`transition_test` and kin, but
+        let the objective ``both`` measure slowness within the states (too
+        few crossings to rank on).
 
     Examples
     --------
@@ -40,7 +50,8 @@ class FoldMoments:
     (2, 3, 2)
     """
 
-    def __init__(self, moments, priors=None, lagged=None):
+    def __init__(self, moments, priors=None, lagged=None, transitions=None, *,
+                 rank_transitions=True):
         self.moments = [list(m) for m in moments]
         self.n_states = len(self.moments)
         self.n_folds = len(self.moments[0])
@@ -62,26 +73,62 @@ class FoldMoments:
             self._lag_all = merge_all(self.lagged)
             self._lag_train = [merge_all(m for f, m in enumerate(self.lagged) if f != k)
                                for k in range(self.n_folds)]
-        self._within = {}  # computed when first asked for (objective 'both', the ranking)
+        # within-state and transition pairs about their own means, computed when first
+        # asked for (objective 'both', the ranking)
+        self._about_own = {}
+        self.transitions = None if transitions is None else [list(r) for r in transitions]
+        self.rank_transitions = bool(rank_transitions)
 
-    def _within_of(self, key, rows):
-        if self.lagged_states is None:
-            raise ValueError("within-state lagged statistics need the lagged pairs per state "
-                             "and fold (FoldMoments(..., lagged=[[...] per fold] per state))")
-        if key not in self._within:
-            self._within[key] = within_states(rows(row) for row in self.lagged_states)
-        return self._within[key]
+    def _own_means(self, table, key, rows):
+        """Lagged pairs of `table` (``lagged_states`` or ``transitions``), each row (a state,
+        a crossing run) about its own mean, computed once per (table, key)."""
+        rows_of = self.lagged_states if table == "within" else self.transitions
+        if rows_of is None:
+            raise ValueError(
+                "within-state lagged statistics need the lagged pairs per state and fold "
+                "(FoldMoments(..., lagged=[[...] per fold] per state))" if table == "within" else
+                "transition slowness needs the lagged pairs of the crossing runs "
+                "(FoldMoments(..., transitions=[[...] per fold] per run))")
+        if (table, key) not in self._about_own:
+            self._about_own[(table, key)] = within_states(rows(row) for row in rows_of)
+        return self._about_own[(table, key)]
 
     def within_pooled(self):
         """Lagged pairs of all folds, each state about its own mean (LaggedMoments).
 
         See :func:`within_states`; ValueError without per-state lagged pairs.
         """
-        return self._within_of("all", merge_all)
+        return self._own_means("within", "all", merge_all)
 
     def within_test(self, k):
         """As :meth:`within_pooled`, fold `k` alone."""
-        return self._within_of(k, lambda row: row[k])
+        return self._own_means("within", k, lambda row: row[k])
+
+    def transition_pooled(self):
+        """Lagged pairs of the crossing runs, all folds, each run about its own mean.
+
+        ValueError without `transitions`.
+        """
+        return self._own_means("transit", "all", merge_all)
+
+    def transition_test(self, k):
+        """As :meth:`transition_pooled`, fold `k` alone (each run's fold-`k` block about
+        that block's own mean)."""
+        return self._own_means("transit", k, lambda row: row[k])
+
+    @property
+    def slowness(self):
+        """str : what the objective ``both`` measures slowness on: ``'transitions'``
+        (crossing runs given, `rank_transitions`) or ``'within_states'``."""
+        return ("transitions" if self.transitions is not None and self.rank_transitions
+                else "within_states")
+
+    def slowness_test(self, k):
+        """The lagged pairs of fold `k` that the objective ``both`` measures slowness on:
+        :meth:`transition_test` when crossing runs rank (:attr:`slowness`), else
+        :meth:`within_test`."""
+        return (self.transition_test(k) if self.slowness == "transitions"
+                else self.within_test(k))
 
     def lagged_pooled(self):
         """Lagged moments over all folds (LaggedMoments), or None."""
@@ -118,7 +165,10 @@ class FoldMoments:
         else:
             lagged = None if self.lagged is None else [
                 standardize_lagged(m, center, scale) for m in self.lagged]
-        return FoldMoments(out, self.priors, lagged)
+        transitions = None if self.transitions is None else [
+            [standardize_lagged(m, center, scale) for m in row] for row in self.transitions]
+        return FoldMoments(out, self.priors, lagged, transitions,
+                           rank_transitions=self.rank_transitions)
 
 
 def standardize_moments(m, center, scale):

@@ -126,7 +126,12 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
       carried by fast noise, but not how slowly it crosses between the states,
       which such data cannot show. So it may at most halve the separation
       score: it orders CVs that separate about equally well and cannot put a
-      poorly separating CV above a clean one.
+      poorly separating CV above a clean one. When runs that cross between
+      the states were given (:attr:`FoldMoments.slowness` is
+      ``'transitions'``), ``rho`` is measured instead on their held-out
+      blocks, pairs spanning the crossings and the frames between the states
+      included (:meth:`FoldMoments.transition_test`): then it does tell how
+      slowly the CV crosses, with the same bounded weight.
 
     Returns
     -------
@@ -151,7 +156,7 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
         if objective == "separate":
             out[k] = j
         else:
-            rho = autocorrelation_along(w, fold_moments.within_test(k), idx)
+            rho = autocorrelation_along(w, fold_moments.slowness_test(k), idx)
             out[k] = j / (1.0 + j) * both_weight(rho)
     return out
 
