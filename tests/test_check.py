@@ -1,10 +1,12 @@
 """`cvdesign check`: a spec against a topology, and an engine's values against the evaluator."""
 
 import json
+import re
 
 import mdtraj as md
 import numpy as np
 
+from cvdesign import Spec, load_spec
 from cvdesign.cli import main
 
 
@@ -81,3 +83,96 @@ def test_check_without_values_validates_against_the_topology(demo_files, demo_re
     t.save_pdb(str(other))
     assert main(["check", str(spec_path), "--topology", str(other)]) == 2
     assert "11 atoms" in capsys.readouterr().err
+
+
+# ------------------------------------------------------------------- the CV's range
+def _spec_with(result, transforms, tmp_path):
+    """The first spec of `result` whose terms use exactly these transforms, written out."""
+    spec = next(s for s in result.specs if {t["transform"] for t in s["terms"]} == transforms)
+    path = tmp_path / f"{spec['name']}.json"
+    path.write_text(json.dumps(spec))
+    return spec, path
+
+
+def test_check_prints_the_ranges_and_the_states_at_a_bound_of_a_folded_cv(
+        demo_files, demo_result, tmp_path, capsys):
+    top, states = demo_files
+    spec, path = _spec_with(demo_result, {"cos", "sin"}, tmp_path)
+    assert main(["check", str(path), "--topology", top, "--trajectory",
+                 *states["closed"][:1], *states["open"][:1]]) == 0
+    out = capsys.readouterr().out
+    low, high = spec["reachable_range"]["lower"], spec["reachable_range"]["upper"]
+    assert f"range (CV units): reachable [{low:.6g}, {high:.6g}] (from the terms); observed [" \
+        in out
+    assert "note: state 'closed' sits at the lower bound" in out
+    assert "note: state 'open' sits at the upper bound" in out
+    assert out.count("lies inside the observed range") == 2  # the design runs themselves
+    assert "ERROR" not in out and "PASS: every frame lies inside the CV's reachable range" in out
+
+
+def test_check_reports_frames_beyond_the_observed_range_as_information(
+        demo_files, demo_result, tmp_path, capsys):
+    # a distance CV on frames stretched by 30 %: longer distances than any input frame had,
+    # which the CV can reach (no largest distance) but the design runs did not
+    top, states = demo_files
+    spec, path = _spec_with(demo_result, {"identity"}, tmp_path)
+    assert spec["reachable_range"]["upper"] is None
+    traj = md.load(states["open"][0], top=top)[:50]
+    traj.xyz[25:] *= 1.3
+    stretched = tmp_path / "stretched.xtc"
+    traj.save_xtc(str(stretched))
+    assert main(["check", str(path), "--topology", top, "--trajectory", str(stretched)]) == 0
+    out = capsys.readouterr().out
+    assert "reachable [" in out and ", +inf] (from the terms)" in out and "note:" not in out
+    beyond = re.search(r"info: (\d+) of 50 frames of \S+ \([\d.]+%\) lie outside the observed "
+                       r"range", out)
+    assert beyond and 1 <= int(beyond.group(1)) <= 25, out
+    values = load_spec(path).evaluate(md.load(str(stretched), top=top))
+    assert int(beyond.group(1)) == int(np.sum(values > spec["observed_range"]["upper"]))
+    assert "ERROR" not in out and "PASS" in out
+
+
+def test_check_fails_on_engine_values_beyond_the_reachable_range(demo_files, demo_result,
+                                                                tmp_path, capsys):
+    # an 'engine' that forgot the cos and sin transforms: the dihedral itself in rad, beyond
+    # what cos and sin can give
+    top, states = demo_files
+    spec, path = _spec_with(demo_result, {"cos", "sin"}, tmp_path)
+    traj = states["open"][0]
+    forgot = dict(spec, terms=[dict(t, transform="identity") for t in spec["terms"]])
+    values = tmp_path / "forgot.csv"
+    _write_values(values, _engine_values(forgot, top, traj))
+    assert main(["check", str(path), "--topology", top, "--against", str(values), traj]) == 1
+    out = capsys.readouterr().out
+    assert re.search(r"ERROR: \d+ of 2000 values of \S+forgot.csv \(the engine's\) lie outside "
+                     r"the reachable range", out), out
+    assert "the engine computes another CV" in out
+    assert "FAIL: values outside the CV's reachable range" in out
+    # the right engine passes the same check
+    good = tmp_path / "good.csv"
+    _write_values(good, _engine_values(spec, top, traj))
+    assert main(["check", str(path), "--topology", top, "--against", str(good), traj]) == 0
+    assert "ERROR" not in capsys.readouterr().out
+
+
+def test_check_fails_when_the_reference_values_leave_the_reachable_range(
+        demo_files, demo_result, tmp_path, capsys, monkeypatch):
+    # impossible with a valid spec (the stored range is checked against the terms); a spec
+    # whose range claims less than its terms reach stands in for a wrong spec or evaluator
+    top, states = demo_files
+    _, path = _spec_with(demo_result, {"cos", "sin"}, tmp_path)
+    monkeypatch.setattr(Spec, "reachable_range", property(lambda self: (-0.5, 0.5)))
+    assert main(["check", str(path), "--topology", top, "--trajectory", states["open"][0]]) == 1
+    out = capsys.readouterr().out
+    assert re.search(r"ERROR: 2000 of 2000 frames of \S+open-1.xtc \(reference evaluator\) lie "
+                     r"outside the reachable range \[-0.5, 0.5\] of the CV \(lowest ", out), out
+    assert "the spec, its stored range or the evaluator is wrong" in out
+    assert "FAIL: values outside the CV's reachable range" in out
+
+
+def test_check_refuses_column_without_against(demo_files, demo_result, tmp_path, capsys):
+    top, states = demo_files
+    _, path = _spec_with(demo_result, {"cos", "sin"}, tmp_path)
+    assert main(["check", str(path), "--topology", top, "--trajectory", states["open"][0],
+                 "--column", "2"]) == 2
+    assert "--column goes with --against VALUES TRAJ" in capsys.readouterr().err

@@ -2,6 +2,8 @@
 from the pipeline, states at a bound of the CV (folded coordinates), and the hints' grid and
 walls against both."""
 
+import csv
+import io
 import json
 import math
 import warnings
@@ -400,3 +402,65 @@ def test_hints_grid_covers_the_reachable_range_of_a_bounded_cv(demo_run, capsys)
     text = capsys.readouterr().out
     assert f"CV range         reachable [{low:.4g}, {high:.4g}], observed [" in text
     assert "; spans every value the CV can reach" in text
+
+
+# ------------------------------------------------------------- the ranking's columns
+def test_ranking_csv_and_json_hold_the_ranges_and_the_folded_flag(demo_run):
+    # ranking.csv: reachable_lower/upper (empty where unbounded), observed_lower/upper,
+    # folded (1/0) and states_at_bound; ranking.json the spec's own keys
+    _, result, out = demo_run
+    rows = {r["spec"]: r for r in csv.DictReader(io.StringIO((out / "ranking.csv").read_text()))}
+    ranking = json.loads((out / "ranking.json").read_text())["ranking"]
+    assert len(rows) == len(ranking) == len(result.specs) == 3
+    kinds = set()
+    for entry in ranking:
+        row, spec = rows[entry["spec"]], load_spec(out / entry["spec"])
+        reach, seen = spec.reachable_range, spec.observed_range
+        assert entry["reachable_range"] == {"lower": reach[0], "upper": reach[1]}
+        assert entry["observed_range"] == {"lower": seen[0], "upper": seen[1]}
+        for side, value in zip(("lower", "upper"), reach):
+            assert row[f"reachable_{side}"] == ("" if value is None else f"{value:.6g}")
+        assert (row["observed_lower"], row["observed_upper"]) == (f"{seen[0]:.6g}",
+                                                                  f"{seen[1]:.6g}")
+        at = spec.states_at_bound
+        assert {n: st.get("at_bound") for n, st in entry["states"].items() if
+                st.get("at_bound")} == at
+        assert row["folded"] == ("1" if at else "0")
+        assert row["states_at_bound"] == "; ".join(f"{n}:{side}" for n, side in at.items())
+        transforms = {t["transform"] for t in entry["terms"]}
+        if transforms == {"cos", "sin"}:  # the latch torsion: bounded, folded at both ends
+            kinds.add("folded")
+            assert None not in reach and row["folded"] == "1"
+            assert row["states_at_bound"] == "closed:lower; open:upper"
+        elif transforms == {"identity"}:  # distances: no largest value, nothing folded
+            kinds.add("linear")
+            assert row["reachable_upper"] == "" and row["reachable_lower"] != ""
+            assert row["folded"] == "0" and row["states_at_bound"] == ""
+    assert kinds == {"folded", "linear"}
+    # the DataFrame: an unbounded side is NaN, the flag a boolean
+    pd = pytest.importorskip("pandas")
+    frame = result.to_frames().ranking.set_index("spec")
+    assert math.isnan(frame.loc[next(s for s, r in rows.items() if r["reachable_upper"] == ""),
+                                "reachable_upper"])
+    assert frame["folded"].dtype == pd.BooleanDtype()
+    assert frame.loc["cv-01.json", "folded"] and frame.loc["cv-01.json", "states_at_bound"] \
+        == "closed:lower; open:upper"
+
+
+def test_a_spec_written_without_ranges_gets_its_states_at_bound_from_range_and_states(demo_run):
+    _, _, out = demo_run
+    doc = json.loads((out / "cv-01.json").read_text())
+    stored = load_spec(out / "cv-01.json").states_at_bound
+    assert stored == {"closed": "lower", "open": "upper"}
+    for key in ("reachable_range", "observed_range"):
+        del doc[key]
+    for st in doc["states"].values():
+        for key in ("min", "max", "at_bound"):
+            st.pop(key, None)
+    old = Spec.from_dict(doc)
+    assert old.states_at_bound == stored and old.observed_range is None
+    # computed, not a constant: with spreads a hundredth as wide no state is within
+    # FOLD_SPREADS of them of its end
+    for st in doc["states"].values():
+        st["std"] /= 100.0
+    assert Spec.from_dict(doc).states_at_bound == {}

@@ -569,15 +569,24 @@ def _browse(tmp_path, page, *args):
     return res.stdout
 
 
+def _body_attributes(tmp_path, text, name, script, *attributes):
+    """The values of `attributes` that `script`, added to the page, sets on its body once
+    Chromium has loaded it (DOM dump), unescaped."""
+    import html as html_lib
+
+    page = tmp_path / name
+    page.write_text(text.replace("</body>", script + "</body>"), encoding="utf-8")
+    dom = _browse(tmp_path, page, "--dump-dom")
+    found = [re.search(rf'{a}="([^"]*)"', dom) for a in attributes]
+    assert all(found), dom[:500]
+    return [html_lib.unescape(m.group(1)) for m in found]
+
+
 def _loaded_images(tmp_path, text, name):
     """(images, broken) that Chromium counts in `text` once loaded (DOM dump)."""
-    page = tmp_path / name
-    page.write_text(text.replace("</body>", _COUNT_IMAGES + "</body>"), encoding="utf-8")
-    dom = _browse(tmp_path, page, "--dump-dom")
-    images = re.search(r'data-images="(\d+)"', dom)
-    broken = re.search(r'data-broken="(\d+)"', dom)
-    assert images and broken, dom[:500]
-    return int(images.group(1)), int(broken.group(1))
+    images, broken = _body_attributes(tmp_path, text, name, _COUNT_IMAGES, "data-images",
+                                      "data-broken")
+    return int(images), int(broken)
 
 
 def _screenshot(tmp_path, page, name):
@@ -615,3 +624,110 @@ def test_report_renders_in_headless_chromium_with_every_image_loaded(demo_out, t
     assert not_white > 0.05, not_white
     for color in fg.state_colors(["closed", "open"]).values():
         assert _pixels_of(full, color) > _pixels_of(bare, color) + 500, color
+
+
+# ------------------------------------------------------------------- the CV's range
+def test_report_shows_each_cvs_ranges_and_folded_states_in_tables_and_figures(demo_out):
+    report = build_report(read_output(demo_out))
+    figs = {f.name: f for f in report.figures}
+    ranking = json.loads((demo_out / "ranking.json").read_text())["ranking"]
+    _, tags = _parse(report.html)
+    kinds = set()
+    for r in ranking:
+        stem = Path(r["spec"]).stem
+        spec = load_spec(demo_out / r["spec"])
+        reach, at = spec.reachable_range, spec.states_at_bound
+        for which in ("distributions", "traces"):
+            data = figs[f"{stem}-{which}"].data
+            assert data["reachable"] == list(reach) and data["at_bound"] == at
+            # a bound is drawn where it lies near the values drawn, and only there
+            assert set(data["bounds_drawn"]) <= {s for s, x in zip(("lower", "upper"), reach)
+                                                 if x is not None}
+            caption = figs[f"{stem}-{which}"].caption
+            assert "Reachable range of the CV (from its terms): [" in caption
+            assert ("Folded: " in caption) == bool(at)
+        low = "-inf" if reach[0] is None else f"{reach[0]:.4g}"
+        high = "+inf" if reach[1] is None else f"{reach[1]:.4g}"
+        assert f'<p class="range">Range (CV units): reachable [{low}, {high}]' in report.html
+        if at:  # the latch torsion's cos and sin: both states at an end, drawn and named
+            kinds.add("folded")
+            assert at == {"closed": "lower", "open": "upper"}
+            dist = figs[f"{stem}-distributions"]
+            assert dist.data["bounds_drawn"] == {"lower": reach[0], "upper": reach[1]}
+            assert figs[f"{stem}-traces"].data["bounds_drawn"] == dist.data["bounds_drawn"]
+            assert "closed sits at the lower bound" in dist.caption
+            assert "folded: closed at the lower bound" in report.html
+            assert "<td>lower (folded)</td>" in report.html
+            assert "closed (held-out; at the lower bound)" in dist.svg  # the legend
+        elif reach[1] is None:  # a distance: no largest value, no fold
+            kinds.add("linear")
+            assert f"reachable [{low}, +inf] (from the terms); observed [" in report.html
+            assert "unbounded]" in figs[f"{stem}-distributions"].caption
+            assert "upper" not in figs[f"{stem}-distributions"].data["bounds_drawn"]
+    assert kinds == {"folded", "linear"}
+    # the ranking table has the range column, one cell per CV
+    header = report.html.split('<table class="ranking">', 1)[1].split("</thead>", 1)[0]
+    assert header.endswith("<th>reachable range (CV units)</th></tr>")
+
+
+def test_range_figures_draw_near_bounds_and_name_far_ones_in_the_caption():
+    heldout = {"edges": [0.0, 1.0, 2.0, 3.0], "counts": {"A": [3, 1, 0], "B": [0, 1, 3]}}
+    stats = {"A": {"mean": 0.9, "std": 0.5}, "B": {"mean": 2.1, "std": 0.5}}
+    near = fg.cv_distributions("d", "rank 1", heldout, stats, states=["A", "B"],
+                               temperature_k=300.0, reachable=(-0.2, 40.0))
+    # -0.2 lies within a quarter of the drawn span (3) of it, 40 does not
+    assert near.data["bounds_drawn"] == {"lower": -0.2}
+    assert "upper 40 lies beyond the drawn range" in near.caption
+    plain = fg.cv_distributions("d", "rank 1", heldout, stats, states=["A", "B"],
+                                temperature_k=300.0)
+    assert plain.data["reachable"] is None and "Reachable" not in plain.caption
+    assert plain.svg.count("stroke-dasharray") < near.svg.count("stroke-dasharray")
+    traces = [{"file": "a.xtc", "frame": [0, 1, 2], "time_ps": None, "value": [0.9, 0.95, -0.9],
+               "state": ["B", "B", "A"]}]
+    tr = fg.cv_traces("t", "rank 1", traces, states=["A", "B"], reachable=(-1.0, 1.0),
+                      at_bound={"B": "upper"})
+    assert tr.data["bounds_drawn"] == {"lower": -1.0, "upper": 1.0}
+    assert "B sits at the upper bound" in tr.caption and "B (at the upper bound)" in tr.svg
+    with pytest.raises(ValueError, match="at_bound: 'C'"):
+        fg.cv_traces("t", "rank 1", traces, states=["A", "B"], at_bound={"C": "upper"})
+    with pytest.raises(ValueError, match="finite numbers or None"):
+        fg.cv_traces("t", "rank 1", traces, states=["A", "B"], reachable=(float("nan"), 1.0))
+
+
+_RANGE_CELLS = ('<script>window.addEventListener("load", function () {'
+                'var rows = Array.from(document.querySelectorAll("table.ranking tbody tr"));'
+                'document.body.setAttribute("data-ranges", JSON.stringify(rows.map('
+                "function (tr) { return tr.lastElementChild.innerText; })));"
+                'var ranges = Array.from(document.querySelectorAll("p.range"));'
+                'document.body.setAttribute("data-range-lines", JSON.stringify(ranges.map('
+                "function (p) { return p.innerText; }))); });</script>")
+
+
+def _rendered_ranges(tmp_path, text, name):
+    """The ranking table's range cells and the ranges paragraphs as Chromium renders them
+    (innerText: what is shown, without what CSS hides)."""
+    cells, lines = _body_attributes(tmp_path, text, name, _RANGE_CELLS, "data-ranges",
+                                    "data-range-lines")
+    return json.loads(cells), json.loads(lines)
+
+
+def test_chromium_shows_the_folded_flag_and_the_unbounded_range(demo_out, tmp_path):
+    _chromium()
+    text = write_report(demo_out).read_text(encoding="utf-8")
+    ranking = json.loads((demo_out / "ranking.json").read_text())["ranking"]
+    cells, lines = _rendered_ranges(tmp_path, text, "ranges.html")
+    assert len(cells) == len(lines) == len(ranking)
+    for r, cell, line in zip(ranking, cells, lines):
+        spec = load_spec(demo_out / r["spec"])
+        if spec.states_at_bound:
+            assert "folded: closed at the lower bound" in cell
+            assert "folded: open at the upper bound" in cell and "folded" in line
+        else:
+            assert "folded" not in cell and "folded" not in line
+        if spec.reachable_range[1] is None:
+            assert cell.startswith("[") and cell.endswith(", +inf]"), cell
+    assert any("folded" in c for c in cells) and any(c.endswith("+inf]") for c in cells)
+    # the check can fail: the same page with the flag hidden by a style shows no flag
+    hidden = text.replace("</style>", ".warning { display: none !important; }</style>")
+    cells, _ = _rendered_ranges(tmp_path, hidden, "hidden.html")
+    assert not any("folded" in c for c in cells)

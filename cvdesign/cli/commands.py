@@ -271,11 +271,15 @@ def build_parser():
     p = sub.add_parser(
         "check", help="validate a spec against a topology, and an engine's values against it",
         description="Validate a spec file (schema, atom indices, topology fingerprint) against "
-                    "a topology; with --against, compare CV values that another program "
-                    "computed on a trajectory with cvdesign's reference evaluator, report the "
-                    "largest deviation and the frames where it occurs, and exit 1 if it "
-                    "exceeds the tolerance. This is how to show that the engine side computes "
-                    "the same CV.")
+                    "a topology, and print the CV's reachable and observed ranges and the "
+                    "states at a bound of it (folded); with --against, compare CV values that "
+                    "another program computed on a trajectory with cvdesign's reference "
+                    "evaluator, report the largest deviation and the frames where it occurs, "
+                    "and exit 1 if it exceeds the tolerance. This is how to show that the "
+                    "engine side computes the same CV. On every trajectory given (--against, "
+                    "--trajectory) it reports frames outside the CV's reachable range (an "
+                    "error, exit 1: no structure gives them) and outside its observed range "
+                    "(information: values the design runs did not reach).")
     p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json)")
     p.add_argument("--topology", required=True, metavar="TOP",
                    help="topology file the spec must match")
@@ -289,6 +293,11 @@ def build_parser():
     p.add_argument("--column", metavar="N|NAME", default=None,
                    help="the column of the VALUES files that holds the CV: a number counted "
                         "from 1, or a name from a header line")
+    p.add_argument("--trajectory", nargs="+", action="extend", metavar="TRAJ",
+                   help="trajectories to check the CV's range on, without an engine's values "
+                        "(e.g. a biased run): frames outside the reachable range are an error "
+                        "(the spec is wrong), frames outside the observed range are reported "
+                        "(the run went where the design runs did not)")
     p.add_argument("--tolerance", type=_positive_float, default=None, metavar="TOL",
                    help="largest accepted |deviation|, in the CV's units (default: 1e-3 times "
                         "the largest within-state spread stored in the spec)")
@@ -796,6 +805,80 @@ def _read_values(path, column=None):
     return (np.asarray(frames) if fi is not None else None), np.asarray(values, dtype=np.float64)
 
 
+#: Relative slack (of the largest finite bound, at least 1) within which a reference value
+#: counts as inside the reachable range: the evaluator's rounding, not a real excursion.
+_RANGE_SLACK = 1e-9
+
+
+def _reference_values(spec, topology, traj):
+    """The spec's reference values on every frame of `traj`, and the frame numbers."""
+    from ..io.source import Source
+
+    src = Source(topology)
+    src.add(traj, state="check")
+    ours, idx = [], []
+    for chunk in src.iter_chunks():
+        ours.append(spec.evaluate(chunk.trajectory.xyz, box=chunk.trajectory.unitcell_vectors))
+        idx.append(chunk.frames)
+    return np.concatenate(ours), np.concatenate(idx)
+
+
+def _outside(values, lower, upper, slack):
+    """Positions of `values` below ``lower - slack`` or above ``upper + slack`` (None: no bound)."""
+    out = np.zeros(values.shape, dtype=bool)
+    if lower is not None:
+        out |= values < lower - slack
+    if upper is not None:
+        out |= values > upper + slack
+    return np.flatnonzero(out)
+
+
+def _interval(pair):
+    lo, hi = pair
+    return (f"[{'-inf' if lo is None else format(lo, '.6g')}, "
+            f"{'+inf' if hi is None else format(hi, '.6g')}]")
+
+
+def _extremes(values, frames, where):
+    """'lowest v at frame f, highest v at frame g' of the values at positions `where`."""
+    lo, hi = where[np.argmin(values[where])], where[np.argmax(values[where])]
+    return (f"lowest {float(values[lo]):.6g} at frame {int(frames[lo])}, highest "
+            f"{float(values[hi]):.6g} at frame {int(frames[hi])}")
+
+
+def _unreachable(what, values, frames, reach, slack, why):
+    """Print an error for values beyond the reachable range; True when there are none."""
+    bad = _outside(values, *reach, slack)
+    if bad.size:
+        print(f"ERROR: {bad.size} of {values.size} {what} lie outside the reachable range "
+              f"{_interval(reach)} of the CV ({_extremes(values, frames, bad)}): {why}")
+    return not bad.size
+
+
+def _range_check(reach, seen, traj, ours, frames):
+    """Range findings of the reference values on one trajectory; True when none is an error."""
+    finite = [abs(x) for x in reach if x is not None]
+    slack = _RANGE_SLACK * max([1.0] + finite)
+    ok = _unreachable(
+        f"frames of {traj} (reference evaluator)", ours, frames, reach, slack,
+        "no structure gives such values with this spec's terms, so the spec, its stored range "
+        "or the evaluator is wrong; re-create the spec with 'cvdesign suggest' and report "
+        "the case")
+    if seen is not None:
+        beyond = _outside(ours, *seen, 0.0)
+        if beyond.size:
+            print(f"info: {beyond.size} of {ours.size} frames of {traj} "
+                  f"({100.0 * beyond.size / ours.size:.1f}%) lie outside the observed range "
+                  f"{_interval(seen)} of the spec's input frames "
+                  f"({_extremes(ours, frames, beyond)}): this run reaches values the design "
+                  "runs did not; walls and a grid built on the observed range (see "
+                  "'cvdesign hints') may not cover them")
+        else:
+            print(f"info: every frame of {traj} lies inside the observed range "
+                  f"{_interval(seen)} of the spec's input frames")
+    return ok
+
+
 def _cmd_check(args):
     from ..io.source import Source
     from ..spec import load_spec
@@ -804,25 +887,34 @@ def _cmd_check(args):
     spec = load_spec(args.spec, topology=source.topology)
     print(f"{args.spec}: valid spec, matches topology {args.topology} "
           f"({source.topology.n_atoms} atoms)")
-    if not args.against:
-        if args.column is not None:
-            raise InputError("--column goes with --against VALUES TRAJ: it says which column of "
-                             "the values files holds the CV")
+    reach, seen = spec.reachable_range, spec.observed_range
+    print(f"range (CV units): reachable {_interval(reach)} (from the terms); "
+          + ("no observed range recorded (a spec of an earlier cvdesign)" if seen is None
+             else f"observed {_interval(seen)} (the spec's input frames)"))
+    states = spec.states
+    for name, side in spec.states_at_bound.items():
+        st = states[name]
+        print(f"note: state {name!r} sits at the {side} bound of the reachable range (mean "
+              f"{st['mean']:.6g}, std {st['std']:.3g}): a folded coordinate, where the CV "
+              "changes only to second order and the bias force along it fades; check in a "
+              "short biased run that the bias moves this state")
+    if args.column is not None and not args.against:
+        raise InputError("--column goes with --against VALUES TRAJ: it says which column of "
+                         "the values files holds the CV")
+    if not args.against and not args.trajectory:
         return 0
-    spreads = [v["std"] for v in spec.states.values() if v.get("std")]
+    spreads = [v["std"] for v in states.values() if v.get("std")]
     tol = args.tolerance if args.tolerance is not None else 1e-3 * (max(spreads) if spreads
                                                                     else 1.0)
+    in_range = True
+    for traj in args.trajectory or []:
+        ours, idx = _reference_values(spec, source.topology, traj)
+        in_range &= _range_check(reach, seen, traj, ours, idx)
     worst_all = 0.0
-    for values_path, traj in args.against:
+    for values_path, traj in args.against or []:
         frames, theirs = _read_values(values_path, args.column)
-        src = Source(source.topology)
-        src.add(traj, state="check")
-        ours, idx = [], []
-        for chunk in src.iter_chunks():
-            ours.append(spec.evaluate(chunk.trajectory.xyz, box=chunk.trajectory.unitcell_vectors))
-            idx.append(chunk.frames)
-        ours = np.concatenate(ours)
-        idx = np.concatenate(idx)
+        ours, idx = _reference_values(spec, source.topology, traj)
+        in_range &= _range_check(reach, seen, traj, ours, idx)
         if frames is None:
             if theirs.size != ours.size:
                 raise InputError(f"{values_path!r} holds {theirs.size} values but {traj!r} has "
@@ -837,6 +929,11 @@ def _cmd_check(args):
                                  f"does not have ({ours.size} frames)")
             ref = ours[[pos[int(f)] for f in frames]]
             frame_of = np.asarray(frames)
+        in_range &= _unreachable(
+            f"values of {values_path} (the engine's)", theirs, frame_of, reach, tol,
+            f"beyond a bound by more than the tolerance {tol:.3g}, values the CV cannot take: "
+            "the engine computes another CV (a cos or sin transform left out, a weight, "
+            "centre or scale changed, another atom order)")
         dev = np.abs(theirs - ref)
         order = np.argsort(-dev, kind="stable")[:5]
         worst = float(dev[order[0]])
@@ -847,12 +944,20 @@ def _cmd_check(args):
             if dev[i] > tol or i == order[0]:
                 print(f"    frame {int(frame_of[i])}: engine {float(theirs[i])!r}, reference "
                       f"{float(ref[i])!r}, deviation {float(dev[i]):.3g}")
-    ok = worst_all <= tol
-    print("PASS: the values agree with the reference evaluator" if ok else
-          "FAIL: the values differ from the reference evaluator beyond the tolerance; check "
-          "the engine's atom indices, weights, centers and scales, transforms and "
-          "periodic-box handling")
-    return 0 if ok else 1
+    agree = worst_all <= tol
+    if not in_range:
+        print("FAIL: values outside the CV's reachable range (see ERROR above)"
+              + ("" if agree or not args.against else "; the values also differ from the "
+                 "reference evaluator beyond the tolerance"))
+    elif not args.against:
+        print("PASS: every frame lies inside the CV's reachable range")
+    elif agree:
+        print("PASS: the values agree with the reference evaluator")
+    else:
+        print("FAIL: the values differ from the reference evaluator beyond the tolerance; check "
+              "the engine's atom indices, weights, centers and scales, transforms and "
+              "periodic-box handling")
+    return 0 if agree and in_range else 1
 
 
 def _cmd_hints(args):

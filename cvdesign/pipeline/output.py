@@ -170,8 +170,9 @@ class Suggestions:
         The ranking and the score card have the columns (names, units, order) of
         ``ranking.csv`` and ``scorecard.csv``, with numbers at full precision (the
         CSV files round them to 6 significant digits): a missing value (no
-        interval without a bootstrap, an empty cell of the CSV file) is NaN, or
-        None in a text column; the yes/no columns (``timescale_resolved``,
+        interval without a bootstrap, an empty cell of the CSV file; a reachable
+        bound where the CV is unbounded) is NaN, or None in a text column; the
+        yes/no columns (``timescale_resolved``, ``folded``,
         ``integrated_time_decayed``, ``screened``, ``shortlisted``; 1/0 in the CSV
         files) are pandas' nullable booleans. pandas is imported only here; it is
         not a dependency of cvdesign (``pip install cvdesign[pandas]``).
@@ -445,7 +446,15 @@ _RANKING_TABLE = (
             else None for t in r["terms"]])),
        ("selection_frequency", "text",
         lambda r: _per_term([t.get("selection_frequency") for t in r["terms"]]))]
-    + _numbers("reproduced_in_refits"))
+    + _numbers("reproduced_in_refits")
+    + [(f"{which}_{side}", "number", lambda r, k=f"{which}_range", side=side:
+        (r.get(k) or {}).get(side)) for which in ("reachable", "observed")
+       for side in ("lower", "upper")]
+    + [("folded", "flag", lambda r: None if "reachable_range" not in r
+        else any(st.get("at_bound") for st in r["states"].values())),
+       ("states_at_bound", "text", lambda r: "; ".join(
+           f"{name}:{st['at_bound']}" for name, st in r["states"].items()
+           if st.get("at_bound")))])
 
 _SCORECARD_TABLE = (
     [("order", "int", None), ("id", "text", _value("id")), ("kind", "text", _value("kind")),

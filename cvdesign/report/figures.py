@@ -27,6 +27,7 @@ import numpy as np
 
 from .._version import __version__
 from ..bias.funnel import draw_funnel, funnel_radius
+from ..bias.hints import FOLD_SPREADS
 from ..constants import BOLTZMANN_KJ_MOL_K
 
 __all__ = ["PALETTE", "Figure", "state_colors", "cv_distributions", "cv_traces",
@@ -194,9 +195,82 @@ def _no_data(ax, text):
             color="#555555", wrap=True)
 
 
+#: A reachable bound is drawn when it lies within the span of the drawn data widened by this
+#: fraction of that span on each side (farther away it would squeeze the data; the caption
+#: then gives it instead).
+BOUND_VIEW = 0.25
+
+
+def _check_reachable(reachable):
+    """``(lower, upper)`` (None where unbounded), or None when not known."""
+    if reachable is None:
+        return None
+    lower, upper = reachable
+    for x in (lower, upper):
+        if x is not None and not math.isfinite(float(x)):
+            raise ValueError(f"reachable range bounds must be finite numbers or None; got "
+                             f"{reachable!r}")
+    return (None if lower is None else float(lower), None if upper is None else float(upper))
+
+
+def _bounds_in_view(reachable, low, high):
+    """``{"lower": x, "upper": x}`` of the reachable bounds to draw for data in [low, high]."""
+    if reachable is None:
+        return {}
+    margin = BOUND_VIEW * max(high - low, abs(high) * 1e-9, 1e-300)
+    return {side: x for side, x in zip(("lower", "upper"), reachable)
+            if x is not None and low - margin <= x <= high + margin}
+
+
+def _draw_bounds(ax, drawn, reachable, *, vertical):
+    """The reachable bounds as black dash-dot lines, the side beyond them hatched grey (values
+    no structure gives). Axis limits are kept as the data set them (widened to the bound)."""
+    for k, (side, x) in enumerate(drawn.items()):
+        line, span = (ax.axvline, ax.axvspan) if vertical else (ax.axhline, ax.axhspan)
+        lo, hi = ax.get_xlim() if vertical else ax.get_ylim()
+        pad = 0.03 * (max(hi, x) - min(lo, x))  # the line off the spine, the hatch seen
+        lo, hi = min(lo, x - pad), max(hi, x + pad)
+        line(x, color="black", ls="-.", lw=1.0, zorder=3,
+             label="reachable bound" if k == 0 else None)
+        beyond = (lo, x) if side == "lower" else (x, hi)
+        if beyond[1] > beyond[0]:
+            span(*beyond, facecolor="none", edgecolor="#999999", hatch="///", lw=0, zorder=0)
+        (ax.set_xlim if vertical else ax.set_ylim)(lo, hi)
+
+
+def _range_words(reachable, drawn, at_bound):
+    """Caption text: the reachable range, which bounds are drawn, the states at a bound."""
+    if reachable is None:
+        return ""
+    lower, upper = ("unbounded" if x is None else f"{x:.4g}" for x in reachable)
+    text = f" Reachable range of the CV (from its terms): [{lower}, {upper}]"
+    far = [f"{side} {x:.4g}" for side, x in zip(("lower", "upper"), reachable)
+           if x is not None and side not in drawn]
+    text += ("; its bounds are the dash-dot lines, values beyond them (hatched) no structure "
+             "gives" if drawn else "") + (
+        f"; {' and '.join(far)} lie{'s' if len(far) == 1 else ''} beyond the drawn range"
+        if far else "") + "."
+    if at_bound:
+        text += (" Folded: " + ", ".join(f"{s} sits at the {side} bound" for s, side in
+                                         at_bound.items())
+                 + f" (its mean within {FOLD_SPREADS:g} spreads of it): there the CV changes only to second "
+                 "order with its descriptors, structures on either side of the fold give the "
+                 "same value and the bias force along the CV fades.")
+    return text
+
+
+def _check_at_bound(at_bound, states):
+    at_bound = dict(at_bound or {})
+    for s, side in at_bound.items():
+        if s not in states or side not in ("lower", "upper"):
+            raise ValueError(f"at_bound: {s!r}: {side!r} must name a state and 'lower' or "
+                             "'upper'")
+    return {s: at_bound[s] for s in states if s in at_bound}
+
+
 # ------------------------------------------------------------------------ ranked CVs
 def cv_distributions(name, label, heldout, states_stats, *, states, temperature_k,
-                     units="CV units"):
+                     units="CV units", reachable=None, at_bound=None):
     """Per-state histograms of a CV on held-out frames, and -kT ln p per state.
 
     Left: each state's held-out histogram as a probability density (1/CV units), with
@@ -226,13 +300,23 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         K, for kT.
     units : str, default="CV units"
         The CV's units.
+    reachable : (float or None, float or None), optional
+        The CV's reachable range (the spec's ``reachable_range``; None on a side
+        where it is unbounded). A bound near the drawn data (within
+        :data:`BOUND_VIEW` of its span) is drawn as a dash-dot line with the
+        side beyond it hatched; the caption gives the range in any case.
+    at_bound : dict, optional
+        ``{state: "lower" | "upper"}``: the states at a bound (the spec's
+        ``at_bound``), a folded coordinate; named in the legend and caption.
 
     Returns
     -------
     Figure
         ``data``: ``edges``, per state ``density`` (1/CV units), ``profile_kj_mol``
         (None where a bin is empty), ``means``, ``stds``, ``counts`` (frames in the
-        bins), ``outside`` (frames beyond them), ``colors``; ``kT_kj_mol``.
+        bins), ``outside`` (frames beyond them), ``colors``; ``kT_kj_mol``;
+        ``reachable`` (``[lower, upper]`` or None), ``bounds_drawn`` (``{side: value}``)
+        and ``at_bound``.
 
     Examples
     --------
@@ -244,7 +328,19 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
     ([0.75, 0.25, 0.0], 2.1)
     >>> fig.data["profile_kj_mol"]["A"][2] is None
     True
+
+    A bounded CV whose state A sits at its lower bound:
+
+    >>> fig = cv_distributions("cv-01", "rank 1", {"edges": [0.0, 1.0, 2.0, 3.0],
+    ...     "counts": {"A": [3, 1, 0], "B": [0, 1, 3]}},
+    ...     {"A": {"mean": 0.9, "std": 0.5}, "B": {"mean": 2.1, "std": 0.5}},
+    ...     states=["A", "B"], temperature_k=300.0, reachable=(0.0, None),
+    ...     at_bound={"A": "lower"})
+    >>> fig.data["bounds_drawn"], fig.data["at_bound"]
+    ({'lower': 0.0}, {'A': 'lower'})
     """
+    reachable = _check_reachable(reachable)
+    at_bound = _check_at_bound(at_bound, states)
     edges = np.asarray(heldout["edges"], dtype=np.float64)
     if edges.ndim != 1 or edges.size < 2 or not np.all(np.isfinite(edges)) \
             or not np.all(np.diff(edges) > 0):
@@ -287,13 +383,18 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         for s in states:
             col = colors[s]
             if s in density:
-                left.stairs(density[s], edges, color=col, lw=1.4, label=f"{s} (held-out)")
+                fold = f"; at the {at_bound[s]} bound" if s in at_bound else ""
+                left.stairs(density[s], edges, color=col, lw=1.4,
+                            label=f"{s} (held-out{fold})")
                 f = np.array([np.nan if v is None else v for v in profile[s]])
                 right.plot(centres, f, color=col, lw=1.4, marker=".", ms=3, label=s)
             if s in means:
                 left.axvline(means[s], color=col, ls="--", lw=1.0)
                 left.axvspan(means[s] - stds[s], means[s] + stds[s], color=col, alpha=0.15,
                              lw=0)
+        drawn = _bounds_in_view(reachable, float(edges[0]), float(edges[-1]))
+        for ax in (left, right):
+            _draw_bounds(ax, drawn, reachable, vertical=True)
         left.set_xlabel(f"CV ({units})")
         left.set_ylabel(f"probability density ({_per(units)})")
         left.set_title(f"{label}: held-out frames per state\n"
@@ -309,12 +410,14 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         data = {"edges": edges.tolist(), "density": density, "profile_kj_mol": profile,
                 "means": means, "stds": stds, "counts": counts, "outside": outside,
                 "colors": {s: colors[s] for s in states}, "kT_kj_mol": kt,
-                "temperature_k": float(temperature_k)}
+                "temperature_k": float(temperature_k),
+                "reachable": None if reachable is None else list(reachable),
+                "bounds_drawn": drawn, "at_bound": at_bound}
         alt = (f"{label}: histograms of the CV ({units}) on held-out frames, one per state, "
                "with each state's mean and spread from the spec ("
                + "; ".join(f"{s}: {means[s]:.4g} \u00b1 {stds[s]:.3g}" for s in means)
                + f"), and -kT ln p of each state's histogram in kJ/mol at "
-               f"{temperature_k:g} K.")
+               f"{temperature_k:g} K." + _range_words(reachable, drawn, at_bound))
         n_out = sum(outside.values())
         caption = (f"{label}: does the CV split the states on frames the fit never saw? "
                    "Left, each state's held-out histogram with its mean and spread from the "
@@ -323,11 +426,12 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
                    "of the transition."
                    + (f" {n_out} held-out frame(s) beyond the drawn range are not shown ("
                       + ", ".join(f"{s}: {v}" for s, v in outside.items() if v) + ")."
-                      if n_out else ""))
+                      if n_out else "") + _range_words(reachable, drawn, at_bound))
         return _finish(fig, name, caption, alt, data)
 
 
-def cv_traces(name, label, traces, *, states, units="CV units"):
+def cv_traces(name, label, traces, *, states, units="CV units", reachable=None,
+              at_bound=None):
     """The CV along time in each input file, coloured by state.
 
     One panel per file (at most :data:`MAX_TRACE_PANELS`, the first ones; ``data`` says
@@ -345,13 +449,20 @@ def cv_traces(name, label, traces, *, states, units="CV units"):
     states : sequence of str
         All states in input order (for the colours).
     units : str, default="CV units"
+    reachable : (float or None, float or None), optional
+        The CV's reachable range; a bound near the drawn values (within
+        :data:`BOUND_VIEW` of their span, over all panels) is drawn in every
+        panel as a dash-dot line, the side beyond it hatched.
+    at_bound : dict, optional
+        ``{state: "lower" | "upper"}``: states at a bound (folded), named in the
+        legend and caption.
 
     Returns
     -------
     Figure
         ``data``: ``panels`` (per file: ``file``, ``x`` ("time_ps" or "frame"),
         ``points``, ``per_state`` counts, ``value_min``, ``value_max``), ``n_files``,
-        ``shown``.
+        ``shown``, ``reachable``, ``bounds_drawn``, ``at_bound``.
 
     Examples
     --------
@@ -361,6 +472,8 @@ def cv_traces(name, label, traces, *, states, units="CV units"):
     >>> fig.data["panels"][0]["per_state"], fig.data["panels"][0]["x"]
     ({'A': 2, 'B': 1}, 'frame')
     """
+    reachable = _check_reachable(reachable)
+    at_bound = _check_at_bound(at_bound, states)
     colors = state_colors(states)
     shown = traces[:MAX_TRACE_PANELS]
     ncols = 1 if len(shown) <= 3 else 2
@@ -408,20 +521,33 @@ def cv_traces(name, label, traces, *, states, units="CV units"):
         if not shown:
             flat[0].set_axis_off()
             _no_data(flat[0], "no traces")
+        seen = [v for p in panels for v in (p["value_min"], p["value_max"]) if v is not None]
+        drawn = _bounds_in_view(reachable, min(seen), max(seen)) if seen else {}
+        for ax in flat[:len(shown)]:
+            _draw_bounds(ax, drawn, reachable, vertical=False)
         handles = [_legend_dot(colors[s]) for s in states]
-        fig.legend(handles, list(states), loc="outside upper right", ncols=min(len(states), 6),
+        names = [s + (f" (at the {at_bound[s]} bound)" if s in at_bound else "") for s in states]
+        if drawn:
+            from matplotlib.lines import Line2D
+
+            handles.append(Line2D([], [], color="black", ls="-.", lw=1.0))
+            names.append("reachable bound")
+        fig.legend(handles, names, loc="outside upper right", ncols=min(len(names), 6),
                    title=f"{label}: state", frameon=False)
         data = {"panels": panels, "n_files": len(traces), "shown": len(shown),
-                "colors": {s: colors[s] for s in states}}
+                "colors": {s: colors[s] for s in states},
+                "reachable": None if reachable is None else list(reachable),
+                "bounds_drawn": drawn, "at_bound": at_bound}
         more = (f" (the first {len(shown)} of {len(traces)} files)"
                 if len(shown) < len(traces) else "")
         alt = (f"{label}: the CV ({units}) along time in {len(shown)} input file(s){more}, "
                "each frame coloured by its state (" + ", ".join(
                    f"{s}: {sum(p['per_state'].get(s, 0) for p in panels)} points"
-                   for s in states) + ").")
+                   for s in states) + ")." + _range_words(reachable, drawn, at_bound))
         caption = (f"{label} along time in each input file{more}, coloured by state: a good "
                    "CV stays in its state's range within a run and jumps only at a change of "
-                   "state. Frames are subsampled evenly (by frame number).")
+                   "state. Frames are subsampled evenly (by frame number)."
+                   + _range_words(reachable, drawn, at_bound))
         return _finish(fig, name, caption, alt, data)
 
 

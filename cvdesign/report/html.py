@@ -269,6 +269,28 @@ def _term_name(t):
     return t["label"] if t["transform"] == "identity" else f"{t['transform']}({t['label']})"
 
 
+def _spec_ranges(spec):
+    """(reachable, observed, {state: side}) of a spec (see ``Spec.states_at_bound``)."""
+    return spec.reachable_range, spec.observed_range, spec.states_at_bound
+
+
+def _interval_text(pair, spec=".4g"):
+    """``[a, b]``, an unbounded side as -inf/+inf; empty when unknown."""
+    if pair is None:
+        return ""
+    lo, hi = pair
+    return (f"[{'-inf' if lo is None else format(lo, spec)}, "
+            f"{'+inf' if hi is None else format(hi, spec)}]")
+
+
+def _range_cell(spec, states):
+    """The ranking table's cell: the reachable range and the states at a bound."""
+    reach, _, at = _spec_ranges(spec)
+    folded = "".join(f'<span class="ci warning">folded: {_e(s)} at the {_e(at[s])} '
+                     "bound</span>" for s in states if s in at)
+    return _Html(_e(_interval_text(reach)) + folded)
+
+
 # --------------------------------------------------------------------------- suggest
 def _suggest(page, output, parsed):
     ranking, specs = parsed["ranking"], parsed["specs"]
@@ -311,7 +333,10 @@ def _suggest(page, output, parsed):
                 "; all runs about one common mean, so a run that stays in its state counts "
                 "as slow") + "). Brackets: 95 % "
              "bootstrap intervals; selection: how often bootstrap refits of the search keep "
-             "the term.</p>")
+             "the term. Reachable range: the values the CV can take, from its terms (cos and "
+             "sin of a dihedral are bounded; -inf/+inf: unbounded on that side); "
+             "<em>folded</em>: a state sits at a bound of it, where the bias force along "
+             "the CV fades.</p>")
     rows = []
     for r in ranking["ranking"]:
         terms = _Html("".join(
@@ -334,12 +359,13 @@ def _suggest(page, output, parsed):
                      _with_ci(r["heldout_overlap"], r.get("heldout_overlap_ci")),
                      _with_ci(r.get(f"heldout_autocorrelation{within}"),
                               r.get(f"heldout_autocorrelation{within}_ci")),
-                     ts_text, _num(r.get("reproduced_in_refits"), ".0%")])
+                     ts_text, _num(r.get("reproduced_in_refits"), ".0%"),
+                     _range_cell(specs[r["spec"]], states)])
     page.add(_table(["rank", "spec", "descriptors (weight [95 % CI], selection)",
                      "held-out J", "overlap", "autocorr." +
                      ("" if lag is None else f" at {lag:g} ps"), "timescale (ps)",
-                     "found again in refits"], rows, numeric=(0, 3, 4, 5, 6, 7),
-                    cls="ranking"))
+                     "found again in refits", "reachable range (CV units)"], rows,
+                    numeric=(0, 3, 4, 5, 6, 7), cls="ranking"))
     for r in ranking["ranking"]:
         for w in r.get("warnings", []) or []:
             page.add(f'<p class="warning"><strong>Warning</strong> (rank {_e(r["rank"])}, '
@@ -358,10 +384,22 @@ def _suggest(page, output, parsed):
         label = f"rank {r['rank']} ({r['spec']})"
         page.section(3, stem, f"Rank {r['rank']}: {r['spec']}")
         sts = spec.states
-        page.add(_table(["state", "mean (CV units)", "std (CV units)", "frames"],
+        reach, seen, at = _spec_ranges(spec)
+        page.add(_table(["state", "mean (CV units)", "std (CV units)", "min (CV units)",
+                         "max (CV units)", "at a bound", "frames"],
                         [[s, _num(sts[s]["mean"], ".6g"), _num(sts[s]["std"], ".4g"),
+                          _num(sts[s].get("min"), ".6g"), _num(sts[s].get("max"), ".6g"),
+                          f"{at[s]} (folded)" if s in at else "no",
                           sts[s].get("n_frames", "")] for s in states if s in sts],
-                        numeric=(1, 2, 3)))
+                        numeric=(1, 2, 3, 4, 6)))
+        page.add(f'<p class="range">Range (CV units): reachable {_e(_interval_text(reach))} '
+                 "(from the terms)"
+                 + ("" if seen is None else
+                    f"; observed {_e(_interval_text(seen))} in the input frames")
+                 + ("." if not at else
+                    "; <strong>folded</strong>: " + ", ".join(
+                        f"{_e(s)} at the {_e(at[s])} bound" for s in states if s in at)
+                    + ": the bias force along the CV fades there.") + "</p>")
         cv = by_spec.get(r["spec"])
         units = cv.get("units", "CV units") if cv else "CV units"
         page.reading = data_name
@@ -375,7 +413,7 @@ def _suggest(page, output, parsed):
             page.figure(fg.cv_distributions(f"{stem}-distributions", label, cv["heldout"],
                                             sts, states=states,
                                             temperature_k=data["temperature_k"],
-                                            units=units))
+                                            units=units, reachable=reach, at_bound=at))
         if data is None:
             page.not_available(f"the CV along time of {label}", f"{data_name} is missing")
         elif cv is None or not cv.get("traces"):
@@ -383,7 +421,7 @@ def _suggest(page, output, parsed):
                                f"{data_name} has no traces for {r['spec']}")
         else:
             page.figure(fg.cv_traces(f"{stem}-traces", label, cv["traces"], states=states,
-                                     units=units))
+                                     units=units, reachable=reach, at_bound=at))
         page.reading = "ranking.json"
         page.figure(fg.term_weights(f"{stem}-weights", label, r["terms"]))
 

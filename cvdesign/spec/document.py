@@ -521,6 +521,24 @@ class Spec:
         return reachable_range(self._doc["descriptors"], self._doc["terms"], self._doc["offset"])
 
     @property
+    def states_at_bound(self):
+        """dict : ``{state: "lower" | "upper"}`` for the states at a bound of
+        :attr:`reachable_range` (a folded coordinate; see
+        :func:`cvdesign.spec.ranges.states_at_bounds`), in state order: the
+        stored ``at_bound`` flags, or for a spec written without a
+        ``reachable_range``, the same computed from its range and states.
+
+        Examples
+        --------
+        >>> Spec.from_json(_EXAMPLE).states_at_bound  # a distance CV, far from its bound
+        {}
+        """
+        states = self._doc["states"]
+        if self._doc.get("reachable_range") is None:
+            return states_at_bounds(states, self.reachable_range)
+        return {name: st["at_bound"] for name, st in states.items() if st.get("at_bound")}
+
+    @property
     def observed_range(self):
         """(float, float) or None : smallest and largest CV value over the input frames
         of all states (CV units), None when the spec does not record it."""
