@@ -347,13 +347,6 @@ CLI_CASES = [
          lambda c: c.suggest("--bias-energy", c.closed, c.file("a.txt", _bias_text(2000)),
                              "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000))), 2,
          r"--bias-energy names trajectory '.*closed-1\.xtc' twice"),
-    Case("suggest-bias-state-mixing-biased-and-unbiased-runs",
-         lambda c: ["suggest", "--topology", c.top, "--state", "closed", c.closed,
-                    str(Path(c.closed).with_name("closed-2.xtc")), "--state", "open", c.open,
-                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
-                    "--out", c.w("out"), "--bootstrap", "0", "--quiet"], 2,
-         r"state 'closed' has frames from the biased run '.*closed-1\.xtc' \(bias-energy file "
-         r"'.*b\.txt'\) and from '.*closed-2\.xtc', which has no bias energies"),
     Case("suggest-bias-with-runs",
          lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, c.open, "--lag", "1",
                     "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),

@@ -225,7 +225,8 @@ def build_parser():
                         "line, the one named 'bias' read unless --bias-column says otherwise). "
                         "Its frames are reweighted by exp(V/kT) at --temperature, and its "
                         "lagged pairs taken in rescaled time dt*exp(V/kT). Repeat for each "
-                        "biased run; every run of a state must be biased, or none")
+                        "biased run; a state may also have unbiased runs (the two groups "
+                        "are combined in proportion to their effective sample sizes)")
     p.add_argument("--bias-column", metavar="N|NAME", default=None,
                    help="column of the --bias-energy files holding the bias energies: a "
                         "number counted from 1, or a header name (default: the only column, "
