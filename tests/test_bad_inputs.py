@@ -347,11 +347,18 @@ CLI_CASES = [
          lambda c: c.suggest("--bias-energy", c.closed, c.file("a.txt", _bias_text(2000)),
                              "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000))), 2,
          r"--bias-energy names trajectory '.*closed-1\.xtc' twice"),
-    Case("suggest-bias-with-runs",
-         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, c.open, "--lag", "1",
-                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
+    Case("suggest-bias-for-a-trajectory-not-among-the-runs",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, "--lag", "1",
+                    "--bias-energy", c.open, c.file("b.txt", _bias_text(2000)),
                     "--out", c.w("out")], 2,
-         r"--bias-energy goes with --state: proposing states from unlabelled biased runs"),
+         r"--bias-energy .*open-1\.xtc .*b\.txt: trajectory '.*open-1\.xtc' is not given with "
+         r"--runs; pair each biased run of --runs with its bias-energy file"),
+    Case("suggest-runs-bias-overflowing-rescaled-time",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, "--lag", "1",
+                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000, {5: "1e7"})),
+                    "--out", c.w("out"), "--quiet"], 2,
+         r"bias-energy file '.*b\.txt' reaches 1e\+07 kJ/mol .* the rescaled time step "
+         r"exp\(V/kT\) overflows"),
     Case("suggest-bias-column-without-bias-energy",
          lambda c: c.suggest("--bias-column", "2"), 2,
          r"--bias-column goes with --bias-energy TRAJ FILE"),
@@ -740,11 +747,12 @@ API_CASES = [
              c.file("b.txt", "1\n")),
          InputError, r"bias-energy file '.*b\.txt' is given for trajectory '.*open-1\.xtc', "
                      r"which is not among the trajectories of the states"),
-    Case("api-propose-states-of-biased-runs",
+    Case("api-propose-states-of-biased-runs-overflowing-rescaled-time",
          lambda c: (lambda b: lambda: propose_states(
              Source(c.top, temperature=300.0).add(c.closed, "runs", bias=b), lag=1.0))(
-             c.file("b.txt", _bias_text(2000))),
-         InputError, r"propose_states\(\) does not reweight biased runs yet"),
+             c.file("b.txt", _bias_text(2000, {5: "1e7"}))),
+         InputError, r"bias-energy file '.*b\.txt' reaches 1e\+07 kJ/mol .* at frame 5: the "
+                     r"rescaled time step exp\(V/kT\) overflows"),
     Case("api-funnel-from-source-with-a-file-name",
          lambda c: lambda: size_funnel_from_source("run.xtc", [0, 1, 2], [7]), InputError,
          r"size_funnel_from_source\(\) needs a Source of the bound-state trajectories, not str"),

@@ -710,3 +710,110 @@ def test_suggest_on_labelled_biased_runs_reports_the_reweighted_populations(tmp_
     assert f"'left' {pops[left]:.3g}" in note and f"'right' {pops[right]:.3g} (dF = {df:.3g} " \
         "kJ/mol)" in note, note
     assert result.ranking[0]["timescale_ps"] is not None
+
+
+# ---------------------------------------------------------------------------- states from runs
+@pytest.fixture(scope="module")
+def biased_well_runs(tmp_path_factory):
+    """128 biased runs of the double well (overdamped, each walker started from the
+    biased equilibrium), 1000 frames 0.2 ps apart, with their bias-energy files."""
+    well = DoubleWell()
+    x = well.run(128, 1000, md_step_ps=2e-3, stride=100, biased=True, seed=3)
+    d = tmp_path_factory.mktemp("wellruns")
+    pdb, trajs, biases = write_well_runs(d, x, frame_step_ps=0.2, well=well)
+    return well, str(pdb), [str(t) for t in trajs], [str(b) for b in biases]
+
+
+def test_states_proposed_from_biased_runs_are_the_two_wells_with_their_exact_populations(
+        biased_well_runs):
+    """propose_states on biased runs of the tilted double well: the proposed states are the
+    two wells (a threshold in x within 0.1 nm of the barrier top), and the reweighted
+    population of each matches the exact population of exp(-U/kT) on its side of the
+    threshold, by quadrature (scipy.integrate.quad), within four jackknife standard errors
+    over the 128 independent runs (Efron, The Jackknife, the Bootstrap and Other Resampling
+    Plans, SIAM, 1982); the unweighted frame
+    fraction is far off. Rescaled time (McCarty and Parrinello, J. Chem. Phys. 2017) and its
+    caveat (Voter, J. Chem. Phys. 1997) are in the notes."""
+    from scipy.integrate import quad
+
+    from cvdesign.pipeline.explore import propose_states
+
+    well, pdb, trajs, biases = biased_well_runs
+    src = Source(pdb, temperature=well.temperature)
+    for t, b in zip(trajs, biases):
+        src.add(t, "runs", bias=b)
+    ex = propose_states(src, lag=1.0, cutoff=10.0)
+    assert len(ex.states) == 2
+    xs = [md.load(t, top=pdb).xyz[:, 1, 0].astype(np.float64) for t in trajs]
+    labels = [ex.labels[t] for t in trajs]
+    x, lab = np.concatenate(xs), np.concatenate(labels)
+    left = ex.states[int(np.argmin([x[lab == s].mean() for s in ex.states]))]
+    right = next(s for s in ex.states if s != left)
+    assert x[lab == left].max() < x[lab == right].min()  # a threshold in x
+    cut = 0.5 * (x[lab == left].max() + x[lab == right].min())
+    top = 1.0 / (4.0 * well.barrier / well.tilt)  # the barrier top, x ~ s / (4 h)
+    assert abs(cut - top) < 0.1, cut
+    dens = lambda y: math.exp(-float(well.potential(np.array([y]))[0]) / well.kt)  # noqa: E731
+    lo_part = quad(dens, -3.0, cut, epsrel=1e-12, limit=200)[0]
+    exact = lo_part / (lo_part + quad(dens, cut, 3.0, epsrel=1e-12, limit=200)[0])
+    w = [np.exp(well.bias(xi) / well.kt) for xi in xs]
+    num = np.array([wi[li == left].sum() for wi, li in zip(w, labels)])
+    den = np.array([wi.sum() for wi in w])
+    p = num.sum() / den.sum()
+    assert ex.populations[left] == pytest.approx(p, rel=1e-6)  # the reweighted population
+    k = len(trajs)
+    jack = np.array([(num.sum() - num[i]) / (den.sum() - den[i]) for i in range(k)])
+    se = math.sqrt((k - 1) / k * np.sum((jack - jack.mean()) ** 2))
+    assert abs(p - exact) < 4 * se, (p, exact, se)
+    assert abs(np.mean(lab == left) - exact) > 10 * se  # without the weights: far off
+    assert ex.kinetics.metastable.all() and not ex.warnings
+    text = "\n".join(ex.notes)
+    assert "effective sample size (Kish) of state 'runs'" in text
+    assert "McCarty and Parrinello" in text and "Voter" in text
+    assert "k-means centres" in text
+    # the labelled source for suggest keeps the bias files, so the CVs are reweighted too
+    lab_src = ex.labelled_source(pdb)
+    assert lab_src.biased and lab_src.temperature == well.temperature
+    np.testing.assert_allclose(lab_src.reweighting().populations()[lab_src.states.index(left)],
+                               p, rtol=1e-9)
+
+
+def test_suggest_command_proposes_states_from_biased_runs_and_says_they_were_reweighted(
+        biased_well_runs, tmp_path, capsys):
+    well, pdb, trajs, biases = biased_well_runs
+    argv = ["suggest", "--topology", pdb, "--runs", *trajs[:16], "--lag", "1", "--cutoff", "10",
+            "--bootstrap", "0", "--no-report", "--temperature", "300", "--out",
+            str(tmp_path / "out")]
+    for t, b in zip(trajs[:16], biases[:16]):
+        argv += ["--bias-energy", t, b]
+    assert main(argv) == 0
+    out = capsys.readouterr().out
+    assert "proposed states: S1" in out and "caution:" in out
+    summary = (tmp_path / "out" / "summary.md").read_text()
+    assert "## Proposed states (unlabelled runs)" in summary
+    assert "proposed states from biased runs" in summary
+    assert "effective sample size (Kish) of state 'runs'" in summary  # the proposal's
+    assert "effective sample size (Kish) of state 'S1'" in summary  # the suggestions'
+    assert "rescaled time dt' = dt exp(V/kT)" in summary and "Voter" in summary
+    assert "starting points" in summary
+    spec = json.loads((tmp_path / "out" / "cv-01.json").read_text())
+    assert spec["provenance"]["segments"][0]["bias"]["temperature_k"] == 300.0
+
+
+def test_states_proposed_from_biased_runs_are_the_same_bytes_in_two_processes(biased_well_runs):
+    from cvdesign.pipeline.explore import propose_states
+
+    well, pdb, trajs, biases = biased_well_runs
+    src = Source(pdb, temperature=well.temperature)
+    for t, b in zip(trajs[:12], biases[:12]):
+        src.add(t, "runs", bias=b)
+    src.add(trajs[12], "runs")  # an unbiased run too: the state mixes both
+    one = propose_states(src, lag=1.0, cutoff=10.0, n_states=2)
+    with ProcessExecutor(2) as ex:
+        two = propose_states(src, lag=1.0, cutoff=10.0, n_states=2, executor=ex)
+    assert one.populations == two.populations
+    np.testing.assert_array_equal(one.kinetics.counts, two.kinetics.counts)
+    assert one.kinetics.counts.dtype == np.float64  # weighted pair counts
+    for t in trajs[:13]:
+        np.testing.assert_array_equal(one.labels[t], two.labels[t])
+    assert "unbiased runs 1000 of 1000 frames" in "\n".join(one.notes)

@@ -219,7 +219,8 @@ def build_parser():
                             "refused), written to states.csv, and CVs are designed for them")
     p.add_argument("--bias-energy", nargs=2, action="append", metavar=("TRAJ", "FILE"),
                    default=None,
-                   help="a biased run: a trajectory given with --state and its bias-energy "
+                   help="a biased run: a trajectory given with --state (or --runs) and its "
+                        "bias-energy "
                         "file (one bias energy in kJ/mol per frame of the whole trajectory, "
                         "frame 0 first; '#' comments; one column, or columns with a header "
                         "line, the one named 'bias' read unless --bias-column says otherwise). "
@@ -481,9 +482,6 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         + [b for _, b in biases]
     prepare_output_dir(out, force=args.force, inputs=given, marker="ranking.json",
                        owned=is_output_file)
-    if biases and runs:
-        raise InputError("--bias-energy goes with --state: proposing states from unlabelled "
-                         "biased runs (--runs) is not supported yet")
     if bias_column is not None and not biases:
         raise InputError("--bias-column goes with --bias-energy TRAJ FILE: it says which "
                          "column of the bias-energy files holds the bias energies")
@@ -491,9 +489,12 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         if args.lag is None:
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
                              "looked for")
-        source = Source(topology, timestep=args.frame_step_ps)
+        source = Source(topology, timestep=args.frame_step_ps,
+                        temperature=args.temperature if biases else None)
+        bias_of = _bias_files(biases, list(runs), given_with="--runs")
         for f in runs:
-            source.add(f, state="runs")
+            source.add(f, state="runs", bias=bias_of.get(f),
+                       bias_column=bias_column if f in bias_of else None)
     else:
         if getattr(args, "n_states", None) is not None:
             raise InputError("--n-states goes with --runs (states proposed from unlabelled "
@@ -561,17 +562,19 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     return result, report_ok
 
 
-def _bias_files(biases, files):
-    """``{trajectory as given with --state: bias-energy file}`` from the --bias-energy pairs."""
+def _bias_files(biases, files, given_with="--state"):
+    """``{trajectory as given with --state (or --runs): bias-energy file}`` from the
+    --bias-energy pairs."""
     out = {}
+    what = "the states" if given_with == "--state" else "--runs"
     for traj, bias in biases:
         if not Path(traj).is_file():
             raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} does not exist; "
-                             "give a trajectory of --state and its bias-energy file")
+                             f"give a trajectory of {given_with} and its bias-energy file")
         match = [f for f in files if Path(f).is_file() and os.path.samefile(f, traj)]
         if not match:
             raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} is not given "
-                             "with --state; pair each biased run of the states with its "
+                             f"with {given_with}; pair each biased run of {what} with its "
                              "bias-energy file")
         for f in match:
             if f in out:
