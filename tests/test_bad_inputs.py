@@ -938,6 +938,10 @@ class FunnelCtx:
         traj.save_dcd(str(path))
         return str(path)
 
+    def bias_file(self, n, name="b.txt"):
+        """A bias-energy file of `n` frames (kJ/mol, header 'bias') in the output directory."""
+        return str(self.existing(name, _bias_text(n)))
+
     def pocket_centre(self):
         first = md.load_frame(self.data.paths[0], 0, top=self.data.topology)
         return first.xyz[0, list(self.data.pocket_atoms)].astype(np.float64).mean(axis=0)
@@ -1071,6 +1075,25 @@ FUNNEL_CASES = [
     ("k-wall-not-positive",
      lambda c: c.argv("--k-wall", "0"),
      r"--k-wall 0\.0 must be a positive force constant in kJ/mol/nm\^2"),
+    ("bias-for-a-trajectory-not-bound",
+     lambda c: c.argv("--bias-energy", c.data.paths[1], c.bias_file(40),
+                      bound=[c.data.paths[0]]),
+     r"--bias-energy .*bound-2\.xtc .*b\.txt: trajectory '.*bound-2\.xtc' is not given with "
+     r"--bound; pair each biased run of --bound with its bias-energy file"),
+    ("bias-file-too-short",
+     lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(10)),
+     r"bias-energy file '.*b\.txt' holds 10 bias energies, but trajectory '.*bound-1\.xtc' "
+     r"has 40 frames; give one bias energy per frame"),
+    ("bias-unknown-column",
+     lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(40), "--bias-column",
+                      "energy"),
+     r"bias-energy file '.*b\.txt' has no column named 'energy'; its columns are \('bias'\)"),
+    ("bias-column-without-bias-energy",
+     lambda c: c.argv("--bias-column", "2"),
+     r"--bias-column goes with --bias-energy TRAJ FILE"),
+    ("bias-temperature-not-positive",
+     lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(40), "--temperature", "-3"),
+     r"argument --temperature: '-3' must be"),
     ("workers-not-positive",
      lambda c: c.argv("--workers", "0"),
      r"argument --workers: '0' must be at least 1"),
