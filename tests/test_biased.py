@@ -174,6 +174,36 @@ def test_a_state_mixing_biased_and_unbiased_runs_combines_the_groups_by_their_sa
             "frames") in text
 
 
+def test_states_without_a_mix_keep_their_bytes_next_to_a_mixed_state(tmp_path, assert_same):
+    """An unbiased-only state keeps the unweighted arithmetic (the bytes of a source without
+    any biased run) and a biased-only state the weights it has alone, whatever other state
+    mixes biased and unbiased runs."""
+    rng = np.random.default_rng(12)
+    files = {}
+    for name, n in (("t1", 23), ("t2", 17), ("u", 19), ("m1", 11), ("m2", 13)):
+        files[name] = _write_dcd(tmp_path / f"{name}.dcd", rng.normal(2.0, 0.5, (n, 3, 3)))
+        _write_bias(tmp_path / f"{name}.bias", rng.normal(0.0, 2.0 * KT, n))
+    bias = {k: str(tmp_path / f"{k}.bias") for k in files}
+    full = Source(_topology(), temperature=300.0)
+    full.add(files["t1"], "t")
+    full.add(files["u"], "u", bias=bias["u"])
+    full.add(files["m1"], "m", bias=bias["m1"])
+    full.add(files["t2"], "t")
+    full.add(files["m2"], "m")
+    plain, alone = Source(_topology()), Source(_topology(), temperature=300.0)
+    plain.add(files["t1"], "t").add(files["t2"], "t")
+    alone.add(files["u"], "u", bias=bias["u"])
+    assert set(full.reweighting().groups) == {full.states.index("m")}
+    np.testing.assert_array_equal(full.reweighting().weights[1], alone.reweighting().weights[0])
+    f = CoordinateFeaturizer(ATOMS)
+    results = {}
+    for name, src in (("full", full), ("plain", plain), ("alone", alone)):
+        results[name] = run_pass(FoldMomentsPass(f, center=np.full(6, 2.0)), src,
+                                 tasks=plan_tasks(src, leaf_frames=8))
+    assert_same(results["full"][full.states.index("t")], results["plain"][0])
+    assert_same(results["full"][full.states.index("u")], results["alone"][0])
+
+
 def test_a_mixed_state_reweighted_recovers_the_exact_well_mean_and_variance(tmp_path):
     """The left well (x < 0) sampled twice: i.i.d. samples of exp(-(U + V)/kT) with their
     bias energies and i.i.d. samples of exp(-U/kT) without; one state of both files. Its
