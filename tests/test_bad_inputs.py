@@ -347,18 +347,18 @@ CLI_CASES = [
          lambda c: c.suggest("--bias-energy", c.closed, c.file("a.txt", _bias_text(2000)),
                              "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000))), 2,
          r"--bias-energy names trajectory '.*closed-1\.xtc' twice"),
-    Case("suggest-bias-state-mixing-biased-and-unbiased-runs",
-         lambda c: ["suggest", "--topology", c.top, "--state", "closed", c.closed,
-                    str(Path(c.closed).with_name("closed-2.xtc")), "--state", "open", c.open,
-                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
-                    "--out", c.w("out"), "--bootstrap", "0", "--quiet"], 2,
-         r"state 'closed' has frames from the biased run '.*closed-1\.xtc' \(bias-energy file "
-         r"'.*b\.txt'\) and from '.*closed-2\.xtc', which has no bias energies"),
-    Case("suggest-bias-with-runs",
-         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, c.open, "--lag", "1",
-                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
+    Case("suggest-bias-for-a-trajectory-not-among-the-runs",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, "--lag", "1",
+                    "--bias-energy", c.open, c.file("b.txt", _bias_text(2000)),
                     "--out", c.w("out")], 2,
-         r"--bias-energy goes with --state: proposing states from unlabelled biased runs"),
+         r"--bias-energy .*open-1\.xtc .*b\.txt: trajectory '.*open-1\.xtc' is not given with "
+         r"--runs; pair each biased run of --runs with its bias-energy file"),
+    Case("suggest-runs-bias-overflowing-rescaled-time",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, "--lag", "1",
+                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000, {5: "1e7"})),
+                    "--out", c.w("out"), "--quiet"], 2,
+         r"bias-energy file '.*b\.txt' reaches 1e\+07 kJ/mol .* the rescaled time step "
+         r"exp\(V/kT\) overflows"),
     Case("suggest-bias-column-without-bias-energy",
          lambda c: c.suggest("--bias-column", "2"), 2,
          r"--bias-column goes with --bias-energy TRAJ FILE"),
@@ -771,11 +771,12 @@ API_CASES = [
              c.file("b.txt", "1\n")),
          InputError, r"bias-energy file '.*b\.txt' is given for trajectory '.*open-1\.xtc', "
                      r"which is not among the trajectories of the states"),
-    Case("api-propose-states-of-biased-runs",
+    Case("api-propose-states-of-biased-runs-overflowing-rescaled-time",
          lambda c: (lambda b: lambda: propose_states(
              Source(c.top, temperature=300.0).add(c.closed, "runs", bias=b), lag=1.0))(
-             c.file("b.txt", _bias_text(2000))),
-         InputError, r"propose_states\(\) does not reweight biased runs yet"),
+             c.file("b.txt", _bias_text(2000, {5: "1e7"}))),
+         InputError, r"bias-energy file '.*b\.txt' reaches 1e\+07 kJ/mol .* at frame 5: the "
+                     r"rescaled time step exp\(V/kT\) overflows"),
     Case("api-funnel-from-source-with-a-file-name",
          lambda c: lambda: size_funnel_from_source("run.xtc", [0, 1, 2], [7]), InputError,
          r"size_funnel_from_source\(\) needs a Source of the bound-state trajectories, not str"),
@@ -961,6 +962,10 @@ class FunnelCtx:
         traj.save_dcd(str(path))
         return str(path)
 
+    def bias_file(self, n, name="b.txt"):
+        """A bias-energy file of `n` frames (kJ/mol, header 'bias') in the output directory."""
+        return str(self.existing(name, _bias_text(n)))
+
     def pocket_centre(self):
         first = md.load_frame(self.data.paths[0], 0, top=self.data.topology)
         return first.xyz[0, list(self.data.pocket_atoms)].astype(np.float64).mean(axis=0)
@@ -1094,6 +1099,25 @@ FUNNEL_CASES = [
     ("k-wall-not-positive",
      lambda c: c.argv("--k-wall", "0"),
      r"--k-wall 0\.0 must be a positive force constant in kJ/mol/nm\^2"),
+    ("bias-for-a-trajectory-not-bound",
+     lambda c: c.argv("--bias-energy", c.data.paths[1], c.bias_file(40),
+                      bound=[c.data.paths[0]]),
+     r"--bias-energy .*bound-2\.xtc .*b\.txt: trajectory '.*bound-2\.xtc' is not given with "
+     r"--bound; pair each biased run of --bound with its bias-energy file"),
+    ("bias-file-too-short",
+     lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(10)),
+     r"bias-energy file '.*b\.txt' holds 10 bias energies, but trajectory '.*bound-1\.xtc' "
+     r"has 40 frames; give one bias energy per frame"),
+    ("bias-unknown-column",
+     lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(40), "--bias-column",
+                      "energy"),
+     r"bias-energy file '.*b\.txt' has no column named 'energy'; its columns are \('bias'\)"),
+    ("bias-column-without-bias-energy",
+     lambda c: c.argv("--bias-column", "2"),
+     r"--bias-column goes with --bias-energy TRAJ FILE"),
+    ("bias-temperature-not-positive",
+     lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(40), "--temperature", "-3"),
+     r"argument --temperature: '-3' must be"),
     ("workers-not-positive",
      lambda c: c.argv("--workers", "0"),
      r"argument --workers: '0' must be at least 1"),

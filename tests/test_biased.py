@@ -124,15 +124,127 @@ def test_source_refuses_a_bias_file_of_another_length_and_one_without_temperatur
         Source(top, temperature=-1)
 
 
-def test_a_state_mixing_biased_and_unbiased_runs_is_refused(tmp_path):
-    a = _write_dcd(tmp_path / "a.dcd", np.zeros((5, 3, 3)))
-    b = _write_dcd(tmp_path / "b.dcd", np.zeros((5, 3, 3)))
-    src = Source(_topology(), temperature=300.0)
-    src.add(a, "s", bias=_write_bias(tmp_path / "a.bias", np.ones(5)))
-    src.add(b, "s")
-    with pytest.raises(InputError, match=r"state 's' has frames from the biased run '.*a\.dcd' "
-                                         r".* and from '.*b\.dcd', which has no bias energies"):
-        src.reweighting()
+def test_a_state_mixing_biased_and_unbiased_runs_combines_the_groups_by_their_sample_sizes(
+        tmp_path):
+    """State 's': two biased files (one reference) and an unbiased one; 't': unbiased only;
+    'u': biased only. The biased group keeps its relative weights exp(V/kT), each group's
+    share of the state is its Kish effective size over the sum (Kish, Survey Sampling, Wiley,
+    1965), the state's weights average 1, and the other states keep the weights (bytes) they
+    have without the mixed state."""
+    rng = np.random.default_rng(8)
+    top = _topology()
+    src = Source(top, temperature=300.0)
+    alone = Source(top, temperature=300.0)
+    v = {}
+    for name, n, state, biased in (("a", 7, "s", True), ("b", 5, "s", True),
+                                   ("c", 9, "s", False), ("d", 4, "t", False),
+                                   ("e", 6, "u", True)):
+        traj = _write_dcd(tmp_path / f"{name}.dcd", rng.normal(size=(n, 3, 3)))
+        v[name] = rng.normal(0.0, 2.0 * KT, n)
+        bias = _write_bias(tmp_path / f"{name}.bias", v[name]) if biased else None
+        src.add(traj, state, bias=bias, frames=(1, None) if name == "c" else None)
+        if name == "e":
+            alone.add(traj, state, bias=bias)
+    rw = src.reweighting()
+    a = np.concatenate([v["a"], v["b"]]) / KT
+    wb = np.exp(a - a.max())
+    e_b = kish_ess(wb)
+    n_u = 8  # frames 1..8 of c
+    got_b = np.concatenate([rw.weights[0], rw.weights[1]])
+    np.testing.assert_allclose(got_b / got_b.sum(), wb / wb.sum(), rtol=1e-12)
+    assert got_b.sum() == pytest.approx(20 * e_b / (e_b + n_u), rel=1e-12)
+    assert rw.weights[2][0] == 0.0  # outside the frame range
+    np.testing.assert_allclose(rw.weights[2][1:], 20 / (e_b + n_u), rtol=1e-12)
+    assert got_b.sum() + rw.weights[2].sum() == pytest.approx(20.0, rel=1e-12)
+    assert rw.ess[0] == pytest.approx(kish_ess(np.concatenate([got_b, rw.weights[2]])),
+                                      rel=1e-12) == pytest.approx(e_b + n_u, rel=1e-12)
+    assert rw.frames.tolist() == [20, 0, 6]
+    assert rw.groups == {0: {"biased": (12, pytest.approx(e_b)), "unbiased": (8, 8.0)}}
+    assert 3 not in rw.weights  # 't' has no biased run: no weights, unweighted statistics
+    np.testing.assert_array_equal(rw.weights[4], alone.reweighting().weights[0])
+    layouts = plan_tasks(src).layouts
+    assert layouts[2].weight is not None and layouts[2].clock is None  # c keeps its own clock
+    assert layouts[3].weight is None and layouts[0].clock is not None
+    notes, _ = rw.describe()
+    text = "\n".join(notes)
+    assert "two groups are normalized apart and combined in proportion to their effective " \
+        "sample sizes" in text
+    assert (f"effective sample size (Kish) of state 's': {e_b + n_u:.1f} of 20 frames "
+            f"({(e_b + n_u) / 20:.1%}): biased runs {e_b:.1f} of 12 frames, unbiased runs 8 of 8 "
+            "frames") in text
+
+
+def test_states_without_a_mix_keep_their_bytes_next_to_a_mixed_state(tmp_path, assert_same):
+    """An unbiased-only state keeps the unweighted arithmetic (the bytes of a source without
+    any biased run) and a biased-only state the weights it has alone, whatever other state
+    mixes biased and unbiased runs."""
+    rng = np.random.default_rng(12)
+    files = {}
+    for name, n in (("t1", 23), ("t2", 17), ("u", 19), ("m1", 11), ("m2", 13)):
+        files[name] = _write_dcd(tmp_path / f"{name}.dcd", rng.normal(2.0, 0.5, (n, 3, 3)))
+        _write_bias(tmp_path / f"{name}.bias", rng.normal(0.0, 2.0 * KT, n))
+    bias = {k: str(tmp_path / f"{k}.bias") for k in files}
+    full = Source(_topology(), temperature=300.0)
+    full.add(files["t1"], "t")
+    full.add(files["u"], "u", bias=bias["u"])
+    full.add(files["m1"], "m", bias=bias["m1"])
+    full.add(files["t2"], "t")
+    full.add(files["m2"], "m")
+    plain, alone = Source(_topology()), Source(_topology(), temperature=300.0)
+    plain.add(files["t1"], "t").add(files["t2"], "t")
+    alone.add(files["u"], "u", bias=bias["u"])
+    assert set(full.reweighting().groups) == {full.states.index("m")}
+    np.testing.assert_array_equal(full.reweighting().weights[1], alone.reweighting().weights[0])
+    f = CoordinateFeaturizer(ATOMS)
+    results = {}
+    for name, src in (("full", full), ("plain", plain), ("alone", alone)):
+        results[name] = run_pass(FoldMomentsPass(f, center=np.full(6, 2.0)), src,
+                                 tasks=plan_tasks(src, leaf_frames=8))
+    assert_same(results["full"][full.states.index("t")], results["plain"][0])
+    assert_same(results["full"][full.states.index("u")], results["alone"][0])
+
+
+def test_a_mixed_state_reweighted_recovers_the_exact_well_mean_and_variance(tmp_path):
+    """The left well (x < 0) sampled twice: i.i.d. samples of exp(-(U + V)/kT) with their
+    bias energies and i.i.d. samples of exp(-U/kT) without; one state of both files. Its
+    weighted mean and variance of x, from the pass engine, match those of exp(-U/kT) on x < 0
+    by quadrature (scipy.integrate.quad) within four standard errors (delta method for the
+    ratio estimators, Kish 1965 for the weights); the unweighted pool is far off."""
+    from scipy.integrate import quad
+
+    well = DoubleWell()
+    xb = well.samples(20_000, biased=True, seed=31)
+    xu = well.samples(8_000, biased=False, seed=32)
+    pdb, (tb,), (bb,) = write_well_runs(tmp_path, xb[None, :], frame_step_ps=1.0, well=well,
+                                        prefix="b")
+    _, (tu,), _ = write_well_runs(tmp_path, xu[None, :], frame_step_ps=1.0, prefix="u")
+    src = Source(str(pdb), temperature=well.temperature)
+    xs = []
+    for t, b in ((tb, bb), (tu, None)):
+        x = md.load(str(t), top=str(pdb)).xyz[:, 1, 0].astype(np.float64)
+        src.add_labelled(str(t), np.where(x < 0, "left", None), bias=None if b is None
+                         else str(b))
+        xs.append(x)
+    rw = src.reweighting()
+    assert set(rw.groups[0]) == {"biased", "unbiased"}
+    w = np.concatenate([rw.weights[0], rw.weights[1]])
+    x = np.concatenate(xs)
+    sel = np.concatenate([xs[0] < 0, xs[1] < 0])
+    w, x = w[sel], x[sel]
+    m = float(w @ x / w.sum())
+    var = float(w @ (x - m) ** 2 / w.sum())
+    se_m = math.sqrt(np.sum(w**2 * (x - m) ** 2)) / w.sum()
+    se_v = math.sqrt(np.sum(w**2 * ((x - m) ** 2 - var) ** 2)) / w.sum()
+    got = run_pass(FoldMomentsPass(CoordinateFeaturizer([1]), columns=[0]), src)[0][0]
+    assert got.mean[0] == pytest.approx(m, rel=1e-9)
+    assert got.covariance[0, 0] == pytest.approx(var, rel=1e-9)
+    dens = lambda y: math.exp(-float(well.potential(np.array([y]))[0]) / well.kt)  # noqa: E731
+    z = quad(dens, -3.0, 0.0, epsrel=1e-12)[0]
+    mu = quad(lambda y: y * dens(y), -3.0, 0.0, epsrel=1e-12)[0] / z
+    sigma2 = quad(lambda y: (y - mu) ** 2 * dens(y), -3.0, 0.0, epsrel=1e-12)[0] / z
+    assert abs(m - mu) < 4 * se_m + 5e-4, (m, mu, se_m)  # XTC stores x to 1e-3 nm
+    assert abs(var - sigma2) < 4 * se_v + 1e-5, (var, sigma2, se_v)
+    assert abs(x.var() - sigma2) > 10 * se_v  # without the weights the variance is far off
 
 
 # ---------------------------------------------------------------------------- weights
@@ -252,6 +364,8 @@ def biased_scenarios(draw):
             stop = draw(st.integers(start + 1, n + 3))
             segments.append({"n": n, "state": draw(st.sampled_from(["a", "b"])),
                              "start": start, "stop": stop})
+    for seg in segments[1:]:  # unbiased runs too, also in states with biased ones
+        seg["unbiased"] = draw(st.booleans())
     return {"segments": segments, "leaf": draw(st.integers(1, 9)),
             "lag": draw(st.integers(1, 6)), "chunk": draw(st.integers(1, 13)),
             "spread": draw(st.sampled_from([0.5, 2.0, 6.0])),  # bias spread, kT
@@ -268,6 +382,8 @@ def _build_biased(sc, tmp):
         path = _write_dcd(Path(tmp) / f"s{i}.dcd", xyz)
         v = KT * sc["spread"] * rng.normal(size=seg["n"])
         bias = _write_bias(Path(tmp) / f"s{i}.bias", v, header=None if i % 2 else "bias")
+        if seg.get("unbiased"):
+            v, bias = None, None
         if "labels" in seg:
             src.add_labelled(path, seg["labels"], bias=bias)
         else:
@@ -326,8 +442,10 @@ def _check_biased_direct(sc, src, data, results, shift):
     rows = {0: [], 1: []}
     pairs = {}
     for si, (codes, x, v, hi) in enumerate(data):
-        w = rw.weights[si]
-        clock = np.concatenate([[0.0], np.cumsum(np.exp(v / KT))])
+        w = rw.weights.get(si, np.ones(codes.size))  # unbiased states: no weights
+        # each file its own clock: rescaled in a biased run, its own frames in an unbiased one
+        clock = (np.arange(codes.size + 1.0) if v is None else
+                 np.concatenate([[0.0], np.cumsum(np.exp(v / KT))]))
         for t in np.flatnonzero(codes >= 0):
             rows[int(codes[t])].append((w[t], x[t]))
             u = _direct_partner(clock, codes, t, sc["lag"], hi)
@@ -364,7 +482,7 @@ def _check_biased_direct(sc, src, data, results, shift):
     for g, lag in enumerate((1, 3)):
         for (si, s, _), m in grid[g].runs.items():
             codes, x, _, _ = data[si]
-            w = rw.weights[si]
+            w = rw.weights.get(si, np.ones(codes.size))
             ts = [t for t in np.flatnonzero(codes == s)
                   if t + lag < codes.size and np.all(codes[t:t + lag + 1] == s)]
             assert m.n_pairs == len(ts)
@@ -398,7 +516,7 @@ def test_biased_passes_give_identical_bytes_for_any_split_and_match_a_direct_ref
 
 def test_biased_passes_give_the_same_bytes_in_two_processes(tmp_path, assert_same):
     sc = {"segments": [{"n": 37, "labels": (["a"] * 10 + [None] + ["b"] * 26)},
-                       {"n": 30, "state": "a", "start": 3, "stop": 30}],
+                       {"n": 30, "state": "a", "start": 3, "stop": 30, "unbiased": True}],
           "leaf": 5, "lag": 4, "chunk": 7, "spread": 2.0, "block": 4, "seed": 8}
     src, _ = _build_biased(sc, tmp_path)
     featurizer = CoordinateFeaturizer(ATOMS)
@@ -552,6 +670,33 @@ def test_a_bias_of_zero_gives_the_unbiased_suggestions_with_reweighting_notes(ze
     assert seg["bias"]["file"] == "closed-1.bias" and seg["bias"]["temperature_k"] == 300.0
 
 
+def test_suggest_command_on_a_state_with_a_zero_bias_run_and_an_unbiased_one(
+        zero_bias, tmp_path, capsys):
+    """A zero bias on one of the two files of 'closed': the groups weigh by their sizes
+    (2000 frames each), every weight is 1, so the ranking is that of the unbiased runs; the
+    summary gives both groups' effective sample sizes."""
+    top, files, bias = zero_bias
+    argv = ["suggest", "--topology", top, "--bootstrap", "0", "--max-terms", "1",
+            "--suggestions", "1", "--no-report", "--temperature", "300", "--lag", "1"]
+    for s, fs in files.items():
+        argv += ["--state", s, *fs]
+    assert main(argv + ["--out", str(tmp_path / "plain")]) == 0
+    first = files["closed"][0]
+    assert main(argv + ["--out", str(tmp_path / "mixed"), "--bias-energy", first,
+                        bias[first]]) == 0
+    out = capsys.readouterr().out
+    plain, mixed = (json.loads((tmp_path / d / "ranking.json").read_text())
+                    for d in ("plain", "mixed"))
+    for key in ("heldout_score", "fisher_ratio_all", "autocorrelation_all"):
+        assert mixed["ranking"][0][key] == pytest.approx(plain["ranking"][0][key], rel=1e-9)
+    summary = (tmp_path / "mixed" / "summary.md").read_text()
+    for text in (out, summary):
+        assert ("effective sample size (Kish) of state 'closed': 4000.0 of 4000 frames "
+                "(100.0%): biased runs 2000.0 of 2000 frames, unbiased runs 2000 of 2000 "
+                "frames, weighing 50.0% and 50.0% of the state") in text
+    assert "effective sample size (Kish) of state 'open'" not in summary
+
+
 def test_suggest_command_pairs_trajectories_with_bias_files_and_reports_the_sample_size(
         zero_bias, tmp_path, capsys):
     top, files, _ = zero_bias
@@ -595,3 +740,110 @@ def test_suggest_on_labelled_biased_runs_reports_the_reweighted_populations(tmp_
     assert f"'left' {pops[left]:.3g}" in note and f"'right' {pops[right]:.3g} (dF = {df:.3g} " \
         "kJ/mol)" in note, note
     assert result.ranking[0]["timescale_ps"] is not None
+
+
+# ---------------------------------------------------------------------------- states from runs
+@pytest.fixture(scope="module")
+def biased_well_runs(tmp_path_factory):
+    """128 biased runs of the double well (overdamped, each walker started from the
+    biased equilibrium), 1000 frames 0.2 ps apart, with their bias-energy files."""
+    well = DoubleWell()
+    x = well.run(128, 1000, md_step_ps=2e-3, stride=100, biased=True, seed=3)
+    d = tmp_path_factory.mktemp("wellruns")
+    pdb, trajs, biases = write_well_runs(d, x, frame_step_ps=0.2, well=well)
+    return well, str(pdb), [str(t) for t in trajs], [str(b) for b in biases]
+
+
+def test_states_proposed_from_biased_runs_are_the_two_wells_with_their_exact_populations(
+        biased_well_runs):
+    """propose_states on biased runs of the tilted double well: the proposed states are the
+    two wells (a threshold in x within 0.1 nm of the barrier top), and the reweighted
+    population of each matches the exact population of exp(-U/kT) on its side of the
+    threshold, by quadrature (scipy.integrate.quad), within four jackknife standard errors
+    over the 128 independent runs (Efron, The Jackknife, the Bootstrap and Other Resampling
+    Plans, SIAM, 1982); the unweighted frame
+    fraction is far off. Rescaled time (McCarty and Parrinello, J. Chem. Phys. 2017) and its
+    caveat (Voter, J. Chem. Phys. 1997) are in the notes."""
+    from scipy.integrate import quad
+
+    from cvdesign.pipeline.explore import propose_states
+
+    well, pdb, trajs, biases = biased_well_runs
+    src = Source(pdb, temperature=well.temperature)
+    for t, b in zip(trajs, biases):
+        src.add(t, "runs", bias=b)
+    ex = propose_states(src, lag=1.0, cutoff=10.0)
+    assert len(ex.states) == 2
+    xs = [md.load(t, top=pdb).xyz[:, 1, 0].astype(np.float64) for t in trajs]
+    labels = [ex.labels[t] for t in trajs]
+    x, lab = np.concatenate(xs), np.concatenate(labels)
+    left = ex.states[int(np.argmin([x[lab == s].mean() for s in ex.states]))]
+    right = next(s for s in ex.states if s != left)
+    assert x[lab == left].max() < x[lab == right].min()  # a threshold in x
+    cut = 0.5 * (x[lab == left].max() + x[lab == right].min())
+    top = 1.0 / (4.0 * well.barrier / well.tilt)  # the barrier top, x ~ s / (4 h)
+    assert abs(cut - top) < 0.1, cut
+    dens = lambda y: math.exp(-float(well.potential(np.array([y]))[0]) / well.kt)  # noqa: E731
+    lo_part = quad(dens, -3.0, cut, epsrel=1e-12, limit=200)[0]
+    exact = lo_part / (lo_part + quad(dens, cut, 3.0, epsrel=1e-12, limit=200)[0])
+    w = [np.exp(well.bias(xi) / well.kt) for xi in xs]
+    num = np.array([wi[li == left].sum() for wi, li in zip(w, labels)])
+    den = np.array([wi.sum() for wi in w])
+    p = num.sum() / den.sum()
+    assert ex.populations[left] == pytest.approx(p, rel=1e-6)  # the reweighted population
+    k = len(trajs)
+    jack = np.array([(num.sum() - num[i]) / (den.sum() - den[i]) for i in range(k)])
+    se = math.sqrt((k - 1) / k * np.sum((jack - jack.mean()) ** 2))
+    assert abs(p - exact) < 4 * se, (p, exact, se)
+    assert abs(np.mean(lab == left) - exact) > 10 * se  # without the weights: far off
+    assert ex.kinetics.metastable.all() and not ex.warnings
+    text = "\n".join(ex.notes)
+    assert "effective sample size (Kish) of state 'runs'" in text
+    assert "McCarty and Parrinello" in text and "Voter" in text
+    assert "k-means centres" in text
+    # the labelled source for suggest keeps the bias files, so the CVs are reweighted too
+    lab_src = ex.labelled_source(pdb)
+    assert lab_src.biased and lab_src.temperature == well.temperature
+    np.testing.assert_allclose(lab_src.reweighting().populations()[lab_src.states.index(left)],
+                               p, rtol=1e-9)
+
+
+def test_suggest_command_proposes_states_from_biased_runs_and_says_they_were_reweighted(
+        biased_well_runs, tmp_path, capsys):
+    well, pdb, trajs, biases = biased_well_runs
+    argv = ["suggest", "--topology", pdb, "--runs", *trajs[:16], "--lag", "1", "--cutoff", "10",
+            "--bootstrap", "0", "--no-report", "--temperature", "300", "--out",
+            str(tmp_path / "out")]
+    for t, b in zip(trajs[:16], biases[:16]):
+        argv += ["--bias-energy", t, b]
+    assert main(argv) == 0
+    out = capsys.readouterr().out
+    assert "proposed states: S1" in out and "caution:" in out
+    summary = (tmp_path / "out" / "summary.md").read_text()
+    assert "## Proposed states (unlabelled runs)" in summary
+    assert "proposed states from biased runs" in summary
+    assert "effective sample size (Kish) of state 'runs'" in summary  # the proposal's
+    assert "effective sample size (Kish) of state 'S1'" in summary  # the suggestions'
+    assert "rescaled time dt' = dt exp(V/kT)" in summary and "Voter" in summary
+    assert "starting points" in summary
+    spec = json.loads((tmp_path / "out" / "cv-01.json").read_text())
+    assert spec["provenance"]["segments"][0]["bias"]["temperature_k"] == 300.0
+
+
+def test_states_proposed_from_biased_runs_are_the_same_bytes_in_two_processes(biased_well_runs):
+    from cvdesign.pipeline.explore import propose_states
+
+    well, pdb, trajs, biases = biased_well_runs
+    src = Source(pdb, temperature=well.temperature)
+    for t, b in zip(trajs[:12], biases[:12]):
+        src.add(t, "runs", bias=b)
+    src.add(trajs[12], "runs")  # an unbiased run too: the state mixes both
+    one = propose_states(src, lag=1.0, cutoff=10.0, n_states=2)
+    with ProcessExecutor(2) as ex:
+        two = propose_states(src, lag=1.0, cutoff=10.0, n_states=2, executor=ex)
+    assert one.populations == two.populations
+    np.testing.assert_array_equal(one.kinetics.counts, two.kinetics.counts)
+    assert one.kinetics.counts.dtype == np.float64  # weighted pair counts
+    for t in trajs[:13]:
+        np.testing.assert_array_equal(one.labels[t], two.labels[t])
+    assert "unbiased runs 1000 of 1000 frames" in "\n".join(one.notes)

@@ -171,3 +171,93 @@ def test_funnel_from_a_source_is_the_sizing_of_its_frames_as_arrays(tumbled, thr
                                    atol=1e-12)
     for key, value in ref["observed"].items():
         np.testing.assert_allclose(got["observed"][key], value, rtol=1e-9, err_msg=key)
+
+
+# ---------------------------------------------------------------------------- biased runs
+def test_funnel_from_biased_runs_with_integer_multiplicities_equals_the_repeated_frames(
+        host_guest, tmp_path):
+    """A bias V = kT ln(m) weighs each frame m times: the funnel sized from the biased runs
+    equals the one sized from the runs with every frame repeated m times (weights are
+    normalized, so frame counts differ and the density is scaled)."""
+    from cvdesign.constants import BOLTZMANN_KJ_MOL_K
+
+    kt = BOLTZMANN_KJ_MOL_K * 300.0
+    rng = np.random.default_rng(7)
+    biased, repeated = Source(host_guest.topology, temperature=300.0), \
+        Source(host_guest.topology)
+    total = 0
+    for i, path in enumerate(host_guest.paths):
+        traj = md.load(path, top=host_guest.topology)
+        m = rng.integers(1, 5, size=traj.n_frames)
+        m[0] = 1 + i  # (the reference frame is the first frame either way)
+        total += int(m.sum())
+        traj.save_dcd(str(tmp_path / f"b{i}.dcd"))  # float32 as read: no rounding
+        bias = tmp_path / f"b{i}.bias"
+        bias.write_text("bias\n" + "".join(f"{float(v)!r}\n" for v in kt * np.log(m)))
+        biased.add(str(tmp_path / f"b{i}.dcd"), "bound", bias=str(bias))
+        traj[np.repeat(np.arange(traj.n_frames), m)].save_dcd(str(tmp_path / f"r{i}.dcd"))
+        repeated.add(str(tmp_path / f"r{i}.dcd"), "bound")
+    top = biased.topology
+    lig, pocket = (select_atoms(top, host_guest.ligand_selection),
+                   select_atoms(top, host_guest.pocket_selection))
+    a = size_funnel_from_source(biased, pocket, lig)
+    b = size_funnel_from_source(repeated, pocket, lig)
+    np.testing.assert_allclose(a["params"]["axis"], b["params"]["axis"], rtol=1e-9, atol=1e-12)
+    for key in SHAPE_KEYS:
+        assert a["params"][key] == pytest.approx(b["params"][key], rel=1e-9), key
+    for key in ("z_min_nm", "z_max_nm", "r_max_nm", "z_mean_nm", "z_std_nm", "r_std_nm",
+                "r_q95_nm", "center_distance_mean_nm", "center_distance_std_nm",
+                "pocket_fit_rmsd_mean_nm", "pocket_fit_rmsd_max_nm", "ligand_radius_nm"):
+        assert a["observed"][key] == pytest.approx(b["observed"][key], rel=1e-9, abs=1e-12), key
+    n = 2 * 400
+    assert a["observed"]["n_frames"] == n and b["observed"]["n_frames"] == total
+    cells_a = {(z, r): c for z, r, c in a["density"]["cells"]}
+    cells_b = {(z, r): c for z, r, c in b["density"]["cells"]}
+    assert set(cells_a) == set(cells_b)
+    for cell, c in cells_a.items():
+        assert c * total / n == pytest.approx(cells_b[cell], rel=1e-9)
+    assert "effective_sample_size" not in b["observed"]
+    assert a["observed"]["effective_sample_size"]["bound"] == pytest.approx(
+        biased.reweighting().ess[0])
+    text = "\n".join(a["reasoning"])
+    assert "effective sample size (Kish) of state 'bound'" in text
+    assert "reweighted by exp(V/kT)" in text and "over every frame seen" in text
+    # unweighted, the same frames give another funnel: the weights do matter
+    plain = Source(host_guest.topology)
+    for i in range(2):
+        plain.add(str(tmp_path / f"b{i}.dcd"), "bound")
+    c = size_funnel_from_source(plain, pocket, lig)
+    assert c["observed"]["z_mean_nm"] != pytest.approx(a["observed"]["z_mean_nm"], rel=1e-6)
+
+
+def test_funnel_command_accepts_the_bias_options_of_suggest(host_guest, tmp_path, capsys):
+    from cvdesign.cli.commands import build_parser
+
+    def options(command):
+        sub = next(a for a in build_parser()._actions if a.dest == "command")
+        return {o: (a.nargs, a.metavar, a.type, a.default)
+                for a in sub.choices[command]._actions for o in a.option_strings
+                if o in ("--bias-energy", "--bias-column", "--temperature")}
+
+    assert options("funnel") == options("suggest") and len(options("funnel")) == 3
+    rng = np.random.default_rng(2)
+    argv = []
+    for i, path in enumerate(host_guest.paths):
+        bias = tmp_path / f"run{i}.csv"
+        bias.write_text("time_ps, energy\n" + "".join(
+            f"{0.02 * t:.2f}, {v!r}\n" for t, v in enumerate(rng.uniform(0, 3, 400).tolist())))
+        argv += ["--bias-energy", path, str(bias)]
+    out = tmp_path / "funnel.json"
+    assert _run(host_guest, out, *argv, "--bias-column", "energy", "--temperature", "310",
+                "--no-report") == 0
+    text = capsys.readouterr().out
+    assert "reweighting: 2 biased runs with bias energies per frame, at 310 K" in text
+    assert "effective sample size (Kish) of state 'bound'" in text
+    assert "caution:" in text and "not guarantees" in text
+    doc = json.loads(out.read_text())
+    rows = doc["provenance"]["segments"]  # as suggest writes them
+    assert [r["bias"]["file"] for r in rows] == ["run0.csv", "run1.csv"]
+    assert rows[0]["bias"]["column"] == "energy" and rows[0]["bias"]["temperature_k"] == 310.0
+    sizing = doc["hints"]["funnel_sizing"]
+    assert 0 < sizing["observed"]["effective_sample_size"]["bound"] < 800
+    assert sizing["observed"]["reweighting_temperature_k"] == 310.0

@@ -18,8 +18,9 @@ slow torsion C3-C4-C5-C6 between closed, near 0 rad, and open, near pi rad):
    (``cvdesign.pipeline.refine.label_basins``): frames in a basin core get the
    state, frames between cores are transition frames.
 5. ``suggest`` again from the biased frames of half the walkers: CV 2. (The
-   bundled basin runs cannot join here: a state may not mix biased and unbiased
-   runs, their weights having no common reference.)
+   bundled basin runs could join the same states: a state with biased and
+   unbiased runs combines the two groups by their effective sample sizes; here
+   CV 2 comes from the biased frames alone, so that it shows what they add.)
 6. How CV 2 differs from CV 1 (terms, cosine of the weights, Fisher ratio of
    each on the other half of the walkers, which neither was fitted on), and a
    second biased run with the same settings along CV 2: crossings of each run,

@@ -37,6 +37,10 @@ The frames come as arrays or chunks of arrays (:func:`size_funnel`) or as the
 trajectories of a :class:`~cvdesign.io.source.Source`, read in two passes of the
 pass engine (:func:`size_funnel_from_source`: local processes or a Dask cluster
 give the same bytes; the reference pocket is read first, from the first frame).
+Frames of biased runs given with their bias energies (:mod:`cvdesign.io.bias`)
+are reweighted by ``exp(V/kT)``: every mean, standard deviation, quantile and
+density is weighted, while the extremes that the funnel must clear are those
+of every frame seen.
 
 Caution: every suggested value is a starting point to validate (check that
 the bound pose is unperturbed with the restraint on, and that the cylinder
@@ -70,6 +74,14 @@ CAUTION = ("Suggested funnel parameters are starting points to validate (bound p
 #: half-angle, nm for the radii.
 SHAPE_KEYS = ("lower_wall_z_nm", "upper_wall_z_nm", "cone_end_z_nm", "cone_half_angle_rad",
               "cylinder_radius_nm", "blend_half_width_nm")
+
+_WEIGHTED_NOTE = ("the bound frames come from biased runs and are reweighted by exp(V/kT): "
+                  "the axis (mean fitted ligand offset and pocket), the mean pocket-fit RMSD, "
+                  "the means and standard deviations of z, r and the centre distance (which "
+                  "set the margins), the r quantile and the density of the plot are weighted; "
+                  "the lowest and highest z and the largest r in each z bin (which the cone "
+                  "must clear) are over every frame seen, whatever its weight; the positions "
+                  "drawn in the report are frames, unweighted")
 
 _FRAME_NOTE = ("the funnel is expressed in the frame of the reference pocket (the pocket of the "
                "first bound frame, made whole and centred, in its box orientation): every "
@@ -221,6 +233,13 @@ class FunnelStats:
     (for the plot). Memory grows with the extent of the data in bins, not
     with the number of frames.
 
+    Frames may carry weights (biased runs, :mod:`cvdesign.io.bias`): the
+    means, M2, the r histogram and the cell occupancy are then weighted
+    (``weight`` is the summed weight; ``count`` stays the number of frames),
+    while the extremes and the envelope stay those of every frame seen (a
+    weight does not change where the ligand went). Without weights ``weight``
+    equals ``count`` and the arithmetic is the unweighted one.
+
     Parameters
     ----------
     origin : array-like of shape (3,)
@@ -242,6 +261,7 @@ class FunnelStats:
         self.axis = _unit(axis, "axis")
         self.bin_width = float(bin_width)
         self.count = 0
+        self.weight = 0               # summed weight (the count, without weights)
         self._m = {"z": [0.0, 0.0], "r": [0.0, 0.0], "distance": [0.0, 0.0]}
         self.z_min = self.r_min = np.inf
         self.z_max = self.r_max = -np.inf
@@ -249,12 +269,14 @@ class FunnelStats:
         self.r_hist = {}              # r bin index -> count
         self.cells = {}               # (z bin, r bin) -> count
 
-    def update(self, ligand_centers):
-        """Add ligand centres of shape (n, 3), nm; returns self."""
+    def update(self, ligand_centers, weights=None):
+        """Add ligand centres of shape (n, 3), nm (with their weights, shape (n,), when
+        given); returns self."""
         z, r = project_on_axis(np.asarray(ligand_centers, dtype=np.float64).reshape(-1, 3),
                                self.origin, self.axis)
         if z.size:
-            self._absorb(self._of(z, r))
+            self._absorb(self._of(z, r, None if weights is None
+                                  else np.asarray(weights, dtype=np.float64)))
         return self
 
     def merge(self, other):
@@ -270,6 +292,7 @@ class FunnelStats:
                              "width")
         out = FunnelStats(self.origin, self.axis, bin_width=self.bin_width)
         out.count, out._m = self.count, {key: list(v) for key, v in self._m.items()}
+        out.weight = self.weight
         out.z_min, out.z_max, out.r_min, out.r_max = self.z_min, self.z_max, self.r_min, \
             self.r_max
         out.envelope, out.r_hist, out.cells = dict(self.envelope), dict(self.r_hist), \
@@ -277,37 +300,50 @@ class FunnelStats:
         out._absorb(other)
         return out
 
-    def _of(self, z, r):
-        """Statistics of the (z, r) of some centres alone."""
+    def _of(self, z, r, w=None):
+        """Statistics of the (z, r) of some centres alone (weights `w`, or None)."""
         part = FunnelStats(self.origin, self.axis, bin_width=self.bin_width)
         part.count = z.size
+        part.weight = z.size if w is None else float(w.sum())
         for key, v in (("z", z), ("r", r), ("distance", np.hypot(z, r))):
-            part._m[key] = [v.mean(), ((v - v.mean()) ** 2).sum()]
+            if w is None:
+                part._m[key] = [v.mean(), ((v - v.mean()) ** 2).sum()]
+            else:
+                mean = float(w @ v) / part.weight if part.weight > 0 else 0.0
+                part._m[key] = [mean, float(w @ (v - mean) ** 2)]
         part.z_min, part.z_max = float(z.min()), float(z.max())
         part.r_min, part.r_max = float(r.min()), float(r.max())
         zb = np.floor(z / self.bin_width).astype(np.int64)
         rb_all = np.floor(r / self.bin_width).astype(np.int64)
         for b in np.unique(zb):
             part.envelope[int(b)] = float(r[zb == b].max())
-        rb, cnt = np.unique(rb_all, return_counts=True)
+        rb, inv, cnt = np.unique(rb_all, return_inverse=True, return_counts=True)
+        if w is not None:
+            cnt = np.bincount(inv.reshape(-1), weights=w, minlength=rb.size)
         part.r_hist = dict(zip(rb.tolist(), cnt.tolist()))
-        cell, cnt = np.unique(np.stack([zb, rb_all], axis=1), axis=0, return_counts=True)
+        cell, inv, cnt = np.unique(np.stack([zb, rb_all], axis=1), axis=0, return_inverse=True,
+                                   return_counts=True)
+        if w is not None:
+            cnt = np.bincount(inv.reshape(-1), weights=w, minlength=len(cell))
         part.cells = {(bz, br): c for (bz, br), c in zip(cell.tolist(), cnt.tolist())}
         return part
 
     def _absorb(self, other):
         """Add the statistics of `other` into these, in place."""
-        n = other.count
-        if n == 0:
+        if other.count == 0:
             return
+        n = other.weight  # (the count, without weights)
         for key in self._m:
             mean_b, m2_b = other._m[key]
             mean_a, m2_a = self._m[key]
-            tot = self.count + n
+            tot = self.weight + n
+            if not tot > 0:  # (weights of zero only: nothing to average)
+                continue
             delta = mean_b - mean_a
             self._m[key] = [mean_a + delta * n / tot,
-                            m2_a + m2_b + delta * delta * self.count * n / tot]
-        self.count += n
+                            m2_a + m2_b + delta * delta * self.weight * n / tot]
+        self.count += other.count
+        self.weight += n
         self.z_min, self.z_max = float(min(self.z_min, other.z_min)), \
             float(max(self.z_max, other.z_max))
         self.r_min, self.r_max = float(min(self.r_min, other.r_min)), \
@@ -320,7 +356,7 @@ class FunnelStats:
             self.cells[cell] = self.cells.get(cell, 0) + c
 
     def _std(self, key):
-        return float(np.sqrt(self._m[key][1] / max(self.count, 1)))
+        return float(np.sqrt(self._m[key][1] / (self.weight if self.weight > 0 else 1)))
 
     @property
     def z_mean(self):
@@ -348,10 +384,11 @@ class FunnelStats:
         return self._std("distance")
 
     def r_quantile(self, q):
-        """Quantile of r from the histogram (upper bin edge, conservative), nm."""
+        """Quantile of r from the histogram (upper bin edge, conservative), nm; weighted
+        when the frames are."""
         keys = sorted(self.r_hist)
         cum = np.cumsum([self.r_hist[k] for k in keys])
-        k = keys[int(np.searchsorted(cum, q * self.count))]
+        k = keys[min(int(np.searchsorted(cum, q * self.weight)), len(keys) - 1)]
         return (k + 1) * self.bin_width
 
 
@@ -429,26 +466,38 @@ class _FitSums:
     Frames; sums of the fitted pocket-to-ligand vectors and of the fitted
     pockets (nm); the largest ligand radius (nm); sum and largest pocket-fit
     RMSD (nm); half the smallest box height (nm; inf without a box); the
-    farthest atom of a whole group from its first atom (nm).
+    farthest atom of a whole group from its first atom (nm); the summed weight
+    ``w`` of the frames (the frame count, without weights). With weights
+    (biased runs) the sums are weighted; the extremes are over every frame.
     """
 
     __slots__ = ("n", "dsum", "psum", "lrad", "rmsd_sum", "rmsd_max", "half_height",
-                 "group_reach")
+                 "group_reach", "w")
 
     def __init__(self, n=0, dsum=None, psum=None, lrad=0.0, rmsd_sum=0.0, rmsd_max=0.0,
-                 half_height=np.inf, group_reach=0.0):
+                 half_height=np.inf, group_reach=0.0, w=None):
         self.n, self.dsum, self.psum, self.lrad = n, dsum, psum, lrad
         self.rmsd_sum, self.rmsd_max = rmsd_sum, rmsd_max
         self.half_height, self.group_reach = half_height, group_reach
+        self.w = n if w is None else w
 
     @classmethod
-    def of(cls, fit, box):
-        """Sums of some fitted frames (`box` None when they have none)."""
-        out = cls(len(fit.d), fit.d.sum(axis=0), np.einsum("faj,fjk->ak", fit.centred,
-                                                           fit.rotation),
+    def of(cls, fit, box, weights=None):
+        """Sums of some fitted frames (`box` None when they have none; `weights` of the
+        frames, or None)."""
+        if weights is None:
+            dsum = fit.d.sum(axis=0)
+            psum = np.einsum("faj,fjk->ak", fit.centred, fit.rotation)
+            rmsd_sum, w = float(fit.rmsd.sum()), None
+        else:
+            weights = np.asarray(weights, dtype=np.float64)
+            dsum = weights @ fit.d
+            psum = np.einsum("f,faj,fjk->ak", weights, fit.centred, fit.rotation)
+            rmsd_sum, w = float(weights @ fit.rmsd), float(weights.sum())
+        out = cls(len(fit.d), dsum, psum,
                   float(np.linalg.norm(fit.whole_q - fit.whole_q.mean(axis=1, keepdims=True),
                                        axis=-1).max()),
-                  float(fit.rmsd.sum()), float(fit.rmsd.max()))
+                  rmsd_sum, float(fit.rmsd.max()), w=w)
         if box is not None:
             out.half_height = 0.5 * float(geometry.box_heights(box).min())
             out.group_reach = max(float(np.linalg.norm(w - w[:, :1], axis=-1).max())
@@ -463,7 +512,7 @@ class _FitSums:
                         max(self.lrad, other.lrad), self.rmsd_sum + other.rmsd_sum,
                         max(self.rmsd_max, other.rmsd_max),
                         min(self.half_height, other.half_height),
-                        max(self.group_reach, other.group_reach))
+                        max(self.group_reach, other.group_reach), self.w + other.w)
 
 
 class _Fitter:
@@ -694,7 +743,7 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
 
 def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylinder_pad=0.2,
           k_std=2.0, min_margin=0.1, z_margin=0.2, blend_half_width=0.1, unbound_length=1.5,
-          min_half_angle=0.2, bin_width=0.02):
+          min_half_angle=0.2, bin_width=0.02, reweighting=None):
     """The sizing from two passes over the frames (see :func:`size_funnel`).
 
     ``first()`` returns the reference pocket and the :class:`_FitSums` of every
@@ -702,7 +751,8 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
     to the empty :class:`FunnelStats` `stats` (on the axis chosen from the first
     pass) and returns them with the positions of at most :data:`MAX_POSITIONS`
     frames (:func:`_positions`); `changed` is the advice when the passes saw
-    different frames.
+    different frames. `reweighting` (a :class:`cvdesign.io.bias.Reweighting`, biased
+    runs) adds its notes and the effective sample sizes to the result.
     """
     # Pass 1: reference pocket, mean fitted offset and pocket, ligand radius, box heights.
     reference, sums = first()
@@ -720,7 +770,8 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
         _check_exit_offset(e, reference.center, exit_offset, _MIN_OFFSET,
                            " of the first bound frame (minimum image)"
                            if reference.box is not None else " of the first bound frame")
-    axis, rule = funnel_axis(np.zeros(3), exit_offset, sums.dsum / n, pocket_xyz=sums.psum / n)
+    axis, rule = funnel_axis(np.zeros(3), exit_offset, sums.dsum / sums.w,
+                             pocket_xyz=sums.psum / sums.w)
     # Pass 2: (z, r) statistics of the fitted vectors.
     stats, positions = second(reference, FunnelStats(np.zeros(3), axis, bin_width=bin_width),
                               n)
@@ -759,7 +810,7 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
     reasoning = [
         _FRAME_NOTE,
         f"axis by rule '{rule}' from the pocket centre, in the reference frame; pocket fit "
-        f"RMSD mean {rmsd_sum / n:.3f} nm, largest {rmsd_max:.3f} nm",
+        f"RMSD mean {rmsd_sum / sums.w:.3f} nm, largest {rmsd_max:.3f} nm",
         f"lower_wall_z_nm = lowest bound z {stats.z_min:.3f} - margin {dz:.3f} nm "
         f"(max of {z_margin} nm and {k_std} std; common practice, from memory)",
         f"cone_end_z_nm = highest bound z {stats.z_max:.3f} + {dz:.3f} + blend half-width "
@@ -772,6 +823,16 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
         + (f" (half the smallest box height: {half_height:.3f} nm)" if np.isfinite(half_height)
            else " (no periodic box in the bound frames; check against the box of the run)"),
     ] + [f"WARNING: {w}" for w in warnings]
+    observed_weights = {}
+    if reweighting is not None:  # biased runs: say so, with the effective sample sizes
+        rw_notes, rw_warnings = reweighting.describe()
+        warnings += rw_warnings
+        reasoning += [n for n in rw_notes if not n.startswith("warning: ")] + [
+            f"WARNING: {w}" for w in rw_warnings] + [_WEIGHTED_NOTE]
+        observed_weights = {
+            "effective_sample_size": {reweighting.states[s]: float(reweighting.ess[s])
+                                      for s in reweighting.biased_states},
+            "reweighting_temperature_k": reweighting.temperature_k}
     cells = sorted([bz, br, c] for (bz, br), c in stats.cells.items())
     return {
         "units": {key: UNITS[key] for key in ("length", "angle")},
@@ -792,7 +853,7 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
                      "pocket_fit_rmsd_max_nm": rmsd_max,
                      "half_smallest_box_height_nm": (float(half_height)
                                                      if np.isfinite(half_height) else None),
-                     "funnel_reach_nm": reach},
+                     "funnel_reach_nm": reach, **observed_weights},
         "margins": {"z_nm": dz, "r_nm": dr, "k_std": k_std, "cylinder_pad_nm": cylinder_pad},
         "density": {"bin_width_nm": float(bin_width), "cells": cells},
         "positions": positions,
@@ -822,6 +883,11 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
     ----------
     source : cvdesign.io.source.Source
         The bound-state trajectories (every frame with a state is used).
+        Biased runs (given with their bias energies) are reweighted: the
+        sums, means, standard deviations, r quantile and density are
+        weighted by ``exp(V/kT)``; the extremes the funnel must clear are over
+        every frame (see :class:`FunnelStats`). The reasoning then gives the
+        effective sample size, and ``observed`` holds it per state.
     pocket, ligand : array-like of int
         0-based topology indices of the pocket and ligand atoms (no atom in
         both); the rows of ``reference_pocket_nm`` follow the order of
@@ -866,10 +932,6 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
     if not isinstance(source, Source):
         raise InputError(f"size_funnel_from_source() needs a Source of the bound-state "
                          f"trajectories, not {type(source).__name__}")
-    if source.biased:
-        raise InputError("size_funnel_from_source() sizes the funnel from the bound state's "
-                         "unbiased frames and does not reweight biased runs; give "
-                         "trajectories without bias energies")
     n_atoms = source.topology.n_atoms
     groups = []
     for name, group in (("pocket", pocket), ("ligand", ligand)):
@@ -904,7 +966,8 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
             return run_pass(_StatsPass(featurizer, *columns, reference, stats, stride), source,
                             executor=executor, tasks=plan, label="funnel: sizing")
 
-        return _size(first, second, "were the trajectories changed during the run?", **options)
+        return _size(first, second, "were the trajectories changed during the run?",
+                     reweighting=source.reweighting(), **options)
 
 
 _SIZING_OPTIONS = ("exit_point", "ligand_radius", "cylinder_pad", "k_std", "min_margin",
@@ -957,7 +1020,7 @@ class _FitPass(_FunnelPass):
     """Pass 1: the :class:`_FitSums` of every frame."""
 
     def map(self, leaf):
-        return _FitSums.of(*self.fit(leaf))
+        return _FitSums.of(*self.fit(leaf), leaf.weights)
 
     def finish(self, partial, plan):
         return _FitSums() if partial is None else partial
@@ -980,7 +1043,7 @@ class _StatsPass(_FunnelPass):
         d = self.fit(leaf)[0].d
         z, r = project_on_axis(d, self.stats.origin, self.stats.axis)
         keep = frame_keys(leaf.layout, leaf.frames).rank % self.stride == 0
-        return self._empty().update(d), [(z[keep], r[keep])]
+        return self._empty().update(d, leaf.weights), [(z[keep], r[keep])]
 
     def merge(self, a, b):
         return a[0].merge(b[0]), a[1] + b[1]

@@ -169,6 +169,21 @@ def _add_suggest_options(p):
     _add_no_report(p, "report.html in the output directory")
 
 
+def _add_bias_options(p, given_with, effect):
+    """--bias-energy TRAJ FILE and --bias-column, for the trajectories of `given_with`."""
+    p.add_argument("--bias-energy", nargs=2, action="append", metavar=("TRAJ", "FILE"),
+                   default=None,
+                   help=f"a biased run: a trajectory given with {given_with} and its "
+                        "bias-energy file (one bias energy in kJ/mol per frame of the whole "
+                        "trajectory, frame 0 first; '#' comments; one column, or columns with "
+                        "a header line, the one named 'bias' read unless --bias-column says "
+                        f"otherwise). {effect}")
+    p.add_argument("--bias-column", metavar="N|NAME", default=None,
+                   help="column of the --bias-energy files holding the bias energies: a "
+                        "number counted from 1, or a header name (default: the only column, "
+                        "or the one named 'bias')")
+
+
 def _add_no_report(p, where):
     p.add_argument("--no-report", action="store_true",
                    help=f"do not write the HTML report ({where}: figures and tables in one "
@@ -230,20 +245,11 @@ def build_parser():
                         "more states, slowness is also measured along the whole run, "
                         "crossings included, which --objective both then ranks on. Repeat "
                         "for each such trajectory")
-    p.add_argument("--bias-energy", nargs=2, action="append", metavar=("TRAJ", "FILE"),
-                   default=None,
-                   help="a biased run: a trajectory given with --state or --labelled and its "
-                        "bias-energy "
-                        "file (one bias energy in kJ/mol per frame of the whole trajectory, "
-                        "frame 0 first; '#' comments; one column, or columns with a header "
-                        "line, the one named 'bias' read unless --bias-column says otherwise). "
-                        "Its frames are reweighted by exp(V/kT) at --temperature, and its "
-                        "lagged pairs taken in rescaled time dt*exp(V/kT). Repeat for each "
-                        "biased run; every run of a state must be biased, or none")
-    p.add_argument("--bias-column", metavar="N|NAME", default=None,
-                   help="column of the --bias-energy files holding the bias energies: a "
-                        "number counted from 1, or a header name (default: the only column, "
-                        "or the one named 'bias')")
+    _add_bias_options(p, "--state, --labelled or --runs",
+                      "Its frames are reweighted by exp(V/kT) at --temperature, and its "
+                      "lagged pairs taken in rescaled time dt*exp(V/kT). Repeat for each "
+                      "biased run; a state may also have unbiased runs (the two groups "
+                      "are combined in proportion to their effective sample sizes)")
     p.add_argument("--n-states", type=_at_least_two, default=None, metavar="N",
                    help="with --runs: the number of states to propose (default: 2 to 6, the "
                         "fewest that are all metastable among the best mean silhouettes)")
@@ -359,6 +365,14 @@ def build_parser():
     p.add_argument("--plot", metavar="FILE.png", default=None,
                    help="also draw the funnel outline and the bound ligand positions (the "
                         "format follows the extension: .png, .svg, .pdf, ...)")
+    _add_bias_options(p, "--bound",
+                      "Its frames are reweighted by exp(V/kT) at --temperature: the axis, "
+                      "the means and spreads that set the margins and the density are "
+                      "weighted (the extremes the funnel must clear are over every frame). "
+                      "Repeat for each biased run")
+    p.add_argument("--temperature", type=_positive_float, default=300.0, metavar="K",
+                   help="temperature of the biased runs given with --bias-energy, whose "
+                        "frames are reweighted at it (default: 300)")
     p.add_argument("--force", action="store_true",
                    help="replace --out (and --plot, the report and its data) if they exist; "
                         "input files are never replaced")
@@ -511,9 +525,6 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     if labelled and runs:
         raise InputError("--labelled goes with --state: proposing states from unlabelled runs "
                          "(--runs) labels the frames itself")
-    if biases and runs:
-        raise InputError("--bias-energy goes with --state: proposing states from unlabelled "
-                         "biased runs (--runs) is not supported yet")
     if bias_column is not None and not biases:
         raise InputError("--bias-column goes with --bias-energy TRAJ FILE: it says which "
                          "column of the bias-energy files holds the bias energies")
@@ -521,9 +532,12 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         if args.lag is None:
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
                              "looked for")
-        source = Source(topology, timestep=args.frame_step_ps)
+        source = Source(topology, timestep=args.frame_step_ps,
+                        temperature=args.temperature if biases else None)
+        bias_of = _bias_files(biases, list(runs), given_with="--runs")
         for f in runs:
-            source.add(f, state="runs")
+            source.add(f, state="runs", bias=bias_of.get(f),
+                       bias_column=bias_column if f in bias_of else None)
     else:
         if getattr(args, "n_states", None) is not None:
             raise InputError("--n-states goes with --runs (states proposed from unlabelled "
@@ -615,18 +629,20 @@ def _labels_for(traj, label_file):
     return labels
 
 
-def _bias_files(biases, files):
-    """``{trajectory as given with --state: bias-energy file}`` from the --bias-energy pairs."""
+def _bias_files(biases, files, given_with="--state or --labelled"):
+    """``{trajectory as given with --state (or --runs): bias-energy file}`` from the
+    --bias-energy pairs."""
     out = {}
+    what = "the states" if given_with.startswith("--state") else given_with
     for traj, bias in biases:
         if not Path(traj).is_file():
             raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} does not exist; "
-                             "give a trajectory of --state and its bias-energy file")
+                             f"give a trajectory of {given_with} and its bias-energy file")
         match = [f for f in files if Path(f).is_file() and os.path.samefile(f, traj)]
         if not match:
             raise InputError(f"--bias-energy {traj} {bias}: trajectory {traj!r} is not given "
-                             "with --state or --labelled; pair each biased run of the states "
-                             "with its bias-energy file")
+                             f"with {given_with}; pair each biased run of {what} with its "
+                             "bias-energy file")
         for f in match:
             if f in out:
                 raise InputError(f"--bias-energy names trajectory {traj!r} twice; give one "
@@ -1008,7 +1024,11 @@ def _cmd_funnel(args):
     if not (math.isfinite(args.k_wall) and args.k_wall > 0):
         raise InputError(f"--k-wall {args.k_wall!r} must be a positive force constant in "
                          "kJ/mol/nm^2")
-    inputs = [args.topology] + list(args.bound)
+    biases = args.bias_energy or []
+    if args.bias_column is not None and not biases:
+        raise InputError("--bias-column goes with --bias-energy TRAJ FILE: it says which "
+                         "column of the bias-energy files holds the bias energies")
+    inputs = [args.topology] + list(args.bound) + [b for _, b in biases]
     check_output_file(args.out, force=args.force, inputs=inputs, option="--out")
     if args.plot is not None:
         if Path(args.plot).resolve() == Path(args.out).resolve():
@@ -1026,9 +1046,11 @@ def _cmd_funnel(args):
     if report is not None:  # (matplotlib writes no .html, so --plot cannot be the report)
         check_output_file(report, force=args.force, inputs=inputs,
                           option=f"the report ({report.name}, beside --out; see --no-report)")
-    source = Source(args.topology)
+    source = Source(args.topology, temperature=args.temperature if biases else None)
+    bias_of = _bias_files(biases, list(args.bound), given_with="--bound")
     for f in args.bound:
-        source.add(f, state="bound")
+        source.add(f, state="bound", bias=bias_of.get(f),
+                   bias_column=args.bias_column if f in bias_of else None)
     top = source.topology
     lig = select_atoms(top, args.ligand)
     pocket = select_atoms(top, args.pocket)
@@ -1103,6 +1125,7 @@ def _funnel_spec(source, args, lig, pocket, result):
     """The spec `cvdesign funnel` writes: centre distance as the CV, the funnel as a restraint."""
     from ..bias.funnel import SHAPE_KEYS
     from ..io.source import file_sha256
+    from ..pipeline.specs import _segments_provenance
     from ..spec import Spec, residue_hashes, topology_fingerprint
 
     top = source.topology
@@ -1133,6 +1156,7 @@ def _funnel_spec(source, args, lig, pocket, result):
         provenance={"method": "funnel sizing from bound-state frames",
                     "inputs": [{"file": Path(f).name, "sha256": file_sha256(f), "state": "bound"}
                                for f in args.bound],
+                    **({"segments": _segments_provenance(source)} if source.biased else {}),
                     "seed": None,
                     "topology_file": {"file": Path(args.topology).name,
                                       "fingerprint": topology_fingerprint(top),

@@ -31,8 +31,42 @@ states weigh them as unbiased input does (by frames). A constant per file
 would be wrong: it would change the relative weight of the files of a state.
 The states' populations are not affected by this choice: they follow from
 ``Z_s = sum_{t in s} exp(a_t)``, computed in log space
-(:meth:`Reweighting.populations`). A state may not mix biased and unbiased
-files (their weights have no common reference).
+(:meth:`Reweighting.populations`), over the biased frames only.
+
+**A state with biased and unbiased runs.** An unbiased file has no bias
+energies, so its frames share no reference with those of a biased run:
+``exp(V/kT)`` fixes the weights of the biased frames only up to a constant
+that is unknown relative to the unbiased frames (the constant is ``Z_V /
+Z_0``, the ratio of the partition functions of the state with and without the
+bias). The state's files are therefore split into two groups, each with a
+common reference: its unbiased files (weight 1 each frame) and its biased
+files (weights normalized with one constant, as above). Each group's
+self-normalized estimate of a state average is a consistent estimate of the
+same unbiased average, so the state's average is taken as a convex
+combination ``sum_g lambda_g A_g`` of the groups' estimates, with
+``lambda_g`` proportional to the group's Kish effective sample size ``n_g``
+(the unbiased group: its number of frames). The frames of group ``g`` keep
+their relative weights and the group's weights sum to ``N_s n_g / sum_h
+n_h``, so the state's weights still average 1. Why this rule: the variance
+of a self-normalized importance-sampling estimate is about ``sigma^2 / n_g``
+(Kish, *Survey Sampling*, Wiley, 1965; Kong, Tech. Rep. 348, Dept. of
+Statistics, University of Chicago, 1992; Liu, *Monte Carlo Strategies in
+Scientific Computing*, Springer, 2001), so these ``lambda_g`` are the
+inverse-variance (minimum-variance) weights of independent estimates of one
+quantity (Cochran, Biometrics 10, 101, 1954); equivalently, of all group scalings they give
+the largest Kish effective sample size of the state's weights, which is then
+the sum of the groups' (``sum_g n_g``). The estimator a multistate method
+such as MBAR (Shirts and Chodera, J. Chem. Phys. 129, 124105, 2008) would
+give needs the bias energy of the unbiased frames too, which the input does
+not have. Limits: both groups must sample the same state (an unbiased run
+stuck in part of the state biases the combination as it biases an unbiased
+estimate), and Kish's size ignores the correlation of successive frames, in
+both groups alike. The groups' sizes are in :attr:`Reweighting.groups` and the
+summary. Every file keeps its own clock: lagged pairs of a biased file are
+taken in rescaled time, those of an unbiased file in its own time, and no
+pair spans two files. A state with unbiased files only keeps unweighted
+statistics (no weights at all), so its results are the same bytes as without
+any biased run; a state with biased files only is weighted as above.
 
 **Effective sample size.** Kish's ``(sum w)^2 / sum w^2`` (Kish, *Survey
 Sampling*, Wiley, 1965), per state; a warning names a state whose effective
@@ -258,21 +292,31 @@ class Reweighting:
         Temperature of the biased runs, K.
     states : list of str
     weights : dict of int to ndarray
-        Per biased segment (index in the source), the weight of every frame of
-        its file (0 for frames outside the segment's states); within each state
-        the weights average 1 over all its frames.
+        Per biased segment (index in the source), and per unbiased segment
+        holding frames of a state with biased runs, the weight of every frame
+        of its file (0 for frames outside the segment's states); within each
+        state the weights average 1 over all its frames. Unbiased segments of
+        states without biased runs have none (unweighted statistics).
     clocks : dict of int to ndarray
         Per biased segment, the rescaled clock at every frame of its file and
         at its end (``n_file + 1`` values), in frame spacings (``clock[f] =
         sum_{u<f} exp(V_u / kT)``); ``inf`` after an overflow (see
         :meth:`check_rescaled_time`).
     frames : ndarray of shape (n_states,), int64
-        Frames of each state in biased segments (0: an unbiased state).
+        Frames of each reweighted state (a state with biased frames), in
+        biased and unbiased segments (0: an unbiased state).
     ess : ndarray of shape (n_states,)
-        Kish effective sample size of each state's frames (NaN: unbiased).
+        Kish effective sample size of each reweighted state's weights (NaN:
+        unbiased); for a state with biased and unbiased runs, the sum of its
+        groups' (:attr:`groups`).
     log_z : ndarray of shape (n_states,)
         ``log sum_{t in s} exp(V_t / kT)`` over each state's biased frames
         (``-inf``: unbiased).
+    groups : dict of int to dict of str to (int, float)
+        For each state with biased and unbiased runs, ``{'biased': (frames,
+        Kish size), 'unbiased': (frames, frames)}``: the groups whose
+        estimates are combined in proportion to their effective sample sizes
+        (see :mod:`cvdesign.io.bias`). Empty when no state mixes them.
     max_exponent : dict of int to (float, int)
         Per biased segment, the largest ``V / kT`` of its frames and the frame.
     multi_state : bool
@@ -292,6 +336,7 @@ class Reweighting:
     max_exponent: dict
     multi_state: bool
     paths: dict = field(default_factory=dict)
+    groups: dict = field(default_factory=dict)
 
     @property
     def kt(self):
@@ -415,11 +460,20 @@ class Reweighting:
         notes.append(
             f"reweighting: {n_files} biased run{'s' if n_files != 1 else ''} with bias "
             f"energies per frame, at {self.temperature_k:g} K; every statistic weights frame "
-            "t by exp(V_t/kT), normalized over all the frames of its state")
+            "t by exp(V_t/kT), normalized over all the frames of its state"
+            + ("" if not self.groups else
+               "; in a state with biased and unbiased runs, the two groups are normalized "
+               "apart and combined in proportion to their effective sample sizes (the "
+               "inverse-variance weights of the two estimates)"))
         for s in self.biased_states:
             ess, n = float(self.ess[s]), int(self.frames[s])
+            parts = ""
+            if s in self.groups:
+                (nb, eb), (nu, _) = self.groups[s]["biased"], self.groups[s]["unbiased"]
+                parts = (f": biased runs {eb:.1f} of {nb} frames, unbiased runs {nu} of {nu} "
+                         f"frames, weighing {eb / ess:.1%} and {nu / ess:.1%} of the state")
             notes.append(f"effective sample size (Kish) of state {self.states[s]!r}: "
-                         f"{ess:.1f} of {n} frames ({ess / n:.1%})")
+                         f"{ess:.1f} of {n} frames ({ess / n:.1%}){parts}")
             if ess < LOW_ESS_FRACTION * n or ess < LOW_ESS_FRAMES:
                 w = (f"state {self.states[s]!r} has a small effective sample size after "
                      f"reweighting ({ess:.1f} of {n} frames): a few frames of high bias carry "
@@ -471,27 +525,29 @@ def _state_codes(segment, n_file, index):
     return codes
 
 
-def reweight(segments, states, temperature_k):
+def reweight(segments, states, temperature_k, *, count_frames=None):
     """Frame weights, effective sample sizes and rescaled clocks of biased segments.
 
     Parameters
     ----------
     segments : sequence of cvdesign.io.source.Segment
         Segments; those with ``bias`` (one energy per frame of the file,
-        kJ/mol) are reweighted.
+        kJ/mol) are reweighted. Unbiased segments holding frames of a state
+        that also has biased frames get weights too (the state's two groups
+        combined in proportion to their effective sample sizes, see
+        :mod:`cvdesign.io.bias`).
     states : sequence of str
         State names (the codes of the segments' states).
     temperature_k : float
         Temperature of the biased runs, K.
+    count_frames : callable, default=None
+        ``count_frames(path) -> int``, frames in a trajectory file: needed for
+        an unbiased segment without labels of a state with biased runs
+        (default: :func:`cvdesign.io.source.file_frames`).
 
     Returns
     -------
     Reweighting
-
-    Raises
-    ------
-    InputError
-        When a state has frames in biased and in unbiased files.
 
     Examples
     --------
@@ -502,33 +558,26 @@ def reweight(segments, states, temperature_k):
     >>> rw = reweight([seg], ["a"], 300.0)
     >>> rw.weights[0].tolist(), round(float(rw.ess[0]), 3)  # weights 1:1:2, averaging 1
     ([0.75, 0.75, 1.5], 2.667)
+
+    The same state with an unbiased run of 3 frames too: the groups weigh
+    2.667 : 3 (their effective sizes), and the 6 weights still average 1:
+
+    >>> plain = Segment(Path("plain.xtc"), "a")
+    >>> rw = reweight([seg, plain], ["a"], 300.0, count_frames=lambda path: 3)
+    >>> [round(float(v), 4) for v in rw.weights[0].tolist() + rw.weights[1].tolist()]
+    [0.7059, 0.7059, 1.4118, 1.0588, 1.0588, 1.0588]
+    >>> round(float(rw.ess[0]), 3), rw.groups[0]["unbiased"]
+    (5.667, (3, 3.0))
     """
     index = {s: i for i, s in enumerate(states)}
     n_states = len(states)
     kt = BOLTZMANN_KJ_MOL_K * float(temperature_k)
     biased = [si for si, seg in enumerate(segments) if seg.bias is not None]
-    plain = {}
     exps, codes = {}, {}
-    for si, seg in enumerate(segments):
-        if seg.bias is None:
-            n = None if seg.labels is None else seg.labels.shape[0]
-            present = ({index[x] for x in seg.labels if x is not None} if n is not None
-                       else {index[seg.state]})
-            for s in present:
-                plain.setdefault(s, str(seg.path))
-            continue
+    for si in biased:
+        seg = segments[si]
         a = np.asarray(seg.bias, dtype=np.float64) / kt
         exps[si], codes[si] = a, _state_codes(seg, a.size, index)
-    for si in biased:
-        for s in np.unique(codes[si][codes[si] >= 0]):
-            if int(s) in plain:
-                seg = segments[si]
-                raise InputError(
-                    f"state {states[int(s)]!r} has frames from the biased run {str(seg.path)!r} "
-                    f"(bias-energy file {str(seg.bias_path)!r}) and from {plain[int(s)]!r}, "
-                    "which has no bias energies: reweighting needs a common reference for "
-                    "all the frames of a state; give a bias-energy file for every run of the "
-                    "state, or for none")
     # per state: the largest exponent c_s, then sums of r = exp(a - c_s) over all its files
     top = np.full(n_states, -np.inf)
     for si in biased:
@@ -560,5 +609,55 @@ def reweight(segments, states, temperature_k):
     ess = np.where(frames > 0, np.divide(total ** 2, squares, out=np.zeros(n_states),
                                          where=squares > 0), np.nan)
     multi = any(np.unique(codes[si][codes[si] >= 0]).size > 1 for si in biased)
+    groups = _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames)
     return Reweighting(float(temperature_k), list(states), weights, clocks, frames, ess, log_z,
-                       max_exp, multi, paths)
+                       max_exp, multi, paths, groups)
+
+
+def _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames):
+    """Weights for the unbiased segments of states that also have biased frames.
+
+    The biased group's weights (average 1 over its frames, Kish size ``e_b``)
+    and the unbiased group's (``n_u`` frames, weight 1) are scaled so that
+    each group's total is ``N e_g / (e_b + n_u)``; `weights` (biased ones),
+    `frames` and `ess` are updated in place. Returns :attr:`Reweighting.groups`.
+    """
+    n_states = frames.size
+    has_biased = frames > 0
+    plain_codes = {}
+    for si, seg in enumerate(segments):
+        if seg.bias is not None:
+            continue
+        present = ({index[x] for x in seg.labels if x is not None} if seg.labels is not None
+                   else {index[seg.state]})
+        if not any(has_biased[s] for s in present):
+            continue
+        if seg.labels is not None:
+            n_file = seg.labels.shape[0]
+        else:
+            if count_frames is None:
+                from .source import file_frames as count_frames
+            n_file = int(count_frames(seg.path))
+        plain_codes[si] = _state_codes(seg, n_file, index)
+    if not plain_codes:
+        return {}
+    plain = np.zeros(n_states, dtype=np.int64)
+    for c in plain_codes.values():
+        plain += np.bincount(c[c >= 0], minlength=n_states)
+    mixed = has_biased & (plain > 0)
+    n_all = frames + plain
+    e_all = np.where(mixed, ess + plain, 1.0)
+    # group totals N e_g / (e_b + n_u): per-frame factors on weights that average 1
+    lam_b = np.where(mixed, n_all * ess / (e_all * np.maximum(frames, 1)), 1.0)
+    lam_u = np.where(mixed, n_all / e_all, 1.0)
+    groups = {int(s): {"biased": (int(frames[s]), float(ess[s])),
+                       "unbiased": (int(plain[s]), float(plain[s]))}
+              for s in np.flatnonzero(mixed)}
+    for si, c in codes.items():
+        if mixed[c[c >= 0]].any():
+            weights[si] = weights[si] * lam_b[c]
+    for si, c in plain_codes.items():
+        weights[si] = np.where(c >= 0, lam_u[c], 0.0)
+    ess[mixed] = e_all[mixed]
+    frames[mixed] = n_all[mixed]
+    return groups

@@ -772,8 +772,10 @@ class Source:
             Bias-energy file of a biased run: one bias energy (kJ/mol) per
             frame of the whole file (format: :mod:`cvdesign.io.bias`). Its
             frames are then reweighted by ``exp(V / kT)`` at the source's
-            `temperature`, and its lagged pairs taken in rescaled time. Every
-            run of a state must be biased, or none.
+            `temperature`, and its lagged pairs taken in rescaled time. A
+            state may have biased and unbiased runs: the two groups are
+            normalized apart and combined in proportion to their effective
+            sample sizes (:mod:`cvdesign.io.bias`).
         bias_column : int or str, default=None
             Column of the bias-energy file (number from 1, or header name);
             None: its only column, or the one named ``bias``.
@@ -849,14 +851,16 @@ class Source:
         Raises
         ------
         InputError
-            When a state mixes biased and unbiased runs.
+            When the frames of an unbiased run of a state with biased runs
+            cannot be counted.
         """
         if not self.biased:
             return None
         if self._reweighting is None:
             from .bias import reweight
 
-            self._reweighting = reweight(self.segments, self.states, self.temperature)
+            self._reweighting = reweight(self.segments, self.states, self.temperature,
+                                         count_frames=file_frames)
         return self._reweighting
 
     def _check_overlap(self, path, start, stop, state):

@@ -478,12 +478,14 @@ def _layouts(source):
                 si, str(seg.path), n_file, seg.start or 0,
                 n_file if seg.stop is None else seg.stop, index[seg.state], len(index))
         if reweighting is not None and si in reweighting.weights:
+            # (an unbiased run of a state with biased runs: weights, and its own clock)
             if reweighting.weights[si].size != n_file:
                 raise InputError(f"bias-energy file {str(seg.bias_path)!r} holds "
                                  f"{reweighting.weights[si].size} bias energies, but "
                                  f"trajectory {key!r} has {n_file} frames; give one per frame")
+            clock = reweighting.clocks.get(si)
             lay = dataclasses.replace(lay, weight=reweighting.weights[si],
-                                      clock=reweighting.clocks[si][:n_file])
+                                      clock=None if clock is None else clock[:n_file])
         out.append(lay)
     return out
 

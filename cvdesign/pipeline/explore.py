@@ -37,6 +37,18 @@ Every read of the runs is a pass of the pass engine (:mod:`cvdesign.passes`;
 see :func:`propose_states`), so the result is the same, byte for byte, on any
 executor (``executor=``: local processes, a Dask cluster) and task split.
 
+**Biased runs** (runs given with their bias energies, :mod:`cvdesign.io.bias`)
+are reweighted: every statistic above weighs frame t by ``exp(V_t/kT)``
+(the k-means centres too, through scikit-learn's ``sample_weight``), and
+lagged pairs of a biased run are taken at the lag in rescaled time ``dt
+exp(V/kT)`` (McCarty and Parrinello, J. Chem. Phys. 147, 204109, 2017), so
+TICA, the staying probabilities and the transition counts estimate the
+unbiased dynamics -- exactly only when the bias vanishes at the barriers
+between states (Voter, J. Chem. Phys. 106, 4665, 1997), approximately
+otherwise, as the notes say. The silhouette (a geometric criterion), the
+transitions between visits and the time spent in each state stay counts on
+the runs' own frames and time.
+
 The proposed labels then feed the labelled pipeline
 (:func:`cvdesign.pipeline.suggest`) through :meth:`Exploration.labelled_source`.
 """
@@ -119,12 +131,14 @@ class StateKinetics:
         Lag time, ps.
     counts : ndarray of shape (n_states, n_states), dtype int
         Lag-time transition counts: ``counts[i, j]`` pairs of frames one lag
-        apart in one run, the first in state ``i`` and the second in ``j``.
+        apart in one run, the first in state ``i`` and the second in ``j``
+        (biased runs: sums of the weights of the first frames, float, with the
+        lag in rescaled time).
     staying : ndarray of shape (n_states,)
         Probability of being in the same state one lag later,
         ``counts[i, i] / counts[i].sum()`` (NaN when no pair starts in it).
     populations : ndarray of shape (n_states,)
-        Fraction of the frames in each state.
+        Fraction of the frames in each state (biased runs: of the weight).
     memory : ndarray of shape (n_states,)
         ``(staying - population) / (1 - population)``: 0 with no memory, 1
         when the state is never left (see :data:`MIN_MEMORY`).
@@ -213,9 +227,14 @@ class StateKinetics:
 
     def counts_text(self):
         """The transition counts as one line of text (rows from, columns to)."""
-        return ("; ".join(f"{s} -> " + ", ".join(f"{t} {int(c)}" for t, c in
+        return ("; ".join(f"{s} -> " + ", ".join(f"{t} {_count(c)}" for t, c in
                                                zip(self.states, self.counts[i]))
                           for i, s in enumerate(self.states)))
+
+
+def _count(c):
+    """A transition count as text: an integer, or a sum of weights (biased runs)."""
+    return str(int(c)) if isinstance(c, (int, np.integer)) else f"{float(c):.4g}"
 
 
 def _timescale(value, lag_ps):
@@ -336,28 +355,42 @@ class _KineticSums:
     shifts : ndarray of shape (n, d), default=None
         Fixed shift of each state's within-state moments (None: the first
         pair seen, for runs given whole).
+    weighted : bool, default=False
+        Biased runs: frames and pairs carry weights (a pair weighs as its
+        first frame); the transition counts are then sums of weights (float),
+        and ``mass`` holds each state's summed weight, from which the
+        populations come. Frames per state (the time spent in each, in lags)
+        and the transitions between visits stay counts in the runs' own time.
     """
 
-    def __init__(self, n, shifts=None):
+    def __init__(self, n, shifts=None, weighted=False):
         self.n = int(n)
         self.shifts = shifts
-        self.counts = np.zeros((self.n, self.n), dtype=np.int64)
+        self.weighted = bool(weighted)
+        self.counts = np.zeros((self.n, self.n), dtype=np.float64 if weighted else np.int64)
+        self.mass = np.zeros(self.n) if weighted else None  # summed weight of each state
         self.frames = {}      # lag in frames -> frames in each state
         self.exits = np.zeros(self.n, dtype=np.int64)
         self.entries = np.zeros(self.n, dtype=np.int64)
         self.inside = {}      # state -> LaggedMoments over pairs inside it
         self.pieces = []
 
-    def add_frames(self, labels, lag):
-        known = labels[labels >= 0]
+    def add_frames(self, labels, lag, weights=None):
+        ok = labels >= 0
+        known = labels[ok]
         per = self.frames.get(int(lag), np.zeros(self.n, dtype=np.int64))
         self.frames[int(lag)] = per + np.bincount(known, minlength=self.n)
+        if self.weighted:
+            self.mass = self.mass + np.bincount(known, weights=weights[ok], minlength=self.n)
 
-    def add_pairs(self, a, b, ya=None, yb=None):
-        """Pairs of frames one lag apart: states `a` then `b`, coordinates `ya`, `yb`."""
+    def add_pairs(self, a, b, ya=None, yb=None, weights=None):
+        """Pairs of frames one lag apart: states `a` then `b`, coordinates `ya`, `yb`, the
+        weights of the first frames (weighted sums only)."""
         ok = (a >= 0) & (b >= 0)
         n = self.n
-        self.counts += np.bincount(a[ok] * n + b[ok], minlength=n * n).reshape(n, n)
+        w = weights[ok] if self.weighted else None
+        self.counts += np.bincount(a[ok] * n + b[ok], weights=w,
+                                   minlength=n * n).reshape(n, n)
         if ya is None:
             return
         same = ok & (a == b)
@@ -367,7 +400,7 @@ class _KineticSums:
             if m is None:
                 shift = ya[rows[0]] if self.shifts is None else self.shifts[int(i)]
                 m = self.inside[int(i)] = LaggedMoments(ya.shape[1], shift=shift)
-            m.add_pairs(ya[rows], yb[rows])
+            m.add_pairs(ya[rows], yb[rows], weights[rows] if self.weighted else None)
 
     def add_run(self, labels, lag):
         """The visits of a whole run (nothing before or after it)."""
@@ -378,8 +411,10 @@ class _KineticSums:
 
     def merge(self, other):
         """Statistics of this and `other`'s frames (which come after these); a new object."""
-        out = _KineticSums(self.n, self.shifts)
+        out = _KineticSums(self.n, self.shifts, self.weighted)
         out.counts = self.counts + other.counts
+        if self.weighted:
+            out.mass = self.mass + other.mass
         out.frames = dict(self.frames)
         for lag, v in other.frames.items():
             out.frames[lag] = out.frames[lag] + v if lag in out.frames else v
@@ -405,7 +440,7 @@ class _KineticSums:
 
     def closed(self):
         """Every piece closed (the runs end here): a new object."""
-        out = self.merge(_KineticSums(self.n, self.shifts))
+        out = self.merge(_KineticSums(self.n, self.shifts, self.weighted))
         for _, piece in out.pieces:
             ex, en = piece.close()
             out.exits += ex
@@ -416,8 +451,11 @@ class _KineticSums:
     def subset(self, keep):
         """The statistics of the states `keep` only (states without frames dropped)."""
         keep = np.asarray(keep, dtype=np.intp)
-        out = _KineticSums(keep.size, None if self.shifts is None else self.shifts[keep])
+        out = _KineticSums(keep.size, None if self.shifts is None else self.shifts[keep],
+                           self.weighted)
         out.counts = self.counts[np.ix_(keep, keep)]
+        if self.weighted:
+            out.mass = self.mass[keep]
         out.frames = {lag: v[keep] for lag, v in self.frames.items()}
         out.exits, out.entries = self.exits[keep], self.entries[keep]
         out.inside = {j: self.inside[int(i)] for j, i in enumerate(keep)
@@ -433,7 +471,7 @@ class _KineticSums:
             frames += self.frames[lag]
             lags_in_state += self.frames[lag] / max(lag, 1)
         return _verdict(states, lag_ps, self.counts, frames, lags_in_state, self.exits,
-                        self.entries, self.inside)
+                        self.entries, self.inside, mass=self.mass)
 
 
 def state_kinetics(runs, states, *, lag_ps=None, positions=True):
@@ -491,11 +529,14 @@ def state_kinetics(runs, states, *, lag_ps=None, positions=True):
     return sums.kinetics(states, lag_ps=lag_ps)
 
 
-def _verdict(states, lag_ps, counts, frames, lags_in_state, exits, entries, inside):
-    """Staying probabilities, memory, separation and the metastability of each state."""
+def _verdict(states, lag_ps, counts, frames, lags_in_state, exits, entries, inside,
+             mass=None):
+    """Staying probabilities, memory, separation and the metastability of each state
+    (populations from the states' summed weights `mass` when given: biased runs)."""
     n = len(states)
-    total = frames.sum()
-    pops = frames / total if total else np.full(n, np.nan)
+    amount = frames if mass is None else mass
+    total = amount.sum()
+    pops = amount / total if total else np.full(n, np.nan)
     out_pairs = counts.sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         staying = np.where(out_pairs > 0, np.diag(counts) / np.maximum(out_pairs, 1), np.nan)
@@ -598,6 +639,11 @@ class Exploration:
         One per proposed state that is not metastable (each says "not
         metastable" and why); also written to summary.md and printed by the
         command line.
+    bias : dict of str to (str, str or None)
+        Per biased run file, its bias-energy file and column (empty: no
+        biased run); :meth:`labelled_source` passes them on.
+    temperature_k : float or None
+        Temperature of the biased runs, K.
     report_tica : dict or None
         The ``tica`` entry of ``report-data.json`` (``docs/report-data-v1.md``):
         ``coords`` (the first two slow coordinates, kinetic map, dimensionless, of at
@@ -621,12 +667,17 @@ class Exploration:
     kinetics: StateKinetics = None
     warnings: list = field(default_factory=list)
     report_tica: dict = None
+    bias: dict = field(default_factory=dict)
+    temperature_k: float = None
 
     def labelled_source(self, topology, *, chunk_size=500, timestep=None):
-        """A :class:`~cvdesign.io.source.Source` of the runs with the proposed labels."""
-        src = Source(topology, chunk_size=chunk_size, timestep=timestep)
+        """A :class:`~cvdesign.io.source.Source` of the runs with the proposed labels (and
+        the bias-energy files of biased runs, reweighted at :attr:`temperature_k`)."""
+        src = Source(topology, chunk_size=chunk_size, timestep=timestep,
+                     temperature=self.temperature_k if self.bias else None)
         for path, labels in self.labels.items():
-            src.add_labelled(path, labels)
+            bias, column = self.bias.get(path, (None, None))
+            src.add_labelled(path, labels, bias=bias, bias_column=column)
         # keep the proposed order S1, S2, ... whatever the order of first appearance
         src.states = [s for s in self.states if s in src.states]
         return src
@@ -689,7 +740,7 @@ class Exploration:
                 "from row to column):", "",
                 "| from / to | " + " | ".join(self.states) + " |",
                 "| --- |" + " ---: |" * len(self.states)]
-        out += [f"| {s} | " + " | ".join(str(int(c)) for c in kin.counts[i]) + " |"
+        out += [f"| {s} | " + " | ".join(_count(c) for c in kin.counts[i]) + " |"
                 for i, s in enumerate(self.states)]
         out += [""] + [f"- **warning**: {w}" for w in self.warnings]
         return out + [f"- {n}" for n in self.notes] + [""]
@@ -739,7 +790,8 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     Parameters
     ----------
     source : cvdesign.io.source.Source
-        The runs, all under one state name (labels are ignored).
+        The runs, all under one state name (labels are ignored). Runs given
+        with bias energies are reweighted (see the module docstring).
     lag : float
         Lag time, ps.
     n_states : int, default=None
@@ -797,10 +849,6 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         raise InputError(f"propose_states() needs a Source (a topology and the runs), not "
                          f"{type(source).__name__}; build one with Source('top.pdb') and "
                          ".add('run1.xtc', 'runs') for each run")
-    if source.biased:
-        raise InputError("propose_states() does not reweight biased runs yet: give runs "
-                         "without bias energies, or label the biased run's frames by state "
-                         "(Source.add_labelled(path, labels, bias=...)) and call suggest()")
     if not (isinstance(lag, (int, float)) and math.isfinite(lag) and lag > 0):
         raise InputError(f"lag={lag!r} must be a positive time in ps (give --lag PS)")
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):
@@ -817,6 +865,9 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
              prefilter_stride, coordination_r0, screen_size, max_slow, seed):
     timesteps = read_timesteps(source)
     lag_frames = _lag_frames(source, lag, timesteps)
+    reweighting = source.reweighting()  # biased runs (None without)
+    if reweighting is not None:  # refuse lagged pairs in rescaled time that cannot be formed
+        reweighting.check_rescaled_time(lag_frames)
     note("building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,
                       stride=prefilter_stride, coordination_r0=coordination_r0)
@@ -836,6 +887,8 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     notes = [f"TICA on the {screened.columns.size} most autocorrelated features "
              f"({tica.n_dropped_} near-singular directions dropped, eigenvalue below 1e-6 of "
              "the largest)"]
+    if reweighting is not None:
+        notes += _biased_notes(reweighting, lag_frames)
     slow = [i for i, t in enumerate(ts_ps) if (math.isinf(t) or t > lag)]
     if not slow:
         raise InputError(
@@ -873,7 +926,8 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
         # this keeps the result the same on every machine (and on at most 20,000 frames of
         # at most three coordinates it is also faster than waiting for busy cores)
         with threadpool_limits(limits=1):
-            models[k] = KMeans(n_clusters=k, n_init=10, random_state=seed).fit(fit_y)
+            models[k] = KMeans(n_clusters=k, n_init=10, random_state=seed).fit(
+                fit_y, sample_weight=sample["weight"])
         return models[k]
 
     scores = {}
@@ -901,7 +955,8 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     note(f"states of every frame and their kinetics ({', '.join(map(str, candidates))} "
          "states)")
     found = run_pass(_KineticsPass(screened.featurizer, project, lag_frames,
-                                   [means[k] for k in candidates]),
+                                   [means[k] for k in candidates],
+                                   weighted=reweighting is not None),
                      source, executor=executor, tasks=plan, label="runs: states")
     fits = {}
     for c, k in enumerate(candidates):
@@ -968,8 +1023,12 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     for i in used:
         _, seg, frame = found["representatives"][c][i]
         reps[names[i]] = {"file": source.segments[seg].path.name, "frame": frame}
-    frames_in = sum(found["sums"][c].frames.values())
-    pops = {names[i]: float(frames_in[i] / n_frames) for i in used}
+    if reweighting is None:
+        frames_in = sum(found["sums"][c].frames.values())
+        pops = {names[i]: float(frames_in[i] / n_frames) for i in used}
+    else:  # the reweighted populations
+        mass = found["sums"][c].mass
+        pops = {names[i]: float(mass[i] / mass.sum()) for i in used}
     notes = source.notes + notes
     notes.append(f"{len(states)} states proposed from {n_frames} frames "
                  f"(k-means fitted on {fit_y.shape[0]}, silhouette on {sil_y.shape[0]})")
@@ -981,7 +1040,24 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
                        populations=pops, representatives=reps, timescales_ps=ts_ps,
                        lag_ps=lag, n_slow=n_slow, criterion=criterion, notes=notes,
                        longest_run_ps=float(max(lengths)) if lengths else None,
-                       kinetics=kin, warnings=warnings, report_tica=report_tica)
+                       kinetics=kin, warnings=warnings, report_tica=report_tica,
+                       bias={str(seg.path): (str(seg.bias_path), seg.bias_column)
+                             for seg in source.segments if seg.bias is not None},
+                       temperature_k=None if reweighting is None else reweighting.temperature_k)
+
+
+def _biased_notes(reweighting, lag_frames):
+    """What reweighting biased runs changes in the proposal: the reweighting notes (effective
+    sample sizes, rescaled time with its caveat) and how each step uses the weights."""
+    rw_notes, _ = reweighting.describe(lag_frames)
+    return rw_notes + [
+        "proposed states from biased runs: the screening, TICA (lagged pairs at the lag in "
+        "rescaled time), the k-means centres, the populations, the staying probabilities, "
+        "the lag-time transition counts (sums of the weights of the pairs' first frames) "
+        "and the within-state autocorrelations are weighted by exp(V/kT); the silhouette, "
+        "the transitions between visits and the time spent in each state are counted on "
+        "the runs' frames in their own time (with a bias that is positive, shorter than in "
+        "rescaled time, so the metastability tests are the stricter for it)"]
 
 
 @dataclass
@@ -1073,7 +1149,8 @@ class _SamplePass(Pass):
     is the same for every split; its size is bounded by the number of frames
     over `stride` plus one per run. The result is ``(y, sample)``: the
     coordinates, and ``sample`` with ``rows`` (rows of ``y`` in the report's
-    subsample), their ``segment`` and ``frame``.
+    subsample), their ``segment`` and ``frame``, and ``weight`` (the weights of
+    the rows of ``y``; None when no run is biased).
     """
 
     def __init__(self, featurizer, project, stride, report_stride=None):
@@ -1086,7 +1163,9 @@ class _SamplePass(Pass):
         if not rows.size:
             return None
         keep = rank[rows] % self.report_stride == 0
-        return [(self.project(leaf.x[rows]), keep, leaf.segment, leaf.frames[rows[keep]])]
+        w = leaf.weights
+        return [(self.project(leaf.x[rows]), keep, leaf.segment, leaf.frames[rows[keep]],
+                 None if w is None else w[rows])]
 
     def merge(self, a, b):
         return a + b
@@ -1101,7 +1180,10 @@ class _SamplePass(Pass):
                                              for p in partial]) if partial
                   else np.zeros(0, dtype=np.int64),
                   "frame": np.concatenate([p[3] for p in partial]) if partial
-                  else np.zeros(0, dtype=np.int64)}
+                  else np.zeros(0, dtype=np.int64), "weight": None}
+        if any(p[4] is not None for p in partial):
+            sample["weight"] = np.concatenate([np.ones(p[0].shape[0]) if p[4] is None else p[4]
+                                               for p in partial])
         return y, sample
 
 
@@ -1141,8 +1223,9 @@ class _KineticsPass(Pass):
     per leaf, in frame order; ``labels`` of shape (n_frames, n_clusterings)).
     """
 
-    def __init__(self, featurizer, project, lags, centers):
+    def __init__(self, featurizer, project, lags, centers, weighted=False):
         self.featurizer, self.project, self.lags = featurizer, project, lags
+        self.weighted = bool(weighted)  # biased runs: weighted sums (_KineticSums)
         self.centers = [np.asarray(c, dtype=np.float64) for c in centers]
         self.dtype = np.int8 if max(len(c) for c in self.centers) < 128 else np.int32
 
@@ -1158,15 +1241,18 @@ class _KineticsPass(Pass):
         cuts = np.flatnonzero((np.diff(frames) != 1) | (given[1:] != given[:-1])) + 1
         stretches = list(zip(np.r_[0, cuts].tolist(), np.r_[cuts, n].tolist()))
         labels = np.empty((n, len(self.centers)), dtype=self.dtype)
+        w = None
+        if self.weighted:
+            w = leaf.weights if leaf.weights is not None else np.ones(n)
         sums, reps = [], []
         for c, centers in enumerate(self.centers):
             d2 = _squared_distances(y, centers)
             window = np.argmin(d2, axis=1)
             own = window[:n]
             labels[:, c] = own
-            s = _KineticSums(len(centers), centers)
-            s.add_frames(own, lag)
-            s.add_pairs(window[i], window[j], y[i], y[j])
+            s = _KineticSums(len(centers), centers, self.weighted)
+            s.add_frames(own, lag, w)
+            s.add_pairs(window[i], window[j], y[i], y[j], None if w is None else w[i])
             for a, b in stretches:
                 s.pieces.append(((leaf.segment, int(given[a]), int(frames[a]),
                                   int(frames[b - 1])), _Visits.of(own[a:b], lag, len(centers))))
@@ -1189,7 +1275,7 @@ class _KineticsPass(Pass):
 
     def finish(self, partial, plan):
         if partial is None:
-            return {"sums": [_KineticSums(len(c), c) for c in self.centers],
+            return {"sums": [_KineticSums(len(c), c, self.weighted) for c in self.centers],
                     "representatives": [{} for _ in self.centers], "labels": []}
         return {**partial, "sums": [s.closed() for s in partial["sums"]]}
 

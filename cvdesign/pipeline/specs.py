@@ -42,7 +42,8 @@ def _topology_provenance(source):
 
 
 def _segments_provenance(source):
-    """Which frames of which file were given to which state."""
+    """Which frames of which file were given to which state (and the bias-energy file of a
+    biased run); also the provenance of the funnel spec of biased runs."""
     out = []
     for seg in source.segments:
         row = {"file": seg.path.name}
