@@ -65,6 +65,15 @@ def _hand_spec(topology, states=None):
                         "scale": 0.1, "weight": 1.0}], states=states)
 
 
+
+def _with_temperature(extra):
+    """`extra` plus ``--temperature 300`` when it gives a biased run without a temperature
+    (required with --bias-energy; the rows without it are tested on their own)."""
+    extra = list(extra)
+    if "--bias-energy" in extra and "--temperature" not in extra and "NO-TEMPERATURE" not in extra:
+        extra += ["--temperature", "300"]
+    return [a for a in extra if a != "NO-TEMPERATURE"]
+
 def _nested(depth):
     """A list nested `depth` levels deep, built without recursion."""
     inner = []
@@ -139,7 +148,7 @@ class Ctx:
         return ["suggest", "--topology", top or self.top, "--state", "closed",
                 closed or self.closed, "--state", "open", opened or self.open,
                 "--out", out or self.w("out"), "--bootstrap", "0", "--max-terms", "1",
-                "--suggestions", "1", "--quiet", *extra]
+                "--suggestions", "1", "--quiet", *_with_temperature(extra)]
 
     def apply(self, *extra, spec=None, top=None, traj=None):
         return ["apply", spec or self.s("cv.json"), "--topology", top or self.top,
@@ -302,6 +311,12 @@ CLI_CASES = [
     Case("suggest-infinite-temperature",
          lambda c: c.suggest("--temperature", "inf"), 2,
          r"argument --temperature: 'inf' must be a finite positive number"),
+    Case("suggest-bias-without-temperature",
+         lambda c: c.suggest("--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
+                             "NO-TEMPERATURE"), 2,
+         r"--bias-energy needs --temperature K, the temperature the biased runs were "
+         r"simulated at: their frames are reweighted by exp\(V/kT\) at it, so it has no "
+         r"default; give it"),
     Case("suggest-nan-lag",
          lambda c: c.suggest("--lag", "nan"), 2,
          r"argument --lag: 'nan' is not a number; give a positive number"),
@@ -350,13 +365,13 @@ CLI_CASES = [
     Case("suggest-bias-for-a-trajectory-not-among-the-runs",
          lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, "--lag", "1",
                     "--bias-energy", c.open, c.file("b.txt", _bias_text(2000)),
-                    "--out", c.w("out")], 2,
+                    "--temperature", "300", "--out", c.w("out")], 2,
          r"--bias-energy .*open-1\.xtc .*b\.txt: trajectory '.*open-1\.xtc' is not given with "
          r"--runs; pair each biased run of --runs with its bias-energy file"),
     Case("suggest-runs-bias-overflowing-rescaled-time",
          lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, "--lag", "1",
                     "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000, {5: "1e7"})),
-                    "--out", c.w("out"), "--quiet"], 2,
+                    "--temperature", "300", "--out", c.w("out"), "--quiet"], 2,
          r"bias-energy file '.*b\.txt' reaches 1e\+07 kJ/mol .* the rescaled time step "
          r"exp\(V/kT\) overflows"),
     Case("suggest-bias-column-without-bias-energy",
@@ -938,7 +953,7 @@ class FunnelCtx:
         return ["funnel", "--topology", self.data.topology,
                 "--bound", *(self.data.paths if bound is None else bound),
                 "--ligand", self.data.ligand_selection, "--pocket", self.data.pocket_selection,
-                "--out", str(self.out if out is None else out), *extra]
+                "--out", str(self.out if out is None else out), *_with_temperature(extra)]
 
     def existing(self, name, text="keep me"):
         path = self.out_dir / name
@@ -1104,6 +1119,10 @@ FUNNEL_CASES = [
                       bound=[c.data.paths[0]]),
      r"--bias-energy .*bound-2\.xtc .*b\.txt: trajectory '.*bound-2\.xtc' is not given with "
      r"--bound; pair each biased run of --bound with its bias-energy file"),
+    ("bias-without-temperature",
+     lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(40), "NO-TEMPERATURE"),
+     r"--bias-energy needs --temperature K, the temperature the biased runs were simulated "
+     r"at: their frames are reweighted by exp\(V/kT\) at it, so it has no default; give it"),
     ("bias-file-too-short",
      lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(10)),
      r"bias-energy file '.*b\.txt' holds 10 bias energies, but trajectory '.*bound-1\.xtc' "

@@ -156,10 +156,11 @@ def _add_suggest_options(p):
                         "(DCD, PDB, ...) and for files whose stored times do not increase "
                         "(all zero, as some writers store), which it then replaces; files "
                         "with increasing stored times keep their own")
-    p.add_argument("--temperature", type=_positive_float, default=300.0, metavar="K",
+    p.add_argument("--temperature", type=_positive_float, default=None, metavar="K",
                    help="temperature of the biased run in K, for the bias-parameter hints "
-                        "stored in each spec, and of the biased runs given with --bias-energy, "
-                        "whose frames are reweighted at it (default: 300)")
+                        "stored in each spec (default: 300), and of the biased runs given with "
+                        "--bias-energy, whose frames are reweighted at it (then required: "
+                        "there is no default for reweighting)")
     p.add_argument("--md-step-fs", type=_positive_float, default=2.0, metavar="FS",
                    help="MD step of the biased run in fs, for the hints (default: 2; 0.01 to "
                         "100 fs accepted)")
@@ -370,9 +371,9 @@ def build_parser():
                       "the means and spreads that set the margins and the density are "
                       "weighted (the extremes the funnel must clear are over every frame). "
                       "Repeat for each biased run")
-    p.add_argument("--temperature", type=_positive_float, default=300.0, metavar="K",
+    p.add_argument("--temperature", type=_positive_float, default=None, metavar="K",
                    help="temperature of the biased runs given with --bias-energy, whose "
-                        "frames are reweighted at it (default: 300)")
+                        "frames are reweighted at it (required with --bias-energy)")
     p.add_argument("--force", action="store_true",
                    help="replace --out (and --plot, the report and its data) if they exist; "
                         "input files are never replaced")
@@ -508,10 +509,13 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     from ..pipeline.suggest import CAUTION, is_output_file, suggest
     from ..io.source import Source
 
+    biases = getattr(args, "bias_energy", None) or []
+    _check_bias_temperature(args, biases)
+    if args.temperature is None:
+        args.temperature = HINTS_TEMPERATURE_K
     # refuse an impossible temperature or MD step before reading anything; warn once
     for warning in check_run_conditions(args.temperature, args.md_step_fs):
         _log.warning("%s", warning)
-    biases = getattr(args, "bias_energy", None) or []
     bias_column = getattr(args, "bias_column", None)
     labelled = getattr(args, "labelled", None) or []
     given = [topology] + [f for entry in (states or []) for f in entry[1:]] + list(runs or []) \
@@ -627,6 +631,20 @@ def _labels_for(traj, label_file):
                          f"{labels.shape[0]} labels, but trajectory {traj!r} has {n} frames; "
                          "give one line per frame (its state, or '-' between the states)")
     return labels
+
+
+#: Temperature of the biased run the hints assume when --temperature is not given, K.
+HINTS_TEMPERATURE_K = 300.0
+
+
+def _check_bias_temperature(args, biases):
+    """Refuse biased runs without --temperature: frames are reweighted by exp(V/kT) at it,
+    and a default would change every weight without a word (10 K off is a factor of about
+    e^0.7 on a bias of 50 kJ/mol)."""
+    if biases and args.temperature is None:
+        raise InputError("--bias-energy needs --temperature K, the temperature the biased runs "
+                         "were simulated at: their frames are reweighted by exp(V/kT) at it, "
+                         "so it has no default; give it")
 
 
 def _bias_files(biases, files, given_with="--state or --labelled"):
@@ -1025,6 +1043,7 @@ def _cmd_funnel(args):
         raise InputError(f"--k-wall {args.k_wall!r} must be a positive force constant in "
                          "kJ/mol/nm^2")
     biases = args.bias_energy or []
+    _check_bias_temperature(args, biases)
     if args.bias_column is not None and not biases:
         raise InputError("--bias-column goes with --bias-energy TRAJ FILE: it says which "
                          "column of the bias-energy files holds the bias energies")
