@@ -188,7 +188,8 @@ def test_real_engine_tutorial_refines_cv1_from_its_biased_run_and_judges_cv2_by_
     basins of CV 1, bias energies for reweighting) gives a CV 2 that compare_specs
     describes, and a biased run along CV 2 with the same steps is judged by its cis/trans
     transitions. Checked: what holds whatever CV 2 turns out to be (in the quick
-    configuration it has been worse than CV 1: see the tutorial), not which CV it is."""
+    configuration it is CV 1 again, ranked on the transition slowness of the fed-back
+    crossings: see the tutorial), not which CV it is."""
     out = _output_of(tutorial_run, "04_real_engine.py")
     walkers = re.findall(r"^  walker \d: cis: (\d+) frames \(ESS (\S+)\); trans: (\d+) frames "
                          r"\(ESS (\S+)\); (\d+) transition frames; (\d+) crossings", out,
@@ -219,7 +220,15 @@ def test_real_engine_tutorial_refines_cv1_from_its_biased_run_and_judges_cv2_by_
     (c2,) = _number(r"^transitions with CV 2 \(refined\): (\d+)$", out)
     (best,) = _number(r"^transitions with rank-1 CV \(cv-01\): (\d+)$", out)
     assert c1 == best
-    word = "more" if c2 > c1 else "as many" if c2 == c1 else "fewer"
-    assert f"verdict: CV 2 drove {word} transitions than CV 1" in out \
-        or f"verdict: CV 2 drove {word} transitions as CV 1" in out
+    # counts within 2 sqrt(n1 + n2) of each other read as no difference (Poisson counts:
+    # common practice), and a CV 2 at |cosine| >= 0.99 with CV 1 is CV 1 again
+    chance = 2.0 * np.sqrt(c1 + c2)
+    if cosine >= 0.99:
+        expected = "verdict: CV 2 is CV 1 again"
+    elif abs(c2 - c1) <= chance:
+        expected = "verdict: CV 2 and CV 1 drove as many transitions within chance"
+    else:
+        expected = f"verdict: CV 2 drove {'more' if c2 > c1 else 'fewer'} transitions than CV 1"
+    assert expected in out
+    assert sum(line.startswith("verdict: ") for line in out.splitlines()) == 1
     assert "CV 2 (refined): sigma" in out  # CV 2 was biased through its own hints
