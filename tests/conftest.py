@@ -16,6 +16,23 @@ from cvdesign.parallel import Executor
 from cvdesign.passes import Task, run_pass
 
 
+@pytest.fixture(scope="session", autouse=True)
+def early_tutorials(request, tmp_path_factory):
+    """``{module name: started runs}``: test modules that define ``start_tutorials(items,
+    tmp_path_factory)`` (test_tutorials.py) start the scripts the session selected when the
+    session starts, so they run beside the other tests; the module's tests wait for them."""
+    started = {}
+    modules = {getattr(item, "module", None) for item in request.session.items}
+    for module in sorted((m for m in modules if hasattr(m, "start_tutorials")),
+                         key=lambda m: m.__name__):
+        runs = module.start_tutorials(request.session.items, tmp_path_factory)
+        if runs is not None:
+            started[module.__name__] = runs
+    yield started
+    for runs in started.values():
+        runs.stop()
+
+
 @pytest.fixture(scope="session")
 def demo_dir():
     """Directory of the bundled demo data (the invented 'latch' molecule)."""

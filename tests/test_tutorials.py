@@ -1,8 +1,19 @@
-"""Every tutorial script runs to completion on the bundled demo."""
+"""Every tutorial script runs to completion on the bundled demo.
 
+The tutorials selected in a session are started when the session starts, one after the
+other in a background thread (:func:`start_tutorials`, called by the ``early_tutorials``
+fixture of conftest.py), so that on a machine of two cores they run beside the rest of the
+suite instead of after it; the tests here wait for their output. One at a time keeps the
+number of busy processes near the number of cores. Each script runs exactly as it would
+alone (same interpreter, environment and arguments), so its output does not depend on
+when it ran.
+"""
+
+import importlib.util
 import re
 import subprocess
 import sys
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -23,13 +34,74 @@ SLOW = {"03_hand_off.py", "04_real_engine.py", "05_refine.py"}
 NEEDS_OPENMM = {"04_real_engine.py"}
 
 
+class _Started:
+    """Tutorial runs done one after another in a daemon thread: ``result(script)`` waits."""
+
+    def __init__(self, scripts, tmp_path_factory):
+        self._runs = {s: (tmp_path_factory.mktemp("tutorial"), threading.Event(), [])
+                      for s in scripts}
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._work, daemon=True)
+        self._thread.start()
+
+    def _work(self):
+        for script, (cwd, done, box) in self._runs.items():
+            try:
+                if not self._stop.is_set():
+                    box.append(_run(script, cwd, cwd / "out"))
+            except BaseException as exc:  # reported by the test that waits for it
+                box.append(exc)
+            finally:
+                done.set()
+
+    def __contains__(self, script):
+        return script in self._runs
+
+    def result(self, script):
+        """(working directory, output directory, completed process) of `script`."""
+        cwd, done, box = self._runs[script]
+        done.wait()
+        if not box:
+            pytest.fail(f"tutorial {script.name} was not run: the session is stopping")
+        if isinstance(box[0], BaseException):
+            raise box[0]
+        return cwd, cwd / "out", box[0]
+
+    def stop(self):
+        """Start no further tutorial (one that is running finishes)."""
+        self._stop.set()
+
+
+def start_tutorials(items, tmp_path_factory):
+    """Start the tutorials that the selected `items` of this module need, longest first.
+
+    Returns a :class:`_Started`, or None when no tutorial is selected.
+    """
+    scripts = set()
+    for item in items:
+        params = getattr(getattr(item, "callspec", None), "params", {})
+        if getattr(item, "module", None) is sys.modules[__name__] and "tutorial_run" in params:
+            scripts.add(params["tutorial_run"])
+    runnable = [s for s in scripts
+                if s.name not in NEEDS_OPENMM or importlib.util.find_spec("openmm") is not None]
+    if not runnable:
+        return None
+    # the long ones first, so that they overlap the most of the other tests
+    order = sorted(runnable, key=lambda s: (s.name not in NEEDS_OPENMM, s.name not in SLOW,
+                                            s.name))
+    return _Started(order, tmp_path_factory)
+
+
 @pytest.fixture(scope="module", params=[
     pytest.param(p, id=p.name, marks=[pytest.mark.slow] if p.name in SLOW else [])
     for p in TUTORIALS])
-def tutorial_run(request, tmp_path_factory):
+def tutorial_run(request, tmp_path_factory, early_tutorials):
     """(script, working directory, output directory, completed process), run once each."""
     if request.param.name in NEEDS_OPENMM:
         pytest.importorskip("openmm")
+    started = early_tutorials.get(__name__)
+    if started is not None and request.param in started:
+        return (request.param, *started.result(request.param))
     cwd = tmp_path_factory.mktemp("tutorial")
     out = cwd / "out"
     return request.param, cwd, out, _run(request.param, cwd, out)
