@@ -33,6 +33,7 @@ from ..geometry import box_heights
 from ..score.card import CARD_LAG_FIELDS
 from ..score.univariate import Histograms, bin_counts, histogram_range
 from ..stats.bootstrap import ArraySum
+from ..stats.scratch import scratch
 from ..stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments,
                              merge_all, window_sums)
 from .engine import Pass, _lag_halo
@@ -202,12 +203,28 @@ class FeaturePass(Pass):
             x = x / self.scale
         return np.ascontiguousarray(x, dtype=np.float64)
 
-    def shifted(self, x, shift):
-        """``values(x) - shift`` as a new array (one subtraction, in place when it can)."""
-        v = self.values(x)
-        if np.may_share_memory(v, x):
-            return v - shift
-        return np.subtract(v, shift, out=v)
+    def values_in(self, x, out):
+        """:meth:`values` written into `out` where anything is done to `x`; returns `out`
+        then, else `x` itself (float64 features used as they are). The same numbers."""
+        if self.columns is None and self.center is None and self.scale is None and \
+                x.dtype == np.float64:
+            return x
+        if self.columns is not None and x.dtype == np.float64:
+            np.take(x, self.columns, axis=1, out=out, mode="clip")  # (valid columns)
+            if self.center is not None:
+                np.subtract(out, self.center, out=out)
+            if self.scale is not None:
+                np.divide(out, self.scale, out=out)
+            return out
+        np.copyto(out, self.values(x))
+        return out
+
+    def shifted(self, x, shift, name="shifted"):
+        """``values(x) - shift`` in this thread's scratch array `name`
+        (:func:`~cvdesign.stats.scratch.scratch`: a temporary, valid until the next call
+        with that name)."""
+        out = scratch(name, (x.shape[0], self.n_features))
+        return np.subtract(self.values_in(x, out), shift, out=out)
 
 
 @dataclass
@@ -312,7 +329,7 @@ class ScreeningPass(FeaturePass):
         dn = d[:n]
         sd = dn.sum(axis=0)
         dbar = sd / n
-        e = dn - dbar
+        e = np.subtract(dn, dbar, out=scratch("centred", dn.shape))
         m2 = _dot(e, e)
         diag = {s: DiagonalMoments._of(float(n), self.shift + dbar, m2, x.min(axis=0),
                                        x.max(axis=0))}
@@ -545,7 +562,7 @@ class LagGridPass(FeaturePass):
         return max(self.lags)
 
     def map(self, leaf):
-        d = self.values(leaf.window_x) - self.shift
+        d = self.shifted(leaf.window_x, self.shift)
         w = leaf.weights
         out = {}
         firsts = {}  # sums over the first frames, shared by the lags with the same ones
@@ -951,13 +968,13 @@ class CardPass(FeaturePass):
             if i.size and run is None:
                 return None
         rows = n if run is None else max(n, run[1] + run[2])
-        xw = self.values(leaf.window_x[:rows])
+        d = scratch("shifted", (rows, self.n_features))
+        xw = self.values_in(leaf.window_x[:rows], d)  # (d itself, or the leaf's rows)
         code = np.empty(n, dtype=np.intp)
         for g, sp in enumerate(spans):
             code[sp] = g
         hist = bin_counts(xw[:n], self._low, self._high, self.n_bins, code, len(groups))
-        d = (xw - self._shift if np.may_share_memory(xw, leaf.window_x)
-             else np.subtract(xw, self._shift, out=xw))
+        np.subtract(xw, self._shift, out=d)
         out = {}
         for g, ((s, b), _) in enumerate(groups):
             r0, r1 = spans[g].start, spans[g].stop
@@ -979,7 +996,8 @@ class CardPass(FeaturePass):
                 if mean is None:  # about the center: the same sums
                     uu, uv, vv = sxx, sxy, syy
                 else:
-                    u = d[p0:p1 + k] - (mean - self._shift)
+                    u = np.subtract(d[p0:p1 + k], mean - self._shift,
+                                    out=scratch("centred", (p1 + k - p0, d.shape[1])))
                     _, _, uu, uv, vv = window_sums(u, 0, p1 - p0, k, _square, _dot)
                 acc["l0"] = 0.5 * (uu + vv)
                 acc["lt"] = uv

@@ -19,6 +19,8 @@ import itertools
 
 import numpy as np
 
+from ..stats.scratch import scratch
+
 __all__ = ["fisher_ratio", "Histograms", "bin_counts", "histogram_range",
            "overlap_coefficient"]
 
@@ -140,12 +142,13 @@ def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=No
     for lo in range(0, n_feat, block):
         hi = min(n_feat, lo + block)
         m = hi - lo
-        t = np.subtract(x[:, lo:hi], low[lo:hi])
+        t = np.subtract(x[:, lo:hi], low[lo:hi], out=scratch("bin_values", (n_frames, m)))
         t /= width[lo:hi]
         t *= nb
         np.fmax(t, 0.0, out=t)                     # (NaN to 0)
         np.minimum(t, nb - 1, out=t)
-        b = t.astype(np.intp)                      # truncation: floor of t >= 0
+        b = scratch("bin_index", (n_frames, m), np.intp)
+        b[...] = t                                 # truncation: floor of t >= 0
         b += offsets[:m]
         if by_row:  # a row holds each feature once: no repeated index within a row
             b += lo * nb

@@ -22,6 +22,8 @@ Two kinds are provided:
 import numpy as np
 from scipy.linalg.blas import dger as _dger
 
+from .scratch import scratch
+
 __all__ = [
     "Moments",
     "DiagonalMoments",
@@ -121,7 +123,7 @@ class Moments:
             m = cls.__new__(cls)  # every field set below
             m.count = float(x.shape[0])
             m.mean = x.mean(axis=0)
-            d = x - m.mean
+            d = np.subtract(x, m.mean, out=scratch("moments_centred", x.shape))
             m.scatter = d.T @ d
             return m
         total = w.sum()
