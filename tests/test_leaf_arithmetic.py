@@ -15,7 +15,7 @@ terms is several times that bound and far below any loss of digits.
 import numpy as np
 import pytest
 
-from cvdesign.passes import CardPass, LagGridPass, LaggedPass, ScreeningPass
+from cvdesign.passes import BlockPass, CardPass, LagGridPass, LaggedPass, ScreeningPass
 from cvdesign.passes.engine import Leaf
 from cvdesign.score.univariate import bin_counts
 from cvdesign.stats.moments import DiagonalLaggedMoments, LaggedMoments, window_sums
@@ -163,6 +163,28 @@ def test_lag_grid_pass_leaves_give_the_direct_sums_of_every_lag():
                 assert (g, 0, 0, 0) not in got
                 continue
             _check_moments(got[(g, 0, 0, 0)], x0, xt, shift, True)
+
+
+@pytest.mark.parametrize("within", [True, False])
+def test_block_pass_leaves_give_the_direct_lagged_sums_of_each_block(within):
+    """Blocks of 24 frames cut leaves of 16: a block's pairs are a run of consecutive rows
+    (both frames in the block, or only the first)."""
+    x = _far(5, p=3)
+    shift = x[0] - 0.5
+    for lag in (1, 7, 9, 17):
+        p = BlockPass(_Mem(x.shape[1]), block_frames=24, moments=False, lags=lag,
+                      lag_shift=shift, pairs_within_block=within)
+        for leaf in _leaves(x, LEAF, lag):
+            a = int(leaf.frames[0])
+            got = p.map(leaf)
+            for (_, _, _, blk), (_, m, _) in got.items():
+                r0, r1 = max(a, 24 * blk), min(a + leaf.n, 24 * (blk + 1))
+                end = min(x.shape[0], 24 * (blk + 1)) if within else x.shape[0]
+                t = np.arange(r0, min(r1, end - lag))
+                if t.size == 0:
+                    assert m is None
+                    continue
+                _check_moments(m, x[t], x[t + lag], shift, False)
 
 
 @pytest.mark.parametrize("run_means", [False, True])

@@ -801,12 +801,23 @@ class BlockPass(FeaturePass):
             if self.pairs_within_block:
                 keep &= first.block == second.block
             i, j = i[keep], j[keep]
-            x0, xt = x[_slice(i)], self.values(leaf.window_x[_slice(j)])
-            w0 = _wtake(w, i)
+            if w is None and i.size:  # the window shifted once; consecutive pairs share
+                d = self.shifted(leaf.window_x[:int(j.max()) + 1], self.lag_shift)
+            else:
+                x0, xt = x[_slice(i)], self.values(leaf.window_x[_slice(j)])
+                w0 = _wtake(w, i)
             for (s, k, b), rows in group_rows(first.states[keep], first.fold[keep],
                                            first.block[keep]):
                 m = LaggedMoments(self.n_features, shift=self.lag_shift)
-                m.add_pairs(_take(x0, rows), _take(xt, rows), _wtake(w0, rows))
+                if w is None:
+                    ir, jr = i[rows], j[rows]
+                    run = _run_of(ir, jr)
+                    if run is not None:
+                        m.add_window(d, *run)
+                    else:
+                        m.add_shifted(d[_slice(ir)], d[_slice(jr)])
+                else:
+                    m.add_pairs(_take(x0, rows), _take(xt, rows), _wtake(w0, rows))
                 a, _, c = out[(s, k, si, b)]
                 out[(s, k, si, b)] = (a, m, c)
         return out
