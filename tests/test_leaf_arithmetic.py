@@ -260,3 +260,14 @@ def test_bin_counts_follow_the_formula_for_any_block_width_with_weights_and_odd_
     with np.errstate(invalid="ignore"):
         few = bin_counts(x[:4], lo, hi, 50, groups[:4], 3, block=2)
     assert few.sum() == 4 * 9 and few[groups[1], 1, 0] == 1.0  # (NaN in the first bin)
+
+
+def test_a_pass_refuses_columns_outside_the_features_and_gathers_the_others_as_values():
+    with pytest.raises(ValueError, match="columns must be feature indices below 3"):
+        ScreeningPass(_Mem(3), columns=[0, 3])
+    x = _far(6, n=20, p=3)
+    p = LaggedPass(_Mem(3), 2, columns=[2, -3], center=[1.0, 2.0], scale=[2.0, 4.0])
+    out = np.empty((20, 2))
+    got = p.values_in(x, out)
+    assert got is out and np.array_equal(got, p.values(x))
+    assert np.array_equal(got, (x[:, [2, 0]] - [1.0, 2.0]) / [2.0, 4.0])

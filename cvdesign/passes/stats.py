@@ -185,6 +185,12 @@ class FeaturePass(Pass):
     def __init__(self, featurizer, *, columns=None, center=None, scale=None):
         self.featurizer = featurizer
         self.columns = None if columns is None else np.asarray(columns, dtype=np.intp)
+        if self.columns is not None:
+            n_all = int(featurizer.n_features)
+            if self.columns.size and not (-n_all <= self.columns.min()
+                                          and self.columns.max() < n_all):
+                raise ValueError(f"columns must be feature indices below {n_all}")
+            self.columns = np.where(self.columns < 0, self.columns + n_all, self.columns)
         if self.columns is not None and np.array_equal(self.columns,
                                                        np.arange(featurizer.n_features)):
             self.columns = None  # every feature in order: no copy
@@ -210,7 +216,7 @@ class FeaturePass(Pass):
                 x.dtype == np.float64:
             return x
         if self.columns is not None and x.dtype == np.float64:
-            np.take(x, self.columns, axis=1, out=out, mode="clip")  # (valid columns)
+            np.take(x, self.columns, axis=1, out=out, mode="clip")  # (checked columns)
             if self.center is not None:
                 np.subtract(out, self.center, out=out)
             if self.scale is not None:
