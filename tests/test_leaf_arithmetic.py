@@ -271,3 +271,37 @@ def test_a_pass_refuses_columns_outside_the_features_and_gathers_the_others_as_v
     got = p.values_in(x, out)
     assert got is out and np.array_equal(got, p.values(x))
     assert np.array_equal(got, (x[:, [2, 0]] - [1.0, 2.0]) / [2.0, 4.0])
+
+
+def test_leaves_mapped_in_concurrent_threads_give_the_bytes_of_serial_maps():
+    """The leaf temporaries are per-thread scratch arrays: threads never share one."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    p = 300  # leaves big enough for numpy to release the interpreter lock mid-pass
+    x = _far(8, n=2048, p=p)
+    lo, hi = x.min(axis=0), x.max(axis=0)
+    passes = [ScreeningPass(_Mem(p), lags=3, shift=x[0]),
+              CardPass(_Mem(p), center=x[0], low=lo, high=hi, n_bins=7, block_frames=300,
+                       lags=3, run_means={(0, 0): x[5]}, columns=np.arange(p - 1, -1, -1)),
+              LagGridPass(_Mem(p), (1, 5, 20), shift=x[1])]
+    leaves = _leaves(x, 256, 20)
+
+    def flat(value):  # every array of a map's output, in a fixed order
+        if isinstance(value, dict):
+            return [a for k in sorted(value, key=repr) for a in flat(value[k])]
+        if isinstance(value, (list, tuple)):
+            return [a for v in value for a in flat(v)]
+        if hasattr(value, "arrays"):
+            return flat(value.arrays)
+        if hasattr(value, "__slots__"):
+            return [a for name in value.__slots__ for a in flat(getattr(value, name))]
+        return [np.asarray(value)]
+
+    serial = [flat(p.map(leaf)) for leaf in leaves for p in passes]
+    jobs = [(p, leaf) for leaf in leaves for p in passes] * 3
+    with ThreadPoolExecutor(4) as pool:
+        threaded = list(pool.map(lambda job: flat(job[0].map(job[1])), jobs))
+    for k, got in enumerate(threaded):
+        want = serial[k % len(serial)]
+        assert len(got) == len(want)
+        assert all(a.tobytes() == b.tobytes() for a, b in zip(got, want))
