@@ -28,6 +28,7 @@ from threadpoolctl import threadpool_limits
 from .. import progress
 from ..errors import InputError
 from ..io.source import Source, check_label_count
+from ..stats.scratch import release as release_scratch
 from .keys import SegmentLayout
 from .read import file_frames, read_chunks
 from .tree import TreeReducer, merge_optional
@@ -773,9 +774,12 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None, lab
     featurizer = passes[0].featurizer
     if any(p.featurizer is not featurizer for p in passes):
         raise InputError("passes run together must share one featurizer object")
-    with using_executor(executor) as executor:
-        return _run(passes, featurizer, source, executor, tasks, chunk_frames, single,
-                    label or "reading")
+    try:
+        with using_executor(executor) as executor:
+            return _run(passes, featurizer, source, executor, tasks, chunk_frames, single,
+                        label or "reading")
+    finally:
+        release_scratch()  # (this thread's leaf temporaries: not kept between passes)
 
 
 def _run(passes, featurizer, source, executor, tasks, chunk_frames, single, label):

@@ -3,15 +3,17 @@
 A leaf's temporaries (a shifted window, histogram indices) are hundreds of kilobytes;
 a fresh array of that size is new memory from the system on most calls, and writing it
 the first time costs more than the arithmetic. A scratch array is allocated once per
-thread and name (grown when a larger one is asked for) and handed out again; its size is
-bounded by a leaf's (:data:`cvdesign.passes.FEATURE_BUDGET`), not by the trajectory.
+thread and name (grown when a larger one is asked for) and handed out again; it is as
+large as the largest leaf window (leaf and halo rows) asked for, whatever the
+trajectory's length, and :func:`release` drops a thread's arrays (``run_pass`` does at
+its end, in the calling thread).
 """
 
 import threading
 
 import numpy as np
 
-__all__ = ["scratch"]
+__all__ = ["scratch", "release"]
 
 _LOCAL = threading.local()
 
@@ -50,3 +52,13 @@ def scratch(name, shape, dtype=np.float64):
     if buf is None or buf.size < size:
         buf = pool[(name, dtype)] = np.empty(size, dtype=dtype)
     return buf[:size].reshape(shape)
+
+
+def release():
+    """Drop this thread's scratch arrays (the memory goes back when nothing uses it).
+
+    Examples
+    --------
+    >>> _ = scratch("example", (4,)); release()
+    """
+    _LOCAL.pool = {}
