@@ -28,6 +28,7 @@ from threadpoolctl import threadpool_limits
 from .. import progress
 from ..errors import InputError
 from ..io.source import Source, check_label_count
+from ..stats.scratch import release as release_scratch
 from .keys import SegmentLayout
 from .read import file_frames, read_chunks
 from .tree import TreeReducer, merge_optional
@@ -287,6 +288,40 @@ class Leaf:
     def weights(self):
         """ndarray of float64 or None : weights of the leaf's rows (None: unbiased run)."""
         return self.layout.weights_of(self.frames)
+
+    @classmethod
+    def of_matrix(cls, x, leaf_frames, halo=0):
+        """The leaves of an in-memory feature matrix: one unbiased segment, one state.
+
+        For checking and timing a pass's leaf arithmetic without files (the engine
+        builds its leaves from what it reads).
+
+        Parameters
+        ----------
+        x : ndarray of shape (n_frames, n_features)
+            Feature values of consecutive frames.
+        leaf_frames : int
+        halo : int, default=0
+            Rows after each leaf in its window (the longest lag a pass may ask for).
+
+        Returns
+        -------
+        list of Leaf
+
+        Examples
+        --------
+        >>> [(leaf.n, leaf.window_x.shape[0]) for leaf in Leaf.of_matrix(np.zeros((5, 2)), 2, 1)]
+        [(2, 3), (2, 3), (1, 1)]
+        """
+        n = x.shape[0]
+        lay = SegmentLayout.plain(0, "memory", n, 0, n, 0, 1)
+        out = []
+        for k, a in enumerate(range(0, n, int(leaf_frames))):
+            b = min(n, a + int(leaf_frames))
+            c = min(n, b + int(halo))
+            out.append(cls(0, k, lay, 1, np.arange(a, c), np.zeros(c - a, dtype=np.int64),
+                           x[a:c], None, None, b - a))
+        return out
 
     def pairs(self, lag, rescaled=True):
         """Lagged pairs ``(t, u)`` whose first frame is in this leaf.
@@ -741,9 +776,12 @@ def run_pass(pass_, source, *, executor=None, tasks=None, chunk_frames=None, lab
     featurizer = passes[0].featurizer
     if any(p.featurizer is not featurizer for p in passes):
         raise InputError("passes run together must share one featurizer object")
-    with using_executor(executor) as executor:
-        return _run(passes, featurizer, source, executor, tasks, chunk_frames, single,
-                    label or "reading")
+    try:
+        with using_executor(executor) as executor:
+            return _run(passes, featurizer, source, executor, tasks, chunk_frames, single,
+                        label or "reading")
+    finally:
+        release_scratch()  # (this thread's leaf temporaries: not kept between passes)
 
 
 def _run(passes, featurizer, source, executor, tasks, chunk_frames, single, label):

@@ -33,7 +33,9 @@ from ..geometry import box_heights
 from ..score.card import CARD_LAG_FIELDS
 from ..score.univariate import Histograms, bin_counts, histogram_range
 from ..stats.bootstrap import ArraySum
-from ..stats.moments import DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments, merge_all
+from ..stats.scratch import scratch
+from ..stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments,
+                             merge_all, window_sums)
 from .engine import Pass, _lag_halo
 from .keys import frame_keys
 
@@ -118,6 +120,11 @@ def _dot(a, b):
     return np.einsum("ij,ij->j", a, b)
 
 
+def _square(a):
+    """Column sums of ``a * a``."""
+    return _dot(a, a)
+
+
 def _wtake(w, rows):
     """Weights of some rows (None for unweighted frames)."""
     return None if w is None else w[_slice(rows)]
@@ -131,6 +138,17 @@ def _wsum(w, a):
 def _wdot(w, a, b):
     """Column sums of ``a * b``, weighted by `w` when given."""
     return _dot(a, b) if w is None else w @ (a * b)
+
+
+def _run_of(i, j):
+    """``(a, b, k)`` when the pairs ``(i, j)`` are the rows ``a .. b - 1`` and the rows `k`
+    after them (``k >= 1``: consecutive frames, as in an unbiased run), else None."""
+    if i.size == 0:
+        return None
+    si, sj = _slice(i), _slice(j)
+    if isinstance(si, slice) and isinstance(sj, slice) and sj.start > si.start:
+        return si.start, si.stop, sj.start - si.start
+    return None
 
 
 def _lag_of(lags, segment):
@@ -167,6 +185,12 @@ class FeaturePass(Pass):
     def __init__(self, featurizer, *, columns=None, center=None, scale=None):
         self.featurizer = featurizer
         self.columns = None if columns is None else np.asarray(columns, dtype=np.intp)
+        if self.columns is not None:
+            n_all = int(featurizer.n_features)
+            if self.columns.size and not (-n_all <= self.columns.min()
+                                          and self.columns.max() < n_all):
+                raise ValueError(f"columns must be feature indices below {n_all}")
+            self.columns = np.where(self.columns < 0, self.columns + n_all, self.columns)
         if self.columns is not None and np.array_equal(self.columns,
                                                        np.arange(featurizer.n_features)):
             self.columns = None  # every feature in order: no copy
@@ -184,6 +208,29 @@ class FeaturePass(Pass):
         if self.scale is not None:
             x = x / self.scale
         return np.ascontiguousarray(x, dtype=np.float64)
+
+    def values_in(self, x, out):
+        """:meth:`values` written into `out` where anything is done to `x`; returns `out`
+        then, else `x` itself (float64 features used as they are). The same numbers."""
+        if self.columns is None and self.center is None and self.scale is None and \
+                x.dtype == np.float64:
+            return x
+        if self.columns is not None and x.dtype == np.float64:
+            np.take(x, self.columns, axis=1, out=out, mode="clip")  # (checked columns)
+            if self.center is not None:
+                np.subtract(out, self.center, out=out)
+            if self.scale is not None:
+                np.divide(out, self.scale, out=out)
+            return out
+        np.copyto(out, self.values(x))
+        return out
+
+    def shifted(self, x, shift, name="shifted"):
+        """``values(x) - shift`` in this thread's scratch array `name`
+        (:func:`~cvdesign.stats.scratch.scratch`: a temporary, valid until the next call
+        with that name)."""
+        out = scratch(name, (x.shape[0], self.n_features))
+        return np.subtract(self.values_in(x, out), shift, out=out)
 
 
 @dataclass
@@ -237,15 +284,21 @@ class ScreeningPass(FeaturePass):
         return _lag_halo(self.lags, segment_index)
 
     def map(self, leaf):
-        x = self.values(leaf.x)
         states = leaf.states
         w = leaf.weights
-        diag, counts, lagged = {}, {}, {}
         lag = _lag_of(self.lags, leaf.segment)
+        groups = group_rows(states)
+        if w is None and len(groups) == 1:  # the usual leaf: one state, no weights
+            (s,), _ = groups[0]
+            diag, lagged = self._one_run(leaf, s, lag)
+            return {"diag": diag, "counts": {(leaf.segment, s): int(leaf.n)},
+                    "lagged": lagged, "min_box": self._min_box(leaf)}
+        x = self.values(leaf.x)
+        diag, counts, lagged = {}, {}, {}
         if lag is not None:
             i, j = leaf.pairs(lag)
             xt = self.values(leaf.window_x[_slice(j)])
-        for (s,), rows in group_rows(states):
+        for (s,), rows in groups:
             diag[s] = DiagonalMoments.from_data(_take(x, rows), _wtake(w, rows))
             counts[(leaf.segment, s)] = int(rows.size)
             if lag is not None:
@@ -254,9 +307,52 @@ class ScreeningPass(FeaturePass):
                     m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
                     lagged[(leaf.segment, s)] = m.add_pairs(_take(x, i[sel]), _take(xt, sel),
                                                             _wtake(w, i[sel]))
+        return {"diag": diag, "counts": counts, "lagged": lagged, "min_box": self._min_box(leaf)}
+
+    @staticmethod
+    def _min_box(leaf):
         box = leaf.box
-        min_box = None if box is None else float(box_heights(box.astype(np.float64)).min())
-        return {"diag": diag, "counts": counts, "lagged": lagged, "min_box": min_box}
+        return None if box is None else float(box_heights(box.astype(np.float64)).min())
+
+    def _one_run(self, leaf, s, lag):
+        """Diagonal and lagged moments of a leaf of one state, unweighted.
+
+        The leaf is shifted once (``x - shift``); its moments are centred on the leaf's
+        own mean (two passes, as :meth:`DiagonalMoments.from_data`); when every row has its
+        pair ``lag`` rows later, the lagged ``sum_x`` and ``sum_xx`` follow from them
+        (``sum_xx = m2 + n mean^2`` about the shift: a sum of non-negative terms, no
+        cancellation) and the second frames' sums from the edges
+        (:meth:`DiagonalLaggedMoments.add_window`).
+        """
+        n = int(leaf.n)
+        run = None
+        if lag is not None:
+            i, j = leaf.pairs(lag)
+            run = _run_of(i, j)
+        rows = n if run is None or run[0] != 0 else max(n, run[1] + run[2])
+        d = self.shifted(leaf.window_x[:rows], self.shift)
+        x = self.values(leaf.x)
+        dn = d[:n]
+        sd = dn.sum(axis=0)
+        dbar = sd / n
+        e = np.subtract(dn, dbar, out=scratch("centred", dn.shape))
+        m2 = _dot(e, e)
+        diag = {s: DiagonalMoments._of(float(n), self.shift + dbar, m2, x.min(axis=0),
+                                       x.max(axis=0))}
+        lagged = {}
+        if lag is not None and i.size:
+            m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
+            if run is not None and run[0] == 0:
+                a, b, k = run
+                if b == n:
+                    m.add_window(d, 0, n, k, sum_x=sd, sum_xx=m2 + sd * dbar)
+                else:
+                    m.add_window(d, 0, b, k)
+            else:
+                xt = self.values(leaf.window_x[_slice(j)])
+                m.add_pairs(_take(x, i), xt)
+            lagged[(leaf.segment, s)] = m
+        return diag, lagged
 
     def merge(self, a, b):
         boxes = [v for v in (a["min_box"], b["min_box"]) if v is not None]
@@ -408,12 +504,19 @@ class LaggedPass(FeaturePass):
             keep = first.fold == second.fold
             i, j = i[keep], j[keep]
             first = frame_keys(leaf.layout, leaf.frames[i], folds=self.folds)
-        x0 = self.values(leaf.x[_slice(i)])
-        xt = self.values(leaf.window_x[_slice(j)])
         w0 = _wtake(leaf.weights, i)  # a pair weighs as its first frame
         cls = DiagonalLaggedMoments if self.diagonal else LaggedMoments
+        groups = group_rows(first.states, first.fold)
+        run = _run_of(i, j) if w0 is None and len(groups) == 1 else None
+        if run is not None:  # one run of consecutive pairs: the window shifted once
+            a, b, step = run
+            d = self.shifted(leaf.window_x[a:b + step], self.shift)
+            m = cls(self.n_features, shift=self.shift, lag=lag).add_window(d, 0, b - a, step)
+            return {(leaf.segment,) + groups[0][0]: m}
+        x0 = self.values(leaf.x[_slice(i)])
+        xt = self.values(leaf.window_x[_slice(j)])
         out = {}
-        for (s, k), rows in group_rows(first.states, first.fold):
+        for (s, k), rows in groups:
             m = cls(self.n_features, shift=self.shift, lag=lag)
             out[(leaf.segment, s, k)] = m.add_pairs(_take(x0, rows), _take(xt, rows),
                                                     _wtake(w0, rows))
@@ -465,7 +568,7 @@ class LagGridPass(FeaturePass):
         return max(self.lags)
 
     def map(self, leaf):
-        d = self.values(leaf.window_x) - self.shift
+        d = self.shifted(leaf.window_x, self.shift)
         w = leaf.weights
         out = {}
         firsts = {}  # sums over the first frames, shared by the lags with the same ones
@@ -486,6 +589,11 @@ class LagGridPass(FeaturePass):
                     firsts[key] = (x0.sum(axis=0), _dot(x0, x0))
                 sum_x, sum_xx = firsts[key]
                 m = DiagonalLaggedMoments(self.n_features, shift=self.shift, lag=lag)
+                run = _run_of(i[rows], j[rows])
+                if run is not None:  # as LaggedPass: the second frames' sums from edges
+                    out[(g, leaf.segment, s, 0)] = m.add_window(d, *run, sum_x=sum_x,
+                                                                sum_xx=sum_xx)
+                    continue
                 # what add_shifted(x0, xt) does, with the first frames' sums shared
                 m.count += float(rows.size)
                 m.n_pairs += int(rows.size)
@@ -699,12 +807,23 @@ class BlockPass(FeaturePass):
             if self.pairs_within_block:
                 keep &= first.block == second.block
             i, j = i[keep], j[keep]
-            x0, xt = x[_slice(i)], self.values(leaf.window_x[_slice(j)])
-            w0 = _wtake(w, i)
+            if w is None and i.size:  # the window shifted once; consecutive pairs share
+                d = self.shifted(leaf.window_x[:int(j.max()) + 1], self.lag_shift)
+            else:
+                x0, xt = x[_slice(i)], self.values(leaf.window_x[_slice(j)])
+                w0 = _wtake(w, i)
             for (s, k, b), rows in group_rows(first.states[keep], first.fold[keep],
                                            first.block[keep]):
                 m = LaggedMoments(self.n_features, shift=self.lag_shift)
-                m.add_pairs(_take(x0, rows), _take(xt, rows), _wtake(w0, rows))
+                if w is None:
+                    ir, jr = i[rows], j[rows]
+                    run = _run_of(ir, jr)
+                    if run is not None:
+                        m.add_window(d, *run)
+                    else:
+                        m.add_shifted(d[_slice(ir)], d[_slice(jr)])
+                else:
+                    m.add_pairs(_take(x0, rows), _take(xt, rows), _wtake(w0, rows))
                 a, _, c = out[(s, k, si, b)]
                 out[(s, k, si, b)] = (a, m, c)
         return out
@@ -797,11 +916,15 @@ class CardPass(FeaturePass):
         return _lag_halo(self.lags, segment_index)
 
     def map(self, leaf):
-        x = self.values(leaf.x)
         w = leaf.weights
         si = leaf.segment
         keys = frame_keys(leaf.layout, leaf.frames, block_frames=self.block_frames)
         groups = group_rows(keys.states, keys.block)
+        if w is None:
+            out = self._map_runs(leaf, groups)
+            if out is not None:
+                return out
+        x = self.values(leaf.x)
         code = np.empty(x.shape[0], dtype=np.intp)
         for g, (_, rows) in enumerate(groups):
             code[rows] = g
@@ -838,6 +961,64 @@ class CardPass(FeaturePass):
                 acc["syy"] = _wdot(wr, q, q)
                 acc["l0"] = 0.5 * (_wdot(wr, u, u) + _wdot(wr, v, v))
                 acc["lt"] = _wdot(wr, u, v)
+        return {key: ArraySum(**acc) for key, acc in out.items()}
+
+    def _map_runs(self, leaf, groups):
+        """:meth:`map` for an unweighted leaf whose groups are runs of rows and whose pairs
+        (if any) are consecutive rows `k` apart (an unbiased run); None otherwise.
+
+        The window is read once (values, then shifted in place after the binning); each
+        group's first-frame sums are its own sums when it holds only first frames, the
+        second frames' from the edges (:func:`~cvdesign.stats.moments.window_sums`), and
+        the sums about a run's own mean from the window shifted by that mean (no
+        re-shift of sums, which could cancel)."""
+        n = int(leaf.n)
+        spans = [_slice(rows) for _, rows in groups]
+        if not all(isinstance(sp, slice) for sp in spans):
+            return None
+        si = leaf.segment
+        lag = _lag_of(self.lags, si)
+        run = None
+        if lag is not None:
+            i, j = leaf.pairs(lag)
+            run = _run_of(i, j)
+            if i.size and run is None:
+                return None
+        rows = n if run is None else max(n, run[1] + run[2])
+        d = scratch("shifted", (rows, self.n_features))
+        xw = self.values_in(leaf.window_x[:rows], d)  # (d itself, or the leaf's rows)
+        code = np.empty(n, dtype=np.intp)
+        for g, sp in enumerate(spans):
+            code[sp] = g
+        hist = bin_counts(xw[:n], self._low, self._high, self.n_bins, code, len(groups))
+        np.subtract(xw, self._shift, out=d)
+        out = {}
+        for g, ((s, b), _) in enumerate(groups):
+            r0, r1 = spans[g].start, spans[g].stop
+            dg = d[r0:r1]
+            acc = {"n": float(r1 - r0), "s1": dg.sum(axis=0), "s2": _dot(dg, dg),
+                   "hist": hist[g]}
+            if self.lags is not None:
+                acc.update({f: 0.0 if f == "n_pairs" else np.zeros(self.n_features)
+                            for f in CARD_LAG_FIELDS})
+            p0, p1 = (0, 0) if run is None else (max(r0, run[0]), min(r1, run[1]))
+            if p1 > p0:
+                k = run[2]
+                whole = p0 == r0 and p1 == r1
+                sx, sy, sxx, sxy, syy = window_sums(
+                    d, p0, p1, k, _square, _dot, sum_x=acc["s1"] if whole else None,
+                    sum_xx=acc["s2"] if whole else None)
+                acc.update(n_pairs=float(p1 - p0), sx=sx, sy=sy, sxx=sxx, sxy=sxy, syy=syy)
+                mean = self._means.get((si, s))
+                if mean is None:  # about the center: the same sums
+                    uu, uv, vv = sxx, sxy, syy
+                else:
+                    u = np.subtract(d[p0:p1 + k], mean - self._shift,
+                                    out=scratch("centred", (p1 + k - p0, d.shape[1])))
+                    _, _, uu, uv, vv = window_sums(u, 0, p1 - p0, k, _square, _dot)
+                acc["l0"] = 0.5 * (uu + vv)
+                acc["lt"] = uv
+            out[(s, si, b)] = acc
         return {key: ArraySum(**acc) for key, acc in out.items()}
 
     def merge(self, a, b):

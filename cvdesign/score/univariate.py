@@ -19,6 +19,8 @@ import itertools
 
 import numpy as np
 
+from ..stats.scratch import scratch
+
 __all__ = ["fisher_ratio", "Histograms", "bin_counts", "histogram_range",
            "overlap_coefficient"]
 
@@ -73,15 +75,21 @@ def histogram_range(low, high):
     return low, high
 
 
-def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=4096, out=None):
+#: Values binned at once by :func:`bin_counts` (a block of columns of about 0.5 MB, so the
+#: chain of elementwise passes and the counts stay in the processor's cache).
+BIN_BLOCK_VALUES = 65536
+
+
+def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=None, out=None):
     """Counts of every feature on fixed bins, per group of rows, added into `out`.
 
     The bin of a value is ``floor((x - low) / (high - low) * n_bins)``, clipped to
-    ``[0, n_bins - 1]`` (values outside the range fall into the edge bins). The
-    counts of a block of features come from one ``bincount`` over a combined
-    (group, feature, bin) index; with fewer rows than bins (the short leaves of
-    big pools) each row is added in place instead, which does not sweep the whole
-    array of counts once per block.
+    ``[0, n_bins - 1]`` (values outside the range, infinities included, fall into the
+    edge bins; NaN into the first). The counts of a block of features come from one
+    ``bincount`` over a combined (group, feature, bin) index; the blocks are narrow enough
+    (:data:`BIN_BLOCK_VALUES` values) for their passes and counts to stay in cache. With
+    fewer rows than bins (the short leaves of big pools) each row is added in place
+    instead, which does not sweep the whole array of counts once per block.
 
     Parameters
     ----------
@@ -94,16 +102,17 @@ def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=40
     n_groups : int
     weights : array-like of shape (n_frames,), default=None
         Row weights (counts of 1 when None).
-    block : int, default=4096
-        Features binned at once (bounds the temporaries).
+    block : int, default=None
+        Features binned at once (bounds the temporaries); None: as many as make
+        :data:`BIN_BLOCK_VALUES` values. The counts do not depend on it.
     out : ndarray of shape (n_groups, n_features, n_bins), default=None
         Counts to add to (C-contiguous float64); None: new zeros.
 
     Returns
     -------
     ndarray of shape (n_groups, n_features, n_bins), float64
-        `out` with the counts added (weighted counts: each block's bin sums in row
-        order, then added).
+        `out` with the counts added (weighted counts: each bin's sum in row order,
+        then added).
 
     Examples
     --------
@@ -122,29 +131,39 @@ def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=40
     if weights is not None:
         weights = np.asarray(weights, dtype=np.float64).reshape(-1)
     by_row = weights is None and n_frames < nb
+    if block is None:
+        block = max(1, BIN_BLOCK_VALUES // n_frames)
+    block = min(int(block), n_feat)
+    width = high - low
+    offsets = np.arange(block) * nb                # feature offset within a block
+    grouped = bool(groups.any())
     flat = out.reshape(-1)
+    w = None if weights is None else np.repeat(weights, block)
     for lo in range(0, n_feat, block):
         hi = min(n_feat, lo + block)
-        t = x[:, lo:hi] - low[lo:hi]
-        t /= high[lo:hi] - low[lo:hi]
+        m = hi - lo
+        t = np.subtract(x[:, lo:hi], low[lo:hi], out=scratch("bin_values", (n_frames, m)))
+        t /= width[lo:hi]
         t *= nb
-        np.floor(t, out=t)
-        b = t.astype(np.intp)
-        np.clip(b, 0, nb - 1, out=b)
+        np.fmax(t, 0.0, out=t)                     # (NaN to 0)
+        np.minimum(t, nb - 1, out=t)
+        b = scratch("bin_index", (n_frames, m), np.intp)
+        b[...] = t                                 # truncation: floor of t >= 0
+        b += offsets[:m]
         if by_row:  # a row holds each feature once: no repeated index within a row
-            b += np.arange(lo, hi) * nb
-            if groups.any():
+            b += lo * nb
+            if grouped:
                 b += (groups * (n_feat * nb))[:, None]
             for row in b:
                 flat[row] += 1.0
             continue
-        size = (hi - lo) * nb
-        b += np.arange(hi - lo) * nb             # feature offset
-        if groups.any():
-            b += (groups * size)[:, None]        # group offset
-        w = None if weights is None else np.repeat(weights, hi - lo)
+        size = m * nb
+        if grouped:
+            b += (groups * size)[:, None]          # group offset
+        if w is not None and w.size != b.size:  # (the last, narrower block)
+            w = np.repeat(weights, m)
         c = np.bincount(b.ravel(), weights=w, minlength=n_groups * size)
-        out[:, lo:hi] += c.reshape(n_groups, hi - lo, nb)
+        out[:, lo:hi] += c.reshape(n_groups, m, nb)
     return out
 
 
@@ -177,7 +196,7 @@ class Histograms:
         self.n_bins = int(n_bins)
         self.counts = np.zeros((int(n_states), self.low.shape[0], self.n_bins))
 
-    def add(self, x, states, weights=None, *, block=4096):
+    def add(self, x, states, weights=None, *, block=None):
         """Add frames `x` (n_frames, n_features) with state indices `states`."""
         bin_counts(x, self.low, self.high, self.n_bins, states, self.counts.shape[0], weights,
                    block=block, out=self.counts)

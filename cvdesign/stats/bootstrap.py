@@ -52,7 +52,9 @@ class ArraySum:
         """The sums of the union of two disjoint blocks."""
         if self.arrays.keys() != other.arrays.keys():
             raise ValueError("cannot merge ArraySum blocks with different fields")
-        return ArraySum(**{k: v + other.arrays[k] for k, v in self.arrays.items()})
+        out = ArraySum.__new__(ArraySum)  # the sums are new arrays: no copy
+        out.arrays = {k: np.asarray(v + other.arrays[k]) for k, v in self.arrays.items()}
+        return out
 
 
 def merge_blocks(blocks):

@@ -22,6 +22,8 @@ Two kinds are provided:
 import numpy as np
 from scipy.linalg.blas import dger as _dger
 
+from .scratch import scratch
+
 __all__ = [
     "Moments",
     "DiagonalMoments",
@@ -29,6 +31,7 @@ __all__ = [
     "LaggedMoments",
     "DiagonalLaggedMoments",
     "LagAccumulator",
+    "window_sums",
 ]
 
 
@@ -114,22 +117,23 @@ class Moments:
         """
         x = _as_2d(x, None)
         w = _weights(weights, x.shape[0])
-        m = cls(x.shape[1])
         if x.shape[0] == 0:
-            return m
+            return cls(x.shape[1])
         if w is None:
+            m = cls.__new__(cls)  # every field set below
             m.count = float(x.shape[0])
             m.mean = x.mean(axis=0)
-            d = x - m.mean
+            d = np.subtract(x, m.mean, out=scratch("moments_centred", x.shape))
             m.scatter = d.T @ d
-        else:
-            total = w.sum()
-            if total == 0:
-                return m
-            m.count = float(total)
-            m.mean = (w @ x) / total
-            d = x - m.mean
-            m.scatter = (d * w[:, None]).T @ d
+            return m
+        total = w.sum()
+        if total == 0:
+            return cls(x.shape[1])
+        m = cls.__new__(cls)  # every field set below
+        m.count = float(total)
+        m.mean = (w @ x) / total
+        d = x - m.mean
+        m.scatter = (d * w[:, None]).T @ d
         return m
 
     def copy(self):
@@ -219,24 +223,26 @@ class DiagonalMoments:
         """Diagonal moments of a block of frames (see :meth:`Moments.from_data`)."""
         x = _as_2d(x, None)
         w = _weights(weights, x.shape[0])
-        m = cls(x.shape[1])
         if x.shape[0] == 0:
-            return m
+            return cls(x.shape[1])
         if w is None:
-            m.count = float(x.shape[0])
-            m.mean = x.mean(axis=0)
-            d = x - m.mean
-            m.m2 = _column_dot(d, d)
-        else:
-            total = w.sum()
-            if total == 0:
-                return m
-            m.count = float(total)
-            m.mean = (w @ x) / total
-            m.m2 = w @ ((x - m.mean) ** 2)
-            x = x[w > 0]
-        m.minimum = x.min(axis=0)
-        m.maximum = x.max(axis=0)
+            mean = x.mean(axis=0)
+            d = x - mean
+            return cls._of(float(x.shape[0]), mean, _column_dot(d, d), x.min(axis=0),
+                           x.max(axis=0))
+        total = w.sum()
+        if total == 0:
+            return cls(x.shape[1])
+        mean = (w @ x) / total
+        m2 = w @ ((x - mean) ** 2)
+        x = x[w > 0]
+        return cls._of(float(total), mean, m2, x.min(axis=0), x.max(axis=0))
+
+    @classmethod
+    def _of(cls, count, mean, m2, minimum, maximum):
+        """An instance holding these arrays (no copies, no checks; count > 0)."""
+        m = cls.__new__(cls)
+        m.count, m.mean, m.m2, m.minimum, m.maximum = count, mean, m2, minimum, maximum
         return m
 
     def copy(self):
@@ -293,7 +299,7 @@ def _merge_start(a, b):
         return b.copy(), None, 0.0
     n = a.count + b.count
     delta = b.mean - a.mean
-    m = type(a)(a.n_features)
+    m = type(a).__new__(type(a))  # every field is set by the caller
     m.count = n
     m.mean = a.mean + delta * (b.count / n)
     return m, delta, a.count * b.count / n
@@ -336,6 +342,53 @@ def _check_lag(lag):
     return int(lag)
 
 
+def window_sums(d, a, b, k, gram, cross, *, sum_x=None, sum_xx=None):
+    """Sums of the pairs ``(d[t], d[t + k])``, ``a <= t < b``, of one window of rows.
+
+    The second frames are the first ones moved by `k` rows, so when ``2 k < b - a``
+    their sums are the first frames' sums plus those of the `k` rows after them minus
+    those of the `k` rows at their start: no product over the second frames. Each term
+    sums the same rows as the direct product, so the rounding error stays of the same
+    order (the edges hold ``2 k`` rows; a second moment loses at most their share).
+
+    Parameters
+    ----------
+    d : ndarray of shape (n_rows, n_features), float64
+        Rows ``a`` to ``b + k`` at least, in time order (shifted frames).
+    a, b, k : int
+        First frames ``d[a:b]`` (``b > a``), lag ``k >= 1`` in rows.
+    gram, cross : callable
+        ``gram(u)`` and ``cross(u, v)``: the second moments (``u.T @ v`` or the column
+        sums of ``u * v``).
+    sum_x, sum_xx : ndarray, default=None
+        The first frames' sums when the caller has them.
+
+    Returns
+    -------
+    tuple
+        ``(sum_x, sum_y, sum_xx, sum_xy, sum_yy)``.
+
+    Examples
+    --------
+    >>> d = np.arange(12.0).reshape(6, 2)
+    >>> dot = lambda u, v=None: (u * (u if v is None else v)).sum(axis=0)
+    >>> sy, syy = window_sums(d, 0, 5, 1, dot, dot)[1::3]
+    >>> bool(np.array_equal(syy, dot(d[1:6])) and np.array_equal(sy, d[1:6].sum(axis=0)))
+    True
+    """
+    d0 = d[a:b]
+    sx = d0.sum(axis=0) if sum_x is None else sum_x
+    sxx = gram(d0) if sum_xx is None else sum_xx
+    if 2 * k < b - a:
+        head, tail = d[a:a + k], d[b:b + k]
+        sy = sx + (tail.sum(axis=0) - head.sum(axis=0))
+        syy = sxx + (gram(tail) - gram(head))
+    else:
+        dt = d[a + k:b + k]
+        sy, syy = dt.sum(axis=0), gram(dt)
+    return sx, sy, sxx, cross(d0, d[a + k:b + k]), syy
+
+
 class _LaggedBase:
     """Shared machinery of :class:`LaggedMoments` and :class:`DiagonalLaggedMoments`.
 
@@ -366,10 +419,9 @@ class _LaggedBase:
         self.shift = shift
         self.sum_x = np.zeros(n_features)
         self.sum_y = np.zeros(n_features)
-        zero = self._zero_second(n_features)
-        self.sum_xx = zero.copy()
-        self.sum_xy = zero.copy()
-        self.sum_yy = zero.copy()
+        self.sum_xx = self._zero_second(n_features)
+        self.sum_xy = self._zero_second(n_features)
+        self.sum_yy = self._zero_second(n_features)
 
     @property
     def n_features(self):
@@ -457,13 +509,51 @@ class _LaggedBase:
         self.sum_yy += syy
         return self
 
+    def add_window(self, d, a, b, k, *, sum_x=None, sum_xx=None):
+        """:meth:`add_shifted` for the unweighted pairs ``(d[t], d[t + k])``, ``a <= t < b``.
+
+        `d` is a window of shifted frames (``x - shift``, float64, rows in time order)
+        holding rows ``a`` to ``b + k``. The second frames' sums come from the first
+        frames' and the edges (:func:`window_sums`): no product over the second frames
+        when ``2 k < b - a``.
+
+        Parameters
+        ----------
+        d : ndarray of shape (n_rows, n_features), float64
+        a, b, k : int
+            First frames ``d[a:b]``, lag ``k >= 1`` in rows.
+        sum_x, sum_xx : ndarray, default=None
+            The first frames' ``sum_x`` and ``sum_xx`` when the caller has them already.
+
+        Returns
+        -------
+        self
+        """
+        n = b - a
+        if n <= 0:
+            return self
+        sx, sy, sxx, sxy, syy = window_sums(d, a, b, k, self._gram, self._cross, sum_x=sum_x,
+                                            sum_xx=sum_xx)
+        self.count += float(n)
+        self.n_pairs += int(n)
+        self.sum_x += sx
+        self.sum_y += sy
+        self.sum_xx += sxx
+        self.sum_xy += sxy
+        self.sum_yy += syy
+        return self
+
     def copy(self):
         """Return an independent copy."""
-        m = type(self)(self.n_features, shift=self.shift, lag=self.lag)
-        m.count = self.count
-        m.n_pairs = self.n_pairs
-        for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
-            setattr(m, name, getattr(self, name).copy())
+        return self._with(self.lag, self.count, self.n_pairs, self.sum_x.copy(),
+                          self.sum_y.copy(), self.sum_xx.copy(), self.sum_xy.copy(),
+                          self.sum_yy.copy())
+
+    def _with(self, lag, count, n_pairs, sum_x, sum_y, sum_xx, sum_xy, sum_yy):
+        """A new instance with a copy of this shift and these fields (not copied)."""
+        m = type(self).__new__(type(self))
+        m.shift, m.lag, m.count, m.n_pairs = self.shift.copy(), lag, count, n_pairs
+        m.sum_x, m.sum_y, m.sum_xx, m.sum_xy, m.sum_yy = sum_x, sum_y, sum_xx, sum_xy, sum_yy
         return m
 
     def merge(self, other):
@@ -502,13 +592,10 @@ class _LaggedBase:
         if not np.array_equal(self.shift, other.shift):
             raise ValueError("cannot merge lagged moments accumulated about different shifts; "
                              "bring one to the other's shift with .reshifted(shift) first")
-        m = self.copy()
-        m.lag = lag
-        m.count += other.count
-        m.n_pairs += other.n_pairs
-        for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
-            setattr(m, name, getattr(m, name) + getattr(other, name))
-        return m
+        return self._with(lag, self.count + other.count, self.n_pairs + other.n_pairs,
+                          self.sum_x + other.sum_x, self.sum_y + other.sum_y,
+                          self.sum_xx + other.sum_xx, self.sum_xy + other.sum_xy,
+                          self.sum_yy + other.sum_yy)
 
     def reshifted(self, shift):
         """The same statistics accumulated about another shift vector.
@@ -599,6 +686,14 @@ class LaggedMoments(_LaggedBase):
     @staticmethod
     def _outer(a, b):
         return np.outer(a, b)
+
+    @staticmethod
+    def _gram(a):
+        return a.T @ a
+
+    @staticmethod
+    def _cross(a, b):
+        return a.T @ b
 
     @staticmethod
     def _products(d0, dt, w):
@@ -725,6 +820,12 @@ class DiagonalLaggedMoments(_LaggedBase):
     @staticmethod
     def _outer(a, b):
         return a * b
+
+    @staticmethod
+    def _gram(a):
+        return _column_dot(a, a)
+
+    _cross = staticmethod(_column_dot)
 
     @staticmethod
     def _products(d0, dt, w):

@@ -285,7 +285,6 @@ def child_stats(args):
                                  LagGridPass, LaggedPass, ScreeningPass, TreeReducer,
                                  leaf_frames_for)
     from cvdesign.passes.engine import Leaf, one_blas_thread
-    from cvdesign.passes.keys import SegmentLayout
 
     repeat = args["repeat"]
     n = args["stats_frames"]
@@ -295,16 +294,6 @@ def child_stats(args):
     class Mem:
         def __init__(self, p):
             self.n_features = p
-
-    def leaves(x, leaf_frames, halo):
-        lay = SegmentLayout.plain(0, "memory", x.shape[0], 0, x.shape[0], 0, 1)
-        res = []
-        for k, a in enumerate(range(0, x.shape[0], leaf_frames)):
-            b = min(x.shape[0], a + leaf_frames)
-            c = min(x.shape[0], b + halo)
-            res.append(Leaf(0, k, lay, 1, np.arange(a, c), np.zeros(c - a, dtype=np.int64),
-                            x[a:c], None, None, b - a))
-        return res
 
     def run(p, lv):
         if p.exact:
@@ -345,7 +334,7 @@ def child_stats(args):
                 base[("xtx", threads)] = _best(lambda: x.T @ x, repeat)
                 base[("colsum", threads)] = _best(lambda: x.sum(axis=0), repeat)
         for label, (p, halo, ref) in cases.items():
-            lv = leaves(x, lf, halo)
+            lv = Leaf.of_matrix(x, lf, halo)
             with one_blas_thread():
                 t = _best(lambda: run(p, lv), repeat)
             if "per lag" in label:
