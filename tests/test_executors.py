@@ -204,6 +204,20 @@ def test_serial_executor_runs_in_order_and_as_executor_maps_its_arguments():
         ProcessExecutor(0)
 
 
+def test_started_local_workers_run_the_next_tasks_and_stop_at_close(demo_reference,
+                                                                    assert_same):
+    src, plan, passes, reference = demo_reference
+    ex = ProcessExecutor(2)
+    ex.start()  # returns at once; the workers import cvdesign meanwhile
+    started = ex._pool
+    assert started is not None
+    assert_same(reference, run_pass(passes, src, executor=ex, tasks=plan.split(n_tasks=4)))
+    assert ex._pool is started  # the run used the started workers
+    ex.close()
+    assert ex._pool is None
+    SerialExecutor().start()  # nothing to start
+
+
 def _free_port():
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
