@@ -17,7 +17,9 @@ from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, Featuriz
                              FoldMomentsPass, Folds, HistogramPass, LaggedPass, LagGridPass,
                              PoolFeaturizer, ProjectionRangePass, ScreeningPass, leaf_frames_for,
                              plan_tasks, reference_features, run_pass)
-from cvdesign.pool import build_pool
+from cvdesign.io.source import select_atoms
+from cvdesign.pool import build_pool, candidate_pairs
+from cvdesign.pool.candidates import _PairDistances, _strided_state_means
 from cvdesign.progress import using_display
 
 
@@ -202,6 +204,20 @@ def test_serial_executor_runs_in_order_and_as_executor_maps_its_arguments():
         ProcessExecutor(0)
 
 
+def test_started_local_workers_run_the_next_tasks_and_stop_at_close(demo_reference,
+                                                                    assert_same):
+    src, plan, passes, reference = demo_reference
+    ex = ProcessExecutor(2)
+    ex.start()  # returns at once; the workers import cvdesign meanwhile
+    started = ex._pool
+    assert started is not None
+    assert_same(reference, run_pass(passes, src, executor=ex, tasks=plan.split(n_tasks=4)))
+    assert ex._pool is started  # the run used the started workers
+    ex.close()
+    assert ex._pool is None
+    SerialExecutor().start()  # nothing to start
+
+
 def _free_port():
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -255,3 +271,105 @@ def test_a_dask_worker_that_dies_mid_run_gives_a_clear_error(demo_files, tmp_pat
         run_pass(ScreeningPass(dying), src, executor=DaskExecutor(client),
                  tasks=plan_tasks(src, leaf_frames=32, frames_per_task=64), chunk_frames=16)
     assert list(tmp_path.iterdir()) == []
+
+
+class DyingDistances:
+    """Prefilter values whose worker process exits on its second call: a worker dying in the
+    prefilter's read."""
+
+    def __init__(self, inner):
+        self.inner = inner
+
+    def __call__(self, sub, periodic):
+        calls = int(os.environ.get("CVDESIGN_TEST_CALLS", "0")) + 1
+        os.environ["CVDESIGN_TEST_CALLS"] = str(calls)
+        if calls >= 2:
+            os._exit(3)
+        return self.inner(sub, periodic)
+
+
+def _prefilter_inputs(src):
+    atoms = np.unique(candidate_pairs(src.topology, select_atoms(src.topology, None))[0])
+    pairs = np.stack(np.triu_indices(atoms.size, k=1), axis=1)
+    return atoms, _PairDistances(pairs, 5_000_000), len(pairs)
+
+
+@pytest.mark.parametrize("frames", [(0, 400), (3, 400)])  # strided reads; every frame read
+def test_the_prefilter_gives_the_same_means_and_pool_on_every_executor(
+        demo_files, frames, dask_threads, shuffled_executor):
+    # three files per state: the per-file sums are added in file order whatever the
+    # executor (the sum of three in another order may differ in its last bits)
+    top, states = demo_files
+    src = Source(top)
+    for name, files in states.items():
+        for f in files[:3]:
+            src.add(f, name, frames=frames)
+    atoms, values, n = _prefilter_inputs(src)
+    ref, used = _strided_state_means(src, atoms, values, n, 10)
+    pool = build_pool(src)
+    with ProcessExecutor(2) as ex:
+        executors = [ex, DaskExecutor(dask_threads), shuffled_executor(3)]
+        for other in executors:
+            got, got_used = _strided_state_means(src, atoms, values, n, 10, executor=other)
+            assert got.tobytes() == ref.tobytes() and got_used == used
+            other_pool = build_pool(src, executor=other)
+            assert other_pool.descriptors == pool.descriptors and other_pool.notes == pool.notes
+    # the reference itself: the mean over every 10th frame of each state in each file
+    start = frames[0]
+    direct = []
+    for files in demo_files[1].values():
+        traj = md.join([md.load(f, top=top, atom_indices=atoms)[start:400:10]
+                        for f in files[:3]])
+        direct.append(values(traj, False).mean(axis=0))
+    np.testing.assert_allclose(ref, np.array(direct), rtol=1e-6)
+    assert used == 6 * len(range(start, 400, 10))
+
+
+def test_a_local_worker_that_dies_in_the_prefilter_gives_a_clear_error(demo_files, tmp_path,
+                                                                       monkeypatch):
+    src = _source(demo_files, frames=(0, 400))
+    atoms, values, n = _prefilter_inputs(src)
+    monkeypatch.setenv("CVDESIGN_TEST_CALLS", "0")  # restored after the test
+    with ProcessExecutor(2) as ex, pytest.raises(
+            WorkerLostError, match=r"a worker process died while running task \d+: the "
+                                   r"prefilter's read of '.*\.xtc' \(killed, out of memory"):
+        _strided_state_means(src, atoms, DyingDistances(values), n, 10, executor=ex)
+    assert list(tmp_path.iterdir()) == []
+
+
+class Exponential:
+    """Prefilter values ``exp(50 x)`` of the first atom's x (nm): sums of very unequal
+    terms, whose bits depend on the order they are added in."""
+
+    def __call__(self, sub, periodic):
+        return np.exp(50.0 * sub.xyz[:, 0, :1].astype(np.float64))
+
+
+def test_the_prefilter_adds_the_files_in_their_order_whatever_order_they_arrive_in(
+        tmp_path, shuffled_executor):
+    top = md.Topology()
+    residue = top.add_residue("X", top.add_chain())
+    top.add_atom("C1", md.element.carbon, residue)
+    top.add_atom("C2", md.element.carbon, residue)
+    paths = []
+    for i, x in enumerate((0.75, 0.0, 0.0)):  # exp(37.5) ~ 2e16 in the first file, 1 after
+        xyz = np.zeros((40, 2, 3), dtype=np.float32)
+        xyz[:, 0, 0] = x
+        xyz[:, 1, 0] = 1.0
+        traj = md.Trajectory(xyz, top)
+        if i == 0:
+            traj[0].save_pdb(str(tmp_path / "top.pdb"))
+        paths.append(tmp_path / f"run-{i}.dcd")
+        traj.save_dcd(str(paths[-1]))
+    src = Source.from_states(str(tmp_path / "top.pdb"), {"a": paths}, chunk_size=8)
+    atoms = np.array([0, 1])
+    ref, _ = _strided_state_means(src, atoms, Exponential(), 1, 2)
+    in_order = [float(np.exp(50.0 * np.float64(np.float32(x)))) * 20 for x in (0.75, 0.0, 0.0)]
+    seed = next(s for s in range(100)
+                if np.random.default_rng(s).permutation(3).tolist() == [1, 2, 0])
+    got, _ = _strided_state_means(src, atoms, Exponential(), 1, 2,
+                                  executor=shuffled_executor(seed))
+    assert got.tobytes() == ref.tobytes()
+    # the order matters for these sums: added as they arrived, they would differ
+    first, second, third = in_order
+    assert (first + second) + third != (second + third) + first

@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 from cvdesign import InputError, Source
 from cvdesign.parallel import ProcessExecutor
 from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, FoldMomentsPass, Folds,
-                             HistogramPass, LaggedPass, LagGridPass, PoolFeaturizer,
+                             HistogramPass, LaggedPass, LagGridPass, Leaf, PoolFeaturizer,
                              ScreeningPass, Task, TreeReducer, frame_keys, group_rows,
                              plan_tasks, reference_features, run_pass)
 from cvdesign.passes.keys import SegmentLayout
@@ -719,3 +719,22 @@ def test_transition_pairs_span_state_changes_and_give_the_same_bytes_for_any_spl
             _close(m.count, wt.sum())
             _close(m.sum_xy, (wt[:, None] * x0).T @ xt)
             _close(m.sum_yy, (wt[:, None] * xt).T @ xt)
+
+
+def test_a_leaf_given_as_row_blocks_gives_the_bytes_of_its_joined_window():
+    # the engine hands a leaf whose window spans two read chunks over as row blocks; the
+    # rows, the window and a subset of its columns must be the same bytes as when joined
+    rng = np.random.default_rng(11)
+    x = rng.normal(size=(30, 7))
+    frames = np.arange(100, 130)
+    lay = SegmentLayout.plain(0, "memory", 200, 0, 200, 0, 1)
+    cols = np.array([5, 0, 3])
+    for n, cut in ((12, 20), (12, 5), (12, 12)):  # leaf rows in the first block, or not
+        whole = Leaf(0, 3, lay, 1, frames, np.zeros(30, np.int64), x, None, None, n)
+        split = Leaf(0, 3, lay, 1, frames, np.zeros(30, np.int64), [x[:cut], x[cut:]], None,
+                     None, n)
+        assert split.x.tobytes() == whole.x.tobytes() and split.x.flags.c_contiguous
+        assert (cut >= n) == np.shares_memory(split.x, x)  # a view when in one block
+        assert split.window_columns(cols).tobytes() == whole.window_columns(cols).tobytes()
+        assert split.window_x.tobytes() == x.tobytes()
+        assert split.window_columns(cols).tobytes() == x[:, cols].tobytes()

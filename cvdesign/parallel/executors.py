@@ -55,6 +55,9 @@ class Executor:
     def run(self, fn, context, items):
         raise NotImplementedError
 
+    def start(self):
+        """Get workers ready for the first tasks without waiting for them (nothing here)."""
+
     def close(self):
         """Release the executor's resources (worker processes, an owned client)."""
 
@@ -94,6 +97,10 @@ def _process_call(fn, context_path, item):
         _CONTEXTS.clear()
         _CONTEXTS[context_path] = ctx
     return fn(ctx, item)
+
+
+def _ready():
+    """A task that does nothing: started workers import this module (and cvdesign)."""
 
 
 def _pickled(context):
@@ -153,6 +160,13 @@ class ProcessExecutor(Executor):
             ctx = multiprocessing.get_context(self.start_method)
             self._pool = concurrent.futures.ProcessPoolExecutor(self.n_workers, mp_context=ctx)
         return self._pool
+
+    def start(self):
+        """Start the worker processes now, without waiting: each imports cvdesign (about a
+        second) while this process goes on, instead of when the first tasks come."""
+        pool = self._get_pool()
+        for _ in range(self.n_workers):
+            pool.submit(_ready)
 
     def run(self, fn, context, items):
         items = list(items)

@@ -218,6 +218,13 @@ class Pass:
         return partial
 
 
+def _joined(blocks):
+    """Row blocks as one C-contiguous array (a single block as it is, when contiguous)."""
+    if len(blocks) == 1:
+        return np.ascontiguousarray(blocks[0])
+    return np.concatenate(blocks)
+
+
 def _lag_halo(lags, segment_index):
     """Halo of a lag given as None, an int, or {segment: int or None}."""
     if lags is None:
@@ -254,15 +261,34 @@ class Leaf:
         Their box vectors, nm.
     window_frames, window_states, window_x : ndarray
         The same for the leaf's rows followed by the halo's.
+
+    The features may be given as a list of row blocks (consecutive pieces of
+    the window, as read in chunks): they are joined only when a pass asks for
+    rows that span two blocks (:attr:`x`, :attr:`window_x`), and
+    :meth:`window_columns` joins only the columns asked for. The values are the
+    same bytes either way.
     """
 
     __slots__ = ("segment", "index", "layout", "n_states", "window_frames", "window_states",
-                 "window_x", "window_time", "window_box", "n")
+                 "_x", "window_time", "window_box", "n")
 
     def __init__(self, segment, index, layout, n_states, frames, states, x, time, box, n):
         self.segment, self.index, self.layout, self.n_states = segment, index, layout, n_states
-        self.window_frames, self.window_states, self.window_x = frames, states, x
+        self.window_frames, self.window_states = frames, states
+        self._x = x if isinstance(x, np.ndarray) else list(x)
         self.window_time, self.window_box, self.n = time, box, n
+
+    @property
+    def window_x(self):
+        if not isinstance(self._x, np.ndarray):  # joined once, on first use
+            self._x = _joined(self._x)
+        return self._x
+
+    def window_columns(self, columns):
+        """``window_x[:, columns]``, joining only those columns of the row blocks."""
+        if isinstance(self._x, np.ndarray):
+            return self._x[:, columns]
+        return _joined([block[:, columns] for block in self._x])
 
     @property
     def frames(self):
@@ -274,7 +300,15 @@ class Leaf:
 
     @property
     def x(self):
-        return self.window_x[:self.n]
+        if isinstance(self._x, np.ndarray):
+            return self._x[:self.n]
+        blocks, rows = [], 0
+        for block in self._x:  # only the blocks of the leaf's rows (not the halo's)
+            blocks.append(block[:self.n - rows])
+            rows += blocks[-1].shape[0]
+            if rows >= self.n:
+                break
+        return _joined(blocks)  # a view when they are in one block
 
     @property
     def time(self):
@@ -635,9 +669,13 @@ def _leaves(ctx, work):
             a, b = np.searchsorted(fr, [lo, hi])
             if b > a:
                 parts.append([None if c is None else c[a:b] for c in piece])
-        if len(parts) <= 1:
-            return parts[0] if parts else None
-        return [None if c[0] is None else np.concatenate(c) for c in zip(*parts)]
+        if not parts:
+            return None
+        # features stay row blocks (joined by the Leaf only if a pass needs them joined);
+        # frames, states, times and boxes are small and joined here
+        return [[p[2] for p in parts] if i == 2 else None if c[0] is None else
+                c[0] if len(c) == 1 else np.concatenate(c)
+                for i, c in enumerate(zip(*parts))]
 
     def emit(upto, final):
         """Yield the leaves whose windows end before frame `upto` (all when `final`), one
@@ -658,7 +696,7 @@ def _leaves(ctx, work):
                 yield number, None
             else:
                 yield number, Leaf(work.task.segment, number, lay, ctx.n_states, win[0],
-                                   win[1], np.ascontiguousarray(win[2]), win[3], win[4], n)
+                                   win[1], win[2], win[3], win[4], n)
             win = None
 
     def select(frames):

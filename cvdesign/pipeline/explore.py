@@ -854,6 +854,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):
         raise InputError(f"n_states={n_states!r} must be an integer of at least 2")
     with using_executor(executor) as executor:
+        executor.start()  # local workers start up while the pool is enumerated
         return _propose(source, executor, stage_messages(_log, progress), lag=float(lag),
                         n_states=n_states, max_states=max_states, selection=selection,
                         kinds=kinds, cutoff=cutoff, prefilter_stride=prefilter_stride,
@@ -870,7 +871,8 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
         reweighting.check_rescaled_time(lag_frames)
     note("building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,
-                      stride=prefilter_stride, coordination_r0=coordination_r0)
+                      stride=prefilter_stride, coordination_r0=coordination_r0,
+                      executor=executor)
     base = plan_tasks(source)
     note(f"pool: {len(pool)} descriptors; screening by autocorrelation at {lag:g} ps")
     screened = _screen(source, base, pool, timesteps, lag, lag_frames, screen_size, executor)

@@ -250,6 +250,15 @@ def _combine(values, cols, weights):
     return out
 
 
+def _standardized(x, center, scale):
+    """``(x - center) / scale`` of columns already selected, as ``FeaturePass.values``."""
+    if center is not None:
+        x = x - center
+    if scale is not None:
+        x = x / scale
+    return np.ascontiguousarray(x, dtype=np.float64)
+
+
 class CVReportPass(FeaturePass):
     """Held-out histograms, traces and lagged sums of the ranked CVs, in one pass.
 
@@ -291,7 +300,11 @@ class CVReportPass(FeaturePass):
 
     def map(self, leaf):
         n_cv = len(self.plans)
-        z = self.values(leaf.window_x if self.lags else leaf.x)
+        if self.lags:  # only the terms' columns of the window (the halo is long)
+            z = _standardized(leaf.window_x if self.columns is None
+                              else leaf.window_columns(self.columns), self.center, self.scale)
+        else:
+            z = self.values(leaf.x)
         cv = np.empty((z.shape[0], n_cv))
         for c, p in enumerate(self.plans):
             cv[:, c] = _combine(z, p.cols, p.w)

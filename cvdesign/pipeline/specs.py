@@ -126,8 +126,24 @@ def spec_document(source, pool, entry, params, checksums, seed):
     return Spec.from_dict(doc).to_dict()
 
 
-def input_checksums(source, inputs):
-    """Name, SHA-256 and states of every trajectory file a source reads."""
-    return [{"file": Path(p).name, "sha256": file_sha256(p),
-             "states": next(i["states"] for i in inputs if i["path"] == str(p))}
-            for p in source.files()]
+def input_checksums(source, inputs, executor=None):
+    """Name, SHA-256 and states of every trajectory file a source reads.
+
+    The files are hashed one task per file on `executor` (a
+    :mod:`cvdesign.parallel` executor; None: in this process, in order).
+    """
+    paths = [str(p) for p in source.files()]
+    if executor is None or getattr(executor, "in_process", False):
+        digests = [file_sha256(p) for p in paths]
+    else:
+        digests = [None] * len(paths)
+        for i, digest in executor.run(_sha256_task, None, paths):
+            digests[i] = digest
+    return [{"file": Path(p).name, "sha256": d,
+             "states": next(i["states"] for i in inputs if i["path"] == p)}
+            for p, d in zip(paths, digests)]
+
+
+def _sha256_task(context, path):
+    """One file's SHA-256, as an executor's task (module level: workers load it)."""
+    return file_sha256(path)

@@ -315,6 +315,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
     from ..parallel import using_executor
 
     with using_executor(executor) as executor:
+        executor.start()  # local workers start up while the pool is enumerated
         return _suggest(source, config, executor, progress)
 
 
@@ -332,7 +333,7 @@ def _suggest(source, config, executor, progress):
     say("building the candidate pool")
     pool = build_pool(source, selection=config.selection, kinds=config.kinds,
                       cutoff=config.cutoff_nm, stride=config.prefilter_stride,
-                      coordination_r0=config.coordination_r0_nm)
+                      coordination_r0=config.coordination_r0_nm, executor=executor)
     notes = list(pool.notes)
     base = plan_tasks(source)
     every = PoolFeaturizer(pool)
@@ -408,7 +409,7 @@ def _suggest(source, config, executor, progress):
               if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
     params = config.parameters(lag_ps, folds)
-    checksums = input_checksums(source, inputs)
+    checksums = input_checksums(source, inputs, executor=executor)
     ranking, specs = [], []
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, held.overlap), 1):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,

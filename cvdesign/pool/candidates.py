@@ -22,6 +22,8 @@ Candidates come from an atom selection:
   motion looks like.
 """
 
+import copy
+
 import mdtraj as md
 import networkx as nx
 import numpy as np
@@ -249,7 +251,8 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
     return Pool(out, topology, notes=notes)
 
 
-def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
+def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
+                    executor=None):
     """Keep a pair if its mean distance over some state is below `cutoff`.
 
     The means are taken over every `stride`-th frame, which keeps this pass
@@ -266,6 +269,9 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
         that state's own frames, so frame ranges and labels are respected).
     max_numbers : int, default=5000000
         Distances (frames x pairs) evaluated at once, which bounds memory.
+    executor : cvdesign.parallel.Executor, default=None
+        Where the reads run, one task per segment (the means are the same
+        bytes on every executor); None: in this process.
 
     Returns
     -------
@@ -287,15 +293,9 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000):
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = remap[pairs]
-
-    def values(sub, periodic):
-        block_pairs = max(1000, max_numbers // max(1, sub.n_frames))
-        return np.concatenate([
-            md.compute_distances(sub, local[lo:lo + block_pairs], periodic=periodic)
-            for lo in range(0, len(local), block_pairs)], axis=1)
-
-    means, n_frames = _strided_state_means(source, atoms, values, len(local), stride,
-                                           label="prefilter")
+    means, n_frames = _strided_state_means(source, atoms, _PairDistances(local, max_numbers),
+                                           len(local), stride, label="prefilter",
+                                           executor=executor)
     keep = (means < cutoff).any(axis=0)
     note = (
         f"distances: kept {int(keep.sum())} of {pairs.shape[0]} pairs with a mean below "
@@ -325,65 +325,159 @@ def _frames_read(source, step):
     return total
 
 
-def _strided_state_means(source, atoms, values, n_values, stride, label="prefilter"):
+class _PairDistances:
+    """``values(sub, periodic)``: distances of atom pairs (local indices), in blocks of
+    pairs within `max_numbers` numbers. Module level, so that worker processes load it."""
+
+    def __init__(self, local, max_numbers):
+        self.local, self.max_numbers = local, max_numbers
+
+    def __call__(self, sub, periodic):
+        block_pairs = max(1000, self.max_numbers // max(1, sub.n_frames))
+        return np.concatenate([
+            md.compute_distances(sub, self.local[lo:lo + block_pairs], periodic=periodic)
+            for lo in range(0, len(self.local), block_pairs)], axis=1)
+
+
+class _CenterDistances:
+    """``values(sub, periodic)``: distances of the centers of pairs of atom groups."""
+
+    def __init__(self, local, pairs, masses, max_numbers):
+        self.local, self.pairs, self.masses = local, pairs, masses
+        self.max_numbers = max_numbers
+
+    def __call__(self, sub, periodic):
+        pairs = self.pairs
+        box = sub.unitcell_vectors.astype(np.float64) if periodic else None
+        centers = group_centers(sub.xyz.astype(np.float64), self.local, box, masses=self.masses)
+        block = max(1000, self.max_numbers // max(1, sub.n_frames))
+        out = np.empty((sub.n_frames, len(pairs)))
+        for lo in range(0, len(pairs), block):
+            a, b = pairs[lo:lo + block, 0], pairs[lo:lo + block, 1]
+            delta = minimum_image(centers[:, b, :] - centers[:, a, :], box)
+            out[:, lo:lo + block] = np.sqrt(np.einsum("fpk,fpk->fp", delta, delta))
+        return out
+
+
+class _MeansContext:
+    """What every task of the prefilter shares (sent to each worker once)."""
+
+    def __init__(self, source, atoms, values, n_values, stride, strided, weights):
+        self.source, self.atoms, self.values = source, atoms, values
+        self.n_values, self.stride, self.strided = n_values, stride, strided
+        self.weights = weights
+
+
+class _SegmentTask:
+    """One segment of the prefilter, as a worker gets it."""
+
+    def __init__(self, number, segment, path):
+        self.number, self.segment, self.path = number, segment, path
+
+    def describe(self):
+        return f"task {self.number + 1}: the prefilter's read of {self.path!r}"
+
+
+def _segment_sums(ctx, task, tick=None):
+    """Per-state sums of ``values`` (and of weights or frames, and frames used) over the
+    strided frames of one segment: what :func:`_strided_state_means` merges, in segment
+    order. The arithmetic is that of one segment alone, whichever process runs it."""
+    source = copy.copy(ctx.source)
+    source.segments = [ctx.source.segments[task.segment]]
+    n_states = len(source.states)
+    sums = np.zeros((n_states, ctx.n_values))
+    counts = np.zeros(n_states)
+    used = np.zeros(n_states, dtype=np.int64)
+    weights = ctx.weights.get(task.segment)
+
+    def add(traj, frames, rows, s):
+        sub = md.Trajectory(traj.xyz[rows], None)  # coordinates only: no topology copy
+        periodic = traj.unitcell_vectors is not None
+        if periodic:  # lengths and angles, as traj[rows] keeps them
+            sub.unitcell_lengths = traj.unitcell_lengths[rows]
+            sub.unitcell_angles = traj.unitcell_angles[rows]
+        used[s] += sub.n_frames
+        if weights is None:
+            counts[s] += sub.n_frames
+            sums[s] += ctx.values(sub, periodic).sum(axis=0, dtype=np.float64)
+        else:
+            w = weights[frames[rows]]
+            counts[s] += w.sum()
+            sums[s] += w @ ctx.values(sub, periodic).astype(np.float64)
+
+    read = 0
+    if ctx.strided:
+        # every state's own frames are every stride-th frame of its files: read only
+        # those, summed in the groups of a full read (file frames [k c, (k + 1) c), c the
+        # chunk size), so the means are the same bytes as below
+        for chunk in source.iter_chunks(atom_indices=ctx.atoms, stride=ctx.stride):
+            group = chunk.frames // source.chunk_size
+            for g in np.unique(group):
+                add(chunk.trajectory, chunk.frames, np.flatnonzero(group == g),
+                    int(chunk.states[0]))
+            read += chunk.frames.size
+            if tick is not None:
+                tick(chunk.frames.size)
+    else:
+        seen = {}
+        for chunk in source.iter_chunks(atom_indices=ctx.atoms):
+            for s in np.unique(chunk.states):
+                rows = np.flatnonzero(chunk.states == s)
+                rank = seen.get(int(s), 0) + np.arange(rows.size)
+                seen[int(s)] = seen.get(int(s), 0) + rows.size
+                rows = rows[rank % ctx.stride == 0]
+                if rows.size:
+                    add(chunk.trajectory, chunk.frames, rows, int(s))
+            read += chunk.frames.size
+            if tick is not None:
+                tick(chunk.frames.size)
+    return sums, counts, used, read
+
+
+def _strided_state_means(source, atoms, values, n_values, stride, label="prefilter",
+                         executor=None):
     """Per-state means of ``values(sub_trajectory, periodic) -> (n_frames, n_values)`` over
     every `stride`-th frame of each state in each file, reading only `atoms`.
 
     The stride counts each state's own frames within each file, so frame ranges
     and label arrays are subsampled on their own frames, not on the file's grid.
     Frames of biased runs are weighted (:meth:`cvdesign.io.source.Source.reweighting`).
+    One task per segment (on `executor`, an object with ``run(fn, context, items)``
+    as in :mod:`cvdesign.parallel`; None: in this process); the segments' sums are
+    added in segment order, so the means are the same bytes on every executor.
     Returns (means of shape (n_states, n_values), number of frames used). The
     frames read advance a progress bar labelled `label` (:mod:`cvdesign.progress`).
     """
+    reweighting = source.reweighting()
+    strided = stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
+                                 for seg in source.segments)
+    ctx = _MeansContext(source, atoms, values, n_values, stride, strided,
+                        {} if reweighting is None else dict(reweighting.weights))
+    tasks = [_SegmentTask(i, i, str(seg.path)) for i, seg in enumerate(source.segments)]
     sums = np.zeros((source.n_states, n_values))
     counts = np.zeros(source.n_states)
     frames_used = np.zeros(source.n_states, dtype=np.int64)
-    reweighting = source.reweighting()
-    weights = {} if reweighting is None else reweighting.weights
-
-    def add(traj, rows, s, w=None):
-        sub = md.Trajectory(traj.xyz[rows], None)  # coordinates only: no topology copy
-        periodic = traj.unitcell_vectors is not None
-        if periodic:  # lengths and angles, as traj[rows] keeps them
-            sub.unitcell_lengths = traj.unitcell_lengths[rows]
-            sub.unitcell_angles = traj.unitcell_angles[rows]
-        frames_used[s] += sub.n_frames
-        if w is None:
-            counts[s] += sub.n_frames
-            sums[s] += values(sub, periodic).sum(axis=0, dtype=np.float64)
-        else:
-            counts[s] += w.sum()
-            sums[s] += w @ values(sub, periodic).astype(np.float64)
-
-    def weights_of(chunk, rows):
-        w = weights.get(chunk.segment_index)
-        return None if w is None else w[chunk.frames[rows]]
-
-    strided = stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
-                                 for seg in source.segments)
     with progress.bar(label, lambda: _frames_read(source, stride if strided else 1)) as shown:
-        if strided:
-            # every state's own frames are every stride-th frame of its files: read only
-            # those, summed in the groups of a full read (file frames [k c, (k + 1) c), c the
-            # chunk size), so the means are the same bytes as below
-            for chunk in source.iter_chunks(atom_indices=atoms, stride=stride):
-                group = chunk.frames // source.chunk_size
-                for g in np.unique(group):
-                    rows = np.flatnonzero(group == g)
-                    add(chunk.trajectory, rows, int(chunk.states[0]), weights_of(chunk, rows))
-                shown.update(chunk.frames.size)
+        if executor is None or getattr(executor, "in_process", False):
+            def results():
+                for task in tasks:
+                    yield task.number, _segment_sums(ctx, task, tick=shown.update)
+            ticked = True
         else:
-            seen = {}
-            for chunk in source.iter_chunks(atom_indices=atoms):
-                for s in np.unique(chunk.states):
-                    rows = np.flatnonzero(chunk.states == s)
-                    key = (chunk.segment_index, int(s))
-                    rank = seen.get(key, 0) + np.arange(rows.size)
-                    seen[key] = seen.get(key, 0) + rows.size
-                    rows = rows[rank % stride == 0]
-                    if rows.size:
-                        add(chunk.trajectory, rows, int(s), weights_of(chunk, rows))
-                shown.update(chunk.frames.size)
+            def results():
+                return executor.run(_segment_sums, ctx, tasks)
+            ticked = False
+        pending, nxt = {}, 0
+        for number, result in results():
+            if not ticked:
+                shown.update(result[3])
+            pending[number] = result
+            while nxt in pending:  # added in segment order, whatever order they arrive in
+                seg_sums, seg_counts, seg_used, _ = pending.pop(nxt)
+                sums += seg_sums
+                counts += seg_counts
+                frames_used += seg_used
+                nxt += 1
     empty = [source.states[s] for s in range(source.n_states) if frames_used[s] == 0]
     if empty:
         raise InputError(
@@ -429,7 +523,7 @@ def residue_groups(topology, atoms):
 
 
 def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
-                          max_numbers=5_000_000):
+                          max_numbers=5_000_000, executor=None):
     """Pairs of groups whose mean center distance is below `cutoff` in some state.
 
     Parameters
@@ -445,6 +539,8 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
         Per group, atom masses (dalton) for mass centers; None: geometric.
     max_numbers : int, default=5000000
         Center distances (frames x pairs) formed at once, which bounds memory.
+    executor : cvdesign.parallel.Executor, default=None
+        As in :func:`prefilter_pairs`.
 
     Returns
     -------
@@ -463,20 +559,9 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = [remap[np.asarray(g, dtype=np.intp)] for g in groups]
-
-    def values(sub, periodic):
-        box = sub.unitcell_vectors.astype(np.float64) if periodic else None
-        centers = group_centers(sub.xyz.astype(np.float64), local, box, masses=masses)
-        block = max(1000, max_numbers // max(1, sub.n_frames))
-        out = np.empty((sub.n_frames, len(pairs)))
-        for lo in range(0, len(pairs), block):
-            a, b = pairs[lo:lo + block, 0], pairs[lo:lo + block, 1]
-            delta = minimum_image(centers[:, b, :] - centers[:, a, :], box)
-            out[:, lo:lo + block] = np.sqrt(np.einsum("fpk,fpk->fp", delta, delta))
-        return out
-
-    means, n_frames = _strided_state_means(source, atoms, values, len(pairs), stride,
-                                           label="prefilter (residues)")
+    means, n_frames = _strided_state_means(
+        source, atoms, _CenterDistances(local, pairs, masses, max_numbers), len(pairs), stride,
+        label="prefilter (residues)", executor=executor)
     keep = (means < cutoff).any(axis=0)
     note = (f"group pairs: kept {int(keep.sum())} of {len(pairs)} with a mean center "
             f"distance below {cutoff:g} nm in at least one state (every {stride}th frame, "
@@ -485,7 +570,7 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
 
 
 def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, stride=10,
-               coordination_r0=COORDINATION_R0_NM):
+               coordination_r0=COORDINATION_R0_NM, executor=None):
     """Candidate pool for a source: select atoms, enumerate, prefilter distances.
 
     Parameters
@@ -504,6 +589,11 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
         Frame stride of the prefilter pass.
     coordination_r0 : float, default=COORDINATION_R0_NM
         Switching distance of the coordination numbers, nm.
+    executor : cvdesign.parallel.Executor, default=None
+        Where the prefilter's reads run (one task per segment; see
+        :func:`cvdesign.parallel.as_executor` to make one from a number of
+        processes or a Dask client); None: in this process. The pool is the
+        same on every executor.
 
     Returns
     -------
@@ -520,7 +610,8 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
         pairs, note = candidate_pairs(source.topology, atoms)
         if note:
             notes.append(note)
-        pairs, note = prefilter_pairs(pairs, source, cutoff=cutoff, stride=stride)
+        pairs, note = prefilter_pairs(pairs, source, cutoff=cutoff, stride=stride,
+                                      executor=executor)
         notes.append(note)
     group_pairs = None
     if any(k in kinds for k in GROUP_KINDS):
@@ -529,7 +620,7 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
             probe = Pool([], source.topology)
             group_pairs, note = prefilter_group_pairs(
                 [g for _, g in groups], source, cutoff=cutoff, stride=stride,
-                masses=[probe.group_masses(g) for _, g in groups])
+                masses=[probe.group_masses(g) for _, g in groups], executor=executor)
             notes.append(note)
     pool = candidate_pool(source.topology, atoms, kinds, pairs=pairs, group_pairs=group_pairs,
                           coordination_r0=coordination_r0)
