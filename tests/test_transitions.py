@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 from cvdesign import Source, suggest
-from cvdesign.passes import Featurizer, FoldMomentsPass, Folds, LaggedPass, plan_tasks, run_pass
+from cvdesign.passes import Featurizer, FoldMomentsPass, Folds, LaggedPass, run_pass
 from cvdesign.pipeline.transitions import (MIN_CROSSINGS_PER_FOLD, crossings,
                                            gather_transitions)
 from cvdesign.search import FoldMoments, fold_scores
