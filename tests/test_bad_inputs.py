@@ -374,6 +374,12 @@ CLI_CASES = [
                     "--temperature", "300", "--out", c.w("out"), "--quiet"], 2,
          r"bias-energy file '.*b\.txt' reaches 1e\+07 kJ/mol .* the rescaled time step "
          r"exp\(V/kT\) overflows"),
+    Case("suggest-runs-mixing-biased-and-unbiased-runs",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, c.open, "--lag", "1",
+                    "--bias-energy", c.closed, c.file("b.txt", _bias_text(2000)),
+                    "--temperature", "300", "--out", c.w("out"), "--quiet"], 2,
+         r"runs '.*open-1\.xtc' have no bias energies while other runs do: states proposed "
+         r"from runs need every run biased or none"),
     Case("suggest-bias-column-without-bias-energy",
          lambda c: c.suggest("--bias-column", "2"), 2,
          r"--bias-column goes with --bias-energy TRAJ FILE"),
@@ -792,6 +798,12 @@ API_CASES = [
              c.file("b.txt", _bias_text(2000, {5: "1e7"}))),
          InputError, r"bias-energy file '.*b\.txt' reaches 1e\+07 kJ/mol .* at frame 5: the "
                      r"rescaled time step exp\(V/kT\) overflows"),
+    Case("api-propose-states-of-biased-and-unbiased-runs",
+         lambda c: (lambda b: lambda: propose_states(
+             Source(c.top, temperature=300.0).add(c.closed, "runs", bias=b)
+             .add(c.open, "runs"), lag=1.0))(c.file("b.txt", _bias_text(2000))),
+         InputError, r"runs '.*open-1\.xtc' have no bias energies while other runs do: .* "
+                     r"or label the states and give them with --state / --labelled"),
     Case("api-funnel-from-source-with-a-file-name",
          lambda c: lambda: size_funnel_from_source("run.xtc", [0, 1, 2], [7]), InputError,
          r"size_funnel_from_source\(\) needs a Source of the bound-state trajectories, not str"),

@@ -249,8 +249,9 @@ def build_parser():
     _add_bias_options(p, "--state, --labelled or --runs",
                       "Its frames are reweighted by exp(V/kT) at --temperature, and its "
                       "lagged pairs taken in rescaled time dt*exp(V/kT). Repeat for each "
-                      "biased run; a state may also have unbiased runs (the two groups "
-                      "are combined in proportion to their effective sample sizes)")
+                      "biased run; a state given with --state may also have unbiased runs "
+                      "(the two groups are combined in proportion to their effective sample "
+                      "sizes); with --runs, every run must be biased or none")
     p.add_argument("--n-states", type=_at_least_two, default=None, metavar="N",
                    help="with --runs: the number of states to propose (default: 2 to 6, the "
                         "fewest that are all metastable among the best mean silhouettes)")

@@ -862,12 +862,33 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
                         max_slow=max_slow, seed=seed)
 
 
+def _refuse_mixed_runs(source):
+    """Refuse runs of which some are biased and some not.
+
+    Combining an unbiased group with a biased one (``cvdesign.io.bias``) assumes both
+    sample the same state; the runs given here span every state, and unbiased runs
+    usually sit in one basin, so the mix would pull the populations, kinetics and slow
+    coordinates toward that basin without a word.
+    """
+    plain = sorted({str(seg.path) for seg in source.segments if seg.bias is None})
+    if plain and len(plain) < len({str(seg.path) for seg in source.segments}):
+        shown = ", ".join(repr(p) for p in plain[:3]) + (" ..." if len(plain) > 3 else "")
+        raise InputError(
+            f"runs {shown} have no bias energies while other runs do: states proposed from "
+            "runs need every run biased or none (an unbiased run usually stays in one basin, "
+            "which the mix would over-weight). Give only biased runs (each with its "
+            "bias-energy file), or label the states and "
+            "give them with --state / --labelled (Source.add / add_labelled), where a state "
+            "may mix biased and unbiased runs")
+
+
 def _propose(source, executor, note, *, lag, n_states, max_states, selection, kinds, cutoff,
              prefilter_stride, coordination_r0, screen_size, max_slow, seed):
     timesteps = read_timesteps(source)
     lag_frames = _lag_frames(source, lag, timesteps)
     reweighting = source.reweighting()  # biased runs (None without)
     if reweighting is not None:  # refuse lagged pairs in rescaled time that cannot be formed
+        _refuse_mixed_runs(source)
         reweighting.check_rescaled_time(lag_frames)
     note("building the candidate pool")
     pool = build_pool(source, selection=selection, kinds=kinds, cutoff=cutoff,
