@@ -395,6 +395,12 @@ CLI_CASES = [
          lambda c: c.suggest("--labelled", c.closed, c.file("l.txt", "# x\nclosed\nopen now\n")),
          2, r"labels file '.*l\.txt', line 3: 'open now' is more than one word; give one state "
             r"name \(or '-' for a frame in no state\) per line"),
+    Case("suggest-labels-name-a-state-no-state-option-gives",
+         lambda c: c.suggest("--labelled", c.closed,
+                             c.file("l.txt", "Closed\n" * 1000 + "-\n" * 500 + "open\n" * 500)),
+         2, r"--labelled .*closed-1\.xtc .*l\.txt: labels file '.*l\.txt' names state\(s\) "
+            r"'Closed' that no --state gives \(the states are 'closed', 'open'\); use those "
+            r"names, exactly \(case counts\)"),
     Case("suggest-labels-name-no-state",
          lambda c: c.suggest("--labelled", c.closed, c.file("l.txt", "-\n-\n")), 2,
          r"labels file '.*l\.txt' names no state; give one state name \(or '-'\) per frame"),

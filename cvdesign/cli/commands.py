@@ -241,8 +241,9 @@ def build_parser():
                    help="a trajectory whose frames carry their own state, typically a biased "
                         "run that crossed between the states (with --bias-energy): LABELS "
                         "holds one line per frame of TRAJ, frame 0 first, the frame's state "
-                        "name or '-' for a frame between the states ('#' comments). Its "
-                        "labelled frames join their states; when its labels visit two or "
+                        "name (one of the --state names, when --state is given) or '-' for a "
+                        "frame between the states ('#' comments). Its labelled frames join "
+                        "their states; when its labels visit two or "
                         "more states, slowness is also measured along the whole run, "
                         "crossings included, which --objective both then ranks on. Repeat "
                         "for each such trajectory")
@@ -565,8 +566,17 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
             for f in files:
                 source.add(f, state=name, bias=bias_of.get(f),
                            bias_column=bias_column if f in bias_of else None)
+        named = [entry[0] for entry in states]
         for traj, label_file in labelled:
-            source.add_labelled(traj, _labels_for(traj, label_file), bias=bias_of.get(traj),
+            labels = _labels_for(traj, label_file)
+            unknown = sorted({x for x in labels if x is not None} - set(named))
+            if named and unknown:  # a typo would make a state of its own, without a word
+                raise InputError(f"--labelled {traj} {label_file}: labels file {label_file!r} "
+                                 f"names state(s) {', '.join(map(repr, unknown))} that no "
+                                 f"--state gives (the states are {', '.join(map(repr, named))});"
+                                 " use those names, exactly (case counts), or '-' between "
+                                 "states")
+            source.add_labelled(traj, labels, bias=bias_of.get(traj),
                                 bias_column=bias_column if traj in bias_of else None)
     exploration = None
     with _executor(args) as executor:
