@@ -184,6 +184,8 @@ def test_suggest_ranks_on_transition_slowness_and_says_so(toy):
     assert any(n.startswith("objective 'both' ranks on the transition slowness")
                for n in result.notes)
     assert "slowness_ranked_on" in result.ranking_csv().splitlines()[0]
+    # the held-out score's interval keeps the crossing runs' pairs fixed, and says so
+    assert sum("keep the crossing runs' lagged pairs fixed" in n for n in result.notes) == 1
 
 
 def test_too_few_crossings_fall_back_to_within_state_slowness_and_say_so(toy, tmp_path):

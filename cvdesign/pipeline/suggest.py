@@ -387,7 +387,7 @@ def _suggest(source, config, executor, progress):
         say(f"bootstrap ({config.n_bootstrap} replicates)")
         boot = bootstrap_ranked(held, fits, short, screening, priors, fm, config,
                                 lags is not None)
-        notes += _bootstrap_notes(boot, held, config)
+        notes += _bootstrap_notes(boot, held, config, fm)
         card_ci = card_interval_rows(held.card, held.card_desc, held.card_feat, pool,
                                      screening.center, priors, screening.unscored,
                                      config.n_bootstrap, config.seed)
@@ -882,7 +882,7 @@ def _box_notes(pool, diag, min_box):
     return out
 
 
-def _bootstrap_notes(boot, held, config):
+def _bootstrap_notes(boot, held, config, fm=None):
     if boot is None:
         return [f"uncertainties: none (blocks of {held.block_desc}: a state has fewer than "
                 "two, so a bootstrap would resample nothing); give more or longer runs per "
@@ -892,6 +892,13 @@ def _bootstrap_notes(boot, held, config):
            "percentile intervals"]
     if boot.get("selection_skipped"):
         out.append(boot["selection_skipped"])
+    if config.objective == "both" and fm is not None and fm.slowness == "transitions":
+        out.append("uncertainties: the intervals of the held-out score and the selection "
+                   "frequencies keep the crossing runs' lagged pairs fixed (only the states' "
+                   "blocks are resampled), so they leave out the noise of the transition "
+                   "slowness and are too narrow by that much; the transition columns' own "
+                   "intervals (heldout_autocorrelation_transitions_ci, from resampled "
+                   "sub-blocks of the crossing runs) show how large that noise is")
     return out
 
 
