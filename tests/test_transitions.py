@@ -184,8 +184,28 @@ def test_suggest_ranks_on_transition_slowness_and_says_so(toy):
     assert any(n.startswith("objective 'both' ranks on the transition slowness")
                for n in result.notes)
     assert "slowness_ranked_on" in result.ranking_csv().splitlines()[0]
-    # the held-out score's interval keeps the crossing runs' pairs fixed, and says so
-    assert sum("keep the crossing runs' lagged pairs fixed" in n for n in result.notes) == 1
+    # the refits behind the held-out score's interval resample the crossing runs too
+    assert sum("also resample the crossing runs' sub-blocks" in n for n in result.notes) == 1
+
+
+def test_refit_intervals_carry_the_noise_of_the_crossing_runs(toy, monkeypatch):
+    """The held-out score's interval with the crossing runs' sub-blocks resampled in the
+    refits, against the same bootstrap with them held fixed: the noise of the transition
+    slowness widens it (the summary says which was done)."""
+    import cvdesign.pipeline.suggest as pipeline
+
+    kwargs = dict(objective="both", lag=LAG_PS, n_bootstrap=20, max_terms=1, n_suggestions=2,
+                  kinds=("distance",), cutoff=5.0, n_folds=3, seed=1)
+    resampled = suggest(_source(toy), **kwargs)
+    real = pipeline.bootstrap_ranked
+    monkeypatch.setattr(pipeline, "bootstrap_ranked",
+                        lambda *a: real(*a[:8], None))  # crossing runs held fixed
+    fixed = suggest(_source(toy), **kwargs)
+    assert any("keep the crossing runs' lagged pairs fixed" in n for n in fixed.notes)
+    assert not any("keep the crossing runs' lagged pairs fixed" in n for n in resampled.notes)
+    width = [[r["heldout_score_ci"][1] - r["heldout_score_ci"][0] for r in res.ranking]
+             for res in (resampled, fixed)]
+    assert width[0][0] > width[1][0] > 0
 
 
 def test_too_few_crossings_fall_back_to_within_state_slowness_and_say_so(toy, tmp_path):

@@ -316,7 +316,8 @@ def heldout_overlap(counts):
     return np.mean([overlap_coefficient(counts[k]) for k in range(counts.shape[0])], axis=0)
 
 
-def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
+def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
+                     transit_blocks=None):
     """Confidence intervals of weights and scores, and how often terms are selected.
 
     Parameters
@@ -330,6 +331,14 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
     fm : FoldMoments
     config : SuggestConfig
     has_lag : bool
+    transit_blocks : list of list of list of LaggedMoments, optional
+        The crossing runs' standardized sub-blocks ``[run][fold][block]``
+        (:meth:`~cvdesign.pipeline.transitions.TransitionData.standardized_blocks`).
+        When the objective ranks on them (``fm.slowness == "transitions"``), the
+        refits resample them within each (run, fold) in the same replicates as the
+        states' blocks, so the held-out scores' intervals and the selection
+        frequencies carry their noise; a (run, fold) with a single sub-block stays
+        fixed.
 
     Returns
     -------
@@ -415,19 +424,32 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
         ranked_sets = [[cpos[short.index(g)] for g in f.gidx] for f in fits]
         n_terms_all = sum(len(m) for m in ranked_sets)
 
-        # the crossing runs' pairs (transition slowness) in the blocks' columns, not resampled
-        # here (their own bootstrap: cvdesign.pipeline.transitions.transition_intervals)
+        # the crossing runs' pairs (transition slowness) in the blocks' columns; when they
+        # rank, their sub-blocks are resampled within each (run, fold) in the same replicates
         cols = np.empty(len(where), dtype=np.intp)
         for i, p in where.items():
             cols[p] = i
         transit = None if fm.transitions is None else [[m.subset(cols) for m in row]
                                                        for row in fm.transitions]
+        t_keys, t_groups = [], []
+        if transit is not None and transit_blocks is not None and fm.slowness == "transitions":
+            for r, row in enumerate(transit_blocks):
+                for k, sub in enumerate(row):
+                    if len(sub) >= 2:
+                        t_keys.append((r, k))
+                        t_groups.append([m.subset(cols) for m in sub])
+        out["transitions_resampled"] = bool(t_keys)
 
         def select(merged):
             grid = [[merged[s * n_folds + k][0] for k in range(n_folds)] for s in range(n_states)]
             lag = ([[merged[s * n_folds + k][1] for k in range(n_folds)]
                     for s in range(n_states)] if has_lag else None)
-            boot_fm = FoldMoments(grid, priors, lag, transit,
+            boot_transit = transit
+            if t_keys:
+                boot_transit = [list(row) for row in transit]
+                for (r, k), m in zip(t_keys, merged[len(per_fold):]):
+                    boot_transit[r][k] = m
+            boot_fm = FoldMoments(grid, priors, lag, boot_transit,
                                   rank_transitions=fm.rank_transitions)
             combos = greedy_search(boot_fm, cand_groups, max_terms=max_terms, n_seeds=n_seeds,
                                    min_gain=min_gain, **search)
@@ -460,7 +482,7 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag):
 
         n_sel = min(n_bootstrap, SELECTION_REPLICATES)
         n_hit = n_terms_all + len(fits)
-        sel = block_bootstrap(per_fold, select, n_boot=n_sel, seed=seed + 1,
+        sel = block_bootstrap(per_fold + t_groups, select, n_boot=n_sel, seed=seed + 1,
                               label="bootstrap refits")
         ok = np.isfinite(sel.replicates[:, :n_hit]).all(axis=1)
         freq = sel.replicates[ok, :n_hit].mean(axis=0) if ok.any() else np.full(n_hit, np.nan)

@@ -385,8 +385,10 @@ def _suggest(source, config, executor, progress):
     boot = card_ci = None
     if config.n_bootstrap:
         say(f"bootstrap ({config.n_bootstrap} replicates)")
-        boot = bootstrap_ranked(held, fits, short, screening, priors, fm, config,
-                                lags is not None)
+        boot = bootstrap_ranked(
+            held, fits, short, screening, priors, fm, config, lags is not None,
+            None if transit is None else transit.standardized_blocks(
+                screening.center[screening.features], screening.scale[screening.features]))
         notes += _bootstrap_notes(boot, held, config, fm)
         card_ci = card_interval_rows(held.card, held.card_desc, held.card_feat, pool,
                                      screening.center, priors, screening.unscored,
@@ -893,12 +895,17 @@ def _bootstrap_notes(boot, held, config, fm=None):
     if boot.get("selection_skipped"):
         out.append(boot["selection_skipped"])
     if config.objective == "both" and fm is not None and fm.slowness == "transitions":
-        out.append("uncertainties: the intervals of the held-out score and the selection "
-                   "frequencies keep the crossing runs' lagged pairs fixed (only the states' "
-                   "blocks are resampled), so they leave out the noise of the transition "
-                   "slowness and are too narrow by that much; the transition columns' own "
-                   "intervals (heldout_autocorrelation_transitions_ci, from resampled "
-                   "sub-blocks of the crossing runs) show how large that noise is")
+        if boot.get("transitions_resampled"):
+            out.append("uncertainties: the refits behind the held-out score's interval and "
+                       "the selection frequencies also resample the crossing runs' sub-blocks "
+                       "within each run and held-out fold, so they carry the noise of the "
+                       "transition slowness")
+        elif "combos" in boot and not boot.get("selection_skipped"):
+            out.append("uncertainties: the intervals of the held-out score and the selection "
+                       "frequencies keep the crossing runs' lagged pairs fixed (each has a "
+                       "single sub-block per held-out fold: nothing to resample), so they "
+                       "leave out the noise of the transition slowness and are too narrow by "
+                       "that much; give longer crossing runs")
     return out
 
 
