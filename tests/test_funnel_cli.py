@@ -105,9 +105,11 @@ def test_funnel_command_warns_when_the_funnel_reaches_beyond_half_the_box(tmp_pa
     data = write_host_guest(tmp_path / "hg", n_runs=1, n_frames=60, box_nm=4.0)
     out = tmp_path / "f.json"
     assert _run(data, out) == 0
-    text = capsys.readouterr().out
-    assert "warning: the funnel reaches" in text
+    captured = capsys.readouterr()
+    text = captured.err  # warnings go to standard error, results to standard output
+    assert "cvdesign funnel: warning: the funnel reaches" in text
     assert "beyond half the smallest box height of the bound frames (2.000 nm)" in text
+    assert "warning" not in captured.out
     sizing = json.loads(out.read_text())["hints"]["funnel_sizing"]
     assert any("beyond half the smallest box height" in w for w in sizing["warnings"])
     assert any(r.startswith("WARNING: the funnel reaches") for r in sizing["reasoning"])

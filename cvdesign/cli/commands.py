@@ -1134,8 +1134,8 @@ def _cmd_funnel(args):
           "(restrained or aligned) during the biased run")
     for line in result["reasoning"]:
         print(f"  - {line}")
-    for line in result["warnings"]:
-        print(f"warning: {line}")
+    for line in result["warnings"]:  # on standard error, as every command's warnings
+        _log.warning("%s", line)
     if args.plot:
         print(f"wrote {args.plot}")
     print(f"wrote {args.out}")
