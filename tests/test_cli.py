@@ -204,3 +204,35 @@ def test_apply_against_another_topology_names_first_mismatch(demo_files, demo_re
     t2.save_pdb(str(other2))
     _fails(["apply", str(spec_path), "--topology", str(other2), states["closed"][0]], capsys,
            "11 atoms")
+
+
+def _three_atoms_with_two_coincident(tmp_path):
+    """A 3-atom PDB whose first two atoms coincide (their angle is undefined) and a spec of
+    that angle."""
+    from cvdesign import Spec
+
+    top = md.Topology()
+    residue = top.add_residue("LIG", top.add_chain())
+    for name in ("C1", "C2", "C3"):
+        top.add_atom(name, md.element.carbon, residue)
+    xyz = np.array([[[0.0, 0.0, 0.0], [0.0, 0.0, 0.0], [0.3, 0.1, 0.0]]], dtype=np.float32)
+    pdb = tmp_path / "lig.pdb"
+    md.Trajectory(xyz, top).save_pdb(str(pdb))
+    spec = Spec(name="cv-01", topology=top,
+                descriptors=[{"id": "a", "kind": "angle", "atoms": [0, 1, 2]}],
+                terms=[{"descriptor": "a", "transform": "identity", "center": 0.0,
+                        "scale": 1.0, "weight": 1.0}])
+    path = tmp_path / "cv.json"
+    path.write_text(spec.to_json())
+    return pdb, path
+
+
+def test_geometry_warnings_go_through_the_command_s_log_on_stderr(tmp_path, capsys):
+    pdb, spec = _three_atoms_with_two_coincident(tmp_path)
+    assert main(["apply", str(spec), "--topology", str(pdb), str(pdb)]) == 0
+    captured = capsys.readouterr()
+    assert ("cvdesign apply: warning: angles: 1 of 1 values are undefined (an arm has zero "
+            "length); they were set to pi/2") in captured.err
+    assert "GeometryWarning" not in captured.err  # not Python's file:line form
+    assert main(["-q", "apply", str(spec), "--topology", str(pdb), str(pdb)]) == 0
+    assert "warning" not in capsys.readouterr().err  # -q hides warnings

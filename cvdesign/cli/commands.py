@@ -26,6 +26,7 @@ import logging
 import math
 import os
 import sys
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -490,11 +491,32 @@ def _reporting(args):
     logger.addHandler(handler)
     logger.setLevel(level)
     try:
-        with show_progress(sys.stderr, enabled=None if not args.quiet else False):
+        with show_progress(sys.stderr, enabled=None if not args.quiet else False), \
+                _geometry_warnings_logged():
             yield
     finally:
         logger.removeHandler(handler)
         logger.setLevel(before)
+
+
+@contextlib.contextmanager
+def _geometry_warnings_logged():
+    """The geometry code's warnings (undefined angles, dihedrals, gradients) shown through
+    the ``cvdesign`` logger, as the command's other warnings (``-q`` hides them), instead of
+    Python's ``file:line: GeometryWarning: ...`` lines; other warnings as before."""
+    from ..geometry import GeometryWarning
+
+    with warnings.catch_warnings():
+        shown = warnings.showwarning
+
+        def show(message, category, filename, lineno, file=None, line=None):
+            if issubclass(category, GeometryWarning):
+                _log.warning("%s", message)
+            else:
+                shown(message, category, filename, lineno, file, line)
+
+        warnings.showwarning = show
+        yield
 
 
 def _executor(args):
