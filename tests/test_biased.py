@@ -761,7 +761,7 @@ def test_states_proposed_from_biased_runs_are_the_two_wells_with_their_exact_pop
     population of each matches the exact population of exp(-U/kT) on its side of the
     threshold, by quadrature (scipy.integrate.quad), within four jackknife standard errors
     over the 128 independent runs (Efron, The Jackknife, the Bootstrap and Other Resampling
-    Plans, SIAM, 1982); the unweighted frame
+    Plans, SIAM, 1982, from memory); the unweighted frame
     fraction is far off. Rescaled time (McCarty and Parrinello, J. Chem. Phys. 2017) and its
     caveat (Voter, J. Chem. Phys. 1997) are in the notes."""
     from scipy.integrate import quad

@@ -51,9 +51,10 @@ n_h``, so the state's weights still average 1. Why this rule: the variance
 of a self-normalized importance-sampling estimate is about ``sigma^2 / n_g``
 (Kish, *Survey Sampling*, Wiley, 1965; Kong, Tech. Rep. 348, Dept. of
 Statistics, University of Chicago, 1992; Liu, *Monte Carlo Strategies in
-Scientific Computing*, Springer, 2001), so these ``lambda_g`` are the
-inverse-variance (minimum-variance) weights of independent estimates of one
-quantity (Cochran, Biometrics 10, 101, 1954); equivalently, of all group scalings they give
+Scientific Computing*, Springer, 2001; the Kong and Liu references from memory), so
+these ``lambda_g`` are the inverse-variance (minimum-variance) weights of
+independent estimates of one quantity (Cochran, Biometrics 10, 101, 1954, from
+memory); equivalently, of all group scalings they give
 the largest Kish effective sample size of the state's weights, which is then
 the sum of the groups' (``sum_g n_g``). The estimator a multistate method
 such as MBAR (Shirts and Chodera, J. Chem. Phys. 129, 124105, 2008) would
