@@ -535,10 +535,10 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
 
     biases = getattr(args, "bias_energy", None) or []
     _check_bias_temperature(args, biases)
-    if args.temperature is None:
-        args.temperature = HINTS_TEMPERATURE_K
+    # the hints' temperature; the biased runs' own (required above) when they are given
+    temperature = HINTS_TEMPERATURE_K if args.temperature is None else args.temperature
     # refuse an impossible temperature or MD step before reading anything; warn once
-    for warning in check_run_conditions(args.temperature, args.md_step_fs):
+    for warning in check_run_conditions(temperature, args.md_step_fs):
         _log.warning("%s", warning)
     bias_column = getattr(args, "bias_column", None)
     labelled = getattr(args, "labelled", None) or []
@@ -561,7 +561,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
                              "looked for")
         source = Source(topology, timestep=args.frame_step_ps,
-                        temperature=args.temperature if biases else None)
+                        temperature=temperature if biases else None)
         bias_of = _bias_files(biases, list(runs), given_with="--runs")
         for f in runs:
             source.add(f, state="runs", bias=bias_of.get(f),
@@ -577,7 +577,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
             raise InputError(f"state {dup[0]!r} is given twice; give each state once with all "
                              "of its files")
         source = Source(topology, timestep=args.frame_step_ps,
-                        temperature=args.temperature if biases else None)
+                        temperature=temperature if biases else None)
         bias_of = _bias_files(biases, [f for entry in states for f in entry[1:]]
                               + [t for t, _ in labelled])
         for entry in states:
@@ -618,7 +618,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                          coordination_r0=args.coordination_r0, max_terms=args.max_terms,
                          n_suggestions=args.suggestions, n_folds=args.folds,
                          n_bootstrap=args.bootstrap, seed=args.seed,
-                         temperature=args.temperature, md_step_fs=args.md_step_fs,
+                         temperature=temperature, md_step_fs=args.md_step_fs,
                          executor=executor)
     result.exploration = exploration
     for note in result.notes:  # the fallback from the transition slowness (also in summary.md)
