@@ -16,19 +16,42 @@ logger (:mod:`logging`, silent until the application configures logging, e.g.
 inside :func:`show_progress`.
 """
 
+import importlib as _importlib
 import logging as _logging
 
 from ._version import __version__
 from .errors import CVDesignError, InputError, SpecError, TopologyMismatchError
-from .fit import HLDA, LDA, TICA, timescales_from_eigenvalues, vamp2_score
-from .io.source import Source
-from .pipeline.explore import Exploration, propose_states
-from .pipeline.suggest import Suggestions, suggest
-from .pool import Descriptor, Pool, build_pool
-from .progress import show_progress
-from .spec import Spec, load_spec
-from .stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LagAccumulator, LaggedMoments,
-                            Moments)
+
+#: Public names and the module each comes from, imported on first use (PEP 562), so that
+#: ``import cvdesign.passes`` in a worker process does not pull in scikit-learn, pandas and
+#: the pipeline (about 0.9 s of imports).
+_LAZY = {
+    "LDA": "fit", "HLDA": "fit", "TICA": "fit", "timescales_from_eigenvalues": "fit",
+    "vamp2_score": "fit",
+    "Source": "io.source",
+    "Exploration": "pipeline.explore", "propose_states": "pipeline.explore",
+    "Suggestions": "pipeline.suggest", "suggest": "pipeline.suggest",
+    "Descriptor": "pool", "Pool": "pool", "build_pool": "pool",
+    "show_progress": "progress",
+    "Spec": "spec", "load_spec": "spec",
+    "Moments": "stats.moments", "DiagonalMoments": "stats.moments",
+    "LaggedMoments": "stats.moments", "DiagonalLaggedMoments": "stats.moments",
+    "LagAccumulator": "stats.moments",
+}
+
+
+def __getattr__(name):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    value = getattr(_importlib.import_module(f"{__name__}.{module}"), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY))
+
 
 __all__ = [
     "__version__",

@@ -13,7 +13,7 @@ import pytest
 from cvdesign import Source, suggest
 from cvdesign.io.demo import demo_data_dir
 from cvdesign.parallel import Executor
-from cvdesign.passes import Task, run_pass
+from cvdesign.passes import Task, engine, run_pass
 
 
 @pytest.fixture(scope="session", autouse=True)
@@ -370,3 +370,14 @@ class ProgressRecorder:
 def progress_recorder():
     """A fresh :class:`ProgressRecorder`; activate it with ``using_display(recorder)``."""
     return ProgressRecorder()
+
+
+@pytest.fixture(scope="module")
+def short_leaves():
+    """Leaves of at most :data:`~cvdesign.passes.LEAF_FRAMES` (256) frames whatever the number
+    of features, for this module: the small test inputs then span several leaves per file,
+    so that the byte-identity checks across task splits and executors have leaf boundaries
+    to cross (few features otherwise get leaves of up to 4096 frames, one per test file)."""
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(engine, "MAX_LEAF_FRAMES", engine.LEAF_FRAMES)
+        yield

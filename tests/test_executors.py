@@ -2,7 +2,10 @@
 Dask; a clear error when the scheduler cannot be reached or a worker dies."""
 
 import os
+import pickle
 import socket
+import subprocess
+import sys
 import tempfile
 from pathlib import Path
 
@@ -10,9 +13,11 @@ import mdtraj as md
 import numpy as np
 import pytest
 
-from cvdesign import InputError, Source
+import cvdesign
+from cvdesign import InputError, Source, suggest
 from cvdesign.errors import SchedulerUnreachableError, WorkerLostError
 from cvdesign.parallel import DaskExecutor, ProcessExecutor, SerialExecutor, as_executor
+from cvdesign.parallel.executors import WORKER_PRELOAD, Executor
 from cvdesign.passes import (BlockPass, CardPass, CoordinateFeaturizer, Featurizer,
                              FoldMomentsPass, Folds, HistogramPass, LaggedPass, LagGridPass,
                              PoolFeaturizer, ProjectionRangePass, ScreeningPass, leaf_frames_for,
@@ -75,6 +80,11 @@ def _passes(src):
                   ProjectionRangePass(featurizer,
                                       [(np.arange(cols.size), np.linspace(-1, 1, cols.size)),
                                        ([2, 0], [0.5, 3.0])], columns=cols, center=shift[cols]))
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _short_leaves(short_leaves):
+    """Several leaves per test file (see conftest's ``short_leaves``)."""
 
 
 @pytest.fixture(autouse=True)
@@ -208,14 +218,89 @@ def test_started_local_workers_run_the_next_tasks_and_stop_at_close(demo_referen
                                                                     assert_same):
     src, plan, passes, reference = demo_reference
     ex = ProcessExecutor(2)
-    ex.start()  # returns at once; the workers import cvdesign meanwhile
-    started = ex._pool
-    assert started is not None
+    ex.start()  # returns at once: a thread starts the workers (the fork server's imports)
+    assert ex._starting is not None
+    ex.start()  # a second call starts nothing more
     assert_same(reference, run_pass(passes, src, executor=ex, tasks=plan.split(n_tasks=4)))
-    assert ex._pool is started  # the run used the started workers
+    started = ex._pool
+    assert started is not None and ex._starting is None  # the run took the started pool
+    assert_same(reference, run_pass(passes, src, executor=ex, tasks=plan.split(n_tasks=3)))
+    assert ex._pool is started  # the next run used the same workers
     ex.close()
     assert ex._pool is None
+    closed = ProcessExecutor(2)
+    closed.start()
+    closed.close()  # closing while the workers start waits for them, then stops them
+    assert closed._pool is None and closed._starting is None
     SerialExecutor().start()  # nothing to start
+
+
+class _PicklingExecutor(Executor):
+    """Runs every task in this process on an unpickled copy of the context, keeping the
+    pickled contexts: what local worker processes would receive."""
+
+    n_workers = 2
+
+    def __init__(self):
+        self.contexts = []
+
+    def run(self, fn, context, items):
+        data = pickle.dumps(context, protocol=pickle.HIGHEST_PROTOCOL)
+        self.contexts.append(data)
+        for i, item in enumerate(items):
+            yield i, fn(pickle.loads(data), item)
+
+
+def _fresh_python(script):
+    """Standard output of `script` run by a new interpreter (from the repository's root)."""
+    return subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          check=True, cwd=str(Path(__file__).resolve().parents[1])).stdout
+
+
+def test_workers_unpickle_every_task_of_suggest_from_the_preloaded_modules(demo_files,
+                                                                          tmp_path):
+    """A worker forked by the fork server has WORKER_PRELOAD's modules; a task whose context
+    needs another module of cvdesign (or scikit-learn, pandas) would import it in every
+    worker on the way (about half a second each with the pipeline's imports)."""
+    top, states = demo_files
+    src = Source.from_states(top, {k: v[:1] for k, v in states.items()})
+    ex = _PicklingExecutor()
+    suggest(src, n_bootstrap=5, max_terms=2, n_suggestions=2, executor=ex)
+    assert len(ex.contexts) >= 4  # prefilter, screening, statistics, held-out, checksums
+    paths = []
+    for k, data in enumerate(ex.contexts):
+        path = tmp_path / f"context-{k}.pkl"
+        path.write_bytes(data)
+        paths.append(str(path))
+    preload = [m for m in WORKER_PRELOAD if m != "__main__"]
+    script = (
+        "import importlib, pickle, sys\n"
+        f"for m in {preload!r}:\n"
+        "    importlib.import_module(m)\n"
+        "before = set(sys.modules)\n"
+        f"for p in {paths!r}:\n"
+        "    pickle.loads(open(p, 'rb').read())\n"
+        "new = sorted(m for m in set(sys.modules) - before\n"
+        "             if m.split('.')[0] in ('cvdesign', 'sklearn', 'pandas'))\n"
+        "print(repr(new))\n")
+    out = _fresh_python(script)
+    assert out.strip() == "[]", out
+
+
+def test_importing_cvdesign_and_its_pass_engine_does_not_import_the_pipeline():
+    """``import cvdesign`` is lazy (its public names load on first use), so a worker that
+    needs the pass engine does not pull in scikit-learn, pandas or the pipeline."""
+    script = ("import sys, cvdesign, cvdesign.passes, cvdesign.pool\n"
+              "heavy = sorted(m for m in ('sklearn', 'pandas', 'cvdesign.pipeline.suggest',\n"
+              "                           'cvdesign.fit') if m in sys.modules)\n"
+              "print(repr(heavy))\n"
+              "from cvdesign import suggest, LDA, Source, Spec\n"
+              "print(all(hasattr(cvdesign, n) for n in cvdesign.__all__),\n"
+              "      'suggest' in dir(cvdesign), 'sklearn' in sys.modules)\n")
+    out = _fresh_python(script)
+    assert out.split("\n")[:2] == ["[]", "True True True"], out
+    with pytest.raises(AttributeError, match="module 'cvdesign' has no attribute 'nothing'"):
+        getattr(cvdesign, "nothing")
 
 
 def _free_port():

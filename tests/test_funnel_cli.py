@@ -134,7 +134,7 @@ def test_funnel_command_replaces_its_own_output_with_force(host_guest, tmp_path,
 
 
 def test_funnel_command_writes_identical_bytes_serially_with_two_workers_and_on_dask(
-        tumbled, threaded_dask, tmp_path, capsys):
+        short_leaves, tumbled, threaded_dask, tmp_path, capsys):
     # the tumbled runs: turned, moved and wrapped frames in a periodic box
     outs, texts, reports, datas = [], [], [], []
     for name, extra in (("serial", ()), ("workers", ("--workers", "2")),

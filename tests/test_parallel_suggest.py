@@ -16,6 +16,11 @@ from cvdesign.progress import using_display
 SETTINGS = dict(n_bootstrap=10, max_terms=2, n_suggestions=3, lag=2.0, objective="both")
 
 
+@pytest.fixture(scope="module", autouse=True)
+def _short_leaves(short_leaves):
+    """Several leaves per test file (see conftest's ``short_leaves``)."""
+
+
 def _source(demo_files):
     top, states = demo_files
     src = Source(top)

@@ -78,7 +78,7 @@ def small(demo_files):
     pool = Pool([Descriptor("distance", (0, 7), "dist C1-C8"),
                  Descriptor("dihedral", (2, 3, 4, 5), "dihedral C3-C4-C5-C6")], src.topology)
     feat = PoolFeaturizer(pool)
-    plan = plan_tasks(src).for_features(feat.n_features)
+    plan = plan_tasks(src, leaf_frames=64)  # several leaves per file
     folds = Folds.plan(plan.layouts, 4)
     rng = np.random.default_rng(11)
     center = np.array([0.6, 0.1, 0.2])
@@ -152,6 +152,75 @@ def test_report_pass_equals_a_direct_computation(small):
     for lag, m in zip(small["lags"], got["lagged"]):
         assert m.n_pairs == 4 * (700 - lag)
         np.testing.assert_allclose(m.autocorrelation(), rho[lag], rtol=1e-9)
+
+
+def _biased(small, tmp_path):
+    """`small` with bias energies (kJ/mol, seeded) on its first and third segments, so that
+    each state has a biased and an unbiased run."""
+    rng = np.random.default_rng(21)
+    src = Source(small["top"], temperature=300.0)
+    for si, seg in enumerate(small["src"].segments):
+        bias = None
+        if si in (0, 2):
+            n_file = md.load(str(seg.path), top=small["top"]).n_frames
+            bias = tmp_path / f"bias-{si}.txt"
+            energies = rng.normal(0, 3.0, n_file)  # kJ/mol
+            bias.write_text("bias\n" + "".join(f"{float(v)!r}\n" for v in energies))
+        src.add(seg.path, seg.state, frames=(seg.start, seg.stop), bias=bias)
+    plan = plan_tasks(src, leaf_frames=64)
+    return src, plan
+
+
+def test_report_pass_weighs_the_frames_and_pairs_of_biased_runs(small, tmp_path):
+    """A biased run's frames count with their weights in the held-out histograms, and its
+    lagged pairs (rescaled time) weigh as their first frame, as in the ranking's slowness;
+    checked against a direct computation on whole trajectories, and the per-state sums of
+    the histograms equal the states' frame counts (the weights average 1 in each state)."""
+    src, plan = _biased(small, tmp_path)
+    feat, plans = small["feat"], small["plans"]
+    make = lambda: CVReportPass(feat, plans, small["folds"], small["strides"],  # noqa: E731
+                                small["lags"], [0.1, -0.2], columns=np.arange(3),
+                                center=small["center"], scale=small["scale"])
+    got = run_pass(make(), src, tasks=plan)
+    hist = [np.zeros((2, p.n_bins + 2)) for p in plans]
+    sums = {lag: [] for lag in small["lags"]}
+    for lay, seg in zip(plan.layouts, src.segments):
+        frames = np.arange(lay.lo, lay.hi)
+        traj = md.load(str(seg.path), top=small["top"])[frames]
+        z = (feat(traj.atom_slice(feat.atom_indices)) - small["center"]) / small["scale"]
+        w = np.ones(frames.size) if lay.weight is None else lay.weights_of(frames)
+        keys = frame_keys(lay, frames, folds=small["folds"])
+        cv = np.stack([z[:, p.cols] @ p.w for p in plans], axis=1)
+        for c, p in enumerate(plans):
+            for k in range(small["folds"].n_folds):
+                a, b = p.maps[k]
+                sel = keys.fold == k
+                u = a * (z[sel][:, p.cols] @ p.fold_w[k]) + b
+                hist[c][lay.state, 1:-1] += np.histogram(u, p.edges, weights=w[sel])[0]
+                hist[c][lay.state, 0] += w[sel][u < p.edges[0]].sum()
+                hist[c][lay.state, -1] += w[sel][u > p.edges[-1]].sum()
+        for lag in small["lags"]:
+            if lay.clock is None:
+                t = np.arange(frames.size - lag)
+                u = t + lag
+            else:
+                partner = lay.partners(frames, lag)
+                t = np.flatnonzero(partner >= 0)
+                u = partner[t] - lay.lo
+            sums[lag].append((w[t], cv[t], cv[u]))
+    for g, h in zip(got["hist"], hist):
+        np.testing.assert_allclose(g, h, rtol=1e-12, atol=1e-9)
+        np.testing.assert_allclose(g.sum(axis=1), [2 * 700, 2 * 700], rtol=1e-12)
+    assert any(not np.allclose(g, np.round(g)) for g in got["hist"])  # weights, not counts
+    for lag, m in zip(small["lags"], got["lagged"]):
+        w = np.concatenate([a for a, _, _ in sums[lag]])
+        x = np.concatenate([b for _, b, _ in sums[lag]])
+        y = np.concatenate([c for _, _, c in sums[lag]])
+        mean = 0.5 * (w @ x + w @ y) / w.sum()
+        var0 = 0.5 * (w @ (x - mean) ** 2 + w @ (y - mean) ** 2) / w.sum()
+        rho = (w @ ((x - mean) * (y - mean))) / w.sum() / var0
+        assert m.n_pairs == w.size and m.count == pytest.approx(w.sum(), rel=1e-12)
+        np.testing.assert_allclose(m.autocorrelation(), rho, rtol=1e-9)
 
 
 def test_report_pass_gives_the_same_bytes_for_any_split_chunk_size_and_order(

@@ -266,7 +266,7 @@ def test_cli_labelled_biased_runs_rank_on_transition_slowness(toy, tmp_path, cap
     assert "along the runs that cross between the states" in report
 
 
-def test_suggest_with_crossing_runs_gives_the_same_bytes_on_two_processes(toy):
+def test_suggest_with_crossing_runs_gives_the_same_bytes_on_two_processes(short_leaves, toy):
     kwargs = dict(objective="both", lag=LAG_PS, n_bootstrap=5, max_terms=1, n_suggestions=2,
                   kinds=("distance",), cutoff=5.0, n_folds=3, seed=1)
     serial = suggest(_source(toy), **kwargs)

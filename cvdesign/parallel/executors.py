@@ -10,7 +10,7 @@ featurizer) reaches each worker once per run, not once per task.
   imports dask);
 * :class:`ProcessExecutor` -- local worker processes
   (:class:`concurrent.futures.ProcessPoolExecutor`, forked by a fork server that
-  imported cvdesign once, where the platform has one, otherwise ``spawn``);
+  imported the passes once, where the platform has one, otherwise ``spawn``);
 * :class:`DaskExecutor` -- a Dask cluster (``dask.distributed``; a
   :class:`~dask.distributed.Client` or a scheduler address), imported only
   when this executor is made.
@@ -31,6 +31,7 @@ import multiprocessing
 import os
 import pickle
 import tempfile
+import threading
 import time
 
 from ..errors import ExecutorError, InputError, SchedulerUnreachableError, WorkerLostError
@@ -40,9 +41,13 @@ __all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "as_
 
 
 #: Modules the fork server imports once, so that every worker it forks starts with them
-#: instead of importing cvdesign afresh (about 1.6 s of CPU per worker, measured on the
-#: 2-core machine); the workers' tasks need no more than these.
-WORKER_PRELOAD = ("cvdesign", "cvdesign.passes", "cvdesign.pool", "cvdesign.parallel.executors")
+#: instead of importing them afresh: what the tasks of ``suggest`` and ``funnel`` unpickle
+#: (about 0.4 s of CPU, measured on the 2-core machine), and the main module, which each
+#: worker would otherwise run again (Python's own default). ``propose_states``'s passes
+#: (with scikit-learn) are imported by each worker when it first meets them.
+WORKER_PRELOAD = ("__main__", "cvdesign.passes", "cvdesign.pool", "cvdesign.parallel.executors",
+                  "cvdesign.pipeline.timing", "cvdesign.pipeline.report_data",
+                  "cvdesign.pipeline.specs", "cvdesign.bias.funnel")
 
 
 def default_start_method():
@@ -153,15 +158,15 @@ class ProcessExecutor(Executor):
         Worker processes.
     start_method : {'forkserver', 'spawn', 'fork'} or None, default=None
         How workers start; None is :func:`default_start_method` (``forkserver``
-        where the platform has it: the server imports cvdesign once and each
-        worker is forked from it; ``spawn`` imports cvdesign afresh in each
-        worker, about 1.6 s of CPU). The results are the same bytes whichever
-        is used.
+        where the platform has it: the server imports :data:`WORKER_PRELOAD`
+        once and each worker is forked from it; ``spawn`` imports them afresh in
+        each worker). The results are the same bytes whichever is used.
 
     Notes
     -----
-    The worker processes start on the first run and stay for the next runs
-    until :meth:`close` (or the end of a ``with`` block). If a worker dies
+    The worker processes start on :meth:`start` (in the background) or on the
+    first run, and stay for the next runs until :meth:`close` (or the end of a
+    ``with`` block). If a worker dies
     (killed, out of memory) the run stops with a
     :class:`~cvdesign.errors.WorkerLostError` and the pool is discarded.
 
@@ -179,21 +184,54 @@ class ProcessExecutor(Executor):
         self.n_workers = n_workers
         self.start_method = default_start_method() if start_method is None else start_method
         self._pool = None
+        self._starting = None  # the thread of start(), until a run or close() joins it
+
+    def _make_pool(self):
+        ctx = multiprocessing.get_context(self.start_method)
+        if self.start_method == "forkserver":  # no effect once the server runs
+            ctx.set_forkserver_preload(list(WORKER_PRELOAD))
+        return concurrent.futures.ProcessPoolExecutor(self.n_workers, mp_context=ctx)
+
+    def _join_start(self):
+        """Wait for :meth:`start`'s thread; its pool, or None when it failed (the next
+        :meth:`_get_pool` then starts afresh, raising what is wrong)."""
+        thread, self._starting = self._starting, None
+        if thread is not None:
+            thread.join()
+            self._pool = thread.pool
+        return self._pool
 
     def _get_pool(self):
-        if self._pool is None:
-            ctx = multiprocessing.get_context(self.start_method)
-            if self.start_method == "forkserver":  # no effect once the server runs
-                ctx.set_forkserver_preload(list(WORKER_PRELOAD))
-            self._pool = concurrent.futures.ProcessPoolExecutor(self.n_workers, mp_context=ctx)
+        if self._pool is None and self._join_start() is None:
+            self._pool = self._make_pool()
         return self._pool
 
     def start(self):
-        """Start the worker processes now, without waiting: each imports cvdesign (about a
-        second) while this process goes on, instead of when the first tasks come."""
-        pool = self._get_pool()
-        for _ in range(self.n_workers):
-            pool.submit(_ready)
+        """Start the worker processes in the background and return at once.
+
+        The fork server imports :data:`WORKER_PRELOAD` (and the workers start)
+        while this process goes on, instead of when the first tasks come:
+        starting a pool waits for the server's imports, so it runs in a
+        thread of its own. The first :meth:`run` waits for that thread.
+        """
+        if self._pool is not None or self._starting is not None:
+            return
+
+        def work():
+            pool = None
+            try:
+                pool = self._make_pool()
+                for _ in range(self.n_workers):
+                    pool.submit(_ready)
+                thread.pool = pool
+            except Exception:  # noqa: BLE001 -- the first run starts again and reports it
+                if pool is not None:
+                    pool.shutdown(wait=False, cancel_futures=True)
+
+        thread = threading.Thread(target=work, name="cvdesign-start-workers", daemon=True)
+        thread.pool = None
+        self._starting = thread
+        thread.start()
 
     def run(self, fn, context, items):
         items = list(items)
@@ -224,11 +262,13 @@ class ProcessExecutor(Executor):
                 pass
 
     def _discard(self):
+        self._join_start()
         if self._pool is not None:
             self._pool.shutdown(wait=False, cancel_futures=True)
             self._pool = None
 
     def close(self):
+        self._join_start()
         if self._pool is not None:
             self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None

@@ -33,14 +33,21 @@ from .keys import SegmentLayout
 from .read import file_frames, read_chunks
 from .tree import TreeReducer, merge_optional
 
-__all__ = ["LEAF_FRAMES", "FEATURE_BUDGET", "Featurizer", "PoolFeaturizer",
-           "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
+__all__ = ["LEAF_FRAMES", "MAX_LEAF_FRAMES", "LEAF_VALUES", "FEATURE_BUDGET", "Featurizer",
+           "PoolFeaturizer", "CoordinateFeaturizer", "Pass", "Leaf", "Task", "TaskPlan", "plan_tasks",
            "leaf_frames_for", "run_pass", "run_task", "first_frame", "reference_features"]
 
 _log = logging.getLogger(__name__)
 
-#: Frames per leaf (the unit of arithmetic) when the features are few enough.
+#: Frames per leaf (the unit of arithmetic) of a pool of up to about 2,000 features.
 LEAF_FRAMES = 256
+#: Longest leaf, for few features (a screened or shortlisted set).
+MAX_LEAF_FRAMES = 4096
+#: Feature values a leaf of few features holds (2**19 numbers, 4 MB): few features get
+#: longer leaves, up to :data:`MAX_LEAF_FRAMES`, so that the per-leaf products (one
+#: ``syrk`` of a 256 x 200 block costs about twice its share of a 2048 x 200 one, measured)
+#: and the per-leaf Python work are spread over more frames.
+LEAF_VALUES = 1 << 19
 #: Feature values (float64) a leaf or a read chunk may hold: 2e6 numbers, 16 MB.
 FEATURE_BUDGET = 2_000_000
 
@@ -73,17 +80,25 @@ def one_blas_thread():
 
 
 def leaf_frames_for(n_features, budget=FEATURE_BUDGET):
-    """Leaf length for `n_features` features: :data:`LEAF_FRAMES`, shorter for big pools.
+    """Leaf length for `n_features` features.
 
-    A function of the number of features only, so it is the same for every
-    executor and task split.
+    :data:`LEAF_FRAMES` frames for a pool of about 2,000 features; longer for fewer
+    features (a power of two, about :data:`LEAF_VALUES` values, at most
+    :data:`MAX_LEAF_FRAMES` frames); shorter for big pools (at most `budget` values,
+    at least 8 frames). A function of the number of features only, so it is the
+    same for every executor and task split.
 
     Examples
     --------
-    >>> leaf_frames_for(100), leaf_frames_for(100_000)
-    (256, 20)
+    >>> leaf_frames_for(100), leaf_frames_for(200), leaf_frames_for(1802)
+    (4096, 2048, 256)
+    >>> leaf_frames_for(100_000)
+    20
     """
-    return int(min(LEAF_FRAMES, max(8, budget // max(1, int(n_features)))))
+    n = max(1, int(n_features))
+    few = LEAF_VALUES // n
+    longer = 1 << (few.bit_length() - 1) if few >= LEAF_FRAMES else LEAF_FRAMES
+    return int(min(MAX_LEAF_FRAMES, longer, max(8, budget // n)))
 
 
 # --------------------------------------------------------------------------- featurizers

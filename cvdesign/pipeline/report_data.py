@@ -40,9 +40,9 @@ import numpy as np
 from ..passes import FeaturePass, frame_keys, thinning_stride
 from ..stats.moments import DiagonalLaggedMoments
 
-__all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan", "CVReportPass", "cv_plans",
-           "trace_stride", "histogram_bins", "affine_to_cv_units", "report_document", "timescale_lags",
-           "funnel_report_document"]
+__all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
+           "CVBlockHistograms", "CVReportPass", "cv_plans", "trace_stride", "histogram_bins",
+           "affine_to_cv_units", "report_document", "timescale_lags", "funnel_report_document"]
 
 #: Most points of a trace (one input segment).
 MAX_TRACE_POINTS = 1000
@@ -259,6 +259,46 @@ def _standardized(x, center, scale):
     return np.ascontiguousarray(x, dtype=np.float64)
 
 
+class CVBlockHistograms:
+    """Block sums ``h``: histograms of each ranked CV (its fold's direction) over a block.
+
+    Picklable, so that workers of a parallel executor can compute them; it lives here, in
+    a module the workers import before their first task
+    (:data:`cvdesign.parallel.executors.WORKER_PRELOAD`), not beside ``suggest``, whose
+    imports (scikit-learn) would cost each worker about half a second when the held-out
+    pass reaches it.
+
+    Parameters
+    ----------
+    plans : list of (ndarray, list of ndarray, list of (float, float))
+        Per ranked CV: its columns among the block's values, its direction in each
+        held-out fold and each fold's histogram range (CV units).
+    n_bins : int
+        Bins of each histogram.
+
+    Examples
+    --------
+    >>> h = CVBlockHistograms([(np.array([0]), [np.array([1.0])], [(0.0, 1.0)])], 4)
+    >>> h(np.array([[0.1], [0.6], [0.7]]), (0, 0))["h"].tolist()
+    [[1.0, 0.0, 2.0, 0.0]]
+    """
+
+    def __init__(self, plans, n_bins):
+        self.plans = plans
+        self.n_bins = n_bins
+
+    def __call__(self, values, key, weights=None):
+        k = key[1]
+        h = np.zeros((len(self.plans), self.n_bins))
+        for ci, (p_idx, fold_w, ranges) in enumerate(self.plans):
+            lo, hi = ranges[k]
+            v = values[:, p_idx] @ fold_w[k]
+            b = np.clip(np.floor((v - lo) / (hi - lo) * self.n_bins).astype(np.intp), 0,
+                        self.n_bins - 1)
+            h[ci] = np.bincount(b, weights=weights, minlength=self.n_bins)
+        return {"h": h}
+
+
 class CVReportPass(FeaturePass):
     """Held-out histograms, traces and lagged sums of the ranked CVs, in one pass.
 
@@ -278,13 +318,15 @@ class CVReportPass(FeaturePass):
         As for every :class:`~cvdesign.passes.FeaturePass`: the pool features of the
         CVs' terms and their standardization (the spec's ``center``, ``scale``).
 
-    The result is a dict: ``hist``, per CV an int64 array of shape (n_states,
+    The result is a dict: ``hist``, per CV a float64 array of shape (n_states,
     n_bins + 2) (column 0 counts frames below the range, the last column those
-    above);
+    above; a biased run's frames count with their weights, so that the
+    histograms estimate the unbiased distribution within each state);
     ``traces``, ``(segment, frames, values of shape (n, n_cvs), state codes)`` per
     leaf with kept frames, in frame order; ``lagged``, per lag a
     :class:`~cvdesign.stats.moments.DiagonalLaggedMoments` of the CVs (or None
-    without lags).
+    without lags), whose pairs weigh as their first frame in a biased run (as
+    the ranking's slowness, :class:`~cvdesign.passes.LaggedPass`).
     """
 
     def __init__(self, featurizer, plans, folds, strides, lags, shift, *, columns, center,
@@ -309,9 +351,10 @@ class CVReportPass(FeaturePass):
         for c, p in enumerate(self.plans):
             cv[:, c] = _combine(z, p.cols, p.w)
         keys = frame_keys(leaf.layout, leaf.frames, folds=self.folds)
+        w = leaf.weights  # biased runs: each frame counts with its weight
         hist = []
         for p in self.plans:
-            h = np.zeros((leaf.n_states, p.n_bins + 2), dtype=np.int64)
+            h = np.zeros((leaf.n_states, p.n_bins + 2))
             width = (p.high - p.low) / p.n_bins
             for k in np.unique(keys.fold).tolist():
                 rows = np.flatnonzero(keys.fold == k)
@@ -321,35 +364,91 @@ class CVReportPass(FeaturePass):
                 b_idx = b_idx.astype(np.int64) + 1
                 b_idx[u < p.low] = 0
                 b_idx[u > p.high] = p.n_bins + 1
-                np.add.at(h, (keys.states[rows], b_idx), 1)
+                np.add.at(h, (keys.states[rows], b_idx), 1.0 if w is None else w[rows])
             hist.append(h)
         lay = leaf.layout
         kept = np.flatnonzero((leaf.frames - lay.lo) % self.strides[leaf.segment] == 0)
         traces = ([(leaf.segment, leaf.frames[kept].copy(), cv[kept].copy(),
                     leaf.states[kept].copy())] if kept.size else [])
-        lagged = None
-        if self.lags:
-            lagged = []
-            for lag in self.lags:
-                i, j = leaf.pairs(lag)
-                m = DiagonalLaggedMoments(n_cv, shift=self.shift, lag=lag)
-                lagged.append(m.add_pairs(cv[i], cv[j]) if i.size else m)
+        lagged = _lag_sums(leaf, cv - self.shift, self.lags) if self.lags else None
         return {"hist": hist, "traces": traces, "lagged": lagged}
 
     def merge(self, a, b):
-        lagged = None if a["lagged"] is None else [x.merge(y) for x, y in
-                                                   zip(a["lagged"], b["lagged"])]
+        lagged = None if a["lagged"] is None else {k: a["lagged"][k] + b["lagged"][k]
+                                                   for k in a["lagged"]}
         return {"hist": [x + y for x, y in zip(a["hist"], b["hist"])],
                 "traces": a["traces"] + b["traces"], "lagged": lagged}
 
     def finish(self, partial, plan):
+        n_cv = len(self.plans)
         if partial is None:
-            lagged = None if not self.lags else [
-                DiagonalLaggedMoments(len(self.plans), shift=self.shift, lag=lag)
-                for lag in self.lags]
-            partial = {"hist": [np.zeros((plan.n_states, p.n_bins + 2), dtype=np.int64)
-                                for p in self.plans], "traces": [], "lagged": lagged}
+            partial = {"hist": [np.zeros((plan.n_states, p.n_bins + 2)) for p in self.plans],
+                       "traces": [], "lagged": None if not self.lags else
+                       {"count": np.zeros(len(self.lags)),
+                        "n_pairs": np.zeros(len(self.lags), dtype=np.int64),
+                        "sums": np.zeros((5, len(self.lags), n_cv))}}
+        stack = partial["lagged"]
+        if stack is not None:  # one DiagonalLaggedMoments per lag
+            lagged = []
+            for g, lag in enumerate(self.lags):
+                m = DiagonalLaggedMoments(n_cv, shift=self.shift, lag=lag)
+                m.count, m.n_pairs = float(stack["count"][g]), int(stack["n_pairs"][g])
+                m.sum_x, m.sum_y, m.sum_xx, m.sum_xy, m.sum_yy = (
+                    stack["sums"][f, g].copy() for f in range(5))
+                lagged.append(m)
+            partial = dict(partial, lagged=lagged)
         return partial
+
+
+def _lag_sums(leaf, d, lags):
+    """Sums of the lagged pairs of a leaf at every lag: ``{"count": (n_lags,), "n_pairs":
+    (n_lags,), "sums": (5, n_lags, n_cv)}``, the sums (``x``, ``y``, ``xx``, ``xy``, ``yy``)
+    of :class:`~cvdesign.stats.moments.DiagonalLaggedMoments` about its shift.
+
+    `d` holds the shifted values of the leaf's window (the leaf's rows first). The pairs
+    are :meth:`cvdesign.passes.Leaf.pairs`'s; a pair weighs as its first frame in a biased
+    run (as :class:`cvdesign.passes.LaggedPass`). An unbiased leaf takes every lag at once:
+    its pair ``(t, t + lag)`` is valid when the run of frames of one state starting at ``t``
+    reaches ``t + lag``, and then the second frame is ``lag`` rows after the first in the
+    window (every frame between them is there).
+    """
+    lags = np.asarray(lags, dtype=np.intp)
+    n, n_cv = leaf.n, d.shape[1]
+    sums = np.zeros((5, lags.size, n_cv))
+    w = leaf.weights
+    if w is None and leaf.layout.clock is None:
+        t = leaf.frames
+        valid = leaf.layout.run_end_of(t)[None, :] > t[None, :] + lags[:, None]
+        rows = np.minimum(np.arange(n)[None, :] + lags[:, None], d.shape[0] - 1)
+        y = d[rows] * valid[:, :, None]          # (n_lags, n, n_cv), zero where not valid
+        x = d[:n]
+        v = valid.astype(np.float64)
+        count = v.sum(axis=1)
+        sums[0] = v @ x
+        sums[1] = y.sum(axis=1)
+        sums[2] = v @ (x * x)
+        sums[3] = np.einsum("ltc,tc->lc", y, x)
+        sums[4] = np.einsum("ltc,ltc->lc", y, y)
+        return {"count": count, "n_pairs": valid.sum(axis=1).astype(np.int64), "sums": sums}
+    count = np.zeros(lags.size)
+    n_pairs = np.zeros(lags.size, dtype=np.int64)
+    for g, lag in enumerate(lags.tolist()):
+        i, j = leaf.pairs(lag)
+        if i.size == 0:
+            continue
+        x, y = d[i], d[j]
+        if w is None:
+            count[g] = float(i.size)
+            sums[0, g], sums[1, g] = x.sum(axis=0), y.sum(axis=0)
+            sums[2, g], sums[3, g], sums[4, g] = (x * x).sum(axis=0), (x * y).sum(axis=0), \
+                (y * y).sum(axis=0)
+        else:
+            wi = w[i]
+            count[g] = float(wi.sum())
+            sums[0, g], sums[1, g] = wi @ x, wi @ y
+            sums[2, g], sums[3, g], sums[4, g] = wi @ (x * x), wi @ (x * y), wi @ (y * y)
+        n_pairs[g] = i.size
+    return {"count": count, "n_pairs": n_pairs, "sums": sums}
 
 
 def _timescales(lagged, c, lags, dt):
@@ -361,6 +460,14 @@ def _timescales(lagged, c, lags, dt):
     if all(v is None for v in out):
         return None
     return {"lag_ps": [float(lag * dt) for lag in lags], "timescale_ps": out}
+
+
+def _counts(values):
+    """Frame counts as ints; sums of the weights of a state's biased frames (not whole) as
+    floats."""
+    if np.all(values == np.round(values)):
+        return [int(v) for v in values]
+    return [float(v) for v in values]
 
 
 def report_document(result, plans, ranking, *, source, states, steps, lags, temperature_k,
@@ -398,9 +505,8 @@ def report_document(result, plans, ranking, *, source, states, steps, lags, temp
     for c, (p, entry) in enumerate(zip(plans, ranking)):
         hist = result["hist"][c]
         heldout = {"edges": p.edges.tolist(),
-                   "counts": {s: hist[i, 1:-1].tolist() for i, s in enumerate(states)},
-                   "outside": {s: [int(hist[i, 0]), int(hist[i, -1])]
-                               for i, s in enumerate(states)}}
+                   "counts": {s: _counts(hist[i, 1:-1]) for i, s in enumerate(states)},
+                   "outside": {s: _counts(hist[i, [0, -1]]) for i, s in enumerate(states)}}
         traces = []
         for seg in sorted(by_segment):
             parts = by_segment[seg]

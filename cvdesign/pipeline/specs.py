@@ -5,6 +5,7 @@ document and validated by loading it (schema and semantic checks) before it is
 written; inputs are recorded by name and checksum, frame ranges or label checksums.
 """
 
+import concurrent.futures
 import hashlib
 from pathlib import Path
 
@@ -17,7 +18,7 @@ from ..kinds import GROUP_KINDS
 from ..spec import Spec, atom_identity, residue_hashes, topology_fingerprint
 from .output import CAUTION
 
-__all__ = ["describe_inputs", "input_checksums", "spec_document"]
+__all__ = ["describe_inputs", "InputChecksums", "spec_document"]
 
 
 def describe_inputs(source, seg_counts, timesteps):
@@ -126,22 +127,66 @@ def spec_document(source, pool, entry, params, checksums, seed):
     return Spec.from_dict(doc).to_dict()
 
 
-def input_checksums(source, inputs, executor=None):
-    """Name, SHA-256 and states of every trajectory file a source reads.
+class InputChecksums:
+    """Name, SHA-256 and states of every trajectory file a source reads, started early.
 
-    The files are hashed one task per file on `executor` (a
-    :mod:`cvdesign.parallel` executor; None: in this process, in order).
+    With an executor in this machine (None, serial, or local processes) the files
+    are hashed in a background thread from the moment this object is made: hashing
+    and reading release the GIL, so the hashing fills the time in which worker
+    processes start up and this process only waits (measured: 0.4 s of a 10 s
+    ``suggest`` at 10^5 frames per state with 2 workers), and the second core of a
+    serial run. On a Dask cluster the files are hashed one task per file on the
+    workers, when :meth:`result` is called.
+
+    Parameters
+    ----------
+    source : cvdesign.io.source.Source
+    executor : Executor, default=None
+        A :mod:`cvdesign.parallel` executor (None: this process).
+
+    Examples
+    --------
+    ::
+
+        sums = InputChecksums(source, executor)
+        ...  # the passes
+        checksums = sums.result(describe_inputs(source, seg_counts, steps))
     """
-    paths = [str(p) for p in source.files()]
-    if executor is None or getattr(executor, "in_process", False):
-        digests = [file_sha256(p) for p in paths]
-    else:
-        digests = [None] * len(paths)
-        for i, digest in executor.run(_sha256_task, None, paths):
-            digests[i] = digest
-    return [{"file": Path(p).name, "sha256": d,
-             "states": next(i["states"] for i in inputs if i["path"] == p)}
-            for p, d in zip(paths, digests)]
+
+    def __init__(self, source, executor=None):
+        from ..parallel.executors import ProcessExecutor
+
+        self.paths = [str(p) for p in source.files()]
+        self.executor = executor
+        self._futures = None
+        if executor is None or getattr(executor, "in_process", False) or \
+                isinstance(executor, ProcessExecutor):
+            pool = concurrent.futures.ThreadPoolExecutor(1, thread_name_prefix="cvdesign-sha256")
+            self._futures = [pool.submit(file_sha256, p) for p in self.paths]
+            pool.shutdown(wait=False)
+
+    def result(self, inputs):
+        """``[{"file": name, "sha256": hex digest, "states": ...}, ...]``, one per file.
+
+        Parameters
+        ----------
+        inputs : list of dict
+            :func:`describe_inputs`'s entries (their ``path`` and ``states``).
+        """
+        if self._futures is not None:
+            digests = [f.result() for f in self._futures]
+        else:
+            digests = [None] * len(self.paths)
+            for i, digest in self.executor.run(_sha256_task, None, self.paths):
+                digests[i] = digest
+        return [{"file": Path(p).name, "sha256": d,
+                 "states": next(i["states"] for i in inputs if i["path"] == p)}
+                for p, d in zip(self.paths, digests)]
+
+    def cancel(self):
+        """Stop hashing the files not yet begun (the run ended early)."""
+        for f in self._futures or ():
+            f.cancel()
 
 
 def _sha256_task(context, path):

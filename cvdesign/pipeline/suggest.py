@@ -50,9 +50,10 @@ from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs
 from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
                       heldout_overlap, hints_for, ranking_entry, search, shortlist)
-from .report_data import CVReportPass, cv_plans, report_document, timescale_lags, trace_stride
+from .report_data import (CVBlockHistograms, CVReportPass, cv_plans, report_document,
+                          timescale_lags, trace_stride)
 from .screening import Screening, screen
-from .specs import describe_inputs, input_checksums, spec_document
+from .specs import InputChecksums, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
 from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
                      integrated_time, lag_frames, local_autocorrelation, longest_run_text,
@@ -316,10 +317,14 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
 
     with using_executor(executor) as executor:
         executor.start()  # local workers start up while the pool is enumerated
-        return _suggest(source, config, executor, progress)
+        checksums = InputChecksums(source, executor)  # hashed while the workers start
+        try:
+            return _suggest(source, config, executor, progress, checksums)
+        finally:
+            checksums.cancel()
 
 
-def _suggest(source, config, executor, progress):
+def _suggest(source, config, executor, progress, checksums):
     say = stage_messages(_log, progress)
     priors = np.full(source.n_states, 1.0 / source.n_states)
     steps = read_timesteps(source)
@@ -411,7 +416,7 @@ def _suggest(source, config, executor, progress):
               if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
     params = config.parameters(lag_ps, folds)
-    checksums = input_checksums(source, inputs, executor=executor)
+    checksums = checksums.result(inputs)
     ranking, specs = [], []
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, held.overlap), 1):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,
@@ -571,28 +576,6 @@ class HeldOut:
     report_lags: object = None
 
 
-class _CVHistograms:
-    """Block sums ``h``: histograms of each ranked CV (its fold's direction) over a block.
-
-    Picklable, so that workers of a parallel executor can compute them.
-    """
-
-    def __init__(self, plans, n_bins):
-        self.plans = plans
-        self.n_bins = n_bins
-
-    def __call__(self, values, key, weights=None):
-        k = key[1]
-        h = np.zeros((len(self.plans), self.n_bins))
-        for ci, (p_idx, fold_w, ranges) in enumerate(self.plans):
-            lo, hi = ranges[k]
-            v = values[:, p_idx] @ fold_w[k]
-            b = np.clip(np.floor((v - lo) / (hi - lo) * self.n_bins).astype(np.intp), 0,
-                        self.n_bins - 1)
-            h[ci] = np.bincount(b, weights=weights, minlength=self.n_bins)
-        return {"h": h}
-
-
 def _cv_plans(fits, fm, where):
     """Per ranked CV: its columns in the blocks, fold directions and histogram ranges."""
     plans = []
@@ -637,7 +620,7 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
         bf = None  # no bootstrap: one block per run and fold, for the held-out histograms
     blocks = BlockPass(every, folds=folds, block_frames=bf, moments=bool(config.n_bootstrap),
                        lags=lags if config.n_bootstrap else None, pairs_within_block=True,
-                       sums=_CVHistograms(_cv_plans(fits, fm, where), N_BINS), columns=cols,
+                       sums=CVBlockHistograms(_cv_plans(fits, fm, where), N_BINS), columns=cols,
                        center=screening.center[cols], scale=screening.scale[cols])
     # the ranked CVs' smallest and largest values per state (their spec's CV: the full-data
     # direction on the standardized features, as the spec's terms)

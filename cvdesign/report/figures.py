@@ -366,8 +366,8 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         if out.shape != (2,) or np.any(out < 0) or not np.all(np.isfinite(out)):
             raise ValueError(f"held-out frames outside the bins of state {s!r} must be two "
                              "non-negative numbers (below, above)")
-        counts[s] = int(c.sum())
-        outside[s] = int(out.sum())
+        counts[s] = int(round(c.sum()))  # frames (biased runs: sums of weights, about)
+        outside[s] = int(round(out.sum()))
         if c.sum() == 0:
             continue
         d = c / ((c.sum() + out.sum()) * widths)
