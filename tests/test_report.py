@@ -626,6 +626,18 @@ def test_report_renders_in_headless_chromium_with_every_image_loaded(demo_out, t
         assert _pixels_of(full, color) > _pixels_of(bare, color) + 500, color
 
 
+def test_the_folded_note_under_a_range_is_drawn_in_the_warning_colour(demo_out, tmp_path):
+    # the note is a small interval line (span.ci, grey) that is also a warning: the warning
+    # colour must win, as it does for the other warnings of the page
+    _chromium()
+    text = write_report(demo_out).read_text(encoding="utf-8")
+    assert '<span class="ci warning">folded: ' in text
+    script = ("<script>const s = document.querySelector('span.ci.warning');"
+              "document.body.setAttribute('data-color', getComputedStyle(s).color);</script>")
+    (color,) = _body_attributes(tmp_path, text, "folded.html", script, "data-color")
+    assert color == "rgb(138, 58, 0)"  # .warning's #8a3a00
+
+
 # ------------------------------------------------------------------- the CV's range
 def test_report_shows_each_cvs_ranges_and_folded_states_in_tables_and_figures(demo_out):
     report = build_report(read_output(demo_out))

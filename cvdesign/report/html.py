@@ -155,6 +155,7 @@ td.num { text-align: right; }
 table.ranking { width: 100%; }
 table.ranking td:nth-child(2) { white-space: nowrap; }
 span.ci { display: block; font-size: 0.8em; color: #444; white-space: nowrap; }
+span.ci.warning { color: #8a3a00; }
 span.term { display: block; }
 figure { margin: 1rem 0; }
 figure img { max-width: 100%; height: auto; display: block; }
