@@ -41,13 +41,13 @@ __all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "as_
 
 
 #: Modules the fork server imports once, so that every worker it forks starts with them
-#: instead of importing them afresh: what the tasks of ``suggest`` and ``funnel`` unpickle
-#: (about 0.4 s of CPU, measured on the 2-core machine), and the main module, which each
-#: worker would otherwise run again (Python's own default). ``propose_states``'s passes
-#: (with scikit-learn) are imported by each worker when it first meets them.
+#: instead of importing them afresh: what the tasks of ``suggest`` unpickle (about 0.5 s of
+#: CPU on the 2-core machine, on the way to the first task), and the main module, which
+#: each worker would otherwise run again (Python's own default). The tasks of ``funnel``
+#: (:mod:`cvdesign.bias.funnel`, about 0.2 s more) and ``propose_states`` (with
+#: scikit-learn) import what else they need in each worker, once, when they first come.
 WORKER_PRELOAD = ("__main__", "cvdesign.passes", "cvdesign.pool", "cvdesign.parallel.executors",
-                  "cvdesign.pipeline.timing", "cvdesign.pipeline.report_data",
-                  "cvdesign.pipeline.specs", "cvdesign.bias.funnel")
+                  "cvdesign.pipeline.timing", "cvdesign.pipeline.report_data")
 
 
 def default_start_method():
