@@ -2,6 +2,7 @@
 pass-engine tests (bitwise comparison, random task splits, shuffled arrival order, a
 progress display that records what it is told)."""
 
+import contextlib
 import importlib.resources
 import json
 from pathlib import Path
@@ -372,12 +373,25 @@ def progress_recorder():
     return ProgressRecorder()
 
 
-@pytest.fixture(scope="module")
-def short_leaves():
-    """Leaves of at most :data:`~cvdesign.passes.LEAF_FRAMES` (256) frames whatever the number
-    of features, for this module: the small test inputs then span several leaves per file,
-    so that the byte-identity checks across task splits and executors have leaf boundaries
-    to cross (few features otherwise get leaves of up to 4096 frames, one per test file)."""
+@contextlib.contextmanager
+def _leaves_of_at_most_256():
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(engine, "MAX_LEAF_FRAMES", engine.LEAF_FRAMES)
+        yield
+
+
+@pytest.fixture
+def short_leaves():
+    """Leaves of at most :data:`~cvdesign.passes.LEAF_FRAMES` (256) frames whatever the number
+    of features, for one test: the small test inputs then span several leaves per file, so
+    that the byte-identity checks across task splits and executors have leaf boundaries to
+    cross (few features otherwise get leaves of up to 4096 frames, one per test file)."""
+    with _leaves_of_at_most_256():
+        yield
+
+
+@pytest.fixture(scope="module")
+def short_leaves_module():
+    """:func:`short_leaves` for a whole module (for its module-scoped fixtures too)."""
+    with _leaves_of_at_most_256():
         yield

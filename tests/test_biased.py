@@ -830,7 +830,8 @@ def test_suggest_command_proposes_states_from_biased_runs_and_says_they_were_rew
     assert spec["provenance"]["segments"][0]["bias"]["temperature_k"] == 300.0
 
 
-def test_states_proposed_from_biased_runs_are_the_same_bytes_in_two_processes(biased_well_runs):
+def test_states_proposed_from_biased_runs_are_the_same_bytes_in_two_processes(
+        short_leaves, biased_well_runs):
     from cvdesign.pipeline.explore import propose_states
 
     well, pdb, trajs, biases = biased_well_runs
@@ -845,3 +846,42 @@ def test_states_proposed_from_biased_runs_are_the_same_bytes_in_two_processes(bi
     assert one.kinetics.counts.dtype == np.float64  # weighted pair counts
     for t in trajs[:13]:
         np.testing.assert_array_equal(one.labels[t], two.labels[t])
+
+
+def test_a_pass_with_several_lags_reads_the_halo_of_every_lag_in_a_biased_run(tmp_path):
+    """A run whose bias drops near its end: the last frames of the high-bias stretch have no
+    partner at the longest lag (the rescaled clock barely moves afterwards) but do at a
+    shorter one, farther away in frames. The halo read after each task must hold those
+    pairs too (it once held only the longest lag's, and the pass stopped with "lag 4 is
+    longer than the halo"); the sums equal a direct computation over the partners."""
+    from cvdesign.passes import Folds
+    from cvdesign.pipeline.report_data import CVPlan, CVReportPass
+
+    rng = np.random.default_rng(0)
+    traj = _write_dcd(tmp_path / "run.dcd", rng.normal(1.0, 0.1, (40, 1, 3)))
+    v = np.zeros(40)
+    v[:30] = 8 * KT  # kJ/mol: high for 30 frames, then none
+    src = Source(_topology(1), temperature=300.0)
+    src.add(traj, "a", bias=_write_bias(tmp_path / "run.bias", v))
+    plan = plan_tasks(src, leaf_frames=8)
+    lay = plan.layouts[0]
+    spans = [lay.lag_span(lag) for lag in range(1, 17)]
+    assert spans == sorted(spans)  # never shrinks as the lag grows
+    cv = CVPlan(np.array([0]), np.array([1.0]), [np.array([1.0])], [(1.0, 0.0)], -3.0, 3.0, 10)
+    lags = [4, 16]
+    make = lambda: CVReportPass(CoordinateFeaturizer([0]), [cv], Folds(1), {0: 1},  # noqa
+                                lags, [1.0], columns=np.array([0]), center=np.zeros(1),
+                                scale=np.ones(1))
+    got = run_pass(make(), src, tasks=plan)
+    assert run_pass(make(), src, tasks=plan.split(n_tasks=5))["lagged"][0].n_pairs == \
+        got["lagged"][0].n_pairs
+    x = md.load(traj, top=_topology(1)).xyz[:, 0, 0].astype(np.float64) - 1.0
+    frames = np.arange(40)
+    w = lay.weights_of(frames)
+    for lag, m in zip(lags, got["lagged"]):
+        u = lay.partners(frames, lag)
+        t = np.flatnonzero(u >= 0)
+        assert m.n_pairs == t.size > 0
+        np.testing.assert_allclose([m.count, m.sum_x[0], m.sum_xy[0], m.sum_yy[0]],
+                                   [w[t].sum(), w[t] @ x[t], w[t] @ (x[t] * x[u[t]]),
+                                    w[t] @ x[u[t]] ** 2], rtol=1e-12)

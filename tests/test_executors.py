@@ -83,7 +83,7 @@ def _passes(src):
 
 
 @pytest.fixture(scope="module", autouse=True)
-def _short_leaves(short_leaves):
+def _short_leaves(short_leaves_module):
     """Several leaves per test file (see conftest's ``short_leaves``)."""
 
 

@@ -425,7 +425,7 @@ def test_kinetics_pass_gives_the_state_kinetics_of_the_whole_runs_for_any_split(
 
 
 def test_propose_states_gives_identical_bytes_serially_in_two_processes_and_on_dask(
-        two_walkers, threaded_dask, assert_same):
+        short_leaves, two_walkers, threaded_dask, assert_same):
     top, paths, _, _ = two_walkers
     results = [propose_states(_runs_source(top, paths), lag=0.2, kinds=("distance",),
                               executor=executor)

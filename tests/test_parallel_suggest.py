@@ -17,7 +17,7 @@ SETTINGS = dict(n_bootstrap=10, max_terms=2, n_suggestions=3, lag=2.0, objective
 
 
 @pytest.fixture(scope="module", autouse=True)
-def _short_leaves(short_leaves):
+def _short_leaves(short_leaves_module):
     """Several leaves per test file (see conftest's ``short_leaves``)."""
 
 

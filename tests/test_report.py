@@ -626,6 +626,27 @@ def test_report_renders_in_headless_chromium_with_every_image_loaded(demo_out, t
         assert _pixels_of(full, color) > _pixels_of(bare, color) + 500, color
 
 
+def test_held_out_weight_beyond_the_bins_is_named_in_the_caption_not_rounded_away():
+    # biased runs: the frames beyond the drawn range are a sum of weights (here 0.3 and 0.4
+    # of a frame), which rounding to whole frames would have dropped without a word
+    heldout = {"edges": [0.0, 1.0, 2.0, 3.0], "counts": {"A": [3.1, 1.0, 0.0],
+                                                         "B": [0.0, 1.2, 2.5]},
+               "outside": {"A": [0.2, 0.1], "B": [0.4, 0.0]}}
+    stats = {"A": {"mean": 0.9, "std": 0.5}, "B": {"mean": 2.1, "std": 0.5}}
+    fig = fg.cv_distributions("cv-01", "rank 1", heldout, stats, states=["A", "B"],
+                              temperature_k=300.0)
+    assert fig.data["outside"] == {"A": 0.3, "B": 0.4}
+    assert fig.data["counts"] == {"A": 4.1, "B": 3.7}
+    assert ("0.7 held-out frame(s) beyond the drawn range are not shown (A: 0.3, B: 0.4); "
+            "frames of biased runs count with their weights.") in fig.caption
+    whole = dict(heldout, counts={"A": [3, 1, 0], "B": [0, 1, 3]},
+                 outside={"A": [1, 0], "B": [0, 0]})
+    fig = fg.cv_distributions("cv-01", "rank 1", whole, stats, states=["A", "B"],
+                              temperature_k=300.0)
+    assert fig.data["outside"] == {"A": 1, "B": 0}
+    assert "1 held-out frame(s) beyond the drawn range are not shown (A: 1)." in fig.caption
+
+
 def test_the_folded_note_under_a_range_is_drawn_in_the_warning_colour(demo_out, tmp_path):
     # the note is a small interval line (span.ci, grey) that is also a warning: the warning
     # colour must win, as it does for the other warnings of the page

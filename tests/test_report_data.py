@@ -223,6 +223,63 @@ def test_report_pass_weighs_the_frames_and_pairs_of_biased_runs(small, tmp_path)
         np.testing.assert_allclose(m.autocorrelation(), rho, rtol=1e-9)
 
 
+def test_report_lagged_sums_skip_pairs_across_state_changes_gaps_and_files(
+        tmp_path, random_tasks, shuffled_executor, assert_same):
+    """Labelled runs with frames of no state and changes of state, a plain run and a frame
+    range: the report's lagged sums (every lag of a leaf at once) hold exactly the pairs
+    ``(t, t + lag)`` whose frames all carry one state, in every leaf length and task split
+    (direct computation on the whole files)."""
+    from cvdesign.passes import CoordinateFeaturizer
+
+    rng = np.random.default_rng(31)
+    top = md.Topology()
+    top.add_atom("C", md.element.carbon, top.add_residue("TOY", top.add_chain()))
+    n = 150
+    labels = [None if i % 37 in (5, 6) else ("A" if (i // 23) % 3 else "B") for i in range(n)]
+    src = Source(top)
+    files = []
+    for k in range(3):
+        xyz = np.cumsum(rng.normal(0, 0.05, (n, 1, 3)), axis=0) + 1.0  # a slow wander, nm
+        path = tmp_path / f"run{k}.dcd"
+        md.Trajectory(xyz.astype(np.float32), top).save(str(path))
+        files.append((str(path), md.load(str(path), top=top).xyz[:, 0, 0].astype(np.float64)))
+    src.add_labelled(files[0][0], labels)
+    src.add_labelled(files[1][0], labels[::-1])
+    src.add(files[2][0], "A", frames=(17, 140))
+    lags = [1, 3, 8, 20]
+    cv = CVPlan(np.array([0]), np.array([1.0]), [np.array([1.0])], [(1.0, 0.0)], -5.0, 5.0, 10)
+    make = lambda: CVReportPass(CoordinateFeaturizer([0]), [cv], Folds(1),  # noqa: E731
+                                {0: 1, 1: 1, 2: 1}, lags, [1.0], columns=np.array([0]),
+                                center=np.zeros(1), scale=np.ones(1))
+    want = {lag: [] for lag in lags}
+    runs = [(files[0][1], labels), (files[1][1], labels[::-1]),
+            (files[2][1][17:140], ["A"] * 123)]
+    for x, lab in runs:
+        for lag in lags:
+            for t in range(len(lab) - lag):
+                if lab[t] is not None and all(lab[u] == lab[t] for u in range(t, t + lag + 1)):
+                    want[lag].append((x[t] - 1.0, x[t + lag] - 1.0))
+    ref = None
+    for leaf in (4, 16, 64, 512):
+        plan = plan_tasks(src, leaf_frames=leaf)
+        got = run_pass(make(), src, tasks=plan)
+        for lag, m in zip(lags, got["lagged"]):
+            a = np.array(want[lag])
+            assert m.n_pairs == len(a) > 0
+            np.testing.assert_allclose(
+                [m.count, m.sum_x[0], m.sum_y[0], m.sum_xx[0], m.sum_xy[0], m.sum_yy[0]],
+                [len(a), a[:, 0].sum(), a[:, 1].sum(), a[:, 0] @ a[:, 0], a[:, 0] @ a[:, 1],
+                 a[:, 1] @ a[:, 1]], rtol=1e-10)
+        if leaf == 16:
+            ref = got
+            rng2 = np.random.default_rng(2)
+            for trial in range(2):
+                again = run_pass(make(), src, tasks=plan.with_tasks(random_tasks(plan, rng2)),
+                                 chunk_frames=int(rng2.integers(5, 60)),
+                                 executor=shuffled_executor(trial))
+                assert_same(ref, again)
+
+
 def test_report_pass_gives_the_same_bytes_for_any_split_chunk_size_and_order(
         small, assert_same, random_tasks, shuffled_executor):
     ref = run_pass(small["make"](), small["src"], tasks=small["plan"])

@@ -42,11 +42,13 @@ __all__ = ["Executor", "SerialExecutor", "ProcessExecutor", "DaskExecutor", "as_
 
 #: Modules the fork server imports once, so that every worker it forks starts with them
 #: instead of importing them afresh: what the tasks of ``suggest`` unpickle (about 0.5 s of
-#: CPU on the 2-core machine, on the way to the first task), and the main module, which
-#: each worker would otherwise run again (Python's own default). The tasks of ``funnel``
+#: CPU on the 2-core machine, on the way to the first task). The tasks of ``funnel``
 #: (:mod:`cvdesign.bias.funnel`, about 0.2 s more) and ``propose_states`` (with
 #: scikit-learn) import what else they need in each worker, once, when they first come.
-WORKER_PRELOAD = ("__main__", "cvdesign.passes", "cvdesign.pool", "cvdesign.parallel.executors",
+#: (Each worker also runs the main script again as ``__mp_main__``, as with ``spawn``:
+#: Python 3.11-3.13 do not pass the script's path to the fork server, so naming
+#: ``"__main__"`` here would not preload it; the CLI's main module imports little.)
+WORKER_PRELOAD = ("cvdesign.passes", "cvdesign.pool", "cvdesign.parallel.executors",
                   "cvdesign.pipeline.timing", "cvdesign.pipeline.report_data")
 
 
@@ -212,9 +214,14 @@ class ProcessExecutor(Executor):
         The fork server imports :data:`WORKER_PRELOAD` (and the workers start)
         while this process goes on, instead of when the first tasks come:
         starting a pool waits for the server's imports, so it runs in a
-        thread of its own. The first :meth:`run` waits for that thread.
+        thread of its own. The first :meth:`run` waits for that thread. With
+        ``start_method="fork"`` the pool is made here, in the calling thread
+        (forking while another thread runs would copy its locks).
         """
         if self._pool is not None or self._starting is not None:
+            return
+        if self.start_method == "fork":  # never fork while a thread of ours runs
+            self._get_pool()
             return
 
         def work():

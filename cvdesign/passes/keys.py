@@ -214,8 +214,19 @@ class SegmentLayout:
         For an unbiased run the lag itself; for a biased one the largest
         distance from a frame ``t`` of the segment's range to the first frame
         of the range whose clock reaches ``clock[t] + lag`` (every frame
-        :meth:`partners` may look at). Call it on the whole layout, not a
-        window.
+        :meth:`partners` may look at), or to the range's last frame when none
+        reaches it: a shorter lag's partner of that ``t`` may lie anywhere up to
+        there, so the span never shrinks as the lag grows and the halo of a
+        pass's longest lag holds the pairs of its shorter ones. Call it on the
+        whole layout, not a window.
+
+        Examples
+        --------
+        >>> import dataclasses
+        >>> lay = SegmentLayout.plain(0, "run.xtc", 5, 0, 5, 0, 1)
+        >>> lay = dataclasses.replace(lay, clock=np.array([0.0, 7.26, 8.05, 8.58, 9.09, 9.6]))
+        >>> [lay.lag_span(lag) for lag in (1, 2, 4)]  # t = 1 pairs with 3 at lag 1
+        [2, 3, 3]
         """
         lag = int(lag)
         if self.clock is None or lag <= 0:
@@ -228,7 +239,7 @@ class SegmentLayout:
                                  "and the temperature")
             t = np.arange(self.lo, self.hi, dtype=np.int64)
             _, first, found, _ = self._reach(t, lag) if t.size else (t, t, t > 0, t)
-            span = first[found] + self.offset - t[found]
+            span = np.where(found, first + self.offset, self.hi - 1) - t
             self.spans[lag] = int(span.max()) if span.size else 0
         return self.spans[lag]
 

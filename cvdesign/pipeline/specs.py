@@ -146,11 +146,14 @@ class InputChecksums:
 
     Examples
     --------
-    ::
-
-        sums = InputChecksums(source, executor)
-        ...  # the passes
-        checksums = sums.result(describe_inputs(source, seg_counts, steps))
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> from cvdesign.io.source import Source
+    >>> top, files = demo_inputs()
+    >>> src = Source(top).add(files["closed"][0], "closed")
+    >>> sums = InputChecksums(src)  # the hashing starts now, in a thread
+    >>> (row,) = sums.result([{"path": p, "states": ["closed"]} for p in sums.paths])
+    >>> row["file"], len(row["sha256"]), row["states"]
+    ('closed-1.xtc', 64, ['closed'])
     """
 
     def __init__(self, source, executor=None):

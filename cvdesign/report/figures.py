@@ -269,6 +269,13 @@ def _check_at_bound(at_bound, states):
 
 
 # ------------------------------------------------------------------------ ranked CVs
+def _frames(total):
+    """A count of frames as an int; a sum of weights (biased runs) that is not whole as a
+    float with 3 significant digits, so that a fraction of a frame is not rounded away."""
+    whole = round(float(total))
+    return int(whole) if abs(total - whole) < 1e-9 else float(f"{total:.3g}")
+
+
 def cv_distributions(name, label, heldout, states_stats, *, states, temperature_k,
                      units="CV units", reachable=None, at_bound=None):
     """Per-state histograms of a CV on held-out frames, and -kT ln p per state.
@@ -366,8 +373,8 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         if out.shape != (2,) or np.any(out < 0) or not np.all(np.isfinite(out)):
             raise ValueError(f"held-out frames outside the bins of state {s!r} must be two "
                              "non-negative numbers (below, above)")
-        counts[s] = int(round(c.sum()))  # frames (biased runs: sums of weights, about)
-        outside[s] = int(round(out.sum()))
+        counts[s] = _frames(c.sum())  # frames (biased runs: sums of weights)
+        outside[s] = _frames(out.sum())
         if c.sum() == 0:
             continue
         d = c / ((c.sum() + out.sum()) * widths)
@@ -424,8 +431,10 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
                    f"spec; right, \u2212kT ln p per state (kJ/mol, {temperature_k:g} K), an "
                    "estimate from unbiased sampling within each state, not the free energy "
                    "of the transition."
-                   + (f" {n_out} held-out frame(s) beyond the drawn range are not shown ("
-                      + ", ".join(f"{s}: {v}" for s, v in outside.items() if v) + ")."
+                   + (f" {n_out:g} held-out frame(s) beyond the drawn range are not shown ("
+                      + ", ".join(f"{s}: {v:g}" for s, v in outside.items() if v) + ")"
+                      + ("; frames of biased runs count with their weights" if any(
+                          isinstance(v, float) for v in outside.values()) else "") + "."
                       if n_out else "") + _range_words(reachable, drawn, at_bound))
         return _finish(fig, name, caption, alt, data)
 
