@@ -256,6 +256,10 @@ def test_bin_counts_follow_the_formula_for_any_block_width_with_weights_and_odd_
         if block is not None:  # the weighted counts do not depend on the block width
             with np.errstate(invalid="ignore"):
                 assert np.array_equal(got_w, bin_counts(x, lo, hi, nb, groups, 3, w))
+    # every row in one group (the usual leaf): the group's offset joins the features'
+    with np.errstate(invalid="ignore"):
+        one = bin_counts(x, lo, hi, nb, np.full(70, 2), 3, block=4)
+    assert np.array_equal(one[2], want.sum(axis=0)) and not one[:2].any()
     # fewer rows than bins: the row-by-row path
     with np.errstate(invalid="ignore"):
         few = bin_counts(x[:4], lo, hi, 50, groups[:4], 3, block=2)

@@ -285,12 +285,13 @@ class Leaf:
     """
 
     __slots__ = ("segment", "index", "layout", "n_states", "window_frames", "window_states",
-                 "_x", "window_time", "window_box", "n")
+                 "_x", "_rows", "window_time", "window_box", "n")
 
     def __init__(self, segment, index, layout, n_states, frames, states, x, time, box, n):
         self.segment, self.index, self.layout, self.n_states = segment, index, layout, n_states
         self.window_frames, self.window_states = frames, states
         self._x = x if isinstance(x, np.ndarray) else list(x)
+        self._rows = None  # the leaf's rows joined, when they span two row blocks
         self.window_time, self.window_box, self.n = time, box, n
 
     @property
@@ -317,13 +318,15 @@ class Leaf:
     def x(self):
         if isinstance(self._x, np.ndarray):
             return self._x[:self.n]
-        blocks, rows = [], 0
-        for block in self._x:  # only the blocks of the leaf's rows (not the halo's)
-            blocks.append(block[:self.n - rows])
-            rows += blocks[-1].shape[0]
-            if rows >= self.n:
-                break
-        return _joined(blocks)  # a view when they are in one block
+        if self._rows is None:  # joined once per leaf, whichever passes ask for them
+            blocks, rows = [], 0
+            for block in self._x:  # only the blocks of the leaf's rows (not the halo's)
+                blocks.append(block[:self.n - rows])
+                rows += blocks[-1].shape[0]
+                if rows >= self.n:
+                    break
+            self._rows = _joined(blocks)  # a view when they are in one block
+        return self._rows
 
     @property
     def time(self):

@@ -37,7 +37,7 @@ import math
 
 import numpy as np
 
-from ..passes import FeaturePass, frame_keys, thinning_stride
+from ..passes import FeaturePass, frame_keys, group_rows, thinning_stride
 from ..stats.moments import DiagonalLaggedMoments
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
@@ -352,20 +352,23 @@ class CVReportPass(FeaturePass):
             cv[:, c] = _combine(z, p.cols, p.w)
         keys = frame_keys(leaf.layout, leaf.frames, folds=self.folds)
         w = leaf.weights  # biased runs: each frame counts with its weight
+        # the leaf's rows of each held-out fold (usually one), with their z and weights
+        groups = [(k, z[rows], keys.states[rows], None if w is None else w[rows])
+                  for (k,), rows in group_rows(keys.fold)]
         hist = []
         for p in self.plans:
-            h = np.zeros((leaf.n_states, p.n_bins + 2))
+            nb2 = p.n_bins + 2
+            h = np.zeros(leaf.n_states * nb2)
             width = (p.high - p.low) / p.n_bins
-            for k in np.unique(keys.fold).tolist():
-                rows = np.flatnonzero(keys.fold == k)
+            for k, zk, sk, wk in groups:
                 a, b = p.maps[k]
-                u = a * _combine(z[rows], p.cols, p.fold_w[k]) + b
+                u = a * _combine(zk, p.cols, p.fold_w[k]) + b
                 b_idx = np.clip(np.floor((u - p.low) / width), 0, p.n_bins - 1)
                 b_idx = b_idx.astype(np.int64) + 1
                 b_idx[u < p.low] = 0
                 b_idx[u > p.high] = p.n_bins + 1
-                np.add.at(h, (keys.states[rows], b_idx), 1.0 if w is None else w[rows])
-            hist.append(h)
+                h += np.bincount(sk * nb2 + b_idx, weights=wk, minlength=h.size)
+            hist.append(h.reshape(leaf.n_states, nb2))
         lay = leaf.layout
         kept = np.flatnonzero((leaf.frames - lay.lo) % self.strides[leaf.segment] == 0)
         traces = ([(leaf.segment, leaf.frames[kept].copy(), cv[kept].copy(),

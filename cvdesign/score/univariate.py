@@ -137,6 +137,8 @@ def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=No
     width = high - low
     offsets = np.arange(block) * nb                # feature offset within a block
     grouped = bool(groups.any())
+    # one group for every row (the usual leaf): its offset joins the features' offsets
+    single = int(groups[0]) if grouped and not (groups != groups[0]).any() else None
     flat = out.reshape(-1)
     w = None if weights is None else np.repeat(weights, block)
     for lo in range(0, n_feat, block):
@@ -149,17 +151,21 @@ def bin_counts(x, low, high, n_bins, groups, n_groups, weights=None, *, block=No
         np.minimum(t, nb - 1, out=t)
         b = scratch("bin_index", (n_frames, m), np.intp)
         b[...] = t                                 # truncation: floor of t >= 0
-        b += offsets[:m]
+        size = m * nb
         if by_row:  # a row holds each feature once: no repeated index within a row
+            b += offsets[:m]
             b += lo * nb
             if grouped:
                 b += (groups * (n_feat * nb))[:, None]
             for row in b:
                 flat[row] += 1.0
             continue
-        size = m * nb
-        if grouped:
-            b += (groups * size)[:, None]          # group offset
+        if single is not None:
+            b += offsets[:m] + single * size       # feature and group offsets in one pass
+        else:
+            b += offsets[:m]
+            if grouped:
+                b += (groups * size)[:, None]      # group offset
         if w is not None and w.size != b.size:  # (the last, narrower block)
             w = np.repeat(weights, m)
         c = np.bincount(b.ravel(), weights=w, minlength=n_groups * size)

@@ -26,8 +26,8 @@ subprocess, whose peak resident memory (``ru_maxrss``) is reported:
   ``--heavy-sizes`` (default options only); ratio to the smallest size [at most 1.2];
 * ``featurize``: the pool's features (``Pool.features``, per kind) against
   ``mdtraj.compute_distances`` / ``compute_angles`` / ``compute_dihedrals`` on the same
-  atoms and frames in memory, in the engine's read chunks, every chunk's result kept
-  (also shown: the same mdtraj call written into a new float64 array, the floor of a
+  atoms and frames in memory, in the engine's read chunks, each chunk's result dropped
+  before the next on both sides, as in the engine (also shown: the same mdtraj call written into a new float64 array, the floor of a
   float64 result built on mdtraj's float32 one); and
   reading + featurizing every frame through the pass engine (a pass that keeps nothing)
   against ``mdtraj.load(atom_indices=...)`` + the same calls [at most 1.3]; the calls
@@ -227,6 +227,12 @@ def _best_interleaved(fns, repeat):
     return [min(t) for t in times]
 
 
+def _each(chunks, fn):
+    """``fn(chunk)`` for every chunk, each result dropped before the next call."""
+    for c in chunks:
+        fn(c)
+
+
 def _written(out, values):
     """`values` written into `out`; `out`."""
     out[...] = values
@@ -280,11 +286,14 @@ def child_featurize(args):
                   "dihedral": md.compute_dihedrals}[pkind]
             # the floor of a float64 result built on mdtraj's float32 one: the same call
             # written into a new float64 array (what Pool.features does for one kind)
+            # each chunk's result is dropped before the next, on every side, as the engine
+            # does (it bins and sums a chunk's features, then reads the next); keeping them
+            # all would time the kernel's fresh pages for twice mdtraj's bytes instead
             base, floor, ours = _best_interleaved([
-                lambda: [fn(c, tuples, periodic=False) for c in chunks],
-                lambda: [_written(np.empty((c.n_frames, len(tuples))),
-                                  fn(c, tuples, periodic=False)) for c in chunks],
-                lambda: [sub.features(c, atom_indices=atoms) for c in chunks]], repeat)
+                lambda: _each(chunks, lambda c: fn(c, tuples, periodic=False)),
+                lambda: _each(chunks, lambda c: _written(np.empty((c.n_frames, len(tuples))),
+                                                         fn(c, tuples, periodic=False))),
+                lambda: _each(chunks, lambda c: sub.features(c, atom_indices=atoms))], repeat)
             out[f"{kind}:{pkind}"] = {"base": base, "ours": ours, "floor": floor,
                                       "n": len(idx), "frames": traj.n_frames}
         # reading + featurizing every frame of both states, the whole pool
