@@ -187,3 +187,36 @@ def test_labels_stay_unique_when_atom_names_repeat():
     assert {"dist LIG1:C[0]-S[5]", "dist LIG1:C[2]-S[5]", "dist LIG1:C[0]-S[4]"} <= set(labels)
     assert "angle LIG1:C[0]-O-C[2]" in labels  # O is not repeated: no index
     assert not any("O[" in lab or "N[" in lab for lab in labels)
+
+
+def test_the_default_prefilter_stride_keeps_about_2000_frames_of_the_smallest_state(tmp_path):
+    """Every 10th frame (MIN_PREFILTER_STRIDE) for the usual runs; sparser only when every
+    state has over 20,000 frames (PREFILTER_FRAMES = 2000 of the smallest state; common
+    practice for means of distances), frame ranges and labels counted; an explicit stride
+    is used as given."""
+    from cvdesign import Source
+    from cvdesign.pool import build_pool, prefilter_stride_for, state_frames
+
+    rng = np.random.default_rng(3)
+    top = md.Topology()
+    res = top.add_residue("TOY", top.add_chain())
+    for name in ("C1", "C2", "C3", "C4"):
+        top.add_atom(name, md.element.carbon, res)
+    paths = []
+    for k, n in enumerate((45_000, 33_000)):
+        xyz = np.array([[0, 0, 0], [0.5, 0, 0], [0, 0.6, 0], [0.4, 0.4, 0.3]]) \
+            + rng.normal(0, 0.02, (n, 4, 3))
+        path = tmp_path / f"run{k}.dcd"
+        md.Trajectory(xyz.astype(np.float32), top).save(str(path))
+        paths.append(str(path))
+    labels = ["B" if 1000 <= i < 4000 else (None if i < 10 else "A") for i in range(33_000)]
+    src = Source(top).add(paths[0], "A", frames=(0, 27_000)).add_labelled(paths[1], labels)
+    assert state_frames(src) == [27_000 + 33_000 - 3000 - 10, 3000]
+    assert prefilter_stride_for(src) == 10  # B has 3000 frames: every 10th
+    big = Source(top).add(paths[0], "A").add(paths[1], "B", frames=(100, None))
+    assert state_frames(big) == [45_000, 32_900]
+    assert prefilter_stride_for(big) == 16  # 32,900 // 2000
+    pool = build_pool(big, kinds=("distance",), cutoff=5.0)
+    assert any("every 16th frame" in note for note in pool.notes), pool.notes
+    pool = build_pool(big, kinds=("distance",), cutoff=5.0, stride=3)
+    assert any("every 3rd frame" in note for note in pool.notes), pool.notes

@@ -120,8 +120,10 @@ def _add_suggest_options(p):
                         "at this distance counts 1/2 (rational switching function, exponents "
                         f"{COORDINATION_EXPONENTS[0]} and {COORDINATION_EXPONENTS[1]}; default: "
                         f"{COORDINATION_R0_NM:g} nm)")
-    p.add_argument("--prefilter-stride", type=_positive_int, default=10, metavar="N",
-                   help="the distance prefilter reads every N-th frame (default: 10)")
+    p.add_argument("--prefilter-stride", type=_positive_int, default=None, metavar="N",
+                   help="the distance prefilter reads every N-th frame of each state "
+                        "(default: 10, or more so that the state with the fewest frames "
+                        "still gives about 2000)")
     p.add_argument("--max-terms", type=_positive_int, default=5, metavar="K",
                    help="largest number of descriptors in one combination (default: 5)")
     p.add_argument("--suggestions", type=_positive_int, default=10, metavar="N",
@@ -1293,7 +1295,7 @@ def _cmd_demo(args):
     states = [[name] + [str(data / f) for f in entry["files"]]
               for name, entry in manifest["states"].items()]
     ns = argparse.Namespace(select=None, kinds=DEFAULT_KINDS, cutoff=1.0,
-                            prefilter_stride=10, coordination_r0=COORDINATION_R0_NM, max_terms=5,
+                            prefilter_stride=None, coordination_r0=COORDINATION_R0_NM, max_terms=5,
                             suggestions=10, folds=4,
                             force=args.force, quiet=args.quiet, objective="separate", lag=None,
                             method="hlda", bootstrap=args.bootstrap, seed=0,

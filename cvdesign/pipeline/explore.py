@@ -768,7 +768,7 @@ def _fmt_ts(t):
 
 
 def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
-                   kinds=("distance", "angle", "dihedral"), cutoff=1.0, prefilter_stride=10,
+                   kinds=("distance", "angle", "dihedral"), cutoff=1.0, prefilter_stride=None,
                    coordination_r0=0.45, screen_size=200, max_slow=3, seed=0, executor=None,
                    progress=None):
     """Propose metastable states of unlabelled runs from their slow coordinates.

@@ -29,6 +29,7 @@ serially, on local processes or on a Dask cluster (``executor=``), whatever the
 task split or chunk size. Memory does not depend on trajectory length.
 """
 
+import dataclasses
 import logging
 import math
 from dataclasses import dataclass
@@ -42,7 +43,7 @@ from ..kinds import DEFAULT_KINDS
 from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
                       LaggedPass, PoolFeaturizer, ProjectionRangePass, ScreeningPass, plan_tasks,
                       reference_features, run_pass)
-from ..pool import build_pool
+from ..pool import build_pool, prefilter_stride_for
 from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
@@ -98,7 +99,7 @@ class SuggestConfig:
     selection: str = None
     kinds: tuple = DEFAULT_KINDS
     cutoff_nm: float = 1.0
-    prefilter_stride: int = 10
+    prefilter_stride: int | None = None
     coordination_r0_nm: float = COORDINATION_R0_NM
     max_terms: int = 5
     n_suggestions: int = 10
@@ -119,6 +120,8 @@ class SuggestConfig:
                 "n_folds": 2, "n_seeds": 1, "prefilter_stride": 1, "n_bootstrap": 0, "seed": 0}
         for name, lo in ints.items():
             v = getattr(self, name)
+            if v is None and name == "prefilter_stride":  # the source's default
+                continue
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < lo:
                 raise InputError(f"{name}={v!r} must be an integer of at least {lo}")
         if not 0 < self.max_correlation <= 1:
@@ -165,7 +168,7 @@ class SuggestConfig:
 
 # --------------------------------------------------------------------------- the job
 def suggest(source, *, objective="separate", lag=None, method="hlda", selection=None,
-            kinds=DEFAULT_KINDS, cutoff=1.0, prefilter_stride=10,
+            kinds=DEFAULT_KINDS, cutoff=1.0, prefilter_stride=None,
             coordination_r0=COORDINATION_R0_NM,
             max_terms=5, n_suggestions=10, screen_size=200, shortlist_size=40,
             max_correlation=0.95, n_folds=4, n_seeds=5, min_gain=0.01, shrinkage=1e-3,
@@ -217,8 +220,11 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         Prefilter, in nm: an atom pair (or, for the residue kinds, a residue
         pair, by the distance of their centers) is kept if its mean distance
         is below `cutoff` in at least one state.
-    prefilter_stride : int, default=10
-        The prefilter uses every `prefilter_stride`-th frame of each state.
+    prefilter_stride : int, default=None
+        The prefilter uses every `prefilter_stride`-th frame of each state; None:
+        every 10th, or sparser so that the state with the fewest frames still gives
+        about 2,000 (:func:`cvdesign.pool.prefilter_stride_for`). The spec's
+        provenance records the stride used.
     coordination_r0 : float, default=0.45
         Switching distance of the coordination numbers, nm (exponents 6, 12).
     max_terms : int, default=5
@@ -336,6 +342,8 @@ def _suggest(source, config, executor, progress, checksums):
                                    config.selection)
     say(selection)
     say("building the candidate pool")
+    if config.prefilter_stride is None:  # the stride used goes into the specs' provenance
+        config = dataclasses.replace(config, prefilter_stride=prefilter_stride_for(source))
     pool = build_pool(source, selection=config.selection, kinds=config.kinds,
                       cutoff=config.cutoff_nm, stride=config.prefilter_stride,
                       coordination_r0=config.coordination_r0_nm, executor=executor)

@@ -37,7 +37,8 @@ from .descriptors import Descriptor, _make, _residue_labels, atom_labels
 from .features import Pool
 
 __all__ = ["candidate_pool", "candidate_pairs", "prefilter_pairs", "prefilter_group_pairs",
-           "residue_groups", "build_pool"]
+           "residue_groups", "build_pool", "prefilter_stride_for", "state_frames",
+           "PREFILTER_FRAMES", "MIN_PREFILTER_STRIDE"]
 
 
 def _bond_graph(topology, atoms):
@@ -300,10 +301,79 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
     note = (
         f"distances: kept {int(keep.sum())} of {pairs.shape[0]} pairs with a mean below "
         f"{cutoff:g} nm in at least one state, dropped {int((~keep).sum())} "
-        f"(means over every {stride}th frame of each state in each file, "
+        f"(means over every {_ordinal(stride)} frame of each state in each file, "
         f"{n_frames} frames)"
     )
     return pairs[keep], note
+
+
+def _ordinal(n):
+    """``'1st'``, ``'2nd'``, ``'3rd'``, ``'10th'``, ``'22nd'``, ...
+
+    Examples
+    --------
+    >>> [_ordinal(n) for n in (1, 2, 3, 4, 11, 12, 13, 21, 102)]
+    ['1st', '2nd', '3rd', '4th', '11th', '12th', '13th', '21st', '102nd']
+    """
+    n = int(n)
+    suffix = "th" if 10 <= n % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"
+
+
+#: Frames per state that the default prefilter stride aims at: means of distances over a few
+#: thousand frames spread over the runs decide a cutoff as well as more would (common
+#: practice); a run of 10^6 frames per state need not compute every pair on 10^5 of them.
+PREFILTER_FRAMES = 2000
+#: The default prefilter stride is never below this (every 10th frame).
+MIN_PREFILTER_STRIDE = 10
+
+
+def state_frames(source):
+    """Frames of each state of a source (in the order of ``source.states``), counted in the
+    files' headers (every frame with that state, within the segments' frame ranges).
+
+    Examples
+    --------
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> from cvdesign.io.source import Source
+    >>> top, files = demo_inputs()
+    >>> state_frames(Source.from_states(top, files))
+    [6000, 6000]
+    """
+    from ..io.source import file_frames
+
+    lengths = {}
+    counts = dict.fromkeys(source.states, 0)
+    for seg in source.segments:
+        key = str(seg.path)
+        if key not in lengths:
+            lengths[key] = file_frames(seg.path)
+        n = lengths[key]
+        if seg.labels is not None:
+            for x in seg.labels[:n]:
+                if x is not None:
+                    counts[x] += 1
+        else:
+            counts[seg.state] += len(range(min(seg.start or 0, n),
+                                           n if seg.stop is None else min(seg.stop, n)))
+    return [counts[s] for s in source.states]
+
+
+def prefilter_stride_for(source):
+    """The default prefilter stride of a source: every :data:`MIN_PREFILTER_STRIDE`-th frame,
+    or sparser, so that the state with the fewest frames still gives about
+    :data:`PREFILTER_FRAMES` of them.
+
+    Examples
+    --------
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> from cvdesign.io.source import Source
+    >>> top, files = demo_inputs()
+    >>> prefilter_stride_for(Source.from_states(top, files))  # 6000 frames per state
+    10
+    """
+    counts = state_frames(source)
+    return max(MIN_PREFILTER_STRIDE, (min(counts) if counts else 0) // PREFILTER_FRAMES)
 
 
 def _frames_read(source, step):
@@ -564,12 +634,12 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
         label="prefilter (residues)", executor=executor)
     keep = (means < cutoff).any(axis=0)
     note = (f"group pairs: kept {int(keep.sum())} of {len(pairs)} with a mean center "
-            f"distance below {cutoff:g} nm in at least one state (every {stride}th frame, "
+            f"distance below {cutoff:g} nm in at least one state (every {_ordinal(stride)} frame, "
             f"{n_frames} frames)")
     return pairs[keep], note
 
 
-def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, stride=10,
+def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, stride=None,
                coordination_r0=COORDINATION_R0_NM, executor=None):
     """Candidate pool for a source: select atoms, enumerate, prefilter distances.
 
@@ -585,8 +655,9 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
         Prefilter cutoff, in nm (``inf``: keep every pair): on the mean atom
         distance for distances, on the mean distance of the residues' mass
         centers for the group kinds.
-    stride : int, default=10
-        Frame stride of the prefilter pass.
+    stride : int, default=None
+        Frame stride of the prefilter pass; None: :func:`prefilter_stride_for` the
+        source (every 10th frame, sparser when every state has over 20,000).
     coordination_r0 : float, default=COORDINATION_R0_NM
         Switching distance of the coordination numbers, nm.
     executor : cvdesign.parallel.Executor, default=None
@@ -605,6 +676,8 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
     kinds = _check_kinds(kinds)
     atoms = select_atoms(source.topology, selection)
     notes = [f"selection: {atoms.size} atoms"]
+    if stride is None and ("distance" in kinds or any(k in kinds for k in GROUP_KINDS)):
+        stride = prefilter_stride_for(source)
     pairs = None
     if "distance" in kinds:
         pairs, note = candidate_pairs(source.topology, atoms)
