@@ -1,13 +1,12 @@
 """A dihedral's pool features (cos, sin) against mdtraj's dihedrals on real protein data.
 
-`Pool.features` forms cos and sin of a dihedral from mdtraj's bond vectors without the
-angle (`cvdesign.pool.features._dihedral_cos_sin`, the atan2 arguments of Blondel and
-Karplus, J. Comput. Chem. 17, 1132-1141, 1996). These tests check it against the cos and
-sin of `mdtraj.compute_dihedrals` and of `cvdesign.geometry.dihedrals` (float64) on
-adenylate kinase from the MDAnalysis test data (Beckstein et al., J. Mol. Biol. 2009; the
-solvated copy in a triclinic box, adk_oplsaa, whose protein is split by the boundary),
-without and with periodic boxes, and that a frame's values do not depend on the frames
-or the blocks it is computed with.
+`Pool.features` gives the cos and sin of mdtraj's dihedral angle. These tests check them
+against the cos and sin of `mdtraj.compute_dihedrals` and of `cvdesign.geometry.dihedrals`
+(float64; the atan2 arguments of Blondel and Karplus, J. Comput. Chem. 17, 1132-1141,
+1996) on adenylate kinase from the MDAnalysis test data (Beckstein et al., J. Mol. Biol.
+2009; the solvated copy in a triclinic box, adk_oplsaa, whose protein is split by the
+boundary), without and with periodic boxes, and that a frame's values do not depend on
+the frames it is computed with.
 """
 
 import mdtraj as md
@@ -17,7 +16,6 @@ import pytest
 from cvdesign.geometry import dihedrals as reference_dihedrals
 from cvdesign.io.source import select_atoms
 from cvdesign.pool import Descriptor, Pool, candidate_pool
-from cvdesign.pool import features as features_module
 
 # Both sides work in float32 (mdtraj's coordinates and geometry); float32 rounding of
 # bond vectors of ~0.15 nm leaves errors of a few 1e-7 in cos and sin, more for nearly
@@ -66,17 +64,11 @@ def test_dihedral_cos_sin_match_mdtraj_and_the_float64_reference_on_adenylate_ki
     assert len(signs) == 4
 
 
-def test_a_frames_dihedral_features_do_not_depend_on_its_chunk_or_the_blocks(
-        adk_fragment, monkeypatch):
+def test_a_frames_dihedral_features_do_not_depend_on_its_chunk(adk_fragment):
     traj, pool = adk_fragment
     whole = pool.features(traj)
     single = np.concatenate([pool.features(traj[i]) for i in range(traj.n_frames)])
     assert np.array_equal(whole, single)
-    # blocks of 7 (frame, dihedral) values: several blocks along the dihedrals of a frame
-    monkeypatch.setattr(features_module, "_DIHEDRALS_PER_BLOCK", 7)
-    assert np.array_equal(pool.features(traj), whole)
-    # 3 frames per block of all the dihedrals
-    monkeypatch.setattr(features_module, "_DIHEDRALS_PER_BLOCK", 3 * len(pool))
     assert np.array_equal(pool.features(traj[2:9]), whole[2:9])
 
 
