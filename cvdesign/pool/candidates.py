@@ -340,22 +340,14 @@ def state_frames(source):
     >>> state_frames(Source.from_states(top, files))
     [6000, 6000]
     """
-    from ..io.source import file_frames
-
-    lengths = {}
     counts = dict.fromkeys(source.states, 0)
-    for seg in source.segments:
-        key = str(seg.path)
-        if key not in lengths:
-            lengths[key] = file_frames(seg.path)
-        n = lengths[key]
+    for seg, n, frames in _segment_frames(source):
         if seg.labels is not None:
             for x in seg.labels[:n]:
                 if x is not None:
                     counts[x] += 1
         else:
-            counts[seg.state] += len(range(min(seg.start or 0, n),
-                                           n if seg.stop is None else min(seg.stop, n)))
+            counts[seg.state] += len(frames)
     return [counts[s] for s in source.states]
 
 
@@ -376,22 +368,28 @@ def prefilter_stride_for(source):
     return max(MIN_PREFILTER_STRIDE, (min(counts) if counts else 0) // PREFILTER_FRAMES)
 
 
-def _frames_read(source, step):
-    """Frames a read of every `step`-th frame of each segment yields (every frame with a
-    state for step 1): the total of the prefilter's progress bar."""
+def _segment_frames(source, step=1):
+    """``(segment, frames in its file, range of its frames taken with `step`)`` of every
+    segment of a source, each file's frames counted once (in its header)."""
     from ..io.source import file_frames
 
-    lengths, total = {}, 0
+    lengths = {}
     for seg in source.segments:
         key = str(seg.path)
         if key not in lengths:
             lengths[key] = file_frames(seg.path)
         n = lengths[key]
-        if seg.labels is not None:
-            total += sum(x is not None for x in seg.labels[:n])
-        else:
-            total += len(range(min(seg.start or 0, n),
-                               n if seg.stop is None else min(seg.stop, n), step))
+        yield seg, n, range(min(seg.start or 0, n), n if seg.stop is None else min(seg.stop, n),
+                            step)
+
+
+def _frames_read(source, step):
+    """Frames a read of every `step`-th frame of each segment yields (every frame with a
+    state for step 1): the total of the prefilter's progress bar."""
+    total = 0
+    for seg, n, frames in _segment_frames(source, step):
+        total += sum(x is not None for x in seg.labels[:n]) if seg.labels is not None \
+            else len(frames)
     return total
 
 
