@@ -1,5 +1,7 @@
 """Candidate enumeration on hand-built molecules with hand-counted answers."""
 
+import re
+
 import mdtraj as md
 import numpy as np
 import pytest
@@ -189,11 +191,12 @@ def test_labels_stay_unique_when_atom_names_repeat():
     assert not any("O[" in lab or "N[" in lab for lab in labels)
 
 
-def test_the_default_prefilter_stride_keeps_about_2000_frames_of_the_smallest_state(tmp_path):
+def test_the_default_prefilter_stride_keeps_about_2000_frames_of_the_smallest_state(
+        tmp_path, demo_files):
     """Every 10th frame (MIN_PREFILTER_STRIDE) for the usual runs; sparser only when every
-    state has over 20,000 frames (PREFILTER_FRAMES = 2000 of the smallest state; common
+    state has 22,000 frames or more (PREFILTER_FRAMES = 2000 of the smallest state; common
     practice for means of distances), frame ranges and labels counted; an explicit stride
-    is used as given."""
+    is used as given; the specs record the stride used."""
     from cvdesign import Source
     from cvdesign.pool import build_pool, prefilter_stride_for, state_frames
 
@@ -220,3 +223,28 @@ def test_the_default_prefilter_stride_keeps_about_2000_frames_of_the_smallest_st
     assert any("every 16th frame" in note for note in pool.notes), pool.notes
     pool = build_pool(big, kinds=("distance",), cutoff=5.0, stride=3)
     assert any("every 3rd frame" in note for note in pool.notes), pool.notes
+    from cvdesign import suggest
+
+    res = suggest(big, kinds=("distance",), cutoff=5.0, n_bootstrap=0, max_terms=1,
+                  n_suggestions=1)
+    assert res.specs[0]["provenance"]["parameters"]["prefilter_stride"] == 16
+    top, states = demo_files
+    demo = Source.from_states(top, {k: v[:1] for k, v in states.items()})
+    res = suggest(demo, kinds=("angle",), n_bootstrap=0, max_terms=1, n_suggestions=1)
+    assert res.specs[0]["provenance"]["parameters"]["prefilter_stride"] is None  # none ran
+
+
+@pytest.mark.parametrize("stride", [0, -1, True, 2.5, "3"])
+def test_a_bad_prefilter_stride_is_refused_naming_the_argument(demo_files, stride):
+    from cvdesign import Source
+    from cvdesign.pipeline.explore import propose_states
+    from cvdesign.pool import build_pool
+
+    top, states = demo_files
+    src = Source(top).add(states["closed"][0], "closed")
+    message = r"=%s must be a whole number of frames of at least 1" % re.escape(repr(stride))
+    with pytest.raises(InputError, match="stride" + message):
+        build_pool(src, stride=stride)
+    runs = Source(top).add(states["closed"][0], "runs")
+    with pytest.raises(InputError, match="prefilter_stride" + message):
+        propose_states(runs, lag=1.0, prefilter_stride=stride)

@@ -171,6 +171,41 @@ def _biased(small, tmp_path):
     return src, plan
 
 
+def test_report_pass_equals_a_direct_computation_when_leaves_cross_fold_boundaries(small):
+    """One run per state: the folds are contiguous blocks, so some leaves hold frames of two
+    folds, each counted along its own fold's direction."""
+    top, feat = small["top"], small["feat"]
+    src = Source(top)
+    for seg in small["src"].segments[::2]:  # the first file of each state
+        src.add(seg.path, seg.state, frames=(seg.start, seg.stop))
+    plan = plan_tasks(src, leaf_frames=64)
+    folds = Folds.plan(plan.layouts, 4)
+    assert folds.n_folds == 4
+    rng = np.random.default_rng(12)
+    plans = []
+    for k, p in enumerate(small["plans"]):  # the same CVs, a direction and map per fold
+        fold_w = [p.w + rng.normal(0, 0.1, p.w.size) for _ in range(4)]
+        maps = [(float(rng.uniform(0.5, 2.0)), float(rng.normal())) for _ in range(4)]
+        plans.append(CVPlan(p.cols, p.w, fold_w, maps, -3.0, 3.0, 60 + k))
+    crossing = 0
+    for lay in plan.layouts:
+        for leaf in plan.leaves(lay.index):
+            frames = np.arange(max(lay.lo, leaf * 64), min(lay.hi, (leaf + 1) * 64))
+            crossing += np.unique(frame_keys(lay, frames, folds=folds).fold).size > 1
+    assert crossing >= 2
+    strides = {lay.index: trace_stride(lay.hi - lay.lo) for lay in plan.layouts}
+    other = dict(small, src=src, plan=plan, folds=folds, strides=strides, plans=plans)
+    make = lambda: CVReportPass(feat, plans, folds, strides,  # noqa: E731
+                                small["lags"], [0.1, -0.2], columns=np.arange(3),
+                                center=small["center"], scale=small["scale"])
+    got = run_pass(make(), src, tasks=plan)
+    hist, _, rho = _direct(other)
+    for g, h in zip(got["hist"], hist):
+        np.testing.assert_array_equal(g, h)
+    for lag, m in zip(small["lags"], got["lagged"]):
+        np.testing.assert_allclose(m.autocorrelation(), rho[lag], rtol=1e-9)
+
+
 def test_report_pass_weighs_the_frames_and_pairs_of_biased_runs(small, tmp_path):
     """A biased run's frames count with their weights in the held-out histograms, and its
     lagged pairs (rescaled time) weigh as their first frame, as in the ranking's slowness;

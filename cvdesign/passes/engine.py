@@ -298,6 +298,7 @@ class Leaf:
     def window_x(self):
         if not isinstance(self._x, np.ndarray):  # joined once, on first use
             self._x = _joined(self._x)
+            self._rows = None  # (x is a view of it from now on)
         return self._x
 
     def window_columns(self, columns):

@@ -68,7 +68,7 @@ from ..io.source import Source
 from ..parallel import using_executor
 from ..passes import (LaggedPass, Pass, PoolFeaturizer, ScreeningPass, frame_keys, plan_tasks,
                       reference_features, run_pass, thinning_stride)
-from ..pool import build_pool
+from ..pool import build_pool, check_prefilter_stride
 from ..progress import stage_messages
 from ..search import standardize_lagged
 from ..stats.moments import LaggedMoments, merge_all
@@ -853,6 +853,7 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
         raise InputError(f"lag={lag!r} must be a positive time in ps (give --lag PS)")
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):
         raise InputError(f"n_states={n_states!r} must be an integer of at least 2")
+    check_prefilter_stride(prefilter_stride)
     with using_executor(executor) as executor:
         executor.start()  # local workers start up while the pool is enumerated
         return _propose(source, executor, stage_messages(_log, progress), lag=float(lag),

@@ -43,7 +43,7 @@ from ..kinds import DEFAULT_KINDS
 from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
                       LaggedPass, PoolFeaturizer, ProjectionRangePass, ScreeningPass, plan_tasks,
                       reference_features, run_pass)
-from ..pool import build_pool, prefilter_stride_for
+from ..pool import build_pool, needs_prefilter, prefilter_stride_for
 from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..score.univariate import overlap_coefficient
@@ -342,7 +342,8 @@ def _suggest(source, config, executor, progress, checksums):
                                    config.selection)
     say(selection)
     say("building the candidate pool")
-    if config.prefilter_stride is None:  # the stride used goes into the specs' provenance
+    if config.prefilter_stride is None and needs_prefilter(config.kinds):
+        # the stride used goes into the specs' provenance (None: no prefilter ran)
         config = dataclasses.replace(config, prefilter_stride=prefilter_stride_for(source))
     pool = build_pool(source, selection=config.selection, kinds=config.kinds,
                       cutoff=config.cutoff_nm, stride=config.prefilter_stride,

@@ -38,7 +38,8 @@ from .features import Pool
 
 __all__ = ["candidate_pool", "candidate_pairs", "prefilter_pairs", "prefilter_group_pairs",
            "residue_groups", "build_pool", "prefilter_stride_for", "state_frames",
-           "PREFILTER_FRAMES", "MIN_PREFILTER_STRIDE"]
+           "check_prefilter_stride", "needs_prefilter", "PREFILTER_FRAMES",
+           "MIN_PREFILTER_STRIDE"]
 
 
 def _bond_graph(topology, atoms):
@@ -351,10 +352,43 @@ def state_frames(source):
     return [counts[s] for s in source.states]
 
 
+def check_prefilter_stride(stride, name="prefilter_stride"):
+    """`stride` as an int of at least 1, or None (the source's default); else an
+    :class:`~cvdesign.errors.InputError` naming the argument.
+
+    Examples
+    --------
+    >>> check_prefilter_stride(None), check_prefilter_stride(np.int64(3))
+    (None, 3)
+    >>> check_prefilter_stride(2.5)
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: prefilter_stride=2.5 must be a whole number of frames of at least 1 (or None: every 10th frame, sparser for long runs)
+    """
+    if stride is None:
+        return None
+    if isinstance(stride, bool) or not isinstance(stride, (int, np.integer)) or stride < 1:
+        raise InputError(f"{name}={stride!r} must be a whole number of frames of at least 1 "
+                         "(or None: every 10th frame, sparser for long runs)")
+    return int(stride)
+
+
+def needs_prefilter(kinds):
+    """Whether a pool of these kinds has a prefilter pass (distances, residue-group kinds).
+
+    Examples
+    --------
+    >>> needs_prefilter(("angle", "dihedral")), needs_prefilter(("distance",))
+    (False, True)
+    """
+    return any(k == "distance" or k in GROUP_KINDS for k in kinds)
+
+
 def prefilter_stride_for(source):
     """The default prefilter stride of a source: every :data:`MIN_PREFILTER_STRIDE`-th frame,
     or sparser, so that the state with the fewest frames still gives about
-    :data:`PREFILTER_FRAMES` of them.
+    :data:`PREFILTER_FRAMES` of them (sparser than every 10th frame once the smallest
+    state has 22,000 frames or more).
 
     Examples
     --------
@@ -655,7 +689,7 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
         centers for the group kinds.
     stride : int, default=None
         Frame stride of the prefilter pass; None: :func:`prefilter_stride_for` the
-        source (every 10th frame, sparser when every state has over 20,000).
+        source (every 10th frame, sparser once every state has 22,000 or more).
     coordination_r0 : float, default=COORDINATION_R0_NM
         Switching distance of the coordination numbers, nm.
     executor : cvdesign.parallel.Executor, default=None
@@ -674,7 +708,8 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
     kinds = _check_kinds(kinds)
     atoms = select_atoms(source.topology, selection)
     notes = [f"selection: {atoms.size} atoms"]
-    if stride is None and ("distance" in kinds or any(k in kinds for k in GROUP_KINDS)):
+    stride = check_prefilter_stride(stride, "stride")
+    if stride is None and needs_prefilter(kinds):
         stride = prefilter_stride_for(source)
     pairs = None
     if "distance" in kinds:
