@@ -439,18 +439,11 @@ def _lag_sums(leaf, d, lags):
         i, j = leaf.pairs(lag)
         if i.size == 0:
             continue
-        x, y = d[i], d[j]
-        if w is None:
-            count[g] = float(i.size)
-            sums[0, g], sums[1, g] = x.sum(axis=0), y.sum(axis=0)
-            sums[2, g], sums[3, g], sums[4, g] = (x * x).sum(axis=0), (x * y).sum(axis=0), \
-                (y * y).sum(axis=0)
-        else:
-            wi = w[i]
-            count[g] = float(wi.sum())
-            sums[0, g], sums[1, g] = wi @ x, wi @ y
-            sums[2, g], sums[3, g], sums[4, g] = wi @ (x * x), wi @ (x * y), wi @ (y * y)
-        n_pairs[g] = i.size
+        # the sums of DiagonalLaggedMoments (d is already shifted), a pair weighing as its
+        # first frame
+        m = DiagonalLaggedMoments(n_cv).add_shifted(d[i], d[j], None if w is None else w[i])
+        count[g], n_pairs[g] = m.count, m.n_pairs
+        sums[:, g] = m.sum_x, m.sum_y, m.sum_xx, m.sum_xy, m.sum_yy
     return {"count": count, "n_pairs": n_pairs, "sums": sums}
 
 

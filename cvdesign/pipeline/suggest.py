@@ -29,10 +29,9 @@ serially, on local processes or on a Dask cluster (``executor=``), whatever the
 task split or chunk size. Memory does not depend on trajectory length.
 """
 
-import dataclasses
 import logging
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -344,7 +343,7 @@ def _suggest(source, config, executor, progress, checksums):
     say("building the candidate pool")
     if config.prefilter_stride is None and needs_prefilter(config.kinds):
         # the stride used goes into the specs' provenance (None: no prefilter ran)
-        config = dataclasses.replace(config, prefilter_stride=prefilter_stride_for(source))
+        config = replace(config, prefilter_stride=prefilter_stride_for(source))
     pool = build_pool(source, selection=config.selection, kinds=config.kinds,
                       cutoff=config.cutoff_nm, stride=config.prefilter_stride,
                       coordination_r0=config.coordination_r0_nm, executor=executor)
