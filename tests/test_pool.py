@@ -248,3 +248,56 @@ def test_a_bad_prefilter_stride_is_refused_naming_the_argument(demo_files, strid
     runs = Source(top).add(states["closed"][0], "runs")
     with pytest.raises(InputError, match="prefilter_stride" + message):
         propose_states(runs, lag=1.0, prefilter_stride=stride)
+
+
+def _coincident_chain(n_frames, seed, shift=0.0, coincide_from=None):
+    """Five bonded carbons with noise (nm); from frame `coincide_from` atom 2 sits on atom 1."""
+    rng = np.random.default_rng(seed)
+    base = np.array([[0, 0, 0], [0.15, 0, 0], [0.3, 0.1, 0], [0.45, 0.1, 0.1], [0.6, 0.2, 0.1]])
+    xyz = base + rng.normal(0.0, 0.01, (n_frames, 5, 3))
+    xyz[:, 4, 0] += shift
+    if coincide_from is not None:
+        xyz[coincide_from:, 2] = xyz[coincide_from:, 1]
+    return xyz.astype(np.float32)
+
+
+def test_an_undefined_angle_is_pi_over_2_as_the_spec_evaluator_gives_it_with_a_warning():
+    # mdtraj gives NaN for an angle with an arm of zero length; the pool's features must
+    # equal what cvdesign.geometry.angles (the spec's evaluator) gives there: pi/2, with a
+    # GeometryWarning. A NaN had reached the histograms and stopped suggest with
+    # "cannot merge histograms with different bins".
+    from cvdesign.geometry import GeometryWarning, angles
+
+    top = _topology(5, [(i, i + 1) for i in range(4)])
+    xyz = _coincident_chain(6, seed=1, coincide_from=3)
+    pool = candidate_pool(top, range(5), kinds=("angle",))
+    with pytest.warns(GeometryWarning, match=r"angle descriptors: 6 of 18 values in a chunk of "
+                      r"6 frames are undefined \(an arm has zero length: two atoms coincide\); "
+                      r"they were set to pi/2, as the spec's evaluator does\. First: atoms "
+                      r"\[0, 1, 2\]"):
+        got = pool.features(md.Trajectory(xyz, top))
+    with pytest.warns(GeometryWarning):
+        expected = angles(xyz.astype(np.float64), [d.atoms for d in pool.descriptors])
+    assert np.all(np.isfinite(got))
+    assert got[3:, :2].tolist() == [[float(np.float32(np.pi / 2))] * 2] * 3  # mdtraj's float32
+    np.testing.assert_allclose(got, expected, atol=1e-6)
+
+
+def test_suggest_runs_through_angles_that_are_undefined_in_some_frames(tmp_path):
+    import cvdesign
+    from cvdesign.geometry import GeometryWarning
+
+    top = _topology(5, [(i, i + 1) for i in range(4)])
+    files = {}
+    for state, shift, late in (("A", 0.0, None), ("B", 0.1, 150)):
+        path = tmp_path / f"{state}.dcd"
+        md.Trajectory(_coincident_chain(200, seed=len(files), shift=shift, coincide_from=late),
+                      top).save_dcd(str(path))
+        files[state] = [str(path)]
+    topology = tmp_path / "top.pdb"
+    md.Trajectory(_coincident_chain(1, seed=9), top).save_pdb(str(topology))
+    source = cvdesign.Source.from_states(str(topology), files)
+    with pytest.warns(GeometryWarning, match="they were set to pi/2"):
+        result = cvdesign.suggest(source, kinds=("angle",), n_bootstrap=0, max_terms=1,
+                                  selection="all")
+    assert result.specs and all(np.isfinite(row["heldout_score"]) for row in result.ranking)

@@ -8,13 +8,15 @@ kinds come from mdtraj's geometry, those of the group kinds from
 that the two agree).
 """
 
+import warnings
+
 import mdtraj as md
 import numpy as np
 
 from ..constants import COORDINATION_EXPONENTS
 from ..errors import InputError
 from ..geometry import coordination_pairs, distances as _pair_distances, group_centers
-from ..geometry import minimum_image, switching_function
+from ..geometry import GeometryWarning, minimum_image, switching_function
 from ..kinds import GROUP_KINDS, KINDS
 
 __all__ = ["Pool"]
@@ -34,6 +36,25 @@ def _columns(cols):
     if step > 0 and np.all(np.diff(cols) == step):
         return slice(int(cols[0]), int(cols[-1]) + 1, step)
     return cols
+
+
+def _undefined_angles(values, triples):
+    """Set the undefined angles of `values` (NaN from mdtraj: an arm of zero length, two
+    atoms coincide) to pi/2 rad in place, as :func:`cvdesign.geometry.angles` and so the
+    spec's evaluator do, and warn (:class:`~cvdesign.geometry.GeometryWarning`).
+
+    `triples` are the original atom indices of the columns, for the message.
+    """
+    bad = np.isnan(values)
+    if not bad.any():
+        return
+    values[bad] = np.pi / 2
+    row = int(np.flatnonzero(bad.any(axis=0))[0])
+    warnings.warn(
+        f"angle descriptors: {int(bad.sum())} of {bad.size} values in a chunk of "
+        f"{values.shape[0]} frames are undefined (an arm has zero length: two atoms "
+        f"coincide); they were set to pi/2, as the spec's evaluator does. First: atoms "
+        f"{[int(a) for a in triples[row]]}", GeometryWarning, stacklevel=3)
 
 
 class Pool:
@@ -179,7 +200,9 @@ class Pool:
             if kind == "distance":
                 out[:, cols] = md.compute_distances(trajectory, atoms, periodic=periodic)
             elif kind == "angle":
-                out[:, cols] = md.compute_angles(trajectory, atoms, periodic=periodic)
+                vals = md.compute_angles(trajectory, atoms, periodic=periodic)
+                _undefined_angles(vals, self._atoms[kind])
+                out[:, cols] = vals
             else:
                 vals = md.compute_dihedrals(trajectory, atoms, periodic=periodic)
                 vals = vals.astype(np.float64)
