@@ -47,11 +47,13 @@ def test_two_local_processes_write_the_bytes_of_the_serial_run(demo_files, seria
     assert got.keys() == serial_files.keys() and len(got) >= 5
     assert "report-data.json" in got  # the report's histograms, traces and timescales too
     assert got == serial_files
-    # a bar for each read (every frame with a state, once) and each bootstrap
+    # a bar for each read (every frame with a state, once) and each bootstrap; the
+    # timescales' read computes the ranked CVs' terms only
     reads = [b for b in progress_recorder.bars if b.unit == "frames"]
-    assert [b.label for b in reads] == ["prefilter", "screening", "statistics", "held-out"]
+    assert [b.label for b in reads] == ["prefilter", "screening", "statistics", "held-out",
+                                        "timescales"]
     assert all(b.count == b.total for b in progress_recorder.bars)
-    assert [b.total for b in reads[1:]] == [4 * 600] * 3
+    assert [b.total for b in reads[1:]] == [4 * 600] * 4
     assert [b.label for b in progress_recorder.bars if b.unit == "replicates"] == [
         "bootstrap", "bootstrap refits", "bootstrap card"]
 

@@ -17,8 +17,9 @@ from cvdesign.io.source import select_atoms
 from cvdesign.passes import Folds, PoolFeaturizer, frame_keys, plan_tasks, run_pass
 from cvdesign.passes import thinning_stride
 from cvdesign.pipeline.explore import propose_states
-from cvdesign.pipeline.report_data import (MAX_BINS, MAX_TRACE_POINTS, CVPlan, CVReportPass,
-                                           affine_to_cv_units, histogram_bins, trace_stride)
+from cvdesign.pipeline.report_data import (MAX_BINS, MAX_TRACE_POINTS, CVLaggedPass, CVPlan,
+                                           CVReportPass, affine_to_cv_units, histogram_bins,
+                                           trace_stride)
 from cvdesign.pool import Descriptor, Pool
 
 
@@ -334,6 +335,74 @@ def test_report_pass_gives_the_same_bytes_on_every_executor(small, assert_same,
         got = run_pass(small["make"](), small["src"],
                        tasks=small["plan"].split(n_tasks=6), executor=executor)
         assert_same(ref, got)
+
+
+def _wide_and_narrow(small):
+    """The report pass of `small` over a wider pool (two more descriptors around the CVs'
+    terms), and the lagged pass over the terms' descriptors alone, as suggest runs them."""
+    top = small["src"].topology
+    wide = Pool([Descriptor("distance", (1, 6), "dist C2-C7"),
+                 Descriptor("distance", (0, 7), "dist C1-C8"),
+                 Descriptor("angle", (1, 2, 3), "angle C2-C3-C4"),
+                 Descriptor("dihedral", (2, 3, 4, 5), "dihedral C3-C4-C5-C6")], top)
+    cols = np.array([1, 3, 4])  # the distance C1-C8, the dihedral's cos and sin
+    terms = np.unique(wide.feature_descriptor[cols])
+    report = CVReportPass(PoolFeaturizer(wide), small["plans"], small["folds"],
+                          small["strides"], small["lags"], [0.1, -0.2], columns=cols,
+                          center=small["center"], scale=small["scale"])
+    lagged = lambda: CVLaggedPass(  # noqa: E731
+        PoolFeaturizer(wide.subset(terms)), small["plans"], small["lags"], [0.1, -0.2],
+        columns=np.searchsorted(wide.features_of(terms), cols), center=small["center"],
+        scale=small["scale"])
+    return report, lagged
+
+
+def test_the_lagged_pass_over_the_terms_alone_gives_the_report_pass_lagged_sums(
+        small, assert_same, random_tasks, shuffled_executor):
+    # suggest reads the timescales' lagged sums apart, over the CVs' terms only (a
+    # 2000-frame halo over every feature of the held-out read held those frames of every
+    # feature in memory): the same sums, for any split, chunk size and order
+    report, lagged = _wide_and_narrow(small)
+    assert lagged().featurizer.n_features == 3 and report.featurizer.n_features == 5
+    ref = run_pass(report, small["src"], tasks=small["plan"])["lagged"]
+    got = run_pass(lagged(), small["src"], tasks=small["plan"])
+    assert len(got) == len(small["lags"])
+    for r, g in zip(ref, got):
+        assert (g.lag, g.count, g.n_pairs) == (r.lag, r.count, r.n_pairs)
+        for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
+            np.testing.assert_array_equal(getattr(g, name), getattr(r, name))
+    rng = np.random.default_rng(8)
+    for trial in range(3):
+        plan = small["plan"].with_tasks(random_tasks(small["plan"], rng))
+        assert_same(got, run_pass(lagged(), small["src"], tasks=plan,
+                                  chunk_frames=int(rng.integers(7, 400)),
+                                  executor=shuffled_executor(trial)))
+
+
+def test_suggest_reads_the_timescales_apart_so_the_held_out_read_has_no_long_halo(
+        demo_files, monkeypatch):
+    import cvdesign.pipeline.suggest as pipeline
+
+    seen = {}
+    real = pipeline.run_pass
+
+    def recording(passes, source, **kw):
+        passes = passes if isinstance(passes, tuple) else (passes,)
+        halo = max(p.halo(s) for p in passes for s in range(len(source.segments)))
+        seen[kw.get("label")] = (halo, passes[0].featurizer.n_features)
+        return real(passes if len(passes) > 1 else passes[0], source, **kw)
+
+    monkeypatch.setattr(pipeline, "run_pass", recording)
+    top, states = demo_files
+    src = Source.from_states(top, {k: v[:1] for k, v in states.items()})
+    res = suggest(src, n_bootstrap=0, max_terms=2, n_suggestions=2, lag=2.0)
+    lags = res.report_data["cvs"][0]["timescales"]["lag_ps"]
+    held, wide = seen["held-out"]
+    longest, narrow = seen["timescales"]
+    # without bootstrap the held-out read needs no lagged pair (with it: the main lag);
+    # the timescales' read reaches the longest lag of the report (0.2 ps between frames)
+    assert held == 0 and longest == round(max(lags) / 0.2) == 1000
+    assert narrow <= 2 * 2 * 2 < wide  # two CVs of at most two terms (a dihedral: two)
 
 
 # ----------------------------------------------------------------- bounded in size

@@ -25,12 +25,17 @@ gathered from the frames (format: ``docs/report-data-v1.md``):
   about their common mean (reversible estimate, as the ranking's
   ``autocorrelation_all``).
 
-All three come from one pass of the engine, :class:`CVReportPass`, run in the
-same read as the held-out pass: histogram counts add exactly, traces are kept
-frames (in frame order), lagged sums merge in the engine's fixed tree; the CV of
-a frame is computed term by term with elementwise arithmetic, so each frame gets
-the same bits whichever rows share its leaf or halo. The stored size depends on
-the number of CVs, segments, bins and lags, never on the number of frames.
+The histograms and traces come from one pass of the engine, :class:`CVReportPass`,
+run in the same read as the held-out pass over every feature; the implied
+timescales' lagged sums from :class:`CVLaggedPass`, a read of its own over the
+CVs' terms only. Its lags reach 2000 frames: in the held-out read, whose leaves
+hold every feature, a halo that long kept about 2000 frames of every feature in
+memory (0.5 GB for a pool of 10^5 features at 500 frames). Histogram counts add
+exactly, traces are kept frames (in frame order), lagged sums merge in the
+engine's fixed tree; the CV of a frame is computed term by term with elementwise
+arithmetic, so each frame gets the same bits whichever rows share its leaf or
+halo. The stored size depends on the number of CVs, segments, bins and lags,
+never on the number of frames.
 """
 
 import math
@@ -41,7 +46,7 @@ from ..passes import FeaturePass, frame_keys, group_rows, thinning_stride
 from ..stats.moments import DiagonalLaggedMoments
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
-           "CVBlockHistograms", "CVReportPass", "cv_plans", "trace_stride", "histogram_bins",
+           "CVBlockHistograms", "CVReportPass", "CVLaggedPass", "cv_plans", "trace_stride", "histogram_bins",
            "affine_to_cv_units", "report_document", "timescale_lags", "funnel_report_document"]
 
 #: Most points of a trace (one input segment).
@@ -377,8 +382,7 @@ class CVReportPass(FeaturePass):
         return {"hist": hist, "traces": traces, "lagged": lagged}
 
     def merge(self, a, b):
-        lagged = None if a["lagged"] is None else {k: a["lagged"][k] + b["lagged"][k]
-                                                   for k in a["lagged"]}
+        lagged = None if a["lagged"] is None else _add_lag_sums(a["lagged"], b["lagged"])
         return {"hist": [x + y for x, y in zip(a["hist"], b["hist"])],
                 "traces": a["traces"] + b["traces"], "lagged": lagged}
 
@@ -390,17 +394,105 @@ class CVReportPass(FeaturePass):
                        {"count": np.zeros(len(self.lags)),
                         "n_pairs": np.zeros(len(self.lags), dtype=np.int64),
                         "sums": np.zeros((5, len(self.lags), n_cv))}}
-        stack = partial["lagged"]
-        if stack is not None:  # one DiagonalLaggedMoments per lag
-            lagged = []
-            for g, lag in enumerate(self.lags):
-                m = DiagonalLaggedMoments(n_cv, shift=self.shift, lag=lag)
-                m.count, m.n_pairs = float(stack["count"][g]), int(stack["n_pairs"][g])
-                m.sum_x, m.sum_y, m.sum_xx, m.sum_xy, m.sum_yy = (
-                    stack["sums"][f, g].copy() for f in range(5))
-                lagged.append(m)
-            partial = dict(partial, lagged=lagged)
+        if partial["lagged"] is not None:
+            partial = dict(partial, lagged=_lagged_moments(partial["lagged"], self.lags,
+                                                           self.shift))
         return partial
+
+
+def _lagged_moments(stack, lags, shift):
+    """One :class:`~cvdesign.stats.moments.DiagonalLaggedMoments` per lag from the summed
+    output of :func:`_lag_sums`."""
+    out = []
+    for g, lag in enumerate(lags):
+        m = DiagonalLaggedMoments(stack["sums"].shape[2], shift=shift, lag=lag)
+        m.count, m.n_pairs = float(stack["count"][g]), int(stack["n_pairs"][g])
+        m.sum_x, m.sum_y, m.sum_xx, m.sum_xy, m.sum_yy = (
+            stack["sums"][f, g].copy() for f in range(5))
+        out.append(m)
+    return out
+
+
+def _add_lag_sums(a, b):
+    """The sums of :func:`_lag_sums` of two disjoint sets of pairs, added."""
+    return {k: a[k] + b[k] for k in a}
+
+
+class CVLaggedPass(FeaturePass):
+    """The lagged sums of the ranked CVs at the implied timescales' lags, alone.
+
+    The part of :class:`CVReportPass` that needs a halo of the longest lag (up
+    to 2000 frames), for a read of its own whose featurizer computes the CVs'
+    terms only: in the held-out read over every feature, that halo would keep
+    its frames of every feature in memory.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+        Features that include the CVs' terms (e.g. a
+        :class:`~cvdesign.passes.PoolFeaturizer` of their descriptors).
+    plans : list of CVPlan
+        The ranked CVs; only ``cols`` and ``w`` are used.
+    lags : array-like of int
+        Lags in frames.
+    shift : array-like of shape (n_cvs,)
+        Fixed shift of the lagged sums (near each CV's mean).
+    columns, center, scale
+        As for every :class:`~cvdesign.passes.FeaturePass`: the CVs' terms among
+        the featurizer's columns, and their standardization.
+
+    The result is a list, per lag, of
+    :class:`~cvdesign.stats.moments.DiagonalLaggedMoments` of the CVs, whose
+    pairs weigh as their first frame in a biased run; the same as the
+    ``lagged`` entry of :class:`CVReportPass` with these lags.
+
+    Examples
+    --------
+    >>> import os, tempfile
+    >>> import mdtraj as md
+    >>> from cvdesign import Source
+    >>> from cvdesign.passes import CoordinateFeaturizer, run_pass
+    >>> top = md.Topology(); r = top.add_residue("TOY", top.add_chain())
+    >>> _ = top.add_atom("C1", md.element.carbon, r)
+    >>> x = np.cos(np.arange(200) / 10.0)[:, None, None] * np.ones((1, 1, 3))
+    >>> path = os.path.join(tempfile.mkdtemp(), "run.dcd")
+    >>> md.Trajectory(x.astype(np.float32), top).save_dcd(path)
+    >>> src = Source(top).add(path, "a")
+    >>> cv = CVPlan([0], [1.0], [[1.0]], [(1.0, 0.0)], -1.0, 1.0, 10)
+    >>> m = run_pass(CVLaggedPass(CoordinateFeaturizer([0]), [cv], [1, 5], [0.0]), src)
+    >>> [round(float(v.autocorrelation()[0]), 2) for v in m]
+    [1.0, 0.88]
+    """
+
+    def __init__(self, featurizer, plans, lags, shift, *, columns=None, center=None,
+                 scale=None):
+        super().__init__(featurizer, columns=columns, center=center, scale=scale)
+        self.plans = list(plans)
+        self.lags = [int(v) for v in lags]
+        if not self.lags:
+            raise ValueError("CVLaggedPass needs at least one lag")
+        self.shift = np.asarray(shift, dtype=np.float64)
+
+    def halo(self, segment_index):
+        return max(self.lags)
+
+    def map(self, leaf):
+        z = _standardized(leaf.window_x if self.columns is None
+                          else leaf.window_columns(self.columns), self.center, self.scale)
+        cv = np.empty((z.shape[0], len(self.plans)))
+        for c, p in enumerate(self.plans):
+            cv[:, c] = _combine(z, p.cols, p.w)
+        return _lag_sums(leaf, cv - self.shift, self.lags)
+
+    def merge(self, a, b):
+        return _add_lag_sums(a, b)
+
+    def finish(self, partial, plan):
+        if partial is None:
+            partial = {"count": np.zeros(len(self.lags)),
+                       "n_pairs": np.zeros(len(self.lags), dtype=np.int64),
+                       "sums": np.zeros((5, len(self.lags), len(self.plans)))}
+        return _lagged_moments(partial, self.lags, self.shift)
 
 
 def _lag_sums(leaf, d, lags):

@@ -18,7 +18,9 @@
    ranked CVs' held-out histograms and their smallest and largest value in
    each state (the observed range), bootstrap blocks, the score card's block
    sums, and what the report draws (:mod:`.report_data`: held-out histograms
-   in the CVs' units, traces, implied timescales);
+   in the CVs' units, traces); then the implied timescales' lagged sums in a
+   read of their own over the ranked CVs' terms (their lags, up to 2000
+   frames, would keep that many frames of every feature in the held-out read);
 8. **bootstrap, ranking, specs** -- intervals, the ranked entries with their
    reachable and observed ranges (:func:`.ranking.add_ranges`), one spec per
    entry (:mod:`.specs`), the report data.
@@ -50,8 +52,8 @@ from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs
 from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
                       heldout_overlap, hints_for, ranking_entry, search, shortlist)
-from .report_data import (CVBlockHistograms, CVReportPass, cv_plans, report_document,
-                          timescale_lags, trace_stride)
+from .report_data import (CVBlockHistograms, CVLaggedPass, CVReportPass, cv_plans,
+                          report_document, timescale_lags, trace_stride)
 from .screening import Screening, screen
 from .specs import InputChecksums, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
@@ -562,8 +564,9 @@ class HeldOut:
         Per ranked CV, its smallest and largest value in each state (CV units,
         shape (n_states,) each; +inf and -inf for a state without frames).
     report : dict or None
-        What :class:`~cvdesign.pipeline.report_data.CVReportPass` gathered (None
-        without ranked CVs).
+        What :class:`~cvdesign.pipeline.report_data.CVReportPass` gathered, its
+        ``lagged`` entry from :class:`~cvdesign.pipeline.report_data.CVLaggedPass`
+        (None without ranked CVs).
     report_plans : list of CVPlan
     report_lags : ndarray of int or None
         Lags of the implied timescales, frames.
@@ -651,14 +654,19 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
                                     n_bins=N_BINS, columns=rest))
     report, plans, report_lags = None, [], None
     if fits:
-        report, plans, report_lags = _report_pass(every, base, screening, fits, fm, folds,
-                                                  lags, seg_counts, steps)
+        report, lagged, plans, report_lags = _report_pass(every, base, screening, fits, fm,
+                                                          folds, lags, seg_counts, steps)
         passes.append(report)
     results = run_pass(tuple(passes), source, executor=executor,
                        tasks=_plan_for(base, every.n_features, executor), label="held-out")
     report_result = results[-1] if report is not None else None
     if report is not None:
         results = results[:-1]
+        if lagged is not None:
+            report_result = dict(report_result, lagged=run_pass(
+                lagged, source, executor=executor,
+                tasks=_plan_for(base, lagged.featurizer.n_features, executor),
+                label="timescales"))
     block_sums, observed = results[0], results[1]
     card_sums = results[2] if card is not None else None
     counts = np.zeros((source.n_states, pool.n_features, N_BINS))
@@ -701,10 +709,19 @@ def _report_pass(every, base, screening, fits, fm, folds, lags, seg_counts, step
     shift = [float(np.mean([m.mean[fit.idx] @ fit.w for m in fm.pooled()])) for fit in fits]
     strides = {lay.index: trace_stride(lay.hi - lay.lo) for lay in base.layouts}
     cols = np.array(cols, dtype=np.intp)
-    report = CVReportPass(every, plans, folds, strides, report_lags, shift,
-                          columns=cols, center=screening.center[cols],
-                          scale=screening.scale[cols])
-    return report, plans, report_lags
+    center, scale = screening.center[cols], screening.scale[cols]
+    report = CVReportPass(every, plans, folds, strides, None, shift, columns=cols,
+                          center=center, scale=scale)
+    lagged = None
+    if report_lags is not None:
+        # a read of its own over the terms' descriptors: its halo (up to 2000 frames) in
+        # the read of every feature would keep those frames of every feature in memory
+        pool = every.pool
+        terms = np.unique(pool.feature_descriptor[cols])  # their features: pool order
+        lagged = CVLaggedPass(PoolFeaturizer(pool.subset(terms)), plans, report_lags, shift,
+                              columns=np.searchsorted(pool.features_of(terms), cols),
+                              center=center, scale=scale)
+    return report, lagged, plans, report_lags
 
 
 def _card_pass(every, pool, screening, seg_counts, iat_desc, steps, lags, first):
