@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from cvdesign import InputError, Source, suggest
+from cvdesign.constants import BOLTZMANN_KJ_MOL_K
 
 
 def _repeated_frames(path_in, top, path_out, n=60, frame=0):
@@ -163,6 +164,33 @@ def test_lag_longer_than_every_run_of_one_state_is_refused_for_slowness_objectiv
                                          r": slowness would be measured on the other states' "
                                          r"runs alone"):
         suggest(short_closed, objective=objective, lag=10.0, n_bootstrap=0)
+
+
+def test_lag_refusal_names_the_longest_visit_of_a_labelled_biased_run_in_rescaled_time(
+        demo_files, tmp_path):
+    # A biased run labelled frame by frame visits 'closed' twice, for 5 and 7 frames
+    # (0.2 ps apart), under a constant bias of kT ln 2 (each frame 2 frame spacings of
+    # rescaled time). Lagged pairs never span a visit and are taken in rescaled time, so
+    # the longest run that a lag of 10 ps must fit in is the 7-frame visit: 14 frame
+    # spacings, 2.8 ps. The message said "the longest run is 12 frames (2.4 ps)" before
+    # (every 'closed' frame of the file, in the run's own time).
+    top, states = demo_files
+    path = tmp_path / "closed-biased.xtc"
+    md.load(states["closed"][0], top=top)[:20].save_xtc(str(path))
+    labels = ["closed"] * 5 + [None] * 3 + ["closed"] * 7 + [None] * 5
+    kt = BOLTZMANN_KJ_MOL_K * 300.0
+    bias = tmp_path / "closed-biased.bias"
+    bias.write_text("bias\n" + f"{float(kt * np.log(2.0))!r}\n" * 20, encoding="utf-8")
+    src = Source(top, temperature=300.0).add_labelled(str(path), labels, bias=str(bias))
+    for f in states["open"][:2]:
+        src.add(f, "open")
+    before = sorted(tmp_path.iterdir())
+    with pytest.raises(InputError, match=r"lag=10 ps is longer than every run of state\(s\) "
+                                         r"'closed' \(the longest run is a visit of 7 frames in "
+                                         r"the labelled file closed-biased\.xtc, 14 frame "
+                                         r"spacings \(2\.8 ps\) of rescaled time\)"):
+        suggest(src, objective="both", lag=10.0, n_bootstrap=0)
+    assert sorted(tmp_path.iterdir()) == before
 
 
 def _chain_at_dihedrals(phi):

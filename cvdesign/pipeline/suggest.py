@@ -366,7 +366,7 @@ def _suggest(source, config, executor, progress, checksums):
     notes += _box_notes(pool, first.diagonal, first.min_box_height)
     notes += _timing_notes(inputs)
     lag_ps, lags, lag_note = _slowness_lag(source, config, seg_counts, steps, first, lag_ps,
-                                           lags)
+                                           lags, reweighting)
     notes += lag_note
     if reweighting is not None:
         rw_notes, _ = reweighting.describe(lags)
@@ -815,7 +815,7 @@ def _timing_notes(inputs):
             + " (the format stores no times, or a single frame)"]
 
 
-def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags):
+def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags, reweighting):
     """(lag in ps, lags in frames, notes): slowness is measured only when every state has
     runs longer than the lag; otherwise it is refused (slow, both) or left unmeasured."""
     if lags is None:
@@ -828,7 +828,8 @@ def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags):
     lagless = [s for s in range(source.n_states) if s not in with_pairs]
     objective = config.objective
     if len(lagless) == source.n_states:
-        longest = longest_run_text(seg_counts, steps)
+        longest = longest_run_text(source, reweighting, seg_counts, steps,
+                                    range(source.n_states))
         if objective in ("slow", "both"):
             raise InputError(
                 f"lag={lag_ps:g} ps is longer than every run ({longest}): there are no lagged "
@@ -842,9 +843,7 @@ def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags):
         # the other states' runs alone would measure motion within those states, not the
         # slowness of a CV that separates them (the slow coordinate would look fast)
         names = ", ".join(repr(source.states[s]) for s in lagless)
-        mask = np.zeros_like(seg_counts)
-        mask[:, lagless] = seg_counts[:, lagless]
-        longest = longest_run_text(mask, steps)
+        longest = longest_run_text(source, reweighting, seg_counts, steps, lagless)
         if objective in ("slow", "both"):
             raise InputError(
                 f"lag={lag_ps:g} ps is longer than every run of state(s) {names} ({longest}): "

@@ -116,12 +116,39 @@ def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
     return tau * dt, decayed
 
 
-def longest_run_text(seg_counts, timesteps):
-    """'the longest run is N frames (T ps)': the longest series of one state in one file."""
-    si, s = np.unravel_index(int(np.argmax(seg_counts)), seg_counts.shape)
-    n = int(seg_counts[si, s])
-    dt = timesteps.get(int(si))
-    return f"the longest run is {n} frames" + ("" if dt is None else f" ({n * dt:g} ps)")
+def _state_runs(segment, si, s, name, seg_counts):
+    """Frame ranges ``[lo, hi)`` of the file of `segment` in which state `s` (`name`) has
+    lagged pairs to offer: the whole range, or each visit of a labelled file (its pairs
+    never span a state change)."""
+    if segment.labels is None:
+        lo = segment.start or 0
+        return [(lo, lo + int(seg_counts[si, s]))] if seg_counts[si, s] else []
+    inside = np.concatenate([[False], segment.labels == name, [False]]).astype(np.int8)
+    edges = np.flatnonzero(np.diff(inside))
+    return list(zip(edges[0::2].tolist(), edges[1::2].tolist()))
+
+
+def longest_run_text(source, reweighting, seg_counts, steps, states):
+    """'the longest run is ...' among the runs of `states` (indices, each with frames),
+    measured as lagged pairs are: a labelled file's visits one by one (pairs never span a
+    state change), a biased run in rescaled time (frame spacings of ``exp(V/kT)``)."""
+    best = None
+    for si, seg in enumerate(source.segments):
+        dt = steps.get(si)
+        rescaled = reweighting is not None and si in reweighting.clocks
+        for s in states:
+            for lo, hi in _state_runs(seg, si, s, source.states[s], seg_counts):
+                length = reweighting.rescaled_frames(si, lo, hi) if rescaled else hi - lo
+                key = length * (dt or 1.0)
+                if best is None or key > best[0]:
+                    best = (key, hi - lo, length, dt, rescaled, seg)
+    _, n, length, dt, rescaled, seg = best
+    text = (f"the longest run is {n} frames" if seg.labels is None else
+            f"the longest run is a visit of {n} frames in the labelled file {seg.path.name}")
+    if rescaled:
+        return (text + f", {length:.4g} frame spacings"
+                + ("" if dt is None else f" ({length * dt:.4g} ps)") + " of rescaled time")
+    return text + ("" if dt is None else f" ({n * dt:g} ps)")
 
 
 def block_frames(seg_counts, taus, timesteps, lag_frames):
