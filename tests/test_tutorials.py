@@ -273,6 +273,13 @@ def test_real_engine_tutorial_refines_cv1_from_its_biased_run_and_judges_cv2_by_
     assert totals[0] > 0 and totals[2] > 0 and totals[1] > 0 and totals[3] > 0
     assert totals[4] > 0 and totals[5] >= 1
     assert "suggest on the biased frames (objective both, lag " in out
+    # the lag, chosen from the run: no longer than either basin's longest visit in
+    # rescaled time (lagged pairs never span a visit), and suggest warns that it is short
+    # for rescaled time exactly when the tutorial says that no lag could avoid it
+    lag, cis_visit, trans_visit = _number(r"^  lag (\d+) frames \(.+longest visits: cis "
+                                          r"(\d+\.\d), trans (\d+\.\d) frame spacings", out)
+    assert 1 <= lag <= min(cis_visit, trans_visit) + 0.05
+    assert ("so suggest warns" in out) == ("warning: the lag is short for rescaled time" in out)
     for state in ("cis", "trans"):
         assert f"note: effective sample size (Kish) of state '{state}'" in out
     # compare_specs: the terms kept, added and removed, and a cosine that is 0 exactly when

@@ -56,7 +56,12 @@ a real engine (`cvdesign.pipeline.refine`):
    added with `Source.add_labelled(..., bias=...)`;
 8. `suggest` on these frames (objective `both`, the frames weighted by
    exp(V/kT), lagged pairs in rescaled time) gives CV 2; `compare_specs` says
-   how it differs from CV 1;
+   how it differs from CV 1. The lag is chosen from the run (`refine_lag`):
+   the shortest that leaves lagged pairs in both basins (pairs never span a
+   visit, so no longer than a basin's longest visit in rescaled time) without
+   `suggest`'s warning that it is short for rescaled time, or, when none does
+   both, the longest that leaves pairs. A fixed lag stopped the script once:
+   a run whose cis visits were all shorter than it left `suggest` no cis pairs;
 9. CV 2 is exported and biased with the same settings, starts and steps, and
    its cis/trans transitions are counted on omega like CV 1's. Whether CV 2 is
    better is decided by that count, and the script says which it is.
@@ -89,6 +94,7 @@ import numpy as np
 
 import cvdesign
 from cvdesign.bias.hints import spec_hints
+from cvdesign.io.bias import COARSE_LAG_FRACTION
 from cvdesign.testbed import count_transitions
 from cvdesign.testbed.amide import capped_proline
 from cvdesign.testbed.metad import WellTemperedBias, well_delta_f
@@ -212,10 +218,51 @@ def reference(starts, n_frames):
                                  md_step_ps=TIMESTEP_PS, seed=SEED)
 
 
-#: The lag of the refinement's `suggest`, in frames of the biased run: the shortest of
-#: 10, 20, 30 frames for which suggest does not warn that the lag is short for rescaled
-#: time (a frame of high bias stands for a long stretch of unbiased time).
-REFINE_LAG_FRAMES = 30
+#: Lags the refinement's `suggest` may use, in frames of the biased run (step 8).
+REFINE_LAGS_FRAMES = range(1, 101)
+
+
+def refine_lag(source, states):
+    """The refinement's lag in frames of the biased run, chosen from the run itself, and why.
+
+    The rule: the shortest lag of `REFINE_LAGS_FRAMES` at which `suggest` does not warn
+    that it is short for rescaled time (at most ``COARSE_LAG_FRACTION`` of the run's
+    weight in rescaled steps ``exp(V/kT)`` longer than half the lag) and which leaves
+    lagged pairs in every basin (no longer than the basin's longest visit in rescaled
+    time: pairs never span a visit). When no lag does both, the longest that leaves pairs
+    in every basin, and `suggest`'s warning stands. A fixed lag failed here: a run whose
+    cis visits were all shorter than it left no cis pairs, which objective `both` refuses.
+    """
+    rw = source.reweighting()
+    reach = {}  # the longest visit of each basin, frame spacings of rescaled time
+    for name in states:
+        reach[name] = 0.0
+        for si, segment in enumerate(source.segments):
+            clock = rw.clocks[si]  # clock[t]: rescaled time before frame t
+            inside = np.concatenate([[0], segment.labels == name, [0]]).astype(np.int8)
+            edges = np.flatnonzero(np.diff(inside))
+            for lo, hi in zip(edges[0::2], edges[1::2]):
+                reach[name] = max(reach[name], float(clock[hi - 1] - clock[lo]))
+    coarse = {lag: rw.coarse_fraction({si: lag for si in rw.clocks})
+              for lag in REFINE_LAGS_FRAMES}
+    with_pairs = [lag for lag in REFINE_LAGS_FRAMES if lag <= min(reach.values())]
+    if not with_pairs:
+        sys.exit("no lag of a whole frame leaves lagged pairs in every basin (longest visits "
+                 + ", ".join(f"{s} {r:.3g}" for s, r in reach.items())
+                 + " frame spacings of rescaled time); run longer or widen the basin cores")
+    quiet = [lag for lag in with_pairs if coarse[lag] <= COARSE_LAG_FRACTION]
+    lag = quiet[0] if quiet else with_pairs[-1]
+    visits = (f"longest visits: {', '.join(f'{s} {r:.1f}' for s, r in reach.items())} frame "
+              "spacings of rescaled time; pairs never span a visit")
+    if not quiet:
+        return lag, (f"the longest that leaves lagged pairs in every basin ({visits}); none "
+                     f"keeps the weight in rescaled steps longer than half the lag within "
+                     f"{COARSE_LAG_FRACTION:.0%} (here {coarse[lag]:.1%}), so suggest warns")
+    shorter = "" if lag == 1 else f"; {coarse[lag - 1]:.1%} at {lag - 1} frames"
+    return lag, (f"the shortest of {REFINE_LAGS_FRAMES.start}-{REFINE_LAGS_FRAMES.stop - 1} "
+                 f"frames that leaves lagged pairs in every basin ({visits}) with at most "
+                 f"{COARSE_LAG_FRACTION:.0%} of the run's weight in rescaled steps longer than "
+                 f"half the lag ({coarse[lag]:.1%}{shorter})")
 
 
 def refine(cv1, run, frames, molecule, topology, work):
@@ -253,8 +300,10 @@ def refine(cv1, run, frames, molecule, topology, work):
         print(f"  walker {w + 1}: {visits.summary()}")
         source.add_labelled(xtc, visits.labels, bias=energy_file)
     # Objective 'both': separation and slowness. The lag is in rescaled time for biased
-    # runs (dt exp(V/kT) per frame).
-    lag = round(REFINE_LAG_FRAMES * frame_ps, 9)
+    # runs (dt exp(V/kT) per frame), chosen from this run (refine_lag).
+    lag_frames, why = refine_lag(source, basins)
+    lag = round(lag_frames * frame_ps, 9)
+    print(f"  lag {lag_frames} frames ({lag:g} ps of rescaled time): {why}")
     refined = cvdesign.suggest(source, objective="both", lag=lag, max_terms=3,
                                n_suggestions=3)
     print(f"\n8. suggest on the biased frames (objective both, lag {lag:g} ps in rescaled "

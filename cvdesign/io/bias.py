@@ -93,7 +93,7 @@ from ..constants import BOLTZMANN_KJ_MOL_K
 from ..errors import InputError
 
 __all__ = ["read_bias_file", "is_number", "kish_ess", "Reweighting", "reweight", "LOW_ESS_FRACTION",
-           "LOW_ESS_FRAMES", "MAX_RESCALE_EXPONENT", "BIAS_COLUMN"]
+           "LOW_ESS_FRAMES", "MAX_RESCALE_EXPONENT", "BIAS_COLUMN", "COARSE_LAG_FRACTION"]
 
 #: A state's Kish effective sample size below this fraction of its frames gets a warning
 #: (common practice: reweighted averages from a few percent of the frames are noisy).
@@ -105,6 +105,10 @@ LOW_ESS_FRAMES = 100
 MAX_RESCALE_EXPONENT = 600.0
 #: Name of the column read by default from a bias-energy file with several columns.
 BIAS_COLUMN = "bias"
+#: A lag gets a warning when more than this share of the biased frames' weight is in
+#: rescaled steps longer than half of it (:meth:`Reweighting.coarse_fraction`; common
+#: practice).
+COARSE_LAG_FRACTION = 0.1
 
 
 def is_number(text):
@@ -496,7 +500,7 @@ class Reweighting:
                          "runs sample one ensemble and cross between the states)")
         if lags is not None:
             coarse = self.coarse_fraction(lags)
-            if coarse > 0.1:
+            if coarse > COARSE_LAG_FRACTION:
                 w = (f"the lag is short for rescaled time: {coarse:.0%} of the biased runs' "
                      "weight is in frames whose rescaled step dt exp(V/kT) exceeds half the "
                      "lag, so their pairs are taken at a rescaled lag off by a quarter of it or "
