@@ -358,19 +358,24 @@ def _wide_and_narrow(small):
 
 
 def test_the_lagged_pass_over_the_terms_alone_gives_the_report_pass_lagged_sums(
-        small, assert_same, random_tasks, shuffled_executor):
+        small, assert_same, random_tasks, shuffled_executor, tmp_path):
     # suggest reads the timescales' lagged sums apart, over the CVs' terms only (a
     # 2000-frame halo over every feature of the held-out read held those frames of every
-    # feature in memory): the same sums, for any split, chunk size and order
+    # feature in memory): the same sums, with biased runs too (rescaled time, pairs
+    # weighted by their first frame), for any split, chunk size and order
     report, lagged = _wide_and_narrow(small)
     assert lagged().featurizer.n_features == 3 and report.featurizer.n_features == 5
-    ref = run_pass(report, small["src"], tasks=small["plan"])["lagged"]
+    biased_src, biased_plan = _biased(small, tmp_path)
+    for src, plan in ((small["src"], small["plan"]), (biased_src, biased_plan)):
+        ref = run_pass(report, src, tasks=plan)["lagged"]
+        got = run_pass(lagged(), src, tasks=plan)
+        assert len(got) == len(small["lags"])
+        for r, g in zip(ref, got):
+            assert (g.lag, g.count, g.n_pairs) == (r.lag, r.count, r.n_pairs)
+            for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
+                np.testing.assert_array_equal(getattr(g, name), getattr(r, name))
+    assert got[0].count != got[0].n_pairs  # the biased pairs were weighted
     got = run_pass(lagged(), small["src"], tasks=small["plan"])
-    assert len(got) == len(small["lags"])
-    for r, g in zip(ref, got):
-        assert (g.lag, g.count, g.n_pairs) == (r.lag, r.count, r.n_pairs)
-        for name in ("sum_x", "sum_y", "sum_xx", "sum_xy", "sum_yy"):
-            np.testing.assert_array_equal(getattr(g, name), getattr(r, name))
     rng = np.random.default_rng(8)
     for trial in range(3):
         plan = small["plan"].with_tasks(random_tasks(small["plan"], rng))
