@@ -303,6 +303,19 @@ def test_importing_cvdesign_and_its_pass_engine_does_not_import_the_pipeline():
         getattr(cvdesign, "nothing")
 
 
+def test_the_worker_preload_imports_neither_scipy_nor_networkx():
+    """The fork server imports WORKER_PRELOAD before the first worker starts, while suggest
+    waits: SciPy (about 0.15 s, once needed for one BLAS call of the moments' merge) and
+    networkx (the bond graph and the redundancy graph, used in this process only) stay out
+    of it."""
+    script = ("import importlib, sys\n"
+              f"for m in {list(WORKER_PRELOAD)!r}:\n"
+              "    importlib.import_module(m)\n"
+              "print(repr(sorted(m for m in ('scipy', 'networkx', 'sklearn', 'pandas',\n"
+              "                              'matplotlib') if m in sys.modules)))\n")
+    assert _fresh_python(script).strip() == "[]"
+
+
 def _free_port():
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))

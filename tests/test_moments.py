@@ -79,3 +79,26 @@ def test_merge_rejects_other_feature_count():
 def test_negative_weights_are_refused():
     with pytest.raises(ValueError, match="non-negative"):
         Moments.from_data(np.ones((2, 1)), weights=[1.0, -1.0])
+
+
+def test_the_merge_keeps_the_scatter_symmetric_to_the_last_bit():
+    # each entry of the rank-one update of the merge is (x_i x_j) alpha: the same bits for
+    # (i, j) and (j, i), so merged scatter matrices stay exactly symmetric (the update runs
+    # by blocks of rows, here several)
+    from cvdesign.stats import moments as mod
+
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=(300, 70)) * rng.uniform(0.01, 100.0, 70) + rng.normal(0, 50, 70)
+    old = mod._OUTER_BLOCK
+    try:
+        mod._OUTER_BLOCK = 7 * 70  # blocks of 7 rows
+        merged = mod.Moments.from_data(x[:137]).merge(mod.Moments.from_data(x[137:]))
+    finally:
+        mod._OUTER_BLOCK = old
+    a, b = mod.Moments.from_data(x[:137]), mod.Moments.from_data(x[137:])
+    np.testing.assert_array_equal(merged.scatter, merged.scatter.T)
+    delta = b.mean - a.mean
+    expected = a.scatter + b.scatter + np.outer(delta, delta) * (137 * 163 / 300)
+    np.testing.assert_allclose(merged.scatter, expected, rtol=1e-12, atol=1e-9)
+    np.testing.assert_allclose(merged.scatter, np.cov(x.T, bias=True) * 300, rtol=1e-10,
+                               atol=1e-8)

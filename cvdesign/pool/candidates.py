@@ -25,7 +25,6 @@ Candidates come from an atom selection:
 import copy
 
 import mdtraj as md
-import networkx as nx
 import numpy as np
 
 from .. import progress
@@ -43,6 +42,8 @@ __all__ = ["candidate_pool", "candidate_pairs", "prefilter_pairs", "prefilter_gr
 
 
 def _bond_graph(topology, atoms):
+    import networkx as nx  # here, not at import: worker processes do not need it
+
     graph = nx.Graph()
     graph.add_nodes_from(int(a) for a in atoms)
     sel = set(int(a) for a in atoms)
@@ -60,6 +61,8 @@ SMALL_RING = 8
 
 def _in_small_ring(graph, b, c, max_ring=SMALL_RING):
     """True when the bond b-c closes a ring of at most `max_ring` bonds."""
+    import networkx as nx
+
     graph.remove_edge(b, c)
     try:
         reach = nx.single_source_shortest_path_length(graph, b, cutoff=max_ring - 1)
@@ -141,6 +144,8 @@ def candidate_pairs(topology, atoms):
     graph = _bond_graph(topology, atoms)
     if not graph.number_of_edges():
         return pairs, None
+    import networkx as nx
+
     close = []
     for a in graph.nodes:
         for b in nx.single_source_shortest_path_length(graph, a, cutoff=2):

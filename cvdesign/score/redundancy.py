@@ -18,7 +18,6 @@ for* is thus directly redundant with it (no chains of correlation), and a user
 can swap in a chemically nicer equivalent.
 """
 
-import networkx as nx
 import numpy as np
 
 __all__ = ["descriptor_correlation", "redundancy_graph", "representatives"]
@@ -96,6 +95,8 @@ def redundancy_graph(correlation, threshold, *, nodes=None, adds_nothing=None):
     >>> sorted(g.edges)
     [('a', 'b')]
     """
+    import networkx as nx  # here, not at import: worker processes do not need it
+
     correlation = np.asarray(correlation, dtype=np.float64)
     n = correlation.shape[0]
     nodes = list(range(n)) if nodes is None else list(nodes)

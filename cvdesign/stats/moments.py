@@ -20,7 +20,6 @@ Two kinds are provided:
 """
 
 import numpy as np
-from scipy.linalg.blas import dger as _dger
 
 from .scratch import scratch
 
@@ -270,17 +269,24 @@ class DiagonalMoments:
         return self.m2 / self.count
 
 
-def _rank_one_update(a, alpha, x):
-    """``a + alpha x x^T`` in place (BLAS ``dger`` on the new array `a`), returned.
+#: Values of the temporary of :func:`_rank_one_update` (a block of rows of x x^T).
+_OUTER_BLOCK = 1 << 15
 
-    One pass over `a` and no temporary matrix; the result equals
-    ``a + np.outer(x, x) * alpha`` up to the last bits.
+
+def _rank_one_update(a, alpha, x):
+    """``a + (x x^T) alpha`` in place on the new array `a`, returned.
+
+    Each entry gets ``(x_i x_j) alpha``, which is symmetric to the last bit (so is
+    `a` after the update when it was before), added a block of rows at a time: no
+    temporary of the whole matrix. numpy only: the worker processes of the pass
+    engine merge moments without importing SciPy (about 0.15 s of their start).
     """
-    if a.flags.c_contiguous and a.dtype == np.float64 and a.size:
-        # a.T is Fortran-ordered, as BLAS wants; x x^T is symmetric, so updating a.T
-        # updates a
-        return _dger(float(alpha), x, x, a=a.T, overwrite_a=1).T
-    return a + np.outer(x, x) * alpha
+    step = max(1, _OUTER_BLOCK // max(1, x.size))
+    for i in range(0, x.size, step):
+        block = np.multiply.outer(x[i:i + step], x)
+        block *= alpha
+        a[i:i + step] += block
+    return a
 
 
 def _merge_start(a, b):
