@@ -271,10 +271,10 @@ def test_an_undefined_angle_is_pi_over_2_as_the_spec_evaluator_gives_it_with_a_w
     top = _topology(5, [(i, i + 1) for i in range(4)])
     xyz = _coincident_chain(6, seed=1, coincide_from=3)
     pool = candidate_pool(top, range(5), kinds=("angle",))
-    with pytest.warns(GeometryWarning, match=r"angle descriptors: 6 of 18 values in a chunk of "
-                      r"6 frames are undefined \(an arm has zero length: two atoms coincide\); "
-                      r"they were set to pi/2, as the spec's evaluator does\. First: atoms "
-                      r"\[0, 1, 2\]"):
+    with pytest.warns(GeometryWarning, match=r"angle descriptor of atoms \[0, 1, 2\] \(and "
+                      r"any other named in a warning like this\): undefined in some frames "
+                      r"\(an arm has zero length: two atoms coincide\); set to pi/2 rad "
+                      r"there, as the spec's evaluator does"):
         got = pool.features(md.Trajectory(xyz, top))
     with pytest.warns(GeometryWarning):
         expected = angles(xyz.astype(np.float64), [d.atoms for d in pool.descriptors])
@@ -283,7 +283,10 @@ def test_an_undefined_angle_is_pi_over_2_as_the_spec_evaluator_gives_it_with_a_w
     np.testing.assert_allclose(got, expected, atol=1e-6)
 
 
-def test_suggest_runs_through_angles_that_are_undefined_in_some_frames(tmp_path):
+@pytest.mark.parametrize("workers", [None, 2])
+def test_suggest_runs_through_angles_that_are_undefined_in_some_frames(tmp_path, workers):
+    # with worker processes too: their warnings are raised again in this process (they had
+    # only reached the workers' standard error)
     import cvdesign
     from cvdesign.geometry import GeometryWarning
 
@@ -297,7 +300,9 @@ def test_suggest_runs_through_angles_that_are_undefined_in_some_frames(tmp_path)
     topology = tmp_path / "top.pdb"
     md.Trajectory(_coincident_chain(1, seed=9), top).save_pdb(str(topology))
     source = cvdesign.Source.from_states(str(topology), files)
-    with pytest.warns(GeometryWarning, match="they were set to pi/2"):
+    with pytest.warns(GeometryWarning, match=r"set to pi/2 rad there") as caught:
         result = cvdesign.suggest(source, kinds=("angle",), n_bootstrap=0, max_terms=1,
-                                  selection="all")
+                                  selection="all", executor=workers)
+    assert {str(w.message)[:40] for w in caught if w.category is GeometryWarning} == \
+        {"angle descriptor of atoms [0, 1, 2] (and"}
     assert result.specs and all(np.isfinite(row["heldout_score"]) for row in result.ranking)

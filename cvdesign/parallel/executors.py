@@ -27,12 +27,14 @@ by the tasks themselves (bad input found while reading) pass through unchanged.
 import asyncio
 import concurrent.futures
 import contextlib
+import importlib
 import multiprocessing
 import os
 import pickle
 import tempfile
 import threading
 import time
+import warnings
 
 from ..errors import ExecutorError, InputError, SchedulerUnreachableError, WorkerLostError
 
@@ -118,14 +120,41 @@ _CONTEXTS = {}
 
 
 def _process_call(fn, context_path, item):
-    """Worker side: load the run's context once (cached by file), then run the task."""
+    """Worker side: load the run's context once (cached by file), then run the task.
+
+    Returns ``(result, warnings)``: the warnings the task raised, each once, as
+    ``(message, category module, category name)``, for :meth:`ProcessExecutor.run`
+    to raise again in the calling process (a worker's own would only reach its
+    standard error). A worker runs one task at a time, so catching them is safe.
+    """
     ctx = _CONTEXTS.get(context_path)
     if ctx is None:
         with open(context_path, "rb") as fh:
             ctx = pickle.load(fh)
         _CONTEXTS.clear()
         _CONTEXTS[context_path] = ctx
-    return fn(ctx, item)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result = fn(ctx, item)
+    seen = []
+    for w in caught:
+        entry = (str(w.message), w.category.__module__, w.category.__qualname__)
+        if entry not in seen:
+            seen.append(entry)
+    return result, seen
+
+
+def _warn_again(entries):
+    """Raise the warnings of a worker's task in this process (categories by name; one that
+    cannot be found here becomes a UserWarning)."""
+    for message, module, name in entries:
+        try:
+            category = getattr(importlib.import_module(module), name)
+            if not (isinstance(category, type) and issubclass(category, Warning)):
+                raise TypeError(name)
+        except Exception:  # noqa: BLE001 -- the message still reaches the user
+            category = UserWarning
+        warnings.warn(message, category, stacklevel=3)
 
 
 def _ready():
@@ -251,7 +280,7 @@ class ProcessExecutor(Executor):
             for fut in concurrent.futures.as_completed(futures):
                 i = futures[fut]
                 try:
-                    result = fut.result()
+                    result, raised = fut.result()
                 except concurrent.futures.process.BrokenProcessPool as exc:
                     self._discard()
                     raise WorkerLostError(
@@ -259,6 +288,7 @@ class ProcessExecutor(Executor):
                         "out of memory, or a crash in compiled code); the run was stopped and "
                         "nothing was written. Check memory and the worker's messages, then "
                         "run again (fewer workers use less memory)") from exc
+                _warn_again(raised)
                 yield i, result
         finally:
             for fut in futures:

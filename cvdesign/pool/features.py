@@ -49,12 +49,14 @@ def _undefined_angles(values, triples):
     if not bad.any():
         return
     values[bad] = np.pi / 2
+    # one text per descriptor (no counts): Python shows a repeated warning once, so a long
+    # run with two atoms on top of each other gives one line, not one per chunk
     row = int(np.flatnonzero(bad.any(axis=0))[0])
     warnings.warn(
-        f"angle descriptors: {int(bad.sum())} of {bad.size} values in a chunk of "
-        f"{values.shape[0]} frames are undefined (an arm has zero length: two atoms "
-        f"coincide); they were set to pi/2, as the spec's evaluator does. First: atoms "
-        f"{[int(a) for a in triples[row]]}", GeometryWarning, stacklevel=3)
+        f"angle descriptor of atoms {[int(a) for a in triples[row]]} (and any other "
+        "named in a warning like this): undefined in some frames (an arm has zero length: "
+        "two atoms coincide); set to pi/2 rad there, as the spec's evaluator does. Check "
+        "the trajectory and the topology", GeometryWarning, stacklevel=3)
 
 
 class Pool:
