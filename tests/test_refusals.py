@@ -148,7 +148,7 @@ def test_lag_longer_than_every_run_of_one_state_leaves_slowness_unmeasured(short
     assert result.ranking[0]["terms"][0]["descriptor"] == "dihedral:2-3-4-5"
     (note,) = [n for n in result.notes if n.startswith("slowness not measured")]
     assert "no run of state(s) 'closed' is longer than the lag (10 ps; the longest run is " \
-           "20 frames (4 ps))" in note
+           "20 frames (3.8 ps from its first frame to its last))" in note
     for r in result.ranking:
         assert r["heldout_autocorrelation"] is None and r["timescale_ps"] is None
     assert all(row["autocorrelation"] is None for row in result.scorecard)
@@ -160,7 +160,8 @@ def test_lag_longer_than_every_run_of_one_state_leaves_slowness_unmeasured(short
 def test_lag_longer_than_every_run_of_one_state_is_refused_for_slowness_objectives(
         short_closed, objective):
     with pytest.raises(InputError, match=r"lag=10 ps is longer than every run of state\(s\) "
-                                         r"'closed' \(the longest run is 20 frames \(4 ps\)\)"
+                                         r"'closed' \(the longest run is 20 frames \(3\.8 ps "
+                                         r"from its first frame to its last\)\)"
                                          r": slowness would be measured on the other states' "
                                          r"runs alone"):
         suggest(short_closed, objective=objective, lag=10.0, n_bootstrap=0)
@@ -171,9 +172,11 @@ def test_lag_refusal_names_the_longest_visit_of_a_labelled_biased_run_in_rescale
     # A biased run labelled frame by frame visits 'closed' twice, for 5 and 7 frames
     # (0.2 ps apart), under a constant bias of kT ln 2 (each frame 2 frame spacings of
     # rescaled time). Lagged pairs never span a visit and are taken in rescaled time, so
-    # the longest run that a lag of 10 ps must fit in is the 7-frame visit: 14 frame
-    # spacings, 2.8 ps. The message said "the longest run is 12 frames (2.4 ps)" before
-    # (every 'closed' frame of the file, in the run's own time).
+    # the longest run that a lag of 10 ps must fit in is the 7-frame visit: 12 frame
+    # spacings, 2.4 ps from its first frame to its last. The message said "the longest run
+    # is 12 frames (2.4 ps)" before (every 'closed' frame of the file, in the run's own
+    # time); for a while it gave 14 frame spacings (2.8 ps), counting the step after the
+    # visit's last frame, so that a refused lag of 2.6 ps looked shorter than the run.
     top, states = demo_files
     path = tmp_path / "closed-biased.xtc"
     md.load(states["closed"][0], top=top)[:20].save_xtc(str(path))
@@ -187,8 +190,9 @@ def test_lag_refusal_names_the_longest_visit_of_a_labelled_biased_run_in_rescale
     before = sorted(tmp_path.iterdir())
     with pytest.raises(InputError, match=r"lag=10 ps is longer than every run of state\(s\) "
                                          r"'closed' \(the longest run is a visit of 7 frames in "
-                                         r"the labelled file closed-biased\.xtc, 14 frame "
-                                         r"spacings \(2\.8 ps\) of rescaled time\)"):
+                                         r"the labelled file closed-biased\.xtc, 12 frame "
+                                         r"spacings \(2\.4 ps\) of rescaled time from its "
+                                         r"first frame to its last\)"):
         suggest(src, objective="both", lag=10.0, n_bootstrap=0)
     assert sorted(tmp_path.iterdir()) == before
 

@@ -28,7 +28,8 @@
 Every pass runs on the pass engine (:mod:`cvdesign.passes`): tasks over leaves
 of frames, merged in a fixed tree, so the result is the same, byte for byte,
 serially, on local processes or on a Dask cluster (``executor=``), whatever the
-task split or chunk size. Memory does not depend on trajectory length.
+task split or chunk size. Memory grows only with the logarithm of the trajectory
+length (one partial result per level of the merge tree).
 """
 
 import logging

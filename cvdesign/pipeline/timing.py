@@ -129,26 +129,69 @@ def _state_runs(segment, si, s, name, seg_counts):
 
 
 def longest_run_text(source, reweighting, seg_counts, steps, states):
-    """'the longest run is ...' among the runs of `states` (indices, each with frames),
-    measured as lagged pairs are: a labelled file's visits one by one (pairs never span a
-    state change), a biased run in rescaled time (frame spacings of ``exp(V/kT)``)."""
+    """Describe the run of `states` with the longest span for lagged pairs.
+
+    Measured as lagged pairs are: a labelled file's visits one by one (pairs
+    never span a state change), a biased run in rescaled time (frame spacings of
+    ``exp(V/kT)``), each from its first frame to its last -- the longest lag
+    that can still pair two of its frames (in rescaled time, about half a step
+    more under the closest-frame rule).
+
+    Parameters
+    ----------
+    source : Source
+    reweighting : Reweighting or None
+        The source's reweighting (None: no biased run).
+    seg_counts : ndarray of shape (n_segments, n_states)
+        Frames of each state in each segment.
+    steps : dict of int to float or None
+        Time between frames of each segment, ps (None: unknown).
+    states : iterable of int
+        The states whose runs count; at least one must have frames.
+
+    Returns
+    -------
+    str
+        ``'the longest run is N frames (T ps from its first frame to its last)'``,
+        or the visit of a labelled file and the span in rescaled time.
+
+    Examples
+    --------
+    >>> import mdtraj as md, tempfile, os
+    >>> from cvdesign import Source
+    >>> top = md.Topology(); r = top.add_residue("TOY", top.add_chain())
+    >>> _ = top.add_atom("C1", md.element.carbon, r)
+    >>> path = os.path.join(tempfile.mkdtemp(), "a.xtc")
+    >>> md.Trajectory(np.zeros((20, 1, 3), np.float32), top,
+    ...               time=np.arange(20) * 0.2).save_xtc(path)
+    >>> src = Source(top).add(path, "a")
+    >>> longest_run_text(src, None, np.array([[20]]), {0: 0.2}, [0])
+    'the longest run is 20 frames (3.8 ps from its first frame to its last)'
+    """
     best = None
     for si, seg in enumerate(source.segments):
         dt = steps.get(si)
         rescaled = reweighting is not None and si in reweighting.clocks
         for s in states:
             for lo, hi in _state_runs(seg, si, s, source.states[s], seg_counts):
-                length = reweighting.rescaled_frames(si, lo, hi) if rescaled else hi - lo
-                key = length * (dt or 1.0)
+                if rescaled:
+                    clock = reweighting.clocks[si]
+                    span = float(clock[hi - 1] - clock[lo])
+                else:
+                    span = float(hi - 1 - lo)
+                key = span * (dt or 1.0)
                 if best is None or key > best[0]:
-                    best = (key, hi - lo, length, dt, rescaled, seg)
-    _, n, length, dt, rescaled, seg = best
+                    best = (key, hi - lo, span, dt, rescaled, seg)
+    _, n, span, dt, rescaled, seg = best
     text = (f"the longest run is {n} frames" if seg.labels is None else
             f"the longest run is a visit of {n} frames in the labelled file {seg.path.name}")
     if rescaled:
-        return (text + f", {length:.4g} frame spacings"
-                + ("" if dt is None else f" ({length * dt:.4g} ps)") + " of rescaled time")
-    return text + ("" if dt is None else f" ({n * dt:g} ps)")
+        return (text + f", {span:.4g} frame spacings"
+                + ("" if dt is None else f" ({span * dt:.4g} ps)")
+                + " of rescaled time from its first frame to its last")
+    if dt is None:
+        return text + f" ({span:g} frame spacings from its first frame to its last)"
+    return text + f" ({span * dt:.4g} ps from its first frame to its last)"
 
 
 def block_frames(seg_counts, taus, timesteps, lag_frames):
