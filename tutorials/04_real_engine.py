@@ -477,8 +477,8 @@ def main(out_dir, long=False, keep=True):
         # test_real_engine_tutorial_recovers_delta_f_of_the_reference.
         print(f"F(cis) - F(trans) reference: {ref.delta_f:+.2f} ± {ref.error:.2f} kJ/mol "
               "(± the standard error from its independent repeats; repeated with other "
-              "seeds, this reference scattered by 0.4 kJ/mol and the reweighted estimate "
-              "by 1.3 kJ/mol, standard deviations)")
+              "seeds, this reference scattered by 0.3 kJ/mol and the reweighted estimate "
+              "by 1.1 kJ/mol, standard deviations)")
         print(f"difference: {abs(delta - ref.delta_f):.2f} kJ/mol (kT = {bias.kT:.2f} kJ/mol)")
 
         # -------------------------------------------------------- 7-9. refine: CV 2
