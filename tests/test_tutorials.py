@@ -211,21 +211,30 @@ def test_real_engine_tutorial_drives_more_transitions_along_the_rank1_cv(tutoria
 def test_real_engine_tutorial_recovers_delta_f_of_the_reference(tutorial_run):
     """Tutorial 04: F(cis) - F(trans) from the reweighted frames of the rank-1 run
     (well-tempered reweighting, Tiwary and Parrinello, J. Phys. Chem. B 2015) is within
-    2 kJ/mol of the reference computed in the tutorial without CV or bias: the amide's
-    torsion terms switched off and on again within each state, a thermodynamic cycle
+    3.5 kJ/mol of the reference computed in the tutorial without CV or bias: the amide's
+    torsion terms scaled down to 0.3 and up again within each state, a thermodynamic cycle
     (Zwanzig, J. Chem. Phys. 1954) solved with MBAR (Shirts and Chodera, J. Chem. Phys.
-    2008), with many crossings where the terms are off. Measured on this machine with other
-    seeds: the reference scatters by about 0.6 kJ/mol and this estimate by about 1 kJ/mol
-    (standard deviations), so the 2 kJ/mol criterion is about 1.7 combined standard
-    deviations."""
+    2008), in four independent repeats, with many crossings at the lowest scale.
+
+    Measured on this machine, quick configuration, seeds 2026-2032 (the tutorial's SEED
+    changed for the measurement only): the reference gave 5.83, 6.01, 6.41, 6.52, 5.70,
+    5.69, 6.18 kJ/mol, a standard deviation of 0.33 (its own error bars, from the
+    repeats, 0.13-0.59); the reweighted estimate gave 6.40, 7.45, 6.28, 4.11, 7.09, 6.33,
+    5.60, a standard deviation of 1.1 (largest |estimate - reference| 2.41, at 2029). The
+    tolerance is 3 combined standard deviations, 3 * sqrt(0.33**2 + 1.09**2) = 3.4,
+    rounded up: the check fails on a real disagreement, not by chance at one seed; most
+    of it is the estimate's own scatter (seven seeds only, so that standard deviation is
+    itself uncertain by about 30%). (With the terms switched fully off, as before, the
+    reference gave 6.74, 4.26, 5.78, 8.50, 3.07 at seeds 2026-2030, a standard deviation
+    of 2.1, and the 2 kJ/mol tolerance then used failed at two of those five seeds.)"""
     out = _output_of(tutorial_run, "04_real_engine.py")
     (delta,) = _number(r"^F\(cis\) - F\(trans\) from the reweighted frames: ([-+]\d+\.\d+) "
                        r"kJ/mol$", out)
-    ref, spread = _number(r"^F\(cis\) - F\(trans\) reference: ([-+]\d+\.\d+) ± (\d+\.\d+) "
-                          r"kJ/mol ", out)
-    (crossings,) = _number(r"; (\d+) crossings with the terms off;", out)
-    assert crossings >= 100 and spread < 3.0  # a rough error bar; see the tutorial
-    assert abs(delta - ref) < 2.0
+    ref, error = _number(r"^F\(cis\) - F\(trans\) reference: ([-+]\d+\.\d+) ± (\d+\.\d+) "
+                         r"kJ/mol ", out)
+    (crossings,) = _number(r"; (\d+) crossings with the terms scaled down;", out)
+    assert crossings >= 100 and error < 1.0  # measured: 236-310 crossings, errors 0.13-0.59
+    assert abs(delta - ref) < 3.5
 
 
 def test_refine_tutorial_moves_cv2_onto_the_latch_torsion(tutorial_run):

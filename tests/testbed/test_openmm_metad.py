@@ -17,7 +17,8 @@ from cvdesign.testbed.amide import methylacetamide  # noqa: E402
 from cvdesign.testbed.metad import WellTemperedBias  # noqa: E402
 from cvdesign.testbed.openmm_metad import (bias_force, mbar_free_energies,  # noqa: E402
                                            reweighting_offset, run_openmm_biased,
-                                           torsion_energy, torsion_terms, update_bias_force)
+                                           torsion_cycle_delta_f, torsion_energy,
+                                           torsion_terms, update_bias_force)
 
 
 @pytest.fixture(scope="module")
@@ -234,3 +235,38 @@ def test_torsion_terms_are_the_proper_terms_about_the_amide_bond_and_their_energ
     energy, _, _ = _energy_forces(openmm.XmlSerializer.clone(molecule.system), only, x)
     assert torsion_energy(x, terms) == pytest.approx(energy, rel=1e-9)
     assert torsion_energy(molecule.positions, terms) == pytest.approx(0.0, abs=1e-3)  # planar
+
+
+def _cycle(molecule, **kw):
+    cis = methylacetamide(0.0)
+    args = dict(temperature=300.0, scales=(0.3, 1.0), n_frames=20, n_frames_low=40,
+                n_repeats=2, equilibration_steps=100, seed=5)
+    args.update(kw)
+    return torsion_cycle_delta_f(molecule.system, {"cis": cis.positions,
+                                                   "trans": [molecule.positions] * 2},
+                                 molecule.omega_atoms[1:3], molecule.omega_atoms,
+                                 molecule.wells, **args)
+
+
+def test_torsion_cycle_is_reproducible_and_its_error_is_the_spread_of_its_repeats(molecule):
+    """Tiny runs (no accuracy claimed): the same seed gives the same numbers, the cycle adds
+    up, and the error bar is the standard error of the independent repeats."""
+    ref = _cycle(molecule)
+    again = _cycle(molecule)
+    assert (ref.delta_f, ref.repeats, ref.error) == (again.delta_f, again.repeats, again.error)
+    assert len(ref.repeats) == 2 and ref.repeats[0] != ref.repeats[1]
+    assert ref.delta_f == pytest.approx(ref.delta_f_low + ref.switch_on["cis"]
+                                        - ref.switch_on["trans"], abs=1e-9)
+    assert ref.error == pytest.approx(abs(ref.repeats[0] - ref.repeats[1]) / 2.0, rel=1e-9)
+    assert ref.scales == (0.3, 1.0) and ref.states == ("cis", "trans")
+    assert _cycle(molecule, seed=6).delta_f != ref.delta_f
+
+
+@pytest.mark.parametrize("kw, message", [
+    ({"scales": (0.3, 0.9)}, r"scales=\(0\.3, 0\.9\) must increase from a value in \[0, 1\) to 1"),
+    ({"scales": (0.5, 0.3, 1.0)}, r"must increase"),
+    ({"n_repeats": 1}, r"n_repeats=1: at least 2 repeats are needed for the error"),
+])
+def test_torsion_cycle_refuses_bad_scales_and_a_single_repeat(molecule, kw, message):
+    with pytest.raises(ValueError, match=message):
+        _cycle(molecule, **kw)
