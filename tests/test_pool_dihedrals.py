@@ -1,12 +1,13 @@
 """A dihedral's pool features (cos, sin) against mdtraj's dihedrals on real protein data.
 
-`Pool.features` gives the cos and sin of mdtraj's dihedral angle. These tests check them
-against the cos and sin of `mdtraj.compute_dihedrals` and of `cvdesign.geometry.dihedrals`
-(float64; the atan2 arguments of Blondel and Karplus, J. Comput. Chem. 17, 1132-1141,
-1996) on adenylate kinase from the MDAnalysis test data (Beckstein et al., J. Mol. Biol.
-2009; the solvated copy in a triclinic box, adk_oplsaa, whose protein is split by the
-boundary), without and with periodic boxes, and that a frame's values do not depend on
-the frames it is computed with.
+`Pool.features` forms cos and sin of a dihedral from mdtraj's bond vectors without the
+angle (`cvdesign.pool.features._dihedral_cos_sin`, the atan2 arguments of Blondel and
+Karplus, J. Comput. Chem. 17, 1132-1141, 1996). These tests check it against the cos and
+sin of `mdtraj.compute_dihedrals` and of `cvdesign.geometry.dihedrals` (float64) on
+adenylate kinase from the MDAnalysis test data (Beckstein et al., J. Mol. Biol. 2009; the
+solvated copy in a triclinic box, adk_oplsaa, whose protein is split by the boundary),
+without and with periodic boxes, and that a frame's values do not depend on the frames
+or the blocks it is computed with.
 """
 
 import mdtraj as md
@@ -16,6 +17,7 @@ import pytest
 from cvdesign.geometry import dihedrals as reference_dihedrals
 from cvdesign.io.source import select_atoms
 from cvdesign.pool import Descriptor, Pool, candidate_pool
+from cvdesign.pool import features as features_module
 
 # Both sides work in float32 (mdtraj's coordinates and geometry); float32 rounding of
 # bond vectors of ~0.15 nm leaves errors of a few 1e-7 in cos and sin, more for nearly
@@ -64,12 +66,31 @@ def test_dihedral_cos_sin_match_mdtraj_and_the_float64_reference_on_adenylate_ki
     assert len(signs) == 4
 
 
-def test_a_frames_dihedral_features_do_not_depend_on_its_chunk(adk_fragment):
+def test_a_frames_dihedral_features_do_not_depend_on_its_chunk_or_the_blocks(
+        adk_fragment, monkeypatch):
     traj, pool = adk_fragment
     whole = pool.features(traj)
     single = np.concatenate([pool.features(traj[i]) for i in range(traj.n_frames)])
     assert np.array_equal(whole, single)
     assert np.array_equal(pool.features(traj[2:9]), whole[2:9])
+    # blocks of 7 (frame, dihedral) values: several blocks along the dihedrals of a frame
+    monkeypatch.setattr(features_module, "_DIHEDRALS_PER_BLOCK", 7)
+    assert np.array_equal(pool.features(traj), whole)
+    # 3 frames per block of all the dihedrals
+    monkeypatch.setattr(features_module, "_DIHEDRALS_PER_BLOCK", 3 * len(pool))
+    assert np.array_equal(pool.features(traj[2:9]), whole[2:9])
+
+
+def test_a_degenerate_frame_does_not_change_the_bytes_of_the_frames_beside_it(adk_fragment):
+    # A frame with every atom at one point (every dihedral undefined, |A||B| = 0) in the
+    # same chunk and block as real frames: the real frames keep their bytes (a fallback
+    # for squares out of float32's range must act on those values alone, not on the block).
+    traj, pool = adk_fragment
+    collapsed = md.Trajectory(np.concatenate([traj.xyz, np.zeros_like(traj.xyz[:1])]),
+                              traj.topology)
+    got = pool.features(collapsed)
+    assert np.array_equal(got[:-1], pool.features(traj))
+    assert np.array_equal(got[-1], np.tile([1.0, 0.0], len(pool)))
 
 
 def test_dihedral_features_in_a_mixed_pool_land_in_their_own_columns(adk_fragment):

@@ -3,9 +3,10 @@
 A distance or a bond angle contributes its value (nm, rad); a dihedral
 contributes the pair ``(cos phi, sin phi)``, never the cut angle, so that a
 linear combination stays smooth across the +-pi boundary. Features of the atom
-kinds come from mdtraj's geometry, those of the group kinds from
-:mod:`cvdesign.geometry` (the code the spec evaluator runs; the tests check
-that the two agree).
+kinds come from mdtraj's geometry (a dihedral's cos and sin are formed from
+mdtraj's bond vectors without forming the angle, see :func:`_dihedral_cos_sin`),
+those of the group kinds from :mod:`cvdesign.geometry` (the code the spec
+evaluator runs; the tests check that the two agree).
 """
 
 import warnings
@@ -24,6 +25,82 @@ __all__ = ["Pool"]
 
 # Numbers (frames x atom pairs) formed at once for coordination numbers (bounds memory).
 _NUMBERS_PER_BLOCK = 2_000_000
+# (frame, dihedral) values formed at once by _dihedral_cos_sin: its float32 temporaries
+# (about 40 arrays of this many values) stay within a core's cache.
+_DIHEDRALS_PER_BLOCK = 16_384
+_TINY32 = float(np.finfo(np.float32).tiny)
+_HUGE32 = float(np.finfo(np.float32).max)
+
+
+def _dihedral_cos_sin(trajectory, quads, periodic, out_cos, out_sin):
+    """Cosine and sine of dihedrals, written into `out_cos` and `out_sin`.
+
+    The angle itself is never formed. With mdtraj's bond vectors
+    ``b1 = x1 - x0``, ``b2 = x2 - x1``, ``b3 = x3 - x2`` (float32, from
+    ``mdtraj.compute_displacements``: with ``periodic`` and a unit cell each
+    is its own minimum image, as in ``mdtraj.compute_dihedrals``),
+    ``A = b1 x b2`` and ``B = b2 x b3``, the dihedral is
+    ``atan2(y, x)`` with ``x = A . B`` and ``y = |b2| b1 . B`` (the
+    well-conditioned form of A. Blondel and M. Karplus, J. Comput. Chem. 17,
+    1132-1141, 1996; mdtraj's numpy reference code uses it too), and
+    ``x^2 + y^2 = |A|^2 |B|^2``,
+    so ``cos = x / r`` and ``sin = y / r`` with ``r = sqrt(x^2 + y^2)``.
+    The arithmetic is float32, as mdtraj's, and elementwise: blocks of
+    frames and dihedrals only bound the memory of the temporaries (``hypot``
+    replaces ``sqrt(x^2 + y^2)`` only for the values whose squares leave
+    float32's range).
+    An undefined dihedral (``r = 0``: collinear or coincident atoms) gives
+    ``(1, 0)``, the angle 0 that ``mdtraj.compute_dihedrals`` returns there.
+
+    Parameters
+    ----------
+    trajectory : mdtraj.Trajectory
+        Coordinates in nm.
+    quads : ndarray of shape (n_dihedrals, 4), int
+        Atom indices (rows of the trajectory) of each dihedral.
+    periodic : bool
+        Minimum-image bond vectors when the trajectory has a unit cell.
+    out_cos, out_sin : ndarray of shape (n_frames, n_dihedrals), float64
+        Written in place (views of the feature matrix are fine).
+    """
+    n_frames, m = trajectory.n_frames, len(quads)
+    width = max(1, min(m, _DIHEDRALS_PER_BLOCK))  # dihedrals per block
+    step = max(1, _DIHEDRALS_PER_BLOCK // width)  # frames per block
+    box = trajectory.unitcell_lengths is not None and trajectory.unitcell_angles is not None
+    for c0 in range(0, m, width):
+        c1 = min(m, c0 + width)
+        q = quads[c0:c1]
+        k = c1 - c0
+        # the three bonds of every dihedral, bond by bond: rows j*k .. (j+1)*k - 1
+        bonds = np.concatenate([q[:, 0:2], q[:, 1:3], q[:, 2:4]]).astype(np.int32)
+        for a in range(0, n_frames, step):
+            b = min(n_frames, a + step)
+            part = md.Trajectory(
+                trajectory.xyz[a:b], None,
+                unitcell_lengths=trajectory.unitcell_lengths[a:b] if box else None,
+                unitcell_angles=trajectory.unitcell_angles[a:b] if box else None)
+            d = md.compute_displacements(part, bonds, periodic=periodic)
+            # components of each bond as contiguous (frames, dihedrals) arrays
+            d = np.ascontiguousarray(d.reshape(b - a, 3, k, 3).transpose(1, 3, 0, 2))
+            (b1x, b1y, b1z), (b2x, b2y, b2z), (b3x, b3y, b3z) = d
+            ax, ay, az = b1y * b2z - b1z * b2y, b1z * b2x - b1x * b2z, b1x * b2y - b1y * b2x
+            bx, by, bz = b2y * b3z - b2z * b3y, b2z * b3x - b2x * b3z, b2x * b3y - b2y * b3x
+            x = ax * bx + ay * by + az * bz
+            y = (b1x * bx + b1y * by + b1z * bz) * np.sqrt(b2x * b2x + b2y * b2y + b2z * b2z)
+            with np.errstate(over="ignore", under="ignore"):
+                r2 = x * x + y * y
+            r = np.sqrt(r2)
+            # squares out of float32's range: hypot for those values alone, so that a
+            # frame's bytes never depend on the other values of its block
+            out_of_range = (r2 < _TINY32) | (r2 > _HUGE32)
+            if out_of_range.any():
+                r[out_of_range] = np.hypot(x[out_of_range], y[out_of_range])
+            undefined = r == 0
+            if undefined.any():
+                x[undefined] = 1.0
+                r[undefined] = 1.0
+            np.divide(x, r, out=out_cos[a:b, c0:c1])
+            np.divide(y, r, out=out_sin[a:b, c0:c1])
 
 
 def _columns(cols):
@@ -164,7 +241,10 @@ class Pool:
     def features(self, trajectory, *, atom_indices=None):
         """Feature values of every frame, through mdtraj's geometry.
 
-        Distances use the minimum image when the trajectory has a unit cell.
+        Distances, angles and the bonds of dihedrals use the minimum image
+        when the trajectory has a unit cell. mdtraj computes in float32; a
+        dihedral's cos and sin are formed in float32 from mdtraj's bond
+        vectors, without the angle (:func:`_dihedral_cos_sin`).
 
         Parameters
         ----------
@@ -205,11 +285,13 @@ class Pool:
                 vals = md.compute_angles(trajectory, atoms, periodic=periodic)
                 _undefined_angles(vals, self._atoms[kind])
                 out[:, cols] = vals
+            elif isinstance(cols, slice) and isinstance(second, slice):
+                _dihedral_cos_sin(trajectory, atoms, periodic, out[:, cols], out[:, second])
             else:
-                vals = md.compute_dihedrals(trajectory, atoms, periodic=periodic)
-                vals = vals.astype(np.float64)
-                out[:, cols] = np.cos(vals)
-                out[:, second] = np.sin(vals)
+                cos_sin = np.empty((2, n, len(atoms)))
+                _dihedral_cos_sin(trajectory, atoms, periodic, cos_sin[0], cos_sin[1])
+                out[:, cols] = cos_sin[0]
+                out[:, second] = cos_sin[1]
         return out
 
     def _local_atoms(self, atom_indices, remap):
