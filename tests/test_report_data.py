@@ -17,6 +17,7 @@ from cvdesign.io.source import select_atoms
 from cvdesign.passes import Folds, PoolFeaturizer, frame_keys, plan_tasks, run_pass
 from cvdesign.passes import thinning_stride
 from cvdesign.pipeline.explore import propose_states
+from cvdesign.pipeline.suggest import terms_featurizer
 from cvdesign.pipeline.report_data import (MAX_BINS, MAX_TRACE_POINTS, CVLaggedPass, CVPlan,
                                            CVReportPass, affine_to_cv_units, histogram_bins,
                                            trace_stride)
@@ -346,14 +347,16 @@ def _wide_and_narrow(small):
                  Descriptor("angle", (1, 2, 3), "angle C2-C3-C4"),
                  Descriptor("dihedral", (2, 3, 4, 5), "dihedral C3-C4-C5-C6")], top)
     cols = np.array([1, 3, 4])  # the distance C1-C8, the dihedral's cos and sin
-    terms = np.unique(wide.feature_descriptor[cols])
     report = CVReportPass(PoolFeaturizer(wide), small["plans"], small["folds"],
                           small["strides"], small["lags"], [0.1, -0.2], columns=cols,
                           center=small["center"], scale=small["scale"])
+    narrow, columns = terms_featurizer(wide, cols)  # what suggest's timescales read uses
+    assert [d.label for d in narrow.pool.descriptors] == ["dist C1-C8",
+                                                          "dihedral C3-C4-C5-C6"]
+    assert columns.tolist() == [0, 1, 2]
     lagged = lambda: CVLaggedPass(  # noqa: E731
-        PoolFeaturizer(wide.subset(terms)), small["plans"], small["lags"], [0.1, -0.2],
-        columns=np.searchsorted(wide.features_of(terms), cols), center=small["center"],
-        scale=small["scale"])
+        narrow, small["plans"], small["lags"], [0.1, -0.2], columns=columns,
+        center=small["center"], scale=small["scale"])
     return report, lagged
 
 

@@ -717,12 +717,46 @@ def _report_pass(every, base, screening, fits, fm, folds, lags, seg_counts, step
     if report_lags is not None:
         # a read of its own over the terms' descriptors: its halo (up to 2000 frames) in
         # the read of every feature would keep those frames of every feature in memory
-        pool = every.pool
-        terms = np.unique(pool.feature_descriptor[cols])  # their features: pool order
-        lagged = CVLaggedPass(PoolFeaturizer(pool.subset(terms)), plans, report_lags, shift,
-                              columns=np.searchsorted(pool.features_of(terms), cols),
+        featurizer, columns = terms_featurizer(every.pool, cols)
+        lagged = CVLaggedPass(featurizer, plans, report_lags, shift, columns=columns,
                               center=center, scale=scale)
     return report, lagged, plans, report_lags
+
+
+def terms_featurizer(pool, cols):
+    """A featurizer of the descriptors behind some pool features, and where they are in it.
+
+    Parameters
+    ----------
+    pool : Pool
+    cols : array-like of int
+        Features of `pool` (a dihedral's cos and sin are two).
+
+    Returns
+    -------
+    featurizer : PoolFeaturizer
+        Of the descriptors of `cols` alone, in pool order (each with all its features).
+    columns : ndarray of int
+        ``featurizer``'s column of each of `cols`, in their order.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> from cvdesign.pool import Descriptor, Pool
+    >>> top = md.Topology(); r = top.add_residue("TOY", top.add_chain())
+    >>> for i in range(5):
+    ...     _ = top.add_atom(f"C{i}", md.element.carbon, r)
+    >>> pool = Pool([Descriptor("distance", (0, 1), "a"),
+    ...              Descriptor("dihedral", (0, 1, 2, 3), "b"),  # features 1, 2: cos, sin
+    ...              Descriptor("distance", (2, 4), "c")], top)
+    >>> feat, columns = terms_featurizer(pool, [3, 2])  # distance c, sin of dihedral b
+    >>> [d.label for d in feat.pool.descriptors], columns.tolist()
+    (['b', 'c'], [2, 1])
+    """
+    cols = np.asarray(cols, dtype=np.intp)
+    terms = np.unique(pool.feature_descriptor[cols])  # their features come in pool order
+    return (PoolFeaturizer(pool.subset(terms)),
+            np.searchsorted(pool.features_of(terms), cols).astype(np.intp))
 
 
 def _card_pass(every, pool, screening, seg_counts, iat_desc, steps, lags, first):
