@@ -221,8 +221,8 @@ def test_real_engine_tutorial_recovers_delta_f_of_the_reference(tutorial_run):
     5.69, 6.18 kJ/mol, a standard deviation of 0.33 (its own error bars, from the
     repeats, 0.13-0.59); the reweighted estimate gave 6.40, 7.45, 6.28, 4.11, 7.09, 6.33,
     5.60, a standard deviation of 1.1 (largest |estimate - reference| 2.41, at 2029). The
-    tolerance is 3 combined standard deviations, 3 * sqrt(0.33**2 + 1.09**2) = 3.4,
-    rounded up: the check fails on a real disagreement, not by chance at one seed; most
+    tolerance is 3 combined standard deviations (common practice), 3 * sqrt(0.33**2 +
+    1.09**2) = 3.4, rounded up: the check fails on a real disagreement, not by chance at one seed; most
     of it is the estimate's own scatter (seven seeds only, so that standard deviation is
     itself uncertain by about 30%). Those estimates came from specs built on the dihedral
     features of mdtraj's angle; with the current float32 cos and sin (the same physics,

@@ -46,8 +46,9 @@ from ..passes import FeaturePass, frame_keys, group_rows, thinning_stride
 from ..stats.moments import DiagonalLaggedMoments
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
-           "CVBlockHistograms", "CVReportPass", "CVLaggedPass", "cv_plans", "trace_stride", "histogram_bins",
-           "affine_to_cv_units", "report_document", "timescale_lags", "funnel_report_document"]
+           "CVBlockHistograms", "CVReportPass", "CVLaggedPass", "cv_plans", "trace_stride",
+           "histogram_bins", "affine_to_cv_units", "report_document", "timescale_lags",
+           "funnel_report_document"]
 
 #: Most points of a trace (one input segment).
 MAX_TRACE_POINTS = 1000
