@@ -16,14 +16,16 @@ Modules: :mod:`.folds` (per-fold moments, standardization), :mod:`.objectives`
 search, ranking).
 """
 
-from .folds import (FoldMoments, standardize_lagged, standardize_moments, state_arrays,
-                    within_states)
+from .folds import (FoldMoments, stacked_state_arrays, standardize_lagged, standardize_moments,
+                    state_arrays, within_states)
 from .greedy import Combination, greedy_search, rank_combinations
 from .objectives import (OBJECTIVES, autocorrelation_along, both_weight, cv_direction,
-                         fit_direction, fold_scores, heldout_score, slow_direction)
+                         fit_direction, fold_scores, heldout_score, heldout_scores,
+                         slow_direction)
 
-__all__ = ["FoldMoments", "Combination", "OBJECTIVES", "heldout_score", "fold_scores",
+__all__ = ["FoldMoments", "Combination", "OBJECTIVES", "heldout_score", "heldout_scores",
+           "fold_scores",
            "fit_direction", "slow_direction", "both_weight", "cv_direction",
            "autocorrelation_along",
            "greedy_search", "rank_combinations", "standardize_moments", "standardize_lagged",
-           "state_arrays", "within_states"]
+           "state_arrays", "stacked_state_arrays", "within_states"]

@@ -11,7 +11,7 @@ import numpy as np
 from ..stats.moments import merge_all
 
 __all__ = ["FoldMoments", "standardize_moments", "standardize_lagged", "state_arrays",
-           "within_states"]
+           "stacked_state_arrays", "within_states"]
 
 
 class FoldMoments:
@@ -130,6 +130,23 @@ class FoldMoments:
         return (self.transition_test(k) if self.slowness == "transitions"
                 else self.within_test(k))
 
+    def slowness_covariances(self, k):
+        """Reversible ``C0`` and ``C(lag)`` of every feature on :meth:`slowness_test`'s
+        pairs of fold `k`, with their count, computed once per fold.
+
+        Returns
+        -------
+        count : float
+            Pairs (sum of weights); 0 when there are none (the matrices are then NaN).
+        c0, ct : ndarray of shape (n_features, n_features)
+            Features' units squared.
+        """
+        key = ("covariances", self.slowness, k)
+        if key not in self._about_own:
+            lagged = self.slowness_test(k)
+            self._about_own[key] = (lagged.count, *lagged.covariances(reversible=True)[1:])
+        return self._about_own[key]
+
     def lagged_pooled(self):
         """Lagged moments over all folds (LaggedMoments), or None."""
         return None if self.lagged is None else self._lag_all
@@ -198,6 +215,48 @@ def state_arrays(moments, idx):
     # the subset of each covariance (scatter / count), without dividing the whole matrix
     covs = np.array([m.scatter[idx[:, None], idx] / m.count if m.count else
                      np.full((idx.size, idx.size), np.nan) for m in moments])
+    return means, covs
+
+
+def stacked_state_arrays(grid, combos):
+    """Per-state means and covariances of many combinations of features at once.
+
+    The stacked form of :func:`state_arrays`, element for element the same values.
+
+    Parameters
+    ----------
+    grid : sequence of sequence of Moments
+        ``grid[k][s]``: the moments of state ``s`` in the ``k``-th set (a fold, say).
+    combos : array-like of int, shape (n_combos, k)
+        Feature indices of each combination, all of one size.
+
+    Returns
+    -------
+    means : ndarray of shape (len(grid), n_combos, n_states, k)
+    covariances : ndarray of shape (len(grid), n_combos, n_states, k, k)
+        ``scatter / count``; NaN for moments without frames.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from cvdesign.stats.moments import Moments
+    >>> m = Moments.from_data(np.arange(12.0).reshape(4, 3) ** 2)
+    >>> means, covs = stacked_state_arrays([[m, m]], [[0, 2], [1, 2]])
+    >>> means.shape, covs.shape
+    ((1, 2, 2, 2), (1, 2, 2, 2, 2))
+    >>> bool(np.array_equal(covs[0, 1, 0], state_arrays([m], [1, 2])[1][0]))
+    True
+    """
+    combos = np.asarray(combos, dtype=np.intp)
+    n_combos, size = combos.shape
+    n_states = len(grid[0])
+    means = np.empty((len(grid), n_combos, n_states, size))
+    covs = np.empty((len(grid), n_combos, n_states, size, size))
+    rows, cols = combos[:, :, None], combos[:, None, :]
+    for k, states in enumerate(grid):
+        for s, m in enumerate(states):
+            means[k, :, s] = m.mean[combos]
+            covs[k, :, s] = m.scatter[rows, cols] / m.count if m.count else np.nan
     return means, covs
 
 

@@ -4,7 +4,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .objectives import heldout_score
+from .objectives import heldout_scores
 
 __all__ = ["Combination", "greedy_search", "rank_combinations"]
 
@@ -67,32 +67,37 @@ def greedy_search(fold_moments, groups, *, max_terms=5, n_seeds=5, min_gain=0.01
 
     Notes
     -----
-    Costs ``O(n_seeds * max_terms * len(groups))`` small eigenproblems per fold.
+    Costs ``O(n_seeds * max_terms * len(groups))`` small fits per fold; each step's
+    candidates are scored together (:func:`~cvdesign.search.objectives.heldout_scores`).
     """
     groups = [np.asarray(g, dtype=np.intp) for g in groups]
     if max_terms < 1:
         raise ValueError(f"max_terms={max_terms!r} must be at least 1")
     cache = {}
 
-    def score(members):
-        key = frozenset(members)
-        if key not in cache:
-            idx = np.concatenate([groups[m] for m in sorted(key)])
-            cache[key] = heldout_score(fold_moments, idx, shrinkage=shrinkage,
-                                       objective=objective, method=method)
-        return cache[key]
+    def scores(keys):
+        """Held-out scores of the member sets `keys`, the new ones computed in one batch."""
+        new = [k for k in dict.fromkeys(keys) if k not in cache]
+        if new:
+            combos = [np.concatenate([groups[m] for m in sorted(k)]) for k in new]
+            cache.update(zip(new, heldout_scores(fold_moments, combos, shrinkage=shrinkage,
+                                                 objective=objective, method=method)))
+        return [cache[k] for k in keys]
 
-    singles = sorted(range(len(groups)), key=lambda g: (-score((g,))[0], g))
+    def score(members):
+        return scores([frozenset(members)])[0]
+
+    firsts = scores([frozenset((g,)) for g in range(len(groups))])
+    singles = sorted(range(len(groups)), key=lambda g: (-firsts[g][0], g))
     found = {}
     for seed in singles[:max(1, n_seeds)]:
         members = (seed,)
         found.setdefault(frozenset(members), members)
         while len(members) < min(max_terms, len(groups)):
+            others = [g for g in range(len(groups)) if g not in members]
             best, best_val = None, -np.inf
-            for g in range(len(groups)):
-                if g in members:
-                    continue
-                val = score(members + (g,))[0]
+            for g, (val, _, _) in zip(others, scores([frozenset(members + (g,))
+                                                      for g in others])):
                 if val > best_val:
                     best, best_val = g, val
             current = score(members)[0]
