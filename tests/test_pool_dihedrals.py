@@ -10,10 +10,13 @@ without and with periodic boxes, and that a frame's values do not depend on the 
 or the blocks it is computed with.
 """
 
+import warnings
+
 import mdtraj as md
 import numpy as np
 import pytest
 
+from cvdesign.geometry import GeometryWarning
 from cvdesign.geometry import dihedrals as reference_dihedrals
 from cvdesign.io.source import select_atoms
 from cvdesign.pool import Descriptor, Pool, candidate_pool
@@ -88,7 +91,8 @@ def test_a_degenerate_frame_does_not_change_the_bytes_of_the_frames_beside_it(ad
     traj, pool = adk_fragment
     collapsed = md.Trajectory(np.concatenate([traj.xyz, np.zeros_like(traj.xyz[:1])]),
                               traj.topology)
-    got = pool.features(collapsed)
+    with pytest.warns(GeometryWarning, match="undefined in some frames"):
+        got = pool.features(collapsed)
     assert np.array_equal(got[:-1], pool.features(traj))
     assert np.array_equal(got[-1], np.tile([1.0, 0.0], len(pool)))
 
@@ -111,7 +115,9 @@ def test_dihedral_features_in_a_mixed_pool_land_in_their_own_columns(adk_fragmen
         md.compute_distances(traj, [d.atoms for d in mixed.descriptors if d.kind == "distance"]))
 
 
-def test_an_undefined_dihedral_gives_cos_1_sin_0_as_mdtraj_angle_0():
+def test_an_undefined_dihedral_gives_cos_1_sin_0_as_mdtraj_angle_0_with_a_warning():
+    # mdtraj's compute_dihedrals and the spec's evaluator (cvdesign.geometry.dihedrals)
+    # give 0 rad there; the evaluator warns, and so must the pool (it had been silent)
     top = md.Topology()
     res = top.add_residue("X", top.add_chain(), 1)
     for i in range(4):
@@ -123,7 +129,18 @@ def test_an_undefined_dihedral_gives_cos_1_sin_0_as_mdtraj_angle_0():
     traj = md.Trajectory(xyz, top)
     pool = Pool([Descriptor("dihedral", (0, 1, 2, 3), "t")], top)
     assert md.compute_dihedrals(traj, [[0, 1, 2, 3]])[:2, 0].tolist() == [0.0, 0.0]
-    np.testing.assert_allclose(pool.features(traj), [[1, 0], [1, 0], [0, 1]], atol=1e-7)
+    with pytest.warns(GeometryWarning, match=r"dihedral descriptor of atoms \[0, 1, 2, 3\] "
+                      r"\(and any other named in a warning like this\): undefined in some "
+                      r"frames \(collinear or coincident atoms\); set to 0 rad \(cos 1, sin "
+                      r"0\) there, as the spec's evaluator does"):
+        got = pool.features(traj)
+    np.testing.assert_allclose(got, [[1, 0], [1, 0], [0, 1]], atol=1e-7)
+    with pytest.warns(GeometryWarning, match="dihedrals: 2 of 3 values are undefined"):
+        assert reference_dihedrals(xyz.astype(np.float64), [[0, 1, 2, 3]])[:2, 0].tolist() \
+            == [0.0, 0.0]
+    with warnings.catch_warnings():  # a defined dihedral: no warning
+        warnings.simplefilter("error")
+        pool.features(traj[2:])
 
 
 def test_dihedral_cos_sin_of_tiny_and_huge_bonds_keep_their_angle():

@@ -14,7 +14,8 @@ from ..score.card import card_intervals
 from ..score.redundancy import descriptor_correlation, redundancy_graph, representatives
 from ..score.univariate import overlap_coefficient
 from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction,
-                      greedy_search, heldout_score, rank_combinations, slow_direction,
+                      greedy_search, heldout_score, heldout_scores, rank_combinations,
+                      slow_direction,
                       state_arrays, within_states)
 from ..stats.bootstrap import block_bootstrap, percentile_interval
 from ..stats.moments import merge_all
@@ -468,11 +469,14 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
             counts = np.array([[merged[s * n_folds + k][2]["h"] for s in range(n_states)]
                                for k in range(n_folds)])
             overlap = heldout_overlap(counts)
+            ranked_idx = [p_idx for p_idx, _ in p_fits]
+            scores = heldout_scores(boot_fm, ranked_idx, **search)
+            fisher = scores if search["objective"] == "separate" else heldout_scores(
+                boot_fm, ranked_idx, objective="separate", method=search["method"],
+                shrinkage=search["shrinkage"])
             for ci, (p_idx, _) in enumerate(p_fits):
-                held.append(heldout_score(boot_fm, p_idx, **search)[0])
-                held.append(heldout_score(boot_fm, p_idx, objective="separate",
-                                          method=search["method"],
-                                          shrinkage=search["shrinkage"])[0])
+                held.append(scores[ci][0])
+                held.append(fisher[ci][0])
                 held.append(overlap[ci])
                 for along in (boot_fm.lagged_test, boot_fm.within_test):
                     held.append(_mean_finite([autocorrelation_along(fold_ws[ci][k], along(k),

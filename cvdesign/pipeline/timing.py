@@ -167,6 +167,9 @@ def longest_run_text(source, reweighting, seg_counts, steps, states):
     >>> src = Source(top).add(path, "a")
     >>> longest_run_text(src, None, np.array([[20]]), {0: 0.2}, [0])
     'the longest run is 20 frames (3.8 ps from its first frame to its last)'
+    >>> md.Trajectory(np.zeros((1, 1, 3), np.float32), top, time=[0.0]).save_xtc(path)
+    >>> longest_run_text(Source(top).add(path, "a"), None, np.array([[1]]), {0: 0.2}, [0])
+    'the longest run is 1 frame (0 ps from its first frame to its last)'
     """
     best = None
     for si, seg in enumerate(source.segments):
@@ -183,8 +186,9 @@ def longest_run_text(source, reweighting, seg_counts, steps, states):
                 if best is None or key > best[0]:
                     best = (key, hi - lo, span, dt, rescaled, seg)
     _, n, span, dt, rescaled, seg = best
-    text = (f"the longest run is {n} frames" if seg.labels is None else
-            f"the longest run is a visit of {n} frames in the labelled file {seg.path.name}")
+    frames = f"{n} frame" + ("" if n == 1 else "s")
+    text = (f"the longest run is {frames}" if seg.labels is None else
+            f"the longest run is a visit of {frames} in the labelled file {seg.path.name}")
     if rescaled:
         return (text + f", {span:.4g} frame spacings"
                 + ("" if dt is None else f" ({span * dt:.4g} ps)")

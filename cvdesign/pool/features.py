@@ -32,7 +32,7 @@ _TINY32 = float(np.finfo(np.float32).tiny)
 _HUGE32 = float(np.finfo(np.float32).max)
 
 
-def _dihedral_cos_sin(trajectory, quads, periodic, out_cos, out_sin):
+def _dihedral_cos_sin(trajectory, quads, periodic, out_cos, out_sin, names=None):
     """Cosine and sine of dihedrals, written into `out_cos` and `out_sin`.
 
     The angle itself is never formed. With mdtraj's bond vectors
@@ -49,8 +49,10 @@ def _dihedral_cos_sin(trajectory, quads, periodic, out_cos, out_sin):
     frames and dihedrals only bound the memory of the temporaries (``hypot``
     replaces ``sqrt(x^2 + y^2)`` only for the values whose squares leave
     float32's range).
-    An undefined dihedral (``r = 0``: collinear or coincident atoms) gives
-    ``(1, 0)``, the angle 0 that ``mdtraj.compute_dihedrals`` returns there.
+    An undefined dihedral (``r = 0`` exactly: collinear or coincident atoms) gives
+    ``(1, 0)``, the angle 0 that ``mdtraj.compute_dihedrals`` and the spec's evaluator
+    return there, with a :class:`~cvdesign.geometry.GeometryWarning` (the evaluator also
+    warns for nearly collinear atoms, whose value here is defined but noisy).
 
     Parameters
     ----------
@@ -62,6 +64,8 @@ def _dihedral_cos_sin(trajectory, quads, periodic, out_cos, out_sin):
         Minimum-image bond vectors when the trajectory has a unit cell.
     out_cos, out_sin : ndarray of shape (n_frames, n_dihedrals), float64
         Written in place (views of the feature matrix are fine).
+    names : ndarray of shape (n_dihedrals, 4), int, default=None
+        The atoms the warning names (the topology's indices; default `quads`).
     """
     n_frames, m = trajectory.n_frames, len(quads)
     width = max(1, min(m, _DIHEDRALS_PER_BLOCK))  # dihedrals per block
@@ -99,6 +103,9 @@ def _dihedral_cos_sin(trajectory, quads, periodic, out_cos, out_sin):
             if undefined.any():
                 x[undefined] = 1.0
                 r[undefined] = 1.0
+                first = c0 + int(np.flatnonzero(undefined.any(axis=0))[0])
+                _warn_undefined("dihedral", (quads if names is None else names)[first],
+                                "collinear or coincident atoms", "0 rad (cos 1, sin 0)")
             np.divide(x, r, out=out_cos[a:b, c0:c1])
             np.divide(y, r, out=out_sin[a:b, c0:c1])
 
@@ -126,14 +133,22 @@ def _undefined_angles(values, triples):
     if not bad.any():
         return
     values[bad] = np.pi / 2
-    # one text per descriptor (no counts): Python shows a repeated warning once, so a long
-    # run with two atoms on top of each other gives one line, not one per chunk
-    row = int(np.flatnonzero(bad.any(axis=0))[0])
+    _warn_undefined("angle", triples[int(np.flatnonzero(bad.any(axis=0))[0])],
+                    "an arm has zero length: two atoms coincide", "pi/2 rad")
+
+
+def _warn_undefined(kind, atoms, why, value):
+    """Warn (:class:`~cvdesign.geometry.GeometryWarning`) that a descriptor of the pool is
+    undefined in some frames and was given `value` there, as the spec's evaluator does.
+
+    One text per descriptor (no counts): Python shows a repeated warning once, so a long
+    run with two atoms on top of each other gives one line, not one per chunk.
+    """
     warnings.warn(
-        f"angle descriptor of atoms {[int(a) for a in triples[row]]} (and any other "
-        "named in a warning like this): undefined in some frames (an arm has zero length: "
-        "two atoms coincide); set to pi/2 rad there, as the spec's evaluator does. Check "
-        "the trajectory and the topology", GeometryWarning, stacklevel=3)
+        f"{kind} descriptor of atoms {[int(a) for a in atoms]} (and any other named in a "
+        f"warning like this): undefined in some frames ({why}); set to {value} there, as "
+        "the spec's evaluator does. Check the trajectory and the topology", GeometryWarning,
+        stacklevel=4)
 
 
 class Pool:
@@ -286,10 +301,12 @@ class Pool:
                 _undefined_angles(vals, self._atoms[kind])
                 out[:, cols] = vals
             elif isinstance(cols, slice) and isinstance(second, slice):
-                _dihedral_cos_sin(trajectory, atoms, periodic, out[:, cols], out[:, second])
+                _dihedral_cos_sin(trajectory, atoms, periodic, out[:, cols], out[:, second],
+                                  self._atoms[kind])
             else:
                 cos_sin = np.empty((2, n, len(atoms)))
-                _dihedral_cos_sin(trajectory, atoms, periodic, cos_sin[0], cos_sin[1])
+                _dihedral_cos_sin(trajectory, atoms, periodic, cos_sin[0], cos_sin[1],
+                                  self._atoms[kind])
                 out[:, cols] = cos_sin[0]
                 out[:, second] = cos_sin[1]
         return out
