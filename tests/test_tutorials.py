@@ -176,9 +176,25 @@ def test_hand_off_tutorial_biases_the_rank1_cv_and_recovers_delta_f(tutorial_run
     """Tutorial 03: the rank-1 CV, biased through the spec's evaluator, gives many more
     transitions than a poorly ranked CV in the same steps, and the free-energy
     difference recovered from the bias (F = -gamma/(gamma-1) V, Barducci, Bussi and
-    Parrinello, Phys. Rev. Lett. 2008) is within 2 kJ/mol of the reference from
+    Parrinello, Phys. Rev. Lett. 2008) is within 1 kJ/mol of the reference from
     reweighted unbiased runs of the same molecule with its latch torsion switched off
-    (an exact identity; Zwanzig, J. Chem. Phys. 1954, from memory)."""
+    (an exact identity; Zwanzig, J. Chem. Phys. 1954, from memory).
+
+    Measured on 2026-12-03 on this machine, the test's configuration, seeds 2026-2035 (the
+    tutorial's SEED changed for the measurement only; the suggestions do not depend on it):
+    the estimate from the bias gave +0.46, +0.58, +0.75, +0.78, +0.17, +0.96, +0.42, +0.63,
+    +0.47, +0.36 kJ/mol, a standard deviation of 0.23; the reference gave +0.57, +0.39,
+    +0.77, +0.39, +0.27, +0.51, +0.56, +0.54, +0.37, +0.51, a standard deviation of 0.14,
+    while its own error bars (jackknife over its 32 independent walkers, each with about 35
+    crossings) said 0.15-0.22 (root mean square 0.17): the error bar is honest. |estimate -
+    reference| was 0.11, 0.19, 0.03, 0.39, 0.11, 0.46, 0.14, 0.09, 0.10, 0.15 (mean signed
+    difference +0.07 +- 0.07: no bias seen). The tolerance is 3 combined standard
+    deviations (common practice), 3 * sqrt(0.23**2 + 0.14**2) = 0.81, rounded up to 1.0
+    (ten seeds only, so each standard deviation is itself uncertain by about 25%); the
+    2 kJ/mol used before was about 9 of them and would have passed a real disagreement of
+    1.5 kJ/mol. The reference's error bar is held below 0.3, near the measured scatter the
+    tolerance rests on. At every seed the rank-1 CV gave 307-362 transitions and the
+    poorly ranked one 0."""
     out = _output_of(tutorial_run, "03_hand_off.py")
     best, poor = _transitions(out, "poorly ranked")
     assert best >= 50
@@ -186,8 +202,8 @@ def test_hand_off_tutorial_biases_the_rank1_cv_and_recovers_delta_f(tutorial_run
     (delta,) = _number(r"^F\(closed\) - F\(open\) from the bias: ([-+]\d+\.\d+) kJ/mol$", out)
     ref, err = _number(r"^F\(closed\) - F\(open\) reference: ([-+]\d+\.\d+) ± (\d+\.\d+) "
                        r"kJ/mol$", out)
-    assert 0 < err < 0.5  # the reference is precise enough to judge a 2 kJ/mol agreement
-    assert abs(delta - ref) < 2.0
+    assert 0 < err < 0.3  # as precise as when the tolerance was measured (0.15-0.22)
+    assert abs(delta - ref) < 1.0
     # the rank-1 spec was the one biased, its hints used, and the caution printed
     assert "rank-1 CV cv-01:" in out and "bias factor" in out
     assert "warning" not in tutorial_run[3].stderr.lower(), tutorial_run[3].stderr
