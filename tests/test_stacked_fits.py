@@ -143,8 +143,43 @@ def test_the_greedy_search_is_the_same_with_one_combination_at_a_time(monkeypatc
     calls = []
     monkeypatch.setattr(greedy, "heldout_scores", one_at_a_time)
     single = greedy_search(fm, groups, **kw)
-    assert max(calls) == len(groups)  # the first step scores every candidate at once
+    assert calls[0] == len(groups)  # the singles, scored at once
+    assert max(calls) > len(groups)  # a round: every seed's candidates at once
     assert [c.members for c in stacked] == [c.members for c in single]
     assert len(stacked) >= 4
     for a, b in zip(stacked, single):
         assert a.score == pytest.approx(b.score, rel=1e-9)
+
+
+def _one_seed_after_another(fm, groups, *, max_terms, n_seeds, min_gain, method):
+    """The greedy search written plainly: each seed's path to its end, then the next
+    seed's, every combination scored alone (the algorithm before the seeds advanced
+    together)."""
+    def score(members):
+        idx = np.concatenate([groups[m] for m in sorted(members)])
+        return heldout_score(fm, idx, method=method)
+
+    singles = sorted(range(len(groups)), key=lambda g: (-score((g,))[0], g))
+    found = {}
+    for seed in singles[:n_seeds]:
+        members = (seed,)
+        found.setdefault(frozenset(members), members)
+        while len(members) < min(max_terms, len(groups)):
+            vals = {g: score(members + (g,))[0] for g in range(len(groups)) if g not in members}
+            best = max(vals, key=lambda g: (vals[g], -g))
+            current = score(members)[0]
+            if not vals[best] > current + min_gain * abs(current):
+                break
+            members = members + (best,)
+            found.setdefault(frozenset(members), members)
+    return [(m, score(m)[0]) for m in found.values()]
+
+
+@pytest.mark.parametrize("min_gain", [0.0, 0.05])
+def test_the_seeds_advancing_together_find_what_one_seed_after_another_finds(min_gain):
+    fm = _fold_moments(6, n_features=10)
+    groups = [np.array(g) for g in ([0], [1], [2, 3], [4], [5], [6], [7], [8], [9])]
+    kw = dict(max_terms=4, n_seeds=4, min_gain=min_gain, method="lda")
+    got = [(c.members, c.score) for c in greedy_search(fm, groups, **kw)]
+    assert got == _one_seed_after_another(fm, groups, **kw)  # bit for bit, in order
+    assert len({len(m) for m, _ in got}) > 1

@@ -89,24 +89,34 @@ def greedy_search(fold_moments, groups, *, max_terms=5, n_seeds=5, min_gain=0.01
 
     firsts = scores([frozenset((g,)) for g in range(len(groups))])
     singles = sorted(range(len(groups)), key=lambda g: (-firsts[g][0], g))
-    found = {}
-    for seed in singles[:max(1, n_seeds)]:
-        members = (seed,)
-        found.setdefault(frozenset(members), members)
-        while len(members) < min(max_terms, len(groups)):
-            others = [g for g in range(len(groups)) if g not in members]
+    # the searches from every seed advance together, one step each per round, so that a
+    # round's candidates are scored in one batch; each seed's path is its own (a score
+    # does not depend on its batch), and the sets are recorded seed by seed, in path order
+    paths = [[(seed,)] for seed in singles[:max(1, n_seeds)]]
+    active = list(paths)
+    while active:
+        size = len(active[0][-1])
+        if size >= min(max_terms, len(groups)):
+            break
+        steps = [[g for g in range(len(groups)) if g not in path[-1]] for path in active]
+        flat = scores([frozenset(path[-1] + (g,)) for path, others in zip(active, steps)
+                       for g in others])
+        still, pos = [], 0
+        for path, others in zip(active, steps):
             best, best_val = None, -np.inf
-            for g, (val, _, _) in zip(others, scores([frozenset(members + (g,))
-                                                      for g in others])):
+            for g, (val, _, _) in zip(others, flat[pos:pos + len(others)]):
                 if val > best_val:
                     best, best_val = g, val
-            current = score(members)[0]
-            if not best_val > current + min_gain * abs(current):
-                break
-            members = members + (best,)
+            pos += len(others)
+            current = score(path[-1])[0]
+            if best_val > current + min_gain * abs(current):
+                path.append(path[-1] + (best,))
+                still.append(path)
+        active = still
+    found = {}
+    for path in paths:
+        for members in path:
             found.setdefault(frozenset(members), members)
-    for s in singles[:max(1, n_seeds)]:
-        found.setdefault(frozenset((s,)), (s,))
     out = []
     for key, members in found.items():
         mean, se, per = score(members)

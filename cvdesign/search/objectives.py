@@ -311,8 +311,8 @@ def heldout_scores(fold_moments, combinations, *, objective="separate", method="
     [1.0, 1.0, 0.0]
     """
     table = _fold_score_table(fold_moments, combinations, objective, method, shrinkage)
-    out = []
-    for scores in table:
-        se = scores.std(ddof=1) / np.sqrt(len(scores)) if len(scores) > 1 else 0.0
-        out.append((float(scores.mean()), float(se), scores))
-    return out
+    n_folds = table.shape[1]
+    means = table.mean(axis=1)
+    ses = (table.std(axis=1, ddof=1) / np.sqrt(n_folds) if n_folds > 1
+           else np.zeros(len(table)))
+    return [(float(m), float(se), scores) for m, se, scores in zip(means, ses, table)]
