@@ -805,8 +805,12 @@ def implied_timescales(curves, *, tica=None):
                 _fmt(t) for t in tica_data["timescales_ps"]))
         alt = "Implied timescales in ps against the lag in ps: " + "; ".join(parts) + "."
         caption = ("Slow modes: the implied timescale -lag/ln(autocorrelation) of each ranked CV "
-                   "(at most five) against the lag; a timescale that levels off as the lag "
-                   "grows is a real slow process, one below the dotted line is not resolved.")
+                   "(at most five) against the lag, all runs about their common mean; a "
+                   "timescale that levels off as the lag grows is a real slow process, one below "
+                   "the dotted line is not resolved. One that keeps growing with the lag is not "
+                   "resolved either: runs that stay in their states keep a CV that separates them "
+                   "correlated at every lag, so the crossing between the states is only known to "
+                   "be slower than the runs.")
         return _finish(fig, "implied-timescales", caption, alt, data)
 
 
