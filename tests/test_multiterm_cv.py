@@ -266,3 +266,16 @@ def test_two_local_processes_write_the_bytes_of_the_serial_run(toy, tmp_path):
                    tmp_path / "out")
     assert {"cv-01.json", "ranking.json", "report-data.json"} <= got.keys()
     assert got == toy["written"]
+
+
+@pytest.mark.parametrize("method", ["hlda", "lda"])
+def test_with_objective_separate_the_heldout_score_is_the_heldout_fisher_ratio(toy, method):
+    # the same quantity from the same computation: equal to the last bit (the ratio had
+    # come from a one-at-a-time refit of the fold directions, the score from the
+    # searches' stacked fits, and the two differed in the last bits)
+    result = suggest(_source(toy["top"], toy["files"]), objective="separate", method=method,
+                     n_bootstrap=0, n_suggestions=5, seed=0)
+    assert len(result.ranking) == 5
+    for row in result.ranking:
+        assert row["heldout_fisher_ratio"] == row["heldout_score"]
+        assert row["heldout_fisher_ratio_se"] == row["heldout_score_se"]

@@ -196,20 +196,50 @@ def _regularize_stack(matrices, shrinkage):
     return out
 
 
-def _positive_definite(matrices):
-    """Which matrices of a stack (..., p, p) have a Cholesky factor (bool array (...))."""
+#: Smallest squared ratio of the smallest to the largest pivot of a Cholesky factor that
+#: the stacked solves take (about a condition number of 1e10): a matrix closer to singular
+#: goes to the one-at-a-time path, whose LAPACK Cholesky decides on its ridge fallback
+#: (numpy's and scipy's Cholesky can disagree on a matrix that is singular to rounding,
+#: and an LU solve of one can fail).
+_PIVOT_RATIO = 1e-10
+
+
+def _well_conditioned(matrices):
+    """Which matrices of a stack (..., p, p) are safely positive definite: a Cholesky
+    factor whose squared pivots are all above :data:`_PIVOT_RATIO` times the largest
+    (bool array (...))."""
+    def ok_of(factor):
+        pivots = np.diagonal(factor, axis1=-2, axis2=-1) ** 2
+        return pivots.min(axis=-1) > _PIVOT_RATIO * pivots.max(axis=-1)
+
     try:
-        np.linalg.cholesky(matrices)
-        return np.ones(matrices.shape[:-2], dtype=bool)
+        return ok_of(np.linalg.cholesky(matrices))
     except np.linalg.LinAlgError:  # rare: find which, one by one
         flat = matrices.reshape(-1, *matrices.shape[-2:])
-        ok = np.ones(flat.shape[0], dtype=bool)
+        ok = np.zeros(flat.shape[0], dtype=bool)
         for i, m in enumerate(flat):
             try:
-                np.linalg.cholesky(m)
+                ok[i] = ok_of(np.linalg.cholesky(m))
             except np.linalg.LinAlgError:
-                ok[i] = False
+                pass
         return ok.reshape(matrices.shape[:-2])
+
+
+def _solve_stack(matrices, rhs):
+    """``np.linalg.solve`` of a stack (..., p, p) with right-hand sides (..., p); NaN rows
+    where a matrix is singular after all (then the caller falls back)."""
+    try:
+        return np.linalg.solve(matrices, rhs[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        flat_m = matrices.reshape(-1, *matrices.shape[-2:])
+        flat_r = np.broadcast_to(rhs, matrices.shape[:-1]).reshape(-1, matrices.shape[-1])
+        out = np.full(flat_r.shape, np.nan)
+        for i, (m, r) in enumerate(zip(flat_m, flat_r)):
+            try:
+                out[i] = np.linalg.solve(m, r)
+            except np.linalg.LinAlgError:
+                pass
+        return out.reshape(matrices.shape[:-1])
 
 
 def two_state_directions(means, covariances, priors, *, shrinkage=0.0, within="arithmetic"):
@@ -218,8 +248,8 @@ def two_state_directions(means, covariances, priors, *, shrinkage=0.0, within="a
     The searches score thousands of small combinations; one call here replaces a
     Python-level call (and two LAPACK calls) per combination and fold. The
     arithmetic is the same; the linear solves use LU on the matrices that Cholesky
-    showed positive definite, so results agree with :func:`two_state_direction` to
-    rounding, not bit for bit.
+    showed safely positive definite, so results agree with :func:`two_state_direction`
+    to rounding (1e-13 to 1e-11 relative), not bit for bit; the rest is flagged in `ok`.
 
     Parameters
     ----------
@@ -235,9 +265,11 @@ def two_state_directions(means, covariances, priors, *, shrinkage=0.0, within="a
         Unit-length directions, signs fixed as by :func:`fix_signs`; NaN where `ok` is
         False.
     ok : ndarray of bool, shape (...)
-        False where :func:`two_state_direction` would return None (coincident means)
-        or would need its ridge fallback (a matrix to solve with is not positive
-        definite), or where the input is not finite: call it for those problems.
+        False where :func:`two_state_direction` would return None (coincident means),
+        where a matrix to solve with is not positive definite or close to singular
+        (pivots of its Cholesky factor, squared, below 1e-10 times the largest: there
+        the one-at-a-time function decides on its ridge fallback), or where the input
+        is not finite: call :func:`two_state_direction` for those problems.
 
     Examples
     --------
@@ -269,11 +301,11 @@ def two_state_directions(means, covariances, priors, *, shrinkage=0.0, within="a
     ok &= np.isfinite(d).all(axis=-1) & np.any(d != 0, axis=-1)
     okm = ok[..., None] if within == "harmonic" else ok
     safe = np.where(okm[..., None, None], mats, np.eye(p))  # masked problems solve trivially
-    pd = _positive_definite(safe)
+    pd = _well_conditioned(safe)
     ok &= pd.all(axis=-1) if within == "harmonic" else pd
     okm = ok[..., None] if within == "harmonic" else ok
     safe = np.where(okm[..., None, None], safe, np.eye(p))
-    x = np.linalg.solve(safe, rhs[..., None])[..., 0]
+    x = _solve_stack(safe, rhs)
     w = (x * priors[use][:, None]).sum(axis=-2) if within == "harmonic" else x
     norm = np.linalg.norm(w, axis=-1)
     ok &= (norm > 0) & np.isfinite(norm)
@@ -327,7 +359,8 @@ def rayleigh_quotients(w, means, covariances, priors):
         ``(w^T S_b w) / (w^T S_w w)`` (dimensionless), computed as
         ``sum_k p_k (w . (mu_k - mu))^2 / sum_k p_k w^T Sigma_k w``; ``inf`` where the
         within-state variance is zero (or below) and the between-state one is not, 0
-        where both are.
+        where both are, NaN where either is NaN (moments without frames), as
+        :func:`rayleigh_quotient`.
 
     Examples
     --------
@@ -345,7 +378,7 @@ def rayleigh_quotients(w, means, covariances, priors):
     den = (priors * quadratic_forms(w[..., None, :], covs)).sum(axis=-1)
     with np.errstate(divide="ignore", invalid="ignore"):
         out = num / den
-    return np.where(den > 0, out, np.where(num > 0, np.inf, 0.0))
+    return np.where(den <= 0, np.where(num > 0, np.inf, 0.0), out)
 
 
 def _harmonic_within(covariances, priors, shrinkage):

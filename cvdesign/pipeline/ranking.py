@@ -568,14 +568,15 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
     objective, method = config.objective, config.method
     # held-out separation (arithmetic Fisher ratio) and autocorrelation of the fold directions
     # (about one common mean, and within the states: each state's pairs about its own mean)
-    sep, rho, rho_in = [], [], []
+    # (the separation from the same computation as the held-out score: with objective
+    # 'separate' the two are the same numbers, bit for bit)
+    sep_mean, sep_se, sep = heldout_scores(fm, [idx], objective="separate", method=method,
+                                           shrinkage=config.shrinkage)[0]
+    rho, rho_in = [], []
     for k in range(fm.n_folds):
-        means, covs = state_arrays(fm.test(k), idx)
-        sep.append(min(rayleigh_quotient(fold_w[k], means, covs, priors), 1e12))
         if fm.lagged is not None:
             rho.append(autocorrelation_along(fold_w[k], fm.lagged_test(k), idx))
             rho_in.append(autocorrelation_along(fold_w[k], fm.within_test(k), idx))
-    sep = np.array(sep)
     mu, cov = state_arrays(pooled, idx)
     j_all = rayleigh_quotient(w, mu, cov, priors)
     rho_all = timescale = rho_in_all = timescale_in = None
@@ -607,13 +608,12 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
         state_stats[states[s]] = {"mean": float(m.mean[idx] @ w),
                                          "std": math.sqrt(max(var, 0.0)),
                                          "n_frames": int(round(m.count))}
-    se = float(sep.std(ddof=1) / math.sqrt(len(sep))) if len(sep) > 1 else 0.0
     entry = {
         "rank": rank, "spec": f"cv-{rank:02d}.json", "n_terms": comb.n_terms,
         "objective": objective, "method": "tica" if objective == "slow" else method,
         "heldout_score": comb.score, "heldout_score_se": comb.se,
         "heldout_score_folds": [float(v) for v in comb.fold_scores],
-        "heldout_fisher_ratio": float(sep.mean()), "heldout_fisher_ratio_se": se,
+        "heldout_fisher_ratio": sep_mean, "heldout_fisher_ratio_se": sep_se,
         "heldout_overlap": _finite(overlap), "fisher_ratio_all": _finite(j_all),
         "lag_ps": lag_ps,
         "heldout_autocorrelation": _finite(_mean_finite(rho)) if rho else None,

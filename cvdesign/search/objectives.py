@@ -166,6 +166,11 @@ def _fold_scores_one(fold_moments, idx, objective, method, shrinkage):
     return out
 
 
+#: Covariance entries stacked at once by :func:`_fold_score_table` (1 MiB of float64 per
+#: 2**17; the temporaries of a batch take a few times that).
+_STACK_VALUES = 2**20
+
+
 def _fold_score_table(fold_moments, combos, objective, method, shrinkage):
     """Held-out scores of each combination in each fold, shape (len(combos), n_folds).
 
@@ -183,12 +188,17 @@ def _fold_score_table(fold_moments, combos, objective, method, shrinkage):
         for i, c in enumerate(combos):
             if c.size:
                 by_size.setdefault(c.size, []).append(i)
-        for rows in by_size.values():
-            rows = np.asarray(rows, dtype=np.intp)
-            scores, ok = _two_state_fold_scores(fold_moments, np.stack([combos[i] for i in rows]),
-                                                objective, method, shrinkage)
-            out[rows[ok]] = scores[ok]
-            todo[rows[ok]] = False
+        for size, rows in by_size.items():
+            # batches bounded in memory (the stacked covariances and their temporaries):
+            # a score does not depend on its batch, so the split changes nothing else
+            step = max(1, _STACK_VALUES // (fold_moments.n_folds * 2 * size * size))
+            for lo in range(0, len(rows), step):
+                part = np.asarray(rows[lo:lo + step], dtype=np.intp)
+                scores, ok = _two_state_fold_scores(
+                    fold_moments, np.stack([combos[i] for i in part]), objective, method,
+                    shrinkage)
+                out[part[ok]] = scores[ok]
+                todo[part[ok]] = False
     for i in np.flatnonzero(todo):
         out[i] = _fold_scores_one(fold_moments, combos[i], objective, method, shrinkage)
     return out
@@ -281,9 +291,11 @@ def heldout_scores(fold_moments, combinations, *, objective="separate", method="
     """:func:`heldout_score` of several combinations at once.
 
     With two states (objectives ``separate`` and ``both``) the combinations of each
-    size are fitted and scored in all folds by one stacked computation, which is how
-    the searches afford their thousands of combinations; the scores agree with a
-    fold-by-fold computation to rounding.
+    size are fitted and scored in all folds by stacked computations (in batches of
+    bounded memory), which is how the searches afford their thousands of combinations;
+    the scores agree with a fold-by-fold computation to rounding, and each is the same,
+    bit for bit, whatever else is scored with it. Combinations the stack cannot take
+    (coincident means, a matrix close to singular) are scored fold by fold.
 
     Parameters
     ----------
