@@ -202,3 +202,34 @@ def test_ranking_csv_says_whether_each_timescale_is_resolved(demo_files):
     rank1 = result.ranking[0]
     assert rank1["timescale_ps"] > rank1["longest_run_ps"]
     assert rows[0]["timescale_resolved"] == "0"
+
+
+def test_the_topology_is_hashed_and_fingerprinted_once_per_run_not_per_spec(demo_files,
+                                                                            monkeypatch):
+    # every spec records the same topology identity and file checksum: a run of several
+    # specs computes them once (a pass over every atom, the file read in full)
+    import cvdesign.pipeline.specs as specs
+
+    top, states = demo_files
+    calls = {"sha256": [], "fingerprint": 0}
+    sha256, fingerprint = specs.file_sha256, specs.topology_fingerprint
+
+    def counted_sha256(path, *a, **k):
+        calls["sha256"].append(str(path))
+        return sha256(path, *a, **k)
+
+    def counted_fingerprint(t):
+        calls["fingerprint"] += 1
+        return fingerprint(t)
+
+    monkeypatch.setattr(specs, "file_sha256", counted_sha256)
+    monkeypatch.setattr(specs, "topology_fingerprint", counted_fingerprint)
+    res = suggest(Source.from_states(top, states), max_terms=2, n_suggestions=3,
+                  n_bootstrap=0)
+    assert len(res.specs) == 3
+    assert calls["sha256"].count(top) == 1 and calls["fingerprint"] == 1
+    first = res.specs[0]
+    for spec in res.specs[1:]:  # the same record in each, not one object shared
+        assert spec["topology"] == first["topology"]
+        assert spec["provenance"]["topology"] == first["provenance"]["topology"]
+        assert spec["topology"] is not first["topology"]

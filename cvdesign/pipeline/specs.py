@@ -6,7 +6,9 @@ written; inputs are recorded by name and checksum, frame ranges or label checksu
 """
 
 import concurrent.futures
+import copy
 import hashlib
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -18,7 +20,7 @@ from ..kinds import GROUP_KINDS
 from ..spec import Spec, atom_identity, residue_hashes, topology_fingerprint
 from .output import CAUTION
 
-__all__ = ["describe_inputs", "InputChecksums", "spec_document"]
+__all__ = ["describe_inputs", "InputChecksums", "SourceRecord", "spec_document"]
 
 
 def describe_inputs(source, seg_counts, timesteps):
@@ -70,9 +72,54 @@ def _labels_sha256(labels):
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
-def spec_document(source, pool, entry, params, checksums, seed):
-    """The spec of a ranked CV as a plain dict, validated through :class:`Spec`."""
+@dataclass(frozen=True)
+class SourceRecord:
+    """What every spec of one run records about its inputs, computed once per run.
+
+    The topology's identity (fingerprint and residue hashes, a pass over every atom)
+    and the provenance of the topology and bias-energy files (their SHA-256) are the
+    same for every ranked CV: hashed once, not once per spec.
+
+    Attributes
+    ----------
+    topology : dict
+        ``n_atoms``, ``fingerprint``, ``residues`` (the spec's ``topology``).
+    topology_file : dict
+        ``file`` and ``sha256`` of the topology file (None without a file).
+    segments : list of dict
+        Which frames of which file went to which state; bias files with checksums.
+
+    Examples
+    --------
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> from cvdesign.io.source import Source
+    >>> top, files = demo_inputs()
+    >>> record = SourceRecord.of(Source(top).add(files["closed"][0], "closed"))
+    >>> record.topology["n_atoms"], record.segments[0]["state"]
+    (12, 'closed')
+    """
+
+    topology: dict
+    topology_file: dict
+    segments: list
+
+    @classmethod
+    def of(cls, source):
+        """The record of `source` (reads and hashes its topology and bias files)."""
+        top = source.topology
+        return cls({"n_atoms": top.n_atoms, "fingerprint": topology_fingerprint(top),
+                    "residues": residue_hashes(top)},
+                   _topology_provenance(source), _segments_provenance(source))
+
+
+def spec_document(source, pool, entry, params, checksums, seed, record=None):
+    """The spec of a ranked CV as a plain dict, validated through :class:`Spec`.
+
+    `record` (a :class:`SourceRecord` of `source`) is made here when not given; a run
+    with several specs makes it once.
+    """
     top = source.topology
+    record = SourceRecord.of(source) if record is None else record
     by_id = {d.id: d for d in pool.descriptors}
     seen, descriptors = set(), []
     for t in entry["terms"]:
@@ -107,8 +154,7 @@ def spec_document(source, pool, entry, params, checksums, seed):
     doc = {
         "format": "cvdesign-spec", "version": 1, "name": entry["spec"][:-5],
         "units": dict(UNITS),
-        "topology": {"n_atoms": top.n_atoms, "fingerprint": topology_fingerprint(top),
-                     "residues": residue_hashes(top)},
+        "topology": copy.deepcopy(record.topology),
         "descriptors": descriptors, "terms": terms, "offset": 0.0, "periodic": False,
         "states": entry["states"], "scores": scores,
         "reachable_range": entry["reachable_range"], "observed_range": entry["observed_range"],
@@ -120,8 +166,8 @@ def spec_document(source, pool, entry, params, checksums, seed):
                        "inputs": [{"file": c["file"], "sha256": c["sha256"],
                                    "state": ",".join(c["states"]) or None} for c in checksums],
                        "seed": seed, "parameters": params,
-                       "topology": _topology_provenance(source),
-                       "segments": _segments_provenance(source)},
+                       "topology": copy.deepcopy(record.topology_file),
+                       "segments": copy.deepcopy(record.segments)},
         "caution": " ".join([CAUTION] + [f"Warning: {w}." for w in entry.get("warnings", [])]),
     }
     return Spec.from_dict(doc).to_dict()

@@ -56,7 +56,7 @@ from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_rank
 from .report_data import (CVBlockHistograms, CVLaggedPass, CVReportPass, cv_plans,
                           report_document, timescale_lags, trace_stride)
 from .screening import Screening, screen
-from .specs import InputChecksums, describe_inputs, spec_document
+from .specs import InputChecksums, SourceRecord, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
 from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
                      integrated_time, lag_frames, local_autocorrelation, longest_run_text,
@@ -428,7 +428,7 @@ def _suggest(source, config, executor, progress, checksums):
     longest_run_ps = float(max(run_ps)) if run_ps else None
     params = config.parameters(lag_ps, folds)
     checksums = checksums.result(inputs)
-    ranking, specs = [], []
+    ranking, specs, record = [], [], None
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, held.overlap), 1):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
@@ -444,8 +444,10 @@ def _suggest(source, config, executor, progress, checksums):
             entry["hints_refused"] = refused
             notes.append(f"bias hints refused for {entry['spec']}: {refused}")
         ranking.append(entry)
+        if record is None:
+            record = SourceRecord.of(source)  # the topology and bias files, hashed once
         specs.append(spec_document(source, pool, entry, params, checksums,
-                                   config.seed if config.n_bootstrap else None))
+                                   config.seed if config.n_bootstrap else None, record))
     report_data = None
     if held.report is not None:
         report_data = report_document(held.report, held.report_plans, ranking, source=source,
