@@ -273,14 +273,21 @@ def test_refine_tutorial_moves_cv2_onto_the_latch_torsion(tutorial_run):
     assert "dihedral LCH1:C3-C4-C5-C6" in added
     removed = next(x for x in out.splitlines() if x.startswith("terms removed: "))
     assert "dist LCH1:C2-C6" in removed
+    # Measured across seeds (the tutorial's SEED 2026-2039, 2026-12-03; a change of the
+    # code's last bits sends these chaotic runs down another path, like another seed):
+    # every seed gave the same CV 1, the torsion added and C2-C6 removed; j1 38.5-41.2;
+    # j2 bimodal, 215-277 at five seeds and 614-3000 at nine, so j2 / j1 5.4-76 (the
+    # 5x bound once used passed at 5.4, 5.9, 6.7 and 6.8); crossings along CV 2 13-33
+    # (30 at the default seed), along CV 1 0 at every seed. The bounds below are those
+    # claims with room for that scatter: j2 more than twice j1, and CV 2 crossing at
+    # least 5 times where CV 1 crosses less.
     (j1,) = _number(r"^Fisher ratio of CV 1 on the held-out walkers: (\S+)$", out)
     (j2,) = _number(r"^Fisher ratio of CV 2 on the held-out walkers: (\S+)$", out)
-    assert j2 > 5 * j1
+    assert j2 > 2 * j1
     (c1,) = _number(r"^crossings along CV 1: (\d+) ", out)
     (c2,) = _number(r"^crossings along CV 2: (\d+) ", out)
-    # fixed seeds: 30 against 0 seen; the distance drives the walkers off its basin cores
-    # without turning the torsion
-    assert c2 >= 10 and c1 < c2
+    # the distance drives the walkers off its basin cores without turning the torsion
+    assert c2 >= 5 and c1 < c2
     assert "warning" not in res.stderr.lower(), res.stderr
 
 
