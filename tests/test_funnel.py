@@ -102,6 +102,51 @@ def test_sizing_from_chunks_matches_arrays():
     assert whole["density"] == parts["density"]
 
 
+def test_integer_weights_size_the_funnel_as_repeated_frames():
+    # A frame of weight 2 counts as that frame twice in every weighted statistic (axis,
+    # means and standard deviations behind the margins, the density, the mean fit RMSD);
+    # the extremes the funnel must clear are the same frames either way. (Exact identity
+    # of the weighted estimators, Kish 1965, "Survey Sampling".)
+    pocket, ligand = _bound_frames(seed=3, n=120)
+    counts = np.random.default_rng(4).integers(0, 4, size=len(pocket))
+    counts[0] = 1  # the first frame is the reference pocket in both
+    weighted = size_funnel(pocket, ligand, weights=counts)
+    rows = np.repeat(np.arange(len(pocket)), counts)
+    repeated = size_funnel(pocket[rows], ligand[rows])
+    for key in SHAPE_KEYS:
+        assert weighted["params"][key] == pytest.approx(repeated["params"][key], rel=1e-10)
+    np.testing.assert_allclose(weighted["params"]["axis"], repeated["params"]["axis"],
+                               rtol=1e-10)
+    for key in ("z_mean_nm", "z_std_nm", "r_std_nm", "center_distance_mean_nm",
+                "center_distance_std_nm", "pocket_fit_rmsd_mean_nm", "z_min_nm", "z_max_nm",
+                "r_max_nm"):
+        assert weighted["observed"][key] == pytest.approx(repeated["observed"][key],
+                                                          rel=1e-10, abs=1e-12), key
+    ess = counts.sum() ** 2 / (counts ** 2).sum()
+    assert weighted["observed"]["effective_sample_size"] == {"weights": pytest.approx(ess)}
+    assert any("Kish effective sample size" in line for line in weighted["reasoning"])
+    # weights of a different scale: the same funnel
+    scaled = size_funnel(pocket, ligand, weights=1e-3 * counts)
+    for key in SHAPE_KEYS:
+        assert scaled["params"][key] == pytest.approx(weighted["params"][key], rel=1e-12)
+    assert scaled["observed"]["pocket_fit_rmsd_mean_nm"] == pytest.approx(
+        weighted["observed"]["pocket_fit_rmsd_mean_nm"], rel=1e-12)
+
+
+@pytest.mark.parametrize("weights, message", [
+    (np.ones(5), r"weights has shape \(5,\); give one weight per frame \(120 frames\)"),
+    (np.full(120, -1.0), "weights must be finite and non-negative, not all zero"),
+    (np.zeros(120), "weights must be finite and non-negative, not all zero"),
+    (np.full(120, np.nan), "weights must be finite and non-negative, not all zero"),
+])
+def test_bad_weights_are_refused_naming_the_argument(weights, message):
+    pocket, ligand = _bound_frames(n=120)
+    with pytest.raises(InputError, match=message):
+        size_funnel(pocket, ligand, weights=weights)
+    with pytest.raises(InputError, match="weights= goes with the frames given as arrays"):
+        size_funnel(chunks=[(pocket, ligand)], weights=np.ones(120))
+
+
 def test_sizing_refuses_a_pocket_that_fixes_no_orientation():
     pocket, ligand = _bound_frames()
     line = np.zeros((len(pocket), 3, 3))

@@ -75,13 +75,15 @@ CAUTION = ("Suggested funnel parameters are starting points to validate (bound p
 SHAPE_KEYS = ("lower_wall_z_nm", "upper_wall_z_nm", "cone_end_z_nm", "cone_half_angle_rad",
               "cylinder_radius_nm", "blend_half_width_nm")
 
-_WEIGHTED_NOTE = ("the bound frames come from biased runs and are reweighted by exp(V/kT): "
-                  "the axis (mean fitted ligand offset and pocket), the mean pocket-fit RMSD, "
-                  "the means and standard deviations of z, r and the centre distance (which "
-                  "set the margins), the r quantile and the density of the plot are weighted; "
-                  "the lowest and highest z and the largest r in each z bin (which the cone "
-                  "must clear) are over every frame seen, whatever its weight; the positions "
-                  "drawn in the report are frames, unweighted")
+_WEIGHTS_EFFECT = ("the axis (mean fitted ligand offset and pocket), the mean pocket-fit RMSD, "
+                   "the means and standard deviations of z, r and the centre distance (which "
+                   "set the margins), the r quantile and the density of the plot are weighted; "
+                   "the lowest and highest z and the largest r in each z bin (which the cone "
+                   "must clear) are over every frame seen, whatever its weight; the positions "
+                   "drawn in the report are frames, unweighted")
+_WEIGHTED_NOTE = ("the bound frames come from biased runs and are reweighted by "
+                  "exp(V/kT): " + _WEIGHTS_EFFECT)
+_GIVEN_WEIGHTS_NOTE = "the frames carry the weights given (weights=): " + _WEIGHTS_EFFECT
 
 _FRAME_NOTE = ("the funnel is expressed in the frame of the reference pocket (the pocket of the "
                "first bound frame, made whole and centred, in its box orientation): every "
@@ -625,7 +627,7 @@ MIN_FUNNEL_FRAMES = 10
 def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit_point=None,
                 ligand_radius=None, cylinder_pad=0.2, k_std=2.0, min_margin=0.1,
                 z_margin=0.2, blend_half_width=0.1, unbound_length=1.5, min_half_angle=0.2,
-                bin_width=0.02):
+                bin_width=0.02, weights=None):
     """Recommend a cone+cylinder funnel from bound-state frames.
 
     The funnel is sized in the frame in which the restraint is evaluated.
@@ -685,6 +687,14 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
         Margins in standard deviations.
     min_half_angle : float, default=0.2
         rad.
+    weights : array-like of shape (n_frames,), optional
+        Non-negative weight of each frame of the arrays (e.g. ``exp(V/kT)`` of a
+        biased run, V the bias energy in kJ/mol): the axis, the means and standard
+        deviations behind the margins, the r quantile and the density are weighted,
+        the extremes the funnel must clear are over every frame, as for biased runs
+        in :func:`size_funnel_from_source`; ``observed`` then holds the Kish
+        effective sample size. Not with `chunks` (give the frames as arrays, or the
+        runs with their bias files to :func:`size_funnel_from_source`).
 
     Returns
     -------
@@ -714,10 +724,12 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
     >>> out["axis_rule"], p["lower_wall_z_nm"] < 0.1 < p["cone_end_z_nm"]
     ('ligand_offset', True)
     """
+    w = None if weights is None else _frame_weights(weights, chunks, pocket_xyz)
+
     def first():
         fitter, sums = _Fitter(), _FitSums()
         for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
-            sums = sums.merge(_FitSums.of(fitter(p, q, b), b))
+            sums = sums.merge(_FitSums.of(fitter(p, q, b), b, w))
         return fitter.reference, sums
 
     def second(reference, stats, n):
@@ -727,7 +739,7 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
         for p, q, b in _chunks(pocket_xyz, ligand_xyz, box, chunks):
             first = fitter.n_frames
             d = fitter(p, q, b).d
-            stats.update(d)
+            stats.update(d, w)
             z, r = project_on_axis(d, stats.origin, stats.axis)
             keep = (first + np.arange(len(d))) % stride == 0
             z_kept.append(z[keep])
@@ -738,12 +750,30 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
                  exit_point=exit_point, ligand_radius=ligand_radius, cylinder_pad=cylinder_pad,
                  k_std=k_std, min_margin=min_margin, z_margin=z_margin,
                  blend_half_width=blend_half_width, unbound_length=unbound_length,
-                 min_half_angle=min_half_angle, bin_width=bin_width)
+                 min_half_angle=min_half_angle, bin_width=bin_width, given_weights=w)
+
+
+def _frame_weights(weights, chunks, pocket_xyz):
+    """The `weights` of :func:`size_funnel`, checked: one finite, non-negative value per
+    frame of the arrays, not all zero."""
+    if chunks is not None:
+        raise InputError("weights= goes with the frames given as arrays, not with chunks: "
+                         "give pocket_xyz and ligand_xyz, or the runs with their bias "
+                         "energies to size_funnel_from_source")
+    w = np.asarray(weights, dtype=np.float64)
+    n = np.shape(pocket_xyz)[0] if np.ndim(pocket_xyz) == 3 else None
+    if w.ndim != 1 or (n is not None and w.shape[0] != n):
+        raise InputError(f"weights has shape {w.shape}; give one weight per frame "
+                         f"({n} frames)")
+    if not (np.isfinite(w).all() and (w >= 0).all() and w.sum() > 0):
+        raise InputError("weights must be finite and non-negative, not all zero (e.g. "
+                         "exp(V/kT) of each frame, V its bias energy in kJ/mol)")
+    return w
 
 
 def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylinder_pad=0.2,
           k_std=2.0, min_margin=0.1, z_margin=0.2, blend_half_width=0.1, unbound_length=1.5,
-          min_half_angle=0.2, bin_width=0.02, reweighting=None):
+          min_half_angle=0.2, bin_width=0.02, reweighting=None, given_weights=None):
     """The sizing from two passes over the frames (see :func:`size_funnel`).
 
     ``first()`` returns the reference pocket and the :class:`_FitSums` of every
@@ -752,7 +782,9 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
     pass) and returns them with the positions of at most :data:`MAX_POSITIONS`
     frames (:func:`_positions`); `changed` is the advice when the passes saw
     different frames. `reweighting` (a :class:`cvdesign.io.bias.Reweighting`, biased
-    runs) adds its notes and the effective sample sizes to the result.
+    runs) adds its notes and the effective sample sizes to the result;
+    `given_weights` (the frames' weights given to :func:`size_funnel`) its note and
+    Kish effective sample size.
     """
     # Pass 1: reference pocket, mean fitted offset and pocket, ligand radius, box heights.
     reference, sums = first()
@@ -833,6 +865,12 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
             "effective_sample_size": {reweighting.states[s]: float(reweighting.ess[s])
                                       for s in reweighting.biased_states},
             "reweighting_temperature_k": reweighting.temperature_k}
+    elif given_weights is not None:
+        ess = float(given_weights.sum() ** 2 / (given_weights ** 2).sum())  # Kish (1965)
+        reasoning.append(f"weights given for the {given_weights.size} frames: Kish effective "
+                         f"sample size {ess:.1f}")
+        reasoning.append(_GIVEN_WEIGHTS_NOTE)
+        observed_weights = {"effective_sample_size": {"weights": ess}}
     cells = sorted([bz, br, c] for (bz, br), c in stats.cells.items())
     return {
         "units": {key: UNITS[key] for key in ("length", "angle")},
@@ -849,7 +887,7 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
                      "ligand_radius_nm": lig_r,
                      "center_distance_mean_nm": stats.distance_mean,
                      "center_distance_std_nm": stats.distance_std,
-                     "pocket_fit_rmsd_mean_nm": rmsd_sum / n,
+                     "pocket_fit_rmsd_mean_nm": rmsd_sum / sums.w,
                      "pocket_fit_rmsd_max_nm": rmsd_max,
                      "half_smallest_box_height_nm": (float(half_height)
                                                      if np.isfinite(half_height) else None),
