@@ -303,6 +303,55 @@ def test_importing_cvdesign_and_its_pass_engine_does_not_import_the_pipeline():
         getattr(cvdesign, "nothing")
 
 
+def test_importing_suggest_does_not_import_scikit_learn_until_an_estimator_is_used():
+    """``from cvdesign import suggest`` stays free of scikit-learn (about 0.65 s of imports):
+    the searches use the estimator-free functions of ``cvdesign.fit`` (``directions``,
+    ``slowmodes``), and LDA, HLDA and TICA load on first use. It matters at two start-ups:
+    a user's script that imports ``suggest`` at its top and runs with local workers
+    (``executor=2``) imports it again in each worker (the fork server and ``spawn`` run
+    the main module there) before the first task; and every ``cvdesign suggest`` command.
+    The estimators are still there, from where they always were."""
+    script = ("import sys\n"
+              "from cvdesign import suggest\n"
+              "from cvdesign.fit import rayleigh_quotient, timescales_from_eigenvalues\n"
+              "from cvdesign.search.objectives import slow_direction\n"
+              "print('sklearn' in sys.modules)\n"
+              "import cvdesign, cvdesign.fit, cvdesign.fit.discriminant, cvdesign.fit.tica\n"
+              "from cvdesign.fit import LDA, TICA\n"
+              "print('sklearn' in sys.modules,\n"
+              "      LDA is cvdesign.LDA is cvdesign.fit.discriminant.LDA,\n"
+              "      TICA.__module__, cvdesign.fit.HLDA.__module__,\n"
+              "      'TICA' in dir(cvdesign.fit))\n")
+    out = _fresh_python(script)
+    assert out.split("\n")[:2] == [
+        "False", "True True cvdesign.fit.tica cvdesign.fit.discriminant True"], out
+    import cvdesign.fit
+
+    with pytest.raises(AttributeError, match="module 'cvdesign.fit' has no attribute 'LDB'"):
+        getattr(cvdesign.fit, "LDB")
+
+
+def test_the_suggest_command_does_not_import_scikit_learn(demo_files, tmp_path):
+    """The whole ``cvdesign suggest`` command (the search with objective ``slow``, whose
+    slowest directions are TICA's, and the report) runs without scikit-learn: its start-up
+    does not pay for importing it."""
+    top, states = demo_files
+    argv = ["-q", "suggest", "--topology", top, "--out", str(tmp_path / "out"),
+            "--objective", "slow", "--lag", "1", "--bootstrap", "0", "--max-terms", "2",
+            "--suggestions", "2"]
+    for name, files in sorted(states.items()):
+        argv += ["--state", name, files[0]]
+    script = ("import sys\n"
+              "from cvdesign.cli import main\n"
+              f"rc = main({argv!r})\n"
+              "print(rc, 'sklearn' in sys.modules,\n"
+              "      'cvdesign.search.objectives' in sys.modules)\n")
+    out = _fresh_python(script)
+    assert out.strip().split("\n")[-1] == "0 False True", out
+    assert (tmp_path / "out" / "ranking.json").is_file()
+    assert (tmp_path / "out" / "report.html").is_file()
+
+
 def test_the_worker_preload_imports_neither_scipy_nor_networkx():
     """The fork server imports WORKER_PRELOAD before the first worker starts, while suggest
     waits: SciPy (about 0.15 s, once needed for one BLAS call of the moments' merge) and

@@ -4,58 +4,22 @@
 most slowly at a lag time (Molgedey and Schuster 1994; Perez-Hernandez et al.
 2013), from :class:`~cvdesign.stats.moments.LaggedMoments` or from trajectories;
 :func:`timescales_from_eigenvalues` turns its eigenvalues into implied
-timescales.
+timescales. The arithmetic lives in :mod:`.slowmodes` (no scikit-learn there);
+:func:`timescales_from_eigenvalues` is importable from here too.
 """
 
 import functools
 
 import numpy as np
-import scipy.linalg
 from sklearn.base import BaseEstimator, ClassNamePrefixFeaturesOutMixin, TransformerMixin
 from sklearn.utils.validation import check_array, check_is_fitted, validate_data
 
 from ..stats.moments import LaggedMoments, _check_lag
-from ._linalg import _check_rcond, _whitener
-from .discriminant import fix_signs
+from ._linalg import _check_rcond
+from .slowmodes import (_check_lagged_moments, _check_n_components, _solve, slow_modes,
+                        timescales_from_eigenvalues)
 
 __all__ = ["TICA", "timescales_from_eigenvalues"]
-
-
-def timescales_from_eigenvalues(eigenvalues, lag):
-    """Implied relaxation timescales ``t = -lag / ln(lambda)``.
-
-    Parameters
-    ----------
-    eigenvalues : array-like
-        Eigenvalues at the lag, e.g. :attr:`TICA.eigenvalues_` (dimensionless).
-    lag : float
-        The lag, > 0, in any time unit (frames for TICA).
-
-    Returns
-    -------
-    ndarray of the shape of `eigenvalues`
-        Timescales in the unit of `lag`: ``-lag / ln(lambda)`` for
-        ``0 < lambda < 1``; ``inf`` for ``lambda >= 1`` (no decay seen);
-        NaN for ``lambda <= 0`` (and for NaN input). For a reversible process
-        every true eigenvalue is positive, ``exp(-lag / t)``; an estimate at or
-        below zero is sampling noise around a relaxation much faster than the
-        lag, from which no timescale can be read (choose a shorter lag).
-
-    Examples
-    --------
-    >>> import numpy as np
-    >>> timescales_from_eigenvalues([np.exp(-0.5), 1.0, -0.1], lag=2).tolist()
-    [4.0, inf, nan]
-    """
-    if isinstance(lag, (bool, np.bool_)) or not np.isscalar(lag) \
-            or not (np.isfinite(lag) and lag > 0):
-        raise ValueError(f"lag={lag!r} must be a positive number")
-    ev = np.asarray(eigenvalues, dtype=np.float64)
-    out = np.full(ev.shape, np.nan)
-    out[ev >= 1] = np.inf
-    mid = (ev > 0) & (ev < 1)
-    out[mid] = -float(lag) / np.log(ev[mid])
-    return out
 
 
 def _as_series(X):
@@ -189,10 +153,7 @@ class TICA(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
                              "False")
         if not isinstance(self.reversible, (bool, np.bool_)):
             raise ValueError(f"reversible={self.reversible!r} must be True or False")
-        n = self.n_components
-        if n is not None and (isinstance(n, (bool, np.bool_))
-                              or not isinstance(n, (int, np.integer)) or n < 1):
-            raise ValueError(f"n_components={n!r} must be None or an integer >= 1")
+        _check_n_components(self.n_components)
         return lag
 
     def fit(self, X, y=None):
@@ -266,47 +227,27 @@ class TICA(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
         >>> bool(np.allclose(tica.eigenvalues_, TICA(lag=5).fit(x).eigenvalues_))
         True
         """
-        if not isinstance(lagged_moments, LaggedMoments):
-            raise ValueError(f"lagged_moments must be a LaggedMoments; "
-                             f"got {type(lagged_moments).__name__}")
+        _check_lagged_moments(lagged_moments)
         est = cls(n_components=n_components, lag=lag, rcond=rcond,
                   reversible=reversible, kinetic_weighting=kinetic_weighting)
         lag = est._check_params()
-        if lagged_moments.lag is not None and lagged_moments.lag != lag:
-            raise ValueError(f"lag={lag} does not match the lag of lagged_moments "
-                             f"({lagged_moments.lag} frames)")
-        if lagged_moments.count == 0:
-            raise ValueError("lagged_moments holds no pairs (count=0)")
+        modes = slow_modes(lagged_moments, lag=lag, n_components=n_components, rcond=rcond,
+                           reversible=reversible)
         est.n_features_in_ = lagged_moments.n_features
-        return est._fit_moments(lagged_moments, lag)
+        return est._set_modes(modes)
 
     def _fit_moments(self, moments, lag):
-        rcond = _check_rcond(self.rcond)
-        if self.reversible:
-            mean, c0, ct = moments.covariances(reversible=True)
-        else:
-            mean, _, c0, ct, _ = moments.covariances(reversible=False)
-        white, n_dropped = _whitener(c0, rcond, "the instantaneous covariance C0")
-        kt = white.T @ ct @ white
-        kt = 0.5 * (kt + kt.T)
-        evals, evecs = scipy.linalg.eigh(kt)
-        order = np.argsort(-evals, kind="stable")
-        n_kept = white.shape[1]
-        n_comp = n_kept if self.n_components is None else int(self.n_components)
-        if n_comp > n_kept:
-            raise ValueError(
-                f"n_components={self.n_components!r} must be between 1 and the number of "
-                f"directions kept, {n_kept} (of {c0.shape[0]} features; {n_dropped} dropped "
-                f"by rcond={self.rcond!r})"
-            )
-        order = order[:n_comp]
-        self.mean_ = mean
-        self.covariance_ = c0
-        self.covariance_lag_ = ct
-        self.eigenvalues_ = evals[order]
-        self.eigenvectors_ = fix_signs(white @ evecs[:, order])
-        self.timescales_ = timescales_from_eigenvalues(self.eigenvalues_, lag)
-        self.n_dropped_ = n_dropped
+        return self._set_modes(_solve(moments, lag, self.n_components, self.rcond,
+                                      self.reversible))
+
+    def _set_modes(self, modes):
+        self.mean_ = modes.mean
+        self.covariance_ = modes.covariance
+        self.covariance_lag_ = modes.covariance_lag
+        self.eigenvalues_ = modes.eigenvalues
+        self.eigenvectors_ = modes.eigenvectors
+        self.timescales_ = modes.timescales
+        self.n_dropped_ = modes.n_dropped
         return self
 
     def _project(self, X):

@@ -8,8 +8,8 @@ standard error.
 
 import numpy as np
 
-from ..fit import (TICA, discriminant_directions, quadratic_forms, rayleigh_quotient,
-                   rayleigh_quotients, two_state_direction, two_state_directions, vamp2_score)
+from ..fit import (discriminant_directions, quadratic_forms, rayleigh_quotient, rayleigh_quotients,
+                   slow_modes, two_state_direction, two_state_directions, vamp2_score)
 from .folds import stacked_state_arrays, state_arrays
 
 __all__ = ["OBJECTIVES", "fit_direction", "slow_direction", "cv_direction",
@@ -72,9 +72,9 @@ def slow_direction(lagged, idx, *, rcond=1e-6):
         Its autocorrelation at the lag (dimensionless).
     """
     sub = lagged.subset(np.asarray(idx, dtype=np.intp))
-    tica = TICA.from_moments(sub, lag=sub.lag or 1, n_components=1, rcond=rcond)
-    w = tica.eigenvectors_[:, 0]
-    return w / np.linalg.norm(w), float(tica.eigenvalues_[0])
+    modes = slow_modes(sub, lag=sub.lag or 1, n_components=1, rcond=rcond)  # as TICA's
+    w = modes.eigenvectors[:, 0]
+    return w / np.linalg.norm(w), float(modes.eigenvalues[0])
 
 
 def autocorrelation_along(w, lagged, idx):
