@@ -105,11 +105,11 @@ def test_sizing_from_chunks_matches_arrays():
 def test_integer_weights_size_the_funnel_as_repeated_frames():
     # A frame of weight 2 counts as that frame twice in every weighted statistic (axis,
     # means and standard deviations behind the margins, the density, the mean fit RMSD);
-    # the extremes the funnel must clear are the same frames either way. (Exact identity
-    # of the weighted estimators, Kish 1965, "Survey Sampling".)
+    # the extremes the funnel must clear are over the same frames either way (every weight
+    # at least 1: a frame of weight 0 still counts there, see the next test). (Exact
+    # identity of the weighted estimators, Kish 1965, "Survey Sampling".)
     pocket, ligand = _bound_frames(seed=3, n=120)
-    counts = np.random.default_rng(4).integers(0, 4, size=len(pocket))
-    counts[0] = 1  # the first frame is the reference pocket in both
+    counts = np.random.default_rng(4).integers(1, 4, size=len(pocket))
     weighted = size_funnel(pocket, ligand, weights=counts)
     rows = np.repeat(np.arange(len(pocket)), counts)
     repeated = size_funnel(pocket[rows], ligand[rows])
@@ -133,11 +133,44 @@ def test_integer_weights_size_the_funnel_as_repeated_frames():
         weighted["observed"]["pocket_fit_rmsd_mean_nm"], rel=1e-12)
 
 
+def test_a_frame_of_weight_zero_still_bounds_the_funnel():
+    # The lowest and highest z and the largest r in each z bin must be cleared whatever
+    # the frame's weight: a frame moved far up, given weight 0, still sets z_max.
+    pocket, ligand = _bound_frames(seed=5, n=120)
+    ligand = ligand.copy()
+    ligand[60] += [0.0, 0.0, 0.3]
+    weights = np.ones(len(pocket))
+    weights[60] = 0.0
+    out = size_funnel(pocket, ligand, weights=weights)
+    assert out["params"]["cone_end_z_nm"] > out["observed"]["z_max_nm"]
+    dropped = size_funnel(np.delete(pocket, 60, axis=0), np.delete(ligand, 60, axis=0))
+    assert out["observed"]["z_max_nm"] > dropped["observed"]["z_max_nm"] + 0.1
+
+
+def test_weights_of_any_scale_and_one_dominant_frame():
+    pocket, ligand = _bound_frames(seed=6, n=120)
+    energies = np.random.default_rng(7).normal(0.0, 1.0, len(pocket))  # kJ/mol
+    kt = 2.494  # kJ/mol at 300 K
+    small = size_funnel(pocket, ligand, weights=np.exp(energies / kt))
+    huge = size_funnel(pocket, ligand, weights=np.exp((energies + 900.0) / kt))  # ~1e157
+    for key in SHAPE_KEYS:
+        assert huge["params"][key] == pytest.approx(small["params"][key], rel=1e-9)
+    assert np.isfinite(huge["observed"]["effective_sample_size"]["weights"])
+    assert small["warnings"] == []
+    dominant = np.full(len(pocket), 1e-9)
+    dominant[3] = 1.0
+    one = size_funnel(pocket, ligand, weights=dominant)
+    assert any("small effective sample size of the weighted frames (1.0 of 120)" in w
+               for w in one["warnings"])
+
+
 @pytest.mark.parametrize("weights, message", [
     (np.ones(5), r"weights has shape \(5,\); give one weight per frame \(120 frames\)"),
     (np.full(120, -1.0), "weights must be finite and non-negative, not all zero"),
     (np.zeros(120), "weights must be finite and non-negative, not all zero"),
     (np.full(120, np.nan), "weights must be finite and non-negative, not all zero"),
+    (np.array(["1"] * 120), "weights must be real numbers, one per frame; got <U1 values"),
+    (np.ones(120) + 1j, "weights must be real numbers, one per frame; got complex128"),
 ])
 def test_bad_weights_are_refused_naming_the_argument(weights, message):
     pocket, ligand = _bound_frames(n=120)

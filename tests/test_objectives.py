@@ -249,3 +249,41 @@ def test_within_states_equals_the_covariances_of_each_state_about_its_own_mean()
     n = 2 * (len(runs[0]) - 2)
     np.testing.assert_allclose(got[1], c0 / n, rtol=1e-10, atol=1e-10)
     np.testing.assert_allclose(got[2], ct / n, rtol=1e-10, atol=1e-10)
+
+
+def test_with_objective_slow_the_heldout_fisher_ratio_is_along_the_cvs_own_fold_directions(
+        demo_files, monkeypatch):
+    # Found in review: the held-out Fisher ratio (and its bootstrap interval) of a 'slow'
+    # CV came from a discriminant refitted on the CV's features, which separates better
+    # than the CV's own (TICA) direction: a slow CV that does not separate the states was
+    # reported as separating. It is now measured along the TICA directions fitted
+    # without each fold.
+    import cvdesign.pipeline.ranking as ranking
+    from cvdesign.search import cv_direction
+
+    seen = []
+    along = ranking.fisher_along
+
+    def spy(fm, idx, directions):
+        out = along(fm, idx, directions)
+        for k, w in enumerate(directions):  # the CV's own direction without fold k
+            ref = cv_direction(fm, idx, objective="slow", fold=k)
+            assert abs(abs(float(w @ ref)) - 1.0) < 1e-9
+        seen.append(float(out.mean()))
+        return out
+
+    monkeypatch.setattr(ranking, "fisher_along", spy)
+    top, states = demo_files
+    res = suggest(Source.from_states(top, states), objective="slow", lag=1.0, max_terms=2,
+                  n_suggestions=3, n_bootstrap=0)
+    assert [row["heldout_fisher_ratio"] for row in res.ranking] == seen
+    # a direction to choose: some ranked CV has two features (a dihedral's cos and sin)
+    assert any(len(row["terms"]) > 1 for row in res.ranking)
+    # the bootstrap's refits measure it the same way (TICA refitted without each fold)
+    seen.clear()
+    boot = suggest(Source.from_states(top, states), objective="slow", lag=1.0, max_terms=2,
+                   n_suggestions=3, n_bootstrap=20)
+    assert len(seen) > len(boot.ranking)  # the refits called it too
+    for row in boot.ranking:
+        low, high = row["heldout_fisher_ratio_ci"]
+        assert 0.0 <= low <= high

@@ -56,6 +56,7 @@ from ..constants import UNITS
 from ..errors import InputError
 from ..geometry.box import _parse_box
 from ..io.atomic import atomic_path
+from ..io.bias import LOW_ESS_FRACTION, LOW_ESS_FRAMES, kish_ess
 from ..io.source import Source
 from ..parallel import using_executor
 from ..passes import (CoordinateFeaturizer, Pass, first_frame, frame_keys, plan_tasks, run_pass,
@@ -760,15 +761,18 @@ def _frame_weights(weights, chunks, pocket_xyz):
         raise InputError("weights= goes with the frames given as arrays, not with chunks: "
                          "give pocket_xyz and ligand_xyz, or the runs with their bias "
                          "energies to size_funnel_from_source")
-    w = np.asarray(weights, dtype=np.float64)
+    raw = np.asarray(weights)
+    if raw.dtype.kind not in "biuf":
+        raise InputError(f"weights must be real numbers, one per frame; got {raw.dtype} values")
+    w = raw.astype(np.float64)
     n = np.shape(pocket_xyz)[0] if np.ndim(pocket_xyz) == 3 else None
     if w.ndim != 1 or (n is not None and w.shape[0] != n):
         raise InputError(f"weights has shape {w.shape}; give one weight per frame "
                          f"({n} frames)")
-    if not (np.isfinite(w).all() and (w >= 0).all() and w.sum() > 0):
+    if not (np.isfinite(w).all() and (w >= 0).all() and w.max() > 0):
         raise InputError("weights must be finite and non-negative, not all zero (e.g. "
                          "exp(V/kT) of each frame, V its bias energy in kJ/mol)")
-    return w
+    return w / w.max()  # every statistic is scale-free; sums of squares stay in range
 
 
 def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylinder_pad=0.2,
@@ -866,9 +870,15 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
                                       for s in reweighting.biased_states},
             "reweighting_temperature_k": reweighting.temperature_k}
     elif given_weights is not None:
-        ess = float(given_weights.sum() ** 2 / (given_weights ** 2).sum())  # Kish (1965)
-        reasoning.append(f"weights given for the {given_weights.size} frames: Kish effective "
-                         f"sample size {ess:.1f}")
+        ess, n_w = kish_ess(given_weights), given_weights.size
+        reasoning.append(f"weights given for the {n_w} frames: Kish effective sample size "
+                         f"{ess:.1f}")
+        if ess < LOW_ESS_FRACTION * n_w or ess < LOW_ESS_FRAMES:  # as for biased runs
+            w = (f"small effective sample size of the weighted frames ({ess:.1f} of {n_w}): "
+                 "a few frames carry most of the weight, so the margins' spreads are noisy; "
+                 "give more frames, or frames of a smaller bias")
+            warnings.append(w)
+            reasoning.append(f"WARNING: {w}")
         reasoning.append(_GIVEN_WEIGHTS_NOTE)
         observed_weights = {"effective_sample_size": {"weights": ess}}
     cells = sorted([bz, br, c] for (bz, br), c in stats.cells.items())

@@ -21,6 +21,8 @@ _LAZY = {"LDA": "discriminant", "HLDA": "discriminant", "TICA": "tica"}
 
 
 def __getattr__(name):
+    if name in ("discriminant", "tica"):  # the estimators' modules, as attributes too
+        return _importlib.import_module(f"{__name__}.{name}")
     module = _LAZY.get(name)
     if module is None:
         raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

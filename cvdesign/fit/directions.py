@@ -190,7 +190,8 @@ def _regularize_stack(matrices, shrinkage):
 
 
 #: Smallest squared ratio of the smallest to the largest pivot of a Cholesky factor that
-#: the stacked solves take (about a condition number of 1e10): a matrix closer to singular
+#: the stacked solves take (a matrix below it has a condition number above 1e10; not
+#: every matrix above that is caught, as with any pivot test): a matrix closer to singular
 #: goes to the one-at-a-time path, whose LAPACK Cholesky decides on its ridge fallback
 #: (numpy's and scipy's Cholesky can disagree on a matrix that is singular to rounding,
 #: and an LU solve of one can fail).

@@ -22,7 +22,8 @@ from ..stats.moments import merge_all
 
 __all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit", "Shortlist",
            "shortlist", "search", "fit_ranked", "kinetic_map_scale", "bootstrap_ranked",
-           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap", "add_ranges"]
+           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap", "fisher_along",
+           "add_ranges"]
 
 #: Bootstrap refits of the search for selection frequencies, and the number of best
 #: shortlisted descriptors (besides the ranked terms) they may choose from.
@@ -312,6 +313,41 @@ def _mean_finite(values):
     return float(v.mean()) if v.size else float("nan")
 
 
+def fisher_along(fm, idx, directions):
+    """Held-out Fisher ratio of each fold along a given direction per fold.
+
+    Parameters
+    ----------
+    fm : FoldMoments
+    idx : array-like of int
+        Features of the CV.
+    directions : sequence of ndarray
+        The CV's direction (on `idx`) fitted without each fold.
+
+    Returns
+    -------
+    ndarray of shape (n_folds,)
+        Between- over within-state variance of each held-out fold along its direction
+        (arithmetic within-state mean, as the held-out scores; at most 1e12).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from cvdesign.search import FoldMoments
+    >>> from cvdesign.stats.moments import Moments
+    >>> rng = np.random.default_rng(0)
+    >>> fm = FoldMoments([[Moments.from_data(rng.normal([0, m], 1, (4000, 2)))
+    ...                    for _ in range(2)] for m in (0.0, 2.0)])
+    >>> np.round(fisher_along(fm, [0, 1], [np.array([0.0, 1.0])] * 2), 1).tolist()
+    [1.0, 1.0]
+    """
+    out = np.empty(fm.n_folds)
+    for k in range(fm.n_folds):
+        means, covs = state_arrays(fm.test(k), idx)
+        out[k] = min(rayleigh_quotient(directions[k], means, covs, fm.priors), 1e12)
+    return out
+
+
 def heldout_overlap(counts):
     """Mean over folds of the states' overlap along each CV; counts (fold, state, cv, bin)."""
     return np.mean([overlap_coefficient(counts[k]) for k in range(counts.shape[0])], axis=0)
@@ -471,12 +507,19 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
             overlap = heldout_overlap(counts)
             ranked_idx = [p_idx for p_idx, _ in p_fits]
             scores = heldout_scores(boot_fm, ranked_idx, **search)
-            fisher = scores if search["objective"] == "separate" else heldout_scores(
-                boot_fm, ranked_idx, objective="separate", method=search["method"],
-                shrinkage=search["shrinkage"])
+            if search["objective"] == "separate":
+                fisher = [v[0] for v in scores]
+            elif search["objective"] == "both":  # the CV's direction is the discriminant
+                fisher = [v[0] for v in heldout_scores(
+                    boot_fm, ranked_idx, objective="separate", method=search["method"],
+                    shrinkage=search["shrinkage"])]
+            else:  # 'slow': along the TICA directions refitted without each fold
+                fisher = [float(fisher_along(boot_fm, p_idx, [
+                    cv_direction(boot_fm, p_idx, objective="slow", fold=k)
+                    for k in range(n_folds)]).mean()) for p_idx in ranked_idx]
             for ci, (p_idx, _) in enumerate(p_fits):
                 held.append(scores[ci][0])
-                held.append(fisher[ci][0])
+                held.append(fisher[ci])
                 held.append(overlap[ci])
                 for along in (boot_fm.lagged_test, boot_fm.within_test):
                     held.append(_mean_finite([autocorrelation_along(fold_ws[ci][k], along(k),
@@ -568,10 +611,16 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
     objective, method = config.objective, config.method
     # held-out separation (arithmetic Fisher ratio) and autocorrelation of the fold directions
     # (about one common mean, and within the states: each state's pairs about its own mean)
-    # (the separation from the same computation as the held-out score: with objective
-    # 'separate' the two are the same numbers, bit for bit)
-    sep_mean, sep_se, sep = heldout_scores(fm, [idx], objective="separate", method=method,
-                                           shrinkage=config.shrinkage)[0]
+    # the separation along the CV's own fold directions: for 'separate' and 'both' the
+    # discriminant refitted without each fold, from the same computation as the held-out
+    # score (with 'separate' the same numbers, bit for bit); for 'slow' the TICA directions
+    if objective == "slow":
+        sep = fisher_along(fm, idx, fold_w)
+        sep_mean = float(sep.mean())
+        sep_se = float(sep.std(ddof=1) / math.sqrt(len(sep))) if len(sep) > 1 else 0.0
+    else:
+        sep_mean, sep_se, sep = heldout_scores(fm, [idx], objective="separate", method=method,
+                                               shrinkage=config.shrinkage)[0]
     rho, rho_in = [], []
     for k in range(fm.n_folds):
         if fm.lagged is not None:
