@@ -72,7 +72,6 @@ import math
 from collections.abc import Mapping
 
 import numpy as np
-from scipy import integrate, special
 
 from ..constants import BOLTZMANN_KJ_MOL_K
 from ..errors import InputError
@@ -621,6 +620,10 @@ def _wt_rate_ratio(bl, gamma):
     N: Boltzmann average weight exp(-V/(kB dT)) times the normalization;
     D: the normalization of the walker's distribution.
     """
+    # imported here, as integrate below: at module level they cost every spec's loading
+    # (apply, check) about 0.2 s, and most loads compute no hint
+    from scipy import special
+
     root = math.sqrt(bl)
     tail = _SQRT_2PI * float(special.erfcx(root))
     num = 2.0 * math.sqrt(2.0 * bl) + tail
@@ -700,6 +703,8 @@ def fill_time_well_tempered(level, std, *, temperature, height, area_per_height,
         if b <= 0.0:
             return 0.0
         return (1.0 - 1.0 / gamma) * 2.0 * math.sqrt(2.0 * b) * _wt_rate_ratio(b, gamma)
+
+    from scipy import integrate
 
     value, _ = integrate.quad(integrand, 0.0, b_max, limit=200, epsabs=0.0, epsrel=1e-10)
     t = value * std * kt * interval / (height * area)
