@@ -15,8 +15,7 @@ from ..score.redundancy import descriptor_correlation, redundancy_graph, represe
 from ..score.univariate import overlap_coefficient
 from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction,
                       greedy_search, heldout_score, heldout_scores, rank_combinations,
-                      slow_direction,
-                      state_arrays, within_states)
+                      slow_direction, state_arrays, within_states)
 from ..stats.bootstrap import block_bootstrap, percentile_interval
 from ..stats.moments import merge_all
 
@@ -609,11 +608,10 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
     center, scale = screening.center, screening.scale
     pooled = fm.pooled()
     objective, method = config.objective, config.method
-    # held-out separation (arithmetic Fisher ratio) and autocorrelation of the fold directions
-    # (about one common mean, and within the states: each state's pairs about its own mean)
-    # the separation along the CV's own fold directions: for 'separate' and 'both' the
-    # discriminant refitted without each fold, from the same computation as the held-out
-    # score (with 'separate' the same numbers, bit for bit); for 'slow' the TICA directions
+    # held-out separation (arithmetic Fisher ratio) along the CV's own fold directions: for
+    # 'separate' and 'both' the discriminant refitted without each fold, by the computation
+    # of the held-out score (with 'separate' the same numbers, bit for bit); for 'slow' the
+    # TICA directions
     if objective == "slow":
         sep = fisher_along(fm, idx, fold_w)
         sep_mean = float(sep.mean())
@@ -621,6 +619,8 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
     else:
         sep_mean, sep_se, sep = heldout_scores(fm, [idx], objective="separate", method=method,
                                                shrinkage=config.shrinkage)[0]
+    # held-out autocorrelation along the fold directions (about one common mean, and within
+    # the states: each state's pairs about its own mean)
     rho, rho_in = [], []
     for k in range(fm.n_folds):
         if fm.lagged is not None:
