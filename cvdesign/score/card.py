@@ -249,9 +249,9 @@ def integrated_time_interval(tau, window_frames, n_frames, *, level=0.95):
     >>> round(float(lo[0]), 2), round(float(hi[0]), 2)
     (9.16, 10.92)
     """
-    from scipy.stats import norm
+    from scipy.special import ndtri  # (scipy.stats would add about 0.5 s of imports)
 
     tau = np.asarray(tau, dtype=np.float64)
     rel = np.sqrt(2.0 * (2.0 * np.asarray(window_frames, np.float64) + 1.0) / n_frames)
-    z = float(norm.ppf(0.5 + level / 2.0))
+    z = float(ndtri(0.5 + level / 2.0))
     return tau * np.exp(-z * rel), tau * np.exp(z * rel)
