@@ -332,10 +332,13 @@ def test_long_autocorrelation_time_is_capped_with_a_note():
 def test_short_autocorrelation_time_gives_one_step_with_a_warning():
     h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=0.0001)
     assert h["deposition"]["interval_steps"] == 1
-    assert len(h["warnings"]) == 1
+    assert len(h["warnings"]) == 2
     assert h["warnings"][0].startswith("the deposition interval is 1 MD step (0.002 ps): a "
                                        "kernel every step is far more often than usual")
     assert "check autocorrelation_time_ps and the MD step" in h["warnings"][0]
+    # 0.5 kT = 1.247 kJ/mol every 0.002 ps
+    assert h["warnings"][1].startswith("the bias grows at 624 kJ/mol per ps at first")
+    assert h["deposition"]["rate_kj_mol_ps"] == pytest.approx(0.5 * KT / 0.002, rel=1e-12)
 
 
 def test_usual_inputs_give_no_warnings():
@@ -621,3 +624,50 @@ def test_hints_warn_that_a_folded_coordinate_narrows_the_kernel_width():
         states = inside if kwargs else folded
         h = suggest_hints(states, temperature=300.0, md_step_fs=2.0, **kwargs)
         assert not any("folded coordinate" in w for w in h["warnings"])
+
+
+def test_a_time_below_the_frame_spacing_is_flagged_as_not_resolved_by_the_frames():
+    """Sokal's estimate dt (1/2 + sum rho) is about half a frame spacing whenever the CV has
+    decorrelated by the next frame, so a time below one spacing measures the frames, not
+    the CV: the hints say so (and say nothing when the frames resolve it)."""
+    kw = dict(temperature=T, md_step_fs=2.0, barrier=50.0)
+    fine = suggest_hints(STATES, autocorrelation_time_ps=1.0, frame_spacing_ps=0.1, **kw)
+    assert fine["deposition"]["tau_resolved"] is True and fine["warnings"] == []
+    assert fine["inputs"]["frame_spacing_ps"] == 0.1
+    coarse = suggest_hints(STATES, autocorrelation_time_ps=1.0, frame_spacing_ps=2.0, **kw)
+    assert coarse["deposition"]["tau_resolved"] is False
+    assert coarse["deposition"]["interval_steps"] == fine["deposition"]["interval_steps"] == 500
+    (text,) = coarse["warnings"]
+    assert "shorter than the spacing of the saved frames it was measured on (2 ps)" in text
+    assert "save frames more often than every 2 ps" in text
+    assert any(line == "Note: " + text + "." for line in coarse["reasoning"])
+    unknown = suggest_hints(STATES, autocorrelation_time_ps=1.0, **kw)
+    assert unknown["deposition"]["tau_resolved"] is None
+
+
+def test_a_time_that_did_not_decay_is_flagged_as_a_lower_bound():
+    kw = dict(temperature=T, md_step_fs=2.0, barrier=50.0, autocorrelation_time_ps=1.0)
+    h = suggest_hints(STATES, autocorrelation_time_decayed=False, **kw)
+    assert h["deposition"]["tau_lower_bound"] is True
+    (text,) = h["warnings"]
+    assert text.startswith("autocorrelation_time_ps = 1 ps is a lower bound")
+    h = suggest_hints(STATES, autocorrelation_time_decayed=True, **kw)
+    assert h["deposition"]["tau_lower_bound"] is False and h["warnings"] == []
+    with pytest.raises(InputError, match="autocorrelation_time_decayed must be True, False or "
+                                         "None; got 'no'"):
+        suggest_hints(STATES, autocorrelation_time_decayed="no", **kw)
+    with pytest.raises(InputError, match="frame_spacing_ps"):
+        suggest_hints(STATES, frame_spacing_ps=-1.0, **kw)
+
+
+def test_a_fast_deposition_rate_gets_a_warning_and_a_usual_one_none():
+    """Rate = initial height / interval: 0.5 kT = 1.247 kJ/mol at 300 K every 0.2 ps is 6.2
+    kJ/mol/ps, above the 5 kJ/mol/ps the hints flag (usual rates are about 1; common
+    practice, from memory); every 0.3 ps it is 4.2, not flagged."""
+    kw = dict(temperature=T, md_step_fs=2.0, barrier=50.0)
+    fast = suggest_hints(STATES, autocorrelation_time_ps=0.2, **kw)
+    assert fast["deposition"]["rate_kj_mol_ps"] == pytest.approx(0.5 * KT / 0.2, rel=1e-12)
+    (text,) = fast["warnings"]
+    assert text.startswith("the bias grows at 6.24 kJ/mol per ps at first (1.25 kJ/mol every "
+                           "0.2 ps)")
+    assert suggest_hints(STATES, autocorrelation_time_ps=0.3, **kw)["warnings"] == []

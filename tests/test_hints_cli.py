@@ -25,9 +25,19 @@ def test_specs_carry_hints_computed_from_the_data(demo_result):
     assert tau > 0
     assert hints["deposition"]["interval_steps"] == max(1, round(tau * 1000 / 2.0))
     assert "not guarantees" in hints["caution"]
-    # the demo's rank-1 CV (cos and sin of the latch torsion) is folded at both states
-    (folded,) = hints["warnings"]
+    # the demo's rank-1 CV (cos and sin of the latch torsion) is folded at both states; its
+    # within-state time is shorter than the demo's 0.2 ps between frames, so the frames do
+    # not resolve it (the interval reflects the frame spacing), and half a kT per ~0.12 ps is
+    # a fast deposition
+    assert spec["scores"]["frame_spacing_ps"] == pytest.approx(0.2)
+    assert spec["scores"]["integrated_time_decayed"] == 1
+    assert tau < 0.2 and hints["deposition"]["tau_resolved"] is False
+    assert hints["deposition"]["tau_lower_bound"] is False
+    folded, unresolved, fast = hints["warnings"]
     assert "a folded coordinate" in folded and "'closed' sits at the lower" in folded
+    assert "shorter than the spacing of the saved frames it was measured on (0.2 ps)" in \
+        unresolved and "reflects the frame spacing" in unresolved
+    assert fast.startswith("the bias grows at ")
     assert "hints_refused" not in demo_result.ranking[0]
 
 
@@ -42,6 +52,8 @@ def test_hints_command_recomputes_from_the_spec_alone(demo_result, tmp_path, cap
     expect = suggest_hints({k: v for k, v in spec["states"].items()}, temperature=310.0,
                            md_step_fs=4.0, barrier=50.0, kernel="lucy",
                            autocorrelation_time_ps=spec["scores"]["integrated_time_ps"],
+                           frame_spacing_ps=spec["scores"]["frame_spacing_ps"],
+                           autocorrelation_time_decayed=True,
                            cv_range=(reach["lower"], reach["upper"]),
                            observed_range=(seen["lower"], seen["upper"]))
     assert got == json.loads(json.dumps(expect))

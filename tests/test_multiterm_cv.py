@@ -27,6 +27,7 @@ import numpy as np
 import pytest
 
 from cvdesign import Source, load_spec, suggest
+from cvdesign.pipeline.timing import iat_lags, integrated_time
 
 SETTINGS = dict(n_bootstrap=0, n_suggestions=3, seed=0)
 FRAME_PS = 0.5  # DCD stores no times: the source's timestep
@@ -236,6 +237,37 @@ def test_implied_timescales_are_a_direct_computation_on_the_evaluated_runs(toy):
         # leaves room for that (seen: below 4e-7) and is far below what a term on the wrong
         # column changes
         assert got == pytest.approx(ref, rel=1e-5), lag
+
+
+def test_integrated_time_is_the_cvs_own_from_a_direct_computation_on_the_evaluated_runs(
+        toy):
+    """``integrated_time_ps`` of a ranked CV is the CV's own (not its slowest term's):
+    Sokal's estimator on the autocorrelation within runs (each run about its own mean,
+    reversible, the runs weighted by their pairs) on the descriptors' grid of lags,
+    computed here with numpy from the spec's evaluator on every frame."""
+    entry = toy["ranking"]["ranking"][0]
+    runs = list(toy["values"].values())
+    grid = iat_lags(np.array([[v.size] for v in runs]))
+    rho = []
+    for lag in grid:
+        c0 = ct = 0.0
+        for v in runs:
+            x, y = v[:-lag], v[lag:]
+            m = 0.5 * (x.mean() + y.mean())
+            c0 += x.size * (0.5 * (np.mean(x * x) + np.mean(y * y)) - m * m)
+            ct += x.size * (np.mean(x * y) - m * m)
+        rho.append(ct / c0)
+    tau, decayed = integrated_time(grid, np.array(rho)[:, None], FRAME_PS)
+    assert entry["frame_spacing_ps"] == FRAME_PS
+    assert entry["integrated_time_decayed"] is bool(decayed[0]) is True
+    # float32 features against the evaluator's float64: rho differs by about 1e-6
+    assert entry["integrated_time_ps"] == pytest.approx(float(tau[0]), rel=1e-4)
+    lo, hi = entry["integrated_time_ci_ps"]
+    assert lo < entry["integrated_time_ps"] < hi
+    spec = json.loads((toy["out"] / "cv-01.json").read_text())
+    assert spec["scores"]["integrated_time_ps"] == entry["integrated_time_ps"]
+    assert spec["scores"]["frame_spacing_ps"] == FRAME_PS
+    assert spec["scores"]["integrated_time_decayed"] == 1
 
 
 def test_held_out_histograms_hold_every_frame_near_the_evaluators_histogram(toy):

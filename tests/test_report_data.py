@@ -8,6 +8,7 @@ import json
 import mdtraj as md
 import numpy as np
 import pytest
+from scipy.signal import lfilter
 
 import cvdesign.bias.funnel as funnel_mod
 import cvdesign.pipeline.explore as explore
@@ -18,10 +19,48 @@ from cvdesign.passes import Folds, PoolFeaturizer, frame_keys, plan_tasks, run_p
 from cvdesign.passes import thinning_stride
 from cvdesign.pipeline.explore import propose_states
 from cvdesign.pipeline.suggest import terms_featurizer
-from cvdesign.pipeline.report_data import (MAX_BINS, MAX_TRACE_POINTS, CVLaggedPass, CVPlan,
-                                           CVReportPass, affine_to_cv_units, histogram_bins,
-                                           trace_stride)
+from cvdesign.passes import CoordinateFeaturizer, LagGridPass
+from cvdesign.pipeline.report_data import (MAX_BINS, MAX_TRACE_POINTS, CVGridPass,
+                                           CVLaggedPass, CVPlan, CVReportPass,
+                                           affine_to_cv_units, cv_integrated_times,
+                                           histogram_bins, trace_stride)
+from cvdesign.pipeline.timing import integrated_time, local_autocorrelation
 from cvdesign.pool import Descriptor, Pool
+
+
+# ------------------------------------------------------------- the CVs' own integrated times
+def test_a_combination_decorrelates_more_slowly_than_each_of_its_terms(tmp_path):
+    """x = S + F and y = -F, with S slow (AR(1), 0.98 per frame) and F fast and large (white
+    noise): each term is mostly F and decorrelates within about a frame, while x + y = S has
+    the integrated time of an AR(1), (1 + phi) / (2 (1 - phi)) = 49.5 frames (Sokal 1997, in
+    *Functional Integration*, Plenum). A CV's time taken from its slowest term would be 50
+    times too short; CVGridPass measures the CV itself."""
+    rng = np.random.default_rng(5)
+    n, phi = 100_000, 0.98
+    top = md.Topology()
+    _ = top.add_atom("C1", md.element.carbon, top.add_residue("TOY", top.add_chain()))
+    src = Source(top, timestep=1.0)
+    for k in range(2):
+        slow = lfilter([1.0], [1.0, -phi], rng.normal(0.0, 0.05 * np.sqrt(1 - phi * phi), n))
+        fast = rng.normal(0.0, 0.5, n)
+        xyz = np.zeros((n, 1, 3))
+        xyz[:, 0, 0], xyz[:, 0, 1], xyz[:, 0, 2] = 1.0 + slow + fast, 1.0 - fast, 1.0
+        path = tmp_path / f"run-{k}.dcd"
+        md.Trajectory(xyz.astype(np.float32), top).save_dcd(str(path))
+        src.add(str(path), "a")
+    grid = np.unique(np.round(np.geomspace(1, 2000, 18)).astype(int))
+    feats = CoordinateFeaturizer([0])
+    cv = CVPlan([0, 1], [1.0, 1.0], [[1.0, 1.0]], [(1.0, 0.0)], -1.0, 1.0, 10)
+    terms, cvs = run_pass((LagGridPass(feats, grid, shift=[1.0, 1.0, 1.0]),
+                           CVGridPass(feats, [cv], grid, [2.0])), src)
+    rho = np.array([local_autocorrelation(r.by_run().values(), 3)[:2] for r in terms])
+    tau_terms, _ = integrated_time(grid, rho, 1.0)
+    (tau, decayed, ci), = cv_integrated_times(cvs, grid, 1.0, 2 * n)
+    assert decayed and ci[0] < tau < ci[1]
+    assert tau_terms.max() < 1.0  # each term: about half a frame plus F's share of S
+    # the estimate's relative standard deviation is sqrt(2 (2 M + 1) / N) = 0.07 for the
+    # window M of about 250 frames and N = 2e5 frames (Madras and Sokal 1988): 3.5 of them
+    assert tau == pytest.approx(49.5, rel=0.25)
 
 
 # ------------------------------------------------------------------------ small rules

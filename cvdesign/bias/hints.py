@@ -35,7 +35,7 @@ The 1-D kernels are normalized densities of the offset ``ds = s - s0``:
 The 1-D constant, derived here: with ``u = 1 - q``,
 ``int_0^1 (1 + 3q)(1 - q)^3 dq = int_0^1 (4u^3 - 3u^4) du = 1 - 3/5 = 2/5``, so
 ``int_{-h}^{h} (1 + 3q)(1 - q)^3 dr = 2h * 2/5 = 4h/5`` and the 1-D
-normalization is ``5/(4h)``, as stated in the brief. The derivative is
+normalization is ``5/(4h)``. The derivative is
 ``dW/ds = -15 ds (1 - q)**2 / h**3``: zero at ``ds = 0`` and at the cutoff, so
 the bias force is continuous everywhere; the second derivative,
 ``-15 (1 - q)(1 - 3q) / h**3``, is continuous too (zero at the cutoff).
@@ -164,6 +164,12 @@ _BARRIER_WARN_KJ_MOL = 400.0
 #: Deposition intervals below this many MD steps get a warning (intervals of
 #: 100-1000 steps, about 0.1-1 ps, are usual; common practice, from memory).
 _FEW_STEPS = 10
+
+#: A deposition rate (kernel height / interval) above this, in kJ/mol per ps, gets a
+#: warning: usual rates are of order 1 kJ/mol/ps (heights of about 1 kJ/mol every 0.5-2
+#: ps; common practice, from memory), and a faster one lets motions slower than the CV
+#: lag behind the bias.
+_FAST_RATE_KJ_MOL_PS = 5.0
 
 _SOURCES = {
     "lucy": "Lucy, Astron. J. 82, 1013 (1977)",
@@ -806,6 +812,8 @@ def suggest_hints(
     temperature,
     md_step_fs,
     autocorrelation_time_ps=None,
+    frame_spacing_ps=None,
+    autocorrelation_time_decayed=None,
     barrier=None,
     kernel="gaussian",
     cv_range=None,
@@ -838,12 +846,26 @@ def suggest_hints(
         MD step of the biased run, in fs: refused outside 0.01-100 fs, a
         warning outside 0.1-5 fs (:data:`MD_STEP_LIMITS_FS`, with the reasons).
     autocorrelation_time_ps : float, optional
-        Time for the CV to decorrelate *within a state*, in ps, > 0. When
-        None, a deposition interval of 1 ps is suggested (common practice,
-        from memory). A timescale of the whole data set (e.g. a ranking's
+        Time for the CV to decorrelate *within a state*, in ps, > 0: the CV's
+        own integrated autocorrelation time (a ranking's or spec's
+        ``integrated_time_ps``), not its slowest term's (a combination can
+        decorrelate more slowly than any of its terms). When None, a
+        deposition interval of 1 ps is suggested (common practice, from
+        memory). A timescale of the whole data set (e.g. a ranking's
         ``timescale_ps``, measured with all states pooled) may reflect the
         states never interconverting rather than relaxation in a basin; it is
         capped at `max_interval_ps`.
+    frame_spacing_ps : float, optional
+        Time between the saved frames the autocorrelation time was measured
+        on, in ps, > 0 (a ranking's or spec's ``frame_spacing_ps``). A time
+        shorter than one spacing is not resolved by the frames (the estimate
+        ``dt (1/2 + sum rho)`` is then about half a spacing, whatever the CV's
+        own time below it): the hints say that the interval reflects the
+        frame spacing rather than the CV.
+    autocorrelation_time_decayed : bool, optional
+        False when the autocorrelation had not decayed within the runs, so the
+        time is a lower bound (a ranking's ``integrated_time_decayed``); the
+        hints then say that the interval may be too short. None: unknown.
     barrier : float or dict, optional
         Barrier estimate ``dG`` to leave the states, in kJ/mol: one value
         for all states or ``{state: value}``. When None, bias factors and fill
@@ -921,7 +943,11 @@ def suggest_hints(
           ``reference_state``, ``reference_std`` (CV units);
         * ``height_kj_mol``: initial kernel height, kJ/mol;
         * ``deposition``: ``interval_steps`` (int), ``interval_ps``,
-          ``tau_ps`` (the time used), ``capped`` (bool);
+          ``tau_ps`` (the time used), ``capped`` (bool), ``tau_resolved``
+          (False when the time is shorter than the frame spacing, None when
+          either is unknown), ``tau_lower_bound`` (True when the time did not
+          decay, None when unknown), ``rate_kj_mol_ps`` (initial height /
+          interval);
         * ``well_tempered``: ``bias_factor`` (None when tabulated),
           ``delta_t_k`` (K), ``barrier_kj_mol``,
           ``effective_barrier_kj_mol``, ``target_barrier_kt``, ``table``
@@ -938,7 +964,10 @@ def suggest_hints(
           ``{state: [{level_kj_mol, bias_factor, volume, n_kernels,
           metadynamics_ps, metadynamics_ns, well_tempered_ps,
           well_tempered_ns, over_budget}]}`` (times None when beyond float
-          range);
+          range; ``volume`` and ``n_kernels`` are plain metadynamics'
+          figures, the bias volume that flattens the basin up to the level
+          and the kernels of full height it takes, also in rows with a bias
+          factor);
         * ``reasoning``: list of str, one per rule, each with its source or
           label; ``sources``: list of str.
 
@@ -979,6 +1008,11 @@ def suggest_hints(
     if f_grid > 1.0:
         raise InputError(f"grid_fraction={grid_fraction!r} must be in (0, 1]")
     tau = None if autocorrelation_time_ps is None else _number("autocorrelation_time_ps", autocorrelation_time_ps)
+    frame_ps = None if frame_spacing_ps is None else _number("frame_spacing_ps", frame_spacing_ps)
+    if autocorrelation_time_decayed is not None and not isinstance(
+            autocorrelation_time_decayed, (bool, np.bool_)):
+        raise InputError("autocorrelation_time_decayed must be True, False or None; got "
+                         f"{autocorrelation_time_decayed!r}")
     cap = None if max_interval_ps is None else _number("max_interval_ps", max_interval_ps)
     budget = None if budget_ns is None else _number("budget_ns", budget_ns)
     gamma_user = None
@@ -1110,11 +1144,14 @@ def suggest_hints(
 
     # deposition interval ----------------------------------------------------
     capped = False
+    resolved = lower_bound = None
     if tau is None:
         tau_used = 1.0
         why.append(
-            f"Deposition interval: no within-state autocorrelation time given; 1 ps is used "
-            f"{tag_cpm}. Pass autocorrelation_time_ps to base it on your CV."
+            f"Deposition interval: no within-state autocorrelation time is known; 1 ps is used "
+            f"{tag_cpm}. A spec records the CV's as scores.integrated_time_ps (written by "
+            "cvdesign suggest when the input files' frame spacing is known); in Python, pass "
+            "autocorrelation_time_ps."
         )
     else:
         tau_used = tau
@@ -1130,10 +1167,35 @@ def suggest_hints(
         if capped:
             why.append(
                 f"Note: autocorrelation_time_ps = {tau:.4g} ps is above max_interval_ps = "
-                f"{cap:g} ps and was capped. A timescale measured on all states pooled "
-                f"mostly reflects that the states did not interconvert in the input runs, "
-                f"not relaxation within a basin; estimate tau from single-state data."
+                f"{cap:g} ps and was capped: a longer interval would slow the filling for "
+                f"little gain {tag_cpm}. A within-state time this long may come from frames "
+                f"saved far apart (the estimate is of the order of the frame spacing), from slow "
+                f"motions inside the states (substates the CV sees), or, for a timescale of "
+                f"all states pooled, from the states not interconverting in the input runs."
             )
+        if frame_ps is not None:
+            resolved = bool(tau >= frame_ps)
+            if not resolved:
+                text = (
+                    f"autocorrelation_time_ps = {tau:.4g} ps is shorter than the spacing of the "
+                    f"saved frames it was measured on ({frame_ps:.4g} ps): the CV decorrelates "
+                    f"within about one frame, so the estimate dt (1/2 + sum rho), about half a "
+                    f"spacing then, is set by the frame spacing rather than by the CV. The "
+                    f"interval from it reflects the frame spacing (likely longer than the CV "
+                    f"needs, which slows the filling); save frames more often than every "
+                    f"{frame_ps:.4g} ps to measure it")
+                why.append("Note: " + text + ".")
+                warnings.append(text)
+        if autocorrelation_time_decayed is not None:
+            lower_bound = not bool(autocorrelation_time_decayed)
+            if lower_bound:
+                text = (
+                    f"autocorrelation_time_ps = {tau:.4g} ps is a lower bound: the CV's "
+                    f"autocorrelation had not decayed within the runs, so the CV relaxes "
+                    f"within the states more slowly than this and the interval may be too "
+                    f"short; longer runs per state measure it")
+                why.append("Note: " + text + ".")
+                warnings.append(text)
     steps = max(1, int(round(tau_used * 1000.0 / dt_fs)))
     interval_ps = steps * dt_fs / 1000.0
     if steps < _FEW_STEPS:
@@ -1144,6 +1206,13 @@ def suggest_hints(
             f"autocorrelation time {tau_used:.3g} ps is only {tau_used * 1000.0 / dt_fs:.3g} MD "
             f"steps of {dt_fs:g} fs; check autocorrelation_time_ps and the MD step, or choose "
             "the interval yourself")
+    rate = height / interval_ps
+    if rate > _FAST_RATE_KJ_MOL_PS:
+        warnings.append(
+            f"the bias grows at {rate:.3g} kJ/mol per ps at first ({height:.3g} kJ/mol every "
+            f"{interval_ps:.3g} ps), faster than the usual rate of about 1 kJ/mol/ps (common "
+            "practice, from memory): motions slower than the CV lag behind such a bias; "
+            "consider a longer interval or a smaller height")
 
     # well-tempered bias factor ----------------------------------------------
     def wt_row(dg, gamma):
@@ -1230,7 +1299,9 @@ def suggest_hints(
     # fill times -------------------------------------------------------------
     model = (
         "Each state is a harmonic basin F(s) = kT (s - mean)^2 / (2 std^2) (std from the input "
-        "data). Plain metadynamics: time to deposit the bias volume (4/3) std L sqrt(2L/kT) "
+        "data, which are taken to be at the temperature given: runs made at another "
+        "temperature T_data have the curvature kT_data / std^2, and their fill volumes are "
+        "sqrt(T / T_data) times the model's). Plain metadynamics: time to deposit the bias volume (4/3) std L sqrt(2L/kT) "
         "that makes the basin flat up to level L, one kernel of volume height x area per "
         "interval (quasi-static filling; Laio and Parrinello, Proc. Natl. Acad. Sci. USA 99, "
         "12562, 2002, from memory). Well-tempered: the bias keeps the converged shape "
@@ -1290,6 +1361,9 @@ def suggest_hints(
         "inputs": {
             "temperature_k": temperature, "md_step_fs": dt_fs, "kt_kj_mol": kt,
             "autocorrelation_time_ps": tau,
+            "frame_spacing_ps": frame_ps,
+            "autocorrelation_time_decayed": (None if autocorrelation_time_decayed is None
+                                             else bool(autocorrelation_time_decayed)),
             "barrier_kj_mol": (None if barriers is None else
                                (barriers if isinstance(barrier, Mapping) else float(barrier))),
             "states": st,
@@ -1300,7 +1374,8 @@ def suggest_hints(
                    "width_fraction": f_width, "reference_state": ref_state, "reference_std": ref_std},
         "height_kj_mol": height,
         "deposition": {"interval_steps": steps, "interval_ps": interval_ps, "tau_ps": tau_used,
-                       "capped": capped},
+                       "capped": capped, "tau_resolved": resolved, "tau_lower_bound": lower_bound,
+                       "rate_kj_mol_ps": rate},
         "well_tempered": well_tempered,
         "walls": walls,
         "grid": grid,
@@ -1420,7 +1495,10 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     The states' mean and spread come from ``spec.states`` (a state without a
     resolvable spread is left out of the kernel width and the fill times,
     with a warning: ``leave_out_frozen=True``), the deposition interval from
-    ``spec.scores["integrated_time_ps"]`` when recorded, and the grid and
+    ``spec.scores["integrated_time_ps"]`` when recorded (with
+    ``scores["frame_spacing_ps"]`` and ``scores["integrated_time_decayed"]``, 1 or
+    0, when recorded: whether the frames resolved it, whether it is a lower
+    bound), and the grid and
     walls from the CV's reachable range (:attr:`cvdesign.Spec.reachable_range`,
     computed from the terms for a spec written without one) and observed
     range (:attr:`cvdesign.Spec.observed_range`, when recorded): a bounded CV's
@@ -1493,6 +1571,10 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     options.setdefault("leave_out_frozen", True)
     options.setdefault("cv_range", spec.reachable_range)
     options.setdefault("observed_range", spec.observed_range)
+    options.setdefault("frame_spacing_ps", spec.scores.get("frame_spacing_ps"))
+    decayed = spec.scores.get("integrated_time_decayed")
+    options.setdefault("autocorrelation_time_decayed", None if decayed is None else
+                       bool(decayed))
     return suggest_hints(spec.states, temperature=temperature, md_step_fs=md_step_fs,
                          autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
                          barrier=barrier, kernel=kernel, periodic=bool(spec.periodic),

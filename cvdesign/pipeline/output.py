@@ -454,7 +454,9 @@ _RANKING_TABLE = (
         else any(st.get("at_bound") for st in r["states"].values())),
        ("states_at_bound", "text", lambda r: "; ".join(
            f"{name}:{st['at_bound']}" for name, st in r["states"].items()
-           if st.get("at_bound")))])
+           if st.get("at_bound")))]
+    + [("integrated_time_decayed", "flag", _value("integrated_time_decayed"))]
+    + _numbers("frame_spacing_ps"))
 
 _SCORECARD_TABLE = (
     [("order", "int", None), ("id", "text", _value("id")), ("kind", "text", _value("kind")),

@@ -183,6 +183,8 @@ def hints_for(entry, temperature, md_step_fs):
     try:
         return suggest_hints(entry["states"], temperature=temperature, md_step_fs=md_step_fs,
                              autocorrelation_time_ps=entry.get("integrated_time_ps"),
+                             frame_spacing_ps=entry.get("frame_spacing_ps"),
+                             autocorrelation_time_decayed=entry.get("integrated_time_decayed"),
                              cv_range=None if reach is None else (reach["lower"], reach["upper"]),
                              observed_range=None if seen is None else (seen["lower"],
                                                                        seen["upper"]),

@@ -42,13 +42,15 @@ import math
 
 import numpy as np
 
-from ..passes import FeaturePass, frame_keys, group_rows, thinning_stride
+from ..passes import FeaturePass, LagGridPass, frame_keys, group_rows, thinning_stride
+from ..score.card import integrated_time_interval
 from ..stats.moments import DiagonalLaggedMoments
+from .timing import integrated_time, local_autocorrelation
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
-           "CVBlockHistograms", "CVReportPass", "CVLaggedPass", "cv_plans", "trace_stride",
-           "histogram_bins", "affine_to_cv_units", "report_document", "timescale_lags",
-           "funnel_report_document"]
+           "CVBlockHistograms", "CVReportPass", "CVLaggedPass", "CVGridPass", "cv_plans",
+           "cv_integrated_times", "trace_stride", "histogram_bins", "affine_to_cv_units",
+           "report_document", "timescale_lags", "funnel_report_document"]
 
 #: Most points of a trace (one input segment).
 MAX_TRACE_POINTS = 1000
@@ -494,6 +496,99 @@ class CVLaggedPass(FeaturePass):
                        "n_pairs": np.zeros(len(self.lags), dtype=np.int64),
                        "sums": np.zeros((5, len(self.lags), len(self.plans)))}
         return _lagged_moments(partial, self.lags, self.shift)
+
+
+class CVGridPass(LagGridPass):
+    """The ranked CVs' per-run lagged moments on the integrated times' grid of lags.
+
+    :class:`~cvdesign.passes.LagGridPass` with the CVs in place of features: per
+    run (segment, state), diagonal lagged moments of each CV at every lag of the
+    grid, in frames (also in a biased run, as the descriptors' integrated times).
+    From them :func:`cv_integrated_times` gives each CV's own integrated time
+    within the states. A CV's time is not its slowest term's: a combination can
+    cancel its terms' fast parts (the within-state noise they share, which is what
+    a discriminant does) and decorrelate more slowly than any of them.
+
+    Parameters
+    ----------
+    featurizer : Featurizer
+        Features that include the CVs' terms.
+    plans : list of CVPlan
+        The ranked CVs; only ``cols`` and ``w`` are used.
+    lags : sequence of int
+        Lags in frames (:func:`cvdesign.pipeline.timing.iat_lags`).
+    shift : array-like of shape (n_cvs,)
+        Fixed shift of the sums (near each CV's mean).
+    columns, center, scale
+        The CVs' terms among the featurizer's columns, and their standardization
+        (as :class:`CVLaggedPass`).
+
+    Returns a list of :class:`~cvdesign.passes.LaggedResult`, one per lag, over the
+    CVs (``n_features`` is the number of CVs).
+
+    Examples
+    --------
+    >>> from cvdesign.passes import CoordinateFeaturizer
+    >>> cv = CVPlan([0, 1], [1.0, -1.0], [[1.0, -1.0]], [(1.0, 0.0)], -1.0, 1.0, 10)
+    >>> p = CVGridPass(CoordinateFeaturizer([0]), [cv], [1, 5], [0.5])  # the CV x - y
+    >>> p.n_features, p.shifted(np.array([[3.0, 1.0, 0.0]]), p.shift).tolist()
+    (1, [[1.5]])
+    """
+
+    def __init__(self, featurizer, plans, lags, shift, *, columns=None, center=None,
+                 scale=None):
+        self.plans = list(plans)
+        super().__init__(featurizer, lags, shift=np.zeros(len(self.plans)), columns=columns,
+                         center=center, scale=scale)
+        self.n_features = len(self.plans)  # the CVs (the columns are their terms)
+        self.shift = np.asarray(shift, dtype=np.float64).reshape(-1)
+        if self.shift.size != self.n_features:
+            raise ValueError(f"shift has {self.shift.size} entries for {self.n_features} CVs")
+
+    def shifted(self, x, shift, name="shifted"):
+        """The CVs of the rows of `x` (the window's features) minus `shift`."""
+        z = _standardized(x if self.columns is None else x[:, self.columns], self.center,
+                          self.scale)
+        cv = np.empty((z.shape[0], len(self.plans)))
+        for c, p in enumerate(self.plans):
+            cv[:, c] = _combine(z, p.cols, p.w)
+        return np.subtract(cv, shift, out=cv)
+
+
+def cv_integrated_times(results, lags, dt_ps, n_frames):
+    """Each CV's integrated time within the states, from :class:`CVGridPass`.
+
+    Every run (segment, state) is taken about its own mean
+    (:func:`~cvdesign.pipeline.timing.local_autocorrelation`), then
+    :func:`~cvdesign.pipeline.timing.integrated_time` and its asymptotic interval
+    (:func:`~cvdesign.score.card.integrated_time_interval`), exactly as for the
+    descriptors of the score card.
+
+    Parameters
+    ----------
+    results : list of LaggedResult
+        :class:`CVGridPass`'s result, one per lag.
+    lags : array-like of int
+        Its lags, frames.
+    dt_ps : float
+        Time between frames, ps.
+    n_frames : int
+        Frames of all runs (effective sample sizes for reweighted states).
+
+    Returns
+    -------
+    list of (float, bool, list or None)
+        Per CV: the time (ps), whether the autocorrelation decayed within the
+        window (False: the time is a lower bound), and the 95 % interval (ps;
+        None when it did not decay).
+    """
+    n = results[0].n_features if results else 0
+    rho = np.array([local_autocorrelation(r.by_run().values(), n) for r in results])
+    tau, decayed, window = integrated_time(lags, rho.reshape(len(results), n), dt_ps,
+                                           return_window=True)
+    lo, hi = integrated_time_interval(tau, window, n_frames)
+    return [(float(tau[c]), bool(decayed[c]),
+             [float(lo[c]), float(hi[c])] if decayed[c] else None) for c in range(n)]
 
 
 def _lag_sums(leaf, d, lags):

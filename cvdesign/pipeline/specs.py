@@ -148,9 +148,11 @@ def spec_document(source, pool, entry, params, checksums, seed, record=None):
     for key in ("heldout_score", "heldout_score_se", "heldout_fisher_ratio",
                 "heldout_fisher_ratio_se", "heldout_overlap", "fisher_ratio_all",
                 "heldout_autocorrelation", "autocorrelation_all", "timescale_ps", "lag_ps",
-                "integrated_time_ps"):
+                "integrated_time_ps", "frame_spacing_ps"):
         if entry.get(key) is not None:
             scores[key] = entry[key]
+    if entry.get("integrated_time_decayed") is not None:  # a flag, 1 or 0 (scores are numbers)
+        scores["integrated_time_decayed"] = int(bool(entry["integrated_time_decayed"]))
     doc = {
         "format": "cvdesign-spec", "version": 1, "name": entry["spec"][:-5],
         "units": dict(UNITS),

@@ -18,9 +18,11 @@
    ranked CVs' held-out histograms and their smallest and largest value in
    each state (the observed range), bootstrap blocks, the score card's block
    sums, and what the report draws (:mod:`.report_data`: held-out histograms
-   in the CVs' units, traces); then the implied timescales' lagged sums in a
-   read of their own over the ranked CVs' terms (their lags, up to 2000
-   frames, would keep that many frames of every feature in the held-out read);
+   in the CVs' units, traces); then the implied timescales' lagged sums, and
+   each ranked CV's own per-run autocorrelations on the integrated-time grid
+   (its integrated time, which the hints' deposition interval uses), in a read
+   of their own over the ranked CVs' terms (their lags, up to 2000 frames,
+   would keep that many frames of every feature in the held-out read);
 8. **bootstrap, ranking, specs** -- intervals, the ranked entries with their
    reachable and observed ranges (:func:`.ranking.add_ranges`), one spec per
    entry (:mod:`.specs`), the report data.
@@ -53,8 +55,8 @@ from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs
 from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
                       heldout_overlap, hints_for, ranking_entry, search, shortlist)
-from .report_data import (CVBlockHistograms, CVLaggedPass, CVReportPass, cv_plans,
-                          report_document, timescale_lags, trace_stride)
+from .report_data import (CVBlockHistograms, CVGridPass, CVLaggedPass, CVReportPass, cv_plans,
+                          cv_integrated_times, report_document, timescale_lags, trace_stride)
 from .screening import Screening, screen
 from .specs import InputChecksums, SourceRecord, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
@@ -423,6 +425,11 @@ def _suggest(source, config, executor, progress, checksums):
             notes.append("transition slowness: no bootstrap intervals (a crossing run has a "
                          "single sub-block in a held-out fold); give longer crossing runs")
     scorecard = _scorecard(pool, screening, short, held.overlap_desc, iat_desc, card_ci)
+    cv_times, frame_ps = [None] * len(fits), None
+    if held.report is not None and held.report.get("cv_grid") is not None:
+        frame_ps = next(iter(steps.values()))  # (the grid needs one known spacing)
+        cv_times = cv_integrated_times(held.report["cv_grid"], _lag_grid(steps, seg_counts),
+                                       frame_ps, _effective_frames(seg_counts, reweighting))
     run_ps = [_run_frames(source, reweighting, seg_counts, si) * dt for si, dt in steps.items()
               if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
@@ -437,7 +444,7 @@ def _suggest(source, config, executor, progress, checksums):
             entry.update(transition_columns(fit, fm, lag_ps))
             if transit_ci is not None:
                 entry.update(transit_ci[rank - 1])
-        _add_times(entry, fit, screening, iat_desc, longest_run_ps)
+        _add_times(entry, longest_run_ps, cv_times[rank - 1], frame_ps)
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
         if refused:
@@ -666,10 +673,11 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
     if report is not None:
         results = results[:-1]
         if lagged is not None:
-            report_result = dict(report_result, lagged=run_pass(
+            lagged, cv_grid = run_pass(
                 lagged, source, executor=executor,
-                tasks=_plan_for(base, lagged.featurizer.n_features, executor),
-                label="timescales"))
+                tasks=_plan_for(base, lagged[0].featurizer.n_features, executor),
+                label="timescales")
+            report_result = dict(report_result, lagged=lagged, cv_grid=cv_grid)
     block_sums, observed = results[0], results[1]
     card_sums = results[2] if card is not None else None
     counts = np.zeros((source.n_states, pool.n_features, N_BINS))
@@ -718,10 +726,14 @@ def _report_pass(every, base, screening, fits, fm, folds, lags, seg_counts, step
     lagged = None
     if report_lags is not None:
         # a read of its own over the terms' descriptors: its halo (up to 2000 frames) in
-        # the read of every feature would keep those frames of every feature in memory
+        # the read of every feature would keep those frames of every feature in memory;
+        # the same read gives each CV's own integrated time (per run, on the descriptors'
+        # grid)
         featurizer, columns = terms_featurizer(every.pool, cols)
-        lagged = CVLaggedPass(featurizer, plans, report_lags, shift, columns=columns,
-                              center=center, scale=scale)
+        lagged = (CVLaggedPass(featurizer, plans, report_lags, shift, columns=columns,
+                               center=center, scale=scale),
+                  CVGridPass(featurizer, plans, grid, shift, columns=columns, center=center,
+                             scale=scale))
     return report, lagged, plans, report_lags
 
 
@@ -953,9 +965,11 @@ def _bootstrap_notes(boot, held, config, fm=None):
     return out
 
 
-def _add_times(entry, fit, screening, iat_desc, longest_run_ps):
-    """Whether the timescale is resolved by the runs, and the CV's within-run decorrelation
-    time (bounded by its slowest term)."""
+def _add_times(entry, longest_run_ps, cv_time, frame_spacing_ps):
+    """Whether the timescale is resolved by the runs, and the CV's own integrated time
+    within the runs (``cv_time``: from :func:`cv_integrated_times`, None when the frame
+    spacing is unknown or differs between files), with the frame spacing it was
+    measured at."""
     for key in ("timescale", "timescale_within_states", "timescale_transitions"):
         if key == "timescale_transitions" and "timescale_transitions_ps" not in entry:
             continue  # no crossing runs
@@ -963,11 +977,10 @@ def _add_times(entry, fit, screening, iat_desc, longest_run_ps):
         entry[f"{key}_resolved"] = None if ts is None else bool(
             longest_run_ps is not None and ts < longest_run_ps)
     entry["longest_run_ps"] = longest_run_ps
-    taus = [iat_desc[screening.screened[g]] for g in fit.gidx
-            if screening.screened[g] in iat_desc]
-    slowest = max(taus, key=lambda t: t[0]) if taus else None
-    entry["integrated_time_ps"] = None if slowest is None else slowest[0]
-    entry["integrated_time_ci_ps"] = None if slowest is None else slowest[2]
+    entry["integrated_time_ps"] = None if cv_time is None else cv_time[0]
+    entry["integrated_time_ci_ps"] = None if cv_time is None else cv_time[2]
+    entry["integrated_time_decayed"] = None if cv_time is None else cv_time[1]
+    entry["frame_spacing_ps"] = None if cv_time is None else frame_spacing_ps
 
 
 def _scorecard(pool, screening, short, overlap_desc, iat_desc, card_ci):
