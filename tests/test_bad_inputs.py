@@ -986,6 +986,14 @@ class FunnelCtx:
         traj.save_dcd(str(path))
         return str(path)
 
+    def with_box(self, edge):
+        """A copy of the first run as DCD with a cubic periodic box of `edge` nm."""
+        traj = md.load(self.data.paths[0], top=self.data.topology)
+        traj.unitcell_vectors = np.tile(np.eye(3, dtype=np.float32) * edge, (len(traj), 1, 1))
+        path = self.out_dir / "boxed.dcd"
+        traj.save_dcd(str(path))
+        return str(path)
+
     def with_flat_pocket(self, frame):
         """A copy of the first run as DCD whose pocket atoms lie on one line in `frame`."""
         traj = md.load(self.data.paths[0], top=self.data.topology)
@@ -1109,6 +1117,14 @@ FUNNEL_CASES = [
      lambda c: c.argv("--exit-point", *(repr(float(v)) for v in c.pocket_centre())),
      r"the exit point \[.*\] nm lies 0\.0000 nm from the pocket centre of the first bound "
      r"frame \[.*\] nm \(closer than 0\.05 nm\), so it defines no direction"),
+    ("exit-point-beyond-half-the-box",
+     lambda c: c.argv("--exit-point", *(repr(float(v)) for v in c.pocket_centre() + [0, 0, 1.7]),
+                      bound=[c.with_box(3.0)]),
+     r"the exit point \(exit_point, --exit-point on the command line\) \[.*\] nm lies "
+     r"1\.7000 nm from the pocket centre of the first bound frame \[.*\] nm, more than half "
+     r"the smallest box height of that frame \(1\.5000 nm\): under periodic images its "
+     r"direction from the pocket is ambiguous .*; give a point within 1\.5000 nm of that "
+     r"pocket centre"),
     ("nan-pocket-coordinates",
      lambda c: c.argv(bound=[c.data.paths[0], c.with_nan(frame=3, atom=5)]),
      r"trajectory '.*nan\.dcd' frame 3 has a NaN or infinite coordinate for atom 5 "

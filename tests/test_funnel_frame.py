@@ -218,19 +218,59 @@ def test_sizing_from_chunks_with_boxes_equals_one_array():
     np.testing.assert_allclose(parts["params"]["axis"], one["params"]["axis"], atol=1e-12)
 
 
-def test_exit_point_is_taken_in_the_coordinates_of_the_first_frame():
-    xyz = _complex()
-    moved, boxes = _tumble(xyz, seed=8, box=ORTHO)
+def _tumbled_with_exit_direction():
+    """Tumbled, wrapped frames in ORTHO, the first frame's pocket centre (nm) and a unit
+    direction for an exit point."""
+    moved, boxes = _tumble(_complex(), seed=8, box=ORTHO)
     moved = _wrap(moved, boxes)
     (whole,) = whole_groups(moved[:1], [POCKET], boxes[:1])
-    centre = whole[0].mean(axis=0)
     direction = np.array([0.2, -0.5, 0.7]) / np.linalg.norm([0.2, -0.5, 0.7])
-    exit_point = centre + 1.5 * direction + boxes[0, 1]   # any periodic image of the point
-    out = _size(moved, boxes, exit_point=exit_point)
+    return moved, boxes, whole[0].mean(axis=0), direction
+
+
+def test_exit_point_is_taken_in_the_coordinates_of_the_first_frame():
+    moved, boxes, centre, direction = _tumbled_with_exit_direction()
+    out = _size(moved, boxes, exit_point=centre + 1.5 * direction)
     assert out["axis_rule"] == "exit_point"
     np.testing.assert_allclose(out["params"]["axis"], direction, atol=1e-12)
     with pytest.raises(InputError, match="exit point .* from the pocket centre"):
         _size(moved, boxes, exit_point=centre + [0.01, 0.0, 0.0])
+
+
+def test_an_exit_point_beyond_half_the_box_height_is_refused_not_flipped():
+    # Half the smallest height of ORTHO is 3 nm. Farther than that from the pocket centre, a
+    # point may have a nearer periodic image on another side of the pocket (the old minimum-
+    # image rule then turned the axis around); a periodic image of a near point is as far off.
+    moved, boxes, centre, direction = _tumbled_with_exit_direction()
+    near = _size(moved, boxes, exit_point=centre + 2.9 * direction)
+    np.testing.assert_allclose(near["params"]["axis"], direction, atol=1e-12)
+    for exit_point, dist in [(centre + 3.2 * direction, 3.2),
+                             (centre + 1.5 * direction + boxes[0, 1], None)]:
+        if dist is None:
+            dist = np.linalg.norm(exit_point - centre)
+        with pytest.raises(InputError, match=(
+                rf"the exit point \(exit_point, --exit-point on the command line\) \[.*\] nm "
+                rf"lies {dist:.4f} nm from the pocket centre of the first bound frame \[.*\] "
+                r"nm, more than half the smallest box height of that frame \(3\.0000 nm\): "
+                r"under periodic images its direction from the pocket is ambiguous .* give a "
+                r"point within 3\.0000 nm of that pocket centre")):
+            _size(moved, boxes, exit_point=exit_point)
+
+
+def test_an_exit_point_on_the_far_side_of_the_pocket_warns_that_the_funnel_opens_away():
+    xyz = _complex()   # the guest sits off-centre toward +z of the cup
+    up = _size(xyz, None, exit_point=[0.0, 0.0, 1.0])
+    assert up["observed"]["z_mean_nm"] > 0
+    assert not any("opens away" in w for w in up["warnings"])
+    down = _size(xyz, None, exit_point=[0.0, 0.0, -1.0])
+    assert down["params"]["axis"][2] < 0 and down["observed"]["z_mean_nm"] < 0
+    (warning,) = [w for w in down["warnings"] if "opens away" in w]
+    assert warning.startswith(
+        f"the bound ligand's mean position along the axis is z = "
+        f"{down['observed']['z_mean_nm']:.3f} nm, at or below the pocket centre (axis by rule "
+        "'exit_point'): the funnel opens away from the ligand")
+    assert "give an exit point (exit_point, --exit-point) on the ligand's side" in warning
+    assert f"WARNING: {warning}" in down["reasoning"]
 
 
 def test_a_funnel_reaching_beyond_half_the_box_height_is_warned_about():

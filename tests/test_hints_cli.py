@@ -170,6 +170,24 @@ def test_hints_command_leaves_out_a_frozen_state_with_a_warning(tmp_path, capsys
     assert "WARNING: left out of the kernel width" in out and "sigma = 0.01 CV units" in out
 
 
+def test_hints_command_warns_that_walls_around_a_single_state_confine_the_bias_to_it(
+        tmp_path, capsys):
+    code, out, err = _hints_for_states(tmp_path, capsys, {
+        "only": {"mean": 0.4, "std": 0.02, "n_frames": 50}})
+    assert code == 0
+    assert ("cvdesign hints: warning: only one state ('only') is given, so the walls at its "
+            "mean -/+ 3 std and the grid around them confine the bias to that state: a run "
+            "with them cannot leave it. Put the walls and the grid around the whole region the "
+            "bias should explore") in err
+    assert "make the spec from runs of two or more states (cvdesign suggest)" in err
+    assert "WARNING: only one state ('only') is given" in out
+    assert "walls            lower 0.34, upper 0.46 (CV units)" in out
+    code, out, err = _hints_for_states(tmp_path, capsys, {
+        "a": {"mean": 0.4, "std": 0.02, "n_frames": 50},
+        "b": {"mean": 0.6, "std": 0.02, "n_frames": 50}})
+    assert code == 0 and "only one state" not in err + out
+
+
 def test_hints_command_refuses_a_grid_beyond_the_maximum(tmp_path, capsys):
     code, out, err = _hints_for_states(tmp_path, capsys, {
         "narrow": {"mean": 0.15, "std": 1e-5, "n_frames": 50},

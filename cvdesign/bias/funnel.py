@@ -126,6 +126,26 @@ def _check_exit_offset(exit_point, center, offset, min_offset, where):
             "pocket centre")
 
 
+def _check_exit_image(exit_point, center, offset, box):
+    """Refuse an exit point (nm) farther from the pocket centre than half the smallest box
+    height of `box` (None: no box, nothing to check): under periodic images its direction
+    from the pocket is ambiguous (its nearest image may lie on the other side)."""
+    if box is None:
+        return
+    half = 0.5 * float(geometry.box_heights(box).min())
+    dist = float(np.linalg.norm(offset))
+    if dist > half:
+        raise InputError(
+            f"the exit point (exit_point, --exit-point on the command line) "
+            f"{np.round(exit_point, 4).tolist()} nm lies {dist:.4f} nm from the pocket centre "
+            f"of the first bound frame {np.round(center, 4).tolist()} nm, more than half the "
+            f"smallest box height of that frame ({half:.4f} nm): under periodic images its "
+            "direction from the pocket is ambiguous (a nearer image of it may lie on the other "
+            "side of the pocket, and the funnel would open away from the ligand); give a point "
+            f"within {half:.4f} nm of that pocket centre, in the same coordinates, toward the "
+            "solvent (e.g. 0.5-1 nm out of the pocket's mouth)")
+
+
 def funnel_axis(pocket_center, exit_point=None, ligand_centers=None, *, pocket_xyz=None,
                 min_offset=_MIN_OFFSET):
     """Unit axis from the pocket centre toward the solvent.
@@ -646,8 +666,9 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
     Rules (margins are common practice in spirit; the numbers are from memory):
 
     * axis: see :func:`funnel_axis` (in the reference frame; the exit point is
-      taken in the coordinates of the first frame, at its minimum image from
-      that frame's pocket centre);
+      taken in the coordinates of the first frame and must lie within half
+      that frame's smallest box height of its pocket centre: farther, its
+      direction is ambiguous under periodic images, and it is refused);
     * ``lower_wall_z_nm`` = deepest observed z minus ``max(z_margin, k_std std_z)``;
     * ``cone_end_z_nm`` = highest observed z plus the same margin plus
       `blend_half_width`, so every bound position lies in the straight part
@@ -661,7 +682,9 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
     * ``upper_wall_z_nm`` = ``cone_end_z_nm + unbound_length`` (far enough
       for the ligand to be solvated; check against your box).
 
-    A warning (in ``warnings`` and ``reasoning``) says when the funnel reaches
+    A warning (in ``warnings`` and ``reasoning``) says when the bound ligand's
+    mean z is not positive (the funnel opens away from the ligand: an exit
+    point on the wrong side of the pocket), when the funnel reaches
     beyond half the smallest box height of the given frames (the
     pocket-to-ligand vector would then jump to another periodic image inside
     the funnel), or when a group may be too large to be made whole.
@@ -713,7 +736,8 @@ def size_funnel(pocket_xyz=None, ligand_xyz=None, box=None, *, chunks=None, exit
     ------
     InputError
         Bad shapes, non-finite coordinates, a pocket that does not fix an
-        orientation, a bad exit point.
+        orientation, a bad exit point (not finite, at the pocket centre, or
+        farther from it than half the first frame's smallest box height).
 
     Examples
     --------
@@ -801,11 +825,10 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
     exit_offset = None
     if exit_point is not None:
         e = _finite_exit_point(exit_point)
-        exit_offset = geometry.minimum_image((e - reference.center)[None], reference.box)[0] \
-            if reference.box is not None else e - reference.center
+        exit_offset = e - reference.center
         _check_exit_offset(e, reference.center, exit_offset, _MIN_OFFSET,
-                           " of the first bound frame (minimum image)"
-                           if reference.box is not None else " of the first bound frame")
+                           " of the first bound frame")
+        _check_exit_image(e, reference.center, exit_offset, reference.box)
     axis, rule = funnel_axis(np.zeros(3), exit_offset, sums.dsum / sums.w,
                              pocket_xyz=sums.psum / sums.w)
     # Pass 2: (z, r) statistics of the fitted vectors.
@@ -830,6 +853,13 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
              "cylinder_radius_nm": cyl, "blend_half_width_nm": float(blend_half_width)}
     shape = {k: float(v) for k, v in shape.items()}
     warnings = []
+    if not stats.z_mean > 0.0:
+        warnings.append(
+            f"the bound ligand's mean position along the axis is z = {stats.z_mean:.3f} nm, "
+            f"at or below the pocket centre (axis by rule '{rule}'): the funnel opens away "
+            "from the ligand, and unbinding along it would drag the ligand through the "
+            "pocket; give an exit point (exit_point, --exit-point) on the ligand's side of "
+            "the pocket, toward the solvent")
     reach, where = funnel_reach(shape)
     if np.isfinite(half_height) and reach >= half_height:
         warnings.append(

@@ -830,6 +830,7 @@ def suggest_hints(
     budget_ns=None,
     max_grid_bins=MAX_GRID_BINS,
     leave_out_frozen=False,
+    confinement=None,
 ):
     """Starting values for a (well-tempered) metadynamics bias along a CV.
 
@@ -924,6 +925,17 @@ def suggest_hints(
         inside the walls (True; used for specs, where such states are
         recorded as they were measured). When every state is frozen the hints
         are refused either way.
+    confinement : dict, optional
+        A restraint that confines the CV (e.g. a funnel; :func:`spec_hints`
+        builds it from a spec's ``restraints``): ``id`` (str), ``lower`` and
+        ``upper`` (the range of CV values the restraint allows, CV units),
+        ``walls`` (str: where the restraint's own walls stand), ``reasoning``
+        (str: how the range follows from the restraint) and ``fill_note``
+        (str: what the fill times mean under it). Then no walls are suggested
+        on the CV (``walls`` names the restraint instead) and the grid covers
+        the restraint's range plus the margins. Without it, a single state
+        gets a warning: walls at its mean -/+ `wall_k` std confine the bias to
+        that state, so a run with them cannot leave it.
 
     Returns
     -------
@@ -956,11 +968,17 @@ def suggest_hints(
         * ``walls``: ``{lower, upper, k_std}`` in CV units, or None
           (periodic); ``lower`` or ``upper`` is None where the wall would
           stand at or beyond a reachable end of the CV (not needed there);
+          with a `confinement`, ``lower``, ``upper`` and ``k_std`` are None
+          and ``restraint`` (its id) and ``restraint_walls`` (str) say what
+          confines the CV instead;
         * ``grid``: ``lower``, ``upper``, ``spacing`` (CV units), ``n_bins``,
           ``n_points``, ``periodic``, ``covers_reachable`` (True when the
           grid spans the CV's whole reachable range: a bounded or periodic
-          CV; the reasoning says why not otherwise);
-        * ``fill_time``: ``model`` (str), ``budget_ns``, ``states``:
+          CV; the reasoning says why not otherwise); with a `confinement`
+          also ``covers_restraint`` (True: it spans every value the
+          restraint allows);
+        * ``fill_time``: ``model`` (str), ``budget_ns``, ``note`` (str, with
+          a `confinement`: what the times mean under it), ``states``:
           ``{state: [{level_kj_mol, bias_factor, volume, n_kernels,
           metadynamics_ps, metadynamics_ns, well_tempered_ps,
           well_tempered_ns, over_budget}]}`` (times None when beyond float
@@ -1075,6 +1093,7 @@ def suggest_hints(
     if periodic and (lo_range is None or hi_range is None):
         raise InputError("cv_range is required when periodic=True, with both ends (it gives "
                          "the period)")
+    conf = _confinement(confinement, periodic)
     lo_seen = hi_seen = None
     if observed_range is not None:
         try:
@@ -1099,6 +1118,16 @@ def suggest_hints(
             "tutorials/04_real_engine.py) needed kernels about 5 times wider to stay stable "
             "and accurate; start wider and check that the run neither heats up nor crosses "
             "far more often than the barrier allows")
+
+    if len(st) == 1 and conf is None and not periodic:
+        (only,) = st
+        warnings.append(
+            f"only one state ({only!r}) is given, so the walls at its mean -/+ {wall_k:g} std "
+            "and the grid around them confine the bias to that state: a run with them cannot "
+            "leave it. Put the walls and the grid around the whole region the bias should "
+            "explore (e.g. up to the values of the state it should reach), or make the spec "
+            "from runs of two or more states (cvdesign suggest); for a bound ligand, size a "
+            "funnel restraint (cvdesign funnel), whose walls the hints then take")
 
     why = []
     tag_cp = "[common practice]"
@@ -1270,6 +1299,11 @@ def suggest_hints(
         covers = True
         why.append(f"Walls: none, the CV is periodic; the grid spans one period "
                    f"[{g_lo:.4g}, {g_hi:.4g}], the interval its values run over.")
+    elif conf is not None:
+        walls, g_lo, g_hi = _confined_walls_and_grid(
+            why, conf, min(lows), max(highs), wall_k,
+            (None, None) if cv_range is None else (lo_range, hi_range), (lo_seen, hi_seen),
+            margin, kernel)
     else:
         walls, g_lo, g_hi, covers = _walls_and_grid(
             why, min(lows), max(highs), wall_k,
@@ -1295,6 +1329,8 @@ def suggest_hints(
     grid = {"lower": g_lo, "upper": g_hi, "spacing": spacing, "n_bins": n_bins,
             "n_points": n_bins if periodic else n_bins + 1, "periodic": bool(periodic),
             "covers_reachable": covers}
+    if conf is not None:
+        grid["covers_restraint"] = True
 
     # fill times -------------------------------------------------------------
     model = (
@@ -1344,6 +1380,8 @@ def suggest_hints(
         "[our model]. A deep or wide basin takes longer (time ~ std x L^1.5 for plain "
         "metadynamics)."
     )
+    if conf is not None:
+        why.append(conf["fill_note"])
     if budget is not None:
         if over:
             why.append(f"Over the budget of {budget:g} ns: {', '.join(over)}; consider a larger "
@@ -1379,7 +1417,8 @@ def suggest_hints(
         "well_tempered": well_tempered,
         "walls": walls,
         "grid": grid,
-        "fill_time": {"model": model, "budget_ns": budget, "states": rows_of},
+        "fill_time": {"model": model, "budget_ns": budget, "states": rows_of,
+                      **({} if conf is None else {"note": conf["fill_note"]})},
         "reasoning": why,
         "sources": [_SOURCES[k] for k in ("lucy", "wt", "metad", "accuracy")]
                    + ["common practice (rules labelled so in the reasoning)"],
@@ -1423,11 +1462,7 @@ def _walls_and_grid(why, w_lo, w_hi, wall_k, cv_range, observed, margin, spacing
     if lo_seen is not None:
         core_lo, core_hi = min(core_lo, lo_seen), max(core_hi, hi_seen)
         seen_text = f" and the observed range [{lo_seen:.4g}, {hi_seen:.4g}]"
-    reach_text = ("5 sigma (where a Gaussian kernel is below 4e-6 of its peak)"
-                  if kernel == "gaussian" else "the Lucy cutoff h (exact support)")
-    covered = (f"walls{seen_text}, extended by {reach_text} plus 1 sigma for the walker's "
-               f"overshoot past a wall = {margin:.4g} CV units on each side {tag_cp}, so "
-               "kernels deposited near a wall stay on the grid")
+    covered = f"walls{seen_text}, extended by {_margin_text(kernel, margin)}"
     keep = ("Keep the walls: beyond its grid a tabulated bias gives no force, and the CV "
             "could wander there unbiased.")
     g_lo, g_hi = core_lo - margin, core_hi + margin
@@ -1454,6 +1489,15 @@ def _walls_and_grid(why, w_lo, w_hi, wall_k, cv_range, observed, margin, spacing
                 f"range is [{'-inf' if lo_r is None else format(lo_r, '.4g')}, "
                 f"{'+inf' if hi_r is None else format(hi_r, '.4g')}], from its terms: e.g. a "
                 "distance has no largest value)")
+    g_lo, g_hi, clip = _clip_grid(g_lo, g_hi, lo_r, hi_r)
+    why.append(f"Grid: {side}, so no grid spans every value the CV can take; it covers the "
+               f"{covered}{clip}. {keep}")
+    return walls, g_lo, g_hi, False
+
+
+def _clip_grid(g_lo, g_hi, lo_r, hi_r):
+    """Grid ends clipped to the reachable ends (None: unbounded there), and the reasoning's
+    words for it (empty when nothing was clipped)."""
     clipped = []
     if lo_r is not None and g_lo < lo_r:
         g_lo = lo_r
@@ -1462,9 +1506,75 @@ def _walls_and_grid(why, w_lo, w_hi, wall_k, cv_range, observed, margin, spacing
         g_hi = hi_r
         clipped.append("upper")
     clip = f", clipped to the reachable {' and '.join(clipped)} end" if clipped else ""
-    why.append(f"Grid: {side}, so no grid spans every value the CV can take; it covers the "
-               f"{covered}{clip}. {keep}")
-    return walls, g_lo, g_hi, False
+    return g_lo, g_hi, clip
+
+
+def _margin_text(kernel, margin):
+    """The reasoning's words for the grid's margin beyond the region it must cover."""
+    reach = ("5 sigma (where a Gaussian kernel is below 4e-6 of its peak)"
+             if kernel == "gaussian" else "the Lucy cutoff h (exact support)")
+    return (f"{reach} plus 1 sigma for the walker's overshoot past a wall = {margin:.4g} CV "
+            "units on each side [common practice], so kernels deposited near a wall stay on "
+            "the grid")
+
+
+_CONFINEMENT_TEXTS = ("walls", "reasoning", "fill_note")
+
+
+def _confinement(confinement, periodic):
+    """The `confinement` of :func:`suggest_hints`, checked (None stays None)."""
+    if confinement is None:
+        return None
+    if periodic:
+        raise InputError("confinement goes with a CV that is not periodic (a periodic CV has "
+                         "no walls to replace)")
+    if not isinstance(confinement, Mapping):
+        raise InputError(f"confinement must be a dict with id, lower, upper, "
+                         f"{', '.join(_CONFINEMENT_TEXTS)}; got {confinement!r}")
+    missing = [k for k in ("id", "lower", "upper") + _CONFINEMENT_TEXTS if k not in confinement]
+    if missing:
+        raise InputError(f"confinement lacks {', '.join(missing)}")
+    conf = dict(confinement)
+    for key in ("id",) + _CONFINEMENT_TEXTS:
+        if not isinstance(conf[key], str):
+            raise InputError(f"confinement[{key!r}] must be a string; got {conf[key]!r}")
+    conf["lower"] = _number("confinement['lower']", conf["lower"], positive=False)
+    conf["upper"] = _number("confinement['upper']", conf["upper"], positive=False)
+    if not conf["upper"] > conf["lower"]:
+        raise InputError(f"confinement range [{conf['lower']!r}, {conf['upper']!r}] must have "
+                         "lower < upper")
+    return conf
+
+
+def _confined_walls_and_grid(why, conf, w_lo, w_hi, wall_k, cv_range, observed, margin,
+                             kernel):
+    """Walls and grid ends for a CV confined by a restraint (`conf`, see
+    :func:`suggest_hints`); appends the reasoning to `why`.
+
+    No wall on the CV: the restraint's walls confine it. The grid covers the
+    restraint's range, the states' mean -/+ wall_k std (`w_lo`, `w_hi`) and the
+    observed range, plus `margin`, clipped to a reachable end.
+    """
+    lo_r, hi_r = cv_range
+    lo_seen, hi_seen = observed
+    core_lo, core_hi = min(conf["lower"], w_lo), max(conf["upper"], w_hi)
+    if lo_seen is not None:
+        core_lo, core_hi = min(core_lo, lo_seen), max(core_hi, hi_seen)
+    g_lo, g_hi = core_lo - margin, core_hi + margin
+    g_lo, g_hi, clip = _clip_grid(g_lo, g_hi, lo_r, hi_r)
+    why.append(conf["reasoning"])
+    why.append(
+        f"Walls: none on the CV; restraint {conf['id']!r} confines it ({conf['walls']}). Walls "
+        f"at the outermost state mean -/+ {wall_k:g} std, [{w_lo:.4g}, {w_hi:.4g}], would "
+        "hold the system inside the states the spec records, which the restraint is there "
+        "to let it leave.")
+    why.append(
+        f"Grid: covers [{conf['lower']:.4g}, {conf['upper']:.4g}], every value restraint "
+        f"{conf['id']!r} allows, extended by {_margin_text(kernel, margin)}{clip}; a "
+        "tabulated bias gives no force beyond its grid.")
+    walls = {"lower": None, "upper": None, "k_std": None, "restraint": conf["id"],
+             "restraint_walls": conf["walls"]}
+    return walls, g_lo, g_hi
 
 
 # --------------------------------------------------------------------------
@@ -1575,10 +1685,87 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     decayed = spec.scores.get("integrated_time_decayed")
     options.setdefault("autocorrelation_time_decayed", None if decayed is None else
                        bool(decayed))
-    return suggest_hints(spec.states, temperature=temperature, md_step_fs=md_step_fs,
-                         autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
-                         barrier=barrier, kernel=kernel, periodic=bool(spec.periodic),
-                         **options)
+    confinement, unused = _funnel_confinement(spec)
+    if confinement is not None:
+        options.setdefault("confinement", confinement)
+    hints = suggest_hints(spec.states, temperature=temperature, md_step_fs=md_step_fs,
+                          autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
+                          barrier=barrier, kernel=kernel, periodic=bool(spec.periodic),
+                          **options)
+    hints["warnings"] += unused
+    return hints
+
+
+def _funnel_confinement(spec):
+    """The :func:`suggest_hints` `confinement` of the spec's funnel restraint, when its CV
+    is the distance between the restraint's group centres; and warnings for the funnels
+    whose CV is not (the hints then cannot take walls or grid from them)."""
+    funnels = [r for r in spec.restraints if r["kind"] == "funnel"]
+    if not funnels:
+        return None, []
+    terms, descriptors = spec.terms, {d["id"]: d for d in spec.descriptors}
+    desc = descriptors[terms[0]["descriptor"]] if len(terms) == 1 else None
+    groups = None
+    if (desc is not None and desc["kind"] == "center_distance"
+            and desc.get("weighting", "geometric") == "geometric"
+            and terms[0]["transform"] == "identity"):
+        groups = sorted(sorted(g) for g in desc["groups"])
+    match = [r for r in funnels if groups is not None
+             and sorted(sorted(g) for g in r["groups"]) == groups]
+    unused = [
+        f"the spec carries the funnel restraint {r['id']!r}, but its CV is not the distance "
+        "between the geometric centres of the restraint's two groups, so the walls and grid "
+        "cannot be taken from the funnel and come from the states' spreads: check that they "
+        "do not hold the ligand in the pocket, and set them over the funnel's extent "
+        f"(lower_wall_z_nm {r['lower_wall_z_nm']:.4g} to upper_wall_z_nm "
+        f"{r['upper_wall_z_nm']:.4g} nm along its axis) in the CV's units yourself"
+        for r in funnels if r not in match]
+    if not match:
+        return None, unused
+    from .funnel import funnel_radius, funnel_reach
+
+    res = match[0]
+    z_lo, z_hi = res["lower_wall_z_nm"], res["upper_wall_z_nm"]
+    reach, where = funnel_reach(res)
+    # The nearest point of the funnel to the pocket centre lies on its axis.
+    if z_lo <= 0.0 <= z_hi:
+        near, near_text = 0.0, (f"from 0 (the lower wall, at z = {z_lo:.4g} nm, lies below "
+                                "the pocket centre)")
+    elif z_lo > 0.0:
+        near, near_text = z_lo, f"from {z_lo:.4g} nm (its lower wall, on the axis)"
+    else:
+        near, near_text = -z_hi, f"from {-z_hi:.4g} nm (its upper wall, on the axis)"
+    term = terms[0]
+    ends = [spec.offset + term["weight"] * (v - term["center"]) / term["scale"]
+            for v in (near, reach)]
+    lower, upper = min(ends), max(ends)
+    unit = "nm" if (term["weight"], term["center"], term["scale"]) == (1.0, 0.0, 1.0) \
+        and spec.offset == 0.0 else "nm before the CV's scaling"
+    radius = float(funnel_radius([z_hi], res)[0][0])
+    return {
+        "id": res["id"], "lower": lower, "upper": upper,
+        "walls": (f"its walls at z = {z_lo:.4g} and {z_hi:.4g} nm along its axis from the "
+                  f"pocket centre, its cone and its cylinder of radius {radius:.4g} nm"),
+        "reasoning": (
+            f"Restraint {res['id']!r}, a funnel, holds the ligand centre within a cone and "
+            f"cylinder; the CV, the distance between the pocket and ligand centres, can take "
+            f"inside it the values {near_text} up to {reach:.4g} {unit}, the funnel's reach "
+            f"(its farthest point from the pocket centre, on the rim of its {where}) [derived "
+            f"from the restraint]: [{lower:.4g}, {upper:.4g}] CV units."),
+        "fill_note": (
+            "Fill times with a funnel: each state's row is the time to fill that state's "
+            "basin, modelled as harmonic with the spread of its frames, up to the barrier "
+            "estimate: roughly the time until the ligand first leaves it (for the bound "
+            "state, the first unbinding). It is not the time to a converged binding free "
+            "energy, which takes many unbinding and rebinding events across the funnel's "
+            "cylinder; the frames of the spec say nothing of the free energy beyond their "
+            "basins, so no estimate of that is given. The barrier estimate, and with it the "
+            "bias factor, is the free energy of the ligand out in the funnel's cylinder "
+            "above the bound basin plus any barrier on the way out; the bound frames do not "
+            "measure it: take it from an estimate of the binding free energy, and expect "
+            "to raise the bias factor if the ligand has not come back within the run [our "
+            "model]."),
+    }, unused
 
 
 def format_hints(hints):
@@ -1636,6 +1823,9 @@ def format_hints(hints):
     walls = hints["walls"]
     if walls is None:
         out.append("walls            none (periodic CV)")
+    elif walls.get("restraint") is not None:
+        out.append(f"walls            none on the CV: restraint {walls['restraint']!r} confines "
+                   f"it ({walls['restraint_walls']})")
     elif walls["lower"] is None and walls["upper"] is None:
         out.append("walls            none needed (both would stand at or beyond the CV's "
                    "reachable ends)")
@@ -1647,6 +1837,8 @@ def format_hints(hints):
     out.append(f"grid             [{_g(gr['lower'])}, {_g(gr['upper'])}], {gr['n_bins']} bins "
                f"of {_g(gr['spacing'])}" + (" (periodic)" if gr["periodic"] else "")
                + ("; spans every value the CV can reach" if covers else
+                  f"; spans every value restraint {walls['restraint']!r} allows"
+                  if gr.get("covers_restraint") else
                   "; does NOT span every value the CV can reach (see the reasoning)"
                   if covers is False else ""))
     reach, seen = inp.get("cv_range"), inp.get("observed_range")
@@ -1656,7 +1848,10 @@ def format_hints(hints):
                       f"[{_end(reach[0], '-inf')}, {_end(reach[1], '+inf')}]")
                    + ", observed " + ("not given" if seen is None else
                                       f"[{_g(seen[0])}, {_g(seen[1])}]"))
-    out += ["", "Fill time per state (harmonic-basin model; order of magnitude):",
+    note = hints["fill_time"].get("note")
+    out += ["", "Fill time per state (harmonic-basin model; order of magnitude"
+            + ("; the time to leave the state, e.g. the first unbinding, not to converge a "
+               "binding free energy; see the reasoning):" if note else "):"),
             "  state            level (kJ/mol)  bias factor  metadynamics    well-tempered"]
     for name, rows in hints["fill_time"]["states"].items():
         for r in rows:

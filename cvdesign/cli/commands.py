@@ -320,8 +320,12 @@ def build_parser():
                     "from the within-state spread, deposition interval (MD steps) from the CV's "
                     "within-run decorrelation time, kernel height and well-tempered bias factor "
                     "(kJ/mol) for a barrier estimate (or a table over estimates), walls and a "
-                    "grid, and how long filling each basin would take. Starting points to "
-                    "validate, not guarantees.")
+                    "grid, and how long filling each basin would take. For a spec with a "
+                    "funnel restraint ('cvdesign funnel') whose CV is the distance between its "
+                    "group centres, no wall is put on the CV (the funnel confines it) and the "
+                    "grid spans every distance the funnel allows; a spec with a single state "
+                    "and no such restraint gets a warning: walls around that state would keep "
+                    "the bias in it. Starting points to validate, not guarantees.")
     p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json)")
     p.add_argument("--temperature", type=_positive_float, required=True, metavar="K",
                    help="temperature of the biased run, K (1 to 5000 K accepted)")
@@ -346,7 +350,9 @@ def build_parser():
                     "periodic boundaries do not inflate the funnel; the funnel is expressed in "
                     "that reference frame, and the biased run must hold the pocket in that "
                     "orientation. A warning says when the funnel reaches beyond half the "
-                    "smallest box height. Starting points to validate, not guarantees.")
+                    "smallest box height, or when the bound ligand sits on average below the "
+                    "pocket centre along the axis (the funnel would open away from it). "
+                    "Starting points to validate, not guarantees.")
     p.add_argument("--topology", required=True, metavar="TOP", help="topology file")
     p.add_argument("--bound", nargs="+", required=True, metavar="FILE",
                    help="trajectories of the bound state (any format mdtraj reads); the first "
@@ -359,7 +365,9 @@ def build_parser():
                         "frame of the funnel)")
     p.add_argument("--exit-point", nargs=3, type=float, metavar=("X", "Y", "Z"), default=None,
                    help="a point in nm, toward the solvent, the axis passes through, in the "
-                        "coordinates of the first bound frame")
+                        "coordinates of the first bound frame; in a periodic box it must lie "
+                        "within half the smallest box height of that frame's pocket centre "
+                        "(farther, its direction is ambiguous under periodic images: refused)")
     p.add_argument("--k-wall", type=float, default=2000.0, metavar="KJ_PER_MOL_NM2",
                    help="force constant of the funnel walls, kJ/mol/nm^2 (default: 2000; at "
                         "300 K the ligand centre then enters a wall by about 0.035 nm at kT)")
