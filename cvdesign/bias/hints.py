@@ -1615,6 +1615,17 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     grid spans its whole reachable range, a periodic CV's grid the period its
     values run over, and no wall stands at or beyond a reachable end.
 
+    A funnel restraint (``spec.restraints``, as ``cvdesign funnel`` writes)
+    whose two groups are those of the CV, the distance between their
+    geometric centres (one identity term), confines the CV: no wall is put on
+    the CV, and the grid spans every value the funnel allows, from its lower
+    wall (0 when that lies below the pocket centre) to its reach
+    (:func:`cvdesign.bias.funnel.funnel_reach`), in the CV's units (the
+    ``confinement`` of :func:`suggest_hints`); the reasoning says so, and what
+    the fill times mean then (the time to leave a state, e.g. the first
+    unbinding, not to converge a binding free energy). A funnel on other
+    groups gets a warning, and the walls come from the states.
+
     Parameters
     ----------
     spec : cvdesign.Spec
