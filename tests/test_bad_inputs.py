@@ -940,7 +940,7 @@ def test_apply_force_replaces_an_earlier_output_and_nothing_else(shared, tmp_pat
     out = Path(ctx.file("values.csv", "earlier results\n"))
     assert main(ctx.apply("--out", str(out), "--force")) == 0
     rows = out.read_text().splitlines()
-    assert rows[0] == "file,frame,time_ps,value" and len(rows) == 2001
+    assert rows[0] == "file,frame,time_ps,value,undefined" and len(rows) == 2001
     assert sorted(p.name for p in tmp_path.iterdir()) == ["values.csv"]
     assert "wrote" in capsys.readouterr().err
 

@@ -36,7 +36,8 @@ def test_suggest_then_apply_end_to_end(demo_files, tmp_path, capsys):
     assert main(["apply", str(out / "cv-01.json"), "--topology", top, states["closed"][0],
                  states["open"][0], "--out", str(csv_out)]) == 0
     rows = list(csv.DictReader(csv_out.open()))
-    assert list(rows[0]) == ["file", "frame", "time_ps", "value"]
+    assert list(rows[0]) == ["file", "frame", "time_ps", "value", "undefined"]
+    assert {r["undefined"] for r in rows} == {""}  # every descriptor defined
     spec = json.loads((out / "cv-01.json").read_text())
     closed = np.array([float(r["value"]) for r in rows if r["file"].startswith("closed")])
     opened = np.array([float(r["value"]) for r in rows if r["file"].startswith("open")])
@@ -231,8 +232,12 @@ def test_geometry_warnings_go_through_the_command_s_log_on_stderr(tmp_path, caps
     pdb, spec = _three_atoms_with_two_coincident(tmp_path)
     assert main(["apply", str(spec), "--topology", str(pdb), str(pdb)]) == 0
     captured = capsys.readouterr()
-    assert ("cvdesign apply: warning: angles: 1 of 1 values are undefined (an arm has zero "
-            "length); they were set to pi/2") in captured.err
+    assert ("cvdesign apply: warning: lig.pdb: 1 of 1 frames (frame 0) hold a stand-in value "
+            "for an undefined descriptor of the CV: angle 'a' (an arm of zero length: set to "
+            "pi/2 rad)") in captured.err
     assert "GeometryWarning" not in captured.err  # not Python's file:line form
+    assert captured.out.splitlines()[1].endswith(",a")  # the undefined column
     assert main(["-q", "apply", str(spec), "--topology", str(pdb), str(pdb)]) == 0
-    assert "warning" not in capsys.readouterr().err  # -q hides warnings
+    captured = capsys.readouterr()
+    assert "warning" not in captured.err  # -q hides warnings, not the column
+    assert captured.out.splitlines()[1].endswith(",a")

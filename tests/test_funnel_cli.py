@@ -263,3 +263,26 @@ def test_funnel_command_accepts_the_bias_options_of_suggest(host_guest, tmp_path
     sizing = doc["hints"]["funnel_sizing"]
     assert 0 < sizing["observed"]["effective_sample_size"]["bound"] < 800
     assert sizing["observed"]["reweighting_temperature_k"] == 310.0
+
+
+def test_k_wall_help_and_the_specs_rule_give_the_rms_penetration_sqrt_kt_over_k(
+        host_guest, tmp_path, capsys):
+    # A harmonic wall k/2 x^2 at temperature T: the Boltzmann density exp(-k x^2 / 2kT)
+    # inside it has rms penetration sqrt(kT / k); x reaches sqrt(2 kT / k) at energy kT
+    # (the equipartition of a harmonic degree of freedom, from memory).
+    from cvdesign.constants import BOLTZMANN_KJ_MOL_K
+
+    kt = BOLTZMANN_KJ_MOL_K * 300.0
+    with pytest.raises(SystemExit):
+        main(["funnel", "--help"])
+    text = " ".join(capsys.readouterr().out.split())
+    assert "(default: 2000; at 300 K the ligand centre's rms penetration" in text
+    rms, at_kt = np.sqrt(kt / 2000.0), np.sqrt(2.0 * kt / 2000.0)
+    assert f"rms penetration into a wall, sqrt(kT / k), is {rms:.3f} nm" in text
+    assert f"it reaches sqrt(2 kT / k) = {at_kt:.3f} nm at an energy of kT" in text
+    assert (f"{rms:.3f}", f"{at_kt:.3f}") == ("0.035", "0.050")
+    out = tmp_path / "f.json"
+    assert _run(host_guest, out, "--k-wall", "500", "--no-report") == 0
+    capsys.readouterr()
+    rule = json.loads(out.read_text())["hints"]["funnel_sizing"]["wall_force_constant_rule"]
+    assert f"sqrt(kT / k), is {np.sqrt(kt / 500.0):.3f} nm" in rule and "0.071 nm" in rule

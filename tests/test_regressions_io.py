@@ -375,7 +375,7 @@ def test_apply_to_a_file_writes_the_csv_and_leaves_no_temporary_file(demo_files,
     assert main(["apply", str(small_spec_path), "--topology", top, states["closed"][0],
                  "--out", str(out)]) == 0
     assert _listing(tmp_path) == ["values.csv"]
-    assert out.read_text().splitlines()[0] == "file,frame,time_ps,value"
+    assert out.read_text().splitlines()[0] == "file,frame,time_ps,value,undefined"
     assert len(out.read_text().splitlines()) == 2001
     assert capsys.readouterr().err == f"wrote {out}\n"
 
@@ -423,7 +423,7 @@ def test_console_script_apply_on_a_dcd_prints_clean_csv_with_empty_times(console
     assert res.returncode == 0, res.stderr
     lines = res.stdout.splitlines()
     # mdtraj's DCD reader prints 'dcdplugin) ...' lines from C; none may reach the CSV.
-    assert lines[0] == "file,frame,time_ps,value"
+    assert lines[0] == "file,frame,time_ps,value,undefined"
     assert "dcdplugin" not in res.stdout
     rows = list(csv.DictReader(io.StringIO(res.stdout)))
     assert len(rows) == 98

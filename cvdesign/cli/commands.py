@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from .._version import __version__
-from ..constants import COORDINATION_EXPONENTS, COORDINATION_R0_NM
+from ..constants import BOLTZMANN_KJ_MOL_K, COORDINATION_EXPONENTS, COORDINATION_R0_NM
 from ..errors import CVDesignError, InputError
 from ..io.bias import is_number as _is_number
 from ..kinds import DEFAULT_KINDS, KINDS
@@ -194,6 +194,27 @@ def _add_no_report(p, where):
                         "self-contained page; 'cvdesign report' builds it later)")
 
 
+#: Default force constant of the funnel walls (--k-wall), kJ/mol/nm^2.
+_K_WALL = 2000.0
+
+
+def _wall_penetration(k):
+    """How far the ligand centre enters a harmonic wall of force constant `k` (kJ/mol/nm^2) at
+    300 K: the rms penetration of the frames inside it, sqrt(kT / k), and the depth at an
+    energy of kT, sqrt(2 kT / k) (Boltzmann distribution in a harmonic well, from memory).
+
+    Examples
+    --------
+    >>> _wall_penetration(2000.0)  # doctest: +NORMALIZE_WHITESPACE
+    "at 300 K the ligand centre's rms penetration into a wall, sqrt(kT / k), is 0.035 nm; it
+    reaches sqrt(2 kT / k) = 0.050 nm at an energy of kT"
+    """
+    rms = math.sqrt(BOLTZMANN_KJ_MOL_K * 300.0 / k)
+    return (f"at 300 K the ligand centre's rms penetration into a wall, sqrt(kT / k), is "
+            f"{rms:.3f} nm; it reaches sqrt(2 kT / k) = {math.sqrt(2.0) * rms:.3f} nm at an "
+            "energy of kT")
+
+
 def _add_verbosity(p, suffix=""):
     """-v/--verbose and -q/--quiet, counted (before the command: dest with `suffix`)."""
     p.add_argument("-v", "--verbose", action="count", default=0, dest="verbose" + suffix,
@@ -201,8 +222,13 @@ def _add_verbosity(p, suffix=""):
                         "over the trajectories is split)")
     p.add_argument("-q", "--quiet", action="count", default=0, dest="quiet" + suffix,
                    help="print nothing on standard error but errors: no progress bars, "
-                        "notes or warnings (the output files keep the warnings); suggest and "
-                        "demo print only the final table and the caution")
+                        "notes or warnings; suggest and demo print only the final table and "
+                        "the caution. The outputs keep what they must: apply's CSV marks the "
+                        "frames whose value stands in for undefined geometry (column "
+                        "undefined), check prints them; hints, funnel and suggest keep their "
+                        "warnings in their outputs (suggest: summary.md and the specs; not "
+                        "its warnings about undefined angles or dihedrals in the input frames, "
+                        "which only standard error shows)")
 
 
 def build_parser():
@@ -268,7 +294,12 @@ def build_parser():
         description="Evaluate the CV of a spec file frame by frame from coordinates alone "
                     "(no refitting). Prints CSV with columns file, frame (0-based), time_ps "
                     "(simulation time in ps; empty for formats that store no times, such as "
-                    "DCD), value (the CV, in the units of the spec).")
+                    "DCD), value (the CV, in the units of the spec), undefined (empty, or the "
+                    "ids of the CV's descriptors that are undefined in that frame, "
+                    "space-separated: an angle with an arm of zero length or a dihedral with "
+                    "collinear or coincident atoms, for which the evaluator used pi/2 or 0 "
+                    "rad, so that the frame's value is not a measurement of the CV; a warning "
+                    "on standard error names such frames, and -q leaves the column alone).")
     p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json) written by suggest")
     p.add_argument("--topology", required=True, metavar="TOP",
                    help="topology file; it must match the one the spec was made for")
@@ -368,9 +399,9 @@ def build_parser():
                         "coordinates of the first bound frame; in a periodic box it must lie "
                         "within half the smallest box height of that frame's pocket centre "
                         "(farther, its direction is ambiguous under periodic images: refused)")
-    p.add_argument("--k-wall", type=float, default=2000.0, metavar="KJ_PER_MOL_NM2",
-                   help="force constant of the funnel walls, kJ/mol/nm^2 (default: 2000; at "
-                        "300 K the ligand centre then enters a wall by about 0.035 nm at kT)")
+    p.add_argument("--k-wall", type=float, default=_K_WALL, metavar="KJ_PER_MOL_NM2",
+                   help=f"force constant of the funnel walls, kJ/mol/nm^2 (default: {_K_WALL:g}; "
+                        f"{_wall_penetration(_K_WALL)})")
     p.add_argument("--out", required=True, metavar="FILE.json",
                    help="output spec: the distance between the pocket and ligand centres as "
                         "the CV, with the funnel as a restraint entry; NAME-report-data.json "
@@ -735,6 +766,57 @@ def _cmd_suggest(args):
     return 0 if report_ok else 2
 
 
+class _Undefined:
+    """Frames of one trajectory file where a descriptor of the CV is undefined (an angle with
+    an arm of zero length, a dihedral with collinear or coincident atoms) and the evaluator's
+    stand-in value (pi/2, 0) went into the CV: such a value is not a measurement of the CV."""
+
+    #: What stands in for an undefined descriptor of each kind, and why it is undefined.
+    STAND_IN = {"angle": ("pi/2", "an arm of zero length"),
+                "dihedral": ("0", "three consecutive atoms collinear or two coincident")}
+
+    def __init__(self, spec, name):
+        used = {t["descriptor"] for t in spec.terms}
+        self.ids = [d["id"] for d in spec.descriptors]
+        self.kinds = [d["kind"] for d in spec.descriptors]
+        self.used = np.array([i in used for i in self.ids], dtype=bool)
+        self.spec, self.name = spec, name
+        self.frames, self.columns, self.n_frames = [], set(), 0
+
+    def evaluate(self, traj, frames):
+        """(CV values, per frame the space-separated ids of the CV's undefined descriptors)
+        of a chunk `traj` whose frames are `frames` of the file."""
+        from ..geometry import GeometryWarning
+
+        with warnings.catch_warnings():  # said once per file, with the file's frame numbers
+            warnings.simplefilter("ignore", GeometryWarning)
+            values, undefined = self.spec.evaluate(traj.xyz, box=traj.unitcell_vectors,
+                                                   undefined=True)
+        undefined &= self.used
+        marks = [""] * len(values)
+        for i in np.flatnonzero(undefined.any(axis=1)):
+            cols = np.flatnonzero(undefined[i])
+            self.columns.update(int(k) for k in cols)
+            self.frames.append(int(frames[i]))
+            marks[i] = " ".join(self.ids[k] for k in cols)
+        self.n_frames += len(values)
+        return values, marks
+
+    def message(self, limit=10):
+        """One line saying which frames hold stand-in values, or None when none does."""
+        if not self.frames:
+            return None
+        shown = ", ".join(str(f) for f in self.frames[:limit])
+        more = f", ... ({len(self.frames) - limit} more)" if len(self.frames) > limit else ""
+        what = "; ".join(f"{self.kinds[k]} {self.ids[k]!r} ({self.STAND_IN[self.kinds[k]][1]}: "
+                         f"set to {self.STAND_IN[self.kinds[k]][0]} rad)"
+                         for k in sorted(self.columns))
+        return (f"{self.name}: {len(self.frames)} of {self.n_frames} frames "
+                f"(frame{'s' if len(self.frames) > 1 else ''} {shown}{more}) "
+                f"hold a stand-in value for an undefined descriptor of the CV: {what}. Their CV "
+                "values are not measurements; check these frames' coordinates and the topology")
+
+
 def _cmd_apply(args):
     from ..io.atomic import atomic_open, check_output_file
     from ..io.source import Source, stores_time
@@ -754,26 +836,33 @@ def _cmd_apply(args):
         _log.warning("%s stores times that do not increase (as some writers do); its time_ps "
                      "column is left empty", source.segments[i].path.name)
 
+    undefined = [_Undefined(spec, seg.path.name) for seg in source.segments]
+
     def rows(fh):
         w = csv.writer(fh, lineterminator="\n")
-        w.writerow(["file", "frame", "time_ps", "value"])
+        w.writerow(["file", "frame", "time_ps", "value", "undefined"])
         for chunk in source.iter_chunks():
             traj = chunk.trajectory
-            values = spec.evaluate(traj.xyz, box=traj.unitcell_vectors)
+            values, marks = undefined[chunk.segment_index].evaluate(traj, chunk.frames)
             path = source.segments[chunk.segment_index].path
             timed = stores_time(path) and chunk.segment_index not in untimed
-            for fr, t, v in zip(chunk.frames, traj.time, values):
-                w.writerow([path.name, int(fr), repr(float(t)) if timed else "", repr(float(v))])
+            for fr, t, v, mark in zip(chunk.frames, traj.time, values, marks):
+                w.writerow([path.name, int(fr), repr(float(t)) if timed else "", repr(float(v)),
+                            mark])
 
     if args.out is None:
         buf = io.StringIO()
         rows(buf)  # evaluate everything first: an error leaves standard output clean
-        sys.stdout.write(buf.getvalue())
     else:
         with atomic_open(args.out, "w", encoding="utf-8", newline="\n") as fh:
             rows(fh)
-        if not args.quiet:
-            print(f"wrote {args.out}", file=sys.stderr)
+    for file in undefined:  # the CSV's undefined column names them frame by frame
+        if file.message() is not None:
+            _log.warning("%s (their undefined column names the descriptors)", file.message())
+    if args.out is None:
+        sys.stdout.write(buf.getvalue())
+    elif not args.quiet:
+        print(f"wrote {args.out}", file=sys.stderr)
     return 0
 
 
@@ -888,16 +977,21 @@ _RANGE_SLACK = 1e-9
 
 
 def _reference_values(spec, topology, traj):
-    """The spec's reference values on every frame of `traj`, and the frame numbers."""
+    """The spec's reference values on every frame of `traj`, the frame numbers, and the set of
+    frames that hold stand-in values for undefined descriptors (a line on standard output
+    names them)."""
     from ..io.source import Source
 
     src = Source(topology)
     src.add(traj, state="check")
     ours, idx = [], []
+    undefined = _Undefined(spec, traj)
     for chunk in src.iter_chunks():
-        ours.append(spec.evaluate(chunk.trajectory.xyz, box=chunk.trajectory.unitcell_vectors))
+        ours.append(undefined.evaluate(chunk.trajectory, chunk.frames)[0])
         idx.append(chunk.frames)
-    return np.concatenate(ours), np.concatenate(idx)
+    if undefined.message() is not None:
+        print(f"warning: {undefined.message()} (an engine may give these frames other values)")
+    return np.concatenate(ours), np.concatenate(idx), set(undefined.frames)
 
 
 def _outside(values, lower, upper, slack):
@@ -985,12 +1079,12 @@ def _cmd_check(args):
                                                                     else 1.0)
     in_range = True
     for traj in args.trajectory or []:
-        ours, idx = _reference_values(spec, source.topology, traj)
+        ours, idx, _ = _reference_values(spec, source.topology, traj)
         in_range &= _range_check(reach, seen, traj, ours, idx)
     worst_all = 0.0
     for values_path, traj in args.against or []:
         frames, theirs = _read_values(values_path, args.column)
-        ours, idx = _reference_values(spec, source.topology, traj)
+        ours, idx, stand_in = _reference_values(spec, source.topology, traj)
         in_range &= _range_check(reach, seen, traj, ours, idx)
         if frames is None:
             if theirs.size != ours.size:
@@ -1020,7 +1114,9 @@ def _cmd_check(args):
         for i in order:
             if dev[i] > tol or i == order[0]:
                 print(f"    frame {int(frame_of[i])}: engine {float(theirs[i])!r}, reference "
-                      f"{float(ref[i])!r}, deviation {float(dev[i]):.3g}")
+                      f"{float(ref[i])!r}, deviation {float(dev[i]):.3g}"
+                      + (" (the reference holds a stand-in value for an undefined descriptor; "
+                         "see the warning above)" if int(frame_of[i]) in stand_in else ""))
     agree = worst_all <= tol
     if not in_range:
         print("FAIL: values outside the CV's reachable range (see ERROR above)"
@@ -1203,8 +1299,8 @@ def _funnel_spec(source, args, lig, pocket, result):
     sizing["reference"] = {"file": Path(args.bound[0]).name, "frame": 0,
                            "pocket_center_nm": result["reference_center_nm"]}
     sizing["wall_force_constant_rule"] = (
-        "wall_force_constant_kj_mol_nm2: stiff enough that the ligand centre enters a wall by "
-        "only sqrt(kT / k) (0.035 nm at 300 K for 2000 kJ/mol/nm^2; common practice)")
+        "wall_force_constant_kj_mol_nm2: stiff enough that the ligand centre enters a wall only "
+        f"a little (common practice): {_wall_penetration(float(args.k_wall))}")
     return Spec(
         name="funnel", topology=top,
         descriptors=[{"id": "center_distance:pocket-ligand", "kind": "center_distance",

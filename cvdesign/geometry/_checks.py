@@ -74,7 +74,7 @@ def _first_row(mask):
     return frame, row
 
 
-def _warn_singular(mask, idx, what, reason, substitute, name):
+def _warn_singular(mask, idx, what, reason, substitute, name, stacklevel=3):
     count = int(mask.sum())
     frame, row = _first_row(mask)
     warnings.warn(
@@ -82,11 +82,11 @@ def _warn_singular(mask, idx, what, reason, substitute, name):
         f"set to {substitute}. First: frame {frame}, "
         f"{name}[{row}] = atoms {idx[row].tolist()}",
         GeometryWarning,
-        stacklevel=3,
+        stacklevel=stacklevel,
     )
 
 
-def _warn_gradient(mask, what, reason, where):
+def _warn_gradient(mask, what, reason, where, stacklevel=3):
     """Warn that the gradient of some values is undefined and was set to 0.
 
     `where(row)` describes the item of the first affected row.
@@ -97,7 +97,7 @@ def _warn_gradient(mask, what, reason, where):
         f"{what}: the gradient of {count} of {mask.size} values is undefined ({reason}); "
         f"it was set to 0. First: frame {frame}, {where(row)}",
         GeometryWarning,
-        stacklevel=3,
+        stacklevel=stacklevel,
     )
 
 

@@ -270,6 +270,13 @@ def angles(xyz, triples, box=None, *, gradient=False):
     >>> grad[0, 0, 0]  # moving atom i towards -y, away from atom k, opens the angle
     array([ 0., -1.,  0.])
     """
+    value, grad, _ = _angles(xyz, triples, box, gradient)
+    return value if not gradient else (value, grad)
+
+
+def _angles(xyz, triples, box, gradient):
+    """(values, gradient or None, undefined) of :func:`angles`, with its warnings;
+    ``undefined`` (n_frames, n_angles) is True where pi/2 was substituted."""
     idx, bonds = _bond_vectors(xyz, triples, 3, box, "triples")
     if not gradient:
         value, singular = _angle_from_bonds(bonds)
@@ -277,13 +284,14 @@ def angles(xyz, triples, box=None, *, gradient=False):
         value, singular, grad, collinear = _angle_from_bonds(bonds, gradient=True)
     if np.any(singular):
         substitute = "pi/2 (gradient 0)" if gradient else "pi/2"
-        _warn_singular(singular, idx, "angles", "an arm has zero length", substitute, "triples")
+        _warn_singular(singular, idx, "angles", "an arm has zero length", substitute, "triples",
+                       stacklevel=4)
     if not gradient:
-        return value
+        return value, None, singular
     if np.any(collinear):
         _warn_gradient(collinear, "angles", "three collinear atoms, angle 0 or pi",
-                       lambda row: f"triples[{row}] = atoms {idx[row].tolist()}")
-    return value, grad
+                       lambda row: f"triples[{row}] = atoms {idx[row].tolist()}", stacklevel=4)
+    return value, grad, singular
 
 
 def dihedrals(xyz, quads, box=None, *, gradient=False):
@@ -351,12 +359,20 @@ def dihedrals(xyz, quads, box=None, *, gradient=False):
     >>> grad.shape, bool(np.abs(grad.sum(axis=2)).max() < 1e-12)  # no net force
     ((1, 1, 4, 3), True)
     """
+    value, grad, _ = _dihedrals(xyz, quads, box, gradient)
+    return (value, grad) if gradient else value
+
+
+def _dihedrals(xyz, quads, box, gradient):
+    """(values, gradient or None, undefined) of :func:`dihedrals`, with its warning;
+    ``undefined`` (n_frames, n_dihedrals) is True where 0 was substituted."""
     idx, bonds = _bond_vectors(xyz, quads, 4, box, "quads")
     if not gradient:
-        value, singular = _dihedral_from_bonds(bonds)
+        (value, singular), grad = _dihedral_from_bonds(bonds), None
     else:
         value, singular, grad = _dihedral_from_bonds(bonds, gradient=True)
     if np.any(singular):
         substitute = "0 (gradient 0)" if gradient else "0"
-        _warn_singular(singular, idx, "dihedrals", "collinear or coincident atoms", substitute, "quads")
-    return (value, grad) if gradient else value
+        _warn_singular(singular, idx, "dihedrals", "collinear or coincident atoms", substitute,
+                       "quads", stacklevel=4)
+    return value, grad, singular

@@ -14,6 +14,7 @@ import mdtraj as md
 import numpy as np
 
 from .. import geometry
+from ..geometry.internal import _angles, _dihedrals
 from .._version import __version__
 from ..constants import COORDINATION_EXPONENTS, TWO_PI, UNITS
 from ..errors import InputError, SpecError, TopologyMismatchError
@@ -627,22 +628,28 @@ class Spec:
         for the tuple kinds one block per kind with ``atoms`` of shape
         (n, width) and ``grad`` (n_frames, n, width, 3); for the group kinds
         one block per descriptor with ``atoms`` (n_a + n_b,) and ``grad``
-        (n_frames, n_a + n_b, 3).
+        (n_frames, n_a + n_b, 3). The third item, ``undefined`` (n_frames,
+        n_descriptors), is True where a descriptor's value is undefined and a
+        fixed one was substituted (angles, dihedrals; see :meth:`evaluate`).
         """
         descs = self._doc["descriptors"]
         values = np.empty((arr.shape[0], len(descs)), dtype=np.float64)
+        undefined = np.zeros(values.shape, dtype=bool)
         blocks = []
-        functions = {"distance": geometry.distances, "angle": geometry.angles, "dihedral": geometry.dihedrals}
+        functions = {"distance": geometry.distances, "angle": _angles, "dihedral": _dihedrals}
         for kind, function in functions.items():
             cols = [k for k, d in enumerate(descs) if d["kind"] == kind]
             if not cols:
                 continue
             atoms = np.array([descs[k]["atoms"] for k in cols], dtype=np.int64)
-            if gradient:
+            if kind != "distance":  # (a distance is always defined)
+                values[:, cols], grad, undefined[:, cols] = function(arr, atoms, box, gradient)
+            elif gradient:
                 values[:, cols], grad = function(arr, atoms, box=box, gradient=True)
-                blocks.append((cols, atoms, grad))
             else:
                 values[:, cols] = function(arr, atoms, box=box)
+            if gradient:
+                blocks.append((cols, atoms, grad))
         for k, desc in enumerate(descs):
             if desc["kind"] not in GROUP_KINDS:
                 continue
@@ -659,7 +666,7 @@ class Spec:
                 blocks.append(([k], np.array(group_a + group_b, dtype=np.int64)[None, :], grad[:, None]))
             else:
                 values[:, k] = out
-        return values, blocks
+        return values, blocks, undefined
 
     def descriptor_values(self, xyz, box=None):
         """Values of every descriptor of the spec, frame by frame.
@@ -701,7 +708,7 @@ class Spec:
         arr, box = self._coordinates(xyz, box)
         return self._descriptor_blocks(arr, box, gradient=False)[0]
 
-    def evaluate(self, xyz, box=None, gradient=False):
+    def evaluate(self, xyz, box=None, gradient=False, undefined=False):
         """The CV value of every frame, and optionally its gradient, from coordinates alone.
 
         Parameters
@@ -715,6 +722,10 @@ class Spec:
             no periodicity (or, for a trajectory, its own unit cell).
         gradient : bool, default=False
             Also return the analytic gradient of the CV.
+        undefined : bool, default=False
+            Also return where a descriptor's value is undefined and a fixed
+            value stands in for it (see Warns), so that such frames can be
+            marked: their CV value is not a measurement.
 
         Returns
         -------
@@ -729,13 +740,21 @@ class Spec:
             to the minimum images the descriptors use, which is what an engine
             applies. Analytic (see :mod:`cvdesign.geometry`), chained through
             the transforms: ``d cos(d) = -sin(d) dd``, ``d sin(d) = cos(d) dd``.
+        undefined : ndarray of shape (n_frames, n_descriptors), bool
+            Only with ``undefined=True`` (last): True where the value of the
+            descriptor (columns in the order of :attr:`descriptors`) is
+            undefined and was substituted: an angle with an arm of zero
+            length (pi/2), a dihedral with three consecutive atoms collinear
+            or two coincident (0). Distances, center distances and
+            coordination numbers are always defined.
 
         Warns
         -----
         GeometryWarning
             Where a descriptor or its gradient is undefined (coincident atoms,
             collinear angle or dihedral atoms; see :mod:`cvdesign.geometry`):
-            the value is finite and that descriptor's gradient is 0.
+            the value is finite and that descriptor's gradient is 0. Its frame
+            numbers count from the first frame of `xyz`.
 
         Raises
         ------
@@ -770,9 +789,25 @@ class Spec:
         ...                      unitcell_angles=[[90.0, 90.0, 90.0]])
         >>> spec.evaluate(traj).round(6)
         array([0.1])
+
+        An angle whose arm has zero length is undefined; pi/2 stands in for it,
+        and ``undefined=True`` says where:
+
+        >>> spec = Spec(name="a", topology=top,
+        ...             descriptors=[{"id": "a0", "kind": "angle", "atoms": [0, 1, 2]}],
+        ...             terms=[{"descriptor": "a0", "transform": "identity",
+        ...                     "center": 0.0, "scale": 1.0, "weight": 1.0}])
+        >>> xyz = np.array([[[0.1, 0, 0], [0, 0, 0], [0, 0.1, 0]],
+        ...                 [[0.1, 0, 0], [0, 0, 0], [0, 0, 0]]])
+        >>> import warnings
+        >>> with warnings.catch_warnings():
+        ...     warnings.simplefilter("ignore", geometry.GeometryWarning)
+        ...     value, undefined = spec.evaluate(xyz, undefined=True)
+        >>> (value / np.pi).round(6), undefined[:, 0]
+        (array([0.5, 0.5]), array([False,  True]))
         """
         arr, box = self._coordinates(xyz, box)
-        values, blocks = self._descriptor_blocks(arr, box, gradient=bool(gradient))
+        values, blocks, missing = self._descriptor_blocks(arr, box, gradient=bool(gradient))
         column = {d["id"]: k for k, d in enumerate(self._doc["descriptors"])}
         n_frames = values.shape[0]
         cv = np.full(n_frames, self._doc["offset"], dtype=np.float64)
@@ -790,13 +825,16 @@ class Spec:
             else:
                 cv += factor * (d - term["center"])
                 slope[:, k] += factor
-        if not gradient:
-            return cv
-        grad = np.zeros((n_frames, self.n_atoms, 3), dtype=np.float64)
-        for cols, atoms, block in blocks:
-            contribution = slope[:, cols, None, None] * block  # (n_frames, n, width, 3)
-            np.add.at(grad, (slice(None), atoms.ravel()), contribution.reshape(n_frames, -1, 3))
-        return cv, grad
+        out = (cv,)
+        if gradient:
+            grad = np.zeros((n_frames, self.n_atoms, 3), dtype=np.float64)
+            for cols, atoms, block in blocks:
+                contribution = slope[:, cols, None, None] * block  # (n_frames, n, width, 3)
+                np.add.at(grad, (slice(None), atoms.ravel()), contribution.reshape(n_frames, -1, 3))
+            out += (grad,)
+        if undefined:
+            out += (missing,)
+        return out if len(out) > 1 else cv
 
     def restraint_energy(self, xyz, box=None, gradient=False):
         """Energy of the spec's restraints, and optionally its gradient.
