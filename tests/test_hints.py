@@ -670,4 +670,5 @@ def test_a_fast_deposition_rate_gets_a_warning_and_a_usual_one_none():
     (text,) = fast["warnings"]
     assert text.startswith("the bias grows at 6.24 kJ/mol per ps at first (1.25 kJ/mol every "
                            "0.2 ps)")
+    assert "about 624 steps for 1 kJ/mol/ps" in text  # 1.247 ps of 2 fs steps
     assert suggest_hints(STATES, autocorrelation_time_ps=0.3, **kw)["warnings"] == []

@@ -1241,7 +1241,8 @@ def suggest_hints(
             f"the bias grows at {rate:.3g} kJ/mol per ps at first ({height:.3g} kJ/mol every "
             f"{interval_ps:.3g} ps), faster than the usual rate of about 1 kJ/mol/ps (common "
             "practice, from memory): motions slower than the CV lag behind such a bias; "
-            "consider a longer interval or a smaller height")
+            f"consider a longer interval (about {max(1, round(height * 1000.0 / dt_fs)):d} "
+            "steps for 1 kJ/mol/ps) or a smaller height")
 
     # well-tempered bias factor ----------------------------------------------
     def wt_row(dg, gamma):
