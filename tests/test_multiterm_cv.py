@@ -239,6 +239,41 @@ def test_implied_timescales_are_a_direct_computation_on_the_evaluated_runs(toy):
         assert got == pytest.approx(ref, rel=1e-5), lag
 
 
+def _within_runs(runs, lag):
+    """The reversible lagged autocorrelation with each run about its own mean, the runs
+    weighted by their pairs (as docs/report-data-v1.md and docs/ranking-v1.md describe)."""
+    c0 = ct = 0.0
+    for v in runs:
+        x, y = v[:-lag], v[lag:]
+        m = 0.5 * (x.mean() + y.mean())
+        c0 += x.size * (0.5 * (np.mean(x * x) + np.mean(y * y)) - m * m)
+        ct += x.size * (np.mean(x * y) - m * m)
+    return ct / c0
+
+
+def test_implied_timescales_within_states_are_a_direct_computation_on_the_evaluated_runs(
+        toy):
+    """The report's second curve: each run about its own mean (reversible, the runs
+    weighted by their pairs), the relaxation inside the states."""
+    ts = toy["data"]["cvs"][0]["timescales"]
+    runs = list(toy["values"].values())
+    got_any = False
+    for lag_ps, got in zip(ts["lag_ps"], ts["timescale_within_states_ps"]):
+        lag = round(lag_ps / FRAME_PS)
+        rho = _within_runs(runs, lag)
+        if not 0.0 < rho < 1.0:
+            assert got is None, lag
+            continue
+        got_any = True
+        # rho is far from 1 here (the CV relaxes within a few frames in a state), so the
+        # float32 features move the timescale by about their relative error
+        assert got == pytest.approx(-lag * FRAME_PS / math.log(rho), rel=1e-4), lag
+    assert got_any
+    # at the shortest lag, the CV relaxes inside the states far faster than the pooled
+    # curve, which the offset between the states keeps correlated, says
+    assert ts["timescale_within_states_ps"][0] < ts["timescale_ps"][0] / 10
+
+
 def test_integrated_time_is_the_cvs_own_from_a_direct_computation_on_the_evaluated_runs(
         toy):
     """``integrated_time_ps`` of a ranked CV is the CV's own (not its slowest term's):
@@ -248,15 +283,7 @@ def test_integrated_time_is_the_cvs_own_from_a_direct_computation_on_the_evaluat
     entry = toy["ranking"]["ranking"][0]
     runs = list(toy["values"].values())
     grid = iat_lags(np.array([[v.size] for v in runs]))
-    rho = []
-    for lag in grid:
-        c0 = ct = 0.0
-        for v in runs:
-            x, y = v[:-lag], v[lag:]
-            m = 0.5 * (x.mean() + y.mean())
-            c0 += x.size * (0.5 * (np.mean(x * x) + np.mean(y * y)) - m * m)
-            ct += x.size * (np.mean(x * y) - m * m)
-        rho.append(ct / c0)
+    rho = [_within_runs(runs, lag) for lag in grid]
     tau, decayed = integrated_time(grid, np.array(rho)[:, None], FRAME_PS)
     assert entry["frame_spacing_ps"] == FRAME_PS
     assert entry["integrated_time_decayed"] is bool(decayed[0]) is True

@@ -247,8 +247,15 @@ def test_figures_draw_the_numbers_of_the_spec_the_ranking_and_the_score_card(dem
                 for row in card if row["stands_for"]]
     assert list(zip(groups["representatives"], groups["members"])) == expected
     assert expected  # the demo has a redundant pair (a torsion and its 1-4 distance)
-    ts = figs["implied-timescales"].data["curves"]
-    assert ts == {f"rank {c['rank']}": c["timescales"] for c in data["cvs"]}
+    ts = figs["implied-timescales"].data
+    assert ts["curves"] == {f"rank {c['rank']}": {"lag_ps": c["timescales"]["lag_ps"],
+                                                   "timescale_ps": c["timescales"]["timescale_ps"]}
+                            for c in data["cvs"]}
+    # the second panel: within the states (each run about its own mean)
+    assert ts["within"] == {
+        f"rank {c['rank']}": {"lag_ps": c["timescales"]["lag_ps"],
+                              "timescale_ps": c["timescales"]["timescale_within_states_ps"]}
+        for c in data["cvs"]}
 
 
 def test_report_data_agrees_with_the_specs_evaluator_and_the_ranking(demo_out, demo_files):

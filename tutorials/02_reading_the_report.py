@@ -229,6 +229,17 @@ def main(out_dir, keep=True):
               "between the states would measure it.")
     else:
         print("  Conclusion: every CV levels off at a timescale the runs resolve.")
+    # The right panel: each run about its own mean, the relaxation inside the basins. Its
+    # autocorrelations, integrated, give the CV's integrated time in the ranking, from which
+    # the bias hints take the deposition interval.
+    first, entry = rdata["cvs"][0], ranking["ranking"][0]
+    within = first["timescales"]["timescale_within_states_ps"]
+    print(f"    within the states, {first['spec']}: {within[0]:.3g} ps at "
+          f"{first['timescales']['lag_ps'][0]:g} ps lag; its integrated time "
+          f"{entry['integrated_time_ps']:.3g} ps, with frames {entry['frame_spacing_ps']:g} "
+          "ps apart" + (": shorter than the spacing, so the frames do not resolve it (the "
+                        "hints say so)" if entry["integrated_time_ps"] < entry["frame_spacing_ps"]
+                        else ""))
 
     print("\nNot in this demo: with --runs the report adds the frames in the two slowest "
           "TICA coordinates coloured by proposed state, and 'cvdesign funnel' writes a "

@@ -555,7 +555,15 @@ class CVGridPass(LagGridPass):
         return np.subtract(cv, shift, out=cv)
 
 
-def cv_integrated_times(results, lags, dt_ps, n_frames):
+def _within_runs(results):
+    """Autocorrelation of each CV within the runs (each about its own mean) at each lag of
+    :class:`CVGridPass`'s result: shape (n_lags, n_cvs), NaN where undefined."""
+    n = results[0].n_features if results else 0
+    return np.array([local_autocorrelation(r.by_run().values(), n)
+                     for r in results]).reshape(len(results), n)
+
+
+def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None):
     """Each CV's integrated time within the states, from :class:`CVGridPass`.
 
     Every run (segment, state) is taken about its own mean
@@ -574,6 +582,9 @@ def cv_integrated_times(results, lags, dt_ps, n_frames):
         Time between frames, ps.
     n_frames : int
         Frames of all runs (effective sample sizes for reweighted states).
+    grid : array-like of int, optional
+        The lags (among `lags`) to integrate over, e.g. the descriptors' grid when the
+        pass also has the pipeline's lag; None: all.
 
     Returns
     -------
@@ -582,10 +593,13 @@ def cv_integrated_times(results, lags, dt_ps, n_frames):
         window (False: the time is a lower bound), and the 95 % interval (ps;
         None when it did not decay).
     """
-    n = results[0].n_features if results else 0
-    rho = np.array([local_autocorrelation(r.by_run().values(), n) for r in results])
-    tau, decayed, window = integrated_time(lags, rho.reshape(len(results), n), dt_ps,
-                                           return_window=True)
+    lags = np.asarray(lags, dtype=np.intp)
+    rho = _within_runs(results)
+    n = rho.shape[1]
+    if grid is not None:
+        keep = np.isin(lags, np.asarray(grid, dtype=np.intp))
+        lags, rho = lags[keep], rho[keep]
+    tau, decayed, window = integrated_time(lags, rho, dt_ps, return_window=True)
     lo, hi = integrated_time_interval(tau, window, n_frames)
     return [(float(tau[c]), bool(decayed[c]),
              [float(lo[c]), float(hi[c])] if decayed[c] else None) for c in range(n)]
@@ -635,15 +649,23 @@ def _lag_sums(leaf, d, lags):
     return {"count": count, "n_pairs": n_pairs, "sums": sums}
 
 
-def _timescales(lagged, c, lags, dt):
-    """``{"lag_ps", "timescale_ps"}`` of CV `c`, or None when none is defined."""
-    out = []
-    for lag, m in zip(lags, lagged):
-        rho = float(m.autocorrelation()[c]) if m.count > 0 else math.nan
-        out.append(-lag * dt / math.log(rho) if 0.0 < rho < 1.0 else None)
-    if all(v is None for v in out):
+def _implied(rho, lag, dt):
+    """``-lag dt / ln rho``, or None when rho is not in (0, 1)."""
+    return -lag * dt / math.log(rho) if 0.0 < rho < 1.0 else None
+
+
+def _timescales(lagged, c, lags, dt, within=None):
+    """``{"lag_ps", "timescale_ps", "timescale_within_states_ps"}`` of CV `c`, or None when
+    none is defined; `within` (shape (n_lags, n_cvs)): the autocorrelations within runs
+    (None: ``timescale_within_states_ps`` is None)."""
+    out = [_implied(float(m.autocorrelation()[c]) if m.count > 0 else math.nan, lag, dt)
+           for lag, m in zip(lags, lagged)]
+    local = None if within is None else [_implied(float(within[g, c]), lag, dt)
+                                         for g, lag in enumerate(lags)]
+    if all(v is None for v in out + (local or [])):
         return None
-    return {"lag_ps": [float(lag * dt) for lag in lags], "timescale_ps": out}
+    return {"lag_ps": [float(lag * dt) for lag in lags], "timescale_ps": out,
+            "timescale_within_states_ps": local}
 
 
 def _counts(values):
@@ -655,7 +677,7 @@ def _counts(values):
 
 
 def report_document(result, plans, ranking, *, source, states, steps, lags, temperature_k,
-                    lag_ps):
+                    lag_ps, within_states=True):
     """The ``report-data.json`` document of a ``suggest`` run (its ``tica`` is None).
 
     Parameters
@@ -673,6 +695,10 @@ def report_document(result, plans, ranking, *, source, states, steps, lags, temp
     lags : array-like of int or None
         The pass's lags, frames (the same for every segment).
     temperature_k, lag_ps : float or None
+    within_states : bool, default=True
+        Add the implied timescales within the states (``result["cv_grid"]``, each run
+        about its own mean, lags in frames); False for biased runs, whose pooled
+        timescales take their pairs in rescaled time.
 
     Returns
     -------
@@ -685,6 +711,9 @@ def report_document(result, plans, ranking, *, source, states, steps, lags, temp
         by_segment.setdefault(seg, []).append((frames, values, codes))
     dt_all = {round(v, 9) for v in steps.values() if v is not None}
     dt = next(iter(steps.values())) if len(dt_all) == 1 and None not in steps.values() else None
+    within = None
+    if within_states and result.get("cv_grid") is not None:
+        within = _within_runs(result["cv_grid"])
     cvs = []
     for c, (p, entry) in enumerate(zip(plans, ranking)):
         hist = result["hist"][c]
@@ -702,7 +731,7 @@ def report_document(result, plans, ranking, *, source, states, steps, lags, temp
                            "state": names[np.concatenate([s for _, _, s in parts])].tolist()})
         timescales = None
         if lags is not None and result["lagged"] is not None and dt is not None:
-            timescales = _timescales(result["lagged"], c, lags, dt)
+            timescales = _timescales(result["lagged"], c, lags, dt, within)
         cvs.append({"rank": entry["rank"], "spec": entry["spec"], "units": "CV units",
                     "heldout": heldout, "traces": traces, "timescales": timescales})
     return {"format": "cvdesign-report-data", "version": 1, "kind": "suggest",

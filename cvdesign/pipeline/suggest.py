@@ -428,8 +428,9 @@ def _suggest(source, config, executor, progress, checksums):
     cv_times, frame_ps = [None] * len(fits), None
     if held.report is not None and held.report.get("cv_grid") is not None:
         frame_ps = next(iter(steps.values()))  # (the grid needs one known spacing)
-        cv_times = cv_integrated_times(held.report["cv_grid"], _lag_grid(steps, seg_counts),
-                                       frame_ps, _effective_frames(seg_counts, reweighting))
+        cv_times = cv_integrated_times(held.report["cv_grid"], held.report_lags, frame_ps,
+                                       _effective_frames(seg_counts, reweighting),
+                                       grid=_lag_grid(steps, seg_counts))
     run_ps = [_run_frames(source, reweighting, seg_counts, si) * dt for si, dt in steps.items()
               if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
@@ -460,7 +461,8 @@ def _suggest(source, config, executor, progress, checksums):
         report_data = report_document(held.report, held.report_plans, ranking, source=source,
                                       states=list(source.states), steps=steps,
                                       lags=held.report_lags,
-                                      temperature_k=config.temperature_k, lag_ps=lag_ps)
+                                      temperature_k=config.temperature_k, lag_ps=lag_ps,
+                                      within_states=reweighting is None)
     return Suggestions(states=list(source.states), pool=pool, scorecard=scorecard,
                        ranking=ranking, specs=specs, notes=notes, inputs=inputs,
                        input_files=output_inputs(source), objective=config.objective,
@@ -732,8 +734,8 @@ def _report_pass(every, base, screening, fits, fm, folds, lags, seg_counts, step
         featurizer, columns = terms_featurizer(every.pool, cols)
         lagged = (CVLaggedPass(featurizer, plans, report_lags, shift, columns=columns,
                                center=center, scale=scale),
-                  CVGridPass(featurizer, plans, grid, shift, columns=columns, center=center,
-                             scale=scale))
+                  CVGridPass(featurizer, plans, report_lags, shift, columns=columns,
+                             center=center, scale=scale))
     return report, lagged, plans, report_lags
 
 

@@ -741,43 +741,41 @@ def redundancy_groups(groups):
 
 
 # ------------------------------------------------------------------------- slow modes
-def implied_timescales(curves, *, tica=None):
+def implied_timescales(curves, *, tica=None, within=None):
     """Implied timescales against the lag where they were computed.
 
     Parameters
     ----------
     curves : list of (str, list of float, list of float or None)
-        Per ranked CV: ``(label, lag_ps, timescale_ps)``; None where not defined.
-        At most :data:`TIMESCALE_CVS` are drawn.
+        Per ranked CV: ``(label, lag_ps, timescale_ps)``, all runs about their
+        common mean; None where not defined. At most :data:`TIMESCALE_CVS` are
+        drawn.
     tica : dict or None
         ``{"lag_ps": float, "timescales_ps": [float or None]}``: the slow
         coordinates of ``--runs`` at their lag (None: not finite, not drawn).
+    within : list of (str, list of float, list of float or None), optional
+        The same within the states (each run about its own mean), drawn in a
+        second panel: the relaxation inside the basins, which the pooled
+        timescales of runs that stay in their states do not show.
 
     Returns
     -------
     Figure
-        ``data``: ``curves`` (label -> lag_ps, timescale_ps), ``tica``.
+        ``data``: ``curves`` (label -> lag_ps, timescale_ps), ``tica``, ``within``
+        (label -> lag_ps, timescale_ps, or None).
 
     Examples
     --------
-    >>> fig = implied_timescales([("rank 1", [1.0, 2.0, 4.0], [50.0, 52.0, None])])
-    >>> fig.data["curves"]["rank 1"]["timescale_ps"]
-    [50.0, 52.0, None]
+    >>> fig = implied_timescales([("rank 1", [1.0, 2.0, 4.0], [50.0, 52.0, None])],
+    ...                          within=[("rank 1", [1.0, 2.0, 4.0], [0.8, 0.9, None])])
+    >>> fig.data["curves"]["rank 1"]["timescale_ps"], fig.data["within"]["rank 1"]["timescale_ps"]
+    ([50.0, 52.0, None], [0.8, 0.9, None])
     """
-    shown = curves[:TIMESCALE_CVS]
-    drawn = {}
+    within = [w for w in (within or []) if any(t is not None for t in w[2])]
     with _style():
-        fig, ((ax,),) = _new(7.2, 3.0)
-        lags_seen = []
-        for (lab, lags, ts), (col, ls, mk) in zip(shown, _CV_STYLES):
-            lags = np.asarray(lags, dtype=np.float64)
-            tsv = np.array([np.nan if t is None else t for t in ts], dtype=np.float64)
-            if lags.shape != tsv.shape:
-                raise ValueError(f"timescales of {lab}: lag_ps and timescale_ps must have the "
-                                 "same length")
-            ax.plot(lags, tsv, color=col, ls=ls, marker=mk, ms=4, lw=1.2, label=lab)
-            drawn[lab] = {"lag_ps": lags.tolist(), "timescale_ps": list(ts)}
-            lags_seen += [float(lags.min()), float(lags.max())] if lags.size else []
+        fig, axes = _new(7.2, 3.0 if not within else 3.4, 1, 2 if within else 1)
+        ax = axes[0][0]
+        drawn, lags_seen = _timescale_curves(ax, curves[:TIMESCALE_CVS])
         tica_data = None
         if tica is not None:
             t = [None if v is None else float(v) for v in tica["timescales_ps"]]
@@ -786,17 +784,14 @@ def implied_timescales(curves, *, tica=None):
                     color="black", ms=6, label=f"TICA slow coordinates at {tica['lag_ps']:g} ps")
             tica_data = {"lag_ps": float(tica["lag_ps"]), "timescales_ps": t}
             lags_seen.append(float(tica["lag_ps"]))
-        lo = min(lags_seen) if lags_seen else 1.0
-        hi = max(lags_seen) if lags_seen else 1.0
-        diagonal = np.linspace(lo, hi, 50) if hi > lo else np.array([lo])
-        ax.plot(diagonal, diagonal, color="#999999", lw=0.8, ls=":",
-                label="timescale = lag (shorter ones are not resolved)")
-        ax.set_yscale("log")
-        ax.set_xlabel("lag (ps)")
-        ax.set_ylabel("implied timescale (ps, log scale)")
-        ax.set_title("implied timescales against the lag: a slow process gives a plateau")
-        ax.legend(loc="best")
-        data = {"curves": drawn, "tica": tica_data}
+        _timescale_axes(ax, lags_seen, "all runs about their common mean" if within else
+                        "implied timescales against the lag: a slow process gives a plateau")
+        drawn_within = None
+        if within:
+            right = axes[0][1]
+            drawn_within, seen = _timescale_curves(right, within[:TIMESCALE_CVS])
+            _timescale_axes(right, seen, "within the states (each run about its own mean)")
+        data = {"curves": drawn, "tica": tica_data, "within": drawn_within}
         parts = [f"{lab}: " + ", ".join(f"{_fmt(t)} at {lg:g}" for lg, t in
                                         zip(v["lag_ps"], v["timescale_ps"]))
                  for lab, v in drawn.items()]
@@ -804,6 +799,11 @@ def implied_timescales(curves, *, tica=None):
             parts.append(f"TICA slow coordinates at {tica_data['lag_ps']:g}: " + ", ".join(
                 _fmt(t) for t in tica_data["timescales_ps"]))
         alt = "Implied timescales in ps against the lag in ps: " + "; ".join(parts) + "."
+        if drawn_within:
+            alt += " Within the states: " + "; ".join(
+                f"{lab}: " + ", ".join(f"{_fmt(t)} at {lg:g}" for lg, t in
+                                       zip(v["lag_ps"], v["timescale_ps"]))
+                for lab, v in drawn_within.items()) + "."
         caption = ("Slow modes: the implied timescale -lag/ln(autocorrelation) of each ranked CV "
                    "(at most five) against the lag, all runs about their common mean; a "
                    "timescale that levels off as the lag grows is a real slow process, one below "
@@ -811,7 +811,42 @@ def implied_timescales(curves, *, tica=None):
                    "resolved either: runs that stay in their states keep a CV that separates them "
                    "correlated at every lag, so the crossing between the states is only known to "
                    "be slower than the runs.")
+        if drawn_within:
+            caption += (" Right: the same with each run about its own mean, the relaxation of "
+                        "the CV inside the states (the basins), free of the offsets between "
+                        "them; the CV's integrated time in the ranking, which sets the bias "
+                        "hints' deposition interval, comes from these autocorrelations.")
         return _finish(fig, "implied-timescales", caption, alt, data)
+
+
+def _timescale_curves(ax, curves):
+    """Draw ``(label, lag_ps, timescale_ps)`` curves in the ranked CVs' styles; return what
+    was drawn (label -> lag_ps, timescale_ps) and the lags' ends."""
+    drawn, lags_seen = {}, []
+    for (lab, lags, ts), (col, ls, mk) in zip(curves, _CV_STYLES):
+        lags = np.asarray(lags, dtype=np.float64)
+        tsv = np.array([np.nan if t is None else t for t in ts], dtype=np.float64)
+        if lags.shape != tsv.shape:
+            raise ValueError(f"timescales of {lab}: lag_ps and timescale_ps must have the "
+                             "same length")
+        ax.plot(lags, tsv, color=col, ls=ls, marker=mk, ms=4, lw=1.2, label=lab)
+        drawn[lab] = {"lag_ps": lags.tolist(), "timescale_ps": list(ts)}
+        lags_seen += [float(lags.min()), float(lags.max())] if lags.size else []
+    return drawn, lags_seen
+
+
+def _timescale_axes(ax, lags_seen, title):
+    """The timescale = lag diagonal, log scale, labels, title and legend of a panel."""
+    lo = min(lags_seen) if lags_seen else 1.0
+    hi = max(lags_seen) if lags_seen else 1.0
+    diagonal = np.linspace(lo, hi, 50) if hi > lo else np.array([lo])
+    ax.plot(diagonal, diagonal, color="#999999", lw=0.8, ls=":",
+            label="timescale = lag (shorter ones are not resolved)")
+    ax.set_yscale("log")
+    ax.set_xlabel("lag (ps)")
+    ax.set_ylabel("implied timescale (ps, log scale)")
+    ax.set_title(title)
+    ax.legend(loc="best")
 
 
 def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):

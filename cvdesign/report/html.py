@@ -450,16 +450,20 @@ def _suggest(page, output, parsed):
     page.section(2, "slow-modes", "Slow modes")
     page.reading = data_name
     tica = data.get("tica") if data is not None else None
-    curves = []
+    curves, within = [], []
     if data is not None:
         for c in data["cvs"]:
             t = c.get("timescales")
             if t is not None:
                 curves.append((f"rank {c['rank']}", t["lag_ps"], t["timescale_ps"]))
+                if t.get("timescale_within_states_ps") is not None:
+                    within.append((f"rank {c['rank']}", t["lag_ps"],
+                                   t["timescale_within_states_ps"]))
     if curves or tica is not None:
         page.figure(fg.implied_timescales(
             curves, tica=None if tica is None else {"lag_ps": tica["lag_ps"],
-                                                   "timescales_ps": tica["timescales_ps"]}))
+                                                   "timescales_ps": tica["timescales_ps"]},
+            within=within))
     else:
         page.not_available("implied timescales against the lag",
                            f"{data_name} is missing" if data is None else
