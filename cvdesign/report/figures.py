@@ -773,7 +773,7 @@ def implied_timescales(curves, *, tica=None, within=None):
     """
     within = [w for w in (within or []) if any(t is not None for t in w[2])]
     with _style():
-        fig, axes = _new(7.2, 3.0 if not within else 3.4, 1, 2 if within else 1)
+        fig, axes = _new(7.2, 3.6 if not within else 3.9, 1, 2 if within else 1)
         ax = axes[0][0]
         drawn, lags_seen = _timescale_curves(ax, curves[:TIMESCALE_CVS])
         tica_data = None
@@ -791,6 +791,9 @@ def implied_timescales(curves, *, tica=None, within=None):
             right = axes[0][1]
             drawn_within, seen = _timescale_curves(right, within[:TIMESCALE_CVS])
             _timescale_axes(right, seen, "within the states (each run about its own mean)")
+        # one legend for the panels, below them (inside, it hid the curves)
+        handles, labels = ax.get_legend_handles_labels()
+        fig.legend(handles, labels, loc="outside lower center", ncols=4)
         data = {"curves": drawn, "tica": tica_data, "within": drawn_within}
         parts = [f"{lab}: " + ", ".join(f"{_fmt(t)} at {lg:g}" for lg, t in
                                         zip(v["lag_ps"], v["timescale_ps"]))
@@ -836,17 +839,18 @@ def _timescale_curves(ax, curves):
 
 
 def _timescale_axes(ax, lags_seen, title):
-    """The timescale = lag diagonal, log scale, labels, title and legend of a panel."""
+    """The timescale = lag diagonal, log scales (the lags are a geometric grid), labels and
+    title of a panel."""
     lo = min(lags_seen) if lags_seen else 1.0
     hi = max(lags_seen) if lags_seen else 1.0
-    diagonal = np.linspace(lo, hi, 50) if hi > lo else np.array([lo])
+    diagonal = np.geomspace(lo, hi, 50) if hi > lo > 0 else np.array([lo])
     ax.plot(diagonal, diagonal, color="#999999", lw=0.8, ls=":",
             label="timescale = lag (shorter ones are not resolved)")
+    ax.set_xscale("log")
     ax.set_yscale("log")
-    ax.set_xlabel("lag (ps)")
+    ax.set_xlabel("lag (ps, log scale)")
     ax.set_ylabel("implied timescale (ps, log scale)")
     ax.set_title(title)
-    ax.legend(loc="best")
 
 
 def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):
