@@ -119,6 +119,23 @@ def test_integrated_time_of_an_ar1_process_matches_its_closed_form():
     assert tau[0] == pytest.approx(exact, rel=0.05)
 
 
+def test_integrated_time_is_at_least_half_a_frame_never_negative():
+    """Frames anti-correlated at the first lags (or noise) make Sokal's running sum fall to
+    zero or below, where the window condition M >= 5 tau(M) holds at once: the estimate is
+    floored at half a frame, the value for uncorrelated frames (an integrated time is never
+    negative; a negative one was written out and refused by the hints). The floor leaves
+    the AR(1) above untouched. Case from a review: rho = -0.5, -0.6, 0.1 at lags 1, 2, 3."""
+    tau, decayed = integrated_time([1, 2, 3], [[-0.5], [-0.6], [0.1]], 0.06)
+    assert tau[0] == pytest.approx(0.03, rel=1e-12) and decayed[0]
+    # white noise (rho 0 at every lag): exactly half a frame, as before the floor
+    tau, decayed = integrated_time([1, 2, 4], np.zeros((3, 1)), 0.2)
+    assert tau[0] == pytest.approx(0.1, rel=1e-12) and decayed[0]
+    # alternating frames (rho(k) = (-0.9)^k) sum to about 0.03 frames: floored too
+    lags = np.arange(1, 40)
+    tau, _ = integrated_time(lags, ((-0.9) ** lags)[:, None], 1.0)
+    assert tau[0] == 0.5
+
+
 def test_scorecard_reports_slowness_of_every_descriptor(demo_result):
     for row in demo_result.scorecard:
         assert row["autocorrelation"] is not None

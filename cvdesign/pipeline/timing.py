@@ -66,7 +66,11 @@ def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
     Simulation*, 2002), with the sum taken as the trapezoidal integral of
     ``rho`` (``rho(0) = 1``) interpolated linearly between the lags of the grid,
     up to Sokal's self-consistent window: the first lag ``M`` with
-    ``M >= window * tau(M)``.
+    ``M >= window * tau(M)``. The result is at least half a frame spacing, the value for
+    frames that are not correlated at all: a smaller sum (down to zero or below, which no
+    integrated time can be) comes from frames anti-correlated at the first lags, or from
+    noise, and the frames do not resolve a time there (before this floor a negative time
+    could be written out and refused by the bias hints).
 
     Parameters
     ----------
@@ -84,7 +88,7 @@ def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
     Returns
     -------
     tau : ndarray of shape (n_features,)
-        In the unit of `dt`.
+        In the unit of `dt`; at least ``dt / 2``.
     decayed : ndarray of bool, shape (n_features,)
         False where no lag of the grid satisfies the window condition: the
         motion did not decorrelate within the runs and `tau` (the integral over
@@ -110,7 +114,7 @@ def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
     ok[0] = False
     decayed = ok.any(axis=0)
     stop = np.where(decayed, ok.argmax(axis=0), len(grid) - 1)
-    tau = cum[stop, np.arange(rho.shape[1])]
+    tau = np.maximum(cum[stop, np.arange(rho.shape[1])], 0.5)  # (frames; see above)
     if return_window:
         return tau * dt, decayed, grid[stop]
     return tau * dt, decayed
