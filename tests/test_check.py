@@ -176,3 +176,101 @@ def test_check_refuses_column_without_against(demo_files, demo_result, tmp_path,
     assert main(["check", str(path), "--topology", top, "--trajectory", states["open"][0],
                  "--column", "2"]) == 2
     assert "--column goes with --against VALUES TRAJ" in capsys.readouterr().err
+
+
+# ------------------------------------------------------------------- a periodic CV
+def _torsion_files(tmp_path, rng, n_frames=600):
+    """(topology, trajectory) of four carbons whose dihedral runs over the whole circle, and
+    the dihedral of each frame (rad, from the written file), with no frame near +-pi."""
+    top = md.Topology()
+    res = top.add_residue("TOR", top.add_chain(), resSeq=1)
+    for name in ("C1", "C2", "C3", "C4"):
+        top.add_atom(name, md.element.carbon, res)
+    phi = rng.uniform(-np.pi, np.pi, n_frames)
+    phi = phi[np.pi - np.abs(phi) > 0.05]  # no frame at the branch cut (rules: no test on it)
+    xyz = np.zeros((phi.size, 4, 3))
+    xyz[:, 0] = [0.15, 0.0, 0.0]
+    xyz[:, 1] = [0.0, 0.0, 0.0]
+    xyz[:, 2] = [0.0, 0.0, 0.15]
+    xyz[:, 3] = np.stack([0.15 * np.cos(phi), 0.15 * np.sin(phi), np.full(phi.size, 0.15)],
+                         axis=1)
+    traj = md.Trajectory(xyz, top)
+    pdb, dcd = tmp_path / "tor.pdb", tmp_path / "tor.dcd"
+    traj[0].save_pdb(str(pdb))
+    traj.save_dcd(str(dcd))
+    back = md.load(str(dcd), top=str(pdb))
+    return str(pdb), str(dcd), md.compute_dihedrals(back, [[0, 1, 2, 3]])[:, 0].astype(float)
+
+
+def _torsion_spec(tmp_path, top, *, weight=1.0, scale=1.0, center=0.0, observed=None):
+    spec = Spec(name="tor", topology=md.load(top).topology,
+                descriptors=[{"id": "phi", "kind": "dihedral", "atoms": [0, 1, 2, 3]}],
+                terms=[{"descriptor": "phi", "transform": "identity", "center": center,
+                        "scale": scale, "weight": weight}], periodic=True,
+                states={"A": {"mean": 0.0, "std": 0.3, "n_frames": 10}},
+                observed_range=observed)
+    path = tmp_path / "tor.json"
+    spec.save(str(path))
+    return spec, str(path)
+
+
+def test_check_compares_a_periodic_cv_modulo_its_period(tmp_path, capsys):
+    # an engine that gives the dihedral in [0, 2 pi) instead of (-pi, pi]: the same CV, whose
+    # values differ from the reference by one period on half the frames
+    rng = np.random.default_rng(71)
+    top, traj, _ = _torsion_files(tmp_path, rng)
+    spec, path = _torsion_spec(tmp_path, top)
+    ref = spec.evaluate(md.load(traj, top=top))
+    shifted = tmp_path / "engine.txt"
+    shifted.write_text("\n".join(repr(float(v)) for v in np.mod(ref, 2 * np.pi)) + "\n")
+    assert main(["check", path, "--topology", top, "--against", str(shifted), traj]) == 0
+    out = capsys.readouterr().out
+    assert "note: the CV is periodic with period 6.28319 (CV units)" in out
+    assert "compared with the reference modulo the period" in out
+    assert re.search(r"largest \|deviation\| \S+ \(modulo the period 6.28319; tolerance", out), out
+    assert "ERROR" not in out and "PASS: the values agree with the reference evaluator" in out
+    # an engine off by 0.01 rad still fails, with the deviation taken modulo the period
+    off = tmp_path / "off.txt"
+    off.write_text("\n".join(repr(float(v)) for v in np.mod(ref + 0.01, 2 * np.pi)) + "\n")
+    assert main(["check", path, "--topology", top, "--against", str(off), traj]) == 1
+    out = capsys.readouterr().out
+    worst = re.search(r"largest \|deviation\| ([\d.e-]+) \(modulo the period 6.28319;", out)
+    assert worst and abs(float(worst.group(1)) - 0.01) < 1e-4, out
+    assert "FAIL: the values differ from the reference evaluator" in out
+
+
+def test_check_takes_the_period_of_a_scaled_periodic_cv_from_the_spec(tmp_path, capsys):
+    # weight 2, scale 0.5, centre 1 rad: period 8 pi; an engine's values shifted by whole
+    # periods (another choice of the angle's interval) agree, a shift by 2 pi does not
+    rng = np.random.default_rng(72)
+    top, traj, _ = _torsion_files(tmp_path, rng, n_frames=200)
+    spec, path = _torsion_spec(tmp_path, top, weight=2.0, scale=0.5, center=1.0)
+    assert spec.period == 8 * np.pi
+    ref = spec.evaluate(md.load(traj, top=top))
+    turns = rng.integers(-2, 3, ref.size)
+    whole = tmp_path / "whole.txt"
+    whole.write_text("\n".join(repr(float(v)) for v in ref + turns * spec.period) + "\n")
+    assert main(["check", path, "--topology", top, "--against", str(whole), traj]) == 0
+    assert "PASS" in capsys.readouterr().out
+    half = tmp_path / "half.txt"  # 2 pi is a quarter of this CV's period: another CV value
+    half.write_text("\n".join(repr(float(v)) for v in ref + 2 * np.pi) + "\n")
+    assert main(["check", path, "--topology", top, "--against", str(half), traj]) == 1
+    out = capsys.readouterr().out
+    assert "largest |deviation| 6.28 (modulo the period 25.1327; " in out and "FAIL" in out
+
+
+def test_check_takes_the_observed_range_of_a_periodic_cv_modulo_its_period(tmp_path, capsys):
+    # a state around pi, its observed range written as [2.9, 3.4] rad (beyond pi): frames at
+    # -3.1 rad are the same angle as 3.18 rad and lie inside it
+    rng = np.random.default_rng(73)
+    top, traj, phi = _torsion_files(tmp_path, rng, n_frames=300)
+    spec, path = _torsion_spec(tmp_path, top, observed=(2.9, 3.4))
+    assert main(["check", path, "--topology", top, "--trajectory", traj]) == 0
+    out = capsys.readouterr().out
+    ref = spec.evaluate(md.load(traj, top=top))
+    assert np.allclose(ref, phi, atol=1e-6)
+    inside = np.mod(ref - 2.9, 2 * np.pi) <= 0.5
+    assert (ref[inside] < 0).any() and (ref[inside] > 0).any()  # on both sides of the cut
+    assert (f"info: {int((~inside).sum())} of {phi.size} frames of {traj} "
+            f"({100.0 * (~inside).sum() / phi.size:.1f}%) lie outside the observed range "
+            "[2.9, 3.4] (modulo the period)") in out, out

@@ -14,6 +14,7 @@ matter.
 import json
 import re
 import sys
+import warnings
 
 import mdtraj as md
 import numpy as np
@@ -376,7 +377,9 @@ def test_xml_round_trip_gives_the_same_values():
 
 
 # ---------------------------------------------------------------- the System argument
-def _system(n_particles, periodic):
+def _system(n_particles, periodic, box=BOXES["orthorhombic"]):
+    """A System of carbons, periodic (with `box`, rows in nm; None leaves OpenMM's default
+    box) or not."""
     system = openmm.System()
     for _ in range(n_particles):
         system.addParticle(12.0)
@@ -384,6 +387,8 @@ def _system(n_particles, periodic):
         marker = openmm.CustomBondForce("0")
         marker.setUsesPeriodicBoundaryConditions(True)
         system.addForce(marker)
+        if box is not None:
+            system.setDefaultPeriodicBoxVectors(*(openmm.Vec3(*row) for row in box))
     return system
 
 
@@ -470,3 +475,91 @@ def test_export_of_a_periodic_cv_says_what_the_bias_must_do(tmp_path, capsys):
     assert "the bias on it must be periodic with that period" in printed
     doc = json.loads((tmp_path / "phi.json").read_text())
     assert doc["period"] == pytest.approx(4 * np.pi)
+
+
+# ---------------------------------------------------------------- the System's box
+def _distance_spec(n_atoms):
+    return Spec(name="d", topology=_topology(n_atoms),
+                descriptors=[{"id": "d", "kind": "distance", "atoms": [0, 1]}],
+                terms=[{"descriptor": "d", "transform": "identity", "center": 0.0,
+                        "scale": 1.0, "weight": 1.0}])
+
+
+def test_a_periodic_system_left_in_the_default_box_is_warned_about():
+    # why: a periodic force in a System whose box was never set runs in OpenMM's default
+    # 2 nm cube, where a 1.5 nm distance reads 0.5 nm without an error
+    spec = _distance_spec(2)
+    xyz = np.array([[[0.2, 0.3, 0.4], [1.7, 0.3, 0.4]]])
+    system = _system(2, True, box=None)
+    system.addForce(spec.to_openmm(periodic=True))
+    context = openmm.Context(system, openmm.VerletIntegrator(0.001),
+                             openmm.Platform.getPlatformByName("Reference"))
+    context.setPositions(xyz[0] * unit.nanometer)
+    wrapped = context.getState(getEnergy=True).getPotentialEnergy().value_in_unit(
+        unit.kilojoule_per_mole)
+    assert abs(wrapped - 0.5) < 1e-9 and abs(spec.evaluate(xyz)[0] - 1.5) < 1e-12
+    # given that System, the export warns; given one with its box set, it does not
+    with pytest.warns(UserWarning, match=r"the openmm\.System uses periodic boundary "
+                                         r"conditions, but its box is OpenMM's default, a 2 nm "
+                                         r"cube, .* every distance longer than 1 nm is wrapped"):
+        force = spec.to_openmm(system=_system(2, True, box=None))
+    assert force.usesPeriodicBoundaryConditions()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        spec.to_openmm(system=_system(2, True))
+        spec.to_openmm(system=_system(2, False))  # no periodic box at all: nothing to say
+
+
+def test_export_command_warns_about_a_system_in_the_default_box_and_notes_periodic(
+        tmp_path, capsys):
+    _distance_spec(2).save(tmp_path / "d.json")
+    default = tmp_path / "default.xml"
+    default.write_text(openmm.XmlSerializer.serialize(_system(2, True, box=None)))
+    assert main(["export", str(tmp_path / "d.json"), "--to", "openmm", "--out",
+                 str(tmp_path / "a.xml"), "--system", str(default)]) == 0
+    captured = capsys.readouterr()
+    assert re.search(r"cvdesign export: warning: --system \S+default\.xml: the openmm\.System "
+                     r"uses periodic boundary conditions, but its box is OpenMM's default",
+                     captured.err), captured.err
+    assert captured.err.count("OpenMM's default") == 1 and "--periodic" not in captured.out
+    boxed = tmp_path / "boxed.xml"
+    boxed.write_text(openmm.XmlSerializer.serialize(_system(2, True)))
+    assert main(["export", str(tmp_path / "d.json"), "--to", "openmm", "--out",
+                 str(tmp_path / "b.xml"), "--system", str(boxed)]) == 0
+    assert "OpenMM's default" not in capsys.readouterr().err
+    # --periodic gives no System to look at: the note says what the System must carry
+    assert main(["export", str(tmp_path / "d.json"), "--to", "openmm", "--out",
+                 str(tmp_path / "c.xml"), "--periodic"]) == 0
+    out = capsys.readouterr().out
+    assert ("note: --periodic: OpenMM takes the box from the System the force goes into; "
+            "that System must carry the simulation's box") in out
+    assert "default 2 nm cube, where every distance over 1 nm is wrapped" in out
+    assert "export with --system SYSTEM.xml instead" in out
+    assert main(["export", str(tmp_path / "d.json"), "--to", "openmm", "--out",
+                 str(tmp_path / "e.xml"), "--no-periodic"]) == 0
+    assert "--periodic" not in capsys.readouterr().out
+
+
+# ---------------------------------------------------------------- the documented mapping
+def test_the_spec_format_documents_the_openmm_force_of_every_kind():
+    # docs/spec-v1.md, "OpenMM export": one row per descriptor kind naming the OpenMM class
+    # that the export really builds for it
+    from pathlib import Path
+
+    from cvdesign.kinds import KINDS
+
+    text = (Path(__file__).resolve().parents[1] / "docs" / "spec-v1.md").read_text(
+        encoding="utf-8")
+    section = re.search(r"\n## OpenMM export\n(.*?)\n## ", text, re.S)
+    assert section, "docs/spec-v1.md has no 'OpenMM export' section"
+    rows = {m.group(1): m.group(2) for m in
+            re.finditer(r"^\| `(\w+)` \| `(\w+)[(`]", section.group(1), re.M)}
+    spec = _every_kind_spec(np.random.default_rng(1213))
+    kinds = {d["id"]: d["kind"] for d in spec.descriptors}
+    force = spec.to_openmm(periodic=False)
+    built = {kinds[force.getCollectiveVariable(i).getName()]:
+             type(force.getCollectiveVariable(i)).__name__
+             for i in range(force.getNumCollectiveVariables())}
+    assert set(built) == set(KINDS)  # the spec above uses every kind
+    assert rows == built
+    assert "CustomCentroidBondForce" in section.group(1)  # the funnel restraint too

@@ -25,6 +25,7 @@ import json
 import logging
 import math
 import os
+import re
 import sys
 import warnings
 from pathlib import Path
@@ -322,7 +323,11 @@ def build_parser():
                     "engine side computes the same CV. On every trajectory given (--against, "
                     "--trajectory) it reports frames outside the CV's reachable range (an "
                     "error, exit 1: no structure gives them) and outside its observed range "
-                    "(information: values the design runs did not reach).")
+                    "(information: values the design runs did not reach). A periodic CV "
+                    "(a single dihedral) is compared modulo its period: an engine may give "
+                    "the angle in [0, 2 pi) or [-pi, pi], and its values are judged by their "
+                    "difference from the reference wrapped into one period, its range "
+                    "modulo the period.")
     p.add_argument("spec", metavar="SPEC", help="spec file (cv-NN.json)")
     p.add_argument("--topology", required=True, metavar="TOP",
                    help="topology file the spec must match")
@@ -445,7 +450,12 @@ def build_parser():
     box.add_argument("--periodic", dest="periodic", action="store_const", const=True,
                      default=None,
                      help="the simulation has a periodic box (orthorhombic or triclinic): "
-                          "distances are taken at their periodic images")
+                          "distances are taken at their periodic images in the box of the "
+                          "Context. The System the force goes into must carry that box "
+                          "(setDefaultPeriodicBoxVectors, or the Context's "
+                          "setPeriodicBoxVectors): one whose box was never set runs in "
+                          "OpenMM's default 2 nm cube and wraps every distance over 1 nm "
+                          "without an error. Prefer --system, which checks the box")
     box.add_argument("--no-periodic", dest="periodic", action="store_const", const=False,
                      help="the simulation has no periodic box")
     box.add_argument("--system", metavar="SYSTEM.xml", default=None,
@@ -994,14 +1004,31 @@ def _reference_values(spec, topology, traj):
     return np.concatenate(ours), np.concatenate(idx), set(undefined.frames)
 
 
-def _outside(values, lower, upper, slack):
-    """Positions of `values` below ``lower - slack`` or above ``upper + slack`` (None: no bound)."""
+def _outside(values, lower, upper, slack, period=None):
+    """Positions of `values` below ``lower - slack`` or above ``upper + slack`` (None: no bound).
+
+    With a `period` (a periodic CV, both bounds given) the interval runs upwards from `lower`
+    along the circle and a value is compared modulo the period: one period or more holds
+    every value."""
+    if period is not None:
+        width = upper - lower + 2.0 * slack
+        if width >= period:
+            return np.zeros(0, dtype=np.int64)
+        return np.flatnonzero(np.mod(values - (lower - slack), period) > width)
     out = np.zeros(values.shape, dtype=bool)
     if lower is not None:
         out |= values < lower - slack
     if upper is not None:
         out |= values > upper + slack
     return np.flatnonzero(out)
+
+
+def _wrapped(difference, period):
+    """`difference` wrapped into [-period/2, period/2): the nearest of its images one period
+    apart (unchanged when `period` is None)."""
+    if period is None:
+        return difference
+    return np.mod(difference + 0.5 * period, period) - 0.5 * period
 
 
 def _interval(pair):
@@ -1026,8 +1053,12 @@ def _unreachable(what, values, frames, reach, slack, why):
     return not bad.size
 
 
-def _range_check(reach, seen, traj, ours, frames):
-    """Range findings of the reference values on one trajectory; True when none is an error."""
+def _range_check(reach, seen, traj, ours, frames, period=None):
+    """Range findings of the reference values on one trajectory; True when none is an error.
+
+    The reference values of a periodic CV (`period`) lie in the reachable interval of one
+    period (the evaluator's own convention, checked as it is); the observed range is
+    checked modulo the period."""
     finite = [abs(x) for x in reach if x is not None]
     slack = _RANGE_SLACK * max([1.0] + finite)
     ok = _unreachable(
@@ -1036,17 +1067,18 @@ def _range_check(reach, seen, traj, ours, frames):
         "or the evaluator is wrong; re-create the spec with 'cvdesign suggest' and report "
         "the case")
     if seen is not None:
-        beyond = _outside(ours, *seen, 0.0)
+        beyond = _outside(ours, *seen, 0.0, period)
+        modulo = "" if period is None else " (modulo the period)"
         if beyond.size:
             print(f"info: {beyond.size} of {ours.size} frames of {traj} "
                   f"({100.0 * beyond.size / ours.size:.1f}%) lie outside the observed range "
-                  f"{_interval(seen)} of the spec's input frames "
+                  f"{_interval(seen)}{modulo} of the spec's input frames "
                   f"({_extremes(ours, frames, beyond)}): this run reaches values the design "
                   "runs did not; walls and a grid built on the observed range (see "
                   "'cvdesign hints') may not cover them")
         else:
             print(f"info: every frame of {traj} lies inside the observed range "
-                  f"{_interval(seen)} of the spec's input frames")
+                  f"{_interval(seen)}{modulo} of the spec's input frames")
     return ok
 
 
@@ -1069,6 +1101,13 @@ def _cmd_check(args):
               f"{st['mean']:.6g}, std {st['std']:.3g}): a folded coordinate, where the CV "
               "changes only to second order and the bias force along it fades; check in a "
               "short biased run that the bias moves this state")
+    period = spec.period if spec.periodic else None
+    if period is not None:
+        print(f"note: the CV is periodic with period {period:.6g} (CV units): values one "
+              "period apart are the same CV value, so an engine's values are compared with "
+              "the reference modulo the period (each difference wrapped into [-period/2, "
+              "period/2)), and ranges are checked modulo the period (the reachable range "
+              "is one whole period: every value of an engine lies in it)")
     if args.column is not None and not args.against:
         raise InputError("--column goes with --against VALUES TRAJ: it says which column of "
                          "the values files holds the CV")
@@ -1080,12 +1119,12 @@ def _cmd_check(args):
     in_range = True
     for traj in args.trajectory or []:
         ours, idx, _ = _reference_values(spec, source.topology, traj)
-        in_range &= _range_check(reach, seen, traj, ours, idx)
+        in_range &= _range_check(reach, seen, traj, ours, idx, period)
     worst_all = 0.0
     for values_path, traj in args.against or []:
         frames, theirs = _read_values(values_path, args.column)
         ours, idx, stand_in = _reference_values(spec, source.topology, traj)
-        in_range &= _range_check(reach, seen, traj, ours, idx)
+        in_range &= _range_check(reach, seen, traj, ours, idx, period)
         if frames is None:
             if theirs.size != ours.size:
                 raise InputError(f"{values_path!r} holds {theirs.size} values but {traj!r} has "
@@ -1100,17 +1139,19 @@ def _cmd_check(args):
                                  f"does not have ({ours.size} frames)")
             ref = ours[[pos[int(f)] for f in frames]]
             frame_of = np.asarray(frames)
-        in_range &= _unreachable(
-            f"values of {values_path} (the engine's)", theirs, frame_of, reach, tol,
-            f"beyond a bound by more than the tolerance {tol:.3g}, values the CV cannot take: "
-            "the engine computes another CV (a cos or sin transform left out, a weight, "
-            "centre or scale changed, another atom order)")
-        dev = np.abs(theirs - ref)
+        if period is None:  # modulo a period, every value lies in one period's range
+            in_range &= _unreachable(
+                f"values of {values_path} (the engine's)", theirs, frame_of, reach, tol,
+                f"beyond a bound by more than the tolerance {tol:.3g}, values the CV cannot "
+                "take: the engine computes another CV (a cos or sin transform left out, a "
+                "weight, centre or scale changed, another atom order)")
+        dev = np.abs(_wrapped(theirs - ref, period))
         order = np.argsort(-dev, kind="stable")[:5]
         worst = float(dev[order[0]])
         worst_all = max(worst_all, worst)
+        modulo = "" if period is None else f"modulo the period {period:.6g}; "
         print(f"{values_path} vs {traj}: {dev.size} frames, largest |deviation| {worst:.3g} "
-              f"(tolerance {tol:.3g}), mean {float(dev.mean()):.3g}")
+              f"({modulo}tolerance {tol:.3g}), mean {float(dev.mean()):.3g}")
         for i in order:
             if dev[i] > tol or i == order[0]:
                 print(f"    frame {int(frame_of[i])}: engine {float(theirs[i])!r}, reference "
@@ -1348,13 +1389,21 @@ def _cmd_export(args):
         check_output_file(args.restraint_out, force=args.force, inputs=inputs,
                           option="--restraint-out")
         paths.append(args.restraint_out)
-    from ..export.openmm import import_openmm, read_system
+    from ..export.openmm import (OPENMM_DEFAULT_BOX_NM, default_box_message, import_openmm,
+                                  read_system)
 
     openmm = import_openmm()
     system = read_system(args.system) if args.system else None
-    forces = [spec.to_openmm(args.periodic, system=system)]
-    if args.restraint_out is not None:
-        forces.append(spec.restraint_to_openmm(args.periodic, system=system))
+    box_message = None if system is None else default_box_message(system)
+    with warnings.catch_warnings():  # the library warns per force; said once here instead
+        if box_message is not None:
+            warnings.filterwarnings("ignore", message=re.escape(box_message),
+                                    category=UserWarning)
+        forces = [spec.to_openmm(args.periodic, system=system)]
+        if args.restraint_out is not None:
+            forces.append(spec.restraint_to_openmm(args.periodic, system=system))
+    if box_message is not None:
+        _log.warning("--system %s: %s", args.system, box_message)
     texts = [openmm.XmlSerializer.serialize(f) for f in forces]
     try:
         with atomic_paths(paths) as tmps:
@@ -1370,6 +1419,14 @@ def _cmd_export(args):
           f"{'with periodic images in the box' if periodic else 'without a periodic box'}; "
           "read it with openmm.XmlSerializer.deserialize and add it as a collective variable "
           "of your own bias force")
+    if args.periodic:
+        edge = OPENMM_DEFAULT_BOX_NM
+        print("note: --periodic: OpenMM takes the box from the System the force goes into; "
+              "that System must carry the simulation's box (setDefaultPeriodicBoxVectors, or "
+              "the Context's setPeriodicBoxVectors before the run). One whose box was never "
+              f"set runs in OpenMM's default {edge:g} nm cube, where every distance over "
+              f"{edge / 2:g} nm is wrapped without an error; export with --system SYSTEM.xml "
+              "instead to have the System's box checked")
     if spec.periodic:
         print(f"note: the CV is periodic with period {spec.period!r} (CV units) and jumps by "
               "one period where its dihedral crosses +-pi; the bias on it must be periodic "

@@ -7,7 +7,8 @@ built; without it every function here that builds a force raises
 
 How the spec maps onto OpenMM's force classes (units: nm, rad; OpenMM reports
 every force's energy in kJ/mol, so the CV force's "energy" is the CV value in
-the CV's own units):
+the CV's own units; ``docs/spec-v1.md``, "OpenMM export", has the same table
+for users):
 
 - the CV, ``offset + sum_t weight_t (transform_t(d_t) - center_t) / scale_t``,
   is the energy expression of an ``openmm.CustomCVForce`` (:func:`cv_expression`)
@@ -42,16 +43,31 @@ Context holds: the spec makes each group whole first (every atom at its
 minimum image from the group's first atom), so the two agree when the groups
 are whole in the Context's positions, which is how OpenMM keeps them (it never
 wraps atoms one by one during a run; give whole molecules at the start).
+
+The box itself is not part of the force: OpenMM takes it from the Context,
+which starts with the System's default box vectors. A System whose box was
+never set has OpenMM's default, a cube of :data:`OPENMM_DEFAULT_BOX_NM` nm
+edge, and a periodic force added to it runs in that box, where every vector
+longer than half its edge is wrapped without an error (a 1.5 nm distance reads
+0.5 nm). So with ``periodic=True`` the System must carry the simulation's box
+(``System.setDefaultPeriodicBoxVectors``, or ``Context.setPeriodicBoxVectors``
+before the run); given the System (``system=``), a periodic System whose box
+is exactly that default is warned about (:func:`default_box_message`).
 """
+
+import warnings
 
 import numpy as np
 
 from ..errors import InputError, SpecError
 from ..geometry.contacts import _SERIES_RANGE, _switch_series, coordination_pairs
 
-__all__ = ["FUNNEL_EXPRESSION", "FUNNEL_PARAMETERS", "OPENMM_MISSING", "cv_expression",
-           "cv_force", "import_openmm", "read_system", "restraint_force",
-           "switching_expression"]
+__all__ = ["FUNNEL_EXPRESSION", "FUNNEL_PARAMETERS", "OPENMM_DEFAULT_BOX_NM", "OPENMM_MISSING",
+           "cv_expression", "cv_force", "default_box_message", "import_openmm", "read_system",
+           "restraint_force", "switching_expression"]
+
+#: nm: edge of the cubic box OpenMM gives a System whose box was never set.
+OPENMM_DEFAULT_BOX_NM = 2.0
 
 #: The refusal when openmm cannot be imported.
 OPENMM_MISSING = ("exporting to OpenMM needs the openmm package, which is not installed here; "
@@ -245,6 +261,56 @@ def _descriptor_force(openmm, desc, periodic):
     return force
 
 
+def default_box_message(system):
+    """A warning when a periodic `system`'s box is OpenMM's default, else None.
+
+    A System whose box was never set has the default box, a cube of
+    :data:`OPENMM_DEFAULT_BOX_NM` nm; with periodic boundary conditions every
+    vector longer than half its edge is then wrapped without an error. Whether
+    the box was set on purpose cannot be told from the System (its XML always
+    holds box vectors), so this is a warning, not a refusal.
+
+    Parameters
+    ----------
+    system : openmm.System
+
+    Returns
+    -------
+    str or None
+        The warning, or None for a System without periodic boundary conditions
+        or with another box.
+
+    Examples
+    --------
+    >>> openmm = import_openmm()
+    >>> system = openmm.System()
+    >>> force = openmm.CustomBondForce("r")
+    >>> force.setUsesPeriodicBoundaryConditions(True)
+    >>> _ = system.addForce(force)
+    >>> default_box_message(system)[:60]
+    'the openmm.System uses periodic boundary conditions, but its'
+    >>> system.setDefaultPeriodicBoxVectors(openmm.Vec3(3, 0, 0), openmm.Vec3(0, 3, 0),
+    ...                                     openmm.Vec3(0, 0, 3))  # a 3 nm cube, set
+    >>> default_box_message(system) is None
+    True
+    """
+    openmm = import_openmm()
+    if not system.usesPeriodicBoundaryConditions():
+        return None
+    nm = openmm.unit.nanometer
+    box = np.array([list(v.value_in_unit(nm)) for v in system.getDefaultPeriodicBoxVectors()],
+                   dtype=np.float64)
+    if not np.array_equal(box, OPENMM_DEFAULT_BOX_NM * np.eye(3)):
+        return None
+    edge = OPENMM_DEFAULT_BOX_NM
+    return (f"the openmm.System uses periodic boundary conditions, but its box is OpenMM's "
+            f"default, a {edge:g} nm cube, which a System has when no box was set: in that "
+            f"box every distance longer than {edge / 2:g} nm is wrapped without an error. Set "
+            "the simulation's box on the System (setDefaultPeriodicBoxVectors) before "
+            "serializing it, or on the Context (setPeriodicBoxVectors) before the run; if the "
+            f"box really is a {edge:g} nm cube, ignore this")
+
+
 def _periodic_flag(openmm, document, periodic, system):
     """Whether the forces use periodic boundary conditions, from `periodic` and/or `system`."""
     n_atoms = document["topology"]["n_atoms"]
@@ -266,6 +332,9 @@ def _periodic_flag(openmm, document, periodic, system):
             raise InputError(
                 f"periodic={bool(periodic)} but the openmm.System {has}; leave periodic out "
                 "to follow the System")
+        message = default_box_message(system)
+        if message is not None:
+            warnings.warn(message, UserWarning, stacklevel=4)
         return uses
     if periodic is None:
         raise InputError(

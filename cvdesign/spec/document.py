@@ -926,8 +926,8 @@ class Spec:
         units; on the Reference platform it equals :meth:`evaluate`, and its
         forces the negative gradient (``tests/test_export_openmm.py``). Each
         descriptor is one of OpenMM's custom forces (the mapping is in
-        ``docs/spec-v1.md`` and :mod:`cvdesign.export.openmm`). Restraints are
-        not part of the CV: see :meth:`restraint_to_openmm`.
+        ``docs/spec-v1.md``, "OpenMM export", and :mod:`cvdesign.export.openmm`).
+        Restraints are not part of the CV: see :meth:`restraint_to_openmm`.
 
         A periodic CV (``periodic`` true: a single identity term on a
         dihedral) is ``offset + weight (theta - center) / scale`` with
@@ -949,10 +949,18 @@ class Spec:
             minimum image for vectors shorter than half the smallest box
             height. False for a System without a box. Required unless
             `system` is given: a wrong choice would give wrong values silently.
+            With True the System must carry the simulation's box
+            (``setDefaultPeriodicBoxVectors``, or the Context's
+            ``setPeriodicBoxVectors``): a System whose box was never set runs
+            the force in OpenMM's default 2 nm cube, where distances longer
+            than 1 nm are wrapped without an error. Giving `system` instead
+            has that checked.
         system : openmm.System or None, default=None
             The System the CV is for: its particle count must be
             :attr:`n_atoms` (topology order), and `periodic` follows whether
-            it uses periodic boundary conditions.
+            it uses periodic boundary conditions; a periodic System whose box
+            is OpenMM's default 2 nm cube is warned about (``UserWarning``,
+            :func:`cvdesign.export.openmm.default_box_message`).
 
         Returns
         -------
