@@ -545,6 +545,44 @@ def test_rescaled_time_overflow_is_refused_naming_the_files(tmp_path):
         run_pass(LaggedPass(CoordinateFeaturizer(ATOMS), 1), src)
 
 
+def test_the_clock_comes_from_the_clock_bias_column_and_the_weights_from_the_bias_column(
+        tmp_path):
+    """A bias given minus a time-dependent offset c(t) weighs the frames as the raw bias
+    does only up to c(t), but the rescaled clock needs the bias as felt (its zero matters:
+    exp(V/kT) per frame spacing). With a 'clock_bias' column the clock is the raw bias's,
+    the weights the bias column's; without it the clock follows the bias column, and the
+    notes say so (found in review: a shifted file changed a timescale from 412 to 0.24 ps
+    with no word)."""
+    rng = np.random.default_rng(4)
+    n = 40
+    traj = _write_dcd(tmp_path / "run.dcd", rng.normal(size=(n, 3, 3)))
+    felt = rng.uniform(0.0, 3.0, n) * KT  # the bias each frame felt, kJ/mol
+    offset = np.linspace(0.0, 2.0, n) * KT  # c(t), growing during the run
+    (tmp_path / "both.bias").write_text(
+        "bias clock_bias\n" + "".join(f"{float(a)!r} {float(b)!r}\n"
+                                     for a, b in zip(felt - offset, felt)))
+    both = Source(_topology(), temperature=300.0).add(traj, "a", bias=tmp_path / "both.bias")
+    raw = Source(_topology(), temperature=300.0).add(
+        traj, "a", bias=_write_bias(tmp_path / "raw.bias", felt))
+    shifted = Source(_topology(), temperature=300.0).add(
+        traj, "a", bias=_write_bias(tmp_path / "shifted.bias", felt - offset))
+    rw_both, rw_raw, rw_shifted = both.reweighting(), raw.reweighting(), shifted.reweighting()
+    assert np.array_equal(rw_both.clocks[0], rw_raw.clocks[0])
+    assert np.array_equal(rw_both.weights[0], rw_shifted.weights[0])
+    assert not np.allclose(rw_shifted.clocks[0], rw_raw.clocks[0])
+    expect = np.concatenate([[0.0], np.cumsum(np.exp(felt / KT))])
+    np.testing.assert_allclose(rw_both.clocks[0], expect, rtol=1e-12)
+    notes_both = " ".join(rw_both.describe({0: 2})[0])
+    notes_shifted = " ".join(rw_shifted.describe({0: 2})[0])
+    assert "rescaled clock from the 'clock_bias' column" in notes_both
+    assert "rescaled clock from the bias column itself" in notes_shifted
+    assert "add a 'clock_bias' column" in notes_shifted
+    # the named column is also refused like the bias column when it is not a number
+    (tmp_path / "bad.bias").write_text("bias clock_bias\n1.0 x\n" + "1.0 1.0\n" * (n - 1))
+    with pytest.raises(InputError, match=r"bad\.bias', line 2, column 2: 'x' is not a number"):
+        Source(_topology(), temperature=300.0).add(traj, "a", bias=tmp_path / "bad.bias")
+
+
 # ---------------------------------------------------------------------------- exact answers
 def test_reweighting_biased_samples_recovers_the_exact_populations_and_well_means(tmp_path):
     """I.i.d. samples of exp(-(U + V)/kT) of the tilted double well, labelled by well and

@@ -53,7 +53,8 @@ a real engine (`cvdesign.pipeline.refine`):
 
 7. the rank-1 run (CV 1) is fed back: each walker's frames as an XTC file with
    the bias energy of every frame beside it (the bias it felt minus the bias's
-   offset c(t), the energies of the run's own reweighting), its frames labelled
+   offset c(t), the energies of the run's own reweighting; the rescaled clock runs on
+   them too, a heuristic here: see `refine`'s docstring), its frames labelled
    by the basins of CV 1 they visit (`label_basins`: a state in a basin core,
    None for the transition frames between cores, the crossings counted) and
    added with `Source.add_labelled(..., bias=...)`;
@@ -280,7 +281,14 @@ def refine(cv1, run, frames, molecule, topology, work):
 
     Each walker's frames are written as an XTC file with a bias-energy file beside it:
     the bias each frame felt minus the bias's time-dependent offset c(t) (the energies
-    the run's own reweighting used, ``log_weights * kT``). The frames are labelled by
+    the run's own reweighting used, ``log_weights * kT``). No ``clock_bias`` column:
+    the bias as felt (``run.felt_bias``) reaches about 45 kT once the walkers have filled
+    the basins, and a clock of ``exp(V/kT)`` per frame then spans about 1e20 frame
+    spacings (``suggest`` refuses it: rescaled time recovers unbiased kinetics only for a
+    bias that stays off the barriers, deposited rarely). The clock then runs on the
+    reweighting energies, ``exp((V - c(t))/kT)``, which the summary says is off by
+    ``exp(-c(t)/kT)``: the slowness ranked on here is a relative measure between CVs of
+    the same run, not unbiased kinetics. The frames are labelled by
     the basins of CV 1 that the walker visits (a basin core is a state's mean +- one
     spread of CV 1, from the spec): frames in a core get the state, the frames between
     cores, the crossings, are transition frames (labelled None).
@@ -302,6 +310,9 @@ def refine(cv1, run, frames, molecule, topology, work):
                       time=run.times).save_xtc(str(xtc))
         energy = run.log_weights[:, w] * kt
         energy_file = work / f"cv1-walker-{w + 1}-bias.txt"
+        # only the energies to reweight with: the bias as felt (a 'clock_bias' column)
+        # reaches about 45 kT here, a rescaled clock of 1e20 frame spacings (see refine's
+        # docstring), so the rescaled clock runs on these energies: a heuristic
         energy_file.write_text("bias\n" + "".join(f"{e:.6f}\n" for e in energy),
                                encoding="utf-8")
         # the CV values the engine reported (OpenMM's), labelled by basin

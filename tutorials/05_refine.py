@@ -13,7 +13,9 @@ slow torsion C3-C4-C5-C6 between closed, near 0 rad, and open, near pi rad):
    file beside it: the bias each frame felt at that time minus the bias's
    time-dependent offset c(t) (Tiwary and Parrinello, J. Phys. Chem. B 119, 736
    (2015), from memory). For a bias that changes during the run, the energies to
-   reweight with are the user's choice; this is one common choice.
+   reweight with are the user's choice; this is one common choice. A second column,
+   ``clock_bias``, holds the bias each frame felt: the rescaled clock of the lagged
+   pairs needs it (its offset matters there, unlike in the weights).
 4. The walkers' frames are labelled by the basins of CV 1 they visit
    (``cvdesign.pipeline.refine.label_basins``): frames in a basin core get the
    state, frames between cores are transition frames.
@@ -84,13 +86,14 @@ def biased_walkers(spec, system, n_walkers, n_steps, label, out_dir):
                             temperature=TEMPERATURE_K,
                             grid=(grid["lower"], grid["upper"], grid["n_bins"]),
                             periodic=grid["periodic"])
-    frames, energies = [], []
+    frames, energies, felt = [], [], []
 
     def observe(xyz):
         # Called before the kernels of this interval are deposited: the bias now is
         # the bias these frames felt.
         values = spec.evaluate(xyz.reshape((-1,) + xyz.shape[-2:])).reshape(xyz.shape[:2])
-        energies.append(bias.bias_at(values) - bias_offset(bias))
+        felt.append(bias.bias_at(values))
+        energies.append(felt[-1] - bias_offset(bias))
         frames.append(xyz.astype(np.float32))
         return system.slow_angle(xyz)
 
@@ -99,7 +102,7 @@ def biased_walkers(spec, system, n_walkers, n_steps, label, out_dir):
     run = run_biased(system, x0, n_steps, bias=bias, friction=FRICTION_PER_PS,
                      md_step_ps=TIMESTEP_PS, seed=SEED, report_interval=REPORT_STEPS,
                      observe=observe)
-    xyz, energy = np.concatenate(frames), np.concatenate(energies)
+    xyz, energy, clock = np.concatenate(frames), np.concatenate(energies), np.concatenate(felt)
     print(f"{label}: {n_steps} steps x {n_walkers} walkers in "
           f"{time.perf_counter() - start:.0f} s, {bias.n_kernels} kernels")
     pairs = []
@@ -109,8 +112,9 @@ def biased_walkers(spec, system, n_walkers, n_steps, label, out_dir):
         xtc = out_dir / f"walker-{w + 1:02d}.xtc"
         md.Trajectory(xyz[:, w], system.topology, time=times).save_xtc(str(xtc))
         energy_file = out_dir / f"walker-{w + 1:02d}-bias.txt"
-        energy_file.write_text("bias\n" + "".join(f"{e:.6f}\n" for e in energy[:, w]),
-                               encoding="utf-8")
+        # bias: to reweight with (minus c(t)); clock_bias: as felt, for the rescaled clock
+        energy_file.write_text("bias clock_bias\n" + "".join(
+            f"{e:.6f} {f:.6f}\n" for e, f in zip(energy[:, w], clock[:, w])), encoding="utf-8")
         pairs.append((xtc, energy_file))
     return pairs, run.observed, energy
 

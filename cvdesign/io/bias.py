@@ -19,7 +19,18 @@ energy of that frame in kJ/mol: the energy the bias *added* to the system's
 potential (positive where the bias pushes the system away, as a history of
 deposited kernels does). For a bias that changed during the run, give the
 energy to reweight with (for instance the bias minus its time-dependent
-offset), not the raw sum of kernels.
+offset ``c(t)``), not the raw sum of kernels.
+
+**The clock column.** The weights do not change when every energy of a state
+is shifted by one constant, but the rescaled clock (below) does: it needs the
+bias *as the system felt it* at each frame, ``V(s_t, t)``, zero where the bias
+has deposited nothing (Tiwary and Parrinello, Phys. Rev. Lett. 111, 230602,
+2013, from memory). For a bias that did not change (or one given as felt), the
+bias column serves both. For a bias given minus its time-dependent offset
+``c(t)``, the clock would be off by ``exp(-c(t)/kT)``, a factor that keeps
+changing during the run: add a column named ``clock_bias`` (:data:`CLOCK_COLUMN`)
+with the bias as felt, in kJ/mol; the clock is then taken from it and the
+weights from the bias column. The summary says which column each clock used.
 
 **Weights.** Within each state, the weights are normalized over *all* the
 state's frames, in every file, with one common constant: ``w_t = N_s
@@ -76,11 +87,14 @@ size is below :data:`LOW_ESS_FRACTION` of its frames or below
 
 **Rescaled time.** The *clock* of a file counts rescaled time in units of the
 frame spacing: ``clock[f] = sum_{u < f} exp(V_u / kT)`` (the bias of the frame
-that starts each interval; absolute, unshifted, so a bias that vanishes at the
-barrier keeps real time there). A lagged pair at a lag of ``L`` frame spacings
-pairs frame ``t`` with the first frame ``u`` whose clock reaches ``clock[t] +
-L``. The clock is a function of the file's bias values alone, so pairs do not
-depend on how frames are split into chunks or tasks.
+that starts each interval, from the ``clock_bias`` column when the file has one;
+absolute, unshifted, so a bias that vanishes at the barrier keeps real time
+there). A lagged pair at a lag of ``L`` frame spacings pairs frame ``t`` with
+whichever of the first frame whose clock reaches ``clock[t] + L`` and the frame
+before it is closer to that time
+(:meth:`cvdesign.passes.SegmentLayout.partners`). The clock is a function of the
+file's bias values alone, so pairs do not depend on how frames are split into
+chunks or tasks.
 """
 
 import math
@@ -93,7 +107,8 @@ from ..constants import BOLTZMANN_KJ_MOL_K
 from ..errors import InputError
 
 __all__ = ["read_bias_file", "is_number", "kish_ess", "Reweighting", "reweight", "LOW_ESS_FRACTION",
-           "LOW_ESS_FRAMES", "MAX_RESCALE_EXPONENT", "BIAS_COLUMN", "COARSE_LAG_FRACTION"]
+           "LOW_ESS_FRAMES", "MAX_RESCALE_EXPONENT", "BIAS_COLUMN", "CLOCK_COLUMN",
+           "COARSE_LAG_FRACTION"]
 
 #: A state's Kish effective sample size below this fraction of its frames gets a warning
 #: (common practice: reweighted averages from a few percent of the frames are noisy).
@@ -105,6 +120,10 @@ LOW_ESS_FRAMES = 100
 MAX_RESCALE_EXPONENT = 600.0
 #: Name of the column read by default from a bias-energy file with several columns.
 BIAS_COLUMN = "bias"
+#: Name of the optional column with the bias each frame felt, for the rescaled clock
+#: (see the module's text: the clock needs the bias as felt, the weights may take it minus
+#: a time-dependent offset).
+CLOCK_COLUMN = "clock_bias"
 #: A lag gets a warning when more than this share of the biased frames' weight is in
 #: rescaled steps longer than half of it (:meth:`Reweighting.coarse_fraction`; common
 #: practice).
@@ -183,12 +202,13 @@ def _bias_column(name, header, width, column):
     return None
 
 
-def read_bias_file(path, column=None):
+def read_bias_file(path, column=None, *, with_clock=False):
     """Bias energies (kJ/mol) of every frame, from a bias-energy file.
 
     The format is described in :mod:`cvdesign.io.bias`: one row per frame,
     optional header row, ``#`` comments, columns separated by commas or white
-    space; the only column, the column named ``bias``, or `column`.
+    space; the only column, the column named ``bias``, or `column`; and, with
+    `with_clock`, the ``clock_bias`` column when the header has one.
 
     Parameters
     ----------
@@ -198,11 +218,15 @@ def read_bias_file(path, column=None):
         Column with the energies: a number counted from 1, or a header name
         (case does not matter). None: the only column, or the one named
         ``bias``.
+    with_clock : bool, default=False
+        Also return the ``clock_bias`` column (the bias as felt, for the
+        rescaled clock), or None when the file has none.
 
     Returns
     -------
     ndarray of shape (n_frames,), float64
-        Bias energy of each frame, kJ/mol.
+        Bias energy of each frame, kJ/mol; with `with_clock`, a pair of it and
+        the clock's energies (or None).
 
     Raises
     ------
@@ -237,12 +261,24 @@ def read_bias_file(path, column=None):
         raise InputError(f"bias-energy file {name!r} has {width} columns and {what}; say which "
                          "column holds the bias energies (--bias-column N|NAME, bias_column= "
                          "in Python)")
+    values = _column_values(name, rows, width, k, header is not None)
+    if not with_clock:
+        return values
+    lower = [] if header is None else [h.lower() for h in header]
+    clock = None
+    if CLOCK_COLUMN in lower:
+        clock = _column_values(name, rows, width, lower.index(CLOCK_COLUMN), True)
+    return values, clock
+
+
+def _column_values(name, rows, width, k, has_header):
+    """The finite numbers of column `k` (0-based) of a bias-energy file's rows."""
     values = np.empty(len(rows))
     for r, (n, cells) in enumerate(rows):
         if len(cells) != width:
             raise InputError(f"bias-energy file {name!r}, line {n}: {len(cells)} column"
                              f"{'s' if len(cells) != 1 else ''}, but the "
-                             f"{'header' if header is not None else 'first line'} has {width}; "
+                             f"{'header' if has_header else 'first line'} has {width}; "
                              "give the same columns on every line")
         try:
             v = float(cells[k])
@@ -329,6 +365,9 @@ class Reweighting:
         that crossed between states), so that populations mean something.
     paths : dict of int to (str, str)
         Per biased segment, (trajectory file, bias-energy file).
+    own_clock : set of int
+        The biased segments whose clock comes from their file's ``clock_bias``
+        column (the others' from the bias column).
     """
 
     temperature_k: float
@@ -342,6 +381,7 @@ class Reweighting:
     multi_state: bool
     paths: dict = field(default_factory=dict)
     groups: dict = field(default_factory=dict)
+    own_clock: set = field(default_factory=set)
 
     @property
     def kt(self):
@@ -516,6 +556,18 @@ class Reweighting:
                 "(Voter, J. Chem. Phys. 1997), otherwise the timescales are approximate; "
                 "integrated autocorrelation times (which size the bootstrap blocks) stay in "
                 "the runs' own simulation time")
+            own = {self.paths[si][1] for si in self.own_clock if si in self.paths}
+            other = {p for si, (_, p) in self.paths.items() if si not in self.own_clock}
+            if own:
+                notes.append("rescaled clock from the 'clock_bias' column (the bias as felt) "
+                             "of " + ", ".join(sorted(own)))
+            if other:
+                notes.append(
+                    "rescaled clock from the bias column itself of " + ", ".join(sorted(other))
+                    + ": right for a bias that did not change during the run, or a column "
+                    "holding the bias each frame felt; a bias given minus its time-dependent "
+                    "offset c(t) (for the weights) puts the clock off by exp(-c(t)/kT), so "
+                    "add a 'clock_bias' column with the bias as felt (cvdesign.io.bias)")
         return notes, warnings
 
 
@@ -578,11 +630,13 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
     n_states = len(states)
     kt = BOLTZMANN_KJ_MOL_K * float(temperature_k)
     biased = [si for si, seg in enumerate(segments) if seg.bias is not None]
-    exps, codes = {}, {}
+    exps, codes, felt = {}, {}, {}
     for si in biased:
         seg = segments[si]
         a = np.asarray(seg.bias, dtype=np.float64) / kt
         exps[si], codes[si] = a, _state_codes(seg, a.size, index)
+        clock_bias = getattr(seg, "clock_bias", None)
+        felt[si] = a if clock_bias is None else np.asarray(clock_bias, dtype=np.float64) / kt
     # per state: the largest exponent c_s, then sums of r = exp(a - c_s) over all its files
     top = np.full(n_states, -np.inf)
     for si in biased:
@@ -604,10 +658,11 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
     for si in biased:
         c, a = codes[si], exps[si]
         weights[si] = raw[si] * scale[c]  # (frames without a state: raw is 0)
-        k = int(np.argmax(np.where(c >= 0, a, -np.inf))) if (c >= 0).any() else int(np.argmax(a))
-        max_exp[si] = (float(a[k]), k)
+        f = felt[si]  # the clock's exponents: what the overflow check is about
+        k = int(np.argmax(np.where(c >= 0, f, -np.inf))) if (c >= 0).any() else int(np.argmax(f))
+        max_exp[si] = (float(f[k]), k)
         with np.errstate(over="ignore"):
-            clocks[si] = np.concatenate([[0.0], np.cumsum(np.exp(a))])
+            clocks[si] = np.concatenate([[0.0], np.cumsum(np.exp(f))])
         paths[si] = (str(segments[si].path), str(segments[si].bias_path))
     with np.errstate(divide="ignore"):
         log_z = np.where(frames > 0, top + np.log(np.where(total > 0, total, 1.0)), -np.inf)
@@ -615,8 +670,9 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
                                          where=squares > 0), np.nan)
     multi = any(np.unique(codes[si][codes[si] >= 0]).size > 1 for si in biased)
     groups = _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames)
+    own_clock = {si for si in biased if getattr(segments[si], "clock_bias", None) is not None}
     return Reweighting(float(temperature_k), list(states), weights, clocks, frames, ess, log_z,
-                       max_exp, multi, paths, groups)
+                       max_exp, multi, paths, groups, own_clock)
 
 
 def _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames):

@@ -596,6 +596,9 @@ class Segment:
         The bias-energy file it was read from.
     bias_column : str or None
         The column of that file, as given (None: the default column).
+    clock_bias : ndarray of shape (n_frames,) or None
+        The bias each frame felt, kJ/mol, from the file's ``clock_bias``
+        column, for the rescaled clock (None: the clock uses `bias`).
     """
 
     path: Path
@@ -606,6 +609,7 @@ class Segment:
     bias: np.ndarray | None = field(default=None, compare=False, repr=False)
     bias_path: Path | None = None
     bias_column: str | None = None
+    clock_bias: np.ndarray | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass
@@ -813,26 +817,26 @@ class Source:
         return self
 
     def _read_bias(self, path, bias, column):
-        """(energies, bias path, column) of a trajectory's bias-energy file, checked, or
-        (None, None, None) without one."""
+        """(energies, bias path, column, clock energies or None) of a trajectory's
+        bias-energy file, checked, or (None, None, None, None) without one."""
         if bias is None:
             if column is not None:
                 raise InputError(f"bias_column={column!r} for {str(path)!r} goes with a "
                                  "bias-energy file (bias=...)")
-            return None, None, None
+            return None, None, None, None
         from .bias import read_bias_file
 
         if self.temperature is None:
             raise InputError(f"a bias-energy file ({str(bias)!r}) needs the temperature of the "
                              "biased run: give temperature=K to Source (--temperature K on the "
                              "command line)")
-        energies = read_bias_file(bias, column)
+        energies, clock = read_bias_file(bias, column, with_clock=True)
         n_file = file_frames(path)
         if energies.size != n_file:
             raise InputError(f"bias-energy file {str(bias)!r} holds {energies.size} bias "
                              f"energies, but trajectory {str(path)!r} has {n_file} frames; give "
                              "one bias energy per frame of the whole trajectory, frame 0 first")
-        return energies, Path(bias), None if column is None else str(column)
+        return energies, Path(bias), None if column is None else str(column), clock
 
     @property
     def biased(self):
@@ -961,7 +965,7 @@ class Source:
             seg = self.segments[si]
             out._add_state(name)
             out.segments.append(Segment(seg.path, str(name), None, None, None, seg.bias,
-                                        seg.bias_path, seg.bias_column))
+                                        seg.bias_path, seg.bias_column, seg.clock_bias))
         out._checked, out._stored_steps = self._checked, self._stored_steps
         out._time_notes = self._time_notes
         return out

@@ -341,6 +341,9 @@ class OpenMMBiasedRun(BiasedRun):
         ``(V(s, t) - c(t)) / kT`` of every reported frame, with the bias and
         :func:`reweighting_offset` of the interval the frame was sampled in:
         ``exp`` of it reweights the frames to the unbiased ensemble.
+    felt_bias : ndarray of the shape of ``cv``
+        ``V(s, t)`` of every reported frame, kJ/mol: the bias it felt, the energy
+        of the rescaled clock (a bias-energy file's ``clock_bias`` column).
     cv_deviation : float or None
         Largest ``|s_OpenMM - reference_cv(x)|`` over the deposited frames,
         units of the CV, when a `reference_cv` was given.
@@ -350,6 +353,7 @@ class OpenMMBiasedRun(BiasedRun):
     """
 
     log_weights: np.ndarray = None
+    felt_bias: np.ndarray = None
     cv_deviation: float = None
     outside_grid: float = 0.0
 
@@ -429,7 +433,7 @@ def run_openmm_biased(system, cv_force, x0, n_steps, *, bias, friction, md_step_
     n_chunks = int(n_steps) // interval
     first = min(int(float(average_from) * n_chunks), max(n_chunks - 1, 0))
     total = np.zeros_like(bias.values)
-    cvs, observed, log_w = [], [], []
+    cvs, observed, log_w, felt = [], [], [], []
     deviation, outside = None, 0
     lo_seen, hi_seen = np.inf, -np.inf
     offset = 0.0
@@ -455,7 +459,8 @@ def run_openmm_biased(system, cv_force, x0, n_steps, *, bias, friction, md_step_
                         deviation = d if deviation is None else max(deviation, d)
         lo_seen = min(lo_seen, frame_cv.min())
         hi_seen = max(hi_seen, frame_cv.max())
-        log_w.append((bias.bias_at(frame_cv) - offset) / bias.kT)
+        felt.append(bias.bias_at(frame_cv))
+        log_w.append((felt[-1] - offset) / bias.kT)
         cvs.append(frame_cv)
         if observe is not None:
             observed.append(np.asarray(frame_obs).reshape((len(runs), -1) + np.shape(
@@ -483,7 +488,7 @@ def run_openmm_biased(system, cv_force, x0, n_steps, *, bias, friction, md_step_
         positions=positions if walkers else positions[0],
         velocities=velocities if walkers else velocities[0], mean_values=mean,
         observed=stack(observed) if observe is not None else None,
-        log_weights=stack(log_w), cv_deviation=deviation,
+        log_weights=stack(log_w), felt_bias=stack(felt), cv_deviation=deviation,
         outside_grid=outside / max(n_chunks * len(runs), 1))
 
 
