@@ -43,6 +43,8 @@ from cvdesign.errors import SchedulerUnreachableError
 from cvdesign.parallel import DaskExecutor
 from cvdesign.passes import PoolFeaturizer, ScreeningPass, plan_tasks, run_pass
 from cvdesign.pipeline.explore import propose_states
+from cvdesign.pipeline.refine import (basins_from_spec, compare_specs, fisher_separation,
+                                      label_basins)
 from cvdesign.pool import build_pool
 from cvdesign.testbed.host_guest import write_host_guest
 
@@ -810,6 +812,26 @@ API_CASES = [
              .add(c.open, "runs"), lag=1.0))(c.file("b.txt", _bias_text(2000))),
          InputError, r"runs '.*open-1\.xtc' have no bias energies while other runs do: .* "
                      r"or label the states and give them with --state / --labelled"),
+    Case("api-compare-specs-with-an-invalid-spec-dict",
+         lambda c: (lambda doc: lambda: compare_specs(doc, {**doc, "terms": []}))(
+             load_spec(c.s("cv.json")).to_dict()),
+         InputError, r"^second: the dict given is not a valid spec \(\$\.terms: .*\); give a "
+                     r"Spec \(load_spec\) or a spec dict of suggest\(\.\.\.\)\.specs"),
+    Case("api-basins-from-spec-of-one-state",
+         lambda c: (lambda doc: lambda: basins_from_spec(
+             {**doc, "states": dict(list(doc["states"].items())[:1])}))(
+             load_spec(c.s("cv.json")).to_dict()),
+         InputError, r"^the spec has one state, '.*': basin cores need two or more states; give "
+                     r"the cores yourself"),
+    Case("api-label-basins-temperature-not-a-number",
+         lambda c: lambda: label_basins([0.0, 2.0], {"a": (-1, 1), "b": (1.5, 3)},
+                                        bias=[0.0, 1.0], temperature="300 K"),
+         InputError, r"^temperature='300 K': a bias needs the positive temperature of the run, K"),
+    Case("api-fisher-separation-of-three-states",
+         lambda c: lambda: fisher_separation([0.0, 1.0, 5.0, 6.0, 9.0], list("aabbc"),
+                                             ("a", "b", "c")),
+         InputError, r"^states=\('a', 'b', 'c'\) must name two different states \(the ratio "
+                     r"compares two\); got 3: call fisher_separation once per pair"),
     Case("api-funnel-from-source-with-a-file-name",
          lambda c: lambda: size_funnel_from_source("run.xtc", [0, 1, 2], [7]), InputError,
          r"size_funnel_from_source\(\) needs a Source of the bound-state trajectories, not str"),

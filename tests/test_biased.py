@@ -923,3 +923,28 @@ def test_a_pass_with_several_lags_reads_the_halo_of_every_lag_in_a_biased_run(tm
         np.testing.assert_allclose([m.count, m.sum_x[0], m.sum_xy[0], m.sum_yy[0]],
                                    [w[t].sum(), w[t] @ x[t], w[t] @ (x[t] * x[u[t]]),
                                     w[t] @ x[u[t]] ** 2], rtol=1e-12)
+
+
+def test_the_bias_module_describes_the_rescaled_time_pair_that_partners_takes(tmp_path):
+    """cvdesign.io.bias says which frame a rescaled-time pair takes; SegmentLayout.partners
+    decides it. A clock where the frame before the first one reaching clock[t] + lag is the
+    closer: the pair goes to that one, and the module's text says so (it once said "the
+    first frame u whose clock reaches clock[t] + L")."""
+    import cvdesign.io.bias as bias_module
+
+    traj = _write_dcd(tmp_path / "run.dcd", np.ones((5, 1, 3)))
+    # clock steps exp(V/kT) of 1, 2.4, 0.2, 1: clock 0, 1, 3.4, 3.6, 4.6 frame spacings
+    v = KT * np.log([1.0, 2.4, 0.2, 1.0, 1.0])
+    src = Source(_topology(1), temperature=300.0)
+    src.add(traj, "a", bias=_write_bias(tmp_path / "run.bias", v))
+    lay = plan_tasks(src, leaf_frames=8).layouts[0]
+    np.testing.assert_allclose(lay.clock[:5], [0.0, 1.0, 3.4, 3.6, 4.6], rtol=1e-9)
+    # t=0: frame 3 (clock 3.6) is the first to reach 3.45 and 3.55; frame 2 (3.4) is closer
+    # to 3.45, frame 3 to 3.55. t=1, lag 1: frame 2 is the first to reach 2, and the frame
+    # before it is t itself.
+    assert lay.partners(np.array([0]), 3.45).tolist() == [2]
+    assert lay.partners(np.array([0]), 3.55).tolist() == [3]
+    assert lay.partners(np.array([1]), 1.0).tolist() == [2]
+    doc = " ".join(bias_module.__doc__.split())
+    assert "closest to ``clock[t] + L``" in doc and "the frame before it" in doc
+    assert "with the first frame ``u`` whose clock reaches" not in doc

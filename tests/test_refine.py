@@ -2,6 +2,9 @@
 comparison of two CVs (cvdesign.pipeline.refine)."""
 
 import math
+import re
+from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -105,8 +108,70 @@ def test_basins_from_spec_uses_means_and_spreads():
                  states={"slowA": {"mean": 0.27, "std": 0.01, "n_frames": 10},
                          "slowB": {"mean": 0.39, "std": 0.02, "n_frames": 10}})
     assert basins_from_spec(spec, core=2.0) == {"slowA": (0.25, 0.29), "slowB": (0.35, 0.43)}
-    with pytest.raises(InputError, match="'slowA' .* and 'slowB' .* overlap"):
-        basins_from_spec(spec, core=4.0)
+    # the means are 0.12 apart and the spreads add up to 0.03: the cores touch at core=4
+    with pytest.raises(InputError, match=r"the basin cores 'slowA' and 'slowB' overlap \(means "
+                       r"0\.12 apart, spreads 0\.01 and 0\.02\) at core=4\.5: give a smaller "
+                       r"core=, e.g\. core=3\.6 \(they touch at core=4\)"):
+        basins_from_spec(spec, core=4.5)
+    assert basins_from_spec(spec, core=3.6) == {"slowA": (0.234, 0.306),
+                                                "slowB": (0.318, 0.462)}
+
+
+def test_basins_from_spec_suggests_a_core_that_works_across_the_period():
+    """A periodic CV with states on either side of the cut: the suggested core is below the
+    one at which the cores touch the short way round the circle."""
+    spec = SimpleNamespace(states={"a": {"mean": 3.0, "std": 0.1},
+                                   "b": {"mean": -2.9, "std": 0.2},
+                                   "c": {"mean": 0.0, "std": 0.5}},
+                           periodic=True, period=2 * np.pi)
+    gap = 2 * np.pi - 5.9  # a and b, across +-pi
+    touch = re.escape(f"{gap / 0.3:g}")  # 1.27728: 0.9 of it rounds down to 1.1
+    with pytest.raises(InputError, match=r"'a' and 'b' overlap .* at core=2: give a smaller "
+                       rf"core=, e.g\. core=1\.1 \(they touch at core={touch}\)"):
+        basins_from_spec(spec, core=2.0)
+    cores = basins_from_spec(spec, core=1.1)
+    assert label_basins([3.1, -3.1, 0.0, 1.0], cores, period=2 * np.pi).labels.tolist() == [
+        "a", "b", "c", None]
+
+
+def test_basins_from_spec_refuses_a_spec_of_one_state_saying_what_to_do():
+    one = SimpleNamespace(states={"bound": {"mean": 1.0, "std": 0.1}})
+    with pytest.raises(InputError, match=r"^the spec has one state, 'bound': basin cores need "
+                       r"two or more states; give the cores yourself, label_basins\(values, "
+                       r"\{state: \(lo, hi\), \.\.\.\}\) with a core for each basin"):
+        basins_from_spec(one)
+    with pytest.raises(InputError, match=r"^the spec has no state: basin cores need two"):
+        basins_from_spec(SimpleNamespace(states={}))
+    same = SimpleNamespace(states={"a": {"mean": 1.0, "std": 0.1}, "b": {"mean": 1.0,
+                                                                        "std": 0.2}})
+    with pytest.raises(InputError, match=r"'a' and 'b' overlap \(means 0 apart.*\): this CV "
+                       r"does not separate them"):
+        basins_from_spec(same)
+
+
+@pytest.mark.parametrize("call, message", [
+    (lambda: basins_from_spec(SimpleNamespace(states={}), core="x"),
+     r"^core='x': give a positive number of spreads, e\.g\. core=1\.0$"),
+    (lambda: basins_from_spec(SimpleNamespace(states={}), core=None),
+     r"^core=None: give a positive number"),
+    (lambda: label_basins([0.0], CORES, bias=[0.0], temperature="x"),
+     r"^temperature='x': a bias needs the positive temperature of the run, K"),
+    (lambda: label_basins([0.0], CORES, timestep_ps="x"),
+     r"^timestep_ps='x': give the time between frames as a positive number of ps"),
+    (lambda: label_basins([0.0], CORES, period="x"),
+     r"^period='x': give the period as a positive length"),
+    (lambda: fisher_separation([0, 1, 5, 6, 10, 11], list("aabbcc"), ("a", "b", "c")),
+     r"states=\('a', 'b', 'c'\) must name two different states .* got 3: call "
+     r"fisher_separation once per pair"),
+    (lambda: fisher_separation([0, 1, 5, 6], list("aabb"), "ab"),
+     r"states='ab' must name two different states .* got 1$"),
+    (lambda: fisher_separation([0, 1, 5, 6], list("aabb"), ("a", "a")),
+     r"states=\('a', 'a'\) must name two different states"),
+], ids=["core-text", "core-none", "temperature-text", "timestep-text", "period-text",
+        "fisher-three-states", "fisher-one-string", "fisher-same-state"])
+def test_arguments_that_are_not_numbers_or_pairs_are_refused_by_name(call, message):
+    with pytest.raises(InputError, match=message):
+        call()
 
 
 def test_compare_specs_matches_terms_by_atoms_and_standardizes_weights():
@@ -127,6 +192,43 @@ def test_compare_specs_matches_terms_by_atoms_and_standardizes_weights():
     assert compare_specs(one, flipped).cosine == pytest.approx(6 / math.sqrt(8 * 17))
     other = _spec([("t", "dihedral", [0, 1, 2, 3], "sin", 1.0, 1.0)])
     assert compare_specs(one, other).cosine == 0.0
+
+
+def _suggested_documents(tmp_path):
+    """Two spec documents (dicts, as ``suggest(...).specs`` holds them) of the two-wells toy:
+    a distance, and the same distance with a torsion's cos term."""
+    one = _spec([("x", "distance", [0, 3], "identity", 0.5, 1.0)],
+                states={"slowA": {"mean": -1.0, "std": 0.2, "n_frames": 10},
+                        "slowB": {"mean": 1.0, "std": 0.4, "n_frames": 10}})
+    two = _spec([("p", "distance", [0, 3], "identity", 1.0, 2.0),
+                 ("t", "dihedral", [0, 1, 2, 3], "cos", 1.0, 1.0)])
+    return one, two, one.to_dict(), two.to_dict()
+
+
+def test_compare_specs_and_basins_from_spec_take_spec_dicts(tmp_path):
+    one, two, one_doc, two_doc = _suggested_documents(tmp_path)
+    expected = compare_specs(one, two)
+    assert expected.kept == ("identity(distance p)",) and expected.added == ("cos(dihedral t)",)
+    assert compare_specs(one_doc, two_doc) == expected
+    assert compare_specs(one, two_doc) == expected
+    assert basins_from_spec(one_doc, core=2.0) == basins_from_spec(one, core=2.0) == {
+        "slowA": (-1.4, -0.6), "slowB": (0.2, 1.8)}
+
+
+def test_compare_specs_refuses_what_is_not_a_spec_naming_the_argument(tmp_path):
+    one, _, one_doc, two_doc = _suggested_documents(tmp_path)
+    del two_doc["terms"]
+    with pytest.raises(InputError, match=r"^second: the dict given is not a valid spec \(\$: "
+                       r".*'terms'.*\); give a Spec \(load_spec\) or a spec dict"):
+        compare_specs(one, two_doc)
+    with pytest.raises(InputError, match=r"^first='cv-01\.json' is a path or text, not a spec: "
+                       r"read the file with load_spec\(path\) first"):
+        compare_specs("cv-01.json", one)
+    with pytest.raises(InputError, match=r"^second must be a Spec \(load_spec\) or a spec dict "
+                       r"\(an entry of suggest\(\.\.\.\)\.specs\); got a list"):
+        compare_specs(one, [one_doc])
+    with pytest.raises(InputError, match=r"^spec must be a Spec .* got a NoneType"):
+        basins_from_spec(None)
 
 
 def test_fisher_separation_weighs_frames_and_wraps_periodic_values():
@@ -158,3 +260,85 @@ def test_bad_input_is_refused_with_the_argument_named():
         label_basins([0.0], {"a": (0, 1), "b": (3, 2)})
     with pytest.raises(InputError, match="as wide as the period"):
         label_basins([0.0], {"a": (0, 7), "b": (8, 9)}, period=2 * np.pi)
+
+
+# ---------------------------------------------------------------------------- README example
+README = Path(__file__).resolve().parent.parent / "README.md"
+BOND_NM, BOND_PER_X = 0.6, 0.15  # the well's x mapped onto a bond of 0.6 + 0.15 x nm
+
+
+def _readme_refine_block():
+    """The code block of README's section 'Refining a CV from a biased run', padded with
+    blank lines so that a traceback gives README's own line numbers."""
+    text = README.read_text(encoding="utf-8")
+    head, section = text.split("## Refining a CV from a biased run", 1)
+    before, rest = section.split("```python\n", 1)
+    return "\n" * (head + before).count("\n") + "\n" + rest.split("```", 1)[0]
+
+
+def _write_bond_runs(out, name, runs, top, well=None):
+    """XTC files of a two-atom molecule whose bond is 0.6 + 0.15 x nm for the double well's
+    x (invented), and with `well` a bias-energy file of each (kJ/mol, the static bias of the
+    x the stored bond gives back)."""
+    import mdtraj as md
+    files = []
+    for i, x in enumerate(runs):
+        xyz = np.zeros((x.size, 2, 3), dtype=np.float32)
+        xyz[:, 1, 0] = BOND_NM + BOND_PER_X * x
+        path = out / f"{name}-{i}.xtc"
+        md.Trajectory(xyz, top, time=np.arange(x.size) * 0.1).save_xtc(str(path))
+        if well is None:
+            files.append(str(path))
+            continue
+        stored = (md.load(str(path), top=top).xyz[:, 1, 0] - BOND_NM) / BOND_PER_X
+        bias = out / f"{name}-{i}.bias"
+        bias.write_text("bias\n" + "".join(f"{v!r}\n" for v in well.bias(stored).tolist()),
+                        encoding="utf-8")
+        files.append((str(path), str(bias)))
+    return files
+
+
+def test_the_readme_refinement_example_runs_as_written(tmp_path, monkeypatch, capsys):
+    """README's refinement loop, executed as printed, on an invented molecule: the testbed's
+    tilted double well (cvdesign.testbed.wells) as a bond length. CV 1 comes from unbiased
+    runs that stay in one well each; the walkers are biased runs that cross the barrier."""
+    import json
+
+    import mdtraj as md
+
+    from cvdesign import suggest
+    from cvdesign.testbed.wells import DoubleWell
+    well = DoubleWell()
+    top = md.Topology()
+    res = top.add_residue("BND", top.add_chain())
+    for atom in ("C1", "C2"):
+        top.add_atom(atom, md.element.carbon, res)
+    md.Trajectory(np.array([[[0, 0, 0], [BOND_NM, 0, 0]]], dtype=np.float32),
+                  top).save_pdb(str(tmp_path / "mol.pdb"))
+    short = well.run(40, 200, md_step_ps=2e-3, stride=25, biased=False, seed=5)
+    basin = {"left": [x for x in short if (x < 0).all()][:3],
+             "right": [x for x in short if (x > 0).all()][:3]}
+    assert all(len(v) == 3 for v in basin.values())
+    src = Source(str(tmp_path / "mol.pdb"))
+    for name, runs in basin.items():
+        for path in _write_bond_runs(tmp_path, name, runs, top):
+            src.add(path, name)
+    cv1 = suggest(src, n_bootstrap=0).specs[0]
+    (tmp_path / "cv-03.json").write_text(json.dumps(cv1), encoding="utf-8")
+    walkers = _write_bond_runs(tmp_path, "walker",
+                               well.run(2, 1000, md_step_ps=2e-3, stride=25, biased=True,
+                                        seed=6), top, well=well)
+    before = sorted(p.name for p in tmp_path.iterdir())
+    monkeypatch.chdir(tmp_path)
+    capsys.readouterr()
+    exec(compile(_readme_refine_block(), str(README), "exec"), {"walkers": walkers})
+    out = capsys.readouterr().out.splitlines()
+    assert sorted(p.name for p in tmp_path.iterdir()) == before  # the example writes nothing
+    # one summary per walker, each with crossings between the wells' cores
+    visits = [line for line in out if "transition frames" in line]
+    assert len(visits) == 2 and all(int(re.search(r"; (\d+) crossings", v).group(1)) > 0
+                                    for v in visits), out
+    # the only candidate is the bond: CV 2 keeps it, in the same direction
+    assert out[-4:] == ["terms kept: identity(dist BND0:C1-C2)", "terms added: none",
+                        "terms removed: none",
+                        "|cosine| of the standardized weight vectors: 1.000"], out

@@ -88,13 +88,16 @@ size is below :data:`LOW_ESS_FRACTION` of its frames or below
 **Rescaled time.** The *clock* of a file counts rescaled time in units of the
 frame spacing: ``clock[f] = sum_{u < f} exp(V_u / kT)`` (the bias of the frame
 that starts each interval, from the ``clock_bias`` column when the file has one;
-absolute, unshifted, so a bias that vanishes at the barrier keeps real time
-there). A lagged pair at a lag of ``L`` frame spacings pairs frame ``t`` with
-whichever of the first frame whose clock reaches ``clock[t] + L`` and the frame
-before it is closer to that time
-(:meth:`cvdesign.passes.SegmentLayout.partners`). The clock is a function of the
-file's bias values alone, so pairs do not depend on how frames are split into
-chunks or tasks.
+absolute, unshifted, so a bias that vanishes at the
+barrier keeps real time there). A lagged pair at a lag of ``L`` frame spacings
+pairs frame ``t`` with the frame whose clock is closest to ``clock[t] + L``
+among the frames after ``t`` up to the first frame ``u`` whose clock reaches
+it: ``u`` or the frame before it (a tie: ``u``; only ``u`` when the frame
+before it is ``t``), so the pairs' rescaled lags scatter about ``L`` by at most
+half a step either way (``passes.keys.SegmentLayout.partners``); no pair when
+no frame reaches it. The clock is a function of the file's bias
+values alone, so pairs do not depend on how frames are split into chunks or
+tasks.
 """
 
 import math

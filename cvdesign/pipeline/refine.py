@@ -21,13 +21,16 @@ Units: the coordinate's own (CV units; rad for an angle), kJ/mol, K, ps.
 """
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
+from os import PathLike
 
 import numpy as np
 
 from ..constants import BOLTZMANN_KJ_MOL_K
-from ..errors import InputError
+from ..errors import InputError, SpecError
 from ..io.bias import kish_ess
+from ..spec import Spec
 
 __all__ = ["BasinVisits", "SpecComparison", "basins_from_spec", "compare_specs",
            "fisher_separation", "label_basins"]
@@ -48,14 +51,42 @@ def _finite_vector(values, name):
     return x
 
 
+def _positive(value, name, what):
+    """`value` as a float when it is a finite positive number; else an InputError that
+    names the argument `name` and says what to give (`what`)."""
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        v = math.nan
+    if not (math.isfinite(v) and v > 0):
+        raise InputError(f"{name}={value!r}: {what}")
+    return v
+
+
 def _check_period(period):
     if period is None:
         return None
-    p = float(period)
-    if not (math.isfinite(p) and p > 0):
-        raise InputError(f"period={period!r} must be a positive length in the coordinate's "
-                         "units, or None for a coordinate that is not periodic")
-    return p
+    return _positive(period, "period", "give the period as a positive length in the "
+                     "coordinate's units, or None for a coordinate that is not periodic")
+
+
+def _as_spec(spec, name, needs):
+    """`spec` itself when it has the attributes `needs` (a Spec, or a stand-in), or a Spec
+    from a spec dict such as ``suggest(...).specs[0]``, validated by ``Spec.from_dict``;
+    anything else is refused naming the argument `name`."""
+    if isinstance(spec, Mapping):
+        try:
+            return Spec.from_dict(spec)
+        except SpecError as exc:
+            raise InputError(f"{name}: the dict given is not a valid spec ({exc}); give a "
+                             "Spec (load_spec) or a spec dict of suggest(...).specs") from exc
+    if isinstance(spec, (str, bytes, PathLike)):
+        raise InputError(f"{name}={spec!r:.80} is a path or text, not a spec: read the file "
+                         "with load_spec(path) first")
+    if not all(hasattr(spec, a) for a in needs):
+        raise InputError(f"{name} must be a Spec (load_spec) or a spec dict (an entry of "
+                         f"suggest(...).specs); got a {type(spec).__name__}")
+    return spec
 
 
 def _inside(values, lo, hi, period):
@@ -99,14 +130,40 @@ def _check_basins(basins, period):
     return cores
 
 
+def _touching_core(stats, period):
+    """The `core` (in spreads) at which two of the cores of `stats` ({state: (mean, std)},
+    two or more states) first touch, and which: (limit, what). With a period, cores
+    narrower than it follow (the means of two states are at most half a period apart)."""
+    best = (math.inf, "")
+    names = list(stats)
+    for i, a in enumerate(names):
+        ma, sa = stats[a]
+        for b in names[i + 1:]:
+            mb, sb = stats[b]
+            gap = abs(ma - mb) if period is None else abs((ma - mb + period / 2) % period
+                                                          - period / 2)
+            if gap / (sa + sb) < best[0]:
+                best = (gap / (sa + sb), f"the basin cores {a!r} and {b!r} overlap (means "
+                        f"{gap:g} apart, spreads {sa:g} and {sb:g})")
+    return best
+
+
+def _round_down(x):
+    """A round number (two significant digits) at most 0.9 x, x > 0."""
+    v = 0.9 * x
+    step = 10.0 ** (math.floor(math.log10(v)) - 1)
+    return round(math.floor(round(v / step, 9)) * step, 12)
+
+
 def basins_from_spec(spec, core=1.0):
     """Basin cores of a spec's states: each state's mean ± `core` spreads, in CV units.
 
     Parameters
     ----------
-    spec : cvdesign.Spec
+    spec : cvdesign.Spec or dict
         A spec whose ``states`` hold each state's ``mean`` and ``std`` (every
-        spec written by ``suggest`` does), in CV units.
+        spec written by ``suggest`` does), in CV units, with two or more
+        states; or a spec document (an entry of ``suggest(...).specs``).
     core : float, default=1.0
         Half width of each core in units of the state's spread. Frames outside
         every core are transition frames; ``1.0`` keeps about two thirds of a
@@ -116,7 +173,16 @@ def basins_from_spec(spec, core=1.0):
     -------
     dict of str to (float, float)
         ``{state: (lo, hi)}``, CV units; checked not to overlap (an error names
-        the two states and suggests a smaller `core`).
+        the two states and suggests a smaller `core`, a value at most 0.9
+        times the one at which the cores touch).
+
+    Raises
+    ------
+    cvdesign.errors.InputError
+        For a `core` that is not a positive number, something that is not a
+        spec, a spec with fewer than two states or a state without a positive
+        spread, and cores that overlap at this `core` (along the circle for a
+        periodic CV).
 
     Examples
     --------
@@ -125,22 +191,44 @@ def basins_from_spec(spec, core=1.0):
     ...                                "b": {"mean": 1.0, "std": 0.4}})
     >>> basins_from_spec(spec, core=2.0)
     {'a': (-1.4, -0.6), 'b': (0.2, 1.8)}
+    >>> basins_from_spec(spec, core=4.0)  # the cores touch at core=2/0.6
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: the basin cores 'a' and 'b' overlap (means 2 apart, spreads 0.2 and 0.4) at core=4: give a smaller core=, e.g. core=3 (they touch at core=3.33333)
     """
-    c = float(core)
-    if not (math.isfinite(c) and c > 0):
-        raise InputError(f"core={core!r} must be a positive number of spreads")
+    spec = _as_spec(spec, "spec", ("states",))
+    c = _positive(core, "core", "give a positive number of spreads, e.g. core=1.0")
+    period = getattr(spec, "period", None) if getattr(spec, "periodic", False) else None
+    p = _check_period(period)
     states = getattr(spec, "states", None) or {}
-    cores = {}
+    if len(states) < 2:
+        which = f"one state, {next(iter(states))!r}" if states else "no state"
+        raise InputError(f"the spec has {which}: basin cores need two or more states; give "
+                         "the cores yourself, label_basins(values, {state: (lo, hi), ...}) "
+                         "with a core for each basin the run visits, or use a spec suggested "
+                         "from two or more states")
+    stats = {}
     for name, st in states.items():
         mean, std = st.get("mean"), st.get("std")
-        if mean is None or std is None or not float(std) > 0:
-            raise InputError(f"state {name!r} of the spec has no positive spread (std={std!r}); "
-                             "give the basin cores yourself (label_basins(values, {state: "
+        try:
+            m, sd = float(mean), float(std)
+        except (TypeError, ValueError):
+            m = sd = math.nan
+        if not (math.isfinite(m) and math.isfinite(sd) and sd > 0):
+            raise InputError(f"state {name!r} of the spec has no finite mean and positive "
+                             f"spread (mean={mean!r}, std={std!r}); give the basin cores "
+                             "yourself (label_basins(values, {state: (lo, hi)}))")
+        stats[str(name)] = (m, sd)
+    limit, what = _touching_core(stats, p)
+    if c >= limit:
+        if limit == 0:
+            raise InputError(f"{what}: this CV does not separate them; give the basin cores "
+                             "along another coordinate (label_basins(values, {state: "
                              "(lo, hi)}))")
-        cores[name] = (round(float(mean) - c * float(std), 12),
-                       round(float(mean) + c * float(std), 12))
-    period = getattr(spec, "period", None) if getattr(spec, "periodic", False) else None
-    return _check_basins(cores, _check_period(period))
+        raise InputError(f"{what} at core={c:g}: give a smaller core=, e.g. "
+                         f"core={_round_down(limit):g} (they touch at core={limit:g})")
+    return _check_basins({name: (round(m - c * sd, 12), round(m + c * sd, 12))
+                          for name, (m, sd) in stats.items()}, p)
 
 
 @dataclass(frozen=True)
@@ -231,8 +319,9 @@ def label_basins(values, basins, *, bias=None, temperature=None, period=None,
     ------
     cvdesign.errors.InputError
         For values that are not one finite number per frame, a `bias` of
-        another length, a bias without temperature, or cores that are
-        reversed, overlapping or fewer than two.
+        another length, a bias without temperature, a `temperature`,
+        `timestep_ps` or `period` that is not a positive number, or cores
+        that are reversed, overlapping or fewer than two.
 
     Examples
     --------
@@ -257,16 +346,14 @@ def label_basins(values, basins, *, bias=None, temperature=None, period=None,
         if v.size != x.size:
             raise InputError(f"bias has {v.size} values but values has {x.size} frames; give "
                              "one bias energy (kJ/mol) per frame")
-        t = None if temperature is None else float(temperature)
-        if t is None or not (math.isfinite(t) and t > 0):
-            raise InputError(f"temperature={temperature!r}: a bias needs the positive "
-                             "temperature of the run, K")
+        t = _positive(temperature, "temperature", "a bias needs the positive temperature "
+                      "of the run, K (e.g. temperature=300.0)")
         a = v / (BOLTZMANN_KJ_MOL_K * t)
     elif temperature is not None:
         raise InputError("temperature= goes with bias= (the bias energies of the run)")
-    if timestep_ps is not None and not (math.isfinite(float(timestep_ps))
-                                        and float(timestep_ps) > 0):
-        raise InputError(f"timestep_ps={timestep_ps!r} must be a positive time, ps")
+    dt = None if timestep_ps is None else _positive(
+        timestep_ps, "timestep_ps", "give the time between frames as a positive number of "
+        "ps, or None")
     frames, ess = {}, {}
     for i, name in enumerate(names):
         inside = code == i
@@ -282,8 +369,7 @@ def label_basins(values, basins, *, bias=None, temperature=None, period=None,
     return BasinVisits(labels=labels, states=names, frames=frames, ess=ess,
                        transition_frames=int(np.count_nonzero(code < 0)),
                        crossings=int(change.size), crossing_frames=change.astype(np.int64),
-                       duration_ps=None if timestep_ps is None
-                       else x.size * float(timestep_ps))
+                       duration_ps=None if dt is None else x.size * dt)
 
 
 # --------------------------------------------------------------------------
@@ -300,7 +386,8 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
     labels : array-like of shape (n_frames,)
         State name per frame; frames of other states and None are ignored.
     states : (str, str)
-        The two states compared.
+        The two states compared: exactly two (for more states, call it once
+        per pair; more are refused, not reduced to the first two).
     weights : array-like of shape (n_frames,), optional
         Frame weights (e.g. ``exp(V / kT)`` of a biased run); equal by default.
     period : float, optional
@@ -314,11 +401,22 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
         on the same frames compares them; on frames neither was fitted on it
         is a held-out score.
 
+    Raises
+    ------
+    cvdesign.errors.InputError
+        For `states` that are not two different names, a state without a
+        weighted frame, and values, labels or weights that do not match.
+
     Examples
     --------
     >>> fisher_separation([0.0, 2.0, 4.0, 6.0], ["a", "a", "b", "b"], ("a", "b"))  # means 1, 5; variances 1, 1
     8.0
     """
+    pair = (states,) if isinstance(states, str) else tuple(states)
+    if len(pair) != 2 or pair[0] == pair[1]:
+        raise InputError(f"states={states!r:.120} must name two different states (the "
+                         f"ratio compares two); got {len(pair)}"
+                         + (": call fisher_separation once per pair" if len(pair) > 2 else ""))
     x = _finite_vector(values, "values")
     lab = np.asarray(labels, dtype=object).reshape(-1)
     if lab.size != x.size:
@@ -328,7 +426,7 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
         raise InputError("weights must be one non-negative weight per frame")
     p = _check_period(period)
     means, variances = [], []
-    for s in states:
+    for s in pair:
         inside = np.array([lbl == s for lbl in lab], dtype=bool)
         if not w[inside].sum() > 0:
             raise InputError(f"state {s!r} has no weighted frame among the labels")
@@ -410,12 +508,21 @@ def compare_specs(first, second):
 
     Parameters
     ----------
-    first, second : cvdesign.Spec
-        CV 1 and CV 2, for the same topology.
+    first, second : cvdesign.Spec or dict
+        CV 1 and CV 2, for the same topology: specs (``load_spec``) or spec
+        documents (entries of ``suggest(...).specs``, validated through
+        ``Spec.from_dict``).
 
     Returns
     -------
     SpecComparison
+
+    Raises
+    ------
+    cvdesign.errors.InputError
+        Naming the argument, for a dict that is not a valid spec, a path or
+        text (read it with ``load_spec``), or anything else that is not a
+        spec.
 
     Examples
     --------
@@ -430,7 +537,8 @@ def compare_specs(first, second):
     >>> c.added, c.removed, round(c.cosine, 4)  # cos 45 degrees
     (('identity(y)',), (), 0.7071)
     """
-    a, b = _term_keys(first), _term_keys(second)
+    a = _term_keys(_as_spec(first, "first", ("descriptors", "terms")))
+    b = _term_keys(_as_spec(second, "second", ("descriptors", "terms")))
     keys = list(dict.fromkeys([*b, *a]))
     u = np.array([a[k][1] * (b[k] if k in b else a[k])[2] if k in a else 0.0 for k in keys])
     v = np.array([b[k][1] * b[k][2] if k in b else 0.0 for k in keys])
