@@ -342,3 +342,12 @@ def test_the_readme_refinement_example_runs_as_written(tmp_path, monkeypatch, ca
     assert out[-4:] == ["terms kept: identity(dist BND0:C1-C2)", "terms added: none",
                         "terms removed: none",
                         "|cosine| of the standardized weight vectors: 1.000"], out
+
+
+def test_fisher_separation_of_two_states_without_spread_is_refused_not_infinite():
+    """One frame per state (or a coordinate frozen in both) has no spread: the ratio is
+    0/0 or x/0, not a measured separation (it returned inf without a word)."""
+    with pytest.raises(InputError, match="states 'a' and 'b' have no spread along the "
+                                         "coordinate .* undefined rather than infinite"):
+        fisher_separation([0.0, 1.0], ["a", "b"], ("a", "b"))
+    assert fisher_separation([0.0, 0.0, 1.0, 3.0], ["a", "a", "b", "b"], ("a", "b")) == 4.0

@@ -405,7 +405,8 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
     ------
     cvdesign.errors.InputError
         For `states` that are not two different names, a state without a
-        weighted frame, and values, labels or weights that do not match.
+        weighted frame, two states without any spread (the ratio is then
+        undefined), and values, labels or weights that do not match.
 
     Examples
     --------
@@ -444,7 +445,12 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
     if p is not None:
         gap = (gap + p / 2) % p - p / 2
     total = variances[0] + variances[1]
-    return math.inf if total == 0 else gap ** 2 / total
+    if not total > 0:
+        raise InputError(
+            f"states {pair[0]!r} and {pair[1]!r} have no spread along the coordinate (each "
+            "holds one value: a single frame each, or a coordinate frozen in both), so their "
+            "Fisher ratio is undefined rather than infinite; give more frames per state")
+    return gap ** 2 / total
 
 
 def _term_keys(spec):
