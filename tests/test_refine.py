@@ -351,3 +351,8 @@ def test_fisher_separation_of_two_states_without_spread_is_refused_not_infinite(
                                          "coordinate .* undefined rather than infinite"):
         fisher_separation([0.0, 1.0], ["a", "b"], ("a", "b"))
     assert fisher_separation([0.0, 0.0, 1.0, 3.0], ["a", "a", "b", "b"], ("a", "b")) == 4.0
+
+
+def test_label_basins_of_no_frame_is_refused():
+    with pytest.raises(InputError, match="values holds no frame"):
+        label_basins([], {"a": (0.0, 1.0), "b": (2.0, 3.0)})

@@ -335,6 +335,9 @@ def label_basins(values, basins, *, bias=None, temperature=None, period=None,
     571.4
     """
     x = _finite_vector(values, "values")
+    if x.size == 0:
+        raise InputError("values holds no frame; give the coordinate of every frame of the "
+                         "run, in time order")
     p = _check_period(period)
     cores = _check_basins(basins, p)
     names = tuple(cores)
