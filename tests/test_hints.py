@@ -636,10 +636,17 @@ def test_a_time_below_the_frame_spacing_is_flagged_as_not_resolved_by_the_frames
     assert fine["inputs"]["frame_spacing_ps"] == 0.1
     coarse = suggest_hints(STATES, autocorrelation_time_ps=1.0, frame_spacing_ps=2.0, **kw)
     assert coarse["deposition"]["tau_resolved"] is False
-    assert coarse["deposition"]["interval_steps"] == fine["deposition"]["interval_steps"] == 500
+    assert fine["deposition"]["interval_steps"] == 500  # 1 ps of 2 fs steps, from tau
+    # not sized from an unresolved time: max(1 ps, the 2 ps spacing) = 2 ps = 1000 steps
+    assert coarse["deposition"]["interval_steps"] == 1000
+    assert coarse["deposition"]["tau_ps"] == 2.0
     (text,) = coarse["warnings"]
     assert "shorter than the spacing of the saved frames it was measured on (2 ps)" in text
+    assert "max(1 ps, the frame spacing) = 2 ps" in text
     assert "save frames more often than every 2 ps" in text
+    short = suggest_hints(STATES, autocorrelation_time_ps=0.05, frame_spacing_ps=0.2, **kw)
+    assert short["deposition"]["interval_steps"] == 500  # 1 ps, not 25 steps from 0.05 ps
+    assert len(short["warnings"]) == 1  # no fast-rate or few-steps warning then
     assert any(line == "Note: " + text + "." for line in coarse["reasoning"])
     unknown = suggest_hints(STATES, autocorrelation_time_ps=1.0, **kw)
     assert unknown["deposition"]["tau_resolved"] is None

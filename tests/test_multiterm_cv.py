@@ -258,7 +258,7 @@ def test_implied_timescales_within_states_are_a_direct_computation_on_the_evalua
     ts = toy["data"]["cvs"][0]["timescales"]
     runs = list(toy["values"].values())
     got_any = False
-    for lag_ps, got in zip(ts["lag_ps"], ts["timescale_within_states_ps"]):
+    for lag_ps, got in zip(ts["lag_ps"], ts["timescale_within_runs_ps"]):
         lag = round(lag_ps / FRAME_PS)
         rho = _within_runs(runs, lag)
         if not 0.0 < rho < 1.0:
@@ -271,7 +271,7 @@ def test_implied_timescales_within_states_are_a_direct_computation_on_the_evalua
     assert got_any
     # at the shortest lag, the CV relaxes inside the states far faster than the pooled
     # curve, which the offset between the states keeps correlated, says
-    assert ts["timescale_within_states_ps"][0] < ts["timescale_ps"][0] / 10
+    assert ts["timescale_within_runs_ps"][0] < ts["timescale_ps"][0] / 10
 
 
 def test_integrated_time_is_the_cvs_own_from_a_direct_computation_on_the_evaluated_runs(

@@ -136,6 +136,26 @@ def test_integrated_time_is_at_least_half_a_frame_never_negative():
     assert tau[0] == 0.5
 
 
+def test_lags_without_pairs_end_the_sum_and_leave_a_lower_bound_not_a_decayed_time():
+    """Visits of 40 frames (a labelled run) leave no pairs at longer lags (rho NaN). Counted
+    as decorrelated (0), they met the window condition and an AR(1) of time 99.5 frames
+    came out 'decayed' at about 31 frames with an interval excluding the truth (review).
+    Now the sum stops before the first lag without pairs: a lower bound, not decayed."""
+    lags = np.unique(np.round(np.geomspace(1, 2000, 18)).astype(int))
+    rho = np.where(lags <= 40, 0.99 ** lags, np.nan)[:, None]
+    tau, decayed, window = integrated_time(lags, rho, 1.0, return_window=True)
+    kept = lags[lags <= 40]
+    assert not decayed[0] and window[0] == kept[-1]
+    # the trapezoid of rho (1 at lag 0) up to the last lag with pairs
+    grid = np.concatenate([[0], kept])
+    r = np.concatenate([[1.0], 0.99 ** kept])
+    assert tau[0] == pytest.approx(float(np.sum(0.5 * (r[1:] + r[:-1]) * np.diff(grid))),
+                                   rel=1e-12)
+    # no pairs even at the first lag: no time at all
+    tau, decayed = integrated_time(lags, np.full((lags.size, 1), np.nan), 1.0)
+    assert np.isnan(tau[0]) and not decayed[0]
+
+
 def test_scorecard_reports_slowness_of_every_descriptor(demo_result):
     for row in demo_result.scorecard:
         assert row["autocorrelation"] is not None

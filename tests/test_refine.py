@@ -350,6 +350,11 @@ def test_fisher_separation_of_two_states_without_spread_is_refused_not_infinite(
     with pytest.raises(InputError, match="states 'a' and 'b' have no spread along the "
                                          "coordinate .* undefined rather than infinite"):
         fisher_separation([0.0, 1.0], ["a", "b"], ("a", "b"))
+    # weighted frames of one value each: rounding in the weighted mean left a variance of
+    # about 1e-34 and a ratio of 4e32 (review)
+    with pytest.raises(InputError, match="have no spread"):
+        fisher_separation([0.123456789] * 5 + [0.7] * 5, ["a"] * 5 + ["b"] * 5, ("a", "b"),
+                          weights=[0.11, 0.27, 0.33, 0.19, 0.1] + [1.0] * 5)
     assert fisher_separation([0.0, 0.0, 1.0, 3.0], ["a", "a", "b", "b"], ("a", "b")) == 4.0
 
 

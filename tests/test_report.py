@@ -251,10 +251,10 @@ def test_figures_draw_the_numbers_of_the_spec_the_ranking_and_the_score_card(dem
     assert ts["curves"] == {f"rank {c['rank']}": {"lag_ps": c["timescales"]["lag_ps"],
                                                    "timescale_ps": c["timescales"]["timescale_ps"]}
                             for c in data["cvs"]}
-    # the second panel: within the states (each run about its own mean)
+    # the second panel: within runs (each run about its own mean)
     assert ts["within"] == {
         f"rank {c['rank']}": {"lag_ps": c["timescales"]["lag_ps"],
-                              "timescale_ps": c["timescales"]["timescale_within_states_ps"]}
+                              "timescale_ps": c["timescales"]["timescale_within_runs_ps"]}
         for c in data["cvs"]}
 
 
@@ -771,3 +771,32 @@ def test_chromium_shows_the_folded_flag_and_the_unbounded_range(demo_out, tmp_pa
     hidden = text.replace("</style>", ".warning { display: none !important; }</style>")
     cells, _ = _rendered_ranges(tmp_path, hidden, "hidden.html")
     assert not any("folded" in c for c in cells)
+
+
+def test_the_within_runs_panel_keeps_each_cvs_style_and_legend_entry():
+    """A CV whose within-run curve is all undefined is left out of the right panel, and the
+    next CV keeps its own style there (it had taken the first one, under the first CV's
+    legend entry: review); a within-run curve of a CV not drawn on the left is not drawn."""
+    from cvdesign.report import figures as fg
+
+    lags = [1.0, 2.0, 4.0]
+    curves = [("rank 1", lags, [50.0, 52.0, 53.0]), ("rank 2", lags, [20.0, 21.0, None])]
+    within = [("rank 1", lags, [None, None, None]), ("rank 2", lags, [0.8, 0.9, None]),
+              ("rank 9", lags, [0.1, 0.2, 0.3])]
+    fig = fg.implied_timescales(curves, within=within)
+    assert list(fig.data["within"]) == ["rank 1", "rank 2"]
+    assert "rank 9" not in fig.svg
+
+    class Axes:  # what the panel draws, by label
+        def __init__(self):
+            self.lines = {}
+
+        def plot(self, x, y, **kw):
+            self.lines[kw["label"]] = (kw["color"], kw["ls"], kw["marker"])
+
+    styles = {lab: st for (lab, _, _), st in zip(curves, fg._CV_STYLES)}
+    right = Axes()
+    fg._timescale_curves(right, within[1:], styles)
+    assert right.lines == {"rank 2": tuple(fg._CV_STYLES[1])}
+    none = fg.implied_timescales(curves, within=[("rank 1", lags, [None] * 3)])
+    assert none.data["within"] is None

@@ -233,13 +233,14 @@ def main(out_dir, keep=True):
     # autocorrelations, integrated, give the CV's integrated time in the ranking, from which
     # the bias hints take the deposition interval.
     first, entry = rdata["cvs"][0], ranking["ranking"][0]
-    within = first["timescales"]["timescale_within_states_ps"]
-    print(f"    within the states, {first['spec']}: {within[0]:.3g} ps at "
-          f"{first['timescales']['lag_ps'][0]:g} ps lag; its integrated time "
-          f"{entry['integrated_time_ps']:.3g} ps, with frames {entry['frame_spacing_ps']:g} "
-          "ps apart" + (": shorter than the spacing, so the frames do not resolve it (the "
-                        "hints say so)" if entry["integrated_time_ps"] < entry["frame_spacing_ps"]
-                        else ""))
+    within = (first["timescales"] or {}).get("timescale_within_runs_ps") or [None]
+    tau, spacing = entry["integrated_time_ps"], entry["frame_spacing_ps"]
+    if within[0] is not None and tau is not None:  # (None: not defined for this data)
+        print(f"    within runs, {first['spec']}: {within[0]:.3g} ps at "
+              f"{first['timescales']['lag_ps'][0]:g} ps lag; its integrated time "
+              f"{tau:.3g} ps, with frames {spacing:g} ps apart"
+              + (": shorter than the spacing, so the frames do not resolve it (the hints "
+                 "say so)" if tau < spacing else ""))
 
     print("\nNot in this demo: with --runs the report adds the frames in the two slowest "
           "TICA coordinates coloured by proposed state, and 'cvdesign funnel' writes a "

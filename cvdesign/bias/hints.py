@@ -861,8 +861,8 @@ def suggest_hints(
         on, in ps, > 0 (a ranking's or spec's ``frame_spacing_ps``). A time
         shorter than one spacing is not resolved by the frames (the estimate
         ``dt (1/2 + sum rho)`` is then about half a spacing, whatever the CV's
-        own time below it): the hints say that the interval reflects the
-        frame spacing rather than the CV.
+        own time below it): the interval is then ``max(1 ps, the spacing)``
+        (common practice, from memory), with a warning saying why.
     autocorrelation_time_decayed : bool, optional
         False when the autocorrelation had not decayed within the runs, so the
         time is a lower bound (a ranking's ``integrated_time_decayed``); the
@@ -1179,45 +1179,55 @@ def suggest_hints(
         why.append(
             f"Deposition interval: no within-state autocorrelation time is known; 1 ps is used "
             f"{tag_cpm}. A spec records the CV's as scores.integrated_time_ps (written by "
-            "cvdesign suggest when the input files' frame spacing is known); in Python, pass "
+            "cvdesign suggest when the input files' frame spacing is known and the same in every "
+            "file); in Python, pass "
             "autocorrelation_time_ps."
         )
     else:
-        tau_used = tau
-        if cap is not None and tau > cap:
+        resolved = None if frame_ps is None else bool(tau >= frame_ps)
+        # a time the frames do not resolve does not size the interval: 1 ps (common
+        # practice), or the frame spacing when longer
+        tau_used = tau if resolved is not False else max(1.0, frame_ps)
+        if cap is not None and tau_used > cap:
             tau_used, capped = cap, True
-        why.append(
-            f"Deposition interval: deposit no faster than the CV decorrelates, so the walker "
-            f"has relaxed under one kernel before the next {tag_cp}; interval = max(1, "
-            f"round(tau_ps x 1000 / md_step_fs)) with tau = {tau_used:.4g} ps and MD step "
-            f"{dt_fs:g} fs (Laio et al., J. Phys. Chem. B 109, 6714, 2005, from memory: the "
-            f"error depends on the deposition rate relative to the CV's diffusion)."
-        )
+        if resolved is False:
+            why.append(
+                f"Deposition interval: the frames do not resolve the CV's decorrelation time "
+                f"(below), so the interval is max(1 ps {tag_cpm}, the frame spacing "
+                f"{frame_ps:.4g} ps) = {tau_used:.4g} ps: interval = max(1, round(tau_ps x "
+                f"1000 / md_step_fs)) with that tau and MD step {dt_fs:g} fs.")
+        else:
+            why.append(
+                f"Deposition interval: deposit no faster than the CV decorrelates, so the "
+                f"walker has relaxed under one kernel before the next {tag_cp}; interval = "
+                f"max(1, round(tau_ps x 1000 / md_step_fs)) with tau = {tau_used:.4g} ps and "
+                f"MD step {dt_fs:g} fs (Laio et al., J. Phys. Chem. B 109, 6714, 2005, from "
+                f"memory: the error depends on the deposition rate relative to the CV's "
+                f"diffusion).")
         if capped:
             why.append(
-                f"Note: autocorrelation_time_ps = {tau:.4g} ps is above max_interval_ps = "
-                f"{cap:g} ps and was capped: a longer interval would slow the filling for "
-                f"little gain {tag_cpm}. A within-state time this long may come from frames "
-                f"saved far apart (the estimate is of the order of the frame spacing), from slow "
-                f"motions inside the states (substates the CV sees), or, for a timescale of "
-                f"all states pooled, from the states not interconverting in the input runs."
+                f"Note: {tau_used if resolved is False else tau:.4g} ps is above "
+                f"max_interval_ps = {cap:g} ps and was capped: a longer interval would slow "
+                f"the filling for little gain {tag_cpm}. A within-state time this long may "
+                f"come from frames saved far apart (the estimate is of the order of the frame "
+                f"spacing), from slow motions inside the states (substates the CV sees), or, "
+                f"for a timescale of all states pooled, from the states not interconverting in "
+                f"the input runs."
             )
-        if frame_ps is not None:
-            resolved = bool(tau >= frame_ps)
-            if not resolved:
-                text = (
-                    f"autocorrelation_time_ps = {tau:.4g} ps is shorter than the spacing of the "
-                    f"saved frames it was measured on ({frame_ps:.4g} ps): the CV decorrelates "
-                    f"within about one frame, so the estimate dt (1/2 + sum rho), about half a "
-                    f"spacing then, is set by the frame spacing rather than by the CV. The "
-                    f"interval from it reflects the frame spacing (likely longer than the CV "
-                    f"needs, which slows the filling); save frames more often than every "
-                    f"{frame_ps:.4g} ps to measure it")
-                why.append("Note: " + text + ".")
-                warnings.append(text)
+        if resolved is False:
+            text = (
+                f"autocorrelation_time_ps = {tau:.4g} ps is shorter than the spacing of the "
+                f"saved frames it was measured on ({frame_ps:.4g} ps): the CV decorrelates "
+                f"within about one frame, so the estimate dt (1/2 + sum rho), about half a "
+                f"spacing then, is set by the frame spacing rather than by the CV. The "
+                f"interval is therefore max(1 ps, the frame spacing) = {tau_used:.4g} ps (common "
+                f"practice, from memory), not sized from it; save frames more often than every "
+                f"{frame_ps:.4g} ps to measure the CV's time")
+            why.append("Note: " + text + ".")
+            warnings.append(text)
         if autocorrelation_time_decayed is not None:
             lower_bound = not bool(autocorrelation_time_decayed)
-            if lower_bound:
+            if lower_bound and not capped:  # (capped: the interval is at its cap anyway)
                 text = (
                     f"autocorrelation_time_ps = {tau:.4g} ps is a lower bound: the CV's "
                     f"autocorrelation had not decayed within the runs, so the CV relaxes "

@@ -557,8 +557,11 @@ class Reweighting:
                 "compared with) estimate the unbiased dynamics; "
                 "this is exact only when the bias vanishes at the barriers between states "
                 "(Voter, J. Chem. Phys. 1997), otherwise the timescales are approximate; "
-                "integrated autocorrelation times (which size the bootstrap blocks) stay in "
-                "the runs' own simulation time")
+                "integrated autocorrelation times (which size the bootstrap blocks, and a "
+                "ranked CV's of which the bias hints take the deposition interval) stay in "
+                "the runs' own simulation time, their pairs weighted as their first frame: "
+                "they describe neither the unbiased dynamics nor the biased run's own "
+                "exactly, so treat that interval as rough")
             own = {self.paths[si][1] for si in self.own_clock if si in self.paths}
             other = {p for si, (_, p) in self.paths.items() if si not in self.own_clock}
             if own:

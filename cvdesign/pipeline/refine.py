@@ -429,7 +429,7 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
     if w.size != x.size or (w < 0).any():
         raise InputError("weights must be one non-negative weight per frame")
     p = _check_period(period)
-    means, variances = [], []
+    means, variances, frozen = [], [], []
     for s in pair:
         inside = np.array([lbl == s for lbl in lab], dtype=bool)
         if not w[inside].sum() > 0:
@@ -444,11 +444,12 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
             d = (xi - m + p / 2) % p - p / 2
         means.append(m)
         variances.append(float(wi @ d ** 2))
+        frozen.append(bool(np.ptp(xi[wi > 0]) == 0))  # (rounding leaves a variance)
     gap = means[0] - means[1]
     if p is not None:
         gap = (gap + p / 2) % p - p / 2
     total = variances[0] + variances[1]
-    if not total > 0:
+    if not total > 0 or all(frozen):
         raise InputError(
             f"states {pair[0]!r} and {pair[1]!r} have no spread along the coordinate (each "
             "holds one value: a single frame each, or a coordinate frozen in both), so their "

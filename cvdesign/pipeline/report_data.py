@@ -588,10 +588,11 @@ def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None):
 
     Returns
     -------
-    list of (float, bool, list or None)
+    list of (float, bool, list or None) or None
         Per CV: the time (ps), whether the autocorrelation decayed within the
         window (False: the time is a lower bound), and the 95 % interval (ps;
-        None when it did not decay).
+        None when it did not decay); None for a CV without pairs at the first
+        lag.
     """
     lags = np.asarray(lags, dtype=np.intp)
     rho = _within_runs(results)
@@ -601,8 +602,9 @@ def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None):
         lags, rho = lags[keep], rho[keep]
     tau, decayed, window = integrated_time(lags, rho, dt_ps, return_window=True)
     lo, hi = integrated_time_interval(tau, window, n_frames)
-    return [(float(tau[c]), bool(decayed[c]),
-             [float(lo[c]), float(hi[c])] if decayed[c] else None) for c in range(n)]
+    return [None if not np.isfinite(tau[c]) else
+            (float(tau[c]), bool(decayed[c]), [float(lo[c]), float(hi[c])] if decayed[c] else None)
+            for c in range(n)]
 
 
 def _lag_sums(leaf, d, lags):
@@ -655,9 +657,9 @@ def _implied(rho, lag, dt):
 
 
 def _timescales(lagged, c, lags, dt, within=None):
-    """``{"lag_ps", "timescale_ps", "timescale_within_states_ps"}`` of CV `c`, or None when
+    """``{"lag_ps", "timescale_ps", "timescale_within_runs_ps"}`` of CV `c`, or None when
     none is defined; `within` (shape (n_lags, n_cvs)): the autocorrelations within runs
-    (None: ``timescale_within_states_ps`` is None)."""
+    (None: ``timescale_within_runs_ps`` is None)."""
     out = [_implied(float(m.autocorrelation()[c]) if m.count > 0 else math.nan, lag, dt)
            for lag, m in zip(lags, lagged)]
     local = None if within is None else [_implied(float(within[g, c]), lag, dt)
@@ -665,7 +667,7 @@ def _timescales(lagged, c, lags, dt, within=None):
     if all(v is None for v in out + (local or [])):
         return None
     return {"lag_ps": [float(lag * dt) for lag in lags], "timescale_ps": out,
-            "timescale_within_states_ps": local}
+            "timescale_within_runs_ps": local}
 
 
 def _counts(values):

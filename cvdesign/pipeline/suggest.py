@@ -545,6 +545,9 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
                                               _effective_frames(seg_counts, reweighting))
     for gi, i in enumerate(screening.screened):
         g = screening.groups[gi]
+        g = g[np.isfinite(tau[g])]  # (NaN: no pairs at the first lag; no time then)
+        if not g.size:
+            continue
         j = int(g[np.argmax(tau[g])])
         ci = [float(tau_lo[j]), float(tau_hi[j])] if decayed[j] else None
         iat_desc[i] = (float(tau[j]), bool(decayed[j]), ci)

@@ -88,11 +88,14 @@ def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
     Returns
     -------
     tau : ndarray of shape (n_features,)
-        In the unit of `dt`; at least ``dt / 2``.
+        In the unit of `dt`; at least ``dt / 2``; NaN where the first lag has no
+        pairs (``rho`` NaN there).
     decayed : ndarray of bool, shape (n_features,)
         False where no lag of the grid satisfies the window condition: the
         motion did not decorrelate within the runs and `tau` (the integral over
-        the whole grid) is a lower bound.
+        the whole grid) is a lower bound. A lag without pairs (``rho`` NaN, e.g.
+        longer than every visit of a state in a labelled run) ends the grid
+        there: the window must be reached before it.
     window_frames : ndarray of shape (n_features,)
         Only with `return_window`: the lag (frames) where the sum stopped.
 
@@ -105,16 +108,25 @@ def integrated_time(lags, rho, dt, *, window=5.0, return_window=False):
     (9.9, True)
     """
     lags = np.asarray(lags, dtype=np.float64)
-    rho = np.nan_to_num(np.asarray(rho, dtype=np.float64), nan=0.0)
+    rho = np.asarray(rho, dtype=np.float64)
+    # a lag without pairs (NaN: runs or visits shorter than it) says nothing: the sum
+    # stops before the first such lag, and the time counts as decayed only if the window
+    # was reached before it (else a lower bound); no pairs at lag 1: no time (NaN)
+    missing = np.isnan(rho)
+    known = ~np.maximum.accumulate(missing, axis=0)  # lags before the first NaN
+    rho = np.where(known, rho, 0.0)
     grid = np.concatenate([[0.0], lags])
     r = np.vstack([np.ones((1, rho.shape[1])), rho])
     cum = np.vstack([np.zeros((1, rho.shape[1])),
                      np.cumsum(0.5 * (r[1:] + r[:-1]) * np.diff(grid)[:, None], axis=0)])
-    ok = grid[:, None] >= window * cum
+    usable = np.vstack([np.ones((1, rho.shape[1]), dtype=bool), known])
+    ok = (grid[:, None] >= window * cum) & usable
     ok[0] = False
     decayed = ok.any(axis=0)
-    stop = np.where(decayed, ok.argmax(axis=0), len(grid) - 1)
+    last = usable.sum(axis=0) - 1  # the last lag with pairs (0: none)
+    stop = np.where(decayed, ok.argmax(axis=0), last)
     tau = np.maximum(cum[stop, np.arange(rho.shape[1])], 0.5)  # (frames; see above)
+    tau = np.where(last > 0, tau, np.nan)
     if return_window:
         return tau * dt, decayed, grid[stop]
     return tau * dt, decayed

@@ -754,9 +754,10 @@ def implied_timescales(curves, *, tica=None, within=None):
         ``{"lag_ps": float, "timescales_ps": [float or None]}``: the slow
         coordinates of ``--runs`` at their lag (None: not finite, not drawn).
     within : list of (str, list of float, list of float or None), optional
-        The same within the states (each run about its own mean), drawn in a
-        second panel: the relaxation inside the basins, which the pooled
-        timescales of runs that stay in their states do not show.
+        The same within runs (each run, a file's frames of one state, about its
+        own mean), drawn in a second panel: the relaxation inside the basins,
+        which the pooled timescales of runs that stay in their states do not
+        show. A CV keeps its style and place in both panels.
 
     Returns
     -------
@@ -771,11 +772,15 @@ def implied_timescales(curves, *, tica=None, within=None):
     >>> fig.data["curves"]["rank 1"]["timescale_ps"], fig.data["within"]["rank 1"]["timescale_ps"]
     ([50.0, 52.0, None], [0.8, 0.9, None])
     """
-    within = [w for w in (within or []) if any(t is not None for t in w[2])]
+    within = list(within or [])
+    if not any(t is not None for w in within for t in w[2]):
+        within = []  # nothing to draw: one panel
     with _style():
         fig, axes = _new(7.2, 3.6 if not within else 3.9, 1, 2 if within else 1)
         ax = axes[0][0]
-        drawn, lags_seen = _timescale_curves(ax, curves[:TIMESCALE_CVS])
+        # a CV's style (and legend entry) follows its place among the pooled curves
+        styles = {lab: st for (lab, _, _), st in zip(curves[:TIMESCALE_CVS], _CV_STYLES)}
+        drawn, lags_seen = _timescale_curves(ax, curves, styles)
         tica_data = None
         if tica is not None:
             t = [None if v is None else float(v) for v in tica["timescales_ps"]]
@@ -789,8 +794,8 @@ def implied_timescales(curves, *, tica=None, within=None):
         drawn_within = None
         if within:
             right = axes[0][1]
-            drawn_within, seen = _timescale_curves(right, within[:TIMESCALE_CVS])
-            _timescale_axes(right, seen, "within the states (each run about its own mean)")
+            drawn_within, seen = _timescale_curves(right, within, styles)
+            _timescale_axes(right, seen, "within runs (each run about its own mean)")
         # one legend for the panels, below them (inside, it hid the curves)
         handles, labels = ax.get_legend_handles_labels()
         fig.legend(handles, labels, loc="outside lower center", ncols=4)
@@ -815,18 +820,23 @@ def implied_timescales(curves, *, tica=None, within=None):
                    "correlated at every lag, so the crossing between the states is only known to "
                    "be slower than the runs.")
         if drawn_within:
-            caption += (" Right: the same with each run about its own mean, the relaxation of "
-                        "the CV inside the states (the basins), free of the offsets between "
-                        "them; the CV's integrated time in the ranking, which sets the bias "
-                        "hints' deposition interval, comes from these autocorrelations.")
+            caption += (" Right: the same with each run (a file's frames of one state) about "
+                        "its own mean, the relaxation of the CV inside the basins, free of "
+                        "the offsets between them; the CV's integrated time in the ranking, "
+                        "which sets the bias hints' deposition interval, comes from these "
+                        "autocorrelations.")
         return _finish(fig, "implied-timescales", caption, alt, data)
 
 
-def _timescale_curves(ax, curves):
-    """Draw ``(label, lag_ps, timescale_ps)`` curves in the ranked CVs' styles; return what
-    was drawn (label -> lag_ps, timescale_ps) and the lags' ends."""
+def _timescale_curves(ax, curves, styles):
+    """Draw the ``(label, lag_ps, timescale_ps)`` curves whose label has a style in `styles`
+    (label -> the ranked CV's style), in it; return what was drawn (label -> lag_ps,
+    timescale_ps) and the lags' ends."""
     drawn, lags_seen = {}, []
-    for (lab, lags, ts), (col, ls, mk) in zip(curves, _CV_STYLES):
+    for lab, lags, ts in curves:
+        if lab not in styles:
+            continue
+        col, ls, mk = styles[lab]
         lags = np.asarray(lags, dtype=np.float64)
         tsv = np.array([np.nan if t is None else t for t in ts], dtype=np.float64)
         if lags.shape != tsv.shape:

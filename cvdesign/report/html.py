@@ -456,9 +456,9 @@ def _suggest(page, output, parsed):
             t = c.get("timescales")
             if t is not None:
                 curves.append((f"rank {c['rank']}", t["lag_ps"], t["timescale_ps"]))
-                if t.get("timescale_within_states_ps") is not None:
+                if t.get("timescale_within_runs_ps") is not None:
                     within.append((f"rank {c['rank']}", t["lag_ps"],
-                                   t["timescale_within_states_ps"]))
+                                   t["timescale_within_runs_ps"]))
     if curves or tica is not None:
         page.figure(fg.implied_timescales(
             curves, tica=None if tica is None else {"lag_ps": tica["lag_ps"],
