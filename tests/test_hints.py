@@ -636,17 +636,12 @@ def test_a_time_below_the_frame_spacing_is_flagged_as_not_resolved_by_the_frames
     assert fine["inputs"]["frame_spacing_ps"] == 0.1
     coarse = suggest_hints(STATES, autocorrelation_time_ps=1.0, frame_spacing_ps=2.0, **kw)
     assert coarse["deposition"]["tau_resolved"] is False
-    assert fine["deposition"]["interval_steps"] == 500  # 1 ps of 2 fs steps, from tau
-    # not sized from an unresolved time: max(1 ps, the 2 ps spacing) = 2 ps = 1000 steps
-    assert coarse["deposition"]["interval_steps"] == 1000
-    assert coarse["deposition"]["tau_ps"] == 2.0
+    # the interval is still sized from the time (1 ps = 500 steps of 2 fs), with a warning
+    assert coarse["deposition"]["interval_steps"] == fine["deposition"]["interval_steps"] == 500
     (text,) = coarse["warnings"]
     assert "shorter than the spacing of the saved frames it was measured on (2 ps)" in text
-    assert "max(1 ps, the frame spacing) = 2 ps" in text
+    assert "and so is the interval sized from it (1 ps)" in text
     assert "save frames more often than every 2 ps" in text
-    short = suggest_hints(STATES, autocorrelation_time_ps=0.05, frame_spacing_ps=0.2, **kw)
-    assert short["deposition"]["interval_steps"] == 500  # 1 ps, not 25 steps from 0.05 ps
-    assert len(short["warnings"]) == 1  # no fast-rate or few-steps warning then
     assert any(line == "Note: " + text + "." for line in coarse["reasoning"])
     unknown = suggest_hints(STATES, autocorrelation_time_ps=1.0, **kw)
     assert unknown["deposition"]["tau_resolved"] is None
@@ -679,3 +674,21 @@ def test_a_fast_deposition_rate_gets_a_warning_and_a_usual_one_none():
                            "0.2 ps)")
     assert "about 624 steps for 1 kJ/mol/ps" in text  # 1.247 ps of 2 fs steps
     assert suggest_hints(STATES, autocorrelation_time_ps=0.3, **kw)["warnings"] == []
+
+
+def test_an_unresolved_time_capped_and_a_short_lower_bound_are_worded_as_they_are():
+    """Review cases: a time of 12 ps from frames 20 ps apart, capped to 10 ps, is worded with
+    both numbers; a lower bound below the spacing (visits too short) is a lower bound, not a
+    time the CV 'decorrelates within one frame'."""
+    kw = dict(temperature=T, md_step_fs=2.0, barrier=50.0)
+    h = suggest_hints(STATES, autocorrelation_time_ps=12.0, frame_spacing_ps=20.0, **kw)
+    assert h["deposition"]["interval_ps"] == 10.0 and h["deposition"]["capped"]
+    (text,) = h["warnings"]
+    assert "the interval sized from it (10 ps)" in text
+    assert any(line.startswith("Note: 12 ps is above max_interval_ps = 10 ps")
+               for line in h["reasoning"])
+    h = suggest_hints(STATES, autocorrelation_time_ps=0.13, frame_spacing_ps=0.2,
+                      autocorrelation_time_decayed=False, **kw)
+    assert h["deposition"]["tau_lower_bound"] is True
+    assert not any("decorrelates within about one frame" in w for w in h["warnings"])
+    assert any("is a lower bound" in w for w in h["warnings"])

@@ -23,21 +23,21 @@ def test_specs_carry_hints_computed_from_the_data(demo_result):
     assert spec["provenance"]["parameters"]["md_step_fs"] == 2.0
     tau = spec["scores"]["integrated_time_ps"]
     assert tau > 0
-    # the demo's frames do not resolve the CV's time (below): the interval is then
-    # max(1 ps, the 0.2 ps spacing) = 1 ps = 500 steps of 2 fs, not sized from tau
-    assert hints["deposition"]["interval_steps"] == 500
+    assert hints["deposition"]["interval_steps"] == max(1, round(tau * 1000 / 2.0))
     assert "not guarantees" in hints["caution"]
     # the demo's rank-1 CV (cos and sin of the latch torsion) is folded at both states; its
     # within-state time is shorter than the demo's 0.2 ps between frames, so the frames do
-    # not resolve it
+    # not resolve it (the interval sized from it is of the order of the spacing), and half a
+    # kT per ~0.12 ps is a fast deposition
     assert spec["scores"]["frame_spacing_ps"] == pytest.approx(0.2)
     assert spec["scores"]["integrated_time_decayed"] == 1
     assert tau < 0.2 and hints["deposition"]["tau_resolved"] is False
     assert hints["deposition"]["tau_lower_bound"] is False
-    folded, unresolved = hints["warnings"]
+    folded, unresolved, fast = hints["warnings"]
     assert "a folded coordinate" in folded and "'closed' sits at the lower" in folded
     assert "shorter than the spacing of the saved frames it was measured on (0.2 ps)" in \
-        unresolved and "max(1 ps, the frame spacing) = 1 ps" in unresolved
+        unresolved and "so is the interval sized from it" in unresolved
+    assert fast.startswith("the bias grows at ")
     assert "hints_refused" not in demo_result.ranking[0]
 
 

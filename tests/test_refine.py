@@ -355,6 +355,12 @@ def test_fisher_separation_of_two_states_without_spread_is_refused_not_infinite(
     with pytest.raises(InputError, match="have no spread"):
         fisher_separation([0.123456789] * 5 + [0.7] * 5, ["a"] * 5 + ["b"] * 5, ("a", "b"),
                           weights=[0.11, 0.27, 0.33, 0.19, 0.1] + [1.0] * 5)
+    # a torsion frozen at the branch cut, stored in single precision: +-3.1415927 wrap to
+    # one point up to rounding (it gave 3e15, review)
+    with pytest.raises(InputError, match="have no spread"):
+        fisher_separation([3.1415927, -3.1415927, 3.1415927, 0.5, 0.5, 0.5],
+                          ["a"] * 3 + ["b"] * 3, ("a", "b"), weights=[0.2, 0.5, 0.3, 1, 1, 1],
+                          period=2 * math.pi)
     assert fisher_separation([0.0, 0.0, 1.0, 3.0], ["a", "a", "b", "b"], ("a", "b")) == 4.0
 
 

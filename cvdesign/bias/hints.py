@@ -861,8 +861,8 @@ def suggest_hints(
         on, in ps, > 0 (a ranking's or spec's ``frame_spacing_ps``). A time
         shorter than one spacing is not resolved by the frames (the estimate
         ``dt (1/2 + sum rho)`` is then about half a spacing, whatever the CV's
-        own time below it): the interval is then ``max(1 ps, the spacing)``
-        (common practice, from memory), with a warning saying why.
+        own time below it): the interval sized from it is then of the order of
+        the spacing, with a warning saying so.
     autocorrelation_time_decayed : bool, optional
         False when the autocorrelation had not decayed within the runs, so the
         time is a lower bound (a ranking's ``integrated_time_decayed``); the
@@ -1184,29 +1184,26 @@ def suggest_hints(
             "autocorrelation_time_ps."
         )
     else:
-        resolved = None if frame_ps is None else bool(tau >= frame_ps)
-        # a time the frames do not resolve does not size the interval: 1 ps (common
-        # practice), or the frame spacing when longer
-        tau_used = tau if resolved is not False else max(1.0, frame_ps)
+        # unresolved: a decayed time below one frame spacing (a lower bound below it only
+        # says the runs or visits are too short, which the lower-bound note says)
+        resolved = None if frame_ps is None else bool(
+            tau >= frame_ps or autocorrelation_time_decayed is False)
+        # an unresolved time still sizes the interval (of the order of the frame spacing):
+        # a fallback of 1 ps left the tutorials' biased runs of fast CVs without crossings
+        basis = tau
+        tau_used = basis
         if cap is not None and tau_used > cap:
             tau_used, capped = cap, True
-        if resolved is False:
-            why.append(
-                f"Deposition interval: the frames do not resolve the CV's decorrelation time "
-                f"(below), so the interval is max(1 ps {tag_cpm}, the frame spacing "
-                f"{frame_ps:.4g} ps) = {tau_used:.4g} ps: interval = max(1, round(tau_ps x "
-                f"1000 / md_step_fs)) with that tau and MD step {dt_fs:g} fs.")
-        else:
-            why.append(
-                f"Deposition interval: deposit no faster than the CV decorrelates, so the "
-                f"walker has relaxed under one kernel before the next {tag_cp}; interval = "
-                f"max(1, round(tau_ps x 1000 / md_step_fs)) with tau = {tau_used:.4g} ps and "
-                f"MD step {dt_fs:g} fs (Laio et al., J. Phys. Chem. B 109, 6714, 2005, from "
-                f"memory: the error depends on the deposition rate relative to the CV's "
-                f"diffusion).")
+        why.append(
+            f"Deposition interval: deposit no faster than the CV decorrelates, so the "
+            f"walker has relaxed under one kernel before the next {tag_cp}; interval = "
+            f"max(1, round(tau_ps x 1000 / md_step_fs)) with tau = {tau_used:.4g} ps and "
+            f"MD step {dt_fs:g} fs (Laio et al., J. Phys. Chem. B 109, 6714, 2005, from "
+            f"memory: the error depends on the deposition rate relative to the CV's "
+            f"diffusion).")
         if capped:
             why.append(
-                f"Note: {tau_used if resolved is False else tau:.4g} ps is above "
+                f"Note: {basis:.4g} ps is above "
                 f"max_interval_ps = {cap:g} ps and was capped: a longer interval would slow "
                 f"the filling for little gain {tag_cpm}. A within-state time this long may "
                 f"come from frames saved far apart (the estimate is of the order of the frame "
@@ -1219,10 +1216,11 @@ def suggest_hints(
                 f"autocorrelation_time_ps = {tau:.4g} ps is shorter than the spacing of the "
                 f"saved frames it was measured on ({frame_ps:.4g} ps): the CV decorrelates "
                 f"within about one frame, so the estimate dt (1/2 + sum rho), about half a "
-                f"spacing then, is set by the frame spacing rather than by the CV. The "
-                f"interval is therefore max(1 ps, the frame spacing) = {tau_used:.4g} ps (common "
-                f"practice, from memory), not sized from it; save frames more often than every "
-                f"{frame_ps:.4g} ps to measure the CV's time")
+                f"spacing then, is set by the frame spacing rather than by the CV, and so is "
+                f"the interval sized from it ({tau_used:.4g} ps): the CV would allow a shorter "
+                f"one, motions slower than the CV may need a longer one (see any warning on "
+                f"the deposition rate); save frames more often than every {frame_ps:.4g} ps "
+                f"to measure the CV's time")
             why.append("Note: " + text + ".")
             warnings.append(text)
         if autocorrelation_time_decayed is not None:

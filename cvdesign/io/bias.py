@@ -558,7 +558,7 @@ class Reweighting:
                 "this is exact only when the bias vanishes at the barriers between states "
                 "(Voter, J. Chem. Phys. 1997), otherwise the timescales are approximate; "
                 "integrated autocorrelation times (which size the bootstrap blocks, and a "
-                "ranked CV's of which the bias hints take the deposition interval) stay in "
+                "ranked CV's, from which the bias hints take the deposition interval) stay in "
                 "the runs' own simulation time, their pairs weighted as their first frame: "
                 "they describe neither the unbiased dynamics nor the biased run's own "
                 "exactly, so treat that interval as rough")

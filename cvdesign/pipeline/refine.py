@@ -444,7 +444,10 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
             d = (xi - m + p / 2) % p - p / 2
         means.append(m)
         variances.append(float(wi @ d ** 2))
-        frozen.append(bool(np.ptp(xi[wi > 0]) == 0))  # (rounding leaves a variance)
+        # one value up to a few single-precision ulps (trajectories store float32; rounding
+        # leaves a variance; deviations wrapped for a period, e.g. a torsion at +-pi)
+        used = wi > 0
+        frozen.append(bool(np.ptp(d[used]) <= 2.0 ** -21 * max(1.0, np.abs(xi[used]).max())))
     gap = means[0] - means[1]
     if p is not None:
         gap = (gap + p / 2) % p - p / 2
