@@ -1190,9 +1190,8 @@ def suggest_hints(
             tau >= frame_ps or autocorrelation_time_decayed is False)
         # an unresolved time still sizes the interval (of the order of the frame spacing):
         # a fallback of 1 ps left the tutorials' biased runs of fast CVs without crossings
-        basis = tau
-        tau_used = basis
-        if cap is not None and tau_used > cap:
+        tau_used = tau
+        if cap is not None and tau > cap:
             tau_used, capped = cap, True
         why.append(
             f"Deposition interval: deposit no faster than the CV decorrelates, so the "
@@ -1203,7 +1202,7 @@ def suggest_hints(
             f"diffusion).")
         if capped:
             why.append(
-                f"Note: {basis:.4g} ps is above "
+                f"Note: {tau:.4g} ps is above "
                 f"max_interval_ps = {cap:g} ps and was capped: a longer interval would slow "
                 f"the filling for little gain {tag_cpm}. A within-state time this long may "
                 f"come from frames saved far apart (the estimate is of the order of the frame "

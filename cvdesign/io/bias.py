@@ -641,8 +641,8 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
         seg = segments[si]
         a = np.asarray(seg.bias, dtype=np.float64) / kt
         exps[si], codes[si] = a, _state_codes(seg, a.size, index)
-        clock_bias = getattr(seg, "clock_bias", None)
-        felt[si] = a if clock_bias is None else np.asarray(clock_bias, dtype=np.float64) / kt
+        felt[si] = a if seg.clock_bias is None else np.asarray(seg.clock_bias,
+                                                               dtype=np.float64) / kt
     # per state: the largest exponent c_s, then sums of r = exp(a - c_s) over all its files
     top = np.full(n_states, -np.inf)
     for si in biased:
@@ -676,7 +676,7 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
                                          where=squares > 0), np.nan)
     multi = any(np.unique(codes[si][codes[si] >= 0]).size > 1 for si in biased)
     groups = _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames)
-    own_clock = {si for si in biased if getattr(segments[si], "clock_bias", None) is not None}
+    own_clock = {si for si in biased if segments[si].clock_bias is not None}
     return Reweighting(float(temperature_k), list(states), weights, clocks, frames, ess, log_z,
                        max_exp, multi, paths, groups, own_clock)
 
