@@ -306,3 +306,29 @@ def test_suggest_runs_through_angles_that_are_undefined_in_some_frames(tmp_path,
     assert {str(w.message)[:40] for w in caught if w.category is GeometryWarning} == \
         {"angle descriptor of atoms [0, 1, 2] (and"}
     assert result.specs and all(np.isfinite(row["heldout_score"]) for row in result.ranking)
+    # and in the run's notes (the summary), once: standard error is gone with the terminal
+    said = [n for n in result.notes if "undefined in some frames" in n]
+    assert said == ["input frames: angle descriptor of atoms [0, 1, 2] (and any other named "
+                    "in a warning like this): undefined in some frames (an arm has zero "
+                    "length: two atoms coincide); set to pi/2 rad there, as the spec's "
+                    "evaluator does. Check the trajectory and the topology"]
+
+
+def test_quiet_suggest_keeps_undefined_geometry_in_the_summary(tmp_path, capsys):
+    # -q hides the warning on standard error; the written summary still says it
+    from cvdesign.cli import main
+
+    top = _topology(5, [(i, i + 1) for i in range(4)])
+    args = ["suggest", "-q", "--kinds", "angle", "--bootstrap", "0", "--max-terms", "1",
+            "--select", "all", "--out", str(tmp_path / "out")]
+    for state, shift, late in (("A", 0.0, None), ("B", 0.1, 150)):
+        path = tmp_path / f"{state}.dcd"
+        md.Trajectory(_coincident_chain(200, seed=ord(state), shift=shift, coincide_from=late),
+                      top).save_dcd(str(path))
+        args += ["--state", state, str(path)]
+    topology = tmp_path / "top.pdb"
+    md.Trajectory(_coincident_chain(1, seed=9), top).save_pdb(str(topology))
+    assert main(args[:1] + ["--topology", str(topology)] + args[1:]) == 0
+    assert "undefined" not in capsys.readouterr().err
+    summary = (tmp_path / "out" / "summary.md").read_text()
+    assert "- input frames: angle descriptor of atoms [0, 1, 2] (and any other" in summary

@@ -39,14 +39,14 @@ function, coordination numbers), :mod:`.alignment` (orientation, Kabsch
 rotations); every public name is importable from :mod:`cvdesign.geometry`.
 """
 
-from ._checks import GeometryWarning
+from ._checks import GeometryWarning, recorded_geometry_warnings
 from .alignment import defines_orientation, kabsch_rotation
 from .box import box_heights, minimum_image
 from .contacts import MAX_SWITCH_EXPONENT, coordination, coordination_pairs, switching_function
 from .groups import center_displacement, center_distance, group_centers, whole_groups
 from .internal import angles, dihedrals, distances
 
-__all__ = ["GeometryWarning", "minimum_image", "distances", "angles", "dihedrals",
+__all__ = ["GeometryWarning", "recorded_geometry_warnings", "minimum_image", "distances", "angles", "dihedrals",
            "group_centers", "center_displacement", "whole_groups", "box_heights",
            "defines_orientation", "kabsch_rotation", "center_distance", "coordination",
            "coordination_pairs", "switching_function", "MAX_SWITCH_EXPONENT"]

@@ -1,5 +1,6 @@
 """Input checks, warnings and small vector helpers shared by the geometry modules."""
 
+import contextlib
 import warnings
 
 import numpy as np
@@ -31,6 +32,44 @@ class GeometryWarning(UserWarning):
     >>> caught[0].category.__name__, float(value[0, 0]) == np.pi / 2
     ('GeometryWarning', True)
     """
+
+
+@contextlib.contextmanager
+def recorded_geometry_warnings():
+    """Collect the texts of the :class:`GeometryWarning` s shown in a block, and show them
+    as before.
+
+    For a run's written summary: a warning on standard error is gone with the terminal
+    (and the command line's ``-q`` hides it). What the warning filters let through is
+    seen (Python shows a repeated warning once); each text is kept once, in order.
+
+    Yields
+    ------
+    list of str
+        Filled while the block runs.
+
+    Examples
+    --------
+    >>> import warnings
+    >>> from cvdesign.geometry import angles, recorded_geometry_warnings
+    >>> with warnings.catch_warnings(record=True) as caught:
+    ...     warnings.simplefilter("always")
+    ...     with recorded_geometry_warnings() as seen:
+    ...         _ = angles(np.zeros((1, 3, 3)), [[0, 1, 2]])
+    >>> len(caught), seen == [str(caught[0].message)]  # shown as before, and recorded
+    (1, True)
+    """
+    seen = []
+    with warnings.catch_warnings():
+        shown = warnings.showwarning
+
+        def show(message, category, filename, lineno, file=None, line=None):
+            if issubclass(category, GeometryWarning) and str(message) not in seen:
+                seen.append(str(message))
+            shown(message, category, filename, lineno, file, line)
+
+        warnings.showwarning = show
+        yield seen
 
 
 # --------------------------------------------------------------------------

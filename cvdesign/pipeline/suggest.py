@@ -42,6 +42,7 @@ import numpy as np
 
 from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
+from ..geometry import recorded_geometry_warnings
 from ..io.source import Source, describe_selection, select_atoms
 from ..kinds import DEFAULT_KINDS
 from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
@@ -329,9 +330,13 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         executor.start()  # local workers start up while the pool is enumerated
         checksums = InputChecksums(source, executor)  # hashed while the workers start
         try:
-            return _suggest(source, config, executor, progress, checksums)
+            with recorded_geometry_warnings() as undefined:
+                result = _suggest(source, config, executor, progress, checksums)
         finally:
             checksums.cancel()
+    # in the summary too: a warning on standard error is gone with the terminal (or -q)
+    result.notes += [f"input frames: {text}" for text in undefined]
+    return result
 
 
 def _suggest(source, config, executor, progress, checksums):
