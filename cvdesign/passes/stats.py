@@ -32,7 +32,7 @@ import numpy as np
 from ..geometry import box_heights
 from ..score.card import CARD_LAG_FIELDS
 from ..score.univariate import Histograms, bin_counts, histogram_range
-from ..stats.bootstrap import ArraySum
+from ..stats.bootstrap import ArraySum, StackedSums
 from ..stats.scratch import scratch
 from ..stats.moments import (DiagonalLaggedMoments, DiagonalMoments, LaggedMoments, Moments,
                              merge_all, window_sums)
@@ -846,8 +846,9 @@ class CardSums:
 
     Attributes
     ----------
-    groups : list of list of ArraySum
-        Per state, its blocks in (segment, block) order; fields ``n``, ``s1``,
+    groups : list of StackedSums
+        Per state, its blocks in (segment, block) order (an empty list for a state
+        without blocks), each a :class:`~cvdesign.stats.bootstrap.ArraySum`; fields ``n``, ``s1``,
         ``s2`` (sums of ``x - center`` and its square), ``hist`` (counts on the
         score card's bins) and, with a lag, ``n_pairs``, ``sx``, ``sy``, ``sxx``,
         ``sxy``, ``syy`` (lagged sums about ``center``), ``l0`` and ``lt`` (about
@@ -1025,11 +1026,27 @@ class CardPass(FeaturePass):
         return merge_keyed(a, b)
 
     def finish(self, partial, plan):
-        groups = [[] for _ in range(plan.n_states)]
+        # per state, its blocks stacked one row each, in (segment, block) order and the
+        # given column order; each block is dropped once copied (the bootstrap resamples
+        # the rows as they are: the sums are held once, not as blocks and again as a stack)
+        partial = dict(partial or {})
         back = None if self._order is None else np.argsort(self._order)
-        for (s, _, _), block in sorted((partial or {}).items()):
-            if back is not None:  # the given column order
-                block = ArraySum(**{k: v if v.ndim == 0 else v[back]
-                                    for k, v in block.arrays.items()})
-            groups[s].append(block)
+        keys = sorted(partial)
+        groups = []
+        for s in range(plan.n_states):
+            mine = [k for k in keys if k[0] == s]
+            if not mine:
+                groups.append([])
+                continue
+            shapes = {f: v.shape for f, v in partial[mine[0]].arrays.items()}
+            fields = {f: np.empty((len(mine), max(1, int(np.prod(shape)))))
+                      for f, shape in shapes.items()}
+            for r, key in enumerate(mine):
+                for f, v in partial.pop(key).arrays.items():
+                    row = fields[f][r].reshape(shapes[f])
+                    if back is None or v.ndim == 0:
+                        row[...] = v
+                    else:  # the given column order
+                        np.take(v, back, axis=0, out=row)
+            groups.append(StackedSums(fields, shapes))
         return CardSums(groups, self.lags is not None)

@@ -18,7 +18,7 @@ import numpy as np
 from .. import progress
 from .moments import LaggedMoments, Moments, merge_all
 
-__all__ = ["ArraySum", "merge_blocks", "block_bootstrap", "BootstrapResult",
+__all__ = ["ArraySum", "StackedSums", "merge_blocks", "block_bootstrap", "BootstrapResult",
            "percentile_interval"]
 
 
@@ -45,6 +45,13 @@ class ArraySum:
     def __init__(self, **arrays):
         self.arrays = {k: np.array(v, dtype=np.float64) for k, v in arrays.items()}
 
+    @classmethod
+    def _of(cls, arrays):
+        """An ArraySum of float64 arrays taken as they are (no copy)."""
+        out = cls.__new__(cls)
+        out.arrays = arrays
+        return out
+
     def __getitem__(self, key):
         return self.arrays[key]
 
@@ -52,9 +59,63 @@ class ArraySum:
         """The sums of the union of two disjoint blocks."""
         if self.arrays.keys() != other.arrays.keys():
             raise ValueError("cannot merge ArraySum blocks with different fields")
-        out = ArraySum.__new__(ArraySum)  # the sums are new arrays: no copy
-        out.arrays = {k: np.asarray(v + other.arrays[k]) for k, v in self.arrays.items()}
-        return out
+        # the sums are new arrays: no copy
+        return ArraySum._of({k: np.asarray(v + other.arrays[k]) for k, v in self.arrays.items()})
+
+
+class StackedSums:
+    """Blocks of :class:`ArraySum` with the same fields, held as one row per block.
+
+    A sequence of blocks (``len``, indexing and iteration give :class:`ArraySum` views
+    of the rows) that :func:`block_bootstrap` resamples without stacking them again:
+    many blocks of wide sums (the score card's histograms of every feature) are held
+    once, not once as blocks and once more as a stack.
+
+    Parameters
+    ----------
+    fields : dict of str to ndarray of shape (n_blocks, size)
+        Each field's sums, one C-contiguous float64 row per block (taken as they are).
+    shapes : dict of str to tuple
+        The shape of each field in one block (``()`` for a count).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> st = StackedSums.from_blocks([ArraySum(n=1.0, s1=[2.0, 3.0]),
+    ...                               ArraySum(n=2.0, s1=[1.0, 1.0])])
+    >>> len(st), st[1]["s1"].tolist(), merge_blocks(st)["n"].tolist()
+    (2, [1.0, 1.0], 3.0)
+    """
+
+    def __init__(self, fields, shapes):
+        self.fields = dict(fields)
+        self.shapes = {k: tuple(v) for k, v in shapes.items()}
+        if self.fields.keys() != self.shapes.keys():
+            raise ValueError("StackedSums needs a shape for every field")
+        sizes = {a.shape[0] for a in self.fields.values()}
+        if len(sizes) > 1:
+            raise ValueError("every field of StackedSums needs one row per block")
+        self._n = sizes.pop() if sizes else 0
+
+    @classmethod
+    def from_blocks(cls, blocks):
+        """Stack a list of ArraySum blocks with the same fields (a copy of their sums)."""
+        blocks = list(blocks)
+        shapes = {k: np.shape(v) for k, v in blocks[0].arrays.items()}
+        return cls({k: np.ascontiguousarray(np.array([np.ravel(b.arrays[k]) for b in blocks],
+                                                     dtype=np.float64))
+                    for k in shapes}, shapes)
+
+    def __len__(self):
+        return self._n
+
+    def __getitem__(self, i):
+        if not -self._n <= i < self._n:
+            raise IndexError(f"block {i} of {self._n}")
+        return ArraySum._of({k: a[i].reshape(self.shapes[k]) for k, a in self.fields.items()})
+
+    def __iter__(self):
+        return (self[i] for i in range(self._n))
 
 
 def merge_blocks(blocks):
@@ -89,10 +150,11 @@ class _Raw:
         self.kind = type(first)
         # every field flattened to one row per block, so a replicate is one
         # matrix-vector product per field
-        if self.kind is ArraySum:
-            self.shapes = {k: v.shape for k, v in first.arrays.items()}
-            self.fields = {k: np.ascontiguousarray(
-                np.array([np.ravel(b.arrays[k]) for b in blocks])) for k in self.shapes}
+        if isinstance(blocks, StackedSums):  # already one row per block: no copy
+            self.kind, self.shapes, self.fields = ArraySum, blocks.shapes, blocks.fields
+        elif self.kind is ArraySum:
+            stacked = StackedSums.from_blocks(blocks)
+            self.shapes, self.fields = stacked.shapes, stacked.fields
         elif self.kind is Moments:
             p = first.n_features
             self.shape = (p, p)
@@ -109,6 +171,8 @@ class _Raw:
 
     @staticmethod
     def supported(blocks):
+        if isinstance(blocks, StackedSums):
+            return len(blocks) > 0
         if not blocks:
             return False
         kind = type(blocks[0])
@@ -149,8 +213,8 @@ class _Raw:
         return m
 
     def _from_sums(self, sums):
-        if self.kind is ArraySum:
-            return ArraySum(**{k: v.reshape(self.shapes[k]) for k, v in sums.items()})
+        if self.kind is ArraySum:  # (rows of this batch's new sums: no copy)
+            return ArraySum._of({k: v.reshape(self.shapes[k]) for k, v in sums.items()})
         out = self.template.copy()
         for f, v in sums.items():
             val = v.reshape(self.shapes[f])
@@ -166,6 +230,9 @@ def _fast_groups(groups):
     """Per group, a list of _Raw (one per tuple position), or None if unsupported."""
     out = []
     for g in groups:
+        if isinstance(g, StackedSums):
+            out.append((False, [_Raw(g)] if _Raw.supported(g) else [None]))
+            continue
         cols = list(zip(*g)) if isinstance(g[0], tuple) else [g]
         raws = []
         for col in cols:
@@ -273,7 +340,7 @@ def block_bootstrap(groups, statistic, *, n_boot=200, seed=0, level=0.95, label=
     >>> bool(res.low < res.estimate < res.high)
     True
     """
-    groups = [list(g) for g in groups]
+    groups = [g if isinstance(g, StackedSums) else list(g) for g in groups]
     if any(len(g) == 0 for g in groups):
         raise ValueError("every group needs at least one block")
     if not 0 < level < 1:
