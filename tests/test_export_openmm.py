@@ -522,6 +522,13 @@ def test_export_command_warns_about_a_system_in_the_default_box_and_notes_period
                      r"uses periodic boundary conditions, but its box is OpenMM's default",
                      captured.err), captured.err
     assert captured.err.count("OpenMM's default") == 1 and "--periodic" not in captured.out
+    # and on standard output, which -q keeps (it hides the log's line)
+    assert main(["-q", "export", str(tmp_path / "d.json"), "--to", "openmm", "--out",
+                 str(tmp_path / "q.xml"), "--system", str(default)]) == 0
+    captured = capsys.readouterr()
+    assert "OpenMM's default" not in captured.err
+    assert re.search(r"warning: --system \S+default\.xml: the openmm\.System uses periodic "
+                     r"boundary conditions, but its box is OpenMM's default", captured.out)
     boxed = tmp_path / "boxed.xml"
     boxed.write_text(openmm.XmlSerializer.serialize(_system(2, True)))
     assert main(["export", str(tmp_path / "d.json"), "--to", "openmm", "--out",

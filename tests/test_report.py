@@ -379,20 +379,25 @@ def test_no_report_skips_the_report_of_suggest_and_demo(tmp_path, capsys):
     assert "report.html" not in capsys.readouterr().out
 
 
-def test_a_failing_report_leaves_the_tables_and_exits_2(demo_files, tmp_path, capsys,
-                                                         monkeypatch):
-    import cvdesign.report
-
-    def fail(out):
-        raise OSError(28, "No space left on device")
-    monkeypatch.setattr(cvdesign.report, "write_report", fail)
+def _small_suggest(demo_files, out):
+    """A quick `cvdesign suggest` of one run per state of the demo, into `out`."""
     top, states = demo_files
-    out = tmp_path / "out"
     argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "0",
             "--suggestions", "1", "--max-terms", "1", "--quiet"]
     for name, files in states.items():
         argv += ["--state", name, files[0]]
-    assert main(argv) == 2
+    return argv
+
+
+def test_a_failing_report_leaves_the_tables_and_exits_2(demo_files, tmp_path, capsys,
+                                                         monkeypatch):
+    import cvdesign.report
+
+    def fail(output):
+        raise OSError(28, "No space left on device")
+    monkeypatch.setattr(cvdesign.report, "build_report", fail)
+    out = tmp_path / "out"
+    assert main(_small_suggest(demo_files, out)) == 2
     err = capsys.readouterr().err
     assert re.search(r"cvdesign suggest: error: the other outputs were written, but the report "
                      r"could not be: .*No space left on device\. Run 'cvdesign report .*out' "
@@ -402,6 +407,21 @@ def test_a_failing_report_leaves_the_tables_and_exits_2(demo_files, tmp_path, ca
         "cv-01.json", "ranking.csv", "ranking.json", "report-data.json", "scorecard.csv",
         "summary.md"]
     assert [p.name for p in tmp_path.iterdir()] == ["out"]  # no temporary file left
+
+
+def test_an_interrupt_while_the_report_is_built_leaves_no_output(demo_files, tmp_path, capsys,
+                                                                  monkeypatch):
+    # The report is built in memory and written with the other outputs, all or nothing: built
+    # after them, a Ctrl-C in its few seconds left every output but the page (and the
+    # message said nothing was written), and a rerun then met a non-empty directory.
+    import cvdesign.report
+
+    def interrupted(output):
+        raise KeyboardInterrupt
+    monkeypatch.setattr(cvdesign.report, "build_report", interrupted)
+    assert main(_small_suggest(demo_files, tmp_path / "out")) == 130
+    assert "interrupted; no output was written" in capsys.readouterr().err
+    assert list(tmp_path.iterdir()) == []
 
 
 def test_runs_report_draws_the_frames_in_the_tica_plane_by_proposed_state(runs_out):

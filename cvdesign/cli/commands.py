@@ -672,14 +672,27 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
                          temperature=temperature, md_step_fs=args.md_step_fs,
                          executor=executor)
     result.exploration = exploration
-    for note in result.notes:  # the fallback from the transition slowness (also in summary.md)
-        if note.startswith("warning: transition slowness"):
+    # every warning of the run on standard error too, once (they are in summary.md): the
+    # transition slowness's fallback, small effective sample sizes, a lag short for rescaled
+    # time, distances beyond half the box (the last two had reached the summary only)
+    for note in dict.fromkeys(result.notes):
+        if note.startswith("warning: "):
             _log.warning("%s", note[len("warning: "):])
-    if source.biased:  # small effective sample sizes (also in summary.md)
-        for warning in source.reweighting().describe()[1]:
-            _log.warning("%s", warning)
-    result.write(out, force=args.force)
-    report_ok = args.no_report or _report_after(out, "suggest")
+    # the report is built from the outputs in memory and written with them, all or nothing
+    # (built after them, an interrupt left every output but the page, and a rerun then met
+    # a non-empty directory)
+    page, why = None, None
+    if not args.no_report:
+        from ..report.inputs import Output
+
+        page, why = _report_page(Output("suggest", Path(out).resolve().name,
+                                        result.output_files()))
+    result.write(out, force=args.force, extra={"report.html": page} if page else None)
+    report_ok = why is None
+    if not report_ok:
+        print(f"cvdesign suggest: error: the other outputs were written, but the report "
+              f"could not be: {why}. Run 'cvdesign report {out}' once the cause is fixed",
+              file=sys.stderr)
     if not args.quiet:
         print(result.selection, file=stream)  # the atoms, with mdtraj's 0-based indices
         if exploration is not None:
@@ -753,21 +766,17 @@ def _bias_files(biases, files, given_with="--state or --labelled"):
     return out
 
 
-def _report_after(out, command, write=None):
-    """Write the report after the command's other outputs; on failure say so on stderr,
-    leave those outputs in place, and return False (the command then exits 2)."""
-    from ..report import write_report
+def _report_page(output):
+    """``(page, None)``: the report of an output's files in memory (written together with
+    them, all or nothing); ``(None, why)`` when it cannot be built (the other outputs are
+    still written, and the command says so and exits 2)."""
+    from ..report import build_report
 
     try:
-        (write or write_report)(out)
-    except Exception as exc:  # noqa: BLE001 - the tables are written; report any failure
-        why = str(exc) if isinstance(exc, (CVDesignError, OSError)) else (
-            f"{type(exc).__name__}: {exc} (a bug in cvdesign; please report it)")
-        print(f"cvdesign {command}: error: the other outputs were written, but the report "
-              f"could not be: {why}. Run 'cvdesign report {out}' once the cause is fixed",
-              file=sys.stderr)
-        return False
-    return True
+        return build_report(output).html, None
+    except Exception as exc:  # noqa: BLE001 - the other outputs are still written; say so
+        return None, (str(exc) if isinstance(exc, (CVDesignError, OSError)) else
+                      f"{type(exc).__name__}: {exc} (a bug in cvdesign; please report it)")
 
 
 def _cmd_suggest(args):
@@ -1268,15 +1277,11 @@ def _cmd_funnel(args):
     data_text = dumps(funnel_report_document(result["positions"], name), compact=True)
     page, report_error = None, None
     if report is not None:  # rendered first, so that the outputs are written together
-        from ..report import build_report
         from ..report.inputs import Output
 
-        try:
-            page = build_report(Output("funnel", name, {name: text, data_path.name: data_text},
-                                       spec_name=name)).html
-        except Exception as exc:  # noqa: BLE001 - the spec is still written; say so
-            report_error = str(exc) if isinstance(exc, CVDesignError) else (
-                f"{type(exc).__name__}: {exc} (a bug in cvdesign; please report it)")
+        page, report_error = _report_page(Output("funnel", name, {name: text,
+                                                                 data_path.name: data_text},
+                                                 spec_name=name))
     paths = [args.out, data_path] + ([args.plot] if args.plot else []) \
         + ([report] if page else [])
     try:
@@ -1427,6 +1432,8 @@ def _cmd_export(args):
               f"set runs in OpenMM's default {edge:g} nm cube, where every distance over "
               f"{edge / 2:g} nm is wrapped without an error; export with --system SYSTEM.xml "
               "instead to have the System's box checked")
+    if box_message is not None:  # (on standard output too: -q hides the log's line)
+        print(f"warning: --system {args.system}: {box_message}")
     if spec.periodic:
         print(f"note: the CV is periodic with period {spec.period!r} (CV units) and jumps by "
               "one period where its dihedral crosses +-pi; the bias on it must be periodic "
@@ -1495,6 +1502,10 @@ def _cmd_report(args):
     print(f"wrote {path}")
     return 0
 
+
+#: Exit status of an unexpected exception (a defect of cvdesign; 1 is check's deviation, 2
+#: bad input).
+INTERNAL_ERROR_STATUS = 3
 
 #: Exit status after standard output was closed early (e.g. ``cvdesign hints ... | head -1``):
 #: 128 + SIGPIPE, what a shell reports for a program stopped by a closed pipe.
@@ -1565,3 +1576,14 @@ def _main(argv):
     except KeyboardInterrupt:
         print("cvdesign: interrupted; no output was written", file=sys.stderr)
         return 130
+    except Exception as exc:  # noqa: BLE001 - a defect of cvdesign: said plainly, not as 1
+        # (exit status 1 is check's "the engine's values deviate"); -v shows the traceback
+        if getattr(args, "verbose", 0):
+            import traceback
+
+            traceback.print_exc(file=sys.stderr)
+        print(f"cvdesign {args.command}: internal error: {type(exc).__name__}: {exc}. This is "
+              f"a defect of cvdesign, not of your input as far as it could tell; nothing was "
+              f"written. Please report it with the command line (and -v's traceback)",
+              file=sys.stderr)
+        return INTERNAL_ERROR_STATUS

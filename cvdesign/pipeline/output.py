@@ -345,25 +345,35 @@ class Suggestions:
                 "", f"**Caution.** {CAUTION}", ""]
         return "\n".join(out)
 
-    def write(self, out_dir, *, force=False):
+    def write(self, out_dir, *, force=False, extra=None):
         """Write every output into `out_dir`, all or nothing.
 
         Files are written into a temporary directory beside `out_dir`, which
         is then renamed onto it, so an interrupted run leaves no partial output:
-        ``ranking.csv``, ``ranking.json``, ``scorecard.csv``, ``summary.md``, the
-        ``cv-NN.json`` specs, ``states.csv`` with an exploration, and
-        ``report-data.json`` (:meth:`report_data_json`) when there is report data.
-        The HTML report is not written here (``cvdesign.report.write_report``).
+        the files of :meth:`output_files`, and `extra`. The HTML report is not
+        written here unless it is given in `extra` (``cvdesign.report.write_report``
+        writes it into a written directory; the command line builds it from
+        :meth:`output_files` first and writes it with the rest).
 
         Parameters
         ----------
         out_dir : path-like
         force : bool, default=False
             Replace an existing non-empty directory.
+        extra : dict of str to str, default=None
+            More files, ``{name: text}`` (e.g. ``report.html``).
         """
         out_dir = prepare_output_dir(out_dir, force=force, inputs=self.input_files,
                                      owned=is_output_file,
                                      marker="ranking.json")
+        write_dir_atomically(out_dir, {**self.output_files(), **(extra or {})})
+        return out_dir
+
+    def output_files(self):
+        """The outputs as ``{file name: text}``: ``ranking.csv``, ``ranking.json``,
+        ``scorecard.csv``, ``summary.md``, the ``cv-NN.json`` specs, ``states.csv`` with an
+        exploration, and ``report-data.json`` (:meth:`report_data_json`) when there is
+        report data."""
         files = {
             "ranking.csv": self.ranking_csv(),
             "ranking.json": self.ranking_json(),
@@ -377,8 +387,7 @@ class Suggestions:
         data = self.report_data_json()
         if data is not None:
             files["report-data.json"] = data
-        write_dir_atomically(out_dir, files)
-        return out_dir
+        return files
 
 
 #: Score-card columns with an interval, in CSV order; the integrated time is in ps.

@@ -16,7 +16,8 @@ from ..score.univariate import overlap_coefficient
 from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction,
                       greedy_search, heldout_score, heldout_scores, rank_combinations,
                       slow_direction, state_arrays, within_states)
-from ..stats.bootstrap import block_bootstrap, percentile_interval
+from ..stats.bootstrap import (MIN_INTERVAL_BLOCKS, block_bootstrap, hull_interval,
+                               percentile_interval)
 from ..stats.moments import merge_all
 
 __all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit", "Shortlist",
@@ -394,7 +395,7 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
     n_states, n_folds = fm.n_states, fm.n_folds
     per_state = [[b for k in range(n_folds) for b in blocks.get((s, k), [])]
                  for s in range(n_states)]
-    if any(len(g) < 2 for g in per_state):
+    if any(len(g) < MIN_INTERVAL_BLOCKS for g in per_state):
         return None
     p_fits = [(np.array([where[int(i)] for i in f.idx], dtype=np.intp), f.w) for f in fits]
     fold_ws = [f.fold_w for f in fits]
@@ -423,18 +424,24 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
         return np.array(out)
 
     res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed, label="bootstrap")
+    # each value's range: a weight any, a Fisher ratio >= 0, autocorrelations in [-1, 1]
+    bounds = np.concatenate([[[-np.inf, np.inf]] * p_idx.size + [[0.0, np.inf]] +
+                             [[-1.0, 1.0]] * 2 for p_idx, _ in p_fits]) if p_fits else \
+        np.zeros((0, 2))
+    low, high = hull_interval(res.estimate, res.low, res.high,
+                              bounds=(bounds[:, 0], bounds[:, 1]))
     out = {"combos": []}
     pos = 0
     for p_idx, _ in p_fits:
         n = p_idx.size
         out["combos"].append({
             "weights_ci": [[_finite(a), _finite(b)] for a, b in
-                           zip(res.low[pos:pos + n], res.high[pos:pos + n])],
-            "fisher_ratio_ci": [_finite(res.low[pos + n]), _finite(res.high[pos + n])],
-            "autocorrelation_ci": ([_finite(res.low[pos + n + 1]),
-                                    _finite(res.high[pos + n + 1])] if has_lag else None),
-            "autocorrelation_within_states_ci": ([_finite(res.low[pos + n + 2]),
-                                                  _finite(res.high[pos + n + 2])]
+                           zip(low[pos:pos + n], high[pos:pos + n])],
+            "fisher_ratio_ci": [_finite(low[pos + n]), _finite(high[pos + n])],
+            "autocorrelation_ci": ([_finite(low[pos + n + 1]),
+                                    _finite(high[pos + n + 1])] if has_lag else None),
+            "autocorrelation_within_states_ci": ([_finite(low[pos + n + 2]),
+                                                  _finite(high[pos + n + 2])]
                                                  if has_lag else None),
         })
         pos += n + 3
@@ -534,7 +541,11 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
                               label="bootstrap refits")
         ok = np.isfinite(sel.replicates[:, :n_hit]).all(axis=1)
         freq = sel.replicates[ok, :n_hit].mean(axis=0) if ok.any() else np.full(n_hit, np.nan)
-        low, high = percentile_interval(sel.replicates[ok, n_hit:])
+        # held-out score, Fisher ratio, overlap and two autocorrelations per ranked CV
+        low, high = hull_interval(
+            sel.estimate[n_hit:], *percentile_interval(sel.replicates[ok, n_hit:]),
+            bounds=(np.tile([-np.inf, 0.0, 0.0, -1.0, -1.0], len(fits)),
+                    np.tile([np.inf, np.inf, 1.0, 1.0, 1.0], len(fits))))
         pos = 0
         for i, c in enumerate(out["combos"]):
             keys = ("heldout_score_ci", "heldout_fisher_ratio_ci", "heldout_overlap_ci",

@@ -15,6 +15,7 @@ import numpy as np
 
 from ..errors import InputError
 from ..score.univariate import fisher_ratio
+from ..search.objectives import both_weight
 from ..stats.moments import merge_all
 from .timing import local_autocorrelation
 
@@ -152,15 +153,26 @@ def screen(pool, states, result, priors, *, objective, screen_size, lagged):
             rho_desc[i] = local_desc[i] = -np.inf
 
     if objective == "separate":
-        score = fisher_desc
+        score, by = fisher_desc, "Fisher ratio"
     elif objective == "slow":
-        score = np.clip(rho_desc, 0.0, None)
+        score, by = np.clip(rho_desc, 0.0, None), "autocorrelation at the lag"
     else:
-        score = fisher_desc / (1.0 + fisher_desc) * np.clip(rho_desc, 0.0, None)
+        # the objective's own form for one descriptor: slowness within the runs (each about
+        # its own mean), not about one common mean, which on runs that stay in their states
+        # makes every separating descriptor look slow and would count separation twice (a
+        # fast, strongly separating descriptor screened out a slow one that separates a
+        # little less)
+        score = fisher_desc / (1.0 + fisher_desc) * both_weight(local_desc)
+        by = "J / (1 + J) * (1 + max(rho within runs, 0)) / 2, the objective's own form"
     n_desc = len(pool)
     order = sorted(range(n_desc), key=lambda i: (-fisher_desc[i], i))
-    screened = [i for i in sorted(range(n_desc), key=lambda i: (-score[i], i))
-                if score[i] > 0][:screen_size]
+    candidates = [i for i in sorted(range(n_desc), key=lambda i: (-score[i], i))
+                  if score[i] > 0]
+    screened = candidates[:screen_size]
+    if len(candidates) > len(screened):
+        notes.append(f"screening: the best {len(screened)} of {len(candidates)} scored "
+                     f"descriptors by {by} went on to the search (screen size "
+                     f"{screen_size}); the others are on the score card only")
     if not screened:
         if frozen_desc:
             first = min(frozen_desc)

@@ -52,9 +52,31 @@ def lag_frames(source, lag, timesteps):
 
 
 def iat_lags(seg_counts, max_lag=2000):
-    """Geometric grid of lags (frames) for integrated autocorrelation times."""
-    shortest = int(seg_counts[seg_counts > 0].min())
-    top = max(1, min(max_lag, shortest // 2))
+    """Geometric grid of lags (frames) for integrated autocorrelation times.
+
+    Up to half the longest run (at most `max_lag`): a run shorter than a lag has no pairs
+    there and drops out of that lag's autocorrelation
+    (:func:`local_autocorrelation`), so one short run no longer caps every time (a grid
+    up to half the shortest run had made a slow descriptor's time a lower bound).
+
+    Parameters
+    ----------
+    seg_counts : ndarray of shape (n_segments, n_states)
+        Frames of each state in each input segment.
+    max_lag : int, default=2000
+
+    Returns
+    -------
+    ndarray of int
+        Increasing lags from 1.
+
+    Examples
+    --------
+    >>> int(iat_lags(np.array([[40, 0], [0, 1000]])).max())  # half the longest run
+    500
+    """
+    longest = int(seg_counts.max())
+    top = max(1, min(max_lag, longest // 2))
     return np.unique(np.round(np.geomspace(1, top, 18)).astype(int))
 
 

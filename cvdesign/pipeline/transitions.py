@@ -334,12 +334,13 @@ def transition_intervals(blocks, fits, n_folds, lag_ps, *, n_boot, seed):
 
     res = block_bootstrap([blocks[r][k] for r, k in keys], stat, n_boot=n_boot, seed=seed,
                           label="bootstrap (transitions)")
+    low, high = res.interval(bounds=(-1.0, 1.0))  # (autocorrelations)
     out = []
     for i in range(len(fits)):
-        aci = [_finite(res.low[2 * i]), _finite(res.high[2 * i])]
+        aci = [_finite(low[2 * i]), _finite(high[2 * i])]
         entry = {"autocorrelation_transitions_ci": aci,
-                 "heldout_autocorrelation_transitions_ci": [_finite(res.low[2 * i + 1]),
-                                                            _finite(res.high[2 * i + 1])]}
+                 "heldout_autocorrelation_transitions_ci": [_finite(low[2 * i + 1]),
+                                                            _finite(high[2 * i + 1])]}
         if None not in aci and lag_ps:
             entry["timescale_transitions_ci_ps"] = [
                 _finite(v) for v in timescales_from_eigenvalues(np.clip(aci, -1.0, 1.0), lag_ps)]

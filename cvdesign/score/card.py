@@ -29,7 +29,7 @@ state do not fit, only the best descriptors of the score card get intervals
 
 import numpy as np
 
-from ..stats.bootstrap import block_bootstrap
+from ..stats.bootstrap import MIN_INTERVAL_BLOCKS, block_bootstrap, hull_interval
 from .univariate import fisher_ratio, overlap_coefficient
 
 __all__ = ["plan_card_blocks", "card_intervals", "integrated_time_interval",
@@ -160,6 +160,9 @@ def card_statistics(merged, center, priors, constant, has_lag):
 #: follows from its features' values.
 _REDUCE = {"fisher_ratio": np.maximum, "overlap": np.minimum, "autocorrelation": np.maximum,
            "autocorrelation_within_runs": np.maximum}
+#: The range of each column, for its interval.
+_BOUNDS = {"fisher_ratio": (0.0, np.inf), "overlap": (0.0, 1.0), "autocorrelation": (-1.0, 1.0),
+           "autocorrelation_within_runs": (-1.0, 1.0)}
 
 
 def _per_descriptor(values, feature_descriptor, n_desc):
@@ -199,11 +202,13 @@ def card_intervals(card, center, priors, constant, feature_descriptor, n_desc, *
     Returns
     -------
     dict or None
-        Column name -> (estimate, low, high), each of shape (n_desc,); None
-        when a state has fewer than two blocks.
+        Column name -> (estimate, low, high), each of shape (n_desc,), the interval
+        :func:`~cvdesign.stats.bootstrap.hull_interval` within the column's range; None
+        when a state has fewer than :data:`~cvdesign.stats.bootstrap.MIN_INTERVAL_BLOCKS`
+        blocks.
     """
     groups = card.blocks()
-    if len(groups) != len(priors) or any(len(g) < 2 for g in groups):
+    if len(groups) != len(priors) or any(len(g) < MIN_INTERVAL_BLOCKS for g in groups):
         return None
     names = [n for n in _REDUCE if card.has_lag or not n.startswith("autocorrelation")]
 
@@ -216,7 +221,9 @@ def card_intervals(card, center, priors, constant, feature_descriptor, n_desc, *
     out = {}
     for j, name in enumerate(names):
         sl = slice(j * n_desc, (j + 1) * n_desc)
-        out[name] = (res.estimate[sl], res.low[sl], res.high[sl])
+        low, high = hull_interval(res.estimate[sl], res.low[sl], res.high[sl],
+                                  bounds=_BOUNDS[name])
+        out[name] = (res.estimate[sl], low, high)
     return out
 
 

@@ -237,14 +237,18 @@ def both_weight(rho):
     """The factor of objective ``both`` for a within-state autocorrelation `rho`.
 
     ``(1 + max(rho, 0)) / 2``, in [1/2, 1]; 1/2 when `rho` is not measured
-    (NaN). See :func:`fold_scores`.
+    (NaN or infinite). See :func:`fold_scores`.
 
     Examples
     --------
     >>> both_weight(0.8), both_weight(-0.2), both_weight(float("nan"))
     (0.9, 0.5, 0.5)
+    >>> both_weight(np.array([0.8, -np.inf])).tolist()  # elementwise for an array
+    [0.9, 0.5]
     """
-    return 0.5 * (1.0 + (max(float(rho), 0.0) if np.isfinite(rho) else 0.0))
+    r = np.asarray(rho, dtype=np.float64)
+    out = 0.5 * (1.0 + np.where(np.isfinite(r), np.maximum(r, 0.0), 0.0))
+    return float(out) if out.ndim == 0 else out
 
 
 def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shrinkage=1e-3):

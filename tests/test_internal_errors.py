@@ -1,0 +1,66 @@
+"""What the command line does with failures that are not the user's input: an unexpected
+exception is said as a defect of cvdesign (exit status 3, nothing written, no traceback
+unless -v), and a biased run whose rescaled length overflows no longer crashes the JSON
+writer."""
+
+import mdtraj as md
+
+
+from cvdesign.cli import main
+from cvdesign.cli.commands import INTERNAL_ERROR_STATUS
+
+
+def _argv(demo_files, out):
+    top, states = demo_files
+    argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "0",
+            "--suggestions", "1", "--max-terms", "1", "--no-report"]
+    for name, files in states.items():
+        argv += ["--state", name, *files[:2]]
+    return argv
+
+
+def test_an_unexpected_exception_is_said_as_a_defect_with_status_3(demo_files, tmp_path, capsys,
+                                                                   monkeypatch):
+    import cvdesign.pipeline.suggest as pipeline
+
+    def broken(*args, **kwargs):
+        raise ZeroDivisionError("float division by zero")
+    monkeypatch.setattr(pipeline, "_scorecard", broken)
+    out = tmp_path / "out"
+    assert main(_argv(demo_files, out)) == INTERNAL_ERROR_STATUS == 3
+    err = capsys.readouterr().err
+    assert ("cvdesign suggest: internal error: ZeroDivisionError: float division by zero. "
+            "This is a defect of cvdesign") in err
+    assert "Traceback" not in err and not out.exists()
+    # -v adds the traceback, for the report
+    assert main(_argv(demo_files, tmp_path / "v") + ["-v"]) == 3
+    err = capsys.readouterr().err
+    assert "Traceback (most recent call last)" in err and "internal error" in err
+
+
+def test_a_rescaled_run_length_that_overflows_is_a_warning_not_a_crash(demo_files, tmp_path,
+                                                                        capsys):
+    # A biased run of bias energies 2000 kJ/mol (about 800 kT at 300 K: a wrong unit?)
+    # beside an unbiased one in its state: its rescaled length exp(V/kT) overflowed to inf,
+    # and writing the ranking stopped with "Out of range float values are not JSON
+    # compliant" and a traceback.
+    top, states = demo_files
+    argv = ["suggest", "--topology", top, "--out", str(tmp_path / "out"), "--bootstrap", "0",
+            "--suggestions", "1", "--max-terms", "1", "--no-report"]
+    for name, files in states.items():  # two runs of 200 frames per state
+        traj = md.load(files[0], top=top)
+        argv += ["--state", name]
+        for k in range(2):
+            path = tmp_path / f"{name}-{k}.xtc"
+            traj[200 * k:200 * (k + 1)].save_xtc(str(path))
+            argv.append(str(path))
+    biased = argv[argv.index("--state") + 2]
+    bias = tmp_path / "bias.txt"
+    bias.write_text("2000.0\n" * 200)
+    out = tmp_path / "out"
+    argv += ["--bias-energy", biased, str(bias), "--temperature", "300"]
+    assert main(argv) == 0
+    err = capsys.readouterr().err
+    assert "warning: the rescaled length of a biased run overflows" in err
+    ranking = (out / "ranking.json").read_text()
+    assert '"longest_run_ps": null' in ranking and "Infinity" not in ranking
