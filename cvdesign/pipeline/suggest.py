@@ -1035,35 +1035,58 @@ def _add_times(entry, longest_run_ps, cv_time, frame_spacing_ps):
 
 
 def _scorecard(pool, screening, short, overlap_desc, iat_desc, card_ci):
-    """One row per descriptor of the pool, best Fisher ratio first."""
+    """One row per descriptor of the pool, best Fisher ratio first.
+
+    Unscored descriptors keep their cells empty, never a value standing for "not
+    measured": a *constant* one (every feature the same in every frame of every state)
+    has every score cell empty; a *frozen* one (not moving within some state) keeps only
+    its overlap, the one score its histograms still measure, and its note says so
+    (``docs/scorecard-v1.md``).
+    """
     rows = []
     screened_set = set(screening.screened)
     short_set = {screening.screened[g] for g in short.members}
     frozen = screening.frozen_desc
+    constant = _constant_descriptors(pool, screening)
     rho, local = screening.rho_desc, screening.local_desc
     for i in screening.order:
         d = pool.descriptors[i]
         tau = iat_desc.get(i)
+        unscored = i in frozen or i in constant
         row = {
             "id": d.id, "kind": d.kind, "label": d.label, "atoms": list(d.atoms),
             **({"groups": [list(g) for g in d.groups]} if d.groups else {}),
-            "fisher_ratio": None if i in frozen else float(screening.fisher_desc[i]),
-            "overlap": _finite(overlap_desc[i]),
-            "autocorrelation": None if rho is None else _finite(rho[i]),
-            "autocorrelation_within_runs": None if local is None else _finite(local[i]),
+            "fisher_ratio": None if unscored else float(screening.fisher_desc[i]),
+            "overlap": None if i in constant else _finite(overlap_desc[i]),
+            "autocorrelation": None if rho is None or unscored else _finite(rho[i]),
+            "autocorrelation_within_runs": (None if local is None or unscored
+                                            else _finite(local[i])),
             "integrated_time": None if tau is None else tau[0],
             "integrated_time_decayed": None if tau is None else tau[1],
             "screened": i in screened_set, "shortlisted": i in short_set,
             "stands_for": short.stands_for.get(i, []),
             "note": (f"frozen: does not move within state(s) {', '.join(frozen[i])}; "
-                     "not scored" if i in frozen else short.notes_by_desc.get(i, "")),
+                     "not scored (only the overlap of its histograms is reported)"
+                     if i in frozen else "constant: not scored" if i in constant
+                     else short.notes_by_desc.get(i, "")),
         }
         if tau is not None and tau[2] is not None:
             row["integrated_time_ci"] = tau[2]
-        if card_ci is not None and i in card_ci and i not in frozen:
+        if card_ci is not None and i in card_ci and not unscored:
             row.update(card_ci[i])
+        elif card_ci is not None and i in card_ci and i in frozen:
+            row["overlap_ci"] = card_ci[i]["overlap_ci"]
         rows.append(row)
     return rows
+
+
+def _constant_descriptors(pool, screening):
+    """Descriptors every feature of which is constant over all frames (not frozen:
+    :func:`~.screening.screen` marks a descriptor frozen when one of its unscored
+    features moves in some state)."""
+    all_unscored = np.ones(len(pool), dtype=bool)
+    np.logical_and.at(all_unscored, pool.feature_descriptor, screening.unscored)
+    return {int(i) for i in np.flatnonzero(all_unscored)} - set(screening.frozen_desc)
 
 
 def _finite(x):
