@@ -64,3 +64,27 @@ def test_a_rescaled_run_length_that_overflows_is_a_warning_not_a_crash(demo_file
     assert "warning: the rescaled length of a biased run overflows" in err
     ranking = (out / "ranking.json").read_text()
     assert '"longest_run_ps": null' in ranking and "Infinity" not in ranking
+
+
+def test_a_state_whose_weight_sits_on_one_frame_is_refused_naming_the_bias(demo_files,
+                                                                           tmp_path, capsys):
+    # One frame at 1000 kJ/mol (400 kT at 300 K) in a biased run: after reweighting that
+    # frame carries all the state's weight (effective sample size 1), the state has no
+    # spread, and suggest refused it as "frozen ... not one repeated frame", the wrong cause.
+    top, states = demo_files
+    closed, opened = (md.load(states[name][0], top=top)[:200] for name in states)
+    argv = ["suggest", "--topology", top, "--out", str(tmp_path / "out"), "--bootstrap", "0",
+            "--no-report"]
+    for (name, traj) in zip(states, (closed, opened)):
+        path = tmp_path / f"{name}.xtc"
+        traj.save_xtc(str(path))
+        argv += ["--state", name, str(path)]
+    bias = tmp_path / "bias.txt"
+    bias.write_text("0.0\n" * 50 + "1000.0\n" + "0.0\n" * 149)
+    argv += ["--bias-energy", argv[argv.index("--state") + 2], str(bias), "--temperature", "300"]
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert (f"state {next(iter(states))!r}: after reweighting its effective sample size is "
+            "1.00 of 200 frames: one frame carries almost all its weight") in err
+    assert "bias.txt" in err and "frozen" not in err
+    assert not (tmp_path / "out").exists()

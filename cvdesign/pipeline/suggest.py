@@ -379,6 +379,7 @@ def _suggest(source, config, executor, progress, checksums):
                                            lags, reweighting)
     notes += lag_note
     if reweighting is not None:
+        _refuse_single_frame_states(source, reweighting)
         rw_notes, _ = reweighting.describe(lags)
         notes += rw_notes
         say("reweighted biased runs; effective sample sizes (Kish): " + ", ".join(
@@ -896,6 +897,27 @@ def _overlap_note(states, seg_counts, reweighting):
             "1000; our measurement, independent frames: correlated frames lower still, and "
             "the held-out overlaps use the frames of one fold); compare overlaps of runs of "
             "similar length, and read small differences with care"]
+
+
+def _refuse_single_frame_states(source, reweighting):
+    """Refuse a reweighted state whose effective sample size is below 2: one frame carries
+    all its weight, so it has no spread, and it would be refused later as 'frozen' (not
+    moving), which names the wrong cause."""
+    for s in reweighting.biased_states:
+        if not reweighting.ess[s] < 2.0:
+            continue
+        name = source.states[s]
+        files = sorted({str(seg.bias_path) for seg in source.segments
+                        if seg.bias_path is not None and (
+                            seg.state == name or (seg.labels is not None
+                                                  and (seg.labels == name).any()))})
+        raise InputError(
+            f"state {name!r}: after reweighting its effective sample size is "
+            f"{reweighting.ess[s]:.2f} of {int(reweighting.frames[s])} frames: one frame "
+            f"carries almost all its weight exp(V/kT), so the state has no spread to measure; "
+            f"check the bias energies of {', '.join(map(repr, files))} (their unit is kJ/mol, "
+            f"positive where the bias pushes the system away; a jump of hundreds of kJ/mol "
+            f"between frames gives this) and the temperature ({reweighting.temperature_k:g} K)")
 
 
 def _refuse_empty_states(source, seg_counts):
