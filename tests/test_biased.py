@@ -948,3 +948,53 @@ def test_the_bias_module_describes_the_rescaled_time_pair_that_partners_takes(tm
     doc = " ".join(bias_module.__doc__.split())
     assert "closest to ``clock[t] + L``" in doc and "the frame before it" in doc
     assert "with the first frame ``u`` whose clock reaches" not in doc
+
+
+def test_populations_leave_out_a_biased_run_that_stays_in_one_state(tmp_path):
+    """A crossing biased run of the double well, plus a run of the same bias that stayed in
+    the left well (given for state 'left'): the populations come from the crossing run alone
+    (the left-only run's frames are left by construction and would inflate 'left'), and the
+    note names the run used and the one left out."""
+    well = DoubleWell()
+    x = well.samples(20_000, biased=True, seed=21)
+    pool = well.samples(60_000, biased=True, seed=22)
+    stay = pool[pool < 0][:20_000]
+    pdb, (cross, left_run), (b_cross, b_left) = write_well_runs(
+        tmp_path, np.stack([x, stay]), frame_step_ps=1.0, well=well)
+    stored = md.load(str(cross), top=str(pdb)).xyz[:, 1, 0].astype(np.float64)
+    labels = np.where(stored < 0, "left", "right")
+    alone = Source(str(pdb), temperature=well.temperature)
+    alone.add_labelled(str(cross), labels, bias=str(b_cross))
+    both = Source(str(pdb), temperature=well.temperature)
+    both.add_labelled(str(cross), labels, bias=str(b_cross))
+    both.add(str(left_run), "left", bias=str(b_left))
+    left = both.states.index("left")
+    expected = alone.reweighting().populations()
+    got = both.reweighting().populations()
+    np.testing.assert_allclose(got, expected, rtol=1e-12)
+    assert abs(got[left] - well.populations()[0]) < 0.03
+    notes, _ = both.reweighting().describe()
+    note = next(n for n in notes if n.startswith("reweighted state populations"))
+    assert f"over the frames of 1 biased run that visits two or more states ({cross})" in note
+    assert f"left out: 1 biased run that stays in one state ({left_run})" in note
+    # the left-only run is still reweighted with the state's other frames
+    assert both.reweighting().frames[left] == int((labels == "left").sum()) + stay.size
+
+
+def test_a_file_split_by_frame_ranges_into_two_states_counts_as_a_crossing_run(tmp_path):
+    """One biased run given as two frame ranges, one per state: the file visits both states,
+    so the populations are taken over it (the same as the file given with per-frame labels)."""
+    well = DoubleWell()
+    x = np.sort(well.samples(4_000, biased=True, seed=5))  # left frames first, then right
+    pdb, (traj,), (bias,) = write_well_runs(tmp_path, x[None, :], frame_step_ps=1.0, well=well)
+    stored = md.load(str(traj), top=str(pdb)).xyz[:, 1, 0]
+    cut = int(np.searchsorted(stored, 0.0))
+    ranges = Source(str(pdb), temperature=well.temperature)
+    ranges.add(str(traj), "left", frames=(0, cut), bias=str(bias))
+    ranges.add(str(traj), "right", frames=(cut, None), bias=str(bias))
+    labelled = Source(str(pdb), temperature=well.temperature)
+    labelled.add_labelled(str(traj), np.where(np.arange(x.size) < cut, "left", "right"),
+                          bias=str(bias))
+    assert sorted(ranges.reweighting().population_runs) == [0, 1]
+    np.testing.assert_allclose(ranges.reweighting().populations(),
+                               labelled.reweighting().populations(), rtol=1e-12)

@@ -42,7 +42,10 @@ states weigh them as unbiased input does (by frames). A constant per file
 would be wrong: it would change the relative weight of the files of a state.
 The states' populations are not affected by this choice: they follow from
 ``Z_s = sum_{t in s} exp(a_t)``, computed in log space
-(:meth:`Reweighting.populations`), over the biased frames only.
+(:meth:`Reweighting.populations`), over the frames of the biased runs that
+visit two or more states only: a run that stays in one state (given for that
+state, or labelled with one state) holds that state's frames by construction,
+so adding its frames to ``Z_s`` would inflate that state's population.
 
 **A state with biased and unbiased runs.** An unbiased file has no bias
 energies, so its frames share no reference with those of a biased run:
@@ -354,8 +357,9 @@ class Reweighting:
         unbiased); for a state with biased and unbiased runs, the sum of its
         groups' (:attr:`groups`).
     log_z : ndarray of shape (n_states,)
-        ``log sum_{t in s} exp(V_t / kT)`` over each state's biased frames
-        (``-inf``: unbiased).
+        ``log sum_{t in s} exp(V_t / kT)`` over each state's frames in the
+        biased runs that visit two or more states (:attr:`population_runs`;
+        ``-inf``: no such frame).
     groups : dict of int to dict of str to (int, float)
         For each state with biased and unbiased runs, ``{'biased': (frames,
         Kish size), 'unbiased': (frames, frames)}``: the groups whose
@@ -371,6 +375,12 @@ class Reweighting:
     own_clock : set of int
         The biased segments whose clock comes from their file's ``clock_bias``
         column (the others' from the bias column).
+    population_runs : tuple of int
+        The biased segments whose file holds frames of two or more states:
+        the populations are taken over their frames alone. A run that stays in
+        one state (given for a state, or labelled with one state only) holds
+        that state's frames by construction, not in proportion to its
+        population, so its frames would inflate that state's ``Z_s``.
     """
 
     temperature_k: float
@@ -385,6 +395,7 @@ class Reweighting:
     paths: dict = field(default_factory=dict)
     groups: dict = field(default_factory=dict)
     own_clock: set = field(default_factory=set)
+    population_runs: tuple = ()
 
     @property
     def kt(self):
@@ -400,9 +411,11 @@ class Reweighting:
         """Reweighted population of each state over the biased frames, or None.
 
         ``p_s = Z_s / sum_r Z_r`` with ``Z_s = sum_{t in s} exp(V_t / kT)``
-        over the frames of the biased runs (states without biased frames: NaN).
-        Meaningful when the biased runs sample one ensemble (one bias, or bias
-        energies with a common reference) and visit the states; None when no
+        over the frames of the biased runs that visit two or more states
+        (:attr:`population_runs`; a run that stays in one state holds that
+        state's frames by construction and is left out; states without frames
+        in those runs: NaN). Meaningful when those runs sample one ensemble
+        (one bias, or bias energies with a common reference); None when no
         biased file holds frames of two states (:attr:`multi_state`).
 
         Returns
@@ -537,10 +550,19 @@ class Reweighting:
             parts = [f"{self.states[s]!r} {pops[s]:.3g}" + (
                 "" if s == ref else f" (dF = {-kt * math.log(pops[s] / pops[ref]):.3g} kJ/mol)")
                 for s in range(len(self.states)) if ok[s] and pops[s] > 0]
-            notes.append("reweighted state populations over the biased runs' frames: "
-                         + ", ".join(parts) + f"; free energies relative to "
-                         f"{self.states[ref]!r} (no interval; meaningful when the biased "
-                         "runs sample one ensemble and cross between the states)")
+            used = sorted({self.paths[si][0] for si in self.population_runs})
+            left = sorted({p for p, _ in self.paths.values()} - set(used))
+            verb = "visits" if len(used) == 1 else "visit"
+            note = (f"reweighted state populations over the frames of {_runs(len(used))} that "
+                    f"{verb} two or more states ({', '.join(used)}): {', '.join(parts)}; free "
+                    f"energies relative to {self.states[ref]!r} (no interval; meaningful when "
+                    "those runs sample one ensemble and cross between the states)")
+            if left:
+                verb, its = ("stays", "its") if len(left) == 1 else ("stay", "their")
+                note += (f"; left out: {_runs(len(left))} that {verb} in one state "
+                         f"({', '.join(left)}): {its} frames are in that state by construction, "
+                         "not in proportion to its population, and would inflate it")
+            notes.append(note)
         if lags is not None:
             coarse = self.coarse_fraction(lags)
             if coarse > COARSE_LAG_FRACTION:
@@ -575,6 +597,11 @@ class Reweighting:
                     "offset c(t) (for the weights) puts the clock off by exp(-c(t)/kT), so "
                     "add a 'clock_bias' column with the bias as felt (cvdesign.io.bias)")
         return notes, warnings
+
+
+def _runs(n):
+    """'1 biased run', '2 biased runs'."""
+    return f"{n} biased run{'s' if n != 1 else ''}"
 
 
 def _state_codes(segment, n_file, index):
@@ -670,15 +697,41 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
         with np.errstate(over="ignore"):
             clocks[si] = np.concatenate([[0.0], np.cumsum(np.exp(f))])
         paths[si] = (str(segments[si].path), str(segments[si].bias_path))
-    with np.errstate(divide="ignore"):
-        log_z = np.where(frames > 0, top + np.log(np.where(total > 0, total, 1.0)), -np.inf)
+    crossing = _crossing_segments(segments, biased, codes)
+    log_z = _log_partition(crossing, exps, codes, n_states)
     ess = np.where(frames > 0, np.divide(total ** 2, squares, out=np.zeros(n_states),
                                          where=squares > 0), np.nan)
-    multi = any(np.unique(codes[si][codes[si] >= 0]).size > 1 for si in biased)
+    multi = bool(crossing)
     groups = _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames)
     own_clock = {si for si in biased if segments[si].clock_bias is not None}
     return Reweighting(float(temperature_k), list(states), weights, clocks, frames, ess, log_z,
-                       max_exp, multi, paths, groups, own_clock)
+                       max_exp, multi, paths, groups, own_clock, tuple(crossing))
+
+
+def _crossing_segments(segments, biased, codes):
+    """The biased segments whose file holds frames of two or more states (over all the
+    file's biased segments: a file split by frame ranges into states counts as one run)."""
+    seen = {}
+    for si in biased:
+        c = codes[si]
+        seen.setdefault(str(segments[si].path), set()).update(np.unique(c[c >= 0]).tolist())
+    return [si for si in biased if len(seen[str(segments[si].path)]) > 1]
+
+
+def _log_partition(crossing, exps, codes, n_states):
+    """``log Z_s = log sum exp(V_t / kT)`` over the frames of state s in the `crossing`
+    segments (``-inf``: none), in log space."""
+    top = np.full(n_states, -np.inf)
+    for si in crossing:
+        sel = codes[si] >= 0
+        np.maximum.at(top, codes[si][sel], exps[si][sel])
+    total = np.zeros(n_states)
+    for si in crossing:
+        c = codes[si]
+        sel = c >= 0
+        np.add.at(total, c[sel], np.exp(exps[si][sel] - top[c[sel]]))
+    with np.errstate(divide="ignore"):
+        return np.where(total > 0, top + np.log(np.where(total > 0, total, 1.0)), -np.inf)
 
 
 def _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames):
