@@ -791,6 +791,12 @@ API_CASES = [
              c.file("b.txt", _bias_text(2000))),
          InputError, r"a bias-energy file \('.*b\.txt'\) needs the temperature of the biased "
                      r"run: give temperature=K to Source"),
+    Case("api-source-labelled-bias-with-labels-of-another-length",
+         lambda c: (lambda b: lambda: Source(c.top, temperature=300.0).add_labelled(
+             c.closed, ["closed"] * 1995, bias=b))(c.file("b.txt", _bias_text(2000))),
+         InputError, r"labels for '.*closed-1\.xtc' hold 1995 labels, but the trajectory has "
+                     r"2000 frames \(and its bias-energy file '.*b\.txt' 2000 values\); give "
+                     r"one label per frame"),
     Case("api-source-bias-column-without-bias",
          lambda c: lambda: Source(c.top).add(c.closed, "closed", bias_column=2),
          InputError, r"bias_column=2 for '.*closed-1\.xtc' goes with a bias-energy file"),

@@ -901,12 +901,24 @@ class Source:
         -------
         Source
             self, so calls can be chained.
+
+        Raises
+        ------
+        InputError
+            For labels that name no state, and, with a bias-energy file, a
+            number of labels other than the trajectory's frames (naming both
+            files and counts).
         """
         path = self._check_trajectory(path)
         energies = self._read_bias(path, bias, bias_column)
         self._check_overlap(path, None, None, None)
         labels = [None if _unlabelled(x) else str(x)
                   for x in np.asarray(labels, dtype=object).reshape(-1)]
+        if energies[0] is not None and len(labels) != energies[0].size:
+            raise InputError(f"labels for {str(path)!r} hold {len(labels)} labels, but the "
+                             f"trajectory has {energies[0].size} frames (and its bias-energy "
+                             f"file {str(bias)!r} {energies[0].size} values); give one label "
+                             "per frame (a state name, or None between the states)")
         names = list(dict.fromkeys(x for x in labels if x is not None))
         if not names:
             raise InputError(f"labels for {str(path)!r} name no state; every frame is unlabelled")
