@@ -541,8 +541,40 @@ def test_rescaled_time_overflow_is_refused_naming_the_files(tmp_path):
                                          r"\(2000 kT at 300 K\) at frame 2: the rescaled time "
                                          r"step exp\(V/kT\) overflows"):
         rw.check_rescaled_time({0: 1})
-    with pytest.raises(InputError, match=r"rescaled time of trajectory '.*run\.dcd' overflows"):
+    with pytest.raises(InputError, match=r"rescaled time of trajectory '.*run\.dcd' overflows "
+                                         r"at frame 2 \(exp\(V/kT\) of its bias there"):
         run_pass(LaggedPass(CoordinateFeaturizer(ATOMS), 1), src)
+
+
+def test_a_huge_bias_outside_the_frames_used_leaves_the_clock_finite(tmp_path):
+    """A huge bias before and after the frame range given for a state adds no rescaled time:
+    the clock over the range is the sum of exp(V/kT) of the range's frames, slowness is
+    measured and the pass engine pairs its frames. In a labelled file every frame is part of
+    the run, so a huge bias between the states is refused naming that frame and energy."""
+    rng = np.random.default_rng(4)
+    traj = _write_dcd(tmp_path / "run.dcd", rng.normal(size=(40, 3, 3)))
+    v = rng.uniform(0.0, 2.0, 40) * KT
+    v[:5] = v[30:] = 2000.0 * KT
+    bias = _write_bias(tmp_path / "run.bias", v)
+    other = _write_dcd(tmp_path / "b.dcd", rng.normal(size=(40, 3, 3)))
+    src = Source(_topology(), temperature=300.0)
+    src.add(traj, "a", frames=(10, 25), bias=bias).add(other, "b")
+    rw = src.reweighting()
+    rw.check_rescaled_time({0: 2, 1: 2})
+    a = read_bias_file(bias) / KT
+    np.testing.assert_allclose(np.diff(rw.clocks[0][10:26]), np.exp(a[10:25]), rtol=1e-12)
+    assert rw.max_exponent[0] == (pytest.approx(a[10:25].max(), rel=1e-12),
+                                  10 + int(np.argmax(a[10:25])))
+    lagged = run_pass(LaggedPass(CoordinateFeaturizer(ATOMS), 1), src)
+    assert lagged is not None
+    labels = ["a"] * 12 + [None] * 3 + ["b"] * 25
+    v2 = np.zeros(40)
+    v2[13] = 1500.0 * KT
+    src2 = Source(_topology(), temperature=300.0)
+    src2.add_labelled(traj, labels, bias=_write_bias(tmp_path / "lab.bias", v2))
+    with pytest.raises(InputError, match=r"bias-energy file '.*lab\.bias' reaches .* kJ/mol "
+                                         r"\(1500 kT at 300 K\) at frame 13: the rescaled"):
+        src2.reweighting().check_rescaled_time({0: 1})
 
 
 def test_the_clock_comes_from_the_clock_bias_column_and_the_weights_from_the_bias_column(

@@ -92,7 +92,11 @@ size is below :data:`LOW_ESS_FRACTION` of its frames or below
 frame spacing: ``clock[f] = sum_{u < f} exp(V_u / kT)`` (the bias of the frame
 that starts each interval, from the ``clock_bias`` column when the file has one;
 absolute, unshifted, so a bias that vanishes at the
-barrier keeps real time there). A lagged pair at a lag of ``L`` frame spacings
+barrier keeps real time there). The sum runs over the frames the run is used
+for: every frame of a labelled file (its frames between the states are part
+of the run's time, and of its crossings), the frame range of a file given for
+one state (the frames outside it add no time, so their bias cannot overflow
+the clock); the overflow check and its message look at the same frames. A lagged pair at a lag of ``L`` frame spacings
 pairs frame ``t`` with the frame whose clock is closest to ``clock[t] + L``
 among the frames after ``t`` up to the first frame ``u`` whose clock reaches
 it: ``u`` or the frame before it (a tie: ``u``; only ``u`` when the frame
@@ -347,7 +351,9 @@ class Reweighting:
     clocks : dict of int to ndarray
         Per biased segment, the rescaled clock at every frame of its file and
         at its end (``n_file + 1`` values), in frame spacings (``clock[f] =
-        sum_{u<f} exp(V_u / kT)``); ``inf`` after an overflow (see
+        sum_{u<f} exp(V_u / kT)`` over the frames the clock runs through: every
+        frame of a labelled file, the frame range of a file given for one
+        state; the others add no time); ``inf`` after an overflow (see
         :meth:`check_rescaled_time`).
     frames : ndarray of shape (n_states,), int64
         Frames of each reweighted state (a state with biased frames), in
@@ -366,7 +372,9 @@ class Reweighting:
         estimates are combined in proportion to their effective sample sizes
         (see :mod:`cvdesign.io.bias`). Empty when no state mixes them.
     max_exponent : dict of int to (float, int)
-        Per biased segment, the largest ``V / kT`` of its frames and the frame.
+        Per biased segment, the largest ``V / kT`` of the clock (from the
+        ``clock_bias`` column when the file has one) over the frames the clock
+        runs through (see `clocks`), and that frame (0-based, in the file).
     multi_state : bool
         True when some biased file holds frames of two or more states (a run
         that crossed between states), so that populations mean something.
@@ -691,11 +699,15 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
     for si in biased:
         c, a = codes[si], exps[si]
         weights[si] = raw[si] * scale[c]  # (frames without a state: raw is 0)
-        f = felt[si]  # the clock's exponents: what the overflow check is about
-        k = int(np.argmax(np.where(c >= 0, f, -np.inf))) if (c >= 0).any() else int(np.argmax(f))
+        # the clock's exponents over the frames it runs through: what the overflow check is
+        # about (a labelled file's every frame, the range of a file given for one state)
+        f = felt[si]
+        used = np.ones(f.size, dtype=bool) if segments[si].labels is not None else c >= 0
+        k = int(np.argmax(np.where(used, f, -np.inf))) if used.any() else int(np.argmax(f))
         max_exp[si] = (float(f[k]), k)
         with np.errstate(over="ignore"):
-            clocks[si] = np.concatenate([[0.0], np.cumsum(np.exp(f))])
+            steps = np.where(used, np.exp(np.where(used, f, 0.0)), 0.0)
+        clocks[si] = np.concatenate([[0.0], np.cumsum(steps)])
         paths[si] = (str(segments[si].path), str(segments[si].bias_path))
     crossing = _crossing_segments(segments, biased, codes)
     log_z = _log_partition(crossing, exps, codes, n_states)

@@ -232,11 +232,13 @@ class SegmentLayout:
         if self.clock is None or lag <= 0:
             return lag
         if lag not in self.spans:
-            if not np.isfinite(self.clock[-1]):
-                raise InputError(f"the rescaled time of trajectory {self.path!r} overflows "
-                                 "(its bias energies reach hundreds of kT): lagged pairs in "
-                                 "rescaled time cannot be formed; check the bias energies "
-                                 "and the temperature")
+            ran = self.clock[:max(0, self.hi - self.offset)]  # what the range's clock sums
+            if not np.isfinite(ran).all():
+                frame = self.offset + int(np.argmin(np.isfinite(ran))) - 1
+                raise InputError(f"the rescaled time of trajectory {self.path!r} overflows at "
+                                 f"frame {frame} (exp(V/kT) of its bias there is not finite: "
+                                 "V above about 700 kT): lagged pairs in rescaled time cannot "
+                                 "be formed; check the bias energies and the temperature")
             t = np.arange(self.lo, self.hi, dtype=np.int64)
             _, first, found, _ = self._reach(t, lag) if t.size else (t, t, t > 0, t)
             span = np.where(found, first + self.offset, self.hi - 1) - t
