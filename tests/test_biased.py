@@ -1030,3 +1030,32 @@ def test_a_file_split_by_frame_ranges_into_two_states_counts_as_a_crossing_run(t
     assert sorted(ranges.reweighting().population_runs) == [0, 1]
     np.testing.assert_allclose(ranges.reweighting().populations(),
                                labelled.reweighting().populations(), rtol=1e-12)
+
+
+def test_suggest_takes_the_temperature_of_a_biased_source_and_refuses_another(tmp_path):
+    """A source of biased runs at 350 K: suggest's hints, parameters and report use 350 K
+    when no temperature is given; another temperature is refused naming both; an unbiased
+    source keeps the 300 K default."""
+    well = DoubleWell()
+    x = well.samples(1_200, biased=True, seed=8).reshape(2, 600)
+    pdb, trajs, biases = write_well_runs(tmp_path, x, frame_step_ps=1.0, well=well)
+    src = Source(str(pdb), temperature=350.0)
+    plain = Source(str(pdb))
+    for t, b in zip(trajs, biases):
+        xs = md.load(str(t), top=str(pdb)).xyz[:, 1, 0]
+        labels = np.where(xs < 0, "left", "right")
+        src.add_labelled(str(t), labels, bias=str(b))
+        plain.add_labelled(str(t), labels)
+    kw = dict(n_bootstrap=0, cutoff=10.0, max_terms=1, n_suggestions=1)
+    result = suggest(src, **kw)
+    assert result.report_data["temperature_k"] == 350.0
+    assert result.specs[0]["provenance"]["parameters"][
+        "temperature_k"] == 350.0
+    hints = result.ranking[0]["hints"]
+    assert hints["inputs"]["temperature_k"] == 350.0, hints
+    assert suggest(src, temperature=350.0, **kw).report_data == result.report_data
+    with pytest.raises(InputError, match=r"temperature=300\.0 \(K, for the bias hints and the "
+                                         r"report's -kT ln p\) differs from the source's "
+                                         r"temperature=350\.0 \(K\), at which its biased runs"):
+        suggest(src, temperature=300.0, **kw)
+    assert suggest(plain, **kw).report_data["temperature_k"] == 300.0

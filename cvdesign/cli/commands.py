@@ -581,7 +581,7 @@ def _executor(args):
 def _run_suggest(topology, states, out, args, stream, runs=None):
     from ..io.atomic import prepare_output_dir
     from ..bias.hints import check_run_conditions
-    from ..pipeline.suggest import CAUTION, is_output_file, suggest
+    from ..pipeline.suggest import CAUTION, HINTS_TEMPERATURE_K, is_output_file, suggest
     from ..io.source import Source
 
     biases = getattr(args, "bias_energy", None) or []
@@ -728,10 +728,6 @@ def _labels_for(traj, label_file):
                          f"{labels.shape[0]} labels, but trajectory {traj!r} has {n} frames; "
                          "give one line per frame (its state, or '-' between the states)")
     return labels
-
-
-#: Temperature of the biased run the hints assume when --temperature is not given, K.
-HINTS_TEMPERATURE_K = 300.0
 
 
 def _check_bias_temperature(args, biases):

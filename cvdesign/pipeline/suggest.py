@@ -73,6 +73,10 @@ _log = logging.getLogger(__name__)
 #: Histogram bins of the score card and of the held-out CV histograms.
 N_BINS = 50
 
+#: Temperature of the biased run the hints (and the report's -kT ln p) assume when neither
+#: `temperature` nor a source with biased runs gives one, K.
+HINTS_TEMPERATURE_K = 300.0
+
 #: Most bootstrap blocks of one state (blocks are lengthened beyond that): enough for a
 #: 95 % percentile interval, and memory that does not grow with the number of frames
 #: (common practice: a few dozen to a few hundred resampling units).
@@ -118,7 +122,7 @@ class SuggestConfig:
     shrinkage: float = 1e-3
     n_bootstrap: int = 200
     seed: int = 0
-    temperature_k: float = 300.0
+    temperature_k: float = 300.0  # (HINTS_TEMPERATURE_K)
     md_step_fs: float = 2.0
 
     def __post_init__(self):
@@ -178,7 +182,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
             coordination_r0=COORDINATION_R0_NM,
             max_terms=5, n_suggestions=10, screen_size=200, shortlist_size=40,
             max_correlation=0.95, n_folds=4, n_seeds=5, min_gain=0.01, shrinkage=1e-3,
-            n_bootstrap=200, seed=0, temperature=300.0, md_step_fs=2.0, executor=None,
+            n_bootstrap=200, seed=0, temperature=None, md_step_fs=2.0, executor=None,
             progress=None):
     """Rank compact linear CVs for the states of a source.
 
@@ -261,10 +265,14 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         Block-bootstrap replicates for confidence intervals (0: none).
     seed : int, default=0
         Seed of the bootstrap; same inputs and seed, same outputs byte for byte.
-    temperature : float, default=300.0
+    temperature : float, default=None
         Temperature in K of the biased run, for the bias-parameter hints stored
-        in each spec (recompute them with ``cvdesign hints``); 1 to 5000 K.
-        (Biased inputs are reweighted at the source's own ``temperature``.)
+        in each spec (recompute them with ``cvdesign hints``) and the report's
+        ``-kT ln p``; 1 to 5000 K. None: the source's ``temperature`` when it
+        holds biased runs (they are reweighted at it), else
+        :data:`HINTS_TEMPERATURE_K` (300 K). A value other than the source's,
+        with biased runs, is refused: the reweighted populations and the hints
+        would describe two temperatures in one output.
     md_step_fs : float, default=2.0
         MD step in fs of the biased run, for the hints; 0.01 to 100 fs (see
         :func:`cvdesign.bias.hints.check_run_conditions`). When the hints of a
@@ -313,6 +321,7 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
             f"suggest() needs a Source (a topology and trajectories grouped by state), not "
             f"{type(source).__name__} {_short_repr(source)}; build one with "
             "Source.from_states('top.pdb', {'closed': ['c1.xtc'], 'open': ['o1.xtc']})")
+    temperature = _run_temperature(source, temperature)
     config = SuggestConfig(
         objective=objective, lag_ps=lag, method=method, selection=selection, kinds=tuple(kinds),
         cutoff_nm=cutoff, prefilter_stride=prefilter_stride, coordination_r0_nm=coordination_r0,
@@ -830,6 +839,22 @@ def _card_pass(every, pool, screening, seg_counts, iat_desc, steps, lags, first)
 
 
 # --------------------------------------------------------------------------- small stages
+def _run_temperature(source, temperature):
+    """The temperature of the hints (K): the given one, else the source's when it holds
+    biased runs, else HINTS_TEMPERATURE_K; refuse one that differs from the source's."""
+    own = source.temperature if source.biased else None
+    if temperature is None:
+        return HINTS_TEMPERATURE_K if own is None else own
+    if (own is not None and isinstance(temperature, (int, float)) and not isinstance(
+            temperature, bool) and float(temperature) != float(own)):
+        raise InputError(
+            f"temperature={temperature!r} (K, for the bias hints and the report's -kT ln p) "
+            f"differs from the source's temperature={own!r} (K), at which its biased runs are "
+            "reweighted; leave temperature= out to use the source's (hints for a run at "
+            "another temperature: cvdesign hints SPEC --temperature K)")
+    return temperature
+
+
 def _default_lag(steps):
     """10 frames when every file has the same known frame spacing (slowness columns only)."""
     known = {round(v, 9) for v in steps.values() if v is not None}
