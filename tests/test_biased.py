@@ -15,6 +15,7 @@
 
 import json
 import math
+import re
 import tempfile
 from pathlib import Path
 
@@ -1059,3 +1060,65 @@ def test_suggest_takes_the_temperature_of_a_biased_source_and_refuses_another(tm
                                          r"temperature=350\.0 \(K\), at which its biased runs"):
         suggest(src, temperature=300.0, **kw)
     assert suggest(plain, **kw).report_data["temperature_k"] == 300.0
+
+
+def test_a_clock_bias_slower_than_simulation_time_is_warned_about(tmp_path):
+    """A bias column holding V - c(t) (mostly negative) without a clock_bias column, or a
+    clock_bias column of the wrong sign, makes the rescaled clock run slower than simulation
+    time: describe() warns (at a lag; a clock_bias column always) naming the file and what to
+    give; the bias as felt gives no warning."""
+    rng = np.random.default_rng(11)
+    v = rng.uniform(0.0, 3.0, 200) * KT  # a bias as felt: never negative
+    traj = _write_dcd(tmp_path / "run.dcd", rng.normal(size=(200, 3, 3)))
+    other = _write_dcd(tmp_path / "b.dcd", rng.normal(size=(200, 3, 3)))
+
+    def warnings_of(bias, lags):
+        src = Source(_topology(), temperature=300.0).add(traj, "a", bias=bias).add(other, "b")
+        return src.reweighting().describe(lags)[1]
+
+    felt = _write_bias(tmp_path / "felt.bias", v)
+    shifted = _write_bias(tmp_path / "shifted.bias", v - 4.0 * KT)
+    (tmp_path / "flipped.bias").write_text(
+        "bias clock_bias\n" + "".join(f"{float(a)!r} {-float(a)!r}\n" for a in v))
+    assert not [w for w in warnings_of(felt, {0: 2}) if "slower" in w]
+    assert not [w for w in warnings_of(shifted, None) if "slower" in w]  # weights only
+    expected = (r"^the rescaled clock runs slower than simulation time in .*run\.dcd \(bias "
+                r"file .*{} clock from its {} column: [0-9.]+ frame spacings of rescaled "
+                r"time over 200 simulated, {}% of its clock energies negative\): no bias that "
+                r"accelerates .* shifted .* or sign-flipped; give a 'clock_bias' column with "
+                r"the bias each frame felt, in kJ/mol, positive where the bias pushes the "
+                r"system away")
+    (w,) = [w for w in warnings_of(shifted, {0: 2}) if "slower" in w]
+    assert re.match(expected.format(r"shifted\.bias,", "bias", int(round(
+        100 * np.mean(v < 4.0 * KT)))), w), w
+    for lags in (None, {0: 2}):
+        (w,) = [w for w in warnings_of(tmp_path / "flipped.bias", lags) if "slower" in w]
+        assert re.match(expected.format(r"flipped\.bias,", "'clock_bias'", int(round(
+            100 * np.mean(v > 0)))), w), w
+
+
+def test_suggest_command_warns_on_standard_error_about_a_sign_flipped_bias(tmp_path, capsys):
+    """Two double-well runs, one per well, the left one's bias given with the wrong sign:
+    `cvdesign suggest --lag` warns on standard error and in summary.md that its clock runs
+    slower than simulation time; with the right sign there is no such warning."""
+    well = DoubleWell()
+    x = well.samples(3_000, biased=True, seed=13)
+    runs = np.stack([x[x < 0][:600], x[x > 0][:600]])
+    pdb, trajs, biases = write_well_runs(tmp_path, runs, frame_step_ps=1.0, well=well)
+    flipped = tmp_path / "flipped.bias"
+    flipped.write_text("bias\n" + "".join(f"{-float(a)!r}\n" for a in read_bias_file(biases[0])))
+    argv = ["suggest", "--topology", str(pdb), "--state", "left", str(trajs[0]), "--state",
+            "right", str(trajs[1]), "--bootstrap", "0", "--max-terms", "1", "--suggestions",
+            "1", "--no-report", "--temperature", str(well.temperature), "--lag", "5",
+            "--cutoff", "10", "--bias-energy", str(trajs[1]), str(biases[1])]
+    assert main(argv + ["--out", str(tmp_path / "good"), "--bias-energy", str(trajs[0]),
+                        str(biases[0])]) == 0
+    assert "slower than simulation time" not in capsys.readouterr().err
+    assert main(argv + ["--out", str(tmp_path / "bad"), "--bias-energy", str(trajs[0]),
+                        str(flipped)]) == 0
+    err = capsys.readouterr().err
+    assert "warning: the rescaled clock runs slower than simulation time in " in err
+    assert f"{trajs[0]} (bias file {flipped}, clock from its bias column" in err
+    assert err.count("slower than simulation time") == 1
+    summary = (tmp_path / "bad" / "summary.md").read_text()
+    assert "warning: the rescaled clock runs slower than simulation time" in summary

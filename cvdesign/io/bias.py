@@ -96,14 +96,18 @@ barrier keeps real time there). The sum runs over the frames the run is used
 for: every frame of a labelled file (its frames between the states are part
 of the run's time, and of its crossings), the frame range of a file given for
 one state (the frames outside it add no time, so their bias cannot overflow
-the clock); the overflow check and its message look at the same frames. A lagged pair at a lag of ``L`` frame spacings
+the clock); the overflow check and its message look at the same frames. A
+bias that accelerates the dynamics is never negative as felt, so the clock
+never runs slower than simulation time; when it does (a clock bias shifted by
+``c(t)``, or of the wrong sign), :meth:`Reweighting.describe` warns
+(:meth:`Reweighting.slow_clocks`). A lagged pair at a lag of ``L`` frame spacings
 pairs frame ``t`` with the frame whose clock is closest to ``clock[t] + L``
 among the frames after ``t`` up to the first frame ``u`` whose clock reaches
 it: ``u`` or the frame before it (a tie: ``u``; only ``u`` when the frame
 before it is ``t``), so the pairs' rescaled lags scatter about ``L`` by at most
 half a step either way (``passes.keys.SegmentLayout.partners``); no pair when
 no frame reaches it. The clock is a function of the file's bias
-values alone, so pairs do not depend on how frames are split into chunks or
+values and the segment's frames alone, so pairs do not depend on how frames are split into chunks or
 tasks.
 """
 
@@ -118,7 +122,8 @@ from ..errors import InputError
 
 __all__ = ["read_bias_file", "is_number", "kish_ess", "Reweighting", "reweight", "LOW_ESS_FRACTION",
            "LOW_ESS_FRAMES", "MAX_RESCALE_EXPONENT", "BIAS_COLUMN", "CLOCK_COLUMN",
-           "COARSE_LAG_FRACTION"]
+           "COARSE_LAG_FRACTION", "SLOW_CLOCK_TOLERANCE", "NEGATIVE_CLOCK_FRACTION",
+           "SLOW_CLOCK_WARNING"]
 
 #: A state's Kish effective sample size below this fraction of its frames gets a warning
 #: (common practice: reweighted averages from a few percent of the frames are noisy).
@@ -134,6 +139,14 @@ BIAS_COLUMN = "bias"
 #: (see the module's text: the clock needs the bias as felt, the weights may take it minus
 #: a time-dependent offset).
 CLOCK_COLUMN = "clock_bias"
+#: A biased run's clock gets a warning when its rescaled length is below its simulated
+#: length by more than this fraction (float rounding of a zero bias stays far below it) ...
+SLOW_CLOCK_TOLERANCE = 1e-3
+#: ... or when more than this share of its clock energies are negative: a bias as felt is
+#: never negative (common practice).
+NEGATIVE_CLOCK_FRACTION = 0.1
+#: How the warning about such a clock starts (the command shows it on standard error).
+SLOW_CLOCK_WARNING = "the rescaled clock runs slower than simulation time"
 #: A lag gets a warning when more than this share of the biased frames' weight is in
 #: rescaled steps longer than half of it (:meth:`Reweighting.coarse_fraction`; common
 #: practice).
@@ -389,6 +402,11 @@ class Reweighting:
         one state (given for a state, or labelled with one state only) holds
         that state's frames by construction, not in proportion to its
         population, so its frames would inflate that state's ``Z_s``.
+    clock_lengths : dict of int to (int, float, int)
+        Per biased segment, over the frames its clock runs through: their
+        number (its simulated length in frame spacings), its rescaled length
+        (frame spacings) and how many of them have a negative clock energy
+        (see :meth:`slow_clocks`).
     """
 
     temperature_k: float
@@ -404,6 +422,7 @@ class Reweighting:
     groups: dict = field(default_factory=dict)
     own_clock: set = field(default_factory=set)
     population_runs: tuple = ()
+    clock_lengths: dict = field(default_factory=dict)
 
     @property
     def kt(self):
@@ -478,6 +497,39 @@ class Reweighting:
                     f"{clock[-1]:.3g} frame spacings, too long for float64 to resolve a lag of "
                     f"{lag} frame spacings; its bias ({top:.3g} kT at most) is too large for "
                     "rescaled time: leave out --lag or give a longer lag")
+
+    def slow_clocks(self):
+        """Biased segments whose rescaled clock runs slower than simulation time.
+
+        A bias that accelerates the dynamics is never negative as felt, so
+        ``exp(V / kT) >= 1`` at every frame and the rescaled length is at
+        least the simulated one. A segment whose rescaled length is below
+        ``1 - SLOW_CLOCK_TOLERANCE`` of its simulated length, or more than
+        :data:`NEGATIVE_CLOCK_FRACTION` of whose clock energies are negative,
+        was given a clock bias that is shifted (the bias minus ``c(t)``) or of
+        the wrong sign.
+
+        Returns
+        -------
+        list of int
+            Segment indices, in order.
+
+        Examples
+        --------
+        >>> from pathlib import Path
+        >>> from cvdesign.io.source import Segment
+        >>> kt = BOLTZMANN_KJ_MOL_K * 300.0
+        >>> up = Segment(Path("up.xtc"), "a", bias=np.array([0.0, 1.0, 2.0]) * kt)
+        >>> down = Segment(Path("down.xtc"), "a", bias=np.array([0.0, -1.0, -2.0]) * kt)
+        >>> reweight([up, down], ["a"], 300.0).slow_clocks()
+        [1]
+        """
+        out = []
+        for si, (n, rescaled, negative) in self.clock_lengths.items():
+            if n and (rescaled < (1.0 - SLOW_CLOCK_TOLERANCE) * n
+                      or negative > NEGATIVE_CLOCK_FRACTION * n):
+                out.append(si)
+        return sorted(out)
 
     def coarse_fraction(self, lags):
         """Share of the biased frames' weight in rescaled steps longer than half the lag.
@@ -571,6 +623,11 @@ class Reweighting:
                          f"({', '.join(left)}): {its} frames are in that state by construction, "
                          "not in proportion to its population, and would inflate it")
             notes.append(note)
+        slow = [si for si in self.slow_clocks() if lags is not None or si in self.own_clock]
+        if slow:
+            w = _slow_clock_text(self, slow)
+            warnings.append(w)
+            notes.append("warning: " + w)
         if lags is not None:
             coarse = self.coarse_fraction(lags)
             if coarse > COARSE_LAG_FRACTION:
@@ -605,6 +662,25 @@ class Reweighting:
                     "offset c(t) (for the weights) puts the clock off by exp(-c(t)/kT), so "
                     "add a 'clock_bias' column with the bias as felt (cvdesign.io.bias)")
         return notes, warnings
+
+
+def _slow_clock_text(reweighting, segments):
+    """The warning of :meth:`Reweighting.describe` about clocks slower than simulation time."""
+    parts = []
+    for si in segments:
+        n, rescaled, negative = reweighting.clock_lengths[si]
+        traj, bias = reweighting.paths[si]
+        column = "its 'clock_bias' column" if si in reweighting.own_clock else "its bias column"
+        parts.append(f"{traj} (bias file {bias}, clock from {column}: {rescaled:.4g} frame "
+                     f"spacings of rescaled time over {n} simulated, {negative / n:.0%} of its "
+                     "clock energies negative)")
+    return (SLOW_CLOCK_WARNING + " in " + "; ".join(parts)
+            + ": no bias that accelerates the dynamics does that, so the clock bias looks "
+            "shifted (a column holding the bias minus its offset c(t)) or sign-flipped; give a "
+            "'clock_bias' column with the bias each frame felt, in kJ/mol, positive where the "
+            "bias pushes the system away (cvdesign.io.bias), and check the sign of the bias "
+            "column (a flipped sign inverts the weights too); the slowness and timescales of "
+            "these runs are not to be trusted until then")
 
 
 def _runs(n):
@@ -694,7 +770,7 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
             total[s] += rs.sum()
             squares[s] += rs @ rs
             frames[s] += rs.size
-    weights, clocks, max_exp, paths = {}, {}, {}, {}
+    weights, clocks, max_exp, paths, clock_lengths = {}, {}, {}, {}, {}
     scale = np.divide(frames, total, out=np.zeros(n_states), where=total > 0)
     for si in biased:
         c, a = codes[si], exps[si]
@@ -708,6 +784,8 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
         with np.errstate(over="ignore"):
             steps = np.where(used, np.exp(np.where(used, f, 0.0)), 0.0)
         clocks[si] = np.concatenate([[0.0], np.cumsum(steps)])
+        n_used = int(used.sum())
+        clock_lengths[si] = (n_used, float(clocks[si][-1]), int((f[used] < 0).sum()))
         paths[si] = (str(segments[si].path), str(segments[si].bias_path))
     crossing = _crossing_segments(segments, biased, codes)
     log_z = _log_partition(crossing, exps, codes, n_states)
@@ -717,7 +795,8 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
     groups = _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames)
     own_clock = {si for si in biased if segments[si].clock_bias is not None}
     return Reweighting(float(temperature_k), list(states), weights, clocks, frames, ess, log_z,
-                       max_exp, multi, paths, groups, own_clock, tuple(crossing))
+                       max_exp, multi, paths, groups, own_clock, tuple(crossing),
+                       clock_lengths)
 
 
 def _crossing_segments(segments, biased, codes):
