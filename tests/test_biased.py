@@ -1122,3 +1122,33 @@ def test_suggest_command_warns_on_standard_error_about_a_sign_flipped_bias(tmp_p
     assert err.count("slower than simulation time") == 1
     summary = (tmp_path / "bad" / "summary.md").read_text()
     assert "warning: the rescaled clock runs slower than simulation time" in summary
+
+
+def test_a_biased_group_of_small_effective_size_beside_unbiased_runs_is_warned_about():
+    """State 'a': a biased run of 10,000 frames whose weight sits on one frame (Kish size
+    about 1) and an unbiased run of 2,000 frames. The state's combined size (about 2,001) is
+    not small, but its biased group's is: describe() warns about that group; a biased run of
+    equal weights beside the same unbiased run gets no warning."""
+    from cvdesign.io.bias import reweight
+    from cvdesign.io.source import Segment
+
+    rng = np.random.default_rng(17)
+    v = rng.uniform(0.0, 1.0, 10_000) * KT
+    v[1234] = 60.0 * KT
+    plain = Segment(Path("plain.xtc"), "a")
+    for bias, warned in ((v, True), (np.zeros(10_000), False)):
+        seg = Segment(Path("biased.xtc"), "a", bias=bias, bias_path=Path("biased.bias"))
+        rw = reweight([seg, plain], ["a"], 300.0, count_frames=lambda path: 2_000)
+        (nb, eb), _ = rw.groups[0]["biased"], rw.groups[0]["unbiased"]
+        assert rw.ess[0] > 2_000  # the combined size alone would not warn
+        _, warnings = rw.describe()
+        if not warned:
+            assert warnings == []
+            continue
+        assert eb < 1.01
+        (w,) = warnings
+        assert w == (f"the biased runs of state 'a' have a small effective sample size after "
+                     f"reweighting ({eb:.1f} of 10000 frames): a few frames of high bias carry "
+                     f"most of their weight, so they weigh {eb / rw.ess[0]:.1%} of the state "
+                     "and its statistics come almost only from its 2000 unbiased frames; give "
+                     "longer biased runs or runs with a smaller bias in that state")

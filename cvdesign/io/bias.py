@@ -86,7 +86,9 @@ any biased run; a state with biased files only is weighted as above.
 **Effective sample size.** Kish's ``(sum w)^2 / sum w^2`` (Kish, *Survey
 Sampling*, Wiley, 1965), per state; a warning names a state whose effective
 size is below :data:`LOW_ESS_FRACTION` of its frames or below
-:data:`LOW_ESS_FRAMES` frames.
+:data:`LOW_ESS_FRAMES` frames, and, in a state with biased and unbiased runs,
+whose biased group's effective size is below :data:`LOW_ESS_FRAMES` (the
+state's combined size may then be large, its unbiased frames carrying it).
 
 **Rescaled time.** The *clock* of a file counts rescaled time in units of the
 frame spacing: ``clock[f] = sum_{u < f} exp(V_u / kT)`` (the bias of the frame
@@ -600,6 +602,16 @@ class Reweighting:
                      f"reweighting ({ess:.1f} of {n} frames): a few frames of high bias carry "
                      "most of the weight, so its statistics are noisy; give longer biased runs "
                      "or runs with a smaller bias in that state")
+                warnings.append(w)
+                notes.append("warning: " + w)
+            elif s in self.groups and self.groups[s]["biased"][1] < LOW_ESS_FRAMES:
+                (nb, eb), (nu, _) = self.groups[s]["biased"], self.groups[s]["unbiased"]
+                w = (f"the biased runs of state {self.states[s]!r} have a small effective "
+                     f"sample size after reweighting ({eb:.1f} of {nb} frames): a few frames "
+                     f"of high bias carry most of their weight, so they weigh {eb / ess:.1%} "
+                     f"of the state and its statistics come almost only from its {nu} "
+                     "unbiased frames; give longer biased runs or runs with a smaller bias in "
+                     "that state")
                 warnings.append(w)
                 notes.append("warning: " + w)
         pops = self.populations()
