@@ -1059,7 +1059,11 @@ def test_suggest_takes_the_temperature_of_a_biased_source_and_refuses_another(tm
                                          r"report's -kT ln p\) differs from the source's "
                                          r"temperature=350\.0 \(K\), at which its biased runs"):
         suggest(src, temperature=300.0, **kw)
-    assert suggest(plain, **kw).report_data["temperature_k"] == 300.0
+    unweighted = suggest(plain, **kw).report_data
+    assert unweighted["temperature_k"] == 300.0
+    # the held-out histograms of the biased states are weights (the caption says so)
+    assert result.report_data["cvs"][0]["heldout"]["weighted"] == ["left", "right"]
+    assert "weighted" not in unweighted["cvs"][0]["heldout"]
 
 
 def test_a_clock_bias_slower_than_simulation_time_is_warned_about(tmp_path):

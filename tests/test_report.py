@@ -664,14 +664,30 @@ def test_held_out_weight_beyond_the_bins_is_named_in_the_caption_not_rounded_awa
                               temperature_k=300.0)
     assert fig.data["outside"] == {"A": 0.3, "B": 0.4}
     assert fig.data["counts"] == {"A": 4.1, "B": 3.7}
-    assert ("0.7 held-out frame(s) beyond the drawn range are not shown (A: 0.3, B: 0.4); "
-            "frames of biased runs count with their weights.") in fig.caption
+    assert ("Held-out weight 0.7 beyond the drawn range is not shown (A: 0.3, B: 0.4; frames "
+            "of biased runs count with their reweighting factors, which average 1 per frame of "
+            "the state, so this is a weight, not a frame count).") in fig.caption
+    assert "frame(s) beyond" not in fig.caption
     whole = dict(heldout, counts={"A": [3, 1, 0], "B": [0, 1, 3]},
                  outside={"A": [1, 0], "B": [0, 0]})
     fig = fg.cv_distributions("cv-01", "rank 1", whole, stats, states=["A", "B"],
                               temperature_k=300.0)
     assert fig.data["outside"] == {"A": 1, "B": 0}
     assert "1 held-out frame(s) beyond the drawn range are not shown (A: 1)." in fig.caption
+    assert "weight" not in fig.caption
+
+
+def test_held_out_weight_of_a_weighted_state_is_a_weight_even_when_it_sums_to_whole_frames():
+    # report-data lists the states with biased runs in heldout.weighted: their outside sums
+    # (here 1.0 and 2.0, written as ints) are weights, the unweighted state's are frames
+    heldout = {"edges": [0.0, 1.0, 2.0, 3.0], "counts": {"A": [3, 1, 0], "B": [0, 1, 3]},
+               "outside": {"A": [1, 0], "B": [2, 0]}, "weighted": ["B"]}
+    stats = {"A": {"mean": 0.9, "std": 0.5}, "B": {"mean": 2.1, "std": 0.5}}
+    fig = fg.cv_distributions("cv-01", "rank 1", heldout, stats, states=["A", "B"],
+                              temperature_k=300.0)
+    assert "1 held-out frame(s) beyond the drawn range are not shown (A: 1)." in fig.caption
+    assert " Held-out weight 2 beyond the drawn range is not shown (B: 2; frames of biased " \
+        "runs count with their reweighting factors" in fig.caption
 
 
 def test_the_folded_note_under_a_range_is_drawn_in_the_warning_colour(demo_out, tmp_path):

@@ -716,12 +716,16 @@ def report_document(result, plans, ranking, *, source, states, steps, lags, temp
     within = None
     if within_states and result.get("cv_grid") is not None:
         within = _within_runs(result["cv_grid"])
+    reweighting = source.reweighting()  # states with biased runs count weights, not frames
+    weighted = None if reweighting is None else [states[s] for s in reweighting.biased_states]
     cvs = []
     for c, (p, entry) in enumerate(zip(plans, ranking)):
         hist = result["hist"][c]
         heldout = {"edges": p.edges.tolist(),
                    "counts": {s: _counts(hist[i, 1:-1]) for i, s in enumerate(states)},
                    "outside": {s: _counts(hist[i, [0, -1]]) for i, s in enumerate(states)}}
+        if weighted is not None:
+            heldout["weighted"] = weighted
         traces = []
         for seg in sorted(by_segment):
             parts = by_segment[seg]

@@ -298,7 +298,10 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         "counts": {state: [n_bins counts]}}``, optionally ``"outside": {state:
         [frames below the first edge, frames above the last]}``: those count in
         each state's total (the density is per frame of the state) but are not
-        drawn, and the caption says how many there are.
+        drawn, and the caption says how many there are; optionally ``"weighted":
+        [states]``, the states whose counts are sums of frame weights (biased
+        runs; without the key, a state whose outside count is not whole): the
+        caption gives their outside part as a weight, not as frames.
     states_stats : dict
         ``{state: {"mean": float, "std": float}}`` in CV units (the spec's ``states``).
     states : sequence of str
@@ -425,18 +428,32 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
                + "; ".join(f"{s}: {means[s]:.4g} \u00b1 {stds[s]:.3g}" for s in means)
                + f"), and -kT ln p of each state's histogram in kJ/mol at "
                f"{temperature_k:g} K." + _range_words(reachable, drawn, at_bound))
-        n_out = sum(outside.values())
         caption = (f"{label}: does the CV split the states on frames the fit never saw? "
                    "Left, each state's held-out histogram with its mean and spread from the "
                    f"spec; right, \u2212kT ln p per state (kJ/mol, {temperature_k:g} K), an "
                    "estimate from unbiased sampling within each state, not the free energy "
-                   "of the transition."
-                   + (f" {n_out:g} held-out frame(s) beyond the drawn range are not shown ("
-                      + ", ".join(f"{s}: {v:g}" for s, v in outside.items() if v) + ")"
-                      + ("; frames of biased runs count with their weights" if any(
-                          isinstance(v, float) for v in outside.values()) else "") + "."
-                      if n_out else "") + _range_words(reachable, drawn, at_bound))
+                   "of the transition." + _outside_words(outside, heldout.get("weighted"))
+                   + _range_words(reachable, drawn, at_bound))
         return _finish(fig, name, caption, alt, data)
+
+
+def _outside_words(outside, weighted):
+    """The caption's sentences on what lies beyond the drawn range: frames of the unweighted
+    states, the weight of the weighted ones (biased runs: sums of frame weights)."""
+    if weighted is None:  # (a document without the key: a count that is not whole)
+        weighted = [s for s, v in outside.items() if isinstance(v, float)]
+    frames = {s: v for s, v in outside.items() if v and s not in weighted}
+    weights = {s: v for s, v in outside.items() if v and s in weighted}
+    text = ""
+    if frames:
+        text += (f" {sum(frames.values()):g} held-out frame(s) beyond the drawn range are not "
+                 "shown (" + ", ".join(f"{s}: {v:g}" for s, v in frames.items()) + ").")
+    if weights:
+        text += (f" Held-out weight {sum(weights.values()):.3g} beyond the drawn range is not "
+                 "shown (" + ", ".join(f"{s}: {v:g}" for s, v in weights.items())
+                 + "; frames of biased runs count with their reweighting factors, which "
+                 "average 1 per frame of the state, so this is a weight, not a frame count).")
+    return text
 
 
 def cv_traces(name, label, traces, *, states, units="CV units", reachable=None,
