@@ -1156,3 +1156,68 @@ def test_a_biased_group_of_small_effective_size_beside_unbiased_runs_is_warned_a
                      f"most of their weight, so they weigh {eb / rw.ess[0]:.1%} of the state "
                      "and its statistics come almost only from its 2000 unbiased frames; give "
                      "longer biased runs or runs with a smaller bias in that state")
+
+
+def _timed_bias(path, times, values, header="time_ps, bias", fmt="{!r}"):
+    """A bias-energy file with a time column (comma-separated)."""
+    rows = "".join(f"{fmt.format(float(t))}, {float(v)!r}\n" for t, v in zip(times, values))
+    Path(path).write_text(f"{header}\n" + rows)
+    return str(path)
+
+
+def test_a_bias_file_whose_times_are_shifted_by_a_frame_is_refused_when_given(tmp_path):
+    """A bias file with a time column one frame off the XTC's stored times is refused by
+    Source.add, naming both files, the frame and both times; matching times (also written
+    with few digits, or in ns) are accepted, and a trajectory without stored times (DCD) is
+    not compared."""
+    well = DoubleWell()
+    x = well.samples(400, biased=True, seed=31).reshape(2, 200)
+    pdb, (traj, other), (bias, _) = write_well_runs(tmp_path, x, frame_step_ps=0.25, well=well)
+    v = read_bias_file(bias)
+    t = np.arange(200) * 0.25
+    src = Source(str(pdb), temperature=well.temperature)
+    shifted = _timed_bias(tmp_path / "shifted.bias", t + 0.25, v)
+    with pytest.raises(InputError, match=r"bias-energy file '.*shifted\.bias' and trajectory "
+                                         r"'.*run-0\.xtc' disagree on the time of frame 0: the "
+                                         r"bias file's row of that frame \(value row 1\) says "
+                                         r"0\.25 ps in column 'time_ps', the trajectory stores "
+                                         r"0 ps; the bias energies must be those of the "
+                                         r"trajectory's frames"):
+        src.add(str(traj), "left", bias=shifted)
+    assert src.segments == []
+    src.add(str(traj), "left", bias=_timed_bias(tmp_path / "ok.bias", t, v, fmt="{:.1f}"))
+    assert src.segments[0].bias_times.resolution_ps == pytest.approx(0.05)
+    np.testing.assert_array_equal(src.segments[0].bias, v)
+    ns = _timed_bias(tmp_path / "ns.bias", t / 1000.0, v, header="time_ns, bias")
+    Source(str(pdb), temperature=well.temperature).add(str(traj), "left", bias=ns)
+    dcd = _write_dcd(tmp_path / "run.dcd", np.zeros((200, 3, 3)))
+    Source(_topology(), temperature=300.0).add(dcd, "a", bias=shifted)  # no stored times
+
+
+def test_suggest_refuses_a_bias_file_whose_times_differ_from_the_trajectory_mid_run(tmp_path):
+    """The first two frames agree, frame 150 does not (a row dropped and one repeated): the
+    even-spacing pass of suggest, which reads every frame's stored time anyway, refuses it
+    naming frame 150 and both times; the matching file gives the same ranking as no times."""
+    well = DoubleWell()
+    x = well.samples(1_200, biased=True, seed=8).reshape(2, 600)
+    pdb, trajs, biases = write_well_runs(tmp_path, x, frame_step_ps=1.0, well=well)
+    kw = dict(n_bootstrap=0, cutoff=10.0, max_terms=1, n_suggestions=1)
+
+    def source(times):
+        src = Source(str(pdb), temperature=well.temperature)
+        for i, (traj, bias) in enumerate(zip(trajs, biases)):
+            xs = md.load(str(traj), top=str(pdb)).xyz[:, 1, 0]
+            if times is not None and i == 1:
+                bias = _timed_bias(tmp_path / "timed.bias", times, read_bias_file(bias))
+            src.add_labelled(str(traj), np.where(xs < 0, "left", "right"), bias=str(bias))
+        return src
+
+    t = np.arange(600, dtype=np.float64)
+    bad = t.copy()
+    bad[150:] -= 1.0  # row 149 dropped, the last row repeated
+    with pytest.raises(InputError, match=r"bias-energy file '.*timed\.bias' and trajectory "
+                                         r"'.*run-1\.xtc' disagree on the time of frame 150: "
+                                         r".* says 149 ps in column 'time_ps', the trajectory "
+                                         r"stores 150 ps"):
+        suggest(source(bad), **kw)
+    assert suggest(source(t), **kw).ranking == suggest(source(None), **kw).ranking

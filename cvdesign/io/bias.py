@@ -21,6 +21,18 @@ deposited kernels does). For a bias that changed during the run, give the
 energy to reweight with (for instance the bias minus its time-dependent
 offset ``c(t)``), not the raw sum of kernels.
 
+**The time column.** A header may name a column of frame times: ``time`` or
+``time_ps`` (ps), ``time_ns``, ``time_fs`` (:data:`TIME_COLUMNS`). When the
+trajectory stores times too, they must agree (to single precision and the
+digits written, :class:`BiasTimes`): a bias file of another run, or one whose
+rows are shifted by a frame, is refused naming both files, the frame and both
+times. The first two frames are compared when the file is given
+(:meth:`cvdesign.io.source.Source.add`), every frame where the trajectory's
+times are read anyway (the even-spacing check of ``suggest`` and
+``propose_states``, :class:`cvdesign.pipeline.timing.EvenSpacingPass`). A
+trajectory without stored times (or whose stored times are replaced by a given
+frame spacing) is not compared.
+
 **The clock column.** The weights do not change when every energy of a state
 is shifted by one constant, but the rescaled clock (below) does: it needs the
 bias *as the system felt it* at each frame, ``V(s_t, t)``, zero where the bias
@@ -113,6 +125,7 @@ values and the segment's frames alone, so pairs do not depend on how frames are 
 tasks.
 """
 
+import decimal
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -125,7 +138,7 @@ from ..errors import InputError
 __all__ = ["read_bias_file", "is_number", "kish_ess", "Reweighting", "reweight", "LOW_ESS_FRACTION",
            "LOW_ESS_FRAMES", "MAX_RESCALE_EXPONENT", "BIAS_COLUMN", "CLOCK_COLUMN",
            "COARSE_LAG_FRACTION", "SLOW_CLOCK_TOLERANCE", "NEGATIVE_CLOCK_FRACTION",
-           "SLOW_CLOCK_WARNING"]
+           "SLOW_CLOCK_WARNING", "TIME_COLUMNS", "BiasTimes"]
 
 #: A state's Kish effective sample size below this fraction of its frames gets a warning
 #: (common practice: reweighted averages from a few percent of the frames are noisy).
@@ -137,6 +150,9 @@ LOW_ESS_FRAMES = 100
 MAX_RESCALE_EXPONENT = 600.0
 #: Name of the column read by default from a bias-energy file with several columns.
 BIAS_COLUMN = "bias"
+#: Header names of a bias-energy file's optional time column, with the factor of their
+#: unit to ps; its times are compared with those the trajectory stores.
+TIME_COLUMNS = {"time": 1.0, "time_ps": 1.0, "time_ns": 1000.0, "time_fs": 1e-3}
 #: Name of the optional column with the bias each frame felt, for the rescaled clock
 #: (see the module's text: the clock needs the bias as felt, the weights may take it minus
 #: a time-dependent offset).
@@ -227,13 +243,14 @@ def _bias_column(name, header, width, column):
     return None
 
 
-def read_bias_file(path, column=None, *, with_clock=False):
+def read_bias_file(path, column=None, *, with_clock=False, with_times=False):
     """Bias energies (kJ/mol) of every frame, from a bias-energy file.
 
     The format is described in :mod:`cvdesign.io.bias`: one row per frame,
     optional header row, ``#`` comments, columns separated by commas or white
-    space; the only column, the column named ``bias``, or `column`; and, with
-    `with_clock`, the ``clock_bias`` column when the header has one.
+    space; the only column, the column named ``bias``, or `column`; with
+    `with_clock`, the ``clock_bias`` column when the header has one; with
+    `with_times`, the frame times of a time column (:data:`TIME_COLUMNS`).
 
     Parameters
     ----------
@@ -246,12 +263,16 @@ def read_bias_file(path, column=None, *, with_clock=False):
     with_clock : bool, default=False
         Also return the ``clock_bias`` column (the bias as felt, for the
         rescaled clock), or None when the file has none.
+    with_times : bool, default=False
+        Also return the file's frame times (:class:`BiasTimes`, from its
+        header's time column), or None when it has none.
 
     Returns
     -------
     ndarray of shape (n_frames,), float64
-        Bias energy of each frame, kJ/mol; with `with_clock`, a pair of it and
-        the clock's energies (or None).
+        Bias energy of each frame, kJ/mol; with `with_clock` or `with_times`,
+        a tuple of it and the clock's energies (or None) and/or the times (or
+        None), in that order.
 
     Raises
     ------
@@ -287,13 +308,90 @@ def read_bias_file(path, column=None, *, with_clock=False):
                          "column holds the bias energies (--bias-column N|NAME, bias_column= "
                          "in Python)")
     values = _column_values(name, rows, width, k, header is not None)
-    if not with_clock:
+    if not with_clock and not with_times:
         return values
     lower = [] if header is None else [h.lower() for h in header]
-    clock = None
-    if CLOCK_COLUMN in lower:
-        clock = _column_values(name, rows, width, lower.index(CLOCK_COLUMN), True)
-    return values, clock
+    out = [values]
+    if with_clock:
+        out.append(None if CLOCK_COLUMN not in lower else
+                   _column_values(name, rows, width, lower.index(CLOCK_COLUMN), True))
+    if with_times:
+        out.append(_bias_times(name, rows, width, header))
+    return tuple(out)
+
+
+def _bias_times(name, rows, width, header):
+    """The :class:`BiasTimes` of a bias-energy file's time column, or None without one."""
+    lower = [] if header is None else [h.lower() for h in header]
+    k = next((i for i, h in enumerate(lower) if h in TIME_COLUMNS), None)
+    if k is None:
+        return None
+    factor = TIME_COLUMNS[lower[k]]
+    times = _column_values(name, rows, width, k, True) * factor
+    # half the last digit written, of the coarsest row: how far the text may be from the
+    # time it stands for
+    digits = max(decimal.Decimal(cells[k]).as_tuple().exponent for _, cells in rows)
+    return BiasTimes(name, header[k], times, 0.5 * 10.0 ** digits * factor)
+
+
+@dataclass(frozen=True, eq=False)
+class BiasTimes:
+    """The frame times a bias-energy file states in its time column.
+
+    Compared with the times a trajectory stores, they catch a bias file that
+    does not belong to the trajectory's frames (another run, or rows shifted
+    by a frame).
+
+    Attributes
+    ----------
+    path : str
+        The bias-energy file.
+    column : str
+        Its time column's header name (:data:`TIME_COLUMNS`).
+    times_ps : ndarray of shape (n_frames,)
+        Time of every row, ps.
+    resolution_ps : float
+        Half the last digit written in the column (its coarsest row), ps: how
+        far a written time may be from the time it stands for.
+
+    Examples
+    --------
+    >>> t = BiasTimes("run.bias", "time_ps", np.array([0.0, 0.2, 0.4]), 5e-4)
+    >>> t.first_mismatch(np.array([0, 1, 2]), np.float32([0.0, 0.2, 0.4]))
+    -1
+    >>> t.first_mismatch(np.array([1, 2]), np.float32([0.4, 0.6]))  # shifted by a frame
+    0
+    """
+
+    path: str
+    column: str
+    times_ps: np.ndarray = field(repr=False)
+    resolution_ps: float
+
+    def first_mismatch(self, frames, stored_ps):
+        """Index into `frames` of the first frame whose stored time (ps) differs from this
+        file's beyond their precisions (single precision for the stored time, as the even-
+        spacing check allows, and the written digits), or -1."""
+        stored = np.asarray(stored_ps, dtype=np.float64)
+        mine = self.times_ps[np.asarray(frames, dtype=np.int64)]
+        tol = np.maximum(self.resolution_ps, 4 * np.abs(stored) * 2.0**-23) * (1 + 1e-9)
+        bad = np.flatnonzero(~(np.abs(mine - stored) <= tol))
+        return int(bad[0]) if bad.size else -1
+
+    def check(self, trajectory, frames, stored_ps):
+        """Refuse frames whose stored times (ps) differ from this file's, naming both files,
+        the frame (its row) and both times."""
+        i = self.first_mismatch(frames, stored_ps)
+        if i < 0:
+            return
+        f = int(np.asarray(frames)[i])
+        raise InputError(
+            f"bias-energy file {self.path!r} and trajectory {str(trajectory)!r} disagree on the "
+            f"time of frame {f}: the bias file's row of that frame (value row {f + 1}) says "
+            f"{self.times_ps[f]:.9g} ps in column {self.column!r}, the trajectory stores "
+            f"{float(np.asarray(stored_ps)[i]):.9g} ps; the bias energies must be those of the "
+            "trajectory's frames, one row per frame, frame 0 first: check that both files "
+            "come from the same run and that no row was dropped, repeated or shifted")
 
 
 def _column_values(name, rows, width, k, has_header):

@@ -599,6 +599,9 @@ class Segment:
     clock_bias : ndarray of shape (n_frames,) or None
         The bias each frame felt, kJ/mol, from the file's ``clock_bias``
         column, for the rescaled clock (None: the clock uses `bias`).
+    bias_times : cvdesign.io.bias.BiasTimes or None
+        The frame times of the bias-energy file's time column, compared with
+        the trajectory's stored times (None: the file has no time column).
     """
 
     path: Path
@@ -610,6 +613,7 @@ class Segment:
     bias_path: Path | None = None
     bias_column: str | None = None
     clock_bias: np.ndarray | None = field(default=None, compare=False, repr=False)
+    bias_times: object = field(default=None, compare=False, repr=False)
 
 
 @dataclass
@@ -817,26 +821,30 @@ class Source:
         return self
 
     def _read_bias(self, path, bias, column):
-        """(energies, bias path, column, clock energies or None) of a trajectory's
-        bias-energy file, checked, or (None, None, None, None) without one."""
+        """(energies, bias path, column, clock energies or None, times or None) of a
+        trajectory's bias-energy file, checked, or five None without one."""
         if bias is None:
             if column is not None:
                 raise InputError(f"bias_column={column!r} for {str(path)!r} goes with a "
                                  "bias-energy file (bias=...)")
-            return None, None, None, None
+            return None, None, None, None, None
         from .bias import read_bias_file
 
         if self.temperature is None:
             raise InputError(f"a bias-energy file ({str(bias)!r}) needs the temperature of the "
                              "biased run: give temperature=K to Source (--temperature K on the "
                              "command line)")
-        energies, clock = read_bias_file(bias, column, with_clock=True)
+        energies, clock, times = read_bias_file(bias, column, with_clock=True, with_times=True)
         n_file = file_frames(path)
         if energies.size != n_file:
             raise InputError(f"bias-energy file {str(bias)!r} holds {energies.size} bias "
                              f"energies, but trajectory {str(path)!r} has {n_file} frames; give "
                              "one bias energy per frame of the whole trajectory, frame 0 first")
-        return energies, Path(bias), None if column is None else str(column), clock
+        if times is not None and stores_time(path):  # the first two frames: cheap, at once
+            stored = self._stored_step(path)
+            if stored is not None and stored[1] > stored[0]:  # (else: no real stored times)
+                times.check(path, np.array([0, 1]), np.array(stored))
+        return energies, Path(bias), None if column is None else str(column), clock, times
 
     @property
     def biased(self):
@@ -977,7 +985,8 @@ class Source:
             seg = self.segments[si]
             out._add_state(name)
             out.segments.append(Segment(seg.path, str(name), None, None, None, seg.bias,
-                                        seg.bias_path, seg.bias_column, seg.clock_bias))
+                                        seg.bias_path, seg.bias_column, seg.clock_bias,
+                                        seg.bias_times))
         out._checked, out._stored_steps = self._checked, self._stored_steps
         out._time_notes = self._time_notes
         return out

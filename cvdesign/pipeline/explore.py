@@ -72,7 +72,7 @@ from ..pool import build_pool, check_prefilter_stride
 from ..progress import stage_messages
 from ..search import standardize_lagged
 from ..stats.moments import LaggedMoments, merge_all
-from .timing import EvenSpacingPass, checked_segments, read_timesteps
+from .timing import EvenSpacingPass, bias_times, checked_segments, read_timesteps
 from .timing import lag_frames as _lag_frames
 
 __all__ = ["propose_states", "state_kinetics", "Exploration", "StateKinetics",
@@ -1105,7 +1105,8 @@ def _screen(source, base, pool, timesteps, lag, lag_frames, screen_size, executo
     every = PoolFeaturizer(pool)
     plan = base.for_features(every.n_features, executor.n_workers)
     shift = reference_features(plan, every)
-    spacing = EvenSpacingPass(every, timesteps, checked_segments(source, timesteps))
+    checked = checked_segments(source, timesteps)
+    spacing = EvenSpacingPass(every, timesteps, checked, bias_times(source, checked))
     first, lagged, _ = run_pass((ScreeningPass(every), LaggedPass(every, lag_frames,
                                                                    shift=shift, diagonal=True),
                                  spacing), source, executor=executor, tasks=plan,

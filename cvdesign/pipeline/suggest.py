@@ -62,7 +62,7 @@ from .report_data import (CVBlockHistograms, CVGridPass, CVLaggedPass, CVReportP
 from .screening import Screening, screen
 from .specs import InputChecksums, SourceRecord, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
-from .timing import (EvenSpacingPass, block_frames, checked_segments, iat_lags,
+from .timing import (EvenSpacingPass, bias_times, block_frames, checked_segments, iat_lags,
                      integrated_time, lag_frames, local_autocorrelation, longest_run_text,
                      read_timesteps)
 
@@ -509,7 +509,8 @@ def _screening_pass(source, base, every, steps, lags, executor):
     plan = _plan_for(base, every.n_features, executor)
     shift = reference_features(plan, every) if lags is not None else None
     first = ScreeningPass(every, lags=lags, shift=shift)
-    spacing = EvenSpacingPass(every, steps, checked_segments(source, steps))
+    checked = checked_segments(source, steps)
+    spacing = EvenSpacingPass(every, steps, checked, bias_times(source, checked))
     result, _ = run_pass((first, spacing), source, executor=executor, tasks=plan,
                          label="screening")
     return result

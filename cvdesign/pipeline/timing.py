@@ -16,7 +16,8 @@ from ..io.source import stores_time
 from ..passes import Pass
 
 __all__ = ["read_timesteps", "lag_frames", "iat_lags", "integrated_time", "local_autocorrelation",
-           "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments"]
+           "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments",
+           "bias_times"]
 
 
 def read_timesteps(source):
@@ -318,18 +319,26 @@ class EvenSpacingPass(Pass):
         Frame spacing of each segment, ps (None: unknown, not checked).
     checked : set of int
         Segments whose stored times are to be checked.
+    bias_times : dict of int to cvdesign.io.bias.BiasTimes, default=None
+        Of the checked segments, those whose bias-energy file has a time column:
+        every frame's stored time is compared with the file's
+        (:meth:`~cvdesign.io.bias.BiasTimes.check`), here where the times are
+        read anyway (:func:`bias_times`).
     """
 
-    def __init__(self, featurizer, steps, checked):
+    def __init__(self, featurizer, steps, checked, bias_times=None):
         self.featurizer = featurizer
         self.steps = dict(steps)
         self.checked = set(checked)
+        self.bias_times = dict(bias_times or {})
 
     def map(self, leaf):
         si = leaf.segment
         if si not in self.checked or leaf.time is None or leaf.frames.size == 0:
             return None
         t = np.asarray(leaf.time, dtype=np.float64)
+        if si in self.bias_times:
+            self.bias_times[si].check(leaf.layout.path, leaf.frames, t)
         f = leaf.frames.astype(np.float64)
         _check_spacing(leaf.layout.path, self.steps[si], f, t)
         return {si: (leaf.layout.path, f[0], t[0], f[-1], t[-1])}
@@ -363,6 +372,13 @@ def _check_spacing(path, dt, f, t):
             f"{t[i + 1]:g} ps, but the first time step ({dt:g} ps) puts it at "
             f"{t[i] + expected[i]:g} ps; lags in ps need evenly spaced frames, so split the "
             "file where the spacing changes")
+
+
+def bias_times(source, checked):
+    """The bias-file times (:class:`cvdesign.io.bias.BiasTimes`) of the `checked` segments
+    whose bias-energy file has a time column, for :class:`EvenSpacingPass`."""
+    return {si: source.segments[si].bias_times for si in sorted(checked)
+            if source.segments[si].bias_times is not None}
 
 
 def checked_segments(source, steps):
