@@ -121,8 +121,8 @@ it: ``u`` or the frame before it (a tie: ``u``; only ``u`` when the frame
 before it is ``t``), so the pairs' rescaled lags scatter about ``L`` by at most
 half a step either way (``passes.keys.SegmentLayout.partners``); no pair when
 no frame reaches it. The clock is a function of the file's bias
-values and the segment's frames alone, so pairs do not depend on how frames are split into chunks or
-tasks.
+values and the segment's frames alone, so pairs do not depend on how frames
+are split into chunks or tasks.
 """
 
 import decimal
