@@ -1196,6 +1196,10 @@ FUNNEL_CASES = [
     ("bias-column-without-bias-energy",
      lambda c: c.argv("--bias-column", "2"),
      r"--bias-column goes with --bias-energy TRAJ FILE"),
+    ("temperature-without-bias-energy",
+     lambda c: c.argv("--temperature", "300"),
+     r"--temperature goes with --bias-energy TRAJ FILE in funnel: it is the temperature the "
+     r"biased runs are reweighted at, and unbiased runs need none; leave it out"),
     ("bias-temperature-not-positive",
      lambda c: c.argv("--bias-energy", c.data.paths[0], c.bias_file(40), "--temperature", "-3"),
      r"argument --temperature: '-3' must be"),

@@ -244,3 +244,15 @@ def test_a_dihedral_whose_cosine_barely_moves_is_still_scored(tmp_path):
     assert row["fisher_ratio"] is not None and row["fisher_ratio"] > 1
     assert not row["note"].startswith("frozen")
     assert result.ranking[0]["terms"][0]["descriptor"] == row["id"]
+
+
+def test_a_state_of_one_frame_is_refused_as_too_few_frames_not_as_frozen(demo_files, tmp_path):
+    # A single frame cannot move, so the screening refused it as 'frozen ... not one
+    # repeated frame'; the fold plan, now before the screening, names the cause.
+    top, states = demo_files
+    one = tmp_path / "one.xtc"
+    md.load(states["closed"][0], top=top)[:1].save_xtc(str(one))
+    source = Source.from_states(top, {"closed": [str(one)], "open": states["open"][:1]})
+    with pytest.raises(InputError, match=r"state 'closed' has only 1 frame; held-out scoring "
+                                         r"needs at least 20 per state"):
+        suggest(source, n_bootstrap=0)

@@ -1232,6 +1232,10 @@ def _cmd_funnel(args):
     if args.bias_column is not None and not biases:
         raise InputError("--bias-column goes with --bias-energy TRAJ FILE: it says which "
                          "column of the bias-energy files holds the bias energies")
+    if args.temperature is not None and not biases:  # (it would be ignored without a word)
+        raise InputError("--temperature goes with --bias-energy TRAJ FILE in funnel: it is the "
+                         "temperature the biased runs are reweighted at, and unbiased runs "
+                         "need none; leave it out")
     inputs = [args.topology] + list(args.bound) + [b for _, b in biases]
     check_output_file(args.out, force=args.force, inputs=inputs, option="--out")
     if args.plot is not None:

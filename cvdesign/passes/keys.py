@@ -342,8 +342,9 @@ class Folds:
         if k < 2:
             s = int(np.argmin(totals)) if n_states else 0
             name = repr(state_names[s]) if state_names is not None else str(s)
+            n = int(totals[s]) if n_states else 0
             raise InputError(
-                f"state {name} has only {int(totals[s]) if n_states else 0} frames; held-out "
+                f"state {name} has only {n} frame{'' if n == 1 else 's'}; held-out "
                 f"scoring needs at least {2 * min_frames} per state ({min_frames} in each of "
                 "two folds); give more frames")
         return cls(k, "block")
