@@ -256,3 +256,23 @@ def test_a_state_of_one_frame_is_refused_as_too_few_frames_not_as_frozen(demo_fi
     with pytest.raises(InputError, match=r"state 'closed' has only 1 frame; held-out scoring "
                                          r"needs at least 20 per state"):
         suggest(source, n_bootstrap=0)
+
+
+def test_a_held_out_fold_with_a_single_block_skips_the_refits_but_keeps_the_intervals(
+        demo_files, tmp_path):
+    # Each state has plenty of blocks (intervals of the full-data fits are given), but one
+    # held-out fold of 'closed' holds a single short run, one block: refits of the search on
+    # folds resampled within each fold would all see the same data there, so the selection
+    # frequencies and held-out intervals are left out and the summary says why.
+    top, states = demo_files
+    short = tmp_path / "short.xtc"
+    md.load(states["closed"][2], top=top)[:12].save_xtc(str(short))
+    source = Source.from_states(top, {"closed": states["closed"][:2] + [str(short)],
+                                      "open": states["open"]})
+    res = suggest(source, n_bootstrap=40, max_terms=1, n_suggestions=2)
+    (note,) = [n for n in res.notes if n.startswith("no selection frequencies")]
+    assert "a single bootstrap block in a held-out fold" in note
+    for r in res.ranking:
+        assert r.get("reproduced_in_refits") is None and "heldout_score_ci" not in r
+        lo, hi = r["fisher_ratio_ci"]  # the per-state bootstrap still runs
+        assert lo <= r["fisher_ratio_all"] <= hi

@@ -384,9 +384,6 @@ def _suggest(source, config, executor, progress, checksums):
     notes += _box_notes(pool, first.diagonal, first.min_box_height)
     notes += _timing_notes(inputs)
     notes += _overlap_note(source.states, seg_counts, reweighting)
-    # (planned before the screening: a state of too few frames is refused as that, not as
-    # 'frozen' when its single frame cannot move)
-    folds = Folds.plan(base.layouts, config.n_folds, state_names=source.states)
     lag_ps, lags, lag_note = _slowness_lag(source, config, seg_counts, steps, first, lag_ps,
                                            lags, reweighting)
     notes += lag_note
@@ -397,6 +394,9 @@ def _suggest(source, config, executor, progress, checksums):
         say("reweighted biased runs; effective sample sizes (Kish): " + ", ".join(
             f"{source.states[s]!r} {reweighting.ess[s]:.1f} of {reweighting.frames[s]} frames"
             for s in reweighting.biased_states))
+    # (planned before the screening: a state of too few frames is refused as that, not as
+    # 'frozen' when its single frame cannot move)
+    folds = Folds.plan(base.layouts, config.n_folds, state_names=source.states)
     screening = screen(pool, source.states, first, priors, objective=config.objective,
                        screen_size=config.screen_size, lagged=lags is not None)
     notes += screening.notes

@@ -242,8 +242,16 @@ def block_frames(seg_counts, taus, timesteps, lag_frames):
 
     At least twice the longest integrated autocorrelation time of `taus`
     (``(time, decayed, ...)`` or None each) and two lags; whole runs when that
-    exceeds half the shortest run, when some motion did not decorrelate within
-    the runs, or when no time is known.
+    exceeds half the longest run, when some motion did not decorrelate within
+    the runs, or when no time is known. A run shorter than a block is one block
+    (blocks are counted from each run's start); one short run no longer makes
+    every run a single block (half the *shortest* run had been the bound).
+
+    Examples
+    --------
+    >>> counts = np.array([[1000, 0], [12, 0], [0, 1000]])  # a 12-frame run of state 0
+    >>> block_frames(counts, [(3.0, True)], {0: 1.0, 1: 1.0, 2: 1.0}, None)
+    6
     """
     dt = next(iter(timesteps.values())) or 1.0
     known = [t for t in taus if t is not None]
@@ -253,8 +261,7 @@ def block_frames(seg_counts, taus, timesteps, lag_frames):
     b = max(1, int(math.ceil(2.0 * longest / dt)))
     if lag_frames:
         b = max(b, 2 * max(lag_frames.values()))
-    shortest = int(seg_counts[seg_counts > 0].min())
-    if b > shortest // 2:
+    if b > int(seg_counts.max()) // 2:
         return None
     return b
 
