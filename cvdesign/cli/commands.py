@@ -114,7 +114,8 @@ def _add_suggest_options(p):
                    "dimensionless); default: " + ",".join(DEFAULT_KINDS))
     p.add_argument("--cutoff", type=_positive_float, default=1.0, metavar="NM",
                    help="distance prefilter in nm: keep a pair if its mean distance is below "
-                        "this in at least one state (default: 1.0 nm)")
+                        "this in at least one state, and up to 100 farther pairs that "
+                        "separate the states better than any of those (default: 1.0 nm)")
     p.add_argument("--coordination-r0", type=_positive_float, default=COORDINATION_R0_NM,
                    metavar="NM",
                    help="switching distance of the coordination numbers in nm: a pair of atoms "

@@ -32,6 +32,7 @@ from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
 from ..geometry import group_centers, minimum_image
 from ..kinds import DEFAULT_KINDS, GROUP_KINDS, KINDS
+from ..score.univariate import fisher_ratio
 from .descriptors import Descriptor, _make, _residue_labels, atom_labels
 from .features import Pool
 
@@ -260,7 +261,9 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
 
 def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
                     executor=None):
-    """Keep a pair if its mean distance over some state is below `cutoff`.
+    """Keep a pair if its mean distance over some state is below `cutoff`, or if it
+    separates the states better than every such pair (at most :data:`MAX_RESCUED_PAIRS`
+    of those; see :func:`_separating_beyond_cutoff`).
 
     The means are taken over every `stride`-th frame, which keeps this pass
     cheap; the stride counts each state's frames within each file.
@@ -300,17 +303,57 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = remap[pairs]
-    means, n_frames = _strided_state_means(source, atoms, _PairDistances(local, max_numbers),
-                                           len(local), stride, label="prefilter",
-                                           executor=executor)
+    means, variances, n_frames = _strided_state_means(
+        source, atoms, _PairDistances(local, max_numbers), len(local), stride,
+        label="prefilter", executor=executor)
     keep = (means < cutoff).any(axis=0)
+    n_below = int(keep.sum())
+    rescued = _separating_beyond_cutoff(means, variances, keep)
+    keep[rescued] = True
     note = (
-        f"distances: kept {int(keep.sum())} of {pairs.shape[0]} pairs with a mean below "
+        f"distances: kept {n_below} of {pairs.shape[0]} pairs with a mean below "
         f"{cutoff:g} nm in at least one state, dropped {int((~keep).sum())} "
         f"(means over every {_ordinal(stride)} frame of each state in each file, "
         f"{n_frames} frames)"
-    )
+    ) + _rescue_note(rescued, means, variances, cutoff, source.states,
+                     lambda k: "atoms {} and {} ({}, {})".format(
+                         *pairs[k], *(source.topology.atom(int(a)) for a in pairs[k])))
     return pairs[keep], note
+
+
+#: Most pairs kept beyond the cutoff because they separate the states better than every pair
+#: below it (:func:`_separating_beyond_cutoff`): enough for the best separators, bounded
+#: for a pool whose every pair is far apart.
+MAX_RESCUED_PAIRS = 100
+
+
+def _separating_beyond_cutoff(means, variances, keep):
+    """Pairs not in `keep` (mean at or above the cutoff in every state) whose Fisher ratio
+    over the prefilter's frames (states weighted equally) is above that of every kept pair,
+    the best first, at most :data:`MAX_RESCUED_PAIRS`: a distance that separates the states
+    must not be dropped for being long (a ligand 1.3 nm from its pocket in one state and
+    2.4 nm in the other). None with a single state (nothing to separate)."""
+    if means.shape[0] < 2:
+        return np.zeros(0, dtype=np.intp)
+    f = fisher_ratio(means, variances)
+    f = np.where(np.isfinite(f), f, 0.0)
+    best_kept = float(f[keep].max()) if keep.any() else 0.0
+    cand = np.flatnonzero(~keep & (f > best_kept))
+    order = cand[np.lexsort((cand, -f[cand]))]  # best first, ties by index
+    return np.sort(order[:MAX_RESCUED_PAIRS])
+
+
+def _rescue_note(rescued, means, variances, cutoff, states, name):
+    """The prefilter note's addition for pairs kept beyond the cutoff ('' for none)."""
+    if rescued.size == 0:
+        return ""
+    f = fisher_ratio(means[:, rescued], variances[:, rescued])
+    k = int(rescued[int(np.argmax(np.where(np.isfinite(f), f, 0.0)))])
+    where = ", ".join(f"{means[s, k]:.3g} nm in {st!r}" for s, st in enumerate(states))
+    return (f"; kept besides {rescued.size} pair(s) with a mean at or above {cutoff:g} nm in "
+            f"every state that separate the states better than any pair below it (Fisher "
+            f"ratio over the same frames; at most {MAX_RESCUED_PAIRS}), e.g. {name(k)}: "
+            f"{where}")
 
 
 def _ordinal(n):
@@ -432,38 +475,51 @@ def _frames_read(source, step):
     return total
 
 
+def _accumulate(blocks, weights, sums, squares):
+    """Add the column sums and sums of squares (weighted by `weights`, one per frame, when
+    given) of ``(first column, values)`` blocks into `sums` and `squares` (float64), block by
+    block: memory of one block, not of every value at once."""
+    for lo, vals in blocks:
+        v = vals.astype(np.float64)
+        hi = lo + v.shape[1]
+        if weights is None:
+            sums[lo:hi] += v.sum(axis=0)
+            squares[lo:hi] += np.einsum("ij,ij->j", v, v)
+        else:
+            sums[lo:hi] += weights @ v
+            squares[lo:hi] += weights @ (v * v)
+
+
 class _PairDistances:
-    """``values(sub, periodic)``: distances of atom pairs (local indices), in blocks of
+    """``blocks(sub, periodic)``: distances of atom pairs (local indices), in blocks of
     pairs within `max_numbers` numbers. Module level, so that worker processes load it."""
 
     def __init__(self, local, max_numbers):
         self.local, self.max_numbers = local, max_numbers
 
-    def __call__(self, sub, periodic):
+    def blocks(self, sub, periodic):
         block_pairs = max(1000, self.max_numbers // max(1, sub.n_frames))
-        return np.concatenate([
-            md.compute_distances(sub, self.local[lo:lo + block_pairs], periodic=periodic)
-            for lo in range(0, len(self.local), block_pairs)], axis=1)
+        for lo in range(0, len(self.local), block_pairs):
+            yield lo, md.compute_distances(sub, self.local[lo:lo + block_pairs],
+                                           periodic=periodic)
 
 
 class _CenterDistances:
-    """``values(sub, periodic)``: distances of the centers of pairs of atom groups."""
+    """``blocks(sub, periodic)``: distances of the centers of pairs of atom groups."""
 
     def __init__(self, local, pairs, masses, max_numbers):
         self.local, self.pairs, self.masses = local, pairs, masses
         self.max_numbers = max_numbers
 
-    def __call__(self, sub, periodic):
+    def blocks(self, sub, periodic):
         pairs = self.pairs
         box = sub.unitcell_vectors.astype(np.float64) if periodic else None
         centers = group_centers(sub.xyz.astype(np.float64), self.local, box, masses=self.masses)
         block = max(1000, self.max_numbers // max(1, sub.n_frames))
-        out = np.empty((sub.n_frames, len(pairs)))
         for lo in range(0, len(pairs), block):
             a, b = pairs[lo:lo + block, 0], pairs[lo:lo + block, 1]
             delta = minimum_image(centers[:, b, :] - centers[:, a, :], box)
-            out[:, lo:lo + block] = np.sqrt(np.einsum("fpk,fpk->fp", delta, delta))
-        return out
+            yield lo, np.sqrt(np.einsum("fpk,fpk->fp", delta, delta))
 
 
 class _MeansContext:
@@ -493,6 +549,7 @@ def _segment_sums(ctx, task, tick=None):
     source.segments = [ctx.source.segments[task.segment]]
     n_states = len(source.states)
     sums = np.zeros((n_states, ctx.n_values))
+    squares = np.zeros((n_states, ctx.n_values))
     counts = np.zeros(n_states)
     used = np.zeros(n_states, dtype=np.int64)
     weights = ctx.weights.get(task.segment)
@@ -504,13 +561,9 @@ def _segment_sums(ctx, task, tick=None):
             sub.unitcell_lengths = traj.unitcell_lengths[rows]
             sub.unitcell_angles = traj.unitcell_angles[rows]
         used[s] += sub.n_frames
-        if weights is None:
-            counts[s] += sub.n_frames
-            sums[s] += ctx.values(sub, periodic).sum(axis=0, dtype=np.float64)
-        else:
-            w = weights[frames[rows]]
-            counts[s] += w.sum()
-            sums[s] += w @ ctx.values(sub, periodic).astype(np.float64)
+        w = None if weights is None else weights[frames[rows]]
+        counts[s] += sub.n_frames if w is None else w.sum()
+        _accumulate(ctx.values.blocks(sub, periodic), w, sums[s], squares[s])
 
     read = 0
     if ctx.strided:
@@ -538,12 +591,13 @@ def _segment_sums(ctx, task, tick=None):
             read += chunk.frames.size
             if tick is not None:
                 tick(chunk.frames.size)
-    return sums, counts, used, read
+    return sums, squares, counts, used, read
 
 
 def _strided_state_means(source, atoms, values, n_values, stride, label="prefilter",
                          executor=None):
-    """Per-state means of ``values(sub_trajectory, periodic) -> (n_frames, n_values)`` over
+    """Per-state means and variances of ``values.blocks(sub_trajectory, periodic)`` (blocks
+    ``(first column, (n_frames, n_columns) values)`` of `n_values` columns) over
     every `stride`-th frame of each state in each file, reading only `atoms`.
 
     The stride counts each state's own frames within each file, so frame ranges
@@ -552,8 +606,9 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
     One task per segment (on `executor`, an object with ``run(fn, context, items)``
     as in :mod:`cvdesign.parallel`; None: in this process); the segments' sums are
     added in segment order, so the means are the same bytes on every executor.
-    Returns (means of shape (n_states, n_values), number of frames used). The
-    frames read advance a progress bar labelled `label` (:mod:`cvdesign.progress`).
+    Returns (means and variances, each of shape (n_states, n_values), and the number of
+    frames used). The frames read advance a progress bar labelled `label`
+    (:mod:`cvdesign.progress`).
     """
     reweighting = source.reweighting()
     strided = stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
@@ -562,6 +617,7 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
                         {} if reweighting is None else dict(reweighting.weights))
     tasks = [_SegmentTask(i, i, str(seg.path)) for i, seg in enumerate(source.segments)]
     sums = np.zeros((source.n_states, n_values))
+    squares = np.zeros((source.n_states, n_values))
     counts = np.zeros(source.n_states)
     frames_used = np.zeros(source.n_states, dtype=np.int64)
     with progress.bar(label, lambda: _frames_read(source, stride if strided else 1)) as shown:
@@ -577,11 +633,12 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
         pending, nxt = {}, 0
         for number, result in results():
             if not ticked:
-                shown.update(result[3])
+                shown.update(result[4])
             pending[number] = result
             while nxt in pending:  # added in segment order, whatever order they arrive in
-                seg_sums, seg_counts, seg_used, _ = pending.pop(nxt)
+                seg_sums, seg_squares, seg_counts, seg_used, _ = pending.pop(nxt)
                 sums += seg_sums
+                squares += seg_squares
                 counts += seg_counts
                 frames_used += seg_used
                 nxt += 1
@@ -591,7 +648,9 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
             f"state(s) {', '.join(map(repr, empty))} have no frames; "
             "check the files and frame ranges given for them"
         )
-    return sums / counts[:, None], int(frames_used.sum())
+    means = sums / counts[:, None]
+    variances = np.maximum(squares / counts[:, None] - means * means, 0.0)
+    return means, variances, int(frames_used.sum())
 
 
 def residue_groups(topology, atoms):
@@ -631,7 +690,9 @@ def residue_groups(topology, atoms):
 
 def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
                           max_numbers=5_000_000, executor=None):
-    """Pairs of groups whose mean center distance is below `cutoff` in some state.
+    """Pairs of groups whose mean center distance is below `cutoff` in some state, and those
+    farther apart that separate the states better than every such pair (as in
+    :func:`prefilter_pairs`).
 
     Parameters
     ----------
@@ -666,13 +727,19 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = [remap[np.asarray(g, dtype=np.intp)] for g in groups]
-    means, n_frames = _strided_state_means(
+    means, variances, n_frames = _strided_state_means(
         source, atoms, _CenterDistances(local, pairs, masses, max_numbers), len(pairs), stride,
         label="prefilter (residues)", executor=executor)
     keep = (means < cutoff).any(axis=0)
-    note = (f"group pairs: kept {int(keep.sum())} of {len(pairs)} with a mean center "
+    n_below = int(keep.sum())
+    rescued = _separating_beyond_cutoff(means, variances, keep)
+    keep[rescued] = True
+    note = (f"group pairs: kept {n_below} of {len(pairs)} with a mean center "
             f"distance below {cutoff:g} nm in at least one state (every {_ordinal(stride)} frame, "
-            f"{n_frames} frames)")
+            f"{n_frames} frames)") + _rescue_note(
+                rescued, means, variances, cutoff, source.states,
+                lambda k: "the groups of {} and {}".format(
+                    *(source.topology.atom(int(groups[g][0])).residue for g in pairs[k])))
     return pairs[keep], note
 
 
