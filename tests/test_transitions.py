@@ -186,6 +186,14 @@ def test_suggest_ranks_on_transition_slowness_and_says_so(toy):
     assert "slowness_ranked_on" in result.ranking_csv().splitlines()[0]
     # the refits behind the held-out score's interval resample the crossing runs too
     assert sum("also resample the crossing runs' sub-blocks" in n for n in result.notes) == 1
+    # pairs within one state cover at most a visit of a labelled run: their timescales are
+    # resolved only below the longest visit (a review found them marked resolved against
+    # the whole file), those along the crossing runs below the longest run
+    assert 0 < top["longest_visit_ps"] < top["longest_run_ps"]
+    for key, bound in (("timescale", "longest_visit_ps"),
+                       ("timescale_within_states", "longest_visit_ps"),
+                       ("timescale_transitions", "longest_run_ps")):
+        assert top[f"{key}_resolved"] == (top[f"{key}_ps"] < top[bound]), key
 
 
 def test_refit_intervals_carry_the_noise_of_the_crossing_runs(toy, monkeypatch):

@@ -233,9 +233,12 @@ class Suggestions:
                          f"{r['heldout_fisher_ratio']:>10.3g}  "
                          f"{'' if ov is None else format(ov, '.3f'):>7}  "
                          f"{'' if rho is None else format(rho, '.3f'):>8}  {names}")
-        if any(_ranked_on_transitions(r) for r in self.ranking[:n]):
+        if any(shown_slowness(r) == "_transitions" for r in self.ranking[:n]):
             lines.append("autocorr: held-out, along the runs that cross between the states "
-                         "(transition slowness, which objective both ranked on)")
+                         "(transition slowness"
+                         + (", which objective both ranked on" if any(
+                             _ranked_on_transitions(r) for r in self.ranking[:n]) else "")
+                         + ")")
         return "\n".join(lines)
 
     def __repr__(self):
@@ -307,12 +310,16 @@ class Suggestions:
                 + ("the lag, along the runs that cross between the states (biased runs fed "
                    "back with per-frame labels): each run's lagged pairs, spanning the "
                    "crossings and the frames between the states, about that run's own mean, "
-                   "on held-out blocks of each run, which objective `both` ranks on "
-                   "(`slowness_ranked_on` = `transitions`; the columns "
-                   "`heldout_autocorrelation_transitions`, `autocorrelation_transitions` and "
-                   "`timescale_transitions_ps` of ranking.csv), and the timescale is "
-                   "-lag/ln(autocorrelation) along those runs on all their data; "
-                   if self._ranked_on() == "transitions" else
+                   "on held-out blocks of each run"
+                   + (", which objective `both` ranks on (`slowness_ranked_on` = "
+                      "`transitions`" if self._ranked_on() == "transitions" else
+                      " (pairs within one state keep the offsets between the states on such "
+                      "runs, and make every separating CV look slow")
+                   + "; the columns `heldout_autocorrelation_transitions`, "
+                   "`autocorrelation_transitions` and `timescale_transitions_ps` of "
+                   "ranking.csv), and the timescale is -lag/ln(autocorrelation) along those "
+                   "runs on all their data; "
+                   if self.ranking and shown_slowness(self.ranking[0]) == "_transitions" else
                    "the lag, within the states: each state's runs about that state's own mean, "
                    "how slowly the CV moves inside the basins, which objective `both` ranks "
                    "on; about one common mean every separating CV would look slow, since the "
@@ -324,7 +331,8 @@ class Suggestions:
                    "leaves its state counts as slow; ranking.csv also holds the measure "
                    "within the states, `heldout_autocorrelation_within_states`), and the "
                    "timescale is -lag/ln(autocorrelation) on all data; ")
-                + "a timescale longer than the longest run is only a lower bound. "
+                + "a timescale longer than the longest run (for pairs within one state: "
+                "the longest run or visit of one state) is only a lower bound. "
                 "Intervals are 95 % block-bootstrap intervals; selection is the fraction of "
                 "bootstrap refits of the whole search in which the descriptor is kept in the "
                 "refit's counterpart of this CV (its ranked combination sharing the most "
@@ -552,6 +560,25 @@ def _ranked_on_transitions(r):
     return r.get("slowness_ranked_on") == "transitions"
 
 
+def shown_slowness(r):
+    """Which slowness of a ranking entry the tables and the report show, as a key suffix:
+    ``'_transitions'`` (along the runs that cross between the states) when there are such
+    runs (pairs within one state keep the offsets between the states there, so a
+    separating CV looks slow), else ``'_within_states'`` for objective ``both`` (what it
+    ranks on), else ``''`` (all runs about one mean).
+
+    Examples
+    --------
+    >>> shown_slowness({"objective": "separate", "timescale_transitions_ps": 5.0})
+    '_transitions'
+    >>> shown_slowness({"objective": "both"}), shown_slowness({"objective": "separate"})
+    ('_within_states', '')
+    """
+    if _ranked_on_transitions(r) or r.get("timescale_transitions_ps") is not None:
+        return "_transitions"
+    return "_within_states" if r.get("objective") == "both" else ""
+
+
 def _heldout_scores(r):
     """The held-out scores of a ranking entry as short texts."""
     out = []
@@ -563,20 +590,15 @@ def _heldout_scores(r):
         out.append(f"overlap {r['heldout_overlap']:.3f}")
     rho = _shown_autocorrelation(r)
     if rho is not None:
-        within = ((" (transitions)" if _ranked_on_transitions(r) else " (within states)")
-                  if r.get("objective") == "both" else "")
+        within = {"_transitions": " (transitions)",
+                  "_within_states": " (within states)"}.get(shown_slowness(r), "")
         out.append(f"autocorr.{within} {rho:.3f}")
     return out
 
 
 def _shown_autocorrelation(r):
-    """The held-out autocorrelation the tables show: for objective ``both`` what it ranks
-    on (along the crossing runs, or within the states), about the common mean otherwise."""
-    if _ranked_on_transitions(r):
-        return r.get("heldout_autocorrelation_transitions")
-    if r.get("objective") == "both":
-        return r.get("heldout_autocorrelation_within_states")
-    return r.get("heldout_autocorrelation")
+    """The held-out autocorrelation the tables show (:func:`shown_slowness`)."""
+    return r.get(f"heldout_autocorrelation{shown_slowness(r)}")
 
 
 def _top_cells(r):
@@ -625,15 +647,31 @@ def _term_name(t):
 
 
 def _timescale_text(r):
-    key = ("timescale_transitions" if _ranked_on_transitions(r) else
-           "timescale_within_states" if r.get("objective") == "both" else "timescale")
+    key = f"timescale{shown_slowness(r)}"
     ts = r.get(f"{key}_ps")
     if ts is None:
         return ""
     resolved = r.get(f"{key}_resolved")
-    if resolved is False and r.get("longest_run_ps"):
-        return f"> {r['longest_run_ps']:.3g} (not resolved by these runs)"
+    bound = resolving_span_ps(r, key)
+    if resolved is False and bound:
+        return f"> {bound:.3g} (not resolved by these runs)"
     return format(ts, ".3g")
+
+
+def resolving_span_ps(entry, key):
+    """The span (ps) below which the timescale `key` of a ranking entry is resolved: the
+    longest run for those along the crossing runs, else the longest run or visit of one
+    state (``longest_visit_ps``; entries written before it have ``longest_run_ps`` only).
+
+    Examples
+    --------
+    >>> e = {"longest_run_ps": 100.0, "longest_visit_ps": 30.0}
+    >>> resolving_span_ps(e, "timescale"), resolving_span_ps(e, "timescale_transitions")
+    (30.0, 100.0)
+    """
+    if key == "timescale_transitions" or entry.get("longest_visit_ps") is None:
+        return entry.get("longest_run_ps")
+    return entry["longest_visit_ps"]
 
 
 def _term_text(t):

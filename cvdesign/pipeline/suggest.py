@@ -64,7 +64,7 @@ from .specs import InputChecksums, SourceRecord, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
 from .timing import (EvenSpacingPass, bias_times, block_frames, checked_segments, iat_lags,
                      integrated_time, lag_frames, local_autocorrelation, longest_run_text,
-                     read_timesteps)
+                     longest_visit_ps, read_timesteps)
 
 __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file"]
 
@@ -463,6 +463,8 @@ def _suggest(source, config, executor, progress, checksums):
         notes.append("warning: the rescaled length of a biased run overflows (its bias "
                      "energies reach thousands of kT: check their unit, kJ/mol, and "
                      "--temperature), so no timescale is compared with the run length")
+    # pairs within one state cover at most its longest run or visit of a labelled file
+    longest_visit = longest_visit_ps(source, reweighting, seg_counts, steps)
     params = config.parameters(lag_ps, folds)
     checksums = checksums.result(inputs)
     ranking, specs, record = [], [], None
@@ -474,7 +476,7 @@ def _suggest(source, config, executor, progress, checksums):
             entry.update(transition_columns(fit, fm, lag_ps))
             if transit_ci is not None:
                 entry.update(transit_ci[rank - 1])
-        _add_times(entry, longest_run_ps, cv_times[rank - 1], frame_ps)
+        _add_times(entry, longest_run_ps, longest_visit, cv_times[rank - 1], frame_ps)
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
         if refused:
@@ -1065,18 +1067,27 @@ def _bootstrap_notes(boot, held, config, fm=None):
     return out
 
 
-def _add_times(entry, longest_run_ps, cv_time, frame_spacing_ps):
+def _add_times(entry, longest_run_ps, longest_visit_ps, cv_time, frame_spacing_ps):
     """Whether the timescale is resolved by the runs, and the CV's own integrated time
     within the runs (``cv_time``: from :func:`cv_integrated_times`, None when the frame
     spacing is unknown or differs between files), with the frame spacing it was
-    measured at."""
+    measured at.
+
+    The timescales of pairs within one state (``timescale``, ``timescale_within_states``)
+    are resolved below the longest run or visit of one state (`longest_visit_ps`: a
+    labelled file's crossings are not among their pairs, so its own length does not
+    resolve them; with runs crossing between the states these pairs keep the offsets
+    between the states and make a separating CV look slow); those along the crossing
+    runs (``timescale_transitions``) below the longest run."""
     for key in ("timescale", "timescale_within_states", "timescale_transitions"):
         if key == "timescale_transitions" and "timescale_transitions_ps" not in entry:
             continue  # no crossing runs
+        bound = longest_run_ps if key == "timescale_transitions" else longest_visit_ps
         ts = entry.get(f"{key}_ps")
         entry[f"{key}_resolved"] = None if ts is None else bool(
-            longest_run_ps is not None and ts < longest_run_ps)
+            bound is not None and ts < bound)
     entry["longest_run_ps"] = longest_run_ps
+    entry["longest_visit_ps"] = longest_visit_ps
     entry["integrated_time_ps"] = None if cv_time is None else cv_time[0]
     entry["integrated_time_ci_ps"] = None if cv_time is None else cv_time[2]
     entry["integrated_time_decayed"] = None if cv_time is None else cv_time[1]

@@ -16,6 +16,7 @@ from ..io.source import stores_time
 from ..passes import Pass
 
 __all__ = ["read_timesteps", "lag_frames", "iat_lags", "integrated_time", "local_autocorrelation",
+           "longest_visit_ps",
            "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments",
            "bias_times"]
 
@@ -165,6 +166,43 @@ def _state_runs(segment, si, s, name, seg_counts):
     inside = np.concatenate([[False], segment.labels == name, [False]]).astype(np.int8)
     edges = np.flatnonzero(np.diff(inside))
     return list(zip(edges[0::2].tolist(), edges[1::2].tolist()))
+
+
+def longest_visit_ps(source, reweighting, seg_counts, steps):
+    """The longest span (ps) that lagged pairs within one state can cover: the longest
+    run given for a state, or visit of a labelled file (pairs never span a state
+    change), from its first frame to its last, in rescaled time for a biased run; None
+    when no frame spacing is known or a rescaled span overflows.
+
+    A timescale measured on such pairs (each run or visit about one mean or its own) is
+    resolved only below it: a labelled file's own length is not (its crossings are not
+    among those pairs).
+
+    Examples
+    --------
+    >>> import mdtraj as md, tempfile, os
+    >>> from cvdesign import Source
+    >>> top = md.Topology(); r = top.add_residue("TOY", top.add_chain())
+    >>> _ = top.add_atom("C1", md.element.carbon, r)
+    >>> path = os.path.join(tempfile.mkdtemp(), "a.xtc")
+    >>> md.Trajectory(np.zeros((20, 1, 3), np.float32), top,
+    ...               time=np.arange(20) * 0.5).save_xtc(path)
+    >>> src = Source(top).add_labelled(path, ["a"] * 5 + ["b"] * 15)
+    >>> longest_visit_ps(src, None, np.array([[5, 15]]), {0: 0.5})  # 15 frames of 'b'
+    7.0
+    """
+    best = None
+    for si, seg in enumerate(source.segments):
+        dt = steps.get(si)
+        if dt is None:
+            continue
+        rescaled = reweighting is not None and si in reweighting.clocks
+        for s, name in enumerate(source.states):
+            for lo, hi in _state_runs(seg, si, s, name, seg_counts):
+                span = (float(reweighting.clocks[si][hi - 1] - reweighting.clocks[si][lo])
+                        if rescaled else float(hi - 1 - lo)) * dt
+                best = span if best is None else max(best, span)
+    return best if best is not None and math.isfinite(best) else None
 
 
 def longest_run_text(source, reweighting, seg_counts, steps, states):

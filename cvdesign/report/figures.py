@@ -758,7 +758,7 @@ def redundancy_groups(groups):
 
 
 # ------------------------------------------------------------------------- slow modes
-def implied_timescales(curves, *, tica=None, within=None):
+def implied_timescales(curves, *, tica=None, within=None, crossing=False):
     """Implied timescales against the lag where they were computed.
 
     Parameters
@@ -775,6 +775,9 @@ def implied_timescales(curves, *, tica=None, within=None):
         own mean), drawn in a second panel: the relaxation inside the basins,
         which the pooled timescales of runs that stay in their states do not
         show. A CV keeps its style and place in both panels.
+    crossing : bool, default=False
+        Whether the runs cross between the states (the caption then says what these
+        curves, of pairs within one state, do not show).
 
     Returns
     -------
@@ -836,6 +839,12 @@ def implied_timescales(curves, *, tica=None, within=None):
                    "resolved either: runs that stay in their states keep a CV that separates them "
                    "correlated at every lag, so the crossing between the states is only known to "
                    "be slower than the runs.")
+        if crossing:
+            caption += (" Here runs cross between the states: these pairs stay within one "
+                        "state (a visit of a labelled run), so the offsets between the states "
+                        "make a separating CV's curve rise past any timescale of the "
+                        "dynamics; its timescale along the crossing runs is the ranking's "
+                        "transition timescale (timescale_transitions_ps).")
         if drawn_within:
             caption += (" Right: the same with each run (a file's frames of one state) about "
                         "its own mean, the relaxation of the CV inside the basins, free of "

@@ -25,7 +25,7 @@ from pathlib import Path
 from .._version import __version__
 from ..errors import CVDesignError, InputError
 from ..io.atomic import atomic_paths
-from ..pipeline.output import CAUTION
+from ..pipeline.output import CAUTION, resolving_span_ps, shown_slowness
 from . import figures as fg
 from .inputs import read_output, report_data_name, report_path
 
@@ -326,9 +326,11 @@ def _suggest(page, output, parsed):
              "the overlapping coefficient of the states' held-out histograms (0 = disjoint); "
              "the autocorrelation is at the lag (1 = does not relax within it"
              + ("; along the runs that cross between the states, each run about its own "
-                "mean, the pairs spanning the crossings, which objective both ranks on here"
-                if any(r.get("slowness_ranked_on") == "transitions"
-                       for r in ranking["ranking"]) else
+                "mean, the pairs spanning the crossings"
+                + (", which objective both ranks on here" if any(
+                    r.get("slowness_ranked_on") == "transitions" for r in ranking["ranking"])
+                   else "")
+                if any(shown_slowness(r) == "_transitions" for r in ranking["ranking"]) else
                 "; within the states, each state's runs about its own mean, which objective "
                 "both ranks on" if ranking.get("objective") == "both" else
                 "; all runs about one common mean, so a run that stays in its state counts "
@@ -345,14 +347,11 @@ def _suggest(page, output, parsed):
             + _e(_ci(t.get("weight_ci"), "+.3f"))
             + ("" if t.get("selection_frequency") is None
                else f", {t['selection_frequency']:.0%}") + "</span>" for t in r["terms"]))
-        # objective 'both' ranks on the slowness along the crossing runs when they were
-        # given, else within the states: show the one it ranked on
-        within = ("_transitions" if r.get("slowness_ranked_on") == "transitions" else
-                  "_within_states" if r.get("objective") == "both" else "")
+        within = shown_slowness(r)
         ts = r.get(f"timescale{within}_ps")
-        if (ts is not None and r.get(f"timescale{within}_resolved") is False
-                and r.get("longest_run_ps")):
-            ts_text = f"> {r['longest_run_ps']:.3g} (not resolved)"
+        bound = resolving_span_ps(r, f"timescale{within}")
+        if ts is not None and r.get(f"timescale{within}_resolved") is False and bound:
+            ts_text = f"> {bound:.3g} (not resolved)"
         else:
             ts_text = _with_ci(ts, r.get(f"timescale{within}_ci_ps"))
         rows.append([r["rank"], r["spec"], terms,
@@ -463,7 +462,8 @@ def _suggest(page, output, parsed):
         page.figure(fg.implied_timescales(
             curves, tica=None if tica is None else {"lag_ps": tica["lag_ps"],
                                                    "timescales_ps": tica["timescales_ps"]},
-            within=within))
+            within=within, crossing=any(shown_slowness(r) == "_transitions"
+                                        for r in ranking["ranking"])))
     else:
         page.not_available("implied timescales against the lag",
                            f"{data_name} is missing" if data is None else
