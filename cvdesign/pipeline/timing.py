@@ -180,16 +180,13 @@ def longest_visit_ps(source, reweighting, seg_counts, steps):
 
     Examples
     --------
-    >>> import mdtraj as md, tempfile, os
     >>> from cvdesign import Source
-    >>> top = md.Topology(); r = top.add_residue("TOY", top.add_chain())
-    >>> _ = top.add_atom("C1", md.element.carbon, r)
-    >>> path = os.path.join(tempfile.mkdtemp(), "a.xtc")
-    >>> md.Trajectory(np.zeros((20, 1, 3), np.float32), top,
-    ...               time=np.arange(20) * 0.5).save_xtc(path)
-    >>> src = Source(top).add_labelled(path, ["a"] * 5 + ["b"] * 15)
-    >>> longest_visit_ps(src, None, np.array([[5, 15]]), {0: 0.5})  # 15 frames of 'b'
-    7.0
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> top, files = demo_inputs()  # three runs of 2000 frames per state, 0.2 ps apart
+    >>> counts = np.array([[2000, 0]] * 3 + [[0, 2000]] * 3)
+    >>> round(longest_visit_ps(Source.from_states(top, files), None, counts,
+    ...                        dict.fromkeys(range(6), 0.2)), 6)
+    399.8
     """
     best = None
     for si, seg in enumerate(source.segments):
