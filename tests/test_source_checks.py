@@ -92,13 +92,21 @@ def test_apply_leaves_time_empty_for_stored_times_that_do_not_increase(untimed, 
     assert "c.xtc stores times that do not increase" in err and "timed.xtc" not in err
 
 
-def test_increasing_stored_times_are_kept_when_a_frame_spacing_is_given(demo_two, tmp_path):
+def test_increasing_stored_times_are_kept_and_a_disagreeing_frame_spacing_is_refused(
+        demo_two, tmp_path):
+    # the given 0.2 ps was silently ignored for a file storing times 0.5 ps apart
     top, closed, _ = demo_two
     a = _copy(closed, tmp_path / "c.xtc", top, time=0.5 * np.arange(300))
+    src = Source(top)
+    src.add(a, "runs")
+    assert src.timestep(0) == 0.5 and src.notes == []
     src = Source(top, timestep=0.2)
     src.add(a, "runs")
-    assert src.timestep(0) == pytest.approx(0.5) and src.notes == []
     assert not src.stored_times_ignored(0)
+    with pytest.raises(InputError, match=r"c.xtc' stores frames 0.5 ps apart .* but the given "
+                                         r"time between frames .* is 0.2 ps; .* give its own "
+                                         r"spacing, or leave --frame-step-ps out"):
+        src.timestep(0)
 
 
 # ---------------------------------------------------------------------------- NaN / inf
@@ -179,3 +187,62 @@ def test_cli_suggest_and_check_refuse_non_finite_coordinates(demo_two, tmp_path,
     err = capsys.readouterr().err
     assert "bad.dcd' frame 17 has a NaN or infinite coordinate for atom 4 (LCH1-C5)" in err
     assert "Traceback" not in err and sorted(p.name for p in tmp_path.iterdir()) == before
+
+
+# ---------------------------------------------------------------------------- times far from 0
+# A float32 time near 10^6 ps is a multiple of 0.0625 ps: frames 0.2 ps apart were stored
+# 0.1875 or 0.25 ps apart, and the step was taken from the first two (0.1875 ps).
+@pytest.mark.parametrize("start,step", [(1e6, 0.2), (1e4, 0.2), (5e5, 0.025), (0.0, 0.2)])
+def test_frame_spacing_of_times_far_from_zero_is_the_round_step_over_the_file(
+        demo_two, tmp_path, start, step):
+    from cvdesign.pipeline.timing import lag_frames, read_timesteps
+    top, closed, _ = demo_two
+    a = _copy(closed, tmp_path / "c.xtc", top, time=start + step * np.arange(300))
+    stored = md.load(a, top=top).time
+    # the first two stored frames are not `step` apart (at 0 ps: to rounding only)
+    assert (stored[1] - stored[0] != np.float32(step)) == (start > 0)
+    src = Source(top)
+    src.add(a, "runs")
+    assert src.timestep(0) == step
+    assert lag_frames(src, 10 * step, read_timesteps(src)) == {0: 10}
+    with pytest.raises(InputError, match=rf"lag={7.5 * step:g} ps is not a whole number of "
+                                         rf"frames .* \(time step {step:g} ps(, the mean spacing of its "
+                                         r"stored times|\))"):
+        lag_frames(src, 7.5 * step, read_timesteps(src))
+
+
+def test_given_frame_spacing_agreeing_with_coarse_stored_times_is_used_else_refused(
+        demo_two, tmp_path):
+    top, closed, _ = demo_two
+    a = _copy(closed, tmp_path / "c.xtc", top, n_frames=3, time=1e6 + 0.2 * np.arange(3))
+    src = Source(top)
+    src.add(a, "runs")
+    # three frames at 10^6 ps: the spacing is known to 0.03 ps only
+    with pytest.raises(InputError, match=r"c.xtc' stores frames 0.1875 ps apart \(to within "
+                                         r"0.031 ps: its times, up to 1e\+06 ps, are stored in "
+                                         r"single precision\): the time between its frames is "
+                                         r"not known to 1 % .*--frame-step-ps"):
+        src.timestep(0)
+    for given in (0.2, 0.21):
+        src = Source(top, timestep=given)
+        src.add(a, "runs")
+        assert src.timestep(0) == given and src.timestep_resolution(0) == 0.0
+    src = Source(top, timestep=0.25)
+    src.add(a, "runs")
+    with pytest.raises(InputError, match=r"stores frames 0.1875 ps apart .* but the given time "
+                                         r"between frames \(--frame-step-ps; timestep= in the "
+                                         r"Python API\) is 0.25 ps"):
+        src.timestep(0)
+
+
+def test_missing_frame_far_from_zero_is_found_by_the_even_spacing_check():
+    # the check allowed 4 |t| 2^-23 = 0.48 ps at 10^6 ps: a 0.4 ps gap in 0.2 ps frames passed
+    from cvdesign.pipeline.timing import _check_spacing
+    frames = np.arange(300.0)
+    time = 1e6 + 0.2 * frames
+    _check_spacing("c.xtc", 0.2, frames, time.astype(np.float32).astype(np.float64))
+    time[150:] += 0.2
+    with pytest.raises(InputError, match=r"'c.xtc' is not evenly spaced in time: frame 150 is "
+                                         r"at 1000030.19 ps, but the first time step \(0.2 ps\) "
+                                         r"puts it at 1000030.01 ps"):
+        _check_spacing("c.xtc", 0.2, frames, time.astype(np.float32).astype(np.float64))

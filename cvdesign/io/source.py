@@ -652,7 +652,9 @@ class Source:
         (DCD, PDB, ...), and for files whose stored times do not increase
         (all zero, as some writers store, or decreasing from the first frame):
         those times are then ignored, and :attr:`notes` says so. Files whose
-        stored times increase keep their own. Without it, a file whose stored
+        stored times increase keep their own: a `timestep` that agrees with them within
+        their single precision is used, one that does not is refused (see
+        :meth:`timestep`). Without it, a file whose stored
         times do not increase is refused by :meth:`timestep`.
     temperature : float, default=None
         Temperature of the biased runs in K, needed when a trajectory comes
@@ -1112,7 +1114,8 @@ class Source:
         return list(self._time_notes.values())
 
     def _stored_step(self, path):
-        """Times (ps) of the first two frames stored in a file, or None (unreadable, 1 frame)."""
+        """Stored times (ps) of a file: ``(t0, t1, k, tk)``, frames 0, 1 and k (its last
+        frame, k = 1 when that cannot be read cheaply), or None (unreadable, one frame)."""
         key = str(path)
         if key not in self._stored_steps:
             try:
@@ -1120,9 +1123,52 @@ class Source:
                     first = next(md.iterload(key, top=self.topology, chunk=2, atom_indices=[0]))
             except Exception:
                 first = None
-            self._stored_steps[key] = (None if first is None or first.n_frames < 2 else
-                                       (float(first.time[0]), float(first.time[1])))
+            if first is None or first.n_frames < 2:
+                self._stored_steps[key] = None
+            else:
+                t0, t1 = float(first.time[0]), float(first.time[1])
+                k, tk = 1, t1
+                try:  # the last frame, through the file's frame offsets (no frame between)
+                    n = file_frames(key)
+                    if n > 2:
+                        with quiet_stdout():
+                            last = md.load_frame(key, n - 1, top=self.topology, atom_indices=[0])
+                        k, tk = n - 1, float(last.time[0])
+                except Exception:
+                    pass
+                self._stored_steps[key] = (t0, t1, k, tk)
         return self._stored_steps[key]
+
+    def _stored_spacing(self, path):
+        """Frame spacing of a file's increasing stored times and its uncertainty, both ps.
+
+        Times are stored in single precision: each is within half a float32 spacing
+        (:func:`float32_resolution`) of the true time, so a difference of two is within one
+        spacing at the larger time. Far from zero that is a large part of a step (0.0625 ps
+        at 10^6 ps), so the spacing is taken over the whole file, from its first to its last
+        frame, when that agrees with the first two frames; otherwise (a file not evenly
+        spaced, refused later by :class:`cvdesign.pipeline.timing.EvenSpacingPass`) from
+        the first two.
+        """
+        t0, t1, k, tk = self._stored_step(path)
+        step, res = t1 - t0, float32_resolution(max(abs(t0), abs(t1)))
+        if k > 1:
+            whole = (tk - t0) / k
+            whole_res = float32_resolution(max(abs(t0), abs(tk))) / k
+            if abs(whole - step) <= res + whole_res:
+                step, res = whole, whole_res
+        return step, res
+
+    def timestep_resolution(self, segment_index):
+        """Uncertainty (ps) of :meth:`timestep` from the single precision of stored times;
+        0.0 for a given time step (a format without times, or stored times replaced or
+        confirmed by the given `timestep`)."""
+        seg = self.segments[segment_index]
+        if (not stores_time(seg.path) or self.default_timestep is not None
+                or self._stored_step(seg.path) is None
+                or not self.stored_times_increase(segment_index)):
+            return 0.0
+        return self._stored_spacing(seg.path)[1]
 
     def stored_times_increase(self, segment_index):
         """False when a segment's file stores times that do not increase (all zero, as some
@@ -1142,17 +1188,26 @@ class Source:
     def timestep(self, segment_index):
         """Time between the frames of a segment's file, in ps.
 
-        From the times of the file's first two frames. For a format that
-        stores no times (see :func:`stores_time`), and for a file whose stored
-        times do not increase (then noted in :attr:`notes`), the source's
-        `timestep`; None when a format that stores no times has no `timestep`
+        From the file's stored times: their mean spacing from the first to the last frame
+        (from the first two when those disagree), within the single precision of the stored
+        times (:func:`float32_resolution` at the largest, divided by the frames between),
+        rounded to the number with the fewest significant digits within that uncertainty
+        (:func:`shortest_decimal`; time steps are round numbers in practice, common
+        practice): 0.2 ps for times from 10^6 ps stored 0.1875 or 0.25 ps apart. A given
+        `timestep` that agrees with the stored spacing within that uncertainty is used
+        as it is. For a format that stores no times (see :func:`stores_time`), and for a
+        file whose stored times do not increase (then noted in :attr:`notes`), the
+        source's `timestep`; None when a format that stores no times has no `timestep`
         given, and for a single frame.
 
         Raises
         ------
         InputError
             When the file's stored times do not increase (all zero, as some
-            writers store, or decreasing) and no `timestep` was given.
+            writers store, or decreasing) and no `timestep` was given; when a given
+            `timestep` disagrees with increasing stored times; when the stored times are
+            too coarse (far from zero, few frames) to know the spacing to 1 % and no
+            `timestep` was given.
         """
         seg = self.segments[segment_index]
         if not stores_time(seg.path):
@@ -1160,9 +1215,28 @@ class Source:
         times = self._stored_step(seg.path)
         if times is None:
             return None
-        t0, t1 = times
+        t0, t1 = times[:2]
         if t1 > t0:
-            return t1 - t0
+            step, res = self._stored_spacing(seg.path)
+            near = max(abs(t0), abs(times[3]))
+            stored = (f"stores frames {step:.7g} ps apart (to within {res:.2g} ps: its times, "
+                      f"up to {near:g} ps, are stored in single precision)")
+            given = self.default_timestep
+            if given is not None:
+                if abs(given - step) <= res * (1 + 1e-6) + 1e-9 * step:
+                    return given
+                raise InputError(
+                    f"trajectory {str(seg.path)!r} {stored}, but the given time between frames "
+                    f"(--frame-step-ps; timestep= in the Python API) is {given:g} ps; a file "
+                    "whose stored times increase keeps them: give its own spacing, or leave "
+                    "--frame-step-ps out (it is for formats without times and for stored "
+                    "times that do not increase)")
+            if not res <= TIMESTEP_UNCERTAINTY * step:
+                raise InputError(
+                    f"trajectory {str(seg.path)!r} {stored}: the time between its frames is "
+                    "not known to 1 % (times far from zero in too few frames); give it in ps "
+                    "with --frame-step-ps (timestep= in the Python API)")
+            return shortest_decimal(step - res, step + res, step)
         what = (f"the same time ({t0:g} ps) for its first two frames" if t1 == t0 else
                 f"times that do not increase (frame 0 at {t0:g} ps, frame 1 at {t1:g} ps)")
         if self.default_timestep is None:
@@ -1176,6 +1250,42 @@ class Source:
             f"trajectory {seg.path.name} stores {what}; they are ignored and the given time "
             f"between frames, {self.default_timestep:g} ps, is used instead")
         return self.default_timestep
+
+
+#: Largest uncertainty of a frame spacing taken from stored times, relative to it: beyond
+#: it the spacing must be given (``--frame-step-ps``).
+TIMESTEP_UNCERTAINTY = 1e-2
+
+
+def float32_resolution(t):
+    """Spacing of single-precision numbers at `t` (ps for a time): a time stored in single
+    precision is within half of it of the true time.
+
+    Examples
+    --------
+    >>> float32_resolution(1e6), float32_resolution(1e4)
+    (0.0625, 0.0009765625)
+    """
+    return float(np.spacing(np.float32(abs(t))))
+
+
+def shortest_decimal(lo, hi, near):
+    """The number in ``[lo, hi]`` (``0 < lo <= hi``) with the fewest significant decimal
+    digits; of several, the one nearest `near`.
+
+    Examples
+    --------
+    >>> shortest_decimal(0.1998, 0.2004, 0.2001), shortest_decimal(0.12375, 0.12625, 0.125)
+    (0.2, 0.125)
+    """
+    top = math.floor(math.log10(hi))
+    for e in range(top, top - 17, -1):
+        k_lo = math.ceil(lo / 10.0**e - 1e-9)
+        k_hi = math.floor(hi / 10.0**e + 1e-9)
+        if k_lo <= k_hi:
+            k = min(max(round(near / 10.0**e), k_lo), k_hi)
+            return float(f"{k}e{e}")
+    return float(near)
 
 
 def every_atom(atom_indices, topology):

@@ -45,10 +45,15 @@ def lag_frames(source, lag, timesteps):
                 "give the time step with --frame-step-ps PS")
         ratio = lag / dt
         n = int(round(ratio))
-        if n < 1 or abs(ratio - n) > 1e-6 * max(1.0, ratio):
+        # a step from stored single-precision times is known to source.timestep_resolution
+        rel = max(1e-6, source.timestep_resolution(si) / dt)
+        if n < 1 or abs(ratio - n) > rel * max(1.0, ratio):
+            mean = (", the mean spacing of its stored times from its first frame to its last: "
+                    "a file not evenly spaced is to be split where the spacing changes"
+                    if source.timestep_resolution(si) > 1e-6 * dt else "")
             raise InputError(
                 f"lag={lag:g} ps is not a whole number of frames of {str(seg.path)!r} "
-                f"(time step {dt:g} ps); choose a multiple of {dt:g} ps")
+                f"(time step {dt:g} ps{mean}); choose a multiple of {dt:g} ps")
         out[si] = n
     return out
 
@@ -404,15 +409,18 @@ def _check_spacing(path, dt, f, t):
     if t.size < 2:
         return
     expected = np.diff(f) * dt
-    # times are single precision: allow their rounding, and 0.1 % of a step
-    tol = np.maximum(1e-3 * dt, 4 * np.abs(t[1:]) * 2.0**-23)
+    # times are single precision: each is within half a float32 spacing of the true time,
+    # so a difference within one spacing at the larger; and 0.1 % of a step
+    # (4 |t| 2^-23, allowed before, was 0.48 ps at 10^6 ps: a missing 0.2 ps frame passed)
+    big = np.maximum(np.abs(t[1:]), np.abs(t[:-1])).astype(np.float32)
+    tol = 1e-3 * dt + np.spacing(big).astype(np.float64)
     bad = np.flatnonzero(np.abs(np.diff(t) - expected) > tol)
     if bad.size:
         i = int(bad[0])
         raise InputError(
             f"trajectory {str(path)!r} is not evenly spaced in time: frame {int(f[i + 1])} is at "
-            f"{t[i + 1]:g} ps, but the first time step ({dt:g} ps) puts it at "
-            f"{t[i] + expected[i]:g} ps; lags in ps need evenly spaced frames, so split the "
+            f"{_ps(t[i + 1])} ps, but the first time step ({dt:g} ps) puts it at "
+            f"{_ps(t[i] + expected[i])} ps; lags in ps need evenly spaced frames, so split the "
             "file where the spacing changes")
 
 
@@ -421,6 +429,13 @@ def bias_times(source, checked):
     whose bias-energy file has a time column, for :class:`EvenSpacingPass`."""
     return {si: source.segments[si].bias_times for si in sorted(checked)
             if source.segments[si].bias_times is not None}
+
+
+def _ps(t):
+    """A time (ps) with the digits that tell apart frames far from zero (7 significant
+    digits, 2 more than the integer part's beyond 10^5)."""
+    digits = max(7, int(math.log10(abs(t))) + 3) if t else 7
+    return f"{t:.{digits}g}"
 
 
 def checked_segments(source, steps):
