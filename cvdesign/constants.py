@@ -12,7 +12,7 @@ Examples
 import math
 
 __all__ = ["BOLTZMANN_KJ_MOL_K", "UNITS", "TWO_PI", "COORDINATION_R0_NM",
-           "COORDINATION_EXPONENTS"]
+           "COORDINATION_EXPONENTS", "MIN_BOOTSTRAP_REPLICATES", "BOOTSTRAP_TOO_FEW"]
 
 #: Molar Boltzmann constant, kJ/mol/K: k_B N_A (CODATA 2018, exact in the SI of 2019).
 BOLTZMANN_KJ_MOL_K = 0.00831446261815324
@@ -31,3 +31,12 @@ COORDINATION_R0_NM = 0.45
 #: Exponents (n, m) of the rational switching function ``(1 - x**n) / (1 - x**m)``,
 #: ``x = r / r0``, of coordination numbers (common practice).
 COORDINATION_EXPONENTS = (6, 12)
+
+#: Fewest bootstrap replicates of ``suggest`` (0 turns the bootstrap off): the 2.5th and
+#: 97.5th percentiles of fewer are the extreme replicates or the estimate itself.
+MIN_BOOTSTRAP_REPLICATES = 20
+
+#: Why fewer replicates are refused (the messages of the command and of the Python API).
+BOOTSTRAP_TOO_FEW = (f"a 95 % percentile interval from fewer than {MIN_BOOTSTRAP_REPLICATES} "
+                     "replicates is meaningless (common practice is 200 or more); give 0 to "
+                     f"turn the bootstrap off, or at least {MIN_BOOTSTRAP_REPLICATES}")

@@ -291,6 +291,20 @@ CLI_CASES = [
          lambda c: ["suggest", "--topology", c.top, "--state", "a", "--state", "b", c.open,
                     "--out", c.w("out")], 2,
          r"--state a has no trajectory files"),
+    Case("suggest-state-without-a-name",  # made a state named after the first file
+         lambda c: ["suggest", "--topology", c.top, "--state", c.closed, c.copy(c.closed, "c2.xtc"),
+                    "--state", "b", c.open, "--out", c.w("out")], 2,
+         r"--state .*closed-1\.xtc .*c2\.xtc: the state name '.*closed-1\.xtc' is an existing "
+         r"file; --state takes a NAME and then that state's files"),
+    Case("suggest-state-named-like-a-trajectory",
+         lambda c: ["suggest", "--topology", c.top, "--state", "gone.xtc", c.closed,
+                    "--state", "b", c.open, "--out", c.w("out")], 2,
+         r"the state name 'gone\.xtc' is a trajectory file's name; --state takes a NAME"),
+    Case("suggest-state-named-dash",
+         lambda c: ["suggest", "--topology", c.top, "--state", "-", c.closed,
+                    "--state", "b", c.open, "--out", c.w("out")], 2,
+         r"--state -: '-' cannot name a state \(in a labels file it marks a frame in no "
+         r"state\)"),
     Case("suggest-selection-matches-nothing",
          lambda c: c.suggest("--select", "name CA"), 2,
          r"selection 'name CA' matches no atoms in a topology of 12 atoms"),
@@ -325,6 +339,19 @@ CLI_CASES = [
     Case("suggest-unknown-kind",
          lambda c: c.suggest("--kinds", "distance,torsionish"), 2,
          r"unknown kind\(s\) torsionish"),
+    Case("suggest-too-few-bootstrap-replicates",  # wrote "95 %" intervals from 1 replicate
+         lambda c: c.suggest("--bootstrap", "19"), 2,
+         r"argument --bootstrap: '19': a 95 % percentile interval from fewer than 20 "
+         r"replicates is meaningless \(common practice is 200 or more\)"),
+    Case("suggest-one-state-to-propose",
+         lambda c: ["suggest", "--topology", c.top, "--runs", c.closed, "--lag", "2",
+                    "--n-states", "1", "--out", c.w("out")], 2,
+         r"argument --n-states: '1' must be at least 2 \(one state leaves nothing to tell "
+         r"apart\)"),
+    Case("suggest-scheduler-not-an-address",  # waited 20 s, then a traceback of dask's
+         lambda c: c.suggest("--scheduler", "notanaddress"), 2,
+         r"argument --scheduler: scheduler address 'notanaddress' has no port; give "
+         r"tcp://HOST:PORT \(or HOST:PORT\)"),
     Case("suggest-one-fold",
          lambda c: c.suggest("--folds", "1"), 2,
          r"argument --folds: '1' must be at least 2"),
@@ -692,6 +719,12 @@ HAS_DASK = importlib.util.find_spec("distributed") is not None
 
 
 API_CASES = [
+    Case("api-suggest-too-few-bootstrap-replicates",  # wrote "95 %" intervals from 1 replicate
+         lambda c: lambda: cvdesign.suggest(Source.from_states(c.top, {"a": [c.closed],
+                                                                       "b": [c.open]}),
+                                            n_bootstrap=1), InputError,
+         r"n_bootstrap=1: a 95 % percentile interval from fewer than 20 replicates is "
+         r"meaningless \(common practice is 200 or more\); give 0 to turn the bootstrap off"),
     Case("api-suggest-with-a-file-name",
          lambda c: lambda: cvdesign.suggest("file.pdb"), InputError,
          r"suggest\(\) needs a Source \(a topology and trajectories grouped by state\), not "

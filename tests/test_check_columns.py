@@ -87,3 +87,35 @@ def test_apply_output_checks_back_against_the_reference(setup, tmp_path, capsys)
     assert main(["apply", spec, "--topology", top, traj, "--out", str(out)]) == 0
     assert _check(setup, out) == 0
     assert "PASS" in capsys.readouterr().out
+
+
+def test_apply_output_of_two_trajectories_uses_the_rows_of_the_one_checked(
+        setup, demo_files, tmp_path, capsys):
+    # the rows of both files were compared with one file's frames: a false FAIL
+    spec, top, traj, _, _ = setup
+    other = demo_files[1]["closed"][0]
+    out = tmp_path / "applied.csv"
+    assert main(["apply", spec, "--topology", top, other, traj, "--out", str(out)]) == 0
+    capsys.readouterr()
+    assert _check(setup, out) == 0
+    said = capsys.readouterr().out
+    assert "vs " + traj + ": 2000 frames" in said and "PASS" in said
+    before = sorted(tmp_path.iterdir())
+    third = demo_files[1]["closed"][1]
+    assert main(["check", spec, "--topology", top, "--against", str(out), third]) == 2
+    err = capsys.readouterr().err
+    assert (f"values file '{out}' has a 'file' column naming 'closed-1.xtc', 'open-1.xtc', "
+            f"not trajectory '{third}'; give the trajectory whose values it holds") in err
+    assert sorted(tmp_path.iterdir()) == before
+
+
+def test_a_frame_named_twice_is_refused_naming_the_lines(setup, tmp_path, capsys):
+    *_, values, _ = setup
+    path = tmp_path / "twice.csv"  # frame 4 twice, 5 missing: was a FAIL blaming the engine
+    path.write_text("frame,value\n" + "".join(f"{i},{float(values[i])!r}\n"
+                                              for i in (2, 3, 4, 4, 6)))
+    before = sorted(tmp_path.iterdir())
+    assert _check(setup, path) == 2
+    out, err = capsys.readouterr()
+    assert f"values file '{path}' names frame 4 twice (lines 4 and 5); give one value" in err
+    assert "FAIL" not in out and sorted(tmp_path.iterdir()) == before

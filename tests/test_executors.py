@@ -266,7 +266,7 @@ def test_workers_unpickle_every_task_of_suggest_from_the_preloaded_modules(demo_
     top, states = demo_files
     src = Source.from_states(top, {k: v[:1] for k, v in states.items()})
     ex = _PicklingExecutor()
-    suggest(src, n_bootstrap=5, max_terms=2, n_suggestions=2, executor=ex)
+    suggest(src, n_bootstrap=20, max_terms=2, n_suggestions=2, executor=ex)
     assert len(ex.contexts) >= 4  # prefilter, screening, statistics, held-out, checksums
     paths = []
     for k, data in enumerate(ex.contexts):
@@ -410,6 +410,45 @@ def test_unreachable_scheduler_gives_a_clear_error(demo_files, tmp_path):
         run_pass(ScreeningPass(featurizer), src, executor=DaskExecutor(address,
                                                                         connect_timeout=1))
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("address", ["notanaddress", "tcp://HOST"])
+def test_a_failed_connection_leaves_no_traceback_from_the_client(address):
+    # a Client that failed to connect was closed by its __del__, which waited 20 s and
+    # printed "Exception ignored in: <function Client.__del__ ...>" and a traceback;
+    # the client is made here directly, without the address check of DaskExecutor
+    pytest.importorskip("distributed")
+    script = ("import distributed\n"
+              "from cvdesign.parallel.executors import _discard_client\n"
+              "client = distributed.Client.__new__(distributed.Client)\n"
+              "try:\n"
+              f"    client.__init__({address!r}, timeout=1, set_as_default=False)\n"
+              "except Exception as exc:\n"
+              "    print(type(exc).__name__)\n"
+              "    _discard_client(client)\n")  # `client` lives until the interpreter exits
+    res = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                         timeout=120, cwd=str(Path(__file__).resolve().parents[1]))
+    assert res.returncode == 0 and res.stdout.strip() == "ValueError"
+    assert "Exception ignored" not in res.stderr and "Traceback" not in res.stderr
+
+
+@pytest.mark.parametrize("address,message", [
+    ("notanaddress", r"scheduler address 'notanaddress' has no port; give tcp://HOST:PORT"),
+    ("tcp://:8786", r"'tcp://:8786' has no valid host before the port"),
+    ("tcp://h:port", r"'tcp://h:port': port 'port' is not a number from 1 to 65535"),
+    ("gopher://h:1", r"'gopher://h:1': unknown scheme 'gopher' \(known: .*tcp"),
+])
+def test_a_malformed_scheduler_address_is_refused_before_connecting(address, message):
+    pytest.importorskip("distributed")
+    with pytest.raises(InputError, match=message):
+        DaskExecutor(address, connect_timeout=60)  # refused at once, not after 60 s
+
+
+def test_scheduler_addresses_that_dask_accepts_pass_the_check():
+    from cvdesign.parallel.executors import check_scheduler_address
+    for address in ("tcp://10.0.0.5:8786", "10.0.0.5:8786", "tls://node-3.cluster:8786",
+                    "tcp://[::1]:8786", "inproc://10.0.0.5/1234/1", "ws://h:80"):
+        check_scheduler_address(address, distributed=False)
 
 
 def test_a_local_worker_process_that_dies_mid_run_gives_a_clear_error(demo_files, tmp_path):

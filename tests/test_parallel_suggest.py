@@ -13,7 +13,7 @@ from cvdesign.cli import main
 from cvdesign.passes import PoolFeaturizer
 from cvdesign.progress import using_display
 
-SETTINGS = dict(n_bootstrap=10, max_terms=2, n_suggestions=3, lag=2.0, objective="both")
+SETTINGS = dict(n_bootstrap=20, max_terms=2, n_suggestions=3, lag=2.0, objective="both")
 
 
 @pytest.fixture(scope="module", autouse=True)

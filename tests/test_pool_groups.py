@@ -231,7 +231,7 @@ def test_one_residue_gives_no_group_descriptors(demo_files):
 def adk_group_result(adk):
     src, _ = adk
     return suggest(src, kinds=("center_distance", "coordination"), max_terms=2,
-                   n_suggestions=3, n_bootstrap=10)
+                   n_suggestions=3, n_bootstrap=20)
 
 
 def test_adk_residue_level_suggestions_join_domains_and_their_specs_evaluate_the_same(

@@ -107,7 +107,7 @@ def test_bars_on_a_terminal_count_every_frame_and_replicate_and_change_no_output
         demo_files, demo_frames, tmp_path, capsys):
     term_out = tmp_path / "terminal"
     status, stdout, terminal = _on_terminal(
-        _suggest_argv(demo_files, term_out, "--bootstrap", "4"), tmp_path)
+        _suggest_argv(demo_files, term_out, "--bootstrap", "20"), tmp_path)
     assert status == 0, terminal
     lines = _final_lines(terminal)
     total = sum(demo_frames)
@@ -118,11 +118,11 @@ def test_bars_on_a_terminal_count_every_frame_and_replicate_and_change_no_output
                           ("statistics", total), ("held-out", total)]:
         _done(lines, label, frames, "frames")
     for label in ("bootstrap", "bootstrap refits", "bootstrap card"):
-        _done(lines, label, 4, "replicates")
+        _done(lines, label, 20, "replicates")
     # standard output holds the results only, and the bars changed none of the files
     assert "\r" not in stdout and "%|" not in stdout and "caution:" in stdout
     piped = tmp_path / "piped"
-    assert main(_suggest_argv(demo_files, piped, "--bootstrap", "4")) == 0
+    assert main(_suggest_argv(demo_files, piped, "--bootstrap", "20")) == 0
     captured = capsys.readouterr()
     assert captured.err == ""  # not a terminal: no bar characters, and nothing else to say
     assert captured.out == stdout.replace(str(term_out), str(piped))
@@ -173,7 +173,7 @@ def test_the_library_prints_and_logs_nothing_unless_asked(demo_files, capsys, ca
     top, states = demo_files
     source = Source.from_states(top, {"closed": states["closed"][:1],
                                       "open": states["open"][:1]})
-    settings = dict(selection=_SELECT, max_terms=1, n_suggestions=1, n_bootstrap=2)
+    settings = dict(selection=_SELECT, max_terms=1, n_suggestions=1, n_bootstrap=20)
     quiet = suggest(source, **settings)
     assert capsys.readouterr() == ("", "")
     assert [r for r in caplog.records if r.name.startswith("cvdesign")] == []

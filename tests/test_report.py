@@ -37,7 +37,7 @@ def demo_out(tmp_path_factory, demo_files):
     """suggest on the demo (a small bootstrap), written as the CLI writes it (with
     report-data.json)."""
     top, states = demo_files
-    res = suggest(Source.from_states(top, states), n_bootstrap=8, n_suggestions=3, seed=0)
+    res = suggest(Source.from_states(top, states), n_bootstrap=20, n_suggestions=3, seed=0)
     out = tmp_path_factory.mktemp("demo") / "out"
     res.write(out)
     return out
@@ -337,7 +337,7 @@ def test_suggest_writes_the_report_that_cvdesign_report_rebuilds_byte_for_byte(
     for k in (1, 2):
         out = tmp_path / f"try{k}" / "out"
         out.parent.mkdir()
-        argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "4",
+        argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "20",
                 "--suggestions", "2", "--max-terms", "2", "--seed", "3", "--quiet"]
         for name, files in states.items():
             argv += ["--state", name, *files[:2]]

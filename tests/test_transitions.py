@@ -275,7 +275,7 @@ def test_cli_labelled_biased_runs_rank_on_transition_slowness(toy, tmp_path, cap
 
 
 def test_suggest_with_crossing_runs_gives_the_same_bytes_on_two_processes(short_leaves, toy):
-    kwargs = dict(objective="both", lag=LAG_PS, n_bootstrap=5, max_terms=1, n_suggestions=2,
+    kwargs = dict(objective="both", lag=LAG_PS, n_bootstrap=20, max_terms=1, n_suggestions=2,
                   kinds=("distance",), cutoff=5.0, n_folds=3, seed=1)
     serial = suggest(_source(toy), **kwargs)
     parallel = suggest(_source(toy), executor=2, **kwargs)

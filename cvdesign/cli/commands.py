@@ -33,7 +33,8 @@ from pathlib import Path
 import numpy as np
 
 from .._version import __version__
-from ..constants import BOLTZMANN_KJ_MOL_K, COORDINATION_EXPONENTS, COORDINATION_R0_NM
+from ..constants import (BOLTZMANN_KJ_MOL_K, BOOTSTRAP_TOO_FEW, COORDINATION_EXPONENTS,
+                         COORDINATION_R0_NM, MIN_BOOTSTRAP_REPLICATES)
 from ..errors import CVDesignError, InputError
 from ..io.bias import is_number as _is_number
 from ..kinds import DEFAULT_KINDS, KINDS
@@ -83,7 +84,27 @@ def _int_at_least(low, why=""):
 
 _positive_int = _int_at_least(1)
 _non_negative_int = _int_at_least(0)
-_at_least_two = _int_at_least(2, " (one fold to fit, one to score; or two states)")
+_at_least_two_folds = _int_at_least(2, " (one fold to fit, one to score)")
+_at_least_two_states = _int_at_least(2, " (one state leaves nothing to tell apart)")
+
+
+def _replicates(text):
+    """An argparse type: bootstrap replicates, 0 (off) or at least MIN_BOOTSTRAP_REPLICATES."""
+    v = _non_negative_int(text)
+    if 0 < v < MIN_BOOTSTRAP_REPLICATES:
+        raise argparse.ArgumentTypeError(f"{text!r}: {BOOTSTRAP_TOO_FEW}")
+    return v
+
+
+def _scheduler_address(text):
+    """An argparse type: a Dask scheduler address (checked before any connection)."""
+    from ..parallel.executors import check_scheduler_address
+
+    try:
+        check_scheduler_address(text)
+    except InputError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+    return text
 
 
 def _add_executor_options(p):
@@ -93,7 +114,7 @@ def _add_executor_options(p):
                        help="read and featurize the trajectories in N local processes "
                             "(default: 1, in this process); the outputs are the same, byte "
                             "for byte")
-    where.add_argument("--scheduler", metavar="ADDRESS", default=None,
+    where.add_argument("--scheduler", metavar="ADDRESS", default=None, type=_scheduler_address,
                        help="run the passes over the trajectories on a Dask cluster, e.g. "
                             "tcp://10.0.0.5:8786 (needs pip install 'cvdesign[dask]'; every "
                             "worker must read the trajectory paths as given); the outputs "
@@ -130,7 +151,7 @@ def _add_suggest_options(p):
                    help="largest number of descriptors in one combination (default: 5)")
     p.add_argument("--suggestions", type=_positive_int, default=10, metavar="N",
                    help="number of ranked combinations, each written as a spec (default: 10)")
-    p.add_argument("--folds", type=_at_least_two, default=4, metavar="N",
+    p.add_argument("--folds", type=_at_least_two_folds, default=4, metavar="N",
                    help="folds of the held-out scoring, by whole trajectories, or by "
                         "contiguous blocks when a state has one trajectory (default: 4)")
     p.add_argument("--objective", choices=("separate", "slow", "both"), default="separate",
@@ -149,7 +170,7 @@ def _add_suggest_options(p):
                    help="discriminant for separate/both: harmonic LDA (within-state scatter "
                         "the harmonic mean of the state covariances, so the narrow state "
                         "weighs most) or plain LDA (default: hlda)")
-    p.add_argument("--bootstrap", type=_non_negative_int, default=200, metavar="N",
+    p.add_argument("--bootstrap", type=_replicates, default=200, metavar="N",
                    help="block-bootstrap replicates for 95 %% intervals of weights and "
                         "scores and for term selection frequencies; 0 turns them off "
                         "(default: 200)")
@@ -160,7 +181,8 @@ def _add_suggest_options(p):
                    help="time between trajectory frames in ps, for files that store no times "
                         "(DCD, PDB, ...) and for files whose stored times do not increase "
                         "(all zero, as some writers store), which it then replaces; files "
-                        "with increasing stored times keep their own")
+                        "with increasing stored times keep their own, and a value that "
+                        "disagrees with them (beyond their single precision) is refused")
     p.add_argument("--temperature", type=_positive_float, default=None, metavar="K",
                    help="temperature of the biased run in K, for the bias-parameter hints "
                         "stored in each spec (default: 300), and of the biased runs given with "
@@ -260,7 +282,9 @@ def build_parser():
     given = p.add_mutually_exclusive_group()
     given.add_argument("--state", nargs="+", action="append", metavar=("NAME", "FILE"),
                        help="a state name followed by its trajectory files (any format mdtraj "
-                            "reads); repeat for each state, at least two states")
+                            "reads); repeat for each state, at least two states; a name that "
+                            "is a file or a trajectory's name, and '-' (no state, in labels "
+                            "files), are refused")
     given.add_argument("--runs", nargs="+", metavar="FILE",
                        help="unlabelled exploratory runs instead of --state: metastable states "
                             "are proposed by clustering the slowest TICA coordinates at --lag "
@@ -284,7 +308,7 @@ def build_parser():
                       "biased run; a state given with --state may also have unbiased runs "
                       "(the two groups are combined in proportion to their effective sample "
                       "sizes); with --runs, every run must be biased or none")
-    p.add_argument("--n-states", type=_at_least_two, default=None, metavar="N",
+    p.add_argument("--n-states", type=_at_least_two_states, default=None, metavar="N",
                    help="with --runs: the number of states to propose (default: 2 to 6, the "
                         "fewest that are all metastable among the best mean silhouettes)")
     p.add_argument("--out", required=True, metavar="DIR",
@@ -472,7 +496,7 @@ def build_parser():
                     "one slow torsion that opens and closes a contact) and say what to look at.")
     p.add_argument("--out", default="cvdesign-demo", metavar="DIR",
                    help="output directory (default: ./cvdesign-demo)")
-    p.add_argument("--bootstrap", type=_non_negative_int, default=200, metavar="N",
+    p.add_argument("--bootstrap", type=_replicates, default=200, metavar="N",
                    help="bootstrap replicates for the uncertainties (default: 200; 0 is "
                         "faster)")
     p.add_argument("--force", action="store_true",
@@ -623,6 +647,8 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
             raise InputError("--n-states goes with --runs (states proposed from unlabelled "
                              "runs); with --state the states are the ones given")
         states = states or []
+        for entry in states:
+            _check_state_name(entry[0], entry[1:])
         names = [s[0] for s in states]
         dup = sorted({n for n in names if names.count(n) > 1})
         if dup:
@@ -739,6 +765,24 @@ def _check_bias_temperature(args, biases):
         raise InputError("--bias-energy needs --temperature K, the temperature the biased runs "
                          "were simulated at: their frames are reweighted by exp(V/kT) at it, "
                          "so it has no default; give it")
+
+
+def _check_state_name(name, files):
+    """Refuse a ``--state`` name that is a file or a trajectory's name (a ``--state`` given
+    files but no name took its first file as the name), or the labels' no-state mark."""
+    from mdtraj.formats.registry import FormatRegistry
+
+    from ..io.source import NO_STATE_LABEL, _suffix
+
+    if name == NO_STATE_LABEL:
+        raise InputError(f"--state {name}: {NO_STATE_LABEL!r} cannot name a state (in a labels "
+                         "file it marks a frame in no state); give each state a name of its own")
+    exts = {e for e in FormatRegistry.loaders if not e.endswith(".gz")}
+    if Path(name).is_file() or _suffix(name) in exts:
+        what = "an existing file" if Path(name).is_file() else "a trajectory file's name"
+        raise InputError(f"--state {' '.join([name, *files])}: the state name {name!r} is {what};"
+                         " --state takes a NAME and then that state's files (--state NAME FILE "
+                         "[FILE ...]): give the name first")
 
 
 def _bias_files(biases, files, given_with="--state or --labelled"):
@@ -900,14 +944,16 @@ def _looks_like_index(name, cells):
     return len(numbers) > 1 and numbers == list(range(len(numbers)))
 
 
-def _read_values(path, column=None):
+def _read_values(path, column=None, traj=None):
     """(frames or None, values) from a file of CV values, with a clear error on bad input.
 
     The file is a CSV (comma-separated) or whitespace-separated columns, with
     an optional header line; blank lines and lines starting with ``#`` or ``@``
     are skipped. `column` is a 1-based number or a header name; by default the
     'value' column, or the only column. A 'frame' column, when present, says
-    which frame each value belongs to.
+    which frame each value belongs to; a frame named twice is refused. A 'file' column
+    (``apply``'s CSV of several trajectories), when present, keeps the rows of trajectory
+    `traj` only (by its name or its path as given).
     """
     path = Path(path)
     name = str(path)
@@ -963,6 +1009,7 @@ def _read_values(path, column=None):
     fi = lower.index("frame") if lower is not None and "frame" in lower else None
     if fi == k:
         fi = None
+    table = _rows_of_file(name, table, lower, k, traj)
     values, frames = [], []
     for n, cells in table:
         if len(cells) <= max(k, -1 if fi is None else fi):
@@ -984,7 +1031,33 @@ def _read_values(path, column=None):
             except ValueError:
                 raise InputError(f"values file {name!r}, line {n}: frame {cells[fi]!r} is not "
                                  "a whole number") from None
+    if fi is not None:
+        seen = {}
+        for (n, _), f in zip(table, frames):
+            if f in seen:
+                raise InputError(
+                    f"values file {name!r} names frame {f} twice (lines {seen[f]} and {n}); "
+                    "give one value per frame of one trajectory (values of several "
+                    "trajectories go in separate files, or in a 'file' column naming each)")
+            seen[f] = n
     return (np.asarray(frames) if fi is not None else None), np.asarray(values, dtype=np.float64)
+
+
+def _rows_of_file(name, table, lower, k, traj):
+    """The rows of a values table whose 'file' column names trajectory `traj` (all rows
+    when there is no such column or no `traj`); refuses a file that names none of them."""
+    if traj is None or lower is None or "file" not in lower or lower.index("file") == k:
+        return table
+    j = lower.index("file")
+    own = {str(traj), Path(traj).name}
+    kept = [(n, cells) for n, cells in table if len(cells) > j and cells[j] in own]
+    if not kept:
+        present = sorted({cells[j] for _, cells in table if len(cells) > j})
+        raise InputError(
+            f"values file {name!r} has a 'file' column naming "
+            f"{', '.join(repr(f) for f in present[:5])}{', ...' if len(present) > 5 else ''}, "
+            f"not trajectory {str(traj)!r}; give the trajectory whose values it holds")
+    return kept
 
 
 #: Relative slack (of the largest finite bound, at least 1) within which a reference value
@@ -1128,7 +1201,7 @@ def _cmd_check(args):
         in_range &= _range_check(reach, seen, traj, ours, idx, period)
     worst_all = 0.0
     for values_path, traj in args.against or []:
-        frames, theirs = _read_values(values_path, args.column)
+        frames, theirs = _read_values(values_path, args.column, traj)
         ours, idx, stand_in = _reference_values(spec, source.topology, traj)
         in_range &= _range_check(reach, seen, traj, ours, idx, period)
         if frames is None:

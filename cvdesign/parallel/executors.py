@@ -331,6 +331,65 @@ def _import_distributed():
     return distributed
 
 
+def check_scheduler_address(address, distributed=None):
+    """Refuse a scheduler address that is not one, before any connection is tried.
+
+    Accepted: ``SCHEME://HOST:PORT`` for the schemes dask.distributed knows (tcp, tls,
+    ws, wss, ucx, ... as installed; ``inproc://NAME`` for a scheduler in this process), and
+    ``HOST:PORT`` (tcp). HOST may be a bracketed IPv6 address.
+
+    Raises
+    ------
+    InputError
+        Naming the address, what is wrong and the form to give.
+
+    Examples
+    --------
+    >>> check_scheduler_address("tcp://10.0.0.5:8786", distributed=False)
+    >>> check_scheduler_address("notanaddress", distributed=False)
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: scheduler address 'notanaddress' has no port; give tcp://HOST:PORT (or HOST:PORT), e.g. tcp://10.0.0.5:8786
+    """
+    form = "give tcp://HOST:PORT (or HOST:PORT), e.g. tcp://10.0.0.5:8786"
+    schemes = {"tcp", "tls", "ws", "wss", "ucx", "inproc"}
+    if distributed:
+        try:
+            schemes = set(distributed.comm.registry.backends)
+        except AttributeError:
+            pass
+    scheme, sep, rest = address.strip().partition("://")
+    if not sep:
+        scheme, rest = "tcp", address.strip()
+    elif scheme not in schemes:
+        raise InputError(f"scheduler address {address!r}: unknown scheme {scheme!r} (known: "
+                         f"{', '.join(sorted(schemes))}); {form}")
+    if scheme == "inproc":
+        if not rest:
+            raise InputError(f"scheduler address {address!r} names no scheduler; {form}")
+        return
+    host, colon, port = rest.rpartition(":")
+    if not colon or host.endswith(":") and not host.startswith("["):
+        raise InputError(f"scheduler address {address!r} has no port; {form}")
+    if not host or "/" in host or (":" in host and not (host.startswith("[")
+                                                        and host.endswith("]"))):
+        raise InputError(f"scheduler address {address!r} has no valid host before the port; "
+                         f"{form}")
+    if not port.isdigit() or not 0 < int(port) < 65536:
+        raise InputError(f"scheduler address {address!r}: port {port!r} is not a number from "
+                         f"1 to 65535; {form}")
+
+
+def _discard_client(client):
+    """Mark a dask Client that failed to connect closed and stop its event loop, so that its
+    ``__del__`` neither waits nor prints a traceback."""
+    try:
+        client.status = "closed"
+        client._loop_runner.stop()
+    except Exception:  # a client that failed before making its loop has nothing to stop
+        pass
+
+
 class DaskExecutor(Executor):
     """Run tasks on a Dask cluster (``dask.distributed``).
 
@@ -365,10 +424,16 @@ class DaskExecutor(Executor):
         self._distributed = distributed
         self._owned = False
         if isinstance(client, str):
+            check_scheduler_address(client, distributed)
+            address = client
+            # made in two steps, so that a client that failed to connect can be marked closed:
+            # else its __del__ waits twice the timeout to close it and prints a traceback
+            client = distributed.Client.__new__(distributed.Client)
             try:
-                client = distributed.Client(client, timeout=connect_timeout,
-                                            set_as_default=False)
+                client.__init__(address, timeout=connect_timeout, set_as_default=False)
             except Exception as exc:
+                _discard_client(client)
+                client = address
                 detail = str(exc).strip().splitlines()[0] if str(exc).strip() else \
                     type(exc).__name__
                 raise SchedulerUnreachableError(

@@ -40,7 +40,7 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from ..constants import COORDINATION_R0_NM
+from ..constants import BOOTSTRAP_TOO_FEW, COORDINATION_R0_NM, MIN_BOOTSTRAP_REPLICATES
 from ..errors import InputError
 from ..geometry import recorded_geometry_warnings
 from ..io.source import Source, describe_selection, select_atoms
@@ -134,6 +134,8 @@ class SuggestConfig:
                 continue
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < lo:
                 raise InputError(f"{name}={v!r} must be an integer of at least {lo}")
+        if 0 < self.n_bootstrap < MIN_BOOTSTRAP_REPLICATES:
+            raise InputError(f"n_bootstrap={self.n_bootstrap!r}: {BOOTSTRAP_TOO_FEW}")
         if not 0 < self.max_correlation <= 1:
             raise InputError(f"max_correlation={self.max_correlation!r} must be in (0, 1]")
         if not self.min_gain >= 0:
@@ -262,7 +264,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
         Regularization of the within-state covariances of standardized
         features: ``(1 - a) S + a (tr S / p) I``.
     n_bootstrap : int, default=200
-        Block-bootstrap replicates for confidence intervals (0: none).
+        Block-bootstrap replicates for confidence intervals (0: none); fewer than
+        20 are refused (a 95 % percentile interval from so few is meaningless;
+        common practice is 200 or more).
     seed : int, default=0
         Seed of the bootstrap; same inputs and seed, same outputs byte for byte.
     temperature : float, default=None
