@@ -103,6 +103,9 @@ def shared(tmp_path_factory, demo_files):
     (d / "garbage.xtc").write_bytes(b"\0" * 1000)
     (d / "fake.h5").write_bytes(b"\x89HDF\r\n\x1a\n" + b"\0" * 100)
     (d / "empty.xtc").write_bytes(b"")
+    whole = (d / "whole.xtc")
+    traj[:20].save_xtc(str(whole))
+    (d / "cut.xtc").write_bytes(whole.read_bytes()[:-30])  # ends inside frame 19
     (d / "notes.xyzzy").write_text("what format is this?\n")
     (d / "deep.json").write_text("[" * 100_000 + "]" * 100_000)
     (d / "deep150.json").write_text('{"a": ' * 150 + "1" + "}" * 150)
@@ -305,6 +308,15 @@ CLI_CASES = [
                     "--state", "b", c.open, "--out", c.w("out")], 2,
          r"--state -: '-' cannot name a state \(in a labels file it marks a frame in no "
          r"state\)"),
+    Case("suggest-trajectory-ends-inside-a-frame",  # was "XTC read error: Float", no hint
+         lambda c: c.suggest(closed=c.s("cut.xtc")), 2,
+         r"trajectory '.*cut\.xtc' could not be read in frames 0 to 19 \(XTC read error: "
+         r"[^)]*\): it ends inside a frame \(was it truncated, or is it still being written\?\); "
+         r"check the file"),
+    Case("apply-trajectory-ends-inside-a-frame",
+         lambda c: c.apply(traj=c.s("cut.xtc")), 2,
+         r"trajectory '.*cut\.xtc' could not be read (at frame 0|in frames 0 to 19) \(XTC "
+         r"read error: [^)]*\): it ends inside a frame \(was it truncated"),
     Case("suggest-selection-matches-nothing",
          lambda c: c.suggest("--select", "name CA"), 2,
          r"selection 'name CA' matches no atoms in a topology of 12 atoms"),
@@ -606,6 +618,17 @@ CLI_CASES = [
          lambda c: [c.file("out/ranking.json", "{}"),
                     ["report", c.w("out"), "--out", c.w("out/ranking.json"), "--force"]][1], 2,
          r"--out '.*ranking\.json' is one of the input files; writing it would replace"),
+    Case("report-ranking-of-a-newer-version",  # was read as if it were version 1
+         lambda c: [c.file("out/ranking.json", '{"format": "cvdesign-ranking", "version": 2, '
+                                               '"states": [], "ranking": []}'),
+                    ["report", c.w("out")]][1], 2,
+         r"ranking\.json: version 2 of the ranking; this cvdesign reads version 1\. Re-run the "
+         r"command that made it with this version"),
+    Case("report-out-not-html",  # --force replaced any file with the report
+         lambda c: [c.file("out/ranking.json", "{}"), c.file("notes.txt"),
+                    ["report", c.w("out"), "--out", c.w("notes.txt"), "--force"]][2], 2,
+         r"--out '.*notes\.txt': the report is an HTML page; give a file name ending in "
+         r"\.html"),
     Case("report-out-exists-without-force",
          lambda c: [c.file("out/ranking.json", "{}"), c.file("old.html"),
                     ["report", c.w("out"), "--out", c.w("old.html")]][2], 2,

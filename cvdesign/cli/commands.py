@@ -515,8 +515,9 @@ def build_parser():
     p.add_argument("target", metavar="TARGET",
                    help="output directory of suggest/demo, or the spec file of funnel")
     p.add_argument("--out", metavar="FILE.html", default=None,
-                   help="write the report here instead; an existing file is kept unless "
-                        "--force, and a file of the output is never replaced")
+                   help="write the report here instead (a name ending in .html); an existing "
+                        "file is kept unless --force, and a file of the output is never "
+                        "replaced")
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
     for command in sub.choices.values():
         _add_verbosity(command)
@@ -1572,6 +1573,9 @@ def _cmd_report(args):
     output = read_output(args.target)  # refuses what is not a cvdesign output, first
     if args.out is not None:
         check_output_file(args.out, force=args.force, inputs=output.paths(), option="--out")
+        if Path(args.out).suffix.lower() not in (".html", ".htm"):  # --force replaced any file
+            raise InputError(f"--out {args.out!r}: the report is an HTML page; give a file name "
+                             "ending in .html")
     path = write_report(args.target, args.out)
     print(f"wrote {path}")
     return 0

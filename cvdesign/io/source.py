@@ -1104,7 +1104,8 @@ class Source:
             except InputError:
                 raise
             except Exception as exc:
-                raise InputError(f"error while reading trajectory {str(seg.path)!r}: {exc}") from exc
+                raise read_error(seg.path, exc, frame0,
+                                 frame0 + stride * (kwargs["chunk"] - 1)) from exc
             if seg.labels is not None and stride == 1:
                 check_label_count(seg, n_seen)
 
@@ -1286,6 +1287,32 @@ def shortest_decimal(lo, hi, near):
             k = min(max(round(near / 10.0**e), k_lo), k_hi)
             return float(f"{k}e{e}")
     return float(near)
+
+
+def read_error(path, exc, frame, last):
+    """The error for an exception of mdtraj's reader while reading frames `frame` to `last`
+    (0-based, inclusive: the chunk being read) of `path`.
+
+    The XDR readers (XTC, TRR) say only "XTC read error: Float" for a file that ends inside
+    a frame: that is said in words. A file cut exactly between frames cannot be told from a
+    complete one (the formats store no frame count and no end mark).
+
+    Examples
+    --------
+    >>> print(read_error("run.xtc", OSError("XTC read error: Float"), 500, 999))  # no such file
+    trajectory 'run.xtc' could not be read in frames 500 to 999 (XTC read error: Float): it ends inside a frame (was it truncated, or is it still being written?); check the file, or use a complete copy
+    """
+    detail = str(exc).strip() or type(exc).__name__
+    if detail.startswith(("XTC read error", "TRR read error")):
+        try:  # the chunk may reach beyond the frames the file's offsets count
+            last = min(last, max(frame, file_frames(path) - 1))
+        except InputError:
+            pass
+        where = f"at frame {frame}" if last <= frame else f"in frames {frame} to {last}"
+        return InputError(f"trajectory {str(path)!r} could not be read {where} "
+                          f"({detail}): it ends inside a frame (was it truncated, or is it "
+                          "still being written?); check the file, or use a complete copy")
+    return InputError(f"error while reading trajectory {str(path)!r}: {detail}")
 
 
 def every_atom(atom_indices, topology):

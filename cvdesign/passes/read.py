@@ -16,7 +16,7 @@ from mdtraj.utils import in_units_of
 
 from ..errors import InputError
 from ..io.source import (check_box, check_finite, every_atom, file_frames, quiet_stdout,
-                         stores_time)
+                         read_error, stores_time)
 
 __all__ = ["file_frames", "read_chunks", "RawChunk"]
 
@@ -183,7 +183,7 @@ def read_chunks(path, start, stop, atom_indices, topology, *, chunk_frames=500, 
     except InputError:
         raise
     except Exception as exc:
-        raise InputError(f"error while reading trajectory {str(path)!r}: {exc}") from exc
+        raise read_error(path, exc, expected, min(int(stop), expected + chunk_frames) - 1) from exc
     if expected < stop:
         raise InputError(f"trajectory {str(path)!r} ended at frame {expected} while frames up "
                          f"to {int(stop)} were expected (was the file changed or truncated "

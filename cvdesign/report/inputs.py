@@ -28,6 +28,8 @@ __all__ = ["Output", "read_output", "report_path", "report_data_name", "REPORT_D
 
 REPORT_DATA_FORMAT = "cvdesign-report-data"
 REPORT_DATA_VERSION = 1
+#: The version of ``ranking.json`` this report reads (``Suggestions.ranking_json`` writes it).
+RANKING_VERSION = 1
 
 _SPEC_NAME = re.compile(r"cv-\d+\.json")
 _DIR_FILES = ("ranking.json", "ranking.csv", "scorecard.csv", "summary.md", "states.csv",
@@ -196,6 +198,11 @@ def _parse_suggest(out):
             and isinstance(ranking.get("states"), list)):
         raise _bad("ranking.json", "no cvdesign ranking (format 'cvdesign-ranking' with "
                   "'states' and 'ranking')")
+    version = ranking.get("version")
+    if isinstance(version, bool) or version != RANKING_VERSION:
+        raise InputError(f"ranking.json: version {version!r} of the ranking; this cvdesign "
+                         f"reads version {RANKING_VERSION}. Re-run the command that made it "
+                         "with this version")
     specs = {}
     for r in ranking["ranking"]:
         name = r.get("spec") if isinstance(r, dict) else None
