@@ -287,3 +287,36 @@ def test_selection_is_echoed_in_the_summary_and_on_the_terminal(demo_files, tmp_
     assert printed[0] == expected  # the first line of the results, before the notes
     summary = (out / "summary.md").read_text()
     assert f"Atoms of the pool: {expected}." in summary
+
+
+def test_quiet_discards_what_the_dcd_reader_prints_without_turning_it_into_warnings(
+        demo_files, tmp_path):
+    # mdtraj's DCD reader prints "dcdplugin) detected standard 32-bit DCD file ..." on file
+    # descriptor 1, which cvdesign sends to standard error: -q showed it all the same
+    from cvdesign import Spec
+    from cvdesign.io.source import READER_OUTPUT_ENV
+
+    top, states = demo_files
+    md.load(states["closed"][0], top=top)[:20].save_dcd(str(tmp_path / "run.dcd"))
+    Spec(name="cv-contact", topology=md.load_topology(top),
+         descriptors=[{"id": "d0", "kind": "distance", "atoms": [0, 7]}],
+         terms=[{"descriptor": "d0", "transform": "identity", "center": 0.7, "scale": 0.1,
+                 "weight": 1.0}],
+         states={"closed": {"mean": 0.0, "std": 0.5, "n_frames": 20}}).save(tmp_path / "cv.json")
+    env = {**os.environ, "PYTHONPATH": _ROOT + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    env.pop(READER_OUTPUT_ENV, None)
+
+    def run(*flags):
+        return subprocess.run([sys.executable, "-m", "cvdesign.cli", *flags, "apply", "cv.json",
+                               "--topology", top, "run.dcd"], capture_output=True, text=True,
+                              env=env, cwd=tmp_path, timeout=120)
+
+    loud, quiet = run(), run("-q")
+    assert loud.returncode == quiet.returncode == 0
+    assert "dcdplugin)" in loud.stderr and "dcdplugin)" not in loud.stdout  # shown, not in CSV
+    assert quiet.stderr == "" and quiet.stdout == loud.stdout
+    assert len(quiet.stdout.splitlines()) == 21
+    # in this process the setting lasts as long as the command
+    assert main(["-q", "apply", str(tmp_path / "cv.json"), "--topology", top,
+                 str(tmp_path / "run.dcd"), "--out", str(tmp_path / "v.csv")]) == 0
+    assert READER_OUTPUT_ENV not in os.environ

@@ -250,9 +250,10 @@ def _add_verbosity(p, suffix=""):
                         "the caution. The outputs keep what they must: apply's CSV marks the "
                         "frames whose value stands in for undefined geometry (column "
                         "undefined), check prints them; hints, funnel and suggest keep their "
-                        "warnings in their outputs (suggest: summary.md and the specs; not "
-                        "its warnings about undefined angles or dihedrals in the input frames, "
-                        "which only standard error shows)")
+                        "warnings in their outputs (suggest: summary.md and the specs; its "
+                        "warnings about undefined angles or dihedrals in the input frames are "
+                        "in summary.md's 'input frames: ...' note). What the trajectory "
+                        "readers print themselves (DCD) is discarded")
 
 
 def build_parser():
@@ -567,9 +568,12 @@ def _reporting(args):
     handler, before = _StderrHandler(args.command, level), logger.level
     logger.addHandler(handler)
     logger.setLevel(level)
+    from ..io.source import reader_output_discarded
+
     try:
         with show_progress(sys.stderr, enabled=None if not args.quiet else False), \
-                _geometry_warnings_logged():
+                _geometry_warnings_logged(), \
+                (reader_output_discarded() if args.quiet else contextlib.nullcontext()):
             yield
     finally:
         logger.removeHandler(handler)

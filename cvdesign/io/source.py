@@ -50,9 +50,42 @@ _QUIET_LOCK = threading.Lock()
 _QUIET = {"depth": 0, "fd": None, "saved": None}
 
 
+#: Environment variable: ``discard`` sends what the C readers print (see
+#: :func:`quiet_stdout`) to /dev/null instead of standard error. The command sets it under
+#: ``-q`` (:func:`reader_output_discarded`); worker processes started meanwhile inherit it.
+READER_OUTPUT_ENV = "CVDESIGN_READER_OUTPUT"
+
+
+@contextlib.contextmanager
+def reader_output_discarded():
+    """For the length of a block, discard what mdtraj's C readers print (e.g. the DCD
+    reader's "dcdplugin) detected standard 32-bit DCD file ..."), here and in worker
+    processes started during it; it is not shown, nor turned into warnings."""
+    before = os.environ.get(READER_OUTPUT_ENV)
+    os.environ[READER_OUTPUT_ENV] = "discard"
+    try:
+        yield
+    finally:
+        if before is None:
+            os.environ.pop(READER_OUTPUT_ENV, None)
+        else:
+            os.environ[READER_OUTPUT_ENV] = before
+
+
+def _reader_sink():
+    """(file descriptor for the C readers' output, whether it was opened here)."""
+    if os.environ.get(READER_OUTPUT_ENV) != "discard":
+        try:
+            return sys.stderr.fileno(), False
+        except (AttributeError, OSError, ValueError):
+            pass
+    return os.open(os.devnull, os.O_WRONLY), True
+
+
 @contextlib.contextmanager
 def quiet_stdout():
-    """Send anything written to file descriptor 1 (by C readers) to standard error.
+    """Send anything written to file descriptor 1 (by C readers) to standard error
+    (to /dev/null within :func:`reader_output_discarded`, as under ``-q``).
 
     Some of mdtraj's compiled readers print diagnostics straight to the
     process's standard output, which would corrupt CSV written there. Safe
@@ -68,8 +101,10 @@ def quiet_stdout():
             if fd is not None:
                 sys.stdout.flush()
                 saved = os.dup(fd)
-                os.dup2(sys.stderr.fileno() if hasattr(sys.stderr, "fileno") else
-                        os.open(os.devnull, os.O_WRONLY), fd)
+                sink, opened = _reader_sink()
+                os.dup2(sink, fd)
+                if opened:
+                    os.close(sink)
                 _QUIET["fd"], _QUIET["saved"] = fd, saved
         _QUIET["depth"] += 1
     try:
