@@ -364,6 +364,12 @@ CLI_CASES = [
          lambda c: c.suggest("--scheduler", "notanaddress"), 2,
          r"argument --scheduler: scheduler address 'notanaddress' has no port; give "
          r"tcp://HOST:PORT \(or HOST:PORT\)"),
+    Case("suggest-abbreviated-option",  # --boot was taken for --bootstrap
+         lambda c: ["suggest", "--topology", c.top, "--state", "a", c.closed, "--state", "b",
+                    c.open, "--out", c.w("out"), "--boot", "0"], 2,
+         r"unrecognized arguments: --boot 0"),
+    Case("apply-abbreviated-option",
+         lambda c: c.apply("--for"), 2, r"unrecognized arguments: --for"),
     Case("suggest-one-fold",
          lambda c: c.suggest("--folds", "1"), 2,
          r"argument --folds: '1' must be at least 2"),
@@ -595,6 +601,14 @@ CLI_CASES = [
     Case("demo-negative-bootstrap",
          lambda c: ["demo", "--out", c.w("d"), "--bootstrap", "-5"], 2,
          r"argument --bootstrap: '-5' must be at least 0"),
+    Case("apply-same-trajectory-twice",  # spoke of "states 'all' and 'all'" and frames=
+         lambda c: c.apply(traj=c.closed) + [c.closed], 2,
+         r"trajectory '.*closed-1\.xtc' is given twice; give each trajectory once"),
+    Case("apply-same-trajectory-under-two-names",
+         lambda c: [os.symlink(c.closed, c.w("alias.xtc")),
+                    c.apply(traj=c.closed) + [c.w("alias.xtc")]][1], 2,
+         r"trajectories '.*closed-1\.xtc' and '.*alias\.xtc' are the same file; give each "
+         r"trajectory once"),
     # -- report: what is not a cvdesign output, and its --out
     Case("report-target-missing",
          lambda c: ["report", c.w("nothing")], 2,

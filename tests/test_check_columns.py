@@ -105,7 +105,8 @@ def test_apply_output_of_two_trajectories_uses_the_rows_of_the_one_checked(
     assert main(["check", spec, "--topology", top, "--against", str(out), third]) == 2
     err = capsys.readouterr().err
     assert (f"values file '{out}' has a 'file' column naming 'closed-1.xtc', 'open-1.xtc', "
-            f"not trajectory '{third}'; give the trajectory whose values it holds") in err
+            f"not trajectory '{third}'; give the trajectory whose values it holds (one of "
+            "those, by its name)") in err
     assert sorted(tmp_path.iterdir()) == before
 
 
@@ -119,3 +120,15 @@ def test_a_frame_named_twice_is_refused_naming_the_lines(setup, tmp_path, capsys
     out, err = capsys.readouterr()
     assert f"values file '{path}' names frame 4 twice (lines 4 and 5); give one value" in err
     assert "FAIL" not in out and sorted(tmp_path.iterdir()) == before
+
+
+def test_apply_writes_stored_times_as_the_shortest_text_of_their_single_precision(
+        setup, tmp_path):
+    # time_ps was written with float32 noise: 1.600000023841858 for a frame at 1.6 ps
+    spec, top, traj, _, times = setup
+    out = tmp_path / "applied.csv"
+    assert main(["apply", spec, "--topology", top, traj, "--out", str(out)]) == 0
+    texts = [line.split(",")[2] for line in out.read_text().splitlines()[1:]]
+    assert texts[:9] == ["0.0", "0.2", "0.4", "0.6", "0.8", "1.0", "1.2", "1.4", "1.6"]
+    stored = np.float32(times)
+    assert np.array_equal(np.array(texts, dtype=np.float32), stored)  # nothing lost

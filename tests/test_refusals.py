@@ -276,3 +276,19 @@ def test_a_held_out_fold_with_a_single_block_skips_the_refits_but_keeps_the_inte
         assert r.get("reproduced_in_refits") is None and "heldout_score_ci" not in r
         lo, hi = r["fisher_ratio_ci"]  # the per-state bootstrap still runs
         assert lo <= r["fisher_ratio_all"] <= hi
+
+
+@pytest.mark.parametrize("asked", [2, 1000])
+def test_fewer_folds_than_asked_for_are_said_in_the_notes(demo_files, asked):
+    # --folds 1000 became 2 folds without a word
+    top, states = demo_files
+    src = Source(top)
+    for name in ("closed", "open"):
+        for f in states[name][:2]:
+            src.add(f, name, frames=(0, 200))
+    res = suggest(src, n_folds=asked, n_bootstrap=0, max_terms=1, n_suggestions=1)
+    note = next(n for n in res.notes if n.startswith("held-out scoring: "))
+    assert note.startswith("held-out scoring: 2-fold cross-validation by whole trajectories")
+    said = ("; 1000 folds were asked for (--folds, n_folds=), 2 are used: a state has no more "
+            "trajectories than that")
+    assert note.endswith(said) == (asked == 1000)

@@ -206,8 +206,8 @@ def test_frame_spacing_of_times_far_from_zero_is_the_round_step_over_the_file(
     assert src.timestep(0) == step
     assert lag_frames(src, 10 * step, read_timesteps(src)) == {0: 10}
     with pytest.raises(InputError, match=rf"lag={7.5 * step:g} ps is not a whole number of "
-                                         rf"frames .* \(time step {step:g} ps(, the mean spacing of its "
-                                         r"stored times|\))"):
+                                         rf"frames .* \(time step {step:g} ps(, the mean "
+                                         r"spacing of its stored times|\))"):
         lag_frames(src, 7.5 * step, read_timesteps(src))
 
 

@@ -258,8 +258,10 @@ def _add_verbosity(p, suffix=""):
 
 def build_parser():
     """The argument parser of the ``cvdesign`` command."""
+    # no abbreviations (--boot for --bootstrap): a later option sharing a prefix would
+    # change what an abbreviation means
     parser = argparse.ArgumentParser(
-        prog="cvdesign",
+        prog="cvdesign", allow_abbrev=False,
         description="Design collective variables (CVs) for enhanced sampling from short "
                     "unbiased trajectories of metastable states. Units: nm, rad, ps, kJ/mol.")
     parser.add_argument("--version", action="version", version=f"cvdesign {__version__}")
@@ -268,7 +270,8 @@ def build_parser():
     sub.required = True
 
     p = sub.add_parser(
-        "suggest", help="rank compact linear CVs that separate the given states",
+        "suggest", allow_abbrev=False,
+        help="rank compact linear CVs that separate the given states",
         description="Build a pool of candidate descriptors, score each for how well it "
                     "separates the states and how slowly it moves, search compact linear "
                     "combinations (HLDA/LDA, or TICA for --objective slow) ranked on held-out "
@@ -317,7 +320,8 @@ def build_parser():
     _add_suggest_options(p)
 
     p = sub.add_parser(
-        "apply", help="evaluate a spec on trajectories",
+        "apply", allow_abbrev=False,
+        help="evaluate a spec on trajectories",
         description="Evaluate the CV of a spec file frame by frame from coordinates alone "
                     "(no refitting). Prints CSV with columns file, frame (0-based), time_ps "
                     "(simulation time in ps; empty for formats that store no times, such as "
@@ -339,7 +343,8 @@ def build_parser():
                    help="replace an existing --out file (never one of the inputs)")
 
     p = sub.add_parser(
-        "check", help="validate a spec against a topology, and an engine's values against it",
+        "check", allow_abbrev=False,
+        help="validate a spec against a topology, and an engine's values against it",
         description="Validate a spec file (schema, atom indices, topology fingerprint) against "
                     "a topology, and print the CV's reachable and observed ranges and the "
                     "states at a bound of it (folded); with --against, compare CV values that "
@@ -377,7 +382,8 @@ def build_parser():
                         "the largest within-state spread stored in the spec)")
 
     p = sub.add_parser(
-        "hints", help="starting values for a (well-tempered) metadynamics bias along a spec's CV",
+        "hints", allow_abbrev=False,
+        help="starting values for a (well-tempered) metadynamics bias along a spec's CV",
         description="Recompute bias-parameter hints from a spec alone: kernel width (CV units) "
                     "from the within-state spread, deposition interval (MD steps) from the CV's "
                     "within-run decorrelation time, kernel height and well-tempered bias factor "
@@ -401,7 +407,8 @@ def build_parser():
     p.add_argument("--json", action="store_true", help="print the hints as JSON")
 
     p = sub.add_parser(
-        "funnel", help="size a funnel restraint for a bound ligand",
+        "funnel", allow_abbrev=False,
+        help="size a funnel restraint for a bound ligand",
         description="From bound-state trajectories, define the funnel axis (pocket centre "
                     "toward the solvent, or through --exit-point), measure the ligand centre "
                     "along (z, nm) and across (r, nm) it, and recommend a cone + cylinder "
@@ -456,7 +463,8 @@ def build_parser():
     _add_executor_options(p)
 
     p = sub.add_parser(
-        "export", help="write a spec's CV as an OpenMM force (XML), for a bias of your own",
+        "export", allow_abbrev=False,
+        help="write a spec's CV as an OpenMM force (XML), for a bias of your own",
         description="Write the CV of a spec file as an OpenMM CustomCVForce (serialized with "
                     "openmm.XmlSerializer) whose energy is the CV value: read it with "
                     "openmm.XmlSerializer.deserialize and add it as a collective variable of "
@@ -492,7 +500,8 @@ def build_parser():
                    help="replace existing output files (never an input)")
 
     p = sub.add_parser(
-        "demo", help="run suggest on the bundled demo data",
+        "demo", allow_abbrev=False,
+        help="run suggest on the bundled demo data",
         description="Run 'suggest' on the bundled demo (an invented flexible molecule with "
                     "one slow torsion that opens and closes a contact) and say what to look at.")
     p.add_argument("--out", default="cvdesign-demo", metavar="DIR",
@@ -505,7 +514,8 @@ def build_parser():
     _add_no_report(p, "report.html in the output directory")
 
     p = sub.add_parser(
-        "report", help="rebuild the HTML report of an output of suggest, demo or funnel",
+        "report", allow_abbrev=False,
+        help="rebuild the HTML report of an output of suggest, demo or funnel",
         description="Rebuild the self-contained HTML report (figures embedded, no network "
                     "access, prints to PDF) from an output alone, without reading any "
                     "trajectory: the same files give the same bytes. TARGET is a directory "
@@ -882,6 +892,22 @@ class _Undefined:
                 "values are not measurements; check these frames' coordinates and the topology")
 
 
+def _stored_time(t):
+    """A stored time (ps) as the shortest text that reads back as the same single-precision
+    number: 1.6, not 1.600000023841858."""
+    return np.format_float_positional(np.float32(t), unique=True, trim="0")
+
+
+def _refuse_repeated_files(paths):
+    """Refuse a trajectory given twice to ``apply`` (under any spelling of its path)."""
+    for i, a in enumerate(paths):
+        for b in paths[:i]:
+            if Path(a).is_file() and Path(b).is_file() and os.path.samefile(a, b):
+                same = (f"trajectory {a!r} is given twice" if a == b else
+                        f"trajectories {b!r} and {a!r} are the same file")
+                raise InputError(f"{same}; give each trajectory once")
+
+
 def _cmd_apply(args):
     from ..io.atomic import atomic_open, check_output_file
     from ..io.source import Source, stores_time
@@ -892,6 +918,7 @@ def _cmd_apply(args):
                           inputs=args.trajectories + [args.spec, args.topology])
     source = Source(args.topology)
     spec = load_spec(args.spec, topology=source.topology)
+    _refuse_repeated_files(args.trajectories)
     for f in args.trajectories:
         source.add(f, state="all")
 
@@ -912,8 +939,8 @@ def _cmd_apply(args):
             path = source.segments[chunk.segment_index].path
             timed = stores_time(path) and chunk.segment_index not in untimed
             for fr, t, v, mark in zip(chunk.frames, traj.time, values, marks):
-                w.writerow([path.name, int(fr), repr(float(t)) if timed else "", repr(float(v)),
-                            mark])
+                w.writerow([path.name, int(fr), _stored_time(t) if timed else "",
+                            repr(float(v)), mark])
 
     if args.out is None:
         buf = io.StringIO()
@@ -1050,18 +1077,23 @@ def _read_values(path, column=None, traj=None):
 
 def _rows_of_file(name, table, lower, k, traj):
     """The rows of a values table whose 'file' column names trajectory `traj` (all rows
-    when there is no such column or no `traj`); refuses a file that names none of them."""
+    when there is no such column, no `traj`, or the column names one file only: a copy of
+    the trajectory under another name); refuses a file that names several, none of them
+    `traj`."""
     if traj is None or lower is None or "file" not in lower or lower.index("file") == k:
         return table
     j = lower.index("file")
     own = {str(traj), Path(traj).name}
     kept = [(n, cells) for n, cells in table if len(cells) > j and cells[j] in own]
+    present = sorted({cells[j] for _, cells in table if len(cells) > j})
+    if not kept and len(present) <= 1:
+        return table
     if not kept:
-        present = sorted({cells[j] for _, cells in table if len(cells) > j})
         raise InputError(
             f"values file {name!r} has a 'file' column naming "
             f"{', '.join(repr(f) for f in present[:5])}{', ...' if len(present) > 5 else ''}, "
-            f"not trajectory {str(traj)!r}; give the trajectory whose values it holds")
+            f"not trajectory {str(traj)!r}; give the trajectory whose values it holds (one of "
+            "those, by its name)")
     return kept
 
 

@@ -45,9 +45,10 @@ from ..errors import InputError
 from ..geometry import recorded_geometry_warnings
 from ..io.source import Source, describe_selection, select_atoms
 from ..kinds import DEFAULT_KINDS
-from ..passes import (BlockPass, CardPass, FoldMomentsPass, Folds, HistogramPass, LagGridPass,
-                      LaggedPass, PoolFeaturizer, ProjectionRangePass, ScreeningPass, plan_tasks,
-                      reference_features, run_pass)
+from ..passes import (MIN_FRAMES_PER_FOLD, BlockPass, CardPass, FoldMomentsPass, Folds,
+                      HistogramPass, LagGridPass, LaggedPass, PoolFeaturizer,
+                      ProjectionRangePass, ScreeningPass, plan_tasks, reference_features,
+                      run_pass)
 from ..pool import build_pool, needs_prefilter, prefilter_stride_for
 from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
@@ -404,7 +405,7 @@ def _suggest(source, config, executor, progress, checksums):
     screening = screen(pool, source.states, first, priors, objective=config.objective,
                        screen_size=config.screen_size, lagged=lags is not None)
     notes += screening.notes
-    notes.append(_folds_note(folds))
+    notes.append(_folds_note(folds, config.n_folds))
     say(f"statistics pass ({len(screening.screened)} descriptors screened)")
     fm, iat_desc, iat_note, transit = _statistics_pass(
         source, base, pool, screening, folds, priors, steps, lags, lag_ps, seg_counts, config,
@@ -1020,13 +1021,23 @@ def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags, reweig
            "slowness below)")]
 
 
-def _folds_note(folds):
+def _folds_note(folds, asked):
+    """The note on the folds; it says so when fewer than the `asked` ones were possible."""
     if folds.mode == "trajectory":
-        return (f"held-out scoring: {folds.n_folds}-fold cross-validation by whole "
+        note = (f"held-out scoring: {folds.n_folds}-fold cross-validation by whole "
                 "trajectories (each state's files are split among the folds)")
-    return (f"held-out scoring: {folds.n_folds}-fold cross-validation by contiguous blocks of "
-            "each trajectory (a state has a single trajectory, or too few frames per "
-            "trajectory for whole-trajectory folds of at least 10 frames)")
+        why = "a state has no more trajectories than that"
+    else:
+        note = (f"held-out scoring: {folds.n_folds}-fold cross-validation by contiguous blocks "
+                "of each trajectory (a state has a single trajectory, or too few frames per "
+                f"trajectory for whole-trajectory folds of at least {MIN_FRAMES_PER_FOLD} "
+                "frames)")
+        why = (f"no more folds of at least {MIN_FRAMES_PER_FOLD} frames fit in the state with "
+               "the fewest frames")
+    if folds.n_folds < asked:
+        note += (f"; {asked} folds were asked for (--folds, n_folds=), {folds.n_folds} are "
+                 f"used: {why}")
+    return note
 
 
 def _box_notes(pool, diag, min_box):
