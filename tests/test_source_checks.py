@@ -107,6 +107,18 @@ def test_increasing_stored_times_are_kept_and_a_disagreeing_frame_spacing_is_ref
                                          r"time between frames .* is 0.2 ps; .* give its own "
                                          r"spacing, or leave --frame-step-ps out"):
         src.timestep(0)
+    # beside a file that stores no times (DCD), the given spacing is for that one: the XTC
+    # keeps its own, and the notes say so
+    d = tmp_path / "d.dcd"
+    md.load(closed, top=top)[:100].save_dcd(str(d))
+    src = Source(top, timestep=0.2)
+    src.add(a, "runs")
+    src.add(str(d), "runs")
+    assert src.timestep(0) == 0.5 and src.timestep(1) == 0.2
+    assert src.notes == ["trajectory c.xtc stores frames 0.5 ps apart (to within 5.1e-08 ps: its "
+                         "times, up to 149.5 ps, are stored in single precision): it keeps its "
+                         "own spacing; the given time between frames, 0.2 ps, is used for the "
+                         "files that store no times"]
 
 
 # ---------------------------------------------------------------------------- NaN / inf

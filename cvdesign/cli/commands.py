@@ -181,8 +181,9 @@ def _add_suggest_options(p):
                    help="time between trajectory frames in ps, for files that store no times "
                         "(DCD, PDB, ...) and for files whose stored times do not increase "
                         "(all zero, as some writers store), which it then replaces; files "
-                        "with increasing stored times keep their own, and a value that "
-                        "disagrees with them (beyond their single precision) is refused")
+                        "with increasing stored times keep their own (a value that "
+                        "disagrees with them, beyond their single precision, is refused when "
+                        "every file stores times)")
     p.add_argument("--temperature", type=_positive_float, default=None, metavar="K",
                    help="temperature of the biased run in K, for the bias-parameter hints "
                         "stored in each spec (default: 300), and of the biased runs given with "

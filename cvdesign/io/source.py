@@ -1261,12 +1261,21 @@ class Source:
             if given is not None:
                 if abs(given - step) <= res * (1 + 1e-6) + 1e-9 * step:
                     return given
-                raise InputError(
-                    f"trajectory {str(seg.path)!r} {stored}, but the given time between frames "
-                    f"(--frame-step-ps; timestep= in the Python API) is {given:g} ps; a file "
-                    "whose stored times increase keeps them: give its own spacing, or leave "
-                    "--frame-step-ps out (it is for formats without times and for stored "
-                    "times that do not increase)")
+                if not any(not stores_time(other.path) for other in self.segments):
+                    raise InputError(
+                        f"trajectory {str(seg.path)!r} {stored}, but the given time between "
+                        f"frames (--frame-step-ps; timestep= in the Python API) is {given:g} "
+                        "ps; a file whose stored times increase keeps them, and no file here "
+                        "stores no times: give its own spacing, or leave --frame-step-ps out "
+                        "(it is for formats without times and for stored times that do not "
+                        "increase)")
+                # the given spacing is for the files without times (say DCD beside XTC of
+                # another spacing): this file keeps its own, and the notes say so
+                self._time_notes.setdefault(
+                    str(seg.path),
+                    f"trajectory {seg.path.name} {stored}: it keeps its own spacing; the given "
+                    f"time between frames, {given:g} ps, is used for the files that store no "
+                    "times")
             if not res <= TIMESTEP_UNCERTAINTY * step:
                 raise InputError(
                     f"trajectory {str(seg.path)!r} {stored}: the time between its frames is "
