@@ -237,6 +237,30 @@ def test_double_well_runs_with_transitions_give_two_metastable_states(tmp_path):
     assert adjusted_rand_score(truth, pred) > 0.9
 
 
+def test_a_proposal_with_a_single_metastable_state_is_refused(tmp_path, monkeypatch):
+    # A single broad well split by k-means into six states, of which a 4 % corner passed
+    # the metastability test by noise, had been proposed as six states (with CVs designed
+    # to separate them). One metastable state is no pair of basins: refused. Here the
+    # double well's second state is made to fail the test, whatever the data say.
+    import cvdesign.pipeline.explore as explore
+
+    real = explore._KineticSums.kinetics
+
+    def first_only(self, states, lag_ps=None):
+        kin = real(self, states, lag_ps=lag_ps)
+        kin.metastable = np.arange(len(states)) == 0
+        kin.reasons = ["" if m else "made to fail here" for m in kin.metastable]
+        return kin
+    monkeypatch.setattr(explore._KineticSums, "kinetics", first_only)
+    xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
+    top, paths = _write_walkers(tmp_path, xs, seed=2)
+    with pytest.raises(InputError, match=r"only one of the \d proposed states is metastable at "
+                                         r"lag 1 ps \(S1, population .*\); the others are not: "
+                                         r"S2: made to fail here.*Separating states needs two "
+                                         r"metastable ones"):
+        propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+
+
 @pytest.mark.parametrize("walk", ["flat", "ar1"])
 def test_random_walk_runs_are_refused_as_not_metastable(tmp_path, walk):
     if walk == "flat":

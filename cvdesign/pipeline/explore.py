@@ -1037,9 +1037,29 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
             f"lag-time transition counts: {kin.counts_text()}. Use longer runs (that cross "
             "between the states), try another --lag, or give the states yourself with --state "
             "NAME FILE ... (for instance when each run was started in a known state)")
+    if n_states is None and int(kin.metastable.sum()) < 2:
+        # one metastable state among others that are not is no pair of basins to separate:
+        # a single well split by k-means (a 4 % corner passing the test by noise) had
+        # given six states and CVs designed to separate them
+        meta = [s for i, s in enumerate(states) if kin.metastable[i]]
+        raise InputError(
+            f"only one of the {len(states)} proposed states is metastable at lag {lag:g} ps "
+            f"({meta[0]}, population {kin.populations[states.index(meta[0])]:.2f}); the "
+            "others are not: "
+            + "; ".join(f"{s}: {kin.reasons[i]}" for i, s in enumerate(states)
+                        if not kin.metastable[i])
+            + ". Separating states needs two metastable ones: the runs may sample a single "
+            "state at this lag. Use longer runs (that cross between the states), try another "
+            "--lag, or give the states yourself with --state NAME FILE ... (or --n-states N "
+            "to take a clustering as it is)")
     warnings = [f"state {s} is not metastable at lag {lag:g} ps: {kin.reasons[i]}; treat it "
                 "with caution (longer runs or another --lag may settle it)"
                 for i, s in enumerate(states) if not kin.metastable[i]]
+    share = float(np.sum(kin.populations[kin.metastable]))
+    if share < 0.5:
+        warnings.append(f"the metastable states hold only {share:.0%} of the frames: most of "
+                        "the runs are in states that are not; the proposal may split a single "
+                        "broad state (longer runs or another --lag may settle it)")
     note(f"{len(states)} states proposed; staying probabilities at {lag:g} ps: "
          + ", ".join(f"{s} {kin.staying[i]:.3f}" for i, s in enumerate(states)))
     c = fit["column"]
