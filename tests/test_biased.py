@@ -1143,7 +1143,7 @@ def test_a_biased_group_of_small_effective_size_beside_unbiased_runs_is_warned_a
     for bias, warned in ((v, True), (np.zeros(10_000), False)):
         seg = Segment(Path("biased.xtc"), "a", bias=bias, bias_path=Path("biased.bias"))
         rw = reweight([seg, plain], ["a"], 300.0, count_frames=lambda path: 2_000)
-        (nb, eb), _ = rw.groups[0]["biased"], rw.groups[0]["unbiased"]
+        (_, eb), _ = rw.groups[0]["biased"], rw.groups[0]["unbiased"]
         assert rw.ess[0] > 2_000  # the combined size alone would not warn
         _, warnings = rw.describe()
         if not warned:
@@ -1195,9 +1195,10 @@ def test_a_bias_file_whose_times_are_shifted_by_a_frame_is_refused_when_given(tm
 
 
 def test_suggest_refuses_a_bias_file_whose_times_differ_from_the_trajectory_mid_run(tmp_path):
-    """The first two frames agree, frame 150 does not (a row dropped and one repeated): the
-    even-spacing pass of suggest, which reads every frame's stored time anyway, refuses it
-    naming frame 150 and both times; the matching file gives the same ranking as no times."""
+    """The first two frames and the last agree (those Source.add compares), frames 150 to
+    299 do not (a row dropped there and one repeated later): the even-spacing pass of
+    suggest, which reads every frame's stored time anyway, refuses it naming frame 150 and
+    both times; the matching file gives the same ranking as no times."""
     well = DoubleWell()
     x = well.samples(1_200, biased=True, seed=8).reshape(2, 600)
     pdb, trajs, biases = write_well_runs(tmp_path, x, frame_step_ps=1.0, well=well)
@@ -1214,7 +1215,7 @@ def test_suggest_refuses_a_bias_file_whose_times_differ_from_the_trajectory_mid_
 
     t = np.arange(600, dtype=np.float64)
     bad = t.copy()
-    bad[150:] -= 1.0  # row 149 dropped, the last row repeated
+    bad[150:300] -= 1.0  # row 149 dropped, row 299 repeated
     with pytest.raises(InputError, match=r"bias-energy file '.*timed\.bias' and trajectory "
                                          r"'.*run-1\.xtc' disagree on the time of frame 150: "
                                          r".* says 149 ps in column 'time_ps', the trajectory "

@@ -491,12 +491,12 @@ class DyingDistances:
     def __init__(self, inner):
         self.inner = inner
 
-    def __call__(self, sub, periodic):
+    def blocks(self, sub, periodic):
         calls = int(os.environ.get("CVDESIGN_TEST_CALLS", "0")) + 1
         os.environ["CVDESIGN_TEST_CALLS"] = str(calls)
         if calls >= 2:
             os._exit(3)
-        return self.inner(sub, periodic)
+        return self.inner.blocks(sub, periodic)
 
 
 def _prefilter_inputs(src):
@@ -516,13 +516,15 @@ def test_the_prefilter_gives_the_same_means_and_pool_on_every_executor(
         for f in files[:3]:
             src.add(f, name, frames=frames)
     atoms, values, n = _prefilter_inputs(src)
-    ref, used = _strided_state_means(src, atoms, values, n, 10)
+    ref, ref_var, used = _strided_state_means(src, atoms, values, n, 10)
     pool = build_pool(src)
     with ProcessExecutor(2) as ex:
         executors = [ex, DaskExecutor(dask_threads), shuffled_executor(3)]
         for other in executors:
-            got, got_used = _strided_state_means(src, atoms, values, n, 10, executor=other)
+            got, got_var, got_used = _strided_state_means(src, atoms, values, n, 10,
+                                                          executor=other)
             assert got.tobytes() == ref.tobytes() and got_used == used
+            assert got_var.tobytes() == ref_var.tobytes()
             other_pool = build_pool(src, executor=other)
             assert other_pool.descriptors == pool.descriptors and other_pool.notes == pool.notes
     # the reference itself: the mean over every 10th frame of each state in each file
@@ -531,8 +533,10 @@ def test_the_prefilter_gives_the_same_means_and_pool_on_every_executor(
     for files in demo_files[1].values():
         traj = md.join([md.load(f, top=top, atom_indices=atoms)[start:400:10]
                         for f in files[:3]])
-        direct.append(values(traj, False).mean(axis=0))
-    np.testing.assert_allclose(ref, np.array(direct), rtol=1e-6)
+        d = md.compute_distances(traj, values.local, periodic=False).astype(np.float64)
+        direct.append((d.mean(axis=0), d.var(axis=0)))
+    np.testing.assert_allclose(ref, np.array([m for m, _ in direct]), rtol=1e-6)
+    np.testing.assert_allclose(ref_var, np.array([v for _, v in direct]), rtol=1e-4, atol=1e-9)
     assert used == 6 * len(range(start, 400, 10))
 
 
@@ -552,8 +556,8 @@ class Exponential:
     """Prefilter values ``exp(50 x)`` of the first atom's x (nm): sums of very unequal
     terms, whose bits depend on the order they are added in."""
 
-    def __call__(self, sub, periodic):
-        return np.exp(50.0 * sub.xyz[:, 0, :1].astype(np.float64))
+    def blocks(self, sub, periodic):
+        yield 0, np.exp(50.0 * sub.xyz[:, 0, :1].astype(np.float64))
 
 
 def test_the_prefilter_adds_the_files_in_their_order_whatever_order_they_arrive_in(
@@ -574,11 +578,11 @@ def test_the_prefilter_adds_the_files_in_their_order_whatever_order_they_arrive_
         traj.save_dcd(str(paths[-1]))
     src = Source.from_states(str(tmp_path / "top.pdb"), {"a": paths}, chunk_size=8)
     atoms = np.array([0, 1])
-    ref, _ = _strided_state_means(src, atoms, Exponential(), 1, 2)
+    ref, _, _ = _strided_state_means(src, atoms, Exponential(), 1, 2)
     in_order = [float(np.exp(50.0 * np.float64(np.float32(x)))) * 20 for x in (0.75, 0.0, 0.0)]
     seed = next(s for s in range(100)
                 if np.random.default_rng(s).permutation(3).tolist() == [1, 2, 0])
-    got, _ = _strided_state_means(src, atoms, Exponential(), 1, 2,
+    got, _, _ = _strided_state_means(src, atoms, Exponential(), 1, 2,
                                   executor=shuffled_executor(seed))
     assert got.tobytes() == ref.tobytes()
     # the order matters for these sums: added as they arrived, they would differ

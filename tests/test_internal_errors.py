@@ -1,10 +1,11 @@
 """What the command line does with failures that are not the user's input: an unexpected
 exception is said as a defect of cvdesign (exit status 3, nothing written, no traceback
-unless -v), and a biased run whose rescaled length overflows no longer crashes the JSON
-writer."""
+unless -v), a biased run whose rescaled length overflows is refused (it crashed the JSON
+writer), and a state whose weight sits on one frame is refused naming that cause."""
+
+import re
 
 import mdtraj as md
-
 
 from cvdesign.cli import main
 from cvdesign.cli.commands import INTERNAL_ERROR_STATUS
@@ -38,12 +39,13 @@ def test_an_unexpected_exception_is_said_as_a_defect_with_status_3(demo_files, t
     assert "Traceback (most recent call last)" in err and "internal error" in err
 
 
-def test_a_rescaled_run_length_that_overflows_is_a_warning_not_a_crash(demo_files, tmp_path,
-                                                                        capsys):
+def test_a_rescaled_run_length_that_overflows_is_refused_not_a_crash(demo_files, tmp_path,
+                                                                     capsys):
     # A biased run of bias energies 2000 kJ/mol (about 800 kT at 300 K: a wrong unit?)
     # beside an unbiased one in its state: its rescaled length exp(V/kT) overflowed to inf,
     # and writing the ranking stopped with "Out of range float values are not JSON
-    # compliant" and a traceback.
+    # compliant" and a traceback. Now the clock's overflow is refused for every biased run,
+    # naming the file and the frame.
     top, states = demo_files
     argv = ["suggest", "--topology", top, "--out", str(tmp_path / "out"), "--bootstrap", "0",
             "--suggestions", "1", "--max-terms", "1", "--no-report"]
@@ -59,11 +61,11 @@ def test_a_rescaled_run_length_that_overflows_is_a_warning_not_a_crash(demo_file
     bias.write_text("2000.0\n" * 200)
     out = tmp_path / "out"
     argv += ["--bias-energy", biased, str(bias), "--temperature", "300"]
-    assert main(argv) == 0
+    assert main(argv) == 2
     err = capsys.readouterr().err
-    assert "warning: the rescaled length of a biased run overflows" in err
-    ranking = (out / "ranking.json").read_text()
-    assert '"longest_run_ps": null' in ranking and "Infinity" not in ranking
+    assert re.search(r"error: the rescaled time of trajectory '.*closed-0\.xtc' overflows at "
+                     r"frame 0 \(exp\(V/kT\) of its bias there is not finite", err), err
+    assert "Traceback" not in err and not out.exists()
 
 
 def test_a_state_whose_weight_sits_on_one_frame_is_refused_naming_the_bias(demo_files,

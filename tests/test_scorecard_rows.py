@@ -78,7 +78,7 @@ def chain(tmp_path_factory):
             traj.save_xtc(str(path))
             trajs[state].append(md.load(str(path), top=top))  # as stored (xtc precision)
             src.add(str(path), state)
-    result = suggest(src, lag=2.0, n_bootstrap=10, max_terms=2, n_suggestions=2)
+    result = suggest(src, lag=2.0, n_bootstrap=20, max_terms=2, n_suggestions=2)
     return result, trajs
 
 

@@ -880,7 +880,9 @@ class Source:
         if times is not None and stores_time(path):  # the first two frames: cheap, at once
             stored = self._stored_step(path)
             if stored is not None and stored[1] > stored[0]:  # (else: no real stored times)
-                times.check(path, np.array([0, 1]), np.array(stored))
+                t0, t1, k, tk = stored  # frames 0, 1 and the last (k), read anyway
+                frames = [0, 1] + ([k] if k > 1 else [])
+                times.check(path, np.array(frames), np.array([t0, t1, tk][:len(frames)]))
         return energies, Path(bias), None if column is None else str(column), clock, times
 
     @property

@@ -32,7 +32,7 @@ from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
 from ..geometry import group_centers, minimum_image
 from ..kinds import DEFAULT_KINDS, GROUP_KINDS, KINDS
-from ..score.univariate import fisher_ratio
+from ..stats.separation import fisher_ratio
 from .descriptors import Descriptor, _make, _residue_labels, atom_labels
 from .features import Pool
 
