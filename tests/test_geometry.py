@@ -15,6 +15,8 @@ from cvdesign.geometry import (
     center_distance,
     coordination,
     dihedrals,
+    group_centers,
+    whole_groups,
     distances,
     minimum_image,
     switching_function,
@@ -734,3 +736,44 @@ def test_group_functions_reject_non_finite_coordinates_of_group_atoms():
     with pytest.raises(InputError, match=r"xyz has NaN or infinite coordinates in frame 1, atom 3 \(used by group_b\[1\]\)"):
         coordination(xyz, [0], [1, 3], 0.3)
     assert np.isfinite(center_distance(xyz, [0], [1, 2])).all()
+
+
+def _chain_across(n_atoms, step, box_length, seed):
+    """A straight chain of `n_atoms` atoms `step` nm apart along x, jittered, wrapped into
+    a cubic box of `box_length` nm (2 frames)."""
+    rng = np.random.default_rng(seed)
+    x = np.zeros((2, n_atoms, 3))
+    x[:, :, 0] = 0.1 + step * np.arange(n_atoms)
+    x += 0.01 * rng.standard_normal(x.shape)
+    return np.mod(x, box_length)
+
+
+def test_a_group_spanning_more_than_half_the_box_is_warned_about_and_its_values_kept():
+    box = [2.0, 2.0, 2.0]
+    # a straight chain reaching 1.76 nm: made whole, it comes back cut near x = 1.1 nm, every
+    # atom within 1 nm of atom 0 but spread over the whole cell
+    wide = _chain_across(12, 0.16, 2.0, seed=1)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        centers = group_centers(wide, [[0, 1], list(range(12))], box)
+        whole_groups(wide, [list(range(12))], box)
+        center_distance(wide, [0], list(range(12)), box)
+    texts = [str(w.message) for w in caught if issubclass(w.category, GeometryWarning)]
+    assert texts[0].startswith("groups[1] (atoms 0, 1, ..., 11): made whole about its first "
+                               "atom, the group comes back cut in some frames")
+    assert len(texts) == 3 and texts[1].startswith("groups[0] (atoms 0, 1, ..., 11)")
+    assert texts[2].startswith("group_b (atoms 0, 1, ..., 11)")
+    assert not any("groups[0] (atoms 0, 1)" in t for t in texts)  # the compact group is fine
+    # the values are those computed without the check: atoms at their minimum image
+    # from atom 0, averaged
+    shift = wide - wide[:, :1]
+    shift -= 2.0 * np.round(shift / 2.0)
+    np.testing.assert_allclose(centers[:, 1], (wide[:, :1] + shift).mean(axis=1), atol=1e-12)
+
+
+def test_a_compact_group_split_by_the_boundary_gives_no_warning():
+    split = _chain_across(6, 0.15, 2.0, seed=2)
+    split[:, :, 0] = np.mod(split[:, :, 0] + 1.6, 2.0)  # the chain crosses x = 2 nm
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", GeometryWarning)
+        group_centers(split, [list(range(6))], [2.0, 2.0, 2.0])

@@ -19,7 +19,7 @@ import pytest
 from cvdesign import Source, Spec, suggest
 from cvdesign.cli import build_parser
 from cvdesign.errors import InputError
-from cvdesign.geometry import center_distance
+from cvdesign.geometry import GeometryWarning, center_distance
 from cvdesign.pool import (Descriptor, Pool, build_pool, candidate_pool, prefilter_group_pairs,
                            residue_groups)
 
@@ -273,3 +273,21 @@ def test_adk_residue_level_suggestions_join_domains_and_their_specs_evaluate_the
     card = res.scorecard_csv().splitlines()
     first = res.scorecard[0]
     assert " / ".join(" ".join(map(str, g)) for g in first["groups"]) in card[1]
+
+
+def test_pool_features_warn_about_a_residue_wider_than_half_the_box_naming_the_residue():
+    top = md.Topology()
+    chain = top.add_chain()
+    for k in range(2):
+        res = top.add_residue("RES", chain, resSeq=k + 1)
+        for i in range(4):
+            top.add_atom(f"C{i}", md.element.carbon, res)
+    xyz = np.full((3, 8, 3), 1.0, dtype=np.float32)
+    xyz[:, :4, 0] = [0.1, 0.5, 0.9, 1.3]  # RES1 spans 1.2 nm of a 2 nm box
+    xyz[:, 4:, 0] = [1.0, 1.1, 1.2, 1.3]
+    traj = md.Trajectory(xyz, top, unitcell_lengths=np.full((3, 3), 2.0),
+                         unitcell_angles=np.full((3, 3), 90.0))
+    pool = candidate_pool(top, range(8), kinds=("center_distance",))
+    with pytest.warns(GeometryWarning, match=r"^the group of RES1 \(atoms 0\.\.3\): made whole "
+                      r"about its first atom, the group comes back cut in some frames"):
+        pool.features(traj)

@@ -4,6 +4,7 @@ import copy
 import json
 import math
 import re
+import warnings
 from pathlib import Path
 
 import jsonschema
@@ -12,6 +13,7 @@ import numpy as np
 import pytest
 
 from cvdesign.errors import InputError, SpecError, TopologyMismatchError
+from cvdesign.geometry import GeometryWarning
 from cvdesign.spec import Spec, atom_identity, load_spec, residue_hashes, spec_schema, topology_fingerprint
 
 # --------------------------------------------------------------------------
@@ -897,3 +899,18 @@ def test_docs_describe_every_schema_field_and_their_example_loads():
     x = 0.4 / 0.3
     expected = 2.0 - (0.5 + (1 - x**6) / (1 - x**12) - 1.0)
     np.testing.assert_allclose(spec.evaluate(xyz), [expected], rtol=1e-13)
+
+
+def test_the_evaluator_warns_about_a_group_wider_than_half_the_box_naming_it():
+    spec = make_group_spec()
+    rng = np.random.default_rng(5)
+    xyz = 1.0 + 0.03 * rng.standard_normal((2, spec.n_atoms, 3))
+    xyz[:, [0, 1, 2, 3], 0] = [0.1, 0.5, 0.9, 1.3]  # group a spans 1.2 nm of a 2 nm box
+    box = [2.0, 2.0, 2.0]
+    with pytest.warns(GeometryWarning, match=r"^group_a \(atoms 0, 1, 2, 3\): made whole about "
+                      r"its first atom, the group comes back cut in some frames"):
+        spec.evaluate(xyz, box=box)
+    xyz[:, [0, 1, 2, 3], 0] = [0.1, 0.3, 0.5, 0.7]  # 0.6 nm: no warning
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", GeometryWarning)
+        spec.evaluate(xyz, box=box)

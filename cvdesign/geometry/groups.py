@@ -5,10 +5,12 @@ group's first atom; :func:`group_centers`, :func:`center_displacement`,
 :func:`center_distance` and :func:`whole_groups` all use those images.
 """
 
+import warnings
+
 import numpy as np
 
 from ..errors import InputError
-from ._checks import _TINY_LENGTH, _check_group, _check_xyz, _group_points, _norm, _warn_gradient
+from ._checks import GeometryWarning, _TINY_LENGTH, _check_group, _check_xyz, _group_points, _norm, _warn_gradient
 from .box import _apply_minimum_image, _parse_box
 
 __all__ = ["group_centers", "center_displacement", "whole_groups", "center_distance"]
@@ -29,18 +31,61 @@ def _check_weights(weights, size, name, group_name):
     return arr / arr.sum()
 
 
-def _make_whole(points, kind, parsed):
+def _make_whole(points, kind, parsed, name="group"):
     """(n_frames, n_group, 3) points with the group made whole about its first atom
-    (each atom at its minimum image from it)."""
-    return points[:, :1, :] + _apply_minimum_image(points - points[:, :1, :], kind, parsed)
+    (each atom at its minimum image from it); warns when the group comes back cut
+    (:func:`_warn_cut`)."""
+    shift = _apply_minimum_image(points - points[:, :1, :], kind, parsed)
+    if kind is not None and points.shape[1] > 1:
+        _warn_cut(shift, kind, parsed, name)
+    return points[:, :1, :] + shift
 
 
-def _whole_center(points, weights, kind, parsed):
+#: How much shorter (nm) than its separation in a group made whole a pair's minimum image
+#: must be for the group to count as cut (rounding stays far below it).
+_CUT_TOLERANCE_NM = 1e-6
+
+
+def _warn_cut(shift, kind, parsed, name):
+    """Warn (:class:`GeometryWarning`) when a group made whole is cut in some frame: two
+    consecutive atoms of the group (in its order) lie farther apart in it than their
+    nearest periodic images.
+
+    Making a group whole about its first atom is exact when every atom lies within half
+    the smallest box height of that atom. A group reaching farther across the box comes
+    back cut: an atom past the boundary of the first atom's cell lands on the opposite
+    face, far from its neighbours, and the center may be off. In a compact group every
+    separation is its own minimum image, so this never fires for one; groups listed in
+    bonded order (a residue's atoms) show a cut between the consecutive atoms that
+    straddle it. Cost: one minimum image per atom and frame. Values are not changed."""
+    gaps = shift[:, 1:, :] - shift[:, :-1, :]
+    nearest = _apply_minimum_image(gaps, kind, parsed)
+    cut = (np.einsum("fak,fak->fa", gaps, gaps)
+           > (np.sqrt(np.einsum("fak,fak->fa", nearest, nearest)) + _CUT_TOLERANCE_NM) ** 2)
+    if np.any(cut):
+        # one text per group (no frame numbers or lengths): Python shows a repeated
+        # warning once, not once per chunk of a long run
+        warnings.warn(
+            f"{name}: made whole about its first atom, the group comes back cut in some "
+            "frames (two consecutive atoms of it lie farther apart than their nearest "
+            "periodic images): it reaches across more than half the smallest box height, "
+            "and its center may be off. Use a smaller group (e.g. fewer atoms of a long "
+            "residue) or a larger box", GeometryWarning, stacklevel=4)
+
+
+def _group_name(label, group):
+    """``"groups[2] (atoms 4, 5, ..., 19)"``: a group named by its argument and atoms."""
+    g = [int(a) for a in group]
+    atoms = ", ".join(map(str, g)) if len(g) <= 4 else f"{g[0]}, {g[1]}, ..., {g[-1]}"
+    return f"{label} (atoms {atoms})"
+
+
+def _whole_center(points, weights, kind, parsed, name="group"):
     """Weighted center of (n_frames, n_group, 3) points, the group made whole first."""
-    return np.einsum("fak,a->fk", _make_whole(points, kind, parsed), weights)
+    return np.einsum("fak,a->fk", _make_whole(points, kind, parsed, name), weights)
 
 
-def group_centers(xyz, groups, box=None, *, masses=None):
+def group_centers(xyz, groups, box=None, *, masses=None, names=None):
     """Center of each atom group per frame, each group made whole first, nm.
 
     The centers are those :func:`center_distance` and :func:`center_displacement`
@@ -58,11 +103,21 @@ def group_centers(xyz, groups, box=None, *, masses=None):
     masses : sequence of (array-like or None), optional
         Per group, the atom masses in dalton, or None for a geometric
         center; None: all geometric.
+    names : sequence of str, optional
+        Per group, how a warning names it; None: ``groups[k]`` and its atoms.
 
     Returns
     -------
     ndarray of shape (n_frames, n_groups, 3)
         nm. Centers are not wrapped into the box.
+
+    Warns
+    -----
+    GeometryWarning
+        When a group, made whole, comes back cut (two consecutive atoms of it
+        farther apart than their nearest periodic images: the group reaches
+        across more than half the box): its center may be off. The values
+        are those computed as usual.
 
     Examples
     --------
@@ -84,7 +139,8 @@ def group_centers(xyz, groups, box=None, *, masses=None):
         g = _check_group(group, n_atoms, f"groups[{k}]")
         weights = _check_weights(w, len(g), f"masses[{k}]", f"groups[{k}]")
         (points,) = _group_points(xyz, (g,), (f"groups[{k}]",))
-        out[:, k, :] = _whole_center(points, weights, kind, parsed)
+        name = names[k] if names is not None else _group_name(f"groups[{k}]", g)
+        out[:, k, :] = _whole_center(points, weights, kind, parsed, name)
     return out
 
 
@@ -130,7 +186,8 @@ def center_displacement(xyz, group_a, group_b, box=None, *, masses_a=None, masse
     pa, pb = _group_points(xyz, (ga, gb), ("group_a", "group_b"))
 
     delta = _apply_minimum_image(
-        (_whole_center(pb, wb, kind, parsed) - _whole_center(pa, wa, kind, parsed))[:, None, :],
+        (_whole_center(pb, wb, kind, parsed, _group_name("group_b", gb))
+         - _whole_center(pa, wa, kind, parsed, _group_name("group_a", ga)))[:, None, :],
         kind, parsed)[:, 0, :]
     return delta, wa, wb
 
@@ -180,7 +237,7 @@ def whole_groups(xyz, groups, box=None):
     for k, group in enumerate(groups):
         g = _check_group(group, n_atoms, f"groups[{k}]")
         (points,) = _group_points(xyz, (g,), (f"groups[{k}]",))
-        out.append(_make_whole(points, kind, parsed))
+        out.append(_make_whole(points, kind, parsed, _group_name(f"groups[{k}]", g)))
     return out
 
 

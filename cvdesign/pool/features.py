@@ -19,6 +19,7 @@ from ..errors import InputError
 from ..geometry import coordination_pairs, distances as _pair_distances, group_centers
 from ..geometry import GeometryWarning, minimum_image, switching_function
 from ..kinds import GROUP_KINDS, KINDS
+from .descriptors import _residue_labels, _runs
 
 __all__ = ["Pool"]
 
@@ -340,6 +341,22 @@ class Pool:
             out.append(self._masses[a])
         return None if any(m is None for m in out) else out
 
+    def _group_label(self, group):
+        """How a warning names a group: its residues' labels and its atoms (0-based)."""
+        cache = self.__dict__.setdefault("_group_label_cache", {})
+        if group not in cache:
+            cache[group] = self._describe_group(group)
+        return cache[group]
+
+    def _describe_group(self, group):
+        names = {}
+        for a in group:
+            r = self.topology.atom(int(a)).residue
+            names.setdefault(r.index, r)
+        res = ", ".join(_residue_labels(self.topology, list(names.values())[:3]))
+        more = ", ..." if len(names) > 3 else ""
+        return f"the group of {res}{more} (atoms {_runs(group)})"
+
     def weighting(self, descriptor):
         """``'mass'`` when both groups of a center distance have masses, else
         ``'geometric'`` (the spec's ``weighting``)."""
@@ -364,7 +381,8 @@ class Pool:
             where = {k: i for i, k in enumerate(unique)}
             centers = group_centers(xyz, [local(np.asarray(g)) for g, _ in unique], box,
                                     masses=[self.group_masses(g) if w else None
-                                            for g, w in unique])
+                                            for g, w in unique],
+                                    names=[self._group_label(g) for g, _ in unique])
             a = np.array([where[k[0]] for k in keys], dtype=np.intp)
             b = np.array([where[k[1]] for k in keys], dtype=np.intp)
             delta = minimum_image(centers[:, b, :] - centers[:, a, :], box)
