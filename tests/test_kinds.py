@@ -51,7 +51,7 @@ def test_pool_descriptors_take_their_properties_from_the_registry():
         else:
             d = Descriptor(name, tuple(range(kind.n_atoms)), "x")
         assert (d.periodic, d.transforms, d.unit) == (kind.periodic, kind.features, kind.unit)
-    with pytest.raises(InputError, match="a angle takes 3 atoms; got 2"):
+    with pytest.raises(InputError, match="an angle takes 3 atoms; got 2"):
         Descriptor("angle", (0, 1), "x")
 
 

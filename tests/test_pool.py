@@ -332,3 +332,200 @@ def test_quiet_suggest_keeps_undefined_geometry_in_the_summary(tmp_path, capsys)
     assert "undefined" not in capsys.readouterr().err
     summary = (tmp_path / "out" / "summary.md").read_text()
     assert "- input frames: angle descriptor of atoms [0, 1, 2] (and any other" in summary
+
+
+# ---------------------------------------------------------------- review of the pool
+
+
+def _loose_atoms(n, *, per_residue=False, name="C", element=md.element.carbon, resname="X"):
+    """`n` unbonded atoms, in one residue or (`per_residue`) one residue each."""
+    top = md.Topology()
+    ch = top.add_chain()
+    res = None
+    for i in range(n):
+        if res is None or per_residue:
+            res = top.add_residue(resname, ch, i + 1)
+        top.add_atom(name, element, res)
+    return top
+
+
+def test_a_selection_of_too_many_atom_pairs_is_refused_naming_atoms_pairs_and_remedies():
+    from cvdesign.pool import MAX_PAIRS, check_pair_count
+
+    assert MAX_PAIRS == 2_000_000
+    check_pair_count(2000)  # 1,999,000 pairs: accepted
+    top = _loose_atoms(2001)
+    with pytest.raises(InputError, match=r"holds 2001 atoms, which make 2,001,000 pairs for "
+                       r"distances, more than the 2,000,000 .*--select .*'name CA' or "
+                       r"'backbone'.*--kinds center_distance,coordination"):
+        candidate_pairs(top, range(2001))
+    with pytest.raises(InputError, match=r"holds 2001 atoms"):
+        candidate_pool(top, range(2001), kinds=("distance",))
+
+
+def test_a_selection_of_too_many_residue_pairs_is_refused_for_the_group_kinds():
+    top = _loose_atoms(2001, per_residue=True)
+    with pytest.raises(InputError, match=r"spans 2001 residues, which make 2,001,000 residue "
+                       r"pairs .*narrow it with --select"):
+        candidate_pool(top, range(2001), kinds=("coordination",))
+
+
+def test_build_pool_refuses_a_crowded_default_selection_before_reading_and_names_the_solvent(
+        tmp_path):
+    from cvdesign import Source
+    from cvdesign.pool import build_pool
+
+    # 2100 one-carbon 'MOH' residues (a made-up solvent): 2100 atoms by default
+    top = _loose_atoms(2100, per_residue=True, resname="MOH")
+    rng = np.random.default_rng(3)
+    traj = md.Trajectory(rng.uniform(0, 5, (2, 2100, 3)).astype(np.float32), top)
+    traj.save_pdb(str(tmp_path / "top.pdb"))
+    for state in ("a", "b"):
+        traj.save_dcd(str(tmp_path / f"{state}.dcd"))
+    src = Source.from_states(str(tmp_path / "top.pdb"), {"a": [str(tmp_path / "a.dcd")],
+                                                        "b": [str(tmp_path / "b.dcd")]})
+    with pytest.raises(InputError, match=r"holds 2100 atoms, which make 2,203,950 pairs.*"
+                       r"Note: the default selection holds 2100 copies of residue MOH .*"
+                       r"'not resname MOH and not element H'"):
+        build_pool(src)
+
+
+def _solvated():
+    """A bonded 4-carbon solute 'LIG' (with one hydrogen), then waters of several models
+    and names, one-atom ions, and 21 methanol-like 'MOH' residues."""
+    top = md.Topology()
+    ch = top.add_chain()
+    lig = top.add_residue("LIG", ch, 1)
+    c = [top.add_atom(f"C{i}", md.element.carbon, lig) for i in range(4)]
+    for a, b in zip(c, c[1:]):
+        top.add_bond(a, b)
+    top.add_bond(c[0], top.add_atom("H1", md.element.hydrogen, lig))
+    n = 2
+    for name in ("SPC", "TP3", "OPC", "HOH"):  # names (HOH: mdtraj's own list)
+        w = top.add_residue(name, ch, n)
+        n += 1
+        for atom, el in (("OW", "O"), ("HW1", "H"), ("HW2", "H")):
+            top.add_atom(atom, md.element.get_by_symbol(el), w)
+    w = top.add_residue("QQQ", ch, n)  # a four-site water by composition (virtual site)
+    n += 1
+    for atom, el in (("OW", md.element.oxygen), ("HW1", md.element.hydrogen),
+                     ("HW2", md.element.hydrogen), ("MW", None)):
+        top.add_atom(atom, el, w)
+    w = top.add_residue("XOX", ch, n)  # an unknown name, water by composition
+    n += 1
+    top.add_atom("O", md.element.oxygen, w)
+    # calcium as a reader may see it (atom 'CA' guessed as carbon), and a sodium by element
+    top.add_atom("CA", md.element.carbon, top.add_residue("CA", ch, n))
+    top.add_atom("NA1", md.element.sodium, top.add_residue("ION", ch, n + 1))
+    for k in range(21):
+        r = top.add_residue("MOH", ch, n + 2 + k)
+        o = top.add_atom("O1", md.element.oxygen, r)
+        top.add_bond(top.add_atom("C1", md.element.carbon, r), o)
+    return top
+
+
+def test_default_selection_leaves_out_water_by_name_and_composition_and_ions_and_says_so():
+    from cvdesign.io.source import describe_selection
+
+    top = _solvated()
+    atoms = select_atoms(top)
+    kept = sorted({top.atom(int(a)).residue.name for a in atoms})
+    assert kept == ["LIG", "MOH"]  # the methanol-like residues stay (with a warning)
+    assert atoms.size == 4 + 2 * 21
+    text = describe_selection(top, atoms)
+    assert text.endswith("; left out: 6 water residues (HOH, OPC, QQQ, SPC, TP3, XOX), "
+                         "2 ion residues (CA, ION), 1 hydrogens")
+
+
+def test_a_residue_name_with_more_than_20_copies_in_the_default_selection_is_warned_about():
+    from cvdesign.io.source import default_selection_warnings
+
+    top = _solvated()
+    (warning,) = default_selection_warnings(top)
+    assert warning.startswith("warning: the default selection holds 21 copies of residue MOH "
+                              "(42 atoms)")
+    assert "'not resname MOH and not element H'" in warning
+    # 20 copies, or residues bonded into a chain (a polymer), give no warning
+    twenty = md.Topology()
+    ch = twenty.add_chain()
+    for k in range(20):
+        twenty.add_atom("C1", md.element.carbon, twenty.add_residue("MOH", ch, k + 1))
+    assert default_selection_warnings(twenty) == []
+    chain = _loose_atoms(30, per_residue=True, resname="UNK")
+    atoms = list(chain.atoms)
+    for a, b in zip(atoms, atoms[1:]):
+        chain.add_bond(a, b)
+    assert default_selection_warnings(chain) == []
+
+
+def test_the_no_bond_note_tells_a_bondless_topology_from_a_selection_without_bonds():
+    top = _topology(4, [(0, 1), (1, 2), (2, 3)])
+    pool = candidate_pool(top, [0, 2], kinds=("distance", "angle", "dihedral"))
+    (note,) = [n for n in pool.notes if n.startswith("angles and dihedrals")]
+    assert "none of the topology's 3 bonds joins two selected atoms" in note
+    assert "give a topology with bonds" not in note
+    bare = candidate_pool(_topology(4, []), range(4))
+    (note,) = [n for n in bare.notes if n.startswith("angles and dihedrals")]
+    assert "the topology has no bonds" in note and "give a topology with bonds" in note
+
+
+def test_one_atom_residues_get_no_center_distance_beside_their_atom_distance():
+    top = _loose_atoms(3, per_residue=True, resname="LIG")
+    both = candidate_pool(top, range(3), kinds=("distance", "center_distance", "coordination"))
+    kinds = [d.kind for d in both.descriptors]
+    assert kinds.count("distance") == 3 and kinds.count("coordination") == 3
+    assert "center_distance" not in kinds
+    assert ("center distances: 3 pairs of one-atom residues left out (the same as the atom "
+            "distances in the pool)") in both.notes
+    # without the atom distances, the center distances stay
+    alone = candidate_pool(top, range(3), kinds=("center_distance",))
+    assert [d.kind for d in alone.descriptors] == ["center_distance"] * 3
+    # groups of two atoms are not the atom distance: kept beside it
+    top2 = md.Topology()
+    ch = top2.add_chain()
+    for k in range(2):
+        r = top2.add_residue("LIG", ch, k + 1)
+        top2.add_atom("C1", md.element.carbon, r)
+        top2.add_atom("C2", md.element.carbon, r)
+    pool2 = candidate_pool(top2, range(4), kinds=("distance", "center_distance"))
+    assert [d.kind for d in pool2.descriptors].count("center_distance") == 1
+
+
+@pytest.mark.parametrize("kind, atoms, why", [
+    ("distance", (3, 3), r"an atom repeats"),
+    ("distance", (-1, 2), r"-1 is not a non-negative whole number"),
+    ("distance", (2.7, 0), r"2\.7 is not a non-negative whole number"),
+    ("distance", (True, 2), r"True is not a non-negative whole number"),
+    ("angle", (0, 1, 0), r"an atom repeats"),
+])
+def test_a_descriptor_refuses_bad_atom_indices_naming_itself_and_the_atoms(kind, atoms, why):
+    with pytest.raises(InputError, match=rf"^{kind} descriptor 'd1': atoms {re.escape(str(atoms))}"
+                       rf" must be {len(atoms)} distinct non-negative integer atom indices "
+                       rf"\(0-based\); {why}"):
+        Descriptor(kind, atoms, "d1")
+
+
+def test_a_descriptor_takes_numpy_integers_and_stores_python_ints():
+    d = Descriptor("distance", (np.int64(4), np.int32(9)), "d")
+    assert d.atoms == (4, 9) and all(type(a) is int for a in d.atoms)
+    with pytest.raises(InputError, match=r"groups \(\(0, 0\), \(2,\)\) must hold distinct"):
+        Descriptor("center_distance", (), "g", groups=((0, 0), (2,)))
+
+
+def test_kinds_given_as_a_comma_separated_string_reach_suggest_as_the_pool_takes_them():
+    from cvdesign.pipeline.suggest import SuggestConfig
+
+    assert SuggestConfig(kinds="distance, angle").kinds == ("distance", "angle")
+    with pytest.raises(InputError, match=r"unknown descriptor kinds \['torsion'\]"):
+        SuggestConfig(kinds="distance,torsion")
+
+
+def test_propose_states_takes_the_shared_coordination_switching_distance_by_default():
+    import inspect
+
+    from cvdesign.constants import COORDINATION_R0_NM
+    from cvdesign.pipeline.explore import propose_states
+
+    # the same object, not a copy of its value (a literal would drift if the constant moved)
+    default = inspect.signature(propose_states).parameters["coordination_r0"].default
+    assert default is COORDINATION_R0_NM

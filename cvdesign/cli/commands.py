@@ -134,9 +134,11 @@ def _add_suggest_options(p):
                    "coordination (contacts between two residues' selected atoms, "
                    "dimensionless); default: " + ",".join(DEFAULT_KINDS))
     p.add_argument("--cutoff", type=_positive_float, default=1.0, metavar="NM",
-                   help="distance prefilter in nm: keep a pair if its mean distance is below "
-                        "this in at least one state, and up to 100 farther pairs that "
-                        "separate the states better than any of those (default: 1.0 nm)")
+                   help="prefilter in nm: keep a pair of atoms (distance) or of residues "
+                        "(center_distance, coordination: their mass centers) if its mean "
+                        "distance is below this in at least one state, and up to 100 farther "
+                        "pairs that separate the states better than any of those (default: "
+                        "1.0 nm)")
     p.add_argument("--coordination-r0", type=_positive_float, default=COORDINATION_R0_NM,
                    metavar="NM",
                    help="switching distance of the coordination numbers in nm: a pair of atoms "
@@ -144,7 +146,8 @@ def _add_suggest_options(p):
                         f"{COORDINATION_EXPONENTS[0]} and {COORDINATION_EXPONENTS[1]}; default: "
                         f"{COORDINATION_R0_NM:g} nm)")
     p.add_argument("--prefilter-stride", type=_positive_int, default=None, metavar="N",
-                   help="the distance prefilter reads every N-th frame of each state "
+                   help="the prefilter (of atom pairs and of residue pairs) reads every "
+                        "N-th frame of each state "
                         "(default: 10, or more so that the state with the fewest frames "
                         "still gives about 2000)")
     p.add_argument("--max-terms", type=_positive_int, default=5, metavar="K",

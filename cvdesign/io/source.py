@@ -25,13 +25,28 @@ from ..errors import InputError
 
 __all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "describe_selection",
            "file_frames", "file_sha256", "stores_time", "quiet_stdout", "check_box",
-           "check_finite", "check_label_count", "every_atom"]
+           "check_finite", "check_label_count", "every_atom", "default_selection_warnings",
+           "MAX_COPIES"]
 
-#: Residue names treated as monatomic ions when choosing the default solute.
+#: Residue names of one-atom residues treated as monatomic ions when choosing the default
+#: solute (a residue 'CA' of one atom is calcium, whatever element a reader guessed).
 _ION_NAMES = {
-    "NA", "NA+", "SOD", "K", "K+", "POT", "CL", "CL-", "CLA", "MG", "MG2", "CA2",
-    "CAL", "ZN", "ZN2", "LI", "RB", "CS", "F", "BR", "I", "IOD", "CES",
+    "NA", "NA+", "SOD", "K", "K+", "POT", "CL", "CL-", "CLA", "MG", "MG2", "MG2+", "CA",
+    "CA2", "CA2+", "CAL", "ZN", "ZN2", "ZN2+", "LI", "LI+", "RB", "RB+", "CS", "CS+", "F",
+    "F-", "BR", "BR-", "I", "I-", "IOD", "CES", "MN", "MN2", "FE", "FE2", "FE3", "CU",
+    "CU1", "CU2", "CO", "NI", "CD", "CD2", "SR", "BA", "HG", "AL",
 }
+#: Elements of one-atom residues treated as monatomic ions (any residue name).
+_ION_ELEMENTS = {"Li", "Na", "K", "Rb", "Cs", "Mg", "Ca", "Sr", "Ba", "Zn", "Mn", "Fe",
+                 "Co", "Ni", "Cu", "Cd", "Hg", "Al", "F", "Cl", "Br", "I"}
+#: Water residue names beyond mdtraj's own list (which has HOH, WAT, SOL, TIP3, TIP4,
+#: H2O, ...); water is also recognised by composition (:func:`_is_water`).
+_WATER_NAMES = {"SPC", "SPCE", "TP3", "T3P", "TP4", "T4P", "T4E", "TP5", "T5P", "TIP5",
+                "TIP3P", "TIP4P", "TIP5P", "OPC", "OPC3", "SWM4", "DOD", "D2O"}
+#: A residue name with more than this many copies in the default selection, outside
+#: proteins, nucleic acids and other chains, gets a warning: solvent (methanol, DMSO, ...)
+#: or a membrane's lipids enlarge the pool by the square of their number.
+MAX_COPIES = 20
 
 
 #: Trajectory formats whose files store the simulation time of each frame. For the
@@ -435,7 +450,13 @@ def select_atoms(topology, selection=None):
     selection : str, default=None
         An mdtraj selection string (e.g. ``"name CA"``, ``"resid 10 to 40 and
         not element H"``). None selects the heavy atoms of the solute: every
-        atom that is not hydrogen, not water and not a monatomic ion.
+        atom that is not hydrogen, not water and not a monatomic ion. Water is
+        a residue of a water name (mdtraj's list, SPC, TP3, OPC, ...) or of one
+        oxygen, at most two hydrogens and otherwise only virtual sites; an ion a
+        one-atom residue of an ion's name (a residue 'CA' of one atom is
+        calcium) or element. Other small molecules (methanol, DMSO) and lipids
+        stay: :func:`default_selection_warnings` names a residue with many
+        copies.
 
     Returns
     -------
@@ -457,19 +478,7 @@ def select_atoms(topology, selection=None):
     [0, 2]
     """
     if selection is None:
-        keep = []
-        for residue in topology.residues:
-            if residue.is_water:
-                continue
-            if residue.n_atoms == 1 and residue.name.upper() in _ION_NAMES:
-                continue
-            for atom in residue.atoms:
-                if atom.element is not None and atom.element.symbol == "H":
-                    continue
-                if atom.element is None and atom.name.upper().startswith("H"):
-                    continue
-                keep.append(atom.index)
-        idx = np.array(sorted(keep), dtype=np.intp)
+        idx = _default_selection(topology)[0]
         what = "the default selection (heavy atoms of the solute)"
     else:
         try:
@@ -486,6 +495,123 @@ def select_atoms(topology, selection=None):
             "check the atom and residue names (mdtraj selection syntax)"
         )
     return np.unique(idx)
+
+
+def _is_hydrogen(atom):
+    if atom.element is not None and atom.element.symbol != "VS":
+        return atom.element.symbol == "H"
+    return atom.name.upper().startswith("H")
+
+
+def _is_virtual(atom):
+    """An atom without element or mass (a virtual site, e.g. a 4-site water's charge)."""
+    if atom.element is None or atom.element.symbol == "VS":
+        return not atom.name.upper().startswith("H")
+    return not (atom.element.mass or 0) > 0
+
+
+def _is_water(residue):
+    """Water by name (mdtraj's list and :data:`_WATER_NAMES`) or by composition: one
+    oxygen, at most two hydrogens and otherwise only virtual sites."""
+    if residue.is_water or residue.name.upper() in _WATER_NAMES:
+        return True
+    if residue.n_atoms > 6:
+        return False
+    oxygen = hydrogen = 0
+    for atom in residue.atoms:
+        if _is_hydrogen(atom):
+            hydrogen += 1
+        elif atom.element is not None and atom.element.symbol == "O":
+            oxygen += 1
+        elif not _is_virtual(atom):
+            return False
+    return oxygen == 1 and hydrogen <= 2
+
+
+def _is_ion(residue):
+    """A one-atom residue of an ion's name or element."""
+    if residue.n_atoms != 1:
+        return False
+    element = next(iter(residue.atoms)).element
+    return (residue.name.upper() in _ION_NAMES
+            or (element is not None and element.symbol in _ION_ELEMENTS))
+
+
+def _default_selection(topology):
+    """The default selection's atoms and what it left out: ``(indices, {'water': Counter of
+    residue names, 'ions': Counter of residue names, 'hydrogens': count})``."""
+    from collections import Counter
+
+    keep, water, ions, hydrogens = [], Counter(), Counter(), 0
+    for residue in topology.residues:
+        if _is_water(residue):
+            water[residue.name] += 1
+            continue
+        if _is_ion(residue):
+            ions[residue.name] += 1
+            continue
+        for atom in residue.atoms:
+            if _is_hydrogen(atom):
+                hydrogens += 1
+            else:
+                keep.append(atom.index)
+    return (np.array(sorted(keep), dtype=np.intp),
+            {"water": water, "ions": ions, "hydrogens": hydrogens})
+
+
+def _left_out(topology):
+    """What the default selection left out, as text (``''`` when nothing)."""
+    _, out = _default_selection(topology)
+    parts = []
+    for key, what in (("water", "water"), ("ions", "ion")):
+        counts = out[key]
+        n = sum(counts.values())
+        if n:
+            names = ", ".join(sorted(counts)[:6]) + (", ..." if len(counts) > 6 else "")
+            parts.append(f"{n} {what} residue{'s' if n != 1 else ''} ({names})")
+    if out["hydrogens"]:
+        parts.append(f"{out['hydrogens']} hydrogens")
+    return "; left out: " + ", ".join(parts) if parts else ""
+
+
+def default_selection_warnings(topology):
+    """Warnings (as ``'warning: ...'`` notes) about residue names with more than
+    :data:`MAX_COPIES` copies in the default selection, outside chains of bonded residues
+    (proteins, nucleic acids, polymers): likely solvent or lipids, which the default keeps.
+
+    Examples
+    --------
+    >>> import mdtraj as md
+    >>> top = md.Topology(); ch = top.add_chain()
+    >>> for k in range(25):
+    ...     r = top.add_residue("MOH", ch, resSeq=k + 1)
+    ...     _ = [top.add_atom(n, md.element.get_by_symbol(n[0]), r) for n in ("C1", "O1")]
+    >>> print(default_selection_warnings(top)[0])
+    warning: the default selection holds 25 copies of residue MOH (50 atoms), e.g. solvent or lipids, which enlarge the pool by the square of their number; if they do not matter, leave them out with --select (selection=), e.g. 'not resname MOH and not element H'
+    """
+    from collections import Counter
+
+    chained = set()
+    for bond in topology.bonds:
+        ra, rb = bond[0].residue, bond[1].residue
+        if ra.index != rb.index:
+            chained.update((ra.index, rb.index))
+    idx = _default_selection(topology)[0]
+    copies, atoms = Counter(), Counter()
+    seen = set()
+    for i in idx:
+        residue = topology.atom(int(i)).residue
+        if residue.index in chained or residue.is_protein or residue.is_nucleic:
+            continue
+        atoms[residue.name] += 1
+        if residue.index not in seen:
+            seen.add(residue.index)
+            copies[residue.name] += 1
+    return [f"warning: the default selection holds {n} copies of residue {name} "
+            f"({atoms[name]} atoms), e.g. solvent or lipids, which enlarge the pool by the "
+            "square of their number; if they do not matter, leave them out with --select "
+            f"(selection=), e.g. 'not resname {name} and not element H'"
+            for name, n in sorted(copies.items()) if n > MAX_COPIES]
 
 
 def _runs(values):
@@ -528,6 +654,8 @@ def describe_selection(topology, atoms, selection=None, *, limit=4):
         E.g. ``"selection 'name CA': 42 atoms in 42 residues: LYS3-GLU44 (0-based
         mdtraj indices: atoms 10..650 in 42 ranges, resid 2..43)"``: residues
         by name and file number, consecutive residues of one chain as a range.
+        For the default selection, what it left out follows (water and ion
+        residues by name, hydrogens).
 
     Examples
     --------
@@ -540,7 +668,7 @@ def describe_selection(topology, atoms, selection=None, *, limit=4):
     >>> describe_selection(top, top.select("name CA and resid 0 to 2"), "name CA and resid 0 to 2")
     "selection 'name CA and resid 0 to 2': 3 atoms in 3 residues: ALA1-SER3 (0-based mdtraj indices: atoms 1, 4, 7, resid 0..2)"
     >>> describe_selection(top, [3, 4, 5])
-    'default selection (heavy atoms of the solute): 3 atoms in 1 residue: GLY2 (0-based mdtraj indices: atoms 3..5, resid 1)'
+    'default selection (heavy atoms of the solute): 3 atoms in 1 residue: GLY2 (0-based mdtraj indices: atoms 3..5, resid 1); left out: 1 water residue (HOH)'
     """
     atoms = np.unique(np.asarray(atoms, dtype=np.int64))
     residues = sorted({topology.atom(int(i)).residue.index for i in atoms})
@@ -571,11 +699,12 @@ def describe_selection(topology, atoms, selection=None, *, limit=4):
     chains = {topology.residue(i).chain.index for i in residues}
     what = ("default selection (heavy atoms of the solute)" if selection is None
             else f"selection {selection!r}")
+    left = _left_out(topology) if selection is None else ""
     n_res = len(residues)
     in_chains = f" of {len(chains)} chains" if len(chains) > 1 else ""
     return (f"{what}: {atoms.size} atom{'s' if atoms.size != 1 else ''} in {n_res} "
             f"residue{'s' if n_res != 1 else ''}{in_chains}: {names} (0-based mdtraj indices: "
-            f"atoms {atom_text}, resid {resid_text})")
+            f"atoms {atom_text}, resid {resid_text}){left}")
 
 
 def file_frames(path):

@@ -62,13 +62,14 @@ from sklearn.cluster import KMeans
 from sklearn.metrics import silhouette_score
 from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
+from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
 from ..fit import TICA
 from ..io.source import Source
 from ..parallel import using_executor
 from ..passes import (LaggedPass, Pass, PoolFeaturizer, ScreeningPass, frame_keys, plan_tasks,
                       reference_features, run_pass, thinning_stride)
-from ..pool import build_pool, check_prefilter_stride
+from ..pool import build_pool, check_kinds, check_length, check_prefilter_stride
 from ..progress import stage_messages
 from ..search import standardize_lagged
 from ..stats.moments import LaggedMoments, merge_all
@@ -769,8 +770,8 @@ def _fmt_ts(t):
 
 def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
                    kinds=("distance", "angle", "dihedral"), cutoff=1.0, prefilter_stride=None,
-                   coordination_r0=0.45, screen_size=200, max_slow=3, seed=0, executor=None,
-                   progress=None):
+                   coordination_r0=COORDINATION_R0_NM, screen_size=200, max_slow=3, seed=0,
+                   executor=None, progress=None):
     """Propose metastable states of unlabelled runs from their slow coordinates.
 
     Every read of the runs is a pass of the pass engine (:mod:`cvdesign.passes`):
@@ -854,6 +855,9 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     if n_states is not None and (not isinstance(n_states, int) or n_states < 2):
         raise InputError(f"n_states={n_states!r} must be an integer of at least 2")
     check_prefilter_stride(prefilter_stride)
+    kinds = check_kinds(kinds)
+    cutoff = check_length(cutoff, "cutoff", allow_inf=True)
+    coordination_r0 = check_length(coordination_r0, "coordination_r0")
     with using_executor(executor) as executor:
         executor.start()  # local workers start up while the pool is enumerated
         return _propose(source, executor, stage_messages(_log, progress), lag=float(lag),

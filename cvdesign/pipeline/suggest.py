@@ -49,7 +49,7 @@ from ..passes import (MIN_FRAMES_PER_FOLD, BlockPass, CardPass, FoldMomentsPass,
                       HistogramPass, LagGridPass, LaggedPass, PoolFeaturizer,
                       ProjectionRangePass, ScreeningPass, plan_tasks, reference_features,
                       run_pass)
-from ..pool import build_pool, needs_prefilter, prefilter_stride_for
+from ..pool import build_pool, check_kinds, check_length, needs_prefilter, prefilter_stride_for
 from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..stats.bootstrap import MIN_INTERVAL_BLOCKS
@@ -137,6 +137,12 @@ class SuggestConfig:
                 raise InputError(f"{name}={v!r} must be an integer of at least {lo}")
         if 0 < self.n_bootstrap < MIN_BOOTSTRAP_REPLICATES:
             raise InputError(f"n_bootstrap={self.n_bootstrap!r}: {BOOTSTRAP_TOO_FEW}")
+        # the pool's own checks: a comma-separated string of kinds, as build_pool takes it
+        object.__setattr__(self, "kinds", check_kinds(self.kinds))
+        object.__setattr__(self, "cutoff_nm", check_length(self.cutoff_nm, "cutoff",
+                                                           allow_inf=True))
+        object.__setattr__(self, "coordination_r0_nm",
+                           check_length(self.coordination_r0_nm, "coordination_r0"))
         if not 0 < self.max_correlation <= 1:
             raise InputError(f"max_correlation={self.max_correlation!r} must be in (0, 1]")
         if not self.min_gain >= 0:
@@ -328,8 +334,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
             "Source.from_states('top.pdb', {'closed': ['c1.xtc'], 'open': ['o1.xtc']})")
     temperature = _run_temperature(source, temperature)
     config = SuggestConfig(
-        objective=objective, lag_ps=lag, method=method, selection=selection, kinds=tuple(kinds),
-        cutoff_nm=cutoff, prefilter_stride=prefilter_stride, coordination_r0_nm=coordination_r0,
+        objective=objective, lag_ps=lag, method=method, selection=selection,
+        kinds=kinds, cutoff_nm=cutoff, prefilter_stride=prefilter_stride,
+        coordination_r0_nm=coordination_r0,
         max_terms=max_terms, n_suggestions=n_suggestions, screen_size=screen_size,
         shortlist_size=shortlist_size, max_correlation=max_correlation, n_folds=n_folds,
         n_seeds=n_seeds, min_gain=min_gain, shrinkage=shrinkage, n_bootstrap=n_bootstrap,

@@ -9,7 +9,8 @@ enumerated from an atom selection and prefiltered on the data
 """
 
 from .candidates import (MIN_PREFILTER_STRIDE, PREFILTER_FRAMES, build_pool, candidate_pairs,
-                         candidate_pool, check_prefilter_stride, needs_prefilter,
+                         candidate_pool, check_kinds, check_length, check_pair_count,
+                         check_prefilter_stride, MAX_PAIRS, needs_prefilter,
                          prefilter_group_pairs, prefilter_pairs, prefilter_stride_for,
                          residue_groups, state_frames)
 from .descriptors import Descriptor, atom_label, atom_labels
@@ -18,4 +19,5 @@ from .features import Pool
 __all__ = ["Descriptor", "Pool", "atom_label", "atom_labels", "candidate_pool",
            "candidate_pairs", "prefilter_pairs", "prefilter_group_pairs", "residue_groups",
            "build_pool", "prefilter_stride_for", "state_frames", "check_prefilter_stride",
-           "needs_prefilter", "PREFILTER_FRAMES", "MIN_PREFILTER_STRIDE"]
+           "needs_prefilter", "PREFILTER_FRAMES", "MIN_PREFILTER_STRIDE", "check_kinds",
+           "check_length", "check_pair_count", "MAX_PAIRS"]

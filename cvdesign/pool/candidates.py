@@ -23,6 +23,7 @@ Candidates come from an atom selection:
 """
 
 import copy
+import numbers
 
 import mdtraj as md
 import numpy as np
@@ -36,7 +37,8 @@ from ..stats.separation import fisher_ratio
 from .descriptors import Descriptor, _make, _residue_labels, atom_labels
 from .features import Pool
 
-__all__ = ["candidate_pool", "candidate_pairs", "prefilter_pairs", "prefilter_group_pairs",
+__all__ = ["check_kinds", "check_length", "check_pair_count", "MAX_PAIRS", "candidate_pool",
+           "candidate_pairs", "prefilter_pairs", "prefilter_group_pairs",
            "residue_groups", "build_pool", "prefilter_stride_for", "state_frames",
            "check_prefilter_stride", "needs_prefilter", "PREFILTER_FRAMES",
            "MIN_PREFILTER_STRIDE"]
@@ -99,17 +101,97 @@ def _outer_atom(graph, centre, candidates):
     return min(candidates, key=lambda x: (-branch(x), x))
 
 
-def _check_kinds(kinds):
+def check_kinds(kinds, name="kinds"):
+    """Descriptor kinds as a tuple of names of :data:`cvdesign.kinds.KINDS`, from a
+    sequence or a comma-separated string; else an :class:`~cvdesign.errors.InputError`
+    naming the argument.
+
+    Examples
+    --------
+    >>> check_kinds("distance, angle")
+    ('distance', 'angle')
+    >>> check_kinds(["distance", "torsion"])
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: kinds: unknown descriptor kinds ['torsion']; use a comma-separated subset of distance, angle, dihedral, center_distance, coordination
+    """
     if isinstance(kinds, str):
         kinds = [k.strip() for k in kinds.split(",") if k.strip()]
-    kinds = tuple(kinds)
-    bad = [k for k in kinds if k not in KINDS]
+    try:
+        kinds = tuple(kinds)
+    except TypeError:
+        raise InputError(f"{name}={kinds!r} must be descriptor kind names, a sequence or a "
+                         f"comma-separated string, from {', '.join(KINDS)}") from None
+    bad = [k for k in kinds if not isinstance(k, str) or k not in KINDS]
     if bad or not kinds:
         raise InputError(
-            f"unknown descriptor kinds {bad!r}; use a comma-separated subset of "
+            f"{name}: unknown descriptor kinds {bad!r}; use a comma-separated subset of "
             f"{', '.join(KINDS)}"
         )
     return kinds
+
+
+def check_length(value, name, *, allow_inf=False):
+    """`value` as a positive float length in nm (``inf`` only with `allow_inf`); else an
+    :class:`~cvdesign.errors.InputError` naming the argument (a string such as ``'1.0'``,
+    a bool, NaN, zero or a negative number).
+
+    Examples
+    --------
+    >>> check_length(np.float32(0.5), "cutoff"), check_length(float("inf"), "cutoff", allow_inf=True)
+    (0.5, inf)
+    >>> check_length("1.0", "cutoff")
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: cutoff='1.0' must be a positive number in nm (a float such as 1.0, not a string)
+    """
+    ok = isinstance(value, numbers.Real) and not isinstance(value, bool)
+    if ok:
+        value = float(value)
+        ok = value > 0 and (np.isfinite(value) or (allow_inf and value == np.inf))
+    if not ok:
+        hint = " (a float such as 1.0, not a string)" if isinstance(value, str) else \
+            (" (or inf: no cutoff)" if allow_inf else "")
+        raise InputError(f"{name}={value!r} must be a positive number in nm{hint}")
+    return value
+
+
+#: Most pairs (of atoms for distances, of residues for the group kinds) a pool is built
+#: from. Measured: enumerating the atom pairs takes 48 bytes per pair before any frame is
+#: read (index arrays and the bonded-pair mask), and every pair kept costs about 0.5 kB
+#: and tens of microseconds as a descriptor, besides one value per pair and frame in the
+#: prefilter. Two million pairs (a selection of 2,000 atoms) is about 0.1 GB up front and
+#: at most 1 GB of descriptors; a 10,000-atom selection (50 million pairs, 2.4 GB before
+#: any frame) is refused instead of exhausting memory or running for hours.
+MAX_PAIRS = 2_000_000
+
+
+def check_pair_count(n, what="atoms"):
+    """Refuse (:class:`~cvdesign.errors.InputError`) `n` selected atoms (or residues, with
+    ``what='residues'``) whose n (n - 1) / 2 pairs exceed :data:`MAX_PAIRS`.
+
+    Examples
+    --------
+    >>> check_pair_count(2000)
+    >>> check_pair_count(10_000)
+    Traceback (most recent call last):
+    ...
+    cvdesign.errors.InputError: the atom selection holds 10000 atoms, which make 49,995,000 pairs for distances, more than the 2,000,000 a pool is built from (MAX_PAIRS); narrow it with --select (selection=), e.g. 'name CA' or 'backbone', or use the residue-level kinds (--kinds center_distance,coordination)
+    """
+    n_pairs = n * (n - 1) // 2
+    if n_pairs <= MAX_PAIRS:
+        return
+    if what == "residues":
+        raise InputError(
+            f"the atom selection spans {n} residues, which make {n_pairs:,} residue pairs for "
+            f"center distances and coordination numbers, more than the {MAX_PAIRS:,} a pool "
+            "is built from (MAX_PAIRS); narrow it with --select (selection=) to the residues "
+            "that matter (e.g. 'protein' or 'resid 10 to 80', leaving solvent out)")
+    raise InputError(
+        f"the atom selection holds {n} atoms, which make {n_pairs:,} pairs for distances, "
+        f"more than the {MAX_PAIRS:,} a pool is built from (MAX_PAIRS); narrow it with "
+        "--select (selection=), e.g. 'name CA' or 'backbone', or use the residue-level "
+        "kinds (--kinds center_distance,coordination)")
 
 
 def candidate_pairs(topology, atoms):
@@ -140,6 +222,7 @@ def candidate_pairs(topology, atoms):
     """
     atoms = np.unique(np.asarray(atoms, dtype=np.intp))
     n = atoms.size
+    check_pair_count(n)
     ii, jj = np.triu_indices(n, k=1)
     pairs = np.stack([atoms[ii], atoms[jj]], axis=1)
     graph = _bond_graph(topology, atoms)
@@ -202,7 +285,7 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
     >>> pool.descriptors[-1].label
     'dihedral X1:C1-C2-C3-C4'
     """
-    kinds = _check_kinds(kinds)
+    kinds = check_kinds(kinds)
     atoms = np.unique(np.asarray(atoms, dtype=np.intp))
     graph = _bond_graph(topology, atoms)
     every = atom_labels(topology)
@@ -216,11 +299,15 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
                 notes.append(note)
         out.extend(_make("distance", p, topology, labels) for p in np.asarray(pairs))
     if ("angle" in kinds or "dihedral" in kinds) and graph.number_of_edges() == 0:
-        notes.append(
-            "angles and dihedrals: the topology has no bonds between the selected atoms, "
-            "so none were enumerated (give a topology with bonds: PDB with CONECT records, "
-            "PSF, PRMTOP or HDF5)"
-        )
+        if topology.n_bonds == 0:
+            notes.append(
+                "angles and dihedrals: the topology has no bonds, so none were enumerated "
+                "(give a topology with bonds: PDB with CONECT records, PSF, PRMTOP or HDF5)")
+        else:
+            notes.append(
+                f"angles and dihedrals: none of the topology's {topology.n_bonds} bonds joins "
+                "two selected atoms (e.g. 'name CA'), so none were enumerated; select bonded "
+                "atoms (e.g. 'backbone' or 'not element H') for them")
     if "angle" in kinds:
         for b in sorted(graph.nodes):
             nbrs = sorted(graph.neighbors(b))
@@ -243,17 +330,30 @@ def candidate_pool(topology, atoms, kinds=DEFAULT_KINDS, *, pairs=None, group_pa
                          "atoms of fewer than two residues, so there are no residue pairs")
         else:
             if group_pairs is None:
+                check_pair_count(len(groups), "residues")
                 group_pairs = np.stack(np.triu_indices(len(groups), k=1), axis=1)
             names = _residue_labels(topology, [r for r, _ in groups])
+            # two one-atom groups: the center distance is the atom distance (skipped when
+            # that is in the pool; a coordination number is another quantity, kept)
+            atom_pairs = set()
+            if "distance" in kinds and "center_distance" in kinds:
+                atom_pairs = {(int(a), int(b)) for a, b in np.asarray(pairs).reshape(-1, 2)}
+            same = 0
             for i, j in np.asarray(group_pairs, dtype=np.intp).reshape(-1, 2):
                 pair = (groups[i][1], groups[j][1])
                 what = f"{names[i]}-{names[j]}"
-                if "center_distance" in kinds:
+                single = len(pair[0]) == 1 and len(pair[1]) == 1
+                if single and tuple(sorted((pair[0][0], pair[1][0]))) in atom_pairs:
+                    same += 1
+                elif "center_distance" in kinds:
                     out.append(Descriptor("center_distance", (), f"{KINDS['center_distance'].label_prefix} {what}",
                                           groups=pair))
                 if "coordination" in kinds:
                     out.append(Descriptor("coordination", (), f"{KINDS['coordination'].label_prefix} {what}", groups=pair,
                                           r0=float(coordination_r0)))
+            if same:
+                notes.append(f"center distances: {same} pairs of one-atom residues left out "
+                             "(the same as the atom distances in the pool)")
     order = {k: i for i, k in enumerate(KINDS)}
     out.sort(key=lambda d: (order[d.kind], d.atoms))
     return Pool(out, topology, notes=notes)
@@ -294,8 +394,7 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
     InputError
         When a state has no frames.
     """
-    if not cutoff > 0:
-        raise InputError(f"cutoff={cutoff!r} nm must be positive")
+    cutoff = check_length(cutoff, "cutoff", allow_inf=True)
     pairs = np.asarray(pairs, dtype=np.intp).reshape(-1, 2)
     if pairs.shape[0] == 0 or not np.isfinite(cutoff):
         return pairs, f"distances: kept all {pairs.shape[0]} pairs (no cutoff)"
@@ -716,8 +815,7 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
         Pairs ``(i, j)``, ``i < j``, of positions in `groups`.
     note : str
     """
-    if not cutoff > 0:
-        raise InputError(f"cutoff={cutoff!r} nm must be positive")
+    cutoff = check_length(cutoff, "cutoff", allow_inf=True)
     n = len(groups)
     ii, jj = np.triu_indices(n, k=1)
     pairs = np.stack([ii, jj], axis=1).astype(np.intp)
@@ -775,11 +873,25 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
     Pool
         With ``notes`` describing what was kept and dropped.
     """
-    from ..io.source import select_atoms
+    from ..io.source import default_selection_warnings, select_atoms
 
-    kinds = _check_kinds(kinds)
+    kinds = check_kinds(kinds)
+    cutoff = check_length(cutoff, "cutoff", allow_inf=True)
+    coordination_r0 = check_length(coordination_r0, "coordination_r0")
     atoms = select_atoms(source.topology, selection)
-    notes = [f"selection: {atoms.size} atoms"]
+    # solvent or lipids the default keeps, named (in the notes, and in a refusal below)
+    crowded = default_selection_warnings(source.topology) if selection is None else []
+    try:  # refused before anything is enumerated or read
+        if "distance" in kinds:
+            check_pair_count(atoms.size)
+        if any(k in kinds for k in GROUP_KINDS):
+            check_pair_count(len(residue_groups(source.topology, atoms)), "residues")
+    except InputError as exc:
+        if not crowded:
+            raise
+        raise InputError(f"{exc}. Note: " + "; ".join(
+            w[len("warning: "):] for w in crowded)) from None
+    notes = [f"selection: {atoms.size} atoms"] + crowded
     stride = check_prefilter_stride(stride, "stride")
     if stride is None and needs_prefilter(kinds):
         stride = prefilter_stride_for(source)

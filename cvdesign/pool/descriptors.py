@@ -1,6 +1,8 @@
 """Descriptors as data: :class:`Descriptor` (a kind, 0-based atom indices, a stable id,
 a readable label) and the readable labels of atoms and residues."""
 
+import math
+import numbers
 from collections import Counter
 from dataclasses import dataclass
 from functools import cached_property
@@ -132,17 +134,41 @@ class Descriptor:
             groups = self.groups
             if (groups is None or len(groups) != 2 or not all(len(g) for g in groups)):
                 raise InputError(f"a {self.kind} takes two non-empty atom groups; got {groups!r}")
+            bad = [a for g in groups for a in g if not _is_index(a)]
+            if bad or any(len(set(g)) != len(g) for g in groups):
+                why = (f"{bad[0]!r} is not a non-negative whole number" if bad
+                       else "an atom repeats within a group")
+                raise InputError(f"{self.kind} descriptor {self.label!r}: groups {groups!r} must "
+                                 f"hold distinct non-negative integer atom indices (0-based); "
+                                 f"{why}")
             groups = tuple(tuple(sorted(int(a) for a in g)) for g in groups)
             object.__setattr__(self, "groups", groups)
             object.__setattr__(self, "atoms", tuple(sorted(set(groups[0]) | set(groups[1]))))
-            if self.kind == "coordination" and not (self.r0 is not None and self.r0 > 0):
+            if self.kind == "coordination" and not (
+                    isinstance(self.r0, numbers.Real) and not isinstance(self.r0, bool)
+                    and math.isfinite(self.r0) and self.r0 > 0):
                 raise InputError(f"a coordination needs a switching distance r0 > 0 nm; "
                                  f"got {self.r0!r}")
             return
-        if len(self.atoms) != KINDS[self.kind].n_atoms:
+        n = KINDS[self.kind].n_atoms
+        article = "an" if self.kind[0] in "aeiou" else "a"
+        try:
+            count = len(self.atoms)
+        except TypeError:
+            count = None
+        if count != n:
             raise InputError(
-                f"a {self.kind} takes {KINDS[self.kind].n_atoms} atoms; got {len(self.atoms)}"
-            )
+                f"{article} {self.kind} takes {n} atoms; got "
+                f"{count if count is not None else repr(self.atoms)}"
+                f" ({self.label!r})")
+        bad = [a for a in self.atoms if not _is_index(a)]
+        if bad or len(set(int(a) for a in self.atoms)) != n:
+            why = (f"{bad[0]!r} is not a non-negative whole number" if bad
+                   else "an atom repeats")
+            raise InputError(
+                f"{self.kind} descriptor {self.label!r}: atoms {tuple(self.atoms)!r} must be "
+                f"{n} distinct non-negative integer atom indices (0-based); {why}")
+        object.__setattr__(self, "atoms", tuple(int(a) for a in self.atoms))
 
     @cached_property
     def id(self):
@@ -168,6 +194,11 @@ class Descriptor:
     def unit(self):
         """str : unit of the descriptor's value (``'1'``: dimensionless)."""
         return KINDS[self.kind].unit
+
+
+def _is_index(a):
+    """Whether `a` is a 0-based atom index: a non-negative integer, not a bool."""
+    return not isinstance(a, bool) and isinstance(a, (numbers.Integral, np.integer)) and a >= 0
 
 
 def _make(kind, atoms, topology, labels=None):
