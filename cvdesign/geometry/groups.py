@@ -10,7 +10,8 @@ import warnings
 import numpy as np
 
 from ..errors import InputError
-from ._checks import GeometryWarning, _TINY_LENGTH, _check_group, _check_xyz, _group_points, _norm, _warn_gradient
+from ._checks import (GeometryWarning, _TINY_LENGTH, _check_group, _check_xyz, _group_points,
+                      _norm, _warn_gradient)
 from .box import _apply_minimum_image, _parse_box
 
 __all__ = ["group_centers", "center_displacement", "whole_groups", "center_distance"]
