@@ -1,6 +1,7 @@
 """`--runs` (issue 9): proposed states must be metastable, from the runs' own transitions."""
 
 import math
+import re
 
 import mdtraj as md
 import numpy as np
@@ -10,9 +11,9 @@ from sklearn.metrics import adjusted_rand_score
 from cvdesign import InputError, Source, suggest
 from cvdesign.cli import main
 from cvdesign.passes import CoordinateFeaturizer, plan_tasks, run_pass
-from cvdesign.pipeline.explore import (MIN_MEMORY, MIN_SEPARATION, _KineticsPass, _Projection,
-                                       _squared_distances, _Visits, propose_states,
-                                       state_kinetics)
+from cvdesign.pipeline.explore import (FEW_TRANSITIONS, MIN_MEMORY, MIN_SEPARATION,
+                                       _KineticsPass, _Projection, _squared_distances, _Visits,
+                                       propose_states, run_file_names, state_kinetics)
 from cvdesign.testbed import LangevinBAOAB, count_transitions, two_wells, write_pdb
 
 
@@ -237,6 +238,27 @@ def test_double_well_runs_with_transitions_give_two_metastable_states(tmp_path):
     assert adjusted_rand_score(truth, pred) > 0.9
 
 
+def test_runs_sharing_a_file_name_are_named_by_full_path_in_every_output(tmp_path):
+    # dup/a/run-1.xtc and dup/b/run-1.xtc: states.csv switched to full paths, but the
+    # representative frames and the report's tica.files kept the bare names, ambiguous
+    xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    top, first = _write_walkers(tmp_path / "a", xs[:2], seed=2)
+    _, second = _write_walkers(tmp_path / "b", xs[2:], seed=3)
+    paths = first + second
+    assert len({p.rsplit("/", 1)[-1] for p in paths}) == 2  # two names for four runs
+    exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+    csv_files = {line.split(",")[0] for line in exp.states_csv().splitlines()[1:]}
+    assert csv_files == set(paths)
+    assert exp.report_tica["files"] == paths
+    assert all(r["file"] in csv_files for r in exp.representatives.values())
+    assert all(f"e.g. {r['file']} frame" in exp.states_line()
+               for r in exp.representatives.values())
+    # distinct names stay bare, in every output alike
+    assert run_file_names(first) == {p: p.rsplit("/", 1)[-1] for p in first}
+
+
 def test_a_proposal_with_a_single_metastable_state_is_refused(tmp_path, monkeypatch):
     # A single broad well split by k-means into six states, of which a 4 % corner passed
     # the metastability test by noise, had been proposed as six states (with CVs designed
@@ -255,7 +277,7 @@ def test_a_proposal_with_a_single_metastable_state_is_refused(tmp_path, monkeypa
     xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
     top, paths = _write_walkers(tmp_path, xs, seed=2)
     with pytest.raises(InputError, match=r"only one of the \d proposed states is metastable at "
-                                         r"lag 1 ps \(S1, population .*\); the others are not: "
+                                         r"lag 1 ps \(S1, fraction of frames .*\); the others are not: "
                                          r"S2: made to fail here.*Separating states needs two "
                                          r"metastable ones"):
         propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
@@ -277,7 +299,7 @@ def test_random_walk_runs_are_refused_as_not_metastable(tmp_path, walk):
         xs = 0.6 + 0.08 * z
     top, paths = _write_walkers(tmp_path, xs, seed=2)
     with pytest.raises(InputError, match=r"proposed states is metastable at lag 1 ps: S1 "
-                                         r"\(population .*, stays 1 ps with probability .*"
+                                         r"\(fraction of frames .*, stays 1 ps with probability .*"
                                          r"a piece of a random walk, not a metastable state.*"
                                          r"lag-time transition counts: S1 -> S1 \d+.*"
                                          r"give the states yourself with --state"):
@@ -291,7 +313,7 @@ def test_runs_that_each_stay_in_one_state_are_refused(demo_files):
     src = _runs_source(top, [states["closed"][0], states["open"][0]])
     for n_states in (None, 2):
         with pytest.raises(InputError, match=r"none of the 2 proposed states is metastable at "
-                                             r"lag 2 ps: S1 \(population 0.50, stays 2 ps with "
+                                             r"lag 2 ps: S1 \(fraction of frames 0.50, stays 2 ps with "
                                              r"probability 1.00\): no transition into or out "
                                              r"of it in the runs.*contain 0 transitions.*"
                                              r"S1 -> S1 1990, S2 0"):
@@ -307,13 +329,33 @@ def test_a_run_isolated_in_its_own_state_is_warned_about(tmp_path):
     exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
     assert exp.states == ["S1", "S2", "S3"]
     assert (exp.labels[paths[2]] == "S3").mean() > 0.99
-    assert exp.kinetics.metastable.tolist() == [True, True, False]
-    assert len(exp.warnings) == 1
+    kin = exp.kinetics
+    assert kin.metastable.tolist() == [True, True, False]
     assert exp.warnings[0].startswith("state S3 is not metastable at lag 1 ps: no transition")
     assert "rule" in exp.criterion and "fraction of metastable states" in exp.criterion["rule"]
     summary = "\n".join(exp.summary_lines())
     assert "**warning**: state S3 is not metastable" in summary
     assert "| S3 |" in summary and "| NO |" in summary
+    # a state entered or left fewer than FEW_TRANSITIONS times: its fraction of the frames is
+    # where the runs happened to be, not an equilibrium population (S3 is never entered)
+    few = [s for i, s in enumerate(exp.states)
+           if min(kin.entries[i], kin.exits[i]) < FEW_TRANSITIONS]
+    assert "S3" in few
+    frac = [w for w in exp.warnings if "not an equilibrium population" in w]
+    assert [w.split()[1] for w in frac] == few
+    assert frac[-1] == (f"state S3 is entered 0 and left 0 time(s) in the runs (fewer than "
+                        f"{FEW_TRANSITIONS}): its fraction of the frames "
+                        f"({exp.populations['S3']:.3f}) depends on where the runs started and "
+                        "how long they lasted; it is not an equilibrium population")
+    assert "| state | fraction of frames | staying probability |" in summary
+    assert "| population |" not in summary
+    line = exp.states_line()
+    assert line.startswith(f"proposed states: S1 ({exp.populations['S1']:.1%} of frames; e.g. ")
+    # TICA's timescales are lower bounds (variational principle: Noe and Nueske, Multiscale
+    # Model. Simul. 2013), flagged when few transitions between the states back them
+    assert "implied timescales (ps; lower bounds on the true ones" in summary
+    assert (kin.n_transitions < FEW_TRANSITIONS) == (
+        f"the slowest backed by only {kin.n_transitions} transition(s)" in summary)
 
 
 def test_softened_two_wells_testbed_states_are_accepted_and_fewest_metastable_chosen(
@@ -347,8 +389,12 @@ def test_cli_runs_writes_staying_probabilities_and_prints_metastable_warnings(
     out = tmp_path / "out"
     assert main(["suggest", "--topology", top, "--runs", *paths, "--lag", "1", "--kinds",
                  "distance", "--out", str(out), "--bootstrap", "0", "--max-terms", "1"]) == 0
-    err = capsys.readouterr().err  # shown by default (--quiet leaves it to summary.md)
+    printed = capsys.readouterr()
+    err = printed.err  # shown by default (--quiet leaves it to summary.md)
     assert "cvdesign suggest: warning: state S3 is not metastable at lag 1 ps" in err
+    assert "cvdesign suggest: warning: state S3 is entered 0 and left 0 time(s)" in err
+    assert re.search(r"proposed states: S1 \(\d+\.\d% of frames; e\.g\. run-\d\.xtc frame \d+\)",
+                     printed.out)
     summary = (out / "summary.md").read_text()
     assert "staying probability" in summary and "Lag-time transition counts" in summary
     assert "**warning**: state S3 is not metastable" in summary
@@ -463,3 +509,26 @@ def test_propose_states_gives_identical_bytes_serially_in_two_processes_and_on_d
         assert_same(plain(results[0]), plain(other))
         assert other.states_csv() == results[0].states_csv()
         assert other.summary_lines() == results[0].summary_lines()
+
+
+def test_documented_subsample_sizes_are_those_the_stride_gives():
+    # The docs had said "at most 20,000 (plus one per run)" k-means frames and "at most
+    # 4,000" silhouette frames; the stride max(1, n // 20000) keeps up to 39,999.
+    import cvdesign.pipeline.explore as explore
+
+    rng = np.random.default_rng(7)
+    for n_runs in (1, 3, 8):
+        for n in (500, 19_999, 20_000, 39_999, 40_000, 59_999, 123_457, 1_000_003):
+            cuts = np.sort(rng.choice(np.arange(1, n), n_runs - 1, replace=False))
+            runs = np.diff(np.r_[0, cuts, n])
+            stride = explore._subsample_stride(n, 20000)
+            kept = int(sum(-(-r // stride) for r in runs))  # every stride-th by rank in a run
+            if n < 40_000:
+                assert kept == n
+            else:
+                assert 20_000 <= kept < 40_000 + n_runs
+            sil = -(-kept // explore._subsample_stride(kept, 4000))
+            assert sil == kept if kept < 8000 else 4000 <= sil <= 8000
+    doc = " ".join(propose_states.__doc__.split())
+    assert "between 20,000 and 40,000 frames" in doc and "between 4,000 and 8,000" in doc
+    assert "at most 20,000" not in " ".join(explore.__doc__.split()) + doc

@@ -742,11 +742,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     if not args.quiet:
         print(result.selection, file=stream)  # the atoms, with mdtraj's 0-based indices
         if exploration is not None:
-            print("proposed states: " + ", ".join(
-                f"{s} ({exploration.populations[s]:.1%}; e.g. "
-                f"{exploration.representatives[s]['file']} frame "
-                f"{exploration.representatives[s]['frame']})" for s in exploration.states),
-                file=stream)
+            print(exploration.states_line(), file=stream)
         for note in result.notes:
             print(f"  - {note}", file=stream)
     print(result.top_table(5), file=stream)

@@ -10,7 +10,8 @@ When no state labels are known, :func:`propose_states`
    show no slow process at that lag, and it says so instead of inventing states;
 3. projects frames on the slow TICA coordinates (those slower than the lag,
    at most three, in kinetic-map scaling) and clusters the projections of an
-   evenly spaced subsample (at most about 20,000 frames) with k-means
+   evenly spaced subsample (every frame below 40,000 frames, else between
+   20,000 and 40,000 of them, plus at most one per run) with k-means
    (scikit-learn) for every number of states between 2 and ``max_states``
    (or the given one), scoring each clustering by its mean silhouette
    (Rousseeuw 1987) -- the silhouette rewards compact, well-separated
@@ -30,8 +31,18 @@ When no state labels are known, :func:`propose_states`
    silhouette), with a warning naming each state that is not metastable; when
    no clustering has a metastable state, it refuses, naming the transition
    counts and staying probabilities it found;
-6. reports each proposed state's population, staying probability and a
-   representative frame.
+6. reports each proposed state's fraction of the frames (reweighted for
+   biased runs), staying probability and a representative frame. A fraction
+   of frames is an equilibrium population only when the runs enter and leave
+   the state often; a state entered or left fewer than
+   :data:`FEW_TRANSITIONS` times gets a warning saying so.
+
+TICA's implied timescales are *lower bounds* on the true ones: by the
+variational principle of conformation dynamics (Noe and Nueske, Multiscale
+Model. Simul. 11, 635, 2013) a linear combination of features relaxes at
+least as fast as the slowest true process; the summary says so, and flags
+them when the runs contain fewer than :data:`FEW_TRANSITIONS` transitions
+between the proposed states.
 
 Every read of the runs is a pass of the pass engine (:mod:`cvdesign.passes`;
 see :func:`propose_states`), so the result is the same, byte for byte, on any
@@ -78,7 +89,7 @@ from .timing import lag_frames as _lag_frames
 
 __all__ = ["propose_states", "state_kinetics", "Exploration", "StateKinetics",
            "MIN_SILHOUETTE", "MIN_MEMORY", "MIN_SEPARATION", "SILHOUETTE_TIE",
-           "MAX_REPORT_FRAMES"]
+           "MAX_REPORT_FRAMES", "FEW_TRANSITIONS", "run_file_names"]
 
 #: Most frames of the report's picture of the proposed states (the clustering's
 #: subsample, thinned by a stride chosen from the frame counts).
@@ -114,6 +125,13 @@ MIN_MEMORY = 0.5
 #: practice).
 MIN_SEPARATION = 10.0
 
+#: Fewest entries and exits of a state whose fraction of frames is read as an equilibrium
+#: population, and fewest transitions between the proposed states behind TICA's slowest
+#: timescales: below it the summary warns (a state entered once and never left held 0.033 of
+#: the frames where its Boltzmann population was 0.168). A handful of transitions is the
+#: usual minimum (common practice).
+FEW_TRANSITIONS = 5
+
 #: Mean silhouettes closer than this count as equally good when choosing the number
 #: of states, and the fewest states win (our choice: about the spread of the
 #: silhouette between subsamples of a few thousand frames).
@@ -139,7 +157,10 @@ class StateKinetics:
         Probability of being in the same state one lag later,
         ``counts[i, i] / counts[i].sum()`` (NaN when no pair starts in it).
     populations : ndarray of shape (n_states,)
-        Fraction of the frames in each state (biased runs: of the weight).
+        Fraction of the frames in each state (biased runs: of the weight); the
+        key ``population`` of :meth:`as_dict`. An equilibrium population only
+        when the runs enter and leave the state many times (see
+        :data:`FEW_TRANSITIONS`).
     memory : ndarray of shape (n_states,)
         ``(staying - population) / (1 - population)``: 0 with no memory, 1
         when the state is never left (see :data:`MIN_MEMORY`).
@@ -231,6 +252,33 @@ class StateKinetics:
         return ("; ".join(f"{s} -> " + ", ".join(f"{t} {_count(c)}" for t, c in
                                                zip(self.states, self.counts[i]))
                           for i, s in enumerate(self.states)))
+
+
+def run_file_names(paths):
+    """How the outputs name run files: the file name when no two runs share it, else every
+    run by its full path (``states.csv``, the representative frames, ``tica.files``).
+
+    Parameters
+    ----------
+    paths : iterable of str or os.PathLike
+        The run files (a path given twice is one run).
+
+    Returns
+    -------
+    dict of str to str
+        Each distinct path (as ``str``) to its name in the outputs.
+
+    Examples
+    --------
+    >>> run_file_names(["x/run1.xtc", "x/run2.xtc"])
+    {'x/run1.xtc': 'run1.xtc', 'x/run2.xtc': 'run2.xtc'}
+    >>> run_file_names(["dup/a/run.xtc", "dup/b/run.xtc"])
+    {'dup/a/run.xtc': 'dup/a/run.xtc', 'dup/b/run.xtc': 'dup/b/run.xtc'}
+    """
+    paths = list(dict.fromkeys(str(p) for p in paths))
+    names = [p.replace("\\", "/").rsplit("/", 1)[-1] for p in paths]
+    unique = len(set(names)) == len(names)
+    return {p: (name if unique else p) for p, name in zip(paths, names)}
 
 
 def _count(c):
@@ -618,12 +666,22 @@ class Exploration:
     labels : dict of str to ndarray
         Per run file, the state name of every frame (object array).
     populations : dict of str to float
-        Fraction of all frames in each state.
+        Fraction of the frames in each state (biased runs: of the frames' summed
+        weights exp(V/kT), the reweighted fraction). It estimates the state's
+        equilibrium population only when the runs enter and leave the state many
+        times; with fewer than :data:`FEW_TRANSITIONS` entries or exits it
+        reflects where the runs started and how long they lasted, and
+        :attr:`warnings` says so. (The name, and the key ``population`` of
+        :meth:`StateKinetics.as_dict`, are kept for compatibility.)
     representatives : dict of str to dict
         Per state, ``{"file", "frame"}`` of the frame nearest to the state's
-        centre in the slow coordinates.
+        centre in the slow coordinates; ``file`` named as in :meth:`states_csv`
+        (:func:`run_file_names`: the file name, or the full path when two runs
+        share a file name).
     timescales_ps : list of float
-        Implied timescales of the TICA components, slowest first, ps.
+        Implied timescales of the TICA components, slowest first, ps: lower
+        bounds on the true timescales (variational principle; see the module
+        docstring).
     lag_ps : float
     n_slow : int
         Slow coordinates used for clustering.
@@ -638,8 +696,11 @@ class Exploration:
         verdict of each proposed state.
     warnings : list of str
         One per proposed state that is not metastable (each says "not
-        metastable" and why); also written to summary.md and printed by the
-        command line.
+        metastable" and why), one when the metastable states hold under half
+        the frames, and one per state entered or left fewer than
+        :data:`FEW_TRANSITIONS` times (its fraction of frames is not an
+        equilibrium population); also written to summary.md and printed by
+        the command line.
     bias : dict of str to (str, str or None)
         Per biased run file, its bias-energy file and column (empty: no
         biased run); :meth:`labelled_source` passes them on.
@@ -647,12 +708,14 @@ class Exploration:
         Temperature of the biased runs, K.
     report_tica : dict or None
         The ``tica`` entry of ``report-data.json`` (``docs/report-data-v1.md``):
-        ``coords`` (the first two slow coordinates, kinetic map, dimensionless, of at
+        ``coords`` (the first two TICA coordinates, kinetic map, dimensionless, of at
         most :data:`MAX_REPORT_FRAMES` frames of the clustering's subsample; None when
         TICA has a single coordinate), ``state`` (each frame's proposed state),
-        ``files`` (one name per run), ``file`` (index into ``files``) and ``frame``
-        (where each frame is), ``timescales_ps``
-        (of the two coordinates; None where not finite) and ``lag_ps``.
+        ``files`` (one name per run, as in :meth:`states_csv`), ``file`` (index into
+        ``files``) and ``frame`` (where each frame is), ``timescales_ps``
+        (of the two coordinates; None where not finite), ``lag_ps`` and ``n_slow``
+        (the coordinates clustered: a second coordinate beyond it is faster than the
+        lag and was not used for the states).
     """
 
     states: list
@@ -686,10 +749,9 @@ class Exploration:
     def states_csv(self):
         """Per-frame proposed states as CSV text (file, frame, state)."""
         lines = ["file,frame,state"]
-        names = [str(p).replace("\\", "/").rsplit("/", 1)[-1] for p in self.labels]
-        unique = len(set(names)) == len(names)
-        for (path, labels), name in zip(self.labels.items(), names):
-            shown = name if unique else str(path)
+        names = run_file_names(self.labels)
+        for path, labels in self.labels.items():
+            shown = names[str(path)]
             lines.extend(f"{shown},{i},{s}" for i, s in enumerate(labels))
         return "\n".join(lines) + "\n"
 
@@ -697,10 +759,14 @@ class Exploration:
         """Markdown lines describing the proposed states."""
         crit = self.criterion
         out = ["## Proposed states (unlabelled runs)", "",
-               f"TICA at lag {self.lag_ps:g} ps; implied timescales (ps): "
-               + ", ".join(_fmt_ts(t) if self.longest_run_ps is None or t < self.longest_run_ps
+               f"TICA at lag {self.lag_ps:g} ps; implied timescales (ps; lower bounds on the "
+               "true ones: a linear combination of features relaxes at least as fast as the "
+               "slowest process, by the variational principle, Noe and Nueske 2013): "
+               + ", ".join(_fmt_ts(t) if self.longest_run_ps is None
+                           or not t >= self.longest_run_ps  # NaN: no timescale read
                            else f"> {self.longest_run_ps:.3g} (not resolved by these runs)"
                            for t in self.timescales_ps[:6])
+               + self._few_transitions_text()
                + f". Clustered in the {self.n_slow} slowest coordinate(s) (kinetic map) with "
                "k-means. Number of states: "
                + ("given." if crit["name"] == "given" else
@@ -710,8 +776,9 @@ class Exploration:
                                          else " (not all metastable)")
                       for k, v in crit["values"].items()) + ")."), ""]
         kin = self.kinetics
+        share = ("fraction of frames (reweighted)" if self.bias else "fraction of frames")
         if kin is None:
-            out += ["| state | population | representative frame |", "| --- | ---: | --- |"]
+            out += [f"| state | {share} | representative frame |", "| --- | ---: | --- |"]
             for s in self.states:
                 r = self.representatives[s]
                 out.append(f"| {s} | {self.populations[s]:.3f} | {r['file']} frame "
@@ -720,13 +787,17 @@ class Exploration:
         out += [f"Metastability at the lag ({self.lag_ps:g} ps), from the runs: a state is "
                 "metastable when at least one transition into or out of it is seen, its "
                 "staying probability over the lag lies at least halfway between its "
-                f"population (no memory) and 1 (memory >= {MIN_MEMORY}), and runs forget "
+                f"fraction of frames (no memory) and 1 (memory >= {MIN_MEMORY}), and runs forget "
                 f"where they are inside it at least {MIN_SEPARATION:g} times faster than they "
                 "forget the state (memory time over the relaxation time inside it, both "
                 "-lag/ln of the autocorrelation at the lag). Lagged pairs never span a file "
                 f"or a gap. The runs contain {kin.n_transitions} transitions (changes of state "
-                "between visits lasting at least the lag).", "",
-                "| state | population | staying probability | memory | memory time (ps) | "
+                "between visits lasting at least the lag). A state's fraction of frames"
+                + (" (frames weighted by exp(V/kT): biased runs)" if self.bias else "")
+                + " estimates its equilibrium population only when the runs enter and leave "
+                f"it many times (at least {FEW_TRANSITIONS} each; fewer get a warning below).",
+                "",
+                f"| state | {share} | staying probability | memory | memory time (ps) | "
                 "relaxation inside (ps) | transitions out / in | metastable | "
                 "representative frame |",
                 "| --- | ---: | ---: | ---: | ---: | ---: | ---: | --- | --- |"]
@@ -746,6 +817,22 @@ class Exploration:
         out += [""] + [f"- **warning**: {w}" for w in self.warnings]
         return out + [f"- {n}" for n in self.notes] + [""]
 
+
+    def _few_transitions_text(self):
+        """The summary's flag on TICA's slow timescales when few transitions back them."""
+        kin = self.kinetics
+        if kin is None or kin.n_transitions >= FEW_TRANSITIONS:
+            return ""
+        return (f" (the slowest backed by only {kin.n_transitions} transition(s) between the "
+                "proposed states in the runs: poorly determined)")
+
+    def states_line(self):
+        """The command line's one-line account of the proposed states: each state's fraction
+        of the frames (reweighted for biased runs) and a representative frame."""
+        share = "of frames, reweighted" if self.bias else "of frames"
+        return "proposed states: " + ", ".join(
+            f"{s} ({self.populations[s]:.1%} {share}; e.g. {self.representatives[s]['file']} "
+            f"frame {self.representatives[s]['frame']})" for s in self.states)
 
     def _memory_time(self, kin, i):
         """The memory time of state `i` for the summary: for a state never left, only the
@@ -778,8 +865,11 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     (1) per-feature variances and autocorrelations at the lag, (2) the lagged
     moments of the screened features for TICA, (3) the slow coordinates of a
     subsample of frames -- every ``max(1, n_frames // 20000)``-th frame of each
-    run, by its rank in the run, so at most 20,000 frames plus one per run --
-    on which k-means is fitted and the silhouette computed, (4) for every
+    run, by its rank in the run: every frame below 40,000 frames, else between
+    20,000 and 40,000 frames (the stride is whole) plus at most one per run --
+    on which k-means is fitted and the silhouette computed (on every
+    ``max(1, n // 4000)``-th of those ``n``: every one below 8,000, else
+    between 4,000 and 8,000), (4) for every
     candidate number of states at once, the state of every frame (the nearest
     k-means centre), the lag-time transition counts, the transitions between
     visits, the within-state lagged moments and each state's representative
@@ -936,22 +1026,24 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     wide = _Projection(screened.columns, screened.center, screened.scale, tica.mean_,
                        tica.eigenvectors_[:, :n_wide], tica.eigenvalues_[:n_wide])
 
-    # the clustering sees at most about 20,000 evenly spaced frames (by rank in each run,
-    # so the same for every split), the silhouette at most 4,000 of those
+    # the clustering sees evenly spaced frames (by rank in each run, so the same for every
+    # split): all of fewer than 40,000, else 20,000 to 40,000 (plus at most one per run: the
+    # stride is whole); the silhouette every one of fewer than 8,000 of those, else 4,000
+    # to 8,000
     n_frames = int(screened.segment_counts.sum())
     note(f"slow coordinates of a subsample of the {n_frames} frames")
-    stride = max(1, n_frames // 20000)
+    stride = _subsample_stride(n_frames, 20000)
     report_stride = thinning_stride(screened.segment_counts.reshape(-1), MAX_REPORT_FRAMES,
                                     multiple_of=stride)
     wide_y, sample = run_pass(_SamplePass(screened.featurizer, wide, stride, report_stride),
                               source, executor=executor, tasks=plan, label="runs: sample")
     fit_y = np.ascontiguousarray(wide_y[:, :n_slow])
-    sil_y = fit_y[::max(1, fit_y.shape[0] // 4000)]
+    sil_y = fit_y[::_subsample_stride(fit_y.shape[0], 4000)]
     models = {}
 
     def cluster(k):
         # one thread: k-means sums depend on how the frames are split between threads, so
-        # this keeps the result the same on every machine (and on at most 20,000 frames of
+        # this keeps the result the same on every machine (and on at most 40,000 frames of
         # at most three coordinates it is also faster than waiting for busy cores)
         with threadpool_limits(limits=1):
             models[k] = KMeans(n_clusters=k, n_init=10, random_state=seed).fit(
@@ -1034,7 +1126,7 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     if not kin.metastable.any():
         raise InputError(
             f"none of the {len(states)} proposed states is metastable at lag {lag:g} ps: "
-            + "; ".join(f"{s} (population {kin.populations[i]:.2f}, stays {lag:g} ps with "
+            + "; ".join(f"{s} (fraction of frames {kin.populations[i]:.2f}, stays {lag:g} ps with "
                         f"probability {kin.staying[i]:.2f}): {kin.reasons[i]}"
                         for i, s in enumerate(states))
             + f". The runs contain {kin.n_transitions} transitions between these states; "
@@ -1048,7 +1140,7 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
         meta = [s for i, s in enumerate(states) if kin.metastable[i]]
         raise InputError(
             f"only one of the {len(states)} proposed states is metastable at lag {lag:g} ps "
-            f"({meta[0]}, population {kin.populations[states.index(meta[0])]:.2f}); the "
+            f"({meta[0]}, fraction of frames {kin.populations[states.index(meta[0])]:.2f}); the "
             "others are not: "
             + "; ".join(f"{s}: {kin.reasons[i]}" for i, s in enumerate(states)
                         if not kin.metastable[i])
@@ -1066,11 +1158,13 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
                         "broad state (longer runs or another --lag may settle it)")
     note(f"{len(states)} states proposed; staying probabilities at {lag:g} ps: "
          + ", ".join(f"{s} {kin.staying[i]:.3f}" for i, s in enumerate(states)))
+    warnings += _few_transition_warnings(kin, reweighting is not None)
     c = fit["column"]
+    file_names = run_file_names(seg.path for seg in source.segments)
     reps = {}
     for i in used:
         _, seg, frame = found["representatives"][c][i]
-        reps[names[i]] = {"file": source.segments[seg].path.name, "frame": frame}
+        reps[names[i]] = {"file": file_names[str(source.segments[seg].path)], "frame": frame}
     if reweighting is None:
         frames_in = sum(found["sums"][c].frames.values())
         pops = {names[i]: float(frames_in[i] / n_frames) for i in used}
@@ -1083,7 +1177,7 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     lengths = [screened.segment_counts[si].sum() * dt for si, dt in timesteps.items()
                if dt is not None and screened.segment_counts[si].sum() > 0]
     report_tica = _report_tica(source, sample, wide_y[sample["rows"]], n_slow, means[k], names,
-                               ts_ps[:n_wide], lag)
+                               ts_ps[:n_wide], lag, file_names)
     return Exploration(states=states, labels=_frame_labels(source, found["labels"], c, names),
                        populations=pops, representatives=reps, timescales_ps=ts_ps,
                        lag_ps=lag, n_slow=n_slow, criterion=criterion, notes=notes,
@@ -1092,6 +1186,13 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
                        bias={str(seg.path): (str(seg.bias_path), seg.bias_column)
                              for seg in source.segments if seg.bias is not None},
                        temperature_k=None if reweighting is None else reweighting.temperature_k)
+
+
+def _subsample_stride(n, least):
+    """Stride of an evenly spaced subsample of `n` items with at least `least` of them:
+    ``max(1, n // least)``, so every item below ``2 * least``, else between `least` and
+    ``2 * least`` items (per run, one more at most: each run keeps its first frame)."""
+    return max(1, n // least)
 
 
 def _biased_notes(reweighting, lag_frames):
@@ -1106,6 +1207,20 @@ def _biased_notes(reweighting, lag_frames):
         "the transitions between visits and the time spent in each state are counted on "
         "the runs' frames in their own time (with a bias that is positive, shorter than in "
         "rescaled time, so the metastability tests are the stricter for it)"]
+
+
+def _few_transition_warnings(kin, biased):
+    """A warning per state entered or left fewer than :data:`FEW_TRANSITIONS` times: its
+    fraction of frames is not an equilibrium population."""
+    share = "reweighted fraction of the frames" if biased else "fraction of the frames"
+    out = []
+    for i, s in enumerate(kin.states):
+        if min(kin.entries[i], kin.exits[i]) < FEW_TRANSITIONS:
+            out.append(f"state {s} is entered {int(kin.entries[i])} and left "
+                       f"{int(kin.exits[i])} time(s) in the runs (fewer than {FEW_TRANSITIONS}): "
+                       f"its {share} ({kin.populations[i]:.3f}) depends on where the runs "
+                       "started and how long they lasted; it is not an equilibrium population")
+    return out
 
 
 @dataclass
@@ -1236,17 +1351,18 @@ class _SamplePass(Pass):
         return y, sample
 
 
-def _report_tica(source, sample, y, n_slow, centers, names, timescales_ps, lag_ps):
-    """The report's ``tica`` entry: the sample's first two slow coordinates and the state
-    of the nearest k-means centre (the rule that gave every frame its state)."""
+def _report_tica(source, sample, y, n_slow, centers, names, timescales_ps, lag_ps, file_names):
+    """The report's ``tica`` entry: the sample's first two TICA coordinates, the state of the
+    nearest k-means centre in the first `n_slow` (the rule that gave every frame its state)
+    and `n_slow`; the runs named by `file_names` (:func:`run_file_names`)."""
     state = np.argmin(_squared_distances(np.ascontiguousarray(y[:, :n_slow]), centers), axis=1)
     return {"coords": y[:, :2].tolist() if y.shape[1] >= 2 else None,
             "state": [names[i] for i in state.tolist()],
-            "files": [seg.path.name for seg in source.segments],
+            "files": [file_names[str(seg.path)] for seg in source.segments],
             "file": sample["segment"].tolist(),
             "frame": sample["frame"].tolist(),
             "timescales_ps": [float(t) if math.isfinite(t) else None for t in timescales_ps],
-            "lag_ps": float(lag_ps)}
+            "lag_ps": float(lag_ps), "n_slow": int(n_slow)}
 
 
 def _nearer(a, b):
