@@ -461,6 +461,60 @@ def test_runs_report_draws_the_frames_in_the_tica_plane_by_proposed_state(runs_o
     assert all(len(p["per_state"]) == 2 for p in traces)  # the runs hop between the states
     assert "Proposed states" in report.html and "states proposed from unlabelled runs" \
         in report.html
+    # TICA's timescales are lower bounds (variational principle: Noe and Nueske, Multiscale
+    # Model. Simul. 2013), on the axes and in the timescale figure's caption
+    assert tica["n_slow"] in (1, 2)
+    tfig = figs["tica-states"]
+    assert tfig.data["used"] == [True, tica["n_slow"] == 2]
+    assert "a lower bound" in tfig.data["axis_labels"][0]
+    assert "lower bounds on the true ones" in tfig.caption
+    assert "lower bounds on the true timescales" in figs["implied-timescales"].caption
+    assert "The runs are biased" not in figs["implied-timescales"].caption + tfig.caption
+    assert "fraction of the frames (reweighted for biased runs" in report.html
+
+
+def test_runs_report_of_biased_runs_says_so_in_each_caption(runs_out, tmp_path):
+    # The -kT ln p panel said "unbiased-sampling estimate", the TICA picture drew biased frames
+    # without a word about their weights, the timescales' lags in rescaled time unsaid. The
+    # report knows the runs are biased from heldout.weighted; here the runs' report data is
+    # marked so (the figures' numbers are not the subject).
+    out = tmp_path / "out"
+    shutil.copytree(runs_out["out"], out)
+    path = out / "report-data.json"
+    data = json.loads(path.read_text())
+    for cv in data["cvs"]:
+        cv["heldout"]["weighted"] = list(data["states"])
+    path.write_text(json.dumps(data))
+    figs = {f.name: f for f in build_report(read_output(out)).figures}
+    dist = figs["cv-01-distributions"]
+    assert "from the frames of biased runs reweighted by exp(V/kT)" in dist.caption
+    assert "unbiased sampling" not in dist.caption
+    assert "\u2212kT ln p per state at 300 K: reweighted" in dist.svg
+    assert "drawn without their reweighting factors exp(V/kT)" in figs["tica-states"].caption
+    assert "lags and timescales are in rescaled time" in figs["implied-timescales"].caption
+    assert figs["implied-timescales"].data["biased"] is True
+
+
+def test_tica_figure_labels_a_second_coordinate_faster_than_the_lag_as_unused():
+    # The reviewer's case: lag 20 ps, second timescale 12.7 ps, clustered in the first only;
+    # the axis had read "slow coordinate 2 (... timescale 12.7 ps)".
+    xy = np.random.default_rng(3).normal(size=(40, 2))
+    lab = ["S1"] * 20 + ["S2"] * 20
+    for n_slow in (1, None):  # None: a document without n_slow, judged by the timescale
+        fig = fg.tica_states(xy, lab, states=["S1", "S2"], lag_ps=20.0,
+                             timescales_ps=[85.0, 12.7], n_slow=n_slow)
+        assert fig.data["used"] == [True, False]
+        assert fig.data["axis_labels"][1] == ("TICA coordinate 2 (TICA timescale 12.7 ps):\n"
+                                              "faster than the 20 ps lag, not used for the "
+                                              "states")
+        assert "slow coordinate 2" not in fig.svg
+        assert "the states were clustered in the slow coordinate(s) alone" in fig.caption
+    both = fg.tica_states(xy, lab, states=["S1", "S2"], lag_ps=20.0,
+                          timescales_ps=[85.0, 31.0], n_slow=2)
+    assert both.data["used"] == [True, True]
+    assert both.data["axis_labels"][1] == ("slow coordinate 2 (dimensionless, kinetic map; "
+                                           "timescale \u2265 31 ps, a lower bound)")
+    assert "faster than the" not in both.caption
 
 
 def test_funnel_writes_its_report_and_data_beside_out_with_the_positions_in_its_frame(

@@ -415,7 +415,10 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
             _no_data(left, "no held-out frames")
         right.set_xlabel(f"CV ({units})")
         right.set_ylabel("\u2212kT ln p (kJ/mol)")
-        right.set_title(f"\u2212kT ln p per state at {temperature_k:g} K: unbiased-sampling\n"
+        weighted = _weighted_states(heldout, outside, states)
+        kind = ("unbiased-sampling" if not set(weighted) & set(density) else "reweighted"
+                if set(weighted) >= set(density) else "unbiased-sampling or reweighted")
+        right.set_title(f"\u2212kT ln p per state at {temperature_k:g} K: {kind}\n"
                         "estimate, not the free energy of the transition")
         data = {"edges": edges.tolist(), "density": density, "profile_kj_mol": profile,
                 "means": means, "stds": stds, "counts": counts, "outside": outside,
@@ -431,10 +434,36 @@ def cv_distributions(name, label, heldout, states_stats, *, states, temperature_
         caption = (f"{label}: does the CV split the states on frames the fit never saw? "
                    "Left, each state's held-out histogram with its mean and spread from the "
                    f"spec; right, \u2212kT ln p per state (kJ/mol, {temperature_k:g} K), an "
-                   "estimate from unbiased sampling within each state, not the free energy "
-                   "of the transition." + _outside_words(outside, heldout.get("weighted"))
+                   + _sampling_words(weighted, density)
+                   + ", not the free energy of the transition."
+                   + _outside_words(outside, heldout.get("weighted"))
                    + _range_words(reachable, drawn, at_bound))
         return _finish(fig, name, caption, alt, data)
+
+
+def _weighted_states(heldout, outside, states):
+    """The states whose held-out counts are sums of frame weights (biased runs): the
+    document's ``weighted``, else those whose count beyond the bins is not whole."""
+    weighted = heldout.get("weighted")
+    if weighted is None:
+        weighted = [s for s, v in outside.items() if isinstance(v, float)]
+    return [s for s in states if s in weighted]
+
+
+def _sampling_words(weighted, drawn):
+    """Where the histograms come from: unbiased sampling within each state, or, for the
+    states with biased runs, their frames reweighted by exp(V/kT)."""
+    unbiased = "estimate from unbiased sampling within each state"
+    weighted = [s for s in weighted if s in drawn]
+    if not weighted:
+        return unbiased
+    words = ("estimate from the frames of biased runs reweighted by exp(V/kT) (an unbiased "
+             "estimate only as far as the reweighting holds; effective sample sizes in the "
+             "summary)")
+    if set(weighted) >= set(drawn):
+        return words + " within each state"
+    return (unbiased + "; for " + ", ".join(weighted) + ", which hold biased runs, an "
+            + words)
 
 
 def _outside_words(outside, weighted):
@@ -758,7 +787,7 @@ def redundancy_groups(groups):
 
 
 # ------------------------------------------------------------------------- slow modes
-def implied_timescales(curves, *, tica=None, within=None, crossing=False):
+def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased=False):
     """Implied timescales against the lag where they were computed.
 
     Parameters
@@ -778,6 +807,9 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False):
     crossing : bool, default=False
         Whether the runs cross between the states (the caption then says what these
         curves, of pairs within one state, do not show).
+    biased : bool, default=False
+        Whether the runs are biased: the caption then says that lags and timescales
+        are in rescaled time.
 
     Returns
     -------
@@ -806,7 +838,8 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False):
             t = [None if v is None else float(v) for v in tica["timescales_ps"]]
             shown_t = [v for v in t if v is not None]
             ax.plot([tica["lag_ps"]] * len(shown_t), shown_t, linestyle="none", marker="x",
-                    color="black", ms=6, label=f"TICA slow coordinates at {tica['lag_ps']:g} ps")
+                    color="black", ms=6,
+                    label=f"TICA at {tica['lag_ps']:g} ps (lower bounds on the timescales)")
             tica_data = {"lag_ps": float(tica["lag_ps"]), "timescales_ps": t}
             lags_seen.append(float(tica["lag_ps"]))
         _timescale_axes(ax, lags_seen, "all runs about their common mean" if within else
@@ -851,6 +884,18 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False):
                         "the offsets between them; the CV's integrated time in the ranking, "
                         "which sets the bias hints' deposition interval, comes from these "
                         "autocorrelations.")
+        if tica_data is not None:
+            caption += (" The crosses are TICA's implied timescales at its lag (--runs): lower "
+                        "bounds on the true timescales, since a linear combination of features "
+                        "relaxes at least as fast as the slowest process (variational "
+                        "principle, No\u00e9 and N\u00fcske 2013); the summary flags them when "
+                        "few transitions between the proposed states back them.")
+        if biased:
+            caption += (" The runs are biased: lags and timescales are in rescaled time (each "
+                        "frame's step dt exp(V/kT)) and pairs weigh as their first frame, an "
+                        "estimate of the unbiased dynamics that is exact only when the bias "
+                        "vanishes at the barriers.")
+        data["biased"] = bool(biased)
         return _finish(fig, "implied-timescales", caption, alt, data)
 
 
@@ -889,7 +934,8 @@ def _timescale_axes(ax, lags_seen, title):
     ax.set_title(title)
 
 
-def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):
+def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=None,
+                biased=False):
     """Frames in the two slowest TICA coordinates, coloured by proposed state.
 
     Parameters
@@ -903,12 +949,21 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):
     lag_ps : float
         The TICA lag, ps.
     timescales_ps : sequence of float or None, optional
-        Implied timescales of the slow coordinates, ps (None: not finite).
+        Implied timescales of the coordinates, ps (None: not finite); lower bounds
+        on the true ones, as the axis labels say.
+    n_slow : int or None, optional
+        The coordinates the states were clustered in; a coordinate beyond it is
+        labelled as faster than the lag and not used for the states. None: a
+        coordinate counts as used unless its timescale is at most `lag_ps`.
+    biased : bool, default=False
+        Whether the runs are biased: the caption says the frames are drawn
+        without their weights.
 
     Returns
     -------
     Figure
-        ``data``: ``counts`` and ``centroids`` per state.
+        ``data``: ``counts`` and ``centroids`` per state, ``used`` (per axis,
+        whether the states were clustered in it) and ``axis_labels``.
 
     Examples
     --------
@@ -916,6 +971,16 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):
     ...                   states=["S1", "S2"], lag_ps=2.0)
     >>> fig.data["counts"], fig.data["centroids"]["S2"]
     ({'S1': 1, 'S2': 2}, [1.1, 0.1])
+
+    A second coordinate faster than the lag (clustered in the first alone):
+
+    >>> fig = tica_states([[0.0, 0.1], [1.0, 0.0]], ["S1", "S2"], states=["S1", "S2"],
+    ...                   lag_ps=20.0, timescales_ps=[80.0, 12.7], n_slow=1)
+    >>> fig.data["used"]
+    [True, False]
+    >>> print(fig.data["axis_labels"][1])
+    TICA coordinate 2 (TICA timescale 12.7 ps):
+    faster than the 20 ps lag, not used for the states
     """
     xy = np.asarray(coords, dtype=np.float64).reshape(-1, 2)
     lab = np.asarray(list(labels), dtype=object)
@@ -928,9 +993,21 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):
     counts, centroids = {}, {}
     ts = list(timescales_ps or [])
 
+    def used(k):
+        if n_slow is not None:
+            return k < n_slow
+        return not (len(ts) > k and ts[k] is not None and ts[k] <= lag_ps)
+
     def axis_label(k):
-        t = f", timescale {ts[k]:.3g} ps" if len(ts) > k and ts[k] is not None else ""
-        return f"slow coordinate {k + 1} (dimensionless, kinetic map{t})"
+        known = len(ts) > k and ts[k] is not None
+        if not used(k):
+            return (f"TICA coordinate {k + 1}" + (f" (TICA timescale {ts[k]:.3g} ps)" if known
+                                                  else "")
+                    + f":\nfaster than the {lag_ps:g} ps lag, not used for the states")
+        return (f"slow coordinate {k + 1} (dimensionless, kinetic map"
+                + (f"; timescale \u2265 {ts[k]:.3g} ps, a lower bound)" if known else ")"))
+
+    axis_labels = [axis_label(0), axis_label(1)]
 
     with _style():
         fig, ((ax,),) = _new(5.4, 4.2)
@@ -941,19 +1018,31 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None):
                 centroids[s] = [round(float(v), 12) for v in xy[sel].mean(axis=0)]
                 ax.scatter(xy[sel, 0], xy[sel, 1], s=3, color=colors[s], lw=0, label=s,
                            rasterized=True)
-        ax.set_xlabel(axis_label(0))
-        ax.set_ylabel(axis_label(1))
+        ax.set_xlabel(axis_labels[0])
+        ax.set_ylabel(axis_labels[1])
         ax.set_title(f"two slowest TICA coordinates (lag {lag_ps:g} ps), by proposed state")
         ax.legend(handles=[_legend_dot(colors[s]) for s in states], labels=list(states),
                   loc="best")
         data = {"counts": counts, "centroids": centroids,
-                "colors": {s: colors[s] for s in states}}
+                "colors": {s: colors[s] for s in states}, "used": [used(0), used(1)],
+                "axis_labels": axis_labels}
         alt = (f"{xy.shape[0]} frames in the two slowest TICA coordinates at lag {lag_ps:g} ps, "
                "coloured by proposed state: " + ", ".join(
                    f"{s} {counts[s]} frames" for s in states) + ".")
         caption = ("Proposed states: frames of the runs (a subsample) in the two slowest TICA "
                    "coordinates, coloured by the state k-means gave them; well-separated "
-                   "clouds are distinct slow states.")
+                   "clouds are distinct slow states. The axes' timescales are TICA's, lower "
+                   "bounds on the true ones (variational principle, No\u00e9 and N\u00fcske "
+                   "2013).")
+        if not used(1):
+            caption += (f" The vertical axis is a TICA coordinate faster than the {lag_ps:g} ps "
+                        "lag, drawn to spread the points: the states were clustered in the "
+                        "slow coordinate(s) alone, so their separation along it means nothing.")
+        if biased:
+            caption += (" The runs are biased: the points are frames as sampled, drawn without "
+                        "their reweighting factors exp(V/kT), so their density is the biased "
+                        "sampling's, not equilibrium's (TICA and the states' centres come from "
+                        "the reweighted statistics).")
         return _finish(fig, "tica-states", caption, alt, data)
 
 

@@ -458,12 +458,13 @@ def _suggest(page, output, parsed):
                 if t.get("timescale_within_runs_ps") is not None:
                     within.append((f"rank {c['rank']}", t["lag_ps"],
                                    t["timescale_within_runs_ps"]))
+    biased = _biased_runs(data)
     if curves or tica is not None:
         page.figure(fg.implied_timescales(
             curves, tica=None if tica is None else {"lag_ps": tica["lag_ps"],
                                                    "timescales_ps": tica["timescales_ps"]},
             within=within, crossing=any(shown_slowness(r) == "_transitions"
-                                        for r in ranking["ranking"])))
+                                        for r in ranking["ranking"]), biased=biased))
     else:
         page.not_available("implied timescales against the lag",
                            f"{data_name} is missing" if data is None else
@@ -479,11 +480,22 @@ def _suggest(page, output, parsed):
         else:
             page.figure(fg.tica_states(tica["coords"], tica["state"], states=states,
                                        lag_ps=tica["lag_ps"],
-                                       timescales_ps=tica.get("timescales_ps")))
-        page.add("<p>Every frame's proposed state is in <code>states.csv</code>; populations, "
-                 "staying probabilities and transitions are in the run summary below.</p>")
+                                       timescales_ps=tica.get("timescales_ps"),
+                                       n_slow=tica.get("n_slow"), biased=biased))
+        page.add("<p>Every frame's proposed state is in <code>states.csv</code>; each state's "
+                 "fraction of the frames (reweighted for biased runs; an equilibrium "
+                 "population only when the runs enter and leave it many times), staying "
+                 "probabilities and transitions are in the run summary below.</p>")
     page.reading = "summary.md"
     _notes_and_summary(page, output.files.get("summary.md"), caution)
+
+
+def _biased_runs(data):
+    """Whether some input run is biased, from the report data: a state whose held-out counts
+    are sums of frame weights (``heldout.weighted``, written when some run is biased)."""
+    if data is None:
+        return False
+    return any((c.get("heldout") or {}).get("weighted") for c in data.get("cvs", []))
 
 
 def _notes_and_summary(page, summary, caution):
