@@ -1012,6 +1012,14 @@ def test_populations_leave_out_a_biased_run_that_stays_in_one_state(tmp_path):
     assert f"left out: 1 biased run that stays in one state ({left_run})" in note
     # the left-only run is still reweighted with the state's other frames
     assert both.reweighting().frames[left] == int((labels == "left").sum()) + stay.size
+    # a third state that no crossing run visits has no population, and the note says so
+    # (it had listed the other two as if they were all)
+    three = Source(str(pdb), temperature=well.temperature)
+    three.add_labelled(str(cross), labels, bias=str(b_cross))
+    three.add(str(left_run), "far", bias=str(b_left))
+    notes, _ = three.reweighting().describe()
+    note = next(n for n in notes if n.startswith("reweighted state populations"))
+    assert "; no population for 'far': those runs never visit it" in note
 
 
 def test_a_file_split_by_frame_ranges_into_two_states_counts_as_a_crossing_run(tmp_path):

@@ -90,3 +90,20 @@ def test_a_state_whose_weight_sits_on_one_frame_is_refused_naming_the_bias(demo_
             "1.00 of 200 frames: one frame carries almost all its weight") in err
     assert "bias.txt" in err and "frozen" not in err
     assert not (tmp_path / "out").exists()
+
+
+def test_a_failure_after_the_outputs_are_written_says_they_were(demo_files, tmp_path, capsys,
+                                                                monkeypatch):
+    # The outputs are written whole before the command prints its results; a failure or an
+    # interrupt while printing had said "nothing was written" beside a full directory.
+    from cvdesign.pipeline.output import Suggestions
+
+    for exc, status in ((ZeroDivisionError("while printing"), 3), (KeyboardInterrupt(), 130)):
+        def broken(self, n=5, exc=exc):
+            raise exc
+        monkeypatch.setattr(Suggestions, "top_table", broken)
+        out = tmp_path / f"out{status}"
+        assert main(_argv(demo_files, out)) == status
+        err = capsys.readouterr().err
+        assert f"the outputs in {out} had been written, whole, before it" in err, err
+        assert "no output was written" not in err and (out / "ranking.json").exists()

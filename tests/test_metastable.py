@@ -283,6 +283,29 @@ def test_a_proposal_with_a_single_metastable_state_is_refused(tmp_path, monkeypa
         propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
 
 
+def test_among_equal_fractions_of_metastable_states_one_with_two_is_chosen(tmp_path,
+                                                                           monkeypatch):
+    # When no clustering is all metastable, the largest fraction of metastable states is
+    # taken; fractions tie easily (1 of 2, 2 of 4), and the better silhouette of 2 states
+    # then chose a proposal with a single metastable state, refused, although 4 states
+    # had two. Here the first half of the states of any clustering pass the test.
+    import cvdesign.pipeline.explore as explore
+
+    real = explore._KineticSums.kinetics
+
+    def first_half(self, states, lag_ps=None):
+        kin = real(self, states, lag_ps=lag_ps)
+        kin.metastable = np.arange(len(states)) < len(states) // 2
+        kin.reasons = ["" if m else "made to fail here" for m in kin.metastable]
+        return kin
+    monkeypatch.setattr(explore._KineticSums, "kinetics", first_half)
+    xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
+    top, paths = _write_walkers(tmp_path, xs, seed=2)
+    exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+    assert len(exp.states) in (4, 6) and int(exp.kinetics.metastable.sum()) >= 2
+    assert "among those with two or more" in exp.criterion["rule"]
+
+
 @pytest.mark.parametrize("walk", ["flat", "ar1"])
 def test_random_walk_runs_are_refused_as_not_metastable(tmp_path, walk):
     if walk == "flat":

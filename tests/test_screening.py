@@ -141,3 +141,17 @@ def test_few_frames_in_a_state_get_the_overlap_bias_note(fast_and_slow):
     assert not [n for n in result.notes if n.startswith("overlap:")]
     note = _overlap_note(["A", "B"], np.array([[3000, 0], [0, 400]]), None)
     assert len(note) == 1 and note[0].startswith("overlap: few frames ('B' 400; histograms of")
+
+
+def test_the_lag_grid_keeps_pairs_of_every_state_at_every_lag():
+    # Up to half the longest run of all, a state of short runs (3 x 60 frames beside
+    # 3 x 2000) dropped out of the long lags, and the report's curves about one common mean
+    # then lost the offset between the states there (452 ps falling to 2.3 ps, no word).
+    # The grid ends at half the longest run of the state whose longest run is shortest;
+    # one short run beside long ones of its state still does not cap it.
+    from cvdesign.pipeline.timing import iat_lags
+
+    short_state = np.array([[60, 0]] * 3 + [[0, 2000]] * 3)
+    assert int(iat_lags(short_state).max()) == 30
+    one_short_run = np.array([[40, 0], [2000, 0], [0, 2000], [0, 2000]])
+    assert int(iat_lags(one_short_run).max()) == 1000

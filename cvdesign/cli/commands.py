@@ -734,6 +734,7 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
         page, why = _report_page(Output("suggest", Path(out).resolve().name,
                                         result.output_files()))
     result.write(out, force=args.force, extra={"report.html": page} if page else None)
+    args.written = str(out)  # (what a later failure or interrupt must not deny)
     report_ok = why is None
     if not report_ok:
         print(f"cvdesign suggest: error: the other outputs were written, but the report "
@@ -1408,6 +1409,7 @@ def _cmd_funnel(args):
     except OSError as exc:
         raise InputError(f"cannot write the output ({exc.strerror or exc}); nothing was "
                          "written") from None
+    args.written = ", ".join(str(p) for p in paths)
     prm = result["params"]
     print(f"ligand: {describe_selection(top, lig, args.ligand)}")
     print(f"pocket: {describe_selection(top, pocket, args.pocket)}")
@@ -1582,7 +1584,10 @@ def _cmd_demo(args):
                             md_step_fs=2.0, workers=1, scheduler=None,
                             no_report=args.no_report)
     print(f"cvdesign demo: {manifest['description']}\n", file=sys.stdout)
-    result, report_ok = _run_suggest(top, states, args.out, ns, sys.stdout)
+    try:
+        result, report_ok = _run_suggest(top, states, args.out, ns, sys.stdout)
+    finally:  # (what a failure or interrupt after the writing must not deny)
+        args.written = getattr(ns, "written", None)
     slow = manifest["slow_dihedral"]
     slow_id = "dihedral:" + "-".join(str(a) for a in slow["atoms"])
     in_rank1 = any(t["descriptor"] == slow_id for t in result.ranking[0]["terms"])
@@ -1642,10 +1647,14 @@ def main(argv=None):
     """Run the ``cvdesign`` command; return its exit status.
 
     0 on success, 1 when ``check`` finds values beyond the tolerance, 2 for bad
-    input (a message on standard error, nothing written), 130 when
-    interrupted, and 141 when standard output was closed before everything was
-    printed (``cvdesign hints ... | head -1``): quietly, with file descriptor 1
-    then pointed at /dev/null so that the interpreter's final flush stays quiet.
+    input (a message on standard error, nothing written) and when the report of
+    ``suggest``, ``demo`` or ``funnel`` could not be built (its other outputs are
+    written, and the message says so), 3 for an unexpected failure inside cvdesign
+    (:data:`INTERNAL_ERROR_STATUS`, a defect), 130 when interrupted, and 141 when
+    standard output was closed before everything was printed (``cvdesign hints ... |
+    head -1``): quietly, with file descriptor 1 then pointed at /dev/null so that the
+    interpreter's final flush stays quiet. The messages of 3 and 130 say whether
+    outputs had been written.
     """
     argv = sys.argv[1:] if argv is None else list(argv)
     try:
@@ -1659,6 +1668,14 @@ def main(argv=None):
     except BrokenPipeError:
         _stdout_to_devnull()
         return EXIT_BROKEN_PIPE
+
+
+def _what_was_written(args):
+    """'no output was written', or where the outputs were written before a failure or an
+    interrupt while the command was printing its results (``args.written``)."""
+    written = getattr(args, "written", None)
+    return ("no output was written" if written is None else
+            f"the outputs in {written} had been written, whole, before it")
 
 
 def _main(argv):
@@ -1688,7 +1705,7 @@ def _main(argv):
               f"{exc.strerror or exc}; nothing was written", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("cvdesign: interrupted; no output was written", file=sys.stderr)
+        print(f"cvdesign: interrupted; {_what_was_written(args)}", file=sys.stderr)
         return 130
     except Exception as exc:  # noqa: BLE001 - a defect of cvdesign: said plainly, not as 1
         # (exit status 1 is check's "the engine's values deviate"); -v shows the traceback
@@ -1697,7 +1714,7 @@ def _main(argv):
 
             traceback.print_exc(file=sys.stderr)
         print(f"cvdesign {args.command}: internal error: {type(exc).__name__}: {exc}. This is "
-              f"a defect of cvdesign, not of your input as far as it could tell; nothing was "
-              f"written. Please report it with the command line (and -v's traceback)",
-              file=sys.stderr)
+              f"a defect of cvdesign, not of your input as far as it could tell; "
+              f"{_what_was_written(args)}. Please report it with the command line (and -v's "
+              "traceback)", file=sys.stderr)
         return INTERNAL_ERROR_STATUS

@@ -727,6 +727,11 @@ class Reweighting:
                     f"{verb} two or more states ({', '.join(used)}): {', '.join(parts)}; free "
                     f"energies relative to {self.states[ref]!r} (no interval; meaningful when "
                     "those runs sample one ensemble and cross between the states)")
+            unseen = [self.states[s] for s in range(len(self.states))
+                      if not (ok[s] and pops[s] > 0)]
+            if unseen:  # (a population over these runs' frames says nothing about them)
+                note += (f"; no population for {', '.join(map(repr, unseen))}: those runs "
+                         "never visit it")
             if left:
                 verb, its = ("stays", "its") if len(left) == 1 else ("stay", "their")
                 note += (f"; left out: {_runs(len(left))} that {verb} in one state "

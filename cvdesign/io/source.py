@@ -1006,7 +1006,7 @@ class Source:
             raise InputError(f"bias-energy file {str(bias)!r} holds {energies.size} bias "
                              f"energies, but trajectory {str(path)!r} has {n_file} frames; give "
                              "one bias energy per frame of the whole trajectory, frame 0 first")
-        if times is not None and stores_time(path):  # the first two frames: cheap, at once
+        if times is not None and stores_time(path):  # frames 0, 1 and the last: cheap, at once
             stored = self._stored_step(path)
             if stored is not None and stored[1] > stored[0]:  # (else: no real stored times)
                 t0, t1, k, tk = stored  # frames 0, 1 and the last (k), read anyway

@@ -1104,11 +1104,15 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
         else:
             frac = {k: float(fits[k]["kinetics"].metastable.mean()) for k in scores
                     if scores[k] >= MIN_SILHOUETTE}
-            chosen = max(frac, key=lambda k: (frac[k], scores[k], -k))
+            two = {k: int(fits[k]["kinetics"].metastable.sum()) >= 2 for k in frac}
+            # (two metastable states first: one alone is refused below, and fractions tie
+            # easily, 1 of 2 and 2 of 4)
+            chosen = max(frac, key=lambda k: (two[k], frac[k], scores[k], -k))
             if frac[chosen] == 0:
                 chosen = best  # none metastable anywhere: refused below, with these numbers
             rule = ("no clustering has only metastable states, so the one with the largest "
-                    "fraction of metastable states (then the largest mean silhouette)")
+                    "fraction of metastable states among those with two or more (then the "
+                    "largest mean silhouette)")
         fit = fits[chosen]
         criterion = {"name": "silhouette", "values": scores, "all_metastable": all_meta,
                      "rule": rule}

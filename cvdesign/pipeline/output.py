@@ -562,10 +562,11 @@ def _ranked_on_transitions(r):
 
 def shown_slowness(r):
     """Which slowness of a ranking entry the tables and the report show, as a key suffix:
-    ``'_transitions'`` (along the runs that cross between the states) when there are such
-    runs (pairs within one state keep the offsets between the states there, so a
-    separating CV looks slow), else ``'_within_states'`` for objective ``both`` (what it
-    ranks on), else ``''`` (all runs about one mean).
+    for objective ``both`` what it ranked on (``'_transitions'``, along the runs that cross
+    between the states, or ``'_within_states'`` after its fallback or without such runs);
+    otherwise ``'_transitions'`` when there are such runs (pairs within one state keep the
+    offsets between the states there, so a separating CV looks slow), else ``''`` (all runs
+    about one mean).
 
     Examples
     --------
@@ -573,10 +574,13 @@ def shown_slowness(r):
     '_transitions'
     >>> shown_slowness({"objective": "both"}), shown_slowness({"objective": "separate"})
     ('_within_states', '')
+    >>> shown_slowness({"objective": "both", "timescale_transitions_ps": 5.0,
+    ...                 "slowness_ranked_on": "within_states"})  # (its fallback)
+    '_within_states'
     """
-    if _ranked_on_transitions(r) or r.get("timescale_transitions_ps") is not None:
-        return "_transitions"
-    return "_within_states" if r.get("objective") == "both" else ""
+    if r.get("objective") == "both":  # what it ranked on, also after its fallback
+        return "_transitions" if _ranked_on_transitions(r) else "_within_states"
+    return "_transitions" if r.get("timescale_transitions_ps") is not None else ""
 
 
 def _heldout_scores(r):

@@ -541,11 +541,15 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
                               label="bootstrap refits")
         ok = np.isfinite(sel.replicates[:, :n_hit]).all(axis=1)
         freq = sel.replicates[ok, :n_hit].mean(axis=0) if ok.any() else np.full(n_hit, np.nan)
-        # held-out score, Fisher ratio, overlap and two autocorrelations per ranked CV
+        # held-out score (a Fisher ratio >= 0 for 'separate', in [0, 1] for 'both', a VAMP-2
+        # score less its constant part for 'slow', at most 1), Fisher ratio, overlap and two
+        # autocorrelations per ranked CV
+        score_lo, score_hi = {"separate": (0.0, np.inf), "both": (0.0, 1.0)}.get(
+            search["objective"], (-np.inf, 1.0))
         low, high = hull_interval(
             sel.estimate[n_hit:], *percentile_interval(sel.replicates[ok, n_hit:]),
-            bounds=(np.tile([-np.inf, 0.0, 0.0, -1.0, -1.0], len(fits)),
-                    np.tile([np.inf, np.inf, 1.0, 1.0, 1.0], len(fits))))
+            bounds=(np.tile([score_lo, 0.0, 0.0, -1.0, -1.0], len(fits)),
+                    np.tile([score_hi, np.inf, 1.0, 1.0, 1.0], len(fits))))
         pos = 0
         for i, c in enumerate(out["combos"]):
             keys = ("heldout_score_ci", "heldout_fisher_ratio_ci", "heldout_overlap_ci",

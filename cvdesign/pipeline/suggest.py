@@ -356,8 +356,9 @@ def suggest(source, *, objective="separate", lag=None, method="hlda", selection=
                 result = _suggest(source, config, executor, progress, checksums)
         finally:
             checksums.cancel()
-    # in the summary too: a warning on standard error is gone with the terminal (or -q)
-    result.notes += [f"input frames: {text}" for text in undefined]
+    # in the summary too: a warning on standard error is gone with the terminal (or -q);
+    # sorted, since workers' warnings arrive in the order their tasks end
+    result.notes += [f"input frames: {text}" for text in sorted(undefined)]
     return result
 
 
@@ -456,8 +457,10 @@ def _suggest(source, config, executor, progress, checksums):
                                         screening.scale[screening.features]),
             fits, fm.n_folds, lag_ps, n_boot=config.n_bootstrap, seed=config.seed + 3)
         if transit_ci is None:
-            notes.append("transition slowness: no bootstrap intervals (a crossing run has a "
-                         "single sub-block in a held-out fold); give longer crossing runs")
+            notes.append(f"transition slowness: no bootstrap intervals (a crossing run has "
+                         f"fewer than {MIN_INTERVAL_BLOCKS} sub-blocks in a held-out fold: "
+                         "intervals from so few cover the truth far less often than they "
+                         "say); give longer crossing runs")
     scorecard = _scorecard(pool, screening, short, held.overlap_desc, iat_desc, card_ci)
     cv_times, frame_ps = [None] * len(fits), None
     if held.report is not None and held.report.get("cv_grid") is not None:
@@ -861,8 +864,8 @@ def _run_temperature(source, temperature):
     own = source.temperature if source.biased else None
     if temperature is None:
         return HINTS_TEMPERATURE_K if own is None else own
-    if (own is not None and isinstance(temperature, (int, float)) and not isinstance(
-            temperature, bool) and float(temperature) != float(own)):
+    if (own is not None and isinstance(temperature, (int, float, np.integer, np.floating))
+            and not isinstance(temperature, bool) and float(temperature) != float(own)):
         raise InputError(
             f"temperature={temperature!r} (K, for the bias hints and the report's -kT ln p) "
             f"differs from the source's temperature={own!r} (K), at which its biased runs are "

@@ -61,10 +61,14 @@ def lag_frames(source, lag, timesteps):
 def iat_lags(seg_counts, max_lag=2000):
     """Geometric grid of lags (frames) for integrated autocorrelation times.
 
-    Up to half the longest run (at most `max_lag`): a run shorter than a lag has no pairs
-    there and drops out of that lag's autocorrelation
-    (:func:`local_autocorrelation`), so one short run no longer caps every time (a grid
-    up to half the shortest run had made a slow descriptor's time a lower bound).
+    Up to half the longest run of the state whose longest run is shortest (at most
+    `max_lag`): every state keeps pairs at every lag, while a run shorter than a lag (one
+    short run beside longer ones of its state) has no pairs there and drops out of that
+    lag's autocorrelation (:func:`local_autocorrelation`). One short run no longer caps
+    every time (a grid up to half the shortest run had made a slow descriptor's time a
+    lower bound); a grid up to half the longest run of all had let a state of short runs
+    drop out at the long lags, and curves about one common mean then lost the offset
+    between the states there.
 
     Parameters
     ----------
@@ -79,10 +83,12 @@ def iat_lags(seg_counts, max_lag=2000):
 
     Examples
     --------
-    >>> int(iat_lags(np.array([[40, 0], [0, 1000]])).max())  # half the longest run
-    500
+    >>> int(iat_lags(np.array([[40, 0], [1000, 0], [0, 600]])).max())  # state 1: 600
+    300
     """
-    longest = int(seg_counts.max())
+    counts = np.asarray(seg_counts)
+    per_state = counts.max(axis=0)
+    longest = int(per_state[per_state > 0].min()) if (per_state > 0).any() else 0
     top = max(1, min(max_lag, longest // 2))
     return np.unique(np.round(np.geomspace(1, top, 18)).astype(int))
 

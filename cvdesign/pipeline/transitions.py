@@ -50,7 +50,7 @@ from ..passes import LaggedPass, plan_tasks, run_pass
 from ..passes.keys import Folds
 from ..search import autocorrelation_along, within_states
 from ..search.folds import standardize_lagged
-from ..stats.bootstrap import block_bootstrap
+from ..stats.bootstrap import MIN_INTERVAL_BLOCKS, block_bootstrap
 from ..stats.moments import LaggedMoments, merge_all
 from .ranking import _finite, _mean_finite
 
@@ -311,10 +311,11 @@ def transition_intervals(blocks, fits, n_folds, lag_ps, *, n_boot, seed):
         Per CV: ``autocorrelation_transitions_ci``,
         ``heldout_autocorrelation_transitions_ci``,
         ``timescale_transitions_ci_ps``; None when some (run, fold) with pairs
-        has a single sub-block (nothing to resample).
+        has fewer than :data:`~cvdesign.stats.bootstrap.MIN_INTERVAL_BLOCKS` sub-blocks
+        (intervals from so few cover the truth far less often than they say).
     """
     keys = [(r, k) for r, row in enumerate(blocks) for k in range(n_folds) if row[k]]
-    if not keys or any(len(blocks[r][k]) < 2 for r, k in keys):
+    if not keys or any(len(blocks[r][k]) < MIN_INTERVAL_BLOCKS for r, k in keys):
         return None
     n_runs = len(blocks)
 

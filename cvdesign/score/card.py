@@ -50,7 +50,8 @@ CARD_LAG_FIELDS = ("n_pairs", "sx", "sy", "sxx", "sxy", "syy", "l0", "lt")
 
 
 def _bytes_per_feature_block(n_bins, has_lag):
-    # float64 sums, kept once per block and once more when stacked for the bootstrap
+    # float64 sums, held twice at the peak: once per block in the pass's partial, once more
+    # in the rows CardPass.finish stacks them into (the bootstrap resamples those rows)
     return 2 * 8 * (2 + n_bins + (len(CARD_LAG_FIELDS) if has_lag else 0))
 
 
