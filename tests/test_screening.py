@@ -155,3 +155,33 @@ def test_the_lag_grid_keeps_pairs_of_every_state_at_every_lag():
     assert int(iat_lags(short_state).max()) == 30
     one_short_run = np.array([[40, 0], [2000, 0], [0, 2000], [0, 2000]])
     assert int(iat_lags(one_short_run).max()) == 1000
+
+
+def test_runs_too_short_for_a_time_mark_it_a_lower_bound(tmp_path):
+    # An AR(1) series of r = 0.99 (integrated time 1/2 + r/(1 - r) = 99.5 frames; Sokal
+    # 1997) in three runs of 60 frames per state: about its own mean, each short run
+    # decorrelates at once, and a time of a few frames came out "decayed", with an
+    # interval. The runs' means scatter far more than such a time allows: now a lower bound,
+    # for the descriptor and for the ranked CV, and the notes say why.
+    top = md.Topology()
+    res = top.add_residue("TOY", top.add_chain())
+    for i in range(2):
+        top.add_atom(f"C{i}", md.element.carbon, res)
+    rng = np.random.default_rng(4)
+    files = {"A": [], "B": []}
+    for state, mu in (("A", 1.0), ("B", 1.5)):
+        for k in range(3):
+            x = np.zeros((60, 2, 3), np.float32)
+            x[:, 1, 0] = _ar1(rng, 60, mu, 0.1, 0.99)
+            path = tmp_path / f"{state}{k}.xtc"
+            md.Trajectory(x, top, time=np.arange(60, dtype=float)).save_xtc(str(path))
+            files[state].append(str(path))
+    md.Trajectory(x[:1], top).save_pdb(str(tmp_path / "top.pdb"))
+    result = cvdesign.suggest(cvdesign.Source.from_states(str(tmp_path / "top.pdb"), files),
+                              n_bootstrap=0, max_terms=1, selection="all", kinds=("distance",))
+    (row,) = result.scorecard
+    assert row["integrated_time"] < 20 and row["integrated_time_decayed"] is False
+    assert "integrated_time_ci" not in row
+    assert result.ranking[0]["integrated_time_decayed"] is False
+    assert any(n.startswith("integrated times: for 1 screened descriptors the runs of a state "
+                            "are too short") for n in result.notes)

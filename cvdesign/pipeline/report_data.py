@@ -45,7 +45,7 @@ import numpy as np
 from ..passes import FeaturePass, LagGridPass, frame_keys, group_rows, thinning_stride
 from ..score.card import integrated_time_interval
 from ..stats.moments import DiagonalLaggedMoments
-from .timing import integrated_time, local_autocorrelation
+from .timing import integrated_time, local_autocorrelation, runs_too_short
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
            "CVBlockHistograms", "CVReportPass", "CVLaggedPass", "CVGridPass", "cv_plans",
@@ -590,17 +590,21 @@ def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None):
     -------
     list of (float, bool, list or None) or None
         Per CV: the time (ps), whether the autocorrelation decayed within the
-        window (False: the time is a lower bound), and the 95 % interval (ps;
-        None when it did not decay); None for a CV without pairs at the first
-        lag.
+        window (False: the time is a lower bound; also when the runs are too short
+        for it, :func:`~cvdesign.pipeline.timing.runs_too_short`), and the 95 %
+        interval (ps; None when it did not decay); None for a CV without pairs at
+        the first lag.
     """
-    lags = np.asarray(lags, dtype=np.intp)
+    lags = all_lags = np.asarray(lags, dtype=np.intp)
     rho = _within_runs(results)
     n = rho.shape[1]
     if grid is not None:
         keep = np.isin(lags, np.asarray(grid, dtype=np.intp))
         lags, rho = lags[keep], rho[keep]
     tau, decayed, window = integrated_time(lags, rho, dt_ps, return_window=True)
+    if len(lags) and int(lags[0]) == 1:  # runs too short for the time: a lower bound
+        first = results[list(np.asarray(all_lags)).index(1)]
+        decayed = decayed & ~runs_too_short(first.by_run(), tau / dt_ps, n)
     lo, hi = integrated_time_interval(tau, window, n_frames)
     return [None if not np.isfinite(tau[c]) else
             (float(tau[c]), bool(decayed[c]), [float(lo[c]), float(hi[c])] if decayed[c] else None)

@@ -65,7 +65,7 @@ from .specs import InputChecksums, SourceRecord, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
 from .timing import (EvenSpacingPass, bias_times, block_frames, checked_segments, iat_lags,
                      integrated_time, lag_frames, local_autocorrelation, longest_run_text,
-                     longest_visit_ps, read_timesteps)
+                     longest_visit_ps, read_timesteps, runs_too_short)
 
 __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file"]
 
@@ -588,6 +588,13 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     n = feats.n_features
     rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-1]])
     tau, decayed, window = integrated_time(grid, rho_grid, dt, return_window=True)
+    # runs too short for a time (their means scatter more than it allows): shown as a lower
+    # bound; the bootstrap blocks still follow the measured time (whole runs for every
+    # such descriptor would leave a few runs per state without any interval)
+    short = runs_too_short(results[-1][0].by_run(), tau / dt, n) & decayed
+    if short.any():
+        notes.append(_short_runs_note(int(sum(short[g].any() for g in screening.groups)),
+                                      "screened descriptors"))
     tau_lo, tau_hi = integrated_time_interval(tau, window,
                                               _effective_frames(seg_counts, reweighting))
     for gi, i in enumerate(screening.screened):
@@ -596,8 +603,10 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
         if not g.size:
             continue
         j = int(g[np.argmax(tau[g])])
-        ci = [float(tau_lo[j]), float(tau_hi[j])] if decayed[j] else None
-        iat_desc[i] = (float(tau[j]), bool(decayed[j]), ci)
+        shown = bool(decayed[j] and not short[g].any())
+        ci = [float(tau_lo[j]), float(tau_hi[j])] if shown else None
+        # (time ps, decayed as shown, interval, decayed for the bootstrap blocks)
+        iat_desc[i] = (float(tau[j]), shown, ci, bool(decayed[j]))
     return fm, iat_desc, notes, transit
 
 
@@ -903,6 +912,17 @@ def _run_frames(source, reweighting, seg_counts, si):
         return reweighting.rescaled_frames(si, 0, seg.labels.shape[0])
     n = reweighting.weights[si].size
     return reweighting.rescaled_frames(si, seg.start or 0, n if seg.stop is None else seg.stop)
+
+
+def _short_runs_note(count, what):
+    """The note on integrated times that the runs are too short to show
+    (:func:`~cvdesign.pipeline.timing.runs_too_short`)."""
+    return (f"integrated times: for {count} {what} the runs of a state are too short to "
+            "show the time measured within them (their means scatter far more than that "
+            "time allows: a slower motion, or distinct sub-states the runs do not cross "
+            "between); those times are marked lower bounds (not decayed), while the "
+            "bootstrap blocks still follow the times measured, so the intervals of those "
+            "descriptors may be too narrow")
 
 
 def _state_frames(seg_counts, reweighting):

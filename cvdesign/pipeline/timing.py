@@ -16,7 +16,7 @@ from ..io.source import stores_time
 from ..passes import Pass
 
 __all__ = ["read_timesteps", "lag_frames", "iat_lags", "integrated_time", "local_autocorrelation",
-           "longest_visit_ps",
+           "longest_visit_ps", "runs_too_short",
            "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments",
            "bias_times"]
 
@@ -287,7 +287,8 @@ def block_frames(seg_counts, taus, timesteps, lag_frames):
     """Bootstrap block length in frames, or None for whole runs.
 
     At least twice the longest integrated autocorrelation time of `taus`
-    (``(time, decayed, ...)`` or None each) and two lags; whole runs when that
+    (``(time, decayed, ...)`` or None each; a fourth item, when given, is the decay the
+    blocks follow, in place of the second) and two lags; whole runs when that
     exceeds half the longest run, when some motion did not decorrelate within
     the runs, or when no time is known. A run shorter than a block is one block
     (blocks are counted from each run's start); one short run no longer makes
@@ -298,10 +299,12 @@ def block_frames(seg_counts, taus, timesteps, lag_frames):
     >>> counts = np.array([[1000, 0], [12, 0], [0, 1000]])  # a 12-frame run of state 0
     >>> block_frames(counts, [(3.0, True)], {0: 1.0, 1: 1.0, 2: 1.0}, None)
     6
+    >>> block_frames(counts, [(3.0, False, None, True)], {0: 1.0, 1: 1.0, 2: 1.0}, None)
+    6
     """
     dt = next(iter(timesteps.values())) or 1.0
     known = [t for t in taus if t is not None]
-    if not known or any(not decayed for _, decayed, *_ in known):
+    if not known or any(not (t[3] if len(t) > 3 else t[1]) for t in known):
         return None
     longest = max(t for t, *_ in known)
     b = max(1, int(math.ceil(2.0 * longest / dt)))
@@ -310,6 +313,68 @@ def block_frames(seg_counts, taus, timesteps, lag_frames):
     if b > int(seg_counts.max()) // 2:
         return None
     return b
+
+
+def runs_too_short(runs, tau_frames, n_features):
+    """Per feature: whether the runs' means scatter more than an integrated time allows.
+
+    Each run (segment, state) about its own mean, as the integrated times are measured,
+    cannot show a motion slower than the run: a state of runs much shorter than the time
+    gives a short time that seems to decay. Such runs give themselves away by their
+    means: for a time ``tau`` (frames) the mean of ``n`` frames of a run has the variance
+    ``2 tau sigma^2 / n`` (Sokal 1997, in *Functional Integration*, Plenum), with
+    ``sigma^2`` the variance within the runs. Within each state of two or more runs,
+    ``Q = sum_r (mu_r - mu)^2 / (2 tau sigma^2 / n_r)`` follows about a chi-square law of
+    (runs - 1) degrees of freedom when the time is right; summed over the states, a ``Q``
+    beyond ``dof + 5 sqrt(2 dof) + 10`` (a tail probability of about 1e-5 for 2 degrees
+    of freedom; our choice) says the runs are too short for it (or the states hold
+    distinct sub-states the runs do not cross between): the time is then a lower bound.
+    States with one run cannot tell.
+
+    Parameters
+    ----------
+    runs : dict of (int, int) to DiagonalLaggedMoments
+        Per (segment, state), the lagged moments of one lag (e.g. ``by_run()`` of the
+        first lag of the integrated-time grid).
+    tau_frames : array-like of shape (n_features,)
+        Integrated times, frames (NaN: not known; never flagged).
+    n_features : int
+
+    Returns
+    -------
+    ndarray of bool, shape (n_features,)
+
+    Examples
+    --------
+    >>> from cvdesign.stats.moments import DiagonalLaggedMoments
+    >>> rng = np.random.default_rng(0)
+    >>> x = np.cumsum(rng.normal(size=(3, 60)), axis=1)  # three short runs of a slow motion
+    >>> runs = {(r, 0): DiagonalLaggedMoments.from_series(x[r][:, None], lag=1)
+    ...         for r in range(3)}
+    >>> runs_too_short(runs, [1.0], 1).tolist(), runs_too_short(runs, [500.0], 1).tolist()
+    ([True], [False])
+    """
+    tau = np.asarray(tau_frames, dtype=np.float64).reshape(n_features)
+    by_state = {}
+    for (_, s), m in sorted(runs.items()):
+        if m.count > 0:
+            by_state.setdefault(s, []).append(m)
+    q, dof = np.zeros(n_features), 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for ms in by_state.values():
+            if len(ms) < 2:
+                continue
+            n = np.array([m.count for m in ms], dtype=np.float64)[:, None]
+            stats = [m.covariances(reversible=True) for m in ms]
+            means = np.array([st[0] for st in stats])
+            sigma2 = (n * np.array([st[1] for st in stats])).sum(axis=0) / n.sum()
+            w = n / (2.0 * np.maximum(tau, 0.5))  # sigma^2 / var(run mean)
+            centre = (w * means).sum(axis=0) / w.sum(axis=0)
+            q += np.where(sigma2 > 0, (w * (means - centre) ** 2).sum(axis=0) / sigma2, 0.0)
+            dof += len(ms) - 1
+    if dof == 0:
+        return np.zeros(n_features, dtype=bool)
+    return np.isfinite(tau) & (q > dof + 5.0 * math.sqrt(2.0 * dof) + 10.0)
 
 
 def local_autocorrelation(runs, n_features):
