@@ -55,7 +55,7 @@ def test_a_combination_decorrelates_more_slowly_than_each_of_its_terms(tmp_path)
                            CVGridPass(feats, [cv], grid, [2.0])), src)
     rho = np.array([local_autocorrelation(r.by_run().values(), 3)[:2] for r in terms])
     tau_terms, _ = integrated_time(grid, rho, 1.0)
-    (tau, decayed, ci), = cv_integrated_times(cvs, grid, 1.0, 2 * n)
+    (tau, decayed, ci, short), = cv_integrated_times(cvs, grid, 1.0, 2 * n)
     assert decayed and ci[0] < tau < ci[1]
     assert tau_terms.max() < 1.0  # each term: about half a frame plus F's share of S
     # the estimate's relative standard deviation is sqrt(2 (2 M + 1) / N) = 0.07 for the

@@ -183,5 +183,24 @@ def test_runs_too_short_for_a_time_mark_it_a_lower_bound(tmp_path):
     assert row["integrated_time"] < 20 and row["integrated_time_decayed"] is False
     assert "integrated_time_ci" not in row
     assert result.ranking[0]["integrated_time_decayed"] is False
-    assert any(n.startswith("integrated times: for 1 screened descriptors the runs of a state "
+    assert any(n.startswith("integrated times: for 1 of the screened descriptors the runs of "
+                            "some state are too short") for n in result.notes)
+    assert any(n.startswith("integrated times: for 1 of the ranked CVs the runs of some state "
                             "are too short") for n in result.notes)
+
+
+def test_runs_long_enough_are_not_called_too_short_however_many():
+    # The time measured about each run's own mean is a little low (by about tau^2 / n per
+    # run), which 200 runs made "significant": the scatter must also imply a time at least
+    # three times the measured one. AR(1) runs of 200 frames, 20 times their time of 10 frames;
+    # and a state given by its own (larger) time is tested with it, not with a pooled one.
+    from cvdesign.pipeline.timing import runs_too_short
+    from cvdesign.stats.moments import DiagonalLaggedMoments
+
+    rng = np.random.default_rng(3)
+    r = 19.0 / 21.0  # integrated time 1/2 + r / (1 - r) = 10 frames
+    runs = {(k, 0): DiagonalLaggedMoments.from_series(_ar1(rng, 200, 0.0, 1.0, r)[:, None],
+                                                      lag=1) for k in range(200)}
+    assert not runs_too_short(runs, {0: [6.2]}, 1).any()  # (about what is measured)
+    assert runs_too_short(runs, {0: [0.5]}, 1).all()  # a time far too short: flagged
+    assert not runs_too_short(runs, {0: [0.5]}, 1, skip_states=[0]).any()  # reweighted

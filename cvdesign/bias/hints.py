@@ -1227,9 +1227,10 @@ def suggest_hints(
             if lower_bound and not capped:  # (capped: the interval is at its cap anyway)
                 text = (
                     f"autocorrelation_time_ps = {tau:.4g} ps is a lower bound: the CV's "
-                    f"autocorrelation had not decayed within the runs, so the CV relaxes "
-                    f"within the states more slowly than this and the interval may be too "
-                    f"short; longer runs per state measure it")
+                    f"autocorrelation had not decayed within the runs, or the runs' means "
+                    f"scatter more than this time allows, so the CV relaxes within the "
+                    f"states more slowly than this and the interval may be too short; longer "
+                    f"runs per state measure it")
                 why.append("Note: " + text + ".")
                 warnings.append(text)
     steps = max(1, int(round(tau_used * 1000.0 / dt_fs)))

@@ -1695,14 +1695,16 @@ def _main(argv):
         with _reporting(args):
             return handler(args)
     except CVDesignError as exc:
-        print(f"cvdesign {args.command}: error: {exc}", file=sys.stderr)
+        print(f"cvdesign {args.command}: error: {exc}"
+              + (f" ({_what_was_written(args)})" if getattr(args, "written", None) else ""),
+              file=sys.stderr)
         return 2
     except BrokenPipeError:
         raise
     except OSError as exc:  # a file that vanished or became unwritable after the checks
         where = f" {exc.filename!r}" if exc.filename else ""
         print(f"cvdesign {args.command}: error: cannot access{where}: "
-              f"{exc.strerror or exc}; nothing was written", file=sys.stderr)
+              f"{exc.strerror or exc}; {_what_was_written(args)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print(f"cvdesign: interrupted; {_what_was_written(args)}", file=sys.stderr)

@@ -45,7 +45,8 @@ import numpy as np
 from ..passes import FeaturePass, LagGridPass, frame_keys, group_rows, thinning_stride
 from ..score.card import integrated_time_interval
 from ..stats.moments import DiagonalLaggedMoments
-from .timing import integrated_time, local_autocorrelation, runs_too_short
+from .timing import (integrated_time, local_autocorrelation, runs_too_short,
+                     state_integrated_times)
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
            "CVBlockHistograms", "CVReportPass", "CVLaggedPass", "CVGridPass", "cv_plans",
@@ -563,7 +564,7 @@ def _within_runs(results):
                      for r in results]).reshape(len(results), n)
 
 
-def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None):
+def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None, skip_states=()):
     """Each CV's integrated time within the states, from :class:`CVGridPass`.
 
     Every run (segment, state) is taken about its own mean
@@ -585,29 +586,36 @@ def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None):
     grid : array-like of int, optional
         The lags (among `lags`) to integrate over, e.g. the descriptors' grid when the
         pass also has the pipeline's lag; None: all.
+    skip_states : iterable of int, default=()
+        States not tested for runs too short for the time (reweighted ones; see
+        :func:`~cvdesign.pipeline.timing.runs_too_short`).
 
     Returns
     -------
     list of (float, bool, list or None) or None
         Per CV: the time (ps), whether the autocorrelation decayed within the
         window (False: the time is a lower bound; also when the runs are too short
-        for it, :func:`~cvdesign.pipeline.timing.runs_too_short`), and the 95 %
-        interval (ps; None when it did not decay); None for a CV without pairs at
-        the first lag.
+        for it, :func:`~cvdesign.pipeline.timing.runs_too_short`), the 95 %
+        interval (ps; None when it did not decay), and whether the runs were too
+        short for it; None for a CV without pairs at the first lag.
     """
-    lags = all_lags = np.asarray(lags, dtype=np.intp)
+    lags = np.asarray(lags, dtype=np.intp)
     rho = _within_runs(results)
     n = rho.shape[1]
-    if grid is not None:
-        keep = np.isin(lags, np.asarray(grid, dtype=np.intp))
-        lags, rho = lags[keep], rho[keep]
+    keep = (np.ones(lags.size, dtype=bool) if grid is None
+            else np.isin(lags, np.asarray(grid, dtype=np.intp)))
+    lags, rho = lags[keep], rho[keep]
+    kept = [r for r, k in zip(results, keep) if k]
     tau, decayed, window = integrated_time(lags, rho, dt_ps, return_window=True)
+    short = np.zeros(n, dtype=bool)
     if len(lags) and int(lags[0]) == 1:  # runs too short for the time: a lower bound
-        first = results[list(np.asarray(all_lags)).index(1)]
-        decayed = decayed & ~runs_too_short(first.by_run(), tau / dt_ps, n)
+        short = runs_too_short(kept[0].by_run(), state_integrated_times(kept, lags, n), n,
+                               skip_states=skip_states) & decayed
+        decayed = decayed & ~short
     lo, hi = integrated_time_interval(tau, window, n_frames)
     return [None if not np.isfinite(tau[c]) else
-            (float(tau[c]), bool(decayed[c]), [float(lo[c]), float(hi[c])] if decayed[c] else None)
+            (float(tau[c]), bool(decayed[c]), [float(lo[c]), float(hi[c])] if decayed[c] else None,
+             bool(short[c]))
             for c in range(n)]
 
 

@@ -65,7 +65,8 @@ from .specs import InputChecksums, SourceRecord, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
 from .timing import (EvenSpacingPass, bias_times, block_frames, checked_segments, iat_lags,
                      integrated_time, lag_frames, local_autocorrelation, longest_run_text,
-                     longest_visit_ps, read_timesteps, runs_too_short)
+                     longest_visit_ps, read_timesteps, runs_too_short,
+                     state_integrated_times)
 
 __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file"]
 
@@ -467,7 +468,11 @@ def _suggest(source, config, executor, progress, checksums):
         frame_ps = next(iter(steps.values()))  # (the grid needs one known spacing)
         cv_times = cv_integrated_times(held.report["cv_grid"], held.report_lags, frame_ps,
                                        _effective_frames(seg_counts, reweighting),
-                                       grid=_lag_grid(steps, seg_counts))
+                                       grid=_lag_grid(steps, seg_counts),
+                                       skip_states=_reweighted_states(reweighting))
+        short_cvs = sum(t is not None and t[3] for t in cv_times)
+        if short_cvs:
+            notes.append(_short_runs_note(short_cvs, "ranked CVs"))
     run_ps = [_run_frames(source, reweighting, seg_counts, si) * dt for si, dt in steps.items()
               if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
@@ -591,7 +596,9 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     # runs too short for a time (their means scatter more than it allows): shown as a lower
     # bound; the bootstrap blocks still follow the measured time (whole runs for every
     # such descriptor would leave a few runs per state without any interval)
-    short = runs_too_short(results[-1][0].by_run(), tau / dt, n) & decayed
+    short = runs_too_short(results[-1][0].by_run(),
+                           state_integrated_times(results[-1], grid, n), n,
+                           skip_states=_reweighted_states(reweighting)) & decayed
     if short.any():
         notes.append(_short_runs_note(int(sum(short[g].any() for g in screening.groups)),
                                       "screened descriptors"))
@@ -914,13 +921,20 @@ def _run_frames(source, reweighting, seg_counts, si):
     return reweighting.rescaled_frames(si, seg.start or 0, n if seg.stop is None else seg.stop)
 
 
+def _reweighted_states(reweighting):
+    """The states whose frames are reweighted (none without biased runs)."""
+    return () if reweighting is None else tuple(reweighting.biased_states)
+
+
 def _short_runs_note(count, what):
     """The note on integrated times that the runs are too short to show
     (:func:`~cvdesign.pipeline.timing.runs_too_short`)."""
-    return (f"integrated times: for {count} {what} the runs of a state are too short to "
-            "show the time measured within them (their means scatter far more than that "
-            "time allows: a slower motion, or distinct sub-states the runs do not cross "
-            "between); those times are marked lower bounds (not decayed), while the "
+    return (f"integrated times: for {count} of the {what} the runs of some state are too short "
+            "for the time measured within them (their means scatter far more than that "
+            "time allows, as for a time three times longer or more: a slower motion, or "
+            "distinct sub-states "
+            "the runs do not cross between; reweighted states are not tested); those times "
+            "are marked lower bounds (not decayed), while the "
             "bootstrap blocks still follow the times measured, so the intervals of those "
             "descriptors may be too narrow")
 

@@ -16,7 +16,7 @@ from ..io.source import stores_time
 from ..passes import Pass
 
 __all__ = ["read_timesteps", "lag_frames", "iat_lags", "integrated_time", "local_autocorrelation",
-           "longest_visit_ps", "runs_too_short",
+           "longest_visit_ps", "runs_too_short", "state_integrated_times",
            "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments",
            "bias_times"]
 
@@ -315,30 +315,38 @@ def block_frames(seg_counts, taus, timesteps, lag_frames):
     return b
 
 
-def runs_too_short(runs, tau_frames, n_features):
-    """Per feature: whether the runs' means scatter more than an integrated time allows.
+def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
+    """Per feature: whether some state's runs are too short for its integrated time.
 
     Each run (segment, state) about its own mean, as the integrated times are measured,
     cannot show a motion slower than the run: a state of runs much shorter than the time
     gives a short time that seems to decay. Such runs give themselves away by their
     means: for a time ``tau`` (frames) the mean of ``n`` frames of a run has the variance
     ``2 tau sigma^2 / n`` (Sokal 1997, in *Functional Integration*, Plenum), with
-    ``sigma^2`` the variance within the runs. Within each state of two or more runs,
+    ``sigma^2`` the variance within the runs. Within a state of two or more runs,
     ``Q = sum_r (mu_r - mu)^2 / (2 tau sigma^2 / n_r)`` follows about a chi-square law of
-    (runs - 1) degrees of freedom when the time is right; summed over the states, a ``Q``
-    beyond ``dof + 5 sqrt(2 dof) + 10`` (a tail probability of about 1e-5 for 2 degrees
-    of freedom; our choice) says the runs are too short for it (or the states hold
-    distinct sub-states the runs do not cross between): the time is then a lower bound.
-    States with one run cannot tell.
+    (runs - 1) degrees of freedom when the time is right. A state flags a feature when
+    ``Q`` is beyond ``dof + 5 sqrt(2 dof) + 10`` (a tail probability of about 1e-5 for 2
+    degrees of freedom) and the scatter implies a time at least three times the measured
+    one (``Q / dof > 3``: the time and the variance measured about each run's own mean are
+    themselves low, by a factor near 2 for runs 20 times the time, which many runs would
+    otherwise make significant); our choices. The time is then a lower
+    bound (the runs are too short for it, or the state holds sub-states they do not cross
+    between). Each state is tested with its own time (a slow state of small spread hardly
+    moves a time pooled over the states). States of one run cannot tell; reweighted states
+    are skipped (their counts are sums of weights, not effective frames).
 
     Parameters
     ----------
     runs : dict of (int, int) to DiagonalLaggedMoments
         Per (segment, state), the lagged moments of one lag (e.g. ``by_run()`` of the
         first lag of the integrated-time grid).
-    tau_frames : array-like of shape (n_features,)
-        Integrated times, frames (NaN: not known; never flagged).
+    tau_frames : dict of int to array-like of shape (n_features,)
+        Per state, the integrated times within its runs, frames
+        (:func:`state_integrated_times`; NaN: not known, never flagged).
     n_features : int
+    skip_states : iterable of int, default=()
+        States not tested (reweighted ones).
 
     Returns
     -------
@@ -351,30 +359,58 @@ def runs_too_short(runs, tau_frames, n_features):
     >>> x = np.cumsum(rng.normal(size=(3, 60)), axis=1)  # three short runs of a slow motion
     >>> runs = {(r, 0): DiagonalLaggedMoments.from_series(x[r][:, None], lag=1)
     ...         for r in range(3)}
-    >>> runs_too_short(runs, [1.0], 1).tolist(), runs_too_short(runs, [500.0], 1).tolist()
+    >>> runs_too_short(runs, {0: [1.0]}, 1).tolist(), runs_too_short(runs, {0: [500.0]}, 1).tolist()
     ([True], [False])
     """
-    tau = np.asarray(tau_frames, dtype=np.float64).reshape(n_features)
+    skip = set(skip_states)
     by_state = {}
     for (_, s), m in sorted(runs.items()):
-        if m.count > 0:
+        if m.count > 0 and s not in skip and s in tau_frames:
             by_state.setdefault(s, []).append(m)
-    q, dof = np.zeros(n_features), 0
+    out = np.zeros(n_features, dtype=bool)
     with np.errstate(divide="ignore", invalid="ignore"):
-        for ms in by_state.values():
-            if len(ms) < 2:
+        for s, ms in by_state.items():
+            dof = len(ms) - 1
+            if dof < 1:
                 continue
+            tau = np.asarray(tau_frames[s], dtype=np.float64).reshape(n_features)
             n = np.array([m.count for m in ms], dtype=np.float64)[:, None]
             stats = [m.covariances(reversible=True) for m in ms]
             means = np.array([st[0] for st in stats])
             sigma2 = (n * np.array([st[1] for st in stats])).sum(axis=0) / n.sum()
             w = n / (2.0 * np.maximum(tau, 0.5))  # sigma^2 / var(run mean)
             centre = (w * means).sum(axis=0) / w.sum(axis=0)
-            q += np.where(sigma2 > 0, (w * (means - centre) ** 2).sum(axis=0) / sigma2, 0.0)
-            dof += len(ms) - 1
-    if dof == 0:
-        return np.zeros(n_features, dtype=bool)
-    return np.isfinite(tau) & (q > dof + 5.0 * math.sqrt(2.0 * dof) + 10.0)
+            q = np.where(sigma2 > 0, (w * (means - centre) ** 2).sum(axis=0) / sigma2, 0.0)
+            out |= (np.isfinite(tau) & (q > dof + 5.0 * math.sqrt(2.0 * dof) + 10.0)
+                    & (q > 3.0 * dof))
+    return out
+
+
+def state_integrated_times(results, lags, n_features):
+    """Per state, the integrated time (frames) of each feature within its own runs (each
+    run about its own mean), from lagged moments at a grid of lags.
+
+    Parameters
+    ----------
+    results : sequence of LaggedResult
+        One per lag of `lags` (their ``by_run()``: per (segment, state)).
+    lags : array-like of int
+        Increasing lags, frames, from 1.
+    n_features : int
+
+    Returns
+    -------
+    dict of int to ndarray of shape (n_features,)
+        Per state with runs; NaN where not defined.
+    """
+    by_lag = [r.by_run() for r in results]
+    states = sorted({s for runs in by_lag for (_, s) in runs})
+    out = {}
+    for s in states:
+        rho = np.array([local_autocorrelation([m for (_, ss), m in runs.items() if ss == s],
+                                              n_features) for runs in by_lag])
+        out[s] = integrated_time(np.asarray(lags), rho.reshape(len(by_lag), n_features), 1.0)[0]
+    return out
 
 
 def local_autocorrelation(runs, n_features):
