@@ -306,6 +306,33 @@ def test_among_equal_fractions_of_metastable_states_one_with_two_is_chosen(tmp_p
     assert "among those with two or more" in exp.criterion["rule"]
 
 
+def test_metastable_states_holding_under_half_the_frames_are_warned_about(tmp_path,
+                                                                          monkeypatch):
+    # Two metastable states among others that are not, holding 40 % of the frames: the
+    # proposal may split a single broad state, and a warning says so. Here the first two
+    # states of any clustering of three or more pass the test and hold 20 % each (of two,
+    # only the first), whatever the data say.
+    import cvdesign.pipeline.explore as explore
+
+    real = explore._KineticSums.kinetics
+
+    def two_small(self, states, lag_ps=None):
+        kin = real(self, states, lag_ps=lag_ps)
+        k = len(states)
+        kin.metastable = np.arange(k) < (2 if k > 2 else 1)
+        kin.reasons = ["" if m else "made to fail here" for m in kin.metastable]
+        if k > 2:
+            kin.populations = np.array([0.2, 0.2] + [0.6 / (k - 2)] * (k - 2))
+        return kin
+    monkeypatch.setattr(explore._KineticSums, "kinetics", two_small)
+    xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
+    top, paths = _write_walkers(tmp_path, xs, seed=2)
+    exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+    assert len(exp.states) >= 3
+    assert any(w.startswith("the metastable states hold only 40% of the frames: most of the "
+                            "runs are in states that are not") for w in exp.warnings)
+
+
 @pytest.mark.parametrize("walk", ["flat", "ar1"])
 def test_random_walk_runs_are_refused_as_not_metastable(tmp_path, walk):
     if walk == "flat":
