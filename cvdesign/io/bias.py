@@ -361,6 +361,11 @@ class BiasTimes:
     -1
     >>> t.first_mismatch(np.array([1, 2]), np.float32([0.4, 0.6]))  # shifted by a frame
     0
+    >>> far = BiasTimes("run.bias", "time_ps", 1e6 + 0.2 * np.arange(10), 5e-4)
+    >>> far.first_mismatch(np.arange(10), np.float32(1e6 + 0.2 * np.arange(10)))
+    -1
+    >>> far.first_mismatch(np.arange(1, 10), np.float32(1e6 + 0.2 * np.arange(9)))  # shifted
+    0
     """
 
     path: str
@@ -374,7 +379,11 @@ class BiasTimes:
         spacing check allows, and the written digits), or -1."""
         stored = np.asarray(stored_ps, dtype=np.float64)
         mine = self.times_ps[np.asarray(frames, dtype=np.int64)]
-        tol = np.maximum(self.resolution_ps, 4 * np.abs(stored) * 2.0**-23) * (1 + 1e-9)
+        # a time stored in single precision is within half a float32 spacing of the true
+        # time (io.source.float32_resolution); 4 |t| 2^-23, allowed before, was 0.48 ps at
+        # 10^6 ps, which let a bias file shifted by one 0.2 ps frame pass
+        half = 0.5 * np.spacing(np.abs(stored).astype(np.float32)).astype(np.float64)
+        tol = (self.resolution_ps + half) * (1 + 1e-9)
         bad = np.flatnonzero(~(np.abs(mine - stored) <= tol))
         return int(bad[0]) if bad.size else -1
 
