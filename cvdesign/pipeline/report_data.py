@@ -556,12 +556,14 @@ class CVGridPass(LagGridPass):
         return np.subtract(cv, shift, out=cv)
 
 
-def _within_runs(results):
+def _within_runs(results, by_lag=None):
     """Autocorrelation of each CV within the runs (each about its own mean) at each lag of
-    :class:`CVGridPass`'s result: shape (n_lags, n_cvs), NaN where undefined."""
+    :class:`CVGridPass`'s result: shape (n_lags, n_cvs), NaN where undefined (`by_lag`:
+    the results' ``by_run()``, when the caller has them)."""
     n = results[0].n_features if results else 0
-    return np.array([local_autocorrelation(r.by_run().values(), n)
-                     for r in results]).reshape(len(results), n)
+    by_lag = [r.by_run() for r in results] if by_lag is None else by_lag
+    return np.array([local_autocorrelation(runs.values(), n)
+                     for runs in by_lag]).reshape(len(results), n)
 
 
 def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None, skip_states=()):
@@ -600,16 +602,17 @@ def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None, skip_state
         short for it; None for a CV without pairs at the first lag.
     """
     lags = np.asarray(lags, dtype=np.intp)
-    rho = _within_runs(results)
+    by_lag = [r.by_run() for r in results]  # (folds merged once per lag)
+    rho = _within_runs(results, by_lag)
     n = rho.shape[1]
     keep = (np.ones(lags.size, dtype=bool) if grid is None
             else np.isin(lags, np.asarray(grid, dtype=np.intp)))
     lags, rho = lags[keep], rho[keep]
-    kept = [r for r, k in zip(results, keep) if k]
+    kept = [runs for runs, k in zip(by_lag, keep) if k]
     tau, decayed, window = integrated_time(lags, rho, dt_ps, return_window=True)
     short = np.zeros(n, dtype=bool)
     if len(lags) and int(lags[0]) == 1:  # runs too short for the time: a lower bound
-        short = runs_too_short(kept[0].by_run(), state_integrated_times(kept, lags, n), n,
+        short = runs_too_short(kept[0], state_integrated_times(kept, lags, n), n,
                                skip_states=skip_states) & decayed
         decayed = decayed & ~short
     lo, hi = integrated_time_interval(tau, window, n_frames)

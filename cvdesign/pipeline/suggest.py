@@ -55,7 +55,7 @@ from ..score.card import integrated_time_interval, plan_card_blocks
 from ..stats.bootstrap import MIN_INTERVAL_BLOCKS
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
-from .output import CAUTION, Suggestions, is_output_file, output_inputs
+from .output import CAUTION, Suggestions, is_output_file, output_inputs, resolving_span_ps
 from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
                       heldout_overlap, hints_for, ranking_entry, search, shortlist)
 from .report_data import (CVBlockHistograms, CVGridPass, CVLaggedPass, CVReportPass, cv_plans,
@@ -591,13 +591,13 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
         return fm, iat_desc, notes, transit
     # within runs: each (file, state) series about its own mean
     n = feats.n_features
-    rho_grid = np.array([local_autocorrelation(r.by_run().values(), n) for r in results[-1]])
+    by_lag = [r.by_run() for r in results[-1]]  # (folds merged once per lag)
+    rho_grid = np.array([local_autocorrelation(runs.values(), n) for runs in by_lag])
     tau, decayed, window = integrated_time(grid, rho_grid, dt, return_window=True)
     # runs too short for a time (their means scatter more than it allows): shown as a lower
     # bound; the bootstrap blocks still follow the measured time (whole runs for every
     # such descriptor would leave a few runs per state without any interval)
-    short = runs_too_short(results[-1][0].by_run(),
-                           state_integrated_times(results[-1], grid, n), n,
+    short = runs_too_short(by_lag[0], state_integrated_times(by_lag, grid, n), n,
                            skip_states=_reweighted_states(reweighting)) & decayed
     if short.any():
         notes.append(_short_runs_note(int(sum(short[g].any() for g in screening.groups)),
@@ -957,7 +957,8 @@ def _effective_frames(seg_counts, reweighting):
 
 
 #: Fewer frames than this in a state (effective ones when reweighted) get the note of
-#: :func:`_overlap_note`: 20 per bin of the histograms.
+#: :func:`_overlap_note`: 20 per bin of the histograms (common practice; at 1000 frames two
+#: samples of one distribution still overlap only about 0.90, our measurement in the note).
 FEW_FRAMES_FOR_OVERLAP = 20 * N_BINS
 
 
@@ -1138,15 +1139,15 @@ def _add_times(entry, longest_run_ps, longest_visit_ps, cv_time, frame_spacing_p
     resolve them; with runs crossing between the states these pairs keep the offsets
     between the states and make a separating CV look slow); those along the crossing
     runs (``timescale_transitions``) below the longest run."""
+    entry["longest_run_ps"] = longest_run_ps
+    entry["longest_visit_ps"] = longest_visit_ps
     for key in ("timescale", "timescale_within_states", "timescale_transitions"):
         if key == "timescale_transitions" and "timescale_transitions_ps" not in entry:
             continue  # no crossing runs
-        bound = longest_run_ps if key == "timescale_transitions" else longest_visit_ps
+        bound = resolving_span_ps(entry, key)
         ts = entry.get(f"{key}_ps")
         entry[f"{key}_resolved"] = None if ts is None else bool(
             bound is not None and ts < bound)
-    entry["longest_run_ps"] = longest_run_ps
-    entry["longest_visit_ps"] = longest_visit_ps
     entry["integrated_time_ps"] = None if cv_time is None else cv_time[0]
     entry["integrated_time_ci_ps"] = None if cv_time is None else cv_time[2]
     entry["integrated_time_decayed"] = None if cv_time is None else cv_time[1]

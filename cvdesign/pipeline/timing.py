@@ -199,18 +199,24 @@ def longest_visit_ps(source, reweighting, seg_counts, steps):
     ...                        dict.fromkeys(range(6), 0.2)), 6)
     399.8
     """
-    best = None
+    spans = [span * dt for span, _, dt, _, _ in _state_spans(
+        source, reweighting, seg_counts, steps, range(len(source.states))) if dt is not None]
+    best = max(spans) if spans else None
+    return best if best is not None and math.isfinite(best) else None
+
+
+def _state_spans(source, reweighting, seg_counts, steps, states):
+    """``(span, frames, dt, rescaled, segment)`` of every run of `states` (a segment's range,
+    or each visit of a labelled file), its span from its first frame to its last in frame
+    spacings (of rescaled time for a biased run), as lagged pairs see it."""
     for si, seg in enumerate(source.segments):
         dt = steps.get(si)
-        if dt is None:
-            continue
         rescaled = reweighting is not None and si in reweighting.clocks
-        for s, name in enumerate(source.states):
-            for lo, hi in _state_runs(seg, si, s, name, seg_counts):
+        for s in states:
+            for lo, hi in _state_runs(seg, si, s, source.states[s], seg_counts):
                 span = (float(reweighting.clocks[si][hi - 1] - reweighting.clocks[si][lo])
-                        if rescaled else float(hi - 1 - lo)) * dt
-                best = span if best is None else max(best, span)
-    return best if best is not None and math.isfinite(best) else None
+                        if rescaled else float(hi - 1 - lo))
+                yield span, hi - lo, dt, rescaled, seg
 
 
 def longest_run_text(source, reweighting, seg_counts, steps, states):
@@ -257,19 +263,11 @@ def longest_run_text(source, reweighting, seg_counts, steps, states):
     'the longest run is 1 frame (0 ps from its first frame to its last)'
     """
     best = None
-    for si, seg in enumerate(source.segments):
-        dt = steps.get(si)
-        rescaled = reweighting is not None and si in reweighting.clocks
-        for s in states:
-            for lo, hi in _state_runs(seg, si, s, source.states[s], seg_counts):
-                if rescaled:
-                    clock = reweighting.clocks[si]
-                    span = float(clock[hi - 1] - clock[lo])
-                else:
-                    span = float(hi - 1 - lo)
-                key = span * (dt or 1.0)
-                if best is None or key > best[0]:
-                    best = (key, hi - lo, span, dt, rescaled, seg)
+    for span, n, dt, rescaled, seg in _state_spans(source, reweighting, seg_counts, steps,
+                                                   states):
+        key = span * (dt or 1.0)
+        if best is None or key > best[0]:
+            best = (key, n, span, dt, rescaled, seg)
     _, n, span, dt, rescaled, seg = best
     frames = f"{n} frame" + ("" if n == 1 else "s")
     text = (f"the longest run is {frames}" if seg.labels is None else
@@ -386,14 +384,14 @@ def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
     return out
 
 
-def state_integrated_times(results, lags, n_features):
+def state_integrated_times(runs_by_lag, lags, n_features):
     """Per state, the integrated time (frames) of each feature within its own runs (each
     run about its own mean), from lagged moments at a grid of lags.
 
     Parameters
     ----------
-    results : sequence of LaggedResult
-        One per lag of `lags` (their ``by_run()``: per (segment, state)).
+    runs_by_lag : sequence of dict of (int, int) to DiagonalLaggedMoments
+        One per lag of `lags`: per (segment, state), as ``LaggedResult.by_run()`` gives.
     lags : array-like of int
         Increasing lags, frames, from 1.
     n_features : int
@@ -403,13 +401,13 @@ def state_integrated_times(results, lags, n_features):
     dict of int to ndarray of shape (n_features,)
         Per state with runs; NaN where not defined.
     """
-    by_lag = [r.by_run() for r in results]
-    states = sorted({s for runs in by_lag for (_, s) in runs})
+    states = sorted({s for runs in runs_by_lag for (_, s) in runs})
     out = {}
     for s in states:
         rho = np.array([local_autocorrelation([m for (_, ss), m in runs.items() if ss == s],
-                                              n_features) for runs in by_lag])
-        out[s] = integrated_time(np.asarray(lags), rho.reshape(len(by_lag), n_features), 1.0)[0]
+                                              n_features) for runs in runs_by_lag])
+        out[s] = integrated_time(np.asarray(lags), rho.reshape(len(runs_by_lag), n_features),
+                                 1.0)[0]
     return out
 
 

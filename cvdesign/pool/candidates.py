@@ -422,7 +422,7 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
 
 #: Most pairs kept beyond the cutoff because they separate the states better than every pair
 #: below it (:func:`_separating_beyond_cutoff`): enough for the best separators, bounded
-#: for a pool whose every pair is far apart.
+#: for a pool whose every pair is far apart (our choice).
 MAX_RESCUED_PAIRS = 100
 
 
