@@ -110,6 +110,27 @@ def test_apply_output_of_two_trajectories_uses_the_rows_of_the_one_checked(
     assert sorted(tmp_path.iterdir()) == before
 
 
+def test_apply_names_two_trajectories_of_one_name_by_their_paths(setup, demo_files, tmp_path,
+                                                                 capsys):
+    # both were named 'run.xtc' in the 'file' column: check took the rows of both as one file
+    import shutil
+
+    spec, top, traj, _, _ = setup
+    paths = []
+    for sub, src in (("a", demo_files[1]["closed"][0]), ("b", traj)):
+        (tmp_path / sub).mkdir()
+        paths.append(str(tmp_path / sub / "run.xtc"))
+        shutil.copy(src, paths[-1])
+    out = tmp_path / "applied.csv"
+    assert main(["apply", spec, "--topology", top, *paths, "--out", str(out)]) == 0
+    files = [line.split(",")[0] for line in out.read_text().splitlines()[1:]]
+    assert sorted(set(files)) == paths
+    capsys.readouterr()
+    assert main(["check", spec, "--topology", top, "--against", str(out), paths[1]]) == 0
+    said = capsys.readouterr().out
+    assert "vs " + paths[1] + ": 2000 frames" in said and "PASS" in said
+
+
 def test_a_frame_named_twice_is_refused_naming_the_lines(setup, tmp_path, capsys):
     *_, values, _ = setup
     path = tmp_path / "twice.csv"  # frame 4 twice, 5 missing: was a FAIL blaming the engine

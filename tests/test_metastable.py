@@ -229,6 +229,9 @@ def test_double_well_runs_with_transitions_give_two_metastable_states(tmp_path):
     top, paths = _write_walkers(tmp_path, xs, seed=2)
     exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
     assert exp.states == ["S1", "S2"] and exp.warnings == []
+    # the pool's notes reach a Python caller (they were dropped)
+    assert any(n.startswith("selection: ") for n in exp.notes)
+    assert any(n.startswith("pool: ") and "distances" in n for n in exp.notes)
     kin = exp.kinetics
     assert kin.metastable.all() and kin.n_transitions >= 5
     assert (kin.staying > 0.95).all() and (kin.separation > MIN_SEPARATION).all()

@@ -289,6 +289,19 @@ def test_fewer_folds_than_asked_for_are_said_in_the_notes(demo_files, asked):
     res = suggest(src, n_folds=asked, n_bootstrap=0, max_terms=1, n_suggestions=1)
     note = next(n for n in res.notes if n.startswith("held-out scoring: "))
     assert note.startswith("held-out scoring: 2-fold cross-validation by whole trajectories")
-    said = ("; 1000 folds were asked for (--folds, n_folds=), 2 are used: a state has no more "
-            "trajectories than that")
+    said = ("; 2 are used, not 1000 (the number given; --folds, n_folds=): a state has no "
+            "more trajectories than that")
     assert note.endswith(said) == (asked == 1000)
+
+
+def test_fewer_folds_than_the_default_are_not_said_to_be_asked_for(demo_files):
+    # the note said "4 folds were asked for" when the user had given none
+    top, states = demo_files
+    src = Source(top)
+    for name in ("closed", "open"):
+        for f in states[name][:2]:
+            src.add(f, name, frames=(0, 200))
+    res = suggest(src, n_bootstrap=0, max_terms=1, n_suggestions=1)
+    note = next(n for n in res.notes if n.startswith("held-out scoring: "))
+    assert note.endswith("; 2 are used, not 4 (the default; --folds, n_folds=): a state has "
+                         "no more trajectories than that")

@@ -4,6 +4,7 @@ thinning rules; the stored size at two trajectory lengths; the thinned TICA pict
 ``--runs`` and the funnel's positions."""
 
 import json
+import os
 
 import mdtraj as md
 import numpy as np
@@ -503,6 +504,20 @@ def test_report_data_size_does_not_grow_with_the_number_of_frames(tmp_path):
             map(sum, b["heldout"]["outside"].values())) == 2 * 8000  # yet every frame counted
     # four times the frames, about the same bytes (frame numbers get a digit longer)
     assert abs(sizes[1] - sizes[0]) < 0.1 * sizes[0], sizes
+
+
+def test_traces_of_two_runs_of_one_file_name_are_named_by_their_paths(tmp_path):
+    # both traces were named 'run.xtc': the page could not tell which run a trace was
+    top, states = _two_states(tmp_path, 400)
+    moved = {}
+    for name, (path,) in states.items():
+        (tmp_path / name).mkdir()
+        moved[name] = [str(tmp_path / name / "run.xtc")]
+        os.replace(path, moved[name][0])
+    res = suggest(Source.from_states(top, moved), kinds=("distance",), max_terms=1,
+                  n_suggestions=1, n_bootstrap=0, lag=1.0)
+    names = [t["file"] for t in res.report_data["cvs"][0]["traces"]]
+    assert names == [moved["A"][0], moved["B"][0]]
 
 
 # ------------------------------------------------------------------ --runs and funnel

@@ -912,6 +912,7 @@ def _refuse_repeated_files(paths):
 def _cmd_apply(args):
     from ..io.atomic import atomic_open, check_output_file
     from ..io.source import Source, stores_time
+    from ..pipeline.output import run_file_names
     from ..spec import load_spec
 
     if args.out is not None:
@@ -929,7 +930,9 @@ def _cmd_apply(args):
         _log.warning("%s stores times that do not increase (as some writers do); its time_ps "
                      "column is left empty", source.segments[i].path.name)
 
-    undefined = [_Undefined(spec, seg.path.name) for seg in source.segments]
+    file_names = run_file_names(seg.path for seg in source.segments)
+    names = [file_names[str(seg.path)] for seg in source.segments]
+    undefined = [_Undefined(spec, name) for name in names]
 
     def rows(fh):
         w = csv.writer(fh, lineterminator="\n")
@@ -940,7 +943,8 @@ def _cmd_apply(args):
             path = source.segments[chunk.segment_index].path
             timed = stores_time(path) and chunk.segment_index not in untimed
             for fr, t, v, mark in zip(chunk.frames, traj.time, values, marks):
-                w.writerow([path.name, int(fr), _stored_time(t) if timed else "",
+                w.writerow([names[chunk.segment_index], int(fr),
+                            _stored_time(t) if timed else "",
                             repr(float(v)), mark])
 
     if args.out is None:

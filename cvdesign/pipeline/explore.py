@@ -84,6 +84,7 @@ from ..pool import build_pool, check_kinds, check_length, check_prefilter_stride
 from ..progress import stage_messages
 from ..search import standardize_lagged
 from ..stats.moments import LaggedMoments, merge_all
+from .output import run_file_names
 from .timing import EvenSpacingPass, bias_times, checked_segments, read_timesteps
 from .timing import lag_frames as _lag_frames
 
@@ -252,33 +253,6 @@ class StateKinetics:
         return ("; ".join(f"{s} -> " + ", ".join(f"{t} {_count(c)}" for t, c in
                                                zip(self.states, self.counts[i]))
                           for i, s in enumerate(self.states)))
-
-
-def run_file_names(paths):
-    """How the outputs name run files: the file name when no two runs share it, else every
-    run by its full path (``states.csv``, the representative frames, ``tica.files``).
-
-    Parameters
-    ----------
-    paths : iterable of str or os.PathLike
-        The run files (a path given twice is one run).
-
-    Returns
-    -------
-    dict of str to str
-        Each distinct path (as ``str``) to its name in the outputs.
-
-    Examples
-    --------
-    >>> run_file_names(["x/run1.xtc", "x/run2.xtc"])
-    {'x/run1.xtc': 'run1.xtc', 'x/run2.xtc': 'run2.xtc'}
-    >>> run_file_names(["dup/a/run.xtc", "dup/b/run.xtc"])
-    {'dup/a/run.xtc': 'dup/a/run.xtc', 'dup/b/run.xtc': 'dup/b/run.xtc'}
-    """
-    paths = list(dict.fromkeys(str(p) for p in paths))
-    names = [p.replace("\\", "/").rsplit("/", 1)[-1] for p in paths]
-    unique = len(set(names)) == len(names)
-    return {p: (name if unique else p) for p, name in zip(paths, names)}
 
 
 def _count(c):
@@ -1002,9 +976,10 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
                                     label="runs: TICA").merged(),
                            screened.center, screened.scale), lag=1, rcond=1e-6)
     ts_ps = (tica.timescales_ * lag).tolist()  # from_moments used lag=1 (one lag unit)
-    notes = [f"TICA on the {screened.columns.size} most autocorrelated features "
-             f"({tica.n_dropped_} near-singular directions dropped, eigenvalue below 1e-6 of "
-             "the largest)"]
+    notes = list(pool.notes) + [  # the pool's notes: a Python caller sees no CLI log
+        f"TICA on the {screened.columns.size} most autocorrelated features "
+        f"({tica.n_dropped_} near-singular directions dropped, eigenvalue below 1e-6 of "
+        "the largest)"]
     if reweighting is not None:
         notes += _biased_notes(reweighting, lag_frames)
     slow = [i for i, t in enumerate(ts_ps) if (math.isinf(t) or t > lag)]

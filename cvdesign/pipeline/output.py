@@ -22,7 +22,7 @@ from ..io.atomic import prepare_output_dir, write_dir_atomically
 from ..spec.ranges import FOLD_SPREADS
 
 __all__ = ["Suggestions", "SuggestionFrames", "CAUTION", "is_output_file", "output_inputs",
-           "dumps"]
+           "dumps", "run_file_names"]
 
 #: Printed with, and stored in, every output that guides a simulation.
 CAUTION = (
@@ -33,6 +33,34 @@ CAUTION = (
 
 _OUTPUT_NAME = re.compile(r"(ranking\.csv|ranking\.json|scorecard\.csv|summary\.md|"
                           r"states\.csv|cv-\d+\.json|report\.html|report-data\.json)")
+
+
+def run_file_names(paths):
+    """How the outputs name run files: the file name when no two runs share it, else every
+    run by its full path (``states.csv``, the representative frames, ``tica.files``, the
+    report data's traces, the ``file`` column of ``cvdesign apply``).
+
+    Parameters
+    ----------
+    paths : iterable of str or os.PathLike
+        The run files (a path given twice is one run).
+
+    Returns
+    -------
+    dict of str to str
+        Each distinct path (as ``str``) to its name in the outputs.
+
+    Examples
+    --------
+    >>> run_file_names(["x/run1.xtc", "x/run2.xtc"])
+    {'x/run1.xtc': 'run1.xtc', 'x/run2.xtc': 'run2.xtc'}
+    >>> run_file_names(["dup/a/run.xtc", "dup/b/run.xtc"])
+    {'dup/a/run.xtc': 'dup/a/run.xtc', 'dup/b/run.xtc': 'dup/b/run.xtc'}
+    """
+    paths = list(dict.fromkeys(str(p) for p in paths))
+    names = [p.replace("\\", "/").rsplit("/", 1)[-1] for p in paths]
+    unique = len(set(names)) == len(names)
+    return {p: (name if unique else p) for p, name in zip(paths, names)}
 
 
 def is_output_file(name):

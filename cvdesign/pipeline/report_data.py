@@ -45,6 +45,7 @@ import numpy as np
 from ..passes import FeaturePass, LagGridPass, frame_keys, group_rows, thinning_stride
 from ..score.card import integrated_time_interval
 from ..stats.moments import DiagonalLaggedMoments
+from .output import run_file_names
 from .timing import (integrated_time, local_autocorrelation, runs_too_short,
                      state_integrated_times)
 
@@ -733,6 +734,7 @@ def report_document(result, plans, ranking, *, source, states, steps, lags, temp
         within = _within_runs(result["cv_grid"])
     reweighting = source.reweighting()  # states with biased runs count weights, not frames
     weighted = None if reweighting is None else [states[s] for s in reweighting.biased_states]
+    file_names = run_file_names(seg.path for seg in source.segments)
     cvs = []
     for c, (p, entry) in enumerate(zip(plans, ranking)):
         hist = result["hist"][c]
@@ -746,7 +748,7 @@ def report_document(result, plans, ranking, *, source, states, steps, lags, temp
             parts = by_segment[seg]
             frames = np.concatenate([f for f, _, _ in parts])
             step = steps.get(seg)
-            traces.append({"file": source.segments[seg].path.name, "frame": frames.tolist(),
+            traces.append({"file": file_names[str(source.segments[seg].path)], "frame": frames.tolist(),
                            "time_ps": None if step is None else (frames * step).tolist(),
                            "value": np.concatenate([v[:, c] for _, v, _ in parts]).tolist(),
                            "state": names[np.concatenate([s for _, _, s in parts])].tolist()})

@@ -1080,8 +1080,10 @@ def _folds_note(folds, asked):
         why = (f"no more folds of at least {MIN_FRAMES_PER_FOLD} frames fit in the state with "
                "the fewest frames")
     if folds.n_folds < asked:
-        note += (f"; {asked} folds were asked for (--folds, n_folds=), {folds.n_folds} are "
-                 f"used: {why}")
+        given = ("the default" if asked == SuggestConfig.n_folds
+                 else "the number given")
+        note += (f"; {folds.n_folds} are used, not {asked} ({given}; --folds, n_folds=): "
+                 f"{why}")
     return note
 
 
