@@ -516,15 +516,16 @@ def test_the_prefilter_gives_the_same_means_and_pool_on_every_executor(
         for f in files[:3]:
             src.add(f, name, frames=frames)
     atoms, values, n = _prefilter_inputs(src)
-    ref, ref_var, used = _strided_state_means(src, atoms, values, n, 10)
+    ref, ref_var, ref_min, used = _strided_state_means(src, atoms, values, n, 10)
     pool = build_pool(src)
     with ProcessExecutor(2) as ex:
         executors = [ex, DaskExecutor(dask_threads), shuffled_executor(3)]
         for other in executors:
-            got, got_var, got_used = _strided_state_means(src, atoms, values, n, 10,
-                                                          executor=other)
+            got, got_var, got_min, got_used = _strided_state_means(src, atoms, values, n, 10,
+                                                                   executor=other)
             assert got.tobytes() == ref.tobytes() and got_used == used
             assert got_var.tobytes() == ref_var.tobytes()
+            assert got_min.tobytes() == ref_min.tobytes()
             other_pool = build_pool(src, executor=other)
             assert other_pool.descriptors == pool.descriptors and other_pool.notes == pool.notes
     # the reference itself: the mean over every 10th frame of each state in each file
@@ -578,11 +579,11 @@ def test_the_prefilter_adds_the_files_in_their_order_whatever_order_they_arrive_
         traj.save_dcd(str(paths[-1]))
     src = Source.from_states(str(tmp_path / "top.pdb"), {"a": paths}, chunk_size=8)
     atoms = np.array([0, 1])
-    ref, _, _ = _strided_state_means(src, atoms, Exponential(), 1, 2)
+    ref, _, _, _ = _strided_state_means(src, atoms, Exponential(), 1, 2)
     in_order = [float(np.exp(50.0 * np.float64(np.float32(x)))) * 20 for x in (0.75, 0.0, 0.0)]
     seed = next(s for s in range(100)
                 if np.random.default_rng(s).permutation(3).tolist() == [1, 2, 0])
-    got, _, _ = _strided_state_means(src, atoms, Exponential(), 1, 2,
+    got, _, _, _ = _strided_state_means(src, atoms, Exponential(), 1, 2,
                                   executor=shuffled_executor(seed))
     assert got.tobytes() == ref.tobytes()
     # the order matters for these sums: added as they arrived, they would differ

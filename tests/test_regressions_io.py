@@ -156,6 +156,30 @@ def test_prefilter_keeps_a_pair_that_is_short_in_only_one_of_the_states(demo_fil
         assert "kept 0 of 1 pairs" in note and "kept besides 1 pair(s)" in note
 
 
+def test_prefilter_of_a_single_state_keeps_the_pairs_that_come_below_the_cutoff(demo_files,
+                                                                                demo_pairs):
+    # runs whose states are not known yet form one state: a pair short in one of the states
+    # they visit was averaged away with the others (its mean over both above the cutoff)
+    top, states = demo_files
+    files = states["closed"][:1] + states["open"][:1]
+    src = Source(top)
+    for f in files:
+        src.add(f, "runs")
+    d = np.concatenate([_numpy_distances(f, top, demo_pairs)[::10] for f in files])
+    mean, low = d.mean(axis=0), d.min(axis=0)
+    # a cutoff in the widest gap of the minima, away from the extremes (float32 reading)
+    srt = np.sort(low)
+    gaps = np.diff(srt)
+    i = 5 + int(np.argmax(gaps[5:-5]))
+    cutoff = 0.5 * (srt[i] + srt[i + 1])
+    kept, note = prefilter_pairs(demo_pairs, src, cutoff=cutoff, stride=10)
+    assert kept.tolist() == demo_pairs[low < cutoff].tolist()
+    assert ((low < cutoff) & (mean >= cutoff)).any()  # pairs the mean alone had dropped
+    assert (f"pairs that come below {cutoff:g} nm in some frame (a single state: a mean over "
+            "it would mix the states the runs visit)") in note
+    assert "(over every 10th frame of each state in each file, 400 frames)" in note
+
+
 @pytest.mark.parametrize("chunk_size", [500, 4, 2])
 def test_frame_ranges_not_aligned_with_the_prefilter_stride_leave_no_state_empty(
         demo_files, demo_pairs, chunk_size):
@@ -211,11 +235,13 @@ def test_prefilter_strided_read_gives_the_bytes_of_reading_every_frame(demo_file
         def blocks(self, sub, periodic):
             yield 0, md.compute_distances(sub, local, periodic=periodic)
 
-    a, va, n_a = _strided_state_means(strided, atoms, Values(), len(local), 10)
-    b, vb, n_b = _strided_state_means(full, atoms, Values(), len(local), 10)
+    a, va, mins_a, n_a = _strided_state_means(strided, atoms, Values(), len(local), 10)
+    b, vb, mins_b, n_b = _strided_state_means(full, atoms, Values(), len(local), 10)
     assert n_a == n_b == n_f // 10 + 148
-    assert np.array_equal(a, b) and np.array_equal(va, vb)
+    assert np.array_equal(a, b) and np.array_equal(va, vb) and np.array_equal(mins_a, mins_b)
     np.testing.assert_allclose(a[1], _numpy_distances(g, top, demo_pairs)[20:1500:10].mean(0),
+                               rtol=1e-6)
+    np.testing.assert_allclose(mins_a[1], _numpy_distances(g, top, demo_pairs)[20:1500:10].min(0),
                                rtol=1e-6)
 
 

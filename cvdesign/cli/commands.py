@@ -137,8 +137,9 @@ def _add_suggest_options(p):
                    help="prefilter in nm: keep a pair of atoms (distance) or of residues "
                         "(center_distance, coordination: their mass centers) if its mean "
                         "distance is below this in at least one state, and up to 100 farther "
-                        "pairs that separate the states better than any of those (default: "
-                        "1.0 nm)")
+                        "pairs that separate the states better than any of those; with "
+                        "--runs, the states' proposal keeps a pair that comes below it in "
+                        "some frame (default: 1.0 nm)")
     p.add_argument("--coordination-r0", type=_positive_float, default=COORDINATION_R0_NM,
                    metavar="NM",
                    help="switching distance of the coordination numbers in nm: a pair of atoms "

@@ -5,7 +5,8 @@ Candidates come from an atom selection:
 * distances between every pair of selected atoms that are more than two bonds
   apart (1-2 and 1-3 pairs are nearly rigid, or an angle in disguise), kept
   when the pair's mean distance is below a cutoff in at least one state
-  (:func:`prefilter_pairs`);
+  (:func:`prefilter_pairs`; with a single state, runs whose states are not known
+  yet, when it comes below the cutoff in some frame);
 * bond angles over every bonded triple of selected atoms;
 * one dihedral per rotatable bond: a bond between selected atoms that both
   have another selected neighbour and that is not in a small ring (of up to
@@ -363,7 +364,8 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
                     executor=None):
     """Keep a pair if its mean distance over some state is below `cutoff`, or if it
     separates the states better than every such pair (at most :data:`MAX_RESCUED_PAIRS`
-    of those; see :func:`_separating_beyond_cutoff`).
+    of those; see :func:`_separating_beyond_cutoff`). With a single state, a pair that
+    comes below `cutoff` in some frame read (:func:`_within_cutoff`).
 
     The means are taken over every `stride`-th frame, which keeps this pass
     cheap; the stride counts each state's frames within each file.
@@ -402,18 +404,19 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = remap[pairs]
-    means, variances, n_frames = _strided_state_means(
+    means, variances, minima, n_frames = _strided_state_means(
         source, atoms, _PairDistances(local, max_numbers), len(local), stride,
         label="prefilter", executor=executor)
-    keep = (means < cutoff).any(axis=0)
+    keep = _within_cutoff(means, minima, cutoff)
     n_below = int(keep.sum())
     rescued = _separating_beyond_cutoff(means, variances, keep)
     keep[rescued] = True
+    rule = (f"with a mean below {cutoff:g} nm in at least one state" if means.shape[0] > 1
+            else "that come " + _SINGLE_STATE_RULE.format(cutoff=cutoff))
     note = (
-        f"distances: kept {n_below} of {pairs.shape[0]} pairs with a mean below "
-        f"{cutoff:g} nm in at least one state, dropped {int((~keep).sum())} "
-        f"(means over every {_ordinal(stride)} frame of each state in each file, "
-        f"{n_frames} frames)"
+        f"distances: kept {n_below} of {pairs.shape[0]} pairs {rule}, dropped "
+        f"{int((~keep).sum())} ({'means ' if means.shape[0] > 1 else ''}over every "
+        f"{_ordinal(stride)} frame of each state in each file, {n_frames} frames)"
     ) + _rescue_note(rescued, means, variances, cutoff, source.states,
                      lambda k: "atoms {} and {} ({}, {})".format(
                          *pairs[k], *(source.topology.atom(int(a)) for a in pairs[k])))
@@ -424,6 +427,34 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
 #: below it (:func:`_separating_beyond_cutoff`): enough for the best separators, bounded
 #: for a pool whose every pair is far apart (our choice).
 MAX_RESCUED_PAIRS = 100
+
+
+def _within_cutoff(means, minima, cutoff):
+    """Which pairs the prefilter keeps for being near `cutoff` (nm).
+
+    With labelled states: a mean below `cutoff` in at least one state. With a single state
+    (runs whose states are not known yet, :func:`~cvdesign.pipeline.explore.propose_states`)
+    a mean over it would mix the states the runs visit, and a contact formed in one of
+    them only (a fifth of the frames at 0.4 nm, the rest at 2 nm: a mean of 1.7 nm) would be
+    dropped with the slow process it marks: a pair is kept when it comes below `cutoff` in
+    some frame read.
+
+    Examples
+    --------
+    >>> means, minima = np.array([[1.7, 0.5, 1.8]]), np.array([[0.4, 0.3, 1.5]])
+    >>> _within_cutoff(means, minima, 1.0)
+    array([ True,  True, False])
+    >>> _within_cutoff(np.vstack([means, means]), np.vstack([minima, minima]), 1.0)
+    array([False,  True, False])
+    """
+    if means.shape[0] == 1:
+        return minima[0] < cutoff
+    return (means < cutoff).any(axis=0)
+
+
+#: How the prefilter notes say the rule of a single state (:func:`_within_cutoff`).
+_SINGLE_STATE_RULE = ("below {cutoff:g} nm in some frame (a single state: a mean over it "
+                      "would mix the states the runs visit)")
 
 
 def _separating_beyond_cutoff(means, variances, keep):
@@ -574,13 +605,15 @@ def _frames_read(source, step):
     return total
 
 
-def _accumulate(blocks, weights, sums, squares):
+def _accumulate(blocks, weights, sums, squares, minima):
     """Add the column sums and sums of squares (weighted by `weights`, one per frame, when
-    given) of ``(first column, values)`` blocks into `sums` and `squares` (float64), block by
-    block: memory of one block, not of every value at once."""
+    given) of ``(first column, values)`` blocks into `sums` and `squares` (float64), and
+    lower `minima` to the columns' smallest values, block by block: memory of one block,
+    not of every value at once."""
     for lo, vals in blocks:
         v = vals.astype(np.float64)
         hi = lo + v.shape[1]
+        np.minimum(minima[lo:hi], v.min(axis=0), out=minima[lo:hi])
         if weights is None:
             sums[lo:hi] += v.sum(axis=0)
             squares[lo:hi] += np.einsum("ij,ij->j", v, v)
@@ -649,6 +682,7 @@ def _segment_sums(ctx, task, tick=None):
     n_states = len(source.states)
     sums = np.zeros((n_states, ctx.n_values))
     squares = np.zeros((n_states, ctx.n_values))
+    minima = np.full((n_states, ctx.n_values), np.inf)
     counts = np.zeros(n_states)
     used = np.zeros(n_states, dtype=np.int64)
     weights = ctx.weights.get(task.segment)
@@ -662,7 +696,7 @@ def _segment_sums(ctx, task, tick=None):
         used[s] += sub.n_frames
         w = None if weights is None else weights[frames[rows]]
         counts[s] += sub.n_frames if w is None else w.sum()
-        _accumulate(ctx.values.blocks(sub, periodic), w, sums[s], squares[s])
+        _accumulate(ctx.values.blocks(sub, periodic), w, sums[s], squares[s], minima[s])
 
     read = 0
     if ctx.strided:
@@ -690,7 +724,7 @@ def _segment_sums(ctx, task, tick=None):
             read += chunk.frames.size
             if tick is not None:
                 tick(chunk.frames.size)
-    return sums, squares, counts, used, read
+    return sums, squares, minima, counts, used, read
 
 
 def _strided_state_means(source, atoms, values, n_values, stride, label="prefilter",
@@ -705,8 +739,8 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
     One task per segment (on `executor`, an object with ``run(fn, context, items)``
     as in :mod:`cvdesign.parallel`; None: in this process); the segments' sums are
     added in segment order, so the means are the same bytes on every executor.
-    Returns (means and variances, each of shape (n_states, n_values), and the number of
-    frames used). The frames read advance a progress bar labelled `label`
+    Returns (means, variances and minima, each of shape (n_states, n_values), and the
+    number of frames used). The frames read advance a progress bar labelled `label`
     (:mod:`cvdesign.progress`).
     """
     reweighting = source.reweighting()
@@ -717,6 +751,7 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
     tasks = [_SegmentTask(i, i, str(seg.path)) for i, seg in enumerate(source.segments)]
     sums = np.zeros((source.n_states, n_values))
     squares = np.zeros((source.n_states, n_values))
+    minima = np.full((source.n_states, n_values), np.inf)
     counts = np.zeros(source.n_states)
     frames_used = np.zeros(source.n_states, dtype=np.int64)
     with progress.bar(label, lambda: _frames_read(source, stride if strided else 1)) as shown:
@@ -732,12 +767,13 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
         pending, nxt = {}, 0
         for number, result in results():
             if not ticked:
-                shown.update(result[4])
+                shown.update(result[-1])
             pending[number] = result
             while nxt in pending:  # added in segment order, whatever order they arrive in
-                seg_sums, seg_squares, seg_counts, seg_used, _ = pending.pop(nxt)
+                seg_sums, seg_squares, seg_minima, seg_counts, seg_used, _ = pending.pop(nxt)
                 sums += seg_sums
                 squares += seg_squares
+                np.minimum(minima, seg_minima, out=minima)
                 counts += seg_counts
                 frames_used += seg_used
                 nxt += 1
@@ -749,7 +785,7 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
         )
     means = sums / counts[:, None]
     variances = np.maximum(squares / counts[:, None] - means * means, 0.0)
-    return means, variances, int(frames_used.sum())
+    return means, variances, minima, int(frames_used.sum())
 
 
 def residue_groups(topology, atoms):
@@ -825,16 +861,18 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = [remap[np.asarray(g, dtype=np.intp)] for g in groups]
-    means, variances, n_frames = _strided_state_means(
+    means, variances, minima, n_frames = _strided_state_means(
         source, atoms, _CenterDistances(local, pairs, masses, max_numbers), len(pairs), stride,
         label="prefilter (residues)", executor=executor)
-    keep = (means < cutoff).any(axis=0)
+    keep = _within_cutoff(means, minima, cutoff)
     n_below = int(keep.sum())
     rescued = _separating_beyond_cutoff(means, variances, keep)
     keep[rescued] = True
-    note = (f"group pairs: kept {n_below} of {len(pairs)} with a mean center "
-            f"distance below {cutoff:g} nm in at least one state (every {_ordinal(stride)} frame, "
-            f"{n_frames} frames)") + _rescue_note(
+    rule = (f"with a mean center distance below {cutoff:g} nm in at least one state"
+            if means.shape[0] > 1 else "whose centers come " +
+            _SINGLE_STATE_RULE.format(cutoff=cutoff))
+    note = (f"group pairs: kept {n_below} of {len(pairs)} {rule} (every {_ordinal(stride)} "
+            f"frame, {n_frames} frames)") + _rescue_note(
                 rescued, means, variances, cutoff, source.states,
                 lambda k: "the groups of {} and {}".format(
                     *(source.topology.atom(int(groups[g][0])).residue for g in pairs[k])))
