@@ -278,13 +278,19 @@ def test_integrated_time_is_the_cvs_own_from_a_direct_computation_on_the_evaluat
         toy):
     """``integrated_time_ps`` of a ranked CV is the CV's own (not its slowest term's):
     Sokal's estimator on the autocorrelation within runs (each run about its own mean,
-    reversible, the runs weighted by their pairs) on the descriptors' grid of lags,
-    computed here with numpy from the spec's evaluator on every frame."""
+    reversible, the runs weighted by their pairs) on the descriptors' grid of lags, in the
+    state where it is longest, computed here with numpy from the spec's evaluator on every
+    frame."""
     entry = toy["ranking"]["ranking"][0]
     runs = list(toy["values"].values())
     grid = iat_lags(np.array([[v.size] for v in runs]))
-    rho = [_within_runs(runs, lag) for lag in grid]
-    tau, decayed = integrated_time(grid, np.array(rho)[:, None], FRAME_PS)
+    by_state = {}
+    for state, paths in toy["files"].items():
+        rho = [_within_runs([toy["values"][p] for p in paths], lag) for lag in grid]
+        by_state[state] = integrated_time(grid, np.array(rho)[:, None], FRAME_PS)
+    slowest = max(by_state, key=lambda s: float(by_state[s][0][0]))
+    tau, decayed = by_state[slowest]
+    assert entry["integrated_time_state"] == slowest
     assert entry["frame_spacing_ps"] == FRAME_PS
     assert entry["integrated_time_decayed"] is bool(decayed[0]) is True
     # float32 features against the evaluator's float64: rho differs by about 1e-6

@@ -24,7 +24,7 @@ from cvdesign.passes import CoordinateFeaturizer, LagGridPass
 from cvdesign.pipeline.report_data import (MAX_BINS, MAX_TRACE_POINTS, CVGridPass,
                                            CVLaggedPass, CVPlan, CVReportPass,
                                            affine_to_cv_units, cv_integrated_times,
-                                           histogram_bins, trace_stride)
+                                           _within_runs, histogram_bins, trace_stride)
 from cvdesign.pipeline.timing import integrated_time, local_autocorrelation
 from cvdesign.pool import Descriptor, Pool
 
@@ -56,12 +56,45 @@ def test_a_combination_decorrelates_more_slowly_than_each_of_its_terms(tmp_path)
                            CVGridPass(feats, [cv], grid, [2.0])), src)
     rho = np.array([local_autocorrelation(r.by_run().values(), 3)[:2] for r in terms])
     tau_terms, _ = integrated_time(grid, rho, 1.0)
-    (tau, decayed, ci, short), = cv_integrated_times(cvs, grid, 1.0, 2 * n)
+    (tau, decayed, ci, short, state), = cv_integrated_times(cvs, grid, 1.0, [2 * n])
     assert decayed and ci[0] < tau < ci[1]
     assert tau_terms.max() < 1.0  # each term: about half a frame plus F's share of S
     # the estimate's relative standard deviation is sqrt(2 (2 M + 1) / N) = 0.07 for the
     # window M of about 250 frames and N = 2e5 frames (Madras and Sokal 1988): 3.5 of them
+    assert tau == pytest.approx(49.5, rel=0.25) and state == 0
+
+
+def test_a_cvs_integrated_time_is_that_of_its_slowest_state(tmp_path):
+    """A narrow, slow state (spread 0.01 nm, AR(1) of 0.98 per frame: an integrated time
+    of (1 + phi) / (2 (1 - phi)) = 49.5 frames, Sokal 1997, in *Functional Integration*,
+    Plenum) beside a broad, fast one (spread 0.1 nm, white noise: half a frame). Pooled
+    over the states, weighted by their variances, the time was about 1 frame, and the
+    deposition interval sized from it would fill the slow basin far faster than it relaxes;
+    the CV's time is now the slow state's, with that state's frames for its interval."""
+    rng = np.random.default_rng(8)
+    n, phi = 40_000, 0.98
+    top = md.Topology()
+    _ = top.add_atom("C1", md.element.carbon, top.add_residue("TOY", top.add_chain()))
+    src = Source(top, timestep=1.0)
+    for k, state in enumerate(("broad", "narrow")):
+        x = (rng.normal(0.0, 0.1, n) if state == "broad" else
+             lfilter([1.0], [1.0, -phi], rng.normal(0.0, 0.01 * np.sqrt(1 - phi * phi), n)))
+        xyz = np.zeros((n, 1, 3))
+        xyz[:, 0, 0] = 1.0 + x + (1.0 if state == "narrow" else 0.0)
+        path = tmp_path / f"{state}.dcd"
+        md.Trajectory(xyz.astype(np.float32), top).save_dcd(str(path))
+        src.add(str(path), state)
+    grid = np.unique(np.round(np.geomspace(1, 2000, 18)).astype(int))
+    feats = CoordinateFeaturizer([0])
+    cv = CVPlan([0], [1.0], [[1.0]], [(1.0, 0.0)], -1.0, 3.0, 10)
+    cvs, = run_pass((CVGridPass(feats, [cv], grid, [2.0]),), src)
+    (tau, decayed, ci, short, state), = cv_integrated_times(cvs, grid, 1.0, [n, n])
+    assert state == 1 and decayed and ci[0] < tau < ci[1]
     assert tau == pytest.approx(49.5, rel=0.25)
+    # pooled over both states (as before): about a frame
+    rho = _within_runs(cvs)[:, 0]
+    pooled, _ = integrated_time(grid, rho[:, None], 1.0)
+    assert pooled[0] < 2.0
 
 
 # ------------------------------------------------------------------------ small rules

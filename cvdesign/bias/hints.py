@@ -849,7 +849,8 @@ def suggest_hints(
     autocorrelation_time_ps : float, optional
         Time for the CV to decorrelate *within a state*, in ps, > 0: the CV's
         own integrated autocorrelation time (a ranking's or spec's
-        ``integrated_time_ps``), not its slowest term's (a combination can
+        ``integrated_time_ps``, that of the state where it is longest), not its
+        slowest term's (a combination can
         decorrelate more slowly than any of its terms). When None, a
         deposition interval of 1 ps is suggested (common practice, from
         memory). A timescale of the whole data set (e.g. a ranking's

@@ -501,7 +501,8 @@ _RANKING_TABLE = (
            f"{name}:{st['at_bound']}" for name, st in r["states"].items()
            if st.get("at_bound")))]
     + [("integrated_time_decayed", "flag", _value("integrated_time_decayed"))]
-    + _numbers("frame_spacing_ps"))
+    + _numbers("frame_spacing_ps")
+    + [("integrated_time_state", "text", _value("integrated_time_state"))])
 
 _SCORECARD_TABLE = (
     [("order", "int", None), ("id", "text", _value("id")), ("kind", "text", _value("kind")),

@@ -46,7 +46,7 @@ from ..passes import FeaturePass, LagGridPass, frame_keys, group_rows, thinning_
 from ..score.card import integrated_time_interval
 from ..stats.moments import DiagonalLaggedMoments
 from .output import run_file_names
-from .timing import (integrated_time, local_autocorrelation, runs_too_short,
+from .timing import (local_autocorrelation, runs_too_short,
                      state_integrated_times)
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
@@ -557,24 +557,28 @@ class CVGridPass(LagGridPass):
         return np.subtract(cv, shift, out=cv)
 
 
-def _within_runs(results, by_lag=None):
+def _within_runs(results):
     """Autocorrelation of each CV within the runs (each about its own mean) at each lag of
-    :class:`CVGridPass`'s result: shape (n_lags, n_cvs), NaN where undefined (`by_lag`:
-    the results' ``by_run()``, when the caller has them)."""
+    :class:`CVGridPass`'s result: shape (n_lags, n_cvs), NaN where undefined."""
     n = results[0].n_features if results else 0
-    by_lag = [r.by_run() for r in results] if by_lag is None else by_lag
+    by_lag = [r.by_run() for r in results]
     return np.array([local_autocorrelation(runs.values(), n)
                      for runs in by_lag]).reshape(len(results), n)
 
 
-def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None, skip_states=()):
-    """Each CV's integrated time within the states, from :class:`CVGridPass`.
+def cv_integrated_times(results, lags, dt_ps, state_frames, *, grid=None, skip_states=()):
+    """Each CV's integrated time within the states, from :class:`CVGridPass`: that of the
+    state in which it is longest.
 
     Every run (segment, state) is taken about its own mean
-    (:func:`~cvdesign.pipeline.timing.local_autocorrelation`), then
-    :func:`~cvdesign.pipeline.timing.integrated_time` and its asymptotic interval
-    (:func:`~cvdesign.score.card.integrated_time_interval`), exactly as for the
-    descriptors of the score card.
+    (:func:`~cvdesign.pipeline.timing.local_autocorrelation`); each state's runs give
+    :func:`~cvdesign.pipeline.timing.integrated_time`, as for the descriptors of the score
+    card, and the CV's time is the longest of them, with the asymptotic interval of that
+    state's frames (:func:`~cvdesign.score.card.integrated_time_interval`). A time pooled
+    over the states weighs each by its variance along the CV: a narrow, slow state (spread
+    0.01, 100 frames) beside a broad, fast one (spread 0.1, 1 frame) pooled to about 2
+    frames, and the deposition interval sized from it would fill the slow basin far faster
+    than it relaxes.
 
     Parameters
     ----------
@@ -584,8 +588,9 @@ def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None, skip_state
         Its lags, frames.
     dt_ps : float
         Time between frames, ps.
-    n_frames : int
-        Frames of all runs (effective sample sizes for reweighted states).
+    state_frames : array-like of shape (n_states,)
+        Frames of each state (the effective sample size of a reweighted one), for the
+        interval.
     grid : array-like of int, optional
         The lags (among `lags`) to integrate over, e.g. the descriptors' grid when the
         pass also has the pipeline's lag; None: all.
@@ -595,31 +600,39 @@ def cv_integrated_times(results, lags, dt_ps, n_frames, *, grid=None, skip_state
 
     Returns
     -------
-    list of (float, bool, list or None) or None
+    list of (float, bool, list or None, bool, int) or None
         Per CV: the time (ps), whether the autocorrelation decayed within the
         window (False: the time is a lower bound; also when the runs are too short
         for it, :func:`~cvdesign.pipeline.timing.runs_too_short`), the 95 %
-        interval (ps; None when it did not decay), and whether the runs were too
-        short for it; None for a CV without pairs at the first lag.
+        interval (ps; None when it did not decay), whether the runs were too short
+        for it, and the state it is the time of; None for a CV without pairs at the
+        first lag.
     """
     lags = np.asarray(lags, dtype=np.intp)
     by_lag = [r.by_run() for r in results]  # (folds merged once per lag)
-    rho = _within_runs(results, by_lag)
-    n = rho.shape[1]
+    n = results[0].n_features if results else 0
     keep = (np.ones(lags.size, dtype=bool) if grid is None
             else np.isin(lags, np.asarray(grid, dtype=np.intp)))
-    lags, rho = lags[keep], rho[keep]
+    lags = lags[keep]
     kept = [runs for runs, k in zip(by_lag, keep) if k]
-    tau, decayed, window = integrated_time(lags, rho, dt_ps, return_window=True)
+    per_state = state_integrated_times(kept, lags, n, dt=dt_ps, return_window=True)
+    tau = np.full(n, np.nan)
+    decayed, window = np.zeros(n, dtype=bool), np.zeros(n)
+    state = np.full(n, -1, dtype=np.intp)
+    for s, (t, d, w) in per_state.items():  # the longest; a tie keeps the first state
+        longer = np.isfinite(t) & ~(t <= tau)
+        tau[longer], decayed[longer], window[longer], state[longer] = \
+            t[longer], d[longer], w[longer], s
     short = np.zeros(n, dtype=bool)
     if len(lags) and int(lags[0]) == 1:  # runs too short for the time: a lower bound
-        short = runs_too_short(kept[0], state_integrated_times(kept, lags, n), n,
+        short = runs_too_short(kept[0], {s: v[0] / dt_ps for s, v in per_state.items()}, n,
                                skip_states=skip_states) & decayed
         decayed = decayed & ~short
-    lo, hi = integrated_time_interval(tau, window, n_frames)
+    frames = np.asarray(state_frames, dtype=np.float64)[np.maximum(state, 0)]
+    lo, hi = integrated_time_interval(tau, window, np.maximum(frames, 1.0))
     return [None if not np.isfinite(tau[c]) else
             (float(tau[c]), bool(decayed[c]), [float(lo[c]), float(hi[c])] if decayed[c] else None,
-             bool(short[c]))
+             bool(short[c]), int(state[c]))
             for c in range(n)]
 
 

@@ -467,7 +467,7 @@ def _suggest(source, config, executor, progress, checksums):
     if held.report is not None and held.report.get("cv_grid") is not None:
         frame_ps = next(iter(steps.values()))  # (the grid needs one known spacing)
         cv_times = cv_integrated_times(held.report["cv_grid"], held.report_lags, frame_ps,
-                                       _effective_frames(seg_counts, reweighting),
+                                       _state_frames(seg_counts, reweighting),
                                        grid=_lag_grid(steps, seg_counts),
                                        skip_states=_reweighted_states(reweighting))
         short_cvs = sum(t is not None and t[3] for t in cv_times)
@@ -496,7 +496,8 @@ def _suggest(source, config, executor, progress, checksums):
             entry.update(transition_columns(fit, fm, lag_ps))
             if transit_ci is not None:
                 entry.update(transit_ci[rank - 1])
-        _add_times(entry, longest_run_ps, longest_visit, cv_times[rank - 1], frame_ps)
+        _add_times(entry, longest_run_ps, longest_visit, cv_times[rank - 1], frame_ps,
+                   source.states)
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
         if refused:
@@ -1129,11 +1130,11 @@ def _bootstrap_notes(boot, held, config, fm=None):
     return out
 
 
-def _add_times(entry, longest_run_ps, longest_visit_ps, cv_time, frame_spacing_ps):
+def _add_times(entry, longest_run_ps, longest_visit_ps, cv_time, frame_spacing_ps, states):
     """Whether the timescale is resolved by the runs, and the CV's own integrated time
-    within the runs (``cv_time``: from :func:`cv_integrated_times`, None when the frame
-    spacing is unknown or differs between files), with the frame spacing it was
-    measured at.
+    within the runs of the state where it is longest (``cv_time``: from
+    :func:`cv_integrated_times`, None when the frame spacing is unknown or differs between
+    files; that state's name from `states`), with the frame spacing it was measured at.
 
     The timescales of pairs within one state (``timescale``, ``timescale_within_states``)
     are resolved below the longest run or visit of one state (`longest_visit_ps`: a
@@ -1154,6 +1155,7 @@ def _add_times(entry, longest_run_ps, longest_visit_ps, cv_time, frame_spacing_p
     entry["integrated_time_ci_ps"] = None if cv_time is None else cv_time[2]
     entry["integrated_time_decayed"] = None if cv_time is None else cv_time[1]
     entry["frame_spacing_ps"] = None if cv_time is None else frame_spacing_ps
+    entry["integrated_time_state"] = None if cv_time is None else states[cv_time[4]]
 
 
 def _scorecard(pool, screening, short, overlap_desc, iat_desc, card_ci):

@@ -384,9 +384,9 @@ def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
     return out
 
 
-def state_integrated_times(runs_by_lag, lags, n_features):
-    """Per state, the integrated time (frames) of each feature within its own runs (each
-    run about its own mean), from lagged moments at a grid of lags.
+def state_integrated_times(runs_by_lag, lags, n_features, *, dt=1.0, return_window=False):
+    """Per state, the integrated time of each feature within its own runs (each run about
+    its own mean), from lagged moments at a grid of lags.
 
     Parameters
     ----------
@@ -395,19 +395,25 @@ def state_integrated_times(runs_by_lag, lags, n_features):
     lags : array-like of int
         Increasing lags, frames, from 1.
     n_features : int
+    dt : float, default=1.0
+        Time between frames, ps (1: the times in frames).
+    return_window : bool, default=False
+        Give per state ``(tau, decayed, window)`` as :func:`integrated_time` with
+        ``return_window=True`` does.
 
     Returns
     -------
     dict of int to ndarray of shape (n_features,)
-        Per state with runs; NaN where not defined.
+        Per state with runs (in the unit of `dt`); NaN where not defined.
     """
     states = sorted({s for runs in runs_by_lag for (_, s) in runs})
     out = {}
     for s in states:
         rho = np.array([local_autocorrelation([m for (_, ss), m in runs.items() if ss == s],
                                               n_features) for runs in runs_by_lag])
-        out[s] = integrated_time(np.asarray(lags), rho.reshape(len(runs_by_lag), n_features),
-                                 1.0)[0]
+        found = integrated_time(np.asarray(lags), rho.reshape(len(runs_by_lag), n_features),
+                                dt, return_window=True)
+        out[s] = found if return_window else found[0]
     return out
 
 

@@ -883,7 +883,7 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
                         "its own mean, the relaxation of the CV inside the basins, free of "
                         "the offsets between them; the CV's integrated time in the ranking, "
                         "which sets the bias hints' deposition interval, comes from these "
-                        "autocorrelations.")
+                        "autocorrelations, taken state by state (the longest).")
         if tica_data is not None:
             caption += (" The crosses are TICA's implied timescales at its lag (--runs): lower "
                         "bounds on the true timescales, since a linear combination of features "
