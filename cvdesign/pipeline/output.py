@@ -331,7 +331,10 @@ class Suggestions:
         out += ["", "## What was done", ""] + [f"- {n}" for n in self.notes]
         out += ["", "## Top suggestions", "",
                 "Held-out J is the Fisher ratio (between-state over within-state variance "
-                "of the CV, dimensionless) on frames not used to fit it; overlap is the "
+                "of the CV, dimensionless) on frames not used to fit it (the best of many "
+                "such scores, so somewhat optimistic; ranking.csv's "
+                "heldout_fisher_ratio_noise is what noise alone gives one fixed direction); "
+                "overlap is the "
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
                 "normalized autocorrelation of the CV at the lag (1 = does not relax within "
@@ -502,7 +505,8 @@ _RANKING_TABLE = (
            if st.get("at_bound")))]
     + [("integrated_time_decayed", "flag", _value("integrated_time_decayed"))]
     + _numbers("frame_spacing_ps")
-    + [("integrated_time_state", "text", _value("integrated_time_state"))])
+    + [("integrated_time_state", "text", _value("integrated_time_state"))]
+    + _numbers("heldout_fisher_ratio_noise"))
 
 _SCORECARD_TABLE = (
     [("order", "int", None), ("id", "text", _value("id")), ("kind", "text", _value("kind")),

@@ -23,7 +23,7 @@ from ..stats.moments import merge_all
 __all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit", "Shortlist",
            "shortlist", "search", "fit_ranked", "kinetic_map_scale", "bootstrap_ranked",
            "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap", "fisher_along",
-           "add_ranges"]
+           "add_ranges", "NOISE_LEVEL_FACTOR", "heldout_noise_level", "add_noise_level"]
 
 #: Bootstrap refits of the search for selection frequencies, and the number of best
 #: shortlisted descriptors (besides the ranked terms) they may choose from.
@@ -424,8 +424,11 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
         return np.array(out)
 
     res = block_bootstrap(per_state, stat, n_boot=n_bootstrap, seed=seed, label="bootstrap")
-    # each value's range: a weight any, a Fisher ratio >= 0, autocorrelations in [-1, 1]
-    bounds = np.concatenate([[[-np.inf, np.inf]] * p_idx.size + [[0.0, np.inf]] +
+    # each value's range: a weight in [-1, 1] (the discriminant directions have unit length;
+    # a 'slow' direction is scaled by the kinetic map: any), a Fisher ratio >= 0,
+    # autocorrelations in [-1, 1]
+    weight = 1.0 if search["objective"] != "slow" else np.inf
+    bounds = np.concatenate([[[-weight, weight]] * p_idx.size + [[0.0, np.inf]] +
                              [[-1.0, 1.0]] * 2 for p_idx, _ in p_fits]) if p_fits else \
         np.zeros((0, 2))
     low, high = hull_interval(res.estimate, res.low, res.high,
@@ -591,6 +594,82 @@ def _rigid_cv_warnings(state_stats, j_all, heldout):
             "are (nearly) rigidly tied within each state, which points at repeated or "
             "constrained frames, and a bias along it would need kernels narrower than the "
             "data resolve; check the runs before using it"]
+
+
+#: A ranked CV whose held-out Fisher ratio is below this many times
+#: :func:`heldout_noise_level` gets a warning: the search keeps the best of thousands of
+#: held-out scores, which lifts the best above the level of one fixed direction (our
+#: choice: with two states drawn from one distribution, the best came 3 to 10 times that
+#: level in our tests, two or three runs per state; a rough screen, not a test: a null
+#: case can pass it, and a weak real difference can be warned about).
+NOISE_LEVEL_FACTOR = 10.0
+
+
+def heldout_noise_level(fm, tau_frames):
+    """The held-out Fisher ratio that noise alone gives a fixed direction, were the states
+    one distribution.
+
+    With state means ``m_k`` of ``n_k`` held-out frames of integrated time ``tau``
+    (frames), each off the common mean by a noise of variance ``sigma^2 2 tau / n_k``
+    (Sokal 1997, in *Functional Integration*, Plenum), the expected between-state variance
+    ``sum_k p_k (m_k - m)^2`` (``m = sum_k p_k m_k``) is ``sigma^2 sum_k p_k (1 - p_k)
+    2 tau / n_k`` (our algebra), so the ratio over ``sigma^2`` is that sum; averaged over
+    the folds as the held-out score is.
+
+    Parameters
+    ----------
+    fm : cvdesign.search.FoldMoments
+        Per state and fold moments (their counts are the held-out frames).
+    tau_frames : float
+        The CV's integrated time, frames (the longest of the states').
+
+    Returns
+    -------
+    float or None
+        None when a fold has a state without frames.
+
+    Examples
+    --------
+    >>> from cvdesign.search import FoldMoments
+    >>> from cvdesign.stats.moments import Moments
+    >>> rng = np.random.default_rng(0)
+    >>> fm = FoldMoments([[Moments.from_data(rng.normal(0, 1, (1000, 1))) for _ in range(2)]
+    ...                   for _ in range(2)])
+    >>> heldout_noise_level(fm, 0.5)  # 2 (1/4) (2 x 0.5 / 1000) = 0.0005
+    0.0005
+    """
+    p = np.asarray(fm.priors, dtype=np.float64)
+    levels = []
+    for k in range(fm.n_folds):
+        n = np.array([fm.moments[s][k].count for s in range(fm.n_states)], dtype=np.float64)
+        if not (n > 0).all():
+            return None
+        levels.append(float(np.sum(p * (1.0 - p) * 2.0 * tau_frames / n)))
+    return float(np.mean(levels))
+
+
+def add_noise_level(entry, fm, frame_ps, reweighted, *, warn=True):
+    """``heldout_fisher_ratio_noise`` (:func:`heldout_noise_level`, from the CV's
+    ``integrated_time_ps``; None when it or the frame spacing is unknown, or a state is
+    reweighted: its counts are weights, not frames) and, when `warn`, a warning when the
+    held-out Fisher ratio is below :data:`NOISE_LEVEL_FACTOR` times it. Returns whether it
+    warned."""
+    tau_ps = entry.get("integrated_time_ps")
+    level = None
+    if tau_ps is not None and frame_ps and not reweighted:
+        level = heldout_noise_level(fm, tau_ps / frame_ps)
+    entry["heldout_fisher_ratio_noise"] = level
+    j = entry["heldout_fisher_ratio"]
+    if not warn or level is None or not j < NOISE_LEVEL_FACTOR * level:
+        return False
+    entry["warnings"].append(
+        f"its held-out Fisher ratio ({j:.3g}) is less than {NOISE_LEVEL_FACTOR:g} times "
+        f"what noise alone gives a fixed direction with these runs ({level:.3g}, from the "
+        f"CV's integrated time, {tau_ps:.3g} ps, and each fold's frames): the states may not "
+        "differ along it at all, since the search keeps the best of many held-out scores, "
+        "which lifts the best above that level; give more or longer runs before trusting "
+        "it")
+    return True
 
 
 def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, states, config,

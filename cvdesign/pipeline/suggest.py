@@ -56,8 +56,9 @@ from ..stats.bootstrap import MIN_INTERVAL_BLOCKS
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs, resolving_span_ps
-from .ranking import (add_ranges, bootstrap_ranked, card_interval_rows, fit_ranked,
-                      heldout_overlap, hints_for, ranking_entry, search, shortlist)
+from .ranking import (NOISE_LEVEL_FACTOR, add_noise_level, add_ranges, bootstrap_ranked,
+                      card_interval_rows, fit_ranked, heldout_overlap, hints_for,
+                      ranking_entry, search, shortlist)
 from .report_data import (CVBlockHistograms, CVGridPass, CVLaggedPass, CVReportPass, cv_plans,
                           cv_integrated_times, report_document, timescale_lags, trace_stride)
 from .screening import Screening, screen
@@ -487,7 +488,7 @@ def _suggest(source, config, executor, progress, checksums):
     longest_visit = longest_visit_ps(source, reweighting, seg_counts, steps)
     params = config.parameters(lag_ps, folds)
     checksums = checksums.result(inputs)
-    ranking, specs, record = [], [], None
+    ranking, specs, record, noisy = [], [], None, []
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, held.overlap), 1):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
@@ -499,6 +500,9 @@ def _suggest(source, config, executor, progress, checksums):
         _add_times(entry, longest_run_ps, longest_visit, cv_times[rank - 1], frame_ps,
                    source.states)
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
+        if add_noise_level(entry, fm, frame_ps, reweighting is not None,
+                           warn=config.objective != "slow"):
+            noisy.append(rank)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
         if refused:
             entry["hints_refused"] = refused
@@ -508,6 +512,8 @@ def _suggest(source, config, executor, progress, checksums):
             record = SourceRecord.of(source)  # the topology and bias files, hashed once
         specs.append(spec_document(source, pool, entry, params, checksums,
                                    config.seed if config.n_bootstrap else None, record))
+    if noisy and noisy[0] == 1:
+        notes.append(_noise_note(noisy, ranking[0]))
     report_data = None
     if held.report is not None:
         report_data = report_document(held.report, held.report_plans, ranking, source=source,
@@ -1128,6 +1134,18 @@ def _bootstrap_notes(boot, held, config, fm=None):
                        "leave out the noise of the transition slowness and are too narrow by "
                        "that much; give longer crossing runs")
     return out
+
+
+def _noise_note(noisy, first):
+    """The warning when the best CV separates the states about as well as noise would."""
+    ranks = ", ".join(map(str, noisy))
+    return (f"warning: the held-out Fisher ratio of rank{'s' if len(noisy) > 1 else ''} "
+            f"{ranks} is less than {NOISE_LEVEL_FACTOR:g} times what noise alone gives a fixed "
+            f"direction with these runs (rank 1: {first['heldout_fisher_ratio']:.3g} against "
+            f"{first['heldout_fisher_ratio_noise']:.3g}, heldout_fisher_ratio_noise): the "
+            "states may not differ along any CV found, since the search keeps the best of "
+            "many held-out scores, which lifts the best above that level. Check that the "
+            "states are distinct (more or longer runs of each) before using these CVs")
 
 
 def _add_times(entry, longest_run_ps, longest_visit_ps, cv_time, frame_spacing_ps, states):
