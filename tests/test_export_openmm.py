@@ -24,6 +24,7 @@ from openmm import unit
 
 from cvdesign import Source, Spec, suggest
 from cvdesign.cli import main
+from cvdesign.bias.funnel import funnel_reach
 from cvdesign.errors import InputError
 from cvdesign.geometry import box_heights
 
@@ -406,6 +407,32 @@ def test_the_system_decides_the_periodic_images_and_must_fit_the_spec():
         spec.to_openmm("yes")
 
 
+def test_a_funnel_longer_than_half_the_systems_box_is_refused(tmp_path, capsys):
+    # a funnel sized without a box (reach 2.3 nm) exported for a 3 nm cube: the periodic
+    # image folded the ligand's offset, and a ligand inside the funnel got 2444 kJ/mol
+    reach = funnel_reach(FUNNEL)[0]
+    assert 1.5 < reach < 2.55
+    small = _system(7, True, box=3.0 * np.eye(3))
+    message = (rf"spec 'funnel': the funnel reaches {reach:.4g} nm from the pocket centre "
+               r"\(its upper wall\), more than half the smallest height of the openmm\.System's "
+               r"box \(1\.5 nm\).* every height is above")
+    for build in (_funnel_spec().restraint_to_openmm, _funnel_spec().to_openmm):
+        with pytest.raises(InputError, match=message):
+            build(system=small)
+    # a box whose heights are all above twice the reach is fine
+    assert _funnel_spec().restraint_to_openmm(system=_system(7, True, box=5.1 * np.eye(3)))
+    # and the command leaves nothing behind
+    _funnel_spec().save(tmp_path / "funnel.json")
+    system = tmp_path / "system.xml"
+    system.write_text(openmm.XmlSerializer.serialize(small))
+    before = sorted(tmp_path.iterdir())
+    assert main(["export", str(tmp_path / "funnel.json"), "--to", "openmm",
+                 "--out", str(tmp_path / "cv.xml"), "--restraint-out",
+                 str(tmp_path / "restraint.xml"), "--system", str(system)]) == 2
+    assert "more than half the smallest height" in capsys.readouterr().err
+    assert sorted(tmp_path.iterdir()) == before
+
+
 def test_without_openmm_the_export_says_how_to_install_it(monkeypatch):
     monkeypatch.setitem(sys.modules, "openmm", None)
     spec = _every_kind_spec(np.random.default_rng(1210))
@@ -444,7 +471,8 @@ def test_export_command_writes_forces_that_reproduce_the_spec(tmp_path, capsys):
 def test_export_command_writes_the_funnel_restraint_beside_the_cv(tmp_path, capsys):
     _funnel_spec().save(tmp_path / "funnel.json")
     system = tmp_path / "system.xml"
-    system.write_text(openmm.XmlSerializer.serialize(_system(7, True)))
+    system.write_text(openmm.XmlSerializer.serialize(
+        _system(7, True, box=FUNNEL_BOXES["orthorhombic"])))
     assert main(["export", str(tmp_path / "funnel.json"), "--to", "openmm",
                  "--out", str(tmp_path / "cv.xml"), "--restraint-out",
                  str(tmp_path / "restraint.xml"), "--system", str(system)]) == 0

@@ -180,6 +180,23 @@ def test_bad_weights_are_refused_naming_the_argument(weights, message):
         size_funnel(chunks=[(pocket, ligand)], weights=np.ones(120))
 
 
+@pytest.mark.parametrize("option, value, message", [
+    ("bin_width", 0.0, r"bin_width=0.0 must be > 0"),  # bins of garbage, with numpy warnings
+    ("blend_half_width", 0.0, r"blend_half_width=0.0 must be > 0"),  # a division by zero
+    ("cylinder_pad", -1.0, r"cylinder_pad=-1.0 must be >= 0"),  # a negative radius
+    ("unbound_length", -5.0, r"unbound_length=-5.0 must be > 0"),  # upper wall below lower
+    ("k_std", -1.0, r"k_std=-1.0 must be > 0"),
+    ("z_margin", np.nan, r"z_margin=nan must be finite"),
+    ("min_half_angle", 2.0, r"min_half_angle=2.0 must lie between 0 and pi/2 rad"),
+    ("ligand_radius", "wide", r"ligand_radius must be a number; got 'wide'"),
+])
+def test_sizing_options_that_give_no_funnel_are_refused_naming_the_option(option, value,
+                                                                           message):
+    pocket, ligand = _bound_frames(n=120)
+    with pytest.raises(InputError, match=message):
+        size_funnel(pocket, ligand, **{option: value})
+
+
 def test_sizing_refuses_a_pocket_that_fixes_no_orientation():
     pocket, ligand = _bound_frames()
     line = np.zeros((len(pocket), 3, 3))

@@ -113,6 +113,18 @@ def test_funnel_command_warns_when_the_funnel_reaches_beyond_half_the_box(tmp_pa
     sizing = json.loads(out.read_text())["hints"]["funnel_sizing"]
     assert any("beyond half the smallest box height" in w for w in sizing["warnings"])
     assert any(r.startswith("WARNING: the funnel reaches") for r in sizing["reasoning"])
+    # a shorter unbound length brings the funnel inside the box, and the warning goes
+    reach = sizing["observed"]["funnel_reach_nm"]
+    assert reach > 2.0
+    assert _run(data, tmp_path / "short.json", "--unbound-length", "0.6") == 0
+    captured = capsys.readouterr()
+    assert "warning" not in captured.err
+    short = json.loads((tmp_path / "short.json").read_text())["hints"]["funnel_sizing"]
+    assert short["observed"]["funnel_reach_nm"] == pytest.approx(reach - 0.9, abs=0.05)
+    with pytest.raises(SystemExit) as stop:
+        _run(data, tmp_path / "bad.json", "--unbound-length", "0")
+    assert stop.value.code == 2
+    assert "argument --unbound-length: '0' must be positive" in capsys.readouterr().err
 
 
 def test_funnel_command_refuses_overlapping_selections(host_guest, tmp_path, capsys):

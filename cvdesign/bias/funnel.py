@@ -61,6 +61,7 @@ from ..io.source import Source
 from ..parallel import using_executor
 from ..passes import (CoordinateFeaturizer, Pass, first_frame, frame_keys, plan_tasks, run_pass,
                       thinning_stride)
+from .hints import _number
 
 __all__ = ["CAUTION", "SHAPE_KEYS", "MAX_POSITIONS", "FunnelStats", "align_to_reference_pocket", "draw_funnel",
            "funnel_axis", "funnel_energy", "funnel_radius", "funnel_reach", "plot_funnel",
@@ -799,6 +800,25 @@ def _frame_weights(weights, chunks, pocket_xyz):
     return w / w.max()  # every statistic is scale-free; sums of squares stay in range
 
 
+def _check_options(*, ligand_radius, cylinder_pad, k_std, min_margin, z_margin,
+                   blend_half_width, unbound_length, min_half_angle, bin_width):
+    """Refuse sizing options that give no funnel (InputError naming the option): lengths in
+    nm finite, the pads and margins >= 0, the widths, lengths and `k_std` > 0, the smallest
+    half-angle in (0, pi/2) rad (a zero bin width had given bins of garbage, a zero blend a
+    division by zero, a negative unbound length an upper wall below the lower one)."""
+    if ligand_radius is not None:
+        _number("ligand_radius", ligand_radius, allow_zero=True)
+    for name, value in (("cylinder_pad", cylinder_pad), ("min_margin", min_margin),
+                        ("z_margin", z_margin)):
+        _number(name, value, allow_zero=True)
+    for name, value in (("k_std", k_std), ("blend_half_width", blend_half_width),
+                        ("unbound_length", unbound_length), ("bin_width", bin_width)):
+        _number(name, value)
+    if not 0.0 < _number("min_half_angle", min_half_angle) < 0.5 * np.pi:
+        raise InputError(f"min_half_angle={min_half_angle!r} must lie between 0 and pi/2 rad "
+                         "(a cone's half-angle)")
+
+
 def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylinder_pad=0.2,
           k_std=2.0, min_margin=0.1, z_margin=0.2, blend_half_width=0.1, unbound_length=1.5,
           min_half_angle=0.2, bin_width=0.02, reweighting=None, given_weights=None):
@@ -814,6 +834,10 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
     `given_weights` (the frames' weights given to :func:`size_funnel`) its note and
     Kish effective sample size.
     """
+    _check_options(ligand_radius=ligand_radius, cylinder_pad=cylinder_pad, k_std=k_std,
+                   min_margin=min_margin, z_margin=z_margin, blend_half_width=blend_half_width,
+                   unbound_length=unbound_length, min_half_angle=min_half_angle,
+                   bin_width=bin_width)
     # Pass 1: reference pocket, mean fitted offset and pocket, ligand radius, box heights.
     reference, sums = first()
     n = sums.n
@@ -867,7 +891,7 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
             f"beyond half the smallest box height of the bound frames ({half_height:.3f} nm): "
             "there the minimum-image vector from pocket to ligand jumps to another periodic "
             "image and the restraint no longer describes this funnel; use a larger box or a "
-            "shorter funnel (smaller unbound length)")
+            "shorter funnel (smaller unbound_length, --unbound-length)")
     if np.isfinite(half_height) and group_reach >= 0.9 * half_height:
         warnings.append(
             f"an atom of the pocket or ligand lies {group_reach:.3f} nm from its group's first "
@@ -887,7 +911,8 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
         f"upper_wall_z_nm = cone_end_z_nm + {unbound_length} nm so the ligand can be solvated; "
         f"the funnel reaches {reach:.3f} nm from the pocket centre"
         + (f" (half the smallest box height: {half_height:.3f} nm)" if np.isfinite(half_height)
-           else " (no periodic box in the bound frames; check against the box of the run)"),
+           else f" (no periodic box in the bound frames: every height of the run's box must "
+                f"exceed {2 * reach:.3f} nm, which cvdesign export checks against the System's)"),
     ] + [f"WARNING: {w}" for w in warnings]
     observed_weights = {}
     if reweighting is not None:  # biased runs: say so, with the effective sample sizes

@@ -442,6 +442,10 @@ def build_parser():
                         "coordinates of the first bound frame; in a periodic box it must lie "
                         "within half the smallest box height of that frame's pocket centre "
                         "(farther, its direction is ambiguous under periodic images: refused)")
+    p.add_argument("--unbound-length", type=_positive_float, default=1.5, metavar="NM",
+                   help="length of the cylinder beyond the cone, nm, where the unbound ligand "
+                        "is solvated (default: 1.5); the funnel's reach must stay below half "
+                        "the smallest height of the run's box: shorten it for a small box")
     p.add_argument("--k-wall", type=float, default=_K_WALL, metavar="KJ_PER_MOL_NM2",
                    help=f"force constant of the funnel walls, kJ/mol/nm^2 (default: {_K_WALL:g}; "
                         f"{_wall_penetration(_K_WALL)})")
@@ -1384,6 +1388,7 @@ def _cmd_funnel(args):
                          "ligand")
     with _executor(args) as executor:
         result = size_funnel_from_source(source, pocket, lig, exit_point=args.exit_point,
+                                         unbound_length=args.unbound_length,
                                          executor=executor)
     spec = _funnel_spec(source, args, lig, pocket, result)
     text = spec.to_json()

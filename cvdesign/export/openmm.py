@@ -311,6 +311,33 @@ def default_box_message(system):
             f"box really is a {edge:g} nm cube, ignore this")
 
 
+def _check_funnel_reach(document, system, openmm):
+    """Refuse a funnel restraint that reaches farther from the pocket than half the smallest
+    height of the System's box: beyond it the minimum image folds the ligand-pocket vector,
+    and the restraint (and the funnel's CV) would push a ligand still inside the funnel."""
+    from ..bias.funnel import funnel_reach
+    from ..geometry.box import box_heights
+
+    funnels = [r for r in document.get("restraints") or [] if r.get("kind") == "funnel"]
+    if not funnels:
+        return
+    nm = openmm.unit.nanometer
+    box = np.array([list(v.value_in_unit(nm)) for v in system.getDefaultPeriodicBoxVectors()],
+                   dtype=np.float64)
+    half = 0.5 * float(box_heights(box).min())
+    for res in funnels:
+        reach, where = funnel_reach(res)
+        if reach > half:
+            raise InputError(
+                f"spec {document['name']!r}: the funnel reaches {reach:.4g} nm from the pocket "
+                f"centre (its {where}), more than half the smallest height of the "
+                f"openmm.System's box ({half:.4g} nm): there the periodic image folds the "
+                "ligand's offset, and the restraint would push a ligand that is still inside "
+                "the funnel. Use a box whose every height is above "
+                f"{2 * reach:.4g} nm, or size a shorter funnel (cvdesign funnel "
+                "--unbound-length)")
+
+
 def _periodic_flag(openmm, document, periodic, system):
     """Whether the forces use periodic boundary conditions, from `periodic` and/or `system`."""
     n_atoms = document["topology"]["n_atoms"]
@@ -335,6 +362,8 @@ def _periodic_flag(openmm, document, periodic, system):
         message = default_box_message(system)
         if message is not None:
             warnings.warn(message, UserWarning, stacklevel=4)
+        elif uses:
+            _check_funnel_reach(document, system, openmm)
         return uses
     if periodic is None:
         raise InputError(
