@@ -25,7 +25,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from cvdesign import TICA, InputError, Source, suggest
+from cvdesign import TICA, InputError, Source, Spec, suggest
+from cvdesign.bias.hints import spec_hints
 from cvdesign.cli import main
 from cvdesign.constants import BOLTZMANN_KJ_MOL_K
 from cvdesign.io.bias import kish_ess, read_bias_file
@@ -739,6 +740,15 @@ def test_a_bias_of_zero_gives_the_unbiased_suggestions_with_reweighting_notes(ze
     assert "warning" not in text.split("reweighting")[1].split("held-out")[0]
     seg = biased.specs[0]["provenance"]["segments"][0]
     assert seg["bias"]["file"] == "closed-1.bias" and seg["bias"]["temperature_k"] == 300.0
+    # the hints say that their time came from biased runs (the spec's hints, and those
+    # recomputed from the spec); the unbiased run's hints do not
+    said = "measured in those runs' own simulation time"
+    assert all(any(said in w for w in e["hints"]["warnings"]) for e in biased.ranking)
+    assert not any(said in w for e in plain.ranking for w in e["hints"]["warnings"])
+    again = spec_hints(Spec.from_dict(biased.specs[0]), temperature=300.0, md_step_fs=2.0)
+    assert any(said in w for w in again["warnings"])
+    plain_again = spec_hints(Spec.from_dict(plain.specs[0]), temperature=300.0, md_step_fs=2.0)
+    assert not any(said in w for w in plain_again["warnings"])
 
 
 def test_suggest_command_on_a_state_with_a_zero_bias_run_and_an_unbiased_one(

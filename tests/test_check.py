@@ -108,6 +108,15 @@ def test_check_prints_the_ranges_and_the_states_at_a_bound_of_a_folded_cv(
     assert "note: state 'open' sits at the upper bound" in out
     assert out.count("lies inside the observed range") == 2  # the design runs themselves
     assert "ERROR" not in out and "PASS: every frame lies inside the CV's reachable range" in out
+    # every design run, evaluated in double precision, lies inside the extremes stored from
+    # single-precision features (a frame of open-3 was 6e-9 past them: "reaches values the
+    # design runs did not"), and those lie inside the reachable range (3e-8 below it)
+    every = [*states["closed"], *states["open"]]
+    assert main(["check", str(path), "--topology", top, "--trajectory", *every]) == 0
+    assert capsys.readouterr().out.count("lies inside the observed range") == len(every)
+    assert low <= spec["observed_range"]["lower"] <= spec["observed_range"]["upper"] <= high
+    for st in spec["states"].values():
+        assert low <= st["min"] <= st["max"] <= high
 
 
 def test_check_reports_frames_beyond_the_observed_range_as_information(

@@ -564,7 +564,9 @@ def test_a_grid_beyond_the_maximum_is_refused_with_what_to_change():
                                          r"6\.5\] at a spacing of 0\.2 x sigma = 1e-06 CV "
                                          r"units\), more than max_grid_bins=100000: the "
                                          r"narrowest state "
-                                         r"\('narrow', std 1e-05\).*Give a narrower cv_range"):
+                                         r"\('narrow', std 1e-05\).*comparable spreads; "
+                                         r"or, in Python \(suggest_hints, spec_hints\), "
+                                         r"give a narrower cv_range"):
         suggest_hints(states, temperature=T, md_step_fs=2.0)
     h = suggest_hints(states, temperature=T, md_step_fs=2.0, max_grid_bins=10**7)
     assert h["grid"]["n_bins"] > 10**5
@@ -692,3 +694,16 @@ def test_an_unresolved_time_capped_and_a_short_lower_bound_are_worded_as_they_ar
     assert h["deposition"]["tau_lower_bound"] is True
     assert not any("decorrelates within about one frame" in w for w in h["warnings"])
     assert any("is a lower bound" in w for w in h["warnings"])
+
+
+def test_a_capped_lower_bound_still_says_it_is_a_lower_bound():
+    # capped at 10 ps, a 30 ps time that had not decayed gave no warning at all: only
+    # tau_lower_bound in the JSON showed it (a review case)
+    kw = dict(temperature=T, md_step_fs=2.0, barrier=50.0)
+    h = suggest_hints(STATES, autocorrelation_time_ps=30.0, autocorrelation_time_decayed=False,
+                      **kw)
+    assert h["deposition"]["capped"] and h["deposition"]["tau_lower_bound"] is True
+    assert any("capped above, is itself a lower bound" in w for w in h["warnings"])
+    decayed = suggest_hints(STATES, autocorrelation_time_ps=30.0,
+                            autocorrelation_time_decayed=True, **kw)
+    assert not any("lower bound" in w for w in decayed["warnings"])

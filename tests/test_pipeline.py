@@ -233,3 +233,14 @@ def test_the_topology_is_hashed_and_fingerprinted_once_per_run_not_per_spec(demo
         assert spec["topology"] == first["topology"]
         assert spec["provenance"]["topology"] == first["provenance"]["topology"]
         assert spec["provenance"]["segments"] == first["provenance"]["segments"]
+
+
+def test_summary_points_at_the_bias_hints_that_carry_warnings(demo_result):
+    # the hints' warnings (a rate above the usual, a time below the frame spacing) were only
+    # in the spec files: nothing in summary.md said to read them
+    text = demo_result.summary_md()
+    counts = [(r["spec"], len(r["hints"]["warnings"])) for r in demo_result.ranking
+              if r.get("hints") and r["hints"]["warnings"]]
+    assert counts  # the demo's fast CVs get such warnings
+    line = next(x for x in text.splitlines() if x.startswith("Bias hints with warnings"))
+    assert line.endswith(": " + ", ".join(f"{s} {n}" for s, n in counts) + ".")

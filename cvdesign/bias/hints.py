@@ -107,7 +107,7 @@ KERNELS = ("gaussian", "lucy")
 #: The caution every stored or printed hint carries.
 CAUTION = (
     "These hints are starting points to validate, not guarantees: they come from rules of "
-    "thumb and a harmonic model of each state built from short unbiased data. Check them "
+    "thumb and a harmonic model of each state built from short runs of the states. Check them "
     "in short biased test runs (the CV's response to the bias, the walker's return to "
     "visited regions, convergence of the free-energy estimate) before a production run."
 )
@@ -831,6 +831,7 @@ def suggest_hints(
     max_grid_bins=MAX_GRID_BINS,
     leave_out_frozen=False,
     confinement=None,
+    from_biased_runs=False,
 ):
     """Starting values for a (well-tempered) metadynamics bias along a CV.
 
@@ -937,6 +938,12 @@ def suggest_hints(
         the restraint's range plus the margins. Without it, a single state
         gets a warning: walls at its mean -/+ `wall_k` std confine the bias to
         that state, so a run with them cannot leave it.
+    from_biased_runs : bool, default=False
+        The states' statistics and the autocorrelation time come from biased
+        runs, reweighted (:func:`spec_hints` reads it from the spec's
+        provenance): a warning says that the time was measured in the biased
+        runs' own simulation time and is rough, and so is the interval sized
+        from it.
 
     Returns
     -------
@@ -1130,6 +1137,15 @@ def suggest_hints(
             "from runs of two or more states (cvdesign suggest); for a bound ligand, size a "
             "funnel restraint (cvdesign funnel), whose walls the hints then take")
 
+    if from_biased_runs:
+        warnings.append(
+            "the states' means and spreads were reweighted from biased runs, and the CV's "
+            "autocorrelation time was measured in those runs' own simulation time (lagged "
+            "pairs weighted as their first frame): the bias changes how fast the CV moves, so "
+            "that time, and the deposition interval sized from it, are rough; check the "
+            "interval in a short biased test run, or measure the time in unbiased runs of "
+            "each state")
+
     why = []
     tag_cp = "[common practice]"
     tag_cpm = "[common practice, from memory]"
@@ -1225,13 +1241,21 @@ def suggest_hints(
             warnings.append(text)
         if autocorrelation_time_decayed is not None:
             lower_bound = not bool(autocorrelation_time_decayed)
-            if lower_bound and not capped:  # (capped: the interval is at its cap anyway)
+            if lower_bound and not capped:
                 text = (
                     f"autocorrelation_time_ps = {tau:.4g} ps is a lower bound: the CV's "
                     f"autocorrelation had not decayed within the runs, or the runs' means "
                     f"scatter more than this time allows, so the CV relaxes within the "
                     f"states more slowly than this and the interval may be too short; longer "
                     f"runs per state measure it")
+                why.append("Note: " + text + ".")
+                warnings.append(text)
+            elif lower_bound:  # the interval is at its cap; the time itself is still a bound
+                text = (
+                    f"autocorrelation_time_ps = {tau:.4g} ps, capped above, is itself a lower "
+                    f"bound (not decayed within the runs, or their means scatter more than it "
+                    f"allows): slow motions inside the states, which a bias along this CV "
+                    f"would not wait for; longer runs per state measure it")
                 why.append("Note: " + text + ".")
                 warnings.append(text)
     steps = max(1, int(round(tau_used * 1000.0 / dt_fs)))
@@ -1326,9 +1350,10 @@ def suggest_hints(
             f"spacing of {f_grid:g} x sigma = {f_grid * sigma:.3g} CV units), more than "
             f"max_grid_bins={n_grid_max}: the narrowest state ({ref_state!r}, std {ref_std:.3g}) "
             f"is {(g_hi - g_lo) / ref_std:.3g} times narrower than the range to explore, so "
-            "kernels of its width would take very long to fill it. Give a narrower cv_range, "
-            "a larger width_fraction or grid_fraction, or a larger max_grid_bins if such a grid "
-            "is what you want; or choose a CV whose states have comparable spreads")
+            "kernels of its width would take very long to fill it. Choose a CV whose states "
+            "have comparable spreads; or, in Python (suggest_hints, spec_hints), give a "
+            "narrower cv_range, a larger width_fraction or grid_fraction, or a larger "
+            "max_grid_bins if such a grid is what you want")
     n_bins = max(1, int(math.ceil(n_exact - 1e-9)))
     spacing = (g_hi - g_lo) / n_bins
     why.append(
@@ -1706,6 +1731,9 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     decayed = spec.scores.get("integrated_time_decayed")
     options.setdefault("autocorrelation_time_decayed", None if decayed is None else
                        bool(decayed))
+    options.setdefault("from_biased_runs", any(
+        isinstance(seg, Mapping) and seg.get("bias") is not None
+        for seg in (spec.provenance.get("segments") or [])))
     confinement, unused = _funnel_confinement(spec)
     if confinement is not None:
         options.setdefault("confinement", confinement)

@@ -1111,6 +1111,11 @@ def _rows_of_file(name, table, lower, k, traj):
 #: counts as inside the reachable range: the evaluator's rounding, not a real excursion.
 _RANGE_SLACK = 1e-9
 
+#: Relative slack (of the largest extreme, at least 1) within which a reference value counts
+#: as inside the observed range: the stored extremes come from single-precision features
+#: (a design run's own frame was 6e-9 past its stored maximum of 1.019).
+_OBSERVED_SLACK = 1e-5
+
 
 def _reference_values(spec, topology, traj):
     """The spec's reference values on every frame of `traj`, the frame numbers, and the set of
@@ -1193,7 +1198,8 @@ def _range_check(reach, seen, traj, ours, frames, period=None):
         "or the evaluator is wrong; re-create the spec with 'cvdesign suggest' and report "
         "the case")
     if seen is not None:
-        beyond = _outside(ours, *seen, 0.0, period)
+        beyond = _outside(ours, *seen, _OBSERVED_SLACK * max([1.0] + [abs(x) for x in seen]),
+                          period)
         modulo = "" if period is None else " (modulo the period)"
         if beyond.size:
             print(f"info: {beyond.size} of {ours.size} frames of {traj} "

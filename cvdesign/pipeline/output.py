@@ -377,6 +377,12 @@ class Suggestions:
         for r in self.ranking:
             for w in r.get("warnings", []):
                 out += ["", f"**Warning** (rank {r['rank']}, {r['spec']}): {w}."]
+        hinted = [(r, len((r.get("hints") or {}).get("warnings") or [])) for r in self.ranking]
+        hinted = [(r, n) for r, n in hinted if n]
+        if hinted:
+            out += ["", "Bias hints with warnings (each spec's `hints.warnings`; read them "
+                    "before using its kernel width, height or deposition interval): "
+                    + ", ".join(f"{r['spec']} {n}" for r, n in hinted) + "."]
         out += ["", "Files: `ranking.csv`, `ranking.json`, `scorecard.csv` (every descriptor), "
                 "`cv-NN.json` (one spec per suggestion; evaluate with `cvdesign apply`)"
                 + (", `report-data.json` (what the report's figures draw)"

@@ -173,11 +173,12 @@ def kinetic_map_scale(w, lagged, idx):
     return w * (lam if lam > 0 else 1.0) / math.sqrt(var)
 
 
-def hints_for(entry, temperature, md_step_fs):
+def hints_for(entry, temperature, md_step_fs, *, from_biased_runs=False):
     """(bias-parameter hints, None) for a ranked CV, or (None, why they were refused).
 
     The grid and walls take the CV's reachable and observed ranges into account when
-    the entry has them (see :func:`add_ranges`)."""
+    the entry has them (see :func:`add_ranges`); `from_biased_runs` as in
+    :func:`~cvdesign.bias.hints.suggest_hints`."""
     from ..bias.hints import suggest_hints
 
     reach, seen = entry.get("reachable_range"), entry.get("observed_range")
@@ -189,7 +190,7 @@ def hints_for(entry, temperature, md_step_fs):
                              cv_range=None if reach is None else (reach["lower"], reach["upper"]),
                              observed_range=None if seen is None else (seen["lower"],
                                                                        seen["upper"]),
-                             leave_out_frozen=True), None
+                             leave_out_frozen=True, from_biased_runs=from_biased_runs), None
     except ValueError as exc:
         return None, str(exc)
 
@@ -211,7 +212,9 @@ def add_ranges(entry, pool, observed, states):
         The pool the terms' descriptors come from.
     observed : (ndarray, ndarray)
         Smallest and largest value of the CV in each state (CV units), in the
-        order of `states`.
+        order of `states`. They come from single-precision features and can pass a
+        reachable end by their rounding (3e-8 below a lower end of -1.019): they are
+        clipped to the reachable range, which no geometry leaves.
     states : list of str
     """
     from ..spec.ranges import reachable_range, states_at_bounds
@@ -224,7 +227,12 @@ def add_ranges(entry, pool, observed, states):
                       **({"groups": [list(g) for g in d.groups]} if d.groups else {})})
     low, high = reachable_range(descs, entry["terms"])
     entry["reachable_range"] = {"lower": low, "upper": high}
-    lows, highs = observed
+    lows = np.asarray(observed[0], dtype=np.float64)
+    highs = np.asarray(observed[1], dtype=np.float64)
+    if low is not None:
+        lows, highs = np.maximum(lows, low), np.maximum(highs, low)
+    if high is not None:
+        lows, highs = np.minimum(lows, high), np.minimum(highs, high)
     for s, name in enumerate(states):
         entry["states"][name]["min"] = float(lows[s])
         entry["states"][name]["max"] = float(highs[s])

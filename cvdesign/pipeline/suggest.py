@@ -503,7 +503,8 @@ def _suggest(source, config, executor, progress, checksums):
         if add_noise_level(entry, fm, frame_ps, reweighting is not None,
                            warn=config.objective != "slow"):
             noisy.append(rank)
-        entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs)
+        entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs,
+                                            from_biased_runs=reweighting is not None)
         if refused:
             entry["hints_refused"] = refused
             notes.append(f"bias hints refused for {entry['spec']}: {refused}")
