@@ -6,7 +6,8 @@ keeps the best of many held-out scores. The noise level of a fixed direction is
 ``sum_k p_k (1 - p_k) 2 tau / n_k`` for states of ``n_k`` held-out frames and an integrated
 time of ``tau`` frames (the variance of a mean of correlated frames, Sokal 1997, in
 *Functional Integration*, Plenum; the rest our algebra), and a ranked CV below ten times it
-is warned about.
+is warned about. Also here, on the same runs: when the common-mean timescale is a
+process the runs resolve.
 """
 
 import mdtraj as md
@@ -87,3 +88,19 @@ def test_weight_intervals_stay_within_the_unit_length_of_the_direction(tmp_path)
     assert any(hi - lo > 0.5 for lo, hi in cis)  # wide: the bound is what holds them
     for r in res.ranking:
         assert np.linalg.norm([t["weight"] for t in r["terms"]]) == pytest.approx(1.0)
+
+
+def test_a_common_mean_timescale_held_up_by_the_offsets_between_states_is_not_resolved(
+        tmp_path):
+    # states 0.1 nm apart that never interconvert, fast inside: the common-mean
+    # autocorrelation stays near B / (B + W) and its timescale (below the runs' length) grew
+    # with the lag, yet was flagged resolved
+    (tmp_path / "apart").mkdir()
+    (tmp_path / "same").mkdir()
+    apart = _suggest(tmp_path / "apart", 0.1).ranking[0]
+    assert apart["timescale_ps"] < apart["longest_visit_ps"]
+    assert apart["timescale_resolved"] is False
+    # states that do not differ: the autocorrelation is the relaxation inside them
+    same = _suggest(tmp_path / "same", 0.0).ranking[0]
+    assert same["timescale_ps"] < same["longest_visit_ps"]
+    assert same["timescale_resolved"] is True
