@@ -118,7 +118,8 @@ def test_funnel_command_warns_when_the_funnel_reaches_beyond_half_the_box(tmp_pa
     assert reach > 2.0
     assert _run(data, tmp_path / "short.json", "--unbound-length", "0.6") == 0
     captured = capsys.readouterr()
-    assert "warning" not in captured.err
+    assert "the funnel reaches" not in captured.err  # (one run of 60 frames: the axis is
+    assert "the axis through the mean ligand offset is uncertain" in captured.err  # noisy)
     short = json.loads((tmp_path / "short.json").read_text())["hints"]["funnel_sizing"]
     assert short["observed"]["funnel_reach_nm"] == pytest.approx(reach - 0.9, abs=0.05)
     with pytest.raises(SystemExit) as stop:

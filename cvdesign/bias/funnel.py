@@ -397,6 +397,7 @@ class FunnelStats:
         """Standard deviation of r, nm."""
         return self._std("r")
 
+
     @property
     def distance_mean(self):
         """Mean distance from the origin, nm."""
@@ -496,14 +497,17 @@ class _FitSums:
     """
 
     __slots__ = ("n", "dsum", "psum", "lrad", "rmsd_sum", "rmsd_max", "half_height",
-                 "group_reach", "w")
+                 "group_reach", "w", "blocks")
 
     def __init__(self, n=0, dsum=None, psum=None, lrad=0.0, rmsd_sum=0.0, rmsd_max=0.0,
-                 half_height=np.inf, group_reach=0.0, w=None):
+                 half_height=np.inf, group_reach=0.0, w=None, blocks=None):
         self.n, self.dsum, self.psum, self.lrad = n, dsum, psum, lrad
         self.rmsd_sum, self.rmsd_max = rmsd_sum, rmsd_max
         self.half_height, self.group_reach = half_height, group_reach
         self.w = n if w is None else w
+        #: per (segment, block of its run) the summed weight and fitted vectors (read from a
+        #: source: the axis's uncertainty by batch means), or None
+        self.blocks = blocks
 
     @classmethod
     def of(cls, fit, box, weights=None):
@@ -532,11 +536,19 @@ class _FitSums:
         """Sums of these frames followed by `other`'s (a new object)."""
         if self.n == 0 or other.n == 0:
             return other if self.n == 0 else self
+        blocks = None
+        if self.blocks is not None and other.blocks is not None:
+            blocks = dict(self.blocks)
+            for key, (w, d) in other.blocks.items():
+                if key in blocks:
+                    blocks[key] = (blocks[key][0] + w, blocks[key][1] + d)
+                else:
+                    blocks[key] = (w, d)
         return _FitSums(self.n + other.n, self.dsum + other.dsum, self.psum + other.psum,
                         max(self.lrad, other.lrad), self.rmsd_sum + other.rmsd_sum,
                         max(self.rmsd_max, other.rmsd_max),
                         min(self.half_height, other.half_height),
-                        max(self.group_reach, other.group_reach), self.w + other.w)
+                        max(self.group_reach, other.group_reach), self.w + other.w, blocks)
 
 
 class _Fitter:
@@ -800,6 +812,39 @@ def _frame_weights(weights, chunks, pocket_xyz):
     return w / w.max()  # every statistic is scale-free; sums of squares stay in range
 
 
+#: Blocks per run for the uncertainty of an axis through the mean ligand offset (batch
+#: means; our choice: enough blocks for a spread, each long beside the ligand's wiggle in a
+#: run of a few hundred frames or more).
+AXIS_BLOCKS = 5
+
+
+def _axis_uncertainty(blocks, axis, z_mean):
+    """(angle in rad, its basis as text) of an axis through the mean ligand offset, or
+    (None, "") when the blocks cannot tell.
+
+    Batch means (Flyvbjerg and Petersen, J. Chem. Phys. 91, 461, 1989): the fitted
+    pocket-to-ligand vectors are averaged in :data:`AXIS_BLOCKS` blocks per run, and the
+    scatter of the block means across the axis gives the standard error of the mean
+    offset across it, ``sqrt(sum_b (w_b / W)^2 |m_b - m|_perp^2 x B / (B - 1))``; its angle
+    seen from the pocket centre at the mean offset along the axis. Blocks shorter than the
+    ligand's correlation time make it too small."""
+    if not blocks or len(blocks) < 2 or not z_mean > 0:
+        return None, ""
+    w = np.array([v[0] for _, v in sorted(blocks.items())])
+    d = np.array([v[1] for _, v in sorted(blocks.items())])
+    keep = w > 0
+    w, m = w[keep], d[keep] / w[keep, None]
+    if w.size < 2:
+        return None, ""
+    mean = w @ m / w.sum()
+    across = (m - mean) - np.outer((m - mean) @ axis, axis)
+    se = float(np.sqrt((w / w.sum()) ** 2 @ (across ** 2).sum(axis=1) * w.size / (w.size - 1)))
+    angle = float(np.arctan2(se, z_mean))
+    return angle, (f"standard error {se:.3f} nm of the mean offset across the axis, from "
+                   f"{w.size} block means ({AXIS_BLOCKS} per run), against the mean offset "
+                   f"along it, {z_mean:.3f} nm")
+
+
 def _check_options(*, ligand_radius, cylinder_pad, k_std, min_margin, z_margin,
                    blend_half_width, unbound_length, min_half_angle, bin_width):
     """Refuse sizing options that give no funnel (InputError naming the option): lengths in
@@ -832,7 +877,8 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
     different frames. `reweighting` (a :class:`cvdesign.io.bias.Reweighting`, biased
     runs) adds its notes and the effective sample sizes to the result;
     `given_weights` (the frames' weights given to :func:`size_funnel`) its note and
-    Kish effective sample size.
+    Kish effective sample size. The uncertainty of an axis through the mean ligand offset
+    comes from the first pass's block sums (runs read from a source; none for arrays).
     """
     _check_options(ligand_radius=ligand_radius, cylinder_pad=cylinder_pad, k_std=k_std,
                    min_margin=min_margin, z_margin=z_margin, blend_half_width=blend_half_width,
@@ -892,6 +938,18 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
             "there the minimum-image vector from pocket to ligand jumps to another periodic "
             "image and the restraint no longer describes this funnel; use a larger box or a "
             "shorter funnel (smaller unbound_length, --unbound-length)")
+    angle, axis_note = None, ""
+    if rule == "ligand_offset":
+        angle, axis_note = _axis_uncertainty(sums.blocks, axis, stats.z_mean)
+        if angle is not None and angle > min(half_angle, np.arctan(0.5)):
+            why = (f"more than the cone's half-angle ({np.degrees(half_angle):.0f} degrees)"
+                   if angle > half_angle else "the mean offset less than twice its standard "
+                   "error")
+            warnings.append(
+                f"the axis through the mean ligand offset is uncertain by about "
+                f"{np.degrees(angle):.0f} degrees, {why}: {axis_note}; the unbinding "
+                "direction is then hardly set by the data. Give an exit point "
+                "(exit_point, --exit-point) toward the solvent, or more bound runs")
     if np.isfinite(half_height) and group_reach >= 0.9 * half_height:
         warnings.append(
             f"an atom of the pocket or ligand lies {group_reach:.3f} nm from its group's first "
@@ -899,8 +957,10 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
             "not have been made whole correctly; use a smaller group or a larger box")
     reasoning = [
         _FRAME_NOTE,
-        f"axis by rule '{rule}' from the pocket centre, in the reference frame; pocket fit "
-        f"RMSD mean {rmsd_sum / sums.w:.3f} nm, largest {rmsd_max:.3f} nm",
+        f"axis by rule '{rule}' from the pocket centre, in the reference frame"
+        + (f" (uncertain by about {np.degrees(angle):.0f} degrees: {axis_note})"
+           if axis_note else "")
+        + f"; pocket fit RMSD mean {rmsd_sum / sums.w:.3f} nm, largest {rmsd_max:.3f} nm",
         f"lower_wall_z_nm = lowest bound z {stats.z_min:.3f} - margin {dz:.3f} nm "
         f"(max of {z_margin} nm and {k_std} std; common practice, from memory)",
         f"cone_end_z_nm = highest bound z {stats.z_max:.3f} + {dz:.3f} + blend half-width "
@@ -1123,7 +1183,19 @@ class _FitPass(_FunnelPass):
     """Pass 1: the :class:`_FitSums` of every frame."""
 
     def map(self, leaf):
-        return _FitSums.of(*self.fit(leaf), leaf.weights)
+        fit, box = self.fit(leaf)
+        out = _FitSums.of(fit, box, leaf.weights)
+        keys = frame_keys(leaf.layout, leaf.frames)
+        run = leaf.layout.counts[keys.states]
+        block = keys.rank * AXIS_BLOCKS // np.maximum(run, 1)
+        w = np.ones(len(fit.d)) if leaf.weights is None else np.asarray(leaf.weights,
+                                                                         dtype=np.float64)
+        out.blocks = {}
+        for b in np.unique(block):
+            rows = block == b
+            out.blocks[(int(leaf.layout.index), int(b))] = (float(w[rows].sum()),
+                                                            w[rows] @ fit.d[rows])
+        return out
 
     def finish(self, partial, plan):
         return _FitSums() if partial is None else partial
