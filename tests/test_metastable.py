@@ -585,3 +585,19 @@ def test_documented_subsample_sizes_are_those_the_stride_gives():
     doc = " ".join(propose_states.__doc__.split())
     assert "between 20,000 and 40,000 frames" in doc and "between 4,000 and 8,000" in doc
     assert "at most 20,000" not in " ".join(explore.__doc__.split()) + doc
+
+
+def test_cli_runs_with_objective_both_name_the_runs_whose_crossings_rank_it(tmp_path):
+    """Unbiased exploratory runs that hop between two wells: with --objective both the
+    summary says the transition slowness comes from the runs of --runs labelled by their
+    proposed states (it had called them biased runs fed back)."""
+    xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
+    top, paths = _write_walkers(tmp_path, xs, seed=2)
+    out = tmp_path / "out"
+    assert main(["suggest", "--topology", top, "--runs", *paths, "--lag", "1", "--kinds",
+                 "distance", "--objective", "both", "--out", str(out), "--bootstrap", "0",
+                 "--max-terms", "1", "--no-report", "-q"]) == 0
+    summary = (out / "summary.md").read_text()
+    assert ("along the runs that cross between the states (the runs given with --runs, each "
+            "frame labelled by its proposed state)") in summary
+    assert "fed back" not in summary

@@ -268,7 +268,8 @@ def test_cli_labelled_biased_runs_rank_on_transition_slowness(toy, tmp_path, cap
     assert float(rows[0]["heldout_autocorrelation_transitions"]) > 0.6
     assert rows[0]["terms"].endswith("C0-C1")
     summary = (tmp_path / "out" / "summary.md").read_text()
-    assert "along the runs that cross between the states" in summary
+    assert ("along the runs that cross between the states (runs given with per-frame labels, "
+            "such as biased runs fed back)") in summary
     assert "objective 'both' ranks on the transition slowness" in summary
     ranking = json.loads((tmp_path / "out" / "ranking.json").read_text())
     assert ranking["ranking"][0]["slowness_ranked_on"] == "transitions"

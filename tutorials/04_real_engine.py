@@ -8,8 +8,8 @@ It needs OpenMM (`pip install 'cvdesign[openmm]'`). OUT_DIR is where cvdesign's
 suggestions are written (default: a temporary directory that is removed at the
 end); the trajectories, the topology and the exported CVs go to a temporary
 working directory, removed at the end. The default (quick) configuration is the
-one the tests run, in about two minutes on two quiet CPU cores (the reference
-runs in a second process; the refinement of steps 7-9 adds about 45 s of it);
+one the tests run, in about two and a half minutes on two quiet CPU cores (the
+reference runs in a second process; the refinement of steps 7-9 is about 45 s of it);
 `--long` runs every simulation four times as long.
 
 The molecule is the capped proline Ac-Pro-NHMe (26 atoms: the ACE and NME caps

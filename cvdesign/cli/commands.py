@@ -163,8 +163,9 @@ def _add_suggest_options(p):
                         "(Fisher ratio, dimensionless), 'slow' the slowest linear motion "
                         "(cross-validated VAMP-2 at --lag), or 'both' (product of the "
                         "separation mapped to [0, 1) and the autocorrelation at --lag, within "
-                        "the states, or along the --labelled runs that cross between them "
-                        "when they cross often enough); every suggestion reports both "
+                        "the states, or along the runs that cross between them (--labelled "
+                        "runs, or --runs labelled by their proposed states) when they cross "
+                        "often enough); every suggestion reports both "
                         "numbers (default: separate)")
     p.add_argument("--lag", type=_positive_float, default=None, metavar="PS",
                    help="lag time in ps for slowness scores, converted to frames with each "
@@ -298,8 +299,15 @@ def build_parser():
                        help="unlabelled exploratory runs instead of --state: metastable states "
                             "are proposed by clustering the slowest TICA coordinates at --lag "
                             "(which is then required), checked to be metastable from the runs' "
-                            "transitions (a warning names any that is not; none metastable is "
-                            "refused), written to states.csv, and CVs are designed for them")
+                            "transitions (a warning names any that is not, and one when the "
+                            "metastable states hold under half the frames), written to "
+                            "states.csv, and CVs are designed for them. Refused when the best "
+                            "clustering's mean silhouette is below 0.5, when no state is "
+                            "metastable, and, without --n-states, when only one is; when no "
+                            "clustering is all metastable, the one with the largest fraction "
+                            "of metastable states (two or more preferred) is taken. Runs that "
+                            "cross between the proposed states give the transition slowness "
+                            "that --objective both ranks on")
     p.add_argument("--labelled", nargs=2, action="append", metavar=("TRAJ", "LABELS"),
                    default=None,
                    help="a trajectory whose frames carry their own state, typically a biased "
@@ -519,7 +527,7 @@ def build_parser():
                    help="bootstrap replicates for the uncertainties (default: 200; 0 is "
                         "faster)")
     p.add_argument("--force", action="store_true",
-                   help="replace the output directory if it exists and is not empty")
+                   help="replace the output directory if it holds an earlier cvdesign output")
     _add_no_report(p, "report.html in the output directory")
 
     p = sub.add_parser(

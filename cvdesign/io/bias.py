@@ -26,7 +26,7 @@ offset ``c(t)``), not the raw sum of kernels.
 trajectory stores times too, they must agree (to single precision and the
 digits written, :class:`BiasTimes`): a bias file of another run, or one whose
 rows are shifted by a frame, is refused naming both files, the frame and both
-times. The first two frames are compared when the file is given
+times. Frames 0, 1 and the last are compared when the file is given
 (:meth:`cvdesign.io.source.Source.add`), every frame where the trajectory's
 times are read anyway (the even-spacing check of ``suggest`` and
 ``propose_states``, :class:`cvdesign.pipeline.timing.EvenSpacingPass`). A

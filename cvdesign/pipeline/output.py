@@ -338,8 +338,11 @@ class Suggestions:
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
                 "normalized autocorrelation of the CV at the lag (1 = does not relax within "
-                + ("the lag, along the runs that cross between the states (biased runs fed "
-                   "back with per-frame labels): each run's lagged pairs, spanning the "
+                + ("the lag, along the runs that cross between the states ("
+                   + ("the runs given with --runs, each frame labelled by its proposed state"
+                      if self.exploration is not None else
+                      "runs given with per-frame labels, such as biased runs fed back")
+                   + "): each run's lagged pairs, spanning the "
                    "crossings and the frames between the states, about that run's own mean, "
                    "on held-out blocks of each run"
                    + (", which objective `both` ranks on (`slowness_ranked_on` = "
