@@ -176,8 +176,9 @@ def _add_suggest_options(p):
                         "the harmonic mean of the state covariances, so the narrow state "
                         "weighs most) or plain LDA (default: hlda)")
     p.add_argument("--bootstrap", type=_replicates, default=200, metavar="N",
-                   help="block-bootstrap replicates for 95 %% intervals of weights and "
-                        "scores and for term selection frequencies; 0 turns them off "
+                   help="block-bootstrap replicates for nominal 95 %% intervals of weights "
+                        "and scores (measured coverage about 87-92 %%: somewhat narrow) and "
+                        "for term selection frequencies; 0 turns them off "
                         "(default: 200)")
     p.add_argument("--seed", type=_non_negative_int, default=0, metavar="N",
                    help="seed of the bootstrap and of the clustering of --runs; the same "
@@ -282,8 +283,10 @@ def build_parser():
                     "separates the states and how slowly it moves, search compact linear "
                     "combinations (HLDA/LDA, or TICA for --objective slow) ranked on held-out "
                     "trajectories, and write ranking.csv, ranking.json, scorecard.csv, "
-                    "summary.md, one spec file per suggestion (cv-01.json is rank 1) and "
-                    "report.html (figures; see --no-report). "
+                    "summary.md, one spec file per suggestion (cv-01.json is rank 1), "
+                    "report-data.json (what the report draws; always written), states.csv "
+                    "(the proposed state of every frame, with --runs) and report.html "
+                    "(figures; see --no-report). "
                     "Give the states with --state (and runs with per-frame states with "
                     "--labelled), or unlabelled runs with --runs.")
     p.add_argument("--topology", required=True, metavar="TOP",

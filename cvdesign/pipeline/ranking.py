@@ -282,7 +282,8 @@ def _search_note(objective, method, shrinkage, n_combos, n_seeds, min_gain,
              "runs staying in it) cannot measure how slowly the CV crosses between the "
              "states: the slowness ranked on is that of the motion inside the states (about "
              "one common mean, every separating CV would look slow), and it may at most halve "
-             "the separation score, so it orders CVs that separate about equally well"
+             "the separation score J/(1+J), which saturates: among CVs that separate well "
+             "it can reorder them"
              if objective == "both" and not transit else
              "; along the crossing runs the pairs span the state changes, so rho tells how "
              "slowly the CV crosses between the states; it may at most halve the separation "

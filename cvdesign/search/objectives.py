@@ -125,9 +125,13 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
       rank separation twice; within the states, ``rho`` tells a CV whose
       motion inside the basins is slow (coupled to slow modes) from one
       carried by fast noise, but not how slowly it crosses between the states,
-      which such data cannot show. So it may at most halve the separation
-      score: it orders CVs that separate about equally well and cannot put a
-      poorly separating CV above a clean one. When runs that cross between
+      which such data cannot show. So the factor lies in [1/2, 1] and at most
+      halves a CV's separation score: a CV whose ``J / (1 + J)`` is more than
+      twice another's stays above it. But ``J / (1 + J)`` saturates, so among
+      CVs that separate well it can reorder them: a CV with held-out J 1.4
+      (states overlapping by about a fifth) that is slow inside the states
+      (0.58) can rank above a fully separating one (J near 100) that is fast
+      there (0.50). When runs that cross between
       the states were given (:attr:`FoldMoments.slowness` is
       ``'transitions'``), ``rho`` is measured instead on their held-out
       blocks, pairs spanning the crossings and the frames between the states
