@@ -690,6 +690,33 @@ class Exploration:
         (of the two coordinates; None where not finite), ``lag_ps`` and ``n_slow``
         (the coordinates clustered: a second coordinate beyond it is faster than the
         lag and was not used for the states).
+
+    Examples
+    --------
+    :func:`propose_states` returns one (see its example, on runs that cross
+    between two wells). Built by hand here, for two short runs, to show what
+    its methods write:
+
+    >>> import numpy as np
+    >>> exp = Exploration(
+    ...     states=["S1", "S2"],
+    ...     labels={"a/run-1.xtc": np.array(["S1", "S1", "S2"], dtype=object),
+    ...             "a/run-2.xtc": np.array(["S2", "S2", "S1"], dtype=object)},
+    ...     populations={"S1": 0.5, "S2": 0.5},
+    ...     representatives={"S1": {"file": "run-1.xtc", "frame": 0},
+    ...                      "S2": {"file": "run-2.xtc", "frame": 1}},
+    ...     timescales_ps=[5.0], lag_ps=1.0, n_slow=1,
+    ...     criterion={"name": "given", "values": {}, "all_metastable": {}, "rule": "given"})
+    >>> print(exp.states_csv(), end="")
+    file,frame,state
+    run-1.xtc,0,S1
+    run-1.xtc,1,S1
+    run-1.xtc,2,S2
+    run-2.xtc,0,S2
+    run-2.xtc,1,S2
+    run-2.xtc,2,S1
+    >>> exp.states_line()
+    'proposed states: S1 (50.0% of frames; e.g. run-1.xtc frame 0), S2 (50.0% of frames; e.g. run-2.xtc frame 1)'
     """
 
     states: list
@@ -900,15 +927,27 @@ def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
     --------
     Exploratory runs that cross between their states (runs that each stay in
     one state, as the bundled demo runs do, are refused: nothing in them shows
-    the states are metastable; give those with ``--state``)::
+    the states are metastable; give those with ``--state``). Here four
+    unbiased runs of the testbed's double well (:mod:`cvdesign.testbed.wells`:
+    one distance, wells about 2 nm apart), 1000 frames 0.2 ps apart, written
+    as XTC files (a few seconds in all):
 
-        from cvdesign import Source
-        from cvdesign.pipeline.explore import propose_states
-        src = Source("protein.pdb")
-        for f in ["run1.xtc", "run2.xtc", "run3.xtc"]:
-            src.add(f, "runs")
-        exploration = propose_states(src, lag=20.0, executor=2)  # two local processes
-        print(exploration.populations, exploration.kinetics.staying, exploration.warnings)
+    >>> import tempfile
+    >>> from cvdesign.io.source import Source
+    >>> from cvdesign.testbed.wells import DoubleWell, write_well_runs
+    >>> x = DoubleWell().run(4, 1000, md_step_ps=5e-3, stride=40, biased=False, seed=1)
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     top, runs, _ = write_well_runs(d, x, frame_step_ps=0.2)
+    ...     src = Source(str(top))
+    ...     for r in runs:
+    ...         _ = src.add(str(r), "runs")
+    ...     exploration = propose_states(src, lag=1.0)  # executor=2: two local processes
+    >>> exploration.states, exploration.kinetics.metastable.tolist(), exploration.warnings
+    (['S1', 'S2'], [True, True], [])
+    >>> exploration.kinetics.n_transitions >= 5  # crossings seen at the lag
+    True
+    >>> exploration.states_line().startswith("proposed states: S1 (")
+    True
     """
     if not isinstance(source, Source):
         raise InputError(f"propose_states() needs a Source (a topology and the runs), not "

@@ -883,6 +883,14 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
                coordination_r0=COORDINATION_R0_NM, executor=None):
     """Candidate pool for a source: select atoms, enumerate, prefilter distances.
 
+    Distances are kept when their mean over some state is below `cutoff` (with
+    a single state, runs whose states are not known yet: when they come below
+    it in some frame read), and beyond it up to :data:`MAX_RESCUED_PAIRS` (100)
+    far pairs that separate the states better than every pair below it; the
+    group kinds by the same rule on the residues' mass centers. A selection
+    whose atom pairs (or, for the group kinds, residue pairs) exceed
+    :data:`MAX_PAIRS` (2,000,000) is refused before anything is read.
+
     Parameters
     ----------
     source : cvdesign.io.source.Source
@@ -910,6 +918,26 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
     -------
     Pool
         With ``notes`` describing what was kept and dropped.
+
+    Raises
+    ------
+    InputError
+        When the selection makes more than :data:`MAX_PAIRS` pairs (the
+        message says how to narrow it), for bad arguments, or when no
+        descriptor of the requested kinds can be built.
+
+    Examples
+    --------
+    The bundled demo (12 united atoms, two states), distances kept below 0.5 nm:
+
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> from cvdesign.io.source import Source
+    >>> top, files = demo_inputs()
+    >>> pool = build_pool(Source.from_states(top, files), cutoff=0.5)
+    >>> pool.notes[-1]
+    'pool: 19 distances, 13 angles, 7 dihedrals'
+    >>> pool.descriptors[0].id, pool.descriptors[0].label
+    ('distance:0-3', 'dist LCH1:C1-C4')
     """
     from ..io.source import default_selection_warnings, select_atoms
 
