@@ -27,7 +27,7 @@ def _run(script, cwd, *args):
                           text=True, cwd=cwd)
 
 
-#: Tutorials that run for a minute or more; CI runs them, ``-m "not slow"`` skips them.
+#: Tutorials that run for half a minute or more; CI runs them, ``-m "not slow"`` skips them.
 SLOW = {"03_hand_off.py", "04_real_engine.py", "05_refine.py"}
 
 #: Tutorials that run OpenMM (the ``openmm`` extra); skipped where it is not installed.
