@@ -367,7 +367,9 @@ class Suggestions:
                    "timescale is -lag/ln(autocorrelation) on all data; ")
                 + "a timescale longer than the longest run (for pairs within one state: "
                 "the longest run or visit of one state) is only a lower bound. "
-                "Intervals are 95 % block-bootstrap intervals; selection is the fraction of "
+                "Intervals are nominal 95 % block-bootstrap intervals (their measured coverage "
+                "with blocks of about two integrated times is 87-92 %: read them as somewhat "
+                "narrow); selection is the fraction of "
                 "bootstrap refits of the whole search in which the descriptor is kept in the "
                 "refit's counterpart of this CV (its ranked combination sharing the most "
                 "descriptors with it).", "",
