@@ -827,6 +827,23 @@ class Exploration:
         return (f" (the slowest backed by only {kin.n_transitions} transition(s) between the "
                 "proposed states in the runs: poorly determined)")
 
+    def __repr__(self):
+        """One line: the states, with :meth:`states_line`'s fractions, and the runs (the
+        per-frame labels of every run would flood a terminal).
+
+        Examples
+        --------
+        >>> exp = Exploration(states=["S1"], labels={"a.xtc": np.array(["S1"] * 5000)},
+        ...                   populations={"S1": 1.0}, representatives={"S1": {
+        ...                       "file": "a.xtc", "frame": 0}}, timescales_ps=[50.0],
+        ...                   lag_ps=1.0, n_slow=1, criterion={"name": "given"})
+        >>> exp
+        <Exploration: proposed states: S1 (100.0% of frames; e.g. a.xtc frame 0); 1 run, lag 1 ps>
+        """
+        n = len(self.labels)
+        return (f"<Exploration: {self.states_line()}; {n} run{'s' if n != 1 else ''}, lag "
+                f"{self.lag_ps:g} ps>")
+
     def states_line(self):
         """The command line's one-line account of the proposed states: each state's fraction
         of the frames (reweighted for biased runs) and a representative frame."""
