@@ -1,12 +1,14 @@
 """Issue 3 behaviour of the pipeline: objectives, lag handling, unlabelled runs, slowness."""
 
+import warnings
+
 import numpy as np
 import pytest
 
 from cvdesign import InputError, Source, suggest
 from cvdesign.pipeline.explore import propose_states
-from cvdesign.search import FoldMoments, autocorrelation_along, heldout_score
-from cvdesign.stats.moments import DiagonalLaggedMoments
+from cvdesign.search import FoldMoments, autocorrelation_along, heldout_score, slow_direction
+from cvdesign.stats.moments import DiagonalLaggedMoments, LaggedMoments
 from cvdesign.pipeline.timing import integrated_time
 from cvdesign.testbed import write_two_wells
 
@@ -340,3 +342,15 @@ def test_with_objective_slow_the_heldout_fisher_ratio_is_along_the_cvs_own_fold_
     for row in boot.ranking:
         low, high = row["heldout_fisher_ratio_ci"]
         assert 0.0 <= low <= high
+
+
+def test_search_fits_with_dependent_features_drop_them_without_a_warning_each():
+    # the searches fit thousands of combinations: a dropped direction is not warned about
+    # there (the public functions warn, tests/test_tica.py)
+    rng = np.random.default_rng(15)
+    x = np.cumsum(rng.normal(size=(600, 2)), axis=0)
+    lagged = LaggedMoments.from_series(np.c_[x, x[:, 0] + x[:, 1]], 2)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        w, ev = slow_direction(lagged, [0, 1, 2])
+    assert w.shape == (3,) and 0.9 < ev < 1.0

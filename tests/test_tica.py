@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from cvdesign.fit import TICA, timescales_from_eigenvalues
+from cvdesign.fit import DroppedDirectionsWarning, TICA, slow_modes, timescales_from_eigenvalues
 from cvdesign.stats.moments import DiagonalLaggedMoments, LaggedMoments, merge_all
 
 LAG = 5  # frames; the OU fixture has dt = 1 frame
@@ -104,12 +104,67 @@ def test_nearly_dependent_features_are_dropped_by_rcond():
     rng = np.random.default_rng(2)
     x = np.cumsum(rng.normal(size=(500, 2)), axis=0)
     X = np.c_[x, x[:, 0] + x[:, 1]]  # exactly dependent third column
-    tica = TICA(lag=2).fit(X)
+    with pytest.warns(DroppedDirectionsWarning, match=r"1 of 3 directions of the "
+                                                      r"instantaneous covariance C0 dropped"):
+        tica = TICA(lag=2).fit(X)
     assert tica.n_dropped_ == 1
     assert tica.eigenvalues_.shape == (2,) and tica.eigenvectors_.shape == (3, 2)
     with pytest.raises(ValueError, match=r"n_components=3 must be between 1 and the number "
                                          r"of directions kept, 2 \(of 3 features; 1 dropped"):
         TICA(3, lag=2).fit(X)
+
+
+def _slow_beside_fast(seed):
+    """A slow AR(1) feature (coefficient 0.99, about 100 frames) of std 5e-4 beside white
+    noise of std 1: 20,000 frames."""
+    rng = np.random.default_rng(seed)
+    slow = np.zeros(20000)
+    noise = rng.normal(size=20000)
+    for t in range(1, 20000):
+        slow[t] = 0.99 * slow[t - 1] + noise[t]
+    return np.c_[slow / slow.std() * 5e-4, rng.normal(size=20000)]
+
+
+def test_rcond_cut_is_on_the_correlation_scale_so_the_units_do_not_matter():
+    X = _slow_beside_fast(11)
+    small = TICA(lag=10).fit(X)  # the raw C0's eigenvalues are 2.5e-7 and 1: cut at 1e-6
+    unit = TICA(lag=10).fit(X / X.std(axis=0))
+    assert small.n_dropped_ == 0
+    np.testing.assert_allclose(small.eigenvalues_, unit.eigenvalues_, rtol=1e-9)
+    # the AR(1)'s autocorrelation at 10 frames is 0.99**10 = 0.904 (Box and Jenkins, Time
+    # Series Analysis, 1970), its implied timescale -1 / ln 0.99 = 99.5 frames
+    assert 0.85 < small.eigenvalues_[0] < 0.95 and small.timescales_[0] > 60
+
+
+def test_constant_features_are_dropped_with_a_warning_and_get_zero_weights():
+    rng = np.random.default_rng(12)
+    x = np.cumsum(rng.normal(size=(600, 2)), axis=0)
+    X = np.c_[x[:, 0], np.full(600, 3.0), x[:, 1]]
+    lm = LaggedMoments.from_series(X, 2)
+    with pytest.warns(DroppedDirectionsWarning, match=r"1 of 3 directions of the "
+                                                      r"instantaneous covariance C0 dropped: "
+                                                      r"constant features"):
+        modes = slow_modes(lm, lag=2)
+    assert modes.n_dropped == 1 and modes.eigenvectors.shape == (3, 2)
+    assert np.all(modes.eigenvectors[1] == 0) and np.isfinite(modes.eigenvectors).all()
+    kept = TICA(lag=2).fit(X[:, [0, 2]])
+    np.testing.assert_allclose(modes.eigenvalues, kept.eigenvalues_, rtol=1e-10)
+
+
+@pytest.mark.parametrize("value, shift", [(0.1, None), (1.7, 0.0), (1e-3, 0.051)])
+def test_constant_feature_with_a_variance_of_rounding_is_dropped_not_made_a_mode(value, shift):
+    # a constant column's computed variance is a rounding residue (about 1e-16 here, of
+    # either sign); scaled to unit variance it would be a feature of pure noise
+    rng = np.random.default_rng(16)
+    x = np.cumsum(rng.normal(size=(1000, 2)), axis=0)
+    X = np.c_[x[:, 0], np.full(1000, value), x[:, 1]]
+    lm = LaggedMoments.from_series(X, 2, shift=None if shift is None else np.full(3, shift))
+    assert lm.covariances()[1][1, 1] != 0.0  # the residue the test is about
+    with pytest.warns(DroppedDirectionsWarning, match=r"1 of 3 directions"):
+        modes = slow_modes(lm, lag=2)
+    assert modes.n_dropped == 1 and np.all(modes.eigenvectors[1] == 0)
+    kept = TICA(lag=2).fit(X[:, [0, 2]])
+    np.testing.assert_allclose(modes.eigenvalues, kept.eigenvalues_, rtol=1e-8)
 
 
 def test_lag_validation_messages():

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from cvdesign.fit import TICA
+from cvdesign.fit import DroppedDirectionsWarning, TICA
 from cvdesign.stats.moments import DiagonalLaggedMoments, LaggedMoments, merge_all
 from cvdesign.fit.vamp import vamp2_score
 
@@ -111,3 +111,31 @@ def test_arguments_are_checked():
         vamp2_score(LaggedMoments(2))
     with pytest.raises(ValueError, match=r"rcond=-1 must be a number in \[0, 1\)"):
         vamp2_score(m, rcond=-1)
+
+
+def test_score_does_not_depend_on_the_units_of_a_feature():
+    rng = np.random.default_rng(13)
+    slow = np.zeros(20000)
+    noise = rng.normal(size=20000)
+    for t in range(1, 20000):
+        slow[t] = 0.99 * slow[t - 1] + noise[t]
+    X = np.c_[slow / slow.std() * 5e-4, rng.normal(size=20000)]  # raw C00: 2.5e-7 and 1
+    small = vamp2_score(LaggedMoments.from_series(X, 10))
+    unit = vamp2_score(LaggedMoments.from_series(X / X.std(axis=0), 10))
+    assert small == pytest.approx(unit, rel=1e-9)
+    # 1 + 0.99**20 + (about 0 from the white noise) = 1.82: an AR(1)'s autocorrelation at
+    # lag 10 is 0.99**10 (Box and Jenkins, Time Series Analysis, 1970), the squared singular
+    # value in the score (Wu and Noe 2020, J. Nonlinear Sci. 30:23)
+    assert 1.7 < small < 1.95
+
+
+def test_dropped_directions_are_warned_about():
+    rng = np.random.default_rng(14)
+    x = np.cumsum(rng.normal(size=(800, 2)), axis=0)
+    X = np.c_[x, x[:, 0] - 2.0 * x[:, 1]]
+    with pytest.warns(DroppedDirectionsWarning) as record:
+        score = vamp2_score(LaggedMoments.from_series(X, 3))
+    assert [str(w.message)[:45] for w in record] == [
+        "1 of 3 directions of the training C00 dropped",
+        "1 of 3 directions of the training Ctt dropped"]
+    assert score == pytest.approx(vamp2_score(LaggedMoments.from_series(x, 3)), rel=1e-6)

@@ -13,6 +13,7 @@ import importlib as _importlib
 
 from .directions import (discriminant_directions, fix_signs, quadratic_forms, rayleigh_quotient,
                          rayleigh_quotients, two_state_direction, two_state_directions)
+from ._linalg import DroppedDirectionsWarning
 from .slowmodes import SlowModes, slow_modes, timescales_from_eigenvalues
 from .vamp import vamp2_score
 
@@ -37,4 +38,5 @@ def __dir__():
 
 __all__ = ["LDA", "HLDA", "TICA", "discriminant_directions", "two_state_direction",
            "two_state_directions", "rayleigh_quotient", "rayleigh_quotients", "quadratic_forms",
-           "timescales_from_eigenvalues", "fix_signs", "vamp2_score", "slow_modes", "SlowModes"]
+           "timescales_from_eigenvalues", "fix_signs", "vamp2_score", "slow_modes", "SlowModes",
+           "DroppedDirectionsWarning"]

@@ -14,7 +14,7 @@ import numpy as np
 import scipy.linalg
 
 from ..stats.moments import LaggedMoments, _check_lag
-from ._linalg import _check_rcond, _whitener
+from ._linalg import _check_rcond, _variance_floor, _warn_dropped, _whitener
 from .directions import fix_signs
 
 __all__ = ["SlowModes", "slow_modes", "timescales_from_eigenvalues"]
@@ -95,7 +95,11 @@ def slow_modes(lagged_moments, *, lag, n_components=None, rcond=1e-6, reversible
     What :meth:`TICA.from_moments <cvdesign.fit.tica.TICA.from_moments>` computes (it
     calls this), for code that needs the numbers alone: the reversible or
     non-reversible covariances of the lagged pairs, ``C(0)`` whitened with its
-    directions of eigenvalue at most ``rcond`` times the largest dropped, and the
+    constant features and the directions of its correlation matrix
+    (``D^-1/2 C(0) D^-1/2``, ``D = diag C(0)``, each feature's scale rounded to a power
+    of two: independent of the features' units) of
+    eigenvalue at most ``rcond`` times the largest dropped (with a
+    :class:`~cvdesign.fit.DroppedDirectionsWarning`), and the
     symmetric eigenproblem of the whitened ``C(tau)`` (its symmetric part), largest
     eigenvalue first.
 
@@ -109,7 +113,8 @@ def slow_modes(lagged_moments, *, lag, n_components=None, rcond=1e-6, reversible
     n_components : int, default=None
         Modes kept; None keeps every direction that survives the `rcond` cut.
     rcond : float, default=1e-6
-        Relative cutoff of small eigenvalues of ``C(0)``, in [0, 1).
+        Relative cutoff of small eigenvalues of ``C(0)`` on the correlation scale,
+        in [0, 1).
     reversible : bool, default=True
         Symmetrized estimate (see :class:`~cvdesign.fit.tica.TICA`).
 
@@ -137,7 +142,10 @@ def slow_modes(lagged_moments, *, lag, n_components=None, rcond=1e-6, reversible
                          f"({lagged_moments.lag} frames)")
     if lagged_moments.count == 0:
         raise ValueError("lagged_moments holds no pairs (count=0)")
-    return _solve(lagged_moments, lag, n_components, rcond, reversible)
+    modes = _solve(lagged_moments, lag, n_components, rcond, reversible)
+    _warn_dropped(modes.n_dropped, lagged_moments.n_features, rcond,
+                  "the instantaneous covariance C0")
+    return modes
 
 
 def _solve(moments, lag, n_components, rcond_given, reversible):
@@ -148,7 +156,8 @@ def _solve(moments, lag, n_components, rcond_given, reversible):
         mean, c0, ct = moments.covariances(reversible=True)
     else:
         mean, _, c0, ct, _ = moments.covariances(reversible=False)
-    white, n_dropped = _whitener(c0, rcond, "the instantaneous covariance C0")
+    white, n_dropped = _whitener(c0, rcond, "the instantaneous covariance C0",
+                                 _variance_floor(moments, "xy" if reversible else "x"))
     kt = white.T @ ct @ white
     kt = 0.5 * (kt + kt.T)
     evals, evecs = scipy.linalg.eigh(kt)

@@ -15,7 +15,7 @@ from sklearn.base import BaseEstimator, ClassNamePrefixFeaturesOutMixin, Transfo
 from sklearn.utils.validation import check_array, check_is_fitted, validate_data
 
 from ..stats.moments import LaggedMoments, _check_lag
-from ._linalg import _check_rcond
+from ._linalg import _check_rcond, _warn_dropped
 from .slowmodes import (_check_lagged_moments, _check_n_components, _solve, slow_modes,
                         timescales_from_eigenvalues)
 
@@ -45,10 +45,14 @@ class TICA(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
     slowest relaxations, so ``t_i = -tau / ln(lambda_i)`` are implied
     timescales.
 
-    Regularization: ``C(0)`` is eigen-decomposed and directions with
-    eigenvalue at most ``rcond`` times the largest are dropped (counted in
-    ``n_dropped_``); the kept space is whitened and the symmetric eigenproblem
-    of the whitened ``C(tau)`` is solved.
+    Regularization: constant features are dropped, and ``C(0)`` is taken to the
+    correlation scale (``D^-1/2 C(0) D^-1/2``, ``D = diag C(0)``, each feature's
+    scale rounded to a power of two, so that the cut does not depend on the units of
+    each feature) and eigen-decomposed; directions
+    with eigenvalue at most ``rcond`` times the largest are dropped (counted in
+    ``n_dropped_``, with a :class:`~cvdesign.fit.DroppedDirectionsWarning`); the kept
+    space is whitened and the symmetric eigenproblem of the whitened ``C(tau)`` is
+    solved.
 
     Parameters
     ----------
@@ -58,8 +62,8 @@ class TICA(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
     lag : int, default=1
         Lag ``tau`` in frames, >= 1.
     rcond : float, default=1e-6
-        Relative cutoff of small eigenvalues of ``C(0)``, in [0, 1) (as
-        numpy's ``rcond``: relative to the largest).
+        Relative cutoff of small eigenvalues of ``C(0)`` on the correlation
+        scale, in [0, 1) (as numpy's ``rcond``: relative to the largest).
     reversible : bool, default=True
         True: symmetrized estimate (each pair counted in both time
         directions; mean over both ends, ``C0 = (Cxx + Cyy) / 2``,
@@ -237,8 +241,10 @@ class TICA(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
         return est._set_modes(modes)
 
     def _fit_moments(self, moments, lag):
-        return self._set_modes(_solve(moments, lag, self.n_components, self.rcond,
-                                      self.reversible))
+        modes = _solve(moments, lag, self.n_components, self.rcond, self.reversible)
+        _warn_dropped(modes.n_dropped, moments.n_features, self.rcond,
+                      "the instantaneous covariance C0")
+        return self._set_modes(modes)
 
     def _set_modes(self, modes):
         self.mean_ = modes.mean

@@ -25,7 +25,7 @@ another block cost a few small matrix operations each.
 import numpy as np
 
 from ..stats.moments import LaggedMoments
-from ._linalg import _check_rcond, _whitener
+from ._linalg import _check_rcond, _variance_floor, _warn_dropped, _whitener
 
 __all__ = ["vamp2_score"]
 
@@ -53,10 +53,13 @@ def vamp2_score(train, test=None, *, k=None, rcond=1e-6):
         Number of singular functions (besides the constant one) kept; None
         keeps all that survive the `rcond` cut, at most ``n_features``.
     rcond : float, default=1e-6
-        Relative cutoff of small eigenvalues, in [0, 1): directions of ``C00``
-        and ``Ctt`` (of `train`; and of the projected test covariances) with
-        eigenvalue at most `rcond` times the largest are dropped before
-        inverting.
+        Relative cutoff of small eigenvalues, in [0, 1): constant features, and
+        directions of ``C00`` and ``Ctt`` (of `train`; and of the projected test
+        covariances) whose eigenvalue on the correlation scale (``D^-1/2 C D^-1/2``,
+        ``D = diag C``, each feature's scale rounded to a power of two: independent of
+        the features' units) is at most `rcond` times
+        the largest, are dropped before inverting, with a
+        :class:`~cvdesign.fit.DroppedDirectionsWarning`.
 
     Returns
     -------
@@ -111,8 +114,10 @@ def vamp2_score(train, test=None, *, k=None, rcond=1e-6):
         if train.lag is not None and test.lag is not None and train.lag != test.lag:
             raise ValueError(f"test has lag={test.lag}; train has lag={train.lag}")
     _, _, c00, c0t, ctt = train.covariances(reversible=False)
-    w0, _ = _whitener(c00, rcond, "the training C00")
-    wt, _ = _whitener(ctt, rcond, "the training Ctt")
+    w0, drop0 = _whitener(c00, rcond, "the training C00", _variance_floor(train, "x"))
+    wt, dropt = _whitener(ctt, rcond, "the training Ctt", _variance_floor(train, "y"))
+    _warn_dropped(drop0, train.n_features, rcond, "the training C00")
+    _warn_dropped(dropt, train.n_features, rcond, "the training Ctt")
     p, s, qt = np.linalg.svd(w0.T @ c0t @ wt)
     n_max = s.shape[0]
     if k is None:
@@ -127,8 +132,10 @@ def vamp2_score(train, test=None, *, k=None, rcond=1e-6):
     u = w0 @ p[:, :k]
     v = wt @ qt[:k].T
     _, _, d00, d0t, dtt = test.covariances(reversible=False)
-    a, _ = _whitener(u.T @ d00 @ u, rcond, "the test C00 of the singular functions")
-    b, _ = _whitener(v.T @ dtt @ v, rcond, "the test Ctt of the singular functions")
+    a, drop_a = _whitener(u.T @ d00 @ u, rcond, "the test C00 of the singular functions")
+    b, drop_b = _whitener(v.T @ dtt @ v, rcond, "the test Ctt of the singular functions")
+    _warn_dropped(drop_a, k, rcond, "the test C00 of the singular functions")
+    _warn_dropped(drop_b, k, rcond, "the test Ctt of the singular functions")
     # W_a^T (U^T C0t' V) W_b has the Frobenius norm of the symmetric form
     # (U^T C00' U)^-1/2 (U^T C0t' V) (V^T Ctt' V)^-1/2 (they differ by rotations).
     return float(1.0 + np.sum((a.T @ (u.T @ d0t @ v) @ b) ** 2))

@@ -66,6 +66,7 @@ The proposed labels then feed the labelled pipeline
 
 import logging
 import math
+import warnings as _warnings  # _propose has a list named warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -75,7 +76,7 @@ from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
 from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
-from ..fit import TICA
+from ..fit import DroppedDirectionsWarning, TICA
 from ..io.source import Source
 from ..parallel import using_executor
 from ..passes import (LaggedPass, Pass, PoolFeaturizer, ScreeningPass, frame_keys, plan_tasks,
@@ -1024,18 +1025,20 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
     screened = _screen(source, base, pool, timesteps, lag, lag_frames, screen_size, executor)
     note(f"TICA on the {screened.columns.size} most autocorrelated features")
     plan = base.for_features(screened.featurizer.n_features, executor.n_workers)
-    tica = TICA.from_moments(
-        standardize_lagged(run_pass(LaggedPass(screened.featurizer, lag_frames,
-                                               shift=screened.center,
-                                               columns=screened.columns),
-                                    source, executor=executor, tasks=plan,
-                                    label="runs: TICA").merged(),
-                           screened.center, screened.scale), lag=1, rcond=1e-6)
+    lagged = standardize_lagged(run_pass(LaggedPass(screened.featurizer, lag_frames,
+                                                    shift=screened.center,
+                                                    columns=screened.columns),
+                                         source, executor=executor, tasks=plan,
+                                         label="runs: TICA").merged(),
+                                screened.center, screened.scale)
+    with _warnings.catch_warnings():  # the note below says how many were dropped
+        _warnings.simplefilter("ignore", DroppedDirectionsWarning)
+        tica = TICA.from_moments(lagged, lag=1, rcond=1e-6)
     ts_ps = (tica.timescales_ * lag).tolist()  # from_moments used lag=1 (one lag unit)
     notes = list(pool.notes) + [  # the pool's notes: a Python caller sees no CLI log
         f"TICA on the {screened.columns.size} most autocorrelated features "
         f"({tica.n_dropped_} near-singular directions dropped, eigenvalue below 1e-6 of "
-        "the largest)"]
+        "the largest)"]  # of the standardized features: the correlation scale
     if reweighting is not None:
         notes += _biased_notes(reweighting, lag_frames)
     slow = [i for i, t in enumerate(ts_ps) if (math.isinf(t) or t > lag)]

@@ -6,10 +6,13 @@ and scored on the held-out fold; the score is the mean over folds, with its
 standard error.
 """
 
+import warnings
+
 import numpy as np
 
-from ..fit import (discriminant_directions, quadratic_forms, rayleigh_quotient, rayleigh_quotients,
-                   slow_modes, two_state_direction, two_state_directions, vamp2_score)
+from ..fit import (DroppedDirectionsWarning, discriminant_directions, quadratic_forms,
+                   rayleigh_quotient, rayleigh_quotients, slow_modes, two_state_direction,
+                   two_state_directions, vamp2_score)
 from .folds import stacked_state_arrays, state_arrays
 
 __all__ = ["OBJECTIVES", "fit_direction", "slow_direction", "cv_direction",
@@ -72,7 +75,9 @@ def slow_direction(lagged, idx, *, rcond=1e-6):
         Its autocorrelation at the lag (dimensionless).
     """
     sub = lagged.subset(np.asarray(idx, dtype=np.intp))
-    modes = slow_modes(sub, lag=sub.lag or 1, n_components=1, rcond=rcond)  # as TICA's
+    with warnings.catch_warnings():  # one of many combinations: not worth a warning each
+        warnings.simplefilter("ignore", DroppedDirectionsWarning)
+        modes = slow_modes(sub, lag=sub.lag or 1, n_components=1, rcond=rcond)  # as TICA's
     w = modes.eigenvectors[:, 0]
     return w / np.linalg.norm(w), float(modes.eigenvalues[0])
 
@@ -154,7 +159,9 @@ def _fold_scores_one(fold_moments, idx, objective, method, shrinkage):
             train = fold_moments.lagged_train(k).subset(idx)
             test = fold_moments.lagged_test(k).subset(idx)
             try:
-                out[k] = vamp2_score(train, test, k=1) - 1.0
+                with warnings.catch_warnings():  # as in slow_direction
+                    warnings.simplefilter("ignore", DroppedDirectionsWarning)
+                    out[k] = vamp2_score(train, test, k=1) - 1.0
             except ValueError:
                 out[k] = 0.0
             continue
@@ -287,7 +294,9 @@ def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shri
     >>> rng = np.random.default_rng(0)
     >>> fm = FoldMoments([[Moments.from_data(rng.normal(m, 1, (500, 1))) for _ in range(2)]
     ...                   for m in (0.0, 2.0)])
-    >>> round(heldout_score(fm, [0])[0], 1)  # (delta mu / 2 sigma)^2 = 1
+    >>> # Fisher's ratio (Fisher 1936, Ann. Eugen. 7:179) of two equally weighted states:
+    >>> # between (delta mu / 2)^2, within sigma^2 (our own algebra), so (delta mu / 2 sigma)^2
+    >>> round(heldout_score(fm, [0])[0], 1)  # (2 / 2)^2 = 1
     1.0
     """
     return heldout_scores(fold_moments, [idx], objective=objective, method=method,
@@ -326,7 +335,8 @@ def heldout_scores(fold_moments, combinations, *, objective="separate", method="
     >>> rng = np.random.default_rng(0)
     >>> fm = FoldMoments([[Moments.from_data(rng.normal([0, m], 1, (2000, 2)))
     ...                    for _ in range(2)] for m in (0.0, 2.0)])
-    >>> # feature 1 separates the states ((delta mu / 2 sigma)^2 = 1), feature 0 is noise
+    >>> # feature 1 separates the states ((delta mu / 2 sigma)^2 = 1, as in heldout_score:
+    >>> # Fisher 1936, Ann. Eugen. 7:179, and our own algebra), feature 0 is noise
     >>> [round(mean, 1) for mean, _, _ in heldout_scores(fm, [[1], [0, 1], [0]])]
     [1.0, 1.0, 0.0]
     """
