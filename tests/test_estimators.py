@@ -73,6 +73,35 @@ def test_singular_within_covariance_still_works_with_shrinkage():
                                  [0.5, 0.5]) > 1.0
 
 
+def _scales_apart_with_a_constant(seed):
+    """Two states, features at scales 1000 and 0.001 (both separating), and a constant
+    third column that makes the within-state scatter singular."""
+    rng = np.random.default_rng(seed)
+    y = np.repeat([0, 1], 500)
+    X = np.c_[rng.normal(size=1000) * 1000 + y * 1500, rng.normal(size=1000) * 1e-3 + y * 1e-3,
+              np.ones(1000)]
+    return X, y
+
+
+def test_singular_scatter_ridge_does_not_depend_on_the_units():
+    X, y = _scales_apart_with_a_constant(1)
+    full = LDA().fit(X, y)
+    without = LDA().fit(X[:, :2], y)  # not singular: no ridge
+    unit = LDA().fit(X / np.r_[1000.0, 1e-3, 1.0], y)
+    np.testing.assert_allclose(full.eigenvalues_, without.eigenvalues_, rtol=1e-6)
+    np.testing.assert_allclose(full.eigenvalues_, unit.eigenvalues_, rtol=1e-6)
+    np.testing.assert_allclose(full.scalings_[:2, 0], without.scalings_[:, 0], rtol=1e-6)
+    assert full.scalings_[2, 0] == 0.0
+
+
+def test_eigenvalues_are_the_ratio_of_their_direction_when_the_scatter_is_singular():
+    X, y = _scales_apart_with_a_constant(2)
+    fitted = LDA().fit(X, y)
+    covs = [np.cov(X[y == c].T, bias=True) for c in (0, 1)]
+    ratio = rayleigh_quotient(fitted.scalings_[:, 0], fitted.means_, covs, fitted.priors_)
+    assert fitted.eigenvalues_[0] == pytest.approx(ratio, rel=1e-12)
+
+
 def test_signs_are_deterministic():
     v = np.array([[0.1, -2.0], [-0.5, 1.0]])
     out = fix_signs(v)
@@ -89,3 +118,14 @@ def test_bad_arguments_are_named():
         LDA(n_components=3).fit(X, np.repeat([0, 1], 5))
     with pytest.raises(ValueError, match="shrinkage=2"):
         LDA(shrinkage=2).fit(X, np.repeat([0, 1], 5))
+
+
+@pytest.mark.parametrize("priors, what", [([float("nan"), 1.0], "nan"), ([0.0, 1.0], "0.0"),
+                                          ([-1.0, 2.0], "-1.0"), ([1.0, 1.0, 1.0], "1.0"),
+                                          ([float("inf"), 1.0], "inf"), ("ab", "'ab'")])
+def test_bad_priors_are_named(priors, what):
+    X = np.random.default_rng(3).normal(size=(10, 2))
+    with pytest.raises(ValueError, match=r"priors=.*" + what + r".* must hold 2 finite, "
+                                         r"non-negative numbers .*at least two of them "
+                                         r"positive"):
+        LDA(priors=priors).fit(X, np.repeat([0, 1], 5))

@@ -127,6 +127,17 @@ def test_singular_state_covariance_still_gives_a_finite_direction():
         assert np.all(np.isfinite(h.scalings_)) and np.all(np.isfinite(h.eigenvalues_))
 
 
+def test_singular_state_covariances_ridge_does_not_depend_on_the_units():
+    rng = np.random.default_rng(4)
+    y = np.repeat([0, 1], 500)
+    X = np.c_[rng.normal(size=1000) * 1000 + y * 1500, rng.normal(size=1000) * 1e-3 + y * 1e-3,
+              np.ones(1000)]  # a constant column: every Sigma_k is singular
+    full = HLDA().fit(X, y)
+    without = HLDA().fit(X[:, :2], y)
+    np.testing.assert_allclose(full.eigenvalues_, without.eigenvalues_, rtol=1e-6)
+    np.testing.assert_allclose(full.scalings_[:2, 0], without.scalings_[:, 0], rtol=1e-6)
+
+
 def test_lda_default_behaviour_is_unchanged_by_the_within_option():
     means, covs, p = [MU_A, MU_B], [SIG_A, SIG_B], [0.4, 0.6]
     ev0, w0 = discriminant_directions(means, covs, p)
@@ -143,6 +154,12 @@ def test_bad_arguments_are_named():
         HLDA().fit(X, np.zeros(10))
     with pytest.raises(ValueError, match="shrinkage=2"):
         HLDA(shrinkage=2).fit(X, np.repeat([0, 1], 5))
+    with pytest.raises(ValueError, match=r"priors=\[nan, 1\] must hold 2 finite"):
+        HLDA(priors=[float("nan"), 1]).fit(X, np.repeat([0, 1], 5))
+    with pytest.raises(ValueError, match=r"priors=\[0, 1\] must .*at least two of them "
+                                         r"positive"):
+        HLDA.from_moments([_exact_moments(MU_A, SIG_A, 5), _exact_moments(MU_B, SIG_B, 5)],
+                          priors=[0, 1])
     with pytest.raises(ValueError, match=r"within='geometric' must be 'arithmetic' or 'harmonic'"):
         discriminant_directions([MU_A, MU_B], [SIG_A, SIG_B], [0.5, 0.5], within="geometric")
     with pytest.raises(ValueError, match=r"within='median'"):

@@ -9,6 +9,9 @@ from cvdesign.score.univariate import Histograms, bin_counts, fisher_ratio, over
 
 def test_fisher_ratio_two_states_closed_form():
     # Two equally weighted states with a common spread sigma: J = (delta mu / 2 sigma)^2.
+    # The ratio is Fisher's (Fisher 1936, Ann. Eugen. 7:179); the closed form is our own
+    # algebra: each mean lies |delta mu| / 2 from the grand mean, so the between-state
+    # variance is (delta mu / 2)^2 and the within-state variance sigma^2.
     J = fisher_ratio([[0.0, 1.0], [3.0, 1.0]], [[4.0, 1.0], [4.0, 1.0]])
     assert J[0] == pytest.approx((3.0 / 4.0) ** 2)
     assert J[1] == 0.0

@@ -77,10 +77,34 @@ def _regularize(within, shrinkage):
     return out
 
 
+#: Relative size of the ridge added to a singular matrix before it is inverted or
+#: factored, on the correlation scale (see :func:`_ridge`).
+_RIDGE = 1e-10
+
+
+def _ridge(matrix):
+    """`matrix` shrunk by :data:`_RIDGE` toward its own diagonal: ``(1 - r) M + r D``.
+
+    On the correlation scale (``D^-1/2 M D^-1/2``) this is the shrinkage toward the
+    identity by ``r``, so the fallback does not depend on the units of each feature
+    (a ridge relative to the trace, ``r tr / p``, swamps the variance of a feature in
+    small units beside one in large units). A zero diagonal entry (a constant
+    feature, whose row and column are zero) takes the largest diagonal entry (1
+    when every entry is zero), which keeps it apart from the others.
+    """
+    p = matrix.shape[0]
+    diag = np.diag(matrix).copy()
+    live = np.isfinite(diag) & (diag > 0)
+    fill = diag[live].max() if live.any() else 1.0
+    out = (1.0 - _RIDGE) * matrix
+    out[np.diag_indices(p)] += _RIDGE * np.where(live, diag, fill)
+    return out
+
+
 def _cholesky(matrix):
     """Upper Cholesky factor (LAPACK ``dpotrf``, as ``scipy.linalg.cho_factor``), with the
     ridge fallback: when `matrix` is not positive definite it is shrunk by 1e-10 toward
-    ``(tr / p) I`` first (the same fallback as LDA's).
+    its own diagonal first (:func:`_ridge`, the same fallback as LDA's).
 
     The LAPACK routines are called directly: the searches solve tens of thousands of
     small systems, where scipy's wrappers cost more than the arithmetic.
@@ -90,7 +114,7 @@ def _cholesky(matrix):
         raise ValueError("array must not contain infs or NaNs")
     c, info = _dpotrf(matrix, lower=0, clean=0)
     if info > 0:
-        c, info = _dpotrf(_regularize(matrix, 1e-10), lower=0, clean=0)
+        c, info = _dpotrf(_ridge(matrix), lower=0, clean=0)
         if info > 0:
             raise np.linalg.LinAlgError(f"{info}-th leading minor of the array is not "
                                         "positive definite")
@@ -416,8 +440,11 @@ def discriminant_directions(means, covariances, priors, *, shrinkage=0.0, within
         keeps the problem well posed when ``S_w`` is singular (constant or
         exactly dependent features). With ``within='harmonic'`` the same
         shrinkage is applied to each ``Sigma_k`` before it is inverted. When
-        ``shrinkage=0`` and a matrix to invert or ``S_w`` is singular, a ridge
-        of ``1e-10 tr / p`` is added instead of failing.
+        a matrix to invert or ``S_w`` is singular, it is shrunk by 1e-10
+        toward its own diagonal, ``(1 - 1e-10) M + 1e-10 diag(M)`` (a ridge on
+        the correlation scale, independent of the features' units; a constant
+        feature's zero variance is replaced by the largest variance) instead of
+        failing.
     within : {'arithmetic', 'harmonic'}, default='arithmetic'
         Within-state scatter: ``'arithmetic'``, the prior-weighted mean
         ``sum_k p_k Sigma_k`` (LDA); ``'harmonic'``, the prior-weighted
@@ -428,7 +455,13 @@ def discriminant_directions(means, covariances, priors, *, shrinkage=0.0, within
     Returns
     -------
     eigenvalues : ndarray of shape (n_features,)
-        Fisher ratios of the directions, largest first (dimensionless).
+        Fisher ratios of the directions, largest first (dimensionless): each
+        is :func:`rayleigh_quotient` of its direction on ``S_b`` and ``S_w``
+        as defined here (with `shrinkage`, and for ``'harmonic'`` with the
+        ridges of the inverses above), also when ``S_w`` itself was singular
+        and the directions were found with the ridge: then a direction
+        without within-state variance that separates the states has ratio
+        ``inf``.
     directions : ndarray of shape (n_features, n_features)
         Columns are the directions, normalized to unit length, signs fixed by
         :func:`fix_signs`.
@@ -455,14 +488,27 @@ def discriminant_directions(means, covariances, priors, *, shrinkage=0.0, within
     try:
         evals, evecs = scipy.linalg.eigh(between, within)
     except np.linalg.LinAlgError:
-        within = _regularize(within, 1e-10)
-        evals, evecs = scipy.linalg.eigh(between, within)
+        evals, evecs = scipy.linalg.eigh(between, _ridge(within))
+        # the ratios of the directions found, on the scatter before the ridge (inf along
+        # a direction without within-state variance that separates the states)
+        evals = _quotients(evecs, between, within)
     order = np.argsort(-evals, kind="stable")
     evals = evals[order]
     evecs = evecs[:, order]
     norms = np.linalg.norm(evecs, axis=0)
     norms[norms == 0] = 1.0
     return evals, fix_signs(evecs / norms)
+
+
+def _quotients(vectors, between, within):
+    """``(w^T S_b w) / (w^T S_w w)`` of each column `w` of `vectors`, as
+    :func:`rayleigh_quotient` (inf where only the numerator is positive, 0 where
+    neither is)."""
+    num = np.einsum("ij,ik,kj->j", vectors, between, vectors)
+    den = np.einsum("ij,ik,kj->j", vectors, within, vectors)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = num / den
+    return np.where(den <= 0, np.where(num > 0, np.inf, 0.0), out)
 
 
 def rayleigh_quotient(w, means, covariances, priors, *, within="arithmetic", shrinkage=0.0):

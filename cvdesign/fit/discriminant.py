@@ -28,6 +28,23 @@ __all__ = ["LDA", "HLDA", "discriminant_directions", "two_state_direction",
            "quadratic_forms", "fix_signs"]
 
 
+def _check_priors(given, n_classes):
+    """`priors` as an array summing to 1: one finite, non-negative weight per class, at
+    least two of them positive (a single state has nothing to be separated from)."""
+    try:
+        priors = np.asarray(given, dtype=np.float64).reshape(-1)
+    except (TypeError, ValueError):
+        priors = None
+    if priors is None or priors.shape[0] != n_classes or not np.isfinite(priors).all() \
+            or np.any(priors < 0) or np.count_nonzero(priors) < 2:
+        raise ValueError(
+            f"priors={given!r} must hold {n_classes} finite, non-negative numbers (one per "
+            "class, in the order of classes_), at least two of them positive; or None for "
+            "the classes' frequencies"
+        )
+    return priors / priors.sum()
+
+
 class _Discriminant(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
     """Shared code of :class:`LDA` and :class:`HLDA` (they differ in `_within`).
 
@@ -107,12 +124,7 @@ class _Discriminant(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstim
             counts = np.array([m.count for m in moments], dtype=np.float64)
             priors = counts / counts.sum()
         else:
-            priors = np.asarray(self.priors, dtype=np.float64).reshape(-1)
-            if priors.shape[0] != n_classes or np.any(priors < 0) or priors.sum() <= 0:
-                raise ValueError(
-                    f"priors={self.priors!r} must hold {n_classes} non-negative numbers"
-                )
-            priors = priors / priors.sum()
+            priors = _check_priors(self.priors, n_classes)
         max_comp = min(n_classes - 1, n_features)
         n_comp = max_comp if self.n_components is None else int(self.n_components)
         if not 1 <= n_comp <= max_comp:
@@ -168,9 +180,11 @@ class LDA(_Discriminant):
         Number of discriminant directions kept; at most
         ``min(n_classes - 1, n_features)`` (the default).
     priors : array-like of shape (n_classes,), default=None
-        Class weights in the scatter matrices. None uses the class
-        frequencies (as scikit-learn does); the cvdesign pipeline passes
-        equal weights so that a longer run of one state does not dominate.
+        Class weights in the scatter matrices, in the order of ``classes_``:
+        finite, non-negative, at least two positive (normalized to sum to 1).
+        None uses the class frequencies (as scikit-learn does); the cvdesign
+        pipeline passes equal weights so that a longer run of one state does
+        not dominate.
     shrinkage : float, default=0.0
         Regularization of the within-class scatter, see
         :func:`discriminant_directions`.
@@ -247,7 +261,8 @@ class HLDA(_Discriminant):
         Number of directions kept; at most ``min(n_classes - 1, n_features)``
         (the default).
     priors : array-like of shape (n_classes,), default=None
-        State weights ``p_k``; None uses the class frequencies.
+        State weights ``p_k`` as for :class:`LDA` (finite, non-negative, at
+        least two positive); None uses the class frequencies.
     shrinkage : float, default=0.0
         Each ``Sigma_k`` is replaced by ``(1 - shrinkage) Sigma_k + shrinkage
         (tr Sigma_k / p) I`` before it is inverted, see
