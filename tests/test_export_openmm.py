@@ -337,8 +337,10 @@ def test_funnel_energy_and_forces_equal_the_reference_restraint_energy(box_name)
         xyz = _moved(xyz, [FUNNEL_POCKET, FUNNEL_LIGAND, [4]], box, rng)
     energy, grad = spec.restraint_energy(xyz, box=box, gradient=True)
     assert np.count_nonzero(energy > 1.0) >= 6  # most regimes push back
-    omm_energy, omm_forces = _openmm_eval(spec.restraint_to_openmm(periodic=box is not None),
-                                          xyz, box)
+    with warnings.catch_warnings():  # (the boxes hold the funnel; said in the warning)
+        warnings.filterwarnings("ignore", message=".*make sure every height of the Context")
+        force = spec.restraint_to_openmm(periodic=box is not None)
+    omm_energy, omm_forces = _openmm_eval(force, xyz, box)
     _assert_close(omm_energy, energy)
     _assert_close(omm_forces, -grad)
 
@@ -421,6 +423,14 @@ def test_a_funnel_longer_than_half_the_systems_box_is_refused(tmp_path, capsys):
             build(system=small)
     # a box whose heights are all above twice the reach is fine
     assert _funnel_spec().restraint_to_openmm(system=_system(7, True, box=5.1 * np.eye(3)))
+    # OpenMM's default 2 nm cube (a box never set) is checked too; with periodic=True and no
+    # System the box the Context needs is said
+    with pytest.warns(UserWarning, match="default, a 2 nm cube"), \
+            pytest.raises(InputError, match=r"more than half the smallest height .* \(1 nm\)"):
+        _funnel_spec().restraint_to_openmm(system=_system(7, True, box=None))
+    with pytest.warns(UserWarning, match=rf"make sure every height of the Context's box "
+                                         rf"exceeds {2 * reach:.4g} nm"):
+        _funnel_spec().restraint_to_openmm(periodic=True)
     # and the command leaves nothing behind
     _funnel_spec().save(tmp_path / "funnel.json")
     system = tmp_path / "system.xml"
@@ -431,6 +441,13 @@ def test_a_funnel_longer_than_half_the_systems_box_is_refused(tmp_path, capsys):
                  str(tmp_path / "restraint.xml"), "--system", str(system)]) == 2
     assert "more than half the smallest height" in capsys.readouterr().err
     assert sorted(tmp_path.iterdir()) == before
+    # --periodic without a System: the box the run needs is said once, as a warning
+    assert main(["export", str(tmp_path / "funnel.json"), "--to", "openmm",
+                 "--out", str(tmp_path / "cv.xml"), "--restraint-out",
+                 str(tmp_path / "restraint.xml"), "--periodic"]) == 0
+    err = capsys.readouterr().err
+    assert err.count(f"make sure every height of the Context's box exceeds {2 * reach:.4g} "
+                     "nm") == 1 and "cvdesign export: warning: spec 'funnel'" in err
 
 
 def test_without_openmm_the_export_says_how_to_install_it(monkeypatch):

@@ -327,3 +327,8 @@ def test_a_funnel_axis_through_a_noisy_ligand_offset_is_warned_about(tmp_path):
     assert "--exit-point" in warning
     assert any("uncertain by about" in r and "from 5 block means (5 per run)" in r
                for r in out["reasoning"])
+    # the same frames as arrays: no runs to block, and the reasoning says it was not assessed
+    arrays = size_funnel(pocket, ligand)
+    assert arrays["axis_rule"] == "ligand_offset"
+    assert any("its uncertainty not assessed: frames given as arrays" in r
+               for r in arrays["reasoning"])

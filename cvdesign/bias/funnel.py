@@ -939,7 +939,10 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
             "image and the restraint no longer describes this funnel; use a larger box or a "
             "shorter funnel (smaller unbound_length, --unbound-length)")
     angle, axis_note = None, ""
-    if rule == "ligand_offset":
+    if rule == "ligand_offset" and sums.blocks is None:
+        axis_note = ("its uncertainty not assessed: frames given as arrays carry no runs to "
+                     "block; size_funnel_from_source, or cvdesign funnel, assesses it")
+    elif rule == "ligand_offset":
         angle, axis_note = _axis_uncertainty(sums.blocks, axis, stats.z_mean)
         if angle is not None and angle > min(half_angle, np.arctan(0.5)):
             why = (f"more than the cone's half-angle ({np.degrees(half_angle):.0f} degrees)"
@@ -958,8 +961,8 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
     reasoning = [
         _FRAME_NOTE,
         f"axis by rule '{rule}' from the pocket centre, in the reference frame"
-        + (f" (uncertain by about {np.degrees(angle):.0f} degrees: {axis_note})"
-           if axis_note else "")
+        + ("" if not axis_note else f" ({axis_note})" if angle is None else
+           f" (uncertain by about {np.degrees(angle):.0f} degrees: {axis_note})")
         + f"; pocket fit RMSD mean {rmsd_sum / sums.w:.3f} nm, largest {rmsd_max:.3f} nm",
         f"lower_wall_z_nm = lowest bound z {stats.z_min:.3f} - margin {dz:.3f} nm "
         f"(max of {z_margin} nm and {k_std} std; common practice, from memory)",

@@ -311,6 +311,16 @@ def default_box_message(system):
             f"box really is a {edge:g} nm cube, ignore this")
 
 
+def _funnel_reach(document):
+    """The farthest reach (nm) of the spec's funnel restraints from their pocket centres, or
+    None without a funnel."""
+    from ..bias.funnel import funnel_reach
+
+    reaches = [funnel_reach(r)[0] for r in document.get("restraints") or []
+               if r.get("kind") == "funnel"]
+    return max(reaches) if reaches else None
+
+
 def _check_funnel_reach(document, system, openmm):
     """Refuse a funnel restraint that reaches farther from the pocket than half the smallest
     height of the System's box: beyond it the minimum image folds the ligand-pocket vector,
@@ -362,9 +372,17 @@ def _periodic_flag(openmm, document, periodic, system):
         message = default_box_message(system)
         if message is not None:
             warnings.warn(message, UserWarning, stacklevel=4)
-        elif uses:
+        if uses:  # (a funnel reaches past 1 nm: the default 2 nm cube never holds one)
             _check_funnel_reach(document, system, openmm)
         return uses
+    reach = _funnel_reach(document) if periodic else None
+    if reach is not None:
+        warnings.warn(
+            f"spec {name!r}: the funnel reaches {reach:.4g} nm from the pocket centre; with "
+            f"periodic=True and no System to check, make sure every height of the Context's "
+            f"box exceeds {2 * reach:.4g} nm (beyond half of it the periodic image folds the "
+            "ligand's offset), or pass the openmm.System as system= to have it checked",
+            UserWarning, stacklevel=4)
     if periodic is None:
         raise InputError(
             "say whether the system has a periodic box: periodic=True (distances at their "

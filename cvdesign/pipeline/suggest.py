@@ -1155,7 +1155,9 @@ def _offsets_hold_autocorrelation(entry):
     below the between-state share of the variance, ``B / (B + W)`` (frames weighted), and
     its timescale then grows with the lag: a measure of the separation (a CV with a Fisher
     ratio of 26 gave 272 ps for a relaxation of 0.8 ps inside the states), not of a
-    process the runs resolve.
+    process the runs resolve. A timescale below the lag (an autocorrelation below 1/e) is
+    not taken as held up: a CV that does not separate can have a between-state share of
+    noise (0.003) beside an autocorrelation of noise (0.005).
 
     Examples
     --------
@@ -1164,11 +1166,13 @@ def _offsets_hold_autocorrelation(entry):
     ...     "b": {"mean": 1.0, "std": 0.1, "n_frames": 100}}}
     >>> _offsets_hold_autocorrelation(e)  # B / (B + W) = 0.25 / 0.26, against 0.96 / 2
     True
+    >>> _offsets_hold_autocorrelation(dict(e, autocorrelation_all=0.3))  # below 1/e
+    False
     """
     rho = entry.get("autocorrelation_all")
     stats = list(entry["states"].values())
     n = np.array([s["n_frames"] for s in stats], dtype=np.float64)
-    if rho is None or n.sum() <= 0:
+    if rho is None or not rho > math.exp(-1.0) or n.sum() <= 0:
         return False
     mean = np.array([s["mean"] for s in stats])
     var = np.array([s["std"] for s in stats]) ** 2
