@@ -4,6 +4,7 @@ thinning rules; the stored size at two trajectory lengths; the thinned TICA pict
 ``--runs`` and the funnel's positions."""
 
 import json
+import math
 import os
 
 import mdtraj as md
@@ -91,6 +92,14 @@ def test_a_cvs_integrated_time_is_that_of_its_slowest_state(tmp_path):
     (tau, decayed, ci, short, state), = cv_integrated_times(cvs, grid, 1.0, [n, n])
     assert state == 1 and decayed and ci[0] < tau < ci[1]
     assert tau == pytest.approx(49.5, rel=0.25)
+    # the interval comes from the slow state's frames: the broad state's count does not
+    # move it, and four times the slow state's halves its width on log tau (Madras and
+    # Sokal 1988: sd(log tau) ~ 1 / sqrt(N))
+    (_, _, same, _, _), = cv_integrated_times(cvs, grid, 1.0, [7 * n, n])
+    (_, _, narrower, _, _), = cv_integrated_times(cvs, grid, 1.0, [n, 4 * n])
+    assert same == ci
+    assert math.log(narrower[1] / narrower[0]) == pytest.approx(
+        0.5 * math.log(ci[1] / ci[0]), rel=1e-12)
     # pooled over both states (as before): about a frame
     rho = _within_runs(cvs)[:, 0]
     pooled, _ = integrated_time(grid, rho[:, None], 1.0)
@@ -596,3 +605,46 @@ def test_funnel_positions_are_every_stride_th_frame_fitted_onto_the_reference(
     r_direct = np.linalg.norm(d, axis=1)
     np.testing.assert_allclose(np.hypot(got["positions"]["z_nm"], got["positions"]["r_nm"]),
                                r_direct, atol=1e-5)
+
+
+def test_the_score_card_times_and_the_bootstrap_blocks_follow_the_slowest_state(tmp_path):
+    """The same narrow, slow state beside a broad, fast one, through `suggest`: the score
+    card gave the distance's time pooled over the states (0.55 ps, against the slow state's
+    ~50-90 ps in the ranking for the same series), and the bootstrap blocks, sized from the
+    card's times, were far shorter than the slow state's time."""
+    import re
+
+    rng = np.random.default_rng(8)
+    n, phi = 4000, 0.98
+    top = md.Topology()
+    res = top.add_residue("TOY", top.add_chain())
+    for i in range(3):
+        top.add_atom(f"C{i + 1}", md.element.carbon, res)
+    files = {}
+    for state in ("broad", "narrow"):
+        for r in range(2):
+            x = (rng.normal(0.0, 0.1, n) if state == "broad" else
+                 lfilter([1.0], [1.0, -phi], rng.normal(0.0, 0.01 * np.sqrt(1 - phi * phi), n)))
+            xyz = np.zeros((n, 3, 3))
+            xyz[:, 1, 0] = 1.0 + x + (0.3 if state == "narrow" else 0.0)
+            xyz[:, 2, 1] = 0.5 + rng.normal(0, 0.01, n)
+            path = tmp_path / f"{state}{r}.xtc"
+            md.Trajectory(xyz.astype(np.float32), top, time=np.arange(n) * 1.0).save_xtc(
+                str(path))
+            files.setdefault(state, []).append(str(path))
+    pdb = tmp_path / "top.pdb"
+    md.Trajectory(np.array([[[0, 0, 0], [1, 0, 0], [0, 0.5, 0]]], np.float32), top).save_pdb(
+        str(pdb))
+    result = suggest(Source.from_states(str(pdb), files), kinds=("distance",), max_terms=1,
+                     n_suggestions=1, n_bootstrap=20, lag=1.0)
+    rank1 = result.ranking[0]
+    (term,) = rank1["terms"]
+    assert term["descriptor"] == "distance:1-2" and rank1["integrated_time_state"] == "narrow"
+    row = next(r for r in result.scorecard if r["id"] == "distance:1-2")
+    # the same series (one term, weight 1), the same time, from the same state
+    assert row["integrated_time"] == pytest.approx(rank1["integrated_time_ps"], rel=1e-6)
+    assert row["integrated_time"] > 20.0  # AR(1) of 0.98: 49.5 frames of 1 ps (Sokal 1997)
+    # the bootstrap blocks: at least twice the longest integrated time (frames of 1 ps)
+    note = next(x for x in result.notes if x.startswith("uncertainties: block bootstrap"))
+    blocks = int(re.search(r"blocks of (\d+) frames", note).group(1))
+    assert blocks >= 2 * row["integrated_time"]

@@ -366,7 +366,9 @@ class Suggestions:
                    "within the states, `heldout_autocorrelation_within_states`), and the "
                    "timescale is -lag/ln(autocorrelation) on all data; ")
                 + "a timescale longer than the longest run (for pairs within one state: "
-                "the longest run or visit of one state) is only a lower bound. "
+                "the longest run or visit of one state) is only a lower bound, and so is one "
+                "held up by the offsets between the states (pairs that never leave their "
+                "state stay correlated through them): both are shown as not resolved. "
                 "Intervals are nominal 95 % block-bootstrap intervals (their measured coverage "
                 "with blocks of about two integrated times is 87-92 %: read them as somewhat "
                 "narrow); selection is the fraction of "

@@ -46,7 +46,7 @@ from ..passes import FeaturePass, LagGridPass, frame_keys, group_rows, thinning_
 from ..score.card import integrated_time_interval
 from ..stats.moments import DiagonalLaggedMoments
 from .output import run_file_names
-from .timing import (local_autocorrelation, runs_too_short,
+from .timing import (local_autocorrelation, runs_too_short, slowest_state_times,
                      state_integrated_times)
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
@@ -616,13 +616,7 @@ def cv_integrated_times(results, lags, dt_ps, state_frames, *, grid=None, skip_s
     lags = lags[keep]
     kept = [runs for runs, k in zip(by_lag, keep) if k]
     per_state = state_integrated_times(kept, lags, n, dt=dt_ps, return_window=True)
-    tau = np.full(n, np.nan)
-    decayed, window = np.zeros(n, dtype=bool), np.zeros(n)
-    state = np.full(n, -1, dtype=np.intp)
-    for s, (t, d, w) in per_state.items():  # the longest; a tie keeps the first state
-        longer = np.isfinite(t) & ~(t <= tau)
-        tau[longer], decayed[longer], window[longer], state[longer] = \
-            t[longer], d[longer], w[longer], s
+    tau, decayed, window, state = slowest_state_times(per_state, n)
     short = np.zeros(n, dtype=bool)
     if len(lags) and int(lags[0]) == 1:  # runs too short for the time: a lower bound
         short = runs_too_short(kept[0], {s: v[0] / dt_ps for s, v in per_state.items()}, n,

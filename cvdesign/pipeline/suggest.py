@@ -65,9 +65,8 @@ from .screening import Screening, screen
 from .specs import InputChecksums, SourceRecord, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
 from .timing import (EvenSpacingPass, bias_times, block_frames, checked_segments, iat_lags,
-                     integrated_time, lag_frames, local_autocorrelation, longest_run_text,
-                     longest_visit_ps, read_timesteps, runs_too_short,
-                     state_integrated_times)
+                     lag_frames, longest_run_text, longest_visit_ps, read_timesteps,
+                     runs_too_short, slowest_state_times, state_integrated_times)
 
 __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file"]
 
@@ -597,21 +596,23 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     dt = next(iter(steps.values()))
     if dt is None:
         return fm, iat_desc, notes, transit
-    # within runs: each (file, state) series about its own mean
+    # within runs: each (file, state) series about its own mean; each descriptor's time is
+    # that of the state where it is longest (pooled, a narrow slow state hides behind a
+    # broad fast one, and the bootstrap blocks sized from it would be too short for it)
     n = feats.n_features
     by_lag = [r.by_run() for r in results[-1]]  # (folds merged once per lag)
-    rho_grid = np.array([local_autocorrelation(runs.values(), n) for runs in by_lag])
-    tau, decayed, window = integrated_time(grid, rho_grid, dt, return_window=True)
+    per_state = state_integrated_times(by_lag, grid, n, dt=dt, return_window=True)
+    tau, decayed, window, state = slowest_state_times(per_state, n)
     # runs too short for a time (their means scatter more than it allows): shown as a lower
     # bound; the bootstrap blocks still follow the measured time (whole runs for every
     # such descriptor would leave a few runs per state without any interval)
-    short = runs_too_short(by_lag[0], state_integrated_times(by_lag, grid, n), n,
+    short = runs_too_short(by_lag[0], {s: v[0] / dt for s, v in per_state.items()}, n,
                            skip_states=_reweighted_states(reweighting)) & decayed
     if short.any():
         notes.append(_short_runs_note(int(sum(short[g].any() for g in screening.groups)),
                                       "screened descriptors"))
-    tau_lo, tau_hi = integrated_time_interval(tau, window,
-                                              _effective_frames(seg_counts, reweighting))
+    frames = _state_frames(seg_counts, reweighting)[np.maximum(state, 0)]
+    tau_lo, tau_hi = integrated_time_interval(tau, window, np.maximum(frames, 1.0))
     for gi, i in enumerate(screening.screened):
         g = screening.groups[gi]
         g = g[np.isfinite(tau[g])]  # (NaN: no pairs at the first lag; no time then)
@@ -874,7 +875,7 @@ def _card_pass(every, pool, screening, seg_counts, iat_desc, steps, lags, first)
     what = ("every descriptor" if len(card_desc) == len(pool)
             else f"the best {len(card_desc)} of {len(pool)} descriptors (memory budget)")
     blocks = f"blocks of {bf} frames" if bf else "whole runs as blocks"
-    note = (f"score card: 95 % block-bootstrap intervals for {what}, {blocks} of each run "
+    note = (f"score card: nominal 95 % block-bootstrap intervals for {what}, {blocks} of each run "
             "resampled within each state (lagged pairs in the block of their first frame); "
             "integrated times: asymptotic 95 % intervals (Madras and Sokal 1988), since "
             "their window is longer than a block")
@@ -954,14 +955,6 @@ def _state_frames(seg_counts, reweighting):
         for s in reweighting.biased_states:
             per_state[s] = reweighting.ess[s]
     return per_state
-
-
-def _effective_frames(seg_counts, reweighting):
-    """Frames of all runs, with the effective sample size of each reweighted state in place
-    of its frames (for the asymptotic interval of the integrated times)."""
-    if reweighting is None:
-        return int(seg_counts.sum())
-    return max(1, int(round(_state_frames(seg_counts, reweighting).sum())))
 
 
 #: Fewer frames than this in a state (effective ones when reweighted) get the note of
@@ -1117,8 +1110,8 @@ def _bootstrap_notes(boot, held, config, fm=None):
                 f"{MIN_INTERVAL_BLOCKS}, and intervals from so few blocks cover the truth far "
                 "less often than they say); give more or longer runs per state"]
     out = [f"uncertainties: block bootstrap, {config.n_bootstrap} replicates (seed "
-           f"{config.seed}), blocks of {held.block_desc} resampled within each state; 95 % "
-           "intervals, each the hull of the percentile and basic bootstrap intervals (it "
+           f"{config.seed}), blocks of {held.block_desc} resampled within each state; nominal "
+           "95 % intervals, each the hull of the percentile and basic bootstrap intervals (it "
            "contains the estimate, and is wider where resampling biases the statistic)"]
     if boot.get("selection_skipped"):
         out.append(boot["selection_skipped"])

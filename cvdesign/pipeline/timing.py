@@ -16,7 +16,7 @@ from ..io.source import stores_time
 from ..passes import Pass
 
 __all__ = ["read_timesteps", "lag_frames", "iat_lags", "integrated_time", "local_autocorrelation",
-           "longest_visit_ps", "runs_too_short", "state_integrated_times",
+           "longest_visit_ps", "runs_too_short", "state_integrated_times", "slowest_state_times",
            "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments",
            "bias_times"]
 
@@ -415,6 +415,46 @@ def state_integrated_times(runs_by_lag, lags, n_features, *, dt=1.0, return_wind
                                 dt, return_window=True)
         out[s] = found if return_window else found[0]
     return out
+
+
+def slowest_state_times(per_state, n_features):
+    """Per feature, the integrated time of the state where it is longest.
+
+    A time pooled over the states weighs each by its variance: a narrow, slow state
+    beside a broad, fast one pools to about the fast one's time, and a deposition interval
+    or a bootstrap block sized from it would be far too short for the slow state.
+
+    Parameters
+    ----------
+    per_state : dict of int to (ndarray, ndarray, ndarray)
+        Per state ``(tau, decayed, window)``, as :func:`state_integrated_times` gives with
+        ``return_window=True``.
+    n_features : int
+
+    Returns
+    -------
+    tau, decayed, window : ndarray of shape (n_features,)
+        Of the slowest state (NaN, False, 0 where no state has a finite time).
+    state : ndarray of int, shape (n_features,)
+        That state (-1 where none); a tie keeps the first state.
+
+    Examples
+    --------
+    >>> per_state = {0: (np.array([2.0, 9.0]), np.array([True, True]), np.array([10, 45])),
+    ...              1: (np.array([50.0, np.nan]), np.array([False, False]),
+    ...                  np.array([250, 0]))}
+    >>> tau, decayed, window, state = slowest_state_times(per_state, 2)
+    >>> tau.tolist(), decayed.tolist(), window.tolist(), state.tolist()
+    ([50.0, 9.0], [False, True], [250.0, 45.0], [1, 0])
+    """
+    tau = np.full(n_features, np.nan)
+    decayed, window = np.zeros(n_features, dtype=bool), np.zeros(n_features)
+    state = np.full(n_features, -1, dtype=np.intp)
+    for s, (t, d, w) in sorted(per_state.items()):
+        longer = np.isfinite(t) & ~(t <= tau)
+        tau[longer], decayed[longer], window[longer], state[longer] = \
+            t[longer], d[longer], w[longer], s
+    return tau, decayed, window, state
 
 
 def local_autocorrelation(runs, n_features):
