@@ -57,7 +57,7 @@ def test_a_combination_decorrelates_more_slowly_than_each_of_its_terms(tmp_path)
                            CVGridPass(feats, [cv], grid, [2.0])), src)
     rho = np.array([local_autocorrelation(r.by_run().values(), 3)[:2] for r in terms])
     tau_terms, _ = integrated_time(grid, rho, 1.0)
-    (tau, decayed, ci, short, state), = cv_integrated_times(cvs, grid, 1.0, [2 * n])
+    (tau, decayed, ci, short, state, _), = cv_integrated_times(cvs, grid, 1.0, [2 * n])
     assert decayed and ci[0] < tau < ci[1]
     assert tau_terms.max() < 1.0  # each term: about half a frame plus F's share of S
     # the estimate's relative standard deviation is sqrt(2 (2 M + 1) / N) = 0.07 for the
@@ -89,14 +89,14 @@ def test_a_cvs_integrated_time_is_that_of_its_slowest_state(tmp_path):
     feats = CoordinateFeaturizer([0])
     cv = CVPlan([0], [1.0], [[1.0]], [(1.0, 0.0)], -1.0, 3.0, 10)
     cvs, = run_pass((CVGridPass(feats, [cv], grid, [2.0]),), src)
-    (tau, decayed, ci, short, state), = cv_integrated_times(cvs, grid, 1.0, [n, n])
+    (tau, decayed, ci, short, state, _), = cv_integrated_times(cvs, grid, 1.0, [n, n])
     assert state == 1 and decayed and ci[0] < tau < ci[1]
     assert tau == pytest.approx(49.5, rel=0.25)
     # the interval comes from the slow state's frames: the broad state's count does not
     # move it, and four times the slow state's halves its width on log tau (Madras and
     # Sokal 1988: sd(log tau) ~ 1 / sqrt(N))
-    (_, _, same, _, _), = cv_integrated_times(cvs, grid, 1.0, [7 * n, n])
-    (_, _, narrower, _, _), = cv_integrated_times(cvs, grid, 1.0, [n, 4 * n])
+    (_, _, same, _, _, _), = cv_integrated_times(cvs, grid, 1.0, [7 * n, n])
+    (_, _, narrower, _, _, _), = cv_integrated_times(cvs, grid, 1.0, [n, 4 * n])
     assert same == ci
     assert math.log(narrower[1] / narrower[0]) == pytest.approx(
         0.5 * math.log(ci[1] / ci[0]), rel=1e-12)

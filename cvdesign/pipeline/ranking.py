@@ -629,8 +629,10 @@ def heldout_noise_level(fm, tau_frames):
     ----------
     fm : cvdesign.search.FoldMoments
         Per state and fold moments (their counts are the held-out frames).
-    tau_frames : float
-        The CV's integrated time, frames (the longest of the states').
+    tau_frames : float or array-like of shape (n_states,)
+        The time a state's mean varies by, frames: its integrated time, or what its run
+        means' scatter implies when longer (:func:`~cvdesign.pipeline.timing.scatter_times`);
+        one value for every state, or one per state.
 
     Returns
     -------
@@ -648,6 +650,7 @@ def heldout_noise_level(fm, tau_frames):
     0.0005
     """
     p = np.asarray(fm.priors, dtype=np.float64)
+    tau_frames = np.broadcast_to(np.asarray(tau_frames, dtype=np.float64), p.shape)
     levels = []
     for k in range(fm.n_folds):
         n = np.array([fm.moments[s][k].count for s in range(fm.n_states)], dtype=np.float64)
@@ -657,16 +660,21 @@ def heldout_noise_level(fm, tau_frames):
     return float(np.mean(levels))
 
 
-def add_noise_level(entry, fm, frame_ps, reweighted, *, warn=True):
-    """``heldout_fisher_ratio_noise`` (:func:`heldout_noise_level`, from the CV's
-    ``integrated_time_ps``; None when it or the frame spacing is unknown, or a state is
+def add_noise_level(entry, fm, frame_ps, reweighted, *, warn=True, state_frames=None):
+    """``heldout_fisher_ratio_noise`` (:func:`heldout_noise_level`, from `state_frames`, per
+    state the time in frames its mean varies by, or else the CV's ``integrated_time_ps``
+    for every state; None when the time or the frame spacing is unknown, or a state is
     reweighted: its counts are weights, not frames) and, when `warn`, a warning when the
     held-out Fisher ratio is below :data:`NOISE_LEVEL_FACTOR` times it. Returns whether it
     warned."""
     tau_ps = entry.get("integrated_time_ps")
     level = None
     if tau_ps is not None and frame_ps and not reweighted:
-        level = heldout_noise_level(fm, tau_ps / frame_ps)
+        times = np.full(fm.n_states, tau_ps / frame_ps)
+        if state_frames is not None:  # a state without its own time keeps the CV's
+            own = np.asarray(state_frames, dtype=np.float64)
+            times = np.where(np.isfinite(own), own, times)
+        level = heldout_noise_level(fm, times)
     entry["heldout_fisher_ratio_noise"] = level
     j = entry["heldout_fisher_ratio"]
     if not warn or level is None or not j < NOISE_LEVEL_FACTOR * level:
@@ -674,7 +682,8 @@ def add_noise_level(entry, fm, frame_ps, reweighted, *, warn=True):
     entry["warnings"].append(
         f"its held-out Fisher ratio ({j:.3g}) is less than {NOISE_LEVEL_FACTOR:g} times "
         f"what noise alone gives a fixed direction with these runs ({level:.3g}, from the "
-        f"CV's integrated time, {tau_ps:.3g} ps, and each fold's frames): the states may not "
+        f"CV's integrated times in the states, or the scatter of their run means when "
+        f"larger, and each fold's frames): the states may not "
         "differ along it at all, since the search keeps the best of many held-out scores, "
         "which lifts the best above that level; give more or longer runs before trusting "
         "it")

@@ -499,8 +499,10 @@ def _suggest(source, config, executor, progress, checksums):
         _add_times(entry, longest_run_ps, longest_visit, cv_times[rank - 1], frame_ps,
                    source.states)
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
+        own = cv_times[rank - 1]
         if add_noise_level(entry, fm, frame_ps, reweighting is not None,
-                           warn=config.objective != "slow"):
+                           warn=config.objective != "slow",
+                           state_frames=None if own is None else own[5]):
             noisy.append(rank)
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs,
                                             from_biased_runs=reweighting is not None)

@@ -16,7 +16,7 @@ from ..io.source import stores_time
 from ..passes import Pass
 
 __all__ = ["read_timesteps", "lag_frames", "iat_lags", "integrated_time", "local_autocorrelation",
-           "longest_visit_ps", "runs_too_short", "state_integrated_times", "slowest_state_times",
+           "longest_visit_ps", "runs_too_short", "state_integrated_times", "slowest_state_times", "scatter_times",
            "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments",
            "bias_times"]
 
@@ -360,12 +360,22 @@ def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
     >>> runs_too_short(runs, {0: [1.0]}, 1).tolist(), runs_too_short(runs, {0: [500.0]}, 1).tolist()
     ([True], [False])
     """
+    out = np.zeros(n_features, dtype=bool)
+    for s, (tau, q, dof) in _run_scatter(runs, tau_frames, n_features, skip_states).items():
+        out |= (np.isfinite(tau) & (q > dof + 5.0 * math.sqrt(2.0 * dof) + 10.0)
+                & (q > 3.0 * dof))
+    return out
+
+
+def _run_scatter(runs, tau_frames, n_features, skip_states=()):
+    """Per state of two or more runs (not in `skip_states`): ``(tau, Q, dof)``, the chi-square
+    statistic of :func:`runs_too_short` of its run means against the time `tau` (frames)."""
     skip = set(skip_states)
     by_state = {}
     for (_, s), m in sorted(runs.items()):
         if m.count > 0 and s not in skip and s in tau_frames:
             by_state.setdefault(s, []).append(m)
-    out = np.zeros(n_features, dtype=bool)
+    out = {}
     with np.errstate(divide="ignore", invalid="ignore"):
         for s, ms in by_state.items():
             dof = len(ms) - 1
@@ -379,8 +389,47 @@ def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
             w = n / (2.0 * np.maximum(tau, 0.5))  # sigma^2 / var(run mean)
             centre = (w * means).sum(axis=0) / w.sum(axis=0)
             q = np.where(sigma2 > 0, (w * (means - centre) ** 2).sum(axis=0) / sigma2, 0.0)
-            out |= (np.isfinite(tau) & (q > dof + 5.0 * math.sqrt(2.0 * dof) + 10.0)
-                    & (q > 3.0 * dof))
+            out[s] = (tau, q, dof)
+    return out
+
+
+def scatter_times(runs, tau_frames, n_features, *, skip_states=()):
+    """Per state, the time (frames) a mean of its frames varies by: the integrated time, or
+    the one its run means' scatter implies when longer.
+
+    With ``Q`` the chi-square statistic of :func:`runs_too_short` (the run means' scatter
+    over what the time `tau` allows, ``dof`` = runs - 1), the scatter implies ``tau Q /
+    dof``: runs that each sit at an offset of their own (unequilibrated) make a state's
+    mean vary more than its frames' correlation alone says. States of one run, or in
+    `skip_states`, keep `tau`.
+
+    Parameters
+    ----------
+    runs : dict of (int, int) to DiagonalLaggedMoments
+        Per (segment, state), lagged moments of one lag (as :func:`runs_too_short` takes).
+    tau_frames : dict of int to array-like of shape (n_features,)
+        Per state, the integrated times within its runs, frames.
+    n_features : int
+    skip_states : iterable of int, default=()
+
+    Returns
+    -------
+    dict of int to ndarray of shape (n_features,)
+
+    Examples
+    --------
+    >>> from cvdesign.stats.moments import DiagonalLaggedMoments
+    >>> rng = np.random.default_rng(0)
+    >>> x = rng.normal(size=(3, 2000)) + np.array([[-1.0], [0.0], [1.0]])  # three offsets
+    >>> runs = {(r, 0): DiagonalLaggedMoments.from_series(x[r][:, None], lag=1)
+    ...         for r in range(3)}
+    >>> float(scatter_times(runs, {0: [0.5]}, 1)[0][0]) > 100  # far above half a frame
+    True
+    """
+    out = {s: np.asarray(t, dtype=np.float64).reshape(n_features)
+           for s, t in tau_frames.items()}
+    for s, (tau, q, dof) in _run_scatter(runs, tau_frames, n_features, skip_states).items():
+        out[s] = np.fmax(tau, np.maximum(tau, 0.5) * q / dof)
     return out
 
 
