@@ -138,7 +138,7 @@ def _add_suggest_options(p):
                         "distance is below this in at least one state, and up to 100 farther "
                         "pairs that separate the states better than any of those; with "
                         "--runs, the states' proposal keeps a pair that comes below it in "
-                        "some frame (default: 1.0 nm)")
+                        "at least 2%% of the frames (default: 1.0 nm)")
     p.add_argument("--coordination-r0", type=_positive_float, default=COORDINATION_R0_NM,
                    metavar="NM",
                    help="switching distance of the coordination numbers in nm: a pair of atoms "

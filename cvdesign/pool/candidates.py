@@ -6,7 +6,7 @@ Candidates come from an atom selection:
   apart (1-2 and 1-3 pairs are nearly rigid, or an angle in disguise), kept
   when the pair's mean distance is below a cutoff in at least one state
   (:func:`prefilter_pairs`; with a single state, runs whose states are not known
-  yet, when it comes below the cutoff in some frame);
+  yet, when it comes below the cutoff in at least 2 % of the frames);
 * bond angles over every bonded triple of selected atoms;
 * one dihedral per rotatable bond: a bond between selected atoms that both
   have another selected neighbour and that is not in a small ring (of up to
@@ -365,7 +365,8 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
     """Keep a pair if its mean distance over some state is below `cutoff`, or if it
     separates the states better than every such pair (at most :data:`MAX_RESCUED_PAIRS`
     of those; see :func:`_separating_beyond_cutoff`). With a single state, a pair that
-    comes below `cutoff` in some frame read (:func:`_within_cutoff`).
+    comes below `cutoff` in at least :data:`MIN_FRACTION_BELOW` of the frames read
+    (:func:`_within_cutoff`).
 
     The means are taken over every `stride`-th frame, which keeps this pass
     cheap; the stride counts each state's frames within each file.
@@ -404,15 +405,16 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = remap[pairs]
-    means, variances, minima, n_frames = _strided_state_means(
+    means, variances, below, n_frames = _strided_state_means(
         source, atoms, _PairDistances(local, max_numbers), len(local), stride,
-        label="prefilter", executor=executor)
-    keep = _within_cutoff(means, minima, cutoff)
+        label="prefilter", executor=executor, cutoff=cutoff)
+    keep = _within_cutoff(means, below, cutoff)
     n_below = int(keep.sum())
     rescued = _separating_beyond_cutoff(means, variances, keep)
     keep[rescued] = True
     rule = (f"with a mean below {cutoff:g} nm in at least one state" if means.shape[0] > 1
-            else "that come " + _SINGLE_STATE_RULE.format(cutoff=cutoff))
+            else "that come " + _SINGLE_STATE_RULE.format(cutoff=cutoff,
+                                                          fraction=MIN_FRACTION_BELOW))
     note = (
         f"distances: kept {n_below} of {pairs.shape[0]} pairs {rule}, dropped "
         f"{int((~keep).sum())} ({'means ' if means.shape[0] > 1 else ''}over every "
@@ -429,32 +431,38 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
 MAX_RESCUED_PAIRS = 100
 
 
-def _within_cutoff(means, minima, cutoff):
+#: With a single state, the prefilter keeps a pair below the cutoff in at least this fraction
+#: of the frames read (our choice: a contact of a state that holds a fiftieth of the frames
+#: or more; one frame alone would make the pool depend on the stride and the runs' length).
+MIN_FRACTION_BELOW = 0.02
+
+
+def _within_cutoff(means, below, cutoff):
     """Which pairs the prefilter keeps for being near `cutoff` (nm).
 
     With labelled states: a mean below `cutoff` in at least one state. With a single state
     (runs whose states are not known yet, :func:`~cvdesign.pipeline.explore.propose_states`)
     a mean over it would mix the states the runs visit, and a contact formed in one of
     them only (a fifth of the frames at 0.4 nm, the rest at 2 nm: a mean of 1.7 nm) would be
-    dropped with the slow process it marks: a pair is kept when it comes below `cutoff` in
-    some frame read.
+    dropped with the slow process it marks: a pair is kept when it is below `cutoff` in at
+    least :data:`MIN_FRACTION_BELOW` of the frames read (`below`: that fraction, per state).
 
     Examples
     --------
-    >>> means, minima = np.array([[1.7, 0.5, 1.8]]), np.array([[0.4, 0.3, 1.5]])
-    >>> _within_cutoff(means, minima, 1.0)
+    >>> means, below = np.array([[1.7, 0.5, 1.8]]), np.array([[0.2, 0.9, 0.01]])
+    >>> _within_cutoff(means, below, 1.0)
     array([ True,  True, False])
-    >>> _within_cutoff(np.vstack([means, means]), np.vstack([minima, minima]), 1.0)
+    >>> _within_cutoff(np.vstack([means, means]), np.vstack([below, below]), 1.0)
     array([False,  True, False])
     """
     if means.shape[0] == 1:
-        return minima[0] < cutoff
+        return below[0] >= MIN_FRACTION_BELOW
     return (means < cutoff).any(axis=0)
 
 
 #: How the prefilter notes say the rule of a single state (:func:`_within_cutoff`).
-_SINGLE_STATE_RULE = ("below {cutoff:g} nm in some frame (a single state: a mean over it "
-                      "would mix the states the runs visit)")
+_SINGLE_STATE_RULE = ("below {cutoff:g} nm in at least {fraction:.0%} of the frames (a single "
+                      "state: a mean over it would mix the states the runs visit)")
 
 
 def _separating_beyond_cutoff(means, variances, keep):
@@ -605,15 +613,17 @@ def _frames_read(source, step):
     return total
 
 
-def _accumulate(blocks, weights, sums, squares, minima):
+def _accumulate(blocks, weights, sums, squares, below, cutoff):
     """Add the column sums and sums of squares (weighted by `weights`, one per frame, when
     given) of ``(first column, values)`` blocks into `sums` and `squares` (float64), and
-    lower `minima` to the columns' smallest values, block by block: memory of one block,
+    add to `below` the frames whose value is below `cutoff` (None: not counted), block by
+    block: memory of one block,
     not of every value at once."""
     for lo, vals in blocks:
         v = vals.astype(np.float64)
         hi = lo + v.shape[1]
-        np.minimum(minima[lo:hi], v.min(axis=0), out=minima[lo:hi])
+        if cutoff is not None:
+            below[lo:hi] += np.count_nonzero(v < cutoff, axis=0)
         if weights is None:
             sums[lo:hi] += v.sum(axis=0)
             squares[lo:hi] += np.einsum("ij,ij->j", v, v)
@@ -657,10 +667,10 @@ class _CenterDistances:
 class _MeansContext:
     """What every task of the prefilter shares (sent to each worker once)."""
 
-    def __init__(self, source, atoms, values, n_values, stride, strided, weights):
+    def __init__(self, source, atoms, values, n_values, stride, strided, weights, cutoff=None):
         self.source, self.atoms, self.values = source, atoms, values
         self.n_values, self.stride, self.strided = n_values, stride, strided
-        self.weights = weights
+        self.weights, self.cutoff = weights, cutoff
 
 
 class _SegmentTask:
@@ -682,7 +692,7 @@ def _segment_sums(ctx, task, tick=None):
     n_states = len(source.states)
     sums = np.zeros((n_states, ctx.n_values))
     squares = np.zeros((n_states, ctx.n_values))
-    minima = np.full((n_states, ctx.n_values), np.inf)
+    below = np.zeros((n_states, ctx.n_values), dtype=np.int64)
     counts = np.zeros(n_states)
     used = np.zeros(n_states, dtype=np.int64)
     weights = ctx.weights.get(task.segment)
@@ -696,7 +706,8 @@ def _segment_sums(ctx, task, tick=None):
         used[s] += sub.n_frames
         w = None if weights is None else weights[frames[rows]]
         counts[s] += sub.n_frames if w is None else w.sum()
-        _accumulate(ctx.values.blocks(sub, periodic), w, sums[s], squares[s], minima[s])
+        _accumulate(ctx.values.blocks(sub, periodic), w, sums[s], squares[s], below[s],
+                    ctx.cutoff)
 
     read = 0
     if ctx.strided:
@@ -724,11 +735,11 @@ def _segment_sums(ctx, task, tick=None):
             read += chunk.frames.size
             if tick is not None:
                 tick(chunk.frames.size)
-    return sums, squares, minima, counts, used, read
+    return sums, squares, below, counts, used, read
 
 
 def _strided_state_means(source, atoms, values, n_values, stride, label="prefilter",
-                         executor=None):
+                         executor=None, cutoff=None):
     """Per-state means and variances of ``values.blocks(sub_trajectory, periodic)`` (blocks
     ``(first column, (n_frames, n_columns) values)`` of `n_values` columns) over
     every `stride`-th frame of each state in each file, reading only `atoms`.
@@ -739,19 +750,20 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
     One task per segment (on `executor`, an object with ``run(fn, context, items)``
     as in :mod:`cvdesign.parallel`; None: in this process); the segments' sums are
     added in segment order, so the means are the same bytes on every executor.
-    Returns (means, variances and minima, each of shape (n_states, n_values), and the
-    number of frames used). The frames read advance a progress bar labelled `label`
+    Returns (means, variances and the fraction of the frames used whose value is below
+    `cutoff` (zeros without one), each of shape (n_states, n_values), and the number of
+    frames used). The frames read advance a progress bar labelled `label`
     (:mod:`cvdesign.progress`).
     """
     reweighting = source.reweighting()
     strided = stride > 1 and all(seg.labels is None and (seg.start or 0) % stride == 0
                                  for seg in source.segments)
     ctx = _MeansContext(source, atoms, values, n_values, stride, strided,
-                        {} if reweighting is None else dict(reweighting.weights))
+                        {} if reweighting is None else dict(reweighting.weights), cutoff)
     tasks = [_SegmentTask(i, i, str(seg.path)) for i, seg in enumerate(source.segments)]
     sums = np.zeros((source.n_states, n_values))
     squares = np.zeros((source.n_states, n_values))
-    minima = np.full((source.n_states, n_values), np.inf)
+    below = np.zeros((source.n_states, n_values), dtype=np.int64)
     counts = np.zeros(source.n_states)
     frames_used = np.zeros(source.n_states, dtype=np.int64)
     with progress.bar(label, lambda: _frames_read(source, stride if strided else 1)) as shown:
@@ -770,10 +782,10 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
                 shown.update(result[-1])
             pending[number] = result
             while nxt in pending:  # added in segment order, whatever order they arrive in
-                seg_sums, seg_squares, seg_minima, seg_counts, seg_used, _ = pending.pop(nxt)
+                seg_sums, seg_squares, seg_below, seg_counts, seg_used, _ = pending.pop(nxt)
                 sums += seg_sums
                 squares += seg_squares
-                np.minimum(minima, seg_minima, out=minima)
+                below += seg_below
                 counts += seg_counts
                 frames_used += seg_used
                 nxt += 1
@@ -785,7 +797,8 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
         )
     means = sums / counts[:, None]
     variances = np.maximum(squares / counts[:, None] - means * means, 0.0)
-    return means, variances, minima, int(frames_used.sum())
+    fraction = below / np.maximum(frames_used, 1)[:, None]
+    return means, variances, fraction, int(frames_used.sum())
 
 
 def residue_groups(topology, atoms):
@@ -861,16 +874,16 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
     remap = np.full(int(atoms.max()) + 1, -1, dtype=np.intp)
     remap[atoms] = np.arange(atoms.size)
     local = [remap[np.asarray(g, dtype=np.intp)] for g in groups]
-    means, variances, minima, n_frames = _strided_state_means(
+    means, variances, below, n_frames = _strided_state_means(
         source, atoms, _CenterDistances(local, pairs, masses, max_numbers), len(pairs), stride,
-        label="prefilter (residues)", executor=executor)
-    keep = _within_cutoff(means, minima, cutoff)
+        label="prefilter (residues)", executor=executor, cutoff=cutoff)
+    keep = _within_cutoff(means, below, cutoff)
     n_below = int(keep.sum())
     rescued = _separating_beyond_cutoff(means, variances, keep)
     keep[rescued] = True
     rule = (f"with a mean center distance below {cutoff:g} nm in at least one state"
             if means.shape[0] > 1 else "whose centers come " +
-            _SINGLE_STATE_RULE.format(cutoff=cutoff))
+            _SINGLE_STATE_RULE.format(cutoff=cutoff, fraction=MIN_FRACTION_BELOW))
     note = (f"group pairs: kept {n_below} of {len(pairs)} {rule} (every {_ordinal(stride)} "
             f"frame, {n_frames} frames)") + _rescue_note(
                 rescued, means, variances, cutoff, source.states,
@@ -885,7 +898,7 @@ def build_pool(source, *, selection=None, kinds=DEFAULT_KINDS, cutoff=1.0, strid
 
     Distances are kept when their mean over some state is below `cutoff` (with
     a single state, runs whose states are not known yet: when they come below
-    it in some frame read), and beyond it up to :data:`MAX_RESCUED_PAIRS` (100)
+    it in at least 2 % of the frames read), and beyond it up to :data:`MAX_RESCUED_PAIRS` (100)
     far pairs that separate the states better than every pair below it; the
     group kinds by the same rule on the residues' mass centers. A selection
     whose atom pairs (or, for the group kinds, residue pairs) exceed
