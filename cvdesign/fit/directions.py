@@ -394,9 +394,7 @@ def rayleigh_quotients(w, means, covariances, priors):
     centred = proj - (proj * priors).sum(axis=-1, keepdims=True)
     num = (priors * centred ** 2).sum(axis=-1)
     den = (priors * quadratic_forms(w[..., None, :], covs)).sum(axis=-1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = num / den
-    return np.where(den <= 0, np.where(num > 0, np.inf, 0.0), out)
+    return _ratio(num, den)
 
 
 def _harmonic_within(covariances, priors, shrinkage):
@@ -500,15 +498,22 @@ def discriminant_directions(means, covariances, priors, *, shrinkage=0.0, within
     return evals, fix_signs(evecs / norms)
 
 
+def _ratio(num, den):
+    """``num / den``, inf where only the numerator is positive and 0 where neither is (a
+    direction without within-state spread), NaN where either is NaN: the Fisher ratios'
+    convention."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = num / den
+    return np.where(den <= 0, np.where(num > 0, np.inf, 0.0), out)
+
+
 def _quotients(vectors, between, within):
     """``(w^T S_b w) / (w^T S_w w)`` of each column `w` of `vectors`, as
     :func:`rayleigh_quotient` (inf where only the numerator is positive, 0 where
     neither is)."""
     num = np.einsum("ij,ik,kj->j", vectors, between, vectors)
     den = np.einsum("ij,ik,kj->j", vectors, within, vectors)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = num / den
-    return np.where(den <= 0, np.where(num > 0, np.inf, 0.0), out)
+    return _ratio(num, den)
 
 
 def rayleigh_quotient(w, means, covariances, priors, *, within="arithmetic", shrinkage=0.0):
