@@ -117,7 +117,9 @@ def test_per_frame_labels_give_the_same_statistics_as_files_per_state(demo_files
     # equal up to the last bits of the sums
     _assert_close(r1.ranking[0]["terms"], r2.ranking[0]["terms"])
     _assert_close(r1.ranking[0]["states"], r2.ranking[0]["states"])
-    assert any("contiguous blocks" in n for n in r1.notes)
+    note = next(n for n in r1.notes if "contiguous blocks" in n)
+    # blocks that border each other leak slow motions into the held-out frames: said
+    assert "the held-out scores are somewhat optimistic" in note
 
 
 def test_only_one_state_is_refused(demo_files):
