@@ -592,8 +592,8 @@ _REPR_WIDTH, _REPR_TERM_WIDTH, _REPR_TERMS = 100, 72, 3
 _TOP_LEGEND = ("Held-out J: Fisher ratio (between-state over within-state variance of the CV, "
                "dimensionless) on frames not used to fit it, ± its standard error over "
                "the folds; overlap: 0 = states fully separated along the CV, 1 = identical; "
-               "autocorr.: held-out normalized autocorrelation at the lag; intervals: 95 % "
-               "block bootstrap; selection: fraction of bootstrap refits keeping the "
+               "autocorr.: held-out normalized autocorrelation at the lag; intervals: nominal "
+               "95 % block bootstrap; selection: fraction of bootstrap refits keeping the "
                "descriptor. Every column: summary.md and ranking.csv of the output directory.")
 
 

@@ -649,7 +649,7 @@ def term_weights(name, label, terms):
         left.axvline(0.0, color="black", lw=0.6)
         left.set_yticks(y, [_shorten(v) for v in labels])
         left.set_xlabel("weight on the standardized term\n(CV units per term std)")
-        left.set_title("weights (black: 95 % bootstrap interval)")
+        left.set_title("weights (black: nominal 95 % bootstrap interval)")
         if all(f is None for f in freq):
             _no_data(right, "selection frequency not measured\n(no bootstrap refits)")
         else:
@@ -659,8 +659,8 @@ def term_weights(name, label, terms):
         right.set_title("how often refits keep the term")
         data = {"labels": labels, "weights": weights, "weight_ci": cis,
                 "selection_frequency": freq}
-        alt = (f"{label}: weight of each term with its 95 % interval, and how often bootstrap "
-               "refits keep it: " + "; ".join(
+        alt = (f"{label}: weight of each term with its nominal 95 % interval, and how often "
+               "bootstrap refits keep it: " + "; ".join(
                    f"{lab} {w:+.3g}" + (f" [{ci[0]:+.3g}, {ci[1]:+.3g}]"
                                         if ci and None not in ci else "")
                    + ("" if f is None else f", selected in {f:.0%}")
@@ -716,7 +716,7 @@ def pool_scores(rows, *, lag_ps=None, n=POOL_ROWS):
             left.set_xscale("log")
         left.set_yticks(y, [_shorten(v, 36) for v in labels])
         left.set_xlabel("Fisher ratio (dimensionless" + (", log scale)" if log_fisher else ")"))
-        left.set_title("separation of the states (black: 95 % interval)")
+        left.set_title("separation of the states (black: nominal 95 % interval)")
         lag = "" if lag_ps is None else f" at {lag_ps:g} ps"
         if all(v is None for v in rho):
             _no_data(right, "slowness not measured (no lag)")
@@ -734,7 +734,8 @@ def pool_scores(rows, *, lag_ps=None, n=POOL_ROWS):
                 "autocorrelation_ci": [r.get("autocorrelation_ci") for r in top],
                 "log_fisher": log_fisher}
         alt = (f"The best {len(top)} descriptors of the score card: Fisher ratio and "
-               f"autocorrelation{lag} with 95 % intervals; the best is {labels[0] if labels else 'none'}"
+               f"autocorrelation{lag} with nominal 95 % intervals; the best is "
+               f"{labels[0] if labels else 'none'}"
                f" (Fisher ratio {_fmt(fisher[0] if fisher else None)}).")
         caption = (f"The pool: the best {len(top)} descriptors of the score card (best "
                    "separating first), how well each separates the states (Fisher ratio) and "
