@@ -441,6 +441,15 @@ def test_a_funnel_longer_than_half_the_systems_box_is_refused(tmp_path, capsys):
                  str(tmp_path / "restraint.xml"), "--system", str(system)]) == 2
     assert "more than half the smallest height" in capsys.readouterr().err
     assert sorted(tmp_path.iterdir()) == before
+    # a System whose box was never set: the default box is named before the refusal
+    unset = tmp_path / "unset.xml"
+    unset.write_text(openmm.XmlSerializer.serialize(_system(7, True, box=None)))
+    assert main(["export", str(tmp_path / "funnel.json"), "--to", "openmm",
+                 "--out", str(tmp_path / "cv.xml"), "--restraint-out",
+                 str(tmp_path / "restraint.xml"), "--system", str(unset)]) == 2
+    err = capsys.readouterr().err
+    assert err.index("box is OpenMM's default, a 2 nm cube") < err.index(
+        "more than half the smallest height of the openmm.System's box (1 nm)")
     # --periodic without a System: the box the run needs is said once, as a warning
     assert main(["export", str(tmp_path / "funnel.json"), "--to", "openmm",
                  "--out", str(tmp_path / "cv.xml"), "--restraint-out",

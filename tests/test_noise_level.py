@@ -19,9 +19,11 @@ from cvdesign import Source, suggest
 from cvdesign.pipeline.ranking import NOISE_LEVEL_FACTOR
 
 
-def _runs(directory, shift_nm, seed):
-    """Twelve atoms jittering about fixed places (AR(1), 0.95 per 1 ps frame, 0.02 nm), two
-    runs of 1500 frames per state; state B has atom C1 moved by `shift_nm` along x."""
+def _runs(directory, shift_nm, seed, n_runs=2, run_offset_nm=0.0):
+    """Twelve atoms jittering about fixed places (AR(1), 0.95 per 1 ps frame, 0.02 nm),
+    `n_runs` runs of 1500 frames per state, each run's atoms displaced by an offset of its
+    own (normal, `run_offset_nm`: runs that are not equilibrated); state B has atom C1
+    moved by `shift_nm` along x."""
     rng = np.random.default_rng(seed)
     top = md.Topology()
     res = top.add_residue("TOY", top.add_chain())
@@ -30,9 +32,11 @@ def _runs(directory, shift_nm, seed):
     base = rng.uniform(0.0, 1.2, size=(12, 3))
     files = {}
     for state in ("A", "B"):
-        for r in range(2):
+        for r in range(n_runs):
             noise = lfilter([1.0], [1.0, -0.95], rng.normal(size=(1500, 36)), axis=0)
             xyz = base + 0.02 * np.sqrt(1 - 0.95 ** 2) * noise.reshape(1500, 12, 3)
+            if run_offset_nm:
+                xyz += rng.normal(0.0, run_offset_nm, size=(1, 12, 3))
             if state == "B":
                 xyz[:, 0, 0] += shift_nm
             path = directory / f"{state}{r}.xtc"
@@ -44,8 +48,8 @@ def _runs(directory, shift_nm, seed):
     return str(pdb), files
 
 
-def _suggest(directory, shift_nm, seed=3):
-    top, files = _runs(directory, shift_nm, seed)
+def _suggest(directory, shift_nm, seed=3, **runs):
+    top, files = _runs(directory, shift_nm, seed, **runs)
     return suggest(Source.from_states(top, files), kinds=("distance",), max_terms=2,
                    n_suggestions=3, n_bootstrap=0)
 
@@ -93,6 +97,18 @@ def test_the_noise_level_is_the_held_out_ratio_of_a_fixed_direction_on_null_data
     assert level == pytest.approx(np.sum(priors * (1 - priors) * 2 * tau / np.array(frames)))
     se = np.std(scores) / np.sqrt(len(scores))
     assert abs(np.mean(scores) - level) < 4 * se + 0.1 * level
+
+
+def test_runs_each_at_an_offset_of_their_own_are_warned_about(tmp_path):
+    # one law in both states, but every run displaced by its own offset (sd 0.02 nm): the
+    # states' means vary with their runs far more than the frames' correlation says, and
+    # the held-out ratio of rank 1 was 44 times a level from the integrated times alone
+    res = _suggest(tmp_path, 0.0, seed=3, n_runs=3, run_offset_nm=0.02)
+    first = res.ranking[0]
+    assert any("less than 10 times what noise alone gives" in w for w in first["warnings"])
+    # three folds of one run per state: the states' own times alone give at most
+    # 2 (1/4) 2 tau / 1500 with tau the slower state's; the runs' scatter lifts it above
+    assert first["heldout_fisher_ratio_noise"] > first["integrated_time_ps"] / 1500
 
 
 def test_states_that_differ_are_not_warned_about(tmp_path):

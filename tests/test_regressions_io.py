@@ -167,16 +167,23 @@ def test_prefilter_of_a_single_state_keeps_the_pairs_that_come_below_the_cutoff(
         src.add(f, "runs")
     d = np.concatenate([_numpy_distances(f, top, demo_pairs)[::10] for f in files])
     mean = d.mean(axis=0)
-    # a cutoff in the widest gap of the 5th percentiles, away from the extremes (float32
-    # reading): every pair is then below it in at least 5 % of the frames, or in under 2 %
+    # a cutoff in the widest gap of the 5th percentiles, away from the extremes; the rule
+    # (below it in at least 2 % of the 400 frames read) checked on the pairs whose count is
+    # not within a frame of 2 % and whose distances are not within 1e-5 nm of the cutoff
+    # (float32 reading)
     low = np.percentile(d, 5, axis=0)
     srt = np.sort(low)
     gaps = np.diff(srt)
     i = 5 + int(np.argmax(gaps[5:-5]))
     cutoff = 0.5 * (srt[i] + srt[i + 1])
     fraction = (d < cutoff).mean(axis=0)
+    clear = (np.abs(fraction - 0.02) > 1.5 / d.shape[0]) & (np.abs(d - cutoff).min(axis=0)
+                                                              > 1e-5)
+    assert clear.sum() > 0.8 * clear.size
     kept, note = prefilter_pairs(demo_pairs, src, cutoff=cutoff, stride=10)
-    assert kept.tolist() == demo_pairs[fraction >= 0.02].tolist()
+    kept_set = {tuple(p) for p in kept.tolist()}
+    assert [tuple(p) in kept_set for p in demo_pairs[clear].tolist()] == \
+        (fraction[clear] >= 0.02).tolist()
     assert ((fraction >= 0.02) & (mean >= cutoff)).any()  # pairs the mean alone had dropped
     assert (f"pairs that come below {cutoff:g} nm in at least 2% of the frames (a single "
             "state: a mean over it would mix the states the runs visit)") in note

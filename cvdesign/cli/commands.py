@@ -1539,13 +1539,13 @@ def _cmd_export(args):
     openmm = import_openmm()
     system = read_system(args.system) if args.system else None
     box_message = None if system is None else default_box_message(system)
+    if box_message is not None:  # (said first: a refusal below may follow from it)
+        _log.warning("--system %s: %s", args.system, box_message)
     with warnings.catch_warnings(record=True) as said:  # the library warns per force;
         warnings.simplefilter("always")                    # each said once here instead
         forces = [spec.to_openmm(args.periodic, system=system)]
         if args.restraint_out is not None:
             forces.append(spec.restraint_to_openmm(args.periodic, system=system))
-    if box_message is not None:
-        _log.warning("--system %s: %s", args.system, box_message)
     for text in dict.fromkeys(str(w.message) for w in said):
         if text != box_message:
             _log.warning("%s", text)

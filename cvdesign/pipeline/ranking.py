@@ -608,7 +608,7 @@ def _rigid_cv_warnings(state_stats, j_all, heldout):
 #: A ranked CV whose held-out Fisher ratio is below this many times
 #: :func:`heldout_noise_level` gets a warning: the search keeps the best of thousands of
 #: held-out scores, which lifts the best above the level of one fixed direction (our
-#: choice: with two states drawn from one distribution, the best came 3 to 10 times that
+#: choice: with two states drawn from one distribution, the best came 3 to 11 times that
 #: level in our tests, two or three runs per state; a rough screen, not a test: a null
 #: case can pass it, and a weak real difference can be warned about).
 NOISE_LEVEL_FACTOR = 10.0
@@ -630,9 +630,10 @@ def heldout_noise_level(fm, tau_frames):
     fm : cvdesign.search.FoldMoments
         Per state and fold moments (their counts are the held-out frames).
     tau_frames : float or array-like of shape (n_states,)
-        The time a state's mean varies by, frames: its integrated time, or what its run
-        means' scatter implies when longer (:func:`~cvdesign.pipeline.timing.scatter_times`);
-        one value for every state, or one per state.
+        The time a state's mean varies by, frames: its integrated time, times how much more
+        its run means scatter than that allows
+        (:func:`~cvdesign.pipeline.timing.scatter_factors`); one value for every state, or
+        one per state.
 
     Returns
     -------
@@ -682,8 +683,8 @@ def add_noise_level(entry, fm, frame_ps, reweighted, *, warn=True, state_frames=
     entry["warnings"].append(
         f"its held-out Fisher ratio ({j:.3g}) is less than {NOISE_LEVEL_FACTOR:g} times "
         f"what noise alone gives a fixed direction with these runs ({level:.3g}, from the "
-        f"CV's integrated times in the states, or the scatter of their run means when "
-        f"larger, and each fold's frames): the states may not "
+        f"CV's integrated times in the states, the scatter of their run means, and each "
+        f"fold's frames): the states may not "
         "differ along it at all, since the search keeps the best of many held-out scores, "
         "which lifts the best above that level; give more or longer runs before trusting "
         "it")

@@ -46,8 +46,8 @@ from ..passes import FeaturePass, LagGridPass, frame_keys, group_rows, thinning_
 from ..score.card import integrated_time_interval
 from ..stats.moments import DiagonalLaggedMoments
 from .output import run_file_names
-from .timing import (local_autocorrelation, runs_too_short, scatter_times,
-                     slowest_state_times, state_integrated_times)
+from .timing import (local_autocorrelation, runs_too_short, slowest_state_times,
+                     state_integrated_times)
 
 __all__ = ["MAX_TRACE_POINTS", "RANGE_STDS", "BINS_PER_STD", "MIN_BINS", "MAX_BINS", "CVPlan",
            "CVBlockHistograms", "CVReportPass", "CVLaggedPass", "CVGridPass", "cv_plans",
@@ -605,8 +605,7 @@ def cv_integrated_times(results, lags, dt_ps, state_frames, *, grid=None, skip_s
         window (False: the time is a lower bound; also when the runs are too short
         for it, :func:`~cvdesign.pipeline.timing.runs_too_short`), the 95 %
         interval (ps; None when it did not decay), whether the runs were too short
-        for it, the state it is the time of, and per state the time (frames) a mean of
-        its frames varies by (:func:`~cvdesign.pipeline.timing.scatter_times`; NaN for
+        for it, the state it is the time of, and per state its own time (frames; NaN for
         a state without runs); None for a CV without pairs at the first lag.
     """
     lags = np.asarray(lags, dtype=np.intp)
@@ -620,18 +619,17 @@ def cv_integrated_times(results, lags, dt_ps, state_frames, *, grid=None, skip_s
     tau, decayed, window, state = slowest_state_times(per_state, n)
     short = np.zeros(n, dtype=bool)
     in_frames = {s: v[0] / dt_ps for s, v in per_state.items()}
-    noise = np.full((len(state_frames), n), np.nan)  # per state: what a mean varies by
+    own = np.full((len(state_frames), n), np.nan)  # per state, frames
+    for s, t in in_frames.items():
+        own[s] = t
     if len(lags) and int(lags[0]) == 1:  # runs too short for the time: a lower bound
         short = runs_too_short(kept[0], in_frames, n, skip_states=skip_states) & decayed
         decayed = decayed & ~short
-        in_frames = scatter_times(kept[0], in_frames, n, skip_states=skip_states)
-    for s, t in in_frames.items():
-        noise[s] = t
     frames = np.asarray(state_frames, dtype=np.float64)[np.maximum(state, 0)]
     lo, hi = integrated_time_interval(tau, window, np.maximum(frames, 1.0))
     return [None if not np.isfinite(tau[c]) else
             (float(tau[c]), bool(decayed[c]), [float(lo[c]), float(hi[c])] if decayed[c] else None,
-             bool(short[c]), int(state[c]), noise[:, c].tolist())
+             bool(short[c]), int(state[c]), own[:, c].tolist())
             for c in range(n)]
 
 

@@ -66,7 +66,8 @@ from .specs import InputChecksums, SourceRecord, describe_inputs, spec_document
 from .transitions import gather_transitions, transition_columns, transition_intervals
 from .timing import (EvenSpacingPass, bias_times, block_frames, checked_segments, iat_lags,
                      lag_frames, longest_run_text, longest_visit_ps, read_timesteps,
-                     runs_too_short, slowest_state_times, state_integrated_times)
+                     runs_too_short, scatter_factors, slowest_state_times,
+                     state_integrated_times)
 
 __all__ = ["suggest", "SuggestConfig", "Suggestions", "CAUTION", "is_output_file"]
 
@@ -416,7 +417,7 @@ def _suggest(source, config, executor, progress, checksums):
     notes += screening.notes
     notes.append(_folds_note(folds, config.n_folds))
     say(f"statistics pass ({len(screening.screened)} descriptors screened)")
-    fm, iat_desc, iat_note, transit = _statistics_pass(
+    fm, iat_desc, iat_note, transit, scatter = _statistics_pass(
         source, base, pool, screening, folds, priors, steps, lags, lag_ps, seg_counts, config,
         executor, reweighting)
     notes += iat_note
@@ -502,8 +503,11 @@ def _suggest(source, config, executor, progress, checksums):
         own = cv_times[rank - 1]
         if add_noise_level(entry, fm, frame_ps, reweighting is not None,
                            warn=config.objective != "slow",
-                           state_frames=None if own is None else own[5]):
+                           state_frames=None if own is None else [
+                               t * scatter.get(s, 1.0) for s, t in enumerate(own[5])]):
             noisy.append(rank)
+        if entry.get("timescale_resolved") and _offsets_hold_autocorrelation(entry):
+            entry["timescale_resolved"] = False
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs,
                                             from_biased_runs=reweighting is not None)
         if refused:
@@ -557,7 +561,9 @@ def _lag_grid(steps, seg_counts):
 
 def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, lag_ps,
                      seg_counts, config, executor, reweighting=None):
-    """Fold moments (full and lagged) and integrated times of the screened descriptors."""
+    """Fold moments (full and lagged) and integrated times of the screened descriptors, and
+    per state the factor by which their run means scatter more than those times allow
+    (:func:`~cvdesign.pipeline.timing.scatter_factors`; empty without times)."""
     feats = PoolFeaturizer(pool.subset(screening.screened))
     shift = screening.center[screening.features]
     passes = [FoldMomentsPass(feats, folds)]
@@ -594,10 +600,10 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     if grid is None:
         notes.append("integrated autocorrelation times not computed: the files' time steps "
                      "differ (or some are unknown)")
-        return fm, iat_desc, notes, transit
+        return fm, iat_desc, notes, transit, {}
     dt = next(iter(steps.values()))
     if dt is None:
-        return fm, iat_desc, notes, transit
+        return fm, iat_desc, notes, transit, {}
     # within runs: each (file, state) series about its own mean; each descriptor's time is
     # that of the state where it is longest (pooled, a narrow slow state hides behind a
     # broad fast one, and the bootstrap blocks sized from it would be too short for it)
@@ -625,7 +631,11 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
         ci = [float(tau_lo[j]), float(tau_hi[j])] if shown else None
         # (time ps, decayed as shown, interval, decayed for the bootstrap blocks)
         iat_desc[i] = (float(tau[j]), shown, ci, bool(decayed[j]))
-    return fm, iat_desc, notes, transit
+    # how much more the states' run means scatter than their times allow (the screened
+    # descriptors' median: the held-out noise level's run offsets)
+    scatter = scatter_factors(by_lag[0], {s: v[0] / dt for s, v in per_state.items()}, n,
+                              skip_states=_reweighted_states(reweighting))
+    return fm, iat_desc, notes, transit, scatter
 
 
 @dataclass
@@ -1082,7 +1092,8 @@ def _folds_note(folds, asked):
                 "frames); the blocks border each other with no gap, so a motion slower than "
                 "a block's length carries across their boundaries and the held-out scores are "
                 "somewhat optimistic (null runs gave held-out ratios about 1.4 times those of "
-                "independent runs); two or more trajectories per state avoid it")
+                "independent runs); whole-trajectory folds (two or more trajectories per "
+                "state, each long enough) avoid it")
         why = (f"no more folds of at least {MIN_FRAMES_PER_FOLD} frames fit in the state with "
                "the fewest frames")
     if folds.n_folds < asked:
@@ -1153,9 +1164,11 @@ def _offsets_hold_autocorrelation(entry):
     below the between-state share of the variance, ``B / (B + W)`` (frames weighted), and
     its timescale then grows with the lag: a measure of the separation (a CV with a Fisher
     ratio of 26 gave 272 ps for a relaxation of 0.8 ps inside the states), not of a
-    process the runs resolve. A timescale below the lag (an autocorrelation below 1/e) is
-    not taken as held up: a CV that does not separate can have a between-state share of
-    noise (0.003) beside an autocorrelation of noise (0.005).
+    process the runs resolve. Offsets of noise are not taken as holding it up: a CV that
+    does not separate can have a between-state share of noise (0.003) beside an
+    autocorrelation of noise (0.005); so the between-state over the within-state variance
+    must be at least :data:`~cvdesign.pipeline.ranking.NOISE_LEVEL_FACTOR` times the
+    entry's ``heldout_fisher_ratio_noise`` when it has one.
 
     Examples
     --------
@@ -1164,13 +1177,13 @@ def _offsets_hold_autocorrelation(entry):
     ...     "b": {"mean": 1.0, "std": 0.1, "n_frames": 100}}}
     >>> _offsets_hold_autocorrelation(e)  # B / (B + W) = 0.25 / 0.26, against 0.96 / 2
     True
-    >>> _offsets_hold_autocorrelation(dict(e, autocorrelation_all=0.3))  # below 1/e
+    >>> _offsets_hold_autocorrelation(dict(e, heldout_fisher_ratio_noise=3.0))  # 25 < 30
     False
     """
     rho = entry.get("autocorrelation_all")
     stats = list(entry["states"].values())
     n = np.array([s["n_frames"] for s in stats], dtype=np.float64)
-    if rho is None or not rho > math.exp(-1.0) or n.sum() <= 0:
+    if rho is None or n.sum() <= 0:
         return False
     mean = np.array([s["mean"] for s in stats])
     var = np.array([s["std"] for s in stats]) ** 2
@@ -1178,6 +1191,9 @@ def _offsets_hold_autocorrelation(entry):
     between = float(n @ (mean - mu) ** 2 / n.sum())
     within = float(n @ var / n.sum())
     total = between + within
+    level = entry.get("heldout_fisher_ratio_noise")
+    if level is not None and not between >= NOISE_LEVEL_FACTOR * level * within:
+        return False  # offsets of noise
     return total > 0 and between / total >= 0.5 * rho
 
 
@@ -1202,8 +1218,6 @@ def _add_times(entry, longest_run_ps, longest_visit_ps, cv_time, frame_spacing_p
         ts = entry.get(f"{key}_ps")
         entry[f"{key}_resolved"] = None if ts is None else bool(
             bound is not None and ts < bound)
-    if entry.get("timescale_resolved") and _offsets_hold_autocorrelation(entry):
-        entry["timescale_resolved"] = False
     entry["integrated_time_ps"] = None if cv_time is None else cv_time[0]
     entry["integrated_time_ci_ps"] = None if cv_time is None else cv_time[2]
     entry["integrated_time_decayed"] = None if cv_time is None else cv_time[1]

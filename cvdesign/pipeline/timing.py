@@ -16,7 +16,8 @@ from ..io.source import stores_time
 from ..passes import Pass
 
 __all__ = ["read_timesteps", "lag_frames", "iat_lags", "integrated_time", "local_autocorrelation",
-           "longest_visit_ps", "runs_too_short", "state_integrated_times", "slowest_state_times", "scatter_times",
+           "longest_visit_ps", "runs_too_short", "state_integrated_times", "slowest_state_times",
+           "scatter_factors",
            "longest_run_text", "block_frames", "EvenSpacingPass", "checked_segments",
            "bias_times"]
 
@@ -393,15 +394,17 @@ def _run_scatter(runs, tau_frames, n_features, skip_states=()):
     return out
 
 
-def scatter_times(runs, tau_frames, n_features, *, skip_states=()):
-    """Per state, the time (frames) a mean of its frames varies by: the integrated time, or
-    the one its run means' scatter implies when longer.
+def scatter_factors(runs, tau_frames, n_features, *, skip_states=()):
+    """Per state, how much more its run means scatter than its features' times allow: the
+    median over the features of ``max(1, Q / dof)``.
 
-    With ``Q`` the chi-square statistic of :func:`runs_too_short` (the run means' scatter
-    over what the time `tau` allows, ``dof`` = runs - 1), the scatter implies ``tau Q /
-    dof``: runs that each sit at an offset of their own (unequilibrated) make a state's
-    mean vary more than its frames' correlation alone says. States of one run, or in
-    `skip_states`, keep `tau`.
+    ``Q`` is the chi-square statistic of :func:`runs_too_short` (``dof`` = runs - 1); ``tau
+    Q / dof`` is the time a feature's run means imply. Runs that each sit at an offset of
+    their own (unequilibrated) make a state's mean vary more than its frames' correlation
+    says, for every feature alike; the median over many features (the screened descriptors,
+    not a CV the search chose because its run means differ) is not lifted by a selection,
+    and is about 1 when the runs agree (``Q / dof`` is below 1 for most features then: for
+    two runs, ``P(chi2_1 < 1) = 0.68``). States of one run, or in `skip_states`, get 1.
 
     Parameters
     ----------
@@ -414,22 +417,27 @@ def scatter_times(runs, tau_frames, n_features, *, skip_states=()):
 
     Returns
     -------
-    dict of int to ndarray of shape (n_features,)
+    dict of int to float
+        Per state of `tau_frames`.
 
     Examples
     --------
     >>> from cvdesign.stats.moments import DiagonalLaggedMoments
     >>> rng = np.random.default_rng(0)
-    >>> x = rng.normal(size=(3, 2000)) + np.array([[-1.0], [0.0], [1.0]])  # three offsets
-    >>> runs = {(r, 0): DiagonalLaggedMoments.from_series(x[r][:, None], lag=1)
+    >>> offsets = rng.normal(0.0, 0.5, size=(3, 1, 20))  # every feature: a run's own offset
+    >>> x = rng.normal(size=(3, 2000, 20)) + offsets
+    >>> runs = {(r, 0): DiagonalLaggedMoments.from_series(x[r], lag=1) for r in range(3)}
+    >>> scatter_factors(runs, {0: np.full(20, 0.5)}, 20)[0] > 50
+    True
+    >>> same = {(r, 0): DiagonalLaggedMoments.from_series(rng.normal(size=(2000, 20)), lag=1)
     ...         for r in range(3)}
-    >>> float(scatter_times(runs, {0: [0.5]}, 1)[0][0]) > 100  # far above half a frame
+    >>> scatter_factors(same, {0: np.full(20, 0.5)}, 20)[0] < 1.2  # about 1: runs agree
     True
     """
-    out = {s: np.asarray(t, dtype=np.float64).reshape(n_features)
-           for s, t in tau_frames.items()}
+    out = {s: 1.0 for s in tau_frames}
     for s, (tau, q, dof) in _run_scatter(runs, tau_frames, n_features, skip_states).items():
-        out[s] = np.fmax(tau, np.maximum(tau, 0.5) * q / dof)
+        ratio = np.maximum(q / dof, 1.0)[np.isfinite(tau) & np.isfinite(q)]
+        out[s] = float(np.median(ratio)) if ratio.size else 1.0
     return out
 
 

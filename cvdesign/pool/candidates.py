@@ -407,7 +407,8 @@ def prefilter_pairs(pairs, source, *, cutoff, stride=10, max_numbers=5_000_000,
     local = remap[pairs]
     means, variances, below, n_frames = _strided_state_means(
         source, atoms, _PairDistances(local, max_numbers), len(local), stride,
-        label="prefilter", executor=executor, cutoff=cutoff)
+        label="prefilter", executor=executor,
+        cutoff=cutoff if source.n_states == 1 else None)  # (counted for one state only)
     keep = _within_cutoff(means, below, cutoff)
     n_below = int(keep.sum())
     rescued = _separating_beyond_cutoff(means, variances, keep)
@@ -445,7 +446,8 @@ def _within_cutoff(means, below, cutoff):
     a mean over it would mix the states the runs visit, and a contact formed in one of
     them only (a fifth of the frames at 0.4 nm, the rest at 2 nm: a mean of 1.7 nm) would be
     dropped with the slow process it marks: a pair is kept when it is below `cutoff` in at
-    least :data:`MIN_FRACTION_BELOW` of the frames read (`below`: that fraction, per state).
+    least :data:`MIN_FRACTION_BELOW` of the frames read (`below`: that fraction, per state;
+    of frames, not weights: a contact sampled in biased runs is kept whatever its weight).
 
     Examples
     --------
@@ -876,7 +878,8 @@ def prefilter_group_pairs(groups, source, *, cutoff, stride=10, masses=None,
     local = [remap[np.asarray(g, dtype=np.intp)] for g in groups]
     means, variances, below, n_frames = _strided_state_means(
         source, atoms, _CenterDistances(local, pairs, masses, max_numbers), len(pairs), stride,
-        label="prefilter (residues)", executor=executor, cutoff=cutoff)
+        label="prefilter (residues)", executor=executor,
+        cutoff=cutoff if source.n_states == 1 else None)
     keep = _within_cutoff(means, below, cutoff)
     n_below = int(keep.sum())
     rescued = _separating_beyond_cutoff(means, variances, keep)
