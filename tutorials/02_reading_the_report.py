@@ -169,9 +169,9 @@ def main(out_dir, keep=True):
 
     # ------------------------------------------------------------------ 3c. weights
     # The weights apply to standardized descriptors, so their sizes compare directly.
-    # A 95 % interval that crosses zero, or a term that bootstrap refits of the search
+    # A (nominal) 95 % interval that crosses zero, or a term that bootstrap refits of the search
     # seldom keep, is not well determined by the data.
-    print("\nFigure: weights of the terms, with 95 % intervals and selection frequencies")
+    print("\nFigure: weights of the terms, with nominal 95 % intervals and selection frequencies")
     for r in ranking["ranking"]:
         for t in r["terms"]:
             name = t["label"] if t["transform"] == "identity" else \
