@@ -41,6 +41,7 @@ from cvdesign.bias.funnel import size_funnel_from_source
 from cvdesign.cli import EXIT_BROKEN_PIPE, main
 from cvdesign.errors import SchedulerUnreachableError
 from cvdesign.parallel import DaskExecutor
+from cvdesign.io.source import read_labels_file
 from cvdesign.passes import PoolFeaturizer, ScreeningPass, plan_tasks, run_pass
 from cvdesign.pipeline.explore import propose_states
 from cvdesign.pipeline.refine import (basins_from_spec, compare_specs, fisher_separation,
@@ -890,6 +891,22 @@ API_CASES = [
          InputError, r"labels for '.*closed-1\.xtc' hold 1995 labels, but the trajectory has "
                      r"2000 frames \(and its bias-energy file '.*b\.txt' 2000 values\); give "
                      r"one label per frame"),
+    Case("api-source-labelled-none-as-text",  # labels.astype(str) of basin labels
+         lambda c: lambda: Source(c.top).add_labelled(
+             c.closed, np.array(["closed"] * 1000 + [None] * 1000).astype(str)),
+         InputError, r"labels for '.*closed-1\.xtc': label 'None' is not taken as a state name: "
+                     r"it is what a frame in no state becomes when None or NaN is written as "
+                     r"text"),
+    Case("api-source-labels-file-nan",
+         lambda c: (lambda f: lambda: Source(c.top).add_labelled(c.closed, read_labels_file(f)))(
+             c.file("labels.txt", "closed\nnan\nopen\n")),
+         InputError, r"labels file '.*labels\.txt', line 2: label 'nan' is not taken as a state "
+                     r"name"),
+    Case("api-source-labelled-bias-as-energies",
+         lambda c: lambda: Source(c.top, temperature=300.0).add_labelled(
+             c.closed, ["closed"] * 2000, bias=np.zeros(2000)),
+         InputError, r"bias= for '.*closed-1\.xtc' is the bias-energy file \(a path\), not the "
+                     r"energies \(got ndarray\): label_basins takes the energies"),
     Case("api-source-bias-column-without-bias",
          lambda c: lambda: Source(c.top).add(c.closed, "closed", bias_column=2),
          InputError, r"bias_column=2 for '.*closed-1\.xtc' goes with a bias-energy file"),

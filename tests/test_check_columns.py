@@ -106,7 +106,7 @@ def test_apply_output_of_two_trajectories_uses_the_rows_of_the_one_checked(
     err = capsys.readouterr().err
     assert (f"values file '{out}' has a 'file' column naming 'closed-1.xtc', 'open-1.xtc', "
             f"not trajectory '{third}'; give the trajectory whose values it holds (one of "
-            "those, by its name)") in err
+            "those, by that name or a path to it)") in err
     assert sorted(tmp_path.iterdir()) == before
 
 
@@ -129,6 +129,12 @@ def test_apply_names_two_trajectories_of_one_name_by_their_paths(setup, demo_fil
     assert main(["check", spec, "--topology", top, "--against", str(out), paths[1]]) == 0
     said = capsys.readouterr().out
     assert "vs " + paths[1] + ": 2000 frames" in said and "PASS" in said
+    # the same file by another spelling of its path (apply got it absolute)
+    import os
+    other = os.path.relpath(paths[1])
+    assert other != paths[1]
+    assert main(["check", spec, "--topology", top, "--against", str(out), other]) == 0
+    assert "PASS" in capsys.readouterr().out
 
 
 def test_a_frame_named_twice_is_refused_naming_the_lines(setup, tmp_path, capsys):

@@ -12,6 +12,7 @@ import pytest
 from cvdesign.constants import BOLTZMANN_KJ_MOL_K
 from cvdesign.errors import InputError
 from cvdesign.io.source import Source
+from cvdesign.stats.separation import fisher_ratio
 from cvdesign.pipeline.refine import (basins_from_spec, compare_specs, fisher_separation,
                                       label_basins)
 from cvdesign.spec import Spec
@@ -132,6 +133,13 @@ def test_basins_from_spec_suggests_a_core_that_works_across_the_period():
     cores = basins_from_spec(spec, core=1.1)
     assert label_basins([3.1, -3.1, 0.0, 1.0], cores, period=2 * np.pi).labels.tolist() == [
         "a", "b", "c", None]
+    # the cores carry the spec's period: without period= they wrap the same (a core at pi
+    # missed its frames beyond the cut without a word)
+    assert cores.period == 2 * np.pi
+    assert label_basins([3.1, -3.1, 0.0, 1.0], cores).labels.tolist() == ["a", "b", "c", None]
+    with pytest.raises(InputError, match=r"period=3\.0 but the basin cores come from a spec "
+                                         r"of period 6\.28"):
+        label_basins([3.1], cores, period=3.0)
 
 
 def test_basins_from_spec_refuses_a_spec_of_one_state_saying_what_to_do():
@@ -194,6 +202,29 @@ def test_compare_specs_matches_terms_by_atoms_and_standardizes_weights():
     assert compare_specs(one, other).cosine == 0.0
 
 
+def test_compare_specs_takes_a_descriptor_written_in_another_order_as_the_same():
+    # a distance (0, 5) and (5, 0), a dihedral and its reverse: the same values, reported as
+    # added and removed (cosine 0.36 and 0); a coordination with another r0 was 'kept'
+    one = _spec([("x", "distance", [0, 3], "identity", 1.0, 1.0),
+                 ("t", "dihedral", [0, 1, 2, 3], "cos", 1.0, 1.0)])
+    two = _spec([("y", "distance", [3, 0], "identity", 1.0, 1.0),
+                 ("u", "dihedral", [3, 2, 1, 0], "cos", 1.0, 1.0)])
+    c = compare_specs(one, two)
+    assert c.added == c.removed == () and len(c.kept) == 2 and c.cosine == pytest.approx(1.0)
+    system = two_wells()
+
+    def coordination(r0):
+        return Spec(name="cv", topology=system.topology,
+                    descriptors=[{"id": "c", "kind": "coordination", "groups": [[0], [3]],
+                                  "r0": r0, "label": f"coordination r0 {r0}"}],
+                    terms=[{"descriptor": "c", "transform": "identity", "center": 0.0,
+                            "scale": 1.0, "weight": 1.0}], states={})
+
+    c = compare_specs(coordination(0.45), coordination(0.9))
+    assert c.kept == () and c.added and c.removed and c.cosine == 0.0
+    assert compare_specs(coordination(0.45), coordination(0.45)).kept
+
+
 def _suggested_documents(tmp_path):
     """Two spec documents (dicts, as ``suggest(...).specs`` holds them) of the two-wells toy:
     a distance, and the same distance with a torsion's cos term."""
@@ -234,7 +265,10 @@ def test_compare_specs_refuses_what_is_not_a_spec_naming_the_argument(tmp_path):
 def test_fisher_separation_weighs_frames_and_wraps_periodic_values():
     x = [0.0, 2.0, 4.0, 6.0]
     labels = ["a", "a", "b", "b"]
-    assert fisher_separation(x, labels, ("a", "b")) == pytest.approx(8.0)
+    assert fisher_separation(x, labels, ("a", "b")) == pytest.approx(4.0)
+    # the ranking's Fisher ratio (between over within, equal state weights): it was twice it
+    assert fisher_separation(x, labels, ("a", "b")) == pytest.approx(
+        float(fisher_ratio([[1.0], [5.0]], [[1.0], [1.0]])[0]))
     # integer weights equal repeated frames
     assert fisher_separation(x, labels, ("a", "b"), weights=[2, 1, 1, 1]) == pytest.approx(
         fisher_separation([0.0, 0.0, 2.0, 4.0, 6.0], ["a"] * 3 + ["b"] * 2, ("a", "b")))
@@ -242,7 +276,7 @@ def test_fisher_separation_weighs_frames_and_wraps_periodic_values():
     phi = [3.0, -3.0, 0.1, -0.1]
     j = fisher_separation(phi, labels, ("a", "b"), period=2 * np.pi)
     d = np.pi - 3.0
-    assert j == pytest.approx(np.pi ** 2 / (d ** 2 + 0.01))
+    assert j == pytest.approx(0.5 * np.pi ** 2 / (d ** 2 + 0.01))
 
 
 def test_bad_input_is_refused_with_the_argument_named():
@@ -361,7 +395,7 @@ def test_fisher_separation_of_two_states_without_spread_is_refused_not_infinite(
         fisher_separation([3.1415927, -3.1415927, 3.1415927, 0.5, 0.5, 0.5],
                           ["a"] * 3 + ["b"] * 3, ("a", "b"), weights=[0.2, 0.5, 0.3, 1, 1, 1],
                           period=2 * math.pi)
-    assert fisher_separation([0.0, 0.0, 1.0, 3.0], ["a", "a", "b", "b"], ("a", "b")) == 4.0
+    assert fisher_separation([0.0, 0.0, 1.0, 3.0], ["a", "a", "b", "b"], ("a", "b")) == 2.0
 
 
 def test_label_basins_of_no_frame_is_refused():

@@ -1104,7 +1104,12 @@ def _rows_of_file(name, table, lower, k, traj):
         return table
     j = lower.index("file")
     own = {str(traj), Path(traj).name}
-    kept = [(n, cells) for n, cells in table if len(cells) > j and cells[j] in own]
+    where = Path(traj).resolve()
+
+    def names_traj(cell):  # its name, or a path to the same file in another spelling
+        return cell in own or (("/" in cell or "\\" in cell) and Path(cell).resolve() == where)
+
+    kept = [(n, cells) for n, cells in table if len(cells) > j and names_traj(cells[j])]
     present = sorted({cells[j] for _, cells in table if len(cells) > j})
     if not kept and len(present) <= 1:
         return table
@@ -1113,7 +1118,7 @@ def _rows_of_file(name, table, lower, k, traj):
             f"values file {name!r} has a 'file' column naming "
             f"{', '.join(repr(f) for f in present[:5])}{', ...' if len(present) > 5 else ''}, "
             f"not trajectory {str(traj)!r}; give the trajectory whose values it holds (one of "
-            "those, by its name)")
+            "those, by that name or a path to it)")
     return kept
 
 

@@ -305,6 +305,8 @@ def read_labels_file(path):
             raise InputError(f"labels file {str(path)!r}, line {n}: {line.strip()!r} is more "
                              f"than one word; give one state name (or {NO_STATE_LABEL!r} for a "
                              "frame in no state) per line")
+        if words[0] != NO_STATE_LABEL:
+            _check_label_name(words[0], f"labels file {str(path)!r}, line {n}")
         labels.append(None if words[0] == NO_STATE_LABEL else words[0])
     if not any(x is not None for x in labels):
         raise InputError(f"labels file {str(path)!r} names no state"
@@ -996,6 +998,11 @@ class Source:
             return None, None, None, None, None
         from .bias import read_bias_file
 
+        if not isinstance(bias, (str, os.PathLike)):
+            raise InputError(
+                f"bias= for {str(path)!r} is the bias-energy file (a path), not the energies "
+                f"(got {type(bias).__name__}): label_basins takes the energies, Source.add and "
+                "add_labelled the file they came from")
         if self.temperature is None:
             raise InputError(f"a bias-energy file ({str(bias)!r}) needs the temperature of the "
                              "biased run: give temperature=K to Source (--temperature K on the "
@@ -1098,6 +1105,8 @@ class Source:
         names = list(dict.fromkeys(x for x in labels if x is not None))
         if not names:
             raise InputError(f"labels for {str(path)!r} name no state; every frame is unlabelled")
+        for n in names:
+            _check_label_name(n, f"labels for {str(path)!r}")
         for n in names:
             self._add_state(n)
         self.segments.append(Segment(path, None, None, None, np.array(labels, dtype=object),
@@ -1523,6 +1532,22 @@ def _bias_by_file(bias, files):
         for f in match:
             out[str(f)] = bias_file
     return out
+
+
+#: Texts that a label written from Python's None or a float NaN becomes (str(None), "nan"):
+#: refused as state names, which would make a state of the frames between the states.
+_NOT_A_STATE = {"none", "nan", "null"}
+
+
+def _check_label_name(name, where):
+    """Refuse a label that is a no-state marker written as text (``'None'``, ``'nan'``)."""
+    if str(name).strip().lower() in _NOT_A_STATE:
+        raise InputError(
+            f"{where}: label {name!r} is not taken as a state name: it is what a frame in no "
+            f"state becomes when None or NaN is written as text (e.g. labels.astype(str)), "
+            f"and the frames between the states would become a state of their own. Mark "
+            f"such frames {NO_STATE_LABEL!r} in a labels file, or None in Python; rename a "
+            "state that is really called so")
 
 
 def _unlabelled(x):

@@ -32,7 +32,7 @@ from ..errors import InputError, SpecError
 from ..io.bias import kish_ess
 from ..spec import Spec
 
-__all__ = ["BasinVisits", "SpecComparison", "basins_from_spec", "compare_specs",
+__all__ = ["BasinCores", "BasinVisits", "SpecComparison", "basins_from_spec", "compare_specs",
            "fisher_separation", "label_basins"]
 
 
@@ -171,8 +171,10 @@ def basins_from_spec(spec, core=1.0):
 
     Returns
     -------
-    dict of str to (float, float)
-        ``{state: (lo, hi)}``, CV units; checked not to overlap (an error names
+    BasinCores
+        ``{state: (lo, hi)}`` (a dict), CV units, with the spec's ``period`` (None for a CV
+        that is not periodic), which :func:`label_basins` uses; checked not to overlap (an
+        error names
         the two states and suggests a smaller `core`, a value at most 0.9
         times the one at which the cores touch).
 
@@ -227,8 +229,25 @@ def basins_from_spec(spec, core=1.0):
                              "(lo, hi)}))")
         raise InputError(f"{what} at core={c:g}: give a smaller core=, e.g. "
                          f"core={_round_down(limit):g} (they touch at core={limit:g})")
-    return _check_basins({name: (round(m - c * sd, 12), round(m + c * sd, 12))
-                          for name, (m, sd) in stats.items()}, p)
+    return BasinCores(_check_basins({name: (round(m - c * sd, 12), round(m + c * sd, 12))
+                                     for name, (m, sd) in stats.items()}, p), period=p)
+
+
+class BasinCores(dict):
+    """``{state: (lo, hi)}`` basin cores (a dict) that carry the CV's `period` (None when
+    not periodic), so that :func:`label_basins` wraps them without being told: a periodic
+    spec's core at pi, labelled without its period, missed a third of its frames.
+
+    Examples
+    --------
+    >>> cores = BasinCores({"a": (3.0, 3.3)}, period=6.283185307179586)
+    >>> cores, cores.period
+    ({'a': (3.0, 3.3)}, 6.283185307179586)
+    """
+
+    def __init__(self, cores, *, period=None):
+        super().__init__(cores)
+        self.period = period
 
 
 @dataclass(frozen=True)
@@ -307,7 +326,9 @@ def label_basins(values, basins, *, bias=None, temperature=None, period=None,
     temperature : float, optional
         Temperature of the run, K; needed with `bias`.
     period : float, optional
-        Period of a periodic coordinate (``2 pi`` for a dihedral in rad).
+        Period of a periodic coordinate (``2 pi`` for a dihedral in rad); by default that
+        of `basins` when they come from :func:`basins_from_spec` of a periodic spec
+        (:class:`BasinCores`).
     timestep_ps : float, optional
         Time between frames, ps; gives ``duration_ps`` and crossings per ns.
 
@@ -338,7 +359,11 @@ def label_basins(values, basins, *, bias=None, temperature=None, period=None,
     if x.size == 0:
         raise InputError("values holds no frame; give the coordinate of every frame of the "
                          "run, in time order")
-    p = _check_period(period)
+    own = getattr(basins, "period", None)  # (BasinCores from a periodic spec)
+    if period is not None and own is not None and not math.isclose(float(period), own):
+        raise InputError(f"period={period!r} but the basin cores come from a spec of period "
+                         f"{own!r}; leave period out to use the spec's")
+    p = _check_period(own if period is None else period)
     cores = _check_basins(basins, p)
     names = tuple(cores)
     code = np.full(x.size, -1, dtype=np.int64)
@@ -380,7 +405,10 @@ def label_basins(values, basins, *, bias=None, temperature=None, period=None,
 
 
 def fisher_separation(values, labels, states, *, weights=None, period=None):
-    """Fisher ratio ``(m_a - m_b)^2 / (v_a + v_b)`` of two states along a coordinate.
+    """Fisher ratio of two states along a coordinate: between- over within-state variance
+    with equal state weights, ``((m_a - m_b) / 2)^2 / ((v_a + v_b) / 2)``, the ranking's
+    Fisher ratio (:func:`cvdesign.stats.separation.fisher_ratio`; before, this gave twice
+    it, ``(m_a - m_b)^2 / (v_a + v_b)``, beside the ranking's held-out J without a word).
 
     Parameters
     ----------
@@ -413,8 +441,8 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
 
     Examples
     --------
-    >>> fisher_separation([0.0, 2.0, 4.0, 6.0], ["a", "a", "b", "b"], ("a", "b"))  # means 1, 5; variances 1, 1
-    8.0
+    >>> fisher_separation([0.0, 2.0, 4.0, 6.0], ["a", "a", "b", "b"], ("a", "b"))  # means 1, 5
+    4.0
     """
     pair = (states,) if isinstance(states, str) else tuple(states)
     if len(pair) != 2 or pair[0] == pair[1]:
@@ -457,18 +485,49 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
             f"states {pair[0]!r} and {pair[1]!r} have no spread along the coordinate (each "
             "holds one value: a single frame each, or a coordinate frozen in both), so their "
             "Fisher ratio is undefined rather than infinite; give more frames per state")
-    return gap ** 2 / total
+    return 0.5 * gap ** 2 / total
+
+
+#: Descriptor keys that do not change its value (the rest, e.g. ``r0``, ``weighting``, do).
+_NAMING_KEYS = {"id", "kind", "label", "atoms", "groups", "masses", "atom_identities", "periodic"}
+
+
+def _descriptor_key(d):
+    """What a descriptor measures, in one form whatever the order it was written in: a
+    distance's two atoms sorted, an angle's and a dihedral's atoms in the smaller of the
+    two directions (reversed, they give the same value), a group's atoms sorted (with their
+    masses) and the two groups in order; with the parameters that change its value.
+
+    Examples
+    --------
+    >>> _descriptor_key({"kind": "dihedral", "atoms": [5, 4, 3, 2]})
+    ('dihedral', (2, 3, 4, 5), ())
+    >>> _descriptor_key({"kind": "coordination", "groups": [[9, 8], [1]], "r0": 0.45})
+    ('coordination', ((1,), (8, 9)), (('r0', 0.45),))
+    """
+    if "atoms" in d:
+        atoms = tuple(int(a) for a in d["atoms"])
+        atoms = min(atoms, atoms[::-1])
+        masses = None
+    else:
+        given = d.get("masses") or [[None] * len(g) for g in d["groups"]]
+        groups = sorted(tuple(sorted(zip((int(a) for a in g), m)))
+                        for g, m in zip(d["groups"], given))
+        atoms = tuple(tuple(a for a, _ in g) for g in groups)
+        masses = tuple(tuple(m for _, m in g) for g in groups) if d.get("masses") else None
+    params = tuple(sorted((k, v) for k, v in d.items() if k not in _NAMING_KEYS))
+    if masses is not None:
+        params += (("masses", masses),)
+    return d["kind"], atoms, params
 
 
 def _term_keys(spec):
-    """{(kind, atoms, transform): (label, raw coefficient weight / scale, scale)}."""
+    """{(descriptor key, transform): (label, raw coefficient weight / scale, scale)}."""
     descriptors = {d["id"]: d for d in spec.descriptors}
     out = {}
     for t in spec.terms:
         d = descriptors[t["descriptor"]]
-        atoms = tuple(int(a) for a in d.get("atoms", ())) or tuple(
-            tuple(int(a) for a in g) for g in d.get("groups", ()))
-        key = (d["kind"], atoms, t["transform"])
+        key = (_descriptor_key(d), t["transform"])
         label = f"{t['transform']}({d.get('label', d['id'])})"
         prev = out.get(key)
         coef = float(t["weight"]) / float(t["scale"])
