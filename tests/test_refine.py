@@ -401,3 +401,31 @@ def test_fisher_separation_of_two_states_without_spread_is_refused_not_infinite(
 def test_label_basins_of_no_frame_is_refused():
     with pytest.raises(InputError, match="values holds no frame"):
         label_basins([], {"a": (0.0, 1.0), "b": (2.0, 3.0)})
+
+
+def test_fisher_separation_with_a_period_equals_the_plain_ratio_away_from_the_cut():
+    # a skewed state far from +-pi: the circular mean's direction is not the values' mean,
+    # and the ratio with period= came out 3.94 against 4.29 without (a review)
+    rng = np.random.default_rng(6)
+    a = -1.0 + rng.gamma(2.0, 0.15, 400)  # skewed
+    b = 1.0 + rng.normal(0.0, 0.2, 400)
+    x = np.concatenate([a, b])
+    labels = ["a"] * 400 + ["b"] * 400
+    plain = fisher_separation(x, labels, ("a", "b"))
+    assert fisher_separation(x, labels, ("a", "b"), period=2 * np.pi) == pytest.approx(
+        plain, rel=1e-9)
+
+
+@pytest.mark.parametrize("call, message", [
+    (lambda: label_basins([0.0], {1: (0.0, 1.0), "1": (2.0, 3.0)}),
+     r"basins name state '1' twice"),
+    (lambda: label_basins([0.0], {"a": "01", "b": (2.0, 3.0)}),
+     r"basin 'a': core '01' must be a pair \(lo, hi\) of numbers"),
+    (lambda: fisher_separation([0.0, 1.0], ["a", "b"], None),
+     r"states=None must name the two states compared"),
+    (lambda: fisher_separation([0.0, 1.0, 2.0, 3.0], [["a", "a"], ["b", "b"]], ("a", "b")),
+     r"labels has shape \(2, 2\); give one label per frame"),
+])
+def test_refinement_inputs_that_were_taken_silently_are_refused(call, message):
+    with pytest.raises(InputError, match=message):
+        call()

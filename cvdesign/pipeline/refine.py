@@ -105,6 +105,8 @@ def _check_basins(basins, period):
     cores = {}
     for name, interval in basins.items():
         try:
+            if isinstance(interval, (str, bytes)):
+                raise TypeError("a text is not a pair of numbers")
             lo, hi = (float(v) for v in interval)
         except (TypeError, ValueError) as exc:
             raise InputError(f"basin {name!r}: core {interval!r} must be a pair (lo, hi) of "
@@ -114,6 +116,9 @@ def _check_basins(basins, period):
         if period is not None and hi - lo >= period:
             raise InputError(f"basin {name!r}: core ({lo:g}, {hi:g}) is as wide as the period "
                              f"{period:g}; give narrower cores")
+        if str(name) in cores:
+            raise InputError(f"basins name state {str(name)!r} twice (as {name!r} and another "
+                             "key of the same text); give each state one core")
         cores[str(name)] = (lo, hi)
     names = list(cores)
     for i, a in enumerate(names):
@@ -444,13 +449,19 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
     >>> fisher_separation([0.0, 2.0, 4.0, 6.0], ["a", "a", "b", "b"], ("a", "b"))  # means 1, 5
     4.0
     """
+    if states is None or isinstance(states, (int, float)):
+        raise InputError(f"states={states!r} must name the two states compared, e.g. "
+                         "('closed', 'open')")
     pair = (states,) if isinstance(states, str) else tuple(states)
     if len(pair) != 2 or pair[0] == pair[1]:
         raise InputError(f"states={states!r:.120} must name two different states (the "
                          f"ratio compares two); got {len(pair)}"
                          + (": call fisher_separation once per pair" if len(pair) > 2 else ""))
     x = _finite_vector(values, "values")
-    lab = np.asarray(labels, dtype=object).reshape(-1)
+    lab = np.asarray(labels, dtype=object)
+    if lab.ndim != 1:
+        raise InputError(f"labels has shape {lab.shape}; give one label per frame, a flat "
+                         "sequence")
     if lab.size != x.size:
         raise InputError(f"labels has {lab.size} entries but values has {x.size} frames")
     w = np.ones(x.size) if weights is None else _finite_vector(weights, "weights")
@@ -470,6 +481,11 @@ def fisher_separation(values, labels, states, *, weights=None, period=None):
             z = wi @ np.exp(2j * np.pi * xi / p)
             m = float(np.angle(z) * p / (2 * np.pi))
             d = (xi - m + p / 2) % p - p / 2
+            # the mean of the wrapped values (the circular mean's direction is not their
+            # mean when a state is skewed): the same ratio as without a period for states
+            # away from the cut
+            shift = float(wi @ d)
+            m, d = m + shift, d - shift
         means.append(m)
         variances.append(float(wi @ d ** 2))
         # one value up to a few single-precision ulps (trajectories store float32; rounding
