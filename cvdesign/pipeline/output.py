@@ -298,7 +298,7 @@ class Suggestions:
         pool = "" if self.pool is None else f"; pool of {len(self.pool)} descriptors"
         shown = min(len(self.ranking), 5)
         head = ["rank", "spec", "held-out J", "overlap", "autocorr.", "timescale (ps)",
-                "descriptors (weight [95 % CI], selection)"]
+                "descriptors (weight [nominal 95 % CI], selection)"]
         out = ['<div class="cvdesign-suggestions">',
                "<p><strong>cvdesign suggestions</strong>: states "
                + ", ".join(f"<code>{esc(str(s))}</code>" for s in self.states)
@@ -376,7 +376,7 @@ class Suggestions:
                 "refit's counterpart of this CV (its ranked combination sharing the most "
                 "descriptors with it).", "",
                 "| rank | spec | held-out J | overlap | autocorr. | timescale (ps) | "
-                "descriptors (weight [95 % CI], selection) |",
+                "descriptors (weight [nominal 95 % CI], selection) |",
                 "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]
         for r in self.ranking[:5]:
             out.append("| " + " | ".join(_top_cells(r)) + " |")

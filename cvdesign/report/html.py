@@ -361,7 +361,7 @@ def _suggest(page, output, parsed):
                               r.get(f"heldout_autocorrelation{within}_ci")),
                      ts_text, _num(r.get("reproduced_in_refits"), ".0%"),
                      _range_cell(specs[r["spec"]], states)])
-    page.add(_table(["rank", "spec", "descriptors (weight [95 % CI], selection)",
+    page.add(_table(["rank", "spec", "descriptors (weight [nominal 95 % CI], selection)",
                      "held-out J", "overlap", "autocorr." +
                      ("" if lag is None else f" at {lag:g} ps"), "timescale (ps)",
                      "found again in refits", "reachable range (CV units)"], rows,
