@@ -297,9 +297,7 @@ def default_box_message(system):
     openmm = import_openmm()
     if not system.usesPeriodicBoundaryConditions():
         return None
-    nm = openmm.unit.nanometer
-    box = np.array([list(v.value_in_unit(nm)) for v in system.getDefaultPeriodicBoxVectors()],
-                   dtype=np.float64)
+    box = _default_box_nm(system, openmm)
     if not np.array_equal(box, OPENMM_DEFAULT_BOX_NM * np.eye(3)):
         return None
     edge = OPENMM_DEFAULT_BOX_NM
@@ -312,40 +310,42 @@ def default_box_message(system):
 
 
 def _funnel_reach(document):
-    """The farthest reach (nm) of the spec's funnel restraints from their pocket centres, or
-    None without a funnel."""
+    """``(reach nm, where)`` of the spec's funnel restraint that reaches farthest from its
+    pocket centre (:func:`cvdesign.bias.funnel.funnel_reach`), or None without a funnel."""
     from ..bias.funnel import funnel_reach
 
-    reaches = [funnel_reach(r)[0] for r in document.get("restraints") or []
+    reaches = [funnel_reach(r) for r in document.get("restraints") or []
                if r.get("kind") == "funnel"]
     return max(reaches) if reaches else None
+
+
+def _default_box_nm(system, openmm):
+    """The System's default box vectors as rows, nm."""
+    nm = openmm.unit.nanometer
+    return np.array([list(v.value_in_unit(nm)) for v in system.getDefaultPeriodicBoxVectors()],
+                    dtype=np.float64)
 
 
 def _check_funnel_reach(document, system, openmm):
     """Refuse a funnel restraint that reaches farther from the pocket than half the smallest
     height of the System's box: beyond it the minimum image folds the ligand-pocket vector,
     and the restraint (and the funnel's CV) would push a ligand still inside the funnel."""
-    from ..bias.funnel import funnel_reach
     from ..geometry.box import box_heights
 
-    funnels = [r for r in document.get("restraints") or [] if r.get("kind") == "funnel"]
-    if not funnels:
+    farthest = _funnel_reach(document)
+    if farthest is None:
         return
-    nm = openmm.unit.nanometer
-    box = np.array([list(v.value_in_unit(nm)) for v in system.getDefaultPeriodicBoxVectors()],
-                   dtype=np.float64)
-    half = 0.5 * float(box_heights(box).min())
-    for res in funnels:
-        reach, where = funnel_reach(res)
-        if reach > half:
-            raise InputError(
-                f"spec {document['name']!r}: the funnel reaches {reach:.4g} nm from the pocket "
-                f"centre (its {where}), more than half the smallest height of the "
-                f"openmm.System's box ({half:.4g} nm): there the periodic image folds the "
-                "ligand's offset, and the restraint would push a ligand that is still inside "
-                "the funnel. Use a box whose every height is above "
-                f"{2 * reach:.4g} nm, or size a shorter funnel (cvdesign funnel "
-                "--unbound-length)")
+    reach, where = farthest
+    half = 0.5 * float(box_heights(_default_box_nm(system, openmm)).min())
+    if reach > half:
+        raise InputError(
+            f"spec {document['name']!r}: the funnel reaches {reach:.4g} nm from the pocket "
+            f"centre (its {where}), more than half the smallest height of the "
+            f"openmm.System's box ({half:.4g} nm): there the periodic image folds the "
+            "ligand's offset, and the restraint would push a ligand that is still inside "
+            "the funnel. Use a box whose every height is above "
+            f"{2 * reach:.4g} nm, or size a shorter funnel (cvdesign funnel "
+            "--unbound-length)")
 
 
 def _periodic_flag(openmm, document, periodic, system):
@@ -375,8 +375,9 @@ def _periodic_flag(openmm, document, periodic, system):
         if uses:  # (a funnel reaches past 1 nm: the default 2 nm cube never holds one)
             _check_funnel_reach(document, system, openmm)
         return uses
-    reach = _funnel_reach(document) if periodic else None
-    if reach is not None:
+    farthest = _funnel_reach(document) if periodic else None
+    if farthest is not None:
+        reach = farthest[0]
         warnings.warn(
             f"spec {name!r}: the funnel reaches {reach:.4g} nm from the pocket centre; with "
             f"periodic=True and no System to check, make sure every height of the Context's "

@@ -53,6 +53,7 @@ from ..pool import build_pool, check_kinds, check_length, needs_prefilter, prefi
 from ..progress import stage_messages
 from ..score.card import integrated_time_interval, plan_card_blocks
 from ..stats.bootstrap import MIN_INTERVAL_BLOCKS
+from ..stats.separation import fisher_ratio
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs, resolving_span_ps
@@ -1185,16 +1186,14 @@ def _offsets_hold_autocorrelation(entry):
     n = np.array([s["n_frames"] for s in stats], dtype=np.float64)
     if rho is None or n.sum() <= 0:
         return False
-    mean = np.array([s["mean"] for s in stats])
-    var = np.array([s["std"] for s in stats]) ** 2
-    mu = float(n @ mean / n.sum())
-    between = float(n @ (mean - mu) ** 2 / n.sum())
-    within = float(n @ var / n.sum())
-    total = between + within
+    # between over within variance, the states weighted by their frames (as the pooled
+    # autocorrelation weighs them); B / (B + W) = J / (1 + J)
+    j = float(fisher_ratio(np.array([[s["mean"]] for s in stats]),
+                           np.array([[s["std"] ** 2] for s in stats]), priors=n)[0])
     level = entry.get("heldout_fisher_ratio_noise")
-    if level is not None and not between >= NOISE_LEVEL_FACTOR * level * within:
-        return False  # offsets of noise
-    return total > 0 and between / total >= 0.5 * rho
+    if not j > 0 or (level is not None and not j >= NOISE_LEVEL_FACTOR * level):
+        return False  # no offsets, or offsets of noise
+    return (1.0 if math.isinf(j) else j / (1.0 + j)) >= 0.5 * rho
 
 
 def _add_times(entry, longest_run_ps, longest_visit_ps, cv_time, frame_spacing_ps, states):
