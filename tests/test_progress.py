@@ -322,3 +322,27 @@ def test_quiet_discards_what_the_dcd_reader_prints_without_turning_it_into_warni
     assert main(["-q", "apply", str(tmp_path / "cv.json"), "--topology", top,
                  str(tmp_path / "run.dcd"), "--out", str(tmp_path / "v.csv")]) == 0
     assert READER_OUTPUT_ENV not in os.environ
+
+
+def test_apply_and_check_on_a_terminal_count_every_frame_and_change_no_output(
+        demo_files, demo_frames, tmp_path):
+    top, states = demo_files
+    out = tmp_path / "suggested"
+    assert main(_suggest_argv(demo_files, out)) == 0
+    spec = str(out / "cv-01.json")
+    trajs = [states["closed"][0], states["open"][0]]
+    status, stdout, terminal = _on_terminal(["apply", spec, *trajs, "--topology", top], tmp_path)
+    assert status == 0, terminal
+    _done(_final_lines(terminal), "apply", sum(demo_frames), "frames")
+    assert "\r" not in stdout and "%|" not in stdout
+    piped = subprocess.run([sys.executable, "-m", "cvdesign", "apply", spec, *trajs,
+                            "--topology", top], capture_output=True, text=True, cwd=tmp_path,
+                           env={**os.environ, "PYTHONPATH": _ROOT})
+    assert piped.returncode == 0 and piped.stderr == ""
+    assert piped.stdout == stdout  # the bar changed nothing the command writes
+    values = tmp_path / "values.csv"
+    values.write_text(stdout)
+    status, _, terminal = _on_terminal(["check", spec, "--topology", top, "--against",
+                                        str(values), trajs[0]], tmp_path)
+    assert status == 0, terminal
+    _done(_final_lines(terminal), "check", demo_frames[0], "frames")

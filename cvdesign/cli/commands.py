@@ -952,7 +952,7 @@ def _cmd_apply(args):
     def rows(fh):
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(["file", "frame", "time_ps", "value", "undefined"])
-        for chunk in source.iter_chunks():
+        for chunk in source.iter_chunks(progress="apply"):
             traj = chunk.trajectory
             values, marks = undefined[chunk.segment_index].evaluate(traj, chunk.frames)
             path = source.segments[chunk.segment_index].path
@@ -1142,7 +1142,7 @@ def _reference_values(spec, topology, traj):
     src.add(traj, state="check")
     ours, idx = [], []
     undefined = _Undefined(spec, traj)
-    for chunk in src.iter_chunks():
+    for chunk in src.iter_chunks(progress="check"):
         ours.append(undefined.evaluate(chunk.trajectory, chunk.frames)[0])
         idx.append(chunk.frames)
     if undefined.message() is not None:

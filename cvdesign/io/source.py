@@ -1217,7 +1217,45 @@ class Source:
                 seen.append(s.path)
         return seen
 
-    def iter_chunks(self, *, atom_indices=None, stride=1, chunk_size=None):
+    def segment_frames(self, step=1):
+        """``(segment, frames in its file, range of its frames taken with `step`)`` of every
+        segment, each file's frames counted once (in its header).
+
+        Examples
+        --------
+        >>> from cvdesign.io.demo import demo_inputs
+        >>> top, files = demo_inputs()
+        >>> seg, n, frames = next(Source.from_states(top, files).segment_frames(10))
+        >>> n, len(frames)
+        (2000, 200)
+        """
+        lengths = {}
+        for seg in self.segments:
+            key = str(seg.path)
+            if key not in lengths:
+                lengths[key] = file_frames(seg.path)
+            n = lengths[key]
+            yield seg, n, range(min(seg.start or 0, n),
+                                n if seg.stop is None else min(seg.stop, n), step)
+
+    def frames_to_read(self, step=1):
+        """Frames a read of every `step`-th frame of each segment yields (for step 1, every
+        frame with a state): the total of a progress bar over the source.
+
+        Examples
+        --------
+        >>> from cvdesign.io.demo import demo_inputs
+        >>> top, files = demo_inputs()
+        >>> Source.from_states(top, files).frames_to_read()
+        12000
+        """
+        total = 0
+        for seg, n, frames in self.segment_frames(step):
+            total += sum(x is not None for x in seg.labels[:n]) if seg.labels is not None \
+                else len(frames)
+        return total
+
+    def iter_chunks(self, *, atom_indices=None, stride=1, chunk_size=None, progress=None):
         """Yield :class:`Chunk` objects over every segment, in order.
 
         Parameters
@@ -1229,11 +1267,23 @@ class Source:
             Read every `stride`-th frame of each file.
         chunk_size : int, default=None
             Frames per chunk (default: the source's ``chunk_size``).
+        progress : str, default=None
+            Label of a progress bar advanced by the frames yielded (shown only
+            while a display is active, :mod:`cvdesign.progress`); None: no bar.
 
         Yields
         ------
         Chunk
         """
+        if progress is not None:
+            from .. import progress as _progress
+
+            with _progress.bar(progress, lambda: self.frames_to_read(int(stride))) as shown:
+                for chunk in self.iter_chunks(atom_indices=atom_indices, stride=stride,
+                                              chunk_size=chunk_size):
+                    yield chunk
+                    shown.update(len(chunk.frames))
+            return
         state_index = {s: i for i, s in enumerate(self.states)}
         stride = int(stride)
         for si, seg in enumerate(self.segments):

@@ -530,7 +530,7 @@ def state_frames(source):
     [6000, 6000]
     """
     counts = dict.fromkeys(source.states, 0)
-    for seg, n, frames in _segment_frames(source):
+    for seg, n, frames in source.segment_frames():
         if seg.labels is not None:
             for x in seg.labels[:n]:
                 if x is not None:
@@ -588,31 +588,6 @@ def prefilter_stride_for(source):
     """
     counts = state_frames(source)
     return max(MIN_PREFILTER_STRIDE, (min(counts) if counts else 0) // PREFILTER_FRAMES)
-
-
-def _segment_frames(source, step=1):
-    """``(segment, frames in its file, range of its frames taken with `step`)`` of every
-    segment of a source, each file's frames counted once (in its header)."""
-    from ..io.source import file_frames
-
-    lengths = {}
-    for seg in source.segments:
-        key = str(seg.path)
-        if key not in lengths:
-            lengths[key] = file_frames(seg.path)
-        n = lengths[key]
-        yield seg, n, range(min(seg.start or 0, n), n if seg.stop is None else min(seg.stop, n),
-                            step)
-
-
-def _frames_read(source, step):
-    """Frames a read of every `step`-th frame of each segment yields (every frame with a
-    state for step 1): the total of the prefilter's progress bar."""
-    total = 0
-    for seg, n, frames in _segment_frames(source, step):
-        total += sum(x is not None for x in seg.labels[:n]) if seg.labels is not None \
-            else len(frames)
-    return total
 
 
 def _accumulate(blocks, weights, sums, squares, below, cutoff):
@@ -768,7 +743,7 @@ def _strided_state_means(source, atoms, values, n_values, stride, label="prefilt
     below = np.zeros((source.n_states, n_values), dtype=np.int64)
     counts = np.zeros(source.n_states)
     frames_used = np.zeros(source.n_states, dtype=np.int64)
-    with progress.bar(label, lambda: _frames_read(source, stride if strided else 1)) as shown:
+    with progress.bar(label, lambda: source.frames_to_read(stride if strided else 1)) as shown:
         if executor is None or getattr(executor, "in_process", False):
             def results():
                 for task in tasks:
