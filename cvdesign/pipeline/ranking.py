@@ -12,7 +12,7 @@ import numpy as np
 from ..fit import rayleigh_quotient, timescales_from_eigenvalues
 from ..score.card import card_intervals
 from ..score.redundancy import descriptor_correlation, redundancy_graph, representatives
-from ..score.univariate import overlap_coefficient
+from ..score.univariate import overlap_coefficient, pairwise_overlaps
 from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction,
                       greedy_search, heldout_score, heldout_scores, rank_combinations,
                       slow_direction, state_arrays, within_states)
@@ -23,7 +23,8 @@ from ..stats.moments import merge_all
 __all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit", "Shortlist",
            "shortlist", "search", "fit_ranked", "kinetic_map_scale", "bootstrap_ranked",
            "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap", "fisher_along",
-           "add_ranges", "NOISE_LEVEL_FACTOR", "heldout_noise_level", "add_noise_level"]
+           "add_ranges", "NOISE_LEVEL_FACTOR", "heldout_noise_level", "add_noise_level",
+           "PAIR_OVERLAP_WARN", "closest_pairs", "add_pair_overlap"]
 
 #: Bootstrap refits of the search for selection frequencies, and the number of best
 #: shortlisted descriptors (besides the ranked terms) they may choose from.
@@ -362,6 +363,71 @@ def fisher_along(fm, idx, directions):
 def heldout_overlap(counts):
     """Mean over folds of the states' overlap along each CV; counts (fold, state, cv, bin)."""
     return np.mean([overlap_coefficient(counts[k]) for k in range(counts.shape[0])], axis=0)
+
+
+#: With three or more states, a ranked CV along which two of them overlap by at least this
+#: much (held-out overlapping coefficient of their histograms, mean over the folds) gets a
+#: warning: the Fisher ratio pools every state, so a CV that sets one state far from the
+#: others scores high even when it leaves two on top of each other. Our choice: two
+#: Gaussian states of one spread overlap by half when their means are 1.35 spreads apart
+#: (overlapping coefficient 2 Phi(-d/2); Inman and Bradley 1989, Commun. Stat. Theory
+#: Methods 18, 3851), where a bias along the CV can hardly tell them apart.
+PAIR_OVERLAP_WARN = 0.5
+
+
+def closest_pairs(counts):
+    """Per CV, the pair of states that overlap most along it, held out.
+
+    Parameters
+    ----------
+    counts : ndarray of shape (n_folds, n_states, n_cvs, n_bins)
+        Held-out histograms.
+
+    Returns
+    -------
+    list of tuple
+        Per CV ``(i, j, overlap)``: the states ``i < j`` with the largest
+        overlapping coefficient averaged over the folds, and that average;
+        None for a CV where it is not defined (fewer than two states, or a fold
+        without frames of a state).
+
+    Examples
+    --------
+    >>> c = np.zeros((2, 3, 1, 2))
+    >>> c[:, 0, 0] = [4.0, 0.0]; c[:, 1, 0] = [0.0, 4.0]; c[:, 2, 0] = [1.0, 3.0]
+    >>> closest_pairs(c)
+    [(1, 2, 0.75)]
+    """
+    per_fold = [pairwise_overlaps(counts[k]) for k in range(counts.shape[0])]
+    if not per_fold or not per_fold[0][0]:
+        return [None] * counts.shape[2]
+    pairs = per_fold[0][0]
+    mean = np.mean([ov for _, ov in per_fold], axis=0)  # (pair, cv)
+    out = []
+    for c in range(mean.shape[1]):
+        if not np.isfinite(mean[:, c]).all():
+            out.append(None)
+            continue
+        k = int(np.argmax(mean[:, c]))  # (the first pair of the largest: a fixed order)
+        out.append((pairs[k][0], pairs[k][1], float(mean[k, c])))
+    return out
+
+
+def add_pair_overlap(entry, closest, states):
+    """With three or more `states`, warn in `entry` when the two of them that overlap most
+    along its CV (`closest`, from :func:`closest_pairs`) overlap by at least
+    :data:`PAIR_OVERLAP_WARN`. Returns whether it warned."""
+    if closest is None or len(states) < 3 or not closest[2] >= PAIR_OVERLAP_WARN:
+        return False
+    i, j, value = closest
+    entry["warnings"].append(
+        f"states {states[i]!r} and {states[j]!r} overlap by {value:.2f} along it (held-out "
+        f"overlapping coefficient of their histograms; 0 apart, 1 the same): its Fisher "
+        f"ratio pools every state, so it can be high while these two lie on top of each "
+        f"other, and a bias along it would hardly tell them apart; a CV of more terms "
+        f"(--max-terms, max_terms=) may separate all the states, or bias a second CV "
+        f"that separates these two (suggest on their runs alone gives one)")
+    return True
 
 
 def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,

@@ -57,9 +57,10 @@ from ..stats.separation import fisher_ratio
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs, resolving_span_ps
-from .ranking import (NOISE_LEVEL_FACTOR, add_noise_level, add_ranges, bootstrap_ranked,
-                      card_interval_rows, fit_ranked, heldout_overlap, hints_for,
-                      ranking_entry, search, shortlist)
+from .ranking import (NOISE_LEVEL_FACTOR, PAIR_OVERLAP_WARN, add_noise_level,
+                      add_pair_overlap, add_ranges, bootstrap_ranked, card_interval_rows,
+                      closest_pairs, fit_ranked, heldout_overlap, hints_for, ranking_entry,
+                      search, shortlist)
 from .report_data import (CVBlockHistograms, CVGridPass, CVLaggedPass, CVReportPass, cv_plans,
                           cv_integrated_times, report_document, timescale_lags, trace_stride)
 from .screening import Screening, screen
@@ -489,7 +490,7 @@ def _suggest(source, config, executor, progress, checksums):
     longest_visit = longest_visit_ps(source, reweighting, seg_counts, steps)
     params = config.parameters(lag_ps, folds)
     checksums = checksums.result(inputs)
-    ranking, specs, record, noisy = [], [], None, []
+    ranking, specs, record, noisy, overlapping = [], [], None, [], []
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, held.overlap), 1):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
@@ -501,6 +502,8 @@ def _suggest(source, config, executor, progress, checksums):
         _add_times(entry, longest_run_ps, longest_visit, cv_times[rank - 1], frame_ps,
                    source.states)
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
+        if add_pair_overlap(entry, held.closest[rank - 1], source.states):
+            overlapping.append(rank)
         own = cv_times[rank - 1]
         if add_noise_level(entry, fm, frame_ps, reweighting is not None,
                            warn=config.objective != "slow",
@@ -521,6 +524,8 @@ def _suggest(source, config, executor, progress, checksums):
                                    config.seed if config.n_bootstrap else None, record))
     if noisy and noisy[0] == 1:
         notes.append(_noise_note(noisy, ranking[0]))
+    if overlapping and overlapping[0] == 1:
+        notes.append(_pair_overlap_note(overlapping, ranking))
     report_data = None
     if held.report is not None:
         report_data = report_document(held.report, held.report_plans, ranking, source=source,
@@ -647,6 +652,9 @@ class HeldOut:
     ----------
     overlap : list of float
         Held-out overlap of the states along each ranked CV.
+    closest : list of tuple or None
+        Per ranked CV, the two states that overlap most along it and their overlap
+        (:func:`~cvdesign.pipeline.ranking.closest_pairs`).
     overlap_desc : ndarray
         Per descriptor of the pool, the overlap of the state histograms (best feature).
     blocks : dict of (int, int) to list of tuple
@@ -673,6 +681,7 @@ class HeldOut:
     """
 
     overlap: list
+    closest: list
     overlap_desc: np.ndarray
     blocks: dict
     where: dict
@@ -786,10 +795,11 @@ def _heldout_pass(source, base, pool, screening, short, fits, fm, folds, lags, i
         for b in blist:
             counts[k, s] += b[2]["h"]
     overlap = [float(v) for v in heldout_overlap(counts)] if fits else []
+    closest = closest_pairs(counts) if fits else []
     n_blocks = sum(len(v) for v in block_sums.values())
     desc = (f"{bf} frames" if bf else "whole runs (or their pieces in each fold)") + \
         f" ({n_blocks} blocks)"
-    return HeldOut(overlap=overlap, overlap_desc=overlap_desc, blocks=block_sums, where=where,
+    return HeldOut(overlap=overlap, closest=closest, overlap_desc=overlap_desc, blocks=block_sums, where=where,
                    block_desc=desc, card=card_sums,
                    card_desc=card_desc, card_feat=card_feat, notes=notes,
                    observed=[(observed[0, c], observed[1, c]) for c in range(len(fits))],
@@ -1090,11 +1100,13 @@ def _folds_note(folds, asked):
         note = (f"held-out scoring: {folds.n_folds}-fold cross-validation by contiguous blocks "
                 "of each trajectory (a state has a single trajectory, or too few frames per "
                 f"trajectory for whole-trajectory folds of at least {MIN_FRAMES_PER_FOLD} "
-                "frames); the blocks border each other with no gap, so a motion slower than "
-                "a block's length carries across their boundaries and the held-out scores are "
-                "somewhat optimistic (null runs gave held-out ratios about 1.4 times those of "
-                "independent runs); whole-trajectory folds (two or more trajectories per "
-                "state, each long enough) avoid it")
+                "frames); the blocks border each other with no gap, so a motion about as slow "
+                "as a block is long carries across their boundaries, and then the held-out "
+                "scores are somewhat optimistic (null runs whose integrated time was near the "
+                "block length gave held-out ratios about 1.3 to 1.4 times those of "
+                "independent runs; at a fifth of it no difference was measurable); "
+                "whole-trajectory folds (two or more trajectories per state, each long "
+                "enough) avoid it")
         why = (f"no more folds of at least {MIN_FRAMES_PER_FOLD} frames fit in the state with "
                "the fewest frames")
     if folds.n_folds < asked:
@@ -1145,6 +1157,18 @@ def _bootstrap_notes(boot, held, config, fm=None):
                        "leave out the noise of the transition slowness and are too narrow by "
                        "that much; give longer crossing runs")
     return out
+
+
+def _pair_overlap_note(overlapping, ranking):
+    """The warning when two states overlap along the best CV (three or more states)."""
+    ranks = ", ".join(str(r) for r in overlapping)
+    whole = [e["rank"] for e in ranking if e["rank"] not in overlapping]
+    better = (f"; rank {whole[0]} does not leave two states overlapping" if whole else "")
+    return (f"warning: along the CV of rank{'s' if len(overlapping) > 1 else ''} {ranks}, two "
+            f"of the states overlap by at least {PAIR_OVERLAP_WARN:g} (held-out; their "
+            f"warnings name them): the Fisher ratio pools every state and can be high while "
+            f"two lie on top of each other, and a bias along such a CV hardly tells them "
+            f"apart{better}")
 
 
 def _noise_note(noisy, first):

@@ -23,7 +23,7 @@ from ..stats.scratch import scratch
 from ..stats.separation import fisher_ratio
 
 __all__ = ["fisher_ratio", "Histograms", "bin_counts", "histogram_range",
-           "overlap_coefficient"]
+           "overlap_coefficient", "pairwise_overlaps"]
 
 
 def histogram_range(low, high):
@@ -183,6 +183,42 @@ class Histograms:
         return out
 
 
+def pairwise_overlaps(counts):
+    """Overlapping coefficient of every pair of per-state histograms.
+
+    Parameters
+    ----------
+    counts : array-like of shape (n_states, n_features, n_bins)
+
+    Returns
+    -------
+    pairs : list of tuple of int
+        ``(i, j)``, ``i < j``, in :func:`itertools.combinations` order.
+    overlap : ndarray of shape (n_pairs, n_features)
+        ``sum_b min(p_i(b), p_j(b))`` in [0, 1] (Inman and Bradley 1989, Commun.
+        Stat. Theory Methods 18, 3851); NaN for a feature where some state has
+        no counts.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> c = np.array([[[1.0, 1.0]], [[0.0, 2.0]], [[2.0, 0.0]]])
+    >>> pairs, ov = pairwise_overlaps(c)
+    >>> pairs, ov[:, 0].tolist()
+    ([(0, 1), (0, 2), (1, 2)], [0.5, 0.5, 0.0])
+    """
+    counts = np.asarray(counts, dtype=np.float64)
+    totals = counts.sum(axis=2, keepdims=True)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p = counts / totals
+    pairs = list(itertools.combinations(range(counts.shape[0]), 2))
+    out = np.zeros((len(pairs), counts.shape[1]))
+    for k, (i, j) in enumerate(pairs):
+        out[k] = np.minimum(p[i], p[j]).sum(axis=1)
+    out[:, (totals[..., 0] == 0).any(axis=0)] = np.nan
+    return pairs, out
+
+
 def overlap_coefficient(counts):
     """Worst pairwise overlapping coefficient of per-state histograms.
 
@@ -194,7 +230,7 @@ def overlap_coefficient(counts):
     -------
     ndarray of shape (n_features,)
         ``max_{i<j} sum_b min(p_i(b), p_j(b))`` in [0, 1]; NaN for a feature
-        where some state has no counts.
+        where some state has no counts (:func:`pairwise_overlaps`).
 
     Examples
     --------
@@ -204,12 +240,10 @@ def overlap_coefficient(counts):
     [0.5]
     """
     counts = np.asarray(counts, dtype=np.float64)
-    totals = counts.sum(axis=2, keepdims=True)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        p = counts / totals
-    out = np.zeros(counts.shape[1])
-    for i, j in itertools.combinations(range(counts.shape[0]), 2):
-        out = np.maximum(out, np.minimum(p[i], p[j]).sum(axis=1))
-    bad = (totals[..., 0] == 0).any(axis=0)
+    pairs, ov = pairwise_overlaps(counts)
+    if not pairs:
+        return np.zeros(counts.shape[1])
+    bad = np.isnan(ov).any(axis=0)
+    out = np.max(np.where(np.isnan(ov), 0.0, ov), axis=0)
     out[bad] = np.nan
     return out
