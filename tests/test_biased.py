@@ -1051,6 +1051,36 @@ def test_a_file_split_by_frame_ranges_into_two_states_counts_as_a_crossing_run(t
                                labelled.reweighting().populations(), rtol=1e-12)
 
 
+def test_frame_ranges_of_one_file_with_different_bias_files_are_refused(tmp_path):
+    """One run felt one bias: its frame ranges cannot be given with another bias file, or
+    with none (the second range's frames were used unweighted, without a word)."""
+    traj = _write_dcd(tmp_path / "run.dcd", np.zeros((10, 3, 3)))
+    one = _write_bias(tmp_path / "one.bias", np.zeros(10))
+    other = _write_bias(tmp_path / "other.bias", np.ones(10))
+    for first, second, said in [(one, None, r"and for state 'b' with no bias-energy file"),
+                                (None, one, r"no bias-energy file and for state 'b' with "
+                                            r"bias-energy file '.*one\.bias'"),
+                                (one, other, r"and for state 'b' with bias-energy file "
+                                             r"'.*other\.bias'")]:
+        src = Source(_topology(), temperature=300.0)
+        src.add(traj, "a", frames=(0, 5), bias=first)
+        with pytest.raises(InputError, match=r"trajectory '.*run\.dcd' is given for state 'a' "
+                                             r"with .*" + said + r": the frames of one run felt "
+                                             r"one bias"):
+            src.add(traj, "b", frames=(5, None), bias=second)
+    src = Source(_topology(), temperature=300.0)  # the same file (another spelling): fine
+    src.add(traj, "a", frames=(0, 5), bias=one)
+    src.add(traj, "b", frames=(5, None), bias=str(tmp_path / "." / "one.bias"))
+    assert len(src.segments) == 2
+
+
+def test_a_bias_file_saved_with_a_byte_order_mark_keeps_its_first_column_name(tmp_path):
+    path = tmp_path / "bom.csv"
+    path.write_bytes("time_ps,bias\n0.0,1.5\n0.2,2.5\n".encode("utf-8-sig"))
+    assert read_bias_file(path, "time_ps").tolist() == [0.0, 0.2]
+    assert read_bias_file(path).tolist() == [1.5, 2.5]
+
+
 def test_suggest_takes_the_temperature_of_a_biased_source_and_refuses_another(tmp_path):
     """A source of biased runs at 350 K: suggest's hints, parameters and report use 350 K
     when no temperature is given; another temperature is refused naming both; an unbiased
@@ -1240,3 +1270,11 @@ def test_suggest_refuses_a_bias_file_whose_times_differ_from_the_trajectory_mid_
                                          r"stores 150 ps"):
         suggest(source(bad), **kw)
     assert suggest(source(t), **kw).ranking == suggest(source(None), **kw).ranking
+
+
+def test_a_labels_file_saved_with_a_byte_order_mark_keeps_its_first_label(tmp_path):
+    from cvdesign.io.source import read_labels_file
+
+    path = tmp_path / "run.labels"
+    path.write_bytes("closed\n-\nopen\n".encode("utf-8-sig"))
+    assert read_labels_file(path).tolist() == ["closed", None, "open"]

@@ -68,6 +68,16 @@ def test_csv_column_by_header_name_and_a_leading_frame_column(setup, tmp_path, c
     assert "the first column looks like a frame index" in capsys.readouterr().err
 
 
+def test_a_csv_saved_with_a_byte_order_mark_keeps_its_first_column_name(setup, tmp_path,
+                                                                          capsys):
+    *_, values, _ = setup
+    path = tmp_path / "cv.csv"
+    path.write_bytes(("contact_cv,frame\n" + "".join(
+        f"{float(v)!r},{i}\n" for i, v in enumerate(values))).encode("utf-8-sig"))
+    assert _check(setup, path, "--column", "contact_cv") == 0
+    assert "PASS" in capsys.readouterr().out
+
+
 def test_a_frame_column_aligns_values_given_for_some_frames(setup, tmp_path, capsys):
     *_, values, _ = setup
     picked = [5, 17, 1999]

@@ -1011,7 +1011,7 @@ def _read_values(path, column=None, traj=None):
     name = str(path)
     if not path.is_file():
         raise InputError(f"values file {name!r} does not exist; check the path")
-    text = path.read_text(encoding="utf-8", errors="replace")
+    text = path.read_text(encoding="utf-8-sig", errors="replace")
     lines = [(n, line.strip()) for n, line in enumerate(text.splitlines(), 1)]
     lines = [(n, t) for n, t in lines if t and t[0] not in "#@"]
     if not lines:

@@ -195,7 +195,7 @@ def _bias_rows(path):
     if not path.is_file():
         raise InputError(f"bias-energy file {name!r} is not a regular file")
     try:
-        text = path.read_bytes().decode("utf-8")
+        text = path.read_bytes().decode("utf-8-sig")
     except UnicodeDecodeError as exc:
         raise InputError(f"bias-energy file {name!r} is not UTF-8 text (byte {exc.start} "
                          "cannot be decoded); give a text file with one bias energy (kJ/mol) "

@@ -292,7 +292,7 @@ def read_labels_file(path):
     """
     path = _check_file(path, "labels")
     try:
-        text = path.read_text(encoding="utf-8")
+        text = path.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(f"cannot read labels file {str(path)!r} ({exc}); give a text file "
                          f"with one state name (or {NO_STATE_LABEL!r}) per frame") from None
@@ -740,6 +740,15 @@ def file_sha256(path, block=1 << 20):
     return h.hexdigest()
 
 
+def _same_bias(a, b):
+    """Whether two (bias-energy file, column) pairs name the same bias (None, None: none)."""
+    if (a[0] is None) != (b[0] is None):
+        return False
+    if a[0] is None:
+        return True
+    return os.path.samefile(a[0], b[0]) and a[1] == b[1]
+
+
 @dataclass(frozen=True)
 class Segment:
     """Frames of one trajectory file assigned to states.
@@ -982,7 +991,7 @@ class Source:
                                  "give (start, stop) with start < stop")
             start = None if start is None else int(start)
             stop = None if stop is None else int(stop)
-        self._check_overlap(path, start, stop, str(state))
+        self._check_overlap(path, start, stop, str(state), energies[1:3])
         self._add_state(state)
         self.segments.append(Segment(path, str(state), start, stop, None, *energies))
         self._reweighting = None
@@ -1050,12 +1059,25 @@ class Source:
                                          count_frames=file_frames)
         return self._reweighting
 
-    def _check_overlap(self, path, start, stop, state):
-        """Refuse frames of a file that were already given (under any spelling of its path)."""
+    def _check_overlap(self, path, start, stop, state, bias=(None, None)):
+        """Refuse frames of a file that were already given (under any spelling of its path),
+        and frame ranges of one file given with different bias-energy files (`bias`: the
+        file and column, both None for an unbiased run): one run felt one bias."""
         lo, hi = (start or 0), (math.inf if stop is None else stop)
         for seg in self.segments:
             if not os.path.samefile(seg.path, path):
                 continue
+            if state is not None and seg.labels is None and not _same_bias(
+                    (seg.bias_path, seg.bias_column), bias):
+                def said(b):
+                    return ("no bias-energy file" if b[0] is None else
+                            f"bias-energy file {str(b[0])!r}" +
+                            ("" if b[1] is None else f" (column {b[1]!r})"))
+                raise InputError(
+                    f"trajectory {str(path)!r} is given for state {seg.state!r} with "
+                    f"{said((seg.bias_path, seg.bias_column))} and for state {state!r} with "
+                    f"{said(bias)}: the frames of one run felt one bias; give the same "
+                    "bias-energy file (bias=...) for every frame range of the file")
             if seg.labels is not None or state is None:
                 raise InputError(f"trajectory {str(path)!r} is given twice, once with a label "
                                  "array; give each file once")
