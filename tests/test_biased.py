@@ -731,8 +731,13 @@ def test_a_bias_of_zero_gives_the_unbiased_suggestions_with_reweighting_notes(ze
     assert [e["spec"] for e in plain.ranking] == [e["spec"] for e in biased.ranking]
     for a, b in zip(plain.ranking, biased.ranking):
         assert [t["descriptor"] for t in a["terms"]] == [t["descriptor"] for t in b["terms"]]
-        for key in ("heldout_score", "fisher_ratio_all", "autocorrelation_all", "timescale_ps"):
+        for key in ("heldout_score", "fisher_ratio_all", "autocorrelation_all", "timescale_ps",
+                    "heldout_fisher_ratio", "heldout_fisher_ratio_noise", "integrated_time_ps"):
             assert b[key] == pytest.approx(a[key], rel=1e-9), key
+        assert b["integrated_time_decayed"] == a["integrated_time_decayed"]
+        # the same warnings (the noise level's and the runs-too-short checks are made on
+        # reweighted runs too, with their effective frames; they had been left out)
+        assert b["warnings"] == a["warnings"]
     assert not any("reweighting" in n for n in plain.notes)
     text = "\n".join(biased.notes)
     assert "effective sample size (Kish) of state 'closed': 4000.0 of 4000 frames" in text

@@ -111,6 +111,33 @@ def test_runs_each_at_an_offset_of_their_own_are_warned_about(tmp_path):
     assert first["heldout_fisher_ratio_noise"] > first["integrated_time_ps"] / 1500
 
 
+def test_reweighted_runs_get_the_noise_level_and_the_runs_too_short_check(tmp_path):
+    """The same null runs, each at an offset of its own, given as biased runs: bias
+    energies of a fraction of kT (Kish fraction about 0.9) leave the screen as it was
+    (they had turned the noise level and the runs-too-short check off for every state)."""
+    top, files = _runs(tmp_path, 0.0, 3, n_runs=3, run_offset_nm=0.02)
+    rng = np.random.default_rng(8)
+    bias = {}
+    for f in (f for fs in files.values() for f in fs):
+        bias[f] = str(tmp_path / (f.rsplit("/", 1)[-1] + ".bias"))
+        values = rng.uniform(0.0, 1.5, 1500)  # kJ/mol, about 0.6 kT at 300 K
+        with open(bias[f], "w") as fh:
+            fh.write("".join(f"{float(v)!r}\n" for v in values))
+    kw = dict(kinds=("distance",), max_terms=2, n_suggestions=3, n_bootstrap=0)
+    plain = suggest(Source.from_states(top, files), **kw)
+    biased = suggest(Source.from_states(top, files, bias=bias, temperature=300.0), **kw)
+    a, b = plain.ranking[0], biased.ranking[0]
+    assert b["heldout_fisher_ratio_noise"] is not None
+    # fewer effective frames than frames: a higher level, of the same order
+    assert a["heldout_fisher_ratio_noise"] < b["heldout_fisher_ratio_noise"] < \
+        3 * a["heldout_fisher_ratio_noise"]
+    assert any("less than 10 times what noise alone gives" in w and
+               "effective ones where reweighted" in w for w in b["warnings"])
+    assert any(n.startswith("integrated times: for") and "too short" in n
+               for n in biased.notes)
+    assert not b["integrated_time_decayed"]
+
+
 def test_states_that_differ_are_not_warned_about(tmp_path):
     # C1 moved by 0.04 nm, twice the spread of its jitter: a held-out ratio near 0.5, about
     # 45 times the level (seed 3; 0.02 nm gave 12 times, a null run up to 10 times)

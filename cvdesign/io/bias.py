@@ -138,7 +138,7 @@ from ..errors import InputError
 __all__ = ["read_bias_file", "is_number", "kish_ess", "Reweighting", "reweight", "LOW_ESS_FRACTION",
            "LOW_ESS_FRAMES", "MAX_RESCALE_EXPONENT", "BIAS_COLUMN", "CLOCK_COLUMN",
            "COARSE_LAG_FRACTION", "SLOW_CLOCK_TOLERANCE", "NEGATIVE_CLOCK_FRACTION",
-           "SLOW_CLOCK_WARNING", "TIME_COLUMNS", "BiasTimes"]
+           "SLOW_CLOCK_WARNING", "TIME_COLUMNS", "BiasTimes", "state_codes"]
 
 #: A state's Kish effective sample size below this fraction of its frames gets a warning
 #: (common practice: reweighted averages from a few percent of the frames are noisy).
@@ -812,8 +812,27 @@ def _runs(n):
     return f"{n} biased run{'s' if n != 1 else ''}"
 
 
-def _state_codes(segment, n_file, index):
-    """State code of every frame of a segment's file (-1: no state)."""
+def state_codes(segment, n_file, index):
+    """State code of every frame of a segment's file (-1: no state).
+
+    Parameters
+    ----------
+    segment : cvdesign.io.source.Segment
+    n_file : int
+        Frames of its file.
+    index : dict of str to int
+        State name to code.
+
+    Returns
+    -------
+    ndarray of int64, shape (n_file,)
+
+    Examples
+    --------
+    >>> from cvdesign.io.source import Segment
+    >>> state_codes(Segment("a.xtc", "open", 2, 4), 6, {"closed": 0, "open": 1}).tolist()
+    [-1, -1, 1, 1, -1, -1]
+    """
     if segment.labels is not None:
         return np.array([-1 if x is None else index[x] for x in segment.labels], dtype=np.int64)
     codes = np.full(n_file, -1, dtype=np.int64)
@@ -875,7 +894,7 @@ def reweight(segments, states, temperature_k, *, count_frames=None):
     for si in biased:
         seg = segments[si]
         a = np.asarray(seg.bias, dtype=np.float64) / kt
-        exps[si], codes[si] = a, _state_codes(seg, a.size, index)
+        exps[si], codes[si] = a, state_codes(seg, a.size, index)
         felt[si] = a if seg.clock_bias is None else np.asarray(seg.clock_bias,
                                                                dtype=np.float64) / kt
     # per state: the largest exponent c_s, then sums of r = exp(a - c_s) over all its files
@@ -973,7 +992,7 @@ def _mix_unbiased(segments, index, frames, ess, weights, codes, count_frames):
             if count_frames is None:
                 from .source import file_frames as count_frames
             n_file = int(count_frames(seg.path))
-        plain_codes[si] = _state_codes(seg, n_file, index)
+        plain_codes[si] = state_codes(seg, n_file, index)
     if not plain_codes:
         return {}
     plain = np.zeros(n_states, dtype=np.int64)

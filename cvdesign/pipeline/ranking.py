@@ -680,7 +680,7 @@ def _rigid_cv_warnings(state_stats, j_all, heldout):
 NOISE_LEVEL_FACTOR = 10.0
 
 
-def heldout_noise_level(fm, tau_frames):
+def heldout_noise_level(fm, tau_frames, effective_fraction=None):
     """The held-out Fisher ratio that noise alone gives a fixed direction, were the states
     one distribution.
 
@@ -689,7 +689,10 @@ def heldout_noise_level(fm, tau_frames):
     (Sokal 1997, in *Functional Integration*, Plenum), the expected between-state variance
     ``sum_k p_k (m_k - m)^2`` (``m = sum_k p_k m_k``) is ``sigma^2 sum_k p_k (1 - p_k)
     2 tau / n_k`` (our algebra), so the ratio over ``sigma^2`` is that sum; averaged over
-    the folds as the held-out score is.
+    the folds as the held-out score is. A reweighted state's ``n_k`` is its fold's weight
+    (the weights average 1 per frame) times the state's Kish fraction (effective over
+    actual frames; Kish 1965, *Survey Sampling*, Wiley): a rough count when the weights
+    are not spread evenly over the folds.
 
     Parameters
     ----------
@@ -700,6 +703,9 @@ def heldout_noise_level(fm, tau_frames):
         its run means scatter than that allows
         (:func:`~cvdesign.pipeline.timing.scatter_factors`); one value for every state, or
         one per state.
+    effective_fraction : array-like of shape (n_states,), default=None
+        Per state, effective over actual frames (1 for a state of unweighted frames);
+        None: 1 for every state.
 
     Returns
     -------
@@ -715,42 +721,51 @@ def heldout_noise_level(fm, tau_frames):
     ...                   for _ in range(2)])
     >>> heldout_noise_level(fm, 0.5)  # 2 (1/4) (2 x 0.5 / 1000) = 0.0005
     0.0005
+    >>> heldout_noise_level(fm, 0.5, [1.0, 0.25])  # the second state: 250 effective frames
+    0.00125
     """
     p = np.asarray(fm.priors, dtype=np.float64)
     tau_frames = np.broadcast_to(np.asarray(tau_frames, dtype=np.float64), p.shape)
+    fraction = (np.ones_like(p) if effective_fraction is None
+                else np.asarray(effective_fraction, dtype=np.float64))
     levels = []
     for k in range(fm.n_folds):
         n = np.array([fm.moments[s][k].count for s in range(fm.n_states)], dtype=np.float64)
+        n = n * fraction
         if not (n > 0).all():
             return None
         levels.append(float(np.sum(p * (1.0 - p) * 2.0 * tau_frames / n)))
     return float(np.mean(levels))
 
 
-def add_noise_level(entry, fm, frame_ps, reweighted, *, warn=True, state_frames=None):
+def add_noise_level(entry, fm, frame_ps, *, warn=True, state_frames=None,
+                    effective_fraction=None):
     """``heldout_fisher_ratio_noise`` (:func:`heldout_noise_level`, from `state_frames`, per
     state the time in frames its mean varies by, or else the CV's ``integrated_time_ps``
-    for every state; None when the time or the frame spacing is unknown, or a state is
-    reweighted: its counts are weights, not frames) and, when `warn`, a warning when the
-    held-out Fisher ratio is below :data:`NOISE_LEVEL_FACTOR` times it. Returns whether it
-    warned."""
+    for every state, and `effective_fraction`, per state its Kish effective over actual
+    frames when reweighted; None when the time or the frame spacing is unknown) and, when
+    `warn`, a warning when the held-out Fisher ratio is below :data:`NOISE_LEVEL_FACTOR`
+    times it. Returns whether it warned."""
     tau_ps = entry.get("integrated_time_ps")
     level = None
-    if tau_ps is not None and frame_ps and not reweighted:
+    if tau_ps is not None and frame_ps:
         times = np.full(fm.n_states, tau_ps / frame_ps)
         if state_frames is not None:  # a state without its own time keeps the CV's
             own = np.asarray(state_frames, dtype=np.float64)
             times = np.where(np.isfinite(own), own, times)
-        level = heldout_noise_level(fm, times)
+        level = heldout_noise_level(fm, times, effective_fraction)
     entry["heldout_fisher_ratio_noise"] = level
     j = entry["heldout_fisher_ratio"]
     if not warn or level is None or not j < NOISE_LEVEL_FACTOR * level:
         return False
+    reweighted = effective_fraction is not None and bool(
+        (np.asarray(effective_fraction) < 1.0).any())
     entry["warnings"].append(
         f"its held-out Fisher ratio ({j:.3g}) is less than {NOISE_LEVEL_FACTOR:g} times "
         f"what noise alone gives a fixed direction with these runs ({level:.3g}, from the "
         f"CV's integrated times in the states, the scatter of their run means, and each "
-        f"fold's frames): the states may not "
+        f"fold's frames{', effective ones where reweighted' if reweighted else ''}): the "
+        "states may not "
         "differ along it at all, since the search keeps the best of many held-out scores, "
         "which lifts the best above that level; give more or longer runs before trusting "
         "it")

@@ -566,7 +566,7 @@ def _within_runs(results):
                      for runs in by_lag]).reshape(len(results), n)
 
 
-def cv_integrated_times(results, lags, dt_ps, state_frames, *, grid=None, skip_states=()):
+def cv_integrated_times(results, lags, dt_ps, state_frames, *, grid=None, effective=None):
     """Each CV's integrated time within the states, from :class:`CVGridPass`: that of the
     state in which it is longest.
 
@@ -594,9 +594,9 @@ def cv_integrated_times(results, lags, dt_ps, state_frames, *, grid=None, skip_s
     grid : array-like of int, optional
         The lags (among `lags`) to integrate over, e.g. the descriptors' grid when the
         pass also has the pipeline's lag; None: all.
-    skip_states : iterable of int, default=()
-        States not tested for runs too short for the time (reweighted ones; see
-        :func:`~cvdesign.pipeline.timing.runs_too_short`).
+    effective : dict of (int, int) to float, default=None
+        Kish effective frames of reweighted runs, per (segment, state), for the test of runs
+        too short for the time (:func:`~cvdesign.pipeline.timing.runs_too_short`).
 
     Returns
     -------
@@ -623,7 +623,7 @@ def cv_integrated_times(results, lags, dt_ps, state_frames, *, grid=None, skip_s
     for s, t in in_frames.items():
         own[s] = t
     if len(lags) and int(lags[0]) == 1:  # runs too short for the time: a lower bound
-        short = runs_too_short(kept[0], in_frames, n, skip_states=skip_states) & decayed
+        short = runs_too_short(kept[0], in_frames, n, effective=effective) & decayed
         decayed = decayed & ~short
     frames = np.asarray(state_frames, dtype=np.float64)[np.maximum(state, 0)]
     lo, hi = integrated_time_interval(tau, window, np.maximum(frames, 1.0))

@@ -472,7 +472,7 @@ def _suggest(source, config, executor, progress, checksums):
         cv_times = cv_integrated_times(held.report["cv_grid"], held.report_lags, frame_ps,
                                        _state_frames(seg_counts, reweighting),
                                        grid=_lag_grid(steps, seg_counts),
-                                       skip_states=_reweighted_states(reweighting))
+                                       effective=_run_effective_frames(source, reweighting))
         short_cvs = sum(t is not None and t[3] for t in cv_times)
         if short_cvs:
             notes.append(_short_runs_note(short_cvs, "ranked CVs"))
@@ -505,10 +505,10 @@ def _suggest(source, config, executor, progress, checksums):
         if add_pair_overlap(entry, held.closest[rank - 1], source.states):
             overlapping.append(rank)
         own = cv_times[rank - 1]
-        if add_noise_level(entry, fm, frame_ps, reweighting is not None,
-                           warn=config.objective != "slow",
+        if add_noise_level(entry, fm, frame_ps, warn=config.objective != "slow",
                            state_frames=None if own is None else [
-                               t * scatter.get(s, 1.0) for s, t in enumerate(own[5])]):
+                               t * scatter.get(s, 1.0) for s, t in enumerate(own[5])],
+                           effective_fraction=_effective_fraction(seg_counts, reweighting)):
             noisy.append(rank)
         if entry.get("timescale_resolved") and _offsets_hold_autocorrelation(entry):
             entry["timescale_resolved"] = False
@@ -620,8 +620,9 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     # runs too short for a time (their means scatter more than it allows): shown as a lower
     # bound; the bootstrap blocks still follow the measured time (whole runs for every
     # such descriptor would leave a few runs per state without any interval)
+    effective = _run_effective_frames(source, reweighting)
     short = runs_too_short(by_lag[0], {s: v[0] / dt for s, v in per_state.items()}, n,
-                           skip_states=_reweighted_states(reweighting)) & decayed
+                           effective=effective) & decayed
     if short.any():
         notes.append(_short_runs_note(int(sum(short[g].any() for g in screening.groups)),
                                       "screened descriptors"))
@@ -640,7 +641,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     # how much more the states' run means scatter than their times allow (the screened
     # descriptors' median: the held-out noise level's run offsets)
     scatter = scatter_factors(by_lag[0], {s: v[0] / dt for s, v in per_state.items()}, n,
-                              skip_states=_reweighted_states(reweighting))
+                              effective=effective)
     return fm, iat_desc, notes, transit, scatter
 
 
@@ -953,9 +954,29 @@ def _run_frames(source, reweighting, seg_counts, si):
     return reweighting.rescaled_frames(si, seg.start or 0, n if seg.stop is None else seg.stop)
 
 
-def _reweighted_states(reweighting):
-    """The states whose frames are reweighted (none without biased runs)."""
-    return () if reweighting is None else tuple(reweighting.biased_states)
+def _run_effective_frames(source, reweighting):
+    """Per (segment, state) of the reweighted runs, the Kish effective frames of the run's
+    weights (:func:`~cvdesign.io.bias.kish_ess`); empty without biased runs."""
+    if reweighting is None:
+        return {}
+    from ..io.bias import kish_ess, state_codes
+
+    index = {name: i for i, name in enumerate(source.states)}
+    out = {}
+    for si, w in sorted(reweighting.weights.items()):
+        codes = state_codes(source.segments[si], w.size, index)
+        for s in np.unique(codes[codes >= 0]):
+            out[(si, int(s))] = kish_ess(w[codes == s])
+    return out
+
+
+def _effective_fraction(seg_counts, reweighting):
+    """Per state, its effective over its actual frames (1 for a state of unweighted
+    frames), or None without biased runs."""
+    if reweighting is None:
+        return None
+    frames = seg_counts.sum(axis=0).astype(np.float64)
+    return _state_frames(seg_counts, reweighting) / np.maximum(frames, 1.0)
 
 
 def _short_runs_note(count, what):
@@ -965,7 +986,8 @@ def _short_runs_note(count, what):
             "for the time measured within them (their means scatter far more than that "
             "time allows, as for a time three times longer or more: a slower motion, or "
             "distinct sub-states "
-            "the runs do not cross between; reweighted states are not tested); those times "
+            "the runs do not cross between; a reweighted run counts its effective frames); "
+            "those times "
             "are marked lower bounds (not decayed), while the "
             "bootstrap blocks still follow the times measured, so the intervals of those "
             "descriptors may be too narrow")

@@ -314,7 +314,7 @@ def block_frames(seg_counts, taus, timesteps, lag_frames):
     return b
 
 
-def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
+def runs_too_short(runs, tau_frames, n_features, *, effective=None):
     """Per feature: whether some state's runs are too short for its integrated time.
 
     Each run (segment, state) about its own mean, as the integrated times are measured,
@@ -332,8 +332,11 @@ def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
     otherwise make significant); our choices. The time is then a lower
     bound (the runs are too short for it, or the state holds sub-states they do not cross
     between). Each state is tested with its own time (a slow state of small spread hardly
-    moves a time pooled over the states). States of one run cannot tell; reweighted states
-    are skipped (their counts are sums of weights, not effective frames).
+    moves a time pooled over the states). States of one run cannot tell. A reweighted run
+    (frames of a biased run, weighted) counts its Kish effective frames
+    (:func:`cvdesign.io.bias.kish_ess` of its weights, `effective`) in place of ``n``: its
+    weighted mean varies as a mean of that many frames would (Kish 1965, *Survey
+    Sampling*, Wiley), a rough model when the weights vary along the run.
 
     Parameters
     ----------
@@ -344,8 +347,10 @@ def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
         Per state, the integrated times within its runs, frames
         (:func:`state_integrated_times`; NaN: not known, never flagged).
     n_features : int
-    skip_states : iterable of int, default=()
-        States not tested (reweighted ones).
+    effective : dict of (int, int) to float, default=None
+        Per (segment, state) of reweighted runs, their Kish effective frames (the run's
+        ``count``, a sum of weights, is not a number of frames); runs not in it count
+        their frames.
 
     Returns
     -------
@@ -362,31 +367,36 @@ def runs_too_short(runs, tau_frames, n_features, *, skip_states=()):
     ([True], [False])
     """
     out = np.zeros(n_features, dtype=bool)
-    for s, (tau, q, dof) in _run_scatter(runs, tau_frames, n_features, skip_states).items():
+    for s, (tau, q, dof) in _run_scatter(runs, tau_frames, n_features, effective).items():
         out |= (np.isfinite(tau) & (q > dof + 5.0 * math.sqrt(2.0 * dof) + 10.0)
                 & (q > 3.0 * dof))
     return out
 
 
-def _run_scatter(runs, tau_frames, n_features, skip_states=()):
-    """Per state of two or more runs (not in `skip_states`): ``(tau, Q, dof)``, the chi-square
-    statistic of :func:`runs_too_short` of its run means against the time `tau` (frames)."""
-    skip = set(skip_states)
+def _run_scatter(runs, tau_frames, n_features, effective=None):
+    """Per state of two or more runs: ``(tau, Q, dof)``, the chi-square
+    statistic of :func:`runs_too_short` of its run means against the time `tau` (frames);
+    a run in `effective` counts its effective frames."""
+    effective = effective or {}
     by_state = {}
-    for (_, s), m in sorted(runs.items()):
-        if m.count > 0 and s not in skip and s in tau_frames:
-            by_state.setdefault(s, []).append(m)
+    for key, m in sorted(runs.items()):
+        s = key[1]
+        if m.count > 0 and s in tau_frames:
+            by_state.setdefault(s, []).append((key, m))
     out = {}
     with np.errstate(divide="ignore", invalid="ignore"):
-        for s, ms in by_state.items():
-            dof = len(ms) - 1
+        for s, kms in by_state.items():
+            dof = len(kms) - 1
             if dof < 1:
                 continue
+            ms = [m for _, m in kms]
             tau = np.asarray(tau_frames[s], dtype=np.float64).reshape(n_features)
-            n = np.array([m.count for m in ms], dtype=np.float64)[:, None]
+            weight = np.array([m.count for m in ms], dtype=np.float64)[:, None]
+            n = np.array([effective.get(key, m.count) for key, m in kms],
+                         dtype=np.float64)[:, None]
             stats = [m.covariances(reversible=True) for m in ms]
             means = np.array([st[0] for st in stats])
-            sigma2 = (n * np.array([st[1] for st in stats])).sum(axis=0) / n.sum()
+            sigma2 = (weight * np.array([st[1] for st in stats])).sum(axis=0) / weight.sum()
             w = n / (2.0 * np.maximum(tau, 0.5))  # sigma^2 / var(run mean)
             centre = (w * means).sum(axis=0) / w.sum(axis=0)
             q = np.where(sigma2 > 0, (w * (means - centre) ** 2).sum(axis=0) / sigma2, 0.0)
@@ -394,7 +404,7 @@ def _run_scatter(runs, tau_frames, n_features, skip_states=()):
     return out
 
 
-def scatter_factors(runs, tau_frames, n_features, *, skip_states=()):
+def scatter_factors(runs, tau_frames, n_features, *, effective=None):
     """Per state, how much more its run means scatter than its features' times allow: the
     median over the features of ``max(1, Q / dof)``.
 
@@ -404,7 +414,7 @@ def scatter_factors(runs, tau_frames, n_features, *, skip_states=()):
     says, for every feature alike; the median over many features (the screened descriptors,
     not a CV the search chose because its run means differ) is not lifted by a selection,
     and is about 1 when the runs agree (``Q / dof`` is below 1 for most features then: for
-    two runs, ``P(chi2_1 < 1) = 0.68``). States of one run, or in `skip_states`, get 1.
+    two runs, ``P(chi2_1 < 1) = 0.68``). States of one run get 1.
 
     Parameters
     ----------
@@ -413,7 +423,8 @@ def scatter_factors(runs, tau_frames, n_features, *, skip_states=()):
     tau_frames : dict of int to array-like of shape (n_features,)
         Per state, the integrated times within its runs, frames.
     n_features : int
-    skip_states : iterable of int, default=()
+    effective : dict of (int, int) to float, default=None
+        Kish effective frames of reweighted runs (as :func:`runs_too_short` takes).
 
     Returns
     -------
@@ -435,7 +446,7 @@ def scatter_factors(runs, tau_frames, n_features, *, skip_states=()):
     True
     """
     out = {s: 1.0 for s in tau_frames}
-    for s, (tau, q, dof) in _run_scatter(runs, tau_frames, n_features, skip_states).items():
+    for s, (tau, q, dof) in _run_scatter(runs, tau_frames, n_features, effective).items():
         ratio = np.maximum(q / dof, 1.0)[np.isfinite(tau) & np.isfinite(q)]
         out[s] = float(np.median(ratio)) if ratio.size else 1.0
     return out
