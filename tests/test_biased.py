@@ -1154,6 +1154,25 @@ def test_a_clock_bias_slower_than_simulation_time_is_warned_about(tmp_path):
             100 * np.mean(v > 0)))), w), w
 
 
+def test_a_clock_that_stops_is_named_when_no_lagged_pairs_are_left(zero_bias, tmp_path):
+    """A bias column of -1000 kJ/mol on every frame (energies about a far reference): the
+    weights are unchanged, but the rescaled clock stops, so no pair is left at any lag; the
+    refusal (objective both) and the note (separate) name the clock as the cause, not only
+    the lag."""
+    top, files, _ = zero_bias
+    bias = {f: _write_bias(tmp_path / (Path(f).stem + ".bias"), np.full(2000, -1000.0))
+            for fs in files.values() for f in fs}
+    src = Source.from_states(top, files, bias=bias, temperature=300.0)
+    kw = dict(n_bootstrap=0, max_terms=1, n_suggestions=1, lag=1.0)
+    with pytest.raises(InputError, match=r"longer than every run .*; but first: the rescaled "
+                                         r"clock runs slower than simulation time in "
+                                         r".*closed-1\.xtc \(bias file .*closed-1\.bias"):
+        suggest(src, objective="both", **kw)
+    res = suggest(src, objective="separate", **kw)
+    note = next(n for n in res.notes if n.startswith("slowness not measured"))
+    assert "; but first: the rescaled clock runs slower than simulation time" in note
+
+
 def test_suggest_command_warns_on_standard_error_about_a_sign_flipped_bias(tmp_path, capsys):
     """Two double-well runs, one per well, the left one's bias given with the wrong sign:
     `cvdesign suggest --lag` warns on standard error and in summary.md that its clock runs

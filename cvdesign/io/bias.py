@@ -640,6 +640,22 @@ class Reweighting:
                 out.append(si)
         return sorted(out)
 
+    def slow_clock_warning(self):
+        """The warning about the biased segments whose rescaled clock runs slower than
+        simulation time (:meth:`slow_clocks`), naming them, or None when none does.
+
+        Examples
+        --------
+        >>> from pathlib import Path
+        >>> from cvdesign.io.source import Segment
+        >>> kt = BOLTZMANN_KJ_MOL_K * 300.0
+        >>> up = Segment(Path("up.xtc"), "a", bias=np.array([0.0, 1.0, 2.0]) * kt)
+        >>> reweight([up], ["a"], 300.0).slow_clock_warning() is None
+        True
+        """
+        slow = self.slow_clocks()
+        return _slow_clock_text(self, slow) if slow else None
+
     def coarse_fraction(self, lags):
         """Share of the biased frames' weight in rescaled steps longer than half the lag.
 

@@ -1073,6 +1073,10 @@ def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags, reweig
     with_pairs = {s for (_, s), m in first.lagged.items() if m.count > 0}
     lagless = [s for s in range(source.n_states) if s not in with_pairs]
     objective = config.objective
+    # a biased run's rescaled clock that hardly moves (a shifted or sign-flipped clock bias)
+    # leaves no pairs at any lag: the cause, not the lag, is then what to fix
+    slow = None if reweighting is None else reweighting.slow_clock_warning()
+    why = "" if slow is None else f"; but first: {slow}"
     if len(lagless) == source.n_states:
         longest = longest_run_text(source, reweighting, seg_counts, steps,
                                     range(source.n_states))
@@ -1080,11 +1084,11 @@ def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags, reweig
             raise InputError(
                 f"lag={lag_ps:g} ps is longer than every run ({longest}): there are no lagged "
                 f"pairs to measure slowness with, which objective {objective!r} needs; choose "
-                "a shorter --lag or give longer runs")
+                f"a shorter --lag or give longer runs{why}")
         return None, None, [
             f"slowness not measured: no run is longer than the lag ({lag_ps:g} ps; "
             f"{longest}), so there are no lagged pairs; the autocorrelation and timescale "
-            "columns are left empty (give a shorter --lag to measure them)"]
+            f"columns are left empty (give a shorter --lag to measure them){why}"]
     if lagless:
         # the other states' runs alone would measure motion within those states, not the
         # slowness of a CV that separates them (the slow coordinate would look fast)
@@ -1095,13 +1099,13 @@ def _slowness_lag(source, config, seg_counts, steps, first, lag_ps, lags, reweig
                 f"lag={lag_ps:g} ps is longer than every run of state(s) {names} ({longest}): "
                 "slowness would be measured on the other states' runs alone, within them, "
                 f"which objective {objective!r} cannot rank on; choose a shorter --lag or give "
-                "longer runs of those states")
+                f"longer runs of those states{why}")
         return None, None, [
             f"slowness not measured: no run of state(s) {names} is longer than the lag "
             f"({lag_ps:g} ps; {longest}), and the other states' runs alone would measure "
             "motion within those states, not between them; the autocorrelation and "
             "timescale columns are left empty (give a shorter --lag or longer runs of those "
-            "states to measure them)"]
+            f"states to measure them){why}"]
     return lag_ps, lags, [
         f"lag: {lag_ps:g} ps"
         + (" (default: 10 frames, for the slowness columns only)" if config.lag_ps is None
