@@ -338,7 +338,7 @@ def test_funnel_energy_and_forces_equal_the_reference_restraint_energy(box_name)
     energy, grad = spec.restraint_energy(xyz, box=box, gradient=True)
     assert np.count_nonzero(energy > 1.0) >= 6  # most regimes push back
     with warnings.catch_warnings():  # (the boxes hold the funnel; said in the warning)
-        warnings.filterwarnings("ignore", message=".*make sure every height of the Context")
+        warnings.filterwarnings("ignore", message=".*make sure the Context's box has a_x")
         force = spec.restraint_to_openmm(periodic=box is not None)
     omm_energy, omm_forces = _openmm_eval(force, xyz, box)
     _assert_close(omm_energy, energy)
@@ -416,8 +416,8 @@ def test_a_funnel_longer_than_half_the_systems_box_is_refused(tmp_path, capsys):
     assert 1.5 < reach < 2.55
     small = _system(7, True, box=3.0 * np.eye(3))
     message = (rf"spec 'funnel': the funnel reaches {reach:.4g} nm from the pocket centre "
-               r"\(its upper wall\), more than half the smallest height of the openmm\.System's "
-               r"box \(1\.5 nm\).* every height is above")
+               r"\(its upper wall\), more than half the smallest of a_x, b_y and c_z of the "
+               r"openmm\.System's box \(1\.5 nm\).* a_x, b_y and c_z are each above")
     for build in (_funnel_spec().restraint_to_openmm, _funnel_spec().to_openmm):
         with pytest.raises(InputError, match=message):
             build(system=small)
@@ -426,10 +426,11 @@ def test_a_funnel_longer_than_half_the_systems_box_is_refused(tmp_path, capsys):
     # OpenMM's default 2 nm cube (a box never set) is checked too; with periodic=True and no
     # System the box the Context needs is said
     with pytest.warns(UserWarning, match="default, a 2 nm cube"), \
-            pytest.raises(InputError, match=r"more than half the smallest height .* \(1 nm\)"):
+            pytest.raises(InputError, match=r"more than half the smallest of a_x, b_y and c_z "
+                                            r".* \(1 nm\)"):
         _funnel_spec().restraint_to_openmm(system=_system(7, True, box=None))
-    with pytest.warns(UserWarning, match=rf"make sure every height of the Context's box "
-                                         rf"exceeds {2 * reach:.4g} nm"):
+    with pytest.warns(UserWarning, match=rf"make sure the Context's box has a_x, b_y and c_z "
+                                         rf"each above {2 * reach:.4g} nm"):
         _funnel_spec().restraint_to_openmm(periodic=True)
     # and the command leaves nothing behind
     _funnel_spec().save(tmp_path / "funnel.json")
@@ -439,7 +440,7 @@ def test_a_funnel_longer_than_half_the_systems_box_is_refused(tmp_path, capsys):
     assert main(["export", str(tmp_path / "funnel.json"), "--to", "openmm",
                  "--out", str(tmp_path / "cv.xml"), "--restraint-out",
                  str(tmp_path / "restraint.xml"), "--system", str(system)]) == 2
-    assert "more than half the smallest height" in capsys.readouterr().err
+    assert "more than half the smallest of a_x, b_y and c_z" in capsys.readouterr().err
     assert sorted(tmp_path.iterdir()) == before
     # a System whose box was never set: the default box is named before the refusal
     unset = tmp_path / "unset.xml"
@@ -449,14 +450,32 @@ def test_a_funnel_longer_than_half_the_systems_box_is_refused(tmp_path, capsys):
                  str(tmp_path / "restraint.xml"), "--system", str(unset)]) == 2
     err = capsys.readouterr().err
     assert err.index("box is OpenMM's default, a 2 nm cube") < err.index(
-        "more than half the smallest height of the openmm.System's box (1 nm)")
+        "more than half the smallest of a_x, b_y and c_z of the openmm.System's box (1 nm)")
     # --periodic without a System: the box the run needs is said once, as a warning
     assert main(["export", str(tmp_path / "funnel.json"), "--to", "openmm",
                  "--out", str(tmp_path / "cv.xml"), "--restraint-out",
                  str(tmp_path / "restraint.xml"), "--periodic"]) == 0
     err = capsys.readouterr().err
-    assert err.count(f"make sure every height of the Context's box exceeds {2 * reach:.4g} "
-                     "nm") == 1 and "cvdesign export: warning: spec 'funnel'" in err
+    assert err.count(f"make sure the Context's box has a_x, b_y and c_z each above "
+                     f"{2 * reach:.4g} nm") == 1 and "cvdesign export: warning: spec 'funnel'" in err
+
+
+def test_a_funnel_beyond_openmms_exact_reach_in_a_triclinic_box_is_refused():
+    """A rhombic dodecahedron (square xy face) of image distance d: OpenMM takes periodic
+    images one box vector at a time, exact only within half the smallest of a_x, b_y, c_z
+    (c_z / 2 = 0.354 d), below half its faces' distance; the last float32 bit of c_x (as a
+    trajectory stores it) had moved the check to half the heights of another cell (0.408 d),
+    and a funnel between the two was exported, OpenMM giving a ligand inside it 560 kJ/mol
+    (a review's measurement)."""
+    reach = funnel_reach(FUNNEL)[0]
+    d = reach / 0.38  # the reach between 0.354 d and 0.408 d
+    for cx in (d / 2, float(np.nextafter(np.float32(d / 2), np.float32(0.0)))):
+        box = np.array([[d, 0.0, 0.0], [0.0, d, 0.0], [cx, d / 2, d / 2 ** 0.5]])
+        assert reach < 0.5 * box_heights(box).max()
+        with pytest.raises(InputError, match=rf"more than half the smallest of a_x, b_y and "
+                                             rf"c_z of the openmm\.System's box "
+                                             rf"\({d / 2 ** 1.5:.4g} nm\)"):
+            _funnel_spec().restraint_to_openmm(system=_system(7, True, box=box))
 
 
 def test_without_openmm_the_export_says_how_to_install_it(monkeypatch):

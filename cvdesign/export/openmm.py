@@ -327,25 +327,59 @@ def _default_box_nm(system, openmm):
 
 
 def _check_funnel_reach(document, system, openmm):
-    """Refuse a funnel restraint that reaches farther from the pocket than half the smallest
-    height of the System's box: beyond it the minimum image folds the ligand-pocket vector,
-    and the restraint (and the funnel's CV) would push a ligand still inside the funnel."""
-    from ..geometry.box import box_heights
-
+    """Refuse a funnel restraint that reaches farther from the pocket than OpenMM's periodic
+    displacements are exact: half the smallest of the diagonal elements ``a_x, b_y, c_z`` of
+    the System's box (OpenMM keeps box vectors in its reduced form and takes the periodic
+    image of a displacement one box vector at a time, c, then b, then a, which gives the
+    nearest image only within that; OpenMM's documentation, from memory). Beyond it the
+    image folds the ligand-pocket vector, and the restraint (and the funnel's CV) would push
+    a ligand still inside the funnel. For a triclinic box this is below half the smallest
+    height of the box (a rhombic dodecahedron of image distance d: c_z / 2 = 0.354 d, while
+    its faces are d / 2 apart), which cvdesign's own evaluator, exact at any distance, would
+    allow."""
     farthest = _funnel_reach(document)
     if farthest is None:
         return
     reach, where = farthest
-    half = 0.5 * float(box_heights(_default_box_nm(system, openmm)).min())
+    half = openmm_exact_reach_nm(_default_box_nm(system, openmm))
     if reach > half:
         raise InputError(
             f"spec {document['name']!r}: the funnel reaches {reach:.4g} nm from the pocket "
-            f"centre (its {where}), more than half the smallest height of the "
-            f"openmm.System's box ({half:.4g} nm): there the periodic image folds the "
-            "ligand's offset, and the restraint would push a ligand that is still inside "
-            "the funnel. Use a box whose every height is above "
-            f"{2 * reach:.4g} nm, or size a shorter funnel (cvdesign funnel "
-            "--unbound-length)")
+            f"centre (its {where}), more than half the smallest of a_x, b_y and c_z of the "
+            f"openmm.System's box ({half:.4g} nm), within which OpenMM's periodic "
+            "displacements are exact: beyond it the periodic image folds the ligand's "
+            "offset, and the restraint would push a ligand that is still inside the funnel. "
+            f"Use a box whose a_x, b_y and c_z are each above {2 * reach:.4g} nm, or size a "
+            "shorter funnel (cvdesign funnel --unbound-length)")
+
+
+def openmm_exact_reach_nm(box_vectors_nm):
+    """How far a displacement may reach, nm, for OpenMM's periodic image of it to be the
+    nearest one: half the smallest of the diagonal elements ``a_x, b_y, c_z`` of box vectors
+    in OpenMM's reduced form (rows; ``a = (a_x, 0, 0)``, ``b = (b_x, b_y, 0)``,
+    ``c = (c_x, c_y, c_z)``), as OpenMM takes the image one box vector at a time (c, b,
+    then a; OpenMM's documentation on periodic boxes, from memory).
+
+    Parameters
+    ----------
+    box_vectors_nm : array-like of shape (3, 3)
+        Box vectors as rows, nm.
+
+    Returns
+    -------
+    float
+        nm.
+
+    Examples
+    --------
+    >>> openmm_exact_reach_nm([[4.0, 0, 0], [0, 5.0, 0], [0, 0, 6.0]])  # a brick: half its edge
+    2.0
+    >>> d = 2.5  # a rhombic dodecahedron of image distance d (xy-square form)
+    >>> round(openmm_exact_reach_nm([[d, 0, 0], [0, d, 0], [d / 2, d / 2, d / 2 ** 0.5]]), 4)
+    0.8839
+    """
+    box = np.asarray(box_vectors_nm, dtype=np.float64).reshape(3, 3)
+    return 0.5 * float(min(box[0, 0], box[1, 1], box[2, 2]))
 
 
 def _periodic_flag(openmm, document, periodic, system):
@@ -380,9 +414,10 @@ def _periodic_flag(openmm, document, periodic, system):
         reach = farthest[0]
         warnings.warn(
             f"spec {name!r}: the funnel reaches {reach:.4g} nm from the pocket centre; with "
-            f"periodic=True and no System to check, make sure every height of the Context's "
-            f"box exceeds {2 * reach:.4g} nm (beyond half of it the periodic image folds the "
-            "ligand's offset), or pass the openmm.System as system= to have it checked",
+            f"periodic=True and no System to check, make sure the Context's box has a_x, "
+            f"b_y and c_z each above {2 * reach:.4g} nm (beyond half of them OpenMM's "
+            "periodic image folds the ligand's offset), or pass the openmm.System as "
+            "system= to have it checked",
             UserWarning, stacklevel=4)
     if periodic is None:
         raise InputError(
