@@ -926,7 +926,7 @@ def _refuse_repeated_files(paths):
 
 def _cmd_apply(args):
     from ..io.atomic import atomic_open, check_output_file
-    from ..io.source import Source, stores_time
+    from ..io.source import Source, missing_box_warning, stores_time
     from ..pipeline.output import run_file_names
     from ..spec import load_spec
 
@@ -948,12 +948,15 @@ def _cmd_apply(args):
     file_names = run_file_names(seg.path for seg in source.segments)
     names = [file_names[str(seg.path)] for seg in source.segments]
     undefined = [_Undefined(spec, name) for name in names]
+    unboxed = {}  # files whose frames hold no box, in order
 
     def rows(fh):
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(["file", "frame", "time_ps", "value", "undefined"])
         for chunk in source.iter_chunks(progress="apply"):
             traj = chunk.trajectory
+            if traj.unitcell_vectors is None:
+                unboxed[str(source.segments[chunk.segment_index].path)] = None
             values, marks = undefined[chunk.segment_index].evaluate(traj, chunk.frames)
             path = source.segments[chunk.segment_index].path
             timed = stores_time(path) and chunk.segment_index not in untimed
@@ -971,6 +974,9 @@ def _cmd_apply(args):
     for file in undefined:  # the CSV's undefined column names them frame by frame
         if file.message() is not None:
             _log.warning("%s (their undefined column names the descriptors)", file.message())
+    boxless = missing_box_warning(args.topology, list(unboxed))
+    if boxless is not None:
+        _log.warning("%s", boxless)
     if args.out is None:
         sys.stdout.write(buf.getvalue())
     elif not args.quiet:
@@ -1132,21 +1138,27 @@ _RANGE_SLACK = 1e-9
 _OBSERVED_SLACK = 1e-5
 
 
-def _reference_values(spec, topology, traj):
+def _reference_values(spec, topology, traj, topology_path=None):
     """The spec's reference values on every frame of `traj`, the frame numbers, and the set of
     frames that hold stand-in values for undefined descriptors (a line on standard output
-    names them)."""
-    from ..io.source import Source
+    names them, and one says when the topology file `topology_path` has a periodic box that
+    `traj` does not store)."""
+    from ..io.source import Source, missing_box_warning
 
     src = Source(topology)
     src.add(traj, state="check")
     ours, idx = [], []
     undefined = _Undefined(spec, traj)
+    boxed = True
     for chunk in src.iter_chunks(progress="check"):
         ours.append(undefined.evaluate(chunk.trajectory, chunk.frames)[0])
         idx.append(chunk.frames)
+        boxed = boxed and chunk.trajectory.unitcell_vectors is not None
     if undefined.message() is not None:
         print(f"warning: {undefined.message()} (an engine may give these frames other values)")
+    boxless = None if boxed else missing_box_warning(topology_path, [traj])
+    if boxless is not None:
+        print(f"warning: {boxless}")
     return np.concatenate(ours), np.concatenate(idx), set(undefined.frames)
 
 
@@ -1265,12 +1277,12 @@ def _cmd_check(args):
                                                                     else 1.0)
     in_range = True
     for traj in args.trajectory or []:
-        ours, idx, _ = _reference_values(spec, source.topology, traj)
+        ours, idx, _ = _reference_values(spec, source.topology, traj, args.topology)
         in_range &= _range_check(reach, seen, traj, ours, idx, period)
     worst_all = 0.0
     for values_path, traj in args.against or []:
         frames, theirs = _read_values(values_path, args.column, traj)
-        ours, idx, stand_in = _reference_values(spec, source.topology, traj)
+        ours, idx, stand_in = _reference_values(spec, source.topology, traj, args.topology)
         in_range &= _range_check(reach, seen, traj, ours, idx, period)
         if frames is None:
             if theirs.size != ours.size:

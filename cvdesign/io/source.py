@@ -25,6 +25,7 @@ from ..errors import InputError
 
 __all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "describe_selection",
            "file_frames", "file_sha256", "stores_time", "quiet_stdout", "check_box",
+           "topology_box_nm", "missing_box_warning",
            "check_finite", "check_label_count", "every_atom", "default_selection_warnings",
            "MAX_COPIES"]
 
@@ -395,6 +396,81 @@ def _check_readable_format(path, what):
         other = "a PDB, PSF or PRMTOP topology" if what == "topology" else "XTC or DCD"
         raise _unreadable(path, what, reason="reading HDF5 needs PyTables, which is not "
                           "installed", todo=f"pip install tables, or convert the file to {other}")
+
+
+#: Topology formats that can store a periodic box (PDB CRYST1, GRO box line, mdtraj HDF5).
+_BOXED_TOPOLOGIES = (".pdb", ".pdb.gz", ".gro", ".h5", ".pdbx", ".cif")
+
+
+def topology_box_nm(path):
+    """The periodic box a topology file stores (PDB ``CRYST1``, GRO box line, ...), as box
+    vectors (rows, nm), or None when it stores none (or the format has no box).
+
+    Parameters
+    ----------
+    path : str or path-like or mdtraj.Topology or None
+        A topology file; a :class:`mdtraj.Topology` or None has no box.
+
+    Returns
+    -------
+    ndarray of shape (3, 3) or None
+
+    Examples
+    --------
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> top, _ = demo_inputs()
+    >>> topology_box_nm(top) is None  # the demo's PDB has no CRYST1 record
+    True
+    """
+    if path is None or isinstance(path, md.Topology):
+        return None
+    name = str(path).lower()
+    if not name.endswith(_BOXED_TOPOLOGIES):
+        return None
+    try:
+        with quiet_stdout():
+            frame = md.load_frame(str(path), 0)
+    except Exception:  # (the topology itself was read: a file with no frame has no box)
+        return None
+    box = frame.unitcell_vectors
+    if box is None or not np.all(np.isfinite(box)) or not abs(np.linalg.det(box[0])) > 0:
+        return None
+    return np.asarray(box[0], dtype=np.float64)
+
+
+def missing_box_warning(topology_path, files):
+    """The warning when a topology file stores a periodic box but the trajectory `files`
+    store none, so their distances are taken without periodic images; None otherwise.
+
+    Parameters
+    ----------
+    topology_path : str or path-like or None
+    files : sequence of str
+        Trajectory files whose frames hold no box.
+
+    Returns
+    -------
+    str or None
+
+    Examples
+    --------
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> top, files = demo_inputs()
+    >>> missing_box_warning(top, files["closed"]) is None  # no box in the topology either
+    True
+    """
+    if not files:
+        return None
+    box = topology_box_nm(topology_path)
+    if box is None:
+        return None
+    names = ", ".join(repr(str(f)) for f in files)
+    lengths = " x ".join(f"{v:.4g}" for v in np.linalg.norm(box, axis=1))
+    return (f"topology file {str(topology_path)!r} has a periodic box ({lengths} nm), but "
+            f"trajectory {names} stores{'' if len(files) == 1 else ' each'} none: distances "
+            "in it are taken without periodic images, which is wrong if the run was "
+            "periodic; give a trajectory format that stores the box (XTC, TRR, DCD with unit "
+            "cells, NetCDF, ...), or ignore this if the run had no box")
 
 
 def load_topology(path):

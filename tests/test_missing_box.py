@@ -1,0 +1,88 @@
+"""A topology file with a periodic box beside trajectories that store none.
+
+The frames are then read without periodic images (their distances plain Euclidean), which
+is wrong if the run was periodic: `apply`, `check` and `suggest` say so, naming the files;
+a trajectory that stores its box, or a topology without one, gets no such word.
+"""
+
+import mdtraj as md
+import numpy as np
+import pytest
+
+from cvdesign import Source, Spec, suggest
+from cvdesign.cli import main
+from cvdesign.io.source import missing_box_warning, topology_box_nm
+
+_BOX_NM = 3.0
+
+
+@pytest.fixture(scope="module")
+def runs(tmp_path_factory):
+    """Four atoms in a 3 nm cube: a PDB with CRYST1, the same frames as a DCD without unit
+    cells and as an XTC (which stores the box), two states (atom C2 near or far)."""
+    d = tmp_path_factory.mktemp("box")
+    rng = np.random.default_rng(21)
+    top = md.Topology()
+    res = top.add_residue("BOX", top.add_chain())
+    for i in range(4):
+        top.add_atom(f"C{i + 1}", md.element.carbon, res)
+    out = {}
+    for state, reach in (("near", 0.4), ("far", 0.9)):
+        place = np.array([[0.2, 0.2, 0.2], [0.2 + reach, 0.2, 0.2], [0.2, 1.0, 0.2],
+                          [1.0, 1.0, 1.0]])
+        xyz = (place + rng.normal(0.0, 0.02, size=(300, 4, 3))).astype(np.float32)
+        traj = md.Trajectory(xyz, top, time=np.arange(300.0),
+                             unitcell_lengths=np.full((300, 3), _BOX_NM, np.float32),
+                             unitcell_angles=np.full((300, 3), 90.0, np.float32))
+        traj.save_xtc(str(d / f"{state}.xtc"))
+        bare = md.Trajectory(xyz, top, time=np.arange(300.0))
+        bare.save_dcd(str(d / f"{state}.dcd"))
+        out[state] = (str(d / f"{state}.xtc"), str(d / f"{state}.dcd"))
+        if state == "near":
+            traj[:1].save_pdb(str(d / "boxed.pdb"))
+            bare[:1].save_pdb(str(d / "plain.pdb"))
+    spec = Spec(name="d", topology=top,
+                descriptors=[{"id": "d", "kind": "distance", "atoms": [0, 1]}],
+                terms=[{"descriptor": "d", "transform": "identity", "center": 0.0,
+                        "scale": 1.0, "weight": 1.0}])
+    spec.save(d / "d.json")
+    return d, out
+
+
+def test_the_topology_box_is_read_from_a_pdb_and_its_absence_said(runs):
+    d, out = runs
+    np.testing.assert_allclose(topology_box_nm(d / "boxed.pdb"), _BOX_NM * np.eye(3), atol=1e-3)
+    assert topology_box_nm(d / "plain.pdb") is None
+    text = missing_box_warning(d / "boxed.pdb", [out["near"][1]])
+    assert text.startswith(f"topology file '{d / 'boxed.pdb'}' has a periodic box (3 x 3 x 3 "
+                           f"nm), but trajectory '{out['near'][1]}' stores none: distances")
+    assert missing_box_warning(d / "plain.pdb", [out["near"][1]]) is None
+    assert missing_box_warning(d / "boxed.pdb", []) is None
+
+
+def test_apply_and_check_say_when_the_trajectory_has_no_box_the_topology_has(
+        runs, capsys):
+    d, out = runs
+    spec, top = str(d / "d.json"), str(d / "boxed.pdb")
+    assert main(["apply", spec, "--topology", top, out["near"][1]]) == 0
+    assert "has a periodic box (3 x 3 x 3 nm), but trajectory" in capsys.readouterr().err
+    assert main(["apply", spec, "--topology", top, out["near"][0]]) == 0  # XTC: its box
+    assert "periodic box" not in capsys.readouterr().err
+    assert main(["apply", spec, "--topology", str(d / "plain.pdb"), out["near"][1]]) == 0
+    assert "periodic box" not in capsys.readouterr().err
+    assert main(["check", spec, "--topology", top, "--trajectory", out["near"][1]]) == 0
+    assert "warning: topology file" in capsys.readouterr().out
+    assert main(["check", spec, "--topology", top, "--trajectory", out["near"][0]]) == 0
+    assert "warning: topology file" not in capsys.readouterr().out
+
+
+def test_suggest_warns_when_no_trajectory_stores_the_box_the_topology_has(runs):
+    d, out = runs
+    kw = dict(n_bootstrap=0, max_terms=1, n_suggestions=1)
+    bare = suggest(Source.from_states(str(d / "boxed.pdb"),
+                                      {s: [f[1]] for s, f in out.items()}), **kw)
+    assert any(n.startswith("warning: topology file") and "stores each none" in n
+               for n in bare.notes)
+    boxed = suggest(Source.from_states(str(d / "boxed.pdb"),
+                                       {s: [f[0]] for s, f in out.items()}), **kw)
+    assert not any("warning: topology file" in n for n in boxed.notes)
