@@ -64,7 +64,7 @@ from ..geometry.contacts import _SERIES_RANGE, _switch_series, coordination_pair
 
 __all__ = ["FUNNEL_EXPRESSION", "FUNNEL_PARAMETERS", "OPENMM_DEFAULT_BOX_NM", "OPENMM_MISSING",
            "cv_expression", "cv_force", "default_box_message", "import_openmm", "read_system",
-           "restraint_force", "switching_expression"]
+           "openmm_exact_reach_nm", "restraint_force", "switching_expression"]
 
 #: nm: edge of the cubic box OpenMM gives a System whose box was never set.
 OPENMM_DEFAULT_BOX_NM = 2.0
