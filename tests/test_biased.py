@@ -1302,3 +1302,18 @@ def test_a_labels_file_saved_with_a_byte_order_mark_keeps_its_first_label(tmp_pa
     path = tmp_path / "run.labels"
     path.write_bytes("closed\n-\nopen\n".encode("utf-8-sig"))
     assert read_labels_file(path).tolist() == ["closed", None, "open"]
+
+
+def test_the_coarse_lag_warning_says_when_the_lag_is_the_default():
+    from cvdesign.io.bias import reweight
+    from cvdesign.io.source import Segment
+
+    # every frame at 3 kT: rescaled steps of e^3 = 20 frame spacings, over half a lag of 10
+    seg = Segment(Path("run.xtc"), "a", bias=np.full(50, 3.0 * KT))
+    rw = reweight([seg], ["a"], 300.0)
+    chosen = [w for w in rw.describe({0: 10})[1] if "the lag is short" in w]
+    default = [w for w in rw.describe({0: 10}, default_lag=True)[1] if "the lag is short" in w]
+    assert len(chosen) == len(default) == 1
+    assert "default" not in chosen[0]
+    assert default[0].endswith("(this lag is the default of 10 frames, not one chosen; with "
+                               "objective 'separate' it sizes only the slowness columns)")

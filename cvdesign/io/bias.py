@@ -685,7 +685,7 @@ class Reweighting:
             total += float(w.sum())
         return coarse / total if total > 0 else 0.0
 
-    def describe(self, lags=None):
+    def describe(self, lags=None, *, default_lag=False):
         """Notes for the summary: what was reweighted, the effective sample sizes, warnings.
 
         Parameters
@@ -694,6 +694,8 @@ class Reweighting:
             Lag of each segment in frame spacings, when slowness is measured
             (then the rescaled-time caveat is added, and a warning when the
             lag is short for the rescaled steps).
+        default_lag : bool, default=False
+            The lag is a default, not one the user chose (the warning says so).
 
         Returns
         -------
@@ -774,7 +776,10 @@ class Reweighting:
                 w = (f"the lag is short for rescaled time: {coarse:.0%} of the biased runs' "
                      "weight is in frames whose rescaled step dt exp(V/kT) exceeds half the "
                      "lag, so their pairs are taken at a rescaled lag off by a quarter of it or "
-                     "more; choose a longer --lag, or save frames more often")
+                     "more; choose a longer --lag, or save frames more often"
+                     + (" (this lag is the default of 10 frames, not one chosen; with "
+                        "objective 'separate' it sizes only the slowness columns)"
+                        if default_lag else ""))
                 warnings.append(w)
                 notes.append("warning: " + w)
             notes.append(

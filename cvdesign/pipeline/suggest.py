@@ -411,7 +411,7 @@ def _suggest(source, config, executor, progress, checksums):
     notes += lag_note
     if reweighting is not None:
         _refuse_single_frame_states(source, reweighting)
-        rw_notes, _ = reweighting.describe(lags)
+        rw_notes, _ = reweighting.describe(lags, default_lag=config.lag_ps is None)
         notes += rw_notes
         say("reweighted biased runs; effective sample sizes (Kish): " + ", ".join(
             f"{source.states[s]!r} {reweighting.ess[s]:.1f} of {reweighting.frames[s]} frames"
