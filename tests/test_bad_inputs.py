@@ -38,6 +38,7 @@ import pytest
 import cvdesign
 from cvdesign import InputError, Source, Spec, SpecError, TopologyMismatchError, load_spec
 from cvdesign.bias.funnel import size_funnel_from_source
+from cvdesign.bias.hints import spec_hints
 from cvdesign.cli import EXIT_BROKEN_PIPE, main
 from cvdesign.errors import SchedulerUnreachableError
 from cvdesign.parallel import DaskExecutor
@@ -67,6 +68,21 @@ def _hand_spec(topology, states=None):
                 terms=[{"descriptor": "d0", "transform": "identity", "center": 0.7,
                         "scale": 0.1, "weight": 1.0}], states=states)
 
+
+
+def _edit_terms(doc, **changes):
+    doc["terms"][0].update(changes)
+    del doc["reachable_range"]  # as the old range message advised
+
+
+#: Hand edits of the shared cv.json, each written as its own file by `shared`.
+_SPEC_EDITS = {
+    "stale.json": lambda d: _edit_terms(d, weight=10.0),  # states left in the old CV units
+    "tiny.json": lambda d: _edit_terms(d, scale=1e-320),  # weight / scale overflows
+    "twice.json": lambda d: [d["terms"].append(dict(d["terms"][0])), _edit_terms(d)],
+    "unreachable.json": lambda d: d["states"]["open"].update(mean=-20.0),
+    "tau.json": lambda d: d["scores"].update(integrated_time_ps=-1.0),
+}
 
 
 def _with_temperature(extra):
@@ -114,6 +130,10 @@ def shared(tmp_path_factory, demo_files):
     (d / "latin1.json").write_bytes('{"name": "caf\xe9"}'.encode("latin-1"))
     good = (d / "cv.json").read_text()
     (d / "nan.json").write_text(good.replace('"offset": 0.0', '"offset": NaN'))
+    for name, edit in _SPEC_EDITS.items():
+        doc = json.loads(good)
+        edit(doc)
+        (d / name).write_text(json.dumps(doc, indent=2))
     (d / "other.json").write_text(json.dumps({"format": "some-other-tool", "version": 1}))
     return {"top": top, "closed": states["closed"][0], "open": states["open"][0], "dir": d,
             "data": Path(top).parent}
@@ -503,6 +523,22 @@ CLI_CASES = [
     Case("apply-spec-with-nan",
          lambda c: c.apply(spec=c.s("nan.json")), 2,
          r"\$\.offset: NaN is not allowed in a spec"),
+    Case("apply-spec-scale-overflowing",  # wrote -inf
+         lambda c: c.apply(spec=c.s("tiny.json")), 2,
+         r"\$\.terms\[0\]\.scale: weight / scale is not a finite number .* \[spec file "
+         r"'.*tiny\.json'\]"),
+    Case("apply-spec-term-repeated",  # counted the term twice
+         lambda c: c.apply(spec=c.s("twice.json")), 2,
+         r"\$\.terms\[1\]: repeats the identity term of descriptor 'd0' \(first at "
+         r"\$\.terms\[0\]\)"),
+    Case("apply-spec-state-mean-unreachable",
+         lambda c: c.apply(spec=c.s("unreachable.json")), 2,
+         r"\$\.states\.open\.mean: -20\.0 lies outside the values the CV can reach "
+         r"\[-7\.0, null \(unbounded\)\]"),
+    Case("check-spec-with-stale-states",  # printed the old observed range as this CV's
+         lambda c: ["check", c.s("stale.json"), "--topology", c.top], 2,
+         r"\$\.cv_digest: spec file '.*stale\.json': its states and observed_range \(read "
+         r"here: observed_range\)"),
     Case("apply-spec-of-another-format",
          lambda c: c.apply(spec=c.s("other.json")), 2,
          r"this is not a cvdesign spec: format is \"some-other-tool\""),
@@ -583,6 +619,15 @@ CLI_CASES = [
          lambda c: c.hints(c.s("nospread.json")), 2,
          r"nospread\.json: no hints: spec 'cv-test' records no states; hints need the CV's "
          r"mean and within-state spread"),
+    Case("hints-spec-with-stale-states",  # sized walls from states of another CV, silently
+         lambda c: c.hints(c.s("stale.json")), 2,
+         r"\$\.cv_digest: spec file '.*stale\.json': its states and observed_range \(read "
+         r"here: states\) are in the units of the CV they were computed for, and the CV was "
+         r"edited since"),
+    Case("hints-spec-negative-integrated-time",
+         lambda c: c.hints(c.s("tau.json")), 2,
+         r"tau\.json: no hints: \$\.scores\.integrated_time_ps of spec file '.*tau\.json' is "
+         r"-1\.0: it must be a positive number of ps"),
     Case("hints-spec-nested-deep",
          lambda c: c.hints(c.s("deep.json")), 2,
          r"nests lists or objects more than 100 levels deep"),
@@ -779,6 +824,10 @@ API_CASES = [
     Case("api-spec-from-dict-containing-itself",
          lambda c: lambda: Spec.from_dict(_self_containing_spec()), SpecError,
          r"more than 100 levels deep"),
+    Case("api-spec-hints-of-stale-states",
+         lambda c: lambda: spec_hints(load_spec(c.s("stale.json")), temperature=300.0,
+                                      md_step_fs=2.0), SpecError,
+         r"^\$\.cv_digest: spec file '.*stale\.json': its states and observed_range"),
     Case("api-evaluate-trajectory-and-box",
          lambda c: lambda: load_spec(c.s("cv.json")).evaluate(_boxed_trajectory(c),
                                                               box=[5.0, 5.0, 5.0]),

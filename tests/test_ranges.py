@@ -63,12 +63,12 @@ def test_the_chain_builder_sets_the_angles_and_dihedrals_it_is_given():
 def _random_trig_spec(rng, n_descriptors):
     """A CV of cos and sin terms on the first `n_descriptors` dihedrals of the chain: the
     first two terms are cos and sin of t0 (shared), then 1-5 more terms on random dihedrals
-    (shared or distinct, the same transform possibly twice); random weights, centres,
-    scales and offset."""
+    (shared or distinct; a descriptor's transform at most once: a spec refuses a repeat);
+    random weights, centres, scales and offset."""
     terms = [{"descriptor": "t0", "transform": "cos"}, {"descriptor": "t0", "transform": "sin"}]
-    for _ in range(rng.integers(1, 6)):
-        terms.append({"descriptor": f"t{rng.integers(0, n_descriptors)}",
-                      "transform": str(rng.choice(["cos", "sin"]))})
+    free = [(f"t{k}", t) for k in range(1, n_descriptors) for t in ("cos", "sin")]
+    for k in rng.permutation(len(free))[:rng.integers(1, 6)]:
+        terms.append({"descriptor": free[k][0], "transform": free[k][1]})
     for t in terms:
         t.update(center=float(rng.uniform(-1, 1)), scale=float(rng.uniform(0.2, 2.0)),
                  weight=float(rng.normal(0.0, 1.5)))

@@ -229,8 +229,8 @@ def _suggested_documents(tmp_path):
     """Two spec documents (dicts, as ``suggest(...).specs`` holds them) of the two-wells toy:
     a distance, and the same distance with a torsion's cos term."""
     one = _spec([("x", "distance", [0, 3], "identity", 0.5, 1.0)],
-                states={"slowA": {"mean": -1.0, "std": 0.2, "n_frames": 10},
-                        "slowB": {"mean": 1.0, "std": 0.4, "n_frames": 10}})
+                states={"slowA": {"mean": 1.0, "std": 0.2, "n_frames": 10},
+                        "slowB": {"mean": 3.0, "std": 0.4, "n_frames": 10}})
     two = _spec([("p", "distance", [0, 3], "identity", 1.0, 2.0),
                  ("t", "dihedral", [0, 1, 2, 3], "cos", 1.0, 1.0)])
     return one, two, one.to_dict(), two.to_dict()
@@ -243,7 +243,7 @@ def test_compare_specs_and_basins_from_spec_take_spec_dicts(tmp_path):
     assert compare_specs(one_doc, two_doc) == expected
     assert compare_specs(one, two_doc) == expected
     assert basins_from_spec(one_doc, core=2.0) == basins_from_spec(one, core=2.0) == {
-        "slowA": (-1.4, -0.6), "slowB": (0.2, 1.8)}
+        "slowA": (0.6, 1.4), "slowB": (2.2, 3.8)}
 
 
 def test_compare_specs_refuses_what_is_not_a_spec_naming_the_argument(tmp_path):

@@ -191,7 +191,7 @@ def test_constructor_rejects_identities_that_contradict_the_topology():
     descriptors = [{"id": "d", "kind": "distance", "atoms": [1, 11], "atom_identities": [wrong, wrong]}]
     terms = [{"descriptor": "d", "transform": "identity", "center": 0.0, "scale": 1.0, "weight": 1.0}]
     with pytest.raises(SpecError, match=r"^\$\.descriptors\[0\]\.atom_identities\[0\]: the identity given for atom 1 \(GLY10:CA"):
-        make_spec(descriptors=descriptors, terms=terms)
+        make_spec(descriptors=descriptors, terms=terms, states={})
 
 
 def test_constructor_defaults_provenance_and_converts_numpy_numbers():
@@ -268,6 +268,7 @@ def test_hand_dihedral_has_the_iupac_sign():
 
 
 def test_evaluate_equals_a_computation_with_mdtraj():
+    # reference: mdtraj geometry (McGibbon et al. 2015, Biophys. J. 109, 1528), float32
     top = peptide_topology()
     spec = make_spec(top)
     traj = md.Trajectory(random_coordinates(20, 15, 2).astype(np.float32), top)
@@ -544,7 +545,7 @@ REJECTIONS = [
     (
         "no terms",
         _set(["terms"], []),
-        r"^\$\.terms: needs at least 1 items; has 0",
+        r"^\$\.terms: needs at least 1 item; has 0",
     ),
     (
         "state with an odd name",
@@ -754,7 +755,7 @@ GROUP_REJECTIONS = [
     ("negative group atom", _set(["descriptors", 2, "groups", 0, 0], -3),
      r"^\$\.descriptors\[2\]\.groups\[0\]\[0\]: must be at least 0; got -3"),
     ("empty group", _set(["descriptors", 1, "groups", 1], []),
-     r"^\$\.descriptors\[1\]\.groups\[1\]: needs at least 1 items; has 0"),
+     r"^\$\.descriptors\[1\]\.groups\[1\]: needs at least 1 item; has 0"),
     ("one group", _set(["descriptors", 1, "groups"], [[5, 6, 7]]),
      r"^\$\.descriptors\[1\]\.groups: needs at least 2 items; has 1"),
     ("three groups", _set(["descriptors", 2, "groups"], [[3], [15], [18]]),
@@ -858,16 +859,51 @@ def test_a_document_in_the_form_the_pipeline_writes_still_loads():
     assert spec.to_dict() == doc
 
 
-@pytest.mark.parametrize(("weight", "scale"), [(0.0, 1.0), (1e308, 1e-308)])
-def test_a_periodic_cv_needs_a_finite_nonzero_period(weight, scale):
+@pytest.mark.parametrize(("weight", "scale", "message"), [
+    (0.0, 1.0, r"^\$\.terms\[0\]\.weight: the term of a periodic CV needs a weight with 0 < 2 pi "
+               r"\|weight\| / scale < infinity"),
+    (1e308, 1e-308, r"^\$\.terms\[0\]\.scale: weight / scale is not a finite number"),
+])
+def test_a_periodic_cv_needs_a_finite_nonzero_period(weight, scale, message):
     doc = make_spec(
         descriptors=[{"id": "psi", "kind": "dihedral", "atoms": [0, 1, 2, 5]}],
         terms=[{"descriptor": "psi", "transform": "identity", "center": 0.0, "scale": 1.0, "weight": 1.0}],
         periodic=True,
     ).to_dict()
     doc["terms"][0].update(weight=weight, scale=scale)
-    with pytest.raises(SpecError, match=r"^\$\.terms\[0\]\.weight: the term of a periodic CV needs a weight with 0 < 2 pi \|weight\| / scale < infinity"):
+    with pytest.raises(SpecError, match=message):
         Spec.from_dict(doc)
+
+
+@pytest.mark.parametrize(("relative", "accepted"), [(1e-12, True), (1e-6, False)])
+def test_a_period_is_checked_to_relative_1e_9(relative, accepted):
+    # the documented rule (docs/spec-v1.md, period: "checked to relative 1e-9")
+    doc = make_spec(
+        descriptors=[{"id": "psi", "kind": "dihedral", "atoms": [0, 1, 2, 5]}],
+        terms=[{"descriptor": "psi", "transform": "identity", "center": 0.0, "scale": 0.5,
+                "weight": 1.5}],
+        periodic=True,
+    ).to_dict()
+    exact = 2 * math.pi * 1.5 / 0.5
+    assert doc["period"] == pytest.approx(exact, rel=1e-15)
+    doc["period"] = exact * (1 + relative)
+    if accepted:
+        assert Spec.from_dict(doc).period == doc["period"]
+    else:
+        with pytest.raises(SpecError, match=r"^\$\.period: must be 2 pi \|weight\| / scale"):
+            Spec.from_dict(doc)
+
+
+@pytest.mark.parametrize(("relative", "accepted"), [(1e-12, True), (1e-6, False)])
+def test_a_stored_reachable_end_is_checked_to_relative_1e_9(relative, accepted):
+    doc = make_spec(states={}).to_dict()
+    lower = doc["reachable_range"]["lower"]
+    doc["reachable_range"]["lower"] = lower - relative * abs(lower)
+    if accepted:
+        Spec.from_dict(doc)
+    else:
+        with pytest.raises(SpecError, match=r"^\$\.reachable_range\.lower: must be "):
+            Spec.from_dict(doc)
 
 
 def _schema_field_names(schema):

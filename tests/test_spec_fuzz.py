@@ -1,7 +1,8 @@
 """Fuzzing Spec.from_dict: any mutation of a valid spec loads or raises SpecError, nothing else.
 
 Valid documents of every descriptor kind (and a periodic CV) are mutated at
-random JSON paths: keys dropped or added, values replaced by other types,
+random JSON paths (a document that still loads must evaluate to finite values, gradients
+and restraint energies, or refuse): keys dropped or added, values replaced by other types,
 NaN, infinities, huge and tiny numbers, huge integers, random strings, nested
 garbage, lists shortened, lengthened or emptied, and values JSON cannot hold
 (tuples, sets, bytes, numpy scalars and arrays, non-string keys). Runs are
@@ -10,13 +11,15 @@ derandomized (fixed seed, no example database) so CI is reproducible.
 
 import copy
 import json
+import warnings
 
 import mdtraj as md
 import numpy as np
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from cvdesign.errors import SpecError
+from cvdesign.errors import CVDesignError, SpecError
+from cvdesign.geometry import GeometryWarning
 from cvdesign.spec import Spec
 
 
@@ -156,8 +159,60 @@ def test_mutated_specs_load_or_raise_spec_error_and_nothing_else(data):
     again = Spec.from_json(spec.to_json())
     assert again == spec
     assert json.loads(spec.to_json()) == spec.to_dict()
+    # and gives finite values, gradients and restraint energies, or refuses to
+    _evaluates_finite_or_refuses(spec)
+
+
+#: Coordinates (nm) of the fuzzed documents' 12 atoms: a few random frames.
+_XYZ = np.random.default_rng(11).normal(scale=0.4, size=(4, 12, 3))
+
+
+def _evaluates_finite_or_refuses(spec):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", GeometryWarning)  # random atoms may line up
+        try:
+            values, grad = spec.evaluate(_XYZ, gradient=True)
+        except CVDesignError as exc:
+            assert "$.terms" in str(exc) or "coordinates" in str(exc), str(exc)
+            return
+        assert np.all(np.isfinite(values)) and np.all(np.isfinite(grad))
+        if spec.restraints:
+            energy, force = spec.restraint_energy(_XYZ, gradient=True)
+            assert np.all(np.isfinite(energy)) and np.all(np.isfinite(force))
 
 
 def test_the_base_documents_are_valid():
     for doc in BASES:
         assert Spec.from_dict(copy.deepcopy(doc)).to_dict() == doc
+
+
+_FINITE = st.one_of(
+    st.sampled_from([1e308, -1e308, 1e300, 1e-300, 1e-320, 5e-324, 0.0, -0.0, 1.0, -2.5]),
+    st.floats(allow_nan=False, allow_infinity=False),
+)
+
+
+@settings(max_examples=200, deadline=None, derandomize=True, database=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(st.data())
+def test_finite_numbers_edited_into_a_spec_evaluate_finite_or_are_refused(data):
+    # the mutations above rarely leave a document that loads; these edits of the numbers
+    # that make the CV (as a hand edit would, the reachable range removed) mostly do
+    doc = copy.deepcopy(BASES[0])
+    del doc["reachable_range"]
+    for _ in range(data.draw(st.integers(1, 4))):
+        where = data.draw(st.sampled_from(["term", "term", "offset", "r0"]))
+        if where == "term":
+            term = doc["terms"][data.draw(st.integers(0, len(doc["terms"]) - 1))]
+            term[data.draw(st.sampled_from(["center", "scale", "weight"]))] = data.draw(_FINITE)
+        elif where == "offset":
+            doc["offset"] = data.draw(_FINITE)
+        else:
+            next(d for d in doc["descriptors"] if d["kind"] == "coordination")["r0"] = \
+                data.draw(_FINITE)
+    try:
+        spec = Spec.from_dict(doc)
+    except SpecError as exc:
+        assert str(exc).startswith(exc.path) and exc.path.startswith("$")
+        return
+    _evaluates_finite_or_refuses(spec)

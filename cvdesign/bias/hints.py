@@ -1696,7 +1696,7 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     >>> _ = [top.add_atom(n, md.element.carbon, res) for n in ("A", "B")]
     >>> spec = Spec(name="d", topology=top,
     ...             descriptors=[{"id": "d", "kind": "distance", "atoms": [0, 1]}],
-    ...             terms=[{"descriptor": "d", "transform": "identity", "center": 0.0,
+    ...             terms=[{"descriptor": "d", "transform": "identity", "center": 1.5,
     ...                     "scale": 1.0, "weight": 1.0}],
     ...             states={"a": {"mean": -1.0, "std": 0.1, "n_frames": 100},
     ...                     "b": {"mean": 1.0, "std": 0.2, "n_frames": 100}})
@@ -1724,6 +1724,7 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     if not spec.states:
         raise InputError(f"spec {spec.name!r} records no states; hints need the CV's mean "
                          "and within-state spread in each state")
+    _check_spec_times(spec, options)
     options.setdefault("leave_out_frozen", True)
     options.setdefault("cv_range", spec.reachable_range)
     options.setdefault("observed_range", spec.observed_range)
@@ -1743,6 +1744,28 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
                           **options)
     hints["warnings"] += unused
     return hints
+
+
+def _check_spec_times(spec, options):
+    """Refuse a time among the spec's scores that :func:`suggest_hints` would refuse, naming
+    the spec's key and file rather than the parameter it is passed as."""
+    file = getattr(spec, "_file", None)
+    where = f"spec file {str(file)!r}" if file else f"spec {spec.name!r}"
+    for key, parameter, meaning in (
+            ("integrated_time_ps", "autocorrelation_time_ps",
+             "the CV's integrated autocorrelation time, which sets the deposition interval"),
+            ("frame_spacing_ps", "frame_spacing_ps",
+             "the time between the frames that time was measured on")):
+        value = spec.scores.get(key)
+        if value is None or (parameter in options and parameter != "autocorrelation_time_ps"):
+            continue
+        try:
+            _number(parameter, value)
+        except InputError:
+            raise InputError(
+                f"$.scores.{key} of {where} is {value!r}: it must be a positive number of ps "
+                f"({meaning}); correct it, or remove the key to size the hints without "
+                "it") from None
 
 
 def _funnel_confinement(spec):

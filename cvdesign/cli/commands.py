@@ -1247,9 +1247,9 @@ def _cmd_check(args):
 
     source = Source(args.topology)
     spec = load_spec(args.spec, topology=source.topology)
+    reach, seen = spec.reachable_range, spec.observed_range  # refused first when stale
     print(f"{args.spec}: valid spec, matches topology {args.topology} "
           f"({source.topology.n_atoms} atoms)")
-    reach, seen = spec.reachable_range, spec.observed_range
     print(f"range (CV units): reachable {_interval(reach)} (from the terms); "
           + ("no observed range recorded (a spec of an earlier cvdesign)" if seen is None
              else f"observed {_interval(seen)} (the spec's input frames)"))

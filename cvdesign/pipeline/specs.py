@@ -17,7 +17,7 @@ from .._version import __version__
 from ..constants import COORDINATION_EXPONENTS, UNITS
 from ..io.source import file_sha256
 from ..kinds import GROUP_KINDS
-from ..spec import Spec, atom_identity, residue_hashes, topology_fingerprint
+from ..spec import Spec, atom_identity, cv_digest, residue_hashes, topology_fingerprint
 from .output import CAUTION
 
 __all__ = ["describe_inputs", "InputChecksums", "SourceRecord", "spec_document"]
@@ -172,6 +172,7 @@ def spec_document(source, pool, entry, params, checksums, seed, record=None):
                        "segments": copy.deepcopy(record.segments)},
         "caution": " ".join([CAUTION] + [f"Warning: {w}." for w in entry.get("warnings", [])]),
     }
+    doc["cv_digest"] = cv_digest(doc)  # the CV its states and observed range are for
     return Spec.from_dict(doc).to_dict()
 
 

@@ -19,14 +19,14 @@ the one the spec was made for. Every field is described, with its unit, in
 
 Modules: :mod:`.document` (the :class:`Spec` class, :func:`load_spec`, the
 evaluator), :mod:`.validate` (JSON parsing with limits, schema and semantic
-checks), :mod:`.identity` (atom identities, topology fingerprint, residue
+checks, the digest of the CV that the states were computed for), :mod:`.identity` (atom identities, topology fingerprint, residue
 hashes), :mod:`.ranges` (the values the CV can reach, from its terms, and the
 states that sit at a bound of it).
 """
 
 from .document import Spec, load_spec
 from .identity import atom_identity, residue_hashes, topology_fingerprint
-from .validate import SPEC_FORMAT, SPEC_VERSION, spec_schema
+from .validate import SPEC_FORMAT, SPEC_VERSION, cv_digest, spec_schema
 
-__all__ = ["SPEC_FORMAT", "SPEC_VERSION", "Spec", "atom_identity", "load_spec",
+__all__ = ["SPEC_FORMAT", "SPEC_VERSION", "Spec", "atom_identity", "cv_digest", "load_spec",
            "residue_hashes", "spec_schema", "topology_fingerprint"]

@@ -23,7 +23,7 @@ from ..kinds import ATOM_KINDS, GROUP_KINDS
 from .identity import (_check_topology_arg, _describe, _describe_residue, _identity_of,
                        residue_hashes, topology_fingerprint)
 from .ranges import reachable_range, states_at_bounds
-from .validate import SPEC_FORMAT, SPEC_VERSION, _parse_json, _validated
+from .validate import SPEC_FORMAT, SPEC_VERSION, _parse_json, _validated, cv_digest, states_stale
 
 __all__ = ["Spec", "load_spec"]
 
@@ -176,7 +176,9 @@ class Spec:
         ``"upper"`` (unless given).
     observed_range : (float, float), optional
         Smallest and largest value of the CV over the input frames of all
-        states, CV units; stored as ``observed_range`` when given.
+        states, CV units; stored as ``observed_range`` when given. With
+        `states` or `observed_range`, the digest of the CV they were computed
+        for is stored as ``cv_digest`` (see :attr:`states_stale`).
     scores : dict, optional
         Free-form quality scores: numbers, lists of numbers, or objects of those.
     provenance : dict, optional
@@ -304,6 +306,8 @@ class Spec:
         doc = _validated(doc)  # checked first, so that the range is computed on valid terms
         low, high = reachable_range(doc["descriptors"], doc["terms"], doc["offset"])
         doc["reachable_range"] = {"lower": low, "upper": high}
+        if doc["states"] or "observed_range" in doc:  # the CV they were computed for
+            doc["cv_digest"] = cv_digest(doc)
         if not doc["periodic"]:
             for name, side in states_at_bounds(doc["states"], (low, high)).items():
                 doc["states"][name].setdefault("at_bound", side)
@@ -495,9 +499,55 @@ class Spec:
         return self._doc.get("period")
 
     @property
+    def states_stale(self):
+        """bool : whether the spec's ``states`` and ``observed_range`` were computed for
+        another CV: its ``cv_digest`` is not that of its terms (a weight, centre, scale,
+        offset or descriptor was edited since). :attr:`states`, :attr:`observed_range` and
+        :attr:`states_at_bound` then raise :class:`~cvdesign.errors.SpecError`. False for a
+        spec without ``cv_digest`` (written before it), which cannot tell.
+
+        Examples
+        --------
+        >>> doc = Spec.from_json(_EXAMPLE).to_dict()
+        >>> doc["states"] = {"a": {"mean": 1.0, "std": 0.5, "n_frames": 10}}
+        >>> spec = Spec.from_dict(doc)  # no cv_digest: cannot tell
+        >>> spec.states_stale
+        False
+        >>> doc = Spec(**{k: doc[k] for k in ("name", "topology", "descriptors", "terms",
+        ...                                   "states")}).to_dict()  # digest stored
+        >>> doc["terms"][0]["weight"] = 20.0
+        >>> del doc["reachable_range"]
+        >>> Spec.from_dict(doc).states_stale
+        True
+        """
+        if getattr(self, "_stale", None) is None:
+            self._stale = states_stale(self._doc)
+        return self._stale
+
+    def _fresh(self, key):
+        """Raise SpecError when the states and observed range (`key` is read) are stale."""
+        if not self.states_stale:
+            return
+        where = f"spec file {str(self._file)!r}" if getattr(self, "_file", None) else \
+            f"spec {self.name!r}"
+        raise SpecError(
+            f"{where}: its states and observed_range (read here: {key}) are in the units of "
+            "the CV they were computed for, and the CV was edited since (its terms, their "
+            "descriptors or the offset no longer give cv_digest), so they do not describe this "
+            "CV and nothing sized from them (walls, kernel width, grid, observed-range checks) "
+            "would hold. Recompute them from the trajectories (run 'cvdesign suggest' again, or "
+            "'cvdesign funnel' for a funnel spec), or remove states (write {}), observed_range, "
+            "hints and cv_digest from the file to keep only the CV (the hints then need the "
+            "states given to cvdesign.bias.hints.suggest_hints)",
+            "$.cv_digest",
+        )
+
+    @property
     def states(self):
         """dict : per-state ``{"mean", "std", "n_frames"}`` of the CV, with ``"min"``,
-        ``"max"`` and ``"at_bound"`` when recorded (a copy)."""
+        ``"max"`` and ``"at_bound"`` when recorded (a copy). Raises
+        :class:`~cvdesign.errors.SpecError` when they are stale (:attr:`states_stale`)."""
+        self._fresh("states")
         return copy.deepcopy(self._doc["states"])
 
     @property
@@ -525,24 +575,28 @@ class Spec:
     def states_at_bound(self):
         """dict : ``{state: "lower" | "upper"}`` for the states at a bound of
         :attr:`reachable_range` (a folded coordinate; see
-        :func:`cvdesign.spec.ranges.states_at_bounds`), in state order: the
-        stored ``at_bound`` flags, or for a spec written without a
-        ``reachable_range``, the same computed from its range and states.
+        :func:`cvdesign.spec.ranges.states_at_bounds`), in state order,
+        computed from the range and the states as the hints compute it (a
+        stored ``at_bound`` flag must agree: checked on load); empty for a
+        periodic CV.
 
         Examples
         --------
         >>> Spec.from_json(_EXAMPLE).states_at_bound  # a distance CV, far from its bound
         {}
         """
-        states = self._doc["states"]
-        if self._doc.get("reachable_range") is None:
-            return states_at_bounds(states, self.reachable_range)
-        return {name: st["at_bound"] for name, st in states.items() if st.get("at_bound")}
+        self._fresh("states_at_bound")
+        if self._doc["periodic"]:
+            return {}
+        # computed, as the hints compute it (a stored flag is checked on load to agree)
+        return states_at_bounds(self._doc["states"], self.reachable_range)
 
     @property
     def observed_range(self):
         """(float, float) or None : smallest and largest CV value over the input frames
-        of all states (CV units), None when the spec does not record it."""
+        of all states (CV units), None when the spec does not record it. Raises
+        :class:`~cvdesign.errors.SpecError` when it is stale (:attr:`states_stale`)."""
+        self._fresh("observed_range")
         stored = self._doc.get("observed_range")
         return None if stored is None else (stored["lower"], stored["upper"])
 
@@ -760,7 +814,10 @@ class Spec:
         ------
         InputError
             `xyz` has the wrong shape or atom count, `box` is bad, or `box` is
-            given with a trajectory.
+            given with a trajectory; a coordinate the CV uses is not finite.
+        SpecError
+            The CV or its gradient is not finite at a frame of finite
+            coordinates (coefficients too large for float64; path ``$.terms``).
         TopologyMismatchError
             The trajectory's topology is not the spec's.
 
@@ -810,31 +867,54 @@ class Spec:
         values, blocks, missing = self._descriptor_blocks(arr, box, gradient=bool(gradient))
         column = {d["id"]: k for k, d in enumerate(self._doc["descriptors"])}
         n_frames = values.shape[0]
-        cv = np.full(n_frames, self._doc["offset"], dtype=np.float64)
-        slope = np.zeros_like(values)  # d CV / d descriptor, per frame
-        for term in self._doc["terms"]:
-            k = column[term["descriptor"]]
-            d = values[:, k]
-            factor = term["weight"] / term["scale"]
-            if term["transform"] == "cos":
-                cv += factor * (np.cos(d) - term["center"])
-                slope[:, k] -= factor * np.sin(d)
-            elif term["transform"] == "sin":
-                cv += factor * (np.sin(d) - term["center"])
-                slope[:, k] += factor * np.cos(d)
-            else:
-                cv += factor * (d - term["center"])
-                slope[:, k] += factor
-        out = (cv,)
-        if gradient:
-            grad = np.zeros((n_frames, self.n_atoms, 3), dtype=np.float64)
-            for cols, atoms, block in blocks:
-                contribution = slope[:, cols, None, None] * block  # (n_frames, n, width, 3)
-                np.add.at(grad, (slice(None), atoms.ravel()), contribution.reshape(n_frames, -1, 3))
-            out += (grad,)
+        # overflow is refused below (_check_finite), not warned about
+        with np.errstate(over="ignore", invalid="ignore"):
+            cv = np.full(n_frames, self._doc["offset"], dtype=np.float64)
+            slope = np.zeros_like(values)  # d CV / d descriptor, per frame
+            for term in self._doc["terms"]:
+                k = column[term["descriptor"]]
+                d = values[:, k]
+                factor = term["weight"] / term["scale"]
+                if term["transform"] == "cos":
+                    cv += factor * (np.cos(d) - term["center"])
+                    slope[:, k] -= factor * np.sin(d)
+                elif term["transform"] == "sin":
+                    cv += factor * (np.sin(d) - term["center"])
+                    slope[:, k] += factor * np.cos(d)
+                else:
+                    cv += factor * (d - term["center"])
+                    slope[:, k] += factor
+            out = (cv,)
+            if gradient:
+                grad = np.zeros((n_frames, self.n_atoms, 3), dtype=np.float64)
+                for cols, atoms, block in blocks:
+                    contribution = slope[:, cols, None, None] * block  # (n_frames, n, width, 3)
+                    np.add.at(grad, (slice(None), atoms.ravel()), contribution.reshape(n_frames, -1, 3))
+                out += (grad,)
+        self._check_finite(arr, cv, out[1] if gradient else None)
         if undefined:
             out += (missing,)
         return out if len(out) > 1 else cv
+
+    def _check_finite(self, arr, cv, grad=None):
+        """Refuse a CV value (or gradient) that is not finite, naming the first such frame:
+        from coordinates that are not finite, or from terms too large for float64."""
+        bad = ~np.isfinite(cv)
+        if grad is not None:
+            bad |= ~np.isfinite(grad).all(axis=(1, 2))
+        if not bad.any():
+            return
+        frame = int(np.flatnonzero(bad)[0])
+        used = sorted({atom for desc in self._doc["descriptors"]
+                       for atom, *_ in _atoms_and_identities(desc)})
+        what = f"the CV is {float(cv[frame])!r}" if not math.isfinite(cv[frame]) else \
+            "the CV's gradient is not finite"
+        if not np.isfinite(arr[frame][used]).all():
+            raise InputError(f"{what} at frame {frame}: the coordinates of an atom it uses are "
+                             "NaN or infinite there; give finite coordinates in nm")
+        raise SpecError(f"{what} at frame {frame} of finite coordinates: spec {self.name!r} has "
+                        "terms whose coefficients (weight / scale) are too large for float64 "
+                        "numbers; give a scale and weight of ordinary size", "$.terms")
 
     def restraint_energy(self, xyz, box=None, gradient=False):
         """Energy of the spec's restraints, and optionally its gradient.
@@ -1198,6 +1278,7 @@ def load_spec(path, topology=None):
         spec = Spec.from_dict(document)
     except SpecError as exc:
         raise _with_file(exc, path) from None
+    spec._file = path  # named by the refusal of stale states
     if topology is not None:
         if isinstance(topology, (str, os.PathLike)):
             from ..io.source import load_topology

@@ -10,6 +10,7 @@ normalizes it.
 """
 
 import functools
+import hashlib
 import json
 import math
 import re
@@ -23,9 +24,9 @@ from ..bias.funnel import SHAPE_KEYS
 from ..constants import TWO_PI
 from ..errors import SpecError
 from ..kinds import ATOM_KINDS, KINDS
-from .ranges import reachable_range
+from .ranges import FOLD_SPREADS, reachable_range, states_at_bounds
 
-__all__ = ["SPEC_FORMAT", "SPEC_VERSION", "MAX_DEPTH", "spec_schema"]
+__all__ = ["SPEC_FORMAT", "SPEC_VERSION", "MAX_DEPTH", "cv_digest", "spec_schema"]
 
 
 SPEC_FORMAT = "cvdesign-spec"
@@ -34,6 +35,12 @@ SPEC_VERSION = 1
 # stored reachable range against the one computed from the terms (relative to the size of
 # the terms, sum |weight / scale| (|center| + 1) + |offset|).
 _PERIOD_RTOL = 1e-9
+# Relative slack of the checks of stored values in CV units against each other (a state's mean
+# within its min and max and within the reachable range, the observed range within the
+# reachable range): those values come from single-precision (float32) features, whose
+# rounding can pass an end by about 1e-7 relative; 1e-5 is the slack `cvdesign check` allows
+# on the observed range for the same reason.
+_STORED_RTOL = 1e-5
 # Integers in a spec must fit in 64 bits (many JSON readers hold no more).
 _MAX_INT = 2**63 - 1
 
@@ -276,9 +283,11 @@ def _schema_message(error, doc=None):
     if v == "maximum":
         return f"must be at most {error.validator_value}; got {_short(inst)}"
     if v == "minItems":
-        return f"needs at least {error.validator_value} items; has {len(inst)}"
+        return f"needs at least {_items(error.validator_value)}; has {len(inst)}"
     if v == "maxItems":
-        return f"takes at most {error.validator_value} items; has {len(inst)}"
+        return f"takes at most {_items(error.validator_value)}; has {len(inst)}"
+    if v == "minLength" and "propertyNames" in error.schema_path:
+        return f"a name in this object must not be empty (got the key {_short(inst)}); name each entry"
     if v == "minLength":
         return "must not be empty"
     if v == "pattern":
@@ -286,6 +295,10 @@ def _schema_message(error, doc=None):
     if v == "anyOf" and error.schema.get("anyOf", [{}])[0].get("type") == "number":
         return f"a score must be a number, a list of numbers or an object of those; got {_short(inst)}"
     return error.message
+
+
+def _items(n):
+    return f"{n} item" if n == 1 else f"{n} items"
 
 
 def _path_key(error):
@@ -362,6 +375,12 @@ def _check_group_descriptor(desc, here, n_atoms):
                     "give one mass (dalton) per atom, in the order of the group",
                     f"{here}.masses[{g}]",
                 )
+    if kind == "center_distance" and set(groups[0]) == set(groups[1]):
+        raise SpecError(
+            "the two groups hold the same atoms, so their centres coincide and the distance "
+            "is always 0; give two different groups",
+            f"{here}.groups",
+        )
     if kind == "coordination":
         if not desc["m"] > desc["n"]:
             raise SpecError(
@@ -375,6 +394,25 @@ def _check_group_descriptor(desc, here, n_atoms):
                 "atoms to count; a coordination number needs at least one pair",
                 f"{here}.groups",
             )
+
+
+def _check_coefficient(term, here):
+    """Refuse a term whose coefficient weight / scale, or weight * center / scale, is not
+    finite: finite numbers whose quotient overflows would give an infinite CV."""
+    weight, scale, center = (float(term[k]) for k in ("weight", "scale", "center"))
+    with np.errstate(over="ignore", invalid="ignore"):
+        factor = np.float64(weight) / np.float64(scale)
+        shift = factor * np.float64(center)
+    if math.isfinite(factor) and math.isfinite(shift):
+        return
+    where = "scale" if abs(scale) < 1.0 else "weight"
+    what = "weight / scale" if not math.isfinite(factor) else "weight * center / scale"
+    raise SpecError(
+        f"{what} is not a finite number (weight {weight!r}, scale {scale!r}, center "
+        f"{center!r}): the CV would be infinite. Give a scale and weight of ordinary size "
+        "(the pipeline writes the descriptor's spread as scale and a weight of order 1)",
+        f"{here}.{where}",
+    )
 
 
 def _semantic_check(doc):
@@ -401,6 +439,7 @@ def _semantic_check(doc):
                 f"{here}.periodic",
             )
     terms = doc["terms"]
+    first_term = {}
     for i, term in enumerate(terms):
         here = f"$.terms[{i}]"
         did, transform = term["descriptor"], term["transform"]
@@ -426,6 +465,23 @@ def _semantic_check(doc):
             )
         if not term["scale"] > 0:
             raise SpecError(f"scale must be > 0; got {term['scale']!r}", f"{here}.scale")
+        _check_coefficient(term, here)
+        key = (did, transform)
+        if key in first_term:
+            raise SpecError(
+                f"repeats the {transform} term of descriptor {did!r} (first at "
+                f"{first_term[key]}), which would count it twice; merge the two into one term",
+                here,
+            )
+        first_term[key] = here
+    decayed = doc["scores"].get("integrated_time_decayed")
+    if decayed is not None and (isinstance(decayed, bool) or decayed not in (0, 1)):
+        raise SpecError(
+            f"must be 1 or 0: 1 when the CV's autocorrelation decayed within the runs "
+            f"(integrated_time_ps is a measurement), 0 when it did not (a lower bound); got "
+            f"{_short(decayed)}",
+            "$.scores.integrated_time_decayed",
+        )
     if doc["periodic"]:
         single = len(terms) == 1 and terms[0]["transform"] == "identity" and kinds[terms[0]["descriptor"]] == "dihedral"
         if not single:
@@ -451,14 +507,108 @@ def _semantic_check(doc):
             )
 
 
+#: The keys of a descriptor that decide its values (the others name or describe it).
+_VALUE_KEYS = ("kind", "atoms", "groups", "weighting", "masses", "r0", "n", "m")
+
+
+#: Significant digits of the numbers a digest covers: the pipeline writes numbers to 12
+#: (``cvdesign.pipeline.output.dumps``), so a spec in memory and its file agree.
+_DIGEST_DIGITS = 12
+
+
+def _canonical(value):
+    """Numbers as text of `_DIGEST_DIGITS` significant digits, so that a digest does not
+    depend on whether a number was written as 1 or 1.0, nor on digits beyond those."""
+    if isinstance(value, (list, tuple)):
+        return [_canonical(v) for v in value]
+    if isinstance(value, str):
+        return value
+    value = float(value)
+    return "0" if value == 0 else f"{value:.{_DIGEST_DIGITS}g}"
+
+
+def cv_digest(doc):
+    """The digest of what a spec's CV is: its terms, the values-deciding keys of their
+    descriptors (kind, atoms or groups, weighting, masses, switching parameters) and the
+    offset, numbers to 12 significant digits; not ids, labels or atom identities.
+
+    A spec stores it as ``cv_digest`` beside ``states`` and ``observed_range``, which are in
+    the CV's units and hold only for the CV they were computed for; on load, a digest that
+    differs from the one of the file's terms marks them stale
+    (:attr:`cvdesign.Spec.states_stale`).
+
+    Parameters
+    ----------
+    doc : dict
+        A spec document (its ``descriptors``, ``terms`` and ``offset``; the terms' descriptors
+        must exist).
+
+    Returns
+    -------
+    str
+        ``"sha256:"`` and 64 hex digits.
+
+    Examples
+    --------
+    >>> doc = {"descriptors": [{"id": "d", "kind": "distance", "atoms": [0, 2], "label": "x"}],
+    ...        "terms": [{"descriptor": "d", "transform": "identity", "center": 0.3,
+    ...                   "scale": 0.1, "weight": 2}], "offset": 0}
+    >>> same = json.loads(json.dumps(doc))
+    >>> same["offset"], same["descriptors"][0]["label"] = 0.0, "another label"
+    >>> cv_digest(doc) == cv_digest(same)
+    True
+    >>> doc["terms"][0]["weight"] = 20.0
+    >>> cv_digest(doc) == cv_digest(same)
+    False
+    """
+    descriptors = {d["id"]: d for d in doc["descriptors"]}
+    terms = []
+    for term in doc["terms"]:
+        desc = descriptors[term["descriptor"]]
+        what = {}
+        for key in _VALUE_KEYS:
+            if key in desc:
+                value = desc[key]
+                what[key] = ([[int(a) for a in g] for g in value] if key == "groups"
+                             else [int(a) for a in value] if key == "atoms"
+                             else _canonical(value))
+        terms.append({"descriptor": what, "transform": term["transform"],
+                      **{k: _canonical(term[k]) for k in ("center", "scale", "weight")}})
+    text = json.dumps({"offset": _canonical(doc["offset"]), "terms": terms}, sort_keys=True,
+                      separators=(",", ":"), allow_nan=False)
+    return "sha256:" + hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def states_stale(doc):
+    """Whether the document's ``states`` and ``observed_range`` were computed for another CV:
+    it records a ``cv_digest`` that is not that of its terms (a spec without one cannot
+    tell, and is taken as it is)."""
+    stored = doc.get("cv_digest")
+    return (stored is not None and bool(doc["states"] or "observed_range" in doc)
+            and stored != cv_digest(doc))
+
+
+def _terms_size(doc):
+    """The size of the CV's numbers: |offset| + sum |weight / scale| (|center| + 1)."""
+    return abs(doc["offset"]) + sum(abs(t["weight"] / t["scale"]) * (abs(t["center"]) + 1.0)
+                                    for t in doc["terms"])
+
+
 def _check_ranges(doc):
     """A stored reachable range equals the one computed from the terms; observed ranges
-    have lower <= upper."""
+    have lower <= upper; the states (unless stale) agree with the ranges and with their own
+    extremes, and a stored ``at_bound`` with its recomputation."""
+    computed = reachable_range(doc["descriptors"], doc["terms"], doc["offset"])
+    for side, value in zip(("lower", "upper"), computed):
+        if value is not None and not math.isfinite(value):
+            raise SpecError(
+                f"the {side} end of the values the CV can reach overflows ({value!r}): the "
+                "terms' coefficients weight / scale are too large for numbers; give a scale "
+                "and weight of ordinary size", "$.terms")
+    size = _terms_size(doc)
     stored = doc.get("reachable_range")
+    has_states = bool(doc["states"]) or "observed_range" in doc
     if stored is not None:
-        computed = reachable_range(doc["descriptors"], doc["terms"], doc["offset"])
-        size = abs(doc["offset"]) + sum(abs(t["weight"] / t["scale"]) * (abs(t["center"]) + 1.0)
-                                        for t in doc["terms"])
         for side, value in zip(("lower", "upper"), computed):
             given = stored[side]
             same = (given is None and value is None) or (
@@ -467,11 +617,16 @@ def _check_ranges(doc):
             if not same:
                 what = ("null (the CV is unbounded on this side)" if value is None
                         else repr(value))
+                redo = ("recompute the range. The states and observed_range are in the CV's "
+                        "units too: after an edit of the terms recompute them all from the "
+                        "trajectories (cvdesign suggest), or remove reachable_range, "
+                        "observed_range, hints and the states' entries (states: {}) to keep "
+                        "only the CV" if has_states else
+                        "recompute the range, or remove reachable_range")
                 raise SpecError(
                     f"must be {what} for these terms, the {side} end of the values the CV can "
                     f"reach (see cvdesign.spec.ranges.reachable_range); got {given!r}. The "
-                    "terms or the range were edited: recompute the range, or remove "
-                    "reachable_range",
+                    f"terms or the range were edited: {redo}",
                     f"$.reachable_range.{side}",
                 )
     observed = doc.get("observed_range")
@@ -482,6 +637,72 @@ def _check_ranges(doc):
         if "min" in state and "max" in state and not state["min"] <= state["max"]:
             raise SpecError(f"min ({state['min']!r}) must not exceed max ({state['max']!r})",
                             _json_path(("states", name)))
+    if not states_stale(doc):
+        _check_states(doc, computed, size)
+
+
+def _end(value):
+    return "null (unbounded)" if value is None else repr(value)
+
+
+def _check_states(doc, reach, size):
+    """The states' means within their extremes and the reachable range, the observed range
+    within the reachable range, and stored at_bound flags as recomputed (not for a periodic
+    CV, whose values are taken modulo its period)."""
+    def slack(*values):
+        return _STORED_RTOL * max([size] + [abs(v) for v in values if v is not None])
+
+    fix = ("the states, observed_range and reachable_range do not belong together (edited, "
+           "or computed for other terms); recompute them from the trajectories (cvdesign "
+           "suggest), or remove the ones that are wrong")
+    lower, upper = reach
+    if doc["periodic"]:
+        for name, state in doc["states"].items():
+            if "at_bound" in state:
+                raise SpecError("a periodic CV has no bound to sit at (its values are taken "
+                                "modulo its period); remove at_bound",
+                                _json_path(("states", name, "at_bound")))
+        return
+    observed = doc.get("observed_range")
+    if observed is not None:
+        for side, value, bound in (("lower", observed["lower"], lower),
+                                   ("upper", observed["upper"], upper)):
+            beyond = bound is not None and (value < bound - slack(value, bound) if side == "lower"
+                                            else value > bound + slack(value, bound))
+            if beyond:
+                raise SpecError(f"{value!r} lies beyond the {side} end {bound!r} of the values "
+                                f"the CV can reach (reachable_range); {fix}",
+                                f"$.observed_range.{side}")
+    for name, state in doc["states"].items():
+        mean = state["mean"]
+        if lower is not None and mean < lower - slack(mean, lower) or \
+                upper is not None and mean > upper + slack(mean, upper):
+            raise SpecError(f"{mean!r} lies outside the values the CV can reach "
+                            f"[{_end(lower)}, {_end(upper)}] (reachable_range); {fix}",
+                            _json_path(("states", name, "mean")))
+        for key, beyond in (("min", lambda v: v > mean + slack(v, mean)),
+                            ("max", lambda v: v < mean - slack(v, mean))):
+            if key in state and beyond(state[key]):
+                raise SpecError(f"{state[key]!r} is on the wrong side of the state's mean "
+                                f"{mean!r} (min <= mean <= max); {fix}",
+                                _json_path(("states", name, key)))
+    computed = states_at_bounds(doc["states"], reach)
+    for name, state in doc["states"].items():
+        given = state.get("at_bound")
+        bound = lower if given == "lower" else upper
+        gap = None if given is None or bound is None else abs(state["mean"] - bound)
+        # a flag within rounding of the threshold stands (files hold 12 digits)
+        if given is not None and given != computed.get(name) and not (
+                gap is not None and gap <= FOLD_SPREADS * state["std"] * (1 + _STORED_RTOL)
+                + slack(state["mean"], bound)):
+            now = (f"at the {computed[name]} bound" if name in computed
+                   else "at no bound")
+            raise SpecError(
+                f"says the state sits at the {given} bound of the reachable range, but its mean "
+                f"{state['mean']!r} and std {state['std']!r} put it {now} (a mean within "
+                f"{FOLD_SPREADS:g} std of a reachable end; reachable_range [{_end(lower)}, "
+                f"{_end(upper)}]); remove at_bound (it is recomputed from the states and the range)",
+                _json_path(("states", name, "at_bound")))
 
 
 #: Relative tolerance on the length of a funnel axis (a unit vector).
