@@ -19,9 +19,9 @@ the one the spec was made for. Every field is described, with its unit, in
 
 Modules: :mod:`.document` (the :class:`Spec` class, :func:`load_spec`, the
 evaluator), :mod:`.validate` (JSON parsing with limits, schema and semantic
-checks, the digest of the CV that the states were computed for), :mod:`.identity` (atom identities, topology fingerprint, residue
-hashes), :mod:`.ranges` (the values the CV can reach, from its terms, and the
-states that sit at a bound of it).
+checks, the digest of the CV that the states were computed for), :mod:`.identity`
+(atom identities, topology fingerprint, residue hashes), :mod:`.ranges` (the values
+the CV can reach, from its terms, and the states that sit at a bound of it).
 """
 
 from .document import Spec, load_spec
