@@ -117,3 +117,31 @@ def test_prefilter_memory_is_bounded_by_max_numbers_and_its_means_do_not_depend_
     # rest is the read chunk and the sums)
     assert peaks[0] < 1.5 * whole and peaks[0] < 0.5 * peaks[1], (peaks, whole)
     assert np.array_equal(results[0][0], results[1][0]) and results[0][1] == results[1][1]
+
+
+def test_a_strided_read_of_some_atoms_of_a_trr_file_gives_the_frames_of_an_xtc(tmp_path):
+    """mdtraj's TRR reader crashed the process (memory corruption, no message) when given a
+    stride and an atom subset together, as the prefilter reads; the source reads whole
+    frames of a TRR then and takes the atoms: the same coordinates as the XTC of the frames,
+    in the order the atoms were asked for."""
+    rng = np.random.default_rng(40)
+    top = md.Topology()
+    res = top.add_residue("TRR", top.add_chain())
+    for i in range(30):
+        top.add_atom(f"C{i}", md.element.carbon, res)
+    traj = md.Trajectory(rng.uniform(0, 2, size=(60, 30, 3)).astype(np.float32), top,
+                         time=np.arange(60.0), unitcell_lengths=np.full((60, 3), 4.0),
+                         unitcell_angles=np.full((60, 3), 90.0))
+    for ext in ("trr", "xtc"):
+        traj.save(str(tmp_path / f"run.{ext}"))
+    atoms = [29, 3, 17, 4]
+    got = {}
+    for ext in ("trr", "xtc"):
+        src = cvdesign.Source(top, chunk_size=7).add(str(tmp_path / f"run.{ext}"), "a")
+        chunks = list(src.iter_chunks(atom_indices=atoms, stride=3))
+        got[ext] = (np.concatenate([c.trajectory.xyz for c in chunks]),
+                    np.concatenate([c.frames for c in chunks]))
+    np.testing.assert_array_equal(got["trr"][1], np.arange(0, 60, 3))
+    np.testing.assert_array_equal(got["trr"][1], got["xtc"][1])
+    np.testing.assert_allclose(got["trr"][0], traj.xyz[::3][:, atoms], atol=1e-6)
+    np.testing.assert_allclose(got["trr"][0], got["xtc"][0], atol=2e-3)  # (XTC: 1e-3 nm)

@@ -1387,14 +1387,25 @@ class Source:
         for si, seg in enumerate(self.segments):
             kwargs = {"top": self.topology, "chunk": int(chunk_size or self.chunk_size),
                       "stride": stride}
+            later = None  # atoms to take from whole frames after reading
             if atom_indices is not None and not every_atom(atom_indices, self.topology):
                 # (every atom in order: whole frames are read, much faster than a selection)
                 kwargs["atom_indices"] = np.asarray(atom_indices, dtype=np.intp)
+                if stride > 1 and _suffix(seg.path) == ".trr":
+                    # mdtraj's TRR reader corrupts memory (a crash, no message) when given a
+                    # stride and an atom subset together: read whole frames, then the atoms
+                    later = kwargs.pop("atom_indices")
+                    subset = self.topology.subset(later)
             frame0 = 0
             n_seen = 0
             try:
                 iterator = _quiet_iter(lambda: md.iterload(str(seg.path), **kwargs))
                 for traj in iterator:
+                    if later is not None:  # (the atoms in the order asked for, as the
+                        # formats that read a subset give them)
+                        traj = md.Trajectory(traj.xyz[:, later], subset, time=traj.time,
+                                             unitcell_lengths=traj.unitcell_lengths,
+                                             unitcell_angles=traj.unitcell_angles)
                     n = traj.n_frames
                     frames = frame0 + stride * np.arange(n)
                     frame0 += stride * n
@@ -1421,8 +1432,8 @@ class Source:
                     sel = np.flatnonzero(mask)
                     sub = traj if sel.size == n else traj[sel]
                     check_box(sub, seg.path, frames[sel])
-                    check_finite(sub, seg.path, frames[sel], kwargs.get("atom_indices"),
-                                 self.topology)
+                    check_finite(sub, seg.path, frames[sel],
+                                 kwargs.get("atom_indices", later), self.topology)
                     yield Chunk(si, sub, frames[sel], codes[sel])
             except InputError:
                 raise
