@@ -395,3 +395,37 @@ def short_leaves_module():
     """:func:`short_leaves` for a whole module (for its module-scoped fixtures too)."""
     with _leaves_of_at_most_256():
         yield
+
+
+#: Where the three states of ``three_states`` put the two distances C1-C2 and C3-C4 (nm):
+#: C1-C2 sets A apart from B and C, which it leaves on top of each other; C3-C4 sets C apart
+#: from A and B; only their sum separates all three.
+THREE_STATES = {"A": (0.4, 0.4), "B": (0.8, 0.4), "C": (0.8, 0.8)}
+
+
+@pytest.fixture(scope="session")
+def three_states(tmp_path_factory):
+    """(topology path, {state: [run paths]}): five atoms jittering about fixed places (AR(1),
+    0.9 per 1 ps frame, 0.03 nm), two runs of 1200 frames per state of
+    :data:`THREE_STATES`; the states differ only in where atoms C2 and C4 sit."""
+    from scipy.signal import lfilter
+
+    directory = tmp_path_factory.mktemp("three")
+    rng = np.random.default_rng(11)
+    top = md.Topology()
+    res = top.add_residue("TRI", top.add_chain())
+    for i in range(5):
+        top.add_atom(f"C{i + 1}", md.element.carbon, res)
+    files = {}
+    for state, (d12, d34) in THREE_STATES.items():
+        place = np.array([[0, 0, 0], [d12, 0, 0], [0, 1.0, 0], [d34, 1.0, 0], [0.5, 0.5, 1.0]])
+        for r in range(2):
+            noise = lfilter([1.0], [1.0, -0.9], rng.normal(size=(1200, 15)), axis=0)
+            xyz = place + 0.03 * np.sqrt(1 - 0.9 ** 2) * noise.reshape(1200, 5, 3)
+            traj = md.Trajectory(xyz.astype(np.float32), top, time=np.arange(1200.0))
+            path = directory / f"{state}{r}.xtc"
+            traj.save_xtc(str(path))
+            files.setdefault(state, []).append(str(path))
+    pdb = directory / "top.pdb"
+    traj[:1].save_pdb(str(pdb))
+    return str(pdb), files

@@ -7,45 +7,12 @@ it is rank 1. The overlapping coefficient of two histograms is checked against i
 form for two Gaussians elsewhere (tests/test_scoring.py, Inman and Bradley 1989).
 """
 
-import mdtraj as md
 import numpy as np
 import pytest
-from scipy.signal import lfilter
 
 from cvdesign import Source, suggest
 from cvdesign.pipeline.ranking import PAIR_OVERLAP_WARN, add_pair_overlap, closest_pairs
 from cvdesign.score.univariate import overlap_coefficient, pairwise_overlaps
-
-#: Where the three states put the two distances C1-C2 and C3-C4 (nm): C1-C2 sets A apart
-#: from B and C, which it leaves on top of each other; C3-C4 sets C apart from A and B;
-#: only their sum separates all three.
-_STATES = {"A": (0.4, 0.4), "B": (0.8, 0.4), "C": (0.8, 0.8)}
-
-
-@pytest.fixture(scope="module")
-def three_states(tmp_path_factory):
-    """Five atoms jittering about fixed places (AR(1), 0.9 per 1 ps frame, 0.03 nm), two
-    runs of 1200 frames per state; the states differ only in where atoms C2 and C4 sit."""
-    directory = tmp_path_factory.mktemp("three")
-    rng = np.random.default_rng(11)
-    top = md.Topology()
-    res = top.add_residue("TRI", top.add_chain())
-    for i in range(5):
-        top.add_atom(f"C{i + 1}", md.element.carbon, res)
-    files = {}
-    for state, (d12, d34) in _STATES.items():
-        place = np.array([[0, 0, 0], [d12, 0, 0], [0, 1.0, 0], [d34, 1.0, 0], [0.5, 0.5, 1.0]])
-        for r in range(2):
-            noise = lfilter([1.0], [1.0, -0.9], rng.normal(size=(1200, 15)), axis=0)
-            xyz = place + 0.03 * np.sqrt(1 - 0.9 ** 2) * noise.reshape(1200, 5, 3)
-            traj = md.Trajectory(xyz.astype(np.float32), top, time=np.arange(1200.0))
-            path = directory / f"{state}{r}.xtc"
-            traj.save_xtc(str(path))
-            files.setdefault(state, []).append(str(path))
-    pdb = directory / "top.pdb"
-    traj[:1].save_pdb(str(pdb))
-    return str(pdb), files
-
 
 def _suggest(three_states, **kw):
     top, files = three_states
@@ -100,7 +67,7 @@ def test_a_cv_that_leaves_two_of_three_states_on_top_of_each_other_is_warned_abo
     warning = [w for w in first["warnings"] if "overlap by" in w]
     assert len(warning) == 1
     named = warning[0].split(" overlap by")[0]
-    assert {s for s in _STATES if f"'{s}'" in named} == close
+    assert {s for s in three_states[1] if f"'{s}'" in named} == close
     assert any(n.startswith("warning: along the CV of rank") and " 1" in n.split(",")[0]
                for n in res.notes)
     # the spec's caution carries it, and the summary the warning of rank 1

@@ -11,6 +11,7 @@ pocket with ``align_to_reference_pocket``.
 
 import base64
 import csv
+import html
 import json
 import re
 import shutil
@@ -452,7 +453,12 @@ def test_runs_report_draws_the_frames_in_the_tica_plane_by_proposed_state(runs_o
     assert drawn["centroids"]["S1"][0] < drawn["centroids"]["S2"][0]
     assert drawn["colors"] == fg.state_colors(runs_out["states"])
     ts = figs["implied-timescales"].data["tica"]
-    assert ts == {"lag_ps": tica["lag_ps"], "timescales_ps": tica["timescales_ps"]}
+    assert ts == {"lag_ps": tica["lag_ps"], "timescales_ps": tica["timescales_ps"],
+                  "resolved": tica["timescales_resolved"]}
+    # the longest run is the ranking's (1500 frames of 0.1 ps); these timescales lie below it
+    longest = json.loads((out / "ranking.json").read_text())["ranking"][0]["longest_run_ps"]
+    assert tica["longest_run_ps"] == longest == 150.0
+    assert tica["timescales_resolved"] == [t < longest for t in tica["timescales_ps"]]
     assert len(ts["timescales_ps"]) == 2 and ts["timescales_ps"][0] > 1.0
     # the traces are coloured by the proposed state of each frame (from states.csv)
     for tr in data["cvs"][0]["traces"]:
@@ -512,7 +518,7 @@ def test_tica_figure_labels_a_second_coordinate_faster_than_the_lag_as_unused():
     both = fg.tica_states(xy, lab, states=["S1", "S2"], lag_ps=20.0,
                           timescales_ps=[85.0, 31.0], n_slow=2)
     assert both.data["used"] == [True, True]
-    assert both.data["axis_labels"][1] == ("slow coordinate 2 (dimensionless, kinetic map; "
+    assert both.data["axis_labels"][1] == ("slow coordinate 2 (dimensionless, kinetic map;\n"
                                            "timescale \u2265 31 ps, a lower bound)")
     assert "faster than the" not in both.caption
 
@@ -889,3 +895,244 @@ def test_the_within_runs_panel_keeps_each_cvs_style_and_legend_entry():
     assert right.lines == {"rank 2": tuple(fg._CV_STYLES[1])}
     none = fg.implied_timescales(curves, within=[("rank 1", lags, [None] * 3)])
     assert none.data["within"] is None
+
+
+# ------------------------------------------------- review 24: what the page claims and shows
+def _with_report_data(src, dst, change):
+    """A copy of the output `src` at `dst` whose report-data.json `change` (a function of the
+    parsed document) has edited."""
+    shutil.copytree(src, dst)
+    path = dst / "report-data.json"
+    data = json.loads(path.read_text())
+    change(data)
+    path.write_text(json.dumps(data))
+    return dst
+
+
+def _unresolved_tica(data):
+    """The review's case: a first TICA timescale of 581 ps from runs of at most 90 ps."""
+    data["tica"].update(timescales_ps=[581.0, data["tica"]["timescales_ps"][1]],
+                        longest_run_ps=90.0, timescales_resolved=[False, True])
+
+
+def test_a_tica_timescale_longer_than_the_runs_is_labelled_not_resolved_as_in_the_summary(
+        runs_out, tmp_path):
+    # The TICA axis read "timescale >= 581 ps, a lower bound" and the timescale figure drew
+    # a cross "lower bounds on the true timescales" while the summary said "> 90 (not
+    # resolved by these runs)": runs of 90 ps cannot show a 581 ps timescale.
+    out = _with_report_data(runs_out["out"], tmp_path / "out", _unresolved_tica)
+    figs = {f.name: f for f in build_report(read_output(out)).figures}
+    tica = figs["tica-states"]
+    assert tica.data["axis_labels"][0] == ("slow coordinate 1 (dimensionless, kinetic map;\n"
+                                           "timescale > 90 ps, not resolved by these runs)")
+    assert "581" not in tica.data["axis_labels"][0] and tica.data["resolved"] == [False, True]
+    assert "longer than the longest run (90 ps)" in tica.caption
+    ts = figs["implied-timescales"]
+    assert ts.data["longest_run_ps"] == 90.0 and ts.data["tica"]["resolved"] == [False, True]
+    # the summary's words for it, in the caption and the alt text
+    assert "> 90 (not resolved by these runs)" in ts.caption
+    assert "> 90 (not resolved by these runs)" in ts.alt and "581" not in ts.alt
+    assert "The dashed line is the longest run (90 ps)" in ts.caption
+    assert "longest run (90 ps)" in ts.svg and "not resolved by these runs (&gt; 90 ps)" in ts.svg
+    # the pipeline's own flags follow the summary's rule (runs_out: resolved, below 150 ps)
+    data = json.loads((runs_out["out"] / "report-data.json").read_text())["tica"]
+    summary = (runs_out["out"] / "summary.md").read_text()
+    assert data["timescales_resolved"] == [True] * len(data["timescales_ps"])
+    assert "(not resolved by these runs)" not in summary
+
+
+def test_every_text_of_every_figure_lies_within_the_figure(demo_out, runs_out, tmp_path):
+    # The TICA figure's vertical label ("slow coordinate 2 (dimensionless, kinetic map;
+    # timescale >= 1.43 ps, a lower bound)") was cut off at both ends, the timescale figure's
+    # legend ran past its sides with the longest-run entry.
+    unresolved = _with_report_data(runs_out["out"], tmp_path / "out", _unresolved_tica)
+    for out in (demo_out, runs_out["out"], unresolved):
+        for fig in build_report(read_output(out)).figures:
+            assert fig.text_outside == (), (out, fig.name, fig.text_outside)
+    # the check can fail: the old one-line label of a 4.2-inch figure does not fit
+    import matplotlib.figure
+
+    mpl = matplotlib.figure.Figure(figsize=(5.4, 4.2), layout="constrained")
+    ax = mpl.subplots()
+    ax.set_ylabel("slow coordinate 2 (dimensionless, kinetic map; timescale \u2265 1.43 ps, "
+                  "a lower bound)")
+    with fg._style():
+        mpl.savefig(tempfile.SpooledTemporaryFile(), format="svg")
+        assert fg._text_outside(mpl) == (ax.get_ylabel(),)
+
+
+def _section(text, ident):
+    """The page from the heading with `ident` to the next heading of its level or above."""
+    start = text.index(f' id="{ident}">')
+    level = text[text.rindex("<h", 0, start) + 2]
+    ends = [text.find(f"<h{k}", start) for k in range(2, int(level) + 1)]
+    ends = [e for e in ends if e >= 0]
+    return text[start:min(ends) if ends else len(text)]
+
+
+def test_each_ranked_cv_shows_its_bias_hints_and_their_warnings(demo_out):
+    # The specs' hints.warnings (the demo's cv-01: a folded coordinate's kernel width, a
+    # deposition interval set by the frame spacing) appeared nowhere on the page.
+    text = write_report(demo_out).read_text(encoding="utf-8")
+    ranking = json.loads((demo_out / "ranking.json").read_text())["ranking"]
+    assert any(load_spec(demo_out / r["spec"]).hints.get("warnings") for r in ranking)
+    for r in ranking:
+        hints = load_spec(demo_out / r["spec"]).hints
+        part = html.unescape(_section(text, Path(r["spec"]).stem))
+        for w in hints.get("warnings") or []:
+            assert f"Warning (bias hints): {w}" in re.sub(r"<[^>]+>", "", part)
+        assert hints["caution"] in part
+        table = part[part.index(f'id="{Path(r["spec"]).stem}-hints"'):]
+        cells = re.findall(r"<td[^>]*>(.*?)</td>", table)
+        assert cells[cells.index("kernel width (sigma)") + 1] == format(
+            hints["kernel"]["sigma"], ".4g")
+        assert cells[cells.index("kernel height (initial)") + 1] == format(
+            hints["height_kj_mol"], ".4g")
+        assert cells[cells.index("deposition interval") + 1] == format(
+            hints["deposition"]["interval_ps"], ".4g")
+        assert cells.index("bias factor (well-tempered)") and cells.index("walls")
+    # the run has no summary warnings: no block for them
+    assert 'id="run-warnings"' not in text
+
+
+def test_the_summary_warnings_are_gathered_right_after_the_caution(runs_out, tmp_path):
+    # Run-level warnings (states not metastable, hints refused, ...) were only deep in the
+    # embedded summary. The summary writes them as "- **warning**: ..." (proposed states) and
+    # "- warning: ..." (the ranking); a note of refused hints starts "bias hints refused".
+    out = tmp_path / "out"
+    shutil.copytree(runs_out["out"], out)
+    summary = out / "summary.md"
+    lines = ["- **warning**: state S1 is not metastable at lag 1 ps: it looks like a piece\n"
+             "  of a random walk",
+             "- warning: the lag is short for rescaled time",
+             "- bias hints refused for cv-02.json: no state has a spread along it",
+             "- a plain note, not a warning"]
+    summary.write_text(summary.read_text() + "\n" + "\n".join(lines) + "\n")
+    text = build_report(read_output(out)).html
+    _parse(text)  # well-formed XML still
+    caution = text.index('<p class="caution">')
+    block = text.index('id="run-warnings"')
+    assert caution < block < text.index("<nav>")
+    shown = re.findall(r"<li>(.*?)</li>", text[block:text.index("</div>", block)])
+    assert shown == ["state S1 is not metastable at lag 1 ps: it looks like a piece of a "
+                     "random walk", "the lag is short for rescaled time",
+                     "bias hints refused for cv-02.json: no state has a spread along it"]
+
+
+@pytest.fixture(scope="module")
+def three_slow_out(tmp_path_factory, three_states):
+    """suggest --objective slow --bootstrap 0 on conftest's three-state toy (five atoms),
+    written to a directory with its report."""
+    top, files = three_states
+    out = tmp_path_factory.mktemp("three-slow") / "out"
+    assert main(["suggest", "--topology", top, *[
+        a for s, fs in files.items() for a in ("--state", s, *fs)], "--objective", "slow",
+        "--lag", "2", "--bootstrap", "0", "--suggestions", "2", "--max-terms", "1",
+        "--kinds", "distance", "--out", str(out), "--quiet"]) == 0
+    return out
+
+
+def _ranking_rows(text):
+    table = text[text.index('<table class="ranking">'):]
+    table = table[:table.index("</table>")]
+    header = re.findall(r"<th>(.*?)</th>", table)
+    rows = [re.findall(r"<td[^>]*>(.*?)</td>", row)
+            for row in re.findall(r"<tr>(.*?)</tr>", table)[1:]]
+    return header, rows
+
+
+def test_the_score_the_ranking_is_ordered_by_has_its_own_column(three_slow_out, demo_out):
+    text = (three_slow_out / "report.html").read_text(encoding="utf-8")
+    ranking = json.loads((three_slow_out / "ranking.json").read_text())["ranking"]
+    header, rows = _ranking_rows(text)
+    col = header.index("held-out slow score (ranked by)")
+    assert [row[col] for row in rows] == [format(r["heldout_score"], ".3g") for r in ranking]
+    assert "by the held-out slow score (the cross-validated VAMP-2 score" in text
+    # objective separate ranks on J, already a column: no score column
+    header, _ = _ranking_rows((demo_out / "report.html").read_text(encoding="utf-8"))
+    assert not any("score" in h for h in header)
+
+
+def test_what_was_not_measured_reads_n_a_and_no_interval_is_described(three_slow_out,
+                                                                      demo_out):
+    text = (three_slow_out / "report.html").read_text(encoding="utf-8")
+    _parse(text)
+    header, rows = _ranking_rows(text)
+    assert "Brackets: nominal 95 %" not in text and "No intervals: this run computed no " \
+        "bootstrap intervals" in text
+    assert header[2] == "descriptors (weight)"
+    refits = header.index("found again in refits")
+    assert all(row[refits] == "n/a (no bootstrap refits)" for row in rows)
+    assert all(cell != "" for row in rows for cell in row)
+    figs = {f.name: f for f in build_report(read_output(three_slow_out)).figures}
+    weights = figs["cv-01-weights"]
+    assert "nominal 95 % bootstrap interval" not in weights.svg
+    assert "weights (no intervals: no bootstrap)" in weights.svg
+    assert "nominal 95 %" not in weights.alt
+    # with a bootstrap, the intervals are there and described
+    demo = (demo_out / "report.html").read_text(encoding="utf-8")
+    assert "Brackets: nominal 95 %" in demo
+    demo_figs = {f.name: f for f in build_report(read_output(demo_out)).figures}
+    assert "weights (black: nominal 95 % bootstrap interval)" in demo_figs["cv-01-weights"].svg
+    # a ranking entry without slowness (no lag): n/a with the reason, not an empty cell
+    out = three_slow_out.parent / "nolag"
+    shutil.copytree(three_slow_out, out)
+    path = out / "ranking.json"
+    doc = json.loads(path.read_text())
+    doc["lag_ps"] = None
+    for r in doc["ranking"]:
+        for key in ("heldout_autocorrelation", "timescale_ps"):
+            r[key] = None
+    path.write_text(json.dumps(doc))
+    header, rows = _ranking_rows(build_report(read_output(out)).html)
+    rho, ts = header.index("autocorr."), header.index("timescale (ps)")
+    assert all(row[rho] == row[ts] == "n/a (no lag)" for row in rows)
+
+
+def test_with_three_states_the_overlap_column_says_it_is_the_closest_pair(three_slow_out,
+                                                                          demo_out):
+    text = (three_slow_out / "report.html").read_text(encoding="utf-8")
+    header, _ = _ranking_rows(text)
+    assert "overlap (closest pair)" in header
+    assert "the overlapping coefficient of the two states that overlap most along the CV" \
+        in text
+    two = (demo_out / "report.html").read_text(encoding="utf-8")
+    assert "overlap (closest pair)" not in two and "two states that overlap most" not in two
+
+
+def test_biased_runs_say_rescaled_time_and_why_panels_and_frames_are_left_out(runs_out,
+                                                                              tmp_path):
+    def biased(data):
+        for cv in data["cvs"]:
+            cv["heldout"]["weighted"] = list(data["states"])
+            cv["timescales"]["timescale_within_runs_ps"] = None  # as for biased runs
+            # frames in no state (between the states) are not in the trace
+            tr = cv["traces"][0]
+            for key in ("frame", "value", "state") + (("time_ps",) if tr.get("time_ps")
+                                                       else ()):
+                tr[key] = tr[key][:40] + tr[key][60:]
+
+    out = _with_report_data(runs_out["out"], tmp_path / "out", biased)
+    report = build_report(read_output(out))
+    header, _ = _ranking_rows(report.html)
+    assert "autocorr. at 1 ps (rescaled time)" in header and "timescale (ps, rescaled time)" \
+        in header
+    figs = {f.name: f for f in report.figures}
+    ts = figs["implied-timescales"]
+    assert ts.data["within"] is None
+    assert "No panel within runs: its lags are frames times the time step" in ts.caption
+    traces = figs["cv-01-traces"]
+    assert traces.data["gaps"] is True and "Frames in no state" in traces.caption
+    # unbiased: none of these words
+    plain = {f.name: f for f in build_report(read_output(runs_out["out"])).figures}
+    assert "No panel within runs" not in plain["implied-timescales"].caption
+    assert plain["cv-01-traces"].data["gaps"] is False
+    assert "Frames in no state" not in plain["cv-01-traces"].caption
+
+
+def test_the_alt_text_names_the_within_runs_curves_so():
+    lags = [1.0, 2.0]
+    fig = fg.implied_timescales([("rank 1", lags, [5.0, 6.0])],
+                                within=[("rank 1", lags, [0.5, 0.6])])
+    assert " Within runs: rank 1: 0.5 at 1, 0.6 at 2." in fig.alt
+    assert "Within the states" not in fig.alt

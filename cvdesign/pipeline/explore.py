@@ -764,8 +764,8 @@ class Exploration:
                f"TICA at lag {self.lag_ps:g} ps; implied timescales (ps; lower bounds on the "
                "true ones: a linear combination of features relaxes at least as fast as the "
                "slowest process, by the variational principle, Noe and Nueske 2013): "
-               + ", ".join(_fmt_ts(t) if self.longest_run_ps is None
-                           or not t >= self.longest_run_ps  # NaN: no timescale read
+               + ", ".join(_fmt_ts(t) if _resolved_by_runs(t, self.longest_run_ps)
+                           is not False  # NaN: no timescale read
                            else f"> {self.longest_run_ps:.3g} (not resolved by these runs)"
                            for t in self.timescales_ps[:6])
                + self._few_transitions_text()
@@ -1214,12 +1214,13 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
                  f"(k-means fitted on {fit_y.shape[0]}, silhouette on {sil_y.shape[0]})")
     lengths = [screened.segment_counts[si].sum() * dt for si, dt in timesteps.items()
                if dt is not None and screened.segment_counts[si].sum() > 0]
+    longest = float(max(lengths)) if lengths else None
     report_tica = _report_tica(source, sample, wide_y[sample["rows"]], n_slow, means[k], names,
-                               ts_ps[:n_wide], lag, file_names)
+                               ts_ps[:n_wide], lag, file_names, longest)
     return Exploration(states=states, labels=_frame_labels(source, found["labels"], c, names),
                        populations=pops, representatives=reps, timescales_ps=ts_ps,
                        lag_ps=lag, n_slow=n_slow, criterion=criterion, notes=notes,
-                       longest_run_ps=float(max(lengths)) if lengths else None,
+                       longest_run_ps=longest,
                        kinetics=kin, warnings=warnings, report_tica=report_tica,
                        bias={str(seg.path): (str(seg.bias_path), seg.bias_column)
                              for seg in source.segments if seg.bias is not None},
@@ -1389,10 +1390,13 @@ class _SamplePass(Pass):
         return y, sample
 
 
-def _report_tica(source, sample, y, n_slow, centers, names, timescales_ps, lag_ps, file_names):
+def _report_tica(source, sample, y, n_slow, centers, names, timescales_ps, lag_ps, file_names,
+                 longest_run_ps):
     """The report's ``tica`` entry: the sample's first two TICA coordinates, the state of the
     nearest k-means centre in the first `n_slow` (the rule that gave every frame its state)
-    and `n_slow`; the runs named by `file_names` (:func:`run_file_names`)."""
+    and `n_slow`; the runs named by `file_names` (:func:`run_file_names`); the longest run
+    (ps) and, per timescale, whether the runs resolve it (:func:`_resolved_by_runs`, the
+    summary's rule)."""
     state = np.argmin(_squared_distances(np.ascontiguousarray(y[:, :n_slow]), centers), axis=1)
     return {"coords": y[:, :2].tolist() if y.shape[1] >= 2 else None,
             "state": [names[i] for i in state.tolist()],
@@ -1400,7 +1404,26 @@ def _report_tica(source, sample, y, n_slow, centers, names, timescales_ps, lag_p
             "file": sample["segment"].tolist(),
             "frame": sample["frame"].tolist(),
             "timescales_ps": [float(t) if math.isfinite(t) else None for t in timescales_ps],
-            "lag_ps": float(lag_ps), "n_slow": int(n_slow)}
+            "lag_ps": float(lag_ps), "n_slow": int(n_slow),
+            "longest_run_ps": longest_run_ps,
+            "timescales_resolved": [_resolved_by_runs(float(t), longest_run_ps)
+                                    for t in timescales_ps]}
+
+
+def _resolved_by_runs(t, longest_run_ps):
+    """Whether runs at most `longest_run_ps` long resolve the timescale `t` (ps): shorter
+    than the longest run; None when there is no timescale to judge (NaN) or no run length.
+
+    Examples
+    --------
+    >>> _resolved_by_runs(40.0, 90.0), _resolved_by_runs(581.0, 90.0)
+    (True, False)
+    >>> _resolved_by_runs(float("inf"), 90.0), _resolved_by_runs(40.0, None)
+    (False, None)
+    """
+    if longest_run_ps is None or math.isnan(t):
+        return None
+    return bool(t < longest_run_ps)
 
 
 def _nearer(a, b):

@@ -32,7 +32,7 @@ from ..constants import BOLTZMANN_KJ_MOL_K
 
 __all__ = ["PALETTE", "Figure", "state_colors", "cv_distributions", "cv_traces",
            "term_weights", "pool_scores", "redundancy_groups", "implied_timescales",
-           "tica_states", "funnel_positions"]
+           "tica_resolved", "tica_states", "funnel_positions"]
 
 #: The Okabe-Ito palette (Okabe and Ito 2008): orange, sky blue, bluish green, yellow, blue,
 #: vermillion, reddish purple, black. State ``i`` (input order) gets colour ``i``.
@@ -88,6 +88,10 @@ class Figure:
         Per drawn axis: ``{"x": label, "y": label, "x_ticks": kind, "y_ticks": kind}``,
         kind ``'numeric'``, ``'text'`` (categories, no unit) or ``'none'`` (no tick
         labels shown, e.g. the inner side of panels sharing an axis).
+    text_outside : tuple of str
+        The texts (titles, labels, legends, ticks) that reach beyond the figure's edges
+        after its layout, as matplotlib measures them (its own font): cut off in the
+        picture. Empty when every text fits.
     """
 
     name: str
@@ -96,6 +100,7 @@ class Figure:
     svg: str
     data: dict = field(default_factory=dict)
     axes: tuple = ()
+    text_outside: tuple = ()
 
 
 def state_colors(states):
@@ -158,11 +163,39 @@ def _axes_record(fig):
                   "y_ticks": _ticks(ax.yaxis)} for ax in fig.axes if ax.axison)
 
 
+def _text_outside(fig, tolerance_px=1.0):
+    """The visible texts of a figure whose extent reaches beyond its edges, after its layout
+    (laid out again at its own dpi: called after the SVG was written)."""
+    from matplotlib.text import Text
+
+    fig.draw_without_rendering()
+    renderer = fig._get_renderer()
+    box = fig.bbox
+    hidden = set()  # tick labels of ticks beyond the view limits are not drawn
+    for ax in fig.axes:
+        for axis in (ax.xaxis, ax.yaxis):
+            lo, hi = sorted(axis.get_view_interval())
+            for tick in axis.get_major_ticks() + axis.get_minor_ticks():
+                loc = tick.get_loc()
+                if loc is None or not lo - 1e-9 * (hi - lo) <= loc <= hi + 1e-9 * (hi - lo):
+                    hidden.update(id(t) for t in (tick.label1, tick.label2))
+    out = []
+    for t in fig.findobj(Text):
+        if (id(t) in hidden or not t.get_visible() or not t.get_text()
+                or t.get_figure() is None):
+            continue
+        ext = t.get_window_extent(renderer)
+        if (ext.x0 < box.x0 - tolerance_px or ext.y0 < box.y0 - tolerance_px
+                or ext.x1 > box.x1 + tolerance_px or ext.y1 > box.y1 + tolerance_px):
+            out.append(t.get_text())
+    return tuple(out)
+
+
 def _finish(fig, name, caption, alt, data):
     buf = io.StringIO()
     fig.savefig(buf, format="svg", metadata=_METADATA)
     return Figure(name=name, caption=caption, alt=alt, svg=buf.getvalue(), data=data,
-                  axes=_axes_record(fig))
+                  axes=_axes_record(fig), text_outside=_text_outside(fig))
 
 
 def _per(units):
@@ -517,7 +550,8 @@ def cv_traces(name, label, traces, *, states, units="CV units", reachable=None,
     Figure
         ``data``: ``panels`` (per file: ``file``, ``x`` ("time_ps" or "frame"),
         ``points``, ``per_state`` counts, ``value_min``, ``value_max``), ``n_files``,
-        ``shown``, ``reachable``, ``bounds_drawn``, ``at_bound``.
+        ``shown``, ``reachable``, ``bounds_drawn``, ``at_bound``, ``gaps`` (whether
+        some run drawn leaves out frames, those in no state; the caption says so).
 
     Examples
     --------
@@ -587,7 +621,9 @@ def cv_traces(name, label, traces, *, states, units="CV units", reachable=None,
 
             handles.append(Line2D([], [], color="black", ls="-.", lw=1.0))
             names.append("reachable bound")
-        fig.legend(handles, names, loc="outside upper right", ncols=min(len(names), 6),
+        # long names (a state at a bound) in fewer columns, so that the legend fits
+        fig.legend(handles, names, loc="outside upper right",
+                   ncols=min(len(names), 6 if sum(map(len, names)) <= 60 else 2),
                    title=f"{label}: state", frameon=False)
         data = {"panels": panels, "n_files": len(traces), "shown": len(shown),
                 "colors": {s: colors[s] for s in states},
@@ -595,6 +631,9 @@ def cv_traces(name, label, traces, *, states, units="CV units", reachable=None,
                 "bounds_drawn": drawn, "at_bound": at_bound}
         more = (f" (the first {len(shown)} of {len(traces)} files)"
                 if len(shown) < len(traces) else "")
+        gaps = any(np.any(np.diff(np.asarray(tr["frame"])) > np.min(np.diff(
+            np.asarray(tr["frame"])))) for tr in shown if len(tr["frame"]) > 2)
+        data["gaps"] = bool(gaps)
         alt = (f"{label}: the CV ({units}) along time in {len(shown)} input file(s){more}, "
                "each frame coloured by its state (" + ", ".join(
                    f"{s}: {sum(p['per_state'].get(s, 0) for p in panels)} points"
@@ -602,6 +641,8 @@ def cv_traces(name, label, traces, *, states, units="CV units", reachable=None,
         caption = (f"{label} along time in each input file{more}, coloured by state: a good "
                    "CV stays in its state's range within a run and jumps only at a change of "
                    "state. Frames are subsampled evenly (by frame number)."
+                   + (" Frames in no state (between the states, as the labels have it) are "
+                      "left out: the gaps along a run." if gaps else "")
                    + _range_words(reachable, drawn, at_bound))
         return _finish(fig, name, caption, alt, data)
 
@@ -613,7 +654,8 @@ def _legend_dot(color):
 
 
 def term_weights(name, label, terms):
-    """The terms of a CV: weights with 95 % intervals, and selection frequencies.
+    """The terms of a CV: weights with 95 % intervals (when known), and selection
+    frequencies.
 
     Parameters
     ----------
@@ -649,7 +691,9 @@ def term_weights(name, label, terms):
         left.axvline(0.0, color="black", lw=0.6)
         left.set_yticks(y, [_shorten(v) for v in labels])
         left.set_xlabel("weight on the standardized term\n(CV units per term std)")
-        left.set_title("weights (black: nominal 95 % bootstrap interval)")
+        known = [ci for ci in cis if ci and None not in ci]
+        left.set_title("weights (black: nominal 95 % bootstrap interval)" if known else
+                       "weights (no intervals: no bootstrap)")
         if all(f is None for f in freq):
             _no_data(right, "selection frequency not measured\n(no bootstrap refits)")
         else:
@@ -659,8 +703,10 @@ def term_weights(name, label, terms):
         right.set_title("how often refits keep the term")
         data = {"labels": labels, "weights": weights, "weight_ci": cis,
                 "selection_frequency": freq}
-        alt = (f"{label}: weight of each term with its nominal 95 % interval, and how often "
-               "bootstrap refits keep it: " + "; ".join(
+        alt = (f"{label}: weight of each term"
+               + (" with its nominal 95 % interval" if known else "")
+               + (", and how often bootstrap refits keep it: " if any(
+                   f is not None for f in freq) else ": ") + "; ".join(
                    f"{lab} {w:+.3g}" + (f" [{ci[0]:+.3g}, {ci[1]:+.3g}]"
                                         if ci and None not in ci else "")
                    + ("" if f is None else f", selected in {f:.0%}")
@@ -788,7 +834,8 @@ def redundancy_groups(groups):
 
 
 # ------------------------------------------------------------------------- slow modes
-def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased=False):
+def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased=False,
+                       longest_run_ps=None):
     """Implied timescales against the lag where they were computed.
 
     Parameters
@@ -799,7 +846,11 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
         drawn.
     tica : dict or None
         ``{"lag_ps": float, "timescales_ps": [float or None]}``: the slow
-        coordinates of ``--runs`` at their lag (None: not finite, not drawn).
+        coordinates of ``--runs`` at their lag (None: not finite), with optional
+        ``"resolved"`` (per timescale: True, False when the runs are too short to
+        resolve it, None unknown). A resolved one is drawn as a cross, one not
+        resolved as a triangle at the longest run (it is only known to be longer); a
+        None timescale not resolved is drawn so too, others with None are not drawn.
     within : list of (str, list of float, list of float or None), optional
         The same within runs (each run, a file's frames of one state, about its
         own mean), drawn in a second panel: the relaxation inside the basins,
@@ -811,12 +862,16 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
     biased : bool, default=False
         Whether the runs are biased: the caption then says that lags and timescales
         are in rescaled time.
+    longest_run_ps : float or None, optional
+        The longest run (ps), drawn as a horizontal line in each panel: timescales
+        above it are not resolved by the runs.
 
     Returns
     -------
     Figure
-        ``data``: ``curves`` (label -> lag_ps, timescale_ps), ``tica``, ``within``
-        (label -> lag_ps, timescale_ps, or None).
+        ``data``: ``curves`` (label -> lag_ps, timescale_ps), ``tica`` (with
+        ``resolved``), ``within`` (label -> lag_ps, timescale_ps, or None),
+        ``longest_run_ps``.
 
     Examples
     --------
@@ -837,12 +892,22 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
         tica_data = None
         if tica is not None:
             t = [None if v is None else float(v) for v in tica["timescales_ps"]]
-            shown_t = [v for v in t if v is not None]
-            ax.plot([tica["lag_ps"]] * len(shown_t), shown_t, linestyle="none", marker="x",
-                    color="black", ms=6,
-                    label=f"TICA at {tica['lag_ps']:g} ps (lower bounds on the timescales)")
-            tica_data = {"lag_ps": float(tica["lag_ps"]), "timescales_ps": t}
+            ok = tica_resolved(t, tica.get("resolved"), longest_run_ps)
+            shown_t = [v for v, r in zip(t, ok) if v is not None and r is not False]
+            if shown_t:
+                ax.plot([tica["lag_ps"]] * len(shown_t), shown_t, linestyle="none",
+                        marker="x", color="black", ms=6,
+                        label=f"TICA at {tica['lag_ps']:g} ps (lower bounds on the "
+                        "timescales)")
+            beyond = sum(r is False for r in ok)
+            if beyond and longest_run_ps is not None:
+                ax.plot([tica["lag_ps"]] * beyond, [longest_run_ps] * beyond,
+                        linestyle="none", marker="^", color="black", ms=6, fillstyle="none",
+                        label=f"TICA at {tica['lag_ps']:g} ps, not resolved by these runs "
+                        f"(> {longest_run_ps:.3g} ps)")
+            tica_data = {"lag_ps": float(tica["lag_ps"]), "timescales_ps": t, "resolved": ok}
             lags_seen.append(float(tica["lag_ps"]))
+        panels = [ax]
         _timescale_axes(ax, lags_seen, "all runs about their common mean" if within else
                         "implied timescales against the lag: a slow process gives a plateau")
         drawn_within = None
@@ -850,19 +915,30 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
             right = axes[0][1]
             drawn_within, seen = _timescale_curves(right, within, styles)
             _timescale_axes(right, seen, "within runs (each run about its own mean)")
+            panels.append(right)
+        if longest_run_ps is not None:
+            for panel in panels:
+                panel.axhline(longest_run_ps, color="#444444", lw=0.9, ls=(0, (4, 2)),
+                              label=f"longest run ({longest_run_ps:.3g} ps): longer "
+                              "timescales are not resolved")
         # one legend for the panels, below them (inside, it hid the curves)
         handles, labels = ax.get_legend_handles_labels()
-        fig.legend(handles, labels, loc="outside lower center", ncols=4)
-        data = {"curves": drawn, "tica": tica_data, "within": drawn_within}
+        fig.legend(handles, labels, loc="outside lower center",
+                   ncols=4 if max(map(len, labels)) <= 40 else 2)
+        data = {"curves": drawn, "tica": tica_data, "within": drawn_within,
+                "longest_run_ps": None if longest_run_ps is None else float(longest_run_ps)}
         parts = [f"{lab}: " + ", ".join(f"{_fmt(t)} at {lg:g}" for lg, t in
                                         zip(v["lag_ps"], v["timescale_ps"]))
                  for lab, v in drawn.items()]
         if tica_data is not None:
             parts.append(f"TICA slow coordinates at {tica_data['lag_ps']:g}: " + ", ".join(
-                _fmt(t) for t in tica_data["timescales_ps"]))
+                _tica_text(t, r, longest_run_ps)
+                for t, r in zip(tica_data["timescales_ps"], tica_data["resolved"])))
         alt = "Implied timescales in ps against the lag in ps: " + "; ".join(parts) + "."
+        if longest_run_ps is not None:
+            alt += f" Longest run: {longest_run_ps:.3g} ps."
         if drawn_within:
-            alt += " Within the states: " + "; ".join(
+            alt += " Within runs: " + "; ".join(
                 f"{lab}: " + ", ".join(f"{_fmt(t)} at {lg:g}" for lg, t in
                                        zip(v["lag_ps"], v["timescale_ps"]))
                 for lab, v in drawn_within.items()) + "."
@@ -885,17 +961,31 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
                         "the offsets between them; the CV's integrated time in the ranking, "
                         "which sets the bias hints' deposition interval, comes from these "
                         "autocorrelations, taken state by state (the longest).")
+        if longest_run_ps is not None:
+            caption += (f" The dashed line is the longest run ({longest_run_ps:.3g} ps): a "
+                        "timescale above it is not resolved by these runs, only known to be "
+                        "longer than what they show.")
         if tica_data is not None:
             caption += (" The crosses are TICA's implied timescales at its lag (--runs): lower "
                         "bounds on the true timescales, since a linear combination of features "
                         "relaxes at least as fast as the slowest process (variational "
                         "principle, No\u00e9 and N\u00fcske 2013); the summary flags them when "
                         "few transitions between the proposed states back them.")
+            if any(r is False for r in tica_data["resolved"]):
+                caption += (" A triangle at the longest run marks a TICA timescale the runs "
+                            "do not resolve: they show only that it is longer than they are. "
+                            "TICA's timescales (ps): " + ", ".join(
+                                _tica_text(t, r, longest_run_ps) for t, r in
+                                zip(tica_data["timescales_ps"], tica_data["resolved"])) + ".")
         if biased:
             caption += (" The runs are biased: lags and timescales are in rescaled time (each "
                         "frame's step dt exp(V/kT)) and pairs weigh as their first frame, an "
                         "estimate of the unbiased dynamics that is exact only when the bias "
                         "vanishes at the barriers.")
+            if not drawn_within:
+                caption += (" No panel within runs: its lags are frames times the time step, "
+                            "which is not the time of biased runs, so it is not computed for "
+                            "them.")
         data["biased"] = bool(biased)
         return _finish(fig, "implied-timescales", caption, alt, data)
 
@@ -935,8 +1025,36 @@ def _timescale_axes(ax, lags_seen, title):
     ax.set_title(title)
 
 
+def tica_resolved(timescales_ps, resolved=None, longest_run_ps=None):
+    """Per TICA timescale, whether the runs resolve it: `resolved` (the report data's
+    ``timescales_resolved``) where given, else shorter than `longest_run_ps` (None: no
+    timescale or no run length to judge).
+
+    Examples
+    --------
+    >>> tica_resolved([581.0, 40.0, None], longest_run_ps=90.0)
+    [False, True, None]
+    >>> tica_resolved([581.0, None], [False, False])
+    [False, False]
+    """
+    ts = list(timescales_ps or [])
+    if resolved is not None:
+        return [None if r is None else bool(r) for r in resolved][:len(ts)] + \
+            [None] * max(0, len(ts) - len(resolved))
+    return [None if t is None or longest_run_ps is None else bool(t < longest_run_ps)
+            for t in ts]
+
+
+def _tica_text(t, resolved, longest_run_ps):
+    """A TICA timescale as the summary writes it: ``> 90 (not resolved by these runs)``
+    when the runs do not resolve it."""
+    if resolved is False and longest_run_ps is not None:
+        return f"> {longest_run_ps:.3g} (not resolved by these runs)"
+    return _fmt(t)
+
+
 def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=None,
-                biased=False):
+                biased=False, longest_run_ps=None, resolved=None):
     """Frames in the two slowest TICA coordinates, coloured by proposed state.
 
     Parameters
@@ -959,6 +1077,11 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=No
     biased : bool, default=False
         Whether the runs are biased: the caption says the frames are drawn
         without their weights.
+    longest_run_ps : float or None, optional
+        The longest run, ps; with `resolved`, the report data's
+        ``timescales_resolved``: a timescale the runs do not resolve is labelled
+        "> longest run (not resolved by these runs)", as the summary writes it
+        (:func:`tica_resolved`).
 
     Returns
     -------
@@ -982,6 +1105,14 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=No
     >>> print(fig.data["axis_labels"][1])
     TICA coordinate 2 (TICA timescale 12.7 ps):
     faster than the 20 ps lag, not used for the states
+
+    A first coordinate slower than the runs are long:
+
+    >>> fig = tica_states([[0.0, 0.1], [1.0, 0.0]], ["S1", "S2"], states=["S1", "S2"],
+    ...                   lag_ps=0.6, timescales_ps=[581.0, 1.43], longest_run_ps=90.0)
+    >>> print(fig.data["axis_labels"][0])
+    slow coordinate 1 (dimensionless, kinetic map;
+    timescale > 90 ps, not resolved by these runs)
     """
     xy = np.asarray(coords, dtype=np.float64).reshape(-1, 2)
     lab = np.asarray(list(labels), dtype=object)
@@ -993,6 +1124,7 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=No
     colors = state_colors(states)
     counts, centroids = {}, {}
     ts = list(timescales_ps or [])
+    ok = tica_resolved(ts, resolved, longest_run_ps)
 
     def used(k):
         if n_slow is not None:
@@ -1005,8 +1137,11 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=No
             return (f"TICA coordinate {k + 1}" + (f" (TICA timescale {ts[k]:.3g} ps)" if known
                                                   else "")
                     + f":\nfaster than the {lag_ps:g} ps lag, not used for the states")
+        if len(ok) > k and ok[k] is False and longest_run_ps is not None:
+            return (f"slow coordinate {k + 1} (dimensionless, kinetic map;\ntimescale > "
+                    f"{longest_run_ps:.3g} ps, not resolved by these runs)")
         return (f"slow coordinate {k + 1} (dimensionless, kinetic map"
-                + (f"; timescale \u2265 {ts[k]:.3g} ps, a lower bound)" if known else ")"))
+                + (f";\ntimescale \u2265 {ts[k]:.3g} ps, a lower bound)" if known else ")"))
 
     axis_labels = [axis_label(0), axis_label(1)]
 
@@ -1026,7 +1161,7 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=No
                   loc="best")
         data = {"counts": counts, "centroids": centroids,
                 "colors": {s: colors[s] for s in states}, "used": [used(0), used(1)],
-                "axis_labels": axis_labels}
+                "axis_labels": axis_labels, "resolved": ok[:2]}
         alt = (f"{xy.shape[0]} frames in the two slowest TICA coordinates at lag {lag_ps:g} ps, "
                "coloured by proposed state: " + ", ".join(
                    f"{s} {counts[s]} frames" for s in states) + ".")
@@ -1035,6 +1170,10 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=No
                    "clouds are distinct slow states. The axes' timescales are TICA's, lower "
                    "bounds on the true ones (variational principle, No\u00e9 and N\u00fcske "
                    "2013).")
+        if any(r is False for r in ok[:2]):
+            caption += (f" An axis marked \u201cnot resolved\u201d has a TICA timescale longer "
+                        f"than the longest run ({longest_run_ps:.3g} ps): the runs show only "
+                        "that it is slower than they are, not how slow.")
         if not used(1):
             caption += (f" The vertical axis is a TICA coordinate faster than the {lag_ps:g} ps "
                         "lag, drawn to spread the points: the states were clustered in the "

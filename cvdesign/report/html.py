@@ -243,8 +243,11 @@ class _Html(str):
     """Text that is already HTML (not escaped again by :func:`_table`)."""
 
 
-def _with_ci(value, ci, spec=".3g"):
-    """A number with its interval on a second, smaller line."""
+def _with_ci(value, ci, spec=".3g", missing=""):
+    """A number with its interval on a second, smaller line; `missing` when there is no
+    number."""
+    if value is None:
+        return missing
     text = _e(_num(value, spec))
     interval = _ci(ci, spec).strip()
     return _Html(text + (f'<span class="ci">{_e(interval)}</span>' if interval else ""))
@@ -293,6 +296,103 @@ def _range_cell(spec, states):
 
 
 # --------------------------------------------------------------------------- suggest
+#: What the held-out score of each objective but ``separate`` (whose score is J) is.
+_OBJECTIVE_SCORES = {
+    "slow": "the cross-validated VAMP-2 score of the CV's slowest mode at the lag, "
+            "dimensionless, 0 to 1",
+    "both": "J/(1 + J) \u00d7 (1 + max(autocorrelation, 0))/2 on held-out frames, "
+            "dimensionless, 0 to 1",
+}
+
+
+def _summary_items(summary):
+    """The list items of ``summary.md`` (``- `` lines with their continuation lines)."""
+    items, current = [], None
+    for line in (summary or "").splitlines():
+        stripped = line.strip()
+        if stripped.startswith("- "):
+            current = [stripped[2:]]
+            items.append(current)
+        elif current is not None and stripped and not stripped.startswith(("|", "#")):
+            current.append(stripped)
+        else:
+            current = None
+    return [" ".join(i) for i in items]
+
+
+_RUN_WARNING = re.compile(r"(\*\*warning\*\*|warning):\s*|(?=bias hints refused)", re.I)
+
+
+def _run_warnings(summary):
+    """The block after the caution: the run summary's notes that are warnings (``warning:``)
+    or say that bias hints were refused; empty when there are none."""
+    found = []
+    for item in _summary_items(summary):
+        m = _RUN_WARNING.match(item)
+        if m:
+            found.append(item[m.end():])
+    if not found:
+        return ""
+    return ('<div class="warning" id="run-warnings"><p><strong>Warnings of this run</strong> '
+            "(from the run summary below):</p><ul>"
+            + "".join(f"<li>{_inline(w)}</li>" for w in found) + "</ul></div>\n")
+
+
+def _hint_walls(walls):
+    if walls is None:
+        return "none (periodic CV)"
+    if walls.get("restraint") is not None:
+        return f"none on the CV: restraint {walls['restraint']!r} confines it"
+    if walls.get("lower") is None and walls.get("upper") is None:
+        return "none needed (both would stand at or beyond the CV's reachable ends)"
+    return ", ".join(f"{side} {_interval_end(walls.get(side))}" for side in ("lower", "upper"))
+
+
+def _walls_at(walls):
+    """Whether the hints place a wall on the CV (lower or upper)."""
+    return bool(walls) and walls.get("restraint") is None and (
+        walls.get("lower") is not None or walls.get("upper") is not None)
+
+
+def _interval_end(x):
+    return "none" if x is None else format(x, ".4g")
+
+
+def _hints_block(hints, spec_name):
+    """Under a ranked CV: its bias hints as the spec holds them (a short table), their
+    warnings and caution, or why they were refused."""
+    hints = hints or {}
+    if hints.get("hints_refused"):
+        return (f'<p class="warning"><strong>Bias hints refused</strong> ({_e(spec_name)}): '
+                f"{_e(hints['hints_refused'])}</p>")
+    if "kernel" not in hints:
+        return f"<p>{_e(spec_name)} holds no bias hints.</p>"
+    k, dep, wt = hints["kernel"], hints["deposition"], hints["well_tempered"]
+    md = (hints.get("inputs") or {}).get("md_step_fs")
+    rows = [["kernel width (sigma)", _num(k["sigma"], ".4g"), "CV units",
+             "Gaussian" if k["kind"] == "gaussian" else
+             f"Lucy kernel, cutoff {_num(k.get('cutoff'), '.4g')} CV units"],
+            ["kernel height (initial)", _num(hints["height_kj_mol"], ".4g"), "kJ/mol", ""],
+            ["deposition interval", _num(dep["interval_ps"], ".4g"), "ps",
+             f"{dep['interval_steps']} steps" + ("" if md is None else f" of {md:g} fs")
+             + (" (capped)" if dep.get("capped") else "")],
+            ["bias factor (well-tempered)",
+             "n/a" if wt.get("bias_factor") is None else _num(wt["bias_factor"], ".3g"), "",
+             "no barrier given: the spec's hints.well_tempered.table gives one per barrier"
+             if wt.get("bias_factor") is None else
+             f"for a barrier of {_num(wt.get('barrier_kj_mol'), '.3g')} kJ/mol"],
+            ["walls", _hint_walls(hints.get("walls")),
+             "CV units" if _walls_at(hints.get("walls")) else "", ""]]
+    out = [f'<h4 id="{_e(Path(spec_name).stem)}-hints">Bias hints ({_e(spec_name)}, '
+           "<code>hints</code>)</h4>",
+           _table(["hint", "value", "unit", "note"], rows, numeric=(1,))]
+    out += [f'<p class="warning"><strong>Warning</strong> (bias hints): {_e(w)}</p>'
+            for w in hints.get("warnings") or []]
+    if hints.get("caution"):
+        out.append(f'<p class="caution"><strong>Caution.</strong> {_e(hints["caution"])}</p>')
+    return "\n".join(out)
+
+
 def _suggest(page, output, parsed):
     ranking, specs = parsed["ranking"], parsed["specs"]
     data = parsed["report_data"]
@@ -313,7 +413,7 @@ def _suggest(page, output, parsed):
                     for s in states)
         + f"; objective <code>{_e(ranking.get('objective'))}</code>"
         + ("" if lag is None else f"; lag {lag:g} ps") + ".</p>\n"
-        + _caution(caution) + "\n")
+        + _caution(caution) + "\n" + _run_warnings(output.files.get("summary.md")))
     if data is None:
         page.add(f'<p class="missing">This directory has no {data_name}: the figures drawn '
                  "from the tables are shown, those that need the stored held-out histograms, "
@@ -321,10 +421,26 @@ def _suggest(page, output, parsed):
 
     # ranking table
     page.section(2, "ranking", "Ranking")
-    page.add("<p>Ranked CVs, best first. Held-out J is the Fisher ratio (between-state over "
+    entries = ranking["ranking"]
+    objective = ranking.get("objective")
+    scored = objective in _OBJECTIVE_SCORES
+    intervals = any(_ci(r.get("heldout_fisher_ratio_ci")) or any(
+        _ci(t.get("weight_ci")) for t in r["terms"]) for r in entries)
+    refits = any(r.get("reproduced_in_refits") is not None or any(
+        t.get("selection_frequency") is not None for t in r["terms"]) for r in entries)
+    biased = _biased_runs(data)
+    page.add("<p>Ranked CVs, best first"
+             + (f", by the held-out {_e(objective)} score ({_OBJECTIVE_SCORES[objective]})"
+                if scored else "")
+             + ". Held-out J is the Fisher ratio (between-state over "
              "within-state variance, dimensionless) on frames the fit never saw; overlap is "
-             "the overlapping coefficient of the states' held-out histograms (0 = disjoint); "
-             "the autocorrelation is at the lag (1 = does not relax within it"
+             + ("the overlapping coefficient of the two states that overlap most along the "
+                "CV (held-out histograms; 0 = disjoint, 1 = the same)" if len(states) > 2 else
+                "the overlapping coefficient of the states' held-out histograms (0 = disjoint)")
+             + "; the autocorrelation is at the lag"
+             + (" in rescaled time (the runs are biased: each frame's step dt exp(V/kT); "
+                "the timescale too)" if biased else "")
+             + " (1 = does not relax within it"
              + ("; along the runs that cross between the states, each run about its own "
                 "mean, the pairs spanning the crossings"
                 + (", which objective both ranks on here" if any(
@@ -334,14 +450,21 @@ def _suggest(page, output, parsed):
                 "; within the states, each state's runs about its own mean, which objective "
                 "both ranks on" if ranking.get("objective") == "both" else
                 "; all runs about one common mean, so a run that stays in its state counts "
-                "as slow") + "). Brackets: nominal 95 % "
-             "bootstrap intervals (measured coverage 87-92 %: somewhat narrow); selection: how often bootstrap refits of the search keep "
-             "the term. Reachable range: the values the CV can take, from its terms (cos and "
+                "as slow") + "). "
+             + ("Brackets: nominal 95 % bootstrap intervals (measured coverage 87-92 %: "
+                "somewhat narrow). " if intervals else
+                "No intervals: this run computed no bootstrap intervals (--bootstrap 0 or too "
+                "few blocks). ")
+             + ("Selection: how often bootstrap refits of the search keep the term. "
+                if refits else "")
+             + ("" if lag is not None else
+                "No lag was given, so slowness was not measured: those cells read n/a. ")
+             + "Reachable range: the values the CV can take, from its terms (cos and "
              "sin of a dihedral are bounded; -inf/+inf: unbounded on that side); "
              "<em>folded</em>: a state sits at a bound of it, where the bias force along "
              "the CV fades.</p>")
     rows = []
-    for r in ranking["ranking"]:
+    for r in entries:
         terms = _Html("".join(
             f'<span class="term">{_e(_term_name(t))} {t["weight"]:+.3f}'
             + _e(_ci(t.get("weight_ci"), "+.3f"))
@@ -350,23 +473,35 @@ def _suggest(page, output, parsed):
         within = shown_slowness(r)
         ts = r.get(f"timescale{within}_ps")
         bound = resolving_span_ps(r, f"timescale{within}")
+        unmeasured = "n/a (no lag)" if lag is None else "n/a (not measured: see the summary)"
         if ts is not None and r.get(f"timescale{within}_resolved") is False and bound:
             ts_text = f"> {bound:.3g} (not resolved)"
         else:
-            ts_text = _with_ci(ts, r.get(f"timescale{within}_ci_ps"))
-        rows.append([r["rank"], r["spec"], terms,
-                     _with_ci(r["heldout_fisher_ratio"], r.get("heldout_fisher_ratio_ci")),
-                     _with_ci(r["heldout_overlap"], r.get("heldout_overlap_ci")),
-                     _with_ci(r.get(f"heldout_autocorrelation{within}"),
-                              r.get(f"heldout_autocorrelation{within}_ci")),
-                     ts_text, _num(r.get("reproduced_in_refits"), ".0%"),
-                     _range_cell(specs[r["spec"]], states)])
-    page.add(_table(["rank", "spec", "descriptors (weight [nominal 95 % CI], selection)",
-                     "held-out J", "overlap", "autocorr." +
-                     ("" if lag is None else f" at {lag:g} ps"), "timescale (ps)",
-                     "found again in refits", "reachable range (CV units)"], rows,
-                    numeric=(0, 3, 4, 5, 6, 7), cls="ranking"))
-    for r in ranking["ranking"]:
+            ts_text = _with_ci(ts, r.get(f"timescale{within}_ci_ps"), missing=unmeasured)
+        rho = r.get(f"heldout_autocorrelation{within}")
+        rows.append([r["rank"], r["spec"], terms]
+                    + ([_with_ci(r.get("heldout_score"), r.get("heldout_score_ci"),
+                                 missing="n/a (not measured)")] if scored else [])
+                    + [_with_ci(r["heldout_fisher_ratio"], r.get("heldout_fisher_ratio_ci")),
+                       _with_ci(r["heldout_overlap"], r.get("heldout_overlap_ci")),
+                       _with_ci(rho, r.get(f"heldout_autocorrelation{within}_ci"),
+                                missing=unmeasured),
+                       ts_text, "n/a (no bootstrap refits)"
+                       if r.get("reproduced_in_refits") is None
+                       else _num(r["reproduced_in_refits"], ".0%"),
+                       _range_cell(specs[r["spec"]], states)])
+    page.add(_table(["rank", "spec", "descriptors (weight"
+                     + (" [nominal 95 % CI]" if intervals else "")
+                     + (", selection" if refits else "") + ")"]
+                    + ([f"held-out {objective} score (ranked by)"] if scored else [])
+                    + ["held-out J", "overlap"
+                       + (" (closest pair)" if len(states) > 2 else ""), "autocorr."
+                       + ("" if lag is None else f" at {lag:g} ps")
+                       + (" (rescaled time)" if biased else ""),
+                       "timescale (ps" + (", rescaled time" if biased else "") + ")",
+                       "found again in refits", "reachable range (CV units)"], rows,
+                    numeric=tuple(range(3, 9 if scored else 8)) + (0,), cls="ranking"))
+    for r in entries:
         for w in r.get("warnings", []) or []:
             page.add(f'<p class="warning"><strong>Warning</strong> (rank {_e(r["rank"])}, '
                      f"{_e(r['spec'])}): {_e(w)}.</p>")
@@ -424,6 +559,8 @@ def _suggest(page, output, parsed):
                                      units=units, reachable=reach, at_bound=at))
         page.reading = "ranking.json"
         page.figure(fg.term_weights(f"{stem}-weights", label, r["terms"]))
+        page.reading = r["spec"]
+        page.add(_hints_block(spec.hints, r["spec"]))
 
     # the pool
     page.section(2, "pool", "The pool")
@@ -458,13 +595,17 @@ def _suggest(page, output, parsed):
                 if t.get("timescale_within_runs_ps") is not None:
                     within.append((f"rank {c['rank']}", t["lag_ps"],
                                    t["timescale_within_runs_ps"]))
-    biased = _biased_runs(data)
+    longest = (tica.get("longest_run_ps") if tica is not None
+               else resolving_span_ps(ranking["ranking"][0], "timescale")
+               if ranking["ranking"] else None)
     if curves or tica is not None:
         page.figure(fg.implied_timescales(
-            curves, tica=None if tica is None else {"lag_ps": tica["lag_ps"],
-                                                   "timescales_ps": tica["timescales_ps"]},
+            curves, tica=None if tica is None else {
+                "lag_ps": tica["lag_ps"], "timescales_ps": tica["timescales_ps"],
+                "resolved": tica.get("timescales_resolved")},
             within=within, crossing=any(shown_slowness(r) == "_transitions"
-                                        for r in ranking["ranking"]), biased=biased))
+                                        for r in ranking["ranking"]), biased=biased,
+            longest_run_ps=longest))
     else:
         page.not_available("implied timescales against the lag",
                            f"{data_name} is missing" if data is None else
@@ -481,7 +622,9 @@ def _suggest(page, output, parsed):
             page.figure(fg.tica_states(tica["coords"], tica["state"], states=states,
                                        lag_ps=tica["lag_ps"],
                                        timescales_ps=tica.get("timescales_ps"),
-                                       n_slow=tica.get("n_slow"), biased=biased))
+                                       n_slow=tica.get("n_slow"), biased=biased,
+                                       longest_run_ps=tica.get("longest_run_ps"),
+                                       resolved=tica.get("timescales_resolved")))
         page.add("<p>Every frame's proposed state is in <code>states.csv</code>; each state's "
                  "fraction of the frames (reweighted for biased runs; an equilibrium "
                  "population only when the runs enter and leave it many times), staying "
