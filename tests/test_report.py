@@ -957,8 +957,8 @@ def test_every_text_of_every_figure_lies_within_the_figure(demo_out, runs_out, t
     ax.set_ylabel("slow coordinate 2 (dimensionless, kinetic map; timescale \u2265 1.43 ps, "
                   "a lower bound)")
     with fg._style():
-        mpl.savefig(tempfile.SpooledTemporaryFile(), format="svg")
-        assert fg._text_outside(mpl) == (ax.get_ylabel(),)
+        fig = fg._finish(mpl, "long-label", "", "", {})
+    assert fig.text_outside == (ax.get_ylabel(),)
 
 
 def _section(text, ident):

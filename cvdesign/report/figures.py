@@ -163,13 +163,11 @@ def _axes_record(fig):
                   "y_ticks": _ticks(ax.yaxis)} for ax in fig.axes if ax.axison)
 
 
-def _text_outside(fig, tolerance_px=1.0):
-    """The visible texts of a figure whose extent reaches beyond its edges, after its layout
-    (laid out again at its own dpi: called after the SVG was written)."""
+def _text_outside(fig, renderer, tolerance_px=1.0):
+    """The visible texts of a drawn figure whose extent, as `renderer` (the one that drew it)
+    measures it, reaches beyond the figure's edges."""
     from matplotlib.text import Text
 
-    fig.draw_without_rendering()
-    renderer = fig._get_renderer()
     box = fig.bbox
     hidden = set()  # tick labels of ticks beyond the view limits are not drawn
     for ax in fig.axes:
@@ -193,9 +191,13 @@ def _text_outside(fig, tolerance_px=1.0):
 
 def _finish(fig, name, caption, alt, data):
     buf = io.StringIO()
+    outside = []  # measured when the SVG is drawn, after its layout: no second drawing
+    cid = fig.canvas.mpl_connect(
+        "draw_event", lambda event: outside.append(_text_outside(fig, event.renderer)))
     fig.savefig(buf, format="svg", metadata=_METADATA)
+    fig.canvas.mpl_disconnect(cid)
     return Figure(name=name, caption=caption, alt=alt, svg=buf.getvalue(), data=data,
-                  axes=_axes_record(fig), text_outside=_text_outside(fig))
+                  axes=_axes_record(fig), text_outside=outside[-1] if outside else ())
 
 
 def _per(units):
@@ -835,7 +837,7 @@ def redundancy_groups(groups):
 
 # ------------------------------------------------------------------------- slow modes
 def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased=False,
-                       longest_run_ps=None):
+                       longest_run_ps=None, longest_what="longest run"):
     """Implied timescales against the lag where they were computed.
 
     Parameters
@@ -865,6 +867,10 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
     longest_run_ps : float or None, optional
         The longest run (ps), drawn as a horizontal line in each panel: timescales
         above it are not resolved by the runs.
+    longest_what : str, default="longest run"
+        What `longest_run_ps` is, for the legend and caption (e.g. "longest run in one
+        state": the pooled curves' pairs stay within one state, a visit of a labelled
+        run).
 
     Returns
     -------
@@ -919,7 +925,7 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
         if longest_run_ps is not None:
             for panel in panels:
                 panel.axhline(longest_run_ps, color="#444444", lw=0.9, ls=(0, (4, 2)),
-                              label=f"longest run ({longest_run_ps:.3g} ps): longer "
+                              label=f"{longest_what} ({longest_run_ps:.3g} ps): longer "
                               "timescales are not resolved")
         # one legend for the panels, below them (inside, it hid the curves)
         handles, labels = ax.get_legend_handles_labels()
@@ -936,7 +942,7 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
                 for t, r in zip(tica_data["timescales_ps"], tica_data["resolved"])))
         alt = "Implied timescales in ps against the lag in ps: " + "; ".join(parts) + "."
         if longest_run_ps is not None:
-            alt += f" Longest run: {longest_run_ps:.3g} ps."
+            alt += f" The {longest_what}: {longest_run_ps:.3g} ps."
         if drawn_within:
             alt += " Within runs: " + "; ".join(
                 f"{lab}: " + ", ".join(f"{_fmt(t)} at {lg:g}" for lg, t in
@@ -962,7 +968,7 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
                         "which sets the bias hints' deposition interval, comes from these "
                         "autocorrelations, taken state by state (the longest).")
         if longest_run_ps is not None:
-            caption += (f" The dashed line is the longest run ({longest_run_ps:.3g} ps): a "
+            caption += (f" The dashed line is the {longest_what} ({longest_run_ps:.3g} ps): a "
                         "timescale above it is not resolved by these runs, only known to be "
                         "longer than what they show.")
         if tica_data is not None:

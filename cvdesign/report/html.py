@@ -595,9 +595,11 @@ def _suggest(page, output, parsed):
                 if t.get("timescale_within_runs_ps") is not None:
                     within.append((f"rank {c['rank']}", t["lag_ps"],
                                    t["timescale_within_runs_ps"]))
-    longest = (tica.get("longest_run_ps") if tica is not None
-               else resolving_span_ps(ranking["ranking"][0], "timescale")
-               if ranking["ranking"] else None)
+    # the span the pooled curves are resolved within (pairs within one state: the longest
+    # run or visit of one state), or with --runs the longest run, TICA's
+    longest = (tica.get("longest_run_ps") if tica is not None else
+               resolving_span_ps(ranking["ranking"][0], "timescale") if ranking["ranking"]
+               else None)
     if curves or tica is not None:
         page.figure(fg.implied_timescales(
             curves, tica=None if tica is None else {
@@ -605,7 +607,8 @@ def _suggest(page, output, parsed):
                 "resolved": tica.get("timescales_resolved")},
             within=within, crossing=any(shown_slowness(r) == "_transitions"
                                         for r in ranking["ranking"]), biased=biased,
-            longest_run_ps=longest))
+            longest_run_ps=longest,
+            longest_what="longest run" if tica is not None else "longest run in one state"))
     else:
         page.not_available("implied timescales against the lag",
                            f"{data_name} is missing" if data is None else
