@@ -138,6 +138,28 @@ def test_reweighted_runs_get_the_noise_level_and_the_runs_too_short_check(tmp_pa
     assert not b["integrated_time_decayed"]
 
 
+def test_files_that_store_no_times_still_get_the_noise_level_in_frames(tmp_path):
+    """The same null runs as DCD files, which store no times: no integrated time in ps, but
+    the noise level needs the times in frames only (its CV's time from its slowest term's);
+    it had been left empty, and the warning off, without a word."""
+    top, files = _runs(tmp_path, 0.0, 3)
+    dcd = {s: [] for s in files}
+    for s, fs in files.items():
+        for f in fs:
+            path = f[:-4] + ".dcd"
+            md.load(f, top=top).save_dcd(path)
+            dcd[s].append(path)
+    kw = dict(kinds=("distance",), max_terms=2, n_suggestions=3, n_bootstrap=0)
+    timed = suggest(Source.from_states(top, files), **kw).ranking[0]
+    untimed = suggest(Source.from_states(top, dcd), **kw).ranking[0]
+    assert untimed["integrated_time_ps"] is None
+    level = untimed["heldout_fisher_ratio_noise"]
+    # of the order of the level from the CV's own times (from its terms' times: not below)
+    assert 0.8 * timed["heldout_fisher_ratio_noise"] < level < 3 * \
+        timed["heldout_fisher_ratio_noise"]
+    assert any("less than 10 times what noise alone gives" in w for w in untimed["warnings"])
+
+
 def test_states_that_differ_are_not_warned_about(tmp_path):
     # C1 moved by 0.04 nm, twice the spread of its jitter: a held-out ratio near 0.5, about
     # 45 times the level (seed 3; 0.02 nm gave 12 times, a null run up to 10 times)

@@ -743,16 +743,17 @@ def add_noise_level(entry, fm, frame_ps, *, warn=True, state_frames=None,
     """``heldout_fisher_ratio_noise`` (:func:`heldout_noise_level`, from `state_frames`, per
     state the time in frames its mean varies by, or else the CV's ``integrated_time_ps``
     for every state, and `effective_fraction`, per state its Kish effective over actual
-    frames when reweighted; None when the time or the frame spacing is unknown) and, when
+    frames when reweighted; None when a state's time is unknown) and, when
     `warn`, a warning when the held-out Fisher ratio is below :data:`NOISE_LEVEL_FACTOR`
     times it. Returns whether it warned."""
     tau_ps = entry.get("integrated_time_ps")
     level = None
-    if tau_ps is not None and frame_ps:
-        times = np.full(fm.n_states, tau_ps / frame_ps)
-        if state_frames is not None:  # a state without its own time keeps the CV's
-            own = np.asarray(state_frames, dtype=np.float64)
-            times = np.where(np.isfinite(own), own, times)
+    times = np.full(fm.n_states, tau_ps / frame_ps if tau_ps is not None and frame_ps
+                    else np.nan)
+    if state_frames is not None:  # a state without its own time keeps the CV's
+        own = np.asarray(state_frames, dtype=np.float64)
+        times = np.where(np.isfinite(own), own, times)
+    if np.isfinite(times).all():
         level = heldout_noise_level(fm, times, effective_fraction)
     entry["heldout_fisher_ratio_noise"] = level
     j = entry["heldout_fisher_ratio"]

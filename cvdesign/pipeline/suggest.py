@@ -424,7 +424,7 @@ def _suggest(source, config, executor, progress, checksums):
     notes += screening.notes
     notes.append(_folds_note(folds, config.n_folds))
     say(f"statistics pass ({len(screening.screened)} descriptors screened)")
-    fm, iat_desc, iat_note, transit, scatter = _statistics_pass(
+    fm, iat_desc, iat_note, transit, scatter, feature_frames = _statistics_pass(
         source, base, pool, screening, folds, priors, steps, lags, lag_ps, seg_counts, config,
         executor, reweighting)
     notes += iat_note
@@ -510,9 +510,15 @@ def _suggest(source, config, executor, progress, checksums):
         if add_pair_overlap(entry, held.closest[rank - 1], source.states):
             overlapping.append(rank)
         own = cv_times[rank - 1]
+        if own is not None:
+            state_times = own[5]
+        elif frame_ps is None and feature_frames:  # no frame spacing: from its terms, frames
+            state_times = _terms_state_frames(fit, feature_frames, source.n_states)
+        else:
+            state_times = None
         if add_noise_level(entry, fm, frame_ps, warn=config.objective != "slow",
-                           state_frames=None if own is None else [
-                               t * scatter.get(s, 1.0) for s, t in enumerate(own[5])],
+                           state_frames=None if state_times is None else [
+                               t * scatter.get(s, 1.0) for s, t in enumerate(state_times)],
                            effective_fraction=_effective_fraction(seg_counts, reweighting)):
             noisy.append(rank)
         if entry.get("timescale_resolved") and _offsets_hold_autocorrelation(entry):
@@ -572,9 +578,11 @@ def _lag_grid(steps, seg_counts):
 
 def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, lag_ps,
                      seg_counts, config, executor, reweighting=None):
-    """Fold moments (full and lagged) and integrated times of the screened descriptors, and
-    per state the factor by which their run means scatter more than those times allow
-    (:func:`~cvdesign.pipeline.timing.scatter_factors`; empty without times)."""
+    """Fold moments (full and lagged) and integrated times of the screened descriptors, per
+    state the factor by which their run means scatter more than those times allow
+    (:func:`~cvdesign.pipeline.timing.scatter_factors`; empty without times), and per state
+    the screened features' integrated times in frames (empty without times; computed in
+    frames also when the frame spacing is unknown, for the held-out noise level)."""
     feats = PoolFeaturizer(pool.subset(screening.screened))
     shift = screening.center[screening.features]
     passes = [FoldMomentsPass(feats, folds)]
@@ -611,23 +619,28 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     if grid is None:
         notes.append("integrated autocorrelation times not computed: the files' time steps "
                      "differ (or some are unknown)")
-        return fm, iat_desc, notes, transit, {}
+        return fm, iat_desc, notes, transit, {}, {}
     dt = next(iter(steps.values()))
+    n = feats.n_features
+    by_lag = [r.by_run() for r in results[-1]]  # (folds merged once per lag)
+    effective = _run_effective_frames(source, reweighting)
     if dt is None:
-        return fm, iat_desc, notes, transit, {}
+        # no frame spacing: no time in ps to report, but the times in frames still give
+        # the held-out noise level
+        in_frames = {s: v[0] for s, v in state_integrated_times(
+            by_lag, grid, n, return_window=True).items()}
+        return (fm, iat_desc, notes, transit,
+                scatter_factors(by_lag[0], in_frames, n, effective=effective), in_frames)
     # within runs: each (file, state) series about its own mean; each descriptor's time is
     # that of the state where it is longest (pooled, a narrow slow state hides behind a
     # broad fast one, and the bootstrap blocks sized from it would be too short for it)
-    n = feats.n_features
-    by_lag = [r.by_run() for r in results[-1]]  # (folds merged once per lag)
     per_state = state_integrated_times(by_lag, grid, n, dt=dt, return_window=True)
     tau, decayed, window, state = slowest_state_times(per_state, n)
     # runs too short for a time (their means scatter more than it allows): shown as a lower
     # bound; the bootstrap blocks still follow the measured time (whole runs for every
     # such descriptor would leave a few runs per state without any interval)
-    effective = _run_effective_frames(source, reweighting)
-    short = runs_too_short(by_lag[0], {s: v[0] / dt for s, v in per_state.items()}, n,
-                           effective=effective) & decayed
+    in_frames = {s: v[0] / dt for s, v in per_state.items()}
+    short = runs_too_short(by_lag[0], in_frames, n, effective=effective) & decayed
     if short.any():
         notes.append(_short_runs_note(int(sum(short[g].any() for g in screening.groups)),
                                       "screened descriptors"))
@@ -645,9 +658,8 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
         iat_desc[i] = (float(tau[j]), shown, ci, bool(decayed[j]))
     # how much more the states' run means scatter than their times allow (the screened
     # descriptors' median: the held-out noise level's run offsets)
-    scatter = scatter_factors(by_lag[0], {s: v[0] / dt for s, v in per_state.items()}, n,
-                              effective=effective)
-    return fm, iat_desc, notes, transit, scatter
+    scatter = scatter_factors(by_lag[0], in_frames, n, effective=effective)
+    return fm, iat_desc, notes, transit, scatter, in_frames
 
 
 @dataclass
@@ -973,6 +985,20 @@ def _run_effective_frames(source, reweighting):
         for s in np.unique(codes[codes >= 0]):
             out[(si, int(s))] = kish_ess(w[codes == s])
     return out
+
+
+def _terms_state_frames(fit, feature_frames, n_states):
+    """Per state, the longest integrated time (frames) of a ranked CV's features: the CV's
+    time when its own could not be measured (no frame spacing known); a combination's time
+    is at most about its slowest term's, so the noise level from it errs on the side of
+    warning. NaN for a state without times."""
+    out = np.full(n_states, np.nan)
+    for s, times in feature_frames.items():
+        values = np.asarray(times, dtype=np.float64)[np.asarray(fit.idx, dtype=np.intp)]
+        values = values[np.isfinite(values)]
+        if values.size:
+            out[s] = float(values.max())
+    return out.tolist()
 
 
 def _effective_fraction(seg_counts, reweighting):
