@@ -16,7 +16,7 @@ import pytest
 from scipy.signal import lfilter
 
 from cvdesign import Source, suggest
-from cvdesign.pipeline.ranking import NOISE_LEVEL_FACTOR
+from cvdesign.pipeline.ranking import FOLD_SPREAD_FACTOR, NOISE_LEVEL_FACTOR
 
 
 def _runs(directory, shift_nm, seed, n_runs=2, run_offset_nm=0.0):
@@ -160,6 +160,24 @@ def test_files_that_store_no_times_still_get_the_noise_level_in_frames(tmp_path)
     assert any("less than 10 times what noise alone gives" in w for w in untimed["warnings"])
 
 
+def test_a_held_out_ratio_far_above_the_ratio_on_all_frames_is_warned_about(tmp_path):
+    """States that differ (C1 moved by 0.1 nm), but every run displaced by an offset of its
+    own (sd 0.03 nm): each held-out fold holds one run per state, whose spread is far below
+    the state's over all its runs, so the held-out ratio of rank 1 came out 5.5 times the
+    one on all frames (seed 3), without a word."""
+    top, files = _runs(tmp_path, 0.1, 3, n_runs=3, run_offset_nm=0.03)
+    res = suggest(Source.from_states(top, files), kinds=("distance",), max_terms=2,
+                  n_suggestions=3, n_bootstrap=0)
+    first = res.ranking[0]
+    assert first["heldout_fisher_ratio"] > FOLD_SPREAD_FACTOR * first["fisher_ratio_all"]
+    assert any(w.startswith("its held-out Fisher ratio (") and "times its Fisher ratio on "
+               "all frames" in w for w in first["warnings"])
+    assert any(n.startswith("warning: the held-out Fisher ratio of rank 1") for n in res.notes)
+    for e in res.ranking:  # exactly those above the factor
+        warned = any("times its Fisher ratio on all frames" in w for w in e["warnings"])
+        assert warned == (e["heldout_fisher_ratio"] > FOLD_SPREAD_FACTOR * e["fisher_ratio_all"])
+
+
 def test_states_that_differ_are_not_warned_about(tmp_path):
     # C1 moved by 0.04 nm, twice the spread of its jitter: a held-out ratio near 0.5, about
     # 45 times the level (seed 3; 0.02 nm gave 12 times, a null run up to 10 times)
@@ -167,6 +185,9 @@ def test_states_that_differ_are_not_warned_about(tmp_path):
     first = res.ranking[0]
     assert first["heldout_fisher_ratio"] > NOISE_LEVEL_FACTOR * \
         first["heldout_fisher_ratio_noise"]
+    # runs that agree: the held-out ratio near the one on all frames, no warning
+    assert first["heldout_fisher_ratio"] < 1.2 * first["fisher_ratio_all"]
+    assert not any("times its Fisher ratio on all frames" in w for w in first["warnings"])
     assert not any("noise alone" in w for w in first["warnings"])
     assert not any("noise alone" in n for n in res.notes)
 

@@ -24,7 +24,8 @@ __all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit"
            "shortlist", "search", "fit_ranked", "kinetic_map_scale", "bootstrap_ranked",
            "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap", "fisher_along",
            "add_ranges", "NOISE_LEVEL_FACTOR", "heldout_noise_level", "add_noise_level",
-           "PAIR_OVERLAP_WARN", "closest_pairs", "add_pair_overlap"]
+           "PAIR_OVERLAP_WARN", "closest_pairs", "add_pair_overlap", "FOLD_SPREAD_FACTOR",
+           "add_fold_spread_warning"]
 
 #: Bootstrap refits of the search for selection frequencies, and the number of best
 #: shortlisted descriptors (besides the ranked terms) they may choose from.
@@ -770,6 +771,43 @@ def add_noise_level(entry, fm, frame_ps, *, warn=True, state_frames=None,
         "differ along it at all, since the search keeps the best of many held-out scores, "
         "which lifts the best above that level; give more or longer runs before trusting "
         "it")
+    return True
+
+
+#: A ranked CV whose held-out Fisher ratio exceeds its Fisher ratio on all frames by more
+#: than this factor gets a warning (our choice: states whose runs agree gave ratios of
+#: 1.02-1.03 in our tests, runs each at an offset of its own 1.3 to 5.5).
+FOLD_SPREAD_FACTOR = 1.5
+
+
+def add_fold_spread_warning(entry):
+    """Warn in `entry` when its held-out Fisher ratio is more than :data:`FOLD_SPREAD_FACTOR`
+    times ``fisher_ratio_all``; returns whether it warned.
+
+    The held-out ratio divides by the spread within each held-out fold (one trajectory per
+    state with whole-trajectory folds, one block with block folds); when a state's runs or
+    blocks sit at different means along the CV (runs not equilibrated, sub-states they do
+    not cross between), that spread is smaller than the state's over all its frames, and
+    the held-out ratio exceeds the one on all frames, which is the separation a bias along
+    the CV meets.
+
+    Examples
+    --------
+    >>> e = {"heldout_fisher_ratio": 4.6, "fisher_ratio_all": 0.84, "warnings": []}
+    >>> add_fold_spread_warning(e), e["warnings"][0][:60]
+    (True, 'its held-out Fisher ratio (4.6) is 5.5 times its Fisher rati')
+    """
+    held, whole = entry.get("heldout_fisher_ratio"), entry.get("fisher_ratio_all")
+    if held is None or whole is None or not whole > 0 or not held > FOLD_SPREAD_FACTOR * whole:
+        return False
+    entry["warnings"].append(
+        f"its held-out Fisher ratio ({held:.3g}) is {held / whole:.2g} times its Fisher ratio "
+        f"on all frames ({whole:.3g}): the held-out ratio divides by the spread within each "
+        "held-out fold (one trajectory, or one block, per state), and a state's runs or "
+        "blocks sit at different means along this CV (runs not equilibrated, or sub-states "
+        "they do not cross between), so over all its frames the state is spread wider; the "
+        "ratio on all frames is the separation a bias along it meets; give longer runs, or "
+        "check the runs of each state against each other")
     return True
 
 

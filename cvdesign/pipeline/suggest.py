@@ -57,8 +57,8 @@ from ..stats.separation import fisher_ratio
 from ..score.univariate import overlap_coefficient
 from ..search import OBJECTIVES, FoldMoments
 from .output import CAUTION, Suggestions, is_output_file, output_inputs, resolving_span_ps
-from .ranking import (NOISE_LEVEL_FACTOR, PAIR_OVERLAP_WARN, add_noise_level,
-                      add_pair_overlap, add_ranges, bootstrap_ranked, card_interval_rows,
+from .ranking import (NOISE_LEVEL_FACTOR, PAIR_OVERLAP_WARN, add_fold_spread_warning,
+                      add_noise_level, add_pair_overlap, add_ranges, bootstrap_ranked, card_interval_rows,
                       closest_pairs, fit_ranked, heldout_overlap, hints_for, ranking_entry,
                       search, shortlist)
 from .report_data import (CVBlockHistograms, CVGridPass, CVLaggedPass, CVReportPass, cv_plans,
@@ -495,7 +495,7 @@ def _suggest(source, config, executor, progress, checksums):
     longest_visit = longest_visit_ps(source, reweighting, seg_counts, steps)
     params = config.parameters(lag_ps, folds)
     checksums = checksums.result(inputs)
-    ranking, specs, record, noisy, overlapping = [], [], None, [], []
+    ranking, specs, record, noisy, overlapping, spread = [], [], None, [], [], []
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, held.overlap), 1):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
@@ -509,6 +509,8 @@ def _suggest(source, config, executor, progress, checksums):
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
         if add_pair_overlap(entry, held.closest[rank - 1], source.states):
             overlapping.append(rank)
+        if add_fold_spread_warning(entry):
+            spread.append(rank)
         own = cv_times[rank - 1]
         if own is not None:
             state_times = own[5]
@@ -537,6 +539,14 @@ def _suggest(source, config, executor, progress, checksums):
         notes.append(_noise_note(noisy, ranking[0]))
     if overlapping and overlapping[0] == 1:
         notes.append(_pair_overlap_note(overlapping, ranking))
+    if spread and spread[0] == 1:
+        first = ranking[0]
+        notes.append(
+            f"warning: the held-out Fisher ratio of rank 1 ({first['heldout_fisher_ratio']:.3g}) "
+            f"is {first['heldout_fisher_ratio'] / first['fisher_ratio_all']:.2g} times its "
+            f"ratio on all frames ({first['fisher_ratio_all']:.3g}): the states' runs (or "
+            "blocks) sit at different means along it, which the held-out folds do not count "
+            "(its warning says more); the ranking orders by the held-out ratio")
     report_data = None
     if held.report is not None:
         report_data = report_document(held.report, held.report_plans, ranking, source=source,
