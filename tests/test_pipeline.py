@@ -284,3 +284,26 @@ def test_ranking_follows_the_one_standard_error_rule_over_every_combination_foun
     assert got == [(c.n_terms, c.score, c.se) for c in expected]
     # the rule had something to decide: larger combinations found, and left out or behind
     assert len(found) > len(got) and any(c.n_terms > 1 for c in found)
+
+
+def test_objective_both_on_few_lagged_pairs_per_fold_is_warned_about(demo_files):
+    """Objective 'both' weighs separation by an autocorrelation within the states: from a
+    few dozen pairs per state and fold that weight is noise (a review saw rank 1 change with
+    every lag on 30-frame runs); the summary says so, and not for runs with enough pairs."""
+    from cvdesign.pipeline.suggest import MIN_WITHIN_PAIRS
+
+    top, states = demo_files
+    kw = dict(objective="both", lag=1.0, n_bootstrap=0, max_terms=1, n_suggestions=1)
+
+    def run(frames):
+        src = Source(top)
+        for name, files in states.items():
+            for f in files[:2]:
+                src.add(f, name, frames=frames)
+        return suggest(src, **kw).notes
+
+    few = [n for n in run((0, 60)) if "rests on" in n]
+    assert len(few) == 1 and few[0].startswith("warning: objective 'both' weighs each CV")
+    fewest = int(few[0].split("rests on ")[1].split()[0])
+    assert 0 < fewest < MIN_WITHIN_PAIRS
+    assert not [n for n in run((0, 2000)) if "rests on" in n]

@@ -586,6 +586,13 @@ def _lag_grid(steps, seg_counts):
     return iat_lags(seg_counts) if uniform else None
 
 
+#: Fewest lagged pairs in every (state, held-out fold) below which objective 'both' is
+#: warned to rank on noise: an autocorrelation from n independent pairs has a standard error
+#: of about 1/sqrt(n) (Bartlett 1946, J. R. Stat. Soc. Suppl. 8, 27; from memory), 0.1 at
+#: 100, the order of the differences the weight ranks by (our choice).
+MIN_WITHIN_PAIRS = 100
+
+
 def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, lag_ps,
                      seg_counts, config, executor, reweighting=None):
     """Fold moments (full and lagged) and integrated times of the screened descriptors, per
@@ -626,6 +633,17 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
 
     notes, iat_desc = ([] if transit is None else
                        transit.notes + transit.ranking_notes(config.objective)), {}
+    if config.objective == "both" and fold_lag is not None and (
+            transit is None or not transit.ranks):
+        fewest = min(m.n_pairs for row in fold_lag for m in row)
+        if fewest < MIN_WITHIN_PAIRS:
+            notes.append(
+                f"warning: objective 'both' weighs each CV by its autocorrelation at the lag "
+                f"within the states, but in some state and held-out fold it rests on "
+                f"{fewest} lagged pair{'' if fewest == 1 else 's'} (fewer than "
+                f"{MIN_WITHIN_PAIRS}): that weight is mostly noise, and the ranking may "
+                "change with the lag; give longer runs, a shorter --lag, or rank with "
+                "--objective separate")
     if grid is None:
         notes.append("integrated autocorrelation times not computed: the files' time steps "
                      "differ (or some are unknown)")
