@@ -86,3 +86,37 @@ def test_suggest_warns_when_no_trajectory_stores_the_box_the_topology_has(runs):
     boxed = suggest(Source.from_states(str(d / "boxed.pdb"),
                                        {s: [f[0]] for s, f in out.items()}), **kw)
     assert not any("warning: topology file" in n for n in boxed.notes)
+
+
+def test_distances_beyond_half_the_box_are_named_and_the_cvs_using_them_warned(tmp_path):
+    """In a 2 nm cube, C1-C2 of state "far" lies along a face diagonal near 1.13 nm, beyond
+    half the box height (1 nm), where the minimum image starts folding such distances: the
+    note names it (not only 'some distances', with advice about --cutoff that does not
+    govern such pairs), and a ranked CV with that term carries a warning."""
+    rng = np.random.default_rng(5)
+    top = md.Topology()
+    res = top.add_residue("BOX", top.add_chain())
+    for i in range(4):
+        top.add_atom(f"C{i + 1}", md.element.carbon, res)
+    files = {}
+    for state, c2 in (("near", [0.5, 0.2, 0.2]), ("far", [1.0, 1.0, 0.2])):
+        place = np.array([[0.2, 0.2, 0.2], c2, [0.2, 0.6, 0.2], [0.6, 0.6, 0.6]])
+        xyz = (place + rng.normal(0.0, 0.02, size=(300, 4, 3))).astype(np.float32)
+        traj = md.Trajectory(xyz, top, time=np.arange(300.0),
+                             unitcell_lengths=np.full((300, 3), 2.0, np.float32),
+                             unitcell_angles=np.full((300, 3), 90.0, np.float32))
+        files[state] = [str(tmp_path / f"{state}.xtc")]
+        traj.save_xtc(files[state][0])
+        traj[:1].save_pdb(str(tmp_path / "top.pdb"))
+    res = suggest(Source.from_states(str(tmp_path / "top.pdb"), files), n_bootstrap=0,
+                  max_terms=1, n_suggestions=3)
+    note = next(n for n in res.notes if "beyond half the smallest box height" in n)
+    assert note.startswith("warning: 1 distance of the pool reaches beyond half")
+    assert "dist BOX0:C1-C2 (1." in note and "--cutoff governs" in note
+    with_term = [e for e in res.ranking if any(t["label"] == "dist BOX0:C1-C2"
+                                               for t in e["terms"])]
+    assert with_term and all(any("beyond half the smallest box height" in w
+                                 for w in e["warnings"]) for e in with_term)
+    without = [e for e in res.ranking if e not in with_term]
+    assert all(not any("beyond half the smallest box height" in w for w in e["warnings"])
+               for e in without)

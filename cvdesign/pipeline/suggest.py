@@ -496,6 +496,7 @@ def _suggest(source, config, executor, progress, checksums):
     params = config.parameters(lag_ps, folds)
     checksums = checksums.result(inputs)
     ranking, specs, record, noisy, overlapping, spread = [], [], None, [], [], []
+    folded = _folded_distances(pool, first.diagonal, first.min_box_height)
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, held.overlap), 1):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
@@ -511,6 +512,13 @@ def _suggest(source, config, executor, progress, checksums):
             overlapping.append(rank)
         if add_fold_spread_warning(entry):
             spread.append(rank)
+        for did in dict.fromkeys(t["descriptor"] for t in entry["terms"]):
+            if did in folded:
+                entry["warnings"].append(
+                    f"its term {did} reaches {folded[did]:.3g} nm in some frame, beyond half "
+                    f"the smallest box height ({0.5 * first.min_box_height:.3g} nm): there "
+                    "the minimum image folds the distance back, so the CV jumps; check that "
+                    "the box is large enough for it, or choose a CV without it")
         own = cv_times[rank - 1]
         if own is not None:
             state_times = own[5]
@@ -1202,19 +1210,38 @@ def _folds_note(folds, asked):
     return note
 
 
+def _folded_distances(pool, diag, min_box):
+    """``{descriptor id: longest value (nm)}`` of the pool's distances that reach beyond half
+    the smallest box height in some frame (the minimum image folds them back there)."""
+    if min_box is None:
+        return {}
+    longest = np.max([d.maximum for d in diag if d.count], axis=0)
+    out = {}
+    for f, i in enumerate(pool.feature_descriptor):
+        desc = pool.descriptors[i]
+        if desc.unit == "nm" and longest[f] > 0.5 * min_box:
+            out[desc.id] = max(out.get(desc.id, 0.0), float(longest[f]))
+    return out
+
+
 def _box_notes(pool, diag, min_box):
     if min_box is None:
         return ["no periodic box: distances are plain Euclidean"]
     out = [f"periodic box: distances use the minimum image (smallest box height "
            f"{min_box:.3g} nm)"]
-    is_dist = np.array([pool.descriptors[i].unit == "nm" for i in pool.feature_descriptor],
-                       dtype=bool)
-    if is_dist.any():
-        longest = float(np.max([d.maximum[is_dist].max() for d in diag if d.count]))
-        if longest > 0.5 * min_box:
-            out.append(f"warning: some distances reach {longest:.3g} nm, more than half the "
-                       f"smallest box height ({min_box:.3g} nm), where the minimum image folds "
-                       "them back; lower --cutoff or check the box")
+    folded = _folded_distances(pool, diag, min_box)
+    if folded:
+        labels = {d.id: d.label for d in pool.descriptors}
+        worst = sorted(folded, key=lambda i: (-folded[i], i))
+        named = ", ".join(f"{labels[i]} ({folded[i]:.3g} nm)" for i in worst[:3])
+        more = f" and {len(worst) - 3} more" if len(worst) > 3 else ""
+        out.append(f"warning: {len(worst)} distance{'s' if len(worst) > 1 else ''} of the pool "
+                   f"reach{'' if len(worst) > 1 else 'es'} beyond half the smallest box height ({0.5 * min_box:.3g} nm; the "
+                   f"height is {min_box:.3g} nm), where the minimum image folds them back: "
+                   f"{named}{more}; a ranked CV with such a term says so. --cutoff governs "
+                   "the pairs kept for their mean distance, not the farther pairs kept "
+                   "because they separate the states best; check the box, or leave such "
+                   "CVs out")
     return out
 
 
