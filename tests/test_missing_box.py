@@ -16,16 +16,22 @@ from cvdesign.io.source import missing_box_warning, topology_box_nm
 _BOX_NM = 3.0
 
 
+def _four_atoms():
+    """A residue BOX of four carbons C1-C4."""
+    top = md.Topology()
+    res = top.add_residue("BOX", top.add_chain())
+    for i in range(4):
+        top.add_atom(f"C{i + 1}", md.element.carbon, res)
+    return top
+
+
 @pytest.fixture(scope="module")
 def runs(tmp_path_factory):
     """Four atoms in a 3 nm cube: a PDB with CRYST1, the same frames as a DCD without unit
     cells and as an XTC (which stores the box), two states (atom C2 near or far)."""
     d = tmp_path_factory.mktemp("box")
     rng = np.random.default_rng(21)
-    top = md.Topology()
-    res = top.add_residue("BOX", top.add_chain())
-    for i in range(4):
-        top.add_atom(f"C{i + 1}", md.element.carbon, res)
+    top = _four_atoms()
     out = {}
     for state, reach in (("near", 0.4), ("far", 0.9)):
         place = np.array([[0.2, 0.2, 0.2], [0.2 + reach, 0.2, 0.2], [0.2, 1.0, 0.2],
@@ -94,10 +100,7 @@ def test_distances_beyond_half_the_box_are_named_and_the_cvs_using_them_warned(t
     note names it (not only 'some distances', with advice about --cutoff that does not
     govern such pairs), and a ranked CV with that term carries a warning."""
     rng = np.random.default_rng(5)
-    top = md.Topology()
-    res = top.add_residue("BOX", top.add_chain())
-    for i in range(4):
-        top.add_atom(f"C{i + 1}", md.element.carbon, res)
+    top = _four_atoms()
     files = {}
     for state, c2 in (("near", [0.5, 0.2, 0.2]), ("far", [1.0, 1.0, 0.2])):
         place = np.array([[0.2, 0.2, 0.2], c2, [0.2, 0.6, 0.2], [0.6, 0.6, 0.6]])
