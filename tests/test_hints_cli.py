@@ -63,6 +63,33 @@ def test_hints_command_recomputes_from_the_spec_alone(demo_result, tmp_path, cap
     assert "Fill time per state" in text and "MD step 2 fs" in text
 
 
+def test_hints_command_takes_the_cvs_time_and_warns_without_one(demo_result, tmp_path, capsys):
+    """Without a recorded time (files that store none) the deposition interval is a 1 ps
+    placeholder: a warning says so (it had been in the reasoning alone), and
+    --autocorrelation-time-ps gives the time, as autocorrelation_time_ps= does in Python."""
+    doc = json.loads(json.dumps(demo_result.specs[0]))
+    for key in ("integrated_time_ps", "frame_spacing_ps", "integrated_time_decayed"):
+        doc["scores"].pop(key, None)
+    spec_path = tmp_path / "cv.json"
+    spec_path.write_text(json.dumps(doc))
+    base = ["hints", str(spec_path), "--temperature", "300", "--md-step-fs", "2", "--json"]
+    assert main(base) == 0
+    out, err = capsys.readouterr()
+    got = json.loads(out)
+    assert got["deposition"]["interval_ps"] == 1.0
+    assert any(w.startswith("no autocorrelation time of the CV is known") for w in
+               got["warnings"])
+    assert "no autocorrelation time of the CV is known" in err
+    assert main(base + ["--autocorrelation-time-ps", "0.8"]) == 0
+    got = json.loads(capsys.readouterr().out)
+    assert got["deposition"]["interval_steps"] == 400 and got["deposition"]["tau_ps"] == 0.8
+    assert not any("no autocorrelation time" in w for w in got["warnings"])
+    # the option replaces a recorded time too
+    spec_path.write_text(json.dumps(demo_result.specs[0]))
+    assert main(base + ["--autocorrelation-time-ps", "0.8"]) == 0
+    assert json.loads(capsys.readouterr().out)["deposition"]["tau_ps"] == 0.8
+
+
 def test_hints_command_refuses_bad_arguments(demo_result, tmp_path, capsys):
     spec_path = tmp_path / "cv.json"
     spec_path.write_text(json.dumps(demo_result.specs[0]))

@@ -1193,6 +1193,12 @@ def suggest_hints(
     resolved = lower_bound = None
     if tau is None:
         tau_used = 1.0
+        warnings.append(
+            "no autocorrelation time of the CV is known, so the deposition interval is a "
+            "placeholder of 1 ps, not sized from the CV; give the CV's time within the states "
+            "(cvdesign hints --autocorrelation-time-ps PS, autocorrelation_time_ps= in Python; "
+            "cvdesign suggest records it when the input files store their times, or with "
+            "--frame-step-ps)")
         why.append(
             f"Deposition interval: no within-state autocorrelation time is known; 1 ps is used "
             f"{tag_cpm}. A spec records the CV's as scores.integrated_time_ps (written by "
@@ -1724,6 +1730,10 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     if not spec.states:
         raise InputError(f"spec {spec.name!r} records no states; hints need the CV's mean "
                          "and within-state spread in each state")
+    given = options.pop("autocorrelation_time_ps", None)
+    if given is not None:  # a time of the user's: the spec's spacing and flag are not its
+        options.setdefault("frame_spacing_ps", None)
+        options.setdefault("autocorrelation_time_decayed", None)
     _check_spec_times(spec, options)
     options.setdefault("leave_out_frozen", True)
     options.setdefault("cv_range", spec.reachable_range)
@@ -1739,7 +1749,8 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     if confinement is not None:
         options.setdefault("confinement", confinement)
     hints = suggest_hints(spec.states, temperature=temperature, md_step_fs=md_step_fs,
-                          autocorrelation_time_ps=spec.scores.get("integrated_time_ps"),
+                          autocorrelation_time_ps=(spec.scores.get("integrated_time_ps")
+                                                   if given is None else given),
                           barrier=barrier, kernel=kernel, periodic=bool(spec.periodic),
                           **options)
     hints["warnings"] += unused
@@ -1757,7 +1768,7 @@ def _check_spec_times(spec, options):
             ("frame_spacing_ps", "frame_spacing_ps",
              "the time between the frames that time was measured on")):
         value = spec.scores.get(key)
-        if value is None or (parameter in options and parameter != "autocorrelation_time_ps"):
+        if value is None or parameter in options:  # (absent, or replaced by the caller's)
             continue
         try:
             _number(parameter, value)

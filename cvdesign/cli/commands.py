@@ -419,6 +419,12 @@ def build_parser():
                         "(default: a table over 20 to 100 kJ/mol)")
     p.add_argument("--kernel", choices=("gaussian", "lucy"), default="gaussian",
                    help="kernel shape: Gaussian, or Lucy's compact kernel (default: gaussian)")
+    p.add_argument("--autocorrelation-time-ps", type=_positive_float, default=None,
+                   metavar="PS",
+                   help="the CV's integrated autocorrelation time within the states, ps, which "
+                        "sizes the deposition interval (default: the spec's "
+                        "scores.integrated_time_ps; without one the interval is a placeholder "
+                        "of 1 ps, with a warning)")
     p.add_argument("--json", action="store_true", help="print the hints as JSON")
 
     p = sub.add_parser(
@@ -1340,7 +1346,9 @@ def _cmd_hints(args):
     spec = load_spec(args.spec)
     try:
         hints = spec_hints(spec, temperature=args.temperature, md_step_fs=args.md_step_fs,
-                           barrier=args.barrier, kernel=args.kernel)
+                           barrier=args.barrier, kernel=args.kernel,
+                           **({} if args.autocorrelation_time_ps is None else
+                              {"autocorrelation_time_ps": args.autocorrelation_time_ps}))
     except InputError as exc:
         raise InputError(f"{args.spec}: no hints: {exc}") from None
     for warning in hints["warnings"]:
