@@ -615,6 +615,9 @@ CLI_CASES = [
     Case("hints-nan-barrier",
          lambda c: c.hints(c.s("cv.json"), "--barrier", "nan"), 2,
          r"argument --barrier: 'nan' is not a number"),
+    Case("hints-zero-autocorrelation-time",
+         lambda c: c.hints(c.s("cv.json"), "--autocorrelation-time-ps", "0"), 2,
+         r"argument --autocorrelation-time-ps: '0' must be positive"),
     Case("hints-spec-without-states",
          lambda c: c.hints(c.s("nospread.json")), 2,
          r"nospread\.json: no hints: spec 'cv-test' records no states; hints need the CV's "
