@@ -152,7 +152,7 @@ def test_a_funnel_whose_distance_is_not_the_cv_gets_a_warning_and_the_state_wall
 
 def test_suggest_hints_checks_the_confinement():
     states = {"a": {"mean": 0.3, "std": 0.05}}
-    base = dict(temperature=300.0, md_step_fs=2.0, barrier=40.0)
+    base = dict(temperature=300.0, md_step_fs=2.0, barrier=40.0, autocorrelation_time_ps=0.5)
     conf = {"id": "r", "lower": 0.0, "upper": 2.0, "walls": "w", "reasoning": "why",
             "fill_note": "note"}
     h = suggest_hints(states, **base, confinement=conf)
