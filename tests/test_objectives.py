@@ -85,7 +85,7 @@ def test_lag_that_is_not_a_whole_number_of_frames_is_refused(demo_files):
         suggest(src, objective="slow")
 
 
-def test_lag_in_ps_needs_a_time_step_for_formats_without_times(mda_data):
+def test_lag_in_ps_needs_a_time_step_for_formats_without_times(mda_data, capfd):
     # DCD stores no times (adenylate kinase, MDAnalysis test data).
     def source(**kw):
         src = Source(str(mda_data / "adk.psf"), **kw)
@@ -93,12 +93,18 @@ def test_lag_in_ps_needs_a_time_step_for_formats_without_times(mda_data):
         src.add(str(mda_data / "adk_dims.dcd"), "open", frames=(68, 98))
         return src
 
-    with pytest.raises(InputError, match="time step is unknown .* give the time step with "
-                                         "--frame-step-ps PS"):
+    capfd.readouterr()
+    # the message serves the command and the Python API alike
+    with pytest.raises(InputError, match=r"time step is unknown .* give the time step in ps "
+                                         r"with --frame-step-ps PS \(Source\(\.\.\., "
+                                         r"timestep=PS\) in the Python API\)"):
         suggest(source(), selection="name CA", objective="both", lag=2.0)
     res = suggest(source(timestep=1.0), selection="name CA", objective="both", lag=2.0,
                   n_bootstrap=0, max_terms=1, n_suggestions=1)
     assert res.lag_ps == 2.0 and res.ranking[0]["heldout_autocorrelation"] is not None
+    # from Python the library prints nothing, not even the DCD reader's own lines from C
+    captured = capfd.readouterr()
+    assert "dcdplugin" not in captured.out + captured.err
 
 
 def test_integrated_time_of_an_ar1_process_matches_its_closed_form():

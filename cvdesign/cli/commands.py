@@ -603,12 +603,12 @@ def _reporting(args):
     handler, before = _StderrHandler(args.command, level), logger.level
     logger.addHandler(handler)
     logger.setLevel(level)
-    from ..io.source import reader_output_discarded
+    from ..io.source import reader_output_discarded, reader_output_shown
 
     try:
         with show_progress(sys.stderr, enabled=None if not args.quiet else False), \
                 _geometry_warnings_logged(), \
-                (reader_output_discarded() if args.quiet else contextlib.nullcontext()):
+                (reader_output_discarded() if args.quiet else reader_output_shown()):
             yield
     finally:
         logger.removeHandler(handler)

@@ -8,6 +8,7 @@ reads works (XTC, DCD, TRR, NetCDF, HDF5, PDB, ...).
 """
 
 import contextlib
+import ctypes
 import hashlib
 import importlib.util
 import math
@@ -66,19 +67,18 @@ _QUIET_LOCK = threading.Lock()
 _QUIET = {"depth": 0, "fd": None, "saved": None}
 
 
-#: Environment variable: ``discard`` sends what the C readers print (see
-#: :func:`quiet_stdout`) to /dev/null instead of standard error. The command sets it under
-#: ``-q`` (:func:`reader_output_discarded`); worker processes started meanwhile inherit it.
+#: Environment variable: ``show`` sends what the C readers print (see :func:`quiet_stdout`)
+#: to standard error; anything else, or unset, to /dev/null, so that the library prints
+#: nothing from Python. The command sets ``show`` without ``-q`` (:func:`reader_output_shown`)
+#: and ``discard`` under it (:func:`reader_output_discarded`); worker processes started
+#: meanwhile inherit it.
 READER_OUTPUT_ENV = "CVDESIGN_READER_OUTPUT"
 
 
 @contextlib.contextmanager
-def reader_output_discarded():
-    """For the length of a block, discard what mdtraj's C readers print (e.g. the DCD
-    reader's "dcdplugin) detected standard 32-bit DCD file ..."), here and in worker
-    processes started during it; it is not shown, nor turned into warnings."""
+def _reader_output(mode):
     before = os.environ.get(READER_OUTPUT_ENV)
-    os.environ[READER_OUTPUT_ENV] = "discard"
+    os.environ[READER_OUTPUT_ENV] = mode
     try:
         yield
     finally:
@@ -88,9 +88,23 @@ def reader_output_discarded():
             os.environ[READER_OUTPUT_ENV] = before
 
 
+def reader_output_discarded():
+    """For the length of a block, discard what mdtraj's C readers print (e.g. the DCD
+    reader's "dcdplugin) detected standard 32-bit DCD file ..."), here and in worker
+    processes started during it; it is not shown, nor turned into warnings. This is the
+    library's default; the command enters it under ``-q``."""
+    return _reader_output("discard")
+
+
+def reader_output_shown():
+    """For the length of a block, send what mdtraj's C readers print to standard error,
+    here and in worker processes started during it (the command without ``-q``)."""
+    return _reader_output("show")
+
+
 def _reader_sink():
     """(file descriptor for the C readers' output, whether it was opened here)."""
-    if os.environ.get(READER_OUTPUT_ENV) != "discard":
+    if os.environ.get(READER_OUTPUT_ENV) == "show":
         try:
             return sys.stderr.fileno(), False
         except (AttributeError, OSError, ValueError):
@@ -100,8 +114,8 @@ def _reader_sink():
 
 @contextlib.contextmanager
 def quiet_stdout():
-    """Send anything written to file descriptor 1 (by C readers) to standard error
-    (to /dev/null within :func:`reader_output_discarded`, as under ``-q``).
+    """Send anything written to file descriptor 1 (by C readers) to /dev/null (to standard
+    error within :func:`reader_output_shown`, as in the command without ``-q``).
 
     Some of mdtraj's compiled readers print diagnostics straight to the
     process's standard output, which would corrupt CSV written there. Safe
@@ -110,13 +124,15 @@ def quiet_stdout():
     """
     with _QUIET_LOCK:
         if _QUIET["depth"] == 0:
+            # the C library's standard output is file descriptor 1, whatever sys.stdout is
+            # (pytest's capture, a notebook's stream: objects without a descriptor)
+            fd = 1
+            _flush_python_stdout()
             try:
-                fd = sys.stdout.fileno()
-            except (AttributeError, OSError, ValueError):
+                saved = os.dup(fd)
+            except OSError:  # descriptor 1 closed: nothing to protect
                 fd = None
             if fd is not None:
-                sys.stdout.flush()
-                saved = os.dup(fd)
                 sink, opened = _reader_sink()
                 os.dup2(sink, fd)
                 if opened:
@@ -129,10 +145,29 @@ def quiet_stdout():
         with _QUIET_LOCK:
             _QUIET["depth"] -= 1
             if _QUIET["depth"] == 0 and _QUIET["fd"] is not None:
-                sys.stdout.flush()
+                _flush_python_stdout()
+                _flush_c_stdio()
                 os.dup2(_QUIET["saved"], _QUIET["fd"])
                 os.close(_QUIET["saved"])
                 _QUIET["fd"] = _QUIET["saved"] = None
+
+
+def _flush_python_stdout():
+    try:
+        sys.stdout.flush()
+    except (AttributeError, OSError, ValueError):
+        pass
+
+
+def _flush_c_stdio():
+    """Flush the C library's stdio buffers: a C reader's ``printf`` to a standard output
+    that is not a terminal (a pipe, a file, pytest's capture) is buffered, and would
+    otherwise be written after the redirection of :func:`quiet_stdout` is undone."""
+    try:
+        libc = ctypes.CDLL(None)
+        libc.fflush(None)
+    except (OSError, AttributeError):  # no C library to reach (not seen on Linux or macOS)
+        pass
 
 
 def _quiet_iter(make):

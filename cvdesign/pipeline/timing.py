@@ -43,7 +43,8 @@ def lag_frames(source, lag, timesteps):
             raise InputError(
                 f"lag={lag:g} ps cannot be converted to frames of {str(seg.path)!r}: its time "
                 "step is unknown (the format stores no times, or the file has one frame); "
-                "give the time step with --frame-step-ps PS")
+                "give the time step in ps with --frame-step-ps PS (Source(..., timestep=PS) "
+                "in the Python API)")
         ratio = lag / dt
         n = int(round(ratio))
         # a step from stored single-precision times is known to source.timestep_resolution
