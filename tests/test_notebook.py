@@ -98,7 +98,7 @@ def test_repr_of_a_result_without_ranking_says_so():
 def _markdown_top_rows(summary):
     """The cells of the top-suggestions table of summary.md."""
     lines = summary.splitlines()
-    start = lines.index(next(l for l in lines if l.startswith("| rank | spec | held-out J")))
+    start = lines.index(next(l for l in lines if l.startswith("| rank | spec | held-out J ± SE over folds |")))
     rows = []
     for line in lines[start + 2:]:
         if not line.startswith("|"):
@@ -111,7 +111,10 @@ def test_repr_html_is_well_formed_and_shows_the_top_table_of_summary_md(demo_res
     page = demo_result._repr_html_()
     root = ET.fromstring(page)  # well-formed (XML parses it)
     head = [th.text for th in root.iter("th")]
-    assert head[:3] == ["rank", "spec", "held-out J"]
+    # the ± after J is named where it is shown (it is there also without bootstrap)
+    assert head[:3] == ["rank", "spec", "held-out J ± SE over folds"]
+    assert ("± its standard error over the cross-validation folds (from the folds' scores, so "
+            "given also when there are no bootstrap uncertainties)") in demo_result.summary_md()
     rows = [[td.text or "" for td in tr.iter("td")] for tr in root.find("table/tbody")]
     assert rows == _markdown_top_rows(demo_result.summary_md())
     assert len(rows) == min(5, len(demo_result.ranking))

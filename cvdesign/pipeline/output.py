@@ -297,7 +297,7 @@ class Suggestions:
         lag = "" if self.lag_ps is None else f", lag {self.lag_ps:g} ps"
         pool = "" if self.pool is None else f"; pool of {len(self.pool)} descriptors"
         shown = min(len(self.ranking), 5)
-        head = ["rank", "spec", "held-out J", "overlap", "autocorr.", "timescale (ps)",
+        head = ["rank", "spec", _J_HEAD, "overlap", "autocorr.", "timescale (ps)",
                 "descriptors (weight [nominal 95 % CI], selection)"]
         out = ['<div class="cvdesign-suggestions">',
                "<p><strong>cvdesign suggestions</strong>: states "
@@ -333,7 +333,9 @@ class Suggestions:
                 "Held-out J is the Fisher ratio (between-state over within-state variance "
                 "of the CV, dimensionless) on frames not used to fit it (the best of many "
                 "such scores, so somewhat optimistic; ranking.csv's "
-                "heldout_fisher_ratio_noise is what noise alone gives one fixed direction); "
+                "heldout_fisher_ratio_noise is what noise alone gives one fixed direction), "
+                "± its standard error over the cross-validation folds (from the folds' "
+                "scores, so given also when there are no bootstrap uncertainties); "
                 "overlap is the "
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
@@ -375,7 +377,7 @@ class Suggestions:
                 "bootstrap refits of the whole search in which the descriptor is kept in the "
                 "refit's counterpart of this CV (its ranked combination sharing the most "
                 "descriptors with it).", "",
-                "| rank | spec | held-out J | overlap | autocorr. | timescale (ps) | "
+                f"| rank | spec | {_J_HEAD} | overlap | autocorr. | timescale (ps) | "
                 "descriptors (weight [nominal 95 % CI], selection) |",
                 "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]
         for r in self.ranking[:5]:
@@ -588,6 +590,10 @@ def _import_pandas(what):
 #: ``repr(Suggestions)``: longest line and longest term line, characters (longer lines
 #: end in "..."), and the number of terms of the rank-1 CV listed.
 _REPR_WIDTH, _REPR_TERM_WIDTH, _REPR_TERMS = 100, 72, 3
+
+#: The top table's column of the held-out Fisher ratio and its standard error over the
+#: cross-validation folds (given with or without bootstrap uncertainties).
+_J_HEAD = "held-out J ± SE over folds"
 
 _TOP_LEGEND = ("Held-out J: Fisher ratio (between-state over within-state variance of the CV, "
                "dimensionless) on frames not used to fit it, ± its standard error over "
