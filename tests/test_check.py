@@ -56,6 +56,45 @@ def test_check_passes_the_right_engine_and_fails_one_weight_off_by_one_percent(
     assert "FAIL" in out and "largest |deviation|" in out and "frame " in out
 
 
+def test_check_tolerates_the_rounding_of_values_written_with_few_decimals(
+        demo_files, demo_result, tmp_path, capsys):
+    # a right engine that writes its values with 3 decimals is off by up to 5e-4 from the
+    # rounding alone, more than the default tolerance here: it failed
+    top, states = demo_files
+    traj = states["open"][0]
+    spec = demo_result.specs[0]
+    spec_path = tmp_path / "cv.json"
+    spec_path.write_text(json.dumps(spec))
+    default = 1e-3 * max(s["std"] for s in spec["states"].values())
+    assert default < 5e-4
+    vals = _engine_values(spec, top, traj)
+    rounded = tmp_path / "rounded.txt"
+    rounded.write_text("\n".join(f"{v:.3f}" for v in vals) + "\n")
+    assert main(["check", str(spec_path), "--topology", top, "--against", str(rounded),
+                 traj]) == 0
+    out = capsys.readouterr().out
+    assert (f"note: values of {rounded} written with 3 decimals: tolerance raised to "
+            f"{default + 5e-4:.3g} (half a unit in the last decimal, 0.0005, plus the default "
+            f"{default:.3g}; --tolerance sets it as given)") in out and "PASS" in out
+    # --tolerance is kept as given
+    assert main(["check", str(spec_path), "--topology", top, "--against", str(rounded), traj,
+                 "--tolerance", f"{default:.6g}"]) == 1
+    out = capsys.readouterr().out
+    assert "tolerance raised" not in out and "FAIL" in out
+    # values written in full get no note and the default tolerance
+    full = tmp_path / "full.txt"
+    full.write_text("\n".join(repr(float(v)) for v in vals) + "\n")
+    assert main(["check", str(spec_path), "--topology", top, "--against", str(full), traj]) == 0
+    out = capsys.readouterr().out
+    assert "tolerance raised" not in out and f"tolerance {default:.3g})" in out
+    # a wrong engine written with 3 decimals still fails: the CV's scale doubled
+    wrong = tmp_path / "wrong.txt"
+    wrong.write_text("\n".join(f"{2 * v:.3f}" for v in vals) + "\n")
+    assert main(["check", str(spec_path), "--topology", top, "--against", str(wrong),
+                 traj]) == 1
+    assert "FAIL" in capsys.readouterr().out
+
+
 def test_check_reads_one_number_per_line_and_refuses_wrong_lengths(demo_files, demo_result,
                                                                    tmp_path, capsys):
     top, states = demo_files

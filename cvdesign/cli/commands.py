@@ -25,6 +25,7 @@ import json
 import logging
 import math
 import os
+import re
 import sys
 import warnings
 from pathlib import Path
@@ -393,8 +394,10 @@ def build_parser():
                         "(the spec is wrong), frames outside the observed range are reported "
                         "(the run went where the design runs did not)")
     p.add_argument("--tolerance", type=_positive_float, default=None, metavar="TOL",
-                   help="largest accepted |deviation|, in the CV's units (default: 1e-3 times "
-                        "the largest within-state spread stored in the spec)")
+                   help="largest accepted |deviation|, in the CV's units, kept as given "
+                        "(default: 1e-3 times the largest within-state spread stored in the "
+                        "spec, plus half a unit in the last decimal the values are written "
+                        "with)")
 
     p = sub.add_parser(
         "hints", allow_abbrev=False,
@@ -1008,8 +1011,32 @@ def _looks_like_index(name, cells):
     return len(numbers) > 1 and numbers == list(range(len(numbers)))
 
 
+_DECIMAL_TEXT = re.compile(r"[+-]?\d*(?:\.(\d*))?(?:[eE]([+-]?\d+))?")
+
+
+def _written_decimals(texts):
+    """The most decimals any of the number texts is written with (an exponent counted:
+    ``1.5e-3`` has 4), or None when some text is not a plain decimal number.
+
+    >>> _written_decimals(["0.125", "-1.500", "2.000"]), _written_decimals(["1.5e-3", "0.1"])
+    (3, 4)
+    >>> _written_decimals(["0.5", "0x1p-1"]) is None
+    True
+    """
+    most = None
+    for text in texts:
+        m = _DECIMAL_TEXT.fullmatch(text.strip())
+        if m is None:
+            return None
+        k = len(m.group(1) or "") - int(m.group(2) or 0)
+        most = k if most is None else max(most, k)
+    return most
+
+
 def _read_values(path, column=None, traj=None):
-    """(frames or None, values) from a file of CV values, with a clear error on bad input.
+    """(frames or None, values, decimals) from a file of CV values, with a clear error on
+    bad input; `decimals` is the most decimals a value is written with
+    (:func:`_written_decimals`), or None.
 
     The file is a CSV (comma-separated) or whitespace-separated columns, with
     an optional header line; blank lines and lines starting with ``#`` or ``@``
@@ -1074,7 +1101,7 @@ def _read_values(path, column=None, traj=None):
     if fi == k:
         fi = None
     table = _rows_of_file(name, table, lower, k, traj)
-    values, frames = [], []
+    values, frames, texts = [], [], []
     for n, cells in table:
         if len(cells) <= max(k, -1 if fi is None else fi):
             raise InputError(f"values file {name!r}, line {n}: {len(cells)} column"
@@ -1089,6 +1116,7 @@ def _read_values(path, column=None, traj=None):
             raise InputError(f"values file {name!r}, line {n}: value {cells[k]!r} is not a "
                              "finite number")
         values.append(v)
+        texts.append(cells[k])
         if fi is not None:
             try:
                 frames.append(int(cells[fi]))
@@ -1104,7 +1132,8 @@ def _read_values(path, column=None, traj=None):
                     "give one value per frame of one trajectory (values of several "
                     "trajectories go in separate files, or in a 'file' column naming each)")
             seen[f] = n
-    return (np.asarray(frames) if fi is not None else None), np.asarray(values, dtype=np.float64)
+    return ((np.asarray(frames) if fi is not None else None),
+            np.asarray(values, dtype=np.float64), _written_decimals(texts))
 
 
 def _rows_of_file(name, table, lower, k, traj):
@@ -1247,6 +1276,30 @@ def _range_check(reach, seen, traj, ours, frames, period=None):
     return ok
 
 
+#: The rounding of written values is taken into the default tolerance of ``check`` when
+#: half a unit in their last decimal is at least this fraction of that default.
+_ROUNDING_NOTED = 0.01
+
+
+def _values_tolerance(given, default, decimals, values_path):
+    """The tolerance for one values file: `given` (``--tolerance``) as it is; else the default
+    plus half a unit in the last decimal the file's values are written with (an engine
+    that writes 3 decimals is off by up to 5e-4 however right it is), said when it counts."""
+    if given is not None:
+        return given
+    if decimals is None:
+        return default
+    rounding = 0.5 * 10.0 ** (-decimals)
+    if rounding < _ROUNDING_NOTED * default:
+        return default
+    tol = default + rounding
+    print(f"note: values of {values_path} written with {decimals} decimal"
+          f"{'' if decimals == 1 else 's'}: tolerance raised to {tol:.3g} (half a unit in "
+          f"the last decimal, {rounding:.3g}, plus the default {default:.3g}; --tolerance "
+          "sets it as given)")
+    return tol
+
+
 def _cmd_check(args):
     from ..io.source import Source
     from ..spec import load_spec
@@ -1279,15 +1332,15 @@ def _cmd_check(args):
     if not args.against and not args.trajectory:
         return 0
     spreads = [v["std"] for v in states.values() if v.get("std")]
-    tol = args.tolerance if args.tolerance is not None else 1e-3 * (max(spreads) if spreads
-                                                                    else 1.0)
+    default_tol = 1e-3 * (max(spreads) if spreads else 1.0)
     in_range = True
     for traj in args.trajectory or []:
         ours, idx, _ = _reference_values(spec, source.topology, traj, args.topology)
         in_range &= _range_check(reach, seen, traj, ours, idx, period)
-    worst_all = 0.0
+    agree = True
     for values_path, traj in args.against or []:
-        frames, theirs = _read_values(values_path, args.column, traj)
+        frames, theirs, decimals = _read_values(values_path, args.column, traj)
+        tol = _values_tolerance(args.tolerance, default_tol, decimals, values_path)
         ours, idx, stand_in = _reference_values(spec, source.topology, traj, args.topology)
         in_range &= _range_check(reach, seen, traj, ours, idx, period)
         if frames is None:
@@ -1313,7 +1366,7 @@ def _cmd_check(args):
         dev = np.abs(_wrapped(theirs - ref, period))
         order = np.argsort(-dev, kind="stable")[:5]
         worst = float(dev[order[0]])
-        worst_all = max(worst_all, worst)
+        agree &= worst <= tol
         modulo = "" if period is None else f"modulo the period {period:.6g}; "
         print(f"{values_path} vs {traj}: {dev.size} frames, largest |deviation| {worst:.3g} "
               f"({modulo}tolerance {tol:.3g}), mean {float(dev.mean()):.3g}")
@@ -1323,7 +1376,6 @@ def _cmd_check(args):
                       f"{float(ref[i])!r}, deviation {float(dev[i]):.3g}"
                       + (" (the reference holds a stand-in value for an undefined descriptor; "
                          "see the warning above)" if int(frame_of[i]) in stand_in else ""))
-    agree = worst_all <= tol
     if not in_range:
         print("FAIL: values outside the CV's reachable range (see ERROR above)"
               + ("" if agree or not args.against else "; the values also differ from the "
