@@ -11,6 +11,10 @@ from sklearn.utils.estimator_checks import parametrize_with_checks
 
 from cvdesign.fit import HLDA, LDA, TICA
 
+# scikit-learn's checks fit TICA on a few dozen frames of several features: too few lagged
+# pairs per feature, which TICA rightly warns about (FewPairsWarning, tested in test_tica.py)
+pytestmark = pytest.mark.filterwarnings("ignore::cvdesign.fit.FewPairsWarning")
+
 
 @parametrize_with_checks([LDA(), HLDA(), HLDA(shrinkage=0.1), TICA(),
                           TICA(lag=2, kinetic_weighting=True)])

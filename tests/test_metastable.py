@@ -241,6 +241,33 @@ def test_double_well_runs_with_transitions_give_two_metastable_states(tmp_path):
     assert adjusted_rand_score(truth, pred) > 0.9
 
 
+def test_tica_on_too_few_pairs_for_its_features_is_warned_about_in_the_notes_and_report(
+        tmp_path, monkeypatch):
+    # well-sampled double-well runs (4 x 2000 frames, a few features): no warning; the same
+    # runs judged by a rule that asks for more pairs than they hold: the warning reaches the
+    # notes, the summary and the report's block of the run's warnings
+    import cvdesign.fit.slowmodes as slowmodes
+    from cvdesign.report.html import _run_warnings
+
+    xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
+    top, paths = _write_walkers(tmp_path, xs, seed=2)
+    exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+    assert not any("implied timescales are too long" in n for n in exp.notes)
+    text = "\n".join(exp.summary_lines())
+    assert "lower bounds on the true ones given ample data" in text
+    assert "too few frames for the features inflate them" in text
+    monkeypatch.setattr(slowmodes, "MIN_PAIRS_PER_FEATURE", 10 ** 6)
+    exp = propose_states(_runs_source(top, paths), lag=1.0, kinds=("distance",))
+    warned = [n for n in exp.notes if "implied timescales are too long" in n]
+    assert len(warned) == 1 and warned[0].startswith(
+        "warning: TICA's implied timescales are too long: 7960 lagged pairs for ")
+    assert "narrower --select or --kinds" in warned[0]
+    text = "\n".join(exp.summary_lines())
+    assert f"- {warned[0]}" in text
+    assert "<li>TICA&#x27;s implied timescales are too long: 7960 lagged pairs" in \
+        _run_warnings(text)
+
+
 def test_runs_sharing_a_file_name_are_named_by_full_path_in_every_output(tmp_path):
     # dup/a/run-1.xtc and dup/b/run-1.xtc: states.csv switched to full paths, but the
     # representative frames and the report's tica.files kept the bare names, ambiguous

@@ -3,7 +3,8 @@
 import numpy as np
 import pytest
 
-from cvdesign.fit import DroppedDirectionsWarning, TICA, slow_modes, timescales_from_eigenvalues
+from cvdesign.fit import (MIN_PAIRS_PER_FEATURE, DroppedDirectionsWarning, FewPairsWarning, TICA,
+                          few_pairs_text, slow_modes, timescales_from_eigenvalues)
 from cvdesign.stats.moments import DiagonalLaggedMoments, LaggedMoments, merge_all
 
 LAG = 5  # frames; the OU fixture has dt = 1 frame
@@ -232,3 +233,47 @@ def test_implied_timescales_conventions():
     assert timescales_from_eigenvalues(0.5, lag=2.0).shape == ()
     with pytest.raises(ValueError, match=r"lag=0 must be a positive number"):
         timescales_from_eigenvalues(ev, lag=0)
+
+
+def _white_noise_runs(n_runs, n_frames, n_features, seed):
+    rng = np.random.default_rng(seed)
+    return [rng.standard_normal((n_frames, n_features)) for _ in range(n_runs)]
+
+
+def test_too_few_lagged_pairs_for_the_features_are_warned_about_white_noise_looks_slow():
+    # white noise has no slow process, yet TICA from 3 runs of 100 frames and 250 features
+    # (285 pairs at lag 5) finds eigenvalues near 1 and timescales of hundreds of frames:
+    # the variational lower bound holds only for exact averages
+    with pytest.warns(FewPairsWarning, match=r"285 lagged pairs for 250 features \(1.14 per "
+                      r"feature, fewer than 20, our rule\).* implied timescales too long"):
+        tica = TICA(lag=5).fit(_white_noise_runs(3, 100, 250, seed=0))
+    assert tica.timescales_[0] > 100 * 5
+    # TICA.from_moments (what propose_states calls) warns the same way
+    x = _white_noise_runs(1, 300, 100, seed=1)[0]
+    with pytest.warns(FewPairsWarning, match="295 lagged pairs for 100 features"):
+        TICA.from_moments(LaggedMoments.from_series(x, 5, shift=x.mean(axis=0)), lag=5)
+    assert few_pairs_text(MIN_PAIRS_PER_FEATURE * 30 - 1, 30) is not None
+
+
+def test_ample_lagged_pairs_give_no_warning_and_white_noise_timescales_below_the_lag():
+    # the rule's ground (our choice of 20 pairs per feature): at 20 pairs per feature white
+    # noise no longer shows a timescale longer than the lag; at 5 it does
+    import warnings
+    for n_features in (20, 50):
+        n_frames = -(-MIN_PAIRS_PER_FEATURE * n_features // 3) + 5  # 3 runs, lag 5
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", FewPairsWarning)
+            ample = TICA(lag=5).fit(_white_noise_runs(3, n_frames, n_features, seed=2))
+        assert ample.timescales_[0] < 5
+        with pytest.warns(FewPairsWarning):
+            few = TICA(lag=5).fit(_white_noise_runs(3, 5 * n_features // 3 + 5, n_features,
+                                                    seed=3))
+        assert few.timescales_[0] > 5
+    # a slow process sampled well (the AR(1) of the class's example): no warning
+    from scipy.signal import lfilter
+    rng = np.random.default_rng(0)
+    slow = lfilter([1.0], [1.0, -0.99], rng.normal(size=4000))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", FewPairsWarning)
+        tica = TICA(lag=10).fit(np.c_[slow + rng.normal(size=4000), slow - rng.normal(size=4000)])
+    assert 80 < tica.timescales_[0] < 120

@@ -14,7 +14,8 @@ import importlib as _importlib
 from .directions import (discriminant_directions, fix_signs, quadratic_forms, rayleigh_quotient,
                          rayleigh_quotients, two_state_direction, two_state_directions)
 from ._linalg import DroppedDirectionsWarning
-from .slowmodes import SlowModes, slow_modes, timescales_from_eigenvalues
+from .slowmodes import (MIN_PAIRS_PER_FEATURE, FewPairsWarning, SlowModes, few_pairs_text,
+                        slow_modes, timescales_from_eigenvalues)
 from .vamp import vamp2_score
 
 #: The estimators and their modules, imported on first use (they import scikit-learn).
@@ -39,4 +40,5 @@ def __dir__():
 __all__ = ["LDA", "HLDA", "TICA", "discriminant_directions", "two_state_direction",
            "two_state_directions", "rayleigh_quotient", "rayleigh_quotients", "quadratic_forms",
            "timescales_from_eigenvalues", "fix_signs", "vamp2_score", "slow_modes", "SlowModes",
-           "DroppedDirectionsWarning"]
+           "DroppedDirectionsWarning", "FewPairsWarning", "few_pairs_text",
+           "MIN_PAIRS_PER_FEATURE"]

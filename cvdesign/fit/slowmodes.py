@@ -5,9 +5,11 @@ Perez-Hernandez et al. 2013) on :class:`~cvdesign.stats.moments.LaggedMoments`, 
 scikit-learn (so that ``suggest``, whose searches take the slowest direction of many
 combinations, and its worker processes do not import it): :func:`slow_modes` solves
 ``C(tau) w = lambda C(0) w`` after whitening ``C(0)``; :func:`timescales_from_eigenvalues`
-turns eigenvalues into implied timescales.
+turns eigenvalues into implied timescales; :func:`few_pairs_text` says when there are too
+few lagged pairs for the features (:data:`MIN_PAIRS_PER_FEATURE`).
 """
 
+import warnings
 from typing import NamedTuple
 
 import numpy as np
@@ -17,7 +19,52 @@ from ..stats.moments import LaggedMoments, _check_lag
 from ._linalg import _check_rcond, _variance_floor, _warn_dropped, _whitener
 from .directions import fix_signs
 
-__all__ = ["SlowModes", "slow_modes", "timescales_from_eigenvalues"]
+__all__ = ["SlowModes", "slow_modes", "timescales_from_eigenvalues", "MIN_PAIRS_PER_FEATURE",
+           "FewPairsWarning", "few_pairs_text"]
+
+#: Fewest lagged pairs per feature (per direction kept after the rcond cut) below which
+#: TICA's eigenvalues and implied timescales are flagged as inflated by overfitting. Our
+#: choice, from seeded white noise (no slow process at all; 3 runs, lag 5 frames, 20 to 100
+#: features): the largest eigenvalue came out about 1.35 / sqrt(pairs per feature), 0.43 at
+#: 10 pairs per feature (a timescale of 1.2 lags) and 0.30 at 20 (0.85 lags: noise alone
+#: then no longer looks slower than the lag). Pairs of one run are correlated, so real runs
+#: need more than this count.
+MIN_PAIRS_PER_FEATURE = 20
+
+
+class FewPairsWarning(UserWarning):
+    """TICA was fitted on too few lagged pairs for its features (:func:`few_pairs_text`)."""
+
+
+def few_pairs_text(n_pairs, n_features):
+    """Why TICA's timescales from `n_pairs` lagged pairs of `n_features` features are too
+    long, or None when there are at least :data:`MIN_PAIRS_PER_FEATURE` pairs per feature.
+
+    The variational principle (Noe and Nueske, Multiscale Model. Simul. 11, 635, 2013) makes
+    implied timescales lower bounds on the true ones only for exact expectations: from few
+    pairs the lagged covariance is overfitted, and the eigenvalues come out too close to 1.
+
+    Examples
+    --------
+    >>> few_pairs_text(4000, 200) is None
+    True
+    >>> few_pairs_text(285, 250)[:60]
+    '285 lagged pairs for 250 features (1.14 per feature, fewer t'
+    """
+    if n_features <= 0 or n_pairs >= MIN_PAIRS_PER_FEATURE * n_features:
+        return None
+    return (f"{n_pairs} lagged pairs for {n_features} features ({n_pairs / n_features:.3g} "
+            f"per feature, fewer than {MIN_PAIRS_PER_FEATURE}, our rule): TICA overfits the "
+            "lagged covariance from so few pairs, so its eigenvalues come out too close to 1 "
+            "and its implied timescales too long (on white noise at 10 pairs per feature, "
+            "longer than the lag); they are lower bounds on the true ones only with ample "
+            "data. Use fewer features, or more or longer runs")
+
+
+def _warn_few_pairs(n_pairs, n_features, stacklevel=3):
+    text = few_pairs_text(n_pairs, n_features)
+    if text is not None:
+        warnings.warn(text, FewPairsWarning, stacklevel=stacklevel + 1)
 
 
 def timescales_from_eigenvalues(eigenvalues, lag):

@@ -16,8 +16,8 @@ from sklearn.utils.validation import check_array, check_is_fitted, validate_data
 
 from ..stats.moments import LaggedMoments, _check_lag
 from ._linalg import _check_rcond, _warn_dropped
-from .slowmodes import (_check_lagged_moments, _check_n_components, _solve, slow_modes,
-                        timescales_from_eigenvalues)
+from .slowmodes import (_check_lagged_moments, _check_n_components, _solve, _warn_few_pairs,
+                        slow_modes, timescales_from_eigenvalues)
 
 __all__ = ["TICA", "timescales_from_eigenvalues"]
 
@@ -237,6 +237,7 @@ class TICA(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
         lag = est._check_params()
         modes = slow_modes(lagged_moments, lag=lag, n_components=n_components, rcond=rcond,
                            reversible=reversible)
+        _warn_few_pairs(lagged_moments.n_pairs, lagged_moments.n_features - modes.n_dropped)
         est.n_features_in_ = lagged_moments.n_features
         return est._set_modes(modes)
 
@@ -244,6 +245,7 @@ class TICA(ClassNamePrefixFeaturesOutMixin, TransformerMixin, BaseEstimator):
         modes = _solve(moments, lag, self.n_components, self.rcond, self.reversible)
         _warn_dropped(modes.n_dropped, moments.n_features, self.rcond,
                       "the instantaneous covariance C0")
+        _warn_few_pairs(moments.n_pairs, moments.n_features - modes.n_dropped)
         return self._set_modes(modes)
 
     def _set_modes(self, modes):

@@ -37,12 +37,16 @@ When no state labels are known, :func:`propose_states`
    the state often; a state entered or left fewer than
    :data:`FEW_TRANSITIONS` times gets a warning saying so.
 
-TICA's implied timescales are *lower bounds* on the true ones: by the
-variational principle of conformation dynamics (Noe and Nueske, Multiscale
-Model. Simul. 11, 635, 2013) a linear combination of features relaxes at
-least as fast as the slowest true process; the summary says so, and flags
-them when the runs contain fewer than :data:`FEW_TRANSITIONS` transitions
-between the proposed states.
+TICA's implied timescales are *lower bounds* on the true ones given ample
+data: by the variational principle of conformation dynamics (Noe and Nueske,
+Multiscale Model. Simul. 11, 635, 2013) a linear combination of features
+relaxes at least as fast as the slowest true process, for exact expectations.
+From too few frames for the features TICA overfits and they come out too
+long instead: the notes warn when there are fewer than
+:data:`cvdesign.fit.MIN_PAIRS_PER_FEATURE` lagged pairs per feature (our
+rule; see :func:`cvdesign.fit.few_pairs_text`). The summary says so, and
+flags them when the runs contain fewer than :data:`FEW_TRANSITIONS`
+transitions between the proposed states.
 
 Every read of the runs is a pass of the pass engine (:mod:`cvdesign.passes`;
 see :func:`propose_states`), so the result is the same, byte for byte, on any
@@ -76,7 +80,7 @@ from threadpoolctl import threadpool_limits  # installed with scikit-learn
 
 from ..constants import COORDINATION_R0_NM
 from ..errors import InputError
-from ..fit import DroppedDirectionsWarning, TICA
+from ..fit import TICA, DroppedDirectionsWarning, FewPairsWarning, few_pairs_text
 from ..io.source import Source
 from ..parallel import using_executor
 from ..passes import (LaggedPass, Pass, PoolFeaturizer, ScreeningPass, frame_keys, plan_tasks,
@@ -655,7 +659,8 @@ class Exploration:
         share a file name).
     timescales_ps : list of float
         Implied timescales of the TICA components, slowest first, ps: lower
-        bounds on the true timescales (variational principle; see the module
+        bounds on the true timescales given ample data (variational principle),
+        too long from too few frames for the features (see the module
         docstring).
     lag_ps : float
     n_slow : int
@@ -762,8 +767,10 @@ class Exploration:
         crit = self.criterion
         out = ["## Proposed states (unlabelled runs)", "",
                f"TICA at lag {self.lag_ps:g} ps; implied timescales (ps; lower bounds on the "
-               "true ones: a linear combination of features relaxes at least as fast as the "
-               "slowest process, by the variational principle, Noe and Nueske 2013): "
+               "true ones given ample data: a linear combination of features relaxes at "
+               "least as fast as the slowest process, by the variational principle, Noe and "
+               "Nueske 2013, for exact averages; too few frames for the features inflate "
+               "them, and the notes below then say so): "
                + ", ".join(_fmt_ts(t) if _resolved_by_runs(t, self.longest_run_ps)
                            is not False  # NaN: no timescale read
                            else f"> {self.longest_run_ps:.3g} (not resolved by these runs)"
@@ -1031,14 +1038,20 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
                                          source, executor=executor, tasks=plan,
                                          label="runs: TICA").merged(),
                                 screened.center, screened.scale)
-    with _warnings.catch_warnings():  # the note below says how many were dropped
-        _warnings.simplefilter("ignore", DroppedDirectionsWarning)
+    with _warnings.catch_warnings():  # the notes below say how many were dropped, and
+        _warnings.simplefilter("ignore", DroppedDirectionsWarning)  # when pairs are few
+        _warnings.simplefilter("ignore", FewPairsWarning)
         tica = TICA.from_moments(lagged, lag=1, rcond=1e-6)
     ts_ps = (tica.timescales_ * lag).tolist()  # from_moments used lag=1 (one lag unit)
     notes = list(pool.notes) + [  # the pool's notes: a Python caller sees no CLI log
         f"TICA on the {screened.columns.size} most autocorrelated features "
         f"({tica.n_dropped_} near-singular directions dropped, eigenvalue below 1e-6 of "
         "the largest)"]  # of the standardized features: the correlation scale
+    few = few_pairs_text(lagged.n_pairs, screened.columns.size - tica.n_dropped_)
+    if few is not None:  # shown in the summary, and through it on the report page
+        notes.append(f"warning: TICA's implied timescales are too long: {few} (fewer "
+                     "features: a narrower --select or --kinds; from Python also "
+                     "propose_states(..., screen_size=))")
     if reweighting is not None:
         notes += _biased_notes(reweighting, lag_frames)
     slow = [i for i, t in enumerate(ts_ps) if (math.isinf(t) or t > lag)]

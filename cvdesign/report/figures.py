@@ -973,10 +973,12 @@ def implied_timescales(curves, *, tica=None, within=None, crossing=False, biased
                         "longer than what they show.")
         if tica_data is not None:
             caption += (" The crosses are TICA's implied timescales at its lag (--runs): lower "
-                        "bounds on the true timescales, since a linear combination of features "
-                        "relaxes at least as fast as the slowest process (variational "
-                        "principle, No\u00e9 and N\u00fcske 2013); the summary flags them when "
-                        "few transitions between the proposed states back them.")
+                        "bounds on the true timescales given ample data, since a linear "
+                        "combination of features relaxes at least as fast as the slowest "
+                        "process (variational principle, No\u00e9 and N\u00fcske 2013); too "
+                        "few frames for the features inflate them instead (the run summary "
+                        "warns then), and the summary flags them when few transitions between "
+                        "the proposed states back them.")
             if any(r is False for r in tica_data["resolved"]):
                 caption += (" A triangle at the longest run marks a TICA timescale the runs "
                             "do not resolve: they show only that it is longer than they are. "
@@ -1075,7 +1077,7 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=No
         The TICA lag, ps.
     timescales_ps : sequence of float or None, optional
         Implied timescales of the coordinates, ps (None: not finite); lower bounds
-        on the true ones, as the axis labels say.
+        on the true ones given ample data, as the axis labels say.
     n_slow : int or None, optional
         The coordinates the states were clustered in; a coordinate beyond it is
         labelled as faster than the lag and not used for the states. None: a
@@ -1174,8 +1176,9 @@ def tica_states(coords, labels, *, states, lag_ps, timescales_ps=None, n_slow=No
         caption = ("Proposed states: frames of the runs (a subsample) in the two slowest TICA "
                    "coordinates, coloured by the state k-means gave them; well-separated "
                    "clouds are distinct slow states. The axes' timescales are TICA's, lower "
-                   "bounds on the true ones (variational principle, No\u00e9 and N\u00fcske "
-                   "2013).")
+                   "bounds on the true ones given ample data (variational principle, "
+                   "No\u00e9 and N\u00fcske 2013); too few frames for the features inflate "
+                   "them (the run summary warns then).")
         if any(r is False for r in ok[:2]):
             caption += (f" An axis marked \u201cnot resolved\u201d has a TICA timescale longer "
                         f"than the longest run ({longest_run_ps:.3g} ps): the runs show only "
