@@ -8,7 +8,6 @@ form for two Gaussians elsewhere (tests/test_scoring.py, Inman and Bradley 1989)
 """
 
 import numpy as np
-import pytest
 
 from cvdesign import Source, suggest
 from cvdesign.pipeline.ranking import PAIR_OVERLAP_WARN, add_pair_overlap, closest_pairs

@@ -174,7 +174,7 @@ def test_the_range_message_no_longer_advises_an_edit_that_leaves_stale_states():
     with pytest.raises(SpecError, match=r"^\$\.reachable_range\.lower: .* The terms or the range "
                        r"were edited: recompute the range\. The states and observed_range are "
                        r"in the CV's units too: .*or remove reachable_range, observed_range, "
-                       r"hints and the states' entries") as info:
+                       r"hints and the states' entries"):
         Spec.from_dict(doc)
     no_states = _distance_spec(states={}, observed_range=None).to_dict()
     no_states["terms"][0]["weight"] = 10.0
