@@ -119,6 +119,7 @@ def test_prefilter_memory_is_bounded_by_max_numbers_and_its_means_do_not_depend_
     assert np.array_equal(results[0][0], results[1][0]) and results[0][1] == results[1][1]
 
 
+@pytest.mark.filterwarnings("ignore:atom_indices are not monotonically increasing")
 def test_a_strided_read_of_some_atoms_of_a_trr_file_gives_the_frames_of_an_xtc(tmp_path):
     """mdtraj's TRR reader crashed the process (memory corruption, no message) when given a
     stride and an atom subset together, as the prefilter reads; the source reads whole
