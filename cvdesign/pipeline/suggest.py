@@ -424,7 +424,7 @@ def _suggest(source, config, executor, progress, checksums):
     notes += screening.notes
     notes.append(_folds_note(folds, config.n_folds))
     say(f"statistics pass ({len(screening.screened)} descriptors screened)")
-    fm, iat_desc, iat_note, transit, scatter, feature_frames = _statistics_pass(
+    fm, iat_desc, iat_note, transit, scatter = _statistics_pass(
         source, base, pool, screening, folds, priors, steps, lags, lag_ps, seg_counts, config,
         executor, reweighting)
     notes += iat_note
@@ -471,16 +471,21 @@ def _suggest(source, config, executor, progress, checksums):
                          "intervals from so few cover the truth far less often than they "
                          "say); give longer crossing runs")
     scorecard = _scorecard(pool, screening, short, held.overlap_desc, iat_desc, card_ci)
-    cv_times, frame_ps = [None] * len(fits), None
+    cv_times, frame_ps, cv_frames = [None] * len(fits), None, [None] * len(fits)
     if held.report is not None and held.report.get("cv_grid") is not None:
-        frame_ps = next(iter(steps.values()))  # (the grid needs one known spacing)
-        cv_times = cv_integrated_times(held.report["cv_grid"], held.report_lags, frame_ps,
-                                       _state_frames(seg_counts, reweighting),
-                                       grid=_lag_grid(steps, seg_counts),
-                                       effective=_run_effective_frames(source, reweighting))
-        short_cvs = sum(t is not None and t[3] for t in cv_times)
-        if short_cvs:
-            notes.append(_short_runs_note(short_cvs, "ranked CVs"))
+        frame_ps = next(iter(steps.values()))  # (one spacing for every file, or unknown)
+        # without a spacing the times are in frames: no time to report, but the held-out
+        # noise level needs them
+        cv_frames = cv_integrated_times(held.report["cv_grid"], held.report_lags,
+                                        1.0 if frame_ps is None else frame_ps,
+                                        _state_frames(seg_counts, reweighting),
+                                        grid=_lag_grid(steps, seg_counts),
+                                        effective=_run_effective_frames(source, reweighting))
+        if frame_ps is not None:
+            cv_times = cv_frames
+            short_cvs = sum(t is not None and t[3] for t in cv_times)
+            if short_cvs:
+                notes.append(_short_runs_note(short_cvs, "ranked CVs"))
     run_ps = [_run_frames(source, reweighting, seg_counts, si) * dt for si, dt in steps.items()
               if dt is not None]
     longest_run_ps = float(max(run_ps)) if run_ps else None
@@ -519,13 +524,8 @@ def _suggest(source, config, executor, progress, checksums):
                     f"the smallest box height ({0.5 * first.min_box_height:.3g} nm): there "
                     "the minimum image folds the distance back, so the CV jumps; check that "
                     "the box is large enough for it, or choose a CV without it")
-        own = cv_times[rank - 1]
-        if own is not None:
-            state_times = own[5]
-        elif frame_ps is None and feature_frames:  # no frame spacing: from its terms, frames
-            state_times = _terms_state_frames(fit, feature_frames, source.n_states)
-        else:
-            state_times = None
+        own = cv_frames[rank - 1]  # (per state, its own time in frames: [5])
+        state_times = None if own is None else own[5]
         if add_noise_level(entry, fm, frame_ps, warn=config.objective != "slow",
                            state_frames=None if state_times is None else [
                                t * scatter.get(s, 1.0) for s, t in enumerate(state_times)],
@@ -603,11 +603,10 @@ MIN_WITHIN_PAIRS = 100
 
 def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, lag_ps,
                      seg_counts, config, executor, reweighting=None):
-    """Fold moments (full and lagged) and integrated times of the screened descriptors, per
-    state the factor by which their run means scatter more than those times allow
-    (:func:`~cvdesign.pipeline.timing.scatter_factors`; empty without times), and per state
-    the screened features' integrated times in frames (empty without times; computed in
-    frames also when the frame spacing is unknown, for the held-out noise level)."""
+    """Fold moments (full and lagged) and integrated times of the screened descriptors, and
+    per state the factor by which their run means scatter more than those times allow
+    (:func:`~cvdesign.pipeline.timing.scatter_factors`; empty without times; from times in
+    frames when the frame spacing is unknown, for the held-out noise level)."""
     feats = PoolFeaturizer(pool.subset(screening.screened))
     shift = screening.center[screening.features]
     passes = [FoldMomentsPass(feats, folds)]
@@ -655,7 +654,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     if grid is None:
         notes.append("integrated autocorrelation times not computed: the files' time steps "
                      "differ (or some are unknown)")
-        return fm, iat_desc, notes, transit, {}, {}
+        return fm, iat_desc, notes, transit, {}
     dt = next(iter(steps.values()))
     n = feats.n_features
     by_lag = [r.by_run() for r in results[-1]]  # (folds merged once per lag)
@@ -666,7 +665,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
         in_frames = {s: v[0] for s, v in state_integrated_times(
             by_lag, grid, n, return_window=True).items()}
         return (fm, iat_desc, notes, transit,
-                scatter_factors(by_lag[0], in_frames, n, effective=effective), in_frames)
+                scatter_factors(by_lag[0], in_frames, n, effective=effective))
     # within runs: each (file, state) series about its own mean; each descriptor's time is
     # that of the state where it is longest (pooled, a narrow slow state hides behind a
     # broad fast one, and the bootstrap blocks sized from it would be too short for it)
@@ -695,7 +694,7 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     # how much more the states' run means scatter than their times allow (the screened
     # descriptors' median: the held-out noise level's run offsets)
     scatter = scatter_factors(by_lag[0], in_frames, n, effective=effective)
-    return fm, iat_desc, notes, transit, scatter, in_frames
+    return fm, iat_desc, notes, transit, scatter
 
 
 @dataclass
@@ -867,8 +866,9 @@ def _report_pass(every, base, screening, fits, fm, folds, lags, seg_counts, step
     pos = {c: j for j, c in enumerate(cols)}
     local = {int(i): pos[int(screening.features[i])] for fit in fits for i in fit.idx}
     plans = cv_plans(fits, fm, local)
-    known = next(iter(steps.values()), None) is not None
-    grid = _lag_grid(steps, seg_counts) if known else None
+    # (without a known spacing the grid's times are in frames: the report shows none, the
+    # held-out noise level takes them)
+    grid = _lag_grid(steps, seg_counts)
     lag = None if lags is None else next(iter(lags.values()))
     report_lags = timescale_lags(grid, lag)
     shift = [float(np.mean([m.mean[fit.idx] @ fit.w for m in fm.pooled()])) for fit in fits]
@@ -1021,20 +1021,6 @@ def _run_effective_frames(source, reweighting):
         for s in np.unique(codes[codes >= 0]):
             out[(si, int(s))] = kish_ess(w[codes == s])
     return out
-
-
-def _terms_state_frames(fit, feature_frames, n_states):
-    """Per state, the longest integrated time (frames) of a ranked CV's features: the CV's
-    time when its own could not be measured (no frame spacing known); a combination's time
-    is at most about its slowest term's, so the noise level from it errs on the side of
-    warning. NaN for a state without times."""
-    out = np.full(n_states, np.nan)
-    for s, times in feature_frames.items():
-        values = np.asarray(times, dtype=np.float64)[np.asarray(fit.idx, dtype=np.intp)]
-        values = values[np.isfinite(values)]
-        if values.size:
-            out[s] = float(values.max())
-    return out.tolist()
 
 
 def _effective_fraction(seg_counts, reweighting):
