@@ -102,7 +102,15 @@ def test_lag_in_ps_needs_a_time_step_for_formats_without_times(mda_data, capfd):
     res = suggest(source(timestep=1.0), selection="name CA", objective="both", lag=2.0,
                   n_bootstrap=0, max_terms=1, n_suggestions=1)
     assert res.lag_ps == 2.0 and res.ranking[0]["heldout_autocorrelation"] is not None
-    # from Python the library prints nothing, not even the DCD reader's own lines from C
+    # from Python the library prints nothing on standard output, not even the DCD reader's
+    # own lines from C (they go to standard error), and nothing at all when discarded
+    captured = capfd.readouterr()
+    assert "dcdplugin" not in captured.out
+    from cvdesign.io.source import reader_output_discarded
+
+    with reader_output_discarded():
+        suggest(source(timestep=1.0), selection="name CA", objective="both", lag=2.0,
+                n_bootstrap=0, max_terms=1, n_suggestions=1)
     captured = capfd.readouterr()
     assert "dcdplugin" not in captured.out + captured.err
 

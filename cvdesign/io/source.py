@@ -67,11 +67,11 @@ _QUIET_LOCK = threading.Lock()
 _QUIET = {"depth": 0, "fd": None, "saved": None}
 
 
-#: Environment variable: ``show`` sends what the C readers print (see :func:`quiet_stdout`)
-#: to standard error; anything else, or unset, to /dev/null, so that the library prints
-#: nothing from Python. The command sets ``show`` without ``-q`` (:func:`reader_output_shown`)
-#: and ``discard`` under it (:func:`reader_output_discarded`); worker processes started
-#: meanwhile inherit it.
+#: Environment variable: ``discard`` sends what the C readers print (see :func:`quiet_stdout`)
+#: to /dev/null; anything else, or unset, to standard error (standard output stays clean,
+#: and whatever another thread writes to standard output during a read is moved, not lost).
+#: The command sets ``discard`` under ``-q`` (:func:`reader_output_discarded`) and ``show``
+#: without it (:func:`reader_output_shown`); worker processes started meanwhile inherit it.
 READER_OUTPUT_ENV = "CVDESIGN_READER_OUTPUT"
 
 
@@ -91,20 +91,23 @@ def _reader_output(mode):
 def reader_output_discarded():
     """For the length of a block, discard what mdtraj's C readers print (e.g. the DCD
     reader's "dcdplugin) detected standard 32-bit DCD file ..."), here and in worker
-    processes started during it; it is not shown, nor turned into warnings. This is the
-    library's default; the command enters it under ``-q``."""
+    processes started during it; it is not shown, nor turned into warnings. The command
+    enters it under ``-q``; from Python, enter it to silence those lines (by default they
+    go to standard error). While it is active, anything another thread of the process
+    writes to standard output during a read is discarded too."""
     return _reader_output("discard")
 
 
 def reader_output_shown():
     """For the length of a block, send what mdtraj's C readers print to standard error,
-    here and in worker processes started during it (the command without ``-q``)."""
+    here and in worker processes started during it (the default; the command without
+    ``-q`` enters it so that a discarding environment is not inherited)."""
     return _reader_output("show")
 
 
 def _reader_sink():
     """(file descriptor for the C readers' output, whether it was opened here)."""
-    if os.environ.get(READER_OUTPUT_ENV) == "show":
+    if os.environ.get(READER_OUTPUT_ENV) != "discard":
         try:
             return sys.stderr.fileno(), False
         except (AttributeError, OSError, ValueError):
@@ -114,8 +117,8 @@ def _reader_sink():
 
 @contextlib.contextmanager
 def quiet_stdout():
-    """Send anything written to file descriptor 1 (by C readers) to /dev/null (to standard
-    error within :func:`reader_output_shown`, as in the command without ``-q``).
+    """Send anything written to file descriptor 1 (by C readers) to standard error (to
+    /dev/null within :func:`reader_output_discarded`, as under ``-q``).
 
     Some of mdtraj's compiled readers print diagnostics straight to the
     process's standard output, which would corrupt CSV written there. Safe
@@ -128,6 +131,7 @@ def quiet_stdout():
             # (pytest's capture, a notebook's stream: objects without a descriptor)
             fd = 1
             _flush_python_stdout()
+            _flush_c_stdio()  # (what was printed before the read goes where it was meant)
             try:
                 saved = os.dup(fd)
             except OSError:  # descriptor 1 closed: nothing to protect
