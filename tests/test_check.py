@@ -73,20 +73,34 @@ def test_check_tolerates_the_rounding_of_values_written_with_few_decimals(
     assert main(["check", str(spec_path), "--topology", top, "--against", str(rounded),
                  traj]) == 0
     out = capsys.readouterr().out
-    assert (f"note: values of {rounded} written with 3 decimals: tolerance raised to "
-            f"{default + 5e-4:.3g} (half a unit in the last decimal, 0.0005, plus the default "
-            f"{default:.3g}; --tolerance sets it as given)") in out and "PASS" in out
+    assert (f"note: values of {rounded} written with as few as 3 decimals: each value's "
+            f"tolerance is the default {default:.3g} plus half a unit in its last decimal (up "
+            f"to 0.0005; --tolerance sets one tolerance as given)") in out and "PASS" in out
     # --tolerance is kept as given
     assert main(["check", str(spec_path), "--topology", top, "--against", str(rounded), traj,
                  "--tolerance", f"{default:.6g}"]) == 1
     out = capsys.readouterr().out
-    assert "tolerance raised" not in out and "FAIL" in out
-    # values written in full get no note and the default tolerance
+    assert "note: values of" not in out and "FAIL" in out
+    # values written in full get no note and the default tolerance, also when one of them
+    # is short (an exact 1.5 among longer texts: its own rounding, not a loose tolerance)
     full = tmp_path / "full.txt"
     full.write_text("\n".join(repr(float(v)) for v in vals) + "\n")
     assert main(["check", str(spec_path), "--topology", top, "--against", str(full), traj]) == 0
     out = capsys.readouterr().out
-    assert "tolerance raised" not in out and f"tolerance {default:.3g})" in out
+    assert "note: values of" not in out and f"tolerance {default:.3g})" in out
+    # significant digits (%.4g): values of 3 and of 4 decimals, each with its own rounding
+    sig = tmp_path / "sig.txt"
+    sig.write_text("\n".join(f"{v:.4g}" for v in vals) + "\n")
+    assert main(["check", str(spec_path), "--topology", top, "--against", str(sig), traj]) == 0
+    assert "PASS" in capsys.readouterr().out
+    # one short value among full ones does not widen the others' tolerance
+    off = [repr(float(v)) for v in vals]
+    off[0], off[1] = "1.5", repr(float(vals[1]) + 10 * default)
+    mixed = tmp_path / "mixed.txt"
+    mixed.write_text("\n".join(off) + "\n")
+    assert main(["check", str(spec_path), "--topology", top, "--against", str(mixed), traj]) == 1
+    out = capsys.readouterr().out
+    assert "FAIL" in out and "frame 1:" in out
     # a wrong engine written with 3 decimals still fails: the CV's scale doubled
     wrong = tmp_path / "wrong.txt"
     wrong.write_text("\n".join(f"{2 * v:.3f}" for v in vals) + "\n")

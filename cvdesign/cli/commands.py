@@ -1015,28 +1015,27 @@ _DECIMAL_TEXT = re.compile(r"[+-]?\d*(?:\.(\d*))?(?:[eE]([+-]?\d+))?")
 
 
 def _written_decimals(texts):
-    """The most decimals any of the number texts is written with (an exponent counted:
-    ``1.5e-3`` has 4), or None when some text is not a plain decimal number.
+    """The decimals each number text is written with (an exponent counted: ``1.5e-3`` has
+    4), or None when some text is not a plain decimal number.
 
-    >>> _written_decimals(["0.125", "-1.500", "2.000"]), _written_decimals(["1.5e-3", "0.1"])
-    (3, 4)
+    >>> _written_decimals(["0.125", "-1.5", "2.000"]), _written_decimals(["1.5e-3"])
+    ([3, 1, 3], [4])
     >>> _written_decimals(["0.5", "0x1p-1"]) is None
     True
     """
-    most = None
+    out = []
     for text in texts:
         m = _DECIMAL_TEXT.fullmatch(text.strip())
         if m is None:
             return None
-        k = len(m.group(1) or "") - int(m.group(2) or 0)
-        most = k if most is None else max(most, k)
-    return most
+        out.append(len(m.group(1) or "") - int(m.group(2) or 0))
+    return out
 
 
 def _read_values(path, column=None, traj=None):
     """(frames or None, values, decimals) from a file of CV values, with a clear error on
-    bad input; `decimals` is the most decimals a value is written with
-    (:func:`_written_decimals`), or None.
+    bad input; `decimals` holds the decimals each value is written with
+    (:func:`_written_decimals`), or is None.
 
     The file is a CSV (comma-separated) or whitespace-separated columns, with
     an optional header line; blank lines and lines starting with ``#`` or ``@``
@@ -1282,22 +1281,25 @@ _ROUNDING_NOTED = 0.01
 
 
 def _values_tolerance(given, default, decimals, values_path):
-    """The tolerance for one values file: `given` (``--tolerance``) as it is; else the default
-    plus half a unit in the last decimal the file's values are written with (an engine
-    that writes 3 decimals is off by up to 5e-4 however right it is), said when it counts."""
+    """The tolerance of each value of one values file: `given` (``--tolerance``) as it is;
+    else the default plus half a unit in the last decimal that value is written with (an
+    engine that writes 3 decimals is off by up to 5e-4 however right it is; a value written
+    as 1.5 among longer ones may well be exact, so each value gets its own), said when it
+    counts. A float, or an array of one tolerance per value."""
     if given is not None:
         return given
     if decimals is None:
         return default
-    rounding = 0.5 * 10.0 ** (-decimals)
-    if rounding < _ROUNDING_NOTED * default:
+    rounding = 0.5 * 10.0 ** (-np.asarray(decimals, dtype=np.float64))
+    rounding = np.where(rounding >= _ROUNDING_NOTED * default, rounding, 0.0)
+    if not rounding.any():
         return default
-    tol = default + rounding
-    print(f"note: values of {values_path} written with {decimals} decimal"
-          f"{'' if decimals == 1 else 's'}: tolerance raised to {tol:.3g} (half a unit in "
-          f"the last decimal, {rounding:.3g}, plus the default {default:.3g}; --tolerance "
-          "sets it as given)")
-    return tol
+    fewest = int(min(decimals))
+    print(f"note: values of {values_path} written with as few as {fewest} decimal"
+          f"{'' if fewest == 1 else 's'}: each value's tolerance is the default "
+          f"{default:.3g} plus half a unit in its last decimal (up to {float(rounding.max()):.3g}; "
+          "--tolerance sets one tolerance as given)")
+    return default + rounding
 
 
 def _cmd_check(args):
@@ -1357,21 +1359,25 @@ def _cmd_check(args):
                                  f"does not have ({ours.size} frames)")
             ref = ours[[pos[int(f)] for f in frames]]
             frame_of = np.asarray(frames)
+        tols = np.broadcast_to(np.asarray(tol, dtype=np.float64), theirs.shape)
+        largest = float(tols.max())
         if period is None:  # modulo a period, every value lies in one period's range
             in_range &= _unreachable(
-                f"values of {values_path} (the engine's)", theirs, frame_of, reach, tol,
-                f"beyond a bound by more than the tolerance {tol:.3g}, values the CV cannot "
-                "take: the engine computes another CV (a cos or sin transform left out, a "
-                "weight, centre or scale changed, another atom order)")
+                f"values of {values_path} (the engine's)", theirs, frame_of, reach, largest,
+                f"beyond a bound by more than the tolerance {largest:.3g}, values the CV "
+                "cannot take: the engine computes another CV (a cos or sin transform left "
+                "out, a weight, centre or scale changed, another atom order)")
         dev = np.abs(_wrapped(theirs - ref, period))
         order = np.argsort(-dev, kind="stable")[:5]
         worst = float(dev[order[0]])
-        agree &= worst <= tol
+        agree &= bool(np.all(dev <= tols))
         modulo = "" if period is None else f"modulo the period {period:.6g}; "
+        shown = (f"tolerance {largest:.3g}" if np.ndim(tol) == 0 else
+                 f"tolerance {float(tols.min()):.3g} to {largest:.3g}")
         print(f"{values_path} vs {traj}: {dev.size} frames, largest |deviation| {worst:.3g} "
-              f"({modulo}tolerance {tol:.3g}), mean {float(dev.mean()):.3g}")
+              f"({modulo}{shown}), mean {float(dev.mean()):.3g}")
         for i in order:
-            if dev[i] > tol or i == order[0]:
+            if dev[i] > tols[i] or i == order[0]:
                 print(f"    frame {int(frame_of[i])}: engine {float(theirs[i])!r}, reference "
                       f"{float(ref[i])!r}, deviation {float(dev[i]):.3g}"
                       + (" (the reference holds a stand-in value for an undefined descriptor; "
