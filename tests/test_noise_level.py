@@ -61,6 +61,9 @@ def test_states_of_one_distribution_are_warned_about(tmp_path):
     # noise alone: the best held-out ratio is above zero, and within ten times the level
     assert 0 < level < first["heldout_fisher_ratio"] < NOISE_LEVEL_FACTOR * level
     assert any("less than 10 times what noise alone gives" in w for w in first["warnings"])
+    # noise lifts the held-out ratio above the one on all frames: not a run-offset warning
+    assert not any("times its Fisher ratio on all frames" in w for e in res.ranking
+                   for w in e["warnings"])
     note = next(n for n in res.notes if n.startswith("warning: the held-out Fisher ratio of "
                                                      "rank"))
     assert "the states may not differ along any CV found" in note
@@ -162,21 +165,28 @@ def test_files_that_store_no_times_still_get_the_noise_level_in_frames(tmp_path)
 
 
 def test_a_held_out_ratio_far_above_the_ratio_on_all_frames_is_warned_about(tmp_path):
-    """States that differ (C1 moved by 0.1 nm), but every run displaced by an offset of its
-    own (sd 0.03 nm): each held-out fold holds one run per state, whose spread is far below
-    the state's over all its runs, so the held-out ratio of rank 1 came out 5.5 times the
-    one on all frames (seed 3), without a word."""
-    top, files = _runs(tmp_path, 0.1, 3, n_runs=3, run_offset_nm=0.03)
+    """States that differ (C1 moved by 0.3 nm), but every run displaced by an offset of its
+    own (sd 0.05 nm): each held-out fold holds one run per state, whose spread is far below
+    the state's over all its runs, so the held-out ratio of rank 1 came out 2.6 times the
+    one on all frames (seed 3), well above its noise level, without a word. (With an offset
+    as large beside a shift of 0.1 nm the CV is near its noise level instead, and that
+    warning alone is given.)"""
+    top, files = _runs(tmp_path, 0.3, 3, n_runs=3, run_offset_nm=0.05)
     res = suggest(Source.from_states(top, files), kinds=("distance",), max_terms=2,
                   n_suggestions=3, n_bootstrap=0)
     first = res.ranking[0]
-    assert first["heldout_fisher_ratio"] > FOLD_SPREAD_FACTOR * first["fisher_ratio_all"]
+    level = first["heldout_fisher_ratio_noise"]
+    assert first["heldout_fisher_ratio"] > NOISE_LEVEL_FACTOR * level
+    assert first["heldout_fisher_ratio"] - level > FOLD_SPREAD_FACTOR * first["fisher_ratio_all"]
     assert any(w.startswith("its held-out Fisher ratio (") and "times its Fisher ratio on "
                "all frames" in w for w in first["warnings"])
-    assert any(n.startswith("warning: the held-out Fisher ratio of rank 1") for n in res.notes)
-    for e in res.ranking:  # exactly those above the factor
+    assert any(n.startswith("warning: the held-out Fisher ratio of rank 1") and "times its "
+               "ratio on all frames" in n for n in res.notes)
+    for e in res.ranking:  # exactly those above the factor, less their noise level
         warned = any("times its Fisher ratio on all frames" in w for w in e["warnings"])
-        assert warned == (e["heldout_fisher_ratio"] > FOLD_SPREAD_FACTOR * e["fisher_ratio_all"])
+        j, lv = e["heldout_fisher_ratio"], e["heldout_fisher_ratio_noise"]
+        assert warned == (j >= NOISE_LEVEL_FACTOR * lv and
+                          j - lv > FOLD_SPREAD_FACTOR * e["fisher_ratio_all"])
 
 
 def test_states_that_differ_are_not_warned_about(tmp_path):

@@ -789,7 +789,9 @@ def add_fold_spread_warning(entry):
     blocks sit at different means along the CV (runs not equilibrated, sub-states they do
     not cross between), that spread is smaller than the state's over all its frames, and
     the held-out ratio exceeds the one on all frames, which is the separation a bias along
-    the CV meets.
+    the CV meets. Noise lifts the held-out ratio more than the one on all frames (each fold
+    has fewer frames): a CV below :data:`NOISE_LEVEL_FACTOR` times its noise level is left
+    to that warning, and otherwise the held-out ratio less its noise level is compared.
 
     Examples
     --------
@@ -798,7 +800,13 @@ def add_fold_spread_warning(entry):
     (True, 'its held-out Fisher ratio (4.6) is 5.5 times its Fisher rati')
     """
     held, whole = entry.get("heldout_fisher_ratio"), entry.get("fisher_ratio_all")
-    if held is None or whole is None or not whole > 0 or not held > FOLD_SPREAD_FACTOR * whole:
+    level = entry.get("heldout_fisher_ratio_noise") or 0.0
+    if held is None or whole is None or not whole > 0:
+        return False
+    # noise lifts the held-out ratio (about the number of folds times more than the ratio on
+    # all frames): a CV near the noise level has its own warning, and above it only the
+    # excess over the level counts
+    if held < NOISE_LEVEL_FACTOR * level or not held - level > FOLD_SPREAD_FACTOR * whole:
         return False
     entry["warnings"].append(
         f"its held-out Fisher ratio ({held:.3g}) is {held / whole:.2g} times its Fisher ratio "

@@ -515,15 +515,14 @@ def _suggest(source, config, executor, progress, checksums):
         add_ranges(entry, pool, held.observed[rank - 1], source.states)
         if add_pair_overlap(entry, held.closest[rank - 1], source.states):
             overlapping.append(rank)
-        if add_fold_spread_warning(entry):
-            spread.append(rank)
         for did in dict.fromkeys(t["descriptor"] for t in entry["terms"]):
             if did in folded:
                 entry["warnings"].append(
                     f"its term {did} reaches {folded[did]:.3g} nm in some frame, beyond half "
                     f"the smallest box height ({0.5 * first.min_box_height:.3g} nm): there "
-                    "the minimum image folds the distance back, so the CV jumps; check that "
-                    "the box is large enough for it, or choose a CV without it")
+                    "the minimum image folds the distance back (the CV turns back, its "
+                    "gradient flips); check that the box is large enough for it, or choose a "
+                    "CV without it")
         own = cv_frames[rank - 1]  # (per state, its own time in frames: [5])
         state_times = None if own is None else own[5]
         if add_noise_level(entry, fm, frame_ps, warn=config.objective != "slow",
@@ -531,6 +530,8 @@ def _suggest(source, config, executor, progress, checksums):
                                t * scatter.get(s, 1.0) for s, t in enumerate(state_times)],
                            effective_fraction=_effective_fraction(seg_counts, reweighting)):
             noisy.append(rank)
+        if add_fold_spread_warning(entry):  # (after the noise level, which it takes in)
+            spread.append(rank)
         if entry.get("timescale_resolved") and _offsets_hold_autocorrelation(entry):
             entry["timescale_resolved"] = False
         entry["hints"], refused = hints_for(entry, config.temperature_k, config.md_step_fs,
