@@ -168,8 +168,27 @@ def test_a_spec_without_digest_loads_and_is_not_marked_stale():
     assert "cv_digest" not in spec.to_dict()  # loading does not add one
 
 
+def test_an_edited_term_of_a_spec_with_a_digest_loads_as_stale_and_still_evaluates():
+    """The documented path: after an edit of the terms the CV itself still loads, evaluates
+    and exports (its reachable range computed from the new terms), while the states, the
+    observed range and the hints, of the old CV, are refused when read."""
+    doc = _distance_spec().to_dict()
+    doc["hints"] = {"caution": "sized from the old states"}
+    doc["terms"][0]["weight"] = 10.0
+    spec = Spec.from_dict(doc)
+    assert spec.states_stale
+    assert spec.reachable_range == (-50.0, None)  # 10 (d - 0.5) / 0.1 for d >= 0
+    xyz = np.zeros((1, TOP.n_atoms, 3))
+    xyz[0, 5, 0] = 0.7
+    np.testing.assert_allclose(spec.evaluate(xyz), [20.0], rtol=1e-6)
+    for read in ("states", "observed_range", "states_at_bound", "hints"):
+        with pytest.raises(SpecError, match=rf"read here: {read}\)"):
+            getattr(spec, read)
+
+
 def test_the_range_message_no_longer_advises_an_edit_that_leaves_stale_states():
     doc = _distance_spec().to_dict()
+    del doc["cv_digest"]  # (a spec written before the digest: the range tells the edit)
     doc["terms"][0]["weight"] = 10.0
     with pytest.raises(SpecError, match=r"^\$\.reachable_range\.lower: .* The terms or the range "
                        r"were edited: recompute the range\. The states and observed_range are "

@@ -555,8 +555,8 @@ class Spec:
         """(float or None, float or None) : the values the CV can reach, CV units.
 
         ``(lower, upper)``, None on a side where the CV is unbounded: the
-        stored ``reachable_range``, or for a spec written without one, the
-        same computed from the terms (:func:`cvdesign.spec.ranges.reachable_range`:
+        stored ``reachable_range``, or for a spec written without one (or whose
+        terms were edited since, :attr:`states_stale`), the same computed from the terms (:func:`cvdesign.spec.ranges.reachable_range`:
         a sound interval, exact when the descriptors can take their extreme
         values together). A periodic CV gets the interval of length
         :attr:`period` its values run over.
@@ -567,7 +567,7 @@ class Spec:
         (-6.0, None)
         """
         stored = self._doc.get("reachable_range")
-        if stored is not None:
+        if stored is not None and not self.states_stale:  # (stale: of the CV before an edit)
             return stored["lower"], stored["upper"]
         return reachable_range(self._doc["descriptors"], self._doc["terms"], self._doc["offset"])
 
@@ -617,7 +617,11 @@ class Spec:
 
     @property
     def hints(self):
-        """dict or None : bias-parameter suggestions, when the spec has them (a copy)."""
+        """dict or None : bias-parameter suggestions, when the spec has them (a copy). Raises
+        :class:`~cvdesign.errors.SpecError` when they are stale (sized from
+        :attr:`states` that are, :attr:`states_stale`)."""
+        if self._doc.get("hints") is not None:
+            self._fresh("hints")
         return copy.deepcopy(self._doc.get("hints"))
 
     @property

@@ -608,7 +608,8 @@ def _check_ranges(doc):
     size = _terms_size(doc)
     stored = doc.get("reachable_range")
     has_states = bool(doc["states"]) or "observed_range" in doc
-    if stored is not None:
+    stale = states_stale(doc)
+    if stored is not None and not stale:  # (stale: the stored range was of the old CV too)
         for side, value in zip(("lower", "upper"), computed):
             given = stored[side]
             same = (given is None and value is None) or (
@@ -637,7 +638,7 @@ def _check_ranges(doc):
         if "min" in state and "max" in state and not state["min"] <= state["max"]:
             raise SpecError(f"min ({state['min']!r}) must not exceed max ({state['max']!r})",
                             _json_path(("states", name)))
-    if not states_stale(doc):
+    if not stale:
         _check_states(doc, computed, size)
 
 
