@@ -1,6 +1,7 @@
 """`cvdesign funnel` on the invented host-guest testbed scenario."""
 
 import json
+from pathlib import Path
 
 import mdtraj as md
 import numpy as np
@@ -299,3 +300,28 @@ def test_k_wall_help_and_the_specs_rule_give_the_rms_penetration_sqrt_kt_over_k(
     capsys.readouterr()
     rule = json.loads(out.read_text())["hints"]["funnel_sizing"]["wall_force_constant_rule"]
     assert f"sqrt(kT / k), is {np.sqrt(kt / 500.0):.3f} nm" in rule and "0.071 nm" in rule
+
+
+def test_funnel_command_warns_when_the_runs_store_no_box_the_topology_has(tumbled, tmp_path,
+                                                                          capsys):
+    """The tumbled runs (a 6 nm box) written again as DCD without unit cells, beside their
+    topology, which keeps its box: the ligand offsets are taken without periodic images, so
+    the funnel's reasoning and warnings say so, naming the files."""
+    bare = []
+    for p in tumbled.paths:
+        traj = md.load(p, top=tumbled.topology)
+        traj.unitcell_vectors = None
+        path = tmp_path / (Path(p).stem + ".dcd")
+        traj.save_dcd(str(path))
+        bare.append(str(path))
+    boxed_top = tmp_path / "top.pdb"
+    md.load(tumbled.paths[0], top=tumbled.topology)[:1].save_pdb(str(boxed_top))
+    out = tmp_path / "f.json"
+    assert main(["funnel", "--topology", str(boxed_top), "--bound", *bare, "--ligand",
+                 tumbled.ligand_selection, "--pocket", tumbled.pocket_selection,
+                 "--out", str(out)]) == 0
+    err = capsys.readouterr().err
+    assert "has a periodic box (6 x 6 x 6 nm), but trajectory" in err
+    sizing = json.loads(out.read_text())["hints"]["funnel_sizing"]
+    assert any("stores each none" in w for w in sizing["warnings"])
+    assert any(r.startswith("WARNING: topology file") for r in sizing["reasoning"])

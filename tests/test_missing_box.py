@@ -82,6 +82,19 @@ def test_apply_and_check_say_when_the_trajectory_has_no_box_the_topology_has(
     assert "warning: topology file" not in capsys.readouterr().out
 
 
+def test_suggest_names_the_files_without_a_box_also_beside_files_with_one(runs):
+    d, out = runs
+    from cvdesign.io.source import unboxed_files
+
+    mixed = Source.from_states(str(d / "boxed.pdb"), {"near": [out["near"][0]],
+                                                      "far": [out["far"][1]]})
+    assert unboxed_files(mixed) == [out["far"][1]]
+    res = suggest(mixed, n_bootstrap=0, max_terms=1, n_suggestions=1)
+    note = next(n for n in res.notes if n.startswith("warning: topology file"))
+    assert f"trajectory '{out['far'][1]}' stores none" in note
+    assert out["near"][0] not in note
+
+
 def test_suggest_warns_when_no_trajectory_stores_the_box_the_topology_has(runs):
     d, out = runs
     kw = dict(n_bootstrap=0, max_terms=1, n_suggestions=1)

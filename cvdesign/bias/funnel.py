@@ -57,7 +57,7 @@ from ..errors import InputError
 from ..geometry.box import _parse_box
 from ..io.atomic import atomic_path
 from ..io.bias import LOW_ESS_FRACTION, LOW_ESS_FRAMES, kish_ess
-from ..io.source import Source
+from ..io.source import Source, missing_box_warning, unboxed_files
 from ..parallel import using_executor
 from ..passes import (CoordinateFeaturizer, Pass, first_frame, frame_keys, plan_tasks, run_pass,
                       thinning_stride)
@@ -1132,8 +1132,13 @@ def size_funnel_from_source(source, pocket, ligand, *, executor=None, **options)
             return run_pass(_StatsPass(featurizer, *columns, reference, stats, stride), source,
                             executor=executor, tasks=plan, label="funnel: sizing")
 
-        return _size(first, second, "were the trajectories changed during the run?",
-                     reweighting=source.reweighting(), **options)
+        out = _size(first, second, "were the trajectories changed during the run?",
+                    reweighting=source.reweighting(), **options)
+    boxless = missing_box_warning(source.topology_path, unboxed_files(source))
+    if boxless is not None:  # (their ligand offsets taken without periodic images)
+        out["warnings"].append(boxless)
+        out["reasoning"].append(f"WARNING: {boxless}")
+    return out
 
 
 _SIZING_OPTIONS = ("exit_point", "ligand_radius", "cylinder_pad", "k_std", "min_margin",

@@ -26,7 +26,7 @@ from ..errors import InputError
 
 __all__ = ["Source", "Segment", "Chunk", "load_topology", "select_atoms", "describe_selection",
            "file_frames", "file_sha256", "stores_time", "quiet_stdout", "check_box",
-           "topology_box_nm", "missing_box_warning",
+           "topology_box_nm", "missing_box_warning", "unboxed_files",
            "check_finite", "check_label_count", "every_atom", "default_selection_warnings",
            "MAX_COPIES"]
 
@@ -475,6 +475,39 @@ def topology_box_nm(path):
     if box is None or not np.all(np.isfinite(box)) or not abs(np.linalg.det(box[0])) > 0:
         return None
     return np.asarray(box[0], dtype=np.float64)
+
+
+def unboxed_files(source):
+    """The trajectory files of a source whose first frame stores no periodic box, when its
+    topology file stores one (else none: nothing to compare with), in the order given.
+
+    Parameters
+    ----------
+    source : Source
+
+    Returns
+    -------
+    list of str
+
+    Examples
+    --------
+    >>> from cvdesign.io.demo import demo_inputs
+    >>> top, files = demo_inputs()
+    >>> unboxed_files(Source.from_states(top, files))  # the demo's topology has no box
+    []
+    """
+    if topology_box_nm(source.topology_path) is None:
+        return []
+    out = []
+    for path in dict.fromkeys(str(seg.path) for seg in source.segments):
+        try:
+            with quiet_stdout():
+                frame = md.load_frame(path, 0, top=source.topology)
+        except Exception:  # (the reads proper name a file they cannot read)
+            continue
+        if frame.unitcell_vectors is None:
+            out.append(path)
+    return out
 
 
 def missing_box_warning(topology_path, files):

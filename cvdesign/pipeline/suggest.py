@@ -43,7 +43,8 @@ import numpy as np
 from ..constants import BOOTSTRAP_TOO_FEW, COORDINATION_R0_NM, MIN_BOOTSTRAP_REPLICATES
 from ..errors import InputError
 from ..geometry import recorded_geometry_warnings
-from ..io.source import Source, describe_selection, missing_box_warning, select_atoms
+from ..io.source import (Source, describe_selection, missing_box_warning, select_atoms,
+                         unboxed_files)
 from ..kinds import DEFAULT_KINDS
 from ..passes import (MIN_FRAMES_PER_FOLD, BlockPass, CardPass, FoldMomentsPass, Folds,
                       HistogramPass, LagGridPass, LaggedPass, PoolFeaturizer,
@@ -399,11 +400,9 @@ def _suggest(source, config, executor, progress, checksums):
     _refuse_empty_states(source, seg_counts)
     inputs = describe_inputs(source, seg_counts, steps)
     notes += _box_notes(pool, first.diagonal, first.min_box_height)
-    if first.min_box_height is None:
-        boxless = missing_box_warning(source.topology_path,
-                                      list(dict.fromkeys(str(g.path) for g in source.segments)))
-        if boxless is not None:
-            notes.append("warning: " + boxless)
+    boxless = missing_box_warning(source.topology_path, unboxed_files(source))
+    if boxless is not None:  # (every file without a box, also beside files with one)
+        notes.append("warning: " + boxless)
     notes += _timing_notes(inputs)
     notes += _overlap_note(source.states, seg_counts, reweighting)
     lag_ps, lags, lag_note = _slowness_lag(source, config, seg_counts, steps, first, lag_ps,
