@@ -12,7 +12,8 @@ Examples
 import math
 
 __all__ = ["BOLTZMANN_KJ_MOL_K", "UNITS", "TWO_PI", "COORDINATION_R0_NM",
-           "COORDINATION_EXPONENTS", "MIN_BOOTSTRAP_REPLICATES", "BOOTSTRAP_TOO_FEW"]
+           "COORDINATION_EXPONENTS", "MIN_BOOTSTRAP_REPLICATES", "BOOTSTRAP_TOO_FEW",
+           "FLOAT32_SLACK"]
 
 #: Molar Boltzmann constant, kJ/mol/K: k_B N_A (CODATA 2018, exact in the SI of 2019).
 BOLTZMANN_KJ_MOL_K = 0.00831446261815324
@@ -40,3 +41,12 @@ MIN_BOOTSTRAP_REPLICATES = 20
 BOOTSTRAP_TOO_FEW = (f"a 95 % percentile interval from fewer than {MIN_BOOTSTRAP_REPLICATES} "
                      "replicates is meaningless (common practice is 200 or more); give 0 to "
                      f"turn the bootstrap off, or at least {MIN_BOOTSTRAP_REPLICATES}")
+
+
+#: Relative slack within which values stored in CV units (a state's mean, min and max, the
+#: observed range, all from single-precision features) count as agreeing with each other and
+#: with the reachable range: float32 rounding passes an end by about 1e-7 relative (a design
+#: run's own frame was 6e-9 past its stored maximum of 1.019); 1e-5 is some hundred rounding
+#: steps, far below any real excursion (our choice). The spec's checks and ``cvdesign check``
+#: use it.
+FLOAT32_SLACK = 1e-5

@@ -34,7 +34,7 @@ import numpy as np
 
 from .._version import __version__
 from ..constants import (BOLTZMANN_KJ_MOL_K, BOOTSTRAP_TOO_FEW, COORDINATION_EXPONENTS,
-                         COORDINATION_R0_NM, MIN_BOOTSTRAP_REPLICATES)
+                         COORDINATION_R0_NM, FLOAT32_SLACK, MIN_BOOTSTRAP_REPLICATES)
 from ..errors import CVDesignError, InputError
 from ..io.bias import is_number as _is_number
 from ..kinds import DEFAULT_KINDS, KINDS
@@ -1168,8 +1168,8 @@ _RANGE_SLACK = 1e-9
 
 #: Relative slack (of the largest extreme, at least 1) within which a reference value counts
 #: as inside the observed range: the stored extremes come from single-precision features
-#: (a design run's own frame was 6e-9 past its stored maximum of 1.019).
-_OBSERVED_SLACK = 1e-5
+#: (:data:`cvdesign.constants.FLOAT32_SLACK`).
+_OBSERVED_SLACK = FLOAT32_SLACK
 
 
 def _reference_values(spec, topology, traj, topology_path=None):

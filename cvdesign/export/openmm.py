@@ -333,10 +333,10 @@ def _check_funnel_reach(document, system, openmm):
     image of a displacement one box vector at a time, c, then b, then a, which gives the
     nearest image only within that; OpenMM's documentation, from memory). Beyond it the
     image folds the ligand-pocket vector, and the restraint (and the funnel's CV) would push
-    a ligand still inside the funnel. For a triclinic box this is below half the smallest
-    height of the box (a rhombic dodecahedron of image distance d: c_z / 2 = 0.354 d, while
-    its faces are d / 2 apart), which cvdesign's own evaluator, exact at any distance, would
-    allow."""
+    a ligand still inside the funnel. For a triclinic box this can be below what cvdesign's
+    own evaluator, exact at any distance, allows (half the smallest height of the lattice's
+    most compact cell: a rhombic dodecahedron of image distance d, written with a square xy
+    face, gives c_z / 2 = 0.354 d against 0.408 d)."""
     farthest = _funnel_reach(document)
     if farthest is None:
         return

@@ -21,7 +21,7 @@ import numpy as np
 
 from .. import geometry
 from ..bias.funnel import SHAPE_KEYS
-from ..constants import TWO_PI
+from ..constants import FLOAT32_SLACK, TWO_PI
 from ..errors import SpecError
 from ..kinds import ATOM_KINDS, KINDS
 from .ranges import FOLD_SPREADS, reachable_range, states_at_bounds
@@ -37,10 +37,8 @@ SPEC_VERSION = 1
 _PERIOD_RTOL = 1e-9
 # Relative slack of the checks of stored values in CV units against each other (a state's mean
 # within its min and max and within the reachable range, the observed range within the
-# reachable range): those values come from single-precision (float32) features, whose
-# rounding can pass an end by about 1e-7 relative; 1e-5 is the slack `cvdesign check` allows
-# on the observed range for the same reason.
-_STORED_RTOL = 1e-5
+# reachable range): see cvdesign.constants.FLOAT32_SLACK.
+_STORED_RTOL = FLOAT32_SLACK
 # Integers in a spec must fit in 64 bits (many JSON readers hold no more).
 _MAX_INT = 2**63 - 1
 
