@@ -37,19 +37,26 @@ def test_closest_pair_is_the_one_of_the_largest_overlap_averaged_over_the_folds(
     counts[0, 2, 0] = [0, 2, 2, 0]  # CV 0: states 1 and 2 the same in fold 0 ...
     counts[1, 2, 0] = [0, 0, 2, 2]  # ... half the same in fold 1: mean 0.75
     counts[:, 2, 1] = [2, 0, 0, 2]  # CV 1: state 2 half on state 0
-    assert closest_pairs(counts) == [(1, 2, 0.75), (0, 2, 0.5)]
+    assert closest_pairs(counts) == [(1, 2, 0.75, 0.0), (0, 2, 0.5, 0.0)]
     counts[0, 1, 1] = 0  # a fold without frames of a state: not defined
     assert closest_pairs(counts)[1] is None
 
 
 def test_the_warning_needs_three_states_and_an_overlap_of_at_least_the_threshold():
     entry = {"warnings": []}
-    assert not add_pair_overlap(entry, (0, 1, 0.9), ["A", "B"])  # two states: J says it
-    assert not add_pair_overlap(entry, (0, 1, PAIR_OVERLAP_WARN - 1e-9), ["A", "B", "C"])
+    assert not add_pair_overlap(entry, (0, 1, 0.9, 0.1), ["A", "B"])  # two states: J says it
+    assert not add_pair_overlap(entry, (0, 1, PAIR_OVERLAP_WARN - 1e-9, 0.0), ["A", "B", "C"])
     assert not add_pair_overlap(entry, None, ["A", "B", "C"])
     assert entry["warnings"] == []
-    assert add_pair_overlap(entry, (1, 2, PAIR_OVERLAP_WARN), ["A", "B", "C"])
+    assert add_pair_overlap(entry, (1, 2, PAIR_OVERLAP_WARN, 0.0), ["A", "B", "C"])
     assert entry["warnings"][0].startswith("states 'B' and 'C' overlap by 0.50 along it")
+    # every pair overlapping: not one pair the others hide, none is separated
+    entry = {"warnings": []}
+    assert add_pair_overlap(entry, (1, 2, 0.9, 0.6), ["A", "B", "C"])
+    assert entry["warnings"] == [
+        "every pair of the states overlaps by 0.60 or more along it (held-out overlapping "
+        "coefficient of their histograms; most, 0.90, states 'B' and 'C'): it separates none "
+        "of them well"]
 
 
 def test_a_cv_that_leaves_two_of_three_states_on_top_of_each_other_is_warned_about(
@@ -81,5 +88,5 @@ def test_a_cv_that_separates_all_three_states_is_not_warned_about(three_states):
     assert not any("overlap by" in w for w in first["warnings"])
     assert not any(n.startswith("warning: along the CV of rank") for n in res.notes)
     # the single distances below it still are
-    assert all(any("overlap by" in w for w in e["warnings"])
+    assert all(any("overlap by" in w or "overlaps by" in w for w in e["warnings"])
                for e in res.ranking[1:] if e["heldout_overlap"] >= PAIR_OVERLAP_WARN)

@@ -387,17 +387,17 @@ def closest_pairs(counts):
     Returns
     -------
     list of tuple
-        Per CV ``(i, j, overlap)``: the states ``i < j`` with the largest
-        overlapping coefficient averaged over the folds, and that average;
-        None for a CV where it is not defined (fewer than two states, or a fold
-        without frames of a state).
+        Per CV ``(i, j, overlap, least)``: the states ``i < j`` with the largest
+        overlapping coefficient averaged over the folds, that average, and the
+        smallest such average of any pair; None for a CV where it is not defined
+        (fewer than two states, or a fold without frames of a state).
 
     Examples
     --------
     >>> c = np.zeros((2, 3, 1, 2))
     >>> c[:, 0, 0] = [4.0, 0.0]; c[:, 1, 0] = [0.0, 4.0]; c[:, 2, 0] = [1.0, 3.0]
     >>> closest_pairs(c)
-    [(1, 2, 0.75)]
+    [(1, 2, 0.75, 0.0)]
     """
     per_fold = [pairwise_overlaps(counts[k]) for k in range(counts.shape[0])]
     if not per_fold or not per_fold[0][0]:
@@ -410,7 +410,7 @@ def closest_pairs(counts):
             out.append(None)
             continue
         k = int(np.argmax(mean[:, c]))  # (the first pair of the largest: a fixed order)
-        out.append((pairs[k][0], pairs[k][1], float(mean[k, c])))
+        out.append((pairs[k][0], pairs[k][1], float(mean[k, c]), float(mean[:, c].min())))
     return out
 
 
@@ -420,7 +420,13 @@ def add_pair_overlap(entry, closest, states):
     :data:`PAIR_OVERLAP_WARN`. Returns whether it warned."""
     if closest is None or len(states) < 3 or not closest[2] >= PAIR_OVERLAP_WARN:
         return False
-    i, j, value = closest
+    i, j, value, least = closest
+    if least >= PAIR_OVERLAP_WARN:  # no pair is apart: not a pair hidden by the others
+        entry["warnings"].append(
+            f"every pair of the states overlaps by {least:.2f} or more along it (held-out "
+            f"overlapping coefficient of their histograms; most, {value:.2f}, states "
+            f"{states[i]!r} and {states[j]!r}): it separates none of them well")
+        return True
     entry["warnings"].append(
         f"states {states[i]!r} and {states[j]!r} overlap by {value:.2f} along it (held-out "
         f"overlapping coefficient of their histograms; 0 apart, 1 the same): its Fisher "
