@@ -372,7 +372,7 @@ def heldout_overlap(counts):
 #: others scores high even when it leaves two on top of each other. Our choice: two
 #: Gaussian states of one spread overlap by half when their means are 1.35 spreads apart
 #: (overlapping coefficient 2 Phi(-d/2); Inman and Bradley 1989, Commun. Stat. Theory
-#: Methods 18, 3851), where a bias along the CV can hardly tell them apart.
+#: Methods 18, 3851; from memory), where a bias along the CV can hardly tell them apart.
 PAIR_OVERLAP_WARN = 0.5
 
 

@@ -399,7 +399,8 @@ def _suggest(source, config, executor, progress, checksums):
     seg_counts = first.segment_counts
     _refuse_empty_states(source, seg_counts)
     inputs = describe_inputs(source, seg_counts, steps)
-    notes += _box_notes(pool, first.diagonal, first.min_box_height)
+    folded = _folded_distances(pool, first.diagonal, first.min_box_height)
+    notes += _box_notes(pool, first.min_box_height, folded)
     boxless = missing_box_warning(source.topology_path, unboxed_files(source))
     if boxless is not None:  # (every file without a box, also beside files with one)
         notes.append("warning: " + boxless)
@@ -423,9 +424,10 @@ def _suggest(source, config, executor, progress, checksums):
     notes += screening.notes
     notes.append(_folds_note(folds, config.n_folds))
     say(f"statistics pass ({len(screening.screened)} descriptors screened)")
+    effective = _run_effective_frames(source, reweighting)  # (reweighted runs' Kish sizes)
     fm, iat_desc, iat_note, transit, scatter = _statistics_pass(
         source, base, pool, screening, folds, priors, steps, lags, lag_ps, seg_counts, config,
-        executor, reweighting)
+        executor, reweighting, effective)
     notes += iat_note
 
     short = shortlist(pool, screening, fm, priors, config, notes)
@@ -479,7 +481,7 @@ def _suggest(source, config, executor, progress, checksums):
                                         1.0 if frame_ps is None else frame_ps,
                                         _state_frames(seg_counts, reweighting),
                                         grid=_lag_grid(steps, seg_counts),
-                                        effective=_run_effective_frames(source, reweighting))
+                                        effective=effective)
         if frame_ps is not None:
             cv_times = cv_frames
             short_cvs = sum(t is not None and t[3] for t in cv_times)
@@ -500,7 +502,7 @@ def _suggest(source, config, executor, progress, checksums):
     params = config.parameters(lag_ps, folds)
     checksums = checksums.result(inputs)
     ranking, specs, record, noisy, overlapping, spread = [], [], None, [], [], []
-    folded = _folded_distances(pool, first.diagonal, first.min_box_height)
+    fraction = _effective_fraction(seg_counts, reweighting)
     for rank, (comb, fit, ov) in enumerate(zip(ranked, fits, held.overlap), 1):
         entry = ranking_entry(rank, comb, fit, ov, pool=pool, screening=screening, fm=fm,
                               priors=priors, states=source.states, config=config, lag_ps=lag_ps,
@@ -527,7 +529,7 @@ def _suggest(source, config, executor, progress, checksums):
         if add_noise_level(entry, fm, frame_ps, warn=config.objective != "slow",
                            state_frames=None if state_times is None else [
                                t * scatter.get(s, 1.0) for s, t in enumerate(state_times)],
-                           effective_fraction=_effective_fraction(seg_counts, reweighting)):
+                           effective_fraction=fraction):
             noisy.append(rank)
         if add_fold_spread_warning(entry):  # (after the noise level, which it takes in)
             spread.append(rank)
@@ -602,11 +604,12 @@ MIN_WITHIN_PAIRS = 100
 
 
 def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, lag_ps,
-                     seg_counts, config, executor, reweighting=None):
+                     seg_counts, config, executor, reweighting=None, effective=None):
     """Fold moments (full and lagged) and integrated times of the screened descriptors, and
     per state the factor by which their run means scatter more than those times allow
     (:func:`~cvdesign.pipeline.timing.scatter_factors`; empty without times; from times in
-    frames when the frame spacing is unknown, for the held-out noise level)."""
+    frames when the frame spacing is unknown, for the held-out noise level). `effective`:
+    the Kish effective frames of reweighted runs (:func:`_run_effective_frames`)."""
     feats = PoolFeaturizer(pool.subset(screening.screened))
     shift = screening.center[screening.features]
     passes = [FoldMomentsPass(feats, folds)]
@@ -658,7 +661,6 @@ def _statistics_pass(source, base, pool, screening, folds, priors, steps, lags, 
     dt = next(iter(steps.values()))
     n = feats.n_features
     by_lag = [r.by_run() for r in results[-1]]  # (folds merged once per lag)
-    effective = _run_effective_frames(source, reweighting)
     if dt is None:
         # no frame spacing: no time in ps to report, but the times in frames still give
         # the held-out noise level
@@ -1210,20 +1212,20 @@ def _folded_distances(pool, diag, min_box):
     return out
 
 
-def _box_notes(pool, diag, min_box):
+def _box_notes(pool, min_box, folded):
+    """The notes on the box; `folded` from :func:`_folded_distances`."""
     if min_box is None:
         return ["no periodic box: distances are plain Euclidean"]
     out = [f"periodic box: distances use the minimum image (smallest box height "
            f"{min_box:.3g} nm)"]
-    folded = _folded_distances(pool, diag, min_box)
     if folded:
         labels = {d.id: d.label for d in pool.descriptors}
         worst = sorted(folded, key=lambda i: (-folded[i], i))
         named = ", ".join(f"{labels[i]} ({folded[i]:.3g} nm)" for i in worst[:3])
         more = f" and {len(worst) - 3} more" if len(worst) > 3 else ""
         out.append(f"warning: {len(worst)} distance{'s' if len(worst) > 1 else ''} of the pool "
-                   f"reach{'' if len(worst) > 1 else 'es'} beyond half the smallest box height ({0.5 * min_box:.3g} nm; the "
-                   f"height is {min_box:.3g} nm), where the minimum image folds them back: "
+                   f"reach{'' if len(worst) > 1 else 'es'} beyond half the smallest box "
+                   f"height ({0.5 * min_box:.3g} nm; the height is {min_box:.3g} nm), where the minimum image folds them back: "
                    f"{named}{more}; a ranked CV with such a term says so. --cutoff governs "
                    "the pairs kept for their mean distance, not the farther pairs kept "
                    "because they separate the states best; check the box, or leave such "

@@ -196,7 +196,7 @@ def pairwise_overlaps(counts):
         ``(i, j)``, ``i < j``, in :func:`itertools.combinations` order.
     overlap : ndarray of shape (n_pairs, n_features)
         ``sum_b min(p_i(b), p_j(b))`` in [0, 1] (Inman and Bradley 1989, Commun.
-        Stat. Theory Methods 18, 3851); NaN for a feature where some state has
+        Stat. Theory Methods 18, 3851; from memory); NaN for a feature where some state has
         no counts.
 
     Examples
