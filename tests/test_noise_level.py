@@ -5,8 +5,9 @@ ratio well above zero: each fold's held-out state means differ by noise, and the
 keeps the best of many held-out scores. The noise level of a fixed direction is
 ``sum_k p_k (1 - p_k) 2 tau / n_k`` for states of ``n_k`` held-out frames and an integrated
 time of ``tau`` frames (the variance of a mean of correlated frames, Sokal 1997, in
-*Functional Integration*, Plenum; the rest our algebra), and a ranked CV below ten times it
-is warned about. Also here, on the same runs: when the common-mean timescale is a
+*Functional Integration*, Plenum; the rest our algebra; ``n_k`` every held-out fold's
+frames, pooled as the held-out score pools them), and a ranked CV below twenty times it is
+warned about. Also here, on the same runs: when the common-mean timescale is a
 process the runs resolve.
 """
 
@@ -60,7 +61,7 @@ def test_states_of_one_distribution_are_warned_about(tmp_path):
     level = first["heldout_fisher_ratio_noise"]
     # noise alone: the best held-out ratio is above zero, and within ten times the level
     assert 0 < level < first["heldout_fisher_ratio"] < NOISE_LEVEL_FACTOR * level
-    assert any("less than 10 times what noise alone gives" in w for w in first["warnings"])
+    assert any("less than 20 times what noise alone gives" in w for w in first["warnings"])
     # noise lifts the held-out ratio above the one on all frames: not a run-offset warning
     assert not any("times its Fisher ratio on all frames" in w for e in res.ranking
                    for w in e["warnings"])
@@ -68,38 +69,11 @@ def test_states_of_one_distribution_are_warned_about(tmp_path):
                                                      "rank"))
     assert "the states may not differ along any CV found" in note
     # the level from the states' times (frames of 1 ps; at least the integrated time, more
-    # when the two runs' means scatter more than it allows) and the folds' frames: two folds
-    # of one run per state, so at least sum_k (1/4) 2 tau_k / 1500 over the two states
+    # when the two runs' means scatter more than it allows) and the states' frames: two runs
+    # of 1500 frames per state, pooled, so at least sum_k (1/4) 2 tau_k / 3000 over the two
+    # states
     tau = first["integrated_time_ps"]  # the slower state's
-    assert level >= 0.25 * 2 * tau / 1500
-
-
-def test_the_noise_level_is_the_held_out_ratio_of_a_fixed_direction_on_null_data():
-    """Three states of one AR(1) law (integrated time (1 + phi) / (2 (1 - phi)) = 9.5
-    frames, Sokal 1997), unequal priors and frames, two folds: the mean held-out Fisher ratio
-    of the one feature (a fixed direction) over many draws is sum_k p_k (1 - p_k) 2 tau /
-    n_k (our algebra; a review's Monte Carlo of the same case gave 0.0176 +- 0.0008 against
-    0.0191)."""
-    from cvdesign.pipeline.ranking import heldout_noise_level
-    from cvdesign.search import FoldMoments, heldout_score
-    from cvdesign.stats.moments import Moments
-
-    rng = np.random.default_rng(12)
-    phi, frames, priors = 0.9, (1000, 300, 3000), np.array([0.5, 0.3, 0.2])
-    tau = (1 + phi) / (2 * (1 - phi))
-
-    def fold(n):
-        x = lfilter([1.0], [1.0, -phi], rng.normal(0.0, np.sqrt(1 - phi * phi), n + 200))
-        return Moments.from_data(x[200:, None])  # (past the start-up)
-
-    scores, fm = [], None
-    for _ in range(300):
-        fm = FoldMoments([[fold(n) for _ in range(2)] for n in frames], priors=priors)
-        scores.append(heldout_score(fm, [0])[0])
-    level = heldout_noise_level(fm, tau)
-    assert level == pytest.approx(np.sum(priors * (1 - priors) * 2 * tau / np.array(frames)))
-    se = np.std(scores) / np.sqrt(len(scores))
-    assert abs(np.mean(scores) - level) < 4 * se + 0.1 * level
+    assert level >= 0.25 * 2 * tau / 3000
 
 
 def test_runs_each_at_an_offset_of_their_own_are_warned_about(tmp_path):
@@ -108,7 +82,7 @@ def test_runs_each_at_an_offset_of_their_own_are_warned_about(tmp_path):
     # the held-out ratio of rank 1 was 44 times a level from the integrated times alone
     res = _suggest(tmp_path, 0.0, seed=3, n_runs=3, run_offset_nm=0.02)
     first = res.ranking[0]
-    assert any("less than 10 times what noise alone gives" in w for w in first["warnings"])
+    assert any("less than 20 times what noise alone gives" in w for w in first["warnings"])
     # three folds of one run per state: the states' own times alone give at most
     # 2 (1/4) 2 tau / 1500 with tau the slower state's; the runs' scatter lifts it above
     assert first["heldout_fisher_ratio_noise"] > first["integrated_time_ps"] / 1500
@@ -129,12 +103,15 @@ def test_reweighted_runs_get_the_noise_level_and_the_runs_too_short_check(tmp_pa
     kw = dict(kinds=("distance",), max_terms=2, n_suggestions=3, n_bootstrap=0)
     plain = suggest(Source.from_states(top, files), **kw)
     biased = suggest(Source.from_states(top, files, bias=bias, temperature=300.0), **kw)
-    a, b = plain.ranking[0], biased.ranking[0]
+    # one CV in both rankings (their orders may differ: the weights move the scores)
+    a = plain.ranking[0]
+    b = next(e for e in biased.ranking if [t["descriptor"] for t in e["terms"]] ==
+             [t["descriptor"] for t in a["terms"]])
     assert b["heldout_fisher_ratio_noise"] is not None
     # fewer effective frames than frames: a higher level, of the same order
     assert a["heldout_fisher_ratio_noise"] < b["heldout_fisher_ratio_noise"] < \
         3 * a["heldout_fisher_ratio_noise"]
-    assert any("less than 10 times what noise alone gives" in w and
+    assert any("less than 20 times what noise alone gives" in w and
                "effective ones where reweighted" in w for w in b["warnings"])
     assert any(n.startswith("integrated times: for") and "too short" in n
                for n in biased.notes)
@@ -161,37 +138,49 @@ def test_files_that_store_no_times_still_get_the_noise_level_in_frames(tmp_path)
                                                            timed["terms"]]
     assert untimed["heldout_fisher_ratio_noise"] == pytest.approx(
         timed["heldout_fisher_ratio_noise"], rel=1e-6)  # (times in ps, then frames)
-    assert any("less than 10 times what noise alone gives" in w for w in untimed["warnings"])
+    assert any("less than 20 times what noise alone gives" in w for w in untimed["warnings"])
 
 
-def test_a_held_out_ratio_far_above_the_ratio_on_all_frames_is_warned_about(tmp_path):
+def test_runs_at_offsets_of_their_own_are_counted_and_warned_about(tmp_path):
     """States that differ (C1 moved by 0.3 nm), but every run displaced by an offset of its
     own (sd 0.05 nm): each held-out fold holds one run per state, whose spread is far below
-    the state's over all its runs, so the held-out ratio of rank 1 came out 2.6 times the
-    one on all frames (seed 3), well above its noise level, without a word. (With an offset
-    as large beside a shift of 0.1 nm the CV is near its noise level instead, and that
-    warning alone is given.)"""
+    the state's over all its runs. Scored fold by fold, rank 1 was the single distance
+    C1-C6, its held-out ratio 2.6 times the one on all frames (seed 3), without a word.
+    Pooled, the held-out score counts the offsets: rank 1 is now the CV that separates the
+    states best over all frames (a pair of distances, 24.5 against 15.1), C1-C6 comes
+    lower, and its folds' own ratios, far above its ratio on all frames, are warned
+    about."""
     top, files = _runs(tmp_path, 0.3, 3, n_runs=3, run_offset_nm=0.05)
     res = suggest(Source.from_states(top, files), kinds=("distance",), max_terms=2,
                   n_suggestions=3, n_bootstrap=0)
     first = res.ranking[0]
-    level = first["heldout_fisher_ratio_noise"]
-    assert first["heldout_fisher_ratio"] > NOISE_LEVEL_FACTOR * level
-    assert first["heldout_fisher_ratio"] - level > FOLD_SPREAD_FACTOR * first["fisher_ratio_all"]
-    assert any(w.startswith("its held-out Fisher ratio (") and "times its Fisher ratio on "
-               "all frames" in w for w in first["warnings"])
-    assert any(n.startswith("warning: the held-out Fisher ratio of rank 1") and "times its "
-               "ratio on all frames" in n for n in res.notes)
-    for e in res.ranking:  # exactly those above the factor, less their noise level
-        warned = any("times its Fisher ratio on all frames" in w for w in e["warnings"])
+    assert first["heldout_fisher_ratio"] > NOISE_LEVEL_FACTOR * first["heldout_fisher_ratio_noise"]
+    assert first["fisher_ratio_all"] == max(e["fisher_ratio_all"] for e in res.ranking)
+    for e in res.ranking:  # pooled: never far above the ratio on all frames
+        assert e["heldout_fisher_ratio"] < 1.3 * e["fisher_ratio_all"]
+    single = next(e for e in res.ranking if [t["descriptor"] for t in e["terms"]] ==
+                  ["distance:0-5"])
+    assert single["rank"] > 1
+    assert np.mean(single["heldout_fisher_ratio_folds"]) > 2 * single["fisher_ratio_all"]
+    assert any(w.startswith("within each held-out fold its Fisher ratio averages") and
+               "times its Fisher ratio on all frames" in w for w in single["warnings"])
+    for e in res.ranking:  # never below the noise screen, always the folds far above
+        warned = any(w.startswith("within each held-out fold") for w in e["warnings"])
         j, lv = e["heldout_fisher_ratio"], e["heldout_fisher_ratio_noise"]
-        assert warned == (j >= NOISE_LEVEL_FACTOR * lv and
-                          j - lv > FOLD_SPREAD_FACTOR * e["fisher_ratio_all"])
+        if warned:
+            assert j >= NOISE_LEVEL_FACTOR * lv
+            assert np.mean(e["heldout_fisher_ratio_folds"]) > \
+                FOLD_SPREAD_FACTOR * e["fisher_ratio_all"]
+    warned_first = any(w.startswith("within each held-out fold") for w in first["warnings"])
+    assert warned_first == any(
+        n.startswith("warning: within each held-out fold the Fisher ratio of rank 1") and
+        "the ranking counts that spread" in n for n in res.notes)
 
 
 def test_states_that_differ_are_not_warned_about(tmp_path):
     # C1 moved by 0.04 nm, twice the spread of its jitter: a held-out ratio near 0.5, about
-    # 45 times the level (seed 3; 0.02 nm gave 12 times, a null run up to 10 times)
+    # 100 times the level (seeds 0-7: 64 to 115; 0.02 nm gave 15 to 42 times, null runs 3
+    # to 35 times)
     res = _suggest(tmp_path, 0.04)
     first = res.ranking[0]
     assert first["heldout_fisher_ratio"] > NOISE_LEVEL_FACTOR * \
@@ -199,6 +188,7 @@ def test_states_that_differ_are_not_warned_about(tmp_path):
     # runs that agree: the held-out ratio near the one on all frames, no warning
     assert first["heldout_fisher_ratio"] < 1.2 * first["fisher_ratio_all"]
     assert not any("times its Fisher ratio on all frames" in w for w in first["warnings"])
+    assert np.mean(first["heldout_fisher_ratio_folds"]) < 1.2 * first["fisher_ratio_all"]
     assert not any("noise alone" in w for w in first["warnings"])
     assert not any("noise alone" in n for n in res.notes)
 

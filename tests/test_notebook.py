@@ -113,8 +113,8 @@ def test_repr_html_is_well_formed_and_shows_the_top_table_of_summary_md(demo_res
     head = [th.text for th in root.iter("th")]
     # the ± after J is named where it is shown (it is there also without bootstrap)
     assert head[:3] == ["rank", "spec", "held-out J ± SE over folds"]
-    assert ("± its standard error over the cross-validation folds (from the folds' scores, so "
-            "given also when there are no bootstrap uncertainties)") in demo_result.summary_md()
+    assert ("± its jackknife standard error over the folds (from the folds, so given also "
+            "when there are no bootstrap uncertainties)") in demo_result.summary_md()
     rows = [[td.text or "" for td in tr.iter("td")] for tr in root.find("table/tbody")]
     assert rows == _markdown_top_rows(demo_result.summary_md())
     assert len(rows) == min(5, len(demo_result.ranking))

@@ -30,15 +30,18 @@ def test_pairwise_overlaps_give_each_pair_and_their_worst_is_the_overlap_coeffic
     np.testing.assert_array_equal(overlap_coefficient(counts), ov.max(axis=0))
 
 
-def test_closest_pair_is_the_one_of_the_largest_overlap_averaged_over_the_folds():
+def test_closest_pair_is_the_one_of_the_largest_overlap_of_the_folds_pooled():
     counts = np.zeros((2, 3, 2, 4))
     counts[:, 0, :] = [4, 0, 0, 0]
     counts[:, 1, :] = [0, 2, 2, 0]
     counts[0, 2, 0] = [0, 2, 2, 0]  # CV 0: states 1 and 2 the same in fold 0 ...
-    counts[1, 2, 0] = [0, 0, 2, 2]  # ... half the same in fold 1: mean 0.75
+    counts[1, 2, 0] = [0, 0, 2, 2]  # ... half the same in fold 1: pooled, state 1 is
+    # [0, 1/2, 1/2, 0] and state 2 [0, 1/4, 1/2, 1/4]: overlap 1/4 + 1/2 = 0.75
     counts[:, 2, 1] = [2, 0, 0, 2]  # CV 1: state 2 half on state 0
     assert closest_pairs(counts) == [(1, 2, 0.75, 0.0), (0, 2, 0.5, 0.0)]
-    counts[0, 1, 1] = 0  # a fold without frames of a state: not defined
+    counts[0, 1, 1] = 0  # a fold without frames of a state: the other fold's count
+    assert closest_pairs(counts)[1] == (0, 2, 0.5, 0.0)
+    counts[:, 1, 1] = 0  # a state without frames at all: not defined
     assert closest_pairs(counts)[1] is None
 
 

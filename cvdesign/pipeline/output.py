@@ -160,7 +160,7 @@ class Suggestions:
      rank 1 (cv-01.json), weight and term:
        -1 cos(dihedral LCH1:C3-C4-C5-C6)
        -0.00025 sin(dihedral LCH1:C3-C4-C5-C6)
-     held-out J 1.26e+03 +/- 33, overlap 0.000, autocorr. 0.999
+     held-out J 1.26e+03 +/- 34, overlap 0.000, autocorr. 0.999
      (starting points to validate, not guarantees)>
     """
 
@@ -331,11 +331,14 @@ class Suggestions:
         out += ["", "## What was done", ""] + [f"- {n}" for n in self.notes]
         out += ["", "## Top suggestions", "",
                 "Held-out J is the Fisher ratio (between-state over within-state variance "
-                "of the CV, dimensionless) on frames not used to fit it (the best of many "
+                "of the CV, dimensionless) on frames not used to fit it: each "
+                "cross-validation fold's frames along the direction fitted without them, "
+                "the folds pooled, so that runs of a state at different places along the "
+                "CV count against it (the best of many "
                 "such scores, so somewhat optimistic; ranking.csv's "
                 "heldout_fisher_ratio_noise is what noise alone gives one fixed direction), "
-                "± its standard error over the cross-validation folds (from the folds' "
-                "scores, so given also when there are no bootstrap uncertainties); "
+                "± its jackknife standard error over the folds (from the folds, so given "
+                "also when there are no bootstrap uncertainties); "
                 "overlap is the "
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
@@ -596,8 +599,8 @@ _REPR_WIDTH, _REPR_TERM_WIDTH, _REPR_TERMS = 100, 72, 3
 _J_HEAD = "held-out J ± SE over folds"
 
 _TOP_LEGEND = ("Held-out J: Fisher ratio (between-state over within-state variance of the CV, "
-               "dimensionless) on frames not used to fit it, ± its standard error over "
-               "the folds; overlap: 0 = states fully separated along the CV, 1 = identical; "
+               "dimensionless) on frames not used to fit it, the held-out folds pooled, ± its "
+               "jackknife standard error over the folds; overlap: 0 = states fully separated along the CV, 1 = identical; "
                "autocorr.: held-out normalized autocorrelation at the lag; intervals: nominal "
                "95 % block bootstrap; selection: fraction of bootstrap refits keeping the "
                "descriptor. Every column: summary.md and ranking.csv of the output directory.")

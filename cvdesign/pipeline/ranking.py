@@ -13,19 +13,20 @@ from ..fit import rayleigh_quotient, timescales_from_eigenvalues
 from ..score.card import card_intervals
 from ..score.redundancy import descriptor_correlation, redundancy_graph, representatives
 from ..score.univariate import overlap_coefficient, pairwise_overlaps
-from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction,
-                      greedy_search, heldout_score, heldout_scores, rank_combinations,
-                      slow_direction, state_arrays, within_states)
+from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction, greedy_search,
+                      heldout_autocorrelation, heldout_fisher_along, heldout_score,
+                      heldout_scores, rank_combinations, slow_direction, state_arrays,
+                      within_states)
 from ..stats.bootstrap import (MIN_INTERVAL_BLOCKS, block_bootstrap, hull_interval,
                                percentile_interval)
 from ..stats.moments import merge_all
 
 __all__ = ["SELECTION_REPLICATES", "SELECTION_POOL", "NEAR_FROZEN_FISHER", "Fit", "Shortlist",
            "shortlist", "search", "fit_ranked", "kinetic_map_scale", "bootstrap_ranked",
-           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap", "fisher_along",
+           "ranking_entry", "card_interval_rows", "hints_for", "heldout_overlap",
            "add_ranges", "NOISE_LEVEL_FACTOR", "heldout_noise_level", "add_noise_level",
            "PAIR_OVERLAP_WARN", "closest_pairs", "add_pair_overlap", "FOLD_SPREAD_FACTOR",
-           "add_fold_spread_warning"]
+           "add_fold_spread_warning", "fold_noise_level"]
 
 #: Bootstrap refits of the search for selection frequencies, and the number of best
 #: shortlisted descriptors (besides the ranked terms) they may choose from.
@@ -319,55 +320,33 @@ def card_interval_rows(card, card_desc, card_feat, pool, center, priors, constan
     return out
 
 
-def _mean_finite(values):
-    """Mean of the finite values (NaN when there are none: not measured)."""
-    v = np.asarray(values, dtype=np.float64)
-    v = v[np.isfinite(v)]
-    return float(v.mean()) if v.size else float("nan")
-
-
-def fisher_along(fm, idx, directions):
-    """Held-out Fisher ratio of each fold along a given direction per fold.
+def heldout_overlap(counts):
+    """The states' overlap along each CV, held out: the overlapping coefficient of the
+    histograms of the held-out folds pooled.
 
     Parameters
     ----------
-    fm : FoldMoments
-    idx : array-like of int
-        Features of the CV.
-    directions : sequence of ndarray
-        The CV's direction (on `idx`) fitted without each fold.
+    counts : ndarray of shape (n_folds, n_states, n_cvs, n_bins)
+        Held-out histograms, each fold's along its own direction, on bins common to
+        every fold (:func:`~cvdesign.search.scaled_fold_directions`).
 
     Returns
     -------
-    ndarray of shape (n_folds,)
-        Between- over within-state variance of each held-out fold along its direction
-        (arithmetic within-state mean, as the held-out scores; at most 1e12).
+    ndarray of shape (n_cvs,)
 
     Examples
     --------
-    >>> import numpy as np
-    >>> from cvdesign.search import FoldMoments
-    >>> from cvdesign.stats.moments import Moments
-    >>> rng = np.random.default_rng(0)
-    >>> fm = FoldMoments([[Moments.from_data(rng.normal([0, m], 1, (4000, 2)))
-    ...                    for _ in range(2)] for m in (0.0, 2.0)])
-    >>> np.round(fisher_along(fm, [0, 1], [np.array([0.0, 1.0])] * 2), 1).tolist()
-    [1.0, 1.0]
+    >>> c = np.zeros((2, 2, 1, 3))
+    >>> c[0, 0, 0] = [4, 0, 0]; c[0, 1, 0] = [0, 4, 0]  # fold 1: the states apart
+    >>> c[1, 0, 0] = [0, 4, 0]; c[1, 1, 0] = [0, 0, 4]  # fold 2: apart, one bin higher
+    >>> heldout_overlap(c).tolist()  # pooled, the states share one bin of two
+    [0.5]
     """
-    out = np.empty(fm.n_folds)
-    for k in range(fm.n_folds):
-        means, covs = state_arrays(fm.test(k), idx)
-        out[k] = min(rayleigh_quotient(directions[k], means, covs, fm.priors), 1e12)
-    return out
-
-
-def heldout_overlap(counts):
-    """Mean over folds of the states' overlap along each CV; counts (fold, state, cv, bin)."""
-    return np.mean([overlap_coefficient(counts[k]) for k in range(counts.shape[0])], axis=0)
+    return overlap_coefficient(np.asarray(counts).sum(axis=0))
 
 
 #: With three or more states, a ranked CV along which two of them overlap by at least this
-#: much (held-out overlapping coefficient of their histograms, mean over the folds) gets a
+#: much (overlapping coefficient of their held-out histograms, the folds pooled) gets a
 #: warning: the Fisher ratio pools every state, so a CV that sets one state far from the
 #: others scores high even when it leaves two on top of each other. Our choice: two
 #: Gaussian states of one spread overlap by half when their means are 1.35 spreads apart
@@ -382,15 +361,16 @@ def closest_pairs(counts):
     Parameters
     ----------
     counts : ndarray of shape (n_folds, n_states, n_cvs, n_bins)
-        Held-out histograms.
+        Held-out histograms on bins common to every fold (as :func:`heldout_overlap`),
+        pooled over the folds.
 
     Returns
     -------
     list of tuple
         Per CV ``(i, j, overlap, least)``: the states ``i < j`` with the largest
-        overlapping coefficient averaged over the folds, that average, and the
-        smallest such average of any pair; None for a CV where it is not defined
-        (fewer than two states, or a fold without frames of a state).
+        overlapping coefficient of their pooled held-out histograms, that coefficient,
+        and the smallest of any pair; None for a CV where it is not defined (fewer than
+        two states, or a state without frames).
 
     Examples
     --------
@@ -399,18 +379,17 @@ def closest_pairs(counts):
     >>> closest_pairs(c)
     [(1, 2, 0.75, 0.0)]
     """
-    per_fold = [pairwise_overlaps(counts[k]) for k in range(counts.shape[0])]
-    if not per_fold or not per_fold[0][0]:
+    pairs, overlaps = pairwise_overlaps(np.asarray(counts).sum(axis=0))
+    if not pairs:
         return [None] * counts.shape[2]
-    pairs = per_fold[0][0]
-    mean = np.mean([ov for _, ov in per_fold], axis=0)  # (pair, cv)
     out = []
-    for c in range(mean.shape[1]):
-        if not np.isfinite(mean[:, c]).all():
+    for c in range(overlaps.shape[1]):
+        if not np.isfinite(overlaps[:, c]).all():
             out.append(None)
             continue
-        k = int(np.argmax(mean[:, c]))  # (the first pair of the largest: a fixed order)
-        out.append((pairs[k][0], pairs[k][1], float(mean[k, c]), float(mean[:, c].min())))
+        k = int(np.argmax(overlaps[:, c]))  # (the first pair of the largest: a fixed order)
+        out.append((pairs[k][0], pairs[k][1], float(overlaps[k, c]),
+                    float(overlaps[:, c].min())))
     return out
 
 
@@ -607,17 +586,16 @@ def bootstrap_ranked(held, fits, short, screening, priors, fm, config, has_lag,
                     boot_fm, ranked_idx, objective="separate", method=search["method"],
                     shrinkage=search["shrinkage"])]
             else:  # 'slow': along the TICA directions refitted without each fold
-                fisher = [float(fisher_along(boot_fm, p_idx, [
+                fisher = [heldout_fisher_along(boot_fm, p_idx, [
                     cv_direction(boot_fm, p_idx, objective="slow", fold=k)
-                    for k in range(n_folds)]).mean()) for p_idx in ranked_idx]
+                    for k in range(n_folds)])[0] for p_idx in ranked_idx]
             for ci, (p_idx, _) in enumerate(p_fits):
                 held.append(scores[ci][0])
                 held.append(fisher[ci])
                 held.append(overlap[ci])
                 for along in (boot_fm.lagged_test, boot_fm.within_test):
-                    held.append(_mean_finite([autocorrelation_along(fold_ws[ci][k], along(k),
-                                                                    p_idx)
-                                              for k in range(n_folds)]) if has_lag else np.nan)
+                    held.append(heldout_autocorrelation(boot_fm, p_idx, fold_ws[ci], along)
+                                if has_lag else np.nan)
             return np.concatenate([hit, held])
 
         n_sel = min(n_bootstrap, SELECTION_REPLICATES)
@@ -681,13 +659,15 @@ def _rigid_cv_warnings(state_stats, j_all, heldout):
 #: A ranked CV whose held-out Fisher ratio is below this many times
 #: :func:`heldout_noise_level` gets a warning: the search keeps the best of thousands of
 #: held-out scores, which lifts the best above the level of one fixed direction (our
-#: choice: with two states drawn from one distribution, the best came 3 to 11 times that
-#: level in our tests, two or three runs per state; a rough screen, not a test: a null
-#: case can pass it, and a weak real difference can be warned about).
-NOISE_LEVEL_FACTOR = 10.0
+#: choice: with two states drawn from one distribution, two or three runs per state, with
+#: and without an offset of each run's own, the best came 3 to 35 times that level in 64
+#: tests, 9 in 10 below 19; states whose mean moved by one spread of the fastest jitter
+#: came 15 to 42 times, by two spreads 64 to 115; a rough screen, not a test: a null case
+#: can pass it, and a weak real difference can be warned about).
+NOISE_LEVEL_FACTOR = 20.0
 
 
-def heldout_noise_level(fm, tau_frames, effective_fraction=None):
+def heldout_noise_level(fm, tau_frames, effective_fraction=None, *, per_fold=False):
     """The held-out Fisher ratio that noise alone gives a fixed direction, were the states
     one distribution.
 
@@ -695,11 +675,16 @@ def heldout_noise_level(fm, tau_frames, effective_fraction=None):
     (frames), each off the common mean by a noise of variance ``sigma^2 2 tau / n_k``
     (Sokal 1997, in *Functional Integration*, Plenum), the expected between-state variance
     ``sum_k p_k (m_k - m)^2`` (``m = sum_k p_k m_k``) is ``sigma^2 sum_k p_k (1 - p_k)
-    2 tau / n_k`` (our algebra), so the ratio over ``sigma^2`` is that sum; averaged over
-    the folds as the held-out score is. A reweighted state's ``n_k`` is its fold's weight
-    (the weights average 1 per frame) times the state's Kish fraction (effective over
-    actual frames; Kish 1965, *Survey Sampling*, Wiley): a rough count when the weights
-    are not spread evenly over the folds.
+    2 tau / n_k`` (our algebra), so the ratio over ``sigma^2`` is that sum. The held-out
+    score pools the folds, so ``n_k`` counts the state's frames in every fold (it counts
+    the held-out states only in the order the training folds give them, which for such
+    states is about half the time: its mean is below the level, 0.87 times it for two
+    states in three folds, tests/test_pooled_heldout.py); with
+    `per_fold`, the level of one fold's ratio on its own (``n_k`` that fold's frames),
+    averaged over the folds. A reweighted state's ``n_k`` is its weight (the weights
+    average 1 per frame) times the state's Kish fraction (effective over actual frames;
+    Kish 1965, *Survey Sampling*, Wiley): a rough count when the weights are not spread
+    evenly over the folds.
 
     Parameters
     ----------
@@ -713,6 +698,9 @@ def heldout_noise_level(fm, tau_frames, effective_fraction=None):
     effective_fraction : array-like of shape (n_states,), default=None
         Per state, effective over actual frames (1 for a state of unweighted frames);
         None: 1 for every state.
+    per_fold : bool, default=False
+        The level of the folds' ratios each on its own (``heldout_fisher_ratio_folds``)
+        instead of the pooled one.
 
     Returns
     -------
@@ -726,23 +714,36 @@ def heldout_noise_level(fm, tau_frames, effective_fraction=None):
     >>> rng = np.random.default_rng(0)
     >>> fm = FoldMoments([[Moments.from_data(rng.normal(0, 1, (1000, 1))) for _ in range(2)]
     ...                   for _ in range(2)])
-    >>> heldout_noise_level(fm, 0.5)  # 2 (1/4) (2 x 0.5 / 1000) = 0.0005
+    >>> heldout_noise_level(fm, 0.5)  # 2 (1/4) (2 x 0.5 / 2000) = 0.00025
+    0.00025
+    >>> heldout_noise_level(fm, 0.5, [1.0, 0.25])  # the second state: 500 effective frames
+    0.000625
+    >>> heldout_noise_level(fm, 0.5, per_fold=True)  # 1000 frames a fold
     0.0005
-    >>> heldout_noise_level(fm, 0.5, [1.0, 0.25])  # the second state: 250 effective frames
-    0.00125
     """
     p = np.asarray(fm.priors, dtype=np.float64)
     tau_frames = np.broadcast_to(np.asarray(tau_frames, dtype=np.float64), p.shape)
     fraction = (np.ones_like(p) if effective_fraction is None
                 else np.asarray(effective_fraction, dtype=np.float64))
-    levels = []
-    for k in range(fm.n_folds):
-        n = np.array([fm.moments[s][k].count for s in range(fm.n_states)], dtype=np.float64)
-        n = n * fraction
-        if not (n > 0).all():
-            return None
-        levels.append(float(np.sum(p * (1.0 - p) * 2.0 * tau_frames / n)))
-    return float(np.mean(levels))
+    n = np.array([[fm.moments[s][k].count for s in range(fm.n_states)]
+                  for k in range(fm.n_folds)], dtype=np.float64) * fraction
+    if not (n > 0).all():
+        return None
+    if not per_fold:
+        return float(np.sum(p * (1.0 - p) * 2.0 * tau_frames / n.sum(axis=0)))
+    return float(np.mean([np.sum(p * (1.0 - p) * 2.0 * tau_frames / row) for row in n]))
+
+
+def _noise_times(entry, fm, frame_ps, state_frames):
+    """Per state, the time in frames its mean varies by (`state_frames`, or else the CV's
+    ``integrated_time_ps``); None when a state's is unknown."""
+    tau_ps = entry.get("integrated_time_ps")
+    times = np.full(fm.n_states, tau_ps / frame_ps if tau_ps is not None and frame_ps
+                    else np.nan)
+    if state_frames is not None:  # a state without its own time keeps the CV's
+        own = np.asarray(state_frames, dtype=np.float64)
+        times = np.where(np.isfinite(own), own, times)
+    return times if np.isfinite(times).all() else None
 
 
 def add_noise_level(entry, fm, frame_ps, *, warn=True, state_frames=None,
@@ -753,15 +754,8 @@ def add_noise_level(entry, fm, frame_ps, *, warn=True, state_frames=None,
     frames when reweighted; None when a state's time is unknown) and, when
     `warn`, a warning when the held-out Fisher ratio is below :data:`NOISE_LEVEL_FACTOR`
     times it. Returns whether it warned."""
-    tau_ps = entry.get("integrated_time_ps")
-    level = None
-    times = np.full(fm.n_states, tau_ps / frame_ps if tau_ps is not None and frame_ps
-                    else np.nan)
-    if state_frames is not None:  # a state without its own time keeps the CV's
-        own = np.asarray(state_frames, dtype=np.float64)
-        times = np.where(np.isfinite(own), own, times)
-    if np.isfinite(times).all():
-        level = heldout_noise_level(fm, times, effective_fraction)
+    times = _noise_times(entry, fm, frame_ps, state_frames)
+    level = None if times is None else heldout_noise_level(fm, times, effective_fraction)
     entry["heldout_fisher_ratio_noise"] = level
     j = entry["heldout_fisher_ratio"]
     if not warn or level is None or not j < NOISE_LEVEL_FACTOR * level:
@@ -771,8 +765,8 @@ def add_noise_level(entry, fm, frame_ps, *, warn=True, state_frames=None,
     entry["warnings"].append(
         f"its held-out Fisher ratio ({j:.3g}) is less than {NOISE_LEVEL_FACTOR:g} times "
         f"what noise alone gives a fixed direction with these runs ({level:.3g}, from the "
-        f"CV's integrated times in the states, the scatter of their run means, and each "
-        f"fold's frames{', effective ones where reweighted' if reweighted else ''}): the "
+        f"CV's integrated times in the states, the scatter of their run means, and the "
+        f"states' frames{', effective ones where reweighted' if reweighted else ''}): the "
         "states may not "
         "differ along it at all, since the search keeps the best of many held-out scores, "
         "which lifts the best above that level; give more or longer runs before trusting "
@@ -780,48 +774,64 @@ def add_noise_level(entry, fm, frame_ps, *, warn=True, state_frames=None,
     return True
 
 
-#: A ranked CV whose held-out Fisher ratio exceeds its Fisher ratio on all frames by more
-#: than this factor gets a warning (our choice: states whose runs agree gave ratios of
-#: 1.02-1.03 in our tests, runs each at an offset of its own 1.3 to 5.5).
+def fold_noise_level(entry, fm, frame_ps, *, state_frames=None, effective_fraction=None):
+    """:func:`heldout_noise_level` of the folds' ratios each on its own (``per_fold``),
+    from the times :func:`add_noise_level` takes; None when a state's time is unknown."""
+    times = _noise_times(entry, fm, frame_ps, state_frames)
+    return None if times is None else heldout_noise_level(fm, times, effective_fraction,
+                                                          per_fold=True)
+
+
+#: A ranked CV whose held-out Fisher ratio within each fold (the mean of
+#: ``heldout_fisher_ratio_folds``) exceeds its Fisher ratio on all frames by more than this
+#: factor gets a warning (our choice: states whose runs agree gave ratios of 1.02-1.03 in
+#: our tests, runs each at an offset of its own 1.3 to 5.5).
 FOLD_SPREAD_FACTOR = 1.5
 
 
-def add_fold_spread_warning(entry):
-    """Warn in `entry` when its held-out Fisher ratio is more than :data:`FOLD_SPREAD_FACTOR`
-    times ``fisher_ratio_all``; returns whether it warned.
+def add_fold_spread_warning(entry, fold_level=None):
+    """Warn in `entry` when its held-out Fisher ratio within the folds (the mean of
+    ``heldout_fisher_ratio_folds``) is more than :data:`FOLD_SPREAD_FACTOR` times
+    ``fisher_ratio_all``; returns whether it warned.
 
-    The held-out ratio divides by the spread within each held-out fold (one trajectory per
+    A fold's ratio on its own divides by the spread within that fold (one trajectory per
     state with whole-trajectory folds, one block with block folds); when a state's runs or
     blocks sit at different means along the CV (runs not equilibrated, sub-states they do
     not cross between), that spread is smaller than the state's over all its frames, and
-    the held-out ratio exceeds the one on all frames, which is the separation a bias along
-    the CV meets. Noise lifts the held-out ratio more than the one on all frames (each fold
-    has fewer frames): a CV below :data:`NOISE_LEVEL_FACTOR` times its noise level is left
-    to that warning, and otherwise the held-out ratio less its noise level is compared.
+    the folds' ratios exceed the one on all frames, which is the separation a bias along
+    the CV meets. The held-out score pools the folds and so counts that spread; the
+    warning says that the runs disagree along the CV. Noise lifts a fold's ratio more than
+    the one on all frames (a fold has fewer frames): a CV below :data:`NOISE_LEVEL_FACTOR`
+    times its noise level is left to that warning, and otherwise the folds' mean ratio less
+    its own noise level (`fold_level`, :func:`fold_noise_level`; None: 0) is compared.
 
     Examples
     --------
-    >>> e = {"heldout_fisher_ratio": 4.6, "fisher_ratio_all": 0.84, "warnings": []}
-    >>> add_fold_spread_warning(e), e["warnings"][0][:60]
-    (True, 'its held-out Fisher ratio (4.6) is 5.5 times its Fisher rati')
+    >>> e = {"heldout_fisher_ratio": 0.9, "heldout_fisher_ratio_folds": [4.1, 5.1],
+    ...      "fisher_ratio_all": 0.84, "warnings": []}
+    >>> add_fold_spread_warning(e), e["warnings"][0][:66]
+    (True, 'within each held-out fold its Fisher ratio averages 4.6, 5.5 times')
     """
-    held, whole = entry.get("heldout_fisher_ratio"), entry.get("fisher_ratio_all")
+    folds, whole = entry.get("heldout_fisher_ratio_folds"), entry.get("fisher_ratio_all")
+    held = entry.get("heldout_fisher_ratio")
     level = entry.get("heldout_fisher_ratio_noise") or 0.0
-    if held is None or whole is None or not whole > 0:
+    if not folds or held is None or whole is None or not whole > 0:
         return False
-    # noise lifts the held-out ratio (about the number of folds times more than the ratio on
-    # all frames): a CV near the noise level has its own warning, and above it only the
-    # excess over the level counts
-    if held < NOISE_LEVEL_FACTOR * level or not held - level > FOLD_SPREAD_FACTOR * whole:
+    within = float(np.mean(folds))
+    # a CV near the noise level has its own warning, and above it only the folds' excess
+    # over their own level counts
+    if held < NOISE_LEVEL_FACTOR * level or \
+            not within - (fold_level or 0.0) > FOLD_SPREAD_FACTOR * whole:
         return False
     entry["warnings"].append(
-        f"its held-out Fisher ratio ({held:.3g}) is {held / whole:.2g} times its Fisher ratio "
-        f"on all frames ({whole:.3g}): the held-out ratio divides by the spread within each "
-        "held-out fold (one trajectory, or one block, per state), and a state's runs or "
-        "blocks sit at different means along this CV (runs not equilibrated, or sub-states "
-        "they do not cross between), so over all its frames the state is spread wider; the "
-        "ratio on all frames is the separation a bias along it meets; give longer runs, or "
-        "check the runs of each state against each other")
+        f"within each held-out fold its Fisher ratio averages {within:.3g}, "
+        f"{within / whole:.2g} times its Fisher ratio on all frames ({whole:.3g}): a fold "
+        "on its own divides by the spread within it (one trajectory, or one block, per "
+        "state), and a state's runs or blocks sit at different means along this CV (runs "
+        "not equilibrated, or sub-states they do not cross between), so over all its "
+        "frames the state is spread wider; the held-out ratio pools the folds and counts "
+        f"that ({held:.3g}), as a bias along the CV meets it; give longer runs, or check "
+        "the runs of each state against each other")
     return True
 
 
@@ -857,24 +867,22 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
     center, scale = screening.center, screening.scale
     pooled = fm.pooled()
     objective, method = config.objective, config.method
-    # held-out separation (arithmetic Fisher ratio) along the CV's own fold directions: for
-    # 'separate' and 'both' the discriminant refitted without each fold, by the computation
-    # of the held-out score (with 'separate' the same numbers, bit for bit); for 'slow' the
-    # TICA directions
+    # held-out separation (arithmetic Fisher ratio, the held-out folds pooled) along the
+    # CV's own fold directions: for 'separate' and 'both' the discriminant refitted without
+    # each fold, by the computation of the held-out score (with 'separate' the same
+    # numbers, bit for bit); for 'slow' the TICA directions
     if objective == "slow":
-        sep = fisher_along(fm, idx, fold_w)
-        sep_mean = float(sep.mean())
-        sep_se = float(sep.std(ddof=1) / math.sqrt(len(sep))) if len(sep) > 1 else 0.0
+        sep_mean, sep_se, sep = heldout_fisher_along(fm, idx, fold_w)
     else:
         sep_mean, sep_se, sep = heldout_scores(fm, [idx], objective="separate", method=method,
                                                shrinkage=config.shrinkage)[0]
-    # held-out autocorrelation along the fold directions (about one common mean, and within
-    # the states: each state's pairs about its own mean)
-    rho, rho_in = [], []
-    for k in range(fm.n_folds):
-        if fm.lagged is not None:
-            rho.append(autocorrelation_along(fold_w[k], fm.lagged_test(k), idx))
-            rho_in.append(autocorrelation_along(fold_w[k], fm.within_test(k), idx))
+    # held-out autocorrelation along the fold directions, the folds' pairs pooled (each
+    # fold's about one common mean, and within the states: each state's pairs about its
+    # own mean)
+    rho = rho_in = None
+    if fm.lagged is not None:
+        rho = heldout_autocorrelation(fm, idx, fold_w, fm.lagged_test)
+        rho_in = heldout_autocorrelation(fm, idx, fold_w, fm.within_test)
     mu, cov = state_arrays(pooled, idx)
     j_all = rayleigh_quotient(w, mu, cov, priors)
     rho_all = timescale = rho_in_all = timescale_in = None
@@ -912,12 +920,13 @@ def ranking_entry(rank, comb, fit, overlap, *, pool, screening, fm, priors, stat
         "heldout_score": comb.score, "heldout_score_se": comb.se,
         "heldout_score_folds": [float(v) for v in comb.fold_scores],
         "heldout_fisher_ratio": sep_mean, "heldout_fisher_ratio_se": sep_se,
+        "heldout_fisher_ratio_folds": [float(v) for v in sep],
         "heldout_overlap": _finite(overlap), "fisher_ratio_all": _finite(j_all),
         "lag_ps": lag_ps,
-        "heldout_autocorrelation": _finite(_mean_finite(rho)) if rho else None,
+        "heldout_autocorrelation": _finite(rho) if rho is not None else None,
         "autocorrelation_all": _finite(rho_all) if rho_all is not None else None,
         "timescale_ps": _finite(timescale) if timescale is not None else None,
-        "heldout_autocorrelation_within_states": (_finite(_mean_finite(rho_in)) if rho_in
+        "heldout_autocorrelation_within_states": (_finite(rho_in) if rho_in is not None
                                                   else None),
         "autocorrelation_within_states": (_finite(rho_in_all) if rho_in_all is not None
                                           else None),

@@ -56,12 +56,12 @@ from ..score.card import integrated_time_interval, plan_card_blocks
 from ..stats.bootstrap import MIN_INTERVAL_BLOCKS
 from ..stats.separation import fisher_ratio
 from ..score.univariate import overlap_coefficient
-from ..search import OBJECTIVES, FoldMoments
+from ..search import OBJECTIVES, FoldMoments, scaled_fold_directions
 from .output import CAUTION, Suggestions, is_output_file, output_inputs, resolving_span_ps
 from .ranking import (NOISE_LEVEL_FACTOR, PAIR_OVERLAP_WARN, add_fold_spread_warning,
-                      add_noise_level, add_pair_overlap, add_ranges, bootstrap_ranked, card_interval_rows,
-                      closest_pairs, fit_ranked, heldout_overlap, hints_for, ranking_entry,
-                      search, shortlist)
+                      add_noise_level, add_pair_overlap, add_ranges, bootstrap_ranked,
+                      card_interval_rows, closest_pairs, fit_ranked, fold_noise_level,
+                      heldout_overlap, hints_for, ranking_entry, search, shortlist)
 from .report_data import (CVBlockHistograms, CVGridPass, CVLaggedPass, CVReportPass, cv_plans,
                           cv_integrated_times, report_document, timescale_lags, trace_stride)
 from .screening import Screening, screen
@@ -465,7 +465,7 @@ def _suggest(source, config, executor, progress, checksums):
         transit_ci = transition_intervals(
             transit.standardized_blocks(screening.center[screening.features],
                                         screening.scale[screening.features]),
-            fits, fm.n_folds, lag_ps, n_boot=config.n_bootstrap, seed=config.seed + 3)
+            fits, fm, lag_ps, n_boot=config.n_bootstrap, seed=config.seed + 3)
         if transit_ci is None:
             notes.append(f"transition slowness: no bootstrap intervals (a crossing run has "
                          f"fewer than {MIN_INTERVAL_BLOCKS} sub-blocks in a held-out fold: "
@@ -525,13 +525,14 @@ def _suggest(source, config, executor, progress, checksums):
                     "gradient flips); check that the box is large enough for it, or choose a "
                     "CV without it")
         own = cv_frames[rank - 1]  # (per state, its own time in frames: [5])
-        state_times = None if own is None else own[5]
+        state_times = None if own is None else [
+            t * scatter.get(s, 1.0) for s, t in enumerate(own[5])]
         if add_noise_level(entry, fm, frame_ps, warn=config.objective != "slow",
-                           state_frames=None if state_times is None else [
-                               t * scatter.get(s, 1.0) for s, t in enumerate(state_times)],
-                           effective_fraction=fraction):
+                           state_frames=state_times, effective_fraction=fraction):
             noisy.append(rank)
-        if add_fold_spread_warning(entry):  # (after the noise level, which it takes in)
+        # (after the noise level, which it takes in)
+        if add_fold_spread_warning(entry, fold_noise_level(
+                entry, fm, frame_ps, state_frames=state_times, effective_fraction=fraction)):
             spread.append(rank)
         if entry.get("timescale_resolved") and _offsets_hold_autocorrelation(entry):
             entry["timescale_resolved"] = False
@@ -551,12 +552,13 @@ def _suggest(source, config, executor, progress, checksums):
         notes.append(_pair_overlap_note(overlapping, ranking))
     if spread and spread[0] == 1:
         first = ranking[0]
+        within = float(np.mean(first["heldout_fisher_ratio_folds"]))
         notes.append(
-            f"warning: the held-out Fisher ratio of rank 1 ({first['heldout_fisher_ratio']:.3g}) "
-            f"is {first['heldout_fisher_ratio'] / first['fisher_ratio_all']:.2g} times its "
-            f"ratio on all frames ({first['fisher_ratio_all']:.3g}): the states' runs (or "
-            "blocks) sit at different means along it, which the held-out folds do not count "
-            "(its warning says more); the ranking orders by the held-out ratio")
+            f"warning: within each held-out fold the Fisher ratio of rank 1 averages "
+            f"{within:.3g}, {within / first['fisher_ratio_all']:.2g} times its ratio on all "
+            f"frames ({first['fisher_ratio_all']:.3g}): the states' runs (or blocks) sit at "
+            "different means along it (its warning says more); the held-out score pools "
+            "the folds, so the ranking counts that spread")
     report_data = None
     if held.report is not None:
         report_data = report_document(held.report, held.report_plans, ranking, source=source,
@@ -752,22 +754,24 @@ class HeldOut:
 
 
 def _cv_plans(fits, fm, where):
-    """Per ranked CV: its columns in the blocks, fold directions and histogram ranges."""
+    """Per ranked CV: its columns in the blocks, fold directions (signed and scaled by their
+    training folds, :func:`~cvdesign.search.scaled_fold_directions`: one unit in every
+    fold) and one histogram range for every fold, so that the folds' held-out histograms
+    add up bin by bin (the held-out overlap pools the folds, as the held-out scores do)."""
     plans = []
     for fit in fits:
         p_idx = np.array([where[int(i)] for i in fit.idx], dtype=np.intp)
-        ranges = []
-        for k in range(fm.n_folds):
-            wk = fit.fold_w[k]
+        directions = scaled_fold_directions(fm, fit.idx, fit.fold_w)
+        lo, hi = np.inf, -np.inf
+        for k, wk in enumerate(directions):
             test = fm.test(k)
             mu = np.array([m.mean[fit.idx] @ wk for m in test])
             sd = np.array([math.sqrt(max(wk @ m.covariance[np.ix_(fit.idx, fit.idx)] @ wk, 0.0))
                            for m in test])
-            lo, hi = float(np.min(mu - 5 * sd)), float(np.max(mu + 5 * sd))
-            if not hi > lo:
-                lo, hi = lo - 1.0, hi + 1.0
-            ranges.append((lo, hi))
-        plans.append((p_idx, fit.fold_w, ranges))
+            lo, hi = min(lo, float(np.min(mu - 5 * sd))), max(hi, float(np.max(mu + 5 * sd)))
+        if not hi > lo:
+            lo, hi = lo - 1.0, hi + 1.0
+        plans.append((p_idx, directions, [(lo, hi)] * fm.n_folds))
     return plans
 
 
@@ -1302,7 +1306,7 @@ def _offsets_hold_autocorrelation(entry):
     ...     "b": {"mean": 1.0, "std": 0.1, "n_frames": 100}}}
     >>> _offsets_hold_autocorrelation(e)  # B / (B + W) = 0.25 / 0.26, against 0.96 / 2
     True
-    >>> _offsets_hold_autocorrelation(dict(e, heldout_fisher_ratio_noise=3.0))  # 25 < 30
+    >>> _offsets_hold_autocorrelation(dict(e, heldout_fisher_ratio_noise=1.5))  # 25 < 30
     False
     """
     rho = entry.get("autocorrelation_all")

@@ -48,11 +48,12 @@ import numpy as np
 from ..fit import timescales_from_eigenvalues
 from ..passes import LaggedPass, plan_tasks, run_pass
 from ..passes.keys import Folds
-from ..search import autocorrelation_along, within_states
+from ..search import (autocorrelation_along, heldout_autocorrelation, pooled_autocorrelation,
+                      scaled_fold_directions, within_states)
 from ..search.folds import standardize_lagged
 from ..stats.bootstrap import MIN_INTERVAL_BLOCKS, block_bootstrap
 from ..stats.moments import LaggedMoments, merge_all
-from .ranking import _finite, _mean_finite
+from .ranking import _finite
 
 __all__ = ["MIN_CROSSINGS_PER_FOLD", "BLOCKS_PER_FOLD", "MIN_BLOCK_LAGS", "crossings",
            "TransitionData", "gather_transitions", "transition_columns",
@@ -276,21 +277,21 @@ def transition_columns(fit, fm, lag_ps):
     Returns
     -------
     dict
-        ``heldout_autocorrelation_transitions`` (mean over folds of the fold
-        directions' autocorrelation on the held-out blocks),
+        ``heldout_autocorrelation_transitions`` (the fold directions' autocorrelation
+        on the held-out blocks, the folds' pairs pooled: :func:`~cvdesign.search.
+        heldout_autocorrelation`),
         ``autocorrelation_transitions`` (the CV's, on all pairs) and
         ``timescale_transitions_ps``.
     """
-    rho = [autocorrelation_along(fit.fold_w[k], fm.transition_test(k), fit.idx)
-           for k in range(fm.n_folds)]
+    rho = heldout_autocorrelation(fm, fit.idx, fit.fold_w, fm.transition_test)
     rho_all = autocorrelation_along(fit.w, fm.transition_pooled(), fit.idx)
     ts = float(timescales_from_eigenvalues([rho_all], lag_ps)[0])
-    return {"heldout_autocorrelation_transitions": _finite(_mean_finite(rho)),
+    return {"heldout_autocorrelation_transitions": _finite(rho),
             "autocorrelation_transitions": _finite(rho_all),
             "timescale_transitions_ps": _finite(ts)}
 
 
-def transition_intervals(blocks, fits, n_folds, lag_ps, *, n_boot, seed):
+def transition_intervals(blocks, fits, fm, lag_ps, *, n_boot, seed):
     """Bootstrap intervals of the transition slowness of the ranked CVs.
 
     The sub-blocks are resampled within each (run, fold); the CVs' directions
@@ -301,7 +302,9 @@ def transition_intervals(blocks, fits, n_folds, lag_ps, *, n_boot, seed):
     blocks : list of list of list of LaggedMoments
         Standardized sub-blocks ``[run][fold][block]``.
     fits : list of Fit
-    n_folds : int
+    fm : FoldMoments
+        Standardized (its training folds scale the fold directions, as the held-out
+        scores do).
     lag_ps : float
     n_boot, seed : int
 
@@ -314,10 +317,11 @@ def transition_intervals(blocks, fits, n_folds, lag_ps, *, n_boot, seed):
         has fewer than :data:`~cvdesign.stats.bootstrap.MIN_INTERVAL_BLOCKS` sub-blocks
         (intervals from so few cover the truth far less often than they say).
     """
+    n_runs, n_folds = len(blocks), fm.n_folds
     keys = [(r, k) for r, row in enumerate(blocks) for k in range(n_folds) if row[k]]
     if not keys or any(len(blocks[r][k]) < MIN_INTERVAL_BLOCKS for r, k in keys):
         return None
-    n_runs = len(blocks)
+    scaled = [scaled_fold_directions(fm, fit.idx, fit.fold_w) for fit in fits]
 
     def stat(merged):
         got = dict(zip(keys, merged))
@@ -326,11 +330,9 @@ def transition_intervals(blocks, fits, n_folds, lag_ps, *, n_boot, seed):
         per_fold = [within_states(got.get((r, k)) for r in range(n_runs))
                     for k in range(n_folds)]
         out = []
-        for fit in fits:
+        for fit, directions in zip(fits, scaled):
             out.append(autocorrelation_along(fit.w, pooled, fit.idx))
-            vals = [autocorrelation_along(fit.fold_w[k], per_fold[k], fit.idx)
-                    if per_fold[k] is not None else np.nan for k in range(n_folds)]
-            out.append(_mean_finite(vals))
+            out.append(pooled_autocorrelation(directions, per_fold, fit.idx))
         return np.array(out)
 
     res = block_bootstrap([blocks[r][k] for r, k in keys], stat, n_boot=n_boot, seed=seed,

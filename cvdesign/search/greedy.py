@@ -1,5 +1,6 @@
 """Greedy forward search of compact combinations and their ranking."""
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -18,10 +19,12 @@ class Combination:
     members : tuple of int
         Indices (into the candidate groups) in the order the search added them.
     score : float
-        Mean held-out Fisher ratio.
+        Held-out score (:func:`~cvdesign.search.heldout_score`: for ``separate`` the
+        Fisher ratio of the held-out folds pooled).
     se : float
-        Standard error of `score` over folds.
+        Standard error of `score` (jackknife over the folds).
     fold_scores : ndarray of shape (n_folds,)
+        Each fold's score on its own.
     """
 
     members: tuple
@@ -57,7 +60,7 @@ def greedy_search(fold_moments, groups, *, max_terms=5, n_seeds=5, min_gain=0.01
         Smallest relative gain in held-out score worth another term.
     shrinkage : float, default=1e-3
     objective : {'separate', 'slow', 'both'}, default='separate'
-        Held-out score to maximize, see :func:`fold_scores`.
+        Held-out score to maximize, see :func:`heldout_score`.
     method : {'lda', 'hlda'}, default='lda'
 
     Returns
@@ -124,6 +127,14 @@ def greedy_search(fold_moments, groups, *, max_terms=5, n_seeds=5, min_gain=0.01
     return out
 
 
+def _within_one_se(other, ref):
+    """Whether `other` scores within one standard error of `ref`, on the scale of
+    ``log(1 + score)`` (see :func:`rank_combinations`; scores are above -1)."""
+    floor = -1.0 + 1e-12
+    x, y = max(ref.score, floor), max(other.score, floor)
+    return math.log1p(y) >= math.log1p(x) - ref.se / (1.0 + x)
+
+
 def rank_combinations(combinations, *, limit=None):
     """Rank combinations, preferring the compact ones that are as good.
 
@@ -133,7 +144,14 @@ def rank_combinations(combinations, *, limit=None):
     held-out score, and then the smallest combination whose score is within
     one standard error of it (the one-standard-error rule, Hastie, Tibshirani
     and Friedman, *The Elements of Statistical Learning*, 2nd ed. 2009,
-    sect. 7.10); ties go to the higher score, then to the earlier found.
+    sect. 7.10); ties go to the higher score, then to the earlier found. Scores
+    are compared on the scale of ``log(1 + score)``, the standard error carried
+    over by the delta method (``se / (1 + score)``): for a standard error small
+    beside ``1 + score`` the same as comparing the scores themselves, while
+    ratios far above 1, whose folds can differ many times over (a CV nearly rigid
+    within the states, its within-state spread at the level of rounding), are
+    compared by their relative size, not dropped for an error larger than the
+    score.
 
     Parameters
     ----------
@@ -159,7 +177,7 @@ def rank_combinations(combinations, *, limit=None):
     sets = [frozenset(c.members) for c in combinations]
     keep = []
     for i, c in enumerate(combinations):
-        dominated = any(sets[j] < sets[i] and o.score >= c.score - c.se
+        dominated = any(sets[j] < sets[i] and _within_one_se(o, c)
                         for j, o in enumerate(combinations))
         if not dominated:
             keep.append(c)
@@ -167,7 +185,7 @@ def rank_combinations(combinations, *, limit=None):
     ranked = []
     while pool and (limit is None or len(ranked) < limit):
         best = max(pool, key=lambda t: (t[1].score, -t[0]))[1]
-        near = [t for t in pool if t[1].score >= best.score - best.se]
+        near = [t for t in pool if _within_one_se(t[1], best)]
         pick = min(near, key=lambda t: (t[1].n_terms, -t[1].score, t[0]))
         ranked.append(pick[1])
         pool.remove(pick)

@@ -2,7 +2,22 @@
 
 A combination is scored by cross-validation: for each fold, the direction
 (LDA or HLDA for ``separate``, TICA for ``slow``) is fitted on the other folds
-and scored on the held-out fold; the score is the mean over folds, with its
+and applied to the held-out fold. For ``separate`` and ``both`` the held-out
+folds are then pooled: each fold's frames projected on its own direction (signed
+and scaled by its training folds), the states' means and spreads taken over all
+the held-out frames, and the Fisher ratio computed once. Scored fold by fold
+instead, each fold's ratio divides by the spread within that fold alone (one
+trajectory per state with whole-trajectory folds): runs of a state that sit at
+different means along the CV (not equilibrated, or in sub-states they do not
+cross between) would not count against it, and such a CV would outrank one on
+which the runs agree. The pooled ratio counts them, as a bias along the CV
+meets them. The between-state part is signed by the training folds: it counts the
+held-out states' spread along the order the training folds put them in (for two
+states, nothing when they lie the other way round), so that a combination whose
+folds each contradict the others (a pattern the search can otherwise pick out of
+noise, since every fold's ratio is a square) does not score as separating. Its
+standard error is the jackknife's over the folds. ``slow``
+keeps the mean of the folds' VAMP-2 scores (Wu and Noé 2020), with its
 standard error.
 """
 
@@ -11,12 +26,14 @@ import warnings
 import numpy as np
 
 from ..fit import (DroppedDirectionsWarning, discriminant_directions, quadratic_forms,
-                   rayleigh_quotient, rayleigh_quotients, slow_modes, two_state_direction,
+                   slow_modes, two_state_direction,
                    two_state_directions, vamp2_score)
 from .folds import stacked_state_arrays, state_arrays
 
 __all__ = ["OBJECTIVES", "fit_direction", "slow_direction", "cv_direction",
-           "autocorrelation_along", "fold_scores", "heldout_score", "heldout_scores"]
+           "autocorrelation_along", "fold_scores", "heldout_score", "heldout_scores",
+           "heldout_fisher_along", "heldout_autocorrelation", "scaled_fold_directions",
+           "pooled_autocorrelation"]
 
 
 #: Objectives of the search: what a combination is scored by on held-out folds.
@@ -111,11 +128,14 @@ def cv_direction(fold_moments, idx, *, objective="separate", method="lda", shrin
 
 
 def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrinkage=1e-3):
-    """Held-out score of a combination in each fold.
+    """Held-out score of a combination in each fold on its own.
+
+    Each fold's score is that of the direction fitted on the other folds, on the
+    frames of that fold alone (the held-out score, :func:`heldout_score`, pools
+    the folds instead):
 
     * ``separate``: Fisher ratio (between- over within-state variance,
-      arithmetic within-state mean, so it compares across methods) of the
-      direction fitted on the other folds;
+      arithmetic within-state mean, so it compares across methods);
     * ``slow``: cross-validated VAMP-2 score of the slowest singular function,
       minus the constant part (Wu and Noé 2020): the squared correlation, in
       [0, 1], across the lag of the slowest linear function of the features;
@@ -147,43 +167,290 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
     -------
     ndarray of shape (n_folds,)
     """
-    return _fold_score_table(fold_moments, [idx], objective, method, shrinkage)[0]
+    return _score_table(fold_moments, [idx], objective, method, shrinkage)[2][0]
+
+
+#: Held-out Fisher ratios are capped here (a direction along which the states do not
+#: spread at all would give infinity).
+_MAX_RATIO = 1e12
+
+
+def _signed_scaled(w, train_means, train_covs, priors):
+    """Each fold's direction (``w``, shape (..., k)) signed so the last state's training
+    mean lies at or above the first's along it, and scaled to unit variance on the
+    training folds (within-state plus between-state, the states weighted by `priors`): the
+    CV each fold's fit hands on, in the unit of that fit, so that the held-out folds can be
+    pooled. (Not the within-state variance alone: along a CV rigid within the states it is
+    rounding, and so would be the folds' units.) A direction without training spread keeps
+    its length."""
+    proj = (train_means * w[..., None, :]).sum(axis=-1)  # (..., n_states)
+    sign = np.where(proj[..., -1] < proj[..., 0], -1.0, 1.0)
+    centred = proj - (priors * proj).sum(axis=-1, keepdims=True)
+    var = (priors * (quadratic_forms(w[..., None, :], train_covs) + centred ** 2)).sum(axis=-1)
+    with np.errstate(invalid="ignore"):
+        scale = np.where(var > 0, np.sqrt(np.where(var > 0, var, 1.0)), 1.0)
+    return w * (sign / scale)[..., None]
+
+
+def _fisher(t, v, u, priors):
+    """Held-out Fisher ratio of projected state means `t` and variances `v` (shape (...,
+    n_states)), signed by the training folds' state means `u` along the same direction:
+    the between-state variance is that of `t` along the pattern of `u`,
+    ``max(sum_s p_s t'_s u'_s, 0)^2 / sum_s p_s u'_s^2`` (primes: less the prior-weighted
+    mean), over the within-state ``sum_s p_s v_s``; capped, with the Fisher ratios'
+    conventions (inf where only the between-state part is positive, 0 where neither is,
+    NaN where either is NaN). For two states the between part is
+    ``p_1 p_2 (t_2 - t_1)^2`` when the held-out states lie in the order of the training
+    ones, and 0 when they lie the other way round."""
+    tc = t - (priors * t).sum(axis=-1, keepdims=True)
+    uc = u - (priors * u).sum(axis=-1, keepdims=True)
+    cross = (priors * tc * uc).sum(axis=-1)
+    norm = (priors * uc * uc).sum(axis=-1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        between = np.where(norm > 0, np.maximum(cross, 0.0) ** 2 / norm,
+                           np.where(np.isnan(cross), np.nan, 0.0))
+        within = (priors * v).sum(axis=-1)
+        ratio = np.where(within <= 0, np.where(between > 0, np.inf, 0.0), between / within)
+    return np.minimum(ratio, _MAX_RATIO)
+
+
+def _pooled_states(t, v, u, n, keep):
+    """Per state, the mean and variance of the held-out projections of the folds in `keep`
+    pooled (each fold's frames at its own direction), and the mean of their training
+    means: ``t``, ``v``, ``u`` of shape (n_combos, n_folds, n_states), ``n`` frames (sum
+    of weights) of shape (n_folds, n_states)."""
+    frac = n[keep] / n[keep].sum(axis=0)  # (folds kept, n_states)
+    tk = t[:, keep]
+    mean = (frac * tk).sum(axis=1)
+    var = (frac * (v[:, keep] + (tk - mean[:, None]) ** 2)).sum(axis=1)
+    return mean, var, (frac * u[:, keep]).sum(axis=1)
+
+
+def _summary(t, v, u, n, priors, objective, slowness=None):
+    """Pooled held-out score, its jackknife standard error over the folds and the
+    per-fold scores of combinations whose held-out folds project to state means `t` and
+    variances `v`, and their training folds to state means `u` (shape (n_combos, n_folds,
+    n_states) each), with `n` frames per fold and state; `slowness`, for ``both``: per
+    fold the lagged-pair count (n_folds,) and the ``C(lag)`` and ``C0`` quadratic forms
+    along each fold's direction (n_combos, n_folds)."""
+    n_folds = t.shape[1]
+    every = np.ones(n_folds, dtype=bool)
+    subsets = [every] + [every & (np.arange(n_folds) != k) for k in range(n_folds)]
+    per_fold = _fisher(t, v, u, priors)  # (n_combos, n_folds)
+    pooled = np.stack([_fisher(*_pooled_states(t, v, u, n, keep), priors)
+                       for keep in subsets], axis=1)  # (n_combos, 1 + n_folds): all, then
+    # each fold left out
+    if objective == "both":
+        count, num, den = slowness
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rho = np.where((count > 0) & (den > 0), num / den, np.nan)
+        per_fold = per_fold / (1.0 + per_fold) * both_weight(rho)
+        rhos = []
+        for keep in subsets:  # pairs of the kept folds pooled, each along its direction
+            use = keep & (count > 0)
+            a = (count[use] * num[:, use]).sum(axis=1)
+            b = (count[use] * den[:, use]).sum(axis=1)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                rhos.append(np.where(b > 0, a / b, np.nan))
+        pooled = pooled / (1.0 + pooled) * both_weight(np.stack(rhos, axis=1))
+    score, loo = pooled[:, 0], pooled[:, 1:]
+    if n_folds > 1:  # jackknife over the folds (Efron and Tibshirani 1993, An Introduction
+        # to the Bootstrap, Chapman & Hall, ch. 11)
+        dev = loo - loo.mean(axis=1, keepdims=True)
+        se = np.sqrt((n_folds - 1) / n_folds * (dev ** 2).sum(axis=1))
+    else:
+        se = np.zeros(len(score))
+    return score, se, per_fold
 
 
 def _fold_scores_one(fold_moments, idx, objective, method, shrinkage):
-    """:func:`fold_scores` of one combination, fold by fold: the reference the stacked
-    :func:`_two_state_fold_scores` must agree with, and its fallback."""
-    out = np.empty(fold_moments.n_folds)
-    for k in range(fold_moments.n_folds):
-        if objective == "slow":
-            train = fold_moments.lagged_train(k).subset(idx)
-            test = fold_moments.lagged_test(k).subset(idx)
+    """:func:`heldout_scores`'s ``(score, se, per_fold)`` of one combination, fold by
+    fold: the reference the stacked :func:`_two_state_fold_scores` must agree with, and
+    its fallback."""
+    fm = fold_moments
+    if objective == "slow":
+        out = np.empty(fm.n_folds)
+        for k in range(fm.n_folds):
+            train = fm.lagged_train(k).subset(idx)
+            test = fm.lagged_test(k).subset(idx)
             try:
                 with warnings.catch_warnings():  # as in slow_direction
                     warnings.simplefilter("ignore", DroppedDirectionsWarning)
                     out[k] = vamp2_score(train, test, k=1) - 1.0
             except ValueError:
                 out[k] = 0.0
+        # (the jackknife standard error of a mean is the usual one)
+        se = out.std(ddof=1) / np.sqrt(fm.n_folds) if fm.n_folds > 1 else 0.0
+        return float(out.mean()), float(se), out
+    t, v, u = np.empty((3, 1, fm.n_folds, fm.n_states))
+    num, den = np.full((2, 1, fm.n_folds), np.nan)
+    count = np.zeros(fm.n_folds)
+    for k in range(fm.n_folds):
+        w = fit_direction(fm.train(k), idx, fm.priors, shrinkage, method=method)
+        w, t[0, k], v[0, k], u[0, k] = _heldout_projection(fm, k, idx, w)
+        if objective == "both":
+            count[k], c0, ct = fm.slowness_covariances(k)
+            if count[k] > 0:
+                sub = np.ix_(idx, idx)
+                num[0, k], den[0, k] = quadratic_forms(w, ct[sub]), quadratic_forms(w, c0[sub])
+    score, se, per_fold = _summary(t, v, u, _fold_counts(fm), fm.priors, objective,
+                                   (count, num, den) if objective == "both" else None)
+    return float(score[0]), float(se[0]), per_fold[0]
+
+
+def _heldout_projection(fm, k, idx, w):
+    """Fold `k`'s direction `w` on features `idx` signed and scaled by its training folds
+    (:func:`_signed_scaled`), the held-out states' means and variances along it, and the
+    training states' means."""
+    train_means, train_covs = state_arrays(fm.train(k), idx)
+    w = _signed_scaled(np.asarray(w, dtype=np.float64), train_means, train_covs, fm.priors)
+    means, covs = state_arrays(fm.test(k), idx)
+    return (w, (means * w).sum(axis=-1), quadratic_forms(w, covs),
+            (train_means * w).sum(axis=-1))
+
+
+def heldout_fisher_along(fold_moments, idx, directions):
+    """Held-out Fisher ratio of the folds pooled along a given direction per fold.
+
+    As the held-out score of ``separate`` (:func:`heldout_score`), but along
+    `directions` instead of discriminants refitted without each fold (a ``slow``
+    CV's TICA directions, say).
+
+    Parameters
+    ----------
+    fold_moments : FoldMoments
+    idx : array-like of int
+        Features of the CV.
+    directions : sequence of ndarray
+        The CV's direction (on `idx`) fitted without each fold.
+
+    Returns
+    -------
+    score, se : float
+        The pooled ratio and its jackknife standard error (dimensionless).
+    per_fold : ndarray of shape (n_folds,)
+        Each fold's ratio on its own.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from cvdesign.search import FoldMoments
+    >>> from cvdesign.stats.moments import Moments
+    >>> rng = np.random.default_rng(0)
+    >>> fm = FoldMoments([[Moments.from_data(rng.normal([0, m], 1, (4000, 2)))
+    ...                    for _ in range(2)] for m in (0.0, 2.0)])
+    >>> # (delta mu / 2 sigma)^2 = 1 along feature 1 (Fisher 1936, Ann. Eugen. 7:179;
+    >>> # the algebra as in heldout_score)
+    >>> round(heldout_fisher_along(fm, [0, 1], [np.array([0.0, 1.0])] * 2)[0], 1)
+    1.0
+    """
+    fm = fold_moments
+    idx = np.asarray(idx, dtype=np.intp)
+    t, v, u = np.empty((3, 1, fm.n_folds, fm.n_states))
+    for k, w in enumerate(directions):
+        _, t[0, k], v[0, k], u[0, k] = _heldout_projection(fm, k, idx, w)
+    score, se, per_fold = _summary(t, v, u, _fold_counts(fm), fm.priors, "separate")
+    return float(score[0]), float(se[0]), per_fold[0]
+
+
+def heldout_autocorrelation(fold_moments, idx, directions, pairs):
+    """Autocorrelation at the lag along a direction per fold, the held-out folds' lagged
+    pairs pooled.
+
+    Each fold's pairs (``pairs(k)``, a LaggedMoments of every feature) give the
+    reversible ``C(lag)`` and ``C0`` along that fold's direction, signed and
+    scaled by its training folds as in :func:`heldout_score`; the ratio of their
+    pair-weighted sums over the folds is returned.
+
+    Parameters
+    ----------
+    fold_moments : FoldMoments
+    idx : array-like of int
+    directions : sequence of ndarray
+        The CV's direction (on `idx`) fitted without each fold.
+    pairs : callable
+        ``pairs(k)``: the lagged pairs of fold `k` (say ``fold_moments.within_test``).
+
+    Returns
+    -------
+    float
+        NaN when no fold has pairs (or the CV does not vary along them).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from scipy.signal import lfilter
+    >>> from cvdesign.search import FoldMoments
+    >>> from cvdesign.stats.moments import LaggedMoments, Moments
+    >>> rng = np.random.default_rng(0)
+    >>> def run(mean):  # AR(1) of coefficient 0.8 (lag-1 autocorrelation 0.8)
+    ...     return mean + lfilter([1.0], [1.0, -0.8], rng.normal(size=(20000, 1)), axis=0)
+    >>> runs = [[run(m) for _ in range(2)] for m in (0.0, 3.0)]
+    >>> fm = FoldMoments([[Moments.from_data(x) for x in r] for r in runs],
+    ...                  lagged=[[LaggedMoments.from_series(x, lag=1) for x in r]
+    ...                          for r in runs])
+    >>> round(heldout_autocorrelation(fm, [0], [np.ones(1)] * 2, fm.within_test), 2)
+    0.8
+    """
+    return pooled_autocorrelation(scaled_fold_directions(fold_moments, idx, directions),
+                                  [pairs(k) for k in range(fold_moments.n_folds)], idx)
+
+
+def scaled_fold_directions(fold_moments, idx, directions):
+    """Each fold's direction signed and scaled by its training folds, as the held-out scores
+    take it: the last state's training mean at or above the first's, unit variance (within
+    plus between the states) on the training folds.
+
+    Returns
+    -------
+    list of ndarray
+    """
+    return [_heldout_projection(fold_moments, k, np.asarray(idx, dtype=np.intp), w)[0]
+            for k, w in enumerate(directions)]
+
+
+def pooled_autocorrelation(directions, pairs, idx):
+    """Reversible autocorrelation at the lag of the folds' pairs pooled, each fold's along
+    its own direction: ``sum_k n_k w_k' C_k(lag) w_k / sum_k n_k w_k' C0_k w_k``.
+
+    Parameters
+    ----------
+    directions : sequence of ndarray
+        Per fold, on features `idx`, in one unit (:func:`scaled_fold_directions`).
+    pairs : sequence of LaggedMoments or None
+        Per fold, its lagged pairs (every feature); None or empty: the fold adds nothing.
+    idx : array-like of int
+
+    Returns
+    -------
+    float
+        NaN when no fold has pairs (or the CV does not vary along them).
+    """
+    idx = np.asarray(idx, dtype=np.intp)
+    num = den = 0.0
+    for w, lagged in zip(directions, pairs):
+        if lagged is None or not lagged.count > 0:
             continue
-        w = fit_direction(fold_moments.train(k), idx, fold_moments.priors, shrinkage,
-                          method=method)
-        means, covs = state_arrays(fold_moments.test(k), idx)
-        j = min(rayleigh_quotient(w, means, covs, fold_moments.priors), 1e12)
-        if objective == "separate":
-            out[k] = j
-        else:
-            rho = autocorrelation_along(w, fold_moments.slowness_test(k), idx)
-            out[k] = j / (1.0 + j) * both_weight(rho)
-    return out
+        _, c0, ct = lagged.subset(idx).covariances(reversible=True)
+        num += lagged.count * float(w @ ct @ w)
+        den += lagged.count * float(w @ c0 @ w)
+    return num / den if den > 0 else float("nan")
 
 
-#: Covariance entries stacked at once by :func:`_fold_score_table` (1 MiB of float64 per
+def _fold_counts(fm):
+    """Held-out frames (sums of weights) per fold and state, shape (n_folds, n_states)."""
+    return np.array([[m.count for m in fm.test(k)] for k in range(fm.n_folds)],
+                    dtype=np.float64)
+
+
+#: Covariance entries stacked at once by :func:`_score_table` (1 MiB of float64 per
 #: 2**17; the temporaries of a batch take a few times that).
 _STACK_VALUES = 2**20
 
 
-def _fold_score_table(fold_moments, combos, objective, method, shrinkage):
-    """Held-out scores of each combination in each fold, shape (len(combos), n_folds).
+def _score_table(fold_moments, combos, objective, method, shrinkage):
+    """Pooled held-out scores, their standard errors (shape (len(combos),) each) and the
+    per-fold scores (shape (len(combos), n_folds)) of the combinations.
 
     Two states (``separate``, ``both``): the combinations of each size are fitted and
     scored in every fold by one stacked computation (:func:`_two_state_fold_scores`);
@@ -192,7 +459,8 @@ def _fold_score_table(fold_moments, combos, objective, method, shrinkage):
     """
     _check_objective(objective, method)
     combos = [np.asarray(c, dtype=np.intp).reshape(-1) for c in combos]
-    out = np.empty((len(combos), fold_moments.n_folds))
+    score, se = np.empty(len(combos)), np.empty(len(combos))
+    per_fold = np.empty((len(combos), fold_moments.n_folds))
     todo = np.ones(len(combos), dtype=bool)
     if objective != "slow" and fold_moments.n_states == 2:
         by_size = {}
@@ -205,43 +473,51 @@ def _fold_score_table(fold_moments, combos, objective, method, shrinkage):
             step = max(1, _STACK_VALUES // (fold_moments.n_folds * 2 * size * size))
             for lo in range(0, len(rows), step):
                 part = np.asarray(rows[lo:lo + step], dtype=np.intp)
-                scores, ok = _two_state_fold_scores(
+                got, ok = _two_state_fold_scores(
                     fold_moments, np.stack([combos[i] for i in part]), objective, method,
                     shrinkage)
-                out[part[ok]] = scores[ok]
+                for dst, src in zip((score, se, per_fold), got):
+                    dst[part[ok]] = src[ok]
                 todo[part[ok]] = False
     for i in np.flatnonzero(todo):
-        out[i] = _fold_scores_one(fold_moments, combos[i], objective, method, shrinkage)
-    return out
+        score[i], se[i], per_fold[i] = _fold_scores_one(fold_moments, combos[i], objective,
+                                                        method, shrinkage)
+    return score, se, per_fold
 
 
 def _two_state_fold_scores(fold_moments, combos, objective, method, shrinkage):
     """:func:`_fold_scores_one` of two states for many combinations of one size at once.
 
-    Returns the scores, shape (n_combos, n_folds), and which combinations were scored
-    in every fold (the others need :func:`_fold_scores_one`).
+    Returns ``(score, se, per_fold)`` (shapes (n_combos,), (n_combos,), (n_combos,
+    n_folds)) and which combinations were fitted in every fold (the others need
+    :func:`_fold_scores_one`).
     """
-    folds = range(fold_moments.n_folds)
-    priors = fold_moments.priors
-    means, covs = stacked_state_arrays([fold_moments.train(k) for k in folds], combos)
+    fm = fold_moments
+    folds = range(fm.n_folds)
+    priors = fm.priors
+    means, covs = stacked_state_arrays([fm.train(k) for k in folds], combos)
     w, ok = two_state_directions(means, covs, priors, shrinkage=shrinkage,
                                  within=_within(method))
-    means, covs = stacked_state_arrays([fold_moments.test(k) for k in folds], combos)
-    j = np.minimum(rayleigh_quotients(w, means, covs, priors), 1e12)
+    w = _signed_scaled(w, means, covs, priors)  # (n_folds, n_combos, k)
+    u = (means * w[..., None, :]).sum(axis=-1)  # training state means (n_folds, n_combos,
+    # n_states)
+    means, covs = stacked_state_arrays([fm.test(k) for k in folds], combos)
+    t = (means * w[..., None, :]).sum(axis=-1)  # (n_folds, n_combos, n_states)
+    v = quadratic_forms(w[..., None, :], covs)
+    slowness = None
     if objective == "both":
         rows, cols = combos[:, :, None], combos[:, None, :]
-        rho = np.full(j.shape, np.nan)
+        count = np.zeros(fm.n_folds)
+        num, den = np.full((2, fm.n_folds, len(combos)), np.nan)
         for k in folds:
-            count, c0, ct = fold_moments.slowness_covariances(k)
-            if not count > 0:
-                continue
-            den = quadratic_forms(w[k], c0[rows, cols])
-            num = quadratic_forms(w[k], ct[rows, cols])
-            with np.errstate(divide="ignore", invalid="ignore"):
-                rho[k] = np.where(den > 0, num / den, np.nan)
-        weight = 0.5 * (1.0 + np.where(np.isfinite(rho), np.maximum(rho, 0.0), 0.0))
-        j = j / (1.0 + j) * weight  # both_weight, stacked
-    return j.T, ok.all(axis=0)
+            count[k], c0, ct = fm.slowness_covariances(k)
+            if count[k] > 0:
+                num[k] = quadratic_forms(w[k], ct[rows, cols])
+                den[k] = quadratic_forms(w[k], c0[rows, cols])
+        slowness = (count, num.T, den.T)
+    got = _summary(t.transpose(1, 0, 2), v.transpose(1, 0, 2), u.transpose(1, 0, 2),
+                   _fold_counts(fm), priors, objective, slowness)
+    return got, ok.all(axis=0)
 
 
 def both_weight(rho):
@@ -280,11 +556,24 @@ def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shri
 
     Returns
     -------
-    mean : float
-        Mean held-out score over folds (dimensionless).
+    score : float
+        Held-out score (dimensionless). ``separate``: the Fisher ratio of the held-out
+        folds pooled, each fold's frames projected on the direction fitted without it
+        (signed so the last state lies above the first on its training folds, scaled to
+        unit variance there), the states' means and variances over all the
+        held-out frames, the between-state variance taken along the training folds'
+        pattern of state means (for two states: zero when the held-out states lie in the
+        other order); ``both``: that ratio mapped to [0, 1) and weighted by the
+        held-out autocorrelation of the pooled folds' pairs (see :func:`fold_scores`);
+        ``slow``: the mean of the folds' scores.
     se : float
-        Its standard error (standard deviation over folds / sqrt(n_folds)).
+        Its standard error: the jackknife's over the folds (each fold left out of the
+        pooling in turn; Efron and Tibshirani 1993, *An Introduction to the Bootstrap*,
+        Chapman & Hall, ch. 11), for ``slow`` the standard deviation over the folds over
+        sqrt(n_folds), which is the jackknife's for a mean.
     per_fold : ndarray of shape (n_folds,)
+        Each fold's score on its own (:func:`fold_scores`): with runs of a state at
+        different means along the CV, above the pooled score.
 
     Examples
     --------
@@ -340,9 +629,6 @@ def heldout_scores(fold_moments, combinations, *, objective="separate", method="
     >>> [round(mean, 1) for mean, _, _ in heldout_scores(fm, [[1], [0, 1], [0]])]
     [1.0, 1.0, 0.0]
     """
-    table = _fold_score_table(fold_moments, combinations, objective, method, shrinkage)
-    n_folds = table.shape[1]
-    means = table.mean(axis=1)
-    ses = (table.std(axis=1, ddof=1) / np.sqrt(n_folds) if n_folds > 1
-           else np.zeros(len(table)))
-    return [(float(m), float(se), scores) for m, se, scores in zip(means, ses, table)]
+    score, se, per_fold = _score_table(fold_moments, combinations, objective, method,
+                                       shrinkage)
+    return [(float(m), float(e), scores) for m, e, scores in zip(score, se, per_fold)]
