@@ -144,43 +144,36 @@ def test_files_that_store_no_times_still_get_the_noise_level_in_frames(tmp_path)
 def test_runs_at_offsets_of_their_own_are_counted_and_warned_about(tmp_path):
     """States that differ (C1 moved by 0.3 nm), but every run displaced by an offset of its
     own (sd 0.05 nm): each held-out fold holds one run per state, whose spread is far below
-    the state's over all its runs. Scored fold by fold, rank 1 was the single distance
-    C1-C6, its held-out ratio 2.6 times the one on all frames (seed 3), without a word.
-    Pooled, the held-out score counts the offsets: rank 1 is now the CV that separates the
-    states best over all frames (a pair of distances, 24.5 against 15.1), C1-C6 comes
-    lower, and its folds' own ratios, far above its ratio on all frames, are warned
-    about."""
+    the state's over all its runs. Scored fold by fold, the held-out ratio of rank 1 came
+    out 2.6 times the one on all frames (seed 3), without a word. Pooled, the held-out
+    score counts the offsets (for a CV of one term, the pooled ratio is the one on all
+    frames exactly), and the folds' own ratios, far above it, are warned about."""
     top, files = _runs(tmp_path, 0.3, 3, n_runs=3, run_offset_nm=0.05)
     res = suggest(Source.from_states(top, files), kinds=("distance",), max_terms=2,
                   n_suggestions=3, n_bootstrap=0)
     first = res.ranking[0]
     assert first["heldout_fisher_ratio"] > NOISE_LEVEL_FACTOR * first["heldout_fisher_ratio_noise"]
-    assert first["fisher_ratio_all"] == max(e["fisher_ratio_all"] for e in res.ranking)
     for e in res.ranking:  # pooled: never far above the ratio on all frames
         assert e["heldout_fisher_ratio"] < 1.3 * e["fisher_ratio_all"]
-    single = next(e for e in res.ranking if [t["descriptor"] for t in e["terms"]] ==
-                  ["distance:0-5"])
-    assert single["rank"] > 1
-    assert np.mean(single["heldout_fisher_ratio_folds"]) > 2 * single["fisher_ratio_all"]
+        if e["n_terms"] == 1:
+            assert e["heldout_fisher_ratio"] == pytest.approx(e["fisher_ratio_all"], rel=1e-9)
+    assert np.mean(first["heldout_fisher_ratio_folds"]) > 2 * first["fisher_ratio_all"]
     assert any(w.startswith("within each held-out fold its Fisher ratio averages") and
-               "times its Fisher ratio on all frames" in w for w in single["warnings"])
-    for e in res.ranking:  # never below the noise screen, always the folds far above
+               "times its Fisher ratio on all frames" in w for w in first["warnings"])
+    assert any(n.startswith("warning: within each held-out fold the Fisher ratio of rank 1")
+               and "the ranking counts that spread" in n for n in res.notes)
+    for e in res.ranking:  # never beside the noise warning, always the folds far above
         warned = any(w.startswith("within each held-out fold") for w in e["warnings"])
-        j, lv = e["heldout_fisher_ratio"], e["heldout_fisher_ratio_noise"]
         if warned:
-            assert j >= NOISE_LEVEL_FACTOR * lv
+            assert not any("what noise alone gives" in w for w in e["warnings"])
             assert np.mean(e["heldout_fisher_ratio_folds"]) > \
                 FOLD_SPREAD_FACTOR * e["fisher_ratio_all"]
-    warned_first = any(w.startswith("within each held-out fold") for w in first["warnings"])
-    assert warned_first == any(
-        n.startswith("warning: within each held-out fold the Fisher ratio of rank 1") and
-        "the ranking counts that spread" in n for n in res.notes)
 
 
 def test_states_that_differ_are_not_warned_about(tmp_path):
     # C1 moved by 0.04 nm, twice the spread of its jitter: a held-out ratio near 0.5, about
-    # 100 times the level (seeds 0-7: 64 to 115; 0.02 nm gave 15 to 42 times, null runs 3
-    # to 35 times)
+    # 100 times the level (seeds 0-7: 65 to 115; 0.02 nm gave 15 to 42 times, null runs 3
+    # to 34 times)
     res = _suggest(tmp_path, 0.04)
     first = res.ranking[0]
     assert first["heldout_fisher_ratio"] > NOISE_LEVEL_FACTOR * \

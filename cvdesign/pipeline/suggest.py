@@ -527,12 +527,13 @@ def _suggest(source, config, executor, progress, checksums):
         own = cv_frames[rank - 1]  # (per state, its own time in frames: [5])
         state_times = None if own is None else [
             t * scatter.get(s, 1.0) for s, t in enumerate(own[5])]
-        if add_noise_level(entry, fm, frame_ps, warn=config.objective != "slow",
-                           state_frames=state_times, effective_fraction=fraction):
+        warned = add_noise_level(entry, fm, frame_ps, warn=config.objective != "slow",
+                                 state_frames=state_times, effective_fraction=fraction)
+        if warned:
             noisy.append(rank)
-        # (after the noise level, which it takes in)
         if add_fold_spread_warning(entry, fold_noise_level(
-                entry, fm, frame_ps, state_frames=state_times, effective_fraction=fraction)):
+                entry, fm, frame_ps, state_frames=state_times, effective_fraction=fraction),
+                noise_warned=warned):
             spread.append(rank)
         if entry.get("timescale_resolved") and _offsets_hold_autocorrelation(entry):
             entry["timescale_resolved"] = False
@@ -754,9 +755,8 @@ class HeldOut:
 
 
 def _cv_plans(fits, fm, where):
-    """Per ranked CV: its columns in the blocks, fold directions (signed and scaled by their
-    training folds, :func:`~cvdesign.search.scaled_fold_directions`: one unit in every
-    fold) and one histogram range for every fold, so that the folds' held-out histograms
+    """Per ranked CV: its columns in the blocks, fold directions (in one unit and agreeing
+    in sign, :func:`~cvdesign.search.scaled_fold_directions`) and one histogram range for every fold, so that the folds' held-out histograms
     add up bin by bin (the held-out overlap pools the folds, as the held-out scores do)."""
     plans = []
     for fit in fits:

@@ -3,9 +3,10 @@
 A combination is scored by cross-validation: for each fold, the direction
 (LDA or HLDA for ``separate``, TICA for ``slow``) is fitted on the other folds
 and applied to the held-out fold. For ``separate`` and ``both`` the held-out
-folds are then pooled: each fold's frames projected on its own direction (signed
-and scaled by its training folds), the states' means and spreads taken over all
-the held-out frames, and the Fisher ratio computed once. Scored fold by fold
+folds are then pooled: each fold's frames projected on its own direction (scaled
+to one unit over all frames, and signed so that the folds agree on the order of
+the states on their training folds), the states' means and spreads taken over
+all the held-out frames, and the Fisher ratio computed once. Scored fold by fold
 instead, each fold's ratio divides by the spread within that fold alone (one
 trajectory per state with whole-trajectory folds): runs of a state that sit at
 different means along the CV (not equilibrated, or in sub-states they do not
@@ -175,21 +176,53 @@ def fold_scores(fold_moments, idx, *, objective="separate", method="lda", shrink
 _MAX_RATIO = 1e12
 
 
-def _signed_scaled(w, train_means, train_covs, priors):
-    """Each fold's direction (``w``, shape (..., k)) signed so the last state's training
-    mean lies at or above the first's along it, and scaled to unit variance on the
-    training folds (within-state plus between-state, the states weighted by `priors`): the
-    CV each fold's fit hands on, in the unit of that fit, so that the held-out folds can be
-    pooled. (Not the within-state variance alone: along a CV rigid within the states it is
-    rounding, and so would be the folds' units.) A direction without training spread keeps
-    its length."""
-    proj = (train_means * w[..., None, :]).sum(axis=-1)  # (..., n_states)
-    sign = np.where(proj[..., -1] < proj[..., 0], -1.0, 1.0)
+def _unit_scaled(w, all_means, all_covs, priors):
+    """Directions ``w`` (shape (..., k)) scaled to unit variance along them over all frames
+    (within plus between the states, weighted by `priors`; means and covariances of the
+    states over every fold, broadcast against `w`): one unit for every fold, so that the
+    held-out folds can be pooled (the same direction gets the same length in every fold;
+    the within-state part alone would be rounding along a CV rigid within the states). A
+    direction without spread keeps its length."""
+    proj = (all_means * w[..., None, :]).sum(axis=-1)  # (..., n_states)
     centred = proj - (priors * proj).sum(axis=-1, keepdims=True)
-    var = (priors * (quadratic_forms(w[..., None, :], train_covs) + centred ** 2)).sum(axis=-1)
+    var = (priors * (quadratic_forms(w[..., None, :], all_covs) + centred ** 2)).sum(axis=-1)
     with np.errstate(invalid="ignore"):
         scale = np.where(var > 0, np.sqrt(np.where(var > 0, var, 1.0)), 1.0)
-    return w * (sign / scale)[..., None]
+    return w / scale[..., None]
+
+
+def _fold_signs(u, priors):
+    """Signs (shape (n_folds, ...)) that make the folds' directions agree, from their
+    training folds alone: ``u`` (shape (n_folds, ..., n_states)) holds each fold's
+    training state means along its direction; each fold is turned so that this pattern
+    (less its prior-weighted mean) has a non-negative prior-weighted product with that of
+    the fold whose training states spread most (the first such). Independent of the order
+    of the states; for two states, every fold then has the states in one order on its
+    training folds. (Which way round all the folds lie does not change a score.)"""
+    uc = u - (priors * u).sum(axis=-1, keepdims=True)
+    ref = np.argmax((priors * uc * uc).sum(axis=-1), axis=0)  # (...)
+    u_ref = np.take_along_axis(uc, ref[None, ..., None], axis=0)
+    return np.where((priors * uc * u_ref).sum(axis=-1) < 0, -1.0, 1.0)
+
+
+def _fold_projections(fm, idx, directions):
+    """Each fold's direction on features `idx` scaled to one unit (:func:`_unit_scaled`)
+    and signed to agree with the others (:func:`_fold_signs`), with the held-out states'
+    means `t` and variances `v` along it and the training states' means `u` (arrays of
+    shape (1, n_folds, n_states))."""
+    idx = np.asarray(idx, dtype=np.intp)
+    all_means, all_covs = state_arrays(fm.pooled(), idx)
+    ws = []
+    t, v, u = np.empty((3, 1, fm.n_folds, fm.n_states))
+    for k, w in enumerate(directions):
+        w = _unit_scaled(np.asarray(w, dtype=np.float64), all_means, all_covs, fm.priors)
+        u[0, k] = (state_arrays(fm.train(k), idx)[0] * w).sum(axis=-1)
+        means, covs = state_arrays(fm.test(k), idx)
+        t[0, k], v[0, k] = (means * w).sum(axis=-1), quadratic_forms(w, covs)
+        ws.append(w)
+    signs = _fold_signs(u[0], fm.priors)
+    return ([w * sk for w, sk in zip(ws, signs)], t * signs[:, None], v,
+            u * signs[:, None])
 
 
 def _fisher(t, v, u, priors):
@@ -210,7 +243,9 @@ def _fisher(t, v, u, priors):
         between = np.where(norm > 0, np.maximum(cross, 0.0) ** 2 / norm,
                            np.where(np.isnan(cross), np.nan, 0.0))
         within = (priors * v).sum(axis=-1)
-        ratio = np.where(within <= 0, np.where(between > 0, np.inf, 0.0), between / within)
+        ratio = np.where(within <= 0, np.where(between > 0, np.inf,
+                                               np.where(np.isnan(between), np.nan, 0.0)),
+                         between / within)
     return np.minimum(ratio, _MAX_RATIO)
 
 
@@ -282,31 +317,20 @@ def _fold_scores_one(fold_moments, idx, objective, method, shrinkage):
         # (the jackknife standard error of a mean is the usual one)
         se = out.std(ddof=1) / np.sqrt(fm.n_folds) if fm.n_folds > 1 else 0.0
         return float(out.mean()), float(se), out
-    t, v, u = np.empty((3, 1, fm.n_folds, fm.n_states))
+    ws, t, v, u = _fold_projections(fm, idx, [
+        fit_direction(fm.train(k), idx, fm.priors, shrinkage, method=method)
+        for k in range(fm.n_folds)])
     num, den = np.full((2, 1, fm.n_folds), np.nan)
     count = np.zeros(fm.n_folds)
-    for k in range(fm.n_folds):
-        w = fit_direction(fm.train(k), idx, fm.priors, shrinkage, method=method)
-        w, t[0, k], v[0, k], u[0, k] = _heldout_projection(fm, k, idx, w)
-        if objective == "both":
+    if objective == "both":
+        sub = np.ix_(idx, idx)
+        for k, w in enumerate(ws):
             count[k], c0, ct = fm.slowness_covariances(k)
             if count[k] > 0:
-                sub = np.ix_(idx, idx)
                 num[0, k], den[0, k] = quadratic_forms(w, ct[sub]), quadratic_forms(w, c0[sub])
     score, se, per_fold = _summary(t, v, u, _fold_counts(fm), fm.priors, objective,
                                    (count, num, den) if objective == "both" else None)
     return float(score[0]), float(se[0]), per_fold[0]
-
-
-def _heldout_projection(fm, k, idx, w):
-    """Fold `k`'s direction `w` on features `idx` signed and scaled by its training folds
-    (:func:`_signed_scaled`), the held-out states' means and variances along it, and the
-    training states' means."""
-    train_means, train_covs = state_arrays(fm.train(k), idx)
-    w = _signed_scaled(np.asarray(w, dtype=np.float64), train_means, train_covs, fm.priors)
-    means, covs = state_arrays(fm.test(k), idx)
-    return (w, (means * w).sum(axis=-1), quadratic_forms(w, covs),
-            (train_means * w).sum(axis=-1))
 
 
 def heldout_fisher_along(fold_moments, idx, directions):
@@ -345,10 +369,7 @@ def heldout_fisher_along(fold_moments, idx, directions):
     1.0
     """
     fm = fold_moments
-    idx = np.asarray(idx, dtype=np.intp)
-    t, v, u = np.empty((3, 1, fm.n_folds, fm.n_states))
-    for k, w in enumerate(directions):
-        _, t[0, k], v[0, k], u[0, k] = _heldout_projection(fm, k, idx, w)
+    _, t, v, u = _fold_projections(fm, idx, directions)
     score, se, per_fold = _summary(t, v, u, _fold_counts(fm), fm.priors, "separate")
     return float(score[0]), float(se[0]), per_fold[0]
 
@@ -397,16 +418,15 @@ def heldout_autocorrelation(fold_moments, idx, directions, pairs):
 
 
 def scaled_fold_directions(fold_moments, idx, directions):
-    """Each fold's direction signed and scaled by its training folds, as the held-out scores
-    take it: the last state's training mean at or above the first's, unit variance (within
-    plus between the states) on the training folds.
+    """Each fold's direction as the held-out scores take it: scaled to unit variance over
+    all frames (within plus between the states) and signed so that the folds agree on the
+    order of the states on their training folds (:func:`_fold_signs`)
 
     Returns
     -------
     list of ndarray
     """
-    return [_heldout_projection(fold_moments, k, np.asarray(idx, dtype=np.intp), w)[0]
-            for k, w in enumerate(directions)]
+    return _fold_projections(fold_moments, idx, directions)[0]
 
 
 def pooled_autocorrelation(directions, pairs, idx):
@@ -498,9 +518,11 @@ def _two_state_fold_scores(fold_moments, combos, objective, method, shrinkage):
     means, covs = stacked_state_arrays([fm.train(k) for k in folds], combos)
     w, ok = two_state_directions(means, covs, priors, shrinkage=shrinkage,
                                  within=_within(method))
-    w = _signed_scaled(w, means, covs, priors)  # (n_folds, n_combos, k)
+    w = _unit_scaled(w, *stacked_state_arrays([fm.pooled()], combos), priors)
     u = (means * w[..., None, :]).sum(axis=-1)  # training state means (n_folds, n_combos,
     # n_states)
+    signs = _fold_signs(u, priors)  # (n_folds, n_combos)
+    w, u = w * signs[..., None], u * signs[..., None]
     means, covs = stacked_state_arrays([fm.test(k) for k in folds], combos)
     t = (means * w[..., None, :]).sum(axis=-1)  # (n_folds, n_combos, n_states)
     v = quadratic_forms(w[..., None, :], covs)
@@ -559,8 +581,9 @@ def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shri
     score : float
         Held-out score (dimensionless). ``separate``: the Fisher ratio of the held-out
         folds pooled, each fold's frames projected on the direction fitted without it
-        (signed so the last state lies above the first on its training folds, scaled to
-        unit variance there), the states' means and variances over all the
+        (scaled to unit variance over all frames and signed so that the folds agree on the
+        order of the states on their training folds), the states' means and variances over
+        all the
         held-out frames, the between-state variance taken along the training folds'
         pattern of state means (for two states: zero when the held-out states lie in the
         other order); ``both``: that ratio mapped to [0, 1) and weighted by the
@@ -570,7 +593,8 @@ def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shri
         Its standard error: the jackknife's over the folds (each fold left out of the
         pooling in turn; Efron and Tibshirani 1993, *An Introduction to the Bootstrap*,
         Chapman & Hall, ch. 11), for ``slow`` the standard deviation over the folds over
-        sqrt(n_folds), which is the jackknife's for a mean.
+        sqrt(n_folds), which is the jackknife's for a mean. With two folds each left-out
+        value is the other fold's own score: a crude error.
     per_fold : ndarray of shape (n_folds,)
         Each fold's score on its own (:func:`fold_scores`): with runs of a state at
         different means along the CV, above the pooled score.
