@@ -31,8 +31,8 @@ def test_the_pooled_ratio_of_a_worked_example():
     # Pooled: A {0, 2, 2, 4} (mean 2, variance 2), B {4, 6, 6, 8} (mean 6, variance 2):
     # between 4, within 2, J 2 (Fisher 1936, Ann. Eugen. 7:179, for the ratio; the
     # numbers by hand). Leaving either fold out leaves the other's J 4: a jackknife
-    # standard error of 0 (Efron and Tibshirani 1993, An Introduction to the Bootstrap,
-    # ch. 11).
+    # standard error of 0 (from memory: Efron and Tibshirani 1993, An Introduction to the
+    # Bootstrap, ch. 11).
     fm = _fm([[[0.0, 2.0], [2.0, 4.0]], [[4.0, 6.0], [6.0, 8.0]]])
     score, se, per_fold = heldout_score(fm, [0], shrinkage=0.0)
     assert score == pytest.approx(2.0)

@@ -600,7 +600,8 @@ _J_HEAD = "held-out J ± SE over folds"
 
 _TOP_LEGEND = ("Held-out J: Fisher ratio (between-state over within-state variance of the CV, "
                "dimensionless) on frames not used to fit it, the held-out folds pooled, ± its "
-               "jackknife standard error over the folds; overlap: 0 = states fully separated along the CV, 1 = identical; "
+               "jackknife standard error over the folds; overlap: 0 = states fully separated "
+               "along the CV, 1 = identical; "
                "autocorr.: held-out normalized autocorrelation at the lag; intervals: nominal "
                "95 % block bootstrap; selection: fraction of bootstrap refits keeping the "
                "descriptor. Every column: summary.md and ranking.csv of the output directory.")

@@ -13,8 +13,8 @@ from ..fit import rayleigh_quotient, timescales_from_eigenvalues
 from ..score.card import card_intervals
 from ..score.redundancy import descriptor_correlation, redundancy_graph, representatives
 from ..score.univariate import overlap_coefficient, pairwise_overlaps
-from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction, greedy_search,
-                      heldout_autocorrelation, heldout_fisher_along, heldout_score,
+from ..search import (FoldMoments, autocorrelation_along, cv_direction, fit_direction,
+                      greedy_search, heldout_autocorrelation, heldout_fisher_along, heldout_score,
                       heldout_scores, rank_combinations, slow_direction, state_arrays,
                       within_states)
 from ..stats.bootstrap import (MIN_INTERVAL_BLOCKS, block_bootstrap, hull_interval,

@@ -756,8 +756,9 @@ class HeldOut:
 
 def _cv_plans(fits, fm, where):
     """Per ranked CV: its columns in the blocks, fold directions (in one unit and agreeing
-    in sign, :func:`~cvdesign.search.scaled_fold_directions`) and one histogram range for every fold, so that the folds' held-out histograms
-    add up bin by bin (the held-out overlap pools the folds, as the held-out scores do)."""
+    in sign, :func:`~cvdesign.search.scaled_fold_directions`) and one histogram range for
+    every fold, so that the folds' held-out histograms add up bin by bin (the held-out
+    overlap pools the folds, as the held-out scores do)."""
     plans = []
     for fit in fits:
         p_idx = np.array([where[int(i)] for i in fit.idx], dtype=np.intp)

@@ -290,7 +290,7 @@ def _summary(t, v, u, n, priors, objective, slowness=None):
         pooled = pooled / (1.0 + pooled) * both_weight(np.stack(rhos, axis=1))
     score, loo = pooled[:, 0], pooled[:, 1:]
     if n_folds > 1:  # jackknife over the folds (Efron and Tibshirani 1993, An Introduction
-        # to the Bootstrap, Chapman & Hall, ch. 11)
+        # to the Bootstrap, Chapman & Hall, ch. 11; from memory)
         dev = loo - loo.mean(axis=1, keepdims=True)
         se = np.sqrt((n_folds - 1) / n_folds * (dev ** 2).sum(axis=1))
     else:
@@ -592,7 +592,7 @@ def heldout_score(fold_moments, idx, *, objective="separate", method="lda", shri
     se : float
         Its standard error: the jackknife's over the folds (each fold left out of the
         pooling in turn; Efron and Tibshirani 1993, *An Introduction to the Bootstrap*,
-        Chapman & Hall, ch. 11), for ``slow`` the standard deviation over the folds over
+        Chapman & Hall, ch. 11, from memory), for ``slow`` the standard deviation over the folds over
         sqrt(n_folds), which is the jackknife's for a mean. With two folds each left-out
         value is the other fold's own score: a crude error.
     per_fold : ndarray of shape (n_folds,)
