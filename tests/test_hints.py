@@ -329,8 +329,30 @@ def test_long_autocorrelation_time_is_capped_with_a_note():
     assert h["deposition"]["interval_steps"] == 125000
 
 
-def test_short_autocorrelation_time_gives_one_step_with_a_warning():
+def test_a_short_autocorrelation_time_is_lengthened_to_the_rate_the_hints_flag():
+    """A time of 0.1 fs would give one MD step per kernel; the interval is lengthened so that
+    the initial rate stays at 5 kJ/mol/ps, the rate the hints flag (common practice, from
+    memory): 0.5 kT = 1.2472 kJ/mol at 300 K over 5 kJ/mol/ps = 0.2494 ps = 124.7 steps of 2 fs,
+    so 125 steps, and no warning about the hints' own suggestion."""
     h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=0.0001)
+    dep = h["deposition"]
+    assert dep["interval_steps"] == 125 and dep["rate_limited"] is True
+    assert dep["rate_kj_mol_ps"] == pytest.approx(0.5 * KT / 0.25, rel=1e-12)
+    assert dep["rate_kj_mol_ps"] <= 5.0 and h["warnings"] == []
+    (note,) = [line for line in h["reasoning"] if "lengthened to 125 steps" in line]
+    assert note.startswith("Note: the interval from the autocorrelation time, 1 step (0.002 ps)")
+    assert ("125 steps = 0.25 ps (lengthened: at most 5 kJ/mol per ps at first)"
+            in format_hints(h))
+    # a time that already gives a slow enough rate is not touched
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=1.0)
+    assert h["deposition"]["interval_steps"] == 500 and h["deposition"]["rate_limited"] is False
+
+
+def test_a_cap_below_the_rate_limit_keeps_one_step_with_both_warnings():
+    """max_interval_ps bounds the rate's lengthening too: capped at one step, the interval of
+    one step gets the few-steps and the rate warnings."""
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=0.0001,
+                      max_interval_ps=0.002)
     assert h["deposition"]["interval_steps"] == 1
     assert len(h["warnings"]) == 2
     assert h["warnings"][0].startswith("the deposition interval is 1 MD step (0.002 ps): a "
@@ -339,6 +361,12 @@ def test_short_autocorrelation_time_gives_one_step_with_a_warning():
     # 0.5 kT = 1.247 kJ/mol every 0.002 ps
     assert h["warnings"][1].startswith("the bias grows at 624 kJ/mol per ps at first")
     assert h["deposition"]["rate_kj_mol_ps"] == pytest.approx(0.5 * KT / 0.002, rel=1e-12)
+    # a small height allows a few steps: only the few-steps warning
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=0.0001,
+                      height_kt=0.01)  # 0.0249 kJ/mol / 5 kJ/mol/ps = 2.5 steps -> 3
+    assert h["deposition"]["interval_steps"] == 3 and h["deposition"]["rate_limited"]
+    (text,) = h["warnings"]
+    assert text.startswith("the deposition interval is 3 MD steps")
 
 
 def test_usual_inputs_give_no_warnings():
@@ -642,7 +670,7 @@ def test_a_time_below_the_frame_spacing_is_flagged_as_not_resolved_by_the_frames
     assert coarse["deposition"]["interval_steps"] == fine["deposition"]["interval_steps"] == 500
     (text,) = coarse["warnings"]
     assert "shorter than the spacing of the saved frames it was measured on (2 ps)" in text
-    assert "and so is the interval sized from it (1 ps)" in text
+    assert "and so is an interval sized from it (1 ps)" in text
     assert "save frames more often than every 2 ps" in text
     assert any(line == "Note: " + text + "." for line in coarse["reasoning"])
     unknown = suggest_hints(STATES, autocorrelation_time_ps=1.0, **kw)
@@ -664,18 +692,23 @@ def test_a_time_that_did_not_decay_is_flagged_as_a_lower_bound():
         suggest_hints(STATES, frame_spacing_ps=-1.0, **kw)
 
 
-def test_a_fast_deposition_rate_gets_a_warning_and_a_usual_one_none():
+def test_a_fast_deposition_rate_is_lengthened_and_only_a_cap_keeps_it_with_a_warning():
     """Rate = initial height / interval: 0.5 kT = 1.247 kJ/mol at 300 K every 0.2 ps is 6.2
     kJ/mol/ps, above the 5 kJ/mol/ps the hints flag (usual rates are about 1; common
-    practice, from memory); every 0.3 ps it is 4.2, not flagged."""
+    practice, from memory): the interval becomes 125 steps (0.25 ps); every 0.3 ps it is 4.2,
+    kept. Under a cap of 0.2 ps the interval stays at 0.2 ps, with the warning."""
     kw = dict(temperature=T, md_step_fs=2.0, barrier=50.0)
     fast = suggest_hints(STATES, autocorrelation_time_ps=0.2, **kw)
-    assert fast["deposition"]["rate_kj_mol_ps"] == pytest.approx(0.5 * KT / 0.2, rel=1e-12)
-    (text,) = fast["warnings"]
+    assert fast["deposition"]["interval_steps"] == 125 and fast["warnings"] == []
+    capped = suggest_hints(STATES, autocorrelation_time_ps=0.2, max_interval_ps=0.2, **kw)
+    assert capped["deposition"]["rate_kj_mol_ps"] == pytest.approx(0.5 * KT / 0.2, rel=1e-12)
+    (text,) = capped["warnings"]
     assert text.startswith("the bias grows at 6.24 kJ/mol per ps at first (1.25 kJ/mol every "
                            "0.2 ps)")
     assert "about 624 steps for 1 kJ/mol/ps" in text  # 1.247 ps of 2 fs steps
-    assert suggest_hints(STATES, autocorrelation_time_ps=0.3, **kw)["warnings"] == []
+    usual = suggest_hints(STATES, autocorrelation_time_ps=0.3, **kw)
+    assert usual["warnings"] == [] and usual["deposition"]["interval_steps"] == 150
+    assert usual["deposition"]["rate_limited"] is False
 
 
 def test_an_unresolved_time_capped_and_a_short_lower_bound_are_worded_as_they_are():
@@ -686,7 +719,7 @@ def test_an_unresolved_time_capped_and_a_short_lower_bound_are_worded_as_they_ar
     h = suggest_hints(STATES, autocorrelation_time_ps=12.0, frame_spacing_ps=20.0, **kw)
     assert h["deposition"]["interval_ps"] == 10.0 and h["deposition"]["capped"]
     (text,) = h["warnings"]
-    assert "the interval sized from it (10 ps)" in text
+    assert "an interval sized from it (10 ps)" in text
     assert any(line.startswith("Note: 12 ps is above max_interval_ps = 10 ps")
                for line in h["reasoning"])
     h = suggest_hints(STATES, autocorrelation_time_ps=0.13, frame_spacing_ps=0.2,

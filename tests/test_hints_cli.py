@@ -23,21 +23,27 @@ def test_specs_carry_hints_computed_from_the_data(demo_result):
     assert spec["provenance"]["parameters"]["md_step_fs"] == 2.0
     tau = spec["scores"]["integrated_time_ps"]
     assert tau > 0
-    assert hints["deposition"]["interval_steps"] == max(1, round(tau * 1000 / 2.0))
+    # sized from the time, lengthened to the rate the hints flag (5 kJ/mol/ps at the initial
+    # height of 0.5 kT): the longer of the two
+    kt = hints["inputs"]["kt_kj_mol"]
+    from_rate = -(-0.5 * kt / 5.0 * 1000 / 2.0 // 1)
+    assert hints["deposition"]["interval_steps"] == max(round(tau * 1000 / 2.0), from_rate)
+    assert hints["deposition"]["rate_kj_mol_ps"] <= 5.0
     assert "not guarantees" in hints["caution"]
     # the demo's rank-1 CV (cos and sin of the latch torsion) is folded at both states; its
     # within-state time is shorter than the demo's 0.2 ps between frames, so the frames do
-    # not resolve it (the interval sized from it is of the order of the spacing), and half a
-    # kT per ~0.12 ps is a fast deposition
+    # not resolve it (an interval sized from it is of the order of the spacing), and half a
+    # kT per ~0.12 ps would be a fast deposition: lengthened, without a warning of its own
     assert spec["scores"]["frame_spacing_ps"] == pytest.approx(0.2)
     assert spec["scores"]["integrated_time_decayed"] == 1
     assert tau < 0.2 and hints["deposition"]["tau_resolved"] is False
     assert hints["deposition"]["tau_lower_bound"] is False
-    folded, unresolved, fast = hints["warnings"]
+    folded, unresolved = hints["warnings"]
     assert "a folded coordinate" in folded and "'closed' sits at the lower" in folded
     assert "shorter than the spacing of the saved frames it was measured on (0.2 ps)" in \
-        unresolved and "so is the interval sized from it" in unresolved
-    assert fast.startswith("the bias grows at ")
+        unresolved and "so is an interval sized from it" in unresolved
+    assert hints["deposition"]["rate_limited"] is True
+    assert any("lengthened to 125 steps (0.25 ps)" in line for line in hints["reasoning"])
     assert "hints_refused" not in demo_result.ranking[0]
 
 

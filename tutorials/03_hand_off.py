@@ -52,7 +52,7 @@ FRICTION_PER_PS = 1.0
 N_WALKERS = 32            # walkers share one bias and are integrated in lockstep
 N_STEPS = 40_000          # per walker: 80 ps each, 2.56 ns in all
 BARRIER_KJ_MOL = 35.0     # barrier estimate for the hints (the toy's, by construction)
-HEIGHT_FRACTION = 0.25    # of the hinted kernel height; see step 4
+HEIGHT_KT = 0.125         # kernel height: a quarter of the hints' default 0.5 kT; see step 4
 SEED = 2026
 
 
@@ -86,12 +86,12 @@ def dihedral_spec(row, topology, states):
 def biased_run(spec, system, label):
     """Hints from the spec, then a well-tempered run of all walkers along its CV."""
     hints = spec_hints(spec, temperature=TEMPERATURE_K, md_step_fs=TIMESTEP_PS * 1000,
-                       barrier=BARRIER_KJ_MOL)
+                       barrier=BARRIER_KJ_MOL, height_kt=HEIGHT_KT)
     grid = hints["grid"]
     kernel_sigma = hints["kernel"]["sigma"]
     interval_steps = hints["deposition"]["interval_steps"]
     bias_factor = hints["well_tempered"]["bias_factor"]
-    height = HEIGHT_FRACTION * hints["height_kj_mol"]
+    height = hints["height_kj_mol"]
     print(f"\n{label}: sigma {kernel_sigma:.4g} CV units, deposit every {interval_steps} steps, "
           f"bias factor {bias_factor:.2f} (for a {BARRIER_KJ_MOL:g} kJ/mol barrier), height "
           f"{height:.3f} kJ/mol, grid [{grid['lower']:.4g}, {grid['upper']:.4g}] in "
@@ -151,10 +151,12 @@ def main(out_dir, keep=True):
 
     # ------------------------------------------------------------ 4-5. biased runs
     # Starting values from the hints: kernel width from the within-state spread,
-    # deposition interval from the CV's integrated autocorrelation time, bias factor
-    # from the barrier estimate. One deliberate change: the walkers all deposit into
+    # deposition interval from the CV's integrated autocorrelation time (lengthened so
+    # that the bias grows no faster than 5 kJ/mol per ps at the kernel height), bias
+    # factor from the barrier estimate. One deliberate change: the walkers all deposit into
     # one bias, so it grows N_WALKERS times as fast as a single run's would; a quarter
-    # of the hinted height keeps the growth nearer to the quasi-static regime that
+    # of the hints' default height (height_kt=HEIGHT_KT, so that the interval the hints
+    # give fits that height) keeps the growth nearer to the quasi-static regime that
     # the free-energy estimate assumes, and the basins still fill within the run.
     # Like every hint, that is a choice to check, here against the reference below.
     best_run, best_transitions = biased_run(best, system, "rank-1 CV")

@@ -53,7 +53,8 @@ TEMPERATURE_K = 300.0     # the demo data were simulated at 300 K
 TIMESTEP_PS = 0.002
 FRICTION_PER_PS = 1.0
 BARRIER_KJ_MOL = 35.0     # barrier estimate for the hints (the toy's, by construction)
-HEIGHT_FRACTION = 0.25    # of the hinted height: the walkers share one bias (see tutorial 03)
+HEIGHT_KT = 0.125         # a quarter of the hints' default height: the walkers share one
+                          # bias (see tutorial 03)
 REPORT_STEPS = 50         # steps between saved frames (0.1 ps)
 SEED = 2026
 CV1_RANK = 3              # CV 1: the rank-3 spec, deliberately not the best
@@ -75,12 +76,12 @@ def biased_walkers(spec, system, n_walkers, n_steps, label, out_dir):
     and the bias energies (n_frames, n_walkers), kJ/mol.
     """
     hints = spec_hints(spec, temperature=TEMPERATURE_K, md_step_fs=TIMESTEP_PS * 1000,
-                       barrier=BARRIER_KJ_MOL)
+                       barrier=BARRIER_KJ_MOL, height_kt=HEIGHT_KT)
     grid = hints["grid"]
     interval = hints["deposition"]["interval_steps"]
     interval = max(REPORT_STEPS, REPORT_STEPS * round(interval / REPORT_STEPS))
     bias = WellTemperedBias(spec_cv(spec), sigma=hints["kernel"]["sigma"],
-                            height=HEIGHT_FRACTION * hints["height_kj_mol"],
+                            height=hints["height_kj_mol"],
                             interval_steps=interval,
                             bias_factor=hints["well_tempered"]["bias_factor"],
                             temperature=TEMPERATURE_K,

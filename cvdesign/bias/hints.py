@@ -165,10 +165,11 @@ _BARRIER_WARN_KJ_MOL = 400.0
 #: 100-1000 steps, about 0.1-1 ps, are usual; common practice, from memory).
 _FEW_STEPS = 10
 
-#: A deposition rate (kernel height / interval) above this, in kJ/mol per ps, gets a
-#: warning: usual rates are of order 1 kJ/mol/ps (heights of about 1 kJ/mol every 0.5-2
-#: ps; common practice, from memory), and a faster one lets motions slower than the CV
-#: lag behind the bias.
+#: The fastest initial deposition rate (kernel height / interval), in kJ/mol per ps, that
+#: the hints suggest: usual rates are of order 1 kJ/mol/ps (heights of about 1 kJ/mol every
+#: 0.5-2 ps; common practice, from memory), and a faster one lets motions slower than the
+#: CV lag behind the bias. An interval sized from a short autocorrelation time is
+#: lengthened to it; a faster rate (only under ``max_interval_ps``) gets a warning.
 _FAST_RATE_KJ_MOL_PS = 5.0
 
 _SOURCES = {
@@ -967,7 +968,8 @@ def suggest_hints(
           (False when the time is shorter than the frame spacing, None when
           either is unknown), ``tau_lower_bound`` (True when the time did not
           decay, None when unknown), ``rate_kj_mol_ps`` (initial height /
-          interval);
+          interval), ``rate_limited`` (True when the interval from the time
+          was lengthened so that this rate stays at most 5 kJ/mol/ps);
         * ``well_tempered``: ``bias_factor`` (None when tabulated),
           ``delta_t_k`` (K), ``barrier_kj_mol``,
           ``effective_barrier_kj_mol``, ``target_barrier_kt``, ``table``
@@ -1239,10 +1241,10 @@ def suggest_hints(
                 f"saved frames it was measured on ({frame_ps:.4g} ps): the CV decorrelates "
                 f"within about one frame, so the estimate dt (1/2 + sum rho), about half a "
                 f"spacing then, is set by the frame spacing rather than by the CV, and so is "
-                f"the interval sized from it ({tau_used:.4g} ps): the CV would allow a shorter "
-                f"one, motions slower than the CV may need a longer one (see any warning on "
-                f"the deposition rate); save frames more often than every {frame_ps:.4g} ps "
-                f"to measure the CV's time")
+                f"an interval sized from it ({tau_used:.4g} ps): the CV would allow a shorter "
+                f"one, motions slower than the CV may need a longer one (the reasoning says "
+                f"when the deposition rate lengthened it); save frames more often than every "
+                f"{frame_ps:.4g} ps to measure the CV's time")
             why.append("Note: " + text + ".")
             warnings.append(text)
         if autocorrelation_time_decayed is not None:
@@ -1265,6 +1267,24 @@ def suggest_hints(
                 why.append("Note: " + text + ".")
                 warnings.append(text)
     steps = max(1, int(round(tau_used * 1000.0 / dt_fs)))
+    # no faster than the rate the hints flag: the interval from a short time is lengthened
+    # (within max_interval_ps), so the suggestion does not contradict its own warning
+    rate_steps = int(math.ceil(height / _FAST_RATE_KJ_MOL_PS * 1000.0 / dt_fs * (1.0 - 1e-12)))
+    if cap is not None:
+        rate_steps = min(rate_steps, max(1, int(math.floor(cap * 1000.0 / dt_fs * (1.0 + 1e-12)))))
+    rate_limited = rate_steps > steps
+    if rate_limited:
+        why.append(
+            f"Note: the interval from the autocorrelation time, {steps} step"
+            f"{'s' if steps > 1 else ''} ({steps * dt_fs / 1000.0:.3g} ps), would grow the bias "
+            f"at {height / (steps * dt_fs / 1000.0):.3g} kJ/mol per ps at first; it is "
+            f"lengthened to {rate_steps} steps ({rate_steps * dt_fs / 1000.0:.3g} ps), a rate "
+            f"of at most {_FAST_RATE_KJ_MOL_PS:g} kJ/mol/ps at the initial height, the upper "
+            f"end of usual rates (about 1 kJ/mol/ps; {tag_cpm}): faster, motions slower than "
+            f"the CV lag behind the bias. A shorter interval fills faster and less "
+            f"accurately; a longer one (about {max(1, round(height * 1000.0 / dt_fs)):d} steps "
+            f"for 1 kJ/mol/ps) is the safer start.")
+        steps = rate_steps
     interval_ps = steps * dt_fs / 1000.0
     if steps < _FEW_STEPS:
         warnings.append(
@@ -1454,7 +1474,7 @@ def suggest_hints(
         "height_kj_mol": height,
         "deposition": {"interval_steps": steps, "interval_ps": interval_ps, "tau_ps": tau_used,
                        "capped": capped, "tau_resolved": resolved, "tau_lower_bound": lower_bound,
-                       "rate_kj_mol_ps": rate},
+                       "rate_kj_mol_ps": rate, "rate_limited": rate_limited},
         "well_tempered": well_tempered,
         "walls": walls,
         "grid": grid,
@@ -1890,7 +1910,10 @@ def format_hints(hints):
                    f"(variance of a Gaussian with sigma = {_g(k['sigma'])})")
     out.append(f"height           {_g(hints['height_kj_mol'])} kJ/mol (initial)")
     out.append(f"interval         {dep['interval_steps']} steps = {_g(dep['interval_ps'])} ps"
-               + (" (capped)" if dep["capped"] else ""))
+               + (" (capped)" if dep["capped"] else "")
+               + (" (lengthened: at most "
+                  f"{_g(_FAST_RATE_KJ_MOL_PS)} kJ/mol per ps at first)"
+                  if dep.get("rate_limited") else ""))
     if wt["bias_factor"] is not None:
         line = f"bias factor      {_g(wt['bias_factor'])} (dT = {_g(wt['delta_t_k'])} K)"
         if wt["barrier_kj_mol"] is not None:
