@@ -22,8 +22,8 @@ def _suggest_args(demo_files, out, *extra, states=None):
 
 
 def test_suggest_then_apply_end_to_end(demo_files, tmp_path, capsys):
-    out = tmp_path / "out"
-    assert main(_suggest_args(demo_files, out)) == 0
+    out = tmp_path / "out"  # the report is left out: tests/test_report.py checks it
+    assert main(_suggest_args(demo_files, out, "--no-report")) == 0
     printed = capsys.readouterr().out
     assert "rank" in printed and "cv-01.json" in printed and "caution" in printed
     assert {p.name for p in out.iterdir()} >= {"ranking.csv", "ranking.json", "scorecard.csv",
@@ -75,10 +75,13 @@ def test_installed_package_ships_the_demo_data():
 
 
 def test_demo_command_runs_and_points_at_the_slow_dihedral(tmp_path, capsys):
-    assert main(["demo", "--out", str(tmp_path / "d")]) == 0
+    # the whole demo, report included, runs in tests/test_regressions_io.py (the console
+    # script) and tests/test_report.py; here the command's own output, without the report
+    assert main(["demo", "--out", str(tmp_path / "d"), "--no-report"]) == 0
     out = capsys.readouterr().out
     assert "slow by construction; rank 1 uses it" in out
     assert (tmp_path / "d" / "summary.md").read_text().startswith("# cvdesign suggest")
+    assert not (tmp_path / "d" / "report.html").exists()
 
 
 def test_console_entry_point_help_explains_units():
@@ -138,7 +141,7 @@ def test_selection_matching_nothing_is_refused(demo_files, tmp_path, capsys):
 
 def test_nonempty_output_directory_needs_force(demo_files, tmp_path, capsys):
     out = tmp_path / "out"
-    assert main(_suggest_args(demo_files, out)) == 0
+    assert main(_suggest_args(demo_files, out)) == 0  # with its report
     (out / "keep.txt").write_text("mine")
     _fails(_suggest_args(demo_files, out), capsys, "exists and is not empty")
     assert (out / "keep.txt").exists()
@@ -150,7 +153,9 @@ def test_nonempty_output_directory_needs_force(demo_files, tmp_path, capsys):
     assert (out / "keep.txt").read_text() == "mine"
     (out / "keep.txt").unlink()
     (out / "cv-01.json").write_text("{}")
-    assert main(_suggest_args(demo_files, out, "--force")) == 0
+    # the earlier output, report included, is replaced (the new one without a report)
+    assert main(_suggest_args(demo_files, out, "--force", "--no-report")) == 0
+    assert not (out / "report.html").exists()
     assert (out / "cv-01.json").read_text() != "{}"
     other = tmp_path / "mine"
     other.mkdir()

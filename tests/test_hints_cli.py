@@ -254,7 +254,7 @@ def test_suggest_warns_about_an_unusual_md_step_and_stores_it_in_the_hints(demo_
     top, states = demo_files
     out = tmp_path / "out"
     argv = ["suggest", "--topology", top, "--out", str(out), "--bootstrap", "0",
-            "--max-terms", "1", "--suggestions", "1", "--md-step-fs", "20"]
+            "--max-terms", "1", "--suggestions", "1", "--md-step-fs", "20", "--no-report"]
     for name, files in states.items():
         argv += ["--state", name] + files[:1]
     assert main(argv) == 0

@@ -483,7 +483,8 @@ def test_cli_runs_writes_staying_probabilities_and_prints_metastable_warnings(
     top, paths = _write_walkers(tmp_path, np.vstack([hop, far]), seed=2)
     out = tmp_path / "out"
     assert main(["suggest", "--topology", top, "--runs", *paths, "--lag", "1", "--kinds",
-                 "distance", "--out", str(out), "--bootstrap", "0", "--max-terms", "1"]) == 0
+                 "distance", "--out", str(out), "--bootstrap", "0", "--max-terms", "1",
+                 "--no-report"]) == 0  # the runs' report: tests/test_report.py
     printed = capsys.readouterr()
     err = printed.err  # shown by default (--quiet leaves it to summary.md)
     assert "cvdesign suggest: warning: state S3 is not metastable at lag 1 ps" in err

@@ -320,7 +320,7 @@ def test_quiet_suggest_keeps_undefined_geometry_in_the_summary(tmp_path, capsys)
 
     top = _topology(5, [(i, i + 1) for i in range(4)])
     args = ["suggest", "-q", "--kinds", "angle", "--bootstrap", "0", "--max-terms", "1",
-            "--select", "all", "--out", str(tmp_path / "out")]
+            "--select", "all", "--no-report", "--out", str(tmp_path / "out")]
     for state, shift, late in (("A", 0.0, None), ("B", 0.1, 150)):
         path = tmp_path / f"{state}.dcd"
         md.Trajectory(_coincident_chain(200, seed=ord(state), shift=shift, coincide_from=late),
