@@ -2,6 +2,7 @@
 
 import json
 import math
+import re
 
 import numpy as np
 import pytest
@@ -656,6 +657,27 @@ def test_hints_warn_that_a_folded_coordinate_narrows_the_kernel_width():
         assert not any("folded coordinate" in w for w in h["warnings"])
 
 
+def test_a_folded_states_spread_where_the_cv_is_steepest_matches_a_sampled_torsion():
+    """Simulation check of the derived width: torsions drawn about 0 and pi with spreads of
+    0.2 and 0.3 rad, the CV their cosine (reachable range [-1, 1]). The warning's width at
+    the CV's steepest part is half the narrower torsion spread (0.5 x 0.2 rad x slope 1 =
+    0.1 CV units), recovered from the sampled means alone to a few percent; the width from
+    the spreads along the CV (0.5 x about 0.2^2 / sqrt(2) = 0.014) is far narrower."""
+    rng = np.random.default_rng(7)
+    states = {}
+    for name, centre, spread in (("closed", np.pi, 0.2), ("open", 0.0, 0.3)):
+        cv = np.cos(centre + spread * rng.standard_normal(200_000))
+        states[name] = {"mean": float(cv.mean()), "std": float(cv.std()), "n_frames": cv.size}
+    h = suggest_hints(states, temperature=300.0, md_step_fs=2.0, cv_range=(-1.0, 1.0))
+    (warning,) = [w for w in h["warnings"] if "folded coordinate" in w]
+    match = re.search(r"\(about (\S+) CV units there, (\S+) times this width", warning)
+    wide, ratio = float(match.group(1)), float(match.group(2))
+    assert wide == pytest.approx(0.5 * 0.2, rel=0.03)
+    assert ratio == pytest.approx(wide / h["kernel"]["sigma"], rel=0.01)
+    assert h["kernel"]["sigma"] == pytest.approx(0.5 * 0.2 ** 2 / math.sqrt(2), rel=0.05)
+    assert "fills in up to about half the time given" in warning
+
+
 def test_a_time_below_the_frame_spacing_is_flagged_as_not_resolved_by_the_frames():
     """Sokal's estimate dt (1/2 + sum rho) is about half a frame spacing whenever the CV has
     decorrelated by the next frame, so a time below one spacing measures the frames, not
@@ -740,3 +762,13 @@ def test_a_capped_lower_bound_still_says_it_is_a_lower_bound():
     decayed = suggest_hints(STATES, autocorrelation_time_ps=30.0,
                             autocorrelation_time_decayed=True, **kw)
     assert not any("lower bound" in w for w in decayed["warnings"])
+
+
+def test_the_bias_factor_names_the_largest_estimate_only_when_the_states_differ():
+    kw = dict(temperature=T, md_step_fs=2.0, autocorrelation_time_ps=1.0)
+    one = suggest_hints(STATES, barrier=40.0, **kw)["reasoning"]
+    assert any(line.startswith("Bias factor: gamma = ") and "for the barrier estimate 40 kJ/mol"
+               in line for line in one)
+    names = list(STATES)
+    two = suggest_hints(STATES, barrier={names[0]: 30.0, names[1]: 40.0}, **kw)["reasoning"]
+    assert any("for the largest barrier estimate 40 kJ/mol" in line for line in two)

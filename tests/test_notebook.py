@@ -318,3 +318,23 @@ def test_top_table_leaves_unknown_scores_empty(demo_result):
                    for r in demo_result.ranking[:2]]
     lines = res.top_table().splitlines()
     assert len(lines) == 3 and "0.000" not in lines[1]
+
+
+def test_the_summary_says_when_there_are_no_intervals_and_when_two_folds_make_the_error_rough(
+        demo_files, demo_result):
+    """Review findings: the summary described bootstrap intervals and their coverage also
+    when none were computed, and gave a two-fold jackknife error (half the difference of two
+    scores) without a word on how rough it is."""
+    top, states = demo_files
+    res = suggest(Source.from_states(top, states), n_folds=2, n_bootstrap=0, max_terms=1,
+                  n_suggestions=2, n_seeds=1)
+    text = res.summary_md()
+    assert len(res.ranking[0]["heldout_fisher_ratio_folds"]) == 2
+    assert "with two folds it is half the difference of the two folds' own scores" in text
+    assert "No bootstrap intervals or selection frequencies were computed" in text
+    assert "Intervals are nominal 95 % block-bootstrap intervals" not in text
+    # the demo with its defaults: more folds and intervals, described as such
+    full = demo_result.summary_md()
+    assert len(demo_result.ranking[0]["heldout_fisher_ratio_folds"]) > 2
+    assert "Intervals are nominal 95 % block-bootstrap intervals" in full
+    assert "with two folds" not in full

@@ -198,6 +198,35 @@ def _number(name, value, *, positive=True, allow_zero=False):
     return x
 
 
+def _unfolded_width(states, fit, folded, bounds, width_fraction):
+    """The kernel width, CV units, that keeps its fraction of each state's spread where a
+    folded CV is steepest, and its ratio to the width from the spreads along the CV; None
+    when it is not wider.
+
+    Model (derived here): near its bound ``b`` the CV is ``b -/+ a (1 - cos u)`` of one
+    coordinate ``u`` with ``a`` half the reachable range; a state centred on the fold with
+    spread ``s`` of ``u`` has its mean ``d = a s^2 / 2`` from the bound (to second order), so
+    ``s = sqrt(2 d / a)``, and where the CV is steepest (slope ``a``) that spread is
+    ``a s = sqrt(2 d a)`` CV units. States inside the range keep their spread along the CV.
+    """
+    lo, hi = bounds
+    half = 0.5 * (hi - lo)
+    scales = []
+    for name, v in fit.items():
+        if name in folded:
+            d = abs(v["mean"] - (lo if folded[name] == "lower" else hi))
+            scales.append(math.sqrt(2.0 * d * half))
+        else:
+            scales.append(v["std"])
+    if not scales:
+        return None
+    wide = width_fraction * min(scales)
+    narrow = width_fraction * min(v["std"] for v in fit.values())
+    if not (narrow > 0 and wide > 1.5 * narrow):
+        return None
+    return wide, wide / narrow
+
+
 def _kernel_kind(kernel):
     if kernel not in KERNELS:
         raise InputError(f"kernel={kernel!r} is not known; choose one of {', '.join(map(repr, KERNELS))}")
@@ -1118,16 +1147,25 @@ def suggest_hints(
 
     folded = {} if cv_range is None or periodic else states_at_bounds(st, (lo_range, hi_range))
     if folded:
+        steep = _unfolded_width(st, fit, folded, (lo_range, hi_range), f_width)
         warnings.append(
             "the kernel width comes from the states' spreads along the CV, and "
             + ", ".join(f"state {name!r} sits at the {side}" for name, side in folded.items())
             + " bound of its reachable range (a folded coordinate): there the CV changes only "
             "to second order with its descriptors, so its spread is compressed and the width "
-            "is narrower than the CV's scale between the states, where the bias must push; "
-            "a well-tempered run along such a CV (cos and sin of a torsion, "
-            "tutorials/04_real_engine.py) needed kernels about 5 times wider to stay stable "
-            "and accurate; start wider and check that the run neither heats up nor crosses "
-            "far more often than the barrier allows")
+            "is narrower than the CV's scale between the states, where the bias must push"
+            + ("" if steep is None else
+               f" (about {steep[0]:.3g} CV units there, {steep[1]:.2g} times this width: "
+               "the same fraction of the state's spread where the CV is steepest, if the CV "
+               "near the bound is half its reachable range times the cosine of one "
+               "coordinate, whose spread sqrt(2 d / a) then follows from the mean's distance "
+               "d to the bound and that half range a [derived here])")
+            + "; a well-tempered run along such a CV (cos and sin of a torsion, in cvdesign's "
+            "tutorial 04) needed kernels about 5 times wider to stay stable and accurate; "
+            "start wider and check that the run neither heats up nor crosses far more often "
+            "than the barrier allows. The fill times count each basin on both sides of its "
+            "mean, but the CV ends at the bound: a state there fills in up to about half the "
+            "time given")
 
     if len(st) == 1 and conf is None and not periodic:
         (only,) = st
@@ -1242,8 +1280,8 @@ def suggest_hints(
                 f"within about one frame, so the estimate dt (1/2 + sum rho), about half a "
                 f"spacing then, is set by the frame spacing rather than by the CV, and so is "
                 f"an interval sized from it ({tau_used:.4g} ps): the CV would allow a shorter "
-                f"one, motions slower than the CV may need a longer one (the reasoning says "
-                f"when the deposition rate lengthened it); save frames more often than every "
+                f"one, motions slower than the CV may need a longer one (the deposition rate "
+                f"may lengthen it too: see the reasoning); save frames more often than every "
                 f"{frame_ps:.4g} ps to measure the CV's time")
             why.append("Note: " + text + ".")
             warnings.append(text)
@@ -1279,11 +1317,13 @@ def suggest_hints(
             f"{'s' if steps > 1 else ''} ({steps * dt_fs / 1000.0:.3g} ps), would grow the bias "
             f"at {height / (steps * dt_fs / 1000.0):.3g} kJ/mol per ps at first; it is "
             f"lengthened to {rate_steps} steps ({rate_steps * dt_fs / 1000.0:.3g} ps), a rate "
-            f"of at most {_FAST_RATE_KJ_MOL_PS:g} kJ/mol/ps at the initial height, the upper "
-            f"end of usual rates (about 1 kJ/mol/ps; {tag_cpm}): faster, motions slower than "
-            f"the CV lag behind the bias. A shorter interval fills faster and less "
-            f"accurately; a longer one (about {max(1, round(height * 1000.0 / dt_fs)):d} steps "
-            f"for 1 kJ/mol/ps) is the safer start.")
+            f"of at most {_FAST_RATE_KJ_MOL_PS:g} kJ/mol/ps at the initial height, the fastest "
+            f"the hints accept without a warning: faster, motions slower than the CV lag "
+            f"behind the bias. Common practice is nearer 1 kJ/mol/ps ({tag_cpm}), about "
+            f"{max(1, round(height * 1000.0 / dt_fs)):d} steps here: a bias that fills "
+            f"{_FAST_RATE_KJ_MOL_PS:g} times more slowly, with a smaller error (the error "
+            f"grows with height / interval; Laio et al. 2005, from memory); choose it when "
+            f"the budget allows.")
         steps = rate_steps
     interval_ps = steps * dt_fs / 1000.0
     if steps < _FEW_STEPS:
@@ -1325,7 +1365,9 @@ def suggest_hints(
         f"at least 2, leaves about {n_target:g} kT {tag_cpm}: 2-5 kT."
     )
     if gamma_user is None and gamma is not None:
-        why.append(f"Bias factor: gamma = {gamma:.4g} for the largest barrier estimate "
+        which = ("the barrier estimate" if len(set(barriers.values())) == 1
+                 else "the largest barrier estimate")
+        why.append(f"Bias factor: gamma = {gamma:.4g} for {which} "
                    f"{wt_barrier:.4g} kJ/mol (dT = {(gamma - 1) * temperature:.4g} K). " + rule)
     elif gamma is None:
         why.append("Bias factor: no barrier estimate given, so gamma is tabulated over barrier "

@@ -188,6 +188,16 @@ class Suggestions:
         ``'all_pairs'`` or None; see ``slowness_ranked_on`` of the entries)."""
         return self.ranking[0].get("slowness_ranked_on") if self.ranking else None
 
+    def _n_folds(self):
+        """The number of cross-validation folds behind the held-out scores (None unknown)."""
+        folds = self.ranking[0].get("heldout_fisher_ratio_folds") if self.ranking else None
+        return None if folds is None else len(folds)
+
+    def _has_intervals(self):
+        """Whether any ranked CV's terms carry bootstrap intervals or selection frequencies."""
+        return any(t.get("weight_ci") or t.get("selection_frequency") is not None
+                   for r in self.ranking for t in r["terms"])
+
     def ranking_csv(self):
         """The ranking as CSV text (one row per combination)."""
         return _csv_text(_RANKING_TABLE, self.ranking)
@@ -252,7 +262,7 @@ class Suggestions:
 
     def top_table(self, n=5):
         """A plain-text table of the top `n` suggestions (separation and slowness)."""
-        lines = [f"{'rank':>4}  {'spec':<11} {'terms':>5}  {'held-out J':>10}  "
+        lines = [f"{'rank':>4}  {'spec':<11} {'descr':>5}  {'held-out J':>10}  "
                  f"{'overlap':>7}  {'autocorr':>8}  descriptors"]
         for r in self.ranking[:n]:
             names = ", ".join(dict.fromkeys(t["label"] for t in r["terms"]))
@@ -338,8 +348,11 @@ class Suggestions:
                 "such scores, so somewhat optimistic; ranking.csv's "
                 "heldout_fisher_ratio_noise is what noise alone gives one fixed direction), "
                 "± its jackknife standard error over the folds (from the folds, so given "
-                "also when there are no bootstrap uncertainties); "
-                "overlap is the "
+                "also when there are no bootstrap uncertainties"
+                + ("; with two folds it is half the difference of the two folds' own "
+                   "scores, a rough error that can come out small by chance"
+                   if self._n_folds() == 2 else "")
+                + "); overlap is the "
                 "histogram overlapping coefficient of the states along the CV on those frames "
                 "(0 = fully separated, 1 = identical); autocorrelation is the held-out "
                 "normalized autocorrelation of the CV at the lag (1 = does not relax within "
@@ -373,13 +386,15 @@ class Suggestions:
                 + "a timescale longer than the longest run (for pairs within one state: "
                 "the longest run or visit of one state) is only a lower bound, and so is one "
                 "held up by the offsets between the states (pairs that never leave their "
-                "state stay correlated through them): both are shown as not resolved. "
-                "Intervals are nominal 95 % block-bootstrap intervals (their measured coverage "
-                "with blocks of about two integrated times is 87-92 %: read them as somewhat "
-                "narrow); selection is the fraction of "
-                "bootstrap refits of the whole search in which the descriptor is kept in the "
-                "refit's counterpart of this CV (its ranked combination sharing the most "
-                "descriptors with it).", "",
+                "state stay correlated through them): both are shown as not resolved."
+                + (" Intervals are nominal 95 % block-bootstrap intervals (in our checks, "
+                   "blocks of about two integrated times covered 87-92 %: read them as "
+                   "somewhat narrow); selection is the fraction of "
+                   "bootstrap refits of the whole search in which the descriptor is kept in "
+                   "the refit's counterpart of this CV (its ranked combination sharing the "
+                   "most descriptors with it)." if self._has_intervals() else
+                   " No bootstrap intervals or selection frequencies were computed (see "
+                   "'uncertainties' above)."), "",
                 f"| rank | spec | {_J_HEAD} | overlap | autocorr. | timescale (ps) | "
                 "descriptors (weight [nominal 95 % CI], selection) |",
                 "| ---: | --- | ---: | ---: | ---: | ---: | --- |"]

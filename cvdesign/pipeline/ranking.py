@@ -260,7 +260,11 @@ def add_ranges(entry, pool, observed, states):
         f"[{_bound(low)}, {_bound(high)}]: a folded coordinate. Near a bound the CV changes "
         "only to second order with its descriptors, so structures on either side of the fold "
         "(e.g. a dihedral on either side of the angle where its cos or sin peaks) give the "
-        f"same value and the bias force along the CV fades there; {todo}")
+        f"same value and the bias force along the CV fades there. The fold also compresses "
+        "the states' spreads along the CV, which raises its Fisher ratio (held-out J) above "
+        "that of a CV without a fold that separates the states as well (the dihedral of a "
+        "torsion whose states sit near 0 and pi can score far lower as a periodic CV than its "
+        f"cos): compare J across CVs with that in mind; {todo}")
 
 
 def _bound(x):

@@ -962,7 +962,8 @@ def _card_pass(every, pool, screening, seg_counts, iat_desc, steps, lags, first)
     note = (f"score card: nominal 95 % block-bootstrap intervals for {what}, {blocks} of each run "
             "resampled within each state (lagged pairs in the block of their first frame); "
             "integrated times: asymptotic 95 % intervals (Madras and Sokal 1988), since "
-            "their window is longer than a block")
+            + ("their window can be longer than a block" if bf else
+               "the runs themselves are the blocks, too few to resample a time"))
     return card, card_desc, card_feat, note
 
 
