@@ -10,6 +10,7 @@ import pytest
 import cvdesign.bias.hints
 from cvdesign import Source, Spec, suggest
 from cvdesign.cli import main
+from cvdesign.errors import InputError
 from cvdesign.bias.hints import suggest_hints
 from cvdesign.pipeline.ranking import hints_for
 
@@ -60,6 +61,8 @@ def test_hints_command_recomputes_from_the_spec_alone(demo_result, tmp_path, cap
                            autocorrelation_time_ps=spec["scores"]["integrated_time_ps"],
                            frame_spacing_ps=spec["scores"]["frame_spacing_ps"],
                            autocorrelation_time_decayed=True,
+                           autocorrelation_time_interval_ps=spec["scores"][
+                               "integrated_time_ci_ps"],
                            cv_range=(reach["lower"], reach["upper"]),
                            observed_range=(seen["lower"], seen["upper"]))
     assert got == json.loads(json.dumps(expect))
@@ -74,7 +77,8 @@ def test_hints_command_takes_the_cvs_time_and_warns_without_one(demo_result, tmp
     placeholder: a warning says so (it had been in the reasoning alone), and
     --autocorrelation-time-ps gives the time, as autocorrelation_time_ps= does in Python."""
     doc = json.loads(json.dumps(demo_result.specs[0]))
-    for key in ("integrated_time_ps", "frame_spacing_ps", "integrated_time_decayed"):
+    for key in ("integrated_time_ps", "frame_spacing_ps", "integrated_time_decayed",
+                "integrated_time_ci_ps"):
         doc["scores"].pop(key, None)
     spec_path = tmp_path / "cv.json"
     spec_path.write_text(json.dumps(doc))
@@ -303,3 +307,52 @@ def test_pipeline_records_refused_hints_in_ranking_spec_and_notes(demo_dir, monk
         assert f"bias hints refused for {entry['spec']}: {entry['hints_refused']}" in res.notes
         Spec.from_dict(spec)  # still a valid spec
     assert "hints_refused" in res.ranking_json()
+
+
+def test_a_poorly_determined_time_is_warned_about_from_the_ranking_and_from_a_spec(
+        demo_result, tmp_path, capsys):
+    """Review finding: a time measured on a few short runs (95 % interval [0.12, 9.3] ps)
+    sized the deposition interval without a word. The spec now records the interval
+    (scores.integrated_time_ci_ps, the ranking's integrated_time_ci_ps) and the hints warn
+    when its ends lie more than POOR_TIME_RATIO = 10 apart; the demo's (0.11-0.14 ps) gets
+    no such warning."""
+    entry, spec = demo_result.ranking[0], demo_result.specs[0]
+    assert spec["scores"]["integrated_time_ci_ps"] == list(entry["integrated_time_ci_ps"])
+    assert not any("poorly determined" in w for w in spec["hints"]["warnings"])
+    kw = dict(temperature=300.0, md_step_fs=2.0, autocorrelation_time_ps=1.07)
+    h = suggest_hints(spec["states"], autocorrelation_time_interval_ps=(0.123, 9.26), **kw)
+    (text,) = [w for w in h["warnings"] if "poorly determined" in w]
+    assert text.startswith("autocorrelation_time_ps = 1.07 ps is poorly determined: its 95 % "
+                           "interval [0.123, 9.26] ps spans more than a factor of 10")
+    assert h["inputs"]["autocorrelation_time_interval_ps"] == [0.123, 9.26]
+    h = suggest_hints(spec["states"], autocorrelation_time_interval_ps=(0.2, 1.9), **kw)
+    assert not any("poorly determined" in w for w in h["warnings"])
+    with pytest.raises(InputError, match="autocorrelation_time_interval_ps=.* must have "
+                                         "lower <= upper"):
+        suggest_hints(spec["states"], autocorrelation_time_interval_ps=(2.0, 1.0), **kw)
+    # from a spec file: a wide recorded interval warns; a malformed one is refused naming it
+    doc = json.loads(json.dumps(spec))
+    doc["scores"]["integrated_time_ci_ps"] = [0.01, 5.0]
+    path = tmp_path / "cv.json"
+    path.write_text(json.dumps(doc))
+    assert main(["hints", str(path), "--temperature", "300", "--md-step-fs", "2"]) == 0
+    assert "is poorly determined: its 95 % interval [0.01, 5] ps" in capsys.readouterr().err
+    doc["scores"]["integrated_time_ci_ps"] = [5.0]
+    path.write_text(json.dumps(doc))
+    assert main(["hints", str(path), "--temperature", "300", "--md-step-fs", "2"]) == 2
+    err = capsys.readouterr().err
+    assert "$.scores.integrated_time_ci_ps: must be a pair [lower, upper]" in err
+    assert "got [5.0]" in err and "cv.json" in err
+
+
+def test_a_spec_with_a_malformed_time_interval_is_refused_when_it_is_loaded(demo_result,
+                                                                           tmp_path):
+    from cvdesign import SpecError, load_spec
+
+    for bad in ([5.0], [2.0, 1.0], [0.0, 1.0], ["a", 1.0], 3.0):
+        doc = json.loads(json.dumps(demo_result.specs[0]))
+        doc["scores"]["integrated_time_ci_ps"] = bad
+        path = tmp_path / "cv.json"
+        path.write_text(json.dumps(doc))
+        with pytest.raises(SpecError, match=r"\$\.scores\.integrated_time_ci_ps"):
+            load_spec(path)

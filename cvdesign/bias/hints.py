@@ -82,6 +82,7 @@ __all__ = [
     "KERNELS",
     "MAX_GRID_BINS",
     "MD_STEP_LIMITS_FS",
+    "POOR_TIME_RATIO",
     "SPREAD_RESOLUTION",
     "TEMPERATURE_LIMITS_K",
     "states_at_bounds",
@@ -164,6 +165,13 @@ _BARRIER_WARN_KJ_MOL = 400.0
 #: Deposition intervals below this many MD steps get a warning (intervals of
 #: 100-1000 steps, about 0.1-1 ps, are usual; common practice, from memory).
 _FEW_STEPS = 10
+
+#: A 95 % interval of the autocorrelation time whose upper end is more than this many times
+#: its lower end gets a warning. Our choice: for the asymptotic interval on log tau
+#: (Madras and Sokal 1988) a factor of 10 is a relative standard error of about 60 %, an
+#: estimate known only to its order of magnitude (fewer than about six summation windows of
+#: frames per state).
+POOR_TIME_RATIO = 10.0
 
 #: The fastest initial deposition rate (kernel height / interval), in kJ/mol per ps, that
 #: the hints suggest: usual rates are of order 1 kJ/mol/ps (heights of about 1 kJ/mol every
@@ -844,6 +852,7 @@ def suggest_hints(
     autocorrelation_time_ps=None,
     frame_spacing_ps=None,
     autocorrelation_time_decayed=None,
+    autocorrelation_time_interval_ps=None,
     barrier=None,
     kernel="gaussian",
     cv_range=None,
@@ -899,6 +908,12 @@ def suggest_hints(
         False when the autocorrelation had not decayed within the runs, so the
         time is a lower bound (a ranking's ``integrated_time_decayed``); the
         hints then say that the interval may be too short. None: unknown.
+    autocorrelation_time_interval_ps : (float, float), optional
+        The time's 95 % interval, ps (a ranking's ``integrated_time_ci_ps``, a
+        spec's ``scores.integrated_time_ci_ps``). One whose ends are more than
+        :data:`POOR_TIME_RATIO` apart gets a warning: the time, and the
+        deposition interval sized from it, are not known to within a factor of
+        that much.
     barrier : float or dict, optional
         Barrier estimate ``dG`` to leave the states, in kJ/mol: one value
         for all states or ``{state: value}``. When None, bias factors and fill
@@ -984,7 +999,8 @@ def suggest_hints(
         * ``warnings``: list of str, values that are possible but unusual
           enough to suggest a mistake (empty when none);
         * ``inputs``: ``temperature_k``, ``md_step_fs``, ``kt_kj_mol``,
-          ``autocorrelation_time_ps``, ``barrier_kj_mol`` (None, float, or
+          ``autocorrelation_time_ps``, ``autocorrelation_time_interval_ps``
+          (``[lower, upper]`` or None), ``barrier_kj_mol`` (None, float, or
           ``{state: float}``), ``states``, ``cv_range`` and
           ``observed_range`` (``[lower, upper]`` or None);
         * ``kernel``: ``kind``, ``sigma`` (Gaussian width or Lucy's
@@ -1066,6 +1082,19 @@ def suggest_hints(
         raise InputError(f"grid_fraction={grid_fraction!r} must be in (0, 1]")
     tau = None if autocorrelation_time_ps is None else _number("autocorrelation_time_ps", autocorrelation_time_ps)
     frame_ps = None if frame_spacing_ps is None else _number("frame_spacing_ps", frame_spacing_ps)
+    tau_interval = None
+    if autocorrelation_time_interval_ps is not None:
+        try:
+            lo_t, hi_t = autocorrelation_time_interval_ps
+        except (TypeError, ValueError):
+            raise InputError("autocorrelation_time_interval_ps must be a pair (lower, upper) "
+                             f"in ps; got {autocorrelation_time_interval_ps!r}") from None
+        lo_t = _number("autocorrelation_time_interval_ps[0]", lo_t)
+        hi_t = _number("autocorrelation_time_interval_ps[1]", hi_t)
+        if not hi_t >= lo_t:
+            raise InputError(f"autocorrelation_time_interval_ps={(lo_t, hi_t)!r} must have "
+                             "lower <= upper")
+        tau_interval = [lo_t, hi_t]
     if autocorrelation_time_decayed is not None and not isinstance(
             autocorrelation_time_decayed, (bool, np.bool_)):
         raise InputError("autocorrelation_time_decayed must be True, False or None; got "
@@ -1304,6 +1333,15 @@ def suggest_hints(
                     f"would not wait for; longer runs per state measure it")
                 why.append("Note: " + text + ".")
                 warnings.append(text)
+    if tau is not None and tau_interval is not None and \
+            tau_interval[1] > POOR_TIME_RATIO * tau_interval[0]:
+        text = (f"autocorrelation_time_ps = {tau:.4g} ps is poorly determined: its 95 % interval "
+                f"[{tau_interval[0]:.3g}, {tau_interval[1]:.3g}] ps spans more than a factor "
+                f"of {POOR_TIME_RATIO:g} (too few frames or runs per state to measure it), and "
+                "so does the deposition interval sized from it; longer or more runs per state "
+                "measure it, or give a time of your own")
+        why.append("Note: " + text + ".")
+        warnings.append(text)
     steps = max(1, int(round(tau_used * 1000.0 / dt_fs)))
     # no faster than the rate the hints flag: the interval from a short time is lengthened
     # (within max_interval_ps), so the suggestion does not contradict its own warning
@@ -1505,6 +1543,7 @@ def suggest_hints(
             "frame_spacing_ps": frame_ps,
             "autocorrelation_time_decayed": (None if autocorrelation_time_decayed is None
                                              else bool(autocorrelation_time_decayed)),
+            "autocorrelation_time_interval_ps": tau_interval,
             "barrier_kj_mol": (None if barriers is None else
                                (barriers if isinstance(barrier, Mapping) else float(barrier))),
             "states": st,
@@ -1793,9 +1832,10 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
         raise InputError(f"spec {spec.name!r} records no states; hints need the CV's mean "
                          "and within-state spread in each state")
     given = options.pop("autocorrelation_time_ps", None)
-    if given is not None:  # a time of the user's: the spec's spacing and flag are not its
+    if given is not None:  # a time of the user's: the spec's spacing, flag, interval are not its
         options.setdefault("frame_spacing_ps", None)
         options.setdefault("autocorrelation_time_decayed", None)
+        options.setdefault("autocorrelation_time_interval_ps", None)
     _check_spec_times(spec, options)
     options.setdefault("leave_out_frozen", True)
     options.setdefault("cv_range", spec.reachable_range)
@@ -1804,6 +1844,9 @@ def spec_hints(spec, *, temperature, md_step_fs, barrier=None, kernel="gaussian"
     decayed = spec.scores.get("integrated_time_decayed")
     options.setdefault("autocorrelation_time_decayed", None if decayed is None else
                        bool(decayed))
+    interval = spec.scores.get("integrated_time_ci_ps")  # checked when the spec was made
+    options.setdefault("autocorrelation_time_interval_ps",
+                       None if interval is None else tuple(interval))
     options.setdefault("from_biased_runs", any(
         isinstance(seg, Mapping) and seg.get("bias") is not None
         for seg in (spec.provenance.get("segments") or [])))

@@ -190,12 +190,19 @@ def hints_for(entry, temperature, md_step_fs, *, from_biased_runs=False):
                              autocorrelation_time_ps=entry.get("integrated_time_ps"),
                              frame_spacing_ps=entry.get("frame_spacing_ps"),
                              autocorrelation_time_decayed=entry.get("integrated_time_decayed"),
+                             autocorrelation_time_interval_ps=_both(
+                                 entry.get("integrated_time_ci_ps")),
                              cv_range=None if reach is None else (reach["lower"], reach["upper"]),
                              observed_range=None if seen is None else (seen["lower"],
                                                                        seen["upper"]),
                              leave_out_frozen=True, from_biased_runs=from_biased_runs), None
     except ValueError as exc:
         return None, str(exc)
+
+
+def _both(interval):
+    """`interval` when both its ends are known, else None."""
+    return None if interval is None or None in interval else interval
 
 
 def add_ranges(entry, pool, observed, states):

@@ -151,6 +151,9 @@ def spec_document(source, pool, entry, params, checksums, seed, record=None):
                 "integrated_time_ps", "frame_spacing_ps"):
         if entry.get(key) is not None:
             scores[key] = entry[key]
+    interval = entry.get("integrated_time_ci_ps")
+    if interval is not None and None not in interval:  # the time's 95 % interval, ps
+        scores["integrated_time_ci_ps"] = [float(interval[0]), float(interval[1])]
     if entry.get("integrated_time_decayed") is not None:  # a flag, 1 or 0 (scores are numbers)
         scores["integrated_time_decayed"] = int(bool(entry["integrated_time_decayed"]))
     doc = {

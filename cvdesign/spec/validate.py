@@ -480,6 +480,16 @@ def _semantic_check(doc):
             f"{_short(decayed)}",
             "$.scores.integrated_time_decayed",
         )
+    interval = doc["scores"].get("integrated_time_ci_ps")
+    if interval is not None and not (
+            isinstance(interval, list) and len(interval) == 2
+            and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in interval)
+            and 0 < interval[0] <= interval[1] < math.inf):
+        raise SpecError(
+            "must be a pair [lower, upper] of positive numbers of ps with lower <= upper, the "
+            f"95 % interval of the CV's integrated time; got {_short(interval)}",
+            "$.scores.integrated_time_ci_ps",
+        )
     if doc["periodic"]:
         single = len(terms) == 1 and terms[0]["transform"] == "identity" and kinds[terms[0]["descriptor"]] == "dihedral"
         if not single:
