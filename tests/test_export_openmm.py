@@ -498,6 +498,7 @@ def test_export_command_writes_forces_that_reproduce_the_spec(tmp_path, capsys):
     printed = capsys.readouterr().out
     assert "as an OpenMM CustomCVForce whose energy is the CV value" in printed
     assert "with periodic images in the box" in printed
+    assert "check: the groups of centre distances and restraints must be whole" in printed
     force = openmm.XmlSerializer.deserialize(out.read_text())
     box = BOXES["orthorhombic"]
     xyz = _moved(_compact_frames(rng, 3, N_ATOMS), MOLECULES, box, rng)
@@ -643,3 +644,17 @@ def test_the_spec_format_documents_the_openmm_force_of_every_kind():
     assert set(built) == set(KINDS)  # the spec above uses every kind
     assert rows == built
     assert "CustomCentroidBondForce" in section.group(1)  # the funnel restraint too
+
+
+def test_export_of_a_cv_without_groups_does_not_ask_for_whole_groups(tmp_path, capsys):
+    # review finding: a dihedral CV's export told the user to keep groups whole it has none of
+    spec = Spec(name="dih", topology=_topology(N_ATOMS),
+                descriptors=[{"id": "d", "kind": "dihedral", "atoms": [0, 1, 2, 3]}],
+                terms=[{"descriptor": "d", "transform": t, "center": 0.0, "scale": 1.0,
+                        "weight": w} for t, w in (("cos", 0.6), ("sin", 0.8))])
+    spec.save(tmp_path / "cv.json")
+    assert main(["export", str(tmp_path / "cv.json"), "--to", "openmm",
+                 "--out", str(tmp_path / "cv.xml"), "--no-periodic"]) == 0
+    printed = capsys.readouterr().out
+    assert "check: compare the engine's CV values on a trajectory with 'cvdesign check" in printed
+    assert "must be whole" not in printed

@@ -298,8 +298,23 @@ def test_k_wall_help_and_the_specs_rule_give_the_rms_penetration_sqrt_kt_over_k(
     out = tmp_path / "f.json"
     assert _run(host_guest, out, "--k-wall", "500", "--no-report") == 0
     capsys.readouterr()
-    rule = json.loads(out.read_text())["hints"]["funnel_sizing"]["wall_force_constant_rule"]
+    sizing = json.loads(out.read_text())["hints"]["funnel_sizing"]
+    rule = sizing["wall_force_constant_rule"]
     assert f"sqrt(kT / k), is {np.sqrt(kt / 500.0):.3f} nm" in rule and "0.071 nm" in rule
+    assert not any("is soft" in w for w in sizing["warnings"])
+    # review finding: walls of 5 kJ/mol/nm^2 let the ligand 1 nm in at kT, three times the
+    # cylinder's radius, and the spec said they kept it "only a little" in, without a word
+    assert _run(host_guest, out, "--k-wall", "5", "--no-report", "--force") == 0
+    err = capsys.readouterr().err
+    sizing = json.loads(out.read_text())["hints"]["funnel_sizing"]
+    radius = json.loads(out.read_text())["restraints"][0]["cylinder_radius_nm"]
+    (soft,) = [w for w in sizing["warnings"] if "is soft" in w]
+    assert soft.startswith(f"--k-wall 5 kJ/mol/nm^2 is soft: at 300 K the ligand centre "
+                           f"reaches {np.sqrt(2 * kt / 5.0):.3f} nm into a wall")
+    assert f"radius ({radius:.3f} nm)" in soft and "is soft" in err
+    # the force constant it names keeps the depth at kT within a quarter of the radius
+    stiff = float(soft.split("at least ")[1].split(" kJ")[0])
+    assert np.sqrt(2 * kt / stiff) == pytest.approx(0.25 * radius, rel=1e-2)
 
 
 def test_funnel_command_warns_when_the_runs_store_no_box_the_topology_has(tumbled, tmp_path,
@@ -325,3 +340,35 @@ def test_funnel_command_warns_when_the_runs_store_no_box_the_topology_has(tumble
     sizing = json.loads(out.read_text())["hints"]["funnel_sizing"]
     assert any("stores each none" in w for w in sizing["warnings"])
     assert any(r.startswith("WARNING: topology file") for r in sizing["reasoning"])
+
+
+def test_check_on_a_funnel_spec_says_why_it_records_no_observed_range_and_that_it_confines(
+        host_guest, tmp_path, capsys):
+    # review finding: `check` called a funnel spec just written "a spec of an earlier
+    # cvdesign" and gave the CV's reachable range without the restraint that confines it
+    out = tmp_path / "f.json"
+    assert _run(host_guest, out, "--no-report") == 0
+    capsys.readouterr()
+    assert main(["check", str(out), "--topology", host_guest.topology]) == 0
+    text = capsys.readouterr().out
+    assert ("reachable [0, +inf] (from the terms; a restraint of the spec confines it "
+            "further)") in text
+    assert "no observed range recorded (funnel specs record none;" in text
+
+
+def test_a_failing_check_of_a_centre_distance_cv_names_groups_split_by_the_box(
+        host_guest, tmp_path, capsys):
+    # review finding: an engine fed wrapped frames (groups split across the box edge) gave
+    # centre distances of 4 nm where the spec gives 0.14, and the advice did not name that
+    out = tmp_path / "f.json"
+    assert _run(host_guest, out, "--no-report") == 0
+    traj = host_guest.paths[0]
+    n = md.load(traj, top=host_guest.topology).n_frames
+    values = tmp_path / "engine.txt"
+    values.write_text("4.0\n" * n)
+    capsys.readouterr()
+    assert main(["check", str(out), "--topology", host_guest.topology, "--against",
+                 str(values), traj]) == 1
+    text = capsys.readouterr().out
+    assert "FAIL: the values differ from the reference evaluator" in text
+    assert "that the groups of centre distances are whole in the positions the engine" in text

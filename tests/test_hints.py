@@ -772,3 +772,13 @@ def test_the_bias_factor_names_the_largest_estimate_only_when_the_states_differ(
     names = list(STATES)
     two = suggest_hints(STATES, barrier={names[0]: 30.0, names[1]: 40.0}, **kw)["reasoning"]
     assert any("for the largest barrier estimate 40 kJ/mol" in line for line in two)
+
+
+def test_a_state_at_the_only_bound_of_a_half_bounded_cv_gets_the_warning_without_the_width():
+    # a distance-like CV, reachable from 0 up: the cosine-fold width needs both ends
+    near_zero = {"bound": {"mean": 0.02, "std": 0.015, "n_frames": 500},
+                 "away": {"mean": 1.0, "std": 0.05, "n_frames": 500}}
+    h = suggest_hints(near_zero, temperature=300.0, md_step_fs=2.0, cv_range=(0.0, None))
+    (warning,) = [w for w in h["warnings"] if "folded coordinate" in w]
+    assert "state 'bound' sits at the lower" in warning
+    assert "CV units there" not in warning

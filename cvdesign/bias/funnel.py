@@ -969,8 +969,14 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
         f"cone_end_z_nm = highest bound z {stats.z_max:.3f} + {dz:.3f} + blend half-width "
         f"{blend_half_width} nm",
         f"cylinder_radius_nm = ligand radius {lig_r:.3f} + pad {cylinder_pad} nm",
-        f"cone_half_angle_rad = {half_angle:.3f} rad: cone radius exceeds the largest bound r "
-        f"in every {bin_width} nm z bin by at least {dr:.3f} nm",
+        (f"cone_half_angle_rad = {half_angle:.3f} rad: cone radius exceeds the largest bound r "
+         f"in every {bin_width} nm z bin by at least {dr:.3f} nm"
+         if half_angle > min_half_angle else
+         f"cone_half_angle_rad = {half_angle:.3f} rad, the smallest allowed (min_half_angle): "
+         + ("the cylinder alone" if tan_needed <= 0 else
+            f"a cone of {np.arctan(tan_needed):.3f} rad")
+         + f" would already keep the largest bound r of every {bin_width} nm z bin at least "
+         f"{dr:.3f} nm inside it"),
         f"upper_wall_z_nm = cone_end_z_nm + {unbound_length} nm so the ligand can be solvated; "
         f"the funnel reaches {reach:.3f} nm from the pocket centre"
         + (f" (half the smallest box height: {half_height:.3f} nm)" if np.isfinite(half_height)

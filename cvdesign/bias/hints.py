@@ -209,7 +209,7 @@ def _number(name, value, *, positive=True, allow_zero=False):
 def _unfolded_width(states, fit, folded, bounds, width_fraction):
     """The kernel width, CV units, that keeps its fraction of each state's spread where a
     folded CV is steepest, and its ratio to the width from the spreads along the CV; None
-    when it is not wider.
+    when it is not wider, or the CV is bounded on one side only.
 
     Model (derived here): near its bound ``b`` the CV is ``b -/+ a (1 - cos u)`` of one
     coordinate ``u`` with ``a`` half the reachable range; a state centred on the fold with
@@ -218,6 +218,8 @@ def _unfolded_width(states, fit, folded, bounds, width_fraction):
     ``a s = sqrt(2 d a)`` CV units. States inside the range keep their spread along the CV.
     """
     lo, hi = bounds
+    if lo is None or hi is None:  # the model needs the half range (a bounded CV)
+        return None
     half = 0.5 * (hi - lo)
     scales = []
     for name, v in fit.items():

@@ -246,6 +246,29 @@ def _wall_penetration(k):
             "energy of kT")
 
 
+def _soft_wall_warning(k, cylinder_radius_nm):
+    """A warning when walls of force constant `k` (kJ/mol/nm^2) let the ligand centre in,
+    at an energy of kT at 300 K, by more than half the cylinder's radius (our choice: the
+    funnel's shape then no longer confines it as drawn); None otherwise.
+
+    Examples
+    --------
+    >>> _soft_wall_warning(2000.0, 0.3) is None  # 0.050 nm at kT
+    True
+    >>> _soft_wall_warning(5.0, 0.336)[:60]
+    '--k-wall 5 kJ/mol/nm^2 is soft: at 300 K the ligand centre r'
+    """
+    depth = math.sqrt(2.0 * BOLTZMANN_KJ_MOL_K * 300.0 / k)
+    if depth <= 0.5 * cylinder_radius_nm:
+        return None
+    stiff = 2.0 * BOLTZMANN_KJ_MOL_K * 300.0 / (0.25 * cylinder_radius_nm) ** 2
+    return (f"--k-wall {k:g} kJ/mol/nm^2 is soft: at 300 K the ligand centre reaches "
+            f"{depth:.3f} nm into a wall at an energy of kT, more than half the cylinder's "
+            f"radius ({cylinder_radius_nm:.3f} nm), so the walls do not confine it to the "
+            f"funnel drawn (nor the box check's reach); a force constant of at least "
+            f"{stiff:.3g} kJ/mol/nm^2 keeps that depth within a quarter of the radius")
+
+
 def _add_verbosity(p, suffix=""):
     """-v/--verbose and -q/--quiet, counted (before the command: dest with `suffix`)."""
     p.add_argument("-v", "--verbose", action="count", default=0, dest="verbose" + suffix,
@@ -1311,8 +1334,11 @@ def _cmd_check(args):
     reach, seen = spec.reachable_range, spec.observed_range  # refused first when stale
     print(f"{args.spec}: valid spec, matches topology {args.topology} "
           f"({source.topology.n_atoms} atoms)")
-    print(f"range (CV units): reachable {_interval(reach)} (from the terms); "
-          + ("no observed range recorded (a spec of an earlier cvdesign)" if seen is None
+    print(f"range (CV units): reachable {_interval(reach)} (from the terms"
+          + ("; a restraint of the spec confines it further" if spec.restraints else "")
+          + "); "
+          + (("no observed range recorded (funnel specs record none; before them, a spec "
+              "of an earlier cvdesign)") if seen is None
              else f"observed {_interval(seen)} (the spec's input frames)"))
     states = spec.states
     for name, side in spec.states_at_bound.items():
@@ -1372,7 +1398,8 @@ def _cmd_check(args):
         worst = float(dev[order[0]])
         agree &= bool(np.all(dev <= tols))
         modulo = "" if period is None else f"modulo the period {period:.6g}; "
-        shown = (f"tolerance {largest:.3g}" if np.ndim(tol) == 0 else
+        shown = (f"tolerance {largest:.3g}" if np.ndim(tol) == 0
+                 or f"{float(tols.min()):.3g}" == f"{largest:.3g}" else
                  f"tolerance {float(tols.min()):.3g} to {largest:.3g}")
         print(f"{values_path} vs {traj}: {dev.size} frames, largest |deviation| {worst:.3g} "
               f"({modulo}{shown}), mean {float(dev.mean()):.3g}")
@@ -1393,7 +1420,10 @@ def _cmd_check(args):
     else:
         print("FAIL: the values differ from the reference evaluator beyond the tolerance; check "
               "the engine's atom indices, weights, centers and scales, transforms and "
-              "periodic-box handling")
+              "periodic-box handling"
+              + (", and that the groups of centre distances are whole in the positions the "
+                 "engine was given (wrapped trajectories split them across the box edge)"
+                 if any(d["kind"] == "center_distance" for d in spec.descriptors) else ""))
     return 0 if agree and in_range else 1
 
 
@@ -1489,6 +1519,9 @@ def _cmd_funnel(args):
         result = size_funnel_from_source(source, pocket, lig, exit_point=args.exit_point,
                                          unbound_length=args.unbound_length,
                                          executor=executor)
+    soft = _soft_wall_warning(float(args.k_wall), result["params"]["cylinder_radius_nm"])
+    if soft is not None:
+        result["warnings"].append(soft)
     spec = _funnel_spec(source, args, lig, pocket, result)
     text = spec.to_json()
     from ..pipeline.output import dumps
@@ -1522,7 +1555,8 @@ def _cmd_funnel(args):
     prm = result["params"]
     print(f"ligand: {describe_selection(top, lig, args.ligand)}")
     print(f"pocket: {describe_selection(top, pocket, args.pocket)}")
-    print(f"funnel: axis {np.round(prm['axis'], 3).tolist()} (reference pocket frame); cone "
+    print(f"funnel: axis {(np.round(prm['axis'], 3) + 0.0).tolist()} (reference pocket "
+          "frame); cone "
           f"half-angle {prm['cone_half_angle_rad']:.3f} rad, cylinder radius "
           f"{prm['cylinder_radius_nm']:.3f} nm from z = {prm['cone_end_z_nm']:.3f} nm, walls "
           f"at z = {prm['lower_wall_z_nm']:.3f} and {prm['upper_wall_z_nm']:.3f} nm")
@@ -1665,8 +1699,12 @@ def _cmd_export(args):
         print(f"wrote {args.restraint_out}: the spec's restraints as an OpenMM "
               "CustomCentroidBondForce (kJ/mol); add it to the System as it is, and hold the "
               "pocket in the orientation of the restraint's reference pocket during the run")
-    print("check: the groups of centre distances and restraints must be whole in the "
-          "positions given to OpenMM; compare the engine's CV values on a trajectory with "
+    grouped = any(d["kind"] == "center_distance" for d in spec.descriptors) or \
+        (args.restraint_out is not None and bool(spec.restraints))
+    print("check: "
+          + ("the groups of centre distances and restraints must be whole in the positions "
+             "given to OpenMM; " if grouped else "")
+          + "compare the engine's CV values on a trajectory with "
           f"'cvdesign check {args.spec} --topology TOP --against VALUES TRAJ'")
     if spec.caution:
         print(f"caution: {spec.caution}")
