@@ -349,6 +349,13 @@ def test_check_on_a_funnel_spec_says_why_it_records_no_observed_range_and_that_i
     out = tmp_path / "f.json"
     assert _run(host_guest, out, "--no-report") == 0
     capsys.readouterr()
+    # two runs of 400 frames set the axis to about 12 degrees (one standard error, from the
+    # runs' means), so 95 % of such axes lie within about 21: wider than the cone's 11
+    sizing = json.loads(out.read_text())["hints"]["funnel_sizing"]
+    (axis,) = [w for w in sizing["warnings"] if "the axis through the mean ligand" in w]
+    assert "(one standard error; 95 % of such axes within about" in axis
+    assert "more than the cone's half-angle (11 degrees)" in axis
+    assert "from the means of the 2 runs, larger than from 10 block means" in axis
     assert main(["check", str(out), "--topology", host_guest.topology]) == 0
     text = capsys.readouterr().out
     assert ("reachable [0, +inf] (from the terms; a restraint of the spec confines it "

@@ -818,6 +818,11 @@ def _frame_weights(weights, chunks, pocket_xyz):
 AXIS_BLOCKS = 5
 
 
+#: The radius holding 95 % of a two-dimensional isotropic Gaussian, in units of its rms
+#: radius: sqrt(ln 20) (Rayleigh's law; derived here).
+_R95 = float(np.sqrt(np.log(20.0)))
+
+
 def _axis_uncertainty(blocks, axis, z_mean):
     """(angle in rad, its basis as text) of an axis through the mean ligand offset, or
     (None, "") when the blocks cannot tell.
@@ -827,22 +832,48 @@ def _axis_uncertainty(blocks, axis, z_mean):
     scatter of the block means across the axis gives the standard error of the mean
     offset across it, ``sqrt(sum_b (w_b / W)^2 |m_b - m|_perp^2 x B / (B - 1))``; its angle
     seen from the pocket centre at the mean offset along the axis. Blocks shorter than the
-    ligand's correlation time make it too small."""
+    ligand's correlation time make it too small, so with two runs or more the same error
+    from the runs' own means (the longest blocks there are, noisier) is taken when it is
+    larger, as the blocking method does when the error grows with the block length."""
     if not blocks or len(blocks) < 2 or not z_mean > 0:
         return None, ""
-    w = np.array([v[0] for _, v in sorted(blocks.items())])
-    d = np.array([v[1] for _, v in sorted(blocks.items())])
+    keys = sorted(blocks)
+    w = np.array([blocks[k][0] for k in keys])
+    d = np.array([blocks[k][1] for k in keys])
+    se = _offset_error(w, d, axis)
+    if se is None:
+        return None, ""
+    n_blocks = int((w > 0).sum())
+    runs = sorted({k[0] for k in keys})
+    by_run = [[i for i, k in enumerate(keys) if k[0] == r] for r in runs]
+    se_runs = _offset_error(np.array([w[i].sum() for i in by_run]),
+                            np.array([d[i].sum(axis=0) for i in by_run]), axis)
+    if se_runs is not None and se_runs > se:
+        basis = (f"from the means of the {int(sum(w[i].sum() > 0 for i in by_run))} runs, "
+                 f"larger than from {n_blocks} block means ({AXIS_BLOCKS} per run), which are "
+                 "shorter than the ligand's correlation time")
+        se = se_runs
+    else:
+        basis = f"from {n_blocks} block means ({AXIS_BLOCKS} per run)" + (
+            "" if se_runs is not None else "; one run, so not checked against run means: "
+            "an underestimate if its blocks are shorter than the ligand's correlation time")
+    angle = float(np.arctan2(se, z_mean))
+    return angle, (f"standard error {se:.3f} nm of the mean offset across the axis, "
+                   f"{basis}, against the mean offset along it, {z_mean:.3f} nm")
+
+
+def _offset_error(w, d, axis):
+    """Standard error of the weighted mean offset across `axis`, nm, from groups of summed
+    weights `w` and summed weighted offsets `d` (batch means); None from fewer than two
+    groups with weight."""
     keep = w > 0
     w, m = w[keep], d[keep] / w[keep, None]
     if w.size < 2:
-        return None, ""
+        return None
     mean = w @ m / w.sum()
     across = (m - mean) - np.outer((m - mean) @ axis, axis)
-    se = float(np.sqrt((w / w.sum()) ** 2 @ (across ** 2).sum(axis=1) * w.size / (w.size - 1)))
-    angle = float(np.arctan2(se, z_mean))
-    return angle, (f"standard error {se:.3f} nm of the mean offset across the axis, from "
-                   f"{w.size} block means ({AXIS_BLOCKS} per run), against the mean offset "
-                   f"along it, {z_mean:.3f} nm")
+    return float(np.sqrt((w / w.sum()) ** 2 @ (across ** 2).sum(axis=1) * w.size
+                         / (w.size - 1)))
 
 
 def _check_options(*, ligand_radius, cylinder_pad, k_std, min_margin, z_margin,
@@ -944,15 +975,21 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
                      "block; size_funnel_from_source, or cvdesign funnel, assesses it")
     elif rule == "ligand_offset":
         angle, axis_note = _axis_uncertainty(sums.blocks, axis, stats.z_mean)
-        if angle is not None and angle > min(half_angle, np.arctan(0.5)):
-            why = (f"more than the cone's half-angle ({np.degrees(half_angle):.0f} degrees)"
-                   if angle > half_angle else "the mean offset less than twice its standard "
-                   "error")
+        # 95 % of the axes about the true one lie within sqrt(ln 20) = 1.73 rms radii of
+        # the mean offset across the axis (two isotropic Gaussian components, whose
+        # radius follows Rayleigh's law, P(R > r) = exp(-r^2 / rms^2); derived here)
+        angle95 = None if angle is None else float(np.arctan(np.tan(angle) * _R95))
+        if angle is not None and (angle95 > half_angle or angle > np.arctan(0.5)):
+            why = ("the mean offset less than twice its standard error"
+                   if angle > np.arctan(0.5) else
+                   f"95 % of such axes within about {np.degrees(angle95):.0f} degrees, more "
+                   f"than the cone's half-angle ({np.degrees(half_angle):.0f} degrees)")
             warnings.append(
                 f"the axis through the mean ligand offset is uncertain by about "
-                f"{np.degrees(angle):.0f} degrees, {why}: {axis_note}; the unbinding "
-                "direction is then hardly set by the data. Give an exit point "
-                "(exit_point, --exit-point) toward the solvent, or more bound runs")
+                f"{np.degrees(angle):.0f} degrees (one standard error; {why}): {axis_note}; "
+                "the unbinding direction is then not set well enough by the data for the "
+                "cone. Give an exit point (exit_point, --exit-point) toward the solvent, or "
+                "more or longer bound runs")
     if np.isfinite(half_height) and group_reach >= 0.9 * half_height:
         warnings.append(
             f"an atom of the pocket or ligand lies {group_reach:.3f} nm from its group's first "
