@@ -782,3 +782,15 @@ def test_a_state_at_the_only_bound_of_a_half_bounded_cv_gets_the_warning_without
     (warning,) = [w for w in h["warnings"] if "folded coordinate" in w]
     assert "state 'bound' sits at the lower" in warning
     assert "CV units there" not in warning
+
+
+def test_a_cap_that_stops_the_lengthening_short_of_the_rate_says_so():
+    # tau 0.002 ps (1 step), max_interval_ps 0.1 ps (50 steps): lengthened to 50 steps, a
+    # rate of 1.2472 / 0.1 = 12.5 kJ/mol/ps, above the 5 the note would otherwise claim
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, autocorrelation_time_ps=0.002,
+                      max_interval_ps=0.1)
+    assert h["deposition"]["interval_steps"] == 50 and h["deposition"]["rate_limited"]
+    (note,) = [line for line in h["reasoning"] if "lengthened to 50 steps" in line]
+    assert "as far as max_interval_ps = 0.1 ps allows: a rate of 12.5 kJ/mol/ps" in note
+    assert "at most 5" not in note
+    assert any(w.startswith("the bias grows at 12.5 kJ/mol per ps") for w in h["warnings"])

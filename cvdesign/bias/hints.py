@@ -1352,18 +1352,25 @@ def suggest_hints(
         rate_steps = min(rate_steps, max(1, int(math.floor(cap * 1000.0 / dt_fs * (1.0 + 1e-12)))))
     rate_limited = rate_steps > steps
     if rate_limited:
+        new_rate = height / (rate_steps * dt_fs / 1000.0)
+        reached = new_rate <= _FAST_RATE_KJ_MOL_PS * (1.0 + 1e-9)
         why.append(
             f"Note: the interval from the autocorrelation time, {steps} step"
             f"{'s' if steps > 1 else ''} ({steps * dt_fs / 1000.0:.3g} ps), would grow the bias "
             f"at {height / (steps * dt_fs / 1000.0):.3g} kJ/mol per ps at first; it is "
-            f"lengthened to {rate_steps} steps ({rate_steps * dt_fs / 1000.0:.3g} ps), a rate "
-            f"of at most {_FAST_RATE_KJ_MOL_PS:g} kJ/mol/ps at the initial height, the fastest "
-            f"the hints accept without a warning: faster, motions slower than the CV lag "
-            f"behind the bias. Common practice is nearer 1 kJ/mol/ps ({tag_cpm}), about "
+            f"lengthened to {rate_steps} steps ({rate_steps * dt_fs / 1000.0:.3g} ps), "
+            + (f"a rate of {new_rate:.3g} kJ/mol/ps at the initial height, at most "
+               f"{_FAST_RATE_KJ_MOL_PS:g}, the fastest the hints accept without a warning"
+               if reached else
+               f"as far as max_interval_ps = {cap:g} ps allows: a rate of {new_rate:.3g} "
+               f"kJ/mol/ps at the initial height, still above the "
+               f"{_FAST_RATE_KJ_MOL_PS:g} the hints accept without a warning")
+            + f": faster, motions slower than the CV lag behind the bias. Common practice is "
+            f"nearer 1 kJ/mol/ps ({tag_cpm}), about "
             f"{max(1, round(height * 1000.0 / dt_fs)):d} steps here: a bias that fills "
-            f"{_FAST_RATE_KJ_MOL_PS:g} times more slowly, with a smaller error (the error "
-            f"grows with height / interval; Laio et al. 2005, from memory); choose it when "
-            f"the budget allows.")
+            f"{new_rate:.2g} times more slowly, with a smaller error (the error grows with "
+            f"height / interval; Laio et al. 2005, from memory); choose it when the budget "
+            f"allows.")
         steps = rate_steps
     interval_ps = steps * dt_fs / 1000.0
     if steps < _FEW_STEPS:
