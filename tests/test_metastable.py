@@ -633,8 +633,12 @@ def test_documented_subsample_sizes_are_those_the_stride_gives():
 def test_cli_runs_with_objective_both_name_the_runs_whose_crossings_rank_it(tmp_path):
     """Unbiased exploratory runs that hop between two wells: with --objective both the
     summary says the transition slowness comes from the runs of --runs labelled by their
-    proposed states (it had called them biased runs fed back)."""
-    xs = _langevin_1d(_double_well(5.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
+    proposed states (it had called them biased runs fed back). Their crossings are the
+    proposal's transitions (changes between visits lasting at least the lag): a review
+    found every one-frame flicker across the boundary counted (24 crossings beside 14
+    transitions in a 5 kT well), enough to rank on transition slowness with a fold that
+    held no real crossing."""
+    xs = _langevin_1d(_double_well(4.0), np.linspace(0.4, 0.8, 4), 2000, seed=1)
     top, paths = _write_walkers(tmp_path, xs, seed=2)
     out = tmp_path / "out"
     assert main(["suggest", "--topology", top, "--runs", *paths, "--lag", "1", "--kinds",
@@ -644,3 +648,6 @@ def test_cli_runs_with_objective_both_name_the_runs_whose_crossings_rank_it(tmp_
     assert ("along the runs that cross between the states (the runs given with --runs, each "
             "frame labelled by its proposed state)") in summary
     assert "fed back" not in summary
+    (n_transitions,) = re.findall(r"The runs contain (\d+) transitions", summary)
+    (n_crossings,) = re.findall(r"'; (\d+) crossings\)", summary)
+    assert n_crossings == n_transitions  # 28 each when this was written

@@ -28,8 +28,11 @@ or by file) are not the run's blocks: some core frames of block ``k`` may be
 among the frames the direction was fitted on. What is strictly held out is
 the time order (the pairs) and the transition frames.
 
-**Enough crossings.** A crossing is a change of state between consecutive
-labelled frames (the frames between them unlabelled or none). The transition
+**Enough crossings.** A crossing is a change of state between successive visits
+of the states (stretches of labelled frames in one state, unlabelled frames inside
+them left aside), each visit lasting at least the lag in frames (a flicker across a
+boundary is not a crossing; the proposal of ``--runs`` counts its transitions the same
+way); in a biased run every visit counts (its lag is in rescaled time). The transition
 slowness ranks (objective ``both``) only when every held-out fold holds at
 least :data:`MIN_CROSSINGS_PER_FOLD` crossings inside its blocks; otherwise the
 ranking falls back to within-state slowness, says so in the notes, and still
@@ -71,13 +74,21 @@ BLOCKS_PER_FOLD = 8
 MIN_BLOCK_LAGS = 10
 
 
-def crossings(labels):
+def crossings(labels, min_visit=1):
     """Changes of state along a run: (last frame in one state, first frame in the next).
+
+    A *visit* is a stretch of labelled frames in one state (frames in no state inside it
+    do not end it); visits of fewer than `min_visit` labelled frames are left out (a flicker
+    across a boundary is not a crossing), and a crossing is a change of state between
+    successive visits that are kept.
 
     Parameters
     ----------
     labels : sequence
         State name of every frame, None for a frame in no state.
+    min_visit : int, default=1
+        Fewest labelled frames of a visit that counts (the lag in frames, for states
+        assigned to every frame).
 
     Returns
     -------
@@ -88,14 +99,25 @@ def crossings(labels):
     --------
     >>> crossings(["a", "a", None, "b", "b", None, None, "b", "a"])
     [(1, 3), (7, 8)]
+    >>> crossings(["a", "a", "a", "b", "a", "a", "b", "b", "b"], min_visit=2)  # one flicker
+    [(5, 6)]
     """
-    out, last, at = [], None, None
+    visits = []  # [label, first frame, last frame, labelled frames]
     for f, x in enumerate(labels):
         if x is None:
             continue
-        if last is not None and x != last:
-            out.append((at, f))
-        last, at = x, f
+        if visits and visits[-1][0] == x:
+            visits[-1][2] = f
+            visits[-1][3] += 1
+        else:
+            visits.append([x, f, f, 1])
+    out, last = [], None
+    for label, first, end, n in visits:
+        if n < min_visit:
+            continue
+        if last is not None and label != last[0]:
+            out.append((last[2], first))
+        last = (label, first, end)
     return out
 
 
@@ -242,7 +264,12 @@ def gather_transitions(source, featurizer, shift, lags, n_folds, *, executor=Non
     per_fold = np.zeros(n_folds, dtype=np.int64)
     n_cross = []
     for r, si in enumerate(runs):
-        events = crossings(list(source.segments[si].labels))
+        # a visit shorter than the lag is a flicker across a boundary (states proposed from
+        # --runs label every frame), as for the proposal's own transitions; a biased run
+        # keeps every visit: its lag is in rescaled time, not a number of its frames
+        seg = source.segments[si]
+        events = crossings(list(seg.labels),
+                           1 if seg.bias is not None else max(1, int(lags.get(si) or 1)))
         n_cross.append(len(events))
         for a, c in events:
             fa, fc = (a * n_folds * b) // n_frames[r], (c * n_folds * b) // n_frames[r]
