@@ -338,3 +338,24 @@ def test_the_summary_says_when_there_are_no_intervals_and_when_two_folds_make_th
     assert len(demo_result.ranking[0]["heldout_fisher_ratio_folds"]) > 2
     assert "Intervals are nominal 95 % block-bootstrap intervals" in full
     assert "with two folds" not in full
+
+
+def test_the_specs_carry_the_slowness_the_summary_shows_beside_the_common_mean_one(
+        demo_result):
+    """Review finding: a spec held only the slowness about one common mean (which pairs
+    that never leave their state make slow for every separating CV), while the summary
+    showed the within-state or transition measure; the spec now holds those too, with
+    their resolved flags as ranking.csv has them."""
+    keys = ("heldout_autocorrelation_within_states", "timescale_within_states_ps",
+            "heldout_autocorrelation_transitions", "timescale_transitions_ps")
+    flags = ("timescale_resolved", "timescale_within_states_resolved",
+             "timescale_transitions_resolved")
+    seen = 0
+    for entry, spec in zip(demo_result.ranking, demo_result.specs):
+        for key in keys:
+            assert spec["scores"].get(key) == entry.get(key)
+            seen += entry.get(key) is not None
+        for key in flags:
+            want = None if entry.get(key) is None else int(bool(entry[key]))
+            assert spec["scores"].get(key) == want
+    assert seen >= len(demo_result.specs)  # the within-state autocorrelation at least

@@ -151,6 +151,17 @@ def spec_document(source, pool, entry, params, checksums, seed, record=None):
                 "integrated_time_ps", "frame_spacing_ps"):
         if entry.get(key) is not None:
             scores[key] = entry[key]
+    # the slowness within the states and along crossing runs beside the measure about one
+    # common mean (which pairs that never leave their state make slow for every separating
+    # CV), with whether each timescale is resolved (1/0), as ranking.csv has them
+    for key in ("heldout_autocorrelation_within_states", "timescale_within_states_ps",
+                "heldout_autocorrelation_transitions", "timescale_transitions_ps"):
+        if entry.get(key) is not None:
+            scores[key] = entry[key]
+    for key in ("timescale_resolved", "timescale_within_states_resolved",
+                "timescale_transitions_resolved"):
+        if entry.get(key) is not None:
+            scores[key] = int(bool(entry[key]))
     interval = entry.get("integrated_time_ci_ps")
     if interval is not None and None not in interval:  # the time's 95 % interval, ps
         scores["integrated_time_ci_ps"] = [float(interval[0]), float(interval[1])]
