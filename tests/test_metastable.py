@@ -507,6 +507,14 @@ def test_cli_refuses_runs_without_metastable_states_and_writes_nothing(demo_file
     err = capsys.readouterr().err
     assert "error: none of the 2 proposed states is metastable" in err
     assert "Traceback" not in err and not out.exists()
+    # runs that never cross: another lag cannot help, and the advice no longer says it can
+    assert "The runs contain 0 transitions" in err
+    assert "no lag shows a transition the runs never make" in err
+    assert "try another --lag" not in err
+    # and --runs without --lag says what lag to start from
+    assert main(["suggest", "--topology", top, "--runs", states["closed"][0],
+                 states["open"][0], "--out", str(out)]) == 2
+    assert "about 10 frame spacings is a start" in capsys.readouterr().err
 
 
 # ---------------------------------------------------------------------------- on the pass engine

@@ -169,8 +169,11 @@ def _add_suggest_options(p):
                         "numbers (default: separate)")
     p.add_argument("--lag", type=_positive_float, default=None, metavar="PS",
                    help="lag time in ps for slowness scores, converted to frames with each "
-                        "file's time step; needed for --objective slow or both and for --runs "
-                        "(default: 10 frames when all files share a known time step)")
+                        "file's time step; needed for --objective slow or both (default there: "
+                        "10 frames when all files share a known time step) and required with "
+                        "--runs (no default: longer than the fast motions inside the states, "
+                        "shorter than a run's stay in one; about 10 frame spacings is a start "
+                        "to check against the staying probabilities summary.md reports)")
     p.add_argument("--method", choices=("hlda", "lda"), default="hlda",
                    help="discriminant for separate/both: harmonic LDA (within-state scatter "
                         "the harmonic mean of the state covariances, so the narrow state "
@@ -701,7 +704,10 @@ def _run_suggest(topology, states, out, args, stream, runs=None):
     if runs:
         if args.lag is None:
             raise InputError("--runs needs --lag PS: the lag time at which slow processes are "
-                             "looked for")
+                             "looked for, longer than the fast motions inside the states and "
+                             "shorter than a run's stay in one (about 10 frame spacings is a "
+                             "start; summary.md then reports each state's staying probability "
+                             "over the lag)")
         source = Source(topology, timestep=args.frame_step_ps,
                         temperature=temperature if biases else None)
         bias_of = _bias_files(biases, list(runs), given_with="--runs")

@@ -1181,9 +1181,12 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
                         f"probability {kin.staying[i]:.2f}): {kin.reasons[i]}"
                         for i, s in enumerate(states))
             + f". The runs contain {kin.n_transitions} transitions between these states; "
-            f"lag-time transition counts: {kin.counts_text()}. Use longer runs (that cross "
-            "between the states), try another --lag, or give the states yourself with --state "
-            "NAME FILE ... (for instance when each run was started in a known state)")
+            f"lag-time transition counts: {kin.counts_text()}. "
+            + ("Use longer runs that cross between the states (no lag shows a transition the "
+               "runs never make)" if kin.n_transitions == 0 else
+               "Use longer runs (that cross between the states), try another --lag")
+            + ", or give the states yourself with --state NAME FILE ... (for instance when "
+            "each run was started in a known state)")
     if n_states is None and int(kin.metastable.sum()) < 2:
         # one metastable state among others that are not is no pair of basins to separate:
         # a single well split by k-means (a 4 % corner passing the test by noise) had
