@@ -359,3 +359,19 @@ def test_the_specs_carry_the_slowness_the_summary_shows_beside_the_common_mean_o
             want = None if entry.get(key) is None else int(bool(entry[key]))
             assert spec["scores"].get(key) == want
     assert seen >= len(demo_result.specs)  # the within-state autocorrelation at least
+
+
+def test_a_timescale_from_an_autocorrelation_indistinct_from_zero_is_shown_as_a_bound():
+    """Review finding: 0.174 ps at a 1 ps lag was shown as a number, from an autocorrelation
+    of 0.003 whose interval reached below 0; the cell now gives the interval's upper end as
+    a bound."""
+    from cvdesign.pipeline.output import _timescale_text
+
+    entry = {"timescale_ps": 0.174, "timescale_resolved": True, "longest_run_ps": 200.0,
+             "longest_visit_ps": 200.0, "timescale_ci_ps": [None, 0.61]}
+    assert _timescale_text(entry) == "< 0.61 (autocorrelation at the lag not distinguished " \
+                                     "from 0)"
+    entry["timescale_ci_ps"] = [0.1, 0.3]
+    assert _timescale_text(entry) == "0.174"
+    entry["timescale_ci_ps"] = None  # no bootstrap: the number as measured
+    assert _timescale_text(entry) == "0.174"

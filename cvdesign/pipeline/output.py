@@ -730,6 +730,10 @@ def _timescale_text(r):
     bound = resolving_span_ps(r, key)
     if resolved is False and bound:
         return f"> {bound:.3g} (not resolved by these runs)"
+    ci = r.get(f"{key}_ci_ps")
+    if ci is not None and ci[0] is None and ci[1] is not None:
+        # the autocorrelation's interval reaches 0: only an upper bound is measured
+        return f"< {ci[1]:.3g} (autocorrelation at the lag not distinguished from 0)"
     return format(ts, ".3g")
 
 
