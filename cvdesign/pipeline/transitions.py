@@ -277,8 +277,9 @@ def gather_transitions(source, featurizer, shift, lags, n_folds, *, executor=Non
                 per_fold[fa // b] += 1
     has_pairs = all(any(blocks[r][k] for r in range(len(runs))) for k in range(n_folds))
     ranks = bool(per_fold.min() >= MIN_CROSSINGS_PER_FOLD and has_pairs)
-    what = (f"{len(runs)} run{'s' if len(runs) != 1 else ''} crossing between the states "
-            f"({', '.join(repr(p) for p in paths)}; {sum(n_cross)} crossings)")
+    counts = ", ".join(f"{p!r}: {c}" for p, c in zip(paths, n_cross))
+    what = (f"{len(runs)} run{'s' if len(runs) != 1 else ''} labelled with two or more states "
+            f"(crossings {counts}; {sum(n_cross)} in all)")
     notes = [f"transition slowness: {what}: lagged pairs along each whole run (the frames "
              "between the states included, pairs spanning the crossings"
              + (", in rescaled time, weighted by exp(V/kT) over the run" if tsrc.biased else "")
