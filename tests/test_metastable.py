@@ -423,8 +423,8 @@ def test_a_run_isolated_in_its_own_state_is_warned_about(tmp_path):
     assert "S3" in few
     frac = [w for w in exp.warnings if "not an equilibrium population" in w]
     assert [w.split()[1] for w in frac] == few
-    assert frac[-1] == (f"state S3 is entered 0 and left 0 time(s) in the runs (fewer than "
-                        f"{FEW_TRANSITIONS}): its fraction of the frames "
+    assert frac[-1] == (f"state S3 is entered 0 and left 0 time(s) in the runs (the fewer "
+                        f"of the two below {FEW_TRANSITIONS}): its fraction of the frames "
                         f"({exp.populations['S3']:.3f}) depends on where the runs started and "
                         "how long they lasted; it is not an equilibrium population")
     assert "| state | fraction of frames | staying probability |" in summary

@@ -878,7 +878,14 @@ def _fmt(v, spec):
 
 
 def _fmt_ts(t):
-    return "inf" if math.isinf(t) else ("nan" if math.isnan(t) else f"{t:.3g}")
+    """An implied timescale, ps, as text: 'n/a' for a TICA eigenvalue at or below 0 (no
+    relaxation read at the lag: the coordinate has decorrelated within it).
+
+    >>> _fmt_ts(14.5), _fmt_ts(float("inf")), _fmt_ts(float("nan"))
+    ('14.5', 'inf', 'n/a (eigenvalue <= 0)')
+    """
+    return "inf" if math.isinf(t) else ("n/a (eigenvalue <= 0)" if math.isnan(t)
+                                        else f"{t:.3g}")
 
 
 def propose_states(source, *, lag, n_states=None, max_states=6, selection=None,
@@ -1272,7 +1279,8 @@ def _few_transition_warnings(kin, biased):
     for i, s in enumerate(kin.states):
         if min(kin.entries[i], kin.exits[i]) < FEW_TRANSITIONS:
             out.append(f"state {s} is entered {int(kin.entries[i])} and left "
-                       f"{int(kin.exits[i])} time(s) in the runs (fewer than {FEW_TRANSITIONS}): "
+                       f"{int(kin.exits[i])} time(s) in the runs (the fewer of the two below "
+                       f"{FEW_TRANSITIONS}): "
                        f"its {share} ({kin.populations[i]:.3f}) depends on where the runs "
                        "started and how long they lasted; it is not an equilibrium population")
     return out
