@@ -324,6 +324,7 @@ def test_a_funnel_axis_through_a_noisy_ligand_offset_is_warned_about(tmp_path):
     assert out["axis_rule"] == "ligand_offset"
     (warning,) = [w for w in out["warnings"] if "the axis through the mean ligand offset" in w]
     assert "the mean offset less than twice its standard error" in warning
+    assert "95 % of such axes within about" in warning  # both reasons, as both hold
     assert "--exit-point" in warning
     assert any("uncertain by about" in r and "from 5 block means (5 per run)" in r
                for r in out["reasoning"])

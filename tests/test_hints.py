@@ -794,3 +794,19 @@ def test_a_cap_that_stops_the_lengthening_short_of_the_rate_says_so():
     assert "as far as max_interval_ps = 0.1 ps allows: a rate of 12.5 kJ/mol/ps" in note
     assert "at most 5" not in note
     assert any(w.startswith("the bias grows at 12.5 kJ/mol per ps") for w in h["warnings"])
+    assert ("50 steps = 0.1 ps (lengthened toward 5 kJ/mol per ps, stopped by "
+            "max_interval_ps)") in format_hints(h)
+
+
+def test_the_few_steps_warning_and_the_rate_note_name_what_set_the_interval():
+    """Review findings: after the rate's lengthening the few-steps warning blamed the CV's
+    time, and with no time the note named an autocorrelation time that was a placeholder."""
+    h = suggest_hints(STATES, temperature=T, md_step_fs=4.0, autocorrelation_time_ps=0.004,
+                      height_kt=0.05)  # 0.1247 kJ/mol / 5 kJ/mol/ps = 0.025 ps = 6.2 -> 7 steps
+    (few,) = [w for w in h["warnings"] if w.startswith("the deposition interval is 7 MD steps")]
+    assert "what a rate of 5 kJ/mol per ps allows at the small initial height" in few
+    assert "check autocorrelation_time_ps" not in few
+    h = suggest_hints(STATES, temperature=T, md_step_fs=2.0, height_kt=3.0)  # no time: 1 ps
+    (note,) = [line for line in h["reasoning"] if line.startswith("Note: the interval from")]
+    assert note.startswith("Note: the interval from the 1 ps placeholder (no autocorrelation "
+                           "time), 500 steps (1 ps)")

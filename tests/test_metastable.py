@@ -661,3 +661,16 @@ def test_cli_runs_with_objective_both_name_the_runs_whose_crossings_rank_it(tmp_
     (n_transitions,) = re.findall(r"The runs contain (\d+) transitions", summary)
     (n_crossings,) = re.findall(r"; (\d+) in all\)", summary)
     assert n_crossings == n_transitions  # 28 each when this was written
+
+
+def test_zero_transitions_advise_a_shorter_lag_unless_no_lagged_pair_changes_state():
+    """Review finding: visits shorter than the lag are not transitions, so runs that switch
+    state faster than the lag count none; only when no lagged pair changes state does no
+    lag help."""
+    from types import SimpleNamespace
+
+    from cvdesign.pipeline.explore import _never_change_state
+
+    assert _never_change_state(SimpleNamespace(counts=np.array([[40, 0], [0, 30]])))
+    assert not _never_change_state(SimpleNamespace(counts=np.array([[40, 3], [2, 30]])))
+    assert not _never_change_state(SimpleNamespace(counts=np.array([[4.5, 0.25], [0.0, 3.0]])))

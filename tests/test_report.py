@@ -1136,3 +1136,17 @@ def test_the_alt_text_names_the_within_runs_curves_so():
                                 within=[("rank 1", lags, [0.5, 0.6])])
     assert " Within runs: rank 1: 0.5 at 1, 0.6 at 2." in fig.alt
     assert "Within the states" not in fig.alt
+
+
+def test_a_timescale_from_an_autocorrelation_indistinct_from_zero_is_a_bound_in_the_report(
+        demo_out, tmp_path):
+    # a review found the summary fixed ("< upper end") and the report still printing 0.174
+    out = tmp_path / "out"
+    shutil.copytree(demo_out, out)
+    path = out / "ranking.json"
+    doc = json.loads(path.read_text())
+    doc["ranking"][0].update(timescale_ps=0.174, timescale_resolved=True,
+                             timescale_ci_ps=[None, 0.61])
+    path.write_text(json.dumps(doc))
+    page = build_report(read_output(out)).html
+    assert "&lt; 0.61 (autocorrelation at the lag not distinguished from 0)" in page

@@ -846,17 +846,19 @@ def _axis_uncertainty(blocks, axis, z_mean):
     n_blocks = int((w > 0).sum())
     runs = sorted({k[0] for k in keys})
     by_run = [[i for i, k in enumerate(keys) if k[0] == r] for r in runs]
+    n_runs = int(sum(w[i].sum() > 0 for i in by_run))  # runs with weight
     se_runs = _offset_error(np.array([w[i].sum() for i in by_run]),
                             np.array([d[i].sum(axis=0) for i in by_run]), axis)
     if se_runs is not None and se_runs > se:
-        basis = (f"from the means of the {int(sum(w[i].sum() > 0 for i in by_run))} runs, "
+        basis = (f"from the means of the {n_runs} runs, "
                  f"larger than from {n_blocks} block means ({AXIS_BLOCKS} per run), which are "
                  "shorter than the ligand's correlation time")
         se = se_runs
     else:
         basis = f"from {n_blocks} block means ({AXIS_BLOCKS} per run)" + (
-            "" if se_runs is not None else "; one run, so not checked against run means: "
-            "an underestimate if its blocks are shorter than the ligand's correlation time")
+            "" if se_runs is not None else "; one run with weight, so not checked against "
+            "run means: an underestimate if its blocks are shorter than the ligand's "
+            "correlation time")
     angle = float(np.arctan2(se, z_mean))
     return angle, (f"standard error {se:.3f} nm of the mean offset across the axis, "
                    f"{basis}, against the mean offset along it, {z_mean:.3f} nm")
@@ -980,10 +982,12 @@ def _size(first, second, changed, *, exit_point=None, ligand_radius=None, cylind
         # radius follows Rayleigh's law, P(R > r) = exp(-r^2 / rms^2); derived here)
         angle95 = None if angle is None else float(np.arctan(np.tan(angle) * _R95))
         if angle is not None and (angle95 > half_angle or angle > np.arctan(0.5)):
-            why = ("the mean offset less than twice its standard error"
-                   if angle > np.arctan(0.5) else
-                   f"95 % of such axes within about {np.degrees(angle95):.0f} degrees, more "
-                   f"than the cone's half-angle ({np.degrees(half_angle):.0f} degrees)")
+            reasons = ([f"95 % of such axes within about {np.degrees(angle95):.0f} degrees, "
+                        f"more than the cone's half-angle ({np.degrees(half_angle):.0f} "
+                        "degrees)"] if angle95 > half_angle else []) \
+                + (["the mean offset less than twice its standard error"]
+                   if angle > np.arctan(0.5) else [])
+            why = "; ".join(reasons)
             warnings.append(
                 f"the axis through the mean ligand offset is uncertain by about "
                 f"{np.degrees(angle):.0f} degrees (one standard error; {why}): {axis_note}; "

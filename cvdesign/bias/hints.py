@@ -1016,7 +1016,8 @@ def suggest_hints(
           either is unknown), ``tau_lower_bound`` (True when the time did not
           decay, None when unknown), ``rate_kj_mol_ps`` (initial height /
           interval), ``rate_limited`` (True when the interval from the time
-          was lengthened so that this rate stays at most 5 kJ/mol/ps);
+          was lengthened toward a rate of at most 5 kJ/mol/ps, which it
+          reaches unless ``max_interval_ps`` stops it);
         * ``well_tempered``: ``bias_factor`` (None when tabulated),
           ``delta_t_k`` (K), ``barrier_kj_mol``,
           ``effective_barrier_kj_mol``, ``target_barrier_kt``, ``table``
@@ -1335,15 +1336,6 @@ def suggest_hints(
                     f"would not wait for; longer runs per state measure it")
                 why.append("Note: " + text + ".")
                 warnings.append(text)
-    if tau is not None and tau_interval is not None and \
-            tau_interval[1] > POOR_TIME_RATIO * tau_interval[0]:
-        text = (f"autocorrelation_time_ps = {tau:.4g} ps is poorly determined: its 95 % interval "
-                f"[{tau_interval[0]:.3g}, {tau_interval[1]:.3g}] ps spans more than a factor "
-                f"of {POOR_TIME_RATIO:g} (too few frames or runs per state to measure it), and "
-                "so does the deposition interval sized from it; longer or more runs per state "
-                "measure it, or give a time of your own")
-        why.append("Note: " + text + ".")
-        warnings.append(text)
     steps = max(1, int(round(tau_used * 1000.0 / dt_fs)))
     # no faster than the rate the hints flag: the interval from a short time is lengthened
     # (within max_interval_ps), so the suggestion does not contradict its own warning
@@ -1354,8 +1346,10 @@ def suggest_hints(
     if rate_limited:
         new_rate = height / (rate_steps * dt_fs / 1000.0)
         reached = new_rate <= _FAST_RATE_KJ_MOL_PS * (1.0 + 1e-9)
+        source = ("the autocorrelation time" if tau is not None else
+                  "the 1 ps placeholder (no autocorrelation time)")
         why.append(
-            f"Note: the interval from the autocorrelation time, {steps} step"
+            f"Note: the interval from {source}, {steps} step"
             f"{'s' if steps > 1 else ''} ({steps * dt_fs / 1000.0:.3g} ps), would grow the bias "
             f"at {height / (steps * dt_fs / 1000.0):.3g} kJ/mol per ps at first; it is "
             f"lengthened to {rate_steps} steps ({rate_steps * dt_fs / 1000.0:.3g} ps), "
@@ -1373,14 +1367,32 @@ def suggest_hints(
             f"allows.")
         steps = rate_steps
     interval_ps = steps * dt_fs / 1000.0
+    if tau is not None and tau_interval is not None and \
+            tau_interval[1] > POOR_TIME_RATIO * tau_interval[0]:
+        text = (f"autocorrelation_time_ps = {tau:.4g} ps is poorly determined: its 95 % interval "
+                f"[{tau_interval[0]:.3g}, {tau_interval[1]:.3g}] ps spans more than a factor "
+                f"of {POOR_TIME_RATIO:g} (too few frames or runs per state to measure it)"
+                + ("" if capped or rate_limited else
+                   ", and so may the deposition interval sized from it")
+                + "; longer or more runs per state measure it, or give a time of your own")
+        why.append("Note: " + text + ".")
+        warnings.append(text)
     if steps < _FEW_STEPS:
+        why_few = (
+            f"which is what a rate of {_FAST_RATE_KJ_MOL_PS:g} kJ/mol per ps allows at the "
+            f"small initial height of {height:.3g} kJ/mol (the CV's time gave fewer); raise "
+            "height_kt, or choose the interval yourself"
+            if rate_limited and height / interval_ps <= _FAST_RATE_KJ_MOL_PS * (1.0 + 1e-9) else
+            f"as far as max_interval_ps = {cap:g} ps lets the interval grow; raise it, or "
+            "choose the interval yourself"
+            if rate_limited else
+            f"because the autocorrelation time {tau_used:.3g} ps is only "
+            f"{tau_used * 1000.0 / dt_fs:.3g} MD steps of {dt_fs:g} fs; check "
+            "autocorrelation_time_ps and the MD step, or choose the interval yourself")
         warnings.append(
             f"the deposition interval is {steps} MD step{'s' if steps > 1 else ''} "
             f"({interval_ps:.3g} ps): a kernel {'every step' if steps == 1 else 'this often'} "
-            f"is far more often than usual (every 100-1000 steps), because the "
-            f"autocorrelation time {tau_used:.3g} ps is only {tau_used * 1000.0 / dt_fs:.3g} MD "
-            f"steps of {dt_fs:g} fs; check autocorrelation_time_ps and the MD step, or choose "
-            "the interval yourself")
+            f"is far more often than usual (every 100-1000 steps), {why_few}")
     rate = height / interval_ps
     if rate > _FAST_RATE_KJ_MOL_PS:
         warnings.append(
@@ -2005,8 +2017,11 @@ def format_hints(hints):
     out.append(f"height           {_g(hints['height_kj_mol'])} kJ/mol (initial)")
     out.append(f"interval         {dep['interval_steps']} steps = {_g(dep['interval_ps'])} ps"
                + (" (capped)" if dep["capped"] else "")
-               + (" (lengthened: at most "
-                  f"{_g(_FAST_RATE_KJ_MOL_PS)} kJ/mol per ps at first)"
+               + ((" (lengthened: at most "
+                   f"{_g(_FAST_RATE_KJ_MOL_PS)} kJ/mol per ps at first)"
+                   if dep["rate_kj_mol_ps"] <= _FAST_RATE_KJ_MOL_PS * (1.0 + 1e-9) else
+                   f" (lengthened toward {_g(_FAST_RATE_KJ_MOL_PS)} kJ/mol per ps, stopped "
+                   "by max_interval_ps)")
                   if dep.get("rate_limited") else ""))
     if wt["bias_factor"] is not None:
         line = f"bias factor      {_g(wt['bias_factor'])} (dT = {_g(wt['delta_t_k'])} K)"

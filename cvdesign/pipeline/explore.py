@@ -1190,8 +1190,9 @@ def _propose(source, executor, note, *, lag, n_states, max_states, selection, ki
             + f". The runs contain {kin.n_transitions} transitions between these states; "
             f"lag-time transition counts: {kin.counts_text()}. "
             + ("Use longer runs that cross between the states (no lag shows a transition the "
-               "runs never make)" if kin.n_transitions == 0 else
-               "Use longer runs (that cross between the states), try another --lag")
+               "runs never make)" if _never_change_state(kin) else
+               "Use longer runs (that cross between the states), try another --lag (a "
+               "shorter one counts the visits shorter than this lag)")
             + ", or give the states yourself with --state NAME FILE ... (for instance when "
             "each run was started in a known state)")
     if n_states is None and int(kin.metastable.sum()) < 2:
@@ -1269,6 +1270,13 @@ def _biased_notes(reweighting, lag_frames):
         "the transitions between visits and the time spent in each state are counted on "
         "the runs' frames in their own time (with a bias that is positive, shorter than in "
         "rescaled time, so the metastability tests are the stricter for it)"]
+
+
+def _never_change_state(kin):
+    """Whether no lagged pair of the runs changes state: visits shorter than the lag do not
+    count as transitions, so zero transitions alone may mean a lag too long."""
+    counts = np.asarray(kin.counts, dtype=np.float64)
+    return bool(counts.sum() - np.trace(counts) <= 0)
 
 
 def _few_transition_warnings(kin, biased):

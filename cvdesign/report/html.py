@@ -474,8 +474,12 @@ def _suggest(page, output, parsed):
         ts = r.get(f"timescale{within}_ps")
         bound = resolving_span_ps(r, f"timescale{within}")
         unmeasured = "n/a (no lag)" if lag is None else "n/a (not measured: see the summary)"
+        ts_ci = r.get(f"timescale{within}_ci_ps")
         if ts is not None and r.get(f"timescale{within}_resolved") is False and bound:
             ts_text = f"> {bound:.3g} (not resolved)"
+        elif ts is not None and ts_ci is not None and ts_ci[0] is None and ts_ci[1] is not None:
+            # the autocorrelation's interval reaches 0: only an upper bound is measured
+            ts_text = f"< {ts_ci[1]:.3g} (autocorrelation at the lag not distinguished from 0)"
         else:
             ts_text = _with_ci(ts, r.get(f"timescale{within}_ci_ps"), missing=unmeasured)
         rho = r.get(f"heldout_autocorrelation{within}")
