@@ -494,8 +494,12 @@ def test_cli_runs_writes_staying_probabilities_and_prints_metastable_warnings(
     summary = (out / "summary.md").read_text()
     assert "staying probability" in summary and "Lag-time transition counts" in summary
     assert "**warning**: state S3 is not metastable" in summary
-    # the run that stays in its far well (flickers of its labels aside) makes no crossing
-    assert re.search(r"run-3\.xtc': 0; \d+ in all\)", summary), summary
+    # the run that stays in its far well (flickers of its labels aside) makes no crossing:
+    # left out of the transition slowness, and said so
+    assert re.search(r"in all; left out, labelled with two states but never crossing, "
+                     r"the other's visits shorter than the lag: '[^']*run-3\.xtc'\)",
+                     summary), summary
+    assert "run-3.xtc': 0" not in summary
     lines = (out / "states.csv").read_text().splitlines()
     assert lines[0] == "file,frame,state" and len(lines) == 1 + 3 * 2000
 
@@ -659,7 +663,7 @@ def test_cli_runs_with_objective_both_name_the_runs_whose_crossings_rank_it(tmp_
             "frame labelled by its proposed state)") in summary
     assert "fed back" not in summary
     (n_transitions,) = re.findall(r"The runs contain (\d+) transitions", summary)
-    (n_crossings,) = re.findall(r"; (\d+) in all\)", summary)
+    (n_crossings,) = re.findall(r"; (\d+) in all[);]", summary)
     assert n_crossings == n_transitions  # 28 each when this was written
 
 

@@ -299,3 +299,33 @@ def test_labels_file_with_another_number_of_frames_is_refused_naming_both_files(
                      r"'.*short\.labels' holds 1997 labels, but trajectory '.*biased-0\.xtc' "
                      r"has 2000 frames; give one line per frame", capsys.readouterr().err)
     assert not (tmp_path / "out").exists()
+
+
+def test_a_run_whose_labels_only_flicker_is_no_crossing_run(tmp_path):
+    """Visits shorter than the lag are not crossings: a run labelled 'a' but for one-frame
+    flickers to 'b' gives no transition data (before, each flicker counted as a crossing and
+    the run's pairs, within one state, passed for transition slowness); a run that does
+    cross is kept beside it, the flickering one left out."""
+    from cvdesign.passes import CoordinateFeaturizer
+    from cvdesign.pipeline.transitions import gather_transitions
+
+    top = md.Topology()
+    top.add_atom("C", md.element.carbon, top.add_residue("X", top.add_chain()))
+    x = np.full(400, 0.5)
+    flicker = np.where(np.arange(400) % 50 == 7, "b", "a")
+    crossing = np.repeat(np.tile(["a", "b"], 4), 50)
+
+    def write(name, xs):
+        path = tmp_path / name
+        md.Trajectory(np.stack([xs, 0 * xs, 0 * xs], 1)[:, None].astype(np.float32),
+                      top).save_xtc(str(path))
+        return str(path)
+
+    src = Source(top).add_labelled(write("flicker.xtc", x), flicker)
+    assert gather_transitions(src, CoordinateFeaturizer([0]), np.zeros(3), {0: 5}, 2) is None
+    hop = np.where(crossing == "a", 0.5, 1.5)
+    src.add_labelled(write("hop.xtc", hop), crossing)
+    data = gather_transitions(src, CoordinateFeaturizer([0]), np.zeros(3), {0: 5, 1: 5}, 2)
+    assert [p.split("/")[-1] for p in data.paths] == ["hop.xtc"] and data.n_crossings == [7]
+    assert "left out, labelled with two states but never crossing" in data.notes[0]
+    assert "flicker.xtc" in data.notes[0]

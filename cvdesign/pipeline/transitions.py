@@ -217,7 +217,8 @@ def gather_transitions(source, featurizer, shift, lags, n_folds, *, executor=Non
     Returns
     -------
     TransitionData or None
-        None when the source has no crossing run.
+        None when the source has no crossing run (a run that makes no crossing, its
+        labels changing only in visits shorter than the lag, is left out).
 
     Examples
     --------
@@ -275,11 +276,23 @@ def gather_transitions(source, featurizer, shift, lags, n_folds, *, executor=Non
             fa, fc = (a * n_folds * b) // n_frames[r], (c * n_folds * b) // n_frames[r]
             if fa == fc:
                 per_fold[fa // b] += 1
+    # a run whose labels visit two states only in visits shorter than the lag never
+    # crosses: its pairs, within one state, would pass for transition slowness
+    left_out = [paths[r] for r in range(len(runs)) if n_cross[r] == 0]
+    kept = [r for r in range(len(runs)) if n_cross[r] > 0]
+    if not kept:
+        return None
+    runs, paths = [runs[r] for r in kept], [paths[r] for r in kept]
+    n_cross, blocks = [n_cross[r] for r in kept], [blocks[r] for r in kept]
     has_pairs = all(any(blocks[r][k] for r in range(len(runs))) for k in range(n_folds))
     ranks = bool(per_fold.min() >= MIN_CROSSINGS_PER_FOLD and has_pairs)
     counts = ", ".join(f"{p!r}: {c}" for p, c in zip(paths, n_cross))
-    what = (f"{len(runs)} run{'s' if len(runs) != 1 else ''} labelled with two or more states "
-            f"(crossings {counts}; {sum(n_cross)} in all)")
+    what = (f"{len(runs)} run{'s' if len(runs) != 1 else ''} crossing between the states "
+            f"(crossings {counts}; {sum(n_cross)} in all"
+            + ("" if not left_out else
+               f"; left out, labelled with two states but never crossing, the other's "
+               f"visits shorter than the lag: {', '.join(repr(p) for p in left_out)}")
+            + ")")
     notes = [f"transition slowness: {what}: lagged pairs along each whole run (the frames "
              "between the states included, pairs spanning the crossings"
              + (", in rescaled time, weighted by exp(V/kT) over the run" if tsrc.biased else "")
