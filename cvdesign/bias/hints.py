@@ -206,6 +206,12 @@ def _number(name, value, *, positive=True, allow_zero=False):
     return x
 
 
+def _within_rate(rate):
+    """Whether an initial deposition rate (kJ/mol per ps) is within the rate the hints
+    accept without a warning, :data:`_FAST_RATE_KJ_MOL_PS` (to rounding)."""
+    return rate <= _FAST_RATE_KJ_MOL_PS * (1.0 + 1e-9)
+
+
 def _unfolded_width(states, fit, folded, bounds, width_fraction):
     """The kernel width, CV units, that keeps its fraction of each state's spread where a
     folded CV is steepest, and its ratio to the width from the spreads along the CV; None
@@ -1345,7 +1351,7 @@ def suggest_hints(
     rate_limited = rate_steps > steps
     if rate_limited:
         new_rate = height / (rate_steps * dt_fs / 1000.0)
-        reached = new_rate <= _FAST_RATE_KJ_MOL_PS * (1.0 + 1e-9)
+        reached = _within_rate(new_rate)
         source = ("the autocorrelation time" if tau is not None else
                   "the 1 ps placeholder (no autocorrelation time)")
         why.append(
@@ -1382,7 +1388,7 @@ def suggest_hints(
             f"which is what a rate of {_FAST_RATE_KJ_MOL_PS:g} kJ/mol per ps allows at the "
             f"small initial height of {height:.3g} kJ/mol (the CV's time gave fewer); raise "
             "height_kt, or choose the interval yourself"
-            if rate_limited and height / interval_ps <= _FAST_RATE_KJ_MOL_PS * (1.0 + 1e-9) else
+            if rate_limited and _within_rate(height / interval_ps) else
             f"as far as max_interval_ps = {cap:g} ps lets the interval grow; raise it, or "
             "choose the interval yourself"
             if rate_limited else
@@ -2019,7 +2025,7 @@ def format_hints(hints):
                + (" (capped)" if dep["capped"] else "")
                + ((" (lengthened: at most "
                    f"{_g(_FAST_RATE_KJ_MOL_PS)} kJ/mol per ps at first)"
-                   if dep["rate_kj_mol_ps"] <= _FAST_RATE_KJ_MOL_PS * (1.0 + 1e-9) else
+                   if _within_rate(dep["rate_kj_mol_ps"]) else
                    f" (lengthened toward {_g(_FAST_RATE_KJ_MOL_PS)} kJ/mol per ps, stopped "
                    "by max_interval_ps)")
                   if dep.get("rate_limited") else ""))

@@ -730,11 +730,20 @@ def _timescale_text(r):
     bound = resolving_span_ps(r, key)
     if resolved is False and bound:
         return f"> {bound:.3g} (not resolved by these runs)"
-    ci = r.get(f"{key}_ci_ps")
-    if ci is not None and ci[0] is None and ci[1] is not None:
-        # the autocorrelation's interval reaches 0: only an upper bound is measured
-        return f"< {ci[1]:.3g} (autocorrelation at the lag not distinguished from 0)"
-    return format(ts, ".3g")
+    bound_text = upper_bound_text(r.get(f"{key}_ci_ps"))
+    return bound_text if bound_text is not None else format(ts, ".3g")
+
+
+def upper_bound_text(ci):
+    """A timescale shown as its upper bound, when its interval (ps) has no lower end (the
+    autocorrelation's interval reaches 0); else None.
+
+    >>> upper_bound_text([None, 0.61]), upper_bound_text([0.1, 0.3])
+    ('< 0.61 (autocorrelation at the lag not distinguished from 0)', None)
+    """
+    if ci is None or ci[0] is not None or ci[1] is None:
+        return None
+    return f"< {ci[1]:.3g} (autocorrelation at the lag not distinguished from 0)"
 
 
 def resolving_span_ps(entry, key):

@@ -19,6 +19,7 @@ from ..io.source import file_sha256
 from ..kinds import GROUP_KINDS
 from ..spec import Spec, atom_identity, cv_digest, residue_hashes, topology_fingerprint
 from .output import CAUTION
+from .ranking import _both
 
 __all__ = ["describe_inputs", "InputChecksums", "SourceRecord", "spec_document"]
 
@@ -162,8 +163,8 @@ def spec_document(source, pool, entry, params, checksums, seed, record=None):
                 "timescale_transitions_resolved"):
         if entry.get(key) is not None:
             scores[key] = int(bool(entry[key]))
-    interval = entry.get("integrated_time_ci_ps")
-    if interval is not None and None not in interval:  # the time's 95 % interval, ps
+    interval = _both(entry.get("integrated_time_ci_ps"))
+    if interval is not None:  # the time's 95 % interval, ps
         scores["integrated_time_ci_ps"] = [float(interval[0]), float(interval[1])]
     if entry.get("integrated_time_decayed") is not None:  # a flag, 1 or 0 (scores are numbers)
         scores["integrated_time_decayed"] = int(bool(entry["integrated_time_decayed"]))

@@ -25,7 +25,7 @@ from pathlib import Path
 from .._version import __version__
 from ..errors import CVDesignError, InputError
 from ..io.atomic import atomic_paths
-from ..pipeline.output import CAUTION, resolving_span_ps, shown_slowness
+from ..pipeline.output import CAUTION, resolving_span_ps, shown_slowness, upper_bound_text
 from . import figures as fg
 from .inputs import read_output, report_data_name, report_path
 
@@ -477,9 +477,8 @@ def _suggest(page, output, parsed):
         ts_ci = r.get(f"timescale{within}_ci_ps")
         if ts is not None and r.get(f"timescale{within}_resolved") is False and bound:
             ts_text = f"> {bound:.3g} (not resolved)"
-        elif ts is not None and ts_ci is not None and ts_ci[0] is None and ts_ci[1] is not None:
-            # the autocorrelation's interval reaches 0: only an upper bound is measured
-            ts_text = f"< {ts_ci[1]:.3g} (autocorrelation at the lag not distinguished from 0)"
+        elif ts is not None and upper_bound_text(ts_ci) is not None:
+            ts_text = upper_bound_text(ts_ci)
         else:
             ts_text = _with_ci(ts, r.get(f"timescale{within}_ci_ps"), missing=unmeasured)
         rho = r.get(f"heldout_autocorrelation{within}")
